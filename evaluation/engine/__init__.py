@@ -1,0 +1,27 @@
+"""Benchbook's detection metric engine: pure Python + numpy, no Django.
+
+Layers, each usable alone::
+
+    loaders   files -> GroundTruth / Predictions (validated columns)
+    matching  -> MatchRecords (per detection: TP / ignored per size bucket and IoU)
+    curves    MatchRecords (+ image weights) -> cumulative TP/FP -> AP of any protocol
+    scoring   -> a JSON-serialisable scorecard
+
+Command line: ``python -m evaluation.engine score --truth GT --predictions PRED``.
+"""
+
+from .data import GroundTruth, Predictions
+from .errors import InputError
+from .evaluate import evaluate
+from .loaders import load_predictions, load_truth
+from .matching import match
+from .protocols import PRESETS, Protocol, get_protocol, protocol_from_dict
+from .records import MatchRecords
+from .scoring import COCO_SUMMARY_KEYS, headline, score_records
+from .version import ENGINE_VERSION
+
+__all__ = [
+    "COCO_SUMMARY_KEYS", "ENGINE_VERSION", "PRESETS", "GroundTruth", "InputError",
+    "MatchRecords", "Predictions", "Protocol", "evaluate", "get_protocol", "headline",
+    "load_predictions", "load_truth", "match", "protocol_from_dict", "score_records",
+]

@@ -1,0 +1,99 @@
+"""Columnar containers for ground truth and predictions.
+
+Everything downstream of the loaders works on these arrays; no metric function ever
+sees a file. Boxes are ``[x, y, w, h]`` in pixels (float64), as in COCO-style JSON.
+"""
+
+import hashlib
+from dataclasses import dataclass, field
+
+import numpy as np
+
+
+@dataclass(frozen=True, eq=False)
+class GroundTruth:
+    """A benchmark split: images, classes and annotated boxes.
+
+    Images are held in ascending id order; ``box_image`` and ``box_class`` index into
+    ``image_ids`` and ``classes``. ``box_area`` is the area used for size buckets (the
+    annotation's own ``area`` when given, else ``w * h``).
+    """
+
+    classes: tuple  # class names; position = class index
+    class_ids: np.ndarray  # int64 external ids (COCO category ids), same order
+    image_ids: np.ndarray  # ascending; int64, or str objects for CSV splits
+    image_width: np.ndarray
+    image_height: np.ndarray
+    image_tags: tuple  # per image: tuple of tag strings
+    box_ids: np.ndarray  # int64 external annotation ids (or 1-based line numbers)
+    box_image: np.ndarray  # int32
+    box_class: np.ndarray  # int32
+    boxes: np.ndarray  # (n, 4) float64 xywh
+    box_area: np.ndarray
+    crowd: np.ndarray  # bool
+    difficult: np.ndarray  # bool
+    ignore: np.ndarray  # bool
+    source: str = ""
+
+    @property
+    def n_images(self):
+        return len(self.image_ids)
+
+    @property
+    def n_boxes(self):
+        return len(self.box_image)
+
+    def tags(self):
+        """Every tag used by at least one image, sorted."""
+        return sorted({t for tags in self.image_tags for t in tags})
+
+    def tag_mask(self, tag):
+        """0/1 int64 weights selecting the images that carry ``tag``."""
+        return np.fromiter((tag in t for t in self.image_tags), bool, self.n_images).astype(
+            np.int64
+        )
+
+    def content_hash(self):
+        """SHA-256 of the canonical content: identical splits hash identically.
+
+        Canonical form: images in id order with sizes and sorted tags, classes in
+        order, boxes sorted by (image, class, x, y, w, h, flags, area) — so the
+        order of records in the source file does not change the hash.
+        """
+        digest = hashlib.sha256()
+        digest.update(repr(list(zip(self.class_ids.tolist(), self.classes))).encode())
+        digest.update(repr([str(i) for i in self.image_ids]).encode())
+        digest.update(np.ascontiguousarray(self.image_width, "<f8").tobytes())
+        digest.update(np.ascontiguousarray(self.image_height, "<f8").tobytes())
+        digest.update(repr([sorted(t) for t in self.image_tags]).encode())
+        columns = np.column_stack(
+            [
+                self.box_image.astype("<f8"),
+                self.box_class.astype("<f8"),
+                self.boxes.astype("<f8"),
+                self.crowd.astype("<f8"),
+                self.difficult.astype("<f8"),
+                self.ignore.astype("<f8"),
+                self.box_area.astype("<f8"),
+            ]
+        )
+        order = np.lexsort(columns.T[::-1])
+        digest.update(np.ascontiguousarray(columns[order]).tobytes())
+        return digest.hexdigest()
+
+
+@dataclass(frozen=True, eq=False)
+class Predictions:
+    """A detector's output on one split, resolved against that split's indices."""
+
+    image: np.ndarray  # int32 index into GroundTruth.image_ids
+    cls: np.ndarray  # int32 index into GroundTruth.classes
+    boxes: np.ndarray  # (n, 4) float64 xywh
+    score: np.ndarray  # float64
+    clipped: int = 0  # boxes clipped to the image frame while loading
+    dropped: int = 0  # records of classes outside the split, dropped by policy
+    source: str = ""
+    extra: dict = field(default_factory=dict)
+
+    def __len__(self):
+        return len(self.score)

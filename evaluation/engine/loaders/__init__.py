@@ -1,0 +1,260 @@
+"""Loading ground truth and predictions from files into validated columns.
+
+``load_truth`` and ``load_predictions`` are the only way files enter the engine:
+every check happens here, once, and every error names the file, the record and the
+field. With ``cache_dir`` the parsed columns are kept as ``.npz`` keyed by the file's
+SHA-256 (and for predictions the split's hash and the policies), so re-scoring the
+same bytes skips parsing.
+"""
+
+import re
+
+import numpy as np
+
+from ..data import GroundTruth, Predictions
+from ..errors import InputError
+from . import checks, coco_json, csv_tables
+from .cache import cached
+
+_INTEGER = re.compile(r"^[+-]?\d+$")
+OUT_OF_FRAME_POLICIES = ("clip", "reject")
+UNKNOWN_CLASS_POLICIES = ("reject", "drop")
+
+
+def _format(path, fmt):
+    if fmt:
+        if fmt not in ("json", "csv"):
+            raise InputError(path, f"unknown format {fmt!r}; use 'json' or 'csv'")
+        return fmt
+    name = str(path).lower()
+    if name.endswith(".json"):
+        return "json"
+    if name.endswith(".csv"):
+        return "csv"
+    return "json" if csv_tables.sniff_is_json(path) else "csv"
+
+
+def _exists(path):
+    try:
+        with open(path, "rb"):
+            pass
+    except OSError as e:
+        raise InputError(path, f"cannot open: {e.strerror}") from None
+
+
+def load_truth(path, *, images=None, fmt=None, classes=None, cache_dir=None):
+    """Load a benchmark split.
+
+    Parameters
+    ----------
+    path : COCO-style JSON, or a boxes CSV (then ``images`` is the images table)
+    classes : sequence of str, optional
+        For CSV: the class list in order; default the sorted labels found.
+    """
+    _exists(path)
+    fmt = _format(path, fmt)
+    if fmt == "csv" and images is None:
+        raise InputError(path, "a CSV split needs its images table (image_id,width,height,tags)")
+    sources = [path] + ([images] if images is not None else [])
+    key = {"kind": "truth", "format": fmt, "classes": list(classes) if classes else None}
+    return cached(cache_dir, sources, key, lambda: _read_truth(path, images, fmt, classes), "truth")
+
+
+def _read_truth(path, images, fmt, classes):
+    if fmt == "json":
+        cols = coco_json.read_truth(path)
+        image_locate = lambda i: f"images[{i}]"  # noqa: E731
+        box_locate = lambda i: f"annotations[{i}]"  # noqa: E731
+        box_fields = {"image": "image_id", "class": "category_id", "bbox": "bbox", "id": "id"}
+        image_path = path
+        checks.check_unique(path, cols["class_ids"], lambda i: f"categories[{i}]", "id")
+        checks.check_unique(path, np.array(cols["class_names"], dtype=object).astype(str),
+                            lambda i: f"categories[{i}]", "name")
+    else:
+        cols = _csv_truth_columns(path, images, classes)
+        image_path = images
+        image_locate = lambda i: f"line {cols['image_lines'][i]}"  # noqa: E731
+        box_locate = lambda i: f"line {cols['box_lines'][i]}"  # noqa: E731
+        box_fields = {"image": "image_id", "class": "label", "bbox": "x_min..y_max", "id": "id"}
+
+    if len(cols["image_ids"]) == 0:
+        raise InputError(image_path, "the split lists no images", field="images")
+    checks.check_unique(image_path, cols["image_ids"], image_locate, "image_id" if fmt == "csv" else "id")
+    for name in ("image_width", "image_height"):
+        values = cols[name]
+        field = name.split("_")[1]
+        checks.check_finite(image_path, values, image_locate, field)
+        checks.fail_at(image_path, values <= 0, image_locate, field,
+                       lambda i: f"must be > 0, got {values[i]:g}")
+    if fmt == "json":
+        checks.check_unique(path, cols["box_ids"], box_locate, "id")
+
+    image_order = np.argsort(cols["image_ids"], kind="stable")
+    image_ids = cols["image_ids"][image_order]
+    class_order = np.argsort(cols["class_ids"], kind="stable")
+    class_ids = cols["class_ids"][class_order]
+
+    box_image, found = checks.resolve(path, cols["box_image_ids"], image_ids, box_locate, "", "")
+    checks.require_found(path, found, cols["box_image_ids"], box_locate, box_fields["image"], "image")
+    box_class, found = checks.resolve(path, cols["box_class_ids"], class_ids, box_locate, "", "")
+    checks.require_found(path, found, cols["box_class_ids"], box_locate, box_fields["class"], "class")
+
+    boxes = cols["boxes"]
+    checks.check_boxes(path, boxes, box_locate, box_fields["bbox"])
+    width = cols["image_width"][image_order][box_image]
+    height = cols["image_height"][image_order][box_image]
+    checks.check_inside(path, boxes, width, height, box_locate, box_fields["bbox"])
+    area = cols["box_area"]
+    given = ~np.isnan(area)
+    checks.fail_at(path, given & ~np.isfinite(area), box_locate, "area", "must be a finite number")
+    checks.fail_at(path, given & (area < 0), box_locate, "area", lambda i: f"must be >= 0, got {area[i]:g}")
+    area = np.where(given, area, boxes[:, 2] * boxes[:, 3])
+
+    names = [cols["class_names"][i] for i in class_order]
+    tags = [cols["image_tags"][i] for i in image_order]
+    return GroundTruth(
+        classes=tuple(names),
+        class_ids=class_ids,
+        image_ids=image_ids,
+        image_width=cols["image_width"][image_order],
+        image_height=cols["image_height"][image_order],
+        image_tags=tuple(tuple(t) for t in tags),
+        box_ids=cols["box_ids"],
+        box_image=box_image,
+        box_class=box_class,
+        boxes=boxes,
+        box_area=area,
+        crowd=cols["crowd"],
+        difficult=cols["difficult"],
+        ignore=cols["ignore"],
+        source=str(path),
+    )
+
+
+def _csv_ids(values):
+    """Integer ids when every id is an integer (sorted numerically), else strings."""
+    if values and all(_INTEGER.match(v) for v in values):
+        return np.array([int(v) for v in values], np.int64)
+    return np.array(values, dtype=object).astype(str)
+
+
+def _csv_truth_columns(path, images, classes):
+    ids, widths, heights, tags, image_lines = csv_tables.read_images(images)
+    boxes = csv_tables.read_boxes(path)
+    image_ids = _csv_ids(ids)
+    box_image_ids = np.array(boxes["image_id"], dtype=object).astype(str)
+    if image_ids.dtype.kind == "i":
+        converted = np.full(len(box_image_ids), -(2**62), np.int64)
+        ok = np.array([bool(_INTEGER.match(v)) for v in box_image_ids], bool)
+        converted[ok] = [int(v) for v in box_image_ids[ok]]
+        box_image_ids_resolved = converted
+    else:
+        box_image_ids_resolved = box_image_ids
+    labels = boxes["label"]
+    if classes is None:
+        names = sorted(set(labels))
+    else:
+        names = list(classes)
+        if len(set(names)) != len(names):
+            raise InputError("classes", "class names must be unique")
+    index = {name: i + 1 for i, name in enumerate(names)}
+    label_ids = np.array([index.get(label, -1) for label in labels], np.int64)
+    for i in np.flatnonzero(label_ids < 0)[:1]:
+        raise InputError(path, f"label {labels[i]!r} is not one of the split's classes",
+                         record=f"line {boxes['lines'][i]}", field="label")
+    return {
+        "image_ids": image_ids,
+        "image_width": widths,
+        "image_height": heights,
+        "image_tags": tags,
+        "image_lines": image_lines,
+        "class_ids": np.arange(1, len(names) + 1, dtype=np.int64),
+        "class_names": names,
+        "box_ids": np.asarray(boxes["lines"], np.int64),
+        "box_image_ids": box_image_ids_resolved,
+        "box_class_ids": label_ids,
+        "boxes": boxes["boxes"],
+        "box_area": boxes["area"],
+        "crowd": boxes["crowd"],
+        "difficult": boxes["difficult"],
+        "ignore": boxes["ignore"],
+        "box_lines": boxes["lines"],
+    }
+
+
+def load_predictions(path, truth, *, fmt=None, out_of_frame="clip", unknown_classes="reject",
+                     cache_dir=None):
+    """Load a detector's predictions for ``truth``.
+
+    Parameters
+    ----------
+    out_of_frame : ``"clip"`` (default; clipped boxes are counted) or ``"reject"``
+    unknown_classes : ``"reject"`` (default) or ``"drop"`` (pycocotools silently drops
+        detections of categories the split does not list; counted in ``dropped``)
+    """
+    _exists(path)
+    if out_of_frame not in OUT_OF_FRAME_POLICIES:
+        raise InputError(path, f"unknown out-of-frame policy {out_of_frame!r}; use clip or reject")
+    if unknown_classes not in UNKNOWN_CLASS_POLICIES:
+        raise InputError(path, f"unknown class policy {unknown_classes!r}; use reject or drop")
+    fmt = _format(path, fmt)
+    key = {
+        "kind": "predictions", "format": fmt, "truth": truth.content_hash(),
+        "out_of_frame": out_of_frame, "unknown_classes": unknown_classes,
+    }
+    return cached(
+        cache_dir, [path], key,
+        lambda: _read_predictions(path, truth, fmt, out_of_frame, unknown_classes),
+        "predictions",
+    )
+
+
+def _read_predictions(path, truth, fmt, out_of_frame, unknown_classes):
+    if fmt == "json":
+        image_ids, class_keys, boxes, score = coco_json.read_detections(path)
+        locate = lambda i: f"record {i}"  # noqa: E731
+        fields = {"image": "image_id", "class": "category_id", "bbox": "bbox"}
+        known_classes = truth.class_ids
+        if truth.image_ids.dtype.kind != "i":
+            image_ids = image_ids.astype(str)
+    else:
+        ids, labels, boxes, score, lines = csv_tables.read_detections(path)
+        locate = lambda i: f"line {lines[i]}"  # noqa: E731
+        fields = {"image": "image_id", "class": "label", "bbox": "x_min..y_max"}
+        class_keys = np.array(labels, dtype=object).astype(str) if labels else np.zeros(0, str)
+        known_classes = np.array(truth.classes, dtype=object).astype(str)
+        raw = np.array(ids, dtype=object).astype(str) if ids else np.zeros(0, str)
+        if truth.image_ids.dtype.kind == "i":
+            image_ids = np.full(len(raw), -(2**62), np.int64)
+            ok = np.array([bool(_INTEGER.match(v)) for v in raw], bool)
+            image_ids[ok] = [int(v) for v in raw[ok]]
+            shown = raw
+        else:
+            image_ids = raw
+            shown = raw
+    shown = image_ids if fmt == "json" else shown
+
+    image, found = checks.resolve(path, image_ids, truth.image_ids, locate, "", "")
+    checks.require_found(path, found, shown, locate, fields["image"], "image")
+    cls, found = checks.resolve(path, class_keys, known_classes, locate, "", "")
+    dropped = 0
+    if not found.all():
+        if unknown_classes == "reject":
+            checks.fail_at(path, ~found, locate, fields["class"],
+                           lambda i: f"class {class_keys[i]!r} is not one of the split's classes")
+        keep = found
+        dropped = int((~keep).sum())
+        image, cls, boxes, score = image[keep], cls[keep], boxes[keep], score[keep]
+        kept_rows = np.flatnonzero(keep)
+        locate_all = locate
+        locate = lambda i: locate_all(int(kept_rows[i]))  # noqa: E731
+    checks.check_boxes(path, boxes, locate, fields["bbox"])
+    checks.check_finite(path, score, locate, "score")
+    boxes, clipped = checks.clip_to_frame(
+        path, boxes, truth.image_width[image], truth.image_height[image], locate,
+        out_of_frame, fields["bbox"],
+    )
+    return Predictions(
+        image=image.astype(np.int32), cls=cls.astype(np.int32), boxes=boxes, score=score,
+        clipped=clipped, dropped=dropped, source=str(path),
+    )

@@ -1,0 +1,161 @@
+"""CSV tables: detections, ground-truth boxes and the images table of a split.
+
+Detections:  ``image_id,label,x_min,y_min,x_max,y_max,score``
+Boxes:       ``image_id,label,x_min,y_min,x_max,y_max`` and optionally
+             ``crowd,difficult,ignore`` (0/1) and ``area``
+Images:      ``image_id,width,height`` and optionally ``tags`` (``;``-separated)
+
+A header row is required; column order is free and other columns are ignored. Rows
+are read in blocks of ``BLOCK_ROWS`` and converted to arrays block by block, so a
+large file never exists as Python strings all at once. Errors name the line number.
+"""
+
+import csv
+import io
+
+import numpy as np
+
+from ..errors import InputError
+
+BLOCK_ROWS = 100_000
+DETECTION_COLUMNS = ("image_id", "label", "x_min", "y_min", "x_max", "y_max", "score")
+BOX_COLUMNS = ("image_id", "label", "x_min", "y_min", "x_max", "y_max")
+BOX_OPTIONAL = ("crowd", "difficult", "ignore", "area")
+IMAGE_COLUMNS = ("image_id", "width", "height")
+
+
+def _floats(path, values, lines, field):
+    try:
+        return np.array(values, dtype=np.float64)
+    except ValueError:
+        for value, line in zip(values, lines):
+            try:
+                float(value)
+            except ValueError:
+                raise InputError(
+                    path, f"expected a number, got {value!r}", record=f"line {line}", field=field
+                ) from None
+        raise
+
+
+def _flags(path, values, lines, field):
+    for value, line in zip(values, lines):
+        if value not in ("", "0", "1"):
+            raise InputError(path, f"expected 0 or 1, got {value!r}", record=f"line {line}", field=field)
+    return np.array([v == "1" for v in values], bool)
+
+
+def read_blocks(path, required, optional=()):
+    """Yield ``(columns, line_numbers)`` blocks; columns map name -> list of strings."""
+    try:
+        handle = open(path, newline="", encoding="utf-8-sig")
+    except OSError as e:
+        raise InputError(path, f"cannot open: {e.strerror}") from None
+    with handle:
+        try:
+            reader = csv.reader(handle)
+            header = next(reader, None)
+        except (csv.Error, UnicodeDecodeError) as e:
+            raise InputError(path, f"not a readable CSV file: {e}", record="line 1") from None
+        if header is None:
+            raise InputError(path, "the file is empty")
+        header = [h.strip() for h in header]
+        missing = [c for c in required if c not in header]
+        if missing:
+            raise InputError(
+                path,
+                f"missing column(s) {', '.join(missing)}; the header must name "
+                f"{', '.join(required)}",
+                record="line 1",
+                field=missing[0],
+            )
+        wanted = [c for c in (*required, *optional) if c in header]
+        positions = [header.index(c) for c in wanted]
+        width = len(header)
+        block = {c: [] for c in wanted}
+        lines = []
+        try:
+            for row in reader:
+                line = reader.line_num
+                if not row or (len(row) == 1 and not row[0].strip()):
+                    continue
+                if len(row) != width:
+                    raise InputError(
+                        path, f"expected {width} fields as in the header, got {len(row)}",
+                        record=f"line {line}",
+                    )
+                for c, p in zip(wanted, positions):
+                    block[c].append(row[p].strip())
+                lines.append(line)
+                if len(lines) >= BLOCK_ROWS:
+                    yield block, lines
+                    block = {c: [] for c in wanted}
+                    lines = []
+        except csv.Error as e:
+            raise InputError(path, f"malformed CSV: {e}", record=f"line {reader.line_num}") from None
+        except UnicodeDecodeError:
+            raise InputError(path, "not UTF-8 text", record=f"line {reader.line_num + 1}") from None
+        if lines:
+            yield block, lines
+
+
+def _corner_boxes(path, block, lines):
+    x1, y1, x2, y2 = (_floats(path, block[c], lines, c) for c in ("x_min", "y_min", "x_max", "y_max"))
+    return np.column_stack([x1, y1, x2 - x1, y2 - y1])
+
+
+def read_detections(path):
+    """Columns of a detections CSV: image ids (str), labels, xywh boxes, scores, lines."""
+    ids, labels, boxes, scores, lines = [], [], [], [], []
+    for block, block_lines in read_blocks(path, DETECTION_COLUMNS):
+        ids.extend(block["image_id"])
+        labels.extend(block["label"])
+        boxes.append(_corner_boxes(path, block, block_lines))
+        scores.append(_floats(path, block["score"], block_lines, "score"))
+        lines.append(np.array(block_lines, np.int64))
+    if not ids:
+        return [], [], np.zeros((0, 4)), np.zeros(0), np.zeros(0, np.int64)
+    return ids, labels, np.concatenate(boxes), np.concatenate(scores), np.concatenate(lines)
+
+
+def read_boxes(path):
+    """Columns of a ground-truth boxes CSV."""
+    out = {k: [] for k in ("image_id", "label", "boxes", "crowd", "difficult", "ignore", "area", "lines")}
+    for block, lines in read_blocks(path, BOX_COLUMNS, BOX_OPTIONAL):
+        n = len(lines)
+        out["image_id"].extend(block["image_id"])
+        out["label"].extend(block["label"])
+        out["boxes"].append(_corner_boxes(path, block, lines))
+        for flag in ("crowd", "difficult", "ignore"):
+            out[flag].append(_flags(path, block[flag], lines, flag) if flag in block else np.zeros(n, bool))
+        if "area" in block:
+            values = [v if v else "nan" for v in block["area"]]
+            area = _floats(path, values, lines, "area")
+        else:
+            area = np.full(n, np.nan)
+        out["area"].append(area)
+        out["lines"].append(np.array(lines, np.int64))
+    for key in ("boxes", "crowd", "difficult", "ignore", "area", "lines"):
+        out[key] = np.concatenate(out[key]) if out[key] else np.zeros((0, 4) if key == "boxes" else 0)
+    return out
+
+
+def read_images(path):
+    """Columns of an images table: ids (str), widths, heights, tags, lines."""
+    ids, widths, heights, tags, lines = [], [], [], [], []
+    for block, block_lines in read_blocks(path, IMAGE_COLUMNS, ("tags",)):
+        ids.extend(block["image_id"])
+        widths.append(_floats(path, block["width"], block_lines, "width"))
+        heights.append(_floats(path, block["height"], block_lines, "height"))
+        raw = block.get("tags", [""] * len(block_lines))
+        tags.extend(tuple(t.strip() for t in value.split(";") if t.strip()) for value in raw)
+        lines.extend(block_lines)
+    if not ids:
+        raise InputError(path, "the images table lists no images")
+    return ids, np.concatenate(widths), np.concatenate(heights), tags, np.array(lines)
+
+
+def sniff_is_json(path):
+    with io.open(path, "rb") as f:
+        head = f.read(4096).lstrip()
+    return head[:1] in (b"[", b"{")

@@ -1,0 +1,220 @@
+"""Named, versioned metric presets.
+
+A protocol fixes every choice that changes a number: how detections are matched to
+ground truth, the IoU thresholds (optionally per class), the recall points at which
+precision is interpolated (or the all-point area), the pixel convention, the per-image
+detection cap and the size buckets. Results record the protocol's name and version, so
+a changed preset is a new version and old scorecards stay interpretable.
+"""
+
+import math
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from .errors import InputError
+
+#: Size buckets on box area in px², closed intervals (COCO's convention; an area of
+#: exactly 32² is both small and medium, as in pycocotools).
+COCO_AREA_RANGES = (
+    ("all", 0.0, 1e10),
+    ("small", 0.0, 32.0**2),
+    ("medium", 32.0**2, 96.0**2),
+    ("large", 96.0**2, 1e10),
+)
+
+GREEDY = "greedy"  # COCO: best still-unmatched box, regular boxes before ignored ones
+BEST_OVERLAP = "best_overlap"  # VOC devkit: the single best box, taken or not
+
+
+@dataclass(frozen=True)
+class Protocol:
+    """A metric preset. See ``PRESETS`` for the published ones.
+
+    ``iou_thresholds`` are *slots*: each slot has one threshold per class, taken from
+    ``class_iou_thresholds`` (slot 0 only) when the class is named there. The first
+    slot is the primary one: counts, curves, operating points and miss rate use it.
+    ``recall_points`` of ``None`` means the all-point area under the precision
+    envelope (VOC 2010+).
+    """
+
+    name: str
+    version: int
+    description: str
+    matching: str = GREEDY
+    iou_thresholds: tuple = (0.5,)
+    class_iou_thresholds: dict = field(default_factory=dict)
+    recall_points: tuple | None = None
+    pixel_offset: float = 0.0
+    max_detections: tuple = (None,)
+    area_ranges: tuple = COCO_AREA_RANGES
+    precision_epsilon: float = 0.0
+    coco_summary: bool = False
+
+    @property
+    def max_detections_limit(self):
+        return self.max_detections[-1]
+
+    def threshold_table(self, classes):
+        """IoU thresholds as a ``(slots, classes)`` float64 array."""
+        table = np.empty((len(self.iou_thresholds), len(classes)))
+        for slot, value in enumerate(self.iou_thresholds):
+            table[slot] = value
+        for k, name in enumerate(classes):
+            if name in self.class_iou_thresholds:
+                table[0, k] = self.class_iou_thresholds[name]
+        return table
+
+    def as_dict(self):
+        return {
+            "name": self.name,
+            "version": self.version,
+            "matching": self.matching,
+            "iou_thresholds": [float(t) for t in self.iou_thresholds],
+            "class_iou_thresholds": dict(self.class_iou_thresholds),
+            "recall_points": None
+            if self.recall_points is None
+            else [float(r) for r in self.recall_points],
+            "pixel_offset": self.pixel_offset,
+            "max_detections": list(self.max_detections),
+            "area_ranges": [list(r) for r in self.area_ranges],
+        }
+
+
+PRESETS = {
+    "coco": Protocol(
+        name="coco",
+        version=1,
+        description="COCO-style box AP: IoU 0.50:0.05:0.95, 101 recall points, "
+        "up to 100 detections per image and class, crowd regions (pycocotools 2.0.11).",
+        matching=GREEDY,
+        # Exactly as numpy makes them, because the reference selects by equality.
+        iou_thresholds=tuple(np.linspace(0.5, 0.95, 10).tolist()),
+        recall_points=tuple(np.linspace(0.0, 1.0, 101).tolist()),
+        max_detections=(1, 10, 100),
+        precision_epsilon=float(np.spacing(1)),
+        coco_summary=True,
+    ),
+    "voc07": Protocol(
+        name="voc07",
+        version=1,
+        description="PASCAL VOC 2007: 11-point interpolated AP at overlap >= 0.5 "
+        "(the devkit's test; the paper says 'exceeds'), inclusive pixel boxes, "
+        "difficult boxes neither TP nor FP (Everingham et al., IJCV 2010).",
+        matching=BEST_OVERLAP,
+        iou_thresholds=(0.5,),
+        recall_points=tuple(k / 10 for k in range(11)),
+        pixel_offset=1.0,
+    ),
+    "voc": Protocol(
+        name="voc",
+        version=1,
+        description="PASCAL VOC 2010+: all-point AP, the area under the monotone "
+        "precision envelope; matching as voc07 (Everingham et al., IJCV 2010).",
+        matching=BEST_OVERLAP,
+        iou_thresholds=(0.5,),
+        recall_points=None,
+        pixel_offset=1.0,
+    ),
+    "recall40": Protocol(
+        name="recall40",
+        version=1,
+        description="AP at 40 recall positions 1/40 ... 1 (Simonelli et al., ICCV 2019); "
+        "IoU 0.7 for vehicles, 0.5 for other classes (common practice).",
+        matching=GREEDY,
+        iou_thresholds=(0.5,),
+        class_iou_thresholds={"car": 0.7, "van": 0.7, "bus": 0.7, "truck": 0.7},
+        recall_points=tuple(k / 40 for k in range(1, 41)),
+    ),
+}
+
+
+def get_protocol(name_or_spec):
+    """A preset by name, or a custom protocol from a dict (e.g. loaded from JSON)."""
+    if isinstance(name_or_spec, Protocol):
+        return name_or_spec
+    if isinstance(name_or_spec, str):
+        try:
+            return PRESETS[name_or_spec]
+        except KeyError:
+            raise InputError(
+                "protocol",
+                f"unknown protocol {name_or_spec!r}; known: {', '.join(sorted(PRESETS))}",
+            ) from None
+    return protocol_from_dict(name_or_spec)
+
+
+def _number_list(spec, key, source, *, low, high):
+    values = spec[key]
+    if not isinstance(values, (list, tuple)) or not values:
+        raise InputError(source, "must be a non-empty list of numbers", field=key)
+    for i, value in enumerate(values):
+        if isinstance(value, bool) or not isinstance(value, (int, float)):
+            raise InputError(source, f"item {i} is not a number: {value!r}", field=key)
+        if not (math.isfinite(value) and low <= value <= high):
+            raise InputError(source, f"item {i} = {value} is outside [{low}, {high}]", field=key)
+    return tuple(float(v) for v in values)
+
+
+def protocol_from_dict(spec, source="protocol"):
+    """Build a custom protocol; every field is checked and errors name it.
+
+    Keys: ``name`` (required), ``version``, ``base`` (a preset to start from),
+    ``matching``, ``iou_thresholds``, ``class_iou_thresholds`` (class → IoU),
+    ``recall_points`` (list, or ``"all"`` for the all-point area), ``pixel_offset``.
+    """
+    if not isinstance(spec, dict):
+        raise InputError(source, "a custom protocol must be a JSON object")
+    known = {
+        "name", "version", "base", "description", "matching", "iou_thresholds",
+        "class_iou_thresholds", "recall_points", "pixel_offset", "max_detections",
+    }
+    for key in spec:
+        if key not in known:
+            raise InputError(source, f"unknown key; allowed: {', '.join(sorted(known))}", field=key)
+    if not isinstance(spec.get("name"), str) or not spec["name"]:
+        raise InputError(source, "a custom protocol needs a non-empty name", field="name")
+    base = get_protocol(spec.get("base", "coco"))
+    values = dict(base.__dict__)
+    values.update(name=spec["name"], description=spec.get("description", f"custom ({base.name})"))
+    values["coco_summary"] = False
+    if "version" in spec:
+        if not isinstance(spec["version"], int) or spec["version"] < 1:
+            raise InputError(source, "must be a positive integer", field="version")
+        values["version"] = spec["version"]
+    if "matching" in spec:
+        if spec["matching"] not in (GREEDY, BEST_OVERLAP):
+            raise InputError(source, f"must be '{GREEDY}' or '{BEST_OVERLAP}'", field="matching")
+        values["matching"] = spec["matching"]
+    if "iou_thresholds" in spec:
+        values["iou_thresholds"] = _number_list(spec, "iou_thresholds", source, low=0.0, high=1.0)
+    if "class_iou_thresholds" in spec:
+        table = spec["class_iou_thresholds"]
+        if not isinstance(table, dict):
+            raise InputError(source, "must map class names to IoU", field="class_iou_thresholds")
+        for name, value in table.items():
+            if isinstance(value, bool) or not isinstance(value, (int, float)) or not 0 <= value <= 1:
+                raise InputError(
+                    source, f"IoU for {name!r} must be in [0, 1], got {value!r}",
+                    field="class_iou_thresholds",
+                )
+        values["class_iou_thresholds"] = {str(k): float(v) for k, v in table.items()}
+    if "recall_points" in spec:
+        if spec["recall_points"] == "all":
+            values["recall_points"] = None
+        else:
+            points = _number_list(spec, "recall_points", source, low=0.0, high=1.0)
+            if list(points) != sorted(points):
+                raise InputError(source, "must be ascending", field="recall_points")
+            values["recall_points"] = points
+    if "pixel_offset" in spec:
+        if spec["pixel_offset"] not in (0, 1):
+            raise InputError(source, "must be 0 or 1", field="pixel_offset")
+        values["pixel_offset"] = float(spec["pixel_offset"])
+    if "max_detections" in spec:
+        cap = spec["max_detections"]
+        if cap is not None and (not isinstance(cap, int) or isinstance(cap, bool) or cap < 1):
+            raise InputError(source, "must be a positive integer or null", field="max_detections")
+        values["max_detections"] = (cap,)
+    values["precision_epsilon"] = base.precision_epsilon
+    return Protocol(**values)

@@ -1,0 +1,251 @@
+"""From match records to a JSON-serialisable scorecard."""
+
+import numpy as np
+
+from .curves import (
+    average_precision,
+    cumulative_counts,
+    interpolated_precision,
+    recall_score,
+    true_positive_totals,
+)
+from .errors import InputError
+from .operating_point import best_f1, log_average_miss_rate, threshold_scores
+from .protocols import get_protocol
+from .version import ENGINE_VERSION
+
+#: pycocotools' ``summarize`` order.
+COCO_SUMMARY_KEYS = (
+    "AP", "AP50", "AP75", "AP_small", "AP_medium", "AP_large",
+    "AR1", "AR10", "AR100", "AR_small", "AR_medium", "AR_large",
+)
+CURVE_POINTS = np.linspace(0.0, 1.0, 101)
+
+
+def _number(value):
+    value = float(value)
+    return None if np.isnan(value) else value
+
+
+def mean_present(values):
+    """Mean over the entries of a class-indexed array that are not absent (NaN).
+
+    This is pycocotools' ``mean(s[s > -1])``: the flattening order and numpy's
+    pairwise summation are kept, so the result matches it bit for bit. NaN if every
+    entry is absent (the reference reports -1).
+    """
+    present = values[~np.isnan(values)]
+    return float(np.mean(present)) if present.size else float("nan")
+
+
+def check_weights(weights, n_images):
+    """Image multiplicities as int64; errors name what is wrong."""
+    if weights is None:
+        return None
+    array = np.asarray(weights)
+    if array.shape != (n_images,):
+        raise InputError("weights", f"expected {n_images} image weights, got shape {array.shape}")
+    if array.dtype.kind == "f":
+        if not np.all(np.isfinite(array)) or np.any(array != np.round(array)):
+            raise InputError("weights", "weights are image multiplicities and must be integers")
+    elif array.dtype.kind not in "iub":
+        raise InputError("weights", f"weights must be integers, got dtype {array.dtype}")
+    if np.any(array < 0):
+        raise InputError("weights", "weights must be >= 0")
+    return array.astype(np.int64)
+
+
+def _slot_of(protocol, value):
+    matches = [i for i, t in enumerate(protocol.iou_thresholds) if t == value]
+    return matches[0] if matches else None
+
+
+def _coco_summary(records, protocol, precision_by_area, recall_by_area, weights):
+    """The 12 numbers of pycocotools ``COCOeval.summarize`` (bbox)."""
+    t50, t75 = _slot_of(protocol, 0.5), _slot_of(protocol, 0.75)
+    summary = {
+        "AP": mean_present(precision_by_area[0]),
+        "AP50": mean_present(precision_by_area[0][t50 : t50 + 1]),
+        "AP75": mean_present(precision_by_area[0][t75 : t75 + 1]),
+        "AP_small": mean_present(precision_by_area[1]),
+        "AP_medium": mean_present(precision_by_area[2]),
+        "AP_large": mean_present(precision_by_area[3]),
+    }
+    n_pos = records.n_positives(0, weights)
+    for cap in protocol.max_detections:
+        totals = true_positive_totals(records, area=0, max_detections=cap, weights=weights)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            recall = totals / n_pos
+        recall[:, n_pos == 0] = np.nan
+        summary[f"AR{cap}"] = mean_present(recall)
+    summary["AR_small"] = mean_present(recall_by_area[1])
+    summary["AR_medium"] = mean_present(recall_by_area[2])
+    summary["AR_large"] = mean_present(recall_by_area[3])
+    return {key: summary[key] for key in COCO_SUMMARY_KEYS}
+
+
+def _per_class(records, protocol, curves, ap, precision, recall, ap_by_area,
+               score_threshold, n_images):
+    t50, t75 = _slot_of(protocol, 0.5), _slot_of(protocol, 0.75)
+    out = {}
+    for k, name in enumerate(records.classes):
+        tp, fp = curves.segment(0, k)
+        scores = curves.score[curves.bounds[k] : curves.bounds[k + 1]]
+        n_pos = float(curves.n_pos[k])
+        row = {"AP": _number(np.mean(ap[:, k]))}
+        if protocol.coco_summary:
+            row["AP50"] = _number(precision[t50, :, k].mean())
+            row["AP75"] = _number(precision[t75, :, k].mean())
+        row["recall"] = _number(np.mean(recall[:, k]))
+        for a, area_name in enumerate(records.area_names[1:], start=1):
+            row[f"AP_{area_name}"] = _number(np.mean(ap_by_area[a][:, k]))
+        row.update(
+            iou_threshold=float(records.thresholds[0, k]),
+            gt=n_pos,
+            tp=float(tp[-1]) if len(tp) else 0.0,
+            fp=float(fp[-1]) if len(fp) else 0.0,
+        )
+        if n_pos:
+            curve = interpolated_precision(
+                _one_slot(curves, k), CURVE_POINTS, epsilon=protocol.precision_epsilon
+            )[0, :, 0]
+            final = float(tp[-1]) / n_pos if len(tp) else 0.0
+            reached = CURVE_POINTS <= final
+            row["curve"] = {
+                "recall": CURVE_POINTS[reached].tolist(),
+                "precision": curve[reached].tolist(),
+            }
+        else:
+            row["curve"] = {"recall": [], "precision": []}
+        row["at_threshold"] = threshold_scores(tp, fp, scores, n_pos, score_threshold)
+        row["best_f1"] = best_f1(tp, fp, scores, n_pos)
+        row["miss_rate"] = log_average_miss_rate(tp, fp, n_pos, n_images)
+        out[name] = row
+    return out
+
+
+def _one_slot(curves, k):
+    from .curves import Curves
+
+    s, e = curves.bounds[k], curves.bounds[k + 1]
+    return Curves(
+        tp=curves.tp[:1, s:e],
+        fp=curves.fp[:1, s:e],
+        bounds=np.array([0, e - s]),
+        n_pos=curves.n_pos[k : k + 1],
+        score=curves.score[s:e],
+    )
+
+
+def _pooled_threshold(curves, score_threshold):
+    """Precision / recall / F1 of all classes together at one shared threshold."""
+    tp = fp = 0.0
+    for k in range(len(curves.n_pos)):
+        t, f = curves.segment(0, k)
+        s = curves.score[curves.bounds[k] : curves.bounds[k + 1]]
+        kept = int(np.searchsorted(-s, -score_threshold, side="right"))
+        if kept:
+            tp += float(t[kept - 1])
+            fp += float(f[kept - 1])
+    n_pos = float(curves.n_pos.sum())
+    return {
+        "threshold": float(score_threshold),
+        "tp": tp,
+        "fp": fp,
+        "precision": tp / (tp + fp) if tp + fp else None,
+        "recall": tp / n_pos if n_pos else None,
+        "f1": 2 * tp / (tp + fp + n_pos) if n_pos else None,
+    }
+
+
+def _area_scores(records, protocol, area, weights):
+    curves = cumulative_counts(
+        records, area=area, max_detections=protocol.max_detections_limit, weights=weights
+    )
+    precision = None
+    if protocol.recall_points is None:
+        ap = average_precision(curves, protocol)
+    else:
+        precision = interpolated_precision(
+            curves, protocol.recall_points, epsilon=protocol.precision_epsilon
+        )
+        ap = precision.mean(axis=1)
+    return curves, precision, ap, recall_score(curves)
+
+
+def headline(records, protocol, *, weights=None):
+    """The headline AP (mean over present classes and all slots) and AP per class.
+
+    The cheap path for slices and bootstrap replicates: one size bucket, no curves.
+    """
+    protocol = get_protocol(protocol)
+    _, precision, ap, _ = _area_scores(records, protocol, 0, weights)
+    mean = mean_present(precision) if precision is not None else mean_present(ap)
+    return mean, ap.mean(axis=0)
+
+
+def score_records(records, protocol, *, weights=None, tag_masks=None, score_threshold=0.5):
+    """The scorecard of matched detections under ``protocol``.
+
+    Parameters
+    ----------
+    records : MatchRecords
+    protocol : Protocol or preset name
+    weights : int array (n_images,) or None
+        Image multiplicities (bootstrap resample, or a 0/1 selection).
+    tag_masks : dict tag -> 0/1 int array (n_images,), optional
+        Adds a slice per image tag.
+    score_threshold : float
+        Score cut for the operating point.
+
+    Returns
+    -------
+    dict with ``protocol``, ``protocol_version``, ``engine_version``, ``summary``,
+    ``per_class``, ``at_threshold``, ``slices``. Absent values are None.
+    """
+    protocol = get_protocol(protocol)
+    weights = check_weights(weights, records.n_images)
+    n_images = records.n_images if weights is None else int(weights.sum())
+
+    by_area = [_area_scores(records, protocol, a, weights) for a in range(len(records.area_names))]
+    curves, precision, ap, recall = by_area[0]
+    ap_by_area = [entry[2] for entry in by_area]
+
+    if protocol.coco_summary:
+        summary = _coco_summary(
+            records, protocol, [e[1] for e in by_area], [e[3] for e in by_area], weights
+        )
+    else:
+        summary = {"AP": mean_present(ap)}
+        for a, name in enumerate(records.area_names[1:], start=1):
+            summary[f"AP_{name}"] = mean_present(ap_by_area[a])
+        summary["recall"] = mean_present(recall)
+
+    result = {
+        "protocol": protocol.name,
+        "protocol_version": protocol.version,
+        "engine_version": ENGINE_VERSION,
+        "summary": {k: _number(v) for k, v in summary.items()},
+        "per_class": _per_class(
+            records, protocol, curves, ap, precision, recall, ap_by_area,
+            score_threshold, n_images,
+        ),
+        "at_threshold": _pooled_threshold(curves, score_threshold),
+        "slices": {"size": {}, "tag": {}},
+    }
+    for a, name in enumerate(records.area_names[1:], start=1):
+        result["slices"]["size"][name] = {
+            "AP": _number(mean_present(ap_by_area[a])),
+            "per_class": {
+                c: _number(np.mean(ap_by_area[a][:, k])) for k, c in enumerate(records.classes)
+            },
+        }
+    for tag, mask in sorted((tag_masks or {}).items()):
+        tag_weights = mask if weights is None else mask * weights
+        mean, per_class = headline(records, protocol, weights=tag_weights)
+        result["slices"]["tag"][tag] = {
+            "images": int(np.count_nonzero(tag_weights)),
+            "AP": _number(mean),
+            "per_class": {c: _number(per_class[k]) for k, c in enumerate(records.classes)},
+        }
+    return result

@@ -1,0 +1,3 @@
+"""Engine version, recorded in every result: a change to any number bumps it."""
+
+ENGINE_VERSION = "1.0.0"
