@@ -5,6 +5,12 @@ One kernel serves every protocol: walk each class's detections in accumulation o
 (ignored detections add nothing), then read precision and recall off the sums.
 Weights are integer multiplicities, so the sums are exact in float64 and a weight of
 2 gives bit for bit the numbers of that image included twice.
+
+Average precision only ever reads the curve at true positives: recall rises only
+there, and a false positive has lower precision than the TP before it, so it can
+never be the maximum of the envelope. ``true_positive_points`` therefore computes
+the counts at TPs only (a few per ground-truth box) instead of at every detection;
+numbers are identical, work drops from slots x detections to slots x boxes.
 """
 
 from dataclasses import dataclass
@@ -14,11 +20,11 @@ import numpy as np
 
 @dataclass(frozen=True, eq=False)
 class Curves:
-    """Cumulative sums for one size bucket and detection cap.
+    """Cumulative sums at every detection, for one size bucket and IoU slot.
 
-    ``tp[t, i]``, ``fp[t, i]``: weighted TP / FP count among the detections of
-    detection i's class ranked at or above i, at IoU slot t (float64).
-    ``bounds[k]:bounds[k + 1]`` is class k's run; ``n_pos[k]`` its positives.
+    ``tp[i]``, ``fp[i]``: weighted TP / FP count among the detections of detection
+    i's class ranked at or above i (float64). ``bounds[k]:bounds[k + 1]`` is class
+    k's run; ``n_pos[k]`` its positives; ``score`` the detection scores.
     """
 
     tp: np.ndarray
@@ -27,53 +33,76 @@ class Curves:
     n_pos: np.ndarray
     score: np.ndarray
 
-    def segment(self, slot, k):
+    def segment(self, k):
         s, e = self.bounds[k], self.bounds[k + 1]
-        return self.tp[slot, s:e], self.fp[slot, s:e]
+        return self.tp[s:e], self.fp[s:e], self.score[s:e]
 
 
-def _detection_weights(records, max_detections, weights):
+@dataclass(frozen=True, eq=False)
+class TruePositivePoints:
+    """The curve at true positives only, for every IoU slot and class.
+
+    Entries ``runs[t * K + k] : runs[t * K + k + 1]`` belong to slot t, class k, in
+    rank order; ``tp`` and ``fp`` are the cumulative counts at each of them.
+    ``totals[t, k]`` is the final TP count.
+    """
+
+    tp: np.ndarray
+    fp: np.ndarray
+    runs: np.ndarray
+    n_pos: np.ndarray
+    totals: np.ndarray
+
+    @property
+    def n_slots(self):
+        return self.totals.shape[0]
+
+    def run(self, slot, k):
+        i = slot * len(self.n_pos) + k
+        s, e = self.runs[i], self.runs[i + 1]
+        return self.tp[s:e], self.fp[s:e]
+
+
+def detection_weights(records, max_detections=None, weights=None):
+    """Weight of each detection: its image's multiplicity, 0 beyond the cap."""
     w = np.ones(records.n_detections, np.int64) if weights is None else weights[records.det_image]
     if max_detections is not None:
         w = np.where(records.det_rank < max_detections, w, 0)
     return w
 
 
-def cumulative_counts(records, *, area=0, max_detections=None, weights=None):
+def _relative(cumulative, run_bounds):
+    """Turn one running sum over consecutive runs into per-run running sums."""
+    before = run_bounds[:-1] - 1
+    base = np.where(before >= 0, cumulative[np.maximum(before, 0)] if len(cumulative) else 0, 0)
+    return cumulative - np.repeat(base, np.diff(run_bounds))
+
+
+def cumulative_counts(records, *, area=0, slot=0, max_detections=None, weights=None):
     """Weighted running TP and FP sums along each class's ranked detections.
 
     .. math:: TP_i = \\sum_{j \\le i} w_j [j \\text{ is TP}], \\quad
               FP_i = \\sum_{j \\le i} w_j [j \\text{ is FP}]
 
     over the detections j of one class in descending score order, where w_j is the
-    weight of detection j's image (pycocotools ``COCOeval.accumulate``; weights give
-    the paired bootstrap of Efron & Tibshirani, 1993, without re-matching).
+    weight of detection j's image (pycocotools ``COCOeval.accumulate``).
 
     Parameters
     ----------
     records : MatchRecords
-    area : int, keyword-only
-        Size bucket index (0 = all).
+    area, slot : int, keyword-only
+        Size bucket (0 = all) and IoU slot (0 = primary).
     max_detections : int or None
         Keep only detections ranked below this within their image and class.
     weights : int64 ndarray of shape (n_images,) or None
         Image multiplicities; None means 1 for every image.
-
-    Returns
-    -------
-    Curves
     """
-    w = _detection_weights(records, max_detections, weights)
-    tp_flags = records.tp[area]
-    fp_flags = ~(tp_flags | records.ignored[area])
-    tp = np.cumsum(tp_flags * w, axis=1)
-    fp = np.cumsum(fp_flags * w, axis=1)
+    w = detection_weights(records, max_detections, weights)
+    is_tp, is_ignored = records.outcomes(area, slot)
+    is_fp = ~(is_tp | is_ignored)
     bounds = records.class_bounds()
-    counts = np.diff(bounds)
-    before = bounds[:-1] - 1
-    for cum in (tp, fp):
-        base = np.where(before >= 0, cum[:, np.maximum(before, 0)], 0)
-        cum -= np.repeat(base, counts, axis=1)
+    tp = _relative(np.cumsum(np.where(is_tp, w, 0)), bounds)
+    fp = _relative(np.cumsum(np.where(is_fp, w, 0)), bounds)
     return Curves(
         tp=tp.astype(np.float64),
         fp=fp.astype(np.float64),
@@ -83,40 +112,66 @@ def cumulative_counts(records, *, area=0, max_detections=None, weights=None):
     )
 
 
-def true_positive_totals(records, *, area=0, max_detections=None, weights=None):
-    """Total weighted TP per slot and class, shape (slots, classes)."""
-    w = _detection_weights(records, max_detections, weights)
+def true_positive_points(records, *, area=0, max_detections=None, weights=None):
+    """Cumulative TP and FP counts at every true positive, all slots at once.
+
+    FP at a TP = (counted detections ranked at or above it) - TP, where a detection
+    counts unless ignored. Counted totals are one running sum of the unmatched rule
+    plus sparse corrections where a match changes it, so no slots x detections
+    array is ever summed.
+
+    Returns
+    -------
+    TruePositivePoints
+    """
+    sparse = records.sparse_outcomes(area)
     n_classes = len(records.classes)
-    return np.stack(
-        [
-            np.bincount(records.det_class, weights=row * w, minlength=n_classes)
-            for row in records.tp[area]
-        ]
+    n_slots = records.n_slots
+    n = records.n_detections
+    w = detection_weights(records, max_detections, weights)
+    bounds = records.class_bounds()
+
+    slot, det = sparse["tp_slot"], sparse["tp_det"]
+    w_tp = w[det]
+    if max_detections is not None or weights is not None:
+        keep = w_tp > 0
+        slot, det, w_tp = slot[keep], det[keep], w_tp[keep]
+    cls = records.det_class[det]
+    run_bounds = np.searchsorted(slot * n_classes + cls, np.arange(n_slots * n_classes + 1))
+    tp = _relative(np.cumsum(w_tp), run_bounds)
+
+    counted = np.cumsum(np.where(sparse["counted"], w, 0))
+    class_start = bounds[cls]
+    counted_before = np.where(class_start > 0, counted[np.maximum(class_start - 1, 0)], 0)
+    non_ignored = counted[det] - counted_before
+    if len(sparse["delta_key"]):
+        delta = np.r_[0, np.cumsum(sparse["delta_sign"] * w[sparse["delta_det"]])]
+        upto = np.searchsorted(sparse["delta_key"], slot * n + det, "right")
+        start = np.searchsorted(sparse["delta_key"], slot * n + class_start - 1, "right")
+        non_ignored = non_ignored + delta[upto] - delta[start]
+
+    last = run_bounds[1:] - 1
+    has = np.diff(run_bounds) > 0
+    totals = np.where(has, tp[np.maximum(last, 0)] if len(tp) else 0, 0)
+    return TruePositivePoints(
+        tp=tp.astype(np.float64),
+        fp=(non_ignored - tp).astype(np.float64),
+        runs=run_bounds,
+        n_pos=records.n_positives(area, weights),
+        totals=totals.reshape(n_slots, n_classes).astype(np.float64),
     )
 
 
-def recall_score(curves, totals=None):
-    """Final recall TP / n_pos per slot and class; NaN where a class has no positives.
+def recall_score(points):
+    """Final recall TP / n_pos per slot and class; NaN for a class with no positives.
 
-    pycocotools reports ``rc[-1]`` (0 without detections); the same number is the
-    total TP over n_pos because TP sums are exact integers.
+    pycocotools reports ``rc[-1]`` (0 without detections): the same number, as TP
+    sums are exact integers.
     """
-    if totals is None:
-        last = curves.bounds[1:] - 1
-        has = np.diff(curves.bounds) > 0
-        totals = np.where(has, curves.tp[:, np.maximum(last, 0)], 0.0)
     with np.errstate(divide="ignore", invalid="ignore"):
-        recall = totals / curves.n_pos
-    recall[:, curves.n_pos == 0] = np.nan
+        recall = points.totals / points.n_pos
+    recall[:, points.n_pos == 0] = np.nan
     return recall
-
-
-def _precision(tp, fp, epsilon):
-    if epsilon:
-        return tp / (fp + tp + epsilon)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        precision = tp / (fp + tp)
-    return np.nan_to_num(precision, nan=0.0)
 
 
 def envelope(precision):
@@ -127,77 +182,75 @@ def envelope(precision):
     return np.maximum.accumulate(precision[::-1])[::-1]
 
 
-def interpolated_precision(curves, recall_points, *, epsilon=0.0):
+def interpolated_precision(points, recall_points, *, epsilon=0.0, slots=None):
     """Envelope precision at each recall point, shape (slots, points, classes).
 
     .. math:: p_{\\mathrm{interp}}(r) = \\max_{i : R_i \\ge r} P_i, \\quad
               P_i = \\frac{TP_i}{TP_i + FP_i + \\varepsilon}, \\quad R_i = \\frac{TP_i}{n_{pos}}
 
-    0 when no point reaches r; NaN for a class without positives (absent). With
+    0 when no point reaches r; NaN for a class without positives (absent); ``slots``
+    restricts the output to those IoU slots. With
     ``epsilon`` = float64 machine epsilon and the 101 points of ``linspace(0, 1, 101)``
     this is pycocotools' ``precision`` array; 11 points k/10 give VOC 2007
     (Everingham et al., IJCV 2010), 40 points k/40 give Simonelli et al. (ICCV 2019).
 
     Examples
     --------
-    A single detection that is correct, with one positive: precision 1 up to recall 1.
+    One correct detection, one positive: precision 1 up to recall 1.
 
     >>> import numpy as np
-    >>> c = Curves(np.array([[1.]]), np.array([[0.]]), np.array([0, 1]), np.array([1.]), None)
-    >>> interpolated_precision(c, [0.0, 0.5, 1.0])[0, :, 0].tolist()
+    >>> p = TruePositivePoints(np.array([1.]), np.array([0.]), np.array([0, 1]),
+    ...                        np.array([1.]), np.array([[1.]]))
+    >>> interpolated_precision(p, [0.0, 0.5, 1.0])[0, :, 0].tolist()
     [1.0, 1.0, 1.0]
     """
     recall_points = np.asarray(recall_points, dtype=np.float64)
-    n_slots, n_classes = curves.tp.shape[0], len(curves.n_pos)
-    out = np.zeros((n_slots, len(recall_points), n_classes))
-    for k in range(n_classes):
-        if curves.n_pos[k] == 0:
-            out[:, :, k] = np.nan
-            continue
-        for t in range(n_slots):
-            tp, fp = curves.segment(t, k)
+    n_classes = len(points.n_pos)
+    slots = range(points.n_slots) if slots is None else slots
+    out = np.zeros((len(slots), len(recall_points), n_classes))
+    out[:, :, points.n_pos == 0] = np.nan
+    for i, t in enumerate(slots):
+        for k in np.flatnonzero(points.n_pos > 0):
+            tp, fp = points.run(t, k)
             if not len(tp):
                 continue
-            recall = tp / curves.n_pos[k]
-            env = envelope(_precision(tp, fp, epsilon))
+            recall = tp / points.n_pos[k]
+            env = envelope(tp / (fp + tp + epsilon))
             index = np.searchsorted(recall, recall_points, side="left")
             reached = index < len(tp)
-            out[t, reached, k] = env[index[reached]]
+            out[i, reached, k] = env[index[reached]]
     return out
 
 
-def all_point_average_precision(curves):
+def all_point_average_precision(points):
     """Area under the precision envelope, shape (slots, classes) (VOC 2010+).
 
-    .. math:: AP = \\sum_i (r_i - r_{i-1})\\, \\hat p_i
+    .. math:: AP = \\sum_i (r_i - r_{i-1})\\, \\hat p_i, \\quad r_0 = 0
 
-    over the points where recall changes, with sentinels (0, 0) before the first
-    point and (1, 0) after the last (PASCAL VOC devkit ``VOCap.m``). Precision is
-    TP / (TP + FP) without epsilon, as in the devkit; NaN for absent classes.
+    over the points where recall changes, the envelope closed by (1, 0) (PASCAL VOC
+    devkit ``VOCap.m``). Precision is TP / (TP + FP) without epsilon, as in the
+    devkit. NaN for absent classes.
     """
-    n_slots, n_classes = curves.tp.shape[0], len(curves.n_pos)
-    out = np.zeros((n_slots, n_classes))
-    for k in range(n_classes):
-        if curves.n_pos[k] == 0:
-            out[:, k] = np.nan
-            continue
-        for t in range(n_slots):
-            tp, fp = curves.segment(t, k)
+    n_classes = len(points.n_pos)
+    out = np.zeros((points.n_slots, n_classes))
+    out[:, points.n_pos == 0] = np.nan
+    for t in range(points.n_slots):
+        for k in np.flatnonzero(points.n_pos > 0):
+            tp, fp = points.run(t, k)
             if not len(tp):
                 continue
-            recall = np.r_[0.0, tp / curves.n_pos[k], 1.0]
-            env = envelope(np.r_[0.0, _precision(tp, fp, 0.0), 0.0])
-            change = np.flatnonzero(recall[1:] != recall[:-1]) + 1
-            out[t, k] = np.sum((recall[change] - recall[change - 1]) * env[change])
+            recall = tp / points.n_pos[k]
+            env = envelope(tp / (fp + tp))
+            out[t, k] = np.sum(np.diff(np.r_[0.0, recall]) * env)
     return out
 
 
-def average_precision(curves, protocol):
+def average_precision(points, protocol):
     """AP per slot and class under ``protocol``: mean interpolated precision over its
     recall points, or the all-point area when it has none. NaN = absent class."""
     if protocol.recall_points is None:
-        return all_point_average_precision(curves)
+        return all_point_average_precision(points)
     precision = interpolated_precision(
-        curves, protocol.recall_points, epsilon=protocol.precision_epsilon
+        points, protocol.recall_points, epsilon=protocol.precision_epsilon
     )
     return precision.mean(axis=1)

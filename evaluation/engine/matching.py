@@ -23,13 +23,8 @@ from .boxes import pair_iou
 from .protocols import BEST_OVERLAP
 from .records import MatchRecords
 
-_RANK_KEY = np.int64(1) << 32
-
-
-def _group_order(group, score):
-    """Indices sorting by group, then score descending, then file order (stable)."""
-    order = np.argsort(-score, kind="stable")
-    return order[np.argsort(group[order], kind="stable")]
+_DENSE_GROUPS = 20_000_000  # up to this many (image, class) groups, index them directly
+_REGULAR = np.int32(1) << 24  # added to the key of a regular (non-ignored) box
 
 
 def _ranks(sorted_group):
@@ -44,9 +39,15 @@ def _candidate_pairs(truth, det_boxes, det_group, protocol, min_threshold):
     n_classes = len(truth.classes)
     gt_group = truth.box_image.astype(np.int64) * n_classes + truth.box_class
     gt_order = np.argsort(gt_group, kind="stable")
-    gt_sorted = gt_group[gt_order]
-    lo = np.searchsorted(gt_sorted, det_group, "left")
-    counts = np.searchsorted(gt_sorted, det_group, "right") - lo
+    n_groups = truth.n_images * n_classes
+    if n_groups <= _DENSE_GROUPS:
+        per_group = np.bincount(gt_group, minlength=n_groups)
+        counts = per_group[det_group]
+        lo = (np.cumsum(per_group) - per_group)[det_group]
+    else:
+        gt_sorted = gt_group[gt_order]
+        lo = np.searchsorted(gt_sorted, det_group, "left")
+        counts = np.searchsorted(gt_sorted, det_group, "right") - lo
     total = int(counts.sum())
     pair_det = np.repeat(np.arange(len(det_group)), counts)
     offsets = np.arange(total) - np.repeat(np.cumsum(counts) - counts, counts)
@@ -66,6 +67,34 @@ def _outside(area, area_ranges):
     return np.stack([(area < lo) | (area > hi) for _, lo, hi in area_ranges])
 
 
+def _narrow(values, largest):
+    """The smallest integer type for ``values``: numpy sorts 16-bit keys by radix."""
+    for dtype in (np.uint16, np.uint32):
+        if largest < np.iinfo(dtype).max:
+            return values.astype(dtype)
+    return values
+
+
+def _orders(predictions, n_classes):
+    """Accumulation order (class, score desc, image, file) and ranks within groups.
+
+    One score sort serves both orders: pycocotools ranks detections within an
+    (image, class) by descending score with file order on ties, and accumulates a
+    class over images in ascending id order with the same tie rule.
+    """
+    image = _narrow(predictions.image, len(predictions.image) and predictions.image.max())
+    by_image = np.argsort(image, kind="stable")
+    by_score = by_image[np.argsort(-predictions.score[by_image], kind="stable")]
+    cls = _narrow(predictions.cls, n_classes)
+    acc = by_score[np.argsort(cls[by_score], kind="stable")]
+    within = np.argsort(image[acc], kind="stable")  # (image, class, score, file)
+    grouped = acc[within]
+    group = predictions.image[grouped].astype(np.int64) * n_classes + predictions.cls[grouped]
+    rank = np.empty(len(acc), np.int64)
+    rank[within] = _ranks(group)
+    return acc, rank
+
+
 def match(truth, predictions, protocol):
     """Match ``predictions`` to ``truth`` under ``protocol``.
 
@@ -73,25 +102,23 @@ def match(truth, predictions, protocol):
     -------
     MatchRecords
         Detections beyond the protocol's per-image-and-class cap are left out, as the
-        reference does. ``tp[a, t, i]``: detection i is a true positive for size
-        bucket a and IoU slot t; ``ignored``: it counts neither way (it matched an
-        ignored box, or is unmatched with an area outside the bucket).
+        reference does. One match row per (size bucket, IoU slot, detection) that
+        took a box; ``MatchRecords.outcomes`` turns them into TP / ignored flags.
     """
     n_classes = len(truth.classes)
     thresholds = protocol.threshold_table(truth.classes)
     effective = np.minimum(thresholds, 1 - 1e-10)  # pycocotools caps at 1 - 1e-10
     n_slots, n_areas = len(thresholds), len(protocol.area_ranges)
 
-    det_group = predictions.image.astype(np.int64) * n_classes + predictions.cls
-    order = _group_order(det_group, predictions.score)
-    rank = _ranks(det_group[order])
+    order, rank = _orders(predictions, n_classes)
     cap = protocol.max_detections_limit
     if cap is not None:
         keep = rank < cap
         order, rank = order[keep], rank[keep]
-    det_group = det_group[order]
+    det_image = predictions.image[order]
     det_cls = predictions.cls[order]
     det_boxes = predictions.boxes[order]
+    det_group = det_image.astype(np.int64) * n_classes + det_cls
     det_area = det_boxes[:, 2] * det_boxes[:, 3]
     n_det = len(order)
 
@@ -103,129 +130,142 @@ def match(truth, predictions, protocol):
         truth, det_boxes, det_group, protocol, float(effective.min(initial=1.0))
     )
     if protocol.matching == BEST_OVERLAP:
-        matched, tp, ignored = _best_overlap(
-            pair_det, pair_gt, pair_iou_, det_cls, effective, gt_ignored, det_outside, n_det
+        config, det, box, iou = _best_overlap(
+            pair_det, pair_gt, pair_iou_, det_cls, effective, gt_ignored
         )
     else:
-        matched, tp, ignored = _greedy(
-            pair_det, pair_gt, pair_iou_, rank, det_cls, effective,
-            gt_ignored, det_outside, truth.crowd, n_det,
+        config, det, box, iou = _greedy(
+            pair_det, pair_gt, pair_iou_, rank, det_group, det_cls, effective, gt_ignored,
+            truth.crowd,
         )
 
-    matched_iou = np.zeros(n_det)
-    hit = np.flatnonzero(matched[0] >= 0)
-    if len(hit):
-        pair_key = pair_det * truth.n_boxes + pair_gt
-        by_key = np.argsort(pair_key)
-        where = np.searchsorted(pair_key[by_key], hit * truth.n_boxes + matched[0][hit])
-        matched_iou[hit] = pair_iou_[by_key[where]]
-
-    det_score = predictions.score[order]
-    det_image = predictions.image[order]
-    acc = np.argsort(-det_score, kind="stable")  # (image, class, file) order survives ties
-    acc = acc[np.argsort(det_cls[acc], kind="stable")]
     return MatchRecords(
         protocol=protocol.name,
         classes=tuple(truth.classes),
         area_names=tuple(name for name, _, _ in protocol.area_ranges),
         thresholds=thresholds,
         n_images=truth.n_images,
-        det_class=det_cls[acc].astype(np.int32),
-        det_image=det_image[acc].astype(np.int32),
-        det_score=det_score[acc],
-        det_rank=rank[acc].astype(np.int32),
-        det_order=order[acc].astype(np.int64),
-        tp=tp.reshape(n_areas, n_slots, n_det)[:, :, acc],
-        ignored=ignored.reshape(n_areas, n_slots, n_det)[:, :, acc],
-        matched_gt=matched[:n_slots][:, acc].astype(np.int32),
-        matched_iou=matched_iou[acc],
+        det_class=det_cls.astype(np.int32),
+        det_image=det_image.astype(np.int32),
+        det_score=predictions.score[order],
+        det_rank=rank.astype(np.int32),
+        det_order=order.astype(np.int64),
+        det_outside=det_outside,
+        match_config=config,
+        match_det=det,
+        match_box=box,
+        match_iou=iou,
         gt_class=truth.box_class.astype(np.int32),
         gt_image=truth.box_image.astype(np.int32),
         gt_ignored=gt_ignored,
     )
 
 
-def _status(matched, gt_ignored, det_outside, n_slots):
-    """TP / ignored flags from matches, config c = area * n_slots + slot."""
-    area_of_config = np.repeat(np.arange(len(gt_ignored)), n_slots)
-    is_matched = matched >= 0
-    safe = np.where(is_matched, matched, 0)
-    ignored = np.where(
-        is_matched,
-        gt_ignored[area_of_config[:, None], safe],
-        det_outside[area_of_config],
+def _greedy(pair_det, pair_gt, pair_iou_, rank, det_group, det_cls, effective,
+            gt_ignored, crowd):
+    """Sparse matches ``(config, detection, box, iou)``; config = area * slots + slot.
+
+    A group (image, class) in which no detection has two candidate boxes needs no
+    walk: each box goes to its highest-ranked claimant at or above the threshold
+    (every claimant, for a crowd region), the same in every size bucket. Only the
+    other groups are walked rank by rank.
+    """
+    n_slots, n_areas = len(effective), len(gt_ignored)
+    candidates = np.bincount(pair_det, minlength=len(det_group))
+    crowded = np.unique(det_group[pair_det[candidates[pair_det] > 1]])
+    walk = np.isin(det_group[pair_det], crowded, assume_unique=False)
+    found = _first_claims(
+        pair_det[~walk], pair_gt[~walk], pair_iou_[~walk], det_cls, effective, crowd, n_areas
     )
-    return is_matched & ~ignored, ignored
+    found += _walk_ranks(
+        pair_det[walk], pair_gt[walk], pair_iou_[walk], rank, det_cls, effective,
+        gt_ignored, crowd,
+    )
+    return _concat(found)
 
 
-def _greedy(pair_det, pair_gt, pair_iou_, rank, det_cls, effective,
-            gt_ignored, det_outside, crowd, n_det):
+def _first_claims(pair_det, pair_gt, pair_iou_, det_cls, effective, crowd, n_areas):
+    n_slots = len(effective)
+    by_box = np.lexsort((pair_det, pair_gt))  # detections are in rank order within a group
+    pair_det, pair_gt, pair_iou_ = pair_det[by_box], pair_gt[by_box], pair_iou_[by_box]
+    found = []
+    for t in range(n_slots):
+        reaches = np.flatnonzero(pair_iou_ >= effective[t, det_cls[pair_det]])
+        ordered = pair_gt[reaches]
+        first = np.r_[True, ordered[1:] != ordered[:-1]] | crowd[ordered]
+        take = reaches[first]
+        for a in range(n_areas):
+            found.append((np.full(len(take), a * n_slots + t), pair_det[take], pair_gt[take],
+                          pair_iou_[take]))
+    return found
+
+
+def _walk_ranks(pair_det, pair_gt, pair_iou_, rank, det_cls, effective, gt_ignored, crowd):
     n_slots, n_areas = len(effective), len(gt_ignored)
     n_configs = n_slots * n_areas
-    matched = np.full((n_configs, n_det), -1, np.int64)
+    if not len(pair_det):
+        return []
     taken = np.zeros((n_configs, gt_ignored.shape[1]), bool)
-    regular = np.repeat((~gt_ignored).astype(np.int64), n_slots, axis=0) * _RANK_KEY
+    regular = np.repeat(~gt_ignored, n_slots, axis=0)
 
     # Within each detection: ascending IoU, then file order, so the *last* maximum
     # (the reference's tie rule) has the highest static rank.
     by_det = np.lexsort((pair_gt, pair_iou_, pair_det))
     pair_det, pair_gt, pair_iou_ = pair_det[by_det], pair_gt[by_det], pair_iou_[by_det]
     first_pair = np.searchsorted(pair_det, pair_det, "left")
-    static_rank = np.arange(len(pair_det)) - first_pair
+    static_rank = (np.arange(len(pair_det)) - first_pair + 1).astype(np.int32)
     by_rank = np.argsort(rank[pair_det], kind="stable")
     pair_det, pair_gt, pair_iou_, static_rank = (
         a[by_rank] for a in (pair_det, pair_gt, pair_iou_, static_rank)
     )
     pair_rank = rank[pair_det]
     bounds = np.flatnonzero(np.r_[True, pair_rank[1:] != pair_rank[:-1], True])
+    found = []
     for b0, b1 in zip(bounds[:-1], bounds[1:]):
         d, g = pair_det[b0:b1], pair_gt[b0:b1]
         starts = np.flatnonzero(np.r_[True, d[1:] != d[:-1]])
         reaches = pair_iou_[b0:b1] >= effective[:, det_cls[d]]  # (slots, pairs)
-        available = ~taken[:, g] | crowd[g]
-        eligible = available & np.tile(reaches, (n_areas, 1))
-        key = np.where(eligible, regular[:, g] + static_rank[b0:b1] + 1, 0)
+        eligible = (~taken[:, g] | crowd[g]).reshape(n_areas, n_slots, -1) & reaches
+        key = np.where(regular[:, g], _REGULAR, 0) + static_rank[b0:b1]
+        key = np.where(eligible.reshape(n_configs, -1), key, 0)
         best = np.maximum.reduceat(key, starts, axis=1)
         config, det = np.nonzero(best)
-        chosen = starts[det] + (best[config, det] - 1) % _RANK_KEY
+        chosen = starts[det] + (best[config, det] % _REGULAR) - 1
         box = g[chosen]
         taken[config, box] = True
-        matched[config, d[starts[det]]] = box
-    tp, ignored = _status(matched, gt_ignored, det_outside, n_slots)
-    return matched, tp, ignored
+        found.append((config, d[starts[det]], box, pair_iou_[b0:b1][chosen]))
+    return found
 
 
-def _best_overlap(pair_det, pair_gt, pair_iou_, det_cls, effective,
-                  gt_ignored, det_outside, n_det):
+def _concat(found):
+    """Stack the per-step matches into (config, det, box) int32 and IoU arrays."""
+    if not found:
+        return (*(np.zeros(0, np.int32),) * 3, np.zeros(0))
+    columns = [np.concatenate([f[i] for f in found]) for i in range(4)]
+    return (*(c.astype(np.int32) for c in columns[:3]), columns[3])
+
+
+def _best_overlap(pair_det, pair_gt, pair_iou_, det_cls, effective, gt_ignored):
+    """Sparse matches ``(config, detection, box)`` by the VOC devkit's rule."""
     n_slots, n_areas = len(effective), len(gt_ignored)
     # Highest overlap per detection; on ties the first box in file order (MATLAB max).
     by_det = np.lexsort((pair_gt, -pair_iou_, pair_det))
     pair_det, pair_gt, pair_iou_ = pair_det[by_det], pair_gt[by_det], pair_iou_[by_det]
     first = np.r_[True, pair_det[1:] != pair_det[:-1]]
-    best_gt = np.full(n_det, -1, np.int64)
-    best_iou = np.full(n_det, -1.0)
-    best_gt[pair_det[first]] = pair_gt[first]
-    best_iou[pair_det[first]] = pair_iou_[first]
-
-    matched = np.full((n_slots * n_areas, n_det), -1, np.int64)
-    tp = np.zeros((n_slots * n_areas, n_det), bool)
-    ignored = np.zeros((n_slots * n_areas, n_det), bool)
-    safe_gt = np.where(best_gt >= 0, best_gt, 0)
-    for a in range(n_areas):
-        box_ignored = gt_ignored[a, safe_gt]
-        for t in range(n_slots):
-            c = a * n_slots + t
-            reaches = (best_gt >= 0) & (best_iou >= effective[t, det_cls])
-            ignored[c] = np.where(reaches, box_ignored, det_outside[a])
-            candidates = np.flatnonzero(reaches & ~box_ignored)
-            # Detections are in (image, class, score) order, so the first claim on a
-            # box after a stable sort by box is the highest-scored one: the TP.
-            boxes = best_gt[candidates]
-            by_box = np.argsort(boxes, kind="stable")
-            first_claim = np.r_[True, boxes[by_box][1:] != boxes[by_box][:-1]]
-            winners = candidates[by_box[first_claim]]
-            tp[c, winners] = True
-            matched[c, winners] = best_gt[winners]
-            difficult_hits = np.flatnonzero(reaches & box_ignored)
-            matched[c, difficult_hits] = best_gt[difficult_hits]
-    return matched, tp, ignored
+    det, box, best_iou = pair_det[first], pair_gt[first], pair_iou_[first]
+    found = []
+    for t in range(n_slots):
+        reaches = best_iou >= effective[t, det_cls[det]]
+        d, g, iou = det[reaches], box[reaches], best_iou[reaches]
+        for a in range(n_areas):
+            ignored = gt_ignored[a, g]
+            # Detections are in accumulation order; a stable sort by (box, rank)
+            # puts each box's highest-scored claim first: that one is the TP, later
+            # claims are duplicates (false positives, so not recorded as matches).
+            claims = np.flatnonzero(~ignored)
+            by_box = np.lexsort((d[claims], g[claims]))
+            ordered = g[claims][by_box]
+            first_claim = claims[by_box[np.r_[True, ordered[1:] != ordered[:-1]]]]
+            keep = np.r_[first_claim, np.flatnonzero(ignored)]
+            found.append((np.full(len(keep), a * n_slots + t), d[keep], g[keep], iou[keep]))
+    return _concat(found)

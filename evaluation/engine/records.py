@@ -2,11 +2,12 @@
 
 Detections are stored in *accumulation order* — class, then score descending, then
 image (ascending id), then position in the predictions file — the order in which
-pycocotools' ``accumulate`` walks them. Re-weighting images (bootstrap resampling,
-tag slices) therefore needs no sort and no IoU: only new cumulative sums.
+pycocotools' ``accumulate`` walks them. Matches are stored sparsely, one row per
+(size bucket, IoU slot, detection) that found a box. Re-weighting images (bootstrap
+resampling, tag slices) therefore needs no sort and no IoU: only new running sums.
 """
 
-from dataclasses import dataclass, fields
+from dataclasses import dataclass, field, fields
 
 import numpy as np
 
@@ -15,17 +16,20 @@ import numpy as np
 class MatchRecords:
     """Per-detection outcomes for every size bucket and IoU slot.
 
+    A detection is, for size bucket a and slot t: a *true positive* if it matched a
+    box that counts in bucket a; *ignored* if it matched an ignored box (crowd,
+    difficult, outside the bucket) or matched nothing and lies outside the bucket
+    itself; otherwise a *false positive*.
+
     Attributes
     ----------
-    tp, ignored : bool arrays of shape (areas, slots, detections)
-        A detection that is neither TP nor ignored is a false positive.
-    matched_gt : int32 array (slots, detections)
-        Index of the matched ground-truth box for the ``all`` size bucket, -1 if none.
-    matched_iou : float64 array (detections,)
-        IoU with the matched box at the primary slot (0 when unmatched).
     det_rank : int32 array
-        Rank of the detection within its (image, class) by descending score; a cap
-        of ``m`` detections per image keeps ranks ``< m``.
+        Rank within its (image, class) by descending score; a cap of ``m``
+        detections per image keeps ranks ``< m``.
+    det_outside : bool array (areas, detections)
+        The detection's own area is outside the bucket.
+    match_config, match_det, match_box, match_iou : arrays (matches,)
+        ``config = area * slots + slot``; ``match_box`` indexes the split's boxes.
     gt_ignored : bool array (areas, boxes)
         Ground truth that does not count towards the number of positives.
     """
@@ -40,17 +44,23 @@ class MatchRecords:
     det_score: np.ndarray
     det_rank: np.ndarray
     det_order: np.ndarray
-    tp: np.ndarray
-    ignored: np.ndarray
-    matched_gt: np.ndarray
-    matched_iou: np.ndarray
+    det_outside: np.ndarray
+    match_config: np.ndarray
+    match_det: np.ndarray
+    match_box: np.ndarray
+    match_iou: np.ndarray
     gt_class: np.ndarray
     gt_image: np.ndarray
     gt_ignored: np.ndarray
+    _sparse: dict = field(default_factory=dict, repr=False)
 
     @property
     def n_detections(self):
         return len(self.det_class)
+
+    @property
+    def n_slots(self):
+        return self.thresholds.shape[0]
 
     def class_bounds(self):
         """Start of each class's run of detections, plus the end: shape (K + 1,)."""
@@ -58,41 +68,73 @@ class MatchRecords:
 
     def n_positives(self, area=0, weights=None):
         """Non-ignored ground-truth count per class, weighted per image if asked."""
-        counted = ~self.gt_ignored[area]
-        w = counted.astype(np.int64)
+        w = (~self.gt_ignored[area]).astype(np.int64)
         if weights is not None:
             w = w * weights[self.gt_image]
         return np.bincount(self.gt_class, weights=w, minlength=len(self.classes))
 
+    def sparse_outcomes(self, area):
+        """Weight-independent sparse views of one size bucket, computed once.
+
+        ``tp_slot, tp_det``: every true positive, slot-major then rank order.
+        Counting: a detection counts (TP or FP) at slot t unless ignored; the base
+        is "unmatched" (counts iff inside the bucket) and ``delta_*`` lists where a
+        match changes that: key ``t * n + detection``, sign +1 if it now counts.
+        """
+        if area not in self._sparse:
+            n = self.n_detections
+            in_area = self.match_config // self.n_slots == area
+            slot = (self.match_config[in_area] % self.n_slots).astype(np.int64)
+            det = self.match_det[in_area].astype(np.int64)
+            box_ignored = self.gt_ignored[area, self.match_box[in_area]]
+            key = slot * n + det
+            tp = np.sort(key[~box_ignored])
+            outside = self.det_outside[area, det]
+            changes = box_ignored != outside
+            delta_order = np.argsort(key[changes])
+            self._sparse[area] = {
+                "tp_slot": tp // max(n, 1),
+                "tp_det": tp % max(n, 1),
+                "counted": ~self.det_outside[area],
+                "delta_key": key[changes][delta_order],
+                "delta_det": det[changes][delta_order],
+                "delta_sign": np.where(outside[changes], 1, -1)[delta_order],
+            }
+        return self._sparse[area]
+
+    def outcomes(self, area=0, slot=0):
+        """Dense ``(is_tp, is_ignored)`` boolean arrays for one bucket and slot."""
+        sparse = self.sparse_outcomes(area)
+        is_tp = np.zeros(self.n_detections, bool)
+        is_tp[sparse["tp_det"][sparse["tp_slot"] == slot]] = True
+        counted = sparse["counted"].copy()
+        in_slot = sparse["delta_key"] // max(self.n_detections, 1) == slot
+        counted[sparse["delta_det"][in_slot]] = sparse["delta_sign"][in_slot] > 0
+        return is_tp, ~counted
+
+    def matched_box(self, slot=0, area=0):
+        """Index of each detection's matched box (or -1), for drill-down."""
+        out = np.full(self.n_detections, -1, np.int64)
+        chosen = self.match_config == area * self.n_slots + slot
+        out[self.match_det[chosen]] = self.match_box[chosen]
+        return out
+
     def save(self, path):
-        """Write as an ``.npz`` file (compressed; flags bit-packed)."""
+        """Write as a compressed ``.npz`` file."""
         arrays = {}
         for f in fields(self):
+            if f.name.startswith("_"):
+                continue
             value = getattr(self, f.name)
-            if f.name in ("tp", "ignored", "gt_ignored"):
-                arrays[f.name + "_shape"] = np.array(value.shape)
-                arrays[f.name] = np.packbits(value, axis=None)
-            elif isinstance(value, np.ndarray):
-                arrays[f.name] = value
-            else:
-                arrays[f.name] = np.array(value)
+            arrays[f.name] = value if isinstance(value, np.ndarray) else np.array(value)
         np.savez_compressed(path, **arrays)
 
     @classmethod
     def load(cls, path):
         with np.load(path, allow_pickle=False) as data:
-            values = {}
-            for f in fields(cls):
-                if f.name in ("tp", "ignored", "gt_ignored"):
-                    shape = tuple(data[f.name + "_shape"])
-                    count = int(np.prod(shape))
-                    values[f.name] = (
-                        np.unpackbits(data[f.name], count=count).astype(bool).reshape(shape)
-                    )
-                else:
-                    values[f.name] = data[f.name]
-            values["protocol"] = str(values["protocol"])
-            values["classes"] = tuple(str(c) for c in values["classes"])
-            values["area_names"] = tuple(str(a) for a in values["area_names"])
-            values["n_images"] = int(values["n_images"])
+            values = {f.name: data[f.name] for f in fields(cls) if not f.name.startswith("_")}
+        values["protocol"] = str(values["protocol"])
+        values["classes"] = tuple(str(c) for c in values["classes"])
+        values["area_names"] = tuple(str(a) for a in values["area_names"])
+        values["n_images"] = int(values["n_images"])
         return cls(**values)

@@ -3,11 +3,11 @@
 import numpy as np
 
 from .curves import (
-    average_precision,
+    all_point_average_precision,
     cumulative_counts,
     interpolated_precision,
     recall_score,
-    true_positive_totals,
+    true_positive_points,
 )
 from .errors import InputError
 from .operating_point import best_f1, log_average_miss_rate, threshold_scores
@@ -73,7 +73,9 @@ def _coco_summary(records, protocol, precision_by_area, recall_by_area, weights)
     }
     n_pos = records.n_positives(0, weights)
     for cap in protocol.max_detections:
-        totals = true_positive_totals(records, area=0, max_detections=cap, weights=weights)
+        totals = true_positive_points(
+            records, area=0, max_detections=cap, weights=weights
+        ).totals
         with np.errstate(divide="ignore", invalid="ignore"):
             recall = totals / n_pos
         recall[:, n_pos == 0] = np.nan
@@ -84,13 +86,15 @@ def _coco_summary(records, protocol, precision_by_area, recall_by_area, weights)
     return {key: summary[key] for key in COCO_SUMMARY_KEYS}
 
 
-def _per_class(records, protocol, curves, ap, precision, recall, ap_by_area,
+def _per_class(records, protocol, curves, points, ap, precision, recall, ap_by_area,
                score_threshold, n_images):
     t50, t75 = _slot_of(protocol, 0.5), _slot_of(protocol, 0.75)
+    chart = interpolated_precision(
+        points, CURVE_POINTS, epsilon=protocol.precision_epsilon, slots=[0]
+    )[0]
     out = {}
     for k, name in enumerate(records.classes):
-        tp, fp = curves.segment(0, k)
-        scores = curves.score[curves.bounds[k] : curves.bounds[k + 1]]
+        tp, fp, scores = curves.segment(k)
         n_pos = float(curves.n_pos[k])
         row = {"AP": _number(np.mean(ap[:, k]))}
         if protocol.coco_summary:
@@ -105,18 +109,11 @@ def _per_class(records, protocol, curves, ap, precision, recall, ap_by_area,
             tp=float(tp[-1]) if len(tp) else 0.0,
             fp=float(fp[-1]) if len(fp) else 0.0,
         )
-        if n_pos:
-            curve = interpolated_precision(
-                _one_slot(curves, k), CURVE_POINTS, epsilon=protocol.precision_epsilon
-            )[0, :, 0]
-            final = float(tp[-1]) / n_pos if len(tp) else 0.0
-            reached = CURVE_POINTS <= final
-            row["curve"] = {
-                "recall": CURVE_POINTS[reached].tolist(),
-                "precision": curve[reached].tolist(),
-            }
-        else:
-            row["curve"] = {"recall": [], "precision": []}
+        reached = CURVE_POINTS <= (float(tp[-1]) / n_pos if n_pos and len(tp) else -1.0)
+        row["curve"] = {
+            "recall": CURVE_POINTS[reached].tolist(),
+            "precision": chart[reached, k].tolist(),
+        }
         row["at_threshold"] = threshold_scores(tp, fp, scores, n_pos, score_threshold)
         row["best_f1"] = best_f1(tp, fp, scores, n_pos)
         row["miss_rate"] = log_average_miss_rate(tp, fp, n_pos, n_images)
@@ -124,25 +121,11 @@ def _per_class(records, protocol, curves, ap, precision, recall, ap_by_area,
     return out
 
 
-def _one_slot(curves, k):
-    from .curves import Curves
-
-    s, e = curves.bounds[k], curves.bounds[k + 1]
-    return Curves(
-        tp=curves.tp[:1, s:e],
-        fp=curves.fp[:1, s:e],
-        bounds=np.array([0, e - s]),
-        n_pos=curves.n_pos[k : k + 1],
-        score=curves.score[s:e],
-    )
-
-
 def _pooled_threshold(curves, score_threshold):
     """Precision / recall / F1 of all classes together at one shared threshold."""
     tp = fp = 0.0
     for k in range(len(curves.n_pos)):
-        t, f = curves.segment(0, k)
-        s = curves.score[curves.bounds[k] : curves.bounds[k + 1]]
+        t, f, s = curves.segment(k)
         kept = int(np.searchsorted(-s, -score_threshold, side="right"))
         if kept:
             tp += float(t[kept - 1])
@@ -159,18 +142,18 @@ def _pooled_threshold(curves, score_threshold):
 
 
 def _area_scores(records, protocol, area, weights):
-    curves = cumulative_counts(
+    points = true_positive_points(
         records, area=area, max_detections=protocol.max_detections_limit, weights=weights
     )
     precision = None
     if protocol.recall_points is None:
-        ap = average_precision(curves, protocol)
+        ap = all_point_average_precision(points)
     else:
         precision = interpolated_precision(
-            curves, protocol.recall_points, epsilon=protocol.precision_epsilon
+            points, protocol.recall_points, epsilon=protocol.precision_epsilon
         )
         ap = precision.mean(axis=1)
-    return curves, precision, ap, recall_score(curves)
+    return points, precision, ap, recall_score(points)
 
 
 def headline(records, protocol, *, weights=None):
@@ -208,7 +191,10 @@ def score_records(records, protocol, *, weights=None, tag_masks=None, score_thre
     n_images = records.n_images if weights is None else int(weights.sum())
 
     by_area = [_area_scores(records, protocol, a, weights) for a in range(len(records.area_names))]
-    curves, precision, ap, recall = by_area[0]
+    points, precision, ap, recall = by_area[0]
+    curves = cumulative_counts(
+        records, max_detections=protocol.max_detections_limit, weights=weights
+    )
     ap_by_area = [entry[2] for entry in by_area]
 
     if protocol.coco_summary:
@@ -227,7 +213,7 @@ def score_records(records, protocol, *, weights=None, tag_masks=None, score_thre
         "engine_version": ENGINE_VERSION,
         "summary": {k: _number(v) for k, v in summary.items()},
         "per_class": _per_class(
-            records, protocol, curves, ap, precision, recall, ap_by_area,
+            records, protocol, curves, points, ap, precision, recall, ap_by_area,
             score_threshold, n_images,
         ),
         "at_threshold": _pooled_threshold(curves, score_threshold),

@@ -1,0 +1,77 @@
+"""Command line: ``python -m evaluation.engine score --truth GT --predictions PRED``.
+
+Exit status: 0 on success, 2 on bad input (the message names file, record, field).
+"""
+
+import argparse
+import json
+import sys
+
+from .errors import InputError
+from .evaluate import evaluate
+from .loaders import load_predictions, load_truth
+from .protocols import PRESETS, get_protocol, protocol_from_dict
+from .report import table
+
+EXIT_BAD_INPUT = 2
+
+
+def _protocol(value):
+    if value in PRESETS:
+        return get_protocol(value)
+    try:
+        with open(value, encoding="utf-8") as f:
+            spec = json.load(f)
+    except OSError as e:
+        raise InputError(value, f"not a preset ({', '.join(PRESETS)}) and not readable: {e.strerror}") from None
+    except json.JSONDecodeError as e:
+        raise InputError(value, f"not valid JSON: {e.msg} at line {e.lineno}, column {e.colno}") from None
+    return protocol_from_dict(spec, source=value)
+
+
+def build_parser():
+    parser = argparse.ArgumentParser(prog="python -m evaluation.engine", description=__doc__.split("\n")[0])
+    commands = parser.add_subparsers(dest="command", required=True)
+    score = commands.add_parser("score", help="score predictions against a benchmark split")
+    score.add_argument("--truth", required=True, help="COCO-style JSON, or a boxes CSV")
+    score.add_argument("--images", help="images table CSV (image_id,width,height,tags) for a CSV split")
+    score.add_argument("--predictions", required=True, help="COCO-style results JSON or CSV")
+    score.add_argument("--protocol", default="coco",
+                       help=f"preset ({', '.join(PRESETS)}) or a JSON file with a custom preset")
+    score.add_argument("--format", choices=("table", "json"), default="table")
+    score.add_argument("--threshold", type=float, default=0.5, help="score cut for the operating point")
+    score.add_argument("--out-of-frame", choices=("clip", "reject"), default="clip",
+                       help="predicted boxes that leave the image: clip and count, or reject")
+    score.add_argument("--unknown-classes", choices=("reject", "drop"), default="reject")
+    score.add_argument("--cache", metavar="DIR", help="keep parsed input as .npz here")
+    score.add_argument("--records", metavar="FILE.npz", help="also write the match records")
+    return parser
+
+
+def main(argv=None):
+    args = build_parser().parse_args(argv)
+    try:
+        protocol = _protocol(args.protocol)
+        truth = load_truth(args.truth, images=args.images, cache_dir=args.cache)
+        predictions = load_predictions(
+            args.predictions, truth, out_of_frame=args.out_of_frame,
+            unknown_classes=args.unknown_classes, cache_dir=args.cache,
+        )
+        result, records = evaluate(
+            truth, predictions, protocol, score_threshold=args.threshold, return_records=True
+        )
+    except InputError as e:
+        print(f"error: {e}", file=sys.stderr)
+        return EXIT_BAD_INPUT
+    if args.records:
+        records.save(args.records)
+    if args.format == "json":
+        json.dump(result, sys.stdout, indent=2)
+        sys.stdout.write("\n")
+    else:
+        print(table(result))
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
