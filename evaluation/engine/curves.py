@@ -120,6 +120,10 @@ def true_positive_points(records, *, area=0, max_detections=None, weights=None):
     plus sparse corrections where a match changes it, so no slots x detections
     array is ever summed.
 
+    With image weights, an image of weight w yields the points its w copies would
+    (``_expanded_points``), so weighted scores equal those of the duplicated images
+    exactly, tied scores included.
+
     Returns
     -------
     TruePositivePoints
@@ -127,39 +131,99 @@ def true_positive_points(records, *, area=0, max_detections=None, weights=None):
     sparse = records.sparse_outcomes(area)
     n_classes = len(records.classes)
     n_slots = records.n_slots
-    n = records.n_detections
     w = detection_weights(records, max_detections, weights)
-    bounds = records.class_bounds()
 
     slot, det = sparse["tp_slot"], sparse["tp_det"]
-    w_tp = w[det]
-    if max_detections is not None or weights is not None:
-        keep = w_tp > 0
-        slot, det, w_tp = slot[keep], det[keep], w_tp[keep]
+    keep = w[det] > 0
+    slot, det = slot[keep], det[keep]
+    if weights is not None and np.any(w > 1):
+        slot, det, tp, counted = _expanded_points(records, sparse, slot, det, w)
+    else:
+        counter = _Counter(records, sparse, w)
+        start = records.class_bounds()[records.det_class[det]] - 1
+        n = records.n_detections
+        tp = _tp_upto(slot, det, det, n=n) - _tp_upto(slot, det, start, n=n)
+        counted = counter.upto(slot, det) - counter.upto(slot, start)
     cls = records.det_class[det]
     run_bounds = np.searchsorted(slot * n_classes + cls, np.arange(n_slots * n_classes + 1))
-    tp = _relative(np.cumsum(w_tp), run_bounds)
-
-    counted = np.cumsum(np.where(sparse["counted"], w, 0))
-    class_start = bounds[cls]
-    counted_before = np.where(class_start > 0, counted[np.maximum(class_start - 1, 0)], 0)
-    non_ignored = counted[det] - counted_before
-    if len(sparse["delta_key"]):
-        delta = np.r_[0, np.cumsum(sparse["delta_sign"] * w[sparse["delta_det"]])]
-        upto = np.searchsorted(sparse["delta_key"], slot * n + det, "right")
-        start = np.searchsorted(sparse["delta_key"], slot * n + class_start - 1, "right")
-        non_ignored = non_ignored + delta[upto] - delta[start]
-
     last = run_bounds[1:] - 1
     has = np.diff(run_bounds) > 0
     totals = np.where(has, tp[np.maximum(last, 0)] if len(tp) else 0, 0)
     return TruePositivePoints(
         tp=tp.astype(np.float64),
-        fp=(non_ignored - tp).astype(np.float64),
+        fp=(counted - tp).astype(np.float64),
         runs=run_bounds,
         n_pos=records.n_positives(area, weights),
         totals=totals.reshape(n_slots, n_classes).astype(np.float64),
     )
+
+
+def _tp_upto(slot, det, position, *, n, running=None):
+    """TP entries of the same slot at or before ``position``: their count, or their
+    total weight when ``running`` (the running sum of entry weights) is given.
+    Entries are sorted by ``slot * n + det``."""
+    keys = slot * n + det
+    upto = np.searchsorted(keys, slot * n + position, "right")
+    before = np.searchsorted(keys, slot * n - 1, "right")
+    if running is None:
+        return upto - before
+    total = np.r_[0, running]
+    return total[upto] - total[before]
+
+
+class _Counter:
+    """Counted (non-ignored) detections at or before a position, per slot."""
+
+    def __init__(self, records, sparse, w):
+        self.n = records.n_detections
+        self.running = np.r_[0, np.cumsum(np.where(sparse["counted"], w, 0))]
+        self.keys = sparse["delta_key"]
+        self.delta = np.r_[0, np.cumsum(sparse["delta_sign"] * w[sparse["delta_det"]])]
+
+    def upto(self, slot, position):
+        """Counted weight at positions ``<= position`` (position -1 gives 0)."""
+        base = self.running[position + 1]
+        if not len(self.keys):
+            return base
+        hi = np.searchsorted(self.keys, slot * self.n + position, "right")
+        lo = np.searchsorted(self.keys, slot * self.n - 1, "right")
+        return base + self.delta[hi] - self.delta[lo]
+
+
+def _expanded_points(records, sparse, slot, det, w):
+    """TP points of the duplicated split, without duplicating anything.
+
+    Copies of an image are adjacent in image order, so detections tied in score
+    within one image and class (a *tie group*) appear copy after copy: for copy c
+    the counts are (before the group, weighted) + c * (group total) + (prefix within
+    the group), unweighted within the group since all of it has one image weight.
+    """
+    n = records.n_detections
+    group_start = sparse["tie_start"][det]
+    group_last = sparse["tie_end"][det] - 1
+    class_start = records.class_bounds()[records.det_class[det]] - 1
+    weighted = _Counter(records, sparse, w)
+    single = _Counter(records, sparse, (w > 0).astype(np.int64))
+    w_tp = w[det]
+    running = np.cumsum(w_tp)
+
+    def tp_before(position, running=None):
+        return _tp_upto(slot, det, position, n=n, running=running)
+
+    tp_base = tp_before(group_start - 1, running) - tp_before(class_start, running)
+    tp_prefix = tp_before(det) - tp_before(group_start - 1)
+    tp_group = tp_before(group_last) - tp_before(group_start - 1)
+    counted_base = weighted.upto(slot, group_start - 1) - weighted.upto(slot, class_start)
+    counted_prefix = single.upto(slot, det) - single.upto(slot, group_start - 1)
+    counted_group = single.upto(slot, group_last) - single.upto(slot, group_start - 1)
+
+    copy = np.arange(int(w_tp.sum())) - np.repeat(np.cumsum(w_tp) - w_tp, w_tp)
+    pick = np.repeat(np.arange(len(det)), w_tp)
+    tp = tp_base[pick] + copy * tp_group[pick] + tp_prefix[pick]
+    counted = counted_base[pick] + copy * counted_group[pick] + counted_prefix[pick]
+    # Copy-major order inside each tie group: (slot, group, copy, detection).
+    order = np.lexsort((det[pick], copy, group_start[pick], slot[pick]))
+    return slot[pick][order], det[pick][order], tp[order], counted[order]
 
 
 def recall_score(points):

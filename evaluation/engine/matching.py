@@ -20,18 +20,27 @@ threshold can ever match, so the rest are dropped before the walk.
 import numpy as np
 
 from .boxes import pair_iou
-from .protocols import BEST_OVERLAP
+from .protocols import BEST_OVERLAP, get_protocol
 from .records import MatchRecords
 
 _DENSE_GROUPS = 20_000_000  # up to this many (image, class) groups, index them directly
 _REGULAR = np.int32(1) << 24  # added to the key of a regular (non-ignored) box
 
 
+def _starts(sorted_values):
+    """True where a run of equal values begins (length n, also for n = 0)."""
+    mask = np.ones(len(sorted_values), bool)
+    mask[1:] = sorted_values[1:] != sorted_values[:-1]
+    return mask
+
+
 def _ranks(sorted_group):
+    """Position of each element within its run of equal group ids."""
     n = len(sorted_group)
-    starts = np.flatnonzero(np.r_[True, sorted_group[1:] != sorted_group[:-1]]) if n else []
-    counts = np.diff(np.r_[starts, n])
-    return np.arange(n) - np.repeat(starts, counts)
+    if not n:
+        return np.zeros(0, np.int64)
+    starts = np.flatnonzero(_starts(sorted_group))
+    return np.arange(n) - np.repeat(starts, np.diff(np.r_[starts, n]))
 
 
 def _candidate_pairs(truth, det_boxes, det_group, protocol, min_threshold):
@@ -105,6 +114,7 @@ def match(truth, predictions, protocol):
         reference does. One match row per (size bucket, IoU slot, detection) that
         took a box; ``MatchRecords.outcomes`` turns them into TP / ignored flags.
     """
+    protocol = get_protocol(protocol)
     n_classes = len(truth.classes)
     thresholds = protocol.threshold_table(truth.classes)
     effective = np.minimum(thresholds, 1 - 1e-10)  # pycocotools caps at 1 - 1e-10
@@ -192,7 +202,7 @@ def _first_claims(pair_det, pair_gt, pair_iou_, det_cls, effective, crowd, n_are
     for t in range(n_slots):
         reaches = np.flatnonzero(pair_iou_ >= effective[t, det_cls[pair_det]])
         ordered = pair_gt[reaches]
-        first = np.r_[True, ordered[1:] != ordered[:-1]] | crowd[ordered]
+        first = _starts(ordered) | crowd[ordered]
         take = reaches[first]
         for a in range(n_areas):
             found.append((np.full(len(take), a * n_slots + t), pair_det[take], pair_gt[take],
@@ -223,7 +233,7 @@ def _walk_ranks(pair_det, pair_gt, pair_iou_, rank, det_cls, effective, gt_ignor
     found = []
     for b0, b1 in zip(bounds[:-1], bounds[1:]):
         d, g = pair_det[b0:b1], pair_gt[b0:b1]
-        starts = np.flatnonzero(np.r_[True, d[1:] != d[:-1]])
+        starts = np.flatnonzero(_starts(d))
         reaches = pair_iou_[b0:b1] >= effective[:, det_cls[d]]  # (slots, pairs)
         eligible = (~taken[:, g] | crowd[g]).reshape(n_areas, n_slots, -1) & reaches
         key = np.where(regular[:, g], _REGULAR, 0) + static_rank[b0:b1]
@@ -251,7 +261,7 @@ def _best_overlap(pair_det, pair_gt, pair_iou_, det_cls, effective, gt_ignored):
     # Highest overlap per detection; on ties the first box in file order (MATLAB max).
     by_det = np.lexsort((pair_gt, -pair_iou_, pair_det))
     pair_det, pair_gt, pair_iou_ = pair_det[by_det], pair_gt[by_det], pair_iou_[by_det]
-    first = np.r_[True, pair_det[1:] != pair_det[:-1]]
+    first = _starts(pair_det)
     det, box, best_iou = pair_det[first], pair_gt[first], pair_iou_[first]
     found = []
     for t in range(n_slots):
@@ -265,7 +275,7 @@ def _best_overlap(pair_det, pair_gt, pair_iou_, det_cls, effective, gt_ignored):
             claims = np.flatnonzero(~ignored)
             by_box = np.lexsort((d[claims], g[claims]))
             ordered = g[claims][by_box]
-            first_claim = claims[by_box[np.r_[True, ordered[1:] != ordered[:-1]]]]
+            first_claim = claims[by_box[_starts(ordered)]]
             keep = np.r_[first_claim, np.flatnonzero(ignored)]
             found.append((np.full(len(keep), a * n_slots + t), d[keep], g[keep], iou[keep]))
     return _concat(found)

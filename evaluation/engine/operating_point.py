@@ -64,28 +64,34 @@ def best_f1(tp, fp, scores, n_pos):
     }
 
 
-def log_average_miss_rate(tp, fp, n_pos, n_images):
-    """Log-average miss rate over FPPI 10^-2 ... 10^0 (Dollár et al., TPAMI 2012).
+def log_average_miss_rate(tp, fp, scores, n_pos, n_images):
+    r"""Log-average miss rate over FPPI 10^-2 ... 10^0 (Dollár et al., TPAMI 2012).
 
-    .. math:: \\mathrm{LAMR} = \\exp\\Big(\\frac{1}{9} \\sum_{k=0}^{8}
-              \\ln \\max(\\mathrm{MR}(f_k), 10^{-10})\\Big), \\quad f_k = 10^{-2 + k/4}
+    .. math:: \mathrm{LAMR} = \exp\Big(\frac{1}{9} \sum_{k=0}^{8}
+              \ln \max(\mathrm{MR}(f_k), 10^{-10})\Big), \quad f_k = 10^{-2 + k/4}
 
-    where MR(f) = 1 - TP/n_pos at the last ranked detection whose FPPI = FP / images
-    is <= f (the lowest miss rate within that budget), and 1 when none is. Lower is
-    better. None without positives.
+    The curve is traced by lowering the score threshold: one point per distinct
+    score (tied detections enter together), FPPI = FP / images, MR = 1 - TP / n_pos.
+    MR(f) is the miss rate of the last point with FPPI <= f (the lowest miss rate
+    within that budget), 1 when none is. Lower is better; None without positives.
 
     Examples
     --------
     A perfect detector misses nothing at any budget:
 
     >>> import numpy as np
-    >>> log_average_miss_rate(np.array([1., 2]), np.array([0., 0]), 2, 10) < 1e-9
-    True
+    >>> round(log_average_miss_rate(np.array([1., 2]), np.array([0., 0]),
+    ...                             np.array([.9, .8]), 2, 10), 12)
+    1e-10
     """
     if not n_pos or not n_images:
         return None
-    fppi = fp / n_images
-    miss = 1.0 - tp / n_pos
-    last = np.searchsorted(fppi, FPPI_POINTS, side="right") - 1
-    at_points = np.where(last >= 0, miss[np.maximum(last, 0)] if len(miss) else 1.0, 1.0)
+    if len(scores):
+        cuts = np.flatnonzero(np.r_[scores[1:] != scores[:-1], True])
+        fppi = fp[cuts] / n_images
+        miss = 1.0 - tp[cuts] / n_pos
+        last = np.searchsorted(fppi, FPPI_POINTS, side="right") - 1
+        at_points = np.where(last >= 0, miss[np.maximum(last, 0)], 1.0)
+    else:
+        at_points = np.ones(len(FPPI_POINTS))
     return float(math.exp(np.mean(np.log(np.maximum(at_points, 1e-10)))))

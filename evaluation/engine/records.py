@@ -93,6 +93,7 @@ class MatchRecords:
             changes = box_ignored != outside
             delta_order = np.argsort(key[changes])
             self._sparse[area] = {
+                **self._tie_groups(),
                 "tp_slot": tp // max(n, 1),
                 "tp_det": tp % max(n, 1),
                 "counted": ~self.det_outside[area],
@@ -101,6 +102,22 @@ class MatchRecords:
                 "delta_sign": np.where(outside[changes], 1, -1)[delta_order],
             }
         return self._sparse[area]
+
+    def _tie_groups(self):
+        """Runs of detections with one class, image and score (contiguous here)."""
+        n = self.n_detections
+        change = np.ones(n, bool)
+        change[1:] = (
+            (self.det_class[1:] != self.det_class[:-1])
+            | (self.det_score[1:] != self.det_score[:-1])
+            | (self.det_image[1:] != self.det_image[:-1])
+        )
+        starts = np.flatnonzero(change)
+        lengths = np.diff(np.r_[starts, n])
+        return {
+            "tie_start": np.repeat(starts, lengths),
+            "tie_end": np.repeat(starts + lengths, lengths),
+        }
 
     def outcomes(self, area=0, slot=0):
         """Dense ``(is_tp, is_ignored)`` boolean arrays for one bucket and slot."""

@@ -116,7 +116,7 @@ def _per_class(records, protocol, curves, points, ap, precision, recall, ap_by_a
         }
         row["at_threshold"] = threshold_scores(tp, fp, scores, n_pos, score_threshold)
         row["best_f1"] = best_f1(tp, fp, scores, n_pos)
-        row["miss_rate"] = log_average_miss_rate(tp, fp, n_pos, n_images)
+        row["miss_rate"] = log_average_miss_rate(tp, fp, scores, n_pos, n_images)
         out[name] = row
     return out
 
