@@ -38,7 +38,9 @@ def run_ours(gt, dt, cache=None):
     predictions = load_predictions(dt, truth, cache_dir=cache)
     result = evaluate(truth, predictions, "coco")
     elapsed = time.perf_counter() - start
-    stats = [-1.0 if result["summary"][k] is None else result["summary"][k] for k in COCO_SUMMARY_KEYS]
+    stats = [
+        -1.0 if result["summary"][k] is None else result["summary"][k] for k in COCO_SUMMARY_KEYS
+    ]
     return elapsed, stats
 
 
@@ -83,7 +85,9 @@ def child(name, gt, dt):
 def spawn(name, gt, dt):
     out = subprocess.run(
         [sys.executable, __file__, "--child", name, str(gt), str(dt)],
-        check=True, capture_output=True, text=True,
+        check=True,
+        capture_output=True,
+        text=True,
     )
     return json.loads(out.stdout.strip().splitlines()[-1])
 
@@ -104,21 +108,32 @@ def main():
 
     OUT.mkdir(parents=True, exist_ok=True)
     shutil.rmtree(OUT / "cache", ignore_errors=True)
-    gt, dt = write(OUT, seed=args.seed, n_images=args.images, detections=args.detections,
-                   n_classes=args.classes)
+    gt, dt = write(
+        OUT,
+        seed=args.seed,
+        n_images=args.images,
+        detections=args.detections,
+        n_classes=args.classes,
+    )
     spawn("benchbook (cache)", gt, dt)  # warm the columnar cache
     rows = {name: spawn(name, gt, dt) for name in CONTENDERS}
 
     reference = rows["pycocotools"]
-    print(f"{args.images} images, {args.detections} detections, {args.classes} classes "
-          f"(seed {args.seed})\n")
-    print(f"{'contender':<20} {'seconds':>9} {'peak MB':>9} {'vs pycocotools':>15} "
-          f"{'vs faster-coco-eval':>20} {'max |Δ| vs ref':>15}")
+    print(
+        f"{args.images} images, {args.detections} detections, {args.classes} classes "
+        f"(seed {args.seed})\n"
+    )
+    print(
+        f"{'contender':<20} {'seconds':>9} {'peak MB':>9} {'vs pycocotools':>15} "
+        f"{'vs faster-coco-eval':>20} {'max |Δ| vs ref':>15}"
+    )
     for name, row in rows.items():
         delta = max(abs(a - b) for a, b in zip(row["stats"], reference["stats"]))
-        print(f"{name:<20} {row['seconds']:>9.2f} {row['peak_mb']:>9.0f} "
-              f"{reference['seconds'] / row['seconds']:>14.1f}x "
-              f"{rows['faster-coco-eval']['seconds'] / row['seconds']:>19.1f}x {delta:>15.1e}")
+        print(
+            f"{name:<20} {row['seconds']:>9.2f} {row['peak_mb']:>9.0f} "
+            f"{reference['seconds'] / row['seconds']:>14.1f}x "
+            f"{rows['faster-coco-eval']['seconds'] / row['seconds']:>19.1f}x {delta:>15.1e}"
+        )
 
     ours, cached = rows["benchbook"], rows["benchbook (cache)"]
     failures = []

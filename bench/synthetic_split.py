@@ -8,8 +8,16 @@ import json
 import numpy as np
 
 
-def generate(seed=7, *, n_images=5000, n_classes=80, boxes_per_image=7.2,
-             detections=500_000, width=1280, height=720):
+def generate(
+    seed=7,
+    *,
+    n_images=5000,
+    n_classes=80,
+    boxes_per_image=7.2,
+    detections=500_000,
+    width=1280,
+    height=720,
+):
     rng = np.random.default_rng(seed)
     n_boxes = int(rng.poisson(boxes_per_image, n_images).sum())
     box_image = np.sort(rng.integers(0, n_images, n_boxes))
@@ -40,7 +48,10 @@ def generate(seed=7, *, n_images=5000, n_classes=80, boxes_per_image=7.2,
     det = {
         "image": np.r_[dimage, rng.integers(0, n_images, n_far)],
         "class": np.r_[dclass, rng.choice(n_classes, n_far, p=popularity / popularity.sum())],
-        "x": np.r_[dx, fx], "y": np.r_[dy, fy], "w": np.r_[dw, fw], "h": np.r_[dh, fh],
+        "x": np.r_[dx, fx],
+        "y": np.r_[dy, fy],
+        "w": np.r_[dw, fw],
+        "h": np.r_[dh, fh],
     }
     det["x"] = np.clip(det["x"], 0, width - 2)
     det["y"] = np.clip(det["y"], 0, height - 2)
@@ -57,11 +68,17 @@ def generate(seed=7, *, n_images=5000, n_classes=80, boxes_per_image=7.2,
         "images": [{"id": int(i), "width": width, "height": height} for i in image_ids],
         "annotations": [
             {
-                "id": int(i + 1), "image_id": int(box_image[i] + 1),
+                "id": int(i + 1),
+                "image_id": int(box_image[i] + 1),
                 "category_id": int(box_class[i] + 1),
-                "bbox": [round(float(x[i]), 2), round(float(y[i]), 2),
-                         round(float(w[i]), 2), round(float(h[i]), 2)],
-                "area": round(float(w[i] * h[i]), 2), "iscrowd": int(crowd[i]),
+                "bbox": [
+                    round(float(x[i]), 2),
+                    round(float(y[i]), 2),
+                    round(float(w[i]), 2),
+                    round(float(h[i]), 2),
+                ],
+                "area": round(float(w[i] * h[i]), 2),
+                "iscrowd": int(crowd[i]),
             }
             for i in range(n_boxes)
         ],
@@ -69,9 +86,14 @@ def generate(seed=7, *, n_images=5000, n_classes=80, boxes_per_image=7.2,
     }
     predictions = [
         {
-            "image_id": int(det["image"][i] + 1), "category_id": int(det["class"][i] + 1),
-            "bbox": [round(float(det["x"][i]), 2), round(float(det["y"][i]), 2),
-                     round(float(det["w"][i]), 2), round(float(det["h"][i]), 2)],
+            "image_id": int(det["image"][i] + 1),
+            "category_id": int(det["class"][i] + 1),
+            "bbox": [
+                round(float(det["x"][i]), 2),
+                round(float(det["y"][i]), 2),
+                round(float(det["w"][i]), 2),
+                round(float(det["h"][i]), 2),
+            ],
             "score": float(det["score"][i]),
         }
         for i in range(detections)

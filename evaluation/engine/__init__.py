@@ -21,7 +21,20 @@ from .scoring import COCO_SUMMARY_KEYS, headline, score_records
 from .version import ENGINE_VERSION
 
 __all__ = [
-    "COCO_SUMMARY_KEYS", "ENGINE_VERSION", "PRESETS", "GroundTruth", "InputError",
-    "MatchRecords", "Predictions", "Protocol", "evaluate", "get_protocol", "headline",
-    "load_predictions", "load_truth", "match", "protocol_from_dict", "score_records",
+    "COCO_SUMMARY_KEYS",
+    "ENGINE_VERSION",
+    "PRESETS",
+    "GroundTruth",
+    "InputError",
+    "MatchRecords",
+    "Predictions",
+    "Protocol",
+    "evaluate",
+    "get_protocol",
+    "headline",
+    "load_predictions",
+    "load_truth",
+    "match",
+    "protocol_from_dict",
+    "score_records",
 ]

@@ -23,25 +23,42 @@ def _protocol(value):
         with open(value, encoding="utf-8") as f:
             spec = json.load(f)
     except OSError as e:
-        raise InputError(value, f"not a preset ({', '.join(PRESETS)}) and not readable: {e.strerror}") from None
+        raise InputError(
+            value, f"not a preset ({', '.join(PRESETS)}) and not readable: {e.strerror}"
+        ) from None
     except json.JSONDecodeError as e:
-        raise InputError(value, f"not valid JSON: {e.msg} at line {e.lineno}, column {e.colno}") from None
+        raise InputError(
+            value, f"not valid JSON: {e.msg} at line {e.lineno}, column {e.colno}"
+        ) from None
     return protocol_from_dict(spec, source=value)
 
 
 def build_parser():
-    parser = argparse.ArgumentParser(prog="python -m evaluation.engine", description=__doc__.split("\n")[0])
+    parser = argparse.ArgumentParser(
+        prog="python -m evaluation.engine", description=__doc__.split("\n")[0]
+    )
     commands = parser.add_subparsers(dest="command", required=True)
     score = commands.add_parser("score", help="score predictions against a benchmark split")
     score.add_argument("--truth", required=True, help="COCO-style JSON, or a boxes CSV")
-    score.add_argument("--images", help="images table CSV (image_id,width,height,tags) for a CSV split")
+    score.add_argument(
+        "--images", help="images table CSV (image_id,width,height,tags) for a CSV split"
+    )
     score.add_argument("--predictions", required=True, help="COCO-style results JSON or CSV")
-    score.add_argument("--protocol", default="coco",
-                       help=f"preset ({', '.join(PRESETS)}) or a JSON file with a custom preset")
+    score.add_argument(
+        "--protocol",
+        default="coco",
+        help=f"preset ({', '.join(PRESETS)}) or a JSON file with a custom preset",
+    )
     score.add_argument("--format", choices=("table", "json"), default="table")
-    score.add_argument("--threshold", type=float, default=0.5, help="score cut for the operating point")
-    score.add_argument("--out-of-frame", choices=("clip", "reject"), default="clip",
-                       help="predicted boxes that leave the image: clip and count, or reject")
+    score.add_argument(
+        "--threshold", type=float, default=0.5, help="score cut for the operating point"
+    )
+    score.add_argument(
+        "--out-of-frame",
+        choices=("clip", "reject"),
+        default="clip",
+        help="predicted boxes that leave the image: clip and count, or reject",
+    )
     score.add_argument("--unknown-classes", choices=("reject", "drop"), default="reject")
     score.add_argument("--cache", metavar="DIR", help="keep parsed input as .npz here")
     score.add_argument("--records", metavar="FILE.npz", help="also write the match records")
@@ -54,8 +71,11 @@ def main(argv=None):
         protocol = _protocol(args.protocol)
         truth = load_truth(args.truth, images=args.images, cache_dir=args.cache)
         predictions = load_predictions(
-            args.predictions, truth, out_of_frame=args.out_of_frame,
-            unknown_classes=args.unknown_classes, cache_dir=args.cache,
+            args.predictions,
+            truth,
+            out_of_frame=args.out_of_frame,
+            unknown_classes=args.unknown_classes,
+            cache_dir=args.cache,
         )
         result, records = evaluate(
             truth, predictions, protocol, score_threshold=args.threshold, return_records=True

@@ -138,14 +138,13 @@ def true_positive_points(records, *, area=0, max_detections=None, weights=None):
     slot, det = slot[keep], det[keep]
     if weights is not None and np.any(w > 1):
         slot, det, tp, counted = _expanded_points(records, sparse, slot, det, w)
-    else:
+        run_bounds = _run_bounds(records, slot, det)
+    else:  # every weight is 0 or 1: the TP count is the position in the run
+        run_bounds = _run_bounds(records, slot, det)
+        tp = np.arange(1, len(det) + 1) - np.repeat(run_bounds[:-1], np.diff(run_bounds))
         counter = _Counter(records, sparse, w)
         start = records.class_bounds()[records.det_class[det]] - 1
-        n = records.n_detections
-        tp = _tp_upto(slot, det, det, n=n) - _tp_upto(slot, det, start, n=n)
         counted = counter.upto(slot, det) - counter.upto(slot, start)
-    cls = records.det_class[det]
-    run_bounds = np.searchsorted(slot * n_classes + cls, np.arange(n_slots * n_classes + 1))
     last = run_bounds[1:] - 1
     has = np.diff(run_bounds) > 0
     totals = np.where(has, tp[np.maximum(last, 0)] if len(tp) else 0, 0)
@@ -156,6 +155,24 @@ def true_positive_points(records, *, area=0, max_detections=None, weights=None):
         n_pos=records.n_positives(area, weights),
         totals=totals.reshape(n_slots, n_classes).astype(np.float64),
     )
+
+
+def _run_bounds(records, slot, det):
+    n_classes = len(records.classes)
+    keys = slot * n_classes + records.det_class[det]
+    return np.searchsorted(keys, np.arange(records.n_slots * n_classes + 1))
+
+
+def true_positive_totals(records, *, area=0, max_detections=None, weights=None):
+    """Weighted TP count per slot and class, shape (slots, classes): the numerator
+    of final recall, without building any curve."""
+    sparse = records.sparse_outcomes(area)
+    n_classes = len(records.classes)
+    w = detection_weights(records, max_detections, weights)
+    det = sparse["tp_det"]
+    keys = sparse["tp_slot"] * n_classes + records.det_class[det]
+    totals = np.bincount(keys, weights=w[det], minlength=records.n_slots * n_classes)
+    return totals.reshape(records.n_slots, n_classes)
 
 
 def _tp_upto(slot, det, position, *, n, running=None):

@@ -5,8 +5,16 @@ from .protocols import get_protocol
 from .scoring import score_records
 
 
-def evaluate(truth, predictions, protocol="coco", *, weights=None, score_threshold=0.5,
-             tag_slices=True, return_records=False):
+def evaluate(
+    truth,
+    predictions,
+    protocol="coco",
+    *,
+    weights=None,
+    score_threshold=0.5,
+    tag_slices=True,
+    return_records=False,
+):
     """Score ``predictions`` against ``truth`` under ``protocol``.
 
     Matching happens once; the scorecard (and, with ``return_records``, the match

@@ -118,7 +118,6 @@ def match(truth, predictions, protocol):
     n_classes = len(truth.classes)
     thresholds = protocol.threshold_table(truth.classes)
     effective = np.minimum(thresholds, 1 - 1e-10)  # pycocotools caps at 1 - 1e-10
-    n_slots, n_areas = len(thresholds), len(protocol.area_ranges)
 
     order, rank = _orders(predictions, n_classes)
     cap = protocol.max_detections_limit
@@ -130,7 +129,6 @@ def match(truth, predictions, protocol):
     det_boxes = predictions.boxes[order]
     det_group = det_image.astype(np.int64) * n_classes + det_cls
     det_area = det_boxes[:, 2] * det_boxes[:, 3]
-    n_det = len(order)
 
     base_ignore = truth.crowd | truth.ignore | truth.difficult
     gt_ignored = base_ignore[None, :] | _outside(truth.box_area, protocol.area_ranges)
@@ -145,7 +143,14 @@ def match(truth, predictions, protocol):
         )
     else:
         config, det, box, iou = _greedy(
-            pair_det, pair_gt, pair_iou_, rank, det_group, det_cls, effective, gt_ignored,
+            pair_det,
+            pair_gt,
+            pair_iou_,
+            rank,
+            det_group,
+            det_cls,
+            effective,
+            gt_ignored,
             truth.crowd,
         )
 
@@ -171,8 +176,7 @@ def match(truth, predictions, protocol):
     )
 
 
-def _greedy(pair_det, pair_gt, pair_iou_, rank, det_group, det_cls, effective,
-            gt_ignored, crowd):
+def _greedy(pair_det, pair_gt, pair_iou_, rank, det_group, det_cls, effective, gt_ignored, crowd):
     """Sparse matches ``(config, detection, box, iou)``; config = area * slots + slot.
 
     A group (image, class) in which no detection has two candidate boxes needs no
@@ -180,7 +184,7 @@ def _greedy(pair_det, pair_gt, pair_iou_, rank, det_group, det_cls, effective,
     (every claimant, for a crowd region), the same in every size bucket. Only the
     other groups are walked rank by rank.
     """
-    n_slots, n_areas = len(effective), len(gt_ignored)
+    n_areas = len(gt_ignored)
     candidates = np.bincount(pair_det, minlength=len(det_group))
     crowded = np.unique(det_group[pair_det[candidates[pair_det] > 1]])
     walk = np.isin(det_group[pair_det], crowded, assume_unique=False)
@@ -188,8 +192,14 @@ def _greedy(pair_det, pair_gt, pair_iou_, rank, det_group, det_cls, effective,
         pair_det[~walk], pair_gt[~walk], pair_iou_[~walk], det_cls, effective, crowd, n_areas
     )
     found += _walk_ranks(
-        pair_det[walk], pair_gt[walk], pair_iou_[walk], rank, det_cls, effective,
-        gt_ignored, crowd,
+        pair_det[walk],
+        pair_gt[walk],
+        pair_iou_[walk],
+        rank,
+        det_cls,
+        effective,
+        gt_ignored,
+        crowd,
     )
     return _concat(found)
 
@@ -205,8 +215,14 @@ def _first_claims(pair_det, pair_gt, pair_iou_, det_cls, effective, crowd, n_are
         first = _starts(ordered) | crowd[ordered]
         take = reaches[first]
         for a in range(n_areas):
-            found.append((np.full(len(take), a * n_slots + t), pair_det[take], pair_gt[take],
-                          pair_iou_[take]))
+            found.append(
+                (
+                    np.full(len(take), a * n_slots + t),
+                    pair_det[take],
+                    pair_gt[take],
+                    pair_iou_[take],
+                )
+            )
     return found
 
 

@@ -166,8 +166,16 @@ def protocol_from_dict(spec, source="protocol"):
     if not isinstance(spec, dict):
         raise InputError(source, "a custom protocol must be a JSON object")
     known = {
-        "name", "version", "base", "description", "matching", "iou_thresholds",
-        "class_iou_thresholds", "recall_points", "pixel_offset", "max_detections",
+        "name",
+        "version",
+        "base",
+        "description",
+        "matching",
+        "iou_thresholds",
+        "class_iou_thresholds",
+        "recall_points",
+        "pixel_offset",
+        "max_detections",
     }
     for key in spec:
         if key not in known:
@@ -193,9 +201,14 @@ def protocol_from_dict(spec, source="protocol"):
         if not isinstance(table, dict):
             raise InputError(source, "must map class names to IoU", field="class_iou_thresholds")
         for name, value in table.items():
-            if isinstance(value, bool) or not isinstance(value, (int, float)) or not 0 <= value <= 1:
+            if (
+                isinstance(value, bool)
+                or not isinstance(value, (int, float))
+                or not 0 <= value <= 1
+            ):
                 raise InputError(
-                    source, f"IoU for {name!r} must be in [0, 1], got {value!r}",
+                    source,
+                    f"IoU for {name!r} must be in [0, 1], got {value!r}",
                     field="class_iou_thresholds",
                 )
         values["class_iou_thresholds"] = {str(k): float(v) for k, v in table.items()}

@@ -54,7 +54,9 @@ def table(result):
     if tags:
         lines += ["", "by image tag"]
         for tag, entry in tags.items():
-            lines.append(f"  {tag:<{name_width}}  AP {_fmt(entry['AP'])}  ({entry['images']} images)")
+            lines.append(
+                f"  {tag:<{name_width}}  AP {_fmt(entry['AP'])}  ({entry['images']} images)"
+            )
     absent = "—"
     lines += ["", f"{absent} = absent: no ground truth for that class in the split"]
     return "\n".join(lines)

@@ -8,6 +8,7 @@ from .curves import (
     interpolated_precision,
     recall_score,
     true_positive_points,
+    true_positive_totals,
 )
 from .errors import InputError
 from .operating_point import best_f1, log_average_miss_rate, threshold_scores
@@ -16,8 +17,18 @@ from .version import ENGINE_VERSION
 
 #: pycocotools' ``summarize`` order.
 COCO_SUMMARY_KEYS = (
-    "AP", "AP50", "AP75", "AP_small", "AP_medium", "AP_large",
-    "AR1", "AR10", "AR100", "AR_small", "AR_medium", "AR_large",
+    "AP",
+    "AP50",
+    "AP75",
+    "AP_small",
+    "AP_medium",
+    "AP_large",
+    "AR1",
+    "AR10",
+    "AR100",
+    "AR_small",
+    "AR_medium",
+    "AR_large",
 )
 CURVE_POINTS = np.linspace(0.0, 1.0, 101)
 
@@ -73,9 +84,7 @@ def _coco_summary(records, protocol, precision_by_area, recall_by_area, weights)
     }
     n_pos = records.n_positives(0, weights)
     for cap in protocol.max_detections:
-        totals = true_positive_points(
-            records, area=0, max_detections=cap, weights=weights
-        ).totals
+        totals = true_positive_totals(records, area=0, max_detections=cap, weights=weights)
         with np.errstate(divide="ignore", invalid="ignore"):
             recall = totals / n_pos
         recall[:, n_pos == 0] = np.nan
@@ -86,8 +95,9 @@ def _coco_summary(records, protocol, precision_by_area, recall_by_area, weights)
     return {key: summary[key] for key in COCO_SUMMARY_KEYS}
 
 
-def _per_class(records, protocol, curves, points, ap, precision, recall, ap_by_area,
-               score_threshold, n_images):
+def _per_class(
+    records, protocol, curves, points, ap, precision, recall, ap_by_area, score_threshold, n_images
+):
     t50, t75 = _slot_of(protocol, 0.5), _slot_of(protocol, 0.75)
     chart = interpolated_precision(
         points, CURVE_POINTS, epsilon=protocol.precision_epsilon, slots=[0]
@@ -213,8 +223,16 @@ def score_records(records, protocol, *, weights=None, tag_masks=None, score_thre
         "engine_version": ENGINE_VERSION,
         "summary": {k: _number(v) for k, v in summary.items()},
         "per_class": _per_class(
-            records, protocol, curves, points, ap, precision, recall, ap_by_area,
-            score_threshold, n_images,
+            records,
+            protocol,
+            curves,
+            points,
+            ap,
+            precision,
+            recall,
+            ap_by_area,
+            score_threshold,
+            n_images,
         ),
         "at_threshold": _pooled_threshold(curves, score_threshold),
         "slices": {"size": {}, "tag": {}},

@@ -21,7 +21,11 @@ def _iou(d, g, crowd, offset):
 
 
 def _sorted_detections(predictions, image, k):
-    idx = [i for i in range(len(predictions)) if predictions.image[i] == image and predictions.cls[i] == k]
+    idx = [
+        i
+        for i in range(len(predictions))
+        if predictions.image[i] == image and predictions.cls[i] == k
+    ]
     return sorted(idx, key=lambda i: -predictions.score[i])  # stable: file order on ties
 
 
@@ -33,7 +37,11 @@ def greedy_ap(truth, predictions, *, thresholds, recall_points, max_detections, 
         per_slot = [[] for _ in thresholds]  # (score, image, order, tp, ignored)
         n_pos = 0
         for image in range(truth.n_images):
-            gts = [j for j in range(truth.n_boxes) if truth.box_image[j] == image and truth.box_class[j] == k]
+            gts = [
+                j
+                for j in range(truth.n_boxes)
+                if truth.box_image[j] == image and truth.box_class[j] == k
+            ]
             ignore = {j: bool(truth.crowd[j] or truth.ignore[j] or truth.difficult[j]) for j in gts}
             gts = sorted(gts, key=lambda j: ignore[j])  # stable: regular boxes first
             n_pos += sum(not ignore[j] for j in gts)
@@ -56,9 +64,15 @@ def greedy_ap(truth, predictions, *, thresholds, recall_points, max_detections, 
                         best, m = iou, g
                     if m is not None:
                         taken.add(m)
-                    per_slot[t].append((-predictions.score[d], image, order,
-                                        m is not None and not ignore[m],
-                                        m is not None and ignore[m]))
+                    per_slot[t].append(
+                        (
+                            -predictions.score[d],
+                            image,
+                            order,
+                            m is not None and not ignore[m],
+                            m is not None and ignore[m],
+                        )
+                    )
         if n_pos == 0:
             continue
         for t, rows in enumerate(per_slot):

@@ -5,9 +5,19 @@ import json
 import numpy as np
 
 
-def make_split(rng, *, n_images=20, n_classes=3, boxes_per_image=5, crowd_rate=0.05,
-               width=640, height=480, tags=("night", "rain"), area_noise=0.0,
-               integer_coords=False):
+def make_split(
+    rng,
+    *,
+    n_images=20,
+    n_classes=3,
+    boxes_per_image=5,
+    crowd_rate=0.05,
+    width=640,
+    height=480,
+    tags=("night", "rain"),
+    area_noise=0.0,
+    integer_coords=False,
+):
     """A COCO-style ground-truth dict with ids >= 1 (the reference mis-reads id 0)."""
     images, annotations = [], []
     ann_id = 1
@@ -21,21 +31,39 @@ def make_split(rng, *, n_images=20, n_classes=3, boxes_per_image=5, crowd_rate=0
             x = float(rng.uniform(0, width - w))
             y = float(rng.uniform(0, height - h))
             if integer_coords:
-                x, y, w, h = float(int(x)), float(int(y)), float(max(1, int(w))), float(max(1, int(h)))
+                x, y, w, h = (
+                    float(int(x)),
+                    float(int(y)),
+                    float(max(1, int(w))),
+                    float(max(1, int(h))),
+                )
             area = w * h * (1 + area_noise * rng.uniform(-1, 1))
-            annotations.append({
-                "id": ann_id, "image_id": image_id,
-                "category_id": int(rng.integers(1, n_classes + 1)),
-                "bbox": [x, y, w, h], "area": area,
-                "iscrowd": int(rng.random() < crowd_rate),
-            })
+            annotations.append(
+                {
+                    "id": ann_id,
+                    "image_id": image_id,
+                    "category_id": int(rng.integers(1, n_classes + 1)),
+                    "bbox": [x, y, w, h],
+                    "area": area,
+                    "iscrowd": int(rng.random() < crowd_rate),
+                }
+            )
             ann_id += 1
     categories = [{"id": k, "name": f"class{k}"} for k in range(1, n_classes + 1)]
     return {"images": images, "annotations": annotations, "categories": categories}
 
 
-def make_detections(rng, split, *, hit_rate=0.7, jitter=0.15, false_per_image=3,
-                    duplicate_rate=0.2, score_levels=None, extra_class_rate=0.0):
+def make_detections(
+    rng,
+    split,
+    *,
+    hit_rate=0.7,
+    jitter=0.15,
+    false_per_image=3,
+    duplicate_rate=0.2,
+    score_levels=None,
+    extra_class_rate=0.0,
+):
     """Detections near the ground truth (jittered), duplicates and false alarms.
 
     ``score_levels``: quantise scores to this many values to force ties.
@@ -67,18 +95,32 @@ def make_detections(rng, split, *, hit_rate=0.7, jitter=0.15, false_per_image=3,
             cat = ann["category_id"]
             if rng.random() < 0.05:
                 cat = int(rng.integers(1, n_classes + 1))
-            dets.append({"image_id": ann["image_id"], "category_id": cat,
-                         "bbox": clip(x, y, w, h, im), "score": score()})
+            dets.append(
+                {
+                    "image_id": ann["image_id"],
+                    "category_id": cat,
+                    "bbox": clip(x, y, w, h, im),
+                    "score": score(),
+                }
+            )
     for im in split["images"]:
         for _ in range(int(rng.poisson(false_per_image))):
             w = float(rng.uniform(4, im["width"] / 3))
             h = float(rng.uniform(4, im["height"] / 3))
-            dets.append({
-                "image_id": im["id"], "category_id": int(rng.integers(1, n_classes + 1)),
-                "bbox": clip(float(rng.uniform(0, im["width"] - w)),
-                             float(rng.uniform(0, im["height"] - h)), w, h, im),
-                "score": score(),
-            })
+            dets.append(
+                {
+                    "image_id": im["id"],
+                    "category_id": int(rng.integers(1, n_classes + 1)),
+                    "bbox": clip(
+                        float(rng.uniform(0, im["width"] - w)),
+                        float(rng.uniform(0, im["height"] - h)),
+                        w,
+                        h,
+                        im,
+                    ),
+                    "score": score(),
+                }
+            )
     if extra_class_rate:
         for d in dets:
             if rng.random() < extra_class_rate:

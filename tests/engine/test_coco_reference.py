@@ -78,16 +78,23 @@ scenarios = st.fixed_dictionaries(
 )
 
 
-@settings(max_examples=60, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
+@settings(
+    max_examples=60, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture]
+)
 @given(scenario=scenarios)
 def test_random_splits_match_pycocotools(tmp_path, scenario):
     """Randomised splits agree with pycocotools on all 12 numbers and per class."""
     rng = np.random.default_rng(scenario["seed"])
     width, height = (64, 48) if scenario["small_frame"] else (1280, 720)
     split = make_split(
-        rng, n_images=scenario["n_images"], n_classes=scenario["n_classes"],
-        boxes_per_image=scenario["boxes_per_image"], crowd_rate=scenario["crowd_rate"],
-        width=width, height=height, area_noise=scenario["area_noise"],
+        rng,
+        n_images=scenario["n_images"],
+        n_classes=scenario["n_classes"],
+        boxes_per_image=scenario["boxes_per_image"],
+        crowd_rate=scenario["crowd_rate"],
+        width=width,
+        height=height,
+        area_noise=scenario["area_noise"],
         integer_coords=scenario["integer_coords"],
     )
     next_id = max(im["id"] for im in split["images"]) + 1
@@ -95,23 +102,43 @@ def test_random_splits_match_pycocotools(tmp_path, scenario):
         split["images"].append({"id": next_id + i, "width": width, "height": height})
     split["categories"].append({"id": 99, "name": "never_annotated"})
     detections = make_detections(
-        rng, split, hit_rate=scenario["hit_rate"], jitter=scenario["jitter"],
-        false_per_image=scenario["false_per_image"], duplicate_rate=scenario["duplicate_rate"],
-        score_levels=scenario["score_levels"], extra_class_rate=scenario["extra_class_rate"],
+        rng,
+        split,
+        hit_rate=scenario["hit_rate"],
+        jitter=scenario["jitter"],
+        false_per_image=scenario["false_per_image"],
+        duplicate_rate=scenario["duplicate_rate"],
+        score_levels=scenario["score_levels"],
+        extra_class_rate=scenario["extra_class_rate"],
     )
     if not detections:  # the reference cannot load an empty result list
-        detections = [{"image_id": split["images"][0]["id"], "category_id": 1,
-                       "bbox": [1.0, 1.0, 5.0, 5.0], "score": 0.5}]
+        detections = [
+            {
+                "image_id": split["images"][0]["id"],
+                "category_id": 1,
+                "bbox": [1.0, 1.0, 5.0, 5.0],
+                "score": 0.5,
+            }
+        ]
     _compare(tmp_path, split, detections)
 
 
 def test_fixed_larger_split_matches_pycocotools_bit_for_bit(tmp_path):
     """A 300-image split with 80 classes: the 12 numbers are identical, not just close."""
     rng = np.random.default_rng(20261202)
-    split = make_split(rng, n_images=300, n_classes=80, boxes_per_image=9, crowd_rate=0.02,
-                       width=1920, height=1080, area_noise=0.1)
-    detections = make_detections(rng, split, false_per_image=40, duplicate_rate=0.3,
-                                 score_levels=200)
+    split = make_split(
+        rng,
+        n_images=300,
+        n_classes=80,
+        boxes_per_image=9,
+        crowd_rate=0.02,
+        width=1920,
+        height=1080,
+        area_noise=0.1,
+    )
+    detections = make_detections(
+        rng, split, false_per_image=40, duplicate_rate=0.3, score_levels=200
+    )
     ours, reference = _compare(tmp_path, split, detections)
     assert [as_reference(ours["summary"][k]) for k in COCO_SUMMARY_KEYS] == list(reference.stats)
 
@@ -120,8 +147,16 @@ def test_area_exactly_32_squared_is_both_small_and_medium(tmp_path):
     """Closed size intervals, as in pycocotools: area 1024 counts in small and medium."""
     split = {
         "images": [{"id": 1, "width": 100, "height": 100}],
-        "annotations": [{"id": 1, "image_id": 1, "category_id": 1, "bbox": [10, 10, 32, 32],
-                         "area": 1024.0, "iscrowd": 0}],
+        "annotations": [
+            {
+                "id": 1,
+                "image_id": 1,
+                "category_id": 1,
+                "bbox": [10, 10, 32, 32],
+                "area": 1024.0,
+                "iscrowd": 0,
+            }
+        ],
         "categories": [{"id": 1, "name": "pedestrian"}],
     }
     detections = [{"image_id": 1, "category_id": 1, "bbox": [10, 10, 32, 32], "score": 0.9}]
@@ -133,12 +168,22 @@ def test_more_than_100_detections_keeps_the_top_100(tmp_path):
     """The reference keeps the 100 best per image and class; the 101st never counts."""
     split = {
         "images": [{"id": 1, "width": 1000, "height": 1000}],
-        "annotations": [{"id": 1, "image_id": 1, "category_id": 1, "bbox": [500, 500, 50, 50],
-                         "area": 2500.0, "iscrowd": 0}],
+        "annotations": [
+            {
+                "id": 1,
+                "image_id": 1,
+                "category_id": 1,
+                "bbox": [500, 500, 50, 50],
+                "area": 2500.0,
+                "iscrowd": 0,
+            }
+        ],
         "categories": [{"id": 1, "name": "car"}],
     }
-    false = [{"image_id": 1, "category_id": 1, "bbox": [i * 4.0, 0, 3, 3], "score": 0.9}
-             for i in range(100)]
+    false = [
+        {"image_id": 1, "category_id": 1, "bbox": [i * 4.0, 0, 3, 3], "score": 0.9}
+        for i in range(100)
+    ]
     hit = [{"image_id": 1, "category_id": 1, "bbox": [500, 500, 50, 50], "score": 0.1}]
     ours, _ = _compare(tmp_path, split, false + hit)
     assert ours["summary"]["AR100"] == 0.0
@@ -149,8 +194,14 @@ def _one_class_split(boxes, width=200, height=200):
     return {
         "images": [{"id": 1, "width": width, "height": height}],
         "annotations": [
-            {"id": i + 1, "image_id": 1, "category_id": 1, "bbox": list(b),
-             "area": float(b[2] * b[3]), "iscrowd": 0}
+            {
+                "id": i + 1,
+                "image_id": 1,
+                "category_id": 1,
+                "bbox": list(b),
+                "area": float(b[2] * b[3]),
+                "iscrowd": 0,
+            }
             for i, b in enumerate(boxes)
         ],
         "categories": [{"id": 1, "name": "cyclist"}],

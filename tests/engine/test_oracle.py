@@ -13,19 +13,35 @@ from .synthetic import make_detections, make_split
 
 def _random_inputs(files, seed, *, difficult_rate=0.15):
     rng = np.random.default_rng(seed)
-    split = make_split(rng, n_images=int(rng.integers(1, 8)), n_classes=int(rng.integers(1, 4)),
-                       boxes_per_image=float(rng.uniform(0.5, 6)), crowd_rate=0.1,
-                       integer_coords=bool(seed % 2), width=200, height=150)
+    split = make_split(
+        rng,
+        n_images=int(rng.integers(1, 8)),
+        n_classes=int(rng.integers(1, 4)),
+        boxes_per_image=float(rng.uniform(0.5, 6)),
+        crowd_rate=0.1,
+        integer_coords=bool(seed % 2),
+        width=200,
+        height=150,
+    )
     for ann in split["annotations"]:
         ann["difficult"] = int(rng.random() < difficult_rate)
-    detections = make_detections(rng, split, false_per_image=float(rng.uniform(0, 8)),
-                                 duplicate_rate=0.4, score_levels=int(rng.choice([4, 1000])))
+    detections = make_detections(
+        rng,
+        split,
+        false_per_image=float(rng.uniform(0, 8)),
+        duplicate_rate=0.4,
+        score_levels=int(rng.choice([4, 1000])),
+    )
     return files.load(split, detections)
 
 
 def _per_class_ap(result, classes):
-    return np.array([np.nan if result["per_class"][c]["AP"] is None else result["per_class"][c]["AP"]
-                     for c in classes])
+    return np.array(
+        [
+            np.nan if result["per_class"][c]["AP"] is None else result["per_class"][c]["AP"]
+            for c in classes
+        ]
+    )
 
 
 @pytest.mark.parametrize("seed", range(12))
@@ -56,8 +72,12 @@ def test_greedy_protocols_follow_pycocotools_rules(files, seed, spec):
     p = get_protocol(protocol)
     table = p.threshold_table(truth.classes)
     expected = oracle.greedy_ap(
-        truth, predictions, thresholds=list(table), recall_points=p.recall_points,
-        max_detections=p.max_detections_limit, epsilon=p.precision_epsilon,
+        truth,
+        predictions,
+        thresholds=list(table),
+        recall_points=p.recall_points,
+        max_detections=p.max_detections_limit,
+        epsilon=p.precision_epsilon,
     )
     # AP of a class = mean over slots (absent classes are NaN in every slot).
     np.testing.assert_allclose(

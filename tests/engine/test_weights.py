@@ -18,12 +18,18 @@ from .synthetic import make_detections, make_split
 
 def _scenario(seed, n_images=12):
     rng = np.random.default_rng(seed)
-    split = make_split(rng, n_images=n_images, n_classes=3, boxes_per_image=5, crowd_rate=0.1,
-                       tags=("night",), area_noise=0.2)
+    split = make_split(
+        rng,
+        n_images=n_images,
+        n_classes=3,
+        boxes_per_image=5,
+        crowd_rate=0.1,
+        tags=("night",),
+        area_noise=0.2,
+    )
     for ann in split["annotations"]:
         ann["difficult"] = int(rng.random() < 0.1)
-    detections = make_detections(rng, split, false_per_image=6, duplicate_rate=0.3,
-                                 score_levels=10)
+    detections = make_detections(rng, split, false_per_image=6, duplicate_rate=0.3, score_levels=10)
     return rng, split, detections
 
 
@@ -106,7 +112,9 @@ def test_halving_every_score_changes_nothing(files):
     a = evaluate(*files.load(split, detections), "coco")
     b = evaluate(*files.load(split, halved), "coco")
     assert a["summary"] == b["summary"]
-    assert {c: r["AP"] for c, r in a["per_class"].items()} == {c: r["AP"] for c, r in b["per_class"].items()}
+    assert {c: r["AP"] for c, r in a["per_class"].items()} == {
+        c: r["AP"] for c, r in b["per_class"].items()
+    }
 
 
 def test_order_of_records_in_the_files_changes_nothing(files):
@@ -114,8 +122,13 @@ def test_order_of_records_in_the_files_changes_nothing(files):
     rng, split, detections = _scenario(7)
     for i, d in enumerate(detections):
         d["score"] = (i + 1) / (len(detections) + 1)
-    shuffled_split = {**split, "images": list(reversed(split["images"])),
-                      "annotations": [split["annotations"][i] for i in rng.permutation(len(split["annotations"]))]}
+    shuffled_split = {
+        **split,
+        "images": list(reversed(split["images"])),
+        "annotations": [
+            split["annotations"][i] for i in rng.permutation(len(split["annotations"]))
+        ],
+    }
     shuffled = [detections[i] for i in rng.permutation(len(detections))]
     a = evaluate(*files.load(split, detections), "coco")
     b = evaluate(*files.load(shuffled_split, shuffled), "coco")

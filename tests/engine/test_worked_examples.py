@@ -119,12 +119,20 @@ def test_log_average_miss_rate(tmp_path):
         "image_id,label,x_min,y_min,x_max,y_max\n"
         + "".join(f"{i},pedestrian,10,10,50,90\n" for i in (1, 2, 3, 4))
     )
-    rows = [(1, 0.9, True), (5, 0.8, False), (2, 0.7, True), (6, 0.6, False),
-            (7, 0.5, False), (3, 0.4, True)]
+    rows = [
+        (1, 0.9, True),
+        (5, 0.8, False),
+        (2, 0.7, True),
+        (6, 0.6, False),
+        (7, 0.5, False),
+        (3, 0.4, True),
+    ]
     (tmp_path / "pred.csv").write_text(
         "image_id,label,x_min,y_min,x_max,y_max,score\n"
-        + "".join(f"{i},pedestrian,{10 if hit else 60},10,{50 if hit else 90},90,{s}\n"
-                  for i, s, hit in rows)
+        + "".join(
+            f"{i},pedestrian,{10 if hit else 60},10,{50 if hit else 90},90,{s}\n"
+            for i, s, hit in rows
+        )
     )
     truth = load_truth(tmp_path / "truth.csv", images=tmp_path / "images.csv")
     result = evaluate(truth, load_predictions(tmp_path / "pred.csv", truth), "coco")

@@ -68,8 +68,12 @@ def _read_truth(path, images, fmt, classes):
         box_fields = {"image": "image_id", "class": "category_id", "bbox": "bbox", "id": "id"}
         image_path = path
         checks.check_unique(path, cols["class_ids"], lambda i: f"categories[{i}]", "id")
-        checks.check_unique(path, np.array(cols["class_names"], dtype=object).astype(str),
-                            lambda i: f"categories[{i}]", "name")
+        checks.check_unique(
+            path,
+            np.array(cols["class_names"], dtype=object).astype(str),
+            lambda i: f"categories[{i}]",
+            "name",
+        )
     else:
         cols = _csv_truth_columns(path, images, classes)
         image_path = images
@@ -79,13 +83,20 @@ def _read_truth(path, images, fmt, classes):
 
     if len(cols["image_ids"]) == 0:
         raise InputError(image_path, "the split lists no images", field="images")
-    checks.check_unique(image_path, cols["image_ids"], image_locate, "image_id" if fmt == "csv" else "id")
+    checks.check_unique(
+        image_path, cols["image_ids"], image_locate, "image_id" if fmt == "csv" else "id"
+    )
     for name in ("image_width", "image_height"):
         values = cols[name]
         field = name.split("_")[1]
         checks.check_finite(image_path, values, image_locate, field)
-        checks.fail_at(image_path, values <= 0, image_locate, field,
-                       lambda i: f"must be > 0, got {values[i]:g}")
+        checks.fail_at(
+            image_path,
+            values <= 0,
+            image_locate,
+            field,
+            lambda i, values=values: f"must be > 0, got {values[i]:g}",
+        )
     if fmt == "json":
         checks.check_unique(path, cols["box_ids"], box_locate, "id")
 
@@ -95,9 +106,13 @@ def _read_truth(path, images, fmt, classes):
     class_ids = cols["class_ids"][class_order]
 
     box_image, found = checks.resolve(path, cols["box_image_ids"], image_ids, box_locate, "", "")
-    checks.require_found(path, found, cols["box_image_ids"], box_locate, box_fields["image"], "image")
+    checks.require_found(
+        path, found, cols["box_image_ids"], box_locate, box_fields["image"], "image"
+    )
     box_class, found = checks.resolve(path, cols["box_class_ids"], class_ids, box_locate, "", "")
-    checks.require_found(path, found, cols["box_class_ids"], box_locate, box_fields["class"], "class")
+    checks.require_found(
+        path, found, cols["box_class_ids"], box_locate, box_fields["class"], "class"
+    )
 
     boxes = cols["boxes"]
     checks.check_boxes(path, boxes, box_locate, box_fields["bbox"])
@@ -107,7 +122,9 @@ def _read_truth(path, images, fmt, classes):
     area = cols["box_area"]
     given = ~np.isnan(area)
     checks.fail_at(path, given & ~np.isfinite(area), box_locate, "area", "must be a finite number")
-    checks.fail_at(path, given & (area < 0), box_locate, "area", lambda i: f"must be >= 0, got {area[i]:g}")
+    checks.fail_at(
+        path, given & (area < 0), box_locate, "area", lambda i: f"must be >= 0, got {area[i]:g}"
+    )
     area = np.where(given, area, boxes[:, 2] * boxes[:, 3])
 
     names = [cols["class_names"][i] for i in class_order]
@@ -160,8 +177,12 @@ def _csv_truth_columns(path, images, classes):
     index = {name: i + 1 for i, name in enumerate(names)}
     label_ids = np.array([index.get(label, -1) for label in labels], np.int64)
     for i in np.flatnonzero(label_ids < 0)[:1]:
-        raise InputError(path, f"label {labels[i]!r} is not one of the split's classes",
-                         record=f"line {boxes['lines'][i]}", field="label")
+        raise InputError(
+            path,
+            f"label {labels[i]!r} is not one of the split's classes",
+            record=f"line {boxes['lines'][i]}",
+            field="label",
+        )
     return {
         "image_ids": image_ids,
         "image_width": widths,
@@ -182,8 +203,9 @@ def _csv_truth_columns(path, images, classes):
     }
 
 
-def load_predictions(path, truth, *, fmt=None, out_of_frame="clip", unknown_classes="reject",
-                     cache_dir=None):
+def load_predictions(
+    path, truth, *, fmt=None, out_of_frame="clip", unknown_classes="reject", cache_dir=None
+):
     """Load a detector's predictions for ``truth``.
 
     Parameters
@@ -199,11 +221,16 @@ def load_predictions(path, truth, *, fmt=None, out_of_frame="clip", unknown_clas
         raise InputError(path, f"unknown class policy {unknown_classes!r}; use reject or drop")
     fmt = _format(path, fmt)
     key = {
-        "kind": "predictions", "format": fmt, "truth": truth.content_hash(),
-        "out_of_frame": out_of_frame, "unknown_classes": unknown_classes,
+        "kind": "predictions",
+        "format": fmt,
+        "truth": truth.content_hash(),
+        "out_of_frame": out_of_frame,
+        "unknown_classes": unknown_classes,
     }
     return cached(
-        cache_dir, [path], key,
+        cache_dir,
+        [path],
+        key,
         lambda: _read_predictions(path, truth, fmt, out_of_frame, unknown_classes),
         "predictions",
     )
@@ -240,8 +267,13 @@ def _read_predictions(path, truth, fmt, out_of_frame, unknown_classes):
     dropped = 0
     if not found.all():
         if unknown_classes == "reject":
-            checks.fail_at(path, ~found, locate, fields["class"],
-                           lambda i: f"class {class_keys[i]!r} is not one of the split's classes")
+            checks.fail_at(
+                path,
+                ~found,
+                locate,
+                fields["class"],
+                lambda i: f"class {checks.show(class_keys[i])} is not one of the split's classes",
+            )
         keep = found
         dropped = int((~keep).sum())
         image, cls, boxes, score = image[keep], cls[keep], boxes[keep], score[keep]
@@ -251,10 +283,20 @@ def _read_predictions(path, truth, fmt, out_of_frame, unknown_classes):
     checks.check_boxes(path, boxes, locate, fields["bbox"])
     checks.check_finite(path, score, locate, "score")
     boxes, clipped = checks.clip_to_frame(
-        path, boxes, truth.image_width[image], truth.image_height[image], locate,
-        out_of_frame, fields["bbox"],
+        path,
+        boxes,
+        truth.image_width[image],
+        truth.image_height[image],
+        locate,
+        out_of_frame,
+        fields["bbox"],
     )
     return Predictions(
-        image=image.astype(np.int32), cls=cls.astype(np.int32), boxes=boxes, score=score,
-        clipped=clipped, dropped=dropped, source=str(path),
+        image=image.astype(np.int32),
+        cls=cls.astype(np.int32),
+        boxes=boxes,
+        score=score,
+        clipped=clipped,
+        dropped=dropped,
+        source=str(path),
     )

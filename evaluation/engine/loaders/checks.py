@@ -13,6 +13,11 @@ from ..errors import InputError
 TRUTH_BOUNDS_TOLERANCE = 1.0
 
 
+def show(value):
+    """A value as the user wrote it: 7, 'f3' (not numpy's np.int64(7))."""
+    return repr(value.item() if hasattr(value, "item") else value)
+
+
 def first(mask):
     hits = np.flatnonzero(mask)
     return int(hits[0]) if len(hits) else None
@@ -21,7 +26,9 @@ def first(mask):
 def fail_at(path, mask, locate, field, message):
     i = first(mask)
     if i is not None:
-        raise InputError(path, message(i) if callable(message) else message, record=locate(i), field=field)
+        raise InputError(
+            path, message(i) if callable(message) else message, record=locate(i), field=field
+        )
 
 
 def check_unique(path, values, locate, field):
@@ -38,7 +45,7 @@ def check_unique(path, values, locate, field):
         first_seen = int(order[np.searchsorted(ordered, values[i])])
         raise InputError(
             path,
-            f"duplicate id {values[i]!r} (first used by {locate(first_seen)})",
+            f"duplicate id {show(values[i])} (first used by {locate(first_seen)})",
             record=locate(i),
             field=field,
         )
@@ -54,24 +61,33 @@ def check_finite(path, array, locate, field):
 def check_boxes(path, boxes, locate, field="bbox"):
     """Finite boxes with positive width and height."""
     check_finite(path, boxes, locate, field)
-    fail_at(path, boxes[:, 2] <= 0, locate, field,
-            lambda i: f"width must be > 0, got {boxes[i, 2]:g}")
-    fail_at(path, boxes[:, 3] <= 0, locate, field,
-            lambda i: f"height must be > 0, got {boxes[i, 3]:g}")
+    fail_at(
+        path, boxes[:, 2] <= 0, locate, field, lambda i: f"width must be > 0, got {boxes[i, 2]:g}"
+    )
+    fail_at(
+        path, boxes[:, 3] <= 0, locate, field, lambda i: f"height must be > 0, got {boxes[i, 3]:g}"
+    )
 
 
 def outside_frame(boxes, width, height, tolerance):
     x, y, w, h = boxes.T
-    return (x < -tolerance) | (y < -tolerance) | (x + w > width + tolerance) | (y + h > height + tolerance)
+    return (
+        (x < -tolerance)
+        | (y < -tolerance)
+        | (x + w > width + tolerance)
+        | (y + h > height + tolerance)
+    )
 
 
 def check_inside(path, boxes, width, height, locate, field="bbox"):
     """Reject ground truth lying outside its image (beyond the tolerance)."""
     bad = outside_frame(boxes, width, height, TRUTH_BOUNDS_TOLERANCE)
     fail_at(
-        path, bad, locate, field,
-        lambda i: f"box {boxes[i].tolist()} extends outside its "
-        f"{width[i]:g}x{height[i]:g} image",
+        path,
+        bad,
+        locate,
+        field,
+        lambda i: f"box {boxes[i].tolist()} extends outside its {width[i]:g}x{height[i]:g} image",
     )
 
 
@@ -84,9 +100,14 @@ def clip_to_frame(path, boxes, width, height, locate, policy, field="bbox"):
     outside = outside_frame(boxes, width, height, 0.0)
     if policy == "reject":
         fail_at(
-            path, outside, locate, field,
-            lambda i: f"box {boxes[i].tolist()} extends outside its {width[i]:g}x{height[i]:g} "
-            "image (policy: reject)",
+            path,
+            outside,
+            locate,
+            field,
+            lambda i: (
+                f"box {boxes[i].tolist()} extends outside its {width[i]:g}x{height[i]:g} "
+                "image (policy: reject)"
+            ),
         )
         return boxes, 0
     if policy != "clip":
@@ -99,9 +120,13 @@ def clip_to_frame(path, boxes, width, height, locate, policy, field="bbox"):
     y2 = np.clip(boxes[:, 1] + boxes[:, 3], 0, height)
     clipped = np.where(outside[:, None], np.column_stack([x1, y1, x2 - x1, y2 - y1]), boxes)
     fail_at(
-        path, (clipped[:, 2] <= 0) | (clipped[:, 3] <= 0), locate, field,
-        lambda i: f"box {boxes[i].tolist()} lies entirely outside its "
-        f"{width[i]:g}x{height[i]:g} image",
+        path,
+        (clipped[:, 2] <= 0) | (clipped[:, 3] <= 0),
+        locate,
+        field,
+        lambda i: (
+            f"box {boxes[i].tolist()} lies entirely outside its {width[i]:g}x{height[i]:g} image"
+        ),
     )
     return clipped, int(outside.sum())
 
@@ -117,10 +142,16 @@ def resolve(path, external, known, locate, field, what):
     ordered = known[order]
     pos = np.searchsorted(ordered, external)
     pos_safe = np.minimum(pos, len(ordered) - 1) if len(ordered) else pos
-    found = (pos < len(ordered)) & (ordered[pos_safe] == external) if len(ordered) else np.zeros(len(external), bool)
+    found = (
+        (pos < len(ordered)) & (ordered[pos_safe] == external)
+        if len(ordered)
+        else np.zeros(len(external), bool)
+    )
     index = np.where(found, order[pos_safe] if len(ordered) else 0, -1).astype(np.int32)
     return index, found
 
 
 def require_found(path, found, external, locate, field, what):
-    fail_at(path, ~found, locate, field, lambda i: f"{what} {external[i]!r} is not in the split")
+    fail_at(
+        path, ~found, locate, field, lambda i: f"{what} {show(external[i])} is not in the split"
+    )

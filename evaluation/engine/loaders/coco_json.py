@@ -66,6 +66,9 @@ def validation_error(path, error, *, top_level_list, base=0):
     text = str(error)
     m = _PATH.match(text)
     if not m:
+        missing = re.match(r"^Object missing required field `(\w+)`$", text)
+        if missing:
+            return InputError(path, "missing required field", field=missing[1])
         return InputError(path, _friendly(text))
     message, where = _friendly(m["msg"]), m["path"]
     field_match = re.match(r"^(?P<msg>object missing required field) '(?P<f>\w+)'$", message)
@@ -106,8 +109,9 @@ def read_truth(path):
     except msgspec.ValidationError as e:
         if str(e).startswith("Expected `object`, got `array`"):
             raise InputError(
-                path, "expected a ground-truth object with images, annotations and "
-                "categories, got a JSON array (is this a predictions file?)"
+                path,
+                "expected a ground-truth object with images, annotations and "
+                "categories, got a JSON array (is this a predictions file?)",
             ) from None
         raise validation_error(path, e, top_level_list=False) from None
     except msgspec.DecodeError as e:
@@ -141,7 +145,7 @@ def _columns(records):
     )
 
 
-def _slices(data):
+def _slices(data, path):
     """Byte ranges of the records of a top-level JSON array, a few MB at a time.
 
     A cut is placed after a ``}`` followed by a comma. Should that ``}`` sit inside
@@ -155,7 +159,9 @@ def _slices(data):
     end = n
     while end > start and data[end - 1 : end].isspace():
         end -= 1
-    if start >= end or data[start : start + 1] != b"[" or data[end - 1 : end] != b"]":
+    if start >= end:
+        raise InputError(path, "the file is empty")
+    if data[start : start + 1] != b"[" or data[end - 1 : end] != b"]":
         yield None
         return
     pos, stop = start + 1, end - 1
@@ -185,8 +191,8 @@ def _decode_whole(path, data):
     except msgspec.ValidationError as e:
         if str(e).startswith("Expected `array`, got `object`"):
             raise InputError(
-                path, "expected a JSON array of detections, got an object "
-                "(is this a ground-truth file?)"
+                path,
+                "expected a JSON array of detections, got an object (is this a ground-truth file?)",
             ) from None
         raise validation_error(path, e, top_level_list=True) from None
     except msgspec.DecodeError as e:
@@ -202,7 +208,7 @@ def read_detections(path):
         f.seek(0)
         with mmap.mmap(f.fileno(), 0, access=mmap.ACCESS_READ) as data:
             parts = []
-            for piece in _slices(data):
+            for piece in _slices(data, path):
                 if piece is None:
                     parts = _decode_whole(path, data[:])
                     break

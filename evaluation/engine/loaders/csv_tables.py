@@ -11,7 +11,6 @@ large file never exists as Python strings all at once. Errors name the line numb
 """
 
 import csv
-import io
 
 import numpy as np
 
@@ -41,7 +40,9 @@ def _floats(path, values, lines, field):
 def _flags(path, values, lines, field):
     for value, line in zip(values, lines):
         if value not in ("", "0", "1"):
-            raise InputError(path, f"expected 0 or 1, got {value!r}", record=f"line {line}", field=field)
+            raise InputError(
+                path, f"expected 0 or 1, got {value!r}", record=f"line {line}", field=field
+            )
     return np.array([v == "1" for v in values], bool)
 
 
@@ -81,7 +82,8 @@ def read_blocks(path, required, optional=()):
                     continue
                 if len(row) != width:
                     raise InputError(
-                        path, f"expected {width} fields as in the header, got {len(row)}",
+                        path,
+                        f"expected {width} fields as in the header, got {len(row)}",
                         record=f"line {line}",
                     )
                 for c, p in zip(wanted, positions):
@@ -92,7 +94,9 @@ def read_blocks(path, required, optional=()):
                     block = {c: [] for c in wanted}
                     lines = []
         except csv.Error as e:
-            raise InputError(path, f"malformed CSV: {e}", record=f"line {reader.line_num}") from None
+            raise InputError(
+                path, f"malformed CSV: {e}", record=f"line {reader.line_num}"
+            ) from None
         except UnicodeDecodeError:
             raise InputError(path, "not UTF-8 text", record=f"line {reader.line_num + 1}") from None
         if lines:
@@ -100,7 +104,9 @@ def read_blocks(path, required, optional=()):
 
 
 def _corner_boxes(path, block, lines):
-    x1, y1, x2, y2 = (_floats(path, block[c], lines, c) for c in ("x_min", "y_min", "x_max", "y_max"))
+    x1, y1, x2, y2 = (
+        _floats(path, block[c], lines, c) for c in ("x_min", "y_min", "x_max", "y_max")
+    )
     return np.column_stack([x1, y1, x2 - x1, y2 - y1])
 
 
@@ -120,14 +126,19 @@ def read_detections(path):
 
 def read_boxes(path):
     """Columns of a ground-truth boxes CSV."""
-    out = {k: [] for k in ("image_id", "label", "boxes", "crowd", "difficult", "ignore", "area", "lines")}
+    out = {
+        k: []
+        for k in ("image_id", "label", "boxes", "crowd", "difficult", "ignore", "area", "lines")
+    }
     for block, lines in read_blocks(path, BOX_COLUMNS, BOX_OPTIONAL):
         n = len(lines)
         out["image_id"].extend(block["image_id"])
         out["label"].extend(block["label"])
         out["boxes"].append(_corner_boxes(path, block, lines))
         for flag in ("crowd", "difficult", "ignore"):
-            out[flag].append(_flags(path, block[flag], lines, flag) if flag in block else np.zeros(n, bool))
+            out[flag].append(
+                _flags(path, block[flag], lines, flag) if flag in block else np.zeros(n, bool)
+            )
         if "area" in block:
             values = [v if v else "nan" for v in block["area"]]
             area = _floats(path, values, lines, "area")
@@ -136,7 +147,9 @@ def read_boxes(path):
         out["area"].append(area)
         out["lines"].append(np.array(lines, np.int64))
     for key in ("boxes", "crowd", "difficult", "ignore", "area", "lines"):
-        out[key] = np.concatenate(out[key]) if out[key] else np.zeros((0, 4) if key == "boxes" else 0)
+        out[key] = (
+            np.concatenate(out[key]) if out[key] else np.zeros((0, 4) if key == "boxes" else 0)
+        )
     return out
 
 
@@ -156,6 +169,6 @@ def read_images(path):
 
 
 def sniff_is_json(path):
-    with io.open(path, "rb") as f:
+    with open(path, "rb") as f:
         head = f.read(4096).lstrip()
     return head[:1] in (b"[", b"{")

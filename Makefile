@@ -1,0 +1,27 @@
+# Benchbook: the two commands of the README, and a few helpers.
+PYTHON ?= python3
+VENV   := .venv
+BIN    := $(VENV)/bin
+STAMP  := $(VENV)/.installed-$(shell cat requirements.txt requirements-dev.txt | cksum | cut -d' ' -f1)
+
+.PHONY: test lint bench clean
+
+$(STAMP): requirements.txt requirements-dev.txt
+	@$(PYTHON) -c 'import sys; assert sys.version_info[:2] == (3, 11), "Benchbook needs Python 3.11"'
+	$(PYTHON) -m venv $(VENV)
+	$(BIN)/python -m pip install --quiet -r requirements.txt -r requirements-dev.txt
+	@rm -f $(VENV)/.installed-* && touch $(STAMP)
+
+## Run the whole test suite (engine doctests included).
+test: $(STAMP)
+	$(BIN)/python -m pytest
+
+lint: $(STAMP)
+	$(BIN)/ruff check . && $(BIN)/ruff format --check .
+
+## The engine against pycocotools and faster-coco-eval at full scale (a few minutes).
+bench: $(STAMP)
+	$(BIN)/python bench/engine_vs_reference.py
+
+clean:
+	rm -rf $(VENV) var bench/out

@@ -1,0 +1,348 @@
+"""Bad input: every error names the file, the record and the field (common practice:
+an error a user can act on without opening a debugger)."""
+
+import json
+
+import numpy as np
+import pytest
+
+from evaluation.engine import InputError, load_predictions, load_truth
+from evaluation.engine.loaders import coco_json
+
+TRUTH = {
+    "images": [{"id": 1, "width": 640, "height": 480}, {"id": 2, "width": 640, "height": 480}],
+    "annotations": [
+        {
+            "id": 1,
+            "image_id": 1,
+            "category_id": 1,
+            "bbox": [10, 10, 50, 80],
+            "area": 4000,
+            "iscrowd": 0,
+        },
+        {
+            "id": 2,
+            "image_id": 2,
+            "category_id": 2,
+            "bbox": [100, 50, 200, 100],
+            "area": 20000,
+            "iscrowd": 0,
+        },
+    ],
+    "categories": [{"id": 1, "name": "pedestrian"}, {"id": 2, "name": "car"}],
+}
+DET = {"image_id": 1, "category_id": 1, "bbox": [10, 10, 50, 80], "score": 0.9}
+
+
+def _truth(files, data=TRUTH, name="split.json"):
+    return load_truth(files.write(name, data))
+
+
+def _with(**changes):
+    data = json.loads(json.dumps(TRUTH))
+    for path, value in changes.items():
+        section, index, field = path.split(".")
+        data[section][int(index)][field] = value
+    return data
+
+
+@pytest.mark.parametrize(
+    "data, pattern",
+    [
+        (
+            _with(**{"annotations.1.bbox": [1, 2, 3]}),
+            r"split\.json: annotations\[1\]: field 'bbox': expected 'array' of length 4",
+        ),
+        (
+            _with(**{"annotations.0.bbox": [10, 10, 0, 80]}),
+            r"split\.json: annotations\[0\]: field 'bbox': width must be > 0, got 0",
+        ),
+        (
+            _with(**{"annotations.1.bbox": [10, 10, 5, -3]}),
+            r"split\.json: annotations\[1\]: field 'bbox': height must be > 0, got -3",
+        ),
+        (
+            _with(**{"annotations.1.bbox": [600, 10, 100, 30]}),
+            r"split\.json: annotations\[1\]: field 'bbox': box .* extends outside its 640x480 image",
+        ),
+        (
+            _with(**{"annotations.1.image_id": 7}),
+            r"split\.json: annotations\[1\]: field 'image_id': image 7 is not in the split",
+        ),
+        (
+            _with(**{"annotations.0.category_id": 5}),
+            r"split\.json: annotations\[0\]: field 'category_id': class 5 is not in the split",
+        ),
+        (
+            _with(**{"annotations.1.id": 1}),
+            r"split\.json: annotations\[1\]: field 'id': duplicate id 1 \(first used by annotations\[0\]\)",
+        ),
+        (
+            _with(**{"images.1.id": 1}),
+            r"split\.json: images\[1\]: field 'id': duplicate id 1 \(first used by images\[0\]\)",
+        ),
+        (
+            _with(**{"categories.1.name": "pedestrian"}),
+            r"split\.json: categories\[1\]: field 'name': duplicate id 'pedestrian'",
+        ),
+        (
+            _with(**{"images.0.width": 0}),
+            r"split\.json: images\[0\]: field 'width': must be > 0, got 0",
+        ),
+        (
+            _with(**{"annotations.0.area": -5}),
+            r"split\.json: annotations\[0\]: field 'area': must be >= 0, got -5",
+        ),
+        (_with(**{"annotations.0.score": 1}), None),  # unknown fields are ignored
+        (
+            _with(**{"images.0.id": "1"}),
+            r"split\.json: images\[0\]: field 'id': expected 'int', got 'str'",
+        ),
+        (
+            {"images": [], "annotations": [], "categories": []},
+            r"split\.json: field 'images': the split lists no images",
+        ),
+        (
+            {"annotations": [], "categories": []},
+            r"split\.json: field 'images': missing required field",
+        ),
+        ([DET], r"split\.json: expected a ground-truth object .* got a JSON array"),
+    ],
+)
+def test_bad_truth_is_refused_with_its_location(files, data, pattern):
+    if pattern is None:
+        assert _truth(files, data).n_boxes == 2
+        return
+    with pytest.raises(InputError, match=pattern):
+        _truth(files, data)
+
+
+def test_truth_boxes_may_overhang_by_a_pixel(files):
+    """Published splits carry boxes rounded just past the frame; 1 px is tolerated."""
+    truth = _truth(files, _with(**{"annotations.1.bbox": [440.5, 10, 200, 100]}))
+    assert truth.n_boxes == 2
+
+
+@pytest.mark.parametrize(
+    "content, pattern",
+    [
+        ("", r"predictions\.json: the file is empty"),
+        ("   \n", r"predictions\.json: the file is empty"),
+        (
+            '[{"image_id": 1, "category_id": 1, "bbox": [1,2,3,4], "score": 0.5},',
+            r"predictions\.json: the JSON ends early: the file looks truncated",
+        ),
+        (
+            '[{"image_id": 1, "category_id": 1 "bbox": [1,2,3,4], "score": 0.5}]',
+            r"predictions\.json: not valid JSON: .* at line 1, column 35",
+        ),
+        (
+            [DET, {**DET, "score": "high"}],
+            r"predictions\.json: record 1: field 'score': expected 'float', got 'str'",
+        ),
+        (
+            [DET, {k: v for k, v in DET.items() if k != "score"}],
+            r"predictions\.json: record 1: field 'score': missing required field",
+        ),
+        (
+            '[{"image_id": 1, "category_id": 1, "bbox": [1,2,3,4], "score": 1e999}]',
+            r"predictions\.json: record 0: field 'score': number out of range",
+        ),
+        (
+            [{**DET, "bbox": [10, 10, -4, 20]}],
+            r"predictions\.json: record 0: field 'bbox': width must be > 0, got -4",
+        ),
+        (
+            [DET, DET, {**DET, "image_id": 42}],
+            r"predictions\.json: record 2: field 'image_id': image 42 is not in the split",
+        ),
+        (
+            [{**DET, "category_id": 9}],
+            r"predictions\.json: record 0: field 'category_id': class 9 is not one of the split's classes",
+        ),
+        (
+            [{**DET, "bbox": [700, 10, 20, 20]}],
+            r"predictions\.json: record 0: field 'bbox': box .* lies entirely outside its 640x480 image",
+        ),
+        (TRUTH, r"predictions\.json: expected a JSON array of detections, got an object"),
+    ],
+)
+def test_bad_predictions_are_refused_with_their_location(files, content, pattern):
+    truth = _truth(files)
+    path = files.write("predictions.json", content)
+    with pytest.raises(InputError, match=pattern):
+        load_predictions(path, truth)
+
+
+def test_out_of_frame_policy(files):
+    truth = _truth(files)
+    path = files.write("predictions.json", [DET, {**DET, "bbox": [600, 400, 100, 100]}])
+    clipped = load_predictions(path, truth)
+    assert clipped.clipped == 1
+    assert clipped.boxes[1].tolist() == [600, 400, 40, 80]
+    with pytest.raises(InputError, match=r"record 1: field 'bbox': .*\(policy: reject\)"):
+        load_predictions(path, truth, out_of_frame="reject")
+
+
+def test_unknown_classes_can_be_dropped_and_counted(files):
+    truth = _truth(files)
+    path = files.write("predictions.json", [DET, {**DET, "category_id": 9}])
+    loaded = load_predictions(path, truth, unknown_classes="drop")
+    assert (len(loaded), loaded.dropped) == (1, 1)
+
+
+def test_empty_prediction_list_is_valid(files):
+    from evaluation.engine import evaluate
+
+    truth = _truth(files)
+    result = evaluate(truth, load_predictions(files.write("p.json", []), truth), "coco")
+    assert result["summary"]["AP"] == 0.0
+    assert result["per_class"]["car"]["AP"] == 0.0
+
+
+def test_chunked_decoding_equals_whole_file(files, monkeypatch):
+    """Large files are decoded a slice at a time; slices must not change the result,
+    even when a record carries a string with '},' inside it."""
+    rng = np.random.default_rng(3)
+    dets = [
+        {
+            "image_id": int(rng.integers(1, 3)),
+            "category_id": int(rng.integers(1, 3)),
+            "bbox": [float(rng.uniform(0, 300)), 5.0, 20.0, 30.0],
+            "score": float(rng.random()),
+            "note": "x},{y" if i % 7 == 0 else "ok",
+        }
+        for i in range(500)
+    ]
+    path = files.write("predictions.json", json.dumps(dets, indent=1))
+    truth = _truth(files)
+    whole = load_predictions(path, truth)
+    monkeypatch.setattr(coco_json, "CHUNK_BYTES", 200)
+    sliced = load_predictions(path, truth)
+    assert np.array_equal(whole.boxes, sliced.boxes) and np.array_equal(whole.score, sliced.score)
+    assert len(sliced) == 500
+
+
+def test_error_in_a_later_slice_names_the_absolute_record(files, monkeypatch):
+    dets = [DET] * 300 + [{**DET, "score": None}]
+    path = files.write("predictions.json", dets)
+    monkeypatch.setattr(coco_json, "CHUNK_BYTES", 256)
+    with pytest.raises(InputError, match=r"record 300: field 'score'"):
+        load_predictions(path, _truth(files))
+
+
+# CSV ------------------------------------------------------------------------------
+
+IMAGES_CSV = "image_id,width,height,tags\nf1,1280,720,night;rain\nf2,1280,720,\n"
+BOXES_CSV = "image_id,label,x_min,y_min,x_max,y_max,crowd\nf1,pedestrian,10,10,50,90,0\nf2,car,100,100,300,200,0\n"
+
+
+def _csv_truth(files, boxes=BOXES_CSV, images=IMAGES_CSV):
+    return load_truth(files.write("boxes.csv", boxes), images=files.write("images.csv", images))
+
+
+@pytest.mark.parametrize(
+    "boxes, images, pattern",
+    [
+        (
+            "image_id,label,x_min,y_min,x_max\nf1,car,1,2,3\n",
+            IMAGES_CSV,
+            r"boxes\.csv: line 1: field 'y_max': missing column\(s\) y_max",
+        ),
+        (
+            BOXES_CSV + "f2,car,1,2,3\n",
+            IMAGES_CSV,
+            r"boxes\.csv: line 4: expected 7 fields as in the header, got 5",
+        ),
+        (
+            BOXES_CSV + "f2,car,1,2,abc,9,0\n",
+            IMAGES_CSV,
+            r"boxes\.csv: line 4: field 'x_max': expected a number, got 'abc'",
+        ),
+        (
+            BOXES_CSV + "f2,car,nan,2,30,9,0\n",
+            IMAGES_CSV,
+            r"boxes\.csv: line 4: field 'x_min..y_max': must be a finite number",
+        ),
+        (
+            BOXES_CSV + "f3,car,1,2,30,9,0\n",
+            IMAGES_CSV,
+            r"boxes\.csv: line 4: field 'image_id': image 'f3' is not in the split",
+        ),
+        (
+            BOXES_CSV + "f2,car,1,2,30,9,2\n",
+            IMAGES_CSV,
+            r"boxes\.csv: line 4: field 'crowd': expected 0 or 1, got '2'",
+        ),
+        (
+            BOXES_CSV,
+            "image_id,width,height\nf1,1280,720\nf1,640,480\n",
+            r"images\.csv: line 3: field 'image_id': duplicate id 'f1' \(first used by line 2\)",
+        ),
+        (
+            BOXES_CSV,
+            "image_id,width,height\nf1,1280,-720\n",
+            r"images\.csv: line 2: field 'height': must be > 0, got -720",
+        ),
+        (BOXES_CSV, "image_id,width,height\n", r"images\.csv: the images table lists no images"),
+        ("", IMAGES_CSV, r"boxes\.csv: the file is empty"),
+    ],
+)
+def test_bad_csv_split_is_refused_with_its_line(files, boxes, images, pattern):
+    with pytest.raises(InputError, match=pattern):
+        _csv_truth(files, boxes, images)
+
+
+def test_csv_split_reads_tags_and_string_ids(files):
+    truth = _csv_truth(files)
+    assert truth.classes == ("car", "pedestrian")
+    assert truth.image_tags == (("night", "rain"), ())
+    assert truth.tags() == ["night", "rain"]
+    assert truth.boxes[0].tolist() == [10, 10, 40, 80]
+
+
+@pytest.mark.parametrize(
+    "rows, pattern",
+    [
+        ("f1,cat,1,2,30,40,0.5\n", r"pred\.csv: line 2: field 'label': class 'cat' is not one of"),
+        ("f1,car,1,2,30,40,inf\n", r"pred\.csv: line 2: field 'score': must be a finite number"),
+        (
+            "f9,car,1,2,30,40,0.5\n",
+            r"pred\.csv: line 2: field 'image_id': image 'f9' is not in the split",
+        ),
+        ("f1,car,1,2,30,40\n", r"pred\.csv: line 2: expected 7 fields as in the header, got 6"),
+    ],
+)
+def test_bad_csv_predictions(files, rows, pattern):
+    truth = _csv_truth(files)
+    path = files.write("pred.csv", "image_id,label,x_min,y_min,x_max,y_max,score\n" + rows)
+    with pytest.raises(InputError, match=pattern):
+        load_predictions(path, truth)
+
+
+def test_missing_file(files, tmp_path):
+    with pytest.raises(InputError, match=r"nowhere\.json: cannot open"):
+        load_truth(tmp_path / "nowhere.json")
+
+
+def test_columnar_cache_round_trip(files, tmp_path):
+    cache = tmp_path / "cache"
+    gt = files.write("split.json", TRUTH)
+    first = load_truth(gt, cache_dir=cache)
+    again = load_truth(gt, cache_dir=cache)
+    assert first.content_hash() == again.content_hash()
+    assert again.classes == first.classes and again.image_tags == first.image_tags
+    pred_path = files.write("predictions.json", [DET, {**DET, "image_id": 2}])
+    p1 = load_predictions(pred_path, first, cache_dir=cache)
+    p2 = load_predictions(pred_path, again, cache_dir=cache)
+    assert len(list(cache.iterdir())) == 2
+    assert np.array_equal(p1.boxes, p2.boxes) and np.array_equal(p1.image, p2.image)
+
+
+def test_content_hash_ignores_record_order(files):
+    data = json.loads(json.dumps(TRUTH))
+    data["annotations"].reverse()
+    data["images"].reverse()
+    assert _truth(files).content_hash() == _truth(files, data, "other.json").content_hash()
+    data["annotations"][0]["bbox"][0] += 1
+    assert _truth(files).content_hash() != _truth(files, data, "third.json").content_hash()

@@ -1,0 +1,119 @@
+"""``python -m evaluation.engine``: exit 0 with a table or JSON, exit 2 on bad input."""
+
+import json
+import subprocess
+import sys
+
+import numpy as np
+import pytest
+
+from evaluation.engine import COCO_SUMMARY_KEYS, MatchRecords, score_records
+from evaluation.engine.__main__ import main
+
+from .synthetic import make_detections, make_split
+
+
+@pytest.fixture
+def inputs(files):
+    rng = np.random.default_rng(11)
+    split = make_split(rng, n_images=15, n_classes=3)
+    return files.write("gt.json", split), files.write("dt.json", make_detections(rng, split))
+
+
+def test_json_output_has_the_documented_shape(inputs, capsys):
+    gt, dt = inputs
+    assert main(["score", "--truth", str(gt), "--predictions", str(dt), "--format", "json"]) == 0
+    result = json.loads(capsys.readouterr().out)
+    assert list(result["summary"]) == list(COCO_SUMMARY_KEYS)
+    assert result["protocol"] == "coco" and result["engine_version"]
+    assert set(result["per_class"]) == {"class1", "class2", "class3"}
+
+
+@pytest.mark.parametrize("protocol", ["coco", "voc07", "voc", "recall40"])
+def test_table_output_for_every_preset(inputs, capsys, protocol):
+    gt, dt = inputs
+    assert (
+        main(["score", "--truth", str(gt), "--predictions", str(dt), "--protocol", protocol]) == 0
+    )
+    out = capsys.readouterr().out
+    assert f"protocol {protocol} v1" in out and "per class" in out and "class2" in out
+
+
+def test_custom_protocol_file(inputs, files, capsys):
+    gt, dt = inputs
+    spec = files.write(
+        "p.json", {"name": "strict", "iou_thresholds": [0.8], "recall_points": "all"}
+    )
+    assert (
+        main(
+            [
+                "score",
+                "--truth",
+                str(gt),
+                "--predictions",
+                str(dt),
+                "--protocol",
+                str(spec),
+                "--format",
+                "json",
+            ]
+        )
+        == 0
+    )
+    assert json.loads(capsys.readouterr().out)["protocol"] == "strict"
+
+
+def test_records_written_by_the_cli_rescore_identically(inputs, files, capsys):
+    gt, dt = inputs
+    path = files.root / "records.npz"
+    main(
+        [
+            "score",
+            "--truth",
+            str(gt),
+            "--predictions",
+            str(dt),
+            "--format",
+            "json",
+            "--records",
+            str(path),
+        ]
+    )
+    printed = json.loads(capsys.readouterr().out)
+    again = score_records(MatchRecords.load(path), "coco")
+    assert again["summary"] == printed["summary"]
+    assert again["per_class"] == printed["per_class"]
+
+
+def test_unknown_protocol_exits_2(inputs, capsys):
+    gt, dt = inputs
+    assert main(["score", "--truth", str(gt), "--predictions", str(dt), "--protocol", "kitti"]) == 2
+    assert "not a preset (coco, voc07, voc, recall40)" in capsys.readouterr().err
+
+
+def test_missing_predictions_file_exits_2(inputs, capsys):
+    gt, _ = inputs
+    assert main(["score", "--truth", str(gt), "--predictions", "missing.json"]) == 2
+    assert "missing.json: cannot open" in capsys.readouterr().err
+
+
+def test_a_real_process_prints_no_traceback(inputs, files):
+    gt, _ = inputs
+    bad = files.write("bad.json", '[{"image_id": 1, "category_id": 1, "bbox": [1, 2], "score": 1}]')
+    proc = subprocess.run(
+        [
+            sys.executable,
+            "-m",
+            "evaluation.engine",
+            "score",
+            "--truth",
+            str(gt),
+            "--predictions",
+            str(bad),
+        ],
+        capture_output=True,
+        text=True,
+    )
+    assert proc.returncode == 2
+    assert "bad.json: record 0: field 'bbox': expected 'array' of length 4" in proc.stderr
+    assert "Traceback" not in proc.stderr

@@ -1,0 +1,50 @@
+"""Protocol presets and custom presets."""
+
+import numpy as np
+import pytest
+
+from evaluation.engine import PRESETS, InputError, protocol_from_dict
+
+
+def test_coco_thresholds_are_numpys_linspace_exactly():
+    """pycocotools selects AP50/AP75 by equality with linspace values (from its source)."""
+    assert PRESETS["coco"].iou_thresholds == tuple(np.linspace(0.5, 0.95, 10).tolist())
+    assert PRESETS["coco"].recall_points == tuple(np.linspace(0, 1, 101).tolist())
+
+
+def test_recall40_points_leave_out_zero():
+    points = PRESETS["recall40"].recall_points
+    assert len(points) == 40 and points[0] == 1 / 40 and points[-1] == 1.0
+
+
+def test_per_class_thresholds():
+    table = PRESETS["recall40"].threshold_table(("car", "pedestrian", "bus"))
+    assert table.tolist() == [[0.7, 0.5, 0.7]]
+
+
+@pytest.mark.parametrize(
+    "spec, pattern",
+    [
+        ({"iou_thresholds": [0.5]}, r"field 'name': a custom protocol needs a non-empty name"),
+        (
+            {"name": "x", "iou_thresholds": [1.5]},
+            r"field 'iou_thresholds': item 0 = 1.5 is outside",
+        ),
+        ({"name": "x", "iou_thresholds": []}, r"field 'iou_thresholds': must be a non-empty list"),
+        ({"name": "x", "recall_points": [0.5, 0.1]}, r"field 'recall_points': must be ascending"),
+        ({"name": "x", "matching": "hungarian"}, r"field 'matching': must be 'greedy' or"),
+        ({"name": "x", "class_iou_thresholds": {"car": 2}}, r"IoU for 'car' must be in \[0, 1\]"),
+        ({"name": "x", "colour": "red"}, r"field 'colour': unknown key"),
+        ({"name": "x", "base": "yolo"}, r"unknown protocol 'yolo'"),
+        ({"name": "x", "max_detections": 0}, r"field 'max_detections': must be a positive integer"),
+    ],
+)
+def test_custom_protocol_errors_name_the_field(spec, pattern):
+    with pytest.raises(InputError, match=pattern):
+        protocol_from_dict(spec)
+
+
+def test_custom_protocol_inherits_from_its_base():
+    p = protocol_from_dict({"name": "voc-strict", "base": "voc", "iou_thresholds": [0.7]})
+    assert (p.matching, p.pixel_offset, p.recall_points) == ("best_overlap", 1.0, None)
+    assert p.iou_thresholds == (0.7,)
