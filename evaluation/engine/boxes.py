@@ -4,9 +4,9 @@ import numpy as np
 
 
 def pair_iou(det_boxes, gt_boxes, gt_crowd, *, pixel_offset=0.0):
-    """IoU of each detection with the ground-truth box in the same row.
+    r"""IoU of each detection with the ground-truth box in the same row.
 
-    .. math:: \\mathrm{IoU} = \\frac{|D \\cap G|}{|D| + |G| - |D \\cap G|}
+    .. math:: \mathrm{IoU} = \frac{|D \cap G|}{|D| + |G| - |D \cap G|}
 
     with widths of the intersection ``min(x1 + w1, x2 + w2) - max(x1, x2) + o`` (zero
     when not positive) and areas ``(w + o)(h + o)``, where ``o`` is the pixel offset:

@@ -79,10 +79,10 @@ def _relative(cumulative, run_bounds):
 
 
 def cumulative_counts(records, *, area=0, slot=0, max_detections=None, weights=None):
-    """Weighted running TP and FP sums along each class's ranked detections.
+    r"""Weighted running TP and FP sums along each class's ranked detections.
 
-    .. math:: TP_i = \\sum_{j \\le i} w_j [j \\text{ is TP}], \\quad
-              FP_i = \\sum_{j \\le i} w_j [j \\text{ is FP}]
+    .. math:: TP_i = \sum_{j \le i} w_j [j \text{ is TP}], \quad
+              FP_i = \sum_{j \le i} w_j [j \text{ is FP}]
 
     over the detections j of one class in descending score order, where w_j is the
     weight of detection j's image (pycocotools ``COCOeval.accumulate``).
@@ -113,9 +113,14 @@ def cumulative_counts(records, *, area=0, slot=0, max_detections=None, weights=N
 
 
 def true_positive_points(records, *, area=0, max_detections=None, weights=None):
-    """Cumulative TP and FP counts at every true positive, all slots at once.
+    r"""Cumulative TP and FP counts at every true positive, all slots at once.
 
-    FP at a TP = (counted detections ranked at or above it) - TP, where a detection
+    .. math:: TP_i = \sum_{j \le i} w_j [j \text{ TP}], \quad
+              FP_i = \sum_{j \le i} w_j [j \text{ counted}] - TP_i
+
+    at each true positive i of a class in accumulation order (pycocotools
+    ``COCOeval.accumulate``; weights for the paired bootstrap of Efron & Tibshirani,
+    1993). FP at a TP = (counted detections ranked at or above it) - TP, where a detection
     counts unless ignored. Counted totals are one running sum of the unmatched rule
     plus sparse corrections where a match changes it, so no slots x detections
     array is ever summed.
@@ -256,18 +261,18 @@ def recall_score(points):
 
 
 def envelope(precision):
-    """Running maximum from the right: the monotone precision envelope.
+    r"""Running maximum from the right: the monotone precision envelope.
 
-    .. math:: \\hat p_i = \\max_{j \\ge i} p_j
+    .. math:: \hat p_i = \max_{j \ge i} p_j
     """
     return np.maximum.accumulate(precision[::-1])[::-1]
 
 
 def interpolated_precision(points, recall_points, *, epsilon=0.0, slots=None):
-    """Envelope precision at each recall point, shape (slots, points, classes).
+    r"""Envelope precision at each recall point, shape (slots, points, classes).
 
-    .. math:: p_{\\mathrm{interp}}(r) = \\max_{i : R_i \\ge r} P_i, \\quad
-              P_i = \\frac{TP_i}{TP_i + FP_i + \\varepsilon}, \\quad R_i = \\frac{TP_i}{n_{pos}}
+    .. math:: p_{\mathrm{interp}}(r) = \max_{i : R_i \ge r} P_i, \quad
+              P_i = \frac{TP_i}{TP_i + FP_i + \varepsilon}, \quad R_i = \frac{TP_i}{n_{pos}}
 
     0 when no point reaches r; NaN for a class without positives (absent); ``slots``
     restricts the output to those IoU slots. With
@@ -304,9 +309,9 @@ def interpolated_precision(points, recall_points, *, epsilon=0.0, slots=None):
 
 
 def all_point_average_precision(points):
-    """Area under the precision envelope, shape (slots, classes) (VOC 2010+).
+    r"""Area under the precision envelope, shape (slots, classes) (VOC 2010+).
 
-    .. math:: AP = \\sum_i (r_i - r_{i-1})\\, \\hat p_i, \\quad r_0 = 0
+    .. math:: AP = \sum_i (r_i - r_{i-1})\, \hat p_i, \quad r_0 = 0
 
     over the points where recall changes, the envelope closed by (1, 0) (PASCAL VOC
     devkit ``VOCap.m``). Precision is TP / (TP + FP) without epsilon, as in the
@@ -327,8 +332,13 @@ def all_point_average_precision(points):
 
 
 def average_precision(points, protocol):
-    """AP per slot and class under ``protocol``: mean interpolated precision over its
-    recall points, or the all-point area when it has none. NaN = absent class."""
+    r"""AP per slot and class under ``protocol``, NaN for an absent class.
+
+    .. math:: AP = \frac{1}{|\mathcal R|} \sum_{r \in \mathcal R} p_{\mathrm{interp}}(r)
+
+    over the protocol's recall points (see ``interpolated_precision``), or the
+    all-point area when it has none (see ``all_point_average_precision``).
+    """
     if protocol.recall_points is None:
         return all_point_average_precision(points)
     precision = interpolated_precision(

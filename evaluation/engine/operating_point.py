@@ -15,7 +15,7 @@ def _f1(tp, fp, n_pos):
 
 
 def threshold_scores(tp, fp, scores, n_pos, threshold):
-    """Precision, recall and F1 keeping detections with score >= ``threshold``.
+    r"""Precision, recall and F1 keeping detections with score >= ``threshold``.
 
     .. math:: P = \\frac{TP}{TP + FP}, \\quad R = \\frac{TP}{n_{pos}}, \\quad
               F_1 = \\frac{2\\,TP}{TP + FP + n_{pos}}
@@ -37,7 +37,11 @@ def threshold_scores(tp, fp, scores, n_pos, threshold):
 
 
 def best_f1(tp, fp, scores, n_pos):
-    """The score cut of highest F1, searched only between distinct scores.
+    r"""The score cut of highest F1, searched only between distinct scores.
+
+    .. math:: s^* = \arg\max_s \frac{2\,TP(s)}{TP(s) + FP(s) + n_{pos}}
+
+    (common practice; F1 as the harmonic mean of precision and recall).
 
     A cut keeps every detection scoring at or above it, so tied detections are kept
     or dropped together. Raw precision is used, not the envelope. On equal F1 the
