@@ -23,16 +23,24 @@ def threshold_scores(tp, fp, scores, n_pos, threshold):
     (common practice). ``tp``, ``fp``: cumulative sums along ``scores`` (descending).
     Precision is None when nothing is kept; recall None when there are no positives.
     """
+    tp_k, fp_k = counts_at(tp, fp, scores, threshold)
+    return scores_from_counts(tp_k, fp_k, n_pos, threshold)
+
+
+def counts_at(tp, fp, scores, threshold):
+    """TP and FP counts of the detections scoring >= ``threshold``."""
     kept = int(np.searchsorted(-scores, -threshold, side="right"))
-    tp_k = float(tp[kept - 1]) if kept else 0.0
-    fp_k = float(fp[kept - 1]) if kept else 0.0
+    return (float(tp[kept - 1]), float(fp[kept - 1])) if kept else (0.0, 0.0)
+
+
+def scores_from_counts(tp, fp, n_pos, threshold):
     return {
         "threshold": float(threshold),
-        "tp": tp_k,
-        "fp": fp_k,
-        "precision": tp_k / (tp_k + fp_k) if tp_k + fp_k else None,
-        "recall": tp_k / n_pos if n_pos else None,
-        "f1": _f1(tp_k, fp_k, n_pos) if n_pos else None,
+        "tp": tp,
+        "fp": fp,
+        "precision": tp / (tp + fp) if tp + fp else None,
+        "recall": tp / n_pos if n_pos else None,
+        "f1": _f1(tp, fp, n_pos) if n_pos else None,
     }
 
 

@@ -11,7 +11,13 @@ from .curves import (
     true_positive_totals,
 )
 from .errors import InputError
-from .operating_point import best_f1, log_average_miss_rate, threshold_scores
+from .operating_point import (
+    best_f1,
+    counts_at,
+    log_average_miss_rate,
+    scores_from_counts,
+    threshold_scores,
+)
 from .protocols import get_protocol
 from .version import ENGINE_VERSION
 
@@ -135,20 +141,9 @@ def _pooled_threshold(curves, score_threshold):
     """Precision / recall / F1 of all classes together at one shared threshold."""
     tp = fp = 0.0
     for k in range(len(curves.n_pos)):
-        t, f, s = curves.segment(k)
-        kept = int(np.searchsorted(-s, -score_threshold, side="right"))
-        if kept:
-            tp += float(t[kept - 1])
-            fp += float(f[kept - 1])
-    n_pos = float(curves.n_pos.sum())
-    return {
-        "threshold": float(score_threshold),
-        "tp": tp,
-        "fp": fp,
-        "precision": tp / (tp + fp) if tp + fp else None,
-        "recall": tp / n_pos if n_pos else None,
-        "f1": 2 * tp / (tp + fp + n_pos) if n_pos else None,
-    }
+        t, f = counts_at(*curves.segment(k), score_threshold)
+        tp, fp = tp + t, fp + f
+    return scores_from_counts(tp, fp, float(curves.n_pos.sum()), score_threshold)
 
 
 def _area_scores(records, protocol, area, weights):

@@ -155,18 +155,26 @@ def _csv_ids(values):
     return np.array(values, dtype=object).astype(str)
 
 
+def _ids_like(values, known_ids):
+    """Image ids read as text, typed like the split's ids so they can be looked up.
+
+    With integer split ids, text that is not an integer becomes an id no image has,
+    so the lookup reports it as not in the split.
+    """
+    text = np.array(values, dtype=object).astype(str) if len(values) else np.zeros(0, str)
+    if known_ids.dtype.kind != "i":
+        return text
+    converted = np.full(len(text), np.iinfo(np.int64).min, np.int64)
+    ok = np.array([bool(_INTEGER.match(v)) for v in text], bool)
+    converted[ok] = [int(v) for v in text[ok]]
+    return converted
+
+
 def _csv_truth_columns(path, images, classes):
     ids, widths, heights, tags, image_lines = csv_tables.read_images(images)
     boxes = csv_tables.read_boxes(path)
     image_ids = _csv_ids(ids)
-    box_image_ids = np.array(boxes["image_id"], dtype=object).astype(str)
-    if image_ids.dtype.kind == "i":
-        converted = np.full(len(box_image_ids), -(2**62), np.int64)
-        ok = np.array([bool(_INTEGER.match(v)) for v in box_image_ids], bool)
-        converted[ok] = [int(v) for v in box_image_ids[ok]]
-        box_image_ids_resolved = converted
-    else:
-        box_image_ids_resolved = box_image_ids
+    box_image_ids = _ids_like(boxes["image_id"], image_ids)
     labels = boxes["label"]
     if classes is None:
         names = sorted(set(labels))
@@ -192,7 +200,7 @@ def _csv_truth_columns(path, images, classes):
         "class_ids": np.arange(1, len(names) + 1, dtype=np.int64),
         "class_names": names,
         "box_ids": np.asarray(boxes["lines"], np.int64),
-        "box_image_ids": box_image_ids_resolved,
+        "box_image_ids": box_image_ids,
         "box_class_ids": label_ids,
         "boxes": boxes["boxes"],
         "box_area": boxes["area"],
@@ -250,15 +258,8 @@ def _read_predictions(path, truth, fmt, out_of_frame, unknown_classes):
         fields = {"image": "image_id", "class": "label", "bbox": "x_min..y_max"}
         class_keys = np.array(labels, dtype=object).astype(str) if labels else np.zeros(0, str)
         known_classes = np.array(truth.classes, dtype=object).astype(str)
-        raw = np.array(ids, dtype=object).astype(str) if ids else np.zeros(0, str)
-        if truth.image_ids.dtype.kind == "i":
-            image_ids = np.full(len(raw), -(2**62), np.int64)
-            ok = np.array([bool(_INTEGER.match(v)) for v in raw], bool)
-            image_ids[ok] = [int(v) for v in raw[ok]]
-            shown = raw
-        else:
-            image_ids = raw
-            shown = raw
+        shown = np.array(ids, dtype=object).astype(str) if ids else np.zeros(0, str)
+        image_ids = _ids_like(ids, truth.image_ids)
     shown = image_ids if fmt == "json" else shown
 
     image, found = checks.resolve(path, image_ids, truth.image_ids, locate, "", "")
