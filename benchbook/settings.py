@@ -1,0 +1,151 @@
+"""Settings, read from the environment once, here.
+
+With nothing set, the *embedded default* runs on one machine with no server
+installed: SQLite and Celery's filesystem broker under ``var/``. Production and CI set
+``DATABASE_URL`` (PostgreSQL) and ``CELERY_BROKER_URL`` (Redis).
+"""
+
+import os
+from pathlib import Path
+
+import dj_database_url
+
+BASE_DIR = Path(__file__).resolve().parent.parent
+VAR_DIR = Path(os.environ.get("BENCHBOOK_VAR", BASE_DIR / "var"))
+
+
+def _flag(name, default=False):
+    return os.environ.get(name, str(default)).lower() in ("1", "true", "yes", "on")
+
+
+DEBUG = _flag("DEBUG", False)
+SECRET_KEY = os.environ.get("SECRET_KEY", "")
+if not SECRET_KEY:
+    if not DEBUG and os.environ.get("BENCHBOOK_REQUIRE_SECRET"):
+        raise RuntimeError("SECRET_KEY must be set in production")
+    SECRET_KEY = "benchbook-embedded-default-not-for-production"
+ALLOWED_HOSTS = [
+    h for h in os.environ.get("ALLOWED_HOSTS", "127.0.0.1,localhost,testserver").split(",") if h
+]
+
+INSTALLED_APPS = [
+    "django.contrib.admin",
+    "django.contrib.auth",
+    "django.contrib.contenttypes",
+    "django.contrib.sessions",
+    "django.contrib.messages",
+    "django.contrib.staticfiles",
+    "evaluation",
+    "releases",
+    "frontend",
+]
+
+MIDDLEWARE = [
+    "django.middleware.security.SecurityMiddleware",
+    "whitenoise.middleware.WhiteNoiseMiddleware",
+    "django.contrib.sessions.middleware.SessionMiddleware",
+    "django.middleware.common.CommonMiddleware",
+    "django.middleware.csrf.CsrfViewMiddleware",
+    "django.contrib.auth.middleware.AuthenticationMiddleware",
+    "django.contrib.messages.middleware.MessageMiddleware",
+    "django.middleware.clickjacking.XFrameOptionsMiddleware",
+]
+
+ROOT_URLCONF = "benchbook.urls"
+WSGI_APPLICATION = "benchbook.wsgi.application"
+
+TEMPLATES = [
+    {
+        "BACKEND": "django.template.backends.django.DjangoTemplates",
+        "DIRS": [],
+        "APP_DIRS": True,
+        "OPTIONS": {
+            "context_processors": [
+                "django.template.context_processors.request",
+                "django.contrib.auth.context_processors.auth",
+                "django.contrib.messages.context_processors.messages",
+            ]
+        },
+    }
+]
+
+VAR_DIR.mkdir(parents=True, exist_ok=True)
+_default_db = f"sqlite:///{VAR_DIR / 'benchbook.sqlite3'}"
+DATABASES = {
+    "default": dj_database_url.parse(os.environ.get("DATABASE_URL", _default_db), conn_max_age=60)
+}
+if DATABASES["default"]["ENGINE"].endswith("sqlite3"):
+    # A file, not memory, so a worker process can share the test database too;
+    # a busy timeout because the web server and the worker write concurrently.
+    DATABASES["default"]["TEST"] = {"NAME": str(VAR_DIR / "test-benchbook.sqlite3")}
+    DATABASES["default"]["OPTIONS"] = {"timeout": 30}
+    DATABASES["default"]["CONN_MAX_AGE"] = 0
+
+DEFAULT_AUTO_FIELD = "django.db.models.BigAutoField"
+AUTH_PASSWORD_VALIDATORS = [
+    {"NAME": "django.contrib.auth.password_validation.MinimumLengthValidator"},
+]
+LOGIN_URL = "login"
+LOGIN_REDIRECT_URL = "/"
+LOGOUT_REDIRECT_URL = "login"
+
+LANGUAGE_CODE = "en-gb"
+TIME_ZONE = "UTC"
+USE_I18N = False
+USE_TZ = True
+
+STATIC_URL = "static/"
+STATIC_ROOT = VAR_DIR / "static"
+MEDIA_ROOT = Path(os.environ.get("MEDIA_ROOT", VAR_DIR / "media"))
+MEDIA_URL = "media/"
+STORAGES = {
+    "default": {"BACKEND": "django.core.files.storage.FileSystemStorage"},
+    "staticfiles": {"BACKEND": "whitenoise.storage.CompressedStaticFilesStorage"},
+}
+
+# Uploads are streamed to disk past 2.5 MB, never held whole in the web process.
+FILE_UPLOAD_MAX_MEMORY_SIZE = 2_621_440
+FILE_UPLOAD_TEMP_DIR = None
+BENCHBOOK_MAX_UPLOAD_BYTES = int(os.environ.get("BENCHBOOK_MAX_UPLOAD_BYTES", 512 * 1024 * 1024))
+DATA_UPLOAD_MAX_MEMORY_SIZE = 10 * 1024 * 1024
+# Parsed-input cache of the engine (columnar .npz), shared by workers on one machine.
+BENCHBOOK_ENGINE_CACHE = Path(os.environ.get("BENCHBOOK_ENGINE_CACHE", VAR_DIR / "engine-cache"))
+BENCHBOOK_PROTOCOLS = ("coco", "voc", "recall40")
+
+# Celery: filesystem broker by default, Redis when CELERY_BROKER_URL says so.
+CELERY_BROKER_URL = os.environ.get("CELERY_BROKER_URL", "filesystem://")
+if CELERY_BROKER_URL.startswith("filesystem://"):
+    _broker_dir = VAR_DIR / "broker"
+    for _folder in ("queue", "processed"):  # kombu expects the folders to exist
+        (_broker_dir / _folder).mkdir(parents=True, exist_ok=True)
+    CELERY_BROKER_TRANSPORT_OPTIONS = {
+        "data_folder_in": str(_broker_dir / "queue"),
+        "data_folder_out": str(_broker_dir / "queue"),
+        "data_folder_processed": str(_broker_dir / "processed"),
+        "store_processed": False,
+    }
+CELERY_TASK_DEFAULT_QUEUE = os.environ.get("BENCHBOOK_QUEUE", "benchbook")
+CELERY_TASK_ACKS_LATE = True
+CELERY_TASK_REJECT_ON_WORKER_LOST = True
+CELERY_WORKER_PREFETCH_MULTIPLIER = 1
+CELERY_TASK_IGNORE_RESULT = True
+CELERY_TASK_SERIALIZER = "json"
+CELERY_ACCEPT_CONTENT = ["json"]
+CELERY_TASK_ALWAYS_EAGER = _flag("BENCHBOOK_EAGER_TASKS", False)
+CELERY_TASK_EAGER_PROPAGATES = True
+CELERY_BEAT_SCHEDULE = {
+    "requeue-stalled-evaluations": {"task": "evaluation.tasks.sweep", "schedule": 60.0},
+}
+# An evaluation still queued after this long, or running after the second, is requeued.
+BENCHBOOK_QUEUED_GRACE_SECONDS = 120
+BENCHBOOK_RUNNING_TIMEOUT_SECONDS = 3600
+BENCHBOOK_MAX_ATTEMPTS = 3
+
+EMAIL_BACKEND = os.environ.get("EMAIL_BACKEND", "django.core.mail.backends.console.EmailBackend")
+
+LOGGING = {
+    "version": 1,
+    "disable_existing_loggers": False,
+    "handlers": {"console": {"class": "logging.StreamHandler"}},
+    "root": {"handlers": ["console"], "level": os.environ.get("LOG_LEVEL", "INFO")},
+}

@@ -1,0 +1,70 @@
+"""Admin: everything visible; frozen splits and finished evaluations read-only."""
+
+from django.contrib import admin
+
+from .models import BenchmarkSplit, ClassScore, Evaluation, PredictionFile, Scorecard, SliceScore
+
+
+class ReadOnlyAdmin(admin.ModelAdmin):
+    """Rows that are history: shown, never edited or deleted here."""
+
+    def has_add_permission(self, request):
+        return False
+
+    def has_change_permission(self, request, obj=None):
+        return False
+
+    def has_delete_permission(self, request, obj=None):
+        return False
+
+
+@admin.register(BenchmarkSplit)
+class BenchmarkSplitAdmin(ReadOnlyAdmin):
+    list_display = ["name", "revision", "image_count", "box_count", "sha256", "frozen_at"]
+    search_fields = ["name", "sha256"]
+
+
+@admin.register(PredictionFile)
+class PredictionFileAdmin(ReadOnlyAdmin):
+    list_display = ["original_name", "sha256", "size", "record_count", "uploaded_at"]
+    search_fields = ["original_name", "sha256"]
+
+
+@admin.register(Evaluation)
+class EvaluationAdmin(admin.ModelAdmin):
+    list_display = ["id", "split", "protocol", "state", "progress", "attempts", "finished_at"]
+    list_filter = ["state", "protocol"]
+    list_select_related = ["split", "predictions"]
+
+    def has_add_permission(self, request):
+        return False
+
+    def has_change_permission(self, request, obj=None):
+        return obj is None or not obj.finished
+
+    def has_delete_permission(self, request, obj=None):
+        return False
+
+
+class ClassScoreInline(admin.TabularInline):
+    model = ClassScore
+    extra = 0
+    can_delete = False
+
+    def has_change_permission(self, request, obj=None):
+        return False
+
+    def has_add_permission(self, request, obj=None):
+        return False
+
+
+@admin.register(Scorecard)
+class ScorecardAdmin(ReadOnlyAdmin):
+    list_display = ["evaluation", "protocol", "engine_version", "split_sha256", "created_at"]
+    inlines = [ClassScoreInline]
+
+
+@admin.register(SliceScore)
+class SliceScoreAdmin(ReadOnlyAdmin):
+    list_display = ["scorecard", "kind", "name", "class_name", "ap"]
+    list_filter = ["kind"]

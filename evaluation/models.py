@@ -1,0 +1,173 @@
+"""Benchmark splits, stored prediction files, evaluations and their scorecards.
+
+Nothing here knows about teams or model versions; ``releases`` links to these rows.
+"""
+
+from django.db import models
+
+from .storage import predictions_path, split_path
+
+
+class FrozenError(Exception):
+    """A frozen benchmark split was asked to change."""
+
+
+class BenchmarkSplit(models.Model):
+    """A frozen ground-truth set. A corrected split is a new revision, never an edit.
+
+    Frozen rows are refused UPDATE and DELETE by the database itself (a trigger, see
+    migration 0002), not only by ``save``.
+    """
+
+    name = models.SlugField(max_length=64)
+    revision = models.PositiveIntegerField()
+    description = models.TextField(blank=True)
+    classes = models.JSONField(help_text="Class names, in the split's order.")
+    class_counts = models.JSONField(help_text="Counted boxes per class.")
+    tags = models.JSONField(default=dict, help_text="Image tag -> number of images.")
+    image_count = models.PositiveIntegerField()
+    box_count = models.PositiveIntegerField()
+    sha256 = models.CharField(max_length=64, unique=True, help_text="Of the canonical content.")
+    source_format = models.CharField(max_length=8)
+    truth_file = models.FileField(upload_to=split_path, max_length=255)
+    images_file = models.FileField(upload_to=split_path, max_length=255, blank=True)
+    created_by = models.CharField(max_length=150, blank=True)
+    created_at = models.DateTimeField(auto_now_add=True)
+    frozen_at = models.DateTimeField()
+
+    class Meta:
+        constraints = [
+            models.UniqueConstraint(fields=["name", "revision"], name="split_name_revision_unique")
+        ]
+        ordering = ["name", "revision"]
+
+    def __str__(self):
+        return f"{self.name} rev {self.revision}"
+
+    def save(self, *args, **kwargs):
+        if self.pk is not None:
+            raise FrozenError(f"{self} is frozen; load a corrected split as a new revision")
+        super().save(*args, **kwargs)
+
+    def delete(self, *args, **kwargs):
+        raise FrozenError(f"{self} is frozen and cannot be deleted")
+
+
+class PredictionFile(models.Model):
+    """A predictions file as uploaded: the same bytes are stored once (by SHA-256)."""
+
+    file = models.FileField(upload_to=predictions_path, max_length=255)
+    sha256 = models.CharField(max_length=64, unique=True)
+    size = models.BigIntegerField()
+    original_name = models.CharField(max_length=255)
+    record_count = models.PositiveIntegerField(null=True, blank=True)
+    uploaded_at = models.DateTimeField(auto_now_add=True)
+
+    def __str__(self):
+        return f"{self.original_name} ({self.sha256[:12]})"
+
+
+class Evaluation(models.Model):
+    """Scoring one prediction file on one split under one protocol."""
+
+    class State(models.TextChoices):
+        QUEUED = "queued"
+        RUNNING = "running"
+        DONE = "done"
+        FAILED = "failed"
+
+    split = models.ForeignKey(BenchmarkSplit, on_delete=models.PROTECT, related_name="evaluations")
+    predictions = models.ForeignKey(
+        PredictionFile, on_delete=models.PROTECT, related_name="evaluations"
+    )
+    protocol = models.CharField(max_length=32)
+    state = models.CharField(max_length=8, choices=State.choices, default=State.QUEUED)
+    progress = models.PositiveSmallIntegerField(default=0)
+    attempts = models.PositiveSmallIntegerField(default=0)
+    error = models.TextField(blank=True)
+    error_detail = models.JSONField(null=True, blank=True)
+    engine_version = models.CharField(max_length=16, blank=True)
+    claimed_by = models.CharField(max_length=64, blank=True, help_text="Task delivery scoring it.")
+    created_at = models.DateTimeField(auto_now_add=True)
+    queued_at = models.DateTimeField(auto_now_add=True)
+    started_at = models.DateTimeField(null=True, blank=True)
+    finished_at = models.DateTimeField(null=True, blank=True)
+
+    class Meta:
+        constraints = [
+            models.UniqueConstraint(
+                fields=["split", "predictions", "protocol"], name="one_evaluation_per_input"
+            )
+        ]
+        indexes = [models.Index(fields=["state", "queued_at"])]
+
+    def __str__(self):
+        return f"{self.protocol} of {self.predictions} on {self.split} ({self.state})"
+
+    @property
+    def finished(self):
+        return self.state in (self.State.DONE, self.State.FAILED)
+
+
+class Scorecard(models.Model):
+    """The stored result of a finished evaluation, with everything needed to trust it."""
+
+    evaluation = models.OneToOneField(
+        Evaluation, on_delete=models.PROTECT, related_name="scorecard"
+    )
+    protocol = models.CharField(max_length=32)
+    protocol_version = models.PositiveIntegerField()
+    engine_version = models.CharField(max_length=16)
+    split_sha256 = models.CharField(max_length=64)
+    predictions_sha256 = models.CharField(max_length=64)
+    summary = models.JSONField()
+    result = models.JSONField(help_text="The engine's full result: per class, curves, slices.")
+    records = models.FileField(upload_to="records/", max_length=255)
+    created_at = models.DateTimeField(auto_now_add=True)
+
+    def __str__(self):
+        return f"scorecard of {self.evaluation}"
+
+
+class ClassScore(models.Model):
+    """One class of one scorecard, as a row, so trends are plain SQL."""
+
+    scorecard = models.ForeignKey(Scorecard, on_delete=models.CASCADE, related_name="classes")
+    class_name = models.CharField(max_length=64)
+    ap = models.FloatField(null=True)
+    ap50 = models.FloatField(null=True)
+    ap75 = models.FloatField(null=True)
+    recall = models.FloatField(null=True)
+    gt = models.FloatField()
+    tp = models.FloatField()
+    fp = models.FloatField()
+    best_f1 = models.FloatField(null=True)
+    best_f1_threshold = models.FloatField(null=True)
+    miss_rate = models.FloatField(null=True)
+
+    class Meta:
+        constraints = [
+            models.UniqueConstraint(fields=["scorecard", "class_name"], name="one_row_per_class")
+        ]
+
+
+class SliceScore(models.Model):
+    """AP of one slice (image tag or size bucket), for the mean ('' class) or a class."""
+
+    class Kind(models.TextChoices):
+        TAG = "tag"
+        SIZE = "size"
+
+    scorecard = models.ForeignKey(Scorecard, on_delete=models.CASCADE, related_name="slices")
+    kind = models.CharField(max_length=4, choices=Kind.choices)
+    name = models.CharField(max_length=64)
+    class_name = models.CharField(max_length=64, blank=True)
+    ap = models.FloatField(null=True)
+    images = models.PositiveIntegerField(null=True)
+
+    class Meta:
+        constraints = [
+            models.UniqueConstraint(
+                fields=["scorecard", "kind", "name", "class_name"], name="one_row_per_slice"
+            )
+        ]

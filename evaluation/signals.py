@@ -1,0 +1,10 @@
+"""What ``evaluation`` tells the rest of Benchbook (sent after the commit).
+
+``releases`` connects receivers in its ``AppConfig.ready()``; this app never imports it.
+"""
+
+from django.dispatch import Signal
+
+split_frozen = Signal()  # split
+evaluation_finished = Signal()  # evaluation
+evaluation_failed = Signal()  # evaluation

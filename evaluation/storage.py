@@ -1,0 +1,64 @@
+"""Where files live in the storage, and how the engine gets a local path to them."""
+
+import contextlib
+import hashlib
+import os
+import shutil
+import tempfile
+
+
+def split_path(instance, filename):
+    return f"splits/{instance.name}/rev{instance.revision}/{os.path.basename(filename)}"
+
+
+def predictions_path(instance, filename):
+    return f"predictions/{instance.sha256[:2]}/{instance.sha256}/{os.path.basename(filename)}"
+
+
+@contextlib.contextmanager
+def local_path(field_file):
+    """A filesystem path for a stored file: the file itself when the storage is a
+    local disk, else a temporary copy (object stores)."""
+    try:
+        yield field_file.path
+        return
+    except NotImplementedError:
+        pass
+    suffix = os.path.splitext(field_file.name)[1]
+    with tempfile.NamedTemporaryFile(suffix=suffix) as tmp:
+        with field_file.open("rb") as src:
+            shutil.copyfileobj(src, tmp)
+        tmp.flush()
+        yield tmp.name
+
+
+class TooLarge(Exception):
+    pass
+
+
+def spool(uploaded, limit, directory):
+    """Copy an upload into ``directory`` under its own base name, in blocks, hashing
+    as it goes (so engine errors name the file as the user knows it).
+
+    Returns ``(path, sha256, size)``; raises ``TooLarge`` past ``limit`` bytes. The
+    web process holds one block at a time, never the whole file.
+    """
+    digest = hashlib.sha256()
+    size = 0
+    path = os.path.join(directory, os.path.basename(uploaded.name) or "upload")
+    chunks = (
+        uploaded.chunks()
+        if hasattr(uploaded, "chunks")
+        else iter(lambda: uploaded.read(1 << 20), b"")
+    )
+    with open(path, "wb") as out:
+        for chunk in chunks:
+            size += len(chunk)
+            if size > limit:
+                raise TooLarge(
+                    f"{os.path.basename(uploaded.name)}: larger than the upload limit "
+                    f"of {limit:,} bytes"
+                )
+            digest.update(chunk)
+            out.write(chunk)
+    return path, digest.hexdigest(), size

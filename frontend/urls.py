@@ -1,0 +1,15 @@
+from django.contrib.auth import views as auth_views
+from django.urls import path
+
+from . import views
+
+urlpatterns = [
+    path("login/", auth_views.LoginView.as_view(), name="login"),
+    path("logout/", auth_views.LogoutView.as_view(), name="logout"),
+    path("", views.overview, name="overview"),
+    path("splits/", views.split_list, name="splits"),
+    path("splits/load/", views.load_split, name="load-split"),
+    path("detectors/<int:detector_id>/", views.detector, name="detector"),
+    path("detectors/<int:detector_id>/upload/", views.upload_predictions, name="upload"),
+    path("evaluations/<int:evaluation_id>.json", views.evaluation_status, name="evaluation-status"),
+]

@@ -1,0 +1,50 @@
+from django.contrib.auth import get_user_model
+from django.core.exceptions import PermissionDenied
+from django.core.files import File
+from django.core.management.base import BaseCommand, CommandError
+
+from evaluation.models import BenchmarkSplit
+from evaluation.services import UploadError
+from releases import services
+from releases.models import Detector, ModelVersion
+
+
+class Command(BaseCommand):
+    help = "Upload a version's predictions on a split; scoring is queued for the worker."
+
+    def add_arguments(self, parser):
+        parser.add_argument("predictions", help="COCO-style results JSON or CSV")
+        parser.add_argument("--detector", required=True, help="detector slug")
+        parser.add_argument("--version", required=True, dest="label", help="version label")
+        parser.add_argument("--split", required=True, help="NAME:REVISION, e.g. bay-night:2")
+        parser.add_argument("--user", required=True, help="username of the uploader")
+        parser.add_argument("--create-version", action="store_true")
+
+    def handle(self, *args, predictions, detector, label, split, user, create_version, **options):
+        try:
+            uploader = get_user_model().objects.get(username=user)
+            found = Detector.objects.get(slug=detector)
+            name, _, revision = split.partition(":")
+            benchmark = BenchmarkSplit.objects.get(name=name, revision=int(revision or 0))
+        except (
+            get_user_model().DoesNotExist,
+            Detector.DoesNotExist,
+            BenchmarkSplit.DoesNotExist,
+            ValueError,
+        ) as e:
+            raise CommandError(f"not found: {e}") from None
+        try:
+            version = ModelVersion.objects.filter(detector=found, label=label).first()
+            if version is None:
+                if not create_version:
+                    raise CommandError(f"{found} has no version {label!r} (use --create-version)")
+                version = services.create_version(found, label, uploader)
+            with open(predictions, "rb") as f:
+                prediction_set = services.submit_predictions(
+                    version, benchmark, File(f, name=predictions), uploader
+                )
+        except OSError as e:
+            raise CommandError(f"{e.filename}: {e.strerror}") from None
+        except (UploadError, PermissionDenied) as e:
+            raise CommandError(str(e)) from None
+        self.stdout.write(f"stored {prediction_set}; evaluations queued")

@@ -1,0 +1,100 @@
+"""Teams, detectors, model versions and their prediction sets."""
+
+from django.conf import settings
+from django.db import models
+
+
+class Team(models.Model):
+    name = models.CharField(max_length=100, unique=True)
+    slug = models.SlugField(max_length=100, unique=True)
+
+    def __str__(self):
+        return self.name
+
+
+class Membership(models.Model):
+    class Role(models.TextChoices):
+        ENGINEER = "engineer"
+        LEAD = "lead"
+        REVIEWER = "reviewer"
+
+    team = models.ForeignKey(Team, on_delete=models.CASCADE, related_name="memberships")
+    user = models.ForeignKey(
+        settings.AUTH_USER_MODEL, on_delete=models.CASCADE, related_name="memberships"
+    )
+    role = models.CharField(max_length=8, choices=Role.choices)
+
+    class Meta:
+        constraints = [models.UniqueConstraint(fields=["team", "user"], name="one_role_per_team")]
+
+    def __str__(self):
+        return f"{self.user} ({self.role}) in {self.team}"
+
+
+class Detector(models.Model):
+    """A model line, e.g. the forward camera detector, with its class list."""
+
+    team = models.ForeignKey(Team, on_delete=models.PROTECT, related_name="detectors")
+    name = models.CharField(max_length=100)
+    slug = models.SlugField(max_length=100)
+    description = models.TextField(blank=True)
+    classes = models.JSONField()
+    primary_protocol = models.CharField(max_length=32, default="coco")
+    protocols = models.JSONField(default=list, help_text="Protocols every upload is scored under.")
+
+    class Meta:
+        constraints = [
+            models.UniqueConstraint(fields=["team", "slug"], name="detector_slug_per_team")
+        ]
+
+    def __str__(self):
+        return self.name
+
+
+class ModelVersion(models.Model):
+    """One trained model of a detector."""
+
+    detector = models.ForeignKey(Detector, on_delete=models.PROTECT, related_name="versions")
+    label = models.CharField(max_length=64)
+    source_commit = models.CharField(max_length=64, blank=True)
+    training_ref = models.CharField(max_length=200, blank=True)
+    notes = models.TextField(blank=True)
+    created_by = models.ForeignKey(
+        settings.AUTH_USER_MODEL, on_delete=models.PROTECT, related_name="+"
+    )
+    created_at = models.DateTimeField()
+
+    class Meta:
+        constraints = [
+            models.UniqueConstraint(fields=["detector", "label"], name="version_label_unique")
+        ]
+        ordering = ["detector", "created_at"]
+
+    def __str__(self):
+        return f"{self.detector} {self.label}"
+
+
+class PredictionSet(models.Model):
+    """A version's predictions on one benchmark split."""
+
+    version = models.ForeignKey(
+        ModelVersion, on_delete=models.PROTECT, related_name="prediction_sets"
+    )
+    split = models.ForeignKey(
+        "evaluation.BenchmarkSplit", on_delete=models.PROTECT, related_name="+"
+    )
+    predictions = models.ForeignKey(
+        "evaluation.PredictionFile", on_delete=models.PROTECT, related_name="+"
+    )
+    uploaded_by = models.ForeignKey(
+        settings.AUTH_USER_MODEL, on_delete=models.PROTECT, related_name="+"
+    )
+    uploaded_at = models.DateTimeField(auto_now_add=True)
+
+    class Meta:
+        constraints = [
+            models.UniqueConstraint(fields=["version", "split"], name="one_set_per_split")
+        ]
+
+    def __str__(self):
+        return f"{self.version} on {self.split}"
