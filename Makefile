@@ -4,13 +4,23 @@ VENV   := .venv
 BIN    := $(VENV)/bin
 STAMP  := $(VENV)/.installed-$(shell cat requirements.txt requirements-dev.txt | cksum | cut -d' ' -f1)
 
-.PHONY: test lint bench clean
+.PHONY: demo test lint bench clean
 
 $(STAMP): requirements.txt requirements-dev.txt
 	@$(PYTHON) -c 'import sys; assert sys.version_info[:2] == (3, 11), "Benchbook needs Python 3.11"'
 	$(PYTHON) -m venv $(VENV)
 	$(BIN)/python -m pip install --quiet -r requirements.txt -r requirements-dev.txt
 	@rm -f $(VENV)/.installed-* && touch $(STAMP)
+
+## The demo: migrate, seed the invented scenario, then a worker and the web server
+## on http://127.0.0.1:8000 (embedded SQLite + filesystem broker under var/).
+demo: $(STAMP)
+	$(BIN)/python manage.py migrate --noinput -v0
+	$(BIN)/python manage.py collectstatic --noinput -v0
+	$(BIN)/python manage.py seed_demo
+	@$(BIN)/celery -A benchbook worker --beat --pool=solo --loglevel=warning & \
+	  worker=$$!; trap "kill $$worker 2>/dev/null" EXIT INT TERM; \
+	  $(BIN)/python manage.py runserver 127.0.0.1:8000 --noreload
 
 ## Run the whole test suite (engine doctests included).
 test: $(STAMP)

@@ -133,6 +133,7 @@ CELERY_TASK_SERIALIZER = "json"
 CELERY_ACCEPT_CONTENT = ["json"]
 CELERY_TASK_ALWAYS_EAGER = _flag("BENCHBOOK_EAGER_TASKS", False)
 CELERY_TASK_EAGER_PROPAGATES = True
+CELERY_BEAT_SCHEDULE_FILENAME = str(VAR_DIR / "celerybeat-schedule")
 CELERY_BEAT_SCHEDULE = {
     "requeue-stalled-evaluations": {"task": "evaluation.tasks.sweep", "schedule": 60.0},
 }

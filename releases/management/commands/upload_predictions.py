@@ -33,15 +33,13 @@ class Command(BaseCommand):
             ValueError,
         ) as e:
             raise CommandError(f"not found: {e}") from None
+        known = ModelVersion.objects.filter(detector=found, label=label).exists()
+        if not known and not create_version:
+            raise CommandError(f"{found} has no version {label!r} (use --create-version)")
         try:
-            version = ModelVersion.objects.filter(detector=found, label=label).first()
-            if version is None:
-                if not create_version:
-                    raise CommandError(f"{found} has no version {label!r} (use --create-version)")
-                version = services.create_version(found, label, uploader)
             with open(predictions, "rb") as f:
-                prediction_set = services.submit_predictions(
-                    version, benchmark, File(f, name=predictions), uploader
+                prediction_set = services.submit_for_label(
+                    found, label, benchmark, File(f, name=predictions), uploader
                 )
         except OSError as e:
             raise CommandError(f"{e.filename}: {e.strerror}") from None
