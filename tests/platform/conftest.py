@@ -1,0 +1,103 @@
+"""Shared fixtures of the platform tests: users by role, a team, a detector, a split."""
+
+import json
+import uuid
+
+import numpy as np
+import pytest
+from django.contrib.auth import get_user_model
+from django.core.files.base import ContentFile
+
+from evaluation import services as evaluation_services
+from evaluation import tasks
+from releases import services
+
+from ..engine.synthetic import make_detections, make_split
+
+CLASSES = ["car", "pedestrian", "cyclist"]
+
+
+def upload(name, content):
+    if not isinstance(content, (bytes, str)):
+        content = json.dumps(content)
+    return ContentFile(content.encode() if isinstance(content, str) else content, name=name)
+
+
+def split_dict(seed=5, n_images=12):
+    rng = np.random.default_rng(seed)
+    split = make_split(rng, n_images=n_images, n_classes=3, boxes_per_image=4, crowd_rate=0.05)
+    for category, name in zip(split["categories"], CLASSES):
+        category["name"] = name
+    return split
+
+
+def detections_for(split, seed=6):
+    return make_detections(np.random.default_rng(seed), split)
+
+
+@pytest.fixture
+def users(db):
+    User = get_user_model()
+    return {
+        name: User.objects.create_user(name, password="pw-" + name)
+        for name in ("lead", "engineer", "reviewer", "outsider", "rival")
+    }
+
+
+@pytest.fixture
+def team(users):
+    return services.create_team(
+        "Shuttle Perception",
+        [
+            (users["lead"], "lead"),
+            (users["engineer"], "engineer"),
+            (users["reviewer"], "reviewer"),
+        ],
+    )
+
+
+@pytest.fixture
+def rival_detector(users):
+    rival = services.create_team("Tram Vision", [(users["rival"], "lead")])
+    return services.create_detector(rival, "Tram front", CLASSES)
+
+
+@pytest.fixture
+def detector(team):
+    return services.create_detector(team, "Forward camera", CLASSES, protocols=("coco", "voc"))
+
+
+@pytest.fixture
+def split_truth():
+    return split_dict()
+
+
+@pytest.fixture
+def split(split_truth):
+    return evaluation_services.load_split(
+        name="bay-night", revision=1, truth=upload("bay-night.json", split_truth)
+    )
+
+
+@pytest.fixture
+def version(detector, users):
+    return services.create_version(detector, "1.4.0", users["engineer"])
+
+
+@pytest.fixture
+def run_tasks(monkeypatch, django_capture_on_commit_callbacks):
+    """Run dispatched tasks in this process, their arguments through JSON (as a
+    broker would carry them), when the surrounding transaction commits."""
+
+    def delay(*args):
+        args = json.loads(json.dumps(args))
+        tasks.score.apply(args=args, task_id=str(uuid.uuid4()), throw=True)
+
+    monkeypatch.setattr(tasks.score, "delay", delay)
+
+    class Runner:
+        def __call__(self, fn, *args, **kwargs):
+            with django_capture_on_commit_callbacks(execute=True):
+                return fn(*args, **kwargs)
+
+    return Runner()
