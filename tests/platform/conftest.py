@@ -7,9 +7,10 @@ import numpy as np
 import pytest
 from django.contrib.auth import get_user_model
 from django.core.files.base import ContentFile
+from django.db import connection
 
 from evaluation import services as evaluation_services
-from evaluation import tasks
+from evaluation import tasks, triggers
 from releases import services
 
 from ..engine.synthetic import make_detections, make_split
@@ -74,6 +75,7 @@ def split_truth():
 
 @pytest.fixture
 def split(split_truth):
+    triggers.install(connection)  # idempotent; a transactional test's flush drops them on SQLite
     return evaluation_services.load_split(
         name="bay-night", revision=1, truth=upload("bay-night.json", split_truth)
     )

@@ -71,8 +71,9 @@ def _first_image(split_truth):
         (
             "not-finite.json",
             lambda ok: (
-                json.dumps(ok)[:-1] + ', {"image_id": %d, "category_id": 1, '
-                '"bbox": [1, 2, 3, 4], "score": 1e999}]' % ok[0]["image_id"]
+                json.dumps(ok)[:-1]
+                + f', {{"image_id": {ok[0]["image_id"]}, "category_id": 1, '
+                + '"bbox": [1, 2, 3, 4], "score": 1e999}]'
             ),
             "not-finite.json: record {n}: field 'score': number out of range",
         ),

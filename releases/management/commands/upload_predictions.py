@@ -15,7 +15,7 @@ class Command(BaseCommand):
     def add_arguments(self, parser):
         parser.add_argument("predictions", help="COCO-style results JSON or CSV")
         parser.add_argument("--detector", required=True, help="detector slug")
-        parser.add_argument("--version", required=True, dest="label", help="version label")
+        parser.add_argument("--label", required=True, help="version label, e.g. 1.4.0")
         parser.add_argument("--split", required=True, help="NAME:REVISION, e.g. bay-night:2")
         parser.add_argument("--user", required=True, help="username of the uploader")
         parser.add_argument("--create-version", action="store_true")

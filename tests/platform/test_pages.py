@@ -1,0 +1,175 @@
+"""Web pages and management commands of the platform."""
+
+import pytest
+from django.core.management import call_command
+from django.core.management.base import CommandError
+from django.urls import reverse
+
+from evaluation.models import BenchmarkSplit, Evaluation, PredictionFile
+from releases.models import PredictionSet
+
+from .conftest import detections_for, upload
+
+pytestmark = pytest.mark.django_db
+
+
+def _login(client, user):
+    client.force_login(user)
+    return client
+
+
+def test_pages_need_a_login(client, detector):
+    for url in (reverse("overview"), reverse("splits"), reverse("detector", args=[detector.pk])):
+        response = client.get(url)
+        assert response.status_code == 302 and response.url.startswith(reverse("login"))
+
+
+def test_members_see_their_detector_and_outsiders_get_404(client, users, detector, rival_detector):
+    _login(client, users["engineer"])
+    assert client.get(reverse("detector", args=[detector.pk])).status_code == 200
+    assert client.get(reverse("detector", args=[rival_detector.pk])).status_code == 404
+    assert "Tram front" not in client.get(reverse("overview")).content.decode()
+    _login(client, users["outsider"])
+    assert client.get(reverse("detector", args=[detector.pk])).status_code == 404
+    assert client.get(reverse("upload", args=[detector.pk])).status_code == 404
+
+
+def test_reviewers_read_every_team_but_cannot_upload(client, users, detector, rival_detector):
+    _login(client, users["reviewer"])
+    assert client.get(reverse("detector", args=[rival_detector.pk])).status_code == 200
+    assert client.get(reverse("upload", args=[detector.pk])).status_code == 403
+
+
+def test_upload_form_queues_scoring_and_shows_progress_json(
+    client, users, detector, split, split_truth, run_tasks
+):
+    _login(client, users["engineer"])
+    response = run_tasks(
+        client.post,
+        reverse("upload", args=[detector.pk]),
+        {
+            "version": "1.5.0",
+            "split": split.pk,
+            "predictions": upload("preds.json", detections_for(split_truth)),
+        },
+    )
+    assert response.status_code == 302
+    evaluation = Evaluation.objects.get(protocol="coco")
+    status = client.get(reverse("evaluation-status", args=[evaluation.pk])).json()
+    assert status == {
+        "id": evaluation.pk,
+        "state": "done",
+        "progress": 100,
+        "error": "",
+        "error_detail": None,
+    }
+    page = client.get(reverse("detector", args=[detector.pk])).content.decode()
+    assert "Version 1.5.0" in page and "state-done" in page
+    _login(client, users["rival"])
+    assert client.get(reverse("evaluation-status", args=[evaluation.pk])).status_code == 404
+
+
+def test_upload_form_shows_the_error_in_place(client, users, detector, split):
+    _login(client, users["engineer"])
+    response = client.post(
+        reverse("upload", args=[detector.pk]),
+        {
+            "version": "1.6.0",
+            "split": split.pk,
+            "predictions": upload("none.json", b"[]"),
+        },
+    )
+    assert response.status_code == 302  # an empty list is valid: it scores zero
+    response = client.post(
+        reverse("upload", args=[detector.pk]),
+        {
+            "version": "1.6.0",
+            "split": split.pk,
+            "predictions": upload("other.json", b"[ ]"),
+        },
+    )
+    assert response.status_code == 400
+    assert "1.6.0 already has other predictions on bay-night rev 1" in response.content.decode()
+    assert PredictionSet.objects.filter(version__label="1.6.0").count() == 1
+
+
+def test_failed_evaluation_message_is_shown(client, users, detector, split, run_tasks):
+    _login(client, users["engineer"])
+    run_tasks(
+        client.post,
+        reverse("upload", args=[detector.pk]),
+        {
+            "version": "1.5.0",
+            "split": split.pk,
+            "predictions": upload(
+                "bad.json",
+                '[{"image_id": 999999, "category_id": 1, "bbox": [1,2,3,4], "score": 0.5}]',
+            ),
+        },
+    )
+    page = client.get(reverse("detector", args=[detector.pk])).content.decode()
+    assert (
+        "bad.json: record 0: field &#x27;image_id&#x27;: image 999999 is not in the split" in page
+    )
+
+
+def test_load_split_form(client, users, team, split_truth):
+    _login(client, users["engineer"])
+    response = client.post(
+        reverse("load-split"),
+        {
+            "name": "ring-road",
+            "revision": 1,
+            "truth": upload("ring.json", split_truth),
+        },
+    )
+    assert response.status_code == 302
+    assert BenchmarkSplit.objects.get().sha256
+    bad = client.post(
+        reverse("load-split"),
+        {
+            "name": "ring-road",
+            "revision": 2,
+            "truth": upload("bad.json", '{"images": []}'),
+        },
+    )
+    assert bad.status_code == 400
+    assert "bad.json: field &#x27;annotations&#x27;: missing required field" in bad.content.decode()
+    assert BenchmarkSplit.objects.count() == 1
+
+
+def test_outsiders_cannot_load_splits(client, users):
+    _login(client, users["outsider"])
+    assert client.get(reverse("load-split")).status_code == 403
+
+
+def test_commands_load_and_upload(tmp_path, users, detector, split_truth, run_tasks, capsys):
+    import json
+
+    (tmp_path / "split.json").write_text(json.dumps(split_truth))
+    call_command("load_split", "bay-day", "1", str(tmp_path / "split.json"))
+    assert "frozen bay-day rev 1" in capsys.readouterr().out
+    (tmp_path / "p.json").write_text(json.dumps(detections_for(split_truth)))
+    run_tasks(
+        call_command,
+        "upload_predictions",
+        str(tmp_path / "p.json"),
+        detector="forward-camera",
+        label="0.9",
+        split="bay-day:1",
+        user="engineer",
+        create_version=True,
+    )
+    assert Evaluation.objects.filter(state="done").count() == 2
+    with pytest.raises(CommandError, match="bay-day rev 1 already exists"):
+        call_command("load_split", "bay-day", "1", str(tmp_path / "split.json"))
+    with pytest.raises(CommandError, match="rival may not upload"):
+        call_command(
+            "upload_predictions",
+            str(tmp_path / "p.json"),
+            detector="forward-camera",
+            label="0.9",
+            split="bay-day:1",
+            user="rival",
+        )
+    assert PredictionFile.objects.count() == 1
