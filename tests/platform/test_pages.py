@@ -5,7 +5,9 @@ from django.core.management import call_command
 from django.core.management.base import CommandError
 from django.urls import reverse
 
+from evaluation import services as evaluation_services
 from evaluation.models import BenchmarkSplit, Evaluation, PredictionFile
+from releases import services
 from releases.models import PredictionSet
 
 from .conftest import detections_for, upload
@@ -173,3 +175,53 @@ def test_commands_load_and_upload(tmp_path, users, detector, split_truth, run_ta
             user="rival",
         )
     assert PredictionFile.objects.count() == 1
+
+
+def test_admin_shows_frozen_and_finished_rows_read_only(
+    admin_client, split, version, users, split_truth, run_tasks
+):
+    run_tasks(
+        services.submit_predictions,
+        version,
+        split,
+        upload("p.json", detections_for(split_truth)),
+        users["engineer"],
+    )
+    evaluation = Evaluation.objects.filter(state="done").first()
+    split_page = admin_client.get(
+        reverse("admin:evaluation_benchmarksplit_change", args=[split.pk])
+    )
+    assert (
+        split_page.status_code == 200
+        and 'type="submit"' not in split_page.content.decode().split("<form")[-1]
+    )
+    assert (
+        admin_client.post(
+            reverse("admin:evaluation_benchmarksplit_delete", args=[split.pk]), {"post": "yes"}
+        ).status_code
+        == 403
+    )
+    done_page = admin_client.get(
+        reverse("admin:evaluation_evaluation_change", args=[evaluation.pk])
+    )
+    assert done_page.status_code == 200 and "Save" not in done_page.content.decode()
+    for model in ("team", "detector", "modelversion", "predictionset"):
+        assert admin_client.get(reverse(f"admin:releases_{model}_changelist")).status_code == 200
+
+
+def test_csv_split_with_images_table(users, team):
+    split = evaluation_services.load_split(
+        name="kerb-stops",
+        revision=1,
+        truth=upload(
+            "boxes.csv",
+            "image_id,label,x_min,y_min,x_max,y_max\nf1,car,10,10,90,60\nf2,pedestrian,5,5,25,70\n",
+        ),
+        images=upload(
+            "images.csv", "image_id,width,height,tags\nf1,1280,720,night\nf2,1280,720,day;rain\n"
+        ),
+    )
+    assert (split.image_count, split.box_count, split.source_format) == (2, 2, "csv")
+    assert split.tags == {"day": 1, "night": 1, "rain": 1}
+    assert split.class_counts == {"car": 1, "pedestrian": 1}
+    assert split.images_file.name.endswith("images.csv")
