@@ -75,10 +75,16 @@ DATABASES = {
     "default": dj_database_url.parse(os.environ.get("DATABASE_URL", _default_db), conn_max_age=60)
 }
 if DATABASES["default"]["ENGINE"].endswith("sqlite3"):
-    # A file, not memory, so a worker process can share the test database too;
-    # a busy timeout because the web server and the worker write concurrently.
+    # A file, not memory, so a worker process can share the test database too. The web
+    # server and the worker write concurrently: write-ahead logging lets readers go on,
+    # and IMMEDIATE transactions take the write lock up front, so they wait (up to the
+    # timeout) instead of failing with "database is locked" when upgrading a read.
     DATABASES["default"]["TEST"] = {"NAME": str(VAR_DIR / "test-benchbook.sqlite3")}
-    DATABASES["default"]["OPTIONS"] = {"timeout": 30}
+    DATABASES["default"]["OPTIONS"] = {
+        "timeout": 30,
+        "transaction_mode": "IMMEDIATE",
+        "init_command": "PRAGMA journal_mode=WAL; PRAGMA synchronous=NORMAL;",
+    }
     DATABASES["default"]["CONN_MAX_AGE"] = 0
 
 DEFAULT_AUTO_FIELD = "django.db.models.BigAutoField"
