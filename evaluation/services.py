@@ -278,14 +278,7 @@ def run_evaluation(evaluation_id, claim=None):
         with transaction.atomic():
             _fail(evaluation, str(e), e.as_dict())
         return evaluation
-    result["counts"] = {
-        "images": truth.n_images,
-        "truth_boxes": truth.n_boxes,
-        "predictions": len(predictions),
-        "scored_predictions": records.n_detections,
-        "clipped_predictions": predictions.clipped,
-        "dropped_predictions": predictions.dropped,
-    }
+    result["counts"] = engine.counts(truth, predictions, records)
     _store(evaluation, result, records, len(predictions))
     return evaluation
 

@@ -12,7 +12,7 @@ Command line: ``python -m evaluation.engine score --truth GT --predictions PRED`
 
 from .data import GroundTruth, Predictions
 from .errors import InputError
-from .evaluate import evaluate
+from .evaluate import counts, evaluate
 from .loaders import load_predictions, load_truth
 from .matching import match
 from .protocols import PRESETS, Protocol, get_protocol, protocol_from_dict
@@ -29,6 +29,7 @@ __all__ = [
     "MatchRecords",
     "Predictions",
     "Protocol",
+    "counts",
     "evaluate",
     "get_protocol",
     "headline",

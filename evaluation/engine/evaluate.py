@@ -26,7 +26,13 @@ def evaluate(
     result = score_records(
         records, protocol, weights=weights, tag_masks=tag_masks, score_threshold=score_threshold
     )
-    result["counts"] = {
+    result["counts"] = counts(truth, predictions, records)
+    return (result, records) if return_records else result
+
+
+def counts(truth, predictions, records):
+    """What was scored: images, boxes, predictions read, scored, clipped, dropped."""
+    return {
         "images": truth.n_images,
         "truth_boxes": truth.n_boxes,
         "predictions": len(predictions),
@@ -34,4 +40,3 @@ def evaluate(
         "clipped_predictions": predictions.clipped,
         "dropped_predictions": predictions.dropped,
     }
-    return (result, records) if return_records else result
