@@ -8,6 +8,13 @@ class MembershipInline(admin.TabularInline):
     extra = 0
 
 
+@admin.register(Membership)
+class MembershipAdmin(admin.ModelAdmin):
+    list_display = ["user", "team", "role"]
+    list_filter = ["role", "team"]
+    list_select_related = ["user", "team"]
+
+
 @admin.register(Team)
 class TeamAdmin(admin.ModelAdmin):
     list_display = ["name", "slug"]
