@@ -10,7 +10,7 @@ from evaluation import engine
 from evaluation import services as evaluation_services
 from evaluation.models import BenchmarkSplit, Evaluation
 from evaluation.services import UploadError
-from releases import services
+from releases import selectors, services
 from releases.models import Detector
 
 from .forms import PredictionsForm, SplitForm
@@ -18,14 +18,14 @@ from .forms import PredictionsForm, SplitForm
 
 def _detector_or_404(user, detector_id):
     try:
-        return services.detector_for(user, detector_id)
+        return selectors.detector_for(user, detector_id)
     except Detector.DoesNotExist:
         raise Http404("no such detector") from None
 
 
 @login_required
 def overview(request):
-    detectors = services.visible_detectors(request.user).prefetch_related("versions")
+    detectors = selectors.visible_detectors(request.user).prefetch_related("versions")
     return render(request, "frontend/overview.html", {"detectors": detectors})
 
 
@@ -35,13 +35,13 @@ def split_list(request):
     return render(
         request,
         "frontend/splits.html",
-        {"splits": splits, "can_load": services.can_load_splits(request.user)},
+        {"splits": splits, "can_load": selectors.can_load_splits(request.user)},
     )
 
 
 @login_required
 def load_split(request):
-    if not services.can_load_splits(request.user):
+    if not selectors.can_load_splits(request.user):
         raise PermissionDenied("only engineers and leads load benchmark splits")
     form = SplitForm(request.POST or None, request.FILES or None)
     error = None
@@ -75,8 +75,8 @@ def detector(request, detector_id):
         "frontend/detector.html",
         {
             "detector": found,
-            "history": services.history_for(found),
-            "can_upload": services.role_in(request.user, found.team) in services.UPLOAD_ROLES,
+            "history": selectors.history_for(found),
+            "can_upload": selectors.role_in(request.user, found.team) in selectors.UPLOAD_ROLES,
         },
     )
 
@@ -116,7 +116,7 @@ def upload_predictions(request, detector_id):
 @login_required
 def evaluation_status(request, evaluation_id):
     try:
-        evaluation = services.evaluation_for(request.user, evaluation_id)
+        evaluation = selectors.evaluation_for(request.user, evaluation_id)
     except Evaluation.DoesNotExist:
         raise Http404("no such evaluation") from None
     return JsonResponse(
