@@ -4,7 +4,9 @@ VENV   := .venv
 BIN    := $(VENV)/bin
 STAMP  := $(VENV)/.installed-$(shell cat requirements.txt requirements-dev.txt | cksum | cut -d' ' -f1)
 
-.PHONY: demo test lint bench clean
+.PHONY: demo test lint bench static clean
+
+CHARTJS := frontend/static/frontend/vendor/chart.umd.min.js
 
 $(STAMP): requirements.txt requirements-dev.txt
 	@$(PYTHON) -c 'import sys; assert sys.version_info[:2] == (3, 11), "Benchbook needs Python 3.11"'
@@ -12,9 +14,17 @@ $(STAMP): requirements.txt requirements-dev.txt
 	$(BIN)/python -m pip install --quiet -r requirements.txt -r requirements-dev.txt
 	@rm -f $(VENV)/.installed-* && touch $(STAMP)
 
+## Front-end packages from the npm registry (pinned in frontend/package-lock.json),
+## copied into the static files; nothing is fetched at run time.
+static: $(CHARTJS)
+$(CHARTJS): frontend/package.json frontend/package-lock.json
+	npm ci --prefix frontend --no-audit --no-fund --silent
+	mkdir -p $(dir $(CHARTJS))
+	cp frontend/node_modules/chart.js/dist/chart.umd.min.js $(CHARTJS)
+
 ## The demo: migrate, seed the invented scenario, then a worker and the web server
 ## on http://127.0.0.1:8000 (embedded SQLite + filesystem broker under var/).
-demo: $(STAMP)
+demo: $(STAMP) $(CHARTJS)
 	$(BIN)/python manage.py migrate --noinput -v0
 	$(BIN)/python manage.py collectstatic --noinput -v0
 	$(BIN)/python manage.py seed_demo
@@ -23,7 +33,7 @@ demo: $(STAMP)
 	  $(BIN)/python manage.py runserver 127.0.0.1:8000 --noreload
 
 ## Run the whole test suite (engine doctests included).
-test: $(STAMP)
+test: $(STAMP) $(CHARTJS)
 	$(BIN)/python -m pytest
 
 lint: $(STAMP)
@@ -34,4 +44,4 @@ bench: $(STAMP)
 	$(BIN)/python bench/engine_vs_reference.py
 
 clean:
-	rm -rf $(VENV) var bench/out
+	rm -rf $(VENV) var bench/out frontend/node_modules $(dir $(CHARTJS))

@@ -11,5 +11,8 @@ urlpatterns = [
     path("splits/load/", views.load_split, name="load-split"),
     path("detectors/<int:detector_id>/", views.detector, name="detector"),
     path("detectors/<int:detector_id>/upload/", views.upload_predictions, name="upload"),
+    path("detectors/<int:detector_id>/compare/", views.compare, name="compare"),
+    path("versions/<int:version_id>/", views.version, name="version"),
+    path("splits/<int:split_id>/", views.split, name="split"),
     path("evaluations/<int:evaluation_id>.json", views.evaluation_status, name="evaluation-status"),
 ]

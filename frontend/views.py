@@ -5,13 +5,15 @@ from django.contrib.auth.decorators import login_required
 from django.core.exceptions import PermissionDenied
 from django.http import Http404, JsonResponse
 from django.shortcuts import redirect, render
+from django.urls import reverse
+from django.utils.html import json_script
 
 from evaluation import engine
 from evaluation import services as evaluation_services
 from evaluation.models import BenchmarkSplit, Evaluation
 from evaluation.services import UploadError
 from releases import selectors, services
-from releases.models import Detector
+from releases.models import Detector, ModelVersion
 
 from .forms import PredictionsForm, SplitForm
 
@@ -23,10 +25,23 @@ def _detector_or_404(user, detector_id):
         raise Http404("no such detector") from None
 
 
+CAUTION = (
+    "Benchmark metrics support, and do not replace, the safety validation of a perception "
+    "system under the applicable standards (for example ISO 26262, ISO 21448, UL 4600) and "
+    "your organisation's release process."
+)
+
+
+def _version_or_404(user, version_id):
+    try:
+        return selectors.version_for(user, version_id)
+    except ModelVersion.DoesNotExist:
+        raise Http404("no such version") from None
+
+
 @login_required
 def overview(request):
-    detectors = selectors.visible_detectors(request.user).prefetch_related("versions")
-    return render(request, "frontend/overview.html", {"detectors": detectors})
+    return render(request, "frontend/overview.html", {"rows": selectors.overview_for(request.user)})
 
 
 @login_required
@@ -70,13 +85,99 @@ def load_split(request):
 @login_required
 def detector(request, detector_id):
     found = _detector_or_404(request.user, detector_id)
+    chart = selectors.history_chart(found)
+    for entry in chart["versions"]:
+        entry["url"] = reverse("version", args=[entry["id"]])
+    table = [
+        {
+            "version": v,
+            "values": [chart["values"][str(s["id"])]["AP"]["mean"][i] for s in chart["splits"]],
+        }
+        for i, v in enumerate(chart["versions"])
+    ]
     return render(
         request,
         "frontend/detector.html",
         {
             "detector": found,
-            "history": selectors.history_for(found),
+            "chart": chart,
+            "table": list(reversed(table)),
             "can_upload": selectors.role_in(request.user, found.team) in selectors.UPLOAD_ROLES,
+        },
+    )
+
+
+@login_required
+def version(request, version_id):
+    found = _version_or_404(request.user, version_id)
+    splits = selectors.version_scorecards(found)
+    for entry in splits:
+        if entry["card"]:
+            per_class = entry["card"].result["per_class"]
+            data = {
+                "series": list(per_class),
+                "classes": {"all": {name: row["curve"] for name, row in per_class.items()}},
+            }
+            entry["curves_script"] = json_script(data, f"curves-data-{entry['split'].pk}")
+    return render(
+        request,
+        "frontend/version.html",
+        {
+            "version": found,
+            "detector": found.detector,
+            "splits": splits,
+            "evaluations": selectors.evaluations_of(found),
+        },
+    )
+
+
+@login_required
+def compare(request, detector_id):
+    found = _detector_or_404(request.user, detector_id)
+    versions = list(found.versions.order_by("-created_at"))
+    if len(versions) < 2:
+        return render(request, "frontend/compare.html", {"detector": found, "versions": versions})
+    by_id = {str(v.pk): v for v in versions}
+    candidate = by_id.get(request.GET.get("candidate"), versions[0])
+    fallback = versions[1] if candidate == versions[0] else versions[0]
+    reference = by_id.get(request.GET.get("reference"), fallback)
+    splits = selectors.compare_versions(reference, candidate)
+    series = [f"{reference.label} (reference)", f"{candidate.label} (candidate)"]
+    for entry in splits:
+        data = {
+            "series": series,
+            "classes": {
+                name: dict(zip(series, (pair["reference"], pair["candidate"])))
+                for name, pair in entry["curves"].items()
+            },
+        }
+        entry["curves_script"] = json_script(data, f"curves-data-{entry['split'].pk}")
+    return render(
+        request,
+        "frontend/compare.html",
+        {
+            "detector": found,
+            "versions": versions,
+            "reference": reference,
+            "candidate": candidate,
+            "splits": splits,
+            "caution": CAUTION,
+        },
+    )
+
+
+@login_required
+def split(request, split_id):
+    try:
+        found = BenchmarkSplit.objects.get(pk=split_id)
+    except BenchmarkSplit.DoesNotExist:
+        raise Http404("no such split") from None
+    return render(
+        request,
+        "frontend/split.html",
+        {
+            "split": found,
+            "usage": selectors.split_usage(request.user, found),
         },
     )
 

@@ -34,34 +34,29 @@ def detector_for(user, detector_id):
     return visible_detectors(user).get(pk=detector_id)
 
 
-def history_for(detector):
-    """Versions of a detector, newest first, with their prediction sets and the
-    evaluations of each (one query per level, no N+1)."""
+def version_for(user, version_id):
+    """A version of a visible detector, else ``ModelVersion.DoesNotExist``."""
+    from .models import ModelVersion
+
+    return ModelVersion.objects.select_related("detector__team", "created_by").get(
+        pk=version_id, detector__in=visible_detectors(user)
+    )
+
+
+def evaluations_of(version):
+    """Every evaluation of a version's prediction sets, with its split (2 queries)."""
     from evaluation.models import Evaluation
 
-    versions = list(
-        detector.versions.order_by("-created_at").prefetch_related("prediction_sets__split")
+    sets = list(version.prediction_sets.all())
+    pairs = {(ps.predictions_id, ps.split_id) for ps in sets}
+    found = (
+        Evaluation.objects.filter(
+            predictions_id__in={p for p, _ in pairs}, split_id__in={s for _, s in pairs}
+        )
+        .select_related("split")
+        .order_by("split__name", "split__revision", "protocol")
     )
-    sets = [ps for v in versions for ps in v.prediction_sets.all()]
-    evaluations = Evaluation.objects.filter(
-        predictions_id__in={ps.predictions_id for ps in sets},
-        split_id__in={ps.split_id for ps in sets},
-    ).select_related("scorecard")
-    by_input = {}
-    for evaluation in evaluations:
-        by_input.setdefault((evaluation.predictions_id, evaluation.split_id), []).append(evaluation)
-    rows = []
-    for version in versions:
-        entries = []
-        for ps in sorted(
-            version.prediction_sets.all(), key=lambda p: (p.split.name, p.split.revision)
-        ):
-            found = sorted(
-                by_input.get((ps.predictions_id, ps.split_id), []), key=lambda e: e.protocol
-            )
-            entries.append({"prediction_set": ps, "evaluations": found})
-        rows.append({"version": version, "entries": entries})
-    return rows
+    return [e for e in found if (e.predictions_id, e.split_id) in pairs]
 
 
 def evaluation_for(user, evaluation_id):
@@ -84,3 +79,257 @@ def can_load_splits(user):
     return user.is_superuser or Membership.objects.filter(user=user, role__in=UPLOAD_ROLES).exists()
 
 
+# Page data ------------------------------------------------------------------------
+
+METRICS = {  # metric key -> (ClassScore field, summary keys tried for the mean)
+    "AP": ("ap", ("AP",)),
+    "AP50": ("ap50", ("AP50",)),
+    "AP75": ("ap75", ("AP75",)),
+    "recall": ("recall", ("AR100", "recall")),
+    "miss_rate": ("miss_rate", ()),
+}
+
+
+def _scorecards(prediction_sets, protocols):
+    """Finished scorecards of these prediction sets: {(set id, protocol): Scorecard}."""
+    from evaluation.models import Scorecard
+
+    by_input = {(ps.predictions_id, ps.split_id): ps for ps in prediction_sets}
+    cards = Scorecard.objects.filter(
+        evaluation__state="done",
+        evaluation__protocol__in=protocols,
+        evaluation__predictions_id__in={k[0] for k in by_input},
+        evaluation__split_id__in={k[1] for k in by_input},
+    ).select_related("evaluation")
+    out = {}
+    for card in cards:
+        ps = by_input.get((card.evaluation.predictions_id, card.evaluation.split_id))
+        if ps is not None:
+            out[(ps.pk, card.protocol)] = card
+    return out
+
+
+def _class_rows(cards):
+    from evaluation.models import ClassScore
+
+    rows = {}
+    for row in ClassScore.objects.filter(scorecard__in=list(cards)):
+        rows.setdefault(row.scorecard_id, {})[row.class_name] = row
+    return rows
+
+
+def _mean(card, rows, metric):
+    field, keys = METRICS[metric]
+    for key in keys:
+        if card.summary.get(key) is not None:
+            return card.summary[key]
+    values = [getattr(r, field) for r in rows.values() if getattr(r, field) is not None]
+    return sum(values) / len(values) if values else None
+
+
+def history_chart(detector):
+    """Every version's numbers on every split, for the history chart and table.
+
+    ``values[split][metric][class]`` is a list aligned with ``versions`` (None where
+    not scored); class ``"mean"`` is the protocol's mean. Five queries in all.
+    """
+    versions = list(detector.versions.order_by("created_at"))
+    sets = list(PredictionSet.objects.filter(version__detector=detector).select_related("split"))
+    cards = _scorecards(sets, [detector.primary_protocol])
+    rows = _class_rows(cards.values())
+    splits = sorted({ps.split for ps in sets}, key=lambda s: (s.name, s.revision))
+    position = {v.pk: i for i, v in enumerate(versions)}
+    classes = ["mean", *detector.classes]
+    values = {
+        split.pk: {m: {c: [None] * len(versions) for c in classes} for m in METRICS}
+        for split in splits
+    }
+    for ps in sets:
+        card = cards.get((ps.pk, detector.primary_protocol))
+        if card is None:
+            continue
+        i = position[ps.version_id]
+        class_rows = rows.get(card.pk, {})
+        for metric, (field, _) in METRICS.items():
+            values[ps.split_id][metric]["mean"][i] = _mean(card, class_rows, metric)
+            for name, row in class_rows.items():
+                if name in values[ps.split_id][metric]:
+                    values[ps.split_id][metric][name][i] = getattr(row, field)
+    return {
+        "protocol": detector.primary_protocol,
+        "versions": [
+            {"id": v.pk, "label": v.label, "date": v.created_at.date().isoformat()}
+            for v in versions
+        ],
+        "splits": [{"id": s.pk, "name": str(s)} for s in splits],
+        "metrics": list(METRICS),
+        "classes": classes,
+        "values": {str(k): v for k, v in values.items()},
+    }
+
+
+def version_scorecards(version):
+    """Per split: the primary scorecard with its class and slice rows, and the
+    headline of every other protocol. A fixed number of queries."""
+    from evaluation.models import SliceScore
+
+    detector = version.detector
+    sets = sorted(
+        version.prediction_sets.select_related("split", "predictions", "uploaded_by"),
+        key=lambda ps: (ps.split.name, ps.split.revision),
+    )
+    cards = _scorecards(sets, detector.protocols)
+    primary = [c for (_, p), c in cards.items() if p == detector.primary_protocol]
+    rows = _class_rows(primary)
+    slices = {}
+    for s in SliceScore.objects.filter(scorecard__in=primary, kind="tag"):
+        slices.setdefault(s.scorecard_id, {}).setdefault(s.name, {})[s.class_name or "mean"] = s.ap
+    out = []
+    for ps in sets:
+        card = cards.get((ps.pk, detector.primary_protocol))
+        out.append(
+            {
+                "prediction_set": ps,
+                "split": ps.split,
+                "card": card,
+                "classes": [rows.get(card.pk, {}).get(c) for c in detector.classes] if card else [],
+                "tags": slices.get(card.pk, {}) if card else {},
+                "others": [
+                    (p, cards[(ps.pk, p)].summary.get("AP"))
+                    for p in detector.protocols
+                    if p != detector.primary_protocol and (ps.pk, p) in cards
+                ],
+            }
+        )
+    return out
+
+
+def compare_versions(reference, candidate):
+    """Per shared split: per-class AP deltas (candidate - reference), worst first,
+    tag-slice deltas, and both versions' precision-recall curves."""
+    from evaluation.models import SliceScore
+
+    detector = reference.detector
+    sets = list(
+        PredictionSet.objects.filter(version__in=[reference, candidate]).select_related("split")
+    )
+    cards = _scorecards(sets, [detector.primary_protocol])
+    by_version = {}
+    for ps in sets:
+        card = cards.get((ps.pk, detector.primary_protocol))
+        if card is not None:
+            by_version.setdefault(ps.split, {})[ps.version_id] = card
+    used = [c for pair in by_version.values() for c in pair.values()]
+    rows = _class_rows(used)
+    tag_ap = {}
+    for s in SliceScore.objects.filter(scorecard__in=used, kind="tag"):
+        tag_ap[(s.scorecard_id, s.name, s.class_name or "mean")] = s.ap
+    out = []
+    for split in sorted(by_version, key=lambda s: (s.name, s.revision)):
+        pair = by_version[split]
+        if reference.pk not in pair or candidate.pk not in pair:
+            continue
+        a, b = pair[reference.pk], pair[candidate.pk]
+        deltas = []
+        for name in ["mean", *detector.classes]:
+            if name == "mean":
+                va, vb = a.summary.get("AP"), b.summary.get("AP")
+            else:
+                ra, rb = rows.get(a.pk, {}).get(name), rows.get(b.pk, {}).get(name)
+                va, vb = (ra.ap if ra else None), (rb.ap if rb else None)
+            deltas.append(
+                {
+                    "class": name,
+                    "reference": va,
+                    "candidate": vb,
+                    "delta": None if va is None or vb is None else vb - va,
+                }
+            )
+        deltas.sort(key=lambda d: (d["class"] != "mean", d["delta"] is None, d["delta"] or 0))
+        tags = sorted({k[1] for k in tag_ap if k[0] in (a.pk, b.pk)})
+        tag_rows = []
+        for tag in tags:
+            for name in ["mean", *detector.classes]:
+                va, vb = tag_ap.get((a.pk, tag, name)), tag_ap.get((b.pk, tag, name))
+                tag_rows.append(
+                    {
+                        "tag": tag,
+                        "class": name,
+                        "reference": va,
+                        "candidate": vb,
+                        "delta": None if va is None or vb is None else vb - va,
+                    }
+                )
+        curves = {
+            name: {
+                "reference": a.result["per_class"][name]["curve"],
+                "candidate": b.result["per_class"][name]["curve"],
+            }
+            for name in detector.classes
+            if name in a.result["per_class"] and name in b.result["per_class"]
+        }
+        out.append({"split": split, "deltas": deltas, "tags": tag_rows, "curves": curves})
+    return out
+
+
+def overview_for(user):
+    """For each visible detector: its newest version, headline AP per split, and
+    evaluations still queued or running (with progress)."""
+    from evaluation.models import Evaluation
+
+    from .models import ModelVersion
+
+    detectors = list(visible_detectors(user).order_by("team__name", "name"))
+    newest = {d.pk: None for d in detectors}
+    for version in ModelVersion.objects.filter(detector__in=detectors).order_by("created_at"):
+        newest[version.detector_id] = version
+    sets = list(
+        PredictionSet.objects.filter(version__in=[v for v in newest.values() if v]).select_related(
+            "split", "version"
+        )
+    )
+    protocols = {d.primary_protocol for d in detectors}
+    cards = _scorecards(sets, protocols)
+    all_sets = PredictionSet.objects.filter(version__detector__in=detectors)
+    pending = Evaluation.objects.filter(
+        state__in=["queued", "running"],
+        predictions_id__in=all_sets.values("predictions_id"),
+    ).select_related("split")
+    pending_by_file = {}
+    for evaluation in pending:
+        pending_by_file.setdefault(evaluation.predictions_id, []).append(evaluation)
+    owner = dict(all_sets.values_list("predictions_id", "version__detector_id"))
+    out = []
+    for detector in detectors:
+        version = newest[detector.pk]
+        headline = [
+            {
+                "split": ps.split,
+                "ap": cards[(ps.pk, detector.primary_protocol)].summary.get("AP")
+                if (ps.pk, detector.primary_protocol) in cards
+                else None,
+            }
+            for ps in sorted(
+                (p for p in sets if version and p.version_id == version.pk),
+                key=lambda p: (p.split.name, p.split.revision),
+            )
+        ]
+        running = [
+            e
+            for file_id, evs in pending_by_file.items()
+            if owner.get(file_id) == detector.pk
+            for e in evs
+        ]
+        out.append(
+            {"detector": detector, "newest": version, "headline": headline, "pending": running}
+        )
+    return out
+
+
+def split_usage(user, split):
+    """Versions of visible detectors that were scored on ``split``."""
+    return list(
+        PredictionSet.objects.filter(split=split, version__detector__in=visible_detectors(user))
+        .select_related("version__detector")
+        .order_by("version__detector__name", "version__created_at")
+    )

@@ -65,8 +65,11 @@ def test_upload_form_queues_scoring_and_shows_progress_json(
         "error": "",
         "error_detail": None,
     }
-    page = client.get(reverse("detector", args=[detector.pk])).content.decode()
-    assert "Version 1.5.0" in page and "state-done" in page
+    version = Evaluation.objects.get(protocol="coco").predictions  # the stored file
+    page = client.get(
+        reverse("version", args=[PredictionSet.objects.get(predictions=version).version_id])
+    )
+    assert "1.5.0" in page.content.decode() and "state-done" in page.content.decode()
     _login(client, users["rival"])
     assert client.get(reverse("evaluation-status", args=[evaluation.pk])).status_code == 404
 
@@ -109,7 +112,8 @@ def test_failed_evaluation_message_is_shown(client, users, detector, split, run_
             ),
         },
     )
-    page = client.get(reverse("detector", args=[detector.pk])).content.decode()
+    version_id = PredictionSet.objects.get().version_id
+    page = client.get(reverse("version", args=[version_id])).content.decode()
     assert (
         "bad.json: record 0: field &#x27;image_id&#x27;: image 999999 is not in the split" in page
     )

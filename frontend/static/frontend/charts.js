@@ -1,0 +1,95 @@
+/* Benchbook charts: read JSON embedded by the page, draw with Chart.js.
+   Every chart is kept in window.benchbookCharts[id] so tests can inspect it. */
+(function () {
+  "use strict";
+  // Okabe–Ito palette: distinguishable with the common colour-vision deficiencies.
+  const PALETTE = ["#0072B2", "#E69F00", "#009E73", "#D55E00", "#CC79A7", "#56B4E9", "#000000", "#F0E442"];
+  const DASHES = [[], [6, 3], [2, 2], [8, 3, 2, 3]];
+  window.benchbookCharts = window.benchbookCharts || {};
+
+  function data(id) { return JSON.parse(document.getElementById(id).textContent); }
+  function axis(title, extra) { return Object.assign({ title: { display: true, text: title } }, extra || {}); }
+
+  function history(canvas) {
+    const d = data(canvas.dataset.source);
+    const metric = document.getElementById(canvas.dataset.metric);
+    const cls = document.getElementById(canvas.dataset.class);
+    function datasets() {
+      return d.splits.map((split, i) => ({
+        label: split.name,
+        data: d.values[String(split.id)][metric.value][cls.value],
+        borderColor: PALETTE[i % PALETTE.length], backgroundColor: PALETTE[i % PALETTE.length],
+        borderDash: DASHES[i % DASHES.length], spanGaps: true, tension: 0, pointRadius: 4,
+      }));
+    }
+    const chart = new Chart(canvas, {
+      type: "line",
+      data: { labels: d.versions.map(v => v.label), datasets: datasets() },
+      options: {
+        responsive: true, maintainAspectRatio: false, animation: false,
+        scales: {
+          x: axis("Version (oldest to newest)"),
+          y: axis(`${metric.value} (${d.protocol}, 0–1)`, { min: 0, max: 1 }),
+        },
+        onClick: (event, elements) => {
+          if (elements.length) window.location = d.versions[elements[0].index].url;
+        },
+        plugins: { legend: { position: "bottom" } },
+      },
+    });
+    function refresh() {
+      chart.data.datasets = datasets();
+      chart.options.scales.y.title.text = `${metric.value} (${d.protocol}, 0–1)`;
+      chart.update();
+    }
+    metric.addEventListener("change", refresh);
+    cls.addEventListener("change", refresh);
+    window.benchbookCharts[canvas.id] = chart;
+  }
+
+  function curves(canvas) {
+    // {series: [name...], classes: {class: {series name: {recall: [], precision: []}}}}
+    const d = data(canvas.dataset.source);
+    const cls = document.getElementById(canvas.dataset.class);
+    function datasets() {
+      const entry = d.classes[cls.value] || {};
+      return d.series.map((name, i) => ({
+        label: name,
+        data: (entry[name] ? entry[name].recall : []).map((r, j) => ({ x: r, y: entry[name].precision[j] })),
+        borderColor: PALETTE[i % PALETTE.length], backgroundColor: PALETTE[i % PALETTE.length],
+        borderDash: DASHES[i % DASHES.length], pointRadius: 0, showLine: true, stepped: "after",
+      }));
+    }
+    const chart = new Chart(canvas, {
+      type: "scatter",
+      data: { datasets: datasets() },
+      options: {
+        responsive: true, maintainAspectRatio: false, animation: false,
+        scales: { x: axis("Recall (0–1)", { min: 0, max: 1 }), y: axis("Interpolated precision (0–1)", { min: 0, max: 1 }) },
+        plugins: { legend: { position: "bottom" } },
+      },
+    });
+    cls.addEventListener("change", () => { chart.data.datasets = datasets(); chart.update(); });
+    window.benchbookCharts[canvas.id] = chart;
+  }
+
+  function progress() {
+    document.querySelectorAll("[data-poll]").forEach(bar => {
+      const tick = () => fetch(bar.dataset.poll, { headers: { Accept: "application/json" } })
+        .then(r => r.json()).then(s => {
+          bar.value = s.progress;
+          bar.textContent = `${s.progress} %`;
+          const label = document.getElementById(bar.dataset.state);
+          if (label) label.textContent = s.state;
+          if (s.state === "queued" || s.state === "running") setTimeout(tick, 1000);
+        });
+      tick();
+    });
+  }
+
+  document.addEventListener("DOMContentLoaded", () => {
+    document.querySelectorAll("canvas[data-chart=history]").forEach(history);
+    document.querySelectorAll("canvas[data-chart=curves]").forEach(curves);
+    progress();
+  });
+})();

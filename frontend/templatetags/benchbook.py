@@ -1,0 +1,29 @@
+"""One number format everywhere: scores on 0-1 with three decimals, deltas signed."""
+
+from django import template
+
+register = template.Library()
+ABSENT = "—"
+
+
+@register.filter
+def score(value):
+    return ABSENT if value is None else f"{value:.3f}"
+
+
+@register.filter
+def delta(value):
+    return ABSENT if value is None else f"{value:+.3f}"
+
+
+@register.filter
+def direction(value):
+    """CSS class of a delta: worse, better or level (at display precision)."""
+    if value is None or abs(value) < 0.0005:
+        return "level"
+    return "better" if value > 0 else "worse"
+
+
+@register.filter
+def get(mapping, key):
+    return mapping.get(key) if mapping else None
