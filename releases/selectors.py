@@ -204,6 +204,11 @@ def version_scorecards(version):
     return out
 
 
+def _delta(name, reference, candidate):
+    delta = None if reference is None or candidate is None else candidate - reference
+    return {"class": name, "reference": reference, "candidate": candidate, "delta": delta}
+
+
 def compare_versions(reference, candidate):
     """Per shared split: per-class AP deltas (candidate - reference), worst first,
     tag-slice deltas, and both versions' precision-recall curves."""
@@ -237,29 +242,19 @@ def compare_versions(reference, candidate):
             else:
                 ra, rb = rows.get(a.pk, {}).get(name), rows.get(b.pk, {}).get(name)
                 va, vb = (ra.ap if ra else None), (rb.ap if rb else None)
-            deltas.append(
-                {
-                    "class": name,
-                    "reference": va,
-                    "candidate": vb,
-                    "delta": None if va is None or vb is None else vb - va,
-                }
-            )
+            deltas.append(_delta(name, va, vb))
         deltas.sort(key=lambda d: (d["class"] != "mean", d["delta"] is None, d["delta"] or 0))
         tags = sorted({k[1] for k in tag_ap if k[0] in (a.pk, b.pk)})
-        tag_rows = []
-        for tag in tags:
-            for name in ["mean", *detector.classes]:
-                va, vb = tag_ap.get((a.pk, tag, name)), tag_ap.get((b.pk, tag, name))
-                tag_rows.append(
-                    {
-                        "tag": tag,
-                        "class": name,
-                        "reference": va,
-                        "candidate": vb,
-                        "delta": None if va is None or vb is None else vb - va,
-                    }
-                )
+        tag_rows = [
+            {
+                "tag": tag,
+                "cells": [
+                    _delta(name, tag_ap.get((a.pk, tag, name)), tag_ap.get((b.pk, tag, name)))
+                    for name in ["mean", *detector.classes]
+                ],
+            }
+            for tag in tags
+        ]
         curves = {
             name: {
                 "reference": a.result["per_class"][name]["curve"],
