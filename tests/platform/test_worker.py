@@ -16,7 +16,7 @@ from django.conf import settings
 from django.db import connection
 
 from benchbook.celery import app as celery_app
-from evaluation import engine, triggers
+from evaluation import engine
 from evaluation.models import Evaluation, Scorecard
 from releases import services
 
@@ -35,7 +35,7 @@ def _database_url():
 
 
 @pytest.fixture
-def worker(settings):
+def worker(settings, flushable):
     if os.environ.get("CI") == "true":
         # CI must exercise the production stack, never the embedded fallback.
         assert connection.vendor == "postgresql", "CI=true needs DATABASE_URL on PostgreSQL"
@@ -83,8 +83,6 @@ def worker(settings):
         output, _ = process.communicate()
     celery_app.conf.task_default_queue = previous
     print(output)
-    if connection.vendor == "sqlite":
-        triggers.remove(connection)  # the flush after a transactional test deletes rows
 
 
 def _wait_for(queryset, seconds=90):

@@ -1,0 +1,175 @@
+"""The pages in a real headless Chromium (Debian's package, driven by Playwright).
+
+Under CI=true these must run; elsewhere they skip when /usr/bin/chromium is missing.
+Screenshots go to test-artifacts/ for a person to look at.
+"""
+
+import datetime
+import os
+import pathlib
+
+import pytest
+from django.utils import timezone
+
+from releases import services
+
+from ..platform.conftest import detections_for, upload
+
+CHROMIUM = "/usr/bin/chromium"
+ARTIFACTS = pathlib.Path(__file__).resolve().parents[2] / "test-artifacts"
+
+pytestmark = [
+    pytest.mark.django_db(transaction=True),
+    pytest.mark.skipif(
+        not os.path.exists(CHROMIUM) and os.environ.get("CI") != "true",
+        reason="Debian's chromium is not installed (.ci/run installs it)",
+    ),
+]
+
+
+@pytest.fixture(scope="module")
+def browser():
+    playwright = pytest.importorskip("playwright.sync_api")
+    # Playwright's sync API keeps an event loop in this thread; the ORM calls of the
+    # test itself are still synchronous (Django's docs on async safety).
+    os.environ["DJANGO_ALLOW_ASYNC_UNSAFE"] = "true"
+    with playwright.sync_playwright() as p:
+        chromium = p.chromium.launch(
+            executable_path=CHROMIUM,
+            args=[
+                "--no-sandbox",
+                "--disable-gpu",
+                "--disable-quic",
+                "--no-first-run",
+                "--disable-background-networking",
+                "--disable-component-update",
+                "--disable-sync",
+            ],
+        )
+        yield chromium
+        chromium.close()
+    del os.environ["DJANGO_ALLOW_ASYNC_UNSAFE"]
+
+
+@pytest.fixture
+def page(browser, live_server, users, flushable):
+    context = browser.new_context(viewport={"width": 1280, "height": 900})
+    page = context.new_page()
+    page.goto(f"{live_server.url}/login/")
+    page.fill("#id_username", "lead")
+    page.fill("#id_password", "pw-lead")
+    page.click("button[type=submit]")
+    yield page
+    context.close()
+
+
+@pytest.fixture
+def scored(detector, split_truth, users, run_tasks, team):
+    from evaluation import services as evaluation_services
+
+    split = evaluation_services.load_split(
+        name="bay-night", revision=1, truth=upload("n.json", split_truth)
+    )
+    start = timezone.now() - datetime.timedelta(days=20)
+    versions = []
+    for i, label in enumerate(["1.0", "1.1", "1.2"]):
+        version = services.create_version(
+            detector, label, users["engineer"], created_at=start + datetime.timedelta(days=7 * i)
+        )
+        run_tasks(
+            services.submit_predictions,
+            version,
+            split,
+            upload(f"{label}.json", detections_for(split_truth, seed=60 + i)),
+            users["engineer"],
+        )
+        versions.append(version)
+    return split, versions
+
+
+def _shot(page, name):
+    ARTIFACTS.mkdir(exist_ok=True)
+    page.screenshot(path=str(ARTIFACTS / f"{name}.png"), full_page=True)
+
+
+def test_history_chart_holds_every_version_and_follows_the_selectors(
+    page, live_server, detector, scored
+):
+    page.goto(f"{live_server.url}/detectors/{detector.pk}/")
+    page.wait_for_function("window.benchbookCharts && window.benchbookCharts['history-chart']")
+    labels = page.evaluate("window.benchbookCharts['history-chart'].data.labels")
+    assert labels == ["1.0", "1.1", "1.2"]
+    first = page.evaluate("window.benchbookCharts['history-chart'].data.datasets[0].data")
+    assert len(first) == 3 and all(0 <= v <= 1 for v in first)
+    page.select_option("#history-class", "pedestrian")
+    page.select_option("#history-metric", "AP50")
+    after = page.evaluate("window.benchbookCharts['history-chart'].data.datasets[0].data")
+    assert after != first
+    assert (
+        page.evaluate("window.benchbookCharts['history-chart'].options.scales.y.title.text")
+        == "AP50 (coco, 0–1)"
+    )
+    _shot(page, "history")
+    page.set_viewport_size({"width": 390, "height": 800})
+    _shot(page, "history-390")
+
+
+def test_scorecard_draws_a_curve_per_class(page, live_server, scored):
+    split, versions = scored
+    page.goto(f"{live_server.url}/versions/{versions[-1].pk}/")
+    chart_id = f"curves-{split.pk}"
+    page.wait_for_function(f"window.benchbookCharts && window.benchbookCharts['{chart_id}']")
+    names = page.evaluate(f"window.benchbookCharts['{chart_id}'].data.datasets.map(d => d.label)")
+    assert names == ["car", "pedestrian", "cyclist"]
+    points = page.evaluate(f"window.benchbookCharts['{chart_id}'].data.datasets[0].data.length")
+    assert points > 10
+    _shot(page, "scorecard")
+
+
+def test_changing_the_compare_selection_changes_the_table(page, live_server, detector, scored):
+    split, versions = scored
+    page.goto(f"{live_server.url}/detectors/{detector.pk}/compare/")
+    table = page.locator(f"#deltas-{split.pk}")
+    before = table.inner_text()
+    assert "1.1" in before and "1.2" in before
+    page.select_option("#compare-reference", str(versions[0].pk))
+    page.click("#compare-form button[type=submit]")
+    page.wait_for_url("**reference=*")
+    after = page.locator(f"#deltas-{split.pk}").inner_text()
+    assert after != before and "1.0" in after
+    assert page.evaluate(f"window.benchbookCharts['curves-{split.pk}'].data.datasets.length") == 2
+    _shot(page, "compare")
+
+
+def test_progress_bar_advances_while_a_real_worker_scores(
+    page, live_server, detector, users, split_truth, worker
+):
+    import time
+
+    from evaluation import services as evaluation_services
+
+    split = evaluation_services.load_split(
+        name="ring-road", revision=1, truth=upload("r.json", split_truth)
+    )
+    version = services.create_version(detector, "2.0", users["engineer"])
+    services.submit_predictions(
+        version, split, upload("2.0.json", detections_for(split_truth, seed=3)), users["engineer"]
+    )
+    page.goto(f"{live_server.url}/versions/{version.pk}/")
+    bars = page.locator("progress[data-poll]")
+    assert bars.count() == 2  # one per protocol, queued: the worker is still starting
+    seen = []
+    deadline = time.monotonic() + 90
+    while time.monotonic() < deadline:
+        seen.append(
+            page.evaluate("[...document.querySelectorAll('progress[data-poll]')].map(b => b.value)")
+        )
+        states = page.evaluate(
+            "[...document.querySelectorAll('.state')].map(s => s.textContent.trim())"
+        )
+        if states == ["done", "done"]:
+            break
+        time.sleep(0.1)
+    assert states == ["done", "done"], states
+    assert min(min(v) for v in seen) < 100 and seen[-1] == [100, 100]
+    _shot(page, "progress-done")
