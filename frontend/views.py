@@ -115,7 +115,8 @@ def version(request, version_id):
         if entry["card"]:
             per_class = entry["card"].result["per_class"]
             data = {
-                "series": list(per_class),
+                # JSON columns may not keep key order (PostgreSQL jsonb): use the split's.
+                "series": [c for c in entry["split"].classes if c in per_class],
                 "classes": {"all": {name: row["curve"] for name, row in per_class.items()}},
             }
             entry["curves_script"] = json_script(data, f"curves-data-{entry['split'].pk}")
@@ -178,6 +179,8 @@ def split(request, split_id):
         {
             "split": found,
             "usage": selectors.split_usage(request.user, found),
+            "class_counts": [(c, found.class_counts.get(c)) for c in found.classes],
+            "tags": sorted(found.tags.items()),
         },
     )
 

@@ -168,6 +168,15 @@ def history_chart(detector):
     }
 
 
+def summary_items(summary):
+    """A scorecard's summary in the engine's order (JSON columns may reorder keys)."""
+    from evaluation.engine import COCO_SUMMARY_KEYS
+
+    order = [*COCO_SUMMARY_KEYS, "AP_small", "AP_medium", "AP_large", "recall"]
+    rank = {key: i for i, key in enumerate(order)}
+    return sorted(summary.items(), key=lambda item: (rank.get(item[0], len(order)), item[0]))
+
+
 def version_scorecards(version):
     """Per split: the primary scorecard with its class and slice rows, and the
     headline of every other protocol. A fixed number of queries."""
@@ -193,7 +202,14 @@ def version_scorecards(version):
                 "split": ps.split,
                 "card": card,
                 "classes": [rows.get(card.pk, {}).get(c) for c in detector.classes] if card else [],
-                "tags": slices.get(card.pk, {}) if card else {},
+                "tags": sorted(slices.get(card.pk, {}).items()) if card else [],
+                "summary": summary_items(card.summary) if card else [],
+                "sizes": [
+                    (name, card.result["slices"]["size"].get(name, {}).get("AP"))
+                    for name in ("small", "medium", "large")
+                ]
+                if card
+                else [],
                 "others": [
                     (p, cards[(ps.pk, p)].summary.get("AP"))
                     for p in detector.protocols

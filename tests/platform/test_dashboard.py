@@ -138,3 +138,14 @@ def test_query_count_does_not_grow_with_versions(
         )
     with django_assert_max_num_queries(len(few.captured_queries)):
         client.get(url())
+
+
+def test_scorecard_lists_the_summary_in_the_references_order(client, users, scored):
+    """pycocotools' summarize order, even on databases whose JSON columns sort keys."""
+    client.force_login(users["engineer"])
+    page = client.get(reverse("version", args=[scored[-1].pk])).content.decode()
+    positions = [
+        page.index(f"<dt>{key}</dt>")
+        for key in ("AP", "AP50", "AP75", "AP_small", "AR1", "AR100", "AR_large")
+    ]
+    assert positions == sorted(positions)
