@@ -172,7 +172,7 @@ def summary_items(summary):
     """A scorecard's summary in the engine's order (JSON columns may reorder keys)."""
     from evaluation.engine import COCO_SUMMARY_KEYS
 
-    order = [*COCO_SUMMARY_KEYS, "AP_small", "AP_medium", "AP_large", "recall"]
+    order = [*COCO_SUMMARY_KEYS, "recall"]  # other protocols use a subset of these
     rank = {key: i for i, key in enumerate(order)}
     return sorted(summary.items(), key=lambda item: (rank.get(item[0], len(order)), item[0]))
 
