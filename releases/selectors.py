@@ -90,8 +90,11 @@ METRICS = {  # metric key -> (ClassScore field, summary keys tried for the mean)
 }
 
 
-def _scorecards(prediction_sets, protocols):
-    """Finished scorecards of these prediction sets: {(set id, protocol): Scorecard}."""
+def _scorecards(prediction_sets, protocols, *, with_result=False):
+    """Finished scorecards of these prediction sets: {(set id, protocol): Scorecard}.
+
+    The full engine result (curves, slices) is large; it is loaded only when asked.
+    """
     from evaluation.models import Scorecard
 
     by_input = {(ps.predictions_id, ps.split_id): ps for ps in prediction_sets}
@@ -101,6 +104,8 @@ def _scorecards(prediction_sets, protocols):
         evaluation__predictions_id__in={k[0] for k in by_input},
         evaluation__split_id__in={k[1] for k in by_input},
     ).select_related("evaluation")
+    if not with_result:
+        cards = cards.defer("result")
     out = {}
     for card in cards:
         ps = by_input.get((card.evaluation.predictions_id, card.evaluation.split_id))
@@ -118,43 +123,49 @@ def _class_rows(cards):
     return rows
 
 
-def _mean(card, rows, metric):
-    field, keys = METRICS[metric]
-    for key in keys:
-        if card.summary.get(key) is not None:
-            return card.summary[key]
-    values = [getattr(r, field) for r in rows.values() if getattr(r, field) is not None]
-    return sum(values) / len(values) if values else None
-
-
 def history_chart(detector):
     """Every version's numbers on every split, for the history chart and table.
 
     ``values[split][metric][class]`` is a list aligned with ``versions`` (None where
-    not scored); class ``"mean"`` is the protocol's mean. Five queries in all.
+    not scored); class ``"mean"`` is the protocol's mean. Three queries, all tuples.
     """
+    from evaluation.models import ClassScore
+
     versions = list(detector.versions.order_by("created_at"))
-    sets = list(PredictionSet.objects.filter(version__detector=detector).select_related("split"))
-    cards = _scorecards(sets, [detector.primary_protocol])
-    rows = _class_rows(cards.values())
-    splits = sorted({ps.split for ps in sets}, key=lambda s: (s.name, s.revision))
+    sets = list(
+        PredictionSet.objects.filter(version__detector=detector).values_list(
+            "version_id", "split_id", "predictions_id"
+        )
+    )
+    version_of = {(file_id, split_id): version_id for version_id, split_id, file_id in sets}
+    split_objects = {s.pk: s for s in _splits({split_id for _, split_id, _ in sets})}
+    splits = sorted(split_objects.values(), key=lambda s: (s.name, s.revision))
     position = {v.pk: i for i, v in enumerate(versions)}
     classes = ["mean", *detector.classes]
     values = {
         split.pk: {m: {c: [None] * len(versions) for c in classes} for m in METRICS}
         for split in splits
     }
-    for ps in sets:
-        card = cards.get((ps.pk, detector.primary_protocol))
-        if card is None:
+    fields = [field for field, _ in METRICS.values()]
+    scores = ClassScore.objects.filter(
+        scorecard__evaluation__state="done",
+        scorecard__evaluation__protocol=detector.primary_protocol,
+        scorecard__evaluation__predictions_id__in={file_id for _, _, file_id in sets},
+    ).values_list(
+        "scorecard__evaluation__predictions_id",
+        "scorecard__evaluation__split_id",
+        "class_name",
+        *fields,
+    )
+    for file_id, split_id, name, *numbers in scores:
+        version_id = version_of.get((file_id, split_id))
+        if version_id is None:
             continue
-        i = position[ps.version_id]
-        class_rows = rows.get(card.pk, {})
-        for metric, (field, _) in METRICS.items():
-            values[ps.split_id][metric]["mean"][i] = _mean(card, class_rows, metric)
-            for name, row in class_rows.items():
-                if name in values[ps.split_id][metric]:
-                    values[ps.split_id][metric][name][i] = getattr(row, field)
+        i, per_split = position[version_id], values[split_id]
+        name = name or "mean"
+        for metric, number in zip(METRICS, numbers):
+            if name in per_split[metric]:
+                per_split[metric][name][i] = number
     return {
         "protocol": detector.primary_protocol,
         "versions": [
@@ -166,6 +177,12 @@ def history_chart(detector):
         "classes": classes,
         "values": {str(k): v for k, v in values.items()},
     }
+
+
+def _splits(ids):
+    from evaluation.models import BenchmarkSplit
+
+    return BenchmarkSplit.objects.filter(pk__in=ids).only("name", "revision")
 
 
 def summary_items(summary):
@@ -187,7 +204,7 @@ def version_scorecards(version):
         version.prediction_sets.select_related("split", "predictions", "uploaded_by"),
         key=lambda ps: (ps.split.name, ps.split.revision),
     )
-    cards = _scorecards(sets, detector.protocols)
+    cards = _scorecards(sets, detector.protocols, with_result=True)
     primary = [c for (_, p), c in cards.items() if p == detector.primary_protocol]
     rows = _class_rows(primary)
     slices = {}
@@ -234,7 +251,7 @@ def compare_versions(reference, candidate):
     sets = list(
         PredictionSet.objects.filter(version__in=[reference, candidate]).select_related("split")
     )
-    cards = _scorecards(sets, [detector.primary_protocol])
+    cards = _scorecards(sets, [detector.primary_protocol], with_result=True)
     by_version = {}
     for ps in sets:
         card = cards.get((ps.pk, detector.primary_protocol))

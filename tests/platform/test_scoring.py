@@ -42,7 +42,8 @@ def test_upload_is_scored_and_equals_the_engine(
     assert card.predictions_sha256 == prediction_set.predictions.sha256
     assert card.engine_version == engine.ENGINE_VERSION
     rows = {r.class_name: r for r in ClassScore.objects.filter(scorecard=card)}
-    assert set(rows) == {"car", "pedestrian", "cyclist"}
+    assert set(rows) == {"", "car", "pedestrian", "cyclist"}  # '' = the mean row
+    assert rows[""].ap == direct["summary"]["AP"] and rows[""].recall == direct["summary"]["AR100"]
     assert rows["pedestrian"].ap == direct["per_class"]["pedestrian"]["AP"]
     assert rows["pedestrian"].ap50 == direct["per_class"]["pedestrian"]["AP50"]
     assert SliceScore.objects.filter(
