@@ -108,9 +108,8 @@ def main():
         p95 = times[min(len(times) - 1, int(round(0.95 * (len(times) - 1))))]
         ok = p95 <= TARGET_MS
         failures += [] if ok else [name]
-        print(
-            f"{name:<20} {statistics.median(times):>10.1f} {p95:>8.1f} {'ok' if ok else 'MISSED':>8}"
-        )
+        verdict = "ok" if ok else "MISSED"
+        print(f"{name:<20} {statistics.median(times):>10.1f} {p95:>8.1f} {verdict:>8}")
     print("\n" + ("targets met" if not failures else f"FAILED: {', '.join(failures)}"))
     return 1 if failures else 0
 
