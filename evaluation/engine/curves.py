@@ -292,19 +292,33 @@ def interpolated_precision(points, recall_points, *, epsilon=0.0, slots=None):
     """
     recall_points = np.asarray(recall_points, dtype=np.float64)
     n_classes = len(points.n_pos)
-    slots = range(points.n_slots) if slots is None else slots
-    out = np.zeros((len(slots), len(recall_points), n_classes))
-    out[:, :, points.n_pos == 0] = np.nan
-    for i, t in enumerate(slots):
-        for k in np.flatnonzero(points.n_pos > 0):
-            tp, fp = points.run(t, k)
-            if not len(tp):
-                continue
-            recall = tp / points.n_pos[k]
-            env = envelope(tp / (fp + tp + epsilon))
-            index = np.searchsorted(recall, recall_points, side="left")
-            reached = index < len(tp)
-            out[i, reached, k] = env[index[reached]]
+    slots = list(range(points.n_slots)) if slots is None else list(slots)
+    n_pos = points.n_pos
+    present = n_pos > 0
+    # TP counts along a run are 1, 2, 3, ... (each point is one true positive), so the
+    # first point with recall >= r is number c_r, the least integer with c / n_pos >= r
+    # in floating point, exactly as a search over the recall array finds it.
+    safe = np.where(present, n_pos, 1.0)[:, None]
+    with np.errstate(invalid="ignore"):
+        c = np.ceil(recall_points[None, :] * safe)
+        for _ in range(2):
+            c = np.where((c >= 1) & ((c - 1) / safe >= recall_points), c - 1, c)
+            c = np.where(c / safe < recall_points, c + 1, c)
+    first = np.maximum(c - 1, 0).astype(np.int64)  # (classes, points)
+
+    runs = points.runs[:-1].reshape(points.n_slots, n_classes)[slots]
+    lengths = np.diff(points.runs).reshape(points.n_slots, n_classes)[slots]
+    reached = first[None] < lengths[..., None]  # (slots, classes, points)
+    block = runs[..., None] + np.minimum(first[None], lengths[..., None])
+    bounds = np.concatenate([block, (runs + lengths)[..., None]], axis=2)
+    # Envelope at each first point: maxima over the blocks between consecutive first
+    # points, then a running maximum from the last block back (suffix maximum).
+    precision = np.r_[points.tp / (points.fp + points.tp + epsilon), 0.0]
+    maxima = np.maximum.reduceat(precision, bounds.ravel()).reshape(bounds.shape)[..., :-1]
+    maxima[bounds[..., 1:] <= bounds[..., :-1]] = 0.0
+    env = np.maximum.accumulate(maxima[..., ::-1], axis=2)[..., ::-1]
+    out = np.where(reached, env, 0.0).transpose(0, 2, 1).copy()
+    out[:, :, ~present] = np.nan
     return out
 
 
