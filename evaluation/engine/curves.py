@@ -138,13 +138,12 @@ def true_positive_points(records, *, area=0, max_detections=None, weights=None):
     n_slots = records.n_slots
     w = detection_weights(records, max_detections, weights)
 
-    slot, det = sparse["tp_slot"], sparse["tp_det"]
-    keep = w[det] > 0
-    slot, det = slot[keep], det[keep]
     if weights is not None and np.any(w > 1):
-        slot, det, tp, counted = _expanded_points(records, sparse, slot, det, w)
-        run_bounds = _run_bounds(records, slot, det)
+        run_bounds, tp, counted = _expanded_points(records, sparse, area, max_detections, w)
     else:  # every weight is 0 or 1: the TP count is the position in the run
+        slot, det = sparse["tp_slot"], sparse["tp_det"]
+        keep = w[det] > 0
+        slot, det = slot[keep], det[keep]
         run_bounds = _run_bounds(records, slot, det)
         tp = np.arange(1, len(det) + 1) - np.repeat(run_bounds[:-1], np.diff(run_bounds))
         counter = _Counter(records, sparse, w)
@@ -212,40 +211,99 @@ class _Counter:
         return base + self.delta[hi] - self.delta[lo]
 
 
-def _expanded_points(records, sparse, slot, det, w):
+def _expansion_plan(records, sparse, area, max_detections):
+    """Everything about the weighted points that does not depend on the weights.
+
+    Computed once per records, size bucket and cap, so that a bootstrap replicate
+    costs running sums and gathers, no search and no sort.
+    """
+    key = ("expansion", area, max_detections)
+    if key in records._sparse:
+        return records._sparse[key]
+    n = records.n_detections
+    static = detection_weights(records, max_detections)  # 1, or 0 beyond the cap
+    slot, det = sparse["tp_slot"], sparse["tp_det"]
+    keep = static[det] > 0
+    slot, det = slot[keep], det[keep]
+    group_start = sparse["tie_start"][det]
+    group_last = sparse["tie_end"][det] - 1
+    class_start = records.class_bounds()[records.det_class[det]] - 1
+    single = _Counter(records, sparse, static)
+    keys = slot * n + det
+
+    def tp_count(position):
+        return _tp_upto(slot, det, position, n=n)
+
+    def search(sorted_keys, position):
+        return np.searchsorted(sorted_keys, slot * n + position, "right")
+
+    group_key = slot * n + group_start
+    first = np.ones(len(det), bool)
+    first[1:] = group_key[1:] != group_key[:-1]
+    group = np.cumsum(first) - 1
+    group_first = np.flatnonzero(first)
+    plan = {
+        "slot": slot,
+        "det": det,
+        "run": slot * len(records.classes) + records.det_class[det],
+        "tp_prefix": tp_count(det) - tp_count(group_start - 1),
+        "tp_group": tp_count(group_last) - tp_count(group_start - 1),
+        "counted_prefix": single.upto(slot, det) - single.upto(slot, group_start - 1),
+        "counted_group": single.upto(slot, group_last) - single.upto(slot, group_start - 1),
+        "tp_hi": search(keys, group_start - 1),
+        "tp_lo": search(keys, class_start),
+        "group_start": group_start,
+        "class_start": class_start,
+        "delta_hi": search(sparse["delta_key"], group_start - 1),
+        "delta_lo": search(sparse["delta_key"], class_start),
+        "group": group,
+        "local": np.arange(len(det)) - group_first[group],
+        "group_size": np.diff(np.r_[group_first, len(det)]),
+        "group_first": group_first,
+    }
+    records._sparse[key] = plan
+    return plan
+
+
+def _expanded_points(records, sparse, area, max_detections, w):
     """TP points of the duplicated split, without duplicating anything.
 
     Copies of an image are adjacent in image order, so detections tied in score
     within one image and class (a *tie group*) appear copy after copy: for copy c
     the counts are (before the group, weighted) + c * (group total) + (prefix within
     the group), unweighted within the group since all of it has one image weight.
+
+    Returns the run bounds, TP counts and counted totals of the expanded points.
     """
-    n = records.n_detections
-    group_start = sparse["tie_start"][det]
-    group_last = sparse["tie_end"][det] - 1
-    class_start = records.class_bounds()[records.det_class[det]] - 1
-    weighted = _Counter(records, sparse, w)
-    single = _Counter(records, sparse, (w > 0).astype(np.int64))
-    w_tp = w[det]
-    running = np.cumsum(w_tp)
+    plan = _expansion_plan(records, sparse, area, max_detections)
+    w_tp = w[plan["det"]]
+    running_tp = np.r_[0, np.cumsum(w_tp)]
+    tp_base = running_tp[plan["tp_hi"]] - running_tp[plan["tp_lo"]]
+    running = np.r_[0, np.cumsum(np.where(sparse["counted"], w, 0))]
+    delta = np.r_[0, np.cumsum(sparse["delta_sign"] * w[sparse["delta_det"]])]
+    counted_base = (
+        running[plan["group_start"]]
+        - running[plan["class_start"] + 1]
+        + delta[plan["delta_hi"]]
+        - delta[plan["delta_lo"]]
+    )
 
-    def tp_before(position, running=None):
-        return _tp_upto(slot, det, position, n=n, running=running)
-
-    tp_base = tp_before(group_start - 1, running) - tp_before(class_start, running)
-    tp_prefix = tp_before(det) - tp_before(group_start - 1)
-    tp_group = tp_before(group_last) - tp_before(group_start - 1)
-    counted_base = weighted.upto(slot, group_start - 1) - weighted.upto(slot, class_start)
-    counted_prefix = single.upto(slot, det) - single.upto(slot, group_start - 1)
-    counted_group = single.upto(slot, group_last) - single.upto(slot, group_start - 1)
-
-    copy = np.arange(int(w_tp.sum())) - np.repeat(np.cumsum(w_tp) - w_tp, w_tp)
-    pick = np.repeat(np.arange(len(det)), w_tp)
-    tp = tp_base[pick] + copy * tp_group[pick] + tp_prefix[pick]
-    counted = counted_base[pick] + copy * counted_group[pick] + counted_prefix[pick]
-    # Copy-major order inside each tie group: (slot, group, copy, detection).
-    order = np.lexsort((det[pick], copy, group_start[pick], slot[pick]))
-    return slot[pick][order], det[pick][order], tp[order], counted[order]
+    # Place each copy directly at its position: (run, group, copy, detection).
+    group_copies = plan["group_size"] * w_tp[plan["group_first"]]
+    group_offset = np.cumsum(group_copies) - group_copies
+    pick = np.repeat(np.arange(len(w_tp)), w_tp)
+    copy = np.arange(len(pick)) - np.repeat(np.cumsum(w_tp) - w_tp, w_tp)
+    group = plan["group"][pick]
+    position = group_offset[group] + copy * plan["group_size"][group] + plan["local"][pick]
+    tp = np.empty(len(pick), np.int64)
+    counted = np.empty(len(pick), np.int64)
+    tp[position] = tp_base[pick] + copy * plan["tp_group"][pick] + plan["tp_prefix"][pick]
+    counted[position] = (
+        counted_base[pick] + copy * plan["counted_group"][pick] + plan["counted_prefix"][pick]
+    )
+    n_runs = records.n_slots * len(records.classes)
+    per_run = np.bincount(plan["run"], weights=w_tp, minlength=n_runs).astype(np.int64)
+    return np.r_[0, np.cumsum(per_run)], tp, counted
 
 
 def recall_score(points):
