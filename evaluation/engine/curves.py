@@ -229,10 +229,6 @@ def _expansion_plan(records, sparse, area, max_detections):
     group_last = sparse["tie_end"][det] - 1
     class_start = records.class_bounds()[records.det_class[det]] - 1
     single = _Counter(records, sparse, static)
-    keys = slot * n + det
-
-    def tp_count(position):
-        return _tp_upto(slot, det, position, n=n)
 
     def search(sorted_keys, position):
         return np.searchsorted(sorted_keys, slot * n + position, "right")
@@ -246,12 +242,8 @@ def _expansion_plan(records, sparse, area, max_detections):
         "slot": slot,
         "det": det,
         "run": slot * len(records.classes) + records.det_class[det],
-        "tp_prefix": tp_count(det) - tp_count(group_start - 1),
-        "tp_group": tp_count(group_last) - tp_count(group_start - 1),
         "counted_prefix": single.upto(slot, det) - single.upto(slot, group_start - 1),
         "counted_group": single.upto(slot, group_last) - single.upto(slot, group_start - 1),
-        "tp_hi": search(keys, group_start - 1),
-        "tp_lo": search(keys, class_start),
         "group_start": group_start,
         "class_start": class_start,
         "delta_hi": search(sparse["delta_key"], group_start - 1),
@@ -277,8 +269,6 @@ def _expanded_points(records, sparse, area, max_detections, w):
     """
     plan = _expansion_plan(records, sparse, area, max_detections)
     w_tp = w[plan["det"]]
-    running_tp = np.r_[0, np.cumsum(w_tp)]
-    tp_base = running_tp[plan["tp_hi"]] - running_tp[plan["tp_lo"]]
     running = np.r_[0, np.cumsum(np.where(sparse["counted"], w, 0))]
     delta = np.r_[0, np.cumsum(sparse["delta_sign"] * w[sparse["delta_det"]])]
     counted_base = (
@@ -288,22 +278,27 @@ def _expanded_points(records, sparse, area, max_detections, w):
         - delta[plan["delta_lo"]]
     )
 
-    # Place each copy directly at its position: (run, group, copy, detection).
-    group_copies = plan["group_size"] * w_tp[plan["group_first"]]
-    group_offset = np.cumsum(group_copies) - group_copies
     pick = np.repeat(np.arange(len(w_tp)), w_tp)
-    copy = np.arange(len(pick)) - np.repeat(np.cumsum(w_tp) - w_tp, w_tp)
-    group = plan["group"][pick]
-    position = group_offset[group] + copy * plan["group_size"][group] + plan["local"][pick]
-    tp = np.empty(len(pick), np.int64)
-    counted = np.empty(len(pick), np.int64)
-    tp[position] = tp_base[pick] + copy * plan["tp_group"][pick] + plan["tp_prefix"][pick]
-    counted[position] = (
-        counted_base[pick] + copy * plan["counted_group"][pick] + plan["counted_prefix"][pick]
-    )
+    ends = np.cumsum(w_tp)
+    copy = np.arange(len(pick)) - np.repeat(ends - w_tp, w_tp)
+    counted = counted_base[pick] + copy * plan["counted_group"][pick] + plan["counted_prefix"][pick]
+    # Entry-major order is already right except inside tie groups of several TPs
+    # whose image was drawn more than once: there the copies go first (copy-major).
+    tied = (plan["group_size"][plan["group"][pick]] > 1) & (w_tp[pick] > 1)
+    if tied.any():
+        group = plan["group"][pick[tied]]
+        group_copies = plan["group_size"] * w_tp[plan["group_first"]]
+        group_offset = np.cumsum(group_copies) - group_copies
+        position = (
+            group_offset[group] + copy[tied] * plan["group_size"][group] + plan["local"][pick[tied]]
+        )
+        counted[position] = counted[tied].copy()
     n_runs = records.n_slots * len(records.classes)
     per_run = np.bincount(plan["run"], weights=w_tp, minlength=n_runs).astype(np.int64)
-    return np.r_[0, np.cumsum(per_run)], tp, counted
+    run_bounds = np.r_[0, np.cumsum(per_run)]
+    # Each point is one true positive: the TP count is the position in its run.
+    tp = np.arange(1, len(pick) + 1) - np.repeat(run_bounds[:-1], per_run)
+    return run_bounds, tp, counted
 
 
 def recall_score(points):
