@@ -147,3 +147,53 @@ def test_negative_or_fractional_weights_are_refused(files):
         score_records(records, "coco", weights=np.full(truth.n_images, 0.5))
     with pytest.raises(InputError, match=f"expected {truth.n_images} image weights"):
         score_records(records, "coco", weights=np.ones(3, np.int64))
+
+
+@pytest.mark.parametrize("protocol", sorted(PRESETS))
+def test_ties_inside_one_image_follow_the_copies(files, protocol):
+    """Two TPs and an FP of one class share a score in one image: with weight 3 the
+    duplicated split walks them copy after copy (TP FP TP, TP FP TP, ...), and so must
+    the weighted evaluation."""
+    split = {
+        "images": [{"id": 1, "width": 400, "height": 300}, {"id": 2, "width": 400, "height": 300}],
+        "annotations": [
+            {
+                "id": 1,
+                "image_id": 1,
+                "category_id": 1,
+                "bbox": [10, 10, 50, 50],
+                "area": 2500,
+                "iscrowd": 0,
+            },
+            {
+                "id": 2,
+                "image_id": 1,
+                "category_id": 1,
+                "bbox": [200, 10, 50, 50],
+                "area": 2500,
+                "iscrowd": 0,
+            },
+            {
+                "id": 3,
+                "image_id": 2,
+                "category_id": 1,
+                "bbox": [10, 100, 60, 60],
+                "area": 3600,
+                "iscrowd": 0,
+            },
+        ],
+        "categories": [{"id": 1, "name": "pedestrian"}],
+    }
+    detections = [
+        {"image_id": 1, "category_id": 1, "bbox": [10, 10, 50, 50], "score": 0.7},
+        {"image_id": 1, "category_id": 1, "bbox": [300, 200, 40, 40], "score": 0.7},
+        {"image_id": 1, "category_id": 1, "bbox": [201, 11, 50, 50], "score": 0.7},
+        {"image_id": 2, "category_id": 1, "bbox": [12, 100, 60, 60], "score": 0.8},
+        {"image_id": 2, "category_id": 1, "bbox": [300, 10, 30, 30], "score": 0.75},
+    ]
+    truth, predictions = files.load(split, detections)
+    weights = np.array([3, 1])
+    weighted = score_records(match(truth, predictions, protocol), protocol, weights=weights)
+    dup_split, dup_dets = _duplicate(split, detections, {1: 3, 2: 1})
+    duplicated = evaluate(*files.load(dup_split, dup_dets), protocol, tag_slices=False)
+    assert _numbers(weighted) == _numbers(duplicated)
