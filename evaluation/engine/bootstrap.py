@@ -6,6 +6,7 @@ re-accumulates each detector's records with those multiplicities as image weight
 no re-matching (see ``curves``; weights equal duplicated images exactly).
 """
 
+import multiprocessing
 from dataclasses import dataclass
 
 import numpy as np
@@ -80,7 +81,14 @@ def percentile_interval(replicates, estimate, confidence):
 
 
 def paired_bootstrap(
-    statistic_candidate, statistic_baseline, n_images, *, n_resamples=1000, confidence=0.95, seed=0
+    statistic_candidate,
+    statistic_baseline,
+    n_images,
+    *,
+    n_resamples=1000,
+    confidence=0.95,
+    seed=0,
+    workers=1,
 ):
     r"""Percentile intervals of Δ = S_candidate − S_baseline under paired resampling.
 
@@ -94,6 +102,9 @@ def paired_bootstrap(
     n_images : int
     n_resamples, confidence, seed : keyword-only
         B, the interval's coverage, and the seed that makes results reproduce.
+    workers : int, keyword-only
+        Processes sharing the replicates (fork; the draws are made up front, so the
+        result does not depend on this number).
 
     Returns
     -------
@@ -104,12 +115,33 @@ def paired_bootstrap(
         statistic_baseline(None), float
     )
     weights = resampled_weights(n_images, n_resamples, rng)
-    replicates = np.empty((n_resamples, estimate.size))
-    for b, w in enumerate(weights):
-        replicates[b] = np.asarray(statistic_candidate(w), float) - np.asarray(
-            statistic_baseline(w), float
-        )
+    global _JOB
+    _JOB = (statistic_candidate, statistic_baseline, weights)
+    chunks = np.array_split(np.arange(n_resamples), max(1, workers))
+    if workers > 1 and n_resamples > 1:
+        context = multiprocessing.get_context("fork")
+        with context.Pool(workers) as pool:
+            parts = pool.map(_replicates, chunks)
+    else:
+        parts = [_replicates(chunk) for chunk in chunks]
+    _JOB = None
+    replicates = np.concatenate(parts).reshape(n_resamples, estimate.size)
     return percentile_interval(replicates, estimate, confidence)
+
+
+_JOB = None  # (statistic_candidate, statistic_baseline, weights), inherited by forked workers
+
+
+def _replicates(indices):
+    statistic_candidate, statistic_baseline, weights = _JOB
+    out = np.empty(
+        (len(indices), np.size(statistic_candidate(weights[indices[0]])) if len(indices) else 0)
+    )
+    for row, b in enumerate(indices):
+        out[row] = np.asarray(statistic_candidate(weights[b]), float) - np.asarray(
+            statistic_baseline(weights[b]), float
+        )
+    return out
 
 
 def ap_statistic(records, protocol):
@@ -123,7 +155,14 @@ def ap_statistic(records, protocol):
 
 
 def compare_ap(
-    records_candidate, records_baseline, protocol, *, n_resamples=1000, confidence=0.95, seed=0
+    records_candidate,
+    records_baseline,
+    protocol,
+    *,
+    n_resamples=1000,
+    confidence=0.95,
+    seed=0,
+    workers=1,
 ):
     """Intervals of the AP difference, mean first then each class, keyed by name."""
     if records_candidate.n_images != records_baseline.n_images:
@@ -135,6 +174,7 @@ def compare_ap(
         n_resamples=n_resamples,
         confidence=confidence,
         seed=seed,
+        workers=workers,
     )
     names = ["mean", *records_candidate.classes]
     return dict(zip(names, intervals))

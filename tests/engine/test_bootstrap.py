@@ -99,3 +99,10 @@ def test_identical_detectors_have_a_zero_interval(files):
     interval = compare_ap(candidate, candidate, "voc", n_resamples=30)["mean"]
     assert (interval.estimate, interval.low, interval.high) == (0.0, 0.0, 0.0)
     assert not interval.excludes_zero()
+
+
+def test_worker_processes_give_the_same_intervals(files):
+    _, candidate, baseline = _two_versions(files)
+    one = compare_ap(candidate, baseline, "coco", n_resamples=24, seed=9)
+    two = compare_ap(candidate, baseline, "coco", n_resamples=24, seed=9, workers=2)
+    assert one == two
