@@ -1,6 +1,6 @@
 from django.contrib import admin
 
-from .models import Detector, Membership, ModelVersion, PredictionSet, Team
+from .models import AuditEvent, Detector, Membership, ModelVersion, PredictionSet, Team
 
 
 class MembershipInline(admin.TabularInline):
@@ -39,4 +39,19 @@ class PredictionSetAdmin(admin.ModelAdmin):
     list_select_related = ["version__detector", "split", "predictions", "uploaded_by"]
 
     def has_change_permission(self, request, obj=None):
+        return False
+
+
+@admin.register(AuditEvent)
+class AuditEventAdmin(admin.ModelAdmin):
+    list_display = ["id", "kind", "subject", "actor", "created_at", "hash"]
+    list_filter = ["kind"]
+
+    def has_add_permission(self, request):
+        return False
+
+    def has_change_permission(self, request, obj=None):
+        return False
+
+    def has_delete_permission(self, request, obj=None):
         return False

@@ -4,3 +4,16 @@ from django.apps import AppConfig
 class ReleasesConfig(AppConfig):
     name = "releases"
     verbose_name = "Releases"
+
+    def ready(self):
+        from evaluation import signals as evaluation_signals
+
+        from . import signals
+
+        evaluation_signals.split_frozen.connect(signals.split_frozen, dispatch_uid="audit-split")
+        evaluation_signals.evaluation_finished.connect(
+            signals.evaluation_finished, dispatch_uid="audit-finished"
+        )
+        evaluation_signals.evaluation_failed.connect(
+            signals.evaluation_failed, dispatch_uid="audit-failed"
+        )

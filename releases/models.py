@@ -98,3 +98,37 @@ class PredictionSet(models.Model):
 
     def __str__(self):
         return f"{self.version} on {self.split}"
+
+
+class AuditEvent(models.Model):
+    """One append-only event of the audit trail, chained to the one before by hash.
+
+    ``hash = SHA-256(previous_hash | kind | actor | time | subject | payload_digest)``;
+    changing any stored field, or removing or reordering a row, breaks the chain from
+    there on (``services.verify_audit``). The database refuses UPDATE and DELETE.
+    """
+
+    class Kind(models.TextChoices):
+        SPLIT_FROZEN = "split frozen"
+        PREDICTIONS_UPLOADED = "predictions uploaded"
+        EVALUATION_FINISHED = "evaluation finished"
+        EVALUATION_FAILED = "evaluation failed"
+        CRITERIA_CHANGED = "criteria changed"
+        SIGNED_OFF = "signed off"
+        REJECTED = "rejected"
+        OVERRIDE = "override"
+
+    kind = models.CharField(max_length=24, choices=Kind.choices)
+    actor = models.CharField(max_length=150, help_text="Username, or 'system' for workers.")
+    created_at = models.DateTimeField()
+    subject = models.CharField(max_length=200)
+    payload = models.JSONField()
+    payload_digest = models.CharField(max_length=64)
+    previous_hash = models.CharField(max_length=64)
+    hash = models.CharField(max_length=64, unique=True)
+
+    class Meta:
+        ordering = ["id"]
+
+    def __str__(self):
+        return f"#{self.pk} {self.kind} {self.subject} by {self.actor}"

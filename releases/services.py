@@ -8,8 +8,8 @@ from django.utils.text import slugify
 from evaluation import services as evaluation_services
 from evaluation.services import UploadError
 
-from . import selectors
-from .models import Detector, Membership, ModelVersion, PredictionSet, Team
+from . import audit, selectors
+from .models import AuditEvent, Detector, Membership, ModelVersion, PredictionSet, Team
 from .selectors import UPLOAD_ROLES
 
 
@@ -90,6 +90,18 @@ def submit_predictions(version, split, uploaded, user):
             return existing
         prediction_set = PredictionSet.objects.create(
             version=version, split=split, predictions=prediction_file, uploaded_by=user
+        )
+        audit.record_event(
+            AuditEvent.Kind.PREDICTIONS_UPLOADED,
+            user,
+            f"prediction-set:{prediction_set.pk}",
+            {
+                "version": str(version),
+                "split": str(split),
+                "sha256": prediction_file.sha256,
+                "size": prediction_file.size,
+                "file": prediction_file.original_name,
+            },
         )
         evaluation_services.request_evaluations(split, prediction_file, version.detector.protocols)
     return prediction_set

@@ -12,6 +12,7 @@ from django.db import connection
 from evaluation import services as evaluation_services
 from evaluation import tasks, triggers
 from releases import services
+from releases import triggers as audit_triggers
 
 from ..engine.synthetic import make_detections, make_split
 
@@ -76,6 +77,7 @@ def split_truth():
 @pytest.fixture
 def split(split_truth):
     triggers.install(connection)  # idempotent; a transactional test's flush drops them on SQLite
+    audit_triggers.install(connection)
     return evaluation_services.load_split(
         name="bay-night", revision=1, truth=upload("bay-night.json", split_truth)
     )
@@ -108,8 +110,9 @@ def run_tasks(monkeypatch, django_capture_on_commit_callbacks):
 @pytest.fixture
 def flushable(transactional_db):
     """For tests that commit: after them Django empties the tables with DELETE on
-    SQLite, which the frozen-split trigger refuses; drop it first (``split`` puts it
-    back for the next test)."""
+    SQLite, which the frozen-split and append-only triggers refuse; drop them first
+    (``split`` puts them back for the next test)."""
     yield
     if connection.vendor == "sqlite":
         triggers.remove(connection)
+        audit_triggers.remove(connection)

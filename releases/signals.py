@@ -1,0 +1,43 @@
+"""Receivers of the evaluation app's signals, connected in ReleasesConfig.ready()."""
+
+from . import audit
+from .models import AuditEvent
+
+
+def split_frozen(sender, split, **kwargs):
+    audit.record_event(
+        AuditEvent.Kind.SPLIT_FROZEN,
+        split.created_by or "system",
+        f"split:{split.pk}",
+        {
+            "split": str(split),
+            "sha256": split.sha256,
+            "images": split.image_count,
+            "boxes": split.box_count,
+        },
+    )
+
+
+def evaluation_finished(sender, evaluation, **kwargs):
+    card = evaluation.scorecard
+    audit.record_event(
+        AuditEvent.Kind.EVALUATION_FINISHED,
+        "system",
+        f"evaluation:{evaluation.pk}",
+        {
+            "protocol": evaluation.protocol,
+            "split_sha256": card.split_sha256,
+            "predictions_sha256": card.predictions_sha256,
+            "engine_version": card.engine_version,
+            "summary": card.summary,
+        },
+    )
+
+
+def evaluation_failed(sender, evaluation, **kwargs):
+    audit.record_event(
+        AuditEvent.Kind.EVALUATION_FAILED,
+        "system",
+        f"evaluation:{evaluation.pk}",
+        {"protocol": evaluation.protocol, "error": evaluation.error},
+    )
