@@ -13,6 +13,7 @@ urlpatterns = [
     path("detectors/<int:detector_id>/upload/", views.upload_predictions, name="upload"),
     path("detectors/<int:detector_id>/compare/", views.compare, name="compare"),
     path("versions/<int:version_id>/", views.version, name="version"),
+    path("versions/<int:version_id>/sign-off/", views.sign_off, name="sign-off"),
     path("splits/<int:split_id>/", views.split, name="split"),
     path("evaluations/<int:evaluation_id>.json", views.evaluation_status, name="evaluation-status"),
 ]

@@ -128,6 +128,10 @@ def version(request, version_id):
             "detector": found.detector,
             "splits": splits,
             "evaluations": selectors.evaluations_of(found),
+            "decision": getattr(found, "sign_off", None),
+            "can_sign_off": selectors.role_in(request.user, found.detector.team) == "lead",
+            "state": selectors.state_of(found, selectors.baseline_of(found.detector)),
+            "caution": CAUTION,
         },
     )
 
@@ -140,7 +144,10 @@ def compare(request, detector_id):
         return render(request, "frontend/compare.html", {"detector": found, "versions": versions})
     by_id = {str(v.pk): v for v in versions}
     candidate = by_id.get(request.GET.get("candidate"), versions[0])
+    baseline = selectors.baseline_of(found)
     fallback = versions[1] if candidate == versions[0] else versions[0]
+    if baseline is not None and baseline != candidate:
+        fallback = baseline
     reference = by_id.get(request.GET.get("reference"), fallback)
     splits = selectors.compare_versions(reference, candidate)
     series = [f"{reference.label} (reference)", f"{candidate.label} (candidate)"]
@@ -165,6 +172,26 @@ def compare(request, detector_id):
             "caution": CAUTION,
         },
     )
+
+
+@login_required
+def sign_off(request, version_id):
+    found = _version_or_404(request.user, version_id)
+    if request.method != "POST":
+        return redirect("version", version_id=found.pk)
+    try:
+        services.sign_off(
+            found,
+            request.user,
+            request.POST.get("decision", ""),
+            request.POST.get("comment", ""),
+            justification=request.POST.get("justification", ""),
+        )
+    except services.DecisionError as e:
+        messages.error(request, str(e))
+        return redirect("version", version_id=found.pk)
+    messages.success(request, f"decision on {found} recorded")
+    return redirect("version", version_id=found.pk)
 
 
 @login_required

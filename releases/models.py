@@ -132,3 +132,33 @@ class AuditEvent(models.Model):
 
     def __str__(self):
         return f"#{self.pk} {self.kind} {self.subject} by {self.actor}"
+
+
+class SignOff(models.Model):
+    """A lead's decision on a candidate. An approved version becomes the baseline.
+
+    One decision per version. Approving despite failing rules is an *override* and
+    keeps its written justification forever.
+    """
+
+    class Decision(models.TextChoices):
+        APPROVED = "approved"
+        REJECTED = "rejected"
+
+    version = models.OneToOneField(ModelVersion, on_delete=models.PROTECT, related_name="sign_off")
+    decision = models.CharField(max_length=8, choices=Decision.choices)
+    comment = models.TextField()
+    override = models.BooleanField(default=False)
+    justification = models.TextField(blank=True)
+    failing_rules = models.JSONField(default=list)
+    evidence = models.JSONField(help_text="Hashes and headline numbers the decision saw.")
+    decided_by = models.ForeignKey(
+        settings.AUTH_USER_MODEL, on_delete=models.PROTECT, related_name="+"
+    )
+    decided_at = models.DateTimeField()
+
+    class Meta:
+        indexes = [models.Index(fields=["decision", "decided_at"])]
+
+    def __str__(self):
+        return f"{self.version} {self.decision}{' (override)' if self.override else ''}"

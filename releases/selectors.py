@@ -38,9 +38,9 @@ def version_for(user, version_id):
     """A version of a visible detector, else ``ModelVersion.DoesNotExist``."""
     from .models import ModelVersion
 
-    return ModelVersion.objects.select_related("detector__team", "created_by").get(
-        pk=version_id, detector__in=visible_detectors(user)
-    )
+    return ModelVersion.objects.select_related(
+        "detector__team", "created_by", "sign_off__decided_by"
+    ).get(pk=version_id, detector__in=visible_detectors(user))
 
 
 def evaluations_of(version):
@@ -127,11 +127,13 @@ def history_chart(detector):
     """Every version's numbers on every split, for the history chart and table.
 
     ``values[split][metric][class]`` is a list aligned with ``versions`` (None where
-    not scored); class ``"mean"`` is the protocol's mean. Three queries, all tuples.
+    not scored); class ``"mean"`` is the protocol's mean. A few queries, numbers as
+    tuples.
     """
     from evaluation.models import ClassScore
 
-    versions = list(detector.versions.order_by("created_at"))
+    versions = list(detector.versions.select_related("sign_off").order_by("created_at"))
+    baseline = baseline_of(detector)
     sets = list(
         PredictionSet.objects.filter(version__detector=detector).values_list(
             "version_id", "split_id", "predictions_id"
@@ -169,7 +171,12 @@ def history_chart(detector):
     return {
         "protocol": detector.primary_protocol,
         "versions": [
-            {"id": v.pk, "label": v.label, "date": v.created_at.date().isoformat()}
+            {
+                "id": v.pk,
+                "label": v.label,
+                "date": v.created_at.date().isoformat(),
+                "state": state_of(v, baseline),
+            }
             for v in versions
         ],
         "splits": [{"id": s.pk, "name": str(s)} for s in splits],
@@ -309,13 +316,17 @@ def overview_for(user):
 
     detectors = list(visible_detectors(user).order_by("team__name", "name"))
     newest = {d.pk: None for d in detectors}
-    for version in ModelVersion.objects.filter(detector__in=detectors).order_by("created_at"):
+    baseline = {d.pk: None for d in detectors}
+    versions = ModelVersion.objects.filter(detector__in=detectors).select_related("sign_off")
+    for version in versions.order_by("created_at"):
         newest[version.detector_id] = version
-    sets = list(
-        PredictionSet.objects.filter(version__in=[v for v in newest.values() if v]).select_related(
-            "split", "version"
-        )
-    )
+    for version in ModelVersion.objects.filter(
+        detector__in=detectors, sign_off__decision="approved"
+    ).order_by("sign_off__decided_at"):
+        baseline[version.detector_id] = version
+    shown = [v for v in [*newest.values(), *baseline.values()] if v]
+    sets = list(PredictionSet.objects.filter(version__in=shown).select_related("split", "version"))
+
     protocols = {d.primary_protocol for d in detectors}
     cards = _scorecards(sets, protocols)
     all_sets = PredictionSet.objects.filter(version__detector__in=detectors)
@@ -327,21 +338,23 @@ def overview_for(user):
     for evaluation in pending:
         pending_by_file.setdefault(evaluation.predictions_id, []).append(evaluation)
     owner = dict(all_sets.values_list("predictions_id", "version__detector_id"))
+    ap = {}
+    for (set_id, _), card in cards.items():
+        ap[set_id] = card.summary.get("AP")
     out = []
     for detector in detectors:
-        version = newest[detector.pk]
-        headline = [
-            {
-                "split": ps.split,
-                "ap": cards[(ps.pk, detector.primary_protocol)].summary.get("AP")
-                if (ps.pk, detector.primary_protocol) in cards
-                else None,
-            }
-            for ps in sorted(
-                (p for p in sets if version and p.version_id == version.pk),
-                key=lambda p: (p.split.name, p.split.revision),
-            )
-        ]
+        version, base = newest[detector.pk], baseline[detector.pk]
+        by_split = {}
+        for ps in sets:
+            if ps.version_id in {getattr(version, "pk", None), getattr(base, "pk", None)}:
+                row = by_split.setdefault(
+                    ps.split, {"split": ps.split, "candidate": None, "baseline": None}
+                )
+                if version and ps.version_id == version.pk:
+                    row["candidate"] = ap.get(ps.pk)
+                if base and ps.version_id == base.pk:
+                    row["baseline"] = ap.get(ps.pk)
+        headline = [by_split[k] for k in sorted(by_split, key=lambda s: (s.name, s.revision))]
         running = [
             e
             for file_id, evs in pending_by_file.items()
@@ -349,7 +362,14 @@ def overview_for(user):
             for e in evs
         ]
         out.append(
-            {"detector": detector, "newest": version, "headline": headline, "pending": running}
+            {
+                "detector": detector,
+                "newest": version,
+                "baseline": base,
+                "newest_state": state_of(version, base) if version else None,
+                "headline": headline,
+                "pending": running,
+            }
         )
     return out
 
@@ -361,3 +381,26 @@ def split_usage(user, split):
         .select_related("version__detector")
         .order_by("version__detector__name", "version__created_at")
     )
+
+
+def baseline_of(detector):
+    """The detector's baseline: its most recently approved version, or None."""
+    from .models import ModelVersion
+
+    return (
+        ModelVersion.objects.filter(detector=detector, sign_off__decision="approved")
+        .order_by("-sign_off__decided_at")
+        .first()
+    )
+
+
+def state_of(version, baseline):
+    """The badge of a version: baseline, signed off, rejected or candidate."""
+    decision = getattr(getattr(version, "sign_off", None), "decision", None)
+    if baseline is not None and version.pk == baseline.pk:
+        return "baseline"
+    if decision == "approved":
+        return "signed off"
+    if decision == "rejected":
+        return "rejected"
+    return "candidate"

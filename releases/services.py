@@ -115,3 +115,99 @@ def submit_for_label(detector, label, split, uploaded, user, **version_fields):
         if version is None:
             version = create_version(detector, label, user, **version_fields)
         return submit_predictions(version, split, uploaded, user)
+
+
+class DecisionError(ValueError):
+    """A sign-off the rules do not allow; the message says why."""
+
+
+def failing_rules(version):
+    """Rules the version fails (release criteria land with issue #5's criteria work);
+    until a detector has criteria, nothing fails."""
+    return []
+
+
+def sign_off(version, user, decision, comment, *, justification=""):
+    """Record a lead's decision on a candidate; approval makes it the baseline."""
+    from evaluation.models import Evaluation
+
+    from .models import SignOff
+
+    detector = version.detector
+    if selectors.role_in(user, detector.team) != Membership.Role.LEAD:
+        raise PermissionDenied(
+            f"{user} may not sign off {version}: only leads of {detector.team} can"
+        )
+    if decision not in SignOff.Decision.values:
+        raise DecisionError(f"decision must be one of {', '.join(SignOff.Decision.values)}")
+    if not comment.strip():
+        raise DecisionError("a sign-off needs a comment")
+    sets = list(version.prediction_sets.all())
+    if not sets:
+        raise DecisionError(f"{version} has no predictions on any split yet")
+    evaluations = list(
+        Evaluation.objects.filter(
+            predictions_id__in=[ps.predictions_id for ps in sets],
+            split_id__in=[ps.split_id for ps in sets],
+        ).select_related("scorecard", "split")
+    )
+    pending = [e for e in evaluations if not e.finished]
+    if pending:
+        raise DecisionError(f"{version} still has {len(pending)} evaluation(s) queued or running")
+    failing = failing_rules(version)
+    override = decision == SignOff.Decision.APPROVED and bool(failing)
+    if override and not justification.strip():
+        raise DecisionError(
+            f"approving {version} despite {len(failing)} failing rule(s) "
+            "is an override and needs a written justification"
+        )
+    evidence = {
+        "evaluations": [
+            {
+                "split": str(e.split),
+                "split_sha256": e.split.sha256,
+                "protocol": e.protocol,
+                "state": e.state,
+                "engine_version": e.engine_version,
+                "AP": e.scorecard.summary.get("AP") if e.state == "done" else None,
+            }
+            for e in evaluations
+        ],
+        "failing_rules": failing,
+    }
+    kind = (
+        AuditEvent.Kind.OVERRIDE
+        if override
+        else AuditEvent.Kind.SIGNED_OFF
+        if decision == SignOff.Decision.APPROVED
+        else AuditEvent.Kind.REJECTED
+    )
+    try:
+        with transaction.atomic():
+            record = SignOff.objects.create(
+                version=version,
+                decision=decision,
+                comment=comment.strip(),
+                override=override,
+                justification=justification.strip(),
+                failing_rules=failing,
+                evidence=evidence,
+                decided_by=user,
+                decided_at=timezone.now(),
+            )
+            event = audit.record_event(
+                kind,
+                user,
+                f"version:{version.pk}",
+                {
+                    "version": str(version),
+                    "decision": decision,
+                    "comment": record.comment,
+                    "override": override,
+                    "justification": record.justification,
+                    "evidence": evidence,
+                },
+            )
+    except IntegrityError:
+        raise DecisionError(f"{version} already has a decision") from None
+    return record, event

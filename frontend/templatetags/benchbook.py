@@ -27,3 +27,8 @@ def direction(value):
 @register.filter
 def get(mapping, key):
     return mapping.get(key) if mapping else None
+
+
+@register.filter
+def subtract(value, other):
+    return None if value is None or other is None else value - other

@@ -19,7 +19,10 @@
         label: split.name,
         data: d.values[String(split.id)][metric.value][cls.value],
         borderColor: PALETTE[i % PALETTE.length], backgroundColor: PALETTE[i % PALETTE.length],
-        borderDash: DASHES[i % DASHES.length], spanGaps: true, tension: 0, pointRadius: 4,
+        borderDash: DASHES[i % DASHES.length], spanGaps: true, tension: 0,
+        // The baseline is drawn as a large diamond on every line.
+        pointRadius: d.versions.map(v => (v.state === "baseline" ? 9 : 4)),
+        pointStyle: d.versions.map(v => (v.state === "baseline" ? "rectRot" : "circle")),
       }));
     }
     const chart = new Chart(canvas, {
