@@ -27,9 +27,9 @@ $(CHARTJS): frontend/package.json frontend/package-lock.json
 demo: $(STAMP) $(CHARTJS)
 	$(BIN)/python manage.py migrate --noinput -v0
 	$(BIN)/python manage.py collectstatic --noinput -v0
-	$(BIN)/python manage.py seed_demo
 	@$(BIN)/celery -A benchbook worker --beat --pool=solo --loglevel=warning & \
 	  worker=$$!; trap "kill $$worker 2>/dev/null" EXIT INT TERM; \
+	  $(BIN)/python manage.py seed_demo --wait 600 && \
 	  $(BIN)/python manage.py runserver 127.0.0.1:8000 --noreload
 
 ## Run the whole test suite (engine doctests included).

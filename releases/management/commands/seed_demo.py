@@ -10,7 +10,7 @@ from django.db import transaction
 from evaluation import services as evaluation_services
 from evaluation.models import BenchmarkSplit, Evaluation
 from releases import demo, services
-from releases.models import Membership, Team
+from releases.models import Membership, ModelVersion, SignOff, Team
 
 TEAM = "Shuttle Perception"
 PROTOCOLS = ("coco", "recall40")
@@ -33,16 +33,21 @@ class Command(BaseCommand):
 
     def handle(self, *args, password, wait, **options):
         if Team.objects.filter(name=TEAM).exists():
-            self.stdout.write("demo already seeded; nothing to do")
+            self.stdout.write(
+                "demo already seeded; the users keep the password printed then "
+                "(`manage.py changepassword lead` sets a new one)"
+            )
         else:
             password = password or secrets.token_urlsafe(9)
             self._seed(password)
             self.stdout.write(
                 f"demo users lead, engineer, reviewer — password: {password}\n"
                 "evaluations are queued; the worker scores them"
+                + ("" if wait else "; rerun with --wait once a worker runs, for the sign-offs")
             )
         if wait:
             self._wait(wait)
+            self._sign_offs()
 
     def _seed(self, password):
         users = {}
@@ -125,6 +130,23 @@ class Command(BaseCommand):
         )
         self.stdout.write(f"  frozen {split} ({split.image_count} images, {split.box_count} boxes)")
         return split
+
+    def _sign_offs(self):
+        """The lead's past decisions: approvals make the baselines (forward 1.4)."""
+        lead = get_user_model().objects.get(username="lead")
+        decisions = [
+            ("forward-camera", "1.0", "approved", "First release for the harbour loop."),
+            ("forward-camera", "1.2", "approved", "Better on every split."),
+            ("forward-camera", "1.3", "rejected", "No gain over 1.2; not worth a fleet update."),
+            ("forward-camera", "1.4", "approved", "Clear gain, night included."),
+            ("kerbside-camera", "1.1", "approved", "Kerbside stops covered."),
+        ]
+        for slug, label, decision, comment in decisions:
+            version = ModelVersion.objects.get(detector__slug=slug, label=label)
+            if SignOff.objects.filter(version=version).exists():
+                continue
+            services.sign_off(version, lead, decision, comment)
+            self.stdout.write(f"  {version}: {decision}")
 
     def _wait(self, seconds):
         deadline = time.monotonic() + seconds
