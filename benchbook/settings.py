@@ -118,6 +118,9 @@ DATA_UPLOAD_MAX_MEMORY_SIZE = 10 * 1024 * 1024
 # Parsed-input cache of the engine (columnar .npz), shared by workers on one machine.
 BENCHBOOK_ENGINE_CACHE = Path(os.environ.get("BENCHBOOK_ENGINE_CACHE", VAR_DIR / "engine-cache"))
 BENCHBOOK_PROTOCOLS = ("coco", "voc", "recall40")
+# Paired bootstrap behind "no significant drop" rules: replicates and seed (reproducible).
+BENCHBOOK_BOOTSTRAP_RESAMPLES = int(os.environ.get("BENCHBOOK_BOOTSTRAP_RESAMPLES", 1000))
+BENCHBOOK_BOOTSTRAP_SEED = 0
 
 # Celery: filesystem broker by default, Redis when CELERY_BROKER_URL says so.
 CELERY_BROKER_URL = os.environ.get("CELERY_BROKER_URL", "filesystem://")

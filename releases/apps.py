@@ -17,3 +17,8 @@ class ReleasesConfig(AppConfig):
         evaluation_signals.evaluation_failed.connect(
             signals.evaluation_failed, dispatch_uid="audit-failed"
         )
+        for signal in (
+            evaluation_signals.evaluation_finished,
+            evaluation_signals.evaluation_failed,
+        ):
+            signal.connect(signals.judge_when_complete, dispatch_uid=f"judge-{id(signal)}")

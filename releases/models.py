@@ -162,3 +162,59 @@ class SignOff(models.Model):
 
     def __str__(self):
         return f"{self.version} {self.decision}{' (override)' if self.override else ''}"
+
+
+class ReleaseCriteria(models.Model):
+    """One version of a detector's release rules; a change is a new row (audited)."""
+
+    detector = models.ForeignKey(Detector, on_delete=models.PROTECT, related_name="criteria")
+    number = models.PositiveIntegerField()
+    rules = models.JSONField()
+    created_by = models.ForeignKey(
+        settings.AUTH_USER_MODEL, on_delete=models.PROTECT, related_name="+"
+    )
+    created_at = models.DateTimeField(auto_now_add=True)
+
+    class Meta:
+        constraints = [
+            models.UniqueConstraint(fields=["detector", "number"], name="criteria_number_unique")
+        ]
+        ordering = ["detector", "-number"]
+
+    def __str__(self):
+        return f"{self.detector} criteria v{self.number}"
+
+
+class Outcome(models.Model):
+    """One rule judged for one candidate on one split."""
+
+    class Status(models.TextChoices):
+        PASS = "pass"
+        FAIL = "fail"
+        NOT_SIGNIFICANT = "not significant"
+        NO_DATA = "no data"
+
+    version = models.ForeignKey(ModelVersion, on_delete=models.CASCADE, related_name="outcomes")
+    criteria = models.ForeignKey(ReleaseCriteria, on_delete=models.PROTECT, related_name="outcomes")
+    rule_index = models.PositiveSmallIntegerField()
+    rule = models.JSONField()
+    split = models.ForeignKey(
+        "evaluation.BenchmarkSplit", on_delete=models.PROTECT, related_name="+"
+    )
+    class_name = models.CharField(max_length=64)
+    status = models.CharField(max_length=16, choices=Status.choices)
+    value = models.FloatField(null=True)
+    baseline_value = models.FloatField(null=True)
+    baseline = models.ForeignKey(
+        ModelVersion, null=True, on_delete=models.PROTECT, related_name="+"
+    )
+    low = models.FloatField(null=True)
+    high = models.FloatField(null=True)
+    detail = models.TextField()
+    judged_at = models.DateTimeField(auto_now_add=True)
+
+    class Meta:
+        ordering = ["version", "rule_index", "split", "class_name"]
+
+    def __str__(self):
+        return f"{self.version} rule {self.rule_index} on {self.split}: {self.status}"

@@ -122,9 +122,15 @@ class DecisionError(ValueError):
 
 
 def failing_rules(version):
-    """Rules the version fails (release criteria land with issue #5's criteria work);
-    until a detector has criteria, nothing fails."""
-    return []
+    """The outcomes the version fails under its detector's current criteria."""
+    from .models import Outcome
+
+    return [
+        {"rule": o.rule_index + 1, "split": str(o.split), "class": o.class_name, "detail": o.detail}
+        for o in Outcome.objects.filter(version=version, status=Outcome.Status.FAIL).select_related(
+            "split"
+        )
+    ]
 
 
 def sign_off(version, user, decision, comment, *, justification=""):

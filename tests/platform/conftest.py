@@ -12,6 +12,7 @@ from django.db import connection
 from evaluation import services as evaluation_services
 from evaluation import tasks, triggers
 from releases import services
+from releases import tasks as release_tasks
 from releases import triggers as audit_triggers
 
 from ..engine.synthetic import make_detections, make_split
@@ -97,7 +98,12 @@ def run_tasks(monkeypatch, django_capture_on_commit_callbacks):
         args = json.loads(json.dumps(args))
         tasks.score.apply(args=args, task_id=str(uuid.uuid4()), throw=True)
 
+    def judge(*args):
+        args = json.loads(json.dumps(args))
+        release_tasks.judge.apply(args=args, task_id=str(uuid.uuid4()), throw=True)
+
     monkeypatch.setattr(tasks.score, "delay", delay)
+    monkeypatch.setattr(release_tasks.judge, "delay", judge)
 
     class Runner:
         def __call__(self, fn, *args, **kwargs):

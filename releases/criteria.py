@@ -1,0 +1,274 @@
+"""Release criteria: validate a detector's rules, judge a candidate against them.
+
+A rule: ``{"metric": "AP"|"AP50"|"AP75"|"recall", "class": "mean"|"*"|name,
+"split": "*"|"name:revision", "tag": optional image tag, "kind": one of
+"min_value" (with "threshold" on 0-1), "max_drop" (with "tolerance" in AP points,
+0-100) or "no_significant_drop" (AP only; "confidence", default 0.95, and an optional
+"tolerance" in points)}``. ``"class": "*"`` applies the rule to every class.
+
+A regression is a *fail* only when the paired-bootstrap interval of the difference
+excludes zero on the bad side and the drop exceeds the tolerance; a drop whose interval
+holds zero is *not significant*.
+"""
+
+import numpy as np
+from django.conf import settings
+from django.core.exceptions import PermissionDenied
+from django.db import transaction
+
+from evaluation import engine
+from evaluation.models import BenchmarkSplit, ClassScore, Scorecard, SliceScore
+from evaluation.services import UploadError, load_truth_of
+from evaluation.storage import local_path
+
+from . import audit, selectors
+from .models import AuditEvent, Membership, Outcome, PredictionSet, ReleaseCriteria
+
+METRICS = {"AP": "ap", "AP50": "ap50", "AP75": "ap75", "recall": "recall"}
+KINDS = ("min_value", "max_drop", "no_significant_drop")
+
+
+class CriteriaError(UploadError):
+    """A rule that cannot be used; the message names the rule and the field."""
+
+
+def _fail(index, field, message):
+    raise CriteriaError(f"rule {index + 1}: field '{field}': {message}")
+
+
+def _number(rule, index, field, low, high, default=None):
+    value = rule.get(field, default)
+    if isinstance(value, bool) or not isinstance(value, (int, float)) or not low <= value <= high:
+        _fail(index, field, f"must be a number in [{low}, {high}], got {value!r}")
+    return float(value)
+
+
+def validate_rules(detector, rules):
+    """Checked, normalised rules; errors name the rule and the field."""
+    if not isinstance(rules, list) or not rules:
+        raise CriteriaError("criteria must be a non-empty list of rules")
+    splits = {f"{s.name}:{s.revision}" for s in BenchmarkSplit.objects.all()}
+    known = {"metric", "class", "split", "tag", "kind", "threshold", "tolerance", "confidence"}
+    out = []
+    for i, rule in enumerate(rules):
+        if not isinstance(rule, dict):
+            raise CriteriaError(f"rule {i + 1}: must be an object")
+        for key in rule:
+            if key not in known:
+                _fail(i, key, f"unknown field; allowed: {', '.join(sorted(known))}")
+        kind = rule.get("kind")
+        if kind not in KINDS:
+            _fail(i, "kind", f"must be one of {', '.join(KINDS)}, got {kind!r}")
+        metric = rule.get("metric", "AP")
+        if metric not in METRICS:
+            _fail(i, "metric", f"must be one of {', '.join(METRICS)}, got {metric!r}")
+        if kind == "no_significant_drop" and metric != "AP":
+            _fail(i, "metric", "a significance rule is computed on AP")
+        name = rule.get("class", "mean")
+        if name not in ("mean", "*", *detector.classes):
+            _fail(
+                i, "class", f"{name!r} is not 'mean', '*' or one of {', '.join(detector.classes)}"
+            )
+        split = rule.get("split", "*")
+        if split != "*" and split not in splits:
+            _fail(i, "split", f"{split!r} is not a benchmark split (use name:revision or '*')")
+        tag = rule.get("tag")
+        if tag is not None and (not isinstance(tag, str) or not tag):
+            _fail(i, "tag", "must be a non-empty image tag")
+        clean = {"kind": kind, "metric": metric, "class": name, "split": split}
+        if tag:
+            clean["tag"] = tag
+        if kind == "min_value":
+            clean["threshold"] = _number(rule, i, "threshold", 0.0, 1.0)
+        else:
+            clean["tolerance"] = _number(
+                rule,
+                i,
+                "tolerance",
+                0.0,
+                100.0,
+                default=0.0 if kind == "no_significant_drop" else None,
+            )
+        if kind == "no_significant_drop":
+            clean["confidence"] = _number(rule, i, "confidence", 0.5, 0.999, default=0.95)
+        out.append(clean)
+    return out
+
+
+def set_criteria(detector, user, rules):
+    """A new version of the detector's criteria (leads only), audited."""
+    if selectors.role_in(user, detector.team) != Membership.Role.LEAD:
+        raise PermissionDenied(f"{user} may not change the criteria of {detector}: leads only")
+    clean = validate_rules(detector, rules)
+    with transaction.atomic():
+        last = detector.criteria.order_by("-number").first()
+        criteria = ReleaseCriteria.objects.create(
+            detector=detector, number=(last.number + 1 if last else 1), rules=clean, created_by=user
+        )
+        audit.record_event(
+            AuditEvent.Kind.CRITERIA_CHANGED,
+            user,
+            f"detector:{detector.pk}",
+            {"detector": str(detector), "number": criteria.number, "rules": clean},
+        )
+    return criteria
+
+
+def current_criteria(detector):
+    return detector.criteria.order_by("-number").first()
+
+
+def _scorecards(version, protocol):
+    """{split: Scorecard} of a version's finished evaluations under ``protocol``."""
+    sets = {
+        (ps.predictions_id, ps.split_id): ps.split
+        for ps in PredictionSet.objects.filter(version=version).select_related("split")
+    }
+    cards = Scorecard.objects.filter(
+        evaluation__state="done",
+        evaluation__protocol=protocol,
+        evaluation__predictions_id__in={k[0] for k in sets},
+    ).select_related("evaluation")
+    return {
+        sets[(c.evaluation.predictions_id, c.evaluation.split_id)]: c
+        for c in cards
+        if (c.evaluation.predictions_id, c.evaluation.split_id) in sets
+    }
+
+
+def _value(card, metric, name, tag):
+    if card is None:
+        return None
+    if tag:
+        row = SliceScore.objects.filter(
+            scorecard=card, kind="tag", name=tag, class_name="" if name == "mean" else name
+        ).first()
+        return row.ap if row and metric == "AP" else None
+    row = ClassScore.objects.filter(
+        scorecard=card, class_name="" if name == "mean" else name
+    ).first()
+    return getattr(row, METRICS[metric]) if row else None
+
+
+def _records(card):
+    with local_path(card.records) as path:
+        return engine.MatchRecords.load(path)
+
+
+def _interval(candidate_card, baseline_card, name, tag, confidence):
+    """Paired-bootstrap interval of ΔAP (candidate − baseline) for one class or the mean."""
+    from evaluation.engine.bootstrap import paired_bootstrap
+    from evaluation.engine.scoring import headline
+
+    records_c, records_b = _records(candidate_card), _records(baseline_card)
+    protocol = candidate_card.protocol
+    classes = list(records_c.classes)
+    column = 0 if name == "mean" else 1 + classes.index(name)
+    mask = load_truth_of(candidate_card.evaluation.split).tag_mask(tag) if tag else None
+
+    def statistic(records):
+        def of(weights):
+            w = mask if weights is None else (weights if mask is None else weights * mask)
+            mean, per_class = headline(records, protocol, weights=w)
+            return np.r_[mean, per_class][column : column + 1]
+
+        return of
+
+    return paired_bootstrap(
+        statistic(records_c),
+        statistic(records_b),
+        records_c.n_images,
+        n_resamples=settings.BENCHBOOK_BOOTSTRAP_RESAMPLES,
+        confidence=confidence,
+        seed=settings.BENCHBOOK_BOOTSTRAP_SEED,
+        workers=1,
+    )[0]
+
+
+def judge(version):
+    """Judge ``version`` against its detector's current criteria; replaces earlier outcomes."""
+    detector = version.detector
+    criteria = current_criteria(detector)
+    if criteria is None:
+        return []
+    baseline = selectors.baseline_of(detector)
+    if baseline is not None and baseline.pk == version.pk:
+        baseline = None
+    cards = _scorecards(version, detector.primary_protocol)
+    baseline_cards = _scorecards(baseline, detector.primary_protocol) if baseline else {}
+    outcomes = []
+    for index, rule in enumerate(criteria.rules):
+        splits = [s for s in cards if rule["split"] in ("*", f"{s.name}:{s.revision}")]
+        names = detector.classes if rule["class"] == "*" else [rule["class"]]
+        for split in sorted(splits, key=lambda s: (s.name, s.revision)):
+            for name in names:
+                outcomes.append(
+                    _judge_one(
+                        version,
+                        criteria,
+                        index,
+                        rule,
+                        split,
+                        name,
+                        cards.get(split),
+                        baseline,
+                        baseline_cards.get(split),
+                    )
+                )
+    with transaction.atomic():
+        Outcome.objects.filter(version=version).delete()
+        Outcome.objects.bulk_create(outcomes)
+    return outcomes
+
+
+def _judge_one(version, criteria, index, rule, split, name, card, baseline, baseline_card):
+    tag = rule.get("tag")
+    value = _value(card, rule["metric"], name, tag)
+    base_value = _value(baseline_card, rule["metric"], name, tag)
+    outcome = Outcome(
+        version=version,
+        criteria=criteria,
+        rule_index=index,
+        rule=rule,
+        split=split,
+        class_name=name,
+        value=value,
+        baseline_value=base_value,
+        baseline=baseline,
+    )
+    label = f"{rule['metric']} of {name}" + (f" at {tag}" if tag else "") + f" on {split}"
+    if value is None:
+        outcome.status, outcome.detail = Outcome.Status.NO_DATA, f"{label}: not measured"
+        return outcome
+    if rule["kind"] == "min_value":
+        ok = value >= rule["threshold"]
+        outcome.status = Outcome.Status.PASS if ok else Outcome.Status.FAIL
+        outcome.detail = f"{label} = {value:.3f}, minimum {rule['threshold']:.3f}"
+        return outcome
+    if baseline_card is None or base_value is None:
+        outcome.status = Outcome.Status.NO_DATA
+        outcome.detail = f"{label}: no baseline scored on this split"
+        return outcome
+    drop = base_value - value
+    tolerance = rule["tolerance"] / 100
+    if rule["kind"] == "max_drop":
+        outcome.status = Outcome.Status.FAIL if drop > tolerance else Outcome.Status.PASS
+        outcome.detail = (
+            f"{label}: {base_value:.3f} → {value:.3f} (drop {100 * drop:.2f} points, "
+            f"allowed {rule['tolerance']:.2f})"
+        )
+        return outcome
+    interval = _interval(card, baseline_card, name, tag, rule["confidence"])
+    outcome.low, outcome.high = interval.low, interval.high
+    significant = interval.high < 0
+    if significant and drop > tolerance:
+        outcome.status = Outcome.Status.FAIL
+    elif drop > 0 and not significant:
+        outcome.status = Outcome.Status.NOT_SIGNIFICANT
+    else:
+        outcome.status = Outcome.Status.PASS
+    outcome.detail = (
+        f"{label}: Δ {value - base_value:+.3f}, {100 * rule['confidence']:.0f} % interval "
+        f"[{interval.low:+.3f}, {interval.high:+.3f}]"
+    )
+    return outcome
