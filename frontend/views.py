@@ -129,6 +129,7 @@ def version(request, version_id):
             "splits": splits,
             "evaluations": selectors.evaluations_of(found),
             "decision": getattr(found, "sign_off", None),
+            "outcomes": selectors.outcomes_of(found),
             "can_sign_off": selectors.role_in(request.user, found.detector.team) == "lead",
             "state": selectors.state_of(found, selectors.baseline_of(found.detector)),
             "caution": CAUTION,

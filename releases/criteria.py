@@ -155,26 +155,25 @@ def _records(card):
         return engine.MatchRecords.load(path)
 
 
-def _interval(candidate_card, baseline_card, name, tag, confidence):
-    """Paired-bootstrap interval of ΔAP (candidate − baseline) for one class or the mean."""
+def _intervals(candidate_card, baseline_card, tag, confidence):
+    """Paired-bootstrap intervals of ΔAP (candidate − baseline): mean and every class,
+    from one set of replicates (``{name: Interval}``)."""
     from evaluation.engine.bootstrap import paired_bootstrap
     from evaluation.engine.scoring import headline
 
     records_c, records_b = _records(candidate_card), _records(baseline_card)
     protocol = candidate_card.protocol
-    classes = list(records_c.classes)
-    column = 0 if name == "mean" else 1 + classes.index(name)
     mask = load_truth_of(candidate_card.evaluation.split).tag_mask(tag) if tag else None
 
     def statistic(records):
         def of(weights):
             w = mask if weights is None else (weights if mask is None else weights * mask)
             mean, per_class = headline(records, protocol, weights=w)
-            return np.r_[mean, per_class][column : column + 1]
+            return np.r_[mean, per_class]
 
         return of
 
-    return paired_bootstrap(
+    intervals = paired_bootstrap(
         statistic(records_c),
         statistic(records_b),
         records_c.n_images,
@@ -182,7 +181,8 @@ def _interval(candidate_card, baseline_card, name, tag, confidence):
         confidence=confidence,
         seed=settings.BENCHBOOK_BOOTSTRAP_SEED,
         workers=1,
-    )[0]
+    )
+    return dict(zip(["mean", *records_c.classes], intervals))
 
 
 def judge(version):
@@ -197,6 +197,7 @@ def judge(version):
     cards = _scorecards(version, detector.primary_protocol)
     baseline_cards = _scorecards(baseline, detector.primary_protocol) if baseline else {}
     outcomes = []
+    bootstraps = {}  # one set of replicates per split, tag and confidence serves every class
     for index, rule in enumerate(criteria.rules):
         splits = [s for s in cards if rule["split"] in ("*", f"{s.name}:{s.revision}")]
         names = detector.classes if rule["class"] == "*" else [rule["class"]]
@@ -213,6 +214,7 @@ def judge(version):
                         cards.get(split),
                         baseline,
                         baseline_cards.get(split),
+                        bootstraps,
                     )
                 )
     with transaction.atomic():
@@ -221,7 +223,9 @@ def judge(version):
     return outcomes
 
 
-def _judge_one(version, criteria, index, rule, split, name, card, baseline, baseline_card):
+def _judge_one(
+    version, criteria, index, rule, split, name, card, baseline, baseline_card, bootstraps
+):
     tag = rule.get("tag")
     value = _value(card, rule["metric"], name, tag)
     base_value = _value(baseline_card, rule["metric"], name, tag)
@@ -258,7 +262,10 @@ def _judge_one(version, criteria, index, rule, split, name, card, baseline, base
             f"allowed {rule['tolerance']:.2f})"
         )
         return outcome
-    interval = _interval(card, baseline_card, name, tag, rule["confidence"])
+    key = (split.pk, tag, rule["confidence"])
+    if key not in bootstraps:
+        bootstraps[key] = _intervals(card, baseline_card, tag, rule["confidence"])
+    interval = bootstraps[key][name]
     outcome.low, outcome.high = interval.low, interval.high
     significant = interval.high < 0
     if significant and drop > tolerance:

@@ -404,3 +404,16 @@ def state_of(version, baseline):
     if decision == "rejected":
         return "rejected"
     return "candidate"
+
+
+def outcomes_of(version):
+    """The version's judged rules, failures first."""
+    from .models import Outcome
+
+    order = {"fail": 0, "not significant": 1, "no data": 2, "pass": 3}
+    rows = list(
+        Outcome.objects.filter(version=version).select_related("split", "criteria", "baseline")
+    )
+    return sorted(
+        rows, key=lambda o: (order.get(o.status, 9), o.rule_index, o.split.name, o.class_name)
+    )

@@ -5,7 +5,7 @@ from django.core.management import call_command
 
 from evaluation.models import ClassScore, Evaluation
 from releases import selectors
-from releases.models import Detector
+from releases.models import Detector, Outcome
 
 pytestmark = pytest.mark.django_db
 
@@ -20,7 +20,8 @@ def _ap50(detector, label, split, revision, class_name="pedestrian"):
     ).ap50
 
 
-def test_demo_scenario(run_tasks, capsys):
+def test_demo_scenario(run_tasks, capsys, settings):
+    settings.BENCHBOOK_BOOTSTRAP_RESAMPLES = 150
     run_tasks(call_command, "seed_demo", password="demo-pass")
     call_command("seed_demo", wait=5)  # already seeded: waits, then the lead's decisions
     out = capsys.readouterr().out
@@ -33,3 +34,21 @@ def test_demo_scenario(run_tasks, capsys):
     assert _ap50("forward", "1.5", "bay-night", 1) < _ap50("forward", "1.4", "bay-night", 1) - 0.15
     # By day the same version is no worse for pedestrians.
     assert _ap50("forward", "1.5", "bay-day", 1) > _ap50("forward", "1.4", "bay-day", 1) - 0.03
+
+    # Judged against the 1.4 baseline: the night pedestrian drop of 1.5 is significant...
+    version = forward.versions.get(label="1.5")
+    night = Outcome.objects.get(
+        version=version,
+        rule_index=2,
+        class_name="pedestrian",
+        split__name="bay-night",
+        split__revision=1,
+    )
+    assert night.status == "fail" and night.high < 0
+    # ...while drops whose interval holds zero are shown as not significant, not failures.
+    judged = Outcome.objects.filter(version=version, rule_index=2)
+    assert judged.filter(status="not significant").exists()
+    for o in judged:
+        assert (o.status == "fail") == (o.high < 0), o.detail
+        if o.status == "not significant":
+            assert o.value < o.baseline_value and o.low < 0 <= o.high

@@ -10,7 +10,7 @@ from django.db import transaction
 from evaluation import services as evaluation_services
 from evaluation.models import BenchmarkSplit, Evaluation
 from releases import demo, services
-from releases.models import Membership, ModelVersion, SignOff, Team
+from releases.models import Detector, Membership, ModelVersion, SignOff, Team
 
 TEAM = "Shuttle Perception"
 PROTOCOLS = ("coco", "recall40")
@@ -48,6 +48,7 @@ class Command(BaseCommand):
         if wait:
             self._wait(wait)
             self._sign_offs()
+            self._criteria()
 
     def _seed(self, password):
         users = {}
@@ -147,6 +148,40 @@ class Command(BaseCommand):
                 continue
             services.sign_off(version, lead, decision, comment)
             self.stdout.write(f"  {version}: {decision}")
+
+    def _criteria(self):
+        """The example rules, then the worker judges every version newer than the baseline."""
+        from releases import criteria, selectors
+        from releases.signals import _send
+        from releases.tasks import judge
+
+        lead = get_user_model().objects.get(username="lead")
+        rules = [
+            {
+                "kind": "min_value",
+                "metric": "AP50",
+                "class": "pedestrian",
+                "split": "*",
+                "threshold": 0.8,
+            },
+            {"kind": "max_drop", "metric": "AP", "class": "mean", "split": "*", "tolerance": 0.5},
+            {
+                "kind": "no_significant_drop",
+                "metric": "AP",
+                "class": "*",
+                "split": "*",
+                "confidence": 0.95,
+            },
+        ]
+        for detector in Detector.objects.all():
+            if criteria.current_criteria(detector) is None:
+                criteria.set_criteria(detector, lead, rules)
+            baseline = selectors.baseline_of(detector)
+            for version in detector.versions.filter(
+                created_at__gt=baseline.created_at, sign_off=None
+            ):
+                _send(judge, version.pk)
+                self.stdout.write(f"  {version}: queued for judging against {baseline.label}")
 
     def _wait(self, seconds):
         deadline = time.monotonic() + seconds
