@@ -14,6 +14,8 @@ urlpatterns = [
     path("detectors/<int:detector_id>/compare/", views.compare, name="compare"),
     path("versions/<int:version_id>/", views.version, name="version"),
     path("versions/<int:version_id>/sign-off/", views.sign_off, name="sign-off"),
+    path("versions/<int:version_id>/evidence/", views.evidence, name="evidence"),
+    path("versions/<int:version_id>/evidence.json", views.evidence, name="evidence-json"),
     path("splits/<int:split_id>/", views.split, name="split"),
     path("evaluations/<int:evaluation_id>.json", views.evaluation_status, name="evaluation-status"),
 ]

@@ -176,6 +176,16 @@ def compare(request, detector_id):
 
 
 @login_required
+def evidence(request, version_id):
+    found = _version_or_404(request.user, version_id)
+    report = selectors.evidence_for(found)
+    report["caution"] = CAUTION
+    if request.path.endswith(".json"):
+        return JsonResponse(report, json_dumps_params={"indent": 2})
+    return render(request, "frontend/evidence.html", {"report": report, "version": found})
+
+
+@login_required
 def sign_off(request, version_id):
     found = _version_or_404(request.user, version_id)
     if request.method != "POST":

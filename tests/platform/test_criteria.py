@@ -188,3 +188,32 @@ def test_only_leads_change_criteria(detector, users, who):
     with pytest.raises(PermissionDenied, match="leads only"):
         criteria.set_criteria(detector, users[who], RULES)
     assert ReleaseCriteria.objects.count() == 0
+
+
+def test_evidence_report_holds_rules_hashes_decision_and_chain(
+    client, detector, big_split, users, run_tasks, with_baseline
+):
+    criteria.set_criteria(detector, users["lead"], RULES)
+    split, _, detections = big_split
+    candidate = services.create_version(detector, "1.5", users["engineer"])
+    run_tasks(
+        services.submit_predictions,
+        candidate,
+        split,
+        upload("1.5.json", _lose(detections, CLASSES.index("pedestrian") + 1, 0.6, seed=1)),
+        users["engineer"],
+    )
+    services.sign_off(candidate, users["lead"], "approved", "ship", justification="route closed")
+    client.force_login(users["reviewer"])
+    report = client.get(f"/versions/{candidate.pk}/evidence.json").json()
+    assert report["sign_off"]["override"] and report["sign_off"]["justification"] == "route closed"
+    assert report["audit"]["chain_intact"] and len(report["audit"]["head"]) == 64
+    assert report["splits"][0]["split_sha256"] == split.sha256
+    pedestrian = next(c for c in report["splits"][0]["classes"] if c["class"] == "pedestrian")
+    assert pedestrian["delta_AP_interval"][1] < 0
+    assert any(o["status"] == "fail" for o in report["outcomes"])
+    assert "do not replace, the safety validation" in report["caution"]
+    page = client.get(f"/versions/{candidate.pk}/evidence/").content.decode()
+    assert "override" in page and split.sha256 in page and "Chain intact" in page
+    client.force_login(users["rival"])
+    assert client.get(f"/versions/{candidate.pk}/evidence.json").status_code == 404
