@@ -41,6 +41,8 @@ class Detector(models.Model):
     classes = models.JSONField()
     primary_protocol = models.CharField(max_length=32, default="coco")
     protocols = models.JSONField(default=list, help_text="Protocols every upload is scored under.")
+    webhook_url = models.URLField(blank=True, help_text="Receives each judgement as signed JSON.")
+    webhook_secret = models.CharField(max_length=128, blank=True)
 
     class Meta:
         constraints = [

@@ -2,7 +2,7 @@
 
 from celery import shared_task
 
-from . import criteria
+from . import criteria, notify
 from .models import ModelVersion
 
 
@@ -10,5 +10,5 @@ from .models import ModelVersion
 def judge(version_id):
     """(Re)judge a version against its detector's criteria; outcomes are replaced."""
     version = ModelVersion.objects.select_related("detector").filter(pk=version_id).first()
-    if version is not None:
-        criteria.judge(version)
+    if version is not None and criteria.judge(version):
+        notify.notify(version)

@@ -1,0 +1,129 @@
+"""Telling people about a judgement: e-mail to the team's leads, and a signed webhook."""
+
+import hashlib
+import hmac
+import json
+import logging
+import time
+import urllib.error
+import urllib.request
+
+from django.conf import settings
+from django.core.exceptions import PermissionDenied, ValidationError
+from django.core.mail import send_mail
+from django.core.validators import URLValidator
+
+from . import selectors
+from .models import Membership, Outcome
+
+log = logging.getLogger(__name__)
+SIGNATURE_HEADER = "X-Benchbook-Signature"
+
+
+class WebhookError(Exception):
+    """The webhook could not be delivered after every retry."""
+
+
+def signature(secret, body):
+    """``sha256=<hex HMAC-SHA256 of the body under the secret>`` (RFC 2104)."""
+    return "sha256=" + hmac.new(secret.encode(), body, hashlib.sha256).hexdigest()
+
+
+def set_webhook(detector, user, url, secret):
+    """Leads point a detector's judgements at a URL; both fields are checked."""
+    if selectors.role_in(user, detector.team) != Membership.Role.LEAD:
+        raise PermissionDenied(f"{user} may not set the webhook of {detector}: leads only")
+    try:
+        URLValidator(schemes=["http", "https"])(url)
+    except ValidationError:
+        raise ValueError(f"webhook URL {url!r} is not an http(s) URL") from None
+    if len(secret) < 16:
+        raise ValueError("the webhook secret must have at least 16 characters")
+    detector.webhook_url, detector.webhook_secret = url, secret
+    detector.save(update_fields=["webhook_url", "webhook_secret"])
+
+
+def payload(version):
+    outcomes = Outcome.objects.filter(version=version).select_related("split")
+    counts = {status: 0 for status in Outcome.Status.values}
+    for o in outcomes:
+        counts[o.status] += 1
+    return {
+        "event": "version.judged",
+        "detector": version.detector.name,
+        "version": version.label,
+        "regression": counts["fail"] > 0,
+        "counts": counts,
+        "failures": [
+            {
+                "rule": o.rule_index + 1,
+                "split": str(o.split),
+                "class": o.class_name,
+                "detail": o.detail,
+            }
+            for o in outcomes
+            if o.status == "fail"
+        ],
+    }
+
+
+def email_leads(version, body):
+    leads = [
+        m.user.email
+        for m in Membership.objects.filter(
+            team=version.detector.team, role=Membership.Role.LEAD
+        ).select_related("user")
+        if m.user.email
+    ]
+    if not leads:
+        return 0
+    verdict = "REGRESSION" if body["regression"] else "no regression"
+    lines = [f"{version} was judged against its release criteria: {verdict}."]
+    lines += [f"- rule {f['rule']}: {f['detail']}" for f in body["failures"]]
+    return send_mail(
+        f"[Benchbook] {version}: {verdict}", "\n".join(lines), settings.DEFAULT_FROM_EMAIL, leads
+    )
+
+
+def post_webhook(detector, body, *, attempts=None, delay=None):
+    """POST the JSON body, signed; retried with exponential back-off, then WebhookError."""
+    attempts = attempts or settings.BENCHBOOK_WEBHOOK_ATTEMPTS
+    delay = settings.BENCHBOOK_WEBHOOK_BACKOFF_SECONDS if delay is None else delay
+    data = json.dumps(body, sort_keys=True).encode()
+    request = urllib.request.Request(
+        detector.webhook_url,
+        data=data,
+        method="POST",
+        headers={
+            "Content-Type": "application/json",
+            SIGNATURE_HEADER: signature(detector.webhook_secret, data),
+        },
+    )
+    last = None
+    for attempt in range(attempts):
+        try:
+            with urllib.request.urlopen(request, timeout=10) as response:
+                if 200 <= response.status < 300:
+                    return attempt + 1
+                last = f"HTTP {response.status}"
+        except urllib.error.HTTPError as e:
+            last = f"HTTP {e.code}"
+        except (urllib.error.URLError, OSError) as e:
+            last = str(getattr(e, "reason", e))
+        if attempt + 1 < attempts:
+            time.sleep(delay * 2**attempt)
+    raise WebhookError(f"webhook {detector.webhook_url} failed after {attempts} attempts: {last}")
+
+
+def notify(version):
+    """E-mail the leads and call the webhook; a failing webhook is logged, not fatal."""
+    body = payload(version)
+    sent = email_leads(version, body)
+    delivered = None
+    if version.detector.webhook_url:
+        try:
+            delivered = post_webhook(version.detector, body)
+        except WebhookError as e:
+            log.error("%s", e)
+            delivered = str(e)
+    return {"emails": sent, "webhook": delivered}
