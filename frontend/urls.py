@@ -12,6 +12,7 @@ urlpatterns = [
     path("detectors/<int:detector_id>/", views.detector, name="detector"),
     path("detectors/<int:detector_id>/upload/", views.upload_predictions, name="upload"),
     path("detectors/<int:detector_id>/compare/", views.compare, name="compare"),
+    path("detectors/<int:detector_id>/criteria/", views.release_criteria, name="criteria"),
     path("versions/<int:version_id>/", views.version, name="version"),
     path("versions/<int:version_id>/sign-off/", views.sign_off, name="sign-off"),
     path("versions/<int:version_id>/evidence/", views.evidence, name="evidence"),

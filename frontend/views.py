@@ -1,5 +1,7 @@
 """Pages. Views parse input, call one service or selector, and render."""
 
+import json
+
 from django.contrib import messages
 from django.contrib.auth.decorators import login_required
 from django.core.exceptions import PermissionDenied
@@ -172,6 +174,39 @@ def compare(request, detector_id):
             "splits": splits,
             "caution": CAUTION,
         },
+    )
+
+
+@login_required
+def release_criteria(request, detector_id):
+    from releases import criteria
+
+    found = _detector_or_404(request.user, detector_id)
+    current = criteria.current_criteria(found)
+    text = request.POST.get("rules") or json.dumps(current.rules if current else [], indent=2)
+    error = None
+    if request.method == "POST":
+        try:
+            criteria.set_criteria(found, request.user, json.loads(text))
+        except json.JSONDecodeError as e:
+            error = f"rules: not valid JSON: {e.msg} at line {e.lineno}, column {e.colno}"
+        except criteria.CriteriaError as e:
+            error = str(e)
+        else:
+            messages.success(request, f"criteria of {found} saved as a new version")
+            return redirect("criteria", detector_id=found.pk)
+    return render(
+        request,
+        "frontend/criteria.html",
+        {
+            "detector": found,
+            "current": current,
+            "text": text,
+            "error": error,
+            "history": found.criteria.select_related("created_by").order_by("-number"),
+            "can_edit": selectors.role_in(request.user, found.team) == "lead",
+        },
+        status=400 if error else 200,
     )
 
 

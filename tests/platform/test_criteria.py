@@ -2,6 +2,7 @@
 a regression is flagged only when the bootstrap interval excludes zero."""
 
 import copy
+import json
 
 import numpy as np
 import pytest
@@ -217,3 +218,18 @@ def test_evidence_report_holds_rules_hashes_decision_and_chain(
     assert "override" in page and split.sha256 in page and "Chain intact" in page
     client.force_login(users["rival"])
     assert client.get(f"/versions/{candidate.pk}/evidence.json").status_code == 404
+
+
+def test_criteria_page(client, detector, users):
+    client.force_login(users["lead"])
+    url = f"/detectors/{detector.pk}/criteria/"
+    bad = client.post(url, {"rules": '[{"kind": "min_value", "metric": "mAP", "threshold": 0.5}]'})
+    assert bad.status_code == 400 and "rule 1: field &#x27;metric&#x27;" in bad.content.decode()
+    broken = client.post(url, {"rules": "[{"})
+    assert broken.status_code == 400 and "rules: not valid JSON" in broken.content.decode()
+    assert client.post(url, {"rules": json.dumps(RULES)}).status_code == 302
+    assert criteria.current_criteria(detector).number == 1
+    client.force_login(users["engineer"])
+    page = client.get(url).content.decode()
+    assert "Only leads of Shuttle Perception edit the criteria" in page
+    assert client.post(url, {"rules": json.dumps(RULES)}).status_code == 403
