@@ -133,7 +133,9 @@ def version(request, version_id):
             "decision": getattr(found, "sign_off", None),
             "outcomes": selectors.outcomes_of(found),
             "can_sign_off": selectors.role_in(request.user, found.detector.team) == "lead",
-            "state": selectors.state_of(found, selectors.baseline_of(found.detector)),
+            "state": selectors.state_of(
+                found, selectors.baseline_of(found.detector), selectors.blocked_versions([found])
+            ),
             "caution": CAUTION,
         },
     )

@@ -134,6 +134,7 @@ def history_chart(detector):
 
     versions = list(detector.versions.select_related("sign_off").order_by("created_at"))
     baseline = baseline_of(detector)
+    blocked = blocked_versions(versions)
     sets = list(
         PredictionSet.objects.filter(version__detector=detector).values_list(
             "version_id", "split_id", "predictions_id"
@@ -175,7 +176,7 @@ def history_chart(detector):
                 "id": v.pk,
                 "label": v.label,
                 "date": v.created_at.date().isoformat(),
-                "state": state_of(v, baseline),
+                "state": state_of(v, baseline, blocked),
             }
             for v in versions
         ],
@@ -325,6 +326,7 @@ def overview_for(user):
     ).order_by("sign_off__decided_at"):
         baseline[version.detector_id] = version
     shown = [v for v in [*newest.values(), *baseline.values()] if v]
+    blocked = blocked_versions(shown)
     sets = list(PredictionSet.objects.filter(version__in=shown).select_related("split", "version"))
 
     protocols = {d.primary_protocol for d in detectors}
@@ -366,7 +368,7 @@ def overview_for(user):
                 "detector": detector,
                 "newest": version,
                 "baseline": base,
-                "newest_state": state_of(version, base) if version else None,
+                "newest_state": state_of(version, base, blocked) if version else None,
                 "headline": headline,
                 "pending": running,
             }
@@ -394,8 +396,19 @@ def baseline_of(detector):
     )
 
 
-def state_of(version, baseline):
-    """The badge of a version: baseline, signed off, rejected or candidate."""
+def blocked_versions(versions):
+    """Ids of the undecided versions among these that fail a release rule."""
+    from .models import Outcome
+
+    return set(
+        Outcome.objects.filter(
+            version__in=versions, status=Outcome.Status.FAIL, version__sign_off=None
+        ).values_list("version_id", flat=True)
+    )
+
+
+def state_of(version, baseline, blocked=()):
+    """The badge of a version: baseline, signed off, rejected, blocked or candidate."""
     decision = getattr(getattr(version, "sign_off", None), "decision", None)
     if baseline is not None and version.pk == baseline.pk:
         return "baseline"
@@ -403,7 +416,7 @@ def state_of(version, baseline):
         return "signed off"
     if decision == "rejected":
         return "rejected"
-    return "candidate"
+    return "blocked" if version.pk in blocked else "candidate"
 
 
 def outcomes_of(version):

@@ -86,6 +86,14 @@ def test_a_real_regression_is_flagged_and_needs_an_override(
     )
     outcomes = {(o.rule_index, o.class_name): o for o in Outcome.objects.filter(version=candidate)}
     assert outcomes[(0, "pedestrian")].status == "fail"
+    from releases import selectors
+
+    assert (
+        selectors.state_of(
+            candidate, selectors.baseline_of(detector), selectors.blocked_versions([candidate])
+        )
+        == "blocked"
+    )
     assert outcomes[(2, "pedestrian")].status == "fail"
     assert outcomes[(2, "pedestrian")].high < 0
     assert outcomes[(2, "car")].status in ("pass", "not significant")
