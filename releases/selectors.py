@@ -260,6 +260,15 @@ def compare_versions(reference, candidate):
         PredictionSet.objects.filter(version__in=[reference, candidate]).select_related("split")
     )
     cards = _scorecards(sets, [detector.primary_protocol], with_result=True)
+    from .models import Outcome
+
+    # Intervals exist where the candidate was judged against this reference (its baseline).
+    intervals = {
+        (o.split_id, o.class_name): (o.low, o.high, o.rule.get("confidence"))
+        for o in Outcome.objects.filter(
+            version=candidate, baseline=reference, low__isnull=False, rule__tag__isnull=True
+        )
+    }
     by_version = {}
     for ps in sets:
         card = cards.get((ps.pk, detector.primary_protocol))
@@ -304,6 +313,8 @@ def compare_versions(reference, candidate):
             for name in detector.classes
             if name in a.result["per_class"] and name in b.result["per_class"]
         }
+        for d in deltas:
+            d["interval"] = intervals.get((split.pk, d["class"]))
         out.append({"split": split, "deltas": deltas, "tags": tag_rows, "curves": curves})
     return out
 

@@ -241,3 +241,25 @@ def test_criteria_page(client, detector, users):
     page = client.get(url).content.decode()
     assert "Only leads of Shuttle Perception edit the criteria" in page
     assert client.post(url, {"rules": json.dumps(RULES)}).status_code == 403
+
+
+def test_compare_shows_the_judged_intervals(
+    client, detector, big_split, users, run_tasks, with_baseline
+):
+    criteria.set_criteria(detector, users["lead"], [RULES[2]])
+    split, _, detections = big_split
+    candidate = services.create_version(detector, "1.5", users["engineer"])
+    run_tasks(
+        services.submit_predictions,
+        candidate,
+        split,
+        upload("1.5.json", _lose(detections, CLASSES.index("pedestrian") + 1, 0.6, seed=1)),
+        users["engineer"],
+    )
+    client.force_login(users["lead"])
+    response = client.get(f"/detectors/{detector.pk}/compare/")
+    assert response.context["reference"] == with_baseline
+    rows = {d["class"]: d for d in response.context["splits"][0]["deltas"]}
+    low, high, confidence = rows["pedestrian"]["interval"]
+    assert low <= rows["pedestrian"]["delta"] <= high or high < 0
+    assert high < 0 and confidence == 0.95
