@@ -168,7 +168,8 @@ def history_chart(detector):
         name = name or "mean"
         for metric, number in zip(METRICS, numbers):
             if name in per_split[metric]:
-                per_split[metric][name][i] = number
+                # Four decimals: the page shows three, and shorter JSON renders faster.
+                per_split[metric][name][i] = None if number is None else round(number, 4)
     return {
         "protocol": detector.primary_protocol,
         "versions": [
