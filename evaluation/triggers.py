@@ -36,21 +36,20 @@ SQLITE_REMOVE = [
 ]
 
 
-def _statements(vendor, install):
-    if vendor == "postgresql":
-        return [POSTGRES_INSTALL if install else POSTGRES_REMOVE]
-    if vendor == "sqlite":
-        return SQLITE_INSTALL if install else SQLITE_REMOVE
-    raise RuntimeError(f"no frozen-split trigger for database {vendor!r}")
+def execute(connection, statements):
+    """Run the statements for this database, ``{vendor: [sql, ...]}``."""
+    try:
+        chosen = statements[connection.vendor]
+    except KeyError:
+        raise RuntimeError(f"no trigger for database {connection.vendor!r}") from None
+    with connection.cursor() as cursor:
+        for statement in chosen:
+            cursor.execute(statement)
 
 
 def install(connection):
-    with connection.cursor() as cursor:
-        for statement in _statements(connection.vendor, True):
-            cursor.execute(statement)
+    execute(connection, {"postgresql": [POSTGRES_INSTALL], "sqlite": SQLITE_INSTALL})
 
 
 def remove(connection):
-    with connection.cursor() as cursor:
-        for statement in _statements(connection.vendor, False):
-            cursor.execute(statement)
+    execute(connection, {"postgresql": [POSTGRES_REMOVE], "sqlite": SQLITE_REMOVE})

@@ -1,5 +1,7 @@
 """Database triggers that make the audit trail append-only (PostgreSQL and SQLite)."""
 
+from evaluation.triggers import execute
+
 TABLE = "releases_auditevent"
 
 POSTGRES_INSTALL = f"""
@@ -26,21 +28,9 @@ SQLITE_REMOVE = [
 ]
 
 
-def _statements(vendor, install):
-    if vendor == "postgresql":
-        return [POSTGRES_INSTALL if install else POSTGRES_REMOVE]
-    if vendor == "sqlite":
-        return SQLITE_INSTALL if install else SQLITE_REMOVE
-    raise RuntimeError(f"no append-only trigger for database {vendor!r}")
-
-
 def install(connection):
-    with connection.cursor() as cursor:
-        for statement in _statements(connection.vendor, True):
-            cursor.execute(statement)
+    execute(connection, {"postgresql": [POSTGRES_INSTALL], "sqlite": SQLITE_INSTALL})
 
 
 def remove(connection):
-    with connection.cursor() as cursor:
-        for statement in _statements(connection.vendor, False):
-            cursor.execute(statement)
+    execute(connection, {"postgresql": [POSTGRES_REMOVE], "sqlite": SQLITE_REMOVE})
