@@ -126,12 +126,13 @@ BENCHBOOK_BOOTSTRAP_SEED = 0
 CELERY_BROKER_URL = os.environ.get("CELERY_BROKER_URL", "filesystem://")
 if CELERY_BROKER_URL.startswith("filesystem://"):
     _broker_dir = VAR_DIR / "broker"
-    for _folder in ("queue", "processed"):  # kombu expects the folders to exist
+    for _folder in ("queue", "processed", "control"):  # kombu expects the folders to exist
         (_broker_dir / _folder).mkdir(parents=True, exist_ok=True)
     CELERY_BROKER_TRANSPORT_OPTIONS = {
         "data_folder_in": str(_broker_dir / "queue"),
         "data_folder_out": str(_broker_dir / "queue"),
         "data_folder_processed": str(_broker_dir / "processed"),
+        "control_folder": str(_broker_dir / "control"),
         "store_processed": False,
     }
 CELERY_TASK_DEFAULT_QUEUE = os.environ.get("BENCHBOOK_QUEUE", "benchbook")
