@@ -179,19 +179,6 @@ def true_positive_totals(records, *, area=0, max_detections=None, weights=None):
     return totals.reshape(records.n_slots, n_classes)
 
 
-def _tp_upto(slot, det, position, *, n, running=None):
-    """TP entries of the same slot at or before ``position``: their count, or their
-    total weight when ``running`` (the running sum of entry weights) is given.
-    Entries are sorted by ``slot * n + det``."""
-    keys = slot * n + det
-    upto = np.searchsorted(keys, slot * n + position, "right")
-    before = np.searchsorted(keys, slot * n - 1, "right")
-    if running is None:
-        return upto - before
-    total = np.r_[0, running]
-    return total[upto] - total[before]
-
-
 class _Counter:
     """Counted (non-ignored) detections at or before a position, per slot."""
 
@@ -396,19 +383,3 @@ def all_point_average_precision(points):
             env = envelope(tp / (fp + tp))
             out[t, k] = np.sum(np.diff(np.r_[0.0, recall]) * env)
     return out
-
-
-def average_precision(points, protocol):
-    r"""AP per slot and class under ``protocol``, NaN for an absent class.
-
-    .. math:: AP = \frac{1}{|\mathcal R|} \sum_{r \in \mathcal R} p_{\mathrm{interp}}(r)
-
-    over the protocol's recall points (see ``interpolated_precision``), or the
-    all-point area when it has none (see ``all_point_average_precision``).
-    """
-    if protocol.recall_points is None:
-        return all_point_average_precision(points)
-    precision = interpolated_precision(
-        points, protocol.recall_points, epsilon=protocol.precision_epsilon
-    )
-    return precision.mean(axis=1)

@@ -63,6 +63,21 @@ def with_baseline(detector, big_split, users, run_tasks, settings):
     return baseline
 
 
+def _lost_pedestrians(detector, big_split, users, run_tasks):
+    """Candidate 1.5: the baseline's detector with 60 % of its pedestrians lost, scored."""
+    split, _, detections = big_split
+    candidate = services.create_version(detector, "1.5", users["engineer"])
+    pedestrian = CLASSES.index("pedestrian") + 1
+    run_tasks(
+        services.submit_predictions,
+        candidate,
+        split,
+        upload("1.5.json", _lose(detections, pedestrian, 0.6, seed=1)),
+        users["engineer"],
+    )
+    return candidate
+
+
 RULES = [
     {"kind": "min_value", "metric": "AP50", "class": "pedestrian", "threshold": 0.8},
     {"kind": "max_drop", "metric": "AP", "class": "mean", "tolerance": 0.5},
@@ -74,16 +89,7 @@ def test_a_real_regression_is_flagged_and_needs_an_override(
     detector, big_split, users, run_tasks, with_baseline
 ):
     criteria.set_criteria(detector, users["lead"], RULES)
-    split, _, detections = big_split
-    candidate = services.create_version(detector, "1.5", users["engineer"])
-    pedestrian = CLASSES.index("pedestrian") + 1
-    run_tasks(
-        services.submit_predictions,
-        candidate,
-        split,
-        upload("1.5.json", _lose(detections, pedestrian, 0.6, seed=1)),
-        users["engineer"],
-    )
+    candidate = _lost_pedestrians(detector, big_split, users, run_tasks)
     outcomes = {(o.rule_index, o.class_name): o for o in Outcome.objects.filter(version=candidate)}
     assert outcomes[(0, "pedestrian")].status == "fail"
     from releases import selectors
@@ -203,15 +209,8 @@ def test_evidence_report_holds_rules_hashes_decision_and_chain(
     client, detector, big_split, users, run_tasks, with_baseline
 ):
     criteria.set_criteria(detector, users["lead"], RULES)
-    split, _, detections = big_split
-    candidate = services.create_version(detector, "1.5", users["engineer"])
-    run_tasks(
-        services.submit_predictions,
-        candidate,
-        split,
-        upload("1.5.json", _lose(detections, CLASSES.index("pedestrian") + 1, 0.6, seed=1)),
-        users["engineer"],
-    )
+    split, _, _ = big_split
+    candidate = _lost_pedestrians(detector, big_split, users, run_tasks)
     services.sign_off(candidate, users["lead"], "approved", "ship", justification="route closed")
     client.force_login(users["reviewer"])
     report = client.get(f"/versions/{candidate.pk}/evidence.json").json()
@@ -247,15 +246,7 @@ def test_compare_shows_the_judged_intervals(
     client, detector, big_split, users, run_tasks, with_baseline
 ):
     criteria.set_criteria(detector, users["lead"], [RULES[2]])
-    split, _, detections = big_split
-    candidate = services.create_version(detector, "1.5", users["engineer"])
-    run_tasks(
-        services.submit_predictions,
-        candidate,
-        split,
-        upload("1.5.json", _lose(detections, CLASSES.index("pedestrian") + 1, 0.6, seed=1)),
-        users["engineer"],
-    )
+    _lost_pedestrians(detector, big_split, users, run_tasks)
     client.force_login(users["lead"])
     response = client.get(f"/detectors/{detector.pk}/compare/")
     assert response.context["reference"] == with_baseline
