@@ -15,6 +15,7 @@ import numpy as np
 from django.conf import settings
 from django.core.exceptions import PermissionDenied
 from django.db import transaction
+from django.utils import timezone
 
 from evaluation import engine
 from evaluation.models import BenchmarkSplit, ClassScore, Scorecard, SliceScore
@@ -190,6 +191,7 @@ def judge(version):
     detector = version.detector
     criteria = current_criteria(detector)
     if criteria is None:
+        _mark_judged(version)
         return []
     baseline = selectors.baseline_of(detector)
     if baseline is not None and baseline.pk == version.pk:
@@ -220,7 +222,14 @@ def judge(version):
     with transaction.atomic():
         Outcome.objects.filter(version=version).delete()
         Outcome.objects.bulk_create(outcomes)
+        _mark_judged(version)
     return outcomes
+
+
+def _mark_judged(version):
+    """Pipelines wait for this: a verdict is final once judged after the last evaluation."""
+    version.judged_at = timezone.now()
+    type(version).objects.filter(pk=version.pk).update(judged_at=version.judged_at)
 
 
 def _judge_one(

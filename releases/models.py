@@ -65,6 +65,9 @@ class ModelVersion(models.Model):
         settings.AUTH_USER_MODEL, on_delete=models.PROTECT, related_name="+"
     )
     created_at = models.DateTimeField()
+    judged_at = models.DateTimeField(
+        null=True, blank=True, help_text="When the criteria were last applied to it."
+    )
 
     class Meta:
         constraints = [
@@ -220,3 +223,31 @@ class Outcome(models.Model):
 
     def __str__(self):
         return f"{self.version} rule {self.rule_index} on {self.split}: {self.status}"
+
+
+class ApiToken(models.Model):
+    """A personal API token. Only its SHA-256 is kept; the token is shown once.
+
+    Tokens are 256 random bits, so a plain hash (no salt, no slow KDF) is enough to
+    make a leaked table useless while keeping lookup one indexed query (common practice).
+    """
+
+    user = models.ForeignKey(
+        settings.AUTH_USER_MODEL, on_delete=models.CASCADE, related_name="api_tokens"
+    )
+    name = models.CharField(max_length=100, help_text="What the token is for, e.g. the CI job.")
+    prefix = models.CharField(max_length=12, help_text="The token's first characters, to tell.")
+    digest = models.CharField(max_length=64, unique=True)
+    created_at = models.DateTimeField(auto_now_add=True)
+    last_used_at = models.DateTimeField(null=True, blank=True)
+    revoked_at = models.DateTimeField(null=True, blank=True)
+
+    class Meta:
+        ordering = ["-created_at"]
+
+    def __str__(self):
+        return f"{self.prefix}… ({self.name}) of {self.user}"
+
+    @property
+    def active(self):
+        return self.revoked_at is None

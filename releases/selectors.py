@@ -545,3 +545,48 @@ def evidence_for(version):
             "decision_events": [e.hash for e in events],
         },
     }
+
+
+def version_states(versions):
+    """{version id: badge} for many versions of any detectors, in three queries."""
+    from .models import ModelVersion
+
+    versions = list(versions)
+    baselines = {}
+    approved = ModelVersion.objects.filter(
+        detector_id__in={v.detector_id for v in versions}, sign_off__decision="approved"
+    ).order_by("sign_off__decided_at")
+    for v in approved.only("id", "detector_id"):
+        baselines[v.detector_id] = v
+    blocked = blocked_versions(versions)
+    return {v.pk: state_of(v, baselines.get(v.detector_id), blocked) for v in versions}
+
+
+def verdict_of(version):
+    """What a pipeline waits for: whether scoring and judging are over, and the result.
+
+    ``pending`` until every evaluation has finished and the criteria were applied
+    after the last of them; then ``evaluation failed``, ``regression`` (a rule fails),
+    ``no criteria`` or ``no regression``.
+    """
+    from .models import Outcome
+
+    evaluations = evaluations_of(version)
+    outcomes = list(Outcome.objects.filter(version=version).values_list("status", flat=True))
+    counts = {status: outcomes.count(status) for status in Outcome.Status.values}
+    done = [e.finished_at for e in evaluations if e.finished and e.finished_at]
+    if not evaluations:
+        verdict = "no predictions"
+    elif len(done) < len(evaluations) or version.judged_at is None or version.judged_at < max(
+        done
+    ):
+        verdict = "pending"
+    elif any(e.state == "failed" for e in evaluations):
+        verdict = "evaluation failed"
+    elif counts["fail"]:
+        verdict = "regression"
+    elif not outcomes and version.detector.criteria.count() == 0:
+        verdict = "no criteria"
+    else:
+        verdict = "no regression"
+    return {"verdict": verdict, "evaluations": evaluations, "outcome_counts": counts}

@@ -1,5 +1,7 @@
 """Business logic of releases: who may do what, versions, prediction uploads."""
 
+import logging
+
 from django.core.exceptions import PermissionDenied
 from django.db import IntegrityError, transaction
 from django.utils import timezone
@@ -11,6 +13,8 @@ from evaluation.services import UploadError
 from . import audit, selectors
 from .models import AuditEvent, Detector, Membership, ModelVersion, PredictionSet, Team
 from .selectors import UPLOAD_ROLES
+
+log = logging.getLogger(__name__)
 
 
 def require_upload_right(user, detector):
@@ -104,7 +108,35 @@ def submit_predictions(version, split, uploaded, user):
             },
         )
         evaluation_services.request_evaluations(split, prediction_file, version.detector.protocols)
+        # Bytes scored before (another version's identical file) trigger no new
+        # evaluation, so nothing else would judge this version.
+        judge_if_complete(version.pk)
     return prediction_set
+
+
+def judge_if_complete(version_id):
+    """Queue judging (on commit) once none of the version's evaluations is pending."""
+    from evaluation.models import Evaluation
+
+    from .tasks import judge
+
+    sets = PredictionSet.objects.filter(version_id=version_id)
+    pending = (
+        Evaluation.objects.filter(
+            predictions_id__in=sets.values("predictions_id"), split_id__in=sets.values("split_id")
+        )
+        .exclude(state__in=["done", "failed"])
+        .exists()
+    )
+    if not pending:
+        transaction.on_commit(lambda: _send(judge, version_id))
+
+
+def _send(task, *args):
+    try:
+        task.delay(*args)
+    except Exception:  # broker down: judging can be re-run, it is idempotent
+        log.exception("could not queue %s%s", task.name, args)
 
 
 def submit_for_label(detector, label, split, uploaded, user, **version_fields):

@@ -45,34 +45,11 @@ def evaluation_failed(sender, evaluation, **kwargs):
 
 def judge_when_complete(sender, evaluation, **kwargs):
     """Once every evaluation of a version has finished, judge it (on commit)."""
-    from django.db import transaction
-
-    from evaluation.models import Evaluation
-
     from .models import PredictionSet
-    from .tasks import judge
+    from .services import judge_if_complete
 
     versions = PredictionSet.objects.filter(
         predictions_id=evaluation.predictions_id, split_id=evaluation.split_id
     ).values_list("version_id", flat=True)
     for version_id in set(versions):
-        sets = PredictionSet.objects.filter(version_id=version_id)
-        pending = (
-            Evaluation.objects.filter(
-                predictions_id__in=sets.values("predictions_id"),
-                split_id__in=sets.values("split_id"),
-            )
-            .exclude(state__in=["done", "failed"])
-            .exists()
-        )
-        if not pending:
-            transaction.on_commit(lambda pk=version_id: _send(judge, pk))
-
-
-def _send(task, *args):
-    import logging
-
-    try:
-        task.delay(*args)
-    except Exception:  # broker down: judging can be re-run, it is idempotent
-        logging.getLogger(__name__).exception("could not queue %s%s", task.name, args)
+        judge_if_complete(version_id)

@@ -152,7 +152,7 @@ class Command(BaseCommand):
     def _criteria(self):
         """The example rules, then the worker judges every version newer than the baseline."""
         from releases import criteria, selectors
-        from releases.signals import _send
+        from releases.services import _send
         from releases.tasks import judge
 
         lead = get_user_model().objects.get(username="lead")
