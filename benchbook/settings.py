@@ -35,6 +35,9 @@ INSTALLED_APPS = [
     "django.contrib.sessions",
     "django.contrib.messages",
     "django.contrib.staticfiles",
+    "rest_framework",
+    "drf_spectacular",
+    "drf_spectacular_sidecar",
     "evaluation",
     "releases",
     "frontend",
@@ -157,6 +160,46 @@ BENCHBOOK_WEBHOOK_ATTEMPTS = 4
 BENCHBOOK_WEBHOOK_BACKOFF_SECONDS = 2.0
 DEFAULT_FROM_EMAIL = os.environ.get("DEFAULT_FROM_EMAIL", "benchbook@localhost")
 EMAIL_BACKEND = os.environ.get("EMAIL_BACKEND", "django.core.mail.backends.console.EmailBackend")
+
+# The API (releases/api): tokens for pipelines, the session for the browser.
+REST_FRAMEWORK = {
+    "DEFAULT_AUTHENTICATION_CLASSES": [
+        "releases.api.auth.TokenAuthentication",
+        "rest_framework.authentication.SessionAuthentication",
+    ],
+    "DEFAULT_PERMISSION_CLASSES": ["rest_framework.permissions.IsAuthenticated"],
+    "DEFAULT_RENDERER_CLASSES": ["rest_framework.renderers.JSONRenderer"],
+    "DEFAULT_PARSER_CLASSES": [
+        "rest_framework.parsers.JSONParser",
+        "rest_framework.parsers.MultiPartParser",
+        "rest_framework.parsers.FormParser",
+    ],
+    "DEFAULT_PAGINATION_CLASS": "releases.api.pagination.Pages",
+    "DEFAULT_THROTTLE_CLASSES": ["releases.api.auth.TokenRateThrottle"],
+    "EXCEPTION_HANDLER": "releases.api.errors.handle",
+    "DEFAULT_SCHEMA_CLASS": "drf_spectacular.openapi.AutoSchema",
+    "UNAUTHENTICATED_USER": "django.contrib.auth.models.AnonymousUser",
+}
+# Requests per token (DRF rate syntax); the browser session is not limited.
+BENCHBOOK_TOKEN_RATE = os.environ.get("BENCHBOOK_TOKEN_RATE", "1200/minute")
+SPECTACULAR_SETTINGS = {
+    "TITLE": "Benchbook API",
+    "DESCRIPTION": "Upload detector predictions, follow their scoring, read scorecards, "
+    "verdicts and evidence, and record release decisions.",
+    "VERSION": "1",
+    "SERVE_INCLUDE_SCHEMA": False,
+    "SWAGGER_UI_DIST": "SIDECAR",
+    "SWAGGER_UI_FAVICON_HREF": "SIDECAR",
+    "COMPONENT_SPLIT_REQUEST": True,
+}
+# Throttle counters: shared by every web process when BENCHBOOK_CACHE_URL names a Redis.
+if os.environ.get("BENCHBOOK_CACHE_URL"):
+    CACHES = {
+        "default": {
+            "BACKEND": "django.core.cache.backends.redis.RedisCache",
+            "LOCATION": os.environ["BENCHBOOK_CACHE_URL"],
+        }
+    }
 
 LOGGING = {
     "version": 1,

@@ -3,5 +3,6 @@ from django.urls import include, path
 
 urlpatterns = [
     path("admin/", admin.site.urls),
+    path("api/", include("releases.api.urls")),
     path("", include("frontend.urls")),
 ]

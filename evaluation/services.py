@@ -21,7 +21,15 @@ log = logging.getLogger(__name__)
 
 
 class UploadError(ValueError):
-    """A request the platform refuses; the message says what and where."""
+    """A request the platform refuses; the message says what and where.
+
+    ``path`` optionally names the request field at fault (``"rules[2].threshold"``),
+    for API error bodies.
+    """
+
+    def __init__(self, message, *, path=""):
+        super().__init__(message)
+        self.path = path
 
 
 def _limit():
@@ -61,7 +69,11 @@ def load_split(*, name, revision, truth, images=None, description="", created_by
                 images_path, _, _ = spool(images, _limit(), images_dir)
         except TooLarge as e:
             raise UploadError(str(e)) from None
-        loaded = engine.load_truth(truth_path, images=images_path, fmt=_format_of(truth_path))
+        try:
+            loaded = engine.load_truth(truth_path, images=images_path, fmt=_format_of(truth_path))
+        except engine.InputError as e:
+            e.path = os.path.basename(e.path)  # the name as uploaded, not the spool folder
+            raise
         sha = loaded.content_hash()
         twin = BenchmarkSplit.objects.filter(sha256=sha).first()
         if twin is not None:

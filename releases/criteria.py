@@ -34,7 +34,9 @@ class CriteriaError(UploadError):
 
 
 def _fail(index, field, message):
-    raise CriteriaError(f"rule {index + 1}: field '{field}': {message}")
+    raise CriteriaError(
+        f"rule {index + 1}: field '{field}': {message}", path=f"rules[{index}].{field}"
+    )
 
 
 def _number(rule, index, field, low, high, default=None):
@@ -47,13 +49,13 @@ def _number(rule, index, field, low, high, default=None):
 def validate_rules(detector, rules):
     """Checked, normalised rules; errors name the rule and the field."""
     if not isinstance(rules, list) or not rules:
-        raise CriteriaError("criteria must be a non-empty list of rules")
+        raise CriteriaError("criteria must be a non-empty list of rules", path="rules")
     splits = {f"{s.name}:{s.revision}" for s in BenchmarkSplit.objects.all()}
     known = {"metric", "class", "split", "tag", "kind", "threshold", "tolerance", "confidence"}
     out = []
     for i, rule in enumerate(rules):
         if not isinstance(rule, dict):
-            raise CriteriaError(f"rule {i + 1}: must be an object")
+            raise CriteriaError(f"rule {i + 1}: must be an object", path=f"rules[{i}]")
         for key in rule:
             if key not in known:
                 _fail(i, key, f"unknown field; allowed: {', '.join(sorted(known))}")

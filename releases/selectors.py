@@ -577,9 +577,7 @@ def verdict_of(version):
     done = [e.finished_at for e in evaluations if e.finished and e.finished_at]
     if not evaluations:
         verdict = "no predictions"
-    elif len(done) < len(evaluations) or version.judged_at is None or version.judged_at < max(
-        done
-    ):
+    elif len(done) < len(evaluations) or version.judged_at is None or version.judged_at < max(done):
         verdict = "pending"
     elif any(e.state == "failed" for e in evaluations):
         verdict = "evaluation failed"
@@ -590,3 +588,54 @@ def verdict_of(version):
     else:
         verdict = "no regression"
     return {"verdict": verdict, "evaluations": evaluations, "outcome_counts": counts}
+
+
+def visible_audit_events(user):
+    """Reviewers (anywhere) read the whole trail; members read the events about their
+    teams' detectors, versions, prediction sets and evaluations, and split events."""
+    from django.db.models import CharField, Exists, OuterRef, Q, Value
+    from django.db.models.functions import Cast, Concat
+
+    from evaluation.models import Evaluation
+
+    from .models import AuditEvent, ModelVersion
+
+    events = AuditEvent.objects.all()
+    if not user.is_authenticated:
+        return events.none()
+    if user.is_superuser or Membership.objects.filter(user=user, role="reviewer").exists():
+        return events
+
+    def subjects(queryset, prefix):
+        return queryset.annotate(
+            subject_key=Concat(Value(prefix), Cast("pk", CharField()), output_field=CharField())
+        ).values("subject_key")
+
+    detectors = visible_detectors(user)
+    sets = PredictionSet.objects.filter(version__detector__in=detectors)
+    evaluations = Evaluation.objects.filter(
+        Exists(
+            sets.filter(predictions_id=OuterRef("predictions_id"), split_id=OuterRef("split_id"))
+        )
+    )
+    return events.filter(
+        Q(subject__startswith="split:")
+        | Q(subject__in=subjects(Detector.objects.filter(pk__in=detectors), "detector:"))
+        | Q(subject__in=subjects(ModelVersion.objects.filter(detector__in=detectors), "version:"))
+        | Q(subject__in=subjects(sets, "prediction-set:"))
+        | Q(subject__in=subjects(evaluations, "evaluation:"))
+    )
+
+
+def visible_evaluations(user):
+    """Evaluations of the prediction sets of visible detectors."""
+    from django.db.models import Exists, OuterRef
+
+    from evaluation.models import Evaluation
+
+    sets = PredictionSet.objects.filter(version__detector__in=visible_detectors(user))
+    return Evaluation.objects.filter(
+        Exists(
+            sets.filter(predictions_id=OuterRef("predictions_id"), split_id=OuterRef("split_id"))
+        )
+    )

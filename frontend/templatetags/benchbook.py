@@ -2,18 +2,11 @@
 
 from django import template
 
+from releases.templatetags.report import delta, score
+
 register = template.Library()
-ABSENT = "—"
-
-
-@register.filter
-def score(value):
-    return ABSENT if value is None else f"{value:.3f}"
-
-
-@register.filter
-def delta(value):
-    return ABSENT if value is None else f"{value:+.3f}"
+register.filter("score", score)
+register.filter("delta", delta)
 
 
 @register.filter

@@ -6,32 +6,55 @@ from django.db import migrations, models
 
 
 class Migration(migrations.Migration):
-
     dependencies = [
-        ('releases', '0006_detector_webhook'),
+        ("releases", "0006_detector_webhook"),
         migrations.swappable_dependency(settings.AUTH_USER_MODEL),
     ]
 
     operations = [
         migrations.AddField(
-            model_name='modelversion',
-            name='judged_at',
-            field=models.DateTimeField(blank=True, help_text='When the criteria were last applied to it.', null=True),
+            model_name="modelversion",
+            name="judged_at",
+            field=models.DateTimeField(
+                blank=True, help_text="When the criteria were last applied to it.", null=True
+            ),
         ),
         migrations.CreateModel(
-            name='ApiToken',
+            name="ApiToken",
             fields=[
-                ('id', models.BigAutoField(auto_created=True, primary_key=True, serialize=False, verbose_name='ID')),
-                ('name', models.CharField(help_text='What the token is for, e.g. the CI job.', max_length=100)),
-                ('prefix', models.CharField(help_text="The token's first characters, to tell.", max_length=12)),
-                ('digest', models.CharField(max_length=64, unique=True)),
-                ('created_at', models.DateTimeField(auto_now_add=True)),
-                ('last_used_at', models.DateTimeField(blank=True, null=True)),
-                ('revoked_at', models.DateTimeField(blank=True, null=True)),
-                ('user', models.ForeignKey(on_delete=django.db.models.deletion.CASCADE, related_name='api_tokens', to=settings.AUTH_USER_MODEL)),
+                (
+                    "id",
+                    models.BigAutoField(
+                        auto_created=True, primary_key=True, serialize=False, verbose_name="ID"
+                    ),
+                ),
+                (
+                    "name",
+                    models.CharField(
+                        help_text="What the token is for, e.g. the CI job.", max_length=100
+                    ),
+                ),
+                (
+                    "prefix",
+                    models.CharField(
+                        help_text="The token's first characters, to tell.", max_length=12
+                    ),
+                ),
+                ("digest", models.CharField(max_length=64, unique=True)),
+                ("created_at", models.DateTimeField(auto_now_add=True)),
+                ("last_used_at", models.DateTimeField(blank=True, null=True)),
+                ("revoked_at", models.DateTimeField(blank=True, null=True)),
+                (
+                    "user",
+                    models.ForeignKey(
+                        on_delete=django.db.models.deletion.CASCADE,
+                        related_name="api_tokens",
+                        to=settings.AUTH_USER_MODEL,
+                    ),
+                ),
             ],
             options={
-                'ordering': ['-created_at'],
+                "ordering": ["-created_at"],
             },
         ),
     ]

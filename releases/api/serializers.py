@@ -1,0 +1,296 @@
+"""What the API returns and accepts. Outputs are read-only views of the models;
+inputs are checked here for shape, then the services decide."""
+
+from rest_framework import serializers
+
+from evaluation.models import BenchmarkSplit, Evaluation
+from evaluation.services import UploadError
+
+from ..models import AuditEvent, Detector, ModelVersion, Outcome, PredictionSet, ReleaseCriteria
+from ..models import SignOff as SignOffModel
+
+# Outputs ---------------------------------------------------------------------------
+
+
+class DetectorSerializer(serializers.ModelSerializer):
+    team = serializers.CharField(source="team.name")
+    baseline = serializers.SerializerMethodField()
+
+    class Meta:
+        model = Detector
+        fields = [
+            "id",
+            "name",
+            "slug",
+            "team",
+            "description",
+            "classes",
+            "protocols",
+            "primary_protocol",
+            "baseline",
+        ]
+
+    def get_baseline(self, detector) -> int | None:
+        return self.context.get("baselines", {}).get(detector.pk)
+
+
+class SplitSerializer(serializers.ModelSerializer):
+    class Meta:
+        model = BenchmarkSplit
+        fields = [
+            "id",
+            "name",
+            "revision",
+            "description",
+            "classes",
+            "class_counts",
+            "tags",
+            "image_count",
+            "box_count",
+            "sha256",
+            "source_format",
+            "created_by",
+            "frozen_at",
+        ]
+
+
+class SignOffSerializer(serializers.ModelSerializer):
+    version = serializers.IntegerField(source="version_id")
+    decided_by = serializers.CharField(source="decided_by.username")
+
+    class Meta:
+        model = SignOffModel
+        fields = [
+            "id",
+            "version",
+            "decision",
+            "comment",
+            "override",
+            "justification",
+            "failing_rules",
+            "evidence",
+            "decided_by",
+            "decided_at",
+        ]
+
+
+class VersionSerializer(serializers.ModelSerializer):
+    detector = serializers.IntegerField(source="detector_id")
+    created_by = serializers.CharField(source="created_by.username")
+    state = serializers.SerializerMethodField(
+        help_text="baseline, signed off, rejected, blocked (fails a rule) or candidate"
+    )
+    sign_off = serializers.SerializerMethodField()
+
+    class Meta:
+        model = ModelVersion
+        fields = [
+            "id",
+            "detector",
+            "label",
+            "source_commit",
+            "training_ref",
+            "notes",
+            "created_by",
+            "created_at",
+            "judged_at",
+            "state",
+            "sign_off",
+        ]
+
+    def get_state(self, version) -> str:
+        return self.context["states"][version.pk]
+
+    def get_sign_off(self, version) -> SignOffSerializer(allow_null=True):
+        decision = getattr(version, "sign_off", None)
+        return SignOffSerializer(decision).data if decision else None
+
+
+class EvaluationSerializer(serializers.ModelSerializer):
+    split = serializers.IntegerField(source="split_id")
+    split_name = serializers.CharField(source="split.__str__")
+    predictions_sha256 = serializers.CharField(source="predictions.sha256")
+    error = serializers.SerializerMethodField()
+
+    class Meta:
+        model = Evaluation
+        fields = [
+            "id",
+            "split",
+            "split_name",
+            "protocol",
+            "state",
+            "progress",
+            "attempts",
+            "error",
+            "error_detail",
+            "engine_version",
+            "predictions_sha256",
+            "queued_at",
+            "started_at",
+            "finished_at",
+        ]
+
+    def get_error(self, evaluation) -> str:
+        return evaluation.error if evaluation.state == Evaluation.State.FAILED else ""
+
+
+class PredictionSetSerializer(serializers.ModelSerializer):
+    version = serializers.IntegerField(source="version_id")
+    version_label = serializers.CharField(source="version.label")
+    detector = serializers.IntegerField(source="version.detector_id")
+    split = serializers.IntegerField(source="split_id")
+    split_name = serializers.CharField(source="split.__str__")
+    sha256 = serializers.CharField(source="predictions.sha256")
+    size = serializers.IntegerField(source="predictions.size")
+    file_name = serializers.CharField(source="predictions.original_name")
+    uploaded_by = serializers.CharField(source="uploaded_by.username")
+
+    class Meta:
+        model = PredictionSet
+        fields = [
+            "id",
+            "version",
+            "version_label",
+            "detector",
+            "split",
+            "split_name",
+            "sha256",
+            "size",
+            "file_name",
+            "uploaded_by",
+            "uploaded_at",
+        ]
+
+
+class OutcomeSerializer(serializers.ModelSerializer):
+    version = serializers.IntegerField(source="version_id")
+    rule_number = serializers.SerializerMethodField()
+    criteria_version = serializers.IntegerField(source="criteria.number")
+    split = serializers.IntegerField(source="split_id")
+    split_name = serializers.CharField(source="split.__str__")
+    baseline = serializers.IntegerField(source="baseline_id", allow_null=True)
+    interval = serializers.SerializerMethodField()
+
+    class Meta:
+        model = Outcome
+        fields = [
+            "id",
+            "version",
+            "rule_number",
+            "criteria_version",
+            "rule",
+            "split",
+            "split_name",
+            "class_name",
+            "status",
+            "value",
+            "baseline",
+            "baseline_value",
+            "interval",
+            "detail",
+            "judged_at",
+        ]
+
+    def get_rule_number(self, outcome) -> int:
+        return outcome.rule_index + 1
+
+    def get_interval(self, outcome) -> list[float] | None:
+        return None if outcome.low is None else [outcome.low, outcome.high]
+
+
+class CriteriaSerializer(serializers.ModelSerializer):
+    detector = serializers.IntegerField(source="detector_id")
+    created_by = serializers.CharField(source="created_by.username")
+
+    class Meta:
+        model = ReleaseCriteria
+        fields = ["id", "detector", "number", "rules", "created_by", "created_at"]
+
+
+class AuditEventSerializer(serializers.ModelSerializer):
+    class Meta:
+        model = AuditEvent
+        fields = [
+            "id",
+            "kind",
+            "actor",
+            "created_at",
+            "subject",
+            "payload",
+            "payload_digest",
+            "previous_hash",
+            "hash",
+        ]
+
+
+class VerdictSerializer(serializers.Serializer):
+    version = serializers.IntegerField()
+    verdict = serializers.ChoiceField(
+        [
+            "pending",
+            "no predictions",
+            "evaluation failed",
+            "regression",
+            "no criteria",
+            "no regression",
+        ]
+    )
+    evaluations = EvaluationSerializer(many=True)
+    outcome_counts = serializers.DictField(child=serializers.IntegerField())
+    failing = OutcomeSerializer(many=True)
+
+
+class FreeForm(serializers.Serializer):
+    """Documented as an object; its keys are described by the endpoint."""
+
+    def to_representation(self, instance):
+        return instance
+
+
+# Inputs ----------------------------------------------------------------------------
+
+
+class VersionInput(serializers.Serializer):
+    detector = serializers.IntegerField()
+    label = serializers.CharField(max_length=64)
+    source_commit = serializers.CharField(max_length=64, required=False, default="")
+    training_ref = serializers.CharField(max_length=200, required=False, default="")
+    notes = serializers.CharField(required=False, default="", allow_blank=True)
+
+
+class PredictionSetInput(serializers.Serializer):
+    """A version is named by its label and created if new (as by the upload page)."""
+
+    detector = serializers.IntegerField()
+    version = serializers.CharField(max_length=64, help_text="Version label")
+    split = serializers.IntegerField()
+    predictions = serializers.FileField(help_text="COCO-style results JSON or a CSV table")
+    source_commit = serializers.CharField(max_length=64, required=False, default="")
+    notes = serializers.CharField(required=False, default="", allow_blank=True)
+
+
+class SplitInput(serializers.Serializer):
+    name = serializers.SlugField(max_length=64)
+    revision = serializers.IntegerField(min_value=1, max_value=2**31 - 1)
+    truth = serializers.FileField(help_text="COCO-style JSON, or a boxes CSV")
+    images = serializers.FileField(required=False, help_text="Images CSV, with a boxes CSV")
+    description = serializers.CharField(required=False, default="", allow_blank=True)
+
+
+class SignOffInput(serializers.Serializer):
+    decision = serializers.ChoiceField(SignOffModel.Decision.values)
+    comment = serializers.CharField()
+    justification = serializers.CharField(required=False, default="", allow_blank=True)
+
+
+class CriteriaInput(serializers.Serializer):
+    rules = serializers.ListField(child=serializers.DictField(), allow_empty=False)
+
+
+class TokenOutput(serializers.Serializer):
+    id = serializers.IntegerField()
+    name = serializers.CharField()
+
+
+__all__ = ["UploadError"]
