@@ -1,0 +1,315 @@
+"""The pipeline client end to end: a live server, a real worker, every exit code.
+
+The client runs as a separate process from a copy of releases/client/ alone, with
+Django made unimportable, as on a build machine that has only Python.
+"""
+
+import http.server
+import json
+import os
+import shutil
+import subprocess
+import sys
+import threading
+
+import pytest
+
+from evaluation import services as evaluation_services
+from releases import tokens
+
+from .conftest import detections_for, upload
+from .test_worker import worker  # noqa: F401
+
+pytestmark = [pytest.mark.integration, pytest.mark.django_db(transaction=True)]
+ROOT = os.path.dirname(os.path.dirname(os.path.dirname(os.path.abspath(__file__))))
+NO_DJANGO = (
+    "import os, runpy, sys; sys.path.insert(0, os.getcwd()); sys.modules['django'] = None; "
+    "sys.argv[0] = 'client'; "
+    "runpy.run_module('releases.client', run_name='__main__', alter_sys=True)"
+)
+
+
+@pytest.fixture
+def client_home(tmp_path):
+    home = tmp_path / "client-only"
+    shutil.copytree(os.path.join(ROOT, "releases", "client"), home / "releases" / "client")
+    (home / "releases" / "__init__.py").write_text("")
+    return home
+
+
+@pytest.fixture
+def run(client_home, tmp_path):
+    def run(*args, timeout=240):
+        done = subprocess.run(
+            [sys.executable, "-I", "-c", NO_DJANGO, *map(str, args)],
+            cwd=client_home,
+            capture_output=True,
+            text=True,
+            timeout=timeout,
+        )
+        return done.returncode, done.stdout, done.stderr
+
+    return run
+
+
+def _write(path, content):
+    path.write_text(json.dumps(content))
+    return path
+
+
+@pytest.mark.usefixtures("worker")
+def test_a_pipeline_gates_on_the_verdict(
+    live_server,
+    detector,
+    split_truth,
+    users,
+    run,
+    tmp_path,  # noqa: F811
+):
+    evaluation_services.load_split(
+        name="bay-night", revision=1, truth=upload("bay-night.json", split_truth)
+    )
+    _, token = tokens.create_token(users["engineer"], "pipeline")
+    _, lead_token = tokens.create_token(users["lead"], "lead")
+    connect = ["--url", live_server.url, "--token", token]
+    good = _write(tmp_path / "good.json", detections_for(split_truth))
+
+    # 0: no criteria yet, nothing can regress.
+    code, out, err = run(
+        "submit",
+        *connect,
+        "--detector",
+        "Forward camera",
+        "--version",
+        "1.0",
+        "--split",
+        "bay-night",
+        "--predictions",
+        good,
+        "--wait",
+        "--poll",
+        "0.3",
+    )
+    assert code == 0, out + err
+    assert "1.0: no criteria" in out and "AP50" in out and "bay-night rev 1" in out
+    assert "[##############################] 100%" in err  # the progress bar, in a log
+
+    # The lead approves 1.0 and sets criteria, with the same client's server.
+    from rest_framework.test import APIClient
+
+    lead = APIClient()
+    lead.credentials(HTTP_AUTHORIZATION=f"Bearer {lead_token}")
+    version_id = lead.get("/api/v1/versions/", {"label": "1.0"}).json()["results"][0]["id"]
+    assert (
+        lead.post(
+            f"/api/v1/versions/{version_id}/sign-off/",
+            {"decision": "approved", "comment": "first"},
+            format="json",
+        ).status_code
+        == 201
+    )
+    rules = [{"metric": "AP", "class": "mean", "split": "*", "kind": "max_drop", "tolerance": 0.5}]
+    assert (
+        lead.post(
+            f"/api/v1/detectors/{detector.pk}/criteria/", {"rules": rules}, format="json"
+        ).status_code
+        == 201
+    )
+
+    # 3: a version that lost most cars regresses.
+    lost = split_truth["categories"][0]["id"]
+    worse = [d for d in detections_for(split_truth) if d["category_id"] != lost]
+    code, out, err = run(
+        "submit",
+        *connect,
+        "--detector",
+        "Forward camera",
+        "--version",
+        "1.1",
+        "--split",
+        f"bay-night@1={_write(tmp_path / 'worse.json', worse)}",
+        "--wait",
+        "--poll",
+        "0.3",
+    )
+    assert code == 3, out + err
+    assert "1.1: regression (blocked)" in out and "fail" in out
+    assert "do not replace" in out  # the caution beside a release verdict
+
+    # 0 again: the same predictions as the baseline, under a new label, pass.
+    code, out, err = run(
+        "submit",
+        *connect,
+        "--detector",
+        "Forward camera",
+        "--version",
+        "1.2",
+        "--split",
+        "bay-night",
+        "--predictions",
+        good,
+        "--wait",
+        "--poll",
+        "0.3",
+    )
+    assert code == 0, out + err
+    assert "1.2: no regression" in out
+
+    # 2: predictions the worker refuses; the message names file, record and field.
+    bad = detections_for(split_truth)
+    bad[4]["bbox"][2] = -3
+    code, out, err = run(
+        "submit",
+        *connect,
+        "--detector",
+        "Forward camera",
+        "--version",
+        "1.3",
+        "--split",
+        "bay-night",
+        "--predictions",
+        _write(tmp_path / "bad.json", bad),
+        "--wait",
+        "--poll",
+        "0.3",
+    )
+    assert code == 2, out + err
+    assert "bad.json: record 4: field 'bbox': width must be > 0, got -3" in out
+
+    # status, compare and report read the same server.
+    code, out, _ = run("status", *connect, "--detector", "Forward camera", "1.1")
+    assert code == 3 and "regression" in out
+    code, out, _ = run("compare", *connect, "--detector", "Forward camera", "1.0", "1.1")
+    assert code == 0 and "mean" in out and "1.0" in out and "delta" in out
+    code, out, _ = run("report", *connect, "--detector", "Forward camera", "1.1")
+    report = json.loads(out)
+    assert code == 0 and report["version"] == "1.1" and report["outcomes"][0]["status"] == "fail"
+    target = tmp_path / "report.html"
+    code, out, _ = run(
+        "report",
+        *connect,
+        "--detector",
+        "Forward camera",
+        "1.0",
+        "--format",
+        "html",
+        "--output",
+        target,
+    )
+    assert code == 0 and "Evidence report" in target.read_text()
+
+    # 2: bad input caught by the server, with its message.
+    code, _, err = run(
+        "submit",
+        *connect,
+        "--detector",
+        "Forward camera",
+        "--version",
+        "1.4",
+        "--split",
+        "no-such-split",
+        "--predictions",
+        good,
+    )
+    assert code == 2 and "no benchmark split 'no-such-split'" in err
+    code, _, err = run(
+        "status",
+        "--url",
+        live_server.url,
+        "--token",
+        "bbk_wrong",
+        "--detector",
+        "Forward camera",
+        "1.0",
+    )
+    assert code == 2 and "HTTP 401: Authorization header: unknown or revoked token" in err
+    reviewer_token = tokens.create_token(users["reviewer"], "r")[1]
+    code, _, err = run(
+        "submit",
+        "--url",
+        live_server.url,
+        "--token",
+        reviewer_token,
+        "--detector",
+        "Forward camera",
+        "--version",
+        "1.4",
+        "--split",
+        "bay-night",
+        "--predictions",
+        good,
+    )
+    assert code == 2 and "HTTP 403" in err and "only engineers and leads" in err
+
+
+def test_usage_errors_are_bad_input(run, tmp_path):
+    code, _, err = run("submit", "--url", "http://127.0.0.1:9", "--token", "t")
+    assert code == 2 and "required" in err
+    code, _, err = run(
+        "submit",
+        "--url",
+        "http://127.0.0.1:9",
+        "--token",
+        "t",
+        "--detector",
+        "d",
+        "--version",
+        "1",
+        "--split",
+        "a",
+        "--split",
+        "b",
+        "--predictions",
+        tmp_path,
+    )
+    assert code == 2 and "give one --predictions per --split" in err
+    code, _, err = run("status", "--detector", "d", "1")
+    assert code == 2 and "--url and --token" in err
+
+
+def test_unreachable_servers_and_server_errors_are_failures(run, tmp_path):
+    # Nothing listens on the discard port: after its retries the client gives up with 1.
+    code, _, err = run(
+        "status",
+        "--url",
+        "http://127.0.0.1:9",
+        "--token",
+        "t",
+        "--detector",
+        "d",
+        "1",
+        "--timeout",
+        "2",
+        "--retries",
+        "1",
+    )
+    assert code == 1 and "cannot reach" in err
+
+    class Broken(http.server.BaseHTTPRequestHandler):
+        def do_GET(self):
+            self.send_response(503)
+            self.send_header("Content-Type", "application/json")
+            self.end_headers()
+            self.wfile.write(b'{"status": 503, "message": "down for maintenance", "errors": []}')
+
+        def log_message(self, *args):
+            pass
+
+    server = http.server.ThreadingHTTPServer(("127.0.0.1", 0), Broken)
+    threading.Thread(target=server.serve_forever, daemon=True).start()
+    try:
+        code, _, err = run(
+            "status",
+            "--url",
+            f"http://127.0.0.1:{server.server_port}",
+            "--token",
+            "t",
+            "--detector",
+            "d",
+            "1",
+            "--retries",
+            "1",
+        )
+    finally:
+        server.shutdown()
+    assert code == 1 and "HTTP 503: down for maintenance" in err
