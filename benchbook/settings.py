@@ -191,6 +191,7 @@ SPECTACULAR_SETTINGS = {
     "SWAGGER_UI_DIST": "SIDECAR",
     "SWAGGER_UI_FAVICON_HREF": "SIDECAR",
     "COMPONENT_SPLIT_REQUEST": True,
+    "SCHEMA_PATH_PREFIX": r"/api/v1",  # tags from the resource: detectors, versions, …
 }
 # Throttle counters: shared by every web process when BENCHBOOK_CACHE_URL names a Redis.
 if os.environ.get("BENCHBOOK_CACHE_URL"):

@@ -40,8 +40,15 @@ class Command(BaseCommand):
         else:
             password = password or secrets.token_urlsafe(9)
             self._seed(password)
+            from django.contrib.auth import get_user_model
+
+            from releases import tokens
+
+            engineer = get_user_model().objects.get(username="engineer")
+            _, token = tokens.create_token(engineer, "demo pipeline")
             self.stdout.write(
                 f"demo users lead, engineer, reviewer — password: {password}\n"
+                f"API token of engineer (for python -m releases.client): {token}\n"
                 "evaluations are queued; the worker scores them"
                 + ("" if wait else "; rerun with --wait once a worker runs, for the sign-offs")
             )
