@@ -429,3 +429,52 @@ def test_the_docs_page_is_served_without_a_cdn(client):
     page = client.get("/api/docs/").content.decode()
     assert "swagger-ui" in page and "/api/schema/" in page
     assert "cdn" not in page.lower() and "unpkg" not in page.lower()
+
+
+def test_list_queries_stay_flat_as_rows_grow(api, detector, split, split_truth, users, run_tasks):
+    """Like the pages (test_dashboard.py): a list costs the same queries for 2 or 6 rows."""
+    from django.db import connection
+    from django.test.utils import CaptureQueriesContext
+
+    client = api("reviewer")
+    client.get(API + "me/")  # authenticate once, so last_used_at is not written below
+    lists = [
+        "detectors/",
+        "versions/",
+        "prediction-sets/",
+        "evaluations/",
+        "outcomes/",
+        "sign-offs/",
+        "audit-events/",
+    ]
+    criteria.set_criteria(
+        detector,
+        users["lead"],
+        [{"metric": "AP", "class": "*", "split": "*", "kind": "min_value", "threshold": 0.9}],
+    )
+
+    def add_versions(labels):
+        for label in labels:
+            version = services.create_version(detector, label, users["engineer"])
+            dets = [d for d in detections_for(split_truth) if d["score"] > 0.1 * len(label)]
+            run_tasks(
+                services.submit_predictions,
+                version,
+                split,
+                file(f"{label}.json", dets),
+                users["engineer"],
+            )
+            services.sign_off(version, users["lead"], "rejected", "no")
+
+    def counts():
+        out = {}
+        for path in lists:
+            with CaptureQueriesContext(connection) as queries:
+                assert client.get(API + path).status_code == 200
+            out[path] = len(queries)
+        return out
+
+    add_versions(["a", "bb"])
+    few = counts()
+    add_versions(["ccc", "dddd", "e", "ff"])
+    assert counts() == few
