@@ -13,6 +13,7 @@ urlpatterns = [
     path("detectors/<int:detector_id>/upload/", views.upload_predictions, name="upload"),
     path("detectors/<int:detector_id>/compare/", views.compare, name="compare"),
     path("detectors/<int:detector_id>/criteria/", views.release_criteria, name="criteria"),
+    path("detectors/<int:detector_id>/webhook/", views.webhook, name="webhook"),
     path("versions/<int:version_id>/", views.version, name="version"),
     path("versions/<int:version_id>/sign-off/", views.sign_off, name="sign-off"),
     path("versions/<int:version_id>/evidence/", views.evidence, name="evidence"),

@@ -336,3 +336,21 @@ def api_tokens(request):
     )
     response["Cache-Control"] = "no-store"  # it may hold a new token
     return response
+
+
+@login_required
+def webhook(request, detector_id):
+    from releases import notify
+
+    found = _detector_or_404(request.user, detector_id)
+    if request.method != "POST":
+        return redirect("criteria", detector_id=found.pk)
+    url = request.POST.get("url", "").strip()
+    try:
+        secret = request.POST.get("secret") or found.webhook_secret  # empty: keep the old one
+        notify.set_webhook(found, request.user, url, secret)
+    except ValueError as e:
+        messages.error(request, f"webhook: {e}")
+    else:
+        messages.success(request, f"webhook of {found} {'set' if url else 'removed'}")
+    return redirect("criteria", detector_id=found.pk)

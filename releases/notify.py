@@ -30,9 +30,13 @@ def signature(secret, body):
 
 
 def set_webhook(detector, user, url, secret):
-    """Leads point a detector's judgements at a URL; both fields are checked."""
+    """Leads point a detector's judgements at a URL (empty: none); both are checked."""
     if selectors.role_in(user, detector.team) != Membership.Role.LEAD:
         raise PermissionDenied(f"{user} may not set the webhook of {detector}: leads only")
+    if not url:  # no URL: judgements are only e-mailed
+        detector.webhook_url, detector.webhook_secret = "", ""
+        detector.save(update_fields=["webhook_url", "webhook_secret"])
+        return
     try:
         URLValidator(schemes=["http", "https"])(url)
     except ValidationError:

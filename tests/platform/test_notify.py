@@ -93,3 +93,25 @@ def test_only_leads_set_the_webhook(detector, users):
         notify.set_webhook(
             detector, users["engineer"], "http://example.invalid/hook", "s3cret-s3cret-s3cret"
         )
+
+
+def test_leads_set_and_remove_the_webhook_on_the_criteria_page(client, detector, users):
+    from django.urls import reverse
+
+    url = reverse("webhook", args=[detector.pk])
+    client.force_login(users["engineer"])
+    assert (
+        client.post(url, {"url": "https://ci.invalid/hook", "secret": "x" * 16}).status_code == 403
+    )
+    client.force_login(users["lead"])
+    page = client.post(url, {"url": "https://ci.invalid/hook", "secret": "short"}, follow=True)
+    assert "webhook: the webhook secret must have at least 16 characters" in page.content.decode()
+    client.post(url, {"url": "https://ci.invalid/hook", "secret": "s" * 20})
+    client.post(url, {"url": "https://ci.invalid/other", "secret": ""})  # keeps the secret
+    detector.refresh_from_db()
+    assert (detector.webhook_url, detector.webhook_secret) == ("https://ci.invalid/other", "s" * 20)
+    page = client.get(reverse("criteria", args=[detector.pk])).content.decode()
+    assert "https://ci.invalid/other" in page and "s" * 20 not in page
+    client.post(url, {"url": "", "secret": ""})
+    detector.refresh_from_db()
+    assert (detector.webhook_url, detector.webhook_secret) == ("", "")
