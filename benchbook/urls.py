@@ -6,3 +6,5 @@ urlpatterns = [
     path("api/", include("releases.api.urls")),
     path("", include("frontend.urls")),
 ]
+
+handler404 = "releases.api.errors.not_found"

@@ -36,6 +36,22 @@ class TooLarge(Exception):
     pass
 
 
+def fitted_name(name, limit=200):
+    """The upload's base name, shortened to ``limit`` UTF-8 bytes (file systems allow
+    255) with its extension kept.
+
+    >>> name = fitted_name("uploads/" + "é" * 200 + ".json")
+    >>> name[-8:], len(name.encode())
+    ('ééé.json', 199)
+    """
+    name = os.path.basename(name) or "upload"
+    if len(name.encode()) <= limit:
+        return name
+    stem, extension = os.path.splitext(name)
+    room = limit - len(extension.encode())
+    return stem.encode()[:room].decode(errors="ignore") + extension
+
+
 def spool(uploaded, limit, directory):
     """Copy an upload into ``directory`` under its own base name, in blocks, hashing
     as it goes (so engine errors name the file as the user knows it).
@@ -45,7 +61,7 @@ def spool(uploaded, limit, directory):
     """
     digest = hashlib.sha256()
     size = 0
-    path = os.path.join(directory, os.path.basename(uploaded.name) or "upload")
+    path = os.path.join(directory, fitted_name(uploaded.name))
     chunks = (
         uploaded.chunks()
         if hasattr(uploaded, "chunks")
@@ -56,8 +72,7 @@ def spool(uploaded, limit, directory):
             size += len(chunk)
             if size > limit:
                 raise TooLarge(
-                    f"{os.path.basename(uploaded.name)}: larger than the upload limit "
-                    f"of {limit:,} bytes"
+                    f"{os.path.basename(path)}: larger than the upload limit of {limit:,} bytes"
                 )
             digest.update(chunk)
             out.write(chunk)

@@ -46,10 +46,25 @@ def _number(rule, index, field, low, high, default=None):
     return float(value)
 
 
+def _storable_text(value, path):
+    """Refuse strings a database cannot keep: PostgreSQL refuses NUL in text, and UTF-8
+    has no encoding for a lone surrogate (common practice)."""
+    if isinstance(value, dict):
+        for key, item in value.items():
+            _storable_text(key, path)
+            _storable_text(item, f"{path}.{key}")
+    elif isinstance(value, list):
+        for i, item in enumerate(value):
+            _storable_text(item, f"{path}[{i}]")
+    elif isinstance(value, str) and any(c == "\x00" or "\ud800" <= c <= "\udfff" for c in value):
+        raise CriteriaError(f"{path}: NUL and surrogate characters are not allowed", path=path)
+
+
 def validate_rules(detector, rules):
     """Checked, normalised rules; errors name the rule and the field."""
     if not isinstance(rules, list) or not rules:
         raise CriteriaError("criteria must be a non-empty list of rules", path="rules")
+    _storable_text(rules, "rules")
     splits = {f"{s.name}:{s.revision}" for s in BenchmarkSplit.objects.all()}
     known = {"metric", "class", "split", "tag", "kind", "threshold", "tolerance", "confidence"}
     out = []

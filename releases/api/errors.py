@@ -10,6 +10,8 @@ import logging
 from django.core.exceptions import ObjectDoesNotExist
 from django.core.exceptions import PermissionDenied as DjangoPermissionDenied
 from django.http import Http404
+from drf_spectacular.openapi import AutoSchema
+from drf_spectacular.utils import OpenApiResponse
 from rest_framework import exceptions
 from rest_framework.response import Response
 from rest_framework.views import exception_handler
@@ -79,3 +81,69 @@ def handle(exc, context):
         code = "invalid"
     response.data = body(response.status_code, code, _flatten(detail) or [("", "error")])
     return response
+
+
+def not_found(request, exception=None):
+    """The project's 404 handler: the API's error body under /api/, else Django's page
+    (a path that matches no route, e.g. ``/api/v1/versions/abc/``, never reaches DRF)."""
+    from django.http import JsonResponse
+    from django.views.defaults import page_not_found
+
+    if request.path.startswith("/api/"):
+        return JsonResponse(
+            body(404, "not_found", [("", f"no such URL: {request.path}")]), status=404
+        )
+    return page_not_found(request, exception)
+
+
+# The schema ------------------------------------------------------------------------
+
+DESCRIPTIONS = {
+    400: "Invalid input; each entry of errors names a field",
+    401: "No token, or an unknown or revoked one",
+    403: "The user's role does not allow this",
+    404: "No such object, or one of another team",
+    409: "Not allowed in the object's present state",
+    413: "The upload is over the limit",
+    429: "Too many requests with this token",
+}
+
+
+def error_response(status_code):
+    """A documented error response, for statuses an operation's shape does not imply."""
+    from .serializers import ErrorSerializer
+
+    return OpenApiResponse(ErrorSerializer, description=DESCRIPTIONS[status_code])
+
+
+class ApiSchema(AutoSchema):
+    """drf-spectacular's schema, plus the error responses (``body``) an operation can give:
+    401 and 429 always, 400 with input, 403 for writes, 404 with a path id, a page or a
+    format. Others (404 for ids in the body, 409, 413) are declared on the view."""
+
+    def get_operation(self, path, path_regex, path_prefix, method, registry):
+        from .serializers import ErrorSerializer
+
+        operation = super().get_operation(path, path_regex, path_prefix, method, registry)
+        if operation is None:
+            return None
+        parameters = operation.get("parameters", [])
+        query = {p["name"] for p in parameters if p["in"] == "query"}
+        statuses = [401, 429]
+        if "requestBody" in operation or query - {"page", "page_size", "format"}:
+            statuses.append(400)
+        if self.method != "GET":
+            statuses.append(403)
+        if any(p["in"] == "path" for p in parameters) or query & {"page", "format"}:
+            statuses.append(404)
+        error = self.resolve_serializer(ErrorSerializer, "response").ref
+        for status_code in statuses:
+            operation["responses"].setdefault(
+                str(status_code),
+                {
+                    "description": DESCRIPTIONS[status_code],
+                    "content": {"application/json": {"schema": error}},
+                },
+            )
+        operation["responses"] = dict(sorted(operation["responses"].items()))
+        return operation

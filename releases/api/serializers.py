@@ -4,7 +4,6 @@ inputs are checked here for shape, then the services decide."""
 from rest_framework import serializers
 
 from evaluation.models import BenchmarkSplit, Evaluation
-from evaluation.services import UploadError
 
 from ..models import AuditEvent, Detector, ModelVersion, Outcome, PredictionSet, ReleaseCriteria
 from ..models import SignOff as SignOffModel
@@ -241,11 +240,22 @@ class VerdictSerializer(serializers.Serializer):
     failing = OutcomeSerializer(many=True)
 
 
-class FreeForm(serializers.Serializer):
-    """Documented as an object; its keys are described by the endpoint."""
+class ErrorItemSerializer(serializers.Serializer):
+    path = serializers.CharField(help_text="The field, e.g. rules[0].threshold; '' for the request")
+    message = serializers.CharField()
 
-    def to_representation(self, instance):
-        return instance
+
+class ErrorSerializer(serializers.Serializer):
+    """The body of every refusal; for a bad file, ``file``, ``record`` and ``field`` say
+    where in the file."""
+
+    status = serializers.IntegerField()
+    code = serializers.CharField()
+    message = serializers.CharField()
+    errors = ErrorItemSerializer(many=True)
+    file = serializers.CharField(required=False)
+    record = serializers.CharField(required=False)
+    field = serializers.CharField(required=False)
 
 
 # Inputs ----------------------------------------------------------------------------
@@ -286,11 +296,3 @@ class SignOffInput(serializers.Serializer):
 
 class CriteriaInput(serializers.Serializer):
     rules = serializers.ListField(child=serializers.DictField(), allow_empty=False)
-
-
-class TokenOutput(serializers.Serializer):
-    id = serializers.IntegerField()
-    name = serializers.CharField()
-
-
-__all__ = ["UploadError"]

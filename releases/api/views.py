@@ -4,12 +4,14 @@ Reads are scoped exactly as the pages are (``selectors.visible_*``: other teams'
 objects are 404); writes go through the same services, which check the role.
 """
 
+import datetime
+
 from django.conf import settings
 from django.db.models import Exists, OuterRef
 from django.template.loader import render_to_string
 from django.utils.dateparse import parse_datetime
 from drf_spectacular.types import OpenApiTypes
-from drf_spectacular.utils import OpenApiParameter, extend_schema
+from drf_spectacular.utils import OpenApiParameter, extend_schema, extend_schema_view
 from rest_framework import exceptions, generics, renderers
 from rest_framework.response import Response
 from rest_framework.views import APIView
@@ -21,7 +23,7 @@ from evaluation.models import BenchmarkSplit, Evaluation
 from .. import criteria, selectors, services
 from ..models import ModelVersion, Outcome, PredictionSet, SignOff
 from . import serializers as s
-from .errors import body
+from .errors import ApiSchema, body, error_response
 
 CAUTION = (
     "Benchmark metrics support, and do not replace, the safety validation of a perception "
@@ -61,24 +63,51 @@ SINCE = _param("since", OpenApiTypes.DATETIME, "At or after this time (ISO 8601)
 UNTIL = _param("until", OpenApiTypes.DATETIME, "Before this time (ISO 8601)")
 
 
+class Endpoint:
+    """Base of every view: its schema documents the error responses (errors.ApiSchema)."""
+
+    schema = ApiSchema()
+
+
+# Ids are 64-bit signed integers in both databases; SQLite cannot even compare a larger one.
+ID_RANGE = range(-(2**63), 2**63)
+
+
 def _int(request, name):
     raw = request.query_params.get(name)
     if raw in (None, ""):
         return None
     try:
-        return int(raw)
+        value = int(raw)
     except ValueError:
         raise exceptions.ValidationError({name: [f"must be an integer, got {raw!r}"]}) from None
+    if value not in ID_RANGE:
+        raise exceptions.ValidationError({name: [f"must be a 64-bit integer, got {raw}"]})
+    return value
 
 
 def _time(request, name):
+    """An ISO 8601 date-time, in UTC (a time without an offset is UTC)."""
     raw = request.query_params.get(name)
     if raw in (None, ""):
         return None
-    value = parse_datetime(raw.replace(" ", "+"))
+    try:
+        value = parse_datetime(raw.replace(" ", "+"))
+        if value is not None:
+            value = value.replace(tzinfo=value.tzinfo or datetime.UTC).astimezone(datetime.UTC)
+    except (ValueError, OverflowError):  # well formed but not a date, or beyond year 9999
+        value = None
     if value is None:
         raise exceptions.ValidationError({name: [f"must be an ISO 8601 date-time, got {raw!r}"]})
     return value
+
+
+def _text(request, name):
+    """A free-text parameter; PostgreSQL refuses NUL in text, so it is refused here."""
+    raw = request.query_params.get(name)
+    if raw and "\x00" in raw:
+        raise exceptions.ValidationError({name: ["must not contain NUL characters"]})
+    return raw
 
 
 def _choice(request, name, allowed):
@@ -105,7 +134,7 @@ def _filter(queryset, request, **fields):
 # Who am I ----------------------------------------------------------------------------
 
 
-class Me(APIView):
+class Me(Endpoint, APIView):
     @extend_schema(responses=OpenApiTypes.OBJECT, summary="The user and their roles")
     def get(self, request):
         memberships = request.user.memberships.select_related("team").order_by("team__name")
@@ -124,7 +153,7 @@ class Me(APIView):
 # Detectors ---------------------------------------------------------------------------
 
 
-class DetectorMixin:
+class DetectorMixin(Endpoint):
     serializer_class = s.DetectorSerializer
 
     def get_queryset(self):
@@ -148,9 +177,9 @@ class DetectorMixin:
 class DetectorList(DetectorMixin, generics.ListAPIView):
     def get_queryset(self):
         queryset = super().get_queryset()
-        if team := self.request.query_params.get("team"):
+        if team := _text(self.request, "team"):
             queryset = queryset.filter(team__slug=team)
-        if name := self.request.query_params.get("name"):
+        if name := _text(self.request, "name"):
             queryset = queryset.filter(name__iexact=name)
         return queryset
 
@@ -167,7 +196,7 @@ def _version(request, pk):
     return selectors.version_for(request.user, pk)
 
 
-class DetectorHistory(APIView):
+class DetectorHistory(Endpoint, APIView):
     @extend_schema(
         responses=OpenApiTypes.OBJECT,
         summary="Every version's numbers on every split",
@@ -178,7 +207,7 @@ class DetectorHistory(APIView):
         return Response(selectors.history_chart(_detector(request, pk)))
 
 
-class DetectorCriteria(APIView):
+class DetectorCriteria(Endpoint, APIView):
     @extend_schema(responses=s.CriteriaSerializer(many=True), summary="Criteria, newest first")
     def get(self, request, pk):
         found = _detector(request, pk)
@@ -202,7 +231,7 @@ def _valid(serializer_class, request):
 # Versions ----------------------------------------------------------------------------
 
 
-class VersionMixin:
+class VersionMixin(Endpoint):
     serializer_class = s.VersionSerializer
 
     def get_queryset(self):
@@ -218,7 +247,11 @@ class VersionMixin:
         return super().get_serializer(*args, **kwargs)
 
 
-@extend_schema(parameters=[DETECTOR, _param("label", str, "Exact version label"), SINCE, UNTIL])
+@extend_schema_view(
+    get=extend_schema(
+        parameters=[DETECTOR, _param("label", str, "Exact version label"), SINCE, UNTIL]
+    )
+)
 class VersionList(VersionMixin, generics.ListCreateAPIView):
     def get_queryset(self):
         queryset = _filter(
@@ -228,7 +261,7 @@ class VersionList(VersionMixin, generics.ListCreateAPIView):
             since="created_at__gte",
             until="created_at__lt",
         )
-        if label := self.request.query_params.get("label"):
+        if label := _text(self.request, "label"):
             queryset = queryset.filter(label=label)
         return queryset.order_by("detector_id", "created_at", "id")
 
@@ -236,7 +269,9 @@ class VersionList(VersionMixin, generics.ListCreateAPIView):
         page = super().paginate_queryset(queryset)
         return list(page) if page is not None else None
 
-    @extend_schema(request=s.VersionInput, responses={201: s.VersionSerializer})
+    @extend_schema(
+        request=s.VersionInput, responses={201: s.VersionSerializer, 404: error_response(404)}
+    )
     def post(self, request):
         data = _valid(s.VersionInput, request)
         found = _detector(request, data.pop("detector"))
@@ -248,7 +283,7 @@ class VersionDetail(VersionMixin, generics.RetrieveAPIView):
     pass
 
 
-class VersionVerdict(APIView):
+class VersionVerdict(Endpoint, APIView):
     @extend_schema(
         responses=s.VerdictSerializer,
         summary="Whether scoring and judging are over, and the verdict",
@@ -291,7 +326,7 @@ def _class_row(row):
     }
 
 
-class VersionResults(APIView):
+class VersionResults(Endpoint, APIView):
     @extend_schema(
         responses=OpenApiTypes.OBJECT,
         summary="Per split: the primary protocol's summary, per-class rows and slices",
@@ -327,11 +362,26 @@ class EvidenceRenderer(renderers.StaticHTMLRenderer):
     format = "html"
 
 
-class VersionEvidence(APIView):
+class VersionEvidence(Endpoint, APIView):
     renderer_classes = [renderers.JSONRenderer, EvidenceRenderer]
 
+    def handle_exception(self, exc):
+        """Errors keep the one JSON error body, even when the report was asked as HTML."""
+        response = super().handle_exception(exc)
+        self.request.accepted_renderer = renderers.JSONRenderer()
+        self.request.accepted_media_type = "application/json"
+        return response
+
     @extend_schema(
-        parameters=[_param("format", str, "json (default) or html")],
+        parameters=[
+            OpenApiParameter(
+                "format",
+                str,
+                OpenApiParameter.QUERY,
+                enum=["json", "html"],
+                description="json (default) or html",
+            )
+        ],
         responses={(200, "application/json"): OpenApiTypes.OBJECT, (200, "text/html"): str},
         summary="The evidence report: scores, intervals, outcomes, hashes, decision",
     )
@@ -345,10 +395,10 @@ class VersionEvidence(APIView):
         return Response(report)
 
 
-class VersionSignOff(APIView):
+class VersionSignOff(Endpoint, APIView):
     @extend_schema(
         request=s.SignOffInput,
-        responses={201: s.SignOffSerializer},
+        responses={201: s.SignOffSerializer, 409: error_response(409)},
         summary="A lead's decision; approval makes the version the baseline",
     )
     def post(self, request, pk):
@@ -372,7 +422,7 @@ class VersionSignOff(APIView):
         UNTIL,
     ]
 )
-class SignOffList(generics.ListAPIView):
+class SignOffList(Endpoint, generics.ListAPIView):
     serializer_class = s.SignOffSerializer
 
     def get_queryset(self):
@@ -391,13 +441,13 @@ class SignOffList(generics.ListAPIView):
         return queryset.order_by("decided_at", "id")
 
 
-class Comparison(APIView):
+class Comparison(Endpoint, APIView):
     @extend_schema(
         parameters=[
             _param("reference", int, "The reference version (e.g. the baseline)"),
             _param("candidate", int, "The candidate version"),
         ],
-        responses=OpenApiTypes.OBJECT,
+        responses={200: OpenApiTypes.OBJECT, 404: error_response(404)},
         summary="Per shared split: per-class AP deltas (candidate - reference), worst first",
     )
     def get(self, request):
@@ -442,18 +492,21 @@ class Comparison(APIView):
 # Splits ------------------------------------------------------------------------------
 
 
-@extend_schema(parameters=[_param("name", str, "Split name (every revision)")])
-class SplitList(generics.ListCreateAPIView):
+@extend_schema_view(
+    get=extend_schema(parameters=[_param("name", str, "Split name (every revision)")])
+)
+class SplitList(Endpoint, generics.ListCreateAPIView):
     serializer_class = s.SplitSerializer
 
     def get_queryset(self):
         queryset = BenchmarkSplit.objects.order_by("name", "revision")
-        if name := self.request.query_params.get("name"):
+        if name := _text(self.request, "name"):
             queryset = queryset.filter(name=name)
         return queryset
 
     @extend_schema(
-        request={"multipart/form-data": s.SplitInput}, responses={201: s.SplitSerializer}
+        request={"multipart/form-data": s.SplitInput},
+        responses={201: s.SplitSerializer, 413: error_response(413)},
     )
     def post(self, request):
         if not selectors.can_load_splits(request.user):
@@ -475,7 +528,7 @@ class SplitList(generics.ListCreateAPIView):
         return Response(s.SplitSerializer(split).data, status=201)
 
 
-class SplitDetail(generics.RetrieveAPIView):
+class SplitDetail(Endpoint, generics.RetrieveAPIView):
     serializer_class = s.SplitSerializer
     queryset = BenchmarkSplit.objects.all()
 
@@ -483,7 +536,7 @@ class SplitDetail(generics.RetrieveAPIView):
 # Prediction sets ---------------------------------------------------------------------
 
 
-class PredictionSetMixin:
+class PredictionSetMixin(Endpoint):
     serializer_class = s.PredictionSetSerializer
 
     def get_queryset(self):
@@ -492,7 +545,7 @@ class PredictionSetMixin:
         ).select_related("version", "split", "predictions", "uploaded_by")
 
 
-@extend_schema(parameters=[DETECTOR, VERSION, SPLIT, SINCE, UNTIL])
+@extend_schema_view(get=extend_schema(parameters=[DETECTOR, VERSION, SPLIT, SINCE, UNTIL]))
 class PredictionSetList(PredictionSetMixin, generics.ListCreateAPIView):
     def get_queryset(self):
         return _filter(
@@ -507,7 +560,11 @@ class PredictionSetList(PredictionSetMixin, generics.ListCreateAPIView):
 
     @extend_schema(
         request={"multipart/form-data": s.PredictionSetInput},
-        responses={201: s.PredictionSetSerializer},
+        responses={
+            201: s.PredictionSetSerializer,
+            404: error_response(404),
+            413: error_response(413),
+        },
         summary="Upload a version's predictions on a split; scoring is queued",
         description="The version is created if the label is new. The same file again "
         "returns the same prediction set (201 as well).",
@@ -538,7 +595,7 @@ class PredictionSetDetail(PredictionSetMixin, generics.RetrieveAPIView):
 # Evaluations -------------------------------------------------------------------------
 
 
-class EvaluationMixin:
+class EvaluationMixin(Endpoint):
     serializer_class = s.EvaluationSerializer
 
     def get_queryset(self):
@@ -582,7 +639,7 @@ class EvaluationList(EvaluationMixin, generics.ListAPIView):
                 queryset = queryset.filter(Exists(sets))
         if state := _choice(self.request, "state", Evaluation.State.values):
             queryset = queryset.filter(state=state)
-        if protocol := self.request.query_params.get("protocol"):
+        if protocol := _text(self.request, "protocol"):
             queryset = queryset.filter(protocol=protocol)
         return queryset.order_by("created_at", "id")
 
@@ -593,7 +650,7 @@ class EvaluationDetail(EvaluationMixin, generics.RetrieveAPIView):
 
 class EvaluationResult(EvaluationMixin, generics.GenericAPIView):
     @extend_schema(
-        responses=OpenApiTypes.OBJECT,
+        responses={200: OpenApiTypes.OBJECT, 409: error_response(409)},
         summary="The full scorecard: summary, per class with curves, slices, provenance",
     )
     def get(self, request, pk):
@@ -631,7 +688,7 @@ class EvaluationResult(EvaluationMixin, generics.GenericAPIView):
         UNTIL,
     ]
 )
-class OutcomeList(generics.ListAPIView):
+class OutcomeList(Endpoint, generics.ListAPIView):
     """Judged rules. ``/flags/`` lists only the failing ones: the regressions."""
 
     serializer_class = s.OutcomeSerializer
@@ -671,7 +728,7 @@ class FlagList(OutcomeList):
         UNTIL,
     ]
 )
-class AuditEventList(generics.ListAPIView):
+class AuditEventList(Endpoint, generics.ListAPIView):
     serializer_class = s.AuditEventSerializer
 
     def get_queryset(self):
@@ -680,14 +737,14 @@ class AuditEventList(generics.ListAPIView):
         queryset = selectors.visible_audit_events(self.request.user)
         if kind := _choice(self.request, "kind", AuditEvent.Kind.values):
             queryset = queryset.filter(kind=kind)
-        if subject := self.request.query_params.get("subject"):
+        if subject := _text(self.request, "subject"):
             queryset = queryset.filter(subject=subject)
         return _filter(
             queryset, self.request, since="created_at__gte", until="created_at__lt"
         ).order_by("id")
 
 
-class AuditEventDetail(generics.RetrieveAPIView):
+class AuditEventDetail(Endpoint, generics.RetrieveAPIView):
     serializer_class = s.AuditEventSerializer
 
     def get_queryset(self):

@@ -373,6 +373,31 @@ def test_tokens_are_throttled(api, detector, settings):
 def test_unknown_objects_are_404_with_the_same_body(api):
     _error(api("engineer").get(f"{API}versions/999999/"), 404)
     _error(api("engineer").get(f"{API}evaluations/999999/result/"), 404)
+    # A path no route matches never reaches DRF: the project's 404 handler answers.
+    body = _error(api("engineer").get(f"{API}versions/abc/"), 404)
+    assert body["message"] == "no such URL: /api/v1/versions/abc/"
+    html = api("engineer").get(f"{API}versions/999999/evidence/", {"format": "html"})
+    assert html["Content-Type"] == "application/json"
+    _error(html, 404)
+
+
+def test_criteria_with_unstorable_text_are_refused_on_the_page_too(client, detector, users):
+    """PostgreSQL keeps no NUL in text: the service refuses it, so the page does as well."""
+    client.force_login(users["lead"])
+    rules = [
+        {
+            "metric": "AP",
+            "class": "mean",
+            "split": "*",
+            "kind": "max_drop",
+            "tolerance": 1,
+            "tag": "ni\u0000ght",
+        }
+    ]
+    page = client.post(reverse("criteria", args=[detector.pk]), {"rules": json.dumps(rules)})
+    assert page.status_code == 400
+    assert "rules[0].tag: NUL and surrogate characters are not allowed" in page.content.decode()
+    assert not detector.criteria.exists()
 
 
 # Lists ---------------------------------------------------------------------------
