@@ -7,7 +7,7 @@
     python -m releases.client report  --detector NAME VERSION --format json|html
 
 ``--url`` and ``--token`` default to $BENCHBOOK_URL and $BENCHBOOK_TOKEN. A split is
-``name`` (its newest revision) or ``name@revision``; ``--split name=FILE`` pairs a split
+``name`` (its newest revision), ``name@revision`` or ``name:revision``; ``--split name=FILE`` pairs a split
 with its file in one argument.
 """
 
@@ -96,7 +96,8 @@ def find_detector(api, name):
 
 
 def find_split(api, spec):
-    name, _, revision = spec.partition("@")
+    # name@revision, or name:revision as the release criteria write it
+    name, _, revision = spec.replace(":", "@", 1).partition("@")
     found = api.get_all("splits/", name=name)
     if revision:
         found = [s for s in found if str(s["revision"]) == revision]

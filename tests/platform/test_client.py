@@ -145,7 +145,7 @@ def test_a_pipeline_gates_on_the_verdict(
         "--version",
         "1.2",
         "--split",
-        "bay-night",
+        "bay-night:1",  # name:revision, as the criteria write it
         "--predictions",
         good,
         "--wait",
