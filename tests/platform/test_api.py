@@ -12,7 +12,7 @@ from rest_framework.test import APIClient
 
 from evaluation.models import BenchmarkSplit, Evaluation, PredictionFile
 from releases import criteria, services, tokens
-from releases.models import ApiToken, ModelVersion, PredictionSet
+from releases.models import ApiToken, AuditEvent, ModelVersion, PredictionSet
 
 from .conftest import detections_for, split_dict
 
@@ -503,3 +503,36 @@ def test_list_queries_stay_flat_as_rows_grow(api, detector, split, split_truth, 
     few = counts()
     add_versions(["ccc", "dddd", "e", "ff"])
     assert counts() == few
+
+
+def test_detail_endpoints_return_their_object_and_hide_other_teams(api, uploaded, rival_detector):
+    prediction_set = PredictionSet.objects.get(pk=uploaded["id"])
+    evaluation = Evaluation.objects.filter(predictions=prediction_set.predictions).first()
+    event = AuditEvent.objects.get(subject=f"prediction-set:{prediction_set.pk}")
+    details = {
+        f"prediction-sets/{prediction_set.pk}/": ("sha256", prediction_set.predictions.sha256),
+        f"evaluations/{evaluation.pk}/": ("state", "done"),
+        f"audit-events/{event.pk}/": ("hash", event.hash),
+        f"splits/{prediction_set.split_id}/": ("sha256", prediction_set.split.sha256),
+        f"versions/{prediction_set.version_id}/": ("label", "1.4.0"),
+        f"detectors/{prediction_set.version.detector_id}/": ("name", "Forward camera"),
+    }
+    for path, (key, value) in details.items():
+        assert api("engineer").get(API + path).json()[key] == value, path
+        status = 200 if path.startswith("splits/") else 404  # splits are shared benchmarks
+        assert api("rival").get(API + path).status_code == status, path
+    rival_version = services.create_version(
+        rival_detector, "r1", rival_detector.team.memberships.get().user
+    )
+    response = api("reviewer").get(
+        API + "comparisons/",
+        {"reference": prediction_set.version_id, "candidate": rival_version.pk},
+    )
+    _error(response, 400, path="candidate")
+    _error(
+        api("rival").get(
+            API + "comparisons/",
+            {"reference": prediction_set.version_id, "candidate": rival_version.pk},
+        ),
+        404,
+    )
