@@ -7,8 +7,8 @@
     python -m releases.client report  --detector NAME VERSION --format json|html
 
 ``--url`` and ``--token`` default to $BENCHBOOK_URL and $BENCHBOOK_TOKEN. A split is
-``name`` (its newest revision), ``name@revision`` or ``name:revision``; ``--split name=FILE`` pairs a split
-with its file in one argument.
+``name`` (its newest revision), ``name@revision`` or ``name:revision``;
+``--split name=FILE`` pairs a split with its file in one argument.
 """
 
 import argparse
@@ -19,6 +19,7 @@ import time
 from . import BAD_INPUT, FAILURE, OK, REGRESSION, render
 from .http import Api, ClientError
 
+QUEUED_HINT_SECONDS = 60
 EXIT_OF_VERDICT = {
     "no regression": OK,
     "no criteria": OK,
@@ -170,7 +171,9 @@ def submit(api, args, out):
 
 def _wait_and_report(api, version_id, args, out):
     progress = render.Progress()
-    deadline = time.monotonic() + args.wait_timeout
+    started = time.monotonic()
+    deadline = started + args.wait_timeout
+    warned = False
     while True:
         verdict = api.get(f"versions/{version_id}/verdict/")
         evaluations = verdict["evaluations"]
@@ -182,6 +185,14 @@ def _wait_and_report(api, version_id, args, out):
         if done == len(evaluations):
             text = "judging against the release criteria"
         progress.show(share / (100 * max(len(evaluations), 1)), text)
+        queued = evaluations and all(e["state"] == "queued" for e in evaluations)
+        hint_after = min(QUEUED_HINT_SECONDS, args.wait_timeout / 2)
+        if queued and not warned and time.monotonic() - started > hint_after:
+            warned = True
+            sys.stderr.write(
+                f"\nnote: still queued after {hint_after:.0f} s: "
+                "no worker has started on them (is one running?)\n"
+            )
         if time.monotonic() > deadline:
             progress.done()
             raise ClientError(

@@ -313,3 +313,25 @@ def test_unreachable_servers_and_server_errors_are_failures(run, tmp_path):
     finally:
         server.shutdown()
     assert code == 1 and "HTTP 503: down for maintenance" in err
+
+
+def test_waiting_past_the_timeout_is_a_failure(
+    live_server, detector, split_truth, users, run, tmp_path, monkeypatch, flushable
+):
+    """No worker takes the evaluations: the client hints at it, then gives up with 1."""
+    from evaluation import tasks
+
+    monkeypatch.setattr(tasks.score, "delay", lambda *args: None)  # queued, never scored
+    evaluation_services.load_split(
+        name="bay-night", revision=1, truth=upload("bay-night.json", split_truth)
+    )
+    _, token = tokens.create_token(users["engineer"], "pipeline")
+    code, _, err = run(
+        "submit", "--url", live_server.url, "--token", token, "--detector", "Forward camera",
+        "--version", "1.0", "--split", "bay-night",
+        "--predictions", _write(tmp_path / "p.json", detections_for(split_truth)),
+        "--wait", "--wait-timeout", "2", "--poll", "0.2",
+    )  # fmt: skip
+    assert code == 1, err
+    assert "note: still queued after 1 s: no worker has started on them" in err
+    assert "--wait-timeout: still pending after 2 s" in err
