@@ -150,6 +150,7 @@ CELERY_TASK_EAGER_PROPAGATES = True
 CELERY_BEAT_SCHEDULE_FILENAME = str(VAR_DIR / "celerybeat-schedule")
 CELERY_BEAT_SCHEDULE = {
     "requeue-stalled-evaluations": {"task": "evaluation.tasks.sweep", "schedule": 60.0},
+    "requeue-lost-judging": {"task": "releases.tasks.sweep", "schedule": 60.0},
 }
 # An evaluation still queued after this long, or running after the second, is requeued.
 BENCHBOOK_QUEUED_GRACE_SECONDS = 120

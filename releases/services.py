@@ -132,6 +132,41 @@ def judge_if_complete(version_id):
         transaction.on_commit(lambda: _send(judge, version_id))
 
 
+def requeue_unjudged():
+    """Queue judging again for versions whose evaluations all finished more than the
+    grace period ago but that were not judged since (the broker was down when judging
+    was to be queued, or the judging worker died). Returns the version ids."""
+    import datetime
+
+    from django.conf import settings
+    from django.db.models import Exists, F, OuterRef, Q, Subquery
+
+    from evaluation.models import Evaluation
+
+    from .tasks import judge
+
+    same_input = {"predictions_id": OuterRef("predictions_id"), "split_id": OuterRef("split_id")}
+    cutoff = timezone.now() - datetime.timedelta(seconds=settings.BENCHBOOK_QUEUED_GRACE_SECONDS)
+    last_finished = Evaluation.objects.filter(**same_input).order_by("-finished_at")
+    finished_sets = PredictionSet.objects.annotate(
+        last=Subquery(last_finished.values("finished_at")[:1]),
+        open=Exists(Evaluation.objects.filter(**same_input, state__in=["queued", "running"])),
+    ).filter(open=False, last__lt=cutoff)
+    stale = finished_sets.filter(
+        Q(version__judged_at__isnull=True) | Q(version__judged_at__lt=F("last"))
+    )
+    open_versions = PredictionSet.objects.annotate(
+        open=Exists(Evaluation.objects.filter(**same_input, state__in=["queued", "running"]))
+    ).filter(open=True)
+    version_ids = sorted(
+        set(stale.values_list("version_id", flat=True))
+        - set(open_versions.values_list("version_id", flat=True))
+    )
+    for version_id in version_ids:
+        _send(judge, version_id)
+    return version_ids
+
+
 def _send(task, *args):
     try:
         task.delay(*args)

@@ -12,3 +12,11 @@ def judge(version_id):
     version = ModelVersion.objects.select_related("detector").filter(pk=version_id).first()
     if version is not None and criteria.judge(version):
         notify.notify(version)
+
+
+@shared_task
+def sweep():
+    """Judge again the versions whose judging was lost (see services.requeue_unjudged)."""
+    from . import services
+
+    return services.requeue_unjudged()

@@ -254,3 +254,37 @@ def test_compare_shows_the_judged_intervals(
     low, high, confidence = rows["pedestrian"]["interval"]
     assert low <= rows["pedestrian"]["delta"] <= high or high < 0
     assert high < 0 and confidence == 0.95
+
+
+def test_judging_lost_with_the_broker_is_queued_again(
+    detector, split, split_truth, users, run_tasks, monkeypatch, settings
+):
+    """The broker refuses the judge task: the verdict stays pending until the sweep."""
+    from releases import selectors
+    from releases import tasks as release_tasks
+
+    from .conftest import detections_for
+
+    version = services.create_version(detector, "2.0", users["engineer"])
+    judged = release_tasks.judge.delay
+
+    def broker_down(*args):
+        raise ConnectionError("broker down")
+
+    monkeypatch.setattr(release_tasks.judge, "delay", broker_down)
+    run_tasks(
+        services.submit_predictions,
+        version,
+        split,
+        upload("p.json", detections_for(split_truth)),
+        users["engineer"],
+    )
+    version.refresh_from_db()
+    assert selectors.verdict_of(version)["verdict"] == "pending"
+    assert services.requeue_unjudged() == []  # within the grace period: left alone
+    settings.BENCHBOOK_QUEUED_GRACE_SECONDS = 0
+    monkeypatch.setattr(release_tasks.judge, "delay", judged)
+    assert run_tasks(services.requeue_unjudged) == [version.pk]
+    version.refresh_from_db()
+    assert selectors.verdict_of(version)["verdict"] == "no criteria"
+    assert services.requeue_unjudged() == []  # judged after its last evaluation
