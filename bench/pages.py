@@ -1,4 +1,4 @@
-"""Benchmark: server time of each dashboard page with 200 versions x 5 splits.
+"""Benchmark: server time of each dashboard page and API read, 200 versions x 5 splits.
 
     python bench/pages.py [--versions 200] [--splits 5] [--repeat 30]
 
@@ -94,6 +94,13 @@ def main():
         "compare": f"/detectors/{detector.pk}/compare/",
         "split": f"/splits/{truths[0][0].pk}/",
         "splits": "/splits/",
+        # The API answers the same reads for pipelines (session auth here).
+        "api history": f"/api/v1/detectors/{detector.pk}/history/",
+        "api versions page": "/api/v1/versions/?page_size=50",
+        "api verdict": f"/api/v1/versions/{newest.pk}/verdict/",
+        "api results": f"/api/v1/versions/{newest.pk}/results/",
+        "api evaluations": f"/api/v1/evaluations/?version={newest.pk}",
+        "api comparison": f"/api/v1/comparisons/?reference={newest.pk - 1}&candidate={newest.pk}",
     }
     failures = []
     print(f"{'page':<20} {'median ms':>10} {'p95 ms':>8} {'target':>8}")

@@ -1,13 +1,17 @@
 """Shared fixtures of the platform tests: users by role, a team, a detector, a split."""
 
 import json
+import os
 import uuid
 
 import numpy as np
 import pytest
 from django.contrib.auth import get_user_model
+from django.core.cache import cache
 from django.core.files.base import ContentFile
+from django.core.management import call_command
 from django.db import connection
+from django.test import override_settings
 
 from evaluation import services as evaluation_services
 from evaluation import tasks, triggers
@@ -122,3 +126,46 @@ def flushable(transactional_db):
     if connection.vendor == "sqlite":
         triggers.remove(connection)
         audit_triggers.remove(connection)
+
+
+def in_process(task):
+    """A ``delay`` that runs the task here, its arguments through JSON (as run_tasks)."""
+
+    def delay(*args):
+        task.apply(args=json.loads(json.dumps(args)), task_id=str(uuid.uuid4()), throw=True)
+
+    return delay
+
+
+def committed_for_module(django_db_blocker, tmp_path_factory, build):
+    """For a module-scoped fixture: ``build()``'s rows committed once for the module
+    (set up per test they would cost more than the tests), tasks run in-process, then
+    emptied as a transactional test's database is (on SQLite the triggers must go
+    first, see ``flushable``; they are put back after). Yields (built, media root)."""
+    name = os.path.basename(str(connection.settings_dict["NAME"]))
+    assert name.startswith("test"), f"not a test database: {name}"  # it is flushed below
+    media = tmp_path_factory.mktemp("module-media")
+    with (
+        django_db_blocker.unblock(),
+        override_settings(
+            BENCHBOOK_TOKEN_RATE="100000/minute",
+            MEDIA_ROOT=str(media),
+            BENCHBOOK_ENGINE_CACHE=str(media / "engine-cache"),
+        ),
+        pytest.MonkeyPatch.context() as patch,
+    ):
+        patch.setattr(tasks.score, "delay", in_process(tasks.score))
+        patch.setattr(release_tasks.judge, "delay", in_process(release_tasks.judge))
+        cache.clear()  # throttle counters
+        triggers.install(connection)
+        audit_triggers.install(connection)
+        try:
+            yield build(), str(media)
+        finally:
+            if connection.vendor == "sqlite":
+                triggers.remove(connection)
+                audit_triggers.remove(connection)
+            call_command("flush", interactive=False, verbosity=0)
+            triggers.install(connection)
+            audit_triggers.install(connection)
+            cache.clear()  # throttle counters of tokens whose ids later tests reuse

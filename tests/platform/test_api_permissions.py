@@ -6,25 +6,16 @@ team write versions and predictions, its leads criteria and sign-offs; engineers
 leads of any team load splits, which everyone reads; a reviewer never writes (403)."""
 
 import json
-import os
 import types
-import uuid
 
 import pytest
 from django.contrib.auth import get_user_model
-from django.core.cache import cache
 from django.core.files.uploadedfile import SimpleUploadedFile
-from django.core.management import call_command
-from django.db import connection
-from django.test import override_settings
 from rest_framework.test import APIClient
 
 from evaluation import services as evaluation_services
-from evaluation import tasks, triggers
 from evaluation.models import BenchmarkSplit, Evaluation, PredictionFile
 from releases import services, tokens
-from releases import tasks as release_tasks
-from releases import triggers as audit_triggers
 from releases.models import (
     AuditEvent,
     ModelVersion,
@@ -33,7 +24,7 @@ from releases.models import (
     SignOff,
 )
 
-from .conftest import CLASSES, detections_for, split_dict, upload
+from .conftest import CLASSES, committed_for_module, detections_for, split_dict, upload
 
 API = "/api/v1/"
 USERS = ("lead", "engineer", "reviewer", "outsider", "rival")
@@ -47,13 +38,6 @@ STORED = (
     SignOff,
     AuditEvent,
 )
-
-
-def _in_process(task):
-    def delay(*args):  # as conftest.run_tasks: arguments through JSON, as a broker carries them
-        task.apply(args=json.loads(json.dumps(args)), task_id=str(uuid.uuid4()), throw=True)
-
-    return delay
 
 
 def _scene():
@@ -95,35 +79,10 @@ def _scene():
 
 @pytest.fixture(scope="module")
 def scene(django_db_setup, django_db_blocker, tmp_path_factory):
-    """The scene, committed once for the module (each test's own writes are rolled back
-    by ``db``), then emptied as a transactional test's database is (on SQLite the
-    triggers must go first, see ``flushable``; they are put back after)."""
-    name = os.path.basename(str(connection.settings_dict["NAME"]))
-    assert name.startswith("test"), f"not a test database: {name}"  # it is flushed below
-    media = tmp_path_factory.mktemp("permissions-media")
-    with (
-        django_db_blocker.unblock(),
-        override_settings(
-            BENCHBOOK_TOKEN_RATE="100000/minute",
-            MEDIA_ROOT=str(media),
-            BENCHBOOK_ENGINE_CACHE=str(media / "engine-cache"),
-        ),
-        pytest.MonkeyPatch.context() as patch,
-    ):
-        patch.setattr(tasks.score, "delay", _in_process(tasks.score))
-        patch.setattr(release_tasks.judge, "delay", _in_process(release_tasks.judge))
-        triggers.install(connection)
-        audit_triggers.install(connection)
-        try:
-            yield types.SimpleNamespace(**vars(_scene()), media=str(media))
-        finally:
-            if connection.vendor == "sqlite":
-                triggers.remove(connection)
-                audit_triggers.remove(connection)
-            call_command("flush", interactive=False, verbosity=0)
-            triggers.install(connection)
-            audit_triggers.install(connection)
-            cache.clear()  # throttle counters of tokens whose ids later tests reuse
+    """The scene, committed once for the module (``conftest.committed_for_module``);
+    each test's own writes are rolled back by ``db``."""
+    for built, media in committed_for_module(django_db_blocker, tmp_path_factory, _scene):
+        yield types.SimpleNamespace(**vars(built), media=media)
 
 
 @pytest.fixture(autouse=True)

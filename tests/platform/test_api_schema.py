@@ -1,19 +1,12 @@
 """The served OpenAPI schema against the API itself: schemathesis generates requests from
 /api/schema/ and sends them through the WSGI app, as the lead (a token of theirs)."""
 
-import json
-import os
-import uuid
-
 import pytest
 import schemathesis
 from django.contrib.auth import get_user_model
-from django.core.cache import cache
 from django.core.files.uploadedfile import SimpleUploadedFile
-from django.core.management import call_command
 from django.core.signals import request_finished, request_started
-from django.db import close_old_connections, connection
-from django.test import override_settings
+from django.db import close_old_connections
 from hypothesis import HealthCheck, settings
 from rest_framework.test import APIClient
 from schemathesis.checks import not_a_server_error
@@ -25,14 +18,11 @@ from schemathesis.specs.openapi.checks import (
 
 from benchbook.wsgi import application
 from evaluation import services as evaluation_services
-from evaluation import tasks, triggers
 from evaluation.models import Evaluation
 from releases import criteria, services, tokens
-from releases import tasks as release_tasks
-from releases import triggers as audit_triggers
 from releases.models import AuditEvent, PredictionSet
 
-from .conftest import CLASSES, detections_for, split_dict, upload
+from .conftest import CLASSES, committed_for_module, detections_for, split_dict, upload
 
 CHECKS = [
     not_a_server_error,
@@ -59,13 +49,6 @@ HYPOTHESIS = settings(
     # The data is set up once for the module; a test's examples share its transaction.
     suppress_health_check=[HealthCheck.function_scoped_fixture, HealthCheck.too_slow],
 )
-
-
-def _in_process(task):
-    def delay(*args):  # as conftest.run_tasks: arguments through JSON, as a broker carries them
-        task.apply(args=json.loads(json.dumps(args)), task_id=str(uuid.uuid4()), throw=True)
-
-    return delay
 
 
 def _store():
@@ -112,36 +95,9 @@ def _store():
 
 @pytest.fixture(scope="module")
 def served(django_db_setup, django_db_blocker, tmp_path_factory):
-    """The data, committed once for the module (set up per test, it would cost more than
-    the requests), and emptied afterwards as a transactional test's is (on SQLite the
-    triggers must go first, see ``flushable``; they are put back after)."""
-    name = os.path.basename(str(connection.settings_dict["NAME"]))
-    assert name.startswith("test"), f"not a test database: {name}"  # it is flushed below
-    media = tmp_path_factory.mktemp("schema-media")
-    with (
-        django_db_blocker.unblock(),
-        override_settings(
-            BENCHBOOK_TOKEN_RATE="100000/minute",
-            MEDIA_ROOT=str(media),
-            BENCHBOOK_ENGINE_CACHE=str(media / "engine-cache"),
-        ),
-        pytest.MonkeyPatch.context() as patch,
-    ):
-        patch.setattr(tasks.score, "delay", _in_process(tasks.score))
-        patch.setattr(release_tasks.judge, "delay", _in_process(release_tasks.judge))
-        cache.clear()  # throttle counters
-        triggers.install(connection)
-        audit_triggers.install(connection)
-        try:
-            yield {**_store(), "media": str(media)}
-        finally:
-            if connection.vendor == "sqlite":
-                triggers.remove(connection)
-                audit_triggers.remove(connection)
-            call_command("flush", interactive=False, verbosity=0)
-            triggers.install(connection)
-            audit_triggers.install(connection)
-            cache.clear()  # throttle counters of tokens whose ids later tests reuse
+    """The data, committed once for the module (``conftest.committed_for_module``)."""
+    for stored, media in committed_for_module(django_db_blocker, tmp_path_factory, _store):
+        yield {**stored, "media": media}
 
 
 @pytest.fixture(autouse=True)
