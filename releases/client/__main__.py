@@ -164,7 +164,10 @@ def submit(api, args, out):
             f"(sha256 {stored['sha256'][:16]}…) as prediction set {stored['id']}\n"
         )
     if not args.wait:
-        out.write(f"{detector['name']} {args.version}: scoring queued (version {version_id})\n")
+        out.write(
+            f"{detector['name']} {args.version}: scoring queued; "
+            f"{api.site}/versions/{version_id}/\n"
+        )
         return OK
     return _wait_and_report(api, version_id, args, out)
 
@@ -219,6 +222,7 @@ def _print_verdict(api, version_id, verdict, out):
     if outcomes:
         out.write("\n" + render.outcomes_table(outcomes) + "\n")
     out.write(f"\n{version['label']}: {verdict['verdict']} ({version['state']})\n")
+    out.write(f"scorecard: {api.site}/versions/{version_id}/\n")
     if verdict["verdict"] in ("regression", "no regression"):
         out.write(f"Note: {render.CAUTION}\n")
     return EXIT_OF_VERDICT.get(verdict["verdict"], OK)

@@ -83,7 +83,8 @@ class Api:
     """Calls to ``{url}/api/v1/`` with a bearer token."""
 
     def __init__(self, url, token, timeout=60, retries=3):
-        self.base = url.rstrip("/") + "/api/v1/"
+        self.site = url.rstrip("/")
+        self.base = self.site + "/api/v1/"
         self.token = token
         self.timeout = timeout
         self.retries = retries

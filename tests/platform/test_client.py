@@ -92,6 +92,7 @@ def test_a_pipeline_gates_on_the_verdict(
     )
     assert code == 0, out + err
     assert "1.0: no criteria" in out and "AP50" in out and "bay-night rev 1" in out
+    assert f"scorecard: {live_server.url}/versions/" in out
     assert "[##############################] 100%" in err  # the progress bar, in a log
 
     # The lead approves 1.0 and sets criteria, with the same client's server.
