@@ -444,6 +444,23 @@ def outcomes_of(version):
     )
 
 
+def class_numbers(row):
+    """One ClassScore row as the API and the evidence report give it."""
+    return {
+        "class": row.class_name,
+        "AP": row.ap,
+        "AP50": row.ap50,
+        "AP75": row.ap75,
+        "recall": row.recall,
+        "gt": row.gt,
+        "tp": row.tp,
+        "fp": row.fp,
+        "best_f1": row.best_f1,
+        "best_f1_threshold": row.best_f1_threshold,
+        "miss_rate": row.miss_rate,
+    }
+
+
 def evidence_for(version):
     """Everything a reviewer needs about one version, JSON-serialisable."""
     from django.conf import settings as django_settings
@@ -471,17 +488,7 @@ def evidence_for(version):
             if row is None:
                 continue
             low, high = intervals.get((entry["split"].pk, row.class_name), (None, None))
-            classes.append(
-                {
-                    "class": row.class_name,
-                    "AP": row.ap,
-                    "AP50": row.ap50,
-                    "AP75": row.ap75,
-                    "recall": row.recall,
-                    "gt": row.gt,
-                    "delta_AP_interval": [low, high],
-                }
-            )
+            classes.append({**class_numbers(row), "delta_AP_interval": [low, high]})
         splits.append(
             {
                 "split": str(entry["split"]),

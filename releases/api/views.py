@@ -310,22 +310,6 @@ class VersionVerdict(Endpoint, APIView):
         )
 
 
-def _class_row(row):
-    return {
-        "class": row.class_name,
-        "AP": row.ap,
-        "AP50": row.ap50,
-        "AP75": row.ap75,
-        "recall": row.recall,
-        "gt": row.gt,
-        "tp": row.tp,
-        "fp": row.fp,
-        "best_f1": row.best_f1,
-        "best_f1_threshold": row.best_f1_threshold,
-        "miss_rate": row.miss_rate,
-    }
-
-
 class VersionResults(Endpoint, APIView):
     @extend_schema(
         responses=OpenApiTypes.OBJECT,
@@ -348,7 +332,9 @@ class VersionResults(Endpoint, APIView):
                         "evaluation": card.evaluation_id,
                         "protocol": card.protocol,
                         "summary": dict(entry["summary"]),
-                        "classes": [_class_row(c) for c in entry["classes"] if c is not None],
+                        "classes": [
+                            selectors.class_numbers(c) for c in entry["classes"] if c is not None
+                        ],
                         "tags": dict(entry["tags"]),
                         "sizes": dict(entry["sizes"]),
                         "other_protocols": {p: ap for p, ap in entry["others"]},
