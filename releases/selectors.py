@@ -3,6 +3,8 @@
 Every function here does a fixed number of queries, whatever the number of versions.
 """
 
+import numpy as np
+
 from .models import Detector, Membership, PredictionSet, Team
 
 UPLOAD_ROLES = (Membership.Role.ENGINEER, Membership.Role.LEAD)
@@ -145,10 +147,6 @@ def history_chart(detector):
     splits = sorted(split_objects.values(), key=lambda s: (s.name, s.revision))
     position = {v.pk: i for i, v in enumerate(versions)}
     classes = ["mean", *detector.classes]
-    values = {
-        split.pk: {m: {c: [None] * len(versions) for c in classes} for m in METRICS}
-        for split in splits
-    }
     fields = [field for field, _ in METRICS.values()]
     scores = ClassScore.objects.filter(
         scorecard__evaluation__state="done",
@@ -160,16 +158,37 @@ def history_chart(detector):
         "class_name",
         *fields,
     )
-    for file_id, split_id, name, *numbers in scores:
+    # One array (split, metric, class, version) filled in a single vectorised step:
+    # the Python loop would round 45,000 numbers one by one for 200 versions x 5 splits.
+    split_index = {split.pk: k for k, split in enumerate(splits)}
+    class_index = {name: k for k, name in enumerate(classes)}
+    where, numbers = [], []
+    for file_id, split_id, name, *row in scores:
         version_id = version_of.get((file_id, split_id))
-        if version_id is None:
-            continue
-        i, per_split = position[version_id], values[split_id]
-        name = name or "mean"
-        for metric, number in zip(METRICS, numbers):
-            if name in per_split[metric]:
-                # Four decimals: the page shows three, and shorter JSON renders faster.
-                per_split[metric][name][i] = None if number is None else round(number, 4)
+        k = class_index.get(name or "mean")
+        if version_id is not None and k is not None:
+            where.append((split_index[split_id], k, position[version_id]))
+            numbers.append(row)
+    cube = np.full((len(splits), len(METRICS), len(classes), len(versions)), np.nan)
+    if where:
+        s_, c_, v_ = np.array(where).T
+        # None (not measured) becomes NaN here and None again below.
+        cube[s_, :, c_, v_] = np.array(numbers, dtype=float)
+    # Four decimals: the page shows three, and shorter JSON renders faster. np.round
+    # scales by 10^4 and can differ from Python's correctly rounded round() at halfway
+    # cases; those few are rounded by round(), so the numbers equal the scorecard's.
+    rounded = np.round(cube, 4)
+    scaled = cube * 1e4
+    for at in zip(*np.nonzero(np.abs(scaled - np.floor(scaled) - 0.5) < 1e-6)):
+        rounded[at] = round(float(cube[at]), 4)
+    shown = rounded.astype(object)
+    shown[np.isnan(cube)] = None
+    values = {
+        split.pk: {
+            metric: dict(zip(classes, shown[k, m].tolist())) for m, metric in enumerate(METRICS)
+        }
+        for k, split in enumerate(splits)
+    }
     return {
         "protocol": detector.primary_protocol,
         "versions": [

@@ -70,6 +70,16 @@ def test_history_holds_every_version_in_time_order(detector, scored, split):
     assert chart["values"][str(split.pk)]["AP"]["mean"][0] is not None
 
 
+def test_history_rounds_halfway_numbers_as_python_does(detector, scored, split):
+    """0.00625 is a halfway case where numpy's fast np.round (0.0062) and Python's
+    correctly rounded round() (0.0063) differ; the chart must match round()."""
+    rows = ClassScore.objects.filter(class_name="car", scorecard__evaluation__protocol="coco")
+    rows.update(ap=0.00625, recall=None)
+    chart = selectors.history_chart(detector)
+    assert chart["values"][str(split.pk)]["AP"]["car"] == [round(0.00625, 4)] * 4 == [0.0063] * 4
+    assert chart["values"][str(split.pk)]["recall"]["car"] == [None] * 4
+
+
 def test_compare_defaults_to_newest_against_the_one_before(client, users, detector, scored):
     client.force_login(users["lead"])
     response = client.get(reverse("compare", args=[detector.pk]))
