@@ -72,6 +72,7 @@ def load_split(*, name, revision, truth, images=None, description="", created_by
         try:
             loaded = engine.load_truth(truth_path, images=images_path, fmt=_format_of(truth_path))
         except engine.InputError as e:
+            e.argument = "images" if images_path and str(e.path) == images_path else "truth"
             e.path = os.path.basename(e.path)  # the name as uploaded, not the spool folder
             raise
         sha = loaded.content_hash()

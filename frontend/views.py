@@ -27,13 +27,6 @@ def _detector_or_404(user, detector_id):
         raise Http404("no such detector") from None
 
 
-CAUTION = (
-    "Benchmark metrics support, and do not replace, the safety validation of a perception "
-    "system under the applicable standards (for example ISO 26262, ISO 21448, UL 4600) and "
-    "your organisation's release process."
-)
-
-
 def _version_or_404(user, version_id):
     try:
         return selectors.version_for(user, version_id)
@@ -136,7 +129,7 @@ def version(request, version_id):
             "state": selectors.state_of(
                 found, selectors.baseline_of(found.detector), selectors.blocked_versions([found])
             ),
-            "caution": CAUTION,
+            "caution": selectors.CAUTION,
         },
     )
 
@@ -174,7 +167,7 @@ def compare(request, detector_id):
             "reference": reference,
             "candidate": candidate,
             "splits": splits,
-            "caution": CAUTION,
+            "caution": selectors.CAUTION,
         },
     )
 
@@ -216,7 +209,6 @@ def release_criteria(request, detector_id):
 def evidence(request, version_id):
     found = _version_or_404(request.user, version_id)
     report = selectors.evidence_for(found)
-    report["caution"] = CAUTION
     if request.path.endswith(".json"):
         return JsonResponse(report, json_dumps_params={"indent": 2})
     return render(request, "frontend/evidence.html", {"report": report, "version": found})

@@ -23,7 +23,14 @@ from evaluation.services import UploadError, load_truth_of
 from evaluation.storage import local_path
 
 from . import audit, selectors
-from .models import AuditEvent, Membership, Outcome, PredictionSet, ReleaseCriteria
+from .models import (
+    AuditEvent,
+    Membership,
+    ModelVersion,
+    Outcome,
+    PredictionSet,
+    ReleaseCriteria,
+)
 
 METRICS = {"AP": "ap", "AP50": "ap50", "AP75": "ap75", "recall": "recall"}
 KINDS = ("min_value", "max_drop", "no_significant_drop")
@@ -246,7 +253,7 @@ def judge(version):
 def _mark_judged(version):
     """Pipelines wait for this: a verdict is final once judged after the last evaluation."""
     version.judged_at = timezone.now()
-    type(version).objects.filter(pk=version.pk).update(judged_at=version.judged_at)
+    ModelVersion.objects.filter(pk=version.pk).update(judged_at=version.judged_at)
 
 
 def _judge_one(

@@ -9,15 +9,27 @@ from .models import Detector, Membership, PredictionSet, Team
 
 UPLOAD_ROLES = (Membership.Role.ENGINEER, Membership.Role.LEAD)
 
+# Shown beside every release decision and in evidence reports (releases/client keeps a
+# copy: it imports nothing of the project).
+CAUTION = (
+    "Benchmark metrics support, and do not replace, the safety validation of a perception "
+    "system under the applicable standards (for example ISO 26262, ISO 21448, UL 4600) and "
+    "your organisation's release process."
+)
+
+
+def reads_all_teams(user):
+    """Safety review is cross-team: a reviewer role anywhere (or a superuser) reads all."""
+    return user.is_superuser or (
+        Membership.objects.filter(user=user, role=Membership.Role.REVIEWER).exists()
+    )
+
 
 def visible_teams(user):
     """Members see their teams; anyone holding a reviewer role reads every team."""
     if not user.is_authenticated:
         return Team.objects.none()
-    if (
-        user.is_superuser
-        or Membership.objects.filter(user=user, role=Membership.Role.REVIEWER).exists()
-    ):
+    if reads_all_teams(user):
         return Team.objects.all()
     return Team.objects.filter(memberships__user=user)
 
@@ -46,7 +58,7 @@ def version_for(user, version_id):
 
 
 def evaluations_of(version):
-    """Every evaluation of a version's prediction sets, with its split (2 queries)."""
+    """Every evaluation of a version's prediction sets, with its split and file (2 queries)."""
     from evaluation.models import Evaluation
 
     sets = list(version.prediction_sets.all())
@@ -55,7 +67,7 @@ def evaluations_of(version):
         Evaluation.objects.filter(
             predictions_id__in={p for p, _ in pairs}, split_id__in={s for _, s in pairs}
         )
-        .select_related("split")
+        .select_related("split", "predictions")
         .order_by("split__name", "split__revision", "protocol")
     )
     return [e for e in found if (e.predictions_id, e.split_id) in pairs]
@@ -525,6 +537,7 @@ def evidence_for(version):
     broken, head, count = verify_audit()
     events = AuditEvent.objects.filter(subject=f"version:{version.pk}").order_by("id")
     return {
+        "caution": CAUTION,
         "detector": detector.name,
         "team": detector.team.name,
         "version": version.label,
@@ -573,17 +586,21 @@ def evidence_for(version):
     }
 
 
-def version_states(versions):
-    """{version id: badge} for many versions of any detectors, in three queries."""
+def baselines_of(detectors):
+    """{detector id: its baseline version (id and detector id only)}, in one query:
+    for each detector the approved version decided last, as ``baseline_of``."""
     from .models import ModelVersion
 
-    versions = list(versions)
-    baselines = {}
     approved = ModelVersion.objects.filter(
-        detector_id__in={v.detector_id for v in versions}, sign_off__decision="approved"
+        detector__in=detectors, sign_off__decision="approved"
     ).order_by("sign_off__decided_at")
-    for v in approved.only("id", "detector_id"):
-        baselines[v.detector_id] = v
+    return {v.detector_id: v for v in approved.only("id", "detector_id")}
+
+
+def version_states(versions):
+    """{version id: badge} for many versions of any detectors, in three queries."""
+    versions = list(versions)
+    baselines = baselines_of({v.detector_id for v in versions})
     blocked = blocked_versions(versions)
     return {v.pk: state_of(v, baselines.get(v.detector_id), blocked) for v in versions}
 
@@ -619,17 +636,15 @@ def verdict_of(version):
 def visible_audit_events(user):
     """Reviewers (anywhere) read the whole trail; members read the events about their
     teams' detectors, versions, prediction sets and evaluations, and split events."""
-    from django.db.models import CharField, Exists, OuterRef, Q, Value
+    from django.db.models import CharField, Q, Value
     from django.db.models.functions import Cast, Concat
-
-    from evaluation.models import Evaluation
 
     from .models import AuditEvent, ModelVersion
 
     events = AuditEvent.objects.all()
     if not user.is_authenticated:
         return events.none()
-    if user.is_superuser or Membership.objects.filter(user=user, role="reviewer").exists():
+    if reads_all_teams(user):
         return events
 
     def subjects(queryset, prefix):
@@ -639,17 +654,12 @@ def visible_audit_events(user):
 
     detectors = visible_detectors(user)
     sets = PredictionSet.objects.filter(version__detector__in=detectors)
-    evaluations = Evaluation.objects.filter(
-        Exists(
-            sets.filter(predictions_id=OuterRef("predictions_id"), split_id=OuterRef("split_id"))
-        )
-    )
     return events.filter(
         Q(subject__startswith="split:")
         | Q(subject__in=subjects(Detector.objects.filter(pk__in=detectors), "detector:"))
         | Q(subject__in=subjects(ModelVersion.objects.filter(detector__in=detectors), "version:"))
         | Q(subject__in=subjects(sets, "prediction-set:"))
-        | Q(subject__in=subjects(evaluations, "evaluation:"))
+        | Q(subject__in=subjects(visible_evaluations(user), "evaluation:"))
     )
 
 

@@ -148,19 +148,17 @@ def requeue_unjudged():
     same_input = {"predictions_id": OuterRef("predictions_id"), "split_id": OuterRef("split_id")}
     cutoff = timezone.now() - datetime.timedelta(seconds=settings.BENCHBOOK_QUEUED_GRACE_SECONDS)
     last_finished = Evaluation.objects.filter(**same_input).order_by("-finished_at")
-    finished_sets = PredictionSet.objects.annotate(
+    sets = PredictionSet.objects.annotate(
         last=Subquery(last_finished.values("finished_at")[:1]),
         open=Exists(Evaluation.objects.filter(**same_input, state__in=["queued", "running"])),
-    ).filter(open=False, last__lt=cutoff)
-    stale = finished_sets.filter(
+    )
+    stale = sets.filter(open=False, last__lt=cutoff).filter(
         Q(version__judged_at__isnull=True) | Q(version__judged_at__lt=F("last"))
     )
-    open_versions = PredictionSet.objects.annotate(
-        open=Exists(Evaluation.objects.filter(**same_input, state__in=["queued", "running"]))
-    ).filter(open=True)
+    busy = sets.filter(open=True)  # a version with any evaluation still to come waits
     version_ids = sorted(
         set(stale.values_list("version_id", flat=True))
-        - set(open_versions.values_list("version_id", flat=True))
+        - set(busy.values_list("version_id", flat=True))
     )
     for version_id in version_ids:
         _send(judge, version_id)

@@ -58,7 +58,7 @@ def handle(exc, context):
 
     if isinstance(exc, engine.InputError):
         located = {k: v for k, v in exc.as_dict().items() if k != "message"}
-        errors = [(getattr(exc, "request_field", ""), str(exc))]
+        errors = [(getattr(exc, "argument", ""), str(exc))]  # which upload, if known
         return Response(body(400, "invalid_file", errors, **located), status=400)
     if isinstance(exc, DecisionError):
         return Response(body(409, "not_allowed", [("", str(exc))]), status=409)

@@ -16,25 +16,23 @@ from rest_framework import exceptions, generics, renderers
 from rest_framework.response import Response
 from rest_framework.views import APIView
 
-from evaluation import engine
 from evaluation import services as evaluation_services
 from evaluation.models import BenchmarkSplit, Evaluation
 
 from .. import criteria, selectors, services
 from ..models import ModelVersion, Outcome, PredictionSet, SignOff
 from . import serializers as s
-from .errors import ApiSchema, body, error_response
-
-CAUTION = (
-    "Benchmark metrics support, and do not replace, the safety validation of a perception "
-    "system under the applicable standards (for example ISO 26262, ISO 21448, UL 4600) and "
-    "your organisation's release process."
-)
+from .errors import ApiSchema, error_response
 
 
 class PayloadTooLarge(exceptions.APIException):
     status_code = 413
     default_code = "too_large"
+
+
+class NotScored(exceptions.APIException):
+    status_code = 409
+    default_code = "not_scored"
 
 
 def _refuse_oversized(request):
@@ -144,8 +142,7 @@ class Me(Endpoint, APIView):
                 "teams": [
                     {"id": m.team_id, "name": m.team.name, "role": m.role} for m in memberships
                 ],
-                "reads_all_teams": request.user.is_superuser
-                or memberships.filter(role="reviewer").exists(),
+                "reads_all_teams": selectors.reads_all_teams(request.user),
             }
         )
 
@@ -161,10 +158,8 @@ class DetectorMixin(Endpoint):
 
     def get_serializer_context(self):
         context = super().get_serializer_context()
-        approved = ModelVersion.objects.filter(
-            detector__in=self.get_queryset(), sign_off__decision="approved"
-        ).order_by("sign_off__decided_at")
-        context["baselines"] = dict(approved.values_list("detector_id", "id"))
+        baselines = selectors.baselines_of(self.get_queryset())
+        context["baselines"] = {detector_id: v.pk for detector_id, v in baselines.items()}
         return context
 
 
@@ -294,19 +289,8 @@ class VersionVerdict(Endpoint, APIView):
         failing = Outcome.objects.filter(version=found, status="fail").select_related(
             "split", "criteria"
         )
-        evaluations = Evaluation.objects.filter(
-            pk__in=[e.pk for e in verdict["evaluations"]]
-        ).select_related("split", "predictions")
         return Response(
-            s.VerdictSerializer(
-                {
-                    "version": found.pk,
-                    "verdict": verdict["verdict"],
-                    "evaluations": sorted(evaluations, key=lambda e: (str(e.split), e.protocol)),
-                    "outcome_counts": verdict["outcome_counts"],
-                    "failing": failing,
-                }
-            ).data
+            s.VerdictSerializer({"version": found.pk, **verdict, "failing": failing}).data
         )
 
 
@@ -374,7 +358,6 @@ class VersionEvidence(Endpoint, APIView):
     def get(self, request, pk):
         found = _version(request, pk)
         report = selectors.evidence_for(found)
-        report["caution"] = CAUTION
         if request.accepted_renderer.format == "html":
             html = render_to_string("releases/evidence_report.html", {"report": report})
             return Response(html)
@@ -499,18 +482,14 @@ class SplitList(Endpoint, generics.ListCreateAPIView):
             raise exceptions.PermissionDenied("only engineers and leads load benchmark splits")
         _refuse_oversized(request)
         data = _valid(s.SplitInput, request)
-        try:
-            split = evaluation_services.load_split(
-                name=data["name"],
-                revision=data["revision"],
-                truth=data["truth"],
-                images=data.get("images"),
-                description=data["description"],
-                created_by=request.user.get_username(),
-            )
-        except engine.InputError as e:
-            e.request_field = "images" if data.get("images") and "images" in e.path else "truth"
-            raise
+        split = evaluation_services.load_split(
+            name=data["name"],
+            revision=data["revision"],
+            truth=data["truth"],
+            images=data.get("images"),
+            description=data["description"],
+            created_by=request.user.get_username(),
+        )
         return Response(s.SplitSerializer(split).data, status=201)
 
 
@@ -642,10 +621,7 @@ class EvaluationResult(EvaluationMixin, generics.GenericAPIView):
     def get(self, request, pk):
         evaluation = self.get_object()
         if evaluation.state != Evaluation.State.DONE:
-            return Response(
-                body(409, "not_scored", [("", f"evaluation {pk} is {evaluation.state}")]),
-                status=409,
-            )
+            raise NotScored(f"evaluation {pk} is {evaluation.state}")
         card = evaluation.scorecard
         return Response(
             {

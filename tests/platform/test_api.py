@@ -536,3 +536,27 @@ def test_detail_endpoints_return_their_object_and_hide_other_teams(api, uploaded
         ),
         404,
     )
+
+
+def test_a_bad_table_of_a_csv_split_is_named_by_its_field(api, team):
+    """A CSV split has two uploads; the error says which one, whatever the files are called."""
+    boxes = "image_id,label,x_min,y_min,x_max,y_max\nf1,car,10,10,90,60\nf2,car,5,5,25,70\n"
+    frames = "image_id,width,height,tags\nf1,1280,720,night\nf1,640,480,day\n"
+    response = api("engineer").post(
+        API + "splits/",
+        {"name": "kerb-stops", "revision": 1, "truth": file("boxes.csv", boxes),
+         "images": file("frames.csv", frames)},
+        format="multipart",
+    )  # fmt: skip
+    body = _error(response, 400, path="images")
+    assert body["file"] == "frames.csv" and body["field"] == "image_id"
+    bad_boxes = boxes.replace("90,60", "90,oops")
+    response = api("engineer").post(
+        API + "splits/",
+        {"name": "kerb-stops", "revision": 1, "truth": file("boxes.csv", bad_boxes),
+         "images": file("frames.csv", frames.replace("f1,640,480", "f2,640,480"))},
+        format="multipart",
+    )  # fmt: skip
+    body = _error(response, 400, path="truth")
+    assert body["file"] == "boxes.csv"
+    assert not BenchmarkSplit.objects.filter(name="kerb-stops").exists()

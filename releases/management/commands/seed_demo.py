@@ -40,8 +40,6 @@ class Command(BaseCommand):
         else:
             password = password or secrets.token_urlsafe(9)
             self._seed(password)
-            from django.contrib.auth import get_user_model
-
             from releases import tokens
 
             engineer = get_user_model().objects.get(username="engineer")
