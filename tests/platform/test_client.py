@@ -64,7 +64,7 @@ def test_a_pipeline_gates_on_the_verdict(
     split_truth,
     users,
     run,
-    tmp_path,  # noqa: F811
+    tmp_path,
 ):
     evaluation_services.load_split(
         name="bay-night", revision=1, truth=upload("bay-night.json", split_truth)
@@ -74,22 +74,13 @@ def test_a_pipeline_gates_on_the_verdict(
     connect = ["--url", live_server.url, "--token", token]
     good = _write(tmp_path / "good.json", detections_for(split_truth))
 
+    def submit(version, *splits):
+        """``submit --wait`` of Forward camera ``version``; ``splits`` are the split args."""
+        detector_args = ["--detector", "Forward camera", "--version", version]
+        return run("submit", *connect, *detector_args, *splits, "--wait", "--poll", "0.3")
+
     # 0: no criteria yet, nothing can regress.
-    code, out, err = run(
-        "submit",
-        *connect,
-        "--detector",
-        "Forward camera",
-        "--version",
-        "1.0",
-        "--split",
-        "bay-night",
-        "--predictions",
-        good,
-        "--wait",
-        "--poll",
-        "0.3",
-    )
+    code, out, err = submit("1.0", "--split", "bay-night", "--predictions", good)
     assert code == 0, out + err
     assert "1.0: no criteria" in out and "AP50" in out and "bay-night rev 1" in out
     assert f"scorecard: {live_server.url}/versions/" in out
@@ -117,62 +108,27 @@ def test_a_pipeline_gates_on_the_verdict(
         == 201
     )
 
-    # 3: a version that lost most cars regresses.
+    # 3: a version that lost every detection of one class regresses.
     lost = split_truth["categories"][0]["id"]
     worse = [d for d in detections_for(split_truth) if d["category_id"] != lost]
-    code, out, err = run(
-        "submit",
-        *connect,
-        "--detector",
-        "Forward camera",
-        "--version",
-        "1.1",
-        "--split",
-        f"bay-night@1={_write(tmp_path / 'worse.json', worse)}",
-        "--wait",
-        "--poll",
-        "0.3",
+    code, out, err = submit(
+        "1.1", "--split", f"bay-night@1={_write(tmp_path / 'worse.json', worse)}"
     )
     assert code == 3, out + err
     assert "1.1: regression (blocked)" in out and "fail" in out
     assert "do not replace" in out  # the caution beside a release verdict
 
     # 0 again: the same predictions as the baseline, under a new label, pass.
-    code, out, err = run(
-        "submit",
-        *connect,
-        "--detector",
-        "Forward camera",
-        "--version",
-        "1.2",
-        "--split",
-        "bay-night:1",  # name:revision, as the criteria write it
-        "--predictions",
-        good,
-        "--wait",
-        "--poll",
-        "0.3",
-    )
+    # name:revision, as the criteria write it
+    code, out, err = submit("1.2", "--split", "bay-night:1", "--predictions", good)
     assert code == 0, out + err
     assert "1.2: no regression" in out
 
     # 2: predictions the worker refuses; the message names file, record and field.
     bad = detections_for(split_truth)
     bad[4]["bbox"][2] = -3
-    code, out, err = run(
-        "submit",
-        *connect,
-        "--detector",
-        "Forward camera",
-        "--version",
-        "1.3",
-        "--split",
-        "bay-night",
-        "--predictions",
-        _write(tmp_path / "bad.json", bad),
-        "--wait",
-        "--poll",
-        "0.3",
+    code, out, err = submit(
+        "1.3", "--split", "bay-night", "--predictions", _write(tmp_path / "bad.json", bad)
     )
     assert code == 2, out + err
     assert "bad.json: record 4: field 'bbox': width must be > 0, got -3" in out
