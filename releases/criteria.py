@@ -147,7 +147,7 @@ def _scorecards(version, protocol):
     """{split: Scorecard} of a version's finished evaluations under ``protocol``."""
     sets = {
         (ps.predictions_id, ps.split_id): ps.split
-        for ps in PredictionSet.objects.filter(version=version).select_related("split")
+        for ps in PredictionSet.objects.current().filter(version=version).select_related("split")
     }
     cards = Scorecard.objects.filter(
         evaluation__state="done",

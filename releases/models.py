@@ -79,8 +79,19 @@ class ModelVersion(models.Model):
         return f"{self.detector} {self.label}"
 
 
+class PredictionSetQuerySet(models.QuerySet):
+    def current(self):
+        """The sets that count for their version: at most one per version x split.
+
+        Read a version's predictions only through this; sets outside it are history.
+        """
+        return self.all()
+
+
 class PredictionSet(models.Model):
     """A version's predictions on one benchmark split."""
+
+    objects = PredictionSetQuerySet.as_manager()
 
     version = models.ForeignKey(
         ModelVersion, on_delete=models.PROTECT, related_name="prediction_sets"

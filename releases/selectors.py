@@ -61,7 +61,7 @@ def evaluations_of(version):
     """Every evaluation of a version's prediction sets, with its split and file (2 queries)."""
     from evaluation.models import Evaluation
 
-    sets = list(version.prediction_sets.all())
+    sets = list(version.prediction_sets.current())
     pairs = {(ps.predictions_id, ps.split_id) for ps in sets}
     found = (
         Evaluation.objects.filter(
@@ -150,9 +150,9 @@ def history_chart(detector):
     baseline = baseline_of(detector)
     blocked = blocked_versions(versions)
     sets = list(
-        PredictionSet.objects.filter(version__detector=detector).values_list(
-            "version_id", "split_id", "predictions_id"
-        )
+        PredictionSet.objects.current()
+        .filter(version__detector=detector)
+        .values_list("version_id", "split_id", "predictions_id")
     )
     version_of = {(file_id, split_id): version_id for version_id, split_id, file_id in sets}
     split_objects = {s.pk: s for s in _splits({split_id for _, split_id, _ in sets})}
@@ -241,7 +241,7 @@ def version_scorecards(version):
 
     detector = version.detector
     sets = sorted(
-        version.prediction_sets.select_related("split", "predictions", "uploaded_by"),
+        version.prediction_sets.current().select_related("split", "predictions", "uploaded_by"),
         key=lambda ps: (ps.split.name, ps.split.revision),
     )
     cards = _scorecards(sets, detector.protocols, with_result=True)
@@ -289,7 +289,9 @@ def compare_versions(reference, candidate):
 
     detector = reference.detector
     sets = list(
-        PredictionSet.objects.filter(version__in=[reference, candidate]).select_related("split")
+        PredictionSet.objects.current()
+        .filter(version__in=[reference, candidate])
+        .select_related("split")
     )
     cards = _scorecards(sets, [detector.primary_protocol], with_result=True)
     from .models import Outcome
@@ -370,11 +372,13 @@ def overview_for(user):
         baseline[version.detector_id] = version
     shown = [v for v in [*newest.values(), *baseline.values()] if v]
     blocked = blocked_versions(shown)
-    sets = list(PredictionSet.objects.filter(version__in=shown).select_related("split", "version"))
+    sets = list(
+        PredictionSet.objects.current().filter(version__in=shown).select_related("split", "version")
+    )
 
     protocols = {d.primary_protocol for d in detectors}
     cards = _scorecards(sets, protocols)
-    all_sets = PredictionSet.objects.filter(version__detector__in=detectors)
+    all_sets = PredictionSet.objects.current().filter(version__detector__in=detectors)
     pending = Evaluation.objects.filter(
         state__in=["queued", "running"],
         predictions_id__in=all_sets.values("predictions_id"),
@@ -422,7 +426,8 @@ def overview_for(user):
 def split_usage(user, split):
     """Versions of visible detectors that were scored on ``split``."""
     return list(
-        PredictionSet.objects.filter(split=split, version__detector__in=visible_detectors(user))
+        PredictionSet.objects.current()
+        .filter(split=split, version__detector__in=visible_detectors(user))
         .select_related("version__detector")
         .order_by("version__detector__name", "version__created_at")
     )

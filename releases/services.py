@@ -84,7 +84,7 @@ def submit_predictions(version, split, uploaded, user):
     require_upload_right(user, version.detector)
     prediction_file = evaluation_services.store_predictions(uploaded)
     with transaction.atomic():
-        existing = PredictionSet.objects.filter(version=version, split=split).first()
+        existing = PredictionSet.objects.current().filter(version=version, split=split).first()
         if existing is not None:
             if existing.predictions_id != prediction_file.pk:
                 raise UploadError(
@@ -120,7 +120,7 @@ def judge_if_complete(version_id):
 
     from .tasks import judge
 
-    sets = PredictionSet.objects.filter(version_id=version_id)
+    sets = PredictionSet.objects.current().filter(version_id=version_id)
     pending = (
         Evaluation.objects.filter(
             predictions_id__in=sets.values("predictions_id"), split_id__in=sets.values("split_id")
@@ -148,7 +148,7 @@ def requeue_unjudged():
     same_input = {"predictions_id": OuterRef("predictions_id"), "split_id": OuterRef("split_id")}
     cutoff = timezone.now() - datetime.timedelta(seconds=settings.BENCHBOOK_QUEUED_GRACE_SECONDS)
     last_finished = Evaluation.objects.filter(**same_input).order_by("-finished_at")
-    sets = PredictionSet.objects.annotate(
+    sets = PredictionSet.objects.current().annotate(
         last=Subquery(last_finished.values("finished_at")[:1]),
         open=Exists(Evaluation.objects.filter(**same_input, state__in=["queued", "running"])),
     )
@@ -213,7 +213,7 @@ def sign_off(version, user, decision, comment, *, justification=""):
         raise DecisionError(f"decision must be one of {', '.join(SignOff.Decision.values)}")
     if not comment.strip():
         raise DecisionError("a sign-off needs a comment")
-    sets = list(version.prediction_sets.all())
+    sets = list(version.prediction_sets.current())
     if not sets:
         raise DecisionError(f"{version} has no predictions on any split yet")
     evaluations = list(

@@ -48,8 +48,10 @@ def judge_when_complete(sender, evaluation, **kwargs):
     from .models import PredictionSet
     from .services import judge_if_complete
 
-    versions = PredictionSet.objects.filter(
-        predictions_id=evaluation.predictions_id, split_id=evaluation.split_id
-    ).values_list("version_id", flat=True)
+    versions = (
+        PredictionSet.objects.current()
+        .filter(predictions_id=evaluation.predictions_id, split_id=evaluation.split_id)
+        .values_list("version_id", flat=True)
+    )
     for version_id in set(versions):
         judge_if_complete(version_id)
