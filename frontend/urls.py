@@ -12,6 +12,11 @@ urlpatterns = [
     path("detectors/<int:detector_id>/", views.detector, name="detector"),
     path("detectors/<int:detector_id>/upload/", views.upload_predictions, name="upload"),
     path("detectors/<int:detector_id>/compare/", views.compare, name="compare"),
+    path(
+        "detectors/<int:detector_id>/compare/intervals/",
+        views.compare_intervals,
+        name="compare-intervals",
+    ),
     path("detectors/<int:detector_id>/criteria/", views.release_criteria, name="criteria"),
     path("detectors/<int:detector_id>/webhook/", views.webhook, name="webhook"),
     path("versions/<int:version_id>/", views.version, name="version"),

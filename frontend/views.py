@@ -173,6 +173,35 @@ def compare(request, detector_id):
 
 
 @login_required
+def compare_intervals(request, detector_id):
+    """Queue the ΔAP intervals of the chosen pair (reload the page to see them)."""
+    from releases import comparisons
+
+    found = _detector_or_404(request.user, detector_id)
+    if request.method != "POST":
+        return redirect("compare", detector_id=found.pk)
+    versions = {str(v.pk): v for v in found.versions.all()}
+    reference = versions.get(request.POST.get("reference"))
+    candidate = versions.get(request.POST.get("candidate"))
+    if reference is None or candidate is None:
+        raise Http404("no such version of this detector")
+    try:
+        queued = comparisons.request_intervals(reference, candidate, request.user)
+    except UploadError as e:
+        messages.error(request, str(e))
+    else:
+        messages.success(
+            request,
+            f"intervals of {candidate.label} − {reference.label} queued on {len(queued)} "
+            "split(s); reload in a minute"
+            if queued
+            else "nothing to compute: every shared split has its intervals or is being computed",
+        )
+    url = reverse("compare", args=[found.pk])
+    return redirect(f"{url}?reference={reference.pk}&candidate={candidate.pk}")
+
+
+@login_required
 def release_criteria(request, detector_id):
     from releases import criteria
 

@@ -20,3 +20,11 @@ def sweep():
     from . import services
 
     return services.requeue_unjudged()
+
+
+@shared_task(acks_late=True)
+def compare(interval_id):
+    """Compute one requested ΔAP interval (see releases.comparisons)."""
+    from . import comparisons
+
+    comparisons.compute(interval_id)

@@ -10,14 +10,6 @@ register.filter("delta", delta)
 
 
 @register.filter
-def direction(value):
-    """CSS class of a delta: worse, better or level (at display precision)."""
-    if value is None or abs(value) < 0.0005:
-        return "level"
-    return "better" if value > 0 else "worse"
-
-
-@register.filter
 def get(mapping, key):
     return mapping.get(key) if mapping else None
 
@@ -25,3 +17,9 @@ def get(mapping, key):
 @register.filter
 def subtract(value, other):
     return None if value is None or other is None else value - other
+
+
+@register.filter
+def percent(value):
+    """A confidence level as people write it: 0.95 -> "95 %"."""
+    return "" if value is None else f"{100 * value:g} %"

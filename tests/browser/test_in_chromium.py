@@ -1,12 +1,6 @@
-"""The pages in a real headless Chromium (Debian's package, driven by Playwright).
-
-Under CI=true these must run; elsewhere they skip when /usr/bin/chromium is missing.
-Screenshots go to test-artifacts/ for a person to look at.
-"""
+"""Charts, compare selection and live progress in a real headless Chromium."""
 
 import datetime
-import os
-import pathlib
 
 import pytest
 from django.utils import timezone
@@ -14,53 +8,10 @@ from django.utils import timezone
 from releases import services
 
 from ..platform.conftest import detections_for, upload
+from .conftest import BROWSER_MARKS
+from .conftest import shot as _shot
 
-CHROMIUM = "/usr/bin/chromium"
-ARTIFACTS = pathlib.Path(__file__).resolve().parents[2] / "test-artifacts"
-
-pytestmark = [
-    pytest.mark.django_db(transaction=True),
-    pytest.mark.skipif(
-        not os.path.exists(CHROMIUM) and os.environ.get("CI") != "true",
-        reason="Debian's chromium is not installed (.ci/run installs it)",
-    ),
-]
-
-
-@pytest.fixture(scope="module")
-def browser():
-    playwright = pytest.importorskip("playwright.sync_api")
-    # Playwright's sync API keeps an event loop in this thread; the ORM calls of the
-    # test itself are still synchronous (Django's docs on async safety).
-    os.environ["DJANGO_ALLOW_ASYNC_UNSAFE"] = "true"
-    with playwright.sync_playwright() as p:
-        chromium = p.chromium.launch(
-            executable_path=CHROMIUM,
-            args=[
-                "--no-sandbox",
-                "--disable-gpu",
-                "--disable-quic",
-                "--no-first-run",
-                "--disable-background-networking",
-                "--disable-component-update",
-                "--disable-sync",
-            ],
-        )
-        yield chromium
-        chromium.close()
-    del os.environ["DJANGO_ALLOW_ASYNC_UNSAFE"]
-
-
-@pytest.fixture
-def page(browser, live_server, users, flushable):
-    context = browser.new_context(viewport={"width": 1280, "height": 900})
-    page = context.new_page()
-    page.goto(f"{live_server.url}/login/")
-    page.fill("#id_username", "lead")
-    page.fill("#id_password", "pw-lead")
-    page.click("button[type=submit]")
-    yield page
-    context.close()
+pytestmark = BROWSER_MARKS
 
 
 @pytest.fixture
@@ -85,11 +36,6 @@ def scored(detector, split_truth, users, run_tasks, team):
         )
         versions.append(version)
     return split, versions
-
-
-def _shot(page, name):
-    ARTIFACTS.mkdir(exist_ok=True)
-    page.screenshot(path=str(ARTIFACTS / f"{name}.png"), full_page=True)
 
 
 def test_history_chart_holds_every_version_and_follows_the_selectors(
