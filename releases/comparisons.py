@@ -30,7 +30,9 @@ def _inputs(reference, candidate):
     under the primary protocol."""
     protocol = reference.detector.primary_protocol
     sets = list(
-        PredictionSet.objects.filter(version__in=[reference, candidate]).select_related("split")
+        PredictionSet.objects.current()
+        .filter(version__in=[reference, candidate])
+        .select_related("split")
     )
     cards = selectors._scorecards(sets, [protocol])
     pairs = {}
