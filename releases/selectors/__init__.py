@@ -1,0 +1,56 @@
+"""Reads that pages, the API and services need, one module per page.
+
+Every function here does a fixed number of queries, whatever the number of versions.
+"""
+
+from .access import (  # noqa: F401
+    CAUTION,
+    UPLOAD_ROLES,
+    can_load_splits,
+    detector_for,
+    evaluation_for,
+    evaluations_of,
+    reads_all_teams,
+    role_in,
+    version_for,
+    visible_audit_events,
+    visible_detectors,
+    visible_evaluations,
+    visible_teams,
+)
+from .compare import (  # noqa: F401
+    _delta,
+    _stored_intervals,
+    compare_versions,
+    significance,
+)
+from .decisions import (  # noqa: F401
+    baseline_of,
+    baselines_of,
+    blocked_versions,
+    outcomes_of,
+    state_of,
+    verdict_of,
+    version_states,
+)
+from .evidence import (  # noqa: F401
+    evidence_for,
+)
+from .history import (  # noqa: F401
+    history_chart,
+)
+from .overview import (  # noqa: F401
+    overview_for,
+    split_usage,
+)
+from .scores import (  # noqa: F401
+    METRICS,
+    _class_rows,
+    _scorecards,
+    _splits,
+    class_numbers,
+    summary_items,
+)
+from .version import (  # noqa: F401
+    version_scorecards,
+)

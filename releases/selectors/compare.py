@@ -1,0 +1,163 @@
+"""The compare page: deltas between two versions and what marks them."""
+
+from ..models import PredictionSet
+from .scores import _class_rows, _scorecards
+
+
+def significance(delta, interval):
+    """How the compare page marks a delta: ``regression`` or ``gain`` only when its
+    interval excludes zero (the percentile-interval test of a paired bootstrap, common
+    practice), ``not significant`` when it holds zero, None when there is no interval."""
+    if delta is None or not interval or interval[0] is None or interval[1] is None:
+        return None
+    if interval[1] < 0:
+        return "regression"
+    if interval[0] > 0:
+        return "gain"
+    return "not significant"
+
+
+def _delta(name, reference, candidate, interval=None):
+    delta = None if reference is None or candidate is None else candidate - reference
+    return {
+        "class": name,
+        "reference": reference,
+        "candidate": candidate,
+        "delta": delta,
+        "interval": interval,
+        "significance": significance(delta, interval),
+    }
+
+
+def _stored_intervals(reference, candidate, pairs, protocol):
+    """{split id: (state, {tag or "": {class: [low, high, confidence]}}, error)} of the
+    intervals computed on request for exactly these inputs (``releases.comparisons``)."""
+    from django.conf import settings as django_settings
+    from django.db.models import Q
+
+    from ..comparisons import CONFIDENCE
+    from ..models import ComparisonInterval
+
+    if not pairs:
+        return {}
+    match = Q()
+    for ref_set, cand_set in pairs.values():
+        match |= Q(
+            split_id=cand_set.split_id,
+            reference_predictions_id=ref_set.predictions_id,
+            candidate_predictions_id=cand_set.predictions_id,
+        )
+    rows = ComparisonInterval.objects.filter(
+        match,
+        protocol=protocol,
+        confidence=CONFIDENCE,
+        resamples=django_settings.BENCHBOOK_BOOTSTRAP_RESAMPLES,
+        seed=django_settings.BENCHBOOK_BOOTSTRAP_SEED,
+    )
+    return {
+        row.split_id: (
+            row.state,
+            {
+                tag: {name: [*pair, row.confidence] for name, pair in by_class.items()}
+                for tag, by_class in row.intervals.items()
+            },
+            row.error,
+        )
+        for row in rows
+    }
+
+
+def compare_versions(reference, candidate):
+    """Per shared split: per-class AP deltas (candidate - reference), worst first,
+    tag-slice deltas, both versions' precision-recall curves, and the intervals that
+    decide whether a delta is marked: from the candidate's judgement against this
+    reference, else computed on request (``interval_state``: None, queued, done or
+    failed; ``missing_intervals`` when a delta has none and none is being computed)."""
+    from evaluation.models import SliceScore
+
+    from ..models import Outcome
+
+    detector = reference.detector
+    protocol = detector.primary_protocol
+    sets = list(
+        PredictionSet.objects.current()
+        .filter(version__in=[reference, candidate])
+        .select_related("split")
+    )
+    cards = _scorecards(sets, [protocol], with_result=True)
+    # Intervals exist where the candidate was judged against this reference (its baseline).
+    judged = {
+        (o.split_id, o.class_name): [o.low, o.high, o.rule.get("confidence")]
+        for o in Outcome.objects.filter(
+            version=candidate, baseline=reference, low__isnull=False, rule__tag__isnull=True
+        )
+    }
+    by_version, pairs = {}, {}
+    for ps in sets:
+        card = cards.get((ps.pk, protocol))
+        if card is not None:
+            by_version.setdefault(ps.split, {})[ps.version_id] = card
+            pairs.setdefault(ps.split, [None, None])[ps.version_id == candidate.pk] = ps
+    pairs = {s: p for s, p in pairs.items() if None not in p}
+    stored = _stored_intervals(reference, candidate, pairs, protocol)
+    used = [c for pair in by_version.values() for c in pair.values()]
+    rows = _class_rows(used)
+    tag_ap = {}
+    for s in SliceScore.objects.filter(scorecard__in=used, kind="tag"):
+        tag_ap[(s.scorecard_id, s.name, s.class_name or "mean")] = s.ap
+    out = []
+    for split in sorted(by_version, key=lambda s: (s.name, s.revision)):
+        pair = by_version[split]
+        if reference.pk not in pair or candidate.pk not in pair:
+            continue
+        a, b = pair[reference.pk], pair[candidate.pk]
+        state, computed, error = stored.get(split.pk, (None, {}, ""))
+        computed = computed if state == "done" else {}
+        whole = computed.get("", {})
+        deltas = []
+        for name in ["mean", *detector.classes]:
+            if name == "mean":
+                va, vb = a.summary.get("AP"), b.summary.get("AP")
+            else:
+                ra, rb = rows.get(a.pk, {}).get(name), rows.get(b.pk, {}).get(name)
+                va, vb = (ra.ap if ra else None), (rb.ap if rb else None)
+            interval = whole.get(name) or judged.get((split.pk, name))
+            deltas.append(_delta(name, va, vb, interval))
+        deltas.sort(key=lambda d: (d["class"] != "mean", d["delta"] is None, d["delta"] or 0))
+        tags = sorted({k[1] for k in tag_ap if k[0] in (a.pk, b.pk)})
+        tag_rows = [
+            {
+                "tag": tag,
+                "cells": [
+                    _delta(
+                        name,
+                        tag_ap.get((a.pk, tag, name)),
+                        tag_ap.get((b.pk, tag, name)),
+                        computed.get(tag, {}).get(name),
+                    )
+                    for name in ["mean", *detector.classes]
+                ],
+            }
+            for tag in tags
+        ]
+        curves = {
+            name: {
+                "reference": a.result["per_class"][name]["curve"],
+                "candidate": b.result["per_class"][name]["curve"],
+            }
+            for name in detector.classes
+            if name in a.result["per_class"] and name in b.result["per_class"]
+        }
+        out.append(
+            {
+                "split": split,
+                "deltas": deltas,
+                "tags": tag_rows,
+                "curves": curves,
+                "interval_state": state,
+                "missing_intervals": state != "done"
+                and any(d["delta"] is not None and not d["interval"] for d in deltas),
+                "interval_error": error if state == "failed" else "",
+            }
+        )
+    return out

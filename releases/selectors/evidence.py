@@ -1,0 +1,100 @@
+"""The evidence report a reviewer keeps."""
+
+from .access import CAUTION
+from .decisions import outcomes_of
+from .scores import class_numbers, summary_items
+from .version import version_scorecards
+
+
+def evidence_for(version):
+    """Everything a reviewer needs about one version, JSON-serialisable."""
+    from django.conf import settings as django_settings
+
+    from evaluation.engine import ENGINE_VERSION
+
+    from ..audit import verify_audit
+    from ..models import AuditEvent
+
+    detector = version.detector
+    outcomes = outcomes_of(version)
+    intervals = {
+        (o.split_id, o.class_name): (o.low, o.high)
+        for o in outcomes
+        if o.rule.get("kind") == "no_significant_drop" and o.low is not None
+    }
+    splits = []
+    for entry in version_scorecards(version):
+        card = entry["card"]
+        if card is None:
+            splits.append({"split": str(entry["split"]), "scored": False})
+            continue
+        classes = []
+        for row in entry["classes"]:
+            if row is None:
+                continue
+            low, high = intervals.get((entry["split"].pk, row.class_name), (None, None))
+            classes.append({**class_numbers(row), "delta_AP_interval": [low, high]})
+        splits.append(
+            {
+                "split": str(entry["split"]),
+                "scored": True,
+                "protocol": card.protocol,
+                "protocol_version": card.protocol_version,
+                "engine_version": card.engine_version,
+                "split_sha256": card.split_sha256,
+                "predictions_sha256": card.predictions_sha256,
+                "summary": dict(summary_items(card.summary)),
+                "classes": classes,
+            }
+        )
+    decision = getattr(version, "sign_off", None)
+    broken, head, count = verify_audit()
+    events = AuditEvent.objects.filter(subject=f"version:{version.pk}").order_by("id")
+    return {
+        "caution": CAUTION,
+        "detector": detector.name,
+        "team": detector.team.name,
+        "version": version.label,
+        "source_commit": version.source_commit,
+        "registered": version.created_at.isoformat(),
+        "engine_version": ENGINE_VERSION,
+        "bootstrap": {
+            "resamples": django_settings.BENCHBOOK_BOOTSTRAP_RESAMPLES,
+            "seed": django_settings.BENCHBOOK_BOOTSTRAP_SEED,
+        },
+        "splits": splits,
+        "outcomes": [
+            {
+                "rule": o.rule_index + 1,
+                "criteria_version": o.criteria.number,
+                "kind": o.rule.get("kind"),
+                "split": str(o.split),
+                "class": o.class_name,
+                "status": o.status,
+                "value": o.value,
+                "baseline": o.baseline.label if o.baseline else None,
+                "baseline_value": o.baseline_value,
+                "interval": [o.low, o.high],
+                "detail": o.detail,
+            }
+            for o in outcomes
+        ],
+        "sign_off": None
+        if decision is None
+        else {
+            "decision": decision.decision,
+            "by": decision.decided_by.get_username(),
+            "at": decision.decided_at.isoformat(),
+            "comment": decision.comment,
+            "override": decision.override,
+            "justification": decision.justification,
+            "failing_rules": decision.failing_rules,
+        },
+        "audit": {
+            "chain_intact": broken is None,
+            "first_broken_event": broken,
+            "head": head,
+            "events": count,
+            "decision_events": [e.hash for e in events],
+        },
+    }

@@ -1,0 +1,86 @@
+"""The overview and the split page."""
+
+from ..models import PredictionSet
+from .access import visible_detectors
+from .decisions import blocked_versions, state_of
+from .scores import _scorecards
+
+
+def overview_for(user):
+    """For each visible detector: its newest version, headline AP per split, and
+    evaluations still queued or running (with progress)."""
+    from evaluation.models import Evaluation
+
+    from ..models import ModelVersion
+
+    detectors = list(visible_detectors(user).order_by("team__name", "name"))
+    newest = {d.pk: None for d in detectors}
+    baseline = {d.pk: None for d in detectors}
+    versions = ModelVersion.objects.filter(detector__in=detectors).select_related("sign_off")
+    for version in versions.order_by("created_at"):
+        newest[version.detector_id] = version
+    for version in ModelVersion.objects.filter(
+        detector__in=detectors, sign_off__decision="approved"
+    ).order_by("sign_off__decided_at"):
+        baseline[version.detector_id] = version
+    shown = [v for v in [*newest.values(), *baseline.values()] if v]
+    blocked = blocked_versions(shown)
+    sets = list(
+        PredictionSet.objects.current().filter(version__in=shown).select_related("split", "version")
+    )
+
+    protocols = {d.primary_protocol for d in detectors}
+    cards = _scorecards(sets, protocols)
+    all_sets = PredictionSet.objects.current().filter(version__detector__in=detectors)
+    pending = Evaluation.objects.filter(
+        state__in=["queued", "running"],
+        predictions_id__in=all_sets.values("predictions_id"),
+    ).select_related("split")
+    pending_by_file = {}
+    for evaluation in pending:
+        pending_by_file.setdefault(evaluation.predictions_id, []).append(evaluation)
+    owner = dict(all_sets.values_list("predictions_id", "version__detector_id"))
+    ap = {}
+    for (set_id, _), card in cards.items():
+        ap[set_id] = card.summary.get("AP")
+    out = []
+    for detector in detectors:
+        version, base = newest[detector.pk], baseline[detector.pk]
+        by_split = {}
+        for ps in sets:
+            if ps.version_id in {getattr(version, "pk", None), getattr(base, "pk", None)}:
+                row = by_split.setdefault(
+                    ps.split, {"split": ps.split, "candidate": None, "baseline": None}
+                )
+                if version and ps.version_id == version.pk:
+                    row["candidate"] = ap.get(ps.pk)
+                if base and ps.version_id == base.pk:
+                    row["baseline"] = ap.get(ps.pk)
+        headline = [by_split[k] for k in sorted(by_split, key=lambda s: (s.name, s.revision))]
+        running = [
+            e
+            for file_id, evs in pending_by_file.items()
+            if owner.get(file_id) == detector.pk
+            for e in evs
+        ]
+        out.append(
+            {
+                "detector": detector,
+                "newest": version,
+                "baseline": base,
+                "newest_state": state_of(version, base, blocked) if version else None,
+                "headline": headline,
+                "pending": running,
+            }
+        )
+    return out
+
+
+def split_usage(user, split):
+    """Versions of visible detectors that were scored on ``split``."""
+    return list(
+        PredictionSet.objects.current()
+        .filter(split=split, version__detector__in=visible_detectors(user))
+        .select_related("version__detector")
+        .order_by("version__detector__name", "version__created_at")
+    )

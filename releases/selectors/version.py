@@ -1,0 +1,46 @@
+"""The version page: each split's scorecard."""
+
+from .scores import _class_rows, _scorecards, summary_items
+
+
+def version_scorecards(version):
+    """Per split: the primary scorecard with its class and slice rows, and the
+    headline of every other protocol. A fixed number of queries."""
+    from evaluation.models import SliceScore
+
+    detector = version.detector
+    sets = sorted(
+        version.prediction_sets.current().select_related("split", "predictions", "uploaded_by"),
+        key=lambda ps: (ps.split.name, ps.split.revision),
+    )
+    cards = _scorecards(sets, detector.protocols, with_result=True)
+    primary = [c for (_, p), c in cards.items() if p == detector.primary_protocol]
+    rows = _class_rows(primary)
+    slices = {}
+    for s in SliceScore.objects.filter(scorecard__in=primary, kind="tag"):
+        slices.setdefault(s.scorecard_id, {}).setdefault(s.name, {})[s.class_name or "mean"] = s.ap
+    out = []
+    for ps in sets:
+        card = cards.get((ps.pk, detector.primary_protocol))
+        out.append(
+            {
+                "prediction_set": ps,
+                "split": ps.split,
+                "card": card,
+                "classes": [rows.get(card.pk, {}).get(c) for c in detector.classes] if card else [],
+                "tags": sorted(slices.get(card.pk, {}).items()) if card else [],
+                "summary": summary_items(card.summary) if card else [],
+                "sizes": [
+                    (name, card.result["slices"]["size"].get(name, {}).get("AP"))
+                    for name in ("small", "medium", "large")
+                ]
+                if card
+                else [],
+                "others": [
+                    (p, cards[(ps.pk, p)].summary.get("AP"))
+                    for p in detector.protocols
+                    if p != detector.primary_protocol and (ps.pk, p) in cards
+                ],
+            }
+        )
+    return out
