@@ -81,6 +81,11 @@ class Evaluation(models.Model):
         PredictionFile, on_delete=models.PROTECT, related_name="evaluations"
     )
     protocol = models.CharField(max_length=32)
+    box_policy = models.CharField(
+        max_length=8,
+        default="keep",
+        help_text="Boxes leaving the frame: keep (as the references), clip or reject.",
+    )
     state = models.CharField(max_length=8, choices=State.choices, default=State.QUEUED)
     progress = models.PositiveSmallIntegerField(default=0)
     attempts = models.PositiveSmallIntegerField(default=0)
@@ -96,7 +101,8 @@ class Evaluation(models.Model):
     class Meta:
         constraints = [
             models.UniqueConstraint(
-                fields=["split", "predictions", "protocol"], name="one_evaluation_per_input"
+                fields=["split", "predictions", "protocol", "box_policy"],
+                name="one_evaluation_per_input",
             )
         ]
         indexes = [models.Index(fields=["state", "queued_at"])]

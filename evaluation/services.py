@@ -119,13 +119,16 @@ def load_split(*, name, revision, truth, images=None, description="", created_by
     return split
 
 
-def load_truth_of(split):
-    """The split's ground truth as engine columns (from the columnar cache)."""
+def load_truth_of(split, boxes="keep"):
+    """The split's ground truth as engine columns (from the columnar cache), loaded
+    under the box policy ``boxes`` (``engine.BOX_POLICIES``)."""
     with local_path(split.truth_file) as truth_path:
         if split.images_file:
             with local_path(split.images_file) as images_path:
-                return engine.load_truth(truth_path, images=images_path, cache_dir=_cache_dir())
-        return engine.load_truth(truth_path, cache_dir=_cache_dir())
+                return engine.load_truth(
+                    truth_path, images=images_path, cache_dir=_cache_dir(), boxes=boxes
+                )
+        return engine.load_truth(truth_path, cache_dir=_cache_dir(), boxes=boxes)
 
 
 # Predictions ----------------------------------------------------------------------
@@ -160,13 +163,21 @@ def store_predictions(uploaded):
         return prediction_file
 
 
-def request_evaluations(split, prediction_file, protocols):
-    """One evaluation per protocol (existing ones are reused), dispatched on commit."""
+def request_evaluations(split, prediction_file, protocols, *, box_policy="keep"):
+    """One evaluation per protocol (existing ones are reused), dispatched on commit.
+
+    ``box_policy`` (``engine.BOX_POLICIES``) is part of what is evaluated: the same
+    file under another policy is another evaluation.
+    """
+    if box_policy not in engine.BOX_POLICIES:
+        raise engine.InputError(
+            "box_policy", f"unknown box policy {box_policy!r}; use {', '.join(engine.BOX_POLICIES)}"
+        )
     evaluations = []
     for protocol in protocols:
         engine.get_protocol(protocol)
         evaluation, created = Evaluation.objects.get_or_create(
-            split=split, predictions=prediction_file, protocol=protocol
+            split=split, predictions=prediction_file, protocol=protocol, box_policy=box_policy
         )
         if created:
             dispatch(evaluation.pk)
@@ -275,11 +286,15 @@ def run_evaluation(evaluation_id, claim=None):
     split, prediction_file = evaluation.split, evaluation.predictions
     protocol = engine.get_protocol(evaluation.protocol)
     try:
-        truth = load_truth_of(split)
+        truth = load_truth_of(split, evaluation.box_policy)
         _progress(evaluation, 25)
         with local_path(prediction_file.file) as path:
             predictions = engine.load_predictions(
-                path, truth, fmt=_format_of(prediction_file.original_name), cache_dir=_cache_dir()
+                path,
+                truth,
+                fmt=_format_of(prediction_file.original_name),
+                boxes=evaluation.box_policy,
+                cache_dir=_cache_dir(),
             )
         _progress(evaluation, 50)
         records = engine.match(truth, predictions, protocol)

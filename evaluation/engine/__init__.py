@@ -13,7 +13,7 @@ Command line: ``python -m evaluation.engine score --truth GT --predictions PRED`
 from .data import GroundTruth, Predictions
 from .errors import InputError
 from .evaluate import counts, evaluate
-from .loaders import load_predictions, load_truth
+from .loaders import BOX_POLICIES, load_predictions, load_truth
 from .matching import match
 from .protocols import PRESETS, Protocol, get_protocol, protocol_from_dict
 from .records import MatchRecords
@@ -21,6 +21,7 @@ from .scoring import COCO_SUMMARY_KEYS, headline, score_records
 from .version import ENGINE_VERSION
 
 __all__ = [
+    "BOX_POLICIES",
     "COCO_SUMMARY_KEYS",
     "ENGINE_VERSION",
     "PRESETS",

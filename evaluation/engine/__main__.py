@@ -5,11 +5,12 @@ Exit status: 0 on success, 2 on bad input (the message names file, record, field
 
 import argparse
 import json
+import math
 import sys
 
 from .errors import InputError
 from .evaluate import evaluate
-from .loaders import load_predictions, load_truth
+from .loaders import BOX_POLICIES, load_predictions, load_truth
 from .protocols import PRESETS, get_protocol, protocol_from_dict
 from .report import table
 
@@ -33,6 +34,16 @@ def _protocol(value):
     return protocol_from_dict(spec, source=value)
 
 
+def _finite(text):
+    try:
+        value = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"not a number: {text!r}") from None
+    if not math.isfinite(value):
+        raise argparse.ArgumentTypeError(f"must be a finite number, got {text!r}")
+    return value
+
+
 def build_parser():
     parser = argparse.ArgumentParser(
         prog="python -m evaluation.engine", description=__doc__.split("\n")[0]
@@ -51,13 +62,14 @@ def build_parser():
     )
     score.add_argument("--format", choices=("table", "json"), default="table")
     score.add_argument(
-        "--threshold", type=float, default=0.5, help="score cut for the operating point"
+        "--threshold", type=_finite, default=0.5, help="score cut for the operating point"
     )
     score.add_argument(
-        "--out-of-frame",
-        choices=("clip", "reject"),
-        default="clip",
-        help="predicted boxes that leave the image: clip and count, or reject",
+        "--boxes",
+        choices=BOX_POLICIES,
+        default="keep",
+        help="boxes that leave the image: keep as given (default, as the reference "
+        "implementations), clip predictions to the frame, or reject the file",
     )
     score.add_argument("--unknown-classes", choices=("reject", "drop"), default="reject")
     score.add_argument("--cache", metavar="DIR", help="keep parsed input as .npz here")
@@ -69,11 +81,11 @@ def main(argv=None):
     args = build_parser().parse_args(argv)
     try:
         protocol = _protocol(args.protocol)
-        truth = load_truth(args.truth, images=args.images, cache_dir=args.cache)
+        truth = load_truth(args.truth, images=args.images, cache_dir=args.cache, boxes=args.boxes)
         predictions = load_predictions(
             args.predictions,
             truth,
-            out_of_frame=args.out_of_frame,
+            boxes=args.boxes,
             unknown_classes=args.unknown_classes,
             cache_dir=args.cache,
         )
@@ -86,7 +98,7 @@ def main(argv=None):
     if args.records:
         records.save(args.records)
     if args.format == "json":
-        json.dump(result, sys.stdout, indent=2)
+        json.dump(result, sys.stdout, indent=2, allow_nan=False)  # strict JSON only
         sys.stdout.write("\n")
     else:
         print(table(result))

@@ -16,7 +16,10 @@ class GroundTruth:
 
     Images are held in ascending id order; ``box_image`` and ``box_class`` index into
     ``image_ids`` and ``classes``. ``box_area`` is the area used for size buckets (the
-    annotation's own ``area`` when given, else ``w * h``).
+    annotation's own ``area`` when given, else ``w * h``). Image sizes are NaN where the
+    file gives none (COCO-style JSON makes them optional, as pycocotools does).
+    ``box_policy`` is the policy the boxes were loaded under (``loaders.BOX_POLICIES``)
+    and ``box_counts`` what it found: boxes overhanging the frame, zero-area boxes.
     """
 
     classes: tuple  # class names; position = class index
@@ -34,6 +37,8 @@ class GroundTruth:
     difficult: np.ndarray  # bool
     ignore: np.ndarray  # bool
     source: str = ""
+    box_policy: str = "keep"
+    box_counts: dict = field(default_factory=dict)
 
     @property
     def n_images(self):
@@ -90,10 +95,15 @@ class Predictions:
     cls: np.ndarray  # int32 index into GroundTruth.classes
     boxes: np.ndarray  # (n, 4) float64 xywh
     score: np.ndarray  # float64
-    clipped: int = 0  # boxes clipped to the image frame while loading
     dropped: int = 0  # records of classes outside the split, dropped by policy
     source: str = ""
+    box_policy: str = "keep"
+    box_counts: dict = field(default_factory=dict)  # out of frame, outside, clipped, zero area
     extra: dict = field(default_factory=dict)
+
+    @property
+    def clipped(self):
+        return self.box_counts.get("clipped", 0)
 
     def __len__(self):
         return len(self.score)

@@ -31,7 +31,8 @@ def evaluate(
 
 
 def counts(truth, predictions, records):
-    """What was scored: images, boxes, predictions read, scored, clipped, dropped."""
+    """What was scored: images, boxes, predictions read, scored, clipped, dropped, and
+    what the box policy found (boxes out of frame, wholly outside, zero-area)."""
     return {
         "images": truth.n_images,
         "truth_boxes": truth.n_boxes,
@@ -39,4 +40,9 @@ def counts(truth, predictions, records):
         "scored_predictions": records.n_detections,
         "clipped_predictions": predictions.clipped,
         "dropped_predictions": predictions.dropped,
+        "boxes": {
+            "policy": predictions.box_policy,
+            "truth": dict(truth.box_counts),
+            "predictions": dict(predictions.box_counts),
+        },
     }

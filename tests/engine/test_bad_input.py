@@ -53,17 +53,16 @@ def _with(**changes):
             _with(**{"annotations.1.bbox": [1, 2, 3]}),
             r"split\.json: annotations\[1\]: field 'bbox': expected 'array' of length 4",
         ),
-        (
-            _with(**{"annotations.0.bbox": [10, 10, 0, 80]}),
-            r"split\.json: annotations\[0\]: field 'bbox': width must be > 0, got 0",
-        ),
+        (_with(**{"annotations.0.bbox": [10, 10, 0, 80]}), None),  # zero width: scored
         (
             _with(**{"annotations.1.bbox": [10, 10, 5, -3]}),
-            r"split\.json: annotations\[1\]: field 'bbox': height must be > 0, got -3",
+            r"split\.json: annotations\[1\]: field 'bbox': height must be >= 0, got -3",
         ),
+        (_with(**{"annotations.1.bbox": [600, 10, 100, 30]}), None),  # overhangs: kept
         (
-            _with(**{"annotations.1.bbox": [600, 10, 100, 30]}),
-            r"split\.json: annotations\[1\]: field 'bbox': box .* extends outside its 640x480 image",
+            _with(**{"annotations.1.id": 2**63}),
+            r"split\.json: annotations\[1\]: field 'id': 9223372036854775808 is outside the "
+            r"supported range",
         ),
         (
             _with(**{"annotations.1.image_id": 7}),
@@ -150,7 +149,7 @@ def test_truth_boxes_may_overhang_by_a_pixel(files):
         ),
         (
             [{**DET, "bbox": [10, 10, -4, 20]}],
-            r"predictions\.json: record 0: field 'bbox': width must be > 0, got -4",
+            r"predictions\.json: record 0: field 'bbox': width must be >= 0, got -4",
         ),
         (
             [DET, DET, {**DET, "image_id": 42}],
@@ -161,8 +160,8 @@ def test_truth_boxes_may_overhang_by_a_pixel(files):
             r"predictions\.json: record 0: field 'category_id': class 9 is not one of the split's classes",
         ),
         (
-            [{**DET, "bbox": [700, 10, 20, 20]}],
-            r"predictions\.json: record 0: field 'bbox': box .* lies entirely outside its 640x480 image",
+            [DET, {**DET, "image_id": -(2**63) - 1}],
+            r"predictions\.json: record 1: field 'image_id': -9223372036854775809 is outside",
         ),
         (TRUTH, r"predictions\.json: expected a JSON array of detections, got an object"),
     ],
@@ -174,14 +173,51 @@ def test_bad_predictions_are_refused_with_their_location(files, content, pattern
         load_predictions(path, truth)
 
 
-def test_out_of_frame_policy(files):
+def test_box_policies(files):
+    """keep (default): as given and counted; clip: cut to the frame; reject: refused.
+    A box wholly outside never fails the file under keep or clip."""
     truth = _truth(files)
-    path = files.write("predictions.json", [DET, {**DET, "bbox": [600, 400, 100, 100]}])
-    clipped = load_predictions(path, truth)
-    assert clipped.clipped == 1
+    outside = {**DET, "bbox": [700, 10, 20, 20]}
+    path = files.write("predictions.json", [DET, {**DET, "bbox": [600, 400, 100, 100]}, outside])
+    kept = load_predictions(path, truth)
+    assert kept.boxes[1].tolist() == [600, 400, 100, 100]
+    assert kept.box_counts == {
+        "out_of_frame": 2,
+        "outside": 1,
+        "clipped": 0,
+        "zero_area": 0,
+        "on_images_without_size": 0,
+    }
+    clipped = load_predictions(path, truth, boxes="clip")
     assert clipped.boxes[1].tolist() == [600, 400, 40, 80]
-    with pytest.raises(InputError, match=r"record 1: field 'bbox': .*\(policy: reject\)"):
-        load_predictions(path, truth, out_of_frame="reject")
+    assert clipped.boxes[2].tolist() == [640, 10, 0, 20]  # on the border, zero area
+    assert (clipped.clipped, clipped.box_counts["zero_area"]) == (2, 1)
+    with pytest.raises(InputError, match=r"record 1: field 'bbox': .*\(box policy: reject\)"):
+        load_predictions(path, truth, boxes="reject")
+    with pytest.raises(InputError, match=r"unknown box policy 'trim'"):
+        load_predictions(path, truth, boxes="trim")
+
+
+def test_truth_policies_and_images_without_size(files):
+    """Ground truth overhanging the frame is kept (counted) unless the policy is reject;
+    images may omit width/height (pycocotools does not need them) except under clip
+    and reject, which name the first image without a size."""
+    overhang = _with(**{"annotations.1.bbox": [600, 10, 100, 30]})
+    assert load_truth(files.write("a.json", overhang)).box_counts["out_of_frame"] == 1
+    with pytest.raises(
+        InputError, match=r"annotations\[1\]: field 'bbox': .* extends outside .*reject"
+    ):
+        load_truth(files.write("b.json", overhang), boxes="reject")
+    sizeless = json.loads(json.dumps(TRUTH))
+    del sizeless["images"][1]["width"], sizeless["images"][1]["height"]
+    truth = load_truth(files.write("c.json", sizeless))
+    assert truth.box_counts["on_images_without_size"] == 1
+    with pytest.raises(InputError, match=r"c2\.json: images\[1\]: field 'width': .* 'clip'"):
+        load_truth(files.write("c2.json", sizeless), boxes="clip")
+    path = files.write("predictions.json", [DET])
+    assert len(load_predictions(path, truth)) == 1
+    with pytest.raises(InputError, match=r"c\.json: field 'width': image 2 has no width"):
+        load_predictions(path, truth, boxes="clip")
 
 
 def test_unknown_classes_can_be_dropped_and_counted(files):
@@ -346,3 +382,11 @@ def test_content_hash_ignores_record_order(files):
     assert _truth(files).content_hash() == _truth(files, data, "other.json").content_hash()
     data["annotations"][0]["bbox"][0] += 1
     assert _truth(files).content_hash() != _truth(files, data, "third.json").content_hash()
+
+
+def test_syntax_error_in_truth_names_line_and_column(files):
+    """The ground truth is memory-mapped; the error position is still line and column."""
+    text = json.dumps(TRUTH, indent=1).replace('"iscrowd": 0', '"iscrowd": 0,,', 1)
+    line = text[: text.index(",,")].count("\n") + 1
+    with pytest.raises(InputError, match=rf"split\.json: not valid JSON: .* at line {line}, col"):
+        load_truth(files.write("split.json", text))

@@ -117,3 +117,42 @@ def test_a_real_process_prints_no_traceback(inputs, files):
     assert proc.returncode == 2
     assert "bad.json: record 0: field 'bbox': expected 'array' of length 4" in proc.stderr
     assert "Traceback" not in proc.stderr
+
+
+def test_boxes_option_reaches_the_loaders(files, capsys):
+    """--boxes keep (default) scores an overhanging detection as given; clip cuts it;
+    reject refuses the file with exit 2 and the record named."""
+    gt = files.write(
+        "gt.json",
+        {
+            "images": [{"id": 1, "width": 100, "height": 100}],
+            "annotations": [
+                {"id": 1, "image_id": 1, "category_id": 1, "bbox": [0, 10, 20, 20], "area": 400}
+            ],
+            "categories": [{"id": 1, "name": "pedestrian"}],
+        },
+    )
+    dt = files.write(
+        "dt.json", [{"image_id": 1, "category_id": 1, "bbox": [-20, 10, 40, 20], "score": 0.9}]
+    )
+    base = ["score", "--truth", str(gt), "--predictions", str(dt), "--format", "json"]
+    aps = {}
+    for policy in ("keep", "clip"):
+        assert main([*base, "--boxes", policy]) == 0
+        result = json.loads(capsys.readouterr().out)
+        assert result["counts"]["boxes"]["policy"] == policy
+        aps[policy] = result["summary"]["AP"]
+    assert aps["keep"] == pytest.approx(0.1) and aps["clip"] == pytest.approx(1.0)
+    assert main([*base, "--boxes", "reject"]) == 2
+    assert "dt.json: record 0: field 'bbox'" in capsys.readouterr().err
+
+
+@pytest.mark.parametrize("value", ["nan", "inf", "-inf", "abc"])
+def test_non_finite_threshold_is_refused(inputs, capsys, value):
+    """Strict JSON output: a NaN or infinite threshold would be written as NaN/Infinity,
+    which is not JSON (RFC 8259); argparse refuses it with exit 2."""
+    gt, dt = inputs
+    with pytest.raises(SystemExit) as exit_info:
+        main(["score", "--truth", str(gt), "--predictions", str(dt), "--threshold", value])
+    assert exit_info.value.code == 2
+    assert "--threshold" in capsys.readouterr().err

@@ -4,7 +4,10 @@ Every summary number and every per-class AP / AP50 / AP75 / recall must agree to
 1e-9 (in practice they agree bit for bit) on randomised splits that exercise the
 reference's edge conventions: tied scores, more than 100 detections per image and
 class, crowd regions, annotation areas that differ from w*h, classes without ground
-truth, images without detections, and detections of classes the split does not list.
+truth, images without detections, and detections of classes the split does not list —
+and real-world files under the default box policy (``keep``): ground truth overhanging
+the frame, detections overhanging it or lying wholly outside, zero-area boxes, images
+without width/height, and ids beyond 2^53.
 """
 
 import numpy as np
@@ -74,8 +77,58 @@ scenarios = st.fixed_dictionaries(
         "score_levels": st.sampled_from([None, 3, 20]),
         "extra_class_rate": st.sampled_from([0.0, 0.1]),
         "empty_images": st.integers(0, 3),
+        "overhang_rate": st.sampled_from([0.0, 0.2, 0.5]),
+        "outside_rate": st.sampled_from([0.0, 0.1]),
+        "zero_area_rate": st.sampled_from([0.0, 0.1]),
+        "sizeless_rate": st.sampled_from([0.0, 0.5, 1.0]),
+        "big_ids": st.booleans(),
     }
 )
+
+BIG = 2**53 + 1  # beyond float64's exact integers; pycocotools keeps Python ints
+
+
+def roughen(rng, split, detections, scenario):
+    """Make the files real-world: boxes across and beyond the frame, zero-area boxes,
+    images without sizes, huge ids. pycocotools accepts all of these."""
+    frames = {im["id"]: (im["width"], im["height"]) for im in split["images"]}
+
+    def move(box, frame, rate, outside_rate):
+        x, y, w, h = box
+        u = rng.random()
+        if u < outside_rate:  # wholly outside: left of, or below, the frame
+            return [-w - 5.0, y, w, h] if rng.random() < 0.5 else [x, frame[1] + 3.0, w, h]
+        if u < outside_rate + rate:  # across an edge
+            return [x - w / 2 if rng.random() < 0.5 else frame[0] - w / 3, y, w, h]
+        return box
+
+    def flatten(box):
+        if rng.random() < scenario["zero_area_rate"]:
+            box = list(box)
+            box[2 + int(rng.integers(0, 2))] = 0.0
+        return box
+
+    for ann in split["annotations"]:
+        ann["bbox"] = flatten(
+            move(ann["bbox"], frames[ann["image_id"]], scenario["overhang_rate"], 0)
+        )
+        if ann["bbox"][2] * ann["bbox"][3] == 0:
+            ann["area"] = 0.0
+    for det in detections:
+        frame = frames.get(det["image_id"])
+        det["bbox"] = flatten(
+            move(det["bbox"], frame, scenario["overhang_rate"], scenario["outside_rate"])
+        )
+    for im in split["images"]:
+        if rng.random() < scenario["sizeless_rate"]:
+            del im["width"], im["height"]
+    if scenario["big_ids"]:
+        for im in split["images"]:
+            im["id"] += BIG
+        for item in (*split["annotations"], *detections):
+            item["image_id"] += BIG
+        for ann in split["annotations"]:
+            ann["id"] += BIG
 
 
 @settings(
@@ -120,6 +173,7 @@ def test_random_splits_match_pycocotools(tmp_path, scenario):
                 "score": 0.5,
             }
         ]
+    roughen(rng, split, detections, scenario)
     _compare(tmp_path, split, detections)
 
 
@@ -141,6 +195,37 @@ def test_fixed_larger_split_matches_pycocotools_bit_for_bit(tmp_path):
     )
     ours, reference = _compare(tmp_path, split, detections)
     assert [as_reference(ours["summary"][k]) for k in COCO_SUMMARY_KEYS] == list(reference.stats)
+
+
+def test_detection_across_the_frame_edge_scores_as_given(tmp_path):
+    """The issue's example: detection [-20, 10, 40, 20] against ground truth
+    [0, 10, 20, 20]. Kept as given, IoU = 400 / 800 = 0.5: a match at IoU 0.5 only, so
+    AP50 = 1, AP75 = 0 and AP = 1/10 over the ten thresholds — pycocotools 2.0.11's
+    numbers (checked by _compare). Clipping would make it [0, 10, 20, 20], IoU 1, AP 1."""
+    split = _one_class_split([[0, 10, 20, 20]], width=100, height=100)
+    detections = [{"image_id": 1, "category_id": 1, "bbox": [-20, 10, 40, 20], "score": 0.9}]
+    ours, reference = _compare(tmp_path, split, detections)
+    assert reference.stats[1] == pytest.approx(1.0) and reference.stats[2] == 0.0
+    assert ours["summary"]["AP50"] == pytest.approx(1.0, abs=1e-12)
+    assert ours["summary"]["AP75"] == 0.0
+    assert ours["summary"]["AP"] == pytest.approx(0.1, abs=1e-12)
+    assert ours["counts"]["boxes"]["predictions"]["out_of_frame"] == 1
+
+
+def test_zero_area_and_wholly_outside_boxes_are_scored_like_pycocotools(tmp_path):
+    """A zero-area ground truth counts as a positive that nothing can match (IoU 0 in
+    pycocotools ``bbIou``); a zero-area detection and one wholly outside the image are
+    false positives. Images without width/height are fine."""
+    split = _one_class_split([[10, 10, 0, 30], [50, 50, 20, 20]])
+    del split["images"][0]["width"], split["images"][0]["height"]
+    split["annotations"][0]["area"] = 0.0
+    detections = [
+        {"image_id": 1, "category_id": 1, "bbox": [10, 10, 0, 30], "score": 0.95},
+        {"image_id": 1, "category_id": 1, "bbox": [500, 500, 20, 20], "score": 0.9},
+        {"image_id": 1, "category_id": 1, "bbox": [50, 50, 20, 20], "score": 0.8},
+    ]
+    ours, _ = _compare(tmp_path, split, detections)
+    assert ours["per_class"]["cyclist"]["tp"] == 1.0 and ours["per_class"]["cyclist"]["fp"] == 2.0
 
 
 def test_area_exactly_32_squared_is_both_small_and_medium(tmp_path):

@@ -80,7 +80,7 @@ def _first_image(split_truth):
         (
             "negative.json",
             lambda ok: json.dumps(ok + [{**ok[0], "bbox": [5, 5, -3, 10]}]),
-            "negative.json: record {n}: field 'bbox': width must be > 0, got -3",
+            "negative.json: record {n}: field 'bbox': width must be >= 0, got -3",
         ),
         (
             "mistyped.json",

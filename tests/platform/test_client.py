@@ -131,7 +131,7 @@ def test_a_pipeline_gates_on_the_verdict(
         "1.3", "--split", "bay-night", "--predictions", _write(tmp_path / "bad.json", bad)
     )
     assert code == 2, out + err
-    assert "bad.json: record 4: field 'bbox': width must be > 0, got -3" in out
+    assert "bad.json: record 4: field 'bbox': width must be >= 0, got -3" in out
 
     # status, compare and report read the same server.
     code, out, _ = run("status", *connect, "--detector", "Forward camera", "1.1")

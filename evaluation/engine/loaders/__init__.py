@@ -5,6 +5,10 @@ every check happens here, once, and every error names the file, the record and t
 field. With ``cache_dir`` the parsed columns are kept as ``.npz`` keyed by the file's
 SHA-256 (and for predictions the split's hash and the policies), so re-scoring the
 same bytes skips parsing.
+
+Box policy (``boxes``): ``keep`` (default) scores every box as given, as pycocotools
+and the VOC devkit do; ``clip`` cuts predictions to the frame; ``reject`` refuses
+boxes that leave it. See ``checks.apply_box_policy``.
 """
 
 import re
@@ -15,9 +19,14 @@ from ..data import GroundTruth, Predictions
 from ..errors import InputError
 from . import checks, coco_json, csv_tables
 from .cache import cached
+from .checks import BOX_POLICIES
+
+__all__ = ["BOX_POLICIES", "load_predictions", "load_truth"]
 
 _INTEGER = re.compile(r"^[+-]?\d+$")
-OUT_OF_FRAME_POLICIES = ("clip", "reject")
+_INT64 = (-(2**63), 2**63 - 1)
+#: Bumped when the parsed columns change shape or meaning: old cache entries are unused.
+CACHE_SCHEMA = 2
 UNKNOWN_CLASS_POLICIES = ("reject", "drop")
 
 
@@ -42,7 +51,7 @@ def _exists(path):
         raise InputError(path, f"cannot open: {e.strerror}") from None
 
 
-def load_truth(path, *, images=None, fmt=None, classes=None, cache_dir=None):
+def load_truth(path, *, images=None, fmt=None, classes=None, cache_dir=None, boxes="keep"):
     """Load a benchmark split.
 
     Parameters
@@ -50,17 +59,30 @@ def load_truth(path, *, images=None, fmt=None, classes=None, cache_dir=None):
     path : COCO-style JSON, or a boxes CSV (then ``images`` is the images table)
     classes : sequence of str, optional
         For CSV: the class list in order; default the sorted labels found.
+    boxes : ``"keep"`` (default), ``"clip"`` or ``"reject"``
+        ``clip`` and ``reject`` need every image's size; ``reject`` refuses ground
+        truth overhanging the frame by more than ``checks.TRUTH_BOUNDS_TOLERANCE``.
+        Under ``keep`` and ``clip`` ground truth is kept as given (and counted).
     """
     _exists(path)
+    checks.check_policy(path, boxes)
     fmt = _format(path, fmt)
     if fmt == "csv" and images is None:
         raise InputError(path, "a CSV split needs its images table (image_id,width,height,tags)")
     sources = [path] + ([images] if images is not None else [])
-    key = {"kind": "truth", "format": fmt, "classes": list(classes) if classes else None}
-    return cached(cache_dir, sources, key, lambda: _read_truth(path, images, fmt, classes), "truth")
+    key = {
+        "kind": "truth",
+        "format": fmt,
+        "classes": list(classes) if classes else None,
+        "boxes": boxes,
+        "schema": CACHE_SCHEMA,
+    }
+    return cached(
+        cache_dir, sources, key, lambda: _read_truth(path, images, fmt, classes, boxes), "truth"
+    )
 
 
-def _read_truth(path, images, fmt, classes):
+def _read_truth(path, images, fmt, classes, policy):
     if fmt == "json":
         cols = coco_json.read_truth(path)
         image_locate = lambda i: f"images[{i}]"  # noqa: E731
@@ -89,14 +111,16 @@ def _read_truth(path, images, fmt, classes):
     for name in ("image_width", "image_height"):
         values = cols[name]
         field = name.split("_")[1]
-        checks.check_finite(image_path, values, image_locate, field)
+        given = ~np.isnan(values)  # absent from the file: NaN (optional in COCO JSON)
+        checks.fail_at(image_path, given & np.isinf(values), image_locate, field, "must be finite")
         checks.fail_at(
             image_path,
-            values <= 0,
+            given & (values <= 0),
             image_locate,
             field,
             lambda i, values=values: f"must be > 0, got {values[i]:g}",
         )
+        checks.require_sizes(image_path, values, image_locate, policy, field)
     if fmt == "json":
         checks.check_unique(path, cols["box_ids"], box_locate, "id")
 
@@ -118,7 +142,8 @@ def _read_truth(path, images, fmt, classes):
     checks.check_boxes(path, boxes, box_locate, box_fields["bbox"])
     width = cols["image_width"][image_order][box_image]
     height = cols["image_height"][image_order][box_image]
-    checks.check_inside(path, boxes, width, height, box_locate, box_fields["bbox"])
+    if policy == "reject":
+        checks.check_inside(path, boxes, width, height, box_locate, box_fields["bbox"])
     area = cols["box_area"]
     given = ~np.isnan(area)
     checks.fail_at(path, given & ~np.isfinite(area), box_locate, "area", "must be a finite number")
@@ -145,13 +170,17 @@ def _read_truth(path, images, fmt, classes):
         difficult=cols["difficult"],
         ignore=cols["ignore"],
         source=str(path),
+        box_policy=policy,
+        box_counts=checks.truth_box_counts(boxes, width, height),
     )
 
 
 def _csv_ids(values):
     """Integer ids when every id is an integer (sorted numerically), else strings."""
     if values and all(_INTEGER.match(v) for v in values):
-        return np.array([int(v) for v in values], np.int64)
+        numbers = [int(v) for v in values]
+        if _INT64[0] <= min(numbers) and max(numbers) <= _INT64[1]:
+            return np.array(numbers, np.int64)
     return np.array(values, dtype=object).astype(str)
 
 
@@ -165,7 +194,9 @@ def _ids_like(values, known_ids):
     if known_ids.dtype.kind != "i":
         return text
     converted = np.full(len(text), np.iinfo(np.int64).min, np.int64)
-    ok = np.array([bool(_INTEGER.match(v)) for v in text], bool)
+    ok = np.array(
+        [bool(_INTEGER.match(v)) and _INT64[0] <= int(v) <= _INT64[1] for v in text], bool
+    )
     converted[ok] = [int(v) for v in text[ok]]
     return converted
 
@@ -212,19 +243,29 @@ def _csv_truth_columns(path, images, classes):
 
 
 def load_predictions(
-    path, truth, *, fmt=None, out_of_frame="clip", unknown_classes="reject", cache_dir=None
+    path, truth, *, fmt=None, boxes=None, unknown_classes="reject", cache_dir=None
 ):
     """Load a detector's predictions for ``truth``.
 
     Parameters
     ----------
-    out_of_frame : ``"clip"`` (default; clipped boxes are counted) or ``"reject"``
+    boxes : ``"keep"``, ``"clip"``, ``"reject"``, or None for the policy ``truth``
+        was loaded under (``"keep"`` by default): see ``checks.apply_box_policy``.
     unknown_classes : ``"reject"`` (default) or ``"drop"`` (pycocotools silently drops
         detections of categories the split does not list; counted in ``dropped``)
     """
     _exists(path)
-    if out_of_frame not in OUT_OF_FRAME_POLICIES:
-        raise InputError(path, f"unknown out-of-frame policy {out_of_frame!r}; use clip or reject")
+    boxes = truth.box_policy if boxes is None else boxes
+    checks.check_policy(path, boxes)
+    if boxes != "keep":
+        missing = np.flatnonzero(np.isnan(truth.image_width) | np.isnan(truth.image_height))
+        if len(missing):
+            raise InputError(
+                truth.source,
+                f"image {checks.show(truth.image_ids[missing[0]])} has no width/height; the box "
+                f"policy '{boxes}' needs every image's size (use 'keep', or add the sizes)",
+                field="width",
+            )
     if unknown_classes not in UNKNOWN_CLASS_POLICIES:
         raise InputError(path, f"unknown class policy {unknown_classes!r}; use reject or drop")
     fmt = _format(path, fmt)
@@ -232,19 +273,20 @@ def load_predictions(
         "kind": "predictions",
         "format": fmt,
         "truth": truth.content_hash(),
-        "out_of_frame": out_of_frame,
+        "boxes": boxes,
         "unknown_classes": unknown_classes,
+        "schema": CACHE_SCHEMA,
     }
     return cached(
         cache_dir,
         [path],
         key,
-        lambda: _read_predictions(path, truth, fmt, out_of_frame, unknown_classes),
+        lambda: _read_predictions(path, truth, fmt, boxes, unknown_classes),
         "predictions",
     )
 
 
-def _read_predictions(path, truth, fmt, out_of_frame, unknown_classes):
+def _read_predictions(path, truth, fmt, policy, unknown_classes):
     if fmt == "json":
         image_ids, class_keys, boxes, score = coco_json.read_detections(path)
         locate = lambda i: f"record {i}"  # noqa: E731
@@ -283,13 +325,13 @@ def _read_predictions(path, truth, fmt, out_of_frame, unknown_classes):
         locate = lambda i: locate_all(int(kept_rows[i]))  # noqa: E731
     checks.check_boxes(path, boxes, locate, fields["bbox"])
     checks.check_finite(path, score, locate, "score")
-    boxes, clipped = checks.clip_to_frame(
+    boxes, box_counts = checks.apply_box_policy(
         path,
         boxes,
         truth.image_width[image],
         truth.image_height[image],
         locate,
-        out_of_frame,
+        policy,
         fields["bbox"],
     )
     return Predictions(
@@ -297,7 +339,8 @@ def _read_predictions(path, truth, fmt, out_of_frame, unknown_classes):
         cls=cls.astype(np.int32),
         boxes=boxes,
         score=score,
-        clipped=clipped,
         dropped=dropped,
         source=str(path),
+        box_policy=policy,
+        box_counts=box_counts,
     )

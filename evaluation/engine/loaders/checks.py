@@ -8,9 +8,14 @@ import numpy as np
 
 from ..errors import InputError
 
-#: Ground-truth boxes may overhang the frame by this much (px) without being an error:
-#: annotation tools round, and published splits carry such boxes.
+#: Under the ``reject`` box policy ground truth may still overhang the frame by this
+#: much (px): annotation tools round, and published splits carry such boxes.
 TRUTH_BOUNDS_TOLERANCE = 1.0
+
+#: What happens to boxes that leave their image: ``keep`` scores them as given (the
+#: reference implementations' behaviour, the default), ``clip`` cuts predictions to
+#: the frame, ``reject`` refuses them (ground truth beyond the tolerance above too).
+BOX_POLICIES = ("keep", "clip", "reject")
 
 
 def show(value):
@@ -59,23 +64,58 @@ def check_finite(path, array, locate, field):
 
 
 def check_boxes(path, boxes, locate, field="bbox"):
-    """Finite boxes with positive width and height."""
+    """Finite boxes with width and height >= 0.
+
+    Zero-area boxes are valid, as in the references: under continuous coordinates
+    they overlap nothing (IoU 0, pycocotools ``bbIou``); under the VOC devkit's
+    inclusive pixels ``x_min == x_max`` is one pixel wide. Negative sizes are refused:
+    no reference gives them a meaning.
+    """
     check_finite(path, boxes, locate, field)
     fail_at(
-        path, boxes[:, 2] <= 0, locate, field, lambda i: f"width must be > 0, got {boxes[i, 2]:g}"
+        path, boxes[:, 2] < 0, locate, field, lambda i: f"width must be >= 0, got {boxes[i, 2]:g}"
     )
     fail_at(
-        path, boxes[:, 3] <= 0, locate, field, lambda i: f"height must be > 0, got {boxes[i, 3]:g}"
+        path, boxes[:, 3] < 0, locate, field, lambda i: f"height must be >= 0, got {boxes[i, 3]:g}"
     )
+
+
+def check_policy(path, policy):
+    if policy not in BOX_POLICIES:
+        raise InputError(
+            path, f"unknown box policy {policy!r}; use {', '.join(BOX_POLICIES)}", field="boxes"
+        )
 
 
 def outside_frame(boxes, width, height, tolerance):
+    """Boxes reaching beyond the frame by more than ``tolerance``; False where the
+    image size is unknown (NaN compares false)."""
     x, y, w, h = boxes.T
     return (
         (x < -tolerance)
         | (y < -tolerance)
         | (x + w > width + tolerance)
         | (y + h > height + tolerance)
+    )
+
+
+def wholly_outside(boxes, width, height):
+    """Boxes sharing no area with the frame (False where the size is unknown)."""
+    x, y, w, h = boxes.T
+    return (x >= width) | (y >= height) | (x + w <= 0) | (y + h <= 0)
+
+
+def require_sizes(path, values, locate, policy, field):
+    """``clip`` and ``reject`` need every image's size; ``keep`` needs none."""
+    if policy == "keep":
+        return
+    fail_at(
+        path,
+        np.isnan(values),
+        locate,
+        field,
+        f"the image has no width/height; the box policy '{policy}' needs every image's size "
+        "(use 'keep', or add the sizes)",
     )
 
 
@@ -87,17 +127,37 @@ def check_inside(path, boxes, width, height, locate, field="bbox"):
         bad,
         locate,
         field,
-        lambda i: f"box {boxes[i].tolist()} extends outside its {width[i]:g}x{height[i]:g} image",
+        lambda i: (
+            f"box {boxes[i].tolist()} extends outside its {width[i]:g}x{height[i]:g} image "
+            "(box policy: reject)"
+        ),
     )
 
 
-def clip_to_frame(path, boxes, width, height, locate, policy, field="bbox"):
-    """Apply the out-of-frame policy to predictions: ``clip`` (and count) or ``reject``.
+def truth_box_counts(boxes, width, height):
+    return {
+        "out_of_frame": int(outside_frame(boxes, width, height, 0.0).sum()),
+        "zero_area": int(((boxes[:, 2] == 0) | (boxes[:, 3] == 0)).sum()),
+        "on_images_without_size": int((np.isnan(width) | np.isnan(height)).sum()),
+    }
 
-    Returns the (possibly clipped) boxes and how many were clipped. A box with no
-    area left inside its image is always an error.
+
+def apply_box_policy(path, boxes, width, height, locate, policy, field="bbox"):
+    """Apply the box policy to predictions; returns the boxes and what was found.
+
+    ``keep``: boxes as given, overhanging and wholly outside ones included (they are
+    scored: pycocotools and the VOC devkit never look at the frame). ``clip``: cut to
+    the frame, a box wholly outside becomes a zero-area box on the border (a false
+    positive that overlaps nothing). ``reject``: any box leaving the frame is an error.
+    Counts: ``out_of_frame`` (as given, at least partly outside), ``outside`` (wholly),
+    ``clipped``, ``zero_area`` (as scored).
     """
     outside = outside_frame(boxes, width, height, 0.0)
+    counts = {
+        "out_of_frame": int(outside.sum()),
+        "outside": int(wholly_outside(boxes, width, height).sum()),
+        "clipped": 0,
+    }
     if policy == "reject":
         fail_at(
             path,
@@ -106,29 +166,20 @@ def clip_to_frame(path, boxes, width, height, locate, policy, field="bbox"):
             field,
             lambda i: (
                 f"box {boxes[i].tolist()} extends outside its {width[i]:g}x{height[i]:g} "
-                "image (policy: reject)"
+                "image (box policy: reject)"
             ),
         )
-        return boxes, 0
-    if policy != "clip":
-        raise InputError(path, f"unknown out-of-frame policy {policy!r}; use 'clip' or 'reject'")
-    if not outside.any():
-        return boxes, 0
-    x1 = np.clip(boxes[:, 0], 0, width)
-    y1 = np.clip(boxes[:, 1], 0, height)
-    x2 = np.clip(boxes[:, 0] + boxes[:, 2], 0, width)
-    y2 = np.clip(boxes[:, 1] + boxes[:, 3], 0, height)
-    clipped = np.where(outside[:, None], np.column_stack([x1, y1, x2 - x1, y2 - y1]), boxes)
-    fail_at(
-        path,
-        (clipped[:, 2] <= 0) | (clipped[:, 3] <= 0),
-        locate,
-        field,
-        lambda i: (
-            f"box {boxes[i].tolist()} lies entirely outside its {width[i]:g}x{height[i]:g} image"
-        ),
-    )
-    return clipped, int(outside.sum())
+    elif policy == "clip" and outside.any():
+        x1 = np.clip(boxes[:, 0], 0, width)
+        y1 = np.clip(boxes[:, 1], 0, height)
+        x2 = np.clip(boxes[:, 0] + boxes[:, 2], 0, width)
+        y2 = np.clip(boxes[:, 1] + boxes[:, 3], 0, height)
+        clipped = np.column_stack([x1, y1, np.maximum(x2 - x1, 0), np.maximum(y2 - y1, 0)])
+        boxes = np.where(outside[:, None], clipped, boxes)
+        counts["clipped"] = counts["out_of_frame"]
+    counts["zero_area"] = int(((boxes[:, 2] == 0) | (boxes[:, 3] == 0)).sum())
+    counts["on_images_without_size"] = int((np.isnan(width) | np.isnan(height)).sum())
+    return boxes, counts
 
 
 def resolve(path, external, known, locate, field, what):

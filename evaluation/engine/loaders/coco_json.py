@@ -1,9 +1,9 @@
 """COCO-style JSON: ground truth (images / annotations / categories) and detections.
 
 Decoding is typed (msgspec structs): unknown fields such as segmentation polygons are
-skipped without building Python objects. A detections file is decoded in slices of a
-few megabytes, each turned into arrays at once, so a file of millions of detections
-never exists as Python objects all together.
+skipped without building Python objects. A detections file is read and decoded in
+slices of a few megabytes, each turned into arrays at once, so a file of millions of
+detections never exists as Python objects (or as one byte string) all together.
 """
 
 import mmap
@@ -15,12 +15,15 @@ import numpy as np
 from ..errors import InputError
 
 CHUNK_BYTES = 4 << 20
+#: No detection record is this long: past it, reading stops with an error instead of
+#: buffering a malformed file.
+MAX_SLICE_BYTES = 64 << 20
 
 
 class _Image(msgspec.Struct, gc=False):
     id: int
-    width: float
-    height: float
+    width: float | None = None  # optional, as in pycocotools; needed only to clip
+    height: float | None = None
     tags: list[str] = []
 
 
@@ -92,20 +95,87 @@ def decode_error(path, error, data, base_offset=0):
     if not m:
         return InputError(path, f"not valid JSON: {text}")
     offset = int(m.group(1)) + base_offset
-    line = data.count(b"\n", 0, offset) + 1
+    line = (
+        1
+        + sum(  # a few MB at a time: ``data`` may be a memory map of any size
+            data[i : min(i + CHUNK_BYTES, offset)].count(b"\n")
+            for i in range(0, offset, CHUNK_BYTES)
+        )
+    )
     column = offset - (data.rfind(b"\n", 0, offset) + 1) + 1
     reason = text.split(":", 1)[-1].split("(byte")[0].strip()
     return InputError(path, f"not valid JSON: {reason} at line {line}, column {column}")
 
 
+_INT64_MIN, _INT64_MAX = -(2**63), 2**63 - 1
+
+
+def int_column(path, values, locate, field):
+    """Python ints as int64; an id outside the signed 64-bit range is an input error
+    (JSON allows any integer; pycocotools would accept it)."""
+    try:
+        return np.array(values, np.int64).reshape(-1)
+    except OverflowError:
+        for i, value in enumerate(values):
+            if not _INT64_MIN <= value <= _INT64_MAX:
+                raise InputError(
+                    path,
+                    f"{value} is outside the supported range of ids (signed 64-bit integers, "
+                    f"{_INT64_MIN} to {_INT64_MAX})",
+                    record=locate(i),
+                    field=field,
+                ) from None
+        raise
+
+
+def text_start(path, head):
+    """Bytes to skip before the JSON text: 3 for a UTF-8 byte-order mark, else 0.
+
+    UTF-16 and UTF-32 files are named as such (the references read UTF-8 only)."""
+    if head.startswith(b"\xef\xbb\xbf"):
+        return 3
+    boms = (
+        (b"\xff\xfe\x00\x00", "UTF-32"),
+        (b"\x00\x00\xfe\xff", "UTF-32"),
+        (b"\xff\xfe", "UTF-16"),
+        (b"\xfe\xff", "UTF-16"),
+    )
+    for bom, name in boms:
+        if head.startswith(bom):
+            raise InputError(
+                path,
+                f"the file is {name} text (it starts with a {name} byte-order mark); "
+                "save it as UTF-8",
+            )
+    if len(head) >= 2 and b"\x00" in head[:4]:
+        raise InputError(
+            path,
+            "the file holds NUL bytes at its start: it looks like UTF-16 text without a "
+            "byte-order mark, or binary; save it as UTF-8 JSON",
+        )
+    return 0
+
+
 def read_truth(path):
-    """Decode a COCO-style ground-truth file into plain columns."""
+    """Decode a COCO-style ground-truth file into plain columns.
+
+    The file is memory-mapped, never copied whole into memory.
+    """
     with open(path, "rb") as f:
-        data = f.read()
-    if not data.strip():
+        if f.seek(0, 2) == 0:
+            raise InputError(path, "the file is empty")
+        f.seek(0)
+        with mmap.mmap(f.fileno(), 0, access=mmap.ACCESS_READ) as data:
+            return _truth_columns(path, data)
+
+
+def _truth_columns(path, data):
+    skip = text_start(path, data[:4])
+    if not data[skip : skip + 4096].strip() and len(data) <= skip + 4096:
         raise InputError(path, "the file is empty")
     try:
-        dataset = msgspec.json.decode(data, type=_Dataset)
+        with memoryview(data) as view:
+            dataset = msgspec.json.decode(view[skip:], type=_Dataset)
     except msgspec.ValidationError as e:
         if str(e).startswith("Expected `object`, got `array`"):
             raise InputError(
@@ -115,18 +185,30 @@ def read_truth(path):
             ) from None
         raise validation_error(path, e, top_level_list=False) from None
     except msgspec.DecodeError as e:
-        raise decode_error(path, e, data) from None
+        raise decode_error(path, e, data, skip) from None
     anns = dataset.annotations
+    images = dataset.images
+
+    def at(key):
+        return lambda i: f"{key}[{i}]"
+
+    def size(value):
+        return np.nan if value is None else value
+
     return {
-        "image_ids": np.array([im.id for im in dataset.images], np.int64),
-        "image_width": np.array([im.width for im in dataset.images], np.float64),
-        "image_height": np.array([im.height for im in dataset.images], np.float64),
-        "image_tags": [tuple(im.tags) for im in dataset.images],
-        "class_ids": np.array([c.id for c in dataset.categories], np.int64),
+        "image_ids": int_column(path, [im.id for im in images], at("images"), "id"),
+        "image_width": np.array([size(im.width) for im in images], np.float64),
+        "image_height": np.array([size(im.height) for im in images], np.float64),
+        "image_tags": [tuple(im.tags) for im in images],
+        "class_ids": int_column(path, [c.id for c in dataset.categories], at("categories"), "id"),
         "class_names": [c.name for c in dataset.categories],
-        "box_ids": np.array([a.id for a in anns], np.int64),
-        "box_image_ids": np.array([a.image_id for a in anns], np.int64),
-        "box_class_ids": np.array([a.category_id for a in anns], np.int64),
+        "box_ids": int_column(path, [a.id for a in anns], at("annotations"), "id"),
+        "box_image_ids": int_column(
+            path, [a.image_id for a in anns], at("annotations"), "image_id"
+        ),
+        "box_class_ids": int_column(
+            path, [a.category_id for a in anns], at("annotations"), "category_id"
+        ),
         "boxes": np.array([a.bbox for a in anns], np.float64).reshape(-1, 4),
         "box_area": np.array([np.nan if a.area is None else a.area for a in anns], np.float64),
         "crowd": np.array([bool(a.iscrowd) for a in anns], bool),
@@ -135,90 +217,170 @@ def read_truth(path):
     }
 
 
-def _columns(records):
+def _columns(records, path="", base=0):
     n = len(records)
+
+    def locate(i):
+        return f"record {base + i}"
+
     return (
-        np.fromiter((r.image_id for r in records), np.int64, n),
-        np.fromiter((r.category_id for r in records), np.int64, n),
+        int_column(path, [r.image_id for r in records], locate, "image_id"),
+        int_column(path, [r.category_id for r in records], locate, "category_id"),
         np.array([r.bbox for r in records], np.float64).reshape(-1, 4),
         np.fromiter((r.score for r in records), np.float64, n),
     )
 
 
-def _slices(data, path):
-    """Byte ranges of the records of a top-level JSON array, a few MB at a time.
+class _Position:
+    """Line and column of absolute byte offsets, for bytes already read and dropped."""
 
-    A cut is placed after a ``}`` followed by a comma. Should that ``}`` sit inside
-    a string, the slice fails to decode and the caller decodes the whole file,
-    which then gives the exact error or the right records.
+    def __init__(self, offset):
+        self.offset = offset  # absolute offset of buf[0]
+        self.lines = 0  # newlines before it
+        self.line_start = 0  # absolute offset just after the last of them
+
+    def advance(self, consumed):
+        newlines = consumed.count(b"\n")
+        if newlines:
+            self.lines += newlines
+            self.line_start = self.offset + consumed.rfind(b"\n") + 1
+        self.offset += len(consumed)
+
+    def locate(self, buf, k):
+        """(line, column) of buf[k], 1-based."""
+        nl = buf.rfind(b"\n", 0, k)
+        line = self.lines + buf.count(b"\n", 0, k) + 1
+        column = k - nl if nl >= 0 else self.offset + k - self.line_start + 1
+        return line, column
+
+
+def _last_cut(buf, lowest):
+    """(end of a record's ``}``, position after the comma that follows it), the last
+    such pair at or after ``lowest``; None if there is none yet."""
+    brace = len(buf)
+    while True:
+        brace = buf.rfind(b"}", lowest, brace)
+        if brace < 0:
+            return None
+        after = brace + 1
+        while after < len(buf) and buf[after : after + 1].isspace():
+            after += 1
+        if buf[after : after + 1] == b",":
+            return brace + 1, after + 1
+
+
+def _piece_error(path, error, buf, where, shift):
+    """An InputError for a slice ``b"[" + buf...`` that failed at its byte ``k + shift``."""
+    text = str(error)
+    if "truncated" in text:
+        return InputError(path, "the JSON ends early: the file looks truncated")
+    m = re.search(r"\(byte (\d+)\)", text)
+    if not m:
+        return InputError(path, f"not valid JSON: {text}")
+    line, column = where.locate(buf, max(int(m.group(1)) - shift, 0))
+    reason = text.split(":", 1)[-1].split("(byte")[0].strip()
+    return InputError(path, f"not valid JSON: {reason} at line {line}, column {column}")
+
+
+def _decode_slice(piece):
+    return msgspec.json.decode(piece, type=list[_Detection])
+
+
+def _stream(path, f, skip):
+    """Columns of the records of a top-level JSON array, read a few MB at a time.
+
+    Memory stays bounded by the slice size whatever the file size, also when the
+    file turns out to be malformed or truncated: nothing is ever read whole. A slice
+    ends after a ``}`` followed by a comma; should that ``}`` sit inside a string or
+    a nested object, the slice fails right at its end, and it is simply extended.
     """
-    start = 0
-    n = len(data)
-    while start < n and data[start : start + 1].isspace():
-        start += 1
-    end = n
-    while end > start and data[end - 1 : end].isspace():
-        end -= 1
-    if start >= end:
+    where = _Position(skip)
+    buf = f.read(CHUNK_BYTES)
+    while buf and not buf.strip():  # leading whitespace
+        where.advance(buf)
+        buf = f.read(CHUNK_BYTES)
+    if not buf:
         raise InputError(path, "the file is empty")
-    if data[start : start + 1] != b"[" or data[end - 1 : end] != b"]":
-        yield None
-        return
-    pos, stop = start + 1, end - 1
-    while pos < stop:
-        cut = pos + CHUNK_BYTES
-        if cut >= stop:
-            yield pos, stop
+    lead = len(buf) - len(buf.lstrip())
+    first = buf[lead : lead + 1]
+    if first == b"{":
+        raise InputError(
+            path,
+            "expected a JSON array of detections, got an object (is this a ground-truth file?)",
+        )
+    if first != b"[":
+        try:
+            msgspec.json.decode(buf[lead:])
+        except msgspec.DecodeError as e:
+            where.advance(buf[:lead])
+            raise _piece_error(path, e, buf[lead:], where, 0) from None
+        raise InputError(path, "expected a JSON array of detections")
+    where.advance(buf[: lead + 1])
+    buf = buf[lead + 1 :]
+    base, lowest, eof = 0, 0, False
+    while True:
+        if eof:
+            piece = b"[" + buf  # the rest, closing bracket included
+        else:
+            cut = _last_cut(buf, lowest)
+            if cut is None:
+                if len(buf) > CHUNK_BYTES:  # no record ends here: a real error is reported
+                    _check_prefix(path, buf, where, base)
+                more = f.read(CHUNK_BYTES)
+                eof = not more
+                buf += more
+                continue
+            piece = b"[" + buf[: cut[0]] + b"]"
+        try:
+            records = _decode_slice(piece)
+        except msgspec.ValidationError as e:
+            raise validation_error(path, e, top_level_list=True, base=base) from None
+        except msgspec.DecodeError as e:
+            m = re.search(r"\(byte (\d+)\)", str(e))
+            at_end = "truncated" in str(e) or (m and int(m.group(1)) >= len(piece) - 1)
+            if not eof and at_end:  # maybe a cut inside a string: take more
+                lowest = len(buf)
+                more = f.read(CHUNK_BYTES)
+                eof = not more
+                buf += more
+                continue
+            raise _piece_error(path, e, buf, where, 1) from None
+        yield _columns(records, path, base)
+        if eof:
             return
-        brace = data.find(b"}", cut, stop)
-        while brace != -1:
-            after = brace + 1
-            while after < stop and data[after : after + 1].isspace():
-                after += 1
-            if data[after : after + 1] == b",":
-                break
-            brace = data.find(b"}", brace + 1, stop)
-        if brace == -1:
-            yield pos, stop
-            return
-        yield pos, brace + 1
-        pos = after + 1
+        base += len(records)
+        where.advance(buf[: cut[1]])
+        buf = buf[cut[1] :]
+        lowest = 0
+        more = f.read(CHUNK_BYTES)
+        eof = not more
+        buf += more
 
 
-def _decode_whole(path, data):
+def _check_prefix(path, buf, where, base):
+    """Raise the decoding error of ``[`` + buf unless it only ends early; give up past
+    ``MAX_SLICE_BYTES`` without a record boundary."""
     try:
-        records = msgspec.json.decode(data, type=list[_Detection])
+        _decode_slice(b"[" + buf)
     except msgspec.ValidationError as e:
-        if str(e).startswith("Expected `array`, got `object`"):
-            raise InputError(
-                path,
-                "expected a JSON array of detections, got an object (is this a ground-truth file?)",
-            ) from None
-        raise validation_error(path, e, top_level_list=True) from None
+        raise validation_error(path, e, top_level_list=True, base=base) from None
     except msgspec.DecodeError as e:
-        raise decode_error(path, e, data) from None
-    return [_columns(records)]
+        if "truncated" not in str(e):
+            raise _piece_error(path, e, buf, where, 1) from None
+    if len(buf) > MAX_SLICE_BYTES:
+        raise InputError(
+            path,
+            f"no record ends within {MAX_SLICE_BYTES >> 20} MB: not a detections file",
+            record=f"record {base}",
+        )
 
 
 def read_detections(path):
     """Decode a COCO-style results file: image ids, category ids, xywh boxes, scores."""
     with open(path, "rb") as f:
-        if f.seek(0, 2) == 0:
-            raise InputError(path, "the file is empty")
-        f.seek(0)
-        with mmap.mmap(f.fileno(), 0, access=mmap.ACCESS_READ) as data:
-            parts = []
-            for piece in _slices(data, path):
-                if piece is None:
-                    parts = _decode_whole(path, data[:])
-                    break
-                a, b = piece
-                try:
-                    records = msgspec.json.decode(b"[" + data[a:b] + b"]", type=list[_Detection])
-                except (msgspec.ValidationError, msgspec.DecodeError):
-                    parts = _decode_whole(path, data[:])
-                    break
-                parts.append(_columns(records))
+        skip = text_start(path, f.read(4))
+        f.seek(skip)
+        parts = list(_stream(path, f, skip))
     if not parts:
         return (np.zeros(0, np.int64), np.zeros(0, np.int64), np.zeros((0, 4)), np.zeros(0))
     return tuple(np.concatenate(column) for column in zip(*parts))

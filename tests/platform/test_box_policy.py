@@ -1,0 +1,63 @@
+"""The box policy travels from the request to the engine: one evaluation per
+(split, file, protocol, policy), scored under that policy, refusals stored as failures."""
+
+import pytest
+
+from evaluation import engine
+from evaluation import services as evaluation_services
+from evaluation.models import Evaluation, Scorecard
+
+from .conftest import upload
+
+pytestmark = pytest.mark.django_db
+
+
+def _overhanging_file(split_truth):
+    """One detection per ground-truth box, stretched 20 px past the left edge of the
+    frame: kept as given it overlaps less than when clipped."""
+    dets = []
+    for ann in split_truth["annotations"]:
+        x, y, w, h = ann["bbox"]
+        dets.append(
+            {
+                "image_id": ann["image_id"],
+                "category_id": ann["category_id"],
+                "bbox": [-20.0, y, x + w + 20.0, h],
+                "score": 0.9,
+            }
+        )
+    return dets
+
+
+def test_each_policy_is_its_own_evaluation_scored_under_it(split, split_truth, run_tasks):
+    stored = evaluation_services.store_predictions(
+        upload("edge.json", _overhanging_file(split_truth))
+    )
+    by_policy = {}
+    for policy in engine.BOX_POLICIES:
+        (evaluation,) = run_tasks(
+            evaluation_services.request_evaluations, split, stored, ["coco"], box_policy=policy
+        )
+        evaluation.refresh_from_db()
+        by_policy[policy] = evaluation
+    # The same request again reuses the evaluation (part of the unique key).
+    again = evaluation_services.request_evaluations(split, stored, ["coco"], box_policy="clip")
+    assert again[0].pk == by_policy["clip"].pk
+    assert Evaluation.objects.filter(predictions=stored).count() == 3
+
+    keep, clip = (Scorecard.objects.get(evaluation=by_policy[p]) for p in ("keep", "clip"))
+    assert keep.result["counts"]["boxes"]["policy"] == "keep"
+    assert clip.result["counts"]["boxes"]["predictions"]["clipped"] > 0
+    assert keep.summary["AP"] != clip.summary["AP"]  # clipping changed IoU
+
+    rejected = by_policy["reject"]
+    assert rejected.state == "failed"
+    assert "box policy: reject" in rejected.error and "record" in rejected.error
+    assert not Scorecard.objects.filter(evaluation=rejected).exists()
+
+
+def test_an_unknown_policy_is_refused_before_anything_is_stored(split, split_truth):
+    stored = evaluation_services.store_predictions(upload("p.json", []))
+    with pytest.raises(engine.InputError, match="unknown box policy 'trim'"):
+        evaluation_services.request_evaluations(split, stored, ["coco"], box_policy="trim")
+    assert not Evaluation.objects.exists()
