@@ -118,6 +118,12 @@ FILE_UPLOAD_MAX_MEMORY_SIZE = 2_621_440
 FILE_UPLOAD_TEMP_DIR = None
 BENCHBOOK_MAX_UPLOAD_BYTES = int(os.environ.get("BENCHBOOK_MAX_UPLOAD_BYTES", 512 * 1024 * 1024))
 DATA_UPLOAD_MAX_MEMORY_SIZE = 10 * 1024 * 1024
+# Prediction files up to this size are loaded against the split inside the upload
+# request and refused with the engine's message (file, record, field); larger ones are
+# checked by the worker.
+BENCHBOOK_INLINE_VALIDATION_BYTES = int(
+    os.environ.get("BENCHBOOK_INLINE_VALIDATION_BYTES", 16 * 1024 * 1024)
+)
 # Parsed-input cache of the engine (columnar .npz), shared by workers on one machine.
 BENCHBOOK_ENGINE_CACHE = Path(os.environ.get("BENCHBOOK_ENGINE_CACHE", VAR_DIR / "engine-cache"))
 BENCHBOOK_PROTOCOLS = ("coco", "voc", "recall40")

@@ -3,6 +3,7 @@
 Views, commands and tasks call these functions and nothing else writes these models.
 """
 
+import contextlib
 import datetime
 import logging
 import os
@@ -30,6 +31,10 @@ class UploadError(ValueError):
     def __init__(self, message, *, path=""):
         super().__init__(message)
         self.path = path
+
+
+class UploadConflict(UploadError):
+    """A request refused because of the present state of what it changes (HTTP 409)."""
 
 
 def _limit():
@@ -134,33 +139,102 @@ def load_truth_of(split, boxes="keep"):
 # Predictions ----------------------------------------------------------------------
 
 
-def store_predictions(uploaded):
-    """Stream an uploaded predictions file to storage, hashed; same bytes, same row.
+class Received:
+    """An upload spooled to a temporary folder: ``path``, ``sha256``, ``size`` and
+    ``name`` (its base name as sent). ``store()`` puts it into the storage."""
 
-    Content is validated later, by the worker. An empty file or one over the limit
-    is refused at once, with nothing stored.
+    def __init__(self, path, sha256, size):
+        self.path, self.sha256, self.size = path, sha256, size
+        self.name = os.path.basename(path)
+        self._stored = None
+
+    def store(self):
+        """The ``PredictionFile`` of these bytes: the existing row, or a new one with
+        its file stored. Call it inside the caller's transaction."""
+        existing = PredictionFile.objects.filter(sha256=self.sha256).first()
+        if existing is not None:
+            return existing
+        prediction_file = PredictionFile(
+            sha256=self.sha256, size=self.size, original_name=self.name
+        )
+        with open(self.path, "rb") as f:
+            prediction_file.file.save(self.name, File(f), save=False)
+        try:
+            with transaction.atomic():
+                prediction_file.save()
+        except IntegrityError:  # the same bytes arrived concurrently
+            prediction_file.file.storage.delete(prediction_file.file.name)
+            return PredictionFile.objects.get(sha256=self.sha256)
+        self._stored = prediction_file.file
+        return prediction_file
+
+    def discard(self):
+        """Delete the file ``store()`` wrote (its row went with the rolled-back
+        transaction)."""
+        if self._stored is not None:
+            self._stored.storage.delete(self._stored.name)
+            self._stored = None
+
+
+@contextlib.contextmanager
+def received_predictions(uploaded, split, *, boxes="keep"):
+    """Receive a predictions upload for ``split``: spool it (hashed, block by block),
+    refuse an empty file or one over ``BENCHBOOK_MAX_UPLOAD_BYTES`` (``UploadError``),
+    and, when it is at most ``BENCHBOOK_INLINE_VALIDATION_BYTES``, load it with the
+    engine against the split as the worker will (``engine.InputError`` naming file,
+    record and field) under the box policy ``boxes``. Larger files are checked by the
+    worker.
+
+    Yields a ``Received``; if the block raises, a file it stored is deleted again, so a
+    refused upload leaves nothing behind.
     """
     with tempfile.TemporaryDirectory() as work:
         try:
             path, sha, size = spool(uploaded, _limit(), work)
         except TooLarge as e:
             raise UploadError(str(e)) from None
-        name = os.path.basename(path)
+        received = Received(path, sha, size)
         if size == 0:
-            raise UploadError(f"{name}: the file is empty")
-        existing = PredictionFile.objects.filter(sha256=sha).first()
-        if existing is not None:
-            return existing
-        prediction_file = PredictionFile(sha256=sha, size=size, original_name=name)
-        with open(path, "rb") as f:
-            prediction_file.file.save(name, File(f), save=False)
+            raise UploadError(f"{received.name}: the file is empty")
+        if size <= settings.BENCHBOOK_INLINE_VALIDATION_BYTES:
+            try:
+                _load_predictions(path, load_truth_of(split, boxes), received.name, boxes)
+            except engine.InputError as e:
+                e.argument = "predictions"  # the request field, for API error bodies
+                raise
         try:
-            with transaction.atomic():
-                prediction_file.save()
-        except IntegrityError:  # the same bytes arrived concurrently
-            prediction_file.file.storage.delete(prediction_file.file.name)
-            return PredictionFile.objects.get(sha256=sha)
-        return prediction_file
+            yield received
+        except BaseException:
+            received.discard()
+            raise
+
+
+def store_predictions(uploaded):
+    """Store a predictions file's bytes (same bytes, same row) without checking them
+    against a split: for tools and tests that request evaluations directly. Uploads
+    go through ``received_predictions``."""
+    with tempfile.TemporaryDirectory() as work:
+        try:
+            path, sha, size = spool(uploaded, _limit(), work)
+        except TooLarge as e:
+            raise UploadError(str(e)) from None
+        received = Received(path, sha, size)
+        if size == 0:
+            raise UploadError(f"{received.name}: the file is empty")
+        return received.store()
+
+
+def _load_predictions(path, truth, name, boxes="keep"):
+    """The engine's predictions of the file at ``path``, uploaded as ``name`` (the
+    format follows the name) under the box policy ``boxes``; errors name the file as
+    uploaded."""
+    try:
+        return engine.load_predictions(
+            path, truth, fmt=_format_of(name), boxes=boxes, cache_dir=_cache_dir()
+        )
+    except engine.InputError as e:
+        e.path = os.path.basename(e.path)
+        raise
 
 
 def request_evaluations(split, prediction_file, protocols, *, box_policy="keep"):
@@ -289,12 +363,8 @@ def run_evaluation(evaluation_id, claim=None):
         truth = load_truth_of(split, evaluation.box_policy)
         _progress(evaluation, 25)
         with local_path(prediction_file.file) as path:
-            predictions = engine.load_predictions(
-                path,
-                truth,
-                fmt=_format_of(prediction_file.original_name),
-                boxes=evaluation.box_policy,
-                cache_dir=_cache_dir(),
+            predictions = _load_predictions(
+                path, truth, prediction_file.original_name, evaluation.box_policy
             )
         _progress(evaluation, 50)
         records = engine.match(truth, predictions, protocol)

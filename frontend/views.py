@@ -2,6 +2,7 @@
 
 import json
 
+from django.conf import settings
 from django.contrib import messages
 from django.contrib.auth.decorators import login_required
 from django.core.exceptions import PermissionDenied
@@ -13,7 +14,7 @@ from django.utils.html import json_script
 from evaluation import engine
 from evaluation import services as evaluation_services
 from evaluation.models import BenchmarkSplit, Evaluation
-from evaluation.services import UploadError
+from evaluation.services import UploadConflict, UploadError
 from releases import selectors, services
 from releases.models import Detector, ModelVersion
 
@@ -123,6 +124,7 @@ def version(request, version_id):
             "detector": found.detector,
             "splits": splits,
             "evaluations": selectors.evaluations_of(found),
+            "replaced": selectors.replaced_sets(found),
             "decision": getattr(found, "sign_off", None),
             "outcomes": selectors.outcomes_of(found),
             "can_sign_off": selectors.role_in(request.user, found.detector.team) == "lead",
@@ -299,16 +301,23 @@ def upload_predictions(request, detector_id):
                 source_commit=data["source_commit"],
                 notes=data["notes"],
             )
-        except UploadError as e:
+        except (engine.InputError, UploadError) as e:
             error = str(e)
+            status = 409 if isinstance(e, UploadConflict) else 400
         else:
             messages.success(request, f"{prediction_set} stored; scoring is queued")
-            return redirect("detector", detector_id=found.pk)
-    status = 400 if error or form.errors else 200
+            return redirect("version", version_id=prediction_set.version_id)
+    if not error:
+        status = 400 if form.errors else 200
     return render(
         request,
         "frontend/upload.html",
-        {"detector": found, "form": form, "error": error},
+        {
+            "detector": found,
+            "form": form,
+            "error": error,
+            "inline_limit": settings.BENCHBOOK_INLINE_VALIDATION_BYTES,
+        },
         status=status,
     )
 

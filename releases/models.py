@@ -81,15 +81,20 @@ class ModelVersion(models.Model):
 
 class PredictionSetQuerySet(models.QuerySet):
     def current(self):
-        """The sets that count for their version: at most one per version x split.
-
-        Read a version's predictions only through this; sets outside it are history.
-        """
-        return self.all()
+        """The sets that count for their version: at most one per version x split
+        (the database enforces it). Read a version's predictions only through this;
+        replaced sets are history (kept, with their files and errors)."""
+        return self.filter(replaced_at__isnull=True)
 
 
 class PredictionSet(models.Model):
-    """A version's predictions on one benchmark split."""
+    """A version's predictions on one benchmark split, as one upload.
+
+    File name, uploader and time belong to the set, not to the stored bytes: two
+    uploads of identical bytes share one ``PredictionFile`` and nothing else. A set
+    whose evaluations failed can be replaced by a new upload; it is then kept as
+    history with ``replaced_at`` / ``replaced_by`` set.
+    """
 
     objects = PredictionSetQuerySet.as_manager()
 
@@ -106,10 +111,21 @@ class PredictionSet(models.Model):
         settings.AUTH_USER_MODEL, on_delete=models.PROTECT, related_name="+"
     )
     uploaded_at = models.DateTimeField(auto_now_add=True)
+    file_name = models.CharField(
+        max_length=255, default="", help_text="The file's name in this upload."
+    )
+    replaced_at = models.DateTimeField(null=True, blank=True)
+    replaced_by = models.OneToOneField(
+        "self", null=True, blank=True, on_delete=models.PROTECT, related_name="replaces"
+    )
 
     class Meta:
         constraints = [
-            models.UniqueConstraint(fields=["version", "split"], name="one_set_per_split")
+            models.UniqueConstraint(
+                fields=["version", "split"],
+                condition=models.Q(replaced_at__isnull=True),
+                name="one_current_set_per_split",
+            )
         ]
 
     def __str__(self):
@@ -127,6 +143,7 @@ class AuditEvent(models.Model):
     class Kind(models.TextChoices):
         SPLIT_FROZEN = "split frozen"
         PREDICTIONS_UPLOADED = "predictions uploaded"
+        PREDICTIONS_REPLACED = "predictions replaced"
         EVALUATION_FINISHED = "evaluation finished"
         EVALUATION_FAILED = "evaluation failed"
         CRITERIA_CHANGED = "criteria changed"

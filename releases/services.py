@@ -8,7 +8,7 @@ from django.utils import timezone
 from django.utils.text import slugify
 
 from evaluation import services as evaluation_services
-from evaluation.services import UploadError
+from evaluation.services import UploadConflict, UploadError
 
 from . import audit, selectors
 from .models import AuditEvent, Detector, Membership, ModelVersion, PredictionSet, Team
@@ -78,40 +78,106 @@ def create_version(
 def submit_predictions(version, split, uploaded, user):
     """Store a version's predictions on a split and queue their evaluations.
 
-    The identical file again returns the same prediction set; a different file for
-    a version and split that already have one is refused (make a new version).
+    The identical file again returns the same prediction set. A different file for a
+    version and split that already have one replaces it only if that set's
+    evaluations all finished and at least one failed (``_replace_or_refuse``).
     """
     require_upload_right(user, version.detector)
-    prediction_file = evaluation_services.store_predictions(uploaded)
-    with transaction.atomic():
-        existing = PredictionSet.objects.current().filter(version=version, split=split).first()
-        if existing is not None:
-            if existing.predictions_id != prediction_file.pk:
-                raise UploadError(
-                    f"{version} already has other predictions on {split}; "
-                    "upload them as a new version"
-                )
-            return existing
-        prediction_set = PredictionSet.objects.create(
-            version=version, split=split, predictions=prediction_file, uploaded_by=user
-        )
-        audit.record_event(
-            AuditEvent.Kind.PREDICTIONS_UPLOADED,
-            user,
-            f"prediction-set:{prediction_set.pk}",
-            {
-                "version": str(version),
-                "split": str(split),
-                "sha256": prediction_file.sha256,
-                "size": prediction_file.size,
-                "file": prediction_file.original_name,
-            },
-        )
-        evaluation_services.request_evaluations(split, prediction_file, version.detector.protocols)
-        # Bytes scored before (another version's identical file) trigger no new
-        # evaluation, so nothing else would judge this version.
-        judge_if_complete(version.pk)
+    with evaluation_services.received_predictions(uploaded, split) as received:
+        with transaction.atomic():
+            return _record_set(version, split, received, user)
+
+
+def submit_for_label(detector, label, split, uploaded, user, **version_fields):
+    """``submit_predictions`` for a version named by label, created if new; a refused
+    upload leaves no new version behind."""
+    require_upload_right(user, detector)
+    with evaluation_services.received_predictions(uploaded, split) as received:
+        with transaction.atomic():
+            version = ModelVersion.objects.filter(detector=detector, label=label.strip()).first()
+            if version is None:
+                version = create_version(detector, label, user, **version_fields)
+            return _record_set(version, split, received, user)
+
+
+def _record_set(version, split, received, user):
+    """The one place a prediction set is created (inside the caller's transaction):
+    uploads of a version are serialised on its row, the current set of the split is
+    re-read under that lock, and the database allows one current set per version and
+    split (``one_current_set_per_split``)."""
+    ModelVersion.objects.select_for_update().filter(pk=version.pk).exists()
+    current = (
+        PredictionSet.objects.current()
+        .select_related("predictions")
+        .filter(version=version, split=split)
+        .first()
+    )
+    if current is not None and current.predictions.sha256 == received.sha256:
+        return current
+    failed = _replace_or_refuse(version, split, current)
+    prediction_file = received.store()
+    prediction_set = PredictionSet.objects.create(
+        version=version,
+        split=split,
+        predictions=prediction_file,
+        uploaded_by=user,
+        file_name=received.name,
+    )
+    payload = {
+        "version": str(version),
+        "split": str(split),
+        "sha256": prediction_file.sha256,
+        "size": prediction_file.size,
+        "file": prediction_set.file_name,
+    }
+    if current is None:
+        kind = AuditEvent.Kind.PREDICTIONS_UPLOADED
+    else:
+        kind = AuditEvent.Kind.PREDICTIONS_REPLACED
+        PredictionSet.objects.filter(pk=current.pk).update(replaced_by=prediction_set)
+        payload["replaces"] = {
+            "prediction_set": current.pk,
+            "sha256": current.predictions.sha256,
+            "file": current.file_name,
+            "failed": failed,
+        }
+    audit.record_event(kind, user, f"prediction-set:{prediction_set.pk}", payload)
+    evaluation_services.request_evaluations(split, prediction_file, version.detector.protocols)
+    # Bytes scored before (another version's identical file) trigger no new
+    # evaluation, so nothing else would judge this version.
+    judge_if_complete(version.pk)
     return prediction_set
+
+
+def _replace_or_refuse(version, split, current):
+    """Retire ``current`` (the split's set) so a new upload can take its place, or
+    raise ``UploadConflict`` saying why it stays. Only a set whose evaluations all
+    finished, at least one failed, of an undecided version may go; it is kept as
+    history. Returns the failed evaluations ([{protocol, error}]) for the audit trail."""
+    from evaluation.models import Evaluation
+
+    from .models import SignOff
+
+    if current is None:
+        return []
+    evaluations = list(
+        Evaluation.objects.filter(
+            predictions_id=current.predictions_id, split_id=current.split_id
+        ).order_by("protocol")
+    )
+    states = sorted({e.state for e in evaluations})
+    where = f"{version} already has predictions on {split} ({current.file_name})"
+    if SignOff.objects.filter(version=version).exists():
+        raise UploadConflict(
+            f"{where} and a decision was recorded on them; upload new predictions as a new version"
+        )
+    if "failed" not in states or {"queued", "running"} & set(states):
+        raise UploadConflict(
+            f"{where} whose evaluations are {', '.join(states) or 'not requested'}; only "
+            "predictions whose evaluations failed can be replaced: upload these as a new version"
+        )
+    PredictionSet.objects.filter(pk=current.pk).update(replaced_at=timezone.now())
+    return [{"protocol": e.protocol, "error": e.error} for e in evaluations if e.state == "failed"]
 
 
 def judge_if_complete(version_id):
@@ -170,16 +236,6 @@ def _send(task, *args):
         task.delay(*args)
     except Exception:  # broker down: judging can be re-run, it is idempotent
         log.exception("could not queue %s%s", task.name, args)
-
-
-def submit_for_label(detector, label, split, uploaded, user, **version_fields):
-    """``submit_predictions`` for a version named by label, created if new; a refused
-    upload leaves no new version behind."""
-    with transaction.atomic():
-        version = ModelVersion.objects.filter(detector=detector, label=label.strip()).first()
-        if version is None:
-            version = create_version(detector, label, user, **version_fields)
-        return submit_predictions(version, split, uploaded, user)
 
 
 class DecisionError(ValueError):

@@ -17,7 +17,7 @@ from rest_framework.response import Response
 from rest_framework.views import exception_handler
 
 from evaluation import engine
-from evaluation.services import UploadError
+from evaluation.services import UploadConflict, UploadError
 
 log = logging.getLogger(__name__)
 
@@ -62,6 +62,8 @@ def handle(exc, context):
         return Response(body(400, "invalid_file", errors, **located), status=400)
     if isinstance(exc, DecisionError):
         return Response(body(409, "not_allowed", [("", str(exc))]), status=409)
+    if isinstance(exc, UploadConflict):
+        return Response(body(409, "conflict", [(exc.path, str(exc))]), status=409)
     if isinstance(exc, UploadError):
         return Response(body(400, "refused", [(exc.path, str(exc))]), status=400)
     if isinstance(exc, (Http404, ObjectDoesNotExist)):

@@ -528,11 +528,15 @@ class PredictionSetList(PredictionSetMixin, generics.ListCreateAPIView):
         responses={
             201: s.PredictionSetSerializer,
             404: error_response(404),
+            409: error_response(409),
             413: error_response(413),
         },
         summary="Upload a version's predictions on a split; scoring is queued",
         description="The version is created if the label is new. The same file again "
-        "returns the same prediction set (201 as well).",
+        "returns the same prediction set (201 as well). Files up to "
+        "BENCHBOOK_INLINE_VALIDATION_BYTES are checked against the split first (400 with "
+        "file, record and field). A different file replaces the split's predictions only "
+        "if their evaluations failed (the old set stays in the history); otherwise 409.",
     )
     def post(self, request):
         _refuse_oversized(request)

@@ -52,5 +52,6 @@ from .scores import (  # noqa: F401
     summary_items,
 )
 from .version import (  # noqa: F401
+    replaced_sets,
     version_scorecards,
 )

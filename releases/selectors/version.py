@@ -44,3 +44,26 @@ def version_scorecards(version):
             }
         )
     return out
+
+
+def replaced_sets(version):
+    """The version's replaced uploads, newest first, each with its failed evaluations
+    (``.failures``: [(protocol, error)]) — the history behind the current sets."""
+    from evaluation.models import Evaluation
+
+    sets = list(
+        version.prediction_sets.filter(replaced_at__isnull=False)
+        .select_related("split", "uploaded_by", "predictions", "replaced_by")
+        .order_by("-replaced_at")
+    )
+    failed = Evaluation.objects.filter(
+        state="failed",
+        predictions_id__in={ps.predictions_id for ps in sets},
+        split_id__in={ps.split_id for ps in sets},
+    ).order_by("protocol")
+    errors = {}
+    for e in failed:
+        errors.setdefault((e.predictions_id, e.split_id), []).append((e.protocol, e.error))
+    for ps in sets:
+        ps.failures = errors.get((ps.predictions_id, ps.split_id), [])
+    return sets

@@ -17,7 +17,7 @@ from evaluation.models import (
     PredictionFile,
     Scorecard,
 )
-from evaluation.services import UploadError
+from evaluation.services import UploadConflict, UploadError
 from releases import services
 from releases.models import ModelVersion, PredictionSet
 
@@ -95,8 +95,12 @@ def _first_image(split_truth):
     ],
 )
 def test_invalid_predictions_fail_with_the_engines_message(
-    version, split, split_truth, users, run_tasks, name, content, message
+    version, split, split_truth, users, run_tasks, name, content, message, settings
 ):
+    """Files over the inline-validation limit are checked by the worker: the evaluation
+    fails with the engine's message. (Below the limit the upload itself is refused
+    with the same message: test_uploads_validation.py.)"""
+    settings.BENCHBOOK_INLINE_VALIDATION_BYTES = 0
     ok = detections_for(split_truth)
     text = content(ok) if callable(content) else content
     prediction_set = run_tasks(
@@ -258,7 +262,10 @@ def test_other_predictions_for_the_same_version_and_split_are_refused(
         users["engineer"],
     )
     before = _counts()
-    with pytest.raises(UploadError, match="already has other predictions on bay-night rev 1"):
+    with pytest.raises(
+        UploadConflict,
+        match="already has predictions on bay-night rev 1 .p.json. whose evaluations are done",
+    ):
         services.submit_predictions(
             version, split, upload("q.json", detections_for(split_truth, seed=7)), users["engineer"]
         )

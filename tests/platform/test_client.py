@@ -124,14 +124,15 @@ def test_a_pipeline_gates_on_the_verdict(
     assert code == 0, out + err
     assert "1.2: no regression" in out
 
-    # 2: predictions the worker refuses; the message names file, record and field.
+    # 2: predictions the server refuses at upload (small enough to check inside the
+    # request); the message names file, record and field.
     bad = detections_for(split_truth)
     bad[4]["bbox"][2] = -3
     code, out, err = submit(
         "1.3", "--split", "bay-night", "--predictions", _write(tmp_path / "bad.json", bad)
     )
     assert code == 2, out + err
-    assert "bad.json: record 4: field 'bbox': width must be >= 0, got -3" in out
+    assert "bad.json: record 4: field 'bbox': width must be >= 0, got -3" in err
 
     # status, compare and report read the same server.
     code, out, _ = run("status", *connect, "--detector", "Forward camera", "1.1")

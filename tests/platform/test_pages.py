@@ -93,12 +93,15 @@ def test_upload_form_shows_the_error_in_place(client, users, detector, split):
             "predictions": upload("other.json", b"[ ]"),
         },
     )
-    assert response.status_code == 400
-    assert "1.6.0 already has other predictions on bay-night rev 1" in response.content.decode()
+    assert response.status_code == 409
+    assert (
+        "1.6.0 already has predictions on bay-night rev 1 (none.json)" in response.content.decode()
+    )
     assert PredictionSet.objects.filter(version__label="1.6.0").count() == 1
 
 
-def test_failed_evaluation_message_is_shown(client, users, detector, split, run_tasks):
+def test_failed_evaluation_message_is_shown(client, users, detector, split, run_tasks, settings):
+    settings.BENCHBOOK_INLINE_VALIDATION_BYTES = 0  # checked by the worker
     _login(client, users["engineer"])
     run_tasks(
         client.post,

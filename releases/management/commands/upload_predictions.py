@@ -3,6 +3,7 @@ from django.core.exceptions import PermissionDenied
 from django.core.files import File
 from django.core.management.base import BaseCommand, CommandError
 
+from evaluation.engine import InputError
 from evaluation.models import BenchmarkSplit
 from evaluation.services import UploadError
 from releases import services
@@ -43,6 +44,6 @@ class Command(BaseCommand):
                 )
         except OSError as e:
             raise CommandError(f"{e.filename}: {e.strerror}") from None
-        except (UploadError, PermissionDenied) as e:
+        except (InputError, UploadError, PermissionDenied) as e:
             raise CommandError(str(e)) from None
         self.stdout.write(f"stored {prediction_set}; evaluations queued")
