@@ -317,8 +317,9 @@ def interpolated_precision(points, recall_points, *, epsilon=0.0, slots=None):
     0 when no point reaches r; NaN for a class without positives (absent); ``slots``
     restricts the output to those IoU slots. With
     ``epsilon`` = float64 machine epsilon and the 101 points of ``linspace(0, 1, 101)``
-    this is pycocotools' ``precision`` array; 11 points k/10 give VOC 2007
-    (Everingham et al., IJCV 2010), 40 points k/40 give Simonelli et al. (ICCV 2019).
+    this is pycocotools' ``precision`` array; the 11 points of
+    ``protocols.VOC07_RECALL_POINTS`` give VOC 2007 (Everingham et al., IJCV 2010),
+    40 points k/40 give Simonelli et al. (ICCV 2019).
 
     Examples
     --------

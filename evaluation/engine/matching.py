@@ -84,15 +84,20 @@ def _narrow(values, largest):
     return values
 
 
-def _orders(predictions, n_classes):
-    """Accumulation order (class, score desc, image, file) and ranks within groups.
+def _orders(predictions, n_classes, tie_order="image"):
+    """Accumulation order and ranks within (image, class) groups.
 
-    One score sort serves both orders: pycocotools ranks detections within an
-    (image, class) by descending score with file order on ties, and accumulates a
-    class over images in ascending id order with the same tie rule.
+    Accumulation order is (class, score desc, image, file) for ``tie_order="image"``
+    — pycocotools ranks detections within an (image, class) by descending score with
+    file order on ties, and accumulates a class over images in ascending id order —
+    and (class, score desc, file) for ``"file"``, the VOC devkit's stable sort of the
+    whole results file. Ranks within an (image, class) are the same under both.
     """
     image = _narrow(predictions.image, len(predictions.image) and predictions.image.max())
-    by_image = np.argsort(image, kind="stable")
+    if tie_order == "file":
+        by_image = np.arange(len(image))
+    else:
+        by_image = np.argsort(image, kind="stable")
     by_score = by_image[np.argsort(-predictions.score[by_image], kind="stable")]
     cls = _narrow(predictions.cls, n_classes)
     acc = by_score[np.argsort(cls[by_score], kind="stable")]
@@ -119,7 +124,7 @@ def match(truth, predictions, protocol):
     thresholds = protocol.threshold_table(truth.classes)
     effective = np.minimum(thresholds, 1 - 1e-10)  # pycocotools caps at 1 - 1e-10
 
-    order, rank = _orders(predictions, n_classes)
+    order, rank = _orders(predictions, n_classes, protocol.tie_order)
     cap = protocol.max_detections_limit
     if cap is not None:
         keep = rank < cap
@@ -173,6 +178,7 @@ def match(truth, predictions, protocol):
         gt_class=truth.box_class.astype(np.int32),
         gt_image=truth.box_image.astype(np.int32),
         gt_ignored=gt_ignored,
+        tie_order=protocol.tie_order,
     )
 
 

@@ -4,6 +4,8 @@ import math
 
 import numpy as np
 
+from .curves import Curves, _relative, detection_weights
+
 #: Dollár et al. (TPAMI 34(4), 2012): nine FPPI reference points 10^-2 ... 10^0,
 #: evenly spaced in log space.
 FPPI_POINTS = 10.0 ** np.linspace(-2.0, 0.0, 9)
@@ -76,34 +78,73 @@ def best_f1(tp, fp, scores, n_pos):
     }
 
 
-def log_average_miss_rate(tp, fp, scores, n_pos, n_images):
+def every_point_counts(records, *, max_detections=None, weights=None, area=0, slot=0):
+    """Running TP / FP sums at every detection, as the duplicated split would have them.
+
+    Unlike ``curves.cumulative_counts`` (one entry per detection, weighted), an image
+    of weight w contributes the w copies of each of its runs of tied detections in the
+    order the duplicated split accumulates them (``MatchRecords._tie_groups``), so a
+    reading at every point — the miss-rate curve — equals the duplicated split's.
+
+    Returns ``curves.Curves`` over the expanded points.
+    """
+    w = detection_weights(records, max_detections, weights)
+    if weights is None or not np.any(w > 1):
+        index = np.flatnonzero(w > 0)
+    else:
+        index = _duplicated_order(records, w)
+    is_tp, is_ignored = records.outcomes(area, slot)
+    is_fp = ~(is_tp | is_ignored)
+    bounds = np.searchsorted(records.det_class[index], np.arange(len(records.classes) + 1))
+    return Curves(
+        tp=_relative(np.cumsum(is_tp[index]), bounds).astype(np.float64),
+        fp=_relative(np.cumsum(is_fp[index]), bounds).astype(np.float64),
+        bounds=bounds,
+        n_pos=records.n_positives(area, weights),
+        score=records.det_score[index],
+    )
+
+
+def _duplicated_order(records, w):
+    """Detection indices in duplicated accumulation order: each run of tied detections
+    (of one image) repeated w times as a whole, copy after copy."""
+    keep = np.flatnonzero(w > 0)
+    label = records.sparse_outcomes(0)["tie_start"][keep]
+    first = np.flatnonzero(np.r_[True, label[1:] != label[:-1]]) if len(keep) else keep
+    length = np.diff(np.r_[first, len(keep)])
+    copies = w[keep[first]]
+    size = copies * length
+    group = np.repeat(np.arange(len(first)), size)
+    local = np.arange(int(size.sum())) - np.repeat(np.cumsum(size) - size, size)
+    return keep[first[group] + local % length[group]]
+
+
+def log_average_miss_rate(tp, fp, n_pos, n_images):
     r"""Log-average miss rate over FPPI 10^-2 ... 10^0 (Dollár et al., TPAMI 2012).
 
     .. math:: \mathrm{LAMR} = \exp\Big(\frac{1}{9} \sum_{k=0}^{8}
-              \ln \max(\mathrm{MR}(f_k), 10^{-10})\Big), \quad f_k = 10^{-2 + k/4}
+              \ln \max(1 - R(f_k), 10^{-10})\Big), \quad f_k = 10^{-2 + k/4}
 
-    The curve is traced by lowering the score threshold: one point per distinct
-    score (tied detections enter together), FPPI = FP / images, MR = 1 - TP / n_pos.
-    MR(f) is the miss rate of the last point with FPPI <= f (the lowest miss rate
-    within that budget), 1 when none is. Lower is better; None without positives.
+    As the pedestrian toolbox computes it (``bbGt`` ``compRoc``, ``dbEval``): the
+    curve has a point after *every* detection in accumulation order (stable; ties are
+    not merged), FPPI = FP / images, R = TP / n_pos, plus a starting point
+    (-inf, 0); R(f) is the recall of the last point with FPPI <= f, so a budget no
+    point meets gives miss rate 1. Ignored detections repeat the previous point and
+    change nothing. Lower is better; None without positives or images.
 
     Examples
     --------
-    A perfect detector misses nothing at any budget:
+    One box, a TP and an FP tied at 0.9, in that order: recall 1 at FPPI 0, so the
+    miss rate is 0 at every reference point, clamped to 1e-10.
 
     >>> import numpy as np
-    >>> round(log_average_miss_rate(np.array([1., 2]), np.array([0., 0]),
-    ...                             np.array([.9, .8]), 2, 10), 12)
+    >>> round(log_average_miss_rate(np.array([1., 1]), np.array([0., 1]), 1, 1), 20)
     1e-10
     """
     if not n_pos or not n_images:
         return None
-    if len(scores):
-        cuts = np.flatnonzero(np.r_[scores[1:] != scores[:-1], True])
-        fppi = fp[cuts] / n_images
-        miss = 1.0 - tp[cuts] / n_pos
-        last = np.searchsorted(fppi, FPPI_POINTS, side="right") - 1
-        at_points = np.where(last >= 0, miss[np.maximum(last, 0)], 1.0)
-    else:
-        at_points = np.ones(len(FPPI_POINTS))
-    return float(math.exp(np.mean(np.log(np.maximum(at_points, 1e-10)))))
+    fppi = np.r_[-np.inf, np.asarray(fp, np.float64) / n_images]
+    recall = np.r_[0.0, np.asarray(tp, np.float64) / n_pos]
+    last = np.searchsorted(fppi, FPPI_POINTS, side="right") - 1
+    miss = np.maximum(1.0 - recall[last], 1e-10)
+    return float(math.exp(np.mean(np.log(miss))))

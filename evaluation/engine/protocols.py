@@ -26,6 +26,20 @@ COCO_AREA_RANGES = (
 GREEDY = "greedy"  # COCO: best still-unmatched box, regular boxes before ignored ones
 BEST_OVERLAP = "best_overlap"  # VOC devkit: the single best box, taken or not
 
+#: Order of detections tied in score, within a class, when the curve is accumulated.
+#: ``image``: ascending image id, then file order (pycocotools ``accumulate``, which
+#: concatenates images in id order before a stable sort). ``file``: file order (the VOC
+#: devkit sorts the whole results file of a class with MATLAB's stable ``sort``).
+TIE_ORDERS = ("image", "file")
+
+#: The recall thresholds of the VOC 2007 devkit's ``for t=0:0.1:1``, as MATLAB's colon
+#: operator computes them: k*0.1 for the first half, 1 - (10-k)*0.1 for the second
+#: (MathWorks' description of the colon algorithm, from memory). The 4th is
+#: 0.30000000000000004, so a recall of exactly 0.3 does not reach it; 0.6 and 0.7 are
+#: exact (``np.arange(0, 1.1, 0.1)``, used by common Python ports, has them one ulp
+#: higher).
+VOC07_RECALL_POINTS = (0.0, 0.1, 0.2, 0.1 * 3, 0.4, 0.5, 1 - 0.4, 1 - 0.1 * 3, 0.8, 0.9, 1.0)
+
 
 @dataclass(frozen=True)
 class Protocol:
@@ -50,6 +64,7 @@ class Protocol:
     area_ranges: tuple = COCO_AREA_RANGES
     precision_epsilon: float = 0.0
     coco_summary: bool = False
+    tie_order: str = "image"
 
     @property
     def max_detections_limit(self):
@@ -78,6 +93,7 @@ class Protocol:
             "pixel_offset": self.pixel_offset,
             "max_detections": list(self.max_detections),
             "area_ranges": [list(r) for r in self.area_ranges],
+            "tie_order": self.tie_order,
         }
 
 
@@ -97,24 +113,27 @@ PRESETS = {
     ),
     "voc07": Protocol(
         name="voc07",
-        version=1,
+        version=2,
         description="PASCAL VOC 2007: 11-point interpolated AP at overlap >= 0.5 "
         "(the devkit's test; the paper says 'exceeds'), inclusive pixel boxes, "
-        "difficult boxes neither TP nor FP (Everingham et al., IJCV 2010).",
+        "difficult boxes neither TP nor FP, ties in file order, recall sampled at "
+        "the devkit's floating-point 0:0.1:1 (Everingham et al., IJCV 2010).",
         matching=BEST_OVERLAP,
         iou_thresholds=(0.5,),
-        recall_points=tuple(k / 10 for k in range(11)),
+        recall_points=VOC07_RECALL_POINTS,
         pixel_offset=1.0,
+        tie_order="file",
     ),
     "voc": Protocol(
         name="voc",
-        version=1,
+        version=2,
         description="PASCAL VOC 2010+: all-point AP, the area under the monotone "
-        "precision envelope; matching as voc07 (Everingham et al., IJCV 2010).",
+        "precision envelope; matching and ties as voc07 (Everingham et al., IJCV 2010).",
         matching=BEST_OVERLAP,
         iou_thresholds=(0.5,),
         recall_points=None,
         pixel_offset=1.0,
+        tie_order="file",
     ),
     "recall40": Protocol(
         name="recall40",
@@ -161,7 +180,8 @@ def protocol_from_dict(spec, source="protocol"):
 
     Keys: ``name`` (required), ``version``, ``base`` (a preset to start from),
     ``matching``, ``iou_thresholds``, ``class_iou_thresholds`` (class → IoU),
-    ``recall_points`` (list, or ``"all"`` for the all-point area), ``pixel_offset``.
+    ``recall_points`` (list, or ``"all"`` for the all-point area), ``pixel_offset``,
+    ``max_detections``, ``tie_order`` (``TIE_ORDERS``).
     """
     if not isinstance(spec, dict):
         raise InputError(source, "a custom protocol must be a JSON object")
@@ -176,6 +196,7 @@ def protocol_from_dict(spec, source="protocol"):
         "recall_points",
         "pixel_offset",
         "max_detections",
+        "tie_order",
     }
     for key in spec:
         if key not in known:
@@ -229,5 +250,9 @@ def protocol_from_dict(spec, source="protocol"):
         if cap is not None and (not isinstance(cap, int) or isinstance(cap, bool) or cap < 1):
             raise InputError(source, "must be a positive integer or null", field="max_detections")
         values["max_detections"] = (cap,)
+    if "tie_order" in spec:
+        if spec["tie_order"] not in TIE_ORDERS:
+            raise InputError(source, f"must be one of {', '.join(TIE_ORDERS)}", field="tie_order")
+        values["tie_order"] = spec["tie_order"]
     values["precision_epsilon"] = base.precision_epsilon
     return Protocol(**values)

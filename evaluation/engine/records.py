@@ -2,7 +2,8 @@
 
 Detections are stored in *accumulation order* — class, then score descending, then
 image (ascending id), then position in the predictions file — the order in which
-pycocotools' ``accumulate`` walks them. Matches are stored sparsely, one row per
+pycocotools' ``accumulate`` walks them; under ``tie_order="file"`` (VOC devkit) ties
+keep file order instead of image order. Matches are stored sparsely, one row per
 (size bucket, IoU slot, detection) that found a box. Re-weighting images (bootstrap
 resampling, tag slices) therefore needs no sort and no IoU: only new running sums.
 """
@@ -52,6 +53,7 @@ class MatchRecords:
     gt_class: np.ndarray
     gt_image: np.ndarray
     gt_ignored: np.ndarray
+    tie_order: str = "image"  # records saved before engine 2.1 were all "image"
     _sparse: dict = field(default_factory=dict, repr=False)
 
     @property
@@ -104,8 +106,17 @@ class MatchRecords:
         return self._sparse[area]
 
     def _tie_groups(self):
-        """Runs of detections with one class, image and score (contiguous here)."""
+        """Runs of detections with one class, image and score, adjacent in accumulation
+        order: the copies of a weighted image repeat each run as a whole.
+
+        Under ``tie_order="image"`` the copies of an image have adjacent ids, so copy
+        c's tied detections all precede copy c + 1's. Under ``"file"`` the rule is that
+        a weight w repeats each *record* w times in place (one copy per image copy),
+        so every detection is a run of its own.
+        """
         n = self.n_detections
+        if self.tie_order == "file":
+            return {"tie_start": np.arange(n), "tie_end": np.arange(1, n + 1)}
         change = np.ones(n, bool)
         change[1:] = (
             (self.det_class[1:] != self.det_class[:-1])
@@ -149,7 +160,12 @@ class MatchRecords:
     @classmethod
     def load(cls, path):
         with np.load(path, allow_pickle=False) as data:
-            values = {f.name: data[f.name] for f in fields(cls) if not f.name.startswith("_")}
+            values = {
+                f.name: data[f.name]
+                for f in fields(cls)
+                if not f.name.startswith("_") and f.name in data.files
+            }
+        values["tie_order"] = str(values.get("tie_order", "image"))
         values["protocol"] = str(values["protocol"])
         values["classes"] = tuple(str(c) for c in values["classes"])
         values["area_names"] = tuple(str(a) for a in values["area_names"])

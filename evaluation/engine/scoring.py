@@ -14,6 +14,7 @@ from .errors import InputError
 from .operating_point import (
     best_f1,
     counts_at,
+    every_point_counts,
     log_average_miss_rate,
     scores_from_counts,
     threshold_scores,
@@ -102,12 +103,25 @@ def _coco_summary(records, protocol, precision_by_area, recall_by_area, weights)
 
 
 def _per_class(
-    records, protocol, curves, points, ap, precision, recall, ap_by_area, score_threshold, n_images
+    records,
+    protocol,
+    curves,
+    points,
+    ap,
+    precision,
+    recall,
+    ap_by_area,
+    score_threshold,
+    n_images,
+    weights,
 ):
     t50, t75 = _slot_of(protocol, 0.5), _slot_of(protocol, 0.75)
     chart = interpolated_precision(
         points, CURVE_POINTS, epsilon=protocol.precision_epsilon, slots=[0]
     )[0]
+    every = every_point_counts(
+        records, max_detections=protocol.max_detections_limit, weights=weights
+    )
     out = {}
     for k, name in enumerate(records.classes):
         tp, fp, scores = curves.segment(k)
@@ -132,7 +146,8 @@ def _per_class(
         }
         row["at_threshold"] = threshold_scores(tp, fp, scores, n_pos, score_threshold)
         row["best_f1"] = best_f1(tp, fp, scores, n_pos)
-        row["miss_rate"] = log_average_miss_rate(tp, fp, scores, n_pos, n_images)
+        every_tp, every_fp, _ = every.segment(k)
+        row["miss_rate"] = log_average_miss_rate(every_tp, every_fp, n_pos, n_images)
         out[name] = row
     return out
 
@@ -228,6 +243,7 @@ def score_records(records, protocol, *, weights=None, tag_masks=None, score_thre
             ap_by_area,
             score_threshold,
             n_images,
+            weights,
         ),
         "at_threshold": _pooled_threshold(curves, score_threshold),
         "slices": {"size": {}, "tag": {}},

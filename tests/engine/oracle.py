@@ -95,57 +95,122 @@ def greedy_ap(truth, predictions, *, thresholds, recall_points, max_detections, 
     return out
 
 
+def matlab_colon(a, d, b):
+    """MATLAB's ``a:d:b`` for floating-point steps, as MathWorks describes its colon
+    algorithm (from memory): n = round((b - a) / d) intervals; the first half is
+    a + k*d, the second half b - (n - k)*d, the middle (n even) (a + b) / 2."""
+    n = round((b - a) / d)
+    out = [0.0] * (n + 1)
+    for k in range(n // 2 + 1):
+        out[k] = a + k * d
+        out[n - k] = b - k * d
+    if n % 2 == 0:
+        out[n // 2] = (a + b) / 2
+    return out
+
+
 def voc_ap(truth, predictions, *, eleven_point, min_overlap=0.5):
-    """AP per class by VOCevaldet.m: single best box, inclusive pixels, difficult.
+    """AP per class, transliterated from the PASCAL VOC devkit's ``VOCevaldet.m`` (and
+    the VOC2007 11-point loop in it) and ``VOCap.m``, written from the published
+    code's logic: the class's whole results file sorted by ``sort(-confidence)``
+    (MATLAB's sort is stable: ties keep file order); for each detection, the box of
+    largest overlap among all of its image's boxes of the class (``ov > ovmax``: the
+    first maximum); ``ovmax >= minoverlap`` -> difficult: neither, free: TP, taken:
+    FP; else FP. Inclusive pixel boxes (+1). 11-point: ``for t=0:0.1:1``,
+    ``p=max(prec(rec>=t))`` (0 if empty), ``ap=ap+p/11``.
 
     The devkit knows no crowd regions; like the engine, treat them (and boxes flagged
-    ``ignore``) as difficult.
+    ``ignore``) as difficult. Boxes here are [x, y, w, h] with x_max = x + w.
     """
     out = np.full(len(truth.classes), np.nan)
     difficult = truth.difficult | truth.crowd | truth.ignore
     for k in range(len(truth.classes)):
         boxes = [j for j in range(truth.n_boxes) if truth.box_class[j] == k]
-        n_pos = sum(not difficult[j] for j in boxes)
-        if n_pos == 0:
+        npos = sum(not difficult[j] for j in boxes)
+        if npos == 0:
             continue
-        dets = [i for i in range(len(predictions)) if predictions.cls[i] == k]
-        # The devkit sorts the whole list by score; ties: image order, then file order
-        # (our documented tie rule; the devkit keeps file order).
-        dets.sort(key=lambda i: (-predictions.score[i], predictions.image[i]))
-        taken = set()
-        tp, fp = [], []
-        for i in dets:
-            candidates = [j for j in boxes if truth.box_image[j] == predictions.image[i]]
-            ov_max, j_max = -np.inf, None
-            for j in candidates:
-                ov = _iou(predictions.boxes[i], truth.boxes[j], False, 1.0)
-                if ov > 0 and ov > ov_max:  # MATLAB max: first maximum
-                    ov_max, j_max = ov, j
-            if ov_max >= min_overlap:
-                if difficult[j_max]:
-                    tp.append(0), fp.append(0)
-                elif j_max not in taken:
-                    taken.add(j_max)
-                    tp.append(1), fp.append(0)
-                else:
-                    tp.append(0), fp.append(1)
+        # the class's results file, in file order
+        ids = [i for i in range(len(predictions)) if predictions.cls[i] == k]
+        confidence = [predictions.score[i] for i in ids]
+        si = sorted(range(len(ids)), key=lambda d: -confidence[d])  # stable, like MATLAB
+        ids = [ids[d] for d in si]
+        det = set()
+        nd = len(ids)
+        tp, fp = np.zeros(nd), np.zeros(nd)
+        for d in range(nd):
+            i = ids[d]
+            bx, by, bw, bh = predictions.boxes[i]
+            bb = (bx, by, bx + bw, by + bh)
+            ovmax, jmax = -np.inf, None
+            for j in (j for j in boxes if truth.box_image[j] == predictions.image[i]):
+                gx, gy, gw, gh = truth.boxes[j]
+                bbgt = (gx, gy, gx + gw, gy + gh)
+                bi = (
+                    max(bb[0], bbgt[0]),
+                    max(bb[1], bbgt[1]),
+                    min(bb[2], bbgt[2]),
+                    min(bb[3], bbgt[3]),
+                )
+                iw = bi[2] - bi[0] + 1
+                ih = bi[3] - bi[1] + 1
+                if iw > 0 and ih > 0:
+                    ua = (
+                        (bb[2] - bb[0] + 1) * (bb[3] - bb[1] + 1)
+                        + (bbgt[2] - bbgt[0] + 1) * (bbgt[3] - bbgt[1] + 1)
+                        - iw * ih
+                    )
+                    ov = iw * ih / ua
+                    if ov > ovmax:
+                        ovmax, jmax = ov, j
+            if ovmax >= min_overlap:
+                if not difficult[jmax]:
+                    if jmax not in det:
+                        tp[d] = 1
+                        det.add(jmax)
+                    else:
+                        fp[d] = 1
             else:
-                tp.append(0), fp.append(1)
-        tp, fp = np.cumsum(tp), np.cumsum(fp)
-        rec = tp / n_pos
+                fp[d] = 1
+        fp, tp = np.cumsum(fp), np.cumsum(tp)
+        rec = tp / npos
         with np.errstate(invalid="ignore", divide="ignore"):
-            prec = np.nan_to_num(tp / (fp + tp), nan=0.0)
+            prec = tp / (fp + tp)  # NaN before the first counted detection
         if eleven_point:
             ap = 0.0
-            for t in [k10 / 10 for k10 in range(11)]:
+            for t in matlab_colon(0, 0.1, 1):
                 sel = prec[rec >= t]
-                ap += (sel.max() if len(sel) else 0.0) / 11
+                sel = sel[~np.isnan(sel)]  # MATLAB's max ignores NaN
+                p = sel.max() if len(sel) else 0.0
+                ap = ap + p / 11
         else:
             mrec = np.r_[0.0, rec, 1.0]
-            mpre = np.r_[0.0, prec, 0.0]
+            mpre = np.r_[0.0, np.nan_to_num(prec, nan=0.0), 0.0]
             for i in range(len(mpre) - 2, -1, -1):
                 mpre[i] = max(mpre[i], mpre[i + 1])
-            idx = np.flatnonzero(mrec[1:] != mrec[:-1]) + 1
-            ap = float(np.sum((mrec[idx] - mrec[idx - 1]) * mpre[idx]))
+            i = np.flatnonzero(mrec[1:] != mrec[:-1]) + 1
+            ap = float(np.sum((mrec[i] - mrec[i - 1]) * mpre[i]))
         out[k] = ap
     return out
+
+
+def toolbox_miss_rate(scores, matched, ignored, npos, n_images):
+    """Log-average miss rate, transliterated from the pedestrian detection toolbox of
+    Dollár et al. (TPAMI 2012), written from the published code's logic: ``bbGt``
+    ``compRoc`` and ``dbEval``. Detections of every image concatenated in image
+    order (``dt=cat(1,dt{:})``), ignored ones dropped (``dt(:,6)~=-1``), sorted by
+    ``sort(score,'descend')`` (stable); ``fp=cumsum(tp~=1)``, ``tp=cumsum(tp)``;
+    ``xs=fp/nImg``, ``ys=tp/np``, ``xs1=[-Inf; xs]``, ``ys1=[0; ys]``; for each
+    ``ref=10.^(-2:.25:0)``, ``ys1`` at the last ``xs1 <= ref``; miss rate
+    ``exp(mean(log(max(1e-10, 1-ref))))``."""
+    keep = [d for d in range(len(scores)) if not ignored[d]]
+    order = sorted(keep, key=lambda d: -scores[d])  # stable
+    tp = np.cumsum([1 if matched[d] else 0 for d in order])
+    fp = np.cumsum([0 if matched[d] else 1 for d in order])
+    xs1 = np.r_[-np.inf, fp / n_images]
+    ys1 = np.r_[0.0, tp / npos]
+    refs = []
+    for r in matlab_colon(-2, 0.25, 0):
+        ref = 10.0**r
+        j = [i for i in range(len(xs1)) if xs1[i] <= ref]
+        refs.append(ys1[j[-1]])
+    return float(np.exp(np.mean(np.log(np.maximum(1e-10, 1 - np.array(refs))))))

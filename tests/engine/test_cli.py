@@ -7,7 +7,7 @@ import sys
 import numpy as np
 import pytest
 
-from evaluation.engine import COCO_SUMMARY_KEYS, MatchRecords, score_records
+from evaluation.engine import COCO_SUMMARY_KEYS, PRESETS, MatchRecords, score_records
 from evaluation.engine.__main__ import main
 
 from .synthetic import make_detections, make_split
@@ -36,7 +36,8 @@ def test_table_output_for_every_preset(inputs, capsys, protocol):
         main(["score", "--truth", str(gt), "--predictions", str(dt), "--protocol", protocol]) == 0
     )
     out = capsys.readouterr().out
-    assert f"protocol {protocol} v1" in out and "per class" in out and "class2" in out
+    version = PRESETS[protocol].version
+    assert f"protocol {protocol} v{version}" in out and "per class" in out and "class2" in out
 
 
 def test_custom_protocol_file(inputs, files, capsys):

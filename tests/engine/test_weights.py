@@ -3,7 +3,10 @@
 Weighted evaluation must equal scoring the explicitly duplicated images, exactly —
 the property the paired bootstrap (Efron & Tibshirani, 1993) relies on to resample
 without re-matching. Copies are given ids right after the original's, so ties across
-images break the same way (images ascending, as pycocotools accumulates).
+images break the same way (images ascending, as pycocotools accumulates). Under the VOC
+protocols ties keep file order (the devkit's stable sort), and the rule is that a
+weight w repeats each detection *record* w times in place, one per image copy
+(``_duplicate_in_place``); the engine documents it in ``MatchRecords._tie_groups``.
 """
 
 import copy
@@ -49,6 +52,21 @@ def _duplicate(split, detections, weights_by_id):
     return {"images": images, "annotations": annotations, "categories": split["categories"]}, dets
 
 
+def _duplicate_in_place(split, detections, weights_by_id):
+    """The file-order duplicate: each record followed by its copies (ids id*10 + c)."""
+    dup_split, _ = _duplicate(split, [], weights_by_id)
+    dets = [
+        {**d, "image_id": d["image_id"] * 10 + c}
+        for d in detections
+        for c in range(weights_by_id[d["image_id"]])
+    ]
+    return dup_split, dets
+
+
+def _duplicate_for(protocol):
+    return _duplicate_in_place if PRESETS[protocol].tie_order == "file" else _duplicate
+
+
 def _numbers(result):
     """Every number of a scorecard, flattened, for exact comparison."""
     out = dict(result["summary"])
@@ -71,7 +89,7 @@ def test_weights_equal_duplicated_images_exactly(files, protocol, seed):
     by_id = dict(zip(truth.image_ids.tolist(), weights.tolist()))
     weighted = score_records(match(truth, predictions, protocol), protocol, weights=weights)
 
-    dup_split, dup_dets = _duplicate(split, detections, by_id)
+    dup_split, dup_dets = _duplicate_for(protocol)(split, detections, by_id)
     dup_truth, dup_predictions = files.load(dup_split, dup_dets)
     duplicated = evaluate(dup_truth, dup_predictions, protocol, tag_slices=False)
     assert _numbers(weighted) == _numbers(duplicated)
@@ -194,6 +212,6 @@ def test_ties_inside_one_image_follow_the_copies(files, protocol):
     truth, predictions = files.load(split, detections)
     weights = np.array([3, 1])
     weighted = score_records(match(truth, predictions, protocol), protocol, weights=weights)
-    dup_split, dup_dets = _duplicate(split, detections, {1: 3, 2: 1})
+    dup_split, dup_dets = _duplicate_for(protocol)(split, detections, {1: 3, 2: 1})
     duplicated = evaluate(*files.load(dup_split, dup_dets), protocol, tag_slices=False)
     assert _numbers(weighted) == _numbers(duplicated)

@@ -4,7 +4,7 @@ Sources: PASCAL VOC — Everingham et al., "The PASCAL Visual Object Classes (VO
 Challenge", IJCV 88(2), 2010, and the devkit's VOCevaldet.m / VOCap.m; 40 recall
 positions — Simonelli et al., "Disentangling Monocular 3D Object Detection", ICCV 2019;
 log-average miss rate — Dollár et al., "Pedestrian Detection: An Evaluation of the
-State of the Art", TPAMI 34(4), 2012.
+State of the Art", TPAMI 34(4), 2012, and their toolbox's bbGt.m (compRoc) / dbEval.m.
 """
 
 import math
@@ -144,6 +144,87 @@ def test_log_average_miss_rate(tmp_path):
     expected = math.exp((5 * math.log(0.75) + 2 * math.log(0.5) + 2 * math.log(0.25)) / 9)
     assert result["per_class"]["pedestrian"]["miss_rate"] == pytest.approx(expected, abs=1e-12)
     assert expected == pytest.approx(0.5369, abs=1e-4)
+
+
+def _score_csv(tmp_path, images, truth_rows, prediction_rows, protocol):
+    (tmp_path / "images.csv").write_text(
+        "image_id,width,height\n" + "".join(f"{i},1000,1000\n" for i in images)
+    )
+    (tmp_path / "truth.csv").write_text("image_id,label,x_min,y_min,x_max,y_max\n" + truth_rows)
+    (tmp_path / "pred.csv").write_text(
+        "image_id,label,x_min,y_min,x_max,y_max,score\n" + prediction_rows
+    )
+    truth = load_truth(tmp_path / "truth.csv", images=tmp_path / "images.csv")
+    predictions = load_predictions(tmp_path / "pred.csv", truth)
+    return evaluate(truth, predictions, protocol)["per_class"]["pedestrian"]
+
+
+def test_voc07_samples_recall_at_the_devkits_floating_point_thresholds(tmp_path):
+    """10 ground-truth boxes; detections TP, TP, TP, then 7 FP, then TP (VOC2007
+    devkit ``VOCevaldet.m``: ``for t=0:0.1:1``, whose 4th value is 0.30000000000000004).
+
+    Recall after each: .1 .2 .3 (x8) .4; precision 1 1 1 3/4 ... 3/10 4/11.
+    t = 0, .1, .2 -> max precision at recall >= t = 1 (3 points);
+    t = 0.30000000000000004 -> recall 0.3 (= 3/10 exactly) does not reach it; only the
+    last point (recall .4, precision 4/11) does -> 4/11; t = .4 -> 4/11; t >= .5 -> 0.
+    AP = (3 + 2 * 4/11) / 11 = 41/121 = 0.338843 (the devkit's number; exact k/10
+    thresholds would give (4 + 4/11) / 11 = 48/121 = 0.396694)."""
+    truth = "".join(f"1,pedestrian,{100 * i},0,{100 * i + 49},49\n" for i in range(10))
+    rows, score = [], 1.0
+    hits = [0, 1, 2, None, None, None, None, None, None, None, 3]
+    for hit in hits:
+        score -= 0.05
+        x = 100 * hit if hit is not None else 20
+        y = 0 if hit is not None else 500
+        rows.append(f"1,pedestrian,{x},{y},{x + 49},{y + 49},{score:.2f}\n")
+    row = _score_csv(tmp_path, [1], truth, "".join(rows), "voc07")
+    assert (row["tp"], row["fp"]) == (4.0, 7.0)
+    assert row["AP"] == pytest.approx(41 / 121, abs=1e-12)
+    assert round(row["AP"], 6) == 0.338843
+
+
+def test_voc_ties_keep_file_order(tmp_path):
+    """Devkit ``VOCevaldet.m`` sorts a class's whole results file with MATLAB's stable
+    sort: tied detections keep file order, not image order. Images 1 and 2, one box
+    each. File: FP on image 2 (0.8), TP on image 1 (0.8), TP on image 2 (0.7).
+
+    File order: recall .5 at precision 1/2, recall 1 at 2/3; envelope 2/3, 2/3:
+    all-point AP = .5 * 2/3 + .5 * 2/3 = 2/3. (Image order would put the TP first:
+    .5 * 1 + .5 * 2/3 = 5/6.)"""
+    truth = "1,pedestrian,0,0,99,99\n2,pedestrian,0,0,99,99\n"
+    rows = (
+        "2,pedestrian,500,500,599,599,0.8\n1,pedestrian,0,0,99,99,0.8\n2,pedestrian,0,0,99,99,0.7\n"
+    )
+    assert _score_csv(tmp_path, [1, 2], truth, rows, "voc")["AP"] == pytest.approx(2 / 3)
+    image_order = {"name": "voc-image-ties", "base": "voc", "tie_order": "image"}
+    from evaluation.engine import protocol_from_dict
+
+    custom = protocol_from_dict(image_order)
+    assert _score_csv(tmp_path, [1, 2], truth, rows, custom)["AP"] == pytest.approx(5 / 6)
+
+
+@pytest.mark.parametrize(
+    "order, expected",
+    [
+        # TP then FP: recall 1 at FPPI 0 -> miss rate 0 at all nine points, clamped.
+        ("tp_first", 1e-10),
+        # FP then TP: the first point is (FPPI 1, recall 0); only f = 1 reaches the second
+        # point (recall 1): miss rates 1 (8 times) and 1e-10 -> exp(ln(1e-10) / 9).
+        ("fp_first", math.exp(math.log(1e-10) / 9)),
+    ],
+)
+def test_miss_rate_with_tied_scores_reads_every_detection(tmp_path, order, expected):
+    """Dollár et al.'s toolbox (``bbGt`` ``compRoc``, ``dbEval``): one image, one box;
+    a TP and an FP tied at 0.9. The curve has a point after every detection in stable
+    order, so the order within the tie counts (0.0774 would be the value of a curve
+    read only between distinct scores, for either order)."""
+    truth = "1,pedestrian,10,10,50,90\n"
+    tp_row, fp_row = "1,pedestrian,10,10,50,90,0.9\n", "1,pedestrian,300,300,340,380,0.9\n"
+    rows = tp_row + fp_row if order == "tp_first" else fp_row + tp_row
+    row = _score_csv(tmp_path, [1], truth, rows, "coco")
+    assert row["miss_rate"] == pytest.approx(expected, rel=1e-12)
+    if order == "fp_first":
+        assert round(row["miss_rate"], 4) == 0.0774
 
 
 def test_operating_point_and_best_f1(example):
