@@ -51,6 +51,9 @@ MIDDLEWARE = [
     "django.middleware.csrf.CsrfViewMiddleware",
     "django.contrib.auth.middleware.AuthenticationMiddleware",
     "django.contrib.messages.middleware.MessageMiddleware",
+    # After authentication (its page shows the navigation), before any view and the
+    # CSRF check read the body.
+    "frontend.middleware.UploadLimitMiddleware",
     "django.middleware.clickjacking.XFrameOptionsMiddleware",
 ]
 

@@ -77,3 +77,29 @@ def spool(uploaded, limit, directory):
             digest.update(chunk)
             out.write(chunk)
     return path, digest.hexdigest(), size
+
+
+# Room for the multipart envelope and the form's other fields beside the file.
+ENVELOPE_BYTES = 1024 * 1024
+
+
+def oversized(request):
+    """Why a request is refused before its body is read — its declared
+    ``Content-Length`` is over ``BENCHBOOK_MAX_UPLOAD_BYTES`` plus the envelope — or
+    None. Reads only the header."""
+    from django.conf import settings
+    from django.template.defaultfilters import filesizeformat
+
+    limit = settings.BENCHBOOK_MAX_UPLOAD_BYTES
+    try:
+        length = int(request.META.get("CONTENT_LENGTH") or 0)
+    except ValueError:
+        return None  # Django reads no body without a valid length
+    if length <= limit + ENVELOPE_BYTES:
+        return None
+
+    def words(n):
+        size = filesizeformat(n).replace("\xa0", " ")
+        return size if n < 1024 else f"{size} ({n:,} bytes)"
+
+    return f"the request is {words(length)}; the upload limit is {words(limit)} per file"

@@ -6,7 +6,6 @@ objects are 404); writes go through the same services, which check the role.
 
 import datetime
 
-from django.conf import settings
 from django.db.models import Exists, OuterRef
 from django.template.loader import render_to_string
 from django.utils.dateparse import parse_datetime
@@ -18,6 +17,7 @@ from rest_framework.views import APIView
 
 from evaluation import services as evaluation_services
 from evaluation.models import BenchmarkSplit, Evaluation
+from evaluation.storage import oversized
 
 from .. import criteria, selectors, services
 from ..models import ModelVersion, Outcome, PredictionSet, SignOff
@@ -36,15 +36,10 @@ class NotScored(exceptions.APIException):
 
 
 def _refuse_oversized(request):
-    """Refuse before parsing: a body over the limit is never read (plus 1 MB for the
-    multipart envelope and the other fields)."""
-    limit = settings.BENCHBOOK_MAX_UPLOAD_BYTES
-    try:
-        length = int(request.META.get("CONTENT_LENGTH") or 0)
-    except ValueError:
-        length = 0
-    if length > limit + 1024 * 1024:
-        raise PayloadTooLarge(f"the request is {length} bytes; the upload limit is {limit} bytes")
+    """Refuse before parsing (``frontend.middleware`` answers these first; this keeps
+    the view safe without it)."""
+    if reason := oversized(request):
+        raise PayloadTooLarge(reason)
 
 
 # Query parameters ------------------------------------------------------------------
