@@ -65,19 +65,41 @@ class Protocol:
     precision_epsilon: float = 0.0
     coco_summary: bool = False
     tie_order: str = "image"
+    #: Custom protocols: every name in ``class_iou_thresholds`` must be a class of the
+    #: split. Presets name common classes (car, van, ...) that a split may lack.
+    check_class_names: bool = False
 
     @property
     def max_detections_limit(self):
         return self.max_detections[-1]
 
     def threshold_table(self, classes):
-        """IoU thresholds as a ``(slots, classes)`` float64 array."""
+        """IoU thresholds as a ``(slots, classes)`` float64 array.
+
+        Class names in ``class_iou_thresholds`` match the split's case-insensitively
+        (``Car`` and ``car`` are one class to a threshold). Under a custom protocol a
+        name matching none of the split's classes is an error.
+        """
         table = np.empty((len(self.iou_thresholds), len(classes)))
         for slot, value in enumerate(self.iou_thresholds):
             table[slot] = value
+        per_class = {name.casefold(): value for name, value in self.class_iou_thresholds.items()}
+        if self.check_class_names:
+            known = {str(c).casefold() for c in classes}
+            unknown = sorted(
+                name for name in self.class_iou_thresholds if name.casefold() not in known
+            )
+            if unknown:
+                raise InputError(
+                    f"protocol {self.name}",
+                    f"{', '.join(map(repr, unknown))} is not a class of the split "
+                    f"(classes: {', '.join(map(str, classes))})",
+                    field="class_iou_thresholds",
+                )
         for k, name in enumerate(classes):
-            if name in self.class_iou_thresholds:
-                table[0, k] = self.class_iou_thresholds[name]
+            key = str(name).casefold()
+            if key in per_class:
+                table[0, k] = per_class[key]
         return table
 
     def as_dict(self):
@@ -232,7 +254,15 @@ def protocol_from_dict(spec, source="protocol"):
                     f"IoU for {name!r} must be in [0, 1], got {value!r}",
                     field="class_iou_thresholds",
                 )
+        folded = [str(k).casefold() for k in table]
+        if len(set(folded)) != len(folded):
+            raise InputError(
+                source,
+                "names a class twice (names match case-insensitively)",
+                field="class_iou_thresholds",
+            )
         values["class_iou_thresholds"] = {str(k): float(v) for k, v in table.items()}
+        values["check_class_names"] = True
     if "recall_points" in spec:
         if spec["recall_points"] == "all":
             values["recall_points"] = None

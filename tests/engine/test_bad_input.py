@@ -390,3 +390,95 @@ def test_syntax_error_in_truth_names_line_and_column(files):
     line = text[: text.index(",,")].count("\n") + 1
     with pytest.raises(InputError, match=rf"split\.json: not valid JSON: .* at line {line}, col"):
         load_truth(files.write("split.json", text))
+
+
+# Encodings, huge ids, bounded reading ---------------------------------------------
+
+
+def test_utf8_byte_order_mark_is_read(files):
+    """A UTF-8 BOM (as some editors write) is skipped in JSON and CSV."""
+    bom = "\ufeff"
+    truth = load_truth(files.write("split.json", bom + json.dumps(TRUTH)))
+    predictions = load_predictions(files.write("p.json", bom + json.dumps([DET])), truth)
+    assert (truth.n_boxes, len(predictions)) == (2, 1)
+    csv_truth = _csv_truth(files, bom + BOXES_CSV, bom + IMAGES_CSV)
+    assert csv_truth.n_boxes == 2
+
+
+@pytest.mark.parametrize("encoding, name", [("utf-16", "UTF-16"), ("utf-32", "UTF-32")])
+@pytest.mark.parametrize("kind", ["truth", "predictions", "csv"])
+def test_utf16_and_utf32_files_are_named(files, encoding, name, kind):
+    if kind == "truth":
+        path = files.root / "split.json"
+        path.write_bytes(json.dumps(TRUTH).encode(encoding))
+        call = lambda: load_truth(path)  # noqa: E731
+    elif kind == "predictions":
+        truth = _truth(files)
+        path = files.root / "p.json"
+        path.write_bytes(json.dumps([DET]).encode(encoding))
+        call = lambda: load_predictions(path, truth)  # noqa: E731
+    else:
+        truth = _csv_truth(files)
+        path = files.root / "p.csv"
+        path.write_bytes("image_id,label,x_min,y_min,x_max,y_max,score\n".encode(encoding))
+        call = lambda: load_predictions(path, truth)  # noqa: E731
+    with pytest.raises(InputError, match=rf"{path.name}: the file is {name} text .* UTF-8"):
+        call()
+
+
+def test_utf16_without_byte_order_mark_is_named(files):
+    path = files.root / "p.json"
+    path.write_bytes(json.dumps([DET]).encode("utf-16-le"))
+    with pytest.raises(InputError, match=r"p\.json: .* looks like UTF-16 text"):
+        load_predictions(path, _truth(files))
+
+
+def test_csv_ids_beyond_64_bits_are_text_ids(files):
+    """Integer-looking ids that do not fit int64 keep working, compared as text."""
+    images = "image_id,width,height\n18446744073709551616,640,480\n7,640,480\n"
+    boxes = "image_id,label,x_min,y_min,x_max,y_max\n18446744073709551616,car,1,1,20,20\n"
+    truth = _csv_truth(files, boxes, images)
+    assert truth.image_ids.dtype.kind == "U"
+    path = files.write(
+        "p.csv",
+        "image_id,label,x_min,y_min,x_max,y_max,score\n18446744073709551616,car,1,1,20,20,0.9\n",
+    )
+    assert len(load_predictions(path, truth)) == 1
+
+
+def test_huge_box_values_are_refused_not_overflowed(files):
+    path = files.write("p.json", [{**DET, "bbox": [1e308, 1, 1e308, 1]}])
+    with pytest.raises(InputError, match=r"record 0: field 'bbox': box .* is too large"):
+        load_predictions(path, _truth(files))
+
+
+def test_a_truncated_predictions_file_is_read_in_bounded_slices(files, monkeypatch):
+    """Memory while rejecting a huge malformed file: never a whole-file read, and no
+    columns kept. With a 1 kB slice, a 300 kB truncated file is decoded in pieces of a
+    few kB at most, no record is turned into columns (the file does not end like an
+    array, so a validation pass runs first), and the error is the truncation.
+    bench/malformed_memory.py measures the flat peak at full size."""
+    monkeypatch.setattr(coco_json, "CHUNK_BYTES", 1024)
+    pieces = []
+    real = coco_json._decode_slice
+    monkeypatch.setattr(coco_json, "_decode_slice", lambda p: pieces.append(len(p)) or real(p))
+    monkeypatch.setattr(coco_json, "_columns", lambda *a: pytest.fail("columns were built"))
+    text = json.dumps([DET] * 4000)
+    path = files.write("p.json", text[: len(text) - 40])
+    assert len(text) > 250_000
+    with pytest.raises(InputError, match=r"p\.json: the JSON ends early: .*truncated"):
+        load_predictions(path, _truth(files))
+    assert max(pieces) <= 3 * 1024 and len(pieces) > 100
+
+
+def test_a_file_without_record_boundaries_stops_early(files, monkeypatch):
+    """No '},' anywhere: the first slice's own error is reported (not the whole file
+    buffered), or past MAX_SLICE_BYTES reading stops."""
+    monkeypatch.setattr(coco_json, "CHUNK_BYTES", 1024)
+    monkeypatch.setattr(coco_json, "MAX_SLICE_BYTES", 8 * 1024)
+    path = files.write("numbers.json", "[" + "1," * 100_000 + "1]")
+    with pytest.raises(InputError, match=r"numbers\.json: record 0: expected 'object', got 'int'"):
+        load_predictions(path, _truth(files))
+    path = files.write("string.json", '[{"image_id": "' + "x" * 100_000 + '"}]')
+    with pytest.raises(InputError, match=r"string\.json: record 0: no record ends within"):
+        load_predictions(path, _truth(files))

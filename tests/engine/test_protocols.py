@@ -22,6 +22,27 @@ def test_per_class_thresholds():
     assert table.tolist() == [[0.7, 0.5, 0.7]]
 
 
+def test_per_class_thresholds_match_case_insensitively():
+    """`Car` is a car (0.7 under recall40, common practice for vehicles), not 0.5."""
+    table = PRESETS["recall40"].threshold_table(("Car", "Pedestrian", "BUS"))
+    assert table.tolist() == [[0.7, 0.5, 0.7]]
+
+
+def test_custom_thresholds_must_name_classes_of_the_split():
+    """A preset may name classes the split lacks (van, truck); a custom protocol's own
+    names are checked against the split, with the split's classes listed."""
+    custom = protocol_from_dict({"name": "x", "class_iou_thresholds": {"Car": 0.7, "tram": 0.6}})
+    assert custom.threshold_table(("car", "tram")).tolist()[0] == [0.7, 0.6]
+    with pytest.raises(
+        InputError,
+        match=r"protocol x: field 'class_iou_thresholds': 'tram' is not a class of the split "
+        r"\(classes: car, pedestrian\)",
+    ):
+        custom.threshold_table(("car", "pedestrian"))
+    with pytest.raises(InputError, match=r"names a class twice"):
+        protocol_from_dict({"name": "y", "class_iou_thresholds": {"car": 0.7, "CAR": 0.5}})
+
+
 @pytest.mark.parametrize(
     "spec, pattern",
     [
@@ -36,6 +57,7 @@ def test_per_class_thresholds():
         ({"name": "x", "class_iou_thresholds": {"car": 2}}, r"IoU for 'car' must be in \[0, 1\]"),
         ({"name": "x", "colour": "red"}, r"field 'colour': unknown key"),
         ({"name": "x", "base": "yolo"}, r"unknown protocol 'yolo'"),
+        ({"name": "x", "tie_order": "score"}, r"field 'tie_order': must be one of image, file"),
         ({"name": "x", "max_detections": 0}, r"field 'max_detections': must be a positive integer"),
     ],
 )

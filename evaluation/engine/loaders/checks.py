@@ -72,6 +72,17 @@ def check_boxes(path, boxes, locate, field="bbox"):
     no reference gives them a meaning.
     """
     check_finite(path, boxes, locate, field)
+    with np.errstate(over="ignore"):
+        extent = np.column_stack(
+            [boxes[:, 0] + boxes[:, 2], boxes[:, 1] + boxes[:, 3], boxes[:, 2] * boxes[:, 3]]
+        )
+    fail_at(
+        path,
+        ~np.isfinite(extent).all(axis=1),
+        locate,
+        field,
+        lambda i: f"box {boxes[i].tolist()} is too large to compute with",
+    )
     fail_at(
         path, boxes[:, 2] < 0, locate, field, lambda i: f"width must be >= 0, got {boxes[i, 2]:g}"
     )
@@ -206,3 +217,31 @@ def require_found(path, found, external, locate, field, what):
     fail_at(
         path, ~found, locate, field, lambda i: f"{what} {show(external[i])} is not in the split"
     )
+
+
+def text_start(path, head):
+    """Bytes to skip before the text: 3 for a UTF-8 byte-order mark, else 0.
+
+    UTF-16 and UTF-32 files are named as such (the references read UTF-8 only)."""
+    if head.startswith(b"\xef\xbb\xbf"):
+        return 3
+    boms = (
+        (b"\xff\xfe\x00\x00", "UTF-32"),
+        (b"\x00\x00\xfe\xff", "UTF-32"),
+        (b"\xff\xfe", "UTF-16"),
+        (b"\xfe\xff", "UTF-16"),
+    )
+    for bom, name in boms:
+        if head.startswith(bom):
+            raise InputError(
+                path,
+                f"the file is {name} text (it starts with a {name} byte-order mark); "
+                "save it as UTF-8",
+            )
+    if len(head) >= 2 and b"\x00" in head[:4]:
+        raise InputError(
+            path,
+            "the file holds NUL bytes at its start: it looks like UTF-16 text without a "
+            "byte-order mark, or binary; save it as UTF-8 text",
+        )
+    return 0

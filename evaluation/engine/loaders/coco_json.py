@@ -13,6 +13,7 @@ import msgspec
 import numpy as np
 
 from ..errors import InputError
+from .checks import text_start
 
 CHUNK_BYTES = 4 << 20
 #: No detection record is this long: past it, reading stops with an error instead of
@@ -128,34 +129,6 @@ def int_column(path, values, locate, field):
         raise
 
 
-def text_start(path, head):
-    """Bytes to skip before the JSON text: 3 for a UTF-8 byte-order mark, else 0.
-
-    UTF-16 and UTF-32 files are named as such (the references read UTF-8 only)."""
-    if head.startswith(b"\xef\xbb\xbf"):
-        return 3
-    boms = (
-        (b"\xff\xfe\x00\x00", "UTF-32"),
-        (b"\x00\x00\xfe\xff", "UTF-32"),
-        (b"\xff\xfe", "UTF-16"),
-        (b"\xfe\xff", "UTF-16"),
-    )
-    for bom, name in boms:
-        if head.startswith(bom):
-            raise InputError(
-                path,
-                f"the file is {name} text (it starts with a {name} byte-order mark); "
-                "save it as UTF-8",
-            )
-    if len(head) >= 2 and b"\x00" in head[:4]:
-        raise InputError(
-            path,
-            "the file holds NUL bytes at its start: it looks like UTF-16 text without a "
-            "byte-order mark, or binary; save it as UTF-8 JSON",
-        )
-    return 0
-
-
 def read_truth(path):
     """Decode a COCO-style ground-truth file into plain columns.
 
@@ -175,6 +148,9 @@ def _truth_columns(path, data):
         raise InputError(path, "the file is empty")
     try:
         with memoryview(data) as view:
+            # Syntax first, building nothing (msgspec.Raw only scans): a malformed or
+            # truncated file is rejected without decoding its records into objects.
+            msgspec.json.decode(view[skip:], type=msgspec.Raw)
             dataset = msgspec.json.decode(view[skip:], type=_Dataset)
     except msgspec.ValidationError as e:
         if str(e).startswith("Expected `object`, got `array`"):
@@ -286,8 +262,9 @@ def _decode_slice(piece):
     return msgspec.json.decode(piece, type=list[_Detection])
 
 
-def _stream(path, f, skip):
-    """Columns of the records of a top-level JSON array, read a few MB at a time.
+def _stream(path, f, skip, build=True):
+    """Columns of the records of a top-level JSON array, read a few MB at a time
+    (with ``build=False`` only the record counts: a validation pass).
 
     Memory stays bounded by the slice size whatever the file size, also when the
     file turns out to be malformed or truncated: nothing is ever read whole. A slice
@@ -345,7 +322,7 @@ def _stream(path, f, skip):
                 buf += more
                 continue
             raise _piece_error(path, e, buf, where, 1) from None
-        yield _columns(records, path, base)
+        yield _columns(records, path, base) if build else len(records)
         if eof:
             return
         base += len(records)
@@ -375,10 +352,22 @@ def _check_prefix(path, buf, where, base):
         )
 
 
+def _ends_like_an_array(f):
+    size = f.seek(0, 2)
+    f.seek(max(size - 4096, 0))
+    return f.read().rstrip().endswith(b"]")
+
+
 def read_detections(path):
     """Decode a COCO-style results file: image ids, category ids, xywh boxes, scores."""
     with open(path, "rb") as f:
         skip = text_start(path, f.read(4))
+        if not _ends_like_an_array(f):
+            # Malformed or truncated: find the first error without keeping any columns,
+            # so rejecting a huge broken file needs no memory in proportion to it.
+            f.seek(skip)
+            for _ in _stream(path, f, skip, build=False):
+                pass
         f.seek(skip)
         parts = list(_stream(path, f, skip))
     if not parts:

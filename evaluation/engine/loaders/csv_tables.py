@@ -15,6 +15,7 @@ import csv
 import numpy as np
 
 from ..errors import InputError
+from .checks import text_start
 
 BLOCK_ROWS = 100_000
 DETECTION_COLUMNS = ("image_id", "label", "x_min", "y_min", "x_max", "y_max", "score")
@@ -47,8 +48,12 @@ def _flags(path, values, lines, field):
 
 
 def read_blocks(path, required, optional=()):
-    """Yield ``(columns, line_numbers)`` blocks; columns map name -> list of strings."""
+    """Yield ``(columns, line_numbers)`` blocks; columns map name -> list of strings.
+
+    UTF-8, with or without a byte-order mark; UTF-16/32 files are named as such."""
     try:
+        with open(path, "rb") as raw:
+            text_start(path, raw.read(4))
         handle = open(path, newline="", encoding="utf-8-sig")
     except OSError as e:
         raise InputError(path, f"cannot open: {e.strerror}") from None
@@ -170,5 +175,5 @@ def read_images(path):
 
 def sniff_is_json(path):
     with open(path, "rb") as f:
-        head = f.read(4096).lstrip()
-    return head[:1] in (b"[", b"{")
+        head = f.read(4096)
+    return head.removeprefix(b"\xef\xbb\xbf").lstrip()[:1] in (b"[", b"{")
