@@ -7,4 +7,5 @@ urlpatterns = [
     path("", include("frontend.urls")),
 ]
 
-handler404 = "releases.api.errors.not_found"
+handler404 = "frontend.errors.not_found"  # the API's JSON body under /api/
+handler403 = "frontend.errors.permission_denied"

@@ -23,6 +23,7 @@ urlpatterns = [
     path("versions/<int:version_id>/sign-off/", views.sign_off, name="sign-off"),
     path("versions/<int:version_id>/evidence/", views.evidence, name="evidence"),
     path("versions/<int:version_id>/evidence.json", views.evidence, name="evidence-json"),
+    path("audit/", views.audit_trail, name="audit"),
     path("account/tokens/", views.api_tokens, name="tokens"),
     path("splits/<int:split_id>/", views.split, name="split"),
     path("evaluations/<int:evaluation_id>.json", views.evaluation_status, name="evaluation-status"),

@@ -1,5 +1,7 @@
 """One number format everywhere: scores on 0-1 with three decimals, deltas signed."""
 
+import json
+
 from django import template
 
 from releases.templatetags.report import delta, score
@@ -23,3 +25,8 @@ def subtract(value, other):
 def percent(value):
     """A confidence level as people write it: 0.95 -> "95 %"."""
     return "" if value is None else f"{100 * value:g} %"
+
+
+@register.filter
+def pretty_json(value):
+    return json.dumps(value, indent=2, sort_keys=True, ensure_ascii=False, default=str)

@@ -18,6 +18,12 @@ from .access import (  # noqa: F401
     visible_evaluations,
     visible_teams,
 )
+from .audit import (  # noqa: F401
+    audit_trail,
+    detector_choices,
+    spec_history,
+    subject_links,
+)
 from .compare import (  # noqa: F401
     _delta,
     _stored_intervals,

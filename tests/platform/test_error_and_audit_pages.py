@@ -1,0 +1,151 @@
+"""403 and 404 pages keep the navigation and say why; the audit trail page lists the
+events a reader may see, filtered, with the chain's verification status."""
+
+import json
+
+import pytest
+from django.db import connection
+from django.utils.html import escape
+
+from releases import criteria, services
+from releases import triggers as audit_triggers
+from releases.models import AuditEvent
+
+from .conftest import detections_for, upload
+
+pytestmark = pytest.mark.django_db
+
+NAV = ('href="/"', 'href="/splits/"', 'href="/audit/"')
+
+
+def _has_nav(html):
+    return all(link in html for link in NAV) and "Sign out" in html
+
+
+def test_403_names_the_role_that_may(client, detector, users):
+    client.force_login(users["reviewer"])
+    response = client.get(f"/detectors/{detector.pk}/upload/")
+    html = response.content.decode()
+    assert response.status_code == 403 and _has_nav(html)
+    assert "only engineers and leads of Shuttle Perception can" in html
+    client.force_login(users["engineer"])
+    response = client.post(f"/detectors/{detector.pk}/criteria/", {"rules": "[]"})
+    assert response.status_code == 403 and "leads only" in response.content.decode()
+    assert _has_nav(response.content.decode())
+
+
+def test_404_keeps_the_navigation_and_does_not_leak(client, detector, users):
+    client.force_login(users["rival"])
+    response = client.get(f"/detectors/{detector.pk}/")
+    html = response.content.decode()
+    assert response.status_code == 404 and _has_nav(html)
+    assert "no such detector" in html and "a team you are not a member of" in html
+    assert "Forward camera" not in html
+    missing = client.get("/nowhere/at/all/")
+    assert missing.status_code == 404 and "no such page" in missing.content.decode()
+    assert _has_nav(missing.content.decode())
+    api = client.get("/api/v1/nowhere/")  # the API keeps its JSON body
+    assert api.status_code == 404 and api.json()["code"] == "not_found"
+
+
+@pytest.fixture
+def trail(detector, version, split, split_truth, users, run_tasks, rival_detector):
+    run_tasks(
+        services.submit_predictions,
+        version,
+        split,
+        upload("p.json", detections_for(split_truth)),
+        users["engineer"],
+    )
+    other = services.create_version(detector, "1.5.0", users["engineer"])
+    run_tasks(
+        services.submit_predictions,
+        other,
+        split,
+        upload("q.json", detections_for(split_truth, seed=9)),
+        users["engineer"],
+    )
+    criteria.set_criteria(detector, users["lead"], [{"kind": "min_value", "threshold": 0.1}])
+    criteria.set_criteria(
+        detector,
+        users["lead"],
+        [{"kind": "min_value", "threshold": 0.1}, {"kind": "max_drop", "tolerance": 2}],
+    )
+    rival_version = services.create_version(rival_detector, "7.0", users["rival"])
+    run_tasks(
+        services.submit_predictions,
+        rival_version,
+        split,
+        upload("r.json", detections_for(split_truth, seed=11)),
+        users["rival"],
+    )
+    return version, other
+
+
+def _rows(response):
+    return [entry["event"] for entry in response.context["trail"]["events"]]
+
+
+def test_audit_page_filters_and_links(client, detector, trail, users):
+    version, other = trail
+    client.force_login(users["reviewer"])
+    everything = client.get("/audit/")
+    html = everything.content.decode()
+    assert everything.status_code == 200 and "verified" in html
+    assert _rows(everything) == list(AuditEvent.objects.order_by("-id"))  # reviewers read all
+    assert f'href="/versions/{version.pk}/"' in html and 'href="/criteria/' not in html
+    assert f'href="/detectors/{detector.pk}/criteria/"' in html  # a criteria change links there
+
+    only = client.get(f"/audit/?version={version.pk}")
+    subjects = {e.subject for e in _rows(only)}
+    sets = {f"prediction-set:{ps.pk}" for ps in version.prediction_sets.all()}
+    assert sets <= subjects and f"prediction-set:{other.prediction_sets.get().pk}" not in subjects
+    assert {e.kind for e in _rows(only)} == {"predictions uploaded", "evaluation finished"}
+
+    changes = client.get(f"/audit/?detector={detector.pk}&kind=criteria+changed&actor=lead")
+    assert [e.payload["number"] for e in _rows(changes)] == [2, 1]
+    assert client.get("/audit/?actor=nobody").context["trail"]["events"] == []
+    assert _rows(client.get("/audit/?until=2000-01-01")) == []
+    assert len(_rows(client.get("/audit/?since=2000-01-01"))) == AuditEvent.objects.count()
+
+    bad = client.get("/audit/?since=yesterday&kind=deleted")
+    text = bad.content.decode()
+    assert bad.status_code == 400 and "since: not a date (YYYY-MM-DD)" in text
+    assert "kind: must be one of" in text
+
+
+def test_members_see_only_their_teams_events(client, detector, trail, users):
+    client.force_login(users["rival"])
+    response = client.get("/audit/")
+    subjects = {e.subject for e in _rows(response)}
+    version, other = trail
+    assert f"version:{version.pk}" not in subjects
+    assert not any(
+        s == f"prediction-set:{ps.pk}" for ps in version.prediction_sets.all() for s in subjects
+    )
+    assert any(e.actor == "rival" for e in _rows(response))
+    # Another team's detector as a filter is refused like an unknown one.
+    refused = client.get(f"/audit/?detector={detector.pk}")
+    assert refused.status_code == 400 and "detector: no such detector" in refused.content.decode()
+
+
+def test_audit_page_shows_a_broken_chain(client, trail, users):
+    """Someone with the database owner's rights switches the trigger off and edits."""
+    first = AuditEvent.objects.order_by("id").first()
+    audit_triggers.remove(connection)
+    with connection.cursor() as cursor:
+        cursor.execute("UPDATE releases_auditevent SET actor = 'mallory' WHERE id = %s", [first.pk])
+    audit_triggers.install(connection)
+    client.force_login(users["reviewer"])
+    html = client.get("/audit/").content.decode()
+    assert "broken" in html and f"Event #{first.pk} no longer matches" in html
+
+
+def test_criteria_history_shows_each_version_and_its_diff(client, detector, trail, users):
+    client.force_login(users["engineer"])
+    html = client.get(f"/detectors/{detector.pk}/criteria/").content.decode()
+    assert 'id="criteria-v2"' in html and 'id="criteria-v1"' in html
+    added = escape(json.dumps({"kind": "max_drop"})[1:-1])  # "kind": "max_drop"
+    assert f'<span class="diff-added">+    {added},</span>' in html
+    assert 'class="diff-removed"' not in html  # v2 only added a rule
+    assert "The first version." in html
