@@ -14,3 +14,20 @@ def score(value):
 @register.filter
 def delta(value):
     return ABSENT if value is None else f"{value:+.3f}"
+
+
+@register.filter
+def when(value):
+    """An ISO 8601 time (as the evidence JSON keeps it) as people read it, in UTC:
+    "2026-11-02 14:05 UTC"."""
+    import datetime
+
+    if not value:
+        return ABSENT
+    try:
+        moment = datetime.datetime.fromisoformat(str(value))
+    except ValueError:
+        return value
+    if moment.tzinfo is not None:
+        moment = moment.astimezone(datetime.UTC)
+    return moment.strftime("%Y-%m-%d %H:%M UTC")

@@ -62,5 +62,12 @@ def page(browser, live_server, users, flushable):
 
 
 def shot(page, name):
+    """A full-page screenshot; a page taller than Chromium captures gets its first 6000 px."""
     ARTIFACTS.mkdir(exist_ok=True)
-    page.screenshot(path=str(ARTIFACTS / f"{name}.png"), full_page=True)
+    height = page.evaluate("document.documentElement.scrollHeight")
+    width = page.viewport_size["width"]
+    page.screenshot(
+        path=str(ARTIFACTS / f"{name}.png"),
+        full_page=height <= 6000,
+        clip=None if height <= 6000 else {"x": 0, "y": 0, "width": width, "height": 6000},
+    )

@@ -144,6 +144,7 @@ def test_audit_page_shows_a_broken_chain(client, trail, users):
 def test_criteria_history_shows_each_version_and_its_diff(client, detector, trail, users):
     client.force_login(users["engineer"])
     html = client.get(f"/detectors/{detector.pk}/criteria/").content.decode()
+    assert html.count('id="history"') == 1 and html.count("Save as a new version") == 0
     assert 'id="criteria-v2"' in html and 'id="criteria-v1"' in html
     added = escape(json.dumps({"kind": "max_drop"})[1:-1])  # "kind": "max_drop"
     assert f'<span class="diff-added">+    {added},</span>' in html
