@@ -13,7 +13,13 @@ class TokenAuthentication(authentication.BaseAuthentication):
 
     def authenticate(self, request):
         header = authentication.get_authorization_header(request).decode("latin-1").split()
-        if not header or header[0] != self.keyword:
+        if header and header[0].lower() == "token":
+            # A usual spelling in other token schemes: say which one works.
+            raise exceptions.AuthenticationFailed(
+                f"Authorization header: write 'Bearer <token>', not '{header[0]} <token>'"
+            )
+        # The scheme name is case-insensitive (RFC 7235, section 2.1).
+        if not header or header[0].lower() != self.keyword.lower():
             return None
         if len(header) != 2:
             raise exceptions.AuthenticationFailed("Authorization header: expected 'Bearer <token>'")
