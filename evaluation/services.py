@@ -376,7 +376,7 @@ def run_evaluation(evaluation_id, claim=None):
         with transaction.atomic():
             _fail(evaluation, str(e), e.as_dict())
         return evaluation
-    result["counts"] = engine.counts(truth, predictions, records)
+    engine.annotate(result, truth, predictions, records, protocol)
     _store(evaluation, result, records, len(predictions))
     return evaluation
 

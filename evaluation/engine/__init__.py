@@ -16,6 +16,7 @@ from .evaluate import counts, evaluate
 from .loaders import BOX_POLICIES, load_predictions, load_truth
 from .matching import match
 from .protocols import PRESETS, Protocol, get_protocol, protocol_from_dict
+from .provenance import annotate, differences, protocol_record
 from .records import MatchRecords
 from .scoring import COCO_SUMMARY_KEYS, headline, score_records
 from .version import ENGINE_VERSION
@@ -30,7 +31,9 @@ __all__ = [
     "MatchRecords",
     "Predictions",
     "Protocol",
+    "annotate",
     "counts",
+    "differences",
     "evaluate",
     "get_protocol",
     "headline",
@@ -38,5 +41,6 @@ __all__ = [
     "load_truth",
     "match",
     "protocol_from_dict",
+    "protocol_record",
     "score_records",
 ]

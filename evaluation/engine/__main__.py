@@ -1,4 +1,5 @@
-"""Command line: ``python -m evaluation.engine score --truth GT --predictions PRED``.
+"""Command line: ``python -m evaluation.engine score --truth GT --predictions PRED``,
+``python -m evaluation.engine explain A.json B.json``.
 
 Exit status: 0 on success, 2 on bad input (the message names file, record, field).
 """
@@ -8,6 +9,7 @@ import json
 import math
 import sys
 
+from . import provenance
 from .errors import InputError
 from .evaluate import evaluate
 from .loaders import BOX_POLICIES, load_predictions, load_truth
@@ -74,11 +76,23 @@ def build_parser():
     score.add_argument("--unknown-classes", choices=("reject", "drop"), default="reject")
     score.add_argument("--cache", metavar="DIR", help="keep parsed input as .npz here")
     score.add_argument("--records", metavar="FILE.npz", help="also write the match records")
+    explain = commands.add_parser(
+        "explain", help="which protocol settings differ between two JSON results, in words"
+    )
+    explain.add_argument("a", metavar="A.json")
+    explain.add_argument("b", metavar="B.json")
     return parser
 
 
 def main(argv=None):
     args = build_parser().parse_args(argv)
+    if args.command == "explain":
+        try:
+            print(provenance.explain(args.a, args.b))
+        except InputError as e:
+            print(f"error: {e}", file=sys.stderr)
+            return EXIT_BAD_INPUT
+        return 0
     try:
         protocol = _protocol(args.protocol)
         truth = load_truth(args.truth, images=args.images, cache_dir=args.cache, boxes=args.boxes)

@@ -2,6 +2,7 @@
 
 from .matching import match
 from .protocols import get_protocol
+from .provenance import annotate, counts
 from .scoring import score_records
 
 
@@ -26,23 +27,8 @@ def evaluate(
     result = score_records(
         records, protocol, weights=weights, tag_masks=tag_masks, score_threshold=score_threshold
     )
-    result["counts"] = counts(truth, predictions, records)
+    annotate(result, truth, predictions, records, protocol)  # counts, protocol record
     return (result, records) if return_records else result
 
 
-def counts(truth, predictions, records):
-    """What was scored: images, boxes, predictions read, scored, clipped, dropped, and
-    what the box policy found (boxes out of frame, wholly outside, zero-area)."""
-    return {
-        "images": truth.n_images,
-        "truth_boxes": truth.n_boxes,
-        "predictions": len(predictions),
-        "scored_predictions": records.n_detections,
-        "clipped_predictions": predictions.clipped,
-        "dropped_predictions": predictions.dropped,
-        "boxes": {
-            "policy": predictions.box_policy,
-            "truth": dict(truth.box_counts),
-            "predictions": dict(predictions.box_counts),
-        },
-    }
+__all__ = ["annotate", "counts", "evaluate"]

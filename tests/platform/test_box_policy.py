@@ -47,6 +47,11 @@ def test_each_policy_is_its_own_evaluation_scored_under_it(split, split_truth, r
 
     keep, clip = (Scorecard.objects.get(evaluation=by_policy[p]) for p in ("keep", "clip"))
     assert keep.result["counts"]["boxes"]["policy"] == "keep"
+    # Every stored number says under which exact protocol it was computed.
+    for card, policy in ((keep, "keep"), (clip, "clip")):
+        assert card.result["protocol_record"]["box_policy"] == policy
+        assert card.result["protocol_record"]["name"] == "coco"
+        assert card.result["truth_fingerprint"] == split.sha256
     assert clip.result["counts"]["boxes"]["predictions"]["clipped"] > 0
     assert keep.summary["AP"] != clip.summary["AP"]  # clipping changed IoU
 

@@ -171,7 +171,10 @@ def _read_truth(path, images, fmt, classes, policy):
         ignore=cols["ignore"],
         source=str(path),
         box_policy=policy,
-        box_counts=checks.truth_box_counts(boxes, width, height),
+        box_counts={
+            **checks.truth_box_counts(boxes, width, height),
+            "area_from_file": int(given.sum()),
+        },
     )
 
 

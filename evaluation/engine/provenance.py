@@ -1,0 +1,231 @@
+"""The protocol record: under which exact rules a number was computed, and what differs.
+
+``annotate`` is the one place that finishes a result: counts, the full protocol record,
+the engine version and the ground-truth fingerprint. The CLI (``evaluate``) and the
+platform (``evaluation.services.run_evaluation``) both call it, so every CLI JSON and
+every stored result carries the same record. ``differences`` compares two results and
+says, in words, which settings differ and what each does to the numbers
+(``python -m evaluation.engine explain A.json B.json``).
+"""
+
+import numpy as np
+
+from .errors import InputError
+from .protocols import BEST_OVERLAP, get_protocol
+from .version import ENGINE_VERSION
+
+_MATCHING = {
+    "greedy": "greedy: each detection, by score, takes the still-unmatched box of highest "
+    "IoU at or above the threshold; regular boxes before ignored ones; crowd regions "
+    "absorb any number (pycocotools COCOeval.evaluateImg)",
+    BEST_OVERLAP: "best overlap: each detection looks only at the one box of highest "
+    "overlap; taken -> duplicate false positive, difficult -> ignored "
+    "(PASCAL VOC devkit VOCevaldet.m)",
+}
+_TIES = {
+    "image": "ties in score break by image (ascending id), then file order "
+    "(pycocotools accumulate)",
+    "file": "ties in score keep file order (the VOC devkit's stable sort of the whole file)",
+}
+_BOXES = {
+    "keep": "boxes scored exactly as given, also outside the frame (as the references)",
+    "clip": "predictions clipped to the image frame before matching",
+    "reject": "files with boxes leaving the frame refused",
+}
+
+
+def _recall_sampling(protocol):
+    points = protocol.recall_points
+    if points is None:
+        return {"kind": "all points", "count": None, "points": None}
+    return {"kind": f"{len(points)} points", "count": len(points), "points": list(points)}
+
+
+def protocol_record(protocol, truth, predictions, records, result):
+    """Every setting that decides the numbers of ``result``, as plain JSON values.
+
+    Matching rule, IoU slots and the per-class values actually applied, recall
+    sampling and interpolation, detection cap and its kind, tie order, pixel offset,
+    box policy, area source, size buckets, precision epsilon, miss-rate and
+    operating-point rules, and which classes were averaged and which were absent, why.
+    """
+    protocol = get_protocol(protocol)
+    table = records.thresholds
+    n_boxes = np.bincount(truth.box_class, minlength=len(truth.classes))
+    n_pos = records.n_positives(0)
+    absent = {}
+    for k, name in enumerate(truth.classes):
+        if n_pos[k] == 0:
+            absent[name] = (
+                "no ground-truth box"
+                if n_boxes[k] == 0
+                else f"all {int(n_boxes[k])} ground-truth boxes are ignored "
+                "(crowd, difficult or ignore flags)"
+            )
+    area_given = truth.box_counts.get("area_from_file")
+    return {
+        "name": protocol.name,
+        "version": protocol.version,
+        "matching": protocol.matching,
+        "iou_thresholds": [float(t) for t in protocol.iou_thresholds],
+        "class_iou_thresholds": {c: float(table[0, k]) for k, c in enumerate(truth.classes)},
+        "recall_sampling": _recall_sampling(protocol),
+        "interpolation": "area under the precision envelope (all points)"
+        if protocol.recall_points is None
+        else "envelope precision at the first point with recall >= r, 0 if none",
+        "precision_epsilon": protocol.precision_epsilon,
+        "detection_cap": {
+            "max_detections": list(protocol.max_detections),
+            "kind": "per image and class, highest scores first"
+            if protocol.max_detections_limit is not None
+            else "none",
+        },
+        "tie_order": protocol.tie_order,
+        "pixel_offset": protocol.pixel_offset,
+        "box_policy": predictions.box_policy,
+        "area_source": {
+            "truth": "the annotation's area when given, else w*h",
+            "truth_areas_from_file": area_given,
+            "predictions": "w*h",
+        },
+        "size_ranges": [list(r) for r in protocol.area_ranges],
+        "miss_rate": "every detection in accumulation order, last point at or below each "
+        "of 9 FPPI points 10^-2..10^0, miss rate 1 if none, clamp 1e-10 (Dollar et al.)",
+        "operating_point": "cuts between distinct scores; best F1 on raw precision",
+        "averaged_classes": [c for c in truth.classes if c not in absent],
+        "absent_classes": absent,
+    }
+
+
+def counts(truth, predictions, records):
+    """What was scored: images, boxes, predictions read, scored, clipped, dropped, and
+    what the box policy found (boxes out of frame, wholly outside, zero-area)."""
+    return {
+        "images": truth.n_images,
+        "truth_boxes": truth.n_boxes,
+        "predictions": len(predictions),
+        "scored_predictions": records.n_detections,
+        "clipped_predictions": predictions.clipped,
+        "dropped_predictions": predictions.dropped,
+        "boxes": {
+            "policy": predictions.box_policy,
+            "truth": dict(truth.box_counts),
+            "predictions": dict(predictions.box_counts),
+        },
+    }
+
+
+def annotate(result, truth, predictions, records, protocol):
+    """Finish a result: counts, the protocol record, engine version, truth fingerprint."""
+    result["counts"] = counts(truth, predictions, records)
+    result["protocol_record"] = protocol_record(protocol, truth, predictions, records, result)
+    result["engine_version"] = ENGINE_VERSION
+    result["truth_fingerprint"] = truth.content_hash()
+    return result
+
+
+#: What a difference in each setting does to the numbers, in words.
+EFFECTS = {
+    "name": "a different protocol",
+    "version": "a revised version of the protocol: its rules changed (see its description)",
+    "matching": "how detections claim boxes; best overlap turns a detection whose best box "
+    "is taken into a false positive where greedy matching would let it take the next box, "
+    "so it can give lower AP where objects crowd together",
+    "iou_thresholds": "the IoU thresholds averaged over; stricter thresholds demand tighter "
+    "boxes, and AP over 0.50:0.95 is usually far below AP at 0.50",
+    "class_iou_thresholds": "the IoU a detection needs, per class; a class at 0.7 instead of "
+    "0.5 gets lower AP and recall",
+    "recall_sampling": "where precision is sampled along recall; fewer points sample the "
+    "curve more coarsely, and a point at recall 0 (which any correct top detection fills) "
+    "raises AP",
+    "interpolation": "how the precision curve becomes one number",
+    "precision_epsilon": "a tiny term in precision = TP / (TP + FP + epsilon): differences "
+    "of 1-2 units in the last place",
+    "detection_cap": "detections kept per image and class; a lower cap drops low-scored "
+    "detections and lowers recall",
+    "tie_order": "the order of tied scores across images; it moves AP only when scores tie",
+    "pixel_offset": "the +1 pixel convention makes every box one pixel larger each way, "
+    "raising the IoU of small boxes, so small objects match more easily",
+    "box_policy": "what happens to boxes leaving the frame; clipping changes the IoU of "
+    "overhanging predictions (often raising it), reject refuses such files",
+    "area_source": "which area sorts ground truth into size buckets; it moves the "
+    "small/medium/large numbers",
+    "size_ranges": "the size bucket bounds; they move the small/medium/large numbers",
+    "miss_rate": "how the log-average miss rate is read off the curve",
+    "operating_point": "how operating points are chosen",
+    "averaged_classes": "the mean runs over different classes, so it is not the same average",
+    "absent_classes": "different classes had no (counted) ground truth and were left out",
+}
+
+
+def _load(path):
+    import json
+
+    try:
+        with open(path, encoding="utf-8") as f:
+            result = json.load(f)
+    except OSError as e:
+        raise InputError(path, f"cannot open: {e.strerror}") from None
+    except (json.JSONDecodeError, UnicodeDecodeError) as e:
+        raise InputError(path, f"not a JSON result: {e}") from None
+    if not isinstance(result, dict) or not isinstance(result.get("protocol_record"), dict):
+        raise InputError(
+            path,
+            "no protocol record (results written before the engine recorded one lack it: "
+            "score again with 'score --format json')",
+            field="protocol_record",
+        )
+    return result
+
+
+def differences(a, b):
+    """``[(setting, value in a, value in b, effect)]`` between two results."""
+    out = []
+    if a.get("truth_fingerprint") != b.get("truth_fingerprint"):
+        out.append(
+            (
+                "ground truth",
+                a.get("truth_fingerprint"),
+                b.get("truth_fingerprint"),
+                "different ground truth: the numbers are about different data",
+            )
+        )
+    if a.get("engine_version") != b.get("engine_version"):
+        out.append(
+            (
+                "engine version",
+                a.get("engine_version"),
+                b.get("engine_version"),
+                "computed by different engine versions; any number may differ",
+            )
+        )
+    ra, rb = a["protocol_record"], b["protocol_record"]
+    for key in sorted(
+        set(ra) | set(rb), key=lambda k: list(EFFECTS).index(k) if k in EFFECTS else 99
+    ):
+        if ra.get(key) != rb.get(key):
+            out.append((key, ra.get(key), rb.get(key), EFFECTS.get(key, "a different setting")))
+    return out
+
+
+def _short(value, limit=70):
+    text = repr(value) if not isinstance(value, str) else value
+    return text if len(text) <= limit else text[: limit - 1] + "…"
+
+
+def explain(path_a, path_b):
+    """The text of ``explain``: every differing setting, both values, its effect."""
+    a, b = _load(path_a), _load(path_b)
+    found = differences(a, b)
+    if not found:
+        return "The two results were computed under the same protocol, engine and ground truth."
+    lines = [f"{len(found)} setting(s) differ between {path_a} (A) and {path_b} (B):"]
+    for key, value_a, value_b, effect in found:
+        lines += [
+            "",
+            f"* {key.replace('_', ' ')}",
+            f"    A: {_short(value_a)}",
+            f"    B: {_short(value_b)}",
+            f"    {effect}.",
+        ]
+    return "\n".join(lines)

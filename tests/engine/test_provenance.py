@@ -1,0 +1,135 @@
+"""Every result says under which exact protocol it was computed; ``explain`` says, in
+words, which settings differ between two results (issue: protocol record)."""
+
+import json
+
+import numpy as np
+import pytest
+
+from evaluation.engine import evaluate, load_predictions, load_truth, protocol_from_dict
+from evaluation.engine.__main__ import main
+
+from .synthetic import make_detections, make_split
+
+RECORD_KEYS = {
+    "name",
+    "version",
+    "matching",
+    "iou_thresholds",
+    "class_iou_thresholds",
+    "recall_sampling",
+    "interpolation",
+    "precision_epsilon",
+    "detection_cap",
+    "tie_order",
+    "pixel_offset",
+    "box_policy",
+    "area_source",
+    "size_ranges",
+    "miss_rate",
+    "operating_point",
+    "averaged_classes",
+    "absent_classes",
+}
+
+
+@pytest.fixture
+def inputs(files):
+    rng = np.random.default_rng(21)
+    split = make_split(rng, n_images=12, n_classes=3, crowd_rate=0.0)
+    detections = make_detections(rng, split)
+    split["categories"].append({"id": 7, "name": "tram"})  # no box at all
+    split["categories"].append({"id": 8, "name": "bus"})  # only a crowd box
+    split["annotations"].append(
+        {
+            "id": 10_000,
+            "image_id": split["images"][0]["id"],
+            "category_id": 8,
+            "bbox": [1, 1, 40, 40],
+            "iscrowd": 1,
+        }
+    )
+    return files.write("gt.json", split), files.write("dt.json", detections)
+
+
+def _score(gt, dt, capsys, *extra):
+    assert (
+        main(["score", "--truth", str(gt), "--predictions", str(dt), "--format", "json", *extra])
+        == 0
+    )
+    return json.loads(capsys.readouterr().out)
+
+
+def test_cli_json_carries_the_full_record(inputs, capsys):
+    gt, dt = inputs
+    result = _score(gt, dt, capsys, "--protocol", "voc07", "--boxes", "clip")
+    record = result["protocol_record"]
+    assert set(record) == RECORD_KEYS
+    assert (record["name"], record["matching"], record["tie_order"]) == (
+        "voc07",
+        "best_overlap",
+        "file",
+    )
+    assert record["recall_sampling"]["points"][3] == 0.30000000000000004
+    assert (record["pixel_offset"], record["box_policy"]) == (1.0, "clip")
+    assert record["detection_cap"] == {"max_detections": [None], "kind": "none"}
+    assert record["class_iou_thresholds"] == {
+        c: 0.5 for c in ("class1", "class2", "class3", "tram", "bus")
+    }
+    assert record["absent_classes"] == {
+        "tram": "no ground-truth box",
+        "bus": "all 1 ground-truth boxes are ignored (crowd, difficult or ignore flags)",
+    }
+    assert record["averaged_classes"] == ["class1", "class2", "class3"]
+    assert result["truth_fingerprint"] == load_truth(gt).content_hash()
+    assert result["engine_version"]
+
+
+def test_evaluate_records_per_class_thresholds_actually_applied(inputs):
+    gt, dt = inputs
+    truth = load_truth(gt)
+    custom = protocol_from_dict(
+        {"name": "c", "base": "recall40", "class_iou_thresholds": {"Class2": 0.65}}
+    )
+    result = evaluate(truth, load_predictions(dt, truth), custom)
+    assert result["protocol_record"]["class_iou_thresholds"]["class2"] == 0.65
+    assert result["protocol_record"]["class_iou_thresholds"]["class1"] == 0.5
+
+
+def test_explain_names_each_differing_setting_and_its_effect(inputs, files, capsys):
+    gt, dt = inputs
+    a = files.write("a.json", _score(gt, dt, capsys))
+    b = files.write("b.json", _score(gt, dt, capsys, "--protocol", "voc", "--boxes", "clip"))
+    assert main(["explain", str(a), str(b)]) == 0
+    out = capsys.readouterr().out
+    for setting in (
+        "matching",
+        "iou thresholds",
+        "recall sampling",
+        "tie order",
+        "pixel offset",
+        "box policy",
+        "detection cap",
+    ):
+        assert f"* {setting}\n" in out, setting
+    assert "A: greedy" in out and "B: best_overlap" in out
+    assert "+1 pixel convention" in out and "clipping changes the IoU" in out
+    assert "* ground truth" not in out and "* engine version" not in out  # same data, engine
+
+
+def test_explain_same_protocol_and_other_data(inputs, files, capsys):
+    gt, dt = inputs
+    a = files.write("a.json", _score(gt, dt, capsys))
+    assert main(["explain", str(a), str(a)]) == 0
+    assert "same protocol, engine and ground truth" in capsys.readouterr().out
+    other = json.loads(json.dumps(json.loads(a.read_text())))
+    other["truth_fingerprint"] = "0" * 64
+    b = files.write("b.json", other)
+    assert main(["explain", str(a), str(b)]) == 0
+    assert "different ground truth" in capsys.readouterr().out
+
+
+def test_explain_refuses_a_result_without_record(files, capsys):
+    a = files.write("a.json", {"summary": {}})
+    assert main(["explain", str(a), str(a)]) == 2
+    assert "a.json: field 'protocol_record': no protocol record" in capsys.readouterr().err
