@@ -1,6 +1,55 @@
 from django.contrib import admin
 
-from .models import AuditEvent, Detector, Membership, ModelVersion, PredictionSet, Team
+from .models import (
+    AuditEvent,
+    BenchmarkSuite,
+    Detector,
+    Judgement,
+    Membership,
+    ModelVersion,
+    Outcome,
+    PredictionSet,
+    SignOff,
+    Team,
+)
+
+
+class ReadOnly(admin.ModelAdmin):
+    """Decisions, judgements and suites are written only by their services (sign-off,
+    judging, set_suite), never in the admin: no add, change or delete."""
+
+    def has_add_permission(self, request, obj=None):
+        return False
+
+    def has_change_permission(self, request, obj=None):
+        return False
+
+    def has_delete_permission(self, request, obj=None):
+        return False
+
+
+@admin.register(SignOff)
+class SignOffAdmin(ReadOnly):
+    list_display = ["version", "decision", "override", "verdict", "decided_by", "decided_at"]
+    list_select_related = ["version__detector", "decided_by"]
+
+
+@admin.register(Judgement)
+class JudgementAdmin(ReadOnly):
+    list_display = ["version", "verdict", "criteria", "suite", "baseline", "judged_at"]
+    list_select_related = ["version__detector", "criteria__detector", "suite__detector", "baseline"]
+
+
+@admin.register(Outcome)
+class OutcomeAdmin(ReadOnly):
+    list_display = ["version", "judgement", "rule_index", "split", "class_name", "status"]
+    list_select_related = ["version__detector", "judgement", "split"]
+
+
+@admin.register(BenchmarkSuite)
+class BenchmarkSuiteAdmin(ReadOnly):
+    list_display = ["detector", "number", "protocols", "box_policy", "created_at"]
+    list_select_related = ["detector"]
 
 
 class MembershipInline(admin.TabularInline):
@@ -25,6 +74,8 @@ class TeamAdmin(admin.ModelAdmin):
 class DetectorAdmin(admin.ModelAdmin):
     list_display = ["name", "team", "primary_protocol"]
     list_select_related = ["team"]
+    # The protocols mirror the benchmark suite; change them through the suite.
+    readonly_fields = ["protocols", "primary_protocol"]
 
 
 @admin.register(ModelVersion)

@@ -15,7 +15,6 @@ import numpy as np
 from django.conf import settings
 from django.core.exceptions import PermissionDenied
 from django.db import transaction
-from django.utils import timezone
 
 from evaluation import engine
 from evaluation.models import BenchmarkSplit, ClassScore, Scorecard, SliceScore
@@ -23,14 +22,7 @@ from evaluation.services import UploadError, load_truth_of
 from evaluation.storage import local_path
 
 from . import audit, selectors
-from .models import (
-    AuditEvent,
-    Membership,
-    ModelVersion,
-    Outcome,
-    PredictionSet,
-    ReleaseCriteria,
-)
+from .models import AuditEvent, Membership, Outcome, ReleaseCriteria
 
 METRICS = {"AP": "ap", "AP50": "ap50", "AP75": "ap75", "recall": "recall"}
 KINDS = ("min_value", "max_drop", "no_significant_drop")
@@ -136,6 +128,9 @@ def set_criteria(detector, user, rules):
             f"detector:{detector.pk}",
             {"detector": str(detector), "number": criteria.number, "rules": clean},
         )
+        from .services import rejudge_later
+
+        rejudge_later(detector.pk)
     return criteria
 
 
@@ -143,21 +138,18 @@ def current_criteria(detector):
     return detector.criteria.order_by("-number").first()
 
 
-def _scorecards(version, protocol):
-    """{split: Scorecard} of a version's finished evaluations under ``protocol``."""
-    sets = {
-        (ps.predictions_id, ps.split_id): ps.split
-        for ps in PredictionSet.objects.current().filter(version=version).select_related("split")
-    }
+def _scorecards(sets, protocol):
+    """{split: Scorecard} of these prediction sets' finished evaluations under ``protocol``."""
+    by_input = {(ps.predictions_id, ps.split_id): ps.split for ps in sets}
     cards = Scorecard.objects.filter(
         evaluation__state="done",
         evaluation__protocol=protocol,
-        evaluation__predictions_id__in={k[0] for k in sets},
+        evaluation__predictions_id__in={k[0] for k in by_input},
     ).select_related("evaluation")
     return {
-        sets[(c.evaluation.predictions_id, c.evaluation.split_id)]: c
+        by_input[(c.evaluation.predictions_id, c.evaluation.split_id)]: c
         for c in cards
-        if (c.evaluation.predictions_id, c.evaluation.split_id) in sets
+        if (c.evaluation.predictions_id, c.evaluation.split_id) in by_input
     }
 
 
@@ -210,29 +202,34 @@ def _intervals(candidate_card, baseline_card, tag, confidence):
     return dict(zip(["mean", *records_c.classes], intervals))
 
 
-def judge(version):
-    """Judge ``version`` against its detector's current criteria; replaces earlier outcomes."""
+def outcomes_for(version, inputs):
+    """The outcomes (unsaved) of ``version`` under ``inputs.criteria`` (verdicts.Inputs).
+
+    A rule over split ``*`` covers the suite's required splits (the uploaded ones when
+    the suite requires none); a named split is judged whether uploaded or not. A split
+    without a scored evaluation under the primary protocol gives an explicit *missing*
+    outcome, never a skipped rule.
+    """
+    from .verdicts import current_sets
+
     detector = version.detector
-    criteria = current_criteria(detector)
-    if criteria is None:
-        _mark_judged(version)
-        return []
-    baseline = selectors.baseline_of(detector)
-    if baseline is not None and baseline.pk == version.pk:
-        baseline = None
-    cards = _scorecards(version, detector.primary_protocol)
-    baseline_cards = _scorecards(baseline, detector.primary_protocol) if baseline else {}
+    protocol = inputs.suite.protocols[0] if inputs.suite else detector.primary_protocol
+    cards = _scorecards(inputs.sets, protocol)
+    baseline = inputs.baseline
+    baseline_cards = _scorecards(current_sets(baseline), protocol) if baseline else {}
+    by_name = {f"{s.name}:{s.revision}": s for s in BenchmarkSplit.objects.all()}
+    everywhere = inputs.required or sorted(cards, key=lambda s: (s.name, s.revision))
     outcomes = []
     bootstraps = {}  # one set of replicates per split, tag and confidence serves every class
-    for index, rule in enumerate(criteria.rules):
-        splits = [s for s in cards if rule["split"] in ("*", f"{s.name}:{s.revision}")]
+    for index, rule in enumerate(inputs.criteria.rules):
+        splits = everywhere if rule["split"] == "*" else [by_name[rule["split"]]]
         names = detector.classes if rule["class"] == "*" else [rule["class"]]
-        for split in sorted(splits, key=lambda s: (s.name, s.revision)):
+        for split in splits:
             for name in names:
                 outcomes.append(
                     _judge_one(
                         version,
-                        criteria,
+                        inputs.criteria,
                         index,
                         rule,
                         split,
@@ -243,17 +240,13 @@ def judge(version):
                         bootstraps,
                     )
                 )
-    with transaction.atomic():
-        Outcome.objects.filter(version=version).delete()
-        Outcome.objects.bulk_create(outcomes)
-        _mark_judged(version)
+    failed = {ps.split_id for ps in inputs.sets} & {
+        e.split_id for e in inputs.evaluations if e.state == "failed"
+    }
+    for outcome in outcomes:
+        if outcome.status == Outcome.Status.MISSING and outcome.split_id in failed:
+            outcome.detail = f"no scored predictions on {outcome.split}: the evaluation failed"
     return outcomes
-
-
-def _mark_judged(version):
-    """Pipelines wait for this: a verdict is final once judged after the last evaluation."""
-    version.judged_at = timezone.now()
-    ModelVersion.objects.filter(pk=version.pk).update(judged_at=version.judged_at)
 
 
 def _judge_one(
@@ -274,6 +267,9 @@ def _judge_one(
         baseline=baseline,
     )
     label = f"{rule['metric']} of {name}" + (f" at {tag}" if tag else "") + f" on {split}"
+    if card is None:
+        outcome.status, outcome.detail = Outcome.Status.MISSING, f"no predictions on {split}"
+        return outcome
     if value is None:
         outcome.status, outcome.detail = Outcome.Status.NO_DATA, f"{label}: not measured"
         return outcome

@@ -147,6 +147,8 @@ class AuditEvent(models.Model):
         EVALUATION_FINISHED = "evaluation finished"
         EVALUATION_FAILED = "evaluation failed"
         CRITERIA_CHANGED = "criteria changed"
+        SUITE_CHANGED = "suite changed"
+        JUDGED = "judged"
         SIGNED_OFF = "signed off"
         REJECTED = "rejected"
         OVERRIDE = "override"
@@ -185,6 +187,15 @@ class SignOff(models.Model):
     justification = models.TextField(blank=True)
     failing_rules = models.JSONField(default=list)
     evidence = models.JSONField(help_text="Hashes and headline numbers the decision saw.")
+    judgement = models.ForeignKey(
+        "Judgement",
+        null=True,
+        blank=True,
+        on_delete=models.PROTECT,
+        related_name="+",
+        help_text="The judgement the decision was made on.",
+    )
+    verdict = models.CharField(max_length=12, blank=True, help_text="Its verdict then.")
     decided_by = models.ForeignKey(
         settings.AUTH_USER_MODEL, on_delete=models.PROTECT, related_name="+"
     )
@@ -218,16 +229,105 @@ class ReleaseCriteria(models.Model):
         return f"{self.detector} criteria v{self.number}"
 
 
+class BenchmarkSuite(models.Model):
+    """One version of what a detector's candidates are scored on; a change is a new row.
+
+    ``splits``: ``[{"name": "bay-night", "revision": null | 2}]`` (null follows the
+    newest revision); ``protocols``: preset names, the first is the primary one that
+    the criteria read; ``class_thresholds``: ``{class: score}`` overriding
+    ``score_threshold`` (the deployed confidence cut).
+    """
+
+    class BoxPolicy(models.TextChoices):
+        KEEP = "keep"
+        CLIP = "clip"
+        REJECT = "reject"
+
+    detector = models.ForeignKey(Detector, on_delete=models.PROTECT, related_name="suites")
+    number = models.PositiveIntegerField()
+    splits = models.JSONField()
+    protocols = models.JSONField()
+    box_policy = models.CharField(max_length=8, choices=BoxPolicy.choices, default="keep")
+    score_threshold = models.FloatField(default=0.5)
+    class_thresholds = models.JSONField(default=dict, blank=True)
+    created_by = models.ForeignKey(
+        settings.AUTH_USER_MODEL, null=True, on_delete=models.PROTECT, related_name="+"
+    )
+    created_at = models.DateTimeField(auto_now_add=True)
+
+    class Meta:
+        constraints = [
+            models.UniqueConstraint(fields=["detector", "number"], name="suite_number_unique")
+        ]
+        ordering = ["detector", "-number"]
+
+    def __str__(self):
+        return f"{self.detector} suite v{self.number}"
+
+
+class Judgement(models.Model):
+    """One judging of a candidate: what it was judged against and what came out.
+
+    Insert-only and kept forever; the version's newest judgement is its current one.
+    ``evaluations`` is ``{evaluation id: state}`` of the current prediction sets the
+    judge saw; a judgement is stale once those, the required splits (a new revision of a
+    followed split), the criteria, the suite or the baseline changed
+    (``releases.verdicts``).
+    """
+
+    class Verdict(models.TextChoices):
+        INCOMPLETE = "incomplete"
+        REGRESSION = "regression"
+        PASS = "pass"
+
+    version = models.ForeignKey(ModelVersion, on_delete=models.PROTECT, related_name="judgements")
+    criteria = models.ForeignKey(
+        ReleaseCriteria, null=True, blank=True, on_delete=models.PROTECT, related_name="+"
+    )
+    suite = models.ForeignKey(
+        BenchmarkSuite, null=True, blank=True, on_delete=models.PROTECT, related_name="+"
+    )
+    baseline = models.ForeignKey(
+        ModelVersion, null=True, blank=True, on_delete=models.PROTECT, related_name="+"
+    )
+    evaluations = models.JSONField(help_text="{evaluation id: state} it saw.")
+    required_splits = models.JSONField(
+        default=list, help_text="Ids of the splits the suite required then."
+    )
+    verdict = models.CharField(max_length=12, choices=Verdict.choices)
+    reasons = models.JSONField(default=list)
+    judged_at = models.DateTimeField()
+
+    class Meta:
+        ordering = ["version", "-id"]
+        indexes = [models.Index(fields=["version", "-id"])]
+
+    def __str__(self):
+        return f"{self.version} judged {self.verdict} at {self.judged_at:%Y-%m-%d %H:%M}"
+
+    def save(self, *args, **kwargs):
+        if self.pk is not None:
+            raise ValueError("a judgement is kept as recorded; judge again instead")
+        super().save(*args, **kwargs)
+
+    def delete(self, *args, **kwargs):
+        raise ValueError("a judgement is kept forever")
+
+
 class Outcome(models.Model):
-    """One rule judged for one candidate on one split."""
+    """One rule judged for one candidate on one split, part of one judgement."""
 
     class Status(models.TextChoices):
         PASS = "pass"
         FAIL = "fail"
+        MISSING = "missing"
         NOT_SIGNIFICANT = "not significant"
         NO_DATA = "no data"
 
-    version = models.ForeignKey(ModelVersion, on_delete=models.CASCADE, related_name="outcomes")
+    version = models.ForeignKey(ModelVersion, on_delete=models.PROTECT, related_name="outcomes")
+    judgement = models.ForeignKey(
+        Judgement, null=True, on_delete=models.PROTECT, related_name="outcomes"
+    )
     criteria = models.ForeignKey(ReleaseCriteria, on_delete=models.PROTECT, related_name="outcomes")
     rule_index = models.PositiveSmallIntegerField()
     rule = models.JSONField()
@@ -251,6 +351,14 @@ class Outcome(models.Model):
 
     def __str__(self):
         return f"{self.version} rule {self.rule_index} on {self.split}: {self.status}"
+
+    def save(self, *args, **kwargs):
+        if self.pk is not None:
+            raise ValueError("an outcome is kept as judged")
+        super().save(*args, **kwargs)
+
+    def delete(self, *args, **kwargs):
+        raise ValueError("an outcome is kept forever")
 
 
 class ApiToken(models.Model):

@@ -48,7 +48,10 @@ def set_webhook(detector, user, url, secret):
 
 
 def payload(version):
-    outcomes = Outcome.objects.filter(version=version).select_related("split")
+    from .verdicts import newest_judgement
+
+    judgement = newest_judgement(version)
+    outcomes = Outcome.objects.filter(judgement=judgement).select_related("split")
     counts = {status: 0 for status in Outcome.Status.values}
     for o in outcomes:
         counts[o.status] += 1
@@ -56,6 +59,8 @@ def payload(version):
         "event": "version.judged",
         "detector": version.detector.name,
         "version": version.label,
+        "verdict": judgement.verdict if judgement else None,
+        "reasons": judgement.reasons if judgement else [],
         "regression": counts["fail"] > 0,
         "counts": counts,
         "failures": [
@@ -81,9 +86,11 @@ def email_leads(version, body):
     ]
     if not leads:
         return 0
-    verdict = "REGRESSION" if body["regression"] else "no regression"
+    verdict = {"pass": "pass, no regression", "regression": "REGRESSION"}.get(
+        body.get("verdict"), (body.get("verdict") or "not judged").upper()
+    )
     lines = [f"{version} was judged against its release criteria: {verdict}."]
-    lines += [f"- rule {f['rule']}: {f['detail']}" for f in body["failures"]]
+    lines += [f"- {reason}" for reason in body.get("reasons", [])]
     return send_mail(
         f"[Benchbook] {version}: {verdict}", "\n".join(lines), settings.DEFAULT_FROM_EMAIL, leads
     )

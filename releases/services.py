@@ -36,20 +36,26 @@ def create_team(name, members=()):
     return team
 
 
-def create_detector(team, name, classes, *, protocols=("coco",), description=""):
+def create_detector(team, name, classes, *, protocols=("coco",), description="", splits=()):
+    """A detector and its first benchmark suite (``splits``: names, newest revision)."""
+    from . import suites
+
     if not classes or len(set(classes)) != len(classes):
         raise UploadError("a detector needs a list of distinct class names")
     for protocol in protocols:
         evaluation_services.engine.get_protocol(protocol)
-    return Detector.objects.create(
-        team=team,
-        name=name,
-        slug=slugify(name),
-        classes=list(classes),
-        primary_protocol=protocols[0],
-        protocols=list(protocols),
-        description=description,
-    )
+    with transaction.atomic():
+        detector = Detector.objects.create(
+            team=team,
+            name=name,
+            slug=slugify(name),
+            classes=list(classes),
+            primary_protocol=protocols[0],
+            protocols=list(protocols),
+            description=description,
+        )
+        suites.first_suite(detector, protocols=protocols, splits=splits)
+    return detector
 
 
 def create_version(
@@ -142,7 +148,7 @@ def _record_set(version, split, received, user):
             "failed": failed,
         }
     audit.record_event(kind, user, f"prediction-set:{prediction_set.pk}", payload)
-    evaluation_services.request_evaluations(split, prediction_file, version.detector.protocols)
+    _request(version.detector, split, prediction_file)
     # Bytes scored before (another version's identical file) trigger no new
     # evaluation, so nothing else would judge this version.
     judge_if_complete(version.pk)
@@ -180,52 +186,70 @@ def _replace_or_refuse(version, split, current):
     return [{"protocol": e.protocol, "error": e.error} for e in evaluations if e.state == "failed"]
 
 
+def _request(detector, split, prediction_file):
+    """Evaluations of a prediction file under the detector's suite."""
+    from . import suites
+
+    suite = suites.current_suite(detector)
+    return evaluation_services.request_evaluations(
+        split, prediction_file, suite.protocols, box_policy=suite.box_policy
+    )
+
+
 def judge_if_complete(version_id):
-    """Queue judging (on commit) once none of the version's evaluations is pending."""
+    """Queue judging (on commit) once none of the version's evaluations is pending (the
+    judge re-reads everything, so queuing it once too often is harmless)."""
     from evaluation.models import Evaluation
 
     from .tasks import judge
 
     sets = PredictionSet.objects.current().filter(version_id=version_id)
-    pending = (
-        Evaluation.objects.filter(
-            predictions_id__in=sets.values("predictions_id"), split_id__in=sets.values("split_id")
-        )
-        .exclude(state__in=["done", "failed"])
-        .exists()
-    )
+    pending = Evaluation.objects.filter(
+        predictions_id__in=sets.values("predictions_id"),
+        split_id__in=sets.values("split_id"),
+        state__in=["queued", "running"],
+    ).exists()
     if not pending:
         transaction.on_commit(lambda: _send(judge, version_id))
 
 
+def rejudge_later(detector_id):
+    """Judge every undecided version of a detector again once the transaction commits
+    (criteria, suite or baseline changed)."""
+    from .tasks import rejudge
+
+    transaction.on_commit(lambda: _send(rejudge, detector_id))
+
+
+def undecided(detector_id):
+    return ModelVersion.objects.filter(detector_id=detector_id, sign_off=None).order_by("pk")
+
+
 def requeue_unjudged():
-    """Queue judging again for versions whose evaluations all finished more than the
-    grace period ago but that were not judged since (the broker was down when judging
-    was to be queued, or the judging worker died). Returns the version ids."""
+    """Queue judging again for undecided versions stuck in ``judging`` (or waiting for an
+    evaluation a suite change asked for) since their last judgement or evaluation more
+    than the grace period ago: the broker was down, or the judging worker died. Returns
+    the version ids."""
     import datetime
 
     from django.conf import settings
-    from django.db.models import Exists, F, OuterRef, Q, Subquery
 
-    from evaluation.models import Evaluation
-
+    from . import verdicts
     from .tasks import judge
 
-    same_input = {"predictions_id": OuterRef("predictions_id"), "split_id": OuterRef("split_id")}
     cutoff = timezone.now() - datetime.timedelta(seconds=settings.BENCHBOOK_QUEUED_GRACE_SECONDS)
-    last_finished = Evaluation.objects.filter(**same_input).order_by("-finished_at")
-    sets = PredictionSet.objects.current().annotate(
-        last=Subquery(last_finished.values("finished_at")[:1]),
-        open=Exists(Evaluation.objects.filter(**same_input, state__in=["queued", "running"])),
-    )
-    stale = sets.filter(open=False, last__lt=cutoff).filter(
-        Q(version__judged_at__isnull=True) | Q(version__judged_at__lt=F("last"))
-    )
-    busy = sets.filter(open=True)  # a version with any evaluation still to come waits
-    version_ids = sorted(
-        set(stale.values_list("version_id", flat=True))
-        - set(busy.values_list("version_id", flat=True))
-    )
+    version_ids = []
+    for version in ModelVersion.objects.filter(sign_off=None).select_related("detector"):
+        inputs = verdicts.inputs_of(version)
+        if any(e.state in verdicts.OPEN for e in inputs.evaluations):
+            continue  # judged when scoring ends
+        if not inputs.unrequested and verdicts._matches(verdicts.newest_judgement(version), inputs):
+            continue
+        times = [e.finished_at for e in inputs.evaluations if e.finished_at]
+        times += [version.created_at, version.judged_at or version.created_at]
+        times += [getattr(inputs.criteria, "created_at", None), inputs.suite.created_at]
+        if max(t for t in times if t is not None) < cutoff:
+            version_ids.append(version.pk)
     for version_id in version_ids:
         _send(judge, version_id)
     return version_ids
@@ -242,23 +266,17 @@ class DecisionError(ValueError):
     """A sign-off the rules do not allow; the message says why."""
 
 
-def failing_rules(version):
-    """The outcomes the version fails under its detector's current criteria."""
-    from .models import Outcome
-
-    return [
-        {"rule": o.rule_index + 1, "split": str(o.split), "class": o.class_name, "detail": o.detail}
-        for o in Outcome.objects.filter(version=version, status=Outcome.Status.FAIL).select_related(
-            "split"
-        )
-    ]
-
-
 def sign_off(version, user, decision, comment, *, justification=""):
-    """Record a lead's decision on a candidate; approval makes it the baseline."""
-    from evaluation.models import Evaluation
+    """Record a lead's decision on a candidate; approval makes it the baseline.
 
-    from .models import SignOff
+    THE sign-off: every entry point (page, API, demo) calls it. Decided inside one
+    transaction holding the version's row lock, the same lock ``verdicts.judge`` takes
+    to record a judgement, on the verdict read under that lock: only a final verdict
+    (incomplete, regression, pass) can be decided; approving anything but ``pass`` is
+    an *override* and needs a written justification; rejecting needs a comment.
+    """
+    from . import verdicts
+    from .models import Outcome, SignOff
 
     detector = version.detector
     if selectors.role_in(user, detector.team) != Membership.Role.LEAD:
@@ -269,72 +287,95 @@ def sign_off(version, user, decision, comment, *, justification=""):
         raise DecisionError(f"decision must be one of {', '.join(SignOff.Decision.values)}")
     if not comment.strip():
         raise DecisionError("a sign-off needs a comment")
-    sets = list(version.prediction_sets.current())
-    if not sets:
-        raise DecisionError(f"{version} has no predictions on any split yet")
-    evaluations = list(
-        Evaluation.objects.filter(
-            predictions_id__in=[ps.predictions_id for ps in sets],
-            split_id__in=[ps.split_id for ps in sets],
-        ).select_related("scorecard", "split")
-    )
-    pending = [e for e in evaluations if not e.finished]
-    if pending:
-        raise DecisionError(f"{version} still has {len(pending)} evaluation(s) queued or running")
-    failing = failing_rules(version)
-    override = decision == SignOff.Decision.APPROVED and bool(failing)
-    if override and not justification.strip():
-        raise DecisionError(
-            f"approving {version} despite {len(failing)} failing rule(s) "
-            "is an override and needs a written justification"
-        )
-    evidence = {
-        "evaluations": [
+    approve = decision == SignOff.Decision.APPROVED
+    with transaction.atomic():
+        ModelVersion.objects.select_for_update().get(pk=version.pk)
+        if SignOff.objects.filter(version_id=version.pk).exists():
+            raise DecisionError(f"{version} already has a decision")
+        verdict = verdicts.verdict_of(version)
+        if not verdict.final:
+            raise DecisionError(
+                f"{version} is {verdict.state}: a decision waits for the final verdict"
+                + (" (evaluations queued or running)" if verdict.state == "scoring" else "")
+            )
+        override = approve and verdict.state != "pass"
+        if override and not justification.strip():
+            why = "; ".join(verdict.reasons[:3]) or "see the outcomes"
+            raise DecisionError(
+                f"{version} is {verdict.state} ({why}): "
+                "approving it is an override and needs a written justification"
+            )
+        judgement = verdict.judgement  # None only when nothing was uploaded
+        failing = [
             {
-                "split": str(e.split),
-                "split_sha256": e.split.sha256,
-                "protocol": e.protocol,
-                "state": e.state,
-                "engine_version": e.engine_version,
-                "AP": e.scorecard.summary.get("AP") if e.state == "done" else None,
+                "rule": o.rule_index + 1,
+                "split": str(o.split),
+                "class": o.class_name,
+                "status": o.status,
+                "detail": o.detail,
             }
-            for e in evaluations
-        ],
-        "failing_rules": failing,
-    }
-    kind = (
-        AuditEvent.Kind.OVERRIDE
-        if override
-        else AuditEvent.Kind.SIGNED_OFF
-        if decision == SignOff.Decision.APPROVED
-        else AuditEvent.Kind.REJECTED
-    )
-    try:
-        with transaction.atomic():
-            record = SignOff.objects.create(
-                version=version,
-                decision=decision,
-                comment=comment.strip(),
-                override=override,
-                justification=justification.strip(),
-                failing_rules=failing,
-                evidence=evidence,
-                decided_by=user,
-                decided_at=timezone.now(),
-            )
-            event = audit.record_event(
-                kind,
-                user,
-                f"version:{version.pk}",
+            for o in Outcome.objects.filter(
+                judgement=judgement, judgement__isnull=False, status__in=["fail", "missing"]
+            ).select_related("split")
+        ]
+        evidence = {
+            "verdict": verdict.state,
+            "reasons": verdict.reasons,
+            "no_criteria": verdict.no_criteria,
+            "judgement": getattr(judgement, "pk", None),
+            "criteria": getattr(getattr(judgement, "criteria", None), "number", None),
+            "suite": getattr(getattr(judgement, "suite", None), "number", None),
+            "baseline": getattr(getattr(judgement, "baseline", None), "label", None),
+            "evaluations": [
                 {
-                    "version": str(version),
-                    "decision": decision,
-                    "comment": record.comment,
-                    "override": override,
-                    "justification": record.justification,
-                    "evidence": evidence,
-                },
-            )
-    except IntegrityError:
-        raise DecisionError(f"{version} already has a decision") from None
+                    "split": str(e.split),
+                    "split_sha256": e.split.sha256,
+                    "protocol": e.protocol,
+                    "state": e.state,
+                    "engine_version": e.engine_version,
+                    "AP": e.scorecard.summary.get("AP") if e.state == "done" else None,
+                }
+                for e in verdict.evaluations
+            ],
+            "failing_rules": failing,
+        }
+        kind = (
+            AuditEvent.Kind.OVERRIDE
+            if override
+            else AuditEvent.Kind.SIGNED_OFF
+            if approve
+            else AuditEvent.Kind.REJECTED
+        )
+        try:
+            with transaction.atomic():
+                record = SignOff.objects.create(
+                    version=version,
+                    decision=decision,
+                    comment=comment.strip(),
+                    override=override,
+                    justification=justification.strip() if approve else "",
+                    failing_rules=failing,
+                    evidence=evidence,
+                    judgement=judgement,
+                    verdict=verdict.state,
+                    decided_by=user,
+                    decided_at=timezone.now(),
+                )
+        except IntegrityError:
+            raise DecisionError(f"{version} already has a decision") from None
+        event = audit.record_event(
+            kind,
+            user,
+            f"version:{version.pk}",
+            {
+                "version": str(version),
+                "decision": decision,
+                "comment": record.comment,
+                "override": override,
+                "justification": record.justification,
+                "evidence": evidence,
+            },
+        )
+        if approve:  # a new baseline: the other candidates are judged against it
+            rejudge_later(detector.pk)
     return record, event

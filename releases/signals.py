@@ -5,6 +5,7 @@ from .models import AuditEvent
 
 
 def split_frozen(sender, split, **kwargs):
+    _rejudge_followers(split)
     audit.record_event(
         AuditEvent.Kind.SPLIT_FROZEN,
         split.created_by or "system",
@@ -55,3 +56,17 @@ def judge_when_complete(sender, evaluation, **kwargs):
     )
     for version_id in set(versions):
         judge_if_complete(version_id)
+
+
+def _rejudge_followers(split):
+    """A new revision of a split that suites follow (revision null) changes what their
+    candidates must be scored on: judge them again."""
+    from .models import BenchmarkSuite
+    from .services import rejudge_later
+
+    newest = {}
+    for suite in BenchmarkSuite.objects.order_by("detector_id", "-number"):
+        newest.setdefault(suite.detector_id, suite)
+    for detector_id, suite in newest.items():
+        if any(e["name"] == split.name and e["revision"] is None for e in suite.splits):
+            rejudge_later(detector_id)

@@ -2,16 +2,26 @@
 
 from celery import shared_task
 
-from . import criteria, notify
-from .models import ModelVersion
-
 
 @shared_task(acks_late=True)
 def judge(version_id):
-    """(Re)judge a version against its detector's criteria; outcomes are replaced."""
-    version = ModelVersion.objects.select_related("detector").filter(pk=version_id).first()
-    if version is not None and criteria.judge(version):
-        notify.notify(version)
+    """Judge a version if its judgement is not current (see releases.verdicts)."""
+    from . import verdicts
+
+    judgement = verdicts.judge(version_id)
+    return judgement.pk if judgement else None
+
+
+@shared_task(acks_late=True)
+def rejudge(detector_id):
+    """Judge every undecided version of a detector again (criteria, suite or baseline
+    changed); each one in its own task, so one slow bootstrap does not hold the rest."""
+    from . import services
+
+    version_ids = list(services.undecided(detector_id).values_list("pk", flat=True))
+    for version_id in version_ids:
+        services._send(judge, version_id)
+    return version_ids
 
 
 @shared_task

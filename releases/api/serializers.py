@@ -5,7 +5,16 @@ from rest_framework import serializers
 
 from evaluation.models import BenchmarkSplit, Evaluation
 
-from ..models import AuditEvent, Detector, ModelVersion, Outcome, PredictionSet, ReleaseCriteria
+from ..models import (
+    AuditEvent,
+    BenchmarkSuite,
+    Detector,
+    Judgement,
+    ModelVersion,
+    Outcome,
+    PredictionSet,
+    ReleaseCriteria,
+)
 from ..models import SignOff as SignOffModel
 
 # Outputs ---------------------------------------------------------------------------
@@ -77,7 +86,8 @@ class VersionSerializer(serializers.ModelSerializer):
     detector = serializers.IntegerField(source="detector_id")
     created_by = serializers.CharField(source="created_by.username")
     state = serializers.SerializerMethodField(
-        help_text="baseline, signed off, rejected, blocked (fails a rule) or candidate"
+        help_text="baseline, signed off, rejected, blocked (newest judgement: regression or "
+        "incomplete) or candidate"
     )
     sign_off = serializers.SerializerMethodField()
 
@@ -164,6 +174,7 @@ class PredictionSetSerializer(serializers.ModelSerializer):
 
 class OutcomeSerializer(serializers.ModelSerializer):
     version = serializers.IntegerField(source="version_id")
+    judgement = serializers.IntegerField(source="judgement_id", allow_null=True)
     rule_number = serializers.SerializerMethodField()
     criteria_version = serializers.IntegerField(source="criteria.number")
     split = serializers.IntegerField(source="split_id")
@@ -176,6 +187,7 @@ class OutcomeSerializer(serializers.ModelSerializer):
         fields = [
             "id",
             "version",
+            "judgement",
             "rule_number",
             "criteria_version",
             "rule",
@@ -196,6 +208,33 @@ class OutcomeSerializer(serializers.ModelSerializer):
 
     def get_interval(self, outcome) -> list[float] | None:
         return None if outcome.low is None else [outcome.low, outcome.high]
+
+
+class SuiteSerializer(serializers.ModelSerializer):
+    detector = serializers.IntegerField(source="detector_id")
+    created_by = serializers.CharField(source="created_by.username", allow_null=True)
+    required = serializers.SerializerMethodField(help_text="The splits required now, by id")
+
+    class Meta:
+        model = BenchmarkSuite
+        fields = [
+            "id",
+            "detector",
+            "number",
+            "splits",
+            "protocols",
+            "box_policy",
+            "score_threshold",
+            "class_thresholds",
+            "required",
+            "created_by",
+            "created_at",
+        ]
+
+    def get_required(self, suite) -> list[int]:
+        from ..suites import resolve
+
+        return [split.pk for split in resolve(suite.splits)]
 
 
 class CriteriaSerializer(serializers.ModelSerializer):
@@ -223,21 +262,48 @@ class AuditEventSerializer(serializers.ModelSerializer):
         ]
 
 
+class JudgementSerializer(serializers.ModelSerializer):
+    version = serializers.IntegerField(source="version_id")
+    criteria_version = serializers.IntegerField(source="criteria.number", allow_null=True)
+    suite_version = serializers.IntegerField(source="suite.number", allow_null=True)
+    baseline = serializers.IntegerField(source="baseline_id", allow_null=True)
+    baseline_label = serializers.CharField(source="baseline.label", allow_null=True)
+
+    class Meta:
+        model = Judgement
+        fields = [
+            "id",
+            "version",
+            "verdict",
+            "reasons",
+            "criteria_version",
+            "suite_version",
+            "baseline",
+            "baseline_label",
+            "evaluations",
+            "judged_at",
+        ]
+
+
 class VerdictSerializer(serializers.Serializer):
     version = serializers.IntegerField()
-    verdict = serializers.ChoiceField(
-        [
-            "pending",
-            "no predictions",
-            "evaluation failed",
-            "regression",
-            "no criteria",
-            "no regression",
-        ]
+    state = serializers.ChoiceField(
+        ["scoring", "judging", "incomplete", "regression", "pass"],
+        help_text="scoring → judging → incomplete | regression | pass (final)",
     )
+    final = serializers.BooleanField()
+    no_criteria = serializers.BooleanField(help_text="Judged while the detector had no criteria")
+    decided = serializers.BooleanField(help_text="Signed off: the verdict its decision saw")
+    reasons = serializers.ListField(
+        child=serializers.CharField(), help_text="Missing splits, failed evaluations, failing rules"
+    )
+    missing = serializers.ListField(
+        child=serializers.CharField(), help_text="Required splits without scored predictions"
+    )
+    judgement = JudgementSerializer(allow_null=True)
     evaluations = EvaluationSerializer(many=True)
     outcome_counts = serializers.DictField(child=serializers.IntegerField())
-    failing = OutcomeSerializer(many=True)
+    failing = OutcomeSerializer(many=True, help_text="Failing and missing outcomes")
 
 
 class ErrorItemSerializer(serializers.Serializer):
@@ -296,3 +362,22 @@ class SignOffInput(serializers.Serializer):
 
 class CriteriaInput(serializers.Serializer):
     rules = serializers.ListField(child=serializers.DictField(), allow_empty=False)
+
+
+class SuiteInput(serializers.Serializer):
+    """Shape only; ``suites.validate_suite`` checks the content and names the field."""
+
+    splits = serializers.ListField(
+        child=serializers.JSONField(),
+        allow_empty=False,
+        help_text='[{"name": "bay-night", "revision": null (newest) or a number}], '
+        'or "name" / "name:revision"',
+    )
+    protocols = serializers.ListField(
+        child=serializers.CharField(), required=False, help_text="Presets; the first is primary"
+    )
+    box_policy = serializers.ChoiceField(["keep", "clip", "reject"], required=False)
+    score_threshold = serializers.FloatField(required=False, min_value=0, max_value=1)
+    class_thresholds = serializers.DictField(
+        child=serializers.FloatField(min_value=0, max_value=1), required=False
+    )

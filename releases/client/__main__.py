@@ -20,12 +20,19 @@ from . import BAD_INPUT, FAILURE, OK, REGRESSION, render
 from .http import Api, ClientError
 
 QUEUED_HINT_SECONDS = 60
-EXIT_OF_VERDICT = {
-    "no regression": OK,
-    "no criteria": OK,
-    "regression": REGRESSION,
-    "evaluation failed": BAD_INPUT,
-}
+FINAL = ("incomplete", "regression", "pass")
+
+
+def exit_of(verdict):
+    """0 only for pass; 2 when an evaluation failed on the uploaded file (bad input);
+    3 for any other incomplete verdict (a required split missing) and for a regression."""
+    if verdict["state"] == "pass":
+        return OK
+    if any(e["state"] == "failed" for e in verdict["evaluations"]):
+        return BAD_INPUT
+    if verdict["state"] in ("incomplete", "regression"):
+        return REGRESSION
+    return FAILURE
 
 
 def _connection_options():
@@ -180,12 +187,12 @@ def _wait_and_report(api, version_id, args, out):
     while True:
         verdict = api.get(f"versions/{version_id}/verdict/")
         evaluations = verdict["evaluations"]
-        if verdict["verdict"] != "pending":
+        if verdict["state"] in FINAL:
             break
         done = sum(e["state"] in ("done", "failed") for e in evaluations)
         share = sum(100 if e["state"] in ("done", "failed") else e["progress"] for e in evaluations)
         text = f"{done}/{len(evaluations)} evaluations finished"
-        if done == len(evaluations):
+        if verdict["state"] == "judging":
             text = "judging against the release criteria"
         progress.show(share / (100 * max(len(evaluations), 1)), text)
         queued = evaluations and all(e["state"] == "queued" for e in evaluations)
@@ -199,7 +206,7 @@ def _wait_and_report(api, version_id, args, out):
         if time.monotonic() > deadline:
             progress.done()
             raise ClientError(
-                f"--wait-timeout: still {verdict['verdict']} after {args.wait_timeout:.0f} s",
+                f"--wait-timeout: still {verdict['state']} after {args.wait_timeout:.0f} s",
                 FAILURE,
             )
         time.sleep(args.poll)
@@ -218,14 +225,24 @@ def _print_verdict(api, version_id, verdict, out):
     results = api.get(f"versions/{version_id}/results/")
     if results["splits"]:
         out.write("\n" + render.summary_table(results) + "\n")
-    outcomes = api.get_all("outcomes/", version=version_id)
-    if outcomes:
-        out.write("\n" + render.outcomes_table(outcomes) + "\n")
-    out.write(f"\n{version['label']}: {verdict['verdict']} ({version['state']})\n")
+    judgement = verdict["judgement"]
+    if judgement:
+        outcomes = api.get_all("outcomes/", version=version_id, judgement=judgement["id"])
+        if outcomes:
+            out.write("\n" + render.outcomes_table(outcomes) + "\n")
+    for name in verdict["missing"]:
+        out.write(f"missing: no scored predictions on {name} (required by the suite)\n")
+    state = verdict["state"]
+    shown = state
+    if state == "pass" and verdict["no_criteria"]:
+        shown = "pass (no release criteria set)"
+    out.write(f"\n{version['label']}: {shown} ({version['state']})\n")
+    for reason in verdict["reasons"]:
+        out.write(f"  - {reason}\n")
     out.write(f"scorecard: {api.site}/versions/{version_id}/\n")
-    if verdict["verdict"] in ("regression", "no regression"):
+    if state in FINAL:
         out.write(f"Note: {render.CAUTION}\n")
-    return EXIT_OF_VERDICT.get(verdict["verdict"], OK)
+    return exit_of(verdict)
 
 
 def status(api, args, out):
@@ -240,9 +257,12 @@ def status(api, args, out):
     ]
     if rows:
         out.write(render.table(["split", "protocol", "state", "progress", "error"], rows) + "\n")
-    if verdict["verdict"] == "pending":
-        out.write(f"{version['label']}: pending ({version['state']})\n")
-        return OK
+    if verdict["state"] not in FINAL:
+        out.write(
+            f"{version['label']}: {verdict['state']} ({version['state']}); "
+            "no verdict yet (--wait waits for it)\n"
+        )
+        return FAILURE
     return _print_verdict(api, version["id"], verdict, out)
 
 

@@ -80,7 +80,7 @@ def summary_table(results):
 
 
 def outcomes_table(outcomes):
-    order = {"fail": 0, "not significant": 1, "no data": 2, "pass": 3}
+    order = {"fail": 0, "missing": 0, "not significant": 1, "no data": 2, "pass": 3}
     rows = [
         [o["rule_number"], o["split_name"], o["class_name"], o["status"], o["detail"]]
         for o in sorted(outcomes, key=lambda o: (order.get(o["status"], 9), o["rule_number"]))

@@ -36,7 +36,7 @@ from .decisions import (  # noqa: F401
     blocked_versions,
     outcomes_of,
     state_of,
-    verdict_of,
+    verdict_summary,
     version_states,
 )
 from .evidence import (  # noqa: F401

@@ -1,6 +1,4 @@
-"""Baselines, badges, rule outcomes and the verdict a pipeline waits for."""
-
-from .access import evaluations_of
+"""Baselines, badges and rule outcomes. The verdict itself: ``releases.verdicts``."""
 
 
 def baseline_of(detector):
@@ -26,14 +24,18 @@ def baselines_of(detectors):
 
 
 def blocked_versions(versions):
-    """Ids of the undecided versions among these that fail a release rule."""
-    from ..models import Outcome
+    """Ids of the undecided versions among these whose newest judgement is not a pass
+    (regression or incomplete), in one query."""
+    from ..models import Judgement
 
-    return set(
-        Outcome.objects.filter(
-            version__in=versions, status=Outcome.Status.FAIL, version__sign_off=None
-        ).values_list("version_id", flat=True)
-    )
+    newest = {}
+    for version_id, verdict in (
+        Judgement.objects.filter(version__in=versions, version__sign_off=None)
+        .order_by("version_id", "-id")
+        .values_list("version_id", "verdict")
+    ):
+        newest.setdefault(version_id, verdict)
+    return {v for v, verdict in newest.items() if verdict != "pass"}
 
 
 def state_of(version, baseline, blocked=()):
@@ -56,42 +58,38 @@ def version_states(versions):
     return {v.pk: state_of(v, baselines.get(v.detector_id), blocked) for v in versions}
 
 
-def outcomes_of(version):
-    """The version's judged rules, failures first."""
-    from ..models import Outcome
+def outcomes_of(version, judgement=None):
+    """The judged rules of ``judgement`` (default: the version's newest), failures first."""
+    from ..models import Judgement, Outcome
 
-    order = {"fail": 0, "not significant": 1, "no data": 2, "pass": 3}
+    if judgement is None:
+        judgement = Judgement.objects.filter(version=version).order_by("-id").first()
+    order = {"fail": 0, "missing": 0, "not significant": 1, "no data": 2, "pass": 3}
     rows = list(
-        Outcome.objects.filter(version=version).select_related("split", "criteria", "baseline")
+        Outcome.objects.filter(judgement=judgement).select_related("split", "criteria", "baseline")
     )
     return sorted(
         rows, key=lambda o: (order.get(o.status, 9), o.rule_index, o.split.name, o.class_name)
     )
 
 
-def verdict_of(version):
-    """What a pipeline waits for: whether scoring and judging are over, and the result.
-
-    ``pending`` until every evaluation has finished and the criteria were applied
-    after the last of them; then ``evaluation failed``, ``regression`` (a rule fails),
-    ``no criteria`` or ``no regression``.
-    """
-    from ..models import Outcome
-
-    evaluations = evaluations_of(version)
-    outcomes = list(Outcome.objects.filter(version=version).values_list("status", flat=True))
-    counts = {status: outcomes.count(status) for status in Outcome.Status.values}
-    done = [e.finished_at for e in evaluations if e.finished and e.finished_at]
-    if not evaluations:
-        verdict = "no predictions"
-    elif len(done) < len(evaluations) or version.judged_at is None or version.judged_at < max(done):
-        verdict = "pending"
-    elif any(e.state == "failed" for e in evaluations):
-        verdict = "evaluation failed"
-    elif counts["fail"]:
-        verdict = "regression"
-    elif not outcomes and version.detector.criteria.count() == 0:
-        verdict = "no criteria"
-    else:
-        verdict = "no regression"
-    return {"verdict": verdict, "evaluations": evaluations, "outcome_counts": counts}
+def verdict_summary(verdict):
+    """A ``releases.verdicts.Verdict`` as JSON (evidence report)."""
+    judgement = verdict.judgement
+    return {
+        "state": verdict.state,
+        "final": verdict.final,
+        "no_criteria": verdict.no_criteria,
+        "decided": verdict.decided,
+        "reasons": verdict.reasons,
+        "missing": verdict.missing,
+        "judgement": None
+        if judgement is None
+        else {
+            "id": judgement.pk,
+            "judged_at": judgement.judged_at.isoformat(),
+            "criteria_version": judgement.criteria.number if judgement.criteria else None,
+            "suite_version": judgement.suite.number if judgement.suite else None,
+            "baseline": judgement.baseline.label if judgement.baseline else None,
+        },
+    }

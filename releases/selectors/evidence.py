@@ -1,7 +1,7 @@
 """The evidence report a reviewer keeps."""
 
 from .access import CAUTION
-from .decisions import outcomes_of
+from .decisions import outcomes_of, verdict_summary
 from .scores import class_numbers, summary_items
 from .version import version_scorecards
 
@@ -14,9 +14,11 @@ def evidence_for(version):
 
     from ..audit import verify_audit
     from ..models import AuditEvent
+    from ..verdicts import verdict_of
 
     detector = version.detector
-    outcomes = outcomes_of(version)
+    verdict = verdict_of(version)
+    outcomes = outcomes_of(version, verdict.judgement)
     intervals = {
         (o.split_id, o.class_name): (o.low, o.high)
         for o in outcomes
@@ -63,6 +65,7 @@ def evidence_for(version):
             "seed": django_settings.BENCHBOOK_BOOTSTRAP_SEED,
         },
         "splits": splits,
+        "verdict": verdict_summary(verdict),
         "outcomes": [
             {
                 "rule": o.rule_index + 1,

@@ -106,8 +106,13 @@ def run_tasks(monkeypatch, django_capture_on_commit_callbacks):
         args = json.loads(json.dumps(args))
         release_tasks.judge.apply(args=args, task_id=str(uuid.uuid4()), throw=True)
 
+    def rejudge(*args):
+        args = json.loads(json.dumps(args))
+        release_tasks.rejudge.apply(args=args, task_id=str(uuid.uuid4()), throw=True)
+
     monkeypatch.setattr(tasks.score, "delay", delay)
     monkeypatch.setattr(release_tasks.judge, "delay", judge)
+    monkeypatch.setattr(release_tasks.rejudge, "delay", rejudge)
 
     class Runner:
         def __call__(self, fn, *args, **kwargs):

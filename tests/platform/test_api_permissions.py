@@ -169,11 +169,11 @@ MATRIX = {
 
 # What a list shows each user (its count). Versions: 1.4.0 and r1. Evaluations: 1.4.0
 # under coco and voc, r1 under coco. Audit events: the split frozen, each upload, each
-# finished evaluation; the outsider sees the split's event only.
+# finished evaluation, each judgement; the outsider sees the split's event only.
 SEEN = {
     "list versions":     (1, 1, 2, 0, 1),
     "list evaluations":  (2, 2, 3, 0, 1),
-    "list audit events": (4, 4, 6, 1, 3),
+    "list audit events": (5, 5, 8, 1, 4),
 }  # fmt: skip
 
 # The rows a successful write adds.

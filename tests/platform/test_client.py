@@ -79,10 +79,12 @@ def test_a_pipeline_gates_on_the_verdict(
         detector_args = ["--detector", "Forward camera", "--version", version]
         return run("submit", *connect, *detector_args, *splits, "--wait", "--poll", "0.3")
 
-    # 0: no criteria yet, nothing can regress.
+    # 0: no criteria yet, nothing can regress; said so.
     code, out, err = submit("1.0", "--split", "bay-night", "--predictions", good)
     assert code == 0, out + err
-    assert "1.0: no criteria" in out and "AP50" in out and "bay-night rev 1" in out
+    assert (
+        "1.0: pass (no release criteria set)" in out and "AP50" in out and "bay-night rev 1" in out
+    )
     assert f"scorecard: {live_server.url}/versions/" in out
     assert "[##############################] 100%" in err  # the progress bar, in a log
 
@@ -122,7 +124,7 @@ def test_a_pipeline_gates_on_the_verdict(
     # name:revision, as the criteria write it
     code, out, err = submit("1.2", "--split", "bay-night:1", "--predictions", good)
     assert code == 0, out + err
-    assert "1.2: no regression" in out
+    assert "1.2: pass (candidate)" in out
 
     # 2: predictions the server refuses at upload (small enough to check inside the
     # request); the message names file, record and field.
@@ -292,4 +294,52 @@ def test_waiting_past_the_timeout_is_a_failure(
     )  # fmt: skip
     assert code == 1, err
     assert "note: still queued after 1 s: no worker has started on them" in err
-    assert "--wait-timeout: still pending after 2 s" in err
+    assert "--wait-timeout: still scoring after 2 s" in err
+
+
+@pytest.mark.usefixtures("worker")
+def test_a_partial_upload_exits_3_naming_the_missing_split(
+    live_server, detector, split_truth, users, run, tmp_path
+):
+    """The suite requires bay-night and bay-day; uploaded on bay-night only the verdict
+    is incomplete and the client exits 3 naming bay-day; once bay-day is uploaded too
+    (no criteria set) it passes with 0. A failed upload exits 2 (issue 10)."""
+    from releases import suites
+
+    from .conftest import split_dict
+
+    evaluation_services.load_split(
+        name="bay-night", revision=1, truth=upload("bay-night.json", split_truth)
+    )
+    day = split_dict(seed=9)
+    evaluation_services.load_split(name="bay-day", revision=1, truth=upload("d.json", day))
+    suites.set_suite(detector, users["lead"], {"splits": ["bay-night", "bay-day"]})
+    _, token = tokens.create_token(users["engineer"], "pipeline")
+    connect = ["--url", live_server.url, "--token", token, "--detector", "Forward camera"]
+    night = _write(tmp_path / "night.json", detections_for(split_truth))
+
+    code, out, err = run(
+        "submit", *connect, "--version", "2.0", "--split", f"bay-night={night}", "--wait",
+        "--poll", "0.3",
+    )  # fmt: skip
+    assert code == 3, out + err
+    assert "2.0: incomplete" in out and "no predictions on bay-day rev 1" in out
+    code, out, _ = run("status", *connect, "2.0")
+    assert code == 3 and "missing: no scored predictions on bay-day rev 1" in out
+
+    bad = detections_for(day)
+    bad[1]["bbox"][2] = -3
+    code, out, err = run(
+        "submit", *connect, "--version", "2.1", "--split", f"bay-night={night}",
+        "--split", f"bay-day={_write(tmp_path / 'bad-day.json', bad)}", "--wait", "--poll", "0.3",
+    )  # fmt: skip
+    assert code == 2, out + err
+    assert "bad-day.json: record 1: field 'bbox'" in out and "2.1: incomplete" in out
+
+    code, out, err = run(
+        "submit", *connect, "--version", "2.0",
+        "--split", f"bay-day={_write(tmp_path / 'day.json', detections_for(day))}", "--wait",
+        "--poll", "0.3",
+    )  # fmt: skip
+    assert code == 0, out + err
+    assert "2.0: pass (no release criteria set)" in out

@@ -259,9 +259,9 @@ def test_compare_shows_the_judged_intervals(
 def test_judging_lost_with_the_broker_is_queued_again(
     detector, split, split_truth, users, run_tasks, monkeypatch, settings
 ):
-    """The broker refuses the judge task: the verdict stays pending until the sweep."""
-    from releases import selectors
+    """The broker refuses the judge task: the verdict stays judging until the sweep."""
     from releases import tasks as release_tasks
+    from releases import verdicts
 
     from .conftest import detections_for
 
@@ -280,11 +280,12 @@ def test_judging_lost_with_the_broker_is_queued_again(
         users["engineer"],
     )
     version.refresh_from_db()
-    assert selectors.verdict_of(version)["verdict"] == "pending"
+    assert verdicts.verdict_of(version).state == "judging"
     assert services.requeue_unjudged() == []  # within the grace period: left alone
     settings.BENCHBOOK_QUEUED_GRACE_SECONDS = 0
     monkeypatch.setattr(release_tasks.judge, "delay", judged)
     assert run_tasks(services.requeue_unjudged) == [version.pk]
     version.refresh_from_db()
-    assert selectors.verdict_of(version)["verdict"] == "no criteria"
+    verdict = verdicts.verdict_of(version)
+    assert (verdict.state, verdict.no_criteria) == ("pass", True)
     assert services.requeue_unjudged() == []  # judged after its last evaluation

@@ -60,14 +60,21 @@ def test_no_sign_off_while_evaluations_are_pending(version, split, split_truth, 
         version, split, upload("p.json", detections_for(split_truth)), users["engineer"]
     )
     assert Evaluation.objects.filter(state="queued").count() == 2
-    with pytest.raises(services.DecisionError, match="still has 2 evaluation"):
+    with pytest.raises(
+        services.DecisionError, match="is scoring: a decision waits for the final verdict"
+    ):
         services.sign_off(version, users["lead"], "approved", "hurry")
     assert SignOff.objects.count() == 0
 
 
-def test_no_sign_off_without_predictions(version, users):
-    with pytest.raises(services.DecisionError, match="has no predictions"):
+def test_a_version_without_predictions_is_incomplete(version, users):
+    """Nothing uploaded: incomplete; approving it is an override (issue 10)."""
+    with pytest.raises(services.DecisionError, match="is incomplete .no predictions uploaded"):
         services.sign_off(version, users["lead"], "approved", "nothing to see")
+    record, event = services.sign_off(
+        version, users["lead"], "approved", "dry run", justification="registry test only"
+    )
+    assert record.override and record.verdict == "incomplete" and event.kind == "override"
 
 
 def test_a_second_decision_is_refused(scored_version, users):
@@ -78,10 +85,19 @@ def test_a_second_decision_is_refused(scored_version, users):
     assert SignOff.objects.get().decision == "rejected" and AuditEvent.objects.count() == before
 
 
-def test_an_override_needs_a_justification(scored_version, users, monkeypatch):
-    monkeypatch.setattr(
-        services, "failing_rules", lambda version: [{"rule": "pedestrian AP50 >= 0.8"}]
-    )
+def test_an_override_needs_a_justification(version, split, split_truth, users, run_tasks):
+    from releases import criteria
+
+    # A perfect AP is out of reach of these invented detections: the rule fails.
+    rule = {"kind": "min_value", "metric": "AP", "class": "mean", "threshold": 1.0}
+    criteria.set_criteria(version.detector, users["lead"], [rule])
+    scored_version = run_tasks(
+        services.submit_predictions,
+        version,
+        split,
+        upload("p.json", detections_for(split_truth)),
+        users["engineer"],
+    ).version
     with pytest.raises(
         services.DecisionError, match="is an override and needs a written justification"
     ):

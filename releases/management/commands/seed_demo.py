@@ -9,7 +9,7 @@ from django.db import transaction
 
 from evaluation import services as evaluation_services
 from evaluation.models import BenchmarkSplit, Evaluation
-from releases import demo, services
+from releases import demo, services, verdicts
 from releases.models import Detector, Membership, ModelVersion, SignOff, Team
 
 TEAM = "Shuttle Perception"
@@ -151,6 +151,9 @@ class Command(BaseCommand):
             version = ModelVersion.objects.get(detector__slug=slug, label=label)
             if SignOff.objects.filter(version=version).exists():
                 continue
+            # The previous approval changed the baseline: judge against it first (what
+            # the worker's re-judging does), since a decision needs a final verdict.
+            verdicts.judge(version.pk)
             services.sign_off(version, lead, decision, comment)
             self.stdout.write(f"  {version}: {decision}")
 

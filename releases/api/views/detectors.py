@@ -1,0 +1,118 @@
+"""Who am I, detectors, their history, criteria and benchmark suite."""
+
+from drf_spectacular.types import OpenApiTypes
+from drf_spectacular.utils import extend_schema
+from rest_framework import generics
+from rest_framework.response import Response
+from rest_framework.views import APIView
+
+from ... import criteria, selectors, suites
+from .. import serializers as s
+from .base import (
+    Endpoint,
+    _detector,
+    _param,
+    _text,
+    _valid,
+)
+
+# Who am I ----------------------------------------------------------------------------
+
+
+class Me(Endpoint, APIView):
+    @extend_schema(responses=OpenApiTypes.OBJECT, summary="The user and their roles")
+    def get(self, request):
+        memberships = request.user.memberships.select_related("team").order_by("team__name")
+        return Response(
+            {
+                "username": request.user.get_username(),
+                "teams": [
+                    {"id": m.team_id, "name": m.team.name, "role": m.role} for m in memberships
+                ],
+                "reads_all_teams": selectors.reads_all_teams(request.user),
+            }
+        )
+
+
+# Detectors ---------------------------------------------------------------------------
+
+
+class DetectorMixin(Endpoint):
+    serializer_class = s.DetectorSerializer
+
+    def get_queryset(self):
+        return selectors.visible_detectors(self.request.user).order_by("team__name", "name")
+
+    def get_serializer_context(self):
+        context = super().get_serializer_context()
+        baselines = selectors.baselines_of(self.get_queryset())
+        context["baselines"] = {detector_id: v.pk for detector_id, v in baselines.items()}
+        return context
+
+
+@extend_schema(
+    parameters=[
+        _param("team", str, "Team slug"),
+        _param("name", str, "Exact detector name (case-insensitive)"),
+    ]
+)
+class DetectorList(DetectorMixin, generics.ListAPIView):
+    def get_queryset(self):
+        queryset = super().get_queryset()
+        if team := _text(self.request, "team"):
+            queryset = queryset.filter(team__slug=team)
+        if name := _text(self.request, "name"):
+            queryset = queryset.filter(name__iexact=name)
+        return queryset
+
+
+class DetectorDetail(DetectorMixin, generics.RetrieveAPIView):
+    pass
+
+
+class DetectorHistory(Endpoint, APIView):
+    @extend_schema(
+        responses=OpenApiTypes.OBJECT,
+        summary="Every version's numbers on every split",
+        description="``values[split id][metric][class]`` is aligned with ``versions``; "
+        "null where not scored; class ``mean`` is the protocol's mean.",
+    )
+    def get(self, request, pk):
+        return Response(selectors.history_chart(_detector(request, pk)))
+
+
+class DetectorCriteria(Endpoint, APIView):
+    @extend_schema(responses=s.CriteriaSerializer(many=True), summary="Criteria, newest first")
+    def get(self, request, pk):
+        found = _detector(request, pk)
+        rows = found.criteria.select_related("created_by").order_by("-number")
+        return Response(s.CriteriaSerializer(rows, many=True).data)
+
+    @extend_schema(request=s.CriteriaInput, responses={201: s.CriteriaSerializer})
+    def post(self, request, pk):
+        found = _detector(request, pk)
+        data = _valid(s.CriteriaInput, request)
+        saved = criteria.set_criteria(found, request.user, data["rules"])
+        return Response(s.CriteriaSerializer(saved).data, status=201)
+
+
+class DetectorSuite(Endpoint, APIView):
+    @extend_schema(
+        responses=s.SuiteSerializer(many=True),
+        summary="Benchmark suite versions, newest (current) first",
+    )
+    def get(self, request, pk):
+        found = _detector(request, pk)
+        rows = found.suites.select_related("created_by").order_by("-number")
+        return Response(s.SuiteSerializer(rows, many=True).data)
+
+    @extend_schema(
+        request=s.SuiteInput,
+        responses={201: s.SuiteSerializer},
+        summary="A new suite version (leads); undecided candidates are judged again",
+    )
+    def post(self, request, pk):
+        found = _detector(request, pk)
+        data = _valid(s.SuiteInput, request)
+        saved = suites.set_suite(found, request.user, dict(data))
+        return Response(s.SuiteSerializer(saved).data, status=201)

@@ -1,0 +1,189 @@
+"""Benchmark suites: what a detector's candidates must be scored on, and how.
+
+A suite: ``{"splits": [{"name": "bay-night", "revision": null}, ...], "protocols":
+["coco", ...], "box_policy": "keep"|"clip"|"reject", "score_threshold": 0.5,
+"class_thresholds": {"pedestrian": 0.4}}``. A split with ``revision`` null follows
+the split's newest revision; a number pins it. The first protocol is the primary one
+(the criteria and the headline read it). Every change is a new, audited version; the
+detector's ``protocols`` / ``primary_protocol`` columns mirror the current one.
+"""
+
+from django.core.exceptions import PermissionDenied
+from django.db import transaction
+
+from evaluation import engine
+from evaluation.models import BenchmarkSplit
+from evaluation.services import UploadError
+
+from . import audit, selectors
+from .models import AuditEvent, BenchmarkSuite, Detector, Membership
+
+FIELDS = ("splits", "protocols", "box_policy", "score_threshold", "class_thresholds")
+
+
+class SuiteError(UploadError):
+    """A suite that cannot be used; the message names the field."""
+
+
+def _fail(path, message):
+    raise SuiteError(f"{path}: {message}", path=path)
+
+
+def _threshold(value, path):
+    if isinstance(value, bool) or not isinstance(value, (int, float)) or not 0 <= value <= 1:
+        _fail(path, f"must be a number in [0, 1], got {value!r}")
+    return float(value)
+
+
+def validate_suite(detector, spec):
+    """A checked, normalised suite; errors name the field (``splits[1].revision``)."""
+    if not isinstance(spec, dict):
+        _fail("suite", "must be an object")
+    for key in spec:
+        if key not in FIELDS:
+            _fail(key, f"unknown field; allowed: {', '.join(FIELDS)}")
+    splits = spec.get("splits")
+    if not isinstance(splits, list) or not splits:
+        _fail("splits", "must be a non-empty list of {name, revision}")
+    known = {}
+    for name, revision in BenchmarkSplit.objects.values_list("name", "revision"):
+        known.setdefault(name, set()).add(revision)
+    clean_splits, seen = [], set()
+    for i, entry in enumerate(splits):
+        if isinstance(entry, str):  # "bay-night" or "bay-night:2"
+            name, _, rev = entry.partition(":")
+            entry = {"name": name, "revision": int(rev) if rev.isdigit() else rev or None}
+        if not isinstance(entry, dict):
+            _fail(f"splits[{i}]", "must be an object {name, revision}")
+        for key in entry:
+            if key not in ("name", "revision"):
+                _fail(f"splits[{i}].{key}", "unknown field; allowed: name, revision")
+        name, revision = entry.get("name"), entry.get("revision")
+        if not isinstance(name, str) or name not in known:
+            _fail(f"splits[{i}].name", f"{name!r} is not a benchmark split")
+        pinned = isinstance(revision, int) and not isinstance(revision, bool)
+        if revision is not None and (not pinned or revision not in known[name]):
+            revisions = ", ".join(str(r) for r in sorted(known[name]))
+            _fail(
+                f"splits[{i}].revision",
+                f"{name} has no revision {revision!r} (revisions: {revisions}; null = newest)",
+            )
+        if name in seen:
+            _fail(f"splits[{i}].name", f"{name} is listed twice")
+        seen.add(name)
+        clean_splits.append({"name": name, "revision": revision})
+    protocols = spec.get("protocols", [detector.primary_protocol])
+    if not isinstance(protocols, list) or not protocols:
+        _fail("protocols", "must be a non-empty list of protocol names")
+    for i, protocol in enumerate(protocols):
+        if not isinstance(protocol, str):
+            _fail(f"protocols[{i}]", "must be a preset protocol's name")
+        try:
+            engine.get_protocol(protocol)
+        except engine.InputError as e:
+            _fail(f"protocols[{i}]", e.message)
+    if len(set(protocols)) != len(protocols):
+        _fail("protocols", "a protocol is listed twice")
+    box_policy = spec.get("box_policy", "keep")
+    if box_policy not in BenchmarkSuite.BoxPolicy.values:
+        _fail("box_policy", f"must be one of {', '.join(BenchmarkSuite.BoxPolicy.values)}")
+    score_threshold = _threshold(spec.get("score_threshold", 0.5), "score_threshold")
+    class_thresholds = spec.get("class_thresholds") or {}
+    if not isinstance(class_thresholds, dict):
+        _fail("class_thresholds", "must be an object {class: threshold}")
+    clean_thresholds = {}
+    for name, value in class_thresholds.items():
+        if name not in detector.classes:
+            _fail(
+                f"class_thresholds.{name}",
+                f"not a class of {detector} ({', '.join(detector.classes)})",
+            )
+        clean_thresholds[name] = _threshold(value, f"class_thresholds.{name}")
+    return {
+        "splits": clean_splits,
+        "protocols": list(protocols),
+        "box_policy": box_policy,
+        "score_threshold": score_threshold,
+        "class_thresholds": clean_thresholds,
+    }
+
+
+def current_suite(detector):
+    """The detector's newest suite (every detector has one from its creation)."""
+    return detector.suites.order_by("-number").first()
+
+
+def as_dict(suite):
+    return {field: getattr(suite, field) for field in FIELDS}
+
+
+def set_suite(detector, user, spec):
+    """A new version of the detector's suite (leads only), audited; undecided candidates
+    are judged again once it commits."""
+    if selectors.role_in(user, detector.team) != Membership.Role.LEAD:
+        raise PermissionDenied(f"{user} may not change the suite of {detector}: leads only")
+    clean = validate_suite(detector, spec)
+    with transaction.atomic():
+        Detector.objects.select_for_update().filter(pk=detector.pk).first()
+        suite = _create(detector, user, clean)
+        audit.record_event(
+            AuditEvent.Kind.SUITE_CHANGED,
+            user,
+            f"detector:{detector.pk}",
+            {"detector": str(detector), "number": suite.number, "suite": clean},
+        )
+        from .services import rejudge_later
+
+        rejudge_later(detector.pk)
+    return suite
+
+
+def _create(detector, user, clean):
+    last = current_suite(detector)
+    suite = BenchmarkSuite.objects.create(
+        detector=detector, number=(last.number + 1 if last else 1), created_by=user, **clean
+    )
+    # The mirror older readers use (headline protocol, upload page).
+    Detector.objects.filter(pk=detector.pk).update(
+        protocols=clean["protocols"], primary_protocol=clean["protocols"][0]
+    )
+    detector.protocols, detector.primary_protocol = clean["protocols"], clean["protocols"][0]
+    return suite
+
+
+def first_suite(detector, user=None, *, protocols, splits=()):
+    """Suite v1 of a new detector (``services.create_detector``)."""
+    return _create(
+        detector,
+        user,
+        {
+            "splits": [{"name": n, "revision": None} for n in splits],
+            "protocols": list(protocols),
+            "box_policy": "keep",
+            "score_threshold": 0.5,
+            "class_thresholds": {},
+        },
+    )
+
+
+def resolve(entries):
+    """The BenchmarkSplit rows of suite entries: a pinned revision, or the newest."""
+    names = {e["name"] for e in entries}
+    rows = {}
+    for split in BenchmarkSplit.objects.filter(name__in=names):
+        rows.setdefault(split.name, {})[split.revision] = split
+    out = []
+    for entry in entries:
+        revisions = rows.get(entry["name"], {})
+        if not revisions:
+            continue
+        revision = entry["revision"] if entry["revision"] is not None else max(revisions)
+        if revision in revisions:
+            out.append(revisions[revision])
+    return out
+
+
+def required_splits(detector):
+    """The splits a candidate of ``detector`` must be scored on, in the suite's order."""
+    suite = current_suite(detector)
+    return resolve(suite.splits) if suite else []
