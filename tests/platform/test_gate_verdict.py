@@ -106,10 +106,12 @@ def test_sign_off_while_judging_is_refused(
 
 
 def test_a_failed_evaluation_is_incomplete_and_approval_is_an_override(
-    version, split, split_truth, users, run_tasks
+    version, split, split_truth, users, run_tasks, settings
 ):
-    """All evaluations failed (bad boxes): incomplete, naming the error; approving is an
-    override with a justification, rejecting needs only a comment."""
+    """All evaluations failed (bad boxes, in a file too large to check inside the
+    request): incomplete, naming the error; approving is an override with a
+    justification, rejecting needs only a comment."""
+    settings.BENCHBOOK_INLINE_VALIDATION_BYTES = 0  # the worker finds the error
     bad = detections_for(split_truth)
     bad[2]["bbox"][3] = -1
     run_tasks(
@@ -131,8 +133,9 @@ def test_a_failed_evaluation_is_incomplete_and_approval_is_an_override(
 
 
 def test_rejecting_an_incomplete_candidate_needs_only_a_comment(
-    version, split, split_truth, users, run_tasks
+    version, split, split_truth, users, run_tasks, settings
 ):
+    settings.BENCHBOOK_INLINE_VALIDATION_BYTES = 0  # the worker finds the error
     bad = detections_for(split_truth)
     bad[0]["score"] = "high"
     run_tasks(
