@@ -76,16 +76,42 @@
     window.benchbookCharts[canvas.id] = chart;
   }
 
+  // Live status of queued and running evaluations: each bar polls its evaluation; a
+  // failure shows its message at once; when every evaluation on the page has finished
+  // and one was scored, the page loads again to show the numbers.
   function progress() {
-    document.querySelectorAll("[data-poll]").forEach(bar => {
+    const bars = [...document.querySelectorAll("[data-poll]")];
+    let open = bars.length, scored = 0;
+    const finished = state => {
+      open -= 1;
+      if (state === "done") scored += 1;
+      if (open === 0 && scored > 0) setTimeout(() => window.location.reload(), 1500);
+    };
+    bars.forEach(bar => {
       const tick = () => fetch(bar.dataset.poll, { headers: { Accept: "application/json" } })
-        .then(r => r.json()).then(s => {
+        .then(r => { if (!r.ok) throw new Error(`HTTP ${r.status}`); return r.json(); })
+        .then(s => {
           bar.value = s.progress;
           bar.textContent = `${s.progress} %`;
           const label = document.getElementById(bar.dataset.state);
-          if (label) label.textContent = s.state;
-          if (s.state === "queued" || s.state === "running") setTimeout(tick, 1000);
-        });
+          if (label) {
+            label.textContent = s.state;
+            label.className = `state state-${s.state}`;
+          }
+          if (s.state === "queued" || s.state === "running") {
+            setTimeout(tick, 1000);
+            return;
+          }
+          if (s.state === "failed") {
+            const error = document.createElement("div");
+            error.className = "error";
+            error.setAttribute("role", "alert");
+            error.textContent = s.error || "scoring failed";
+            bar.replaceWith(error);
+          }
+          finished(s.state);
+        })
+        .catch(() => setTimeout(tick, 5000)); // server unreachable for a moment: try again
       tick();
     });
   }
