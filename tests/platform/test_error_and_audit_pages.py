@@ -100,7 +100,12 @@ def test_audit_page_filters_and_links(client, detector, trail, users):
     subjects = {e.subject for e in _rows(only)}
     sets = {f"prediction-set:{ps.pk}" for ps in version.prediction_sets.all()}
     assert sets <= subjects and f"prediction-set:{other.prediction_sets.get().pk}" not in subjects
-    assert {e.kind for e in _rows(only)} == {"predictions uploaded", "evaluation finished"}
+    # Each judging of the version is an event about it too (issue 10).
+    assert {e.kind for e in _rows(only)} == {
+        "predictions uploaded",
+        "evaluation finished",
+        "judged",
+    }
 
     changes = client.get(f"/audit/?detector={detector.pk}&kind=criteria+changed&actor=lead")
     assert [e.payload["number"] for e in _rows(changes)] == [2, 1]
