@@ -13,7 +13,7 @@ from django.core.files.base import ContentFile
 from django.utils import timezone
 
 from evaluation import services as evaluation_services
-from releases import criteria, demo, services
+from releases import criteria, demo, services, verdicts
 
 from .conftest import BROWSER_MARKS, shot
 
@@ -126,7 +126,7 @@ def demo_like(detector, team, users, run_tasks, split):
         detector, users["lead"], [rule, {"kind": "max_drop", "class": "mean", "tolerance": 1}]
     )
     for version in versions[1:]:
-        criteria.judge(version)
+        verdicts.judge(version.pk)
     return splits, versions
 
 
