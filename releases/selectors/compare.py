@@ -29,6 +29,51 @@ def _delta(name, reference, candidate, interval=None):
     }
 
 
+def protocol_differences(a, b):
+    """How two scorecards' numbers were computed differently, in words: one row per
+    setting of the engine's protocol record that differs (``engine.differences``:
+    protocol version, box policy, tie order, engine version, ...). Scorecards stored
+    before the record existed are compared on protocol and engine versions only."""
+    from evaluation import engine
+
+    ra, rb = a.result or {}, b.result or {}
+    if "protocol_record" in ra and "protocol_record" in rb:
+        found = engine.differences(ra, rb)
+    else:
+        found = [
+            (key, va, vb, effect)
+            for key, va, vb, effect in (
+                (
+                    "protocol version",
+                    a.protocol_version,
+                    b.protocol_version,
+                    "a revised version of the protocol: its rules changed",
+                ),
+                (
+                    "engine version",
+                    a.engine_version,
+                    b.engine_version,
+                    "computed by different engine versions; any number may differ",
+                ),
+            )
+            if va != vb
+        ]
+        if bool(ra.get("protocol_record")) != bool(rb.get("protocol_record")):
+            found.append(
+                (
+                    "protocol record",
+                    "stored" if ra.get("protocol_record") else "none (older result)",
+                    "stored" if rb.get("protocol_record") else "none (older result)",
+                    "one result predates the protocol record; score it again to compare "
+                    "every setting",
+                )
+            )
+    return [
+        {"setting": key.replace("_", " "), "reference": va, "candidate": vb, "effect": effect}
+        for key, va, vb, effect in found
+    ]
+
+
 def _stored_intervals(reference, candidate, pairs, protocol):
     """{split id: (state, {tag or "": {class: [low, high, confidence]}}, error)} of the
     intervals computed on request for exactly these inputs (``releases.comparisons``)."""
@@ -158,6 +203,7 @@ def compare_versions(reference, candidate):
                 "missing_intervals": state != "done"
                 and any(d["delta"] is not None and not d["interval"] for d in deltas),
                 "interval_error": error if state == "failed" else "",
+                "protocol_differences": protocol_differences(a, b),
             }
         )
     return out
