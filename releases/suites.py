@@ -187,3 +187,39 @@ def required_splits(detector):
     """The splits a candidate of ``detector`` must be scored on, in the suite's order."""
     suite = current_suite(detector)
     return resolve(suite.splits) if suite else []
+
+
+def deployed_operating_point(card, suite):
+    r"""Precision, recall and F1 of a scorecard's detections at the suite's deployed
+    score threshold(s), per class and pooled over classes, from its match records:
+
+    .. math:: P = \frac{TP}{TP + FP}, \quad R = \frac{TP}{n_{pos}}, \quad
+              F_1 = \frac{2\,TP}{TP + FP + n_{pos}}
+
+    counting the detections with score >= the class's threshold (``class_thresholds``,
+    else ``score_threshold``) at the primary IoU slot, after the protocol's detection
+    cap (common practice; ``engine.operating_point.threshold_scores``). The pooled row
+    sums TP, FP and positives over the classes, each at its own threshold.
+    """
+    from evaluation.engine.curves import cumulative_counts
+    from evaluation.engine.operating_point import (
+        counts_at,
+        scores_from_counts,
+        threshold_scores,
+    )
+
+    from .criteria import _records
+
+    records = _records(card)
+    protocol = engine.get_protocol(card.protocol)
+    curves = cumulative_counts(records, max_detections=protocol.max_detections_limit)
+    per_class, tp_all, fp_all = {}, 0.0, 0.0
+    for k, name in enumerate(records.classes):
+        threshold = suite.class_thresholds.get(name, suite.score_threshold)
+        tp, fp, scores = curves.segment(k)
+        per_class[name] = threshold_scores(tp, fp, scores, float(curves.n_pos[k]), threshold)
+        kept_tp, kept_fp = counts_at(tp, fp, scores, threshold)
+        tp_all, fp_all = tp_all + kept_tp, fp_all + kept_fp
+    pooled = scores_from_counts(tp_all, fp_all, float(curves.n_pos.sum()), suite.score_threshold)
+    pooled["threshold"] = None if suite.class_thresholds else suite.score_threshold
+    return {"per_class": per_class, "pooled": pooled}

@@ -14,11 +14,13 @@ def evidence_for(version):
 
     from ..audit import verify_audit
     from ..models import AuditEvent
+    from ..suites import current_suite
     from ..verdicts import verdict_of
 
     detector = version.detector
     verdict = verdict_of(version)
     outcomes = outcomes_of(version, verdict.judgement)
+    suite = getattr(verdict.judgement, "suite", None) or current_suite(detector)
     intervals = {
         (o.split_id, o.class_name): (o.low, o.high)
         for o in outcomes
@@ -47,6 +49,7 @@ def evidence_for(version):
                 "predictions_sha256": card.predictions_sha256,
                 "summary": dict(summary_items(card.summary)),
                 "classes": classes,
+                "deployed": _deployed(card, suite),
             }
         )
     decision = getattr(version, "sign_off", None)
@@ -101,3 +104,16 @@ def evidence_for(version):
             "decision_events": [e.hash for e in events],
         },
     }
+
+
+def _deployed(card, suite):
+    """Precision / recall / F1 at the suite's deployed score threshold(s); None when the
+    match records cannot be read (the report still renders)."""
+    from ..suites import deployed_operating_point
+
+    if suite is None or card.protocol != suite.protocols[0]:
+        return None
+    try:
+        return {"suite_version": suite.number, **deployed_operating_point(card, suite)}
+    except OSError:
+        return None

@@ -287,3 +287,44 @@ def test_the_sweep_judges_a_candidate_whose_rejudging_was_lost(
     assert run_tasks(services.requeue_unjudged) == [version.pk]
     assert verdicts.verdict_of(version).state == "regression"
     assert services.requeue_unjudged() == []
+
+
+def test_the_deployed_thresholds_give_the_operating_point(
+    detector, version, split, split_truth, users, run_tasks, tmp_path
+):
+    """The suite's score threshold (0.3) and a class threshold (pedestrian 0.7) give
+    per-class precision / recall / F1 as the engine scores them at that cut (P = TP /
+    (TP + FP), R = TP / positives: common practice); the pooled row sums the classes'
+    counts, each at its own cut. Shown in the evidence report."""
+    import json
+
+    from evaluation import engine
+    from releases import selectors
+
+    spec = {
+        "splits": ["bay-night"],
+        "score_threshold": 0.3,
+        "class_thresholds": {"pedestrian": 0.7},
+    }
+    run_tasks(suites.set_suite, detector, users["lead"], {**spec, "protocols": ["coco"]})
+    detections = detections_for(split_truth)
+    _submit(run_tasks, version, split, split_truth, users)
+    (tmp_path / "gt.json").write_text(json.dumps(split_truth))
+    (tmp_path / "dt.json").write_text(json.dumps(detections))
+    truth = engine.load_truth(tmp_path / "gt.json")
+    predictions = engine.load_predictions(tmp_path / "dt.json", truth)
+    report = selectors.evidence_for(version)
+    deployed = report["splits"][0]["deployed"]
+    tp = fp = positives = 0.0
+    for name in ("car", "pedestrian", "cyclist"):
+        cut = 0.7 if name == "pedestrian" else 0.3
+        expected = engine.evaluate(truth, predictions, "coco", score_threshold=cut)["per_class"]
+        assert deployed["per_class"][name] == expected[name]["at_threshold"]
+        tp += expected[name]["at_threshold"]["tp"]
+        fp += expected[name]["at_threshold"]["fp"]
+        positives += expected[name]["gt"]
+    pooled = deployed["pooled"]
+    assert (pooled["tp"], pooled["fp"], pooled["threshold"]) == (tp, fp, None)
+    assert pooled["precision"] == pytest.approx(tp / (tp + fp))
+    assert pooled["recall"] == pytest.approx(tp / positives)
+    assert deployed["suite_version"] == 2
