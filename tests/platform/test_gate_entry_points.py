@@ -167,3 +167,26 @@ def test_a_suite_change_requests_the_new_protocols_evaluations(
     assert verdict.state == "pass" and [e.protocol for e in verdict.evaluations] == ["voc07"]
     detector.refresh_from_db()
     assert (detector.primary_protocol, detector.protocols) == ("voc07", ["voc07"])
+
+
+def test_outcomes_api_reads_the_newest_judgement_and_keeps_the_older(
+    detector, version, split, split_truth, users, run_tasks
+):
+    easy = {**IMPOSSIBLE, "threshold": 0.0}
+    run_tasks(criteria.set_criteria, detector, users["lead"], [easy])
+    run_tasks(
+        services.submit_predictions,
+        version,
+        split,
+        upload("p.json", detections_for(split_truth)),
+        users["engineer"],
+    )
+    run_tasks(criteria.set_criteria, detector, users["lead"], [IMPOSSIBLE])
+    old, new = Judgement.objects.filter(version=version).order_by("id")
+    lead = _api(users["lead"])
+    current = lead.get(f"{API}outcomes/", {"version": version.pk}).json()["results"]
+    assert [(o["judgement"], o["status"]) for o in current] == [(new.pk, "fail")]
+    earlier = lead.get(f"{API}outcomes/", {"judgement": old.pk}).json()["results"]
+    assert [(o["judgement"], o["status"]) for o in earlier] == [(old.pk, "pass")]
+    listed = lead.get(f"{API}versions/{version.pk}/judgements/").json()
+    assert [(j["id"], j["verdict"]) for j in listed] == [(new.pk, "regression"), (old.pk, "pass")]
