@@ -157,19 +157,38 @@ CELERY_ACCEPT_CONTENT = ["json"]
 CELERY_TASK_ALWAYS_EAGER = _flag("BENCHBOOK_EAGER_TASKS", False)
 CELERY_TASK_EAGER_PROPAGATES = True
 CELERY_BEAT_SCHEDULE_FILENAME = str(VAR_DIR / "celerybeat-schedule")
+# The job lifecycle (evaluation/jobs.py). A scoring worker renews its lease every third
+# of BENCHBOOK_LEASE_SECONDS; the sweep (every BENCHBOOK_SWEEP_SECONDS) requeues a running
+# evaluation whose lease ran out, so a killed worker's evaluation is scored again within
+# lease + sweep seconds (90 s by default), and sends again one queued for longer than
+# BENCHBOOK_QUEUED_GRACE_SECONDS (the broker lost it). Database errors are retried with
+# back-off for BENCHBOOK_DB_RETRY_SECONDS (a longer outage: the sweep takes over).
+BENCHBOOK_LEASE_SECONDS = float(os.environ.get("BENCHBOOK_LEASE_SECONDS", 60))
+BENCHBOOK_SWEEP_SECONDS = float(os.environ.get("BENCHBOOK_SWEEP_SECONDS", 30))
+BENCHBOOK_QUEUED_GRACE_SECONDS = float(os.environ.get("BENCHBOOK_QUEUED_GRACE_SECONDS", 120))
+BENCHBOOK_DB_RETRY_SECONDS = float(os.environ.get("BENCHBOOK_DB_RETRY_SECONDS", 300))
+BENCHBOOK_MAX_ATTEMPTS = 3
 CELERY_BEAT_SCHEDULE = {
-    "requeue-stalled-evaluations": {"task": "evaluation.tasks.sweep", "schedule": 60.0},
+    "requeue-stalled-evaluations": {
+        "task": "evaluation.tasks.sweep",
+        "schedule": BENCHBOOK_SWEEP_SECONDS,
+    },
     "requeue-lost-judging": {"task": "releases.tasks.sweep", "schedule": 60.0},
 }
-# An evaluation still queued after this long, or running after the second, is requeued.
-BENCHBOOK_QUEUED_GRACE_SECONDS = 120
-BENCHBOOK_RUNNING_TIMEOUT_SECONDS = 3600
-BENCHBOOK_MAX_ATTEMPTS = 3
 
+# Notifications (releases/notify.py) are their own task, queued after a judgement: one
+# webhook POST per run with a short timeout, later attempts queued with a countdown, so a
+# webhook that never answers holds a worker for BENCHBOOK_WEBHOOK_TIMEOUT_SECONDS at most.
+# BENCHBOOK_NOTIFY_QUEUE routes them to a queue of their own (run a worker for it).
 BENCHBOOK_WEBHOOK_ATTEMPTS = 4
 BENCHBOOK_WEBHOOK_BACKOFF_SECONDS = 2.0
+BENCHBOOK_WEBHOOK_TIMEOUT_SECONDS = float(os.environ.get("BENCHBOOK_WEBHOOK_TIMEOUT_SECONDS", 5))
+BENCHBOOK_NOTIFY_QUEUE = os.environ.get("BENCHBOOK_NOTIFY_QUEUE", "")
+if BENCHBOOK_NOTIFY_QUEUE:
+    CELERY_TASK_ROUTES = {"releases.tasks.notify": {"queue": BENCHBOOK_NOTIFY_QUEUE}}
 DEFAULT_FROM_EMAIL = os.environ.get("DEFAULT_FROM_EMAIL", "benchbook@localhost")
 EMAIL_BACKEND = os.environ.get("EMAIL_BACKEND", "django.core.mail.backends.console.EmailBackend")
+EMAIL_TIMEOUT = 10  # seconds per SMTP operation; Django waits forever by default
 
 # The API (releases/api): tokens for pipelines, the session for the browser.
 REST_FRAMEWORK = {

@@ -93,6 +93,9 @@ class Evaluation(models.Model):
     error_detail = models.JSONField(null=True, blank=True)
     engine_version = models.CharField(max_length=16, blank=True)
     claimed_by = models.CharField(max_length=64, blank=True, help_text="Task delivery scoring it.")
+    lease_expires_at = models.DateTimeField(
+        null=True, blank=True, help_text="The claim holder renews this while it scores."
+    )
     created_at = models.DateTimeField(auto_now_add=True)
     queued_at = models.DateTimeField(auto_now_add=True)
     started_at = models.DateTimeField(null=True, blank=True)
@@ -129,6 +132,9 @@ class Scorecard(models.Model):
     summary = models.JSONField()
     result = models.JSONField(help_text="The engine's full result: per class, curves, slices.")
     records = models.FileField(upload_to="records/", max_length=255)
+    records_sha256 = models.CharField(
+        max_length=64, null=True, blank=True, help_text="Of the records file (None before kept)."
+    )
     created_at = models.DateTimeField(auto_now_add=True)
 
     def __str__(self):

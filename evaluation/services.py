@@ -4,7 +4,6 @@ Views, commands and tasks call these functions and nothing else writes these mod
 """
 
 import contextlib
-import datetime
 import logging
 import os
 import tempfile
@@ -14,9 +13,16 @@ from django.core.files import File
 from django.db import IntegrityError, transaction
 from django.utils import timezone
 
-from . import engine, signals
-from .models import BenchmarkSplit, ClassScore, Evaluation, PredictionFile, Scorecard, SliceScore
-from .storage import TooLarge, local_path, spool
+from . import engine, jobs, signals
+from .models import BenchmarkSplit, Evaluation, PredictionFile
+from .storage import (
+    ContentMismatch,
+    TooLarge,
+    check_sha256,
+    local_path,
+    spool,
+    verified_path,
+)
 
 log = logging.getLogger(__name__)
 
@@ -126,7 +132,24 @@ def load_split(*, name, revision, truth, images=None, description="", created_by
 
 def load_truth_of(split, boxes="keep"):
     """The split's ground truth as engine columns (from the columnar cache), loaded
-    under the box policy ``boxes`` (``engine.BOX_POLICIES``)."""
+    under the box policy ``boxes`` (``engine.BOX_POLICIES``) and checked against the
+    split's recorded content hash: ContentMismatch if the stored files, or a cache
+    entry, no longer hold the frozen content."""
+    truth = _read_truth(split, boxes)
+    actual = truth.content_hash()
+    if actual != split.sha256 and boxes != "keep":  # the hash was taken as frozen ("keep")
+        actual = _read_truth(split, "keep").content_hash()
+    check_sha256(
+        f"split:{split.pk}",
+        "split content",
+        f"{split} ({os.path.basename(split.truth_file.name)})",
+        split.sha256,
+        actual,
+    )
+    return truth
+
+
+def _read_truth(split, boxes):
     with local_path(split.truth_file) as truth_path:
         if split.images_file:
             with local_path(split.images_file) as images_path:
@@ -134,6 +157,14 @@ def load_truth_of(split, boxes="keep"):
                     truth_path, images=images_path, cache_dir=_cache_dir(), boxes=boxes
                 )
         return engine.load_truth(truth_path, cache_dir=_cache_dir(), boxes=boxes)
+
+
+def load_records(scorecard):
+    """A scorecard's match records, their file checked against its recorded SHA-256."""
+    with verified_path(
+        scorecard.records, scorecard.records_sha256, f"scorecard:{scorecard.pk}", "records file"
+    ) as path:
+        return engine.MatchRecords.load(path)
 
 
 # Predictions ----------------------------------------------------------------------
@@ -202,6 +233,8 @@ def received_predictions(uploaded, split, *, boxes="keep"):
             except engine.InputError as e:
                 e.argument = "predictions"  # the request field, for API error bodies
                 raise
+            except ContentMismatch as e:  # the split's stored truth changed (audited)
+                raise UploadError(f"{split} cannot be used: {e}") from None
         try:
             yield received
         except BaseException:
@@ -277,203 +310,18 @@ def dispatch(evaluation_id):
 
 
 def requeue_stalled():
-    """Send again what the queue lost: evaluations queued for too long, and running
-    ones whose worker stopped reporting (it crashed or was killed)."""
-    now = timezone.now()
-    queued_before = now - datetime.timedelta(seconds=settings.BENCHBOOK_QUEUED_GRACE_SECONDS)
-    running_before = now - datetime.timedelta(seconds=settings.BENCHBOOK_RUNNING_TIMEOUT_SECONDS)
-    stalled = list(
-        Evaluation.objects.filter(
-            state=Evaluation.State.QUEUED, queued_at__lt=queued_before
-        ).values_list("pk", flat=True)
-    )
-    stalled += list(
-        Evaluation.objects.filter(
-            state=Evaluation.State.RUNNING, started_at__lt=running_before
-        ).values_list("pk", flat=True)
-    )
-    with transaction.atomic():
-        Evaluation.objects.filter(pk__in=stalled).update(
-            state=Evaluation.State.QUEUED, queued_at=now
-        )
-        for pk in stalled:
-            dispatch(pk)
-    return stalled
+    """The beat sweep: requeue what a dead worker or the broker lost (``jobs``), send it."""
+    requeued = jobs.requeue_stalled()
+    for pk in requeued:
+        dispatch(pk)
+    return requeued
 
 
 # Scoring --------------------------------------------------------------------------
 
 
-def _claim(evaluation_id, claim):
-    """Mark the evaluation running for this delivery, or say why not (None)."""
-    with transaction.atomic():
-        evaluation = Evaluation.objects.select_for_update().get(pk=evaluation_id)
-        if evaluation.finished:
-            return None
-        fresh = (
-            evaluation.started_at
-            and timezone.now() - evaluation.started_at
-            < datetime.timedelta(seconds=settings.BENCHBOOK_RUNNING_TIMEOUT_SECONDS)
-        )
-        if (
-            evaluation.state == Evaluation.State.RUNNING
-            and fresh
-            and claim != evaluation.claimed_by
-        ):
-            return None  # another delivery is scoring it right now
-        if evaluation.attempts >= settings.BENCHBOOK_MAX_ATTEMPTS:
-            _fail(evaluation, f"gave up after {evaluation.attempts} attempts that did not finish")
-            return None
-        evaluation.state = Evaluation.State.RUNNING
-        evaluation.attempts += 1
-        evaluation.started_at = timezone.now()
-        evaluation.progress = 5
-        evaluation.claimed_by = claim or ""
-        evaluation.save(update_fields=["state", "attempts", "started_at", "progress", "claimed_by"])
-        return evaluation
-
-
-def _progress(evaluation, percent):
-    Evaluation.objects.filter(pk=evaluation.pk).update(progress=percent)
-
-
-def _fail(evaluation, message, detail=None):
-    evaluation.state = Evaluation.State.FAILED
-    evaluation.error = message
-    evaluation.error_detail = detail
-    evaluation.finished_at = timezone.now()
-    evaluation.save(update_fields=["state", "error", "error_detail", "finished_at"])
-    transaction.on_commit(lambda: signals.evaluation_failed.send(Evaluation, evaluation=evaluation))
-
-
 def run_evaluation(evaluation_id, claim=None):
-    """Score one evaluation; a finished one is left alone (idempotent).
+    """Score one evaluation (``scoring.run_evaluation``, the worker's entry point)."""
+    from .scoring import run_evaluation
 
-    ``claim`` identifies the delivery (the task id): a redelivery of the same
-    message after a crash restarts the evaluation; a duplicate message while it is
-    being scored is dropped. Bad input ends the evaluation as failed with the
-    engine's message and no result rows.
-    """
-    evaluation = _claim(evaluation_id, claim)
-    if evaluation is None:
-        return Evaluation.objects.get(pk=evaluation_id)
-    split, prediction_file = evaluation.split, evaluation.predictions
-    protocol = engine.get_protocol(evaluation.protocol)
-    try:
-        truth = load_truth_of(split, evaluation.box_policy)
-        _progress(evaluation, 25)
-        with local_path(prediction_file.file) as path:
-            predictions = _load_predictions(
-                path, truth, prediction_file.original_name, evaluation.box_policy
-            )
-        _progress(evaluation, 50)
-        records = engine.match(truth, predictions, protocol)
-        _progress(evaluation, 75)
-        tag_masks = {tag: truth.tag_mask(tag) for tag in truth.tags()}
-        result = engine.score_records(records, protocol, tag_masks=tag_masks)
-    except engine.InputError as e:
-        e.path = os.path.basename(e.path)  # stored under its original name
-        with transaction.atomic():
-            _fail(evaluation, str(e), e.as_dict())
-        return evaluation
-    engine.annotate(result, truth, predictions, records, protocol)
-    _store(evaluation, result, records, len(predictions))
-    return evaluation
-
-
-def _store(evaluation, result, records, record_count):
-    with tempfile.TemporaryDirectory() as work:
-        records_path = os.path.join(work, f"evaluation-{evaluation.pk}.npz")
-        records.save(records_path)
-        with transaction.atomic():
-            scorecard = Scorecard(
-                evaluation=evaluation,
-                protocol=result["protocol"],
-                protocol_version=result["protocol_version"],
-                engine_version=result["engine_version"],
-                split_sha256=evaluation.split.sha256,
-                predictions_sha256=evaluation.predictions.sha256,
-                summary=result["summary"],
-                result=result,
-            )
-            with open(records_path, "rb") as f:
-                scorecard.records.save(os.path.basename(records_path), File(f), save=False)
-            scorecard.save()
-            ClassScore.objects.bulk_create(_class_rows(scorecard, result))
-            SliceScore.objects.bulk_create(_slice_rows(scorecard, result))
-            PredictionFile.objects.filter(pk=evaluation.predictions_id).update(
-                record_count=record_count
-            )
-            evaluation.state = Evaluation.State.DONE
-            evaluation.progress = 100
-            evaluation.engine_version = result["engine_version"]
-            evaluation.finished_at = timezone.now()
-            evaluation.save(update_fields=["state", "progress", "engine_version", "finished_at"])
-            transaction.on_commit(
-                lambda: signals.evaluation_finished.send(Evaluation, evaluation=evaluation)
-            )
-
-
-def _mean_of(rows, key):
-    present = [row[key] for row in rows if row.get(key) is not None]
-    return sum(present) / len(present) if present else None
-
-
-def _class_rows(scorecard, result):
-    """One row per class, plus the mean row (class_name ''): the protocol's own means
-    where it has them, else the mean over present classes."""
-    summary, rows = result["summary"], list(result["per_class"].values())
-
-    def first(*keys):
-        return next((summary[k] for k in keys if summary.get(k) is not None), None)
-
-    yield ClassScore(
-        scorecard=scorecard,
-        class_name="",
-        ap=summary.get("AP"),
-        ap50=first("AP50") if "AP50" in summary else _mean_of(rows, "AP50"),
-        ap75=first("AP75") if "AP75" in summary else _mean_of(rows, "AP75"),
-        recall=first("AR100", "recall"),
-        gt=sum(row["gt"] for row in rows),
-        tp=sum(row["tp"] for row in rows),
-        fp=sum(row["fp"] for row in rows),
-        miss_rate=_mean_of(rows, "miss_rate"),
-    )
-    for name, row in result["per_class"].items():
-        best = row.get("best_f1") or {}
-        yield ClassScore(
-            scorecard=scorecard,
-            class_name=name,
-            ap=row["AP"],
-            ap50=row.get("AP50"),
-            ap75=row.get("AP75"),
-            recall=row["recall"],
-            gt=row["gt"],
-            tp=row["tp"],
-            fp=row["fp"],
-            best_f1=best.get("f1"),
-            best_f1_threshold=best.get("threshold"),
-            miss_rate=row["miss_rate"],
-        )
-
-
-def _slice_rows(scorecard, result):
-    for kind, slices in result["slices"].items():
-        for name, entry in slices.items():
-            yield SliceScore(
-                scorecard=scorecard,
-                kind=kind,
-                name=name,
-                class_name="",
-                ap=entry["AP"],
-                images=entry.get("images"),
-            )
-            for class_name, ap in entry["per_class"].items():
-                yield SliceScore(
-                    scorecard=scorecard,
-                    kind=kind,
-                    name=name,
-                    class_name=class_name,
-                    ap=ap,
-                    images=entry.get("images"),
-                )
+    return run_evaluation(evaluation_id, claim)

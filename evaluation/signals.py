@@ -8,3 +8,4 @@ from django.dispatch import Signal
 split_frozen = Signal()  # split
 evaluation_finished = Signal()  # evaluation
 evaluation_failed = Signal()  # evaluation
+content_mismatch = Signal()  # subject ("split:3"), error (storage.ContentMismatch)

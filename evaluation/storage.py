@@ -15,6 +15,62 @@ def predictions_path(instance, filename):
     return f"predictions/{instance.sha256[:2]}/{instance.sha256}/{os.path.basename(filename)}"
 
 
+_BLOCK = 1 << 20
+
+
+class ContentMismatch(Exception):
+    """A stored file no longer holds the content whose SHA-256 was recorded with it."""
+
+    def __init__(self, what, name, expected, actual):
+        super().__init__(
+            f"{what} does not match its hash: {name} should have SHA-256 {expected[:16]}…, "
+            f"it has {actual[:16]}… (changed in storage after it was recorded)"
+        )
+        self.what, self.name, self.expected, self.actual = what, name, expected, actual
+
+    def as_dict(self):
+        return {
+            "what": self.what,
+            "file": self.name,
+            "expected_sha256": self.expected,
+            "actual_sha256": self.actual,
+        }
+
+
+def file_sha256(path):
+    digest = hashlib.sha256()
+    with open(path, "rb") as f:
+        while block := f.read(_BLOCK):
+            digest.update(block)
+    return digest.hexdigest()
+
+
+def check_sha256(subject, what, name, expected, actual):
+    """Raise ContentMismatch (and signal it, for the audit trail) when the hashes differ.
+
+    ``subject`` names the row (``split:3``); a missing ``expected`` (recorded before
+    hashes were kept) checks nothing.
+    """
+    if expected and actual != expected:
+        from . import signals
+
+        error = ContentMismatch(what, name, expected, actual)
+        signals.content_mismatch.send(ContentMismatch, subject=subject, error=error)
+        raise error
+
+
+@contextlib.contextmanager
+def verified_path(field_file, expected, subject, what):
+    """``local_path`` of a stored file whose bytes were hashed against ``expected`` just
+    before use (ContentMismatch if they differ). The engine's cache is keyed by the
+    SHA-256 of the bytes it reads, so a changed file is never served from an entry
+    made for the old one."""
+    with local_path(field_file) as path:
+        name = os.path.basename(field_file.name)
+        check_sha256(subject, what, name, expected, file_sha256(path))
+        yield path
+
+
 @contextlib.contextmanager
 def local_path(field_file):
     """A filesystem path for a stored file: the file itself when the storage is a

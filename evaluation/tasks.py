@@ -1,22 +1,18 @@
-"""Celery tasks: thin callers of ``services``; they take ids and are idempotent."""
+"""Celery tasks: thin callers of ``services``; they take ids and are idempotent.
+
+Retries live in ``evaluation.jobs`` (database outages, over a time window) and in the
+beat sweep (lost messages, dead workers), not in Celery's retry counter.
+"""
 
 from celery import shared_task
-from django.db import OperationalError
 
-from . import services
+from . import scoring, services
 
 
-@shared_task(
-    bind=True,
-    acks_late=True,
-    autoretry_for=(OperationalError,),
-    retry_backoff=True,
-    retry_backoff_max=300,
-    max_retries=5,
-)
+@shared_task(bind=True, acks_late=True)
 def score(self, evaluation_id):
     """Score one evaluation (a finished one is a no-op)."""
-    services.run_evaluation(evaluation_id, claim=self.request.id)
+    scoring.run_evaluation(evaluation_id, claim=self.request.id)
 
 
 @shared_task

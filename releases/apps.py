@@ -17,6 +17,9 @@ class ReleasesConfig(AppConfig):
         evaluation_signals.evaluation_failed.connect(
             signals.evaluation_failed, dispatch_uid="audit-failed"
         )
+        evaluation_signals.content_mismatch.connect(
+            signals.content_mismatch, dispatch_uid="audit-content-mismatch"
+        )
         for signal in (
             evaluation_signals.evaluation_finished,
             evaluation_signals.evaluation_failed,

@@ -16,10 +16,8 @@ from django.conf import settings
 from django.core.exceptions import PermissionDenied
 from django.db import transaction
 
-from evaluation import engine
 from evaluation.models import BenchmarkSplit, ClassScore, Scorecard, SliceScore
-from evaluation.services import UploadError, load_truth_of
-from evaluation.storage import local_path
+from evaluation.services import UploadError, load_records, load_truth_of
 
 from . import audit, selectors
 from .models import AuditEvent, Membership, Outcome, ReleaseCriteria
@@ -168,8 +166,7 @@ def _value(card, metric, name, tag):
 
 
 def _records(card):
-    with local_path(card.records) as path:
-        return engine.MatchRecords.load(path)
+    return load_records(card)
 
 
 def _intervals(candidate_card, baseline_card, tag, confidence):

@@ -152,6 +152,7 @@ class AuditEvent(models.Model):
         SIGNED_OFF = "signed off"
         REJECTED = "rejected"
         OVERRIDE = "override"
+        CONTENT_MISMATCH = "content mismatch"
 
     kind = models.CharField(max_length=24, choices=Kind.choices)
     actor = models.CharField(max_length=150, help_text="Username, or 'system' for workers.")

@@ -96,10 +96,9 @@ def email_leads(version, body):
     )
 
 
-def post_webhook(detector, body, *, attempts=None, delay=None):
-    """POST the JSON body, signed; retried with exponential back-off, then WebhookError."""
-    attempts = attempts or settings.BENCHBOOK_WEBHOOK_ATTEMPTS
-    delay = settings.BENCHBOOK_WEBHOOK_BACKOFF_SECONDS if delay is None else delay
+def post_once(detector, body):
+    """One signed POST of the JSON body, waiting at most BENCHBOOK_WEBHOOK_TIMEOUT_SECONDS
+    per network operation; WebhookError with the reason if it was not accepted (2xx)."""
     data = json.dumps(body, sort_keys=True).encode()
     request = urllib.request.Request(
         detector.webhook_url,
@@ -110,24 +109,64 @@ def post_webhook(detector, body, *, attempts=None, delay=None):
             SIGNATURE_HEADER: signature(detector.webhook_secret, data),
         },
     )
+    try:
+        timeout = settings.BENCHBOOK_WEBHOOK_TIMEOUT_SECONDS
+        with urllib.request.urlopen(request, timeout=timeout) as response:
+            if 200 <= response.status < 300:
+                return
+            reason = f"HTTP {response.status}"
+    except urllib.error.HTTPError as e:
+        reason = f"HTTP {e.code}"
+    except (urllib.error.URLError, OSError) as e:
+        reason = str(getattr(e, "reason", e))
+    raise WebhookError(f"webhook {detector.webhook_url}: {reason}")
+
+
+def backoff(attempt):
+    """Seconds before webhook attempt ``attempt + 1``: doubling from the base delay."""
+    return settings.BENCHBOOK_WEBHOOK_BACKOFF_SECONDS * 2 ** (attempt - 1)
+
+
+def post_webhook(detector, body, *, attempts=None, delay=None):
+    """POST the JSON body, signed; retried here with exponential back-off, then
+    WebhookError. (The notification task does not wait here: it queues each retry.)"""
+    attempts = attempts or settings.BENCHBOOK_WEBHOOK_ATTEMPTS
+    delay = settings.BENCHBOOK_WEBHOOK_BACKOFF_SECONDS if delay is None else delay
     last = None
     for attempt in range(attempts):
         try:
-            with urllib.request.urlopen(request, timeout=10) as response:
-                if 200 <= response.status < 300:
-                    return attempt + 1
-                last = f"HTTP {response.status}"
-        except urllib.error.HTTPError as e:
-            last = f"HTTP {e.code}"
-        except (urllib.error.URLError, OSError) as e:
-            last = str(getattr(e, "reason", e))
+            post_once(detector, body)
+            return attempt + 1
+        except WebhookError as e:
+            last = str(e).rpartition(": ")[2]
         if attempt + 1 < attempts:
             time.sleep(delay * 2**attempt)
     raise WebhookError(f"webhook {detector.webhook_url} failed after {attempts} attempts: {last}")
 
 
+def deliver(version, attempt=1):
+    """One run of the notification task: e-mail the leads (first run only) and try the
+    webhook once. Returns ``{"emails", "webhook", "retry_in"}``: ``retry_in`` is the
+    countdown for the next attempt, or None when delivered, not configured or given up
+    (then logged)."""
+    body = payload(version)
+    sent = email_leads(version, body) if attempt == 1 else 0
+    if not version.detector.webhook_url:
+        return {"emails": sent, "webhook": None, "retry_in": None}
+    try:
+        post_once(version.detector, body)
+        return {"emails": sent, "webhook": attempt, "retry_in": None}
+    except WebhookError as e:
+        if attempt < settings.BENCHBOOK_WEBHOOK_ATTEMPTS:
+            log.warning("%s (attempt %d); trying again later", e, attempt)
+            return {"emails": sent, "webhook": str(e), "retry_in": backoff(attempt)}
+        log.error("%s; gave up after %d attempts", e, attempt)
+        return {"emails": sent, "webhook": str(e), "retry_in": None}
+
+
 def notify(version):
-    """E-mail the leads and call the webhook; a failing webhook is logged, not fatal."""
+    """E-mail the leads and call the webhook, retrying here; a failing webhook is
+    logged, not fatal. For scripts and tests: judging queues ``tasks.notify``."""
     body = payload(version)
     sent = email_leads(version, body)
     delivered = None

@@ -44,6 +44,16 @@ def evaluation_failed(sender, evaluation, **kwargs):
     )
 
 
+def content_mismatch(sender, subject, error, **kwargs):
+    """A stored file (split, predictions, records) no longer matches its recorded hash."""
+    audit.record_event(
+        AuditEvent.Kind.CONTENT_MISMATCH,
+        "system",
+        subject,
+        {"message": str(error), **error.as_dict()},
+    )
+
+
 def judge_when_complete(sender, evaluation, **kwargs):
     """Once every evaluation of a version has finished, judge it (on commit)."""
     from .models import PredictionSet

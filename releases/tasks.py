@@ -1,6 +1,14 @@
 """Celery tasks of releases: thin, idempotent, ids only."""
 
+import logging
+
 from celery import shared_task
+from django.conf import settings
+
+from . import notify as notifications
+from .models import ModelVersion
+
+log = logging.getLogger(__name__)
 
 
 @shared_task(acks_late=True)
@@ -22,6 +30,30 @@ def rejudge(detector_id):
     for version_id in version_ids:
         services._send(judge, version_id)
     return version_ids
+
+
+def queue_notification(version_id, attempt=1, countdown=0):
+    try:
+        notify.apply_async(args=[version_id, attempt], countdown=countdown)
+    except Exception:  # broker down: judging stands, the message is not sent
+        log.exception("could not queue the notification of version %s", version_id)
+
+
+@shared_task(
+    acks_late=True,
+    soft_time_limit=4 * settings.BENCHBOOK_WEBHOOK_TIMEOUT_SECONDS + 10,
+    time_limit=4 * settings.BENCHBOOK_WEBHOOK_TIMEOUT_SECONDS + 20,
+)
+def notify(version_id, attempt=1):
+    """Tell the team about a version's judgement (``notify.deliver``): one webhook
+    attempt per run; the next one is a new message with a countdown, not a sleep."""
+    version = ModelVersion.objects.select_related("detector").filter(pk=version_id).first()
+    if version is None:
+        return None
+    result = notifications.deliver(version, attempt)
+    if result["retry_in"] is not None:
+        queue_notification(version_id, attempt + 1, result["retry_in"])
+    return result
 
 
 @shared_task

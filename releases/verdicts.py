@@ -324,10 +324,8 @@ def _record(version, inputs, verdict, reasons, outcomes):
 
 
 def _notify(version_id):
-    from . import notify
+    """Queue the notification task: a slow e-mail server or webhook never holds judging
+    (nor the worker behind it); a broker that is down loses only the message."""
+    from .tasks import queue_notification
 
-    version = ModelVersion.objects.select_related("detector").get(pk=version_id)
-    try:
-        notify.notify(version)
-    except Exception:  # noqa: BLE001 - a notification never undoes a judgement
-        log.exception("notifying the judgement of %s failed", version)
+    queue_notification(version_id)

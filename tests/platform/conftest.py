@@ -113,6 +113,7 @@ def run_tasks(monkeypatch, django_capture_on_commit_callbacks):
     monkeypatch.setattr(tasks.score, "delay", delay)
     monkeypatch.setattr(release_tasks.judge, "delay", judge)
     monkeypatch.setattr(release_tasks.rejudge, "delay", rejudge)
+    monkeypatch.setattr(release_tasks.notify, "apply_async", in_process_async(release_tasks.notify))
 
     class Runner:
         def __call__(self, fn, *args, **kwargs):
@@ -142,6 +143,16 @@ def in_process(task):
     return delay
 
 
+def in_process_async(task):
+    """An ``apply_async`` that runs the task here at once (the countdown is not waited)."""
+
+    def apply_async(args=(), kwargs=None, countdown=None, **options):
+        args = json.loads(json.dumps(list(args)))
+        task.apply(args=args, kwargs=kwargs, task_id=str(uuid.uuid4()), throw=True)
+
+    return apply_async
+
+
 def committed_for_module(django_db_blocker, tmp_path_factory, build):
     """For a module-scoped fixture: ``build()``'s rows committed once for the module
     (set up per test they would cost more than the tests), tasks run in-process, then
@@ -161,6 +172,7 @@ def committed_for_module(django_db_blocker, tmp_path_factory, build):
     ):
         patch.setattr(tasks.score, "delay", in_process(tasks.score))
         patch.setattr(release_tasks.judge, "delay", in_process(release_tasks.judge))
+        patch.setattr(release_tasks.notify, "apply_async", in_process_async(release_tasks.notify))
         cache.clear()  # throttle counters
         triggers.install(connection)
         audit_triggers.install(connection)

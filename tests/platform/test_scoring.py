@@ -79,9 +79,13 @@ def test_a_crashed_run_restarts_on_redelivery(version, split, split_truth, users
         version, split, upload("p.json", detections_for(split_truth)), users["engineer"]
     )
     evaluation = Evaluation.objects.filter(predictions=prediction_set.predictions).first()
-    # A worker took it and died: state running, claimed by its delivery.
+    # A worker took it and died: state running, claimed by its delivery, lease still live.
     Evaluation.objects.filter(pk=evaluation.pk).update(
-        state="running", attempts=1, started_at=timezone.now(), claimed_by="delivery-1"
+        state="running",
+        attempts=1,
+        started_at=timezone.now(),
+        claimed_by="delivery-1#1",
+        lease_expires_at=timezone.now() + datetime.timedelta(minutes=1),
     )
     # A duplicate message (another delivery) while it looks alive is dropped...
     evaluation_services.run_evaluation(evaluation.pk, claim="delivery-2")
@@ -142,7 +146,10 @@ def test_a_stalled_running_evaluation_is_requeued(
         )
     evaluation = Evaluation.objects.filter(predictions=prediction_set.predictions).first()
     Evaluation.objects.filter(pk=evaluation.pk).update(
-        state="running", started_at=timezone.now() - datetime.timedelta(days=1), claimed_by="dead"
+        state="running",
+        started_at=timezone.now() - datetime.timedelta(minutes=5),
+        lease_expires_at=timezone.now() - datetime.timedelta(seconds=1),
+        claimed_by="dead#1",
     )
     run_tasks(evaluation_services.requeue_stalled)
     evaluation.refresh_from_db()

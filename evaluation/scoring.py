@@ -1,0 +1,145 @@
+"""The worker's scoring path: claim, score under a lease, store only while holding the
+claim (``jobs``); every run ends ``done`` or ``failed`` with a readable cause."""
+
+import logging
+import os
+import tempfile
+
+from django.core.files import File
+from django.db import transaction
+from django.utils import timezone
+
+from . import engine, jobs, signals
+from .models import ClassScore, Evaluation, PredictionFile, Scorecard, SliceScore
+from .rows import class_rows, slice_rows
+from .services import _load_predictions, load_truth_of
+from .storage import ContentMismatch, file_sha256, verified_path
+
+log = logging.getLogger(__name__)
+
+
+def run_evaluation(evaluation_id, claim=None):
+    """Score one evaluation; a finished one is left alone (idempotent).
+
+    ``claim`` identifies the delivery (the task id); ``jobs.claim`` decides whether
+    this delivery may score it. Every run ends the evaluation ``done`` or ``failed``
+    with a message for its users — bad input with the engine's message (file, record,
+    field), stored content that no longer matches its hash loudly, any other error
+    with its type and text (traceback to the log), because retrying cannot help. Only
+    database outages are retried (``jobs.with_retry``); past that window the sweep
+    requeues the evaluation when its lease runs out.
+    """
+    evaluation = jobs.claim(evaluation_id, claim)
+    if evaluation is None:
+        return Evaluation.objects.get(pk=evaluation_id)
+    try:
+        with jobs.Lease(evaluation):
+            result, records, record_count = _score(evaluation)
+            _store(evaluation, result, records, record_count)
+    except engine.InputError as e:
+        e.path = os.path.basename(e.path)  # stored under its original name
+        jobs.fail(evaluation, str(e), e.as_dict())
+    except ContentMismatch as e:
+        log.error("evaluation %s: %s", evaluation.pk, e)
+        jobs.fail(evaluation, str(e), e.as_dict())
+    except jobs.ClaimLost as e:
+        log.info("evaluation %s: result dropped, %s", evaluation.pk, e)
+    except jobs.TRANSIENT:
+        raise  # past the retry window: the sweep requeues it when the lease runs out
+    except Exception as e:
+        log.exception("evaluation %s: unexpected error while scoring", evaluation.pk)
+        jobs.fail(
+            evaluation,
+            f"scoring {evaluation.predictions.original_name} on {evaluation.split} stopped on "
+            f"an unexpected error ({type(e).__name__}: {e}); a retry would fail the same way "
+            "(the traceback is in the worker log)",
+            {"exception": type(e).__name__, "message": str(e)},
+        )
+    return evaluation
+
+
+def _score(evaluation):
+    split, prediction_file = evaluation.split, evaluation.predictions
+    protocol = engine.get_protocol(evaluation.protocol)
+    truth = load_truth_of(split, evaluation.box_policy)
+    jobs.progress(evaluation, 25)
+    with verified_path(
+        prediction_file.file,
+        prediction_file.sha256,
+        f"predictions:{prediction_file.pk}",
+        "predictions file",
+    ) as path:
+        predictions = _load_predictions(
+            path, truth, prediction_file.original_name, evaluation.box_policy
+        )
+    jobs.progress(evaluation, 50)
+    records = engine.match(truth, predictions, protocol)
+    jobs.progress(evaluation, 75)
+    tag_masks = {tag: truth.tag_mask(tag) for tag in truth.tags()}
+    result = engine.score_records(records, protocol, tag_masks=tag_masks)
+    engine.annotate(result, truth, predictions, records, protocol)
+    return result, records, len(predictions)
+
+
+def _store(evaluation, result, records, record_count):
+    """Write the result, if this run still holds the claim: the check and every row in
+    one transaction with the evaluation locked. The records file is written inside it
+    and deleted if the transaction does not commit (no orphan files)."""
+    with tempfile.TemporaryDirectory() as work:
+        records_path = os.path.join(work, f"evaluation-{evaluation.pk}.npz")
+        records.save(records_path)
+        records_sha256 = file_sha256(records_path)
+
+        def write():
+            scorecard = Scorecard(
+                evaluation=evaluation,
+                protocol=result["protocol"],
+                protocol_version=result["protocol_version"],
+                engine_version=result["engine_version"],
+                split_sha256=evaluation.split.sha256,
+                predictions_sha256=evaluation.predictions.sha256,
+                summary=result["summary"],
+                result=result,
+                records_sha256=records_sha256,
+            )
+            try:
+                with transaction.atomic():
+                    jobs.lock_if_held(evaluation)
+                    with open(records_path, "rb") as f:
+                        scorecard.records.save(os.path.basename(records_path), File(f), save=False)
+                    scorecard.save()
+                    ClassScore.objects.bulk_create(class_rows(scorecard, result))
+                    SliceScore.objects.bulk_create(slice_rows(scorecard, result))
+                    PredictionFile.objects.filter(pk=evaluation.predictions_id).update(
+                        record_count=record_count
+                    )
+                    evaluation.state = Evaluation.State.DONE
+                    evaluation.progress = 100
+                    evaluation.engine_version = result["engine_version"]
+                    evaluation.lease_expires_at = None
+                    evaluation.finished_at = timezone.now()
+                    evaluation.save(
+                        update_fields=[
+                            "state",
+                            "progress",
+                            "engine_version",
+                            "lease_expires_at",
+                            "finished_at",
+                        ]
+                    )
+                    transaction.on_commit(
+                        lambda: signals.evaluation_finished.send(Evaluation, evaluation=evaluation)
+                    )
+            except BaseException:
+                if scorecard.records.name:  # written, but the rows were not: no orphan file
+                    _delete_quietly(scorecard.records)
+                raise
+
+        jobs.with_retry(write, f"storing the result of evaluation {evaluation.pk}")
+
+
+def _delete_quietly(field_file):
+    try:
+        field_file.storage.delete(field_file.name)
+    except OSError:
+        log.exception("could not delete %s after a failed store", field_file.name)

@@ -1,0 +1,36 @@
+"""A Celery worker with faults injected from the environment; for test_faults.py only.
+
+``python -m tests.platform.fault_worker <celery arguments>``, with
+``BENCHBOOK_FAULT_SLOW_MATCH=<seconds>`` (matching waits that long first: time to kill
+the worker or cut the database mid-scoring) and/or ``BENCHBOOK_FAULT_RAISE=<builtin
+exception name>`` (matching raises it: an error the engine does not expect).
+"""
+
+import builtins
+import os
+import sys
+import time
+
+
+def install_faults():
+    from evaluation import engine
+
+    match = engine.match
+    slow = float(os.environ.get("BENCHBOOK_FAULT_SLOW_MATCH", 0))
+    error = os.environ.get("BENCHBOOK_FAULT_RAISE", "")
+
+    def faulty_match(*args, **kwargs):
+        if error:
+            raise getattr(builtins, error)("Python int too large to convert to C long")
+        time.sleep(slow)
+        return match(*args, **kwargs)
+
+    engine.match = faulty_match
+
+
+if __name__ == "__main__":
+    install_faults()
+    from celery.__main__ import main
+
+    sys.argv = ["celery", *sys.argv[1:]]
+    sys.exit(main())
