@@ -482,3 +482,28 @@ def test_a_file_without_record_boundaries_stops_early(files, monkeypatch):
     path = files.write("string.json", '[{"image_id": "' + "x" * 100_000 + '"}]')
     with pytest.raises(InputError, match=r"string\.json: record 0: no record ends within"):
         load_predictions(path, _truth(files))
+
+
+def test_cache_keeps_box_policies_apart(files, tmp_path):
+    """A split cached under keep is not served to reject (the policy is in the key)."""
+    cache = tmp_path / "cache"
+    path = files.write("split.json", _with(**{"annotations.1.bbox": [600, 10, 100, 30]}))
+    assert load_truth(path, cache_dir=cache).box_counts["out_of_frame"] == 1
+    with pytest.raises(InputError, match=r"box policy: reject"):
+        load_truth(path, cache_dir=cache, boxes="reject")
+    truth = load_truth(path, cache_dir=cache)
+    pred = files.write("p.json", [{**DET, "bbox": [630, 10, 30, 30]}])
+    kept = load_predictions(pred, truth, cache_dir=cache)
+    clipped = load_predictions(pred, truth, cache_dir=cache, boxes="clip")
+    assert kept.boxes[0, 2] == 30 and clipped.boxes[0, 2] == 10
+
+
+def test_syntax_error_in_a_later_slice_names_its_line_and_column(files, monkeypatch):
+    """Slices are decoded in place; the position of an error is still the file's."""
+    monkeypatch.setattr(coco_json, "CHUNK_BYTES", 300)
+    lines = [json.dumps(DET) + "," for _ in range(200)]
+    lines[150] = lines[150].replace('"score"', '"score" 0.5 x', 1)
+    text = "[\n" + "\n".join(lines) + "\n" + json.dumps(DET) + "]"
+    column = lines[150].index("0.5") + 1  # where the colon should be
+    with pytest.raises(InputError, match=rf"not valid JSON: .* at line 152, column {column}"):
+        load_predictions(files.write("p.json", text), _truth(files))

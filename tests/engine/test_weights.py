@@ -215,3 +215,20 @@ def test_ties_inside_one_image_follow_the_copies(files, protocol):
     dup_split, dup_dets = _duplicate_for(protocol)(split, detections, {1: 3, 2: 1})
     duplicated = evaluate(*files.load(dup_split, dup_dets), protocol, tag_slices=False)
     assert _numbers(weighted) == _numbers(duplicated)
+
+
+def test_records_saved_before_tie_orders_load_as_image_order(files, tmp_path):
+    """Match records stored by engine 2.0 and earlier have no tie_order: they were all
+    accumulated in image order, and load so (re-scoring old records keeps its numbers)."""
+    from evaluation.engine import MatchRecords
+
+    _, split, detections = _scenario(9)
+    truth, predictions = files.load(split, detections)
+    records = match(truth, predictions, "voc")
+    path = tmp_path / "new.npz"
+    records.save(path)
+    assert MatchRecords.load(path).tie_order == "file"
+    with np.load(path) as data:
+        old = {k: data[k] for k in data.files if k != "tie_order"}
+    np.savez_compressed(tmp_path / "old.npz", **old)
+    assert MatchRecords.load(tmp_path / "old.npz").tie_order == "image"

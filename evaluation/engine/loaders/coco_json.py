@@ -199,9 +199,15 @@ def _columns(records, path="", base=0):
     def locate(i):
         return f"record {base + i}"
 
+    def ids(values, field):
+        try:
+            return np.fromiter(values, np.int64, n)
+        except OverflowError:  # locate the id outside int64
+            return int_column(path, [getattr(r, field) for r in records], locate, field)
+
     return (
-        int_column(path, [r.image_id for r in records], locate, "image_id"),
-        int_column(path, [r.category_id for r in records], locate, "category_id"),
+        ids((r.image_id for r in records), "image_id"),
+        ids((r.category_id for r in records), "category_id"),
         np.array([r.bbox for r in records], np.float64).reshape(-1, 4),
         np.fromiter((r.score for r in records), np.float64, n),
     )
@@ -246,7 +252,8 @@ def _last_cut(buf, lowest):
 
 
 def _piece_error(path, error, buf, where, shift):
-    """An InputError for a slice ``b"[" + buf...`` that failed at its byte ``k + shift``."""
+    """An InputError for a slice of ``buf`` (decoded with ``shift`` bytes in front of
+    it) that failed at its byte ``k + shift``."""
     text = str(error)
     if "truncated" in text:
         return InputError(path, "the JSON ends early: the file looks truncated")
@@ -292,12 +299,15 @@ def _stream(path, f, skip, build=True):
             where.advance(buf[:lead])
             raise _piece_error(path, e, buf[lead:], where, 0) from None
         raise InputError(path, "expected a JSON array of detections")
-    where.advance(buf[: lead + 1])
-    buf = buf[lead + 1 :]
-    base, lowest, eof = 0, 0, False
+    # buf[0] is always "[": the array's own bracket, later the comma before the next
+    # record, overwritten. A slice is decoded in place: the byte after its last "}" is
+    # set to "]" for the call and restored, so no slice is ever copied.
+    where.advance(buf[:lead])
+    buf = bytearray(buf[lead:])
+    base, lowest, eof = 0, 1, False
     while True:
         if eof:
-            piece = b"[" + buf  # the rest, closing bracket included
+            end = len(buf)  # the rest, closing bracket included
         else:
             cut = _last_cut(buf, lowest)
             if cut is None:
@@ -307,43 +317,54 @@ def _stream(path, f, skip, build=True):
                 eof = not more
                 buf += more
                 continue
-            piece = b"[" + buf[: cut[0]] + b"]"
+            end = cut[0] + 1
+            saved, buf[cut[0]] = buf[cut[0]], 0x5D  # "]"
+        view = memoryview(buf)[:end]
         try:
-            records = _decode_slice(piece)
+            records = _decode_slice(view)
         except msgspec.ValidationError as e:
             raise validation_error(path, e, top_level_list=True, base=base) from None
         except msgspec.DecodeError as e:
             m = re.search(r"\(byte (\d+)\)", str(e))
-            at_end = "truncated" in str(e) or (m and int(m.group(1)) >= len(piece) - 1)
+            at_end = "truncated" in str(e) or (m and int(m.group(1)) >= end - 1)
             if not eof and at_end:  # maybe a cut inside a string: take more
+                view.release()
+                buf[cut[0]] = saved
                 lowest = len(buf)
                 more = f.read(CHUNK_BYTES)
                 eof = not more
                 buf += more
                 continue
-            raise _piece_error(path, e, buf, where, 1) from None
+            view.release()
+            if not eof:
+                buf[cut[0]] = saved
+            raise _piece_error(path, e, buf, where, 0) from None
+        finally:
+            view.release()
         yield _columns(records, path, base) if build else len(records)
         if eof:
             return
         base += len(records)
-        where.advance(buf[: cut[1]])
-        buf = buf[cut[1] :]
-        lowest = 0
+        comma = cut[1] - 1
+        where.advance(buf[:comma])
+        del buf[:comma]
+        buf[0] = 0x5B  # "["
+        lowest = 1
         more = f.read(CHUNK_BYTES)
         eof = not more
         buf += more
 
 
 def _check_prefix(path, buf, where, base):
-    """Raise the decoding error of ``[`` + buf unless it only ends early; give up past
-    ``MAX_SLICE_BYTES`` without a record boundary."""
+    """Raise the decoding error of buf (which starts with "[") unless it only ends
+    early; give up past ``MAX_SLICE_BYTES`` without a record boundary."""
     try:
-        _decode_slice(b"[" + buf)
+        _decode_slice(bytes(buf))
     except msgspec.ValidationError as e:
         raise validation_error(path, e, top_level_list=True, base=base) from None
     except msgspec.DecodeError as e:
         if "truncated" not in str(e):
-            raise _piece_error(path, e, buf, where, 1) from None
+            raise _piece_error(path, e, buf, where, 0) from None
     if len(buf) > MAX_SLICE_BYTES:
         raise InputError(
             path,
