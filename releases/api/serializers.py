@@ -64,6 +64,9 @@ class SplitSerializer(serializers.ModelSerializer):
 
 class SignOffSerializer(serializers.ModelSerializer):
     version = serializers.IntegerField(source="version_id")
+    judgement = serializers.IntegerField(
+        source="judgement_id", allow_null=True, help_text="The judgement the decision saw"
+    )
     decided_by = serializers.CharField(source="decided_by.username")
 
     class Meta:
@@ -75,6 +78,8 @@ class SignOffSerializer(serializers.ModelSerializer):
             "comment",
             "override",
             "justification",
+            "verdict",
+            "judgement",
             "failing_rules",
             "evidence",
             "decided_by",

@@ -77,6 +77,8 @@ def test_the_api_refuses_while_judging_and_without_justification(judging, users)
         format="json",
     )
     assert done.status_code == 201 and done.json()["override"] is True
+    assert done.json()["verdict"] == "regression"
+    assert done.json()["judgement"] == verdicts.verdict_of(judging).judgement.pk
 
 
 @pytest.mark.parametrize("model", [SignOff, Judgement, Outcome, BenchmarkSuite])
