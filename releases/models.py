@@ -118,6 +118,12 @@ class PredictionSet(models.Model):
     replaced_by = models.OneToOneField(
         "self", null=True, blank=True, on_delete=models.PROTECT, related_name="replaces"
     )
+    evaluations = models.ManyToManyField(
+        "evaluation.Evaluation",
+        related_name="prediction_sets",
+        blank=True,
+        help_text="The evaluations this upload asked for.",
+    )
 
     class Meta:
         constraints = [

@@ -148,7 +148,7 @@ def _record_set(version, split, received, user):
             "failed": failed,
         }
     audit.record_event(kind, user, f"prediction-set:{prediction_set.pk}", payload)
-    _request(version.detector, split, prediction_file)
+    request_for_set(prediction_set)
     # Bytes scored before (another version's identical file) trigger no new
     # evaluation, so nothing else would judge this version.
     judge_if_complete(version.pk)
@@ -160,17 +160,11 @@ def _replace_or_refuse(version, split, current):
     raise ``UploadConflict`` saying why it stays. Only a set whose evaluations all
     finished, at least one failed, of an undecided version may go; it is kept as
     history. Returns the failed evaluations ([{protocol, error}]) for the audit trail."""
-    from evaluation.models import Evaluation
-
     from .models import SignOff
 
     if current is None:
         return []
-    evaluations = list(
-        Evaluation.objects.filter(
-            predictions_id=current.predictions_id, split_id=current.split_id
-        ).order_by("protocol")
-    )
+    evaluations = list(current.evaluations.order_by("protocol"))
     states = sorted({e.state for e in evaluations})
     where = f"{version} already has predictions on {split} ({current.file_name})"
     if SignOff.objects.filter(version=version).exists():
@@ -186,14 +180,22 @@ def _replace_or_refuse(version, split, current):
     return [{"protocol": e.protocol, "error": e.error} for e in evaluations if e.state == "failed"]
 
 
-def _request(detector, split, prediction_file):
-    """Evaluations of a prediction file under the detector's suite."""
+def request_for_set(prediction_set, protocols=None):
+    """Request the set's evaluations under its detector's suite (``protocols``: a
+    subset, e.g. one a suite change added) and link them to the set: a set's
+    evaluations are the ones it asked for, never those another upload of the same bytes
+    asked for."""
     from . import suites
 
-    suite = suites.current_suite(detector)
-    return evaluation_services.request_evaluations(
-        split, prediction_file, suite.protocols, box_policy=suite.box_policy
+    suite = suites.current_suite(prediction_set.version.detector)
+    evaluations = evaluation_services.request_evaluations(
+        prediction_set.split,
+        prediction_set.predictions,
+        suite.protocols if protocols is None else protocols,
+        box_policy=suite.box_policy,
     )
+    prediction_set.evaluations.add(*evaluations)
+    return evaluations
 
 
 def judge_if_complete(version_id):

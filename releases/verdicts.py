@@ -256,16 +256,13 @@ def judge(version_id, *, attempts=3):
 
 def _request_missing(inputs, version):
     """Evaluations a suite change asked for (a new protocol): request them."""
-    from evaluation import services as evaluation_services
+    from .services import request_for_set
 
     if not inputs.unrequested:
         return
     with transaction.atomic():
-        policy = inputs.suite.box_policy if inputs.suite is not None else "keep"
         for prediction_set, protocol in inputs.unrequested:
-            evaluation_services.request_evaluations(
-                prediction_set.split, prediction_set.predictions, [protocol], box_policy=policy
-            )
+            request_for_set(prediction_set, [protocol])
 
 
 def _compute(version, inputs):

@@ -157,7 +157,6 @@ class PredictionSetSerializer(serializers.ModelSerializer):
     split_name = serializers.CharField(source="split.__str__")
     sha256 = serializers.CharField(source="predictions.sha256")
     size = serializers.IntegerField(source="predictions.size")
-    file_name = serializers.CharField(source="predictions.original_name")
     uploaded_by = serializers.CharField(source="uploaded_by.username")
 
     class Meta:
@@ -174,6 +173,8 @@ class PredictionSetSerializer(serializers.ModelSerializer):
             "file_name",
             "uploaded_by",
             "uploaded_at",
+            "replaced_at",
+            "replaced_by",
         ]
 
 

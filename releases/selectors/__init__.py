@@ -16,6 +16,7 @@ from .access import (  # noqa: F401
     visible_audit_events,
     visible_detectors,
     visible_evaluations,
+    visible_set_links,
     visible_teams,
 )
 from .audit import (  # noqa: F401

@@ -54,34 +54,25 @@ def version_for(user, version_id):
 
 
 def evaluations_of(version):
-    """Every evaluation of a version's prediction sets, with its split and file (2 queries)."""
+    """The evaluations the version's current prediction sets asked for, with split and
+    file (one query)."""
     from evaluation.models import Evaluation
 
-    sets = list(version.prediction_sets.current())
-    pairs = {(ps.predictions_id, ps.split_id) for ps in sets}
-    found = (
+    return list(
         Evaluation.objects.filter(
-            predictions_id__in={p for p, _ in pairs}, split_id__in={s for _, s in pairs}
+            prediction_sets__in=version.prediction_sets.current().values("pk")
         )
+        .distinct()
         .select_related("split", "predictions")
         .order_by("split__name", "split__revision", "protocol")
     )
-    return [e for e in found if (e.predictions_id, e.split_id) in pairs]
 
 
 def evaluation_for(user, evaluation_id):
-    """An evaluation the user may see: one of a visible detector's prediction sets."""
-    from evaluation.models import Evaluation
+    """An evaluation the user may see: one a visible detector's prediction set asked
+    for (identical bytes of another team share the row, not its visibility)."""
 
-    evaluation = Evaluation.objects.select_related("split", "predictions").get(pk=evaluation_id)
-    visible = PredictionSet.objects.filter(
-        predictions_id=evaluation.predictions_id,
-        split_id=evaluation.split_id,
-        version__detector__in=visible_detectors(user),
-    ).exists()
-    if not visible:
-        raise Evaluation.DoesNotExist
-    return evaluation
+    return visible_evaluations(user).select_related("split", "predictions").get(pk=evaluation_id)
 
 
 def can_load_splits(user):
@@ -120,14 +111,19 @@ def visible_audit_events(user):
 
 
 def visible_evaluations(user):
-    """Evaluations of the prediction sets of visible detectors."""
+    """Evaluations that prediction sets of visible detectors asked for."""
     from django.db.models import Exists, OuterRef
 
     from evaluation.models import Evaluation
 
-    sets = PredictionSet.objects.filter(version__detector__in=visible_detectors(user))
     return Evaluation.objects.filter(
-        Exists(
-            sets.filter(predictions_id=OuterRef("predictions_id"), split_id=OuterRef("split_id"))
-        )
+        Exists(visible_set_links(user).filter(evaluation_id=OuterRef("pk")))
+    )
+
+
+def visible_set_links(user):
+    """Links (prediction set -> evaluation) of the visible detectors' sets: filters by
+    owner (detector, version) go through these, so another team's id matches nothing."""
+    return PredictionSet.evaluations.through.objects.filter(
+        predictionset__version__detector__in=visible_detectors(user)
     )

@@ -20,14 +20,11 @@ def subject_keys(queryset, prefix):
 
 
 def _about_sets(sets):
-    """Events about these prediction sets and about the evaluations of their inputs."""
+    """Events about these prediction sets and about the evaluations they asked for."""
     from evaluation.models import Evaluation
 
-    evaluations = Evaluation.objects.filter(
-        Exists(
-            sets.filter(predictions_id=OuterRef("predictions_id"), split_id=OuterRef("split_id"))
-        )
-    )
+    links = PredictionSet.evaluations.through.objects.filter(predictionset__in=sets)
+    evaluations = Evaluation.objects.filter(Exists(links.filter(evaluation_id=OuterRef("pk"))))
     return Q(subject__in=subject_keys(sets, "prediction-set:")) | Q(
         subject__in=subject_keys(evaluations, "evaluation:")
     )
@@ -112,11 +109,10 @@ def subject_links(user, events):
         )
     }
     owners = {}
-    for ps in PredictionSet.objects.filter(
-        predictions_id__in={e.predictions_id for e in evaluations.values()},
-        version__detector__in=detectors,
-    ).select_related("version__detector"):
-        owners.setdefault((ps.predictions_id, ps.split_id), ps.version)
+    for link in PredictionSet.evaluations.through.objects.filter(
+        evaluation_id__in=list(evaluations), predictionset__version__detector__in=detectors
+    ).select_related("predictionset__version__detector"):
+        owners.setdefault(link.evaluation_id, link.predictionset.version)
     for e in events:
         prefix, _, tail = e.subject.partition(":")
         pk = int(tail) if tail.isdigit() else None
@@ -136,7 +132,7 @@ def subject_links(user, events):
             link = {"page": "split", "id": pk, "label": str(splits[pk])}
         elif prefix == "evaluation" and pk in evaluations:
             ev = evaluations[pk]
-            owner = owners.get((ev.predictions_id, ev.split_id))
+            owner = owners.get(ev.pk)
             if owner is not None:
                 link = {
                     "page": "version",

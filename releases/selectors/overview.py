@@ -32,14 +32,15 @@ def overview_for(user):
     protocols = {d.primary_protocol for d in detectors}
     cards = _scorecards(sets, protocols)
     all_sets = PredictionSet.objects.current().filter(version__detector__in=detectors)
-    pending = Evaluation.objects.filter(
-        state__in=["queued", "running"],
-        predictions_id__in=all_sets.values("predictions_id"),
-    ).select_related("split")
-    pending_by_file = {}
-    for evaluation in pending:
-        pending_by_file.setdefault(evaluation.predictions_id, []).append(evaluation)
-    owner = dict(all_sets.values_list("predictions_id", "version__detector_id"))
+    # Pending evaluations by the detector whose sets asked for them (never another
+    # team's evaluation of identical bytes).
+    links = PredictionSet.evaluations.through.objects.filter(
+        predictionset__in=all_sets, evaluation__state__in=["queued", "running"]
+    ).values_list("evaluation_id", "predictionset__version__detector_id")
+    owners = {}
+    for evaluation_id, detector_id in links:
+        owners.setdefault(evaluation_id, set()).add(detector_id)
+    pending = Evaluation.objects.filter(pk__in=list(owners)).select_related("split")
     ap = {}
     for (set_id, _), card in cards.items():
         ap[set_id] = card.summary.get("AP")
@@ -57,12 +58,7 @@ def overview_for(user):
                 if base and ps.version_id == base.pk:
                     row["baseline"] = ap.get(ps.pk)
         headline = [by_split[k] for k in sorted(by_split, key=lambda s: (s.name, s.revision))]
-        running = [
-            e
-            for file_id, evs in pending_by_file.items()
-            if owner.get(file_id) == detector.pk
-            for e in evs
-        ]
+        running = [e for e in pending if detector.pk in owners[e.pk]]
         out.append(
             {
                 "detector": detector,

@@ -57,13 +57,11 @@ def replaced_sets(version):
         .order_by("-replaced_at")
     )
     failed = Evaluation.objects.filter(
-        state="failed",
-        predictions_id__in={ps.predictions_id for ps in sets},
-        split_id__in={ps.split_id for ps in sets},
-    ).order_by("protocol")
+        state="failed", prediction_sets__in=[ps.pk for ps in sets]
+    ).values_list("prediction_sets", "protocol", "error")
     errors = {}
-    for e in failed:
-        errors.setdefault((e.predictions_id, e.split_id), []).append((e.protocol, e.error))
+    for set_id, protocol, error in failed.order_by("protocol"):
+        errors.setdefault(set_id, []).append((protocol, error))
     for ps in sets:
-        ps.failures = errors.get((ps.predictions_id, ps.split_id), [])
+        ps.failures = errors.get(ps.pk, [])
     return sets

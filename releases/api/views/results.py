@@ -9,7 +9,7 @@ from rest_framework.response import Response
 from evaluation.models import Evaluation
 
 from ... import selectors
-from ...models import Judgement, Outcome, PredictionSet
+from ...models import Judgement, Outcome
 from .. import serializers as s
 from ..errors import error_response
 from .base import (
@@ -60,18 +60,16 @@ class EvaluationList(EvaluationMixin, generics.ListAPIView):
             until="created_at__lt",
         )
         owners = {
-            "detector": "version__detector_id",
-            "version": "version_id",
+            "detector": "predictionset__version__detector_id",
+            "version": "predictionset__version_id",
         }
         for name, lookup in owners.items():
             value = _int(self.request, name)
-            if value is not None:
-                sets = PredictionSet.objects.filter(
-                    predictions_id=OuterRef("predictions_id"),
-                    split_id=OuterRef("split_id"),
-                    **{lookup: value},
+            if value is not None:  # only the user's visible sets: another team's id is unknown
+                links = selectors.visible_set_links(self.request.user).filter(
+                    evaluation_id=OuterRef("pk"), **{lookup: value}
                 )
-                queryset = queryset.filter(Exists(sets))
+                queryset = queryset.filter(Exists(links))
         if state := _choice(self.request, "state", Evaluation.State.values):
             queryset = queryset.filter(state=state)
         if protocol := _text(self.request, "protocol"):
