@@ -24,7 +24,14 @@ $(CHARTJS): frontend/package.json frontend/package-lock.json
 
 ## The demo: migrate, seed the invented scenario, then a worker and the web server
 ## on http://127.0.0.1:8000 (embedded SQLite + filesystem broker under var/).
-demo: $(STAMP) $(CHARTJS)
+## Settings refuse to start without a SECRET_KEY: the demo makes one (var/secret-key).
+DEMO_KEY := var/secret-key
+$(DEMO_KEY):
+	@mkdir -p var && umask 077 && $(PYTHON) -c 'import secrets; print(secrets.token_urlsafe(50))' > $@
+
+demo: export SECRET_KEY ?= $(shell cat $(DEMO_KEY) 2>/dev/null)
+demo: $(STAMP) $(CHARTJS) $(DEMO_KEY)
+	@test -n "$$SECRET_KEY" || { echo "run make demo again: $(DEMO_KEY) was just made"; exit 1; }
 	$(BIN)/python manage.py migrate --noinput -v0
 	$(BIN)/python manage.py collectstatic --noinput -v0
 	@$(BIN)/celery -A benchbook worker --beat --pool=solo --loglevel=warning & \

@@ -13,6 +13,7 @@ import argparse
 import json
 import os
 import pathlib
+import secrets
 import statistics
 import sys
 import tempfile
@@ -31,6 +32,7 @@ def main():
 
     work = tempfile.mkdtemp(prefix="benchbook-pages-")
     os.environ.update(BENCHBOOK_VAR=work, DJANGO_SETTINGS_MODULE="benchbook.settings")
+    os.environ.setdefault("SECRET_KEY", secrets.token_urlsafe(32))  # a throw-away server
     os.environ.pop("DATABASE_URL", None)
     os.environ.pop("CELERY_BROKER_URL", None)
     sys.path.insert(0, str(ROOT))

@@ -15,6 +15,7 @@ import argparse
 import json
 import os
 import pathlib
+import secrets
 import socket
 import subprocess
 import sys
@@ -70,6 +71,7 @@ def main():
         DJANGO_SETTINGS_MODULE="benchbook.settings",
         BENCHBOOK_MAX_UPLOAD_BYTES=str(4 * max(args.sizes) * MB),
     )
+    env.setdefault("SECRET_KEY", secrets.token_urlsafe(32))  # a throw-away server
     python = sys.executable
     subprocess.run([python, "manage.py", "migrate", "-v0"], env=env, cwd=ROOT, check=True)
     setup = """

@@ -9,6 +9,7 @@ import os
 from pathlib import Path
 
 import dj_database_url
+from django.core.exceptions import ImproperlyConfigured
 
 BASE_DIR = Path(__file__).resolve().parent.parent
 VAR_DIR = Path(os.environ.get("BENCHBOOK_VAR", BASE_DIR / "var"))
@@ -21,12 +22,36 @@ def _flag(name, default=False):
 DEBUG = _flag("DEBUG", False)
 SECRET_KEY = os.environ.get("SECRET_KEY", "")
 if not SECRET_KEY:
-    if not DEBUG and os.environ.get("BENCHBOOK_REQUIRE_SECRET"):
-        raise RuntimeError("SECRET_KEY must be set in production")
-    SECRET_KEY = "benchbook-embedded-default-not-for-production"
+    if not DEBUG:
+        # A key everyone can read would let anyone forge sessions and CSRF tokens.
+        raise ImproperlyConfigured(
+            "SECRET_KEY is not set: set it to a long random string (for example the output "
+            "of python -c 'import secrets; print(secrets.token_urlsafe(50))'), "
+            "or set DEBUG=true on a development machine"
+        )
+    SECRET_KEY = "benchbook-debug-only-key-never-for-production"
 ALLOWED_HOSTS = [
     h for h in os.environ.get("ALLOWED_HOSTS", "127.0.0.1,localhost,testserver").split(",") if h
 ]
+
+# HTTPS behind a proxy (README, "Production"). Off by default: the embedded default and
+# the tests serve plain HTTP on 127.0.0.1.
+SECURE_SSL_REDIRECT = _flag("SECURE_SSL_REDIRECT", False)
+SESSION_COOKIE_SECURE = _flag("SESSION_COOKIE_SECURE", False)
+CSRF_COOKIE_SECURE = _flag("CSRF_COOKIE_SECURE", False)
+SECURE_HSTS_SECONDS = int(os.environ.get("SECURE_HSTS_SECONDS", 0))
+SECURE_HSTS_INCLUDE_SUBDOMAINS = _flag("SECURE_HSTS_INCLUDE_SUBDOMAINS", False)
+SECURE_HSTS_PRELOAD = _flag("SECURE_HSTS_PRELOAD", False)
+# "HTTP_X_FORWARDED_PROTO=https": the header the proxy sets, and the value meaning HTTPS.
+# Only behind a proxy that overwrites this header on every request.
+if os.environ.get("SECURE_PROXY_SSL_HEADER"):
+    _header, _, _value = os.environ["SECURE_PROXY_SSL_HEADER"].partition("=")
+    if not _header or not _value:
+        raise ImproperlyConfigured(
+            "SECURE_PROXY_SSL_HEADER must read HEADER=value, e.g. HTTP_X_FORWARDED_PROTO=https"
+        )
+    SECURE_PROXY_SSL_HEADER = (_header.strip(), _value.strip())
+CSRF_TRUSTED_ORIGINS = [o for o in os.environ.get("CSRF_TRUSTED_ORIGINS", "").split(",") if o]
 
 INSTALLED_APPS = [
     "django.contrib.admin",
@@ -78,7 +103,13 @@ TEMPLATES = [
 VAR_DIR.mkdir(parents=True, exist_ok=True)
 _default_db = f"sqlite:///{VAR_DIR / 'benchbook.sqlite3'}"
 DATABASES = {
-    "default": dj_database_url.parse(os.environ.get("DATABASE_URL", _default_db), conn_max_age=60)
+    "default": dj_database_url.parse(
+        os.environ.get("DATABASE_URL", _default_db),
+        conn_max_age=60,
+        # A persistent connection is checked before each request reuses it, so a restarted
+        # database costs no failed request.
+        conn_health_checks=True,
+    )
 }
 if DATABASES["default"]["ENGINE"].endswith("sqlite3"):
     # A file, not memory, so a worker process can share the test database too. The web
