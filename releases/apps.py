@@ -1,4 +1,14 @@
 from django.apps import AppConfig
+from django.db.models.signals import post_migrate
+
+
+def _reinstall_triggers(sender, using, **kwargs):
+    """After every ``migrate`` (see ``evaluation.apps``)."""
+    from django.db import connections
+
+    from . import triggers
+
+    triggers.install(connections[using])
 
 
 class ReleasesConfig(AppConfig):
@@ -6,6 +16,7 @@ class ReleasesConfig(AppConfig):
     verbose_name = "Releases"
 
     def ready(self):
+        post_migrate.connect(_reinstall_triggers, sender=self, dispatch_uid="releases-triggers")
         from evaluation import signals as evaluation_signals
 
         from . import signals

@@ -1,36 +1,59 @@
-"""Database triggers that make the audit trail append-only (PostgreSQL and SQLite)."""
+"""Database triggers that make the audit trail and release decisions append-only.
 
-from evaluation.triggers import execute
+UPDATE and DELETE are refused row by row, TRUNCATE by a statement trigger (PostgreSQL;
+SQLite has no TRUNCATE). Installed by this app's trigger migrations and again after every
+``migrate`` (see ``apps.py``). ``evaluation.triggers`` does the same for results.
+"""
+
+from evaluation.triggers import (
+    execute,
+    existing,
+    postgres_append_only,
+    postgres_refuse_function,
+    postgres_remove,
+    sqlite_append_only,
+    sqlite_remove,
+)
 
 TABLE = "releases_auditevent"
-
-POSTGRES_INSTALL = f"""
-CREATE OR REPLACE FUNCTION benchbook_refuse_audit_change() RETURNS trigger AS $$
-BEGIN
-    RAISE EXCEPTION 'the audit trail is append-only' USING ERRCODE = 'restrict_violation';
-END;
-$$ LANGUAGE plpgsql;
-DROP TRIGGER IF EXISTS benchbook_append_only ON {TABLE};
-CREATE TRIGGER benchbook_append_only BEFORE UPDATE OR DELETE ON {TABLE}
-    FOR EACH ROW EXECUTE FUNCTION benchbook_refuse_audit_change();
-"""
-POSTGRES_REMOVE = f"""
+APPEND_ONLY = {
+    TABLE: "the audit trail",
+    "releases_signoff": "a release decision",
+}
+FUNCTION = "benchbook_refuse_release_change"
+# Names of migration 0003 (the audit trail alone), replaced by the ones above.
+_LEGACY_POSTGRES = f"""
 DROP TRIGGER IF EXISTS benchbook_append_only ON {TABLE};
 DROP FUNCTION IF EXISTS benchbook_refuse_audit_change();
 """
-SQLITE_INSTALL = [
-    f"""CREATE TRIGGER IF NOT EXISTS benchbook_append_only_{op.lower()} BEFORE {op} ON {TABLE}
-    BEGIN SELECT RAISE(ABORT, 'the audit trail is append-only'); END"""
-    for op in ("UPDATE", "DELETE")
-]
-SQLITE_REMOVE = [
+_LEGACY_SQLITE = [
     f"DROP TRIGGER IF EXISTS benchbook_append_only_{op}" for op in ("update", "delete")
 ]
 
 
 def install(connection):
-    execute(connection, {"postgresql": [POSTGRES_INSTALL], "sqlite": SQLITE_INSTALL})
+    """Install (or re-install: idempotent) every trigger of this app on the tables that
+    exist."""
+    tables = existing(connection, APPEND_ONLY)
+    postgres = [postgres_refuse_function(FUNCTION)]
+    sqlite = []
+    if TABLE in tables:
+        postgres.append(_LEGACY_POSTGRES)
+        sqlite += _LEGACY_SQLITE
+    for table in tables:
+        postgres.append(postgres_append_only(table, APPEND_ONLY[table], FUNCTION))
+        sqlite += sqlite_append_only(table, APPEND_ONLY[table])
+    execute(connection, {"postgresql": postgres, "sqlite": sqlite})
 
 
 def remove(connection):
-    execute(connection, {"postgresql": [POSTGRES_REMOVE], "sqlite": SQLITE_REMOVE})
+    tables = existing(connection, APPEND_ONLY)
+    postgres = [postgres_remove(t) for t in tables] + [f"DROP FUNCTION IF EXISTS {FUNCTION}();"]
+    if TABLE in tables:
+        postgres.append(_LEGACY_POSTGRES)
+    sqlite = [s for t in APPEND_ONLY for s in sqlite_remove(t)] + _LEGACY_SQLITE
+    execute(connection, {"postgresql": postgres, "sqlite": sqlite})
+
+
+def protected_tables():
+    return list(APPEND_ONLY)

@@ -125,13 +125,9 @@ def run_tasks(monkeypatch, django_capture_on_commit_callbacks):
 
 @pytest.fixture
 def flushable(transactional_db):
-    """For tests that commit: after them Django empties the tables with DELETE on
-    SQLite, which the frozen-split and append-only triggers refuse; drop them first
-    (``split`` puts them back for the next test)."""
+    """For tests that commit. Django empties the tables after them; the session fixture
+    ``_flush_past_triggers`` (tests/conftest.py) lets that flush past the triggers."""
     yield
-    if connection.vendor == "sqlite":
-        triggers.remove(connection)
-        audit_triggers.remove(connection)
 
 
 def in_process(task):
@@ -156,8 +152,7 @@ def in_process_async(task):
 def committed_for_module(django_db_blocker, tmp_path_factory, build):
     """For a module-scoped fixture: ``build()``'s rows committed once for the module
     (set up per test they would cost more than the tests), tasks run in-process, then
-    emptied as a transactional test's database is (on SQLite the triggers must go
-    first, see ``flushable``; they are put back after). Yields (built, media root)."""
+    emptied as a transactional test's database is. Yields (built, media root)."""
     name = os.path.basename(str(connection.settings_dict["NAME"]))
     assert name.startswith("test"), f"not a test database: {name}"  # it is flushed below
     media = tmp_path_factory.mktemp("module-media")
@@ -179,10 +174,5 @@ def committed_for_module(django_db_blocker, tmp_path_factory, build):
         try:
             yield build(), str(media)
         finally:
-            if connection.vendor == "sqlite":
-                triggers.remove(connection)
-                audit_triggers.remove(connection)
-            call_command("flush", interactive=False, verbosity=0)
-            triggers.install(connection)
-            audit_triggers.install(connection)
+            call_command("flush", interactive=False, verbosity=0)  # past the triggers
             cache.clear()  # throttle counters of tokens whose ids later tests reuse

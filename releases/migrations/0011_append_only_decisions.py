@@ -1,0 +1,16 @@
+"""The database refuses changes to release decisions, and TRUNCATE of the audit trail
+(see releases/triggers.py)."""
+
+from django.db import migrations
+
+from releases import triggers
+
+
+def install(apps, schema_editor):
+    triggers.install(schema_editor.connection)
+
+
+class Migration(migrations.Migration):
+    dependencies = [("releases", "0010_replaceable_prediction_sets")]
+    # Going back leaves them: reversing the earlier trigger migration removes them all.
+    operations = [migrations.RunPython(install, migrations.RunPython.noop)]

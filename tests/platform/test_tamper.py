@@ -1,0 +1,256 @@
+"""Results, decisions and the audit trail cannot be changed unseen.
+
+The database refuses UPDATE, DELETE and TRUNCATE of results, decisions and audit events
+and any change to a finished evaluation; on PostgreSQL the application's role (which
+owns nothing) cannot switch the triggers off either. What an owner does with the
+triggers off, ``verify_audit`` reports: the chain carries a digest of every result,
+re-derived from the rows, and its head is also kept in a file outside the database.
+
+Attacks tried, by entry point: raw SQL as the test run (owner) with triggers on; raw SQL
+as the application role (PostgreSQL); the owner with the triggers off or dropped; the
+chain's tail deleted; the chain recomputed from an event on; a table truncated."""
+
+import os
+import secrets
+import uuid
+
+import pytest
+from django.db import DatabaseError, connection, transaction
+
+from evaluation.models import ClassScore, Evaluation, Scorecard, SliceScore
+from releases import services
+from releases.db_roles import append_only_tables
+from releases.models import AuditEvent, SignOff
+
+from .conftest import detections_for, upload
+
+ON_POSTGRES = connection.vendor == "postgresql"
+
+
+def needs_postgres():
+    """PostgreSQL-only cases skip on the embedded SQLite, never under CI=true."""
+    if not ON_POSTGRES:
+        if os.environ.get("CI") == "true":
+            pytest.fail("CI=true needs DATABASE_URL on PostgreSQL")
+        pytest.skip("PostgreSQL only (set DATABASE_URL)")
+
+
+def _decided(version, split, split_truth, users, run_tasks):
+    run_tasks(
+        services.submit_predictions,
+        version,
+        split,
+        upload("p.json", detections_for(split_truth)),
+        users["engineer"],
+    )
+    services.sign_off(version, users["lead"], "rejected", "pedestrians at night too weak")
+    return version
+
+
+@pytest.fixture
+def decided(db, version, split, split_truth, users, run_tasks):
+    """A version scored under two protocols and rejected by its lead."""
+    return _decided(version, split, split_truth, users, run_tasks)
+
+
+def _refused(sql, params=()):
+    with pytest.raises(DatabaseError) as caught:
+        with transaction.atomic(), connection.cursor() as cursor:
+            cursor.execute(sql, params)
+    return str(caught.value)
+
+
+PROTECTED = [
+    ("evaluation_scorecard", "stored results"),
+    ("evaluation_classscore", "stored results"),
+    ("evaluation_slicescore", "stored results"),
+    ("releases_signoff", "a release decision"),
+    ("releases_auditevent", "the audit trail"),
+]
+
+
+@pytest.mark.django_db
+@pytest.mark.parametrize("table, what", PROTECTED)
+@pytest.mark.parametrize("statement", ["UPDATE {t} SET id = id", "DELETE FROM {t}"])
+def test_the_database_refuses_changes_to_append_only_tables(decided, table, what, statement):
+    before = {m: m.objects.count() for m in (Scorecard, ClassScore, SliceScore, SignOff)}
+    message = _refused(statement.format(t=table))
+    assert f"{what} is append-only" in message
+    assert {m: m.objects.count() for m in before} == before
+
+
+def test_every_append_only_table_is_listed():
+    """The privileges (``db_roles``) and this test read the same list."""
+    assert sorted(append_only_tables()) == sorted(
+        [t for t, _ in PROTECTED] + ["evaluation_benchmarksplit"]
+    )
+
+
+@pytest.mark.django_db
+@pytest.mark.parametrize(
+    "column, value",
+    [
+        ("state", "queued"),
+        ("state", "failed"),
+        ("error", "edited"),
+        ("engine_version", "0.0"),
+        ("finished_at", None),
+        ("protocol", "voc07"),
+        ("box_policy", "clip"),
+    ],
+)
+def test_a_finished_evaluation_cannot_change(decided, column, value):
+    evaluation = Evaluation.objects.filter(state="done").first()
+    message = _refused(
+        f"UPDATE evaluation_evaluation SET {column} = %s WHERE id = %s", [value, evaluation.pk]
+    )
+    assert "evaluation is finished" in message or "is finished (done)" in message
+    assert getattr(Evaluation.objects.get(pk=evaluation.pk), column) == getattr(evaluation, column)
+
+
+@pytest.mark.django_db
+def test_a_finished_evaluation_cannot_be_deleted(decided):
+    evaluation = Evaluation.objects.filter(state="done").first()
+    _refused("DELETE FROM evaluation_scorecard WHERE evaluation_id = %s", [evaluation.pk])
+    assert "is finished" in _refused(
+        "DELETE FROM evaluation_evaluation WHERE id = %s", [evaluation.pk]
+    )
+
+
+@pytest.mark.django_db
+def test_an_unfinished_evaluation_still_moves(version, split, split_truth, users, monkeypatch):
+    """The guard is on finished rows only: queued → running → done is the worker's job."""
+    from evaluation import services as evaluation_services
+
+    monkeypatch.setattr(evaluation_services, "dispatch", lambda pk: None)
+    services.submit_predictions(
+        version, split, upload("p.json", detections_for(split_truth)), users["engineer"]
+    )
+    evaluation = Evaluation.objects.first()
+    evaluation_services.run_evaluation(evaluation.pk)
+    assert Evaluation.objects.get(pk=evaluation.pk).state == "done"
+
+
+@pytest.fixture
+def committed(flushable, version, split, split_truth, users, run_tasks):
+    """``decided``, committed (TRUNCATE is refused in a transaction with pending
+    constraint checks whatever the triggers say; these tests need the real refusal)."""
+    return _decided(version, split, split_truth, users, run_tasks)
+
+
+@pytest.mark.parametrize(
+    "table",
+    [t for t, _ in PROTECTED] + ["evaluation_benchmarksplit", "evaluation_evaluation"],
+)
+def test_the_database_refuses_truncate_even_to_its_owner(committed, table):
+    """PostgreSQL's TRUNCATE skips row triggers; a statement trigger refuses it (the
+    issue's attack: TRUNCATE of the audit table, and of splits cascading)."""
+    needs_postgres()
+    message = _refused(f"TRUNCATE {table} CASCADE")
+    assert "TRUNCATE" in message and "refused" in message
+    assert AuditEvent.objects.exists() and Scorecard.objects.exists()
+
+
+@pytest.fixture
+def app_role(committed):
+    """A login role that owns nothing, given the application's privileges by
+    ``manage.py grant_app_role`` as the README says; dropped afterwards."""
+    from django.core.management import call_command
+
+    needs_postgres()
+    role, password = f"bb_app_{uuid.uuid4().hex[:10]}", secrets.token_hex(16)
+    with connection.cursor() as cursor:
+        cursor.execute(f"CREATE ROLE {role} LOGIN PASSWORD '{password}'")
+    try:
+        call_command("grant_app_role", role, verbosity=0)
+        yield role, password
+    finally:
+        with connection.cursor() as cursor:
+            cursor.execute(f"DROP OWNED BY {role}")  # its privileges in this database
+            cursor.execute(f"DROP ROLE {role}")
+
+
+def _connect_as(role, password):
+    import psycopg
+
+    db = connection.settings_dict
+    return psycopg.connect(
+        host=db["HOST"] or "127.0.0.1",
+        port=db["PORT"] or 5432,
+        dbname=db["NAME"],
+        user=role,
+        password=password,
+        autocommit=True,
+    )
+
+
+ATTACKS = [
+    "UPDATE {t} SET id = id",
+    "DELETE FROM {t}",
+    "TRUNCATE {t} CASCADE",
+    "ALTER TABLE {t} DISABLE TRIGGER ALL",
+    "ALTER TABLE {t} DISABLE TRIGGER USER",
+    "DROP TRIGGER benchbook_no_truncate ON {t}",
+    "DROP TABLE {t} CASCADE",
+]
+
+
+def test_the_application_role_cannot_change_empty_or_unguard_protected_tables(app_role):
+    """As the role the web processes and workers log in as: every UPDATE, DELETE and
+    TRUNCATE of audit, result and decision rows is refused (PostgreSQL docs: TRUNCATE
+    needs the TRUNCATE privilege, ALTER/DROP of a table or its triggers needs ownership,
+    session_replication_role is superuser-only)."""
+    import psycopg
+
+    tables = [t for t, _ in PROTECTED] + ["evaluation_benchmarksplit"]
+    counts = {t: _count(t) for t in tables}
+    refused = {}
+    with _connect_as(*app_role) as conn:
+        for table in tables:
+            assert conn.execute(f"SELECT count(*) FROM {table}").fetchone()[0] == counts[table]
+            for attack in ATTACKS:
+                with pytest.raises(psycopg.Error) as caught:
+                    conn.execute(attack.format(t=table))
+                refused[attack.format(t=table)] = type(caught.value).__name__
+        with pytest.raises(psycopg.errors.InsufficientPrivilege):
+            conn.execute("SET session_replication_role = replica")  # would skip triggers
+        with pytest.raises(psycopg.errors.InsufficientPrivilege):
+            conn.execute("DELETE FROM evaluation_evaluation")
+        with pytest.raises(psycopg.errors.RestrictViolation, match="is finished"):
+            conn.execute("UPDATE evaluation_evaluation SET state = 'queued'")
+    assert {t: _count(t) for t in tables} == counts
+    # no privilege for any of it (and the triggers stop the owner: tests above)
+    assert set(refused.values()) == {"InsufficientPrivilege"}, refused
+
+
+def _count(table):
+    with connection.cursor() as cursor:
+        cursor.execute(f"SELECT count(*) FROM {table}")
+        return cursor.fetchone()[0]
+
+
+def test_the_application_runs_as_that_role(
+    app_role, users, detector, split, split_truth, run_tasks
+):
+    """The privileges are enough for the application's own work: a version uploaded,
+    scored, judged and decided with Django connected as the role."""
+    from releases.models import ModelVersion
+
+    db = connection.settings_dict
+    saved = db["USER"], db["PASSWORD"]
+    connection.close()
+    db["USER"], db["PASSWORD"] = app_role
+    try:
+        with connection.cursor() as cursor:
+            cursor.execute("SELECT current_user")
+            assert cursor.fetchone()[0] == app_role[0]
+        version = services.create_version(detector, "1.5.0", users["engineer"])
+        _decided(version, split, split_truth, users, run_tasks)
+        assert set(Evaluation.objects.filter(state="done").values_list("protocol", flat=True)) == {
+            "coco",
+            "voc",
+        }
+        assert ModelVersion.objects.get(pk=version.pk).sign_off.decision == "rejected"
+    finally:
+        connection.close()
+        db["USER"], db["PASSWORD"] = saved
