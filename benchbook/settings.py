@@ -207,6 +207,11 @@ CELERY_BEAT_SCHEDULE = {
     "requeue-lost-judging": {"task": "releases.tasks.sweep", "schedule": 60.0},
 }
 
+# After each audit event, "id hash" is appended here (a file outside the database, on
+# storage the application cannot rewrite, or shipped to an external log): the copy of
+# the chain's head that ``verify_audit --head`` checks. Unset: the log line only.
+BENCHBOOK_AUDIT_HEAD_FILE = os.environ.get("BENCHBOOK_AUDIT_HEAD_FILE") or None
+
 # Notifications (releases/notify.py) are their own task, queued after a judgement: one
 # webhook POST per run with a short timeout, later attempts queued with a countdown, so a
 # webhook that never answers holds a worker for BENCHBOOK_WEBHOOK_TIMEOUT_SECONDS at most.

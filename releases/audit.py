@@ -1,14 +1,24 @@
-"""The tamper-evident audit trail: append events, verify the chain."""
+"""The tamper-evident audit trail: append events, verify the chain, keep the head.
+
+After each committed event its ``id hash`` is appended to the file named by
+``BENCHBOOK_AUDIT_HEAD_FILE`` (if set) and logged to ``releases.audit.head``, so a copy
+of the chain's head lives outside the database (``verify_audit --head FILE``).
+"""
 
 import hashlib
 import json
+import logging
+import os
+from functools import partial
 
+from django.conf import settings
 from django.db import connection, transaction
 from django.utils import timezone
 
 from .models import AuditEvent
 
 GENESIS = "0" * 64
+head_log = logging.getLogger("releases.audit.head")
 
 
 def digest(payload):
@@ -38,7 +48,7 @@ def record_event(kind, actor, subject, payload):
         created_at = timezone.now()
         payload_digest = digest(payload)
         actor_name = actor if isinstance(actor, str) else actor.get_username()
-        return AuditEvent.objects.create(
+        event = AuditEvent.objects.create(
             kind=kind,
             actor=actor_name,
             created_at=created_at,
@@ -48,6 +58,30 @@ def record_event(kind, actor, subject, payload):
             previous_hash=previous,
             hash=link_hash(previous, kind, actor_name, created_at, subject, payload_digest),
         )
+        transaction.on_commit(partial(write_head, event.pk, event.hash))
+        return event
+
+
+def write_head(event_id, event_hash):
+    """Append ``id hash`` to the head file and the head log (after the commit).
+
+    A failed write is logged, never raised: the event is stored already, and
+    ``verify_audit --head`` reports a head file that lags behind the chain.
+    """
+    line = f"{event_id} {event_hash}\n"
+    head_log.info("audit head %s %s", event_id, event_hash)
+    path = getattr(settings, "BENCHBOOK_AUDIT_HEAD_FILE", None)
+    if not path:
+        return
+    try:  # one write() with O_APPEND: concurrent writers never interleave a line
+        fd = os.open(path, os.O_WRONLY | os.O_APPEND | os.O_CREAT, 0o640)
+        try:
+            os.write(fd, line.encode())
+            os.fsync(fd)
+        finally:
+            os.close(fd)
+    except OSError:
+        head_log.exception("could not append the audit head to %s", path)
 
 
 def verify_audit():

@@ -1,6 +1,7 @@
 """Receivers of the evaluation app's signals, connected in ReleasesConfig.ready()."""
 
 from . import audit
+from .audit_check import result_digests
 from .models import AuditEvent
 
 
@@ -31,6 +32,7 @@ def evaluation_finished(sender, evaluation, **kwargs):
             "predictions_sha256": card.predictions_sha256,
             "engine_version": card.engine_version,
             "summary": card.summary,
+            "result": result_digests(evaluation.pk),  # re-derived by verify_audit
         },
     )
 
@@ -40,7 +42,11 @@ def evaluation_failed(sender, evaluation, **kwargs):
         AuditEvent.Kind.EVALUATION_FAILED,
         "system",
         f"evaluation:{evaluation.pk}",
-        {"protocol": evaluation.protocol, "error": evaluation.error},
+        {
+            "protocol": evaluation.protocol,
+            "error": evaluation.error,
+            "result": result_digests(evaluation.pk),
+        },
     )
 
 

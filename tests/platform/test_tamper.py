@@ -43,7 +43,7 @@ def _decided(version, split, split_truth, users, run_tasks):
         upload("p.json", detections_for(split_truth)),
         users["engineer"],
     )
-    services.sign_off(version, users["lead"], "rejected", "pedestrians at night too weak")
+    run_tasks(services.sign_off, version, users["lead"], "rejected", "pedestrians at night weak")
     return version
 
 
@@ -254,3 +254,249 @@ def test_the_application_runs_as_that_role(
     finally:
         connection.close()
         db["USER"], db["PASSWORD"] = saved
+
+
+# The hash chain covers the results -------------------------------------------------
+
+
+def _as_owner(*statements):
+    """The owner of the tables switches the triggers off, edits, and switches them on."""
+    from evaluation import triggers
+    from releases import triggers as release_triggers
+
+    release_triggers.remove(connection)
+    triggers.remove(connection)
+    with connection.cursor() as cursor:
+        for statement in statements:
+            cursor.execute(statement)
+    triggers.install(connection)
+    release_triggers.install(connection)
+
+
+def _verify(*args):
+    """``manage.py verify_audit``: (True, stdout) or (False, the error's text)."""
+    from io import StringIO
+
+    from django.core.management import call_command
+    from django.core.management.base import CommandError
+
+    out = StringIO()
+    try:
+        call_command("verify_audit", *args, stdout=out)
+    except CommandError as e:
+        return False, str(e)
+    return True, out.getvalue()
+
+
+@pytest.mark.django_db
+def test_every_finished_result_is_chained_with_the_digests_of_its_rows(decided):
+    from releases.audit_check import result_digests
+
+    events = AuditEvent.objects.filter(kind="evaluation finished")
+    assert events.count() == 2
+    for event in events:
+        evaluation_id = int(event.subject.split(":")[1])
+        assert event.payload["result"] == result_digests(evaluation_id)
+        assert set(event.payload["result"]) == {
+            "format",
+            "evaluation",
+            "scorecard",
+            "classes",
+            "slices",
+            "records",
+        }
+    ok, out = _verify()
+    assert ok and "audit chain intact: 4 events" in out and "2 results re-derived" in out
+
+
+def _pedestrian(field="ap"):
+    row = ClassScore.objects.filter(class_name="pedestrian").order_by("pk").first()
+    return row.scorecard.evaluation_id, getattr(row, field)
+
+
+EDITS = [
+    (
+        "UPDATE evaluation_classscore SET ap = 0.999 WHERE class_name = 'pedestrian'",
+        "no longer matches its digest (classes)",
+    ),
+    ("DELETE FROM evaluation_classscore WHERE class_name = 'cyclist'", "(classes)"),
+    ("UPDATE evaluation_slicescore SET ap = 0.5 WHERE kind = 'size'", "(slices)"),
+    (
+        "UPDATE evaluation_scorecard SET summary = '{\"AP\": 0.9}'",
+        "no longer matches its digest (scorecard)",
+    ),
+    ("UPDATE evaluation_evaluation SET state = 'failed', error = 'x'", "(evaluation)"),
+    ("UPDATE evaluation_evaluation SET engine_version = '0.1'", "(evaluation)"),
+    (
+        "DELETE FROM evaluation_slicescore; DELETE FROM evaluation_classscore; "
+        "DELETE FROM evaluation_scorecard",
+        "(scorecard, classes, slices, records)",
+    ),
+    ("UPDATE releases_signoff SET decision = 'approved'", "no longer reads as recorded (decision)"),
+    ("UPDATE releases_signoff SET comment = 'fine'", "no longer reads as recorded (comment)"),
+    ("DELETE FROM releases_signoff", "the decision on version {version} is gone"),
+    (
+        "DELETE FROM releases_auditevent WHERE kind = 'rejected'",
+        "the decision on version {version} is not in the chain",
+    ),
+    ("DELETE FROM releases_auditevent WHERE id > 1", "is finished but not in the chain"),
+    ("DELETE FROM releases_auditevent", "is finished but not in the chain"),
+]
+
+
+@pytest.mark.django_db
+@pytest.mark.parametrize("edit, finding", EDITS)
+def test_verify_audit_reports_rows_edited_by_the_owner(decided, edit, finding):
+    """The issue's attacks: scorecards, class rows, evaluation states and decisions
+    edited (or removed) with the triggers off, the chain's tail cut, the audit table
+    emptied — the chain itself may still be consistent; the rows no longer match it."""
+    assert _verify()[0]
+    _as_owner(*edit.split(";"))
+    ok, text = _verify()
+    assert not ok
+    assert finding.format(version=decided.pk) in text, text
+
+
+@pytest.mark.django_db
+def test_a_replaced_records_file_is_reported(decided):
+    """The match records (.npz) behind intervals and re-scoring are in the digest."""
+    card = Scorecard.objects.order_by("pk").first()
+    with card.records.storage.open(card.records.name, "wb") as f:
+        f.write(b"not the records")
+    ok, text = _verify()
+    assert (
+        not ok and f"evaluation {card.evaluation_id} no longer matches its digest (records)" in text
+    )
+
+
+# The chain's head, kept outside the database ------------------------------------------
+
+
+@pytest.fixture
+def head_file(settings, tmp_path):
+    settings.BENCHBOOK_AUDIT_HEAD_FILE = str(tmp_path / "audit-head.log")
+    return tmp_path / "audit-head.log"
+
+
+@pytest.fixture
+def headed(head_file, decided, users, run_tasks, split, split_truth, detector, monkeypatch):
+    """``decided`` with a head file, and a newer version's upload last in the chain
+    (nothing derived from rows vouches for an upload event)."""
+    from evaluation import services as evaluation_services
+
+    monkeypatch.setattr(evaluation_services, "dispatch", lambda pk: None)
+    newer = services.create_version(detector, "1.5.0", users["engineer"])
+    run_tasks(
+        services.submit_predictions,
+        newer,
+        split,
+        upload("q.json", detections_for(split_truth, seed=9)),
+        users["engineer"],
+    )
+    return head_file
+
+
+@pytest.mark.django_db
+def test_the_head_file_gets_every_event(headed):
+    lines = headed.read_text().splitlines()
+    assert lines == [f"{pk} {h}" for pk, h in AuditEvent.objects.values_list("pk", "hash")]
+    ok, out = _verify("--head", str(headed))
+    assert ok and f"matches {headed}" in out
+
+
+def _rewrite_chain_from(first_id, **payload_changes):
+    """What an owner who knows the scheme does: edit an event, then recompute every
+    digest and hash from that event on, so that the chain verifies again."""
+    import json
+
+    from releases.audit import GENESIS, digest, link_hash
+
+    events = list(AuditEvent.objects.order_by("id"))
+    previous = GENESIS
+    statements = []
+    for event in events:
+        if event.pk >= first_id:
+            payload = {**event.payload, **(payload_changes if event.pk == first_id else {})}
+            payload_digest = digest(payload)
+            new_hash = link_hash(
+                previous, event.kind, event.actor, event.created_at, event.subject, payload_digest
+            )
+            statements.append(
+                "UPDATE releases_auditevent SET payload = '{}', payload_digest = '{}', "
+                "previous_hash = '{}', hash = '{}' WHERE id = {}".format(
+                    json.dumps(payload).replace("'", "''"),
+                    payload_digest,
+                    previous,
+                    new_hash,
+                    event.pk,
+                )
+            )
+            previous = new_hash
+        else:
+            previous = event.hash
+    _as_owner(*statements)
+
+
+@pytest.mark.django_db
+def test_a_deleted_tail_is_caught_by_the_head_file(headed):
+    last = AuditEvent.objects.order_by("-id").first()
+    assert last.kind == "predictions uploaded"
+    _as_owner(f"DELETE FROM releases_auditevent WHERE id = {last.pk}")
+    assert _verify()[0]  # the rest of the chain is consistent and matches its rows
+    ok, text = _verify("--head", str(headed))
+    assert not ok and f"event #{last.pk} is missing from the database" in text
+
+
+@pytest.mark.django_db
+def test_a_rewritten_chain_is_caught_by_the_head_file(headed, decided):
+    """Decision and event edited alike, the chain recomputed from there: only the copy
+    of the head outside the database can tell."""
+    decision = AuditEvent.objects.get(kind="rejected")
+    _as_owner("UPDATE releases_signoff SET comment = 'all good'")
+    _rewrite_chain_from(decision.pk, comment="all good")
+    assert _verify()[0]
+    ok, text = _verify("--head", str(headed))
+    assert not ok and f"event #{decision.pk} has another hash in the database" in text
+
+
+@pytest.mark.django_db
+def test_an_emptied_audit_table_is_caught_by_the_head_file(headed):
+    count = AuditEvent.objects.count()
+    _as_owner("DELETE FROM releases_auditevent")
+    ok, text = _verify("--head", str(headed))
+    assert not ok and text.count("is missing from the database") == count
+
+
+@pytest.mark.django_db
+def test_a_head_file_behind_the_chain_is_a_note_not_a_finding(headed):
+    lines = headed.read_text().splitlines()
+    headed.write_text("\n".join(lines[:-2]) + "\n")
+    ok, out = _verify("--head", str(headed))
+    assert ok and "note: 2 event(s) after the head file's last line" in out
+
+
+@pytest.mark.django_db
+def test_a_garbled_head_file_is_reported(headed):
+    headed.write_text(headed.read_text() + "seven deadbeef\n")
+    ok, text = _verify("--head", str(headed))
+    assert not ok and "not 'id hash': 'seven deadbeef'" in text
+
+
+@pytest.mark.django_db
+def test_an_unreadable_head_file_is_an_error(tmp_path, decided):
+    ok, text = _verify("--head", str(tmp_path / "nowhere.log"))
+    assert not ok and "cannot read the head file" in text
+
+
+def test_the_truncated_tables_are_reported(head_file, committed):
+    """The issue's case: TRUNCATE (here by the owner, triggers off) of results and the
+    audit trail; ``verify_audit`` used to say "intact: 0 events"."""
+    needs_postgres()
+    _as_owner(
+        "TRUNCATE releases_auditevent, evaluation_slicescore, evaluation_classscore, "
+        "evaluation_scorecard"
+    )
+    ok, text = _verify()
+    assert not ok and "is finished but not in the chain" in text
+    ok, text = _verify("--head", str(head_file))
+    assert not ok and "is missing from the database" in text

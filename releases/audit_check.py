@@ -1,0 +1,230 @@
+"""Re-derive what the audit chain vouches for from the rows, and check its head.
+
+The chain alone proves that events were not edited; these checks prove that the rows
+the events describe were not edited either, and that the chain itself was not cut short
+or rewritten:
+
+* every finished evaluation's event carries ``result``, digests of its stored rows
+  (``result_digests``), recomputed here from the rows as they are now;
+* every finished evaluation and every release decision has its event;
+* the split named by a split-frozen event still exists with the content hash it had;
+* a release decision still reads as its event recorded it;
+* the head file (``id hash`` lines written after each event) names only events that
+  exist, with those hashes: a deleted tail or a chain recomputed from some event on
+  is caught there even though the remaining chain is consistent.
+"""
+
+import hashlib
+from dataclasses import dataclass, field
+
+from evaluation.models import BenchmarkSplit, ClassScore, Evaluation, Scorecard, SliceScore
+
+from .audit import digest, verify_audit
+from .models import AuditEvent, SignOff
+
+RESULT_FORMAT = 1
+PARTS = ("format", "evaluation", "scorecard", "classes", "slices", "records")
+DECISION_KINDS = (AuditEvent.Kind.SIGNED_OFF, AuditEvent.Kind.REJECTED, AuditEvent.Kind.OVERRIDE)
+FINISH_KINDS = (AuditEvent.Kind.EVALUATION_FINISHED, AuditEvent.Kind.EVALUATION_FAILED)
+DECISION_FIELDS = ("decision", "comment", "override", "justification", "evidence")
+CLASS_COLUMNS = (
+    "class_name",
+    "ap",
+    "ap50",
+    "ap75",
+    "recall",
+    "gt",
+    "tp",
+    "fp",
+    "best_f1",
+    "best_f1_threshold",
+    "miss_rate",
+)
+SLICE_COLUMNS = ("kind", "name", "class_name", "ap", "images")
+
+
+def _file_sha256(field_file):
+    if not field_file:
+        return None
+    try:
+        with field_file.storage.open(field_file.name, "rb") as f:
+            h = hashlib.sha256()
+            for block in iter(lambda: f.read(1 << 20), b""):
+                h.update(block)
+            return h.hexdigest()
+    except OSError:
+        return "missing"
+
+
+def result_digests(evaluation_id):
+    """Digests (SHA-256 of canonical JSON) of a finished evaluation's stored rows.
+
+    ``evaluation``: its inputs, state, error and finish time; ``scorecard``: the stored
+    numbers and hashes (summary and the full result); ``classes`` and ``slices``: the
+    per-class and slice rows, sorted; ``records``: SHA-256 of the match-records file.
+    A part that does not exist digests ``null``.
+    """
+    e = Evaluation.objects.filter(pk=evaluation_id).first()
+    if e is None:
+        return {"format": RESULT_FORMAT, "evaluation": "missing"}
+    parts = {
+        "format": RESULT_FORMAT,
+        "evaluation": digest(
+            {
+                "id": e.pk,
+                "split": e.split_id,
+                "predictions": e.predictions_id,
+                "protocol": e.protocol,
+                "box_policy": e.box_policy,
+                "state": e.state,
+                "engine_version": e.engine_version,
+                "error": e.error,
+                "error_detail": e.error_detail,
+                "finished_at": e.finished_at.isoformat() if e.finished_at else None,
+            }
+        ),
+    }
+    card = Scorecard.objects.filter(evaluation_id=evaluation_id).first()
+    parts["scorecard"] = digest(
+        card
+        and {
+            "protocol": card.protocol,
+            "protocol_version": card.protocol_version,
+            "engine_version": card.engine_version,
+            "split_sha256": card.split_sha256,
+            "predictions_sha256": card.predictions_sha256,
+            "summary": card.summary,
+            "result": card.result,
+        }
+    )
+    classes = ClassScore.objects.filter(scorecard__evaluation_id=evaluation_id)
+    slices = SliceScore.objects.filter(scorecard__evaluation_id=evaluation_id)
+    parts["classes"] = digest(sorted(classes.values_list(*CLASS_COLUMNS), key=lambda r: r[0]))
+    parts["slices"] = digest(sorted(slices.values_list(*SLICE_COLUMNS), key=lambda r: r[:3]))
+    parts["records"] = _file_sha256(card.records) if card else None
+    return parts
+
+
+def decision_payload(sign_off):
+    """The fields of a decision that its audit event records."""
+    return {name: getattr(sign_off, name) for name in DECISION_FIELDS}
+
+
+@dataclass
+class Report:
+    """What ``check`` found. ``problems`` are findings of tampering (or of an event
+    never written); ``notes`` are facts worth showing that prove nothing wrong."""
+
+    count: int = 0
+    head: str = ""
+    broken: int | None = None
+    problems: list = field(default_factory=list)
+    notes: list = field(default_factory=list)
+    results_checked: int = 0
+
+    @property
+    def ok(self):
+        return self.broken is None and not self.problems
+
+
+def _subject_id(subject, prefix):
+    kind, _, pk = subject.partition(":")
+    return int(pk) if kind == prefix and pk.isdigit() else None
+
+
+def check(head_lines=None):
+    """The whole check: chain, rows against their events, and (if given) the head
+    file's lines. Returns a ``Report``."""
+    report = Report()
+    report.broken, report.head, report.count = verify_audit()
+    _check_rows(report)
+    if head_lines is not None:
+        _check_head(report, head_lines)
+    return report
+
+
+def _check_rows(report):
+    finished = set(
+        Evaluation.objects.filter(state__in=["done", "failed"]).values_list("pk", flat=True)
+    )
+    chained, legacy = set(), 0
+    decided = {}
+    fields = ("pk", "kind", "subject", "payload")
+    for pk, kind, subject, payload in AuditEvent.objects.order_by("id").values_list(*fields):
+        if kind in FINISH_KINDS:
+            evaluation_id = _subject_id(subject, "evaluation")
+            chained.add(evaluation_id)
+            recorded = payload.get("result")
+            if recorded is None:
+                legacy += 1
+                continue
+            report.results_checked += 1
+            now = result_digests(evaluation_id)
+            changed = [p for p in PARTS if p in recorded and now.get(p) != recorded[p]]
+            if now.get("evaluation") == "missing":
+                report.problems.append(f"event #{pk}: evaluation {evaluation_id} no longer exists")
+            elif changed:
+                report.problems.append(
+                    f"event #{pk}: the stored result of evaluation {evaluation_id} no longer "
+                    f"matches its digest ({', '.join(changed)})"
+                )
+        elif kind == AuditEvent.Kind.SPLIT_FROZEN:
+            split_id = _subject_id(subject, "split")
+            split = BenchmarkSplit.objects.filter(pk=split_id).first()
+            if split is None or split.sha256 != payload.get("sha256"):
+                what = "no longer exists" if split is None else "has another content hash"
+                report.problems.append(f"event #{pk}: split {split_id} {what}")
+        elif kind in DECISION_KINDS:
+            decided[_subject_id(subject, "version")] = (pk, payload)
+    for evaluation_id in sorted(finished - chained):
+        report.problems.append(f"evaluation {evaluation_id} is finished but not in the chain")
+    for sign_off in SignOff.objects.order_by("pk"):
+        pk, payload = decided.pop(sign_off.version_id, (None, None))
+        if pk is None:
+            report.problems.append(
+                f"the decision on version {sign_off.version_id} is not in the chain"
+            )
+            continue
+        now = decision_payload(sign_off)
+        changed = [k for k in now if k in payload and digest(payload[k]) != digest(now[k])]
+        if changed:
+            report.problems.append(
+                f"event #{pk}: the decision on version {sign_off.version_id} no longer reads "
+                f"as recorded ({', '.join(changed)})"
+            )
+    for version_id, (pk, _) in sorted(decided.items()):
+        report.problems.append(f"event #{pk}: the decision on version {version_id} is gone")
+    if legacy:
+        report.notes.append(
+            f"{legacy} evaluation event(s) from before result digests: results not re-derived"
+        )
+
+
+def _check_head(report, lines):
+    hashes = dict(AuditEvent.objects.values_list("pk", "hash"))
+    newest = 0
+    for number, line in enumerate(lines, 1):
+        if not line.strip():
+            continue
+        event_id, _, event_hash = line.strip().partition(" ")
+        if not event_id.isdigit() or len(event_hash) != 64:
+            report.problems.append(f"head file line {number}: not 'id hash': {line.strip()!r}")
+            continue
+        event_id = int(event_id)
+        newest = max(newest, event_id)
+        if event_id not in hashes:
+            report.problems.append(
+                f"head file line {number}: event #{event_id} is missing from the database "
+                "(deleted or truncated)"
+            )
+        elif hashes[event_id] != event_hash:
+            report.problems.append(
+                f"head file line {number}: event #{event_id} has another hash in the "
+                "database (the chain was rewritten)"
+            )
+    behind = [pk for pk in hashes if pk > newest]
+    if behind:
+        report.notes.append(
+            f"{len(behind)} event(s) after the head file's last line (#{newest}): "
+            "not vouched for by it"
+        )
