@@ -1,5 +1,6 @@
 """Shared fixtures of the platform tests: users by role, a team, a detector, a split."""
 
+import contextlib
 import json
 import os
 import uuid
@@ -128,6 +129,19 @@ def flushable(transactional_db):
     """For tests that commit. Django empties the tables after them; the session fixture
     ``_flush_past_triggers`` (tests/conftest.py) lets that flush past the triggers."""
     yield
+
+
+@contextlib.contextmanager
+def triggers_off():
+    """The owner of the tables (the test run) switches the append-only triggers off, to
+    plant rows no service would write, then switches them on again."""
+    audit_triggers.remove(connection)
+    triggers.remove(connection)
+    try:
+        yield
+    finally:
+        triggers.install(connection)
+        audit_triggers.install(connection)
 
 
 def in_process(task):

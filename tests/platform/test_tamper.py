@@ -22,7 +22,7 @@ from releases import services
 from releases.db_roles import append_only_tables
 from releases.models import AuditEvent, SignOff
 
-from .conftest import detections_for, upload
+from .conftest import detections_for, triggers_off, upload
 
 ON_POSTGRES = connection.vendor == "postgresql"
 
@@ -261,16 +261,9 @@ def test_the_application_runs_as_that_role(
 
 def _as_owner(*statements):
     """The owner of the tables switches the triggers off, edits, and switches them on."""
-    from evaluation import triggers
-    from releases import triggers as release_triggers
-
-    release_triggers.remove(connection)
-    triggers.remove(connection)
-    with connection.cursor() as cursor:
+    with triggers_off(), connection.cursor() as cursor:
         for statement in statements:
             cursor.execute(statement)
-    triggers.install(connection)
-    release_triggers.install(connection)
 
 
 def _verify(*args):

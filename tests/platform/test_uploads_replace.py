@@ -17,7 +17,7 @@ from evaluation.services import UploadConflict
 from releases import audit, selectors, services
 from releases.models import AuditEvent, PredictionSet
 
-from .conftest import detections_for, upload
+from .conftest import detections_for, triggers_off, upload
 from .test_api import API, client_for, file
 
 pytestmark = pytest.mark.django_db
@@ -137,8 +137,9 @@ def test_a_set_that_did_not_fail_cannot_be_replaced(
     )
     if state != "done":  # also: one failed and one still scoring is not replaceable
         evaluations = Evaluation.objects.filter(predictions=prediction_set.predictions)
-        evaluations.filter(protocol="coco").update(state="failed", error="x")
-        evaluations.filter(protocol="voc").update(state=state)
+        with triggers_off():  # planted: a finished evaluation cannot change otherwise
+            evaluations.filter(protocol="coco").update(state="failed", error="x")
+            evaluations.filter(protocol="voc").update(state=state)
     with pytest.raises(UploadConflict, match=f"whose evaluations are .*{state}"):
         services.submit_predictions(
             version, split, upload("q.json", detections_for(split_truth, seed=7)), users["lead"]
