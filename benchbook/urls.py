@@ -9,3 +9,4 @@ urlpatterns = [
 
 handler404 = "frontend.errors.not_found"  # the API's JSON body under /api/
 handler403 = "frontend.errors.permission_denied"
+handler400 = "frontend.errors.bad_request"  # also 413 for a body over the size limit

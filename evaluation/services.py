@@ -86,6 +86,13 @@ def load_split(*, name, revision, truth, images=None, description="", created_by
             e.argument = "images" if images_path and str(e.path) == images_path else "truth"
             e.path = os.path.basename(e.path)  # the name as uploaded, not the spool folder
             raise
+        except OverflowError:  # a number the engine's 64-bit columns cannot hold
+            names = [os.path.basename(p) for p in (truth_path, images_path) if p]
+            raise UploadError(
+                f"{' or '.join(names)}: a number is too large for a 64-bit integer "
+                "(ids must lie between -2^63 and 2^63 - 1)",
+                path="truth",
+            ) from None
         sha = loaded.content_hash()
         twin = BenchmarkSplit.objects.filter(sha256=sha).first()
         if twin is not None:

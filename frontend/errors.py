@@ -1,4 +1,4 @@
-"""The site's 403 and 404 pages: the navigation stays, and the page says why."""
+"""The site's 400, 403 and 404 pages: the navigation stays, and the page says why."""
 
 from django.http import JsonResponse
 from django.shortcuts import render
@@ -32,3 +32,16 @@ def permission_denied(request, exception=None):
     if request.path.startswith("/api/"):
         return JsonResponse(errors.body(403, "permission_denied", [("", why)]), status=403)
     return render(request, "403.html", {"why": why}, status=403)
+
+
+def bad_request(request, exception=None):
+    """400: Django refused to read the request (``SuspiciousOperation`` and its kinds:
+    too many fields or files, a malformed body), 413 for a body over the size limit
+    (``releases.api.errors.malformed``). Under /api/ the API's error body."""
+    from releases.api import errors
+
+    status, code, why = errors.malformed(exception) or (400, "bad_request", "bad request")
+    if request.path.startswith("/api/"):
+        return JsonResponse(errors.body(status, code, [("", why)]), status=status)
+    title = "Request too large" if status == 413 else "Bad request"
+    return render(request, "400.html", {"title": title, "why": why}, status=status)

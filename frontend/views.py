@@ -216,6 +216,8 @@ def release_criteria(request, detector_id):
             criteria.set_criteria(found, request.user, json.loads(text))
         except json.JSONDecodeError as e:
             error = f"rules: not valid JSON: {e.msg} at line {e.lineno}, column {e.colno}"
+        except RecursionError:  # the decoder recurses: [[[[… thousands deep
+            error = "rules: not valid JSON: nested too deeply"
         except criteria.CriteriaError as e:
             error = str(e)
         else:

@@ -7,7 +7,14 @@ also ``"file"``, ``"record"`` and ``"field"`` (the record and field inside the f
 
 import logging
 
-from django.core.exceptions import ObjectDoesNotExist
+from django.conf import settings
+from django.core.exceptions import (
+    ObjectDoesNotExist,
+    RequestDataTooBig,
+    SuspiciousOperation,
+    TooManyFieldsSent,
+    TooManyFilesSent,
+)
 from django.core.exceptions import PermissionDenied as DjangoPermissionDenied
 from django.http import Http404
 from drf_spectacular.openapi import AutoSchema
@@ -52,10 +59,42 @@ def body(status_code, code, errors, **extra):
     }
 
 
+def malformed(exc):
+    """``(status, code, message)`` for a request Django refused to parse, else None.
+
+    Django raises these while reading the body (its limits ``DATA_UPLOAD_MAX_*``); they
+    are the client's fault, so 413 for a body over the size limit and 400 for the rest.
+    """
+    if isinstance(exc, RequestDataTooBig):
+        limit = settings.DATA_UPLOAD_MAX_MEMORY_SIZE
+        return (
+            413,
+            "too_large",
+            (
+                f"the request body is larger than {limit} bytes, the limit for a request "
+                "that is not a file upload"
+            ),
+        )
+    if isinstance(exc, TooManyFieldsSent):
+        limit = settings.DATA_UPLOAD_MAX_NUMBER_FIELDS
+        return 400, "too_many_fields", f"too many fields: at most {limit} per request"
+    if isinstance(exc, TooManyFilesSent):
+        limit = settings.DATA_UPLOAD_MAX_NUMBER_FILES
+        return 400, "too_many_files", f"too many files: at most {limit} per request"
+    if isinstance(exc, SuspiciousOperation):  # e.g. a malformed multipart body
+        return 400, "bad_request", "the request is malformed and was not read"
+    return None
+
+
 def handle(exc, context):
     """DRF's exception handler, reshaped into ``body``; service refusals become 400/409."""
     from ..services import DecisionError
 
+    refused = malformed(exc)
+    if refused is not None:
+        status, code, message = refused
+        log.warning("refused a malformed request to %s: %s", context.get("view"), exc)
+        return Response(body(status, code, [("", message)]), status=status)
     if isinstance(exc, engine.InputError):
         located = {k: v for k, v in exc.as_dict().items() if k != "message"}
         errors = [(getattr(exc, "argument", ""), str(exc))]  # which upload, if known
