@@ -1,4 +1,4 @@
-"""Database triggers that make the audit trail and release decisions append-only.
+"""Database triggers that make the audit trail, judgements and decisions append-only.
 
 UPDATE and DELETE are refused row by row, TRUNCATE by a statement trigger (PostgreSQL;
 SQLite has no TRUNCATE). Installed by this app's trigger migrations and again after every
@@ -19,6 +19,8 @@ TABLE = "releases_auditevent"
 APPEND_ONLY = {
     TABLE: "the audit trail",
     "releases_signoff": "a release decision",
+    "releases_judgement": "a judgement",
+    "releases_outcome": "an outcome of a judgement",
 }
 FUNCTION = "benchbook_refuse_release_change"
 # Names of migration 0003 (the audit trail alone), replaced by the ones above.

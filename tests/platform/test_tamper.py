@@ -25,6 +25,7 @@ from releases.models import AuditEvent, SignOff
 from .conftest import detections_for, triggers_off, upload
 
 ON_POSTGRES = connection.vendor == "postgresql"
+RULES = [{"kind": "min_value", "metric": "AP50", "class": "pedestrian", "threshold": 0.99}]
 
 
 def needs_postgres():
@@ -36,6 +37,9 @@ def needs_postgres():
 
 
 def _decided(version, split, split_truth, users, run_tasks):
+    from releases import criteria
+
+    run_tasks(criteria.set_criteria, version.detector, users["lead"], RULES)  # outcomes exist
     run_tasks(
         services.submit_predictions,
         version,
@@ -49,7 +53,8 @@ def _decided(version, split, split_truth, users, run_tasks):
 
 @pytest.fixture
 def decided(db, version, split, split_truth, users, run_tasks):
-    """A version scored under two protocols and rejected by its lead."""
+    """A version scored under two protocols, judged against one rule (failed) and
+    rejected by its lead."""
     return _decided(version, split, split_truth, users, run_tasks)
 
 
@@ -65,6 +70,8 @@ PROTECTED = [
     ("evaluation_classscore", "stored results"),
     ("evaluation_slicescore", "stored results"),
     ("releases_signoff", "a release decision"),
+    ("releases_judgement", "a judgement"),
+    ("releases_outcome", "an outcome of a judgement"),
     ("releases_auditevent", "the audit trail"),
 ]
 
@@ -299,7 +306,8 @@ def test_every_finished_result_is_chained_with_the_digests_of_its_rows(decided):
             "records",
         }
     ok, out = _verify()
-    assert ok and "audit chain intact: 4 events" in out and "2 results re-derived" in out
+    count = AuditEvent.objects.count()
+    assert ok and f"audit chain intact: {count} events" in out and "2 results re-derived" in out
 
 
 def _pedestrian(field="ap"):

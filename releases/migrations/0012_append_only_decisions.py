@@ -1,4 +1,5 @@
-"""The database refuses changes to release decisions, and TRUNCATE of the audit trail
+"""The database refuses changes to release decisions, judgements and their outcomes, and
+TRUNCATE of the audit trail
 (see releases/triggers.py)."""
 
 from django.db import migrations
@@ -11,6 +12,6 @@ def install(apps, schema_editor):
 
 
 class Migration(migrations.Migration):
-    dependencies = [("releases", "0010_replaceable_prediction_sets")]
+    dependencies = [("releases", "0011_suite_and_judgements")]
     # Going back leaves them: reversing the earlier trigger migration removes them all.
     operations = [migrations.RunPython(install, migrations.RunPython.noop)]
