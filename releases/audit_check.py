@@ -6,9 +6,10 @@ or rewritten:
 
 * every finished evaluation's event carries ``result``, digests of its stored rows
   (``result_digests``), recomputed here from the rows as they are now;
-* every finished evaluation and every release decision has its event;
+* every finished evaluation, judgement and release decision has its event;
 * the split named by a split-frozen event still exists with the content hash it had;
-* a release decision still reads as its event recorded it;
+* a release decision still reads as its event recorded it, and so does a judgement
+  (verdict, reasons, the evaluations it saw, its outcomes counted by status);
 * the head file (``id hash`` lines written after each event) names only events that
   exist, with those hashes: a deleted tail or a chain recomputed from some event on
   is caught there even though the remaining chain is consistent.
@@ -20,7 +21,7 @@ from dataclasses import dataclass, field
 from evaluation.models import BenchmarkSplit, ClassScore, Evaluation, Scorecard, SliceScore
 
 from .audit import digest, verify_audit
-from .models import AuditEvent, SignOff
+from .models import AuditEvent, Judgement, Outcome, SignOff
 
 RESULT_FORMAT = 1
 PARTS = ("format", "evaluation", "scorecard", "classes", "slices", "records")
@@ -105,6 +106,19 @@ def result_digests(evaluation_id):
     return parts
 
 
+def judgement_payload(judgement):
+    """The fields of a judgement that its audit event records."""
+    counts = {}
+    for status in Outcome.objects.filter(judgement=judgement).values_list("status", flat=True):
+        counts[status] = counts.get(status, 0) + 1
+    return {
+        "verdict": judgement.verdict,
+        "reasons": judgement.reasons,
+        "evaluations": judgement.evaluations,
+        "outcomes": counts,
+    }
+
+
 def decision_payload(sign_off):
     """The fields of a decision that its audit event records."""
     return {name: getattr(sign_off, name) for name in DECISION_FIELDS}
@@ -148,7 +162,7 @@ def _check_rows(report):
         Evaluation.objects.filter(state__in=["done", "failed"]).values_list("pk", flat=True)
     )
     chained, legacy = set(), 0
-    decided = {}
+    decided, judged = {}, {}
     fields = ("pk", "kind", "subject", "payload")
     for pk, kind, subject, payload in AuditEvent.objects.order_by("id").values_list(*fields):
         if kind in FINISH_KINDS:
@@ -176,6 +190,8 @@ def _check_rows(report):
                 report.problems.append(f"event #{pk}: split {split_id} {what}")
         elif kind in DECISION_KINDS:
             decided[_subject_id(subject, "version")] = (pk, payload)
+        elif kind == AuditEvent.Kind.JUDGED:
+            judged[payload.get("judgement")] = (pk, payload)
     for evaluation_id in sorted(finished - chained):
         report.problems.append(f"evaluation {evaluation_id} is finished but not in the chain")
     for sign_off in SignOff.objects.order_by("pk"):
@@ -194,6 +210,20 @@ def _check_rows(report):
             )
     for version_id, (pk, _) in sorted(decided.items()):
         report.problems.append(f"event #{pk}: the decision on version {version_id} is gone")
+    for judgement in Judgement.objects.order_by("pk"):
+        pk, payload = judged.pop(judgement.pk, (None, None))
+        if pk is None:
+            report.problems.append(f"judgement {judgement.pk} is not in the chain")
+            continue
+        now = judgement_payload(judgement)
+        changed = [k for k in now if k in payload and digest(payload[k]) != digest(now[k])]
+        if changed:
+            report.problems.append(
+                f"event #{pk}: judgement {judgement.pk} no longer reads as recorded "
+                f"({', '.join(changed)})"
+            )
+    for judgement_id, (pk, _) in sorted(judged.items(), key=lambda item: item[1][0]):
+        report.problems.append(f"event #{pk}: judgement {judgement_id} is gone")
     if legacy:
         report.notes.append(
             f"{legacy} evaluation event(s) from before result digests: results not re-derived"

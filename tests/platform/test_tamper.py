@@ -336,6 +336,11 @@ EDITS = [
     ("UPDATE releases_signoff SET decision = 'approved'", "no longer reads as recorded (decision)"),
     ("UPDATE releases_signoff SET comment = 'fine'", "no longer reads as recorded (comment)"),
     ("DELETE FROM releases_signoff", "the decision on version {version} is gone"),
+    ("UPDATE releases_judgement SET verdict = 'pass'", "no longer reads as recorded (verdict"),
+    ("UPDATE releases_judgement SET reasons = '[]'", "no longer reads as recorded (reasons)"),
+    ("UPDATE releases_outcome SET status = 'pass'", "no longer reads as recorded (outcomes)"),
+    ("DELETE FROM releases_outcome", "no longer reads as recorded (outcomes)"),
+    ("DELETE FROM releases_auditevent WHERE kind = 'judged'", "is not in the chain"),
     (
         "DELETE FROM releases_auditevent WHERE kind = 'rejected'",
         "the decision on version {version} is not in the chain",
