@@ -1,10 +1,9 @@
-"""The database refuses changes to release decisions, judgements and their outcomes, and
-TRUNCATE of the audit trail
-(see releases/triggers.py)."""
+"""The database refuses changes to stored results and finished evaluations, and TRUNCATE
+of frozen splits (see evaluation/triggers.py)."""
 
 from django.db import migrations
 
-from releases import triggers
+from evaluation import triggers
 
 
 def install(apps, schema_editor):
@@ -12,6 +11,6 @@ def install(apps, schema_editor):
 
 
 class Migration(migrations.Migration):
-    dependencies = [("releases", "0011_suite_and_judgements")]
+    dependencies = [("evaluation", "0004_leases_and_record_hashes")]
     # Going back leaves them: reversing the earlier trigger migration removes them all.
     operations = [migrations.RunPython(install, migrations.RunPython.noop)]

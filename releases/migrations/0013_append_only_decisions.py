@@ -1,9 +1,10 @@
-"""The database refuses changes to stored results and finished evaluations, and TRUNCATE
-of frozen splits (see evaluation/triggers.py)."""
+"""The database refuses changes to release decisions, judgements and their outcomes, and
+TRUNCATE of the audit trail
+(see releases/triggers.py)."""
 
 from django.db import migrations
 
-from evaluation import triggers
+from releases import triggers
 
 
 def install(apps, schema_editor):
@@ -11,6 +12,6 @@ def install(apps, schema_editor):
 
 
 class Migration(migrations.Migration):
-    dependencies = [("evaluation", "0003_evaluation_box_policy")]
+    dependencies = [("releases", "0012_content_mismatch_event")]
     # Going back leaves them: reversing the earlier trigger migration removes them all.
     operations = [migrations.RunPython(install, migrations.RunPython.noop)]
