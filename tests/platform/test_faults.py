@@ -119,12 +119,13 @@ def _done_exactly_once(evaluations):
     for evaluation in evaluations:
         assert evaluation.state == "done", (evaluation.state, evaluation.error)
         assert Scorecard.objects.filter(evaluation=evaluation).count() == 1
-        assert (
-            AuditEvent.objects.filter(
-                kind=AuditEvent.Kind.EVALUATION_FINISHED, subject=f"evaluation:{evaluation.pk}"
-            ).count()
-            == 1
+        events = AuditEvent.objects.filter(
+            kind=AuditEvent.Kind.EVALUATION_FINISHED, subject=f"evaluation:{evaluation.pk}"
         )
+        # the event is written just after the result's commit (with its digests)
+        _wait(events.exists, 20, f"the finished event of evaluation {evaluation.pk}")
+        time.sleep(1)  # a second event, if there were one, would follow as quickly
+        assert events.count() == 1
     records = os.listdir(os.path.join(django_settings.MEDIA_ROOT, "records"))
     assert len(records) == len(evaluations), records  # no orphan records file
 
