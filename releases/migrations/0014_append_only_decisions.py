@@ -12,6 +12,6 @@ def install(apps, schema_editor):
 
 
 class Migration(migrations.Migration):
-    dependencies = [("releases", "0012_content_mismatch_event")]
+    dependencies = [("releases", "0013_prediction_set_evaluations")]
     # Going back leaves them: reversing the earlier trigger migration removes them all.
     operations = [migrations.RunPython(install, migrations.RunPython.noop)]
