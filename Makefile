@@ -22,22 +22,22 @@ $(CHARTJS): frontend/package.json frontend/package-lock.json
 	mkdir -p $(dir $(CHARTJS))
 	cp frontend/node_modules/chart.js/dist/chart.umd.min.js $(CHARTJS)
 
-## The demo: migrate, seed the invented scenario, then a worker and the web server
-## on http://127.0.0.1:8000 (embedded SQLite + filesystem broker under var/).
+## The demo: migrate, seed the invented scenario (its three months replayed in this
+## process: scoring, judging, sign-offs at their dates), then a worker and the web
+## server on http://127.0.0.1:8000 (embedded SQLite + filesystem broker under var/).
 ## Settings refuse to start without a SECRET_KEY: the demo makes one (var/secret-key).
 DEMO_KEY := var/secret-key
 $(DEMO_KEY):
 	@mkdir -p var && umask 077 && $(PYTHON) -c 'import secrets; print(secrets.token_urlsafe(50))' > $@
 
-demo: export SECRET_KEY ?= $(shell cat $(DEMO_KEY) 2>/dev/null)
 demo: $(STAMP) $(CHARTJS) $(DEMO_KEY)
-	@test -n "$$SECRET_KEY" || { echo "run make demo again: $(DEMO_KEY) was just made"; exit 1; }
-	$(BIN)/python manage.py migrate --noinput -v0
-	$(BIN)/python manage.py collectstatic --noinput -v0
-	@$(BIN)/celery -A benchbook worker --beat --pool=solo --loglevel=warning & \
-	  worker=$$!; trap "kill $$worker 2>/dev/null" EXIT INT TERM; \
-	  $(BIN)/python manage.py seed_demo --wait 600 && \
-	  $(BIN)/python manage.py runserver 127.0.0.1:8000 --noreload
+	@export SECRET_KEY="$${SECRET_KEY:-$$(cat $(DEMO_KEY))}"; \
+	  $(BIN)/python manage.py migrate --noinput -v0 && \
+	  $(BIN)/python manage.py collectstatic --noinput -v0 && \
+	  $(BIN)/python manage.py seed_demo && \
+	  { $(BIN)/celery -A benchbook worker --beat --pool=solo --loglevel=warning & \
+	    worker=$$!; trap "kill $$worker 2>/dev/null" EXIT INT TERM; \
+	    $(BIN)/python manage.py runserver 127.0.0.1:8000 --noreload; }
 
 ## Run the whole test suite (engine doctests included).
 test: $(STAMP) $(CHARTJS)

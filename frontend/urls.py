@@ -9,7 +9,9 @@ urlpatterns = [
     path("", views.overview, name="overview"),
     path("splits/", views.split_list, name="splits"),
     path("splits/load/", views.load_split, name="load-split"),
+    path("detectors/new/", views.new_detector, name="new-detector"),
     path("detectors/<int:detector_id>/", views.detector, name="detector"),
+    path("detectors/<int:detector_id>/suite/", views.suite, name="suite"),
     path("detectors/<int:detector_id>/upload/", views.upload_predictions, name="upload"),
     path("detectors/<int:detector_id>/compare/", views.compare, name="compare"),
     path(

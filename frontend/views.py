@@ -37,7 +37,14 @@ def _version_or_404(user, version_id):
 
 @login_required
 def overview(request):
-    return render(request, "frontend/overview.html", {"rows": selectors.overview_for(request.user)})
+    return render(
+        request,
+        "frontend/overview.html",
+        {
+            "rows": selectors.overview_for(request.user),
+            "can_create": bool(selectors.lead_teams(request.user)),
+        },
+    )
 
 
 @login_required
@@ -106,6 +113,8 @@ def detector(request, detector_id):
 @login_required
 def version(request, version_id):
     found = _version_or_404(request.user, version_id)
+    shown = request.GET.get("judgement", "")
+    judgement_id = int(shown) if shown.isdigit() else None
     splits = selectors.version_scorecards(found)
     for entry in splits:
         if entry["card"]:
@@ -126,11 +135,9 @@ def version(request, version_id):
             "evaluations": selectors.evaluations_of(found),
             "replaced": selectors.replaced_sets(found),
             "decision": getattr(found, "sign_off", None),
-            "outcomes": selectors.outcomes_of(found),
             "can_sign_off": selectors.role_in(request.user, found.detector.team) == "lead",
-            "state": selectors.state_of(
-                found, selectors.baseline_of(found.detector), selectors.blocked_versions([found])
-            ),
+            "badge": selectors.version_badges([found])[found.pk],
+            **selectors.verdict_page(found, judgement_id),
             "caution": selectors.CAUTION,
         },
     )
@@ -460,4 +467,101 @@ def audit_trail(request):
             "query": query.urlencode(),
         },
         status=400 if errors else 200,
+    )
+
+
+@login_required
+def suite(request, detector_id):
+    from releases import suites
+
+    found = _detector_or_404(request.user, detector_id)
+    current = suites.current_suite(found)
+    shown = suites.as_dict(current) if current else {}
+    text = request.POST.get("suite") or json.dumps(shown, indent=2)
+    error = None
+    if request.method == "POST":
+        try:
+            suites.set_suite(found, request.user, json.loads(text))
+        except json.JSONDecodeError as e:
+            error = f"suite: not valid JSON: {e.msg} at line {e.lineno}, column {e.colno}"
+        except suites.SuiteError as e:
+            error = str(e)
+        else:
+            messages.success(
+                request,
+                f"suite of {found} saved as a new version; undecided candidates are judged again",
+            )
+            return redirect("suite", detector_id=found.pk)
+    return render(
+        request,
+        "frontend/suite.html",
+        {
+            "detector": found,
+            "current": current,
+            "required": suites.required_splits(found),
+            "text": text,
+            "error": error,
+            "history": selectors.spec_history(
+                found.suites.select_related("created_by"), suites.as_dict
+            ),
+            "can_edit": selectors.role_in(request.user, found.team) == "lead",
+        },
+        status=400 if error else 200,
+    )
+
+
+@login_required
+def new_detector(request):
+    from releases import detectors, suites
+
+    teams = selectors.lead_teams(request.user)
+    if not teams:
+        raise PermissionDenied("only leads of a team can create its detectors")
+    splits = sorted({s.name for s in BenchmarkSplit.objects.all()})
+    template = {
+        "splits": [{"name": n, "revision": None} for n in splits],
+        "protocols": ["coco"],
+        "box_policy": "keep",
+        "score_threshold": 0.5,
+        "class_thresholds": {},
+    }
+    data = {
+        "team": request.POST.get("team", str(teams[0].pk)),
+        "name": request.POST.get("name", ""),
+        "classes": request.POST.get("classes", ""),
+        "description": request.POST.get("description", ""),
+        "suite": request.POST.get("suite") or json.dumps(template, indent=2),
+    }
+    error = None
+    if request.method == "POST":
+        team = next((t for t in teams if str(t.pk) == data["team"]), None)
+        try:
+            if team is None:
+                raise detectors.DetectorError("team: choose one of the teams you lead")
+            try:
+                spec = json.loads(data["suite"])
+            except json.JSONDecodeError as e:
+                raise detectors.DetectorError(
+                    f"suite: not valid JSON: {e.msg} at line {e.lineno}, column {e.colno}"
+                ) from None
+            found = detectors.create_detector(
+                request.user,
+                team,
+                data["name"],
+                data["classes"],
+                spec,
+                description=data["description"],
+            )
+        except (detectors.DetectorError, suites.SuiteError, UploadError) as e:
+            error = str(e)
+        else:
+            messages.success(
+                request, f"{found} created with suite v{suites.current_suite(found).number}"
+            )
+            return redirect("detector", detector_id=found.pk)
+    return render(
+        request,
+        "frontend/new_detector.html",
+        {"teams": teams, "data": data, "error": error},
+        status=400 if error else 200,
     )

@@ -4,7 +4,9 @@ Everything is generated from seeds: splits that look like camera benchmarks (128
 or 1920x1080 frames, a few to a few dozen boxes each) and the predictions of each
 model version, whose quality improves with noise over about three months. Version 1.5
 of the forward camera detector really loses pedestrians at night; version 1.3 has a
-small drop that is noise.
+small drop that is noise; 1.6 is genuinely better than the 1.4 baseline; 1.7 was
+uploaded on one split only; kerbside 1.3's first night upload was broken and replaced.
+``story`` orders the events; ``seed_demo`` replays them at their dates.
 """
 
 import datetime
@@ -35,7 +37,7 @@ SPLITS = [
 ]
 RELABELLED = ("bay-night", 2, 13)  # rev 2: the same frames, missed pedestrians added
 
-FORWARD_VERSIONS = ["0.9", "1.0", "1.1", "1.2", "1.3", "1.4", "1.5", "1.6"]
+FORWARD_VERSIONS = ["0.9", "1.0", "1.1", "1.2", "1.3", "1.4", "1.5", "1.6", "1.7"]
 KERBSIDE_VERSIONS = ["0.9", "1.0", "1.1", "1.2", "1.3"]
 
 
@@ -123,11 +125,33 @@ def version_quality(detector, index, label):
     return day, night, max(0.03, 0.09 - 0.007 * step)
 
 
-def predictions(truth, day_recall, night_recall, jitter, seed):
-    """COCO-style detections: jittered hits, duplicates and false alarms."""
+# The class a detector mistakes each class for most often.
+CONFUSABLE = {
+    "car": "van",
+    "van": "car",
+    "bus": "van",
+    "pedestrian": "cyclist",
+    "cyclist": "scooter_rider",
+    "scooter_rider": "cyclist",
+    "traffic_light": "traffic_sign",
+    "traffic_sign": "traffic_light",
+}
+
+
+def predictions(truth, day_recall, night_recall, jitter, seed, *, false_alarms=6.0):
+    """COCO-style detections that behave like a real detector's.
+
+    Each ground-truth box is found with a probability that falls with its size and at
+    night (the class's recall is the average); a found box is scored by how visible it
+    is, with noise, so hits and misses of the score ranking overlap. Among found boxes
+    some are badly localised (IoU well under 0.5: a false positive and a miss at once),
+    some get a confusable class (a van called a car), some are duplicated with a lower
+    score. False alarms on the background are mostly weak, a tenth of them confident.
+    """
     rng = np.random.default_rng(seed)
     night_images = {im["id"] for im in truth["images"] if "night" in im["tags"]}
     frames = {im["id"]: (im["width"], im["height"]) for im in truth["images"]}
+    index = {name: k for k, name in enumerate(CLASSES)}
     out = []
 
     def add(image_id, k, box, score):
@@ -140,36 +164,76 @@ def predictions(truth, day_recall, night_recall, jitter, seed):
                 "image_id": image_id,
                 "category_id": k + 1,
                 "bbox": [round(x, 2), round(y, 2), round(w, 2), round(h, 2)],
-                "score": round(float(score), 4),
+                "score": round(float(np.clip(score, 0.001, 0.999)), 4),
             }
         )
 
+    def scored(mean, concentration=7.0):
+        mean = float(np.clip(mean, 0.05, 0.95))
+        return rng.beta(mean * concentration, (1 - mean) * concentration)
+
     for ann in truth["annotations"]:
         k = ann["category_id"] - 1
-        recall = night_recall[k] if ann["image_id"] in night_images else day_recall[k]
-        if rng.random() >= recall:
-            continue
         x, y, w, h = ann["bbox"]
+        frame_height = frames[ann["image_id"]][1]
+        night = ann["image_id"] in night_images
+        # 0 for a box 3 % of the frame high, 1 for 25 % and more.
+        visibility = float(np.clip(np.log(h / (0.03 * frame_height)) / np.log(25 / 3), 0, 1))
+        recall = (night_recall if night else day_recall)[k]
+        if rng.random() >= np.clip(recall + 0.3 * (visibility - 0.5), 0.01, 0.995):
+            if rng.random() < 0.4:  # barely seen: a weak, loose box
+                loose = 2.5 * jitter
+                add(
+                    ann["image_id"],
+                    k,
+                    (x + rng.normal(0, loose * w), y + rng.normal(0, loose * h), w, h),
+                    scored(0.12, 5.0),
+                )
+            continue  # otherwise missed
+        score = scored(0.42 + 0.4 * visibility - (0.1 if night else 0.0))
+        kind = rng.random()
+        if kind < 0.10:  # badly localised: shifted by half its size or more
+            dx, dy = rng.uniform(0.45, 0.8) * w * rng.choice([-1, 1]), rng.normal(0, 0.2) * h
+            add(ann["image_id"], k, (x + dx, y + dy, w, h), score * 0.9)
+            continue
+        if kind < 0.15:  # the right place, a confusable class
+            k = index[CONFUSABLE[CLASSES[k]]]
+            score *= 0.8
         box = (
             x + rng.normal(0, jitter * w),
             y + rng.normal(0, jitter * h),
             w * np.exp(rng.normal(0, jitter)),
             h * np.exp(rng.normal(0, jitter)),
         )
-        add(ann["image_id"], k, box, rng.beta(6, 2))
-        if rng.random() < 0.08:
-            add(ann["image_id"], k, (box[0] + 3, box[1] + 2, box[2], box[3]), rng.beta(2, 4))
+        add(ann["image_id"], k, box, score)
+        if rng.random() < 0.08:  # a duplicate, slightly offset, weaker
+            add(
+                ann["image_id"],
+                k,
+                (box[0] + 0.1 * w, box[1] + 0.05 * h, box[2], box[3]),
+                score * 0.6,
+            )
     for image in truth["images"]:
         width, height = image["width"], image["height"]
-        for _ in range(int(rng.poisson(2))):
+        for _ in range(int(rng.poisson(false_alarms))):
             k = int(rng.choice(len(CLASSES), p=FREQUENCY / FREQUENCY.sum()))
             h = float(rng.uniform(20, height / 4))
+            confident = rng.random() < 0.08
             add(
                 image["id"],
                 k,
                 (rng.uniform(0, width - h), rng.uniform(0, height - h), h * ASPECT[k], h),
-                rng.beta(1.5, 5),
+                scored(0.7 if confident else 0.15, 6.0),
             )
+    return out
+
+
+def spoiled(detections):
+    """The same detections with one box of negative width, as a broken export writes it."""
+    out = [dict(d) for d in detections]
+    at = len(out) // 2
+    x, y, w, h = out[at]["bbox"]
+    out[at]["bbox"] = [x, y, -w, h]
     return out
 
 
@@ -180,3 +244,68 @@ def release_dates(count, today=None):
     return [
         today - datetime.timedelta(days=90 - i * step, hours=(i * 7) % 11) for i in range(count)
     ]
+
+
+DETECTORS = [
+    ("forward", "Forward camera", "Front-facing 1280x720 camera of the harbour shuttles."),
+    ("kerbside", "Kerbside camera", "Side camera watching the kerb at stops."),
+]
+VERSIONS = {"forward": FORWARD_VERSIONS, "kerbside": KERBSIDE_VERSIONS}
+
+# The example release criteria, introduced once forward 1.2 was approved. Thresholds
+# sit below what the baselines reach, so a genuinely better candidate passes.
+RULES = [
+    {"kind": "min_value", "metric": "AP50", "class": "pedestrian", "split": "*", "threshold": 0.5},
+    {"kind": "max_drop", "metric": "AP", "class": "mean", "split": "*", "tolerance": 1.0},
+    {
+        "kind": "no_significant_drop",
+        "metric": "AP",
+        "class": "*",
+        "split": "*",
+        "confidence": 0.95,
+        "tolerance": 1.0,
+    },
+]
+CRITERIA_AFTER = ("forward", "1.2")
+
+DECISIONS = {  # the lead's decisions, two days after each version's upload
+    ("forward", "0.9"): ("rejected", "Trial run on the new labels; not for the fleet."),
+    ("forward", "1.0"): ("approved", "First release for the harbour loop."),
+    ("forward", "1.1"): ("rejected", "Superseded by 1.2 before the fleet update."),
+    ("forward", "1.2"): ("approved", "Better on every split."),
+    ("forward", "1.3"): (
+        "rejected",
+        "No gain over 1.2; its small drops are noise, not worth an update.",
+    ),
+    ("forward", "1.4"): ("approved", "Clear gain, night included."),
+    ("kerbside", "0.9"): ("rejected", "Trial run."),
+    ("kerbside", "1.0"): ("approved", "Kerbside stops covered."),
+    ("kerbside", "1.1"): ("approved", "Fewer misses at the ferry terminal stop."),
+    ("kerbside", "1.2"): ("approved", "Better at dusk and in rain."),
+}
+UPLOADS = {  # versions not uploaded on every split as usual
+    ("forward", "1.7"): {"only": "bay-day:1"},  # incomplete: the other splits never came
+    ("kerbside", "1.3"): {"broken": "bay-night:2"},  # a broken export, replaced a day later
+}
+
+
+def index_of(key, label):
+    return VERSIONS[key].index(label)
+
+
+def story(now):
+    """The scenario's events in time order: ``(moment, action, detector key, version
+    label, detail)`` with action register, decide, replace or criteria."""
+    day = datetime.timedelta(days=1)
+    events = []
+    for key, labels in VERSIONS.items():
+        for label, when in zip(labels, release_dates(len(labels), today=now - 3 * day)):
+            upload = UPLOADS.get((key, label), {})
+            events.append((when, "register", key, label, upload))
+            if "broken" in upload:
+                events.append((when + day, "replace", key, label, upload["broken"]))
+            if (key, label) in DECISIONS:
+                events.append((when + 2 * day, "decide", key, label, DECISIONS[(key, label)]))
+    criteria_at = next(e[0] for e in events if e[1] == "decide" and e[2:4] == CRITERIA_AFTER)
+    events.append((criteria_at + day / 4, "criteria", None, None, None))
+    return {"start": now - 95 * day, "events": sorted(events, key=lambda e: e[0])}

@@ -333,6 +333,17 @@ class ErrorSerializer(serializers.Serializer):
 # Inputs ----------------------------------------------------------------------------
 
 
+class DetectorInput(serializers.Serializer):
+    team = serializers.IntegerField(help_text="Team id; only its leads create detectors")
+    name = serializers.CharField(max_length=100)
+    classes = serializers.ListField(child=serializers.CharField(max_length=64), allow_empty=False)
+    description = serializers.CharField(required=False, default="", allow_blank=True)
+    suite = serializers.JSONField(
+        help_text="The benchmark suite: splits, protocols, box_policy, score_threshold, "
+        "class_thresholds (as on the suite endpoint)"
+    )
+
+
 class VersionInput(serializers.Serializer):
     detector = serializers.IntegerField()
     label = serializers.CharField(max_length=64)

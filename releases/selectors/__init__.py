@@ -10,6 +10,7 @@ from .access import (  # noqa: F401
     detector_for,
     evaluation_for,
     evaluations_of,
+    lead_teams,
     reads_all_teams,
     role_in,
     version_for,
@@ -38,6 +39,7 @@ from .decisions import (  # noqa: F401
     outcomes_of,
     state_of,
     verdict_summary,
+    version_badges,
     version_states,
 )
 from .evidence import (  # noqa: F401
@@ -60,5 +62,6 @@ from .scores import (  # noqa: F401
 )
 from .version import (  # noqa: F401
     replaced_sets,
+    verdict_page,
     version_scorecards,
 )

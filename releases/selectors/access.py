@@ -39,6 +39,15 @@ def role_in(user, team):
     return membership.role if membership else None
 
 
+def lead_teams(user):
+    """The teams ``user`` leads, by name: where they may create detectors."""
+    return list(
+        Team.objects.filter(
+            memberships__user=user, memberships__role=Membership.Role.LEAD
+        ).order_by("name")
+    )
+
+
 def detector_for(user, detector_id):
     """The detector if ``user`` may see it, else ``Detector.DoesNotExist``."""
     return visible_detectors(user).get(pk=detector_id)

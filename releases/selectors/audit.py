@@ -6,10 +6,11 @@ import json
 from django.db.models import CharField, Exists, OuterRef, Q, Value
 from django.db.models.functions import Cast, Concat
 
-from ..models import AuditEvent, ModelVersion, PredictionSet
+from ..models import ModelVersion, PredictionSet
 from .access import visible_audit_events, visible_detectors
 
 PAGE_SIZE = 100
+SPEC_PAGES = {"criteria changed": "criteria", "suite changed": "suite"}  # kind -> page
 
 
 def subject_keys(queryset, prefix):
@@ -118,9 +119,9 @@ def subject_links(user, events):
         pk = int(tail) if tail.isdigit() else None
         link = None
         if prefix == "detector" and pk in names:
-            page = {
-                AuditEvent.Kind.CRITERIA_CHANGED: "criteria",
-            }.get(e.kind, "detector")
+            page = {"criteria changed": "criteria", "suite changed": "suite"}.get(
+                e.kind, "detector"
+            )
             link = {"page": page, "id": pk, "label": names[pk].name}
         elif prefix == "version" and pk in versions:
             v = versions[pk]

@@ -50,6 +50,37 @@ def state_of(version, baseline, blocked=()):
     return "blocked" if version.pk in blocked else "candidate"
 
 
+def version_badges(versions):
+    """{version id: badge} for the pages' lists and charts, in three queries: a decided
+    version's decision (baseline, approved, rejected), else the verdict of its newest
+    judgement (incomplete, regression, pass), else "not judged". Only the version page
+    and the overview's candidates read the exact, current verdict (``verdicts.verdict_of``).
+    Versions should come with ``select_related("sign_off")``."""
+    from ..models import Judgement, SignOff
+
+    versions = list(versions)
+    baselines = baselines_of({v.detector_id for v in versions})
+    newest = {}
+    for version_id, verdict in (
+        Judgement.objects.filter(version__in=versions)
+        .order_by("version_id", "-id")
+        .values_list("version_id", "verdict")
+    ):
+        newest.setdefault(version_id, verdict)
+    out = {}
+    for v in versions:
+        try:
+            decision = v.sign_off.decision
+        except SignOff.DoesNotExist:
+            decision = None
+        base = baselines.get(v.detector_id)
+        if base is not None and base.pk == v.pk:
+            out[v.pk] = "baseline"
+        else:
+            out[v.pk] = decision or newest.get(v.pk, "not judged")
+    return out
+
+
 def version_states(versions):
     """{version id: badge} for many versions of any detectors, in three queries."""
     versions = list(versions)

@@ -3,7 +3,7 @@
 import numpy as np
 
 from ..models import PredictionSet
-from .decisions import baseline_of, blocked_versions, state_of
+from .decisions import version_badges
 from .scores import METRICS, _splits
 
 
@@ -17,8 +17,7 @@ def history_chart(detector):
     from evaluation.models import ClassScore
 
     versions = list(detector.versions.select_related("sign_off").order_by("created_at"))
-    baseline = baseline_of(detector)
-    blocked = blocked_versions(versions)
+    badges = version_badges(versions)
     sets = list(
         PredictionSet.objects.current()
         .filter(version__detector=detector)
@@ -78,7 +77,7 @@ def history_chart(detector):
                 "id": v.pk,
                 "label": v.label,
                 "date": v.created_at.date().isoformat(),
-                "state": state_of(v, baseline, blocked),
+                "state": badges[v.pk],
             }
             for v in versions
         ],

@@ -2,13 +2,43 @@
 
 from ..models import PredictionSet
 from .access import visible_detectors
-from .decisions import blocked_versions, state_of
+from .decisions import version_badges
 from .scores import _scorecards
+
+CANDIDATES_SHOWN = 3
+
+
+def _candidates(detectors, baseline):
+    """{detector id: up to three undecided versions newer than its baseline, newest
+    first, each with its current verdict and how many uploads were replaced}."""
+    from .. import verdicts
+    from ..models import ModelVersion
+
+    out = {d.pk: [] for d in detectors}
+    undecided = ModelVersion.objects.filter(detector__in=detectors, sign_off=None)
+    for version in undecided.select_related("detector").order_by("-created_at", "-id"):
+        base = baseline[version.detector_id]
+        shown = out[version.detector_id]
+        if len(shown) < CANDIDATES_SHOWN and (base is None or version.created_at > base.created_at):
+            shown.append(version)
+    versions = [v for shown in out.values() for v in shown]
+    replaced = {}
+    for version_id in PredictionSet.objects.filter(
+        version__in=versions, replaced_by__isnull=False
+    ).values_list("version_id", flat=True):
+        replaced[version_id] = replaced.get(version_id, 0) + 1
+    return {
+        detector_id: [
+            {"version": v, "verdict": verdicts.verdict_of(v), "replaced": replaced.get(v.pk, 0)}
+            for v in shown
+        ]
+        for detector_id, shown in out.items()
+    }
 
 
 def overview_for(user):
-    """For each visible detector: its newest version, headline AP per split, and
-    evaluations still queued or running (with progress)."""
+    """For each visible detector: its baseline, its newest candidates with their
+    verdicts, headline AP per split, and evaluations still queued or running."""
     from evaluation.models import Evaluation
 
     from ..models import ModelVersion
@@ -19,12 +49,15 @@ def overview_for(user):
     versions = ModelVersion.objects.filter(detector__in=detectors).select_related("sign_off")
     for version in versions.order_by("created_at"):
         newest[version.detector_id] = version
-    for version in ModelVersion.objects.filter(
-        detector__in=detectors, sign_off__decision="approved"
-    ).order_by("sign_off__decided_at"):
+    for version in (
+        ModelVersion.objects.filter(detector__in=detectors, sign_off__decision="approved")
+        .select_related("sign_off")
+        .order_by("sign_off__decided_at")
+    ):
         baseline[version.detector_id] = version
     shown = [v for v in [*newest.values(), *baseline.values()] if v]
-    blocked = blocked_versions(shown)
+    badges = version_badges(shown)
+    candidates = _candidates(detectors, baseline)
     sets = list(
         PredictionSet.objects.current().filter(version__in=shown).select_related("split", "version")
     )
@@ -64,7 +97,8 @@ def overview_for(user):
                 "detector": detector,
                 "newest": version,
                 "baseline": base,
-                "newest_state": state_of(version, base, blocked) if version else None,
+                "newest_state": badges[version.pk] if version else None,
+                "candidates": candidates[detector.pk],
                 "headline": headline,
                 "pending": running,
             }

@@ -65,3 +65,42 @@ def replaced_sets(version):
     for ps in sets:
         ps.failures = errors.get(ps.pk, [])
     return sets
+
+
+DECIDING = ("fail", "missing")
+DECIDING_SHOWN = 6  # more are folded, so the sign-off form stays in the first screen
+
+
+def verdict_page(version, judgement_id=None):
+    """The top of the version page: the current verdict, the outcomes of its judgement
+    (or of an earlier one, by id) split into what decides it (failing and missing,
+    the first six shown) and the rest (folded), the verdict's reasons that no shown
+    outcome already states (a failed evaluation, a missing split), and the earlier
+    judgements."""
+    from .. import verdicts
+    from ..models import Judgement
+    from .decisions import outcomes_of
+
+    verdict = verdicts.verdict_of(version)
+    judgements = list(
+        Judgement.objects.filter(version=version)
+        .select_related("criteria", "suite", "baseline")
+        .order_by("-id")
+    )
+    shown = verdict.judgement
+    if judgement_id is not None:
+        shown = next((j for j in judgements if j.pk == judgement_id), shown)
+    outcomes = outcomes_of(version, shown) if shown is not None else []
+    deciding = [o for o in outcomes if o.status in DECIDING]
+    stated = {o.detail for o in deciding}
+    return {
+        "verdict": verdict,
+        "reasons": [r for r in verdict.reasons if r not in stated],
+        "deciding_total": len(deciding),
+        "judgement": shown,
+        "earlier_shown": shown is not None and shown != verdict.judgement,
+        "deciding": deciding[:DECIDING_SHOWN],
+        "deciding_more": deciding[DECIDING_SHOWN:],
+        "others": [o for o in outcomes if o.status not in DECIDING],
+        "earlier": [j for j in judgements if j != verdict.judgement],
+    }

@@ -141,6 +141,8 @@ def _pages(detector, splits, versions):
         "baseline": f"/versions/{versions[0].pk}/",
         "compare": f"/detectors/{detector.pk}/compare/",
         "criteria": f"/detectors/{detector.pk}/criteria/",
+        "suite": f"/detectors/{detector.pk}/suite/",
+        "new-detector": "/detectors/new/",
         "evidence": f"/versions/{versions[0].pk}/evidence/",
         "evidence-api": f"/api/v1/versions/{versions[0].pk}/evidence/?format=html",
         "audit": "/audit/",

@@ -2,12 +2,13 @@
 
 from drf_spectacular.types import OpenApiTypes
 from drf_spectacular.utils import extend_schema
-from rest_framework import generics
+from rest_framework import exceptions, generics
 from rest_framework.response import Response
 from rest_framework.views import APIView
 
 from ... import criteria, selectors, suites
 from .. import serializers as s
+from ..errors import error_response
 from .base import (
     Endpoint,
     _detector,
@@ -64,6 +65,30 @@ class DetectorList(DetectorMixin, generics.ListAPIView):
         if name := _text(self.request, "name"):
             queryset = queryset.filter(name__iexact=name)
         return queryset
+
+    @extend_schema(
+        request=s.DetectorInput,
+        responses={201: s.DetectorSerializer, 404: error_response(404)},
+        summary="Create a detector with its benchmark suite (leads of the team)",
+    )
+    def post(self, request):
+        from ... import detectors
+
+        data = _valid(s.DetectorInput, request)
+        team = selectors.visible_teams(request.user).filter(pk=data["team"]).first()
+        if team is None:
+            raise exceptions.NotFound("team: no such team")
+        created = detectors.create_detector(
+            request.user,
+            team,
+            data["name"],
+            data["classes"],
+            data["suite"],
+            description=data["description"],
+        )
+        return Response(
+            s.DetectorSerializer(created, context=self.get_serializer_context()).data, status=201
+        )
 
 
 class DetectorDetail(DetectorMixin, generics.RetrieveAPIView):

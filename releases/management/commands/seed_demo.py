@@ -1,118 +1,184 @@
+"""Seed the invented Kestrel Bay scenario by replaying about three months of its history."""
+
+import datetime
 import json
 import secrets
-import time
+from contextlib import contextmanager
+from unittest import mock
 
 from django.contrib.auth import get_user_model
 from django.core.files.base import ContentFile
 from django.core.management.base import BaseCommand, CommandError
-from django.db import transaction
+from django.test.utils import override_settings
+from django.utils import timezone
 
 from evaluation import services as evaluation_services
-from evaluation.models import BenchmarkSplit, Evaluation
-from releases import demo, services, verdicts
-from releases.models import Detector, Membership, ModelVersion, SignOff, Team
+from evaluation.models import BenchmarkSplit
+from releases import criteria, demo, services, suites
+from releases.models import Membership, Team
 
 TEAM = "Shuttle Perception"
 PROTOCOLS = ("coco", "recall40")
+REQUIRED = ["bay-day", "bay-night", "ring-road"]  # bay-night follows its newest revision
+
+
+class SimulatedClock:
+    """``timezone.now`` for a replayed history: moved to a past moment, it runs on from
+    there with the real clock, and never goes backwards (so every ordering the code
+    relies on, e.g. judged after the last evaluation, holds as it would have)."""
+
+    def __init__(self):
+        self.offset = None
+        self.real_now = timezone.now
+
+    def at(self, moment):
+        offset = moment - self.real_now()
+        if self.offset is None or offset > self.offset:
+            self.offset = offset
+
+    def now(self):
+        return self.real_now() + (self.offset or datetime.timedelta(0))
+
+
+@contextmanager
+def replayed(clock):
+    """Every ``timezone.now()`` reads the simulated clock and every task runs here, at
+    once (Celery's eager mode), so each step happens at its moment in the story."""
+    from benchbook.celery import app
+
+    eager = app.conf.task_always_eager
+    app.conf.task_always_eager = True
+    try:
+        with mock.patch.object(timezone, "now", clock.now):
+            yield
+    finally:
+        app.conf.task_always_eager = eager
 
 
 class Command(BaseCommand):
     help = (
-        "Seed the invented Kestrel Bay scenario: a team, two detectors, frozen splits and "
-        "about three months of versions, all queued for the real worker to score."
+        "Seed the invented Kestrel Bay scenario: a team, two detectors, frozen splits, "
+        "release criteria and about three months of versions, scored, judged and signed "
+        "off at their dates (replayed on a simulated clock, tasks run in this process)."
     )
 
     def add_arguments(self, parser):
         parser.add_argument("--password", help="password for the demo users (default: random)")
-        parser.add_argument(
-            "--wait",
-            type=float,
-            default=0,
-            help="wait up to this many seconds for the worker to finish",
-        )
 
-    def handle(self, *args, password, wait, **options):
+    def handle(self, *args, password, **options):
         if Team.objects.filter(name=TEAM).exists():
             self.stdout.write(
                 "demo already seeded; the users keep the password printed then "
                 "(`manage.py changepassword lead` sets a new one)"
             )
-        else:
-            password = password or secrets.token_urlsafe(9)
-            self._seed(password)
-            from releases import tokens
+            return
+        password = password or secrets.token_urlsafe(9)
+        clock = SimulatedClock()
+        story = demo.story(timezone.now())
+        with replayed(clock):
+            self._replay(story, clock, password)
+        from releases import tokens
 
-            engineer = get_user_model().objects.get(username="engineer")
-            _, token = tokens.create_token(engineer, "demo pipeline")
-            self.stdout.write(
-                f"demo users lead, engineer, reviewer — password: {password}\n"
-                f"API token of engineer (for python -m releases.client): {token}\n"
-                "evaluations are queued; the worker scores them"
-                + ("" if wait else "; rerun with --wait once a worker runs, for the sign-offs")
+        engineer = get_user_model().objects.get(username="engineer")
+        _, token = tokens.create_token(engineer, "demo pipeline")
+        self.stdout.write(
+            f"demo users lead, engineer, reviewer — password: {password}\n"
+            f"API token of engineer (for python -m releases.client): {token}"
+        )
+
+    def _replay(self, story, clock, password):
+        clock.at(story["start"])
+        users = self._users(password)
+        team = services.create_team(TEAM, [(users[r], r) for r in Membership.Role.values])
+        splits = self._splits()
+        detectors = {}
+        for key, name, description in demo.DETECTORS:
+            detector = services.create_detector(
+                team, name, demo.CLASSES, protocols=PROTOCOLS, description=description
             )
-        if wait:
-            self._wait(wait)
-            self._sign_offs()
-            self._criteria()
+            suites.set_suite(
+                detector,
+                users["lead"],
+                {
+                    "splits": [{"name": n, "revision": None} for n in REQUIRED],
+                    "protocols": list(PROTOCOLS),
+                    "box_policy": "keep",
+                    "score_threshold": 0.5,
+                    "class_thresholds": {"traffic_light": 0.4},
+                },
+            )
+            detectors[key] = detector
+        versions = {}
+        for moment, action, key, label, detail in story["events"]:
+            clock.at(moment)
+            detector = detectors[key] if key else None
+            if action == "criteria":
+                for d in detectors.values():
+                    criteria.set_criteria(d, users["lead"], demo.RULES)
+                self.stdout.write(f"  {moment:%Y-%m-%d} release criteria set")
+            elif action == "register":
+                versions[(key, label)] = self._register(detector, key, label, splits, users, detail)
+            elif action == "decide":
+                decision, comment = detail
+                version = versions[(key, label)]
+                services.sign_off(version, users["lead"], decision, comment)
+                self.stdout.write(f"  {moment:%Y-%m-%d} {version}: {decision}")
+            elif action == "replace":
+                self._upload(versions[(key, label)], key, label, splits, users, detail, good=True)
+                self.stdout.write(f"  {moment:%Y-%m-%d} {detector.name} {label}: upload replaced")
 
-    def _seed(self, password):
+    def _users(self, password):
         users = {}
-        User = get_user_model()
         for username, first, last in (
             ("lead", "Maren", "Quist"),
             ("engineer", "Tobi", "Achterberg"),
             ("reviewer", "Idun", "Solberg"),
         ):
-            user = User.objects.create_user(
+            users[username] = get_user_model().objects.create_user(
                 username, f"{username}@larkspur.invalid", password, first_name=first, last_name=last
             )
-            users[username] = user
-        team = services.create_team(TEAM, [(users[r], r) for r in Membership.Role.values])
-        splits = self._splits()
-        detectors = {
-            "forward": (
-                services.create_detector(
-                    team,
-                    "Forward camera",
-                    demo.CLASSES,
-                    protocols=PROTOCOLS,
-                    description="Front-facing 1280x720 camera of the harbour shuttles.",
-                ),
-                demo.FORWARD_VERSIONS,
-            ),
-            "kerbside": (
-                services.create_detector(
-                    team,
-                    "Kerbside camera",
-                    demo.CLASSES,
-                    protocols=PROTOCOLS,
-                    description="Side camera watching the kerb at stops.",
-                ),
-                demo.KERBSIDE_VERSIONS,
-            ),
-        }
-        for key, (detector, labels) in detectors.items():
-            for index, (label, when) in enumerate(zip(labels, demo.release_dates(len(labels)))):
-                with transaction.atomic():
-                    version = services.create_version(
-                        detector,
-                        label,
-                        users["engineer"],
-                        created_at=when,
-                        source_commit=secrets.token_hex(20)[:12],
-                        training_ref=f"runs/{key}/{label}",
-                        notes=f"{detector.name} {label}, trained on the Kestrel Bay fleet logs.",
-                    )
-                    day, night, jitter = demo.version_quality(key, index, label)
-                    for split, truth in splits:
-                        seed = (index + 1) * 1000 + split.pk * 17 + (0 if key == "forward" else 7)
-                        dets = demo.predictions(truth, day, night, jitter, seed)
-                        upload = ContentFile(
-                            json.dumps(dets).encode(),
-                            name=f"{key}-{label}-{split.name}-r{split.revision}.json",
-                        )
-                        services.submit_predictions(version, split, upload, users["engineer"])
-                self.stdout.write(f"  {detector.name} {label}: predictions on {len(splits)} splits")
+        return users
+
+    def _register(self, detector, key, label, splits, users, detail):
+        version = services.create_version(
+            detector,
+            label,
+            users["engineer"],
+            source_commit=secrets.token_hex(20)[:12],
+            training_ref=f"runs/{key}/{label}",
+            notes=f"{detector.name} {label}, trained on the Kestrel Bay fleet logs.",
+        )
+        only, broken = detail.get("only"), detail.get("broken")
+        for split, truth in splits:
+            if only and f"{split.name}:{split.revision}" != only:
+                continue
+            self._upload(version, key, label, [(split, truth)], users, broken, good=False)
+        shown = f"on {only} only" if only else f"on {len(splits)} splits"
+        self.stdout.write(f"  {version.created_at:%Y-%m-%d} {version}: predictions {shown}")
+        return version
+
+    def _upload(self, version, key, label, splits, users, broken, *, good):
+        """Upload (and so score and judge) predictions; ``broken`` names the split whose
+        first file is bad in a way only the worker sees: checked by the worker, as a file
+        over the inline-check limit would be, it fails and is replaced later."""
+        index = demo.index_of(key, label)
+        day, night, jitter = demo.version_quality(key, index, label)
+        for split, truth in splits:
+            name = f"{split.name}:{split.revision}"
+            if good and name != broken:
+                continue
+            seed = (index + 1) * 1000 + split.pk * 17 + (0 if key == "forward" else 7)
+            detections = demo.predictions(truth, day, night, jitter, seed)
+            bad = not good and name == broken
+            if bad:
+                detections = demo.spoiled(detections)
+            upload = ContentFile(
+                json.dumps(detections).encode(),
+                name=f"{key}-{label}-{split.name}-r{split.revision}.json",
+            )
+            limit = {"BENCHBOOK_INLINE_VALIDATION_BYTES": 0} if bad else {}
+            with override_settings(**limit):
+                services.submit_predictions(version, split, upload, users["engineer"])
 
     def _splits(self):
         out = []
@@ -136,68 +202,3 @@ class Command(BaseCommand):
         )
         self.stdout.write(f"  frozen {split} ({split.image_count} images, {split.box_count} boxes)")
         return split
-
-    def _sign_offs(self):
-        """The lead's past decisions: approvals make the baselines (forward 1.4)."""
-        lead = get_user_model().objects.get(username="lead")
-        decisions = [
-            ("forward-camera", "1.0", "approved", "First release for the harbour loop."),
-            ("forward-camera", "1.2", "approved", "Better on every split."),
-            ("forward-camera", "1.3", "rejected", "No gain over 1.2; not worth a fleet update."),
-            ("forward-camera", "1.4", "approved", "Clear gain, night included."),
-            ("kerbside-camera", "1.1", "approved", "Kerbside stops covered."),
-        ]
-        for slug, label, decision, comment in decisions:
-            version = ModelVersion.objects.get(detector__slug=slug, label=label)
-            if SignOff.objects.filter(version=version).exists():
-                continue
-            # The previous approval changed the baseline: judge against it first (what
-            # the worker's re-judging does), since a decision needs a final verdict.
-            verdicts.judge(version.pk)
-            services.sign_off(version, lead, decision, comment)
-            self.stdout.write(f"  {version}: {decision}")
-
-    def _criteria(self):
-        """The example rules, then the worker judges every version newer than the baseline."""
-        from releases import criteria, selectors
-        from releases.services import _send
-        from releases.tasks import judge
-
-        lead = get_user_model().objects.get(username="lead")
-        rules = [
-            {
-                "kind": "min_value",
-                "metric": "AP50",
-                "class": "pedestrian",
-                "split": "*",
-                "threshold": 0.8,
-            },
-            {"kind": "max_drop", "metric": "AP", "class": "mean", "split": "*", "tolerance": 0.5},
-            {
-                "kind": "no_significant_drop",
-                "metric": "AP",
-                "class": "*",
-                "split": "*",
-                "confidence": 0.95,
-            },
-        ]
-        for detector in Detector.objects.all():
-            if criteria.current_criteria(detector) is None:
-                criteria.set_criteria(detector, lead, rules)
-            baseline = selectors.baseline_of(detector)
-            for version in detector.versions.filter(
-                created_at__gt=baseline.created_at, sign_off=None
-            ):
-                _send(judge, version.pk)
-                self.stdout.write(f"  {version}: queued for judging against {baseline.label}")
-
-    def _wait(self, seconds):
-        deadline = time.monotonic() + seconds
-        while True:
-            pending = Evaluation.objects.exclude(state__in=["done", "failed"]).count()
-            if not pending:
-                self.stdout.write("all evaluations finished")
-                return
-            if time.monotonic() > deadline:
-                raise CommandError(f"{pending} evaluations still pending after {seconds:g} s")
-            time.sleep(1)
