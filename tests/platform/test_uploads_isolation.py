@@ -14,7 +14,7 @@ from evaluation.models import Evaluation, PredictionFile
 from releases import services
 from releases.models import PredictionSet
 
-from .conftest import detections_for, upload
+from .conftest import detections_for, triggers_off, upload
 from .test_api import API, client_for
 
 pytestmark = pytest.mark.django_db
@@ -102,7 +102,8 @@ def test_pages_show_only_the_readers_own_upload(twins, users, client):
     evaluations = page[page.index("<h2>Evaluations</h2>") :]
     assert ">voc<" not in evaluations and ">coco<" in evaluations
     assert "2026-01-05" not in page
-    Evaluation.objects.filter(pk=twins["a_voc"].pk).update(state="running")
+    with triggers_off():  # planted: a finished evaluation cannot change otherwise
+        Evaluation.objects.filter(pk=twins["a_voc"].pk).update(state="running")
     overview = client.get(reverse("overview")).content.decode()
     assert f"/evaluations/{twins['a_voc'].pk}.json" not in overview  # not B's to follow
     client.force_login(users["engineer"])
@@ -120,7 +121,8 @@ def test_a_replacement_reads_only_its_own_sets_evaluations(
     voc evaluation of the same bytes failed."""
     from evaluation.services import UploadConflict
 
-    Evaluation.objects.filter(pk=twins["a_voc"].pk).update(state="failed", error="x")
+    with triggers_off():  # planted: a finished evaluation cannot change otherwise
+        Evaluation.objects.filter(pk=twins["a_voc"].pk).update(state="failed", error="x")
     with pytest.raises(UploadConflict, match="whose evaluations are done"):
         services.submit_predictions(
             twins["b"].version,
