@@ -272,4 +272,10 @@ LOGGING = {
     "disable_existing_loggers": False,
     "handlers": {"console": {"class": "logging.StreamHandler"}},
     "root": {"handlers": ["console"], "level": os.environ.get("LOG_LEVEL", "INFO")},
+    # One line per audit event: shipped to an external log only when the operator asks.
+    "loggers": {
+        "releases.audit.head": {
+            "level": os.environ.get("BENCHBOOK_AUDIT_HEAD_LOG_LEVEL", "WARNING")
+        }
+    },
 }
