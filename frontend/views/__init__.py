@@ -1,0 +1,32 @@
+"""Pages, one module per page. Views parse input, call one service or selector, and render."""
+
+from .audit import audit_trail
+from .compare import compare, compare_intervals
+from .detector import detector, new_detector
+from .overview import overview
+from .specs import release_criteria, suite, webhook
+from .splits import load_split, split, split_list
+from .tokens import api_tokens
+from .uploads import evaluation_status, upload_predictions
+from .version import evidence, sign_off, version
+
+__all__ = [
+    "api_tokens",
+    "audit_trail",
+    "compare",
+    "compare_intervals",
+    "detector",
+    "evaluation_status",
+    "evidence",
+    "load_split",
+    "new_detector",
+    "overview",
+    "release_criteria",
+    "sign_off",
+    "split",
+    "split_list",
+    "suite",
+    "upload_predictions",
+    "version",
+    "webhook",
+]

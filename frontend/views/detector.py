@@ -1,0 +1,97 @@
+"""A detector's history page and the page where a lead creates a detector."""
+
+import json
+
+from django.contrib import messages
+from django.contrib.auth.decorators import login_required
+from django.core.exceptions import PermissionDenied
+from django.shortcuts import redirect, render
+from django.urls import reverse
+
+from evaluation.models import BenchmarkSplit
+from evaluation.services import UploadError
+from releases import selectors
+
+from .lookup import detector_or_404
+
+
+@login_required
+def detector(request, detector_id):
+    found = detector_or_404(request.user, detector_id)
+    chart = selectors.history_chart(found)
+    for entry in chart["versions"]:
+        entry["url"] = reverse("version", args=[entry["id"]])
+    table = [
+        {
+            "version": v,
+            "values": [chart["values"][str(s["id"])]["AP"]["mean"][i] for s in chart["splits"]],
+        }
+        for i, v in enumerate(chart["versions"])
+    ]
+    return render(
+        request,
+        "frontend/detector.html",
+        {
+            "detector": found,
+            "chart": chart,
+            "table": list(reversed(table)),
+            "can_upload": selectors.role_in(request.user, found.team) in selectors.UPLOAD_ROLES,
+        },
+    )
+
+
+@login_required
+def new_detector(request):
+    from releases import detectors, suites
+
+    teams = selectors.lead_teams(request.user)
+    if not teams:
+        raise PermissionDenied("only leads of a team can create its detectors")
+    splits = sorted({s.name for s in BenchmarkSplit.objects.all()})
+    template = {
+        "splits": [{"name": n, "revision": None} for n in splits],
+        "protocols": ["coco"],
+        "box_policy": "keep",
+        "score_threshold": 0.5,
+        "class_thresholds": {},
+    }
+    data = {
+        "team": request.POST.get("team", str(teams[0].pk)),
+        "name": request.POST.get("name", ""),
+        "classes": request.POST.get("classes", ""),
+        "description": request.POST.get("description", ""),
+        "suite": request.POST.get("suite") or json.dumps(template, indent=2),
+    }
+    error = None
+    if request.method == "POST":
+        team = next((t for t in teams if str(t.pk) == data["team"]), None)
+        try:
+            if team is None:
+                raise detectors.DetectorError("team: choose one of the teams you lead")
+            try:
+                spec = json.loads(data["suite"])
+            except json.JSONDecodeError as e:
+                raise detectors.DetectorError(
+                    f"suite: not valid JSON: {e.msg} at line {e.lineno}, column {e.colno}"
+                ) from None
+            found = detectors.create_detector(
+                request.user,
+                team,
+                data["name"],
+                data["classes"],
+                spec,
+                description=data["description"],
+            )
+        except (detectors.DetectorError, suites.SuiteError, UploadError) as e:
+            error = str(e)
+        else:
+            messages.success(
+                request, f"{found} created with suite v{suites.current_suite(found).number}"
+            )
+            return redirect("detector", detector_id=found.pk)
+    return render(
+        request,
+        "frontend/new_detector.html",
+        {"teams": teams, "data": data, "error": error},
+        status=400 if error else 200,
+    )
