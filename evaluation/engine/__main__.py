@@ -9,7 +9,7 @@ import json
 import math
 import sys
 
-from . import provenance
+from . import export, provenance
 from .errors import InputError
 from .evaluate import evaluate
 from .loaders import BOX_POLICIES, load_predictions, load_truth
@@ -46,6 +46,14 @@ def _finite(text):
     return value
 
 
+def _export_path(text):
+    try:
+        export.format_of(text)
+    except ValueError as e:
+        raise argparse.ArgumentTypeError(str(e)) from None
+    return text
+
+
 def build_parser():
     parser = argparse.ArgumentParser(
         prog="python -m evaluation.engine", description=__doc__.split("\n")[0]
@@ -76,6 +84,13 @@ def build_parser():
     score.add_argument("--unknown-classes", choices=("reject", "drop"), default="reject")
     score.add_argument("--cache", metavar="DIR", help="keep parsed input as .npz here")
     score.add_argument("--records", metavar="FILE.npz", help="also write the match records")
+    score.add_argument(
+        "--records-out",
+        metavar="FILE.csv|FILE.jsonl",
+        type=_export_path,
+        help="also write every detection and box with its outcome and reason, "
+        "as CSV or JSON Lines (by the extension)",
+    )
     explain = commands.add_parser(
         "explain", help="which protocol settings differ between two JSON results, in words"
     )
@@ -111,6 +126,8 @@ def main(argv=None):
         return EXIT_BAD_INPUT
     if args.records:
         records.save(args.records)
+    if args.records_out:
+        export.write(args.records_out, records, truth)
     if args.format == "json":
         json.dump(result, sys.stdout, indent=2, allow_nan=False)  # strict JSON only
         sys.stdout.write("\n")

@@ -19,6 +19,7 @@ threshold can ever match, so the rest are dropped before the walk.
 
 import numpy as np
 
+from . import reasons
 from .boxes import pair_iou
 from .protocols import BEST_OVERLAP, get_protocol
 from .records import MatchRecords
@@ -118,6 +119,8 @@ def match(truth, predictions, protocol):
         Detections beyond the protocol's per-image-and-class cap are left out, as the
         reference does. One match row per (size bucket, IoU slot, detection) that
         took a box; ``MatchRecords.outcomes`` turns them into TP / ignored flags.
+        Reasons at the primary slot (``reasons.attach``) and the detection boxes are
+        computed here too, so nothing downstream needs the predictions again.
     """
     protocol = get_protocol(protocol)
     n_classes = len(truth.classes)
@@ -159,7 +162,7 @@ def match(truth, predictions, protocol):
             truth.crowd,
         )
 
-    return MatchRecords(
+    records = MatchRecords(
         protocol=protocol.name,
         classes=tuple(truth.classes),
         area_names=tuple(name for name, _, _ in protocol.area_ranges),
@@ -180,6 +183,7 @@ def match(truth, predictions, protocol):
         gt_ignored=gt_ignored,
         tie_order=protocol.tie_order,
     )
+    return reasons.attach(records, truth, det_boxes, protocol)
 
 
 def _greedy(pair_det, pair_gt, pair_iou_, rank, det_group, det_cls, effective, gt_ignored, crowd):

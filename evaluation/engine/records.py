@@ -13,6 +13,10 @@ from dataclasses import dataclass, field, fields
 import numpy as np
 
 
+class MissingReasons(ValueError):
+    """Records saved before engine 2.2: no per-detection reasons or boxes."""
+
+
 @dataclass(eq=False)
 class MatchRecords:
     """Per-detection outcomes for every size bucket and IoU slot.
@@ -33,6 +37,16 @@ class MatchRecords:
         ``config = area * slots + slot``; ``match_box`` indexes the split's boxes.
     gt_ignored : bool array (areas, boxes)
         Ground truth that does not count towards the number of positives.
+    det_box : float64 array (detections, 4)
+        The detection's ``[x, y, w, h]``, for export and drill-down.
+    det_reason, det_ref_box, det_ref_iou : arrays (detections,)
+        Why it is what it is at the primary IoU (``reasons.DETECTION_REASONS`` codes),
+        the box that reason is about (-1 if none) and its IoU (NaN if none).
+    gt_reason, gt_ref_det, gt_ref_iou : arrays (boxes,)
+        ``reasons.BOX_REASONS`` codes, the related detection (-1) and its IoU (NaN).
+
+    The last seven are None for records saved before engine 2.2 (``has_reasons``);
+    ``reasons.attach`` computes them from the split and the predictions.
     """
 
     protocol: str
@@ -54,11 +68,31 @@ class MatchRecords:
     gt_image: np.ndarray
     gt_ignored: np.ndarray
     tie_order: str = "image"  # records saved before engine 2.1 were all "image"
+    det_box: np.ndarray | None = None
+    det_reason: np.ndarray | None = None
+    det_ref_box: np.ndarray | None = None
+    det_ref_iou: np.ndarray | None = None
+    gt_reason: np.ndarray | None = None
+    gt_ref_det: np.ndarray | None = None
+    gt_ref_iou: np.ndarray | None = None
     _sparse: dict = field(default_factory=dict, repr=False)
 
     @property
     def n_detections(self):
         return len(self.det_class)
+
+    @property
+    def has_reasons(self):
+        return self.det_reason is not None and self.det_box is not None
+
+    def require_reasons(self):
+        """Raise a clear error for records saved before reasons existed."""
+        if not self.has_reasons:
+            raise MissingReasons(
+                "these match records were saved before engine 2.2 and carry no reasons; "
+                "score the predictions again, or add them with reasons.attach(records, "
+                "truth, predictions.boxes[records.det_order], protocol)"
+            )
 
     @property
     def n_slots(self):
@@ -154,6 +188,8 @@ class MatchRecords:
             if f.name.startswith("_"):
                 continue
             value = getattr(self, f.name)
+            if value is None:
+                continue
             arrays[f.name] = value if isinstance(value, np.ndarray) else np.array(value)
         np.savez_compressed(path, **arrays)
 

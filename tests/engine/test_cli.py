@@ -157,3 +157,28 @@ def test_non_finite_threshold_is_refused(inputs, capsys, value):
         main(["score", "--truth", str(gt), "--predictions", str(dt), "--threshold", value])
     assert exit_info.value.code == 2
     assert "--threshold" in capsys.readouterr().err
+
+
+@pytest.mark.parametrize("name", ["records.csv", "records.jsonl"])
+def test_records_out_writes_every_detection_and_box(inputs, files, name):
+    """``--records-out`` writes one row per detection and per box (format by extension)."""
+    gt, dt = inputs
+    out = files.root / name
+    assert (
+        main(["score", "--truth", str(gt), "--predictions", str(dt), "--records-out", str(out)])
+        == 0
+    )
+    n_dets, n_boxes = (
+        len(json.loads(dt.read_text())),
+        len(json.loads(gt.read_text())["annotations"]),
+    )
+    lines = out.read_text().splitlines()
+    header = 1 if name.endswith(".csv") else 0
+    assert len(lines) == header + n_dets + n_boxes  # no cap binds on these files
+
+
+def test_records_out_refuses_an_unknown_extension(inputs, files, capsys):
+    gt, dt = inputs
+    with pytest.raises(SystemExit) as exit_:
+        main(["score", "--truth", str(gt), "--predictions", str(dt), "--records-out", "r.txt"])
+    assert exit_.value.code == 2 and ".csv or .jsonl" in capsys.readouterr().err

@@ -1,0 +1,164 @@
+"""Match records as rows: CSV or JSON Lines, streamed a block of rows at a time.
+
+One row per detection (accumulation order: class, score descending), then one per
+ground-truth box (split order). Memory beyond the records is one block of rows, whatever
+the number of detections. Columns (``COLUMNS``):
+
+``row``            ``detection`` or ``box``
+``image_id``       the split's image id
+``class``          the row's class
+``score``          detection score (empty for a box)
+``x, y, w, h``     the row's box, pixels
+``outcome``        ``tp`` / ``fp`` / ``ignored`` (detection), ``matched`` / ``missed`` /
+                   ``ignored`` (box)
+``reason``         ``reasons.DETECTION_REASONS`` or ``reasons.BOX_REASONS``
+``iou_threshold``  the primary IoU threshold of the row's class
+``detection``      0-based position in the predictions file: the detection's own, or for
+                   a box the matching / pointing / nearest detection's (empty if none)
+``box_id``         the box's annotation id: a box's own, or for a detection the box its
+                   reason is about (empty if none)
+``related_class``  class of that related box or detection
+``iou``            IoU with it
+"""
+
+import csv
+import io
+import json
+
+import numpy as np
+
+from .reasons import BOX_REASONS, DETECTION_REASONS, box_outcome, detection_outcome
+
+COLUMNS = (
+    "row",
+    "image_id",
+    "class",
+    "score",
+    "x",
+    "y",
+    "w",
+    "h",
+    "outcome",
+    "reason",
+    "iou_threshold",
+    "detection",
+    "box_id",
+    "related_class",
+    "iou",
+)
+BLOCK_ROWS = 20_000
+CONTENT_TYPES = {"csv": "text/csv; charset=utf-8", "jsonl": "application/x-ndjson"}
+
+
+def _check(records, truth):
+    records.require_reasons()
+    if records.n_images != truth.n_images or len(records.gt_class) != truth.n_boxes:
+        raise ValueError(
+            f"these records index {records.n_images} images and {len(records.gt_class)} "
+            f"boxes; the split given has {truth.n_images} and {truth.n_boxes}"
+        )
+
+
+def _optional(values, present):
+    """Python list with None where ``present`` is False."""
+    return [v if p else None for v, p in zip(values.tolist(), present.tolist())]
+
+
+def row_blocks(records, truth, block_rows=BLOCK_ROWS):
+    """Yield blocks of rows, each a dict column -> list of Python values (None = empty)."""
+    _check(records, truth)
+    classes = np.array(records.classes, dtype=object)
+    threshold = records.thresholds[0]
+    image_ids = np.asarray(truth.image_ids, dtype=object)
+    n = records.n_detections
+    for start in range(0, n, block_rows):
+        s = slice(start, min(n, start + block_rows))
+        cls, box = records.det_class[s], records.det_box[s]
+        ref, iou = records.det_ref_box[s].astype(np.int64), records.det_ref_iou[s]
+        has = ref >= 0
+        safe = np.where(has, ref, 0)
+        yield {
+            "row": ["detection"] * len(cls),
+            "image_id": image_ids[records.det_image[s]].tolist(),
+            "class": classes[cls].tolist(),
+            "score": records.det_score[s].tolist(),
+            "x": box[:, 0].tolist(),
+            "y": box[:, 1].tolist(),
+            "w": box[:, 2].tolist(),
+            "h": box[:, 3].tolist(),
+            "outcome": detection_outcome(records.det_reason[s]).tolist(),
+            "reason": np.array(DETECTION_REASONS)[records.det_reason[s]].tolist(),
+            "iou_threshold": threshold[cls].tolist(),
+            "detection": records.det_order[s].tolist(),
+            "box_id": _optional(truth.box_ids[safe], has),
+            "related_class": _optional(classes[truth.box_class[safe]], has),
+            "iou": _optional(iou, has),
+        }
+    m = truth.n_boxes
+    for start in range(0, m, block_rows):
+        s = slice(start, min(m, start + block_rows))
+        cls, box = truth.box_class[s], truth.boxes[s]
+        ref, iou = records.gt_ref_det[s].astype(np.int64), records.gt_ref_iou[s]
+        has = ref >= 0
+        safe = np.where(has, ref, 0)
+        yield {
+            "row": ["box"] * len(cls),
+            "image_id": image_ids[truth.box_image[s]].tolist(),
+            "class": classes[cls].tolist(),
+            "score": [None] * len(cls),
+            "x": box[:, 0].tolist(),
+            "y": box[:, 1].tolist(),
+            "w": box[:, 2].tolist(),
+            "h": box[:, 3].tolist(),
+            "outcome": box_outcome(records.gt_reason[s]).tolist(),
+            "reason": np.array(BOX_REASONS)[records.gt_reason[s]].tolist(),
+            "iou_threshold": threshold[cls].tolist(),
+            "detection": _optional(records.det_order[safe] if n else safe, has),
+            "box_id": truth.box_ids[s].tolist(),
+            "related_class": _optional(classes[records.det_class[safe]] if n else safe, has),
+            "iou": _optional(iou, has),
+        }
+
+
+def csv_chunks(records, truth, block_rows=BLOCK_ROWS):
+    """Yield the CSV text (header first) a block of rows at a time. Floats are written
+    with Python's shortest round-trip repr; an empty field is a missing value."""
+    buffer = io.StringIO()
+    writer = csv.writer(buffer, lineterminator="\n")
+    writer.writerow(COLUMNS)
+    yield buffer.getvalue()
+    for block in row_blocks(records, truth, block_rows):
+        buffer.seek(0)
+        buffer.truncate()
+        writer.writerows(zip(*(block[c] for c in COLUMNS)))
+        yield buffer.getvalue()
+
+
+def jsonl_chunks(records, truth, block_rows=BLOCK_ROWS):
+    """Yield JSON Lines text, one object per row (missing values are null)."""
+    encode = json.JSONEncoder(allow_nan=False, separators=(",", ":")).encode
+    for block in row_blocks(records, truth, block_rows):
+        yield "".join(
+            encode(dict(zip(COLUMNS, values))) + "\n"
+            for values in zip(*(block[c] for c in COLUMNS))
+        )
+
+
+FORMATS = {"csv": csv_chunks, "jsonl": jsonl_chunks}
+
+
+def format_of(path):
+    """``csv`` or ``jsonl`` from a file name; ValueError for anything else."""
+    name = str(path).lower()
+    for suffix, fmt in ((".csv", "csv"), (".jsonl", "jsonl"), (".ndjson", "jsonl")):
+        if name.endswith(suffix):
+            return fmt
+    raise ValueError(f"{path}: the records export is .csv or .jsonl")
+
+
+def write(path, records, truth, fmt=None):
+    """Write the export to ``path`` (format from its extension unless ``fmt``)."""
+    chunks = FORMATS[fmt or format_of(path)]
+    with open(path, "w", encoding="utf-8", newline="") as f:
+        for chunk in chunks(records, truth):
+            f.write(chunk)
