@@ -1,0 +1,108 @@
+"""Benchmark: the per-image comparison of two versions from their match records.
+
+    python bench/per_image.py [--images 5000 --detections 500000 --classes 80]
+
+Target (issue #13): for 5,000 images and 500,000 detections per version, the server
+work behind the per-image list — TP / FP-by-reason / missed counts of both versions at
+a threshold, and each image's contribution to one class's AP change (leave-one-out,
+``per_image.change_contributions``) — in <= 1 s. Measured for the class with the most
+detections (the slowest), over all images and over a tag slice, as CPU time of this
+process (the machine may be shared; wall time is printed beside it). The reference run is
+the plain way: re-scoring with ``scoring.headline`` once per image (timed on a few
+images and extrapolated); the ratio is printed.
+"""
+
+import argparse
+import json
+import pathlib
+import sys
+import time
+
+import numpy as np
+
+ROOT = pathlib.Path(__file__).resolve().parent.parent
+OUT = ROOT / "bench" / "out"
+TARGET_SECONDS = 1.0
+
+
+def main():
+    parser = argparse.ArgumentParser(description=__doc__.split("\n")[0])
+    parser.add_argument("--images", type=int, default=5000)
+    parser.add_argument("--detections", type=int, default=500_000)
+    parser.add_argument("--classes", type=int, default=80)
+    parser.add_argument("--protocol", default="coco")
+    args = parser.parse_args()
+    sys.path.insert(0, str(ROOT))
+    from bench.synthetic_split import generate
+    from evaluation.engine import load_predictions, load_truth, match
+    from evaluation.engine.per_image import change_contributions, image_counts
+    from evaluation.engine.scoring import headline
+
+    OUT.mkdir(parents=True, exist_ok=True)
+    truth, predictions = generate(
+        seed=7, n_images=args.images, detections=args.detections, n_classes=args.classes
+    )
+    for image in truth["images"]:  # a tag on about a third of the images
+        image["tags"] = ["night"] if image["id"] % 3 == 0 else []
+    rng = np.random.default_rng(8)
+    candidate = [
+        {**d, "score": round(min(1.0, max(0.0, d["score"] + rng.normal(0, 0.05))), 3)}
+        for d in predictions
+        if rng.random() > 0.05
+    ]
+    (OUT / "per-image-truth.json").write_text(json.dumps(truth))
+    (OUT / "per-image-baseline.json").write_text(json.dumps(predictions))
+    (OUT / "per-image-candidate.json").write_text(json.dumps(candidate))
+    split = load_truth(OUT / "per-image-truth.json")
+    records = {
+        name: match(
+            split,
+            load_predictions(OUT / f"per-image-{name}.json", split, unknown_classes="drop"),
+            args.protocol,
+        )
+        for name in ("baseline", "candidate")
+    }
+    busiest = int(np.bincount(records["candidate"].det_class).argmax())
+    night = split.tag_mask("night")
+
+    timings = {}
+    for label, weights in (("all images", None), ("tag slice", night)):
+        start, cpu = time.perf_counter(), time.process_time()
+        for r in records.values():
+            image_counts(r, 0.5, class_index=busiest)
+        result = change_contributions(
+            records["candidate"], records["baseline"], args.protocol, busiest, weights
+        )
+        timings[label] = time.process_time() - cpu
+        worst = int(np.nanargmin(result["contribution"]))
+        print(
+            f"{label}: {timings[label]:.2f} s CPU ({time.perf_counter() - start:.2f} s wall); "
+            f"class {split.classes[busiest]} change "
+            f"{result['change']:+.4f}, largest loss from image {split.image_ids[worst]} "
+            f"({result['contribution'][worst]:+.5f})"
+        )
+
+    sample = 5
+    cpu = time.process_time()
+    for i in range(sample):
+        w = np.ones(split.n_images, np.int64)
+        w[i] = 0
+        for r in records.values():
+            headline(r, args.protocol, weights=w)
+    reference = (time.process_time() - cpu) / sample * split.n_images
+    slowest = max(timings.values())
+    print(
+        f"{args.images} images, {args.detections} detections per version, "
+        f"{args.classes} classes, {args.protocol}"
+    )
+    print(
+        f"reference (headline re-scored per image, both versions, extrapolated): "
+        f"{reference:.0f} s CPU; ours {slowest:.2f} s CPU, {reference / slowest:.0f}x faster"
+    )
+    ok = slowest <= TARGET_SECONDS
+    print("target met" if ok else f"FAILED: {slowest:.2f} s > {TARGET_SECONDS} s")
+    return 0 if ok else 1
+
+
+if __name__ == "__main__":
+    sys.exit(main())

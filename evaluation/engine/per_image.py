@@ -1,0 +1,213 @@
+r"""Per image: what each image holds at a threshold, and what it does to a class's AP.
+
+``image_counts`` counts, per image, the kept detections by reason and the boxes missed at
+the deployed score thresholds (the confusion matrix's counting, ``confusion.kept``).
+
+``leave_one_out`` gives a class's AP with each image left out — weight 0, the mechanism
+the bootstrap uses (``curves``: a weight of 0 equals leaving the image out) — so
+
+.. math:: c_i = \Delta - \Delta_{-i}, \quad \Delta = AP_C - AP_B
+
+is image i's contribution to the change between a candidate and a baseline
+(``change_contributions``): a negative c_i is an image without which the change would
+be smaller (less of a loss), an image "responsible" for a drop. The numbers are those
+``scoring.headline`` gives for the same weights, bit for bit: every variant is read
+with the engine's own ``curves.interpolated_precision`` / ``all_point_average_precision``
+and averaged in the same array layout. Only images holding detections or boxes of the
+class are recomputed, a batch of images at a time, each as one more "class" column.
+"""
+
+import numpy as np
+
+from . import loo_fast
+from .confusion import _thresholds, found_boxes, kept
+from .curves import TruePositivePoints, all_point_average_precision, interpolated_precision
+from .protocols import get_protocol
+from .reasons import DETECTION_REASONS, IGNORED
+from .scoring import check_weights, headline
+
+#: Cells of (images in a batch) x (true positives of the class) per step.
+BATCH_CELLS = 4_000_000
+
+
+def image_counts(records, thresholds, class_index=None):
+    """Per image: kept detections by reason (``tp``, ``fp_localisation``, …) and
+    ``missed`` boxes, at score >= each class's threshold and the primary IoU.
+
+    ``class_index`` restricts to one class (a detection's own class; a box's class).
+    Returns a dict of int64 arrays of shape (n_images,), plus ``fp`` (their sum).
+    """
+    n = records.n_images
+    keep = kept(records, thresholds)
+    box_counts = ~records.gt_ignored[0] & ~found_boxes(records, _thresholds(records, thresholds))
+    if class_index is not None:
+        keep &= records.det_class == class_index
+        box_counts &= records.gt_class == class_index
+    image, reason = records.det_image[keep], records.det_reason[keep]
+    out = {}
+    for code, name in enumerate(DETECTION_REASONS):
+        if code != IGNORED:
+            out[name] = np.bincount(image[reason == code], minlength=n).astype(np.int64)
+    out["fp"] = sum(out[name] for name in DETECTION_REASONS[1:IGNORED])
+    out["missed"] = np.bincount(records.gt_image[box_counts], minlength=n).astype(np.int64)
+    return out
+
+
+def _class_sequence(records, k, slot, weights):
+    """Counted detections of class k at a slot (accumulation order): image, TP flag."""
+    s, e = records.class_bounds()[k : k + 2]
+    is_tp, is_ignored = records.outcomes(0, slot)
+    image = records.det_image[s:e].astype(np.int64)
+    counted = ~is_ignored[s:e] & (weights[image] > 0)
+    return image[counted], is_tp[s:e][counted]
+
+
+def _variant_points(image, tp, n_pos, left_out, box_count):
+    """TruePositivePoints of one slot with one "class" per left-out image."""
+    at = np.flatnonzero(tp)
+    n_points = len(at)
+    tp_count = np.arange(1, n_points + 1)
+    fp_count = at + 1 - tp_count  # counted detections up to the point, minus TPs
+    point_image = image[at]
+    b = len(left_out)
+    row = np.arange(b)
+    row_of = np.full(len(box_count), -1, np.int64)
+    row_of[left_out[::-1]] = row[::-1]  # a padded duplicate: the first row is the real one
+    # Image i's TPs before point j and FPs before point j, as running counts per row.
+    own_tp = np.zeros((b, n_points + 1), np.int64)
+    own_fp = np.zeros((b, n_points + 1), np.int64)
+    rows = row_of[point_image]
+    sel = rows >= 0
+    np.add.at(own_tp, (rows[sel], np.flatnonzero(sel) + 1), 1)
+    fp_at = np.flatnonzero(~tp)
+    fp_rows = row_of[image[fp_at]]
+    sel = fp_rows >= 0
+    np.add.at(own_fp, (fp_rows[sel], np.searchsorted(at, fp_at[sel])), 1)
+    own_tp = np.cumsum(own_tp, axis=1)[:, :n_points]
+    own_fp = np.cumsum(own_fp, axis=1)[:, :n_points]
+    remain = point_image[None, :] != left_out[:, None]
+    tp_v = (tp_count[None, :] - own_tp)[remain]
+    fp_v = (fp_count[None, :] - own_fp)[remain]
+    per_row = remain.sum(axis=1)
+    runs = np.r_[0, np.cumsum(per_row)]
+    return TruePositivePoints(
+        tp=tp_v.astype(np.float64),
+        fp=fp_v.astype(np.float64),
+        runs=runs,
+        n_pos=n_pos - box_count[left_out].astype(np.float64),
+        totals=per_row[None, :].astype(np.float64),
+    )
+
+
+def leave_one_out(records, protocol, class_index, weights=None):
+    """AP of class ``class_index`` (``scoring.headline``'s per-class value: the mean
+    over the protocol's IoU slots) with all images, and with each image left out.
+
+    Parameters
+    ----------
+    weights : 0/1 int array (n_images,) or None
+        A selection of images (a tag slice); images outside it change nothing.
+
+    Returns
+    -------
+    ``(ap, without)``: a float (NaN if the class has no positives) and an array of
+    shape (n_images,) (NaN where leaving the image out leaves no positives).
+    """
+    protocol = get_protocol(protocol)
+    weights = check_weights(weights, records.n_images)
+    w = np.ones(records.n_images, np.int64) if weights is None else weights
+    if np.any(w > 1):
+        raise ValueError("leave_one_out takes a 0/1 selection of images, not multiplicities")
+    k = class_index
+    boxes = (~records.gt_ignored[0]) & (records.gt_class == k) & (w[records.gt_image] > 0)
+    box_count = np.bincount(records.gt_image[boxes], minlength=records.n_images)
+    n_pos = float(box_count.sum())
+    sequences = [_class_sequence(records, k, t, w) for t in range(records.n_slots)]
+    touched = np.zeros(records.n_images, bool)
+    touched[box_count > 0] = True
+    for image, _ in sequences:
+        touched[image] = True
+    affected = np.flatnonzero(touched)
+    if protocol.recall_points is not None and len(affected):
+        # One more variant, an image id past the split's, leaves nothing out: the base.
+        box_count = np.r_[box_count, 0]
+        ap = _interpolated(
+            records, protocol, sequences, n_pos, box_count, np.r_[affected, records.n_images]
+        )
+        without = np.full(records.n_images, ap[-1])
+        without[affected] = ap[:-1]
+        return float(ap[-1]), without
+    base = headline(records, protocol, weights=weights)[1][k]
+    without = np.full(records.n_images, base)
+    if not len(affected):
+        return float(base), without
+    longest = max(int(tp.sum()) for _, tp in sequences) + 1
+    size = max(2, BATCH_CELLS // longest)
+    if len(records.classes) == 1:
+        size = 1  # the engine's own arrays are then one column wide: reduce alike
+    for start in range(0, len(affected), size):
+        left_out = affected[start : start + size]
+        padded = left_out if len(left_out) > 1 or size == 1 else np.r_[left_out, left_out]
+        per_slot = [_variant_points(image, tp, n_pos, padded, box_count) for image, tp in sequences]
+        ap = _class_ap(per_slot, protocol)
+        without[left_out] = ap[: len(left_out)]
+    return float(base), without
+
+
+def _interpolated(records, protocol, sequences, n_pos, box_count, affected):
+    """Leave-one-out AP of the affected images under interpolated-precision protocols,
+    by ``loo_fast.envelopes``, averaged in the engine's layout (slots, points, K)."""
+    precision = np.empty((len(sequences), len(protocol.recall_points), len(affected)))
+    for slot, (image, tp) in enumerate(sequences):
+        loo_fast.envelopes(
+            image,
+            tp,
+            n_pos,
+            affected,
+            box_count,
+            protocol.recall_points,
+            protocol.precision_epsilon,
+            records.n_images + 1,
+            out=precision[slot],
+        )  # (slots, points, variants)
+    if len(records.classes) == 1:  # the engine's arrays are one column wide: reduce alike
+        return np.array(
+            [precision[:, :, v : v + 1].mean(axis=1).mean(axis=0)[0] for v in range(len(affected))]
+        )
+    if len(affected) == 1:
+        precision = np.concatenate([precision, precision], axis=2)
+    return precision.mean(axis=1).mean(axis=0)[: len(affected)]
+
+
+def _class_ap(per_slot, protocol):
+    """AP per variant, averaged over slots in the engine's layout (slots, points, K)."""
+    if protocol.recall_points is None:
+        ap = np.concatenate([all_point_average_precision(p) for p in per_slot], axis=0)
+    else:
+        precision = np.concatenate(
+            [
+                interpolated_precision(
+                    p, protocol.recall_points, epsilon=protocol.precision_epsilon
+                )
+                for p in per_slot
+            ],
+            axis=0,
+        )
+        ap = precision.mean(axis=1)
+    return ap.mean(axis=0)
+
+
+def change_contributions(candidate, baseline, protocol, class_index, weights=None):
+    r"""Each image's contribution to the change of a class's AP between two record sets
+    of one split: :math:`c_i = \Delta - \Delta_{-i}` with :math:`\Delta = AP_C - AP_B`.
+
+    Returns a dict: ``change`` (Δ), ``without`` (Δ with each image left out) and
+    ``contribution`` (arrays of shape (n_images,); NaN where undefined).
+    """
+    if candidate.n_images != baseline.n_images:
+        raise ValueError("both records must come from the same split")
+    ap_c, without_c = leave_one_out(candidate, protocol, class_index, weights)
+    ap_b, without_b = leave_one_out(baseline, protocol, class_index, weights)
+    change = ap_c - ap_b
+    without = without_c - without_b
+    return {"change": change, "without": without, "contribution": change - without}
