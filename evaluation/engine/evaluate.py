@@ -19,10 +19,11 @@ def evaluate(
     """Score ``predictions`` against ``truth`` under ``protocol``.
 
     Matching happens once; the scorecard (and, with ``return_records``, the match
-    records for re-weighting) come from it. See ``score_records`` for the layout.
+    records for re-weighting, with their reasons) come from it. See ``score_records``
+    for the layout.
     """
     protocol = get_protocol(protocol)
-    records = match(truth, predictions, protocol)
+    records = match(truth, predictions, protocol, reasons=return_records)
     tag_masks = {tag: truth.tag_mask(tag) for tag in truth.tags()} if tag_slices else None
     result = score_records(
         records, protocol, weights=weights, tag_masks=tag_masks, score_threshold=score_threshold

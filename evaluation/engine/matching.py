@@ -19,7 +19,7 @@ threshold can ever match, so the rest are dropped before the walk.
 
 import numpy as np
 
-from . import reasons
+from . import reasons as _reasons
 from .boxes import pair_iou
 from .protocols import BEST_OVERLAP, get_protocol
 from .records import MatchRecords
@@ -110,8 +110,11 @@ def _orders(predictions, n_classes, tie_order="image"):
     return acc, rank
 
 
-def match(truth, predictions, protocol):
+def match(truth, predictions, protocol, *, reasons=True):
     """Match ``predictions`` to ``truth`` under ``protocol``.
+
+    ``reasons=False`` skips the per-detection reasons (about a third of the time on
+    500,000 detections), for a scorecard that keeps no records.
 
     Returns
     -------
@@ -183,7 +186,7 @@ def match(truth, predictions, protocol):
         gt_ignored=gt_ignored,
         tie_order=protocol.tie_order,
     )
-    return reasons.attach(records, truth, det_boxes, protocol)
+    return _reasons.attach(records, truth, det_boxes, protocol) if reasons else records
 
 
 def _greedy(pair_det, pair_gt, pair_iou_, rank, det_group, det_cls, effective, gt_ignored, crowd):

@@ -103,18 +103,15 @@ def _image_pairs(truth, box_usable, det_image, det_boxes, pixel_offset):
         start = stop
 
 
-def _best(det, iou, box, mask, n):
+def _best(det, iou, box, order, mask, target_iou, target_box):
     """Per detection: the highest IoU among the masked pairs and its box (first box on
-    ties, the order ``tidecv`` and MATLAB's ``max`` pick); IoU 0 and box -1 if none."""
-    best_iou = np.zeros(n)
-    best_box = np.full(n, -1, np.int64)
-    d, i, b = det[mask], iou[mask], box[mask]
-    if len(d):
-        order = np.lexsort((b, -i, d))
-        first = order[np.r_[True, d[order][1:] != d[order][:-1]]]
-        best_iou[d[first]] = i[first]
-        best_box[d[first]] = b[first]
-    return best_iou, best_box
+    ties, the order ``tidecv`` and MATLAB's ``max`` pick), written into the targets.
+    ``order`` sorts the pairs by (detection, IoU descending, box)."""
+    chosen = order[mask[order]]
+    d = det[chosen]
+    first = chosen[np.r_[True, d[1:] != d[:-1]]] if len(d) else chosen
+    target_iou[det[first]] = iou[first]
+    target_box[det[first]] = box[first]
 
 
 def attach(records, truth, det_boxes, protocol):
@@ -193,17 +190,19 @@ def compute(truth, det_image, det_class, det_boxes, det_score, primary, gt_ignor
         target_iou[better] = iou[better]
         target_ref[better] = ref[better]
 
+    # Pairs come a chunk of whole detections at a time: each detection's best boxes are
+    # final within its chunk; a box's best detection is merged across chunks.
     for det, box, iou in _image_pairs(truth, ~gt_ignored, det_image, det_boxes, pixel_offset):
-        same = det_class[det] == truth.box_class[box]
         box_class = truth.box_class[box]
+        same = det_class[det] == box_class
+        order = np.lexsort((box, -iou, det))
         for mask, tgt_iou, tgt_box in (
             (same, same_iou, same_box),
             (~same & (iou >= thresholds[box_class]), cls_iou, cls_box),
             (~same, other_iou, other_box),
             (np.ones(len(det), bool), any_iou, any_box),
         ):
-            i, b = _best(det, iou, box, mask, n)
-            merge(tgt_iou, tgt_box, i, b)
+            _best(det, iou, box, order, mask, tgt_iou, tgt_box)
         # Best detection per box: highest IoU, earliest in accumulation order on ties.
         if len(box):
             order = np.lexsort((det, -iou, box))

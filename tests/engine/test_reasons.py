@@ -297,3 +297,24 @@ def test_export_streams_in_blocks(files):
     chunks = list(export.csv_chunks(records, files_truth(files), block_rows=2))
     assert len(chunks) == 1 + 4 + 1  # header, 7 detections in blocks of 2, one box
     assert sum(c.count("\n") for c in chunks) == 1 + 7 + 1
+
+
+def test_match_without_reasons_scores_the_same(files):
+    """``match(reasons=False)`` (``evaluate`` without records) keeps no reasons and
+    changes no number."""
+    from evaluation.engine import score_records
+
+    _, _, records = _case(
+        files,
+        [(PERSON, [0, 0, 10, 10], 0), (CAR, [30, 30, 10, 10], 0)],
+        [(PERSON, [0, 0, 10, 10], 0.9), (PERSON, [5, 0, 10, 10], 0.8), (CAR, [31, 30, 9, 9], 0.7)],
+    )
+    bare = match(files_truth(files), _predictions(files), "coco", reasons=False)
+    assert not bare.has_reasons and records.has_reasons
+    assert score_records(bare, "coco") == score_records(records, "coco")
+
+
+def _predictions(files):
+    from evaluation.engine import load_predictions
+
+    return load_predictions(files.root / "predictions.json", files_truth(files))
