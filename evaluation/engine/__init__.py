@@ -6,6 +6,9 @@ Layers, each usable alone::
     matching  -> MatchRecords (per detection: TP / ignored per size bucket and IoU)
     curves    MatchRecords (+ image weights) -> cumulative TP/FP -> AP of any protocol
     scoring   -> a JSON-serialisable scorecard
+    reasons, export, tide, confusion, per_image
+              why each detection / box is what it is, from the records: CSV / JSON
+              Lines rows, TIDE's ΔAP per error type, the confusion matrix, per image
 
 Command line: ``python -m evaluation.engine score --truth GT --predictions PRED``.
 """
