@@ -318,3 +318,55 @@ def _predictions(files):
     from evaluation.engine import load_predictions
 
     return load_predictions(files.root / "predictions.json", files_truth(files))
+
+
+@pytest.mark.parametrize("protocol", ["coco", "voc", "recall40"])
+def test_chunked_pairs_give_the_same_reasons(files, monkeypatch, protocol):
+    """Cross-class pairs are walked a chunk of detections at a time; the reasons (and
+    each box's best detection, merged across chunks) do not depend on the chunk size."""
+    from evaluation.engine import load_predictions, load_truth, reasons
+
+    from .synthetic import make_detections, make_split
+
+    rng = np.random.default_rng(21)
+    split = make_split(rng, n_images=12, n_classes=3, boxes_per_image=6)
+    gt = files.write("chunk-gt.json", split)
+    dt = files.write("chunk-dt.json", make_detections(rng, split, duplicate_rate=0.4))
+    truth = load_truth(gt)
+    predictions = load_predictions(dt, truth)
+    whole = match(truth, predictions, protocol)
+    monkeypatch.setattr(reasons, "CHUNK_PAIRS", 7)
+    chunked = match(truth, predictions, protocol)
+    for name in (
+        "det_reason",
+        "det_ref_box",
+        "det_ref_iou",
+        "gt_reason",
+        "gt_ref_det",
+        "gt_ref_iou",
+    ):
+        np.testing.assert_array_equal(getattr(chunked, name), getattr(whole, name))
+    assert len(set(whole.det_reason.tolist())) >= 5  # the file exercises most reasons
+
+
+def test_export_of_a_csv_split_keeps_text_image_ids(tmp_path):
+    """A CSV split's image ids are text; the export writes them as given."""
+    import json
+
+    from evaluation.engine import export, load_predictions, load_truth
+
+    (tmp_path / "images.csv").write_text("image_id,width,height,tags\nfront-0001,500,500,\n")
+    (tmp_path / "truth.csv").write_text(
+        "image_id,label,x_min,y_min,x_max,y_max,difficult\nfront-0001,person,1,1,100,100,0\n"
+    )
+    (tmp_path / "pred.csv").write_text(
+        "image_id,label,x_min,y_min,x_max,y_max,score\nfront-0001,person,1,1,100,100,0.9\n"
+    )
+    truth = load_truth(tmp_path / "truth.csv", images=tmp_path / "images.csv")
+    records = match(truth, load_predictions(tmp_path / "pred.csv", truth), "voc")
+    text = "".join(export.jsonl_chunks(records, truth))
+    lines = [json.loads(line) for line in text.splitlines()]
+    assert [(row["image_id"], row["reason"]) for row in lines] == [
+        ("front-0001", "tp"),
+        ("front-0001", "matched"),
+    ]
