@@ -146,6 +146,7 @@ def attach(records, truth, det_boxes, protocol):
         primary,
         records.gt_ignored[0],
         protocol.pixel_offset,
+        det_order=records.det_order,
     )
     records.det_box = np.asarray(det_boxes, np.float64)
     for name, value in found.items():
@@ -153,7 +154,18 @@ def attach(records, truth, det_boxes, protocol):
     return records
 
 
-def compute(truth, det_image, det_class, det_boxes, det_score, primary, gt_ignored, pixel_offset):
+def compute(
+    truth,
+    det_image,
+    det_class,
+    det_boxes,
+    det_score,
+    primary,
+    gt_ignored,
+    pixel_offset,
+    *,
+    det_order=None,
+):
     r"""Reason codes, related box / detection and IoU, for detections and boxes.
 
     Parameters
@@ -165,6 +177,8 @@ def compute(truth, det_image, det_class, det_boxes, det_score, primary, gt_ignor
         primary slot and size bucket "all"; ``thresholds`` (per class, slot 0).
     gt_ignored : bool per box (bucket "all")
     pixel_offset : the protocol's pixel convention (0 COCO, 1 VOC)
+    det_order : position of each detection in the predictions file (ties between
+        errors pointing at one box go to the earlier one, as in tidecv)
 
     Returns
     -------
@@ -251,8 +265,9 @@ def compute(truth, det_image, det_class, det_boxes, det_score, primary, gt_ignor
     )
     ref_iou = np.where(ref_box >= 0, ref_iou, np.nan)
 
+    tie = np.arange(n) if det_order is None else det_order
     box_reason, box_det, box_iou = _box_reasons(
-        reason, ref_box, ref_iou, det_score, gt_ignored, near_det, near_iou
+        reason, ref_box, ref_iou, det_score, tie, gt_ignored, near_det, near_iou
     )
     return {
         "det_reason": reason,
@@ -270,7 +285,9 @@ def _scatter(size, index, values, fill):
     return out
 
 
-def _box_reasons(det_reason, det_ref_box, det_ref_iou, det_score, gt_ignored, near_det, near_iou):
+def _box_reasons(
+    det_reason, det_ref_box, det_ref_iou, det_score, tie, gt_ignored, near_det, near_iou
+):
     n_boxes = len(gt_ignored)
     reason = np.full(n_boxes, MISSED, np.int8)
     ref_det = near_det.copy()
@@ -280,12 +297,13 @@ def _box_reasons(det_reason, det_ref_box, det_ref_iou, det_score, gt_ignored, ne
     ref_det[det_ref_box[tp]] = tp
     ref_iou[det_ref_box[tp]] = det_ref_iou[tp]
     # TIDE's BestGTMatch: of the localisation and class errors pointing at an untaken
-    # box, the highest-scored one (the first on ties) is the one whose fix finds it.
+    # box, the highest-scored one (the first in the file on ties) is the one whose fix
+    # finds it.
     pointing = np.flatnonzero((det_reason == LOC) | (det_reason == CLS))
     pointing = pointing[reason[det_ref_box[pointing]] == MISSED]
     if len(pointing):
         box = det_ref_box[pointing]
-        order = np.lexsort((pointing, -det_score[pointing], box))
+        order = np.lexsort((tie[pointing], -det_score[pointing], box))
         first = order[np.r_[True, box[order][1:] != box[order][:-1]]]
         chosen, chosen_box = pointing[first], box[first]
         reason[chosen_box] = np.where(det_reason[chosen] == LOC, MISSED_LOC, MISSED_CLS)

@@ -14,7 +14,7 @@ import numpy as np
 
 
 class MissingReasons(ValueError):
-    """Records saved before engine 2.2: no per-detection reasons or boxes."""
+    """Records saved before reasons were added to the engine: no reasons, no boxes."""
 
 
 @dataclass(eq=False)
@@ -45,7 +45,8 @@ class MatchRecords:
     gt_reason, gt_ref_det, gt_ref_iou : arrays (boxes,)
         ``reasons.BOX_REASONS`` codes, the related detection (-1) and its IoU (NaN).
 
-    The last seven are None for records saved before engine 2.2 (``has_reasons``);
+    The last seven are None for records saved before reasons existed (``has_reasons``;
+    ENGINE_VERSION did not change with them, as no number did);
     ``reasons.attach`` computes them from the split and the predictions.
     """
 
@@ -89,7 +90,8 @@ class MatchRecords:
         """Raise a clear error for records saved before reasons existed."""
         if not self.has_reasons:
             raise MissingReasons(
-                "these match records were saved before engine 2.2 and carry no reasons; "
+                "these match records were saved before per-detection reasons existed and carry "
+                "none; "
                 "score the predictions again, or add them with reasons.attach(records, "
                 "truth, predictions.boxes[records.det_order], protocol)"
             )

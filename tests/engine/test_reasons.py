@@ -177,7 +177,7 @@ def test_voc_difficult_is_ignored(tmp_path):
 
 
 def test_records_without_reasons_load_and_can_be_completed(files, tmp_path):
-    """Records saved before engine 2.2 load; reasons are refused clearly, and
+    """Records saved before reasons existed load; reasons are refused clearly, and
     ``reasons.attach`` gives the same arrays matching gives."""
     _, _, records = _case(
         files,
@@ -195,7 +195,7 @@ def test_records_without_reasons_load_and_can_be_completed(files, tmp_path):
     np.savez_compressed(tmp_path / "old.npz", **old)
     loaded = MatchRecords.load(tmp_path / "old.npz")
     assert not loaded.has_reasons
-    with pytest.raises(MissingReasons, match="saved before engine 2.2"):
+    with pytest.raises(MissingReasons, match="saved before per-detection reasons existed"):
         loaded.require_reasons()
     attach(loaded, files_truth(files), records.det_box, "coco")
     for name in (
@@ -370,3 +370,21 @@ def test_export_of_a_csv_split_keeps_text_image_ids(tmp_path):
         ("front-0001", "tp"),
         ("front-0001", "matched"),
     ]
+
+
+def test_tied_errors_on_one_box_go_to_the_earlier_in_the_file(files):
+    """A class error (car detection, IoU 0.9) and a localisation error (person, IoU 1/3)
+    on one person box with equal scores: the earlier in the predictions file is the one
+    whose fix finds the box (tidecv walks an image's detections in stable score order)."""
+    _, box, _ = _case(
+        files,
+        [(PERSON, [0, 0, 10, 10], 0)],
+        [(CAR, [0, 0, 10, 9], 0.8), (PERSON, [5, 0, 10, 10], 0.8)],
+    )
+    assert box == [("missed_class", 0, pytest.approx(0.9))]
+    _, box, _ = _case(
+        files,
+        [(PERSON, [0, 0, 10, 10], 0)],
+        [(PERSON, [5, 0, 10, 10], 0.8), (CAR, [0, 0, 10, 9], 0.8)],
+    )
+    assert box == [("missed_localisation", 0, pytest.approx(1 / 3))]
