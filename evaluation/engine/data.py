@@ -9,6 +9,15 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+#: Per-box road attributes of ``GroundTruth`` (NaN where not given).
+ATTRIBUTES = ("occlusion", "truncation", "visibility")
+
+
+def _canonical_nan(values):
+    """One NaN bit pattern, so equal content hashes equal whatever NaN a file made."""
+    values = np.asarray(values, "<f8")
+    return np.where(np.isnan(values), np.nan, values)
+
 
 @dataclass(frozen=True, eq=False)
 class GroundTruth:
@@ -20,6 +29,12 @@ class GroundTruth:
     file gives none (COCO-style JSON makes them optional, as pycocotools does).
     ``box_policy`` is the policy the boxes were loaded under (``loaders.BOX_POLICIES``)
     and ``box_counts`` what it found: boxes overhanging the frame, zero-area boxes.
+
+    Road attributes, per box, NaN where the file gives none: ``occlusion`` (the KITTI
+    levels: 0 fully visible, 1 partly, 2 largely occluded, 3 unknown), ``truncation``
+    (0-1, the fraction of the object outside the frame) and ``visibility`` (0-1, the
+    visible fraction, as pedestrian benchmarks give it). ``regions`` are class-agnostic
+    don't-care areas (xywh) on image ``region_image``: no box, no class.
     """
 
     classes: tuple  # class names; position = class index
@@ -39,6 +54,25 @@ class GroundTruth:
     source: str = ""
     box_policy: str = "keep"
     box_counts: dict = field(default_factory=dict)
+    occlusion: np.ndarray = None  # float64 per box, NaN = not given
+    truncation: np.ndarray = None
+    visibility: np.ndarray = None
+    region_image: np.ndarray = None  # int32 index into image_ids
+    regions: np.ndarray = None  # (m, 4) float64 xywh
+
+    def __post_init__(self):
+        for name in ATTRIBUTES:
+            if getattr(self, name) is None:
+                object.__setattr__(self, name, np.full(self.n_boxes, np.nan))
+        if self.region_image is None:
+            object.__setattr__(self, "region_image", np.zeros(0, np.int32))
+        if self.regions is None:
+            object.__setattr__(self, "regions", np.zeros((0, 4)))
+
+    def has_attributes(self):
+        """Whether any box carries an attribute or any image a don't-care region."""
+        given = any(not np.isnan(getattr(self, name)).all() for name in ATTRIBUTES)
+        return given or len(self.region_image) > 0
 
     @property
     def n_images(self):
@@ -63,8 +97,12 @@ class GroundTruth:
 
         Canonical form: images in id order with sizes and sorted tags, classes in
         order, boxes sorted by (image, class, x, y, w, h, flags, area) — so the
-        order of records in the source file does not change the hash.
+        order of records in the source file does not change the hash. Only a split
+        with road attributes or don't-care regions adds them (the box columns gain
+        occlusion, truncation and visibility; the sorted regions follow), so a split
+        without them keeps the hash it was frozen with.
         """
+        attributes = self.has_attributes()
         digest = hashlib.sha256()
         digest.update(repr(list(zip(self.class_ids.tolist(), self.classes))).encode())
         digest.update(repr([str(i) for i in self.image_ids]).encode())
@@ -81,9 +119,15 @@ class GroundTruth:
                 self.ignore.astype("<f8"),
                 self.box_area.astype("<f8"),
             ]
+            + ([_canonical_nan(getattr(self, a)) for a in ATTRIBUTES] if attributes else [])
         )
         order = np.lexsort(columns.T[::-1])
         digest.update(np.ascontiguousarray(columns[order]).tobytes())
+        if attributes:
+            regions = np.column_stack([self.region_image.astype("<f8"), self.regions])
+            regions = regions[np.lexsort(regions.T[::-1])]
+            digest.update(b"dont_care")
+            digest.update(np.ascontiguousarray(regions, "<f8").tobytes())
         return digest.hexdigest()
 
 

@@ -9,6 +9,9 @@ same bytes skips parsing.
 Box policy (``boxes``): ``keep`` (default) scores every box as given, as pycocotools
 and the VOC devkit do; ``clip`` cuts predictions to the frame; ``reject`` refuses
 boxes that leave it. See ``checks.apply_box_policy``.
+
+Formats: COCO-style JSON, CSV tables, and folders or zips of KITTI, YOLO or Pascal
+VOC label files (``label_folders``), named or detected from the content.
 """
 
 import re
@@ -17,7 +20,7 @@ import numpy as np
 
 from ..data import GroundTruth, Predictions
 from ..errors import InputError
-from . import checks, coco_json, csv_tables
+from . import attributes, checks, coco_json, csv_tables, label_folders
 from .cache import cached
 from .checks import BOX_POLICIES
 
@@ -26,15 +29,22 @@ __all__ = ["BOX_POLICIES", "load_predictions", "load_truth"]
 _INTEGER = re.compile(r"^[+-]?\d+$")
 _INT64 = (-(2**63), 2**63 - 1)
 #: Bumped when the parsed columns change shape or meaning: old cache entries are unused.
-CACHE_SCHEMA = 2
+CACHE_SCHEMA = 3
 UNKNOWN_CLASS_POLICIES = ("reject", "drop")
+
+
+FORMATS = ("json", "csv", *label_folders.FORMATS)
 
 
 def _format(path, fmt):
     if fmt:
-        if fmt not in ("json", "csv"):
-            raise InputError(path, f"unknown format {fmt!r}; use 'json' or 'csv'")
+        if fmt not in FORMATS:
+            raise InputError(path, f"unknown format {fmt!r}; use one of {', '.join(FORMATS)}")
+        if fmt in label_folders.FORMATS and not label_folders.is_collection(path):
+            raise InputError(path, f"a {fmt} split or detection set is a folder or a zip")
         return fmt
+    if label_folders.is_collection(path):
+        return label_folders.detect_path(path)
     name = str(path).lower()
     if name.endswith(".json"):
         return "json"
@@ -44,6 +54,8 @@ def _format(path, fmt):
 
 
 def _exists(path):
+    if label_folders.is_collection(path):
+        return
     try:
         with open(path, "rb"):
             pass
@@ -56,7 +68,8 @@ def load_truth(path, *, images=None, fmt=None, classes=None, cache_dir=None, box
 
     Parameters
     ----------
-    path : COCO-style JSON, or a boxes CSV (then ``images`` is the images table)
+    path : COCO-style JSON, a boxes CSV (then ``images`` is the images table), or a
+        folder or zip of KITTI, YOLO or VOC label files (``images`` optional)
     classes : sequence of str, optional
         For CSV: the class list in order; default the sorted labels found.
     boxes : ``"keep"`` (default), ``"clip"`` or ``"reject"``
@@ -96,17 +109,27 @@ def _read_truth(path, images, fmt, classes, policy):
             lambda i: f"categories[{i}]",
             "name",
         )
-    else:
+        region_locate = lambda i: f"dont_care[{i}]"  # noqa: E731
+    elif fmt == "csv":
         cols = _csv_truth_columns(path, images, classes)
         image_path = images
         image_locate = lambda i: f"line {cols['image_lines'][i]}"  # noqa: E731
         box_locate = lambda i: f"line {cols['box_lines'][i]}"  # noqa: E731
         box_fields = {"image": "image_id", "class": "label", "bbox": "x_min..y_max", "id": "id"}
+        region_locate = lambda i: f"line {cols['region_lines'][i]}"  # noqa: E731
+    else:
+        cols = label_folders.read_truth(path, images, fmt, classes)
+        cols["image_ids"] = _csv_ids(cols["image_ids"])
+        cols["box_image_ids"] = _ids_like(cols["box_image_ids"], cols["image_ids"])
+        cols["region_image_ids"] = _ids_like(cols["region_image_ids"], cols["image_ids"])
+        image_path = cols["image_path"]
+        image_locate, box_locate = cols["locate_image"], cols["locate_box"]
+        region_locate, box_fields = cols["locate_region"], cols["box_fields"]
 
     if len(cols["image_ids"]) == 0:
         raise InputError(image_path, "the split lists no images", field="images")
     checks.check_unique(
-        image_path, cols["image_ids"], image_locate, "image_id" if fmt == "csv" else "id"
+        image_path, cols["image_ids"], image_locate, "id" if fmt == "json" else "image_id"
     )
     for name in ("image_width", "image_height"):
         values = cols[name]
@@ -152,6 +175,7 @@ def _read_truth(path, images, fmt, classes, policy):
     )
     area = np.where(given, area, boxes[:, 2] * boxes[:, 3])
 
+    road = attributes.finish(path, cols, image_ids, box_locate, path, region_locate)
     names = [cols["class_names"][i] for i in class_order]
     tags = [cols["image_tags"][i] for i in image_order]
     return GroundTruth(
@@ -175,6 +199,7 @@ def _read_truth(path, images, fmt, classes, policy):
             **checks.truth_box_counts(boxes, width, height),
             "area_from_file": int(given.sum()),
         },
+        **road,
     )
 
 
@@ -208,6 +233,17 @@ def _csv_truth_columns(path, images, classes):
     ids, widths, heights, tags, image_lines = csv_tables.read_images(images)
     boxes = csv_tables.read_boxes(path)
     image_ids = _csv_ids(ids)
+    region = boxes["dont_care"]
+    regions = {"region_image_ids": _ids_like(_take(boxes["image_id"], region), image_ids)}
+    regions["regions"], regions["region_lines"] = boxes["boxes"][region], boxes["lines"][region]
+    if region.any():  # a don't-care row is no box
+        keep = ~region
+        for key in ("boxes", "crowd", "difficult", "ignore", "area", "lines", "dont_care"):
+            boxes[key] = boxes[key][keep]
+        for key in ("occlusion", "truncation", "visibility"):
+            boxes[key] = boxes[key][keep]
+        boxes["image_id"] = _take(boxes["image_id"], keep)
+        boxes["label"] = _take(boxes["label"], keep)
     box_image_ids = _ids_like(boxes["image_id"], image_ids)
     labels = boxes["label"]
     if classes is None:
@@ -242,7 +278,15 @@ def _csv_truth_columns(path, images, classes):
         "difficult": boxes["difficult"],
         "ignore": boxes["ignore"],
         "box_lines": boxes["lines"],
+        "occlusion": boxes["occlusion"],
+        "truncation": boxes["truncation"],
+        "visibility": boxes["visibility"],
+        **regions,
     }
+
+
+def _take(values, mask):
+    return [v for v, keep in zip(values, mask) if keep]
 
 
 def load_predictions(
@@ -297,6 +341,16 @@ def _read_predictions(path, truth, fmt, policy, unknown_classes):
         known_classes = truth.class_ids
         if truth.image_ids.dtype.kind != "i":
             image_ids = image_ids.astype(str)
+    elif fmt in label_folders.FORMATS:
+        ids, labels, boxes, score, locate = label_folders.read_detections(
+            path, fmt, truth, _ids_like
+        )
+        fields = {"image": "file name", "class": "type" if fmt == "kitti" else "class"}
+        fields["bbox"] = "x1..y2" if fmt == "kitti" else "cx cy w h"
+        class_keys = np.array(labels, dtype=object).astype(str) if labels else np.zeros(0, str)
+        known_classes = np.array(truth.classes, dtype=object).astype(str)
+        shown = np.array(ids, dtype=object).astype(str) if ids else np.zeros(0, str)
+        image_ids = _ids_like(ids, truth.image_ids)
     else:
         ids, labels, boxes, score, lines = csv_tables.read_detections(path)
         locate = lambda i: f"line {lines[i]}"  # noqa: E731

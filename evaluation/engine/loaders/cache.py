@@ -19,10 +19,24 @@ _BLOCK = 1 << 20
 
 
 def file_sha256(path):
+    """SHA-256 of a file's bytes; of a folder, of its files' names and digests."""
+    if os.path.isdir(path):
+        return _folder_sha256(path)
     digest = hashlib.sha256()
     with open(path, "rb") as f:
         while block := f.read(_BLOCK):
             digest.update(block)
+    return digest.hexdigest()
+
+
+def _folder_sha256(path):
+    digest = hashlib.sha256(b"folder")
+    for folder, dirs, files in sorted(os.walk(path)):
+        dirs.sort()
+        for name in sorted(files):
+            full = os.path.join(folder, name)
+            relative = os.path.relpath(full, path).replace(os.sep, "/")
+            digest.update(f"{relative}\0{file_sha256(full)}\n".encode())
     return digest.hexdigest()
 
 

@@ -36,6 +36,14 @@ class _Annotation(msgspec.Struct, gc=False):
     area: float | None = None
     iscrowd: int | bool = 0
     difficult: int | bool = 0
+    occlusion: float | None = None  # road attributes: loaders.attributes
+    truncation: float | None = None
+    visibility: float | None = None
+
+
+class _Region(msgspec.Struct, gc=False):
+    image_id: int
+    bbox: tuple[float, float, float, float]
 
 
 class _Category(msgspec.Struct, gc=False):
@@ -47,6 +55,7 @@ class _Dataset(msgspec.Struct, gc=False):
     images: list[_Image]
     annotations: list[_Annotation]
     categories: list[_Category]
+    dont_care: list[_Region] = []
 
 
 class _Detection(msgspec.Struct, gc=False):
@@ -190,6 +199,24 @@ def _truth_columns(path, data):
         "crowd": np.array([bool(a.iscrowd) for a in anns], bool),
         "difficult": np.array([bool(a.difficult) for a in anns], bool),
         "ignore": np.zeros(len(anns), bool),
+        **_road_columns(path, anns, dataset.dont_care),
+    }
+
+
+def _road_columns(path, anns, regions):
+    def given(name):
+        return np.array(
+            [np.nan if (v := getattr(a, name)) is None else v for a in anns], np.float64
+        )
+
+    return {
+        "occlusion": given("occlusion"),
+        "truncation": given("truncation"),
+        "visibility": given("visibility"),
+        "region_image_ids": int_column(
+            path, [r.image_id for r in regions], lambda i: f"dont_care[{i}]", "image_id"
+        ),
+        "regions": np.array([r.bbox for r in regions], np.float64).reshape(-1, 4),
     }
 
 

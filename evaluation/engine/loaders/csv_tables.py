@@ -2,7 +2,9 @@
 
 Detections:  ``image_id,label,x_min,y_min,x_max,y_max,score``
 Boxes:       ``image_id,label,x_min,y_min,x_max,y_max`` and optionally
-             ``crowd,difficult,ignore`` (0/1) and ``area``
+             ``crowd,difficult,ignore`` (0/1) and ``area``; road attributes
+             ``occlusion,truncation,visibility`` (empty: not given) and
+             ``dont_care`` (0/1: the row is a don't-care region, its label unread)
 Images:      ``image_id,width,height`` and optionally ``tags`` (``;``-separated)
 
 A header row is required; column order is free and other columns are ignored. Rows
@@ -20,7 +22,8 @@ from .checks import text_start
 BLOCK_ROWS = 100_000
 DETECTION_COLUMNS = ("image_id", "label", "x_min", "y_min", "x_max", "y_max", "score")
 BOX_COLUMNS = ("image_id", "label", "x_min", "y_min", "x_max", "y_max")
-BOX_OPTIONAL = ("crowd", "difficult", "ignore", "area")
+BOX_OPTIONAL = ("crowd", "difficult", "ignore", "area", "dont_care")
+ATTRIBUTE_COLUMNS = ("occlusion", "truncation", "visibility")
 IMAGE_COLUMNS = ("image_id", "width", "height")
 
 
@@ -131,27 +134,26 @@ def read_detections(path):
 
 def read_boxes(path):
     """Columns of a ground-truth boxes CSV."""
-    out = {
-        k: []
-        for k in ("image_id", "label", "boxes", "crowd", "difficult", "ignore", "area", "lines")
-    }
-    for block, lines in read_blocks(path, BOX_COLUMNS, BOX_OPTIONAL):
+    numeric = ("area", *ATTRIBUTE_COLUMNS)
+    flags = ("crowd", "difficult", "ignore", "dont_care")
+    out = {k: [] for k in ("image_id", "label", "boxes", *flags, *numeric, "lines")}
+    for block, lines in read_blocks(path, BOX_COLUMNS, BOX_OPTIONAL + ATTRIBUTE_COLUMNS):
         n = len(lines)
         out["image_id"].extend(block["image_id"])
         out["label"].extend(block["label"])
         out["boxes"].append(_corner_boxes(path, block, lines))
-        for flag in ("crowd", "difficult", "ignore"):
+        for flag in flags:
             out[flag].append(
                 _flags(path, block[flag], lines, flag) if flag in block else np.zeros(n, bool)
             )
-        if "area" in block:
-            values = [v if v else "nan" for v in block["area"]]
-            area = _floats(path, values, lines, "area")
-        else:
-            area = np.full(n, np.nan)
-        out["area"].append(area)
+        for name in numeric:  # empty or absent: not given (NaN)
+            if name in block:
+                values = [v if v else "nan" for v in block[name]]
+                out[name].append(_floats(path, values, lines, name))
+            else:
+                out[name].append(np.full(n, np.nan))
         out["lines"].append(np.array(lines, np.int64))
-    for key in ("boxes", "crowd", "difficult", "ignore", "area", "lines"):
+    for key in ("boxes", *flags, *numeric, "lines"):
         out[key] = (
             np.concatenate(out[key]) if out[key] else np.zeros((0, 4) if key == "boxes" else 0)
         )
