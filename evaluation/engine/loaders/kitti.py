@@ -5,6 +5,11 @@ The layout of the KITTI object development kit's readme (Geiger et al., CVPR 201
 detections add a 16th, the score. Boxes are pixel corners; only the 2D part is used
 here, the 3D fields must still be numbers. ``DontCare`` objects (any letter case, as
 the devkit compares types case-insensitively) are the image's don't-care regions.
+
+A truncation or occlusion of -1 (what KITTI-style tools write where they know none,
+as on ``DontCare`` lines) is read as "not given". The devkit's level filters only
+drop a box whose value *exceeds* a level's maximum, so -1 and "not given" pass every
+level alike, and a split without attributes converts to KITTI and back unchanged.
 """
 
 from ..errors import InputError
@@ -13,6 +18,7 @@ from .label_lines import field_count, integer, lines, number
 LAYOUT = "type truncated occluded alpha x1 y1 x2 y2 h w l x y z rotation_y"
 _NUMERIC = ("alpha", "x1", "y1", "x2", "y2", "h", "w", "l", "x", "y", "z", "rotation_y")
 DONT_CARE = "dontcare"
+NOT_GIVEN = float("nan")
 
 
 def _box(path, name, line, fields):
@@ -37,6 +43,8 @@ def parse_truth(path, name, data, out):
             continue
         truncation = number(path, name, line, "truncated", fields[1])
         occlusion = integer(path, name, line, "occluded", fields[2])
+        truncation = NOT_GIVEN if truncation == -1 else truncation
+        occlusion = NOT_GIVEN if occlusion == -1 else occlusion
         out["objects"].append((name, line, fields[0], box, occlusion, truncation))
 
 
