@@ -12,7 +12,7 @@ import sys
 from . import export, provenance
 from .errors import InputError
 from .evaluate import evaluate
-from .loaders import BOX_POLICIES, load_predictions, load_truth
+from .loaders import BOX_POLICIES, FORMATS, load_predictions, load_truth
 from .protocols import PRESETS, get_protocol, protocol_from_dict
 from .report import table
 
@@ -60,11 +60,27 @@ def build_parser():
     )
     commands = parser.add_subparsers(dest="command", required=True)
     score = commands.add_parser("score", help="score predictions against a benchmark split")
-    score.add_argument("--truth", required=True, help="COCO-style JSON, or a boxes CSV")
     score.add_argument(
-        "--images", help="images table CSV (image_id,width,height,tags) for a CSV split"
+        "--truth",
+        required=True,
+        help="COCO-style JSON, a boxes CSV, or a folder or zip of KITTI, YOLO or VOC XML labels",
     )
-    score.add_argument("--predictions", required=True, help="COCO-style results JSON or CSV")
+    score.add_argument(
+        "--images",
+        help="images table CSV (image_id,width,height,tags): needed for a CSV split, "
+        "optional for label folders (else sizes from the image files)",
+    )
+    score.add_argument(
+        "--predictions",
+        required=True,
+        help="COCO-style results JSON, CSV, or a folder or zip of KITTI or YOLO labels",
+    )
+    score.add_argument(
+        "--truth-format", choices=FORMATS, help="the split's format (default: from content)"
+    )
+    score.add_argument(
+        "--predictions-format", choices=FORMATS, help="the detections' format (default: detected)"
+    )
     score.add_argument(
         "--protocol",
         default="coco",
@@ -110,10 +126,17 @@ def main(argv=None):
         return 0
     try:
         protocol = _protocol(args.protocol)
-        truth = load_truth(args.truth, images=args.images, cache_dir=args.cache, boxes=args.boxes)
+        truth = load_truth(
+            args.truth,
+            images=args.images,
+            fmt=args.truth_format,
+            cache_dir=args.cache,
+            boxes=args.boxes,
+        )
         predictions = load_predictions(
             args.predictions,
             truth,
+            fmt=args.predictions_format,
             boxes=args.boxes,
             unknown_classes=args.unknown_classes,
             cache_dir=args.cache,

@@ -215,3 +215,19 @@ def test_cache_of_a_folder(tmp_path):
     (folder / "000007.txt").write_text("Car 0.0 0 -10 1.0 2.0 30.0 40.0 1.5 1.6 3.9 1 2 30 0.1\n")
     changed = load_truth(folder, images=table, cache_dir=cache)
     assert changed.n_boxes == first.n_boxes + 1
+
+
+def test_command_line_reads_label_folders(tmp_path, capsys):
+    from evaluation.engine.__main__ import main
+
+    _, table = write.csv(tmp_path / "csv", IMAGES, CLASSES, BOXES)
+    truth = write.kitti(tmp_path / "k", IMAGES, CLASSES, BOXES, zip_to=tmp_path / "k.zip")
+    det = write.yolo(tmp_path / "y", IMAGES, CLASSES, BOXES, detections=DETECTIONS)
+    argv = ["score", "--truth", str(truth), "--images", str(table), "--predictions", str(det)]
+    assert main([*argv, "--format", "json"]) == 0
+    from_folders = json.loads(capsys.readouterr().out)
+    reference = _all_formats(tmp_path / "ref")["json"]
+    expected = evaluate(reference[0], load_predictions(reference[1], reference[0]), "coco")
+    assert from_folders["summary"] == json.loads(json.dumps(expected))["summary"]
+    assert main([*argv, "--predictions-format", "kitti"]) == 2
+    assert "expected 16 fields" in capsys.readouterr().err

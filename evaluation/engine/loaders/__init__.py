@@ -24,12 +24,12 @@ from . import attributes, checks, coco_json, csv_tables, label_folders
 from .cache import cached
 from .checks import BOX_POLICIES
 
-__all__ = ["BOX_POLICIES", "load_predictions", "load_truth"]
+__all__ = ["BOX_POLICIES", "FORMATS", "load_predictions", "load_truth"]
 
 _INTEGER = re.compile(r"^[+-]?\d+$")
 _INT64 = (-(2**63), 2**63 - 1)
 #: Bumped when the parsed columns change shape or meaning: old cache entries are unused.
-CACHE_SCHEMA = 3
+CACHE_SCHEMA = 4
 UNKNOWN_CLASS_POLICIES = ("reject", "drop")
 
 
