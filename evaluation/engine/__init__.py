@@ -14,6 +14,7 @@ Command line: ``python -m evaluation.engine score --truth GT --predictions PRED`
 """
 
 from .data import GroundTruth, Predictions
+from .difficulty import DIFFICULTY_PRESETS, evaluate_levels
 from .errors import InputError
 from .evaluate import counts, evaluate
 from .loaders import BOX_POLICIES, load_predictions, load_truth
@@ -27,6 +28,7 @@ from .version import ENGINE_VERSION
 __all__ = [
     "BOX_POLICIES",
     "COCO_SUMMARY_KEYS",
+    "DIFFICULTY_PRESETS",
     "ENGINE_VERSION",
     "PRESETS",
     "GroundTruth",
@@ -38,6 +40,7 @@ __all__ = [
     "counts",
     "differences",
     "evaluate",
+    "evaluate_levels",
     "get_protocol",
     "headline",
     "load_predictions",

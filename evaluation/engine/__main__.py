@@ -10,6 +10,7 @@ import math
 import sys
 
 from . import export, provenance
+from .difficulty import DIFFICULTY_PRESETS, evaluate_levels, levels_table
 from .errors import InputError
 from .evaluate import evaluate
 from .loaders import BOX_POLICIES, FORMATS, load_predictions, load_truth
@@ -84,7 +85,8 @@ def build_parser():
     score.add_argument(
         "--protocol",
         default="coco",
-        help=f"preset ({', '.join(PRESETS)}) or a JSON file with a custom preset",
+        help=f"preset ({', '.join([*PRESETS, *DIFFICULTY_PRESETS])}) or a JSON file with a "
+        "custom preset",
     )
     score.add_argument("--format", choices=("table", "json"), default="table")
     score.add_argument(
@@ -125,7 +127,8 @@ def main(argv=None):
             return EXIT_BAD_INPUT
         return 0
     try:
-        protocol = _protocol(args.protocol)
+        levels = args.protocol in DIFFICULTY_PRESETS
+        protocol = args.protocol if levels else _protocol(args.protocol)
         truth = load_truth(
             args.truth,
             images=args.images,
@@ -141,21 +144,25 @@ def main(argv=None):
             unknown_classes=args.unknown_classes,
             cache_dir=args.cache,
         )
-        result, records = evaluate(
-            truth, predictions, protocol, score_threshold=args.threshold, return_records=True
-        )
+        if levels:
+            result, records = evaluate_levels(truth, predictions, protocol), None
+            result["truth_fingerprint"] = truth.content_hash()
+        else:
+            result, records = evaluate(
+                truth, predictions, protocol, score_threshold=args.threshold, return_records=True
+            )
     except InputError as e:
         print(f"error: {e}", file=sys.stderr)
         return EXIT_BAD_INPUT
-    if args.records:
+    if args.records and records is not None:
         records.save(args.records)
-    if args.records_out:
+    if args.records_out and records is not None:
         export.write(args.records_out, records, truth)
     if args.format == "json":
         json.dump(result, sys.stdout, indent=2, allow_nan=False)  # strict JSON only
         sys.stdout.write("\n")
     else:
-        print(table(result))
+        print(levels_table(result) if levels else table(result))
     return 0
 
 

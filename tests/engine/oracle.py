@@ -214,3 +214,176 @@ def toolbox_miss_rate(scores, matched, ignored, npos, n_images):
         j = [i for i in range(len(xs1)) if xs1[i] <= ref]
         refs.append(ys1[j[-1]])
     return float(np.exp(np.mean(np.log(np.maximum(1e-10, 1 - np.array(refs))))))
+
+
+# KITTI object devkit, 2D image boxes ---------------------------------------------------
+#
+# Written from the published logic of the KITTI object development kit's
+# ``cpp/evaluate_object.cpp`` (Geiger et al., CVPR 2012): ``cleanData``,
+# ``computeStatistics``, ``getThresholds``, ``eval_class`` and ``imageBoxOverlap``, one
+# Python function each, loop for loop, in the devkit's own terms: per image a list of
+# ground-truth objects ``(type, x1, y1, x2, y2, truncation, occlusion)`` (DontCare
+# regions included, as in a label file) and of detections ``(type, x1, y1, x2, y2,
+# score)``; easy/moderate/hard = difficulty 0/1/2.
+
+KITTI_MIN_HEIGHT = (40, 25, 25)
+KITTI_MAX_OCCLUSION = (0, 1, 2)
+KITTI_MAX_TRUNCATION = (0.15, 0.3, 0.5)
+KITTI_MIN_OVERLAP = {"car": 0.7, "pedestrian": 0.5, "cyclist": 0.5}
+KITTI_N_SAMPLE_PTS = 41
+_NO_DETECTION = -10000
+
+
+def kitti_box_overlap(a, b, criterion=-1):
+    """``imageBoxOverlap``: -1 IoU, 0 over a's own area, 1 over b's; 0 if disjoint."""
+    x1, y1 = max(a[1], b[1]), max(a[2], b[2])
+    x2, y2 = min(a[3], b[3]), min(a[4], b[4])
+    w, h = x2 - x1, y2 - y1
+    if w <= 0 or h <= 0:
+        return 0
+    inter = w * h
+    a_area = (a[3] - a[1]) * (a[4] - a[2])
+    b_area = (b[3] - b[1]) * (b[4] - b[2])
+    if criterion == -1:
+        return inter / (a_area + b_area - inter)
+    return inter / (a_area if criterion == 0 else b_area)
+
+
+def kitti_clean_data(cls, gt, det, difficulty):
+    """``cleanData``: (ignored_gt, dontcare, ignored_det, n_gt) for one image."""
+    ignored_gt, dc, ignored_det, n_gt = [], [], [], 0
+    for g in gt:
+        height = g[4] - g[2]
+        if g[0].lower() == cls:
+            valid_class = 1
+        elif cls == "pedestrian" and g[0].lower() == "person_sitting":
+            valid_class = 0
+        elif cls == "car" and g[0].lower() == "van":
+            valid_class = 0
+        else:
+            valid_class = -1
+        ignore = (
+            g[6] > KITTI_MAX_OCCLUSION[difficulty]
+            or g[5] > KITTI_MAX_TRUNCATION[difficulty]
+            or height <= KITTI_MIN_HEIGHT[difficulty]
+        )
+        if valid_class == 1 and not ignore:
+            ignored_gt.append(0)
+            n_gt += 1
+        elif valid_class == 0 or (ignore and valid_class == 1):
+            ignored_gt.append(1)
+        else:
+            ignored_gt.append(-1)
+    for g in gt:
+        if g[0].lower() == "dontcare":
+            dc.append(g)
+    for d in det:
+        valid_class = 1 if d[0].lower() == cls else -1
+        height = int(abs(d[2] - d[4]))  # int32_t height = fabs(...): truncated
+        if height < KITTI_MIN_HEIGHT[difficulty]:
+            ignored_det.append(1)
+        elif valid_class == 1:
+            ignored_det.append(0)
+        else:
+            ignored_det.append(-1)
+    return ignored_gt, dc, ignored_det, n_gt
+
+
+def kitti_compute_statistics(cls, gt, det, dc, ignored_gt, ignored_det, compute_fp, thresh=0):
+    """``computeStatistics`` without orientation: dict tp, fp, fn, v (TP scores)."""
+    min_overlap = KITTI_MIN_OVERLAP[cls]
+    stat = {"tp": 0, "fp": 0, "fn": 0, "v": []}
+    assigned = [False] * len(det)
+    below = [compute_fp and d[5] < thresh for d in det]
+    for i, g in enumerate(gt):
+        if ignored_gt[i] == -1:
+            continue
+        det_idx, valid_detection, max_overlap = -1, _NO_DETECTION, 0
+        assigned_ignored_det = False
+        for j, d in enumerate(det):
+            if ignored_det[j] == -1 or assigned[j] or below[j]:
+                continue
+            overlap = kitti_box_overlap(d, g, -1)
+            if not compute_fp and overlap > min_overlap and d[5] > valid_detection:
+                det_idx, valid_detection = j, d[5]
+            elif (
+                compute_fp
+                and overlap > min_overlap
+                and (overlap > max_overlap or assigned_ignored_det)
+                and ignored_det[j] == 0
+            ):
+                max_overlap, det_idx, valid_detection = overlap, j, 1
+                assigned_ignored_det = False
+            elif (
+                compute_fp
+                and overlap > min_overlap
+                and valid_detection == _NO_DETECTION
+                and ignored_det[j] == 1
+            ):
+                det_idx, valid_detection = j, 1
+                assigned_ignored_det = True
+        if valid_detection == _NO_DETECTION and ignored_gt[i] == 0:
+            stat["fn"] += 1
+        elif valid_detection != _NO_DETECTION and (ignored_gt[i] == 1 or ignored_det[det_idx] == 1):
+            assigned[det_idx] = True
+        elif valid_detection != _NO_DETECTION:
+            stat["tp"] += 1
+            stat["v"].append(det[det_idx][5])
+            assigned[det_idx] = True
+    if compute_fp:
+        for j in range(len(det)):
+            if not (assigned[j] or ignored_det[j] == -1 or ignored_det[j] == 1 or below[j]):
+                stat["fp"] += 1
+        nstuff = 0
+        for region in dc:
+            for j, d in enumerate(det):
+                if assigned[j] or ignored_det[j] in (-1, 1) or below[j]:
+                    continue
+                if kitti_box_overlap(d, region, 0) > min_overlap:
+                    assigned[j] = True
+                    nstuff += 1
+        stat["fp"] -= nstuff
+    return stat
+
+
+def kitti_get_thresholds(v, n_groundtruth):
+    """``getThresholds``: scores at (about) every 1/40 step of recall."""
+    v = sorted(v, reverse=True)
+    t, current_recall = [], 0.0
+    for i in range(len(v)):
+        l_recall = (i + 1) / n_groundtruth
+        r_recall = (i + 2) / n_groundtruth if i < len(v) - 1 else l_recall
+        if (r_recall - current_recall) < (current_recall - l_recall) and i < len(v) - 1:
+            continue
+        t.append(v[i])
+        current_recall += 1.0 / (KITTI_N_SAMPLE_PTS - 1.0)
+    return t
+
+
+def kitti_eval_class(cls, groundtruth, detections, difficulty):
+    """``eval_class``: the 41 precision values (max from the right) and n_gt."""
+    n_gt, v, cleaned = 0, [], []
+    for gt, det in zip(groundtruth, detections):
+        i_gt, dc, i_det, n = kitti_clean_data(cls, gt, det, difficulty)
+        n_gt += n
+        cleaned.append((i_gt, dc, i_det))
+        v += kitti_compute_statistics(cls, gt, det, dc, i_gt, i_det, False)["v"]
+    thresholds = kitti_get_thresholds(v, n_gt)
+    pr = [{"tp": 0, "fp": 0, "fn": 0} for _ in thresholds]
+    for (gt, det), (i_gt, dc, i_det) in zip(zip(groundtruth, detections), cleaned):
+        for k, thresh in enumerate(thresholds):
+            tmp = kitti_compute_statistics(cls, gt, det, dc, i_gt, i_det, True, thresh)
+            for key in pr[k]:
+                pr[k][key] += tmp[key]
+    precision = [0.0] * KITTI_N_SAMPLE_PTS
+    for i in range(len(thresholds)):
+        precision[i] = pr[i]["tp"] / (pr[i]["tp"] + pr[i]["fp"])
+    for i in range(len(thresholds)):
+        precision[i] = max(precision[i:])
+    return precision, n_gt
+
+
+def kitti_ap(precision):
+    """AP over 40 recall positions (slots 1..40, Simonelli et al., ICCV 2019) and over
+    11 (slots 0, 4, ..., 40): the means the devkit's output is summarised by."""
+    return sum(precision[1:]) / 40, sum(precision[0::4]) / 11

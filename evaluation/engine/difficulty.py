@@ -1,0 +1,308 @@
+"""Difficulty-level evaluation in the KITTI 2D style (Geiger et al., CVPR 2012).
+
+The rules of the KITTI object development kit's ``evaluate_object.cpp``, stated in our
+own words (the function named in brackets is where the devkit applies each):
+
+* Levels [``cleanData``]: a ground-truth box of the class counts (``n_gt``) unless its
+  occlusion exceeds the level's maximum, its truncation exceeds the level's maximum or
+  its height ``y2 - y1`` is *at most* the level's minimum height; then it is ignored.
+  Attributes not given (NaN) exceed nothing, like the devkit's -1. A box of the
+  neighbouring class (van for car, person_sitting for pedestrian) is ignored; other
+  classes take no part. A detection whose height, truncated to an integer, is below
+  the minimum is ignored — of *any* class (the devkit tests the height before the
+  class) — and otherwise takes part only if of the class. Ignored boxes and
+  detections can be matched but count neither way.
+* Matching [``computeStatistics``], per image, ground truth in file order, overlap
+  (IoU of the pixel corners) strictly above the class's threshold: to collect the
+  recall thresholds each box takes, among untaken detections, the one with the highest
+  score (first in file order on ties); to count at a score threshold it takes the one
+  with the greatest overlap among non-ignored detections scoring at least the
+  threshold (first on ties), and only if there is none, the first ignored one. A pair
+  with an ignored side is taken but counts neither way. False positives: untaken
+  non-ignored detections at or above the threshold, less those whose intersection
+  over their own area with a don't-care region exceeds the class's threshold.
+* Sampling [``getThresholds``, ``eval_class``]: the true positives' scores, sorted
+  descending, are walked keeping a score when its recall is at least as close to the
+  next 1/40 step as the following score's; precision at each kept threshold, 41
+  slots (later slots 0), each replaced by the maximum to its right. AP over 40 recall
+  positions (Simonelli et al., ICCV 2019) is the mean of slots 1-40; the older 11-point
+  AP the mean of slots 0, 4, ..., 40.
+
+Class names compare case-insensitively. A class with no counted box at a level is
+absent there (None): the devkit only evaluates classes it has detections for.
+"""
+
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from .errors import InputError
+
+N_SAMPLE_POINTS = 41
+_NO_DETECTION = -10000.0  # the devkit's initial "valid detection" score
+
+
+@dataclass(frozen=True)
+class Level:
+    name: str
+    min_height: float
+    max_occlusion: float
+    max_truncation: float
+
+
+@dataclass(frozen=True)
+class DifficultyProtocol:
+    """A difficulty-level preset: levels, per-class overlap, neighbouring classes."""
+
+    name: str
+    version: int
+    description: str
+    levels: tuple
+    class_overlap: dict = field(default_factory=dict)
+    neighbours: dict = field(default_factory=dict)
+    headline_level: str = "moderate"
+
+
+KITTI_2D = DifficultyProtocol(
+    name="kitti2d",
+    version=1,
+    description="KITTI 2D object detection: easy / moderate / hard levels (box height, "
+    "occlusion, truncation), don't-care regions, neighbouring classes ignored, overlap "
+    "strictly above 0.7 for cars and 0.5 for pedestrians and cyclists, AP over 40 recall "
+    "positions and 11 points (object devkit evaluate_object.cpp)",
+    levels=(
+        Level("easy", 40, 0, 0.15),
+        Level("moderate", 25, 1, 0.30),
+        Level("hard", 25, 2, 0.50),
+    ),
+    class_overlap={"car": 0.7, "pedestrian": 0.5, "cyclist": 0.5},
+    neighbours={"car": ("van",), "pedestrian": ("person_sitting",)},
+)
+
+DIFFICULTY_PRESETS = {KITTI_2D.name: KITTI_2D}
+
+
+def get_difficulty_protocol(name_or_protocol):
+    if isinstance(name_or_protocol, DifficultyProtocol):
+        return name_or_protocol
+    try:
+        return DIFFICULTY_PRESETS[name_or_protocol]
+    except KeyError:
+        raise InputError(
+            "protocol",
+            f"unknown difficulty protocol {name_or_protocol!r}; known: "
+            f"{', '.join(DIFFICULTY_PRESETS)}",
+        ) from None
+
+
+def _corners(xywh):
+    return np.column_stack(
+        [xywh[:, 0], xywh[:, 1], xywh[:, 0] + xywh[:, 2], xywh[:, 1] + xywh[:, 3]]
+    )
+
+
+def _overlap(det, other, own_area=False):
+    """(len(det), len(other)) overlap of corner boxes: IoU, or over the detection's own
+    area; 0 where the intersection is empty (devkit ``imageBoxOverlap``)."""
+    x1 = np.maximum(det[:, None, 0], other[None, :, 0])
+    y1 = np.maximum(det[:, None, 1], other[None, :, 1])
+    x2 = np.minimum(det[:, None, 2], other[None, :, 2])
+    y2 = np.minimum(det[:, None, 3], other[None, :, 3])
+    w, h = x2 - x1, y2 - y1
+    valid = (w > 0) & (h > 0)
+    inter = np.where(valid, w * h, 0.0)
+    det_area = ((det[:, 2] - det[:, 0]) * (det[:, 3] - det[:, 1]))[:, None]
+    if own_area:
+        denominator = np.broadcast_to(det_area, inter.shape)
+    else:
+        other_area = ((other[:, 2] - other[:, 0]) * (other[:, 3] - other[:, 1]))[None, :]
+        denominator = det_area + other_area - inter
+    out = np.zeros(inter.shape)
+    np.divide(inter, denominator, out=out, where=valid)
+    return out
+
+
+class _Image:
+    """One image's part in one class and level: boxes, detections, regions, flags."""
+
+    def __init__(self, gt_corners, gt_ignored, det_corners, det_ignored, det_score, regions, thr):
+        self.gt_ignored = gt_ignored  # 0 counted, 1 ignored
+        self.det_ignored = det_ignored  # 0 regular, 1 ignored
+        self.score = det_score
+        self.iou = _overlap(det_corners, gt_corners).T  # (gt, det)
+        self.thr = thr
+        if len(regions) and len(det_corners):
+            self.in_region = (_overlap(det_corners, regions, own_area=True) > thr).any(axis=1)
+        else:
+            self.in_region = np.zeros(len(det_corners), bool)
+
+    def tp_scores(self):
+        """First pass: the scores of the true positives (highest-score candidate)."""
+        assigned = np.zeros(len(self.score), bool)
+        scores = []
+        for i in range(len(self.gt_ignored)):
+            cand = ~assigned & (self.iou[i] > self.thr) & (self.score > _NO_DETECTION)
+            if not cand.any():
+                continue
+            j = int(np.argmax(np.where(cand, self.score, -np.inf)))  # first on ties
+            assigned[j] = True
+            if self.gt_ignored[i] == 0 and self.det_ignored[j] == 0:
+                scores.append(self.score[j])
+        return scores
+
+    def counts(self, threshold):
+        """Second pass at a score threshold: (tp, fp, fn)."""
+        available = self.score >= threshold
+        assigned = np.zeros(len(self.score), bool)
+        tp = fn = 0
+        regular = self.det_ignored == 0
+        for i in range(len(self.gt_ignored)):
+            cand = available & ~assigned & (self.iou[i] > self.thr)
+            if (cand & regular).any():
+                j = int(np.argmax(np.where(cand & regular, self.iou[i], -np.inf)))
+            elif cand.any():
+                j = int(np.argmax(cand))  # the first ignored one
+            else:
+                fn += self.gt_ignored[i] == 0
+                continue
+            assigned[j] = True
+            tp += self.gt_ignored[i] == 0 and regular[j]
+        free = available & ~assigned & regular
+        fp = int(free.sum()) - int((free & self.in_region).sum())
+        return int(tp), fp, int(fn)
+
+
+def _thresholds(scores, n_gt):
+    """``getThresholds``: scores kept at about every 1/40 step of recall."""
+    scores = sorted(scores, reverse=True)
+    kept, current = [], 0.0
+    last = len(scores) - 1
+    for i, score in enumerate(scores):
+        left = (i + 1) / n_gt
+        right = (i + 2) / n_gt if i < last else left
+        if (right - current) < (current - left) and i < last:
+            continue
+        kept.append(score)
+        current += 1.0 / (N_SAMPLE_POINTS - 1.0)
+    return kept
+
+
+def _class_index(classes, name):
+    lower = [c.lower() for c in classes]
+    return [k for k, c in enumerate(lower) if c == name]
+
+
+def evaluate_levels(truth, predictions, protocol="kitti2d"):
+    """AP per level and class under a difficulty protocol (see the module docstring).
+
+    Returns ``{"protocol": {...}, "levels": {level: {"classes": {class: {"AP_R40",
+    "AP_R11", "n_gt", "precision"}}, "AP_R40", "AP_R11"}}, "headline": float|None}``;
+    a level's AP is the mean over the classes present there, the headline the
+    headline level's AP_R40.
+    """
+    protocol = get_difficulty_protocol(protocol)
+    gt_corners_all = _corners(truth.boxes)
+    det_corners_all = _corners(predictions.boxes)
+    det_height = np.trunc(np.abs(predictions.boxes[:, 3]))  # int32_t height = fabs(...)
+    gt_height = truth.boxes[:, 3]
+    gt_by_image = _group(truth.box_image, truth.n_images)
+    det_by_image = _group(predictions.image, truth.n_images)
+    region_by_image = _group(truth.region_image, truth.n_images)
+    region_corners = _corners(truth.regions)
+    levels = {}
+    for level in protocol.levels:
+        per_class = {}
+        for name, thr in protocol.class_overlap.items():
+            own = _class_index(truth.classes, name)
+            if not own:
+                continue
+            near = [
+                k for n in protocol.neighbours.get(name, ()) for k in _class_index(truth.classes, n)
+            ]
+            images, n_gt = [], 0
+            for image in range(truth.n_images):
+                g = gt_by_image[image]
+                g = g[np.isin(truth.box_class[g], own + near)]
+                d = det_by_image[image]
+                small = det_height[d] < level.min_height
+                keep = small | np.isin(predictions.cls[d], own)
+                d, small = d[keep], small[keep]
+                if not len(g) and not len(d):
+                    continue
+                hard = (
+                    (truth.occlusion[g] > level.max_occlusion)
+                    | (truth.truncation[g] > level.max_truncation)
+                    | (gt_height[g] <= level.min_height)
+                )
+                counted = np.isin(truth.box_class[g], own) & ~hard
+                n_gt += int(counted.sum())
+                images.append(
+                    _Image(
+                        gt_corners_all[g],
+                        np.where(counted, 0, 1),
+                        det_corners_all[d],
+                        small.astype(int),
+                        predictions.score[d],
+                        region_corners[region_by_image[image]],
+                        thr,
+                    )
+                )
+            per_class[truth.classes[own[0]]] = _class_result(images, n_gt)
+        levels[level.name] = _level_summary(per_class)
+    headline = levels.get(protocol.headline_level, {}).get("AP_R40")
+    return {
+        "protocol": {"name": protocol.name, "version": protocol.version},
+        "levels": levels,
+        "headline": headline,
+    }
+
+
+def _group(index, n):
+    order = np.argsort(index, kind="stable")
+    bounds = np.searchsorted(index[order], np.arange(n + 1))
+    return [order[bounds[i] : bounds[i + 1]] for i in range(n)]
+
+
+def _class_result(images, n_gt):
+    if n_gt == 0:
+        return {"AP_R40": None, "AP_R11": None, "n_gt": 0, "precision": None}
+    scores = [s for image in images for s in image.tp_scores()]
+    thresholds = _thresholds(scores, n_gt)[:N_SAMPLE_POINTS]
+    precision = np.zeros(N_SAMPLE_POINTS)
+    for k, threshold in enumerate(thresholds):
+        tp = fp = 0
+        for image in images:
+            t, f, _ = image.counts(threshold)
+            tp, fp = tp + t, fp + f
+        precision[k] = tp / (tp + fp) if tp + fp else 0.0
+    precision = np.maximum.accumulate(precision[::-1])[::-1]
+    return {
+        "AP_R40": float(precision[1:].sum() / 40),
+        "AP_R11": float(precision[0::4].sum() / 11),
+        "n_gt": n_gt,
+        "precision": precision.tolist(),
+    }
+
+
+def _level_summary(per_class):
+    present = [r for r in per_class.values() if r["AP_R40"] is not None]
+    mean = lambda key: float(np.mean([r[key] for r in present])) if present else None  # noqa: E731
+    return {"classes": per_class, "AP_R40": mean("AP_R40"), "AP_R11": mean("AP_R11")}
+
+
+def levels_table(result):
+    """A plain-text table of ``evaluate_levels``' result: AP per level and class."""
+    rows = [f"{'level':<10}{'class':<16}{'n_gt':>6}{'AP_R40':>9}{'AP_R11':>9}"]
+    show = lambda v: "-" if v is None else f"{v:.4f}"  # noqa: E731
+    for level, entry in result["levels"].items():
+        for name, r in entry["classes"].items():
+            rows.append(
+                f"{level:<10}{name:<16}{r['n_gt']:>6}{show(r['AP_R40']):>9}{show(r['AP_R11']):>9}"
+            )
+        rows.append(
+            f"{level:<10}{'mean':<16}{'':>6}{show(entry['AP_R40']):>9}{show(entry['AP_R11']):>9}"
+        )
+    rows.append(
+        f"headline ({result['protocol']['name']}, moderate AP_R40): {show(result['headline'])}"
+    )
+    return "\n".join(rows)
