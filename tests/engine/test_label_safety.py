@@ -87,6 +87,16 @@ def test_os_metadata_is_skipped(tmp_path):
     assert load_truth(archive).n_boxes == 1
 
 
+def test_corrupted_member(tmp_path):
+    archive = _zip(tmp_path / "c.zip", {"000001.txt": (KITTI_LINE + "\n") * 50})
+    data = bytearray(archive.read_bytes())
+    start = data.index(b"000001.txt") + len("000001.txt")  # the local header's name
+    data[start + 5 : start + 25] = bytes(20)  # into the deflated bytes
+    archive.write_bytes(bytes(data))
+    error = _refused(r"cannot read", archive, fmt="kitti")
+    assert error.record == "000001.txt"
+
+
 def test_not_a_zip_and_unknown_format(tmp_path):
     folder = write.kitti(tmp_path / "k", IMAGES, CLASSES, BOXES)
     _refused(r"unknown format 'darknet'", folder, fmt="darknet")

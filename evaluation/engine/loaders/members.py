@@ -17,6 +17,7 @@ import os
 import posixpath
 import stat
 import zipfile
+import zlib
 
 from ..errors import InputError
 
@@ -149,7 +150,9 @@ class Members:
                     return f.read(size)
             with self._zip.open(name) as f:
                 return f.read(size)
-        except (OSError, zipfile.BadZipFile, EOFError, RuntimeError) as e:
+        except (OSError, zipfile.BadZipFile, EOFError, RuntimeError, zlib.error) as e:
+            raise InputError(self.path, f"cannot read: {e}", record=name) from None
+        except NotImplementedError as e:  # a compression method zipfile lacks
             raise InputError(self.path, f"cannot read: {e}", record=name) from None
 
 
