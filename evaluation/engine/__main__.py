@@ -128,6 +128,10 @@ def main(argv=None):
         return 0
     try:
         levels = args.protocol in DIFFICULTY_PRESETS
+        if levels and (args.records or args.records_out):
+            raise InputError(
+                "--protocol", f"{args.protocol} keeps no match records (--records, --records-out)"
+            )
         protocol = args.protocol if levels else _protocol(args.protocol)
         truth = load_truth(
             args.truth,
@@ -156,7 +160,7 @@ def main(argv=None):
         return EXIT_BAD_INPUT
     if args.records and records is not None:
         records.save(args.records)
-    if args.records_out and records is not None:
+    if args.records_out:
         export.write(args.records_out, records, truth)
     if args.format == "json":
         json.dump(result, sys.stdout, indent=2, allow_nan=False)  # strict JSON only

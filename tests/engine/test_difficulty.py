@@ -294,3 +294,5 @@ def test_command_line(tmp_path, capsys):
     assert result["levels"]["moderate"]["classes"]["Car"]["precision"][:2] == [1.0, 1.0]
     assert main([*argv, "--protocol", "kitti2d"]) == 0
     assert "moderate  Car" in capsys.readouterr().out
+    assert main([*argv, "--protocol", "kitti2d", "--records", str(tmp_path / "r.npz")]) == 2
+    assert "keeps no match records" in capsys.readouterr().err
