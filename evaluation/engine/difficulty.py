@@ -32,6 +32,7 @@ Class names compare case-insensitively. A class with no counted box at a level i
 absent there (None): the devkit only evaluates classes it has detections for.
 """
 
+from bisect import bisect_right
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -123,53 +124,67 @@ def _overlap(det, other, own_area=False):
 
 
 class _Image:
-    """One image's part in one class and level: boxes, detections, regions, flags."""
+    """One image's part in one class and level, as plain lists: per image there are
+    a handful of boxes, where Python loops beat array calls. Overlaps come in
+    precomputed (``iou[i][j]``, ground truth ``i``, detection ``j``, both in file
+    order); counts are memoised per set of detections at or above a threshold."""
 
-    def __init__(self, gt_corners, gt_ignored, det_corners, det_ignored, det_score, regions, thr):
-        self.gt_ignored = gt_ignored  # 0 counted, 1 ignored
-        self.det_ignored = det_ignored  # 0 regular, 1 ignored
-        self.score = det_score
-        self.iou = _overlap(det_corners, gt_corners).T  # (gt, det)
+    __slots__ = ("gt_counted", "regular", "score", "iou", "thr", "in_region", "ranked", "_memo")
+
+    def __init__(self, gt_counted, regular, score, iou, in_region, thr):
+        self.gt_counted = gt_counted  # per box: counted (else ignored)
+        self.regular = regular  # per detection: regular (else ignored)
+        self.score = score
+        self.iou = iou
+        self.in_region = in_region
         self.thr = thr
-        if len(regions) and len(det_corners):
-            self.in_region = (_overlap(det_corners, regions, own_area=True) > thr).any(axis=1)
-        else:
-            self.in_region = np.zeros(len(det_corners), bool)
+        self.ranked = sorted(-s for s in score)  # negated, ascending
+        self._memo = {}
 
     def tp_scores(self):
         """First pass: the scores of the true positives (highest-score candidate)."""
-        assigned = np.zeros(len(self.score), bool)
+        assigned = [False] * len(self.score)
         scores = []
-        for i in range(len(self.gt_ignored)):
-            cand = ~assigned & (self.iou[i] > self.thr) & (self.score > _NO_DETECTION)
-            if not cand.any():
+        for i, row in enumerate(self.iou):
+            best, j = _NO_DETECTION, -1
+            for k, overlap in enumerate(row):
+                if not assigned[k] and overlap > self.thr and self.score[k] > best:
+                    best, j = self.score[k], k
+            if j < 0:
                 continue
-            j = int(np.argmax(np.where(cand, self.score, -np.inf)))  # first on ties
             assigned[j] = True
-            if self.gt_ignored[i] == 0 and self.det_ignored[j] == 0:
+            if self.gt_counted[i] and self.regular[j]:
                 scores.append(self.score[j])
         return scores
 
     def counts(self, threshold):
-        """Second pass at a score threshold: (tp, fp, fn)."""
-        available = self.score >= threshold
-        assigned = np.zeros(len(self.score), bool)
-        tp = fn = 0
-        regular = self.det_ignored == 0
-        for i in range(len(self.gt_ignored)):
-            cand = available & ~assigned & (self.iou[i] > self.thr)
-            if (cand & regular).any():
-                j = int(np.argmax(np.where(cand & regular, self.iou[i], -np.inf)))
-            elif cand.any():
-                j = int(np.argmax(cand))  # the first ignored one
-            else:
-                fn += self.gt_ignored[i] == 0
+        """Second pass at a score threshold: (tp, fp)."""
+        available = bisect_right(self.ranked, -threshold)  # scores >= threshold
+        if available not in self._memo:
+            self._memo[available] = self._count(threshold)
+        return self._memo[available]
+
+    def _count(self, threshold):
+        n = len(self.score)
+        open_ = [self.score[k] >= threshold for k in range(n)]
+        tp = 0
+        for i, row in enumerate(self.iou):
+            j, best, fallback = -1, 0.0, -1
+            for k in range(n):
+                if not open_[k] or row[k] <= self.thr:
+                    continue
+                if self.regular[k]:
+                    if row[k] > best:
+                        j, best = k, row[k]
+                elif fallback < 0:
+                    fallback = k
+            j = j if j >= 0 else fallback
+            if j < 0:
                 continue
-            assigned[j] = True
-            tp += self.gt_ignored[i] == 0 and regular[j]
-        free = available & ~assigned & regular
-        fp = int(free.sum()) - int((free & self.in_region).sum())
-        return int(tp), fp, int(fn)
+            open_[j] = False  # taken
+            tp += self.gt_counted[i] and self.regular[j]
+        fp = sum(1 for k in range(n) if open_[k] and self.regular[k] and not self.in_region[k])
+        return tp, fp
 
 
 def _thresholds(scores, n_gt):
@@ -201,60 +216,79 @@ def evaluate_levels(truth, predictions, protocol="kitti2d"):
     headline level's AP_R40.
     """
     protocol = get_difficulty_protocol(protocol)
-    gt_corners_all = _corners(truth.boxes)
-    det_corners_all = _corners(predictions.boxes)
+    gt_corners = _corners(truth.boxes)
+    det_corners = _corners(predictions.boxes)
     det_height = np.trunc(np.abs(predictions.boxes[:, 3]))  # int32_t height = fabs(...)
-    gt_height = truth.boxes[:, 3]
     gt_by_image = _group(truth.box_image, truth.n_images)
     det_by_image = _group(predictions.image, truth.n_images)
     region_by_image = _group(truth.region_image, truth.n_images)
     region_corners = _corners(truth.regions)
-    levels = {}
-    for level in protocol.levels:
-        per_class = {}
-        for name, thr in protocol.class_overlap.items():
-            own = _class_index(truth.classes, name)
-            if not own:
-                continue
-            near = [
-                k for n in protocol.neighbours.get(name, ()) for k in _class_index(truth.classes, n)
-            ]
-            images, n_gt = [], 0
-            for image in range(truth.n_images):
-                g = gt_by_image[image]
-                g = g[np.isin(truth.box_class[g], own + near)]
-                d = det_by_image[image]
-                small = det_height[d] < level.min_height
-                keep = small | np.isin(predictions.cls[d], own)
-                d, small = d[keep], small[keep]
-                if not len(g) and not len(d):
-                    continue
-                hard = (
-                    (truth.occlusion[g] > level.max_occlusion)
-                    | (truth.truncation[g] > level.max_truncation)
-                    | (gt_height[g] <= level.min_height)
-                )
-                counted = np.isin(truth.box_class[g], own) & ~hard
-                n_gt += int(counted.sum())
+    tallest_minimum = max(level.min_height for level in protocol.levels)
+    per_level = {level.name: {} for level in protocol.levels}
+    for name, thr in protocol.class_overlap.items():
+        own = _class_index(truth.classes, name)
+        if not own:
+            continue
+        near = [
+            k for n in protocol.neighbours.get(name, ()) for k in _class_index(truth.classes, n)
+        ]
+        gt_own = _mask(len(truth.classes), own)[truth.box_class]
+        gt_part = _mask(len(truth.classes), own + near)[truth.box_class]
+        det_own = _mask(len(truth.classes), own)[predictions.cls]
+        # a detection below any level's minimum height takes part at that level
+        det_part = det_own | (det_height < tallest_minimum)
+        scenes = []  # per image: what every level needs, overlaps computed once
+        for image in range(truth.n_images):
+            g = gt_by_image[image]
+            g = g[gt_part[g]]
+            d = det_by_image[image]
+            d = d[det_part[d]]
+            if len(d):
+                scenes.append((image, g, d, _overlap(det_corners[d], gt_corners[g]).T))
+        for level in protocol.levels:
+            hard = (
+                (truth.occlusion > level.max_occlusion)
+                | (truth.truncation > level.max_truncation)
+                | (truth.boxes[:, 3] <= level.min_height)
+            )
+            counted_all = gt_own & ~hard
+            n_gt = int(counted_all.sum())
+            small_all = det_height < level.min_height
+            take_all = small_all | det_own
+            images = []
+            for image, g, d, iou in scenes:
+                take = take_all[d]
+                if not take.any():
+                    continue  # no detection: nothing to count at any threshold
+                own_d = d[take]
+                regions = region_corners[region_by_image[image]]
+                in_region = np.zeros(len(own_d), bool)
+                if len(regions):
+                    in_region = (_overlap(det_corners[own_d], regions, own_area=True) > thr).any(1)
                 images.append(
                     _Image(
-                        gt_corners_all[g],
-                        np.where(counted, 0, 1),
-                        det_corners_all[d],
-                        small.astype(int),
-                        predictions.score[d],
-                        region_corners[region_by_image[image]],
+                        counted_all[g].tolist(),
+                        (~small_all[own_d]).tolist(),
+                        predictions.score[own_d].tolist(),
+                        iou[:, take].tolist(),
+                        in_region.tolist(),
                         thr,
                     )
                 )
-            per_class[truth.classes[own[0]]] = _class_result(images, n_gt)
-        levels[level.name] = _level_summary(per_class)
+            per_level[level.name][truth.classes[own[0]]] = _class_result(images, n_gt)
+    levels = {name: _level_summary(per_class) for name, per_class in per_level.items()}
     headline = levels.get(protocol.headline_level, {}).get("AP_R40")
     return {
         "protocol": {"name": protocol.name, "version": protocol.version},
         "levels": levels,
         "headline": headline,
     }
+
+
+def _mask(n, indices):
+    mask = np.zeros(n, bool)
+    mask[indices] = True
+    return mask
 
 
 def _group(index, n):
@@ -272,7 +306,7 @@ def _class_result(images, n_gt):
     for k, threshold in enumerate(thresholds):
         tp = fp = 0
         for image in images:
-            t, f, _ = image.counts(threshold)
+            t, f = image.counts(threshold)
             tp, fp = tp + t, fp + f
         precision[k] = tp / (tp + fp) if tp + fp else 0.0
     precision = np.maximum.accumulate(precision[::-1])[::-1]
