@@ -14,7 +14,7 @@ Command line: ``python -m evaluation.engine score --truth GT --predictions PRED`
 """
 
 from .data import GroundTruth, Predictions
-from .difficulty import DIFFICULTY_PRESETS, evaluate_levels
+from .difficulty import DIFFICULTY_PRESETS, evaluate_levels, level_counts
 from .errors import InputError
 from .evaluate import counts, evaluate
 from .loaders import BOX_POLICIES, load_predictions, load_truth
@@ -43,6 +43,7 @@ __all__ = [
     "evaluate_levels",
     "get_protocol",
     "headline",
+    "level_counts",
     "load_predictions",
     "load_truth",
     "match",

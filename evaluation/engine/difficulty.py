@@ -285,6 +285,40 @@ def evaluate_levels(truth, predictions, protocol="kitti2d"):
     }
 
 
+def level_counts(truth, protocol="kitti2d"):
+    """What a split holds for a difficulty protocol, for its page: boxes counted per
+    level and class (the ``n_gt`` of ``evaluate_levels``), don't-care regions, and how
+    many boxes give each attribute.
+
+    ``{"levels": {level: {class: n}}, "dont_care_regions": m, "attributes_given":
+    {"occlusion": k, "truncation": k, "visibility": k}}``; classes the split lacks are
+    left out.
+    """
+    protocol = get_difficulty_protocol(protocol)
+    levels = {}
+    for level in protocol.levels:
+        hard = (
+            (truth.occlusion > level.max_occlusion)
+            | (truth.truncation > level.max_truncation)
+            | (truth.boxes[:, 3] <= level.min_height)
+        )
+        counts = {}
+        for name in protocol.class_overlap:
+            own = _class_index(truth.classes, name)
+            if own:
+                gt_own = _mask(len(truth.classes), own)[truth.box_class]
+                counts[truth.classes[own[0]]] = int((gt_own & ~hard).sum())
+        levels[level.name] = counts
+    return {
+        "levels": levels,
+        "dont_care_regions": int(len(truth.region_image)),
+        "attributes_given": {
+            name: int((~np.isnan(getattr(truth, name))).sum())
+            for name in ("occlusion", "truncation", "visibility")
+        },
+    }
+
+
 def _mask(n, indices):
     mask = np.zeros(n, bool)
     mask[indices] = True
