@@ -240,16 +240,19 @@ def requeue_unjudged():
     from .tasks import judge
 
     cutoff = timezone.now() - datetime.timedelta(seconds=settings.BENCHBOOK_QUEUED_GRACE_SECONDS)
+    versions = list(ModelVersion.objects.filter(sign_off=None))
+    all_inputs = verdicts.inputs_for(versions)  # a fixed number of queries for all of them
+    newest = verdicts.newest_judgements([v.pk for v in versions])
     version_ids = []
-    for version in ModelVersion.objects.filter(sign_off=None).select_related("detector"):
-        inputs = verdicts.inputs_of(version)
+    for version in versions:
+        inputs = all_inputs[version.pk]
         if any(e.state in verdicts.OPEN for e in inputs.evaluations):
             continue  # judged when scoring ends
-        if not inputs.unrequested and verdicts._matches(verdicts.newest_judgement(version), inputs):
+        if not inputs.unrequested and verdicts._matches(newest.get(version.pk), inputs):
             continue
         times = [e.finished_at for e in inputs.evaluations if e.finished_at]
         times += [version.created_at, version.judged_at or version.created_at]
-        times += [getattr(inputs.criteria, "created_at", None), inputs.suite.created_at]
+        times += [getattr(spec, "created_at", None) for spec in (inputs.criteria, inputs.suite)]
         if max(t for t in times if t is not None) < cutoff:
             version_ids.append(version.pk)
     for version_id in version_ids:

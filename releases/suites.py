@@ -172,6 +172,11 @@ def resolve(entries):
     rows = {}
     for split in BenchmarkSplit.objects.filter(name__in=names):
         rows.setdefault(split.name, {})[split.revision] = split
+    return resolve_from(entries, rows)
+
+
+def resolve_from(entries, rows):
+    """``resolve`` over rows already read: ``rows[name][revision]`` = BenchmarkSplit."""
     out = []
     for entry in entries:
         revisions = rows.get(entry["name"], {})

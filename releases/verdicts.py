@@ -96,38 +96,106 @@ def evaluation_states(evaluations):
     return {str(e.pk): e.state for e in sorted(evaluations, key=lambda e: e.pk)}
 
 
-def inputs_of(version):
-    from evaluation.models import Evaluation
+def _newest_per(model, field, ids, order):
+    """Rows of ``model`` that are the newest (by ``order``) for each ``field`` in ids,
+    in one query."""
+    from django.db.models import OuterRef, Subquery
 
-    from .criteria import current_criteria
+    newest = model.objects.filter(**{field: OuterRef(field)}).order_by(order).values("pk")[:1]
+    return model.objects.filter(**{f"{field}__in": ids}, pk=Subquery(newest))
 
-    detector = version.detector
-    suite = suites.current_suite(detector)
-    protocols = suite.protocols if suite else [detector.primary_protocol]
-    sets = current_sets(version)
-    pairs = {(ps.predictions_id, ps.split_id): ps for ps in sets}
+
+def inputs_for(versions):
+    """{version id: Inputs} of many versions (any detectors) in at most seven queries,
+    whatever their number: the one reading of a judgement's inputs (``inputs_of`` is this for one
+    version), so badges, lists, the sweep and the judge cannot disagree."""
+    from evaluation.models import BenchmarkSplit, Evaluation
+
+    from .models import BenchmarkSuite, Detector, ReleaseCriteria
+
+    versions = list(versions)
+    if not versions:
+        return {}
+    detector_ids = {v.detector_id for v in versions}
+    detectors = Detector.objects.in_bulk(detector_ids)
+    suites_ = _newest_per(BenchmarkSuite, "detector_id", detector_ids, "-number")
+    suite_of = {s.detector_id: s for s in suites_}
+    criteria_of = {
+        c.detector_id: c
+        for c in _newest_per(ReleaseCriteria, "detector_id", detector_ids, "-number")
+    }
+    approved = {}
+    for v in ModelVersion.objects.filter(
+        detector_id__in=detector_ids, sign_off__decision="approved"
+    ).order_by("-sign_off__decided_at", "-sign_off__id"):
+        approved.setdefault(v.detector_id, []).append(v)
+    sets_of = {}
+    for ps in (
+        PredictionSet.objects.current()
+        .filter(version_id__in={v.pk for v in versions})
+        .select_related("split", "predictions")
+    ):
+        sets_of.setdefault(ps.version_id, []).append(ps)
+    protocols_of = {
+        d: (suite_of[d].protocols if d in suite_of else [detectors[d].primary_protocol])
+        for d in detector_ids
+    }
+    all_sets = [ps for sets in sets_of.values() for ps in sets]
     found = Evaluation.objects.filter(
-        predictions_id__in={p for p, _ in pairs},
-        split_id__in={s for _, s in pairs},
-        protocol__in=protocols,
+        predictions_id__in={ps.predictions_id for ps in all_sets},
+        split_id__in={ps.split_id for ps in all_sets},
+        protocol__in={p for ps in protocols_of.values() for p in ps},
     ).select_related("split", "predictions")
-    if suite is not None:
-        found = found.filter(box_policy=suite.box_policy)
-    evaluations = [e for e in found if (e.predictions_id, e.split_id) in pairs]
-    have = {(e.predictions_id, e.split_id, e.protocol) for e in evaluations}
-    unrequested = [
-        (ps, p) for ps in sets for p in protocols if (ps.predictions_id, ps.split_id, p) not in have
-    ]
-    evaluations.sort(key=lambda e: (e.split.name, e.split.revision, protocols.index(e.protocol)))
-    return Inputs(
-        criteria=current_criteria(detector),
-        suite=suite,
-        baseline=baseline_for(version),
-        sets=sets,
-        evaluations=evaluations,
-        required=suites.resolve(suite.splits) if suite else [],
-        unrequested=unrequested,
-    )
+    by_pair = {}
+    for e in found if all_sets else []:
+        by_pair.setdefault((e.predictions_id, e.split_id), []).append(e)
+    names = {e["name"] for s in suite_of.values() for e in s.splits}
+    split_rows = {}
+    for split in BenchmarkSplit.objects.filter(name__in=names) if names else []:
+        split_rows.setdefault(split.name, {})[split.revision] = split
+    out = {}
+    for version in versions:
+        detector_id = version.detector_id
+        suite = suite_of.get(detector_id)
+        protocols = protocols_of[detector_id]
+        sets = sets_of.get(version.pk, [])
+        evaluations = [
+            e
+            for ps in sets
+            for e in by_pair.get((ps.predictions_id, ps.split_id), [])
+            if e.protocol in protocols and (suite is None or e.box_policy == suite.box_policy)
+        ]
+        have = {(e.predictions_id, e.split_id, e.protocol) for e in evaluations}
+        unrequested = [
+            (ps, p)
+            for ps in sets
+            for p in protocols
+            if (ps.predictions_id, ps.split_id, p) not in have
+        ]
+        evaluations.sort(
+            key=lambda e: (e.split.name, e.split.revision, protocols.index(e.protocol))
+        )
+        baseline = next((b for b in approved.get(detector_id, []) if b.pk != version.pk), None)
+        out[version.pk] = Inputs(
+            criteria=criteria_of.get(detector_id),
+            suite=suite,
+            baseline=baseline,
+            sets=sets,
+            evaluations=evaluations,
+            required=suites.resolve_from(suite.splits, split_rows) if suite else [],
+            unrequested=unrequested,
+        )
+    return out
+
+
+def inputs_of(version):
+    return inputs_for([version])[version.pk]
+
+
+def newest_judgements(version_ids):
+    """{version id: its newest Judgement}, in one query."""
+    rows = _newest_per(Judgement, "version_id", set(version_ids), "-id")
+    return {j.version_id: j for j in rows}
 
 
 def newest_judgement(version):
@@ -158,10 +226,30 @@ def _pending_reasons(inputs):
 
 def verdict_of(version):
     """The candidate's verdict (see the module docstring)."""
-    decision = SignOff.objects.filter(version=version).select_related("judgement").first()
-    if decision is not None:
-        return _decided(version, decision)
-    inputs = inputs_of(version)
+    return verdicts_of([version])[version.pk]
+
+
+def verdicts_of(versions):
+    """{version id: Verdict} of many versions in at most nine queries, whatever their
+    number:
+    THE verdict; every page, list, badge, API field and the sign-off read it here."""
+    versions = list(versions)
+    if not versions:
+        return {}
+    ids = [v.pk for v in versions]
+    rows = SignOff.objects.filter(version_id__in=ids).select_related("judgement")
+    decisions = {d.version_id: d for d in rows}
+    all_inputs = inputs_for(versions)
+    newest = newest_judgements([pk for pk in ids if pk not in decisions])
+    return {
+        v.pk: _decided(all_inputs[v.pk], decisions[v.pk])
+        if v.pk in decisions
+        else _undecided(all_inputs[v.pk], newest.get(v.pk))
+        for v in versions
+    }
+
+
+def _undecided(inputs, judgement):
     missing = [str(s) for s in inputs.missing()]
     if inputs.scoring:
         return Verdict("scoring", evaluations=inputs.evaluations, missing=missing)
@@ -172,7 +260,6 @@ def verdict_of(version):
             reasons=_pending_reasons(inputs),
             missing=missing,
         )
-    judgement = newest_judgement(version)
     if not _matches(judgement, inputs):
         return Verdict(
             "judging",
@@ -192,9 +279,8 @@ def verdict_of(version):
     )
 
 
-def _decided(version, decision):
+def _decided(inputs, decision):
     """A decided version keeps what the decision saw (older decisions: their rules)."""
-    inputs = inputs_of(version)
     judgement = decision.judgement
     if judgement is not None:
         state, reasons = judgement.verdict, list(judgement.reasons)

@@ -23,19 +23,29 @@ def baselines_of(detectors):
     return {v.detector_id: v for v in approved.only("id", "detector_id")}
 
 
-def blocked_versions(versions):
-    """Ids of the undecided versions among these whose newest judgement is not a pass
-    (regression or incomplete), in one query."""
-    from ..models import Judgement
+def _has_decision(version, model):
+    try:
+        return version.sign_off is not None
+    except model.DoesNotExist:
+        return False
 
-    newest = {}
-    for version_id, verdict in (
-        Judgement.objects.filter(version__in=versions, version__sign_off=None)
-        .order_by("version_id", "-id")
-        .values_list("version_id", "verdict")
-    ):
-        newest.setdefault(version_id, verdict)
-    return {v for v, verdict in newest.items() if verdict != "pass"}
+
+def _undecided_states(versions):
+    """{version id: verdict state} of the undecided versions among these, from
+    ``verdicts.verdicts_of`` (a fixed number of queries; a stale judgement reads
+    ``judging``, never its old verdict)."""
+    from ..models import SignOff
+    from ..verdicts import verdicts_of
+
+    undecided = [v for v in versions if not _has_decision(v, SignOff)]
+    return {pk: verdict.state for pk, verdict in verdicts_of(undecided).items()}
+
+
+def blocked_versions(versions):
+    """Ids of the undecided versions among these whose current verdict is final and not
+    a pass (regression or incomplete)."""
+    states = _undecided_states(list(versions))
+    return {pk for pk, state in states.items() if state in ("regression", "incomplete")}
 
 
 def state_of(version, baseline, blocked=()):
@@ -51,22 +61,15 @@ def state_of(version, baseline, blocked=()):
 
 
 def version_badges(versions):
-    """{version id: badge} for the pages' lists and charts, in three queries: a decided
-    version's decision (baseline, approved, rejected), else the verdict of its newest
-    judgement (incomplete, regression, pass), else "not judged". Only the version page
-    and the overview's candidates read the exact, current verdict (``verdicts.verdict_of``).
-    Versions should come with ``select_related("sign_off")``."""
-    from ..models import Judgement, SignOff
+    """{version id: badge} for the pages' lists and charts: a decided version's decision
+    (baseline, approved, rejected), else its current verdict (scoring, judging,
+    incomplete, regression, pass) from ``verdicts.verdicts_of``, in a fixed number of
+    queries. Versions should come with ``select_related("sign_off")``."""
+    from ..models import SignOff
 
     versions = list(versions)
     baselines = baselines_of({v.detector_id for v in versions})
-    newest = {}
-    for version_id, verdict in (
-        Judgement.objects.filter(version__in=versions)
-        .order_by("version_id", "-id")
-        .values_list("version_id", "verdict")
-    ):
-        newest.setdefault(version_id, verdict)
+    states = _undecided_states(versions)
     out = {}
     for v in versions:
         try:
@@ -77,24 +80,27 @@ def version_badges(versions):
         if base is not None and base.pk == v.pk:
             out[v.pk] = "baseline"
         else:
-            out[v.pk] = decision or newest.get(v.pk, "not judged")
+            out[v.pk] = decision or states[v.pk]
     return out
 
 
 def version_states(versions):
-    """{version id: badge} for many versions of any detectors, in three queries."""
+    """{version id: badge} for many versions of any detectors (API): baseline, signed
+    off, rejected, blocked (current verdict regression or incomplete) or candidate."""
     versions = list(versions)
     baselines = baselines_of({v.detector_id for v in versions})
     blocked = blocked_versions(versions)
     return {v.pk: state_of(v, baselines.get(v.detector_id), blocked) for v in versions}
 
 
-def outcomes_of(version, judgement=None):
-    """The judged rules of ``judgement`` (default: the version's newest), failures first."""
-    from ..models import Judgement, Outcome
+def outcomes_of(version, judgement):
+    """The judged rules of ``judgement`` (a judgement of ``version``; None, e.g. the
+    current verdict has none yet: no outcomes, never a stale judgement's), failures
+    first."""
+    from ..models import Outcome
 
     if judgement is None:
-        judgement = Judgement.objects.filter(version=version).order_by("-id").first()
+        return []
     order = {"fail": 0, "missing": 0, "not significant": 1, "no data": 2, "pass": 3}
     rows = list(
         Outcome.objects.filter(judgement=judgement).select_related("split", "criteria", "baseline")
