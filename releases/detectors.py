@@ -48,13 +48,6 @@ def create_detector(user, team, name, classes, suite, *, description=""):
             raise DetectorError(f"name: {team} already has a detector called {name!r}", path="name")
         probe = Detector(team=team, name=name, classes=classes)
         clean = suites.validate_suite(probe, suite)
-        detector = services.create_detector(
-            team,
-            name,
-            classes,
-            protocols=tuple(clean["protocols"]),
-            description=description,
-            splits=[s["name"] for s in clean["splits"]],
+        return services.create_detector(
+            team, name, classes, description=description, suite=clean, user=user
         )
-        suites.set_suite(detector, user, clean)
-    return detector

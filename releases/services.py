@@ -36,12 +36,18 @@ def create_team(name, members=()):
     return team
 
 
-def create_detector(team, name, classes, *, protocols=("coco",), description="", splits=()):
-    """A detector and its first benchmark suite (``splits``: names, newest revision)."""
+def create_detector(
+    team, name, classes, *, protocols=("coco",), description="", splits=(), suite=None, user=None
+):
+    """A detector and its first benchmark suite, exactly one audited version: ``suite``
+    (validated by ``suites.validate_suite``) or one from ``protocols`` and ``splits``
+    (names, newest revision)."""
     from . import suites
 
     if not classes or len(set(classes)) != len(classes):
         raise UploadError("a detector needs a list of distinct class names")
+    if suite is not None:
+        protocols = suite["protocols"]
     for protocol in protocols:
         evaluation_services.engine.get_protocol(protocol)
     with transaction.atomic():
@@ -54,7 +60,7 @@ def create_detector(team, name, classes, *, protocols=("coco",), description="",
             protocols=list(protocols),
             description=description,
         )
-        suites.first_suite(detector, protocols=protocols, splits=splits)
+        suites.first_suite(detector, user, protocols=protocols, splits=splits, clean=suite)
     return detector
 
 

@@ -125,16 +125,23 @@ def set_suite(detector, user, spec):
     clean = validate_suite(detector, spec)
     with transaction.atomic():
         Detector.objects.select_for_update().filter(pk=detector.pk).first()
-        suite = _create(detector, user, clean)
-        audit.record_event(
-            AuditEvent.Kind.SUITE_CHANGED,
-            user,
-            f"detector:{detector.pk}",
-            {"detector": str(detector), "number": suite.number, "suite": clean},
-        )
+        suite = _create_audited(detector, user, clean)
         from .services import rejudge_later
 
         rejudge_later(detector.pk)
+    return suite
+
+
+def _create_audited(detector, user, clean):
+    """The one writer of suite versions: the row and its audit event, in the caller's
+    transaction."""
+    suite = _create(detector, user, clean)
+    audit.record_event(
+        AuditEvent.Kind.SUITE_CHANGED,
+        user or "system",
+        f"detector:{detector.pk}",
+        {"detector": str(detector), "number": suite.number, "suite": clean},
+    )
     return suite
 
 
@@ -151,19 +158,18 @@ def _create(detector, user, clean):
     return suite
 
 
-def first_suite(detector, user=None, *, protocols, splits=()):
-    """Suite v1 of a new detector (``services.create_detector``)."""
-    return _create(
-        detector,
-        user,
-        {
+def first_suite(detector, user=None, *, protocols=("coco",), splits=(), clean=None):
+    """Suite v1 of a new detector (``services.create_detector``), audited: ``clean`` (a
+    validated suite) or one built from ``protocols`` and split names."""
+    if clean is None:
+        clean = {
             "splits": [{"name": n, "revision": None} for n in splits],
             "protocols": list(protocols),
             "box_policy": "keep",
             "score_threshold": 0.5,
             "class_thresholds": {},
-        },
-    )
+        }
+    return _create_audited(detector, user, clean)
 
 
 def resolve(entries):

@@ -123,6 +123,19 @@ def test_leads_edit_the_suite_with_history_and_diff(client, detector, split, use
     ).exists()
 
 
+def _one_audited_suite(detector, user):
+    """A new detector has exactly one suite version, v1, written to the audit trail by
+    the lead who created it (it used to leave an unaudited v1 and an audited v2)."""
+    from releases.audit import verify_audit
+    from releases.models import AuditEvent
+
+    assert list(detector.suites.values_list("number", flat=True)) == [1]
+    events = AuditEvent.objects.filter(kind="suite changed", subject=f"detector:{detector.pk}")
+    assert [(e.actor, e.payload["number"]) for e in events] == [(user.username, 1)]
+    assert events.get().payload["suite"] == suites.as_dict(suites.current_suite(detector))
+    assert verify_audit()[0] is None
+
+
 def test_a_lead_creates_a_detector_with_its_suite(client, team, split, users):
     client.force_login(users["engineer"])
     refused = client.get("/detectors/new/")
@@ -154,6 +167,7 @@ def test_a_lead_creates_a_detector_with_its_suite(client, team, split, users):
     suite = suites.current_suite(detector)
     assert suite.protocols == ["coco", "voc"] and suite.class_thresholds == {"pedestrian": 0.3}
     assert [s.pk for s in suites.required_splits(detector)] == [split.pk]
+    _one_audited_suite(detector, users["lead"])
     again = client.post("/detectors/new/", form)
     assert again.status_code == 400 and "already has a detector called" in again.content.decode()
 
@@ -195,3 +209,4 @@ def test_the_api_creates_a_detector_as_the_page_does(team, split, users, rival_d
         "pedestrian",
     ]
     assert suites.current_suite(detector).score_threshold == 0.4
+    _one_audited_suite(detector, users["lead"])
