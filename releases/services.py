@@ -87,6 +87,14 @@ def create_version(
         raise UploadError(f"{detector} already has a version labelled {label!r}") from None
 
 
+def _box_policy(detector):
+    """The box policy the in-request check applies: the suite's, as its evaluations will."""
+    from . import suites
+
+    suite = suites.current_suite(detector)
+    return suite.box_policy if suite else "keep"
+
+
 def submit_predictions(version, split, uploaded, user):
     """Store a version's predictions on a split and queue their evaluations.
 
@@ -95,7 +103,8 @@ def submit_predictions(version, split, uploaded, user):
     evaluations all finished and at least one failed (``_replace_or_refuse``).
     """
     require_upload_right(user, version.detector)
-    with evaluation_services.received_predictions(uploaded, split) as received:
+    boxes = _box_policy(version.detector)
+    with evaluation_services.received_predictions(uploaded, split, boxes=boxes) as received:
         with transaction.atomic():
             return _record_set(version, split, received, user)
 
@@ -104,7 +113,8 @@ def submit_for_label(detector, label, split, uploaded, user, **version_fields):
     """``submit_predictions`` for a version named by label, created if new; a refused
     upload leaves no new version behind."""
     require_upload_right(user, detector)
-    with evaluation_services.received_predictions(uploaded, split) as received:
+    boxes = _box_policy(detector)
+    with evaluation_services.received_predictions(uploaded, split, boxes=boxes) as received:
         with transaction.atomic():
             version = ModelVersion.objects.filter(detector=detector, label=label.strip()).first()
             if version is None:

@@ -191,3 +191,77 @@ def test_the_command_refuses_a_bad_small_file_with_its_message(
             "--user", "engineer", "--create-version", str(path),
         )  # fmt: skip
     assert _stored() == before
+
+
+def test_the_in_request_check_uses_the_suites_box_policy(
+    client, detector, split, split_truth, users, tmp_path
+):
+    """Under a suite whose box policy is ``reject``, a small file with a box outside the
+    frame is refused inside the request (page, API and command) with file, record and
+    field, as the worker would refuse it; nothing is stored. Under ``keep`` (the
+    reference tools' behaviour: pycocotools scores such boxes as given, common practice)
+    the same file is accepted."""
+    from django.core.management import CommandError, call_command
+
+    from releases import suites
+    from tests.platform.test_box_policy import _overhanging_file
+
+    suites.set_suite(
+        detector,
+        users["lead"],
+        {"splits": [{"name": split.name, "revision": None}], "box_policy": "reject"},
+    )
+    content = json.dumps(_overhanging_file(split_truth)).encode()
+    before = _stored()
+    response = client_for(users["engineer"]).post(
+        API + "prediction-sets/",
+        {
+            "detector": detector.pk,
+            "version": "2.0",
+            "split": split.pk,
+            "predictions": file("edge.json", content),
+        },
+        format="multipart",
+    )
+    body = response.json()
+    assert response.status_code == 400, body
+    assert body["message"].startswith("predictions: edge.json: record 0: field 'bbox'"), body
+    assert "outside" in body["message"] or "frame" in body["message"], body
+    assert (body["file"], body["record"], body["field"]) == ("edge.json", "record 0", "bbox")
+    assert _stored() == before
+
+    client.force_login(users["engineer"])
+    page = client.post(
+        reverse("upload", args=[detector.pk]),
+        {"version": "2.0", "split": split.pk, "predictions": upload("edge.json", content)},
+    )
+    assert page.status_code == 400
+    assert "edge.json: record 0: field &#x27;bbox&#x27;" in page.content.decode()
+    assert _stored() == before
+
+    path = tmp_path / "edge.json"
+    path.write_bytes(content)
+    with pytest.raises(CommandError, match="edge.json: record 0: field 'bbox'"):
+        call_command(
+            "upload_predictions",
+            "--detector", detector.slug, "--label", "2.0", "--split", "bay-night:1",
+            "--user", "engineer", "--create-version", str(path),
+        )  # fmt: skip
+    assert _stored() == before
+
+    suites.set_suite(
+        detector,
+        users["lead"],
+        {"splits": [{"name": split.name, "revision": None}], "box_policy": "keep"},
+    )
+    accepted = client_for(users["engineer"]).post(
+        API + "prediction-sets/",
+        {
+            "detector": detector.pk,
+            "version": "2.0",
+            "split": split.pk,
+            "predictions": file("edge.json", content),
+        },
+        format="multipart",
+    )
+    assert accepted.status_code == 201, accepted.json()
