@@ -2,8 +2,8 @@
 promise: no plain approval of a candidate that is not final, or not a pass.
 
 Entry points tried: the page form, the API, the admin (read-only), the benchmark
-suite's page-independent API; the pipeline client has no sign-off (its exit codes are
-in test_client.py) and no management command decides (the demo calls the service).
+suite's page-independent API, the ``sign_off`` management command; the pipeline client
+has no sign-off (its exit codes are in test_client.py).
 """
 
 import pytest
@@ -192,3 +192,76 @@ def test_outcomes_api_reads_the_newest_judgement_and_keeps_the_older(
     assert [(o["judgement"], o["status"]) for o in earlier] == [(old.pk, "pass")]
     listed = lead.get(f"{API}versions/{version.pk}/judgements/").json()
     assert [(j["id"], j["verdict"]) for j in listed] == [(new.pk, "regression"), (old.pk, "pass")]
+
+
+# The management command ---------------------------------------------------------------
+
+
+def _command(version, decision, user="lead", **extra):
+    from django.core.management import call_command
+
+    args = ["sign_off", str(version.pk), "--decision", decision, "--user", user]
+    args += ["--comment", extra.pop("comment", "from the shell")]
+    for key, value in extra.items():
+        args += [f"--{key}", value]
+    out = __import__("io").StringIO()
+    call_command(*args, stdout=out)
+    return out.getvalue()
+
+
+def test_the_command_refuses_judging_and_unjustified_overrides(judging, users):
+    """``manage.py sign_off`` is one more door to the same ``services.sign_off``:
+    judging is refused, approving a regression needs a justification and is then an
+    override; nothing is stored by a refusal."""
+    from django.core.management import CommandError
+
+    before = AuditEvent.objects.count()
+    with pytest.raises(CommandError, match="is judging: a decision waits"):
+        _command(judging, "approve", justification="trial only")
+    with pytest.raises(CommandError, match="only leads of Shuttle Perception can"):
+        _command(judging, "approve", user="engineer")
+    with pytest.raises(CommandError, match="--user: no user 'nobody'"):
+        _command(judging, "approve", user="nobody")
+    verdicts.judge(judging.pk)
+    with pytest.raises(CommandError, match="is regression .*needs a written justification"):
+        _command(judging, "approve")
+    with pytest.raises(CommandError, match="is regression .*needs a written justification"):
+        _command(judging, "approve", justification="   ")
+    assert SignOff.objects.count() == 0 and AuditEvent.objects.count() == before + 1  # judged
+    out = _command(judging, "approve", justification="trial on the depot loop only")
+    assert "override by lead on verdict regression" in out
+    record = SignOff.objects.get()
+    assert (record.override, record.verdict, record.decision) == (True, "regression", "approved")
+    assert AuditEvent.objects.order_by("-id").first().kind == "override"
+    with pytest.raises(CommandError, match="already has a decision"):
+        _command(judging, "reject")
+    assert verify_audit()[0] is None
+
+
+def test_the_command_refuses_an_incomplete_candidate_without_justification(
+    detector, version, split, split_truth, users, run_tasks
+):
+    """Uploaded on one of two required splits: incomplete, naming the missing split;
+    approval without justification is refused, rejection needs only the comment."""
+    from django.core.management import CommandError
+
+    from evaluation import services as evaluation_services
+
+    evaluation_services.load_split(
+        name="bay-day", revision=1, truth=upload("d.json", split_dict(seed=9))
+    )
+    suites.set_suite(detector, users["lead"], {"splits": ["bay-night", "bay-day"]})
+    run_tasks(
+        services.submit_predictions,
+        version,
+        split,
+        upload("p.json", detections_for(split_truth)),
+        users["engineer"],
+    )
+    assert verdicts.verdict_of(version).state == "incomplete"
+    with pytest.raises(CommandError, match="is incomplete \\(no predictions on bay-day rev 1"):
+        _command(version, "approve")
+    assert SignOff.objects.count() == 0
+    out = _command(version, "reject", comment="upload the day split")
+    assert "rejected by lead on verdict incomplete" in out
+    assert SignOff.objects.get().override is False
