@@ -199,6 +199,11 @@ BENCHBOOK_SWEEP_SECONDS = float(os.environ.get("BENCHBOOK_SWEEP_SECONDS", 30))
 BENCHBOOK_QUEUED_GRACE_SECONDS = float(os.environ.get("BENCHBOOK_QUEUED_GRACE_SECONDS", 120))
 BENCHBOOK_DB_RETRY_SECONDS = float(os.environ.get("BENCHBOOK_DB_RETRY_SECONDS", 300))
 BENCHBOOK_MAX_ATTEMPTS = 3
+# Judging (releases/verdicts.py): an error while judging is retried with back-off
+# (RETRY_SECONDS, doubling: 10, 20, 40, 80 s); only after the last retry is it recorded
+# as a final *incomplete* judgement naming the error. Meanwhile the version reads judging.
+BENCHBOOK_JUDGE_RETRIES = int(os.environ.get("BENCHBOOK_JUDGE_RETRIES", 4))
+BENCHBOOK_JUDGE_RETRY_SECONDS = float(os.environ.get("BENCHBOOK_JUDGE_RETRY_SECONDS", 10))
 CELERY_BEAT_SCHEDULE = {
     "requeue-stalled-evaluations": {
         "task": "evaluation.tasks.sweep",

@@ -4,7 +4,7 @@ States: ``scoring`` (an evaluation of a current prediction set, under a suite pr
 is queued, running or not yet requested) → ``judging`` (all finished; no judgement
 recorded against the current criteria, suite, baseline and evaluations) → one final
 state, from that judgement: ``incomplete`` (a required split has no scored predictions,
-an evaluation failed, or judging itself failed), ``regression`` (a rule fails) or
+an evaluation failed, or judging itself failed on every retry), ``regression`` (a rule fails) or
 ``pass``. ``no_criteria`` says the detector had no criteria when judged.
 
 A decided version keeps the verdict its decision was made on. Pages, API, client,
@@ -303,15 +303,23 @@ def _decided(inputs, decision):
 # Judging -----------------------------------------------------------------------------
 
 
-def judge(version_id, *, attempts=3):
+class JudgingFailed(Exception):
+    """Judging raised and this was not the last attempt: nothing was recorded, the
+    version stays ``judging``; the caller retries (``tasks.judge``, with back-off)."""
+
+
+def judge(version_id, *, attempts=3, final=True, attempt=1):
     """Judge an undecided version once it is scored; record a Judgement (with its
     outcomes and an audit event) unless the current one already matches.
 
     Computing (bootstrap intervals) happens outside any lock; the record is written
     under the version's row lock after re-reading the inputs, so a judgement never
     describes inputs that changed meanwhile (then it computes again). Returns the new
-    Judgement or None. An exception while computing is recorded as an *incomplete*
-    judgement naming the error, so no version waits in ``judging`` for ever.
+    Judgement or None. An exception while computing raises ``JudgingFailed`` (nothing
+    recorded) unless ``final``: then it is recorded as an *incomplete* judgement naming
+    the error and the number of attempts (``attempt``), so no version waits in
+    ``judging`` for ever, and a transient error never leaves a final verdict while
+    retries remain.
     """
     for _ in range(attempts):
         version = ModelVersion.objects.select_related("detector").filter(pk=version_id).first()
@@ -325,9 +333,14 @@ def judge(version_id, *, attempts=3):
             return None
         try:
             verdict, reasons, outcomes = _compute(version, inputs)
-        except Exception as e:  # noqa: BLE001 - recorded, not lost
-            log.exception("judging %s failed", version)
-            verdict, reasons, outcomes = "incomplete", [f"judging failed: {e}"], []
+        except Exception as e:  # noqa: BLE001 - retried, then recorded, never lost
+            cause = f"{type(e).__name__}: {e}"
+            if not final:
+                log.warning("judging %s failed (attempt %d), retried: %s", version, attempt, cause)
+                raise JudgingFailed(cause) from e
+            log.exception("judging %s failed (attempt %d), recorded", version, attempt)
+            tries = f"after {attempt} attempts" if attempt > 1 else "once"
+            verdict, reasons, outcomes = "incomplete", [f"judging failed {tries}: {cause}"], []
         with transaction.atomic():
             locked = ModelVersion.objects.select_for_update().get(pk=version_id)
             if SignOff.objects.filter(version_id=version_id).exists():
