@@ -65,14 +65,16 @@ def team(users):
 
 
 @pytest.fixture
-def rival_detector(users):
+def rival_detector(users, django_capture_on_commit_callbacks):
     rival = services.create_team("Tram Vision", [(users["rival"], "lead")])
-    return services.create_detector(rival, "Tram front", CLASSES)
+    with django_capture_on_commit_callbacks(execute=True):  # as committed (audit head)
+        return services.create_detector(rival, "Tram front", CLASSES)
 
 
 @pytest.fixture
-def detector(team):
-    return services.create_detector(team, "Forward camera", CLASSES, protocols=("coco", "voc"))
+def detector(team, django_capture_on_commit_callbacks):
+    with django_capture_on_commit_callbacks(execute=True):  # as committed (audit head)
+        return services.create_detector(team, "Forward camera", CLASSES, protocols=("coco", "voc"))
 
 
 @pytest.fixture

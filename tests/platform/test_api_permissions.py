@@ -168,12 +168,13 @@ MATRIX = {
 }  # fmt: skip
 
 # What a list shows each user (its count). Versions: 1.4.0 and r1. Evaluations: 1.4.0
-# under coco and voc, r1 under coco. Audit events: the split frozen, each upload, each
-# finished evaluation, each judgement; the outsider sees the split's event only.
+# under coco and voc, r1 under coco. Audit events: the split frozen, each detector's
+# suite v1, each upload, each finished evaluation, each judgement; the outsider sees the
+# split's event only.
 SEEN = {
     "list versions":     (1, 1, 2, 0, 1),
     "list evaluations":  (2, 2, 3, 0, 1),
-    "list audit events": (5, 5, 8, 1, 4),
+    "list audit events": (6, 6, 10, 1, 5),
 }  # fmt: skip
 
 # The rows a successful write adds.

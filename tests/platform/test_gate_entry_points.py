@@ -139,7 +139,8 @@ def test_suite_api_validates_audits_and_rejudges(
     assert saved.json()["number"] == 2 and len(saved.json()["required"]) == 2
     history = lead.get(url).json()
     assert [s["number"] for s in history] == [2, 1]
-    event = AuditEvent.objects.filter(kind="suite changed").get()
+    first, event = AuditEvent.objects.filter(kind="suite changed").order_by("id")
+    assert (first.payload["number"], event.payload["number"]) == (1, 2)  # v1 at creation
     assert event.payload["suite"]["class_thresholds"] == {"pedestrian": 0.3}
     verdict = verdicts.verdict_of(judging)  # judged again by the suite change
     assert verdict.state == "incomplete" and verdict.reasons == ["no predictions on bay-day rev 1"]

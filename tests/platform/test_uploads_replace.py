@@ -221,8 +221,8 @@ def test_two_concurrent_replacements_cannot_both_win(
     both_checked = threading.Barrier(2, timeout=30)
     real_received = evaluation_services.received_predictions
 
-    def received(uploaded, split):  # both files are checked before either transaction
-        cm = real_received(uploaded, split)
+    def received(uploaded, split, **options):  # both checked before either transaction
+        cm = real_received(uploaded, split, **options)
         value = cm.__enter__()
         both_checked.wait()
 
