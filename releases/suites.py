@@ -19,6 +19,7 @@ from . import audit, selectors
 from .models import AuditEvent, BenchmarkSuite, Detector, Membership
 
 FIELDS = ("splits", "protocols", "box_policy", "score_threshold", "class_thresholds")
+DEFAULT_THRESHOLD = 0.5  # a detector without a suite (none are created so)
 
 
 class SuiteError(UploadError):
@@ -200,6 +201,26 @@ def required_splits(detector):
     return resolve(suite.splits) if suite else []
 
 
+def threshold_of(suite, class_name=None):
+    """The deployed score threshold of ``class_name`` under ``suite``: its entry in
+    ``class_thresholds``, else ``score_threshold`` (also for ``class_name`` None)."""
+    if suite is None:
+        return DEFAULT_THRESHOLD
+    return suite.class_thresholds.get(class_name, suite.score_threshold)
+
+
+def deployed_threshold(detector, class_name=None):
+    """THE deployed score threshold of a detector's class, from its current suite: what
+    every operating-point number (precision, recall, F1, a confusion matrix) at "the
+    deployed threshold" must cut at. ``class_name`` None: the detector-wide value."""
+    return threshold_of(current_suite(detector), class_name)
+
+
+def deployed_thresholds(suite, classes):
+    """[(class, threshold, overridden)] of ``classes`` under ``suite``, for the pages."""
+    return [(c, threshold_of(suite, c), c in suite.class_thresholds) for c in classes]
+
+
 def deployed_operating_point(card, suite):
     r"""Precision, recall and F1 of a scorecard's detections at the suite's deployed
     score threshold(s), per class and pooled over classes, from its match records:
@@ -226,7 +247,7 @@ def deployed_operating_point(card, suite):
     curves = cumulative_counts(records, max_detections=protocol.max_detections_limit)
     per_class, tp_all, fp_all = {}, 0.0, 0.0
     for k, name in enumerate(records.classes):
-        threshold = suite.class_thresholds.get(name, suite.score_threshold)
+        threshold = threshold_of(suite, name)
         tp, fp, scores = curves.segment(k)
         per_class[name] = threshold_scores(tp, fp, scores, float(curves.n_pos[k]), threshold)
         kept_tp, kept_fp = counts_at(tp, fp, scores, threshold)

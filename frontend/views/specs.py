@@ -77,6 +77,7 @@ def suite(request, detector_id):
             "detector": found,
             "current": current,
             "required": suites.required_splits(found),
+            "thresholds": suites.deployed_thresholds(current, found.classes) if current else [],
             "text": text,
             "error": error,
             "history": selectors.spec_history(

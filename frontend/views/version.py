@@ -16,7 +16,9 @@ def version(request, version_id):
     found = version_or_404(request.user, version_id)
     shown = request.GET.get("judgement", "")
     judgement_id = int(shown) if shown.isdigit() else None
-    splits = selectors.version_scorecards(found)
+    page = selectors.verdict_page(found, judgement_id)
+    suite = selectors.shown_suite(found, page["verdict"])
+    splits = selectors.version_scorecards(found, suite)
     for entry in splits:
         if entry["card"]:
             per_class = entry["card"].result["per_class"]
@@ -38,7 +40,8 @@ def version(request, version_id):
             "decision": getattr(found, "sign_off", None),
             "can_sign_off": selectors.role_in(request.user, found.detector.team) == "lead",
             "badge": selectors.version_badges([found])[found.pk],
-            **selectors.verdict_page(found, judgement_id),
+            "suite": suite,
+            **page,
             "caution": selectors.CAUTION,
         },
     )

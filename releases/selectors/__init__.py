@@ -61,7 +61,9 @@ from .scores import (  # noqa: F401
     summary_items,
 )
 from .version import (  # noqa: F401
+    deployed_numbers,
     replaced_sets,
+    shown_suite,
     verdict_page,
     version_scorecards,
 )

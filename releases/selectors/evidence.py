@@ -3,7 +3,7 @@
 from .access import CAUTION
 from .decisions import outcomes_of, verdict_summary
 from .scores import class_numbers, summary_items
-from .version import version_scorecards
+from .version import shown_suite, version_scorecards
 
 
 def evidence_for(version):
@@ -14,20 +14,19 @@ def evidence_for(version):
 
     from ..audit import verify_audit
     from ..models import AuditEvent
-    from ..suites import current_suite
     from ..verdicts import verdict_of
 
     detector = version.detector
     verdict = verdict_of(version)
     outcomes = outcomes_of(version, verdict.judgement)
-    suite = getattr(verdict.judgement, "suite", None) or current_suite(detector)
+    suite = shown_suite(version, verdict)
     intervals = {
         (o.split_id, o.class_name): (o.low, o.high)
         for o in outcomes
         if o.rule.get("kind") == "no_significant_drop" and o.low is not None
     }
     splits = []
-    for entry in version_scorecards(version):
+    for entry in version_scorecards(version, suite):
         card = entry["card"]
         if card is None:
             splits.append({"split": str(entry["split"]), "scored": False})
@@ -49,7 +48,7 @@ def evidence_for(version):
                 "predictions_sha256": card.predictions_sha256,
                 "summary": dict(summary_items(card.summary)),
                 "classes": classes,
-                "deployed": _deployed(card, suite),
+                "deployed": _deployed(entry["deployed"]),
             }
         )
     decision = getattr(version, "sign_off", None)
@@ -106,14 +105,8 @@ def evidence_for(version):
     }
 
 
-def _deployed(card, suite):
-    """Precision / recall / F1 at the suite's deployed score threshold(s); None when the
-    match records cannot be read (the report still renders)."""
-    from ..suites import deployed_operating_point
-
-    if suite is None or card.protocol != suite.protocols[0]:
+def _deployed(numbers):
+    """The report keeps the engine's shape: suite version, per class and pooled."""
+    if numbers is None:
         return None
-    try:
-        return {"suite_version": suite.number, **deployed_operating_point(card, suite)}
-    except OSError:
-        return None
+    return {k: numbers[k] for k in ("suite_version", "per_class", "pooled")}

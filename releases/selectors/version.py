@@ -3,12 +3,17 @@
 from .scores import _class_rows, _scorecards, summary_items
 
 
-def version_scorecards(version):
-    """Per split: the primary scorecard with its class and slice rows, and the
-    headline of every other protocol. A fixed number of queries."""
+def version_scorecards(version, suite=None):
+    """Per split: the primary scorecard with its class and slice rows, the headline of
+    every other protocol, and (``deployed``) precision, recall and F1 at the deployed
+    score threshold(s) of ``suite`` (default: the detector's current suite). A fixed
+    number of queries (plus one match-records file read per scored split)."""
     from evaluation.models import SliceScore
 
+    from ..suites import current_suite
+
     detector = version.detector
+    suite = suite or current_suite(detector)
     sets = sorted(
         version.prediction_sets.current().select_related("split", "predictions", "uploaded_by"),
         key=lambda ps: (ps.split.name, ps.split.revision),
@@ -41,9 +46,36 @@ def version_scorecards(version):
                     for p in detector.protocols
                     if p != detector.primary_protocol and (ps.pk, p) in cards
                 ],
+                "deployed": deployed_numbers(card, suite, detector.classes) if card else None,
             }
         )
     return out
+
+
+def shown_suite(version, verdict):
+    """The suite a version's numbers are shown under: the one its current judgement (or
+    decision) used, else the detector's current suite."""
+    from ..suites import current_suite
+
+    return getattr(verdict.judgement, "suite", None) or current_suite(version.detector)
+
+
+def deployed_numbers(card, suite, classes):
+    """Precision / recall / F1 of a scorecard at the suite's deployed score threshold(s)
+    (``suites.deployed_operating_point``): ``rows`` per class in the detector's order,
+    each with its threshold, and ``pooled``; None when the suite's primary protocol is
+    not the card's or its match records cannot be read (the page still renders)."""
+    from ..suites import deployed_operating_point
+
+    if suite is None or card.protocol != suite.protocols[0]:
+        return None
+    try:
+        numbers = deployed_operating_point(card, suite)
+    except OSError:
+        return None
+    per_class = numbers["per_class"]
+    rows = [{"class": c, **per_class[c]} for c in classes if c in per_class]
+    return {"suite_version": suite.number, "rows": rows, **numbers}
 
 
 def replaced_sets(version):

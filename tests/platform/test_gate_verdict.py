@@ -188,17 +188,19 @@ def test_a_new_revision_of_a_followed_split_is_required(
 def test_judging_that_raises_is_recorded_not_stuck(
     version, split, split_truth, users, run_tasks, monkeypatch
 ):
-    """An exception while judging becomes an incomplete judgement naming it."""
+    """An exception on the last judging attempt becomes an incomplete judgement naming
+    it (the retries before it: test_gate_judging_retries.py)."""
     criteria.set_criteria(version.detector, users["lead"], [EASY])
 
     def broken(*args):
         raise OSError("match records missing from storage")
 
     monkeypatch.setattr(criteria, "outcomes_for", broken)
+    monkeypatch.setattr(release_tasks.judge, "max_retries", 0)  # this is the last attempt
     _submit(run_tasks, version, split, split_truth, users)
     verdict = verdicts.verdict_of(version)
     assert verdict.state == "incomplete"
-    assert verdict.reasons == ["judging failed: match records missing from storage"]
+    assert verdict.reasons == ["judging failed once: OSError: match records missing from storage"]
 
 
 def test_the_judge_never_uses_the_version_itself_as_baseline(
@@ -328,3 +330,65 @@ def test_the_deployed_thresholds_give_the_operating_point(
     assert pooled["precision"] == pytest.approx(tp / (tp + fp))
     assert pooled["recall"] == pytest.approx(tp / positives)
     assert deployed["suite_version"] == 2
+
+
+def test_the_pages_show_the_deployed_thresholds_and_their_numbers(
+    client, detector, version, split, split_truth, users, run_tasks
+):
+    """The version page cuts its operating-point table at the suite's deployed
+    thresholds (not the scorecard's 0.5) with the same numbers as the evidence report
+    (checked against the engine above); the suite page lists each class's threshold;
+    ``suites.deployed_threshold`` is the one function that gives it."""
+    import re
+
+    from releases import selectors
+
+    spec = {
+        "splits": ["bay-night"],
+        "score_threshold": 0.3,
+        "class_thresholds": {"pedestrian": 0.7},
+    }
+    run_tasks(suites.set_suite, detector, users["lead"], {**spec, "protocols": ["coco"]})
+    assert suites.deployed_threshold(detector, "pedestrian") == 0.7
+    assert suites.deployed_threshold(detector, "car") == 0.3
+    assert suites.deployed_threshold(detector) == 0.3
+    _submit(run_tasks, version, split, split_truth, users)
+    deployed = selectors.evidence_for(version)["splits"][0]["deployed"]
+
+    client.force_login(users["reviewer"])
+    page = client.get(f"/versions/{version.pk}/").content.decode()
+    table = re.search(
+        rf'<table class="deployed" id="deployed-{split.pk}">(.*?)</table>', page, re.S
+    )
+    assert table, "no deployed-threshold table"
+    rows = {
+        cells[0]: cells[1:]
+        for cells in (
+            re.findall(r"<td[^>]*>(.*?)</td>", row)
+            for row in re.findall(r"<tr>(.*?)</tr>", table[1])
+        )
+        if cells
+    }
+
+    def shown(value):
+        return "—" if value is None else f"{value:.3f}"
+
+    for name in ("car", "pedestrian", "cyclist"):
+        numbers = deployed["per_class"][name]
+        assert rows[name][:4] == [
+            shown(0.7 if name == "pedestrian" else 0.3),
+            shown(numbers["precision"]),
+            shown(numbers["recall"]),
+            shown(numbers["f1"]),
+        ], (name, rows[name])
+    assert rows["all classes"][0] == "per class"
+    assert rows["all classes"][1] == shown(deployed["pooled"]["precision"])
+    assert "suite</a> v2" in table[1]
+
+    suite_page = client.get(f"/detectors/{detector.pk}/suite/").content.decode()
+    listed = re.search(r'<table id="deployed-thresholds">(.*?)</table>', suite_page, re.S)[1]
+    assert re.findall(r"<tr><td>(\w+)</td><td[^>]*>([\d.]+)</td><td>(\w+)</td></tr>", listed) == [
+        ("car", "0.300", "score_threshold"),
+        ("pedestrian", "0.700", "class_thresholds"),
+        ("cyclist", "0.300", "score_threshold"),
+    ]
