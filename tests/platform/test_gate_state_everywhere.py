@@ -65,11 +65,20 @@ def test_a_stale_judgement_reads_judging_on_every_page_and_the_api(stale, users,
     assert [v["state"] for v in listed] == ["candidate"]  # not "blocked" by the old rules
     assert api.get(f"{API}versions/{stale.pk}/").json()["state"] == "candidate"
     assert api.get(f"{API}versions/{stale.pk}/verdict/").json()["state"] == "judging"
+    # The stale judgement's failing rule is no current outcome nor a flag; it stays
+    # readable by its id.
+    old = verdicts.newest_judgement(stale)
+    assert api.get(API + "outcomes/", {"version": stale.pk}).json()["results"] == []
+    assert api.get(API + "flags/").json()["results"] == []
+    earlier = api.get(API + "outcomes/", {"judgement": old.pk}).json()["results"]
+    assert [o["status"] for o in earlier] == ["fail"]
 
     # Judged against the current criteria, every reader agrees again.
     verdicts.judge(stale.pk)
     assert selectors.version_badges([stale])[stale.pk] == "pass"
     assert selectors.history_chart(stale.detector)["versions"][0]["state"] == "pass"
+    current = api.get(API + "outcomes/", {"version": stale.pk}).json()["results"]
+    assert [o["status"] for o in current] == ["pass"]
 
 
 def _versions(detector, split, users, count, file_bytes, start=0):

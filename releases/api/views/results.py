@@ -1,6 +1,6 @@
 """Evaluations, outcomes and flags, the audit trail."""
 
-from django.db.models import Exists, OuterRef, Subquery
+from django.db.models import Exists, OuterRef
 from drf_spectacular.types import OpenApiTypes
 from drf_spectacular.utils import extend_schema
 from rest_framework import generics
@@ -9,7 +9,7 @@ from rest_framework.response import Response
 from evaluation.models import Evaluation
 
 from ... import selectors
-from ...models import Judgement, Outcome
+from ...models import Outcome
 from .. import serializers as s
 from ..errors import error_response
 from .base import (
@@ -120,8 +120,10 @@ class EvaluationResult(EvaluationMixin, generics.GenericAPIView):
     ]
 )
 class OutcomeList(Endpoint, generics.ListAPIView):
-    """Judged rules of each version's newest judgement (or of ``judgement``). ``/flags/``
-    lists only the failing ones: the regressions."""
+    """Judged rules of each version's current judgement (the one its verdict reads,
+    ``verdicts.verdicts_of``: none while a version is judging, so a judgement made
+    before the criteria, suite or baseline changed is not listed as current), or of
+    ``judgement``. ``/flags/`` lists only the failing ones: the regressions."""
 
     serializer_class = s.OutcomeSerializer
     only_status = None
@@ -134,8 +136,7 @@ class OutcomeList(Endpoint, generics.ListAPIView):
         if judgement is not None:
             queryset = queryset.filter(judgement_id=judgement)
         else:
-            newest = Judgement.objects.filter(version_id=OuterRef("version_id")).order_by("-id")
-            queryset = queryset.filter(judgement_id=Subquery(newest.values("id")[:1]))
+            queryset = queryset.filter(judgement_id__in=self._current_judgements())
         if self.only_status:
             queryset = queryset.filter(status=self.only_status)
         elif status := _choice(self.request, "status", Outcome.Status.values):
@@ -149,6 +150,21 @@ class OutcomeList(Endpoint, generics.ListAPIView):
             since="judged_at__gte",
             until="judged_at__lt",
         ).order_by("version_id", "rule_index", "split_id", "class_name")
+
+
+    def _current_judgements(self):
+        from ... import verdicts
+        from ...models import ModelVersion
+
+        versions = ModelVersion.objects.filter(
+            detector__in=selectors.visible_detectors(self.request.user)
+        )
+        if (detector := _int(self.request, "detector")) is not None:
+            versions = versions.filter(detector_id=detector)
+        if (version := _int(self.request, "version")) is not None:
+            versions = versions.filter(pk=version)
+        found = verdicts.verdicts_of(versions).values()
+        return [v.judgement.pk for v in found if v.judgement is not None]
 
 
 class FlagList(OutcomeList):
