@@ -2,7 +2,15 @@
 
 from django.contrib import admin
 
-from .models import BenchmarkSplit, ClassScore, Evaluation, PredictionFile, Scorecard, SliceScore
+from .models import (
+    BenchmarkSplit,
+    ClassScore,
+    Evaluation,
+    PredictionFile,
+    Scorecard,
+    SliceScore,
+    StoredProtocol,
+)
 
 
 class ReadOnlyAdmin(admin.ModelAdmin):
@@ -68,3 +76,10 @@ class ScorecardAdmin(ReadOnlyAdmin):
 class SliceScoreAdmin(ReadOnlyAdmin):
     list_display = ["scorecard", "kind", "name", "class_name", "ap"]
     list_filter = ["kind"]
+
+
+@admin.register(StoredProtocol)
+class StoredProtocolAdmin(ReadOnlyAdmin):
+    """Custom protocols are defined in a benchmark suite; a name keeps its definition."""
+
+    list_display = ["name", "sha256", "created_by", "created_at"]

@@ -11,6 +11,7 @@ from django.utils import timezone
 
 from . import engine, jobs, signals
 from .models import ClassScore, Evaluation, PredictionFile, Scorecard, SliceScore
+from .protocols import resolve as resolve_protocol
 from .rows import class_rows, slice_rows
 from .services import _load_predictions, load_truth_of
 from .storage import ContentMismatch, file_sha256, verified_path
@@ -60,7 +61,7 @@ def run_evaluation(evaluation_id, claim=None):
 
 def _score(evaluation):
     split, prediction_file = evaluation.split, evaluation.predictions
-    protocol = engine.get_protocol(evaluation.protocol)
+    protocol = resolve_protocol(evaluation.protocol)
     truth = load_truth_of(split, evaluation.box_policy)
     jobs.progress(evaluation, 25)
     with verified_path(

@@ -15,6 +15,7 @@ from django.utils import timezone
 
 from . import engine, jobs, signals
 from .models import BenchmarkSplit, Evaluation, PredictionFile
+from .protocols import resolve as resolve_protocol
 from .storage import (
     ContentMismatch,
     TooLarge,
@@ -289,7 +290,7 @@ def request_evaluations(split, prediction_file, protocols, *, box_policy="keep")
         )
     evaluations = []
     for protocol in protocols:
-        engine.get_protocol(protocol)
+        resolve_protocol(protocol)
         evaluation, created = Evaluation.objects.get_or_create(
             split=split, predictions=prediction_file, protocol=protocol, box_policy=box_policy
         )

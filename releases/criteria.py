@@ -176,13 +176,15 @@ def _intervals(candidate_card, baseline_card, tag, confidence):
     from evaluation.engine.scoring import headline
 
     records_c, records_b = _records(candidate_card), _records(baseline_card)
-    protocol = candidate_card.protocol
+    from evaluation.protocols import resolve
+
+    resolved = resolve(candidate_card.protocol)
     mask = load_truth_of(candidate_card.evaluation.split).tag_mask(tag) if tag else None
 
     def statistic(records):
         def of(weights):
             w = mask if weights is None else (weights if mask is None else weights * mask)
-            mean, per_class = headline(records, protocol, weights=w)
+            mean, per_class = headline(records, resolved, weights=w)
             return np.r_[mean, per_class]
 
         return of

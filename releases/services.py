@@ -8,6 +8,7 @@ from django.utils import timezone
 from django.utils.text import slugify
 
 from evaluation import services as evaluation_services
+from evaluation.protocols import resolve as resolve_protocol
 from evaluation.services import UploadConflict, UploadError
 
 from . import audit, selectors
@@ -46,10 +47,11 @@ def create_detector(
 
     if not classes or len(set(classes)) != len(classes):
         raise UploadError("a detector needs a list of distinct class names")
-    if suite is not None:
+    if suite is not None:  # checked by validate_suite (its custom protocols stored below)
         protocols = suite["protocols"]
-    for protocol in protocols:
-        evaluation_services.engine.get_protocol(protocol)
+    else:
+        for protocol in protocols:
+            resolve_protocol(protocol)
     with transaction.atomic():
         detector = Detector.objects.create(
             team=team,

@@ -12,7 +12,9 @@ from django.core.exceptions import PermissionDenied
 from django.db import transaction
 
 from evaluation import engine
+from evaluation import protocols as stored_protocols
 from evaluation.models import BenchmarkSplit
+from evaluation.protocols import resolve as resolve_protocol
 from evaluation.services import UploadError
 
 from . import audit, selectors
@@ -73,18 +75,7 @@ def validate_suite(detector, spec):
             _fail(f"splits[{i}].name", f"{name} is listed twice")
         seen.add(name)
         clean_splits.append({"name": name, "revision": revision})
-    protocols = spec.get("protocols", [detector.primary_protocol])
-    if not isinstance(protocols, list) or not protocols:
-        _fail("protocols", "must be a non-empty list of protocol names")
-    for i, protocol in enumerate(protocols):
-        if not isinstance(protocol, str):
-            _fail(f"protocols[{i}]", "must be a preset protocol's name")
-        try:
-            engine.get_protocol(protocol)
-        except engine.InputError as e:
-            _fail(f"protocols[{i}]", e.message)
-    if len(set(protocols)) != len(protocols):
-        _fail("protocols", "a protocol is listed twice")
+    protocols, custom = _protocols(spec.get("protocols", [detector.primary_protocol]))
     box_policy = spec.get("box_policy", "keep")
     if box_policy not in BenchmarkSuite.BoxPolicy.values:
         _fail("box_policy", f"must be one of {', '.join(BenchmarkSuite.BoxPolicy.values)}")
@@ -102,11 +93,41 @@ def validate_suite(detector, spec):
         clean_thresholds[name] = _threshold(value, f"class_thresholds.{name}")
     return {
         "splits": clean_splits,
-        "protocols": list(protocols),
+        "protocols": protocols,
         "box_policy": box_policy,
         "score_threshold": score_threshold,
         "class_thresholds": clean_thresholds,
+        "custom_protocols": custom,
     }
+
+
+def _protocols(entries):
+    """Names of a suite's protocols, and {name: definition} of its custom ones. An entry
+    is a preset's name, a stored custom protocol's name, or a custom protocol's
+    definition (``engine.protocol_from_dict`` keys, checked by the engine; errors name
+    ``protocols[i].field``), stored under its name when the suite is saved."""
+    if not isinstance(entries, list) or not entries:
+        _fail("protocols", "must be a non-empty list of protocol names or definitions")
+    names, custom = [], {}
+    for i, entry in enumerate(entries):
+        path = f"protocols[{i}]"
+        try:
+            if isinstance(entry, str):
+                resolve_protocol(entry)
+                name = entry
+            elif isinstance(entry, dict):
+                name = stored_protocols.check_definition(entry, path).name
+                custom[name] = entry
+            else:
+                _fail(path, "must be a protocol's name or a custom protocol's definition")
+        except engine.InputError as e:
+            _fail(f"{path}.{e.field}" if e.field else path, e.message)
+        if name in names:
+            _fail(path, f"{name!r} is listed twice")
+        names.append(name)
+    stored = stored_protocols.definitions([n for n in names if n not in custom])
+    known = {**stored, **custom}
+    return names, {name: known[name] for name in names if name in known}
 
 
 def current_suite(detector):
@@ -116,6 +137,11 @@ def current_suite(detector):
 
 def as_dict(suite):
     return {field: getattr(suite, field) for field in FIELDS}
+
+
+def custom_definitions(suite):
+    """{name: definition} of the custom protocols a suite version names."""
+    return stored_protocols.definitions(suite.protocols) if suite else {}
 
 
 def set_suite(detector, user, spec):
@@ -136,7 +162,13 @@ def set_suite(detector, user, spec):
 def _create_audited(detector, user, clean):
     """The one writer of suite versions: the row and its audit event, in the caller's
     transaction."""
+    clean = dict(clean)
+    custom = clean.pop("custom_protocols", None) or {}
+    for definition in custom.values():
+        stored_protocols.store(definition, getattr(user, "username", "system"))
     suite = _create(detector, user, clean)
+    if custom:
+        clean["custom_protocols"] = custom  # the definitions, in the audit trail
     audit.record_event(
         AuditEvent.Kind.SUITE_CHANGED,
         user or "system",
@@ -243,7 +275,7 @@ def deployed_operating_point(card, suite):
     from .criteria import _records
 
     records = _records(card)
-    protocol = engine.get_protocol(card.protocol)
+    protocol = resolve_protocol(card.protocol)
     curves = cumulative_counts(records, max_detections=protocol.max_detections_limit)
     per_class, tp_all, fp_all = {}, 0.0, 0.0
     for k, name in enumerate(records.classes):

@@ -78,6 +78,10 @@ def suite(request, detector_id):
             "current": current,
             "required": suites.required_splits(found),
             "thresholds": suites.deployed_thresholds(current, found.classes) if current else [],
+            "custom": [
+                (name, json.dumps(definition, indent=2))
+                for name, definition in suites.custom_definitions(current).items()
+            ],
             "text": text,
             "error": error,
             "history": selectors.spec_history(

@@ -391,7 +391,11 @@ class SuiteInput(serializers.Serializer):
         'or "name" / "name:revision"',
     )
     protocols = serializers.ListField(
-        child=serializers.CharField(), required=False, help_text="Presets; the first is primary"
+        child=serializers.JSONField(),
+        required=False,
+        help_text="Each a preset's name, a stored custom protocol's name, or a custom "
+        'protocol\'s definition ({"name": "iou60", "base": "coco", "iou_thresholds": [0.6]}, '
+        "stored under its name); the first is primary",
     )
     box_policy = serializers.ChoiceField(["keep", "clip", "reject"], required=False)
     score_threshold = serializers.FloatField(required=False, min_value=0, max_value=1)

@@ -48,6 +48,9 @@ def _decided(version, split, split_truth, users, run_tasks):
         users["engineer"],
     )
     run_tasks(services.sign_off, version, users["lead"], "rejected", "pedestrians at night weak")
+    from evaluation import protocols
+
+    protocols.store({"name": "iou60", "base": "coco", "iou_thresholds": [0.6]}, "lead")
     return version
 
 
@@ -69,6 +72,7 @@ PROTECTED = [
     ("evaluation_scorecard", "stored results"),
     ("evaluation_classscore", "stored results"),
     ("evaluation_slicescore", "stored results"),
+    ("evaluation_storedprotocol", "a stored protocol"),
     ("releases_signoff", "a release decision"),
     ("releases_judgement", "a judgement"),
     ("releases_outcome", "an outcome of a judgement"),

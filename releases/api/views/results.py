@@ -151,7 +151,6 @@ class OutcomeList(Endpoint, generics.ListAPIView):
             until="judged_at__lt",
         ).order_by("version_id", "rule_index", "split_id", "class_name")
 
-
     def _current_judgements(self):
         from ... import verdicts
         from ...models import ModelVersion
