@@ -48,10 +48,15 @@ def set_webhook(detector, user, url, secret):
 
 
 def payload(version):
-    from .verdicts import newest_judgement
+    """What the team is told, read when the message is sent: the version's current
+    verdict (``verdicts.verdict_of``), so a delayed message never reports a judgement
+    that a criteria, suite or baseline change has made stale (it says ``judging``)."""
+    from .verdicts import verdict_of
 
-    judgement = newest_judgement(version)
-    outcomes = Outcome.objects.filter(judgement=judgement).select_related("split")
+    verdict = verdict_of(version)
+    judgement = verdict.judgement
+    outcomes = Outcome.objects.filter(judgement=judgement, judgement__isnull=False)
+    outcomes = outcomes.select_related("split")
     counts = {status: 0 for status in Outcome.Status.values}
     for o in outcomes:
         counts[o.status] += 1
@@ -59,8 +64,8 @@ def payload(version):
         "event": "version.judged",
         "detector": version.detector.name,
         "version": version.label,
-        "verdict": judgement.verdict if judgement else None,
-        "reasons": judgement.reasons if judgement else [],
+        "verdict": verdict.state,
+        "reasons": verdict.reasons,
         "regression": counts["fail"] > 0,
         "counts": counts,
         "failures": [

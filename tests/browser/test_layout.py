@@ -13,7 +13,7 @@ from django.core.files.base import ContentFile
 from django.utils import timezone
 
 from evaluation import services as evaluation_services
-from releases import criteria, demo, services, verdicts
+from releases import criteria, demo, services, suites, verdicts
 
 from .conftest import BROWSER_MARKS, shot
 
@@ -98,6 +98,18 @@ def demo_like(detector, team, users, run_tasks, split):
             truth=ContentFile(json.dumps(truth).encode(), name=f"{name}.json"),
         )
         splits.append((loaded, truth))
+    # A suite with a custom protocol and a class threshold: the suite page lists both,
+    # the version page's deployed-threshold table cuts there.
+    suites.set_suite(
+        detector,
+        users["lead"],
+        {
+            "splits": ["bay-day", "ring-road"],
+            "protocols": ["coco", {"name": "iou60", "base": "coco", "iou_thresholds": [0.6]}],
+            "score_threshold": 0.5,
+            "class_thresholds": {demo.CLASSES[1]: 0.4},
+        },
+    )
     start = timezone.now() - datetime.timedelta(days=30)
     versions = []
     for index, label in enumerate(["1.3", "1.4", "1.5"]):

@@ -49,6 +49,14 @@ def test_a_stale_judgement_reads_judging_on_every_page_and_the_api(stale, users,
     (row,) = selectors.overview_for(users["lead"])
     assert row["newest_state"] == "judging"
     assert [c["verdict"].state for c in row["candidates"]] == ["judging"]
+    from releases import notify
+
+    message = notify.payload(stale)  # a late webhook or e-mail
+    assert (message["verdict"], message["failures"], message["regression"]) == (
+        "judging",
+        [],
+        False,
+    )
     report = selectors.evidence_for(stale)
     assert report["verdict"]["state"] == "judging"
     assert report["outcomes"] == []  # not the stale judgement's failing rule

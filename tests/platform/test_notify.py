@@ -50,7 +50,8 @@ def test_webhook_is_signed_and_leads_are_mailed(detector, version, users, receiv
     expected = "sha256=" + hmac.new(b"s3cret-s3cret-s3cret", body, hashlib.sha256).hexdigest()
     assert signature_header == expected
     assert json.loads(body)["version"] == "1.4.0"
-    assert mail.outbox[0].to == ["lead@larkspur.invalid"] and "NOT JUDGED" in mail.outbox[0].subject
+    assert mail.outbox[0].to == ["lead@larkspur.invalid"] and "INCOMPLETE" in mail.outbox[0].subject
+    assert json.loads(body)["reasons"] == ["no predictions uploaded"]  # its current verdict
 
 
 def test_a_failing_webhook_is_retried_then_reported(detector, version, users, receiver, settings):
