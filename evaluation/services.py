@@ -52,7 +52,11 @@ def _cache_dir():
     return str(settings.BENCHBOOK_ENGINE_CACHE)
 
 
-def _format_of(name):
+def _format_of(name, path=None):
+    """The engine format of an upload: a zip (by content) is a KITTI, YOLO or VOC
+    label archive, detected by the engine; otherwise the name says CSV or JSON."""
+    if path is not None and engine.is_collection(path):
+        return engine.detect_format(path)
     return "csv" if name.lower().endswith(".csv") else "json"
 
 
@@ -62,7 +66,8 @@ def _format_of(name):
 def load_split(*, name, revision, truth, images=None, description="", created_by=""):
     """Validate, hash and freeze a benchmark split from uploaded or opened files.
 
-    ``truth``: COCO-style JSON or a boxes CSV (then ``images`` is the images table).
+    ``truth``: COCO-style JSON, a boxes CSV (then ``images`` is the images table), or
+    a zip of KITTI, YOLO or VOC XML label files (``images`` optional).
     Raises ``engine.InputError`` for bad content and ``UploadError`` for a refused
     request; in both cases nothing is stored.
     """
@@ -82,7 +87,8 @@ def load_split(*, name, revision, truth, images=None, description="", created_by
         except TooLarge as e:
             raise UploadError(str(e)) from None
         try:
-            loaded = engine.load_truth(truth_path, images=images_path, fmt=_format_of(truth_path))
+            source_format = _format_of(truth_path, truth_path)
+            loaded = engine.load_truth(truth_path, images=images_path, fmt=source_format)
         except engine.InputError as e:
             e.argument = "images" if images_path and str(e.path) == images_path else "truth"
             e.path = os.path.basename(e.path)  # the name as uploaded, not the spool folder
@@ -113,7 +119,7 @@ def load_split(*, name, revision, truth, images=None, description="", created_by
             image_count=loaded.n_images,
             box_count=loaded.n_boxes,
             sha256=sha,
-            source_format=_format_of(truth_path),
+            source_format=source_format,
             created_by=created_by,
             frozen_at=timezone.now(),
         )
@@ -271,7 +277,7 @@ def _load_predictions(path, truth, name, boxes="keep"):
     uploaded."""
     try:
         return engine.load_predictions(
-            path, truth, fmt=_format_of(name), boxes=boxes, cache_dir=_cache_dir()
+            path, truth, fmt=_format_of(name, path), boxes=boxes, cache_dir=_cache_dir()
         )
     except engine.InputError as e:
         e.path = os.path.basename(e.path)

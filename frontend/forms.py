@@ -6,14 +6,21 @@ from evaluation.models import BenchmarkSplit
 class SplitForm(forms.Form):
     name = forms.SlugField(max_length=64, help_text="e.g. bay-night")
     revision = forms.IntegerField(min_value=1)
-    truth = forms.FileField(label="Ground truth", help_text="COCO-style JSON, or a boxes CSV")
-    images = forms.FileField(required=False, help_text="Images table CSV (for a CSV split)")
+    truth = forms.FileField(
+        label="Ground truth",
+        help_text="COCO-style JSON, a boxes CSV, or a zip of KITTI, YOLO or VOC XML labels",
+    )
+    images = forms.FileField(
+        required=False, help_text="Images table CSV (for a CSV split; optional for a zip)"
+    )
     description = forms.CharField(required=False, widget=forms.Textarea(attrs={"rows": 2}))
 
 
 class PredictionsForm(forms.Form):
     version = forms.CharField(max_length=64, help_text="An existing label, or a new one")
     split = forms.ModelChoiceField(queryset=BenchmarkSplit.objects.all())
-    predictions = forms.FileField(help_text="COCO-style results JSON or CSV")
+    predictions = forms.FileField(
+        help_text="COCO-style results JSON, CSV, or a zip of KITTI or YOLO label files"
+    )
     source_commit = forms.CharField(max_length=64, required=False)
     notes = forms.CharField(required=False, widget=forms.Textarea(attrs={"rows": 2}))

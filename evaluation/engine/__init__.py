@@ -17,7 +17,7 @@ from .data import GroundTruth, Predictions
 from .difficulty import DIFFICULTY_PRESETS, evaluate_levels, level_counts
 from .errors import InputError
 from .evaluate import counts, evaluate
-from .loaders import BOX_POLICIES, load_predictions, load_truth
+from .loaders import BOX_POLICIES, detect_format, is_collection, load_predictions, load_truth
 from .matching import match
 from .protocols import PRESETS, Protocol, get_protocol, protocol_from_dict
 from .provenance import annotate, differences, protocol_record
@@ -38,11 +38,13 @@ __all__ = [
     "Protocol",
     "annotate",
     "counts",
+    "detect_format",
     "differences",
     "evaluate",
     "evaluate_levels",
     "get_protocol",
     "headline",
+    "is_collection",
     "level_counts",
     "load_predictions",
     "load_truth",

@@ -24,7 +24,14 @@ from . import attributes, checks, coco_json, csv_tables, label_folders
 from .cache import cached
 from .checks import BOX_POLICIES
 
-__all__ = ["BOX_POLICIES", "FORMATS", "load_predictions", "load_truth"]
+__all__ = [
+    "BOX_POLICIES",
+    "FORMATS",
+    "detect_format",
+    "is_collection",
+    "load_predictions",
+    "load_truth",
+]
 
 _INTEGER = re.compile(r"^[+-]?\d+$")
 _INT64 = (-(2**63), 2**63 - 1)
@@ -51,6 +58,15 @@ def _format(path, fmt):
     if name.endswith(".csv"):
         return "csv"
     return "json" if csv_tables.sniff_is_json(path) else "csv"
+
+
+def detect_format(path):
+    """The format ``load_truth``/``load_predictions`` would read ``path`` as."""
+    _exists(path)
+    return _format(path, None)
+
+
+is_collection = label_folders.is_collection
 
 
 def _exists(path):
