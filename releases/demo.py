@@ -229,11 +229,11 @@ def predictions(truth, day_recall, night_recall, jitter, seed, *, false_alarms=6
 
 
 def spoiled(detections):
-    """The same detections with one box of negative width, as a broken export writes it."""
+    """The same detections with one box cut short to three numbers, as a broken export
+    writes it."""
     out = [dict(d) for d in detections]
     at = len(out) // 2
-    x, y, w, h = out[at]["bbox"]
-    out[at]["bbox"] = [x, y, -w, h]
+    out[at]["bbox"] = list(out[at]["bbox"][:3])
     return out
 
 

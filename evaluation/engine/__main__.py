@@ -68,7 +68,7 @@ def build_parser():
     )
     score.add_argument(
         "--images",
-        help="images table CSV (image_id,width,height,tags): needed for a CSV split, "
+        help="images table CSV (image_id; width,height,tags optional): needed for a CSV split, "
         "optional for label folders (else sizes from the image files)",
     )
     score.add_argument(

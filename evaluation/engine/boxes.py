@@ -14,6 +14,8 @@ def pair_iou(det_boxes, gt_boxes, gt_crowd, *, pixel_offset=0.0):
     devkit ``VOCevaldet.m``). For a crowd ground truth the union is the detection's
     own area, so a detection inside a crowd region scores 1 (pycocotools ``maskApi.c``
     ``bbIou``). The operation order follows ``bbIou`` so results agree bit for bit.
+    A box of negative width or height overlaps nothing at offset 0: the intersection
+    width is at most the smaller of the two widths (``bbIou`` skips ``w <= 0``).
 
     Parameters
     ----------
@@ -34,19 +36,22 @@ def pair_iou(det_boxes, gt_boxes, gt_crowd, *, pixel_offset=0.0):
     """
     dx, dy, dw, dh = det_boxes.T
     gx, gy, gw, gh = gt_boxes.T
-    iw = np.minimum(dw + dx, gw + gx) - np.maximum(dx, gx)
-    ih = np.minimum(dh + dy, gh + gy) - np.maximum(dy, gy)
-    if pixel_offset:
-        iw = iw + pixel_offset
-        ih = ih + pixel_offset
-        det_area = (dw + pixel_offset) * (dh + pixel_offset)
-        gt_area = (gw + pixel_offset) * (gh + pixel_offset)
-    else:
-        det_area = dw * dh
-        gt_area = gw * gh
-    overlap = (iw > 0) & (ih > 0)
-    inter = np.where(overlap, iw * ih, 0.0)
-    union = np.where(gt_crowd, det_area, det_area + gt_area - inter)
-    with np.errstate(divide="ignore", invalid="ignore"):
+    # Overflow gives inf, as in the reference's C doubles (IoU 0 then); no warning.
+    with np.errstate(over="ignore", divide="ignore", invalid="ignore"):
+        iw = np.minimum(dw + dx, gw + gx) - np.maximum(dx, gx)
+        ih = np.minimum(dh + dy, gh + gy) - np.maximum(dy, gy)
+        if pixel_offset:
+            iw = iw + pixel_offset
+            ih = ih + pixel_offset
+            det_area = (dw + pixel_offset) * (dh + pixel_offset)
+            gt_area = (gw + pixel_offset) * (gh + pixel_offset)
+        else:
+            det_area = dw * dh
+            gt_area = gw * gh
+        overlap = (iw > 0) & (ih > 0)
+        # Only overlapping pairs multiply: two far-apart (or negative-size) boxes can
+        # have both gaps huge, and their product would overflow for nothing.
+        inter = np.where(overlap, iw, 0.0) * np.where(overlap, ih, 0.0)
+        union = np.where(gt_crowd, det_area, det_area + gt_area - inter)
         iou = np.where(overlap, inter / union, 0.0)
     return iou

@@ -74,7 +74,14 @@ def _candidate_pairs(truth, det_boxes, det_group, protocol, min_threshold):
 
 
 def _outside(area, area_ranges):
-    return np.stack([(area < lo) | (area > hi) for _, lo, hi in area_ranges])
+    """Per bucket, the boxes outside its closed interval (a bucket without bounds,
+    ``None``, holds every box)."""
+    return np.stack(
+        [
+            np.zeros(len(area), bool) if lo is None else (area < lo) | (area > hi)
+            for _, lo, hi in area_ranges
+        ]
+    )
 
 
 def _narrow(values, largest):

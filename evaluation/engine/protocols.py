@@ -23,6 +23,11 @@ COCO_AREA_RANGES = (
     ("large", 96.0**2, 1e10),
 )
 
+#: The VOC protocols: the devkit looks at no area, so the "all" bucket has no bounds
+#: (``None``): a box of negative area (negative width, say) still counts there, as
+#: in ``VOCevaldet.m``. The other buckets are this engine's extension.
+VOC_AREA_RANGES = (("all", None, None), *COCO_AREA_RANGES[1:])
+
 GREEDY = "greedy"  # COCO: best still-unmatched box, regular boxes before ignored ones
 BEST_OVERLAP = "best_overlap"  # VOC devkit: the single best box, taken or not
 
@@ -135,7 +140,7 @@ PRESETS = {
     ),
     "voc07": Protocol(
         name="voc07",
-        version=2,
+        version=3,
         description="PASCAL VOC 2007: 11-point interpolated AP at overlap >= 0.5 "
         "(the devkit's test; the paper says 'exceeds'), inclusive pixel boxes, "
         "difficult boxes neither TP nor FP, ties in file order, recall sampled at "
@@ -144,17 +149,19 @@ PRESETS = {
         iou_thresholds=(0.5,),
         recall_points=VOC07_RECALL_POINTS,
         pixel_offset=1.0,
+        area_ranges=VOC_AREA_RANGES,
         tie_order="file",
     ),
     "voc": Protocol(
         name="voc",
-        version=2,
+        version=3,
         description="PASCAL VOC 2010+: all-point AP, the area under the monotone "
         "precision envelope; matching and ties as voc07 (Everingham et al., IJCV 2010).",
         matching=BEST_OVERLAP,
         iou_thresholds=(0.5,),
         recall_points=None,
         pixel_offset=1.0,
+        area_ranges=VOC_AREA_RANGES,
         tie_order="file",
     ),
     "recall40": Protocol(

@@ -86,7 +86,7 @@ def protocol_record(protocol, truth, predictions, records, result):
         "area_source": {
             "truth": "the annotation's area when given, else w*h",
             "truth_areas_from_file": area_given,
-            "predictions": "w*h",
+            "predictions": "w*h (negative when one side is: outside every bounded range)",
         },
         "size_ranges": [list(r) for r in protocol.area_ranges],
         "miss_rate": "every detection in accumulation order, last point at or below each "

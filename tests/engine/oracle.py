@@ -29,8 +29,14 @@ def _sorted_detections(predictions, image, k):
     return sorted(idx, key=lambda i: -predictions.score[i])  # stable: file order on ties
 
 
-def greedy_ap(truth, predictions, *, thresholds, recall_points, max_detections, epsilon):
-    """AP per (slot, class) under the pycocotools rules, area 'all'. NaN = absent."""
+def greedy_ap(
+    truth, predictions, *, thresholds, recall_points, max_detections, epsilon, outcomes=None
+):
+    """AP per (slot, class) under the pycocotools rules, area 'all'. NaN = absent.
+
+    With a dict ``outcomes``, ``outcomes[k]`` is set to ``(scores, tp, ignored, n_pos)``
+    of slot 0, in pycocotools' concatenation order: images in id order, each image's
+    detections by score (stable)."""
     n_classes = len(truth.classes)
     out = np.full((len(thresholds), n_classes), np.nan)
     for k in range(n_classes):
@@ -42,7 +48,12 @@ def greedy_ap(truth, predictions, *, thresholds, recall_points, max_detections, 
                 for j in range(truth.n_boxes)
                 if truth.box_image[j] == image and truth.box_class[j] == k
             ]
-            ignore = {j: bool(truth.crowd[j] or truth.ignore[j] or truth.difficult[j]) for j in gts}
+            # evaluateImg: g['ignore'] or the area outside aRng ('all': [0, 1e10])
+            ignore = {
+                j: bool(truth.crowd[j] or truth.ignore[j] or truth.difficult[j])
+                or not 0 <= truth.box_area[j] <= 1e10
+                for j in gts
+            }
             gts = sorted(gts, key=lambda j: ignore[j])  # stable: regular boxes first
             n_pos += sum(not ignore[j] for j in gts)
             dets = _sorted_detections(predictions, image, k)
@@ -64,15 +75,21 @@ def greedy_ap(truth, predictions, *, thresholds, recall_points, max_detections, 
                         best, m = iou, g
                     if m is not None:
                         taken.add(m)
+                    # unmatched and outside the area range: ignored (loadRes: area w*h)
+                    w, h = predictions.boxes[d][2:]
+                    outside = m is None and not 0 <= w * h <= 1e10
                     per_slot[t].append(
                         (
                             -predictions.score[d],
                             image,
                             order,
                             m is not None and not ignore[m],
-                            m is not None and ignore[m],
+                            (m is not None and ignore[m]) or outside,
                         )
                     )
+        if outcomes is not None:
+            rows = per_slot[0]
+            outcomes[k] = ([-r[0] for r in rows], [r[3] for r in rows], [r[4] for r in rows], n_pos)
         if n_pos == 0:
             continue
         for t, rows in enumerate(per_slot):
@@ -109,7 +126,7 @@ def matlab_colon(a, d, b):
     return out
 
 
-def voc_ap(truth, predictions, *, eleven_point, min_overlap=0.5):
+def voc_ap(truth, predictions, *, eleven_point, min_overlap=0.5, outcomes=None):
     """AP per class, transliterated from the PASCAL VOC devkit's ``VOCevaldet.m`` (and
     the VOC2007 11-point loop in it) and ``VOCap.m``, written from the published
     code's logic: the class's whole results file sorted by ``sort(-confidence)``
@@ -121,6 +138,10 @@ def voc_ap(truth, predictions, *, eleven_point, min_overlap=0.5):
 
     The devkit knows no crowd regions; like the engine, treat them (and boxes flagged
     ``ignore``) as difficult. Boxes here are [x, y, w, h] with x_max = x + w.
+
+    With a dict ``outcomes``, ``outcomes[k]`` is set to ``(scores, tp, ignored, npos)``
+    in the devkit's sorted order (a detection on a difficult box is neither TP nor FP:
+    ignored).
     """
     out = np.full(len(truth.classes), np.nan)
     difficult = truth.difficult | truth.crowd | truth.ignore
@@ -171,6 +192,9 @@ def voc_ap(truth, predictions, *, eleven_point, min_overlap=0.5):
                         fp[d] = 1
             else:
                 fp[d] = 1
+        if outcomes is not None:
+            scores = [predictions.score[i] for i in ids]
+            outcomes[k] = (scores, (tp == 1).tolist(), ((tp == 0) & (fp == 0)).tolist(), npos)
         fp, tp = np.cumsum(fp), np.cumsum(tp)
         rec = tp / npos
         with np.errstate(invalid="ignore", divide="ignore"):

@@ -54,10 +54,7 @@ def _with(**changes):
             r"split\.json: annotations\[1\]: field 'bbox': expected 'array' of length 4",
         ),
         (_with(**{"annotations.0.bbox": [10, 10, 0, 80]}), None),  # zero width: scored
-        (
-            _with(**{"annotations.1.bbox": [10, 10, 5, -3]}),
-            r"split\.json: annotations\[1\]: field 'bbox': height must be >= 0, got -3",
-        ),
+        (_with(**{"annotations.1.bbox": [10, 10, 5, -3]}), None),  # negative: scored
         (_with(**{"annotations.1.bbox": [600, 10, 100, 30]}), None),  # overhangs: kept
         (
             _with(**{"annotations.1.id": 2**63}),
@@ -88,10 +85,7 @@ def _with(**changes):
             _with(**{"images.0.width": 0}),
             r"split\.json: images\[0\]: field 'width': must be > 0, got 0",
         ),
-        (
-            _with(**{"annotations.0.area": -5}),
-            r"split\.json: annotations\[0\]: field 'area': must be >= 0, got -5",
-        ),
+        (_with(**{"annotations.0.area": -5}), None),  # pycocotools: in no size range
         (_with(**{"annotations.0.score": 1}), None),  # unknown fields are ignored
         (
             _with(**{"images.0.id": "1"}),
@@ -148,10 +142,6 @@ def test_truth_boxes_may_overhang_by_a_pixel(files):
             r"predictions\.json: record 0: field 'score': number out of range",
         ),
         (
-            [{**DET, "bbox": [10, 10, -4, 20]}],
-            r"predictions\.json: record 0: field 'bbox': width must be >= 0, got -4",
-        ),
-        (
             [DET, DET, {**DET, "image_id": 42}],
             r"predictions\.json: record 2: field 'image_id': image 42 is not in the split",
         ),
@@ -186,6 +176,7 @@ def test_box_policies(files):
         "outside": 1,
         "clipped": 0,
         "zero_area": 0,
+        "negative_size": 0,
         "on_images_without_size": 0,
     }
     clipped = load_predictions(path, truth, boxes="clip")
@@ -196,6 +187,46 @@ def test_box_policies(files):
         load_predictions(path, truth, boxes="reject")
     with pytest.raises(InputError, match=r"unknown box policy 'trim'"):
         load_predictions(path, truth, boxes="trim")
+
+
+def test_negative_sizes_are_scored_as_given_counted_and_refused_under_reject(files):
+    """pycocotools 2.0.11 accepts boxes of negative width or height in both files
+    (``bbIou`` gives them IoU 0, ``loadRes`` the area w*h), so ``keep`` and ``clip``
+    score them and count them; ``reject`` refuses them naming file, record, field."""
+    mirrored = _with(**{"annotations.1.bbox": [300, 150, -200, 100], "annotations.1.area": -1})
+    truth = load_truth(files.write("split.json", mirrored))
+    assert truth.boxes[1].tolist() == [300, 150, -200, 100]
+    assert truth.box_counts["negative_size"] == 1
+    assert truth.box_counts["negative_area_from_file"] == 1
+    with pytest.raises(
+        InputError,
+        match=r"split\.json: annotations\[1\]: field 'bbox': width must be >= 0, got -200 "
+        r"\(box policy: reject\)",
+    ):
+        load_truth(files.write("split.json", mirrored), boxes="reject")
+    with pytest.raises(
+        InputError, match=r"annotations\[0\]: field 'area': must be >= 0, got -5 \(box policy"
+    ):
+        load_truth(files.write("area.json", _with(**{"annotations.0.area": -5})), boxes="reject")
+
+    truth = _truth(files)
+    flipped = {**DET, "bbox": [60, 90, -50, -80]}
+    over_edge = {**DET, "bbox": [650, 10, -20, 20]}  # spans x 630..650 of a 640 frame
+    path = files.write("predictions.json", [DET, flipped, over_edge])
+    kept = load_predictions(path, truth)
+    assert kept.boxes[1:].tolist() == [[60, 90, -50, -80], [650, 10, -20, 20]]
+    assert kept.box_counts["negative_size"] == 2
+    assert (kept.box_counts["out_of_frame"], kept.box_counts["outside"]) == (1, 0)
+    clipped = load_predictions(path, truth, boxes="clip")
+    # each corner moved into the frame, orientation kept: x 640 .. 630
+    assert clipped.boxes[2].tolist() == [640, 10, -10, 20]
+    assert clipped.box_counts["negative_size"] == 2
+    with pytest.raises(
+        InputError,
+        match=r"predictions\.json: record 1: field 'bbox': width must be >= 0, got -50 "
+        r"\(box policy: reject\)",
+    ):
+        load_predictions(path, truth, boxes="reject")
 
 
 def test_truth_policies_and_images_without_size(files):
@@ -320,6 +351,11 @@ def _csv_truth(files, boxes=BOXES_CSV, images=IMAGES_CSV):
             "image_id,width,height\nf1,1280,-720\n",
             r"images\.csv: line 2: field 'height': must be > 0, got -720",
         ),
+        (
+            BOXES_CSV,
+            "image_id,width,height\nf1,nan,720\nf2,1,1\n",
+            r"images\.csv: line 2: field 'width': expected a number, got 'nan'",
+        ),
         (BOXES_CSV, "image_id,width,height\n", r"images\.csv: the images table lists no images"),
         ("", IMAGES_CSV, r"boxes\.csv: the file is empty"),
     ],
@@ -327,6 +363,37 @@ def _csv_truth(files, boxes=BOXES_CSV, images=IMAGES_CSV):
 def test_bad_csv_split_is_refused_with_its_line(files, boxes, images, pattern):
     with pytest.raises(InputError, match=pattern):
         _csv_truth(files, boxes, images)
+
+
+def test_csv_images_table_may_omit_sizes_like_coco_json(files):
+    """As in COCO-style JSON (pycocotools never reads an image's size), width and
+    height are optional: no column, or an empty cell. Only ``clip`` and ``reject``
+    need them, and they name the file, the line and the field of the first image
+    without one."""
+    truth = _csv_truth(files, images="image_id,tags\nf1,night\nf2,\n")
+    assert np.isnan(truth.image_width).all() and truth.image_tags == (("night",), ())
+    assert truth.box_counts["on_images_without_size"] == 2
+    some = "image_id,width,height\nf1,1280,720\nf2,,\n"
+    truth = _csv_truth(files, images=some)
+    assert truth.image_width[0] == 1280 and np.isnan(truth.image_width[1])
+    for policy in ("clip", "reject"):
+        with pytest.raises(
+            InputError,
+            match=rf"images\.csv: line 3: field 'width': the image has no width/height; the "
+            rf"box policy '{policy}' needs every image's size",
+        ):
+            load_truth(
+                files.write("boxes.csv", BOXES_CSV),
+                images=files.write("images.csv", some),
+                boxes=policy,
+            )
+    detections = files.write(
+        "predictions.csv",
+        "image_id,label,x_min,y_min,x_max,y_max,score\nf2,car,100,100,300,200,0.9\n",
+    )
+    assert len(load_predictions(detections, truth)) == 1
+    with pytest.raises(InputError, match=r"field 'width': image 'f2' has no width/height"):
+        load_predictions(detections, truth, boxes="clip")
 
 
 def test_csv_split_reads_tags_and_string_ids(files):

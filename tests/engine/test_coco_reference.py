@@ -6,8 +6,10 @@ reference's edge conventions: tied scores, more than 100 detections per image an
 class, crowd regions, annotation areas that differ from w*h, classes without ground
 truth, images without detections, and detections of classes the split does not list —
 and real-world files under the default box policy (``keep``): ground truth overhanging
-the frame, detections overhanging it or lying wholly outside, zero-area boxes, images
-without width/height, and ids beyond 2^53.
+the frame, detections overhanging it or lying wholly outside, zero-area boxes, boxes
+of negative width and/or height in both files (corners swapped, or the sign flipped;
+ground-truth area given positive or as the negative w*h), images without width/height,
+and ids beyond 2^53.
 """
 
 import numpy as np
@@ -80,6 +82,7 @@ scenarios = st.fixed_dictionaries(
         "overhang_rate": st.sampled_from([0.0, 0.2, 0.5]),
         "outside_rate": st.sampled_from([0.0, 0.1]),
         "zero_area_rate": st.sampled_from([0.0, 0.1]),
+        "negative_rate": st.sampled_from([0.0, 0.1, 0.3]),
         "sizeless_rate": st.sampled_from([0.0, 0.5, 1.0]),
         "big_ids": st.booleans(),
     }
@@ -90,7 +93,7 @@ BIG = 2**53 + 1  # beyond float64's exact integers; pycocotools keeps Python int
 
 def roughen(rng, split, detections, scenario):
     """Make the files real-world: boxes across and beyond the frame, zero-area boxes,
-    images without sizes, huge ids. pycocotools accepts all of these."""
+    negative sizes, images without sizes, huge ids. pycocotools accepts all of these."""
     frames = {im["id"]: (im["width"], im["height"]) for im in split["images"]}
 
     def move(box, frame, rate, outside_rate):
@@ -108,17 +111,35 @@ def roughen(rng, split, detections, scenario):
             box[2 + int(rng.integers(0, 2))] = 0.0
         return box
 
+    def negate(box):
+        """Negative width and/or height, as broken exporters write them: either the
+        same corners listed the other way round, or the size's sign flipped."""
+        if rng.random() >= scenario["negative_rate"]:
+            return box, False
+        x, y, w, h = box
+        sides = int(rng.integers(1, 4))  # 1: width, 2: height, 3: both
+        mirror = rng.random() < 0.5
+        if sides & 1:
+            x, w = (x + w, -w) if mirror else (x, -w)
+        if sides & 2:
+            y, h = (y + h, -h) if mirror else (y, -h)
+        return [x, y, w, h], True
+
     for ann in split["annotations"]:
         ann["bbox"] = flatten(
             move(ann["bbox"], frames[ann["image_id"]], scenario["overhang_rate"], 0)
         )
         if ann["bbox"][2] * ann["bbox"][3] == 0:
             ann["area"] = 0.0
+        ann["bbox"], negated = negate(ann["bbox"])
+        if negated and rng.random() < 0.5:  # the area as w*h: negative for one side
+            ann["area"] = ann["bbox"][2] * ann["bbox"][3]
     for det in detections:
         frame = frames.get(det["image_id"])
         det["bbox"] = flatten(
             move(det["bbox"], frame, scenario["overhang_rate"], scenario["outside_rate"])
         )
+        det["bbox"], _ = negate(det["bbox"])
     for im in split["images"]:
         if rng.random() < scenario["sizeless_rate"]:
             del im["width"], im["height"]
@@ -226,6 +247,30 @@ def test_zero_area_and_wholly_outside_boxes_are_scored_like_pycocotools(tmp_path
     ]
     ours, _ = _compare(tmp_path, split, detections)
     assert ours["per_class"]["cyclist"]["tp"] == 1.0 and ours["per_class"]["cyclist"]["fp"] == 2.0
+
+
+def test_negative_sizes_are_scored_like_pycocotools(tmp_path):
+    """pycocotools 2.0.11 on boxes of negative size: ``bbIou`` gives them IoU 0 with
+    everything; ``loadRes`` sets a detection's area to w*h, so one negative side puts
+    it outside every size range (an unmatched detection there is ignored, not a false
+    positive) while two negative sides give a positive area (a false positive); a
+    ground truth's own ``area`` decides its bucket (negative: ignored everywhere)."""
+    split = _one_class_split([[50, 50, 20, 20], [120, 10, -30, 40], [10, 150, 30, -20]])
+    split["annotations"][1]["area"] = 1200.0  # a positive area, as a tool may state it
+    split["annotations"][2]["area"] = -600.0  # the negative w*h
+    detections = [
+        {"image_id": 1, "category_id": 1, "bbox": [70, 70, -20, -20], "score": 0.97},
+        {"image_id": 1, "category_id": 1, "bbox": [120, 10, -30, 40], "score": 0.95},
+        {"image_id": 1, "category_id": 1, "bbox": [50, 50, 20, 20], "score": 0.9},
+    ]
+    ours, reference = _compare(tmp_path, split, detections)
+    row = ours["per_class"]["cyclist"]
+    # 2 positives (the negative-area one is ignored); 1 TP, 1 FP (both sides negative),
+    # the one-negative-side detection ignored.
+    assert (row["tp"], row["fp"]) == (1.0, 1.0)
+    assert ours["summary"]["AR100"] == pytest.approx(0.5) == reference.stats[8]
+    assert ours["counts"]["boxes"]["truth"]["negative_size"] == 2
+    assert ours["counts"]["boxes"]["predictions"]["negative_size"] == 2
 
 
 def test_area_exactly_32_squared_is_both_small_and_medium(tmp_path):

@@ -1,16 +1,33 @@
 """Every protocol against a slow literal transliteration of its published algorithm
 (tests/engine/oracle.py: pycocotools 2.0.11 evaluateImg/accumulate; PASCAL VOC devkit
 VOCevaldet.m / VOCap.m; the pedestrian toolbox's bbGt compRoc / dbEval), on random
-splits with difficult boxes, crowds, float and integer boxes, and scores tied across
-images in an order that is not image order (the files are shuffled)."""
+splits with difficult boxes, crowds, float and integer boxes, boxes of negative width
+or height (every third seed), and scores tied across images in an order that is not
+image order (the files are shuffled)."""
 
 import numpy as np
 import pytest
 
-from evaluation.engine import evaluate, get_protocol, match, protocol_from_dict
+from evaluation.engine import evaluate, get_protocol, protocol_from_dict
 
 from . import oracle
 from .synthetic import make_detections, make_split
+
+
+def _flip_some(rng, boxes, rate):
+    """Negative width and/or height on a share of the boxes (corners listed the other
+    way round): the references score such files, so the engine must too."""
+    for item in boxes:
+        if rng.random() < rate:
+            x, y, w, h = item["bbox"]
+            sides = int(rng.integers(1, 4))
+            if sides & 1:
+                x, w = x + w, -w
+            if sides & 2:
+                y, h = y + h, -h
+            item["bbox"] = [x, y, w, h]
+            if "area" in item:
+                item["area"] = w * h  # negative for one flipped side
 
 
 def _random_inputs(files, seed, *, difficult_rate=0.15):
@@ -34,6 +51,9 @@ def _random_inputs(files, seed, *, difficult_rate=0.15):
         duplicate_rate=0.4,
         score_levels=int(rng.choice([4, 1000])),
     )
+    if seed % 3 == 0:
+        _flip_some(rng, split["annotations"], 0.15)
+        _flip_some(rng, detections, 0.15)
     return files.load(split, detections)
 
 
@@ -87,40 +107,82 @@ def test_greedy_protocols_follow_pycocotools_rules(files, seed, spec):
     )
 
 
-@pytest.mark.parametrize("seed", range(10))
-@pytest.mark.parametrize("protocol", ["coco", "recall40"])
+def _oracle_outcomes(truth, predictions, protocol):
+    """Per class ``(scores, tp, ignored, n_pos)`` from the protocol's own reference
+    transliteration: the devkit's ``VOCevaldet.m`` (its sorted order) for best-overlap
+    matching, pycocotools ``evaluateImg`` (images in id order, each by score) else."""
+    p = get_protocol(protocol)
+    outcomes = {}
+    if p.matching == "best_overlap":
+        oracle.voc_ap(truth, predictions, eleven_point=False, outcomes=outcomes)
+    else:
+        oracle.greedy_ap(
+            truth,
+            predictions,
+            thresholds=list(p.threshold_table(truth.classes)),
+            recall_points=(0.0,),
+            max_detections=p.max_detections_limit,
+            epsilon=p.precision_epsilon,
+            outcomes=outcomes,
+        )
+    return outcomes
+
+
+@pytest.mark.parametrize("seed", range(12))
+@pytest.mark.parametrize("protocol", ["coco", "recall40", "voc07", "voc"])
 def test_miss_rate_follows_the_pedestrian_toolbox(files, seed, protocol):
-    """Log-average miss rate per class against ``oracle.toolbox_miss_rate``, a
-    transliteration of Dollár et al.'s toolbox (bbGt compRoc, dbEval). Matching (IoU 0.5
-    slot) comes from the engine's match records, which the pycocotools comparisons
-    cover; the toolbox's input order is images in order, each image's detections by
-    score (stable). Many tied scores (4 levels)."""
+    """Log-average miss rate per class, under every protocol that reports it, against
+    ``oracle.toolbox_miss_rate``, a transliteration of Dollár et al.'s toolbox (bbGt
+    compRoc, dbEval), fed with each detection's outcome at slot 0 from the protocol's
+    reference transliteration (pycocotools evaluateImg; the VOC devkit's VOCevaldet.m)
+    in that reference's order. Nothing comes from the engine's own matching. Many tied
+    scores (4 levels), ties across images out of image order, negative sizes."""
     truth, predictions = _random_inputs(files, seed)
     result = evaluate(truth, predictions, protocol)
-    records = match(truth, predictions, protocol)
-    is_tp, is_ignored = records.outcomes(0, 0)
+    outcomes = _oracle_outcomes(truth, predictions, protocol)
     for k, name in enumerate(truth.classes):
-        rows = np.flatnonzero(records.det_class == k)
-        order = rows[
-            np.lexsort((records.det_order[rows], -records.det_score[rows], records.det_image[rows]))
-        ]
-        n_pos = int(records.n_positives(0)[k])
-        expected = (
-            None
-            if n_pos == 0
-            else oracle.toolbox_miss_rate(
-                records.det_score[order].tolist(),
-                is_tp[order].tolist(),
-                is_ignored[order].tolist(),
-                n_pos,
-                truth.n_images,
-            )
-        )
         got = result["per_class"][name]["miss_rate"]
-        if expected is None:
+        if k not in outcomes or outcomes[k][3] == 0:
             assert got is None, name
-        else:
-            assert got == pytest.approx(expected, rel=1e-12, abs=1e-15), name
+            continue
+        scores, tp, ignored, n_pos = outcomes[k]
+        expected = oracle.toolbox_miss_rate(scores, tp, ignored, n_pos, truth.n_images)
+        assert got == pytest.approx(expected, rel=1e-12, abs=1e-15), (name, got, expected)
+
+
+@pytest.mark.parametrize("protocol", ["voc07", "voc"])
+def test_miss_rate_ties_follow_file_order_under_voc(files, protocol):
+    """One box on image 1; a false positive on image 2 listed first and the true
+    positive on image 1, tied at 0.9. The devkit's stable sort keeps file order, so
+    the FP comes first (image order would put the TP first and give 1e-10). Hand-worked
+    below, and equal to the toolbox transliteration over the devkit's order."""
+    split = {
+        "images": [{"id": 1, "width": 100, "height": 100}, {"id": 2, "width": 100, "height": 100}],
+        "annotations": [
+            {"id": 1, "image_id": 1, "category_id": 1, "bbox": [10, 10, 20, 20], "area": 400}
+        ],
+        "categories": [{"id": 1, "name": "pedestrian"}],
+    }
+    fp_first = [
+        {"image_id": 2, "category_id": 1, "bbox": [50, 50, 10, 10], "score": 0.9},
+        {"image_id": 1, "category_id": 1, "bbox": [10, 10, 20, 20], "score": 0.9},
+    ]
+    truth, predictions = files.load(split, fp_first)
+    got = evaluate(truth, predictions, protocol)["per_class"]["pedestrian"]["miss_rate"]
+    scores, tp, ignored, n_pos = _oracle_outcomes(truth, predictions, protocol)[0]
+    assert tp == [False, True]  # the devkit's order: file order on the tie
+    # Curve points (FPPI, recall): (-inf, 0), (0.5, 0), (0.5, 1). References 10^-2 ..
+    # 10^-0.5 (7 of them) are below 0.5: recall 0; 10^-0.25 = 0.56 and 1: recall 1,
+    # clamped to 1e-10 before the log. exp((7 log 1 + 2 log 1e-10) / 9).
+    hand = float(np.exp(2 * np.log(1e-10) / 9))
+    assert got == pytest.approx(hand, rel=1e-12)
+    assert got == pytest.approx(
+        oracle.toolbox_miss_rate(scores, tp, ignored, n_pos, truth.n_images), rel=1e-12
+    )
+    # The same detections with the TP listed first: recall 1 from FPPI 0 on.
+    truth, predictions = files.load(split, fp_first[::-1])
+    got = evaluate(truth, predictions, protocol)["per_class"]["pedestrian"]["miss_rate"]
+    assert got == pytest.approx(1e-10, rel=1e-9)
 
 
 def test_file_order_ties_are_exercised(files):

@@ -297,7 +297,7 @@ def test_splits_load_through_the_api(api, team):
 
 def test_a_bad_split_file_names_file_record_and_field(api, team):
     truth = split_dict(seed=9)
-    truth["annotations"][3]["bbox"] = [1, 2, -5, 4]
+    truth["annotations"][3]["bbox"] = [1, 2, 5]
     response = api("engineer").post(
         API + "splits/",
         {"name": "ring-road", "revision": 1, "truth": file("ring.json", truth)},

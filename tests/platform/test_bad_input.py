@@ -78,9 +78,9 @@ def _first_image(split_truth):
             "not-finite.json: record {n}: field 'score': number out of range",
         ),
         (
-            "negative.json",
-            lambda ok: json.dumps(ok + [{**ok[0], "bbox": [5, 5, -3, 10]}]),
-            "negative.json: record {n}: field 'bbox': width must be >= 0, got -3",
+            "short-box.json",
+            lambda ok: json.dumps(ok + [{**ok[0], "bbox": [5, 5, 3]}]),
+            "short-box.json: record {n}: field 'bbox': expected 'array' of length 4",
         ),
         (
             "mistyped.json",

@@ -36,7 +36,7 @@ __all__ = [
 _INTEGER = re.compile(r"^[+-]?\d+$")
 _INT64 = (-(2**63), 2**63 - 1)
 #: Bumped when the parsed columns change shape or meaning: old cache entries are unused.
-CACHE_SCHEMA = 4
+CACHE_SCHEMA = 5
 UNKNOWN_CLASS_POLICIES = ("reject", "drop")
 
 
@@ -97,7 +97,9 @@ def load_truth(path, *, images=None, fmt=None, classes=None, cache_dir=None, box
     checks.check_policy(path, boxes)
     fmt = _format(path, fmt)
     if fmt == "csv" and images is None:
-        raise InputError(path, "a CSV split needs its images table (image_id,width,height,tags)")
+        raise InputError(
+            path, "a CSV split needs its images table (image_id, optionally width,height,tags)"
+        )
     sources = [path] + ([images] if images is not None else [])
     key = {
         "kind": "truth",
@@ -178,7 +180,7 @@ def _read_truth(path, images, fmt, classes, policy):
     )
 
     boxes = cols["boxes"]
-    checks.check_boxes(path, boxes, box_locate, box_fields["bbox"])
+    checks.check_boxes(path, boxes, box_locate, box_fields["bbox"], policy)
     width = cols["image_width"][image_order][box_image]
     height = cols["image_height"][image_order][box_image]
     if policy == "reject":
@@ -186,9 +188,15 @@ def _read_truth(path, images, fmt, classes, policy):
     area = cols["box_area"]
     given = ~np.isnan(area)
     checks.fail_at(path, given & ~np.isfinite(area), box_locate, "area", "must be a finite number")
-    checks.fail_at(
-        path, given & (area < 0), box_locate, "area", lambda i: f"must be >= 0, got {area[i]:g}"
-    )
+    if policy == "reject":  # pycocotools takes a negative area: outside every size range
+        checks.fail_at(
+            path,
+            given & (area < 0),
+            box_locate,
+            "area",
+            lambda i: f"must be >= 0, got {area[i]:g} (box policy: reject)",
+        )
+    negative_area = int((given & (area < 0)).sum())
     area = np.where(given, area, boxes[:, 2] * boxes[:, 3])
 
     road = attributes.finish(path, cols, image_ids, box_locate, path, region_locate)
@@ -214,6 +222,7 @@ def _read_truth(path, images, fmt, classes, policy):
         box_counts={
             **checks.truth_box_counts(boxes, width, height),
             "area_from_file": int(given.sum()),
+            "negative_area_from_file": negative_area,
         },
         **road,
     )
@@ -396,7 +405,7 @@ def _read_predictions(path, truth, fmt, policy, unknown_classes):
         kept_rows = np.flatnonzero(keep)
         locate_all = locate
         locate = lambda i: locate_all(int(kept_rows[i]))  # noqa: E731
-    checks.check_boxes(path, boxes, locate, fields["bbox"])
+    checks.check_boxes(path, boxes, locate, fields["bbox"], policy)
     checks.check_finite(path, score, locate, "score")
     boxes, box_counts = checks.apply_box_policy(
         path,

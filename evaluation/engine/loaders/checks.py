@@ -63,13 +63,20 @@ def check_finite(path, array, locate, field):
     fail_at(path, bad, locate, field, "must be a finite number")
 
 
-def check_boxes(path, boxes, locate, field="bbox"):
-    """Finite boxes with width and height >= 0.
+def check_boxes(path, boxes, locate, field="bbox", policy="keep"):
+    """Finite boxes; under the ``reject`` policy also width and height >= 0.
 
     Zero-area boxes are valid, as in the references: under continuous coordinates
     they overlap nothing (IoU 0, pycocotools ``bbIou``); under the VOC devkit's
-    inclusive pixels ``x_min == x_max`` is one pixel wide. Negative sizes are refused:
-    no reference gives them a meaning.
+    inclusive pixels ``x_min == x_max`` is one pixel wide. Negative sizes are scored
+    as given under ``keep`` and ``clip``, because the references score them: in
+    pycocotools 2.0.11 ``bbIou`` the intersection width ``min(x1 + w1, x2 + w2) -
+    max(x1, x2)`` is at most the smaller width, so a box with a negative size
+    overlaps nothing (IoU 0), and ``loadRes`` gives a detection the area ``w * h``
+    (negative when one side is: outside every size range, so an unmatched one is
+    ignored, not a false positive). The VOC devkit computes its overlap from the
+    corners with +1, so ``x_max = x_min - 0.5`` is half a pixel wide there.
+    ``reject`` refuses them (counted as ``negative_size`` otherwise).
     """
     check_finite(path, boxes, locate, field)
     with np.errstate(over="ignore"):
@@ -83,12 +90,30 @@ def check_boxes(path, boxes, locate, field="bbox"):
         field,
         lambda i: f"box {boxes[i].tolist()} is too large to compute with",
     )
+    if policy != "reject":
+        return
     fail_at(
-        path, boxes[:, 2] < 0, locate, field, lambda i: f"width must be >= 0, got {boxes[i, 2]:g}"
+        path,
+        boxes[:, 2] < 0,
+        locate,
+        field,
+        lambda i: f"width must be >= 0, got {boxes[i, 2]:g} (box policy: reject)",
     )
     fail_at(
-        path, boxes[:, 3] < 0, locate, field, lambda i: f"height must be >= 0, got {boxes[i, 3]:g}"
+        path,
+        boxes[:, 3] < 0,
+        locate,
+        field,
+        lambda i: f"height must be >= 0, got {boxes[i, 3]:g} (box policy: reject)",
     )
+
+
+def negative_size(boxes):
+    return (boxes[:, 2] < 0) | (boxes[:, 3] < 0)
+
+
+def zero_area(boxes):
+    return (boxes[:, 2] == 0) | (boxes[:, 3] == 0)
 
 
 def check_policy(path, policy):
@@ -98,22 +123,29 @@ def check_policy(path, policy):
         )
 
 
+def _corners(boxes):
+    """``(left, top, right, bottom)``: a box of negative size spans from ``x + w``
+    to ``x``."""
+    x, y, w, h = boxes.T
+    return np.minimum(x, x + w), np.minimum(y, y + h), np.maximum(x, x + w), np.maximum(y, y + h)
+
+
 def outside_frame(boxes, width, height, tolerance):
     """Boxes reaching beyond the frame by more than ``tolerance``; False where the
     image size is unknown (NaN compares false)."""
-    x, y, w, h = boxes.T
+    left, top, right, bottom = _corners(boxes)
     return (
-        (x < -tolerance)
-        | (y < -tolerance)
-        | (x + w > width + tolerance)
-        | (y + h > height + tolerance)
+        (left < -tolerance)
+        | (top < -tolerance)
+        | (right > width + tolerance)
+        | (bottom > height + tolerance)
     )
 
 
 def wholly_outside(boxes, width, height):
     """Boxes sharing no area with the frame (False where the size is unknown)."""
-    x, y, w, h = boxes.T
-    return (x >= width) | (y >= height) | (x + w <= 0) | (y + h <= 0)
+    left, top, right, bottom = _corners(boxes)
+    return (left >= width) | (top >= height) | (right <= 0) | (bottom <= 0)
 
 
 def require_sizes(path, values, locate, policy, field):
@@ -148,7 +180,8 @@ def check_inside(path, boxes, width, height, locate, field="bbox"):
 def truth_box_counts(boxes, width, height):
     return {
         "out_of_frame": int(outside_frame(boxes, width, height, 0.0).sum()),
-        "zero_area": int(((boxes[:, 2] == 0) | (boxes[:, 3] == 0)).sum()),
+        "zero_area": int(zero_area(boxes).sum()),
+        "negative_size": int(negative_size(boxes).sum()),
         "on_images_without_size": int((np.isnan(width) | np.isnan(height)).sum()),
     }
 
@@ -161,7 +194,9 @@ def apply_box_policy(path, boxes, width, height, locate, policy, field="bbox"):
     the frame, a box wholly outside becomes a zero-area box on the border (a false
     positive that overlaps nothing). ``reject``: any box leaving the frame is an error.
     Counts: ``out_of_frame`` (as given, at least partly outside), ``outside`` (wholly),
-    ``clipped``, ``zero_area`` (as scored).
+    ``clipped``, ``zero_area`` and ``negative_size`` (as scored). Clipping moves each
+    corner into the frame and keeps a box's orientation: a box of negative size stays
+    negative (or becomes zero-area), so it still overlaps nothing.
     """
     outside = outside_frame(boxes, width, height, 0.0)
     counts = {
@@ -185,10 +220,11 @@ def apply_box_policy(path, boxes, width, height, locate, policy, field="bbox"):
         y1 = np.clip(boxes[:, 1], 0, height)
         x2 = np.clip(boxes[:, 0] + boxes[:, 2], 0, width)
         y2 = np.clip(boxes[:, 1] + boxes[:, 3], 0, height)
-        clipped = np.column_stack([x1, y1, np.maximum(x2 - x1, 0), np.maximum(y2 - y1, 0)])
+        clipped = np.column_stack([x1, y1, x2 - x1, y2 - y1])
         boxes = np.where(outside[:, None], clipped, boxes)
         counts["clipped"] = counts["out_of_frame"]
-    counts["zero_area"] = int(((boxes[:, 2] == 0) | (boxes[:, 3] == 0)).sum())
+    counts["zero_area"] = int(zero_area(boxes).sum())
+    counts["negative_size"] = int(negative_size(boxes).sum())
     counts["on_images_without_size"] = int((np.isnan(width) | np.isnan(height)).sum())
     return boxes, counts
 

@@ -5,7 +5,9 @@ Boxes:       ``image_id,label,x_min,y_min,x_max,y_max`` and optionally
              ``crowd,difficult,ignore`` (0/1) and ``area``; road attributes
              ``occlusion,truncation,visibility`` (empty: not given) and
              ``dont_care`` (0/1: the row is a don't-care region, its label unread)
-Images:      ``image_id,width,height`` and optionally ``tags`` (``;``-separated)
+Images:      ``image_id`` and optionally ``width,height`` (needed only by the ``clip``
+             and ``reject`` box policies; an empty cell or a missing column is no
+             size, as in COCO-style JSON) and ``tags`` (``;``-separated)
 
 A header row is required; column order is free and other columns are ignored. Rows
 are read in blocks of ``BLOCK_ROWS`` and converted to arrays block by block, so a
@@ -24,7 +26,8 @@ DETECTION_COLUMNS = ("image_id", "label", "x_min", "y_min", "x_max", "y_max", "s
 BOX_COLUMNS = ("image_id", "label", "x_min", "y_min", "x_max", "y_max")
 BOX_OPTIONAL = ("crowd", "difficult", "ignore", "area", "dont_care")
 ATTRIBUTE_COLUMNS = ("occlusion", "truncation", "visibility")
-IMAGE_COLUMNS = ("image_id", "width", "height")
+IMAGE_COLUMNS = ("image_id",)
+IMAGE_OPTIONAL = ("width", "height", "tags")
 
 
 def _floats(path, values, lines, field):
@@ -160,13 +163,30 @@ def read_boxes(path):
     return out
 
 
+def _sizes(path, block, lines, field):
+    """Image widths or heights; NaN where the column or the cell is empty."""
+    if field not in block:
+        return np.full(len(lines), np.nan)
+    values = block[field]
+    sizes = _floats(path, [v if v else "nan" for v in values], lines, field)
+    for i in np.flatnonzero(np.isnan(sizes)):
+        if values[i]:  # "nan" written out is not a size, nor the absence of one
+            raise InputError(
+                path,
+                f"expected a number, got {values[i]!r}",
+                record=f"line {lines[i]}",
+                field=field,
+            )
+    return sizes
+
+
 def read_images(path):
     """Columns of an images table: ids (str), widths, heights, tags, lines."""
     ids, widths, heights, tags, lines = [], [], [], [], []
-    for block, block_lines in read_blocks(path, IMAGE_COLUMNS, ("tags",)):
+    for block, block_lines in read_blocks(path, IMAGE_COLUMNS, IMAGE_OPTIONAL):
         ids.extend(block["image_id"])
-        widths.append(_floats(path, block["width"], block_lines, "width"))
-        heights.append(_floats(path, block["height"], block_lines, "height"))
+        widths.append(_sizes(path, block, block_lines, "width"))
+        heights.append(_sizes(path, block, block_lines, "height"))
         raw = block.get("tags", [""] * len(block_lines))
         tags.extend(tuple(t.strip() for t in value.split(";") if t.strip()) for value in raw)
         lines.extend(block_lines)

@@ -11,7 +11,9 @@ class Command(BaseCommand):
         parser.add_argument("name")
         parser.add_argument("revision", type=int)
         parser.add_argument("truth", help="COCO-style JSON or boxes CSV")
-        parser.add_argument("--images", help="images table CSV (image_id,width,height,tags)")
+        parser.add_argument(
+            "--images", help="images table CSV (image_id; width,height,tags optional)"
+        )
         parser.add_argument("--description", default="")
 
     def handle(self, *args, name, revision, truth, images, description, **options):
