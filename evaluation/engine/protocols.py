@@ -37,13 +37,33 @@ BEST_OVERLAP = "best_overlap"  # VOC devkit: the single best box, taken or not
 #: devkit sorts the whole results file of a class with MATLAB's stable ``sort``).
 TIE_ORDERS = ("image", "file")
 
+
+def matlab_colon(a, d, b):
+    """MATLAB's ``a:d:b`` for a floating-point step, as MathWorks documents its colon
+    algorithm (``colonop.m``, MathWorks support solution 1-4FLI96, quoted in the
+    MATLAB Answers thread "Floating Point Accuracy and COLON", 2012): with
+    ``n = round((b - a) / d)`` intervals, the first half of the vector is ``a + k*d``
+    and the second half ``b - k*d`` counted from the right, so both ends are exact
+    and round-off is symmetric; for even ``n`` the middle element is ``(a + b) / 2``
+    (from memory; for 0:0.1:1 and -2:0.25:0 it equals both other forms).
+    """
+    n = math.floor((b - a) / d + 0.5)  # MATLAB's round: halves away from zero
+    out = [0.0] * (n + 1)
+    for k in range(n // 2 + 1):
+        out[k] = a + k * d
+        out[n - k] = b - k * d
+    if n % 2 == 0:
+        out[n // 2] = (a + b) / 2
+    return tuple(out)
+
+
 #: The recall thresholds of the VOC 2007 devkit's ``for t=0:0.1:1``, as MATLAB's colon
-#: operator computes them: k*0.1 for the first half, 1 - (10-k)*0.1 for the second
-#: (MathWorks' description of the colon algorithm, from memory). The 4th is
-#: 0.30000000000000004, so a recall of exactly 0.3 does not reach it; 0.6 and 0.7 are
-#: exact (``np.arange(0, 1.1, 0.1)``, used by common Python ports, has them one ulp
-#: higher).
-VOC07_RECALL_POINTS = (0.0, 0.1, 0.2, 0.1 * 3, 0.4, 0.5, 1 - 0.4, 1 - 0.1 * 3, 0.8, 0.9, 1.0)
+#: computes them (``matlab_colon``). The 4th is 0.1 * 3 = 0.30000000000000004, so a
+#: recall of exactly 0.3 does not reach it; the 7th and 8th are 1 - 0.4 = 0.6 and
+#: 1 - 0.1 * 3 = 0.7 exactly (``np.arange(0, 1.1, 0.1)`` of common Python ports has them
+#: one ulp higher). MATLAB's own printout of this vector against ``linspace(0,1,11)``
+#: and ``(0:10)*0.1`` is checked in ``tests/engine/test_protocols.py``.
+VOC07_RECALL_POINTS = matlab_colon(0.0, 0.1, 1.0)
 
 
 @dataclass(frozen=True)

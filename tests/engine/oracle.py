@@ -113,9 +113,12 @@ def greedy_ap(
 
 
 def matlab_colon(a, d, b):
-    """MATLAB's ``a:d:b`` for floating-point steps, as MathWorks describes its colon
-    algorithm (from memory): n = round((b - a) / d) intervals; the first half is
-    a + k*d, the second half b - (n - k)*d, the middle (n even) (a + b) / 2."""
+    """MATLAB's ``a:d:b`` for floating-point steps, as MathWorks documents its colon
+    algorithm (``colonop.m``, support solution 1-4FLI96, quoted in MATLAB Answers
+    "Floating Point Accuracy and COLON", 2012): n = round((b - a) / d) intervals; the
+    first half is a + k*d, the second half b - (n - k)*d; the middle (n even)
+    (a + b) / 2 (that last detail from memory; it changes neither 0:0.1:1 nor
+    -2:0.25:0)."""
     n = round((b - a) / d)
     out = [0.0] * (n + 1)
     for k in range(n // 2 + 1):

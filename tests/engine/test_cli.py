@@ -182,3 +182,35 @@ def test_records_out_refuses_an_unknown_extension(inputs, files, capsys):
     with pytest.raises(SystemExit) as exit_:
         main(["score", "--truth", str(gt), "--predictions", str(dt), "--records-out", "r.txt"])
     assert exit_.value.code == 2 and ".csv or .jsonl" in capsys.readouterr().err
+
+
+ID_FIELDS = [
+    ("gt.json", ("images", 0, "id"), "images[0]: field 'id'"),
+    ("gt.json", ("annotations", 0, "id"), "annotations[0]: field 'id'"),
+    ("gt.json", ("annotations", 0, "image_id"), "annotations[0]: field 'image_id'"),
+    ("gt.json", ("annotations", 0, "category_id"), "annotations[0]: field 'category_id'"),
+    ("gt.json", ("categories", 0, "id"), "categories[0]: field 'id'"),
+    ("dt.json", (None, 1, "image_id"), "record 1: field 'image_id'"),
+    ("dt.json", (None, 1, "category_id"), "record 1: field 'category_id'"),
+]
+
+
+@pytest.mark.parametrize("value", [2**63, 2**64 + 5, -(2**63) - 1, 10**30])
+@pytest.mark.parametrize("name, where, locator", ID_FIELDS)
+def test_ids_beyond_64_bits_in_either_file_exit_2_naming_them(
+    files, capsys, value, name, where, locator
+):
+    """JSON allows any integer (RFC 8259; pycocotools keeps Python ints): an id outside
+    signed 64 bits, in any id field of either file, is exit 2 with file, record and
+    field, never a traceback."""
+    rng = np.random.default_rng(3)
+    split = make_split(rng, n_images=3, n_classes=2, boxes_per_image=3)
+    detections = make_detections(rng, split, false_per_image=1)
+    section, index, field = where
+    (split[section] if section else detections)[index][field] = value
+    gt, dt = files.write("gt.json", split), files.write("dt.json", detections)
+    code = main(["score", "--truth", str(gt), "--predictions", str(dt), "--format", "json"])
+    err = capsys.readouterr().err
+    assert code == 2, err
+    assert f"{name}: {locator}: {value} is outside the supported range of ids" in err
+    assert "Traceback" not in err

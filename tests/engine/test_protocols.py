@@ -4,12 +4,42 @@ import numpy as np
 import pytest
 
 from evaluation.engine import PRESETS, InputError, protocol_from_dict
+from evaluation.engine.protocols import VOC07_RECALL_POINTS, matlab_colon
+
+from . import oracle
 
 
 def test_coco_thresholds_are_numpys_linspace_exactly():
     """pycocotools selects AP50/AP75 by equality with linspace values (from its source)."""
     assert PRESETS["coco"].iou_thresholds == tuple(np.linspace(0.5, 0.95, 10).tolist())
     assert PRESETS["coco"].recall_points == tuple(np.linspace(0, 1, 101).tolist())
+
+
+def test_voc07_points_are_matlabs_colon_as_matlab_prints_it():
+    """The devkit's ``for t=0:0.1:1`` (VOC2007 ``VOCevaldet.m``) as MATLAB makes it.
+
+    Outside source: the blog post "Fun with linspace and the colon operator" (13 March
+    2009) prints MATLAB's own comparisons of ``x = 0:0.1:1`` with
+    ``y = linspace(0,1,11)``, with ``a = (0:10)*0.1`` and with ``b`` built by adding
+    0.1 ten times: ``x == y`` is 1 1 1 0 1 1 1 1 1 1 1 (``x - y`` = 0.5551e-16 at the
+    4th), ``a == x`` is 1 1 1 1 1 1 0 0 1 1 1, ``b == x`` is 1 1 1 1 1 1 1 1 0 0 0.
+    MATLAB's ``linspace`` here is k/10 correctly rounded, which Python's k / 10 is.
+    The algorithm itself (first half from the left, second half from the right) is
+    MathWorks' documented one (``protocols.matlab_colon``)."""
+    x = VOC07_RECALL_POINTS
+    y = [k / 10 for k in range(11)]
+    a = [k * 0.1 for k in range(11)]
+    b = [0.0]
+    for _ in range(10):
+        b.append(b[-1] + 0.1)
+    assert [int(p == q) for p, q in zip(x, y)] == [1, 1, 1, 0, 1, 1, 1, 1, 1, 1, 1]
+    assert x[3] - y[3] == pytest.approx(0.5551e-16, abs=1e-20)
+    assert [int(p == q) for p, q in zip(a, x)] == [1, 1, 1, 1, 1, 1, 0, 0, 1, 1, 1]
+    assert [int(p == q) for p, q in zip(b, x)] == [1, 1, 1, 1, 1, 1, 1, 1, 0, 0, 0]
+    assert x[3] == 0.30000000000000004 and x[3] > 0.3  # why recall 0.3 misses the 4th
+    assert x == tuple(oracle.matlab_colon(0, 0.1, 1)) == matlab_colon(0, 0.1, 1)
+    # The toolbox's FPPI references 10.^(-2:.25:0): exact steps, so any form agrees.
+    assert matlab_colon(-2, 0.25, 0) == tuple(np.linspace(-2, 0, 9).tolist())
 
 
 def test_recall40_points_leave_out_zero():
