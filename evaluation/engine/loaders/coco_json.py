@@ -13,6 +13,7 @@ import msgspec
 import numpy as np
 
 from ..errors import InputError
+from . import json_syntax
 from .checks import text_start
 
 CHUNK_BYTES = 4 << 20
@@ -141,14 +142,35 @@ def int_column(path, values, locate, field):
 def read_truth(path):
     """Decode a COCO-style ground-truth file into plain columns.
 
-    The file is memory-mapped, never copied whole into memory.
+    The syntax is checked first in bounded memory (``json_syntax.check``: a few MB
+    at a time), so a malformed or truncated file of any size is rejected without
+    being mapped or decoded; then the file is memory-mapped (never copied whole into
+    memory) and decoded into typed records.
     """
     with open(path, "rb") as f:
-        if f.seek(0, 2) == 0:
+        size = f.seek(0, 2)
+        if size == 0:
             raise InputError(path, "the file is empty")
+        f.seek(0)
+        skip = text_start(path, f.read(4))
+        f.seek(skip)
+        head = f.read(4096).lstrip()
+        if not head and size <= skip + 4096:
+            raise InputError(path, "the file is empty")
+        if head.startswith(b"["):
+            raise _array_given(path)
+        json_syntax.check(path, f, skip)
         f.seek(0)
         with mmap.mmap(f.fileno(), 0, access=mmap.ACCESS_READ) as data:
             return _truth_columns(path, data)
+
+
+def _array_given(path):
+    return InputError(
+        path,
+        "expected a ground-truth object with images, annotations and "
+        "categories, got a JSON array (is this a predictions file?)",
+    )
 
 
 def _truth_columns(path, data):
@@ -157,17 +179,10 @@ def _truth_columns(path, data):
         raise InputError(path, "the file is empty")
     try:
         with memoryview(data) as view:
-            # Syntax first, building nothing (msgspec.Raw only scans): a malformed or
-            # truncated file is rejected without decoding its records into objects.
-            msgspec.json.decode(view[skip:], type=msgspec.Raw)
             dataset = msgspec.json.decode(view[skip:], type=_Dataset)
     except msgspec.ValidationError as e:
         if str(e).startswith("Expected `object`, got `array`"):
-            raise InputError(
-                path,
-                "expected a ground-truth object with images, annotations and "
-                "categories, got a JSON array (is this a predictions file?)",
-            ) from None
+            raise _array_given(path) from None
         raise validation_error(path, e, top_level_list=False) from None
     except msgspec.DecodeError as e:
         raise decode_error(path, e, data, skip) from None
