@@ -396,6 +396,30 @@ def test_csv_images_table_may_omit_sizes_like_coco_json(files):
         load_predictions(detections, truth, boxes="clip")
 
 
+def test_csv_corners_the_other_way_round_are_scored_and_refused_under_reject(files):
+    """x_max < x_min in a CSV is a box of negative width: scored as given under keep
+    (IoU 0 under coco, as pycocotools; the devkit's corner arithmetic under voc),
+    counted, and refused under reject naming the line and the field."""
+    boxes = BOXES_CSV + "f2,car,300,100,100,200,0\n"
+    truth = _csv_truth(files, boxes)
+    assert truth.boxes[2].tolist() == [300, 100, -200, 100]
+    assert truth.box_counts["negative_size"] == 1
+    with pytest.raises(
+        InputError,
+        match=r"boxes\.csv: line 4: field 'x_min\.\.y_max': width must be >= 0, got -200 "
+        r"\(box policy: reject\)",
+    ):
+        load_truth(
+            files.write("boxes.csv", boxes),
+            images=files.write("images.csv", IMAGES_CSV),
+            boxes="reject",
+        )
+    path = files.write(
+        "pred.csv", "image_id,label,x_min,y_min,x_max,y_max,score\nf2,car,300,200,100,100,0.9\n"
+    )
+    assert load_predictions(path, truth).box_counts["negative_size"] == 1
+
+
 def test_csv_split_reads_tags_and_string_ids(files):
     truth = _csv_truth(files)
     assert truth.classes == ("car", "pedestrian")
