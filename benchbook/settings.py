@@ -151,6 +151,8 @@ STORAGES = {
 FILE_UPLOAD_MAX_MEMORY_SIZE = 2_621_440
 FILE_UPLOAD_TEMP_DIR = None
 BENCHBOOK_MAX_UPLOAD_BYTES = int(os.environ.get("BENCHBOOK_MAX_UPLOAD_BYTES", 512 * 1024 * 1024))
+# One image file of a split (images are optional; see evaluation/images.py).
+BENCHBOOK_MAX_IMAGE_BYTES = int(os.environ.get("BENCHBOOK_MAX_IMAGE_BYTES", 25 * 1024 * 1024))
 DATA_UPLOAD_MAX_MEMORY_SIZE = 10 * 1024 * 1024
 # Prediction files up to this size are loaded against the split inside the upload
 # request and refused with the engine's message (file, record, field); larger ones are

@@ -199,3 +199,26 @@ class StoredProtocol(models.Model):
 
     def __str__(self):
         return f"{self.name} (custom, {self.sha256[:12]})"
+
+
+class SplitImages(models.Model):
+    """Where a split's image files are: uploaded under the media storage (``files``,
+    checked and stored under ``root``) or loaded by the browser from a URL template
+    (``url``, e.g. ``https://images.example/{file_name}``). Optional: without it,
+    boxes are drawn on an empty frame of the image's size. Images are never served
+    from a public media URL (``frontend`` checks the reader's team first)."""
+
+    class Source(models.TextChoices):
+        FILES = "files"
+        URL = "url"
+
+    split = models.OneToOneField(BenchmarkSplit, on_delete=models.PROTECT, related_name="images")
+    source = models.CharField(max_length=8, choices=Source.choices)
+    root = models.CharField(max_length=255, blank=True, help_text="Storage prefix (files).")
+    url_template = models.CharField(max_length=500, blank=True)
+    file_count = models.PositiveIntegerField(default=0)
+    created_by = models.CharField(max_length=150, blank=True)
+    created_at = models.DateTimeField(auto_now_add=True)
+
+    def __str__(self):
+        return f"images of {self.split} ({self.source})"

@@ -30,3 +30,14 @@ def percent(value):
 @register.filter
 def pretty_json(value):
     return json.dumps(value, indent=2, sort_keys=True, ensure_ascii=False, default=str)
+
+
+@register.filter
+def images_query(outcome):
+    """The per-image list's query for an outcome: its split, class and tag, against
+    the baseline it was judged with (``releases.selectors.cause.rule_link``)."""
+    from urllib.parse import urlencode
+
+    from releases.selectors.cause import rule_link
+
+    return urlencode(rule_link(outcome))

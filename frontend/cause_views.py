@@ -1,0 +1,183 @@
+"""Cause pages: the per-image comparison of two versions, one image's drill-down, its
+image file, and the downloads of an evaluation's outcome records. Read-only; every
+object goes through the visibility selectors, so another team's is a 404."""
+
+from urllib.parse import urlencode
+
+from django.contrib.auth.decorators import login_required
+from django.http import FileResponse, Http404
+from django.shortcuts import render
+from django.urls import reverse
+from django.utils.html import json_script
+
+from evaluation.models import BenchmarkSplit
+from releases import selectors
+from releases.models import ModelVersion
+from releases.selectors import cause
+
+MISSING = (ModelVersion.DoesNotExist, BenchmarkSplit.DoesNotExist, cause.NotScored)
+
+
+def _int(value):
+    return int(value) if value and str(value).isdigit() else None
+
+
+def _pair_or_404(request, version_id, split_id):
+    try:
+        return cause.pair_for(
+            request.user, version_id, split_id, against=_int(request.GET.get("against"))
+        )
+    except MISSING as e:
+        raise Http404(str(e) or "not found") from None
+
+
+@login_required
+def image_detail(request, version_id, split_id, image):
+    pair = _pair_or_404(request, version_id, split_id)
+    try:
+        drill = cause.image_drilldown(pair, image)
+    except IndexError:
+        raise Http404("no such image in this split") from None
+    sides = [{"key": "candidate", "label": pair.candidate.version.label}]
+    if pair.reference is not None:
+        sides.append({"key": "reference", "label": pair.reference.version.label})
+    image_src = drill["image"]["url"]
+    if drill["image"]["source"] == "files" and drill["image"]["file_name"]:
+        image_src = reverse("image-file", args=[version_id, split_id, image])
+    deployed = min(drill["thresholds"]) if drill["thresholds"] else 0.5
+    listing = cause.listing_filters(request.GET)
+    neighbours = cause.neighbours(pair, listing, image)
+    query = urlencode({"split": split_id, **listing.query(), **_against(pair)})
+
+    def link(index):
+        if index is None:
+            return None
+        return reverse("image-detail", args=[version_id, split_id, index]) + "?" + query
+
+    return render(
+        request,
+        "frontend/image.html",
+        {
+            "version": pair.candidate.version,
+            "detector": pair.candidate.version.detector,
+            "reference": pair.reference.version if pair.reference else None,
+            "has_reference": pair.reference is not None,
+            "split": pair.split,
+            "drill": drill,
+            "drill_script": json_script(drill, "drilldown-data"),
+            "sides": sides,
+            "image_src": image_src,
+            "threshold": f"{deployed:.2f}",
+            "deployed": deployed,
+            "protocol": pair.protocol,
+            "query": query,
+            "filters": listing.words(),
+            "previous": link(neighbours["previous"]),
+            "next": link(neighbours["next"]),
+            "position": neighbours["position"],
+            "total": neighbours["total"],
+            "evaluations": [
+                s.evaluation for s in (pair.candidate, pair.reference) if s is not None
+            ],
+        },
+    )
+
+
+def _against(pair):
+    return {"against": pair.reference.version.pk} if pair.reference is not None else {}
+
+
+@login_required
+def image_file(request, version_id, split_id, image):
+    """One stored image file of the split, to a reader of the version (never a public
+    media URL)."""
+    try:
+        opened = cause.image_file_for(request.user, version_id, split_id, image)
+    except MISSING + (IndexError,):
+        opened = None
+    if opened is None:
+        raise Http404("no image file")
+    handle, mime = opened
+    response = FileResponse(handle, content_type=mime)
+    response["X-Content-Type-Options"] = "nosniff"
+    response["Cache-Control"] = "private, max-age=3600"
+    response["Content-Security-Policy"] = "default-src 'none'; sandbox"
+    return response
+
+
+@login_required
+def image_list(request, version_id):
+    """The per-image comparison of the version with a reference on one split
+    (``?split=``, default its first), filtered by class, tag and size."""
+    version = _version_or_404(request.user, version_id)
+    split_ids = cause.scored_split_ids(version)
+    split_id = _int(request.GET.get("split")) or (split_ids[0] if split_ids else None)
+    if split_id is None:
+        raise Http404("this version has no scored split")
+    pair = _pair_or_404(request, version_id, split_id)
+    listing = cause.listing_filters(request.GET)
+    error, table = None, {"rows": [], "total": 0, "reasons": ()}
+    try:
+        table = cause.image_table(pair, listing)
+    except ValueError as e:
+        error = str(e)
+    query = urlencode({"split": split_id, **listing.query(), **_against(pair)})
+    detail = reverse("image-detail", args=[version_id, split_id, 0])[: -len("0/")]
+    return render(
+        request,
+        "frontend/images.html",
+        {
+            "version": version,
+            "detector": version.detector,
+            "pair": pair,
+            "reference": pair.reference.version if pair.reference else None,
+            "split": pair.split,
+            "splits": cause.scored_splits(version),
+            "listing": listing,
+            "classes": pair.classes,
+            "tags": pair.truth.tags(),
+            "sizes": [a for a in pair.candidate.records.area_names if a != "all"],
+            "versions": cause.other_versions(version),
+            "table": table,
+            "error": error,
+            "query": query,
+            "detail_prefix": detail,
+            "thresholds": cause.threshold_words(pair),
+        },
+    )
+
+
+def _version_or_404(user, version_id):
+    try:
+        return selectors.version_for(user, version_id)
+    except ModelVersion.DoesNotExist:
+        raise Http404("no such version") from None
+
+
+EXPORT_TYPES = {"csv": "text/csv; charset=utf-8", "jsonl": "application/x-ndjson"}
+
+
+@login_required
+def records_download(request, evaluation_id, fmt):
+    """An evaluation's outcome records (every detection and box with its reason),
+    streamed as CSV or JSON Lines: written a block at a time, never held whole."""
+    from django.http import StreamingHttpResponse
+
+    from evaluation import outcomes
+    from evaluation.models import Evaluation
+
+    if fmt not in EXPORT_TYPES:
+        raise Http404("downloads are .csv or .jsonl")
+    try:
+        evaluation = selectors.evaluation_for(request.user, evaluation_id)
+    except Evaluation.DoesNotExist:
+        raise Http404("no such evaluation") from None
+    chunks = outcomes.export_chunks(evaluation, fmt)
+    if chunks is None:
+        raise Http404("this evaluation has no stored records")
+    response = StreamingHttpResponse(chunks, content_type=EXPORT_TYPES[fmt])
+    response["Content-Disposition"] = (
+        f'attachment; filename="evaluation-{evaluation.pk}-records.{fmt}"'
+    )
+    response["X-Content-Type-Options"] = "nosniff"
+    return response

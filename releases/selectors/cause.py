@@ -1,0 +1,416 @@
+"""From a flag to its cause: the pair of versions compared on one split, one image's
+boxes for the drill-down, and the links from a failing rule.
+
+Everything is read from the stored match records (``evaluation.outcomes``); nothing is
+matched again on a request. Visibility goes through ``access.version_for``: another
+team's version, split or image is ``DoesNotExist`` (a 404), never a 403.
+"""
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from .access import version_for
+from .scores import _scorecards
+
+
+class NotScored(Exception):
+    """The version has no finished primary scorecard on the split."""
+
+
+@dataclass
+class Side:
+    """One version on one split: its primary scorecard and what it stored."""
+
+    version: object
+    card: object
+    records: object
+
+    @property
+    def evaluation(self):
+        return self.card.evaluation
+
+    @property
+    def boxes(self):
+        """(detections, 4) xywh in records order, read from the predictions file only
+        when a page draws them."""
+        from evaluation import outcomes
+
+        return outcomes.detection_boxes(self.card.evaluation, self.records)
+
+
+@dataclass
+class Pair:
+    """A candidate and (optionally) the reference it is compared with, on one split."""
+
+    split: object
+    candidate: Side
+    reference: Side | None
+    truth: object
+    thresholds: np.ndarray  # deployed score threshold per class (the suite's)
+    protocol: str
+
+    @property
+    def classes(self):
+        return list(self.truth.classes)
+
+
+def deployed_thresholds(detector, classes):
+    """The deployed score threshold of each class, from the detector's benchmark suite
+    (``class_thresholds``, else ``score_threshold``); 0.5 when it has no suite."""
+    from ..suites import current_suite
+
+    suite = current_suite(detector)
+    default = suite.score_threshold if suite else 0.5
+    per_class = suite.class_thresholds if suite else {}
+    return np.array([float(per_class.get(c, default)) for c in classes])
+
+
+def _side(version, split):
+    from evaluation import outcomes
+
+    detector = version.detector
+    sets = list(version.prediction_sets.current().filter(split=split))
+    cards = _scorecards(sets, [detector.primary_protocol])
+    card = next(iter(cards.values()), None)
+    if card is None:
+        raise NotScored(
+            f"{version.label} has no finished {detector.primary_protocol} scorecard on {split}"
+        )
+    return Side(version, card, outcomes.records_of(card))
+
+
+def default_reference(version):
+    """The version a candidate is compared with by default: the baseline of its newest
+    judgement, else the detector's current baseline."""
+    from .. import verdicts
+    from ..models import Judgement
+
+    judgement = Judgement.objects.filter(version=version).order_by("-id").first()
+    if judgement is not None and judgement.baseline_id:
+        return judgement.baseline
+    return verdicts.baseline_for(version)
+
+
+def pair_for(user, version_id, split_id, against=None):
+    """The candidate ``version_id`` and the reference version ``against`` (default:
+    ``default_reference``) on the split ``split_id``. Raises ``DoesNotExist`` for what
+    the user may not see or a split the candidate was not scored on, ``NotScored`` for
+    a reference without a scorecard there."""
+    from evaluation import outcomes
+    from evaluation.models import BenchmarkSplit
+
+    from ..models import ModelVersion
+
+    version = version_for(user, version_id)
+    split_ids = version.prediction_sets.current().values_list("split_id", flat=True)
+    if int(split_id) not in set(split_ids):
+        raise BenchmarkSplit.DoesNotExist(f"no split {split_id} scored for this version")
+    split = BenchmarkSplit.objects.get(pk=split_id)
+    if against is None:
+        reference_version = default_reference(version)
+    else:
+        reference_version = version_for(user, against)
+        if reference_version.detector_id != version.detector_id:
+            raise ModelVersion.DoesNotExist("compare versions of one detector")
+    candidate = _side(version, split)
+    reference = None
+    if reference_version is not None and reference_version.pk != version.pk:
+        try:
+            reference = _side(reference_version, split)
+        except NotScored:
+            reference = None
+    truth = outcomes.truth_of(candidate.evaluation)
+    return Pair(
+        split=split,
+        candidate=candidate,
+        reference=reference,
+        truth=truth,
+        thresholds=deployed_thresholds(version.detector, truth.classes),
+        protocol=candidate.card.protocol,
+    )
+
+
+def _slot0(records):
+    """Per detection at the primary IoU slot, all sizes: the matched box (or -1) and
+    its IoU (NaN when none)."""
+    chosen = records.match_config == 0
+    iou = np.full(records.n_detections, np.nan)
+    iou[records.match_det[chosen]] = records.match_iou[chosen]
+    return records.matched_box(0, 0), iou
+
+
+def _image_side(side, image, protocol):
+    """One version's detections on one image, and which boxes it matched."""
+    records = side.records
+    rows = np.flatnonzero(records.det_image == image)
+    is_tp, ignored = records.outcomes(0, 0)
+    matched, iou = _slot0(records)
+    cap = protocol.max_detections_limit
+    over_cap = records.det_rank >= cap if cap else np.zeros(records.n_detections, bool)
+    detections, found = [], {}
+    boxes = side.boxes
+    for d in rows[np.argsort(-records.det_score[rows], kind="stable")]:
+        if over_cap[d]:
+            outcome = "over_cap"
+        elif is_tp[d]:
+            outcome = "tp"
+            found[int(matched[d])] = float(records.det_score[d])
+        elif ignored[d]:
+            outcome = "ignored"
+        else:
+            outcome = "fp"
+        detections.append(
+            {
+                "box": [round(float(v), 2) for v in boxes[d]],
+                "class": int(records.det_class[d]),
+                "score": round(float(records.det_score[d]), 4),
+                "outcome": outcome,
+                "iou": None if np.isnan(iou[d]) else round(float(iou[d]), 3),
+                "truth": int(matched[d]),
+            }
+        )
+    return {
+        "label": side.version.label,
+        "version": side.version.pk,
+        "detections": detections,
+    }, found
+
+
+def image_drilldown(pair, image):
+    """Everything the drill-down draws for image index ``image``: its ground truth
+    (each box with the score of the detection that matched it in each version, so the
+    page can tell *missed at the threshold* apart), and both versions' detections with
+    outcome, score and IoU, from the stored records."""
+    from evaluation import engine
+    from evaluation import images as split_images
+
+    truth = pair.truth
+    if not 0 <= image < truth.n_images:
+        raise IndexError(image)
+    protocol = engine.get_protocol(pair.protocol)
+    sides, found = {}, {}
+    for key, side in (("candidate", pair.candidate), ("reference", pair.reference)):
+        if side is not None:
+            sides[key], found[key] = _image_side(side, image, protocol)
+    boxes = np.flatnonzero(truth.box_image == image)
+    ignored = pair.candidate.records.gt_ignored[0]
+    image_id = str(truth.image_ids[image])
+    file_name = split_images.file_names(pair.split).get(image_id, "")
+    stored = split_images.images_of(pair.split)
+    width, height = float(truth.image_width[image]), float(truth.image_height[image])
+    if np.isnan(width) or np.isnan(height):  # sizes are optional: frame the boxes
+        extent = truth.boxes[boxes, :2] + truth.boxes[boxes, 2:] if len(boxes) else np.zeros((0, 2))
+        width = float(max(extent[:, 0].max(initial=0), 1))
+        height = float(max(extent[:, 1].max(initial=0), 1))
+    return {
+        "image": {
+            "index": image,
+            "id": image_id,
+            "file_name": file_name,
+            "width": width,
+            "height": height,
+            "tags": list(truth.image_tags[image]),
+            "source": stored.source if stored else None,
+            "url": split_images.image_url(stored, file_name),
+        },
+        "classes": pair.classes,
+        "thresholds": [float(t) for t in pair.thresholds],
+        "iou_threshold": float(pair.candidate.records.thresholds[0].min()),
+        "truth": [
+            {
+                "index": int(b),
+                "box": [round(float(v), 2) for v in truth.boxes[b]],
+                "class": int(truth.box_class[b]),
+                "ignored": bool(ignored[b]),
+                "found": {key: found[key].get(int(b)) for key in sides},
+            }
+            for b in boxes
+        ],
+        **sides,
+    }
+
+
+@dataclass
+class Listing:
+    """The filters of the per-image list: a class (name or ``""`` for every class),
+    an image tag, a size bucket (``""`` = all sizes) and the sort."""
+
+    class_name: str = ""
+    tag: str = ""
+    size: str = ""
+
+    def query(self):
+        return {
+            k: v
+            for k, v in (("class", self.class_name), ("tag", self.tag), ("size", self.size))
+            if v
+        }
+
+    def words(self):
+        return ", ".join(f"{k} {v}" for k, v in self.query().items())
+
+
+def listing_filters(params):
+    """``Listing`` from request parameters (unknown values are checked against the
+    split later, by ``image_rows``)."""
+    return Listing(
+        class_name=str(params.get("class", "") or "").strip()[:64],
+        tag=str(params.get("tag", "") or "").strip()[:64],
+        size=str(params.get("size", "") or "").strip()[:16],
+    )
+
+
+def image_file_for(user, version_id, split_id, image):
+    """``(file, MIME type)`` of image index ``image`` of a split the user's visible
+    version was scored on, or None when the split has no stored file for it."""
+    from evaluation import images as split_images
+    from evaluation.models import BenchmarkSplit
+
+    version = version_for(user, version_id)
+    if not version.prediction_sets.current().filter(split_id=split_id).exists():
+        raise BenchmarkSplit.DoesNotExist("no such split for this version")
+    split = BenchmarkSplit.objects.get(pk=split_id)
+    stored = split_images.images_of(split)
+    if stored is None:
+        return None
+    truth_ids = _image_ids(split)
+    if not 0 <= image < len(truth_ids):
+        raise IndexError(image)
+    file_name = split_images.file_names(split).get(truth_ids[image], "")
+    return split_images.open_image(stored, file_name)
+
+
+def _image_ids(split):
+    """The split's image ids as text, in the engine's order (ascending id)."""
+    from evaluation import outcomes
+
+    return [str(i) for i in outcomes.truth_of_split(split).image_ids]
+
+
+SORTS = ("loss", "gain", "image")
+
+
+def _area_index(records, size):
+    if not size:
+        return 0
+    if size not in records.area_names:
+        raise ValueError(
+            f"size: {size!r} is not a size bucket ({', '.join(records.area_names[1:])})"
+        )
+    return records.area_names.index(size)
+
+
+def image_rows(pair, listing):
+    """The per-image comparison: for every image of the split that carries the tag,
+    each version's TP, FP by reason and missed counts at the deployed threshold(s),
+    and the image's contribution to the change in AP of the class (all classes: the
+    mean) — ``ΔAP(all images) − ΔAP(without the image)``, with the tag's images as
+    weights exactly as the bootstrap weighs them (``engine.cause.leave_one_out``).
+    Sorted by the largest loss first. Raises ``ValueError`` naming a bad filter."""
+    from evaluation import engine
+    from evaluation.engine import cause as engine_cause
+
+    truth = pair.truth
+    if listing.class_name and listing.class_name not in truth.classes:
+        raise ValueError(f"class: {listing.class_name!r} is not a class of {pair.split}")
+    if listing.tag and listing.tag not in truth.tags():
+        raise ValueError(f"tag: {listing.tag!r} is not an image tag of {pair.split}")
+    area = _area_index(pair.candidate.records, listing.size)
+    k = truth.classes.index(listing.class_name) if listing.class_name else None
+    weights = truth.tag_mask(listing.tag) if listing.tag else np.ones(truth.n_images, np.int64)
+    protocol = engine.get_protocol(pair.protocol)
+    sides = {"candidate": pair.candidate}
+    if pair.reference is not None:
+        sides["reference"] = pair.reference
+    counts, loo = {}, {}
+    for key, side in sides.items():
+        counts[key] = engine_cause.image_counts(
+            side.records, pair.thresholds, protocol, area=area, classes=k
+        )
+        loo[key] = engine_cause.leave_one_out(side.records, protocol, weights, area=area, cls=k)
+    contribution = loo["candidate"] - loo["reference"] if "reference" in loo else loo["candidate"]
+    chosen = np.flatnonzero(weights > 0)
+    order = chosen[np.lexsort((chosen, contribution[chosen]))]
+    return {
+        "order": order,
+        "contribution": contribution,
+        "counts": counts,
+        "reasons": engine_cause.FP_REASONS,
+    }
+
+
+def neighbours(pair, listing, image):
+    """Previous and next image of ``image`` in the filtered, sorted list, and its
+    1-based position (None when it is not in the list)."""
+    try:
+        order = image_rows(pair, listing)["order"].tolist()
+    except ValueError:
+        order = []
+    if image not in order:
+        return {"previous": None, "next": None, "position": None, "total": len(order)}
+    i = order.index(image)
+    return {
+        "previous": order[i - 1] if i > 0 else None,
+        "next": order[i + 1] if i + 1 < len(order) else None,
+        "position": i + 1,
+        "total": len(order),
+    }
+
+
+def image_table(pair, listing, limit=200):
+    """``image_rows`` for a page: the first ``limit`` rows with ids, tags and counts."""
+    rows = image_rows(pair, listing)
+    truth = pair.truth
+    out = []
+    for i in rows["order"][:limit].tolist():
+        entry = {
+            "index": i,
+            "id": str(truth.image_ids[i]),
+            "tags": list(truth.image_tags[i]),
+            "contribution": float(rows["contribution"][i]),
+        }
+        for key, counts in rows["counts"].items():
+            entry[key] = {name: int(values[i]) for name, values in counts.items()}
+        out.append(entry)
+    return {"rows": out, "total": len(rows["order"]), "reasons": rows["reasons"]}
+
+
+def scored_splits(version):
+    """The splits of the version's current prediction sets, in name order."""
+    from evaluation.models import BenchmarkSplit
+
+    ids = version.prediction_sets.current().values_list("split_id", flat=True)
+    return list(BenchmarkSplit.objects.filter(pk__in=list(ids)).order_by("name", "revision"))
+
+
+def scored_split_ids(version):
+    return [s.pk for s in scored_splits(version)]
+
+
+def other_versions(version):
+    """The detector's other versions, newest first (the reference choices)."""
+    return list(version.detector.versions.exclude(pk=version.pk).order_by("-created_at"))
+
+
+def threshold_words(pair):
+    """The deployed threshold(s) in words: one number, or the classes that differ."""
+    values = {float(t) for t in pair.thresholds}
+    if len(values) == 1:
+        return f"score ≥ {values.pop():.2f}"
+    return ", ".join(f"{c} ≥ {t:.2f}" for c, t in zip(pair.classes, pair.thresholds))
+
+
+def rule_link(outcome, reference_id=None):
+    """Query of the per-image list filtered to an outcome's split, class and tag (the
+    one click from a failing rule): ``{"split", "class", "tag", "against"}``."""
+    query = {"split": outcome.split_id}
+    if outcome.class_name and outcome.class_name not in ("mean", "*"):
+        query["class"] = outcome.class_name
+    tag = (outcome.rule or {}).get("tag")
+    if tag:
+        query["tag"] = tag
+    against = reference_id or outcome.baseline_id
+    if against:
+        query["against"] = against
+    return query
