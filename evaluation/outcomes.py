@@ -1,11 +1,13 @@
-"""What a finished evaluation stored, read back for the cause pages: its match records,
-the split's ground truth (under the evaluation's box policy) and its detections' boxes
-in the records' order. Nothing here matches again; every number comes from the records.
+"""What a finished evaluation stored, read back for the cause pages and downloads: its
+match records with their per-detection reasons and boxes, and the split's ground truth
+under the evaluation's box policy. Nothing here matches again.
+
+Records scored before engine 2.2 carry no reasons: they get them once per process from
+the split and the stored predictions (``engine.reasons.attach``, which reads the
+protocol's stored matches; no re-matching).
 """
 
 import functools
-
-import numpy as np
 
 from .models import Scorecard
 from .services import _load_predictions, load_records, load_truth_of
@@ -14,7 +16,18 @@ from .storage import verified_path
 
 @functools.lru_cache(maxsize=8)
 def _records(scorecard_id, records_sha256):
-    return load_records(Scorecard.objects.select_related("evaluation").get(pk=scorecard_id))
+    card = Scorecard.objects.select_related("evaluation__split", "evaluation__predictions").get(
+        pk=scorecard_id
+    )
+    records = load_records(card)
+    if not records.has_reasons:
+        from .engine import reasons
+
+        evaluation = card.evaluation
+        truth = truth_of(evaluation)
+        boxes = _prediction_boxes(evaluation, truth)
+        reasons.attach(records, truth, boxes[records.det_order], card.protocol)
+    return records
 
 
 @functools.lru_cache(maxsize=4)
@@ -24,12 +37,7 @@ def _truth(split_id, split_sha256, box_policy):
     return load_truth_of(BenchmarkSplit.objects.get(pk=split_id), box_policy)
 
 
-@functools.lru_cache(maxsize=8)
-def _boxes(evaluation_id, predictions_sha256, split_sha256, box_policy):
-    from .models import Evaluation
-
-    evaluation = Evaluation.objects.select_related("split", "predictions").get(pk=evaluation_id)
-    truth = truth_of(evaluation)
+def _prediction_boxes(evaluation, truth):
     prediction_file = evaluation.predictions
     with verified_path(
         prediction_file.file,
@@ -37,15 +45,14 @@ def _boxes(evaluation_id, predictions_sha256, split_sha256, box_policy):
         f"predictions:{prediction_file.pk}",
         "predictions file",
     ) as path:
-        predictions = _load_predictions(
+        return _load_predictions(
             path, truth, prediction_file.original_name, evaluation.box_policy
-        )
-    return predictions.boxes
+        ).boxes
 
 
 def records_of(scorecard):
-    """The scorecard's match records (hash-checked on first read, then kept in the
-    process: a records file never changes once stored)."""
+    """The scorecard's match records with reasons (hash-checked on first read, then
+    kept in the process: a records file never changes once stored)."""
     return _records(scorecard.pk, scorecard.records_sha256)
 
 
@@ -55,19 +62,27 @@ def truth_of(evaluation):
     return _truth(split.pk, split.sha256, evaluation.box_policy)
 
 
-def detection_boxes(evaluation, records):
-    """``(n, 4)`` xywh boxes of the records' detections, in the records' order
-    (``det_order`` is each detection's position in the predictions file)."""
-    boxes = _boxes(
-        evaluation.pk,
-        evaluation.predictions.sha256,
-        evaluation.split.sha256,
-        evaluation.box_policy,
-    )
-    return boxes[np.asarray(records.det_order, np.int64)]
-
-
 def truth_of_split(split):
     """The split as frozen (box policy ``keep``): image ids and sizes do not depend on
     the policy."""
     return _truth(split.pk, split.sha256, "keep")
+
+
+def scorecard_of(evaluation):
+    return Scorecard.objects.filter(evaluation=evaluation).defer("result").first()
+
+
+def export_chunks(evaluation, fmt):
+    """The evaluation's outcome records as CSV or JSON Lines text, an iterator of
+    blocks (``engine.export``: one row per detection, then per box, with reason,
+    related box or detection and IoU); None when it has no stored records. The
+    records are read before the first block is sent, so a broken records file is an
+    error page, not a truncated download."""
+    from .engine import export
+
+    card = scorecard_of(evaluation)
+    if card is None:
+        return None
+    records = records_of(card)
+    truth = truth_of(evaluation)
+    return export.FORMATS[fmt](records, truth)

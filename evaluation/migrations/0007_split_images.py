@@ -5,23 +5,42 @@ from django.db import migrations, models
 
 
 class Migration(migrations.Migration):
-
     dependencies = [
         ("evaluation", "0006_stored_protocols"),
     ]
 
     operations = [
         migrations.CreateModel(
-            name='SplitImages',
+            name="SplitImages",
             fields=[
-                ('id', models.BigAutoField(auto_created=True, primary_key=True, serialize=False, verbose_name='ID')),
-                ('source', models.CharField(choices=[('files', 'Files'), ('url', 'Url')], max_length=8)),
-                ('root', models.CharField(blank=True, help_text='Storage prefix (files).', max_length=255)),
-                ('url_template', models.CharField(blank=True, max_length=500)),
-                ('file_count', models.PositiveIntegerField(default=0)),
-                ('created_by', models.CharField(blank=True, max_length=150)),
-                ('created_at', models.DateTimeField(auto_now_add=True)),
-                ('split', models.OneToOneField(on_delete=django.db.models.deletion.PROTECT, related_name='images', to='evaluation.benchmarksplit')),
+                (
+                    "id",
+                    models.BigAutoField(
+                        auto_created=True, primary_key=True, serialize=False, verbose_name="ID"
+                    ),
+                ),
+                (
+                    "source",
+                    models.CharField(choices=[("files", "Files"), ("url", "Url")], max_length=8),
+                ),
+                (
+                    "root",
+                    models.CharField(
+                        blank=True, help_text="Storage prefix (files).", max_length=255
+                    ),
+                ),
+                ("url_template", models.CharField(blank=True, max_length=500)),
+                ("file_count", models.PositiveIntegerField(default=0)),
+                ("created_by", models.CharField(blank=True, max_length=150)),
+                ("created_at", models.DateTimeField(auto_now_add=True)),
+                (
+                    "split",
+                    models.OneToOneField(
+                        on_delete=django.db.models.deletion.PROTECT,
+                        related_name="images",
+                        to="evaluation.benchmarksplit",
+                    ),
+                ),
             ],
         ),
     ]

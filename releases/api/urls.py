@@ -26,6 +26,22 @@ v1 = [
     path("evaluations/", views.EvaluationList.as_view(), name="evaluations"),
     path("evaluations/<int:pk>/", views.EvaluationDetail.as_view(), name="evaluation"),
     path("evaluations/<int:pk>/result/", views.EvaluationResult.as_view(), name="result"),
+    path(
+        "evaluations/<int:pk>/records.csv",
+        views.EvaluationRecordsCsv.as_view(),
+        name="records-csv",
+    ),
+    path(
+        "evaluations/<int:pk>/records.jsonl",
+        views.EvaluationRecordsJsonl.as_view(),
+        name="records-jsonl",
+    ),
+    path("versions/<int:pk>/images/", views.VersionImages.as_view(), name="images"),
+    path(
+        "versions/<int:pk>/images/<int:split_id>/<int:image>/",
+        views.VersionImage.as_view(),
+        name="image",
+    ),
     path("outcomes/", views.OutcomeList.as_view(), name="outcomes"),
     path("flags/", views.FlagList.as_view(), name="flags"),
     path("audit-events/", views.AuditEventList.as_view(), name="audit-events"),

@@ -30,14 +30,6 @@ class Side:
     def evaluation(self):
         return self.card.evaluation
 
-    @property
-    def boxes(self):
-        """(detections, 4) xywh in records order, read from the predictions file only
-        when a page draws them."""
-        from evaluation import outcomes
-
-        return outcomes.detection_boxes(self.card.evaluation, self.records)
-
 
 @dataclass
 class Pair:
@@ -131,50 +123,39 @@ def pair_for(user, version_id, split_id, against=None):
     )
 
 
-def _slot0(records):
-    """Per detection at the primary IoU slot, all sizes: the matched box (or -1) and
-    its IoU (NaN when none)."""
-    chosen = records.match_config == 0
-    iou = np.full(records.n_detections, np.nan)
-    iou[records.match_det[chosen]] = records.match_iou[chosen]
-    return records.matched_box(0, 0), iou
+def _image_side(side, image):
+    """One version's detections on one image (score descending) with their stored
+    reason, related box and IoU, and the score of the detection that matched each box."""
+    from evaluation.engine.reasons import BOX_REASONS, DETECTION_REASONS, MATCHED
 
-
-def _image_side(side, image, protocol):
-    """One version's detections on one image, and which boxes it matched."""
     records = side.records
     rows = np.flatnonzero(records.det_image == image)
-    is_tp, ignored = records.outcomes(0, 0)
-    matched, iou = _slot0(records)
-    cap = protocol.max_detections_limit
-    over_cap = records.det_rank >= cap if cap else np.zeros(records.n_detections, bool)
-    detections, found = [], {}
-    boxes = side.boxes
-    for d in rows[np.argsort(-records.det_score[rows], kind="stable")]:
-        if over_cap[d]:
-            outcome = "over_cap"
-        elif is_tp[d]:
-            outcome = "tp"
-            found[int(matched[d])] = float(records.det_score[d])
-        elif ignored[d]:
-            outcome = "ignored"
-        else:
-            outcome = "fp"
-        detections.append(
-            {
-                "box": [round(float(v), 2) for v in boxes[d]],
-                "class": int(records.det_class[d]),
-                "score": round(float(records.det_score[d]), 4),
-                "outcome": outcome,
-                "iou": None if np.isnan(iou[d]) else round(float(iou[d]), 3),
-                "truth": int(matched[d]),
-            }
-        )
+    rows = rows[np.argsort(-records.det_score[rows], kind="stable")]
+    detections = [
+        {
+            "box": [round(float(v), 2) for v in records.det_box[d]],
+            "class": int(records.det_class[d]),
+            "score": round(float(records.det_score[d]), 4),
+            "outcome": DETECTION_REASONS[records.det_reason[d]],
+            "iou": None
+            if np.isnan(records.det_ref_iou[d])
+            else round(float(records.det_ref_iou[d]), 3),
+            "truth": int(records.det_ref_box[d]),
+        }
+        for d in rows
+    ]
+    boxes = {}
+    for b in np.flatnonzero(records.gt_image == image):
+        reason, det = int(records.gt_reason[b]), int(records.gt_ref_det[b])
+        boxes[int(b)] = {
+            "reason": BOX_REASONS[reason],
+            "score": round(float(records.det_score[det]), 4) if reason == MATCHED else None,
+        }
     return {
         "label": side.version.label,
         "version": side.version.pk,
         "detections": detections,
-    }, found
+    }, boxes
 
 
 def image_drilldown(pair, image):
@@ -182,17 +163,15 @@ def image_drilldown(pair, image):
     (each box with the score of the detection that matched it in each version, so the
     page can tell *missed at the threshold* apart), and both versions' detections with
     outcome, score and IoU, from the stored records."""
-    from evaluation import engine
     from evaluation import images as split_images
 
     truth = pair.truth
     if not 0 <= image < truth.n_images:
         raise IndexError(image)
-    protocol = engine.get_protocol(pair.protocol)
     sides, found = {}, {}
     for key, side in (("candidate", pair.candidate), ("reference", pair.reference)):
         if side is not None:
-            sides[key], found[key] = _image_side(side, image, protocol)
+            sides[key], found[key] = _image_side(side, image)
     boxes = np.flatnonzero(truth.box_image == image)
     ignored = pair.candidate.records.gt_ignored[0]
     image_id = str(truth.image_ids[image])
@@ -223,7 +202,8 @@ def image_drilldown(pair, image):
                 "box": [round(float(v), 2) for v in truth.boxes[b]],
                 "class": int(truth.box_class[b]),
                 "ignored": bool(ignored[b]),
-                "found": {key: found[key].get(int(b)) for key in sides},
+                "found": {key: found[key][int(b)]["score"] for key in sides},
+                "reason": {key: found[key][int(b)]["reason"] for key in sides},
             }
             for b in boxes
         ],
@@ -359,7 +339,8 @@ def neighbours(pair, listing, image):
 
 
 def image_table(pair, listing, limit=200):
-    """``image_rows`` for a page: the first ``limit`` rows with ids, tags and counts."""
+    """``image_rows`` for a page: the first ``limit`` rows (None: all) with ids, tags
+    and counts."""
     rows = image_rows(pair, listing)
     truth = pair.truth
     out = []
@@ -414,3 +395,20 @@ def rule_link(outcome, reference_id=None):
     if against:
         query["against"] = against
     return query
+
+
+def image_table_json(pair, listing, table):
+    """The API's body of the per-image comparison."""
+    return {
+        "split": {"id": pair.split.pk, "name": pair.split.name, "revision": pair.split.revision},
+        "protocol": pair.protocol,
+        "candidate": {"id": pair.candidate.version.pk, "label": pair.candidate.version.label},
+        "reference": None
+        if pair.reference is None
+        else {"id": pair.reference.version.pk, "label": pair.reference.version.label},
+        "filters": listing.query(),
+        "thresholds": dict(zip(pair.classes, (float(t) for t in pair.thresholds))),
+        "fp_reasons": list(table["reasons"]),
+        "total": table["total"],
+        "images": table["rows"],
+    }

@@ -42,9 +42,9 @@ def test_drilldown_draws_what_the_records_say(client, users, story):
     data = json.loads(html[html.index(">", start) + 1 : html.index("</script>", start)])
     is_tp, _ = records.outcomes(0, 0)
     mine = np.flatnonzero(records.det_image == image)
-    assert sorted(d["score"] for d in data["candidate"]["detections"] if d["outcome"] == "tp") == sorted(
-        round(float(records.det_score[d]), 4) for d in mine if is_tp[d]
-    )
+    assert sorted(
+        d["score"] for d in data["candidate"]["detections"] if d["outcome"] == "tp"
+    ) == sorted(round(float(records.det_score[d]), 4) for d in mine if is_tp[d])
     truth = pair.truth
     assert len(data["truth"]) == int((truth.box_image == image).sum())
     assert data["image"]["width"] == 1280 and data["image"]["url"] is None

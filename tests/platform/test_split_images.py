@@ -89,9 +89,7 @@ def test_zip_archive_is_stored_under_the_split(named_split, settings, tmp_path):
         ({"cam/0000.png": PNG + b"\x00" * 200}, "larger than the image limit of 100 bytes"),
     ],
 )
-def test_a_bad_member_refuses_the_whole_archive(
-    named_split, settings, tmp_path, members, message
-):
+def test_a_bad_member_refuses_the_whole_archive(named_split, settings, tmp_path, members, message):
     settings.BENCHBOOK_MAX_IMAGE_BYTES = 100
     with pytest.raises(UploadError, match=message):
         images.attach_images(named_split, archive=_zip(members))
@@ -160,7 +158,15 @@ def test_image_files_are_served_to_readers_of_the_version_only(
     missing = sorted(int(i) for i in names).index(
         int(next(i for i, n in names.items() if n == "cam/0003.png"))
     )
-    assert client.get(reverse("image-file", args=[version.pk, named_split.pk, missing])).status_code == 404
-    assert client.get(reverse("image-file", args=[version.pk, named_split.pk, 99])).status_code == 404
-    assert client.get(reverse("image-file", args=[version.pk, named_split.pk + 1, 0])).status_code == 404
+    assert (
+        client.get(reverse("image-file", args=[version.pk, named_split.pk, missing])).status_code
+        == 404
+    )
+    assert (
+        client.get(reverse("image-file", args=[version.pk, named_split.pk, 99])).status_code == 404
+    )
+    assert (
+        client.get(reverse("image-file", args=[version.pk, named_split.pk + 1, 0])).status_code
+        == 404
+    )
     assert rival_detector  # the rival team exists and sees nothing

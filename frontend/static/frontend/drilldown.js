@@ -70,8 +70,11 @@
       if (s === "missed") counts.missed += 1;
       if (lost && side === "candidate") counts.lost += 1;
       const style = s === "missed" ? STYLE.missed : s === "ignored" ? STYLE.ignored : STYLE.truth;
+      const why = box.reason[side];
       const words = data.classes[box.class] + " (ground truth): " +
-        (s === "found" ? "found, score " + box.found[side].toFixed(3) : s) +
+        (s === "found" ? "found, score " + box.found[side].toFixed(3)
+          : s === "missed" && why === "matched" ? "missed at this threshold (found at score " + box.found[side].toFixed(3) + ")"
+          : why.replace(/_/g, " ")) +
         (lost ? " — " + data[other].label + " found it" : "");
       const r = rect(g, box.box, style, s === "missed" ? 3 : 1.5, words);
       r.setAttribute("class", "gt gt-" + s + (lost ? " gt-lost" : ""));

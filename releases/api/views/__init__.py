@@ -6,6 +6,7 @@ module per resource; ``urls.py`` names the views through this package.
 """
 
 from .base import Endpoint
+from .cause import EvaluationRecordsCsv, EvaluationRecordsJsonl, VersionImage, VersionImages
 from .detectors import (
     DetectorCriteria,
     DetectorDetail,
@@ -48,6 +49,8 @@ __all__ = [
     "Endpoint",
     "EvaluationDetail",
     "EvaluationList",
+    "EvaluationRecordsCsv",
+    "EvaluationRecordsJsonl",
     "EvaluationResult",
     "FlagList",
     "Me",
@@ -59,6 +62,8 @@ __all__ = [
     "SplitList",
     "VersionDetail",
     "VersionEvidence",
+    "VersionImage",
+    "VersionImages",
     "VersionJudgements",
     "VersionList",
     "VersionResults",

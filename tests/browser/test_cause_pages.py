@@ -1,0 +1,83 @@
+"""From a failing rule to its cause in Chromium: the version page's failing
+night-pedestrian rule, one click to the images behind it (already filtered), one more
+to an image's boxes drawn over its frame; keyboard to the next image."""
+
+import pytest
+
+from ..platform import cause_scenario
+from .conftest import BROWSER_MARKS, shot
+
+pytestmark = BROWSER_MARKS
+
+
+@pytest.fixture
+def story(users, team, run_tasks, settings):
+    settings.BENCHBOOK_BOOTSTRAP_RESAMPLES = 200
+    return cause_scenario.build(users, team, run_tasks)
+
+
+def test_from_the_failing_rule_to_the_boxes(page, live_server, story):
+    version = story["1.5"]
+    page.goto(f"{live_server.url}/versions/{version.pk}/")
+    assert page.locator("#verdict-state").inner_text() == "regression"
+    link = page.locator("#outcomes a.cause-link").first
+    assert "pedestrian" in link.locator("xpath=ancestor::tr").inner_text()
+    link.click()
+
+    # The list, filtered to the rule's split, class and tag, the largest loss first.
+    page.wait_for_selector("#image-rows")
+    assert page.locator("select[name=class]").input_value() == "pedestrian"
+    assert page.locator("select[name=tag]").input_value() == "night"
+    assert page.locator("select[name=against] option:checked").inner_text() == "1.4"
+    rows = page.locator("#image-rows tbody tr")
+    assert rows.count() > 5
+    deltas = [
+        float(t.replace("−", "-"))
+        for t in page.locator("#image-rows tbody td:nth-child(3)").all_inner_texts()
+    ]
+    assert deltas == sorted(deltas) and deltas[0] < 0  # the largest loss first
+    shot(page, "cause-image-list-1280")
+    page.set_viewport_size({"width": 390, "height": 844})
+    shot(page, "cause-image-list-390")
+    page.set_viewport_size({"width": 1280, "height": 900})
+
+    first = rows.first.locator("a")
+    image_id = first.inner_text()
+    first.click()
+    page.wait_for_selector("#frame-candidate g.boxes rect")
+    assert image_id in page.locator("h1").inner_text()
+    drawn = page.evaluate(
+        """() => ({
+          gt: document.querySelectorAll('#frame-candidate rect.gt').length,
+          det: document.querySelectorAll('#frame-candidate rect.det').length,
+          refDet: document.querySelectorAll('#frame-reference rect.det').length,
+          lost: document.querySelectorAll('#frame-candidate rect.gt-lost').length,
+          counts: window.benchbookDrilldown.counts,
+        })"""
+    )
+    assert drawn["gt"] > 0 and drawn["det"] + drawn["refDet"] > 0
+    # The worst image of a pedestrian loss: 1.5 missed a box 1.4 found, listed in words.
+    assert drawn["lost"] >= 1 and drawn["counts"]["candidate"]["lost"] == drawn["lost"]
+    assert page.locator("#lost-rows tr").count() >= 1
+    # Class toggles and the threshold slider redraw.
+    page.locator("[data-class-toggle]").nth(0).uncheck()
+    page.locator("#threshold").fill("0.99")
+    after = page.evaluate("() => document.querySelectorAll('#frame-candidate rect.det').length")
+    assert after <= drawn["det"]
+    page.locator("#threshold").fill("0.5")
+    shot(page, "cause-drilldown-1280")
+    page.set_viewport_size({"width": 390, "height": 844})
+    shot(page, "cause-drilldown-390")
+    # Hovering a box names its outcome and IoU.
+    page.set_viewport_size({"width": 1280, "height": 900})
+    page.locator("#frame-candidate rect.det").first.hover()
+    assert (
+        "IoU" in page.locator("#hover-label").inner_text()
+        or ":" in page.locator("#hover-label").inner_text()
+    )
+    # Keyboard: the next image of the same filtered list.
+    before = page.url
+    page.locator("body").press("ArrowRight")
+    page.wait_for_url(lambda url: url != before)
+    assert "class=pedestrian" in page.url and "tag=night" in page.url
+    page.wait_for_selector("#frame-candidate g.boxes rect")
