@@ -1,7 +1,7 @@
 from django.contrib.auth import views as auth_views
 from django.urls import path
 
-from . import cause_views, views
+from . import views
 
 urlpatterns = [
     path("login/", auth_views.LoginView.as_view(), name="login"),
@@ -25,24 +25,25 @@ urlpatterns = [
     path("versions/<int:version_id>/sign-off/", views.sign_off, name="sign-off"),
     path("versions/<int:version_id>/evidence/", views.evidence, name="evidence"),
     path("versions/<int:version_id>/evidence.json", views.evidence, name="evidence-json"),
-    path("versions/<int:version_id>/images/", cause_views.image_list, name="image-list"),
+    path("versions/<int:version_id>/images/", views.image_list, name="image-list"),
     path(
         "versions/<int:version_id>/images/<int:split_id>/<int:image>/",
-        cause_views.image_detail,
+        views.image_detail,
         name="image-detail",
     ),
     path(
         "versions/<int:version_id>/images/<int:split_id>/<int:image>/file",
-        cause_views.image_file,
+        views.image_file,
         name="image-file",
     ),
     path(
         "evaluations/<int:evaluation_id>/records.<str:fmt>",
-        cause_views.records_download,
+        views.records_download,
         name="records-download",
     ),
     path("audit/", views.audit_trail, name="audit"),
     path("account/tokens/", views.api_tokens, name="tokens"),
     path("splits/<int:split_id>/", views.split, name="split"),
+    path("splits/<int:split_id>/images/", views.split_images_upload, name="split-images"),
     path("evaluations/<int:evaluation_id>.json", views.evaluation_status, name="evaluation-status"),
 ]

@@ -3,9 +3,11 @@
 from .audit import audit_trail
 from .compare import compare, compare_intervals
 from .detector import detector, new_detector
+from .images import image_detail, image_file, image_list
 from .overview import overview
+from .records import records_download
 from .specs import release_criteria, suite, webhook
-from .splits import load_split, split, split_list
+from .splits import load_split, split, split_images_upload, split_list
 from .tokens import api_tokens
 from .uploads import evaluation_status, upload_predictions
 from .version import evidence, sign_off, version
@@ -18,12 +20,17 @@ __all__ = [
     "detector",
     "evaluation_status",
     "evidence",
+    "image_detail",
+    "image_file",
+    "image_list",
     "load_split",
     "new_detector",
     "overview",
+    "records_download",
     "release_criteria",
     "sign_off",
     "split",
+    "split_images_upload",
     "split_list",
     "suite",
     "upload_predictions",

@@ -7,10 +7,12 @@ from django.http import Http404
 from django.shortcuts import redirect, render
 
 from evaluation import engine
+from evaluation import images as split_images
 from evaluation import services as evaluation_services
 from evaluation.models import BenchmarkSplit
 from evaluation.services import UploadError
 from releases import selectors
+from releases.split_images import attach_split_images
 
 from ..forms import SplitForm
 
@@ -36,6 +38,8 @@ def split(request, split_id):
         "frontend/split.html",
         {
             "split": found,
+            "images": split_images.images_of(found),
+            "can_load": selectors.can_load_splits(request.user),
             "usage": selectors.split_usage(request.user, found),
             "class_counts": [(c, found.class_counts.get(c)) for c in found.classes],
             "tags": sorted(found.tags.items()),
@@ -69,3 +73,27 @@ def load_split(request):
     return render(
         request, "frontend/load_split.html", {"form": form, "error": error}, status=status
     )
+
+
+@login_required
+def split_images_upload(request, split_id):
+    """POST a zip archive, a folder of image files or a URL template for a split."""
+    if request.method != "POST":
+        return redirect("split", split_id)
+    try:
+        found = BenchmarkSplit.objects.get(pk=split_id)
+    except BenchmarkSplit.DoesNotExist:
+        raise Http404("no such split") from None
+    try:
+        attach_split_images(
+            request.user,
+            found,
+            archive=request.FILES.get("archive"),
+            files=request.FILES.getlist("files"),
+            url_template=request.POST.get("url_template", "").strip(),
+        )
+    except UploadError as e:
+        messages.error(request, str(e))
+    else:
+        messages.success(request, f"{found} has its images")
+    return redirect("split", split_id)

@@ -371,6 +371,17 @@ class SplitInput(serializers.Serializer):
     description = serializers.CharField(required=False, default="", allow_blank=True)
 
 
+class SplitImagesInput(serializers.Serializer):
+    archive = serializers.FileField(required=False, help_text="A zip of images by file_name")
+    url_template = serializers.CharField(
+        required=False,
+        default="",
+        allow_blank=True,
+        max_length=500,
+        help_text="e.g. https://images.example/{file_name}",
+    )
+
+
 class SignOffInput(serializers.Serializer):
     decision = serializers.ChoiceField(SignOffModel.Decision.values)
     comment = serializers.CharField()

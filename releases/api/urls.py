@@ -21,6 +21,7 @@ v1 = [
     path("comparisons/", views.Comparison.as_view(), name="comparison"),
     path("splits/", views.SplitList.as_view(), name="splits"),
     path("splits/<int:pk>/", views.SplitDetail.as_view(), name="split"),
+    path("splits/<int:pk>/images/", views.SplitImages.as_view(), name="split-images"),
     path("prediction-sets/", views.PredictionSetList.as_view(), name="prediction-sets"),
     path("prediction-sets/<int:pk>/", views.PredictionSetDetail.as_view(), name="prediction-set"),
     path("evaluations/", views.EvaluationList.as_view(), name="evaluations"),

@@ -170,3 +170,30 @@ def test_image_files_are_served_to_readers_of_the_version_only(
         == 404
     )
     assert rival_detector  # the rival team exists and sees nothing
+
+
+def test_page_and_api_attach_images_with_the_role_check(client, users, team, named_split):
+    """Engineers and leads (any team) attach images; others are refused; a bad file is
+    named in the error and nothing is stored (page: message; API: 400 body)."""
+    from rest_framework.test import APIClient
+
+    from releases import tokens
+
+    url = reverse("split-images", args=[named_split.pk])
+    client.force_login(users["outsider"])
+    assert client.post(url, {"url_template": "https://i.example/{file_name}"}).status_code == 403
+    client.force_login(users["engineer"])
+    bad = _zip({"cam/0000.png": b"not an image at all"})
+    response = client.post(url, {"archive": bad}, follow=True)
+    assert "cam/0000.png: not a JPEG, PNG or WebP" in response.content.decode()
+    assert not SplitImages.objects.exists()
+    _, token = tokens.create_token(users["engineer"], "ci")
+    api = APIClient()
+    api.credentials(HTTP_AUTHORIZATION=f"Bearer {token}")
+    endpoint = f"/api/v1/splits/{named_split.pk}/images/"
+    body = api.post(endpoint, {"url_template": "ftp://x/{file_name}"}, format="multipart").json()
+    assert body["status"] == 400 and "must be an http" in body["message"]
+    response = api.post(endpoint, {"archive": _zip({"cam/0001.png": PNG})}, format="multipart")
+    assert response.status_code == 201 and response.json()["file_count"] == 1
+    page = client.get(reverse("split", args=[named_split.pk])).content.decode()
+    assert "1 file uploaded" in page

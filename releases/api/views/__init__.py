@@ -6,7 +6,13 @@ module per resource; ``urls.py`` names the views through this package.
 """
 
 from .base import Endpoint
-from .cause import EvaluationRecordsCsv, EvaluationRecordsJsonl, VersionImage, VersionImages
+from .cause import (
+    EvaluationRecordsCsv,
+    EvaluationRecordsJsonl,
+    SplitImages,
+    VersionImage,
+    VersionImages,
+)
 from .detectors import (
     DetectorCriteria,
     DetectorDetail,
@@ -59,6 +65,7 @@ __all__ = [
     "PredictionSetList",
     "SignOffList",
     "SplitDetail",
+    "SplitImages",
     "SplitList",
     "VersionDetail",
     "VersionEvidence",

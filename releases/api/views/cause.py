@@ -9,11 +9,13 @@ from rest_framework import exceptions, generics
 from rest_framework.response import Response
 
 from evaluation import outcomes
-from evaluation.models import Evaluation
+from evaluation.models import BenchmarkSplit, Evaluation
 
 from ...selectors import cause
+from ...split_images import attach_split_images
+from .. import serializers as s
 from ..errors import error_response
-from .base import Endpoint, NotScored, _int, _param, _text
+from .base import Endpoint, NotScored, _int, _param, _refuse_oversized, _text, _valid
 from .results import EvaluationMixin
 
 
@@ -136,9 +138,43 @@ class VersionImage(Endpoint, generics.GenericAPIView):
             raise exceptions.NotFound(f"no image {image} in {pair.split}") from None
 
 
+class SplitImages(Endpoint, generics.GenericAPIView):
+    queryset = BenchmarkSplit.objects.all()
+
+    @extend_schema(
+        request={"multipart/form-data": s.SplitImagesInput},
+        responses={201: OpenApiTypes.OBJECT, 413: error_response(413)},
+        summary="Give a split its images: a zip archive or a URL template",
+        description="Each file of the archive must be a JPEG, PNG or WebP (by its first "
+        "bytes) of at most BENCHBOOK_MAX_IMAGE_BYTES, named by a COCO file_name of the "
+        "split (an extra top folder is allowed); the first bad one refuses the upload "
+        "(400 naming it), nothing is stored. Engineers and leads of any team.",
+    )
+    def post(self, request, pk):
+        _refuse_oversized(request)
+        split = self.get_object()
+        data = _valid(s.SplitImagesInput, request)
+        row = attach_split_images(
+            request.user,
+            split,
+            archive=data.get("archive"),
+            url_template=data["url_template"].strip(),
+        )
+        return Response(
+            {
+                "split": split.pk,
+                "source": row.source,
+                "file_count": row.file_count,
+                "url_template": row.url_template or None,
+            },
+            status=201,
+        )
+
+
 __all__ = [
     "EvaluationRecordsCsv",
     "EvaluationRecordsJsonl",
+    "SplitImages",
     "VersionImage",
     "VersionImages",
 ]

@@ -1,6 +1,6 @@
-"""Cause pages: the per-image comparison of two versions, one image's drill-down, its
-image file, and the downloads of an evaluation's outcome records. Read-only; every
-object goes through the visibility selectors, so another team's is a 404."""
+"""Cause pages: the per-image comparison of two versions, one image's drill-down and its
+image file. Read-only; every object goes through the visibility selectors, so another
+team's is a 404."""
 
 from urllib.parse import urlencode
 
@@ -11,9 +11,10 @@ from django.urls import reverse
 from django.utils.html import json_script
 
 from evaluation.models import BenchmarkSplit
-from releases import selectors
 from releases.models import ModelVersion
 from releases.selectors import cause
+
+from .lookup import version_or_404
 
 MISSING = (ModelVersion.DoesNotExist, BenchmarkSplit.DoesNotExist, cause.NotScored)
 
@@ -109,7 +110,7 @@ def image_file(request, version_id, split_id, image):
 def image_list(request, version_id):
     """The per-image comparison of the version with a reference on one split
     (``?split=``, default its first), filtered by class, tag and size."""
-    version = _version_or_404(request.user, version_id)
+    version = version_or_404(request.user, version_id)
     split_ids = cause.scored_split_ids(version)
     split_id = _int(request.GET.get("split")) or (split_ids[0] if split_ids else None)
     if split_id is None:
@@ -145,39 +146,3 @@ def image_list(request, version_id):
             "thresholds": cause.threshold_words(pair),
         },
     )
-
-
-def _version_or_404(user, version_id):
-    try:
-        return selectors.version_for(user, version_id)
-    except ModelVersion.DoesNotExist:
-        raise Http404("no such version") from None
-
-
-EXPORT_TYPES = {"csv": "text/csv; charset=utf-8", "jsonl": "application/x-ndjson"}
-
-
-@login_required
-def records_download(request, evaluation_id, fmt):
-    """An evaluation's outcome records (every detection and box with its reason),
-    streamed as CSV or JSON Lines: written a block at a time, never held whole."""
-    from django.http import StreamingHttpResponse
-
-    from evaluation import outcomes
-    from evaluation.models import Evaluation
-
-    if fmt not in EXPORT_TYPES:
-        raise Http404("downloads are .csv or .jsonl")
-    try:
-        evaluation = selectors.evaluation_for(request.user, evaluation_id)
-    except Evaluation.DoesNotExist:
-        raise Http404("no such evaluation") from None
-    chunks = outcomes.export_chunks(evaluation, fmt)
-    if chunks is None:
-        raise Http404("this evaluation has no stored records")
-    response = StreamingHttpResponse(chunks, content_type=EXPORT_TYPES[fmt])
-    response["Content-Disposition"] = (
-        f'attachment; filename="evaluation-{evaluation.pk}-records.{fmt}"'
-    )
-    response["X-Content-Type-Options"] = "nosniff"
-    return response

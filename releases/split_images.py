@@ -1,0 +1,31 @@
+"""Giving a benchmark split its image files: the one entry point for the page, the API
+and the command, with the role check (``evaluation.images`` checks the files)."""
+
+from django.core.exceptions import PermissionDenied
+
+from evaluation import images
+
+from . import selectors
+
+
+def attach_split_images(user, split, *, archive=None, files=(), url_template=""):
+    """Attach images to ``split``: a zip ``archive``, uploaded ``files`` or a
+    ``url_template``. Splits are shared benchmarks: engineers and leads of any team may
+    (as they may load splits). Bad files raise ``UploadError`` naming the file;
+    nothing is half-stored."""
+    if not selectors.can_load_splits(user):
+        raise PermissionDenied("only engineers and leads give splits their images")
+    given = sum(bool(x) for x in (archive, list(files), url_template))
+    if given != 1:
+        from evaluation.services import UploadError
+
+        raise UploadError(
+            "give one of: a zip archive, image files, or a URL template", path="images"
+        )
+    return images.attach_images(
+        split,
+        archive=archive,
+        files=files,
+        url_template=url_template,
+        created_by=user.get_username(),
+    )
