@@ -7,6 +7,7 @@ the split and the stored predictions (``engine.reasons.attach``, which reads the
 protocol's stored matches; no re-matching).
 """
 
+import collections
 import functools
 
 from .models import Scorecard
@@ -14,11 +15,27 @@ from .services import _load_predictions, load_records, load_truth_of
 from .storage import verified_path
 
 
-@functools.lru_cache(maxsize=8)
-def _records(scorecard_id, records_sha256):
-    card = Scorecard.objects.select_related("evaluation__split", "evaluation__predictions").get(
-        pk=scorecard_id
-    )
+class _Kept:
+    """A small least-recently-used store of loaded files, keyed by content hash."""
+
+    def __init__(self, size):
+        self.size, self.items = size, collections.OrderedDict()
+
+    def get(self, key, load):
+        if key in self.items:
+            self.items.move_to_end(key)
+            return self.items[key]
+        value = load()
+        self.items[key] = value
+        while len(self.items) > self.size:
+            self.items.popitem(last=False)
+        return value
+
+
+_RECORDS = _Kept(8)
+
+
+def _load_with_reasons(card):
     records = load_records(card)
     if not records.has_reasons:
         from .engine import reasons
@@ -53,7 +70,8 @@ def _prediction_boxes(evaluation, truth):
 def records_of(scorecard):
     """The scorecard's match records with reasons (hash-checked on first read, then
     kept in the process: a records file never changes once stored)."""
-    return _records(scorecard.pk, scorecard.records_sha256)
+    key = (scorecard.pk, scorecard.records_sha256)
+    return _RECORDS.get(key, lambda: _load_with_reasons(scorecard))
 
 
 def truth_of(evaluation):

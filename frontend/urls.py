@@ -26,6 +26,7 @@ urlpatterns = [
     path("versions/<int:version_id>/evidence/", views.evidence, name="evidence"),
     path("versions/<int:version_id>/evidence.json", views.evidence, name="evidence-json"),
     path("versions/<int:version_id>/images/", views.image_list, name="image-list"),
+    path("versions/<int:version_id>/confusion/", views.confusion, name="confusion"),
     path(
         "versions/<int:version_id>/images/<int:split_id>/<int:image>/",
         views.image_detail,

@@ -35,9 +35,9 @@ def pretty_json(value):
 @register.filter
 def images_query(outcome):
     """The per-image list's query for an outcome: its split, class and tag, against
-    the baseline it was judged with (``releases.selectors.cause.rule_link``)."""
+    the baseline it was judged with (``releases.selectors.image_list.rule_link``)."""
     from urllib.parse import urlencode
 
-    from releases.selectors.cause import rule_link
+    from releases.selectors.image_list import rule_link
 
     return urlencode(rule_link(outcome))

@@ -3,7 +3,7 @@
 from .audit import audit_trail
 from .compare import compare, compare_intervals
 from .detector import detector, new_detector
-from .images import image_detail, image_file, image_list
+from .images import confusion, image_detail, image_file, image_list
 from .overview import overview
 from .records import records_download
 from .specs import release_criteria, suite, webhook
@@ -17,6 +17,7 @@ __all__ = [
     "audit_trail",
     "compare",
     "compare_intervals",
+    "confusion",
     "detector",
     "evaluation_status",
     "evidence",

@@ -9,6 +9,7 @@ from django.utils.html import json_script
 
 from evaluation.services import UploadError
 from releases import selectors
+from releases.selectors import errors
 
 from .lookup import detector_or_404
 
@@ -46,6 +47,7 @@ def compare(request, detector_id):
             "reference": reference,
             "candidate": candidate,
             "splits": splits,
+            "errors": {e["split"].pk: e for e in errors.version_breakdowns(candidate, reference)},
             "caution": selectors.CAUTION,
         },
     )

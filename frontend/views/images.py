@@ -13,6 +13,7 @@ from django.utils.html import json_script
 from evaluation.models import BenchmarkSplit
 from releases.models import ModelVersion
 from releases.selectors import cause
+from releases.selectors import image_list as listing_of
 
 from .lookup import version_or_404
 
@@ -46,8 +47,8 @@ def image_detail(request, version_id, split_id, image):
     if drill["image"]["source"] == "files" and drill["image"]["file_name"]:
         image_src = reverse("image-file", args=[version_id, split_id, image])
     deployed = min(drill["thresholds"]) if drill["thresholds"] else 0.5
-    listing = cause.listing_filters(request.GET)
-    neighbours = cause.neighbours(pair, listing, image)
+    listing = listing_of.listing_filters(request.GET)
+    neighbours = listing_of.neighbours(pair, listing, image)
     query = urlencode({"split": split_id, **listing.query(), **_against(pair)})
 
     def link(index):
@@ -116,10 +117,10 @@ def image_list(request, version_id):
     if split_id is None:
         raise Http404("this version has no scored split")
     pair = _pair_or_404(request, version_id, split_id)
-    listing = cause.listing_filters(request.GET)
+    listing = listing_of.listing_filters(request.GET)
     error, table = None, {"rows": [], "total": 0, "reasons": ()}
     try:
-        table = cause.image_table(pair, listing)
+        table = listing_of.image_table(pair, listing)
     except ValueError as e:
         error = str(e)
     query = urlencode({"split": split_id, **listing.query(), **_against(pair)})
@@ -143,6 +144,60 @@ def image_list(request, version_id):
             "error": error,
             "query": query,
             "detail_prefix": detail,
-            "thresholds": cause.threshold_words(pair),
+            "thresholds": listing_of.threshold_words(pair),
+        },
+    )
+
+
+@login_required
+def confusion(request, version_id):
+    """The confusion matrix of the version on one split at the deployed threshold(s);
+    ``?row=&col=`` lists one cell's detections and missed boxes."""
+    from releases.selectors import errors
+
+    version = version_or_404(request.user, version_id)
+    split_ids = cause.scored_split_ids(version)
+    split_id = _int(request.GET.get("split")) or (split_ids[0] if split_ids else None)
+    if split_id is None:
+        raise Http404("this version has no scored split")
+    pair = _pair_or_404(request, version_id, split_id)
+    row, column = _int(request.GET.get("row")), _int(request.GET.get("col"))
+    found = errors.confusion_for(pair, row, column)
+    labels = found["matrix"]["labels"]
+    normalised = request.GET.get("view") == "normalised"
+    grid = [
+        {
+            "label": labels[i],
+            "cells": [
+                {
+                    "column": j,
+                    "count": count,
+                    "share": (found["matrix"]["row_normalised"][i] or [None] * len(labels))[j],
+                    "diagonal": i == j and i < len(labels) - 1,
+                    "chosen": i == row and j == column,
+                }
+                for j, count in enumerate(counts)
+            ],
+            "index": i,
+        }
+        for i, counts in enumerate(found["matrix"]["counts"])
+    ]
+    query = urlencode({"split": split_id, **_against(pair)})
+    return render(
+        request,
+        "frontend/confusion.html",
+        {
+            "version": version,
+            "detector": version.detector,
+            "split": pair.split,
+            "splits": cause.scored_splits(version),
+            "labels": labels,
+            "grid": grid,
+            "normalised": normalised,
+            "cell": found["cell"],
+            "query": query,
+            "thresholds": listing_of.threshold_words(pair),
+            "protocol": pair.protocol,
+            "detail_prefix": reverse("image-detail", args=[version_id, split_id, 0])[: -len("0/")],
         },
     )

@@ -7,6 +7,7 @@ from django.shortcuts import redirect, render
 from django.utils.html import json_script
 
 from releases import selectors, services
+from releases.selectors import errors
 
 from .lookup import version_or_404
 
@@ -43,6 +44,7 @@ def version(request, version_id):
             "suite": suite,
             **page,
             "caution": selectors.CAUTION,
+            "errors": {e["split"].pk: e for e in errors.version_breakdowns(found)},
         },
     )
 

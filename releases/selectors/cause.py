@@ -211,36 +211,6 @@ def image_drilldown(pair, image):
     }
 
 
-@dataclass
-class Listing:
-    """The filters of the per-image list: a class (name or ``""`` for every class),
-    an image tag, a size bucket (``""`` = all sizes) and the sort."""
-
-    class_name: str = ""
-    tag: str = ""
-    size: str = ""
-
-    def query(self):
-        return {
-            k: v
-            for k, v in (("class", self.class_name), ("tag", self.tag), ("size", self.size))
-            if v
-        }
-
-    def words(self):
-        return ", ".join(f"{k} {v}" for k, v in self.query().items())
-
-
-def listing_filters(params):
-    """``Listing`` from request parameters (unknown values are checked against the
-    split later, by ``image_rows``)."""
-    return Listing(
-        class_name=str(params.get("class", "") or "").strip()[:64],
-        tag=str(params.get("tag", "") or "").strip()[:64],
-        size=str(params.get("size", "") or "").strip()[:16],
-    )
-
-
 def image_file_for(user, version_id, split_id, image):
     """``(file, MIME type)`` of image index ``image`` of a split the user's visible
     version was scored on, or None when the split has no stored file for it."""
@@ -268,95 +238,6 @@ def _image_ids(split):
     return [str(i) for i in outcomes.truth_of_split(split).image_ids]
 
 
-SORTS = ("loss", "gain", "image")
-
-
-def _area_index(records, size):
-    if not size:
-        return 0
-    if size not in records.area_names:
-        raise ValueError(
-            f"size: {size!r} is not a size bucket ({', '.join(records.area_names[1:])})"
-        )
-    return records.area_names.index(size)
-
-
-def image_rows(pair, listing):
-    """The per-image comparison: for every image of the split that carries the tag,
-    each version's TP, FP by reason and missed counts at the deployed threshold(s),
-    and the image's contribution to the change in AP of the class (all classes: the
-    mean) — ``ΔAP(all images) − ΔAP(without the image)``, with the tag's images as
-    weights exactly as the bootstrap weighs them (``engine.cause.leave_one_out``).
-    Sorted by the largest loss first. Raises ``ValueError`` naming a bad filter."""
-    from evaluation import engine
-    from evaluation.engine import cause as engine_cause
-
-    truth = pair.truth
-    if listing.class_name and listing.class_name not in truth.classes:
-        raise ValueError(f"class: {listing.class_name!r} is not a class of {pair.split}")
-    if listing.tag and listing.tag not in truth.tags():
-        raise ValueError(f"tag: {listing.tag!r} is not an image tag of {pair.split}")
-    area = _area_index(pair.candidate.records, listing.size)
-    k = truth.classes.index(listing.class_name) if listing.class_name else None
-    weights = truth.tag_mask(listing.tag) if listing.tag else np.ones(truth.n_images, np.int64)
-    protocol = engine.get_protocol(pair.protocol)
-    sides = {"candidate": pair.candidate}
-    if pair.reference is not None:
-        sides["reference"] = pair.reference
-    counts, loo = {}, {}
-    for key, side in sides.items():
-        counts[key] = engine_cause.image_counts(
-            side.records, pair.thresholds, protocol, area=area, classes=k
-        )
-        loo[key] = engine_cause.leave_one_out(side.records, protocol, weights, area=area, cls=k)
-    contribution = loo["candidate"] - loo["reference"] if "reference" in loo else loo["candidate"]
-    chosen = np.flatnonzero(weights > 0)
-    order = chosen[np.lexsort((chosen, contribution[chosen]))]
-    return {
-        "order": order,
-        "contribution": contribution,
-        "counts": counts,
-        "reasons": engine_cause.FP_REASONS,
-    }
-
-
-def neighbours(pair, listing, image):
-    """Previous and next image of ``image`` in the filtered, sorted list, and its
-    1-based position (None when it is not in the list)."""
-    try:
-        order = image_rows(pair, listing)["order"].tolist()
-    except ValueError:
-        order = []
-    if image not in order:
-        return {"previous": None, "next": None, "position": None, "total": len(order)}
-    i = order.index(image)
-    return {
-        "previous": order[i - 1] if i > 0 else None,
-        "next": order[i + 1] if i + 1 < len(order) else None,
-        "position": i + 1,
-        "total": len(order),
-    }
-
-
-def image_table(pair, listing, limit=200):
-    """``image_rows`` for a page: the first ``limit`` rows (None: all) with ids, tags
-    and counts."""
-    rows = image_rows(pair, listing)
-    truth = pair.truth
-    out = []
-    for i in rows["order"][:limit].tolist():
-        entry = {
-            "index": i,
-            "id": str(truth.image_ids[i]),
-            "tags": list(truth.image_tags[i]),
-            "contribution": float(rows["contribution"][i]),
-        }
-        for key, counts in rows["counts"].items():
-            entry[key] = {name: int(values[i]) for name, values in counts.items()}
-        out.append(entry)
-    return {"rows": out, "total": len(rows["order"]), "reasons": rows["reasons"]}
-
-
 def scored_splits(version):
     """The splits of the version's current prediction sets, in name order."""
     from evaluation.models import BenchmarkSplit
@@ -372,43 +253,3 @@ def scored_split_ids(version):
 def other_versions(version):
     """The detector's other versions, newest first (the reference choices)."""
     return list(version.detector.versions.exclude(pk=version.pk).order_by("-created_at"))
-
-
-def threshold_words(pair):
-    """The deployed threshold(s) in words: one number, or the classes that differ."""
-    values = {float(t) for t in pair.thresholds}
-    if len(values) == 1:
-        return f"score ≥ {values.pop():.2f}"
-    return ", ".join(f"{c} ≥ {t:.2f}" for c, t in zip(pair.classes, pair.thresholds))
-
-
-def rule_link(outcome, reference_id=None):
-    """Query of the per-image list filtered to an outcome's split, class and tag (the
-    one click from a failing rule): ``{"split", "class", "tag", "against"}``."""
-    query = {"split": outcome.split_id}
-    if outcome.class_name and outcome.class_name not in ("mean", "*"):
-        query["class"] = outcome.class_name
-    tag = (outcome.rule or {}).get("tag")
-    if tag:
-        query["tag"] = tag
-    against = reference_id or outcome.baseline_id
-    if against:
-        query["against"] = against
-    return query
-
-
-def image_table_json(pair, listing, table):
-    """The API's body of the per-image comparison."""
-    return {
-        "split": {"id": pair.split.pk, "name": pair.split.name, "revision": pair.split.revision},
-        "protocol": pair.protocol,
-        "candidate": {"id": pair.candidate.version.pk, "label": pair.candidate.version.label},
-        "reference": None
-        if pair.reference is None
-        else {"id": pair.reference.version.pk, "label": pair.reference.version.label},
-        "filters": listing.query(),
-        "thresholds": dict(zip(pair.classes, (float(t) for t in pair.thresholds))),
-        "fp_reasons": list(table["reasons"]),
-        "total": table["total"],
-        "images": table["rows"],
-    }

@@ -11,7 +11,7 @@ from rest_framework.response import Response
 from evaluation import outcomes
 from evaluation.models import BenchmarkSplit, Evaluation
 
-from ...selectors import cause
+from ...selectors import cause, image_list
 from ...split_images import attach_split_images
 from .. import serializers as s
 from ..errors import error_response
@@ -85,7 +85,7 @@ def _pair(request, pk, split_id):
 def _listing(request):
     for name in ("class", "tag", "size"):
         _text(request, name)
-    return cause.listing_filters(request.query_params)
+    return image_list.listing_filters(request.query_params)
 
 
 AGAINST = _param("against", int, "The reference version (default: the judged baseline)")
@@ -117,11 +117,11 @@ class VersionImages(Endpoint, generics.GenericAPIView):
         pair = _pair(request, pk, split_id)
         listing = _listing(request)
         try:
-            table = cause.image_table(pair, listing, limit=None)
+            table = image_list.image_table(pair, listing, limit=None)
         except ValueError as e:
             name = str(e).split(":", 1)[0]
             raise exceptions.ValidationError({name: [str(e)]}) from None
-        return Response(cause.image_table_json(pair, listing, table))
+        return Response(image_list.image_table_json(pair, listing, table))
 
 
 class VersionImage(Endpoint, generics.GenericAPIView):
