@@ -41,3 +41,10 @@ def images_query(outcome):
     from releases.selectors.image_list import rule_link
 
     return urlencode(rule_link(outcome))
+
+
+@register.filter
+def fine_delta(value):
+    """A per-image contribution to a change of AP: signed, four decimals (one image
+    moves AP by less than the page's usual 0.001)."""
+    return "—" if value is None else f"{value:+.4f}"

@@ -40,9 +40,6 @@ def listing_filters(params):
     )
 
 
-SORTS = ("loss", "gain", "image")
-
-
 def _area_index(records, size):
     if not size:
         return 0
@@ -53,43 +50,89 @@ def _area_index(records, size):
     return records.area_names.index(size)
 
 
+def _loo(records, protocol, classes, weights):
+    """``(AP, AP without each image)`` of one class, or of the mean over the classes
+    with positives (the headline mean: absent classes are left out of it)."""
+    import warnings
+
+    from evaluation.engine import per_image
+
+    if len(classes) == 1:
+        return per_image.leave_one_out(records, protocol, classes[0], weights)
+    pairs = [per_image.leave_one_out(records, protocol, k, weights) for k in classes]
+    bases = np.array([ap for ap, _ in pairs])
+    without = np.stack([w for _, w in pairs])
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)  # every class absent: NaN
+        return float(np.nanmean(bases)), np.nanmean(without, axis=0)
+
+
+_ROWS = {}
+
+
 def image_rows(pair, listing):
-    """The per-image comparison: for every image of the split that carries the tag,
-    each version's TP, FP by reason and missed counts at the deployed threshold(s),
-    and the image's contribution to the change in AP of the class (all classes: the
-    mean) — ``ΔAP(all images) − ΔAP(without the image)``, with the tag's images as
-    weights exactly as the bootstrap weighs them (``engine.cause.leave_one_out``).
-    Sorted by the largest loss first. Raises ``ValueError`` naming a bad filter."""
+    r"""The per-image comparison: for every image of the split that carries the tag
+    (and, with a size, holds a counted box of that size), each version's TP, FP by
+    reason and missed counts at the deployed threshold(s), and the image's
+    contribution to the change in AP of the class (no class: the mean over classes):
+
+    .. math:: c_i = \Delta - \Delta_{-i}, \quad \Delta = AP_{candidate} - AP_{reference}
+
+    with the tag's images as 0/1 weights and image i at weight 0, exactly as the
+    bootstrap weighs them (``engine.per_image.leave_one_out``); without a reference,
+    the candidate's own AP change. Sorted by the largest loss first (most negative
+    c_i; undefined ones last). Raises ``ValueError`` naming a bad filter."""
     from evaluation import engine
-    from evaluation.engine import cause as engine_cause
+    from evaluation.engine import per_image
+    from evaluation.engine.reasons import FALSE_POSITIVE_REASONS
 
     truth = pair.truth
     if listing.class_name and listing.class_name not in truth.classes:
         raise ValueError(f"class: {listing.class_name!r} is not a class of {pair.split}")
     if listing.tag and listing.tag not in truth.tags():
         raise ValueError(f"tag: {listing.tag!r} is not an image tag of {pair.split}")
-    area = _area_index(pair.candidate.records, listing.size)
-    k = truth.classes.index(listing.class_name) if listing.class_name else None
-    weights = truth.tag_mask(listing.tag) if listing.tag else np.ones(truth.n_images, np.int64)
-    protocol = engine.get_protocol(pair.protocol)
+    records = pair.candidate.records
+    area = _area_index(records, listing.size)
     sides = {"candidate": pair.candidate}
     if pair.reference is not None:
         sides["reference"] = pair.reference
-    counts, loo = {}, {}
-    for key, side in sides.items():
-        counts[key] = engine_cause.image_counts(
-            side.records, pair.thresholds, protocol, area=area, classes=k
-        )
-        loo[key] = engine_cause.leave_one_out(side.records, protocol, weights, area=area, cls=k)
-    contribution = loo["candidate"] - loo["reference"] if "reference" in loo else loo["candidate"]
-    chosen = np.flatnonzero(weights > 0)
-    order = chosen[np.lexsort((chosen, contribution[chosen]))]
-    return {
+    key = (
+        tuple((name, side.card.pk, side.card.records_sha256) for name, side in sides.items()),
+        tuple(pair.thresholds.tolist()),
+        listing.class_name,
+        listing.tag,
+        listing.size,
+    )
+    if key in _ROWS:
+        return _ROWS[key]
+    k = truth.classes.index(listing.class_name) if listing.class_name else None
+    classes = [k] if k is not None else list(range(len(truth.classes)))
+    weights = truth.tag_mask(listing.tag) if listing.tag else None
+    protocol = engine.get_protocol(pair.protocol)
+    counts, change = {}, {}
+    for name, side in sides.items():
+        counts[name] = per_image.image_counts(side.records, pair.thresholds, k)
+        ap, without = _loo(side.records, protocol, classes, weights)
+        change[name] = ap - without
+    contribution = change["candidate"] - change.get("reference", 0.0)
+    listed = np.ones(truth.n_images, bool) if weights is None else weights > 0
+    if area:
+        boxes = ~records.gt_ignored[area]
+        if k is not None:
+            boxes &= records.gt_class == k
+        listed &= np.bincount(records.gt_image[boxes], minlength=truth.n_images) > 0
+    chosen = np.flatnonzero(listed)
+    value = contribution[chosen]
+    order = chosen[np.lexsort((chosen, np.where(np.isnan(value), np.inf, value)))]
+    if len(_ROWS) > 32:
+        _ROWS.clear()
+    _ROWS[key] = {
         "order": order,
         "contribution": contribution,
         "counts": counts,
-        "reasons": engine_cause.FP_REASONS,
+        "reasons": FALSE_POSITIVE_REASONS,
     }
+    return _ROWS[key]
 
 
 def neighbours(pair, listing, image):
@@ -121,7 +164,9 @@ def image_table(pair, listing, limit=200):
             "index": i,
             "id": str(truth.image_ids[i]),
             "tags": list(truth.image_tags[i]),
-            "contribution": float(rows["contribution"][i]),
+            "contribution": None
+            if np.isnan(rows["contribution"][i])
+            else float(rows["contribution"][i]),
         }
         for key, counts in rows["counts"].items():
             entry[key] = {name: int(values[i]) for name, values in counts.items()}

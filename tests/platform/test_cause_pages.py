@@ -67,3 +67,93 @@ def test_other_teams_get_404_on_every_cause_page(client, users, story, rival_det
             assert client.get(url).status_code == 404, (name, url)
     client.logout()
     assert all(client.get(url).status_code == 302 for url in urls)  # to the login page
+
+
+def _rescored_without(truth_dict, detections, image_id, tag="night"):
+    """AP per class of the night images without ``image_id``, matched again from the
+    files (the engine's ``evaluate``: an independent path from the stored records)."""
+    import tempfile
+
+    from evaluation import engine
+
+    kept = [im for im in truth_dict["images"] if tag in im["tags"] and str(im["id"]) != image_id]
+    ids = {im["id"] for im in kept}
+    smaller = {
+        **truth_dict,
+        "images": kept,
+        "annotations": [a for a in truth_dict["annotations"] if a["image_id"] in ids],
+    }
+    with tempfile.TemporaryDirectory() as work:
+        gt, dt = f"{work}/gt.json", f"{work}/dt.json"
+        with open(gt, "w") as f:
+            json.dump(smaller, f)
+        with open(dt, "w") as f:
+            json.dump([d for d in detections if d["image_id"] in ids], f)
+        loaded = engine.load_truth(gt)
+        records = engine.match(loaded, engine.load_predictions(dt, loaded), "coco")
+        return engine.headline(records, "coco")
+
+
+def test_each_listed_contribution_is_the_change_without_that_image(users, story):
+    """Leaving the listed image out of both versions' files and scoring them again
+    gives exactly the ΔAP change the list states (c_i = Δ − Δ_without_i)."""
+    from releases import demo
+    from releases.selectors import image_list
+
+    pair = cause.pair_for(users["lead"], story["1.5"].pk, story["split"].pk)
+    listing = image_list.listing_filters({"class": "pedestrian", "tag": "night"})
+    rows = image_list.image_rows(pair, listing)
+    k = pair.classes.index("pedestrian")
+    files = {}
+    for label in ("1.4", "1.5"):
+        index = demo.index_of("forward", label)
+        day, night, jitter = demo.version_quality("forward", index, label)
+        files[label] = demo.predictions(story["truth"], day, night, jitter, (index + 1) * 1000 + 17)
+    mask = pair.truth.tag_mask("night")
+    from evaluation import engine
+
+    full = {
+        label: engine.headline(side.records, "coco", weights=mask)[1][k]
+        for label, side in (("1.5", pair.candidate), ("1.4", pair.reference))
+    }
+    change = full["1.5"] - full["1.4"]
+    worst, best = rows["order"][0], rows["order"][-1]
+    for image in (worst, best):
+        image_id = str(pair.truth.image_ids[image])
+        without = {
+            label: _rescored_without(story["truth"], files[label], image_id)[1][k]
+            for label in ("1.4", "1.5")
+        }
+        stated = rows["contribution"][image]
+        assert stated == pytest.approx(change - (without["1.5"] - without["1.4"]), abs=1e-12)
+    assert rows["contribution"][worst] < 0  # the list starts with a loss
+
+
+def test_rule_link_filters_the_list_and_the_api_agrees(client, users, story):
+    client.force_login(users["engineer"])
+    version = story["1.5"]
+    page = client.get(reverse("version", args=[version.pk])).content.decode()
+    outcome = Outcome.objects.get(version=version, status="fail")
+    link = f"/versions/{version.pk}/images/?split={story['split'].pk}&amp;class=pedestrian&amp;tag=night&amp;against={story['1.4'].pk}"
+    assert link in page
+    response = client.get(link.replace("&amp;", "&"))
+    assert response.status_code == 200
+    shown = [r["id"] for r in response.context["table"]["rows"]]
+    from rest_framework.test import APIClient
+
+    api = APIClient()
+    api.force_authenticate(users["engineer"])
+    body = api.get(
+        f"/api/v1/versions/{version.pk}/images/",
+        {"split": story["split"].pk, "class": "pedestrian", "tag": "night"},
+    ).json()
+    assert [r["id"] for r in body["images"]][: len(shown)] == shown
+    assert body["reference"]["label"] == "1.4" and body["filters"]["tag"] == "night"
+    assert set(body["images"][0]["candidate"]) >= {"tp", "fp", "missed", "fp_localisation"}
+    assert outcome.split_id == story["split"].pk
+    bad = api.get(
+        f"/api/v1/versions/{version.pk}/images/", {"split": story["split"].pk, "class": "yeti"}
+    )
+    assert bad.status_code == 400 and "not a class" in bad.json()["message"]
+    drill = api.get(f"/api/v1/versions/{version.pk}/images/{story['split'].pk}/0/").json()
+    assert drill["candidate"]["label"] == "1.5" and drill["image"]["index"] == 0
