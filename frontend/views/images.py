@@ -46,8 +46,8 @@ def image_detail(request, version_id, split_id, image):
     image_src = drill["image"]["url"]
     if drill["image"]["source"] == "files" and drill["image"]["file_name"]:
         image_src = reverse("image-file", args=[version_id, split_id, image])
-    deployed = min(drill["thresholds"]) if drill["thresholds"] else 0.5
     listing = listing_of.listing_filters(request.GET)
+    deployed = listing_of.slider_start(pair, listing.class_name)
     neighbours = listing_of.neighbours(pair, listing, image)
     query = urlencode({"split": split_id, **listing.query(), **_against(pair)})
 
@@ -70,7 +70,8 @@ def image_detail(request, version_id, split_id, image):
             "sides": sides,
             "image_src": image_src,
             "threshold": f"{deployed:.2f}",
-            "deployed": deployed,
+            "deployed": listing_of.threshold_words(pair),
+            "only_class": listing.class_name,
             "protocol": pair.protocol,
             "query": query,
             "filters": listing.words(),

@@ -130,7 +130,7 @@ def image_rows(pair, listing):
         "order": order,
         "contribution": contribution,
         "counts": counts,
-        "reasons": FALSE_POSITIVE_REASONS,
+        "reasons": [(r, SHORT_REASONS.get(r, r)) for r in FALSE_POSITIVE_REASONS],
     }
     return _ROWS[key]
 
@@ -175,11 +175,30 @@ def image_table(pair, listing, limit=200):
 
 
 def threshold_words(pair):
-    """The deployed threshold(s) in words: one number, or the classes that differ."""
-    values = {float(t) for t in pair.thresholds}
-    if len(values) == 1:
-        return f"score ≥ {values.pop():.2f}"
-    return ", ".join(f"{c} ≥ {t:.2f}" for c, t in zip(pair.classes, pair.thresholds))
+    """The deployed threshold(s) in words: the most common cut, then the classes that
+    differ (``score ≥ 0.50 (traffic_light ≥ 0.40)``)."""
+    values = [float(t) for t in pair.thresholds]
+    common = max(set(values), key=values.count)
+    others = [f"{c} ≥ {t:.2f}" for c, t in zip(pair.classes, values) if t != common]
+    return f"score ≥ {common:.2f}" + (f" ({', '.join(others)})" if others else "")
+
+
+def slider_start(pair, class_name=""):
+    """Where the drill-down's threshold slider starts: the class's deployed cut when
+    the list is filtered to a class, else the most common cut."""
+    values = [float(t) for t in pair.thresholds]
+    if class_name in pair.classes:
+        return values[pair.classes.index(class_name)]
+    return max(set(values), key=values.count)
+
+
+SHORT_REASONS = {
+    "fp_localisation": "loc",
+    "fp_class": "class",
+    "fp_duplicate": "dup",
+    "fp_localisation_and_class": "loc+class",
+    "fp_background": "bg",
+}
 
 
 def rule_link(outcome, reference_id=None):
@@ -208,7 +227,7 @@ def image_table_json(pair, listing, table):
         else {"id": pair.reference.version.pk, "label": pair.reference.version.label},
         "filters": listing.query(),
         "thresholds": dict(zip(pair.classes, (float(t) for t in pair.thresholds))),
-        "fp_reasons": list(table["reasons"]),
+        "fp_reasons": [r for r, _ in table["reasons"]],
         "total": table["total"],
         "images": table["rows"],
     }

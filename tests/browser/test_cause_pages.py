@@ -59,25 +59,33 @@ def test_from_the_failing_rule_to_the_boxes(page, live_server, story):
     # The worst image of a pedestrian loss: 1.5 missed a box 1.4 found, listed in words.
     assert drawn["lost"] >= 1 and drawn["counts"]["candidate"]["lost"] == drawn["lost"]
     assert page.locator("#lost-rows tr").count() >= 1
-    # Class toggles and the threshold slider redraw.
-    page.locator("[data-class-toggle]").nth(0).uncheck()
-    page.locator("#threshold").fill("0.99")
-    after = page.evaluate("() => document.querySelectorAll('#frame-candidate rect.det').length")
-    assert after <= drawn["det"]
-    page.locator("#threshold").fill("0.5")
+    # Filtered to pedestrians, only pedestrians are drawn; the toggles and the slider
+    # redraw.
+    shown = page.evaluate(
+        "() => [...document.querySelectorAll('#frame-candidate title')].map(t => t.textContent)"
+    )
+    assert shown and all(t.startswith("pedestrian") for t in shown)
     shot(page, "cause-drilldown-1280")
     page.set_viewport_size({"width": 390, "height": 844})
     shot(page, "cause-drilldown-390")
-    # Hovering a box names its outcome and IoU.
     page.set_viewport_size({"width": 1280, "height": 900})
-    page.locator("#frame-candidate rect.det").first.hover()
+    # Hovering a box names its class, score, outcome and IoU.
+    page.locator("#frame-reference rect.det-tp").first.hover()
+    assert "IoU" in page.locator("#hover-label").inner_text()
+    page.locator("#threshold").fill("0.99")
+    after = page.evaluate("() => document.querySelectorAll('#frame-candidate rect.det').length")
+    assert after <= drawn["det"]
+    pedestrian = page.locator("[data-class-toggle]").nth(3)
+    pedestrian.uncheck()
     assert (
-        "IoU" in page.locator("#hover-label").inner_text()
-        or ":" in page.locator("#hover-label").inner_text()
+        page.evaluate("() => document.querySelectorAll('#frame-candidate g.boxes rect').length")
+        == 0
     )
+    pedestrian.check()
     # Keyboard: the next image of the same filtered list.
     before = page.url
-    page.locator("body").press("ArrowRight")
+    page.locator("h1").click()  # arrows on the slider move the slider; elsewhere, images
+    page.keyboard.press("ArrowRight")
     page.wait_for_url(lambda url: url != before)
     assert "class=pedestrian" in page.url and "tag=night" in page.url
     page.wait_for_selector("#frame-candidate g.boxes rect")

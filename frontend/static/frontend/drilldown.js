@@ -21,6 +21,10 @@
   const toggles = Array.from(document.querySelectorAll("[data-class-toggle]"));
   const hover = document.getElementById("hover-label");
   const state = { threshold: parseFloat(slider.value), hidden: new Set() };
+  for (const box of toggles) {
+    if (!box.checked) state.hidden.add(parseInt(box.dataset.classToggle, 10));
+  }
+  const labelSize = Math.max(data.image.width, data.image.height) / 60;
   window.benchbookDrilldown = { data: data, state: state, counts: {} };
 
   function el(name, attrs, parent) {
@@ -45,7 +49,7 @@
   function rect(g, box, style, width, label) {
     const r = el("rect", {
       x: box[0], y: box[1], width: Math.max(box[2], 0.5), height: Math.max(box[3], 0.5),
-      fill: "none", stroke: style.colour, "stroke-width": width,
+      fill: "transparent", stroke: style.colour, "stroke-width": width,
       "stroke-dasharray": style.dash, "vector-effect": "non-scaling-stroke",
     }, g);
     el("title", {}, r).textContent = label;
@@ -63,7 +67,8 @@
     const other = side === "candidate" ? "reference" : "candidate";
     const counts = { tp: 0, fp: 0, missed: 0, lost: 0, shown: 0 };
     const t = state.threshold;
-    for (const box of data.truth) {
+    const area = (b) => -b.box[2] * b.box[3]; // larger first: a small box stays pointable
+    for (const box of data.truth.slice().sort((a, b) => area(a) - area(b))) {
       if (state.hidden.has(box.class)) continue;
       const s = truthState(box, side, t);
       const lost = s === "missed" && data[other] && truthState(box, other, t) === "found";
@@ -80,7 +85,7 @@
       r.setAttribute("class", "gt gt-" + s + (lost ? " gt-lost" : ""));
       r.dataset.truth = box.index;
     }
-    for (const d of data[side].detections) {
+    for (const d of data[side].detections.slice().sort((a, b) => area(a) - area(b))) {
       if (state.hidden.has(d.class)) continue;
       const o = outcomeAt(d, t);
       if (o === null) continue;
@@ -93,7 +98,7 @@
       r.setAttribute("class", "det det-" + o);
       if (d.iou !== null) {
         const tag = el("text", {
-          x: d.box[0] + 2, y: d.box[1] + d.box[3] - 3, class: "iou-label",
+          x: d.box[0] + 2, y: d.box[1] + d.box[3] - 3, class: "iou-label", "font-size": labelSize,
           fill: (STYLE[o] || STYLE.fp).colour,
         }, g);
         tag.textContent = d.iou.toFixed(2);
