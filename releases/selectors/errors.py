@@ -80,7 +80,23 @@ def compare_breakdowns(candidate, reference):
         "mean": mean,
         "per_class": per_class,
         "grew": grew[1] if grew and grew[0] > 0 else None,
+        "class_grew": _class_grew(per_class),
     }
+
+
+NOTABLE = 0.005  # half an AP point: below it, no class is named as having grown
+
+
+def _class_grew(per_class, shown=3):
+    """The classes whose one error type's ΔAP grew most (by at least ``NOTABLE``):
+    ``[(class, type, change)]``, largest first."""
+    out = []
+    for name, rows in per_class.items():
+        changes = [(r["change"], r["type"]) for r in rows if r["change"] is not None]
+        if changes and max(changes)[0] >= NOTABLE:
+            change, error = max(changes)
+            out.append((name, error, change))
+    return sorted(out, key=lambda t: -t[2])[:shown]
 
 
 def version_breakdowns(version, reference=None):

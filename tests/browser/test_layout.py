@@ -161,6 +161,9 @@ def _pages(detector, splits, versions):
         "tokens": "/account/tokens/",
         "upload": f"/detectors/{detector.pk}/upload/",
         "load-split": "/splits/load/",
+        "images": f"/versions/{versions[-1].pk}/images/?split={split.pk}&class=pedestrian",
+        "image": f"/versions/{versions[-1].pk}/images/{split.pk}/0/?class=pedestrian",
+        "confusion": f"/versions/{versions[-1].pk}/confusion/?split={split.pk}&row=3&col=3",
         "not-found": "/versions/999999/",
     }
 

@@ -60,6 +60,7 @@ def test_other_teams_get_404_on_every_cause_page(client, users, story, rival_det
         reverse("image-file", args=[version.pk, split.pk, 0]),
         reverse("records-download", args=[evaluation.pk, "csv"]),
         reverse("records-download", args=[evaluation.pk, "jsonl"]),
+        reverse("confusion", args=[version.pk]) + f"?split={split.pk}",
     ]
     for name in ("rival", "outsider"):
         client.force_login(users[name])
@@ -67,6 +68,16 @@ def test_other_teams_get_404_on_every_cause_page(client, users, story, rival_det
             assert client.get(url).status_code == 404, (name, url)
     client.logout()
     assert all(client.get(url).status_code == 302 for url in urls)  # to the login page
+    from rest_framework.test import APIClient
+
+    api = APIClient()
+    api.force_authenticate(users["rival"])
+    for url in (
+        f"/api/v1/versions/{version.pk}/images/?split={split.pk}",
+        f"/api/v1/versions/{version.pk}/images/{split.pk}/0/",
+        f"/api/v1/evaluations/{evaluation.pk}/records.csv",
+    ):
+        assert api.get(url).status_code == 404, url
 
 
 def _rescored_without(truth_dict, detections, image_id, tag="night"):
@@ -157,3 +168,67 @@ def test_rule_link_filters_the_list_and_the_api_agrees(client, users, story):
     assert bad.status_code == 400 and "not a class" in bad.json()["message"]
     drill = api.get(f"/api/v1/versions/{version.pk}/images/{story['split'].pk}/0/").json()
     assert drill["candidate"]["label"] == "1.5" and drill["image"]["index"] == 0
+
+
+def test_kinds_of_error_name_what_grew_for_the_failing_class(client, users, story):
+    """The version page shows TIDE's ΔAP per error type for 1.5 and its baseline 1.4
+    (the engine's ``tide.error_breakdown`` of each stored records file) and names the
+    error type that grew most for pedestrians: 1.5 misses pedestrians at night."""
+    from evaluation import engine
+    from evaluation.engine import tide
+    from releases.selectors import errors
+
+    pair = cause.pair_for(users["lead"], story["1.5"].pk, story["split"].pk)
+    found = errors.version_breakdowns(story["1.5"])[0]
+    mine = tide.error_breakdown(pair.candidate.records, engine.get_protocol("coco"))
+    theirs = tide.error_breakdown(pair.reference.records, engine.get_protocol("coco"))
+    for row in found["mean"]:
+        assert row["candidate"] == mine["mean"]["delta"][row["type"]]
+        assert row["change"] == pytest.approx(
+            mine["mean"]["delta"][row["type"]] - theirs["mean"]["delta"][row["type"]]
+        )
+    grew = {name: error for name, error, _ in found["class_grew"]}
+    assert grew.get("pedestrian") == "missed"
+    client.force_login(users["engineer"])
+    page = client.get(reverse("version", args=[story["1.5"].pk])).content.decode()
+    assert "pedestrian — <strong>missed</strong>" in page
+    compare = client.get(
+        reverse("compare", args=[story["detector"].pk]),
+        {"candidate": story["1.5"].pk, "reference": story["1.4"].pk},
+    ).content.decode()
+    assert "pedestrian — <strong>missed</strong>" in compare
+
+
+def test_confusion_totals_match_the_image_lists_counts(client, users, story):
+    """At the deployed thresholds, the matrix's TP on the diagonal, each column's false
+    positives and each row's missed boxes equal the per-image counts summed over the
+    split; a cell lists exactly its detections."""
+    from evaluation.engine import per_image
+    from releases.selectors import errors
+
+    pair = cause.pair_for(users["lead"], story["1.5"].pk, story["split"].pk)
+    records = pair.candidate.records
+    found = errors.confusion_for(pair)
+    counts = np.array(found["matrix"]["counts"])
+    n = len(pair.classes)
+    for k in range(n):
+        per = per_image.image_counts(records, pair.thresholds, k)
+        assert counts[k, k] == per["tp"].sum()
+        assert counts[:, k].sum() - counts[k, k] == per["fp"].sum()
+        assert counts[k, n] == per["missed"].sum()
+    k = pair.classes.index("pedestrian")
+    client.force_login(users["engineer"])
+    response = client.get(
+        reverse("confusion", args=[story["1.5"].pk]),
+        {"split": story["split"].pk, "row": n, "col": k},
+    )
+    assert response.status_code == 200
+    cell = response.context["cell"]
+    assert len(cell["detections"]) == counts[n, k] and cell["column"] == "pedestrian"
+    assert all(d["reason"].startswith("fp_") for d in cell["detections"])
+    normalised = client.get(
+        reverse("confusion", args=[story["1.5"].pk]),
+        {"split": story["split"].pk, "view": "normalised"},
+    ).context["grid"]
+    shares = [c["share"] for c in normalised[k]["cells"]]
+    assert sum(shares) == pytest.approx(1.0)
