@@ -1,0 +1,178 @@
+"""Benchmark: the cause pages' server time and the records download's memory, at scale.
+
+    python bench/cause_pages.py [--images 5000] [--detections 500000] [--repeat 5]
+
+Seeds a throw-away database (its own BENCHBOOK_VAR) through the real services: one
+split of ``--images`` images (a third tagged ``night``), a baseline and a candidate of
+``--detections`` detections each, both scored in this process. Then, with Django's test
+client:
+
+* the per-image list filtered to a class and a tag (both versions' counts at the
+  deployed threshold and every image's leave-one-out ΔAP contribution), its API twin,
+  one image's drill-down, the confusion matrix page and the version page — first
+  request (records read from storage and checked against their SHA-256) and the
+  median of ``--repeat`` later ones (records kept in the process); the target is
+  <= 1 s for the per-image list (issue #13), printed as a ratio;
+* the CSV download of one evaluation's outcome records, streamed: the peak of Python
+  allocations (``tracemalloc``) while the whole body is consumed, against the peak
+  after its first three blocks (the reference run): a streamed body's peak stays flat,
+  one held whole grows with it. Fails (exit 1) when a target is missed.
+"""
+
+import argparse
+import json
+import os
+import pathlib
+import secrets
+import statistics
+import sys
+import tempfile
+import time
+import tracemalloc
+
+ROOT = pathlib.Path(__file__).resolve().parent.parent
+TARGET_SECONDS = 1.0
+MEMORY_GROWTH = 1.5  # the download's peak may not grow with its length (streamed)
+
+
+def main():
+    parser = argparse.ArgumentParser(description=__doc__.split("\n")[0])
+    parser.add_argument("--images", type=int, default=5000)
+    parser.add_argument("--detections", type=int, default=500_000)
+    parser.add_argument("--classes", type=int, default=80)
+    parser.add_argument("--repeat", type=int, default=5)
+    args = parser.parse_args()
+
+    work = tempfile.mkdtemp(prefix="benchbook-cause-")
+    os.environ.update(BENCHBOOK_VAR=work, DJANGO_SETTINGS_MODULE="benchbook.settings")
+    os.environ.setdefault("SECRET_KEY", secrets.token_urlsafe(32))  # a throw-away server
+    os.environ.pop("DATABASE_URL", None)
+    os.environ.pop("CELERY_BROKER_URL", None)
+    os.environ["BENCHBOOK_MAX_UPLOAD_BYTES"] = str(4 * 1024**3)
+    os.environ["BENCHBOOK_INLINE_VALIDATION_BYTES"] = "0"  # the worker checks them
+    sys.path.insert(0, str(ROOT))
+    import django
+
+    django.setup()
+    import numpy as np
+    from django.contrib.auth import get_user_model
+    from django.core.files.base import ContentFile
+    from django.core.management import call_command
+    from django.test import Client
+    from django.test.utils import setup_test_environment
+
+    from bench.synthetic_split import generate
+    from evaluation import services as evaluation_services
+    from evaluation.models import Evaluation
+    from releases import services
+
+    setup_test_environment()
+    call_command("migrate", verbosity=0)
+    evaluation_services.dispatch = lambda pk: None  # scored below, in this process
+    started = time.perf_counter()
+    truth, baseline = generate(
+        seed=7, n_images=args.images, detections=args.detections, n_classes=args.classes
+    )
+    for image in truth["images"]:
+        image["tags"] = ["night"] if image["id"] % 3 == 0 else ["day"]
+        image["file_name"] = f"cam/{image['id']:05d}.jpg"
+    rng = np.random.default_rng(8)
+    candidate = [
+        {**d, "score": round(min(1.0, max(0.0, d["score"] + rng.normal(0, 0.05))), 3)}
+        for d in baseline
+        if rng.random() > 0.05
+    ]
+    split = evaluation_services.load_split(
+        name="bench-split",
+        revision=1,
+        truth=ContentFile(json.dumps(truth).encode(), name="bench-split.json"),
+    )
+    lead = get_user_model().objects.create_user("lead", password="x")
+    team = services.create_team("Shuttle Perception", [(lead, "lead")])
+    classes = [c["name"] for c in truth["categories"]]
+    detector = services.create_detector(team, "Forward camera", classes, protocols=("coco",))
+    versions = []
+    for label, detections in (("1.4", baseline), ("1.5", candidate)):
+        version = services.create_version(detector, label, lead)
+        services.submit_predictions(
+            version, split, ContentFile(json.dumps(detections).encode(), name=f"{label}.json"), lead
+        )
+        versions.append(version)
+    del baseline, candidate
+    for pk in Evaluation.objects.values_list("pk", flat=True):
+        evaluation_services.run_evaluation(pk)
+    assert Evaluation.objects.filter(state="done").count() == 2
+    print(
+        f"seeded {args.images} images, 2 x {args.detections} detections, "
+        f"{len(classes)} classes in {time.perf_counter() - started:.0f} s\n"
+    )
+
+    # The class with the most boxes: the slowest leave-one-out.
+    counts = np.bincount([a["category_id"] - 1 for a in truth["annotations"]])
+    busiest = classes[int(np.argmax(counts))]
+    cand, ref = versions[1], versions[0]
+    query = f"split={split.pk}&class={busiest}&tag=night&against={ref.pk}"
+    pages = {
+        "per-image list": (f"/versions/{cand.pk}/images/?{query}", True),
+        "per-image API": (f"/api/v1/versions/{cand.pk}/images/?{query}", True),
+        "drill-down": (f"/versions/{cand.pk}/images/{split.pk}/0/?{query}", False),
+        "confusion": (f"/versions/{cand.pk}/confusion/?split={split.pk}", False),
+        "version page": (f"/versions/{cand.pk}/", False),
+    }
+    client = Client()
+    client.force_login(lead)
+    failures = []
+    print(f"{'page':<16} {'first s':>8} {'median s':>9} {'target':>7} {'ratio':>6}")
+    for name, (url, targeted) in pages.items():
+        t = time.perf_counter()
+        response = client.get(url)
+        first = time.perf_counter() - t
+        assert response.status_code == 200, (url, response.status_code)
+        times = []
+        for _ in range(args.repeat):
+            t = time.perf_counter()
+            client.get(url)
+            times.append(time.perf_counter() - t)
+        median = statistics.median(times)
+        ratio = f"{median / TARGET_SECONDS:.2f}" if targeted else "—"
+        if targeted and median > TARGET_SECONDS:
+            failures.append(name)
+        print(
+            f"{name:<16} {first:>8.2f} {median:>9.3f} "
+            f"{(f'{TARGET_SECONDS:.0f} s' if targeted else '—'):>7} {ratio:>6}"
+        )
+
+    evaluation = Evaluation.objects.order_by("pk").last()
+    url = f"/evaluations/{evaluation.pk}/records.csv"
+    client.get(url)  # records into the process first: measure the streaming alone
+
+    def streamed(blocks=None):
+        """Peak Python allocations while ``blocks`` blocks (None: all) are consumed."""
+        tracemalloc.start()
+        response = client.get(url)
+        size = 0
+        for i, block in enumerate(response.streaming_content):
+            size += len(block)
+            if blocks is not None and i + 1 >= blocks:
+                break
+        peak = tracemalloc.get_traced_memory()[1]
+        tracemalloc.stop()
+        return size, peak
+
+    early_size, early_peak = streamed(blocks=3)
+    size, peak = streamed()
+    growth = peak / early_peak
+    ok = growth <= MEMORY_GROWTH
+    failures += [] if ok else ["download memory"]
+    print(
+        f"\nrecords.csv: {size / 1e6:.1f} MB streamed; peak Python allocations "
+        f"{peak / 1e6:.1f} MB for the whole body, {early_peak / 1e6:.1f} MB after its first "
+        f"{early_size / 1e6:.1f} MB: ratio {growth:.2f} (target <= {MEMORY_GROWTH}, flat); "
+        f"the body is {size / peak:.1f} x the peak"
+    )
+    print("\n" + ("targets met" if not failures else f"FAILED: {', '.join(failures)}"))
+    return 1 if failures else 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
