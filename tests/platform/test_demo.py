@@ -40,11 +40,15 @@ def _seed():
     return out.getvalue(), again.getvalue()
 
 
+SEEDED_MEDIA = {}  # where the seeded files are (each test gets its own MEDIA_ROOT)
+
+
 @pytest.fixture(scope="module")
 def seeded(django_db_setup, django_db_blocker, tmp_path_factory):
     """Seeded once for the module (it replays three months; its tasks run in this
     process as they happen), emptied afterwards (``conftest.committed_for_module``)."""
-    for built, _media in committed_for_module(django_db_blocker, tmp_path_factory, _seed):
+    for built, media in committed_for_module(django_db_blocker, tmp_path_factory, _seed):
+        SEEDED_MEDIA["root"] = media
         yield built
 
 
@@ -132,7 +136,7 @@ def test_the_numbers_look_like_a_real_detector(seeded):
         assert recall.max() < 0.95  # some objects are never found
 
 
-def test_from_the_failing_night_pedestrian_rule_to_its_cause(seeded, client):
+def test_from_the_failing_night_pedestrian_rule_to_its_cause(seeded, client, settings):
     """Issue 13's done-when on the demo: from 1.5's failing pedestrian rule on the night
     split, the rule's link lists the images (the largest loss first); the first has
     pedestrians 1.5 missed that 1.4 found; the kinds of error name missed pedestrians as
@@ -143,6 +147,7 @@ def test_from_the_failing_night_pedestrian_rule_to_its_cause(seeded, client):
 
     from releases.models import Outcome
 
+    settings.MEDIA_ROOT = SEEDED_MEDIA["root"]
     version = ModelVersion.objects.get(detector__slug="forward-camera", label="1.5")
     lead = get_user_model().objects.get(username="lead")
     client.force_login(lead)

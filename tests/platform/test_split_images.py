@@ -147,6 +147,9 @@ def test_image_files_are_served_to_readers_of_the_version_only(
     assert response.status_code == 200 and response["Content-Type"] == "image/png"
     assert response["X-Content-Type-Options"] == "nosniff"
     assert b"".join(response.streaming_content) == PNG
+    # The drill-down draws over the file served by that view, not a media URL.
+    page = client.get(reverse("image-detail", args=[version.pk, named_split.pk, index_of_cam0]))
+    assert f'href="{url}"' in page.content.decode() and "/media/" not in page.content.decode()
     assert first  # the mapping is non-empty
     for outsider in ("rival", "outsider"):
         client.force_login(users[outsider])
