@@ -9,6 +9,7 @@ protocol's stored matches; no re-matching).
 
 import collections
 import functools
+import threading
 
 from .models import Scorecard
 from .services import _load_predictions, load_records, load_truth_of
@@ -20,15 +21,18 @@ class _Kept:
 
     def __init__(self, size):
         self.size, self.items = size, collections.OrderedDict()
+        self.lock = threading.Lock()  # threaded servers: the dict, not the load
 
     def get(self, key, load):
-        if key in self.items:
-            self.items.move_to_end(key)
-            return self.items[key]
+        with self.lock:
+            if key in self.items:
+                self.items.move_to_end(key)
+                return self.items[key]
         value = load()
-        self.items[key] = value
-        while len(self.items) > self.size:
-            self.items.popitem(last=False)
+        with self.lock:
+            self.items[key] = value
+            while len(self.items) > self.size:
+                self.items.popitem(last=False)
         return value
 
 

@@ -34,13 +34,13 @@ def breakdown_of(side):
 
     card = side.card
     key = (card.pk, card.records_sha256)
-    if key not in _BREAKDOWNS:
+    found = _BREAKDOWNS.get(key)  # .get: another thread may clear it meanwhile
+    if found is None:
+        found = tide.error_breakdown(outcomes.records_of(card), engine.get_protocol(card.protocol))
         if len(_BREAKDOWNS) > 64:
             _BREAKDOWNS.clear()
-        _BREAKDOWNS[key] = tide.error_breakdown(
-            outcomes.records_of(card), engine.get_protocol(card.protocol)
-        )
-    return _BREAKDOWNS[key]
+        _BREAKDOWNS[key] = found
+    return found
 
 
 def _rows(candidate, reference, types):

@@ -103,8 +103,9 @@ def image_rows(pair, listing):
         listing.tag,
         listing.size,
     )
-    if key in _ROWS:
-        return _ROWS[key]
+    cached = _ROWS.get(key)  # .get: another thread may clear it meanwhile
+    if cached is not None:
+        return cached
     k = truth.classes.index(listing.class_name) if listing.class_name else None
     classes = [k] if k is not None else list(range(len(truth.classes)))
     weights = truth.tag_mask(listing.tag) if listing.tag else None
@@ -126,13 +127,14 @@ def image_rows(pair, listing):
     order = chosen[np.lexsort((chosen, np.where(np.isnan(value), np.inf, value)))]
     if len(_ROWS) > 32:
         _ROWS.clear()
-    _ROWS[key] = {
+    result = {
         "order": order,
         "contribution": contribution,
         "counts": counts,
         "reasons": [(r, SHORT_REASONS.get(r, r)) for r in FALSE_POSITIVE_REASONS],
     }
-    return _ROWS[key]
+    _ROWS[key] = result
+    return result
 
 
 def neighbours(pair, listing, image):

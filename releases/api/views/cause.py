@@ -93,6 +93,7 @@ AGAINST = _param("against", int, "The reference version (default: the judged bas
 
 class VersionImages(Endpoint, generics.GenericAPIView):
     @extend_schema(
+        operation_id="versions_images_list",
         summary="Per-image comparison of the version with a reference on one split",
         description=(
             "Every image of the split carrying ``tag``, the largest loss first: each "
@@ -126,6 +127,7 @@ class VersionImages(Endpoint, generics.GenericAPIView):
 
 class VersionImage(Endpoint, generics.GenericAPIView):
     @extend_schema(
+        operation_id="versions_image_retrieve",
         summary="One image's ground truth and both versions' detections with outcomes",
         parameters=[AGAINST],
         responses={200: OpenApiTypes.OBJECT, 409: error_response(409)},
@@ -140,6 +142,7 @@ class VersionImage(Endpoint, generics.GenericAPIView):
 
 class SplitImages(Endpoint, generics.GenericAPIView):
     queryset = BenchmarkSplit.objects.all()
+    serializer_class = s.SplitImagesInput
 
     @extend_schema(
         request={"multipart/form-data": s.SplitImagesInput},
