@@ -48,14 +48,12 @@ class Pair:
 
 
 def deployed_thresholds(detector, classes):
-    """The deployed score threshold of each class, from the detector's benchmark suite
-    (``class_thresholds``, else ``score_threshold``); 0.5 when it has no suite."""
-    from ..suites import current_suite
+    """The deployed score threshold of each class (``suites.threshold_of`` under the
+    detector's current suite: the one source of "the deployed threshold")."""
+    from ..suites import current_suite, threshold_of
 
     suite = current_suite(detector)
-    default = suite.score_threshold if suite else 0.5
-    per_class = suite.class_thresholds if suite else {}
-    return np.array([float(per_class.get(c, default)) for c in classes])
+    return np.array([float(threshold_of(suite, c)) for c in classes])
 
 
 def _side(version, split):
