@@ -147,6 +147,7 @@ def _mark_failed(evaluation, message, detail=None):
     evaluation.save(
         update_fields=["state", "error", "error_detail", "lease_expires_at", "finished_at"]
     )
+    signals.result_recorded.send(Evaluation, evaluation=evaluation)
     transaction.on_commit(lambda: signals.evaluation_failed.send(Evaluation, evaluation=evaluation))
 
 

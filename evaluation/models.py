@@ -68,7 +68,13 @@ class PredictionFile(models.Model):
 
 
 class Evaluation(models.Model):
-    """Scoring one prediction file on one split under one protocol."""
+    """Scoring one prediction file on one split under one protocol, for one ``scope``.
+
+    ``scope`` is an opaque key of whoever asked (``releases`` uses its team): the same
+    bytes, split, protocol and box policy are evaluated once per scope, so no requester
+    ever sees another's queue or finish times, attempts or messages. This app never
+    reads its meaning.
+    """
 
     class State(models.TextChoices):
         QUEUED = "queued"
@@ -85,6 +91,18 @@ class Evaluation(models.Model):
         max_length=8,
         default="keep",
         help_text="Boxes leaving the frame: keep (as the references), clip or reject.",
+    )
+    scope = models.CharField(
+        max_length=64,
+        blank=True,
+        default="",
+        help_text="Who asked for it (opaque here); never shared across scopes.",
+    )
+    file_name = models.CharField(
+        max_length=255,
+        blank=True,
+        default="",
+        help_text="The file's name as its requester uploaded it (messages, format).",
     )
     state = models.CharField(max_length=8, choices=State.choices, default=State.QUEUED)
     progress = models.PositiveSmallIntegerField(default=0)
@@ -104,14 +122,20 @@ class Evaluation(models.Model):
     class Meta:
         constraints = [
             models.UniqueConstraint(
-                fields=["split", "predictions", "protocol", "box_policy"],
-                name="one_evaluation_per_input",
+                fields=["split", "predictions", "protocol", "box_policy", "scope"],
+                name="one_evaluation_per_input_and_scope",
             )
         ]
         indexes = [models.Index(fields=["state", "queued_at"])]
 
     def __str__(self):
         return f"{self.protocol} of {self.predictions} on {self.split} ({self.state})"
+
+    @property
+    def name(self):
+        """The predictions file's name for messages: the requester's, not whoever
+        stored the bytes first."""
+        return self.file_name or self.predictions.original_name
 
     @property
     def finished(self):

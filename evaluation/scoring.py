@@ -51,7 +51,7 @@ def run_evaluation(evaluation_id, claim=None):
         log.exception("evaluation %s: unexpected error while scoring", evaluation.pk)
         jobs.fail(
             evaluation,
-            f"scoring {evaluation.predictions.original_name} on {evaluation.split} stopped on "
+            f"scoring {evaluation.name} on {evaluation.split} stopped on "
             f"an unexpected error ({type(e).__name__}: {e}); a retry would fail the same way "
             "(the traceback is in the worker log)",
             {"exception": type(e).__name__, "message": str(e)},
@@ -69,10 +69,9 @@ def _score(evaluation):
         prediction_file.sha256,
         f"predictions:{prediction_file.pk}",
         "predictions file",
+        evaluation.name,
     ) as path:
-        predictions = _load_predictions(
-            path, truth, prediction_file.original_name, evaluation.box_policy
-        )
+        predictions = _load_predictions(path, truth, evaluation.name, evaluation.box_policy)
     jobs.progress(evaluation, 50)
     records = engine.match(truth, predictions, protocol)
     jobs.progress(evaluation, 75)
@@ -128,6 +127,7 @@ def _store(evaluation, result, records, record_count):
                             "finished_at",
                         ]
                     )
+                    signals.result_recorded.send(Evaluation, evaluation=evaluation)
                     transaction.on_commit(
                         lambda: signals.evaluation_finished.send(Evaluation, evaluation=evaluation)
                     )

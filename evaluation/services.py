@@ -280,15 +280,21 @@ def _load_predictions(path, truth, name, boxes="keep"):
             path, truth, fmt=_format_of(name, path), boxes=boxes, cache_dir=_cache_dir()
         )
     except engine.InputError as e:
-        e.path = os.path.basename(e.path)
+        same_file = os.path.basename(e.path) == os.path.basename(path)
+        e.path = name if same_file else os.path.basename(e.path)
         raise
 
 
-def request_evaluations(split, prediction_file, protocols, *, box_policy="keep"):
-    """One evaluation per protocol (existing ones are reused), dispatched on commit.
+def request_evaluations(
+    split, prediction_file, protocols, *, box_policy="keep", scope="", file_name=""
+):
+    """One evaluation per protocol (existing ones of the same ``scope`` are reused),
+    dispatched on commit.
 
     ``box_policy`` (``engine.BOX_POLICIES``) is part of what is evaluated: the same
-    file under another policy is another evaluation.
+    file under another policy is another evaluation. ``scope`` is the requester's opaque
+    key: another scope never reuses these rows. ``file_name`` is the file's name as
+    this requester uploaded it (kept by a new evaluation, for its messages).
     """
     if box_policy not in engine.BOX_POLICIES:
         raise engine.InputError(
@@ -298,7 +304,12 @@ def request_evaluations(split, prediction_file, protocols, *, box_policy="keep")
     for protocol in protocols:
         resolve_protocol(protocol)
         evaluation, created = Evaluation.objects.get_or_create(
-            split=split, predictions=prediction_file, protocol=protocol, box_policy=box_policy
+            split=split,
+            predictions=prediction_file,
+            protocol=protocol,
+            box_policy=box_policy,
+            scope=scope,
+            defaults={"file_name": file_name},
         )
         if created:
             dispatch(evaluation.pk)

@@ -60,13 +60,14 @@ def check_sha256(subject, what, name, expected, actual):
 
 
 @contextlib.contextmanager
-def verified_path(field_file, expected, subject, what):
+def verified_path(field_file, expected, subject, what, name=None):
     """``local_path`` of a stored file whose bytes were hashed against ``expected`` just
-    before use (ContentMismatch if they differ). The engine's cache is keyed by the
+    before use (ContentMismatch if they differ, naming the file ``name``: by default its
+    stored name). The engine's cache is keyed by the
     SHA-256 of the bytes it reads, so a changed file is never served from an entry
     made for the old one."""
     with local_path(field_file) as path:
-        name = os.path.basename(field_file.name)
+        name = name or os.path.basename(field_file.name)
         check_sha256(subject, what, name, expected, file_sha256(path))
         yield path
 

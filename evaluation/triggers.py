@@ -84,24 +84,38 @@ def sqlite_remove(table):
 _FINISHED = ", ".join(f"'{s}'" for s in FINISHED)
 _FUNCTION = "benchbook_refuse_evaluation_change"
 
-POSTGRES_SPLIT = f"""
-CREATE OR REPLACE FUNCTION benchbook_refuse_frozen_split() RETURNS trigger AS $$
+
+
+def _postgres_guard(table, trigger, function, condition, message, what):
+    """A row trigger refusing UPDATE or DELETE when ``condition`` holds (``message``:
+    RAISE's format and arguments), and TRUNCATE of the table (``what`` it holds)."""
+    return f"""
+CREATE OR REPLACE FUNCTION {function}() RETURNS trigger AS $$
 BEGIN
-    IF OLD.frozen_at IS NOT NULL THEN
-        RAISE EXCEPTION 'benchmark split % rev % is frozen', OLD.name, OLD.revision
-            USING ERRCODE = 'restrict_violation';
+    IF {condition} THEN
+        RAISE EXCEPTION {message} USING ERRCODE = 'restrict_violation';
     END IF;
     IF TG_OP = 'DELETE' THEN RETURN OLD; END IF;
     RETURN NEW;
 END;
 $$ LANGUAGE plpgsql;
-DROP TRIGGER IF EXISTS benchbook_frozen_split ON {SPLIT};
-CREATE TRIGGER benchbook_frozen_split BEFORE UPDATE OR DELETE ON {SPLIT}
-    FOR EACH ROW EXECUTE FUNCTION benchbook_refuse_frozen_split();
-DROP TRIGGER IF EXISTS benchbook_no_truncate ON {SPLIT};
-CREATE TRIGGER benchbook_no_truncate BEFORE TRUNCATE ON {SPLIT}
-    FOR EACH STATEMENT EXECUTE FUNCTION {_FUNCTION}('a frozen split');
+DROP TRIGGER IF EXISTS {trigger} ON {table};
+CREATE TRIGGER {trigger} BEFORE UPDATE OR DELETE ON {table}
+    FOR EACH ROW EXECUTE FUNCTION {function}();
+DROP TRIGGER IF EXISTS benchbook_no_truncate ON {table};
+CREATE TRIGGER benchbook_no_truncate BEFORE TRUNCATE ON {table}
+    FOR EACH STATEMENT EXECUTE FUNCTION {_FUNCTION}('{what}');
 """
+
+
+POSTGRES_SPLIT = _postgres_guard(
+    SPLIT,
+    "benchbook_frozen_split",
+    "benchbook_refuse_frozen_split",
+    "OLD.frozen_at IS NOT NULL",
+    "'benchmark split % rev % is frozen', OLD.name, OLD.revision",
+    "a frozen split",
+)
 SQLITE_SPLIT = [
     f"""CREATE TRIGGER IF NOT EXISTS benchbook_frozen_split_{op.lower()} BEFORE {op} ON {SPLIT}
     WHEN OLD.frozen_at IS NOT NULL
@@ -112,24 +126,15 @@ SQLITE_SPLIT = [
 
 def _postgres_evaluation(columns):
     changed = " OR ".join(f"NEW.{c} IS DISTINCT FROM OLD.{c}" for c in columns)
-    return f"""
-CREATE OR REPLACE FUNCTION benchbook_refuse_finished_change() RETURNS trigger AS $$
-BEGIN
-    IF OLD.state IN ({_FINISHED}) AND (TG_OP = 'DELETE' OR {changed}) THEN
-        RAISE EXCEPTION 'evaluation % is finished (%): its state and result cannot change',
-            OLD.id, OLD.state USING ERRCODE = 'restrict_violation';
-    END IF;
-    IF TG_OP = 'DELETE' THEN RETURN OLD; END IF;
-    RETURN NEW;
-END;
-$$ LANGUAGE plpgsql;
-DROP TRIGGER IF EXISTS benchbook_finished ON {EVALUATION};
-CREATE TRIGGER benchbook_finished BEFORE UPDATE OR DELETE ON {EVALUATION}
-    FOR EACH ROW EXECUTE FUNCTION benchbook_refuse_finished_change();
-DROP TRIGGER IF EXISTS benchbook_no_truncate ON {EVALUATION};
-CREATE TRIGGER benchbook_no_truncate BEFORE TRUNCATE ON {EVALUATION}
-    FOR EACH STATEMENT EXECUTE FUNCTION {_FUNCTION}('a finished evaluation');
-"""
+    return _postgres_guard(
+        EVALUATION,
+        "benchbook_finished",
+        "benchbook_refuse_finished_change",
+        f"OLD.state IN ({_FINISHED}) AND (TG_OP = 'DELETE' OR {changed})",
+        "'evaluation % is finished (%): its state and result cannot change', "
+        "OLD.id, OLD.state",
+        "a finished evaluation",
+    )
 
 
 def _sqlite_evaluation(columns):

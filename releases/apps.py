@@ -22,11 +22,8 @@ class ReleasesConfig(AppConfig):
         from . import signals
 
         evaluation_signals.split_frozen.connect(signals.split_frozen, dispatch_uid="audit-split")
-        evaluation_signals.evaluation_finished.connect(
-            signals.evaluation_finished, dispatch_uid="audit-finished"
-        )
-        evaluation_signals.evaluation_failed.connect(
-            signals.evaluation_failed, dispatch_uid="audit-failed"
+        evaluation_signals.result_recorded.connect(
+            signals.result_recorded, dispatch_uid="audit-result"
         )
         evaluation_signals.content_mismatch.connect(
             signals.content_mismatch, dispatch_uid="audit-content-mismatch"

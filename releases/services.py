@@ -198,11 +198,17 @@ def _replace_or_refuse(version, split, current):
     return [{"protocol": e.protocol, "error": e.error} for e in evaluations if e.state == "failed"]
 
 
+def evaluation_scope(team_id):
+    """The ``Evaluation.scope`` of a team's evaluations."""
+    return f"team:{team_id}"
+
+
 def request_for_set(prediction_set, protocols=None):
     """Request the set's evaluations under its detector's suite (``protocols``: a
     subset, e.g. one a suite change added) and link them to the set: a set's
     evaluations are the ones it asked for, never those another upload of the same bytes
-    asked for."""
+    asked for. Their scope is the team (``evaluation_scope``): another team's identical
+    bytes get evaluations of their own, so no time, attempt or message is shared."""
     from . import suites
 
     suite = suites.current_suite(prediction_set.version.detector)
@@ -211,6 +217,8 @@ def request_for_set(prediction_set, protocols=None):
         prediction_set.predictions,
         suite.protocols if protocols is None else protocols,
         box_policy=suite.box_policy,
+        scope=evaluation_scope(prediction_set.version.detector.team_id),
+        file_name=prediction_set.file_name,
     )
     prediction_set.evaluations.add(*evaluations)
     return evaluations

@@ -20,34 +20,24 @@ def split_frozen(sender, split, **kwargs):
     )
 
 
-def evaluation_finished(sender, evaluation, **kwargs):
-    card = evaluation.scorecard
-    audit.record_event(
-        AuditEvent.Kind.EVALUATION_FINISHED,
-        "system",
-        f"evaluation:{evaluation.pk}",
-        {
+def result_recorded(sender, evaluation, **kwargs):
+    """The evaluation-finished or -failed event, with the digests of the rows just
+    written, in the same transaction as the result: a crash leaves both or neither."""
+    if evaluation.state == evaluation.State.DONE:
+        card = evaluation.scorecard
+        kind = AuditEvent.Kind.EVALUATION_FINISHED
+        payload = {
             "protocol": evaluation.protocol,
             "split_sha256": card.split_sha256,
             "predictions_sha256": card.predictions_sha256,
             "engine_version": card.engine_version,
             "summary": card.summary,
-            "result": result_digests(evaluation.pk),  # re-derived by verify_audit
-        },
-    )
-
-
-def evaluation_failed(sender, evaluation, **kwargs):
-    audit.record_event(
-        AuditEvent.Kind.EVALUATION_FAILED,
-        "system",
-        f"evaluation:{evaluation.pk}",
-        {
-            "protocol": evaluation.protocol,
-            "error": evaluation.error,
-            "result": result_digests(evaluation.pk),
-        },
-    )
+        }
+    else:
+        kind = AuditEvent.Kind.EVALUATION_FAILED
+        payload = {"protocol": evaluation.protocol, "error": evaluation.error}
+    payload["result"] = result_digests(evaluation.pk)  # re-derived by verify_audit
+    audit.record_event(kind, "system", f"evaluation:{evaluation.pk}", payload)
 
 
 def content_mismatch(sender, subject, error, **kwargs):
@@ -67,7 +57,7 @@ def judge_when_complete(sender, evaluation, **kwargs):
 
     versions = (
         PredictionSet.objects.current()
-        .filter(predictions_id=evaluation.predictions_id, split_id=evaluation.split_id)
+        .filter(evaluations=evaluation.pk)
         .values_list("version_id", flat=True)
     )
     for version_id in set(versions):

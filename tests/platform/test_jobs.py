@@ -386,3 +386,65 @@ def test_records_files_are_checked_when_read(version, split, split_truth, users,
     assert AuditEvent.objects.filter(
         kind=AuditEvent.Kind.CONTENT_MISMATCH, subject=f"scorecard:{card.pk}"
     ).exists()
+
+
+class Killed(BaseException):
+    """The worker process dying at this point (not an error anything catches)."""
+
+
+def test_a_crash_right_after_the_commit_leaves_a_chained_result(
+    version, split, split_truth, users, monkeypatch, django_capture_on_commit_callbacks
+):
+    """The evaluation-finished event (with the result's digests) is written in the
+    same transaction as the result, so a worker killed just after the commit — before
+    any after-commit work — leaves a result that verify_audit finds in the chain."""
+    from evaluation import signals
+    from releases import audit_check
+
+    evaluation = _queued(version, split, split_truth, users, monkeypatch)
+
+    def killed(*args, **kwargs):
+        raise Killed
+
+    monkeypatch.setattr(signals.evaluation_finished, "send", killed)
+    with pytest.raises(Killed), django_capture_on_commit_callbacks(execute=True):
+        evaluation_services.run_evaluation(evaluation.pk, claim="d1")
+    evaluation.refresh_from_db()
+    assert evaluation.state == "done"
+    report = audit_check.check()
+    assert report.ok, report.problems
+    assert AuditEvent.objects.filter(
+        kind=AuditEvent.Kind.EVALUATION_FINISHED, subject=f"evaluation:{evaluation.pk}"
+    ).exists()
+
+
+def test_a_crash_while_chaining_the_result_stores_nothing(
+    version, split, split_truth, users, monkeypatch, settings
+):
+    """Killed while its event is being written, the result is not stored either (no
+    scorecard, no records file, still running for the sweep); the redelivered message
+    stores both, and verify_audit finds nothing wrong at either point."""
+    from releases import audit, audit_check
+
+    evaluation = _queued(version, split, split_truth, users, monkeypatch)
+    record_event = audit.record_event
+    calls = []
+
+    def dies_once(kind, *args, **kwargs):
+        if kind == AuditEvent.Kind.EVALUATION_FINISHED and not calls:
+            calls.append(kind)
+            raise Killed
+        return record_event(kind, *args, **kwargs)
+
+    monkeypatch.setattr(audit, "record_event", dies_once)
+    with pytest.raises(Killed):
+        evaluation_services.run_evaluation(evaluation.pk, claim="d1")
+    evaluation.refresh_from_db()
+    assert evaluation.state == "running" and not Scorecard.objects.exists()
+    assert _records_files(settings) == [] and calls
+    assert audit_check.check().ok
+    evaluation_services.run_evaluation(evaluation.pk, claim="d1")  # the redelivery
+    evaluation.refresh_from_db()
+    assert evaluation.state == "done" and Scorecard.objects.count() == 1
+    report = audit_check.check()
+    assert report.ok and report.results_checked == 1, report.problems

@@ -130,3 +130,70 @@ def test_a_replacement_reads_only_its_own_sets_evaluations(
             upload("b2.json", detections_for(split_truth, seed=4)),
             users["rival"],
         )
+
+
+def test_each_team_has_evaluations_of_its_own(twins, users, client):
+    """The identical bytes are scored once per team (``Evaluation.scope``): B's
+    evaluation shows B's queue and finish times and attempts, never A's, through the
+    API (list and detail), the live-status JSON and the version page."""
+    a_coco = twins["a"].evaluations.get(protocol="coco")
+    b_coco = twins["b"].evaluations.get()
+    assert a_coco.pk != b_coco.pk and b_coco.protocol == "coco"
+    assert (a_coco.scope, b_coco.scope) != ("", "") and a_coco.scope != b_coco.scope
+    assert b_coco.file_name == "b.json" and a_coco.file_name == A_NAME
+    with triggers_off():  # planted: A's evaluation ran long ago, three times
+        Evaluation.objects.filter(predictions=twins["a"].predictions, scope=a_coco.scope).update(
+            queued_at=A_TIME, started_at=A_TIME, finished_at=A_TIME, attempts=3
+        )
+    b = client_for(users["rival"])
+    listed = b.get(API + "evaluations/").json()["results"]
+    assert [e["id"] for e in listed] == [b_coco.pk] and listed[0]["attempts"] == 1
+    detail = b.get(API + f"evaluations/{b_coco.pk}/")
+    assert "2026-01-05" not in _text(b.get(API + "evaluations/")) + _text(detail)
+    client.force_login(users["rival"])
+    status = client.get(f"/evaluations/{b_coco.pk}.json").content.decode()
+    page = client.get(reverse("version", args=[twins["b"].version_id])).content.decode()
+    assert "2026-01-05" not in status + page and A_NAME not in status + page
+
+
+def test_a_failure_names_the_readers_own_file(
+    detector, rival_detector, split, users, run_tasks, settings
+):
+    """A file the worker refuses (the inline check is off, as for a big file) fails
+    each team's evaluation with a message naming that team's own file name."""
+    settings.BENCHBOOK_INLINE_VALIDATION_BYTES = 0
+    bad = json.dumps([{"image_id": 1, "category_id": 1, "bbox": [0, 0, 1], "score": 0.5}])
+    a = run_tasks(
+        services.submit_for_label, detector, "1.4.0", split, upload(A_NAME, bad), users["engineer"]
+    )
+    b = run_tasks(
+        services.submit_for_label, rival_detector, "r1", split, upload("b.json", bad), users["rival"]
+    )
+    (b_eval,) = b.evaluations.all()
+    assert b_eval.state == "failed" and "b.json" in b_eval.error
+    assert A_NAME not in b_eval.error + json.dumps(b_eval.error_detail)
+    assert all(A_NAME in e.error for e in a.evaluations.all())
+    text = _text(client_for(users["rival"]).get(API + f"evaluations/{b_eval.pk}/"))
+    assert A_NAME not in text and "b.json" in text
+
+
+def test_migration_gives_each_team_its_own_evaluation(twins):
+    """Rows shared before scopes (scope ''): the team that asked first keeps the row,
+    every other team's sets get a queued evaluation of their own (the sweep sends it)."""
+    import importlib
+
+    from django.apps import apps
+
+    migration = importlib.import_module("releases.migrations.0015_evaluation_scopes")
+    a, b = twins["a"], twins["b"]
+    shared = a.evaluations.get(protocol="coco")
+    Evaluation.objects.filter(pk=shared.pk).update(scope="", file_name="")  # as before 0015
+    Evaluation.objects.filter(pk__in=b.evaluations.all()).update(scope="elsewhere")
+    b.evaluations.set([shared])
+    migration.scope_existing(apps, None)
+    shared.refresh_from_db()
+    assert shared.scope == services.evaluation_scope(a.version.detector.team_id)
+    assert shared.file_name == A_NAME and list(a.evaluations.filter(protocol="coco")) == [shared]
+    (own,) = b.evaluations.all()
+    assert own.pk != shared.pk and own.state == "queued" and own.file_name == "b.json"
+    assert own.scope == services.evaluation_scope(b.version.detector.team_id)
