@@ -85,7 +85,6 @@ _FINISHED = ", ".join(f"'{s}'" for s in FINISHED)
 _FUNCTION = "benchbook_refuse_evaluation_change"
 
 
-
 def _postgres_guard(table, trigger, function, condition, message, what):
     """A row trigger refusing UPDATE or DELETE when ``condition`` holds (``message``:
     RAISE's format and arguments), and TRUNCATE of the table (``what`` it holds)."""
@@ -131,8 +130,7 @@ def _postgres_evaluation(columns):
         "benchbook_finished",
         "benchbook_refuse_finished_change",
         f"OLD.state IN ({_FINISHED}) AND (TG_OP = 'DELETE' OR {changed})",
-        "'evaluation % is finished (%): its state and result cannot change', "
-        "OLD.id, OLD.state",
+        "'evaluation % is finished (%): its state and result cannot change', OLD.id, OLD.state",
         "a finished evaluation",
     )
 

@@ -167,7 +167,12 @@ def test_a_failure_names_the_readers_own_file(
         services.submit_for_label, detector, "1.4.0", split, upload(A_NAME, bad), users["engineer"]
     )
     b = run_tasks(
-        services.submit_for_label, rival_detector, "r1", split, upload("b.json", bad), users["rival"]
+        services.submit_for_label,
+        rival_detector,
+        "r1",
+        split,
+        upload("b.json", bad),
+        users["rival"],
     )
     (b_eval,) = b.evaluations.all()
     assert b_eval.state == "failed" and "b.json" in b_eval.error
