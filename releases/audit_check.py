@@ -9,7 +9,9 @@ or rewritten:
 * every finished evaluation, judgement and release decision has its event;
 * the split named by a split-frozen event still exists with the content hash it had;
 * a release decision still reads as its event recorded it, and so does a judgement
-  (verdict, reasons, the evaluations it saw, its outcomes counted by status);
+  (verdict, reasons, the evaluations it saw, its outcomes counted by status and the
+  digest of every outcome's values; judgements chained before that digest are checked
+  without it);
 * the head file (``id hash`` lines written after each event) names only events that
   exist, with those hashes: a deleted tail or a chain recomputed from some event on
   is caught there even though the remaining chain is consistent.
@@ -42,6 +44,21 @@ CLASS_COLUMNS = (
     "miss_rate",
 )
 SLICE_COLUMNS = ("kind", "name", "class_name", "ap", "images")
+OUTCOME_COLUMNS = (
+    "version_id",
+    "criteria_id",
+    "rule_index",
+    "rule",
+    "split_id",
+    "class_name",
+    "status",
+    "value",
+    "baseline_value",
+    "baseline_id",
+    "low",
+    "high",
+    "detail",
+)
 
 
 def _file_sha256(field_file):
@@ -107,15 +124,21 @@ def result_digests(evaluation_id):
 
 
 def judgement_payload(judgement):
-    """The fields of a judgement that its audit event records."""
+    """The fields of a judgement that its audit event records: verdict, reasons, the
+    evaluations seen, its outcomes counted by status, and ``outcome_values``, the digest
+    of every outcome row (rule, split, class, status, value, baseline value, interval,
+    detail), so an edited value or bound is reported, not only a changed status."""
+    rows = list(Outcome.objects.filter(judgement=judgement).values_list(*OUTCOME_COLUMNS))
     counts = {}
-    for status in Outcome.objects.filter(judgement=judgement).values_list("status", flat=True):
+    for row in rows:
+        status = row[OUTCOME_COLUMNS.index("status")]
         counts[status] = counts.get(status, 0) + 1
     return {
         "verdict": judgement.verdict,
         "reasons": judgement.reasons,
         "evaluations": judgement.evaluations,
         "outcomes": counts,
+        "outcome_values": digest(sorted(rows, key=lambda row: digest(list(row)))),
     }
 
 

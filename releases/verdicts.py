@@ -19,6 +19,7 @@ from django.db import transaction
 from django.utils import timezone
 
 from . import audit, suites
+from .audit_check import judgement_payload
 from .models import AuditEvent, Judgement, ModelVersion, Outcome, PredictionSet, SignOff
 
 log = logging.getLogger(__name__)
@@ -395,9 +396,6 @@ def _record(version, inputs, verdict, reasons, outcomes):
     for outcome in outcomes:
         outcome.judgement = judgement
     Outcome.objects.bulk_create(outcomes)
-    counts = {}
-    for outcome in outcomes:
-        counts[outcome.status] = counts.get(outcome.status, 0) + 1
     audit.record_event(
         AuditEvent.Kind.JUDGED,
         "system",
@@ -405,13 +403,10 @@ def _record(version, inputs, verdict, reasons, outcomes):
         {
             "version": str(version),
             "judgement": judgement.pk,
-            "verdict": verdict,
-            "reasons": reasons,
             "criteria": inputs.criteria.number if inputs.criteria else None,
             "suite": inputs.suite.number if inputs.suite else None,
             "baseline": inputs.baseline.label if inputs.baseline else None,
-            "evaluations": judgement.evaluations,
-            "outcomes": counts,
+            **judgement_payload(judgement),  # re-derived from the rows by verify_audit
         },
     )
     ModelVersion.objects.filter(pk=version.pk).update(judged_at=now)

@@ -342,8 +342,16 @@ EDITS = [
     ("DELETE FROM releases_signoff", "the decision on version {version} is gone"),
     ("UPDATE releases_judgement SET verdict = 'pass'", "no longer reads as recorded (verdict"),
     ("UPDATE releases_judgement SET reasons = '[]'", "no longer reads as recorded (reasons)"),
-    ("UPDATE releases_outcome SET status = 'pass'", "no longer reads as recorded (outcomes)"),
-    ("DELETE FROM releases_outcome", "no longer reads as recorded (outcomes)"),
+    ("UPDATE releases_outcome SET status = 'pass'", "no longer reads as recorded (outcomes,"),
+    ("DELETE FROM releases_outcome", "no longer reads as recorded (outcomes"),
+    # A value or bound edited, the status left alone: only the outcome values show it.
+    ("UPDATE releases_outcome SET value = 0.999", "no longer reads as recorded (outcome_values)"),
+    ("UPDATE releases_outcome SET detail = 'fine'", "(outcome_values)"),
+    (
+        "UPDATE releases_outcome SET rule = '{\"kind\": \"min_value\", \"metric\": \"AP50\", "
+        "\"class\": \"pedestrian\", \"threshold\": 0.1}'",
+        "(outcome_values)",
+    ),
     ("DELETE FROM releases_auditevent WHERE kind = 'judged'", "is not in the chain"),
     (
         "DELETE FROM releases_auditevent WHERE kind = 'rejected'",
