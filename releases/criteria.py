@@ -16,7 +16,7 @@ from django.conf import settings
 from django.core.exceptions import PermissionDenied
 from django.db import transaction
 
-from evaluation.models import BenchmarkSplit, ClassScore, Scorecard, SliceScore
+from evaluation.models import BenchmarkSplit, ClassScore, SliceScore
 from evaluation.services import UploadError, load_records, load_truth_of
 
 from . import audit, selectors
@@ -137,18 +137,11 @@ def current_criteria(detector):
 
 
 def _scorecards(sets, protocol):
-    """{split: Scorecard} of these prediction sets' finished evaluations under ``protocol``."""
-    by_input = {(ps.predictions_id, ps.split_id): ps.split for ps in sets}
-    cards = Scorecard.objects.filter(
-        evaluation__state="done",
-        evaluation__protocol=protocol,
-        evaluation__predictions_id__in={k[0] for k in by_input},
-    ).select_related("evaluation")
-    return {
-        by_input[(c.evaluation.predictions_id, c.evaluation.split_id)]: c
-        for c in cards
-        if (c.evaluation.predictions_id, c.evaluation.split_id) in by_input
-    }
+    """{split: Scorecard} of these prediction sets' own finished evaluations under
+    ``protocol`` (``selectors._scorecards``)."""
+    sets = list(sets)
+    cards = selectors._scorecards(sets, [protocol])
+    return {ps.split: cards[(ps.pk, protocol)] for ps in sets if (ps.pk, protocol) in cards}
 
 
 def _value(card, metric, name, tag):

@@ -18,6 +18,7 @@ from .difficulty import DIFFICULTY_PRESETS, evaluate_levels, level_counts
 from .errors import InputError
 from .evaluate import counts, evaluate
 from .loaders import BOX_POLICIES, detect_format, is_collection, load_predictions, load_truth
+from .loaders.cache import Cache
 from .matching import match
 from .protocols import PRESETS, Protocol, get_protocol, protocol_from_dict
 from .provenance import annotate, differences, protocol_record
@@ -27,6 +28,7 @@ from .version import ENGINE_VERSION
 
 __all__ = [
     "BOX_POLICIES",
+    "Cache",
     "COCO_SUMMARY_KEYS",
     "DIFFICULTY_PRESETS",
     "ENGINE_VERSION",

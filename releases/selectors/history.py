@@ -33,6 +33,9 @@ def history_chart(detector):
         scorecard__evaluation__state="done",
         scorecard__evaluation__protocol=detector.primary_protocol,
         scorecard__evaluation__predictions_id__in={file_id for _, _, file_id in sets},
+        scorecard__evaluation__prediction_sets__in=PredictionSet.objects.current().filter(
+            version__detector=detector
+        ),  # the sets' own evaluations: never another team's scorecard of the same bytes
     ).values_list(
         "scorecard__evaluation__predictions_id",
         "scorecard__evaluation__split_id",

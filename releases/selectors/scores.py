@@ -12,24 +12,31 @@ METRICS = {  # metric key -> (ClassScore field, summary keys tried for the mean)
 def _scorecards(prediction_sets, protocols, *, with_result=False):
     """Finished scorecards of these prediction sets: {(set id, protocol): Scorecard}.
 
-    The full engine result (curves, slices) is large; it is loaded only when asked.
+    Read through each set's own evaluations (``PredictionSet.evaluations``), never by
+    file and split: another team's scorecard of identical bytes is not this set's. The
+    full engine result (curves, slices) is large; it is loaded only when asked.
     """
     from evaluation.models import Scorecard
 
-    by_input = {(ps.predictions_id, ps.split_id): ps for ps in prediction_sets}
-    cards = Scorecard.objects.filter(
+    from ..models import PredictionSet
+
+    links = PredictionSet.evaluations.through.objects.filter(
+        predictionset_id__in=[ps.pk for ps in prediction_sets],
         evaluation__state="done",
         evaluation__protocol__in=protocols,
-        evaluation__predictions_id__in={k[0] for k in by_input},
-        evaluation__split_id__in={k[1] for k in by_input},
-    ).select_related("evaluation")
+    ).values_list("predictionset_id", "evaluation_id")
+    links = list(links)
+    cards = Scorecard.objects.filter(evaluation_id__in={e for _, e in links}).select_related(
+        "evaluation"
+    )
     if not with_result:
         cards = cards.defer("result")
+    by_evaluation = {card.evaluation_id: card for card in cards}
     out = {}
-    for card in cards:
-        ps = by_input.get((card.evaluation.predictions_id, card.evaluation.split_id))
-        if ps is not None:
-            out[(ps.pk, card.protocol)] = card
+    for set_id, evaluation_id in links:
+        card = by_evaluation.get(evaluation_id)
+        if card is not None:
+            out[(set_id, card.protocol)] = card
     return out
 
 

@@ -466,6 +466,46 @@ def test_columnar_cache_round_trip(files, tmp_path):
     assert np.array_equal(p1.boxes, p2.boxes) and np.array_equal(p1.image, p2.image)
 
 
+@pytest.mark.parametrize(
+    "damage, reason",
+    [
+        (lambda path: path.write_bytes(b"PK\x03\x04 cut short"), "is unreadable"),
+        (lambda path: path.write_bytes(path.read_bytes()[:-40]), "is unreadable"),
+        ("scores", "does not match its digest"),
+        ("no digest", "has no digest"),
+    ],
+)
+def test_a_damaged_cache_entry_is_rebuilt_from_its_source(files, tmp_path, damage, reason):
+    """Every entry carries an HMAC of its key and columns; one that is cut short, not
+    an archive, edited (a forged digest under another key) or without a digest is
+    rebuilt from the source file, and ``on_rebuilt`` is told why."""
+    from evaluation.engine.loaders import cache as cache_module
+
+    told = []
+    cache = cache_module.Cache(str(tmp_path / "cache"), b"secret", lambda p, r: told.append(r))
+    truth = load_truth(files.write("split.json", TRUTH))
+    pred_path = files.write("predictions.json", [DET, {**DET, "image_id": 2, "score": 0.7}])
+    original = load_predictions(pred_path, truth, cache_dir=cache)
+    (entry,) = (tmp_path / "cache").iterdir()
+    if callable(damage):
+        damage(entry)
+    else:
+        with np.load(entry) as data:
+            arrays = {name: data[name] for name in data.files if name != "__digest__"}
+        if damage == "scores":
+            arrays["score"] = arrays["score"][::-1].copy()
+            key = entry.name.removesuffix(".npz")
+            arrays["__digest__"] = np.array(cache_module.entry_digest(b"", key, arrays))
+        np.savez(entry, **arrays)
+    again = load_predictions(pred_path, truth, cache_dir=cache)
+    assert np.array_equal(again.score, original.score) and not np.array_equal(
+        again.score, original.score[::-1]
+    )
+    assert len(told) == 1 and told[0].startswith(reason)
+    assert np.array_equal(load_predictions(pred_path, truth, cache_dir=cache).score, again.score)
+    assert len(told) == 1  # the rebuilt entry passes
+
+
 def test_content_hash_ignores_record_order(files):
     data = json.loads(json.dumps(TRUTH))
     data["annotations"].reverse()

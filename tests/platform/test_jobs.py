@@ -339,22 +339,76 @@ def test_a_swapped_truth_file_fails_loudly_even_with_a_cached_copy(
     assert event.subject == f"split:{split.pk}" and event.payload["expected_sha256"] == split.sha256
 
 
-def test_a_tampered_cache_entry_is_not_served(
+def _forge(folder, entry, arrays):
+    """Overwrite a cache entry the way someone who knows the scheme but not the
+    platform's secret would: new columns, digest recomputed with another key."""
+    from evaluation.engine.loaders import cache
+
+    key = entry.removesuffix(".npz")
+    arrays = {k: v for k, v in arrays.items() if k != "__digest__"}
+    arrays["__digest__"] = cache.np.array(cache.entry_digest(b"", key, arrays))
+    cache.np.savez(os.path.join(folder, entry), **arrays)
+
+
+def _entries(folder, column):
+    """Cache entries (file names) holding ``column`` (``score``: predictions)."""
+    found = []
+    for name in sorted(os.listdir(folder)):
+        if name.endswith(".npz"):
+            with engine.loaders.cache.np.load(os.path.join(folder, name)) as data:
+                if column in data.files:
+                    found.append(name)
+    return found
+
+
+def test_a_tampered_truth_cache_entry_is_rebuilt_and_audited(
     version, split, split_truth, users, monkeypatch, settings
 ):
-    """The parsed-split cache entry itself is overwritten with another split's columns:
-    the loaded content no longer hashes to the split's hash, so scoring fails."""
+    """The parsed-split cache entry is overwritten with another split's columns and a
+    digest under another key: the check on load refuses it, the entry is rebuilt from
+    the stored (hashed) truth file, the split's own content is served, and the rebuild
+    is an audit event."""
     evaluation_services.load_truth_of(split)  # fills the cache
     folder = settings.BENCHBOOK_ENGINE_CACHE
     (entry,) = [name for name in os.listdir(folder) if name.endswith(".npz")]
     with open(os.path.join(folder, "other.json"), "w") as f:
         f.write(_half_truth(split_truth))
     other = engine.load_truth(os.path.join(folder, "other.json"))
-    engine.loaders.cache.np.savez(
-        os.path.join(folder, entry), **engine.loaders.cache._to_arrays(other)
+    _forge(folder, entry, engine.loaders.cache._to_arrays(other))
+    truth = evaluation_services.load_truth_of(split)
+    assert truth.content_hash() == split.sha256 and truth.n_boxes == split.box_count
+    event = AuditEvent.objects.get(kind=AuditEvent.Kind.CONTENT_MISMATCH)
+    assert event.subject == "cache:" + entry.removesuffix(".npz")
+    assert "does not match its digest" in event.payload["message"]
+    assert evaluation_services.load_truth_of(split).n_boxes == split.box_count  # rebuilt
+    assert AuditEvent.objects.filter(kind=AuditEvent.Kind.CONTENT_MISMATCH).count() == 1
+
+
+def test_a_tampered_predictions_cache_entry_is_rebuilt(
+    version, split, split_truth, users, monkeypatch, settings
+):
+    """The parsed-predictions entry (filled by the upload's check) gets reversed scores
+    and a forged digest: the worker rebuilds it from the stored file and scores what
+    was uploaded — the same AP as the engine on the file with no cache — and the
+    rebuild is an audit event."""
+    evaluation = _queued(version, split, split_truth, users, monkeypatch)
+    folder = settings.BENCHBOOK_ENGINE_CACHE
+    (entry,) = _entries(folder, "score")
+    with engine.loaders.cache.np.load(os.path.join(folder, entry)) as data:
+        arrays = {name: data[name] for name in data.files}
+    arrays["score"] = 1.0 - arrays["score"]
+    _forge(folder, entry, arrays)
+    evaluation_services.run_evaluation(evaluation.pk, claim="d1")
+    evaluation.refresh_from_db()
+    assert evaluation.state == "done"
+    truth = engine.load_truth(split.truth_file.path)
+    expected = engine.evaluate(
+        truth, engine.load_predictions(evaluation.predictions.file.path, truth), "coco"
     )
-    with pytest.raises(evaluation_services.ContentMismatch, match="split content does not"):
-        evaluation_services.load_truth_of(split)
+    assert Scorecard.objects.get(evaluation=evaluation).summary == expected["summary"]
+    assert AuditEvent.objects.filter(
+        kind=AuditEvent.Kind.CONTENT_MISMATCH, subject="cache:" + entry.removesuffix(".npz")
+    ).exists()
 
 
 def test_a_swapped_predictions_file_fails_loudly(version, split, split_truth, users, monkeypatch):

@@ -348,8 +348,8 @@ EDITS = [
     ("UPDATE releases_outcome SET value = 0.999", "no longer reads as recorded (outcome_values)"),
     ("UPDATE releases_outcome SET detail = 'fine'", "(outcome_values)"),
     (
-        "UPDATE releases_outcome SET rule = '{\"kind\": \"min_value\", \"metric\": \"AP50\", "
-        "\"class\": \"pedestrian\", \"threshold\": 0.1}'",
+        'UPDATE releases_outcome SET rule = \'{"kind": "min_value", "metric": "AP50", '
+        '"class": "pedestrian", "threshold": 0.1}\'',
         "(outcome_values)",
     ),
     ("DELETE FROM releases_auditevent WHERE kind = 'judged'", "is not in the chain"),

@@ -2,11 +2,21 @@
 
 The key is the SHA-256 of the source bytes plus the loading options, so a changed
 file or option is a different entry; an entry is written atomically (temp + rename).
+
+Each entry carries ``__digest__``, an HMAC-SHA256 of its key and of every column (name,
+dtype, shape, bytes) under ``Cache.secret``, checked on every load: an entry edited in
+place — or one written without the digest — is rebuilt from its source, and
+``Cache.on_rebuilt`` is told. Without a secret (the CLI) the digest is keyed by the
+empty string, which still catches corruption and naive edits; the platform passes a
+secret derived from its own, so an entry forged by someone who can write the cache
+folder but not read the settings is caught too.
 """
 
 import dataclasses
 import hashlib
+import hmac
 import json
+import logging
 import os
 import tempfile
 
@@ -16,6 +26,31 @@ from ..data import GroundTruth, Predictions
 
 _TYPES = {"truth": GroundTruth, "predictions": Predictions}
 _BLOCK = 1 << 20
+_DIGEST = "__digest__"
+log = logging.getLogger(__name__)
+
+
+@dataclasses.dataclass(frozen=True)
+class Cache:
+    """Where entries live, the secret their digests are keyed with, and who is told
+    (``on_rebuilt(path, reason)``) when an entry failed its check and was rebuilt."""
+
+    directory: str
+    secret: bytes = b""
+    on_rebuilt: object = None
+
+
+def entry_digest(secret, key, arrays):
+    """HMAC-SHA256 under ``secret`` of the entry's key and its columns, in name order
+    (RFC 2104; each column as name, dtype, shape and raw bytes)."""
+    mac = hmac.new(secret, key.encode(), hashlib.sha256)
+    for name in sorted(arrays):
+        if name == _DIGEST:
+            continue
+        array = np.ascontiguousarray(arrays[name])
+        mac.update(f"|{name}|{array.dtype.str}|{array.shape}|".encode())
+        mac.update(array.data if array.size else b"")
+    return mac.hexdigest()
 
 
 def file_sha256(path):
@@ -63,9 +98,9 @@ def _to_arrays(obj):
     return arrays
 
 
-def _from_arrays(kind, data):
-    meta = json.loads(str(data["__meta__"]))
-    values = {name: data[name] for name in data.files if name != "__meta__"}
+def _from_arrays(kind, arrays):
+    meta = json.loads(str(arrays["__meta__"]))
+    values = {name: value for name, value in arrays.items() if name != "__meta__"}
     for name, value in meta.items():
         if name == "image_tags":
             value = tuple(tuple(t) for t in value)
@@ -76,17 +111,44 @@ def _from_arrays(kind, data):
 
 
 def cached(cache_dir, sources, options, build, kind):
-    """``build()`` once per distinct input; later calls load the stored columns."""
+    """``build()`` once per distinct input; later calls load the stored columns after
+    checking their digest (a failed check rebuilds the entry). ``cache_dir``: a folder
+    name, a ``Cache``, or None for no cache."""
     if cache_dir is None:
         return build()
-    os.makedirs(cache_dir, exist_ok=True)
-    path = os.path.join(cache_dir, cache_key(sources, options) + ".npz")
+    cache = cache_dir if isinstance(cache_dir, Cache) else Cache(str(cache_dir))
+    os.makedirs(cache.directory, exist_ok=True)
+    key = cache_key(sources, options)
+    path = os.path.join(cache.directory, key + ".npz")
     if os.path.exists(path):
-        with np.load(path, allow_pickle=False) as data:
-            return _from_arrays(kind, data)
+        reason = _load_checked(cache, key, path, kind)
+        if not isinstance(reason, str):
+            return reason
+        log.warning("cache entry %s %s; rebuilt from its source", path, reason)
+        if cache.on_rebuilt is not None:
+            cache.on_rebuilt(path, reason)
     obj = build()
-    fd, tmp = tempfile.mkstemp(dir=cache_dir, suffix=".npz")
+    arrays = _to_arrays(obj)
+    arrays[_DIGEST] = np.array(entry_digest(cache.secret, key, arrays))
+    fd, tmp = tempfile.mkstemp(dir=cache.directory, suffix=".npz")
     with os.fdopen(fd, "wb") as f:
-        np.savez(f, **_to_arrays(obj))
+        np.savez(f, **arrays)
     os.replace(tmp, path)
     return obj
+
+
+def _load_checked(cache, key, path, kind):
+    """The entry's object, or a string saying why it cannot be trusted."""
+    try:
+        with np.load(path, allow_pickle=False) as data:
+            arrays = {name: data[name] for name in data.files}
+    except Exception as e:  # noqa: BLE001 - damage shows as zip, zlib, format or OS errors
+        return f"is unreadable ({type(e).__name__}: {e})"
+    if _DIGEST not in arrays:
+        return "has no digest"
+    if not hmac.compare_digest(str(arrays[_DIGEST]), entry_digest(cache.secret, key, arrays)):
+        return "does not match its digest (changed after it was written)"
+    try:
+        return _from_arrays(kind, {k: v for k, v in arrays.items() if k != _DIGEST})
+    except (KeyError, TypeError, ValueError) as e:
+        return f"does not hold {kind} columns ({e})"
