@@ -212,12 +212,21 @@ CELERY_BEAT_SCHEDULE = {
         "schedule": BENCHBOOK_SWEEP_SECONDS,
     },
     "requeue-lost-judging": {"task": "releases.tasks.sweep", "schedule": 60.0},
+    # The full audit verification the audit page shows (releases/audit_check.py).
+    "verify-audit-trail": {
+        "task": "releases.tasks.verify_audit",
+        "schedule": float(os.environ.get("BENCHBOOK_AUDIT_VERIFY_SECONDS", 3600)),
+    },
 }
 
 # After each audit event, "id hash" is appended here (a file outside the database, on
 # storage the application cannot rewrite, or shipped to an external log): the copy of
 # the chain's head that ``verify_audit --head`` checks. Unset: the log line only.
 BENCHBOOK_AUDIT_HEAD_FILE = os.environ.get("BENCHBOOK_AUDIT_HEAD_FILE") or None
+# PostgreSQL: the role the web processes and workers log in as (owns nothing). Set it
+# where migrate runs (as the owner) and every migrate ends by granting that role its
+# privileges on every table, new ones included (releases/db_roles.py).
+BENCHBOOK_DB_APP_ROLE = os.environ.get("BENCHBOOK_DB_APP_ROLE", "")
 
 # Notifications (releases/notify.py) are their own task, queued after a judgement: one
 # webhook POST per run with a short timeout, later attempts queued with a countdown, so a

@@ -43,6 +43,7 @@ urlpatterns = [
         name="records-download",
     ),
     path("audit/", views.audit_trail, name="audit"),
+    path("audit/verify/", views.verify_audit, name="verify-audit"),
     path("account/tokens/", views.api_tokens, name="tokens"),
     path("splits/<int:split_id>/", views.split, name="split"),
     path("splits/<int:split_id>/images/", views.split_images_upload, name="split-images"),

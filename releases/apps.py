@@ -17,6 +17,9 @@ class ReleasesConfig(AppConfig):
 
     def ready(self):
         post_migrate.connect(_reinstall_triggers, sender=self, dispatch_uid="releases-triggers")
+        from .db_roles import grant_after_migrate
+
+        post_migrate.connect(grant_after_migrate, sender=self, dispatch_uid="releases-app-role")
         from evaluation import signals as evaluation_signals
 
         from . import signals

@@ -158,6 +158,8 @@ class Report:
     problems: list = field(default_factory=list)
     notes: list = field(default_factory=list)
     results_checked: int = 0
+    judgements_checked: int = 0
+    decisions_checked: int = 0
 
     @property
     def ok(self):
@@ -224,6 +226,7 @@ def _check_rows(report):
                 f"the decision on version {sign_off.version_id} is not in the chain"
             )
             continue
+        report.decisions_checked += 1
         now = decision_payload(sign_off)
         changed = [k for k in now if k in payload and digest(payload[k]) != digest(now[k])]
         if changed:
@@ -238,6 +241,7 @@ def _check_rows(report):
         if pk is None:
             report.problems.append(f"judgement {judgement.pk} is not in the chain")
             continue
+        report.judgements_checked += 1
         now = judgement_payload(judgement)
         changed = [k for k in now if k in payload and digest(payload[k]) != digest(now[k])]
         if changed:
@@ -251,6 +255,65 @@ def _check_rows(report):
         report.notes.append(
             f"{legacy} evaluation event(s) from before result digests: results not re-derived"
         )
+
+
+def read_head_file(path):
+    """The head file's lines; OSError if it cannot be read."""
+    with open(path, encoding="utf-8") as f:
+        return f.readlines()
+
+
+def verify_and_record(checked_by, head_file=None):
+    """Run the full ``check`` (with ``head_file``'s lines when given: by default the
+    configured ``BENCHBOOK_AUDIT_HEAD_FILE``) and keep its outcome as an
+    ``AuditVerification`` — what the audit page shows. A head file that cannot be read
+    is a finding. Returns ``(report, verification)``."""
+    import time
+
+    from django.conf import settings
+    from django.utils import timezone
+
+    from .models import AuditVerification
+
+    head_file = head_file or getattr(settings, "BENCHBOOK_AUDIT_HEAD_FILE", None) or ""
+    started = time.monotonic()
+    lines, unreadable = None, None
+    if head_file:
+        try:
+            lines = read_head_file(head_file)
+        except OSError as e:
+            unreadable = f"cannot read the head file {head_file}: {e.strerror}"
+    report = check(lines)
+    if unreadable:
+        report.problems.append(unreadable)
+    verification = AuditVerification.objects.create(
+        checked_at=timezone.now(),
+        checked_by=checked_by,
+        seconds=round(time.monotonic() - started, 3),
+        ok=report.ok,
+        events=report.count,
+        head=report.head,
+        broken=report.broken,
+        results=report.results_checked,
+        judgements=report.judgements_checked,
+        decisions=report.decisions_checked,
+        head_file=head_file if lines is not None else "",
+        problems=report.problems,
+        notes=report.notes,
+    )
+    return report, verification
+
+
+def verify_now(user):
+    """The audit page's button: reviewers (who read every team, as the findings name
+    any team's rows) run the full verification; anyone else is refused."""
+    from django.core.exceptions import PermissionDenied
+
+    from .selectors import reads_all_teams
+
+    if not reads_all_teams(user):
+        raise PermissionDenied("only reviewers can run the full verification")
+    return verify_and_record(user.get_username())
 
 
 def _check_head(report, lines):

@@ -41,3 +41,27 @@ def grant_statements(connection, role):
         statements.append(f"GRANT {privileges_of(table)} ON {quote(table)} TO {name}")
     statements.append(f"GRANT USAGE, SELECT ON ALL SEQUENCES IN SCHEMA public TO {name}")
     return statements
+
+
+def grant(connection, role):
+    """Run ``grant_statements`` in one transaction; the number of tables covered."""
+    from django.db import transaction
+
+    statements = grant_statements(connection, role)
+    with transaction.atomic(using=connection.alias), connection.cursor() as cursor:
+        for statement in statements:
+            cursor.execute(statement)
+    return len(statements) - 4
+
+
+def grant_after_migrate(sender, using, **kwargs):
+    """``post_migrate``: with ``BENCHBOOK_DB_APP_ROLE`` set (PostgreSQL), every migrate
+    ends by granting that role its privileges again, so a table a new migration created
+    is never left out (or open) until someone remembers ``grant_app_role``."""
+    from django.conf import settings
+    from django.db import connections
+
+    role = getattr(settings, "BENCHBOOK_DB_APP_ROLE", "")
+    connection = connections[using]
+    if role and connection.vendor == "postgresql":
+        grant(connection, role)

@@ -453,3 +453,6 @@ class ComparisonInterval(models.Model):
 
     def __str__(self):
         return f"Δ {self.candidate} − {self.reference} on {self.split} ({self.state})"
+
+
+from .ops_models import AuditVerification, Notification  # noqa: E402, F401  (models of this app)

@@ -80,3 +80,14 @@ def compare(interval_id):
     from . import comparisons
 
     comparisons.compute(interval_id)
+
+
+@shared_task
+def verify_audit():
+    """The full audit verification on a schedule (beat), kept for the audit page."""
+    from .audit_check import verify_and_record
+
+    report, verification = verify_and_record("schedule")
+    if not report.ok:
+        log.error("audit verification: %d finding(s)", len(report.problems))
+    return verification.pk

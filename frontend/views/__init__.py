@@ -1,6 +1,6 @@
 """Pages, one module per page. Views parse input, call one service or selector, and render."""
 
-from .audit import audit_trail
+from .audit import audit_trail, verify_audit
 from .compare import compare, compare_intervals
 from .detector import detector, new_detector
 from .images import confusion, image_detail, image_file, image_list
@@ -35,6 +35,7 @@ __all__ = [
     "split_list",
     "suite",
     "upload_predictions",
+    "verify_audit",
     "version",
     "webhook",
 ]

@@ -23,6 +23,7 @@ from .access import (  # noqa: F401
 from .audit import (  # noqa: F401
     audit_trail,
     detector_choices,
+    last_verification,
     spec_history,
     subject_links,
 )

@@ -72,6 +72,24 @@ def audit_trail(
     }
 
 
+def last_verification(user):
+    """The newest full verification (``audit_check.verify_and_record``) for the audit
+    page: ``{"verification", "details", "can_run", "head_file"}``. Findings name any
+    team's rows, so only reviewers see them (``details``) and may run a new one."""
+    from django.conf import settings
+
+    from ..models import AuditVerification
+    from .access import reads_all_teams
+
+    reviewer = user.is_authenticated and reads_all_teams(user)
+    return {
+        "verification": AuditVerification.objects.order_by("-checked_at", "-pk").first(),
+        "details": reviewer,
+        "can_run": reviewer,
+        "head_file": getattr(settings, "BENCHBOOK_AUDIT_HEAD_FILE", None) or "",
+    }
+
+
 def _ids(events, prefix):
     out = set()
     for e in events:

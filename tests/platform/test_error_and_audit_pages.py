@@ -2,6 +2,7 @@
 events a reader may see, filtered, with the chain's verification status."""
 
 import json
+import os
 
 import pytest
 from django.db import connection
@@ -91,7 +92,7 @@ def test_audit_page_filters_and_links(client, detector, trail, users):
     client.force_login(users["reviewer"])
     everything = client.get("/audit/")
     html = everything.content.decode()
-    assert everything.status_code == 200 and "verified" in html
+    assert everything.status_code == 200 and "not run yet" in html
     assert _rows(everything) == list(AuditEvent.objects.order_by("-id"))  # reviewers read all
     assert f'href="/versions/{version.pk}/"' in html and 'href="/criteria/' not in html
     assert f'href="/detectors/{detector.pk}/criteria/"' in html  # a criteria change links there
@@ -143,7 +144,57 @@ def test_audit_page_shows_a_broken_chain(client, trail, users):
     audit_triggers.install(connection)
     client.force_login(users["reviewer"])
     html = client.get("/audit/").content.decode()
-    assert "broken" in html and f"Event #{first.pk} no longer matches" in html
+    assert "not run yet" in html  # the page itself only reads the last verification
+    html = client.post("/audit/verify/", follow=True).content.decode()
+    assert "finding" in html and f"broken at event #{first.pk}" in html
+
+
+def test_the_audit_page_shows_the_full_verification(client, trail, users, settings, tmp_path):
+    """The page shows the last full verification (the function verify_audit runs):
+    what it checked and when. A score edited by the owner leaves the chain intact —
+    the old chain-only check said "verified" — but the result no longer matches its
+    digest, and the page says so. Findings are for reviewers, who alone run it."""
+    from evaluation.models import ClassScore, Evaluation
+    from releases.models import Judgement
+
+    from .conftest import triggers_off
+
+    client.force_login(users["reviewer"])
+    html = client.post("/audit/verify/", follow=True).content.decode()
+    count = AuditEvent.objects.count()
+    assert "no findings" in html and f"{count} events re-hashed" in html
+    assert "by reviewer" in html and "No head file checked" in html
+    finished = Evaluation.objects.filter(state__in=["done", "failed"]).count()
+    assert f"{finished} finished evaluations re-derived from their rows" in html
+    assert f"{Judgement.objects.count()} judgements (verdict, reasons, outcome values)" in html
+    with triggers_off():
+        ClassScore.objects.filter(class_name="pedestrian").update(ap=0.999)
+    assert "no findings" in client.get("/audit/").content.decode()  # as of the last run
+    html = client.post("/audit/verify/", follow=True).content.decode()
+    assert 'id="verification-findings"' in html and "no longer matches its digest (classes)" in html
+
+    head = tmp_path / "head.log"
+    head.write_text(
+        "".join(f"{pk} {h}\n" for pk, h in AuditEvent.objects.values_list("pk", "hash"))
+    )
+    settings.BENCHBOOK_AUDIT_HEAD_FILE = str(head)
+    html = client.post("/audit/verify/", follow=True).content.decode()
+    assert f"Head file <code>{head}</code>" in html
+
+    client.force_login(users["engineer"])  # a member: no details, no button
+    html = client.get("/audit/").content.decode()
+    assert "a reviewer can read them here" in html and "(classes)" not in html
+    assert 'id="verify-now"' not in html
+    assert client.post("/audit/verify/").status_code == 403
+
+
+def test_the_command_keeps_its_verification_for_the_page(client, trail, users):
+    from django.core.management import call_command
+
+    call_command("verify_audit", stdout=open(os.devnull, "w"))
+    client.force_login(users["engineer"])
+    html = client.get("/audit/").content.decode()
+    assert "by verify_audit command" in html and "no findings" in html
 
 
 def test_criteria_history_shows_each_version_and_its_diff(client, detector, trail, users):

@@ -234,6 +234,37 @@ def test_the_application_role_cannot_change_empty_or_unguard_protected_tables(ap
     assert set(refused.values()) == {"InsufficientPrivilege"}, refused
 
 
+def test_migrate_grants_the_application_role_on_a_new_table(app_role, settings):
+    """With ``BENCHBOOK_DB_APP_ROLE`` set, every ``migrate`` ends by granting the role
+    its privileges again: a table that appeared since the last grant (as a new migration
+    creates one) is usable by the role at once, and the append-only tables stay closed
+    to it. Without the setting the new table stays out of reach (the old failure)."""
+    import psycopg
+    from django.core.management import call_command
+
+    role, password = app_role
+    with connection.cursor() as cursor:
+        cursor.execute("CREATE TABLE benchbook_probe (id serial PRIMARY KEY, note text)")
+    try:
+        settings.BENCHBOOK_DB_APP_ROLE = ""
+        call_command("migrate", verbosity=0)
+        with _connect_as(role, password) as conn:
+            with pytest.raises(psycopg.errors.InsufficientPrivilege):
+                conn.execute("INSERT INTO benchbook_probe (note) VALUES ('before')")
+        settings.BENCHBOOK_DB_APP_ROLE = role
+        call_command("migrate", verbosity=0)
+        with _connect_as(role, password) as conn:
+            conn.execute("INSERT INTO benchbook_probe (note) VALUES ('after')")
+            assert conn.execute("SELECT note FROM benchbook_probe").fetchall() == [("after",)]
+            with pytest.raises(psycopg.errors.InsufficientPrivilege):
+                conn.execute("TRUNCATE releases_auditevent CASCADE")
+            with pytest.raises(psycopg.errors.InsufficientPrivilege):
+                conn.execute("DELETE FROM evaluation_scorecard")
+    finally:
+        with connection.cursor() as cursor:
+            cursor.execute("DROP TABLE benchbook_probe")
+
+
 def _count(table):
     with connection.cursor() as cursor:
         cursor.execute(f"SELECT count(*) FROM {table}")
@@ -311,7 +342,11 @@ def test_every_finished_result_is_chained_with_the_digests_of_its_rows(decided):
         }
     ok, out = _verify()
     count = AuditEvent.objects.count()
-    assert ok and f"audit chain intact: {count} events" in out and "2 results re-derived" in out
+    assert (
+        ok
+        and f"audit chain intact: {count} events" in out
+        and "2 results, 1 judgements and 1 decisions re-derived" in out
+    )
 
 
 def _pedestrian(field="ap"):

@@ -1,14 +1,14 @@
 from django.core.management.base import BaseCommand, CommandError
-from django.db import connection, transaction
+from django.db import connection
 
-from releases.db_roles import grant_statements
+from releases.db_roles import grant, grant_statements
 
 
 class Command(BaseCommand):
     help = (
         "Give the application's PostgreSQL role (one that owns nothing) its privileges: "
         "read everything, insert everywhere, never change the append-only tables. Run as "
-        "the owner, after every migrate."
+        "the owner; with BENCHBOOK_DB_APP_ROLE set, migrate does it at its end."
     )
 
     def add_arguments(self, parser):
@@ -22,11 +22,7 @@ class Command(BaseCommand):
             raise CommandError(
                 "roles are a PostgreSQL matter; this database is " + connection.vendor
             )
-        statements = grant_statements(connection, role)
         if options["print"]:
-            self.stdout.write(";\n".join(statements) + ";")
+            self.stdout.write(";\n".join(grant_statements(connection, role)) + ";")
             return
-        with transaction.atomic(), connection.cursor() as cursor:
-            for statement in statements:
-                cursor.execute(statement)
-        self.stdout.write(f"{role}: privileges granted on {len(statements) - 4} tables")
+        self.stdout.write(f"{role}: privileges granted on {grant(connection, role)} tables")
