@@ -236,6 +236,13 @@ BENCHBOOK_WEBHOOK_ATTEMPTS = 4
 BENCHBOOK_WEBHOOK_BACKOFF_SECONDS = 2.0
 BENCHBOOK_WEBHOOK_TIMEOUT_SECONDS = float(os.environ.get("BENCHBOOK_WEBHOOK_TIMEOUT_SECONDS", 5))
 BENCHBOOK_NOTIFY_QUEUE = os.environ.get("BENCHBOOK_NOTIFY_QUEUE", "")
+# Each notification is recorded (releases.Notification); one still pending this long
+# after it was due (its message lost, its worker killed) is sent again by the sweep.
+BENCHBOOK_NOTIFY_GRACE_SECONDS = float(os.environ.get("BENCHBOOK_NOTIFY_GRACE_SECONDS", 60))
+CELERY_BEAT_SCHEDULE["resend-notifications"] = {
+    "task": "releases.tasks.resend_notifications",
+    "schedule": 60.0,
+}
 if BENCHBOOK_NOTIFY_QUEUE:
     CELERY_TASK_ROUTES = {"releases.tasks.notify": {"queue": BENCHBOOK_NOTIFY_QUEUE}}
 DEFAULT_FROM_EMAIL = os.environ.get("DEFAULT_FROM_EMAIL", "benchbook@localhost")

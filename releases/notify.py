@@ -1,5 +1,13 @@
-"""Telling people about a judgement: e-mail to the team's leads, and a signed webhook."""
+"""Telling people about a judgement: e-mail to the team's leads, and a signed webhook.
 
+Every judgement gets a ``Notification`` row in its own transaction (``record``); the
+task ``tasks.notify`` delivers it (``deliver``), one webhook attempt per run, and the
+beat sweep (``resend_due``) sends again whatever is still pending past its time — a
+message the broker lost or a worker killed mid-delivery — until
+``BENCHBOOK_WEBHOOK_ATTEMPTS`` attempts were made; then it is ``failed`` with the reason.
+"""
+
+import datetime
 import hashlib
 import hmac
 import json
@@ -12,6 +20,8 @@ from django.conf import settings
 from django.core.exceptions import PermissionDenied, ValidationError
 from django.core.mail import send_mail
 from django.core.validators import URLValidator
+from django.db.models import F, Q
+from django.utils import timezone
 
 from . import selectors
 from .models import Membership, Outcome
@@ -149,24 +159,88 @@ def post_webhook(detector, body, *, attempts=None, delay=None):
     raise WebhookError(f"webhook {detector.webhook_url} failed after {attempts} attempts: {last}")
 
 
-def deliver(version, attempt=1):
-    """One run of the notification task: e-mail the leads (first run only) and try the
-    webhook once. Returns ``{"emails", "webhook", "retry_in"}``: ``retry_in`` is the
-    countdown for the next attempt, or None when delivered, not configured or given up
-    (then logged)."""
-    body = payload(version)
-    sent = email_leads(version, body) if attempt == 1 else 0
-    if not version.detector.webhook_url:
-        return {"emails": sent, "webhook": None, "retry_in": None}
+def _seconds(value):
+    return datetime.timedelta(seconds=value)
+
+
+def record(version, judgement):
+    """Inside the judgement's transaction: the notification to deliver. Its first
+    message is queued on commit; if that message is lost, the sweep sends it again
+    once ``BENCHBOOK_NOTIFY_GRACE_SECONDS`` have passed."""
+    from .models import Notification
+
+    return Notification.objects.create(
+        version=version,
+        judgement=judgement,
+        due_at=timezone.now() + _seconds(settings.BENCHBOOK_NOTIFY_GRACE_SECONDS),
+    )
+
+
+def _claim(notification_id):
+    """Take one attempt (atomically): a pending notification that was never tried, or
+    whose next attempt is due. The attempt holds it for the task's time limit, so a
+    duplicate message finds it not due and drops out."""
+    from .models import Notification
+
+    now = timezone.now()
+    hold = 4 * settings.BENCHBOOK_WEBHOOK_TIMEOUT_SECONDS + 30  # past the task's time limit
+    claimed = (
+        Notification.objects.filter(pk=notification_id, state=Notification.State.PENDING)
+        .filter(Q(attempts=0) | Q(due_at__lte=now + _seconds(1)))
+        .update(attempts=F("attempts") + 1, due_at=now + _seconds(hold))
+    )
+    if not claimed:
+        return None
+    return Notification.objects.select_related("version__detector", "judgement").get(
+        pk=notification_id
+    )
+
+
+def deliver(notification_id):
+    """One attempt at a notification (the task's body): e-mail the leads (once), then
+    the webhook once. Returns ``{"state", "attempt", "retry_in"}`` (``retry_in``: the
+    countdown for the next attempt), or None when there was nothing to do (delivered,
+    given up, or another attempt holds it)."""
+    from .models import Notification
+
+    notification = _claim(notification_id)
+    if notification is None:
+        return None
+    version, attempt = notification.version, notification.attempts
+    rows = Notification.objects.filter(pk=notification.pk)
     try:
-        post_once(version.detector, body)
-        return {"emails": sent, "webhook": attempt, "retry_in": None}
-    except WebhookError as e:
+        body = payload(version)  # the current verdict, as main reads it
+        if not notification.emailed:
+            email_leads(version, body)
+            rows.update(emailed=True)
+        if version.detector.webhook_url:
+            post_once(version.detector, body)
+    except Exception as e:  # noqa: BLE001 - any failure is this attempt's reason
+        error = str(e) if isinstance(e, WebhookError) else f"{type(e).__name__}: {e}"
         if attempt < settings.BENCHBOOK_WEBHOOK_ATTEMPTS:
-            log.warning("%s (attempt %d); trying again later", e, attempt)
-            return {"emails": sent, "webhook": str(e), "retry_in": backoff(attempt)}
-        log.error("%s; gave up after %d attempts", e, attempt)
-        return {"emails": sent, "webhook": str(e), "retry_in": None}
+            log.warning(
+                "notification %s: %s (attempt %d); trying again", notification.pk, error, attempt
+            )
+            retry_in = backoff(attempt)
+            rows.update(last_error=error, due_at=timezone.now() + _seconds(retry_in))
+            return {"state": "pending", "attempt": attempt, "retry_in": retry_in}
+        log.error("notification %s: %s; gave up after %d attempts", notification.pk, error, attempt)
+        rows.update(state=Notification.State.FAILED, last_error=error, finished_at=timezone.now())
+        return {"state": "failed", "attempt": attempt, "retry_in": None}
+    rows.update(state=Notification.State.SENT, finished_at=timezone.now())
+    return {"state": "sent", "attempt": attempt, "retry_in": None}
+
+
+def resend_due():
+    """The beat sweep: ids of pending notifications whose next attempt is due (their
+    message was lost, or their worker died); the caller queues them again."""
+    from .models import Notification
+
+    return list(
+        Notification.objects.filter(
+            state=Notification.State.PENDING, due_at__lte=timezone.now()
+        ).values_list("pk", flat=True)
+    )
 
 
 def notify(version):

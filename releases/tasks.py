@@ -6,7 +6,6 @@ from celery import shared_task
 from django.conf import settings
 
 from . import notify as notifications
-from .models import ModelVersion
 
 log = logging.getLogger(__name__)
 
@@ -42,11 +41,11 @@ def rejudge(detector_id):
     return version_ids
 
 
-def queue_notification(version_id, attempt=1, countdown=0):
+def queue_notification(notification_id, countdown=0):
     try:
-        notify.apply_async(args=[version_id, attempt], countdown=countdown)
-    except Exception:  # broker down: judging stands, the message is not sent
-        log.exception("could not queue the notification of version %s", version_id)
+        notify.apply_async(args=[notification_id], countdown=countdown)
+    except Exception:  # broker down: the notification stays pending; the sweep resends it
+        log.exception("could not queue notification %s", notification_id)
 
 
 @shared_task(
@@ -54,16 +53,22 @@ def queue_notification(version_id, attempt=1, countdown=0):
     soft_time_limit=4 * settings.BENCHBOOK_WEBHOOK_TIMEOUT_SECONDS + 10,
     time_limit=4 * settings.BENCHBOOK_WEBHOOK_TIMEOUT_SECONDS + 20,
 )
-def notify(version_id, attempt=1):
-    """Tell the team about a version's judgement (``notify.deliver``): one webhook
-    attempt per run; the next one is a new message with a countdown, not a sleep."""
-    version = ModelVersion.objects.select_related("detector").filter(pk=version_id).first()
-    if version is None:
-        return None
-    result = notifications.deliver(version, attempt)
-    if result["retry_in"] is not None:
-        queue_notification(version_id, attempt + 1, result["retry_in"])
+def notify(notification_id):
+    """One attempt at a recorded notification (``notify.deliver``); the next attempt
+    is a new message with a countdown, not a sleep, and the sweep backs it up."""
+    result = notifications.deliver(notification_id)
+    if result and result["retry_in"] is not None:
+        queue_notification(notification_id, result["retry_in"])
     return result
+
+
+@shared_task
+def resend_notifications():
+    """Beat: queue again every pending notification whose attempt is due."""
+    due = notifications.resend_due()
+    for notification_id in due:
+        queue_notification(notification_id)
+    return due
 
 
 @shared_task

@@ -18,7 +18,7 @@ from dataclasses import dataclass, field
 from django.db import transaction
 from django.utils import timezone
 
-from . import audit, suites
+from . import audit, notify, suites
 from .audit_check import judgement_payload
 from .models import AuditEvent, Judgement, ModelVersion, Outcome, PredictionSet, SignOff
 
@@ -410,13 +410,14 @@ def _record(version, inputs, verdict, reasons, outcomes):
         },
     )
     ModelVersion.objects.filter(pk=version.pk).update(judged_at=now)
-    transaction.on_commit(lambda: _notify(version.pk))
+    notification = notify.record(version, judgement)
+    transaction.on_commit(lambda: _notify(notification.pk))
     return judgement
 
 
-def _notify(version_id):
+def _notify(notification_id):
     """Queue the notification task: a slow e-mail server or webhook never holds judging
-    (nor the worker behind it); a broker that is down loses only the message."""
+    (nor the worker behind it); a lost message is sent again by the sweep."""
     from .tasks import queue_notification
 
-    queue_notification(version_id)
+    queue_notification(notification_id)

@@ -114,3 +114,99 @@ def test_leads_set_and_remove_the_webhook_on_the_criteria_page(client, detector,
     client.post(url, {"url": "", "secret": ""})
     detector.refresh_from_db()
     assert (detector.webhook_url, detector.webhook_secret) == ("", "")
+
+
+# Recorded notifications: a lost message is sent again by the sweep -------------------
+
+
+@pytest.fixture
+def judged_unsent(detector, version, users, receiver, split, split_truth, run_tasks, monkeypatch):
+    """A judged version whose notification message the broker lost (``apply_async``
+    raised): the notification is recorded, pending, never tried."""
+    from releases import services
+    from releases import tasks as release_tasks
+
+    from .conftest import detections_for, upload
+
+    url, handler = receiver
+    users["lead"].email = "lead@larkspur.invalid"
+    users["lead"].save()
+    notify.set_webhook(detector, users["lead"], url, "s3cret-s3cret-s3cret")
+
+    def lost(*args, **kwargs):
+        raise ConnectionError("broker unreachable")
+
+    with monkeypatch.context() as broker_down:
+        broker_down.setattr(release_tasks.notify, "apply_async", lost)
+        run_tasks(
+            services.submit_predictions,
+            version,
+            split,
+            upload("p.json", detections_for(split_truth)),
+            users["engineer"],
+        )
+    return handler
+
+
+def _due_now():
+    from django.utils import timezone
+
+    from releases.models import Notification
+
+    Notification.objects.update(due_at=timezone.now())  # the grace period has passed
+
+
+def test_a_lost_notification_is_delivered_by_the_sweep(judged_unsent, run_tasks):
+    """The judgement's notification is recorded in its transaction; its message is
+    lost, so nothing was sent. The sweep leaves it alone during the grace period (the
+    message may still arrive), then sends it: the webhook gets it once, the leads one
+    e-mail, and it is ``sent`` after one attempt."""
+    from releases import tasks as release_tasks
+    from releases.models import Judgement, Notification
+
+    (notification,) = Notification.objects.all()
+    assert notification.judgement == Judgement.objects.get() and notification.state == "pending"
+    assert notification.attempts == 0 and judged_unsent.received == [] and mail.outbox == []
+    assert run_tasks(release_tasks.resend_notifications.apply).result == []  # not due yet
+    _due_now()
+    assert run_tasks(release_tasks.resend_notifications.apply).result == [notification.pk]
+    notification.refresh_from_db()
+    assert (notification.state, notification.attempts, notification.emailed) == ("sent", 1, True)
+    assert len(judged_unsent.received) == 1 and len(mail.outbox) == 1
+    body = json.loads(judged_unsent.received[0][1])
+    assert body["version"] == "1.4.0" and body["verdict"] == "pass"
+    run_tasks(release_tasks.notify.apply, args=[notification.pk])  # a duplicate message
+    assert run_tasks(release_tasks.resend_notifications.apply).result == []
+    assert len(judged_unsent.received) == 1 and len(mail.outbox) == 1
+
+
+def test_a_failing_webhook_is_tried_a_bounded_number_of_times(judged_unsent, settings):
+    """Each attempt is one POST; a failed one is due again after its back-off; after
+    ``BENCHBOOK_WEBHOOK_ATTEMPTS`` the notification is ``failed`` with the reason. The
+    leads are e-mailed once, however many attempts the webhook takes."""
+    from releases.models import Notification
+
+    judged_unsent.status = 500
+    (notification,) = Notification.objects.all()
+    outcomes = []
+    for _ in range(settings.BENCHBOOK_WEBHOOK_ATTEMPTS + 2):
+        _due_now()
+        outcomes.append(notify.deliver(notification.pk))
+    notification.refresh_from_db()
+    attempts = settings.BENCHBOOK_WEBHOOK_ATTEMPTS
+    assert [o["state"] for o in outcomes[:attempts]] == ["pending"] * (attempts - 1) + ["failed"]
+    assert outcomes[attempts:] == [None, None]  # given up: nothing more is tried
+    assert (notification.state, notification.attempts) == ("failed", attempts)
+    assert notification.last_error.endswith("HTTP 500") and notification.emailed
+    assert len(judged_unsent.received) == attempts and len(mail.outbox) == 1
+
+
+def test_an_attempt_in_progress_is_not_taken_twice(judged_unsent):
+    """A notification being delivered is held until past the task's time limit: a
+    duplicate message, or the sweep, does not start a second attempt meanwhile."""
+    from releases.models import Notification
+
+    (notification,) = Notification.objects.all()
+    assert notify._claim(notification.pk) is not None  # an attempt starts (and hangs)
+    assert notify._claim(notification.pk) is None
+    assert notify.resend_due() == []
