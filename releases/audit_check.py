@@ -186,7 +186,7 @@ def _check_rows(report):
     finished = set(
         Evaluation.objects.filter(state__in=["done", "failed"]).values_list("pk", flat=True)
     )
-    chained, legacy = set(), 0
+    chained, legacy, legacy_judgements = set(), 0, 0
     decided, judged = {}, {}
     fields = ("pk", "kind", "subject", "payload")
     for pk, kind, subject, payload in AuditEvent.objects.order_by("id").values_list(*fields):
@@ -242,6 +242,7 @@ def _check_rows(report):
             report.problems.append(f"judgement {judgement.pk} is not in the chain")
             continue
         report.judgements_checked += 1
+        legacy_judgements += "outcome_values" not in payload
         now = judgement_payload(judgement)
         changed = [k for k in now if k in payload and digest(payload[k]) != digest(now[k])]
         if changed:
@@ -254,6 +255,11 @@ def _check_rows(report):
     if legacy:
         report.notes.append(
             f"{legacy} evaluation event(s) from before result digests: results not re-derived"
+        )
+    if legacy_judgements:
+        report.notes.append(
+            f"{legacy_judgements} judgement event(s) from before outcome digests: outcome "
+            "values not compared (statuses counted only)"
         )
 
 

@@ -457,9 +457,10 @@ def test_the_head_file_gets_every_event(headed):
     assert ok and f"matches {headed}" in out
 
 
-def _rewrite_chain_from(first_id, **payload_changes):
+def _rewrite_chain_from(first_id, drop=(), **payload_changes):
     """What an owner who knows the scheme does: edit an event, then recompute every
-    digest and hash from that event on, so that the chain verifies again."""
+    digest and hash from that event on, so that the chain verifies again. ``drop``:
+    keys removed from every payload from there on."""
     import json
 
     from releases.audit import GENESIS, digest, link_hash
@@ -470,6 +471,7 @@ def _rewrite_chain_from(first_id, **payload_changes):
     for event in events:
         if event.pk >= first_id:
             payload = {**event.payload, **(payload_changes if event.pk == first_id else {})}
+            payload = {k: v for k, v in payload.items() if k not in drop}
             payload_digest = digest(payload)
             new_hash = link_hash(
                 previous, event.kind, event.actor, event.created_at, event.subject, payload_digest
@@ -490,13 +492,23 @@ def _rewrite_chain_from(first_id, **payload_changes):
     _as_owner(*statements)
 
 
+def _chain_only():
+    """``verify_audit`` with no head file configured: what the chain and rows show."""
+    from django.test import override_settings
+
+    with override_settings(BENCHBOOK_AUDIT_HEAD_FILE=None):
+        return _verify()
+
+
 @pytest.mark.django_db
 def test_a_deleted_tail_is_caught_by_the_head_file(headed):
     last = AuditEvent.objects.order_by("-id").first()
     assert last.kind == "predictions uploaded"
     _as_owner(f"DELETE FROM releases_auditevent WHERE id = {last.pk}")
-    assert _verify()[0]  # the rest of the chain is consistent and matches its rows
+    assert _chain_only()[0]  # the rest of the chain is consistent and matches its rows
     ok, text = _verify("--head", str(headed))
+    assert not ok and f"event #{last.pk} is missing from the database" in text
+    ok, text = _verify()  # the configured head file is checked by default
     assert not ok and f"event #{last.pk} is missing from the database" in text
 
 
@@ -507,7 +519,7 @@ def test_a_rewritten_chain_is_caught_by_the_head_file(headed, decided):
     decision = AuditEvent.objects.get(kind="rejected")
     _as_owner("UPDATE releases_signoff SET comment = 'all good'")
     _rewrite_chain_from(decision.pk, comment="all good")
-    assert _verify()[0]
+    assert _chain_only()[0]
     ok, text = _verify("--head", str(headed))
     assert not ok and f"event #{decision.pk} has another hash in the database" in text
 
@@ -553,3 +565,16 @@ def test_the_truncated_tables_are_reported(head_file, committed):
     assert not ok and "is finished but not in the chain" in text
     ok, text = _verify("--head", str(head_file))
     assert not ok and "is missing from the database" in text
+
+
+@pytest.mark.django_db
+def test_events_from_before_the_digests_are_a_note_not_a_finding(decided):
+    """Events written before result and outcome digests existed (planted by dropping
+    the keys, chain recomputed) are checked as far as they go and named in a note."""
+    _rewrite_chain_from(
+        AuditEvent.objects.order_by("id").first().pk, drop=("result", "outcome_values")
+    )
+    ok, out = _verify()
+    assert ok, out
+    assert "note: 2 evaluation event(s) from before result digests" in out
+    assert "note: 1 judgement event(s) from before outcome digests" in out
