@@ -183,3 +183,38 @@ def test_no_table_overflows_or_overlaps_at_1280_and_390(page, live_server, detec
                 found[f"{name}@{width}"] = problems
             shot(page, f"layout-{name}-{width}")
     assert not found, json.dumps(found, indent=1)
+
+
+def test_the_audit_verification_reads_and_fits(browser, live_server, users, demo_like, flushable):
+    """A reviewer runs the full verification from the audit page, once on intact data and
+    once after an owner edited a score: the page says what was checked and when, lists
+    the finding, and fits at 1280 and 390 px (screenshots audit-verified-*)."""
+    from evaluation.models import ClassScore
+    from tests.platform.conftest import triggers_off
+
+    context = browser.new_context(viewport={"width": 1280, "height": 900})
+    page = context.new_page()
+    page.goto(f"{live_server.url}/login/")
+    page.fill("#id_username", "reviewer")
+    page.fill("#id_password", "pw-reviewer")
+    page.click("button[type=submit]")
+    page.goto(f"{live_server.url}/audit/")
+    assert "not run yet" in page.inner_text("#chain-status")
+    page.click("#verify-now button")
+    assert "no findings" in page.inner_text("#chain-status")
+    assert "re-hashed" in page.inner_text("#verification-scope")
+    shot(page, "audit-verified-ok-1280")
+    with triggers_off():
+        ClassScore.objects.filter(class_name="pedestrian").update(ap=0.999)
+    page.click("#verify-now button")
+    assert "no longer matches its digest (classes)" in page.inner_text("#verification-findings")
+    found = {}
+    for width, height in WIDTHS.items():
+        page.set_viewport_size({"width": width, "height": height})
+        page.goto(f"{live_server.url}/audit/")
+        problems = page.evaluate(MEASURE)
+        if problems:
+            found[width] = problems
+        shot(page, f"audit-verified-findings-{width}")
+    context.close()
+    assert not found, json.dumps(found, indent=1)

@@ -234,25 +234,26 @@ def test_the_application_role_cannot_change_empty_or_unguard_protected_tables(ap
     assert set(refused.values()) == {"InsufficientPrivilege"}, refused
 
 
-def test_migrate_grants_the_application_role_on_a_new_table(app_role, settings):
+def test_migrate_grants_the_application_role_on_a_new_table(app_role):
     """With ``BENCHBOOK_DB_APP_ROLE`` set, every ``migrate`` ends by granting the role
     its privileges again: a table that appeared since the last grant (as a new migration
     creates one) is usable by the role at once, and the append-only tables stay closed
     to it. Without the setting the new table stays out of reach (the old failure)."""
     import psycopg
     from django.core.management import call_command
+    from django.test import override_settings
 
     role, password = app_role
     with connection.cursor() as cursor:
         cursor.execute("CREATE TABLE benchbook_probe (id serial PRIMARY KEY, note text)")
     try:
-        settings.BENCHBOOK_DB_APP_ROLE = ""
-        call_command("migrate", verbosity=0)
+        with override_settings(BENCHBOOK_DB_APP_ROLE=""):
+            call_command("migrate", verbosity=0)
         with _connect_as(role, password) as conn:
             with pytest.raises(psycopg.errors.InsufficientPrivilege):
                 conn.execute("INSERT INTO benchbook_probe (note) VALUES ('before')")
-        settings.BENCHBOOK_DB_APP_ROLE = role
-        call_command("migrate", verbosity=0)
+        with override_settings(BENCHBOOK_DB_APP_ROLE=role):  # (flush re-sends post_migrate)
+            call_command("migrate", verbosity=0)
         with _connect_as(role, password) as conn:
             conn.execute("INSERT INTO benchbook_probe (note) VALUES ('after')")
             assert conn.execute("SELECT note FROM benchbook_probe").fetchall() == [("after",)]
