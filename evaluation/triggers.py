@@ -34,6 +34,8 @@ FINISHED_COLUMNS = (
     "predictions_id",
     "protocol",
     "box_policy",
+    "scope",
+    "file_name",
 )
 FINISHED = ("done", "failed")
 

@@ -108,6 +108,8 @@ def test_every_append_only_table_is_listed():
         ("finished_at", None),
         ("protocol", "voc07"),
         ("box_policy", "clip"),
+        ("scope", "team:999"),  # would hand it to another team
+        ("file_name", "other.json"),
     ],
 )
 def test_a_finished_evaluation_cannot_change(decided, column, value):

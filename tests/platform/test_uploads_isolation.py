@@ -192,10 +192,11 @@ def test_migration_gives_each_team_its_own_evaluation(twins):
     migration = importlib.import_module("releases.migrations.0015_evaluation_scopes")
     a, b = twins["a"], twins["b"]
     shared = a.evaluations.get(protocol="coco")
-    Evaluation.objects.filter(pk=shared.pk).update(scope="", file_name="")  # as before 0015
-    Evaluation.objects.filter(pk__in=b.evaluations.all()).update(scope="elsewhere")
-    b.evaluations.set([shared])
-    migration.scope_existing(apps, None)
+    with triggers_off():  # planted as before 0015 (which runs before scope is guarded)
+        Evaluation.objects.filter(pk=shared.pk).update(scope="", file_name="")
+        Evaluation.objects.filter(pk__in=b.evaluations.all()).update(scope="elsewhere")
+        b.evaluations.set([shared])
+        migration.scope_existing(apps, None)
     shared.refresh_from_db()
     assert shared.scope == services.evaluation_scope(a.version.detector.team_id)
     assert shared.file_name == A_NAME and list(a.evaluations.filter(protocol="coco")) == [shared]
