@@ -2,11 +2,13 @@ from django.contrib import admin
 
 from .models import (
     AuditEvent,
+    AuditVerification,
     BenchmarkSuite,
     Detector,
     Judgement,
     Membership,
     ModelVersion,
+    Notification,
     Outcome,
     PredictionSet,
     SignOff,
@@ -106,3 +108,17 @@ class AuditEventAdmin(admin.ModelAdmin):
 
     def has_delete_permission(self, request, obj=None):
         return False
+
+
+@admin.register(Notification)
+class NotificationAdmin(ReadOnly):
+    """Delivered by the notification task and its sweep, never edited here."""
+
+    list_display = ["judgement", "version", "state", "attempts", "emailed", "due_at", "last_error"]
+    list_filter = ["state"]
+    list_select_related = ["version__detector", "judgement"]
+
+
+@admin.register(AuditVerification)
+class AuditVerificationAdmin(ReadOnly):
+    list_display = ["checked_at", "checked_by", "ok", "events", "results", "head_file"]

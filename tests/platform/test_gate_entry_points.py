@@ -13,7 +13,14 @@ from rest_framework.test import APIClient
 from releases import criteria, services, suites, verdicts
 from releases import tasks as release_tasks
 from releases.audit import verify_audit
-from releases.models import AuditEvent, BenchmarkSuite, Judgement, Outcome, SignOff
+from releases.models import (
+    AuditEvent,
+    BenchmarkSuite,
+    Judgement,
+    Notification,
+    Outcome,
+    SignOff,
+)
 
 from .conftest import detections_for, in_process, split_dict, upload
 
@@ -81,7 +88,7 @@ def test_the_api_refuses_while_judging_and_without_justification(judging, users)
     assert done.json()["judgement"] == verdicts.verdict_of(judging).judgement.pk
 
 
-@pytest.mark.parametrize("model", [SignOff, Judgement, Outcome, BenchmarkSuite])
+@pytest.mark.parametrize("model", [SignOff, Judgement, Outcome, BenchmarkSuite, Notification])
 def test_the_admin_cannot_add_change_or_delete_decisions(client, judging, users, model):
     from django.contrib.auth import get_user_model
 
