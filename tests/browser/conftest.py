@@ -49,16 +49,22 @@ def browser():
     del os.environ["DJANGO_ALLOW_ASYNC_UNSAFE"]
 
 
-@pytest.fixture
-def page(browser, live_server, users, flushable):
+def signed_in(browser, live_server, username):
+    """A page of a new 1280 px context, signed in as ``username`` (password pw-<name>)."""
     context = browser.new_context(viewport={"width": 1280, "height": 900})
     page = context.new_page()
     page.goto(f"{live_server.url}/login/")
-    page.fill("#id_username", "lead")
-    page.fill("#id_password", "pw-lead")
+    page.fill("#id_username", username)
+    page.fill("#id_password", f"pw-{username}")
     page.click("button[type=submit]")
+    return page
+
+
+@pytest.fixture
+def page(browser, live_server, users, flushable):
+    page = signed_in(browser, live_server, "lead")
     yield page
-    context.close()
+    page.context.close()
 
 
 def shot(page, name):

@@ -15,7 +15,7 @@ from django.utils import timezone
 from evaluation import services as evaluation_services
 from releases import criteria, demo, services, suites, verdicts
 
-from .conftest import BROWSER_MARKS, shot
+from .conftest import BROWSER_MARKS, shot, signed_in
 
 pytestmark = BROWSER_MARKS
 
@@ -192,12 +192,7 @@ def test_the_audit_verification_reads_and_fits(browser, live_server, users, demo
     from evaluation.models import ClassScore
     from tests.platform.conftest import triggers_off
 
-    context = browser.new_context(viewport={"width": 1280, "height": 900})
-    page = context.new_page()
-    page.goto(f"{live_server.url}/login/")
-    page.fill("#id_username", "reviewer")
-    page.fill("#id_password", "pw-reviewer")
-    page.click("button[type=submit]")
+    page = signed_in(browser, live_server, "reviewer")
     page.goto(f"{live_server.url}/audit/")
     assert "not run yet" in page.inner_text("#chain-status")
     page.click("#verify-now button")
@@ -216,5 +211,5 @@ def test_the_audit_verification_reads_and_fits(browser, live_server, users, demo
         if problems:
             found[width] = problems
         shot(page, f"audit-verified-findings-{width}")
-    context.close()
+    page.context.close()
     assert not found, json.dumps(found, indent=1)
