@@ -209,7 +209,7 @@ def deliver(notification_id):
     version, attempt = notification.version, notification.attempts
     rows = Notification.objects.filter(pk=notification.pk)
     try:
-        body = payload(version)  # the current verdict, as main reads it
+        body = payload(version)  # the current verdict, read now (see payload)
         if not notification.emailed:
             email_leads(version, body)
             rows.update(emailed=True)

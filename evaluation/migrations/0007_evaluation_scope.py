@@ -5,7 +5,7 @@ from django.db import migrations, models
 
 class Migration(migrations.Migration):
     dependencies = [
-        ("evaluation", "0005_append_only_results"),
+        ("evaluation", "0006_stored_protocols"),
     ]
 
     operations = [
