@@ -37,7 +37,7 @@ def scope_existing(apps, schema_editor):
 
 class Migration(migrations.Migration):
     dependencies = [
-        ("evaluation", "0007_evaluation_scope"),
+        ("evaluation", "0008_evaluation_scope"),
         ("releases", "0014_append_only_decisions"),
     ]
 

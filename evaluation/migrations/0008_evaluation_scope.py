@@ -5,7 +5,7 @@ from django.db import migrations, models
 
 class Migration(migrations.Migration):
     dependencies = [
-        ("evaluation", "0006_stored_protocols"),
+        ("evaluation", "0007_split_images"),
     ]
 
     operations = [
