@@ -43,9 +43,11 @@ def _inputs(reference, candidate):
     return {split: tuple(pair) for split, pair in pairs.items() if None not in pair}
 
 
-def key_of(reference_set, candidate_set, protocol):
-    """The fields that identify one interval's inputs (files, split, protocol, bootstrap)."""
+def key_of(reference_set, candidate_set, protocol, team_id):
+    """The fields that identify one interval's inputs (team, files, split, protocol,
+    bootstrap)."""
     return {
+        "team_id": team_id,
         "reference_predictions_id": reference_set.predictions_id,
         "candidate_predictions_id": candidate_set.predictions_id,
         "split_id": candidate_set.split_id,
@@ -68,7 +70,7 @@ def request_intervals(reference, candidate, user):
     protocol = reference.detector.primary_protocol
     queued = []
     for ref_set, cand_set in _inputs(reference, candidate).values():
-        key = key_of(ref_set, cand_set, protocol)
+        key = key_of(ref_set, cand_set, protocol, candidate.detector.team_id)
         with transaction.atomic():
             row = ComparisonInterval.objects.select_for_update().filter(**key).first()
             if row is None:

@@ -401,7 +401,9 @@ class ComparisonInterval(models.Model):
     on request for a pair that no judgement covered (``releases/comparisons.py``).
 
     Keyed by the exact inputs: both prediction files, the protocol and the bootstrap
-    settings, so a replaced upload or another seed never reads a stale interval.
+    settings, so a replaced upload or another seed never reads a stale interval; and by
+    the team, so identical bytes of another team never reveal that (or when, or by whom)
+    an interval was computed.
     ``intervals`` is ``{tag or "": {class or "mean": [low, high]}}`` (None where the
     class has no ground truth under that tag).
     """
@@ -413,6 +415,7 @@ class ComparisonInterval(models.Model):
 
     reference = models.ForeignKey(ModelVersion, on_delete=models.PROTECT, related_name="+")
     candidate = models.ForeignKey(ModelVersion, on_delete=models.PROTECT, related_name="+")
+    team = models.ForeignKey(Team, on_delete=models.PROTECT, related_name="+")
     split = models.ForeignKey(
         "evaluation.BenchmarkSplit", on_delete=models.PROTECT, related_name="+"
     )
@@ -439,6 +442,7 @@ class ComparisonInterval(models.Model):
         constraints = [
             models.UniqueConstraint(
                 fields=[
+                    "team",
                     "reference_predictions",
                     "candidate_predictions",
                     "split",

@@ -94,6 +94,7 @@ def _stored_intervals(reference, candidate, pairs, protocol):
         )
     rows = ComparisonInterval.objects.filter(
         match,
+        team_id=candidate.detector.team_id,
         protocol=protocol,
         confidence=CONFIDENCE,
         resamples=django_settings.BENCHBOOK_BOOTSTRAP_RESAMPLES,

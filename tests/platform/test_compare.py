@@ -183,3 +183,51 @@ def test_requests_are_idempotent_scoped_and_retried_after_a_failure(
     monkeypatch.setattr(release_tasks.compare, "delay", in_process(release_tasks.compare))
     run_tasks(client.post, url, pair)
     assert ComparisonInterval.objects.get().state == "done"
+
+
+def test_another_teams_identical_files_do_not_reuse_or_reveal_intervals(
+    client,
+    detector,
+    rival_detector,
+    big_split,
+    users,
+    run_tasks,
+    with_baseline,
+    compute_here,
+):
+    """Issue 12 item 7 (no cross-team leak): intervals are kept per team. Team B
+    comparing versions whose files are byte-identical to team A's pair sees no interval
+    (and no "computed by"), and its own request computes a row of its own."""
+    split, _, detections = big_split
+    pedestrian = CLASSES.index("pedestrian") + 1
+    lost = _lose(detections, pedestrian, 0.6, seed=1)
+    candidate = _candidate(detector, big_split, users, run_tasks, "1.5", lost)
+    comparisons.request_intervals(with_baseline, candidate, users["reviewer"])
+    assert ComparisonInterval.objects.get().team_id == detector.team_id
+
+    rival_versions = []
+    for label, data in (("r1", detections), ("r2", lost)):
+        version = services.create_version(rival_detector, label, users["rival"])
+        run_tasks(
+            services.submit_predictions,
+            version,
+            split,
+            upload(f"{label}.json", data),
+            users["rival"],
+        )
+        rival_versions.append(version)
+    reference, rival_candidate = rival_versions
+    assert rival_candidate.prediction_sets.get().predictions_id == (
+        candidate.prediction_sets.get().predictions_id
+    )
+    client.force_login(users["rival"])
+    url = (
+        f"/detectors/{rival_detector.pk}/compare/"
+        f"?reference={reference.pk}&candidate={rival_candidate.pk}"
+    )
+    html = client.get(url).content.decode()
+    assert "Compute intervals" in html and "sig-regression" not in html
+    assert "reviewer" not in html
+    queued = comparisons.request_intervals(reference, rival_candidate, users["rival"])
+    assert len(queued) == 1 and queued[0].team_id == rival_detector.team_id
+    assert ComparisonInterval.objects.count() == 2
