@@ -15,8 +15,10 @@ each in a fresh process, reading that process's peak resident memory (``ru_maxrs
 * ``late syntax error``: ground truth with a syntax error in its last record, found by
   the same bounded check: flat.
 * ``late type error`` (ground truth): valid JSON with a string id in its last record.
-  It passes the syntax check, so the file is memory-mapped and decoded into typed
-  records up to the error: the mapped pages and the records built count.
+  The syntax check passes each slice of the record arrays on to a typed decode into
+  columns (about 100 bytes per annotation, against ~110 bytes of text); the file is
+  never mapped or decoded whole, so the columns plus one slice count.
+* ``valid`` (ground truth): the same file without the error, loaded: the same bound.
 
 Fails (exit 1) if a truncated file's peak grows by more than 64 MB from the smallest
 to the largest size.
@@ -63,6 +65,7 @@ CASES = {
     ("truth", "late syntax error"): '{"id": 0, "image_id": 1 "category_id": 1}]}\n',
     ("truth", "late type error"): '{"id": "x", "image_id": 1, "category_id": 1, '
     '"bbox": [1, 2, 3, 4]}]}\n',
+    ("truth", "valid"): '{"id": 0, "image_id": 1, "category_id": 1, "bbox": [1, 2, 3, 4]}]}\n',
 }
 
 
@@ -115,7 +118,7 @@ def main(argv=None):
                 outcome, peak = measure(kind, path, truth)
                 os.remove(path)
                 peaks[kind, case, size] = (peak, outcome)
-    print(f"peak RSS MB while rejecting | {' | '.join(f'{s} MB file' for s in args.sizes)}")
+    print(f"peak RSS MB while loading    | {' | '.join(f'{s} MB file' for s in args.sizes)}")
     for kind, case in CASES:
         row = " | ".join(str(peaks[kind, case, s][0]) for s in args.sizes)
         print(f"{kind + ', ' + case:<29}| {row}   ({peaks[kind, case, args.sizes[-1]][1]})")

@@ -6,7 +6,6 @@ slices of a few megabytes, each turned into arrays at once, so a file of million
 detections never exists as Python objects (or as one byte string) all together.
 """
 
-import mmap
 import re
 
 import msgspec
@@ -75,7 +74,7 @@ def _friendly(message):
     return message[:1].lower() + message[1:]
 
 
-def validation_error(path, error, *, top_level_list, base=0):
+def validation_error(path, error, *, top_level_list, base=0, key=""):
     """Turn msgspec's ``... - at `$[3].bbox[2]``` into file / record / field."""
     text = str(error)
     m = _PATH.match(text)
@@ -90,7 +89,7 @@ def validation_error(path, error, *, top_level_list, base=0):
     record, field = "", where.lstrip(".")
     if idx:
         i = int(idx["i"]) + base
-        key = (idx["key"] or "").lstrip(".")
+        key = (idx["key"] or "").lstrip(".") or key
         record = f"record {i}" if top_level_list else f"{key}[{i}]"
         field = idx["rest"].lstrip(".")
     if field_match:
@@ -142,10 +141,13 @@ def int_column(path, values, locate, field):
 def read_truth(path):
     """Decode a COCO-style ground-truth file into plain columns.
 
-    The syntax is checked first in bounded memory (``json_syntax.check``: a few MB
-    at a time), so a malformed or truncated file of any size is rejected without
-    being mapped or decoded; then the file is memory-mapped (never copied whole into
-    memory) and decoded into typed records.
+    One pass, a few MB at a time (``json_syntax.check``): the syntax is checked in
+    bounded memory, and each checked slice of the ``images``, ``annotations``,
+    ``categories`` and ``dont_care`` arrays is decoded into typed records and turned
+    into columns at once (``_Records``). The file is never read, mapped or decoded
+    whole, so memory is bounded by the columns plus one slice, for a rejected file as
+    for an accepted one. Errors are those of a whole-file decode: a syntax error
+    anywhere first, then the first type error in file order.
     """
     with open(path, "rb") as f:
         size = f.seek(0, 2)
@@ -159,10 +161,17 @@ def read_truth(path):
             raise InputError(path, "the file is empty")
         if head.startswith(b"["):
             raise _array_given(path)
-        json_syntax.check(path, f, skip)
-        f.seek(0)
-        with mmap.mmap(f.fileno(), 0, access=mmap.ACCESS_READ) as data:
-            return _truth_columns(path, data)
+        if not _ends_like_an_object(f, size):
+            # Truncated or malformed: its error, found without building any column.
+            json_syntax.check(path, f, skip)
+        records = _Records(path)
+        checker = json_syntax.check(path, f, skip, sink=records)
+        return records.columns(checker)
+
+
+def _ends_like_an_object(f, size):
+    f.seek(max(size - 4096, 0))
+    return f.read().rstrip().endswith(b"}")
 
 
 def _array_given(path):
@@ -173,66 +182,168 @@ def _array_given(path):
     )
 
 
-def _truth_columns(path, data):
-    skip = text_start(path, data[:4])
-    if not data[skip : skip + 4096].strip() and len(data) <= skip + 4096:
-        raise InputError(path, "the file is empty")
-    try:
-        with memoryview(data) as view:
-            dataset = msgspec.json.decode(view[skip:], type=_Dataset)
-    except msgspec.ValidationError as e:
-        if str(e).startswith("Expected `object`, got `array`"):
-            raise _array_given(path) from None
-        raise validation_error(path, e, top_level_list=False) from None
-    except msgspec.DecodeError as e:
-        raise decode_error(path, e, data, skip) from None
-    anns = dataset.annotations
-    images = dataset.images
+class _Outline(msgspec.Struct, gc=False):
+    """The outer object so far, arrays emptied: its type errors before a record's."""
 
-    def at(key):
-        return lambda i: f"{key}[{i}]"
-
-    def size(value):
-        return np.nan if value is None else value
-
-    return {
-        "image_ids": int_column(path, [im.id for im in images], at("images"), "id"),
-        "image_width": np.array([size(im.width) for im in images], np.float64),
-        "image_height": np.array([size(im.height) for im in images], np.float64),
-        "image_tags": [tuple(im.tags) for im in images],
-        "class_ids": int_column(path, [c.id for c in dataset.categories], at("categories"), "id"),
-        "class_names": [c.name for c in dataset.categories],
-        "box_ids": int_column(path, [a.id for a in anns], at("annotations"), "id"),
-        "box_image_ids": int_column(
-            path, [a.image_id for a in anns], at("annotations"), "image_id"
-        ),
-        "box_class_ids": int_column(
-            path, [a.category_id for a in anns], at("annotations"), "category_id"
-        ),
-        "boxes": np.array([a.bbox for a in anns], np.float64).reshape(-1, 4),
-        "box_area": np.array([np.nan if a.area is None else a.area for a in anns], np.float64),
-        "crowd": np.array([bool(a.iscrowd) for a in anns], bool),
-        "difficult": np.array([bool(a.difficult) for a in anns], bool),
-        "ignore": np.zeros(len(anns), bool),
-        **_road_columns(path, anns, dataset.dont_care),
-    }
+    images: list[_Image] = []
+    annotations: list[_Annotation] = []
+    categories: list[_Category] = []
+    dont_care: list[_Region] = []
 
 
-def _road_columns(path, anns, regions):
-    def given(name):
-        return np.array(
-            [np.nan if (v := getattr(a, name)) is None else v for a in anns], np.float64
-        )
+_RECORDS = {
+    "images": list[_Image],
+    "annotations": list[_Annotation],
+    "categories": list[_Category],
+    "dont_care": list[_Region],
+}
+#: Ids out of the int64 range are reported in this order (after any type error).
+_ID_FIELDS = (
+    ("images", "id"),
+    ("categories", "id"),
+    ("annotations", "id"),
+    ("annotations", "image_id"),
+    ("annotations", "category_id"),
+    ("dont_care", "image_id"),
+)
 
-    return {
-        "occlusion": given("occlusion"),
-        "truncation": given("truncation"),
-        "visibility": given("visibility"),
-        "region_image_ids": int_column(
-            path, [r.image_id for r in regions], lambda i: f"dont_care[{i}]", "image_id"
-        ),
-        "regions": np.array([r.bbox for r in regions], np.float64).reshape(-1, 4),
-    }
+
+def _size(value):
+    return np.nan if value is None else value
+
+
+class _Records:
+    """The sink of ``json_syntax.check``: typed slices of the record arrays, turned
+    into columns one slice at a time. The first error is kept (with the outline of
+    the outer object before its array) and raised by ``columns`` once the whole
+    syntax is known to be valid, so a syntax error anywhere still comes first."""
+
+    def __init__(self, path):
+        self.path = path
+        self.parts = {key: [] for key in _RECORDS}
+        self.count = dict.fromkeys(_RECORDS, 0)
+        self.error = None  # (exception, absolute offset of its slice, outline)
+        self.out_of_range = {}  # (key, field) -> first InputError
+
+    def __call__(self, key, records, *, first, piece_at, prefix):
+        if self.error is not None or key not in _RECORDS:
+            return False
+        if first:  # a repeated key replaces the earlier array, as in a whole decode
+            self.parts[key], self.count[key] = [], 0
+            for field_key in [k for k in self.out_of_range if k[0] == key]:
+                del self.out_of_range[field_key]
+        try:
+            decoded = msgspec.json.decode(records, type=_RECORDS[key])
+        except (msgspec.ValidationError, msgspec.DecodeError) as e:
+            self.error = (e, key, self.count[key], piece_at, prefix())
+            self.parts = None  # no more columns: the file is rejected
+            return False
+        self.parts[key].append(getattr(self, key)(decoded, key, self.count[key]))
+        self.count[key] += len(decoded)
+        return True
+
+    def ids(self, values, key, field, base):
+        try:
+            return int_column(self.path, values, lambda i: f"{key}[{base + i}]", field)
+        except InputError as e:
+            self.out_of_range.setdefault((key, field), e)
+            return np.zeros(len(values), np.int64)
+
+    def images(self, images, key, base):
+        return {
+            "image_ids": self.ids([im.id for im in images], key, "id", base),
+            "image_width": np.array([_size(im.width) for im in images], np.float64),
+            "image_height": np.array([_size(im.height) for im in images], np.float64),
+            "image_tags": [tuple(im.tags) for im in images],
+        }
+
+    def categories(self, categories, key, base):
+        return {
+            "class_ids": self.ids([c.id for c in categories], key, "id", base),
+            "class_names": [c.name for c in categories],
+        }
+
+    def annotations(self, anns, key, base):
+        def given(name):
+            return np.array([_size(getattr(a, name)) for a in anns], np.float64)
+
+        return {
+            "box_ids": self.ids([a.id for a in anns], key, "id", base),
+            "box_image_ids": self.ids([a.image_id for a in anns], key, "image_id", base),
+            "box_class_ids": self.ids([a.category_id for a in anns], key, "category_id", base),
+            "boxes": np.array([a.bbox for a in anns], np.float64).reshape(-1, 4),
+            "box_area": given("area"),
+            "crowd": np.array([bool(a.iscrowd) for a in anns], bool),
+            "difficult": np.array([bool(a.difficult) for a in anns], bool),
+            "ignore": np.zeros(len(anns), bool),
+            "occlusion": given("occlusion"),
+            "truncation": given("truncation"),
+            "visibility": given("visibility"),
+        }
+
+    def dont_care(self, regions, key, base):
+        return {
+            "region_image_ids": self.ids([r.image_id for r in regions], key, "image_id", base),
+            "regions": np.array([r.bbox for r in regions], np.float64).reshape(-1, 4),
+        }
+
+    def columns(self, checker):
+        """The columns of a syntactically valid file, or its first error."""
+        if self.error is not None:
+            error, key, base, piece_at, outline = self.error
+            self._check_outline(checker, outline + b"[]}", _Outline)
+            if isinstance(error, msgspec.ValidationError):
+                raise validation_error(
+                    self.path, error, top_level_list=False, base=base, key=key
+                ) from None
+            raise _slice_decode_error(self.path, error, checker, lambda k: piece_at + k) from None
+        self._check_outline(checker, bytes(checker.skeleton), _Dataset)
+        for field_key in _ID_FIELDS:
+            if field_key in self.out_of_range:
+                raise self.out_of_range[field_key]
+        empty = {
+            "images": self.images([], "images", 0),
+            "categories": self.categories([], "categories", 0),
+            "annotations": self.annotations([], "annotations", 0),
+            "dont_care": self.dont_care([], "dont_care", 0),
+        }
+        cols = {}
+        for key, parts in self.parts.items():
+            for name, column in empty[key].items():
+                pieces = [part.pop(name) for part in parts]  # freed column by column
+                if isinstance(column, list):
+                    cols[name] = [item for piece in pieces for item in piece]
+                else:
+                    cols[name] = np.concatenate([column, *pieces])
+                del pieces
+        return cols
+
+    def _check_outline(self, checker, outline, kind):
+        """Raise the type (or encoding) error of the outer object with its arrays
+        emptied: a missing array, or one given as something else."""
+        try:
+            msgspec.json.decode(outline, type=kind)
+        except msgspec.ValidationError as e:
+            if str(e).startswith("Expected `object`, got `array`"):
+                raise _array_given(self.path) from None
+            raise validation_error(self.path, e, top_level_list=False) from None
+        except msgspec.DecodeError as e:
+            raise _slice_decode_error(self.path, e, checker, checker.file_offset) from None
+
+
+def _slice_decode_error(path, error, checker, locate):
+    """A decoding error the syntax check lets through (invalid UTF-8 in a string, a
+    number out of range), at its line and column as a whole-file decode gives them;
+    ``locate`` maps a byte of the decoded text to its offset in the file."""
+    text = str(error)
+    m = re.search(r"\(byte (\d+)\)", text)
+    if "truncated" in text:
+        return InputError(path, "the JSON ends early: the file looks truncated")
+    if not m:
+        return InputError(path, f"not valid JSON: {text}")
+    line, column = checker.line_column(locate(int(m.group(1))))
+    reason = text.split(":", 1)[-1].split("(byte")[0].strip()
+    return InputError(path, f"not valid JSON: {reason} at line {line}, column {column}")
 
 
 def _columns(records, path="", base=0):

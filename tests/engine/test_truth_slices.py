@@ -1,0 +1,151 @@
+"""The ground-truth loader decodes the record arrays slice by slice (``read_truth``
+with ``json_syntax.check``'s sink) and must give what a whole-document typed decode by
+msgspec gives: the same columns on valid files, and on files with a type error (a
+wrong type anywhere, a missing field or array, an id beyond 64 bits, a number out of
+range, invalid UTF-8, a repeated key) the same message naming record and field.
+Slices of 16 and 64 bytes make every cut land everywhere."""
+
+import json
+import random
+
+import msgspec
+import numpy as np
+import pytest
+
+from evaluation.engine import InputError
+from evaluation.engine.loaders import coco_json, json_syntax
+
+
+def _whole(path, data):
+    """The reference: one msgspec decode of the whole document, then the columns."""
+    try:
+        d = msgspec.json.decode(data, type=coco_json._Dataset)
+    except msgspec.ValidationError as e:
+        return str(coco_json.validation_error(path, e, top_level_list=False))
+    except msgspec.DecodeError as e:
+        return str(coco_json.decode_error(path, e, data, 0))
+    for key, field in coco_json._ID_FIELDS:
+        values = [getattr(r, field) for r in getattr(d, key)]
+        try:
+            coco_json.int_column(path, values, lambda i, key=key: f"{key}[{i}]", field)
+        except InputError as e:
+            return str(e)
+    anns = d.annotations
+
+    def opt(values):
+        return np.array([np.nan if v is None else v for v in values], np.float64)
+
+    return {
+        "image_ids": np.array([im.id for im in d.images], np.int64),
+        "image_width": opt(im.width for im in d.images),
+        "image_height": opt(im.height for im in d.images),
+        "image_tags": [tuple(im.tags) for im in d.images],
+        "class_ids": np.array([c.id for c in d.categories], np.int64),
+        "class_names": [c.name for c in d.categories],
+        "box_ids": np.array([a.id for a in anns], np.int64),
+        "box_image_ids": np.array([a.image_id for a in anns], np.int64),
+        "box_class_ids": np.array([a.category_id for a in anns], np.int64),
+        "boxes": np.array([a.bbox for a in anns], np.float64).reshape(-1, 4),
+        "box_area": opt(a.area for a in anns),
+        "crowd": np.array([bool(a.iscrowd) for a in anns], bool),
+        "difficult": np.array([bool(a.difficult) for a in anns], bool),
+        "ignore": np.zeros(len(anns), bool),
+        "occlusion": opt(a.occlusion for a in anns),
+        "truncation": opt(a.truncation for a in anns),
+        "visibility": opt(a.visibility for a in anns),
+        "region_image_ids": np.array([r.image_id for r in d.dont_care], np.int64),
+        "regions": np.array([r.bbox for r in d.dont_care], np.float64).reshape(-1, 4),
+    }
+
+
+def _sliced(path):
+    try:
+        return coco_json.read_truth(path)
+    except InputError as e:
+        return str(e)
+
+
+BAD_VALUES = ['"x"', "null", "2.5", "[]", "{}", str(2**70), "-" + str(2**63 + 1), "1e999", '"\xff"']
+
+
+def _document(rng):
+    """JSON text of a random split, then (usually) one type-level damage."""
+    doc = {
+        "info": {"note": 'a\\"b,]', "n": [1, {"images": None}]},
+        "images": [
+            {"id": i, "width": 640, "height": 480, "tags": ["x,]", 'y"']}
+            for i in range(rng.randint(0, 6))
+        ],
+        "annotations": [
+            {
+                "id": i,
+                "image_id": rng.randint(0, 5),
+                "category_id": 1,
+                "bbox": [1.5, 2, 3e2, 4],
+                "area": rng.choice([None, 12.5]),
+                "iscrowd": rng.choice([0, 1, True]),
+                "segmentation": [[1, 2, 3, 4]],
+                "occlusion": rng.choice([None, 1]),
+            }
+            for i in range(rng.randint(0, 10))
+        ],
+        "categories": [{"id": 1, "name": "car"}, {"id": 2, "name": "pedestrian"}],
+        "dont_care": [{"image_id": 0, "bbox": [0, 0, 5, 5]}] * rng.randint(0, 2),
+    }
+    keys = list(doc)
+    rng.shuffle(keys)
+    damage = rng.choice(["none", "value", "field", "array", "missing", "repeat"])
+    if damage == "missing":
+        keys.remove(rng.choice(["images", "annotations", "categories"]))
+    if damage in ("value", "field"):
+        records = [
+            (k, r) for k in ("images", "annotations", "categories", "dont_care") for r in doc[k]
+        ]
+        if records:
+            key, record = rng.choice(records)
+            record = doc[key][doc[key].index(record)] = dict(record)
+            field = rng.choice(list(record))
+            if damage == "field":
+                del record[field]
+            else:
+                record[field] = "@@BAD@@"
+    parts = [f"{json.dumps(k)}: {json.dumps(doc[k], indent=rng.choice([None, 1]))}" for k in keys]
+    if damage == "array":
+        at = rng.randrange(len(parts) + 1)
+        key = rng.choice(["images", "annotations", "categories"])
+        value = rng.choice(["5", "{}", '{"a": [1]}', "null"])
+        parts.insert(at, f'"{key}": {value}')
+    if damage == "repeat":
+        key = rng.choice(["images", "annotations", "categories"])
+        parts.append(f'"{key}": {json.dumps(doc[key][:1])}')
+    text = "{" + ", ".join(parts) + "}"
+    return text.replace('"@@BAD@@"', rng.choice(BAD_VALUES))
+
+
+@pytest.mark.parametrize("chunk", [16, 64])
+@pytest.mark.parametrize("seed", range(4))
+def test_sliced_decoding_agrees_with_a_whole_document_decode(files, monkeypatch, seed, chunk):
+    monkeypatch.setattr(json_syntax, "CHUNK_BYTES", chunk)
+    rng = random.Random(seed)
+    outcomes = set()
+    for n in range(150):
+        data = _document(rng).encode("utf-8", "surrogateescape")
+        data = data.replace("\xff".encode(), b"\xff")  # invalid UTF-8 inside a string
+        path = files.write(f"split{n}.json", "")
+        with open(path, "wb") as f:
+            f.write(data)
+        expected, got = _whole(path, data), _sliced(path)
+        if isinstance(expected, str):
+            assert got == expected, data
+            outcomes.add(expected.split(":")[1].split(" ")[1])
+            continue
+        assert isinstance(got, dict), (got, data)
+        assert sorted(got) == sorted(expected)
+        for name, column in expected.items():
+            if isinstance(column, list):
+                assert got[name] == column, name
+            else:
+                assert got[name].dtype == column.dtype, name
+                np.testing.assert_array_equal(got[name], column, err_msg=name)
+        outcomes.add("valid")
+    assert len(outcomes) >= 4, outcomes
