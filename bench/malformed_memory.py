@@ -18,7 +18,8 @@ each in a fresh process, reading that process's peak resident memory (``ru_maxrs
   The syntax check passes each slice of the record arrays on to a typed decode into
   columns (about 100 bytes per annotation, against ~110 bytes of text); the file is
   never mapped or decoded whole, so the columns plus one slice count.
-* ``valid`` (ground truth): the same file without the error, loaded: the same bound.
+* ``valid`` (ground truth): the same file without the error, loaded: its columns,
+  about twice while the slices' columns are joined.
 
 Fails (exit 1) if a truncated file's peak grows by more than 64 MB from the smallest
 to the largest size.

@@ -4,13 +4,13 @@ Every ground-truth JSON file is read here, and only here: a whole-file decode wo
 map or read the file in (its pages then count in the resident set), so a malformed
 file would cost memory in proportion to its size before its error. With a sink
 (``coco_json._Records``), each checked slice of a record array is handed on for typed
-decoding into columns. Here the file is read ``CHUNK_BYTES`` at a time. Per chunk, vectorised over the
-sparse positions of quotes and brackets only, a quote counts unless an odd run of
-backslashes precedes it, brackets and commas inside strings are dropped, and each
-remaining one gets its nesting depth. Every container opened at depth 2 — the records
-of ``images``, ``annotations``, ... — is checked by msgspec in slices cut at its own
-top-level commas (the comma replaced by the container's opening bracket, as in the
-detections loader); the bytes at depth 0 and 1 (the outer object, its keys, the
+decoding into columns. Here the file is read ``CHUNK_BYTES`` at a time. Per chunk,
+vectorised over the sparse positions of quotes and brackets only, a quote counts
+unless an odd run of backslashes precedes it, brackets and commas inside strings are
+dropped, and each remaining one gets its nesting depth. Every container opened at
+depth 2 — the records of ``images``, ``annotations``, ... — is checked by msgspec in
+slices cut at its own top-level commas (the comma replaced by the container's opening
+bracket, as in the detections loader); the bytes at depth 0 and 1 (the outer object, its keys, the
 brackets of its arrays) form a small skeleton, checked as it stands whenever a slice
 fails (so the earlier error wins) and at the end. The message is msgspec's, at the
 same line and column as a whole-file parse gives (``tests/engine/test_json_syntax.py``
