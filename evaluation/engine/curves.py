@@ -308,6 +308,25 @@ def envelope(precision):
     return np.maximum.accumulate(precision[::-1])[::-1]
 
 
+def first_points(n_pos, recall_points):
+    r"""Index of the first point reaching each recall point, per row of ``n_pos``:
+    shape (rows, recall points), and which rows have positives.
+
+    TP counts along a run are 1, 2, 3, ... (each point is one true positive), so the
+    first point with recall >= r is number :math:`c_r`, the least integer with
+    :math:`c / n_{pos} \ge r` in floating point, exactly as a search over the recall
+    array finds it (pycocotools' ``np.searchsorted(rc, recThrs, side='left')``).
+    """
+    present = n_pos > 0
+    safe = np.where(present, n_pos, 1.0)[:, None]
+    with np.errstate(invalid="ignore"):
+        c = np.ceil(recall_points[None, :] * safe)
+        for _ in range(2):
+            c = np.where((c >= 1) & ((c - 1) / safe >= recall_points), c - 1, c)
+            c = np.where(c / safe < recall_points, c + 1, c)
+    return np.maximum(c - 1, 0).astype(np.int64), present
+
+
 def interpolated_precision(points, recall_points, *, epsilon=0.0, slots=None):
     r"""Envelope precision at each recall point, shape (slots, points, classes).
 
@@ -335,17 +354,7 @@ def interpolated_precision(points, recall_points, *, epsilon=0.0, slots=None):
     n_classes = len(points.n_pos)
     slots = list(range(points.n_slots)) if slots is None else list(slots)
     n_pos = points.n_pos
-    present = n_pos > 0
-    # TP counts along a run are 1, 2, 3, ... (each point is one true positive), so the
-    # first point with recall >= r is number c_r, the least integer with c / n_pos >= r
-    # in floating point, exactly as a search over the recall array finds it.
-    safe = np.where(present, n_pos, 1.0)[:, None]
-    with np.errstate(invalid="ignore"):
-        c = np.ceil(recall_points[None, :] * safe)
-        for _ in range(2):
-            c = np.where((c >= 1) & ((c - 1) / safe >= recall_points), c - 1, c)
-            c = np.where(c / safe < recall_points, c + 1, c)
-    first = np.maximum(c - 1, 0).astype(np.int64)  # (classes, points)
+    first, present = first_points(n_pos, recall_points)  # (classes, points)
 
     runs = points.runs[:-1].reshape(points.n_slots, n_classes)[slots]
     lengths = np.diff(points.runs).reshape(points.n_slots, n_classes)[slots]

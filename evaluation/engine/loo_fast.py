@@ -21,18 +21,7 @@ integer counts, so the result is the same to the bit.
 
 import numpy as np
 
-
-def _first_points(n_pos, recall_points):
-    """``curves.interpolated_precision``'s first point reaching each recall point, for
-    every variant's number of positives: shape (variants, recall points)."""
-    present = n_pos > 0
-    safe = np.where(present, n_pos, 1.0)[:, None]
-    with np.errstate(invalid="ignore"):
-        c = np.ceil(recall_points[None, :] * safe)
-        for _ in range(2):
-            c = np.where((c >= 1) & ((c - 1) / safe >= recall_points), c - 1, c)
-            c = np.where(c / safe < recall_points, c + 1, c)
-    return np.maximum(c - 1, 0).astype(np.int64), present
+from .curves import first_points
 
 
 def _segments(image, tp, at, variants, n_images):
@@ -134,7 +123,7 @@ def envelopes(image, tp, n_pos, variants, box_count, recall_points, epsilon, n_i
 
     n_pos_v = n_pos - box_count[variants].astype(np.float64)
     distinct, which = np.unique(n_pos_v, return_inverse=True)
-    first, present = _first_points(distinct, recall_points)
+    first, present = first_points(distinct, recall_points)
     first, present = first[which], present[which]
     reached = first < (n_points - own_count)[:, None]
     qv, qr = np.nonzero(reached)

@@ -108,16 +108,21 @@ def image_file(request, version_id, split_id, image):
     return response
 
 
-@login_required
-def image_list(request, version_id):
-    """The per-image comparison of the version with a reference on one split
-    (``?split=``, default its first), filtered by class, tag and size."""
+def _version_and_pair(request, version_id):
+    """The readable version, ``?split=`` (default its first scored split) and its pair."""
     version = version_or_404(request.user, version_id)
     split_ids = cause.scored_split_ids(version)
     split_id = _int(request.GET.get("split")) or (split_ids[0] if split_ids else None)
     if split_id is None:
         raise Http404("this version has no scored split")
-    pair = _pair_or_404(request, version_id, split_id)
+    return version, split_id, _pair_or_404(request, version_id, split_id)
+
+
+@login_required
+def image_list(request, version_id):
+    """The per-image comparison of the version with a reference on one split
+    (``?split=``, default its first), filtered by class, tag and size."""
+    version, split_id, pair = _version_and_pair(request, version_id)
     listing = listing_of.listing_filters(request.GET)
     error, table = None, {"rows": [], "total": 0, "reasons": ()}
     try:
@@ -156,12 +161,7 @@ def confusion(request, version_id):
     ``?row=&col=`` lists one cell's detections and missed boxes."""
     from releases.selectors import errors
 
-    version = version_or_404(request.user, version_id)
-    split_ids = cause.scored_split_ids(version)
-    split_id = _int(request.GET.get("split")) or (split_ids[0] if split_ids else None)
-    if split_id is None:
-        raise Http404("this version has no scored split")
-    pair = _pair_or_404(request, version_id, split_id)
+    version, split_id, pair = _version_and_pair(request, version_id)
     row, column = _int(request.GET.get("row")), _int(request.GET.get("col"))
     found = errors.confusion_for(pair, row, column)
     labels = found["matrix"]["labels"]
