@@ -14,7 +14,9 @@ import msgspec
 import pytest
 
 from evaluation.engine import InputError, load_truth
-from evaluation.engine.loaders import coco_json, json_syntax
+from evaluation.engine.loaders import json_syntax
+
+from . import whole_file
 
 
 def _whole(text):
@@ -22,7 +24,7 @@ def _whole(text):
     try:
         msgspec.json.decode(data, type=msgspec.Raw)
     except msgspec.DecodeError as e:
-        return str(coco_json.decode_error("t.json", e, data, 0))
+        return str(whole_file.decode_error("t.json", e, data))
     return None
 
 

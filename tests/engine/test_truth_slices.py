@@ -15,6 +15,8 @@ import pytest
 from evaluation.engine import InputError
 from evaluation.engine.loaders import coco_json, json_syntax
 
+from . import whole_file
+
 
 def _whole(path, data):
     """The reference: one msgspec decode of the whole document, then the columns."""
@@ -23,7 +25,7 @@ def _whole(path, data):
     except msgspec.ValidationError as e:
         return str(coco_json.validation_error(path, e, top_level_list=False))
     except msgspec.DecodeError as e:
-        return str(coco_json.decode_error(path, e, data, 0))
+        return str(whole_file.decode_error(path, e, data))
     for key, field in coco_json._ID_FIELDS:
         values = [getattr(r, field) for r in getattr(d, key)]
         try:

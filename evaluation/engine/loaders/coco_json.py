@@ -101,26 +101,6 @@ def validation_error(path, error, *, top_level_list, base=0, key=""):
     return InputError(path, message, record=record, field=field)
 
 
-def decode_error(path, error, data, base_offset=0):
-    text = str(error)
-    m = re.search(r"\(byte (\d+)\)", text)
-    if "truncated" in text:
-        return InputError(path, "the JSON ends early: the file looks truncated")
-    if not m:
-        return InputError(path, f"not valid JSON: {text}")
-    offset = int(m.group(1)) + base_offset
-    line = (
-        1
-        + sum(  # a few MB at a time: ``data`` may be a memory map of any size
-            data[i : min(i + CHUNK_BYTES, offset)].count(b"\n")
-            for i in range(0, offset, CHUNK_BYTES)
-        )
-    )
-    column = offset - (data.rfind(b"\n", 0, offset) + 1) + 1
-    reason = text.split(":", 1)[-1].split("(byte")[0].strip()
-    return InputError(path, f"not valid JSON: {reason} at line {line}, column {column}")
-
-
 _INT64_MIN, _INT64_MAX = -(2**63), 2**63 - 1
 
 
