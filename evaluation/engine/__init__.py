@@ -20,6 +20,7 @@ from .evaluate import counts, evaluate
 from .loaders import BOX_POLICIES, detect_format, is_collection, load_predictions, load_truth
 from .loaders.cache import Cache
 from .matching import match
+from .pedestrian import MISS_RATE_PRESETS, evaluate_setups, setup_counts
 from .protocols import PRESETS, Protocol, get_protocol, protocol_from_dict
 from .provenance import annotate, differences, protocol_record
 from .records import MatchRecords
@@ -35,6 +36,7 @@ __all__ = [
     "PRESETS",
     "GroundTruth",
     "InputError",
+    "MISS_RATE_PRESETS",
     "MatchRecords",
     "Predictions",
     "Protocol",
@@ -44,6 +46,7 @@ __all__ = [
     "differences",
     "evaluate",
     "evaluate_levels",
+    "evaluate_setups",
     "get_protocol",
     "headline",
     "is_collection",
@@ -54,4 +57,5 @@ __all__ = [
     "protocol_from_dict",
     "protocol_record",
     "score_records",
+    "setup_counts",
 ]

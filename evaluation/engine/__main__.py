@@ -14,6 +14,7 @@ from .difficulty import DIFFICULTY_PRESETS, evaluate_levels, levels_table
 from .errors import InputError
 from .evaluate import evaluate
 from .loaders import BOX_POLICIES, FORMATS, load_predictions, load_truth
+from .pedestrian import MISS_RATE_PRESETS, evaluate_setups, setups_table
 from .protocols import PRESETS, get_protocol, protocol_from_dict
 from .report import table
 
@@ -85,8 +86,8 @@ def build_parser():
     score.add_argument(
         "--protocol",
         default="coco",
-        help=f"preset ({', '.join([*PRESETS, *DIFFICULTY_PRESETS])}) or a JSON file with a "
-        "custom preset",
+        help=f"preset ({', '.join([*PRESETS, *DIFFICULTY_PRESETS, *MISS_RATE_PRESETS])}) or a "
+        "JSON file with a custom preset",
     )
     score.add_argument("--format", choices=("table", "json"), default="table")
     score.add_argument(
@@ -127,7 +128,8 @@ def main(argv=None):
             return EXIT_BAD_INPUT
         return 0
     try:
-        levels = args.protocol in DIFFICULTY_PRESETS
+        setups = args.protocol in MISS_RATE_PRESETS
+        levels = args.protocol in DIFFICULTY_PRESETS or setups
         if levels and (args.records or args.records_out):
             raise InputError(
                 "--protocol", f"{args.protocol} keeps no match records (--records, --records-out)"
@@ -148,7 +150,10 @@ def main(argv=None):
             unknown_classes=args.unknown_classes,
             cache_dir=args.cache,
         )
-        if levels:
+        if setups:
+            result, records = evaluate_setups(truth, predictions, protocol), None
+            result["truth_fingerprint"] = truth.content_hash()
+        elif levels:
             result, records = evaluate_levels(truth, predictions, protocol), None
             result["truth_fingerprint"] = truth.content_hash()
         else:
@@ -166,7 +171,10 @@ def main(argv=None):
         json.dump(result, sys.stdout, indent=2, allow_nan=False)  # strict JSON only
         sys.stdout.write("\n")
     else:
-        print(levels_table(result) if levels else table(result))
+        if setups:
+            print(setups_table(result))
+        else:
+            print(levels_table(result) if levels else table(result))
     return 0
 
 

@@ -1,0 +1,414 @@
+"""Pedestrian setups for the log-average miss rate (Dollár et al., TPAMI 34(4), 2012;
+Zhang et al., CVPR 2017).
+
+The rules, in our own words, with the place in the published code that applies each
+(the toolbox: ``bbGt.m`` ``evalRes`` / ``compOas`` / ``compRoc`` and ``dbEval.m``; the
+city-scale benchmark: ``eval_MR_multisetup.py`` ``evaluateImg`` / ``accumulate``):
+
+* Setups [``dbEval`` ``exps``, city-scale ``HtRng``/``VisRng``]: a ground-truth box
+  counts when its height h (px) and visibility ratio v lie in the setup's closed
+  ranges: reasonable h in [50, inf), v in [0.65, inf); small h in [50, 75],
+  v in [0.65, inf); heavy occlusion h in [50, inf), v in [0.20, 0.65]; all
+  h in [20, inf), v in [0.20, inf). A visibility not given counts as fully visible
+  (the toolbox reads a box without a visible part as v = inf, which lands in the same
+  setups). Boxes outside the setup, boxes flagged crowd/ignore/difficult, boxes of a
+  neighbouring label (``person?``, ``people``, ``ignore``: the toolbox's labels other
+  than ``person``) and the split's don't-care regions are *ignore boxes*.
+* Detections [``dbEval`` ``evalAlgs``]: kept only if h_lo / 1.25 <= h_det < h_hi * 1.25
+  (the expanded height range avoids boundary effects, §3.3 of the TPAMI paper).
+* Matching [``evalRes``], per image, detections by score descending (stable), ground
+  truth with ignore boxes last (stable): each detection takes, among not yet matched
+  regular boxes, the one with the greatest IoU >= 0.5 (the last of equals); only if
+  none, the first ignore box whose intersection over the *detection's own area*
+  (``compOas`` with the ignore flag) is >= 0.5 — the detection is then ignored, and an
+  ignore box absorbs any number. Unmatched detections are false positives.
+* Curve [``compRoc``]: every image's detections concatenated in image order, ignored
+  ones dropped, stable sort by score; a point after every detection: FPPI = FP /
+  images, recall = TP / counted boxes.
+* Log-average miss rate [``dbEval`` ``plotExps``]:
+  ``LAMR = exp(mean_k ln(max(1 - R(f_k), 1e-10)))`` over nine FPPI references.
+
+Where the two published implementations differ (``MissRateProtocol.variant``):
+
+``toolbox`` (default, preset ``miss-rate``): references f_k = 10^(-2 + k/4); R(f) is the
+recall of the last point with FPPI <= f, a start point (FPPI -inf, recall 0) making a
+budget no point meets read miss rate 1; clamp at 1e-10; every detection is used.
+
+``cityscale`` (preset ``miss-rate-cityscale``): references rounded to four decimals;
+only each image's top 1,000 detections by score; no clamp (a miss rate of 0 makes the
+LAMR 0); and when no point lies at or below a reference, index -1 reads the *last*
+recall of the curve (the city-scale code's ``np.searchsorted(...) - 1``; a file with no
+counted detection reads recall 0 there).
+
+Results per setup and class in the shape of ``difficulty.evaluate_levels``: setups are
+its levels. A class with no counted box in a setup is absent there (None).
+"""
+
+import math
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from .errors import InputError
+from .operating_point import FPPI_POINTS
+
+MIN_OVERLAP = 0.5
+HEIGHT_EXPANSION = 1.25
+CLAMP = 1e-10
+CURVE_POINTS = 120  # at most this many stored curve points per setup and class
+CITYSCALE_FPPI_POINTS = (0.0100, 0.0178, 0.0316, 0.0562, 0.1000, 0.1778, 0.3162, 0.5623, 1.0000)
+VARIANTS = ("toolbox", "cityscale")
+
+
+@dataclass(frozen=True)
+class Setup:
+    """A pedestrian setup: closed ranges of box height (px) and visibility ratio;
+    ``None`` is an open upper end."""
+
+    name: str
+    height: tuple
+    visibility: tuple
+
+    def counts(self, height, visibility):
+        """Per box: inside the setup (both closed ranges)."""
+        (h_lo, h_hi), (v_lo, v_hi) = self.height, self.visibility
+        inside = (height >= h_lo) & (visibility >= v_lo)
+        if h_hi is not None:
+            inside &= height <= h_hi
+        if v_hi is not None:
+            inside &= visibility <= v_hi
+        return inside
+
+    def keeps(self, det_height, expansion):
+        """Per detection: inside the expanded height range [lo / e, hi * e)."""
+        lo, hi = self.height
+        keep = det_height >= lo / expansion
+        if hi is not None:
+            keep &= det_height < hi * expansion
+        return keep
+
+
+SETUPS = (
+    Setup("reasonable", (50.0, None), (0.65, None)),
+    Setup("small", (50.0, 75.0), (0.65, None)),
+    Setup("heavy", (50.0, None), (0.20, 0.65)),
+    Setup("all", (20.0, None), (0.20, None)),
+)
+
+_NEIGHBOURS = ("person?", "people", "ignore")
+
+
+@dataclass(frozen=True)
+class MissRateProtocol:
+    """A miss-rate preset: setups and the reading rules of one published code."""
+
+    name: str
+    version: int
+    description: str
+    variant: str = "toolbox"
+    setups: tuple = SETUPS
+    fppi_points: tuple = tuple(FPPI_POINTS.tolist())
+    max_detections: int = None  # per image and class, by score; None = every one
+    neighbours: dict = field(
+        default_factory=lambda: {"person": _NEIGHBOURS, "pedestrian": _NEIGHBOURS}
+    )
+    headline_level: str = "reasonable"
+
+    def record(self):
+        """The full protocol record stored beside every number."""
+        return {
+            "name": self.name,
+            "version": self.version,
+            "description": self.description,
+            "kind": "setups",
+            "metric": "miss_rate",
+            "lower_is_better": True,
+            "variant": self.variant,
+            "setups": {
+                s.name: {"height": list(s.height), "visibility": list(s.visibility)}
+                for s in self.setups
+            },
+            "iou_threshold": MIN_OVERLAP,
+            "ignore_overlap": "intersection over the detection's area >= 0.5",
+            "height_expansion": HEIGHT_EXPANSION,
+            "max_detections": self.max_detections,
+            "fppi_points": list(self.fppi_points),
+            "clamp": CLAMP if self.variant == "toolbox" else None,
+            "empty_budget": "miss rate 1" if self.variant == "toolbox" else "last recall",
+            "neighbours": {k: list(v) for k, v in self.neighbours.items()},
+            "headline_level": self.headline_level,
+        }
+
+
+MISS_RATE = MissRateProtocol(
+    name="miss-rate",
+    version=1,
+    description="Log-average miss rate on the pedestrian setups reasonable / small / heavy "
+    "occlusion / all, as the pedestrian detection toolbox reads it (Dollar et al., TPAMI "
+    "2012: bbGt evalRes/compRoc, dbEval): ignore boxes matched by intersection over the "
+    "detection's area, expanded height range for detections, FPPI 10^-2..10^0",
+)
+MISS_RATE_CITYSCALE = MissRateProtocol(
+    name="miss-rate-cityscale",
+    version=1,
+    description="Log-average miss rate on the same setups as the city-scale benchmark's "
+    "evaluation reads it (Zhang et al., CVPR 2017): FPPI points rounded to four decimals, "
+    "top 1,000 detections per image, no clamp, an empty budget reads the last recall",
+    variant="cityscale",
+    fppi_points=CITYSCALE_FPPI_POINTS,
+    max_detections=1000,
+)
+
+MISS_RATE_PRESETS = {p.name: p for p in (MISS_RATE, MISS_RATE_CITYSCALE)}
+
+
+def get_miss_rate_protocol(name_or_protocol):
+    if isinstance(name_or_protocol, MissRateProtocol):
+        return name_or_protocol
+    try:
+        return MISS_RATE_PRESETS[name_or_protocol]
+    except KeyError:
+        raise InputError(
+            "protocol",
+            f"unknown miss-rate protocol {name_or_protocol!r}; known: "
+            f"{', '.join(MISS_RATE_PRESETS)}",
+        ) from None
+
+
+def overlaps(det, gt, ignored):
+    """``compOas``: (len(det), len(gt)) overlaps of xywh boxes, continuous coordinates;
+    IoU for a regular box, intersection over the detection's area for an ignore box;
+    0 where the boxes do not intersect."""
+    x1 = np.maximum(det[:, None, 0], gt[None, :, 0])
+    y1 = np.maximum(det[:, None, 1], gt[None, :, 1])
+    w = np.minimum(det[:, None, 0] + det[:, None, 2], gt[None, :, 0] + gt[None, :, 2]) - x1
+    h = np.minimum(det[:, None, 1] + det[:, None, 3], gt[None, :, 1] + gt[None, :, 3]) - y1
+    valid = (w > 0) & (h > 0)
+    inter = np.where(valid, w * h, 0.0)
+    det_area = (det[:, 2] * det[:, 3])[:, None]
+    union = det_area + (gt[:, 2] * gt[:, 3])[None, :] - inter
+    denominator = np.where(ignored[None, :], det_area, union)
+    out = np.zeros(inter.shape)
+    np.divide(inter, denominator, out=out, where=valid)
+    return out
+
+
+def match_image(oa, ignored):
+    """``evalRes`` for one image: ``oa`` rows are detections by score descending,
+    columns boxes; ``ignored`` per box. Returns per detection 1 (true positive), -1
+    (ignored) or 0 (false positive)."""
+    order = [g for g in range(len(ignored)) if not ignored[g]]
+    order += [g for g in range(len(ignored)) if ignored[g]]
+    matched = [False] * len(ignored)
+    out = []
+    for row in oa:
+        best, best_g, best_m = MIN_OVERLAP, -1, 0
+        for g in order:
+            if matched[g]:
+                continue
+            if best_m != 0 and ignored[g]:
+                break
+            if row[g] < best:
+                continue
+            best, best_g, best_m = row[g], g, (-1 if ignored[g] else 1)
+        if best_m == 1:
+            matched[best_g] = True
+        out.append(best_m)
+    return out
+
+
+def read_references(tp, fp, n_pos, n_images, protocol):
+    """Recall at each reference FPPI from running TP/FP counts (ignored detections
+    already dropped), by the variant's rule; then the miss rates and their LAMR.
+
+    .. math:: \\mathrm{LAMR} = \\exp\\Big(\\frac{1}{9}\\sum_k \\ln \\max(1 - R(f_k),
+              10^{-10})\\Big)
+
+    (``dbEval``; the city-scale code takes no max). Returns ``(miss_rates, lamr)``.
+    """
+    refs = np.asarray(protocol.fppi_points)
+    fppi = np.asarray(fp, np.float64) / n_images
+    recall = np.asarray(tp, np.float64) / n_pos
+    if protocol.variant == "toolbox":
+        fppi, recall = np.r_[-np.inf, fppi], np.r_[0.0, recall]
+        reached = recall[np.searchsorted(fppi, refs, side="right") - 1]
+        miss = 1.0 - reached
+        return miss, float(math.exp(np.mean(np.log(np.maximum(miss, CLAMP)))))
+    if len(recall) == 0:
+        reached = np.zeros(len(refs))
+    else:
+        reached = recall[np.searchsorted(fppi, refs, side="right") - 1]  # -1 → last
+    miss = 1.0 - reached
+    if np.any(miss <= 0):
+        return miss, 0.0
+    return miss, float(math.exp(np.mean(np.log(miss))))
+
+
+def curve_points(tp, fp, n_pos, n_images, limit=CURVE_POINTS):
+    """The miss-rate-versus-FPPI staircase for a chart: for each distinct FPPI the
+    lowest miss rate reached at it, thinned to at most ``limit`` points spread evenly
+    in log FPPI (the first and last kept)."""
+    if len(tp) == 0:
+        return {"fppi": [], "miss_rate": []}
+    fppi = np.asarray(fp, np.float64) / n_images
+    miss = 1.0 - np.asarray(tp, np.float64) / n_pos
+    last = np.flatnonzero(np.r_[fppi[1:] != fppi[:-1], True])
+    fppi, miss = fppi[last], miss[last]
+    if len(fppi) > limit:
+        positive = fppi > 0
+        first = int(np.argmax(positive)) if positive.any() else len(fppi) - 1
+        grid = np.geomspace(fppi[first], fppi[-1], limit - 1)
+        pick = np.unique(np.r_[0, np.searchsorted(fppi, grid, side="right") - 1, len(fppi) - 1])
+        fppi, miss = fppi[pick], miss[pick]
+    return {"fppi": fppi.tolist(), "miss_rate": miss.tolist()}
+
+
+def _group(index, n):
+    order = np.argsort(index, kind="stable")
+    bounds = np.searchsorted(index[order], np.arange(n + 1))
+    return [order[bounds[i] : bounds[i + 1]] for i in range(n)]
+
+
+def _classes(truth, protocol):
+    """(class index, [neighbour indices]) for every evaluated class: each class of the
+    split except those that are only a neighbouring label of another present class."""
+    lower = [c.lower() for c in truth.classes]
+    near_of = {
+        k: [lower.index(n) for n in protocol.neighbours.get(c, ()) if n in lower]
+        for k, c in enumerate(lower)
+    }
+    neighbour_only = {j for k, near in near_of.items() for j in near if j != k}
+    return [(k, near_of[k]) for k in range(len(lower)) if k not in neighbour_only]
+
+
+def evaluate_setups(truth, predictions, protocol="miss-rate"):
+    """Log-average miss rate per setup and class (see the module docstring).
+
+    Returns ``{"protocol": record, "n_images": N, "levels": {setup: {"classes": {class:
+    {"miss_rate", "n_gt", "reference_miss_rate", "curve", "detections"}}, "miss_rate"}},
+    "headline": float|None}``: the shape of ``difficulty.evaluate_levels`` with setups
+    as levels; a setup's ``miss_rate`` is the mean over the classes present there, the
+    headline the reasonable setup's. Lower is better.
+    """
+    protocol = get_miss_rate_protocol(protocol)
+    n_images = truth.n_images
+    flagged = truth.crowd | truth.ignore | truth.difficult
+    height = truth.boxes[:, 3]
+    visibility = np.where(np.isnan(truth.visibility), 1.0, truth.visibility)
+    det_height = predictions.boxes[:, 3]
+    gt_by_image = _group(truth.box_image, n_images)
+    det_by_image = _group(predictions.image, n_images)
+    region_by_image = _group(truth.region_image, n_images)
+    levels = {s.name: {} for s in protocol.setups}
+    for k, near in _classes(truth, protocol):
+        own = truth.box_class == k
+        part = own | np.isin(truth.box_class, near)
+        scenes = []  # per image: its boxes of the class or a neighbour, its detections
+        for image in range(n_images):
+            g = gt_by_image[image]
+            g = g[part[g]]
+            d = det_by_image[image]
+            d = d[predictions.cls[d] == k]
+            d = d[np.argsort(-predictions.score[d], kind="stable")]
+            if protocol.max_detections is not None:
+                d = d[: protocol.max_detections]
+            scenes.append((image, g, d))
+        for setup in protocol.setups:
+            counted = own & setup.counts(height, visibility) & ~flagged
+            keep = setup.keeps(det_height, HEIGHT_EXPANSION)
+            levels[setup.name][truth.classes[k]] = _class_result(
+                truth, predictions, scenes, counted, keep, region_by_image, protocol
+            )
+    summary = {name: _setup_summary(per_class) for name, per_class in levels.items()}
+    return {
+        "protocol": protocol.record(),
+        "n_images": int(n_images),
+        "levels": summary,
+        "headline": summary.get(protocol.headline_level, {}).get("miss_rate"),
+    }
+
+
+def _class_result(truth, predictions, scenes, counted, keep, region_by_image, protocol):
+    n_gt = int(np.count_nonzero(counted))
+    scores, outcomes = [], []
+    dropped = 0
+    for image, g, d in scenes:
+        kept = d[keep[d]]
+        dropped += len(d) - len(kept)
+        if not len(kept):
+            continue
+        regions = truth.regions[region_by_image[image]]
+        boxes = np.concatenate([truth.boxes[g], regions])
+        ignored = np.r_[~counted[g], np.ones(len(regions), bool)]
+        oa = overlaps(predictions.boxes[kept], boxes, ignored)
+        outcomes.extend(match_image(oa.tolist(), ignored.tolist()))
+        scores.extend(predictions.score[kept].tolist())
+    outcomes = np.asarray(outcomes, np.int8)
+    scores = np.asarray(scores, np.float64)
+    use = outcomes != -1
+    order = np.argsort(-scores[use], kind="stable")
+    is_tp = outcomes[use][order] == 1
+    tp, fp = np.cumsum(is_tp), np.cumsum(~is_tp)
+    detections = {
+        "true_positive": int(is_tp.sum()),
+        "false_positive": int((~is_tp).sum()),
+        "ignored": int((~use).sum()),
+        "outside_height": int(dropped),
+    }
+    if n_gt == 0:
+        return {
+            "miss_rate": None,
+            "n_gt": n_gt,
+            "reference_miss_rate": None,
+            "curve": {"fppi": [], "miss_rate": []},
+            "detections": detections,
+        }
+    miss, lamr = read_references(tp, fp, n_gt, truth.n_images, protocol)
+    return {
+        "miss_rate": lamr,
+        "n_gt": n_gt,
+        "reference_miss_rate": miss.tolist(),
+        "curve": curve_points(tp, fp, n_gt, truth.n_images),
+        "detections": detections,
+    }
+
+
+def _setup_summary(per_class):
+    present = [r["miss_rate"] for r in per_class.values() if r["miss_rate"] is not None]
+    return {"classes": per_class, "miss_rate": float(np.mean(present)) if present else None}
+
+
+def setup_counts(truth, protocol="miss-rate"):
+    """Counted boxes per setup and evaluated class (the ``n_gt`` of
+    ``evaluate_setups``), for a split's page: ``{setup: {class: n}}``."""
+    protocol = get_miss_rate_protocol(protocol)
+    flagged = truth.crowd | truth.ignore | truth.difficult
+    visibility = np.where(np.isnan(truth.visibility), 1.0, truth.visibility)
+    out = {}
+    for setup in protocol.setups:
+        inside = setup.counts(truth.boxes[:, 3], visibility) & ~flagged
+        out[setup.name] = {
+            truth.classes[k]: int(np.count_nonzero(inside & (truth.box_class == k)))
+            for k, _ in _classes(truth, protocol)
+        }
+    return out
+
+
+def setups_table(result):
+    """A plain-text table of ``evaluate_setups``' result: LAMR per setup and class."""
+    rows = [f"{'setup':<12}{'class':<16}{'n_gt':>6}{'MR':>9}{'TP':>7}{'FP':>7}"]
+    show = lambda v: "-" if v is None else f"{v:.4f}"  # noqa: E731
+    for setup, entry in result["levels"].items():
+        for name, r in entry["classes"].items():
+            det = r["detections"]
+            rows.append(
+                f"{setup:<12}{name:<16}{r['n_gt']:>6}{show(r['miss_rate']):>9}"
+                f"{det['true_positive']:>7}{det['false_positive']:>7}"
+            )
+        rows.append(f"{setup:<12}{'mean':<16}{'':>6}{show(entry['miss_rate']):>9}")
+    record = result["protocol"]
+    rows.append(
+        f"headline ({record['name']}, {record['headline_level']} log-average miss rate, "
+        f"lower is better): {show(result['headline'])}"
+    )
+    return "\n".join(rows)
