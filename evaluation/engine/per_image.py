@@ -24,7 +24,7 @@ from .confusion import _thresholds, found_boxes, kept
 from .curves import TruePositivePoints, all_point_average_precision, interpolated_precision
 from .protocols import get_protocol
 from .reasons import DETECTION_REASONS, IGNORED
-from .scoring import check_weights, headline
+from .scoring import _area_scores, check_weights, headline
 
 #: Cells of (images in a batch) x (true positives of the class) per step.
 BATCH_CELLS = 4_000_000
@@ -53,10 +53,11 @@ def image_counts(records, thresholds, class_index=None):
     return out
 
 
-def _class_sequence(records, k, slot, weights):
-    """Counted detections of class k at a slot (accumulation order): image, TP flag."""
+def _class_sequence(records, k, slot, weights, area=0):
+    """Counted detections of class k at a slot and size bucket (accumulation order):
+    image, TP flag."""
     s, e = records.class_bounds()[k : k + 2]
-    is_tp, is_ignored = records.outcomes(0, slot)
+    is_tp, is_ignored = records.outcomes(area, slot)
     image = records.det_image[s:e].astype(np.int64)
     counted = ~is_ignored[s:e] & (weights[image] > 0)
     return image[counted], is_tp[s:e][counted]
@@ -99,7 +100,7 @@ def _variant_points(image, tp, n_pos, left_out, box_count):
     )
 
 
-def leave_one_out(records, protocol, class_index, weights=None):
+def leave_one_out(records, protocol, class_index, weights=None, *, area=0, slot=None):
     """AP of class ``class_index`` (``scoring.headline``'s per-class value: the mean
     over the protocol's IoU slots) with all images, and with each image left out.
 
@@ -107,6 +108,13 @@ def leave_one_out(records, protocol, class_index, weights=None):
     ----------
     weights : 0/1 int array (n_images,) or None
         A selection of images (a tag slice); images outside it change nothing.
+    area : int
+        Size bucket (index into ``records.area_names``; 0 = all sizes): the class's AP
+        in that bucket (the scorecard's ``AP_small`` …), boxes and detections outside
+        it ignored as the protocol ignores them.
+    slot : int or None
+        None: the mean over the protocol's slots (AP). An int: that IoU slot's AP alone
+        (the scorecard's per-class ``AP50`` at the slot of IoU 0.5), one slot's work.
 
     Returns
     -------
@@ -119,10 +127,11 @@ def leave_one_out(records, protocol, class_index, weights=None):
     if np.any(w > 1):
         raise ValueError("leave_one_out takes a 0/1 selection of images, not multiplicities")
     k = class_index
-    boxes = (~records.gt_ignored[0]) & (records.gt_class == k) & (w[records.gt_image] > 0)
+    slots = list(range(records.n_slots)) if slot is None else [int(slot)]
+    boxes = (~records.gt_ignored[area]) & (records.gt_class == k) & (w[records.gt_image] > 0)
     box_count = np.bincount(records.gt_image[boxes], minlength=records.n_images)
     n_pos = float(box_count.sum())
-    sequences = [_class_sequence(records, k, t, w) for t in range(records.n_slots)]
+    sequences = [_class_sequence(records, k, t, w, area) for t in slots]
     touched = np.zeros(records.n_images, bool)
     touched[box_count > 0] = True
     for image, _ in sequences:
@@ -132,12 +141,21 @@ def leave_one_out(records, protocol, class_index, weights=None):
         # One more variant, an image id past the split's, leaves nothing out: the base.
         box_count = np.r_[box_count, 0]
         ap = _interpolated(
-            records, protocol, sequences, n_pos, box_count, np.r_[affected, records.n_images]
+            records,
+            protocol,
+            sequences,
+            n_pos,
+            box_count,
+            np.r_[affected, records.n_images],
+            row="slot" if slot is not None else "area" if area else None,
         )
         without = np.full(records.n_images, ap[-1])
         without[affected] = ap[:-1]
         return float(ap[-1]), without
-    base = headline(records, protocol, weights=weights)[1][k]
+    if area == 0 and slot is None:
+        base = headline(records, protocol, weights=weights)[1][k]
+    else:
+        base = np.mean(_area_scores(records, protocol, area, weights)[2][slots, k])
     without = np.full(records.n_images, base)
     if not len(affected):
         return float(base), without
@@ -154,9 +172,12 @@ def leave_one_out(records, protocol, class_index, weights=None):
     return float(base), without
 
 
-def _interpolated(records, protocol, sequences, n_pos, box_count, affected):
+def _interpolated(records, protocol, sequences, n_pos, box_count, affected, row=None):
     """Leave-one-out AP of the affected images under interpolated-precision protocols,
-    by ``loo_fast.envelopes``, averaged in the engine's layout (slots, points, K)."""
+    by ``loo_fast.envelopes``, averaged in the engine's layout (slots, points, K), or
+    as the scorecard's per-class row reduces it (``row``): ``"slot"`` one slot's mean
+    over recall points (``AP50``), ``"area"`` the mean over slots of one class's slot
+    values (``AP_small`` …)."""
     precision = np.empty((len(sequences), len(protocol.recall_points), len(affected)))
     for slot, (image, tp) in enumerate(sequences):
         loo_fast.envelopes(
@@ -170,10 +191,15 @@ def _interpolated(records, protocol, sequences, n_pos, box_count, affected):
             records.n_images + 1,
             out=precision[slot],
         )  # (slots, points, variants)
+    if row == "slot":
+        return np.ascontiguousarray(precision[0].T).mean(axis=1)
     if len(records.classes) == 1:  # the engine's arrays are one column wide: reduce alike
-        return np.array(
-            [precision[:, :, v : v + 1].mean(axis=1).mean(axis=0)[0] for v in range(len(affected))]
-        )
+        slots = [precision[:, :, v : v + 1].mean(axis=1) for v in range(len(affected))]
+        if row == "area":
+            return np.array([np.mean(ap[:, 0]) for ap in slots])
+        return np.array([ap.mean(axis=0)[0] for ap in slots])
+    if row == "area":
+        return np.ascontiguousarray(precision.mean(axis=1).T).mean(axis=1)
     if len(affected) == 1:
         precision = np.concatenate([precision, precision], axis=2)
     return precision.mean(axis=1).mean(axis=0)[: len(affected)]
@@ -197,17 +223,18 @@ def _class_ap(per_slot, protocol):
     return ap.mean(axis=0)
 
 
-def change_contributions(candidate, baseline, protocol, class_index, weights=None):
+def change_contributions(candidate, baseline, protocol, class_index, weights=None, **which):
     r"""Each image's contribution to the change of a class's AP between two record sets
     of one split: :math:`c_i = \Delta - \Delta_{-i}` with :math:`\Delta = AP_C - AP_B`.
 
-    Returns a dict: ``change`` (Δ), ``without`` (Δ with each image left out) and
-    ``contribution`` (arrays of shape (n_images,); NaN where undefined).
+    ``which``: ``area`` and ``slot`` as for ``leave_one_out``. Returns a dict:
+    ``change`` (Δ), ``without`` (Δ with each image left out) and ``contribution``
+    (arrays of shape (n_images,); NaN where undefined).
     """
     if candidate.n_images != baseline.n_images:
         raise ValueError("both records must come from the same split")
-    ap_c, without_c = leave_one_out(candidate, protocol, class_index, weights)
-    ap_b, without_b = leave_one_out(baseline, protocol, class_index, weights)
+    ap_c, without_c = leave_one_out(candidate, protocol, class_index, weights, **which)
+    ap_b, without_b = leave_one_out(baseline, protocol, class_index, weights, **which)
     change = ap_c - ap_b
     without = without_c - without_b
     return {"change": change, "without": without, "contribution": change - without}

@@ -121,7 +121,8 @@ def _version_and_pair(request, version_id):
 @login_required
 def image_list(request, version_id):
     """The per-image comparison of the version with a reference on one split
-    (``?split=``, default its first), filtered by class, tag and size."""
+    (``?split=``, default its first), filtered by class, tag and size, ΔAP of the
+    chosen metric."""
     version, split_id, pair = _version_and_pair(request, version_id)
     listing = listing_of.listing_filters(request.GET)
     error, table = None, {"rows": [], "total": 0, "reasons": ()}
@@ -145,6 +146,7 @@ def image_list(request, version_id):
             "classes": pair.classes,
             "tags": pair.truth.tags(),
             "sizes": [a for a in pair.candidate.records.area_names if a != "all"],
+            "metrics": list(listing_of.METRIC_IOU),
             "versions": cause.other_versions(version),
             "table": table,
             "error": error,

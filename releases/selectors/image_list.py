@@ -13,16 +13,24 @@ import numpy as np
 @dataclass
 class Listing:
     """The filters of the per-image list: a class (name or ``""`` for every class),
-    an image tag, a size bucket (``""`` = all sizes) and the sort."""
+    an image tag, a size bucket (``""`` = all sizes) and the metric whose change ΔAP
+    is (``AP``: the mean over the protocol's IoU slots; ``AP50`` / ``AP75``: one slot,
+    as the rule the list was opened from)."""
 
     class_name: str = ""
     tag: str = ""
     size: str = ""
+    metric: str = "AP"
 
     def query(self):
         return {
             k: v
-            for k, v in (("class", self.class_name), ("tag", self.tag), ("size", self.size))
+            for k, v in (
+                ("class", self.class_name),
+                ("tag", self.tag),
+                ("size", self.size),
+                ("metric", "" if self.metric == "AP" else self.metric),
+            )
             if v
         }
 
@@ -37,7 +45,24 @@ def listing_filters(params):
         class_name=str(params.get("class", "") or "").strip()[:64],
         tag=str(params.get("tag", "") or "").strip()[:64],
         size=str(params.get("size", "") or "").strip()[:16],
+        metric=str(params.get("metric", "") or "AP").strip()[:16],
     )
+
+
+#: Metrics the list can rank by: ``None`` all slots, else the IoU of the one slot.
+METRIC_IOU = {"AP": None, "AP50": 0.5, "AP75": 0.75}
+
+
+def _slot(records, metric):
+    if metric not in METRIC_IOU:
+        raise ValueError(f"metric: {metric!r} is not one of {', '.join(METRIC_IOU)}")
+    iou = METRIC_IOU[metric]
+    if iou is None:
+        return None
+    slots = [t for t in range(records.n_slots) if float(records.thresholds[t, 0]) == iou]
+    if not slots:
+        raise ValueError(f"metric: {metric} needs an IoU slot of {iou}, which the protocol lacks")
+    return slots[0]
 
 
 def _area_index(records, size):
@@ -50,7 +75,7 @@ def _area_index(records, size):
     return records.area_names.index(size)
 
 
-def _loo(records, protocol, classes, weights):
+def _loo(records, protocol, classes, weights, **which):
     """``(AP, AP without each image)`` of one class, or of the mean over the classes
     with positives (the headline mean: absent classes are left out of it)."""
     import warnings
@@ -58,8 +83,8 @@ def _loo(records, protocol, classes, weights):
     from evaluation.engine import per_image
 
     if len(classes) == 1:
-        return per_image.leave_one_out(records, protocol, classes[0], weights)
-    pairs = [per_image.leave_one_out(records, protocol, k, weights) for k in classes]
+        return per_image.leave_one_out(records, protocol, classes[0], weights, **which)
+    pairs = [per_image.leave_one_out(records, protocol, k, weights, **which) for k in classes]
     bases = np.array([ap for ap, _ in pairs])
     without = np.stack([w for _, w in pairs])
     with warnings.catch_warnings():
@@ -72,9 +97,11 @@ _ROWS = {}
 
 def image_rows(pair, listing):
     r"""The per-image comparison: for every image of the split that carries the tag
-    (and, with a size, holds a counted box of that size), each version's TP, FP by
-    reason and missed counts at the deployed threshold(s), and the image's
-    contribution to the change in AP of the class (no class: the mean over classes):
+    (and, with a size, holds a counted box of that size or changes that size's AP),
+    each version's TP, FP by reason and missed counts at the deployed threshold(s),
+    and the image's contribution to the change in the class's ``listing.metric``
+    (no class: the mean over classes) — in the chosen size bucket, when one is chosen
+    (``AP_small`` …: boxes and detections outside it ignored, as the scorecard does):
 
     .. math:: c_i = \Delta - \Delta_{-i}, \quad \Delta = AP_{candidate} - AP_{reference}
 
@@ -93,6 +120,7 @@ def image_rows(pair, listing):
         raise ValueError(f"tag: {listing.tag!r} is not an image tag of {pair.split}")
     records = pair.candidate.records
     area = _area_index(records, listing.size)
+    slot = _slot(records, listing.metric)
     sides = {"candidate": pair.candidate}
     if pair.reference is not None:
         sides["reference"] = pair.reference
@@ -102,6 +130,7 @@ def image_rows(pair, listing):
         listing.class_name,
         listing.tag,
         listing.size,
+        listing.metric,
     )
     cached = _ROWS.get(key)  # .get: another thread may clear it meanwhile
     if cached is not None:
@@ -113,7 +142,7 @@ def image_rows(pair, listing):
     counts, change = {}, {}
     for name, side in sides.items():
         counts[name] = per_image.image_counts(side.records, pair.thresholds, k)
-        ap, without = _loo(side.records, protocol, classes, weights)
+        ap, without = _loo(side.records, protocol, classes, weights, area=area, slot=slot)
         change[name] = ap - without
     contribution = change["candidate"] - change.get("reference", 0.0)
     listed = np.ones(truth.n_images, bool) if weights is None else weights > 0
@@ -121,7 +150,8 @@ def image_rows(pair, listing):
         boxes = ~records.gt_ignored[area]
         if k is not None:
             boxes &= records.gt_class == k
-        listed &= np.bincount(records.gt_image[boxes], minlength=truth.n_images) > 0
+        holds = np.bincount(records.gt_image[boxes], minlength=truth.n_images) > 0
+        listed &= holds | (np.nan_to_num(contribution) != 0)
     chosen = np.flatnonzero(listed)
     value = contribution[chosen]
     order = chosen[np.lexsort((chosen, np.where(np.isnan(value), np.inf, value)))]
@@ -204,14 +234,18 @@ SHORT_REASONS = {
 
 
 def rule_link(outcome, reference_id=None):
-    """Query of the per-image list filtered to an outcome's split, class and tag (the
-    one click from a failing rule): ``{"split", "class", "tag", "against"}``."""
+    """Query of the per-image list filtered to an outcome's split, class and tag, ranked
+    by the rule's metric (the one click from a failing rule): ``{"split", "class",
+    "tag", "metric", "against"}``."""
     query = {"split": outcome.split_id}
     if outcome.class_name and outcome.class_name not in ("mean", "*"):
         query["class"] = outcome.class_name
     tag = (outcome.rule or {}).get("tag")
     if tag:
         query["tag"] = tag
+    metric = (outcome.rule or {}).get("metric")
+    if metric in METRIC_IOU and metric != "AP":
+        query["metric"] = metric
     against = reference_id or outcome.baseline_id
     if against:
         query["against"] = against

@@ -10,7 +10,7 @@ import pytest
 from evaluation.engine import load_predictions, load_truth, match
 from evaluation.engine.confusion import confusion_matrix
 from evaluation.engine.per_image import change_contributions, image_counts, leave_one_out
-from evaluation.engine.scoring import headline
+from evaluation.engine.scoring import headline, score_records
 
 from .synthetic import make_detections, make_split
 
@@ -149,3 +149,50 @@ def test_classes_without_detections_or_without_boxes(tmp_path, protocol):
             w[i] = 0
             expected = headline(records, protocol, weights=w)[1][k]
             assert without[i] == expected or (np.isnan(expected) and np.isnan(without[i]))
+
+
+def _rescored(records, protocol, w, name, key):
+    row = score_records(records, protocol, weights=w)["per_class"][name]
+    return np.nan if row[key] is None else row[key]
+
+
+@pytest.mark.parametrize("protocol,n_classes", [("coco", 3), ("voc", 3), ("coco", 1)])
+@pytest.mark.parametrize("size", ["small", "medium", "large"])
+def test_leave_one_out_in_a_size_bucket_equals_rescoring_that_bucket(
+    tmp_path, protocol, n_classes, size
+):
+    """With a size bucket chosen, ΔAP is the change of that bucket's AP: each image
+    left out equals, to the bit, the engine's scorecard (``AP_<size>`` per class, COCO
+    area ranges, pycocotools' published rule) re-scored with the image's weight 0."""
+    _, _, truth, predictions = _files(tmp_path, 3, n_classes=n_classes)
+    records = match(truth, predictions, protocol)
+    area = records.area_names.index(size)
+    for k, name in enumerate(records.classes):
+        ap, without = leave_one_out(records, protocol, k, area=area)
+        whole = _rescored(records, protocol, None, name, f"AP_{size}")
+        assert ap == whole or (np.isnan(ap) and np.isnan(whole))
+        for i in range(records.n_images):
+            w = np.ones(records.n_images, np.int64)
+            w[i] = 0
+            expected = _rescored(records, protocol, w, name, f"AP_{size}")
+            assert without[i] == expected or (np.isnan(expected) and np.isnan(without[i])), (k, i)
+
+
+@pytest.mark.parametrize("metric,iou", [("AP50", 0.5), ("AP75", 0.75)])
+def test_leave_one_out_of_one_slot_equals_the_scorecards_row(tmp_path, metric, iou):
+    """slot=t gives the class's AP at that IoU alone, equal to the bit to the
+    scorecard's per-class AP50 / AP75 re-scored with the image's weight 0."""
+    _, _, truth, predictions = _files(tmp_path, 4, score_levels=10)
+    records = match(truth, predictions, "coco")
+    slot = [float(t) for t in records.thresholds[:, 0]].index(iou)
+    masks = (None, truth.tag_mask("night"))
+    for k, name in enumerate(records.classes):
+        for mask in masks:
+            ap, without = leave_one_out(records, "coco", k, weights=mask, slot=slot)
+            base = np.ones(records.n_images, np.int64) if mask is None else mask
+            assert ap == _rescored(records, "coco", base, name, metric) or np.isnan(ap)
+            for i in range(records.n_images):
+                w = base.copy()
+                w[i] = 0
+                expected = _rescored(records, "coco", w, name, metric)
+                assert without[i] == expected or (np.isnan(expected) and np.isnan(without[i]))

@@ -232,3 +232,33 @@ def test_confusion_totals_match_the_image_lists_counts(client, users, story):
     ).context["grid"]
     shares = [c["share"] for c in normalised[k]["cells"]]
     assert sum(shares) == pytest.approx(1.0)
+
+
+def test_a_size_and_a_metric_rank_by_that_buckets_change(client, users, story):
+    """With a size chosen, ΔAP is the change of that size bucket's AP (scorecard
+    ``AP_<size>``), and with ``metric=AP50`` of the class's AP at IoU 0.5: the listed
+    image's value equals both records re-scored by the engine with its weight 0."""
+    from evaluation import engine
+    from releases.selectors import image_list
+
+    pair = cause.pair_for(users["lead"], story["1.5"].pk, story["split"].pk)
+    mask = pair.truth.tag_mask("night")
+    for query, key in (({"size": "medium"}, "AP_medium"), ({"metric": "AP50"}, "AP50")):
+        listing = image_list.listing_filters({"class": "pedestrian", "tag": "night", **query})
+        rows = image_list.image_rows(pair, listing)
+
+        def value(side, w, key=key):
+            row = engine.score_records(side.records, "coco", weights=w)["per_class"]
+            return row["pedestrian"][key]
+
+        change = value(pair.candidate, mask) - value(pair.reference, mask)
+        worst = rows["order"][0]
+        w = mask.copy()
+        w[worst] = 0
+        without = value(pair.candidate, w) - value(pair.reference, w)
+        assert rows["contribution"][worst] == pytest.approx(change - without, abs=1e-12)
+        assert rows["contribution"][worst] < 0
+    client.force_login(users["engineer"])
+    url = f"/versions/{story['1.5'].pk}/images/?split={story['split'].pk}&metric=AP90"
+    page = client.get(url).content.decode()
+    assert "metric: &#x27;AP90&#x27; is not one of AP, AP50, AP75" in page
