@@ -165,6 +165,22 @@ class Scorecard(models.Model):
         return f"scorecard of {self.evaluation}"
 
 
+class ErrorBreakdown(models.Model):
+    """TIDE's error breakdown of a scorecard (``evaluation/breakdowns.py``), stored at
+    scoring time or on first use for older scorecards; append-only."""
+
+    scorecard = models.OneToOneField(
+        Scorecard, on_delete=models.CASCADE, related_name="error_breakdown"
+    )
+    records_sha256 = models.CharField(max_length=64, help_text="Of the records it came from.")
+    engine_version = models.CharField(max_length=16)
+    breakdown = models.JSONField()
+    created_at = models.DateTimeField(auto_now_add=True)
+
+    def __str__(self):
+        return f"error breakdown of {self.scorecard}"
+
+
 class ClassScore(models.Model):
     """One class of one scorecard, as a row, so trends are plain SQL."""
 

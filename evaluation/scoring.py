@@ -9,7 +9,7 @@ from django.core.files import File
 from django.db import transaction
 from django.utils import timezone
 
-from . import engine, jobs, signals
+from . import breakdowns, engine, jobs, signals
 from .models import ClassScore, Evaluation, PredictionFile, Scorecard, SliceScore
 from .protocols import resolve as resolve_protocol
 from .rows import class_rows, slice_rows
@@ -110,6 +110,7 @@ def _store(evaluation, result, records, record_count):
                     scorecard.save()
                     ClassScore.objects.bulk_create(class_rows(scorecard, result))
                     SliceScore.objects.bulk_create(slice_rows(scorecard, result))
+                    breakdowns.store(scorecard, records)
                     PredictionFile.objects.filter(pk=evaluation.predictions_id).update(
                         record_count=record_count
                     )

@@ -20,6 +20,7 @@ APPEND_ONLY = {
     "evaluation_scorecard": "stored results",
     "evaluation_classscore": "stored results",
     "evaluation_slicescore": "stored results",
+    "evaluation_errorbreakdown": "stored results",
     "evaluation_storedprotocol": "a stored protocol",
 }
 # Columns of a finished evaluation that nothing may change (progress, attempts and the

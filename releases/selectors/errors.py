@@ -27,16 +27,16 @@ _BREAKDOWNS = {}
 
 
 def breakdown_of(side):
-    """``engine.tide.error_breakdown`` of one version's scorecard on a split (kept per
-    records file: it never changes once stored)."""
-    from evaluation import engine, outcomes
-    from evaluation.engine import tide
+    """``engine.tide.error_breakdown`` of one version's scorecard on a split: stored at
+    scoring time (``evaluation.breakdowns``; an older scorecard's computed once and
+    stored), kept per records file in the process."""
+    from evaluation import breakdowns
 
     card = side.card
     key = (card.pk, card.records_sha256)
     found = _BREAKDOWNS.get(key)  # .get: another thread may clear it meanwhile
     if found is None:
-        found = tide.error_breakdown(outcomes.records_of(card), engine.get_protocol(card.protocol))
+        found = breakdowns.breakdown_of(card)
         if len(_BREAKDOWNS) > 64:
             _BREAKDOWNS.clear()
         _BREAKDOWNS[key] = found
