@@ -152,22 +152,29 @@ def _junk(name):
     return name.endswith("/") or name.startswith("__MACOSX/") or base.startswith(".")
 
 
-def attach_images(split, *, archive=None, files=(), url_template="", created_by=""):
+def attach_images(
+    split, *, archive=None, files=(), url_template="", created_by="", on_attached=None
+):
     """Give ``split`` its images: a zip ``archive``, uploaded ``files`` or a
     ``url_template``. Each file is checked (type by its first bytes, size, a name the
     split's ``file_name`` lists); the first bad one refuses the whole upload, naming
-    the file. Returns the ``SplitImages`` row. A split has one image source."""
+    the file. Returns the ``SplitImages`` row. A split has one image source.
+    ``on_attached(row)`` runs in the row's transaction (the caller's audit event): if
+    it raises, the row is not kept and the stored files are deleted."""
+    then = on_attached or (lambda row: None)
     if SplitImages.objects.filter(split=split).exists():
         raise UploadError(f"{split} already has images", path="images")
     if url_template:
         try:
             with transaction.atomic():
-                return SplitImages.objects.create(
+                row = SplitImages.objects.create(
                     split=split,
                     source=SplitImages.Source.URL,
                     url_template=check_url_template(url_template),
                     created_by=created_by,
                 )
+                then(row)
+                return row
         except IntegrityError:
             raise UploadError(f"{split} already has images", path="images") from None
     names = file_names(split)
@@ -192,13 +199,15 @@ def attach_images(split, *, archive=None, files=(), url_template="", created_by=
             if not stored:
                 raise UploadError("no image files were uploaded", path="images")
             with transaction.atomic():
-                return SplitImages.objects.create(
+                row = SplitImages.objects.create(
                     split=split,
                     source=SplitImages.Source.FILES,
                     root=root,
                     file_count=len(stored),
                     created_by=created_by,
                 )
+                then(row)
+                return row
     except BaseException:
         for name in stored:
             default_storage.delete(name)

@@ -159,6 +159,7 @@ class AuditEvent(models.Model):
         REJECTED = "rejected"
         OVERRIDE = "override"
         CONTENT_MISMATCH = "content mismatch"
+        IMAGES_ATTACHED = "split images attached"
 
     kind = models.CharField(max_length=24, choices=Kind.choices)
     actor = models.CharField(max_length=150, help_text="Username, or 'system' for workers.")

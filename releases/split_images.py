@@ -5,14 +5,16 @@ from django.core.exceptions import PermissionDenied
 
 from evaluation import images
 
-from . import selectors
+from . import audit, selectors
+from .models import AuditEvent
 
 
 def attach_split_images(user, split, *, archive=None, files=(), url_template=""):
     """Attach images to ``split``: a zip ``archive``, uploaded ``files`` or a
     ``url_template``. Splits are shared benchmarks: engineers and leads of any team may
     (as they may load splits). Bad files raise ``UploadError`` naming the file;
-    nothing is half-stored."""
+    nothing is half-stored. The "split images attached" audit event is written in the
+    row's transaction."""
     if not selectors.can_load_splits(user):
         raise PermissionDenied("only engineers and leads give splits their images")
     given = sum(bool(x) for x in (archive, list(files), url_template))
@@ -22,10 +24,25 @@ def attach_split_images(user, split, *, archive=None, files=(), url_template="")
         raise UploadError(
             "give one of: a zip archive, image files, or a URL template", path="images"
         )
+
+    def recorded(row):
+        audit.record_event(
+            AuditEvent.Kind.IMAGES_ATTACHED,
+            user,
+            f"split:{split.pk}",
+            {
+                "split": str(split),
+                "source": row.source,
+                "file_count": row.file_count,
+                "url_template": row.url_template,
+            },
+        )
+
     return images.attach_images(
         split,
         archive=archive,
         files=files,
         url_template=url_template,
         created_by=user.get_username(),
+        on_attached=recorded,
     )
