@@ -115,7 +115,8 @@ class MissRateProtocol:
     headline_level: str = "reasonable"
 
     def record(self):
-        """The full protocol record stored beside every number."""
+        """The full protocol record stored beside every number; ``levels`` lists the
+        setups as ``difficulty``'s record lists its levels (``name`` first)."""
         return {
             "name": self.name,
             "version": self.version,
@@ -124,10 +125,10 @@ class MissRateProtocol:
             "metric": "miss_rate",
             "lower_is_better": True,
             "variant": self.variant,
-            "setups": {
-                s.name: {"height": list(s.height), "visibility": list(s.visibility)}
+            "levels": [
+                {"name": s.name, "height": list(s.height), "visibility": list(s.visibility)}
                 for s in self.setups
-            },
+            ],
             "iou_threshold": MIN_OVERLAP,
             "ignore_overlap": "intersection over the detection's area >= 0.5",
             "height_expansion": HEIGHT_EXPANSION,

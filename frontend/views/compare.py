@@ -12,6 +12,7 @@ from releases import selectors
 from releases.selectors import errors
 
 from .lookup import detector_or_404
+from .miss_rate import embed
 
 
 @login_required
@@ -30,6 +31,7 @@ def compare(request, detector_id):
     splits = selectors.compare_versions(reference, candidate)
     series = [f"{reference.label} (reference)", f"{candidate.label} (candidate)"]
     for entry in splits:
+        embed(entry)
         data = {
             "series": series,
             "classes": {

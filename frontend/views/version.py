@@ -10,6 +10,7 @@ from releases import selectors, services
 from releases.selectors import errors
 
 from .lookup import version_or_404
+from .miss_rate import embed
 
 
 @login_required
@@ -21,6 +22,7 @@ def version(request, version_id):
     suite = selectors.shown_suite(found, page["verdict"])
     splits = selectors.version_scorecards(found, suite)
     for entry in splits:
+        embed(entry)
         if entry["card"]:
             per_class = entry["card"].result["per_class"]
             data = {

@@ -1,6 +1,7 @@
 """The compare page: deltas between two versions and what marks them."""
 
 from ..models import PredictionSet
+from . import miss_rate
 from .scores import _class_rows, _scorecards
 
 
@@ -115,7 +116,8 @@ def _stored_intervals(reference, candidate, pairs, protocol):
 
 def compare_versions(reference, candidate):
     """Per shared split: per-class AP deltas (candidate - reference), worst first,
-    tag-slice deltas, both versions' precision-recall curves, and the intervals that
+    tag-slice deltas, both versions' precision-recall curves (and miss-rate-versus-FPPI
+    curves of the pedestrian setups, ``miss_rate``), and the intervals that
     decide whether a delta is marked: from the candidate's judgement against this
     reference, else computed on request (``interval_state``: None, queued, done or
     failed; ``missing_intervals`` when a delta has none and none is being computed)."""
@@ -148,6 +150,7 @@ def compare_versions(reference, candidate):
     stored = _stored_intervals(reference, candidate, pairs, protocol)
     used = [c for pair in by_version.values() for c in pair.values()]
     rows = _class_rows(used)
+    miss_rate_charts = miss_rate.compare_charts(reference, candidate, sets)
     tag_ap = {}
     for s in SliceScore.objects.filter(scorecard__in=used, kind="tag"):
         tag_ap[(s.scorecard_id, s.name, s.class_name or "mean")] = s.ap
@@ -200,6 +203,7 @@ def compare_versions(reference, candidate):
                 "deltas": deltas,
                 "tags": tag_rows,
                 "curves": curves,
+                "miss_rate": miss_rate_charts.get(split.pk, []),
                 "interval_state": state,
                 "missing_intervals": state != "done"
                 and any(d["delta"] is not None and not d["interval"] for d in deltas),

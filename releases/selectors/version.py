@@ -1,11 +1,13 @@
 """The version page: each split's scorecard."""
 
+from . import miss_rate
 from .scores import _class_rows, _scorecards, summary_items
 
 
 def version_scorecards(version, suite=None):
     """Per split: the primary scorecard with its class and slice rows, the headline of
-    every other protocol, and (``deployed``) precision, recall and F1 at the deployed
+    every other protocol, the miss-rate-versus-FPPI charts of the pedestrian setups
+    (``miss_rate``), and (``deployed``) precision, recall and F1 at the deployed
     score threshold(s) of ``suite`` (default: the detector's current suite). A fixed
     number of queries (plus one match-records file read per scored split)."""
     from evaluation.models import SliceScore
@@ -47,6 +49,7 @@ def version_scorecards(version, suite=None):
                     if p != detector.primary_protocol and (ps.pk, p) in cards
                 ],
                 "deployed": deployed_numbers(card, suite, detector.classes) if card else None,
+                "miss_rate": miss_rate.version_charts(version, cards, ps),
             }
         )
     return out

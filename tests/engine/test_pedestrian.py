@@ -451,7 +451,8 @@ def test_cli_prints_setups_and_strict_json(tmp_path, capsys):
     result = json.loads(capsys.readouterr().out)
     assert result["headline"] == pytest.approx(0.5, rel=1e-12)
     assert result["protocol"]["variant"] == "cityscale"
-    assert result["protocol"]["setups"]["small"] == {
+    assert result["protocol"]["levels"][1] == {
+        "name": "small",
         "height": [50.0, 75.0],
         "visibility": [0.65, None],
     }

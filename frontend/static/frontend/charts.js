@@ -76,6 +76,78 @@
     window.benchbookCharts[canvas.id] = chart;
   }
 
+  const DECADES = [1e-5, 1e-4, 1e-3, 1e-2, 1e-1, 1, 10, 100, 1000];
+  const MISS_TICKS = [0.01, 0.02, 0.05, 0.1, 0.2, 0.3, 0.4, 0.5, 0.64, 0.8, 1];
+  function ticks(scale, values) {
+    return values.filter(v => v >= scale.min * 0.999 && v <= scale.max * 1.001).map(v => ({ value: v }));
+  }
+  function label(value) { return String(+Number(value).toPrecision(2)); }
+
+  function missRate(canvas) {
+    // Miss rate against false positives per image, both axes logarithmic (as the
+    // pedestrian toolbox plots it). {series, setups, classes, curves: {setup: {class:
+    // {series: {fppi, miss_rate, lamr}}}}}; a stored curve holds, per distinct FPPI,
+    // the lowest miss rate reached there. FPPI 0 is drawn on the left edge and a miss
+    // rate of 0 on the bottom edge (a log axis has no 0).
+    const d = data(canvas.dataset.source);
+    const setup = document.getElementById(canvas.dataset.setup);
+    const cls = document.getElementById(canvas.dataset.class);
+    function entry() { return (d.curves[setup.value] || {})[cls.value] || {}; }
+    function bounds() {
+      let x = 1e-2, y = 5e-2;
+      Object.values(entry()).forEach(c => {
+        c.fppi.forEach(v => { if (v > 0) x = Math.min(x, v); });
+        c.miss_rate.forEach(v => { if (v > 0) y = Math.min(y, v); });
+      });
+      return { x: x / 2, y: y / 2 };
+    }
+    function datasets(low) {
+      const e = entry();
+      return d.series.map((name, i) => {
+        const c = e[name] || { fppi: [], miss_rate: [], lamr: null };
+        const lamr = c.lamr === null || c.lamr === undefined ? "—" : c.lamr.toFixed(3);
+        return {
+          label: `${name}: log-average miss rate ${lamr}`,
+          data: c.fppi.map((x, j) => ({ x: Math.max(x, low.x), y: Math.max(c.miss_rate[j], low.y) })),
+          borderColor: PALETTE[i % PALETTE.length], backgroundColor: PALETTE[i % PALETTE.length],
+          borderDash: DASHES[i % DASHES.length], pointRadius: 0, showLine: true, stepped: "after",
+        };
+      });
+    }
+    const low = bounds();
+    const chart = new Chart(canvas, {
+      type: "scatter",
+      data: { datasets: datasets(low) },
+      options: {
+        responsive: true, maintainAspectRatio: false, animation: false,
+        scales: {
+          // Decades on x; on y the toolbox's own ticks (.05, .1 … .5, .64, .8, 1).
+          x: axis("False positives per image (log)", {
+            type: "logarithmic", min: low.x,
+            afterBuildTicks: scale => { scale.ticks = ticks(scale, DECADES); },
+            ticks: { callback: label, autoSkip: false, maxRotation: 0 },
+          }),
+          y: axis("Miss rate (log, 0–1)", {
+            type: "logarithmic", min: low.y, max: 1,
+            afterBuildTicks: scale => { scale.ticks = ticks(scale, MISS_TICKS); },
+            ticks: { callback: label, autoSkip: false },
+          }),
+        },
+        plugins: { legend: { position: "bottom" } },
+      },
+    });
+    function refresh() {
+      const b = bounds();
+      chart.data.datasets = datasets(b);
+      chart.options.scales.x.min = b.x;
+      chart.options.scales.y.min = b.y;
+      chart.update();
+    }
+    setup.addEventListener("change", refresh);
+    cls.addEventListener("change", refresh);
+    window.benchbookCharts[canvas.id] = chart;
+  }
+
   // Live status of queued and running evaluations: each bar polls its evaluation; a
   // failure shows its message at once; when every evaluation on the page has finished
   // and one was scored, the page loads again to show the numbers.
@@ -119,6 +191,7 @@
   document.addEventListener("DOMContentLoaded", () => {
     document.querySelectorAll("canvas[data-chart=history]").forEach(history);
     document.querySelectorAll("canvas[data-chart=curves]").forEach(curves);
+    document.querySelectorAll("canvas[data-chart=missrate]").forEach(missRate);
     progress();
   });
 })();
