@@ -16,6 +16,9 @@ def pair_iou(det_boxes, gt_boxes, gt_crowd, *, pixel_offset=0.0):
     ``bbIou``). The operation order follows ``bbIou`` so results agree bit for bit.
     A box of negative width or height overlaps nothing at offset 0: the intersection
     width is at most the smaller of the two widths (``bbIou`` skips ``w <= 0``).
+    Non-finite coordinates follow the same C arithmetic: ``fmin``/``fmax`` ignore a
+    NaN operand, a NaN intersection side is not skipped at offset 0 (it is in the
+    devkit's ``iw>0 & ih>0``), so the IoU may be NaN, inf or beyond 1.
 
     Parameters
     ----------
@@ -26,7 +29,7 @@ def pair_iou(det_boxes, gt_boxes, gt_crowd, *, pixel_offset=0.0):
 
     Returns
     -------
-    ndarray of shape (n,), float64 in [0, 1].
+    ndarray of shape (n,), float64 (in [0, 1] for finite boxes of non-negative size).
 
     Examples
     --------
@@ -38,8 +41,10 @@ def pair_iou(det_boxes, gt_boxes, gt_crowd, *, pixel_offset=0.0):
     gx, gy, gw, gh = gt_boxes.T
     # Overflow gives inf, as in the reference's C doubles (IoU 0 then); no warning.
     with np.errstate(over="ignore", divide="ignore", invalid="ignore"):
-        iw = np.minimum(dw + dx, gw + gx) - np.maximum(dx, gx)
-        ih = np.minimum(dh + dy, gh + gy) - np.maximum(dy, gy)
+        # fmin/fmax: C99's (bbIou) and MATLAB's min/max (the devkit) return the other
+        # operand when one is NaN; np.minimum would propagate the NaN.
+        iw = np.fmin(dw + dx, gw + gx) - np.fmax(dx, gx)
+        ih = np.fmin(dh + dy, gh + gy) - np.fmax(dy, gy)
         if pixel_offset:
             iw = iw + pixel_offset
             ih = ih + pixel_offset
@@ -48,7 +53,10 @@ def pair_iou(det_boxes, gt_boxes, gt_crowd, *, pixel_offset=0.0):
         else:
             det_area = dw * dh
             gt_area = gw * gh
-        overlap = (iw > 0) & (ih > 0)
+        if pixel_offset:  # the devkit: "if iw>0 & ih>0" (false for NaN)
+            overlap = (iw > 0) & (ih > 0)
+        else:  # bbIou skips a pair on "w<=0" / "h<=0" only (false for NaN)
+            overlap = ~(iw <= 0) & ~(ih <= 0)
         # Only overlapping pairs multiply: two far-apart (or negative-size) boxes can
         # have both gaps huge, and their product would overflow for nothing.
         inter = np.where(overlap, iw, 0.0) * np.where(overlap, ih, 0.0)

@@ -24,6 +24,7 @@ the number of detections. Columns (``COLUMNS``):
 import csv
 import io
 import json
+import math
 
 import numpy as np
 
@@ -134,10 +135,24 @@ def csv_chunks(records, truth, block_rows=BLOCK_ROWS):
         yield buffer.getvalue()
 
 
+#: Non-finite numbers (scored as given from NaN/Infinity inputs) in JSON Lines: strict
+#: JSON has no such numbers, so they are written as these strings (Python's literals).
+NON_FINITE_TEXT = {"nan": "NaN", "inf": "Infinity", "-inf": "-Infinity"}
+
+
+def _strict(value):
+    if isinstance(value, float) and not math.isfinite(value):
+        return NON_FINITE_TEXT[repr(value)]
+    return value
+
+
 def jsonl_chunks(records, truth, block_rows=BLOCK_ROWS):
-    """Yield JSON Lines text, one object per row (missing values are null)."""
+    """Yield JSON Lines text, one object per row (missing values are null; a NaN or
+    infinite score, coordinate or IoU is the string "NaN", "Infinity", "-Infinity")."""
     encode = json.JSONEncoder(allow_nan=False, separators=(",", ":")).encode
     for block in row_blocks(records, truth, block_rows):
+        for name in ("score", "x", "y", "w", "h", "iou"):
+            block[name] = [_strict(v) for v in block[name]]
         yield "".join(
             encode(dict(zip(COLUMNS, values))) + "\n"
             for values in zip(*(block[c] for c in COLUMNS))

@@ -69,7 +69,7 @@ def _candidate_pairs(truth, det_boxes, det_group, protocol, min_threshold):
         crowd[pair_gt],
         pixel_offset=protocol.pixel_offset,
     )
-    keep = iou >= min_threshold
+    keep = (iou >= min_threshold) | np.isnan(iou)  # NaN: see ``_walk_sequentially``
     return pair_det[keep], pair_gt[keep], iou[keep]
 
 
@@ -146,7 +146,8 @@ def match(truth, predictions, protocol, *, reasons=True):
     det_cls = predictions.cls[order]
     det_boxes = predictions.boxes[order]
     det_group = det_image.astype(np.int64) * n_classes + det_cls
-    det_area = det_boxes[:, 2] * det_boxes[:, 3]
+    with np.errstate(invalid="ignore", over="ignore"):  # inf * 0: NaN, as in loadRes
+        det_area = det_boxes[:, 2] * det_boxes[:, 3]
 
     base_ignore = truth.crowd | truth.ignore | truth.difficult
     gt_ignored = base_ignore[None, :] | _outside(truth.box_area, protocol.area_ranges)
@@ -155,21 +156,41 @@ def match(truth, predictions, protocol, *, reasons=True):
     pair_det, pair_gt, pair_iou_ = _candidate_pairs(
         truth, det_boxes, det_group, protocol, float(effective.min(initial=1.0))
     )
-    if protocol.matching == BEST_OVERLAP:
+    undefined = np.isnan(pair_iou_)
+    if protocol.matching == BEST_OVERLAP:  # the devkit's "ov>ovmax" is false for NaN
         config, det, box, iou = _best_overlap(
-            pair_det, pair_gt, pair_iou_, det_cls, effective, gt_ignored
-        )
-    else:
-        config, det, box, iou = _greedy(
-            pair_det,
-            pair_gt,
-            pair_iou_,
-            rank,
-            det_group,
+            pair_det[~undefined],
+            pair_gt[~undefined],
+            pair_iou_[~undefined],
             det_cls,
             effective,
             gt_ignored,
-            truth.crowd,
+        )
+    else:
+        walk = np.isin(det_group[pair_det], det_group[pair_det[undefined]])
+        config, det, box, iou = _concat(
+            _greedy(
+                pair_det[~walk],
+                pair_gt[~walk],
+                pair_iou_[~walk],
+                rank,
+                det_group,
+                det_cls,
+                effective,
+                gt_ignored,
+                truth.crowd,
+            )
+            + _walk_sequentially(
+                np.unique(det_group[pair_det[walk]]),
+                det_group,
+                det_boxes,
+                rank,
+                det_cls,
+                truth,
+                protocol,
+                effective,
+                gt_ignored,
+            )
         )
 
     records = MatchRecords(
@@ -221,7 +242,67 @@ def _greedy(pair_det, pair_gt, pair_iou_, rank, det_group, det_cls, effective, g
         gt_ignored,
         crowd,
     )
-    return _concat(found)
+    return found
+
+
+def _walk_sequentially(
+    groups, det_group, det_boxes, rank, det_cls, truth, protocol, effective, gt_ignored
+):
+    """Matches in the (image, class) groups where some IoU is NaN, by the loop of
+    pycocotools 2.0.11 ``COCOeval.evaluateImg`` written out.
+
+    There a detection keeps the candidate ``m`` unless ``ious[d, g] < iou``; once
+    ``iou`` is NaN that comparison is false for every later box, so the next eligible
+    box (even one of IoU 0) takes over, and a NaN IoU can win. No vectorised rule
+    reproduces that, so these (rare) groups are walked here: boxes ordered regular
+    before ignored (stable), detections by rank, a crowd box reusable, the scan
+    stopping at the first ignored box once a regular one is held.
+    """
+    found = []
+    if not len(groups):
+        return found
+    n_slots, n_areas = len(effective), len(gt_ignored)
+    n_classes = len(truth.classes)
+    gt_group = truth.box_image.astype(np.int64) * n_classes + truth.box_class
+    for group in groups.tolist():
+        dets = np.flatnonzero(det_group == group)
+        dets = dets[np.argsort(rank[dets], kind="stable")]
+        boxes = np.flatnonzero(gt_group == group)
+        cls = int(det_cls[dets[0]])
+        for a in range(n_areas):
+            order = boxes[np.argsort(gt_ignored[a, boxes], kind="stable")]
+            ignored = gt_ignored[a, order].tolist()
+            crowd = truth.crowd[order].tolist()
+            ious = pair_iou(
+                np.repeat(det_boxes[dets], len(order), axis=0),
+                np.tile(truth.boxes[order], (len(dets), 1)),
+                np.tile(truth.crowd[order], len(dets)),
+                pixel_offset=protocol.pixel_offset,
+            ).reshape(len(dets), len(order))
+            for t in range(n_slots):
+                taken = [False] * len(order)
+                for dind, d in enumerate(dets.tolist()):
+                    iou, m = float(effective[t, cls]), -1
+                    for gind, value in enumerate(ious[dind].tolist()):
+                        if taken[gind] and not crowd[gind]:
+                            continue
+                        if m > -1 and not ignored[m] and ignored[gind]:
+                            break
+                        if value < iou:
+                            continue
+                        iou, m = value, gind
+                    if m == -1:
+                        continue
+                    taken[m] = True
+                    found.append(
+                        (
+                            np.array([a * n_slots + t]),
+                            np.array([d]),
+                            np.array([order[m]]),
+                            np.array([ious[dind, m]]),
+                        )
+                    )
+    return found
 
 
 def _first_claims(pair_det, pair_gt, pair_iou_, det_cls, effective, crowd, n_areas):

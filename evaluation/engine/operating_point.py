@@ -55,8 +55,8 @@ def best_f1(tp, fp, scores, n_pos):
 
     A cut keeps every detection scoring at or above it, so tied detections are kept
     or dropped together. Raw precision is used, not the envelope. On equal F1 the
-    higher threshold (fewer detections) wins. Returns None without positives or
-    detections.
+    higher threshold (fewer detections) wins. Cuts lie at finite scores only. Returns
+    None without positives or detections (or without a finite score).
 
     Examples
     --------
@@ -67,6 +67,11 @@ def best_f1(tp, fp, scores, n_pos):
     if not n_pos or not len(scores):
         return None
     last_of_run = np.flatnonzero(np.r_[scores[1:] != scores[:-1], True])
+    # A cut is a finite score: NaN scores (ranked last, as pycocotools ranks them)
+    # pass no threshold, and an infinite one would not be a number in JSON.
+    last_of_run = last_of_run[np.isfinite(scores[last_of_run])]
+    if not len(last_of_run):
+        return None
     f1 = 2.0 * tp[last_of_run] / (tp[last_of_run] + fp[last_of_run] + n_pos)
     best = last_of_run[int(np.argmax(f1))]
     tp_b, fp_b = float(tp[best]), float(fp[best])

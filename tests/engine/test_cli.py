@@ -214,3 +214,31 @@ def test_ids_beyond_64_bits_in_either_file_exit_2_naming_them(
     assert code == 2, err
     assert f"{name}: {locator}: {value} is outside the supported range of ids" in err
     assert "Traceback" not in err
+
+
+@pytest.mark.parametrize("protocol", sorted(PRESETS))
+def test_nan_and_infinity_inputs_give_strict_json_output(files, capsys, tmp_path, protocol):
+    """Inputs holding NaN/Infinity literals are scored; the CLI's JSON and the JSON
+    Lines export stay strict JSON (RFC 8259 has no NaN): Python's json, told to
+    refuse the literals, reads them back."""
+    gt = files.write(
+        "gt.json",
+        '{"images": [{"id": 1}], "categories": [{"id": 1, "name": "car"}], "annotations": '
+        '[{"id": 1, "image_id": 1, "category_id": 1, "bbox": [0, 0, 10, NaN], "area": NaN}]}',
+    )
+    dt = files.write(
+        "dt.json",
+        '[{"image_id": 1, "category_id": 1, "bbox": [0, 0, 10, 10], "score": NaN},'
+        ' {"image_id": 1, "category_id": 1, "bbox": [0, Infinity, 10, 10], "score": -Infinity}]',
+    )
+    out = tmp_path / "records.jsonl"
+    argv = ["score", "--truth", str(gt), "--predictions", str(dt), "--format", "json"]
+    assert main([*argv, "--protocol", protocol, "--records-out", str(out)]) == 0
+
+    def refuse(literal):
+        raise AssertionError(f"non-strict JSON: {literal}")
+
+    result = json.loads(capsys.readouterr().out, parse_constant=refuse)
+    assert result["counts"]["boxes"]["predictions"]["non_finite_score"] == 2
+    rows = [json.loads(line, parse_constant=refuse) for line in out.read_text().splitlines()]
+    assert {row["score"] for row in rows if row["row"] == "detection"} == {"NaN", "-Infinity"}

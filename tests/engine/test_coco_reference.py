@@ -9,7 +9,8 @@ and real-world files under the default box policy (``keep``): ground truth overh
 the frame, detections overhanging it or lying wholly outside, zero-area boxes, boxes
 of negative width and/or height in both files (corners swapped, or the sign flipped;
 ground-truth area given positive or as the negative w*h), images without width/height,
-and ids beyond 2^53.
+ids beyond 2^53, and the literals NaN, Infinity and -Infinity (which Python's json
+module, and so pycocotools, reads) in scores, box coordinates and areas.
 """
 
 import numpy as np
@@ -85,8 +86,11 @@ scenarios = st.fixed_dictionaries(
         "negative_rate": st.sampled_from([0.0, 0.1, 0.3]),
         "sizeless_rate": st.sampled_from([0.0, 0.5, 1.0]),
         "big_ids": st.booleans(),
+        "non_finite_rate": st.sampled_from([0.0, 0.0, 0.05, 0.3]),
     }
 )
+
+NON_FINITE = (float("nan"), float("inf"), -float("inf"))
 
 BIG = 2**53 + 1  # beyond float64's exact integers; pycocotools keeps Python ints
 
@@ -143,6 +147,22 @@ def roughen(rng, split, detections, scenario):
     for im in split["images"]:
         if rng.random() < scenario["sizeless_rate"]:
             del im["width"], im["height"]
+    spoil_rate = scenario["non_finite_rate"]
+
+    def spoil(values):
+        """NaN, Infinity or -Infinity in place of some values: Python's json (which
+        pycocotools reads with) writes and reads them as literals."""
+        return [
+            NON_FINITE[int(rng.integers(0, 3))] if rng.random() < spoil_rate else v for v in values
+        ]
+
+    if spoil_rate:
+        for ann in split["annotations"]:
+            ann["bbox"] = spoil(ann["bbox"])
+            (ann["area"],) = spoil([ann["area"]])
+        for det in detections:
+            det["bbox"] = spoil(det["bbox"])
+            (det["score"],) = spoil([det["score"]])
     if scenario["big_ids"]:
         for im in split["images"]:
             im["id"] += BIG
@@ -363,3 +383,41 @@ def test_equal_iou_goes_to_the_later_box(tmp_path):
     ]
     ours, _ = _compare(tmp_path, split, detections)
     assert ours["per_class"]["cyclist"]["tp"] == 2.0
+
+
+NAN, INF = float("nan"), float("inf")
+
+
+def test_nan_and_infinite_values_are_scored_like_pycocotools(tmp_path):
+    """pycocotools 2.0.11 reads NaN/Infinity literals (Python's json) and scores them
+    with IEEE arithmetic: a NaN score ranks last (numpy's mergesort argsort of
+    -score); ``bbIou``'s fmin/fmax ignore a NaN operand, so a detection of NaN width
+    still overlaps [10, 10, 20, 20] by 20 x 20, its area NaN makes the IoU NaN, and
+    ``evaluateImg``'s ``ious[d, g] < iou`` is false for NaN, so it matches (a TP);
+    a NaN ``area`` lies in every size range, an infinite one in none."""
+    split = {
+        "images": [{"id": 1, "width": 100, "height": 100}, {"id": 2}],
+        "annotations": [
+            {"id": 1, "image_id": 1, "category_id": 1, "bbox": [10, 10, 20, 20], "area": NAN},
+            {"id": 2, "image_id": 2, "category_id": 1, "bbox": [NAN, 10, 20, 20], "area": 400},
+            {"id": 3, "image_id": 2, "category_id": 1, "bbox": [50, 50, INF, 20], "area": INF},
+            {"id": 4, "image_id": 2, "category_id": 1, "bbox": [10, 60, 20, 20], "area": 400},
+        ],
+        "categories": [{"id": 1, "name": "car"}],
+    }
+    for ann in split["annotations"]:
+        ann["iscrowd"] = 0
+    detections = [
+        {"image_id": 1, "category_id": 1, "bbox": [10, 10, 20, 20], "score": NAN},
+        {"image_id": 1, "category_id": 1, "bbox": [12, 10, 20, 20], "score": -INF},
+        {"image_id": 2, "category_id": 1, "bbox": [10, 60, NAN, 20], "score": INF},
+        {"image_id": 2, "category_id": 1, "bbox": [50, 50, 30, 20], "score": 0.7},
+        {"image_id": 2, "category_id": 1, "bbox": [5, 10, 20, 20], "score": 0.5},
+    ]
+    ours, reference = _compare(tmp_path, split, detections)
+    assert [as_reference(ours["summary"][k]) for k in COCO_SUMMARY_KEYS] == list(reference.stats)
+    assert ours["per_class"]["car"]["tp"] >= 1.0  # the NaN-IoU match
+    boxes = ours["counts"]["boxes"]
+    assert boxes["truth"]["non_finite"] == 2 and boxes["truth"]["non_finite_area_from_file"] == 2
+    assert boxes["predictions"]["non_finite"] == 1
+    assert boxes["predictions"]["non_finite_score"] == 3

@@ -1,7 +1,8 @@
 """The bounded-memory JSON syntax check of ground-truth files (``json_syntax.check``)
 against a whole-document parse by msgspec (a strict RFC 8259 parser, the one the
 loaders use): on thousands of damaged files — truncated, a byte inserted, deleted or
-replaced by a bracket, comma, colon, quote or backslash — the verdict (valid,
+replaced by a bracket, comma, colon, quote or backslash, some holding Python's NaN and
+-Infinity literals — the verdict (valid,
 truncated, or an error) and the message with its line and column are the same. Slices
 of 16 bytes make every cut land everywhere: inside strings, escapes, numbers."""
 
@@ -14,18 +15,29 @@ import msgspec
 import pytest
 
 from evaluation.engine import InputError, load_truth
-from evaluation.engine.loaders import json_syntax
+from evaluation.engine.loaders import json_literals, json_syntax
 
 from . import whole_file
+
+NAN, INF = float("nan"), float("inf")
 
 
 def _whole(text):
     data = text.encode()
     try:
-        msgspec.json.decode(data, type=msgspec.Raw)
+        json_literals.check_syntax(data)  # msgspec, NaN/Infinity allowed (Python's json)
     except msgspec.DecodeError as e:
         return str(whole_file.decode_error("t.json", e, data))
     return None
+
+
+def _python_json_accepts(text):
+    """Python's json module, which pycocotools reads with (it accepts NaN, Infinity)."""
+    try:
+        json.loads(text)
+    except ValueError:
+        return False
+    return True
 
 
 def _bounded(text):
@@ -41,7 +53,8 @@ def _damaged(rng):
         "info": {"note": 'a\\"b', "n": [1, {"x": None}]},
         "images": [{"id": i, "tags": ["x,]", "y\\\\"]} for i in range(rng.randint(0, 5))],
         "annotations": [
-            {"id": i, "bbox": [1.5, 2, 3e2, 4], "s": 'q"}{'} for i in range(rng.randint(0, 8))
+            {"id": i, "bbox": [1.5, 2, 3e2, rng.choice([4, NAN, -INF])], "s": 'q"}{NaN'}
+            for i in range(rng.randint(0, 8))
         ],
         "categories": [{"id": 1, "name": "c"}],
     }
@@ -70,6 +83,7 @@ def test_bounded_check_agrees_with_a_whole_document_parse(monkeypatch, seed):
             continue
         expected = _whole(text)
         assert _bounded(text) == expected, text
+        assert (expected is None) == _python_json_accepts(text), text
         verdicts.add("valid" if expected is None else expected.split(":")[1])
     assert {"valid", " the JSON ends early", " not valid JSON"} <= verdicts
 

@@ -69,13 +69,13 @@ def _first_image(split_truth):
             "unknown-class.json: record {n}: field 'category_id': class 7 is not one of the split's classes",
         ),
         (
-            "not-finite.json",
+            "nan-class.json",
             lambda ok: (
                 json.dumps(ok)[:-1]
-                + f', {{"image_id": {ok[0]["image_id"]}, "category_id": 1, '
+                + f', {{"image_id": {ok[0]["image_id"]}, "category_id": NaN, '
                 + '"bbox": [1, 2, 3, 4], "score": 1e999}]'
             ),
-            "not-finite.json: record {n}: field 'score': number out of range",
+            "nan-class.json: record {n}: field 'category_id': expected 'int', got 'float'",
         ),
         (
             "short-box.json",
@@ -112,6 +112,29 @@ def test_invalid_predictions_fail_with_the_engines_message(
         assert evaluation.error.startswith(message.replace("{n}", str(len(ok))))
         assert evaluation.error_detail["file"] == name
     assert Scorecard.objects.count() == 0 and ClassScore.objects.count() == 0
+
+
+def test_nan_and_infinity_predictions_are_scored_as_pycocotools_reads_them(
+    version, split, split_truth, users, run_tasks, settings
+):
+    """NaN/Infinity literals and 1e999 (Python's json, and so pycocotools, reads them)
+    are scored under the default box policy and counted; the stored scorecard holds
+    no NaN (PostgreSQL's jsonb would refuse it)."""
+    settings.BENCHBOOK_INLINE_VALIDATION_BYTES = 0
+    ok = detections_for(split_truth)
+    extra = f'{{"image_id": {ok[0]["image_id"]}, "category_id": 1, "bbox": [1, 2, NaN, 4]'
+    text = json.dumps(ok)[:-1] + f", {extra}, " + '"score": -Infinity}, '
+    text += extra.replace("NaN", "3") + ', "score": 1e999}]'
+    prediction_set = run_tasks(
+        services.submit_predictions, version, split, upload("odd.json", text), users["engineer"]
+    )
+    evaluations = Evaluation.objects.filter(predictions=prediction_set.predictions)
+    assert {e.state for e in evaluations} == {"done"}, [e.error for e in evaluations]
+    cards = Scorecard.objects.filter(evaluation__in=evaluations)
+    assert cards.count() == evaluations.count() >= 1
+    for card in cards:
+        counts = card.result["counts"]["boxes"]["predictions"]
+        assert counts["non_finite"] == 1 and counts["non_finite_score"] == 2
 
 
 @pytest.mark.parametrize(

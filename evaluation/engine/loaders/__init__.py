@@ -153,6 +153,9 @@ def _read_truth(path, images, fmt, classes, policy):
         values = cols[name]
         field = name.split("_")[1]
         given = ~np.isnan(values)  # absent from the file: NaN (optional in COCO JSON)
+        if policy == "keep":  # never read (pycocotools neither): an infinite size is none
+            values = cols[name] = np.where(np.isinf(values), np.nan, values)
+            given = ~np.isnan(values)
         checks.fail_at(image_path, given & np.isinf(values), image_locate, field, "must be finite")
         checks.fail_at(
             image_path,
@@ -186,9 +189,16 @@ def _read_truth(path, images, fmt, classes, policy):
     if policy == "reject":
         checks.check_inside(path, boxes, width, height, box_locate, box_fields["bbox"])
     area = cols["box_area"]
-    given = ~np.isnan(area)
-    checks.fail_at(path, given & ~np.isfinite(area), box_locate, "area", "must be a finite number")
-    if policy == "reject":  # pycocotools takes a negative area: outside every size range
+    given = cols.get("box_area_given")
+    given = ~np.isnan(area) if given is None else given
+    if policy == "reject":  # pycocotools takes a NaN area (in every size range), inf
+        checks.fail_at(  # (outside every one) and a negative area (outside too)
+            path,
+            given & ~np.isfinite(area),
+            box_locate,
+            "area",
+            lambda i: f"must be a finite number, got {area[i]} (box policy: reject)",
+        )
         checks.fail_at(
             path,
             given & (area < 0),
@@ -197,7 +207,8 @@ def _read_truth(path, images, fmt, classes, policy):
             lambda i: f"must be >= 0, got {area[i]:g} (box policy: reject)",
         )
     negative_area = int((given & (area < 0)).sum())
-    area = np.where(given, area, boxes[:, 2] * boxes[:, 3])
+    with checks.ieee():
+        area = np.where(given, area, boxes[:, 2] * boxes[:, 3])
 
     road = attributes.finish(path, cols, image_ids, box_locate, path, region_locate)
     names = [cols["class_names"][i] for i in class_order]
@@ -223,6 +234,7 @@ def _read_truth(path, images, fmt, classes, policy):
             **checks.truth_box_counts(boxes, width, height),
             "area_from_file": int(given.sum()),
             "negative_area_from_file": negative_area,
+            "non_finite_area_from_file": int((given & ~np.isfinite(area)).sum()),
         },
         **road,
     )
@@ -263,7 +275,16 @@ def _csv_truth_columns(path, images, classes):
     regions["regions"], regions["region_lines"] = boxes["boxes"][region], boxes["lines"][region]
     if region.any():  # a don't-care row is no box
         keep = ~region
-        for key in ("boxes", "crowd", "difficult", "ignore", "area", "lines", "dont_care"):
+        for key in (
+            "boxes",
+            "crowd",
+            "difficult",
+            "ignore",
+            "area",
+            "area_given",
+            "lines",
+            "dont_care",
+        ):
             boxes[key] = boxes[key][keep]
         for key in ("occlusion", "truncation", "visibility"):
             boxes[key] = boxes[key][keep]
@@ -299,6 +320,7 @@ def _csv_truth_columns(path, images, classes):
         "box_class_ids": label_ids,
         "boxes": boxes["boxes"],
         "box_area": boxes["area"],
+        "box_area_given": boxes["area_given"],
         "crowd": boxes["crowd"],
         "difficult": boxes["difficult"],
         "ignore": boxes["ignore"],
@@ -406,7 +428,14 @@ def _read_predictions(path, truth, fmt, policy, unknown_classes):
         locate_all = locate
         locate = lambda i: locate_all(int(kept_rows[i]))  # noqa: E731
     checks.check_boxes(path, boxes, locate, fields["bbox"], policy)
-    checks.check_finite(path, score, locate, "score")
+    if policy == "reject":  # else scored as pycocotools does: NaN ranks last
+        checks.fail_at(
+            path,
+            ~np.isfinite(score),
+            locate,
+            "score",
+            lambda i: f"must be a finite number, got {score[i]} (box policy: reject)",
+        )
     boxes, box_counts = checks.apply_box_policy(
         path,
         boxes,
@@ -424,5 +453,5 @@ def _read_predictions(path, truth, fmt, policy, unknown_classes):
         dropped=dropped,
         source=str(path),
         box_policy=policy,
-        box_counts=box_counts,
+        box_counts={**box_counts, "non_finite_score": int((~np.isfinite(score)).sum())},
     )

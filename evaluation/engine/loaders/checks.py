@@ -64,7 +64,16 @@ def check_finite(path, array, locate, field):
 
 
 def check_boxes(path, boxes, locate, field="bbox", policy="keep"):
-    """Finite boxes; under the ``reject`` policy also width and height >= 0.
+    """Under the ``reject`` policy: finite boxes, whose sums and area are finite too,
+    width and height >= 0. Under ``keep`` and ``clip`` every box is scored as given.
+
+    Non-finite values (``NaN``, ``Infinity`` in JSON as Python's ``json`` reads them,
+    ``nan``/``inf`` CSV cells, and sums overflowing to inf) are scored with IEEE
+    arithmetic as pycocotools 2.0.11 scores them: ``bbIou`` takes C's ``fmin``/``fmax``,
+    which return the other operand when one is NaN, and skips a pair only when the
+    intersection width or height is ``<= 0`` (false for NaN), so a NaN coordinate can
+    still overlap and a NaN area gives a NaN IoU (see ``boxes.pair_iou`` and the
+    sequential walk in ``matching``). Counted as ``non_finite``.
 
     Zero-area boxes are valid, as in the references: under continuous coordinates
     they overlap nothing (IoU 0, pycocotools ``bbIou``); under the VOC devkit's
@@ -78,8 +87,10 @@ def check_boxes(path, boxes, locate, field="bbox", policy="keep"):
     corners with +1, so ``x_max = x_min - 0.5`` is half a pixel wide there.
     ``reject`` refuses them (counted as ``negative_size`` otherwise).
     """
+    if policy != "reject":
+        return
     check_finite(path, boxes, locate, field)
-    with np.errstate(over="ignore"):
+    with np.errstate(over="ignore", invalid="ignore"):
         extent = np.column_stack(
             [boxes[:, 0] + boxes[:, 2], boxes[:, 1] + boxes[:, 3], boxes[:, 2] * boxes[:, 3]]
         )
@@ -88,10 +99,8 @@ def check_boxes(path, boxes, locate, field="bbox", policy="keep"):
         ~np.isfinite(extent).all(axis=1),
         locate,
         field,
-        lambda i: f"box {boxes[i].tolist()} is too large to compute with",
+        lambda i: f"box {boxes[i].tolist()} is too large to compute with (box policy: reject)",
     )
-    if policy != "reject":
-        return
     fail_at(
         path,
         boxes[:, 2] < 0,
@@ -106,6 +115,10 @@ def check_boxes(path, boxes, locate, field="bbox", policy="keep"):
         field,
         lambda i: f"height must be >= 0, got {boxes[i, 3]:g} (box policy: reject)",
     )
+
+
+def non_finite(boxes):
+    return ~np.isfinite(boxes).all(axis=1)
 
 
 def negative_size(boxes):
@@ -123,6 +136,13 @@ def check_policy(path, policy):
         )
 
 
+#: Non-finite boxes are scored (see ``check_boxes``): their arithmetic may make inf or
+#: NaN without a warning, as the reference's C and Python floats do.
+def ieee():
+    return np.errstate(invalid="ignore", over="ignore")
+
+
+@ieee()
 def _corners(boxes):
     """``(left, top, right, bottom)``: a box of negative size spans from ``x + w``
     to ``x``."""
@@ -142,6 +162,7 @@ def outside_frame(boxes, width, height, tolerance):
     )
 
 
+@ieee()
 def wholly_outside(boxes, width, height):
     """Boxes sharing no area with the frame (False where the size is unknown)."""
     left, top, right, bottom = _corners(boxes)
@@ -183,9 +204,11 @@ def truth_box_counts(boxes, width, height):
         "zero_area": int(zero_area(boxes).sum()),
         "negative_size": int(negative_size(boxes).sum()),
         "on_images_without_size": int((np.isnan(width) | np.isnan(height)).sum()),
+        "non_finite": int(non_finite(boxes).sum()),
     }
 
 
+@ieee()
 def apply_box_policy(path, boxes, width, height, locate, policy, field="bbox"):
     """Apply the box policy to predictions; returns the boxes and what was found.
 
@@ -226,6 +249,7 @@ def apply_box_policy(path, boxes, width, height, locate, policy, field="bbox"):
     counts["zero_area"] = int(zero_area(boxes).sum())
     counts["negative_size"] = int(negative_size(boxes).sum())
     counts["on_images_without_size"] = int((np.isnan(width) | np.isnan(height)).sum())
+    counts["non_finite"] = int(non_finite(boxes).sum())
     return boxes, counts
 
 

@@ -12,7 +12,7 @@ import msgspec
 import numpy as np
 
 from ..errors import InputError
-from . import json_syntax
+from . import json_literals, json_syntax
 from .checks import text_start
 
 CHUNK_BYTES = 4 << 20
@@ -218,7 +218,7 @@ class _Records:
             for field_key in [k for k in self.out_of_range if k[0] == key]:
                 del self.out_of_range[field_key]
         try:
-            decoded = msgspec.json.decode(records, type=_RECORDS[key])
+            decoded = json_literals.decode(records, _RECORDS[key])
         except (msgspec.ValidationError, msgspec.DecodeError) as e:
             self.error = (e, key, self.count[key], piece_at, prefix())
             self.parts = None  # no more columns: the file is rejected
@@ -258,6 +258,7 @@ class _Records:
             "box_class_ids": self.ids([a.category_id for a in anns], key, "category_id", base),
             "boxes": np.array([a.bbox for a in anns], np.float64).reshape(-1, 4),
             "box_area": given("area"),
+            "box_area_given": np.array([a.area is not None for a in anns], bool),
             "crowd": np.array([bool(a.iscrowd) for a in anns], bool),
             "difficult": np.array([bool(a.difficult) for a in anns], bool),
             "ignore": np.zeros(len(anns), bool),
@@ -307,7 +308,7 @@ class _Records:
         """Raise the type (or encoding) error of the outer object with its arrays
         emptied: a missing array, or one given as something else."""
         try:
-            msgspec.json.decode(outline, type=kind)
+            json_literals.decode(outline, kind)
         except msgspec.ValidationError as e:
             if str(e).startswith("Expected `object`, got `array`"):
                 raise _array_given(self.path) from None
@@ -404,7 +405,7 @@ def _piece_error(path, error, buf, where, shift):
 
 
 def _decode_slice(piece):
-    return msgspec.json.decode(piece, type=list[_Detection])
+    return json_literals.decode(piece, list[_Detection])
 
 
 def _stream(path, f, skip, build=True):
@@ -432,7 +433,7 @@ def _stream(path, f, skip, build=True):
         )
     if first != b"[":
         try:
-            msgspec.json.decode(buf[lead:])
+            json_literals.check_syntax(buf[lead:])
         except msgspec.DecodeError as e:
             where.advance(buf[:lead])
             raise _piece_error(path, e, buf[lead:], where, 0) from None

@@ -139,7 +139,7 @@ def read_boxes(path):
     """Columns of a ground-truth boxes CSV."""
     numeric = ("area", *ATTRIBUTE_COLUMNS)
     flags = ("crowd", "difficult", "ignore", "dont_care")
-    out = {k: [] for k in ("image_id", "label", "boxes", *flags, *numeric, "lines")}
+    out = {k: [] for k in ("image_id", "label", "boxes", *flags, *numeric, "area_given", "lines")}
     for block, lines in read_blocks(path, BOX_COLUMNS, BOX_OPTIONAL + ATTRIBUTE_COLUMNS):
         n = len(lines)
         out["image_id"].extend(block["image_id"])
@@ -155,8 +155,10 @@ def read_boxes(path):
                 out[name].append(_floats(path, values, lines, name))
             else:
                 out[name].append(np.full(n, np.nan))
+        # an area cell written as nan is a NaN area, as in pycocotools; empty: none
+        out["area_given"].append(np.array([bool(v) for v in block.get("area", [""] * n)], bool))
         out["lines"].append(np.array(lines, np.int64))
-    for key in ("boxes", *flags, *numeric, "lines"):
+    for key in ("boxes", *flags, *numeric, "area_given", "lines"):
         out[key] = (
             np.concatenate(out[key]) if out[key] else np.zeros((0, 4) if key == "boxes" else 0)
         )

@@ -25,6 +25,7 @@ import msgspec
 import numpy as np
 
 from ..errors import InputError
+from . import json_literals
 
 CHUNK_BYTES = 4 << 20
 #: No record of a ground-truth array is this long: past it, checking stops.
@@ -166,7 +167,7 @@ class _Checker:
             )
         try:
             if not decoded:
-                msgspec.json.decode(view, type=msgspec.Raw)
+                json_literals.check_syntax(view)
         except msgspec.DecodeError as e:
             k = self._byte_of(e)
             if not closing and (k is None or k > end):
@@ -190,7 +191,7 @@ class _Checker:
     def first(self, error, offset):
         """The error at ``offset``, unless the skeleton read so far fails earlier."""
         try:
-            msgspec.json.decode(bytes(self.skeleton), type=msgspec.Raw)
+            json_literals.check_syntax(bytes(self.skeleton))
         except msgspec.DecodeError as e:
             k = self._byte_of(e)
             if k is not None and self.file_offset(k) < offset:
@@ -220,7 +221,7 @@ class _Checker:
 
     def check_skeleton(self):
         try:
-            msgspec.json.decode(bytes(self.skeleton), type=msgspec.Raw)
+            json_literals.check_syntax(bytes(self.skeleton))
         except msgspec.DecodeError as e:
             k = self._byte_of(e)
             raise self.fail(e, 0 if k is None else self.file_offset(k)) from None
@@ -313,7 +314,7 @@ def check(path, f, skip, sink=None):
         offset += len(chunk)
     if c.piece is not None:  # a container still open: check what it holds so far
         try:
-            msgspec.json.decode(bytes(c.piece), type=msgspec.Raw)
+            json_literals.check_syntax(bytes(c.piece))
         except msgspec.DecodeError as e:
             if "truncated" not in str(e):
                 k = c._byte_of(e)

@@ -1,0 +1,70 @@
+"""The non-standard number literals ``NaN``, ``Infinity`` and ``-Infinity``, and numbers
+beyond float64's range such as ``1e400``.
+
+Python's ``json`` module — which pycocotools 2.0.11 reads both files with — accepts
+these (``NaN`` → nan, ``Infinity`` → inf, ``1e400`` → inf; Python ``json`` module
+documentation: "It also understands NaN, Infinity, and -Infinity as their
+corresponding float values"), so a file holding them is a file the reference scores.
+msgspec refuses them. Clean slices keep msgspec's fast path; a slice it refuses is
+looked at again here:
+
+* syntax: the literals outside strings are replaced by JSON strings of the *same
+  length* (``"N"``, ``"Infini"``, ``"-Infini"``) and msgspec checks that, so any other
+  syntax error keeps its byte position (and thus its line and column);
+* values: a slice whose syntax holds is decoded by ``json.loads`` and converted to
+  the typed records by ``msgspec.convert``, whose type errors name the same path
+  (``$[3].bbox[2]``) as msgspec's own decoding.
+"""
+
+import json
+import re
+
+import msgspec
+
+_TOKENS = re.compile(rb'"(?:[^"\\]|\\.)*"|-?Infinity|NaN', re.DOTALL)
+_STAND_IN = {b"NaN": b'"N"', b"Infinity": b'"Infini"', b"-Infinity": b'"-Infini"'}
+
+
+def has_literal(data):
+    """Whether ``data`` may hold a literal (cheap: a substring test)."""
+    data = bytes(data)
+    return b"NaN" in data or b"Infinity" in data
+
+
+def masked(data):
+    """``data`` with each literal outside strings replaced by a string of equal length."""
+    return _TOKENS.sub(lambda m: _STAND_IN.get(m[0], m[0]), bytes(data))
+
+
+def check_syntax(data):
+    """msgspec's syntax check (raises its DecodeError), the literals allowed."""
+    try:
+        msgspec.json.decode(data, type=msgspec.Raw)
+    except msgspec.DecodeError:
+        if not has_literal(data):
+            raise
+        msgspec.json.decode(masked(data), type=msgspec.Raw)
+
+
+def _out_of_range(error):
+    return isinstance(error, msgspec.ValidationError) and str(error).startswith(
+        "Number out of range"
+    )
+
+
+def decode(data, type):
+    """``msgspec.json.decode(data, type=type)``, the literals and out-of-range numbers
+    read as Python's ``json`` reads them."""
+    try:
+        return msgspec.json.decode(data, type=type)
+    except (msgspec.DecodeError, msgspec.ValidationError) as e:
+        if isinstance(e, msgspec.ValidationError) and not _out_of_range(e):
+            raise
+        if not (_out_of_range(e) or has_literal(data)):
+            raise
+        check_syntax(data)  # another syntax error: raised at its own position
+        try:
+            value = json.loads(bytes(data))
+        except (ValueError, RecursionError):  # e.g. invalid UTF-8: msgspec's message
+            raise e from None
+        return msgspec.convert(value, type=type)
