@@ -1,0 +1,266 @@
+"""Image shards: match a split a slice of images at a time, merge into one set of records.
+
+Matching depends on nothing outside one (image, class) group (``matching``), and the
+reasons on nothing outside one image (``reasons``). So a split cut into contiguous runs
+of image indices can be matched shard by shard, each shard with only its images' boxes
+and detections, and the pieces merged into exactly the records of one whole run:
+
+* detection fields are concatenated and put in accumulation order — class, score
+  descending, then image and file position (``tie_order="image"``, pycocotools) or file
+  position alone (``"file"``, the VOC devkit) — the same total order ``matching._orders``
+  builds, so every detection lands where the whole run puts it;
+* a shard's indices are translated to the whole file's: detection positions
+  (``det_order``), box indices (``match_box``, ``det_ref_box``) and detection indices
+  (``match_det``, ``gt_ref_det``);
+* per-box fields are scattered back to the split's box order.
+
+A shard keeps every image of the split (ids, sizes, tags: small) and only its own
+boxes and detections (the bulk), so its memory follows the shard, not the split.
+Match rows come out sorted by (config, detection); their order decides no number
+(``MatchRecords.sparse_outcomes`` sorts them).
+"""
+
+import dataclasses
+
+import numpy as np
+
+from .loaders.cache import _from_arrays, _to_arrays
+from .matching import match
+from .records import MatchRecords
+
+#: Per-box columns of ``GroundTruth`` that a slice keeps for its own boxes only.
+_BOX_FIELDS = (
+    "box_ids",
+    "box_image",
+    "box_class",
+    "boxes",
+    "box_area",
+    "crowd",
+    "difficult",
+    "ignore",
+    "occlusion",
+    "truncation",
+    "visibility",
+)
+#: Per-detection columns of ``MatchRecords`` (first axis) and the one on the second.
+_DET_FIELDS = (
+    "det_class",
+    "det_image",
+    "det_score",
+    "det_rank",
+    "det_order",
+    "det_box",
+    "det_reason",
+    "det_ref_box",
+    "det_ref_iou",
+)
+_BOX_RECORD_FIELDS = ("gt_class", "gt_image", "gt_reason", "gt_ref_det", "gt_ref_iou")
+
+
+def plan(n_images, images_per_shard):
+    """Contiguous ``(start, stop)`` runs of image indices covering ``range(n_images)``."""
+    size = max(1, int(images_per_shard))
+    return [(lo, min(lo + size, n_images)) for lo in range(0, max(n_images, 1), size)]
+
+
+def truth_slice(truth, start, stop):
+    """``(truth of images [start, stop) only, box_index)``: the slice keeps every image
+    (indices stay the split's) and the boxes and don't-care regions of its own images,
+    in file order; ``box_index`` maps its boxes to the split's."""
+    box_index = np.flatnonzero((truth.box_image >= start) & (truth.box_image < stop))
+    regions = (truth.region_image >= start) & (truth.region_image < stop)
+    sliced = dataclasses.replace(
+        truth,
+        **{name: getattr(truth, name)[box_index] for name in _BOX_FIELDS},
+        region_image=truth.region_image[regions],
+        regions=truth.regions[regions],
+    )
+    return sliced, box_index
+
+
+def predictions_slice(predictions, start, stop, positions=None):
+    """``(detections on images [start, stop), their positions in the file)``, in file
+    order. ``positions``: the candidates' file positions if already narrowed down."""
+    if positions is None:
+        positions = np.flatnonzero((predictions.image >= start) & (predictions.image < stop))
+    else:
+        positions = np.sort(positions)
+    sliced = dataclasses.replace(
+        predictions,
+        image=predictions.image[positions],
+        cls=predictions.cls[positions],
+        boxes=predictions.boxes[positions],
+        score=predictions.score[positions],
+    )
+    return sliced, positions
+
+
+def pieces(truth, predictions, ranges):
+    """Yield ``(truth slice, box_index, predictions slice, positions)`` per shard, with
+    one sort of the detections by image (not one scan of the file per shard)."""
+    by_image = np.argsort(predictions.image, kind="stable")
+    bounds = np.searchsorted(predictions.image[by_image], [r[0] for r in ranges] + [ranges[-1][1]])
+    for k, (start, stop) in enumerate(ranges):
+        sliced_truth, box_index = truth_slice(truth, start, stop)
+        sliced, positions = predictions_slice(
+            predictions, start, stop, by_image[bounds[k] : bounds[k + 1]]
+        )
+        yield sliced_truth, box_index, sliced, positions
+
+
+def save_piece(path, truth, box_index, predictions, positions):
+    """One shard's input as one ``.npz``: its truth slice, predictions slice, maps."""
+    arrays = {f"truth.{k}": v for k, v in _to_arrays(truth).items()}
+    arrays.update({f"predictions.{k}": v for k, v in _to_arrays(predictions).items()})
+    np.savez(path, box_index=box_index, positions=positions, **arrays)
+
+
+def load_piece(path):
+    """``(truth slice, box_index, predictions slice, positions)`` from ``save_piece``."""
+    with np.load(path, allow_pickle=False) as data:
+        parts = {"truth": {}, "predictions": {}}
+        for name in data.files:
+            kind, _, field = name.partition(".")
+            if kind in parts:
+                parts[kind][field] = data[name]
+        box_index, positions = data["box_index"], data["positions"]
+    return (
+        _from_arrays("truth", parts["truth"]),
+        box_index,
+        _from_arrays("predictions", parts["predictions"]),
+        positions,
+    )
+
+
+def match_shard(truth, box_index, predictions, positions, protocol):
+    """Match one shard; records whose detection positions, box indices and matches
+    are the whole split's, and whose per-box fields cover the shard's boxes (listed in
+    ``box_index``, returned beside them)."""
+    records = match(truth, predictions, protocol)
+    records.det_order = positions[records.det_order].astype(np.int64)
+    records.match_box = box_index[records.match_box].astype(np.int32)
+    records.det_ref_box = _mapped(records.det_ref_box, box_index).astype(np.int32)
+    return records
+
+
+def save_shard_records(path, records, box_index):
+    """A shard's records and its ``box_index`` as one ``.npz`` (uncompressed: a shard's
+    records live only until the merge)."""
+    arrays = {
+        f.name: getattr(records, f.name)
+        for f in dataclasses.fields(records)
+        if not f.name.startswith("_") and getattr(records, f.name) is not None
+    }
+    np.savez(path, box_index=box_index, **{k: np.asarray(v) for k, v in arrays.items()})
+
+
+def load_shard_records(path):
+    """``(records, box_index)`` saved by ``save_shard_records``."""
+    with np.load(path, allow_pickle=False) as data:
+        box_index = data["box_index"]
+    return MatchRecords.load(path), box_index
+
+
+def merge(shards, n_boxes):
+    """One ``MatchRecords`` from the ``(records, box_index)`` of every shard: equal,
+    field for field, to matching the whole split at once (match rows aside, which come
+    sorted by config and detection).
+
+    Raises ValueError when the shards do not cover each of the ``n_boxes`` boxes
+    exactly once, or were matched under different settings.
+    """
+    first = shards[0][0]
+    for records, _ in shards[1:]:
+        same = (records.protocol, records.classes, records.tie_order, records.n_images) == (
+            first.protocol,
+            first.classes,
+            first.tie_order,
+            first.n_images,
+        )
+        if not same or not np.array_equal(records.thresholds, first.thresholds):
+            raise ValueError("shards matched under different protocols or splits")
+    covered = np.bincount(np.concatenate([b for _, b in shards]), minlength=n_boxes)
+    if n_boxes and (covered != 1).any():
+        box = int(np.flatnonzero(covered != 1)[0])
+        raise ValueError(f"box {box} is in {int(covered[box])} shards, not exactly one")
+
+    det = {name: np.concatenate([getattr(r, name) for r, _ in shards]) for name in _DET_FIELDS}
+    outside = np.concatenate([r.det_outside for r, _ in shards], axis=1)
+    if first.tie_order == "file":
+        order = np.lexsort((det["det_order"], -det["det_score"], det["det_class"]))
+    else:
+        keys = (det["det_order"], det["det_image"], -det["det_score"], det["det_class"])
+        order = np.lexsort(keys)
+    new_index = np.empty(len(order), np.int64)
+    new_index[order] = np.arange(len(order))
+    offsets = np.cumsum([0] + [r.n_detections for r, _ in shards])
+
+    match_det = np.concatenate(
+        [new_index[r.match_det.astype(np.int64) + offsets[k]] for k, (r, _) in enumerate(shards)]
+    )
+    match_config = np.concatenate([r.match_config for r, _ in shards])
+    rows = np.lexsort((match_det, match_config))
+
+    box = {}
+    for name in _BOX_RECORD_FIELDS:
+        column = getattr(first, name)
+        box[name] = np.empty(n_boxes, column.dtype)
+    gt_ignored = np.empty((first.gt_ignored.shape[0], n_boxes), bool)
+    for k, (records, box_index) in enumerate(shards):
+        for name in _BOX_RECORD_FIELDS:
+            box[name][box_index] = getattr(records, name)
+        ref = records.gt_ref_det.astype(np.int64)
+        box["gt_ref_det"][box_index] = np.where(
+            ref >= 0, new_index[np.maximum(ref, 0) + offsets[k]], -1
+        )
+        gt_ignored[:, box_index] = records.gt_ignored
+
+    return MatchRecords(
+        protocol=first.protocol,
+        classes=first.classes,
+        area_names=first.area_names,
+        thresholds=first.thresholds,
+        n_images=first.n_images,
+        **{name: values[order] for name, values in det.items()},
+        det_outside=outside[:, order],
+        match_config=match_config[rows],
+        match_det=match_det[rows].astype(np.int32),
+        match_box=np.concatenate([r.match_box for r, _ in shards])[rows],
+        match_iou=np.concatenate([r.match_iou for r, _ in shards])[rows],
+        gt_ignored=gt_ignored,
+        tie_order=first.tie_order,
+        **box,
+    )
+
+
+def _mapped(index, table):
+    """``table[index]`` where ``index >= 0``, -1 elsewhere."""
+    index = np.asarray(index, np.int64)
+    return np.where(index >= 0, table[np.maximum(index, 0)] if len(table) else -1, -1)
+
+
+@dataclasses.dataclass(frozen=True)
+class PredictionCounts:
+    """What ``provenance.counts`` reads of a whole predictions file, without its
+    columns: for the merge step, which never loads the file."""
+
+    n: int
+    dropped: int = 0
+    box_policy: str = "keep"
+    box_counts: dict = dataclasses.field(default_factory=dict)
+
+    @classmethod
+    def of(cls, predictions):
+        return cls(
+            len(predictions),
+            predictions.dropped,
+            predictions.box_policy,
+            {k: int(v) for k, v in predictions.box_counts.items()},
+        )
+
+    @property
+    def clipped(self):
+        return self.box_counts.get("clipped", 0)
+
+    def __len__(self):
+        return self.n
