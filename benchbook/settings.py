@@ -162,6 +162,10 @@ BENCHBOOK_INLINE_VALIDATION_BYTES = int(
 )
 # Parsed-input cache of the engine (columnar .npz), shared by workers on one machine.
 BENCHBOOK_ENGINE_CACHE = Path(os.environ.get("BENCHBOOK_ENGINE_CACHE", VAR_DIR / "engine-cache"))
+# Evaluations over BENCHBOOK_SHARD_ABOVE images x detections are scored in shards of
+# BENCHBOOK_SHARD_IMAGES images by every worker (evaluation/sharding.py).
+BENCHBOOK_SHARD_ABOVE = float(os.environ.get("BENCHBOOK_SHARD_ABOVE", 5e9))
+BENCHBOOK_SHARD_IMAGES = int(os.environ.get("BENCHBOOK_SHARD_IMAGES", 5000))
 BENCHBOOK_PROTOCOLS = ("coco", "voc", "recall40")
 # Paired bootstrap behind "no significant drop" rules: replicates and seed (reproducible).
 BENCHBOOK_BOOTSTRAP_RESAMPLES = int(os.environ.get("BENCHBOOK_BOOTSTRAP_RESAMPLES", 1000))
@@ -180,6 +184,17 @@ if CELERY_BROKER_URL.startswith("filesystem://"):
         "control_folder": str(_broker_dir / "control"),
         "store_processed": False,
     }
+# Chords (image shards, evaluation/sharding.py) need a result backend: Redis beside a
+# Redis broker, files under VAR_DIR beside the embedded filesystem broker.
+CELERY_RESULT_BACKEND = os.environ.get(
+    "CELERY_RESULT_BACKEND",
+    CELERY_BROKER_URL
+    if CELERY_BROKER_URL.startswith("redis")
+    else f"file://{(VAR_DIR / 'results').as_posix()}",
+)
+if CELERY_RESULT_BACKEND.startswith("file://"):
+    Path(CELERY_RESULT_BACKEND.removeprefix("file://")).mkdir(parents=True, exist_ok=True)
+CELERY_RESULT_EXPIRES = 24 * 3600
 CELERY_TASK_DEFAULT_QUEUE = os.environ.get("BENCHBOOK_QUEUE", "benchbook")
 CELERY_TASK_ACKS_LATE = True
 CELERY_TASK_REJECT_ON_WORKER_LOST = True

@@ -17,7 +17,8 @@ import uuid
 
 from django.conf import settings
 from django.db import InterfaceError, OperationalError, connection, transaction
-from django.db.models import Q
+from django.db.models import F, Q, Value
+from django.db.models.functions import Greatest
 from django.utils import timezone
 
 from . import signals
@@ -187,12 +188,19 @@ class Lease:
         self._stop.set()
         self._thread.join(timeout=5)
 
+    def renew(self):
+        """Extend the lease to a lease length from now; a longer lease (image shards
+        waiting in the queue, ``sharding._budget``) is never shortened. False when the
+        claim is no longer held."""
+        longer = Greatest(F("lease_expires_at"), Value(lease_end()))
+        return bool(held(self.evaluation).update(lease_expires_at=longer))
+
     def _run(self):
         interval = settings.BENCHBOOK_LEASE_SECONDS / 3
         try:
             while not self._stop.wait(interval):
                 try:
-                    if not held(self.evaluation).update(lease_expires_at=lease_end()):
+                    if not self.renew():
                         self.lost = True
                         return
                 except TRANSIENT as e:

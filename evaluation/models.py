@@ -262,3 +262,34 @@ class SplitImages(models.Model):
 
     def __str__(self):
         return f"images of {self.split} ({self.source})"
+
+
+class EvaluationShard(models.Model):
+    """One image shard of a large evaluation (``evaluation/sharding.py``): its input
+    ``piece`` (the truth and predictions of images ``[image_start, image_stop)`` as
+    columns, written once when the file is read) and, once matched, its ``records``.
+
+    One row per (evaluation, index): a retried shard replaces its records, never adds
+    a second set. Rows and files are removed when the merged result is stored.
+    """
+
+    evaluation = models.ForeignKey(Evaluation, on_delete=models.CASCADE, related_name="shards")
+    index = models.PositiveIntegerField()
+    image_start = models.PositiveIntegerField()
+    image_stop = models.PositiveIntegerField()
+    detections = models.PositiveIntegerField(help_text="Detections on the shard's images.")
+    piece = models.FileField(upload_to="shards/", max_length=255, blank=True)
+    piece_sha256 = models.CharField(max_length=64)
+    predictions_counts = models.JSONField(help_text="Counts of the whole predictions file.")
+    records = models.FileField(upload_to="shards/", max_length=255, blank=True)
+    records_sha256 = models.CharField(max_length=64, blank=True)
+    seconds = models.FloatField(null=True, blank=True, help_text="Load, match and store.")
+    finished_at = models.DateTimeField(null=True, blank=True)
+
+    class Meta:
+        constraints = [
+            models.UniqueConstraint(fields=["evaluation", "index"], name="one_row_per_shard")
+        ]
+
+    def __str__(self):
+        return f"shard {self.index} of evaluation {self.evaluation_id}"

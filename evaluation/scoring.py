@@ -1,6 +1,7 @@
 """The worker's scoring path: claim, score under a lease, store only while holding the
 claim (``jobs``); every run ends ``done`` or ``failed`` with a readable cause."""
 
+import contextlib
 import logging
 import os
 import tempfile
@@ -9,7 +10,7 @@ from django.core.files import File
 from django.db import transaction
 from django.utils import timezone
 
-from . import breakdowns, engine, jobs, signals
+from . import breakdowns, engine, jobs, sharding, signals
 from .models import ClassScore, Evaluation, PredictionFile, Scorecard, SliceScore
 from .protocols import resolve as resolve_protocol
 from .rows import class_rows, slice_rows
@@ -33,10 +34,20 @@ def run_evaluation(evaluation_id, claim=None):
     evaluation = jobs.claim(evaluation_id, claim)
     if evaluation is None:
         return Evaluation.objects.get(pk=evaluation_id)
+    with ending(evaluation), jobs.Lease(evaluation):
+        scored = _score(evaluation)
+        if scored is not None:  # None: split into image shards, whose merge stores it
+            _store(evaluation, *scored)
+    return evaluation
+
+
+@contextlib.contextmanager
+def ending(evaluation):
+    """How every run under a claim ends (one evaluation, one shard, one merge): the
+    errors named in ``run_evaluation`` fail the evaluation with their message, a lost
+    claim drops the work, a database outage past the retry window propagates."""
     try:
-        with jobs.Lease(evaluation):
-            result, records, record_count = _score(evaluation)
-            _store(evaluation, result, records, record_count)
+        yield
     except engine.InputError as e:
         e.path = os.path.basename(e.path)  # stored under its original name
         jobs.fail(evaluation, str(e), e.as_dict())
@@ -56,10 +67,13 @@ def run_evaluation(evaluation_id, claim=None):
             "(the traceback is in the worker log)",
             {"exception": type(e).__name__, "message": str(e)},
         )
-    return evaluation
 
 
 def _score(evaluation):
+    """``(result, records, record_count)``, or None when the evaluation was handed to
+    image shards (``sharding``), which finish it."""
+    if sharding.resume(evaluation):  # pieces an earlier claim wrote: unfinished shards
+        return None
     split, prediction_file = evaluation.split, evaluation.predictions
     protocol = resolve_protocol(evaluation.protocol)
     truth = load_truth_of(split, evaluation.box_policy)
@@ -73,6 +87,9 @@ def _score(evaluation):
     ) as path:
         predictions = _load_predictions(path, truth, evaluation.name, evaluation.box_policy)
     jobs.progress(evaluation, 50)
+    if sharding.wanted(protocol, truth, predictions):
+        sharding.start(evaluation, truth, predictions)
+        return None
     records = engine.match(truth, predictions, protocol)
     jobs.progress(evaluation, 75)
     tag_masks = {tag: truth.tag_mask(tag) for tag in truth.tags()}

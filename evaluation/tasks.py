@@ -6,13 +6,26 @@ beat sweep (lost messages, dead workers), not in Celery's retry counter.
 
 from celery import shared_task
 
-from . import scoring, services
+from . import scoring, services, sharding
 
 
 @shared_task(bind=True, acks_late=True)
 def score(self, evaluation_id):
     """Score one evaluation (a finished one is a no-op)."""
     scoring.run_evaluation(evaluation_id, claim=self.request.id)
+
+
+@shared_task(acks_late=True, ignore_result=False)
+def score_shard(evaluation_id, claim, index):
+    """Match one image shard of a large evaluation (a chord's header; its result, None,
+    is stored so the chord can count it)."""
+    sharding.run_shard(evaluation_id, claim, index)
+
+
+@shared_task(acks_late=True)
+def merge_shards(evaluation_id, claim):
+    """The chord's callback: merge the shards' records, score once, store."""
+    sharding.run_merge(evaluation_id, claim)
 
 
 @shared_task

@@ -1,0 +1,279 @@
+"""Large evaluations in image shards: a Celery ``group`` of shard tasks and a ``chord``
+callback that merges their records and scores once (``engine.shards``).
+
+Above ``BENCHBOOK_SHARD_ABOVE`` (images × detections) the run that claimed the
+evaluation reads the predictions file once, writes one *piece* per run of
+``BENCHBOOK_SHARD_IMAGES`` images (that run's truth and detections as columns) to the
+media storage and sends the chord. Every shard task then reads only its own piece, so a
+shard's memory follows the shard, not the split. The result is stored by
+``scoring._store`` under the claim, exactly as a one-process run stores it.
+
+Claims and leases (``jobs``): shards run under the claim of the run that split the
+evaluation, passed to them; a shard or merge whose claim is no longer the evaluation's
+drops its work. While shards wait in the queue nobody renews the lease, so it is set to
+one lease per unfinished shard (``_budget``), and a running shard's renewals never
+shorten it. A worker killed mid-shard loses that shard only: its message is delivered
+again (acks_late) or, when the lease runs out, the sweep requeues the evaluation and the
+next claim sends only the shards without records (``resume``).
+"""
+
+import dataclasses
+import datetime
+import logging
+import os
+import tempfile
+import time
+
+from django.conf import settings
+from django.core.files import File
+from django.db import transaction
+from django.utils import timezone
+
+from . import engine, jobs
+from .engine import shards
+from .models import Evaluation, EvaluationShard
+from .storage import file_sha256, verified_path
+
+log = logging.getLogger(__name__)
+
+
+def wanted(protocol, truth, predictions):
+    """Whether to score in shards: an engine protocol (matched per image) on more than
+    ``BENCHBOOK_SHARD_ABOVE`` images × detections, spanning more than one shard."""
+    size = truth.n_images * len(predictions)
+    return (
+        isinstance(protocol, engine.Protocol)
+        and size > settings.BENCHBOOK_SHARD_ABOVE
+        and truth.n_images > settings.BENCHBOOK_SHARD_IMAGES
+    )
+
+
+def _ranges(n_images):
+    return shards.plan(n_images, settings.BENCHBOOK_SHARD_IMAGES)
+
+
+def resume(evaluation):
+    """Send the unfinished shards of a complete set of pieces written by an earlier
+    claim (same plan); False when there is none (the caller reads the files)."""
+    rows = list(evaluation.shards.order_by("index"))
+    plan = [(r.image_start, r.image_stop) for r in rows]
+    if not rows or plan != _ranges(evaluation.split.image_count) or not all(r.piece for r in rows):
+        return False
+    _dispatch(evaluation, rows)
+    return True
+
+
+def start(evaluation, truth, predictions):
+    """Write the pieces of ``truth`` and ``predictions`` (one per shard, replacing any
+    of an earlier plan) and send the shards. Call it under the evaluation's claim."""
+    _discard(evaluation.shards.all())
+    counts = dataclasses.asdict(shards.PredictionCounts.of(predictions))
+    ranges = _ranges(truth.n_images)
+    rows = []
+    with tempfile.TemporaryDirectory() as work:
+        for k, piece in enumerate(shards.pieces(truth, predictions, ranges)):
+            path = os.path.join(work, f"evaluation-{evaluation.pk}-piece-{k}.npz")
+            shards.save_piece(path, *piece)
+            row = EvaluationShard(
+                evaluation=evaluation,
+                index=k,
+                image_start=ranges[k][0],
+                image_stop=ranges[k][1],
+                detections=len(piece[2]),
+                piece_sha256=file_sha256(path),
+                predictions_counts=counts,
+            )
+            _save_file(evaluation, row, "piece", path)
+            os.remove(path)
+            rows.append(row)
+            jobs.progress(evaluation, 50 + (k + 1) * 10 // len(ranges))
+    _dispatch(evaluation, rows)
+
+
+def _save_file(evaluation, row, field, path):
+    """Store ``path`` as ``row.<field>`` and save the row, while the claim is held; the
+    file is deleted again if the row does not commit."""
+    stored = getattr(row, field)
+    try:
+        with transaction.atomic():
+            jobs.lock_if_held(evaluation)
+            with open(path, "rb") as f:
+                stored.save(os.path.basename(path), File(f), save=False)
+            row.save()
+    except BaseException:
+        if stored.name:
+            stored.storage.delete(stored.name)
+        raise
+
+
+def _dispatch(evaluation, rows):
+    """Give the lease its queue budget, then send a chord of the unfinished shards
+    (only the merge when none is left) once this transaction commits."""
+    todo = [r.index for r in rows if not r.records]
+    _budget(evaluation, len(todo), len(rows))
+    claim = evaluation.claimed_by
+    transaction.on_commit(lambda: send(evaluation.pk, claim, todo))
+
+
+def send(evaluation_id, claim, indexes):
+    """The chord: shard tasks for ``indexes``, then the merge (tests replace this)."""
+    from celery import chord
+
+    from .tasks import merge_shards, score_shard
+
+    if not indexes:
+        merge_shards.delay(evaluation_id, claim)
+        return
+    header = [score_shard.si(evaluation_id, claim, k) for k in indexes]
+    chord(header)(merge_shards.si(evaluation_id, claim))
+
+
+def _budget(evaluation, unfinished, total):
+    """Progress by finished shards (50-60 % was reading, 60-95 % the shards) and a
+    lease of one lease length per unfinished shard, at least one."""
+    lease = datetime.timedelta(seconds=settings.BENCHBOOK_LEASE_SECONDS * max(unfinished, 1))
+    jobs.held(evaluation).update(
+        progress=60 + 35 * (total - unfinished) // max(total, 1),
+        lease_expires_at=timezone.now() + lease,
+    )
+
+
+def _held(evaluation_id, claim):
+    """The evaluation as claimed by ``claim``, or None when that claim is gone."""
+    evaluation = Evaluation.objects.select_related("split", "predictions").get(pk=evaluation_id)
+    if evaluation.state != Evaluation.State.RUNNING or evaluation.claimed_by != claim:
+        log.info(
+            "evaluation %s: claim %s no longer holds it; shard work dropped", evaluation_id, claim
+        )
+        return None
+    return evaluation
+
+
+def run_shard(evaluation_id, claim, index):
+    """Match one shard from its piece and store its records (replacing any earlier
+    records of the same shard)."""
+    from .scoring import ending
+
+    evaluation = jobs.with_retry(lambda: _held(evaluation_id, claim), f"shard {index}")
+    if evaluation is None:
+        return
+    with ending(evaluation), jobs.Lease(evaluation):
+        began = time.monotonic()
+        row = EvaluationShard.objects.get(evaluation=evaluation, index=index)
+        with verified_path(
+            row.piece, row.piece_sha256, f"shard:{row.pk}", "shard piece", row.piece.name
+        ) as path:
+            truth, box_index, predictions, positions = shards.load_piece(path)
+        protocol = _protocol(evaluation)
+        records = shards.match_shard(truth, box_index, predictions, positions, protocol)
+        del truth, predictions
+        with tempfile.TemporaryDirectory() as work:
+            path = os.path.join(work, f"evaluation-{evaluation.pk}-records-{index}.npz")
+            shards.save_shard_records(path, records, box_index)
+            del records
+            jobs.with_retry(
+                lambda: _store_shard(evaluation, index, path, time.monotonic() - began),
+                f"storing shard {index} of evaluation {evaluation.pk}",
+            )
+
+
+def _protocol(evaluation):
+    from .protocols import resolve
+
+    return resolve(evaluation.protocol)
+
+
+def _store_shard(evaluation, index, path, seconds):
+    """The shard's records file and row in one transaction under the claim; a file
+    written for a transaction that does not commit is deleted, and records an earlier
+    delivery stored for the same shard are replaced (their file deleted after)."""
+    written = None
+    try:
+        with transaction.atomic():
+            jobs.lock_if_held(evaluation)
+            row = EvaluationShard.objects.select_for_update().get(
+                evaluation=evaluation, index=index
+            )
+            replaced = row.records.name or None
+            with open(path, "rb") as f:
+                row.records.save(os.path.basename(path), File(f), save=False)
+            written = row.records.name
+            row.records_sha256 = file_sha256(path)
+            row.seconds, row.finished_at = seconds, timezone.now()
+            row.save()
+            unfinished = evaluation.shards.filter(records="").count()
+            _budget(evaluation, unfinished, evaluation.shards.count())
+    except BaseException:
+        if written:
+            row.records.storage.delete(written)
+        raise
+    if replaced:
+        row.records.storage.delete(replaced)
+
+
+def run_merge(evaluation_id, claim):
+    """The chord's callback: merge every shard's records in accumulation order, score
+    once and store the result under the claim; then drop the pieces and shard records.
+    A second run (or one after a lost claim) finds the evaluation no longer held and
+    does nothing; one that finds a shard without records leaves the evaluation to the
+    sweep (its lease runs out) and the next claim sends that shard again."""
+    from .scoring import _store, ending
+    from .services import load_truth_of
+
+    evaluation = jobs.with_retry(lambda: _held(evaluation_id, claim), "merging shards")
+    if evaluation is None:
+        return
+    stored = False
+    with ending(evaluation), jobs.Lease(evaluation):
+        rows = list(evaluation.shards.order_by("index"))
+        missing = [r.index for r in rows if not r.records]
+        if missing or not rows:
+            log.warning(
+                "evaluation %s: shards %s have no records yet; not merged", evaluation.pk, missing
+            )
+            return
+        began = time.monotonic()
+        parts = []
+        for row in rows:
+            with verified_path(
+                row.records,
+                row.records_sha256,
+                f"shard:{row.pk}",
+                "shard records",
+                row.records.name,
+            ) as path:
+                parts.append(shards.load_shard_records(path))
+        truth = load_truth_of(evaluation.split, evaluation.box_policy)
+        records = shards.merge(parts, truth.n_boxes)
+        del parts
+        protocol = _protocol(evaluation)
+        counts = shards.PredictionCounts(**rows[0].predictions_counts)
+        tag_masks = {tag: truth.tag_mask(tag) for tag in truth.tags()}
+        result = engine.score_records(records, protocol, tag_masks=tag_masks)
+        engine.annotate(result, truth, counts, records, protocol)
+        log.info(
+            "evaluation %s: %d shards merged and scored in %.2f s",
+            evaluation.pk,
+            len(rows),
+            time.monotonic() - began,
+        )
+        _store(evaluation, result, records, len(counts))
+        stored = True
+    if stored:
+        _discard(rows, keep_rows=True)
+
+
+def _discard(rows, keep_rows=False):
+    """Delete the shards' files (after the merged result is stored, or before a new
+    plan); the rows are kept with their timings when ``keep_rows``."""
+    for row in rows:
+        for field_file in (row.piece, row.records):
+            if field_file.name:
+                try:
+                    field_file.storage.delete(field_file.name)
+                except OSError:
+                    log.exception("could not delete %s", field_file.name)
+        if keep_rows:
+            EvaluationShard.objects.filter(pk=row.pk).update(piece="", records="")
+        else:
+            row.delete()
