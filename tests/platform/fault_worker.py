@@ -3,7 +3,9 @@
 ``python -m tests.platform.fault_worker <celery arguments>``, with
 ``BENCHBOOK_FAULT_SLOW_MATCH=<seconds>`` (matching waits that long first: time to kill
 the worker or cut the database mid-scoring) and/or ``BENCHBOOK_FAULT_RAISE=<builtin
-exception name>`` (matching raises it: an error the engine does not expect).
+exception name>`` (matching raises it: an error the engine does not expect), and
+``BENCHBOOK_FAULT_SLOW_SHARD=<seconds>`` (every image shard this worker matches waits
+that long first: time to kill it mid-shard).
 """
 
 import builtins
@@ -26,6 +28,17 @@ def install_faults():
         return match(*args, **kwargs)
 
     engine.match = faulty_match
+
+    from evaluation.engine import shards
+
+    match_shard = shards.match_shard
+    slow_shard = float(os.environ.get("BENCHBOOK_FAULT_SLOW_SHARD", 0))
+
+    def slow_match_shard(*args, **kwargs):
+        time.sleep(slow_shard)
+        return match_shard(*args, **kwargs)
+
+    shards.match_shard = slow_match_shard
 
 
 if __name__ == "__main__":

@@ -1,0 +1,88 @@
+"""Image shards on real worker processes (the fault-worker harness of test_faults.py):
+two workers share the shards of one evaluation through the configured broker and
+result backend (under CI=true Redis, else the embedded filesystem broker and file
+results), and a worker killed in the middle of a shard loses only that shard.
+"""
+
+import json
+import os
+import signal
+import time
+
+import pytest
+from django.conf import settings as django_settings
+
+from evaluation import engine
+from evaluation.models import Evaluation, EvaluationShard, Scorecard
+
+from . import test_faults
+from .conftest import detections_for
+from .test_faults import _done_exactly_once, _finished, _signal_group, _submit, _wait
+
+workers = test_faults.workers  # the fault-worker fixture
+
+pytestmark = [pytest.mark.integration, pytest.mark.django_db(transaction=True)]
+SHARDED = {"BENCHBOOK_SHARD_ABOVE": 0, "BENCHBOOK_SHARD_IMAGES": 3}  # 12 images: 4 shards
+
+
+def test_two_workers_score_the_shards_and_equal_the_engine(
+    workers, detector, split, split_truth, users, version, tmp_path
+):
+    workers(**SHARDED)
+    workers(**SHARDED)
+    dets = detections_for(split_truth)
+    evaluations = _submit(version, split, users, dets)
+    _wait(_finished(evaluations), 120, "done")
+    _done_exactly_once(evaluations)
+    (tmp_path / "gt.json").write_text(json.dumps(split_truth))
+    (tmp_path / "dt.json").write_text(json.dumps(dets))
+    truth = engine.load_truth(tmp_path / "gt.json")
+    predictions = engine.load_predictions(tmp_path / "dt.json", truth)
+    for evaluation in evaluations:
+        card = Scorecard.objects.get(evaluation=evaluation)
+        direct = engine.evaluate(truth, predictions, evaluation.protocol)
+        as_text = json.dumps(card.summary, sort_keys=True)
+        assert as_text == json.dumps(direct["summary"], sort_keys=True)  # bit for bit
+        shards = EvaluationShard.objects.filter(evaluation=evaluation)
+        assert shards.count() == 4 and all(s.finished_at for s in shards)
+
+
+def test_a_worker_killed_mid_shard_loses_only_that_shard(
+    workers, detector, split, split_truth, users, version
+):
+    """One worker sleeps in every shard it takes and is killed (SIGKILL) there; the
+    other matches the other shards. The lease runs out, the sweep requeues, and the
+    next claim sends only the lost shards: the finished ones are not redone."""
+    workers(beat=True, **SHARDED)
+    doomed = workers(BENCHBOOK_FAULT_SLOW_SHARD=600, **SHARDED)
+    evaluations = _submit(version, split, users, detections_for(split_truth))
+    evaluation = evaluations.get(protocol="coco")
+    rows = EvaluationShard.objects.filter(evaluation=evaluation)
+    # The healthy worker finishes what it can; the doomed one holds one shard (on the
+    # embedded broker it may also hold the next message it fetched).
+    _wait(lambda: _settled(rows), 120, "the healthy worker's shards matched")
+    before = {r.index: r.finished_at for r in rows.all() if r.finished_at}
+    lost = set(range(4)) - set(before)
+    _signal_group(doomed, signal.SIGKILL)
+    doomed.wait(10)
+    killed_at = time.monotonic()
+    _wait(_finished(evaluations), 180, "done after the kill")
+    print(f"recovered {time.monotonic() - killed_at:.1f} s after the kill")
+    _done_exactly_once(evaluations)
+    evaluation.refresh_from_db()
+    assert evaluation.attempts == 2
+    after = {r.index: r.finished_at for r in rows.all()}  # read again, not the cache
+    assert {k: after[k] for k in before} == before  # finished shards were not redone
+    assert all(after[k] > max(before.values()) for k in lost)
+    shards_dir = os.path.join(django_settings.MEDIA_ROOT, "shards")
+    assert not os.listdir(shards_dir)  # pieces and shard records removed, none orphaned
+    assert Evaluation.objects.get(pk=evaluation.pk).state == "done"
+
+
+def _settled(rows, quiet=4.0):
+    """Some shards finished, not all, and no other finished for ``quiet`` seconds."""
+    done = rows.exclude(records="").count()
+    if not 0 < done < 4:
+        return False
+    time.sleep(quiet)
+    return rows.exclude(records="").count() == done
