@@ -1,0 +1,386 @@
+"""Benchmark: one large evaluation scored end to end by one worker, then in image shards.
+
+    nice python bench/sharded.py [--scale 1] [--shard-images 5000] [--runs whole,one,redis2,fs2]
+
+A seeded split of 100,000 images, ~750,000 boxes, 80 classes and 10,000,000 detections
+(``--scale 0.1``: a tenth of each) is generated to bench/out/sharded-<scale>/ (not in
+the repository). Each run stores the predictions file, requests its ``coco`` evaluation
+and waits for the stored result (upload → stored result), with fresh worker processes:
+
+    whole   one worker, sharding off (the one-process path)
+    one     one worker, in shards of --shard-images images
+    redis2  two workers on the Redis broker, in shards
+    fs2     two workers on the embedded filesystem broker (file results), in shards
+
+It prints wall time, the peak RSS (VmHWM) of every worker, the ratio to ``whole``,
+whether the numbers are identical (SHA-256 of the stored result), the per-shard cost,
+the merge step's cost (last shard stored → result stored) and, from those, a table on
+paper for N machines. Then the peak RSS of one process that loads one shard's piece and
+matches it (a shard's memory, whatever the split's size) and of one that reads the
+whole predictions file (what the run that splits the file holds). Database: PostgreSQL
+(``--database-url``, a throw-away database it drops and creates); Redis at
+``--redis-url``. Report the load average printed beside the numbers: the machine may
+be shared.
+"""
+
+import argparse
+import hashlib
+import json
+import math
+import os
+import pathlib
+import secrets
+import shutil
+import subprocess
+import sys
+import tempfile
+import threading
+import time
+import uuid
+
+import numpy as np
+
+ROOT = pathlib.Path(__file__).resolve().parent.parent
+OUT = ROOT / "bench" / "out"
+IMAGES, BOXES_PER_IMAGE, CLASSES, DETECTIONS = 100_000, 7.5, 80, 10_000_000
+CHUNK_IMAGES = 2000
+
+
+# Data ------------------------------------------------------------------------------
+
+
+def generate(directory, scale, seed=15):
+    """Write truth.json and predictions.json a chunk of images at a time (the whole
+    detection list is never in memory). Returns their paths."""
+    directory.mkdir(parents=True, exist_ok=True)
+    gt_path, dt_path = directory / "truth.json", directory / "predictions.json"
+    if gt_path.exists() and dt_path.exists():
+        return gt_path, dt_path
+    n_images = int(IMAGES * scale)
+    per_image = DETECTIONS / IMAGES
+    rng = np.random.default_rng(seed)
+    popularity = 1.0 / np.arange(1, CLASSES + 1) ** 0.8
+    popularity /= popularity.sum()
+    width, height = 1280, 720
+    box_id = 1
+    with open(gt_path, "w") as gt, open(dt_path, "w") as dt:
+        gt.write('{"categories": ')
+        gt.write(json.dumps([{"id": k + 1, "name": f"class_{k + 1:02d}"} for k in range(CLASSES)]))
+        gt.write(', "images": [')
+        gt.write(
+            ",".join(
+                f'{{"id":{i},"width":{width},"height":{height}}}' for i in range(1, n_images + 1)
+            )
+        )
+        gt.write('], "annotations": [')
+        dt.write("[")
+        first_box = first_det = True
+        for start in range(0, n_images, CHUNK_IMAGES):
+            n = min(CHUNK_IMAGES, n_images - start)
+            counts = rng.poisson(BOXES_PER_IMAGE, n)
+            image = np.repeat(np.arange(start + 1, start + n + 1), counts)
+            k = len(image)
+            cls = rng.choice(CLASSES, k, p=popularity) + 1
+            w = np.exp(rng.uniform(np.log(8), np.log(width / 3), k))
+            h = np.exp(rng.uniform(np.log(8), np.log(height / 3), k))
+            x, y = rng.uniform(0, width - w), rng.uniform(0, height - h)
+            crowd = (rng.random(k) < 0.01).astype(int)
+            rows = [
+                f'{{"id":{box_id + i},"image_id":{image[i]},"category_id":{cls[i]},'
+                f'"bbox":[{x[i]:.2f},{y[i]:.2f},{w[i]:.2f},{h[i]:.2f}],'
+                f'"area":{w[i] * h[i]:.2f},"iscrowd":{crowd[i]}}}'
+                for i in range(k)
+            ]
+            box_id += k
+            if rows:
+                gt.write(("" if first_box else ",") + ",".join(rows))
+                first_box = False
+            m = int(round(per_image * n))
+            near = int(m * 0.45)
+            src = rng.integers(0, max(k, 1), near)
+            jitter = rng.choice([0.03, 0.08, 0.2], near)
+            far = m - near
+            d_image = np.r_[image[src], rng.integers(start + 1, start + n + 1, far)]
+            wrong = rng.random(near) < 0.05
+            d_cls = np.r_[
+                np.where(wrong, rng.integers(1, CLASSES + 1, near), cls[src]),
+                rng.choice(CLASSES, far, p=popularity) + 1,
+            ]
+            fw = np.exp(rng.uniform(np.log(8), np.log(width / 3), far))
+            fh = np.exp(rng.uniform(np.log(8), np.log(height / 3), far))
+            dw = np.r_[w[src] * np.exp(rng.normal(0, jitter)), fw]
+            dh = np.r_[h[src] * np.exp(rng.normal(0, jitter)), fh]
+            dx = np.r_[x[src] + rng.normal(0, jitter * w[src]), rng.uniform(0, width - fw)]
+            dy = np.r_[y[src] + rng.normal(0, jitter * h[src]), rng.uniform(0, height - fh)]
+            dx, dy = np.clip(dx, 0, width - 2), np.clip(dy, 0, height - 2)
+            dw, dh = np.clip(dw, 1, width - dx), np.clip(dh, 1, height - dy)
+            score = np.round(np.r_[rng.beta(5, 2, near), rng.beta(1.2, 5, far)], 3)  # ties
+            order = rng.permutation(m)
+            rows = [
+                f'{{"image_id":{d_image[i]},"category_id":{d_cls[i]},'
+                f'"bbox":[{dx[i]:.2f},{dy[i]:.2f},{dw[i]:.2f},{dh[i]:.2f}],"score":{score[i]}}}'
+                for i in order
+            ]
+            if rows:
+                dt.write(("" if first_det else ",\n") + ",\n".join(rows))
+                first_det = False
+        gt.write("]}")
+        dt.write("]")
+    return gt_path, dt_path
+
+
+# Processes -------------------------------------------------------------------------
+
+
+def peak_mb(pid):
+    try:
+        with open(f"/proc/{pid}/status") as f:
+            for line in f:
+                if line.startswith("VmHWM:"):
+                    return int(line.split()[1]) / 1024
+    except (FileNotFoundError, ProcessLookupError):
+        pass
+    return 0.0
+
+
+class Watch:
+    """Polls the peak RSS of processes until stopped (VmHWM is gone once they exit)."""
+
+    def __init__(self, processes):
+        self.processes, self.peaks = processes, [0.0] * len(processes)
+        self._stop = threading.Event()
+        self._thread = threading.Thread(target=self._run, daemon=True)
+        self._thread.start()
+
+    def _run(self):
+        while not self._stop.wait(0.2):
+            for k, p in enumerate(self.processes):
+                self.peaks[k] = max(self.peaks[k], peak_mb(p.pid))
+
+    def stop(self):
+        self._stop.set()
+        self._thread.join()
+        return self.peaks
+
+
+def python(args, env, **kwargs):
+    return subprocess.run([sys.executable, *args], env=env, cwd=ROOT, check=True, **kwargs)
+
+
+def database(url):
+    """Drop and create the throw-away database named by ``url``."""
+    import psycopg
+
+    name = url.rsplit("/", 1)[1]
+    admin = url.rsplit("/", 1)[0] + "/postgres"
+    with psycopg.connect(admin, autocommit=True) as conn:
+        conn.execute(f'DROP DATABASE IF EXISTS "{name}" WITH (FORCE)')
+        conn.execute(f'CREATE DATABASE "{name}"')
+
+
+def run(name, workers, broker, env, shard_images, dt_path):
+    """Start ``workers`` fresh worker processes, drive one evaluation, stop them."""
+    queue = f"bench-{uuid.uuid4().hex[:8]}"
+    run_env = {**env, "CELERY_BROKER_URL": broker, "BENCHBOOK_QUEUE": queue}
+    run_env["BENCHBOOK_SHARD_ABOVE"] = "1e30" if name == "whole" else "0"
+    run_env["BENCHBOOK_SHARD_IMAGES"] = str(shard_images)
+    run_env.pop("CELERY_RESULT_BACKEND", None)
+    shutil.rmtree(pathlib.Path(env["BENCHBOOK_VAR"]) / "engine-cache", ignore_errors=True)  # cold
+    args = ["-m", "celery", "-A", "benchbook", "worker", "--pool=solo", "-Q", queue]
+    args += ["--without-gossip", "--without-mingle", "--without-heartbeat", "-l", "warning"]
+    processes = [
+        subprocess.Popen(
+            [sys.executable, *args],
+            env=run_env,
+            cwd=ROOT,
+            stdout=subprocess.DEVNULL,
+            stderr=open(env["BENCHBOOK_VAR"] + f"/{name}-{k}.log", "w"),  # noqa: SIM115
+        )
+        for k in range(workers)
+    ]
+    time.sleep(4)  # let the workers connect
+    watch = Watch(processes)
+    try:
+        out = python(
+            [__file__, "--drive", name, "--predictions", str(dt_path)],
+            run_env,
+            capture_output=True,
+            text=True,
+        )
+    finally:
+        peaks = watch.stop()
+        for p in processes:
+            p.terminate()
+        for p in processes:
+            p.wait(30)
+    result = json.loads(out.stdout.strip().splitlines()[-1])
+    result["peaks"] = peaks
+    return result
+
+
+def drive(name, predictions_path):
+    """In a process of its own (the web side): store the file, request the evaluation,
+    wait for its stored result; print timings as JSON."""
+    import django
+
+    django.setup()
+    from evaluation import services
+    from evaluation.models import BenchmarkSplit, Evaluation, EvaluationShard
+
+    split = BenchmarkSplit.objects.get(name="sharded")
+    began = time.time()
+    with open(predictions_path, "rb") as f:
+        prediction_file = services.store_predictions(f)
+    from django.db import transaction
+
+    with transaction.atomic():
+        (evaluation,) = services.request_evaluations(split, prediction_file, ["coco"], scope=name)
+    stored = time.time()
+    while True:
+        evaluation.refresh_from_db()
+        if evaluation.finished:
+            break
+        time.sleep(0.2)
+    ended = time.time()
+    if evaluation.state != "done":
+        raise SystemExit(f"{name}: {evaluation.state}: {evaluation.error}")
+    shards = list(EvaluationShard.objects.filter(evaluation=evaluation).order_by("index"))
+    card = Evaluation.objects.get(pk=evaluation.pk).scorecard
+    report = {
+        "wall": ended - began,
+        "upload": stored - began,
+        "result_sha256": hashlib.sha256(
+            json.dumps(card.result, sort_keys=True).encode()
+        ).hexdigest(),
+        "ap": card.summary["AP"],
+        "detections": card.result["counts"]["scored_predictions"],
+        "shards": [s.seconds for s in shards],
+    }
+    if shards:
+        started = evaluation.started_at.timestamp()
+        first = min(s.finished_at.timestamp() - s.seconds for s in shards)
+        last = max(s.finished_at.timestamp() for s in shards)
+        report["prepare"] = first - started
+        report["merge"] = evaluation.finished_at.timestamp() - last
+    print(json.dumps(report))
+
+
+def piece_peak(mode, gt_path, dt_path, shard_images, cache):
+    """In a process of its own: the peak RSS of matching one shard from its piece
+    (``piece``), or of reading the whole predictions file (``whole-read``)."""
+    sys.path.insert(0, str(ROOT))
+    from evaluation.engine import load_predictions, load_truth, shards
+
+    truth = load_truth(gt_path, cache_dir=cache)
+    path = pathlib.Path(cache) / f"piece-{shard_images}.npz"
+    if mode == "write-piece":
+        predictions = load_predictions(dt_path, truth, cache_dir=cache)
+        ranges = shards.plan(truth.n_images, shard_images)
+        shards.save_piece(path, *next(shards.pieces(truth, predictions, ranges[:1])))
+    elif mode == "whole-read":
+        load_predictions(dt_path, truth, cache_dir=cache)
+    else:
+        del truth
+        shards.match_shard(*shards.load_piece(path), "coco")
+    print(json.dumps({"peak": peak_mb(os.getpid())}))
+
+
+def table(results):
+    base = results.get("whole") or next(iter(results.values()))
+    print(f"{'run':8} {'workers':>7} {'wall s':>8} {'ratio':>6} {'peak RSS MB per worker':>24}")
+    for name, r in results.items():
+        peaks = " / ".join(f"{p:.0f}" for p in r["peaks"])
+        ratio = r["wall"] / base["wall"]
+        print(f"{name:8} {len(r['peaks']):7} {r['wall']:8.1f} {ratio:6.2f} {peaks:>24}")
+    digests = {r["result_sha256"] for r in results.values()}
+    print(f"numbers identical across runs: {len(digests) == 1} (AP {base['ap']!r})")
+
+
+def main():
+    parser = argparse.ArgumentParser(description=__doc__.split("\n")[0])
+    parser.add_argument("--scale", type=float, default=1.0)
+    parser.add_argument("--shard-images", type=int, default=5000)
+    parser.add_argument("--runs", default="whole,one,redis2,fs2")
+    parser.add_argument("--database-url", default="postgres://postgres@127.0.0.1:5432/bb_bench")
+    parser.add_argument("--redis-url", default="redis://127.0.0.1:6379/6")
+    parser.add_argument("--drive", help=argparse.SUPPRESS)
+    parser.add_argument("--predictions", help=argparse.SUPPRESS)
+    parser.add_argument("--piece", nargs=4, help=argparse.SUPPRESS)
+    args = parser.parse_args()
+    if args.drive:
+        return drive(args.drive, args.predictions)
+    if args.piece:
+        mode, gt, dt, cache = args.piece
+        return piece_peak(mode, gt, dt, args.shard_images, cache)
+
+    began = time.time()
+    gt_path, dt_path = generate(OUT / f"sharded-{args.scale:g}", args.scale)
+    print(
+        f"data: {os.path.getsize(gt_path) / 2**20:.0f} MB truth, "
+        f"{os.path.getsize(dt_path) / 2**20:.0f} MB predictions ({time.time() - began:.0f} s)"
+    )
+    work = pathlib.Path(tempfile.mkdtemp(prefix="benchbook-sharded-"))
+    env = {k: v for k, v in os.environ.items() if not k.startswith(("CELERY_", "BENCHBOOK_"))}
+    env.update(
+        BENCHBOOK_VAR=str(work),
+        DATABASE_URL=args.database_url,
+        DJANGO_SETTINGS_MODULE="benchbook.settings",
+        SECRET_KEY=secrets.token_urlsafe(32),
+        BENCHBOOK_MAX_UPLOAD_BYTES=str(8 * 2**30),
+        BENCHBOOK_LEASE_SECONDS="120",
+        PYTHONPATH=str(ROOT),
+    )
+    env.pop("DEBUG", None)
+    database(args.database_url)
+    python(["manage.py", "migrate", "-v0"], env)
+    load = (
+        "from evaluation import services as s\n"
+        f"s.load_split(name='sharded', revision=1, truth=open({str(gt_path)!r}, 'rb'))"
+    )
+    python(["manage.py", "shell", "-v0", "-c", load], {**env, "CELERY_BROKER_URL": args.redis_url})
+
+    brokers = {"whole": (1, args.redis_url), "one": (1, args.redis_url)}
+    brokers.update(redis2=(2, args.redis_url), fs2=(2, "filesystem://"))
+    results = {}
+    for name in filter(None, args.runs.split(",")):
+        workers, broker = brokers[name]
+        results[name] = run(name, workers, broker, env, args.shard_images, dt_path)
+        r = results[name]
+        print(f"{name}: {r['wall']:.1f} s, peaks {[round(p) for p in r['peaks']]} MB", flush=True)
+
+    print(f"\nload average during the runs: {os.getloadavg()}, cores: {os.cpu_count()}")
+    if results:
+        table(results)
+    sharded = [r for r in results.values() if r["shards"]]
+    if sharded:
+        r = min(sharded, key=lambda r: r["wall"])
+        costs = np.array(r["shards"])
+        upload, prepare, merge = r["upload"], r["prepare"], r["merge"]
+        print(
+            f"\nper shard ({len(costs)} of {args.shard_images} images): mean {costs.mean():.2f} s, "
+            f"max {costs.max():.2f} s; upload {upload:.1f} s, read + pieces {prepare:.1f} s, "
+            f"merge + score + store {merge:.1f} s"
+        )
+        print(f"{'machines':>8} {'wall s (paper)':>15}")
+        for n in (1, 2, 4, 8, 16, 32):
+            waves = math.ceil(len(costs) / n)
+            print(f"{n:8} {upload + prepare + waves * costs.mean() + merge:15.1f}")
+
+    cache = work / "piece-cache"
+    cache.mkdir()
+    common = [str(gt_path), str(dt_path), str(cache)]
+    extra = ["--shard-images", str(args.shard_images)]
+    python([__file__, "--piece", "write-piece", *common, *extra], env, capture_output=True)
+    peaks = {}
+    for mode in ("piece", "whole-read"):
+        out = python([__file__, "--piece", mode, *common, *extra], env, capture_output=True)
+        peaks[mode] = json.loads(out.stdout.decode().strip().splitlines()[-1])["peak"]
+    print(
+        f"\none shard's process (load piece + match): {peaks['piece']:.0f} MB; "
+        f"reading the whole predictions file: {peaks['whole-read']:.0f} MB"
+    )
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
