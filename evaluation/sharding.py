@@ -263,6 +263,11 @@ def run_merge(evaluation_id, claim):
         _discard(rows, keep_rows=True)
 
 
+def discard_files(evaluation):
+    """Delete the shard files of a finished evaluation (sent after a failure)."""
+    _discard(EvaluationShard.objects.filter(evaluation=evaluation), keep_rows=True)
+
+
 def _discard(rows, keep_rows=False):
     """Delete the shards' files (after the merged result is stored, or before a new
     plan); the rows are kept with their timings when ``keep_rows``."""

@@ -182,6 +182,7 @@ def test_a_changed_piece_fails_the_evaluation_with_a_message(split, tied, run_ta
     evaluation.refresh_from_db()
     assert evaluation.state == "failed" and not Scorecard.objects.exists()
     assert evaluation.error.startswith("shard piece does not match its hash: shards/")
+    assert not any(r.piece or r.records for r in EvaluationShard.objects.all())  # files gone
 
 
 def test_an_unexpected_error_in_a_shard_fails_once_and_the_merge_does_nothing(
@@ -197,6 +198,7 @@ def test_an_unexpected_error_in_a_shard_fails_once_and_the_merge_does_nothing(
     evaluation.refresh_from_db()
     assert evaluation.state == "failed" and evaluation.attempts == 1
     assert "stopped on an unexpected error (OverflowError: Python int" in evaluation.error
+    assert not any(r.piece or r.records for r in EvaluationShard.objects.all())  # files gone
 
 
 def test_small_evaluations_and_single_shards_are_not_split(split, tied, run_tasks, sent, settings):
