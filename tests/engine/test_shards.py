@@ -141,3 +141,20 @@ def test_merge_refuses_shards_that_miss_or_repeat_boxes(loaded, tmp_path):
 def test_plan_covers_every_image_once():
     assert shards.plan(10, 4) == [(0, 4), (4, 8), (8, 10)]
     assert shards.plan(0, 4) == [(0, 0)]
+
+
+@pytest.mark.parametrize("protocol", ["coco", "voc"])
+def test_non_finite_scores_merge_in_the_whole_runs_order(loaded, protocol, tmp_path):
+    """NaN scores rank last and infinite ones first (pycocotools reads them, see
+    test_coco_reference.py); equal NaNs on images of several shards keep the tie rule."""
+    truth, predictions = loaded
+    score = predictions.score.copy()
+    score[::7], score[3::11], score[5::13] = np.nan, np.inf, -np.inf
+    odd = dataclasses.replace(predictions, score=score)
+    with np.errstate(invalid="ignore", over="ignore"):
+        whole = match(truth, odd, protocol)
+        merged, _ = _sharded(truth, odd, protocol, 7, tmp_path)
+    for name in FIELDS:
+        a, b = getattr(whole, name), getattr(merged, name)
+        if isinstance(a, np.ndarray):
+            assert a.tobytes() == b.tobytes(), name
