@@ -72,6 +72,7 @@ PROTECTED = [
     ("evaluation_scorecard", "stored results"),
     ("evaluation_classscore", "stored results"),
     ("evaluation_slicescore", "stored results"),
+    ("evaluation_errorbreakdown", "stored results"),
     ("evaluation_storedprotocol", "a stored protocol"),
     ("releases_signoff", "a release decision"),
     ("releases_judgement", "a judgement"),
@@ -371,7 +372,8 @@ EDITS = [
     ("UPDATE evaluation_evaluation SET state = 'failed', error = 'x'", "(evaluation)"),
     ("UPDATE evaluation_evaluation SET engine_version = '0.1'", "(evaluation)"),
     (
-        "DELETE FROM evaluation_slicescore; DELETE FROM evaluation_classscore; "
+        "DELETE FROM evaluation_errorbreakdown; DELETE FROM evaluation_slicescore; "
+        "DELETE FROM evaluation_classscore; "
         "DELETE FROM evaluation_scorecard",
         "(scorecard, classes, slices, records)",
     ),
@@ -562,6 +564,7 @@ def test_the_truncated_tables_are_reported(head_file, committed):
     needs_postgres()
     _as_owner(
         "TRUNCATE releases_auditevent, evaluation_slicescore, evaluation_classscore, "
+        "evaluation_errorbreakdown, "
         "evaluation_scorecard"
     )
     ok, text = _verify()
