@@ -40,6 +40,11 @@ LAMR 0); and when no point lies at or below a reference, index -1 reads the *las
 recall of the curve (the city-scale code's ``np.searchsorted(...) - 1``; a file with no
 counted detection reads recall 0 there).
 
+``caltech`` (preset ``miss-rate-caltech``): the toolbox's reading plus the box handling
+of its Caltech benchmark script (``dbEval`` ``loadGt``/``loadDt``): every counted box and
+every detection resized to aspect ratio 0.41 about its centre before matching (ignore
+boxes keep theirs), and a counted box's height must stay *below* a finite upper bound.
+
 Results per setup and class in the shape of ``difficulty.evaluate_levels``: setups are
 its levels. A class with no counted box in a setup is absent there (None).
 """
@@ -69,12 +74,13 @@ class Setup:
     height: tuple
     visibility: tuple
 
-    def counts(self, height, visibility):
-        """Per box: inside the setup (both closed ranges)."""
+    def counts(self, height, visibility, upper_open=False):
+        """Per box: inside the setup (closed ranges; ``upper_open``: h < h_hi, as
+        ``dbEval``'s ``filterGtFun``)."""
         (h_lo, h_hi), (v_lo, v_hi) = self.height, self.visibility
         inside = (height >= h_lo) & (visibility >= v_lo)
         if h_hi is not None:
-            inside &= height <= h_hi
+            inside &= (height < h_hi) if upper_open else (height <= h_hi)
         if v_hi is not None:
             inside &= visibility <= v_hi
         return inside
@@ -113,6 +119,8 @@ class MissRateProtocol:
         default_factory=lambda: {"person": _NEIGHBOURS, "pedestrian": _NEIGHBOURS}
     )
     headline_level: str = "reasonable"
+    aspect_ratio: float = None  # dbEval: counted boxes and detections resized to w = ar * h
+    height_upper_open: bool = False  # dbEval: a counted box needs h < h_hi
 
     def record(self):
         """The full protocol record stored beside every number; ``levels`` lists the
@@ -138,6 +146,8 @@ class MissRateProtocol:
             "empty_budget": "miss rate 1" if self.variant == "toolbox" else "last recall",
             "neighbours": {k: list(v) for k, v in self.neighbours.items()},
             "headline_level": self.headline_level,
+            "aspect_ratio": self.aspect_ratio,
+            "height_upper": "open" if self.height_upper_open else "closed",
         }
 
 
@@ -160,7 +170,18 @@ MISS_RATE_CITYSCALE = MissRateProtocol(
     max_detections=1000,
 )
 
-MISS_RATE_PRESETS = {p.name: p for p in (MISS_RATE, MISS_RATE_CITYSCALE)}
+MISS_RATE_CALTECH = MissRateProtocol(
+    name="miss-rate-caltech",
+    version=1,
+    description="The toolbox's reading with its Caltech benchmark script's box handling "
+    "(dbEval loadGt/loadDt): counted boxes and every detection resized to aspect ratio "
+    "0.41 about their centre (height kept), a counted box's height below the setup's upper "
+    "bound (h < h_hi)",
+    aspect_ratio=0.41,
+    height_upper_open=True,
+)
+
+MISS_RATE_PRESETS = {p.name: p for p in (MISS_RATE, MISS_RATE_CITYSCALE, MISS_RATE_CALTECH)}
 
 
 def get_miss_rate_protocol(name_or_protocol):
@@ -264,6 +285,16 @@ def curve_points(tp, fp, n_pos, n_images, limit=CURVE_POINTS):
     return {"fppi": fppi.tolist(), "miss_rate": miss.tolist()}
 
 
+def standardise_aspect(boxes, ar):
+    """``bbApply resize(bb, 1, 0, ar)``: width set to ``ar * h`` about the centre,
+    height kept, in the toolbox's arithmetic: ``d = h*ar - w; x -= d/2; w += d``."""
+    out = np.array(boxes, np.float64, copy=True)
+    d = out[:, 3] * ar - out[:, 2]
+    out[:, 0] = out[:, 0] - d / 2
+    out[:, 2] = out[:, 2] + d
+    return out
+
+
 def _group(index, n):
     order = np.argsort(index, kind="stable")
     bounds = np.searchsorted(index[order], np.arange(n + 1))
@@ -297,6 +328,11 @@ def evaluate_setups(truth, predictions, protocol="miss-rate"):
     height = truth.boxes[:, 3]
     visibility = np.where(np.isnan(truth.visibility), 1.0, truth.visibility)
     det_height = predictions.boxes[:, 3]
+    det_boxes = predictions.boxes
+    gt_resized = None
+    if protocol.aspect_ratio is not None:
+        det_boxes = standardise_aspect(det_boxes, protocol.aspect_ratio)
+        gt_resized = standardise_aspect(truth.boxes, protocol.aspect_ratio)
     gt_by_image = _group(truth.box_image, n_images)
     det_by_image = _group(predictions.image, n_images)
     region_by_image = _group(truth.region_image, n_images)
@@ -315,10 +351,19 @@ def evaluate_setups(truth, predictions, protocol="miss-rate"):
                 d = d[: protocol.max_detections]
             scenes.append((image, g, d))
         for setup in protocol.setups:
-            counted = own & setup.counts(height, visibility) & ~flagged
+            inside = setup.counts(height, visibility, protocol.height_upper_open)
+            counted = own & inside & ~flagged
             keep = setup.keeps(det_height, HEIGHT_EXPANSION)
             levels[setup.name][truth.classes[k]] = _class_result(
-                truth, predictions, scenes, counted, keep, region_by_image, protocol
+                truth,
+                predictions,
+                scenes,
+                counted,
+                keep,
+                region_by_image,
+                protocol,
+                det_boxes,
+                gt_resized,
             )
     summary = {name: _setup_summary(per_class) for name, per_class in levels.items()}
     return {
@@ -329,7 +374,9 @@ def evaluate_setups(truth, predictions, protocol="miss-rate"):
     }
 
 
-def _class_result(truth, predictions, scenes, counted, keep, region_by_image, protocol):
+def _class_result(
+    truth, predictions, scenes, counted, keep, region_by_image, protocol, det_boxes, gt_resized
+):
     n_gt = int(np.count_nonzero(counted))
     scores, outcomes = [], []
     dropped = 0
@@ -339,9 +386,12 @@ def _class_result(truth, predictions, scenes, counted, keep, region_by_image, pr
         if not len(kept):
             continue
         regions = truth.regions[region_by_image[image]]
-        boxes = np.concatenate([truth.boxes[g], regions])
+        gt_boxes = truth.boxes[g]
+        if gt_resized is not None:  # only counted boxes are resized (dbEval loadGt)
+            gt_boxes = np.where(counted[g][:, None], gt_resized[g], gt_boxes)
+        boxes = np.concatenate([gt_boxes, regions])
         ignored = np.r_[~counted[g], np.ones(len(regions), bool)]
-        oa = overlaps(predictions.boxes[kept], boxes, ignored)
+        oa = overlaps(det_boxes[kept], boxes, ignored)
         outcomes.extend(match_image(oa.tolist(), ignored.tolist()))
         scores.extend(predictions.score[kept].tolist())
     outcomes = np.asarray(outcomes, np.int8)
@@ -387,7 +437,8 @@ def setup_counts(truth, protocol="miss-rate"):
     visibility = np.where(np.isnan(truth.visibility), 1.0, truth.visibility)
     out = {}
     for setup in protocol.setups:
-        inside = setup.counts(truth.boxes[:, 3], visibility) & ~flagged
+        inside = setup.counts(truth.boxes[:, 3], visibility, protocol.height_upper_open)
+        inside &= ~flagged
         out[setup.name] = {
             truth.classes[k]: int(np.count_nonzero(inside & (truth.box_class == k)))
             for k, _ in _classes(truth, protocol)

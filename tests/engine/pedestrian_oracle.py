@@ -107,17 +107,56 @@ def _ignored(row, setup):
     return int(row[5] or row[3] < h_lo or row[3] > h_hi or v < v_lo or v > v_hi)
 
 
+def _filter_gt_fun(row, setup):
+    """``dbEval loadGt filterGtFun`` (ar = 0, no frame bounds): kept (not ignored) iff
+    the label is the person label, ``h>=hr(1) & h<hr(2)``, and ``vf>=vr(1) &
+    vf<=vr(2)`` with ``vf = inf`` for a box without a visible part."""
+    (h_lo, h_hi), (v_lo, v_hi) = SETUPS[setup]
+    vf = INF if row[4] is None else row[4]
+    keep = not row[5] and h_lo <= row[3] < h_hi and v_lo <= vf <= v_hi
+    return int(not keep)
+
+
+def resize(bb, hr, wr, ar):
+    """``bbApply resize`` for one bb with hr, wr > 0 or one of them 0."""
+    x, y, w, h = bb
+    if hr != 0:
+        d = (hr - 1) * h
+        y, h = y - d / 2, h + d
+    if wr != 0:
+        d = (wr - 1) * w
+        x, w = x - d / 2, w + d
+    if not hr:
+        d = w / ar - h
+        y, h = y - d / 2, h + d
+    if not wr:
+        d = h * ar - w
+        x, w = x - d / 2, w + d
+    return [x, y, w, h]
+
+
 def _kept(row, setup):
     """``dbEval evalAlgs``: bb(:,4)>=hr(1)/filter & bb(:,4)<hr(2)*filter."""
     (h_lo, h_hi), _ = SETUPS[setup]
     return h_lo / FILTER <= row[3] < h_hi * FILTER
 
 
-def toolbox(scene, setup):
+def toolbox(scene, setup, caltech=False):
     """(LAMR, miss rate at each reference) as ``dbEval`` computes them: evalRes per
-    image, compRoc, ``exp(mean(log(max(1e-10, 1-ref))))``; None without positives."""
-    gt0 = [[list(r[:4]) + [_ignored(r, setup)] for r in gt] for gt, _ in scene]
-    dt0 = [[list(r) for r in dt if _kept(r, setup)] for _, dt in scene]
+    image, compRoc, ``exp(mean(log(max(1e-10, 1-ref))))``; None without positives.
+    ``caltech``: ``loadGt``'s ``filterGtFun`` and ``resize(bb(ids,:),1,0,.41)`` of the
+    kept boxes, ``loadDt``'s ``resize(bb,1,0,.41)`` of every detection."""
+    if caltech:
+        gt0 = []
+        for gt, _ in scene:
+            rows = [list(r[:4]) + [_filter_gt_fun(r, setup)] for r in gt]
+            gt0.append([r if r[4] == 1 else resize(r[:4], 1, 0, 0.41) + [0] for r in rows])
+        dt0 = [
+            [resize(r[:4], 1, 0, 0.41) + [r[4]] for r in dt if _kept(r, setup)] for _, dt in scene
+        ]
+    else:
+        gt0 = [[list(r[:4]) + [_ignored(r, setup)] for r in gt] for gt, _ in scene]
+        dt0 = [[list(r) for r in dt if _kept(r, setup)] for _, dt in scene]
     if not any(r[4] == 0 for image in gt0 for r in image):
         return None, None
     pairs = [eval_res(g, d) for g, d in zip(gt0, dt0)]

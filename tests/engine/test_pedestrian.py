@@ -100,6 +100,7 @@ def _check_both(tmp_path, scene):
     for protocol, reference in (
         ("miss-rate", pedestrian_oracle.toolbox),
         ("miss-rate-cityscale", pedestrian_oracle.cityscale),
+        ("miss-rate-caltech", lambda s, setup: pedestrian_oracle.toolbox(s, setup, caltech=True)),
     ):
         result = _ours(tmp_path, scene, protocol)
         for setup in SETUPS:
@@ -335,6 +336,49 @@ def test_clamp_toolbox_only(tmp_path):
     _check_both(tmp_path, scene)
 
 
+def test_caltech_standardises_aspect_ratio(tmp_path):
+    """dbEval resizes counted boxes and detections to w = 0.41 h about the centre. Box
+    [0, 0, 60, 100], detection [17, 0, 26, 100]: as given IoU = 2600 / 6000 = 0.433 <
+    0.5 -> an FP and a miss, LAMR 1. Resized: d = 41 - 60 = -19, box [9.5, 0, 41, 100];
+    d = 41 - 26 = 15, detection [9.5, 0, 41, 100]: IoU 1 -> TP, LAMR 1e-10."""
+    scene = [{"gt": [_box(0, 0, 60, 100, 1.0)], "dt": [([17, 0, 26, 100], 0.9)]}]
+    assert _row(_ours(tmp_path, scene), "reasonable")["miss_rate"] == 1.0
+    row = _row(_ours(tmp_path, scene, "miss-rate-caltech"), "reasonable")
+    assert row["miss_rate"] == pytest.approx(1e-10, rel=1e-12)
+    _check_both(tmp_path, scene)
+
+
+def test_caltech_resizes_detections_before_the_ignore_rule(tmp_path):
+    """A don't-care region [0, 0, 40, 100] (not resized: ignore boxes keep their shape)
+    and detection D = [-20, 0, 100, 100] (0.9). As given, D's intersection over its own
+    area is 40*100 / 10000 = 0.4 < 0.5 -> an FP before the TP (0.5): FPPI 1 first, LAMR
+    (1e-10)^(1/9). Resized (d = 41 - 100 = -59), D = [9.5, 0, 41, 100]: 30.5*100 / 4100
+    = 0.744 -> ignored, LAMR 1e-10."""
+    scene = [
+        {
+            "gt": [_box(300, 0, 41, 100, 1.0)],
+            "regions": [[0, 0, 40, 100]],
+            "dt": [([-20, 0, 100, 100], 0.9), ([300, 0, 41, 100], 0.5)],
+        }
+    ]
+    row = _row(_ours(tmp_path, scene), "reasonable")
+    assert row["miss_rate"] == pytest.approx(1e-10 ** (1 / 9), rel=1e-12)
+    row = _row(_ours(tmp_path, scene, "miss-rate-caltech"), "reasonable")
+    assert row["detections"]["ignored"] == 1
+    assert row["miss_rate"] == pytest.approx(1e-10, rel=1e-12)
+    _check_both(tmp_path, scene)
+
+
+def test_caltech_upper_height_is_open(tmp_path):
+    """dbEval's filterGtFun keeps h < hr(2): a 75 px box is counted in small under the
+    city-scale closed range [50, 75] and the default, ignored under miss-rate-caltech
+    (n_gt 0: absent)."""
+    scene = [{"gt": [_box(0, 0, 30, 75, 1.0)], "dt": [([0, 0, 30, 75], 0.9)]}]
+    assert _row(_ours(tmp_path, scene), "small")["n_gt"] == 1
+    assert _row(_ours(tmp_path, scene, "miss-rate-caltech"), "small")["miss_rate"] is None
+    _check_both(tmp_path, scene)
+
+
 def test_rounded_reference_points():
     """FPPI 89/5000 = 0.0178 is at or below the city-scale's rounded 0.0178 but above
     10^-1.75 = 0.017783: a TP reached there counts at the 2nd reference for the
@@ -377,6 +421,7 @@ def test_no_counted_box_is_absent_and_no_detection_is_one(tmp_path):
 _coord = st.integers(0, 12).map(lambda v: v * 10.0)
 _height = st.sampled_from([15.0, 19.0, 20.0, 39.5, 40.0, 50.0, 60.0, 75.0, 80.0, 93.75, 120.0])
 _vis = st.sampled_from([None, 0.1, 0.2, 0.5, 0.65, 0.8, 1.0])
+_aspect = st.sampled_from([0.3, 0.41, 0.6])  # width / height; 0.41 is dbEval's standard
 
 
 @st.composite
@@ -392,7 +437,7 @@ def _scenes(draw):
                 _box(
                     draw(_coord),
                     draw(_coord),
-                    h * 0.41,
+                    h * draw(_aspect),
                     h,
                     draw(_vis),
                     cls,
@@ -408,7 +453,7 @@ def _scenes(draw):
                 box = [x + jitter, y, w, h + draw(st.sampled_from([0.0, -10.0, 10.0]))]
             else:
                 h = draw(_height)
-                box = [draw(_coord), draw(_coord), h * 0.41, h]
+                box = [draw(_coord), draw(_coord), h * draw(_aspect), h]
             score = draw(st.sampled_from([0.1, 0.3, 0.5, 0.7, 0.9]))
             cls = draw(st.sampled_from(["pedestrian"] * 5 + ["people"]))
             dt.append((box, score, cls))
