@@ -1,0 +1,147 @@
+"""The pedestrian setups and the miss-rate presets (``pedestrian.evaluate_setups``
+reads them): setup ranges, the reading rules of the toolbox (Dollár et al., TPAMI 2012),
+the city-scale code (Zhang et al., CVPR 2017) and the toolbox's Caltech script."""
+
+from dataclasses import dataclass, field
+
+from .errors import InputError
+from .operating_point import FPPI_POINTS
+
+MIN_OVERLAP = 0.5
+HEIGHT_EXPANSION = 1.25
+CLAMP = 1e-10
+CURVE_POINTS = 120  # at most this many stored curve points per setup and class
+CITYSCALE_FPPI_POINTS = (0.0100, 0.0178, 0.0316, 0.0562, 0.1000, 0.1778, 0.3162, 0.5623, 1.0000)
+VARIANTS = ("toolbox", "cityscale")
+
+
+@dataclass(frozen=True)
+class Setup:
+    """A pedestrian setup: closed ranges of box height (px) and visibility ratio;
+    ``None`` is an open upper end."""
+
+    name: str
+    height: tuple
+    visibility: tuple
+
+    def counts(self, height, visibility, upper_open=False):
+        """Per box: inside the setup (closed ranges; ``upper_open``: h < h_hi, as
+        ``dbEval``'s ``filterGtFun``)."""
+        (h_lo, h_hi), (v_lo, v_hi) = self.height, self.visibility
+        inside = (height >= h_lo) & (visibility >= v_lo)
+        if h_hi is not None:
+            inside &= (height < h_hi) if upper_open else (height <= h_hi)
+        if v_hi is not None:
+            inside &= visibility <= v_hi
+        return inside
+
+    def keeps(self, det_height, expansion):
+        """Per detection: inside the expanded height range [lo / e, hi * e)."""
+        lo, hi = self.height
+        keep = det_height >= lo / expansion
+        if hi is not None:
+            keep &= det_height < hi * expansion
+        return keep
+
+
+SETUPS = (
+    Setup("reasonable", (50.0, None), (0.65, None)),
+    Setup("small", (50.0, 75.0), (0.65, None)),
+    Setup("heavy", (50.0, None), (0.20, 0.65)),
+    Setup("all", (20.0, None), (0.20, None)),
+)
+
+_NEIGHBOURS = ("person?", "people", "ignore")
+
+
+@dataclass(frozen=True)
+class MissRateProtocol:
+    """A miss-rate preset: setups and the reading rules of one published code."""
+
+    name: str
+    version: int
+    description: str
+    variant: str = "toolbox"
+    setups: tuple = SETUPS
+    fppi_points: tuple = tuple(FPPI_POINTS.tolist())
+    max_detections: int = None  # per image and class, by score; None = every one
+    neighbours: dict = field(
+        default_factory=lambda: {"person": _NEIGHBOURS, "pedestrian": _NEIGHBOURS}
+    )
+    headline_level: str = "reasonable"
+    aspect_ratio: float = None  # dbEval: counted boxes and detections resized to w = ar * h
+    height_upper_open: bool = False  # dbEval: a counted box needs h < h_hi
+
+    def record(self):
+        """The full protocol record stored beside every number; ``levels`` lists the
+        setups as ``difficulty``'s record lists its levels (``name`` first)."""
+        return {
+            "name": self.name,
+            "version": self.version,
+            "description": self.description,
+            "kind": "setups",
+            "metric": "miss_rate",
+            "lower_is_better": True,
+            "variant": self.variant,
+            "levels": [
+                {"name": s.name, "height": list(s.height), "visibility": list(s.visibility)}
+                for s in self.setups
+            ],
+            "iou_threshold": MIN_OVERLAP,
+            "ignore_overlap": "intersection over the detection's area >= 0.5",
+            "height_expansion": HEIGHT_EXPANSION,
+            "max_detections": self.max_detections,
+            "fppi_points": list(self.fppi_points),
+            "clamp": CLAMP if self.variant == "toolbox" else None,
+            "empty_budget": "miss rate 1" if self.variant == "toolbox" else "last recall",
+            "neighbours": {k: list(v) for k, v in self.neighbours.items()},
+            "headline_level": self.headline_level,
+            "aspect_ratio": self.aspect_ratio,
+            "height_upper": "open" if self.height_upper_open else "closed",
+        }
+
+
+MISS_RATE = MissRateProtocol(
+    name="miss-rate",
+    version=1,
+    description="Log-average miss rate on the pedestrian setups reasonable / small / heavy "
+    "occlusion / all, as the pedestrian detection toolbox reads it (Dollar et al., TPAMI "
+    "2012: bbGt evalRes/compRoc, dbEval): ignore boxes matched by intersection over the "
+    "detection's area, expanded height range for detections, FPPI 10^-2..10^0",
+)
+MISS_RATE_CITYSCALE = MissRateProtocol(
+    name="miss-rate-cityscale",
+    version=1,
+    description="Log-average miss rate on the same setups as the city-scale benchmark's "
+    "evaluation reads it (Zhang et al., CVPR 2017): FPPI points rounded to four decimals, "
+    "top 1,000 detections per image, no clamp, an empty budget reads the last recall",
+    variant="cityscale",
+    fppi_points=CITYSCALE_FPPI_POINTS,
+    max_detections=1000,
+)
+
+MISS_RATE_CALTECH = MissRateProtocol(
+    name="miss-rate-caltech",
+    version=1,
+    description="The toolbox's reading with its Caltech benchmark script's box handling "
+    "(dbEval loadGt/loadDt): counted boxes and every detection resized to aspect ratio "
+    "0.41 about their centre (height kept), a counted box's height below the setup's upper "
+    "bound (h < h_hi)",
+    aspect_ratio=0.41,
+    height_upper_open=True,
+)
+
+MISS_RATE_PRESETS = {p.name: p for p in (MISS_RATE, MISS_RATE_CITYSCALE, MISS_RATE_CALTECH)}
+
+
+def get_miss_rate_protocol(name_or_protocol):
+    if isinstance(name_or_protocol, MissRateProtocol):
+        return name_or_protocol
+    try:
+        return MISS_RATE_PRESETS[name_or_protocol]
+    except KeyError:
+        raise InputError(
+            "protocol",
+            f"unknown miss-rate protocol {name_or_protocol!r}; known: "
+            f"{', '.join(MISS_RATE_PRESETS)}",
+        ) from None
