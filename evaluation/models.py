@@ -204,7 +204,10 @@ class ClassScore(models.Model):
 
 
 class SliceScore(models.Model):
-    """AP of one slice (image tag or size bucket), for the mean ('' class) or a class."""
+    """The rule metrics of one slice (image tag or size bucket), for the mean ('' class)
+    or a class. ``all_metrics`` is False on rows stored before AP50, AP75 and recall
+    were kept per slice (those columns are then unknown, not absent): readers compute
+    them from the match records (``evaluation.slices``)."""
 
     class Kind(models.TextChoices):
         TAG = "tag"
@@ -215,6 +218,10 @@ class SliceScore(models.Model):
     name = models.CharField(max_length=64)
     class_name = models.CharField(max_length=64, blank=True)
     ap = models.FloatField(null=True)
+    ap50 = models.FloatField(null=True)
+    ap75 = models.FloatField(null=True)
+    recall = models.FloatField(null=True)
+    all_metrics = models.BooleanField(default=False)
     images = models.PositiveIntegerField(null=True)
 
     class Meta:

@@ -47,22 +47,27 @@ def class_rows(scorecard, result):
 
 
 def slice_rows(scorecard, result):
+    """One row per slice and class (plus the mean row, class_name ''), with every rule
+    metric when the result has them (``classes``: results from engine 1.x before
+    per-slice metrics have AP only and give rows with ``all_metrics`` False)."""
     for kind, slices in result["slices"].items():
         for name, entry in slices.items():
-            yield SliceScore(
-                scorecard=scorecard,
-                kind=kind,
-                name=name,
-                class_name="",
-                ap=entry["AP"],
-                images=entry.get("images"),
-            )
-            for class_name, ap in entry["per_class"].items():
+            complete = "classes" in entry
+            rows = [("", entry)]
+            if complete:
+                rows += list(entry["classes"].items())
+            else:
+                rows += [(c, {"AP": ap}) for c, ap in entry["per_class"].items()]
+            for class_name, metrics in rows:
                 yield SliceScore(
                     scorecard=scorecard,
                     kind=kind,
                     name=name,
                     class_name=class_name,
-                    ap=ap,
+                    ap=metrics["AP"],
+                    ap50=metrics.get("AP50"),
+                    ap75=metrics.get("AP75"),
+                    recall=metrics.get("recall"),
+                    all_metrics=complete,
                     images=entry.get("images"),
                 )

@@ -26,7 +26,7 @@ from .audit import digest, verify_audit
 from .models import AuditEvent, Judgement, Outcome, SignOff
 
 RESULT_FORMAT = 1
-PARTS = ("format", "evaluation", "scorecard", "classes", "slices", "records")
+PARTS = ("format", "evaluation", "scorecard", "classes", "slices", "slice_metrics", "records")
 DECISION_KINDS = (AuditEvent.Kind.SIGNED_OFF, AuditEvent.Kind.REJECTED, AuditEvent.Kind.OVERRIDE)
 FINISH_KINDS = (AuditEvent.Kind.EVALUATION_FINISHED, AuditEvent.Kind.EVALUATION_FAILED)
 DECISION_FIELDS = ("decision", "comment", "override", "justification", "evidence")
@@ -44,6 +44,8 @@ CLASS_COLUMNS = (
     "miss_rate",
 )
 SLICE_COLUMNS = ("kind", "name", "class_name", "ap", "images")
+#: A part of its own, so events recorded before these columns existed still verify.
+SLICE_METRIC_COLUMNS = ("kind", "name", "class_name", "ap50", "ap75", "recall", "all_metrics")
 OUTCOME_COLUMNS = (
     "version_id",
     "criteria_id",
@@ -79,7 +81,8 @@ def result_digests(evaluation_id):
 
     ``evaluation``: its inputs, state, error and finish time; ``scorecard``: the stored
     numbers and hashes (summary and the full result); ``classes`` and ``slices``: the
-    per-class and slice rows, sorted; ``records``: SHA-256 of the match-records file.
+    per-class and slice rows, sorted (``slice_metrics``: the slices' AP50, AP75, recall,
+    checked only on events that recorded it); ``records``: SHA-256 of the match-records file.
     A part that does not exist digests ``null``.
     """
     e = Evaluation.objects.filter(pk=evaluation_id).first()
@@ -119,6 +122,9 @@ def result_digests(evaluation_id):
     slices = SliceScore.objects.filter(scorecard__evaluation_id=evaluation_id)
     parts["classes"] = digest(sorted(classes.values_list(*CLASS_COLUMNS), key=lambda r: r[0]))
     parts["slices"] = digest(sorted(slices.values_list(*SLICE_COLUMNS), key=lambda r: r[:3]))
+    parts["slice_metrics"] = digest(
+        sorted(slices.values_list(*SLICE_METRIC_COLUMNS), key=lambda r: r[:3])
+    )
     parts["records"] = _file_sha256(card.records) if card else None
     return parts
 

@@ -1,7 +1,8 @@
 """Release criteria: validate a detector's rules, judge a candidate against them.
 
 A rule: ``{"metric": "AP"|"AP50"|"AP75"|"recall", "class": "mean"|"*"|name,
-"split": "*"|"name:revision", "tag": optional image tag, "kind": one of
+"split": "*"|"name:revision", "tag": optional image tag, or "size": optional size
+bucket (``rule_slices``: COCO's small/medium/large or the protocol's own), "kind": one of
 "min_value" (with "threshold" on 0-1), "max_drop" (with "tolerance" in AP points,
 0-100) or "no_significant_drop" (AP only; "confidence", default 0.95, and an optional
 "tolerance" in points)}``. ``"class": "*"`` applies the rule to every class.
@@ -16,10 +17,10 @@ from django.conf import settings
 from django.core.exceptions import PermissionDenied
 from django.db import transaction
 
-from evaluation.models import BenchmarkSplit, ClassScore, SliceScore
+from evaluation.models import BenchmarkSplit, ClassScore
 from evaluation.services import UploadError, load_records, load_truth_of
 
-from . import audit, selectors
+from . import audit, rule_slices, selectors
 from .models import AuditEvent, Membership, Outcome, ReleaseCriteria
 
 METRICS = {"AP": "ap", "AP50": "ap50", "AP75": "ap75", "recall": "recall"}
@@ -63,7 +64,18 @@ def validate_rules(detector, rules):
         raise CriteriaError("criteria must be a non-empty list of rules", path="rules")
     _storable_text(rules, "rules")
     splits = {f"{s.name}:{s.revision}" for s in BenchmarkSplit.objects.all()}
-    known = {"metric", "class", "split", "tag", "kind", "threshold", "tolerance", "confidence"}
+    known = {
+        "metric",
+        "class",
+        "split",
+        "tag",
+        "size",
+        "kind",
+        "threshold",
+        "tolerance",
+        "confidence",
+    }
+    protocols = _judging_protocols(detector)
     out = []
     for i, rule in enumerate(rules):
         if not isinstance(rule, dict):
@@ -87,12 +99,8 @@ def validate_rules(detector, rules):
         split = rule.get("split", "*")
         if split != "*" and split not in splits:
             _fail(i, "split", f"{split!r} is not a benchmark split (use name:revision or '*')")
-        tag = rule.get("tag")
-        if tag is not None and (not isinstance(tag, str) or not tag):
-            _fail(i, "tag", "must be a non-empty image tag")
         clean = {"kind": kind, "metric": metric, "class": name, "split": split}
-        if tag:
-            clean["tag"] = tag
+        rule_slices.validate(rule, i, clean, protocols, _fail)
         if kind == "min_value":
             clean["threshold"] = _number(rule, i, "threshold", 0.0, 1.0)
         else:
@@ -108,6 +116,15 @@ def validate_rules(detector, rules):
             clean["confidence"] = _number(rule, i, "confidence", 0.5, 0.999, default=0.95)
         out.append(clean)
     return out
+
+
+def _judging_protocols(detector):
+    """The protocols a rule may be judged under: the suite's first (the judging one) and
+    the detector's primary protocol."""
+    from .suites import current_suite
+
+    suite = current_suite(detector)
+    return [*(suite.protocols[:1] if suite else []), detector.primary_protocol]
 
 
 def set_criteria(detector, user, rules):
@@ -144,14 +161,9 @@ def _scorecards(sets, protocol):
     return {ps.split: cards[(ps.pk, protocol)] for ps in sets if (ps.pk, protocol) in cards}
 
 
-def _value(card, metric, name, tag):
+def _value(card, metric, name):
     if card is None:
         return None
-    if tag:
-        row = SliceScore.objects.filter(
-            scorecard=card, kind="tag", name=tag, class_name="" if name == "mean" else name
-        ).first()
-        return row.ap if row and metric == "AP" else None
     row = ClassScore.objects.filter(
         scorecard=card, class_name="" if name == "mean" else name
     ).first()
@@ -162,9 +174,10 @@ def _records(card):
     return load_records(card)
 
 
-def _intervals(candidate_card, baseline_card, tag, confidence):
+def _intervals(candidate_card, baseline_card, tag, confidence, size=None):
     """Paired-bootstrap intervals of ΔAP (candidate − baseline): mean and every class,
-    from one set of replicates (``{name: Interval}``)."""
+    from one set of replicates (``{name: Interval}``), over the images carrying ``tag``
+    or within size bucket ``size`` (re-accumulated from the records' size bucket)."""
     from evaluation.engine.bootstrap import paired_bootstrap
     from evaluation.engine.scoring import headline
 
@@ -172,12 +185,17 @@ def _intervals(candidate_card, baseline_card, tag, confidence):
     from evaluation.protocols import resolve
 
     resolved = resolve(candidate_card.protocol)
-    mask = load_truth_of(candidate_card.evaluation.split).tag_mask(tag) if tag else None
+    rule = {"tag": tag, "size": size}
+    mask, area = rule_slices.weights_and_area(candidate_card, records_c, rule, load_truth_of)
+    if area and records_b.area_names != records_c.area_names:
+        raise rule_slices.SliceUnavailable(
+            f"the baseline's records have other size buckets ({', '.join(records_b.area_names)})"
+        )
 
     def statistic(records):
         def of(weights):
             w = mask if weights is None else (weights if mask is None else weights * mask)
-            mean, per_class = headline(records, resolved, weights=w)
+            mean, per_class = headline(records, resolved, weights=w, area=area)
             return np.r_[mean, per_class]
 
         return of
@@ -244,9 +262,21 @@ def outcomes_for(version, inputs):
 def _judge_one(
     version, criteria, index, rule, split, name, card, baseline, baseline_card, bootstraps
 ):
-    tag = rule.get("tag")
-    value = _value(card, rule["metric"], name, tag)
-    base_value = _value(baseline_card, rule["metric"], name, tag)
+    tag, where = rule.get("tag"), rule_slices.of(rule)
+    problem = base_problem = None
+    if where is None:
+        value = _value(card, rule["metric"], name)
+        base_value = _value(baseline_card, rule["metric"], name)
+    else:
+        cache = bootstraps.setdefault("slices", {})
+        value, problem = (
+            (None, None) if card is None else rule_slices.measure(card, rule, name, cache)
+        )
+        base_value, base_problem = (
+            (None, None)
+            if baseline_card is None or rule["kind"] == "min_value"
+            else rule_slices.measure(baseline_card, rule, name, cache)
+        )
     outcome = Outcome(
         version=version,
         criteria=criteria,
@@ -258,10 +288,14 @@ def _judge_one(
         baseline_value=base_value,
         baseline=baseline,
     )
-    label = f"{rule['metric']} of {name}" + (f" at {tag}" if tag else "") + f" on {split}"
+    label = f"{rule['metric']} of {name}" + (where.label if where else "") + f" on {split}"
     if card is None:
         outcome.status, outcome.detail = Outcome.Status.MISSING, f"no predictions on {split}"
         return outcome
+    for found, whose in ((problem, ""), (base_problem, "baseline: ")):
+        if found:
+            outcome.status, outcome.detail = found[0], f"{label}: {whose}{found[1]}"
+            return outcome
     if value is None:
         outcome.status, outcome.detail = Outcome.Status.NO_DATA, f"{label}: not measured"
         return outcome
@@ -283,9 +317,15 @@ def _judge_one(
             f"allowed {rule['tolerance']:.2f})"
         )
         return outcome
-    key = (split.pk, tag, rule["confidence"])
+    key = (split.pk, tag, rule.get("size"), rule["confidence"])
     if key not in bootstraps:
-        bootstraps[key] = _intervals(card, baseline_card, tag, rule["confidence"])
+        try:
+            bootstraps[key] = _intervals(
+                card, baseline_card, tag, rule["confidence"], size=rule.get("size")
+            )
+        except rule_slices.SliceUnavailable as e:
+            outcome.status, outcome.detail = Outcome.Status.MISSING, f"{label}: {e}"
+            return outcome
     interval = bootstraps[key][name]
     outcome.low, outcome.high = interval.low, interval.high
     significant = interval.high < 0

@@ -176,15 +176,62 @@ def _area_scores(records, protocol, area, weights):
     return points, precision, ap, recall_score(points)
 
 
-def headline(records, protocol, *, weights=None):
-    """The headline AP (mean over present classes and all slots) and AP per class.
+def headline(records, protocol, *, weights=None, area=0):
+    """The headline AP (mean over present classes and all slots) and AP per class, of
+    size bucket ``area`` (0: all).
 
     The cheap path for slices and bootstrap replicates: one size bucket, no curves.
     """
     protocol = get_protocol(protocol)
-    _, precision, ap, _ = _area_scores(records, protocol, 0, weights)
+    _, precision, ap, _ = _area_scores(records, protocol, area, weights)
     mean = mean_present(precision) if precision is not None else mean_present(ap)
     return mean, ap.mean(axis=0)
+
+
+def _slice_entry(records, protocol, scores, mean_ap):
+    r"""One slice's rule metrics, mean and per class, from one ``_area_scores``.
+
+    As for the whole split (``_per_class``, ``_coco_summary``): AP is the mean over
+    slots of the class's AP; AP50 / AP75 (protocols with pycocotools' summary only)
+    the mean precision over the recall points at IoU 0.5 / 0.75, and their mean over
+    present classes the mean of ``precision[t]`` over present classes (pycocotools
+    ``summarize``: ``mean(s[s > -1])``); recall the final TP / n_pos at the protocol's
+    largest cap (pycocotools ``rc[-1]``), averaged over slots, its mean over present
+    classes (AR at that cap).
+    """
+    _, precision, ap, recall = scores
+    classes = {}
+    mean = {"AP": _number(mean_ap), "AP50": None, "AP75": None}
+    if protocol.coco_summary and precision is not None:
+        for key, value in (("AP50", 0.5), ("AP75", 0.75)):
+            t = _slot_of(protocol, value)
+            if t is not None:
+                mean[key] = _number(mean_present(precision[t : t + 1]))
+    mean["recall"] = _number(mean_present(recall))
+    for k, name in enumerate(records.classes):
+        row = {"AP": _number(np.mean(ap[:, k])), "AP50": None, "AP75": None}
+        if protocol.coco_summary and precision is not None:
+            for key, value in (("AP50", 0.5), ("AP75", 0.75)):
+                t = _slot_of(protocol, value)
+                if t is not None:
+                    row[key] = _number(precision[t, :, k].mean())
+        row["recall"] = _number(np.mean(recall[:, k]))
+        classes[name] = row
+    return mean, classes
+
+
+def slice_scores(records, protocol, *, weights=None, area=0):
+    """AP, AP50, AP75 and recall of one slice, mean and per class: the images of
+    ``weights`` (a 0/1 tag mask, say) in size bucket ``area`` (0: all), re-accumulated
+    from the records (no re-matching). ``{"AP": …, "AP50": …, "AP75": …, "recall": …,
+    "classes": {name: {same keys}}}``; absent values None (see ``_slice_entry``)."""
+    protocol = get_protocol(protocol)
+    weights = check_weights(weights, records.n_images)
+    scores = _area_scores(records, protocol, area, weights)
+    precision, ap = scores[1], scores[2]
+    mean_ap = mean_present(precision) if precision is not None else mean_present(ap)
+    mean, classes = _slice_entry(records, protocol, scores, mean_ap)
+    return {**mean, "classes": classes}
 
 
 def score_records(records, protocol, *, weights=None, tag_masks=None, score_threshold=0.5):
@@ -249,18 +296,20 @@ def score_records(records, protocol, *, weights=None, tag_masks=None, score_thre
         "slices": {"size": {}, "tag": {}},
     }
     for a, name in enumerate(records.area_names[1:], start=1):
+        mean, classes = _slice_entry(records, protocol, by_area[a], mean_present(ap_by_area[a]))
         result["slices"]["size"][name] = {
-            "AP": _number(mean_present(ap_by_area[a])),
-            "per_class": {
-                c: _number(np.mean(ap_by_area[a][:, k])) for k, c in enumerate(records.classes)
-            },
+            **mean,
+            "per_class": {c: row["AP"] for c, row in classes.items()},
+            "classes": classes,
         }
     for tag, mask in sorted((tag_masks or {}).items()):
         tag_weights = mask if weights is None else mask * weights
-        mean, per_class = headline(records, protocol, weights=tag_weights)
+        entry = slice_scores(records, protocol, weights=tag_weights)
+        classes = entry.pop("classes")
         result["slices"]["tag"][tag] = {
             "images": int(np.count_nonzero(tag_weights)),
-            "AP": _number(mean),
-            "per_class": {c: _number(per_class[k]) for k, c in enumerate(records.classes)},
+            **entry,
+            "per_class": {c: row["AP"] for c, row in classes.items()},
+            "classes": classes,
         }
     return result

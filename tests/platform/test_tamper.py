@@ -342,6 +342,7 @@ def test_every_finished_result_is_chained_with_the_digests_of_its_rows(decided):
             "scorecard",
             "classes",
             "slices",
+            "slice_metrics",
             "records",
         }
     ok, out = _verify()
@@ -365,6 +366,7 @@ EDITS = [
     ),
     ("DELETE FROM evaluation_classscore WHERE class_name = 'cyclist'", "(classes)"),
     ("UPDATE evaluation_slicescore SET ap = 0.5 WHERE kind = 'size'", "(slices)"),
+    ("UPDATE evaluation_slicescore SET recall = 0.5 WHERE kind = 'size'", "(slice_metrics)"),
     (
         "UPDATE evaluation_scorecard SET summary = '{\"AP\": 0.9}'",
         "no longer matches its digest (scorecard)",
@@ -375,7 +377,7 @@ EDITS = [
         "DELETE FROM evaluation_errorbreakdown; DELETE FROM evaluation_slicescore; "
         "DELETE FROM evaluation_classscore; "
         "DELETE FROM evaluation_scorecard",
-        "(scorecard, classes, slices, records)",
+        "(scorecard, classes, slices, slice_metrics, records)",
     ),
     ("UPDATE releases_signoff SET decision = 'approved'", "no longer reads as recorded (decision)"),
     ("UPDATE releases_signoff SET comment = 'fine'", "no longer reads as recorded (comment)"),
