@@ -5,7 +5,7 @@ from django.db import migrations, models
 
 class Migration(migrations.Migration):
     dependencies = [
-        ("evaluation", "0009_error_breakdown"),
+        ("evaluation", "0010_evaluation_shards"),
     ]
 
     operations = [
