@@ -5,6 +5,7 @@ import json
 from django.contrib import messages
 from django.contrib.auth.decorators import login_required
 from django.core.exceptions import PermissionDenied
+from django.core.paginator import Paginator
 from django.shortcuts import redirect, render
 from django.urls import reverse
 
@@ -14,19 +15,46 @@ from releases import selectors
 
 from .lookup import detector_or_404
 
+TABLE_ROWS = 50
+
 
 @login_required
 def detector(request, detector_id):
+    """The chart and table carry one metric and class (default mean AP, one line per
+    split name); the chart fetches another selection from the history API."""
     found = detector_or_404(request.user, detector_id)
-    chart = selectors.history_chart(found)
+    chosen = {
+        "metric": request.GET.get("metric") or "AP",
+        "class_name": request.GET.get("class") or selectors.history.MEAN,
+        "revisions": request.GET.get("revisions") or "joined",
+    }
+    error = None
+    try:
+        chart = selectors.history_chart(found, **chosen)
+    except selectors.HistoryError as e:
+        error = str(e)
+        chart = selectors.history_chart(found)
     for entry in chart["versions"]:
         entry["url"] = reverse("version", args=[entry["id"]])
+    # The table: newest first, one page of versions, each with its badge (decision or
+    # current verdict, computed for these rows only).
+    rows = Paginator(list(reversed(range(len(chart["versions"])))), TABLE_ROWS).get_page(
+        request.GET.get("page")
+    )
+    shown = [chart["versions"][i] for i in rows]
+    objects = found.versions.select_related("sign_off").filter(pk__in=[v["id"] for v in shown])
+    badges = selectors.version_badges(objects)
+    several = {line["name"] for line in chart["series"] if len(line["splits"]) > 1}
     table = [
         {
-            "version": v,
-            "values": [chart["values"][str(s["id"])]["AP"]["mean"][i] for s in chart["splits"]],
+            "version": chart["versions"][i],
+            "state": badges[chart["versions"][i]["id"]],
+            "values": [
+                (line["values"][i], line["revisions"][i] if line["name"] in several else None)
+                for line in chart["series"]
+            ],
         }
-        for i, v in enumerate(chart["versions"])
+        for i in rows
     ]
     return render(
         request,
@@ -34,9 +62,14 @@ def detector(request, detector_id):
         {
             "detector": found,
             "chart": chart,
-            "table": list(reversed(table)),
+            "views": selectors.REVISION_VIEWS,
+            "source": reverse("api:history", args=[found.pk]),
+            "table": table,
+            "rows": rows,
+            "error": error,
             "can_upload": selectors.role_in(request.user, found.team) in selectors.UPLOAD_ROLES,
         },
+        status=400 if error else 200,
     )
 
 

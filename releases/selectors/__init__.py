@@ -47,6 +47,8 @@ from .evidence import (  # noqa: F401
     evidence_for,
 )
 from .history import (  # noqa: F401
+    REVISION_VIEWS,
+    HistoryError,
     history_chart,
 )
 from .overview import (  # noqa: F401

@@ -1,91 +1,149 @@
-"""The detector page: every version's numbers on every split."""
-
-import numpy as np
+"""The detector page: one metric and class of every version on every split."""
 
 from ..models import PredictionSet
-from .decisions import version_badges
+from .decisions import baselines_of
 from .scores import METRICS, _splits
 
+MEAN = "mean"
+REVISION_VIEWS = ("joined", "separate")
 
-def history_chart(detector):
-    """Every version's numbers on every split, for the history chart and table.
 
-    ``values[split][metric][class]`` is a list aligned with ``versions`` (None where
-    not scored); class ``"mean"`` is the protocol's mean. A few queries, numbers as
-    tuples.
+class HistoryError(ValueError):
+    """A history request named a metric, class or revision view that does not exist."""
+
+
+def history_chart(detector, metric="AP", class_name=MEAN, revisions="joined"):
+    """One metric of one class (``mean`` = the protocol's mean) for every version, as
+    one series per split name (``revisions="joined"``) or per split revision
+    (``"separate"``), values aligned with ``versions`` (None where not scored).
+
+    Joined: a version's point on a split name is its number on the newest revision of
+    that name it was scored on; ``changes`` lists where the revision changes along the
+    line (the chart marks them). Numbers carry four decimals, rounded as Python's
+    ``round`` (the page shows three). Each version carries its decision (approved,
+    rejected or None) and ``baseline`` names the baseline; the current verdict of every
+    version is not computed here (it reads every set and evaluation of every version:
+    seconds at 1,000 versions) — the page's table computes it for the rows it shows.
+    A few queries and about 5,000 numbers at 1,000 versions x 5 splits, read as tuples.
     """
+    if metric not in METRICS:
+        raise HistoryError(f"metric: {metric!r} is not one of {', '.join(METRICS)}")
+    if revisions not in REVISION_VIEWS:
+        raise HistoryError(f"revisions: {revisions!r} is not one of {', '.join(REVISION_VIEWS)}")
+    classes = [MEAN, *detector.classes]
+    if class_name not in classes:
+        raise HistoryError(f"class: {class_name!r} is not one of {', '.join(classes)}")
     from evaluation.models import ClassScore
 
-    versions = list(detector.versions.select_related("sign_off").order_by("created_at"))
-    badges = version_badges(versions)
-    sets = list(
+    versions = list(
+        detector.versions.order_by("created_at").values_list(
+            "pk", "label", "created_at", "sign_off__decision"
+        )
+    )
+    position = {pk: i for i, (pk, *_) in enumerate(versions)}
+    baseline = baselines_of({detector.pk}).get(detector.pk)
+    field = METRICS[metric][0]
+    # All conditions on the set in one filter(): the same set row, so a version reads
+    # its own sets' evaluations only (never another team's scorecard of the same
+    # bytes), and two versions sharing identical bytes each get their point.
+    rows = (
+        ClassScore.objects.filter(
+            class_name="" if class_name == MEAN else class_name,
+            scorecard__evaluation__state="done",
+            scorecard__evaluation__protocol=detector.primary_protocol,
+            scorecard__evaluation__prediction_sets__replaced_at__isnull=True,
+            scorecard__evaluation__prediction_sets__version__detector=detector,
+        )
+        .order_by("scorecard__evaluation_id")  # several evaluations of a set: the newest wins
+        .values_list(
+            "scorecard__evaluation__prediction_sets__version_id",
+            "scorecard__evaluation__split_id",
+            field,
+        )
+    )
+    numbers = {}  # (version id, split id) -> value
+    for version_id, split_id, value in rows:
+        numbers[version_id, split_id] = value
+    split_ids = set(
         PredictionSet.objects.current()
         .filter(version__detector=detector)
-        .values_list("version_id", "split_id", "predictions_id")
+        .values_list("split_id", flat=True)
+        .distinct()
     )
-    version_of = {(file_id, split_id): version_id for version_id, split_id, file_id in sets}
-    split_objects = {s.pk: s for s in _splits({split_id for _, split_id, _ in sets})}
-    splits = sorted(split_objects.values(), key=lambda s: (s.name, s.revision))
-    position = {v.pk: i for i, v in enumerate(versions)}
-    classes = ["mean", *detector.classes]
-    fields = [field for field, _ in METRICS.values()]
-    scores = ClassScore.objects.filter(
-        scorecard__evaluation__state="done",
-        scorecard__evaluation__protocol=detector.primary_protocol,
-        scorecard__evaluation__predictions_id__in={file_id for _, _, file_id in sets},
-        scorecard__evaluation__prediction_sets__in=PredictionSet.objects.current().filter(
-            version__detector=detector
-        ),  # the sets' own evaluations: never another team's scorecard of the same bytes
-    ).values_list(
-        "scorecard__evaluation__predictions_id",
-        "scorecard__evaluation__split_id",
-        "class_name",
-        *fields,
-    )
-    # One array (split, metric, class, version) filled in a single vectorised step:
-    # the Python loop would round 45,000 numbers one by one for 200 versions x 5 splits.
-    split_index = {split.pk: k for k, split in enumerate(splits)}
-    class_index = {name: k for k, name in enumerate(classes)}
-    where, numbers = [], []
-    for file_id, split_id, name, *row in scores:
-        version_id = version_of.get((file_id, split_id))
-        k = class_index.get(name or "mean")
-        if version_id is not None and k is not None:
-            where.append((split_index[split_id], k, position[version_id]))
-            numbers.append(row)
-    cube = np.full((len(splits), len(METRICS), len(classes), len(versions)), np.nan)
-    if where:
-        s_, c_, v_ = np.array(where).T
-        # None (not measured) becomes NaN here and None again below.
-        cube[s_, :, c_, v_] = np.array(numbers, dtype=float)
-    # Four decimals: the page shows three, and shorter JSON renders faster. np.round
-    # scales by 10^4 and can differ from Python's correctly rounded round() at halfway
-    # cases; those few are rounded by round(), so the numbers equal the scorecard's.
-    rounded = np.round(cube, 4)
-    scaled = cube * 1e4
-    for at in zip(*np.nonzero(np.abs(scaled - np.floor(scaled) - 0.5) < 1e-6)):
-        rounded[at] = round(float(cube[at]), 4)
-    shown = rounded.astype(object)
-    shown[np.isnan(cube)] = None
-    values = {
-        split.pk: {
-            metric: dict(zip(classes, shown[k, m].tolist())) for m, metric in enumerate(METRICS)
-        }
-        for k, split in enumerate(splits)
-    }
+    splits = sorted(_splits(split_ids), key=lambda s: (s.name, s.revision))
+    series = _joined(splits, numbers, position) if revisions == "joined" else []
+    if revisions == "separate":
+        for split in splits:
+            values = [None] * len(versions)
+            for (version_id, split_id), value in numbers.items():
+                if split_id == split.pk:
+                    values[position[version_id]] = _four(value)
+            series.append(
+                {
+                    "name": str(split),
+                    "splits": [{"id": split.pk, "revision": split.revision}],
+                    "values": values,
+                    "revisions": [split.revision if v is not None else None for v in values],
+                }
+            )
     return {
         "protocol": detector.primary_protocol,
-        "versions": [
-            {
-                "id": v.pk,
-                "label": v.label,
-                "date": v.created_at.date().isoformat(),
-                "state": badges[v.pk],
-            }
-            for v in versions
-        ],
-        "splits": [{"id": s.pk, "name": str(s)} for s in splits],
+        "metric": metric,
+        "class": class_name,
+        "view": revisions,
         "metrics": list(METRICS),
         "classes": classes,
-        "values": {str(k): v for k, v in values.items()},
+        "baseline": baseline.pk if baseline else None,
+        "versions": [
+            {"id": pk, "label": label, "date": created.date().isoformat(), "decision": decision}
+            for pk, label, created, decision in versions
+        ],
+        "series": series,
+        "changes": [change for line in series for change in _changes(line)],
     }
+
+
+def _joined(splits, numbers, position):
+    """One series per split name: each version's number on the newest revision of that
+    name that has one."""
+    by_name = {}
+    for split in splits:  # sorted by name, then revision
+        by_name.setdefault(split.name, []).append(split)
+    revision_of = {split.pk: split.revision for split in splits}
+    out = []
+    for name, revisions in by_name.items():
+        ids = {split.pk for split in revisions}
+        values = [None] * len(position)
+        shown = [None] * len(position)
+        for (version_id, split_id), value in numbers.items():
+            at = position[version_id]
+            if split_id in ids and value is not None and (shown[at] or 0) < revision_of[split_id]:
+                values[at], shown[at] = _four(value), revision_of[split_id]
+        out.append(
+            {
+                "name": name,
+                "splits": [{"id": s.pk, "revision": s.revision} for s in revisions],
+                "values": values,
+                "revisions": shown,
+            }
+        )
+    return out
+
+
+def _changes(line):
+    """Where the revision changes along a line: the index of the first point on the
+    new revision, skipping versions without a number."""
+    out, before = [], None
+    for at, revision in enumerate(line["revisions"]):
+        if revision is None:
+            continue
+        if before is not None and revision != before:
+            out.append({"series": line["name"], "index": at, "from": before, "to": revision})
+        before = revision
+    return out
+
+
+def _four(value):
+    """Four decimals, rounded as Python's correctly rounded ``round`` (a halfway case
+    such as 0.00625 goes to 0.0063, where scaling by 10^4 would give 0.0062)."""
+    return None if value is None else round(value, 4)

@@ -171,7 +171,7 @@ def test_upload_score_and_read_everything(api, uploaded, detector, split, users)
         "a1b2c3d",
     )
     history = engineer.get(f"{API}detectors/{detector.pk}/history/").json()
-    assert history["values"][str(split.pk)]["AP"]["mean"] == [round(card.summary["AP"], 4)]
+    assert history["series"][0]["values"] == [round(card.summary["AP"], 4)]
 
 
 def test_criteria_comparison_flags_sign_off_and_evidence(

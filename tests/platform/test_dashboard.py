@@ -55,9 +55,11 @@ def test_every_page_renders_for_a_member(client, users, detector, split, scored)
 
 
 def test_history_holds_every_version_in_time_order(detector, scored, split):
-    chart = selectors.history_chart(detector)
+    chart = selectors.history_chart(detector, "AP", "pedestrian")
     assert [v["label"] for v in chart["versions"]] == ["1.0", "1.1", "1.2", "1.3"]
-    series = chart["values"][str(split.pk)]["AP"]["pedestrian"]
+    (line,) = chart["series"]
+    assert line["splits"] == [{"id": split.pk, "revision": split.revision}]
+    series = line["values"]
     expected = [
         ClassScore.objects.get(
             scorecard__evaluation__predictions__original_name=f"{v}.json",
@@ -67,7 +69,7 @@ def test_history_holds_every_version_in_time_order(detector, scored, split):
         for v in ("1.0", "1.1", "1.2", "1.3")
     ]
     assert series == [round(v, 4) for v in expected]  # the chart carries four decimals
-    assert chart["values"][str(split.pk)]["AP"]["mean"][0] is not None
+    assert selectors.history_chart(detector)["series"][0]["values"][0] is not None
 
 
 def test_history_rounds_halfway_numbers_as_python_does(detector, scored, split):
@@ -76,9 +78,10 @@ def test_history_rounds_halfway_numbers_as_python_does(detector, scored, split):
     rows = ClassScore.objects.filter(class_name="car", scorecard__evaluation__protocol="coco")
     with triggers_off():  # planted: stored results are append-only
         rows.update(ap=0.00625, recall=None)
-    chart = selectors.history_chart(detector)
-    assert chart["values"][str(split.pk)]["AP"]["car"] == [round(0.00625, 4)] * 4 == [0.0063] * 4
-    assert chart["values"][str(split.pk)]["recall"]["car"] == [None] * 4
+    chart = selectors.history_chart(detector, "AP", "car")
+    assert chart["series"][0]["values"] == [round(0.00625, 4)] * 4 == [0.0063] * 4
+    recall = selectors.history_chart(detector, "recall", "car")["series"][0]
+    assert recall["values"] == [None] * 4 and recall["revisions"] == [None] * 4
 
 
 def test_compare_defaults_to_newest_against_the_one_before(client, users, detector, scored):

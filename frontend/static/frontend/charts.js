@@ -10,43 +10,98 @@
   function data(id) { return JSON.parse(document.getElementById(id).textContent); }
   function axis(title, extra) { return Object.assign({ title: { display: true, text: title } }, extra || {}); }
 
+  // Vertical dashed marks where a joined split line moves to another revision.
+  const revisionMarks = {
+    id: "revisionMarks",
+    afterDatasetsDraw(chart, args, options) {
+      const { ctx, chartArea, scales } = chart;
+      (options.changes || []).forEach((change, k) => {
+        const x = scales.x.getPixelForValue(change.index - 0.5);
+        ctx.save();
+        ctx.strokeStyle = "#444"; ctx.fillStyle = "#222"; ctx.lineWidth = 1; ctx.setLineDash([4, 3]);
+        ctx.beginPath(); ctx.moveTo(x, chartArea.top); ctx.lineTo(x, chartArea.bottom); ctx.stroke();
+        ctx.setLineDash([]); ctx.font = "11px sans-serif";
+        const text = `${change.series} rev ${change.to}`;
+        const width = ctx.measureText(text).width;
+        ctx.fillText(text, Math.min(x + 3, chartArea.right - width), chartArea.top + 12 + 13 * k);
+        ctx.restore();
+      });
+    },
+  };
+
   function history(canvas) {
-    const d = data(canvas.dataset.source);
+    // The page embeds one series (metric x class x revision view); another selection
+    // is fetched from the history API, one metric and class at a time.
+    let d = data(canvas.dataset.source);
     const metric = document.getElementById(canvas.dataset.metric);
     const cls = document.getElementById(canvas.dataset.class);
+    const revisions = document.getElementById(canvas.dataset.revisions);
+    const status = document.getElementById("history-status");
     function datasets() {
-      return d.splits.map((split, i) => ({
-        label: split.name,
-        data: d.values[String(split.id)][metric.value][cls.value],
+      return d.series.map((line, i) => ({
+        label: line.name,
+        data: line.values,
+        revisions: line.revisions,
         borderColor: PALETTE[i % PALETTE.length], backgroundColor: PALETTE[i % PALETTE.length],
         borderDash: DASHES[i % DASHES.length], spanGaps: true, tension: 0,
         // The baseline is drawn as a large diamond on every line.
-        pointRadius: d.versions.map(v => (v.state === "baseline" ? 9 : 4)),
-        pointStyle: d.versions.map(v => (v.state === "baseline" ? "rectRot" : "circle")),
+        pointRadius: d.versions.map(v => (v.id === d.baseline ? 9 : 4)),
+        pointStyle: d.versions.map(v => (v.id === d.baseline ? "rectRot" : "circle")),
       }));
     }
+    const title = () => `${d.metric} (${d.protocol}, 0–1)`;
     const chart = new Chart(canvas, {
       type: "line",
       data: { labels: d.versions.map(v => v.label), datasets: datasets() },
+      plugins: [revisionMarks],
       options: {
         responsive: true, maintainAspectRatio: false, animation: false,
         scales: {
           x: axis("Version (oldest to newest)"),
-          y: axis(`${metric.value} (${d.protocol}, 0–1)`, { min: 0, max: 1 }),
+          y: axis(title(), { min: 0, max: 1 }),
         },
         onClick: (event, elements) => {
           if (elements.length) window.location = d.versions[elements[0].index].url;
         },
-        plugins: { legend: { position: "bottom" } },
+        plugins: {
+          legend: { position: "bottom" },
+          revisionMarks: { changes: d.changes },
+          tooltip: {
+            callbacks: {
+              label: item => {
+                const rev = item.dataset.revisions[item.dataIndex];
+                return `${item.dataset.label}: ${item.formattedValue}${rev ? ` (rev ${rev})` : ""}`;
+              },
+            },
+          },
+        },
       },
     });
+    const versionUrl = id => canvas.dataset.versionUrl.replace("/0/", `/${id}/`);
+    const tableShows = `${d.class === "mean" ? "mean " : `${d.class} `}${d.metric}`;
     function refresh() {
-      chart.data.datasets = datasets();
-      chart.options.scales.y.title.text = `${metric.value} (${d.protocol}, 0–1)`;
-      chart.update();
+      const query = new URLSearchParams({ metric: metric.value, class: cls.value, revisions: revisions.value });
+      status.textContent = "Loading…";
+      fetch(`${canvas.dataset.url}?${query}`, { headers: { Accept: "application/json" } })
+        .then(r => { if (!r.ok) throw new Error(`HTTP ${r.status}`); return r.json(); })
+        .then(next => {
+          next.versions.forEach(v => { v.url = versionUrl(v.id); });
+          d = next;
+          chart.data.labels = d.versions.map(v => v.label);
+          chart.data.datasets = datasets();
+          chart.options.scales.y.title.text = title();
+          chart.options.plugins.revisionMarks.changes = d.changes;
+          chart.update();
+          window.history.replaceState(null, "", `?${query}`);
+          status.textContent = `The table below shows ${tableShows}. `;
+          const link = document.createElement("a");
+          link.href = `?${query}`;
+          link.textContent = "Show this selection in the table";
+          status.append(link);
+        })
+        .catch(error => { status.textContent = `Could not load that series (${error.message}); try again.`; });
     }
-    metric.addEventListener("change", refresh);
-    cls.addEventListener("change", refresh);
+    [metric, cls, revisions].forEach(select => select.addEventListener("change", refresh));
     window.benchbookCharts[canvas.id] = chart;
   }
 

@@ -9,6 +9,7 @@ from rest_framework.views import APIView
 from ... import criteria, selectors, suites
 from .. import serializers as s
 from ..errors import error_response
+from ..history_schema import History
 from .base import (
     Endpoint,
     _detector,
@@ -97,13 +98,36 @@ class DetectorDetail(DetectorMixin, generics.RetrieveAPIView):
 
 class DetectorHistory(Endpoint, APIView):
     @extend_schema(
-        responses=OpenApiTypes.OBJECT,
-        summary="Every version's numbers on every split",
-        description="``values[split id][metric][class]`` is aligned with ``versions``; "
-        "null where not scored; class ``mean`` is the protocol's mean.",
+        parameters=[
+            _param("metric", str, f"One of {', '.join(selectors.METRICS)} (default AP)"),
+            _param("class", str, "A class of the detector, or mean (default)"),
+            _param(
+                "revisions",
+                str,
+                "joined (default): one line per split name, its newest scored revision "
+                "per version; separate: one line per split revision",
+            ),
+        ],
+        responses=History,
+        summary="One metric and class of every version on every split",
+        description="``series[].values`` is aligned with ``versions``; null where not "
+        "scored; class ``mean`` is the protocol's mean. ``changes`` lists where a joined "
+        "line moves to another split revision. One metric and class per request. "
+        "Each version's current verdict: ``GET /api/v1/versions/?detector=<id>``.",
     )
     def get(self, request, pk):
-        return Response(selectors.history_chart(_detector(request, pk)))
+        found = _detector(request, pk)
+        try:
+            chart = selectors.history_chart(
+                found,
+                metric=_text(request, "metric") or "AP",
+                class_name=_text(request, "class") or "mean",
+                revisions=_text(request, "revisions") or "joined",
+            )
+        except selectors.HistoryError as e:
+            name, _, message = str(e).partition(": ")
+            raise exceptions.ValidationError({name: [message]}) from None
+        return Response(chart)
 
 
 class DetectorCriteria(Endpoint, APIView):

@@ -1,0 +1,59 @@
+"""The documented shape of ``GET /api/v1/detectors/<id>/history/`` (schema only)."""
+
+from rest_framework import serializers
+
+
+class HistoryVersion(serializers.Serializer):
+    id = serializers.IntegerField()
+    label = serializers.CharField()
+    date = serializers.DateField()
+    decision = serializers.CharField(
+        allow_null=True, help_text="approved or rejected; null while undecided"
+    )
+
+
+class HistorySplit(serializers.Serializer):
+    id = serializers.IntegerField()
+    revision = serializers.IntegerField()
+
+
+class HistorySeries(serializers.Serializer):
+    name = serializers.CharField(help_text="Split name (joined) or 'name rev N' (separate)")
+    splits = HistorySplit(many=True)
+    values = serializers.ListField(
+        child=serializers.FloatField(allow_null=True),
+        help_text="Aligned with versions; null where not scored; four decimals",
+    )
+    revisions = serializers.ListField(
+        child=serializers.IntegerField(allow_null=True),
+        help_text="The split revision of each value (null where no value)",
+    )
+
+
+class HistoryChange(serializers.Serializer):
+    series = serializers.CharField()
+    index = serializers.IntegerField(help_text="First version on the new revision")
+    to = serializers.IntegerField()
+
+    def get_fields(self):  # "from" is a Python keyword
+        fields = super().get_fields()
+        fields["from"] = serializers.IntegerField()
+        return fields
+
+
+class History(serializers.Serializer):
+    protocol = serializers.CharField()
+    metric = serializers.CharField()
+    class_ = serializers.CharField()
+    view = serializers.ChoiceField(choices=["joined", "separate"])
+    metrics = serializers.ListField(child=serializers.CharField())
+    classes = serializers.ListField(child=serializers.CharField())
+    baseline = serializers.IntegerField(allow_null=True, help_text="The baseline version's id")
+    versions = HistoryVersion(many=True)
+    series = HistorySeries(many=True)
+    changes = HistoryChange(many=True)
+
+    def get_fields(self):
+        fields = super().get_fields()
+        fields["class"] = fields.pop("class_")
+        return fields
