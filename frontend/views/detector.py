@@ -15,7 +15,7 @@ from releases import selectors
 
 from .lookup import detector_or_404
 
-TABLE_ROWS = 50
+TABLE_ROWS = 25  # badges are computed for these rows (verdicts_of: every set and evaluation)
 
 
 @login_required
@@ -34,8 +34,6 @@ def detector(request, detector_id):
     except selectors.HistoryError as e:
         error = str(e)
         chart = selectors.history_chart(found)
-    for entry in chart["versions"]:
-        entry["url"] = reverse("version", args=[entry["id"]])
     # The table: newest first, one page of versions, each with its badge (decision or
     # current verdict, computed for these rows only).
     rows = Paginator(list(reversed(range(len(chart["versions"])))), TABLE_ROWS).get_page(
@@ -48,6 +46,7 @@ def detector(request, detector_id):
     table = [
         {
             "version": chart["versions"][i],
+            "url": reverse("version", args=[chart["versions"][i]["id"]]),
             "state": badges[chart["versions"][i]["id"]],
             "values": [
                 (line["values"][i], line["revisions"][i] if line["name"] in several else None)

@@ -71,21 +71,7 @@ def history_chart(detector, metric="AP", class_name=MEAN, revisions="joined"):
         .distinct()
     )
     splits = sorted(_splits(split_ids), key=lambda s: (s.name, s.revision))
-    series = _joined(splits, numbers, position) if revisions == "joined" else []
-    if revisions == "separate":
-        for split in splits:
-            values = [None] * len(versions)
-            for (version_id, split_id), value in numbers.items():
-                if split_id == split.pk:
-                    values[position[version_id]] = _four(value)
-            series.append(
-                {
-                    "name": str(split),
-                    "splits": [{"id": split.pk, "revision": split.revision}],
-                    "values": values,
-                    "revisions": [split.revision if v is not None else None for v in values],
-                }
-            )
+    series = (_joined if revisions == "joined" else _separate)(splits, numbers, position)
     return {
         "protocol": detector.primary_protocol,
         "metric": metric,
@@ -106,28 +92,44 @@ def history_chart(detector, metric="AP", class_name=MEAN, revisions="joined"):
 def _joined(splits, numbers, position):
     """One series per split name: each version's number on the newest revision of that
     name that has one."""
-    by_name = {}
+    lines, line_of = {}, {}
     for split in splits:  # sorted by name, then revision
-        by_name.setdefault(split.name, []).append(split)
-    revision_of = {split.pk: split.revision for split in splits}
-    out = []
-    for name, revisions in by_name.items():
-        ids = {split.pk for split in revisions}
-        values = [None] * len(position)
-        shown = [None] * len(position)
-        for (version_id, split_id), value in numbers.items():
-            at = position[version_id]
-            if split_id in ids and value is not None and (shown[at] or 0) < revision_of[split_id]:
-                values[at], shown[at] = _four(value), revision_of[split_id]
-        out.append(
+        line = lines.setdefault(
+            split.name,
             {
-                "name": name,
-                "splits": [{"id": s.pk, "revision": s.revision} for s in revisions],
-                "values": values,
-                "revisions": shown,
-            }
+                "name": split.name,
+                "splits": [],
+                "values": [None] * len(position),
+                "revisions": [None] * len(position),
+            },
         )
-    return out
+        line["splits"].append({"id": split.pk, "revision": split.revision})
+        line_of[split.pk] = (line, split.revision)
+    for (version_id, split_id), value in numbers.items():
+        line, revision = line_of[split_id]
+        at = position[version_id]
+        if value is not None and (line["revisions"][at] or 0) < revision:
+            line["values"][at], line["revisions"][at] = _four(value), revision
+    return list(lines.values())
+
+
+def _separate(splits, numbers, position):
+    """One series per split revision."""
+    line_of = {
+        split.pk: {
+            "name": str(split),
+            "splits": [{"id": split.pk, "revision": split.revision}],
+            "values": [None] * len(position),
+            "revisions": [None] * len(position),
+        }
+        for split in splits
+    }
+    revision_of = {split.pk: split.revision for split in splits}
+    for (version_id, split_id), value in numbers.items():
+        if value is not None:
+            line, at = line_of[split_id], position[version_id]
+            line["values"][at], line["revisions"][at] = _four(value), revision_of[split_id]
+    return list(line_of.values())
 
 
 def _changes(line):

@@ -47,17 +47,65 @@ def test_history_chart_holds_every_version_and_follows_the_selectors(
     assert labels == ["1.0", "1.1", "1.2"]
     first = page.evaluate("window.benchbookCharts['history-chart'].data.datasets[0].data")
     assert len(first) == 3 and all(0 <= v <= 1 for v in first)
-    page.select_option("#history-class", "pedestrian")
-    page.select_option("#history-metric", "AP50")
-    after = page.evaluate("window.benchbookCharts['history-chart'].data.datasets[0].data")
-    assert after != first
-    assert (
-        page.evaluate("window.benchbookCharts['history-chart'].options.scales.y.title.text")
-        == "AP50 (coco, 0–1)"
+    # Another metric and class is fetched from the history API, one series at a time.
+    with page.expect_response(lambda r: "/history/?metric=AP50" in r.url and r.ok):
+        page.select_option("#history-class", "pedestrian")
+        page.select_option("#history-metric", "AP50")
+    page.wait_for_function(
+        "window.benchbookCharts['history-chart'].options.scales.y.title.text === 'AP50 (coco, 0–1)'"
     )
+    after = page.evaluate("window.benchbookCharts['history-chart'].data.datasets[0].data")
+    assert after != first and len(after) == 3
+    assert "metric=AP50" in page.url and "class=pedestrian" in page.url
     _shot(page, "history")
     page.set_viewport_size({"width": 390, "height": 800})
     _shot(page, "history-390")
+
+
+def test_history_marks_the_revision_change_and_separates_revisions_on_request(
+    page, live_server, detector, scored, split_truth, users, run_tasks
+):
+    """bay-night rev 2 (boxes relabelled): version 1.3 is scored on it only, so the one
+    bay-night line moves from rev 1 to rev 2 at 1.3, with a mark; "each revision
+    separately" draws two lines."""
+    import copy
+
+    from evaluation import services as evaluation_services
+
+    truth = copy.deepcopy(split_truth)
+    truth["annotations"] = truth["annotations"][::2]
+    relabelled = evaluation_services.load_split(
+        name="bay-night", revision=2, truth=upload("n2.json", truth)
+    )
+    version = services.create_version(detector, "1.3", users["engineer"])
+    run_tasks(
+        services.submit_predictions,
+        version,
+        relabelled,
+        upload("1.3.json", detections_for(split_truth, seed=63)),
+        users["engineer"],
+    )
+    page.goto(f"{live_server.url}/detectors/{detector.pk}/")
+    page.wait_for_function("window.benchbookCharts && window.benchbookCharts['history-chart']")
+    chart = "window.benchbookCharts['history-chart']"
+    assert page.evaluate(f"{chart}.data.datasets.map(d => d.label)") == ["bay-night"]
+    assert page.evaluate(f"{chart}.data.datasets[0].revisions") == [1, 1, 1, 2]
+    marks = page.evaluate(f"{chart}.options.plugins.revisionMarks.changes")
+    assert marks == [{"series": "bay-night", "index": 3, "from": 1, "to": 2}]
+    _shot(page, "history-revisions")
+    with page.expect_response(lambda r: "revisions=separate" in r.url and r.ok):
+        page.select_option("#history-revisions", "separate")
+    page.wait_for_function(f"{chart}.data.datasets.length === 2")
+    labels = page.evaluate(f"{chart}.data.datasets.map(d => d.label)")
+    assert labels == ["bay-night rev 1", "bay-night rev 2"]
+    assert page.evaluate(f"{chart}.options.plugins.revisionMarks.changes") == []
+    second = page.evaluate(f"{chart}.data.datasets[1].data")
+    assert second[:3] == [None, None, None] and second[3] is not None
+    _shot(page, "history-revisions-separate")
+    page.set_viewport_size({"width": 390, "height": 800})
+    page.select_option("#history-revisions", "joined")
+    page.wait_for_function(f"{chart}.data.datasets.length === 1")
+    _shot(page, "history-revisions-390")
 
 
 def test_scorecard_draws_a_curve_per_class(page, live_server, scored):

@@ -50,6 +50,7 @@
       }));
     }
     const title = () => `${d.metric} (${d.protocol}, 0–1)`;
+    const versionUrl = id => canvas.dataset.versionUrl.replace("/0/", `/${id}/`);
     const chart = new Chart(canvas, {
       type: "line",
       data: { labels: d.versions.map(v => v.label), datasets: datasets() },
@@ -61,7 +62,7 @@
           y: axis(title(), { min: 0, max: 1 }),
         },
         onClick: (event, elements) => {
-          if (elements.length) window.location = d.versions[elements[0].index].url;
+          if (elements.length) window.location = versionUrl(d.versions[elements[0].index].id);
         },
         plugins: {
           legend: { position: "bottom" },
@@ -77,15 +78,14 @@
         },
       },
     });
-    const versionUrl = id => canvas.dataset.versionUrl.replace("/0/", `/${id}/`);
     const tableShows = `${d.class === "mean" ? "mean " : `${d.class} `}${d.metric}`;
+    const tableQuery = new URLSearchParams({ metric: d.metric, class: d.class, revisions: d.view }).toString();
     function refresh() {
       const query = new URLSearchParams({ metric: metric.value, class: cls.value, revisions: revisions.value });
       status.textContent = "Loading…";
       fetch(`${canvas.dataset.url}?${query}`, { headers: { Accept: "application/json" } })
         .then(r => { if (!r.ok) throw new Error(`HTTP ${r.status}`); return r.json(); })
         .then(next => {
-          next.versions.forEach(v => { v.url = versionUrl(v.id); });
           d = next;
           chart.data.labels = d.versions.map(v => v.label);
           chart.data.datasets = datasets();
@@ -93,6 +93,8 @@
           chart.options.plugins.revisionMarks.changes = d.changes;
           chart.update();
           window.history.replaceState(null, "", `?${query}`);
+          status.textContent = "";
+          if (query.toString() === tableQuery) return; // the table shows this selection
           status.textContent = `The table below shows ${tableShows}. `;
           const link = document.createElement("a");
           link.href = `?${query}`;
