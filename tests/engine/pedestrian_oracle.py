@@ -201,8 +201,8 @@ def cityscale(scene, setup, max_det=1000):
         images.append(([d[4] for d in d_rows], dtm, dt_ig, [g[1] for g in g_rows]))
     scores = [s for e in images for s in e[0]]
     inds = sorted(range(len(scores)), key=lambda i: -scores[i])  # mergesort
-    dtm = [[m for e in images for m in e[1]][i] for i in inds]
-    dt_ig = [[m for e in images for m in e[2]][i] for i in inds]
+    dtm = np.concatenate([e[1] for e in images] + [[]])[inds].tolist() if inds else []
+    dt_ig = np.concatenate([e[2] for e in images] + [[]])[inds].tolist() if inds else []
     npig = sum(1 for e in images for g in e[3] if g == 0)
     if npig == 0:
         return None, None
