@@ -5,7 +5,8 @@ baseline and only for the classes its rules name. The compare page may show any 
 where no interval exists, a reader asks for one: ``request_intervals`` queues one row
 per shared scored split and ``compute`` (the task ``releases.tasks.compare``) fills it
 with the same bootstrap the judge uses (``criteria._intervals``: same replicates, same
-seed), for the mean, every class, and every image tag of the split.
+seed), for the mean, every class, every image tag of the split and every size bucket
+of the protocol.
 """
 
 import logging
@@ -129,10 +130,13 @@ def compute(pk):
     try:
         reference = cards[row.reference_predictions_id]
         candidate = cards[row.candidate_predictions_id]
-        intervals = {}
+        intervals, sizes = {}, {}
         for tag in ["", *sorted(row.split.tags)]:
             found = _intervals(candidate, reference, tag or None, row.confidence)
             intervals[tag] = {name: _clean(i) for name, i in found.items()}
+        for size in size_buckets(candidate):
+            found = _intervals(candidate, reference, None, row.confidence, size=size)
+            sizes[size] = {name: _clean(i) for name, i in found.items()}
     except Exception as e:  # a missing scorecard or records file: say so on the page
         log.exception("comparison interval %s failed", pk)
         ComparisonInterval.objects.filter(pk=pk).update(
@@ -142,6 +146,17 @@ def compute(pk):
         )
         return row
     ComparisonInterval.objects.filter(pk=pk, state=ComparisonInterval.State.QUEUED).update(
-        state=ComparisonInterval.State.DONE, intervals=intervals, finished_at=timezone.now()
+        state=ComparisonInterval.State.DONE,
+        intervals=intervals,
+        size_intervals=sizes,
+        finished_at=timezone.now(),
     )
     return row
+
+
+def size_buckets(card):
+    """The size buckets of a scorecard (its size slice rows), in the protocol's order."""
+    from evaluation.models import SliceScore
+
+    rows = SliceScore.objects.filter(scorecard=card, kind="size", class_name="")
+    return list(rows.order_by("pk").values_list("name", flat=True))

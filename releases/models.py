@@ -406,7 +406,8 @@ class ComparisonInterval(models.Model):
     the team, so identical bytes of another team never reveal that (or when, or by whom)
     an interval was computed.
     ``intervals`` is ``{tag or "": {class or "mean": [low, high]}}`` (None where the
-    class has no ground truth under that tag).
+    class has no ground truth under that tag); ``size_intervals`` the same per size
+    bucket (``{}`` on rows computed before size slices were compared).
     """
 
     class State(models.TextChoices):
@@ -432,6 +433,7 @@ class ComparisonInterval(models.Model):
     seed = models.BigIntegerField()
     state = models.CharField(max_length=8, choices=State.choices, default=State.QUEUED)
     intervals = models.JSONField(default=dict)
+    size_intervals = models.JSONField(default=dict)
     error = models.TextField(blank=True)
     requested_by = models.ForeignKey(
         settings.AUTH_USER_MODEL, on_delete=models.PROTECT, related_name="+"

@@ -76,8 +76,9 @@ def protocol_differences(a, b):
 
 
 def _stored_intervals(reference, candidate, pairs, protocol):
-    """{split id: (state, {tag or "": {class: [low, high, confidence]}}, error)} of the
-    intervals computed on request for exactly these inputs (``releases.comparisons``)."""
+    """{split id: (state, {tag or "": {class: [low, high, confidence]}}, error,
+    {size: {class: [low, high, confidence]}})} of the intervals computed on request for
+    exactly these inputs (``releases.comparisons``)."""
     from django.conf import settings as django_settings
     from django.db.models import Q
 
@@ -109,6 +110,10 @@ def _stored_intervals(reference, candidate, pairs, protocol):
                 for tag, by_class in row.intervals.items()
             },
             row.error,
+            {
+                size: {name: [*pair, row.confidence] for name, pair in by_class.items()}
+                for size, by_class in row.size_intervals.items()
+            },
         )
         for row in rows
     }
@@ -137,7 +142,17 @@ def compare_versions(reference, candidate):
     judged = {
         (o.split_id, o.class_name): [o.low, o.high, o.rule.get("confidence")]
         for o in Outcome.objects.filter(
-            version=candidate, baseline=reference, low__isnull=False, rule__tag__isnull=True
+            version=candidate,
+            baseline=reference,
+            low__isnull=False,
+            rule__tag__isnull=True,
+            rule__size__isnull=True,
+        )
+    }
+    judged_sizes = {
+        (o.split_id, o.rule["size"], o.class_name): [o.low, o.high, o.rule.get("confidence")]
+        for o in Outcome.objects.filter(
+            version=candidate, baseline=reference, low__isnull=False, rule__size__isnull=False
         )
     }
     by_version, pairs = {}, {}
@@ -151,17 +166,21 @@ def compare_versions(reference, candidate):
     used = [c for pair in by_version.values() for c in pair.values()]
     rows = _class_rows(used)
     miss_rate_charts = miss_rate.compare_charts(reference, candidate, sets)
-    tag_ap = {}
-    for s in SliceScore.objects.filter(scorecard__in=used, kind="tag"):
-        tag_ap[(s.scorecard_id, s.name, s.class_name or "mean")] = s.ap
+    tag_ap, size_ap, size_names = {}, {}, {}
+    for s in SliceScore.objects.filter(scorecard__in=used, kind__in=["tag", "size"]).order_by("pk"):
+        if s.kind == "tag":
+            tag_ap[(s.scorecard_id, s.name, s.class_name or "mean")] = s.ap
+        else:
+            size_ap[(s.scorecard_id, s.name, s.class_name or "mean")] = s.ap
+            size_names.setdefault(s.scorecard_id, {})[s.name] = None
     out = []
     for split in sorted(by_version, key=lambda s: (s.name, s.revision)):
         pair = by_version[split]
         if reference.pk not in pair or candidate.pk not in pair:
             continue
         a, b = pair[reference.pk], pair[candidate.pk]
-        state, computed, error = stored.get(split.pk, (None, {}, ""))
-        computed = computed if state == "done" else {}
+        state, computed, error, computed_sizes = stored.get(split.pk, (None, {}, "", {}))
+        computed, computed_sizes = (computed, computed_sizes) if state == "done" else ({}, {})
         whole = computed.get("", {})
         deltas = []
         for name in ["mean", *detector.classes]:
@@ -189,6 +208,23 @@ def compare_versions(reference, candidate):
             }
             for tag in tags
         ]
+        sizes = [n for n in size_names.get(b.pk, {}) if n in size_names.get(a.pk, {})]
+        size_rows = [
+            {
+                "size": size,
+                "cells": [
+                    _delta(
+                        name,
+                        size_ap.get((a.pk, size, name)),
+                        size_ap.get((b.pk, size, name)),
+                        computed_sizes.get(size, {}).get(name)
+                        or judged_sizes.get((split.pk, size, name)),
+                    )
+                    for name in ["mean", *detector.classes]
+                ],
+            }
+            for size in sizes
+        ]
         curves = {
             name: {
                 "reference": a.result["per_class"][name]["curve"],
@@ -202,6 +238,7 @@ def compare_versions(reference, candidate):
                 "split": split,
                 "deltas": deltas,
                 "tags": tag_rows,
+                "sizes": size_rows,
                 "curves": curves,
                 "miss_rate": miss_rate_charts.get(split.pk, []),
                 "interval_state": state,
