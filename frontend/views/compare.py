@@ -14,6 +14,54 @@ from releases.selectors import errors
 from .lookup import detector_or_404
 from .miss_rate import embed
 
+#: Above this many classes the two matrices start folded (they stay complete).
+OPEN_CONFUSION_CLASSES = 12
+
+
+def _confusions(user, candidate, reference, splits):
+    """Per split: both versions' confusion matrices as grids whose cells link to the
+    confusion page's cell members of that version; a failure is shown in place."""
+    from urllib.parse import urlencode
+
+    from django.core.exceptions import ObjectDoesNotExist
+
+    from evaluation.storage import ContentMismatch
+    from releases.selectors.cause import NotScored
+
+    out = {}
+    for entry in splits:
+        split = entry["split"]
+        try:
+            found = errors.confusion_pair(user, candidate, reference, split)
+        except (NotScored, ContentMismatch, OSError, ValueError, ObjectDoesNotExist) as e:
+            out[split.pk] = {"error": str(e)}
+            continue
+        labels = found["labels"]
+        for side in found["sides"]:
+            if side is None:
+                continue
+            base = reverse("confusion", args=[side["version"].pk])
+            query = urlencode({"split": split.pk})
+            side["grid"] = [
+                {
+                    "label": labels[i],
+                    "cells": [
+                        {
+                            "count": count,
+                            "column": labels[j],
+                            "share": (side["row_normalised"][i] or [None] * len(labels))[j],
+                            "diagonal": i == j and i < len(labels) - 1,
+                            "link": f"{base}?{query}&row={i}&col={j}#cell",
+                        }
+                        for j, count in enumerate(counts)
+                    ],
+                }
+                for i, counts in enumerate(side["counts"])
+            ]
+        found["open"] = len(labels) - 1 <= OPEN_CONFUSION_CLASSES
+        out[split.pk] = found
+    return out
+
 
 @login_required
 def compare(request, detector_id):
@@ -50,6 +98,7 @@ def compare(request, detector_id):
             "candidate": candidate,
             "splits": splits,
             "errors": {e["split"].pk: e for e in errors.version_breakdowns(candidate, reference)},
+            "confusions": _confusions(request.user, candidate, reference, splits),
             "caution": selectors.CAUTION,
         },
     )

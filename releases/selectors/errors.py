@@ -172,3 +172,31 @@ def confusion_for(pair, row=None, column=None, limit=500):
             ],
         }
     return {"matrix": matrix, "cell": cell}
+
+
+def confusion_pair(user, candidate, reference, split):
+    """Both versions' confusion matrices on ``split`` for the compare page, in one class
+    order (the split's) at the same deployed thresholds and primary IoU: per side the
+    version, counts and row-normalised shares (``engine.confusion``); the reference side
+    is None when it was not scored there. Raises what ``cause.pair_for`` raises."""
+    from evaluation.engine import confusion
+
+    from .cause import pair_for
+    from .image_list import threshold_words
+
+    pair = pair_for(user, candidate.pk, split.pk, against=reference.pk)
+    sides = []
+    for side in (pair.reference, pair.candidate):
+        if side is None:
+            sides.append(None)
+            continue
+        matrix = confusion.confusion_matrix(side.records, pair.thresholds)
+        sides.append(
+            {
+                "version": side.version,
+                "counts": matrix["counts"],
+                "row_normalised": matrix["row_normalised"],
+            }
+        )
+    labels = [*pair.candidate.records.classes, "background"]  # confusion_matrix's order
+    return {"labels": labels, "thresholds": threshold_words(pair), "sides": sides}

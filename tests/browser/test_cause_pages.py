@@ -89,3 +89,35 @@ def test_from_the_failing_rule_to_the_boxes(page, live_server, story):
     page.wait_for_url(lambda url: url != before)
     assert "class=pedestrian" in page.url and "tag=night" in page.url
     page.wait_for_selector("#frame-candidate g.boxes rect")
+
+
+def test_compare_page_confusion_side_by_side(page, live_server, story):
+    """Both versions' matrices next to each other at 1280 px, one above the other at
+    390 px without widening the page; a count opens that version's cell members."""
+    from .conftest import ARTIFACTS
+
+    split = story["split"]
+    query = f"?candidate={story['1.5'].pk}&reference={story['1.4'].pk}"
+    page.goto(f"{live_server.url}/detectors/{story['detector'].pk}/compare/{query}")
+    section = page.locator(f"#confusion-{split.pk}")
+    reference = page.locator(f"#confusion-{split.pk}-{story['1.4'].pk}")
+    candidate = page.locator(f"#confusion-{split.pk}-{story['1.5'].pk}")
+    ARTIFACTS.mkdir(exist_ok=True)
+    section.screenshot(path=str(ARTIFACTS / "compare-confusion-1280.png"))
+    sides = section.locator(".confusion-side")
+    left, right = sides.nth(0).bounding_box(), sides.nth(1).bounding_box()
+    assert left["x"] + left["width"] <= right["x"] and abs(left["y"] - right["y"]) < 2
+    for table, box in ((reference, left), (candidate, right)):  # whole, no scrolling
+        assert table.bounding_box()["width"] <= box["width"] + 1
+    page.set_viewport_size({"width": 390, "height": 844})
+    top, below = sides.nth(0).bounding_box(), sides.nth(1).bounding_box()
+    assert below["y"] >= top["y"] + top["height"]
+    assert page.evaluate("document.documentElement.scrollWidth") <= 390
+    section.screenshot(path=str(ARTIFACTS / "compare-confusion-390.png"))
+    page.set_viewport_size({"width": 1280, "height": 900})
+    cell = candidate.locator("td.diag a").first
+    count = int(cell.inner_text())
+    cell.click()
+    page.wait_for_selector("#cell")
+    assert page.locator("#cell-title .meta").inner_text() == str(count)
+    assert "1.5" in page.locator("h1").inner_text()

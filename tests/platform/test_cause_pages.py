@@ -262,3 +262,37 @@ def test_a_size_and_a_metric_rank_by_that_buckets_change(client, users, story):
     url = f"/versions/{story['1.5'].pk}/images/?split={story['split'].pk}&metric=AP90"
     page = client.get(url).content.decode()
     assert "metric: &#x27;AP90&#x27; is not one of AP, AP50, AP75" in page
+
+
+def test_compare_page_shows_both_confusion_matrices(client, users, story):
+    """Side by side in one class order: each version's counts equal the engine's
+    ``confusion_matrix`` of its own records at the deployed thresholds (rows sum to the
+    boxes plus the background row's false positives), and a cell's link opens that
+    version's confusion page on that cell."""
+    import re
+
+    from evaluation.engine import confusion
+
+    client.force_login(users["engineer"])
+    detector = story["detector"]
+    url = reverse("compare", args=[detector.pk])
+    query = f"?candidate={story['1.5'].pk}&reference={story['1.4'].pk}"
+    response = client.get(url + query)
+    assert response.status_code == 200
+    found = response.context["confusions"][story["split"].pk]
+    pair = cause.pair_for(users["engineer"], story["1.5"].pk, story["split"].pk)
+    assert [s["version"].label for s in found["sides"]] == ["1.4", "1.5"]
+    for side, records in zip(found["sides"], (pair.reference.records, pair.candidate.records)):
+        expected = confusion.confusion_matrix(records, pair.thresholds)
+        assert side["counts"] == expected["counts"] and found["labels"] == expected["labels"]
+    assert found["sides"][0]["counts"] != found["sides"][1]["counts"]  # two matrices
+    html = response.content.decode()
+    table = f'id="confusion-{story["split"].pk}-{story["1.5"].pk}"'
+    assert table in html and f'id="confusion-{story["split"].pk}-{story["1.4"].pk}"' in html
+    k = pair.classes.index("pedestrian")
+    link = found["sides"][1]["grid"][k]["cells"][k]["link"]
+    assert link.replace("&", "&amp;") in html
+    cell = client.get(link.split("#")[0])
+    assert cell.status_code == 200 and cell.context["cell"]["row"] == "pedestrian"
+    assert cell.context["cell"]["total"] == found["sides"][1]["counts"][k][k]
+    assert re.search(r"<h3[^>]*>Confusion, side by side</h3>", html)
