@@ -28,6 +28,12 @@ from .storage import (
 
 log = logging.getLogger(__name__)
 
+#: The platform refuses JSON ids outside signed 64 bits (the engine's CLI takes any
+#: integer, as pycocotools does): every entry point reaches the engine through the
+#: loads here, so a split or predictions file holding one is refused at upload (400)
+#: or, past the inline-validation size, fails its evaluation, naming file/record/field.
+ENGINE_IDS = "int64"
+
 
 class UploadError(ValueError):
     """A request the platform refuses; the message says what and where.
@@ -113,7 +119,9 @@ def load_split(*, name, revision, truth, images=None, description="", created_by
             raise UploadError(str(e)) from None
         try:
             source_format = _format_of(truth_path, truth_path)
-            loaded = engine.load_truth(truth_path, images=images_path, fmt=source_format)
+            loaded = engine.load_truth(
+                truth_path, images=images_path, fmt=source_format, ids=ENGINE_IDS
+            )
         except engine.InputError as e:
             e.argument = "images" if images_path and str(e.path) == images_path else "truth"
             e.path = os.path.basename(e.path)  # the name as uploaded, not the spool folder
@@ -193,9 +201,13 @@ def _read_truth(split, boxes):
         if split.images_file:
             with local_path(split.images_file) as images_path:
                 return engine.load_truth(
-                    truth_path, images=images_path, cache_dir=_cache_dir(), boxes=boxes
+                    truth_path,
+                    images=images_path,
+                    cache_dir=_cache_dir(),
+                    boxes=boxes,
+                    ids=ENGINE_IDS,
                 )
-        return engine.load_truth(truth_path, cache_dir=_cache_dir(), boxes=boxes)
+        return engine.load_truth(truth_path, cache_dir=_cache_dir(), boxes=boxes, ids=ENGINE_IDS)
 
 
 def load_records(scorecard):
@@ -302,7 +314,12 @@ def _load_predictions(path, truth, name, boxes="keep"):
     uploaded."""
     try:
         return engine.load_predictions(
-            path, truth, fmt=_format_of(name, path), boxes=boxes, cache_dir=_cache_dir()
+            path,
+            truth,
+            fmt=_format_of(name, path),
+            boxes=boxes,
+            cache_dir=_cache_dir(),
+            ids=ENGINE_IDS,
         )
     except engine.InputError as e:
         same_file = os.path.basename(e.path) == os.path.basename(path)

@@ -7,7 +7,15 @@ import sys
 import numpy as np
 import pytest
 
-from evaluation.engine import COCO_SUMMARY_KEYS, PRESETS, MatchRecords, score_records
+from evaluation.engine import (
+    COCO_SUMMARY_KEYS,
+    PRESETS,
+    InputError,
+    MatchRecords,
+    load_predictions,
+    load_truth,
+    score_records,
+)
 from evaluation.engine.__main__ import main
 
 from .synthetic import make_detections, make_split
@@ -197,23 +205,47 @@ ID_FIELDS = [
 
 @pytest.mark.parametrize("value", [2**63, 2**64 + 5, -(2**63) - 1, 10**30])
 @pytest.mark.parametrize("name, where, locator", ID_FIELDS)
-def test_ids_beyond_64_bits_in_either_file_exit_2_naming_them(
-    files, capsys, value, name, where, locator
-):
-    """JSON allows any integer (RFC 8259; pycocotools keeps Python ints): an id outside
-    signed 64 bits, in any id field of either file, is exit 2 with file, record and
-    field, never a traceback."""
+def test_ids_beyond_64_bits_are_refused_under_the_int64_range(files, value, name, where, locator):
+    """``ids="int64"`` (the platform's setting): an id outside signed 64 bits, in any
+    id field of either file, is an input error naming file, record and field."""
     rng = np.random.default_rng(3)
     split = make_split(rng, n_images=3, n_classes=2, boxes_per_image=3)
     detections = make_detections(rng, split, false_per_image=1)
     section, index, field = where
     (split[section] if section else detections)[index][field] = value
     gt, dt = files.write("gt.json", split), files.write("dt.json", detections)
-    code = main(["score", "--truth", str(gt), "--predictions", str(dt), "--format", "json"])
-    err = capsys.readouterr().err
-    assert code == 2, err
-    assert f"{name}: {locator}: {value} is outside the supported range of ids" in err
-    assert "Traceback" not in err
+    with pytest.raises(InputError) as error:
+        truth = load_truth(gt, ids="int64")
+        load_predictions(dt, truth, ids="int64")
+    assert f"{name}: {locator}: {value} is outside the supported range of ids" in str(error.value)
+
+
+@pytest.mark.parametrize("offset", [2**63, 2**64 + 5, -(2**70), 10**30])
+def test_ids_beyond_64_bits_score_like_the_same_ids_shifted_back(files, capsys, offset):
+    """JSON allows any integer (RFC 8259) and pycocotools keeps Python ints: the CLI
+    scores ids of any size. Every id shifted by the same offset keeps their order, so
+    every number equals the unshifted file's; ids are written back exactly."""
+    rng = np.random.default_rng(4)
+    split = make_split(rng, n_images=6, n_classes=3, boxes_per_image=4)
+    detections = make_detections(rng, split, false_per_image=3, score_levels=3)
+    outputs = []
+    for shift in (0, offset):
+        gt_data, dt_data = json.loads(json.dumps(split)), json.loads(json.dumps(detections))
+        for item in (*gt_data["images"], *gt_data["categories"], *gt_data["annotations"]):
+            item["id"] += shift
+        for item in (*gt_data["annotations"], *dt_data):
+            item["image_id"] += shift
+            item["category_id"] += shift
+        gt, dt = files.write("gt.json", gt_data), files.write("dt.json", dt_data)
+        out = files.root / f"records{shift}.jsonl"
+        argv = ["score", "--truth", str(gt), "--predictions", str(dt), "--format", "json"]
+        assert main([*argv, "--records-out", str(out)]) == 0
+        result = json.loads(capsys.readouterr().out)
+        outputs.append((result["summary"], result["per_class"]))
+        rows = [json.loads(line) for line in out.read_text().splitlines()]
+        ids = {int(row["image_id"]) for row in rows}
+        assert ids <= {im["id"] for im in gt_data["images"]} and ids
+    assert outputs[0] == outputs[1]
 
 
 @pytest.mark.parametrize("protocol", sorted(PRESETS))

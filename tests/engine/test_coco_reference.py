@@ -9,7 +9,8 @@ and real-world files under the default box policy (``keep``): ground truth overh
 the frame, detections overhanging it or lying wholly outside, zero-area boxes, boxes
 of negative width and/or height in both files (corners swapped, or the sign flipped;
 ground-truth area given positive or as the negative w*h), images without width/height,
-ids beyond 2^53, and the literals NaN, Infinity and -Infinity (which Python's json
+ids beyond 2^53 and beyond signed 64 bits (positive and negative, in every id field),
+and the literals NaN, Infinity and -Infinity (which Python's json
 module, and so pycocotools, reads) in scores, box coordinates and areas.
 """
 
@@ -85,14 +86,12 @@ scenarios = st.fixed_dictionaries(
         "zero_area_rate": st.sampled_from([0.0, 0.1]),
         "negative_rate": st.sampled_from([0.0, 0.1, 0.3]),
         "sizeless_rate": st.sampled_from([0.0, 0.5, 1.0]),
-        "big_ids": st.booleans(),
+        "big_ids": st.sampled_from([0, 2**53 + 1, 2**63, 2**64 + 7, -(2**70)]),
         "non_finite_rate": st.sampled_from([0.0, 0.0, 0.05, 0.3]),
     }
 )
 
 NON_FINITE = (float("nan"), float("inf"), -float("inf"))
-
-BIG = 2**53 + 1  # beyond float64's exact integers; pycocotools keeps Python ints
 
 
 def roughen(rng, split, detections, scenario):
@@ -163,13 +162,27 @@ def roughen(rng, split, detections, scenario):
         for det in detections:
             det["bbox"] = spoil(det["bbox"])
             (det["score"],) = spoil([det["score"]])
-    if scenario["big_ids"]:
+    big = scenario["big_ids"]  # beyond float64's exact integers, or signed 64 bits
+    if big:  # (pycocotools keeps Python ints; the order of image ids decides ties)
         for im in split["images"]:
-            im["id"] += BIG
+            im["id"] += big if im["id"] % 3 else -big
         for item in (*split["annotations"], *detections):
-            item["image_id"] += BIG
+            item["image_id"] += big if (item["image_id"]) % 3 else -big
         for ann in split["annotations"]:
-            ann["id"] += BIG
+            ann["id"] += big
+        shift_classes = rng.random() < 0.5
+        if shift_classes:
+            for item in (*split["categories"], *split["annotations"], *detections):
+                key = "id" if "name" in item else "category_id"
+                item[key] += big
+        if 2**63 <= big < 2**64:
+            # pycocotools' evaluate() runs np.unique on its id lists, which numpy makes
+            # float64 when every id lies in [-2^63, 2^64) (ids lose their low bits and
+            # images drop out: test_ids_that_pycocotools_rounds_to_floats). One id past
+            # 2^64 keeps them Python ints there, so the comparison is exact.
+            split["images"].append({"id": 2**64 + 1000})
+            if shift_classes:
+                split["categories"].append({"id": 2**64 + 1000, "name": "anchor"})
 
 
 @settings(
@@ -421,3 +434,28 @@ def test_nan_and_infinite_values_are_scored_like_pycocotools(tmp_path):
     assert boxes["truth"]["non_finite"] == 2 and boxes["truth"]["non_finite_area_from_file"] == 2
     assert boxes["predictions"]["non_finite"] == 1
     assert boxes["predictions"]["non_finite_score"] == 3
+
+
+def test_ids_that_pycocotools_rounds_to_floats(tmp_path):
+    """A known deviation, pinned: pycocotools 2.0.11 ``COCOeval.evaluate`` sets
+    ``p.imgIds = list(np.unique(p.imgIds))``; numpy turns Python ints all within
+    [-2^63, 2^64), one of them >= 2^63, into float64, so an id such as 2^63 + 1 becomes
+    2^63 and no longer finds its boxes: the reference scores nothing (-1 everywhere).
+    The engine keeps every id exact and scores the image."""
+    big = 2**63 + 1
+    split = _one_class_split([[10, 10, 20, 20]])
+    split["images"][0]["id"] = split["annotations"][0]["image_id"] = big
+    split["images"].append({"id": 5})  # an image without boxes: [big, 5] → float64
+    path = tmp_path / "truth.json"
+    detections = [{"image_id": big, "category_id": 1, "bbox": [10, 10, 20, 20], "score": 0.9}]
+    import json
+
+    path.write_text(json.dumps(split))
+    (tmp_path / "dt.json").write_text(json.dumps(detections))
+    assert np.unique([big, 5]).dtype == np.float64  # the conversion itself
+    reference = pycocotools_eval(path, tmp_path / "dt.json")
+    assert list(reference.stats) == [-1.0] * 12
+    truth = load_truth(path)
+    ours = evaluate(truth, load_predictions(tmp_path / "dt.json", truth), "coco")
+    assert ours["summary"]["AP"] == pytest.approx(1.0)
+    assert truth.image_ids.tolist() == ["5", str(big)]

@@ -41,6 +41,13 @@ CASES = [
         "unknown-class.json: record {n}: field 'category_id': class 7 is not one of the split's",
         {"field": "category_id"},
     ),
+    (  # the platform keeps ids to signed 64 bits (evaluation.services.ENGINE_IDS)
+        "huge-id.json",
+        lambda ok: json.dumps(ok + [{**ok[0], "image_id": 2**64 + 5}]),
+        "huge-id.json: record {n}: field 'image_id': 18446744073709551621 is outside the "
+        "supported range of ids",
+        {"field": "image_id"},
+    ),
     (
         "no-score.json",
         lambda ok: json.dumps(ok + [{k: v for k, v in ok[0].items() if k != "score"}]),

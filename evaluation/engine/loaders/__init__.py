@@ -79,7 +79,9 @@ def _exists(path):
         raise InputError(path, f"cannot open: {e.strerror}") from None
 
 
-def load_truth(path, *, images=None, fmt=None, classes=None, cache_dir=None, boxes="keep"):
+def load_truth(
+    path, *, images=None, fmt=None, classes=None, cache_dir=None, boxes="keep", ids="any"
+):
     """Load a benchmark split.
 
     Parameters
@@ -92,9 +94,12 @@ def load_truth(path, *, images=None, fmt=None, classes=None, cache_dir=None, box
         ``clip`` and ``reject`` need every image's size; ``reject`` refuses ground
         truth overhanging the frame by more than ``checks.TRUTH_BOUNDS_TOLERANCE``.
         Under ``keep`` and ``clip`` ground truth is kept as given (and counted).
+    ids : ``"any"`` (default: any JSON integer, as pycocotools) or ``"int64"`` (a
+        JSON id outside signed 64 bits is an input error naming it; the platform's)
     """
     _exists(path)
     checks.check_policy(path, boxes)
+    _check_ids_option(path, ids)
     fmt = _format(path, fmt)
     if fmt == "csv" and images is None:
         raise InputError(
@@ -106,16 +111,42 @@ def load_truth(path, *, images=None, fmt=None, classes=None, cache_dir=None, box
         "format": fmt,
         "classes": list(classes) if classes else None,
         "boxes": boxes,
+        "ids": ids,
         "schema": CACHE_SCHEMA,
     }
-    return cached(
-        cache_dir, sources, key, lambda: _read_truth(path, images, fmt, classes, boxes), "truth"
-    )
+    build = lambda: _read_truth(path, images, fmt, classes, boxes, ids)  # noqa: E731
+    return cached(cache_dir, sources, key, build, "truth")
 
 
-def _read_truth(path, images, fmt, classes, policy):
+#: ``any``: JSON ids of any size (pycocotools keeps Python ints); ``int64``: refused
+#: outside signed 64 bits.
+ID_RANGES = ("any", "int64")
+
+
+def _check_ids_option(path, ids):
+    if ids not in ID_RANGES:
+        raise InputError(path, f"unknown id range {ids!r}; use {', '.join(ID_RANGES)}")
+
+
+def _widen(cols, names):
+    """An id family (the images' ids and the boxes' references to them...) with one
+    id beyond signed 64 bits becomes object arrays of Python ints throughout, so it
+    sorts and matches numerically as pycocotools' Python ints do."""
+    if any(cols[name].dtype == object for name in names):
+        for name in names:
+            cols[name] = np.array([int(v) for v in cols[name].tolist()], dtype=object)
+
+
+def _as_text(ids):
+    """Ids kept as decimal text once sorted: beyond int64 they fit no numpy integer."""
+    return ids.astype(str) if ids.dtype == object else ids
+
+
+def _read_truth(path, images, fmt, classes, policy, ids="any"):
     if fmt == "json":
-        cols = coco_json.read_truth(path)
+        cols = coco_json.read_truth(path, wide=ids == "any")
+        _widen(cols, ("image_ids", "box_image_ids", "region_image_ids"))
+        _widen(cols, ("class_ids", "box_class_ids"))
         image_locate = lambda i: f"images[{i}]"  # noqa: E731
         box_locate = lambda i: f"annotations[{i}]"  # noqa: E731
         box_fields = {"image": "image_id", "class": "category_id", "bbox": "bbox", "id": "id"}
@@ -168,7 +199,7 @@ def _read_truth(path, images, fmt, classes, policy):
     if fmt == "json":
         checks.check_unique(path, cols["box_ids"], box_locate, "id")
 
-    image_order = np.argsort(cols["image_ids"], kind="stable")
+    image_order = np.argsort(cols["image_ids"], kind="stable")  # numeric, also when wide
     image_ids = cols["image_ids"][image_order]
     class_order = np.argsort(cols["class_ids"], kind="stable")
     class_ids = cols["class_ids"][class_order]
@@ -215,12 +246,12 @@ def _read_truth(path, images, fmt, classes, policy):
     tags = [cols["image_tags"][i] for i in image_order]
     return GroundTruth(
         classes=tuple(names),
-        class_ids=class_ids,
-        image_ids=image_ids,
+        class_ids=_as_text(class_ids),
+        image_ids=_as_text(image_ids),
         image_width=cols["image_width"][image_order],
         image_height=cols["image_height"][image_order],
         image_tags=tuple(tuple(t) for t in tags),
-        box_ids=cols["box_ids"],
+        box_ids=_as_text(cols["box_ids"]),
         box_image=box_image,
         box_class=box_class,
         boxes=boxes,
@@ -337,7 +368,7 @@ def _take(values, mask):
 
 
 def load_predictions(
-    path, truth, *, fmt=None, boxes=None, unknown_classes="reject", cache_dir=None
+    path, truth, *, fmt=None, boxes=None, unknown_classes="reject", cache_dir=None, ids="any"
 ):
     """Load a detector's predictions for ``truth``.
 
@@ -347,8 +378,10 @@ def load_predictions(
         was loaded under (``"keep"`` by default): see ``checks.apply_box_policy``.
     unknown_classes : ``"reject"`` (default) or ``"drop"`` (pycocotools silently drops
         detections of categories the split does not list; counted in ``dropped``)
+    ids : ``"any"`` or ``"int64"``, as for ``load_truth``
     """
     _exists(path)
+    _check_ids_option(path, ids)
     boxes = truth.box_policy if boxes is None else boxes
     checks.check_policy(path, boxes)
     if boxes != "keep":
@@ -369,25 +402,32 @@ def load_predictions(
         "truth": truth.content_hash(),
         "boxes": boxes,
         "unknown_classes": unknown_classes,
+        "ids": ids,
         "schema": CACHE_SCHEMA,
     }
     return cached(
         cache_dir,
         [path],
         key,
-        lambda: _read_predictions(path, truth, fmt, boxes, unknown_classes),
+        lambda: _read_predictions(path, truth, fmt, boxes, unknown_classes, ids),
         "predictions",
     )
 
 
-def _read_predictions(path, truth, fmt, policy, unknown_classes):
+def _read_predictions(path, truth, fmt, policy, unknown_classes, ids="any"):
+    known_images = truth.image_ids
     if fmt == "json":
-        image_ids, class_keys, boxes, score = coco_json.read_detections(path)
+        image_ids, class_keys, boxes, score = coco_json.read_detections(path, ids == "any")
         locate = lambda i: f"record {i}"  # noqa: E731
         fields = {"image": "image_id", "class": "category_id", "bbox": "bbox"}
+        shown = image_ids
         known_classes = truth.class_ids
-        if truth.image_ids.dtype.kind != "i":
-            image_ids = image_ids.astype(str)
+        # Ids beyond int64 (object arrays here, decimal text in a wide split) are
+        # matched as decimal text: int(str(n)) == n.
+        if known_images.dtype.kind != "i" or image_ids.dtype == object:
+            image_ids, known_images = image_ids.astype(str), known_images.astype(str)
+        if known_classes.dtype.kind != "i" or class_keys.dtype == object:
+            class_keys, known_classes = class_keys.astype(str), known_classes.astype(str)
     elif fmt in label_folders.FORMATS:
         ids, labels, boxes, score, locate = label_folders.read_detections(
             path, fmt, truth, _ids_like
@@ -406,9 +446,7 @@ def _read_predictions(path, truth, fmt, policy, unknown_classes):
         known_classes = np.array(truth.classes, dtype=object).astype(str)
         shown = np.array(ids, dtype=object).astype(str) if ids else np.zeros(0, str)
         image_ids = _ids_like(ids, truth.image_ids)
-    shown = image_ids if fmt == "json" else shown
-
-    image, found = checks.resolve(path, image_ids, truth.image_ids, locate, "", "")
+    image, found = checks.resolve(path, image_ids, known_images, locate, "", "")
     checks.require_found(path, found, shown, locate, fields["image"], "image")
     cls, found = checks.resolve(path, class_keys, known_classes, locate, "", "")
     dropped = 0

@@ -104,12 +104,15 @@ def validation_error(path, error, *, top_level_list, base=0, key=""):
 _INT64_MIN, _INT64_MAX = -(2**63), 2**63 - 1
 
 
-def int_column(path, values, locate, field):
-    """Python ints as int64; an id outside the signed 64-bit range is an input error
-    (JSON allows any integer; pycocotools would accept it)."""
+def int_column(path, values, locate, field, wide=False):
+    """Python ints as int64. An id outside the signed 64-bit range (JSON allows any
+    integer, pycocotools keeps Python ints) makes the column an object array of
+    Python ints with ``wide``, else it is an input error naming it."""
     try:
         return np.array(values, np.int64).reshape(-1)
     except OverflowError:
+        if wide:
+            return np.array([int(v) for v in values], dtype=object).reshape(-1)
         for i, value in enumerate(values):
             if not _INT64_MIN <= value <= _INT64_MAX:
                 raise InputError(
@@ -122,7 +125,7 @@ def int_column(path, values, locate, field):
         raise
 
 
-def read_truth(path):
+def read_truth(path, wide=False):
     """Decode a COCO-style ground-truth file into plain columns.
 
     Read a few MB at a time (``json_syntax.check``): the syntax is checked in
@@ -149,7 +152,7 @@ def read_truth(path):
         if size - skip > SYNTAX_FIRST_BYTES or not _ends_like_an_object(f, size):
             # A syntax error or truncation is found without building any column.
             json_syntax.check(path, f, skip)
-        records = _Records(path)
+        records = _Records(path, wide)
         checker = json_syntax.check(path, f, skip, sink=records)
         return records.columns(checker)
 
@@ -203,8 +206,8 @@ class _Records:
     the outer object before its array) and raised by ``columns`` once the whole
     syntax is known to be valid, so a syntax error anywhere still comes first."""
 
-    def __init__(self, path):
-        self.path = path
+    def __init__(self, path, wide=False):
+        self.path, self.wide = path, wide
         self.parts = {key: [] for key in _RECORDS}
         self.count = dict.fromkeys(_RECORDS, 0)
         self.error = None  # (exception, absolute offset of its slice, outline)
@@ -229,7 +232,8 @@ class _Records:
 
     def ids(self, values, key, field, base):
         try:
-            return int_column(self.path, values, lambda i: f"{key}[{base + i}]", field)
+            locate = lambda i: f"{key}[{base + i}]"  # noqa: E731
+            return int_column(self.path, values, locate, field, self.wide)
         except InputError as e:
             self.out_of_range.setdefault((key, field), e)
             return np.zeros(len(values), np.int64)
@@ -332,7 +336,7 @@ def _slice_decode_error(path, error, checker, locate):
     return InputError(path, f"not valid JSON: {reason} at line {line}, column {column}")
 
 
-def _columns(records, path="", base=0):
+def _columns(records, path="", base=0, wide=False):
     n = len(records)
 
     def locate(i):
@@ -342,7 +346,7 @@ def _columns(records, path="", base=0):
         try:
             return np.fromiter(values, np.int64, n)
         except OverflowError:  # locate the id outside int64
-            return int_column(path, [getattr(r, field) for r in records], locate, field)
+            return int_column(path, [getattr(r, field) for r in records], locate, field, wide)
 
     return (
         ids((r.image_id for r in records), "image_id"),
@@ -408,7 +412,7 @@ def _decode_slice(piece):
     return json_literals.decode(piece, list[_Detection])
 
 
-def _stream(path, f, skip, build=True):
+def _stream(path, f, skip, build=True, wide=False):
     """Columns of the records of a top-level JSON array, read a few MB at a time
     (with ``build=False`` only the record counts: a validation pass).
 
@@ -480,7 +484,7 @@ def _stream(path, f, skip, build=True):
             raise _piece_error(path, e, buf, where, 0) from None
         finally:
             view.release()
-        yield _columns(records, path, base) if build else len(records)
+        yield _columns(records, path, base, wide) if build else len(records)
         if eof:
             return
         base += len(records)
@@ -518,8 +522,9 @@ def _ends_like_an_array(f):
     return f.read().rstrip().endswith(b"]")
 
 
-def read_detections(path):
-    """Decode a COCO-style results file: image ids, category ids, xywh boxes, scores."""
+def read_detections(path, wide=False):
+    """Decode a COCO-style results file: image ids, category ids, xywh boxes, scores
+    (ids beyond signed 64 bits: see ``int_column``)."""
     with open(path, "rb") as f:
         skip = text_start(path, f.read(4))
         if not _ends_like_an_array(f):
@@ -529,7 +534,7 @@ def read_detections(path):
             for _ in _stream(path, f, skip, build=False):
                 pass
         f.seek(skip)
-        parts = list(_stream(path, f, skip))
+        parts = list(_stream(path, f, skip, wide=wide))
     if not parts:
         return (np.zeros(0, np.int64), np.zeros(0, np.int64), np.zeros((0, 4)), np.zeros(0))
     return tuple(np.concatenate(column) for column in zip(*parts))
