@@ -16,8 +16,8 @@ and detections, and the pieces merged into exactly the records of one whole run:
 
 A shard keeps every image of the split (ids, sizes, tags: small) and only its own
 boxes and detections (the bulk), so its memory follows the shard, not the split.
-Match rows come out sorted by (config, detection); their order decides no number
-(``MatchRecords.sparse_outcomes`` sorts them).
+Match rows come in shard order (a set equal to the whole run's); their order decides
+no number (``MatchRecords.sparse_outcomes`` sorts them).
 """
 
 import dataclasses
@@ -163,11 +163,12 @@ def load_shard_records(path):
 
 def merge(shards, n_boxes):
     """One ``MatchRecords`` from the ``(records, box_index)`` of every shard: equal,
-    field for field, to matching the whole split at once (match rows aside, which come
-    sorted by config and detection).
+    field for field, to matching the whole split at once (match rows aside: the same
+    rows, in shard order).
 
     Raises ValueError when the shards do not cover each of the ``n_boxes`` boxes
-    exactly once, or were matched under different settings.
+    exactly once, are not in the order of their runs of images, or were matched under
+    different settings.
     """
     first = shards[0][0]
     for records, _ in shards[1:]:
@@ -184,13 +185,22 @@ def merge(shards, n_boxes):
         box = int(np.flatnonzero(covered != 1)[0])
         raise ValueError(f"box {box} is in {int(covered[box])} shards, not exactly one")
 
+    spans = [(r.det_image.min(), r.det_image.max()) for r, _ in shards if r.n_detections]
+    if any(a[1] >= b[0] for a, b in zip(spans, spans[1:])):
+        raise ValueError("shards must be given in order of their runs of images")
     det = {name: np.concatenate([getattr(r, name) for r, _ in shards]) for name in _DET_FIELDS}
     outside = np.concatenate([r.det_outside for r, _ in shards], axis=1)
+    # Shards hold increasing runs of images and each is in accumulation order, so in
+    # their concatenation equal (class, score) under tie_order "image" already stand in
+    # image, then file order: two stable sorts finish it, as in ``matching._orders``.
+    # Under "file" the file positions interleave across shards and are sorted first.
     if first.tie_order == "file":
-        order = np.lexsort((det["det_order"], -det["det_score"], det["det_class"]))
+        base = np.argsort(det["det_order"], kind="stable")
     else:
-        keys = (det["det_order"], det["det_image"], -det["det_score"], det["det_class"])
-        order = np.lexsort(keys)
+        base = np.arange(len(det["det_order"]))
+    by_score = base[np.argsort(-det["det_score"][base], kind="stable")]
+    classes = det["det_class"].astype(np.uint16 if len(first.classes) < 2**16 else np.int64)
+    order = by_score[np.argsort(classes[by_score], kind="stable")]
     new_index = np.empty(len(order), np.int64)
     new_index[order] = np.arange(len(order))
     offsets = np.cumsum([0] + [r.n_detections for r, _ in shards])
@@ -199,7 +209,6 @@ def merge(shards, n_boxes):
         [new_index[r.match_det.astype(np.int64) + offsets[k]] for k, (r, _) in enumerate(shards)]
     )
     match_config = np.concatenate([r.match_config for r, _ in shards])
-    rows = np.lexsort((match_det, match_config))
 
     box = {}
     for name in _BOX_RECORD_FIELDS:
@@ -223,10 +232,10 @@ def merge(shards, n_boxes):
         n_images=first.n_images,
         **{name: values[order] for name, values in det.items()},
         det_outside=outside[:, order],
-        match_config=match_config[rows],
-        match_det=match_det[rows].astype(np.int32),
-        match_box=np.concatenate([r.match_box for r, _ in shards])[rows],
-        match_iou=np.concatenate([r.match_iou for r, _ in shards])[rows],
+        match_config=match_config,
+        match_det=match_det.astype(np.int32),
+        match_box=np.concatenate([r.match_box for r, _ in shards]),
+        match_iou=np.concatenate([r.match_iou for r, _ in shards]),
         gt_ignored=gt_ignored,
         tie_order=first.tie_order,
         **box,

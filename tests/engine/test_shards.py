@@ -130,6 +130,8 @@ def test_merge_refuses_shards_that_miss_or_repeat_boxes(loaded, tmp_path):
         shards.merge(parts[:1], truth.n_boxes)
     with pytest.raises(ValueError, match="not exactly one"):
         shards.merge(parts + parts[:1], truth.n_boxes)
+    with pytest.raises(ValueError, match="in order of their runs of images"):
+        shards.merge(parts[::-1], truth.n_boxes)
     other = (
         shards.match_shard(*next(shards.pieces(truth, predictions, ranges)), "voc"),
         parts[0][1],
