@@ -434,6 +434,8 @@ def _read_predictions(path, truth, fmt, policy, unknown_classes, ids="any"):
         )
         fields = {"image": "file name", "class": "type" if fmt == "kitti" else "class"}
         fields["bbox"] = "x1..y2" if fmt == "kitti" else "cx cy w h"
+        if fmt == "voc_det":
+            fields = {"image": "image_id", "class": "file name", "bbox": "xmin..ymax"}
         class_keys = np.array(labels, dtype=object).astype(str) if labels else np.zeros(0, str)
         known_classes = np.array(truth.classes, dtype=object).astype(str)
         shown = np.array(ids, dtype=object).astype(str) if ids else np.zeros(0, str)

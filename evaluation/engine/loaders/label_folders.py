@@ -1,5 +1,8 @@
 """KITTI, YOLO and Pascal VOC splits and detections: folders or zips of label files.
 
+Detections may also be the VOC devkit's result files (``voc_det``, ``voc_results.py``:
+one ``<comp>_det_<set>_<class>.txt`` per class, recognised by that name).
+
 Each label file is one image, its id the file's name without extension
 (``000012.txt`` -> image 12, read like a CSV image id: all-integer ids become
 integers). The columns returned are the ones the CSV and COCO JSON readers return,
@@ -18,14 +21,14 @@ file's header.
 import numpy as np
 
 from ..errors import InputError
-from . import csv_tables, kitti, voc_xml, yolo
+from . import csv_tables, kitti, voc_results, voc_xml, yolo
 from .image_sizes import IMAGE_EXTENSIONS, size_from_header
 from .label_lines import lines
 from .members import Members, extension, is_collection, stem
 
 __all__ = ["FORMATS", "detect_path", "is_collection", "read_detections", "read_truth"]
 
-FORMATS = ("kitti", "yolo", "voc")
+FORMATS = ("kitti", "yolo", "voc", "voc_det")
 LABEL_FOLDERS = {"labels", "label_2", "annotations"}
 _FIELDS = {
     "kitti": {"image": "file name", "class": "type", "bbox": "x1..y2", "id": "line"},
@@ -57,8 +60,17 @@ def label_files(members, fmt):
     return names
 
 
+def result_files(members):
+    """The VOC result files (``*_det_*_*.txt``) of a folder, in name order."""
+    return sorted(n for n in members.names if voc_results.is_result_file(n))
+
+
 def detect(path, members):
-    """``kitti``, ``yolo`` or ``voc`` from the folder's content."""
+    """``kitti``, ``yolo``, ``voc`` or ``voc_det`` from the folder's content: VOC result
+    files when every ``.txt`` file is named like one (``comp4_det_test_car.txt``)."""
+    texts = [n for n in members.names if extension(n) == ".txt"]
+    if texts and all(voc_results.is_result_file(n) for n in texts):
+        return "voc_det"
     if any(extension(n) == ".xml" for n in members.names):
         return "voc"
     for name in label_files(members, "kitti"):
@@ -149,6 +161,12 @@ def read_truth(path, images, fmt, classes):
     """Columns of a KITTI, YOLO or VOC split (``fmt`` None: detected from content)."""
     with Members(path) as members:
         fmt = fmt or detect(path, members)
+        if fmt == "voc_det":
+            raise InputError(
+                path,
+                "VOC detection result files (<comp>_det_<set>_<class>.txt) hold detections "
+                "only; give the split as VOC XML, KITTI, YOLO, CSV or JSON",
+            )
         names = label_files(members, fmt)
         if fmt == "voc":
             parsed = {n: voc_xml.parse(path, n, members.read(n)) for n in names}
@@ -263,14 +281,18 @@ def _columns(path, fmt, rows, regions, class_names, table):
 
 
 def read_detections(path, fmt, truth, to_ids):
-    """Detections of a KITTI or YOLO folder: ``(image ids, class names, xywh boxes,
-    scores, locate)``; ``to_ids`` types image ids like the split's."""
+    """Detections of a KITTI, YOLO or VOC-results folder: ``(image ids, class names,
+    xywh boxes, scores, locate)``; ``to_ids`` types image ids like the split's."""
     with Members(path) as members:
         fmt = fmt or detect(path, members)
         if fmt == "voc":
             raise InputError(
-                path, "VOC XML holds ground truth only; give detections as KITTI, YOLO, CSV or JSON"
+                path,
+                "VOC XML holds ground truth only; give detections as VOC result files "
+                "(<comp>_det_<set>_<class>.txt), KITTI, YOLO, CSV or JSON",
             )
+        if fmt == "voc_det":
+            return _voc_results(path, members, truth)
         names = label_files(members, fmt)
         records = []
         if fmt == "kitti":
@@ -289,6 +311,33 @@ def read_detections(path, fmt, truth, to_ids):
         [stem(r[0]) for r in records],
         labels,
         np.array(boxes, np.float64).reshape(-1, 4),
+        np.array([r[4] for r in records], np.float64),
+        lambda i: where[i],
+    )
+
+
+def _voc_results(path, members, truth):
+    names = result_files(members)
+    if not names:
+        raise InputError(
+            path, "no VOC result file (<comp>_det_<set>_<class>.txt) in the folder or zip"
+        )
+    records, seen = [], {}
+    for name in names:
+        class_name = voc_results.class_of(path, name, truth.classes)
+        earlier = seen.setdefault(class_name, name)
+        if earlier != name:
+            raise InputError(
+                path,
+                f"two result files for class {class_name!r} ({earlier} and {name})",
+                record=name,
+            )
+        voc_results.parse(path, name, members.read(name), class_name, records)
+    where = [f"{r[0]} line {r[1]}" for r in records]
+    return (
+        [r[5] for r in records],
+        [r[2] for r in records],
+        np.array([r[3] for r in records], np.float64).reshape(-1, 4),
         np.array([r[4] for r in records], np.float64),
         lambda i: where[i],
     )

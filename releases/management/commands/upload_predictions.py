@@ -14,7 +14,10 @@ class Command(BaseCommand):
     help = "Upload a version's predictions on a split; scoring is queued for the worker."
 
     def add_arguments(self, parser):
-        parser.add_argument("predictions", help="COCO-style results JSON or CSV")
+        parser.add_argument(
+            "predictions",
+            help="COCO-style results JSON, CSV, or a zip of KITTI, YOLO or VOC result files",
+        )
         parser.add_argument("--detector", required=True, help="detector slug")
         parser.add_argument("--label", required=True, help="version label, e.g. 1.4.0")
         parser.add_argument("--split", required=True, help="NAME:REVISION, e.g. bay-night:2")

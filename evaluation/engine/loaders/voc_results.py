@@ -1,0 +1,55 @@
+"""PASCAL VOC detection result files: one ``<comp>_det_<set>_<class>.txt`` per class.
+
+The layout of the VOC development kit (Everingham et al., IJCV 2010; ``VOCevaldet.m``
+reads a class's file with ``textread(..., '%s %f %f %f %f %f')``; the file name is
+``VOCopts.detrespath``, ``%s_det_%s_%s.txt`` of the competition id, the image set and
+the class): one detection per line, ``image_id score xmin ymin xmax ymax``, the box
+as 1-based, pixel-inclusive corners. The corners are kept as given (``x_max - x_min``
+wide, as the CSV reader keeps them); the VOC protocols add the devkit's +1 when they
+measure overlap, so the numbers equal those of the same corners given as CSV or COCO
+JSON under the same protocol. Within a class, detections keep their file order, the
+order the devkit's stable sort starts from.
+"""
+
+import posixpath
+import re
+
+from ..errors import InputError
+from .label_lines import field_count, lines, number
+
+LAYOUT = "image_id score xmin ymin xmax ymax"
+#: ``comp4_det_test_car.txt``: competition id, ``_det_``, image set, class.
+FILE_NAME = re.compile(r"^(?P<comp>[^_/]+)_det_(?P<rest>.+)\.txt$", re.IGNORECASE)
+
+
+def is_result_file(name):
+    return FILE_NAME.match(posixpath.basename(name)) is not None
+
+
+def class_of(path, name, classes):
+    """The class a result file is named for: the longest of the split's class names
+    that the name ends with after ``_det_<set>_`` (a class name may hold ``_``); else
+    what follows the image set, left for the caller to refuse or drop as unknown."""
+    rest = FILE_NAME.match(posixpath.basename(name)).group("rest")
+    if "_" not in rest:
+        raise InputError(
+            path,
+            "a VOC result file is named <comp>_det_<set>_<class>.txt; this name has no "
+            "image set and class after '_det_'",
+            record=name,
+        )
+    ends = [c for c in classes if rest.endswith("_" + c) and len(rest) > len(c) + 1]
+    return max(ends, key=len) if ends else rest.split("_", 1)[1]
+
+
+def parse(path, name, data, class_name, out):
+    """Append one result file's records: ``(name, line, class, box xywh, score,
+    image id)``; errors name the file, its line and the field."""
+    for line, fields in lines(path, name, data):
+        field_count(path, name, line, fields, (6,), LAYOUT)
+        score = number(path, name, line, "score", fields[1])
+        x1, y1, x2, y2 = (
+            number(path, name, line, field, text)
+            for field, text in zip(("xmin", "ymin", "xmax", "ymax"), fields[2:6])
+        )
+        out.append((name, line, class_name, [x1, y1, x2 - x1, y2 - y1], score, fields[0]))
