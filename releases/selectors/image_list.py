@@ -234,15 +234,18 @@ SHORT_REASONS = {
 
 
 def rule_link(outcome, reference_id=None):
-    """Query of the per-image list filtered to an outcome's split, class and tag, ranked
-    by the rule's metric (the one click from a failing rule): ``{"split", "class",
-    "tag", "metric", "against"}``."""
+    """Query of the per-image list filtered to an outcome's split, class and tag or size
+    bucket, ranked by the rule's metric (the one click from a failing rule): ``{"split",
+    "class", "tag", "size", "metric", "against"}``."""
     query = {"split": outcome.split_id}
     if outcome.class_name and outcome.class_name not in ("mean", "*"):
         query["class"] = outcome.class_name
     tag = (outcome.rule or {}).get("tag")
     if tag:
         query["tag"] = tag
+    size = (outcome.rule or {}).get("size")
+    if size:
+        query["size"] = size
     metric = (outcome.rule or {}).get("metric")
     if metric in METRIC_IOU and metric != "AP":
         query["metric"] = metric

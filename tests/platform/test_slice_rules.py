@@ -7,6 +7,7 @@ or judged *missing* when those cannot be read. Every door that sets criteria or 
 a decision (page, API, command) keeps the promise."""
 
 import json
+import re
 
 import numpy as np
 import pytest
@@ -308,3 +309,20 @@ def test_a_size_regression_blocks_the_api_the_page_and_the_command(client, size_
     assert not SignOff.objects.exists()
     out = _command(size_regression, "approve", justification="small boxes not used on this route")
     assert "override" in out
+
+
+def test_a_size_outcome_names_its_bucket_on_the_page_the_api_and_its_images_link(
+    client, size_regression, users
+):
+    client.force_login(users["reviewer"])
+    page = client.get(reverse("version", args=[size_regression.pk])).content.decode()
+    assert "(small boxes)" in page and "recall of mean on small boxes" in page
+    link = re.search(r'href="(/versions/[^"]*images[^"]*)"', page) or re.search(
+        r'class="cause-link" href="([^"]*)"', page
+    )
+    assert "size=small" in link.group(1) and "metric=recall" not in link.group(1)
+    assert client.get(link.group(1).replace("&amp;", "&")).status_code == 200
+    body = _api(users["reviewer"]).get("/api/v1/outcomes/", {"version": size_regression.pk})
+    rows = body.json()["results"] if "results" in body.json() else body.json()
+    assert [r["rule"]["size"] for r in rows] == ["small"]
+    assert "on small boxes" in rows[0]["detail"]
