@@ -75,16 +75,36 @@ def _area_index(records, size):
     return records.area_names.index(size)
 
 
-def _loo(records, protocol, classes, weights, **which):
-    """``(AP, AP without each image)`` of one class, or of the mean over the classes
-    with positives (the headline mean: absent classes are left out of it)."""
-    import warnings
+#: Leave-one-out arrays per (scorecard, records file, class, tag, size, slot): the list
+#: of one class and the list of every class (their mean) share them, so each class's
+#: leave-one-out runs once per process and filters; bounded (about 40 kB an entry at
+#: 5,000 images).
+_CLASS_LOO = {}
+CLASS_LOO_ENTRIES = 512
 
+
+def _class_loo(side, protocol, k, tag, weights, area, slot):
     from evaluation.engine import per_image
 
+    key = (side.card.pk, side.card.records_sha256, k, tag, area, slot)
+    found = _CLASS_LOO.get(key)  # .get: another thread may clear it meanwhile
+    if found is None:
+        found = per_image.leave_one_out(side.records, protocol, k, weights, area=area, slot=slot)
+        if len(_CLASS_LOO) >= CLASS_LOO_ENTRIES:
+            _CLASS_LOO.clear()
+        _CLASS_LOO[key] = found
+    return found
+
+
+def _loo(side, protocol, classes, tag, weights, area=0, slot=None):
+    """``(AP, AP without each image)`` of one class, or of the mean over the classes
+    with positives (the headline mean: absent classes are left out of it), from each
+    class's kept leave-one-out arrays."""
+    import warnings
+
+    pairs = [_class_loo(side, protocol, k, tag, weights, area, slot) for k in classes]
     if len(classes) == 1:
-        return per_image.leave_one_out(records, protocol, classes[0], weights, **which)
-    pairs = [per_image.leave_one_out(records, protocol, k, weights, **which) for k in classes]
+        return pairs[0]
     bases = np.array([ap for ap, _ in pairs])
     without = np.stack([w for _, w in pairs])
     with warnings.catch_warnings():
@@ -142,7 +162,7 @@ def image_rows(pair, listing):
     counts, change = {}, {}
     for name, side in sides.items():
         counts[name] = per_image.image_counts(side.records, pair.thresholds, k)
-        ap, without = _loo(side.records, protocol, classes, weights, area=area, slot=slot)
+        ap, without = _loo(side, protocol, classes, listing.tag, weights, area, slot)
         change[name] = ap - without
     contribution = change["candidate"] - change.get("reference", 0.0)
     listed = np.ones(truth.n_images, bool) if weights is None else weights > 0

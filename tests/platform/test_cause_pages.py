@@ -296,3 +296,45 @@ def test_compare_page_shows_both_confusion_matrices(client, users, story):
     assert cell.status_code == 200 and cell.context["cell"]["row"] == "pedestrian"
     assert cell.context["cell"]["total"] == found["sides"][1]["counts"][k][k]
     assert re.search(r"<h3[^>]*>Confusion, side by side</h3>", html)
+
+
+def test_the_list_of_every_class_equals_the_per_class_results(users, story, monkeypatch):
+    """No class filter: each image's ΔAP is the mean over the classes with positives of
+    the per-class changes (the headline mean), equal to each class's leave-one-out run
+    on its own; every class's leave-one-out runs once, and the one-class lists after it
+    reuse it."""
+    import warnings
+
+    from evaluation import engine
+    from evaluation.engine import per_image
+    from releases.selectors import image_list
+
+    pair = cause.pair_for(users["lead"], story["1.5"].pk, story["split"].pk)
+    mask = pair.truth.tag_mask("night")
+    image_list._CLASS_LOO.clear()
+    image_list._ROWS.clear()
+    calls = []
+    real = per_image.leave_one_out
+    monkeypatch.setattr(
+        per_image, "leave_one_out", lambda *a, **k: calls.append(a) or real(*a, **k)
+    )
+    everything = image_list.image_rows(pair, image_list.listing_filters({"tag": "night"}))
+    n_classes = len(pair.classes)
+    assert len(calls) == 2 * n_classes  # both versions, each class once
+    protocol = engine.get_protocol(pair.protocol)
+    changes = []
+    for k in range(n_classes):
+        c_ap, c_without = real(pair.candidate.records, protocol, k, mask)
+        r_ap, r_without = real(pair.reference.records, protocol, k, mask)
+        changes.append((c_ap - c_without, r_ap - r_without))
+        one = image_list.image_rows(
+            pair, image_list.listing_filters({"class": pair.classes[k], "tag": "night"})
+        )
+        expected = (c_ap - c_without) - (r_ap - r_without)
+        np.testing.assert_array_equal(one["contribution"], expected)
+    assert len(calls) == 2 * n_classes  # the one-class lists reused them
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)
+        mean_c = np.nanmean(np.stack([c for c, _ in changes]), axis=0)
+        mean_r = np.nanmean(np.stack([r for _, r in changes]), axis=0)
+    np.testing.assert_allclose(everything["contribution"], mean_c - mean_r, atol=1e-15)
