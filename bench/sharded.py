@@ -278,7 +278,9 @@ def piece_peak(mode, gt_path, dt_path, shard_images, cache):
         ranges = shards.plan(truth.n_images, shard_images)
         shards.save_piece(path, *next(shards.pieces(truth, predictions, ranges[:1])))
     elif mode == "whole-read":
-        load_predictions(dt_path, truth, cache_dir=cache)
+        del truth
+        truth = load_truth(gt_path)  # from the file, as a worker without the cache entry
+        load_predictions(dt_path, truth)
     else:
         del truth
         shards.match_shard(*shards.load_piece(path), "coco")
@@ -294,6 +296,42 @@ def table(results):
         print(f"{name:8} {len(r['peaks']):7} {r['wall']:8.1f} {ratio:6.2f} {peaks:>24}")
     digests = {r["result_sha256"] for r in results.values()}
     print(f"numbers identical across runs: {len(digests) == 1} (AP {base['ap']!r})")
+
+
+def measure(runs, args, env, gt_path, dt_path):
+    database(args.database_url)
+    python(["manage.py", "migrate", "-v0"], env)
+    load = (
+        "from evaluation import services as s\n"
+        f"s.load_split(name='sharded', revision=1, truth=open({str(gt_path)!r}, 'rb'))"
+    )
+    python(["manage.py", "shell", "-v0", "-c", load], {**env, "CELERY_BROKER_URL": args.redis_url})
+
+    brokers = {"whole": (1, args.redis_url), "one": (1, args.redis_url)}
+    brokers.update(redis2=(2, args.redis_url), fs2=(2, "filesystem://"))
+    results = {}
+    for name in runs:
+        workers, broker = brokers[name]
+        results[name] = run(name, workers, broker, env, args.shard_images, dt_path)
+        r = results[name]
+        print(f"{name}: {r['wall']:.1f} s, peaks {[round(p) for p in r['peaks']]} MB", flush=True)
+
+    print(f"\nload average during the runs: {os.getloadavg()}, cores: {os.cpu_count()}")
+    table(results)
+    sharded = [r for r in results.values() if r["shards"]]
+    if sharded:
+        r = min(sharded, key=lambda r: r["wall"])
+        costs = np.array(r["shards"])
+        upload, prepare, merge = r["upload"], r["prepare"], r["merge"]
+        print(
+            f"\nper shard ({len(costs)} of {args.shard_images} images): mean {costs.mean():.2f} s, "
+            f"max {costs.max():.2f} s; upload {upload:.1f} s, read + pieces {prepare:.1f} s, "
+            f"merge + score + store {merge:.1f} s"
+        )
+        print(f"{'machines':>8} {'wall s (paper)':>15}")
+        for n in (1, 2, 4, 8, 16, 32):
+            waves = math.ceil(len(costs) / n)
+            print(f"{n:8} {upload + prepare + waves * costs.mean() + merge:15.1f}")
 
 
 def main():
@@ -331,41 +369,9 @@ def main():
         PYTHONPATH=str(ROOT),
     )
     env.pop("DEBUG", None)
-    database(args.database_url)
-    python(["manage.py", "migrate", "-v0"], env)
-    load = (
-        "from evaluation import services as s\n"
-        f"s.load_split(name='sharded', revision=1, truth=open({str(gt_path)!r}, 'rb'))"
-    )
-    python(["manage.py", "shell", "-v0", "-c", load], {**env, "CELERY_BROKER_URL": args.redis_url})
-
-    brokers = {"whole": (1, args.redis_url), "one": (1, args.redis_url)}
-    brokers.update(redis2=(2, args.redis_url), fs2=(2, "filesystem://"))
-    results = {}
-    for name in filter(None, args.runs.split(",")):
-        workers, broker = brokers[name]
-        results[name] = run(name, workers, broker, env, args.shard_images, dt_path)
-        r = results[name]
-        print(f"{name}: {r['wall']:.1f} s, peaks {[round(p) for p in r['peaks']]} MB", flush=True)
-
-    print(f"\nload average during the runs: {os.getloadavg()}, cores: {os.cpu_count()}")
-    if results:
-        table(results)
-    sharded = [r for r in results.values() if r["shards"]]
-    if sharded:
-        r = min(sharded, key=lambda r: r["wall"])
-        costs = np.array(r["shards"])
-        upload, prepare, merge = r["upload"], r["prepare"], r["merge"]
-        print(
-            f"\nper shard ({len(costs)} of {args.shard_images} images): mean {costs.mean():.2f} s, "
-            f"max {costs.max():.2f} s; upload {upload:.1f} s, read + pieces {prepare:.1f} s, "
-            f"merge + score + store {merge:.1f} s"
-        )
-        print(f"{'machines':>8} {'wall s (paper)':>15}")
-        for n in (1, 2, 4, 8, 16, 32):
-            waves = math.ceil(len(costs) / n)
-            print(f"{n:8} {upload + prepare + waves * costs.mean() + merge:15.1f}")
-
+    runs = [name for name in args.runs.split(",") if name]
+    if runs:
+        measure(runs, args, env, gt_path, dt_path)
     cache = work / "piece-cache"
     cache.mkdir()
     common = [str(gt_path), str(dt_path), str(cache)]
@@ -376,8 +382,9 @@ def main():
         out = python([__file__, "--piece", mode, *common, *extra], env, capture_output=True)
         peaks[mode] = json.loads(out.stdout.decode().strip().splitlines()[-1])["peak"]
     print(
-        f"\none shard's process (load piece + match): {peaks['piece']:.0f} MB; "
-        f"reading the whole predictions file: {peaks['whole-read']:.0f} MB"
+        f"\none shard's process (load piece + match, {args.shard_images} images): "
+        f"{peaks['piece']:.0f} MB; reading the whole predictions file: "
+        f"{peaks['whole-read']:.0f} MB; load average {os.getloadavg()[0]:.1f}"
     )
     return 0
 
