@@ -43,6 +43,16 @@ class EvaluationAdmin(admin.ModelAdmin):
     list_display = ["id", "split", "protocol", "state", "progress", "attempts", "finished_at"]
     list_filter = ["state", "protocol"]
     list_select_related = ["split", "predictions"]
+    # What is evaluated is fixed when it is requested (an upload never drops images).
+    readonly_fields = [
+        "split",
+        "predictions",
+        "protocol",
+        "box_policy",
+        "scope",
+        "file_name",
+        "unknown_images",
+    ]
 
     def has_add_permission(self, request):
         return False

@@ -92,11 +92,23 @@ class Evaluation(models.Model):
         default="keep",
         help_text="Boxes leaving the frame: keep (as the references), clip or reject.",
     )
+
+    class UnknownImages(models.TextChoices):
+        REJECT = "reject"
+        DROP = "drop"
+
     scope = models.CharField(
         max_length=64,
         blank=True,
         default="",
         help_text="Who asked for it (opaque here); never shared across scopes.",
+    )
+    unknown_images = models.CharField(
+        max_length=8,
+        choices=UnknownImages.choices,
+        default=UnknownImages.REJECT,
+        help_text="Detections of images outside the split: reject (every upload) or drop "
+        "(a stored file re-scored on a later revision; counted in the result).",
     )
     file_name = models.CharField(
         max_length=255,
@@ -122,8 +134,15 @@ class Evaluation(models.Model):
     class Meta:
         constraints = [
             models.UniqueConstraint(
-                fields=["split", "predictions", "protocol", "box_policy", "scope"],
-                name="one_evaluation_per_input_and_scope",
+                fields=[
+                    "split",
+                    "predictions",
+                    "protocol",
+                    "box_policy",
+                    "scope",
+                    "unknown_images",
+                ],
+                name="one_evaluation_per_input_policy_and_scope",
             )
         ]
         indexes = [models.Index(fields=["state", "queued_at"])]

@@ -67,7 +67,11 @@ def _prediction_boxes(evaluation, truth):
         "predictions file",
     ) as path:
         return _load_predictions(
-            path, truth, prediction_file.original_name, evaluation.box_policy
+            path,
+            truth,
+            prediction_file.original_name,
+            evaluation.box_policy,
+            unknown_images=evaluation.unknown_images,
         ).boxes
 
 

@@ -85,7 +85,13 @@ def _score(evaluation):
         "predictions file",
         evaluation.name,
     ) as path:
-        predictions = _load_predictions(path, truth, evaluation.name, evaluation.box_policy)
+        predictions = _load_predictions(
+            path,
+            truth,
+            evaluation.name,
+            evaluation.box_policy,
+            unknown_images=evaluation.unknown_images,
+        )
     jobs.progress(evaluation, 50)
     if sharding.wanted(protocol, truth, predictions):
         sharding.start(evaluation, truth, predictions)

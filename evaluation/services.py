@@ -308,16 +308,17 @@ def store_predictions(uploaded):
         return received.store()
 
 
-def _load_predictions(path, truth, name, boxes="keep"):
+def _load_predictions(path, truth, name, boxes="keep", *, unknown_images="reject"):
     """The engine's predictions of the file at ``path``, uploaded as ``name`` (the
     format follows the name) under the box policy ``boxes``; errors name the file as
-    uploaded."""
+    uploaded. ``unknown_images="drop"`` only for a re-scored file (``Evaluation``)."""
     try:
         return engine.load_predictions(
             path,
             truth,
             fmt=_format_of(name, path),
             boxes=boxes,
+            unknown_images=unknown_images,
             cache_dir=_cache_dir(),
             ids=ENGINE_IDS,
         )
@@ -328,10 +329,21 @@ def _load_predictions(path, truth, name, boxes="keep"):
 
 
 def request_evaluations(
-    split, prediction_file, protocols, *, box_policy="keep", scope="", file_name=""
+    split,
+    prediction_file,
+    protocols,
+    *,
+    box_policy="keep",
+    scope="",
+    file_name="",
+    unknown_images="reject",
 ):
     """One evaluation per protocol (existing ones of the same ``scope`` are reused),
     dispatched on commit.
+
+    ``unknown_images``: ``reject`` for every upload; ``drop`` only when a stored file is
+    re-scored on a later revision of its split (detections of removed images are
+    dropped and counted) — another evaluation than the same file under ``reject``.
 
     ``box_policy`` (``engine.BOX_POLICIES``) is part of what is evaluated: the same
     file under another policy is another evaluation. ``scope`` is the requester's opaque
@@ -342,6 +354,8 @@ def request_evaluations(
         raise engine.InputError(
             "box_policy", f"unknown box policy {box_policy!r}; use {', '.join(engine.BOX_POLICIES)}"
         )
+    if unknown_images not in Evaluation.UnknownImages.values:
+        raise engine.InputError("unknown_images", f"unknown image policy {unknown_images!r}")
     evaluations = []
     for protocol in protocols:
         resolve_protocol(protocol)
@@ -351,6 +365,7 @@ def request_evaluations(
             protocol=protocol,
             box_policy=box_policy,
             scope=scope,
+            unknown_images=unknown_images,
             defaults={"file_name": file_name},
         )
         if created:

@@ -37,6 +37,7 @@ FINISHED_COLUMNS = (
     "box_policy",
     "scope",
     "file_name",
+    "unknown_images",
 )
 FINISHED = ("done", "failed")
 

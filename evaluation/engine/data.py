@@ -140,6 +140,8 @@ class Predictions:
     boxes: np.ndarray  # (n, 4) float64 xywh
     score: np.ndarray  # float64
     dropped: int = 0  # records of classes outside the split, dropped by policy
+    dropped_images: int = 0  # records of images outside the split (unknown_images="drop")
+    unknown_images: str = "reject"  # the policy they were loaded under
     source: str = ""
     box_policy: str = "keep"
     box_counts: dict = field(default_factory=dict)  # out of frame, outside, clipped, zero area

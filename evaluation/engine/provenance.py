@@ -107,6 +107,11 @@ def counts(truth, predictions, records):
         "scored_predictions": records.n_detections,
         "clipped_predictions": predictions.clipped,
         "dropped_predictions": predictions.dropped,
+        **(
+            {"dropped_unknown_images": predictions.dropped_images}
+            if predictions.unknown_images == "drop"
+            else {}
+        ),
         "boxes": {
             "policy": predictions.box_policy,
             "truth": dict(truth.box_counts),

@@ -257,6 +257,8 @@ class PredictionCounts:
     dropped: int = 0
     box_policy: str = "keep"
     box_counts: dict = dataclasses.field(default_factory=dict)
+    dropped_images: int = 0
+    unknown_images: str = "reject"
 
     @classmethod
     def of(cls, predictions):
@@ -265,6 +267,8 @@ class PredictionCounts:
             predictions.dropped,
             predictions.box_policy,
             {k: int(v) for k, v in predictions.box_counts.items()},
+            predictions.dropped_images,
+            predictions.unknown_images,
         )
 
     @property

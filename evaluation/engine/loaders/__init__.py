@@ -38,6 +38,10 @@ _INT64 = (-(2**63), 2**63 - 1)
 #: Bumped when the parsed columns change shape or meaning: old cache entries are unused.
 CACHE_SCHEMA = 5
 UNKNOWN_CLASS_POLICIES = ("reject", "drop")
+#: Detections of images the split does not hold: refused (default; pycocotools'
+#: ``loadRes`` asserts every result image is in the set) or, for re-scoring stored
+#: files on a relabelled split only, dropped and counted (``Predictions.dropped_images``).
+UNKNOWN_IMAGE_POLICIES = ("reject", "drop")
 
 
 FORMATS = ("json", "csv", *label_folders.FORMATS)
@@ -368,7 +372,15 @@ def _take(values, mask):
 
 
 def load_predictions(
-    path, truth, *, fmt=None, boxes=None, unknown_classes="reject", cache_dir=None, ids="any"
+    path,
+    truth,
+    *,
+    fmt=None,
+    boxes=None,
+    unknown_classes="reject",
+    unknown_images="reject",
+    cache_dir=None,
+    ids="any",
 ):
     """Load a detector's predictions for ``truth``.
 
@@ -378,6 +390,11 @@ def load_predictions(
         was loaded under (``"keep"`` by default): see ``checks.apply_box_policy``.
     unknown_classes : ``"reject"`` (default) or ``"drop"`` (pycocotools silently drops
         detections of categories the split does not list; counted in ``dropped``)
+    unknown_images : ``"reject"`` (default: every detection's image must be in the
+        split, as pycocotools' ``loadRes`` asserts) or ``"drop"``: detections of images
+        the split does not hold are left out and counted in ``dropped_images`` — for
+        scoring a stored file against a later revision of its split, where images were
+        removed; never the default for an upload.
     ids : ``"any"`` or ``"int64"``, as for ``load_truth``
     """
     _exists(path)
@@ -395,6 +412,8 @@ def load_predictions(
             )
     if unknown_classes not in UNKNOWN_CLASS_POLICIES:
         raise InputError(path, f"unknown class policy {unknown_classes!r}; use reject or drop")
+    if unknown_images not in UNKNOWN_IMAGE_POLICIES:
+        raise InputError(path, f"unknown image policy {unknown_images!r}; use reject or drop")
     fmt = _format(path, fmt)
     key = {
         "kind": "predictions",
@@ -405,17 +424,25 @@ def load_predictions(
         "ids": ids,
         "schema": CACHE_SCHEMA,
     }
+    if unknown_images != "reject":  # the default keeps the keys of existing entries
+        key["unknown_images"] = unknown_images
     return cached(
         cache_dir,
         [path],
         key,
-        lambda: _read_predictions(path, truth, fmt, boxes, unknown_classes, ids),
+        lambda: _read_predictions(
+            path, truth, fmt, boxes, unknown_classes, ids, unknown_images=unknown_images
+        ),
         "predictions",
     )
 
 
-def _read_predictions(path, truth, fmt, policy, unknown_classes, ids="any"):
+def _read_predictions(
+    path, truth, fmt, policy, unknown_classes, ids="any", *, unknown_images="reject"
+):
     known_images = truth.image_ids
+    drop_images = unknown_images == "drop"
+    dropped_images = 0
     if fmt == "json":
         image_ids, class_keys, boxes, score = coco_json.read_detections(path, ids == "any")
         locate = lambda i: f"record {i}"  # noqa: E731
@@ -429,8 +456,8 @@ def _read_predictions(path, truth, fmt, policy, unknown_classes, ids="any"):
         if known_classes.dtype.kind != "i" or class_keys.dtype == object:
             class_keys, known_classes = class_keys.astype(str), known_classes.astype(str)
     elif fmt in label_folders.FORMATS:
-        ids, labels, boxes, score, locate = label_folders.read_detections(
-            path, fmt, truth, _ids_like
+        ids, labels, boxes, score, locate, dropped_images = label_folders.read_detections(
+            path, fmt, truth, _ids_like, drop_unknown_images=drop_images
         )
         fields = {"image": "file name", "class": "type" if fmt == "kitti" else "class"}
         fields["bbox"] = "x1..y2" if fmt == "kitti" else "cx cy w h"
@@ -449,7 +476,19 @@ def _read_predictions(path, truth, fmt, policy, unknown_classes, ids="any"):
         shown = np.array(ids, dtype=object).astype(str) if ids else np.zeros(0, str)
         image_ids = _ids_like(ids, truth.image_ids)
     image, found = checks.resolve(path, image_ids, known_images, locate, "", "")
-    checks.require_found(path, found, shown, locate, fields["image"], "image")
+    if drop_images and not found.all():
+        dropped_images += int((~found).sum())
+        rows = np.flatnonzero(found)
+        image, class_keys, boxes, score = (
+            image[found],
+            class_keys[found],
+            boxes[found],
+            score[found],
+        )
+        locate_read = locate
+        locate = lambda i: locate_read(int(rows[i]))  # noqa: E731
+    else:
+        checks.require_found(path, found, shown, locate, fields["image"], "image")
     cls, found = checks.resolve(path, class_keys, known_classes, locate, "", "")
     dropped = 0
     if not found.all():
@@ -491,6 +530,8 @@ def _read_predictions(path, truth, fmt, policy, unknown_classes, ids="any"):
         boxes=boxes,
         score=score,
         dropped=dropped,
+        dropped_images=dropped_images,
+        unknown_images=unknown_images,
         source=str(path),
         box_policy=policy,
         box_counts={**box_counts, "non_finite_score": int((~np.isfinite(score)).sum())},

@@ -280,9 +280,12 @@ def _columns(path, fmt, rows, regions, class_names, table):
     }
 
 
-def read_detections(path, fmt, truth, to_ids):
+def read_detections(path, fmt, truth, to_ids, *, drop_unknown_images=False):
     """Detections of a KITTI, YOLO or VOC-results folder: ``(image ids, class names,
-    xywh boxes, scores, locate)``; ``to_ids`` types image ids like the split's."""
+    xywh boxes, scores, locate, dropped)``; ``to_ids`` types image ids like the split's.
+    YOLO's normalised boxes need their image's size, so with ``drop_unknown_images``
+    the records of images outside the split are dropped here (``dropped`` counts them);
+    KITTI's and VOC results' are left to the caller."""
     with Members(path) as members:
         fmt = fmt or detect(path, members)
         if fmt == "voc":
@@ -294,7 +297,7 @@ def read_detections(path, fmt, truth, to_ids):
         if fmt == "voc_det":
             return _voc_results(path, members, truth)
         names = label_files(members, fmt)
-        records = []
+        records, dropped = [], 0
         if fmt == "kitti":
             for name in names:
                 kitti.parse_detections(path, name, members.read(name), records)
@@ -304,6 +307,10 @@ def read_detections(path, fmt, truth, to_ids):
             class_names = yolo.class_names(path, members) or list(truth.classes)
             for name in names:
                 yolo.parse(path, name, members.read(name), len(class_names), True, records)
+            if drop_unknown_images:
+                known = _in_split(records, truth, to_ids)
+                dropped = len(records) - int(known.sum())
+                records = [r for r, keep in zip(records, known) if keep]
             labels = [class_names[r[2]] for r in records]
             boxes = _yolo_pixels(path, records, truth, to_ids)
     where = [f"{r[0]} line {r[1]}" for r in records]
@@ -313,6 +320,7 @@ def read_detections(path, fmt, truth, to_ids):
         np.array(boxes, np.float64).reshape(-1, 4),
         np.array([r[4] for r in records], np.float64),
         lambda i: where[i],
+        dropped,
     )
 
 
@@ -340,7 +348,16 @@ def _voc_results(path, members, truth):
         np.array([r[3] for r in records], np.float64).reshape(-1, 4),
         np.array([r[4] for r in records], np.float64),
         lambda i: where[i],
+        0,
     )
+
+
+def _in_split(records, truth, to_ids):
+    """Mask of the records whose image is one of the split's."""
+    if not records:
+        return np.zeros(0, bool)
+    ids = np.asarray(to_ids([stem(r[0]) for r in records], truth.image_ids))
+    return np.isin(ids, truth.image_ids)
 
 
 def _case_insensitive(classes, labels):
