@@ -88,8 +88,23 @@ class ModelVersionAdmin(admin.ModelAdmin):
 
 @admin.register(PredictionSet)
 class PredictionSetAdmin(admin.ModelAdmin):
-    list_display = ["version", "split", "predictions", "uploaded_by", "uploaded_at"]
+    """Created only by an upload (``services._record_set``) or a re-score
+    (``rescore.rescore``), never here."""
+
+    list_display = [
+        "version",
+        "split",
+        "predictions",
+        "uploaded_by",
+        "uploaded_at",
+        "rescored_from",
+        "rescored_by",
+        "rescored_at",
+    ]
     list_select_related = ["version__detector", "split", "predictions", "uploaded_by"]
+
+    def has_add_permission(self, request):
+        return False
 
     def has_change_permission(self, request, obj=None):
         return False

@@ -124,6 +124,26 @@ class PredictionSet(models.Model):
         blank=True,
         help_text="The evaluations this upload asked for.",
     )
+    # A re-scored set (``releases.rescore``): the stored file of ``rescored_from`` (a
+    # set on an earlier revision of the split) scored on this one; ``uploaded_by`` and
+    # ``uploaded_at`` stay the original upload's.
+    rescored_from = models.ForeignKey(
+        "self", null=True, blank=True, on_delete=models.PROTECT, related_name="rescored_as"
+    )
+    rescored_by = models.ForeignKey(
+        settings.AUTH_USER_MODEL, null=True, blank=True, on_delete=models.PROTECT, related_name="+"
+    )
+    rescored_at = models.DateTimeField(null=True, blank=True)
+
+    @property
+    def rescored(self):
+        return self.rescored_from_id is not None
+
+    @property
+    def unknown_images(self):
+        """The image policy of this set's evaluations: a re-scored file drops the
+        detections of images its new revision no longer holds; an upload never does."""
+        return "drop" if self.rescored else "reject"
 
     class Meta:
         constraints = [
@@ -150,6 +170,7 @@ class AuditEvent(models.Model):
         SPLIT_FROZEN = "split frozen"
         PREDICTIONS_UPLOADED = "predictions uploaded"
         PREDICTIONS_REPLACED = "predictions replaced"
+        PREDICTIONS_RESCORED = "predictions re-scored"
         EVALUATION_FINISHED = "evaluation finished"
         EVALUATION_FAILED = "evaluation failed"
         CRITERIA_CHANGED = "criteria changed"
@@ -301,6 +322,10 @@ class Judgement(models.Model):
     evaluations = models.JSONField(help_text="{evaluation id: state} it saw.")
     required_splits = models.JSONField(
         default=list, help_text="Ids of the splits the suite required then."
+    )
+    baseline_evaluations = models.JSONField(
+        default=dict,
+        help_text="{evaluation id: state} of the baseline's sets it compared with.",
     )
     verdict = models.CharField(max_length=12, choices=Verdict.choices)
     reasons = models.JSONField(default=list)

@@ -219,6 +219,7 @@ def request_for_set(prediction_set, protocols=None):
         box_policy=suite.box_policy,
         scope=evaluation_scope(prediction_set.version.detector.team_id),
         file_name=prediction_set.file_name,
+        unknown_images=prediction_set.unknown_images,
     )
     prediction_set.evaluations.add(*evaluations)
     return evaluations

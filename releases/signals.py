@@ -51,17 +51,23 @@ def content_mismatch(sender, subject, error, **kwargs):
 
 
 def judge_when_complete(sender, evaluation, **kwargs):
-    """Once every evaluation of a version has finished, judge it (on commit)."""
+    """Once every evaluation of a version has finished, judge it (on commit). A decided
+    version is never judged again, but its new evaluations (a baseline re-scored on a
+    new revision) change what the detector's candidates are compared with: they are
+    judged again."""
     from .models import PredictionSet
-    from .services import judge_if_complete
+    from .services import judge_if_complete, rejudge_later
 
-    versions = (
+    rows = (
         PredictionSet.objects.current()
         .filter(evaluations=evaluation.pk)
-        .values_list("version_id", flat=True)
+        .values_list("version_id", "version__detector_id", "version__sign_off")
     )
-    for version_id in set(versions):
-        judge_if_complete(version_id)
+    for version_id, detector_id, decision in set(rows):
+        if decision is None:
+            judge_if_complete(version_id)
+        else:
+            rejudge_later(detector_id)
 
 
 def _rejudge_followers(split):

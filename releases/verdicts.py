@@ -73,6 +73,9 @@ class Inputs:
     evaluations: list
     required: list
     unrequested: list  # (prediction set, protocol) with no evaluation yet
+    # The baseline's evaluations under the suite's protocols: a re-scored baseline (a
+    # new revision) changes what a candidate is compared with, so it is judged again.
+    baseline_evaluations: list = field(default_factory=list)
 
     @property
     def key(self):
@@ -82,6 +85,7 @@ class Inputs:
             getattr(self.baseline, "pk", None),
             evaluation_states(self.evaluations),
             [s.pk for s in self.required],
+            evaluation_states(self.baseline_evaluations),
         )
 
     @property
@@ -111,7 +115,7 @@ def inputs_for(versions):
     """{version id: Inputs} of many versions (any detectors) in at most seven queries,
     whatever their number: the one reading of a judgement's inputs (``inputs_of`` is this for one
     version), so badges, lists, the sweep and the judge cannot disagree."""
-    from evaluation.models import BenchmarkSplit, Evaluation
+    from evaluation.models import BenchmarkSplit
 
     from .models import BenchmarkSuite, Detector, ReleaseCriteria
 
@@ -131,24 +135,28 @@ def inputs_for(versions):
         detector_id__in=detector_ids, sign_off__decision="approved"
     ).order_by("-sign_off__decided_at", "-sign_off__id"):
         approved.setdefault(v.detector_id, []).append(v)
+    baseline_of = {
+        v.pk: next((b for b in approved.get(v.detector_id, []) if b.pk != v.pk), None)
+        for v in versions
+    }
     sets_of = {}
+    wanted = {v.pk for v in versions} | {b.pk for b in baseline_of.values() if b is not None}
     for ps in (
-        PredictionSet.objects.current()
-        .filter(version_id__in={v.pk for v in versions})
-        .select_related("predictions")
+        PredictionSet.objects.current().filter(version_id__in=wanted).select_related("predictions")
     ):
         sets_of.setdefault(ps.version_id, []).append(ps)
     protocols_of = {
         d: (suite_of[d].protocols if d in suite_of else [detectors[d].primary_protocol])
         for d in detector_ids
     }
+    # Each set's own evaluations (the ones it asked for), never another team's or
+    # another image policy's evaluation of the same bytes.
     all_sets = [ps for sets in sets_of.values() for ps in sets]
-    found = list(
-        Evaluation.objects.filter(
-            predictions_id__in={ps.predictions_id for ps in all_sets},
-            split_id__in={ps.split_id for ps in all_sets},
-            protocol__in={p for ps in protocols_of.values() for p in ps},
-        )
+    links = (
+        PredictionSet.evaluations.through.objects.filter(
+            predictionset_id__in=[ps.pk for ps in all_sets],
+            evaluation__protocol__in={p for ps in protocols_of.values() for p in ps},
+        ).select_related("evaluation")
         if all_sets
         else []
     )
@@ -162,26 +170,34 @@ def inputs_for(versions):
     files = {ps.predictions_id: ps.predictions for ps in all_sets}
     for ps in all_sets:
         ps.split = splits_by_id[ps.split_id]
-    by_pair = {}
-    for e in found:
+    by_set = {}
+    for link in links:
+        e = link.evaluation
         e.split, e.predictions = splits_by_id[e.split_id], files[e.predictions_id]
-        by_pair.setdefault((e.predictions_id, e.split_id), []).append(e)
+        by_set.setdefault(link.predictionset_id, []).append(e)
     split_rows = {}
     for split in splits_by_id.values():
         if split.name in names:
             split_rows.setdefault(split.name, {})[split.revision] = split
+
+    def evaluations_of(version_id, suite, protocols):
+        found = [
+            e
+            for ps in sets_of.get(version_id, [])
+            for e in by_set.get(ps.pk, [])
+            if e.protocol in protocols and (suite is None or e.box_policy == suite.box_policy)
+        ]
+        return sorted(
+            found, key=lambda e: (e.split.name, e.split.revision, protocols.index(e.protocol), e.pk)
+        )
+
     out = {}
     for version in versions:
         detector_id = version.detector_id
         suite = suite_of.get(detector_id)
         protocols = protocols_of[detector_id]
         sets = sets_of.get(version.pk, [])
-        evaluations = [
-            e
-            for ps in sets
-            for e in by_pair.get((ps.predictions_id, ps.split_id), [])
-            if e.protocol in protocols and (suite is None or e.box_policy == suite.box_policy)
-        ]
+        evaluations = evaluations_of(version.pk, suite, protocols)
         have = {(e.predictions_id, e.split_id, e.protocol) for e in evaluations}
         unrequested = [
             (ps, p)
@@ -189,10 +205,7 @@ def inputs_for(versions):
             for p in protocols
             if (ps.predictions_id, ps.split_id, p) not in have
         ]
-        evaluations.sort(
-            key=lambda e: (e.split.name, e.split.revision, protocols.index(e.protocol))
-        )
-        baseline = next((b for b in approved.get(detector_id, []) if b.pk != version.pk), None)
+        baseline = baseline_of[version.pk]
         out[version.pk] = Inputs(
             criteria=criteria_of.get(detector_id),
             suite=suite,
@@ -201,6 +214,9 @@ def inputs_for(versions):
             evaluations=evaluations,
             required=suites.resolve_from(suite.splits, split_rows) if suite else [],
             unrequested=unrequested,
+            baseline_evaluations=(
+                evaluations_of(baseline.pk, suite, protocols) if baseline is not None else []
+            ),
         )
     return out
 
@@ -228,6 +244,7 @@ def _matches(judgement, inputs):
             judgement.baseline_id,
             judgement.evaluations,
             judgement.required_splits,
+            judgement.baseline_evaluations,
         )
         == inputs.key
     )
@@ -405,6 +422,7 @@ def _record(version, inputs, verdict, reasons, outcomes):
         baseline=inputs.baseline,
         evaluations=evaluation_states(inputs.evaluations),
         required_splits=[s.pk for s in inputs.required],
+        baseline_evaluations=evaluation_states(inputs.baseline_evaluations),
         verdict=verdict,
         reasons=reasons,
         judged_at=now,

@@ -6,6 +6,7 @@ from .detector import detector, new_detector
 from .images import confusion, image_detail, image_file, image_list
 from .overview import overview
 from .records import records_download
+from .rescore import predictions_download, rescore_page
 from .specs import release_criteria, suite, webhook
 from .splits import load_split, split, split_images_upload, split_list
 from .tokens import api_tokens
@@ -27,8 +28,10 @@ __all__ = [
     "load_split",
     "new_detector",
     "overview",
+    "predictions_download",
     "records_download",
     "release_criteria",
+    "rescore_page",
     "sign_off",
     "split",
     "split_images_upload",

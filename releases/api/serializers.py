@@ -140,6 +140,7 @@ class EvaluationSerializer(serializers.ModelSerializer):
             "error_detail",
             "engine_version",
             "predictions_sha256",
+            "unknown_images",
             "queued_at",
             "started_at",
             "finished_at",
@@ -158,6 +159,12 @@ class PredictionSetSerializer(serializers.ModelSerializer):
     sha256 = serializers.CharField(source="predictions.sha256")
     size = serializers.IntegerField(source="predictions.size")
     uploaded_by = serializers.CharField(source="uploaded_by.username")
+    rescored_from = serializers.IntegerField(
+        source="rescored_from_id",
+        allow_null=True,
+        help_text="The set on an earlier revision whose stored file this one re-scored.",
+    )
+    rescored_by = serializers.CharField(source="rescored_by.username", allow_null=True)
 
     class Meta:
         model = PredictionSet
@@ -175,6 +182,9 @@ class PredictionSetSerializer(serializers.ModelSerializer):
             "uploaded_at",
             "replaced_at",
             "replaced_by",
+            "rescored_from",
+            "rescored_by",
+            "rescored_at",
         ]
 
 
@@ -412,4 +422,19 @@ class SuiteInput(serializers.Serializer):
     score_threshold = serializers.FloatField(required=False, min_value=0, max_value=1)
     class_thresholds = serializers.DictField(
         child=serializers.FloatField(min_value=0, max_value=1), required=False
+    )
+
+
+class RescoreInput(serializers.Serializer):
+    split = serializers.IntegerField(
+        min_value=1,
+        max_value=2**63 - 1,
+        help_text="The revision (a split id) to re-score on; its name's earlier revisions "
+        "are the sources.",
+    )
+    versions = serializers.ListField(
+        child=serializers.IntegerField(min_value=1, max_value=2**63 - 1),
+        required=False,
+        allow_empty=False,
+        help_text="Version ids (default: every version of the detector).",
     )

@@ -10,6 +10,7 @@ v1 = [
     path("detectors/<int:pk>/history/", views.DetectorHistory.as_view(), name="history"),
     path("detectors/<int:pk>/criteria/", views.DetectorCriteria.as_view(), name="criteria"),
     path("detectors/<int:pk>/suite/", views.DetectorSuite.as_view(), name="suite"),
+    path("detectors/<int:pk>/rescore/", views.DetectorRescore.as_view(), name="rescore"),
     path("versions/", views.VersionList.as_view(), name="versions"),
     path("versions/<int:pk>/", views.VersionDetail.as_view(), name="version"),
     path("versions/<int:pk>/verdict/", views.VersionVerdict.as_view(), name="verdict"),
@@ -36,6 +37,11 @@ v1 = [
         "evaluations/<int:pk>/records.jsonl",
         views.EvaluationRecordsJsonl.as_view(),
         name="records-jsonl",
+    ),
+    path(
+        "evaluations/<int:pk>/predictions",
+        views.EvaluationPredictions.as_view(),
+        name="predictions-file",
     ),
     path("versions/<int:pk>/images/", views.VersionImages.as_view(), name="images"),
     path(

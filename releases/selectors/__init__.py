@@ -55,6 +55,11 @@ from .overview import (  # noqa: F401
     overview_for,
     split_usage,
 )
+from .rescore import (  # noqa: F401
+    can_rescore,
+    rescore_choices,
+    rescored_sets,
+)
 from .scores import (  # noqa: F401
     METRICS,
     _class_rows,

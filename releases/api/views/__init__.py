@@ -21,6 +21,7 @@ from .detectors import (
     DetectorSuite,
     Me,
 )
+from .rescore import DetectorRescore, EvaluationPredictions
 from .results import (
     AuditEventDetail,
     AuditEventList,
@@ -51,10 +52,12 @@ __all__ = [
     "DetectorDetail",
     "DetectorHistory",
     "DetectorList",
+    "DetectorRescore",
     "DetectorSuite",
     "Endpoint",
     "EvaluationDetail",
     "EvaluationList",
+    "EvaluationPredictions",
     "EvaluationRecordsCsv",
     "EvaluationRecordsJsonl",
     "EvaluationResult",

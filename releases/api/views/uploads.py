@@ -75,7 +75,7 @@ class PredictionSetMixin(Endpoint):
     def get_queryset(self):
         return PredictionSet.objects.filter(
             version__detector__in=selectors.visible_detectors(self.request.user)
-        ).select_related("version", "split", "predictions", "uploaded_by")
+        ).select_related("version", "split", "predictions", "uploaded_by", "rescored_by")
 
 
 @extend_schema_view(get=extend_schema(parameters=[DETECTOR, VERSION, SPLIT, SINCE, UNTIL]))
