@@ -314,7 +314,17 @@ def measure(runs, args, env, gt_path, dt_path):
         workers, broker = brokers[name]
         results[name] = run(name, workers, broker, env, args.shard_images, dt_path)
         r = results[name]
-        print(f"{name}: {r['wall']:.1f} s, peaks {[round(p) for p in r['peaks']]} MB", flush=True)
+        detail = (
+            f"; {len(r['shards'])} shards, mean {np.mean(r['shards']):.2f} s, read + pieces "
+            f"{r['prepare']:.1f} s, merge + score + store {r['merge']:.1f} s"
+            if r["shards"]
+            else ""
+        )
+        print(
+            f"{name}: {r['wall']:.1f} s, peaks {[round(p) for p in r['peaks']]} MB, "
+            f"result {r['result_sha256'][:12]}{detail}",
+            flush=True,
+        )
 
     print(f"\nload average during the runs: {os.getloadavg()}, cores: {os.cpu_count()}")
     table(results)
