@@ -10,16 +10,21 @@ each in a fresh process, reading that process's peak resident memory (``ru_maxrs
   object gets the bounded syntax check (``loaders/json_syntax.py``) before it is ever
   memory-mapped. Both peaks should stay flat as the file grows.
 * ``late type error``: a predictions file that ends like an array, with a string score
-  in its last record. Its columns are built slice by slice before the error (about
-  56 bytes per detection in int64/float64 columns, against ~80 bytes of text).
+  in its last record. Up to ``coco_json.VALIDATE_FIRST_BYTES`` (128 MB) its columns
+  are built slice by slice before the error (about 56 bytes per detection against
+  ~80 bytes of text); a larger file is validated first, keeping no columns: flat.
+* ``valid`` (predictions): loaded; past 128 MB the validation pass counts the records
+  and the columns are allocated once and filled (about one copy of them).
 * ``late syntax error``: ground truth with a syntax error in its last record, found by
   the same bounded check: flat.
 * ``late type error`` (ground truth): valid JSON with a string id in its last record.
   The syntax check passes each slice of the record arrays on to a typed decode into
   columns (about 100 bytes per annotation, against ~110 bytes of text); the file is
   never mapped or decoded whole, so the columns plus one slice count.
-* ``valid`` (ground truth): the same file without the error, loaded: its columns,
-  about twice while the slices' columns are joined.
+* ``valid`` (ground truth): the same file without the error, loaded. Past 32 MB the
+  syntax-only scan counts each array's records, so the columns are allocated once at
+  full length and each slice is written in place: about one copy of the columns
+  (smaller files join their slices' columns: briefly two).
 
 Fails (exit 1) if a truncated file's peak grows by more than 64 MB from the smallest
 to the largest size.
@@ -62,6 +67,8 @@ CASES = {
     ("predictions", "truncated"): "",
     ("predictions", "late type error"): '{"image_id": 1, "category_id": 1, '
     '"bbox": [1, 2, 3, 4], "score": "high"}]\n',
+    ("predictions", "valid"): '{"image_id": 1, "category_id": 1, '
+    '"bbox": [1, 2, 3, 4], "score": 0.5}]\n',
     ("truth", "truncated"): "",
     ("truth", "late syntax error"): '{"id": 0, "image_id": 1 "category_id": 1}]}\n',
     ("truth", "late type error"): '{"id": "x", "image_id": 1, "category_id": 1, '

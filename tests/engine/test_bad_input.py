@@ -277,6 +277,31 @@ def test_chunked_decoding_equals_whole_file(files, monkeypatch):
     sliced = load_predictions(path, truth)
     assert np.array_equal(whole.boxes, sliced.boxes) and np.array_equal(whole.score, sliced.score)
     assert len(sliced) == 500
+    # Past VALIDATE_FIRST_BYTES: a validation pass counts the records, the columns are
+    # allocated once and filled (also with ids beyond 64 bits in a later slice).
+    monkeypatch.setattr(coco_json, "VALIDATE_FIRST_BYTES", 0)
+    filled = load_predictions(path, truth)
+    assert np.array_equal(whole.boxes, filled.boxes) and np.array_equal(whole.score, filled.score)
+    assert np.array_equal(whole.image, filled.image) and np.array_equal(whole.cls, filled.cls)
+    big = [DET] * 40 + [{**DET, "image_id": 2**64}]
+    with pytest.raises(
+        InputError, match=r"record 40: field 'image_id': image 18446744073709551616"
+    ):
+        load_predictions(files.write("big.json", big), truth)
+
+
+def test_a_late_type_error_in_a_large_predictions_file_builds_no_columns(files, monkeypatch):
+    """Past VALIDATE_FIRST_BYTES the file is validated before any column is built, so
+    a type error in its last record is found at flat memory."""
+    monkeypatch.setattr(coco_json, "VALIDATE_FIRST_BYTES", 0)
+    monkeypatch.setattr(coco_json, "CHUNK_BYTES", 256)
+    built = []
+    columns = coco_json._columns
+    monkeypatch.setattr(coco_json, "_columns", lambda *a: built.append(1) or columns(*a))
+    path = files.write("predictions.json", [DET] * 300 + [{**DET, "score": "high"}])
+    with pytest.raises(InputError, match=r"record 300: field 'score'"):
+        load_predictions(path, _truth(files))
+    assert built == []
 
 
 def test_error_in_a_later_slice_names_the_absolute_record(files, monkeypatch):

@@ -128,10 +128,17 @@ def _document(rng):
     return text.replace('"@@BAD@@"', rng.choice(BAD_VALUES))
 
 
+@pytest.mark.parametrize("scan_first", [False, True])
 @pytest.mark.parametrize("chunk", [16, 64])
 @pytest.mark.parametrize("seed", range(4))
-def test_sliced_decoding_agrees_with_a_whole_document_decode(files, monkeypatch, seed, chunk):
+def test_sliced_decoding_agrees_with_a_whole_document_decode(
+    files, monkeypatch, seed, chunk, scan_first
+):
+    """``scan_first``: every file gets the syntax-only scan first, whose record counts
+    let the columns be allocated at full length and filled in place."""
     monkeypatch.setattr(json_syntax, "CHUNK_BYTES", chunk)
+    if scan_first:
+        monkeypatch.setattr(coco_json, "SYNTAX_FIRST_BYTES", 0)
     rng = random.Random(seed)
     outcomes = set()
     for n in range(150):

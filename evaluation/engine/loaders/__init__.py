@@ -219,10 +219,18 @@ def _read_truth(path, images, fmt, classes, policy, ids="any"):
 
     boxes = cols["boxes"]
     checks.check_boxes(path, boxes, box_locate, box_fields["bbox"], policy)
-    width = cols["image_width"][image_order][box_image]
-    height = cols["image_height"][image_order][box_image]
+    frame = (cols["image_width"][image_order], cols["image_height"][image_order])
     if policy == "reject":
-        checks.check_inside(path, boxes, width, height, box_locate, box_fields["bbox"])
+        for at in range(0, len(boxes), checks.BLOCK_ROWS):  # per block: no full-length
+            rows = slice(at, at + checks.BLOCK_ROWS)  # per-box width/height copies
+            checks.check_inside(
+                path,
+                boxes[rows],
+                frame[0][box_image[rows]],
+                frame[1][box_image[rows]],
+                lambda i, at=at: box_locate(at + i),
+                box_fields["bbox"],
+            )
     area = cols["box_area"]
     given = cols.get("box_area_given")
     given = ~np.isnan(area) if given is None else given
@@ -266,7 +274,7 @@ def _read_truth(path, images, fmt, classes, policy, ids="any"):
         source=str(path),
         box_policy=policy,
         box_counts={
-            **checks.truth_box_counts(boxes, width, height),
+            **checks.truth_box_counts(boxes, *frame, box_image),
             "area_from_file": int(given.sum()),
             "negative_area_from_file": negative_area,
             "non_finite_area_from_file": int((given & ~np.isfinite(area)).sum()),

@@ -23,6 +23,10 @@ MAX_SLICE_BYTES = 64 << 20
 #: builds columns (about 1 s more per 100 MB), so a syntax error late in it is found at
 #: flat memory; below it, the columns built up to such an error are small anyway.
 SYNTAX_FIRST_BYTES = 32 << 20
+#: A detections file larger than this gets a validation pass that keeps no columns
+#: before the one that builds them, so a type error late in it is rejected at flat
+#: memory; below it, the columns built up to such an error stay under ~0.7x this size.
+VALIDATE_FIRST_BYTES = 128 << 20
 
 
 class _Image(msgspec.Struct, gc=False):
@@ -149,10 +153,12 @@ def read_truth(path, wide=False):
             raise InputError(path, "the file is empty")
         if head.startswith(b"["):
             raise _array_given(path)
+        totals = None
         if size - skip > SYNTAX_FIRST_BYTES or not _ends_like_an_object(f, size):
-            # A syntax error or truncation is found without building any column.
-            json_syntax.check(path, f, skip)
-        records = _Records(path, wide)
+            # A syntax error or truncation is found without building any column; the
+            # records it counts let the columns be allocated once, at full length.
+            totals = json_syntax.check(path, f, skip).totals
+        records = _Records(path, wide, totals)
         checker = json_syntax.check(path, f, skip, sink=records)
         return records.columns(checker)
 
@@ -206,8 +212,10 @@ class _Records:
     the outer object before its array) and raised by ``columns`` once the whole
     syntax is known to be valid, so a syntax error anywhere still comes first."""
 
-    def __init__(self, path, wide=False):
+    def __init__(self, path, wide=False, totals=None):
         self.path, self.wide = path, wide
+        self.totals = totals or {}  # records per array, from a syntax-only scan
+        self.filled = dict.fromkeys(_RECORDS)  # preallocated array columns per key
         self.parts = {key: [] for key in _RECORDS}
         self.count = dict.fromkeys(_RECORDS, 0)
         self.error = None  # (exception, absolute offset of its slice, outline)
@@ -217,7 +225,7 @@ class _Records:
         if self.error is not None or key not in _RECORDS:
             return False
         if first:  # a repeated key replaces the earlier array, as in a whole decode
-            self.parts[key], self.count[key] = [], 0
+            self.parts[key], self.count[key], self.filled[key] = [], 0, None
             for field_key in [k for k in self.out_of_range if k[0] == key]:
                 del self.out_of_range[field_key]
         try:
@@ -226,9 +234,34 @@ class _Records:
             self.error = (e, key, self.count[key], piece_at, prefix())
             self.parts = None  # no more columns: the file is rejected
             return False
-        self.parts[key].append(getattr(self, key)(decoded, key, self.count[key]))
+        self._keep(key, getattr(self, key)(decoded, key, self.count[key]), len(decoded))
         self.count[key] += len(decoded)
         return True
+
+    def _keep(self, key, part, n):
+        """Keep a slice's columns: its arrays written in place into columns of the
+        array's full length when a syntax-only scan counted its records (so a valid
+        split peaks at about one copy of its columns, not two while joining), else
+        kept as a part to join at the end. A slice that does not fit (other counts,
+        ids beyond 64 bits) turns the key back to parts."""
+        start, total = self.count[key], self.totals.get(key)
+        arrays = [name for name, value in part.items() if isinstance(value, np.ndarray)]
+        if start == 0 and total is not None and self.filled[key] is None:
+            self.filled[key] = {
+                name: np.empty((total, *part[name].shape[1:]), part[name].dtype) for name in arrays
+            }
+        filled = self.filled[key]
+        if filled is not None:
+            if start + n <= total and all(part[a].dtype == filled[a].dtype for a in arrays):
+                for name in arrays:
+                    filled[name][start : start + n] = part.pop(name)
+                part["_range"] = (start, start + n)
+            else:
+                for earlier in self.parts[key]:
+                    a, b = earlier.pop("_range")
+                    earlier.update({name: filled[name][a:b] for name in arrays})
+                self.filled[key] = None
+        self.parts[key].append(part)
 
     def ids(self, values, key, field, base):
         try:
@@ -299,7 +332,11 @@ class _Records:
         }
         cols = {}
         for key, parts in self.parts.items():
+            filled = self.filled[key]
             for name, column in empty[key].items():
+                if filled is not None and name in filled:
+                    cols[name] = filled[name][: self.count[key]]
+                    continue
                 pieces = [part.pop(name) for part in parts]  # freed column by column
                 if isinstance(column, list):
                     cols[name] = [item for piece in pieces for item in piece]
@@ -527,14 +564,34 @@ def read_detections(path, wide=False):
     (ids beyond signed 64 bits: see ``int_column``)."""
     with open(path, "rb") as f:
         skip = text_start(path, f.read(4))
-        if not _ends_like_an_array(f):
-            # Malformed or truncated: find the first error without keeping any columns,
-            # so rejecting a huge broken file needs no memory in proportion to it.
+        if f.seek(0, 2) - skip > VALIDATE_FIRST_BYTES or not _ends_like_an_array(f):
+            # Large, malformed or truncated: find the first error without keeping any
+            # columns, so rejecting a huge broken file needs no memory in proportion
+            # to it; the records counted let the columns be allocated once.
             f.seek(skip)
-            for _ in _stream(path, f, skip, build=False):
-                pass
+            total = sum(_stream(path, f, skip, build=False))
+            f.seek(skip)
+            return _filled(_stream(path, f, skip, wide=wide), total)
         f.seek(skip)
         parts = list(_stream(path, f, skip, wide=wide))
     if not parts:
         return (np.zeros(0, np.int64), np.zeros(0, np.int64), np.zeros((0, 4)), np.zeros(0))
     return tuple(np.concatenate(column) for column in zip(*parts))
+
+
+def _filled(parts, total):
+    """The columns of ``parts`` written into arrays of their known full length (no
+    second copy while joining); an id column turns to objects for ids beyond int64."""
+    columns, at = None, 0
+    for part in parts:
+        if columns is None:
+            columns = [np.empty((total, *p.shape[1:]), p.dtype) for p in part]
+        n = len(part[0])
+        for i, values in enumerate(part):
+            if values.dtype != columns[i].dtype:
+                columns[i] = columns[i].astype(object)
+            columns[i][at : at + n] = values
+        at += n
+    if columns is None:
+        return (np.zeros(0, np.int64), np.zeros(0, np.int64), np.zeros((0, 4)), np.zeros(0))
+    return tuple(c[:at] for c in columns)

@@ -115,6 +115,8 @@ class _Checker:
         self.piece_at = 0  # absolute offset of piece[0]
         self.closer = 0
         self.was_cut = False  # piece[0] replaces the comma of a cut
+        self.commas = 0  # top-level commas of the depth-2 container being read
+        self.totals = {}  # key -> records of its array (the last one of that key)
 
     def fail(self, error, offset):
         text = str(error)
@@ -271,21 +273,30 @@ def check(path, f, skip, sink=None):
             c.add_skeleton(chunk[x:y], offset + x)
         # Depth-2 containers: opened where ``after`` becomes 2 from 1, closed back to 1.
         events = np.flatnonzero((opens & (after == 2)) | (closes & (after == 1)))
-        pos = 0
+        # Records of each depth-2 array: its top-level commas + 1 (if not empty).
+        commas_before = np.cumsum((kinds == 0x2C) & (after == 2)) - ((kinds == 0x2C) & (after == 2))
+        pos, counted = 0, 0
         for e in events.tolist():
             i = int(marks[e])
+            c.commas += int(commas_before[e]) - counted
+            counted = int(commas_before[e])
             if opens[e]:
                 c.piece, c.piece_at, c.was_cut = bytearray(chunk[i : i + 1]), offset + i, False
                 c.closer = _OPEN[int(kinds[e])]
-                if sink is not None:
-                    c.open_key(offset + i)
+                c.commas = 0
+                c.open_key(offset + i)
             else:
                 if c.piece is not None:
                     c.piece += chunk[pos:i]
                     c.closer = int(kinds[e])
                     c.check_piece(len(c.piece), closing=True)
+                    if c.closer == 0x5D and c.key is not None:
+                        empty = not c.commas and not c.was_cut and not c.piece[1:].strip()
+                        c.totals[c.key] = 0 if empty else c.commas + 1
                 c.piece = None
             pos = i + 1
+        if len(kinds):
+            c.commas += int(np.sum((kinds == 0x2C) & (after == 2))) - counted
         if len(negative):  # the extra closer: msgspec names it in the skeleton
             c.check_skeleton()
             raise InputError(path, "not valid JSON: unbalanced brackets")
