@@ -31,6 +31,12 @@ class BenchmarkSplit(models.Model):
     source_format = models.CharField(max_length=8)
     truth_file = models.FileField(upload_to=split_path, max_length=255)
     images_file = models.FileField(upload_to=split_path, max_length=255, blank=True)
+    road_counts = models.JSONField(
+        null=True,
+        blank=True,
+        help_text="Boxes per difficulty level and attribute bucket, don't-care regions "
+        "(evaluation.levels.split_counts), counted when frozen; None without attributes.",
+    )
     created_by = models.CharField(max_length=150, blank=True)
     created_at = models.DateTimeField(auto_now_add=True)
     frozen_at = models.DateTimeField()
@@ -223,17 +229,19 @@ class ClassScore(models.Model):
 
 
 class SliceScore(models.Model):
-    """The rule metrics of one slice (image tag or size bucket), for the mean ('' class)
-    or a class. ``all_metrics`` is False on rows stored before AP50, AP75 and recall
-    were kept per slice (those columns are then unknown, not absent): readers compute
-    them from the match records (``evaluation.slices``)."""
+    """The rule metrics of one slice (image tag, size bucket, or a level protocol's
+    level: kind ``level``, AP only), for the mean ('' class) or a class.
+    ``all_metrics`` is False on rows stored before AP50, AP75 and recall were kept per
+    slice (those columns are then unknown, not absent): readers compute them from the
+    match records (``evaluation.slices``)."""
 
     class Kind(models.TextChoices):
         TAG = "tag"
         SIZE = "size"
+        LEVEL = "level"
 
     scorecard = models.ForeignKey(Scorecard, on_delete=models.CASCADE, related_name="slices")
-    kind = models.CharField(max_length=4, choices=Kind.choices)
+    kind = models.CharField(max_length=8, choices=Kind.choices)
     name = models.CharField(max_length=64)
     class_name = models.CharField(max_length=64, blank=True)
     ap = models.FloatField(null=True)

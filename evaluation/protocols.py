@@ -7,6 +7,7 @@ import json
 import re
 
 from . import engine
+from .levels import LEVEL_PROTOCOLS
 from .models import StoredProtocol
 
 NAME = re.compile(r"[A-Za-z0-9][A-Za-z0-9._-]{0,31}")
@@ -22,12 +23,16 @@ def digest(definition):
 
 def resolve(name):
     """The engine ``Protocol`` a name stands for: a preset, else a stored custom
-    protocol; ``engine.InputError`` (field ``protocol``) when it is neither."""
+    protocol; a level protocol's name (``levels.LEVEL_PROTOCOLS``, e.g. ``kitti2d``)
+    gives its ``levels.LevelProtocol`` (never a primary protocol, so never read as a
+    ``Protocol``); ``engine.InputError`` (field ``protocol``) when it is none of these."""
     if name in engine.PRESETS:
         return engine.get_protocol(name)
+    if name in LEVEL_PROTOCOLS:
+        return LEVEL_PROTOCOLS[name]
     stored = StoredProtocol.objects.filter(name=name).first()
     if stored is None:
-        known = ", ".join([*sorted(engine.PRESETS), *stored_names()])
+        known = ", ".join([*sorted(engine.PRESETS), *LEVEL_PROTOCOLS, *stored_names()])
         raise engine.InputError("protocol", f"unknown protocol {name!r}; known: {known}")
     return engine.protocol_from_dict(stored.definition, source=f"protocol {name}")
 
@@ -46,7 +51,7 @@ def check_definition(definition, source):
             "a name of 1 to 32 letters, digits, '.', '_' or '-', starting with a letter or digit",
             field="name",
         )
-    if protocol.name in engine.PRESETS:
+    if protocol.name in engine.PRESETS or protocol.name in LEVEL_PROTOCOLS:
         raise engine.InputError(
             source,
             f"{protocol.name!r} is a preset; give a custom protocol its own name",
@@ -81,3 +86,15 @@ def definitions(names):
     """{name: definition} of the stored custom protocols among ``names``."""
     rows = StoredProtocol.objects.filter(name__in=[n for n in names if n not in engine.PRESETS])
     return {row.name: row.definition for row in rows}
+
+
+def not_primary(name):
+    """Why ``name`` cannot be a suite's primary (first) protocol, or None: a level
+    protocol has no match records for the cause pages, deployed thresholds and
+    bootstrap intervals that read the primary one."""
+    if name in LEVEL_PROTOCOLS:
+        return (
+            f"{name!r} gives results per difficulty level and cannot be the primary "
+            "protocol; name a matching protocol first (e.g. coco) and list it after"
+        )
+    return None

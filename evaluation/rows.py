@@ -1,5 +1,6 @@
 """A scorecard's per-class and per-slice rows, from the engine's result (plain SQL reads)."""
 
+from .levels import is_levels, level_rows
 from .models import ClassScore, SliceScore
 
 
@@ -11,6 +12,8 @@ def _mean_of(rows, key):
 def class_rows(scorecard, result):
     """One row per class, plus the mean row (class_name ''): the protocol's own means
     where it has them, else the mean over present classes."""
+    if is_levels(result):
+        return  # a level protocol's numbers are its level rows (slice_rows)
     summary, rows = result["summary"], list(result["per_class"].values())
 
     def first(*keys):
@@ -50,6 +53,9 @@ def slice_rows(scorecard, result):
     """One row per slice and class (plus the mean row, class_name ''), with every rule
     metric when the result has them (``classes``: results from engine 1.x before
     per-slice metrics have AP only and give rows with ``all_metrics`` False)."""
+    if is_levels(result):
+        yield from level_rows(scorecard, result)
+        return
     for kind, slices in result["slices"].items():
         for name, entry in slices.items():
             complete = "classes" in entry

@@ -10,7 +10,7 @@ from django.core.files import File
 from django.db import transaction
 from django.utils import timezone
 
-from . import breakdowns, engine, jobs, sharding, signals
+from . import breakdowns, engine, jobs, levels, sharding, signals
 from .models import ClassScore, Evaluation, PredictionFile, Scorecard, SliceScore
 from .protocols import resolve as resolve_protocol
 from .rows import class_rows, slice_rows
@@ -93,6 +93,8 @@ def _score(evaluation):
             unknown_images=evaluation.unknown_images,
         )
     jobs.progress(evaluation, 50)
+    if isinstance(protocol, levels.LevelProtocol):  # per level × class (evaluation/levels.py)
+        return levels.score(evaluation, truth, predictions)
     if sharding.wanted(protocol, truth, predictions):
         sharding.start(evaluation, truth, predictions)
         return None
@@ -133,7 +135,8 @@ def _store(evaluation, result, records, record_count):
                     scorecard.save()
                     ClassScore.objects.bulk_create(class_rows(scorecard, result))
                     SliceScore.objects.bulk_create(slice_rows(scorecard, result))
-                    breakdowns.store(scorecard, records)
+                    if not levels.is_levels(result):  # a level result has no match records
+                        breakdowns.store(scorecard, records)
                     PredictionFile.objects.filter(pk=evaluation.predictions_id).update(
                         record_count=record_count
                     )

@@ -14,7 +14,7 @@ from django.core.files import File
 from django.db import IntegrityError, transaction
 from django.utils import timezone
 
-from . import engine, jobs, signals
+from . import engine, jobs, levels, signals
 from .models import BenchmarkSplit, Evaluation, PredictionFile
 from .protocols import resolve as resolve_protocol
 from .storage import (
@@ -153,6 +153,7 @@ def load_split(*, name, revision, truth, images=None, description="", created_by
             box_count=loaded.n_boxes,
             sha256=sha,
             source_format=source_format,
+            road_counts=levels.split_counts(loaded),
             created_by=created_by,
             frozen_at=timezone.now(),
         )

@@ -8,6 +8,7 @@ from django.utils import timezone
 from django.utils.text import slugify
 
 from evaluation import services as evaluation_services
+from evaluation.protocols import not_primary
 from evaluation.protocols import resolve as resolve_protocol
 from evaluation.services import UploadConflict, UploadError
 
@@ -52,6 +53,8 @@ def create_detector(
     else:
         for protocol in protocols:
             resolve_protocol(protocol)
+        if not_primary(protocols[0]):
+            raise UploadError(not_primary(protocols[0]), path="protocols[0]")
     with transaction.atomic():
         detector = Detector.objects.create(
             team=team,

@@ -124,6 +124,8 @@ def _protocols(entries):
             _fail(f"{path}.{e.field}" if e.field else path, e.message)
         if name in names:
             _fail(path, f"{name!r} is listed twice")
+        if i == 0 and stored_protocols.not_primary(name):
+            _fail(path, stored_protocols.not_primary(name))
         names.append(name)
     stored = stored_protocols.definitions([n for n in names if n not in custom])
     known = {**stored, **custom}

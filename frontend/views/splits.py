@@ -6,7 +6,7 @@ from django.core.exceptions import PermissionDenied
 from django.http import Http404
 from django.shortcuts import redirect, render
 
-from evaluation import engine
+from evaluation import engine, levels
 from evaluation import images as split_images
 from evaluation import services as evaluation_services
 from evaluation.models import BenchmarkSplit
@@ -43,6 +43,7 @@ def split(request, split_id):
             "usage": selectors.split_usage(request.user, found),
             "class_counts": [(c, found.class_counts.get(c)) for c in found.classes],
             "tags": sorted(found.tags.items()),
+            "road": levels.split_page(found.road_counts),
         },
     )
 

@@ -7,9 +7,11 @@ from .scores import _class_rows, _scorecards, summary_items
 def version_scorecards(version, suite=None):
     """Per split: the primary scorecard with its class and slice rows, the headline of
     every other protocol, the miss-rate-versus-FPPI charts of the pedestrian setups
-    (``miss_rate``), and (``deployed``) precision, recall and F1 at the deployed
+    (``miss_rate``), each difficulty-level protocol's table (``levels.level_table``),
+    and (``deployed``) precision, recall and F1 at the deployed
     score threshold(s) of ``suite`` (default: the detector's current suite). A fixed
     number of queries (plus one match-records file read per scored split)."""
+    from evaluation import levels
     from evaluation.models import SliceScore
 
     from ..suites import current_suite
@@ -46,7 +48,12 @@ def version_scorecards(version, suite=None):
                 "others": [
                     (p, cards[(ps.pk, p)].summary.get("AP"))
                     for p in detector.protocols
-                    if p != detector.primary_protocol and (ps.pk, p) in cards
+                    if p != detector.primary_protocol and (ps.pk, p) in cards and not levels.get(p)
+                ],
+                "levels": [
+                    levels.level_table(cards[(ps.pk, p)])
+                    for p in detector.protocols
+                    if levels.get(p) and (ps.pk, p) in cards
                 ],
                 "deployed": deployed_numbers(card, suite, detector.classes) if card else None,
                 "miss_rate": miss_rate.version_charts(version, cards, ps),

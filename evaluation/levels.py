@@ -1,0 +1,271 @@
+"""Level protocols in the platform: a protocol whose result is per level (or setup) ×
+per class, such as the KITTI 2D difficulty levels (``engine.difficulty``).
+
+One interface, so other level-shaped protocols (the pedestrian miss-rate setups) plug in
+by adding a ``LevelProtocol`` to ``LEVEL_PROTOCOLS``:
+
+* ``evaluate(truth, predictions)`` returns ``{"protocol": {"name", "version"},
+  "levels": {level: {"classes": {class: {<value_key>: v|None, "n_gt": n, ...}},
+  <value_key>: mean|None}}, "headline": v|None}`` — ``engine.evaluate_levels``' shape;
+* ``value_key`` names the number read from it (``AP_R40``; a miss-rate setup ``MR``),
+  ``metric`` the rule metric it answers (``AP``, ``MR``), ``lower_is_better`` its
+  direction, ``headline_level`` the level shown first, ``record`` the full definition.
+
+A level protocol is never a suite's primary protocol: the primary one gives the match
+records every cause page, deployed threshold and bootstrap interval reads.
+Stored (``scoring`` dispatches here): a ``Scorecard`` whose ``result`` keeps the whole
+protocol output and its definition (``protocol_record``), ``summary`` the headline
+(``AP`` = moderate AP over 40 recall positions for ``kitti2d``), and one ``SliceScore``
+of kind ``level`` per level × class ('' = the level's mean) with its AP (a miss-rate
+setup's values are read from ``result``: SliceScore has no miss-rate column yet). The
+"records" file is the protocol output as JSON.
+"""
+
+import json
+from dataclasses import asdict, dataclass
+
+import numpy as np
+
+from . import engine
+from .engine.difficulty import get_difficulty_protocol
+
+
+@dataclass(frozen=True)
+class LevelProtocol:
+    name: str
+    metric: str  # the rule metric it answers
+    value_key: str  # the key of that number in the protocol's output
+    lower_is_better: bool
+    evaluate: object  # (truth, predictions) -> output
+    counts: object  # truth -> level_counts-shaped dict
+    definition: object  # () -> the full protocol record (JSON)
+
+    @property
+    def version(self):
+        return self.definition()["version"]
+
+    @property
+    def levels(self):
+        return [level["name"] for level in self.definition()["levels"]]
+
+    @property
+    def headline_level(self):
+        return self.definition()["headline_level"]
+
+
+def _kitti_definition(name="kitti2d"):
+    p = get_difficulty_protocol(name)
+    record = asdict(p)
+    record["levels"] = [asdict(level) for level in p.levels]
+    record["neighbours"] = {k: list(v) for k, v in p.neighbours.items()}
+    record["matching"] = (
+        "per ground-truth box, overlap strictly above the class's threshold; don't-care "
+        "regions by intersection over the detection's area (KITTI devkit computeStatistics)"
+    )
+    record["recall_sampling"] = (
+        "score thresholds from the true positives' scores, 41 slots; AP_R40 = mean of "
+        "slots 1-40, AP_R11 = mean of slots 0, 4, ..., 40 (devkit getThresholds, eval_class)"
+    )
+    record["value"] = "AP_R40"
+    return record
+
+
+KITTI2D = LevelProtocol(
+    name="kitti2d",
+    metric="AP",
+    value_key="AP_R40",
+    lower_is_better=False,
+    evaluate=lambda truth, predictions: engine.evaluate_levels(truth, predictions, "kitti2d"),
+    counts=lambda truth: engine.level_counts(truth, "kitti2d"),
+    definition=_kitti_definition,
+)
+
+LEVEL_PROTOCOLS = {KITTI2D.name: KITTI2D}
+LEVEL_METRICS = {"AP": False, "MR": True}  # rule metric -> lower is better
+
+
+def get(name):
+    """The level protocol of this name, or None."""
+    return LEVEL_PROTOCOLS.get(name)
+
+
+def protocols_with_level(names, level):
+    """Those of ``names`` that are level protocols holding ``level``."""
+    return [n for n in names if n in LEVEL_PROTOCOLS and level in LEVEL_PROTOCOLS[n].levels]
+
+
+def score(evaluation, truth, predictions):
+    """The stored result of a level protocol: ``(result, records, record_count)``
+    where ``records`` writes the protocol output as the scorecard's file."""
+    protocol = LEVEL_PROTOCOLS[evaluation.protocol]
+    output = protocol.evaluate(truth, predictions)
+    record = protocol.definition()
+    headline_level = record["headline_level"]
+    headline = output["levels"].get(headline_level, {})
+    summary = {
+        protocol.metric: output["headline"],
+        "level": headline_level,
+    }
+    if "AP_R11" in headline:
+        summary["AP_R11"] = headline["AP_R11"]
+    result = {
+        "protocol": protocol.name,
+        "protocol_version": record["version"],
+        "engine_version": engine.ENGINE_VERSION,
+        "kind": "levels",
+        "metric": protocol.metric,
+        "value_key": protocol.value_key,
+        "lower_is_better": protocol.lower_is_better,
+        "summary": summary,
+        "levels": output["levels"],
+        "protocol_record": {**record, "box_policy": evaluation.box_policy},
+        "counts": {
+            "images": int(truth.n_images),
+            "ground_truth_boxes": int(truth.n_boxes),
+            "detections": int(len(predictions)),
+            "dont_care_regions": int(len(truth.region_image)),
+        },
+        "ground_truth_sha256": evaluation.split.sha256,
+    }
+    return result, _JsonRecords(output), len(predictions)
+
+
+class _JsonRecords:
+    """The protocol output as the scorecard's file (its SHA-256 is kept and audited)."""
+
+    def __init__(self, output):
+        self.output = output
+
+    def save(self, path):
+        with open(path, "w") as f:
+            json.dump(self.output, f, sort_keys=True)
+
+
+def is_levels(result):
+    return result.get("kind") == "levels"
+
+
+def level_rows(scorecard, result):
+    """One ``SliceScore`` (kind ``level``) per level × class, '' for the level's mean."""
+    from .models import SliceScore
+
+    if result["metric"] != "AP":
+        return  # SliceScore keeps AP only: a lower-is-better setup is read from the result
+    key = result["value_key"]
+    for level, entry in result["levels"].items():
+        yield SliceScore(
+            scorecard=scorecard, kind="level", name=level, class_name="", ap=entry[key]
+        )
+        for class_name, row in entry["classes"].items():
+            yield SliceScore(
+                scorecard=scorecard,
+                kind="level",
+                name=level,
+                class_name=class_name,
+                ap=row[key],
+            )
+
+
+def level_table(card):
+    """A level scorecard for a page: ``{"protocol", "metric", "headline_level",
+    "levels": [...], "rows": [{"class", "values": [...], "n_gt"}]}`` (``n_gt``: boxes
+    counted at the headline level), the mean row first."""
+    result = card.result
+    key = result["value_key"]
+    levels = list(result["levels"])
+    classes = []
+    for entry in result["levels"].values():
+        classes += [c for c in entry["classes"] if c not in classes]
+    headline = result["summary"].get("level")
+    at_headline = result["levels"].get(headline, {}).get("classes", {})
+    rows = [
+        {
+            "class": "mean",
+            "values": [result["levels"][lv][key] for lv in levels],
+            "n_gt": sum(c.get("n_gt") or 0 for c in at_headline.values()),
+        }
+    ]
+    for name in classes:
+        rows.append(
+            {
+                "class": name,
+                "values": [result["levels"][lv]["classes"].get(name, {}).get(key) for lv in levels],
+                "n_gt": at_headline.get(name, {}).get("n_gt"),
+            }
+        )
+    return {
+        "protocol": card.protocol,
+        "metric": result["metric"],
+        "value_key": key,
+        "lower_is_better": result["lower_is_better"],
+        "headline_level": headline,
+        "levels": levels,
+        "rows": rows,
+    }
+
+
+# Split page: what a split holds for the level protocols -------------------------------
+
+OCCLUSION = (
+    ("0 fully visible", 0, 0),
+    ("1 partly", 1, 1),
+    ("2 largely", 2, 2),
+    ("3 unknown", 3, 3),
+)
+TRUNCATION = (("≤ 0.15", -np.inf, 0.15), ("0.15–0.30", 0.15, 0.30), ("0.30–0.50", 0.30, 0.50))
+VISIBILITY = (("≥ 0.65", 0.65, np.inf), ("0.20–0.65", 0.20, 0.65), ("< 0.20", -np.inf, 0.20))
+
+
+def split_counts(truth):
+    """Counted at freeze time and stored on the split (``BenchmarkSplit.road_counts``):
+    per level protocol its ``counts`` (boxes per level and class, don't-care regions,
+    attributes given), and boxes per occlusion level, truncation and visibility bucket
+    (the buckets follow the KITTI levels' limits and the pedestrian setups' visibility
+    limits, PROTOCOLS.md §8/§9). None when the split gives no attribute and no region."""
+    given = {
+        name: int((~np.isnan(getattr(truth, name))).sum())
+        for name in ("occlusion", "truncation", "visibility")
+    }
+    if not any(given.values()) and not len(truth.region_image):
+        return None
+
+    def buckets(values, table, closed_low):
+        out = []
+        for label, low, high in table:
+            inside = (values > low) & (values <= high)
+            if closed_low:
+                inside = (values >= low) & (values < high)
+            out.append([label, int(inside.sum())])
+        rest = int((~np.isnan(values)).sum()) - sum(n for _, n in out)
+        return out, rest
+
+    occlusion = [[label, int((truth.occlusion == low).sum())] for label, low, _ in OCCLUSION]
+    truncation, over = buckets(truth.truncation, TRUNCATION, closed_low=False)
+    truncation.append(["> 0.50", over])
+    visibility, _ = buckets(truth.visibility, VISIBILITY, closed_low=True)
+    return {
+        "protocols": {name: p.counts(truth) for name, p in LEVEL_PROTOCOLS.items()},
+        "attributes_given": given,
+        "boxes": int(truth.n_boxes),
+        "dont_care_regions": int(len(truth.region_image)),
+        "occlusion": occlusion,
+        "truncation": truncation,
+        "visibility": visibility,
+    }
+
+
+def split_page(road_counts):
+    """``split_counts``' stored dict pivoted for the split page: per level protocol
+    ``{"protocol", "levels": [...], "rows": [(class, [n per level])]}``, and the
+    attribute buckets as they are. None when the split has none."""
+    if not road_counts:
+        return None
+    tables = []
+    for name, counts in road_counts["protocols"].items():
+        level_names = list(counts["levels"])
+        classes = []
+        for per_class in counts["levels"].values():
+            classes += [c for c in per_class if c not in classes]
+        rows = [(c, [counts["levels"][lv].get(c, 0) for lv in level_names]) for c in classes]
+        tables.append({"protocol": name, "levels": level_names, "rows": rows})
+    return {**road_counts, "tables": tables}
