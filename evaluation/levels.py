@@ -52,6 +52,11 @@ class LevelProtocol:
     def headline_level(self):
         return self.definition()["headline_level"]
 
+    @property
+    def classes(self):
+        """The class names it evaluates (compared case-insensitively)."""
+        return list(self.definition().get("class_overlap", {}))
+
 
 def _kitti_definition(name="kitti2d"):
     p = get_difficulty_protocol(name)
@@ -172,10 +177,15 @@ def level_table(card):
     counted at the headline level), the mean row first."""
     result = card.result
     key = result["value_key"]
-    levels = list(result["levels"])
+    # the definition's order (the database's JSON does not keep key order)
+    record = result.get("protocol_record") or {}
+    order = [lv["name"] for lv in record.get("levels", [])]
+    levels = sorted(result["levels"], key=lambda lv: order.index(lv) if lv in order else 99)
+    rank = [c.lower() for c in record.get("class_overlap", {})]
     classes = []
     for entry in result["levels"].values():
         classes += [c for c in entry["classes"] if c not in classes]
+    classes.sort(key=lambda c: (rank.index(c.lower()) if c.lower() in rank else 99, c))
     headline = result["summary"].get("level")
     at_headline = result["levels"].get(headline, {}).get("classes", {})
     rows = [

@@ -5,7 +5,8 @@ A rule: ``{"metric": "AP"|"AP50"|"AP75"|"recall", "class": "mean"|"*"|name,
 bucket (``rule_slices``: COCO's small/medium/large or the protocol's own), "kind": one of
 "min_value" (with "threshold" on 0-1), "max_drop" (with "tolerance" in AP points,
 0-100) or "no_significant_drop" (AP only; "confidence", default 0.95, and an optional
-"tolerance" in points)}``. ``"class": "*"`` applies the rule to every class.
+"tolerance" in points)}``. ``"class": "*"`` applies the rule to every class. An
+optional ``"level"`` judges a level protocol's level or setup (``level_rules``).
 
 A regression is a *fail* only when the paired-bootstrap interval of the difference
 excludes zero on the bad side and the drop exceeds the tolerance; a drop whose interval
@@ -20,7 +21,7 @@ from django.db import transaction
 from evaluation.models import BenchmarkSplit, ClassScore
 from evaluation.services import UploadError, load_records, load_truth_of
 
-from . import audit, rule_slices, selectors
+from . import audit, level_rules, rule_slices, selectors
 from .models import AuditEvent, Membership, Outcome, ReleaseCriteria
 
 METRICS = {"AP": "ap", "AP50": "ap50", "AP75": "ap75", "recall": "recall"}
@@ -74,6 +75,7 @@ def validate_rules(detector, rules):
         "threshold",
         "tolerance",
         "confidence",
+        "level",  # a level protocol's level or setup (level_rules.py)
     }
     protocols = _judging_protocols(detector)
     out = []
@@ -87,7 +89,7 @@ def validate_rules(detector, rules):
         if kind not in KINDS:
             _fail(i, "kind", f"must be one of {', '.join(KINDS)}, got {kind!r}")
         metric = rule.get("metric", "AP")
-        if metric not in METRICS:
+        if "level" not in rule and metric not in METRICS:
             _fail(i, "metric", f"must be one of {', '.join(METRICS)}, got {metric!r}")
         if kind == "no_significant_drop" and metric != "AP":
             _fail(i, "metric", "a significance rule is computed on AP")
@@ -114,6 +116,8 @@ def validate_rules(detector, rules):
             )
         if kind == "no_significant_drop":
             clean["confidence"] = _number(rule, i, "confidence", 0.5, 0.999, default=0.95)
+        if "level" in rule:
+            clean = level_rules.validate(detector, rule, clean, i, _fail)
         out.append(clean)
     return out
 
@@ -230,10 +234,14 @@ def outcomes_for(version, inputs):
     by_name = {f"{s.name}:{s.revision}": s for s in BenchmarkSplit.objects.all()}
     everywhere = inputs.required or sorted(cards, key=lambda s: (s.name, s.revision))
     outcomes = []
+    level_cards = {}  # {protocol: ({split: card}, {split: baseline card})}, read once
     bootstraps = {}  # one set of replicates per split, tag and confidence serves every class
     for index, rule in enumerate(inputs.criteria.rules):
         splits = everywhere if rule["split"] == "*" else [by_name[rule["split"]]]
         names = detector.classes if rule["class"] == "*" else [rule["class"]]
+        if "level" in rule:
+            outcomes += _judge_level(version, inputs, index, rule, splits, level_cards)
+            continue
         for split in splits:
             for name in names:
                 outcomes.append(
@@ -257,6 +265,47 @@ def outcomes_for(version, inputs):
         if outcome.status == Outcome.Status.MISSING and outcome.split_id in failed:
             outcome.detail = f"no scored predictions on {outcome.split}: the evaluation failed"
     return outcomes
+
+
+def _judge_level(version, inputs, index, rule, splits, level_cards):
+    """Outcomes of a rule on a level (``level_rules``), from the scorecards of the
+    suite's level protocol holding it (read once per protocol)."""
+    from .verdicts import current_sets
+
+    detector, baseline = version.detector, inputs.baseline
+    names = list(inputs.suite.protocols) if inputs.suite else list(detector.protocols)
+    found = level_rules.levels.protocols_with_level(names, rule["level"])
+    cards, baseline_cards = {}, {}
+    if found:
+        if found[0] not in level_cards:
+            level_cards[found[0]] = (
+                _scorecards(inputs.sets, found[0]),
+                _scorecards(current_sets(baseline), found[0]) if baseline else {},
+            )
+        cards, baseline_cards = level_cards[found[0]]
+    classes = (
+        level_rules.classes_of(detector, rule, inputs.suite)
+        if rule["class"] == "*"
+        else [rule["class"]]
+    )
+    out = []
+    for split in splits:
+        for name in classes:
+            outcome = Outcome(
+                version=version,
+                criteria=inputs.criteria,
+                rule_index=index,
+                rule=rule,
+                split=split,
+                class_name=name,
+                baseline=baseline,
+            )
+            out.append(
+                level_rules.judge(
+                    outcome, rule, split, name, cards.get(split), baseline_cards.get(split), names
+                )
+            )
+    return out
 
 
 def _judge_one(

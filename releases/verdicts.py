@@ -403,8 +403,11 @@ def _compute(version, inputs):
 
     reasons = _pending_reasons(inputs)
     outcomes = outcomes_for(version, inputs) if inputs.criteria is not None else []
+    missing = [o.detail for o in outcomes if o.status == Outcome.Status.MISSING]
     if reasons:
         verdict = "incomplete"
+    elif missing:  # a rule without its number (e.g. no level result) never passes
+        verdict, reasons = "incomplete", sorted(set(missing))
     elif any(o.status == Outcome.Status.FAIL for o in outcomes):
         verdict = "regression"
         reasons = [o.detail for o in outcomes if o.status == Outcome.Status.FAIL]

@@ -2,6 +2,7 @@
 
 from ..models import PredictionSet
 from . import miss_rate
+from .levels import level_deltas
 from .scores import _class_rows, _scorecards
 
 
@@ -121,11 +122,12 @@ def _stored_intervals(reference, candidate, pairs, protocol):
 
 def compare_versions(reference, candidate):
     """Per shared split: per-class AP deltas (candidate - reference), worst first,
-    tag-slice deltas, both versions' precision-recall curves (and miss-rate-versus-FPPI
-    curves of the pedestrian setups, ``miss_rate``), and the intervals that
-    decide whether a delta is marked: from the candidate's judgement against this
-    reference, else computed on request (``interval_state``: None, queued, done or
-    failed; ``missing_intervals`` when a delta has none and none is being computed)."""
+    tag-slice deltas, level protocols' per-level deltas (``levels``), both versions'
+    precision-recall curves (and miss-rate-versus-FPPI curves of the pedestrian setups,
+    ``miss_rate``), and the intervals that decide whether a delta is marked: from the
+    candidate's judgement against this reference, else computed on request
+    (``interval_state``: None, queued, done or failed; ``missing_intervals`` when a
+    delta has none and none is being computed)."""
     from evaluation.models import SliceScore
 
     from ..models import Outcome
@@ -173,6 +175,7 @@ def compare_versions(reference, candidate):
         else:
             size_ap[(s.scorecard_id, s.name, s.class_name or "mean")] = s.ap
             size_names.setdefault(s.scorecard_id, {})[s.name] = None
+    by_level = level_deltas(reference, candidate, sets)  # kitti2d levels (selectors/levels.py)
     out = []
     for split in sorted(by_version, key=lambda s: (s.name, s.revision)):
         pair = by_version[split]
@@ -246,6 +249,7 @@ def compare_versions(reference, candidate):
                 and any(d["delta"] is not None and not d["interval"] for d in deltas),
                 "interval_error": error if state == "failed" else "",
                 "protocol_differences": protocol_differences(a, b),
+                "levels": by_level.get(split.pk, []),
             }
         )
     return out
