@@ -81,14 +81,49 @@ def split_truth(name, revision, seed, n_images, frame, night_share, extra_tags):
     return {
         "info": {"description": f"Kestrel Bay {name} rev {revision} (invented)"},
         "images": images,
-        "annotations": annotations,
+        "annotations": with_road_attributes(annotations, images, seed),
+        "dont_care": dont_care_regions(images, seed),
         "categories": [{"id": k + 1, "name": c} for k, c in enumerate(CLASSES)],
     }
+
+
+def with_road_attributes(annotations, images, seed):
+    """Occlusion level (0 fully visible, 1 partly, 2 largely occluded), truncation (the
+    share of the object outside the frame: boxes touching an edge) and the visible
+    fraction of every box, from their own generator (the boxes stay as they were)."""
+    rng = np.random.default_rng(seed + 7000)
+    frames = {im["id"]: (im["width"], im["height"]) for im in images}
+    visible = {0: (0.85, 1.0), 1: (0.45, 0.85), 2: (0.15, 0.45)}
+    for ann in annotations:
+        width, height = frames[ann["image_id"]]
+        x, y, w, h = ann["bbox"]
+        occlusion = int(rng.choice(3, p=[0.6, 0.28, 0.12]))
+        at_edge = x < 2 or y < 2 or x + w > width - 2 or y + h > height - 2
+        truncation = float(rng.uniform(0.05, 0.6)) if at_edge or rng.random() < 0.06 else 0.0
+        ann["occlusion"] = occlusion
+        ann["truncation"] = round(truncation, 2)
+        ann["visibility"] = round(float(rng.uniform(*visible[occlusion])), 2)
+    return annotations
+
+
+def dont_care_regions(images, seed):
+    """A few don't-care regions (a crowd behind a fence, a reflection in a shop window):
+    one on about one image in twenty."""
+    rng = np.random.default_rng(seed + 8000)
+    regions = []
+    for image in images:
+        if rng.random() < 0.05:
+            width, height = image["width"], image["height"]
+            w, h = float(rng.uniform(0.1, 0.25) * width), float(rng.uniform(0.08, 0.2) * height)
+            x, y = float(rng.uniform(0, width - w)), float(rng.uniform(0.3 * height, height - h))
+            regions.append({"image_id": image["id"], "bbox": [round(v, 1) for v in (x, y, w, h)]})
+    return regions
 
 
 def relabelled(truth, seed):
     """Revision 2 of a split: the same frames, with pedestrians the first pass missed."""
     rng = np.random.default_rng(seed)
+    attributes = np.random.default_rng(seed + 7000)  # its own draws: the boxes stay as they were
     out = {**truth, "annotations": [dict(a) for a in truth["annotations"]]}
     pedestrian = CLASSES.index("pedestrian") + 1
     for image in truth["images"]:
@@ -105,6 +140,9 @@ def relabelled(truth, seed):
                     "bbox": [round(x, 1), round(y, 1), round(w, 1), round(h, 1)],
                     "area": round(w * h, 1),
                     "iscrowd": 0,
+                    "occlusion": int(attributes.random() < 0.3),  # missed: often partly hidden
+                    "truncation": 0.0,
+                    "visibility": round(float(attributes.uniform(0.5, 1.0)), 2),
                 }
             )
     out["info"] = {"description": truth["info"]["description"].replace("rev 1", "rev 2")}
@@ -266,6 +304,21 @@ RULES = [
         "tolerance": 1.0,
     },
 ]
+# The forward camera is also judged on KITTI-style moderate difficulty (its suite names
+# kitti2d after the primary protocol): mean AP over 40 recall positions at moderate.
+LEVEL_PROTOCOLS = {"forward": ("kitti2d",)}
+LEVEL_RULES = {
+    "forward": [
+        {
+            "kind": "min_value",
+            "metric": "AP",
+            "level": "moderate",
+            "class": "mean",
+            "split": "*",
+            "threshold": 0.4,
+        }
+    ]
+}
 CRITERIA_AFTER = ("forward", "1.2")
 
 DECISIONS = {  # the lead's decisions, two days after each version's upload

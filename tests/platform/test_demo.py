@@ -190,3 +190,40 @@ def test_from_the_failing_night_pedestrian_rule_to_its_cause(seeded, client, set
     assert sum(r["class"] == "pedestrian" and r["outcome"] == "missed" for r in missed) >= sum(
         1 for t in lost if t["found"]["candidate"] is None
     )
+
+
+def test_the_forward_camera_is_judged_on_moderate_difficulty(seeded, client, settings):
+    """The invented splits carry occlusion, truncation, visibility and don't-care
+    regions; the forward camera's suite names kitti2d and its criteria moderate AP."""
+    from evaluation.models import BenchmarkSplit, SliceScore
+    from releases.models import Outcome
+
+    for split in BenchmarkSplit.objects.all():
+        counts = split.road_counts
+        assert counts["attributes_given"]["occlusion"] == split.box_count, split
+        assert counts["dont_care_regions"] > 0, split
+        assert counts["protocols"]["kitti2d"]["levels"]["moderate"]["car"] > 0
+    forward = Detector.objects.get(slug="forward-camera")
+    assert forward.protocols == ["coco", "recall40", "kitti2d"]
+    assert "kitti2d" not in Detector.objects.get(slug="kerbside-camera").protocols
+    level_rule = next(i for i, r in enumerate(forward.criteria.last().rules) if "level" in r)
+    for label in ("1.4", "1.6"):
+        version = ModelVersion.objects.get(detector=forward, label=label)
+        judgement = verdicts.verdict_of(version).judgement
+        outcomes = Outcome.objects.filter(judgement=judgement, rule_index=level_rule)
+        assert outcomes.count() == 3 and {o.status for o in outcomes} == {"pass"}, label
+        for o in outcomes:  # the stored moderate mean of the kitti2d scorecard
+            card = SliceScore.objects.get(
+                kind="level",
+                name="moderate",
+                class_name="",
+                scorecard__evaluation__protocol="kitti2d",
+                scorecard__evaluation__split=o.split,
+                scorecard__evaluation__prediction_sets__version=version,
+            )
+            assert o.value == card.ap and o.value >= 0.4
+    settings.MEDIA_ROOT = SEEDED_MEDIA["root"]  # the page reads the primary's records
+    client.force_login(get_user_model().objects.get(username="reviewer"))
+    version = ModelVersion.objects.get(detector=forward, label="1.6")
+    page = client.get(f"/versions/{version.pk}/").content.decode()
+    assert 'id="levels-kitti2d-' in page and "moderate (headline)" in page

@@ -93,15 +93,16 @@ class Command(BaseCommand):
         splits = self._splits()
         detectors = {}
         for key, name, description in demo.DETECTORS:
+            protocols = [*PROTOCOLS, *demo.LEVEL_PROTOCOLS.get(key, ())]
             detector = services.create_detector(
-                team, name, demo.CLASSES, protocols=PROTOCOLS, description=description
+                team, name, demo.CLASSES, protocols=protocols, description=description
             )
             suites.set_suite(
                 detector,
                 users["lead"],
                 {
                     "splits": [{"name": n, "revision": None} for n in REQUIRED],
-                    "protocols": list(PROTOCOLS),
+                    "protocols": protocols,
                     "box_policy": "keep",
                     "score_threshold": 0.5,
                     "class_thresholds": {"traffic_light": 0.4},
@@ -113,8 +114,9 @@ class Command(BaseCommand):
             clock.at(moment)
             detector = detectors[key] if key else None
             if action == "criteria":
-                for d in detectors.values():
-                    criteria.set_criteria(d, users["lead"], demo.RULES)
+                for k, d in detectors.items():
+                    rules = [*demo.RULES, *demo.LEVEL_RULES.get(k, [])]
+                    criteria.set_criteria(d, users["lead"], rules)
                 self.stdout.write(f"  {moment:%Y-%m-%d} release criteria set")
             elif action == "register":
                 versions[(key, label)] = self._register(detector, key, label, splits, users, detail)
