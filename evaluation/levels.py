@@ -1,14 +1,15 @@
 """Level protocols in the platform: a protocol whose result is per level (or setup) ×
 per class, such as the KITTI 2D difficulty levels (``engine.difficulty``).
 
-One interface, so other level-shaped protocols (the pedestrian miss-rate setups) plug in
-by adding a ``LevelProtocol`` to ``LEVEL_PROTOCOLS``:
+One interface; the pedestrian miss-rate presets (``miss-rate``, ``miss-rate-cityscale``,
+``miss-rate-caltech``: setups as levels, ``engine.evaluate_setups``) plug in the same
+way, as ``LevelProtocol`` entries of ``LEVEL_PROTOCOLS``:
 
 * ``evaluate(truth, predictions)`` returns ``{"protocol": {"name", "version"},
   "levels": {level: {"classes": {class: {<value_key>: v|None, "n_gt": n, ...}},
   <value_key>: mean|None}}, "headline": v|None}`` — ``engine.evaluate_levels``' shape;
-* ``value_key`` names the number read from it (``AP_R40``; a miss-rate setup ``MR``),
-  ``metric`` the rule metric it answers (``AP``, ``MR``), ``lower_is_better`` its
+* ``value_key`` names the number read from it (``AP_R40``; the setups ``miss_rate``),
+  ``metric`` the rule metric it answers (``AP``, ``miss_rate``), ``lower_is_better`` its
   direction, ``headline_level`` the level shown first, ``record`` the full definition.
 
 A level protocol is never a suite's primary protocol: the primary one gives the match
@@ -54,7 +55,8 @@ class LevelProtocol:
 
     @property
     def classes(self):
-        """The class names it evaluates (compared case-insensitively)."""
+        """The class names it evaluates (compared case-insensitively); empty: every
+        class of the split (the miss-rate setups)."""
         return list(self.definition().get("class_overlap", {}))
 
 
@@ -85,8 +87,25 @@ KITTI2D = LevelProtocol(
     definition=_kitti_definition,
 )
 
-LEVEL_PROTOCOLS = {KITTI2D.name: KITTI2D}
-LEVEL_METRICS = {"AP": False, "MR": True}  # rule metric -> lower is better
+
+def _miss_rate(name):
+    """A pedestrian miss-rate preset (``engine.pedestrian``): setups as levels, the
+    log-average miss rate per setup and class, lower is better; headline reasonable."""
+    return LevelProtocol(
+        name=name,
+        metric="miss_rate",
+        value_key="miss_rate",
+        lower_is_better=True,
+        evaluate=lambda truth, predictions: engine.evaluate_setups(truth, predictions, name),
+        counts=lambda truth: {"levels": engine.setup_counts(truth, name)},
+        definition=lambda: engine.MISS_RATE_PRESETS[name].record(),
+    )
+
+
+LEVEL_PROTOCOLS = {
+    KITTI2D.name: KITTI2D,
+    **{name: _miss_rate(name) for name in engine.MISS_RATE_PRESETS},
+}
 
 
 def get(name):

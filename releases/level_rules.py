@@ -3,7 +3,7 @@
 A rule with ``level`` is judged on the scorecard of the suite's level protocol that
 holds that level (``evaluation.levels``; ``kitti2d``: easy / moderate / hard, metric
 ``AP`` = AP over 40 recall positions, higher is better). A lower-is-better metric (a
-miss-rate setup, ``MR``) turns the rule's direction: ``min_value`` then means "at most
+miss-rate setup, ``miss_rate``) turns the rule's direction: ``min_value`` then means "at most
 the threshold" and a *drop* is a rise. Only ``min_value`` and ``max_drop``: a
 significance rule needs paired match records, which a level result does not keep.
 

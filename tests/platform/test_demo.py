@@ -204,7 +204,7 @@ def test_the_forward_camera_is_judged_on_moderate_difficulty(seeded, client, set
         assert counts["dont_care_regions"] > 0, split
         assert counts["protocols"]["kitti2d"]["levels"]["moderate"]["car"] > 0
     forward = Detector.objects.get(slug="forward-camera")
-    assert forward.protocols == ["coco", "recall40", "kitti2d"]
+    assert forward.protocols == ["coco", "recall40", "kitti2d", "miss-rate"]
     assert "kitti2d" not in Detector.objects.get(slug="kerbside-camera").protocols
     level_rule = next(i for i, r in enumerate(forward.criteria.last().rules) if "level" in r)
     for label in ("1.4", "1.6"):
@@ -222,6 +222,18 @@ def test_the_forward_camera_is_judged_on_moderate_difficulty(seeded, client, set
                 scorecard__evaluation__prediction_sets__version=version,
             )
             assert o.value == card.ap and o.value >= 0.4
+    # The reasonable pedestrian setup (at most 0.7): 1.5's night pedestrians miss it.
+    setup_rule = next(
+        i for i, r in enumerate(forward.criteria.last().rules) if r.get("level") == "reasonable"
+    )
+    failed = {}
+    for label in ("1.4", "1.5", "1.6"):
+        version = ModelVersion.objects.get(detector=forward, label=label)
+        judgement = verdicts.verdict_of(version).judgement
+        outcomes = Outcome.objects.filter(judgement=judgement, rule_index=setup_rule)
+        assert outcomes.count() == 3 and all(o.value is not None for o in outcomes)
+        failed[label] = sorted(str(o.split) for o in outcomes if o.status == "fail")
+    assert failed == {"1.4": [], "1.5": ["bay-night rev 2"], "1.6": []}
     settings.MEDIA_ROOT = SEEDED_MEDIA["root"]  # the page reads the primary's records
     client.force_login(get_user_model().objects.get(username="reviewer"))
     version = ModelVersion.objects.get(detector=forward, label="1.6")
