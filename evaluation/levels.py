@@ -290,8 +290,15 @@ def split_page(road_counts):
     if not road_counts:
         return None
     tables = []
-    for name, counts in road_counts["protocols"].items():
-        level_names = list(counts["levels"])
+    known = [n for n in LEVEL_PROTOCOLS if n in road_counts["protocols"]]
+    for name in known + sorted(set(road_counts["protocols"]) - set(known)):
+        counts = road_counts["protocols"][name]
+        order = LEVEL_PROTOCOLS[name].levels if name in LEVEL_PROTOCOLS else []
+        # the definition's order (the database's JSON does not keep key order)
+        level_names = sorted(
+            counts["levels"],
+            key=lambda lv: (lv not in order, order.index(lv) if lv in order else 0, lv),
+        )
         classes = []
         for per_class in counts["levels"].values():
             classes += [c for c in per_class if c not in classes]

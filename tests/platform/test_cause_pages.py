@@ -93,6 +93,7 @@ def _rescored_without(truth_dict, detections, image_id, tag="night"):
         **truth_dict,
         "images": kept,
         "annotations": [a for a in truth_dict["annotations"] if a["image_id"] in ids],
+        "dont_care": [r for r in truth_dict.get("dont_care", []) if r["image_id"] in ids],
     }
     with tempfile.TemporaryDirectory() as work:
         gt, dt = f"{work}/gt.json", f"{work}/dt.json"
