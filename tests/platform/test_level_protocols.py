@@ -164,3 +164,25 @@ def test_the_split_page_shows_the_stored_counts(road, users, client):
     assert '<td>Car</td><td class="num">' in page
     assert f'<td class="num">{moderate["Car"]}</td>' in page
     assert "don't-care region" in page or "don&#x27;t-care region" in page
+
+
+def test_the_api_gives_the_level_tables(road, users, run_tasks):
+    from rest_framework.test import APIClient
+
+    from releases import tokens
+
+    run_tasks(
+        services.submit_predictions,
+        road["version"],
+        road["split"],
+        upload("dets.zip", road["predictions"]),
+        users["engineer"],
+    )
+    api = APIClient()
+    api.credentials(HTTP_AUTHORIZATION=f"Bearer {tokens.create_token(users['reviewer'], 't')[1]}")
+    body = api.get(f"/api/v1/versions/{road['version'].pk}/results/").json()
+    (table,) = body["splits"][0]["levels"]
+    card = Evaluation.objects.get(protocol="kitti2d").scorecard
+    assert table["protocol"] == "kitti2d" and table["levels"] == ["easy", "moderate", "hard"]
+    assert table["rows"][0]["values"][1] == card.summary["AP"]
+    assert "kitti2d" not in body["splits"][0]["other_protocols"]

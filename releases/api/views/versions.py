@@ -124,7 +124,8 @@ class VersionJudgements(Endpoint, APIView):
 class VersionResults(Endpoint, APIView):
     @extend_schema(
         responses=OpenApiTypes.OBJECT,
-        summary="Per split: the primary protocol's summary, per-class rows and slices",
+        summary="Per split: the primary protocol's summary, per-class rows and slices, "
+        "and each level protocol's values per level and class",
     )
     def get(self, request, pk):
         found = _version(request, pk)
@@ -149,6 +150,8 @@ class VersionResults(Endpoint, APIView):
                         "tags": dict(entry["tags"]),
                         "sizes": dict(entry["sizes"]),
                         "other_protocols": {p: ap for p, ap in entry["others"]},
+                        # level protocols (kitti2d, miss-rate): per level x class
+                        "levels": entry["levels"],
                     }
                 )
             out.append(row)
