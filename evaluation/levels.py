@@ -205,7 +205,7 @@ def level_table(card):
     for entry in result["levels"].values():
         classes += [c for c in entry["classes"] if c not in classes]
     classes.sort(key=lambda c: (rank.index(c.lower()) if c.lower() in rank else 99, c))
-    headline = result["summary"].get("level")
+    headline = (card.summary or {}).get("level") or record.get("headline_level")
     at_headline = result["levels"].get(headline, {}).get("classes", {})
     rows = [
         {
