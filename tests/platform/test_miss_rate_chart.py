@@ -1,9 +1,10 @@
 """The miss-rate-versus-FPPI chart of the pedestrian setups on the version and compare
 pages, read from stored scorecards only.
 
-Until the worker stores miss-rate scorecards itself, ``store_miss_rate`` writes one as
-that storage keeps it: the engine's ``evaluate_setups`` output under ``result["levels"]``
-(``evaluation.levels``' result shape), for a done evaluation of the prediction set.
+The worker stores miss-rate scorecards (``evaluation.levels``: the engine's
+``evaluate_setups`` output under ``result["levels"]``); the last test goes through it.
+``store_miss_rate`` writes a scorecard in that shape directly, so the other tests can
+pick the files and versions they need.
 The curve points are the engine's, checked against the pedestrian toolbox in
 tests/engine/test_pedestrian.py; here only that the pages show exactly them.
 """
@@ -18,6 +19,7 @@ from evaluation.models import Evaluation, Scorecard
 from releases import services
 
 from .conftest import detections_for, upload
+from .test_level_setups import walkers  # noqa: F401  (a fixture: the worker stores miss-rate)
 
 pytestmark = pytest.mark.django_db
 
@@ -174,3 +176,22 @@ def test_another_teams_identical_files_lend_no_curve(
         owner.save(update_fields=["protocols"])
     client.force_login(users["reviewer"])
     assert 'data-chart="missrate"' not in client.get(f"/versions/{ours.pk}/").content.decode()
+
+
+def test_the_worker_stored_result_is_what_the_page_draws(client, users, walkers):  # noqa: F811
+    """End to end: a suite naming miss-rate, the worker scores and stores it
+    (``evaluation.levels``), and the version page's chart shows exactly the stored
+    curve of each setup and class."""
+    version = walkers["version"]
+    card = Evaluation.objects.get(protocol="miss-rate").scorecard
+    client.force_login(users["reviewer"])
+    html = client.get(f"/versions/{version.pk}/").content.decode()
+    split_pk = version.prediction_sets.current().get().split_id
+    data = _embedded(html, f"{split_pk}-0")
+    assert data["series"] == ["1.0"] and data["default_class"] == "pedestrian"
+    for setup, entry in card.result["levels"].items():
+        for name, row in entry["classes"].items():
+            shown = data["curves"][setup][name]["1.0"]
+            assert shown["fppi"] == row["curve"]["fppi"], (setup, name)
+            assert shown["miss_rate"] == row["curve"]["miss_rate"], (setup, name)
+            assert shown["lamr"] == row["miss_rate"]
