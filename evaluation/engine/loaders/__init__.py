@@ -14,15 +14,14 @@ Formats: COCO-style JSON, CSV tables, and folders or zips of KITTI, YOLO or Pasc
 VOC label files (``label_folders``), named or detected from the content.
 """
 
-import re
-
 import numpy as np
 
 from ..data import GroundTruth, Predictions
 from ..errors import InputError
-from . import attributes, checks, coco_json, csv_tables, label_folders
+from . import attributes, checks, coco_json, csv_tables, detection_blocks, label_folders
 from .cache import cached
 from .checks import BOX_POLICIES
+from .ids import csv_ids, ids_like
 
 __all__ = [
     "BOX_POLICIES",
@@ -31,10 +30,9 @@ __all__ = [
     "is_collection",
     "load_predictions",
     "load_truth",
+    "stream_predictions",
 ]
 
-_INTEGER = re.compile(r"^[+-]?\d+$")
-_INT64 = (-(2**63), 2**63 - 1)
 #: Bumped when the parsed columns change shape or meaning: old cache entries are unused.
 CACHE_SCHEMA = 5
 UNKNOWN_CLASS_POLICIES = ("reject", "drop")
@@ -172,9 +170,9 @@ def _read_truth(path, images, fmt, classes, policy, ids="any"):
         region_locate = lambda i: f"line {cols['region_lines'][i]}"  # noqa: E731
     else:
         cols = label_folders.read_truth(path, images, fmt, classes)
-        cols["image_ids"] = _csv_ids(cols["image_ids"])
-        cols["box_image_ids"] = _ids_like(cols["box_image_ids"], cols["image_ids"])
-        cols["region_image_ids"] = _ids_like(cols["region_image_ids"], cols["image_ids"])
+        cols["image_ids"] = csv_ids(cols["image_ids"])
+        cols["box_image_ids"] = ids_like(cols["box_image_ids"], cols["image_ids"])
+        cols["region_image_ids"] = ids_like(cols["region_image_ids"], cols["image_ids"])
         image_path = cols["image_path"]
         image_locate, box_locate = cols["locate_image"], cols["locate_box"]
         region_locate, box_fields = cols["locate_region"], cols["box_fields"]
@@ -283,38 +281,12 @@ def _read_truth(path, images, fmt, classes, policy, ids="any"):
     )
 
 
-def _csv_ids(values):
-    """Integer ids when every id is an integer (sorted numerically), else strings."""
-    if values and all(_INTEGER.match(v) for v in values):
-        numbers = [int(v) for v in values]
-        if _INT64[0] <= min(numbers) and max(numbers) <= _INT64[1]:
-            return np.array(numbers, np.int64)
-    return np.array(values, dtype=object).astype(str)
-
-
-def _ids_like(values, known_ids):
-    """Image ids read as text, typed like the split's ids so they can be looked up.
-
-    With integer split ids, text that is not an integer becomes an id no image has,
-    so the lookup reports it as not in the split.
-    """
-    text = np.array(values, dtype=object).astype(str) if len(values) else np.zeros(0, str)
-    if known_ids.dtype.kind != "i":
-        return text
-    converted = np.full(len(text), np.iinfo(np.int64).min, np.int64)
-    ok = np.array(
-        [bool(_INTEGER.match(v)) and _INT64[0] <= int(v) <= _INT64[1] for v in text], bool
-    )
-    converted[ok] = [int(v) for v in text[ok]]
-    return converted
-
-
 def _csv_truth_columns(path, images, classes):
     ids, widths, heights, tags, image_lines = csv_tables.read_images(images)
     boxes = csv_tables.read_boxes(path)
-    image_ids = _csv_ids(ids)
+    image_ids = csv_ids(ids)
     region = boxes["dont_care"]
-    regions = {"region_image_ids": _ids_like(_take(boxes["image_id"], region), image_ids)}
+    regions = {"region_image_ids": ids_like(_take(boxes["image_id"], region), image_ids)}
     regions["regions"], regions["region_lines"] = boxes["boxes"][region], boxes["lines"][region]
     if region.any():  # a don't-care row is no box
         keep = ~region
@@ -333,7 +305,7 @@ def _csv_truth_columns(path, images, classes):
             boxes[key] = boxes[key][keep]
         boxes["image_id"] = _take(boxes["image_id"], keep)
         boxes["label"] = _take(boxes["label"], keep)
-    box_image_ids = _ids_like(boxes["image_id"], image_ids)
+    box_image_ids = ids_like(boxes["image_id"], image_ids)
     labels = boxes["label"]
     if classes is None:
         names = sorted(set(labels))
@@ -405,23 +377,7 @@ def load_predictions(
         removed; never the default for an upload.
     ids : ``"any"`` or ``"int64"``, as for ``load_truth``
     """
-    _exists(path)
-    _check_ids_option(path, ids)
-    boxes = truth.box_policy if boxes is None else boxes
-    checks.check_policy(path, boxes)
-    if boxes != "keep":
-        missing = np.flatnonzero(np.isnan(truth.image_width) | np.isnan(truth.image_height))
-        if len(missing):
-            raise InputError(
-                truth.source,
-                f"image {checks.show(truth.image_ids[missing[0]])} has no width/height; the box "
-                f"policy '{boxes}' needs every image's size (use 'keep', or add the sizes)",
-                field="width",
-            )
-    if unknown_classes not in UNKNOWN_CLASS_POLICIES:
-        raise InputError(path, f"unknown class policy {unknown_classes!r}; use reject or drop")
-    if unknown_images not in UNKNOWN_IMAGE_POLICIES:
-        raise InputError(path, f"unknown image policy {unknown_images!r}; use reject or drop")
+    boxes = _prediction_options(path, truth, boxes, unknown_classes, unknown_images, ids)
     fmt = _format(path, fmt)
     key = {
         "kind": "predictions",
@@ -445,102 +401,91 @@ def load_predictions(
     )
 
 
+def _prediction_options(path, truth, boxes, unknown_classes, unknown_images, ids):
+    """Check the options of a predictions load; the box policy in force."""
+    _exists(path)
+    _check_ids_option(path, ids)
+    boxes = truth.box_policy if boxes is None else boxes
+    checks.check_policy(path, boxes)
+    if boxes != "keep":
+        missing = np.flatnonzero(np.isnan(truth.image_width) | np.isnan(truth.image_height))
+        if len(missing):
+            raise InputError(
+                truth.source,
+                f"image {checks.show(truth.image_ids[missing[0]])} has no width/height; the box "
+                f"policy '{boxes}' needs every image's size (use 'keep', or add the sizes)",
+                field="width",
+            )
+    if unknown_classes not in UNKNOWN_CLASS_POLICIES:
+        raise InputError(path, f"unknown class policy {unknown_classes!r}; use reject or drop")
+    if unknown_images not in UNKNOWN_IMAGE_POLICIES:
+        raise InputError(path, f"unknown image policy {unknown_images!r}; use reject or drop")
+    return boxes
+
+
+def stream_predictions(
+    path,
+    truth,
+    *,
+    fmt=None,
+    boxes=None,
+    unknown_classes="reject",
+    unknown_images="reject",
+    ids="any",
+):
+    """``load_predictions`` a block of records at a time, for JSON and CSV files:
+    yields ``detection_blocks.Resolved`` in file order, whose columns joined and whose
+    counts summed are the columns and counts of ``load_predictions`` (same options).
+    Memory follows one block (a few MB of the file), not the file. An error is raised
+    at the first block holding one, so a file that a whole load refuses is refused
+    here too (possibly naming an earlier record than the whole load's first check).
+    """
+    boxes = _prediction_options(path, truth, boxes, unknown_classes, unknown_images, ids)
+    fmt = _format(path, fmt)
+    if fmt not in detection_blocks.STREAMABLE:
+        raise InputError(path, f"{fmt} detections cannot be read a block at a time")
+    for raw in detection_blocks.raw_blocks(path, truth, fmt, ids == "any"):
+        yield detection_blocks.resolve(path, truth, raw, boxes, unknown_classes, unknown_images)
+
+
 def _read_predictions(
     path, truth, fmt, policy, unknown_classes, ids="any", *, unknown_images="reject"
 ):
-    known_images = truth.image_ids
-    drop_images = unknown_images == "drop"
-    dropped_images = 0
+    read_dropped = 0
     if fmt == "json":
-        image_ids, class_keys, boxes, score = coco_json.read_detections(path, ids == "any")
-        locate = lambda i: f"record {i}"  # noqa: E731
-        fields = {"image": "image_id", "class": "category_id", "bbox": "bbox"}
-        shown = image_ids
-        known_classes = truth.class_ids
-        # Ids beyond int64 (object arrays here, decimal text in a wide split) are
-        # matched as decimal text: int(str(n)) == n.
-        if known_images.dtype.kind != "i" or image_ids.dtype == object:
-            image_ids, known_images = image_ids.astype(str), known_images.astype(str)
-        if known_classes.dtype.kind != "i" or class_keys.dtype == object:
-            class_keys, known_classes = class_keys.astype(str), known_classes.astype(str)
+        raw = detection_blocks.json_raw(truth, *coco_json.read_detections(path, ids == "any"))
     elif fmt in label_folders.FORMATS:
-        ids, labels, boxes, score, locate, dropped_images = label_folders.read_detections(
-            path, fmt, truth, _ids_like, drop_unknown_images=drop_images
+        ids, labels, boxes, score, locate, read_dropped = label_folders.read_detections(
+            path, fmt, truth, ids_like, drop_unknown_images=unknown_images == "drop"
         )
         fields = {"image": "file name", "class": "type" if fmt == "kitti" else "class"}
         fields["bbox"] = "x1..y2" if fmt == "kitti" else "cx cy w h"
         if fmt == "voc_det":
             fields = {"image": "image_id", "class": "file name", "bbox": "xmin..ymax"}
-        class_keys = np.array(labels, dtype=object).astype(str) if labels else np.zeros(0, str)
-        known_classes = np.array(truth.classes, dtype=object).astype(str)
         shown = np.array(ids, dtype=object).astype(str) if ids else np.zeros(0, str)
-        image_ids = _ids_like(ids, truth.image_ids)
-    else:
-        ids, labels, boxes, score, lines = csv_tables.read_detections(path)
-        locate = lambda i: f"line {lines[i]}"  # noqa: E731
-        fields = {"image": "image_id", "class": "label", "bbox": "x_min..y_max"}
-        class_keys = np.array(labels, dtype=object).astype(str) if labels else np.zeros(0, str)
-        known_classes = np.array(truth.classes, dtype=object).astype(str)
-        shown = np.array(ids, dtype=object).astype(str) if ids else np.zeros(0, str)
-        image_ids = _ids_like(ids, truth.image_ids)
-    image, found = checks.resolve(path, image_ids, known_images, locate, "", "")
-    if drop_images and not found.all():
-        dropped_images += int((~found).sum())
-        rows = np.flatnonzero(found)
-        image, class_keys, boxes, score = (
-            image[found],
-            class_keys[found],
-            boxes[found],
-            score[found],
-        )
-        locate_read = locate
-        locate = lambda i: locate_read(int(rows[i]))  # noqa: E731
-    else:
-        checks.require_found(path, found, shown, locate, fields["image"], "image")
-    cls, found = checks.resolve(path, class_keys, known_classes, locate, "", "")
-    dropped = 0
-    if not found.all():
-        if unknown_classes == "reject":
-            checks.fail_at(
-                path,
-                ~found,
-                locate,
-                fields["class"],
-                lambda i: f"class {checks.show(class_keys[i])} is not one of the split's classes",
-            )
-        keep = found
-        dropped = int((~keep).sum())
-        image, cls, boxes, score = image[keep], cls[keep], boxes[keep], score[keep]
-        kept_rows = np.flatnonzero(keep)
-        locate_all = locate
-        locate = lambda i: locate_all(int(kept_rows[i]))  # noqa: E731
-    checks.check_boxes(path, boxes, locate, fields["bbox"], policy)
-    if policy == "reject":  # else scored as pycocotools does: NaN ranks last
-        checks.fail_at(
-            path,
-            ~np.isfinite(score),
+        raw = detection_blocks.Raw(
+            ids_like(ids, truth.image_ids),
+            np.array(labels, dtype=object).astype(str) if labels else np.zeros(0, str),
+            boxes,
+            score,
+            truth.image_ids,
+            np.array(truth.classes, dtype=object).astype(str),
+            shown,
             locate,
-            "score",
-            lambda i: f"must be a finite number, got {score[i]} (box policy: reject)",
+            fields,
         )
-    boxes, box_counts = checks.apply_box_policy(
-        path,
-        boxes,
-        truth.image_width[image],
-        truth.image_height[image],
-        locate,
-        policy,
-        fields["bbox"],
-    )
+    else:
+        raw = detection_blocks.csv_raw(truth, *csv_tables.read_detections(path))
+    block = detection_blocks.resolve(path, truth, raw, policy, unknown_classes, unknown_images)
     return Predictions(
-        image=image.astype(np.int32),
-        cls=cls.astype(np.int32),
-        boxes=boxes,
-        score=score,
-        dropped=dropped,
-        dropped_images=dropped_images,
+        image=block.image,
+        cls=block.cls,
+        boxes=block.boxes,
+        score=block.score,
+        dropped=block.dropped,
+        dropped_images=read_dropped + block.dropped_images,
         unknown_images=unknown_images,
         source=str(path),
         box_policy=policy,
-        box_counts={**box_counts, "non_finite_score": int((~np.isfinite(score)).sum())},
+        box_counts=block.box_counts,
     )

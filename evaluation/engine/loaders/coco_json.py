@@ -575,8 +575,22 @@ def read_detections(path, wide=False):
         f.seek(skip)
         parts = list(_stream(path, f, skip, wide=wide))
     if not parts:
-        return (np.zeros(0, np.int64), np.zeros(0, np.int64), np.zeros((0, 4)), np.zeros(0))
+        return empty_columns()
     return tuple(np.concatenate(column) for column in zip(*parts))
+
+
+def detection_blocks(path, wide=False):
+    """The columns of ``read_detections`` a slice of the file at a time (a few MB),
+    in file order: memory follows the slice, not the file."""
+    with open(path, "rb") as f:
+        skip = text_start(path, f.read(4))
+        f.seek(skip)
+        yield from _stream(path, f, skip, wide=wide)
+
+
+def empty_columns():
+    """The columns of a file without records."""
+    return (np.zeros(0, np.int64), np.zeros(0, np.int64), np.zeros((0, 4)), np.zeros(0))
 
 
 def _filled(parts, total):
@@ -593,5 +607,5 @@ def _filled(parts, total):
             columns[i][at : at + n] = values
         at += n
     if columns is None:
-        return (np.zeros(0, np.int64), np.zeros(0, np.int64), np.zeros((0, 4)), np.zeros(0))
+        return empty_columns()
     return tuple(c[:at] for c in columns)

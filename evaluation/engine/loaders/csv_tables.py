@@ -121,15 +121,28 @@ def _corner_boxes(path, block, lines):
     return np.column_stack([x1, y1, x2 - x1, y2 - y1])
 
 
+def detection_blocks(path):
+    """``(image ids, labels, xywh boxes, scores, line numbers)`` of a detections CSV,
+    a block of ``BLOCK_ROWS`` records at a time."""
+    for block, block_lines in read_blocks(path, DETECTION_COLUMNS):
+        yield (
+            block["image_id"],
+            block["label"],
+            _corner_boxes(path, block, block_lines),
+            _floats(path, block["score"], block_lines, "score"),
+            np.array(block_lines, np.int64),
+        )
+
+
 def read_detections(path):
     """Columns of a detections CSV: image ids (str), labels, xywh boxes, scores, lines."""
     ids, labels, boxes, scores, lines = [], [], [], [], []
-    for block, block_lines in read_blocks(path, DETECTION_COLUMNS):
-        ids.extend(block["image_id"])
-        labels.extend(block["label"])
-        boxes.append(_corner_boxes(path, block, block_lines))
-        scores.append(_floats(path, block["score"], block_lines, "score"))
-        lines.append(np.array(block_lines, np.int64))
+    for block_ids, block_labels, block_boxes, block_scores, block_lines in detection_blocks(path):
+        ids.extend(block_ids)
+        labels.extend(block_labels)
+        boxes.append(block_boxes)
+        scores.append(block_scores)
+        lines.append(block_lines)
     if not ids:
         return [], [], np.zeros((0, 4)), np.zeros(0), np.zeros(0, np.int64)
     return ids, labels, np.concatenate(boxes), np.concatenate(scores), np.concatenate(lines)

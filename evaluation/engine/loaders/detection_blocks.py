@@ -1,0 +1,180 @@
+"""Detections resolved against a split, a block of records at a time.
+
+``resolve`` is the one place raw detection columns (external image ids, class keys,
+boxes, scores) become engine columns: image and class lookup, the unknown-image and
+unknown-class policies, the box checks and the box policy. ``load_predictions`` calls
+it once on the whole file; ``stream`` calls it on each block of a JSON or CSV file, so
+a streamed file gives exactly the columns of a whole load, block after block (every
+check is per record, every count a sum).
+"""
+
+import dataclasses
+
+import numpy as np
+
+from . import checks, coco_json, csv_tables
+from .ids import ids_like
+
+#: Formats that can be read a block at a time.
+STREAMABLE = ("json", "csv")
+
+
+@dataclasses.dataclass
+class Raw:
+    """One block's columns as read, before lookup. ``locate(i)`` names record ``i``
+    of the block as the file counts it; ``shown``: the image ids as written."""
+
+    image_ids: np.ndarray
+    class_keys: np.ndarray
+    boxes: np.ndarray
+    score: np.ndarray
+    known_images: np.ndarray
+    known_classes: np.ndarray
+    shown: np.ndarray
+    locate: object
+    fields: dict
+
+
+@dataclasses.dataclass
+class Resolved:
+    """One block in engine columns (records of dropped images or classes left out)."""
+
+    image: np.ndarray
+    cls: np.ndarray
+    boxes: np.ndarray
+    score: np.ndarray
+    dropped: int
+    dropped_images: int
+    box_counts: dict
+
+
+def json_raw(truth, image_ids, class_keys, boxes, score, base=0):
+    """A block of a COCO-style results file (records ``base``, ``base + 1``...)."""
+    known_images, known_classes = truth.image_ids, truth.class_ids
+    shown = image_ids
+    # Ids beyond int64 (object arrays here, decimal text in a wide split) are matched
+    # as decimal text: int(str(n)) == n.
+    if known_images.dtype.kind != "i" or image_ids.dtype == object:
+        image_ids, known_images = image_ids.astype(str), known_images.astype(str)
+    if known_classes.dtype.kind != "i" or class_keys.dtype == object:
+        class_keys, known_classes = class_keys.astype(str), known_classes.astype(str)
+    return Raw(
+        image_ids,
+        class_keys,
+        boxes,
+        score,
+        known_images,
+        known_classes,
+        shown,
+        lambda i: f"record {base + i}",
+        {"image": "image_id", "class": "category_id", "bbox": "bbox"},
+    )
+
+
+def csv_raw(truth, ids, labels, boxes, score, lines):
+    """A block of a detections CSV (``lines``: each record's line number)."""
+    return Raw(
+        ids_like(ids, truth.image_ids),
+        np.array(labels, dtype=object).astype(str) if labels else np.zeros(0, str),
+        boxes,
+        score,
+        truth.image_ids,
+        np.array(truth.classes, dtype=object).astype(str),
+        np.array(ids, dtype=object).astype(str) if ids else np.zeros(0, str),
+        lambda i: f"line {lines[i]}",
+        {"image": "image_id", "class": "label", "bbox": "x_min..y_max"},
+    )
+
+
+def resolve(path, truth, raw, policy, unknown_classes, unknown_images):
+    """``Resolved`` columns of one block (see ``load_predictions`` for the policies);
+    an ``InputError`` names the file, the record and the field."""
+    image_ids, class_keys, boxes, score = raw.image_ids, raw.class_keys, raw.boxes, raw.score
+    locate, fields = raw.locate, raw.fields
+    image, found = checks.resolve(path, image_ids, raw.known_images, locate, "", "")
+    dropped_images = 0
+    if unknown_images == "drop" and not found.all():
+        dropped_images = int((~found).sum())
+        rows = np.flatnonzero(found)
+        image, class_keys, boxes, score = (
+            image[found],
+            class_keys[found],
+            boxes[found],
+            score[found],
+        )
+        locate_read = locate
+        locate = lambda i: locate_read(int(rows[i]))  # noqa: E731
+    else:
+        checks.require_found(path, found, raw.shown, locate, fields["image"], "image")
+    cls, found = checks.resolve(path, class_keys, raw.known_classes, locate, "", "")
+    dropped = 0
+    if not found.all():
+        if unknown_classes == "reject":
+            checks.fail_at(
+                path,
+                ~found,
+                locate,
+                fields["class"],
+                lambda i: f"class {checks.show(class_keys[i])} is not one of the split's classes",
+            )
+        dropped = int((~found).sum())
+        image, cls, boxes, score = image[found], cls[found], boxes[found], score[found]
+        kept_rows = np.flatnonzero(found)
+        locate_all = locate
+        locate = lambda i: locate_all(int(kept_rows[i]))  # noqa: E731
+    checks.check_boxes(path, boxes, locate, fields["bbox"], policy)
+    if policy == "reject":  # else scored as pycocotools does: NaN ranks last
+        checks.fail_at(
+            path,
+            ~np.isfinite(score),
+            locate,
+            "score",
+            lambda i: f"must be a finite number, got {score[i]} (box policy: reject)",
+        )
+    boxes, box_counts = checks.apply_box_policy(
+        path,
+        boxes,
+        truth.image_width[image],
+        truth.image_height[image],
+        locate,
+        policy,
+        fields["bbox"],
+    )
+    return Resolved(
+        image=image.astype(np.int32),
+        cls=cls.astype(np.int32),
+        boxes=boxes,
+        score=score,
+        dropped=dropped,
+        dropped_images=dropped_images,
+        box_counts={**box_counts, "non_finite_score": int((~np.isfinite(score)).sum())},
+    )
+
+
+def raw_blocks(path, truth, fmt, wide):
+    """``Raw`` blocks of a JSON or CSV detections file, in file order, at least one
+    (an empty file of records gives one empty block)."""
+    given = False
+    if fmt == "json":
+        base = 0
+        for columns in coco_json.detection_blocks(path, wide):
+            given = True
+            yield json_raw(truth, *columns, base=base)
+            base += len(columns[3])
+        if not given:
+            yield json_raw(truth, *coco_json.empty_columns())
+    elif fmt == "csv":
+        for ids, labels, boxes, score, lines in csv_tables.detection_blocks(path):
+            given = True
+            yield csv_raw(truth, ids, labels, boxes, score, lines)
+        if not given:
+            yield csv_raw(truth, [], [], np.zeros((0, 4)), np.zeros(0), np.zeros(0, np.int64))
+    else:
+        raise ValueError(f"{fmt} detections cannot be read a block at a time")
+
+
+def add_counts(total, counts):
+    """``total`` plus ``counts`` key by key (the first block's key order)."""
+    if total is None:
+        return dict(counts)
+    return {key: total[key] + counts[key] for key in total}
