@@ -170,6 +170,12 @@ def merge(shards, n_boxes):
     exactly once, are not in the order of their runs of images, or were matched under
     different settings.
     """
+    return merged_with_order(shards, n_boxes)[0]
+
+
+def merged_with_order(shards, n_boxes):
+    """``(merge(shards, n_boxes), order)``: ``order[i]`` is the position, in the shards'
+    detections one after the other, of the merged records' detection i."""
     first = shards[0][0]
     for records, _ in shards[1:]:
         same = (records.protocol, records.classes, records.tie_order, records.n_images) == (
@@ -224,7 +230,7 @@ def merge(shards, n_boxes):
         )
         gt_ignored[:, box_index] = records.gt_ignored
 
-    return MatchRecords(
+    merged = MatchRecords(
         protocol=first.protocol,
         classes=first.classes,
         area_names=first.area_names,
@@ -240,6 +246,7 @@ def merge(shards, n_boxes):
         tie_order=first.tie_order,
         **box,
     )
+    return merged, order
 
 
 def _mapped(index, table):

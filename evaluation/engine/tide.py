@@ -47,27 +47,26 @@ ERROR_TYPES = ("classification", "localisation", "both", "duplicate", "backgroun
 SPECIAL_TYPES = ("false_positives", "false_negatives")
 
 
-def class_ap(records, protocol, det_class, det_tp, det_counted, n_pos):
-    r"""AP per class at the primary slot for given per-detection flags.
+def class_ap(protocol, tie_order, n_classes, det, n_pos):
+    r"""AP per class at the primary slot, before the mean over recall points: the
+    interpolated precision (1, points, classes), or all-point AP (1, classes).
 
-    Detections are ordered by (class, score descending, then the protocol's tie order:
-    image then file position, or file position) — the records' accumulation order — and
-    the curve is read at true positives as ``curves.true_positive_points`` does:
+    ``det``: columns ``cls``, ``tp``, ``score``, ``image``, ``order`` of the detections
+    that count. They are ordered by (class, score descending, then the protocol's tie
+    order: image then file position, or file position) — the records' accumulation
+    order — and the curve is read at true positives as ``curves.true_positive_points``
+    does:
 
     .. math:: P_i = \frac{TP_i}{TP_i + FP_i + \varepsilon}, \quad R_i = \frac{TP_i}{n_{pos}}
 
-    NaN for a class with ``n_pos == 0``.
+    NaN for a class with ``n_pos == 0``. ``_ap`` takes the mean.
     """
-    n_classes = len(records.classes)
-    keep = np.flatnonzero(det_counted)
-    cls = det_class[keep]
-    if records.tie_order == "file":
-        order = np.lexsort((records.det_order[keep], -records.det_score[keep], cls))
+    cls = det["cls"]
+    if tie_order == "file":
+        order = np.lexsort((det["order"], -det["score"], cls))
     else:
-        order = np.lexsort(
-            (records.det_order[keep], records.det_image[keep], -records.det_score[keep], cls)
-        )
-    cls, tp = cls[order], det_tp[keep][order]
+        order = np.lexsort((det["order"], det["image"], -det["score"], cls))
+    cls, tp = cls[order], det["tp"][order]
     bounds = np.searchsorted(cls, np.arange(n_classes + 1))
     cum_tp = np.cumsum(tp)
     cum_all = np.arange(1, len(tp) + 1)
@@ -86,11 +85,15 @@ def class_ap(records, protocol, det_class, det_tp, det_counted, n_pos):
         totals=totals[None, :].astype(np.float64),
     )
     if protocol.recall_points is None:
-        return all_point_average_precision(points)[0]
-    precision = interpolated_precision(
+        return all_point_average_precision(points)
+    return interpolated_precision(
         points, protocol.recall_points, epsilon=protocol.precision_epsilon
     )
-    return precision.mean(axis=1)[0]
+
+
+def _ap(found):
+    """AP per class from ``class_ap``: the mean over recall points where sampled."""
+    return found.mean(axis=1)[0] if found.ndim == 3 else found[0]
 
 
 def _fixable(records):
@@ -102,6 +105,18 @@ def _fixable(records):
     return out
 
 
+def moved_detections(records, fixable):
+    """The class errors the classification fix turns into true positives of their box's
+    class: ``class`` (the box's), ``score``, ``image``, ``order`` (file position)."""
+    moved = np.flatnonzero((records.det_reason == CLS) & (fixable >= 0))
+    return {
+        "class": records.gt_class[fixable[moved]].astype(np.int64),
+        "score": records.det_score[moved],
+        "image": records.det_image[moved],
+        "order": records.det_order[moved],
+    }
+
+
 def error_breakdown(records, protocol):
     """ΔAP per TIDE error type, per class and for the mean, plus the counts behind them.
 
@@ -110,68 +125,117 @@ def error_breakdown(records, protocol):
     dict: ``background_iou``; ``mean``: ``{"AP": base mean AP, "delta": {type: ΔAP}}``;
     ``per_class``: ``{name: {"AP", "delta": {type: ΔAP}, "count": {type: n}}}``;
     ``types``: the error types in display order. Absent classes are None throughout.
-    """
-    from .reasons import BACKGROUND_IOU
 
+    ``assemble([class_parts(…)])``, as a sharded run does per group of classes.
+    """
+    records.require_reasons()
+    fixable = _fixable(records)
+    parts = class_parts(records, protocol, fixable >= 0, moved_detections(records, fixable))
+    return assemble([parts])
+
+
+def class_parts(records, protocol, has_fix, moved):
+    """Per class, what the breakdown reads of the records: the ``class_ap`` arrays of the
+    base and of each fix, the positives left by each fix and the count of each error.
+
+    ``records`` may hold a run of classes only (class indices from 0); ``has_fix`` tells
+    per detection whether its localisation / class fix finds a box (TIDE's BestGTMatch,
+    decided within its image); ``moved`` are the class errors of *any* class whose fix
+    makes them true positives of these classes (``moved_detections``, class indices
+    local). Nothing here looks across classes otherwise, so the parts of consecutive runs
+    of classes join into the whole run's (``assemble``).
+    """
     records.require_reasons()
     protocol = get_protocol(protocol)
+    n_classes = len(records.classes)
     reason = records.det_reason
-    det_class = records.det_class.astype(np.int64)
-    is_tp = reason == TP
+    det = {
+        "cls": records.det_class.astype(np.int64),
+        "tp": reason == TP,
+        "score": records.det_score,
+        "image": records.det_image,
+        "order": records.det_order,
+    }
     counted = reason != IGNORED
     n_pos = records.n_positives(0).astype(np.float64)
-    present = n_pos > 0
-    base = class_ap(records, protocol, det_class, is_tp, counted, n_pos)
-
-    fixable = _fixable(records)
     box_class = records.gt_class.astype(np.int64)
     missed = records.gt_reason == MISSED
     any_missed = np.isin(records.gt_reason, (MISSED, MISSED_LOC, MISSED_CLS))
 
-    def fixed(error):
-        cls, tp, keep, positives = det_class, is_tp, counted.copy(), n_pos
-        if error in ("classification", "localisation"):
-            code = CLS if error == "classification" else LOC
-            errors = reason == code
-            found = errors & (fixable >= 0)
-            keep &= ~(errors & ~found)
-            tp = is_tp | found
-            if code == CLS:
-                cls = np.where(found, box_class[np.maximum(fixable, 0)], det_class)
+    def ap_of(keep, tp=None, extra=None, positives=n_pos):
+        columns = {k: v[keep] for k, v in det.items()}
+        if tp is not None:
+            columns["tp"] = tp[keep]
+        if extra is not None:
+            columns = {k: np.concatenate([columns[k], extra[k]]) for k in columns}
+        return class_ap(protocol, records.tie_order, n_classes, columns, positives)
+
+    arrays = {"n_pos": n_pos, "base": ap_of(counted)}
+    for error in ERROR_TYPES + SPECIAL_TYPES:
+        positives = n_pos
+        if error == "classification":
+            # every class error leaves its class; those with a box come back as true
+            # positives of the box's class (``moved``, from whichever class they left)
+            extra = {
+                "cls": moved["class"],
+                "tp": np.ones(len(moved["class"]), bool),
+                "score": moved["score"],
+                "image": moved["image"],
+                "order": moved["order"],
+            }
+            found = ap_of(counted & (reason != CLS), extra=extra)
+        elif error == "localisation":
+            errors = reason == LOC
+            found = ap_of(counted & ~(errors & ~has_fix), tp=det["tp"] | (errors & has_fix))
         elif error in ("both", "duplicate", "background"):
-            keep &= reason != {"both": BOTH, "duplicate": DUP, "background": BKG}[error]
+            code = {"both": BOTH, "duplicate": DUP, "background": BKG}[error]
+            found = ap_of(counted & (reason != code))
         elif error == "false_positives":
-            keep &= is_tp | ~counted
+            found = ap_of(counted & (det["tp"] | ~counted))
         else:
             gone = missed if error == "missed" else any_missed
-            positives = n_pos - np.bincount(box_class[gone], minlength=len(records.classes)).astype(
-                np.float64
-            )
-        ap = class_ap(records, protocol, cls, tp, keep, positives)
-        # Every positive of a class left by the missed fix: no recall to read; AP 0, as
-        # tidecv's APDataObject.get_ap gives for a class without positives.
-        return np.where(present & (positives == 0), 0.0, ap)
+            positives = n_pos - np.bincount(box_class[gone], minlength=n_classes).astype(np.float64)
+            found = ap_of(counted, positives=positives)
+        arrays[f"fixed.{error}"] = found
+        arrays[f"positives.{error}"] = positives
+    codes = {"classification": CLS, "localisation": LOC, "both": BOTH, "duplicate": DUP}
+    codes["background"] = BKG
+    for error, code in codes.items():
+        arrays[f"count.{error}"] = np.bincount(det["cls"][reason == code], minlength=n_classes)
+    arrays["count.missed"] = np.bincount(box_class[missed], minlength=n_classes)
+    return {"arrays": arrays, "classes": list(records.classes)}
 
-    counts = {
-        "classification": reason == CLS,
-        "localisation": reason == LOC,
-        "both": reason == BOTH,
-        "duplicate": reason == DUP,
-        "background": reason == BKG,
+
+def assemble(parts):
+    """The breakdown from the ``class_parts`` of consecutive runs of classes, in order."""
+    from .reasons import BACKGROUND_IOU
+
+    names = parts[0]["arrays"]
+    arrays = {
+        name: np.ascontiguousarray(
+            np.concatenate([p["arrays"][name] for p in parts], axis=-1)
+            if len(parts) > 1
+            else parts[0]["arrays"][name]
+        )
+        for name in names
     }
-    n_classes = len(records.classes)
-    count_of = {e: np.bincount(det_class[mask], minlength=n_classes) for e, mask in counts.items()}
-    count_of["missed"] = np.bincount(box_class[missed], minlength=n_classes)
-
+    classes = [c for p in parts for c in p["classes"]]
+    n_pos = arrays["n_pos"]
+    present = n_pos > 0
+    base = _ap(arrays["base"])
     base_mean = mean_present(base)
     delta, per_class_delta = {}, {}
     for error in ERROR_TYPES + SPECIAL_TYPES:
-        ap = fixed(error)
+        ap = _ap(arrays[f"fixed.{error}"])
+        # Every positive of a class left by the missed fix: no recall to read; AP 0, as
+        # tidecv's APDataObject.get_ap gives for a class without positives.
+        ap = np.where(present & (arrays[f"positives.{error}"] == 0), 0.0, ap)
         delta[error] = _number(mean_present(np.where(present, ap, np.nan)) - base_mean)
         per_class_delta[error] = np.where(present, ap - base, np.nan)
+    count_of = {e: arrays[f"count.{e}"] for e in ERROR_TYPES}
 
     per_class = {}
-    for k, name in enumerate(records.classes):
+    for k, name in enumerate(classes):
         per_class[name] = {
             "AP": _number(base[k]) if present[k] else None,
             "delta": {e: _number(per_class_delta[e][k]) for e in delta},

@@ -1,0 +1,368 @@
+"""Class groups: score a sharded run a run of classes at a time, in bounded memory.
+
+Accumulation order is class first, and matching, accumulation, every curve and every
+TIDE fix but one stay inside a class (the classification fix moves a detection to its
+box's class; its box is in the detection's image, so its shard knows it). So after the
+image shards are matched (``shards``), each shard stores its records cut into *groups*
+of consecutive classes (``save_shard_records``: one set of ``.npz`` members per group,
+each group with its own digest), and each group is then, on any worker:
+
+1. read from every shard (``load_group_part``: only that group's members) and merged
+   (``merge_group``: ``shards.merge`` of the group, classes and boxes numbered locally);
+2. scored per class (``scoring.class_parts``, ``tide.class_parts``): arrays with the
+   class axis last and per-class rows, nothing averaged;
+3. saved (``save_group``) with its records, so that the final step
+4. joins the groups' parts in class order and takes every mean over classes, slots
+   and recall points once (``scoring.assemble``, ``tide.assemble``) — the same arrays,
+   in the same layout, that one whole run builds, so the numbers are bit for bit its
+   own — and writes the evaluation's records file column by column
+   (``write_records``), holding one group's column at a time.
+
+Within a group, box indices of the match rows are the group's (``box_index`` maps them
+to the split's); ``det_ref_box`` stays the split's and ``gt_ref_det`` is kept as the
+referred detection's file position (``gt_ref_pos``), because either may point into
+another group.
+"""
+
+import dataclasses
+import hashlib
+import io
+import json
+import zipfile
+
+import numpy as np
+
+from . import scoring, tide
+from .records import MatchRecords
+from .shards import _BOX_RECORD_FIELDS, _DET_FIELDS, merged_with_order
+
+#: Fields stored once per shard records file (the same in every group).
+_META = ("protocol", "classes", "area_names", "thresholds", "n_images", "tie_order")
+_MATCH_FIELDS = ("match_config", "match_det", "match_box", "match_iou")
+_MOVED = ("class", "score", "image", "order")
+
+
+class PartMismatch(ValueError):
+    """A group's members of a shard records file do not match their digest."""
+
+
+def plan(n_classes, n_groups):
+    """Consecutive ``(start, stop)`` runs of class indices, ``n_groups`` at most, as even
+    as possible, covering ``range(n_classes)``."""
+    n_groups = max(1, min(int(n_groups), max(n_classes, 1)))
+    edges = np.linspace(0, n_classes, n_groups + 1).round().astype(int)
+    return [(int(a), int(b)) for a, b in zip(edges[:-1], edges[1:])]
+
+
+def partition(records, box_index, groups):
+    """A matched shard's arrays, cut by class group: ``{member name: array}`` with
+    ``meta.*`` once and ``g{j}.*`` per group (``records`` from ``shards.match_shard``:
+    detection and box indices the split's, ``match_det``/``gt_ref_det`` the shard's)."""
+    records.require_reasons()
+    fixable = tide._fixable(records)
+    moved = tide.moved_detections(records, fixable)
+    bounds = records.class_bounds()
+    ref = records.gt_ref_det.astype(np.int64)
+    gt_ref_pos = np.where(ref >= 0, records.det_order[np.maximum(ref, 0)], -1)
+    members = {f"meta.{name}": np.asarray(getattr(records, name)) for name in _META}
+    for j, (lo, hi) in enumerate(groups):
+        dets = slice(int(bounds[lo]), int(bounds[hi]))
+        out = {name: getattr(records, name)[dets] for name in _DET_FIELDS}
+        out["det_outside"] = records.det_outside[:, dets]
+        out["det_fixable"] = fixable[dets] >= 0
+        rows = (records.match_det >= dets.start) & (records.match_det < dets.stop)
+        for name in _MATCH_FIELDS:
+            out[name] = getattr(records, name)[rows]
+        out["match_det"] = (out["match_det"] - dets.start).astype(records.match_det.dtype)
+        boxes = np.flatnonzero((records.gt_class >= lo) & (records.gt_class < hi))
+        for name in _BOX_RECORD_FIELDS:
+            out[name] = getattr(records, name)[boxes]
+        out["gt_ignored"] = records.gt_ignored[:, boxes]
+        out["gt_ref_pos"] = gt_ref_pos[boxes]
+        out["box_index"] = box_index[boxes]
+        into = (moved["class"] >= lo) & (moved["class"] < hi)
+        for name in _MOVED:
+            out[f"moved_{name}"] = moved[name][into]
+        out["det_class"] = (out["det_class"] - lo).astype(records.det_class.dtype)
+        out["gt_class"] = (out["gt_class"] - lo).astype(records.gt_class.dtype)
+        out["moved_class"] = out["moved_class"] - lo
+        members.update({f"g{j}.{name}": value for name, value in out.items()})
+    return members
+
+
+def save_shard_records(path, records, box_index, groups):
+    """Write a shard's records cut by class group (uncompressed ``.npz``: they live only
+    until the groups are scored); returns each group's digest (``group_digest``)."""
+    members = partition(records, box_index, groups)
+    digests = {}
+    with zipfile.ZipFile(path, "w", zipfile.ZIP_STORED) as z:
+        for name, value in members.items():
+            buffer = io.BytesIO()
+            np.lib.format.write_array(buffer, np.asanyarray(value), allow_pickle=False)
+            data = buffer.getvalue()
+            z.writestr(f"{name}.npy", data)
+            group = name.partition(".")[0]
+            digests.setdefault(group, hashlib.sha256()).update(name.encode() + data)
+    return {group: h.hexdigest() for group, h in digests.items()}
+
+
+def _read_members(path, prefixes, digests):
+    """``{name: array}`` of the members under ``prefixes``, each prefix's bytes checked
+    against ``digests[prefix]`` (when given) before any is decoded."""
+    out = {}
+    with zipfile.ZipFile(path) as z:
+        for prefix in prefixes:
+            h = hashlib.sha256()
+            raw = {}
+            for info in z.infolist():
+                name = info.filename[: -len(".npy")]
+                if name.partition(".")[0] == prefix:
+                    raw[name] = z.read(info)
+                    h.update(name.encode() + raw[name])
+            expected = (digests or {}).get(prefix)
+            if digests is not None and h.hexdigest() != expected:
+                raise PartMismatch(f"{path}: the {prefix} members do not match their digest")
+            for name, data in raw.items():
+                out[name.partition(".")[2]] = np.lib.format.read_array(
+                    io.BytesIO(data), allow_pickle=False
+                )
+    return out
+
+
+@dataclasses.dataclass(eq=False)
+class GroupPart:
+    """One shard's records of one class group (classes and box fields local)."""
+
+    records: MatchRecords
+    box_index: np.ndarray  # the split's index of each of its boxes
+    gt_ref_pos: np.ndarray
+    det_fixable: np.ndarray
+    moved: dict
+
+
+def load_group_part(path, j, digests=None):
+    """``(group j's arrays, the shared meta arrays)`` of a shard records file
+    (``save_shard_records``), both checked against ``digests`` (``{"meta": …, "g<j>":
+    …}``) when given, before anything is decoded."""
+    return _read_members(path, [f"g{j}"], digests), _read_members(path, ["meta"], digests)
+
+
+def merge_group(parts, meta, lo, hi):
+    """The records of classes ``[lo, hi)`` from every shard's ``load_group_part`` (in
+    shard order): a ``GroupPart`` whose records equal the whole run's records of those
+    classes (classes from 0, boxes in split order numbered from 0)."""
+    box_index = np.sort(np.concatenate([p["box_index"] for p in parts]).astype(np.int64))
+    local = []
+    for p in parts:
+        fields = {name: p[name] for name in _DET_FIELDS + _BOX_RECORD_FIELDS + _MATCH_FIELDS}
+        fields["match_box"] = np.searchsorted(box_index, p["match_box"]).astype(np.int32)
+        fields["gt_ref_det"] = np.full(len(p["box_index"]), -1, np.int32)
+        records = MatchRecords(
+            protocol=str(meta["protocol"]),
+            classes=tuple(str(c) for c in meta["classes"][lo:hi]),
+            area_names=tuple(str(a) for a in meta["area_names"]),
+            thresholds=meta["thresholds"][:, lo:hi],
+            n_images=int(meta["n_images"]),
+            det_outside=p["det_outside"],
+            gt_ignored=p["gt_ignored"],
+            tie_order=str(meta["tie_order"]),
+            **fields,
+        )
+        local.append((records, np.searchsorted(box_index, p["box_index"])))
+    records, order = merged_with_order(local, len(box_index))
+    gt_ref_pos = np.full(len(box_index), -1, np.int64)
+    for (_, boxes), p in zip(local, parts):
+        gt_ref_pos[boxes] = p["gt_ref_pos"]
+    return GroupPart(
+        records=records,
+        box_index=box_index,
+        gt_ref_pos=gt_ref_pos,
+        det_fixable=np.concatenate([p["det_fixable"] for p in parts])[order],
+        moved={name: np.concatenate([p[f"moved_{name}"] for p in parts]) for name in _MOVED},
+    )
+
+
+def group_parts(group, protocol, *, tag_masks=None, score_threshold=0.5):
+    """``{"scoring": …, "tide": …}``: the per-class parts of one merged group."""
+    return {
+        "scoring": scoring.class_parts(
+            group.records, protocol, tag_masks=tag_masks, score_threshold=score_threshold
+        ),
+        "tide": tide.class_parts(group.records, protocol, group.det_fixable, group.moved),
+    }
+
+
+def save_group(path, group, parts, class_start):
+    """One scored group as one uncompressed ``.npz``: its records (local numbering, the
+    maps back to the split's) and its parts (arrays, and rows as JSON)."""
+    records = group.records
+    arrays = {
+        name: getattr(records, name)
+        for name in _DET_FIELDS
+        + _BOX_RECORD_FIELDS
+        + _MATCH_FIELDS
+        + ("det_outside", "gt_ignored", "thresholds")
+    }
+    arrays.update(box_index=group.box_index, gt_ref_pos=group.gt_ref_pos)
+    arrays["class_start"] = np.array(class_start)
+    for kind in ("scoring", "tide"):
+        for name, value in parts[kind]["arrays"].items():
+            arrays[f"{kind}:{name}"] = value
+    rest = {
+        "rows": parts["scoring"]["rows"],
+        "classes": parts["scoring"]["classes"],
+        "area_names": parts["scoring"]["area_names"],
+        "tag_images": parts["scoring"]["tag_images"],
+    }
+    arrays["parts_json"] = np.array(json.dumps(rest))
+    np.savez(path, **arrays)
+
+
+def load_group_parts(path):
+    """The parts ``save_group`` stored (not the records): ``{"scoring", "tide"}``."""
+    with np.load(path, allow_pickle=False) as data:
+        rest = json.loads(str(data["parts_json"]))
+        arrays = {"scoring": {}, "tide": {}}
+        for name in data.files:
+            kind, sep, field = name.partition(":")
+            if sep:
+                arrays[kind][field] = data[name]
+    return {
+        "scoring": {**rest, "arrays": arrays["scoring"]},
+        "tide": {"arrays": arrays["tide"], "classes": rest["classes"]},
+    }
+
+
+def assemble(group_parts_in_order, protocol, *, score_threshold=0.5):
+    """``(scorecard, TIDE breakdown)`` from every group's parts, in class order."""
+    result = scoring.assemble(
+        [p["scoring"] for p in group_parts_in_order], protocol, score_threshold=score_threshold
+    )
+    return result, tide.assemble([p["tide"] for p in group_parts_in_order])
+
+
+class Totals:
+    """What ``provenance.annotate`` reads of the records, for a run whose records are
+    never held whole: the IoU table, positives per class and the detection count."""
+
+    def __init__(self, thresholds, n_pos, n_detections):
+        self.thresholds, self._n_pos, self.n_detections = thresholds, n_pos, n_detections
+
+    def n_positives(self, area=0, weights=None):
+        if area != 0 or weights is not None:
+            raise ValueError("only the unweighted positives of all sizes are kept")
+        return self._n_pos
+
+
+def totals(group_paths):
+    """``Totals`` of the groups saved at ``group_paths`` (in class order)."""
+    thresholds, n_pos, n = [], [], 0
+    for path in group_paths:
+        with np.load(path, allow_pickle=False) as data:
+            thresholds.append(data["thresholds"])
+            n_pos.append(data["scoring:n_pos"])
+            n += len(data["det_score"])
+    return Totals(np.concatenate(thresholds, axis=1), np.concatenate(n_pos), n)
+
+
+def write_records(path, group_paths, meta, n_boxes):
+    """The evaluation's records file from its groups (class order), as
+    ``MatchRecords.save`` writes it — every field, loadable by ``MatchRecords.load`` —
+    streamed one group's column at a time into the compressed ``.npz`` member.
+
+    Detections: the groups' runs one after the other (accumulation order is class
+    first). Match rows: the groups' rows, detection indices shifted by the group's
+    first detection, box indices mapped to the split's. Boxes: scattered to the split's
+    box order; ``gt_ref_det`` from the referred detection's file position.
+
+    Raises ValueError when the groups do not cover each of ``n_boxes`` boxes once.
+    """
+    opened = [np.load(p, allow_pickle=False) for p in group_paths]
+    try:
+        starts = [int(g["class_start"]) for g in opened]
+        sizes = [len(g["det_score"]) for g in opened]
+        det_offset = np.cumsum([0] + sizes)
+        boxes = [g["box_index"] for g in opened]
+        covered = np.bincount(np.concatenate(boxes), minlength=n_boxes) if boxes else []
+        if n_boxes and (len(covered) != n_boxes or (covered != 1).any()):
+            raise ValueError("the class groups do not cover every box exactly once")
+        with zipfile.ZipFile(path, "w", zipfile.ZIP_DEFLATED, compresslevel=1) as z:
+
+            def column(name, dtype, shape, chunks):
+                with z.open(f"{name}.npy", "w", force_zip64=True) as f:
+                    header = {"descr": np.lib.format.dtype_to_descr(np.dtype(dtype))}
+                    header.update(fortran_order=False, shape=tuple(int(n) for n in shape))
+                    np.lib.format.write_array_header_2_0(f, header)
+                    for chunk in chunks:
+                        f.write(np.ascontiguousarray(chunk, dtype).tobytes())
+
+            def small(name, value):
+                with z.open(f"{name}.npy", "w", force_zip64=True) as f:
+                    np.lib.format.write_array(f, np.asanyarray(value), allow_pickle=False)
+
+            for name in ("protocol", "classes", "area_names"):
+                small(name, meta[name])
+            small("thresholds", np.concatenate([g["thresholds"] for g in opened], axis=1))
+            small("n_images", meta["n_images"])
+            _write_detections(column, opened, starts)
+            _write_matches(column, opened, det_offset)
+            _write_boxes(small, opened, starts, det_offset, n_boxes)
+            small("tie_order", meta["tie_order"])
+    finally:
+        for g in opened:
+            g.close()
+
+
+def _write_detections(column, opened, starts):
+    n = sum(len(g["det_score"]) for g in opened)
+    for name in _DET_FIELDS:
+        first = opened[0][name]
+        chunks = (
+            g[name] + start if name == "det_class" else g[name] for g, start in zip(opened, starts)
+        )
+        column(name, first.dtype, (n, *first.shape[1:]), chunks)
+    outside = opened[0]["det_outside"]
+    areas = outside.shape[0]
+    rows = (g["det_outside"][a] for a in range(areas) for g in opened)
+    column("det_outside", outside.dtype, (areas, n), rows)
+
+
+def _write_matches(column, opened, det_offset):
+    n = sum(len(g["match_det"]) for g in opened)
+    for name in _MATCH_FIELDS:
+        dtype = opened[0][name].dtype
+        if name == "match_det":
+            chunks = (g[name].astype(np.int64) + off for g, off in zip(opened, det_offset))
+        elif name == "match_box":
+            chunks = (g["box_index"][g[name]] for g in opened)
+        else:
+            chunks = (g[name] for g in opened)
+        column(name, dtype, (n,), chunks)
+
+
+def _write_boxes(small, opened, starts, det_offset, n_boxes):
+    first = opened[0]
+    box = {name: np.empty(n_boxes, first[name].dtype) for name in _BOX_RECORD_FIELDS}
+    ignored = np.empty((first["gt_ignored"].shape[0], n_boxes), bool)
+    ref_pos = np.full(n_boxes, -1, np.int64)
+    for g, start in zip(opened, starts):
+        index = g["box_index"]
+        for name in _BOX_RECORD_FIELDS:
+            box[name][index] = g[name] + start if name == "gt_class" else g[name]
+        ignored[:, index] = g["gt_ignored"]
+        ref_pos[index] = g["gt_ref_pos"]
+    # the referred detections' merged indices, found group by group by file position
+    wanted = np.unique(ref_pos[ref_pos >= 0])
+    merged = np.full(len(wanted), -1, np.int64)
+    for g, off in zip(opened, det_offset):
+        order = g["det_order"]
+        hit = np.flatnonzero(np.isin(order, wanted))
+        merged[np.searchsorted(wanted, order[hit])] = off + hit
+    refers = np.flatnonzero(ref_pos >= 0)
+    box["gt_ref_det"][:] = -1
+    box["gt_ref_det"][refers] = merged[np.searchsorted(wanted, ref_pos[refers])]
+    small("gt_class", box["gt_class"])
+    small("gt_image", box["gt_image"])
+    small("gt_ignored", ignored)
+    for name in ("gt_reason", "gt_ref_det", "gt_ref_iou"):
+        small(name, box[name])
