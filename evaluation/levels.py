@@ -18,8 +18,8 @@ Stored (``scoring`` dispatches here): a ``Scorecard`` whose ``result`` keeps the
 protocol output and its definition (``protocol_record``), ``summary`` the headline
 (``AP`` = moderate AP over 40 recall positions for ``kitti2d``), and one ``SliceScore``
 of kind ``level`` per level × class ('' = the level's mean) with its AP (a miss-rate
-setup's values are read from ``result``: SliceScore has no miss-rate column yet). The
-"records" file is the protocol output as JSON.
+setup's value in the row's ``miss_rate`` column). The "records" file is the protocol
+output as JSON.
 """
 
 import json
@@ -170,24 +170,27 @@ def is_levels(result):
 
 
 def level_rows(scorecard, result):
-    """One ``SliceScore`` (kind ``level``) per level × class, '' for the level's mean."""
+    """One ``SliceScore`` (kind ``level``) per level × class, '' for the level's mean:
+    the value in ``ap`` for an AP protocol, in ``miss_rate`` for a miss-rate setup (so
+    both are plain SQL rows for history, rules and compare)."""
     from .models import SliceScore
 
-    if result["metric"] != "AP":
-        return  # SliceScore keeps AP only: a lower-is-better setup is read from the result
-    key = result["value_key"]
     for level, entry in result["levels"].items():
-        yield SliceScore(
-            scorecard=scorecard, kind="level", name=level, class_name="", ap=entry[key]
-        )
+        yield _level_row(SliceScore, scorecard, result, level, "", entry)
         for class_name, row in entry["classes"].items():
-            yield SliceScore(
-                scorecard=scorecard,
-                kind="level",
-                name=level,
-                class_name=class_name,
-                ap=row[key],
-            )
+            yield _level_row(SliceScore, scorecard, result, level, class_name, row)
+
+
+def _level_row(model, scorecard, result, level, class_name, entry):
+    column = METRIC_COLUMNS[result["metric"]]
+    value = entry.get(result["value_key"])
+    return model(
+        scorecard=scorecard, kind="level", name=level, class_name=class_name, **{column: value}
+    )
+
+
+#: The ``SliceScore`` column holding a level protocol's rule metric.
+METRIC_COLUMNS = {"AP": "ap", "miss_rate": "miss_rate"}
 
 
 def level_table(card):

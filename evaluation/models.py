@@ -230,7 +230,8 @@ class ClassScore(models.Model):
 
 class SliceScore(models.Model):
     """The rule metrics of one slice (image tag, size bucket, or a level protocol's
-    level: kind ``level``, AP only), for the mean ('' class) or a class.
+    level or setup: kind ``level``, its AP — or its log-average miss rate in
+    ``miss_rate`` for a lower-is-better setup), for the mean ('' class) or a class.
     ``all_metrics`` is False on rows stored before AP50, AP75 and recall were kept per
     slice (those columns are then unknown, not absent): readers compute them from the
     match records (``evaluation.slices``)."""
@@ -248,6 +249,7 @@ class SliceScore(models.Model):
     ap50 = models.FloatField(null=True)
     ap75 = models.FloatField(null=True)
     recall = models.FloatField(null=True)
+    miss_rate = models.FloatField(null=True)
     all_metrics = models.BooleanField(default=False)
     images = models.PositiveIntegerField(null=True)
 

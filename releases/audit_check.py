@@ -20,13 +20,23 @@ or rewritten:
 import hashlib
 from dataclasses import dataclass, field
 
+from evaluation import levels
 from evaluation.models import BenchmarkSplit, ClassScore, Evaluation, Scorecard, SliceScore
 
 from .audit import digest, verify_audit
 from .models import AuditEvent, Judgement, Outcome, SignOff
 
 RESULT_FORMAT = 1
-PARTS = ("format", "evaluation", "scorecard", "classes", "slices", "slice_metrics", "records")
+PARTS = (
+    "format",
+    "evaluation",
+    "scorecard",
+    "classes",
+    "slices",
+    "slice_metrics",
+    "slice_miss_rate",
+    "records",
+)
 DECISION_KINDS = (AuditEvent.Kind.SIGNED_OFF, AuditEvent.Kind.REJECTED, AuditEvent.Kind.OVERRIDE)
 FINISH_KINDS = (AuditEvent.Kind.EVALUATION_FINISHED, AuditEvent.Kind.EVALUATION_FAILED)
 DECISION_FIELDS = ("decision", "comment", "override", "justification", "evidence")
@@ -46,6 +56,10 @@ CLASS_COLUMNS = (
 SLICE_COLUMNS = ("kind", "name", "class_name", "ap", "images")
 #: A part of its own, so events recorded before these columns existed still verify.
 SLICE_METRIC_COLUMNS = ("kind", "name", "class_name", "ap50", "ap75", "recall", "all_metrics")
+#: The miss-rate setups' level rows, a part of their own: rows of scorecards finished
+#: before the column existed were added later (migration 0015) and must not change the
+#: ``slices`` digest their events recorded (which held no rows of those scorecards).
+SLICE_MISS_RATE_COLUMNS = ("kind", "name", "class_name", "miss_rate")
 OUTCOME_COLUMNS = (
     "version_id",
     "criteria_id",
@@ -82,7 +96,8 @@ def result_digests(evaluation_id):
     ``evaluation``: its inputs, state, error and finish time; ``scorecard``: the stored
     numbers and hashes (summary and the full result); ``classes`` and ``slices``: the
     per-class and slice rows, sorted (``slice_metrics``: the slices' AP50, AP75, recall,
-    checked only on events that recorded it); ``records``: SHA-256 of the match-records file.
+    and ``slice_miss_rate``: the miss-rate setups' rows, each checked only on events
+    that recorded it); ``records``: SHA-256 of the match-records file.
     A part that does not exist digests ``null``.
     """
     e = Evaluation.objects.filter(pk=evaluation_id).first()
@@ -119,11 +134,17 @@ def result_digests(evaluation_id):
         }
     )
     classes = ClassScore.objects.filter(scorecard__evaluation_id=evaluation_id)
-    slices = SliceScore.objects.filter(scorecard__evaluation_id=evaluation_id)
+    every_slice = SliceScore.objects.filter(scorecard__evaluation_id=evaluation_id)
+    miss_rate_protocols = [n for n, p in levels.LEVEL_PROTOCOLS.items() if p.metric == "miss_rate"]
+    setups = every_slice.filter(scorecard__protocol__in=miss_rate_protocols)
+    slices = every_slice.exclude(scorecard__protocol__in=miss_rate_protocols)
     parts["classes"] = digest(sorted(classes.values_list(*CLASS_COLUMNS), key=lambda r: r[0]))
     parts["slices"] = digest(sorted(slices.values_list(*SLICE_COLUMNS), key=lambda r: r[:3]))
     parts["slice_metrics"] = digest(
         sorted(slices.values_list(*SLICE_METRIC_COLUMNS), key=lambda r: r[:3])
+    )
+    parts["slice_miss_rate"] = digest(
+        sorted(setups.values_list(*SLICE_MISS_RATE_COLUMNS), key=lambda r: r[:3])
     )
     parts["records"] = _file_sha256(card.records) if card else None
     return parts

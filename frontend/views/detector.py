@@ -23,8 +23,12 @@ def detector(request, detector_id):
     """The chart and table carry one metric and class (default mean AP, one line per
     split name); the chart fetches another selection from the history API."""
     found = detector_or_404(request.user, detector_id)
+    # the metric selector's level choices are "metric@level" (one select, no script)
+    metric, _, level = (request.GET.get("metric") or "AP").partition("@")
     chosen = {
-        "metric": request.GET.get("metric") or "AP",
+        "metric": metric,
+        "level": level or request.GET.get("level"),
+        "setup": request.GET.get("setup"),
         "class_name": request.GET.get("class") or selectors.history.MEAN,
         "revisions": request.GET.get("revisions") or "joined",
     }

@@ -41,9 +41,20 @@ class HistoryChange(serializers.Serializer):
         return fields
 
 
+class HistorySource(serializers.Serializer):
+    metric = serializers.CharField(help_text="AP, or miss_rate for a pedestrian setup")
+    level = serializers.CharField(help_text="Pass as ?level= (or ?setup=)")
+    protocol = serializers.CharField(help_text="The level protocol holding it")
+    lower_is_better = serializers.BooleanField()
+    label = serializers.CharField()
+
+
 class History(serializers.Serializer):
-    protocol = serializers.CharField()
+    protocol = serializers.CharField(help_text="The primary protocol, or the level's")
     metric = serializers.CharField()
+    level = serializers.CharField(allow_null=True, help_text="The level or setup read")
+    lower_is_better = serializers.BooleanField(help_text="True for miss rate")
+    sources = HistorySource(many=True, help_text="The suite's levels and setups")
     class_ = serializers.CharField()
     view = serializers.ChoiceField(choices=["joined", "separate"])
     metrics = serializers.ListField(child=serializers.CharField())

@@ -2,6 +2,12 @@
 
 from ..models import PredictionSet
 from .decisions import baselines_of
+from .history_levels import (
+    LevelSourceError,
+    level_of,
+    level_source,
+    level_sources,
+)
 from .scores import METRICS, _splits
 
 MEAN = "mean"
@@ -12,7 +18,9 @@ class HistoryError(ValueError):
     """A history request named a metric, class or revision view that does not exist."""
 
 
-def history_chart(detector, metric="AP", class_name=MEAN, revisions="joined"):
+def history_chart(
+    detector, metric="AP", class_name=MEAN, revisions="joined", level=None, setup=None
+):
     """One metric of one class (``mean`` = the protocol's mean) for every version, as
     one series per split name (``revisions="joined"``) or per split revision
     (``"separate"``), values aligned with ``versions`` (None where not scored).
@@ -25,16 +33,39 @@ def history_chart(detector, metric="AP", class_name=MEAN, revisions="joined"):
     version is not computed here (it reads every set and evaluation of every version:
     seconds at 1,000 versions) — the page's table computes it for the rows it shows.
     A few queries and about 5,000 numbers at 1,000 versions x 5 splits, read as tuples.
+
+    ``level`` (a level or pedestrian setup of the suite's level protocols, e.g.
+    ``moderate`` or ``reasonable``; ``history_levels``) reads that level's rows of the
+    level protocol instead of the primary protocol's class rows; ``sources`` lists the
+    levels offered and ``lower_is_better`` the metric's direction (miss rate); a class
+    the level protocol does not evaluate (``kitti2d``: car, pedestrian, cyclist) reads
+    as not scored.
+    ``setup`` is another name for ``level`` (a pedestrian setup is a level of its
+    miss-rate protocol).
     """
     if metric not in METRICS:
         raise HistoryError(f"metric: {metric!r} is not one of {', '.join(METRICS)}")
     if revisions not in REVISION_VIEWS:
         raise HistoryError(f"revisions: {revisions!r} is not one of {', '.join(REVISION_VIEWS)}")
+    from evaluation.models import ClassScore, SliceScore
+
     classes = [MEAN, *detector.classes]
+    rows, same_class = ClassScore.objects.all(), "class_name"
+    protocol, field = detector.primary_protocol, METRICS[metric][0]
+    try:
+        level = level_of(level, setup)
+    except LevelSourceError as e:
+        raise HistoryError(str(e)) from None
+    if level:
+        try:
+            level_protocol, field = level_source(detector, metric, level)
+        except LevelSourceError as e:
+            raise HistoryError(str(e)) from None
+        protocol = level_protocol.name
+        rows = SliceScore.objects.filter(kind="level", name=level)
+        same_class = "class_name__iexact"  # level rows carry the split's spelling
     if class_name not in classes:
         raise HistoryError(f"class: {class_name!r} is not one of {', '.join(classes)}")
-    from evaluation.models import ClassScore
-
     versions = list(
         detector.versions.order_by("created_at").values_list(
             "pk", "label", "created_at", "sign_off__decision"
@@ -42,15 +73,14 @@ def history_chart(detector, metric="AP", class_name=MEAN, revisions="joined"):
     )
     position = {pk: i for i, (pk, *_) in enumerate(versions)}
     baseline = baselines_of({detector.pk}).get(detector.pk)
-    field = METRICS[metric][0]
     # All conditions on the set in one filter(): the same set row, so a version reads
     # its own sets' evaluations only (never another team's scorecard of the same
     # bytes), and two versions sharing identical bytes each get their point.
     rows = (
-        ClassScore.objects.filter(
-            class_name="" if class_name == MEAN else class_name,
+        rows.filter(
+            **{same_class: "" if class_name == MEAN else class_name},
             scorecard__evaluation__state="done",
-            scorecard__evaluation__protocol=detector.primary_protocol,
+            scorecard__evaluation__protocol=protocol,
             scorecard__evaluation__prediction_sets__replaced_at__isnull=True,
             scorecard__evaluation__prediction_sets__version__detector=detector,
         )
@@ -73,8 +103,11 @@ def history_chart(detector, metric="AP", class_name=MEAN, revisions="joined"):
     splits = sorted(_splits(split_ids), key=lambda s: (s.name, s.revision))
     series = (_joined if revisions == "joined" else _separate)(splits, numbers, position)
     return {
-        "protocol": detector.primary_protocol,
+        "protocol": protocol,
         "metric": metric,
+        "level": level or None,
+        "lower_is_better": metric == "miss_rate",
+        "sources": level_sources(detector),
         "class": class_name,
         "view": revisions,
         "metrics": list(METRICS),

@@ -90,7 +90,9 @@ def test_the_setups_are_stored_as_the_toolbox_computes_them(walkers):
     assert card.summary == {"miss_rate": reasonable, "level": "reasonable"}
     assert card.result["lower_is_better"] is True
     assert card.result["protocol_record"]["kind"] == "setups"
-    assert not SliceScore.objects.filter(scorecard=card).exists()  # no miss-rate column
+    rows = SliceScore.objects.filter(scorecard=card, name="reasonable", class_name="pedestrian")
+    expected = card.result["levels"]["reasonable"]["classes"]["pedestrian"]["miss_rate"]
+    assert [r.miss_rate for r in rows] == [expected]  # the row in SliceScore.miss_rate
 
 
 def test_a_setup_rule_is_judged_lower_is_better(walkers, users, run_tasks):

@@ -49,7 +49,15 @@
         pointStyle: d.versions.map(v => (v.id === d.baseline ? "rectRot" : "circle")),
       }));
     }
-    const title = () => `${d.metric} (${d.protocol}, 0–1)`;
+    const title = () =>
+      `${d.metric}${d.level ? ` at ${d.level}` : ""} (${d.protocol}, 0–1${d.lower_is_better ? ", lower is better" : ""})`;
+    // The metric selector's level choices are "metric@level": the API takes them apart.
+    const chosen = () => {
+      const [m, level] = metric.value.split("@");
+      const query = { metric: m, class: cls.value, revisions: revisions.value };
+      if (level) query.level = level;
+      return new URLSearchParams(query);
+    };
     const versionUrl = id => canvas.dataset.versionUrl.replace("/0/", `/${id}/`);
     const chart = new Chart(canvas, {
       type: "line",
@@ -78,10 +86,12 @@
         },
       },
     });
-    const tableShows = `${d.class === "mean" ? "mean " : `${d.class} `}${d.metric}`;
-    const tableQuery = new URLSearchParams({ metric: d.metric, class: d.class, revisions: d.view }).toString();
+    const tableShows = `${d.class === "mean" ? "mean " : `${d.class} `}${d.metric}${d.level ? ` at ${d.level}` : ""}`;
+    const tableShown = { metric: d.metric, class: d.class, revisions: d.view };
+    if (d.level) tableShown.level = d.level;
+    const tableQuery = new URLSearchParams(tableShown).toString();
     function refresh() {
-      const query = new URLSearchParams({ metric: metric.value, class: cls.value, revisions: revisions.value });
+      const query = chosen();
       status.textContent = "Loading…";
       fetch(`${canvas.dataset.url}?${query}`, { headers: { Accept: "application/json" } })
         .then(r => { if (!r.ok) throw new Error(`HTTP ${r.status}`); return r.json(); })

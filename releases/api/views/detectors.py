@@ -107,12 +107,25 @@ class DetectorHistory(Endpoint, APIView):
                 "joined (default): one line per split name, its newest scored revision "
                 "per version; separate: one line per split revision",
             ),
+            _param(
+                "level",
+                str,
+                "A level of the suite's level protocols (e.g. moderate of kitti2d, with "
+                "metric=AP): that level's numbers instead of the primary protocol's",
+            ),
+            _param(
+                "setup",
+                str,
+                "A pedestrian setup (e.g. reasonable, with metric=miss_rate; lower is "
+                "better): the same as level",
+            ),
         ],
         responses=History,
         summary="One metric and class of every version on every split",
         description="``series[].values`` is aligned with ``versions``; null where not "
         "scored; class ``mean`` is the protocol's mean. ``changes`` lists where a joined "
         "line moves to another split revision. One metric and class per request. "
+        "``sources`` lists the levels and setups offered (``?metric=&level=``). "
         "Each version's current verdict: ``GET /api/v1/versions/?detector=<id>``.",
     )
     def get(self, request, pk):
@@ -123,6 +136,8 @@ class DetectorHistory(Endpoint, APIView):
                 metric=_text(request, "metric") or "AP",
                 class_name=_text(request, "class") or "mean",
                 revisions=_text(request, "revisions") or "joined",
+                level=_text(request, "level"),
+                setup=_text(request, "setup"),
             )
         except selectors.HistoryError as e:
             name, _, message = str(e).partition(": ")
