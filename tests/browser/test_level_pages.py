@@ -56,3 +56,40 @@ def test_level_tables_fit_at_1280_and_390(page, live_server, road, users, run_ta
             page.locator(table).scroll_into_view_if_needed()
             shot(page, f"levels-{name}-{width}")
     assert not found, json.dumps(found, indent=1)
+
+
+def test_the_history_chart_draws_moderate_ap_from_the_metric_selector(
+    page, live_server, road, users, run_tasks
+):
+    """The metric selector's level choice (``AP@moderate``) fetches that level's series
+    from the history API; the chart draws the stored moderate AP and the page fits at
+    1280 and 390 px (screenshots history-level-*)."""
+    run_tasks(
+        services.submit_predictions,
+        road["version"],
+        road["split"],
+        upload("dets.zip", road["predictions"]),
+        users["engineer"],
+    )
+    page.goto(f"{live_server.url}/detectors/{road['detector'].pk}/")
+    chart = "window.benchbookCharts['history-chart']"
+    page.wait_for_function(f"window.benchbookCharts && {chart}")
+    with page.expect_response(lambda r: "level=moderate" in r.url and r.ok):
+        page.select_option("#history-class", "Car")
+        page.select_option("#history-metric", "AP@moderate")
+    page.wait_for_function(f"{chart}.options.scales.y.title.text.includes('at moderate')")
+    card = road["version"].prediction_sets.get().evaluations.get(protocol="kitti2d").scorecard
+    car = next(r.ap for r in card.slices.all() if (r.name, r.class_name) == ("moderate", "Car"))
+    assert page.evaluate(f"{chart}.data.datasets[0].data") == [round(car, 4)]
+    assert "metric=AP" in page.url and "level=moderate" in page.url
+    found = {}
+    for width, height in WIDTHS.items():
+        page.set_viewport_size({"width": width, "height": height})
+        problems = page.evaluate(MEASURE)
+        if problems:
+            found[width] = problems
+        shot(page, f"history-level-{width}")
+    assert not found, json.dumps(found, indent=1)
+    # reloaded with the API's parameters, the page keeps the selection (no script needed)
+    page.reload()
+    assert page.locator("#history-metric").input_value() == "AP@moderate"

@@ -343,6 +343,7 @@ def test_every_finished_result_is_chained_with_the_digests_of_its_rows(decided):
             "classes",
             "slices",
             "slice_metrics",
+            "slice_miss_rate",
             "records",
         }
     ok, out = _verify()
