@@ -133,6 +133,13 @@ def test_version_and_compare_pages_draw_the_log_log_chart(
     assert chart["points"][0] > 5
     page.locator(f"#missrate-{key}").scroll_into_view_if_needed()
     shot(page, "miss-rate-version-1280")
+    # one table of the setups' numbers on the version page (the per-setup table)
+    assert page.locator(f"#levels-miss-rate-{split.pk}").is_visible()
+    assert page.locator(f"#missrate-table-{key}").count() == 0
+    page.set_viewport_size({"width": 390, "height": 800})
+    page.locator(f"#levels-miss-rate-{split.pk}").scroll_into_view_if_needed()
+    shot(page, "miss-rate-version-390")
+    page.set_viewport_size({"width": 1280, "height": 900})
 
     page.goto(
         f"{live_server.url}/detectors/{detector.pk}/compare/"

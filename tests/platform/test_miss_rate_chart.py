@@ -109,10 +109,14 @@ def test_version_page_embeds_the_stored_curves(client, users, split, two_version
     assert stored["lamr"] == row["miss_rate"]
     assert data["means"]["reasonable"]["1.4"] == output["levels"]["reasonable"]["miss_rate"]
     assert 'data-chart="missrate"' in html and "Miss rate versus false positives per image" in html
+    # one table of the setups' numbers: the per-setup table (mean row first), not a
+    # second table of the means under the chart
+    assert 'id="missrate-table-' not in html
     table = re.search(
-        rf'<table class="miss-rate" id="missrate-table-{split.pk}-0">(.*?)</table>', html, re.S
+        rf'<table class="levels" id="levels-miss-rate-{split.pk}">(.*?)</table>', html, re.S
     )
-    assert f"{output['levels']['reasonable']['miss_rate']:.3f}" in table.group(1)
+    mean_row = re.search(r"<tr><td>mean</td>(.*?)</tr>", table.group(1), re.S).group(1)
+    assert f"{output['levels']['reasonable']['miss_rate']:.3f}" in mean_row
 
 
 def test_compare_page_overlays_both_versions(client, users, detector, split, two_versions):
