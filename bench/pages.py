@@ -1,7 +1,7 @@
 """Benchmark: server time of each dashboard page and API read, 1,000 versions x 5 splits.
 
     python bench/pages.py [--versions 1000] [--splits 5] [--repeat 30] [--scored 10]
-                          [--old-repeat 5]
+                          [--old-repeat 5] [--var DIR]
 
 Seeds a throw-away database (its own BENCHBOOK_VAR): splits loaded and frozen and the
 newest ``--scored`` versions' predictions uploaded and scored through the real
@@ -13,7 +13,8 @@ repeatedly with Django's test client and prints median and p95 server time. The 
 history reads are timed beside the design before one-series-per-request (a copy in
 bench/legacy/, served on extra routes of this process only), with the ratio. Fails
 (exit 1) if a p95 of the current design exceeds 150 ms. The target lives here, never
-in a unit test.
+in a unit test. ``--var DIR`` seeds into DIR and, when DIR already holds a seeded
+database, reads that one instead of seeding again (for profiling between runs).
 """
 
 import argparse
@@ -39,9 +40,11 @@ def main():
     parser.add_argument(
         "--old-repeat", type=int, default=5, help="requests of the old design (seconds each)"
     )
+    parser.add_argument("--var", help="seed into (or reuse the database seeded in) this dir")
     args = parser.parse_args()
 
-    work = tempfile.mkdtemp(prefix="benchbook-pages-")
+    work = args.var or tempfile.mkdtemp(prefix="benchbook-pages-")
+    seeded = pathlib.Path(work, "seeded")
     os.environ.update(BENCHBOOK_VAR=work, DJANGO_SETTINGS_MODULE="benchbook.settings")
     os.environ.setdefault("SECRET_KEY", secrets.token_urlsafe(32))  # a throw-away server
     os.environ.pop("DATABASE_URL", None)
@@ -50,19 +53,33 @@ def main():
     import django
 
     django.setup()
-    from django.core.files.base import ContentFile
     from django.core.management import call_command
-    from django.test import Client
     from django.test.utils import setup_test_environment
+
+    setup_test_environment()  # allows 'testserver' as a host, nothing else
+    call_command("migrate", verbosity=0)
+    if seeded.exists():
+        from releases.models import Detector
+
+        detector = Detector.objects.get(name="Forward camera")
+        lead = detector.team.memberships.get().user
+        split_id = min(detector.versions.first().prediction_sets.values_list("split", flat=True))
+        print(f"reusing {seeded.read_text()}\n")
+    else:
+        detector, lead, split_id = _seed(args)
+        seeded.write_text(f"{args.versions} versions x {args.splits} splits in {work}")
+    _measure(args, detector, lead, split_id)
+
+
+def _seed(args):
+    """The detector, its lead and the first split, seeded as the module docstring says."""
+    from django.contrib.auth import get_user_model
+    from django.core.files.base import ContentFile
 
     from evaluation import services as evaluation_services
     from releases import demo, services
 
-    setup_test_environment()  # allows 'testserver' as a host, nothing else
-    call_command("migrate", verbosity=0)
     evaluation_services.dispatch = lambda pk: None  # score below, in this process
-    from django.contrib.auth import get_user_model
-
     lead = get_user_model().objects.create_user("lead", password="x")
     team = services.create_team("Shuttle Perception", [(lead, "lead")])
     detector = services.create_detector(team, "Forward camera", demo.CLASSES, protocols=("coco",))
@@ -105,8 +122,12 @@ def main():
         f"{len(real) * args.splits} scored in {scored:.0f} s, the rest copied) "
         f"in {time.perf_counter() - started:.0f} s\n"
     )
+    return detector, lead, truths[0][0].pk
 
+
+def _measure(args, detector, lead, split_id):
     from django.conf import settings
+    from django.test import Client
 
     settings.ROOT_URLCONF = "bench.legacy.history"  # the old design's routes, this process only
     client = Client()
@@ -119,7 +140,7 @@ def main():
         "history": history,
         "version scorecard": f"/versions/{newest.pk}/",
         "compare": f"/detectors/{detector.pk}/compare/",
-        "split": f"/splits/{truths[0][0].pk}/",
+        "split": f"/splits/{split_id}/",
         "splits": "/splits/",
         # The API answers the same reads for pipelines (session auth here).
         "api history": api_history,

@@ -27,11 +27,13 @@ def history_chart(
 
     Joined: a version's point on a split name is its number on the newest revision of
     that name it was scored on; ``changes`` lists where the revision changes along the
-    line (the chart marks them). Numbers carry four decimals, rounded as Python's
-    ``round`` (the page shows three). Each version carries its decision (approved,
-    rejected or None) and ``baseline`` names the baseline; the current verdict of every
-    version is not computed here (it reads every set and evaluation of every version:
-    seconds at 1,000 versions) — the page's table computes it for the rows it shows.
+    line (the chart marks them). Numbers carry four decimals, rounded by Python's
+    correctly rounded ``round`` (a halfway case such as 0.00625 goes to 0.0063, where
+    scaling by 10^4 would give 0.0062; the page shows three). Each version carries its
+    decision (approved, rejected or None) and ``baseline`` names the baseline; the
+    current verdict of every version is not computed here (it reads every set and
+    evaluation of every version: seconds at 1,000 versions) — the page's table computes
+    it for the rows it shows.
     A few queries and about 5,000 numbers at 1,000 versions x 5 splits, read as tuples.
 
     ``level`` (a level or pedestrian setup of the suite's level protocols, e.g.
@@ -67,9 +69,9 @@ def history_chart(
     if class_name not in classes:
         raise HistoryError(f"class: {class_name!r} is not one of {', '.join(classes)}")
     versions = list(
-        detector.versions.order_by("created_at").values_list(
-            "pk", "label", "created_at", "sign_off__decision"
-        )
+        detector.versions.order_by("created_at")
+        .annotate(day=_utc_day("created_at"))
+        .values_list("pk", "label", "day", "sign_off__decision")
     )
     position = {pk: i for i, (pk, *_) in enumerate(versions)}
     baseline = baselines_of({detector.pk}).get(detector.pk)
@@ -114,12 +116,23 @@ def history_chart(
         "classes": classes,
         "baseline": baseline.pk if baseline else None,
         "versions": [
-            {"id": pk, "label": label, "date": created.date().isoformat(), "decision": decision}
-            for pk, label, created, decision in versions
+            {"id": pk, "label": label, "date": day, "decision": decision}
+            for pk, label, day, decision in versions
         ],
         "series": series,
         "changes": [change for line in series for change in _changes(line)],
     }
+
+
+def _utc_day(field):
+    """The date (YYYY-MM-DD, UTC) of a datetime column, as text from the database: both
+    backends store or cast timestamps in UTC (Django's connection time zone with
+    USE_TZ), and building 1,000 aware datetimes only to take their date was a tenth of
+    the history read."""
+    from django.db.models import CharField
+    from django.db.models.functions import Cast, Substr
+
+    return Substr(Cast(field, CharField()), 1, 10)
 
 
 def _joined(splits, numbers, position):
@@ -142,7 +155,7 @@ def _joined(splits, numbers, position):
         line, revision = line_of[split_id]
         at = position[version_id]
         if value is not None and (line["revisions"][at] or 0) < revision:
-            line["values"][at], line["revisions"][at] = _four(value), revision
+            line["values"][at], line["revisions"][at] = round(value, 4), revision
     return list(lines.values())
 
 
@@ -161,7 +174,8 @@ def _separate(splits, numbers, position):
     for (version_id, split_id), value in numbers.items():
         if value is not None:
             line, at = line_of[split_id], position[version_id]
-            line["values"][at], line["revisions"][at] = _four(value), revision_of[split_id]
+            line["values"][at] = round(value, 4)
+            line["revisions"][at] = revision_of[split_id]
     return list(line_of.values())
 
 
@@ -176,9 +190,3 @@ def _changes(line):
             out.append({"series": line["name"], "index": at, "from": before, "to": revision})
         before = revision
     return out
-
-
-def _four(value):
-    """Four decimals, rounded as Python's correctly rounded ``round`` (a halfway case
-    such as 0.00625 goes to 0.0063, where scaling by 10^4 would give 0.0062)."""
-    return None if value is None else round(value, 4)

@@ -230,3 +230,19 @@ def test_the_table_shows_a_page_of_versions_newest_first_with_their_badges(
     assert [row["version"]["label"] for row in second.context["table"]] == ["1.0"]
     # The chart still holds every version.
     assert len(second.context["chart"]["versions"]) == 4
+
+
+def test_each_version_is_dated_by_its_utc_creation_day(detector, users):
+    """The chart's date is the UTC calendar day of ``created_at`` (read as text from the
+    database): a second before and after midnight fall on two days."""
+    midnight = datetime.datetime(2026, 3, 1, tzinfo=datetime.UTC)
+    for label, at in (
+        ("late", midnight - datetime.timedelta(microseconds=500_000)),
+        ("early", midnight),
+        ("noon", midnight + datetime.timedelta(hours=12, minutes=30)),
+    ):
+        services.create_version(detector, label, users["engineer"], created_at=at)
+    chart = selectors.history_chart(detector)
+    dates = {v["label"]: v["date"] for v in chart["versions"]}
+    assert dates == {"late": "2026-02-28", "early": "2026-03-01", "noon": "2026-03-01"}
+    assert [v["label"] for v in chart["versions"]] == ["late", "early", "noon"]
