@@ -36,6 +36,7 @@ PARTS = (
     "slice_metrics",
     "slice_miss_rate",
     "records",
+    "unknown_images",
 )
 DECISION_KINDS = (AuditEvent.Kind.SIGNED_OFF, AuditEvent.Kind.REJECTED, AuditEvent.Kind.OVERRIDE)
 FINISH_KINDS = (AuditEvent.Kind.EVALUATION_FINISHED, AuditEvent.Kind.EVALUATION_FAILED)
@@ -97,8 +98,10 @@ def result_digests(evaluation_id):
     numbers and hashes (summary and the full result); ``classes`` and ``slices``: the
     per-class and slice rows, sorted (``slice_metrics``: the slices' AP50, AP75, recall,
     and ``slice_miss_rate``: the miss-rate setups' rows, each checked only on events
-    that recorded it); ``records``: SHA-256 of the match-records file.
-    A part that does not exist digests ``null``.
+    that recorded it); ``records``: SHA-256 of the match-records file;
+    ``unknown_images``: the evaluation's policy for predictions on images the split does
+    not have (reject, or drop and count), a part of its own so events recorded before it
+    still verify. A part that does not exist digests ``null``.
     """
     e = Evaluation.objects.filter(pk=evaluation_id).first()
     if e is None:
@@ -119,6 +122,7 @@ def result_digests(evaluation_id):
                 "finished_at": e.finished_at.isoformat() if e.finished_at else None,
             }
         ),
+        "unknown_images": digest(e.unknown_images),
     }
     card = Scorecard.objects.filter(evaluation_id=evaluation_id).first()
     parts["scorecard"] = digest(
@@ -152,9 +156,12 @@ def result_digests(evaluation_id):
 
 def judgement_payload(judgement):
     """The fields of a judgement that its audit event records: verdict, reasons, the
-    evaluations seen, its outcomes counted by status, and ``outcome_values``, the digest
-    of every outcome row (rule, split, class, status, value, baseline value, interval,
-    detail), so an edited value or bound is reported, not only a changed status."""
+    evaluations seen (the candidate's and, ``baseline_evaluations``, the baseline's: a
+    re-scored baseline is judged against), its outcomes counted by status, and
+    ``outcome_values``, the digest of every outcome row (rule, split, class, status,
+    value, baseline value, interval, detail), so an edited value or bound is reported,
+    not only a changed status. Events recorded before a field existed are checked on
+    the fields they carry."""
     rows = list(Outcome.objects.filter(judgement=judgement).values_list(*OUTCOME_COLUMNS))
     counts = {}
     for row in rows:
@@ -164,6 +171,7 @@ def judgement_payload(judgement):
         "verdict": judgement.verdict,
         "reasons": judgement.reasons,
         "evaluations": judgement.evaluations,
+        "baseline_evaluations": judgement.baseline_evaluations,
         "outcomes": counts,
         "outcome_values": digest(sorted(rows, key=lambda row: digest(list(row)))),
     }

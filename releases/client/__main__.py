@@ -5,6 +5,8 @@
     python -m releases.client status  --detector NAME VERSION [--wait]
     python -m releases.client compare --detector NAME VERSION_A VERSION_B
     python -m releases.client report  --detector NAME VERSION --format json|html
+    python -m releases.client rescore --detector NAME --split NAME@REVISION
+                                      [--version LABEL ...] [--wait]
 
 ``--url`` and ``--token`` default to $BENCHBOOK_URL and $BENCHBOOK_TOKEN. A split is
 ``name`` (its newest revision), ``name@revision`` or ``name:revision``;
@@ -79,6 +81,16 @@ def _parser():
     report.add_argument("version")
     report.add_argument("--format", choices=["json", "html"], default="json")
     report.add_argument("--output", help="write to this file instead of stdout")
+
+    rescore = commands.add_parser(
+        "rescore", parents=[common], help="re-score stored predictions on a new split revision"
+    )
+    rescore.add_argument("--detector", required=True)
+    rescore.add_argument("--split", required=True, help="the revision to score on")
+    rescore.add_argument(
+        "--version", action="append", dest="versions", help="version label (default: all)"
+    )
+    _wait_options(rescore)
     return parser
 
 
@@ -288,7 +300,74 @@ def report(api, args, out):
     return OK
 
 
-COMMANDS = {"submit": submit, "status": status, "compare": compare, "report": report}
+def rescore(api, args, out):
+    """Leads only (the server refuses others). Idempotent: a version already on the
+    revision is skipped with the reason. ``--wait`` waits for the new evaluations and
+    prints how many detections each dropped (images the revision no longer holds)."""
+    detector = find_detector(api, args.detector)
+    split = find_split(api, args.split)
+    payload = {"split": split["id"]}
+    if args.versions:
+        payload["versions"] = [find_version(api, detector, label)["id"] for label in args.versions]
+    result = api.post_json(f"detectors/{detector['id']}/rescore/", payload)
+    rows = [
+        [v["label"], v["status"], v["from_split"] or "", v["reason"] or ""]
+        for v in result["versions"]
+    ]
+    if rows:
+        out.write(render.table(["version", "status", "from", "reason"], rows) + "\n")
+    target = f"{split['name']} rev {split['revision']}"
+    out.write(
+        f"{detector['name']} on {target}: {result['rescored']} re-scored, "
+        f"{result['skipped']} skipped\n"
+    )
+    sets = {v["prediction_set"] for v in result["versions"] if v["status"] == "rescored"}
+    if not args.wait or not sets:
+        return OK
+    return _wait_for_rescore(api, detector, sets, args, out)
+
+
+def _wait_for_rescore(api, detector, sets, args, out):
+    """Poll the detector's re-scored sets until each evaluation of ``sets`` finished."""
+    deadline = time.monotonic() + args.wait_timeout
+    progress = render.Progress()
+    while True:
+        listed = api.get(f"detectors/{detector['id']}/rescore/")["rescored"]
+        mine = [row for row in listed if row["prediction_set"] in sets]
+        evaluations = [e for row in mine for e in row["evaluations"]]
+        done = sum(e["state"] in ("done", "failed") for e in evaluations)
+        if evaluations and done == len(evaluations):
+            break
+        progress.show(done / max(len(evaluations), 1), f"{done}/{len(evaluations)} scored")
+        if time.monotonic() > deadline:
+            progress.done()
+            raise ClientError(
+                f"--wait-timeout: {done}/{len(evaluations)} scored after {args.wait_timeout:.0f} s",
+                FAILURE,
+            )
+        time.sleep(args.poll)
+    progress.show(1.0, "scored")
+    progress.done()
+    rows = [
+        [row["version"]["label"], e["protocol"], e["state"], _dropped(e), e["error"][:60]]
+        for row in mine
+        for e in row["evaluations"]
+    ]
+    out.write(render.table(["version", "protocol", "state", "dropped", "error"], rows) + "\n")
+    return BAD_INPUT if any(e["state"] == "failed" for e in evaluations) else OK
+
+
+def _dropped(evaluation):
+    return "" if evaluation["dropped"] is None else str(evaluation["dropped"])
+
+
+COMMANDS = {
+    "submit": submit,
+    "status": status,
+    "compare": compare,
+    "report": report,
+    "rescore": rescore,
+}
 
 
 def main(argv=None, out=None):

@@ -345,3 +345,56 @@ def test_a_partial_upload_exits_3_naming_the_missing_split(
     )  # fmt: skip
     assert code == 0, out + err
     assert "2.0: pass (no release criteria set)" in out
+
+
+@pytest.mark.usefixtures("worker")
+def test_rescore_on_a_new_revision_from_the_pipeline(
+    live_server, detector, split_truth, users, run, tmp_path
+):
+    """``rescore`` re-scores every version's stored file on the relabelled split through
+    the API's one service (leads only): the real worker scores them, ``--wait`` prints
+    the detections dropped for the removed image (counted from the file: pycocotools'
+    loadRes would refuse them, so the count is the file's detections on that image);
+    again, every version is skipped with the reason; an engineer's token is refused
+    (exit 2) and nothing is stored."""
+    from evaluation.models import Evaluation
+
+    from .test_rescore import _revision
+
+    evaluation_services.load_split(
+        name="bay-night", revision=1, truth=upload("bay-night.json", split_truth)
+    )
+    _, engineer = tokens.create_token(users["engineer"], "pipeline")
+    _, lead = tokens.create_token(users["lead"], "lead")
+    detections = detections_for(split_truth)
+    code, out, err = run(
+        "submit", "--url", live_server.url, "--token", engineer, "--detector", "Forward camera",
+        "--version", "1.0", "--split", f"bay-night={_write(tmp_path / 'p.json', detections)}",
+        "--wait", "--poll", "0.3",
+    )  # fmt: skip
+    assert code == 0, out + err
+    removed = split_truth["images"][0]["id"]
+    evaluation_services.load_split(
+        name="bay-night", revision=2, truth=upload("r2.json", _revision(split_truth, removed))
+    )
+    on_removed = sum(d["image_id"] == removed for d in detections)
+    assert on_removed > 0
+    rescore = ["rescore", "--url", live_server.url, "--detector", "Forward camera"]
+    rescore += ["--split", "bay-night@2"]
+
+    before = Evaluation.objects.count()
+    code, out, err = run(*rescore, "--token", engineer)
+    assert code == 2 and "only leads" in err, out + err
+    assert Evaluation.objects.count() == before
+
+    code, out, err = run(*rescore, "--token", lead, "--wait", "--poll", "0.3")
+    assert code == 0, out + err
+    assert "Forward camera on bay-night rev 2: 1 re-scored, 0 skipped" in out
+    assert "bay-night rev 1" in out  # where the stored file came from
+    rows = [line.split() for line in out.splitlines() if line.split()[:1] == ["1.0"]]
+    scored = [row for row in rows if row[1] != "rescored"]  # one per suite protocol
+    assert scored and all(row[2:4] == ["done", str(on_removed)] for row in scored), out
+
+    code, out, err = run(*rescore, "--token", lead, "--version", "1.0")
+    assert code == 0, out + err
+    assert "0 re-scored, 1 skipped" in out and "already re-scored on" in out

@@ -345,6 +345,7 @@ def test_every_finished_result_is_chained_with_the_digests_of_its_rows(decided):
             "slice_metrics",
             "slice_miss_rate",
             "records",
+            "unknown_images",
         }
     ok, out = _verify()
     count = AuditEvent.objects.count()
@@ -374,6 +375,8 @@ EDITS = [
     ),
     ("UPDATE evaluation_evaluation SET state = 'failed', error = 'x'", "(evaluation)"),
     ("UPDATE evaluation_evaluation SET engine_version = '0.1'", "(evaluation)"),
+    # The image policy decides which predictions were scored (drop-and-count re-scores).
+    ("UPDATE evaluation_evaluation SET unknown_images = 'drop'", "(unknown_images)"),
     (
         "DELETE FROM evaluation_errorbreakdown; DELETE FROM evaluation_slicescore; "
         "DELETE FROM evaluation_classscore; "
@@ -385,6 +388,11 @@ EDITS = [
     ("DELETE FROM releases_signoff", "the decision on version {version} is gone"),
     ("UPDATE releases_judgement SET verdict = 'pass'", "no longer reads as recorded (verdict"),
     ("UPDATE releases_judgement SET reasons = '[]'", "no longer reads as recorded (reasons)"),
+    # What the candidate was compared with: the baseline's evaluations (a re-scored one).
+    (
+        'UPDATE releases_judgement SET baseline_evaluations = \'{"1": "done"}\'',
+        "no longer reads as recorded (baseline_evaluations)",
+    ),
     ("UPDATE releases_outcome SET status = 'pass'", "no longer reads as recorded (outcomes,"),
     ("DELETE FROM releases_outcome", "no longer reads as recorded (outcomes"),
     # A value or bound edited, the status left alone: only the outcome values show it.
@@ -465,10 +473,11 @@ def test_the_head_file_gets_every_event(headed):
     assert ok and f"matches {headed}" in out
 
 
-def _rewrite_chain_from(first_id, drop=(), **payload_changes):
+def _rewrite_chain_from(first_id, drop=(), edit=None, **payload_changes):
     """What an owner who knows the scheme does: edit an event, then recompute every
     digest and hash from that event on, so that the chain verifies again. ``drop``:
-    keys removed from every payload from there on."""
+    keys removed from every payload from there on; ``edit``: a function applied to
+    each of those payloads."""
     import json
 
     from releases.audit import GENESIS, digest, link_hash
@@ -480,6 +489,7 @@ def _rewrite_chain_from(first_id, drop=(), **payload_changes):
         if event.pk >= first_id:
             payload = {**event.payload, **(payload_changes if event.pk == first_id else {})}
             payload = {k: v for k, v in payload.items() if k not in drop}
+            payload = edit(payload) if edit else payload
             payload_digest = digest(payload)
             new_hash = link_hash(
                 previous, event.kind, event.actor, event.created_at, event.subject, payload_digest
@@ -587,3 +597,27 @@ def test_events_from_before_the_digests_are_a_note_not_a_finding(decided):
     assert ok, out
     assert "note: 2 evaluation event(s) from before result digests" in out
     assert "note: 1 judgement event(s) from before outcome digests" in out
+
+
+@pytest.mark.django_db
+def test_events_from_before_the_policy_and_baseline_digests_verify_as_before(decided):
+    """Evaluation events without the ``unknown_images`` part and judged events without
+    ``baseline_evaluations`` (recorded before they existed; planted by dropping them,
+    chain recomputed) verify as before; an edit of those columns is then not seen, which
+    is the limit of old events, not a finding."""
+
+    def without_policy(payload):
+        if "result" in payload:
+            result = {k: v for k, v in payload["result"].items() if k != "unknown_images"}
+            payload = {**payload, "result": result}
+        return payload
+
+    first = AuditEvent.objects.order_by("id").first().pk
+    _rewrite_chain_from(first, drop=("baseline_evaluations",), edit=without_policy)
+    ok, out = _verify()
+    assert ok, out
+    _as_owner(
+        "UPDATE evaluation_evaluation SET unknown_images = 'drop'",
+        'UPDATE releases_judgement SET baseline_evaluations = \'{"1": "done"}\'',
+    )
+    assert _verify()[0]
