@@ -166,6 +166,9 @@ BENCHBOOK_ENGINE_CACHE = Path(os.environ.get("BENCHBOOK_ENGINE_CACHE", VAR_DIR /
 # BENCHBOOK_SHARD_IMAGES images by every worker (evaluation/sharding.py).
 BENCHBOOK_SHARD_ABOVE = float(os.environ.get("BENCHBOOK_SHARD_ABOVE", 5e9))
 BENCHBOOK_SHARD_IMAGES = int(os.environ.get("BENCHBOOK_SHARD_IMAGES", 5000))
+# After the shards, the classes are scored in at most this many groups of consecutive
+# classes, one task each, on every worker (evaluation/class_groups.py).
+BENCHBOOK_CLASS_GROUPS = int(os.environ.get("BENCHBOOK_CLASS_GROUPS", 8))
 BENCHBOOK_PROTOCOLS = ("coco", "voc", "recall40")
 # Paired bootstrap behind "no significant drop" rules: replicates and seed (reproducible).
 BENCHBOOK_BOOTSTRAP_RESAMPLES = int(os.environ.get("BENCHBOOK_BOOTSTRAP_RESAMPLES", 1000))

@@ -19,17 +19,21 @@ def compute(records, protocol_name):
     """The breakdown as plain JSON (numpy numbers turned into Python ones)."""
     from .engine import tide
 
-    found = tide.error_breakdown(records, resolve_protocol(protocol_name))
+    return _plain(tide.error_breakdown(records, resolve_protocol(protocol_name)))
+
+
+def _plain(found):
     return json.loads(json.dumps(found, default=lambda value: value.item()))
 
 
-def store(scorecard, records):
-    """Store the breakdown of a scorecard being written from its ``records``."""
+def store(scorecard, records=None, found=None):
+    """Store the breakdown of a scorecard being written from its ``records``, or the
+    one a sharded run assembled from its class groups (``found``)."""
     return ErrorBreakdown.objects.create(
         scorecard=scorecard,
         records_sha256=scorecard.records_sha256,
         engine_version=engine.ENGINE_VERSION,
-        breakdown=compute(records, scorecard.protocol),
+        breakdown=_plain(found) if records is None else compute(records, scorecard.protocol),
     )
 
 

@@ -319,6 +319,11 @@ class EvaluationShard(models.Model):
     predictions_counts = models.JSONField(help_text="Counts of the whole predictions file.")
     records = models.FileField(upload_to="shards/", max_length=255, blank=True)
     records_sha256 = models.CharField(max_length=64, blank=True)
+    group_digests = models.JSONField(
+        default=dict,
+        blank=True,
+        help_text="The class-group plan the records were cut by and each group's digest.",
+    )
     seconds = models.FloatField(null=True, blank=True, help_text="Load, match and store.")
     finished_at = models.DateTimeField(null=True, blank=True)
 
@@ -329,3 +334,33 @@ class EvaluationShard(models.Model):
 
     def __str__(self):
         return f"shard {self.index} of evaluation {self.evaluation_id}"
+
+
+class EvaluationClassGroup(models.Model):
+    """One run of classes ``[class_start, class_stop)`` of a sharded evaluation
+    (``evaluation/class_groups.py``): read from every shard's records, merged and scored
+    per class; its ``records`` hold that group's merged records and per-class parts.
+
+    One row per (evaluation, index): a retried group replaces its file. Files are
+    removed when the assembled result is stored; the rows stay with their timings.
+    """
+
+    evaluation = models.ForeignKey(
+        Evaluation, on_delete=models.CASCADE, related_name="class_groups"
+    )
+    index = models.PositiveIntegerField()
+    class_start = models.PositiveIntegerField()
+    class_stop = models.PositiveIntegerField()
+    detections = models.PositiveIntegerField(null=True, blank=True)
+    records = models.FileField(upload_to="shards/", max_length=255, blank=True)
+    records_sha256 = models.CharField(max_length=64, blank=True)
+    seconds = models.FloatField(null=True, blank=True, help_text="Read, merge, score, store.")
+    finished_at = models.DateTimeField(null=True, blank=True)
+
+    class Meta:
+        constraints = [
+            models.UniqueConstraint(fields=["evaluation", "index"], name="one_row_per_class_group")
+        ]
+
+    def __str__(self):
+        return f"class group {self.index} of evaluation {self.evaluation_id}"

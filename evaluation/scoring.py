@@ -106,13 +106,17 @@ def _score(evaluation):
     return result, records, len(predictions)
 
 
-def _store(evaluation, result, records, record_count):
+def _store(evaluation, result, records, record_count, *, records_path=None, breakdown=None):
     """Write the result, if this run still holds the claim: the check and every row in
     one transaction with the evaluation locked. The records file is written inside it
-    and deleted if the transaction does not commit (no orphan files)."""
+    and deleted if the transaction does not commit (no orphan files).
+
+    A sharded run, which never holds its records whole, passes ``records=None``, the
+    records file it wrote (``records_path``) and its assembled TIDE ``breakdown``."""
     with tempfile.TemporaryDirectory() as work:
-        records_path = os.path.join(work, f"evaluation-{evaluation.pk}.npz")
-        records.save(records_path)
+        if records is not None:
+            records_path = os.path.join(work, f"evaluation-{evaluation.pk}.npz")
+            records.save(records_path)
         records_sha256 = file_sha256(records_path)
 
         def write():
@@ -136,7 +140,7 @@ def _store(evaluation, result, records, record_count):
                     ClassScore.objects.bulk_create(class_rows(scorecard, result))
                     SliceScore.objects.bulk_create(slice_rows(scorecard, result))
                     if not levels.is_levels(result):  # a level result has no match records
-                        breakdowns.store(scorecard, records)
+                        breakdowns.store(scorecard, records, breakdown)
                     PredictionFile.objects.filter(pk=evaluation.predictions_id).update(
                         record_count=record_count
                     )

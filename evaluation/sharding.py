@@ -30,8 +30,9 @@ from django.db import transaction
 from django.utils import timezone
 
 from . import engine, jobs
+from .engine import class_groups as cg
 from .engine import shards
-from .models import Evaluation, EvaluationShard
+from .models import Evaluation, EvaluationClassGroup, EvaluationShard
 from .storage import file_sha256, verified_path
 
 log = logging.getLogger(__name__)
@@ -67,6 +68,7 @@ def start(evaluation, truth, predictions):
     """Write the pieces of ``truth`` and ``predictions`` (one per shard, replacing any
     of an earlier plan) and send the shards. Call it under the evaluation's claim."""
     _discard(evaluation.shards.all())
+    _discard(evaluation.class_groups.all())
     counts = dataclasses.asdict(shards.PredictionCounts.of(predictions))
     ranges = _ranges(truth.n_images)
     rows = []
@@ -128,12 +130,14 @@ def send(evaluation_id, claim, indexes):
     chord(header)(merge_shards.si(evaluation_id, claim))
 
 
-def _budget(evaluation, unfinished, total):
-    """Progress by finished shards (50-60 % was reading, 60-95 % the shards) and a
-    lease of one lease length per unfinished shard, at least one."""
+def _budget(evaluation, unfinished, total, span=(60, 85)):
+    """Progress by finished tasks (50-60 % was reading, 60-85 % the shards, 85-95 %
+    the class groups) and a lease of one lease length per unfinished task, at least
+    one."""
     lease = datetime.timedelta(seconds=settings.BENCHBOOK_LEASE_SECONDS * max(unfinished, 1))
+    low, high = span
     jobs.held(evaluation).update(
-        progress=60 + 35 * (total - unfinished) // max(total, 1),
+        progress=low + (high - low) * (total - unfinished) // max(total, 1),
         lease_expires_at=timezone.now() + lease,
     )
 
@@ -167,12 +171,14 @@ def run_shard(evaluation_id, claim, index):
         protocol = _protocol(evaluation)
         records = shards.match_shard(truth, box_index, predictions, positions, protocol)
         del truth, predictions
+        plan = cg.plan(len(records.classes), settings.BENCHBOOK_CLASS_GROUPS)
         with tempfile.TemporaryDirectory() as work:
             path = os.path.join(work, f"evaluation-{evaluation.pk}-records-{index}.npz")
-            shards.save_shard_records(path, records, box_index)
+            digests = cg.save_shard_records(path, records, box_index, plan)
             del records
+            digests["plan"] = [list(group) for group in plan]
             jobs.with_retry(
-                lambda: _store_shard(evaluation, index, path, time.monotonic() - began),
+                lambda: _store_shard(evaluation, index, path, digests, time.monotonic() - began),
                 f"storing shard {index} of evaluation {evaluation.pk}",
             )
 
@@ -183,7 +189,7 @@ def _protocol(evaluation):
     return resolve(evaluation.protocol)
 
 
-def _store_shard(evaluation, index, path, seconds):
+def _store_shard(evaluation, index, path, digests, seconds):
     """The shard's records file and row in one transaction under the claim; a file
     written for a transaction that does not commit is deleted, and records an earlier
     delivery stored for the same shard are replaced (their file deleted after)."""
@@ -199,6 +205,7 @@ def _store_shard(evaluation, index, path, seconds):
                 row.records.save(os.path.basename(path), File(f), save=False)
             written = row.records.name
             row.records_sha256 = file_sha256(path)
+            row.group_digests = digests
             row.seconds, row.finished_at = seconds, timezone.now()
             row.save()
             unfinished = evaluation.shards.filter(records="").count()
@@ -212,73 +219,36 @@ def _store_shard(evaluation, index, path, seconds):
 
 
 def run_merge(evaluation_id, claim):
-    """The chord's callback: merge every shard's records in accumulation order, score
-    once and store the result under the claim; then drop the pieces and shard records.
-    A second run (or one after a lost claim) finds the evaluation no longer held and
-    does nothing; one that finds a shard without records leaves the evaluation to the
-    sweep (its lease runs out) and the next claim sends that shard again."""
-    from .scoring import _store, ending
-    from .services import load_truth_of
+    """The shards' chord callback: once every shard has records, the class groups
+    (``class_groups.dispatch``) merge and score them, on every worker. A callback of a
+    lost claim does nothing; one that finds a shard without records leaves the
+    evaluation to the sweep (its lease runs out) and the next claim sends that shard
+    again."""
+    from . import class_groups
 
-    evaluation = jobs.with_retry(lambda: _held(evaluation_id, claim), "merging shards")
-    if evaluation is None:
-        return
-    stored = False
-    with ending(evaluation), jobs.Lease(evaluation):
-        rows = list(evaluation.shards.order_by("index"))
-        missing = [r.index for r in rows if not r.records]
-        if missing or not rows:
-            log.warning(
-                "evaluation %s: shards %s have no records yet; not merged", evaluation.pk, missing
-            )
-            return
-        began = time.monotonic()
-        parts = []
-        for row in rows:
-            with verified_path(
-                row.records,
-                row.records_sha256,
-                f"shard:{row.pk}",
-                "shard records",
-                row.records.name,
-            ) as path:
-                parts.append(shards.load_shard_records(path))
-        truth = load_truth_of(evaluation.split, evaluation.box_policy)
-        records = shards.merge(parts, truth.n_boxes)
-        del parts
-        protocol = _protocol(evaluation)
-        counts = shards.PredictionCounts(**rows[0].predictions_counts)
-        tag_masks = {tag: truth.tag_mask(tag) for tag in truth.tags()}
-        result = engine.score_records(records, protocol, tag_masks=tag_masks)
-        engine.annotate(result, truth, counts, records, protocol)
-        log.info(
-            "evaluation %s: %d shards merged and scored in %.2f s",
-            evaluation.pk,
-            len(rows),
-            time.monotonic() - began,
-        )
-        _store(evaluation, result, records, len(counts))
-        stored = True
-    if stored:
-        _discard(rows, keep_rows=True)
+    class_groups.dispatch(evaluation_id, claim)
 
 
 def discard_files(evaluation):
-    """Delete the shard files of a finished evaluation (sent after a failure)."""
+    """Delete the shard and class-group files of a finished evaluation (after its
+    result is stored, or after a failure); the rows stay with their timings."""
     _discard(EvaluationShard.objects.filter(evaluation=evaluation), keep_rows=True)
+    _discard(EvaluationClassGroup.objects.filter(evaluation=evaluation), keep_rows=True)
 
 
 def _discard(rows, keep_rows=False):
-    """Delete the shards' files (after the merged result is stored, or before a new
-    plan); the rows are kept with their timings when ``keep_rows``."""
+    """Delete the rows' files (shards: piece and records; class groups: records) after
+    the result is stored, or before a new plan; the rows are kept with their timings
+    when ``keep_rows``."""
     for row in rows:
-        for field_file in (row.piece, row.records):
+        names = ("piece", "records") if isinstance(row, EvaluationShard) else ("records",)
+        for field_file in (getattr(row, name) for name in names):
             if field_file.name:
                 try:
                     field_file.storage.delete(field_file.name)
                 except OSError:
                     log.exception("could not delete %s", field_file.name)
         if keep_rows:
-            EvaluationShard.objects.filter(pk=row.pk).update(piece="", records="")
+            type(row).objects.filter(pk=row.pk).update(**{name: "" for name in names})
         else:
             row.delete()

@@ -6,7 +6,7 @@ beat sweep (lost messages, dead workers), not in Celery's retry counter.
 
 from celery import shared_task
 
-from . import scoring, services, sharding
+from . import class_groups, scoring, services, sharding
 
 
 @shared_task(bind=True, acks_late=True)
@@ -24,8 +24,20 @@ def score_shard(evaluation_id, claim, index):
 
 @shared_task(acks_late=True)
 def merge_shards(evaluation_id, claim):
-    """The chord's callback: merge the shards' records, score once, store."""
+    """The shards' chord callback: send the class groups (``class_groups.dispatch``)."""
     sharding.run_merge(evaluation_id, claim)
+
+
+@shared_task(acks_late=True, ignore_result=False)
+def score_class_group(evaluation_id, claim, index):
+    """Merge and score one group of classes from every shard (a chord's header)."""
+    class_groups.run_group(evaluation_id, claim, index)
+
+
+@shared_task(acks_late=True)
+def finish_class_groups(evaluation_id, claim):
+    """The groups' chord callback: assemble, write the records file, store."""
+    class_groups.run_finish(evaluation_id, claim)
 
 
 @shared_task

@@ -45,6 +45,10 @@ _MOVED = ("class", "score", "image", "order")
 class PartMismatch(ValueError):
     """A group's members of a shard records file do not match their digest."""
 
+    def __init__(self, message, expected, actual):
+        super().__init__(message)
+        self.expected, self.actual = expected, actual
+
 
 def plan(n_classes, n_groups):
     """Consecutive ``(start, stop)`` runs of class indices, ``n_groups`` at most, as even
@@ -121,7 +125,11 @@ def _read_members(path, prefixes, digests):
                     h.update(name.encode() + raw[name])
             expected = (digests or {}).get(prefix)
             if digests is not None and h.hexdigest() != expected:
-                raise PartMismatch(f"{path}: the {prefix} members do not match their digest")
+                raise PartMismatch(
+                    f"{path}: the {prefix} members do not match their digest",
+                    expected,
+                    h.hexdigest(),
+                )
             for name, data in raw.items():
                 out[name.partition(".")[2]] = np.lib.format.read_array(
                     io.BytesIO(data), allow_pickle=False
@@ -192,9 +200,10 @@ def group_parts(group, protocol, *, tag_masks=None, score_threshold=0.5):
     }
 
 
-def save_group(path, group, parts, class_start):
+def save_group(path, group, parts, class_start, meta):
     """One scored group as one uncompressed ``.npz``: its records (local numbering, the
-    maps back to the split's) and its parts (arrays, and rows as JSON)."""
+    maps back to the split's), the shards' ``meta`` and its parts (arrays, and rows as
+    JSON)."""
     records = group.records
     arrays = {
         name: getattr(records, name)
@@ -205,6 +214,7 @@ def save_group(path, group, parts, class_start):
     }
     arrays.update(box_index=group.box_index, gt_ref_pos=group.gt_ref_pos)
     arrays["class_start"] = np.array(class_start)
+    arrays.update({f"meta.{name}": meta[name] for name in _META})
     for kind in ("scoring", "tide"):
         for name, value in parts[kind]["arrays"].items():
             arrays[f"{kind}:{name}"] = value
@@ -265,7 +275,7 @@ def totals(group_paths):
     return Totals(np.concatenate(thresholds, axis=1), np.concatenate(n_pos), n)
 
 
-def write_records(path, group_paths, meta, n_boxes):
+def write_records(path, group_paths, n_boxes):
     """The evaluation's records file from its groups (class order), as
     ``MatchRecords.save`` writes it — every field, loadable by ``MatchRecords.load`` —
     streamed one group's column at a time into the compressed ``.npz`` member.
@@ -279,6 +289,7 @@ def write_records(path, group_paths, meta, n_boxes):
     """
     opened = [np.load(p, allow_pickle=False) for p in group_paths]
     try:
+        meta = {name: opened[0][f"meta.{name}"] for name in _META}
         starts = [int(g["class_start"]) for g in opened]
         sizes = [len(g["det_score"]) for g in opened]
         det_offset = np.cumsum([0] + sizes)
@@ -302,7 +313,7 @@ def write_records(path, group_paths, meta, n_boxes):
 
             for name in ("protocol", "classes", "area_names"):
                 small(name, meta[name])
-            small("thresholds", np.concatenate([g["thresholds"] for g in opened], axis=1))
+            small("thresholds", meta["thresholds"])
             small("n_images", meta["n_images"])
             _write_detections(column, opened, starts)
             _write_matches(column, opened, det_offset)

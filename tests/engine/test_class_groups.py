@@ -77,14 +77,13 @@ def _grouped(truth, predictions, protocol, images_per_shard, n_groups, tmp_path)
         group = cg.merge_group([part for part, _ in read], read[0][1], lo, hi)
         parts = cg.group_parts(group, protocol, tag_masks=tag_masks)
         path = tmp_path / f"group-{j}.npz"
-        cg.save_group(path, group, parts, lo)
+        cg.save_group(path, group, parts, lo, read[0][1])
         group_files.append(path)
     result, breakdown = cg.assemble([cg.load_group_parts(p) for p in group_files], protocol)
     totals = cg.totals(group_files)
     counts = shards.PredictionCounts.of(predictions)
     annotate(result, truth, counts, totals, protocol)
-    meta = cg._read_members(shard_files[0][0], ["meta"], None)
-    cg.write_records(tmp_path / "records.npz", group_files, meta, truth.n_boxes)
+    cg.write_records(tmp_path / "records.npz", group_files, truth.n_boxes)
     return result, breakdown, MatchRecords.load(tmp_path / "records.npz")
 
 
@@ -157,9 +156,8 @@ def test_groups_that_miss_a_box_are_refused(loaded, tmp_path):
     truth, predictions = loaded
     result = _grouped(truth, predictions, "coco", 48, 2, tmp_path)
     assert result[2].n_detections
-    meta = cg._read_members(tmp_path / "shard-0.npz", ["meta"], None)
     with pytest.raises(ValueError, match="every box exactly once"):
-        cg.write_records(tmp_path / "r.npz", [tmp_path / "group-0.npz"], meta, truth.n_boxes)
+        cg.write_records(tmp_path / "r.npz", [tmp_path / "group-0.npz"], truth.n_boxes)
 
 
 def test_plan_covers_every_class_once():

@@ -61,7 +61,7 @@ def test_an_older_scorecard_computes_once_and_stores(
 ):
     """A scorecard written before the hook: no row; the first read computes it from the
     hash-checked records and stores it; the next read uses the row."""
-    monkeypatch.setattr(breakdowns, "store", lambda scorecard, records: None)
+    monkeypatch.setattr(breakdowns, "store", lambda scorecard, records, found=None: None)
     card = _score(run_tasks, split, split_truth, version, users)
     assert not ErrorBreakdown.objects.filter(scorecard=card).exists()
     monkeypatch.undo()
@@ -81,7 +81,7 @@ def test_an_older_scorecard_with_a_changed_records_file_says_so(
     a ContentMismatch shown in place on the page, and nothing is stored."""
     from evaluation.storage import ContentMismatch
 
-    monkeypatch.setattr(breakdowns, "store", lambda scorecard, records: None)
+    monkeypatch.setattr(breakdowns, "store", lambda scorecard, records, found=None: None)
     card = _score(run_tasks, split, split_truth, version, users)
     outcomes._RECORDS.items.clear()  # read from storage again, as a fresh process
     with card.records.open("r+b") as f:

@@ -427,7 +427,7 @@ def test_a_sharded_re_score_equals_the_one_process_run(
     result equals the one-process result bit for bit (rev 2: 11 images, 4 shards)."""
     import uuid
 
-    from evaluation import sharding, tasks
+    from evaluation import class_groups, sharding, tasks
 
     rev2 = _load(rev2_truth, 2)
     detections = detections_for(split_truth, seed=6)
@@ -444,8 +444,9 @@ def test_a_sharded_re_score_equals_the_one_process_run(
         )
 
     whole = {e.protocol: e for e in request("whole")}
-    sent = []
+    sent, group_sent = [], []
     monkeypatch.setattr(sharding, "send", lambda *args: sent.append(args))
+    monkeypatch.setattr(class_groups, "send", lambda *args: group_sent.append(args))
     settings.BENCHBOOK_SHARD_ABOVE = 0
     settings.BENCHBOOK_SHARD_IMAGES = 3
     parts = request("sharded")
@@ -456,6 +457,16 @@ def test_a_sharded_re_score_equals_the_one_process_run(
                 tasks.score_shard.apply, args=[evaluation_id, claim, k], task_id=str(uuid.uuid4())
             )
         run_tasks(tasks.merge_shards.apply, args=[evaluation_id, claim], task_id=str(uuid.uuid4()))
+    for evaluation_id, claim, indexes in group_sent:
+        for k in indexes:
+            run_tasks(
+                tasks.score_class_group.apply,
+                args=[evaluation_id, claim, k],
+                task_id=str(uuid.uuid4()),
+            )
+        run_tasks(
+            tasks.finish_class_groups.apply, args=[evaluation_id, claim], task_id=str(uuid.uuid4())
+        )
     dropped = sum(1 for d in detections if d["image_id"] == removed)
     for evaluation in parts:
         evaluation.refresh_from_db()

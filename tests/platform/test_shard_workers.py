@@ -13,7 +13,7 @@ import pytest
 from django.conf import settings as django_settings
 
 from evaluation import engine
-from evaluation.models import Evaluation, EvaluationShard, Scorecard
+from evaluation.models import Evaluation, EvaluationClassGroup, EvaluationShard, Scorecard
 
 from . import test_faults
 from .conftest import detections_for
@@ -22,7 +22,8 @@ from .test_faults import _done_exactly_once, _finished, _signal_group, _submit, 
 workers = test_faults.workers  # the fault-worker fixture
 
 pytestmark = [pytest.mark.integration, pytest.mark.django_db(transaction=True)]
-SHARDED = {"BENCHBOOK_SHARD_ABOVE": 0, "BENCHBOOK_SHARD_IMAGES": 3}  # 12 images: 4 shards
+# 12 images: 4 shards; then the classes in 2 groups
+SHARDED = {"BENCHBOOK_SHARD_ABOVE": 0, "BENCHBOOK_SHARD_IMAGES": 3, "BENCHBOOK_CLASS_GROUPS": 2}
 
 
 def test_two_workers_score_the_shards_and_equal_the_engine(
@@ -43,8 +44,11 @@ def test_two_workers_score_the_shards_and_equal_the_engine(
         direct = engine.evaluate(truth, predictions, evaluation.protocol)
         as_text = json.dumps(card.summary, sort_keys=True)
         assert as_text == json.dumps(direct["summary"], sort_keys=True)  # bit for bit
+        assert card.result["per_class"] == json.loads(json.dumps(direct["per_class"]))
         shards = EvaluationShard.objects.filter(evaluation=evaluation)
         assert shards.count() == 4 and all(s.finished_at for s in shards)
+        groups = EvaluationClassGroup.objects.filter(evaluation=evaluation)
+        assert groups.count() == 2 and all(g.finished_at and not g.records for g in groups)
 
 
 def test_a_worker_killed_mid_shard_loses_only_that_shard(

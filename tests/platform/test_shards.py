@@ -17,9 +17,9 @@ import numpy as np
 import pytest
 from django.utils import timezone
 
-from evaluation import engine, jobs, sharding, tasks
+from evaluation import class_groups, engine, jobs, sharding, tasks
 from evaluation import services as evaluation_services
-from evaluation.models import Evaluation, EvaluationShard, Scorecard
+from evaluation.models import Evaluation, EvaluationClassGroup, EvaluationShard, Scorecard
 from evaluation.storage import local_path
 
 from ..engine.synthetic import make_detections
@@ -29,11 +29,17 @@ pytestmark = pytest.mark.django_db
 PROTOCOLS = ["coco", "voc", "recall40"]  # BENCHBOOK_PROTOCOLS and the third preset it runs
 
 
+GROUP_SENDS = []
+
+
 @pytest.fixture
 def sent(monkeypatch):
-    """The chords the platform sends, as ``(evaluation id, claim, shard indexes)``."""
+    """The chords the platform sends, as ``(evaluation id, claim, shard indexes)``; the
+    class groups' chords go to ``GROUP_SENDS`` (``_run`` runs them after the merge)."""
     calls = []
+    GROUP_SENDS.clear()
     monkeypatch.setattr(sharding, "send", lambda *args: calls.append(args))
+    monkeypatch.setattr(class_groups, "send", lambda *args: GROUP_SENDS.append(args))
     return calls
 
 
@@ -55,11 +61,21 @@ def _apply(run_tasks, task, *args):
     return run_tasks(task.apply, args=args, task_id=str(uuid.uuid4()), throw=True)
 
 
-def _run(run_tasks, sends, order=None):
+def _run(run_tasks, sends, order=None, group_order=None):
     for evaluation_id, claim, indexes in sends:
         for k in order or indexes:
             _apply(run_tasks, tasks.score_shard, evaluation_id, claim, k)
         _apply(run_tasks, tasks.merge_shards, evaluation_id, claim)
+        _run_groups(run_tasks, group_order)
+
+
+def _run_groups(run_tasks, order=None):
+    """Run the class groups' chords sent so far: each group task, then the callback."""
+    while GROUP_SENDS:
+        evaluation_id, claim, indexes = GROUP_SENDS.pop(0)
+        for k in order or indexes:
+            _apply(run_tasks, tasks.score_class_group, evaluation_id, claim, k)
+        _apply(run_tasks, tasks.finish_class_groups, evaluation_id, claim)
 
 
 @pytest.fixture
@@ -111,7 +127,7 @@ def test_a_retried_shard_replaces_its_records(split, tied, run_tasks, sent, shar
     assert os.path.basename(first) not in stored
     assert sum(name.startswith(f"evaluation-{evaluation.pk}-records") for name in stored) == 1
     evaluation.refresh_from_db()
-    assert evaluation.progress == 60 + 35 * 1 // 4  # progress counts finished shards
+    assert evaluation.progress == 60 + 25 * 1 // 4  # progress counts finished shards
     _run(run_tasks, sent)
     evaluation.refresh_from_db()
     assert (
@@ -154,6 +170,99 @@ def test_a_requeued_evaluation_sends_only_the_shards_without_records(
     _run(run_tasks, sent[1:])
     evaluation.refresh_from_db()
     assert (evaluation.state, evaluation.attempts) == ("done", 2)
+
+
+def _groups_sent(run_tasks, sent):
+    """Run every shard and the shards' callback; return the class groups' chord."""
+    evaluation_id, claim, indexes = sent[0]
+    for k in indexes:
+        _apply(run_tasks, tasks.score_shard, evaluation_id, claim, k)
+    _apply(run_tasks, tasks.merge_shards, evaluation_id, claim)
+    return GROUP_SENDS.pop(0)
+
+
+def test_a_class_group_run_twice_replaces_its_file_and_the_callback_waits_for_all(
+    split, tied, run_tasks, sent, sharded
+):
+    sharded.BENCHBOOK_CLASS_GROUPS = 2
+    (evaluation,) = _request(run_tasks, split, tied, "t", ["coco"])
+    evaluation_id, claim, indexes = _groups_sent(run_tasks, sent)
+    assert indexes == [0, 1]
+    rows = EvaluationClassGroup.objects.filter(evaluation=evaluation).order_by("index")
+    assert [(r.class_start, r.class_stop) for r in rows] == [(0, 1), (1, 3)] or [
+        (r.class_start, r.class_stop) for r in rows
+    ] == [(0, 2), (2, 3)]
+    _apply(run_tasks, tasks.score_class_group, evaluation_id, claim, 1)
+    first = EvaluationClassGroup.objects.get(evaluation=evaluation, index=1).records.name
+    _apply(run_tasks, tasks.score_class_group, evaluation_id, claim, 1)  # redelivered
+    row = EvaluationClassGroup.objects.get(evaluation=evaluation, index=1)
+    assert row.records.name != first and not os.path.exists(os.path.join(sharded.MEDIA_ROOT, first))
+    assert EvaluationClassGroup.objects.filter(evaluation=evaluation).count() == 2
+    evaluation.refresh_from_db()
+    assert evaluation.progress == 85 + 10 * 1 // 2  # progress counts finished groups
+    _apply(run_tasks, tasks.finish_class_groups, evaluation_id, claim)  # group 0 missing
+    evaluation.refresh_from_db()
+    assert evaluation.state == "running" and not Scorecard.objects.exists()
+    _apply(run_tasks, tasks.merge_shards, evaluation_id, claim)  # the shards' callback again
+    assert GROUP_SENDS.pop(0)[2] == [0]  # only the group without a file is sent again
+    _apply(run_tasks, tasks.score_class_group, evaluation_id, claim, 0)
+    _apply(run_tasks, tasks.finish_class_groups, evaluation_id, claim)
+    _apply(run_tasks, tasks.finish_class_groups, evaluation_id, claim)  # again: no-op
+    evaluation.refresh_from_db()
+    assert evaluation.state == "done" and Scorecard.objects.count() == 1
+    assert not any(r.records for r in EvaluationClassGroup.objects.all())  # files removed
+    assert all(
+        r.seconds > 0 and r.detections is not None for r in EvaluationClassGroup.objects.all()
+    )
+    assert not os.listdir(os.path.join(sharded.MEDIA_ROOT, "shards"))
+
+
+def test_class_groups_of_a_lost_claim_drop_their_work(split, tied, run_tasks, sent, sharded):
+    """The lease ran out while the groups ran: the sweep requeues, the next claim finds
+    every shard with records and sends only the groups without a file; the old claim's
+    late group and callback store nothing."""
+    sharded.BENCHBOOK_CLASS_GROUPS = 3
+    (evaluation,) = _request(run_tasks, split, tied, "t", ["coco"])
+    evaluation_id, old_claim, indexes = _groups_sent(run_tasks, sent)
+    _apply(run_tasks, tasks.score_class_group, evaluation_id, old_claim, 0)
+    Evaluation.objects.filter(pk=evaluation_id).update(
+        lease_expires_at=timezone.now() - timezone.timedelta(seconds=1)
+    )
+    assert run_tasks(evaluation_services.requeue_stalled) == [evaluation_id]
+    new_id, new_claim, shard_indexes = sent[1]
+    assert shard_indexes == [] and new_claim != old_claim
+    _apply(run_tasks, tasks.merge_shards, evaluation_id, new_claim)
+    assert GROUP_SENDS.pop(0) == (evaluation_id, new_claim, [1, 2])
+    _apply(run_tasks, tasks.score_class_group, evaluation_id, old_claim, 1)  # late: dropped
+    assert not EvaluationClassGroup.objects.get(evaluation=evaluation, index=1).records
+    _apply(run_tasks, tasks.finish_class_groups, evaluation_id, old_claim)  # dropped too
+    assert not Scorecard.objects.exists()
+    for k in (2, 1):
+        _apply(run_tasks, tasks.score_class_group, evaluation_id, new_claim, k)
+    _apply(run_tasks, tasks.finish_class_groups, evaluation_id, new_claim)
+    evaluation.refresh_from_db()
+    assert (evaluation.state, evaluation.attempts) == ("done", 2)
+
+
+def test_changed_shard_records_fail_the_group_with_a_message(split, tied, run_tasks, sent, sharded):
+    """A group's members of a shard's records no longer match the digest the shard
+    stored: the evaluation fails naming the file, nothing is stored, files are removed."""
+    sharded.BENCHBOOK_CLASS_GROUPS = 2
+    (evaluation,) = _request(run_tasks, split, tied, "t", ["coco"])
+    evaluation_id, claim, indexes = sent[0]
+    for k in indexes:
+        _apply(run_tasks, tasks.score_shard, evaluation_id, claim, k)
+    row = EvaluationShard.objects.get(evaluation=evaluation, index=2)
+    EvaluationShard.objects.filter(pk=row.pk).update(
+        group_digests={**row.group_digests, "g1": "0" * 64}
+    )
+    _apply(run_tasks, tasks.merge_shards, evaluation_id, claim)
+    _run_groups(run_tasks)
+    evaluation.refresh_from_db()
+    assert evaluation.state == "failed" and not Scorecard.objects.exists()
+    assert evaluation.error.startswith("shard records does not match its hash: shards/")
+    assert not any(r.records for r in EvaluationClassGroup.objects.all())
+    assert not any(r.piece or r.records for r in EvaluationShard.objects.all())
 
 
 def test_the_lease_covers_the_queued_shards_and_renewals_never_shorten_it(
