@@ -326,6 +326,28 @@ def _load_predictions(path, truth, name, boxes="keep", *, unknown_images="reject
     """The engine's predictions of the file at ``path``, uploaded as ``name`` (the
     format follows the name) under the box policy ``boxes``; errors name the file as
     uploaded. ``unknown_images="drop"`` only for a re-scored file (``Evaluation``)."""
+    with _under_name(path, name) as path:
+        return _load_named(path, truth, name, boxes, unknown_images)
+
+
+@contextlib.contextmanager
+def _under_name(path, name):
+    """``path`` seen under the name it was uploaded as, when that name carries
+    meaning: a lone VOC result file's class is in its name
+    (``comp4_det_test_car.txt``), and the stored file may carry another name (the
+    same bytes uploaded first under another name, or an object store's temporary
+    copy). A link in a temporary folder; other files are read where they are."""
+    base = os.path.basename(name or "")
+    if not engine.is_voc_result_name(base) or os.path.basename(path) == base:
+        yield path
+        return
+    with tempfile.TemporaryDirectory() as folder:
+        named = os.path.join(folder, base)
+        os.symlink(os.path.abspath(path), named)
+        yield named
+
+
+def _load_named(path, truth, name, boxes, unknown_images):
     try:
         return engine.load_predictions(
             path,
@@ -362,7 +384,8 @@ def request_evaluations(
     ``box_policy`` (``engine.BOX_POLICIES``) is part of what is evaluated: the same
     file under another policy is another evaluation. ``scope`` is the requester's opaque
     key: another scope never reuses these rows. ``file_name`` is the file's name as
-    this requester uploaded it (kept by a new evaluation, for its messages).
+    this requester uploaded it (kept by a new evaluation, for its messages and, for a
+    lone VOC result file, its class: such a name is part of the key).
     """
     if box_policy not in engine.BOX_POLICIES:
         raise engine.InputError(
@@ -370,6 +393,11 @@ def request_evaluations(
         )
     if unknown_images not in Evaluation.UnknownImages.values:
         raise engine.InputError("unknown_images", f"unknown image policy {unknown_images!r}")
+    if engine.is_voc_result_name(os.path.basename(file_name)):
+        # A lone VOC result file's class is in its name: the same bytes under another
+        # name are other detections, so another evaluation (its scope says which name).
+        named = hashlib.sha256(os.path.basename(file_name).encode()).hexdigest()[:16]
+        scope = f"{scope}/voc-result:{named}"
     evaluations = []
     for protocol in protocols:
         resolve_protocol(protocol)

@@ -20,7 +20,8 @@ class PredictionsForm(forms.Form):
     version = forms.CharField(max_length=64, help_text="An existing label, or a new one")
     split = forms.ModelChoiceField(queryset=BenchmarkSplit.objects.all())
     predictions = forms.FileField(
-        help_text="COCO-style results JSON, CSV, or a zip of KITTI or YOLO label files"
+        help_text="COCO-style results JSON, CSV, a zip of KITTI, YOLO or VOC label files "
+        "or VOC result files, or one class's VOC result file (comp4_det_test_car.txt)"
     )
     source_commit = forms.CharField(max_length=64, required=False)
     notes = forms.CharField(required=False, widget=forms.Textarea(attrs={"rows": 2}))

@@ -19,6 +19,7 @@ from .errors import InputError
 from .evaluate import counts, evaluate
 from .loaders import BOX_POLICIES, detect_format, is_collection, load_predictions, load_truth
 from .loaders.cache import Cache
+from .loaders.voc_results import is_result_file as is_voc_result_name
 from .matching import match
 from .pedestrian import MISS_RATE_PRESETS, evaluate_setups, setup_counts
 from .protocols import PRESETS, Protocol, get_protocol, protocol_from_dict
@@ -50,6 +51,7 @@ __all__ = [
     "get_protocol",
     "headline",
     "is_collection",
+    "is_voc_result_name",
     "level_counts",
     "load_predictions",
     "load_truth",

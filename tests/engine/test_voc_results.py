@@ -18,6 +18,7 @@ from evaluation.engine import (
     load_predictions,
     load_truth,
 )
+from evaluation.engine.__main__ import main
 
 from .synthetic import make_detections, make_split
 
@@ -140,3 +141,43 @@ def test_two_files_of_one_class_and_result_files_as_ground_truth_are_refused(cas
     assert "two result files for class" in str(_error(folder, truth))
     with pytest.raises(InputError, match="hold detections only"):
         load_truth(folder)
+
+
+@pytest.mark.parametrize("protocol", ["voc07", "coco"])
+def test_a_lone_result_file_scores_as_its_class_given_in_coco_json(tmp_path, protocol, capsys):
+    """One class's result file on its own (``comp4_det_test_<class>.txt``, the class
+    from its name as the devkit's ``VOCopts.detrespath`` names it) scores as that
+    class's detections in COCO JSON, the other classes undetected."""
+    split, detections = _scenario(6)
+    detections.sort(key=lambda d: d["category_id"])
+    (tmp_path / "gt.json").write_text(json.dumps(split))
+    truth = load_truth(tmp_path / "gt.json")
+    folder = _write_results(tmp_path / "r", split, detections)
+    name = split["categories"][1]["name"]
+    lone = folder / f"comp4_det_test_{name}.txt"
+    assert detect_format(lone) == "voc_det"
+    only = [d for d in detections if d["category_id"] == split["categories"][1]["id"]]
+    (tmp_path / "dt.json").write_text(json.dumps(only))
+    ours = evaluate(truth, load_predictions(lone, truth, cache_dir=tmp_path / "c"), protocol)
+    reference = evaluate(truth, load_predictions(tmp_path / "dt.json", truth), protocol)
+    assert ours["summary"] == reference["summary"] and ours["per_class"] == reference["per_class"]
+    # the command line reads it the same way
+    args = ["score", "--truth", str(tmp_path / "gt.json"), "--predictions", str(lone)]
+    assert main([*args, "--protocol", protocol, "--format", "json"]) == 0
+    assert json.loads(capsys.readouterr().out)["summary"] == reference["summary"]
+    # the same bytes under another class's name are that class's detections (the
+    # cache keys a lone result file by its name too)
+    other = split["categories"][0]["name"]
+    renamed = tmp_path / f"comp4_det_test_{other}.txt"
+    renamed.write_bytes(lone.read_bytes())
+    again = load_predictions(renamed, truth, cache_dir=tmp_path / "c")
+    assert set(np.asarray(truth.classes)[again.cls]) == {other}
+
+
+def test_a_lone_result_file_names_its_line_and_field(case):
+    truth, _, first = case
+    first.write_text(first.read_text() + "000001 0.5 1 2 x 4\n")
+    error = _error(first, truth)
+    lines = len(first.read_text().splitlines())
+    assert error.record == f"{first.name} line {lines}" and error.field == "xmax"
+    assert "expected a number, got 'x'" in str(error)

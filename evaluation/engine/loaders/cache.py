@@ -23,6 +23,7 @@ import tempfile
 import numpy as np
 
 from ..data import GroundTruth, Predictions
+from .members import is_single_result
 
 _TYPES = {"truth": GroundTruth, "predictions": Predictions}
 _BLOCK = 1 << 20
@@ -78,6 +79,8 @@ def _folder_sha256(path):
 def cache_key(sources, options):
     digest = hashlib.sha256(json.dumps(options, sort_keys=True).encode())
     for path in sources:
+        if is_single_result(path):  # its class is in its name, not its bytes
+            digest.update(f"voc result file {os.path.basename(path)}\0".encode())
         digest.update(file_sha256(path).encode())
     return digest.hexdigest()
 

@@ -1,7 +1,8 @@
 """The files of a label folder or zip archive, read with limits.
 
-KITTI, YOLO and VOC splits come as many small files: a folder, or a zip of one. Both
-are read the same way here, by relative member name (``labels/000012.txt``), and
+KITTI, YOLO and VOC splits come as many small files: a folder, or a zip of one (VOC
+detection results may also come as one class's lone result file). All are read the
+same way here, by relative member name (``labels/000012.txt``), and
 nothing is ever extracted to disk, so a member name cannot write anywhere; names
 that would escape the folder (absolute, ``..``, drive letters) are still refused, as
 are symbolic links leaving it, so what is scored is what the folder holds.
@@ -15,6 +16,7 @@ only ever read for their first ``HEADER_BYTES``. Operating-system metadata
 
 import os
 import posixpath
+import re
 import stat
 import zipfile
 import zlib
@@ -30,9 +32,27 @@ MAX_TOTAL_BYTES = 2 << 30
 HEADER_BYTES = 1 << 16
 
 
+#: A VOC detection result file, ``comp4_det_test_car.txt``: competition id, ``_det_``,
+#: image set, class (``voc_results``).
+RESULT_FILE_NAME = re.compile(r"^(?P<comp>[^_/]+)_det_(?P<rest>.+)\.txt$", re.IGNORECASE)
+
+
 def is_collection(path):
-    """A folder, or a file that is a zip archive (by its content, not its name)."""
-    return os.path.isdir(path) or (os.path.isfile(path) and zipfile.is_zipfile(path))
+    """A folder, a file that is a zip archive (by its content, not its name), or a
+    lone VOC result file (``comp4_det_test_car.txt``, its class in its name): read
+    as a collection of that one file."""
+    if os.path.isdir(path):
+        return True
+    return os.path.isfile(path) and (zipfile.is_zipfile(path) or is_single_result(path))
+
+
+def is_single_result(path):
+    """A plain file named like a VOC detection result file (not a zip)."""
+    return (
+        RESULT_FILE_NAME.match(os.path.basename(str(path))) is not None
+        and os.path.isfile(path)
+        and not zipfile.is_zipfile(path)
+    )
 
 
 def _skipped(name):
@@ -65,8 +85,12 @@ class Members:
         self.path = str(path)
         self._zip = None
         self._read_total = 0
+        self._single = None
         if os.path.isdir(path):
             self.names = self._walk()
+        elif is_single_result(path):
+            self._single = self.path
+            self.names = [os.path.basename(self.path)]
         else:
             try:
                 self._zip = zipfile.ZipFile(path)
@@ -145,6 +169,9 @@ class Members:
 
     def _open_read(self, name, size):
         try:
+            if self._single is not None:
+                with open(self._single, "rb") as f:
+                    return f.read(size)
             if self._zip is None:
                 with open(os.path.join(self.path, *name.split("/")), "rb") as f:
                     return f.read(size)

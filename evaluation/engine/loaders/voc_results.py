@@ -12,14 +12,12 @@ order the devkit's stable sort starts from.
 """
 
 import posixpath
-import re
 
 from ..errors import InputError
 from .label_lines import field_count, lines, number
+from .members import RESULT_FILE_NAME as FILE_NAME
 
 LAYOUT = "image_id score xmin ymin xmax ymax"
-#: ``comp4_det_test_car.txt``: competition id, ``_det_``, image set, class.
-FILE_NAME = re.compile(r"^(?P<comp>[^_/]+)_det_(?P<rest>.+)\.txt$", re.IGNORECASE)
 
 
 def is_result_file(name):
