@@ -8,6 +8,7 @@ a changed preset is a new version and old scorecards stay interpretable.
 """
 
 import math
+import re
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -230,7 +231,9 @@ def protocol_from_dict(spec, source="protocol"):
     Keys: ``name`` (required), ``version``, ``base`` (a preset to start from),
     ``matching``, ``iou_thresholds``, ``class_iou_thresholds`` (class → IoU),
     ``recall_points`` (list, or ``"all"`` for the all-point area), ``pixel_offset``,
-    ``max_detections``, ``tie_order`` (``TIE_ORDERS``).
+    ``max_detections``, ``tie_order`` (``TIE_ORDERS``), ``area_ranges`` (the size
+    buckets: ``[[name, low, high], ...]`` in pixels², the first ``["all", 0, high]``
+    as pycocotools' ``Params.areaRng``, each box counted in ``low <= area <= high``).
     """
     if not isinstance(spec, dict):
         raise InputError(source, "a custom protocol must be a JSON object")
@@ -246,6 +249,7 @@ def protocol_from_dict(spec, source="protocol"):
         "pixel_offset",
         "max_detections",
         "tie_order",
+        "area_ranges",
     }
     for key in spec:
         if key not in known:
@@ -311,5 +315,37 @@ def protocol_from_dict(spec, source="protocol"):
         if spec["tie_order"] not in TIE_ORDERS:
             raise InputError(source, f"must be one of {', '.join(TIE_ORDERS)}", field="tie_order")
         values["tie_order"] = spec["tie_order"]
+    if "area_ranges" in spec:
+        values["area_ranges"] = _area_ranges(spec["area_ranges"], source)
     values["precision_epsilon"] = base.precision_epsilon
     return Protocol(**values)
+
+
+def _area_ranges(ranges, source):
+    """A custom protocol's size buckets, checked: ``(("all", 0, high), (name, low,
+    high), ...)``; the first covers every box (pycocotools' ``areaRng[0]``), the names
+    are distinct rule and slice names."""
+    field = "area_ranges"
+    if not isinstance(ranges, list) or not ranges:
+        raise InputError(source, "must be a non-empty list of [name, low, high]", field=field)
+    out = []
+    for i, entry in enumerate(ranges):
+        where = f"{field}[{i}]"
+        if not isinstance(entry, list) or len(entry) != 3:
+            raise InputError(source, "must be [name, low, high]", field=where)
+        name, low, high = entry
+        if not isinstance(name, str) or not re.fullmatch(r"[A-Za-z0-9_.-]{1,32}", name):
+            raise InputError(source, "name: 1 to 32 letters, digits, '_', '.' or '-'", field=where)
+        if not all(_is_number(v) for v in (low, high)) or not 0 <= low < high:
+            raise InputError(source, "low and high must be numbers, 0 <= low < high", field=where)
+        out.append((name, float(low), float(high)))
+    if out[0][0] != "all" or out[0][1] != 0:
+        raise InputError(source, "the first range is ['all', 0, high]: every box", field=field)
+    names = [name for name, _, _ in out]
+    if len(set(names)) != len(names):
+        raise InputError(source, "names a size bucket twice", field=field)
+    return tuple(out)
+
+
+def _is_number(value):
+    return isinstance(value, (int, float)) and not isinstance(value, bool) and math.isfinite(value)

@@ -151,3 +151,109 @@ def test_the_suite_page_shows_the_custom_definitions(client, detector, split, us
     client.force_login(users["reviewer"])
     page = client.get(f"/detectors/{detector.pk}/suite/").content.decode()
     assert 'id="custom-protocols"' in page and "iou60" in page and "0.6" in page
+
+
+KERB_SIZES = {
+    "name": "kerbsize",
+    "base": "coco",
+    "version": 1,
+    "area_ranges": [["all", 0, 1e10], ["tiny", 0, 40**2], ["near", 40**2, 1e10]],
+}
+
+
+def _pycocotools_area_ap(truth, detections, ranges, tmp_path):
+    """The reference: pycocotools 2.0.11 ``COCOeval`` with ``params.areaRng`` /
+    ``areaRngLbl`` set to the protocol's ranges; a bucket's AP is the mean of
+    ``eval['precision'][:, :, k, a, -1]`` over entries > -1 (as ``summarize`` takes
+    it), per class ``k`` and over all classes."""
+    from pycocotools.coco import COCO
+    from pycocotools.cocoeval import COCOeval
+
+    (tmp_path / "gt.json").write_text(json.dumps(truth))
+    (tmp_path / "dt.json").write_text(json.dumps(detections))
+    with contextlib.redirect_stdout(io.StringIO()):
+        gt = COCO(str(tmp_path / "gt.json"))
+        evaluator = COCOeval(gt, gt.loadRes(str(tmp_path / "dt.json")), "bbox")
+        evaluator.params.areaRng = [[low, high] for _, low, high in ranges]
+        evaluator.params.areaRngLbl = [name for name, _, _ in ranges]
+        evaluator.evaluate()
+        evaluator.accumulate()
+    precision = evaluator.eval["precision"]
+    names = {c["id"]: c["name"] for c in truth["categories"]}
+    out = {}
+    for a, (bucket, _, _) in enumerate(ranges):
+        cells = precision[:, :, :, a, -1]
+        present = cells[cells > -1]
+        out[bucket] = {"mean": float(present.mean()) if present.size else None}
+        for k, cid in enumerate(evaluator.params.catIds):
+            cls = cells[:, :, k]
+            out[bucket][names[cid]] = float(cls[cls > -1].mean()) if (cls > -1).any() else None
+    return out
+
+
+def test_a_custom_protocols_own_size_buckets_are_scored_sliced_and_judged(
+    detector, version, split, split_truth, users, run_tasks, tmp_path
+):
+    """A suite defines a protocol with its own area ranges: the worker scores its
+    buckets as pycocotools does with those ranges, stores them as size slices, a rule
+    may name them (and is judged on them), and COCO's own bucket names are refused by
+    validation of the same suite only when no protocol has them."""
+    run_tasks(
+        suites.set_suite,
+        detector,
+        users["lead"],
+        {"splits": ["bay-night"], "protocols": [KERB_SIZES]},
+    )
+    detections = detections_for(split_truth)
+    run_tasks(
+        services.submit_predictions, version, split, upload("p.json", detections), users["engineer"]
+    )
+    card = Evaluation.objects.get(protocol="kerbsize").scorecard
+    assert card.result["protocol_record"]["size_ranges"] == KERB_SIZES["area_ranges"]
+    from evaluation.models import SliceScore
+
+    rows = SliceScore.objects.filter(scorecard=card, kind="size")
+    assert {r.name for r in rows} == {"tiny", "near"}
+    expected = _pycocotools_area_ap(
+        split_truth, detections, [tuple(r) for r in KERB_SIZES["area_ranges"]], tmp_path
+    )
+    for row in rows:
+        want = expected[row.name][row.class_name or "mean"]
+        if want is None:
+            assert row.ap is None, (row.name, row.class_name)
+        else:
+            assert row.ap == pytest.approx(want, abs=1e-12), (row.name, row.class_name)
+
+    tiny = expected["tiny"]["mean"]
+    rule = {**EASY, "size": "tiny", "threshold": round(tiny + 0.01, 4)}
+    run_tasks(criteria.set_criteria, detector, users["lead"], [rule])
+    verdict = verdicts.verdict_of(version)
+    assert verdict.state == "regression", verdict.reasons
+    run_tasks(criteria.set_criteria, detector, users["lead"], [{**rule, "threshold": 0.0}])
+    assert verdicts.verdict_of(version).state == "pass"
+    with pytest.raises(criteria.CriteriaError, match="must be a size bucket") as e:
+        criteria.set_criteria(detector, users["lead"], [{**EASY, "size": "huge"}])
+    assert e.value.path == "rules[0].size"
+    # COCO's names stay valid rule names, but this protocol has no "small" bucket:
+    # the outcome is missing, the verdict incomplete — never a pass.
+    run_tasks(criteria.set_criteria, detector, users["lead"], [{**EASY, "size": "small"}])
+    verdict = verdicts.verdict_of(version)
+    assert verdict.state == "incomplete", verdict.reasons
+    assert "has no size bucket 'small'" in " ".join(verdict.reasons)
+
+
+@pytest.mark.parametrize(
+    "ranges, path, message",
+    [
+        ([["small", 0, 1024]], "protocols[0].area_ranges", "the first range is ['all', 0, high]"),
+        ([["all", 0, 1e10], ["x", 9, 3]], "protocols[0].area_ranges[1]", "0 <= low < high"),
+        ([["all", 0, 1e10], ["x y", 0, 3]], "protocols[0].area_ranges[1]", "name: 1 to 32"),
+        ([["all", 0, 1e10], ["all", 0, 3]], "protocols[0].area_ranges", "twice"),
+        ("big", "protocols[0].area_ranges", "non-empty list"),
+    ],
+)
+def test_bad_area_ranges_are_refused_naming_the_entry(detector, split, ranges, path, message):
+    spec = {"splits": ["bay-night"], "protocols": [{**KERB_SIZES, "area_ranges": ranges}]}
+    with pytest.raises(suites.SuiteError) as e:
+        suites.validate_suite(detector, spec)
+    assert e.value.path == path and message in str(e.value)
