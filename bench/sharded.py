@@ -143,11 +143,23 @@ def peak_mb(pid):
     return 0.0
 
 
+def cpu_seconds(pid):
+    """User + system CPU seconds of a live process (/proc/<pid>/stat)."""
+    try:
+        with open(f"/proc/{pid}/stat") as f:
+            fields = f.read().rsplit(")", 1)[1].split()
+        return (int(fields[11]) + int(fields[12])) / os.sysconf("SC_CLK_TCK")
+    except (FileNotFoundError, ProcessLookupError):
+        return 0.0
+
+
 class Watch:
-    """Polls the peak RSS of processes until stopped (VmHWM is gone once they exit)."""
+    """Polls the peak RSS and CPU time of processes until stopped (both are gone once
+    they exit)."""
 
     def __init__(self, processes):
         self.processes, self.peaks = processes, [0.0] * len(processes)
+        self.cpu = [0.0] * len(processes)
         self._stop = threading.Event()
         self._thread = threading.Thread(target=self._run, daemon=True)
         self._thread.start()
@@ -156,6 +168,7 @@ class Watch:
         while not self._stop.wait(0.2):
             for k, p in enumerate(self.processes):
                 self.peaks[k] = max(self.peaks[k], peak_mb(p.pid))
+                self.cpu[k] = max(self.cpu[k], cpu_seconds(p.pid))
 
     def stop(self):
         self._stop.set()
@@ -214,7 +227,7 @@ def run(name, workers, broker, env, shard_images, dt_path):
         for p in processes:
             p.wait(30)
     result = json.loads(out.stdout.strip().splitlines()[-1])
-    result["peaks"] = peaks
+    result["peaks"], result["cpu"] = peaks, watch.cpu
     return result
 
 
@@ -225,7 +238,7 @@ def drive(name, predictions_path):
 
     django.setup()
     from evaluation import services
-    from evaluation.models import BenchmarkSplit, Evaluation, EvaluationShard
+    from evaluation.models import BenchmarkSplit, Evaluation, EvaluationClassGroup, EvaluationShard
 
     split = BenchmarkSplit.objects.get(name="sharded")
     began = time.time()
@@ -262,6 +275,11 @@ def drive(name, predictions_path):
         last = max(s.finished_at.timestamp() for s in shards)
         report["prepare"] = first - started
         report["merge"] = evaluation.finished_at.timestamp() - last
+        groups = list(EvaluationClassGroup.objects.filter(evaluation=evaluation))
+        report["groups"] = [g.seconds for g in groups]
+        if groups:
+            last_group = max(g.finished_at.timestamp() for g in groups)
+            report["finish"] = evaluation.finished_at.timestamp() - last_group
     print(json.dumps(report))
 
 
@@ -320,8 +338,15 @@ def measure(runs, args, env, gt_path, dt_path):
             if r["shards"]
             else ""
         )
+        if r.get("groups"):
+            detail += (
+                f" ({len(r['groups'])} class groups, mean {np.mean(r['groups']):.2f} s, "
+                f"max {np.max(r['groups']):.2f} s; assemble + records file + store "
+                f"{r['finish']:.1f} s)"
+            )
         print(
-            f"{name}: {r['wall']:.1f} s, peaks {[round(p) for p in r['peaks']]} MB, "
+            f"{name}: {r['wall']:.1f} s, cpu {[round(c, 1) for c in r['cpu']]} s, "
+            f"peaks {[round(p) for p in r['peaks']]} MB, "
             f"result {r['result_sha256'][:12]}{detail}",
             flush=True,
         )
@@ -338,10 +363,17 @@ def measure(runs, args, env, gt_path, dt_path):
             f"max {costs.max():.2f} s; upload {upload:.1f} s, read + pieces {prepare:.1f} s, "
             f"merge + score + store {merge:.1f} s"
         )
+        groups = np.array(r.get("groups") or [0.0])
+        finish = r.get("finish", merge)
+        print(
+            f"class groups: {len(groups)}, mean {groups.mean():.2f} s, max {groups.max():.2f} s; "
+            f"assemble + records file + store {finish:.1f} s"
+        )
         print(f"{'machines':>8} {'wall s (paper)':>15}")
         for n in (1, 2, 4, 8, 16, 32):
-            waves = math.ceil(len(costs) / n)
-            print(f"{n:8} {upload + prepare + waves * costs.mean() + merge:15.1f}")
+            waves = math.ceil(len(costs) / n) * costs.mean()
+            group_waves = math.ceil(len(groups) / n) * groups.mean()
+            print(f"{n:8} {upload + prepare + waves + group_waves + finish:15.1f}")
 
 
 def main():

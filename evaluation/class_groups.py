@@ -27,16 +27,14 @@ import os
 import tempfile
 import time
 
-from django.core.files import File
 from django.db import transaction
-from django.utils import timezone
 
 from . import engine, jobs
 from .engine import class_groups as cg
 from .engine import shards
 from .models import EvaluationClassGroup, EvaluationShard
-from .sharding import _budget, _held, _protocol, discard_files
-from .storage import check_sha256, file_sha256, local_path, verified_path
+from .sharding import _budget, _held, _protocol, discard_files, store_file
+from .storage import check_sha256, local_path, verified_path
 
 log = logging.getLogger(__name__)
 #: Progress while the class groups run (the shards took it to 85 %).
@@ -145,31 +143,9 @@ def run_group(evaluation_id, claim, index):
 
 
 def _store_group(evaluation, index, path, detections, seconds):
-    """The group's file and row in one transaction under the claim; a file of a
-    transaction that does not commit is deleted, one an earlier delivery stored is
-    replaced (deleted after the commit)."""
-    written = None
-    try:
-        with transaction.atomic():
-            jobs.lock_if_held(evaluation)
-            row = EvaluationClassGroup.objects.select_for_update().get(
-                evaluation=evaluation, index=index
-            )
-            replaced = row.records.name or None
-            with open(path, "rb") as f:
-                row.records.save(os.path.basename(path), File(f), save=False)
-            written = row.records.name
-            row.records_sha256 = file_sha256(path)
-            row.detections, row.seconds, row.finished_at = detections, seconds, timezone.now()
-            row.save()
-            groups = evaluation.class_groups
-            _budget(evaluation, groups.filter(records="").count(), groups.count(), SPAN)
-    except BaseException:
-        if written:
-            row.records.storage.delete(written)
-        raise
-    if replaced:
-        row.records.storage.delete(replaced)
+    """The group's file and row in one transaction under the claim (``store_file``)."""
+    values = {"detections": detections, "seconds": seconds}
+    store_file(evaluation, EvaluationClassGroup, index, path, values, SPAN)
 
 
 def run_finish(evaluation_id, claim):

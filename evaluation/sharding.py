@@ -190,26 +190,32 @@ def _protocol(evaluation):
 
 
 def _store_shard(evaluation, index, path, digests, seconds):
-    """The shard's records file and row in one transaction under the claim; a file
-    written for a transaction that does not commit is deleted, and records an earlier
-    delivery stored for the same shard are replaced (their file deleted after)."""
+    """The shard's records file and row in one transaction under the claim."""
+    values = {"group_digests": digests, "seconds": seconds}
+    store_file(evaluation, EvaluationShard, index, path, values, (60, 85))
+
+
+def store_file(evaluation, model, index, path, values, span):
+    """The records file of one shard or class group (``model``) and its row, with
+    ``values``, in one transaction under the claim, and progress over ``span``; a file
+    written for a transaction that does not commit is deleted, and one an earlier
+    delivery stored for the same row is replaced (deleted after the commit)."""
     written = None
     try:
         with transaction.atomic():
             jobs.lock_if_held(evaluation)
-            row = EvaluationShard.objects.select_for_update().get(
-                evaluation=evaluation, index=index
-            )
+            row = model.objects.select_for_update().get(evaluation=evaluation, index=index)
             replaced = row.records.name or None
             with open(path, "rb") as f:
                 row.records.save(os.path.basename(path), File(f), save=False)
             written = row.records.name
             row.records_sha256 = file_sha256(path)
-            row.group_digests = digests
-            row.seconds, row.finished_at = seconds, timezone.now()
+            for name, value in values.items():
+                setattr(row, name, value)
+            row.finished_at = timezone.now()
             row.save()
-            unfinished = evaluation.shards.filter(records="").count()
-            _budget(evaluation, unfinished, evaluation.shards.count())
+            rows = model.objects.filter(evaluation=evaluation)
+            _budget(evaluation, rows.filter(records="").count(), rows.count(), span)
     except BaseException:
         if written:
             row.records.storage.delete(written)

@@ -23,13 +23,9 @@ from evaluation.engine.records import MatchRecords
 from evaluation.engine.tide import error_breakdown
 
 from .synthetic import make_detections, make_split
+from .test_shards import FIELDS, _rows
 
 N_CLASSES = 6
-FIELDS = [
-    name
-    for name in MatchRecords.__dataclass_fields__
-    if not name.startswith("_") and not name.startswith("match_")
-]
 
 
 @pytest.fixture(scope="module")
@@ -85,11 +81,6 @@ def _grouped(truth, predictions, protocol, images_per_shard, n_groups, tmp_path)
     annotate(result, truth, counts, totals, protocol)
     cg.write_records(tmp_path / "records.npz", group_files, truth.n_boxes)
     return result, breakdown, MatchRecords.load(tmp_path / "records.npz")
-
-
-def _rows(records):
-    rows = np.lexsort((records.match_det, records.match_config))
-    return [getattr(records, f"match_{n}")[rows] for n in ("config", "det", "box", "iou")]
 
 
 def _same_records(whole, merged):
