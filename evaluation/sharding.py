@@ -24,6 +24,7 @@ import os
 import tempfile
 import time
 
+import numpy as np
 from django.conf import settings
 from django.core.files import File
 from django.db import transaction
@@ -72,8 +73,10 @@ def start(evaluation, truth, predictions):
     counts = dataclasses.asdict(shards.PredictionCounts.of(predictions))
     ranges = _ranges(truth.n_images)
     rows = []
+    per_class = np.zeros(len(truth.classes), np.int64)
     with tempfile.TemporaryDirectory() as work:
         for k, piece in enumerate(shards.pieces(truth, predictions, ranges)):
+            per_class += np.bincount(piece[2].cls, minlength=len(truth.classes))
             path = os.path.join(work, f"evaluation-{evaluation.pk}-piece-{k}.npz")
             shards.save_piece(path, *piece)
             row = EvaluationShard(
@@ -89,7 +92,17 @@ def start(evaluation, truth, predictions):
             os.remove(path)
             rows.append(row)
             jobs.progress(evaluation, 50 + (k + 1) * 10 // len(ranges))
+    _plan_groups(evaluation, per_class)
     _dispatch(evaluation, rows)
+
+
+def _plan_groups(evaluation, per_class):
+    """Decide the class groups once, balanced by detections per class, for every shard
+    to cut its records by (kept on the shard rows, so a later claim uses the same)."""
+    plan = cg.plan(len(per_class), settings.BENCHBOOK_CLASS_GROUPS, per_class)
+    with transaction.atomic():
+        jobs.lock_if_held(evaluation)
+        evaluation.shards.update(group_digests={"plan": [list(g) for g in plan]})
 
 
 def _save_file(evaluation, row, field, path):
@@ -171,10 +184,12 @@ def run_shard(evaluation_id, claim, index):
         protocol = _protocol(evaluation)
         records = shards.match_shard(truth, box_index, predictions, positions, protocol)
         del truth, predictions
-        plan = cg.plan(len(records.classes), settings.BENCHBOOK_CLASS_GROUPS)
+        plan = row.group_digests.get("plan") or cg.plan(
+            len(records.classes), settings.BENCHBOOK_CLASS_GROUPS
+        )
         with tempfile.TemporaryDirectory() as work:
             path = os.path.join(work, f"evaluation-{evaluation.pk}-records-{index}.npz")
-            digests = cg.save_shard_records(path, records, box_index, plan)
+            digests = cg.save_shard_records(path, records, box_index, [tuple(g) for g in plan])
             del records
             digests["plan"] = [list(group) for group in plan]
             jobs.with_retry(

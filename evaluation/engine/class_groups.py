@@ -50,11 +50,19 @@ class PartMismatch(ValueError):
         self.expected, self.actual = expected, actual
 
 
-def plan(n_classes, n_groups):
-    """Consecutive ``(start, stop)`` runs of class indices, ``n_groups`` at most, as even
-    as possible, covering ``range(n_classes)``."""
+def plan(n_classes, n_groups, weights=None):
+    """Consecutive ``(start, stop)`` runs of class indices covering ``range(n_classes)``,
+    ``n_groups`` at most, each of about the same total ``weights`` (per class, e.g. its
+    detections: a group's memory and time follow them), or of as many classes without.
+    A class is never split, so a class heavier than a group's share is a group alone."""
     n_groups = max(1, min(int(n_groups), max(n_classes, 1)))
-    edges = np.linspace(0, n_classes, n_groups + 1).round().astype(int)
+    if weights is None or not np.sum(weights):
+        edges = np.linspace(0, n_classes, n_groups + 1).round().astype(int)
+        return [(int(a), int(b)) for a, b in zip(edges[:-1], edges[1:])]
+    cumulative = np.cumsum(np.asarray(weights, np.float64))
+    shares = cumulative[-1] * np.arange(1, n_groups) / n_groups
+    cuts = np.searchsorted(cumulative, shares, side="left") + 1
+    edges = np.unique(np.clip(np.r_[0, cuts, n_classes], 0, n_classes))
     return [(int(a), int(b)) for a, b in zip(edges[:-1], edges[1:])]
 
 

@@ -151,6 +151,17 @@ def test_groups_that_miss_a_box_are_refused(loaded, tmp_path):
         cg.write_records(tmp_path / "r.npz", [tmp_path / "group-0.npz"], truth.n_boxes)
 
 
+def test_a_weighted_plan_balances_the_detections():
+    weights = 1.0 / np.arange(1, 81) ** 0.8  # a few popular classes, a long tail
+    groups = cg.plan(80, 8, weights)
+    assert groups[0][0] == 0 and groups[-1][1] == 80
+    assert all(a[1] == b[0] and a[0] < a[1] for a, b in zip(groups, groups[1:]))
+    loads = [weights[lo:hi].sum() for lo, hi in groups]
+    assert max(loads) < 1.6 * weights.sum() / 8  # even by class count: 3.7 times
+    assert cg.plan(4, 3, [10, 0, 0, 0]) == [(0, 1), (1, 4)]  # one heavy class alone
+    assert cg.plan(3, 2, [0, 0, 0]) == cg.plan(3, 2)
+
+
 def test_plan_covers_every_class_once():
     assert cg.plan(80, 8) == [(k * 10, k * 10 + 10) for k in range(8)]
     assert cg.plan(3, 8) == [(0, 1), (1, 2), (2, 3)]
