@@ -119,4 +119,31 @@ def compare_table(comparison):
                 rows,
             )
         )
+        blocks += _slice_deltas(entry, comparison["protocol"])
     return "\n\n".join(blocks) or "The two versions share no scored split."
+
+
+def _slice_deltas(entry, protocol):
+    """Mean deltas (candidate - reference) per size bucket, and per level or setup of
+    each level protocol (a rise of a lower-is-better miss rate is a loss)."""
+    blocks = []
+    sizes = [
+        [row["size"], number(row["cells"][0]["delta"], True)] for row in entry.get("sizes", [])
+    ]
+    if sizes:
+        blocks.append(
+            f"{entry['split_name']} by size ({protocol} AP, mean)\n"
+            + table(["size", "delta"], sizes)
+        )
+    for level_table in entry.get("levels", []):
+        direction = "lower is better" if level_table["lower_is_better"] else "higher is better"
+        rows = [
+            [row["class"], *(number(c["delta"], True) for c in row["cells"])]
+            for row in level_table["rows"]
+        ]
+        blocks.append(
+            f"{entry['split_name']} by level ({level_table['protocol']} "
+            f"{level_table['value_key']}, {direction})\n"
+            + table(["class", *level_table["levels"]], rows)
+        )
+    return blocks

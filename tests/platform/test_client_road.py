@@ -110,6 +110,13 @@ def test_the_client_exits_on_level_setup_and_size_rules(live_server, team, users
     failed = [line for line in out.splitlines() if " fail " in f" {line} "]
     assert any("miss_rate of Pedestrian at reasonable" in line for line in failed), out
 
+    # compare gives the deltas by size bucket and by level and setup
+    code, out, err = run("compare", *connect, "--detector", "Kerb road", "1.0", "1.1")
+    assert code == 0, out + err
+    assert "kerb-road rev 1 by size (coco AP, mean)" in out and "small" in out
+    assert "by level (kitti2d AP_R40, higher is better)" in out and "moderate" in out
+    assert "by level (miss-rate miss_rate, lower is better)" in out and "reasonable" in out
+
     # The suite drops kitti2d: the moderate rule has no result, the verdict is incomplete.
     dropped = lead.post(
         f"/api/v1/detectors/{detector}/suite/",

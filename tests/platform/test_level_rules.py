@@ -234,3 +234,19 @@ def test_the_compare_page_shows_level_deltas(road, users, run_tasks, tmp_path, c
         {"reference": road["version"].pk, "candidate": candidate.pk},
     ).content.decode()
     assert f'id="level-deltas-kitti2d-{road["split"].pk}"' in page
+    # The API gives the same deltas by level and by size bucket (the client's source).
+    body = (
+        _api(users["reviewer"])
+        .get(f"{API}comparisons/", {"reference": road["version"].pk, "candidate": candidate.pk})
+        .json()
+    )
+    (split,) = body["splits"]
+    (level_table,) = split["levels"]
+    assert level_table["protocol"] == "kitti2d" and level_table["lower_is_better"] is False
+    assert level_table["rows"][0]["cells"][1]["delta"] == pytest.approx(delta, abs=1e-12)
+    sizes = {row["size"]: row["cells"] for row in split["sizes"]}
+    assert set(sizes) == {"small", "medium", "large"}
+    assert sizes["small"] == [
+        {**cell, "interval": None if cell["interval"] is None else list(cell["interval"])}
+        for cell in entry["sizes"][0]["cells"]
+    ]

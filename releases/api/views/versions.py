@@ -248,6 +248,9 @@ class Comparison(Endpoint, APIView):
         ],
         responses={200: OpenApiTypes.OBJECT, 404: error_response(404)},
         summary="Per shared split: per-class AP deltas (candidate - reference), worst first",
+        description="Also per image tag (``tags``), per size bucket (``sizes``: the primary "
+        "protocol's buckets) and per level or pedestrian setup of the suite's level "
+        "protocols (``levels``: ``lower_is_better`` for miss rate; no interval).",
     )
     def get(self, request):
         ids = {}
@@ -275,6 +278,8 @@ class Comparison(Endpoint, APIView):
                     "split_name": str(entry["split"]),
                     "deltas": deltas,
                     "tags": entry["tags"],
+                    "sizes": entry["sizes"],
+                    "levels": entry["levels"],
                 }
             )
         return Response(
