@@ -487,4 +487,8 @@ class ComparisonInterval(models.Model):
         return f"Δ {self.candidate} − {self.reference} on {self.split} ({self.state})"
 
 
-from .ops_models import AuditVerification, Notification  # noqa: E402, F401  (models of this app)
+from .ops_models import (  # noqa: E402, F401  (models of this app)
+    AuditVerification,
+    HistoryChange,
+    Notification,
+)

@@ -12,7 +12,7 @@ from evaluation.protocols import not_primary
 from evaluation.protocols import resolve as resolve_protocol
 from evaluation.services import UploadConflict, UploadError
 
-from . import audit, selectors
+from . import audit, history_stamps, selectors
 from .models import AuditEvent, Detector, Membership, ModelVersion, PredictionSet, Team
 from .selectors import UPLOAD_ROLES
 
@@ -225,6 +225,7 @@ def request_for_set(prediction_set, protocols=None):
         unknown_images=prediction_set.unknown_images,
     )
     prediction_set.evaluations.add(*evaluations)
+    history_stamps.changed([prediction_set.version.detector_id])
     return evaluations
 
 

@@ -1,6 +1,6 @@
 """Receivers of the evaluation app's signals, connected in ReleasesConfig.ready()."""
 
-from . import audit
+from . import audit, history_stamps
 from .audit_check import result_digests
 from .models import AuditEvent
 
@@ -38,6 +38,7 @@ def result_recorded(sender, evaluation, **kwargs):
         payload = {"protocol": evaluation.protocol, "error": evaluation.error}
     payload["result"] = result_digests(evaluation.pk)  # re-derived by verify_audit
     audit.record_event(kind, "system", f"evaluation:{evaluation.pk}", payload)
+    history_stamps.changed_by_evaluation(evaluation.pk)
 
 
 def content_mismatch(sender, subject, error, **kwargs):

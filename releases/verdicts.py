@@ -16,7 +16,7 @@ import logging
 from dataclasses import dataclass, field
 
 from django.db import transaction
-from django.db.models import Q
+from django.db.models import F, Q
 from django.utils import timezone
 
 from . import audit, notify, suites
@@ -115,7 +115,7 @@ def inputs_for(versions):
     """{version id: Inputs} of many versions (any detectors) in at most seven queries,
     whatever their number: the one reading of a judgement's inputs (``inputs_of`` is this for one
     version), so badges, lists, the sweep and the judge cannot disagree."""
-    from evaluation.models import BenchmarkSplit
+    from evaluation.models import BenchmarkSplit, Evaluation
 
     from .models import BenchmarkSuite, Detector, ReleaseCriteria
 
@@ -152,11 +152,12 @@ def inputs_for(versions):
     # Each set's own evaluations (the ones it asked for), never another team's or
     # another image policy's evaluation of the same bytes.
     all_sets = [ps for sets in sets_of.values() for ps in sets]
-    links = (
-        PredictionSet.evaluations.through.objects.filter(
-            predictionset_id__in=[ps.pk for ps in all_sets],
-            evaluation__protocol__in={p for ps in protocols_of.values() for p in ps},
-        ).select_related("evaluation")
+    # One Evaluation per link (its set's id annotated), no link objects built.
+    linked = (
+        Evaluation.objects.filter(
+            prediction_sets__in=[ps.pk for ps in all_sets],
+            protocol__in={p for ps in protocols_of.values() for p in ps},
+        ).annotate(linked_set=F("prediction_sets"))
         if all_sets
         else []
     )
@@ -171,10 +172,9 @@ def inputs_for(versions):
     for ps in all_sets:
         ps.split = splits_by_id[ps.split_id]
     by_set = {}
-    for link in links:
-        e = link.evaluation
+    for e in linked:
         e.split, e.predictions = splits_by_id[e.split_id], files[e.predictions_id]
-        by_set.setdefault(link.predictionset_id, []).append(e)
+        by_set.setdefault(e.linked_set, []).append(e)
     split_rows = {}
     for split in splits_by_id.values():
         if split.name in names:

@@ -15,6 +15,15 @@ def _fast_passwords(settings):
     settings.PASSWORD_HASHERS = ["django.contrib.auth.hashers.MD5PasswordHasher"]
 
 
+@pytest.fixture(autouse=True)
+def _fresh_history_cache():
+    """Each test's database starts anew (ids and history stamps may repeat): entries a
+    previous test cached in this process are forgotten."""
+    from releases import history_stamps
+
+    history_stamps.clear()
+
+
 @pytest.fixture(scope="session", autouse=True)
 def _flush_past_triggers():
     """Django empties the tables after a transactional test (``flush``: TRUNCATE on

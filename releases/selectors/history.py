@@ -1,5 +1,6 @@
 """The detector page: one metric and class of every version on every split."""
 
+from .. import history_stamps
 from ..models import PredictionSet
 from .decisions import baselines_of
 from .history_levels import (
@@ -75,12 +76,48 @@ def history_chart(
     )
     position = {pk: i for i, (pk, *_) in enumerate(versions)}
     baseline = baselines_of({detector.pk}).get(detector.pk)
+    selection = (protocol, field, same_class, "" if class_name == MEAN else class_name, level)
+
+    def compute():
+        numbers, splits = _numbers(detector, rows, selection)
+        series = (_joined if revisions == "joined" else _separate)(splits, numbers, position)
+        return series, [change for line in series for change in _changes(line)]
+
+    # The versions in their order are part of the key: a new version is a new entry.
+    key = (*selection, revisions, tuple(position))
+    series, changes = history_stamps.cached(detector.pk, key, compute)
+    return {
+        "protocol": protocol,
+        "metric": metric,
+        "level": level or None,
+        "lower_is_better": metric == "miss_rate",
+        "sources": level_sources(detector),
+        "class": class_name,
+        "view": revisions,
+        "metrics": list(METRICS),
+        "classes": classes,
+        "baseline": baseline.pk if baseline else None,
+        "versions": [
+            {"id": pk, "label": label, "date": day, "decision": decision}
+            for pk, label, day, decision in versions
+        ],
+        "series": series,
+        "changes": changes,
+    }
+
+
+def _numbers(detector, rows, selection):
+    """{(version id, split id): value} of the selection's rows through each version's
+    own current sets, and the splits the detector's current sets are on (by name, then
+    revision): the part of a history read that joins six tables (the series built
+    from it are kept by ``history_stamps.cached`` until the detector's next change)."""
+    protocol, field, same_class, class_filter, _ = selection
     # All conditions on the set in one filter(): the same set row, so a version reads
     # its own sets' evaluations only (never another team's scorecard of the same
     # bytes), and two versions sharing identical bytes each get their point.
     rows = (
         rows.filter(
-            **{same_class: "" if class_name == MEAN else class_name},
+            **{same_class: class_filter},
             scorecard__evaluation__state="done",
             scorecard__evaluation__protocol=protocol,
             scorecard__evaluation__prediction_sets__replaced_at__isnull=True,
@@ -101,27 +138,9 @@ def history_chart(
         .filter(version__detector=detector)
         .values_list("split_id", flat=True)
         .distinct()
-    )
+    ) | {split_id for _, split_id in numbers}
     splits = sorted(_splits(split_ids), key=lambda s: (s.name, s.revision))
-    series = (_joined if revisions == "joined" else _separate)(splits, numbers, position)
-    return {
-        "protocol": protocol,
-        "metric": metric,
-        "level": level or None,
-        "lower_is_better": metric == "miss_rate",
-        "sources": level_sources(detector),
-        "class": class_name,
-        "view": revisions,
-        "metrics": list(METRICS),
-        "classes": classes,
-        "baseline": baseline.pk if baseline else None,
-        "versions": [
-            {"id": pk, "label": label, "date": day, "decision": decision}
-            for pk, label, day, decision in versions
-        ],
-        "series": series,
-        "changes": [change for line in series for change in _changes(line)],
-    }
+    return numbers, splits
 
 
 def _utc_day(field):
@@ -153,8 +172,8 @@ def _joined(splits, numbers, position):
         line_of[split.pk] = (line, split.revision)
     for (version_id, split_id), value in numbers.items():
         line, revision = line_of[split_id]
-        at = position[version_id]
-        if value is not None and (line["revisions"][at] or 0) < revision:
+        at = position.get(version_id)  # None: created after the versions were read
+        if at is not None and value is not None and (line["revisions"][at] or 0) < revision:
             line["values"][at], line["revisions"][at] = round(value, 4), revision
     return list(lines.values())
 
@@ -172,8 +191,9 @@ def _separate(splits, numbers, position):
     }
     revision_of = {split.pk: split.revision for split in splits}
     for (version_id, split_id), value in numbers.items():
-        if value is not None:
-            line, at = line_of[split_id], position[version_id]
+        at = position.get(version_id)  # None: created after the versions were read
+        if at is not None and value is not None:
+            line = line_of[split_id]
             line["values"][at] = round(value, 4)
             line["revisions"][at] = revision_of[split_id]
     return list(line_of.values())

@@ -1,5 +1,7 @@
 """The overview and the split page."""
 
+from django.db.models import Q
+
 from ..models import PredictionSet
 from .access import visible_detectors
 from .decisions import version_badges
@@ -14,23 +16,30 @@ def _candidates(detectors, baseline):
     from .. import verdicts
     from ..models import ModelVersion
 
-    out = {d.pk: [] for d in detectors}
-    undecided = ModelVersion.objects.filter(detector__in=detectors, sign_off=None)
-    for version in undecided.select_related("detector").order_by("-created_at", "-id"):
-        base = baseline[version.detector_id]
-        shown = out[version.detector_id]
-        if len(shown) < CANDIDATES_SHOWN and (base is None or version.created_at > base.created_at):
-            shown.append(version)
+    chosen = {d.pk: [] for d in detectors}
+    newer = Q(pk__in=[])
+    for d in detectors:
+        base = baseline[d.pk]
+        newer |= Q(detector=d.pk, **({"created_at__gt": base.created_at} if base else {}))
+    undecided = ModelVersion.objects.filter(newer, sign_off=None).order_by("-created_at", "-id")
+    # Ids first (no datetimes built for every undecided version), objects for the chosen.
+    for pk, detector_id in undecided.values_list("pk", "detector_id"):
+        if len(chosen[detector_id]) < CANDIDATES_SHOWN:
+            chosen[detector_id].append(pk)
+    objects = ModelVersion.objects.select_related("detector").in_bulk(
+        [pk for shown in chosen.values() for pk in shown]
+    )
+    out = {detector_id: [objects[pk] for pk in shown] for detector_id, shown in chosen.items()}
     versions = [v for shown in out.values() for v in shown]
     replaced = {}
     for version_id in PredictionSet.objects.filter(
         version__in=versions, replaced_by__isnull=False
     ).values_list("version_id", flat=True):
         replaced[version_id] = replaced.get(version_id, 0) + 1
+    found = verdicts.verdicts_of(versions)  # every candidate shown, one reading
     return {
         detector_id: [
-            {"version": v, "verdict": verdicts.verdict_of(v), "replaced": replaced.get(v.pk, 0)}
-            for v in shown
+            {"version": v, "verdict": found[v.pk], "replaced": replaced.get(v.pk, 0)} for v in shown
         ]
         for detector_id, shown in out.items()
     }
@@ -46,9 +55,13 @@ def overview_for(user):
     detectors = list(visible_detectors(user).order_by("team__name", "name"))
     newest = {d.pk: None for d in detectors}
     baseline = {d.pk: None for d in detectors}
-    versions = ModelVersion.objects.filter(detector__in=detectors).select_related("sign_off")
-    for version in versions.order_by("created_at"):
-        newest[version.detector_id] = version
+    versions = ModelVersion.objects.filter(detector__in=detectors).order_by("created_at")
+    for pk, detector_id in versions.values_list("pk", "detector_id"):  # tuples, not objects
+        newest[detector_id] = pk
+    objects = ModelVersion.objects.select_related("sign_off").in_bulk(
+        [pk for pk in newest.values() if pk]
+    )
+    newest = {detector_id: objects.get(pk) for detector_id, pk in newest.items()}
     for version in (
         ModelVersion.objects.filter(detector__in=detectors, sign_off__decision="approved")
         .select_related("sign_off")
