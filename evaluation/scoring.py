@@ -74,8 +74,10 @@ def _score(evaluation):
     image shards (``sharding``), which finish it."""
     if sharding.resume(evaluation):  # pieces an earlier claim wrote: unfinished shards
         return None
-    split, prediction_file = evaluation.split, evaluation.predictions
     protocol = resolve_protocol(evaluation.protocol)
+    if sharding.from_pieces(evaluation, protocol):  # the file's pieces, never read whole
+        return None
+    split, prediction_file = evaluation.split, evaluation.predictions
     truth = load_truth_of(split, evaluation.box_policy)
     jobs.progress(evaluation, 25)
     with verified_path(

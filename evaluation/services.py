@@ -14,7 +14,7 @@ from django.core.files import File
 from django.db import IntegrityError, transaction
 from django.utils import timezone
 
-from . import engine, jobs, levels, signals
+from . import engine, jobs, levels, pieces, signals
 from .models import BenchmarkSplit, Evaluation, PredictionFile
 from .protocols import resolve as resolve_protocol
 from .storage import (
@@ -237,16 +237,33 @@ def load_records(scorecard):
 
 class Received:
     """An upload spooled to a temporary folder: ``path``, ``sha256``, ``size`` and
-    ``name`` (its base name as sent). ``store()`` puts it into the storage."""
+    ``name`` (its base name as sent). ``store()`` puts it into the storage, with the
+    per-shard pieces its validation streamed (``pieces``), if any."""
 
     def __init__(self, path, sha256, size):
         self.path, self.sha256, self.size = path, sha256, size
         self.name = os.path.basename(path)
         self._stored = None
+        self.pieces = None  # (streamed pieces, split, box policy) of a streamed check
+        self._kept = pieces.Kept()
 
     def store(self):
-        """The ``PredictionFile`` of these bytes: the existing row, or a new one with
-        its file stored. Call it inside the caller's transaction."""
+        """The ``PredictionFile`` of these bytes (the existing row, or a new one with
+        its file stored) and its pieces. Call it inside the caller's transaction."""
+        prediction_file = self._file()
+        if self.pieces is not None:
+            streamed, split, box_policy = self.pieces
+            pieces.keep(
+                streamed,
+                prediction_file,
+                split,
+                box_policy=box_policy,
+                unknown_images="reject",
+                kept=self._kept,
+            )
+        return prediction_file
+
+    def _file(self):
         existing = PredictionFile.objects.filter(sha256=self.sha256).first()
         if existing is not None:
             return existing
@@ -265,8 +282,9 @@ class Received:
         return prediction_file
 
     def discard(self):
-        """Delete the file ``store()`` wrote (its row went with the rolled-back
+        """Delete the files ``store()`` wrote (their rows went with the rolled-back
         transaction)."""
+        self._kept.discard()
         if self._stored is not None:
             self._stored.storage.delete(self._stored.name)
             self._stored = None
@@ -276,13 +294,14 @@ class Received:
 def received_predictions(uploaded, split, *, boxes="keep"):
     """Receive a predictions upload for ``split``: spool it (hashed, block by block),
     refuse an empty file or one over ``BENCHBOOK_MAX_UPLOAD_BYTES`` (``UploadError``),
-    and, when it is at most ``BENCHBOOK_INLINE_VALIDATION_BYTES``, load it with the
-    engine against the split as the worker will (``engine.InputError`` naming file,
-    record and field) under the box policy ``boxes``. Larger files are checked by the
-    worker.
+    and check it against the split as the worker will read it, under the box policy
+    ``boxes`` (``engine.InputError`` naming file, record and field): a file of at most
+    ``BENCHBOOK_INLINE_VALIDATION_BYTES`` is loaded with the engine; a larger JSON or
+    CSV file for a split of several shards is streamed into per-shard pieces
+    (``pieces``), stored with it by ``store()``. Other files are checked by the worker.
 
-    Yields a ``Received``; if the block raises, a file it stored is deleted again, so a
-    refused upload leaves nothing behind.
+    Yields a ``Received``; if the block raises, the files it stored are deleted again,
+    so a refused upload leaves nothing behind.
     """
     with tempfile.TemporaryDirectory() as work:
         try:
@@ -292,14 +311,29 @@ def received_predictions(uploaded, split, *, boxes="keep"):
         received = Received(path, sha, size)
         if size == 0:
             raise UploadError(f"{received.name}: the file is empty")
-        if size <= settings.BENCHBOOK_INLINE_VALIDATION_BYTES:
-            try:
+        fmt = None if engine.is_collection(path) else _format_of(received.name)
+        try:
+            if size <= settings.BENCHBOOK_INLINE_VALIDATION_BYTES:
                 _load_predictions(path, load_truth_of(split, boxes), received.name, boxes)
-            except engine.InputError as e:
-                e.argument = "predictions"  # the request field, for API error bodies
-                raise
-            except ContentMismatch as e:  # the split's stored truth changed (audited)
-                raise UploadError(f"{split} cannot be used: {e}") from None
+            elif pieces.worth_streaming(split, size, fmt):
+                piece_dir = os.path.join(work, "pieces")
+                os.mkdir(piece_dir)
+                streamed = pieces.stream(
+                    path,
+                    load_truth_of(split, boxes),
+                    received.name,
+                    piece_dir,
+                    fmt=fmt,
+                    boxes=boxes,
+                    unknown_images="reject",
+                    ids=ENGINE_IDS,
+                )
+                received.pieces = (streamed, split, boxes)
+        except engine.InputError as e:
+            e.argument = "predictions"  # the request field, for API error bodies
+            raise
+        except ContentMismatch as e:  # the split's stored truth changed (audited)
+            raise UploadError(f"{split} cannot be used: {e}") from None
         try:
             yield received
         except BaseException:

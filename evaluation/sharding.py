@@ -31,6 +31,7 @@ from django.db import transaction
 from django.utils import timezone
 
 from . import engine, jobs
+from . import pieces as piece_sets
 from .engine import class_groups as cg
 from .engine import shards
 from .models import Evaluation, EvaluationClassGroup, EvaluationShard
@@ -50,6 +51,10 @@ def wanted(protocol, truth, predictions):
     )
 
 
+def _images_per_shard():
+    return settings.BENCHBOOK_SHARD_IMAGES
+
+
 def _ranges(n_images):
     return shards.plan(n_images, settings.BENCHBOOK_SHARD_IMAGES)
 
@@ -63,6 +68,83 @@ def resume(evaluation):
         return False
     _dispatch(evaluation, rows)
     return True
+
+
+def from_pieces(evaluation, protocol):
+    """Send the shards of ``evaluation`` from its file's stored pieces (``pieces``:
+    made at upload, or streamed here now from the stored file when there are none);
+    False when it is not scored that way — another kind of protocol, a split of one
+    shard, a label archive or a file too small to stream, or fewer than
+    ``BENCHBOOK_SHARD_ABOVE`` images × detections — and the caller reads the files.
+    Call it under the evaluation's claim. No whole-file read on this path."""
+    split, prediction_file = evaluation.split, evaluation.predictions
+    if not isinstance(protocol, engine.Protocol) or split.image_count <= _images_per_shard():
+        return False
+    options = {"box_policy": evaluation.box_policy, "unknown_images": evaluation.unknown_images}
+    found = piece_sets.stored(prediction_file, split, **options)
+    if found is None:
+        found = _stream_stored_file(evaluation, options)
+        if found is None:
+            return False
+    counts = found.counts
+    if split.image_count * counts["n"] <= settings.BENCHBOOK_SHARD_ABOVE:
+        return False
+    _discard(evaluation.shards.all())
+    rows = [
+        EvaluationShard(
+            evaluation=evaluation,
+            index=piece.index,
+            image_start=piece.image_start,
+            image_stop=piece.image_stop,
+            detections=piece.detections,
+            piece=piece.file.name,
+            piece_sha256=piece.sha256,
+            predictions_counts=counts,
+        )
+        for piece in found.pieces.order_by("index")
+    ]
+    with transaction.atomic():
+        jobs.lock_if_held(evaluation)
+        EvaluationShard.objects.bulk_create(rows)
+    jobs.progress(evaluation, 60)
+    _dispatch(evaluation, rows)
+    return True
+
+
+def _stream_stored_file(evaluation, options):
+    """Stream the evaluation's stored file (hash-checked) into pieces and store them;
+    None when it is not worth it (``pieces.worth_streaming``)."""
+    from .services import ENGINE_IDS, _format_of, load_truth_of
+
+    split, prediction_file = evaluation.split, evaluation.predictions
+    fmt = _format_of(evaluation.name)
+    if not piece_sets.worth_streaming(split, prediction_file.size, fmt):
+        return None
+    with verified_path(
+        prediction_file.file,
+        prediction_file.sha256,
+        f"predictions:{prediction_file.pk}",
+        "predictions file",
+        evaluation.name,
+    ) as path:
+        if engine.is_collection(path):  # a label archive named .json: read whole
+            return None
+        truth = load_truth_of(split, evaluation.box_policy)
+        jobs.progress(evaluation, 25)
+        with tempfile.TemporaryDirectory() as work:
+            streamed = piece_sets.stream(
+                path,
+                truth,
+                evaluation.name,
+                work,
+                fmt=fmt,
+                boxes=evaluation.box_policy,
+                unknown_images=evaluation.unknown_images,
+                ids=ENGINE_IDS,
+            )
+            del truth
+            jobs.progress(evaluation, 50)
+            return piece_sets.keep(streamed, prediction_file, split, **options)
 
 
 def start(evaluation, truth, predictions):
@@ -264,7 +346,7 @@ def _discard(rows, keep_rows=False):
     for row in rows:
         names = ("piece", "records") if isinstance(row, EvaluationShard) else ("records",)
         for field_file in (getattr(row, name) for name in names):
-            if field_file.name:
+            if field_file.name and not piece_sets.is_shared_piece(field_file.name):
                 try:
                     field_file.storage.delete(field_file.name)
                 except OSError:

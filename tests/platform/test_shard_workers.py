@@ -13,7 +13,13 @@ import pytest
 from django.conf import settings as django_settings
 
 from evaluation import engine
-from evaluation.models import Evaluation, EvaluationClassGroup, EvaluationShard, Scorecard
+from evaluation.models import (
+    Evaluation,
+    EvaluationClassGroup,
+    EvaluationShard,
+    PredictionPieces,
+    Scorecard,
+)
 
 from . import test_faults
 from .conftest import detections_for
@@ -90,3 +96,33 @@ def _settled(rows, quiet=4.0):
         return False
     time.sleep(quiet)
     return rows.exclude(records="").count() == done
+
+
+def test_pieces_made_at_upload_are_scored_by_two_workers(
+    workers, detector, split, split_truth, users, version, settings, tmp_path
+):
+    """The upload streams the file into pieces (``evaluation/pieces.py``); the workers
+    score the shards from them and never read the file whole (the predictions cache
+    stays without an entry for it), with the engine's numbers."""
+    settings.BENCHBOOK_SHARD_ABOVE, settings.BENCHBOOK_SHARD_IMAGES = 0, 3
+    settings.BENCHBOOK_INLINE_VALIDATION_BYTES = 1  # every upload is streamed
+    workers(**SHARDED, BENCHBOOK_INLINE_VALIDATION_BYTES=1)
+    workers(**SHARDED, BENCHBOOK_INLINE_VALIDATION_BYTES=1)
+    dets = detections_for(split_truth)
+    evaluations = _submit(version, split, users, dets)
+    assert PredictionPieces.objects.get().pieces.count() == 4
+    _wait(_finished(evaluations), 120, "done")
+    _done_exactly_once(evaluations)
+    cache = django_settings.BENCHBOOK_ENGINE_CACHE
+    assert len(os.listdir(cache)) == 1  # the split's columns only: no whole-file load
+    (tmp_path / "gt.json").write_text(json.dumps(split_truth))
+    (tmp_path / "dt.json").write_text(json.dumps(dets))
+    truth = engine.load_truth(tmp_path / "gt.json")
+    predictions = engine.load_predictions(tmp_path / "dt.json", truth)
+    for evaluation in evaluations:
+        card = Scorecard.objects.get(evaluation=evaluation)
+        direct = engine.evaluate(truth, predictions, evaluation.protocol)
+        assert json.dumps(card.summary, sort_keys=True) == json.dumps(
+            direct["summary"], sort_keys=True
+        )
+    assert len(os.listdir(os.path.join(django_settings.MEDIA_ROOT, "pieces"))) == 4
