@@ -1,6 +1,7 @@
 """Benchmark: one large evaluation scored end to end by one worker, then in image shards.
 
     nice python bench/sharded.py [--scale 1] [--shard-images 5000] [--runs whole,one,redis2,fs2]
+                                 [--upload]
 
 A seeded split of 100,000 images, ~750,000 boxes, 80 classes and 10,000,000 detections
 (``--scale 0.1``: a tenth of each) is generated to bench/out/sharded-<scale>/ (not in
@@ -12,12 +13,20 @@ and waits for the stored result (upload → stored result), with fresh worker pr
     redis2  two workers on the Redis broker, in shards
     fs2     two workers on the embedded filesystem broker (file results), in shards
 
-It prints wall time, the peak RSS (VmHWM) of every worker, the ratio to ``whole``,
+With ``--upload`` the sharded runs go through the upload check
+(``services.received_predictions``, as ``submit_predictions`` does): the file is
+streamed into per-shard pieces at upload, stored with it, and the workers read only
+those (``evaluation/pieces.py``); the upload's own peak RSS and CPU time are printed.
+
+It prints wall time, the peak RSS (VmHWM) and CPU time of every worker, the ratio to
+``whole``,
 whether the numbers are identical (SHA-256 of the stored result), the per-shard cost,
 the merge step's cost (last shard stored → result stored) and, from those, a table on
 paper for N machines. Then the peak RSS of one process that loads one shard's piece and
-matches it (a shard's memory, whatever the split's size) and of one that reads the
-whole predictions file (what the run that splits the file holds). Database: PostgreSQL
+matches it (a shard's memory, whatever the split's size), of one that reads the
+whole predictions file (what the run that splits the file held before pieces were
+made at upload), and of one that streams the file into pieces
+(``engine.pieces.stream_pieces``, what the upload does). Database: PostgreSQL
 (``--database-url``, a throw-away database it drops and creates); Redis at
 ``--redis-url``. Report the load average printed beside the numbers: the machine may
 be shared.
@@ -191,7 +200,7 @@ def database(url):
         conn.execute(f'CREATE DATABASE "{name}"')
 
 
-def run(name, workers, broker, env, shard_images, dt_path):
+def run(name, workers, broker, env, shard_images, dt_path, via_upload=False):
     """Start ``workers`` fresh worker processes, drive one evaluation, stop them."""
     queue = f"bench-{uuid.uuid4().hex[:8]}"
     run_env = {**env, "CELERY_BROKER_URL": broker, "BENCHBOOK_QUEUE": queue}
@@ -214,8 +223,9 @@ def run(name, workers, broker, env, shard_images, dt_path):
     time.sleep(4)  # let the workers connect
     watch = Watch(processes)
     try:
+        drive_args = [__file__, "--drive", name, "--predictions", str(dt_path)]
         out = python(
-            [__file__, "--drive", name, "--predictions", str(dt_path)],
+            drive_args + (["--upload"] if via_upload and name != "whole" else []),
             run_env,
             capture_output=True,
             text=True,
@@ -231,9 +241,11 @@ def run(name, workers, broker, env, shard_images, dt_path):
     return result
 
 
-def drive(name, predictions_path):
-    """In a process of its own (the web side): store the file, request the evaluation,
-    wait for its stored result; print timings as JSON."""
+def drive(name, predictions_path, via_upload=False):
+    """In a process of its own (the web side): store the file (``via_upload``: through
+    the upload check, which streams it into pieces), request the evaluation, wait for
+    its stored result; print timings, and the upload's peak RSS and CPU time, as
+    JSON."""
     import django
 
     django.setup()
@@ -241,10 +253,18 @@ def drive(name, predictions_path):
     from evaluation.models import BenchmarkSplit, Evaluation, EvaluationClassGroup, EvaluationShard
 
     split = BenchmarkSplit.objects.get(name="sharded")
-    began = time.time()
-    with open(predictions_path, "rb") as f:
-        prediction_file = services.store_predictions(f)
+    from django.core.files import File
     from django.db import transaction
+
+    began, cpu_began = time.time(), time.process_time()
+    with open(predictions_path, "rb") as f:
+        if via_upload:
+            with services.received_predictions(File(f, name="predictions.json"), split) as got:
+                with transaction.atomic():
+                    prediction_file = got.store()
+        else:
+            prediction_file = services.store_predictions(f)
+    upload_cpu, upload_peak = time.process_time() - cpu_began, peak_mb(os.getpid())
 
     with transaction.atomic():
         (evaluation,) = services.request_evaluations(split, prediction_file, ["coco"], scope=name)
@@ -262,6 +282,8 @@ def drive(name, predictions_path):
     report = {
         "wall": ended - began,
         "upload": stored - began,
+        "upload_cpu": upload_cpu,
+        "upload_peak": upload_peak,
         "result_sha256": hashlib.sha256(
             json.dumps(card.result, sort_keys=True).encode()
         ).hexdigest(),
@@ -299,10 +321,15 @@ def piece_peak(mode, gt_path, dt_path, shard_images, cache):
         del truth
         truth = load_truth(gt_path)  # from the file, as a worker without the cache entry
         load_predictions(dt_path, truth)
+    elif mode == "stream":
+        from evaluation.engine.pieces import stream_pieces
+
+        with tempfile.TemporaryDirectory(dir=cache) as work:
+            stream_pieces(dt_path, truth, shards.plan(truth.n_images, shard_images), work)
     else:
         del truth
         shards.match_shard(*shards.load_piece(path), "coco")
-    print(json.dumps({"peak": peak_mb(os.getpid())}))
+    print(json.dumps({"peak": peak_mb(os.getpid()), "cpu": time.process_time()}))
 
 
 def table(results):
@@ -330,7 +357,9 @@ def measure(runs, args, env, gt_path, dt_path):
     results = {}
     for name in runs:
         workers, broker = brokers[name]
-        results[name] = run(name, workers, broker, env, args.shard_images, dt_path)
+        results[name] = run(
+            name, workers, broker, env, args.shard_images, dt_path, via_upload=args.upload
+        )
         r = results[name]
         detail = (
             f"; {len(r['shards'])} shards, mean {np.mean(r['shards']):.2f} s, read + pieces "
@@ -345,8 +374,9 @@ def measure(runs, args, env, gt_path, dt_path):
                 f"{r['finish']:.1f} s)"
             )
         print(
-            f"{name}: {r['wall']:.1f} s, cpu {[round(c, 1) for c in r['cpu']]} s, "
-            f"peaks {[round(p) for p in r['peaks']]} MB, "
+            f"{name}: {r['wall']:.1f} s, peaks {[round(p) for p in r['peaks']]} MB, "
+            f"cpu {[round(c, 1) for c in r['cpu']]} s, upload {r['upload']:.1f} s "
+            f"({r['upload_cpu']:.1f} s CPU, peak {r['upload_peak']:.0f} MB), "
             f"result {r['result_sha256'][:12]}{detail}",
             flush=True,
         )
@@ -383,12 +413,13 @@ def main():
     parser.add_argument("--runs", default="whole,one,redis2,fs2")
     parser.add_argument("--database-url", default="postgres://postgres@127.0.0.1:5432/bb_bench")
     parser.add_argument("--redis-url", default="redis://127.0.0.1:6379/6")
+    parser.add_argument("--upload", action="store_true", help="sharded runs through the upload")
     parser.add_argument("--drive", help=argparse.SUPPRESS)
     parser.add_argument("--predictions", help=argparse.SUPPRESS)
     parser.add_argument("--piece", nargs=4, help=argparse.SUPPRESS)
     args = parser.parse_args()
     if args.drive:
-        return drive(args.drive, args.predictions)
+        return drive(args.drive, args.predictions, args.upload)
     if args.piece:
         mode, gt, dt, cache = args.piece
         return piece_peak(mode, gt, dt, args.shard_images, cache)
@@ -420,14 +451,19 @@ def main():
     extra = ["--shard-images", str(args.shard_images)]
     python([__file__, "--piece", "write-piece", *common, *extra], env, capture_output=True)
     peaks = {}
-    for mode in ("piece", "whole-read"):
+    for mode in ("piece", "whole-read", "stream"):
+        began = time.time()
         out = python([__file__, "--piece", mode, *common, *extra], env, capture_output=True)
-        peaks[mode] = json.loads(out.stdout.decode().strip().splitlines()[-1])["peak"]
-    print(
-        f"\none shard's process (load piece + match, {args.shard_images} images): "
-        f"{peaks['piece']:.0f} MB; reading the whole predictions file: "
-        f"{peaks['whole-read']:.0f} MB; load average {os.getloadavg()[0]:.1f}"
-    )
+        peaks[mode] = json.loads(out.stdout.decode().strip().splitlines()[-1])
+        peaks[mode]["wall"] = time.time() - began
+    print(f"\none process each (load average {os.getloadavg()[0]:.1f}):")
+    for mode, what in (
+        ("piece", f"load one piece + match it ({args.shard_images} images)"),
+        ("whole-read", "read the whole predictions file"),
+        ("stream", "stream the file into pieces (the upload)"),
+    ):
+        m = peaks[mode]
+        print(f"  {what}: peak {m['peak']:.0f} MB, {m['cpu']:.1f} s CPU, {m['wall']:.1f} s wall")
     return 0
 
 

@@ -7,6 +7,7 @@ from .models import (
     ClassScore,
     Evaluation,
     PredictionFile,
+    PredictionPieces,
     Scorecard,
     SliceScore,
     StoredProtocol,
@@ -36,6 +37,13 @@ class BenchmarkSplitAdmin(ReadOnlyAdmin):
 class PredictionFileAdmin(ReadOnlyAdmin):
     list_display = ["original_name", "sha256", "size", "record_count", "uploaded_at"]
     search_fields = ["original_name", "sha256"]
+
+
+@admin.register(PredictionPieces)
+class PredictionPiecesAdmin(ReadOnlyAdmin):
+    """Pieces are written by the upload check only; an edit would break their hashes."""
+
+    list_display = ["predictions", "split", "box_policy", "unknown_images", "images_per_shard"]
 
 
 @admin.register(Evaluation)

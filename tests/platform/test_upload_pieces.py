@@ -259,3 +259,59 @@ def test_unknown_images_dropped_on_a_re_score(
     assert predictions.dropped_images == 9
     card = Scorecard.objects.get(evaluation=evaluation)
     assert json.dumps(card.summary, sort_keys=True) == json.dumps(direct["summary"], sort_keys=True)
+
+
+def _via(entry, client, detector, split, users, name, content, tmp_path):
+    """Upload ``content`` as version 2.0 through ``entry``: the status (or the
+    command's error text)."""
+    from django.core.management import CommandError, call_command
+    from django.urls import reverse
+
+    from .test_api import API, client_for, file
+
+    if entry == "page":
+        client.force_login(users["engineer"])
+        return client.post(
+            reverse("upload", args=[detector.pk]),
+            {"version": "2.0", "split": split.pk, "predictions": upload(name, content)},
+        ).status_code
+    if entry == "api":
+        return (
+            client_for(users["engineer"])
+            .post(
+                API + "prediction-sets/",
+                {
+                    "detector": detector.pk,
+                    "version": "2.0",
+                    "split": split.pk,
+                    "predictions": file(name, content),
+                },
+                format="multipart",
+            )
+            .status_code
+        )
+    path = tmp_path / name
+    path.write_text(json.dumps(content))
+    try:
+        call_command(
+            "upload_predictions",
+            "--detector", detector.slug, "--label", "2.0", "--split", f"{split.name}:1",
+            "--user", "engineer", "--create-version", str(path),
+        )  # fmt: skip
+    except CommandError as e:
+        return str(e)
+    return "ok"
+
+
+@pytest.mark.parametrize("entry", ["page", "api", "command"])
+def test_every_entry_point_streams_pieces_and_a_refusal_stores_none(
+    entry, large, client, detector, split, tied, users, run_tasks, sent, tmp_path
+):
+    bad = tied + [{**tied[0], "image_id": 10**9}]
+    refused = _via(entry, client, detector, split, users, "bad.json", bad, tmp_path)
+    assert refused in (200, 400) or f"record {len(tied)}" in refused  # the page re-renders
+    assert not PredictionPieces.objects.exists() and not PredictionFile.objects.exists()
+    assert _piece_files(large) == []
+    run_tasks(_via, entry, client, detector, split, users, "good.json", tied, tmp_path)
+    (stored,) = PredictionPieces.objects.all()
+    assert stored.pieces.count() == 4 and len(_piece_files(large)) == 4
