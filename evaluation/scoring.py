@@ -15,7 +15,7 @@ from .models import ClassScore, Evaluation, PredictionFile, Scorecard, SliceScor
 from .protocols import resolve as resolve_protocol
 from .rows import class_rows, slice_rows
 from .services import _load_predictions, load_truth_of
-from .storage import ContentMismatch, file_sha256, verified_path
+from .storage import ContentMismatch, file_sha256, verified_predictions
 
 log = logging.getLogger(__name__)
 
@@ -77,16 +77,10 @@ def _score(evaluation):
     protocol = resolve_protocol(evaluation.protocol)
     if sharding.from_pieces(evaluation, protocol):  # the file's pieces, never read whole
         return None
-    split, prediction_file = evaluation.split, evaluation.predictions
+    split = evaluation.split
     truth = load_truth_of(split, evaluation.box_policy)
     jobs.progress(evaluation, 25)
-    with verified_path(
-        prediction_file.file,
-        prediction_file.sha256,
-        f"predictions:{prediction_file.pk}",
-        "predictions file",
-        evaluation.name,
-    ) as path:
+    with verified_predictions(evaluation) as path:
         predictions = _load_predictions(
             path,
             truth,

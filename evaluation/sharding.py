@@ -35,7 +35,7 @@ from . import pieces as piece_sets
 from .engine import class_groups as cg
 from .engine import shards
 from .models import Evaluation, EvaluationClassGroup, EvaluationShard
-from .storage import file_sha256, verified_path
+from .storage import file_sha256, verified_path, verified_predictions
 
 log = logging.getLogger(__name__)
 
@@ -120,13 +120,7 @@ def _stream_stored_file(evaluation, options):
     fmt = _format_of(evaluation.name)
     if not piece_sets.worth_streaming(split, prediction_file.size, fmt):
         return None
-    with verified_path(
-        prediction_file.file,
-        prediction_file.sha256,
-        f"predictions:{prediction_file.pk}",
-        "predictions file",
-        evaluation.name,
-    ) as path:
+    with verified_predictions(evaluation) as path:
         if engine.is_collection(path):  # a label archive named .json: read whole
             return None
         truth = load_truth_of(split, evaluation.box_policy)

@@ -72,6 +72,19 @@ def verified_path(field_file, expected, subject, what, name=None):
         yield path
 
 
+def verified_predictions(evaluation):
+    """``verified_path`` of an evaluation's stored predictions file, named as its
+    requester uploaded it."""
+    prediction_file = evaluation.predictions
+    return verified_path(
+        prediction_file.file,
+        prediction_file.sha256,
+        f"predictions:{prediction_file.pk}",
+        "predictions file",
+        evaluation.name,
+    )
+
+
 @contextlib.contextmanager
 def local_path(field_file):
     """A filesystem path for a stored file: the file itself when the storage is a

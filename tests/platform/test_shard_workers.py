@@ -41,6 +41,17 @@ def test_two_workers_score_the_shards_and_equal_the_engine(
     evaluations = _submit(version, split, users, dets)
     _wait(_finished(evaluations), 120, "done")
     _done_exactly_once(evaluations)
+    _equal_to_the_engine(evaluations, split_truth, dets, tmp_path)
+    for evaluation in evaluations:
+        shards = EvaluationShard.objects.filter(evaluation=evaluation)
+        assert shards.count() == 4 and all(s.finished_at for s in shards)
+        groups = EvaluationClassGroup.objects.filter(evaluation=evaluation)
+        assert groups.count() == 2 and all(g.finished_at and not g.records for g in groups)
+
+
+def _equal_to_the_engine(evaluations, split_truth, dets, tmp_path):
+    """Each stored summary and per-class table equals the engine's one-process run on
+    the files, bit for bit."""
     (tmp_path / "gt.json").write_text(json.dumps(split_truth))
     (tmp_path / "dt.json").write_text(json.dumps(dets))
     truth = engine.load_truth(tmp_path / "gt.json")
@@ -49,12 +60,8 @@ def test_two_workers_score_the_shards_and_equal_the_engine(
         card = Scorecard.objects.get(evaluation=evaluation)
         direct = engine.evaluate(truth, predictions, evaluation.protocol)
         as_text = json.dumps(card.summary, sort_keys=True)
-        assert as_text == json.dumps(direct["summary"], sort_keys=True)  # bit for bit
+        assert as_text == json.dumps(direct["summary"], sort_keys=True)
         assert card.result["per_class"] == json.loads(json.dumps(direct["per_class"]))
-        shards = EvaluationShard.objects.filter(evaluation=evaluation)
-        assert shards.count() == 4 and all(s.finished_at for s in shards)
-        groups = EvaluationClassGroup.objects.filter(evaluation=evaluation)
-        assert groups.count() == 2 and all(g.finished_at and not g.records for g in groups)
 
 
 def test_a_worker_killed_mid_shard_loses_only_that_shard(
@@ -102,8 +109,8 @@ def test_pieces_made_at_upload_are_scored_by_two_workers(
     workers, detector, split, split_truth, users, version, settings, tmp_path
 ):
     """The upload streams the file into pieces (``evaluation/pieces.py``); the workers
-    score the shards from them and never read the file whole (the predictions cache
-    stays without an entry for it), with the engine's numbers."""
+    score the shards from them and never read the file whole (the engine cache holds
+    the split's columns only), with the engine's numbers."""
     settings.BENCHBOOK_SHARD_ABOVE, settings.BENCHBOOK_SHARD_IMAGES = 0, 3
     settings.BENCHBOOK_INLINE_VALIDATION_BYTES = 1  # every upload is streamed
     workers(**SHARDED, BENCHBOOK_INLINE_VALIDATION_BYTES=1)
@@ -115,14 +122,5 @@ def test_pieces_made_at_upload_are_scored_by_two_workers(
     _done_exactly_once(evaluations)
     cache = django_settings.BENCHBOOK_ENGINE_CACHE
     assert len(os.listdir(cache)) == 1  # the split's columns only: no whole-file load
-    (tmp_path / "gt.json").write_text(json.dumps(split_truth))
-    (tmp_path / "dt.json").write_text(json.dumps(dets))
-    truth = engine.load_truth(tmp_path / "gt.json")
-    predictions = engine.load_predictions(tmp_path / "dt.json", truth)
-    for evaluation in evaluations:
-        card = Scorecard.objects.get(evaluation=evaluation)
-        direct = engine.evaluate(truth, predictions, evaluation.protocol)
-        assert json.dumps(card.summary, sort_keys=True) == json.dumps(
-            direct["summary"], sort_keys=True
-        )
+    _equal_to_the_engine(evaluations, split_truth, dets, tmp_path)
     assert len(os.listdir(os.path.join(django_settings.MEDIA_ROOT, "pieces"))) == 4

@@ -12,12 +12,11 @@ lowered so the 12-image test split is cut into 4 shards and every upload is
 
 import json
 import os
-import uuid
 
 import numpy as np
 import pytest
 
-from evaluation import engine, sharding, tasks
+from evaluation import engine
 from evaluation import pieces as piece_sets
 from evaluation import services as evaluation_services
 from evaluation.engine import shards
@@ -35,9 +34,12 @@ from releases import services
 
 from ..engine.synthetic import make_detections
 from ..engine.test_stream_pieces import _same_piece
+from . import test_shards
 from .conftest import upload
+from .test_shards import _run
 
 pytestmark = pytest.mark.django_db
+sent = test_shards.sent  # the chord recorder fixture
 
 
 @pytest.fixture
@@ -46,13 +48,6 @@ def large(settings):
     settings.BENCHBOOK_SHARD_IMAGES = 3  # the 12-image split in 4 shards
     settings.BENCHBOOK_INLINE_VALIDATION_BYTES = 1  # every upload is streamed
     return settings
-
-
-@pytest.fixture
-def sent(monkeypatch):
-    calls = []
-    monkeypatch.setattr(sharding, "send", lambda *args: calls.append(args))
-    return calls
 
 
 @pytest.fixture
@@ -73,18 +68,6 @@ def _refuse_whole_reads(monkeypatch):
 @pytest.fixture
 def no_whole_read(monkeypatch):
     _refuse_whole_reads(monkeypatch)
-
-
-def _apply(run_tasks, task, *args):
-    args = json.loads(json.dumps(args))
-    return run_tasks(task.apply, args=args, task_id=str(uuid.uuid4()), throw=True)
-
-
-def _run(run_tasks, sends):
-    for evaluation_id, claim, indexes in sends:
-        for k in indexes[::-1]:
-            _apply(run_tasks, tasks.score_shard, evaluation_id, claim, k)
-        _apply(run_tasks, tasks.merge_shards, evaluation_id, claim)
 
 
 def _engine_run(tmp_path, split_truth, dets, protocol, **options):
