@@ -90,6 +90,7 @@ def from_pieces(evaluation, protocol):
     if split.image_count * counts["n"] <= settings.BENCHBOOK_SHARD_ABOVE:
         return False
     _discard(evaluation.shards.all())
+    _discard(evaluation.class_groups.all())
     rows = [
         EvaluationShard(
             evaluation=evaluation,

@@ -6,7 +6,7 @@ from django.db import migrations, models
 
 class Migration(migrations.Migration):
     dependencies = [
-        ("evaluation", "0016_road_counts_of_older_splits"),
+        ("evaluation", "0017_class_groups"),
     ]
 
     operations = [
