@@ -5,6 +5,7 @@ from django.contrib.auth.decorators import login_required
 from django.core.exceptions import PermissionDenied
 from django.http import Http404
 from django.shortcuts import redirect, render
+from django.urls import reverse
 
 from evaluation import engine, levels
 from evaluation import images as split_images
@@ -41,6 +42,8 @@ def split(request, split_id):
             "images": split_images.images_of(found),
             "can_load": selectors.can_load_splits(request.user),
             "usage": selectors.split_usage(request.user, found),
+            # One reverse, not one per listed version (the list grows with versions).
+            "version_prefix": reverse("version", args=[0])[:-2],
             "class_counts": [(c, found.class_counts.get(c)) for c in found.classes],
             "tags": sorted(found.tags.items()),
             "road": levels.split_page(found.road_counts),

@@ -120,10 +120,12 @@ def overview_for(user):
 
 
 def split_usage(user, split):
-    """Versions of visible detectors that were scored on ``split``."""
-    return list(
+    """Versions of visible detectors that were scored on ``split``, as
+    ``{"id", "detector", "label"}`` (rows as tuples: the list grows with versions)."""
+    rows = (
         PredictionSet.objects.current()
         .filter(split=split, version__detector__in=visible_detectors(user))
-        .select_related("version__detector")
         .order_by("version__detector__name", "version__created_at")
+        .values_list("version_id", "version__detector__name", "version__label")
     )
+    return [{"id": pk, "detector": name, "label": label} for pk, name, label in rows]

@@ -54,6 +54,18 @@ def test_every_page_renders_for_a_member(client, users, detector, split, scored)
         assert response.status_code == 200, url
 
 
+def test_the_split_page_links_every_version_scored_on_it(client, users, detector, split, scored):
+    """The list is built from tuples with one URL prefix: each link is the version's
+    own page (as ``reverse`` names it), in detector then creation order."""
+    client.force_login(users["engineer"])
+    html = client.get(reverse("split", args=[split.pk])).content.decode()
+    links = [
+        f'<a href="{reverse("version", args=[v.pk])}">Forward camera {v.label}</a>' for v in scored
+    ]
+    assert all(link in html for link in links)
+    assert [html.index(link) for link in links] == sorted(html.index(link) for link in links)
+
+
 def test_history_holds_every_version_in_time_order(detector, scored, split):
     chart = selectors.history_chart(detector, "AP", "pedestrian")
     assert [v["label"] for v in chart["versions"]] == ["1.0", "1.1", "1.2", "1.3"]
