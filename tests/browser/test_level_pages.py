@@ -7,7 +7,7 @@ import json
 from releases import services
 
 from ..engine.test_difficulty import _write
-from ..platform import test_level_protocols
+from ..platform import test_level_protocols, test_level_rules
 from ..platform.conftest import upload
 from .conftest import BROWSER_MARKS, shot
 from .test_layout import MEASURE, WIDTHS
@@ -64,13 +64,7 @@ def test_the_history_chart_draws_moderate_ap_from_the_metric_selector(
     """The metric selector's level choice (``AP@moderate``) fetches that level's series
     from the history API; the chart draws the stored moderate AP and the page fits at
     1280 and 390 px (screenshots history-level-*)."""
-    run_tasks(
-        services.submit_predictions,
-        road["version"],
-        road["split"],
-        upload("dets.zip", road["predictions"]),
-        users["engineer"],
-    )
+    test_level_rules._submit(road, run_tasks, users)
     page.goto(f"{live_server.url}/detectors/{road['detector'].pk}/")
     chart = "window.benchbookCharts['history-chart']"
     page.wait_for_function(f"window.benchbookCharts && {chart}")
@@ -82,14 +76,17 @@ def test_the_history_chart_draws_moderate_ap_from_the_metric_selector(
     car = next(r.ap for r in card.slices.all() if (r.name, r.class_name) == ("moderate", "Car"))
     assert page.evaluate(f"{chart}.data.datasets[0].data") == [round(car, 4)]
     assert "metric=AP" in page.url and "level=moderate" in page.url
+    # Loaded afresh at each width with the API's parameters (the address the selector
+    # left): the page keeps the selection without script, and fits.
     found = {}
     for width, height in WIDTHS.items():
         page.set_viewport_size({"width": width, "height": height})
+        page.reload()
+        page.wait_for_function(f"window.benchbookCharts && {chart}")
+        assert page.locator("#history-metric").input_value() == "AP@moderate"
+        assert page.evaluate(f"{chart}.data.datasets[0].data") == [round(car, 4)]
         problems = page.evaluate(MEASURE)
         if problems:
             found[width] = problems
         shot(page, f"history-level-{width}")
     assert not found, json.dumps(found, indent=1)
-    # reloaded with the API's parameters, the page keeps the selection (no script needed)
-    page.reload()
-    assert page.locator("#history-metric").input_value() == "AP@moderate"

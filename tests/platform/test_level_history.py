@@ -17,12 +17,12 @@ from rest_framework.test import APIClient
 
 from evaluation import levels, triggers
 from evaluation.models import BenchmarkSplit, Evaluation, SliceScore
-from releases import audit_check, selectors, services, tokens
+from releases import audit_check, selectors, tokens
 
 from ..engine import oracle, pedestrian_oracle
 from ..engine.test_pedestrian import _oracle_scene
-from .conftest import upload
 from .test_level_protocols import road  # noqa: F401  (a fixture: a kitti2d suite)
+from .test_level_rules import _submit
 from .test_level_setups import walkers  # noqa: F401  (a fixture: the worker stores miss-rate)
 
 pytestmark = pytest.mark.django_db
@@ -37,13 +37,7 @@ def _api(user):
 
 @pytest.fixture
 def scored_road(road, users, run_tasks):  # noqa: F811
-    run_tasks(
-        services.submit_predictions,
-        road["version"],
-        road["split"],
-        upload("dets.zip", road["predictions"]),
-        users["engineer"],
-    )
+    _submit(road, run_tasks, users)
     assert Evaluation.objects.get(protocol="kitti2d").state == "done"
     return road
 
@@ -77,6 +71,12 @@ def test_moderate_ap_is_a_history_series_on_selector_api_and_page(scored_road, u
     assert 'value="AP@moderate" selected' in html
     assert "mean AP at moderate (kitti2d" in html
     assert page.context["table"][0]["values"] == [(round(card.summary["AP"], 4), None)]
+    # the address the chart's selector leaves (the API's parameters) serves the page too
+    query = {"metric": "AP", "class": "Car", "revisions": "joined", "level": "moderate"}
+    again = client.get(reverse("detector", args=[detector.pk]), query)
+    assert again.status_code == 200
+    assert again.context["chart"]["series"][0]["values"] == [round(car_moderate, 4)]
+    assert 'value="AP@moderate" selected' in again.content.decode()
 
 
 def test_reasonable_miss_rate_is_a_history_series_lower_is_better(walkers, users, client):  # noqa: F811
