@@ -33,6 +33,11 @@ log = logging.getLogger(__name__)
 #: loads here, so a split or predictions file holding one is refused at upload (400)
 #: or, past the inline-validation size, fails its evaluation, naming file/record/field.
 ENGINE_IDS = "int64"
+#: The platform refuses what the engine's CLI scores as pycocotools does: ground truth
+#: with a repeated annotation id or annotations of unlisted images/categories
+#: (``annotations="strict"``), detections of classes the split does not list.
+ENGINE_ANNOTATIONS = "strict"
+ENGINE_UNKNOWN_CLASSES = "reject"
 
 
 class UploadError(ValueError):
@@ -120,7 +125,11 @@ def load_split(*, name, revision, truth, images=None, description="", created_by
         try:
             source_format = _format_of(truth_path, truth_path)
             loaded = engine.load_truth(
-                truth_path, images=images_path, fmt=source_format, ids=ENGINE_IDS
+                truth_path,
+                images=images_path,
+                fmt=source_format,
+                ids=ENGINE_IDS,
+                annotations=ENGINE_ANNOTATIONS,
             )
         except engine.InputError as e:
             e.argument = "images" if images_path and str(e.path) == images_path else "truth"
@@ -220,8 +229,15 @@ def _read_truth(split, boxes):
                     cache_dir=_cache_dir(),
                     boxes=boxes,
                     ids=ENGINE_IDS,
+                    annotations=ENGINE_ANNOTATIONS,
                 )
-        return engine.load_truth(truth_path, cache_dir=_cache_dir(), boxes=boxes, ids=ENGINE_IDS)
+        return engine.load_truth(
+            truth_path,
+            cache_dir=_cache_dir(),
+            boxes=boxes,
+            ids=ENGINE_IDS,
+            annotations=ENGINE_ANNOTATIONS,
+        )
 
 
 def load_records(scorecard):
@@ -389,6 +405,7 @@ def _load_named(path, truth, name, boxes, unknown_images):
             fmt=_format_of(name, path),
             boxes=boxes,
             unknown_images=unknown_images,
+            unknown_classes=ENGINE_UNKNOWN_CLASSES,
             cache_dir=_cache_dir(),
             ids=ENGINE_IDS,
         )

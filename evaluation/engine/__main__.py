@@ -100,7 +100,21 @@ def build_parser():
         help="boxes that leave the image: keep as given (default, as the reference "
         "implementations), clip predictions to the frame, or reject the file",
     )
-    score.add_argument("--unknown-classes", choices=("reject", "drop"), default="reject")
+    score.add_argument(
+        "--unknown-classes",
+        choices=("drop", "reject"),
+        default="drop",
+        help="detections of classes the split does not list: drop and count them "
+        "(default, as pycocotools) or reject the file",
+    )
+    score.add_argument(
+        "--annotations",
+        choices=("reference", "strict"),
+        default="reference",
+        help="COCO JSON ground truth: score the annotations pycocotools scores (default: "
+        "a repeated id resolves to its last annotation, annotations of unlisted images or "
+        "categories are left out, all counted) or refuse such files",
+    )
     score.add_argument("--cache", metavar="DIR", help="keep parsed input as .npz here")
     score.add_argument("--records", metavar="FILE.npz", help="also write the match records")
     score.add_argument(
@@ -141,6 +155,7 @@ def main(argv=None):
             fmt=args.truth_format,
             cache_dir=args.cache,
             boxes=args.boxes,
+            annotations=args.annotations,
         )
         predictions = load_predictions(
             args.predictions,

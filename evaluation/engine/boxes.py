@@ -40,7 +40,7 @@ def pair_iou(det_boxes, gt_boxes, gt_crowd, *, pixel_offset=0.0):
     dx, dy, dw, dh = det_boxes.T
     gx, gy, gw, gh = gt_boxes.T
     # Overflow gives inf, as in the reference's C doubles (IoU 0 then); no warning.
-    with np.errstate(over="ignore", divide="ignore", invalid="ignore"):
+    with np.errstate(over="ignore", under="ignore", divide="ignore", invalid="ignore"):
         # fmin/fmax: C99's (bbIou) and MATLAB's min/max (the devkit) return the other
         # operand when one is NaN; np.minimum would propagate the NaN.
         iw = np.fmin(dw + dx, gw + gx) - np.fmax(dx, gx)

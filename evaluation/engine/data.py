@@ -82,6 +82,14 @@ class GroundTruth:
     def n_boxes(self):
         return len(self.box_image)
 
+    def zero_id_boxes(self):
+        """Boxes whose annotation id is 0 (only COCO JSON ids can be: CSV and label
+        folders number boxes from 1), for ``Protocol.zero_id_unmatched``."""
+        ids = self.box_ids
+        if ids.dtype.kind in "iu":
+            return ids == 0
+        return np.asarray(ids).astype(str) == "0"
+
     def tags(self):
         """Every tag used by at least one image, sorted."""
         return sorted({t for tags in self.image_tags for t in tags})
@@ -102,6 +110,9 @@ class GroundTruth:
         occlusion, truncation and visibility; the sorted regions follow), so a split
         without them keeps the hash it was frozen with.
         """
+        cached = self.__dict__.get("_content_hash")
+        if cached is not None:  # frozen: computed once (the loaders and annotate ask)
+            return cached
         attributes = self.has_attributes()
         digest = hashlib.sha256()
         digest.update(repr(list(zip(self.class_ids.tolist(), self.classes))).encode())
@@ -128,7 +139,8 @@ class GroundTruth:
             regions = regions[np.lexsort(regions.T[::-1])]
             digest.update(b"dont_care")
             digest.update(np.ascontiguousarray(regions, "<f8").tobytes())
-        return digest.hexdigest()
+        object.__setattr__(self, "_content_hash", digest.hexdigest())
+        return self._content_hash
 
 
 @dataclass(frozen=True, eq=False)

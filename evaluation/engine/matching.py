@@ -146,7 +146,7 @@ def match(truth, predictions, protocol, *, reasons=True):
     det_cls = predictions.cls[order]
     det_boxes = predictions.boxes[order]
     det_group = det_image.astype(np.int64) * n_classes + det_cls
-    with np.errstate(invalid="ignore", over="ignore"):  # inf * 0: NaN, as in loadRes
+    with np.errstate(invalid="ignore", over="ignore", under="ignore"):  # inf * 0: NaN, as in loadRes
         det_area = det_boxes[:, 2] * det_boxes[:, 3]
 
     base_ignore = truth.crowd | truth.ignore | truth.difficult
@@ -213,8 +213,18 @@ def match(truth, predictions, protocol, *, reasons=True):
         gt_image=truth.box_image.astype(np.int32),
         gt_ignored=gt_ignored,
         tie_order=protocol.tie_order,
+        gt_void=_void_boxes(truth, protocol),
     )
     return _reasons.attach(records, truth, det_boxes, protocol) if reasons else records
+
+
+def _void_boxes(truth, protocol):
+    """Boxes a match with which is no true positive (``Protocol.zero_id_unmatched``:
+    annotation id 0 under ``coco``), or None when there are none."""
+    if not protocol.zero_id_unmatched:
+        return None
+    void = truth.zero_id_boxes()
+    return void if void.any() else None
 
 
 def _greedy(pair_det, pair_gt, pair_iou_, rank, det_group, det_cls, effective, gt_ignored, crowd):

@@ -91,6 +91,10 @@ class Protocol:
     precision_epsilon: float = 0.0
     coco_summary: bool = False
     tie_order: str = "image"
+    #: A match with the ground-truth box of annotation id 0 is no true positive (the box
+    #: stays taken): pycocotools 2.0.11 ``evaluateImg`` stores the matched box's id in
+    #: ``dtm`` and ``accumulate`` counts ``tps = dtm & ~dtIg``, so id 0 reads as unmatched.
+    zero_id_unmatched: bool = False
     #: Custom protocols: every name in ``class_iou_thresholds`` must be a class of the
     #: split. Presets name common classes (car, van, ...) that a split may lack.
     check_class_names: bool = False
@@ -142,6 +146,7 @@ class Protocol:
             "max_detections": list(self.max_detections),
             "area_ranges": [list(r) for r in self.area_ranges],
             "tie_order": self.tie_order,
+            "zero_id_unmatched": self.zero_id_unmatched,
         }
 
 
@@ -158,6 +163,7 @@ PRESETS = {
         max_detections=(1, 10, 100),
         precision_epsilon=float(np.spacing(1)),
         coco_summary=True,
+        zero_id_unmatched=True,
     ),
     "voc07": Protocol(
         name="voc07",
@@ -233,7 +239,8 @@ def protocol_from_dict(spec, source="protocol"):
     ``recall_points`` (list, or ``"all"`` for the all-point area), ``pixel_offset``,
     ``max_detections``, ``tie_order`` (``TIE_ORDERS``), ``area_ranges`` (the size
     buckets: ``[[name, low, high], ...]`` in pixels², the first ``["all", 0, high]``
-    as pycocotools' ``Params.areaRng``, each box counted in ``low <= area <= high``).
+    as pycocotools' ``Params.areaRng``, each box counted in ``low <= area <= high``),
+    ``zero_id_unmatched`` (bool; inherited from ``base``).
     """
     if not isinstance(spec, dict):
         raise InputError(source, "a custom protocol must be a JSON object")
@@ -250,6 +257,7 @@ def protocol_from_dict(spec, source="protocol"):
         "max_detections",
         "tie_order",
         "area_ranges",
+        "zero_id_unmatched",
     }
     for key in spec:
         if key not in known:
@@ -317,6 +325,10 @@ def protocol_from_dict(spec, source="protocol"):
         values["tie_order"] = spec["tie_order"]
     if "area_ranges" in spec:
         values["area_ranges"] = _area_ranges(spec["area_ranges"], source)
+    if "zero_id_unmatched" in spec:
+        if not isinstance(spec["zero_id_unmatched"], bool):
+            raise InputError(source, "must be true or false", field="zero_id_unmatched")
+        values["zero_id_unmatched"] = spec["zero_id_unmatched"]
     values["precision_epsilon"] = base.precision_epsilon
     return Protocol(**values)
 

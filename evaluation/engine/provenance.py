@@ -81,6 +81,10 @@ def protocol_record(protocol, truth, predictions, records, result):
             else "none",
         },
         "tie_order": protocol.tie_order,
+        "zero_id": "a match with the box of annotation id 0 is no true positive and the "
+        "box stays taken (pycocotools 2.0.11)"
+        if protocol.zero_id_unmatched
+        else "annotation ids are not read",
         "pixel_offset": protocol.pixel_offset,
         "box_policy": predictions.box_policy,
         "area_source": {
@@ -149,6 +153,8 @@ EFFECTS = {
     "detection_cap": "detections kept per image and class; a lower cap drops low-scored "
     "detections and lowers recall",
     "tie_order": "the order of tied scores across images; it moves AP only when scores tie",
+    "zero_id": "whether a detection matched to the box of annotation id 0 counts as a true "
+    "positive; it moves the numbers only of a split that has such a box",
     "pixel_offset": "the +1 pixel convention makes every box one pixel larger each way, "
     "raising the IoU of small boxes, so small objects match more easily",
     "box_policy": "what happens to boxes leaving the frame; clipping changes the IoU of "

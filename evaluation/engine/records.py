@@ -77,6 +77,9 @@ class MatchRecords:
     gt_reason: np.ndarray | None = None
     gt_ref_det: np.ndarray | None = None
     gt_ref_iou: np.ndarray | None = None
+    #: Boxes a match with which is no true positive (annotation id 0 under ``coco``:
+    #: ``protocols.Protocol.zero_id_unmatched``); None when there are none.
+    gt_void: np.ndarray | None = None
     _sparse: dict = field(default_factory=dict, repr=False)
 
     @property
@@ -127,9 +130,14 @@ class MatchRecords:
             det = self.match_det[in_area].astype(np.int64)
             box_ignored = self.gt_ignored[area, self.match_box[in_area]]
             key = slot * n + det
-            tp = np.sort(key[~box_ignored])
+            # A match with a void box that counts is read as no match (pycocotools:
+            # dtm holds id 0): not a TP, counted unless the detection is outside.
+            void = np.zeros(len(key), bool)
+            if self.gt_void is not None:
+                void = self.gt_void[self.match_box[in_area]] & ~box_ignored
+            tp = np.sort(key[~box_ignored & ~void])
             outside = self.det_outside[area, det]
-            changes = box_ignored != outside
+            changes = (box_ignored != outside) & ~void
             delta_order = np.argsort(key[changes])
             self._sparse[area] = {
                 **self._tie_groups(),

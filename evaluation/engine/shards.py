@@ -229,6 +229,12 @@ def merged_with_order(shards, n_boxes):
             ref >= 0, new_index[np.maximum(ref, 0) + offsets[k]], -1
         )
         gt_ignored[:, box_index] = records.gt_ignored
+    gt_void = None
+    if any(r.gt_void is not None for r, _ in shards):
+        gt_void = np.zeros(n_boxes, bool)
+        for records, box_index in shards:
+            if records.gt_void is not None:
+                gt_void[box_index] = records.gt_void
 
     merged = MatchRecords(
         protocol=first.protocol,
@@ -244,6 +250,7 @@ def merged_with_order(shards, n_boxes):
         match_iou=np.concatenate([r.match_iou for r, _ in shards]),
         gt_ignored=gt_ignored,
         tie_order=first.tie_order,
+        gt_void=gt_void,
         **box,
     )
     return merged, order

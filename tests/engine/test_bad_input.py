@@ -98,11 +98,14 @@ def _with(**changes):
     ],
 )
 def test_bad_truth_is_refused_with_its_location(files, data, pattern):
+    """Under the strict annotation policy (the platform's) and ``clip`` (which needs
+    image sizes); the defaults score what pycocotools scores: test_annotation_index."""
+    path = files.write("split.json", data)
     if pattern is None:
-        assert _truth(files, data).n_boxes == 2
+        assert load_truth(path, annotations="strict", boxes="clip").n_boxes == 2
         return
     with pytest.raises(InputError, match=pattern):
-        _truth(files, data)
+        load_truth(path, annotations="strict", boxes="clip")
 
 
 def test_truth_boxes_may_overhang_by_a_pixel(files):
@@ -147,7 +150,7 @@ def test_bad_predictions_are_refused_with_their_location(files, content, pattern
     truth = _truth(files)
     path = files.write("predictions.json", content)
     with pytest.raises(InputError, match=pattern):
-        load_predictions(path, truth)
+        load_predictions(path, truth, unknown_classes="reject")
 
 
 def test_box_policies(files):
@@ -318,8 +321,10 @@ IMAGES_CSV = "image_id,width,height,tags\nf1,1280,720,night;rain\nf2,1280,720,\n
 BOXES_CSV = "image_id,label,x_min,y_min,x_max,y_max,crowd\nf1,pedestrian,10,10,50,90,0\nf2,car,100,100,300,200,0\n"
 
 
-def _csv_truth(files, boxes=BOXES_CSV, images=IMAGES_CSV):
-    return load_truth(files.write("boxes.csv", boxes), images=files.write("images.csv", images))
+def _csv_truth(files, boxes=BOXES_CSV, images=IMAGES_CSV, policy="keep"):
+    return load_truth(
+        files.write("boxes.csv", boxes), images=files.write("images.csv", images), boxes=policy
+    )
 
 
 @pytest.mark.parametrize(
@@ -363,15 +368,16 @@ def _csv_truth(files, boxes=BOXES_CSV, images=IMAGES_CSV):
         (
             BOXES_CSV,
             "image_id,width,height\nf1,nan,720\nf2,1,1\n",
-            r"images\.csv: line 2: field 'width': expected a number, got 'nan'",
+            r"images\.csv: line 2: field 'width': the image has no width/height; the box policy 'clip'",
         ),
         (BOXES_CSV, "image_id,width,height\n", r"images\.csv: the images table lists no images"),
         ("", IMAGES_CSV, r"boxes\.csv: the file is empty"),
     ],
 )
 def test_bad_csv_split_is_refused_with_its_line(files, boxes, images, pattern):
+    """Under ``clip``, which reads image sizes (``keep`` takes a size <= 0 as none)."""
     with pytest.raises(InputError, match=pattern):
-        _csv_truth(files, boxes, images)
+        _csv_truth(files, boxes, images, policy="clip")
 
 
 def test_csv_images_table_may_omit_sizes_like_coco_json(files):
@@ -452,7 +458,7 @@ def test_bad_csv_predictions(files, rows, pattern):
     truth = _csv_truth(files)
     path = files.write("pred.csv", "image_id,label,x_min,y_min,x_max,y_max,score\n" + rows)
     with pytest.raises(InputError, match=pattern):
-        load_predictions(path, truth)
+        load_predictions(path, truth, unknown_classes="reject")
 
 
 def test_missing_file(files, tmp_path):

@@ -12,6 +12,7 @@ from evaluation.engine.__main__ import main
 from .synthetic import make_detections, make_split
 
 RECORD_KEYS = {
+    "zero_id",
     "name",
     "version",
     "matching",

@@ -35,6 +35,10 @@ def _whole(path, data):
         except InputError as e:
             return str(e)
     anns = d.annotations
+    sink = coco_json._Records(path)
+    crowd = sink.crowd_columns([a.iscrowd for a in anns], 0)
+    if sink.out_of_range:
+        return str(sink.out_of_range["annotations", "iscrowd"])
 
     def opt(values):
         return np.array([np.nan if v is None else v for v in values], np.float64)
@@ -52,9 +56,8 @@ def _whole(path, data):
         "boxes": np.array([a.bbox for a in anns], np.float64).reshape(-1, 4),
         "box_area": opt(a.area for a in anns),
         "box_area_given": np.array([a.area is not None for a in anns], bool),
-        "crowd": np.array([bool(a.iscrowd) for a in anns], bool),
+        **crowd,
         "difficult": np.array([bool(a.difficult) for a in anns], bool),
-        "ignore": np.zeros(len(anns), bool),
         "occlusion": opt(a.occlusion for a in anns),
         "truncation": opt(a.truncation for a in anns),
         "visibility": opt(a.visibility for a in anns),

@@ -129,10 +129,10 @@ def test_an_unknown_image_names_its_line(case):
 def test_a_file_of_an_unknown_class_is_refused_or_dropped(case):
     truth, folder, _ = case
     (folder / "comp4_det_test_bus.txt").write_text(f"{truth.image_ids[0]:06d} 0.5 1 2 3 4\n")
-    error = _error(folder, truth)
+    error = _error(folder, truth, unknown_classes="reject")
     assert "class 'bus' is not one of the split's classes" in str(error)
     assert error.record == "comp4_det_test_bus.txt line 1" and error.field == "file name"
-    assert load_predictions(folder, truth, unknown_classes="drop").dropped == 1
+    assert load_predictions(folder, truth).dropped == 1  # the default, as pycocotools
 
 
 def test_two_files_of_one_class_and_result_files_as_ground_truth_are_refused(case, tmp_path):

@@ -18,12 +18,22 @@ import numpy as np
 
 from ..data import GroundTruth, Predictions
 from ..errors import InputError
-from . import attributes, checks, coco_json, csv_tables, detection_blocks, label_folders
+from . import (
+    annotation_index,
+    attributes,
+    checks,
+    coco_json,
+    csv_tables,
+    detection_blocks,
+    label_folders,
+)
+from .annotation_index import ANNOTATION_POLICIES
 from .cache import cached
 from .checks import BOX_POLICIES
 from .ids import csv_ids, ids_like
 
 __all__ = [
+    "ANNOTATION_POLICIES",
     "BOX_POLICIES",
     "FORMATS",
     "detect_format",
@@ -82,7 +92,15 @@ def _exists(path):
 
 
 def load_truth(
-    path, *, images=None, fmt=None, classes=None, cache_dir=None, boxes="keep", ids="any"
+    path,
+    *,
+    images=None,
+    fmt=None,
+    classes=None,
+    cache_dir=None,
+    boxes="keep",
+    ids="any",
+    annotations="reference",
 ):
     """Load a benchmark split.
 
@@ -98,10 +116,20 @@ def load_truth(
         Under ``keep`` and ``clip`` ground truth is kept as given (and counted).
     ids : ``"any"`` (default: any JSON integer, as pycocotools) or ``"int64"`` (a
         JSON id outside signed 64 bits is an input error naming it; the platform's)
+    annotations : ``"reference"`` (default) or ``"strict"``, COCO JSON only
+        ``reference`` scores the annotations pycocotools scores: an id given twice
+        resolves to the last annotation with it, annotations of unlisted images or
+        categories are left out, all counted (``annotation_index``); ``strict`` (the
+        platform's) refuses them naming the record.
     """
     _exists(path)
     checks.check_policy(path, boxes)
     _check_ids_option(path, ids)
+    if annotations not in ANNOTATION_POLICIES:
+        raise InputError(
+            path,
+            f"unknown annotation policy {annotations!r}; use {', '.join(ANNOTATION_POLICIES)}",
+        )
     fmt = _format(path, fmt)
     if fmt == "csv" and images is None:
         raise InputError(
@@ -116,7 +144,9 @@ def load_truth(
         "ids": ids,
         "schema": CACHE_SCHEMA,
     }
-    build = lambda: _read_truth(path, images, fmt, classes, boxes, ids)  # noqa: E731
+    if annotations != "reference":  # the default keeps the keys of existing entries
+        key["annotations"] = annotations
+    build = lambda: _read_truth(path, images, fmt, classes, boxes, ids, annotations)  # noqa: E731
     return cached(cache_dir, sources, key, build, "truth")
 
 
@@ -144,7 +174,7 @@ def _as_text(ids):
     return ids.astype(str) if ids.dtype == object else ids
 
 
-def _read_truth(path, images, fmt, classes, policy, ids="any"):
+def _read_truth(path, images, fmt, classes, policy, ids="any", annotations="reference"):
     if fmt == "json":
         cols = coco_json.read_truth(path, wide=ids == "any")
         _widen(cols, ("image_ids", "box_image_ids", "region_image_ids"))
@@ -186,8 +216,10 @@ def _read_truth(path, images, fmt, classes, policy, ids="any"):
         values = cols[name]
         field = name.split("_")[1]
         given = ~np.isnan(values)  # absent from the file: NaN (optional in COCO JSON)
-        if policy == "keep":  # never read (pycocotools neither): an infinite size is none
-            values = cols[name] = np.where(np.isinf(values), np.nan, values)
+        if policy == "keep":  # never read (pycocotools neither): an infinite, zero or
+            # negative size is no size (counted as on_images_without_size)
+            with checks.ieee():
+                values = cols[name] = np.where(np.isinf(values) | (values <= 0), np.nan, values)
             given = ~np.isnan(values)
         checks.fail_at(image_path, given & np.isinf(values), image_locate, field, "must be finite")
         checks.fail_at(
@@ -198,8 +230,16 @@ def _read_truth(path, images, fmt, classes, policy, ids="any"):
             lambda i, values=values: f"must be > 0, got {values[i]:g}",
         )
         checks.require_sizes(image_path, values, image_locate, policy, field)
-    if fmt == "json":
+    annotation_counts = dict.fromkeys(annotation_index.COUNTS, 0)
+    if fmt == "json" and annotations == "strict":
         checks.check_unique(path, cols["box_ids"], box_locate, "id")
+    elif fmt == "json":
+        rows, annotation_counts = annotation_index.resolve(
+            cols, cols["image_ids"], cols["class_ids"]
+        )
+        if rows is not None:
+            annotation_index.take(cols, rows)
+            box_locate = lambda i: f"annotations[{rows[i]}]"  # noqa: E731
 
     image_order = np.argsort(cols["image_ids"], kind="stable")  # numeric, also when wide
     image_ids = cols["image_ids"][image_order]
@@ -276,6 +316,7 @@ def _read_truth(path, images, fmt, classes, policy, ids="any"):
             "area_from_file": int(given.sum()),
             "negative_area_from_file": negative_area,
             "non_finite_area_from_file": int((given & ~np.isfinite(area)).sum()),
+            **annotation_counts,
         },
         **road,
     )
@@ -357,7 +398,7 @@ def load_predictions(
     *,
     fmt=None,
     boxes=None,
-    unknown_classes="reject",
+    unknown_classes="drop",
     unknown_images="reject",
     cache_dir=None,
     ids="any",
@@ -368,8 +409,9 @@ def load_predictions(
     ----------
     boxes : ``"keep"``, ``"clip"``, ``"reject"``, or None for the policy ``truth``
         was loaded under (``"keep"`` by default): see ``checks.apply_box_policy``.
-    unknown_classes : ``"reject"`` (default) or ``"drop"`` (pycocotools silently drops
-        detections of categories the split does not list; counted in ``dropped``)
+    unknown_classes : ``"drop"`` (default: pycocotools 2.0.11 accepts detections of
+        categories the split does not list and never scores them; counted in
+        ``dropped``) or ``"reject"`` (the platform's: an error naming the record)
     unknown_images : ``"reject"`` (default: every detection's image must be in the
         split, as pycocotools' ``loadRes`` asserts) or ``"drop"``: detections of images
         the split does not hold are left out and counted in ``dropped_images`` — for
@@ -429,7 +471,7 @@ def stream_predictions(
     *,
     fmt=None,
     boxes=None,
-    unknown_classes="reject",
+    unknown_classes="drop",
     unknown_images="reject",
     ids="any",
 ):

@@ -90,7 +90,7 @@ def check_boxes(path, boxes, locate, field="bbox", policy="keep"):
     if policy != "reject":
         return
     check_finite(path, boxes, locate, field)
-    with np.errstate(over="ignore", invalid="ignore"):
+    with np.errstate(over="ignore", under="ignore", invalid="ignore"):
         extent = np.column_stack(
             [boxes[:, 0] + boxes[:, 2], boxes[:, 1] + boxes[:, 3], boxes[:, 2] * boxes[:, 3]]
         )
@@ -139,7 +139,7 @@ def check_policy(path, policy):
 #: Non-finite boxes are scored (see ``check_boxes``): their arithmetic may make inf or
 #: NaN without a warning, as the reference's C and Python floats do.
 def ieee():
-    return np.errstate(invalid="ignore", over="ignore")
+    return np.errstate(invalid="ignore", over="ignore", under="ignore")
 
 
 @ieee()

@@ -42,7 +42,7 @@ class _Annotation(msgspec.Struct, gc=False):
     category_id: int
     bbox: tuple[float, float, float, float]
     area: float | None = None
-    iscrowd: int | bool = 0
+    iscrowd: int | float | bool = 0  # any number, as pycocotools: see crowd_columns
     difficult: int | bool = 0
     occlusion: float | None = None  # road attributes: loaders.attributes
     truncation: float | None = None
@@ -200,6 +200,8 @@ _ID_FIELDS = (
     ("annotations", "category_id"),
     ("dont_care", "image_id"),
 )
+#: Value errors found while building columns, reported after the ids' (in this order).
+_VALUE_FIELDS = (*_ID_FIELDS, ("annotations", "iscrowd"))
 
 
 def _size(value):
@@ -296,13 +298,37 @@ class _Records:
             "boxes": np.array([a.bbox for a in anns], np.float64).reshape(-1, 4),
             "box_area": given("area"),
             "box_area_given": np.array([a.area is not None for a in anns], bool),
-            "crowd": np.array([bool(a.iscrowd) for a in anns], bool),
+            **self.crowd_columns([a.iscrowd for a in anns], base),
             "difficult": np.array([bool(a.difficult) for a in anns], bool),
-            "ignore": np.zeros(len(anns), bool),
             "occlusion": given("occlusion"),
             "truncation": given("truncation"),
             "visibility": given("visibility"),
         }
+
+    def crowd_columns(self, values, base):
+        """``crowd`` and ``ignore`` from ``iscrowd`` values, as pycocotools 2.0.11 reads
+        them: ``_prepare`` ignores a box whose ``iscrowd`` is truthy (0.5 too), while
+        ``evaluateImg`` passes ``int(iscrowd)`` to ``maskUtils.iou`` as uint8, so only
+        a value whose integer part is 1..255 is a crowd region (crowd IoU, reusable);
+        0 < |iscrowd| < 1 makes an ignored regular box. An integer part outside 0..255
+        (or a non-finite value) makes pycocotools fail, so it is refused here."""
+        v = np.array(values, np.float64).reshape(-1)
+        whole = np.trunc(v)
+        bad = np.flatnonzero(~np.isfinite(v) | (whole < 0) | (whole > 255))
+        if len(bad):
+            i = int(bad[0])
+            self.out_of_range.setdefault(
+                ("annotations", "iscrowd"),
+                InputError(
+                    self.path,
+                    f"must be a number whose integer part is 0 to 255 (0 a box, 1 a crowd "
+                    f"region), got {values[i]!r}",
+                    record=f"annotations[{base + i}]",
+                    field="iscrowd",
+                ),
+            )
+        crowd = (whole != 0) & ~np.isnan(whole)
+        return {"crowd": crowd, "ignore": (v != 0) & ~crowd}
 
     def dont_care(self, regions, key, base):
         return {
@@ -321,7 +347,7 @@ class _Records:
                 ) from None
             raise _slice_decode_error(self.path, error, checker, lambda k: piece_at + k) from None
         self._check_outline(checker, bytes(checker.skeleton), _Dataset)
-        for field_key in _ID_FIELDS:
+        for field_key in _VALUE_FIELDS:
             if field_key in self.out_of_range:
                 raise self.out_of_range[field_key]
         empty = {

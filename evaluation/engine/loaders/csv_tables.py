@@ -179,20 +179,12 @@ def read_boxes(path):
 
 
 def _sizes(path, block, lines, field):
-    """Image widths or heights; NaN where the column or the cell is empty."""
+    """Image widths or heights; NaN where the column or the cell is empty, or the cell
+    reads ``nan`` (no size, as a NaN width in COCO JSON: only ``clip`` and ``reject``
+    need sizes, and they name the line)."""
     if field not in block:
         return np.full(len(lines), np.nan)
-    values = block[field]
-    sizes = _floats(path, [v if v else "nan" for v in values], lines, field)
-    for i in np.flatnonzero(np.isnan(sizes)):
-        if values[i]:  # "nan" written out is not a size, nor the absence of one
-            raise InputError(
-                path,
-                f"expected a number, got {values[i]!r}",
-                record=f"line {lines[i]}",
-                field=field,
-            )
-    return sizes
+    return _floats(path, [v if v else "nan" for v in block[field]], lines, field)
 
 
 def read_images(path):

@@ -1,0 +1,98 @@
+"""Which annotations of a COCO-style ground-truth file are scored, as pycocotools does.
+
+pycocotools 2.0.11 (``COCO.createIndex``, ``COCO.getAnnIds``, ``COCOeval._prepare``;
+checked by running it in ``tests/engine/test_annotation_index.py``):
+
+* ``getAnnIds(imgIds=sorted image ids, catIds=sorted category ids)`` walks
+  ``imgToAnns`` image by image in ascending id, each image's annotations in file
+  order, keeping those whose ``category_id`` is a listed category; an annotation of an
+  image or category the file does not list is never scored (it is accepted, not
+  refused).
+* ``loadAnns`` then looks each id up in ``anns``, a dict filled in file order, so an id
+  given twice resolves to the *last* annotation with it: every annotation of that id
+  becomes a copy of the last one, placed under the last one's image and category
+  (copies of a last annotation whose image or category is not listed are dropped).
+
+``annotations="reference"`` (the default) reproduces this and counts what it did;
+``"strict"`` (the platform's) refuses duplicate ids and unknown images or categories,
+naming the record.
+"""
+
+import numpy as np
+
+ANNOTATION_POLICIES = ("reference", "strict")
+#: What ``resolve`` counts (0 for every other format and under ``strict``).
+COUNTS = (
+    "annotations_of_unlisted_images",
+    "annotations_of_unlisted_categories",
+    "duplicate_id_copies",
+)
+
+#: Per-annotation columns of ``coco_json._Records.annotations``.
+PER_ANNOTATION = (
+    "box_ids",
+    "box_image_ids",
+    "box_class_ids",
+    "boxes",
+    "box_area",
+    "box_area_given",
+    "crowd",
+    "difficult",
+    "ignore",
+    "occlusion",
+    "truncation",
+    "visibility",
+)
+
+
+def _last_of_each_id(ids):
+    """For each position, the position of the last annotation with the same id."""
+    n = len(ids)
+    if n == 0:
+        return np.zeros(0, np.int64)
+    order = np.argsort(ids, kind="stable")
+    ordered = ids[order]
+    starts = np.flatnonzero(np.r_[True, ordered[1:] != ordered[:-1]])
+    ends = np.r_[starts[1:], n] - 1
+    run = np.repeat(np.arange(len(starts)), np.diff(np.r_[starts, n]))
+    last = np.empty(n, np.int64)
+    last[order] = order[ends[run]]  # stable: the run's last element is the last in file
+    return last
+
+
+def resolve(cols, image_ids, class_ids):
+    """Columns of the annotations pycocotools scores, in the order it reads them, and
+    the source row of each (for error locations); counts of what changed.
+
+    ``cols`` holds every annotation in file order; ``image_ids``/``class_ids`` the ids
+    the file lists. Returns ``(rows, counts)``; ``rows`` is None when nothing changes
+    (no duplicate id, every image and category listed), so the common file keeps its
+    order and content exactly.
+    """
+    box_images, box_classes = cols["box_image_ids"], cols["box_class_ids"]
+    known_image = np.isin(box_images, image_ids)
+    known_class = np.isin(box_classes, class_ids)
+    selected = known_image & known_class
+    last = _last_of_each_id(cols["box_ids"])
+    copies = last != np.arange(len(last))
+    counts = {
+        "annotations_of_unlisted_images": int((~known_image).sum()),
+        "annotations_of_unlisted_categories": int((known_image & ~known_class).sum()),
+        "duplicate_id_copies": int((selected & copies).sum()),
+    }
+    if selected.all() and not copies.any():
+        return None, counts
+    picked = np.flatnonzero(selected)
+    # imgToAnns in ascending image id, file order within an image
+    picked = picked[np.argsort(box_images[picked], kind="stable")]
+    rows = last[picked]
+    rows = rows[selected[rows]]  # a copy lands where its last annotation points
+    return rows, counts
+
+
+def take(cols, rows):
+    """``cols`` with every per-annotation column reduced to ``rows``."""
+    for name in PER_ANNOTATION:
+        values = cols[name]
+        cols[name] = values[rows] if isinstance(values, np.ndarray) else [values[i] for i in rows]
+    return cols

@@ -1,0 +1,276 @@
+"""Ground-truth files pycocotools 2.0.11 accepts although they are odd, scored as it
+scores them under the default settings (every summary number and per-class AP equal,
+checked by running it: ``test_coco_reference._compare``), and refused where it fails.
+
+* Annotation id 0: ``evaluateImg`` stores the matched box's id in ``dtm`` and
+  ``accumulate`` counts ``tps = dtm & ~dtIg``, so a detection matched to the box of id
+  0 is a false positive while the box stays taken.
+* An id given twice: ``createIndex`` keeps ``anns[id]`` = the last annotation with it,
+  ``getAnnIds`` lists both entries, ``loadAnns`` turns both into that last one.
+* Annotations of images or categories the file does not list: never scored.
+* ``iscrowd`` of any number: truthy ignores, ``int(iscrowd)`` as uint8 decides crowd IoU.
+* ``ignore`` keys: overwritten by ``_prepare``. Image sizes <= 0: never read.
+* Detections of categories the split does not list: never scored (dropped, counted).
+"""
+
+import json
+
+import numpy as np
+import pytest
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
+
+from evaluation.engine import InputError, evaluate, load_predictions, load_truth
+from evaluation.engine.__main__ import main
+
+from .synthetic import make_detections, make_split
+from .test_coco_reference import _compare
+
+
+def _split(annotations, images=None, categories=None):
+    return {
+        "images": images or [{"id": 1, "width": 100, "height": 100}, {"id": 2}],
+        "annotations": [
+            {"iscrowd": 0, "area": float(a["bbox"][2] * a["bbox"][3]), **a} for a in annotations
+        ],
+        "categories": categories or [{"id": 1, "name": "car"}, {"id": 2, "name": "van"}],
+    }
+
+
+def _det(image, box, score, cat=1, **extra):
+    return {"image_id": image, "category_id": cat, "bbox": box, "score": score, **extra}
+
+
+A, B = [10, 10, 20, 20], [50, 50, 20, 20]
+
+
+def test_a_match_with_annotation_id_0_is_a_false_positive(tmp_path):
+    """Two boxes, both detected exactly: pycocotools counts the match with id 0 (the
+    higher score) as a false positive, so precision is 1/2 at recall 1/2 and AP50 is
+    51 recall points of 0.50:0.01 at precision 1/2 over 101 (hand-worked)."""
+    split = _split([{"id": 0, "image_id": 1, "category_id": 1, "bbox": A}])
+    split["annotations"].append({**split["annotations"][0], "id": 1, "bbox": B})
+    ours, reference = _compare(tmp_path, split, [_det(1, A, 0.9), _det(1, B, 0.8)])
+    assert ours["summary"]["AP50"] == pytest.approx(51 * 0.5 / 101, abs=1e-12)
+    row = ours["per_class"]["car"]
+    assert (row["tp"], row["fp"]) == (1.0, 1.0)
+    assert ours["protocol_record"]["zero_id"].startswith("a match with the box of annotation")
+    # The box stays taken: a second detection on it finds nothing free (2 FPs in all).
+    ours, _ = _compare(tmp_path, split, [_det(1, A, 0.9), _det(1, A, 0.85), _det(1, B, 0.8)])
+    assert (ours["per_class"]["car"]["tp"], ours["per_class"]["car"]["fp"]) == (1.0, 2.0)
+
+
+def test_annotation_id_0_is_only_a_coco_rule(tmp_path):
+    """The VOC devkit reads no ids: the same file is two TPs under ``voc``."""
+    split = _split([{"id": 0, "image_id": 1, "category_id": 1, "bbox": A}])
+    (tmp_path / "gt.json").write_text(json.dumps(split))
+    (tmp_path / "dt.json").write_text(json.dumps([_det(1, A, 0.9)]))
+    truth = load_truth(tmp_path / "gt.json")
+    predictions = load_predictions(tmp_path / "dt.json", truth)
+    assert evaluate(truth, predictions, "voc")["per_class"]["car"]["tp"] == 1.0
+    assert evaluate(truth, predictions, "coco")["per_class"]["car"]["tp"] == 0.0
+
+
+@pytest.mark.parametrize(
+    "second",
+    [
+        {"image_id": 1, "category_id": 1},  # same image and category
+        {"image_id": 2, "category_id": 1},  # another image
+        {"image_id": 1, "category_id": 2},  # another category
+        {"image_id": 9, "category_id": 1},  # an unlisted image: both copies vanish
+        {"image_id": 1, "category_id": 7},  # an unlisted category
+    ],
+)
+def test_a_repeated_id_resolves_to_its_last_annotation(tmp_path, second):
+    split = _split(
+        [
+            {"id": 5, "image_id": 1, "category_id": 1, "bbox": A},
+            {"id": 3, "image_id": 2, "category_id": 2, "bbox": A},
+            {"id": 5, "bbox": B, **second},
+        ]
+    )
+    detections = [_det(1, A, 0.9), _det(1, B, 0.8), _det(2, B, 0.7), _det(2, A, 0.6, cat=2)]
+    ours, _ = _compare(tmp_path, split, detections)
+    counts = ours["counts"]["boxes"]["truth"]
+    unlisted = second["image_id"] == 9 or second["category_id"] == 7
+    assert counts["duplicate_id_copies"] == 1  # the first annotation of id 5, replaced
+    assert ours["counts"]["truth_boxes"] == (1 if unlisted else 3)
+
+
+def test_unlisted_images_and_categories_are_left_out_and_counted(tmp_path):
+    split = _split(
+        [
+            {"id": 1, "image_id": 1, "category_id": 1, "bbox": A},
+            {"id": 2, "image_id": 8, "category_id": 1, "bbox": A},
+            {"id": 3, "image_id": 1, "category_id": 6, "bbox": B},
+        ]
+    )
+    ours, _ = _compare(tmp_path, split, [_det(1, A, 0.9), _det(1, B, 0.8, cat=6)])
+    counts = ours["counts"]
+    assert counts["boxes"]["truth"]["annotations_of_unlisted_images"] == 1
+    assert counts["boxes"]["truth"]["annotations_of_unlisted_categories"] == 1
+    assert counts["dropped_predictions"] == 1 and counts["truth_boxes"] == 1
+
+
+def test_the_strict_policy_refuses_what_the_reference_resolves(tmp_path):
+    split = _split(
+        [
+            {"id": 5, "image_id": 1, "category_id": 1, "bbox": A},
+            {"id": 5, "image_id": 1, "category_id": 1, "bbox": B},
+        ]
+    )
+    (tmp_path / "gt.json").write_text(json.dumps(split))
+    with pytest.raises(InputError, match=r"annotations\[1\]: field 'id': duplicate id 5"):
+        load_truth(tmp_path / "gt.json", annotations="strict")
+    split["annotations"][1].update(id=6, image_id=8)
+    (tmp_path / "gt.json").write_text(json.dumps(split))
+    with pytest.raises(InputError, match=r"annotations\[1\]: field 'image_id': image 8"):
+        load_truth(tmp_path / "gt.json", annotations="strict")
+
+
+def test_errors_after_resolving_name_the_record_in_the_file(tmp_path):
+    """Resolving reorders the annotations; a later error still names the file's record."""
+    split = _split(
+        [
+            {"id": 1, "image_id": 2, "category_id": 1, "bbox": A},
+            {"id": 1, "image_id": 2, "category_id": 1, "bbox": A},
+            {"id": 2, "image_id": 1, "category_id": 1, "bbox": [10, 10, -5, 20]},
+        ],
+        images=[{"id": 1, "width": 100, "height": 100}, {"id": 2, "width": 90, "height": 90}],
+    )
+    (tmp_path / "gt.json").write_text(json.dumps(split))
+    with pytest.raises(InputError, match=r"annotations\[2\]: field 'bbox'"):
+        load_truth(tmp_path / "gt.json", boxes="reject")
+
+
+@pytest.mark.parametrize("value", [2, True, False, 0.5, 1.5, -0.5, -0.0, 255, 1e-300])
+def test_iscrowd_of_any_number_is_read_as_pycocotools_reads_it(tmp_path, value):
+    split = _split(
+        [
+            {"id": 1, "image_id": 1, "category_id": 1, "bbox": A, "iscrowd": value},
+            {"id": 2, "image_id": 1, "category_id": 1, "bbox": B},
+        ]
+    )
+    detections = [_det(1, [10, 10, 10, 20], 0.95), _det(1, A, 0.9), _det(1, B, 0.8)]
+    _compare(tmp_path, split, detections)
+
+
+@pytest.mark.parametrize("value", [-1, 256, 1e6])
+def test_iscrowd_pycocotools_fails_on_is_refused_with_its_location(tmp_path, value):
+    """pycocotools 2.0.11 passes ``int(iscrowd)`` to ``maskUtils.iou`` as uint8: numpy
+    raises OverflowError outside 0..255 (checked by running it)."""
+    split = _split([{"id": 1, "image_id": 1, "category_id": 1, "bbox": A, "iscrowd": value}])
+    (tmp_path / "gt.json").write_text(json.dumps(split))
+    (tmp_path / "dt.json").write_text(json.dumps([_det(1, A, 0.9)]))
+    from .conftest import pycocotools_eval
+
+    with pytest.raises(OverflowError):
+        pycocotools_eval(tmp_path / "gt.json", tmp_path / "dt.json")
+    with pytest.raises(InputError, match=r"annotations\[0\]: field 'iscrowd'"):
+        load_truth(tmp_path / "gt.json")
+
+
+def test_ignore_keys_and_sizes_pycocotools_never_reads(tmp_path):
+    split = _split(
+        [
+            {"id": 1, "image_id": 1, "category_id": 1, "bbox": A, "ignore": 1},
+            {"id": 2, "image_id": 2, "category_id": 1, "bbox": B, "ignore": 0},
+        ],
+        images=[{"id": 1, "width": 0, "height": -5}, {"id": 2, "width": -1}],
+    )
+    ours, _ = _compare(tmp_path, split, [_det(1, A, 0.9), _det(2, B, 0.8)])
+    assert ours["counts"]["boxes"]["truth"]["on_images_without_size"] == 2
+
+
+def test_cli_scores_such_a_file_by_default_and_refuses_it_when_strict(tmp_path, capsys):
+    split = _split(
+        [
+            {"id": 0, "image_id": 1, "category_id": 1, "bbox": A},
+            {"id": 0, "image_id": 2, "category_id": 1, "bbox": B},
+        ]
+    )
+    (tmp_path / "gt.json").write_text(json.dumps(split))
+    (tmp_path / "dt.json").write_text(json.dumps([_det(2, B, 0.9), _det(1, A, 0.8, cat=3)]))
+    args = ["score", "--truth", str(tmp_path / "gt.json"), "--predictions", str(tmp_path / "dt.json")]
+    args += ["--format", "json"]
+    assert main(args) == 0
+    out = json.loads(capsys.readouterr().out)
+    assert out["counts"]["boxes"]["truth"]["duplicate_id_copies"] == 1
+    assert out["counts"]["dropped_predictions"] == 1
+    assert main([*args, "--annotations", "strict"]) == 2
+    assert "duplicate id 0" in capsys.readouterr().err
+    assert main([*args, "--unknown-classes", "reject"]) == 2
+
+
+# The sweep: random splits made odd in every way above at once, plus detections with
+# extra keys (segmentation, area: loadRes overwrites area for boxes), category id 0,
+# huge, tiny, subnormal and negative-zero values, and over 100 tied detections.
+odd = st.fixed_dictionaries(
+    {
+        "seed": st.integers(0, 2**32 - 1),
+        "n_images": st.integers(1, 12),
+        "zero_ids": st.sampled_from([0, 1, 3]),
+        "repeat_rate": st.sampled_from([0.0, 0.1, 0.4]),
+        "unlisted_rate": st.sampled_from([0.0, 0.1]),
+        "crowd_values": st.sampled_from([(0, 1), (0, 2, True, False), (0, 0.5, 1.5, -0.0)]),
+        "ignore_keys": st.booleans(),
+        "category_zero": st.booleans(),
+        "tied_flood": st.booleans(),
+        "extreme_values": st.booleans(),
+        "extra_keys": st.booleans(),
+        "bad_sizes": st.booleans(),
+    }
+)
+
+
+def make_odd(rng, case):
+    split = make_split(rng, n_images=case["n_images"], n_classes=3, boxes_per_image=4)
+    detections = make_detections(rng, split, false_per_image=2, score_levels=5)
+    anns = split["annotations"]
+    for ann in anns[: case["zero_ids"]]:
+        ann["id"] = 0
+    for ann in anns:
+        if anns and rng.random() < case["repeat_rate"]:
+            ann["id"] = anns[int(rng.integers(0, len(anns)))]["id"]
+        if rng.random() < case["unlisted_rate"]:
+            key = "image_id" if rng.random() < 0.5 else "category_id"
+            ann[key] = 10_000 + int(rng.integers(0, 3))
+        values = case["crowd_values"]
+        ann["iscrowd"] = values[int(rng.integers(0, len(values)))]
+        if case["ignore_keys"]:
+            ann["ignore"] = int(rng.integers(0, 2))
+    if case["category_zero"]:
+        for item in (*split["categories"], *anns, *detections):
+            key = "id" if "name" in item else "category_id"
+            if item[key] == 3:
+                item[key] = 0
+    if case["bad_sizes"]:
+        for im in split["images"][::2]:
+            im["width"], im["height"] = 0, -float(rng.integers(1, 5))
+    if case["extreme_values"]:
+        specials = [1e300, 1e-300, 5e-324, -0.0, 0.0, 1e-12]
+        for d in detections[::3]:
+            d["score"] = specials[int(rng.integers(0, len(specials)))]
+        for d in detections[1::5]:
+            d["bbox"] = [d["bbox"][0], d["bbox"][1], 5e-324, d["bbox"][3]]
+    if case["extra_keys"]:
+        for d in detections[::2]:
+            d["area"] = 12345.0
+            d["segmentation"] = [[0, 0, 1, 1, 2, 2]]
+            d["id"] = 7
+    if case["tied_flood"] and split["images"]:
+        image = split["images"][0]["id"]
+        detections += [_det(image, [float(i), 5.0, 8.0, 8.0], 0.5) for i in range(130)]
+    if not detections:
+        detections = [_det(split["images"][0]["id"], [1.0, 1.0, 5.0, 5.0], 0.5)]
+    return split, detections
+
+
+@settings(
+    max_examples=40, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture]
+)
+@given(case=odd)
+def test_odd_files_match_pycocotools(tmp_path, case):
+    """Every summary number and per-class AP equal to pycocotools 2.0.11's."""
+    split, detections = make_odd(np.random.default_rng(case["seed"]), case)
+    _compare(tmp_path, split, detections)
