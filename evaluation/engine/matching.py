@@ -146,7 +146,8 @@ def match(truth, predictions, protocol, *, reasons=True):
     det_cls = predictions.cls[order]
     det_boxes = predictions.boxes[order]
     det_group = det_image.astype(np.int64) * n_classes + det_cls
-    with np.errstate(invalid="ignore", over="ignore", under="ignore"):  # inf * 0: NaN, as in loadRes
+    # inf * 0: NaN, as in loadRes; subnormal sides underflow to 0 as in C
+    with np.errstate(invalid="ignore", over="ignore", under="ignore"):
         det_area = det_boxes[:, 2] * det_boxes[:, 3]
 
     base_ignore = truth.crowd | truth.ignore | truth.difficult

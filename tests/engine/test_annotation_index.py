@@ -191,7 +191,13 @@ def test_cli_scores_such_a_file_by_default_and_refuses_it_when_strict(tmp_path, 
     )
     (tmp_path / "gt.json").write_text(json.dumps(split))
     (tmp_path / "dt.json").write_text(json.dumps([_det(2, B, 0.9), _det(1, A, 0.8, cat=3)]))
-    args = ["score", "--truth", str(tmp_path / "gt.json"), "--predictions", str(tmp_path / "dt.json")]
+    args = [
+        "score",
+        "--truth",
+        str(tmp_path / "gt.json"),
+        "--predictions",
+        str(tmp_path / "dt.json"),
+    ]
     args += ["--format", "json"]
     assert main(args) == 0
     out = json.loads(capsys.readouterr().out)
