@@ -85,6 +85,10 @@ def cache_key(sources, options):
     return digest.hexdigest()
 
 
+#: The split's content hash, kept in a truth entry's metadata (``GroundTruth.content_hash``).
+_CONTENT_HASH = "__content_hash__"
+
+
 def _to_arrays(obj):
     arrays, meta = {}, {}
     for f in dataclasses.fields(obj):
@@ -97,12 +101,15 @@ def _to_arrays(obj):
             meta[f.name] = list(value)
         else:
             meta[f.name] = value
+    if hasattr(obj, "content_hash"):  # signed with the entry: a load needs no re-hash
+        meta[_CONTENT_HASH] = obj.content_hash()
     arrays["__meta__"] = np.array(json.dumps(meta))
     return arrays
 
 
 def _from_arrays(kind, arrays):
     meta = json.loads(str(arrays["__meta__"]))
+    content_hash = meta.pop(_CONTENT_HASH, None)
     values = {name: value for name, value in arrays.items() if name != "__meta__"}
     for name, value in meta.items():
         if name == "image_tags":
@@ -110,7 +117,10 @@ def _from_arrays(kind, arrays):
         elif isinstance(value, list):
             value = tuple(value)
         values[name] = value
-    return _TYPES[kind](**values)
+    obj = _TYPES[kind](**values)
+    if content_hash is not None:
+        object.__setattr__(obj, "_content_hash", content_hash)
+    return obj
 
 
 def cached(cache_dir, sources, options, build, kind):
