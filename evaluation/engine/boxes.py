@@ -3,6 +3,12 @@
 import numpy as np
 
 
+def _side(start, size):
+    """The devkit's side ``x2 - x1`` of corners ``x2 = x1 + w``: ``w`` for a finite
+    ``x1`` (kept as given, not re-rounded), NaN for a NaN or infinite one (inf - inf)."""
+    return np.where(np.isfinite(start), size, np.nan)
+
+
 def pair_iou(det_boxes, gt_boxes, gt_crowd, *, pixel_offset=0.0):
     r"""IoU of each detection with the ground-truth box in the same row.
 
@@ -48,8 +54,8 @@ def pair_iou(det_boxes, gt_boxes, gt_crowd, *, pixel_offset=0.0):
         if pixel_offset:
             iw = iw + pixel_offset
             ih = ih + pixel_offset
-            det_area = (dw + pixel_offset) * (dh + pixel_offset)
-            gt_area = (gw + pixel_offset) * (gh + pixel_offset)
+            det_area = (_side(dx, dw) + pixel_offset) * (_side(dy, dh) + pixel_offset)
+            gt_area = (_side(gx, gw) + pixel_offset) * (_side(gy, gh) + pixel_offset)
         else:
             det_area = dw * dh
             gt_area = gw * gh

@@ -146,6 +146,11 @@ def voc_ap(truth, predictions, *, eleven_point, min_overlap=0.5, outcomes=None):
     in the devkit's sorted order (a detection on a difficult box is neither TP nor FP:
     ignored).
     """
+    with np.errstate(all="ignore"):  # IEEE arithmetic, as MATLAB's (inf - inf is NaN)
+        return _voc_ap(truth, predictions, eleven_point, min_overlap, outcomes)
+
+
+def _voc_ap(truth, predictions, eleven_point, min_overlap, outcomes):
     out = np.full(len(truth.classes), np.nan)
     difficult = truth.difficult | truth.crowd | truth.ignore
     for k in range(len(truth.classes)):
@@ -156,7 +161,9 @@ def voc_ap(truth, predictions, *, eleven_point, min_overlap=0.5, outcomes=None):
         # the class's results file, in file order
         ids = [i for i in range(len(predictions)) if predictions.cls[i] == k]
         confidence = [predictions.score[i] for i in ids]
-        si = sorted(range(len(ids)), key=lambda d: -confidence[d])  # stable, like MATLAB
+        # stable, like MATLAB's sort, which puts NaN last in ascending order (MathWorks
+        # documentation of sort; -NaN is NaN, so a NaN confidence ranks last)
+        si = sorted(range(len(ids)), key=lambda d: (np.isnan(confidence[d]), -confidence[d]))
         ids = [ids[d] for d in si]
         det = set()
         nd = len(ids)
@@ -169,11 +176,13 @@ def voc_ap(truth, predictions, *, eleven_point, min_overlap=0.5, outcomes=None):
             for j in (j for j in boxes if truth.box_image[j] == predictions.image[i]):
                 gx, gy, gw, gh = truth.boxes[j]
                 bbgt = (gx, gy, gx + gw, gy + gh)
+                # MATLAB's max/min omit NaN (MathWorks documentation, 'omitnan' the
+                # default): np.fmax/np.fmin, not Python's max/min
                 bi = (
-                    max(bb[0], bbgt[0]),
-                    max(bb[1], bbgt[1]),
-                    min(bb[2], bbgt[2]),
-                    min(bb[3], bbgt[3]),
+                    np.fmax(bb[0], bbgt[0]),
+                    np.fmax(bb[1], bbgt[1]),
+                    np.fmin(bb[2], bbgt[2]),
+                    np.fmin(bb[3], bbgt[3]),
                 )
                 iw = bi[2] - bi[0] + 1
                 ih = bi[3] - bi[1] + 1

@@ -75,6 +75,35 @@ def test_voc_protocols_follow_the_devkit(files, seed, protocol):
     np.testing.assert_allclose(ours, expected, rtol=0, atol=1e-12)
 
 
+NON_FINITE = (float("nan"), float("inf"), -float("inf"))
+
+
+@pytest.mark.parametrize("seed", range(12))
+@pytest.mark.parametrize("protocol", ["voc07", "voc"])
+def test_voc_protocols_follow_the_devkit_on_non_finite_values(files, seed, protocol):
+    """NaN and infinite scores and box coordinates (as Python's json reads NaN and
+    Infinity literals) against the devkit transliteration, whose sort puts a NaN
+    confidence last and whose max/min omit NaN, as MATLAB's do."""
+    rng = np.random.default_rng(1000 + seed)
+    split = make_split(rng, n_images=4, n_classes=2, boxes_per_image=3, width=200, height=150)
+    detections = make_detections(rng, split, false_per_image=3, score_levels=4)
+    rate = (0.05, 0.2, 0.5)[seed % 3]
+
+    def spoil(values):
+        return [NON_FINITE[int(rng.integers(0, 3))] if rng.random() < rate else v for v in values]
+
+    for det in detections:
+        det["bbox"] = spoil(det["bbox"])
+        (det["score"],) = spoil([det["score"]])
+    if seed % 2:
+        for ann in split["annotations"]:
+            ann["bbox"] = spoil(ann["bbox"])
+    truth, predictions = files.load(split, detections)
+    ours = _per_class_ap(evaluate(truth, predictions, protocol), truth.classes)
+    expected = oracle.voc_ap(truth, predictions, eleven_point=protocol == "voc07")
+    np.testing.assert_allclose(ours, expected, rtol=0, atol=1e-12)
+
+
 CUSTOM = {
     "name": "custom-check",
     "base": "coco",
