@@ -1,0 +1,243 @@
+"""Ground truth from a file into validated ``GroundTruth`` columns (COCO JSON, CSV,
+label folders): ids resolved, image sizes and boxes checked under the box policy, the
+annotations pycocotools scores picked (``annotation_index``), areas and attributes
+finished. ``loaders.load_truth`` is the entry point (options, cache)."""
+
+import numpy as np
+
+from ..data import GroundTruth
+from ..errors import InputError
+from . import annotation_index, attributes, checks, coco_json, csv_tables, label_folders
+from .ids import csv_ids, ids_like
+
+
+def _widen(cols, names):
+    """An id family (the images' ids and the boxes' references to them...) with one
+    id beyond signed 64 bits becomes object arrays of Python ints throughout, so it
+    sorts and matches numerically as pycocotools' Python ints do."""
+    if any(cols[name].dtype == object for name in names):
+        for name in names:
+            cols[name] = np.array([int(v) for v in cols[name].tolist()], dtype=object)
+
+
+def _as_text(ids):
+    """Ids kept as decimal text once sorted: beyond int64 they fit no numpy integer."""
+    return ids.astype(str) if ids.dtype == object else ids
+
+
+def read_truth(path, images, fmt, classes, policy, ids="any", annotations="reference"):
+    if fmt == "json":
+        cols = coco_json.read_truth(path, wide=ids == "any")
+        _widen(cols, ("image_ids", "box_image_ids", "region_image_ids"))
+        _widen(cols, ("class_ids", "box_class_ids"))
+        image_locate = lambda i: f"images[{i}]"  # noqa: E731
+        box_locate = lambda i: f"annotations[{i}]"  # noqa: E731
+        box_fields = {"image": "image_id", "class": "category_id", "bbox": "bbox", "id": "id"}
+        image_path = path
+        checks.check_unique(path, cols["class_ids"], lambda i: f"categories[{i}]", "id")
+        checks.check_unique(
+            path,
+            np.array(cols["class_names"], dtype=object).astype(str),
+            lambda i: f"categories[{i}]",
+            "name",
+        )
+        region_locate = lambda i: f"dont_care[{i}]"  # noqa: E731
+    elif fmt == "csv":
+        cols = _csv_truth_columns(path, images, classes)
+        image_path = images
+        image_locate = lambda i: f"line {cols['image_lines'][i]}"  # noqa: E731
+        box_locate = lambda i: f"line {cols['box_lines'][i]}"  # noqa: E731
+        box_fields = {"image": "image_id", "class": "label", "bbox": "x_min..y_max", "id": "id"}
+        region_locate = lambda i: f"line {cols['region_lines'][i]}"  # noqa: E731
+    else:
+        cols = label_folders.read_truth(path, images, fmt, classes)
+        cols["image_ids"] = csv_ids(cols["image_ids"])
+        cols["box_image_ids"] = ids_like(cols["box_image_ids"], cols["image_ids"])
+        cols["region_image_ids"] = ids_like(cols["region_image_ids"], cols["image_ids"])
+        image_path = cols["image_path"]
+        image_locate, box_locate = cols["locate_image"], cols["locate_box"]
+        region_locate, box_fields = cols["locate_region"], cols["box_fields"]
+
+    if len(cols["image_ids"]) == 0:
+        raise InputError(image_path, "the split lists no images", field="images")
+    checks.check_unique(
+        image_path, cols["image_ids"], image_locate, "id" if fmt == "json" else "image_id"
+    )
+    for name in ("image_width", "image_height"):
+        values = cols[name]
+        field = name.split("_")[1]
+        given = ~np.isnan(values)  # absent from the file: NaN (optional in COCO JSON)
+        if policy == "keep":  # never read (pycocotools neither): an infinite, zero or
+            # negative size is no size (counted as on_images_without_size)
+            with checks.ieee():
+                values = cols[name] = np.where(np.isinf(values) | (values <= 0), np.nan, values)
+            given = ~np.isnan(values)
+        checks.fail_at(image_path, given & np.isinf(values), image_locate, field, "must be finite")
+        checks.fail_at(
+            image_path,
+            given & (values <= 0),
+            image_locate,
+            field,
+            lambda i, values=values: f"must be > 0, got {values[i]:g}",
+        )
+        checks.require_sizes(image_path, values, image_locate, policy, field)
+    annotation_counts = dict.fromkeys(annotation_index.COUNTS, 0)
+    if fmt == "json" and annotations == "strict":
+        checks.check_unique(path, cols["box_ids"], box_locate, "id")
+    elif fmt == "json":
+        rows, annotation_counts = annotation_index.resolve(
+            cols, cols["image_ids"], cols["class_ids"]
+        )
+        if rows is not None:
+            annotation_index.take(cols, rows)
+            box_locate = lambda i: f"annotations[{rows[i]}]"  # noqa: E731
+
+    image_order = np.argsort(cols["image_ids"], kind="stable")  # numeric, also when wide
+    image_ids = cols["image_ids"][image_order]
+    class_order = np.argsort(cols["class_ids"], kind="stable")
+    class_ids = cols["class_ids"][class_order]
+
+    box_image, found = checks.resolve(path, cols["box_image_ids"], image_ids, box_locate, "", "")
+    checks.require_found(
+        path, found, cols["box_image_ids"], box_locate, box_fields["image"], "image"
+    )
+    box_class, found = checks.resolve(path, cols["box_class_ids"], class_ids, box_locate, "", "")
+    checks.require_found(
+        path, found, cols["box_class_ids"], box_locate, box_fields["class"], "class"
+    )
+
+    boxes = cols["boxes"]
+    checks.check_boxes(path, boxes, box_locate, box_fields["bbox"], policy)
+    frame = (cols["image_width"][image_order], cols["image_height"][image_order])
+    if policy == "reject":
+        for at in range(0, len(boxes), checks.BLOCK_ROWS):  # per block: no full-length
+            rows = slice(at, at + checks.BLOCK_ROWS)  # per-box width/height copies
+            checks.check_inside(
+                path,
+                boxes[rows],
+                frame[0][box_image[rows]],
+                frame[1][box_image[rows]],
+                lambda i, at=at: box_locate(at + i),
+                box_fields["bbox"],
+            )
+    area = cols["box_area"]
+    given = cols.get("box_area_given")
+    given = ~np.isnan(area) if given is None else given
+    if policy == "reject":  # pycocotools takes a NaN area (in every size range), inf
+        checks.fail_at(  # (outside every one) and a negative area (outside too)
+            path,
+            given & ~np.isfinite(area),
+            box_locate,
+            "area",
+            lambda i: f"must be a finite number, got {area[i]} (box policy: reject)",
+        )
+        checks.fail_at(
+            path,
+            given & (area < 0),
+            box_locate,
+            "area",
+            lambda i: f"must be >= 0, got {area[i]:g} (box policy: reject)",
+        )
+    negative_area = int((given & (area < 0)).sum())
+    with checks.ieee():
+        area = np.where(given, area, boxes[:, 2] * boxes[:, 3])
+
+    road = attributes.finish(path, cols, image_ids, box_locate, path, region_locate)
+    names = [cols["class_names"][i] for i in class_order]
+    tags = [cols["image_tags"][i] for i in image_order]
+    return GroundTruth(
+        classes=tuple(names),
+        class_ids=_as_text(class_ids),
+        image_ids=_as_text(image_ids),
+        image_width=cols["image_width"][image_order],
+        image_height=cols["image_height"][image_order],
+        image_tags=tuple(tuple(t) for t in tags),
+        box_ids=_as_text(cols["box_ids"]),
+        box_image=box_image,
+        box_class=box_class,
+        boxes=boxes,
+        box_area=area,
+        crowd=cols["crowd"],
+        difficult=cols["difficult"],
+        ignore=cols["ignore"],
+        source=str(path),
+        box_policy=policy,
+        box_counts={
+            **checks.truth_box_counts(boxes, *frame, box_image),
+            "area_from_file": int(given.sum()),
+            "negative_area_from_file": negative_area,
+            "non_finite_area_from_file": int((given & ~np.isfinite(area)).sum()),
+            **annotation_counts,
+        },
+        **road,
+    )
+
+
+def _csv_truth_columns(path, images, classes):
+    ids, widths, heights, tags, image_lines = csv_tables.read_images(images)
+    boxes = csv_tables.read_boxes(path)
+    image_ids = csv_ids(ids)
+    region = boxes["dont_care"]
+    regions = {"region_image_ids": ids_like(_take(boxes["image_id"], region), image_ids)}
+    regions["regions"], regions["region_lines"] = boxes["boxes"][region], boxes["lines"][region]
+    if region.any():  # a don't-care row is no box
+        keep = ~region
+        for key in (
+            "boxes",
+            "crowd",
+            "difficult",
+            "ignore",
+            "area",
+            "area_given",
+            "lines",
+            "dont_care",
+        ):
+            boxes[key] = boxes[key][keep]
+        for key in ("occlusion", "truncation", "visibility"):
+            boxes[key] = boxes[key][keep]
+        boxes["image_id"] = _take(boxes["image_id"], keep)
+        boxes["label"] = _take(boxes["label"], keep)
+    box_image_ids = ids_like(boxes["image_id"], image_ids)
+    labels = boxes["label"]
+    if classes is None:
+        names = sorted(set(labels))
+    else:
+        names = list(classes)
+        if len(set(names)) != len(names):
+            raise InputError("classes", "class names must be unique")
+    index = {name: i + 1 for i, name in enumerate(names)}
+    label_ids = np.array([index.get(label, -1) for label in labels], np.int64)
+    for i in np.flatnonzero(label_ids < 0)[:1]:
+        raise InputError(
+            path,
+            f"label {labels[i]!r} is not one of the split's classes",
+            record=f"line {boxes['lines'][i]}",
+            field="label",
+        )
+    return {
+        "image_ids": image_ids,
+        "image_width": widths,
+        "image_height": heights,
+        "image_tags": tags,
+        "image_lines": image_lines,
+        "class_ids": np.arange(1, len(names) + 1, dtype=np.int64),
+        "class_names": names,
+        "box_ids": np.asarray(boxes["lines"], np.int64),
+        "box_image_ids": box_image_ids,
+        "box_class_ids": label_ids,
+        "boxes": boxes["boxes"],
+        "box_area": boxes["area"],
+        "box_area_given": boxes["area_given"],
+        "crowd": boxes["crowd"],
+        "difficult": boxes["difficult"],
+        "ignore": boxes["ignore"],
+        "box_lines": boxes["lines"],
+        "occlusion": boxes["occlusion"],
+        "truncation": boxes["truncation"],
+        "visibility": boxes["visibility"],
+        **regions,
+    }
+
+
+def _take(values, mask):
+    return [v for v, keep in zip(values, mask) if keep]
