@@ -170,6 +170,37 @@ def test_iscrowd_pycocotools_fails_on_is_refused_with_its_location(tmp_path, val
         load_truth(tmp_path / "gt.json")
 
 
+def test_whole_float_and_boolean_ids_are_the_integers(tmp_path):
+    """pycocotools keys its dicts by the JSON values, and ``1.0 == 1 == True`` there:
+    such ids find the same image, category and annotation (``false`` is id 0)."""
+    split = _split(
+        [
+            {"id": True, "image_id": 1.0, "category_id": 1, "bbox": A},
+            {"id": 2.0, "image_id": 2, "category_id": 2.0, "bbox": B},
+            {"id": False, "image_id": 1, "category_id": True, "bbox": B},
+        ],
+        images=[{"id": 1, "width": 100, "height": 100}, {"id": 2.0}],
+        categories=[{"id": 1.0, "name": "car"}, {"id": 2, "name": "van"}],
+    )
+    detections = [_det(1.0, A, 0.9), _det(2, B, 0.8, cat=2.0), _det(True, B, 0.7, cat=True)]
+    ours, _ = _compare(tmp_path, split, detections)
+    assert ours["per_class"]["car"]["tp"] == 1.0  # the match with id false (0) is no TP
+
+
+def test_a_fractional_id_is_refused_with_its_location(tmp_path):
+    """A known deviation: pycocotools would key a dict by 2.5; ids here are integers."""
+    split = _split([{"id": 1, "image_id": 1, "category_id": 1, "bbox": A}])
+    (tmp_path / "gt.json").write_text(json.dumps(split))
+    truth = load_truth(tmp_path / "gt.json")
+    (tmp_path / "dt.json").write_text(json.dumps([_det(1, A, 0.9), _det(2.5, A, 0.9)]))
+    with pytest.raises(InputError, match=r"record 1: field 'image_id': .* whole number, got 2.5"):
+        load_predictions(tmp_path / "dt.json", truth)
+    split["annotations"][0]["id"] = 0.5
+    (tmp_path / "gt.json").write_text(json.dumps(split))
+    with pytest.raises(InputError, match=r"annotations\[0\]: field 'id': .* got 0.5"):
+        load_truth(tmp_path / "gt.json")
+
+
 def test_ignore_keys_and_sizes_pycocotools_never_reads(tmp_path):
     split = _split(
         [
@@ -225,6 +256,7 @@ odd = st.fixed_dictionaries(
         "extreme_values": st.booleans(),
         "extra_keys": st.booleans(),
         "bad_sizes": st.booleans(),
+        "float_ids": st.booleans(),
     }
 )
 
@@ -269,6 +301,11 @@ def make_odd(rng, case):
         detections += [_det(image, [float(i), 5.0, 8.0, 8.0], 0.5) for i in range(130)]
     if not detections:
         detections = [_det(split["images"][0]["id"], [1.0, 1.0, 5.0, 5.0], 0.5)]
+    if case["float_ids"]:  # whole floats in every id field, here and there
+        for item in (*split["images"], *split["categories"], *anns, *detections):
+            for key in ("id", "image_id", "category_id"):
+                if key in item and isinstance(item[key], int) and rng.random() < 0.5:
+                    item[key] = float(item[key])
     return split, detections
 
 

@@ -84,7 +84,7 @@ def _with(**changes):
         (_with(**{"annotations.0.score": 1}), None),  # unknown fields are ignored
         (
             _with(**{"images.0.id": "1"}),
-            r"split\.json: images\[0\]: field 'id': expected 'int', got 'str'",
+            r"split\.json: images\[0\]: field 'id': expected 'bool | int | float', got 'str'",
         ),
         (
             {"images": [], "annotations": [], "categories": []},

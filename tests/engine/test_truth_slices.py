@@ -28,10 +28,13 @@ def _whole(path, data):
         return str(coco_json.validation_error(path, e, top_level_list=False))
     except msgspec.DecodeError as e:
         return str(whole_file.decode_error(path, e, data))
+    whole = {}
     for key, field in coco_json._ID_FIELDS:
         values = [getattr(r, field) for r in getattr(d, key)]
         try:
-            coco_json.int_column(path, values, lambda i, key=key: f"{key}[{i}]", field)
+            locate = lambda i, key=key: f"{key}[{i}]"  # noqa: E731
+            whole[key, field] = coco_json.whole_ids(path, values, locate, field)
+            coco_json.int_column(path, whole[key, field], locate, field)
         except InputError as e:
             return str(e)
     anns = d.annotations
@@ -44,15 +47,15 @@ def _whole(path, data):
         return np.array([np.nan if v is None else v for v in values], np.float64)
 
     return {
-        "image_ids": np.array([im.id for im in d.images], np.int64),
+        "image_ids": np.array(whole["images", "id"], np.int64),
         "image_width": opt(im.width for im in d.images),
         "image_height": opt(im.height for im in d.images),
         "image_tags": [tuple(im.tags) for im in d.images],
-        "class_ids": np.array([c.id for c in d.categories], np.int64),
+        "class_ids": np.array(whole["categories", "id"], np.int64),
         "class_names": [c.name for c in d.categories],
-        "box_ids": np.array([a.id for a in anns], np.int64),
-        "box_image_ids": np.array([a.image_id for a in anns], np.int64),
-        "box_class_ids": np.array([a.category_id for a in anns], np.int64),
+        "box_ids": np.array(whole["annotations", "id"], np.int64),
+        "box_image_ids": np.array(whole["annotations", "image_id"], np.int64),
+        "box_class_ids": np.array(whole["annotations", "category_id"], np.int64),
         "boxes": np.array([a.bbox for a in anns], np.float64).reshape(-1, 4),
         "box_area": opt(a.area for a in anns),
         "box_area_given": np.array([a.area is not None for a in anns], bool),
@@ -61,7 +64,7 @@ def _whole(path, data):
         "occlusion": opt(a.occlusion for a in anns),
         "truncation": opt(a.truncation for a in anns),
         "visibility": opt(a.visibility for a in anns),
-        "region_image_ids": np.array([r.image_id for r in d.dont_care], np.int64),
+        "region_image_ids": np.array(whole["dont_care", "image_id"], np.int64),
         "regions": np.array([r.bbox for r in d.dont_care], np.float64).reshape(-1, 4),
     }
 

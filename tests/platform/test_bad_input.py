@@ -75,7 +75,7 @@ def _first_image(split_truth):
                 + f', {{"image_id": {ok[0]["image_id"]}, "category_id": NaN, '
                 + '"bbox": [1, 2, 3, 4], "score": 1e999}]'
             ),
-            "nan-class.json: record {n}: field 'category_id': expected 'int', got 'float'",
+            "nan-class.json: record {n}: field 'category_id': an id must be a whole number, got nan",
         ),
         (
             "short-box.json",

@@ -6,6 +6,7 @@ slices of a few megabytes, each turned into arrays at once, so a file of million
 detections never exists as Python objects (or as one byte string) all together.
 """
 
+import math
 import re
 
 import msgspec
@@ -29,17 +30,22 @@ SYNTAX_FIRST_BYTES = 32 << 20
 VALIDATE_FIRST_BYTES = 128 << 20
 
 
+#: An id field: JSON integers, and floats or booleans with a whole value (pycocotools
+#: keys dicts by them, where ``1 == 1.0 == true``); see ``whole_ids``.
+Id = int | float | bool
+
+
 class _Image(msgspec.Struct, gc=False):
-    id: int
+    id: Id
     width: float | None = None  # optional, as in pycocotools; needed only to clip
     height: float | None = None
     tags: list[str] = []
 
 
 class _Annotation(msgspec.Struct, gc=False):
-    id: int
-    image_id: int
-    category_id: int
+    id: Id
+    image_id: Id
+    category_id: Id
     bbox: tuple[float, float, float, float]
     area: float | None = None
     iscrowd: int | float | bool = 0  # any number, as pycocotools: see crowd_columns
@@ -50,12 +56,12 @@ class _Annotation(msgspec.Struct, gc=False):
 
 
 class _Region(msgspec.Struct, gc=False):
-    image_id: int
+    image_id: Id
     bbox: tuple[float, float, float, float]
 
 
 class _Category(msgspec.Struct, gc=False):
-    id: int
+    id: Id
     name: str
 
 
@@ -67,8 +73,8 @@ class _Dataset(msgspec.Struct, gc=False):
 
 
 class _Detection(msgspec.Struct, gc=False):
-    image_id: int
-    category_id: int
+    image_id: Id
+    category_id: Id
     bbox: tuple[float, float, float, float]
     score: float
 
@@ -106,6 +112,25 @@ def validation_error(path, error, *, top_level_list, base=0, key=""):
 
 
 _INT64_MIN, _INT64_MAX = -(2**63), 2**63 - 1
+
+
+def whole_ids(path, values, locate, field):
+    """``values`` as Python ints: a float or boolean with a whole value is that integer
+    (pycocotools finds ``1.0`` and ``true`` under the key 1); any other float is refused
+    naming the record (a known deviation: pycocotools would key a dict by it)."""
+    if all(type(v) is int for v in values):
+        return values
+    out = []
+    for i, v in enumerate(values):
+        if type(v) is float and not (math.isfinite(v) and v.is_integer()):
+            raise InputError(
+                path,
+                f"an id must be a whole number, got {v!r}",
+                record=locate(i),
+                field=field,
+            )
+        out.append(int(v))
+    return out
 
 
 def int_column(path, values, locate, field, wide=False):
@@ -268,6 +293,7 @@ class _Records:
     def ids(self, values, key, field, base):
         try:
             locate = lambda i: f"{key}[{base + i}]"  # noqa: E731
+            values = whole_ids(self.path, values, locate, field)
             return int_column(self.path, values, locate, field, self.wide)
         except InputError as e:
             self.out_of_range.setdefault((key, field), e)
@@ -406,14 +432,15 @@ def _columns(records, path="", base=0, wide=False):
         return f"record {base + i}"
 
     def ids(values, field):
+        values = whole_ids(path, values, locate, field)
         try:
             return np.fromiter(values, np.int64, n)
         except OverflowError:  # locate the id outside int64
-            return int_column(path, [getattr(r, field) for r in records], locate, field, wide)
+            return int_column(path, values, locate, field, wide)
 
     return (
-        ids((r.image_id for r in records), "image_id"),
-        ids((r.category_id for r in records), "category_id"),
+        ids([r.image_id for r in records], "image_id"),
+        ids([r.category_id for r in records], "category_id"),
         np.array([r.bbox for r in records], np.float64).reshape(-1, 4),
         np.fromiter((r.score for r in records), np.float64, n),
     )
