@@ -155,6 +155,14 @@ def test_iscrowd_of_any_number_is_read_as_pycocotools_reads_it(tmp_path, value):
     _compare(tmp_path, split, detections)
 
 
+def test_an_iscrowd_beyond_float64_is_refused_not_a_traceback(tmp_path):
+    split = _split([{"id": 1, "image_id": 1, "category_id": 1, "bbox": A, "iscrowd": 0}])
+    text = json.dumps(split).replace('"iscrowd": 0', '"iscrowd": 1' + "0" * 400)
+    (tmp_path / "gt.json").write_text(text)
+    with pytest.raises(InputError, match=r"annotations\[0\]: field 'iscrowd'"):
+        load_truth(tmp_path / "gt.json")
+
+
 @pytest.mark.parametrize("value", [-1, 256, 1e6])
 def test_iscrowd_pycocotools_fails_on_is_refused_with_its_location(tmp_path, value):
     """pycocotools 2.0.11 passes ``int(iscrowd)`` to ``maskUtils.iou`` as uint8: numpy

@@ -114,6 +114,13 @@ def validation_error(path, error, *, top_level_list, base=0, key=""):
 _INT64_MIN, _INT64_MAX = -(2**63), 2**63 - 1
 
 
+def _as_float(value):
+    try:
+        return float(value)
+    except OverflowError:
+        return math.inf if value > 0 else -math.inf
+
+
 def whole_ids(path, values, locate, field):
     """``values`` as Python ints: a float or boolean with a whole value is that integer
     (pycocotools finds ``1.0`` and ``true`` under the key 1); any other float is refused
@@ -338,7 +345,10 @@ class _Records:
         a value whose integer part is 1..255 is a crowd region (crowd IoU, reusable);
         0 < |iscrowd| < 1 makes an ignored regular box. An integer part outside 0..255
         (or a non-finite value) makes pycocotools fail, so it is refused here."""
-        v = np.array(values, np.float64).reshape(-1)
+        try:
+            v = np.array(values, np.float64).reshape(-1)
+        except OverflowError:  # an integer beyond float64: refused below, as infinite
+            v = np.array([_as_float(x) for x in values], np.float64)
         whole = np.trunc(v)
         bad = np.flatnonzero(~np.isfinite(v) | (whole < 0) | (whole > 255))
         if len(bad):
