@@ -41,7 +41,7 @@ def worth_streaming(split, size, fmt):
     )
 
 
-def stream(path, truth, name, directory, *, fmt, boxes, unknown_images, ids):
+def stream(path, truth, name, directory, *, fmt, boxes, unknown_images, unknown_classes, ids):
     """The pieces of the file at ``path`` (uploaded as ``name``) for ``truth`` under the
     current shard size, written into ``directory`` (``engine.pieces.StreamedPieces``).
     An ``engine.InputError`` names the file as uploaded, its record and field."""
@@ -55,6 +55,7 @@ def stream(path, truth, name, directory, *, fmt, boxes, unknown_images, ids):
             fmt=fmt,
             boxes=boxes,
             unknown_images=unknown_images,
+            unknown_classes=unknown_classes,
             ids=ids,
         )
     except engine.InputError as e:

@@ -342,6 +342,7 @@ def received_predictions(uploaded, split, *, boxes="keep"):
                     fmt=fmt,
                     boxes=boxes,
                     unknown_images="reject",
+                    unknown_classes=ENGINE_UNKNOWN_CLASSES,
                     ids=ENGINE_IDS,
                 )
                 received.pieces = (streamed, split, boxes)

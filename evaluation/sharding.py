@@ -115,7 +115,7 @@ def from_pieces(evaluation, protocol):
 def _stream_stored_file(evaluation, options):
     """Stream the evaluation's stored file (hash-checked) into pieces and store them;
     None when it is not worth it (``pieces.worth_streaming``)."""
-    from .services import ENGINE_IDS, _format_of, load_truth_of
+    from .services import ENGINE_IDS, ENGINE_UNKNOWN_CLASSES, _format_of, load_truth_of
 
     split, prediction_file = evaluation.split, evaluation.predictions
     fmt = _format_of(evaluation.name)
@@ -135,6 +135,7 @@ def _stream_stored_file(evaluation, options):
                 fmt=fmt,
                 boxes=evaluation.box_policy,
                 unknown_images=evaluation.unknown_images,
+                unknown_classes=ENGINE_UNKNOWN_CLASSES,
                 ids=ENGINE_IDS,
             )
             del truth
