@@ -141,6 +141,15 @@ def test_a_refused_upload_stores_no_pieces(large, split, split_truth, tied, vers
     assert _piece_files(large) == []
 
 
+def test_a_streamed_upload_refuses_an_unknown_class(large, split, tied, version, users):
+    """The platform refuses classes the split lacks (``ENGINE_UNKNOWN_CLASSES``) on the
+    streamed path too, although the engine's default drops them as pycocotools does."""
+    tied[-2]["category_id"] = 999
+    with pytest.raises(engine.InputError, match="class 999 is not one of the split's"):
+        services.submit_predictions(version, split, upload("p.json", tied), users["engineer"])
+    assert not PredictionPieces.objects.exists() and not PredictionFile.objects.exists()
+
+
 def test_a_failure_while_storing_pieces_leaves_nothing(
     large, split, tied, version, users, monkeypatch
 ):
