@@ -17,26 +17,50 @@ from .storage import verified_path
 
 
 class _Kept:
-    """A small least-recently-used store of loaded files, keyed by content hash."""
+    """A least-recently-used store of loaded files, keyed by content hash, bounded by
+    a number of entries and by their total size (``weigh(value)`` bytes): a value
+    larger than the whole budget is returned, not kept."""
 
-    def __init__(self, size):
+    def __init__(self, size, max_bytes=None, weigh=None):
         self.size, self.items = size, collections.OrderedDict()
+        self.max_bytes, self.weigh = max_bytes, weigh
+        self.bytes = 0
         self.lock = threading.Lock()  # threaded servers: the dict, not the load
 
     def get(self, key, load):
         with self.lock:
             if key in self.items:
                 self.items.move_to_end(key)
-                return self.items[key]
+                return self.items[key][0]
         value = load()
+        weight = self.weigh(value) if self.weigh else 0
+        if self.max_bytes is not None and weight > self.max_bytes:
+            return value
         with self.lock:
-            self.items[key] = value
-            while len(self.items) > self.size:
-                self.items.popitem(last=False)
+            if key not in self.items:
+                self.items[key] = (value, weight)
+                self.bytes += weight
+            while len(self.items) > self.size or (
+                self.max_bytes is not None and self.bytes > self.max_bytes
+            ):
+                _, (_, dropped) = self.items.popitem(last=False)
+                self.bytes -= dropped
         return value
 
+    def clear(self):
+        with self.lock:
+            self.items.clear()
+            self.bytes = 0
 
-_RECORDS = _Kept(8)
+
+def _nbytes(records):
+    """The bytes of a records object's arrays."""
+    return sum(getattr(v, "nbytes", 0) for v in vars(records).values())
+
+
+# The compare page reads two versions' records on every split and protocol (20 files
+# at 5 splits x 2 protocols): 8 entries made every request load all of them again.
+_RECORDS = _Kept(64, max_bytes=512 * 2**20, weigh=_nbytes)
 
 
 def _load_with_reasons(card):

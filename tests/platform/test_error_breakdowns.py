@@ -83,7 +83,7 @@ def test_an_older_scorecard_with_a_changed_records_file_says_so(
 
     monkeypatch.setattr(breakdowns, "store", lambda scorecard, records, found=None: None)
     card = _score(run_tasks, split, split_truth, version, users)
-    outcomes._RECORDS.items.clear()  # read from storage again, as a fresh process
+    outcomes._RECORDS.clear()  # read from storage again, as a fresh process
     with card.records.open("r+b") as f:
         f.seek(100)
         byte = f.read(1)
