@@ -215,16 +215,19 @@ def _wait_and_report(api, version_id, args, out):
                 f"\nnote: still queued after {hint_after:.0f} s: "
                 "no worker has started on them (is one running?)\n"
             )
-        if time.monotonic() > deadline:
-            progress.done()
-            raise ClientError(
-                f"--wait-timeout: still {verdict['state']} after {args.wait_timeout:.0f} s",
-                FAILURE,
-            )
-        time.sleep(args.poll)
+        _wait_or_give_up(deadline, progress, args, f"still {verdict['state']}")
     progress.show(1.0, "scored and judged")
     progress.done()
     return _print_verdict(api, version_id, verdict, out)
+
+
+def _wait_or_give_up(deadline, progress, args, what):
+    """Sleep one poll interval, or raise the ``--wait-timeout`` failure past the deadline
+    (``what``: where things stand, e.g. "still scoring")."""
+    if time.monotonic() > deadline:
+        progress.done()
+        raise ClientError(f"--wait-timeout: {what} after {args.wait_timeout:.0f} s", FAILURE)
+    time.sleep(args.poll)
 
 
 def _print_verdict(api, version_id, verdict, out):
@@ -339,13 +342,7 @@ def _wait_for_rescore(api, detector, sets, args, out):
         if evaluations and done == len(evaluations):
             break
         progress.show(done / max(len(evaluations), 1), f"{done}/{len(evaluations)} scored")
-        if time.monotonic() > deadline:
-            progress.done()
-            raise ClientError(
-                f"--wait-timeout: {done}/{len(evaluations)} scored after {args.wait_timeout:.0f} s",
-                FAILURE,
-            )
-        time.sleep(args.poll)
+        _wait_or_give_up(deadline, progress, args, f"{done}/{len(evaluations)} scored")
     progress.show(1.0, "scored")
     progress.done()
     rows = [
