@@ -209,6 +209,20 @@ def test_a_fractional_id_is_refused_with_its_location(tmp_path):
         load_truth(tmp_path / "gt.json")
 
 
+def test_categories_without_names_and_a_file_without_annotations(tmp_path):
+    """pycocotools' evaluation reads neither a category's name nor needs the
+    ``annotations`` key; a nameless category is named by its id here."""
+    split = _split(
+        [{"id": 1, "image_id": 1, "category_id": 1, "bbox": A}],
+        categories=[{"id": 1}, {"id": 2.0, "name": "van"}],
+    )
+    ours, _ = _compare(tmp_path, split, [_det(1, A, 0.9), _det(1, B, 0.8, cat=2)])
+    assert list(ours["per_class"]) == ["1", "van"]
+    del split["annotations"]
+    ours, _ = _compare(tmp_path, split, [_det(1, A, 0.9)])
+    assert ours["counts"]["truth_boxes"] == 0
+
+
 def test_ignore_keys_and_sizes_pycocotools_never_reads(tmp_path):
     split = _split(
         [

@@ -52,7 +52,7 @@ def _whole(path, data):
         "image_height": opt(im.height for im in d.images),
         "image_tags": [tuple(im.tags) for im in d.images],
         "class_ids": np.array(whole["categories", "id"], np.int64),
-        "class_names": [c.name for c in d.categories],
+        "class_names": [coco_json.category_name(c) for c in d.categories],
         "box_ids": np.array(whole["annotations", "id"], np.int64),
         "box_image_ids": np.array(whole["annotations", "image_id"], np.int64),
         "box_class_ids": np.array(whole["annotations", "category_id"], np.int64),

@@ -62,13 +62,13 @@ class _Region(msgspec.Struct, gc=False):
 
 class _Category(msgspec.Struct, gc=False):
     id: Id
-    name: str
+    name: str | None = None  # pycocotools never reads it: see category_name
 
 
 class _Dataset(msgspec.Struct, gc=False):
     images: list[_Image]
-    annotations: list[_Annotation]
     categories: list[_Category]
+    annotations: list[_Annotation] = []  # optional, as in pycocotools (nothing to find)
     dont_care: list[_Region] = []
 
 
@@ -81,6 +81,14 @@ class _Detection(msgspec.Struct, gc=False):
 
 _PATH = re.compile(r"^(?P<msg>.*) - at `\$(?P<path>.*)`$")
 _INDEX = re.compile(r"^(?P<key>\.\w+)?\[(?P<i>\d+)\](?P<rest>.*)$")
+
+
+def category_name(category):
+    """A category's name, or for one without a name (pycocotools' evaluation never
+    reads names) its id as text."""
+    if category.name is not None:
+        return category.name
+    return str(int(category.id)) if type(category.id) is not float else repr(category.id)
 
 
 def _friendly(message):
@@ -317,7 +325,7 @@ class _Records:
     def categories(self, categories, key, base):
         return {
             "class_ids": self.ids([c.id for c in categories], key, "id", base),
-            "class_names": [c.name for c in categories],
+            "class_names": [category_name(c) for c in categories],
         }
 
     def annotations(self, anns, key, base):
