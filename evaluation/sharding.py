@@ -107,6 +107,9 @@ def from_pieces(evaluation, protocol):
     with transaction.atomic():
         jobs.lock_if_held(evaluation)
         EvaluationShard.objects.bulk_create(rows)
+    # the pieces' per-class detections are not counted: the split's boxes per class
+    # stand in for them (detections mostly follow the boxes)
+    _plan_groups(evaluation, [split.class_counts.get(c, 0) for c in split.classes])
     jobs.progress(evaluation, 60)
     _dispatch(evaluation, rows)
     return True
@@ -175,8 +178,9 @@ def start(evaluation, truth, predictions):
 
 
 def _plan_groups(evaluation, per_class):
-    """Decide the class groups once, balanced by detections per class, for every shard
-    to cut its records by (kept on the shard rows, so a later claim uses the same)."""
+    """Decide the class groups once, balanced by ``per_class`` (detections per class, or
+    boxes where they are not counted), for every shard to cut its records by (kept on
+    the shard rows, so a later claim uses the same)."""
     plan = cg.plan(len(per_class), settings.BENCHBOOK_CLASS_GROUPS, per_class)
     with transaction.atomic():
         jobs.lock_if_held(evaluation)

@@ -19,7 +19,7 @@ import pytest
 from evaluation import engine
 from evaluation import pieces as piece_sets
 from evaluation import services as evaluation_services
-from evaluation.engine import shards
+from evaluation.engine import class_groups, shards
 from evaluation.engine.loaders import coco_json
 from evaluation.models import (
     Evaluation,
@@ -119,6 +119,10 @@ def test_upload_stores_pieces_equal_to_the_whole_paths_and_shards_read_only_them
     assert [indexes for _, _, indexes in sent] == [[0, 1, 2, 3]] * 2  # coco and voc
     shard_rows = EvaluationShard.objects.order_by("evaluation", "index")
     assert {r.piece.name for r in shard_rows} == {p.file.name for p in rows}  # shared
+    # class groups planned once, by the split's boxes per class (detections uncounted)
+    weights = [split.class_counts[c] for c in split.classes]
+    plan = [list(g) for g in class_groups.plan(len(weights), large.BENCHBOOK_CLASS_GROUPS, weights)]
+    assert all(r.group_digests == {"plan": plan} for r in shard_rows)
     _run(run_tasks, sent)
     monkeypatch.undo()
     for evaluation in Evaluation.objects.all():
