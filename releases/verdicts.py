@@ -16,7 +16,8 @@ import logging
 from dataclasses import dataclass, field
 
 from django.db import transaction
-from django.db.models import F, Q
+from django.db.models import F, Q, Window
+from django.db.models.functions import RowNumber
 from django.utils import timezone
 
 from . import audit, notify, suites
@@ -131,9 +132,13 @@ def inputs_for(versions):
         for c in _newest_per(ReleaseCriteria, "detector_id", detector_ids, "-number")
     }
     approved = {}
-    for v in ModelVersion.objects.filter(
+    newest_first = [F("sign_off__decided_at").desc(), F("sign_off__id").desc()]
+    # The two approved last per detector: a version's baseline is the newest other than
+    # itself (every approved version of a detector would grow with its history).
+    ranked = ModelVersion.objects.filter(
         detector_id__in=detector_ids, sign_off__decision="approved"
-    ).order_by("-sign_off__decided_at", "-sign_off__id"):
+    ).annotate(rank=Window(RowNumber(), partition_by=F("detector_id"), order_by=newest_first))
+    for v in ranked.filter(rank__lte=2).order_by(*newest_first):
         approved.setdefault(v.detector_id, []).append(v)
     baseline_of = {
         v.pk: next((b for b in approved.get(v.detector_id, []) if b.pk != v.pk), None)

@@ -392,3 +392,33 @@ def test_the_pages_show_the_deployed_thresholds_and_their_numbers(
         ("pedestrian", "0.700", "class_thresholds"),
         ("cyclist", "0.300", "score_threshold"),
     ]
+
+
+def test_each_version_is_compared_with_the_approved_version_decided_last_but_itself(
+    detector, users
+):
+    """The baseline reading keeps the two approvals decided last per detector: the newest
+    approved version is judged against the one before it, every other version against
+    the newest (rows written directly: only the baseline choice is under test)."""
+    import datetime
+
+    from django.utils import timezone
+
+    start = timezone.now() - datetime.timedelta(days=10)
+    approved = []
+    for i in range(4):
+        version = services.create_version(detector, f"3.{i}", users["engineer"])
+        SignOff.objects.create(
+            version=version,
+            decision="approved",
+            comment="ok",
+            evidence={},
+            decided_by=users["lead"],
+            decided_at=start + datetime.timedelta(days=i),
+        )
+        approved.append(version)
+    candidate = services.create_version(detector, "3.9", users["engineer"])
+    found = verdicts.inputs_for([*approved, candidate])
+    assert found[candidate.pk].baseline == approved[-1]
+    assert found[approved[-1].pk].baseline == approved[-2]
+    assert found[approved[0].pk].baseline == approved[-1]
