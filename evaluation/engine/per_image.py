@@ -172,12 +172,60 @@ def leave_one_out(records, protocol, class_index, weights=None, *, area=0, slot=
     return float(base), without
 
 
+def leave_one_out_metrics(records, protocol, class_index, weights=None, *, area=0, slots=()):
+    """``leave_one_out`` of one class for several metrics in one pass: ``{None: (ap,
+    without)}`` (AP, the mean over the protocol's slots) plus one entry per IoU slot in
+    ``slots`` (that slot's AP alone, ``AP50`` …), each equal to the bit to
+    ``leave_one_out(records, protocol, class_index, weights, area=area, slot=s)``.
+
+    Under interpolated-precision protocols every slot's envelopes are computed once and
+    each metric is reduced from them (``_reduce``); an image that does not touch a slot
+    gets the base value there, as ``leave_one_out`` gives it. Other protocols call
+    ``leave_one_out`` per metric.
+    """
+    protocol = get_protocol(protocol)
+    metrics = [None, *(int(s) for s in slots)]
+    weights = check_weights(weights, records.n_images)
+    w = np.ones(records.n_images, np.int64) if weights is None else weights
+    k = class_index
+    boxes = (~records.gt_ignored[area]) & (records.gt_class == k) & (w[records.gt_image] > 0)
+    box_count = np.bincount(records.gt_image[boxes], minlength=records.n_images)
+    sequences = [_class_sequence(records, k, t, w, area) for t in range(records.n_slots)]
+    touched = box_count > 0
+    for image, _ in sequences:
+        touched[image] = True
+    affected = np.flatnonzero(touched)
+    if protocol.recall_points is None or not len(affected) or np.any(w > 1):
+        return {m: leave_one_out(records, protocol, k, weights, area=area, slot=m) for m in metrics}
+    variants = np.r_[affected, records.n_images]  # the last leaves nothing out: the base
+    precision = _precision(
+        records, protocol, sequences, float(box_count.sum()), np.r_[box_count, 0], variants
+    )
+    one_class = len(records.classes) == 1
+    out = {}
+    for m in metrics:
+        if m is None:
+            ap = _reduce(precision, "area" if area else None, one_class)
+        else:
+            ap = _reduce(precision[m : m + 1], "slot", one_class)
+        without = np.full(records.n_images, ap[-1])
+        without[affected] = ap[:-1]
+        out[m] = (float(ap[-1]), without)
+    return out
+
+
 def _interpolated(records, protocol, sequences, n_pos, box_count, affected, row=None):
     """Leave-one-out AP of the affected images under interpolated-precision protocols,
     by ``loo_fast.envelopes``, averaged in the engine's layout (slots, points, K), or
     as the scorecard's per-class row reduces it (``row``): ``"slot"`` one slot's mean
     over recall points (``AP50``), ``"area"`` the mean over slots of one class's slot
     values (``AP_small`` …)."""
+    precision = _precision(records, protocol, sequences, n_pos, box_count, affected)
+    return _reduce(precision, row, len(records.classes) == 1)
+
+
+def _precision(records, protocol, sequences, n_pos, box_count, affected):
+    """Interpolated precision of each variant: shape (slots, recall points, variants)."""
     precision = np.empty((len(sequences), len(protocol.recall_points), len(affected)))
     for slot, (image, tp) in enumerate(sequences):
         loo_fast.envelopes(
@@ -190,19 +238,25 @@ def _interpolated(records, protocol, sequences, n_pos, box_count, affected, row=
             protocol.precision_epsilon,
             records.n_images + 1,
             out=precision[slot],
-        )  # (slots, points, variants)
+        )
+    return precision
+
+
+def _reduce(precision, row, one_class):
+    """AP per variant from ``_precision``'s array, reduced as ``_interpolated`` says."""
+    n = precision.shape[2]
     if row == "slot":
         return np.ascontiguousarray(precision[0].T).mean(axis=1)
-    if len(records.classes) == 1:  # the engine's arrays are one column wide: reduce alike
-        slots = [precision[:, :, v : v + 1].mean(axis=1) for v in range(len(affected))]
+    if one_class:  # the engine's arrays are one column wide: reduce alike
+        slots = [precision[:, :, v : v + 1].mean(axis=1) for v in range(n)]
         if row == "area":
             return np.array([np.mean(ap[:, 0]) for ap in slots])
         return np.array([ap.mean(axis=0)[0] for ap in slots])
     if row == "area":
         return np.ascontiguousarray(precision.mean(axis=1).T).mean(axis=1)
-    if len(affected) == 1:
+    if n == 1:
         precision = np.concatenate([precision, precision], axis=2)
-    return precision.mean(axis=1).mean(axis=0)[: len(affected)]
+    return precision.mean(axis=1).mean(axis=0)[:n]
 
 
 def _class_ap(per_slot, protocol):

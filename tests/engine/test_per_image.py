@@ -9,7 +9,12 @@ import pytest
 
 from evaluation.engine import load_predictions, load_truth, match
 from evaluation.engine.confusion import confusion_matrix
-from evaluation.engine.per_image import change_contributions, image_counts, leave_one_out
+from evaluation.engine.per_image import (
+    change_contributions,
+    image_counts,
+    leave_one_out,
+    leave_one_out_metrics,
+)
 from evaluation.engine.scoring import headline, score_records
 
 from .synthetic import make_detections, make_split
@@ -196,3 +201,44 @@ def test_leave_one_out_of_one_slot_equals_the_scorecards_row(tmp_path, metric, i
                 w[i] = 0
                 expected = _rescored(records, "coco", w, name, metric)
                 assert without[i] == expected or (np.isnan(expected) and np.isnan(without[i]))
+
+
+def _same(a, b):
+    return np.array_equal(a, b, equal_nan=True)
+
+
+@pytest.mark.parametrize("protocol,n_classes", [("coco", 3), ("coco", 1), ("voc", 2), ("voc07", 2)])
+@pytest.mark.parametrize("area", [0, 1, 3])
+def test_every_metric_in_one_pass_equals_each_metric_alone(tmp_path, protocol, n_classes, area):
+    """``leave_one_out_metrics`` (what the worker stores at scoring time) gives, for AP
+    and each IoU slot asked for, the same bits as ``leave_one_out`` of that metric —
+    which the tests above hold against re-scoring with the image's weight 0 — in every
+    size bucket, with and without a tag slice."""
+    _, _, truth, predictions = _files(tmp_path, 6, n_classes=n_classes, score_levels=10)
+    records = match(truth, predictions, protocol)
+    slots = list(range(records.n_slots))
+    for k in range(n_classes):
+        for mask in (None, truth.tag_mask("night")):
+            found = leave_one_out_metrics(records, protocol, k, mask, area=area, slots=slots)
+            assert set(found) == {None, *slots}
+            for m, (ap, without) in found.items():
+                ap_alone, without_alone = leave_one_out(
+                    records, protocol, k, mask, area=area, slot=m
+                )
+                assert _same(ap, ap_alone) and _same(without, without_alone), (k, m)
+
+
+def test_every_metric_in_one_pass_against_rescoring(tmp_path):
+    """The one-pass AP50 of each image left out equals the scorecard's per-class AP50
+    re-scored with that image's weight 0, to the bit (outside check of the engine's own
+    scorer, whose COCO rule is held against pycocotools in ``test_coco_reference.py``)."""
+    _, _, truth, predictions = _files(tmp_path, 8, score_levels=10)
+    records = match(truth, predictions, "coco")
+    slot = [float(t) for t in records.thresholds[:, 0]].index(0.5)
+    for k, name in enumerate(records.classes):
+        ap, without = leave_one_out_metrics(records, "coco", k, slots=[slot])[slot]
+        for i in range(records.n_images):
+            w = np.ones(records.n_images, np.int64)
+            w[i] = 0
+            expected = _rescored(records, "coco", w, name, "AP50")
+            assert _same(without[i], expected), (k, i)
