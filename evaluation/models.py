@@ -206,6 +206,28 @@ class ErrorBreakdown(models.Model):
         return f"error breakdown of {self.scorecard}"
 
 
+class ImageLeaveOneOut(models.Model):
+    """Each image's leave-one-out AP per class of a scorecard (``evaluation/image_loo.py``),
+    computed by the worker when it stores the result so the per-image list reads it:
+    one ``.npz`` member per (tag, size bucket, metric), each member's SHA-256 in
+    ``members``; append-only."""
+
+    scorecard = models.OneToOneField(
+        Scorecard, on_delete=models.CASCADE, related_name="image_leave_one_out"
+    )
+    records_sha256 = models.CharField(max_length=64, help_text="Of the records it came from.")
+    engine_version = models.CharField(max_length=16)
+    format = models.PositiveSmallIntegerField(help_text="Layout of the file (image_loo.FORMAT).")
+    file = models.FileField(upload_to="leave-one-out/", max_length=255)
+    members = models.JSONField(
+        help_text='{"metric|size|tag": {"member": name, "sha256": of its bytes}}'
+    )
+    created_at = models.DateTimeField(auto_now_add=True)
+
+    def __str__(self):
+        return f"leave-one-out AP per image of {self.scorecard}"
+
+
 class ClassScore(models.Model):
     """One class of one scorecard, as a row, so trends are plain SQL."""
 

@@ -10,7 +10,7 @@ from django.core.files import File
 from django.db import transaction
 from django.utils import timezone
 
-from . import breakdowns, engine, jobs, levels, sharding, signals
+from . import breakdowns, engine, image_loo, jobs, levels, sharding, signals
 from .models import ClassScore, Evaluation, PredictionFile, Scorecard, SliceScore
 from .protocols import resolve as resolve_protocol
 from .rows import class_rows, slice_rows
@@ -102,20 +102,39 @@ def _score(evaluation):
     return result, records, len(predictions)
 
 
-def _store(evaluation, result, records, record_count, *, records_path=None, breakdown=None):
+def _store(
+    evaluation,
+    result,
+    records,
+    record_count,
+    *,
+    records_path=None,
+    breakdown=None,
+    loo_parts=None,
+):
     """Write the result, if this run still holds the claim: the check and every row in
     one transaction with the evaluation locked. The records file is written inside it
     and deleted if the transaction does not commit (no orphan files).
 
     A sharded run, which never holds its records whole, passes ``records=None``, the
-    records file it wrote (``records_path``) and its assembled TIDE ``breakdown``."""
+    records file it wrote (``records_path``) and its assembled TIDE ``breakdown``; the
+    leave-one-out AP of the per-image list (``image_loo``) is then stored only when the
+    class groups pass theirs (``loo_parts``: ``image_loo.compute`` of each group, joined),
+    else the list computes it on request from the records."""
     with tempfile.TemporaryDirectory() as work:
         if records is not None:
             records_path = os.path.join(work, f"evaluation-{evaluation.pk}.npz")
             records.save(records_path)
         records_sha256 = file_sha256(records_path)
+        # Each image's leave-one-out AP for the per-image list: computed before the
+        # transaction (the long part), stored inside it.
+        loo = None
+        if not levels.is_levels(result) and (records is not None or loo_parts is not None):
+            loo = image_loo.prepare(evaluation, records, work, loo_parts)
+        stored_loo = None
 
         def write():
+            nonlocal stored_loo
             scorecard = Scorecard(
                 evaluation=evaluation,
                 protocol=result["protocol"],
@@ -137,6 +156,8 @@ def _store(evaluation, result, records, record_count, *, records_path=None, brea
                     SliceScore.objects.bulk_create(slice_rows(scorecard, result))
                     if not levels.is_levels(result):  # a level result has no match records
                         breakdowns.store(scorecard, records, breakdown)
+                        if loo is not None:
+                            stored_loo = image_loo.store(scorecard, loo)
                     PredictionFile.objects.filter(pk=evaluation.predictions_id).update(
                         record_count=record_count
                     )
@@ -161,6 +182,7 @@ def _store(evaluation, result, records, record_count, *, records_path=None, brea
             except BaseException:
                 if scorecard.records.name:  # written, but the rows were not: no orphan file
                     _delete_quietly(scorecard.records)
+                image_loo.discard(stored_loo)
                 raise
 
         jobs.with_retry(write, f"storing the result of evaluation {evaluation.pk}")

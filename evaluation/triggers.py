@@ -21,6 +21,7 @@ APPEND_ONLY = {
     "evaluation_classscore": "stored results",
     "evaluation_slicescore": "stored results",
     "evaluation_errorbreakdown": "stored results",
+    "evaluation_imageleaveoneout": "stored results",
     "evaluation_storedprotocol": "a stored protocol",
 }
 # Columns of a finished evaluation that nothing may change (progress, attempts and the

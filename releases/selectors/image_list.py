@@ -9,6 +9,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from evaluation import image_loo
+
 
 @dataclass
 class Listing:
@@ -50,7 +52,7 @@ def listing_filters(params):
 
 
 #: Metrics the list can rank by: ``None`` all slots, else the IoU of the one slot.
-METRIC_IOU = {"AP": None, "AP50": 0.5, "AP75": 0.75}
+METRIC_IOU = image_loo.METRIC_IOU
 
 
 def _slot(records, metric):
@@ -96,17 +98,23 @@ def _class_loo(side, protocol, k, tag, weights, area, slot):
     return found
 
 
-def _loo(side, protocol, classes, tag, weights, area=0, slot=None):
+def _loo(side, protocol, classes, listing, weights, area, slot):
     """``(AP, AP without each image)`` of one class, or of the mean over the classes
-    with positives (the headline mean: absent classes are left out of it), from each
-    class's kept leave-one-out arrays."""
+    with positives (the headline mean: absent classes are left out of it): read from
+    the leave-one-out file the worker stored with the scorecard (``image_loo``), else
+    computed from the records, each class's arrays kept."""
     import warnings
 
-    pairs = [_class_loo(side, protocol, k, tag, weights, area, slot) for k in classes]
+    size = side.records.area_names[area]
+    found = image_loo.stored(side.card, listing.metric, size, listing.tag)
+    if found is not None:
+        bases, without = found[0][classes], found[1][classes]
+    else:
+        pairs = [_class_loo(side, protocol, k, listing.tag, weights, area, slot) for k in classes]
+        bases = np.array([ap for ap, _ in pairs])
+        without = np.stack([w for _, w in pairs])
     if len(classes) == 1:
-        return pairs[0]
-    bases = np.array([ap for ap, _ in pairs])
-    without = np.stack([w for _, w in pairs])
+        return float(bases[0]), without[0]
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", RuntimeWarning)  # every class absent: NaN
         return float(np.nanmean(bases)), np.nanmean(without, axis=0)
@@ -162,7 +170,7 @@ def image_rows(pair, listing):
     counts, change = {}, {}
     for name, side in sides.items():
         counts[name] = per_image.image_counts(side.records, pair.thresholds, k)
-        ap, without = _loo(side, protocol, classes, listing.tag, weights, area, slot)
+        ap, without = _loo(side, protocol, classes, listing, weights, area, slot)
         change[name] = ap - without
     contribution = change["candidate"] - change.get("reference", 0.0)
     listed = np.ones(truth.n_images, bool) if weights is None else weights > 0

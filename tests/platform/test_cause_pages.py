@@ -106,13 +106,37 @@ def _rescored_without(truth_dict, detections, image_id, tag="night"):
         return engine.headline(records, "coco")
 
 
-def test_each_listed_contribution_is_the_change_without_that_image(users, story):
+@pytest.fixture(params=["stored", "on request"])
+def loo_path(request, monkeypatch):
+    """The per-image list reads the leave-one-out file the worker stored ("stored"), or
+    computes from the records, as for an evaluation stored before that file existed."""
+    from evaluation import image_loo
+
+    if request.param == "on request":
+        monkeypatch.setattr(image_loo, "stored", lambda *args: None)
+    from releases.selectors import image_list
+
+    image_list._ROWS.clear()
+    image_list._CLASS_LOO.clear()
+    return request.param
+
+
+def _assert_path(pair, path):
+    from evaluation import image_loo
+
+    found = image_loo.stored(pair.candidate.card, "AP", "all", "night")
+    assert (found is not None) == (path == "stored")
+
+
+def test_each_listed_contribution_is_the_change_without_that_image(users, story, loo_path):
     """Leaving the listed image out of both versions' files and scoring them again
-    gives exactly the ΔAP change the list states (c_i = Δ − Δ_without_i)."""
+    gives exactly the ΔAP change the list states (c_i = Δ − Δ_without_i), read from
+    the stored leave-one-out file or computed on request."""
     from releases import demo
     from releases.selectors import image_list
 
     pair = cause.pair_for(users["lead"], story["1.5"].pk, story["split"].pk)
+    _assert_path(pair, loo_path)
     listing = image_list.listing_filters({"class": "pedestrian", "tag": "night"})
     rows = image_list.image_rows(pair, listing)
     k = pair.classes.index("pedestrian")
@@ -235,7 +259,7 @@ def test_confusion_totals_match_the_image_lists_counts(client, users, story):
     assert sum(shares) == pytest.approx(1.0)
 
 
-def test_a_size_and_a_metric_rank_by_that_buckets_change(client, users, story):
+def test_a_size_and_a_metric_rank_by_that_buckets_change(client, users, story, loo_path):
     """With a size chosen, ΔAP is the change of that size bucket's AP (scorecard
     ``AP_<size>``), and with ``metric=AP50`` of the class's AP at IoU 0.5: the listed
     image's value equals both records re-scored by the engine with its weight 0."""
@@ -243,6 +267,7 @@ def test_a_size_and_a_metric_rank_by_that_buckets_change(client, users, story):
     from releases.selectors import image_list
 
     pair = cause.pair_for(users["lead"], story["1.5"].pk, story["split"].pk)
+    _assert_path(pair, loo_path)
     mask = pair.truth.tag_mask("night")
     for query, key in (({"size": "medium"}, "AP_medium"), ({"metric": "AP50"}, "AP50")):
         listing = image_list.listing_filters({"class": "pedestrian", "tag": "night", **query})
@@ -302,13 +327,15 @@ def test_compare_page_shows_both_confusion_matrices(client, users, story):
 def test_the_list_of_every_class_equals_the_per_class_results(users, story, monkeypatch):
     """No class filter: each image's ΔAP is the mean over the classes with positives of
     the per-class changes (the headline mean), equal to each class's leave-one-out run
-    on its own; every class's leave-one-out runs once, and the one-class lists after it
-    reuse it."""
+    on its own; without a stored file, every class's leave-one-out runs once, and the
+    one-class lists after it reuse it."""
     import warnings
 
-    from evaluation import engine
+    from evaluation import engine, image_loo
     from evaluation.engine import per_image
     from releases.selectors import image_list
+
+    monkeypatch.setattr(image_loo, "stored", lambda *args: None)  # computed on request
 
     pair = cause.pair_for(users["lead"], story["1.5"].pk, story["split"].pk)
     mask = pair.truth.tag_mask("night")
@@ -339,3 +366,77 @@ def test_the_list_of_every_class_equals_the_per_class_results(users, story, monk
         mean_c = np.nanmean(np.stack([c for c, _ in changes]), axis=0)
         mean_r = np.nanmean(np.stack([r for _, r in changes]), axis=0)
     np.testing.assert_allclose(everything["contribution"], mean_c - mean_r, atol=1e-15)
+
+
+def test_the_stored_file_holds_what_the_records_give_on_request(users, story, monkeypatch):
+    """Every member the worker stored (each metric, size bucket and tag, every class)
+    equals, to the bit, ``per_image.leave_one_out`` of the stored records with the
+    tag's 0/1 weights — the computation the list runs on request — and a list read
+    from the file runs no leave-one-out at all."""
+    from evaluation import engine, image_loo
+    from evaluation.engine import per_image
+    from releases.selectors import image_list
+
+    pair = cause.pair_for(users["lead"], story["1.5"].pk, story["split"].pk)
+    protocol = engine.get_protocol(pair.protocol)
+    for side in (pair.candidate, pair.reference):
+        records = side.records
+        row = image_loo.row_of(side.card)
+        slots = image_loo.metric_slots(records)
+        tags = ["", *pair.truth.tags()]
+        assert set(row.members) == {
+            image_loo.key(m, a, t) for m in slots for a in records.area_names for t in tags
+        }
+        for metric, slot in slots.items():
+            for area, size in enumerate(records.area_names):
+                for tag in tags:
+                    aps, without = image_loo.read(row, image_loo.key(metric, size, tag))
+                    w = pair.truth.tag_mask(tag) if tag else None
+                    for k in range(len(records.classes)):
+                        ap, expected = per_image.leave_one_out(
+                            records, protocol, k, w, area=area, slot=slot
+                        )
+                        assert np.array_equal(aps[k], ap, equal_nan=True)
+                        assert np.array_equal(without[k], expected, equal_nan=True)
+    image_list._ROWS.clear()
+    image_list._CLASS_LOO.clear()
+    monkeypatch.setattr(per_image, "leave_one_out", None)  # would fail if called
+    monkeypatch.setattr(per_image, "leave_one_out_metrics", None)
+    for query in ({}, {"class": "pedestrian", "tag": "night", "size": "small"}):
+        assert len(image_list.image_rows(pair, image_list.listing_filters(query))["order"])
+
+
+def test_a_changed_leave_one_out_file_is_signalled_and_the_records_decide(
+    users, story, monkeypatch
+):
+    """A member whose bytes no longer match their SHA-256 is not used: the mismatch is
+    audited ("content mismatch") and the list is computed from the
+    hash-checked records, with the same numbers."""
+    import zipfile
+
+    from evaluation import image_loo
+    from releases.models import AuditEvent
+    from releases.selectors import image_list
+
+    pair = cause.pair_for(users["lead"], story["1.5"].pk, story["split"].pk)
+    listing = image_list.listing_filters({"class": "pedestrian", "tag": "night"})
+    image_list._ROWS.clear()
+    before = image_list.image_rows(pair, listing)["contribution"].copy()
+    row = image_loo.row_of(pair.candidate.card)
+    member = row.members[image_loo.key("AP", "all", "night")]["member"]
+    with zipfile.ZipFile(row.file.path) as z:
+        contents = {name: z.read(name) for name in z.namelist()}
+    data = bytearray(contents[member])
+    data[-1] ^= 0xFF  # the last value's last byte
+    contents[member] = bytes(data)
+    with zipfile.ZipFile(row.file.path, "w") as z:
+        for name, value in contents.items():
+            z.writestr(name, value)
+    monkeypatch.setattr(image_loo, "_MEMBERS", None)  # a fresh process
+    image_list._ROWS.clear()
+    image_list._CLASS_LOO.clear()
+    assert image_loo.stored(pair.candidate.card, "AP", "all", "night") is None
+    events = AuditEvent.objects.filter(kind=AuditEvent.Kind.CONTENT_MISMATCH)
+    assert [e.subject for e in events] == [f"leave-one-out:{row.pk}"]
+    after = image_list.image_rows(pair, listing)["contribution"]
+    assert np.array_equal(before, after, equal_nan=True)
