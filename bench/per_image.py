@@ -15,6 +15,7 @@ images and extrapolated); the ratio is printed.
 
 import argparse
 import json
+import os
 import pathlib
 import sys
 import time
@@ -101,6 +102,40 @@ def main():
         f"CPU ({time.perf_counter() - start:.2f} s wall) — not a target (see README)"
     )
 
+    # At scoring time (the worker): every class, tag, size bucket and metric, one file
+    # per version; the list then reads one member of it (class filter or not).
+    from evaluation import image_loo
+
+    tag_masks = {tag: split.tag_mask(tag) for tag in split.tags()}
+    stored = {}
+    for name, r in records.items():
+        start, cpu = time.perf_counter(), time.process_time()
+        computed = image_loo.compute(r, args.protocol, tag_masks)
+        path = OUT / f"per-image-{name}-loo.npz"
+        members = image_loo.write(path, r, computed)
+        print(
+            f"scoring-time precompute, {name}: {time.process_time() - cpu:.1f} s CPU "
+            f"({time.perf_counter() - start:.1f} s wall), {len(members)} members, "
+            f"{path.stat().st_size / 1e6:.1f} MB file; peak RSS {_peak_rss_mb():.0f} MB"
+        )
+        stored[name] = (path, members)
+        del computed
+    for label, tag in (("AP, untagged", ""), ("AP, tag slice", "night")):
+        start, cpu = time.perf_counter(), time.process_time()
+        without = {}
+        for name, (path, members) in stored.items():
+            row = _Row(path, members)
+            aps, rows = image_loo.read(row, image_loo.key("AP", "all", tag))
+            without[name] = aps[:, None] - rows  # every class's change per image
+            image_counts(records[name], 0.5, class_index=busiest)
+        change = np.nanmean(without["candidate"] - without["baseline"], axis=0)
+        timings[f"{label}, from the stored file"] = time.process_time() - cpu
+        print(
+            f"{label}, read from the stored files (both versions, every class): "
+            f"{time.process_time() - cpu:.3f} s CPU ({time.perf_counter() - start:.3f} s "
+            f"wall); worst image {split.image_ids[int(np.nanargmin(change))]}"
+        )
+
     sample = 5
     cpu = time.process_time()
     for i in range(sample):
@@ -109,7 +144,7 @@ def main():
         for r in records.values():
             headline(r, args.protocol, weights=w)
     reference = (time.process_time() - cpu) / sample * split.n_images
-    slowest = max(timings.values())  # AP over all slots, every image: the worst case
+    slowest = timings["AP, all images"]  # on request: AP over all slots, every image
     print(
         f"{args.images} images, {args.detections} detections per version, "
         f"{args.classes} classes, {args.protocol}"
@@ -118,9 +153,35 @@ def main():
         f"reference (headline re-scored per image, both versions, extrapolated): "
         f"{reference:.0f} s CPU; ours {slowest:.2f} s CPU, {reference / slowest:.0f}x faster"
     )
-    ok = slowest <= TARGET_SECONDS
-    print("target met" if ok else f"FAILED: {slowest:.2f} s > {TARGET_SECONDS} s")
-    return 0 if ok else 1
+    failed = {k: v for k, v in timings.items() if v > TARGET_SECONDS}
+    print(f"load average {' '.join(f'{x:.1f}' for x in os.getloadavg())}")
+    print(
+        "target met"
+        if not failed
+        else "FAILED: "
+        + ", ".join(f"{k} {v:.2f} s > {TARGET_SECONDS} s" for k, v in failed.items())
+    )
+    return 0 if not failed else 1
+
+
+class _Row:
+    """What ``image_loo.read`` needs of a stored row: a file and its members."""
+
+    def __init__(self, path, members):
+        self.pk = self.scorecard_id = 0
+        self.members = members
+        self.file = _File(path)
+
+
+class _File:
+    def __init__(self, path):
+        self.path = self.name = str(path)
+
+
+def _peak_rss_mb():
+    import resource
+
+    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
 
 
 if __name__ == "__main__":

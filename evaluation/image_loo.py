@@ -27,8 +27,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from . import engine
-from .models import ImageLeaveOneOut
+from . import engine  # no Django at import: bench/per_image.py times compute and write
 from .storage import ContentMismatch, check_sha256, local_path
 
 log = logging.getLogger(__name__)
@@ -101,32 +100,37 @@ def prepare(evaluation, records, work, computed=None):
         truth = load_truth_of(evaluation.split, evaluation.box_policy)
         tag_masks = {tag: truth.tag_mask(tag) for tag in truth.tags()}
         computed = compute(records, resolve_protocol(evaluation.protocol), tag_masks)
+    path = os.path.join(work, f"evaluation-{evaluation.pk}-loo.npz")
+    return Prepared(path, write(path, records, computed))
+
+
+def write(path, records, computed):
+    """Write ``computed`` (``{class index: class_results}``, every class) as the file:
+    one uncompressed member per key, shape (classes, 1 + images). Returns the
+    ``members`` of its row."""
     n_classes = len(records.classes)
     if sorted(computed) != list(range(n_classes)):
         raise ValueError(f"leave-one-out AP: classes {sorted(computed)} of {n_classes}")
-    arrays = {}
-    for name in computed[0]:
-        table = np.empty((n_classes, 1 + records.n_images))
-        for k in range(n_classes):
-            ap, without = computed[k][name]
-            table[k, 0], table[k, 1:] = ap, without
-        arrays[name] = table
-    path = os.path.join(work, f"evaluation-{evaluation.pk}-loo.npz")
     members = {}
     with zipfile.ZipFile(path, "w", zipfile.ZIP_STORED, allowZip64=True) as z:
-        for i, (name, table) in enumerate(arrays.items()):
+        for i, name in enumerate(computed[0]):
+            table = np.empty((n_classes, 1 + records.n_images))
+            for k in range(n_classes):
+                table[k, 0], table[k, 1:] = computed[k][name]
             buffer = io.BytesIO()
             np.lib.format.write_array(buffer, table, allow_pickle=False)
             data = buffer.getvalue()
             member = f"m{i}.npy"
             z.writestr(member, data)
             members[name] = {"member": member, "sha256": hashlib.sha256(data).hexdigest()}
-    return Prepared(path, members)
+    return members
 
 
 def store(scorecard, prepared):
     """The row and its file, inside the caller's transaction (the result's)."""
     from django.core.files import File
+
+    from .models import ImageLeaveOneOut
 
     row = ImageLeaveOneOut(
         scorecard=scorecard,
@@ -156,6 +160,8 @@ def discard(row):
 
 def row_of(scorecard):
     """The scorecard's row in the current engine version and format, or None."""
+    from .models import ImageLeaveOneOut
+
     return (
         ImageLeaveOneOut.objects.filter(
             scorecard=scorecard,
