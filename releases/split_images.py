@@ -11,12 +11,13 @@ from .models import AuditEvent
 
 def attach_split_images(user, split, *, archive=None, files=(), url_template=""):
     """Attach images to ``split``: a zip ``archive``, uploaded ``files`` or a
-    ``url_template``. Splits are shared benchmarks: engineers and leads of any team may
-    (as they may load splits). Bad files raise ``UploadError`` naming the file;
+    ``url_template``. Leads of any team may (``selectors.can_attach_split_images``: a
+    split's one image source is shared evidence, fixed for good). Bad files raise
+    ``UploadError`` naming the file;
     nothing is half-stored. The "split images attached" audit event is written in the
     row's transaction."""
-    if not selectors.can_load_splits(user):
-        raise PermissionDenied("only engineers and leads give splits their images")
+    if not selectors.can_attach_split_images(user):
+        raise PermissionDenied("only leads give splits their images")
     given = sum(bool(x) for x in (archive, list(files), url_template))
     if given != 1:
         from evaluation.services import UploadError

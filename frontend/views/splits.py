@@ -40,7 +40,7 @@ def split(request, split_id):
         {
             "split": found,
             "images": split_images.images_of(found),
-            "can_load": selectors.can_load_splits(request.user),
+            "can_attach": selectors.can_attach_split_images(request.user),
             "usage": selectors.split_usage(request.user, found),
             # One reverse, not one per listed version (the list grows with versions).
             "version_prefix": reverse("version", args=[0])[:-2],

@@ -6,6 +6,7 @@ Every function here does a fixed number of queries, whatever the number of versi
 from .access import (  # noqa: F401
     CAUTION,
     UPLOAD_ROLES,
+    can_attach_split_images,
     can_load_splits,
     detector_for,
     evaluation_for,

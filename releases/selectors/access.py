@@ -84,6 +84,16 @@ def evaluation_for(user, evaluation_id):
     return visible_evaluations(user).select_related("split", "predictions").get(pk=evaluation_id)
 
 
+def can_attach_split_images(user):
+    """Leads (of any team) give a split its images: one image source per split, for
+    good, shown to every team that reads a version scored on it (DEVELOPERS.md,
+    "Permissions")."""
+    return (
+        user.is_superuser
+        or Membership.objects.filter(user=user, role=Membership.Role.LEAD).exists()
+    )
+
+
 def can_load_splits(user):
     """Splits are shared benchmarks: engineers and leads of any team may load them."""
     return user.is_superuser or Membership.objects.filter(user=user, role__in=UPLOAD_ROLES).exists()

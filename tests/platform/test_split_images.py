@@ -176,21 +176,28 @@ def test_image_files_are_served_to_readers_of_the_version_only(
 
 
 def test_page_and_api_attach_images_with_the_role_check(client, users, team, named_split):
-    """Engineers and leads (any team) attach images; others are refused; a bad file is
-    named in the error and nothing is stored (page: message; API: 400 body)."""
+    """Leads (any team) attach images; engineers (who may load splits) and others are
+    refused, and the split page offers them no form; a bad file is named in the error
+    and nothing is stored (page: message; API: 400 body)."""
     from rest_framework.test import APIClient
 
     from releases import tokens
 
     url = reverse("split-images", args=[named_split.pk])
-    client.force_login(users["outsider"])
-    assert client.post(url, {"url_template": "https://i.example/{file_name}"}).status_code == 403
-    client.force_login(users["engineer"])
+    page_url = reverse("split", args=[named_split.pk])
+    for who in ("outsider", "engineer"):
+        client.force_login(users[who])
+        template = {"url_template": "https://i.example/{file_name}"}
+        assert client.post(url, template).status_code == 403
+        assert 'class="images-form"' not in client.get(page_url).content.decode()
+    assert not SplitImages.objects.exists()
+    client.force_login(users["lead"])
+    assert 'class="images-form"' in client.get(page_url).content.decode()
     bad = _zip({"cam/0000.png": b"not an image at all"})
     response = client.post(url, {"archive": bad}, follow=True)
     assert "cam/0000.png: not a JPEG, PNG or WebP" in response.content.decode()
     assert not SplitImages.objects.exists()
-    _, token = tokens.create_token(users["engineer"], "ci")
+    _, token = tokens.create_token(users["lead"], "ci")
     api = APIClient()
     api.credentials(HTTP_AUTHORIZATION=f"Bearer {token}")
     endpoint = f"/api/v1/splits/{named_split.pk}/images/"

@@ -54,11 +54,11 @@ def _attach(**options):
 
 def test_command_attaches_a_zip_and_records_one_event(named_split, users, settings, tmp_path):
     archive = _zip_file(tmp_path, {"export/cam/0000.png": PNG, "export/cam/0001.png": JPEG})
-    said = _attach(split="harbour-cam:1", user="engineer", zip=archive)
+    said = _attach(split="harbour-cam:1", user="lead", zip=archive)
     assert "harbour-cam" in said and "2 image files attached" in said
     assert _stored(settings) == ["harbour-cam/rev1/cam/0000.png", "harbour-cam/rev1/cam/0001.png"]
     (event,) = _events()
-    assert event.actor == "engineer" and event.subject == f"split:{named_split.pk}"
+    assert event.actor == "lead" and event.subject == f"split:{named_split.pk}"
     assert event.payload["file_count"] == 2 and event.payload["source"] == "files"
     assert audit.verify_audit()[0] is None  # the chain still verifies
 
@@ -77,10 +77,12 @@ def test_command_files_and_url_template(named_split, users, tmp_path):
     assert len(_events()) == 1
 
 
-@pytest.mark.parametrize("who", ["reviewer", "outsider"])
-def test_command_refuses_who_may_not_load_splits(named_split, users, tmp_path, who):
+@pytest.mark.parametrize("who", ["engineer", "reviewer", "outsider"])
+def test_command_refuses_all_but_leads(named_split, users, tmp_path, who):
+    """Only leads attach images (a split's one image source, shared by every team): an
+    engineer, who may load splits, is refused too; nothing stored, no event."""
     archive = _zip_file(tmp_path, {"cam/0000.png": PNG})
-    with pytest.raises(CommandError, match="only engineers and leads"):
+    with pytest.raises(CommandError, match="only leads give splits their images"):
         _attach(split="harbour-cam:1", user=who, zip=archive)
     assert not SplitImages.objects.exists() and _events() == []
 
@@ -98,7 +100,7 @@ def test_command_refuses_bad_archives_and_stores_nothing(
 ):
     archive = _zip_file(tmp_path, members)
     with pytest.raises(CommandError, match=message):
-        _attach(split="harbour-cam:1", user="engineer", zip=archive)
+        _attach(split="harbour-cam:1", user="lead", zip=archive)
     assert _stored(settings) == [] and not SplitImages.objects.exists() and _events() == []
 
 
@@ -106,7 +108,7 @@ def test_a_traversing_member_lands_inside_the_split_folder(named_split, users, s
     """A member named ``../cam/0000.png`` is matched to the split's file_name below one
     top folder and stored as that name under the split's folder, never outside it."""
     archive = _zip_file(tmp_path, {"../cam/0000.png": PNG})
-    _attach(split="harbour-cam:1", user="engineer", zip=archive)
+    _attach(split="harbour-cam:1", user="lead", zip=archive)
     assert _stored(settings) == ["harbour-cam/rev1/cam/0000.png"]
 
 
@@ -156,17 +158,18 @@ def test_frozen_split_stays_frozen_and_a_new_revision_needs_its_own(named_split,
 def test_page_and_api_record_the_event_too(client, users, named_split):
     from rest_framework.test import APIClient
 
-    client.force_login(users["engineer"])
+    client.force_login(users["lead"])
     url = reverse("split-images", args=[named_split.pk])
     client.post(url, {"url_template": "https://i.example/{file_name}"})
     (event,) = _events()
     assert event.payload["url_template"] == "https://i.example/{file_name}"
     api = APIClient()
-    api.force_authenticate(users["reviewer"])
-    refused = api.post(
-        f"/api/v1/splits/{named_split.pk}/images/", {"url_template": "https://x/{file_name}"}
-    )
-    assert refused.status_code == 403 and len(_events()) == 1
+    for who in ("engineer", "reviewer"):
+        api.force_authenticate(users[who])
+        refused = api.post(
+            f"/api/v1/splits/{named_split.pk}/images/", {"url_template": "https://x/{file_name}"}
+        )
+        assert refused.status_code == 403 and len(_events()) == 1
 
 
 def test_an_audit_failure_keeps_neither_row_nor_files(
@@ -178,7 +181,7 @@ def test_an_audit_failure_keeps_neither_row_nor_files(
     monkeypatch.setattr(audit, "record_event", broken)
     archive = _zip_file(tmp_path, {"cam/0000.png": PNG})
     with pytest.raises(RuntimeError):
-        _attach(split="harbour-cam:1", user="engineer", zip=archive)
+        _attach(split="harbour-cam:1", user="lead", zip=archive)
     assert _stored(settings) == [] and not SplitImages.objects.exists()
 
 

@@ -151,7 +151,7 @@ class SplitImages(Endpoint, generics.GenericAPIView):
         description="Each file of the archive must be a JPEG, PNG or WebP (by its first "
         "bytes) of at most BENCHBOOK_MAX_IMAGE_BYTES, named by a COCO file_name of the "
         "split (an extra top folder is allowed); the first bad one refuses the upload "
-        "(400 naming it), nothing is stored. Engineers and leads of any team.",
+        "(400 naming it), nothing is stored. Leads of any team (403 otherwise).",
     )
     def post(self, request, pk):
         _refuse_oversized(request)

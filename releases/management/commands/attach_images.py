@@ -17,7 +17,7 @@ class Command(BaseCommand):
 
     def add_arguments(self, parser):
         parser.add_argument("--split", required=True, help="NAME:REVISION, e.g. bay-night:2")
-        parser.add_argument("--user", required=True, help="username (an engineer or lead)")
+        parser.add_argument("--user", required=True, help="username (a lead of any team)")
         given = parser.add_mutually_exclusive_group(required=True)
         given.add_argument("--zip", help="a zip archive of images named by COCO file_name")
         given.add_argument("--files", nargs="+", help="image files named by COCO file_name")
