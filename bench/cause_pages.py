@@ -152,6 +152,70 @@ def main():
             f"{(f'{TARGET_SECONDS:.0f} s' if targeted else '—'):>7} {ratio:>6}"
         )
 
+    # Every filter combination a user reaches on the list, each from scratch (rows,
+    # leave-one-out members and class arrays dropped; the records stay in the process).
+    from evaluation import image_loo
+
+    base = f"/versions/{cand.pk}/images/?split={split.pk}&against={ref.pk}"
+    worst = (0.0, "")
+    over = []
+    combos = 0
+    for class_name in ("", busiest):
+        for tag in ("", "night"):
+            for size in ("", "small", "medium", "large"):
+                for metric in ("AP", "AP50", "AP75"):
+                    url = base + "".join(
+                        f"&{k}={v}"
+                        for k, v in (("class", class_name), ("tag", tag), ("size", size))
+                        if v
+                    )
+                    url += f"&metric={metric}"
+                    image_list._ROWS.clear()
+                    image_list._CLASS_LOO.clear()
+                    image_loo._MEMBERS = None
+                    c = time.process_time()
+                    assert client.get(url).status_code == 200, url
+                    cpu = time.process_time() - c
+                    combos += 1
+                    worst = max(worst, (cpu, url[len(base) :]))
+                    if cpu > TARGET_SECONDS:
+                        over.append(url[len(base) :])
+    print(
+        f"\nper-image list, every filter combination ({combos}: class none/busiest x tag "
+        f"none/night x size all/small/medium/large x AP/AP50/AP75), each from scratch: "
+        f"slowest {worst[0]:.3f} s CPU ({worst[1]}); over {TARGET_SECONDS:.0f} s: "
+        f"{', '.join(over) or 'none'}"
+    )
+    failures += ["filter combinations"] if over else []
+
+    # An evaluation stored before the leave-one-out file existed: computed on request.
+    real = image_loo.stored
+    image_loo.stored = lambda *args: None
+    for query in (f"&class={busiest}", "&tag=night&metric=AP50", ""):
+        image_list._ROWS.clear()
+        image_list._CLASS_LOO.clear()
+        c, t = time.process_time(), time.perf_counter()
+        client.get(base + query)
+        print(
+            f"without the stored file (older evaluations), {query or 'no filter'}: "
+            f"{time.process_time() - c:.2f} s CPU ({time.perf_counter() - t:.2f} s wall) "
+            "— not a target"
+        )
+    image_loo.stored = real
+
+    # A fresh server process: wsgi.py's imports, then its first request.
+    for query in ("", f"&class={busiest}&tag=night", "&tag=night&size=small&metric=AP75"):
+        found = _fresh_process(work, lead.pk, base + query)
+        line = (
+            f"fresh process, {query or 'no filter'}: wsgi import {found['import_cpu']:.2f} s "
+            f"CPU ({found['import_wall']:.2f} s wall), first request {found['cpu']:.2f} s "
+            f"CPU ({found['wall']:.2f} s wall)"
+        )
+        print(line)
+        if found["cpu"] > TARGET_SECONDS:
+            failures.append(f"fresh process {query or 'no filter'}")
+    print(f"load average {' '.join(f'{x:.1f}' for x in os.getloadavg())}")
+
     evaluation = Evaluation.objects.order_by("pk").last()
     url = f"/evaluations/{evaluation.pk}/records.csv"
     client.get(url)  # records into the process first: measure the streaming alone
@@ -182,6 +246,42 @@ def main():
     )
     print("\n" + ("targets met" if not failures else f"FAILED: {', '.join(failures)}"))
     return 1 if failures else 0
+
+
+_FRESH = """
+import json, sys, time
+c, t = time.process_time(), time.perf_counter()
+import benchbook.wsgi  # noqa: F401 — what a server process does first
+from django.contrib.auth import get_user_model
+from django.test import Client
+from django.test.utils import setup_test_environment
+import_cpu, import_wall = time.process_time() - c, time.perf_counter() - t
+setup_test_environment()
+client = Client()
+client.force_login(get_user_model().objects.get(pk=int(sys.argv[1])))
+c, t = time.process_time(), time.perf_counter()
+status = client.get(sys.argv[2]).status_code
+print(json.dumps({"status": status, "cpu": time.process_time() - c,
+                  "wall": time.perf_counter() - t, "import_cpu": import_cpu,
+                  "import_wall": import_wall}))
+"""
+
+
+def _fresh_process(work, user_id, url):
+    """Time ``url``'s first request in a new interpreter after ``benchbook.wsgi``."""
+    import subprocess
+
+    done = subprocess.run(
+        [sys.executable, "-c", _FRESH, str(user_id), url],
+        capture_output=True,
+        text=True,
+        env={**os.environ, "PYTHONPATH": str(ROOT)},
+        cwd=ROOT,
+        check=True,
+    )
+    found = json.loads(done.stdout.strip().splitlines()[-1])
+    assert found["status"] == 200, found
+    return found
 
 
 if __name__ == "__main__":
