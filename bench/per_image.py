@@ -11,6 +11,11 @@ over the IoU slots) and of AP50 (one slot: what a rule on AP50 links to), as CPU
 process (the machine may be shared; wall time is printed beside it). The reference run is
 the plain way: re-scoring with ``scoring.headline`` once per image (timed on a few
 images and extrapolated); the ratio is printed.
+
+The list reads what the worker stored at scoring time (``evaluation.image_loo``: every
+class, tag, size bucket and metric); this script times that precompute per version
+(CPU, wall, file size) and the list's read of the stored files, which is the target.
+Computing on request (the rows above) is what evaluations stored before it get.
 """
 
 import argparse
@@ -151,12 +156,18 @@ def main():
     )
     print(
         f"reference (headline re-scored per image, both versions, extrapolated): "
-        f"{reference:.0f} s CPU; ours {slowest:.2f} s CPU, {reference / slowest:.0f}x faster"
+        f"{reference:.0f} s CPU; ours on request {slowest:.2f} s CPU, "
+        f"{reference / slowest:.0f}x faster"
     )
-    failed = {k: v for k, v in timings.items() if v > TARGET_SECONDS}
+    # The target is the list's path: read from the files the worker stored. Computing
+    # on request is what an evaluation stored before those files existed gets.
+    failed = {k: v for k, v in timings.items() if "stored" in k and v > TARGET_SECONDS}
+    slow = [k for k, v in timings.items() if "stored" not in k and v > TARGET_SECONDS]
+    if slow:
+        print(f"on request (older evaluations only), over {TARGET_SECONDS} s: {', '.join(slow)}")
     print(f"load average {' '.join(f'{x:.1f}' for x in os.getloadavg())}")
     print(
-        "target met"
+        "target met (the list reads the stored files)"
         if not failed
         else "FAILED: "
         + ", ".join(f"{k} {v:.2f} s > {TARGET_SECONDS} s" for k, v in failed.items())
