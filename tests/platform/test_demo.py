@@ -190,6 +190,11 @@ def test_from_the_failing_night_pedestrian_rule_to_its_cause(seeded, client, set
     assert sum(r["class"] == "pedestrian" and r["outcome"] == "missed" for r in missed) >= sum(
         1 for t in lost if t["found"]["candidate"] is None
     )
+    # The list's counts of that image are the download's rows at the deployed cut.
+    cut = listed.context["pair"].thresholds[listed.context["pair"].classes.index("pedestrian")]
+    kept = [r for r in mine if r["class"] == "pedestrian" and float(r["score"]) >= cut]
+    assert rows[0]["candidate"]["tp"] == sum(r["outcome"] == "tp" for r in kept)
+    assert rows[0]["candidate"]["fp"] == sum(r["outcome"] == "fp" for r in kept)
 
 
 def test_the_forward_camera_is_judged_on_moderate_difficulty(seeded, client, settings):

@@ -128,6 +128,8 @@ def _done_exactly_once(evaluations):
         assert events.count() == 1
     records = os.listdir(os.path.join(django_settings.MEDIA_ROOT, "records"))
     assert len(records) == len(evaluations), records  # no orphan records file
+    loo = os.listdir(os.path.join(django_settings.MEDIA_ROOT, "leave-one-out"))
+    assert len(loo) == len(evaluations), loo  # nor leave-one-out file
 
 
 def test_an_unexpected_exception_fails_with_a_message(
