@@ -117,7 +117,7 @@ def main():
         start, cpu = time.perf_counter(), time.process_time()
         computed = image_loo.compute(r, args.protocol, tag_masks)
         path = OUT / f"per-image-{name}-loo.npz"
-        members = image_loo.write(path, r, computed)
+        members = image_loo.write(path, computed)
         print(
             f"scoring-time precompute, {name}: {time.process_time() - cpu:.1f} s CPU "
             f"({time.perf_counter() - start:.1f} s wall), {len(members)} members, "

@@ -101,20 +101,21 @@ def prepare(evaluation, records, work, computed=None):
         tag_masks = {tag: truth.tag_mask(tag) for tag in truth.tags()}
         computed = compute(records, resolve_protocol(evaluation.protocol), tag_masks)
     path = os.path.join(work, f"evaluation-{evaluation.pk}-loo.npz")
-    return Prepared(path, write(path, records, computed))
+    return Prepared(path, write(path, computed))
 
 
-def write(path, records, computed):
+def write(path, computed):
     """Write ``computed`` (``{class index: class_results}``, every class) as the file:
     one uncompressed member per key, shape (classes, 1 + images). Returns the
     ``members`` of its row."""
-    n_classes = len(records.classes)
+    n_classes = len(computed)
     if sorted(computed) != list(range(n_classes)):
-        raise ValueError(f"leave-one-out AP: classes {sorted(computed)} of {n_classes}")
+        raise ValueError(f"leave-one-out AP: classes {sorted(computed)}, not 0 to {n_classes - 1}")
+    n_images = len(next(iter(computed[0].values()))[1])
     members = {}
     with zipfile.ZipFile(path, "w", zipfile.ZIP_STORED, allowZip64=True) as z:
         for i, name in enumerate(computed[0]):
-            table = np.empty((n_classes, 1 + records.n_images))
+            table = np.empty((n_classes, 1 + n_images))
             for k in range(n_classes):
                 table[k, 0], table[k, 1:] = computed[k][name]
             buffer = io.BytesIO()

@@ -12,7 +12,7 @@ def install(apps, schema_editor):
 
 class Migration(migrations.Migration):
     dependencies = [
-        ("evaluation", "0013_road_counts_and_level_slices"),
+        ("evaluation", "0017_class_groups"),
     ]
 
     operations = [
