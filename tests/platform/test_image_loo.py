@@ -19,6 +19,12 @@ from .conftest import detections_for, upload
 pytestmark = pytest.mark.django_db
 
 
+def _submit(version, split, split_truth, users, run_tasks):
+    """Upload predictions for ``split``; the worker scores them (coco and voc)."""
+    dets = upload("p.json", detections_for(split_truth))
+    run_tasks(services.submit_predictions, version, split, dets, users["engineer"])
+
+
 def _loo_files():
     folder = os.path.join(django_settings.MEDIA_ROOT, "leave-one-out")
     return sorted(os.listdir(folder)) if os.path.isdir(folder) else []
@@ -30,13 +36,7 @@ def test_each_scorecard_gets_its_file_with_the_records_numbers(
     """One row per scorecard (both protocols), its members covering every metric of
     the protocol, size bucket and tag; the untagged AP50 member equals
     ``per_image.leave_one_out`` of the stored records, class by class, to the bit."""
-    run_tasks(
-        services.submit_predictions,
-        version,
-        split,
-        upload("p.json", detections_for(split_truth)),
-        users["engineer"],
-    )
+    _submit(version, split, split_truth, users, run_tasks)
     cards = Scorecard.objects.all()
     assert cards.count() == 2 and ImageLeaveOneOut.objects.count() == 2
     assert len(_loo_files()) == 2
@@ -68,13 +68,7 @@ def test_a_failed_store_keeps_neither_row_nor_file(
                 raise RuntimeError("storage of the count failed")
 
     monkeypatch.setattr(scoring, "PredictionFile", Broken)
-    run_tasks(
-        services.submit_predictions,
-        version,
-        split,
-        upload("p.json", detections_for(split_truth)),
-        users["engineer"],
-    )
+    _submit(version, split, split_truth, users, run_tasks)
     assert set(Evaluation.objects.values_list("state", flat=True)) == {"failed"}
     assert "storage of the count failed" in Evaluation.objects.first().error
     assert not ImageLeaveOneOut.objects.exists() and _loo_files() == []
@@ -83,13 +77,7 @@ def test_a_failed_store_keeps_neither_row_nor_file(
 def test_rows_are_append_only(version, split, split_truth, users, run_tasks):
     """The database refuses UPDATE and DELETE of a stored row (triggers, as for
     scorecards)."""
-    run_tasks(
-        services.submit_predictions,
-        version,
-        split,
-        upload("p.json", detections_for(split_truth)),
-        users["engineer"],
-    )
+    _submit(version, split, split_truth, users, run_tasks)
     row = ImageLeaveOneOut.objects.first()
     for change in (
         lambda: ImageLeaveOneOut.objects.filter(pk=row.pk).update(members={}),
@@ -104,13 +92,7 @@ def test_a_row_of_another_engine_version_is_not_read(
 ):
     """A file stored by another engine version (or layout) is not used: the list
     computes from the records."""
-    run_tasks(
-        services.submit_predictions,
-        version,
-        split,
-        upload("p.json", detections_for(split_truth)),
-        users["engineer"],
-    )
+    _submit(version, split, split_truth, users, run_tasks)
     card = Scorecard.objects.filter(protocol="coco").get()
     assert image_loo.row_of(card) is not None
     monkeypatch.setattr(image_loo.engine, "ENGINE_VERSION", "99.0.0")
