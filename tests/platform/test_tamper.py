@@ -73,6 +73,7 @@ PROTECTED = [
     ("evaluation_classscore", "stored results"),
     ("evaluation_slicescore", "stored results"),
     ("evaluation_errorbreakdown", "stored results"),
+    ("evaluation_imageleaveoneout", "stored results"),
     ("evaluation_storedprotocol", "a stored protocol"),
     ("releases_signoff", "a release decision"),
     ("releases_judgement", "a judgement"),
@@ -378,7 +379,8 @@ EDITS = [
     # The image policy decides which predictions were scored (drop-and-count re-scores).
     ("UPDATE evaluation_evaluation SET unknown_images = 'drop'", "(unknown_images)"),
     (
-        "DELETE FROM evaluation_errorbreakdown; DELETE FROM evaluation_slicescore; "
+        "DELETE FROM evaluation_errorbreakdown; DELETE FROM evaluation_imageleaveoneout; "
+        "DELETE FROM evaluation_slicescore; "
         "DELETE FROM evaluation_classscore; "
         "DELETE FROM evaluation_scorecard",
         "(scorecard, classes, slices, slice_metrics, records)",
@@ -577,7 +579,7 @@ def test_the_truncated_tables_are_reported(head_file, committed):
     needs_postgres()
     _as_owner(
         "TRUNCATE releases_auditevent, evaluation_slicescore, evaluation_classscore, "
-        "evaluation_errorbreakdown, "
+        "evaluation_errorbreakdown, evaluation_imageleaveoneout, "
         "evaluation_scorecard"
     )
     ok, text = _verify()
