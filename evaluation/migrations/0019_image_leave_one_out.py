@@ -12,7 +12,7 @@ def install(apps, schema_editor):
 
 class Migration(migrations.Migration):
     dependencies = [
-        ("evaluation", "0017_class_groups"),
+        ("evaluation", "0018_prediction_pieces"),
     ]
 
     operations = [
