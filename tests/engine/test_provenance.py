@@ -111,10 +111,12 @@ def test_explain_names_each_differing_setting_and_its_effect(inputs, files, caps
         "pixel offset",
         "box policy",
         "detection cap",
+        "zero id",
     ):
         assert f"* {setting}\n" in out, setting
     assert "A: greedy" in out and "B: best_overlap" in out
     assert "+1 pixel convention" in out and "clipping changes the IoU" in out
+    assert "matched to the box of annotation id 0" in out  # coco's rule, not voc's
     assert "* ground truth" not in out and "* engine version" not in out  # same data, engine
 
 
