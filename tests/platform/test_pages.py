@@ -139,11 +139,12 @@ def test_load_split_form(client, users, team, split_truth):
         {
             "name": "ring-road",
             "revision": 2,
-            "truth": upload("bad.json", '{"images": []}'),
+            # no categories: nothing to score (pycocotools would evaluate no class), refused
+            "truth": upload("bad.json", '{"images": [], "annotations": []}'),
         },
     )
     assert bad.status_code == 400
-    assert "bad.json: field &#x27;annotations&#x27;: missing required field" in bad.content.decode()
+    assert "bad.json: field &#x27;categories&#x27;: missing required field" in bad.content.decode()
     assert BenchmarkSplit.objects.count() == 1
 
 
