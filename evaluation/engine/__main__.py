@@ -7,6 +7,7 @@ Exit status: 0 on success, 2 on bad input (the message names file, record, field
 import argparse
 import json
 import math
+import os
 import sys
 
 from . import export, provenance
@@ -193,5 +194,18 @@ def main(argv=None):
     return 0
 
 
+def _run():
+    """``main``, quiet when the reader of its output goes away (``... | head``): Python's
+    documented way (the ``signal`` module's notes on SIGPIPE) is to point stdout at
+    devnull so the interpreter's final flush does not raise again."""
+    try:
+        code = main()
+        sys.stdout.flush()
+    except BrokenPipeError:
+        os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
+        code = 1
+    return code
+
+
 if __name__ == "__main__":
-    sys.exit(main())
+    sys.exit(_run())

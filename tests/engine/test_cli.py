@@ -128,6 +128,24 @@ def test_a_real_process_prints_no_traceback(inputs, files):
     assert "Traceback" not in proc.stderr
 
 
+def test_a_reader_that_goes_away_gets_no_traceback(inputs):
+    """``... | head``: the reader closes the pipe before the table is written. The
+    process ends quietly with exit 1 (POSIX: a write to a closed pipe fails with EPIPE;
+    Python's signal-module notes give the devnull remedy), not with BrokenPipeError."""
+    gt, dt = inputs
+    proc = subprocess.Popen(
+        [sys.executable, "-m", "evaluation.engine", "score", "--truth", str(gt)]
+        + ["--predictions", str(dt)],
+        stdout=subprocess.PIPE,
+        stderr=subprocess.PIPE,
+        text=True,
+    )
+    proc.stdout.close()  # before the interpreter has even imported the engine
+    err = proc.stderr.read()
+    assert proc.wait() == 1
+    assert "Traceback" not in err and "BrokenPipe" not in err
+
+
 def test_boxes_option_reaches_the_loaders(files, capsys):
     """--boxes keep (default) scores an overhanging detection as given; clip cuts it;
     reject refuses the file with exit 2 and the record named."""
