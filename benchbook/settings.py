@@ -169,6 +169,10 @@ BENCHBOOK_SHARD_IMAGES = int(os.environ.get("BENCHBOOK_SHARD_IMAGES", 5000))
 # After the shards, the classes are scored in at most this many groups of consecutive
 # classes, one task each, on every worker (evaluation/class_groups.py).
 BENCHBOOK_CLASS_GROUPS = int(os.environ.get("BENCHBOOK_CLASS_GROUPS", 8))
+# The per-image list's leave-one-out file (evaluation/image_loo.py) is computed and
+# stored with a result only up to this size (keys x classes x (1 + images) x 8 bytes);
+# over it the list computes on request.
+BENCHBOOK_LOO_MAX_BYTES = int(os.environ.get("BENCHBOOK_LOO_MAX_BYTES", 512 * 1024 * 1024))
 BENCHBOOK_PROTOCOLS = ("coco", "voc", "recall40")
 # Paired bootstrap behind "no significant drop" rules: replicates and seed (reproducible).
 BENCHBOOK_BOOTSTRAP_RESAMPLES = int(os.environ.get("BENCHBOOK_BOOTSTRAP_RESAMPLES", 1000))

@@ -29,7 +29,7 @@ import time
 
 from django.db import transaction
 
-from . import engine, jobs
+from . import engine, image_loo, jobs
 from .engine import class_groups as cg
 from .engine import shards
 from .models import EvaluationClassGroup, EvaluationShard
@@ -130,12 +130,15 @@ def run_group(evaluation_id, claim, index):
         truth = load_truth_of(evaluation.split, evaluation.box_policy)
         tag_masks = {tag: truth.tag_mask(tag) for tag in truth.tags()}
         del truth
-        parts = cg.group_parts(group, _protocol(evaluation), tag_masks=tag_masks)
+        protocol = _protocol(evaluation)
+        parts = cg.group_parts(group, protocol, tag_masks=tag_masks)
+        # the group's rows of the per-image list's leave-one-out file (joined at the end)
+        loo = image_loo.group_members(group.records, protocol, tag_masks, meta["thresholds"])
         with tempfile.TemporaryDirectory() as work:
             path = os.path.join(work, f"evaluation-{evaluation.pk}-group-{index}.npz")
-            cg.save_group(path, group, parts, row.class_start, meta)
+            cg.save_group(path, group, parts, row.class_start, meta, extra=loo)
             detections = group.records.n_detections
-            del group, parts
+            del group, parts, loo
             jobs.with_retry(
                 lambda: _store_group(evaluation, index, path, detections, time.monotonic() - began),
                 f"storing class group {index} of evaluation {evaluation.pk}",
@@ -184,6 +187,7 @@ def run_finish(evaluation_id, claim):
             records_path = os.path.join(work, f"evaluation-{evaluation.pk}.npz")
             cg.write_records(records_path, paths, truth.n_boxes)
             del truth
+            loo = image_loo.join(evaluation, paths, work)
             log.info(
                 "evaluation %s: %d class groups assembled in %.2f s",
                 evaluation.pk,
@@ -197,6 +201,7 @@ def run_finish(evaluation_id, claim):
                 len(counts),
                 records_path=records_path,
                 breakdown=breakdown,
+                loo=loo,
             )
         stored = True
     if stored:

@@ -10,16 +10,21 @@ an array of shape (classes, 1 + images), column 0 the class's AP, then each imag
 left out; stored uncompressed, each member's SHA-256 in the ``ImageLeaveOneOut`` row,
 checked when the member is first read (a request reads one member, not the file).
 
-The worker's hook: ``prepare`` (compute and write, before the result's transaction:
-``compute`` takes a group of classes, so class groups can be computed apart and joined)
-and ``store`` (the row and file, inside it). ``read`` gives a member, or None for a
+The worker's hook: ``prepare`` (compute and write, before the result's transaction)
+and ``store`` (the row and file, inside it). A sharded run computes it per class group
+(``group_members``, stored in the group's file) and joins the groups' tables member by
+member (``join``): one member's rows of one group in memory at a time, the same bytes
+as ``write`` of the whole run. Over ``BENCHBOOK_LOO_MAX_BYTES`` (``fits``) no file is
+computed or stored. ``read`` gives a member, or None for a
 scorecard stored without one, of another engine version or format, or whose member
 fails its hash (the mismatch is signalled for the audit trail) — the list then computes
 from the records, as it does for every evaluation stored before this file existed.
 """
 
+import dataclasses
 import hashlib
 import io
+import json
 import logging
 import os
 import zipfile
@@ -38,14 +43,17 @@ FORMAT = 1
 METRIC_IOU = {"AP": None, "AP50": 0.5, "AP75": 0.75}
 
 
-def metric_slots(records):
-    """``{metric: slot}`` for the metrics the records' protocol has (``AP``: None)."""
+def metric_slots(records, thresholds=None):
+    """``{metric: slot}`` for the metrics the records' protocol has (``AP``: None), by
+    the first class's IoU thresholds (of ``thresholds``, the whole run's table, when
+    ``records`` are a class group's)."""
+    thresholds = records.thresholds if thresholds is None else thresholds
     found = {}
     for metric, iou in METRIC_IOU.items():
         if iou is None:
             found[metric] = None
             continue
-        slots = [t for t in range(records.n_slots) if float(records.thresholds[t, 0]) == iou]
+        slots = [t for t in range(len(thresholds)) if float(thresholds[t, 0]) == iou]
         if slots:
             found[metric] = slots[0]
     return found
@@ -56,12 +64,13 @@ def key(metric, area, tag):
     return f"{metric}|{area}|{tag}"
 
 
-def class_results(records, protocol, class_index, tag_masks):
+def class_results(records, protocol, class_index, tag_masks, metrics=None):
     """One class's leave-one-out AP for every (metric, size, tag): ``{key: (ap,
-    without)}``. ``tag_masks``: ``{tag: 0/1 weights}`` (the untagged list is added)."""
+    without)}``. ``tag_masks``: ``{tag: 0/1 weights}`` (the untagged list is added);
+    ``metrics``: ``metric_slots`` (default: of ``records``)."""
     from .engine.per_image import leave_one_out_metrics
 
-    metrics = metric_slots(records)
+    metrics = metric_slots(records) if metrics is None else metrics
     slots = [s for s in metrics.values() if s is not None]
     out = {}
     for tag, weights in (("", None), *tag_masks.items()):
@@ -81,6 +90,41 @@ def compute(records, protocol, tag_masks, classes=None):
     return {k: class_results(records, protocol, k, tag_masks) for k in classes}
 
 
+def keys_of(records, tags, thresholds=None):
+    """Every member's key, in the file's order (``class_results``'s): tag, size, metric
+    (``thresholds``: as for ``metric_slots``)."""
+    metrics = metric_slots(records, thresholds)
+    return [key(m, a, t) for t in ("", *tags) for a in records.area_names for m in metrics]
+
+
+def planned_bytes(n_keys, n_classes, n_images):
+    """The file's size: one float64 table of (classes, 1 + images) per key."""
+    return int(n_keys) * int(n_classes) * (1 + int(n_images)) * 8
+
+
+def fits(n_keys, n_classes, n_images):
+    """Whether the file stays within ``BENCHBOOK_LOO_MAX_BYTES`` (default 512 MiB: 5,000
+    images x 80 classes under ``coco`` with 12 keys per tag is 38 MB per tag slice;
+    100,000 x 80 is 768 MB without a tag). Over it no file is computed or stored and
+    the per-image list computes on request, from the records."""
+    return planned_bytes(n_keys, n_classes, n_images) <= max_bytes()
+
+
+#: ``BENCHBOOK_LOO_MAX_BYTES`` when Django's settings are not configured (bench/).
+MAX_BYTES = 512 * 1024 * 1024
+
+
+def max_bytes():
+    """The budget: the setting, or ``MAX_BYTES`` outside Django."""
+    from django.conf import settings
+    from django.core.exceptions import ImproperlyConfigured
+
+    try:
+        return int(getattr(settings, "BENCHBOOK_LOO_MAX_BYTES", MAX_BYTES))
+    except ImproperlyConfigured:
+        return MAX_BYTES
+
+
 @dataclass
 class Prepared:
     """A written file and its members' digests, waiting for ``store``."""
@@ -89,19 +133,123 @@ class Prepared:
     members: dict
 
 
-def prepare(evaluation, records, work, computed=None):
-    """Compute every class's leave-one-out AP from ``records`` (or take ``computed``:
-    the class groups' ``compute`` results joined, every class) and write the file into
-    the folder ``work``."""
+def prepare(evaluation, records, work):
+    """Compute every class's leave-one-out AP from ``records`` and write the file into
+    the folder ``work``; None when it would exceed the budget (``fits``)."""
     from .protocols import resolve as resolve_protocol
     from .services import load_truth_of
 
-    if computed is None:
-        truth = load_truth_of(evaluation.split, evaluation.box_policy)
-        tag_masks = {tag: truth.tag_mask(tag) for tag in truth.tags()}
-        computed = compute(records, resolve_protocol(evaluation.protocol), tag_masks)
+    truth = load_truth_of(evaluation.split, evaluation.box_policy)
+    tag_masks = {tag: truth.tag_mask(tag) for tag in truth.tags()}
+    del truth
+    n_keys = len(keys_of(records, tag_masks))
+    if not fits(n_keys, len(records.classes), records.n_images):
+        log.info("evaluation %s: leave-one-out file over budget, not stored", evaluation.pk)
+        return None
+    computed = compute(records, resolve_protocol(evaluation.protocol), tag_masks)
     path = os.path.join(work, f"evaluation-{evaluation.pk}-loo.npz")
     return Prepared(path, write(path, computed))
+
+
+def _as_of_many(records, n_classes):
+    """A group of one class out of several, given a second, empty class: the engine's
+    arrays of one class are one column wide and reduce in another order, so the group
+    computes as the whole run does (``per_image._reduce``, ``leave_one_out``)."""
+    if len(records.classes) != 1 or n_classes == 1:
+        return records
+    thresholds = np.concatenate([records.thresholds, records.thresholds], axis=1)
+    return dataclasses.replace(records, classes=(*records.classes, ""), thresholds=thresholds)
+
+
+def group_members(records, protocol, tag_masks, thresholds):
+    """A class group's part of the file: ``{"loo.keys": keys (JSON), "loo.m<i>": table
+    of member i's rows for the group's classes, shape (group classes, 1 + images)}``,
+    ``records`` being the group's (classes numbered from 0) and ``thresholds`` the
+    whole run's IoU table (slots, classes), whose first class decides the metrics as in
+    the one-process file; empty when the whole file would exceed the budget (``fits``)."""
+    metrics = metric_slots(records, thresholds)
+    keys = keys_of(records, tag_masks, thresholds)
+    n_classes = thresholds.shape[1]
+    if not fits(len(keys), n_classes, records.n_images):
+        return {}
+    protocol = engine.get_protocol(protocol)
+    alike = _as_of_many(records, n_classes)
+    size = len(records.classes)
+    tables = [np.empty((size, 1 + records.n_images)) for _ in keys]
+    for k in range(size):
+        found = class_results(alike, protocol, k, tag_masks, metrics)
+        if list(found) != keys:
+            raise ValueError(f"leave-one-out AP: keys {list(found)}, expected {keys}")
+        for table, name in zip(tables, keys):
+            table[k, 0], table[k, 1:] = found[name]
+    out = {"loo.keys": np.array(json.dumps(keys))}
+    out.update({f"loo.m{i}": table for i, table in enumerate(tables)})
+    return out
+
+
+def join(evaluation, group_paths, work):
+    """The file from the class groups' files (class order, ``group_members`` stored in
+    each): ``Prepared``, or None when the groups hold no part (over the budget)."""
+    path = os.path.join(work, f"evaluation-{evaluation.pk}-loo.npz")
+    members = write_joined(path, group_paths)
+    if members is None:
+        log.info("evaluation %s: no leave-one-out parts in its class groups", evaluation.pk)
+        return None
+    return Prepared(path, members)
+
+
+def write_joined(path, group_paths):
+    """Write the file from the groups' ``group_members`` (``.npz`` files, class order)
+    member by member, each member's rows streamed group by group: the same member
+    bytes as ``write`` of every class. Returns the ``members`` of its row, or None when
+    a group holds no part. Raises ValueError when the groups do not cover the classes."""
+    opened = [np.load(p, allow_pickle=False) for p in group_paths]
+    try:
+        if not opened or any("loo.keys" not in g.files for g in opened):
+            return None
+        keys = [json.loads(str(g["loo.keys"])) for g in opened]
+        if any(k != keys[0] for k in keys):
+            raise ValueError("the class groups computed different leave-one-out members")
+        n_classes = len(opened[0]["meta.classes"])
+        n_images = int(opened[0]["meta.n_images"])
+        header = io.BytesIO()
+        shape = (n_classes, 1 + n_images)
+        np.lib.format.write_array_header_1_0(
+            header,
+            {
+                "descr": np.lib.format.dtype_to_descr(np.dtype(np.float64)),
+                "fortran_order": False,
+                "shape": shape,
+            },
+        )
+        members = {}
+        with zipfile.ZipFile(path, "w", zipfile.ZIP_STORED, allowZip64=True) as z:
+            for i, name in enumerate(keys[0]):
+                member = f"m{i}.npy"
+                h = hashlib.sha256(header.getvalue())
+                rows = 0
+                with z.open(member, "w", force_zip64=True) as f:
+                    f.write(header.getvalue())
+                    for g in opened:
+                        table = np.ascontiguousarray(g[f"loo.m{i}"], np.float64)
+                        if table.ndim != 2 or table.shape[1] != shape[1]:
+                            raise ValueError(
+                                f"leave-one-out member {name}: a group of shape {table.shape}"
+                            )
+                        data = table.tobytes()
+                        f.write(data)
+                        h.update(data)
+                        rows += len(table)
+                        del table, data
+                if rows != n_classes:
+                    raise ValueError(
+                        f"leave-one-out member {name}: {rows} rows for {n_classes} classes"
+                    )
+                members[name] = {"member": member, "sha256": h.hexdigest()}
+        return members
+    finally:
+        for g in opened:
+            g.close()
 
 
 def write(path, computed):

@@ -110,17 +110,17 @@ def _store(
     *,
     records_path=None,
     breakdown=None,
-    loo_parts=None,
+    loo=None,
 ):
     """Write the result, if this run still holds the claim: the check and every row in
     one transaction with the evaluation locked. The records file is written inside it
     and deleted if the transaction does not commit (no orphan files).
 
     A sharded run, which never holds its records whole, passes ``records=None``, the
-    records file it wrote (``records_path``) and its assembled TIDE ``breakdown``; the
-    leave-one-out AP of the per-image list (``image_loo``) is then stored only when the
-    class groups pass theirs (``loo_parts``: ``image_loo.compute`` of each group, joined),
-    else the list computes it on request from the records."""
+    records file it wrote (``records_path``), its assembled TIDE ``breakdown`` and the
+    per-image list's leave-one-out file its class groups joined (``loo``: an
+    ``image_loo.Prepared``, or None over the budget: the list then computes on request).
+    A one-process run computes that file here (``image_loo.prepare``)."""
     with tempfile.TemporaryDirectory() as work:
         if records is not None:
             records_path = os.path.join(work, f"evaluation-{evaluation.pk}.npz")
@@ -128,9 +128,10 @@ def _store(
         records_sha256 = file_sha256(records_path)
         # Each image's leave-one-out AP for the per-image list: computed before the
         # transaction (the long part), stored inside it.
-        loo = None
-        if not levels.is_levels(result) and (records is not None or loo_parts is not None):
-            loo = image_loo.prepare(evaluation, records, work, loo_parts)
+        if levels.is_levels(result):
+            loo = None
+        elif records is not None:
+            loo = image_loo.prepare(evaluation, records, work)
         stored_loo = None
 
         def write():

@@ -208,10 +208,10 @@ def group_parts(group, protocol, *, tag_masks=None, score_threshold=0.5):
     }
 
 
-def save_group(path, group, parts, class_start, meta):
+def save_group(path, group, parts, class_start, meta, extra=None):
     """One scored group as one uncompressed ``.npz``: its records (local numbering, the
-    maps back to the split's), the shards' ``meta`` and its parts (arrays, and rows as
-    JSON)."""
+    maps back to the split's), the shards' ``meta``, its parts (arrays, and rows as
+    JSON) and ``extra`` arrays under their own names (names without ``:``)."""
     records = group.records
     arrays = {
         name: getattr(records, name)
@@ -233,6 +233,10 @@ def save_group(path, group, parts, class_start, meta):
         "tag_images": parts["scoring"]["tag_images"],
     }
     arrays["parts_json"] = np.array(json.dumps(rest))
+    for name, value in (extra or {}).items():
+        if ":" in name or name in arrays:
+            raise ValueError(f"extra member {name!r} would be read as a part or replace one")
+        arrays[name] = value
     np.savez(path, **arrays)
 
 

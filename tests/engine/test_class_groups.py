@@ -13,10 +13,12 @@ group, and groups of one class (where a mean over one axis could sum in another 
 """
 
 import json
+import zipfile
 
 import numpy as np
 import pytest
 
+from evaluation import image_loo
 from evaluation.engine import PRESETS, annotate, match, score_records, shards
 from evaluation.engine import class_groups as cg
 from evaluation.engine.records import MatchRecords
@@ -73,7 +75,8 @@ def _grouped(truth, predictions, protocol, images_per_shard, n_groups, tmp_path)
         group = cg.merge_group([part for part, _ in read], read[0][1], lo, hi)
         parts = cg.group_parts(group, protocol, tag_masks=tag_masks)
         path = tmp_path / f"group-{j}.npz"
-        cg.save_group(path, group, parts, lo, read[0][1])
+        loo = image_loo.group_members(group.records, protocol, tag_masks, read[0][1]["thresholds"])
+        cg.save_group(path, group, parts, lo, read[0][1], extra=loo)
         group_files.append(path)
     result, breakdown = cg.assemble([cg.load_group_parts(p) for p in group_files], protocol)
     totals = cg.totals(group_files)
@@ -112,6 +115,54 @@ def test_class_groups_give_the_whole_run(loaded, protocol, images_per_shard, n_g
     # json.dumps writes every float with repr: equal text is equal bits (key order too)
     assert json.dumps(result) == json.dumps(expected)
     assert json.dumps(breakdown) == json.dumps(error_breakdown(whole, protocol))
+
+
+@pytest.mark.parametrize("protocol", sorted(PRESETS))
+@pytest.mark.parametrize(("images_per_shard", "n_groups"), [(7, 3), (5, N_CLASSES)])
+def test_the_groups_leave_one_out_file_is_the_whole_runs(
+    loaded, protocol, images_per_shard, n_groups, tmp_path
+):
+    """The per-image list's leave-one-out file joined from the class groups' parts
+    (each group computes its classes, the final step streams them member by member)
+    holds the same members, byte for byte, as the one-process run's file (every class
+    of the whole records at once) — with groups of one class, whose arrays would be
+    one column wide. Its reference, ``per_image.leave_one_out``, is held to re-scoring
+    with the image's weight 0 (test_per_image.py)."""
+    truth, predictions = loaded
+    whole = match(truth, predictions, protocol)
+    tag_masks = {tag: truth.tag_mask(tag) for tag in truth.tags()}
+    expected = image_loo.write(
+        tmp_path / "whole-loo.npz", image_loo.compute(whole, protocol, tag_masks)
+    )
+    _grouped(truth, predictions, protocol, images_per_shard, n_groups, tmp_path)
+    groups = [tmp_path / f"group-{j}.npz" for j in range(len(cg.plan(N_CLASSES, n_groups)))]
+    joined = image_loo.write_joined(tmp_path / "joined-loo.npz", groups)
+    assert joined == expected  # every member's name and SHA-256
+    with (
+        zipfile.ZipFile(tmp_path / "whole-loo.npz") as a,
+        zipfile.ZipFile(tmp_path / "joined-loo.npz") as b,
+    ):
+        assert a.namelist() == b.namelist()
+        for name in a.namelist():
+            assert a.read(name) == b.read(name), name
+    assert len(expected) == 3 * len(whole.area_names) * 3 or protocol != "coco"
+
+
+def test_over_the_budget_the_groups_store_no_leave_one_out_part(loaded, tmp_path, settings):
+    """Past ``BENCHBOOK_LOO_MAX_BYTES`` no group computes its part and the join gives
+    None (the list computes on request): the budget is the whole file's size, keys x
+    classes x (1 + images) x 8 bytes."""
+    truth, predictions = loaded
+    n_keys = 3 * 4 * (1 + len(truth.tags()))  # coco: AP, AP50, AP75; 4 sizes; tags
+    size = image_loo.planned_bytes(n_keys, N_CLASSES, truth.n_images)
+    assert size == n_keys * N_CLASSES * (truth.n_images + 1) * 8
+    settings.BENCHBOOK_LOO_MAX_BYTES = size - 1
+    _grouped(truth, predictions, "coco", 7, 3, tmp_path)
+    groups = [tmp_path / f"group-{j}.npz" for j in range(3)]
+    assert image_loo.write_joined(tmp_path / "loo.npz", groups) is None
+    settings.BENCHBOOK_LOO_MAX_BYTES = size
+    _grouped(truth, predictions, "coco", 7, 3, tmp_path)
+    assert image_loo.write_joined(tmp_path / "loo.npz", groups) is not None
 
 
 def test_the_fixture_crosses_groups_and_shards(loaded):

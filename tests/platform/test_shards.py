@@ -17,9 +17,15 @@ import numpy as np
 import pytest
 from django.utils import timezone
 
-from evaluation import class_groups, engine, jobs, sharding, tasks
+from evaluation import class_groups, engine, image_loo, jobs, sharding, tasks
 from evaluation import services as evaluation_services
-from evaluation.models import Evaluation, EvaluationClassGroup, EvaluationShard, Scorecard
+from evaluation.models import (
+    Evaluation,
+    EvaluationClassGroup,
+    EvaluationShard,
+    ImageLeaveOneOut,
+    Scorecard,
+)
 from evaluation.storage import local_path
 
 from ..engine.synthetic import make_detections
@@ -104,6 +110,9 @@ def test_sharded_results_equal_the_one_process_run(
         assert json.dumps(ours.result, sort_keys=True) == json.dumps(
             reference.result, sort_keys=True
         )
+        # the per-image list's leave-one-out file, joined from the class groups: every
+        # member's bytes (their SHA-256) are the one-process file's
+        assert image_loo.row_of(ours).members == image_loo.row_of(reference).members
         with local_path(ours.records) as a, local_path(reference.records) as b:
             merged, alone = engine.MatchRecords.load(a), engine.MatchRecords.load(b)
         for name in ("det_order", "det_score", "det_image", "det_reason", "gt_reason"):
@@ -113,6 +122,23 @@ def test_sharded_results_equal_the_one_process_run(
         assert sum(r.detections for r in rows) == len(tied)
         assert all(r.seconds > 0 and not r.piece and not r.records for r in rows)
     assert not os.listdir(os.path.join(settings.MEDIA_ROOT, "shards"))  # files removed
+
+
+def test_over_the_leave_one_out_budget_neither_path_stores_the_file(
+    split, tied, run_tasks, sent, settings
+):
+    """Past ``BENCHBOOK_LOO_MAX_BYTES`` neither the one-process nor the sharded run
+    stores a leave-one-out file (the per-image list computes on request); the results
+    are stored as usual."""
+    settings.BENCHBOOK_LOO_MAX_BYTES = 0
+    _request(run_tasks, split, tied, "whole", ["coco"])
+    settings.BENCHBOOK_SHARD_ABOVE = 0
+    settings.BENCHBOOK_SHARD_IMAGES = 3
+    _request(run_tasks, split, tied, "sharded", ["coco"])
+    _run(run_tasks, sent)
+    assert sorted(Evaluation.objects.values_list("state", flat=True)) == ["done", "done"]
+    assert Scorecard.objects.count() == 2 and not ImageLeaveOneOut.objects.exists()
+    assert not os.path.exists(os.path.join(settings.MEDIA_ROOT, "leave-one-out"))
 
 
 def test_a_retried_shard_replaces_its_records(split, tied, run_tasks, sent, sharded):
