@@ -5,7 +5,9 @@
 the worker or cut the database mid-scoring) and/or ``BENCHBOOK_FAULT_RAISE=<builtin
 exception name>`` (matching raises it: an error the engine does not expect), and
 ``BENCHBOOK_FAULT_SLOW_SHARD=<seconds>`` (every image shard this worker matches waits
-that long first: time to kill it mid-shard).
+that long first: time to kill it mid-shard; with ``BENCHBOOK_FAULT_SHARD_LOG=<file>``
+it first appends ``<evaluation id> <shard index>`` there, so a test knows which shard
+it holds).
 """
 
 import builtins
@@ -29,12 +31,26 @@ def install_faults():
 
     engine.match = faulty_match
 
+    from celery.signals import task_prerun
+
     from evaluation.engine import shards
 
     match_shard = shards.match_shard
     slow_shard = float(os.environ.get("BENCHBOOK_FAULT_SLOW_SHARD", 0))
+    shard_log = os.environ.get("BENCHBOOK_FAULT_SHARD_LOG", "")
+    current = []
+
+    def remember_shard(sender=None, args=(), **extra):
+        """``score_shard(evaluation_id, claim, index)``: the shard about to be matched."""
+        if sender is not None and sender.name.endswith(".score_shard"):
+            current[:] = [args[0], args[2]]
+
+    task_prerun.connect(remember_shard, weak=False)
 
     def slow_match_shard(*args, **kwargs):
+        if shard_log and current:
+            with open(shard_log, "a") as f:
+                f.write(f"{current[0]} {current[1]}\n")
         time.sleep(slow_shard)
         return match_shard(*args, **kwargs)
 
