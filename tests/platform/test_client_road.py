@@ -124,6 +124,8 @@ def test_the_client_exits_on_level_setup_and_size_rules(live_server, team, users
         format="json",
     )
     assert dropped.status_code == 201, dropped.json()
-    code, out, err = run("status", *connect, "--detector", "Kerb road", "1.0")
+    # the suite change re-judges in the worker: wait for that verdict
+    wait = ["--wait", "--wait-timeout", "60", "--poll", "0.3"]
+    code, out, err = run("status", *connect, "--detector", "Kerb road", "1.0", *wait)
     assert code == 3, out + err
     assert "incomplete" in out
