@@ -23,7 +23,7 @@ from .storage import (
     check_sha256,
     local_path,
     spool,
-    verified_path,
+    verified_bytes,
 )
 
 log = logging.getLogger(__name__)
@@ -241,11 +241,13 @@ def _read_truth(split, boxes):
 
 
 def load_records(scorecard):
-    """A scorecard's match records, their file checked against its recorded SHA-256."""
-    with verified_path(
+    """A scorecard's match records, their file checked against its recorded SHA-256:
+    the file is read once, the bytes hashed and then parsed in place (the arrays are
+    views into the checked bytes; no second read between the check and the use)."""
+    buffer = verified_bytes(
         scorecard.records, scorecard.records_sha256, f"scorecard:{scorecard.pk}", "records file"
-    ) as path:
-        return engine.MatchRecords.load(path)
+    )
+    return engine.MatchRecords.from_buffer(buffer)
 
 
 # Predictions ----------------------------------------------------------------------

@@ -72,6 +72,19 @@ def verified_path(field_file, expected, subject, what, name=None):
         yield path
 
 
+def verified_bytes(field_file, expected, subject, what, name=None):
+    """A stored file's bytes (a uint8 array, read once) checked against ``expected``
+    (ContentMismatch, signalled for the audit trail, if they differ): the caller parses
+    the very bytes that were hashed."""
+    from .engine.npz_view import read_file
+
+    name = name or os.path.basename(field_file.name)
+    with local_path(field_file) as path:
+        buffer = read_file(path)
+    check_sha256(subject, what, name, expected, hashlib.sha256(buffer).hexdigest())
+    return buffer
+
+
 def verified_predictions(evaluation):
     """``verified_path`` of an evaluation's stored predictions file, named as its
     requester uploaded it."""

@@ -13,6 +13,8 @@ from dataclasses import dataclass, field, fields
 
 import numpy as np
 
+from . import npz_view
+
 
 class MissingReasons(ValueError):
     """Records saved before reasons were added to the engine: no reasons, no boxes."""
@@ -213,12 +215,20 @@ class MatchRecords:
 
     @classmethod
     def load(cls, path):
-        with np.load(path, allow_pickle=False) as data:
-            values = {
-                f.name: data[f.name]
-                for f in fields(cls)
-                if not f.name.startswith("_") and f.name in data.files
-            }
+        """Records from a file written by ``save`` (or deflated, by older versions)."""
+        return cls.from_buffer(npz_view.read_file(path))
+
+    @classmethod
+    def from_buffer(cls, buffer):
+        """Records from a records file's bytes (``npz_view.read_file``): the arrays are views
+        into it, not copies (``npz_view``), so a caller that hash-checked ``buffer``
+        uses exactly the bytes it checked."""
+        data = npz_view.arrays(buffer)
+        values = {
+            f.name: data[f.name]
+            for f in fields(cls)
+            if not f.name.startswith("_") and f.name in data
+        }
         values["tie_order"] = str(values.get("tie_order", "image"))
         values["protocol"] = str(values["protocol"])
         values["classes"] = tuple(str(c) for c in values["classes"])
