@@ -347,9 +347,16 @@ def read(row, name):
     return table[:, 0], table[:, 1:]
 
 
+class _NoRow(Exception):
+    """The scorecard has no row (yet): not kept, so a row stored later is found."""
+
+
 def stored(scorecard, metric, size, tag):
     """``read`` of the scorecard's member for (metric, size bucket name, tag), kept in
-    the process (a stored file never changes); None when there is none to read."""
+    the process (a stored file never changes); None when there is none to read. A
+    scorecard without a row is asked again on the next request (``loo_fill`` may have
+    stored one meanwhile: one query); a member that failed its hash is not read again
+    (audited once per process)."""
     from .outcomes import _Kept
 
     global _MEMBERS
@@ -358,9 +365,14 @@ def stored(scorecard, metric, size, tag):
 
     def load():
         row = row_of(scorecard)
-        return None if row is None else read(row, key(metric, size, tag))
+        if row is None:
+            raise _NoRow
+        return read(row, key(metric, size, tag))
 
-    return _MEMBERS.get((scorecard.pk, scorecard.records_sha256, metric, size, tag), load)
+    try:
+        return _MEMBERS.get((scorecard.pk, scorecard.records_sha256, metric, size, tag), load)
+    except _NoRow:
+        return None
 
 
 #: Members kept per process (one is classes x images float64: 3.2 MB at 80 x 5,000).

@@ -210,10 +210,11 @@ class ImageLeaveOneOut(models.Model):
     """Each image's leave-one-out AP per class of a scorecard (``evaluation/image_loo.py``),
     computed by the worker when it stores the result so the per-image list reads it:
     one ``.npz`` member per (tag, size bucket, metric), each member's SHA-256 in
-    ``members``; append-only."""
+    ``members``; append-only. One row per scorecard, engine version and layout: a
+    newer engine adds its row beside the old one (``loo_fill``)."""
 
-    scorecard = models.OneToOneField(
-        Scorecard, on_delete=models.CASCADE, related_name="image_leave_one_out"
+    scorecard = models.ForeignKey(
+        Scorecard, on_delete=models.CASCADE, related_name="leave_one_out_files"
     )
     records_sha256 = models.CharField(max_length=64, help_text="Of the records it came from.")
     engine_version = models.CharField(max_length=16)
@@ -223,6 +224,14 @@ class ImageLeaveOneOut(models.Model):
         help_text='{"metric|size|tag": {"member": name, "sha256": of its bytes}}'
     )
     created_at = models.DateTimeField(auto_now_add=True)
+
+    class Meta:
+        constraints = [
+            models.UniqueConstraint(
+                fields=["scorecard", "engine_version", "format"],
+                name="one_leave_one_out_file_per_engine_version",
+            )
+        ]
 
     def __str__(self):
         return f"leave-one-out AP per image of {self.scorecard}"

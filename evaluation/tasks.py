@@ -6,7 +6,7 @@ beat sweep (lost messages, dead workers), not in Celery's retry counter.
 
 from celery import shared_task
 
-from . import class_groups, scoring, services, sharding
+from . import class_groups, loo_fill, scoring, services, sharding
 
 
 @shared_task(bind=True, acks_late=True)
@@ -38,6 +38,13 @@ def score_class_group(evaluation_id, claim, index):
 def finish_class_groups(evaluation_id, claim):
     """The groups' chord callback: assemble, write the records file, store."""
     class_groups.run_finish(evaluation_id, claim)
+
+
+@shared_task(acks_late=True)
+def fill_leave_one_out(scorecard_id):
+    """Store one scorecard's per-image leave-one-out file if it has none
+    (``loo_fill.fill``: idempotent; a changed records file is refused and audited)."""
+    return loo_fill.fill(scorecard_id).status
 
 
 @shared_task
