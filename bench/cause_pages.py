@@ -199,7 +199,7 @@ def main():
         print(
             f"without the stored file (older evaluations), {query or 'no filter'}: "
             f"{time.process_time() - c:.2f} s CPU ({time.perf_counter() - t:.2f} s wall) "
-            "— not a target"
+            "— not a target (manage.py fill_leave_one_out stores their file)"
         )
     image_loo.stored = real
 

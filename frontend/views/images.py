@@ -79,9 +79,7 @@ def image_detail(request, version_id, split_id, image):
             "next": link(neighbours["next"]),
             "position": neighbours["position"],
             "total": neighbours["total"],
-            "evaluations": [
-                s.evaluation for s in (pair.candidate, pair.reference) if s is not None
-            ],
+            "evaluations": [s for s in (pair.candidate, pair.reference) if s is not None],
         },
     )
 
@@ -122,7 +120,10 @@ def _version_and_pair(request, version_id):
 def image_list(request, version_id):
     """The per-image comparison of the version with a reference on one split
     (``?split=``, default its first), filtered by class, tag and size, ΔAP of the
-    chosen metric."""
+    chosen metric; above it the listed images' AP of both versions and the class's
+    kinds of error (TIDE) on the split."""
+    from releases.selectors import errors
+
     version, split_id, pair = _version_and_pair(request, version_id)
     listing = listing_of.listing_filters(request.GET)
     error, table = None, {"rows": [], "total": 0, "reasons": ()}
@@ -153,6 +154,8 @@ def image_list(request, version_id):
             "query": query,
             "detail_prefix": detail,
             "thresholds": listing_of.threshold_words(pair),
+            "kinds": None if error else errors.pair_breakdown(pair, listing.class_name),
+            "evaluations": [s for s in (pair.candidate, pair.reference) if s is not None],
         },
     )
 

@@ -145,9 +145,17 @@ def _image_side(side, image):
     boxes = {}
     for b in np.flatnonzero(records.gt_image == image):
         reason, det = int(records.gt_reason[b]), int(records.gt_ref_det[b])
+        iou = float(records.gt_ref_iou[b])
         boxes[int(b)] = {
             "reason": BOX_REASONS[reason],
             "score": round(float(records.det_score[det]), 4) if reason == MATCHED else None,
+            # The related detection (matching, or nearest for a missed box), if any.
+            "near": None
+            if det < 0
+            else {
+                "score": round(float(records.det_score[det]), 4),
+                "iou": None if np.isnan(iou) else round(iou, 3),
+            },
         }
     return {
         "label": side.version.label,
@@ -197,11 +205,13 @@ def image_drilldown(pair, image):
         "truth": [
             {
                 "index": int(b),
+                "id": str(truth.box_ids[b]),  # the downloads' box_id
                 "box": [round(float(v), 2) for v in truth.boxes[b]],
                 "class": int(truth.box_class[b]),
                 "ignored": bool(ignored[b]),
                 "found": {key: found[key][int(b)]["score"] for key in sides},
                 "reason": {key: found[key][int(b)]["reason"] for key in sides},
+                "near": {key: found[key][int(b)]["near"] for key in sides},
             }
             for b in boxes
         ],

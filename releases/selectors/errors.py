@@ -99,6 +99,25 @@ def _class_grew(per_class, shown=3):
     return sorted(out, key=lambda t: -t[2])[:shown]
 
 
+def pair_breakdown(pair, class_name=""):
+    """Kinds of error of the pair on its split for one class (``""``: the mean over
+    classes), candidate against reference: ``{"rows": compare_breakdowns rows, "grew":
+    the type whose ΔAP grew most or None}``; ``{"error": text}`` when a records file
+    fails its check; None for a class without ground truth on the split (no AP)."""
+    try:
+        candidate = breakdown_of(pair.candidate)
+        reference = breakdown_of(pair.reference) if pair.reference is not None else None
+    except (ContentMismatch, OSError, ValueError) as e:  # shown in place, not a 500
+        return {"error": str(e)}
+    found = compare_breakdowns(candidate, reference)
+    rows = found["per_class"].get(class_name) if class_name else found["mean"]
+    if rows is None:
+        return None
+    changes = [(r["change"], r["type"]) for r in rows if r["change"] is not None]
+    grew = max(changes) if changes else None
+    return {"rows": rows, "grew": grew[1] if grew and grew[0] > 0 else None}
+
+
 def version_breakdowns(version, reference=None):
     """Per scored split of ``version``: the error breakdown of its primary scorecard
     and of ``reference``'s (default: the judged baseline) on the same split."""

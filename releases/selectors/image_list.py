@@ -167,11 +167,12 @@ def image_rows(pair, listing):
     classes = [k] if k is not None else list(range(len(truth.classes)))
     weights = truth.tag_mask(listing.tag) if listing.tag else None
     protocol = engine.get_protocol(pair.protocol)
-    counts, change = {}, {}
+    counts, change, aps = {}, {}, {}
     for name, side in sides.items():
         counts[name] = per_image.image_counts(side.records, pair.thresholds, k)
         ap, without = _loo(side, protocol, classes, listing, weights, area, slot)
         change[name] = ap - without
+        aps[name] = None if np.isnan(ap) else ap
     contribution = change["candidate"] - change.get("reference", 0.0)
     listed = np.ones(truth.n_images, bool) if weights is None else weights > 0
     if area:
@@ -187,6 +188,7 @@ def image_rows(pair, listing):
         _ROWS.clear()
     result = {
         "order": order,
+        "ap": aps,
         "contribution": contribution,
         "counts": counts,
         "reasons": [(r, SHORT_REASONS.get(r, r)) for r in FALSE_POSITIVE_REASONS],
@@ -231,7 +233,19 @@ def image_table(pair, listing, limit=200):
         for key, counts in rows["counts"].items():
             entry[key] = {name: int(values[i]) for name, values in counts.items()}
         out.append(entry)
-    return {"rows": out, "total": len(rows["order"]), "reasons": rows["reasons"]}
+    ap = rows["ap"]
+    change = (
+        ap["candidate"] - ap["reference"]
+        if ap.get("reference") is not None and ap["candidate"] is not None
+        else None
+    )
+    return {
+        "rows": out,
+        "total": len(rows["order"]),
+        "reasons": rows["reasons"],
+        "ap": ap,  # the listed images' AP of the chosen metric, each version (the base)
+        "change": change,
+    }
 
 
 def threshold_words(pair):

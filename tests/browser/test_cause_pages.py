@@ -36,6 +36,10 @@ def test_from_the_failing_rule_to_the_boxes(page, live_server, story):
         for t in page.locator("#image-rows tbody td:nth-child(3)").all_inner_texts()
     ]
     assert deltas == sorted(deltas) and deltas[0] < 0  # the largest loss first
+    # Above the list: both versions' AP of the rule's class and the kind of error that
+    # grew most for it (what the Done-when asks to see).
+    assert page.locator("#list-kinds tr.grew th").inner_text().startswith("missed")
+    assert "1.4" in page.locator("#list-ap").inner_text()
     shot(page, "cause-image-list-1280")
     page.set_viewport_size({"width": 390, "height": 844})
     shot(page, "cause-image-list-390")
@@ -59,6 +63,8 @@ def test_from_the_failing_rule_to_the_boxes(page, live_server, story):
     # The worst image of a pedestrian loss: 1.5 missed a box 1.4 found, listed in words.
     assert drawn["lost"] >= 1 and drawn["counts"]["candidate"]["lost"] == drawn["lost"]
     assert page.locator("#lost-rows tr").count() >= 1
+    lost = page.locator("#lost-rows tr").first.locator("td").all_inner_texts()
+    assert lost[0].isdigit() and lost[3].startswith("missed") and lost[4].startswith("found")
     # Filtered to pedestrians, only pedestrians are drawn; the toggles and the slider
     # redraw.
     shown = page.evaluate(

@@ -440,3 +440,70 @@ def test_a_changed_leave_one_out_file_is_signalled_and_the_records_decide(
     assert [e.subject for e in events] == [f"leave-one-out:{row.pk}"]
     after = image_list.image_rows(pair, listing)["contribution"]
     assert np.array_equal(before, after, equal_nan=True)
+
+
+def test_the_list_names_the_rules_numbers_and_the_kind_of_error_that_grew(client, users, story):
+    """Opened from the failing rule, the list states both versions' AP of the rule's
+    class on its tag's images — the engine's ``headline`` of each stored records file
+    with the tag's images weighted 1 (the rule's own computation) — their change, and
+    the class's kinds of error with the one that grew most (``tide.error_breakdown``
+    of each records file): missed pedestrians. Links go to both records downloads."""
+    from evaluation import engine
+    from evaluation.engine import tide
+
+    client.force_login(users["engineer"])
+    version, split = story["1.5"], story["split"]
+    url = f"/versions/{version.pk}/images/?split={split.pk}&class=pedestrian&tag=night&against={story['1.4'].pk}"
+    response = client.get(url)
+    table, kinds = response.context["table"], response.context["kinds"]
+    pair = cause.pair_for(users["engineer"], version.pk, split.pk)
+    k = pair.truth.classes.index("pedestrian")
+    mask = pair.truth.tag_mask("night")
+    expected = {
+        name: engine.headline(side.records, "coco", weights=mask)[1][k]
+        for name, side in (("candidate", pair.candidate), ("reference", pair.reference))
+    }
+    assert table["ap"] == pytest.approx(expected, abs=1e-12)
+    assert table["change"] == pytest.approx(expected["candidate"] - expected["reference"])
+    mine = tide.error_breakdown(pair.candidate.records, engine.get_protocol("coco"))
+    theirs = tide.error_breakdown(pair.reference.records, engine.get_protocol("coco"))
+    for row in kinds["rows"]:
+        ours = mine["per_class"]["pedestrian"]["delta"][row["type"]]
+        other = theirs["per_class"]["pedestrian"]["delta"][row["type"]]
+        assert row["candidate"] == ours and row["change"] == pytest.approx(ours - other)
+    assert kinds["grew"] == "missed"
+    html = response.content.decode()
+    assert 'id="list-kinds"' in html and "grew most against 1.4: <strong>missed</strong>" in html
+    for side in (pair.candidate, pair.reference):
+        assert reverse("records-download", args=[side.evaluation.pk, "csv"]) in html
+
+
+def test_the_drilldowns_boxes_carry_the_downloads_box_ids(client, users, story):
+    """Each drawn box names its annotation id, the ``box_id`` of its row in the records
+    download, where the outcome and the matching detection's score are the page's."""
+    import csv
+    import io
+
+    client.force_login(users["engineer"])
+    pair = cause.pair_for(users["engineer"], story["1.5"].pk, story["split"].pk)
+    image = int(pair.candidate.records.gt_image[0])
+    drill = cause.image_drilldown(pair, image)
+    body = b"".join(
+        client.get(
+            reverse("records-download", args=[pair.candidate.evaluation.pk, "csv"])
+        ).streaming_content
+    ).decode()
+    rows = list(csv.DictReader(io.StringIO(body)))
+    image_id = str(pair.truth.image_ids[image])
+    boxes = {r["box_id"]: r for r in rows if r["row"] == "box" and r["image_id"] == image_id}
+    scores = {r["detection"]: float(r["score"]) for r in rows if r["row"] == "detection"}
+    assert sorted(boxes) == sorted(b["id"] for b in drill["truth"])
+    for box in drill["truth"]:
+        row = boxes[box["id"]]
+        assert row["reason"] == box["reason"]["candidate"]
+        near = box["near"]["candidate"]
+        assert (near is None) == (row["detection"] == "")
+        if near is not None:
+            assert near["score"] == pytest.approx(scores[row["detection"]], abs=1e-4)
+        if row["outcome"] == "matched":
+            assert box["found"]["candidate"] == pytest.approx(scores[row["detection"]], abs=1e-4)

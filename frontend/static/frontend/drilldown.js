@@ -114,6 +114,26 @@
     }
   }
 
+  // A box's state in words, with the score of the detection that matched it (the
+  // records' box row names that detection; its own row has the score).
+  const MISSED_WHY = {
+    missed_localisation: "nearest detection of its class off",
+    missed_class: "a detection of another class on it",
+  };
+
+  function stateWords(box, side, state) {
+    const score = box.found[side];
+    if (score !== null && score !== undefined) {
+      if (state === "found") return "found (score " + score.toFixed(2) + ")";
+      return state + " (matched at score " + score.toFixed(2) + ", under the threshold)";
+    }
+    const near = box.near && box.near[side];
+    const why = MISSED_WHY[box.reason && box.reason[side]];
+    if (state !== "missed" || !why || !near) return state;
+    return state + " (" + why + ": IoU " + (near.iou === null ? "—" : near.iou.toFixed(2)) +
+      ", score " + near.score.toFixed(2) + ")";
+  }
+
   function lostRows() {
     const body = document.getElementById("lost-rows");
     if (!body) return;
@@ -126,7 +146,11 @@
       if (c === r) continue;
       n += 1;
       const tr = document.createElement("tr");
-      for (const text of [data.classes[box.class], box.box.map((v) => v.toFixed(0)).join(", "), c, r]) {
+      const cells = [
+        box.id, data.classes[box.class], box.box.map((v) => v.toFixed(0)).join(", "),
+        stateWords(box, "candidate", c), stateWords(box, "reference", r),
+      ];
+      for (const text of cells) {
         const td = document.createElement("td");
         td.textContent = text;
         tr.appendChild(td);
