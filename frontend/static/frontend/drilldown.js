@@ -150,9 +150,11 @@
         box.id, data.classes[box.class], box.box.map((v) => v.toFixed(0)).join(", "),
         stateWords(box, "candidate", c), stateWords(box, "reference", r),
       ];
-      for (const text of cells) {
+      const labels = [null, null, null, data.candidate.label, data.reference.label];
+      for (const [i, text] of cells.entries()) {
         const td = document.createElement("td");
         td.textContent = text;
+        if (labels[i]) td.dataset.label = labels[i];  // named at phone width (CSS)
         tr.appendChild(td);
       }
       body.appendChild(tr);
