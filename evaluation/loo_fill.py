@@ -55,8 +55,8 @@ def wanting(evaluation_ids=None):
 @dataclass
 class Filled:
     """What ``fill`` did: ``stored`` (a new row), ``present`` (nothing to do) or
-    ``skipped`` (nothing to fill: a level protocol or no records); the row, seconds
-    of CPU spent."""
+    ``skipped`` (nothing to fill: a level protocol, no records, or a file over the
+    budget ``BENCHBOOK_LOO_MAX_BYTES``); the row, seconds of CPU spent."""
 
     scorecard: Scorecard
     status: str
@@ -80,6 +80,13 @@ def fill(scorecard_id):
     with tempfile.TemporaryDirectory() as work:
         prepared = image_loo.prepare(card.evaluation, records, work)
         del records
+        if prepared is None:  # over BENCHBOOK_LOO_MAX_BYTES: the list computes on request
+            return Filled(
+                card,
+                "skipped",
+                cpu_seconds=time.process_time() - started,
+                reason="the file would exceed BENCHBOOK_LOO_MAX_BYTES",
+            )
         stored = None
         try:
             with transaction.atomic():

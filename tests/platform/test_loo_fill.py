@@ -153,3 +153,12 @@ def test_dry_run_and_unknown_evaluations(older):
     assert out.count("no leave-one-out file") == 2 and not ImageLeaveOneOut.objects.exists()
     out, _ = _command("--evaluation", "987654")
     assert "evaluation 987654: nothing to fill" in out
+
+
+def test_a_file_over_the_budget_is_skipped_not_stored(older, settings):
+    """Over ``BENCHBOOK_LOO_MAX_BYTES`` the worker stores no file (``image_loo.fits``);
+    the fill does the same and says so: nothing stored, the list keeps computing."""
+    settings.BENCHBOOK_LOO_MAX_BYTES = 1
+    out, _ = _command()
+    assert out.count("skipped the file would exceed BENCHBOOK_LOO_MAX_BYTES") == 2, out
+    assert not ImageLeaveOneOut.objects.exists()
