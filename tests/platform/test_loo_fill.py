@@ -162,3 +162,30 @@ def test_a_file_over_the_budget_is_skipped_not_stored(older, settings):
     out, _ = _command()
     assert out.count("skipped the file would exceed BENCHBOOK_LOO_MAX_BYTES") == 2, out
     assert not ImageLeaveOneOut.objects.exists()
+
+
+def test_a_fill_that_finishes_first_wins_the_other_stores_nothing(older, monkeypatch):
+    """Two fills of one scorecard (two workers, or the command beside a task): the one
+    whose transaction comes second finds the row under the scorecard's lock, stores
+    nothing and leaves no file behind. Here the second fill runs, whole, while the
+    first is between its prepare and its transaction."""
+    import os
+
+    from django.conf import settings
+
+    card = older[0]
+    real = image_loo.prepare
+    calls = []
+
+    def prepare_then_let_another_fill_finish(*args, **kwargs):
+        prepared = real(*args, **kwargs)
+        if not calls:
+            calls.append("inner")
+            assert loo_fill.fill(card.pk).status == "stored"
+        return prepared
+
+    monkeypatch.setattr(image_loo, "prepare", prepare_then_let_another_fill_finish)
+    assert loo_fill.fill(card.pk).status == "present"
+    assert ImageLeaveOneOut.objects.filter(scorecard=card).count() == 1
+    folder = os.path.join(settings.MEDIA_ROOT, "leave-one-out")
+    assert len(os.listdir(folder)) == 1
