@@ -309,6 +309,10 @@ def image_table_json(pair, listing, table):
         "filters": listing.query(),
         "thresholds": dict(zip(pair.classes, (float(t) for t in pair.thresholds))),
         "fp_reasons": [r for r, _ in table["reasons"]],
+        # The listed images' AP of the chosen class and metric, each version, and the
+        # change (candidate minus reference): the page's summary line.
+        "ap": table["ap"],
+        "change": table["change"],
         "total": table["total"],
         "images": table["rows"],
     }

@@ -465,6 +465,9 @@ def test_the_list_names_the_rules_numbers_and_the_kind_of_error_that_grew(client
     }
     assert table["ap"] == pytest.approx(expected, abs=1e-12)
     assert table["change"] == pytest.approx(expected["candidate"] - expected["reference"])
+    body = client.get(url.replace("/versions/", "/api/v1/versions/")).json()
+    assert body["ap"] == pytest.approx(expected, abs=1e-12)
+    assert body["change"] == pytest.approx(table["change"])
     mine = tide.error_breakdown(pair.candidate.records, engine.get_protocol("coco"))
     theirs = tide.error_breakdown(pair.reference.records, engine.get_protocol("coco"))
     for row in kinds["rows"]:
