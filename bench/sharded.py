@@ -209,7 +209,7 @@ def run(name, workers, broker, env, shard_images, dt_path, via_upload=False):
     run_env.pop("CELERY_RESULT_BACKEND", None)
     shutil.rmtree(pathlib.Path(env["BENCHBOOK_VAR"]) / "engine-cache", ignore_errors=True)  # cold
     args = ["-m", "celery", "-A", "benchbook", "worker", "--pool=solo", "-Q", queue]
-    args += ["--without-gossip", "--without-mingle", "--without-heartbeat", "-l", "warning"]
+    args += ["--without-gossip", "--without-mingle", "--without-heartbeat", "-l", "info"]
     processes = [
         subprocess.Popen(
             [sys.executable, *args],
@@ -238,6 +238,10 @@ def run(name, workers, broker, env, shard_images, dt_path, via_upload=False):
             p.wait(30)
     result = json.loads(out.stdout.strip().splitlines()[-1])
     result["peaks"], result["cpu"] = peaks, watch.cpu
+    for k in range(workers):  # each step's time, CPU and the worker's peak so far
+        with open(env["BENCHBOOK_VAR"] + f"/{name}-{k}.log") as f:
+            steps = [line.split("evaluation ", 1)[1].strip() for line in f if "peak RSS" in line]
+        print(f"  {name} worker {k}: " + "\n  ".join(steps), flush=True)
     return result
 
 

@@ -25,7 +25,6 @@ import contextlib
 import logging
 import os
 import tempfile
-import time
 
 from django.db import transaction
 
@@ -115,7 +114,7 @@ def run_group(evaluation_id, claim, index):
     if evaluation is None:
         return
     with ending(evaluation), jobs.Lease(evaluation):
-        began = time.monotonic()
+        step = jobs.Step(evaluation.pk, f"class group {index}")
         row = EvaluationClassGroup.objects.get(evaluation=evaluation, index=index)
         shard_rows = list(EvaluationShard.objects.filter(evaluation=evaluation).order_by("index"))
         if any(not r.records for r in shard_rows):
@@ -123,13 +122,13 @@ def run_group(evaluation_id, claim, index):
                 "evaluation %s: shard records missing; group %s waits", evaluation.pk, index
             )
             return
+        truth = load_truth_of(evaluation.split, evaluation.box_policy)  # before the records
+        tag_masks = {tag: truth.tag_mask(tag) for tag in truth.tags()}
+        del truth
         read = [_shard_group(r, index) for r in shard_rows]
         meta = read[0][1]
         group = cg.merge_group([part for part, _ in read], meta, row.class_start, row.class_stop)
         del read
-        truth = load_truth_of(evaluation.split, evaluation.box_policy)
-        tag_masks = {tag: truth.tag_mask(tag) for tag in truth.tags()}
-        del truth
         protocol = _protocol(evaluation)
         parts = cg.group_parts(group, protocol, tag_masks=tag_masks)
         # the group's rows of the per-image list's leave-one-out file (joined at the end)
@@ -140,9 +139,10 @@ def run_group(evaluation_id, claim, index):
             detections = group.records.n_detections
             del group, parts, loo
             jobs.with_retry(
-                lambda: _store_group(evaluation, index, path, detections, time.monotonic() - began),
+                lambda: _store_group(evaluation, index, path, detections, step.seconds),
                 f"storing class group {index} of evaluation {evaluation.pk}",
             )
+        step.done()
 
 
 def _store_group(evaluation, index, path, detections, seconds):
@@ -168,7 +168,7 @@ def run_finish(evaluation_id, claim):
         if missing or not groups:
             log.warning("evaluation %s: groups %s have no records yet", evaluation.pk, missing)
             return
-        began = time.monotonic()
+        step = jobs.Step(evaluation.pk, f"{len(groups)} class groups assembled and stored")
         first_shard = evaluation.shards.order_by("index").first()
         counts = shards.PredictionCounts(**first_shard.predictions_counts)
         protocol = _protocol(evaluation)
@@ -188,12 +188,6 @@ def run_finish(evaluation_id, claim):
             cg.write_records(records_path, paths, truth.n_boxes)
             del truth
             loo = image_loo.join(evaluation, paths, work)
-            log.info(
-                "evaluation %s: %d class groups assembled in %.2f s",
-                evaluation.pk,
-                len(groups),
-                time.monotonic() - began,
-            )
             _store(
                 evaluation,
                 result,
@@ -204,5 +198,6 @@ def run_finish(evaluation_id, claim):
                 loo=loo,
             )
         stored = True
+        step.done()
     if stored:
         discard_files(evaluation)

@@ -11,6 +11,7 @@ the state in the same locked transaction, so it never touches a finished evaluat
 
 import datetime
 import logging
+import resource
 import threading
 import time
 import uuid
@@ -243,3 +244,27 @@ def requeue_stalled():
     if lost:
         log.warning("evaluations %s: their worker stopped renewing its lease; requeued", lost)
     return lost + again
+
+
+class Step:
+    """Times one step of a worker (wall and CPU seconds) and logs them with the
+    process's peak RSS so far (INFO; ``bench/sharded.py`` prints these lines)."""
+
+    def __init__(self, evaluation_id, what):
+        self.evaluation_id, self.what = evaluation_id, what
+        self.began, self.began_cpu = time.monotonic(), time.process_time()
+
+    @property
+    def seconds(self):
+        return time.monotonic() - self.began
+
+    def done(self):
+        peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024  # KiB on Linux
+        log.info(
+            "evaluation %s: %s in %.2f s, %.2f s CPU; worker peak RSS %.0f MB",
+            self.evaluation_id,
+            self.what,
+            self.seconds,
+            time.process_time() - self.began_cpu,
+            peak,
+        )

@@ -35,9 +35,11 @@ def run_evaluation(evaluation_id, claim=None):
     if evaluation is None:
         return Evaluation.objects.get(pk=evaluation_id)
     with ending(evaluation), jobs.Lease(evaluation):
+        step = jobs.Step(evaluation.pk, "claimed run")
         scored = _score(evaluation)
         if scored is not None:  # None: split into image shards, whose merge stores it
             _store(evaluation, *scored)
+        step.done()
     return evaluation
 
 

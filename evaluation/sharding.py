@@ -22,7 +22,6 @@ import datetime
 import logging
 import os
 import tempfile
-import time
 
 import numpy as np
 from django.conf import settings
@@ -257,7 +256,7 @@ def run_shard(evaluation_id, claim, index):
     if evaluation is None:
         return
     with ending(evaluation), jobs.Lease(evaluation):
-        began = time.monotonic()
+        step = jobs.Step(evaluation.pk, f"shard {index}")
         row = EvaluationShard.objects.get(evaluation=evaluation, index=index)
         with verified_path(
             row.piece, row.piece_sha256, f"shard:{row.pk}", "shard piece", row.piece.name
@@ -275,9 +274,10 @@ def run_shard(evaluation_id, claim, index):
             del records
             digests["plan"] = [list(group) for group in plan]
             jobs.with_retry(
-                lambda: _store_shard(evaluation, index, path, digests, time.monotonic() - began),
+                lambda: _store_shard(evaluation, index, path, digests, step.seconds),
                 f"storing shard {index} of evaluation {evaluation.pk}",
             )
+        step.done()
 
 
 def _protocol(evaluation):

@@ -290,7 +290,10 @@ def totals(group_paths):
 def write_records(path, group_paths, n_boxes):
     """The evaluation's records file from its groups (class order), as
     ``MatchRecords.save`` writes it — every field, loadable by ``MatchRecords.load`` —
-    streamed one group's column at a time into the compressed ``.npz`` member.
+    streamed one group's column at a time into its uncompressed ``.npz`` member (as
+    ``MatchRecords.save`` writes since records are stored uncompressed: the cause pages
+    read and hash-check them, and inflating was most of that time; deflating a
+    10,000,000-detection file was most of this final step, on one worker).
 
     Detections: the groups' runs one after the other (accumulation order is class
     first). Match rows: the groups' rows, detection indices shifted by the group's
@@ -309,7 +312,7 @@ def write_records(path, group_paths, n_boxes):
         covered = np.bincount(np.concatenate(boxes), minlength=n_boxes) if boxes else []
         if n_boxes and (len(covered) != n_boxes or (covered != 1).any()):
             raise ValueError("the class groups do not cover every box exactly once")
-        with zipfile.ZipFile(path, "w", zipfile.ZIP_DEFLATED, compresslevel=1) as z:
+        with zipfile.ZipFile(path, "w", zipfile.ZIP_STORED) as z:
 
             def column(name, dtype, shape, chunks):
                 with z.open(f"{name}.npy", "w", force_zip64=True) as f:

@@ -112,6 +112,8 @@ def test_class_groups_give_the_whole_run(loaded, protocol, images_per_shard, n_g
         truth, predictions, protocol, images_per_shard, n_groups, tmp_path
     )
     _same_records(whole, merged)
+    with zipfile.ZipFile(tmp_path / "records.npz") as z:  # uncompressed, as MatchRecords.save
+        assert {i.compress_type for i in z.infolist()} == {zipfile.ZIP_STORED}
     # json.dumps writes every float with repr: equal text is equal bits (key order too)
     assert json.dumps(result) == json.dumps(expected)
     assert json.dumps(breakdown) == json.dumps(error_breakdown(whole, protocol))
