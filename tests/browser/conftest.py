@@ -74,6 +74,6 @@ def shot(page, name):
     width = page.viewport_size["width"]
     page.screenshot(
         path=str(ARTIFACTS / f"{name}.png"),
-        full_page=height <= 6000,
+        full_page=True,  # a clip without it stops at the viewport's bottom
         clip=None if height <= 6000 else {"x": 0, "y": 0, "width": width, "height": 6000},
     )
