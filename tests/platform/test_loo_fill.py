@@ -189,3 +189,20 @@ def test_a_fill_that_finishes_first_wins_the_other_stores_nothing(older, monkeyp
     assert ImageLeaveOneOut.objects.filter(scorecard=card).count() == 1
     folder = os.path.join(settings.MEDIA_ROOT, "leave-one-out")
     assert len(os.listdir(folder)) == 1
+
+
+def test_a_missing_records_file_is_named_and_nothing_is_stored(older):
+    """A records file gone from the storage: the command names the evaluation and the
+    file, stores nothing for it, fills the other and exits with an error."""
+    import os
+
+    gone = older[0]
+    os.remove(gone.records.path)
+    out = io.StringIO()
+    err = io.StringIO()
+    with pytest.raises(CommandError, match="changed or is missing"):
+        call_command("fill_leave_one_out", stdout=out, stderr=err)
+    assert f"evaluation {gone.evaluation_id} " in err.getvalue()
+    assert gone.records.name in err.getvalue() and "could not be read" in err.getvalue()
+    assert not ImageLeaveOneOut.objects.filter(scorecard=gone).exists()
+    assert ImageLeaveOneOut.objects.filter(scorecard=older[1]).exists()

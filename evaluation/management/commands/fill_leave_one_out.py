@@ -54,6 +54,13 @@ class Command(BaseCommand):
                 failed += 1
                 self.stderr.write(f"{name}: not filled, {e}")
                 continue
+            except OSError as e:  # the records (or split) file is gone from the storage
+                failed += 1
+                self.stderr.write(
+                    f"{name}: not filled, its records file {card.records.name} could not be "
+                    f"read ({e.strerror or e})"
+                )
+                continue
             if done.status == "stored":
                 self.stdout.write(
                     f"{name}: stored {len(done.row.members)} members "
@@ -65,4 +72,6 @@ class Command(BaseCommand):
         verb = "to fill" if dry_run else "queued" if queue else "processed"
         self.stdout.write(f"{len(cards)} {verb}, {failed} failed")
         if failed:
-            raise CommandError(f"{failed} scorecard(s) not filled: their records file changed")
+            raise CommandError(
+                f"{failed} scorecard(s) not filled: their records file changed or is missing"
+            )
