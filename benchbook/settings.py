@@ -172,7 +172,7 @@ BENCHBOOK_CLASS_GROUPS = int(os.environ.get("BENCHBOOK_CLASS_GROUPS", 8))
 # The per-image list's leave-one-out file (evaluation/image_loo.py) is computed and
 # stored with a result only up to this size (keys x classes x (1 + images) x 8 bytes);
 # over it the list computes on request.
-BENCHBOOK_LOO_MAX_BYTES = int(os.environ.get("BENCHBOOK_LOO_MAX_BYTES", 512 * 1024 * 1024))
+BENCHBOOK_LOO_MAX_BYTES = int(os.environ.get("BENCHBOOK_LOO_MAX_BYTES", 256 * 1024 * 1024))
 BENCHBOOK_PROTOCOLS = ("coco", "voc", "recall40")
 # Paired bootstrap behind "no significant drop" rules: replicates and seed (reproducible).
 BENCHBOOK_BOOTSTRAP_RESAMPLES = int(os.environ.get("BENCHBOOK_BOOTSTRAP_RESAMPLES", 1000))

@@ -99,3 +99,26 @@ def test_a_row_of_another_engine_version_is_not_read(
     assert image_loo.row_of(card) is None
     monkeypatch.setattr(image_loo, "_MEMBERS", None)
     assert image_loo.stored(card, "AP", "all", "") is None
+
+
+@pytest.mark.parametrize("protocol", ["coco", "voc", "voc07", "recall40"])
+def test_the_default_budget_keeps_5000_images_and_refuses_100000(protocol):
+    """``BENCHBOOK_LOO_MAX_BYTES`` as shipped: at 80 classes a 5,000-image split with
+    two tags gets its file under every preset, a 100,000-image split without tags does
+    not (its file would be 512-768 MB, and its computing time grows with it). The
+    keys are the file's own (``keys_of``: the preset's metrics x size buckets x tag
+    slices)."""
+    from types import SimpleNamespace
+
+    from evaluation import engine
+
+    preset = engine.get_protocol(protocol)
+    classes = [f"class_{k}" for k in range(80)]
+    records = SimpleNamespace(
+        thresholds=preset.threshold_table(classes),
+        area_names=tuple(name for name, *_ in preset.area_ranges),
+    )
+    small = len(image_loo.keys_of(records, ["night", "rain"]))
+    large = len(image_loo.keys_of(records, []))
+    assert image_loo.fits(small, 80, 5000)
+    assert not image_loo.fits(large, 80, 100_000)
