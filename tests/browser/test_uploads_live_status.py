@@ -4,6 +4,8 @@ loads the numbers by itself."""
 
 import uuid
 
+from playwright.sync_api import expect
+
 from evaluation import services as evaluation_services
 from evaluation import tasks
 from evaluation.models import Evaluation, Scorecard
@@ -44,9 +46,10 @@ def test_a_failure_shows_at_once_and_the_numbers_load_when_scoring_ends(
 
     _score(bad)
     alert = page.locator("[role=alert]", has_text="image 999999 is not in the split")
-    alert.first.wait_for(timeout=15_000)
-    assert alert.count() == 2  # one per protocol, while the others still wait
-    assert page.locator("progress[data-poll]").count() == 2
+    # one per protocol (each row polls on its own, so the second may show a poll later),
+    # while the others still wait
+    expect(alert).to_have_count(2, timeout=15_000)
+    expect(page.locator("progress[data-poll]")).to_have_count(2)
     assert page.locator("dl.summary").count() == 0  # not reloaded yet
     shot(page, "live-status-failed")
 
