@@ -158,6 +158,7 @@ class Predictions:
     box_policy: str = "keep"
     box_counts: dict = field(default_factory=dict)  # out of frame, outside, clipped, zero area
     extra: dict = field(default_factory=dict)
+    dropped_classes: tuple = ()  # the class keys (as text) of the ``dropped`` records
 
     @property
     def clipped(self):

@@ -61,7 +61,7 @@ def stream_pieces(path, truth, ranges, directory, *, name="piece-{k}.npz", **opt
     starts = np.array([start for start, _ in ranges], np.int64)
     spills = [os.path.join(directory, f"spill-{k}.bin") for k in range(len(ranges))]
     detections = [0] * len(ranges)
-    totals = {"n": 0, "dropped": 0, "dropped_images": 0, "box_counts": None}
+    totals = {"n": 0, "dropped": 0, "dropped_images": 0, "box_counts": None, "classes": ()}
     policy = options.get("boxes") or truth.box_policy
     for block in stream_predictions(path, truth, **options):
         rows = np.empty(len(block.score), SPILL_ROW)
@@ -77,6 +77,7 @@ def stream_pieces(path, truth, ranges, directory, *, name="piece-{k}.npz", **opt
             detections[k] += int(bounds[k + 1] - bounds[k])
         totals["n"] += len(rows)
         totals["dropped"] += block.dropped
+        totals["classes"] = detection_blocks.distinct_keys(block.dropped_classes, totals["classes"])
         totals["dropped_images"] += block.dropped_images
         totals["box_counts"] = detection_blocks.add_counts(totals["box_counts"], block.box_counts)
         del rows, shard, by_shard
@@ -91,6 +92,7 @@ def stream_pieces(path, truth, ranges, directory, *, name="piece-{k}.npz", **opt
         source=str(path),
         box_policy=policy,
         box_counts=totals["box_counts"],
+        dropped_classes=totals["classes"],
     )
     paths = []
     for k, (start, stop) in enumerate(ranges):
@@ -116,6 +118,7 @@ def stream_pieces(path, truth, ranges, directory, *, name="piece-{k}.npz", **opt
         {key: int(value) for key, value in whole.box_counts.items()},
         whole.dropped_images,
         whole.unknown_images,
+        whole.dropped_classes,
     )
     return StreamedPieces(paths, list(ranges), detections, counts)
 

@@ -112,6 +112,11 @@ def counts(truth, predictions, records):
         "clipped_predictions": predictions.clipped,
         "dropped_predictions": predictions.dropped,
         **(
+            {"dropped_classes": list(predictions.dropped_classes)}
+            if predictions.dropped
+            else {}
+        ),
+        **(
             {"dropped_unknown_images": predictions.dropped_images}
             if predictions.unknown_images == "drop"
             else {}

@@ -273,6 +273,7 @@ class PredictionCounts:
     box_counts: dict = dataclasses.field(default_factory=dict)
     dropped_images: int = 0
     unknown_images: str = "reject"
+    dropped_classes: tuple = ()
 
     @classmethod
     def of(cls, predictions):
@@ -283,6 +284,7 @@ class PredictionCounts:
             {k: int(v) for k, v in predictions.box_counts.items()},
             predictions.dropped_images,
             predictions.unknown_images,
+            tuple(predictions.dropped_classes),
         )
 
     @property

@@ -247,7 +247,7 @@ def test_unknown_classes_can_be_dropped_and_counted(files):
     truth = _truth(files)
     path = files.write("predictions.json", [DET, {**DET, "category_id": 9}])
     loaded = load_predictions(path, truth, unknown_classes="drop")
-    assert (len(loaded), loaded.dropped) == (1, 1)
+    assert (len(loaded), loaded.dropped, loaded.dropped_classes) == (1, 1, ("9",))
 
 
 def test_empty_prediction_list_is_valid(files):

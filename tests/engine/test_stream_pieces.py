@@ -181,6 +181,10 @@ def test_unknown_classes_dropped(tmp_path):
     path = _write_json(tmp_path / "dets.json", dets)
     predictions, _ = _compare(path, truth, 7, tmp_path, unknown_classes="drop")
     assert predictions.dropped > 0
+    # the dropped records' class ids, as the file gives them, equal whole and streamed
+    # (``_compare`` checks the streamed counts equal the whole load's)
+    unknown = {d["category_id"] for d in dets} - {c["id"] for c in split["categories"]}
+    assert predictions.dropped_classes == tuple(str(k) for k in sorted(unknown))
 
 
 def test_a_bad_record_late_in_the_file_is_refused_and_no_piece_written(tmp_path):

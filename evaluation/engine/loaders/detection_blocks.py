@@ -46,6 +46,22 @@ class Resolved:
     dropped: int
     dropped_images: int
     box_counts: dict
+    dropped_classes: tuple = ()  # the class keys of ``dropped``, as text (``distinct_keys``)
+
+
+def _key_order(key):
+    """Class keys in a stable, readable order: integers by value, then text."""
+    try:
+        return (0, int(key), "")
+    except ValueError:
+        return (1, 0, key)
+
+
+def distinct_keys(keys, more=()):
+    """The distinct class keys of ``keys`` and ``more``, as text, sorted (integers by
+    value): the same for a file read whole and read a block at a time."""
+    seen = {str(k.item() if hasattr(k, "item") else k) for k in keys} | set(more)
+    return tuple(sorted(seen, key=_key_order))
 
 
 def json_raw(truth, image_ids, class_keys, boxes, score, base=0):
@@ -107,7 +123,7 @@ def resolve(path, truth, raw, policy, unknown_classes, unknown_images):
     else:
         checks.require_found(path, found, raw.shown, locate, fields["image"], "image")
     cls, found = checks.resolve(path, class_keys, raw.known_classes, locate, "", "")
-    dropped = 0
+    dropped, dropped_classes = 0, ()
     if not found.all():
         if unknown_classes == "reject":
             checks.fail_at(
@@ -118,6 +134,7 @@ def resolve(path, truth, raw, policy, unknown_classes, unknown_images):
                 lambda i: f"class {checks.show(class_keys[i])} is not one of the split's classes",
             )
         dropped = int((~found).sum())
+        dropped_classes = distinct_keys(class_keys[~found])
         image, cls, boxes, score = image[found], cls[found], boxes[found], score[found]
         kept_rows = np.flatnonzero(found)
         locate_all = locate
@@ -148,6 +165,7 @@ def resolve(path, truth, raw, policy, unknown_classes, unknown_images):
         dropped=dropped,
         dropped_images=dropped_images,
         box_counts={**box_counts, "non_finite_score": int((~np.isfinite(score)).sum())},
+        dropped_classes=dropped_classes,
     )
 
 
