@@ -29,7 +29,16 @@ class ReadOnlyAdmin(admin.ModelAdmin):
 
 @admin.register(BenchmarkSplit)
 class BenchmarkSplitAdmin(ReadOnlyAdmin):
-    list_display = ["name", "revision", "image_count", "box_count", "sha256", "frozen_at"]
+    list_display = [
+        "name",
+        "revision",
+        "image_count",
+        "box_count",
+        "annotation_policy",
+        "annotations_left_out",
+        "sha256",
+        "frozen_at",
+    ]
     search_fields = ["name", "sha256"]
 
 
@@ -43,7 +52,14 @@ class PredictionFileAdmin(ReadOnlyAdmin):
 class PredictionPiecesAdmin(ReadOnlyAdmin):
     """Pieces are written by the upload check only; an edit would break their hashes."""
 
-    list_display = ["predictions", "split", "box_policy", "unknown_images", "images_per_shard"]
+    list_display = [
+        "predictions",
+        "split",
+        "box_policy",
+        "unknown_images",
+        "unknown_classes",
+        "images_per_shard",
+    ]
 
 
 @admin.register(Evaluation)
@@ -60,6 +76,7 @@ class EvaluationAdmin(admin.ModelAdmin):
         "scope",
         "file_name",
         "unknown_images",
+        "unknown_classes",
     ]
 
     def has_add_permission(self, request):

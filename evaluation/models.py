@@ -37,6 +37,19 @@ class BenchmarkSplit(models.Model):
         help_text="Boxes per difficulty level and attribute bucket, don't-care regions "
         "(evaluation.levels.split_counts), counted when frozen; None without attributes.",
     )
+    annotation_policy = models.CharField(
+        max_length=10,
+        default="reference",
+        help_text="How its annotations were read: reference (as pycocotools: a repeated id "
+        "resolves to its last annotation, annotations of unlisted images or categories left "
+        "out, counted) or strict (such files refused).",
+    )
+    annotations_left_out = models.JSONField(
+        default=dict,
+        blank=True,
+        help_text="What the reference reading left out or replaced (engine "
+        "annotation_index.COUNTS); empty when nothing was.",
+    )
     created_by = models.CharField(max_length=150, blank=True)
     created_at = models.DateTimeField(auto_now_add=True)
     frozen_at = models.DateTimeField()
@@ -122,6 +135,18 @@ class Evaluation(models.Model):
         default="",
         help_text="The file's name as its requester uploaded it (messages, format).",
     )
+
+    class UnknownClasses(models.TextChoices):
+        DROP = "drop"
+        REJECT = "reject"
+
+    unknown_classes = models.CharField(
+        max_length=8,
+        choices=UnknownClasses.choices,
+        default=UnknownClasses.DROP,
+        help_text="Detections of classes the split does not list: drop (as pycocotools, "
+        "never scored; counted and named in the result) or reject (the file is refused).",
+    )
     state = models.CharField(max_length=8, choices=State.choices, default=State.QUEUED)
     progress = models.PositiveSmallIntegerField(default=0)
     attempts = models.PositiveSmallIntegerField(default=0)
@@ -147,8 +172,9 @@ class Evaluation(models.Model):
                     "box_policy",
                     "scope",
                     "unknown_images",
+                    "unknown_classes",
                 ],
-                name="one_evaluation_per_input_policy_and_scope",
+                name="one_evaluation_per_input_policies_and_scope",
             )
         ]
         indexes = [models.Index(fields=["state", "queued_at"])]
@@ -412,6 +438,7 @@ class PredictionPieces(models.Model):
     split = models.ForeignKey(BenchmarkSplit, on_delete=models.CASCADE, related_name="+")
     box_policy = models.CharField(max_length=8)
     unknown_images = models.CharField(max_length=8)
+    unknown_classes = models.CharField(max_length=8, default="drop")
     images_per_shard = models.PositiveIntegerField()
     counts = models.JSONField(help_text="Counts of the whole predictions file.")
     created_at = models.DateTimeField(auto_now_add=True)
@@ -419,8 +446,15 @@ class PredictionPieces(models.Model):
     class Meta:
         constraints = [
             models.UniqueConstraint(
-                fields=["predictions", "split", "box_policy", "unknown_images", "images_per_shard"],
-                name="one_piece_set_per_input",
+                fields=[
+                    "predictions",
+                    "split",
+                    "box_policy",
+                    "unknown_images",
+                    "unknown_classes",
+                    "images_per_shard",
+                ],
+                name="one_piece_set_per_input_and_policies",
             )
         ]
 

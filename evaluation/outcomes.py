@@ -96,6 +96,7 @@ def _prediction_boxes(evaluation, truth):
             prediction_file.original_name,
             evaluation.box_policy,
             unknown_images=evaluation.unknown_images,
+            unknown_classes=evaluation.unknown_classes,
         ).boxes
 
 

@@ -6,7 +6,7 @@ split of more than ``BENCHBOOK_SHARD_IMAGES`` images is streamed at upload
 is its validation (a refused file leaves nothing), and its pieces — one per shard of
 images, truth slice and detections as columns — are stored with the file, in the same
 transaction, as a ``PredictionPieces`` set keyed by file, split, box policy, image
-policy and shard size. A sharded evaluation of that file (``sharding.from_pieces``)
+and class policies and shard size. A sharded evaluation of that file (``sharding.from_pieces``)
 uses them, so no worker reads the file whole; a file stored before, under another
 shard size or with a piece gone, is streamed the same way by the claiming worker.
 """
@@ -86,12 +86,21 @@ class Kept:
         self.names = []
 
 
-def keep(streamed, prediction_file, split, *, box_policy, unknown_images, kept=None):
+def keep(
+    streamed,
+    prediction_file,
+    split,
+    *,
+    box_policy,
+    unknown_images,
+    unknown_classes,
+    kept=None,
+):
     """Store ``streamed`` as the ``PredictionPieces`` of this file on ``split`` (or
     return the set already stored under the same key). The files, then the rows in one
     savepoint; a file of rows that did not commit is deleted, here or by the caller
     (``kept.discard``) when its own transaction rolls back."""
-    key = _key(prediction_file, split, box_policy, unknown_images)
+    key = _key(prediction_file, split, box_policy, unknown_images, unknown_classes)
     existing = PredictionPieces.objects.filter(**key).first()
     if existing is not None:
         return existing
@@ -128,12 +137,14 @@ def keep(streamed, prediction_file, split, *, box_policy, unknown_images, kept=N
     return pieces
 
 
-def stored(prediction_file, split, *, box_policy, unknown_images):
+def stored(prediction_file, split, *, box_policy, unknown_images, unknown_classes):
     """The complete ``PredictionPieces`` of this input under the current shard size, or
     None. A set with a piece missing from the storage (or a row) is deleted, so the
     caller streams the file again."""
     pieces = (
-        PredictionPieces.objects.filter(**_key(prediction_file, split, box_policy, unknown_images))
+        PredictionPieces.objects.filter(
+            **_key(prediction_file, split, box_policy, unknown_images, unknown_classes)
+        )
         .prefetch_related("pieces")
         .first()
     )
@@ -164,11 +175,12 @@ def is_shared_piece(name):
     return PredictionPiece.objects.filter(file=name).exists()
 
 
-def _key(prediction_file, split, box_policy, unknown_images):
+def _key(prediction_file, split, box_policy, unknown_images, unknown_classes):
     return {
         "predictions": prediction_file,
         "split": split,
         "box_policy": box_policy,
         "unknown_images": unknown_images,
+        "unknown_classes": unknown_classes,
         "images_per_shard": settings.BENCHBOOK_SHARD_IMAGES,
     }

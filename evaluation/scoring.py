@@ -89,6 +89,7 @@ def _score(evaluation):
             evaluation.name,
             evaluation.box_policy,
             unknown_images=evaluation.unknown_images,
+            unknown_classes=evaluation.unknown_classes,
         )
     jobs.progress(evaluation, 50)
     if isinstance(protocol, levels.LevelProtocol):  # per level × class (evaluation/levels.py)

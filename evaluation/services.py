@@ -33,11 +33,43 @@ log = logging.getLogger(__name__)
 #: loads here, so a split or predictions file holding one is refused at upload (400)
 #: or, past the inline-validation size, fails its evaluation, naming file/record/field.
 ENGINE_IDS = "int64"
-#: The platform refuses what the engine's CLI scores as pycocotools does: ground truth
-#: with a repeated annotation id or annotations of unlisted images/categories
-#: (``annotations="strict"``), detections of classes the split does not list.
-ENGINE_ANNOTATIONS = "strict"
-ENGINE_UNKNOWN_CLASSES = "reject"
+#: How a split's annotations are read (``engine.load_truth(annotations=)``): the
+#: default is pycocotools' reading, counted; ``strict`` refuses such files.
+ANNOTATION_POLICIES = ("reference", "strict")
+#: Detections of classes the split does not list (``engine.load_predictions
+#: (unknown_classes=)``): the default drops them as pycocotools does, counted and named
+#: in the result; ``reject`` refuses the file.
+UNKNOWN_CLASS_POLICIES = ("drop", "reject")
+
+
+def input_policy(*, annotations=None, unknown_classes=None):
+    """The one decision of how the platform reads what a reference implementation
+    accepts: the engine options for a split load (``annotations``) or a predictions
+    load (``unknown_classes``). None (not given) is the reference behaviour — the
+    annotations pycocotools 2.0.11 scores (``COCOeval._prepare`` walks ``getImgIds()``
+    and ``getCatIds()`` only; a repeated id resolves to its last annotation in
+    ``COCO.createIndex``) and detections of unlisted classes kept out, as ``evaluate``
+    never looks at them; the stricter policy is the user's pick. Every entry point
+    (page, API, client, commands, worker, re-score, pieces) reaches the engine through
+    this; an unknown value is an ``UploadError`` naming the setting. Returns
+    ``{"annotations": ..., "unknown_classes": ...}``. Detections of
+    images the split lacks stay refused on upload (``loadRes`` asserts "Results do not
+    correspond to current coco set"): that is ``unknown_images``, not decided here.
+    """
+    policy = {
+        "annotations": annotations or "reference",
+        "unknown_classes": unknown_classes or "drop",
+    }
+    for setting, allowed in (
+        ("annotations", ANNOTATION_POLICIES),
+        ("unknown_classes", UNKNOWN_CLASS_POLICIES),
+    ):
+        if policy[setting] not in allowed:
+            raise UploadError(
+                f"{setting}: unknown policy {policy[setting]!r}; use {' or '.join(allowed)}",
+                path=setting,
+            )
+    return policy
 
 
 class UploadError(ValueError):
@@ -99,14 +131,21 @@ def _format_of(name, path=None):
 # Splits ---------------------------------------------------------------------------
 
 
-def load_split(*, name, revision, truth, images=None, description="", created_by=""):
+def load_split(
+    *, name, revision, truth, images=None, description="", created_by="", annotations=None
+):
     """Validate, hash and freeze a benchmark split from uploaded or opened files.
 
     ``truth``: COCO-style JSON, a boxes CSV (then ``images`` is the images table), or
     a zip of KITTI, YOLO or VOC XML label files (``images`` optional).
+    ``annotations`` (``input_policy``): ``reference`` (default) reads a COCO-style file
+    as pycocotools does — annotations of unlisted images or categories left out, a
+    repeated annotation id resolved to its last annotation — and records what it left
+    out (``annotations_left_out``, shown with the split); ``strict`` refuses such files.
     Raises ``engine.InputError`` for bad content and ``UploadError`` for a refused
     request; in both cases nothing is stored.
     """
+    policy = input_policy(annotations=annotations)["annotations"]
     if BenchmarkSplit.objects.filter(name=name, revision=revision).exists():
         raise UploadError(
             f"{name} rev {revision} already exists and is frozen; "
@@ -129,7 +168,7 @@ def load_split(*, name, revision, truth, images=None, description="", created_by
                 images=images_path,
                 fmt=source_format,
                 ids=ENGINE_IDS,
-                annotations=ENGINE_ANNOTATIONS,
+                annotations=policy,
             )
         except engine.InputError as e:
             e.argument = "images" if images_path and str(e.path) == images_path else "truth"
@@ -163,6 +202,12 @@ def load_split(*, name, revision, truth, images=None, description="", created_by
             sha256=sha,
             source_format=source_format,
             road_counts=levels.split_counts(loaded),
+            annotation_policy=policy,
+            annotations_left_out={
+                key: int(loaded.box_counts.get(key, 0))
+                for key in engine.ANNOTATION_COUNTS
+                if loaded.box_counts.get(key, 0)
+            },
             created_by=created_by,
             frozen_at=timezone.now(),
         )
@@ -220,6 +265,8 @@ def road_counts_of(split):
 
 
 def _read_truth(split, boxes):
+    """The stored split read under the annotation policy it was frozen with."""
+    annotations = input_policy(annotations=split.annotation_policy)["annotations"]
     with local_path(split.truth_file) as truth_path:
         if split.images_file:
             with local_path(split.images_file) as images_path:
@@ -229,14 +276,14 @@ def _read_truth(split, boxes):
                     cache_dir=_cache_dir(),
                     boxes=boxes,
                     ids=ENGINE_IDS,
-                    annotations=ENGINE_ANNOTATIONS,
+                    annotations=annotations,
                 )
         return engine.load_truth(
             truth_path,
             cache_dir=_cache_dir(),
             boxes=boxes,
             ids=ENGINE_IDS,
-            annotations=ENGINE_ANNOTATIONS,
+            annotations=annotations,
         )
 
 
@@ -262,7 +309,7 @@ class Received:
         self.path, self.sha256, self.size = path, sha256, size
         self.name = os.path.basename(path)
         self._stored = None
-        self.pieces = None  # (streamed pieces, split, box policy) of a streamed check
+        self.pieces = None  # (streamed pieces, split, policies) of a streamed check
         self._kept = pieces.Kept()
 
     def store(self):
@@ -270,14 +317,14 @@ class Received:
         its file stored) and its pieces. Call it inside the caller's transaction."""
         prediction_file = self._file()
         if self.pieces is not None:
-            streamed, split, box_policy = self.pieces
+            streamed, split, policies = self.pieces
             pieces.keep(
                 streamed,
                 prediction_file,
                 split,
-                box_policy=box_policy,
                 unknown_images="reject",
                 kept=self._kept,
+                **policies,
             )
         return prediction_file
 
@@ -309,11 +356,13 @@ class Received:
 
 
 @contextlib.contextmanager
-def received_predictions(uploaded, split, *, boxes="keep"):
+def received_predictions(uploaded, split, *, boxes="keep", unknown_classes=None):
     """Receive a predictions upload for ``split``: spool it (hashed, block by block),
     refuse an empty file or one over ``BENCHBOOK_MAX_UPLOAD_BYTES`` (``UploadError``),
     and check it against the split as the worker will read it, under the box policy
-    ``boxes`` (``engine.InputError`` naming file, record and field): a file of at most
+    ``boxes`` and the class policy ``unknown_classes`` (``input_policy``; detections of
+    unlisted classes dropped by default) (``engine.InputError`` naming file, record and
+    field): a file of at most
     ``BENCHBOOK_INLINE_VALIDATION_BYTES`` is loaded with the engine; a larger JSON or
     CSV file for a split of several shards is streamed into per-shard pieces
     (``pieces``), stored with it by ``store()``. Other files are checked by the worker.
@@ -321,6 +370,7 @@ def received_predictions(uploaded, split, *, boxes="keep"):
     Yields a ``Received``; if the block raises, the files it stored are deleted again,
     so a refused upload leaves nothing behind.
     """
+    unknown_classes = input_policy(unknown_classes=unknown_classes)["unknown_classes"]
     with tempfile.TemporaryDirectory() as work:
         try:
             path, sha, size = spool(uploaded, _limit(), work)
@@ -332,7 +382,13 @@ def received_predictions(uploaded, split, *, boxes="keep"):
         fmt = None if engine.is_collection(path) else _format_of(received.name)
         try:
             if size <= settings.BENCHBOOK_INLINE_VALIDATION_BYTES:
-                _load_predictions(path, load_truth_of(split, boxes), received.name, boxes)
+                _load_predictions(
+                    path,
+                    load_truth_of(split, boxes),
+                    received.name,
+                    boxes,
+                    unknown_classes=unknown_classes,
+                )
             elif pieces.worth_streaming(split, size, fmt):
                 piece_dir = os.path.join(work, "pieces")
                 os.mkdir(piece_dir)
@@ -344,10 +400,14 @@ def received_predictions(uploaded, split, *, boxes="keep"):
                     fmt=fmt,
                     boxes=boxes,
                     unknown_images="reject",
-                    unknown_classes=ENGINE_UNKNOWN_CLASSES,
+                    unknown_classes=unknown_classes,
                     ids=ENGINE_IDS,
                 )
-                received.pieces = (streamed, split, boxes)
+                received.pieces = (
+                    streamed,
+                    split,
+                    {"box_policy": boxes, "unknown_classes": unknown_classes},
+                )
         except engine.InputError as e:
             e.argument = "predictions"  # the request field, for API error bodies
             raise
@@ -375,12 +435,16 @@ def store_predictions(uploaded):
         return received.store()
 
 
-def _load_predictions(path, truth, name, boxes="keep", *, unknown_images="reject"):
+def _load_predictions(
+    path, truth, name, boxes="keep", *, unknown_images="reject", unknown_classes=None
+):
     """The engine's predictions of the file at ``path``, uploaded as ``name`` (the
-    format follows the name) under the box policy ``boxes``; errors name the file as
-    uploaded. ``unknown_images="drop"`` only for a re-scored file (``Evaluation``)."""
+    format follows the name) under the box policy ``boxes`` and the class policy
+    ``unknown_classes`` (``input_policy``); errors name the file as uploaded.
+    ``unknown_images="drop"`` only for a re-scored file (``Evaluation``)."""
+    unknown_classes = input_policy(unknown_classes=unknown_classes)["unknown_classes"]
     with _under_name(path, name) as path:
-        return _load_named(path, truth, name, boxes, unknown_images)
+        return _load_named(path, truth, name, boxes, unknown_images, unknown_classes)
 
 
 @contextlib.contextmanager
@@ -400,7 +464,7 @@ def _under_name(path, name):
         yield named
 
 
-def _load_named(path, truth, name, boxes, unknown_images):
+def _load_named(path, truth, name, boxes, unknown_images, unknown_classes):
     try:
         return engine.load_predictions(
             path,
@@ -408,7 +472,7 @@ def _load_named(path, truth, name, boxes, unknown_images):
             fmt=_format_of(name, path),
             boxes=boxes,
             unknown_images=unknown_images,
-            unknown_classes=ENGINE_UNKNOWN_CLASSES,
+            unknown_classes=unknown_classes,
             cache_dir=_cache_dir(),
             ids=ENGINE_IDS,
         )
@@ -427,6 +491,7 @@ def request_evaluations(
     scope="",
     file_name="",
     unknown_images="reject",
+    unknown_classes=None,
 ):
     """One evaluation per protocol (existing ones of the same ``scope`` are reused),
     dispatched on commit.
@@ -435,8 +500,9 @@ def request_evaluations(
     re-scored on a later revision of its split (detections of removed images are
     dropped and counted) — another evaluation than the same file under ``reject``.
 
-    ``box_policy`` (``engine.BOX_POLICIES``) is part of what is evaluated: the same
-    file under another policy is another evaluation. ``scope`` is the requester's opaque
+    ``box_policy`` (``engine.BOX_POLICIES``) and ``unknown_classes``
+    (``input_policy``: drop by default, or reject) are part of what is evaluated: the
+    same file under another policy is another evaluation. ``scope`` is the requester's opaque
     key: another scope never reuses these rows. ``file_name`` is the file's name as
     this requester uploaded it (kept by a new evaluation, for its messages and, for a
     lone VOC result file, its class: such a name is part of the key).
@@ -447,6 +513,7 @@ def request_evaluations(
         )
     if unknown_images not in Evaluation.UnknownImages.values:
         raise engine.InputError("unknown_images", f"unknown image policy {unknown_images!r}")
+    unknown_classes = input_policy(unknown_classes=unknown_classes)["unknown_classes"]
     if engine.is_voc_result_name(os.path.basename(file_name)):
         # A lone VOC result file's class is in its name: the same bytes under another
         # name are other detections, so another evaluation (its scope says which name).
@@ -462,6 +529,7 @@ def request_evaluations(
             box_policy=box_policy,
             scope=scope,
             unknown_images=unknown_images,
+            unknown_classes=unknown_classes,
             defaults={"file_name": file_name},
         )
         if created:

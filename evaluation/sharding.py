@@ -79,7 +79,11 @@ def from_pieces(evaluation, protocol):
     split, prediction_file = evaluation.split, evaluation.predictions
     if not isinstance(protocol, engine.Protocol) or split.image_count <= _images_per_shard():
         return False
-    options = {"box_policy": evaluation.box_policy, "unknown_images": evaluation.unknown_images}
+    options = {
+        "box_policy": evaluation.box_policy,
+        "unknown_images": evaluation.unknown_images,
+        "unknown_classes": evaluation.unknown_classes,
+    }
     found = piece_sets.stored(prediction_file, split, **options)
     if found is None:
         found = _stream_stored_file(evaluation, options)
@@ -117,7 +121,7 @@ def from_pieces(evaluation, protocol):
 def _stream_stored_file(evaluation, options):
     """Stream the evaluation's stored file (hash-checked) into pieces and store them;
     None when it is not worth it (``pieces.worth_streaming``)."""
-    from .services import ENGINE_IDS, ENGINE_UNKNOWN_CLASSES, _format_of, load_truth_of
+    from .services import ENGINE_IDS, _format_of, input_policy, load_truth_of
 
     split, prediction_file = evaluation.split, evaluation.predictions
     fmt = _format_of(evaluation.name)
@@ -137,7 +141,9 @@ def _stream_stored_file(evaluation, options):
                 fmt=fmt,
                 boxes=evaluation.box_policy,
                 unknown_images=evaluation.unknown_images,
-                unknown_classes=ENGINE_UNKNOWN_CLASSES,
+                unknown_classes=input_policy(unknown_classes=evaluation.unknown_classes)[
+                    "unknown_classes"
+                ],
                 ids=ENGINE_IDS,
             )
             del truth

@@ -39,6 +39,7 @@ FINISHED_COLUMNS = (
     "scope",
     "file_name",
     "unknown_images",
+    "unknown_classes",
 )
 FINISHED = ("done", "failed")
 

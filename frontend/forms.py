@@ -14,6 +14,15 @@ class SplitForm(forms.Form):
         required=False, help_text="Images table CSV (for a CSV split; optional for a zip)"
     )
     description = forms.CharField(required=False, widget=forms.Textarea(attrs={"rows": 2}))
+    annotations = forms.ChoiceField(
+        label="Annotations (COCO-style JSON)",
+        choices=[
+            ("reference", "as pycocotools reads them (left-out annotations counted and shown)"),
+            ("strict", "strict: refuse repeated ids and annotations of unlisted images/categories"),
+        ],
+        initial="reference",
+        required=False,
+    )
 
 
 class PredictionsForm(forms.Form):

@@ -50,7 +50,14 @@ class OutcomeAdmin(ReadOnly):
 
 @admin.register(BenchmarkSuite)
 class BenchmarkSuiteAdmin(ReadOnly):
-    list_display = ["detector", "number", "protocols", "box_policy", "created_at"]
+    list_display = [
+        "detector",
+        "number",
+        "protocols",
+        "box_policy",
+        "unknown_classes",
+        "created_at",
+    ]
     list_select_related = ["detector"]
 
 

@@ -37,6 +37,7 @@ PARTS = (
     "slice_miss_rate",
     "records",
     "unknown_images",
+    "unknown_classes",
 )
 DECISION_KINDS = (AuditEvent.Kind.SIGNED_OFF, AuditEvent.Kind.REJECTED, AuditEvent.Kind.OVERRIDE)
 FINISH_KINDS = (AuditEvent.Kind.EVALUATION_FINISHED, AuditEvent.Kind.EVALUATION_FAILED)
@@ -100,8 +101,9 @@ def result_digests(evaluation_id):
     and ``slice_miss_rate``: the miss-rate setups' rows, each checked only on events
     that recorded it); ``records``: SHA-256 of the match-records file;
     ``unknown_images``: the evaluation's policy for predictions on images the split does
-    not have (reject, or drop and count), a part of its own so events recorded before it
-    still verify. A part that does not exist digests ``null``.
+    not have (reject, or drop and count), and ``unknown_classes`` its policy for
+    detections of classes the split does not list: parts of their own so events
+    recorded before them still verify. A part that does not exist digests ``null``.
     """
     e = Evaluation.objects.filter(pk=evaluation_id).first()
     if e is None:
@@ -123,6 +125,7 @@ def result_digests(evaluation_id):
             }
         ),
         "unknown_images": digest(e.unknown_images),
+        "unknown_classes": digest(e.unknown_classes),
     }
     card = Scorecard.objects.filter(evaluation_id=evaluation_id).first()
     parts["scorecard"] = digest(

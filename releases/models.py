@@ -277,6 +277,18 @@ class BenchmarkSuite(models.Model):
     splits = models.JSONField()
     protocols = models.JSONField()
     box_policy = models.CharField(max_length=8, choices=BoxPolicy.choices, default="keep")
+
+    class UnknownClasses(models.TextChoices):
+        DROP = "drop"
+        REJECT = "reject"
+
+    unknown_classes = models.CharField(
+        max_length=8,
+        choices=UnknownClasses.choices,
+        default=UnknownClasses.DROP,
+        help_text="Detections of classes a split does not list: drop (as pycocotools; "
+        "counted and named) or reject (the upload is refused).",
+    )
     score_threshold = models.FloatField(default=0.5)
     class_thresholds = models.JSONField(default=dict, blank=True)
     created_by = models.ForeignKey(

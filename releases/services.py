@@ -92,12 +92,15 @@ def create_version(
         raise UploadError(f"{detector} already has a version labelled {label!r}") from None
 
 
-def _box_policy(detector):
-    """The box policy the in-request check applies: the suite's, as its evaluations will."""
+def _policies(detector):
+    """The box and class policies the in-request check applies: the suite's, as its
+    evaluations will (``received_predictions`` keywords)."""
     from . import suites
 
     suite = suites.current_suite(detector)
-    return suite.box_policy if suite else "keep"
+    if suite is None:
+        return {"boxes": "keep", "unknown_classes": None}
+    return {"boxes": suite.box_policy, "unknown_classes": suite.unknown_classes}
 
 
 def submit_predictions(version, split, uploaded, user):
@@ -108,8 +111,8 @@ def submit_predictions(version, split, uploaded, user):
     evaluations all finished and at least one failed (``_replace_or_refuse``).
     """
     require_upload_right(user, version.detector)
-    boxes = _box_policy(version.detector)
-    with evaluation_services.received_predictions(uploaded, split, boxes=boxes) as received:
+    policies = _policies(version.detector)
+    with evaluation_services.received_predictions(uploaded, split, **policies) as received:
         with transaction.atomic():
             return _record_set(version, split, received, user)
 
@@ -118,8 +121,8 @@ def submit_for_label(detector, label, split, uploaded, user, **version_fields):
     """``submit_predictions`` for a version named by label, created if new; a refused
     upload leaves no new version behind."""
     require_upload_right(user, detector)
-    boxes = _box_policy(detector)
-    with evaluation_services.received_predictions(uploaded, split, boxes=boxes) as received:
+    policies = _policies(detector)
+    with evaluation_services.received_predictions(uploaded, split, **policies) as received:
         with transaction.atomic():
             version = ModelVersion.objects.filter(detector=detector, label=label.strip()).first()
             if version is None:
@@ -220,6 +223,7 @@ def request_for_set(prediction_set, protocols=None):
         prediction_set.predictions,
         suite.protocols if protocols is None else protocols,
         box_policy=suite.box_policy,
+        unknown_classes=suite.unknown_classes,
         scope=evaluation_scope(prediction_set.version.detector.team_id),
         file_name=prediction_set.file_name,
         unknown_images=prediction_set.unknown_images,

@@ -1,8 +1,11 @@
 """Benchmark suites: what a detector's candidates must be scored on, and how.
 
 A suite: ``{"splits": [{"name": "bay-night", "revision": null}, ...], "protocols":
-["coco", ...], "box_policy": "keep"|"clip"|"reject", "score_threshold": 0.5,
-"class_thresholds": {"pedestrian": 0.4}}``. A split with ``revision`` null follows
+["coco", ...], "box_policy": "keep"|"clip"|"reject", "unknown_classes": "drop"|"reject",
+"score_threshold": 0.5, "class_thresholds": {"pedestrian": 0.4}}``.
+``unknown_classes``: detections of classes a split does not list are dropped (the
+default, as pycocotools: never scored, counted and named in the result) or the upload
+is refused (``evaluation.services.input_policy``). A split with ``revision`` null follows
 the split's newest revision; a number pins it. The first protocol is the primary one
 (the criteria and the headline read it). Every change is a new, audited version; the
 detector's ``protocols`` / ``primary_protocol`` columns mirror the current one.
@@ -20,7 +23,14 @@ from evaluation.services import UploadError
 from . import audit, selectors
 from .models import AuditEvent, BenchmarkSuite, Detector, Membership
 
-FIELDS = ("splits", "protocols", "box_policy", "score_threshold", "class_thresholds")
+FIELDS = (
+    "splits",
+    "protocols",
+    "box_policy",
+    "unknown_classes",
+    "score_threshold",
+    "class_thresholds",
+)
 DEFAULT_THRESHOLD = 0.5  # a detector without a suite (none are created so)
 
 
@@ -79,6 +89,12 @@ def validate_suite(detector, spec):
     box_policy = spec.get("box_policy", "keep")
     if box_policy not in BenchmarkSuite.BoxPolicy.values:
         _fail("box_policy", f"must be one of {', '.join(BenchmarkSuite.BoxPolicy.values)}")
+    unknown_classes = spec.get("unknown_classes", "drop")
+    if unknown_classes not in BenchmarkSuite.UnknownClasses.values:
+        _fail(
+            "unknown_classes",
+            f"must be one of {', '.join(BenchmarkSuite.UnknownClasses.values)}",
+        )
     score_threshold = _threshold(spec.get("score_threshold", 0.5), "score_threshold")
     class_thresholds = spec.get("class_thresholds") or {}
     if not isinstance(class_thresholds, dict):
@@ -95,6 +111,7 @@ def validate_suite(detector, spec):
         "splits": clean_splits,
         "protocols": protocols,
         "box_policy": box_policy,
+        "unknown_classes": unknown_classes,
         "score_threshold": score_threshold,
         "class_thresholds": clean_thresholds,
         "custom_protocols": custom,
@@ -201,6 +218,7 @@ def first_suite(detector, user=None, *, protocols=("coco",), splits=(), clean=No
             "splits": [{"name": n, "revision": None} for n in splits],
             "protocols": list(protocols),
             "box_policy": "keep",
+            "unknown_classes": "drop",
             "score_threshold": 0.5,
             "class_thresholds": {},
         }

@@ -190,7 +190,11 @@ def inputs_for(versions):
             e
             for ps in sets_of.get(version_id, [])
             for e in by_set.get(ps.pk, [])
-            if e.protocol in protocols and (suite is None or e.box_policy == suite.box_policy)
+            if e.protocol in protocols
+            and (
+                suite is None
+                or (e.box_policy, e.unknown_classes) == (suite.box_policy, suite.unknown_classes)
+            )
         ]
         return sorted(
             found, key=lambda e: (e.split.name, e.split.revision, protocols.index(e.protocol), e.pk)

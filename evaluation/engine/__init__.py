@@ -18,6 +18,7 @@ from .difficulty import DIFFICULTY_PRESETS, evaluate_levels, level_counts
 from .errors import InputError
 from .evaluate import counts, evaluate
 from .loaders import BOX_POLICIES, detect_format, is_collection, load_predictions, load_truth
+from .loaders.annotation_index import COUNTS as ANNOTATION_COUNTS
 from .loaders.cache import Cache
 from .loaders.voc_results import is_result_file as is_voc_result_name
 from .matching import match
@@ -29,6 +30,7 @@ from .scoring import COCO_SUMMARY_KEYS, headline, score_records, slice_scores
 from .version import ENGINE_VERSION
 
 __all__ = [
+    "ANNOTATION_COUNTS",
     "BOX_POLICIES",
     "Cache",
     "COCO_SUMMARY_KEYS",

@@ -111,11 +111,7 @@ def counts(truth, predictions, records):
         "scored_predictions": records.n_detections,
         "clipped_predictions": predictions.clipped,
         "dropped_predictions": predictions.dropped,
-        **(
-            {"dropped_classes": list(predictions.dropped_classes)}
-            if predictions.dropped
-            else {}
-        ),
+        **({"dropped_classes": list(predictions.dropped_classes)} if predictions.dropped else {}),
         **(
             {"dropped_unknown_images": predictions.dropped_images}
             if predictions.unknown_images == "drop"

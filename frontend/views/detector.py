@@ -88,6 +88,7 @@ def new_detector(request):
         "splits": [{"name": n, "revision": None} for n in splits],
         "protocols": ["coco"],
         "box_policy": "keep",
+        "unknown_classes": "drop",
         "score_threshold": 0.5,
         "class_thresholds": {},
     }

@@ -7,7 +7,7 @@ from django.http import Http404
 from django.shortcuts import redirect, render
 from django.urls import reverse
 
-from evaluation import engine, levels
+from evaluation import engine, left_out, levels
 from evaluation import images as split_images
 from evaluation import services as evaluation_services
 from evaluation.models import BenchmarkSplit
@@ -47,6 +47,7 @@ def split(request, split_id):
             "class_counts": [(c, found.class_counts.get(c)) for c in found.classes],
             "tags": sorted(found.tags.items()),
             "road": levels.split_page(found.road_counts),
+            "left_out": left_out.of_split(found),
         },
     )
 
@@ -67,6 +68,7 @@ def load_split(request):
                 images=data["images"],
                 description=data["description"],
                 created_by=request.user.get_username(),
+                annotations=data["annotations"] or None,
             )
         except (engine.InputError, UploadError) as e:
             error = str(e)

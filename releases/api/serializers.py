@@ -43,6 +43,10 @@ class DetectorSerializer(serializers.ModelSerializer):
 
 
 class SplitSerializer(serializers.ModelSerializer):
+    left_out = serializers.SerializerMethodField(
+        help_text="What the reference reading left out of the split, in words"
+    )
+
     class Meta:
         model = BenchmarkSplit
         fields = [
@@ -57,9 +61,17 @@ class SplitSerializer(serializers.ModelSerializer):
             "box_count",
             "sha256",
             "source_format",
+            "annotation_policy",
+            "annotations_left_out",
+            "left_out",
             "created_by",
             "frozen_at",
         ]
+
+    def get_left_out(self, split) -> list[str]:
+        from evaluation import left_out
+
+        return left_out.of_split(split)
 
 
 class SignOffSerializer(serializers.ModelSerializer):
@@ -141,6 +153,7 @@ class EvaluationSerializer(serializers.ModelSerializer):
             "engine_version",
             "predictions_sha256",
             "unknown_images",
+            "unknown_classes",
             "queued_at",
             "started_at",
             "finished_at",
@@ -240,6 +253,7 @@ class SuiteSerializer(serializers.ModelSerializer):
             "splits",
             "protocols",
             "box_policy",
+            "unknown_classes",
             "score_threshold",
             "class_thresholds",
             "required",
@@ -349,8 +363,8 @@ class DetectorInput(serializers.Serializer):
     classes = serializers.ListField(child=serializers.CharField(max_length=64), allow_empty=False)
     description = serializers.CharField(required=False, default="", allow_blank=True)
     suite = serializers.JSONField(
-        help_text="The benchmark suite: splits, protocols, box_policy, score_threshold, "
-        "class_thresholds (as on the suite endpoint)"
+        help_text="The benchmark suite: splits, protocols, box_policy, unknown_classes, "
+        "score_threshold, class_thresholds (as on the suite endpoint)"
     )
 
 
@@ -379,6 +393,13 @@ class SplitInput(serializers.Serializer):
     truth = serializers.FileField(help_text="COCO-style JSON, or a boxes CSV")
     images = serializers.FileField(required=False, help_text="Images CSV, with a boxes CSV")
     description = serializers.CharField(required=False, default="", allow_blank=True)
+    annotations = serializers.ChoiceField(
+        ["reference", "strict"],
+        required=False,
+        help_text="reference (default): read as pycocotools does — annotations of unlisted "
+        "images or categories left out, a repeated id resolved to its last annotation, all "
+        "counted (annotations_left_out); strict: such files are refused",
+    )
 
 
 class SplitImagesInput(serializers.Serializer):
@@ -419,6 +440,12 @@ class SuiteInput(serializers.Serializer):
         "stored under its name); the first is primary",
     )
     box_policy = serializers.ChoiceField(["keep", "clip", "reject"], required=False)
+    unknown_classes = serializers.ChoiceField(
+        ["drop", "reject"],
+        required=False,
+        help_text="Detections of classes a split does not list: drop (default, as "
+        "pycocotools; counted and named in the result) or reject (the upload is refused)",
+    )
     score_threshold = serializers.FloatField(required=False, min_value=0, max_value=1)
     class_thresholds = serializers.DictField(
         child=serializers.FloatField(min_value=0, max_value=1), required=False

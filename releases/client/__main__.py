@@ -240,6 +240,9 @@ def _print_verdict(api, version_id, verdict, out):
     results = api.get(f"versions/{version_id}/results/")
     if results["splits"]:
         out.write("\n" + render.summary_table(results) + "\n")
+        for entry in results["splits"]:  # what the reference reading left out
+            for line in entry.get("left_out", []):
+                out.write(f"{entry['split_name']}: {line}\n")
     judgement = verdict["judgement"]
     if judgement:
         outcomes = api.get_all("outcomes/", version=version_id, judgement=judgement["id"])

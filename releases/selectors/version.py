@@ -11,7 +11,7 @@ def version_scorecards(version, suite=None):
     and (``deployed``) precision, recall and F1 at the deployed
     score threshold(s) of ``suite`` (default: the detector's current suite). A fixed
     number of queries (plus one match-records file read per scored split)."""
-    from evaluation import levels
+    from evaluation import left_out, levels
     from evaluation.models import SliceScore
 
     from ..suites import current_suite
@@ -57,6 +57,9 @@ def version_scorecards(version, suite=None):
                 ],
                 "deployed": deployed_numbers(card, suite, detector.classes) if card else None,
                 "miss_rate": miss_rate.version_charts(version, cards, ps),
+                # what the reference reading left out of the split and of this file
+                "left_out": left_out.of_split(ps.split)
+                + (left_out.of_result(card.result) if card else []),
             }
         )
     return out

@@ -91,6 +91,20 @@ def split(split_truth):
     )
 
 
+def set_suite_policy(detector, lead, **changes):
+    """A new suite version of ``detector`` (set by ``lead``) with ``changes``, e.g.
+    ``unknown_classes="reject"``: the strict option, as a lead picks it. A suite without
+    splits gets every split's name (a suite needs at least one)."""
+    from evaluation.models import BenchmarkSplit
+    from releases import suites
+
+    spec = suites.as_dict(suites.current_suite(detector))
+    if not spec["splits"]:
+        names = sorted({s.name for s in BenchmarkSplit.objects.all()})
+        spec["splits"] = [{"name": n, "revision": None} for n in names]
+    return suites.set_suite(detector, lead, {**spec, **changes})
+
+
 @pytest.fixture
 def version(detector, users):
     return services.create_version(detector, "1.4.0", users["engineer"])

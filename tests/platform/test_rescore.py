@@ -26,7 +26,7 @@ from releases.audit import verify_audit
 from releases.models import AuditEvent, Judgement, PredictionSet, SignOff
 
 from ..engine.conftest import pycocotools_eval
-from .conftest import detections_for, upload
+from .conftest import detections_for, set_suite_policy, upload
 
 pytestmark = pytest.mark.django_db
 
@@ -212,9 +212,11 @@ def test_a_failed_original_is_re_scored_and_fails_with_its_message(
     users, detector, split, split_truth, rev2_truth, run_tasks, settings
 ):
     """An original whose evaluations failed (a class the split does not list, found by
-    the worker) is re-scored like any stored file and fails again on the revision with
-    the engine's message naming file, record and field; the version is incomplete."""
+    the worker, under the strict class option the lead picked) is re-scored like any
+    stored file, under the suite's policy, and fails again on the revision with the
+    engine's message naming file, record and field; the version is incomplete."""
     settings.BENCHBOOK_INLINE_VALIDATION_BYTES = 0  # checked by the worker, as a big file
+    set_suite_policy(detector, users["lead"], unknown_classes="reject")
     version = services.create_version(detector, "1.3", users["engineer"])
     bad = detections_for(split_truth, seed=6)
     bad[-1]["category_id"] = 99

@@ -347,6 +347,7 @@ def test_every_finished_result_is_chained_with_the_digests_of_its_rows(decided):
             "slice_miss_rate",
             "records",
             "unknown_images",
+            "unknown_classes",
         }
     ok, out = _verify()
     count = AuditEvent.objects.count()
@@ -378,6 +379,8 @@ EDITS = [
     ("UPDATE evaluation_evaluation SET engine_version = '0.1'", "(evaluation)"),
     # The image policy decides which predictions were scored (drop-and-count re-scores).
     ("UPDATE evaluation_evaluation SET unknown_images = 'drop'", "(unknown_images)"),
+    # The class policy decides whether a file naming unlisted classes was scored.
+    ("UPDATE evaluation_evaluation SET unknown_classes = 'reject'", "(unknown_classes)"),
     (
         "DELETE FROM evaluation_errorbreakdown; DELETE FROM evaluation_imageleaveoneout; "
         "DELETE FROM evaluation_slicescore; "

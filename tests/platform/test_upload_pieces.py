@@ -35,7 +35,7 @@ from releases import services
 from ..engine.synthetic import make_detections
 from ..engine.test_stream_pieces import _same_piece
 from . import test_shards
-from .conftest import upload
+from .conftest import set_suite_policy, upload
 from .test_shards import _run
 
 pytestmark = pytest.mark.django_db
@@ -145,13 +145,49 @@ def test_a_refused_upload_stores_no_pieces(large, split, split_truth, tied, vers
     assert _piece_files(large) == []
 
 
-def test_a_streamed_upload_refuses_an_unknown_class(large, split, tied, version, users):
-    """The platform refuses classes the split lacks (``ENGINE_UNKNOWN_CLASSES``) on the
-    streamed path too, although the engine's default drops them as pycocotools does."""
+def test_a_streamed_upload_under_the_strict_class_option_refuses_an_unknown_class(
+    large, split, tied, detector, version, users
+):
+    """A suite whose lead picked ``unknown_classes: reject`` refuses classes the split
+    lacks on the streamed path too, naming file, record and field; nothing stored."""
+    set_suite_policy(detector, users["lead"], unknown_classes="reject")
     tied[-2]["category_id"] = 999
-    with pytest.raises(engine.InputError, match="class 999 is not one of the split's"):
+    with pytest.raises(engine.InputError, match="record .*class 999 is not one of the split's"):
         services.submit_predictions(version, split, upload("p.json", tied), users["engineer"])
     assert not PredictionPieces.objects.exists() and not PredictionFile.objects.exists()
+
+
+def test_a_streamed_upload_drops_unknown_classes_by_default_as_pycocotools(
+    large, split, split_truth, tied, version, users, run_tasks, sent, tmp_path, monkeypatch
+):
+    """By default (the reference behaviour: pycocotools 2.0.11's ``loadRes`` keeps such
+    detections, ``evaluate`` never looks at them) the streamed file is accepted; its
+    pieces are stored under the drop policy, the sharded result equals the engine's
+    one-process run with ``unknown_classes="drop"`` bit for bit, and the result counts
+    and names what was left out."""
+    tied[-2]["category_id"] = 999
+    tied[3]["category_id"] = 77
+    _refuse_whole_reads(monkeypatch)
+    run_tasks(
+        services.submit_predictions, version, split, upload("p.json", tied), users["engineer"]
+    )
+    (stored,) = PredictionPieces.objects.all()
+    assert stored.unknown_classes == "drop"
+    assert (stored.counts["dropped"], stored.counts["dropped_classes"]) == (2, ["77", "999"])
+    _run(run_tasks, sent)
+    monkeypatch.undo()
+    for evaluation in Evaluation.objects.all():
+        assert evaluation.state == "done", evaluation.error
+        assert evaluation.unknown_classes == "drop"
+        direct, _ = _engine_run(
+            tmp_path, split_truth, tied, evaluation.protocol, unknown_classes="drop"
+        )
+        card = Scorecard.objects.get(evaluation=evaluation)
+        assert json.dumps(card.summary, sort_keys=True) == json.dumps(
+            direct["summary"], sort_keys=True
+        )
+        counts = card.result["counts"]
+        assert (counts["dropped_predictions"], counts["dropped_classes"]) == (2, ["77", "999"])
 
 
 def test_a_failure_while_storing_pieces_leaves_nothing(

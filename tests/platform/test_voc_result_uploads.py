@@ -16,7 +16,7 @@ from evaluation import engine
 from evaluation.models import Evaluation, PredictionFile
 from releases.models import PredictionSet
 
-from .conftest import detections_for, upload
+from .conftest import detections_for, set_suite_policy, upload
 from .test_api import API, client_for, file
 
 pytestmark = pytest.mark.django_db
@@ -121,6 +121,10 @@ def test_api_page_and_command_score_a_lone_result_file_as_its_class(
 def test_a_bad_line_or_an_unknown_class_is_refused_naming_file_line_and_field(
     users, detector, split, split_truth
 ):
+    """A bad line always; a class the split does not list under the strict class option
+    a lead picked (by default such detections are dropped and counted, as pycocotools
+    does: test_input_policies.py)."""
+    set_suite_policy(detector, users["lead"], unknown_classes="reject")
     car, _ = _result_file(split_truth, "car")
     engineer = client_for(users["engineer"])
 

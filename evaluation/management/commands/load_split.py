@@ -1,7 +1,7 @@
 from django.core.files import File
 from django.core.management.base import BaseCommand, CommandError
 
-from evaluation import engine, services
+from evaluation import engine, left_out, services
 
 
 class Command(BaseCommand):
@@ -15,8 +15,18 @@ class Command(BaseCommand):
             "--images", help="images table CSV (image_id; width,height,tags optional)"
         )
         parser.add_argument("--description", default="")
+        parser.add_argument(
+            "--annotations",
+            choices=["reference", "strict"],
+            default=None,
+            help="reference (default): read a COCO-style file as pycocotools does "
+            "(annotations of unlisted images/categories left out, a repeated id resolved to "
+            "its last annotation; counted and shown); strict: refuse such files",
+        )
 
-    def handle(self, *args, name, revision, truth, images, description, **options):
+    def handle(
+        self, *args, name, revision, truth, images, description, annotations=None, **options
+    ):
         try:
             with open(truth, "rb") as t:
                 images_file = open(images, "rb") if images else None
@@ -28,6 +38,7 @@ class Command(BaseCommand):
                         images=File(images_file, name=images) if images_file else None,
                         description=description,
                         created_by="manage.py",
+                        annotations=annotations,
                     )
                 finally:
                     if images_file:
@@ -40,3 +51,5 @@ class Command(BaseCommand):
             f"frozen {split}: {split.image_count} images, {split.box_count} boxes, "
             f"sha256 {split.sha256}"
         )
+        for line in left_out.of_split(split):
+            self.stdout.write(f"  {line}")

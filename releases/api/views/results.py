@@ -6,6 +6,7 @@ from drf_spectacular.utils import extend_schema
 from rest_framework import generics
 from rest_framework.response import Response
 
+from evaluation import left_out
 from evaluation.models import Evaluation
 
 from ... import selectors
@@ -100,6 +101,8 @@ class EvaluationResult(EvaluationMixin, generics.GenericAPIView):
                 "split_sha256": card.split_sha256,
                 "predictions_sha256": card.predictions_sha256,
                 "summary": dict(selectors.summary_items(card.summary)),
+                # what the reference reading left out of the split and of this file
+                "left_out": left_out.of_split(evaluation.split) + left_out.of_result(card.result),
                 "result": card.result,
             }
         )

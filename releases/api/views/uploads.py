@@ -57,6 +57,7 @@ class SplitList(Endpoint, generics.ListCreateAPIView):
             images=data.get("images"),
             description=data["description"],
             created_by=request.user.get_username(),
+            annotations=data.get("annotations"),
         )
         return Response(s.SplitSerializer(split).data, status=201)
 

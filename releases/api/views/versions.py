@@ -137,6 +137,8 @@ class VersionResults(Endpoint, APIView):
                 "split_name": str(entry["split"]),
                 "prediction_set": entry["prediction_set"].pk,
                 "scored": card is not None,
+                # what the reference reading left out of the split and of this file
+                "left_out": entry["left_out"],
             }
             if card is not None:
                 row.update(

@@ -1,0 +1,86 @@
+"""What the reference reading left out of a split or a predictions file, in words.
+
+Under the platform's default input policy (``services.input_policy``) a file that
+pycocotools 2.0.11 accepts is scored as it scores it: annotations of images or
+categories the file does not list are never evaluated (``COCOeval._prepare`` walks only
+``getImgIds()``/``getCatIds()``), an annotation id given twice resolves to the last
+annotation with it (``COCO.createIndex``), and detections of categories the split does
+not list are kept by ``loadRes`` but never looked at by ``evaluate``. Nothing of that is
+silent: the split page, the version page, the API and the client show these lines,
+built here from the counts the engine stored (``annotations_left_out`` of a split,
+``counts`` of a result).
+"""
+
+#: How many class ids a line names before it says "and N more".
+SHOWN_IDS = 20
+
+
+def _ids(ids):
+    ids = [str(i) for i in ids]
+    shown = ", ".join(ids[:SHOWN_IDS])
+    more = len(ids) - SHOWN_IDS
+    return f"{shown} and {more} more" if more > 0 else shown
+
+
+def _plural(n, one, many):
+    return f"{n} {one if n == 1 else many}"
+
+
+def annotation_lines(counts):
+    """Lines for a split's ``annotations_left_out`` (or a result's truth counts): the
+    annotations of unlisted images, of unlisted categories, and the copies a repeated
+    annotation id made (each an empty list when none)."""
+    counts = counts or {}
+    lines = []
+    images = int(counts.get("annotations_of_unlisted_images", 0))
+    if images:
+        lines.append(
+            f"{_plural(images, 'annotation', 'annotations')} of images the file does not "
+            "list left out (never scored, as in pycocotools)"
+        )
+    categories = int(counts.get("annotations_of_unlisted_categories", 0))
+    if categories:
+        lines.append(
+            f"{_plural(categories, 'annotation', 'annotations')} of categories the file "
+            "does not list left out (never scored, as in pycocotools)"
+        )
+    copies = int(counts.get("duplicate_id_copies", 0))
+    if copies:
+        lines.append(
+            f"{_plural(copies, 'annotation', 'annotations')} with a repeated id scored as "
+            "a copy of the last annotation with that id (as pycocotools' index does)"
+        )
+    return lines
+
+
+def detection_lines(counts):
+    """Lines for a result's ``counts``: detections of classes the split does not list
+    (``dropped_predictions``, ``dropped_classes``) and, for a re-scored file, of images
+    the split no longer holds."""
+    counts = counts or {}
+    lines = []
+    dropped = int(counts.get("dropped_predictions") or 0)
+    if dropped:
+        ids = counts.get("dropped_classes")
+        named = f": ids {_ids(ids)}" if ids else ""
+        lines.append(
+            f"{_plural(dropped, 'detection', 'detections')} of classes the split does not "
+            f"list {'was' if dropped == 1 else 'were'} left out{named}"
+        )
+    images = int(counts.get("dropped_unknown_images") or 0)
+    if images:
+        lines.append(
+            f"{_plural(images, 'detection', 'detections')} of images the split no longer "
+            f"holds {'was' if images == 1 else 'were'} left out"
+        )
+    return lines
+
+
+def of_split(split):
+    """The lines of a stored split (empty when nothing was left out)."""
+    return annotation_lines(split.annotations_left_out)
+
+
+def of_result(result):
+    """The lines of a stored result (``Scorecard.result``): its detections left out."""
+    return detection_lines((result or {}).get("counts"))
