@@ -398,3 +398,37 @@ def test_rescore_on_a_new_revision_from_the_pipeline(
     code, out, err = run(*rescore, "--token", lead, "--version", "1.0")
     assert code == 0, out + err
     assert "0 re-scored, 1 skipped" in out and "already re-scored on" in out
+
+
+@pytest.mark.usefixtures("worker")
+def test_the_client_gets_the_reference_default_and_the_strict_option(
+    live_server, detector, split_truth, users, run, tmp_path
+):
+    """Predictions naming a class the split does not list: under the default the
+    client's submit passes and prints what was left out (as pycocotools 2.0.11, whose
+    ``evaluate`` never looks at such detections); once the lead picks the strict option
+    the same file is refused at upload, exit 2, naming file, record and field."""
+    from .conftest import set_suite_policy
+
+    evaluation_services.load_split(
+        name="bay-night", revision=1, truth=upload("bay-night.json", split_truth)
+    )
+    _, token = tokens.create_token(users["engineer"], "pipeline")
+    connect = ["--url", live_server.url, "--token", token, "--detector", "Forward camera"]
+    ok = detections_for(split_truth)
+    odd = _write(tmp_path / "odd.json", ok + [{**ok[0], "category_id": 7}])
+    code, out, err = run(
+        "submit", *connect, "--version", "3.0", "--split", f"bay-night={odd}", "--wait",
+        "--poll", "0.3",
+    )  # fmt: skip
+    assert code == 0, out + err
+    assert (
+        "bay-night rev 1: 1 detection of classes the split does not list was left out: ids 7" in out
+    )
+    set_suite_policy(detector, users["lead"], unknown_classes="reject")
+    code, out, err = run(
+        "submit", *connect, "--version", "3.1", "--split", f"bay-night={odd}", "--wait",
+        "--poll", "0.3",
+    )  # fmt: skip
+    assert code == 2, out + err
+    assert f"odd.json: record {len(ok)}: field 'category_id': class 7 is not one of" in out + err

@@ -239,6 +239,26 @@ def test_a_file_stored_without_pieces_is_streamed_by_the_worker(
     assert PredictionPieces.objects.count() == 1 and len(sent) == 2  # reused
 
 
+def test_a_stored_file_is_streamed_under_its_evaluations_class_policy(
+    large, split, split_truth, tied, run_tasks, sent, tmp_path, no_whole_read
+):
+    """The worker's streaming of a stored file follows the evaluation's class policy:
+    under ``drop`` (the default) it is scored with the drop counted and its pieces kept
+    under that policy; under ``reject`` the stream refuses the same bytes: the
+    evaluation fails naming file, record and field, and no pieces are kept for it."""
+    tied[5]["category_id"] = 42
+    (dropped,) = _request(run_tasks, split, tied, "drop")
+    _run(run_tasks, sent)
+    dropped.refresh_from_db()
+    assert (dropped.state, dropped.unknown_classes) == ("done", "drop"), dropped.error
+    assert dropped.scorecard.result["counts"]["dropped_classes"] == ["42"]
+    (strict,) = _request(run_tasks, split, tied, "strict", unknown_classes="reject")
+    strict.refresh_from_db()
+    assert strict.state == "failed"
+    assert "older.json: record 5: field 'category_id': class 42 is not one of" in strict.error
+    assert list(PredictionPieces.objects.values_list("unknown_classes", flat=True)) == ["drop"]
+
+
 def test_a_deleted_piece_is_streamed_again(large, split, tied, run_tasks, sent, no_whole_read):
     _request(run_tasks, split, tied, "first")
     first = PredictionPieces.objects.get()
