@@ -98,7 +98,7 @@ def _with(**changes):
     ],
 )
 def test_bad_truth_is_refused_with_its_location(files, data, pattern):
-    """Under the strict annotation policy (the platform's) and ``clip`` (which needs
+    """Under the strict annotation policy (a platform option) and ``clip`` (which needs
     image sizes); the defaults score what pycocotools scores: test_annotation_index."""
     path = files.write("split.json", data)
     if pattern is None:

@@ -111,8 +111,9 @@ def load_truth(
     annotations : ``"reference"`` (default) or ``"strict"``, COCO JSON only
         ``reference`` scores the annotations pycocotools scores: an id given twice
         resolves to the last annotation with it, annotations of unlisted images or
-        categories are left out, all counted (``annotation_index``); ``strict`` (the
-        platform's) refuses them naming the record.
+        categories are left out, all counted (``annotation_index``); ``strict`` (a
+        platform option; its default is ``reference`` too) refuses them naming the
+        record.
     """
     _exists(path)
     checks.check_policy(path, boxes)
@@ -173,7 +174,8 @@ def load_predictions(
         was loaded under (``"keep"`` by default): see ``checks.apply_box_policy``.
     unknown_classes : ``"drop"`` (default: pycocotools 2.0.11 accepts detections of
         categories the split does not list and never scores them; counted in
-        ``dropped``) or ``"reject"`` (the platform's: an error naming the record)
+        ``dropped``; their ids in ``dropped_classes``) or ``"reject"`` (an error naming
+        the record; on the platform, a suite's option)
     unknown_images : ``"reject"`` (default: every detection's image must be in the
         split, as pycocotools' ``loadRes`` asserts) or ``"drop"``: detections of images
         the split does not hold are left out and counted in ``dropped_images`` — for

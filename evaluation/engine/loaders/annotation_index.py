@@ -14,8 +14,8 @@ checked by running it in ``tests/engine/test_annotation_index.py``):
   (copies of a last annotation whose image or category is not listed are dropped).
 
 ``annotations="reference"`` (the default) reproduces this and counts what it did;
-``"strict"`` (the platform's) refuses duplicate ids and unknown images or categories,
-naming the record.
+``"strict"`` (an option on the platform, whose default is ``reference`` too) refuses
+duplicate ids and unknown images or categories, naming the record.
 """
 
 import numpy as np
