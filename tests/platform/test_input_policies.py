@@ -22,6 +22,8 @@ the streamed pieces path (``test_upload_pieces.py``); the pipeline client
 """
 
 import contextlib
+import csv
+import importlib.metadata
 import io
 import json
 
@@ -239,7 +241,8 @@ def test_the_platforms_numbers_equal_pycocotools_on_files_it_accepts(
     evaluation = Evaluation.objects.get(protocol="coco")
     assert evaluation.state == "done", evaluation.error
     card = Scorecard.objects.get(evaluation=evaluation)
-    reference = _pycocotools(tmp_path, messy, detections)  # PYCOCOTOOLS
+    assert importlib.metadata.version("pycocotools") == PYCOCOTOOLS.split()[1]
+    reference = _pycocotools(tmp_path, messy, detections)
     for key, expected in zip(engine.COCO_SUMMARY_KEYS, reference.stats):
         got = card.summary[key]
         assert (-1.0 if got is None else got) == pytest.approx(expected, abs=1e-12), key
@@ -253,6 +256,37 @@ def test_the_platforms_numbers_equal_pycocotools_on_files_it_accepts(
             assert got == pytest.approx(expected.mean(), abs=1e-12), name
     counts = card.result["counts"]
     assert (counts["dropped_predictions"], counts["dropped_classes"]) == (2, ["7", "42"])
+
+
+def test_the_pages_read_a_split_with_a_repeated_annotation_id(
+    client, detector, version, users, run_tasks
+):
+    """A split whose repeated annotation id became two copies of its last annotation
+    (as pycocotools scores it): the version page, the image list and drill-down and the
+    records download all work, and the download has one box row per scored box (the
+    copies share their id, as in pycocotools' index)."""
+    messy, detections = _messy_split()
+    split = evaluation_services.load_split(
+        name="ring-road", revision=1, truth=upload("ring-road.json", messy)
+    )
+    prediction_set = run_tasks(
+        services.submit_predictions, version, split, upload("p.json", detections), users["engineer"]
+    )
+    evaluation = prediction_set.evaluations.get(protocol="coco")
+    assert evaluation.state == "done", evaluation.error
+    client.force_login(users["engineer"])
+    for url in (
+        reverse("version", args=[version.pk]),
+        reverse("image-list", args=[version.pk]) + f"?split={split.pk}",
+        reverse("image-detail", args=[version.pk, split.pk, 0]),
+    ):
+        assert client.get(url).status_code == 200, url
+    response = client.get(reverse("records-download", args=[evaluation.pk, "csv"]))
+    rows = list(csv.DictReader(io.StringIO(b"".join(response.streaming_content).decode())))
+    boxes = [r for r in rows if r["row"] == "box"]
+    assert len(boxes) == split.box_count
+    repeated = str(messy["annotations"][1]["id"])
+    assert sum(r["box_id"] == repeated for r in boxes) == 2
 
 
 def test_the_api_accepts_unknown_classes_by_default_and_shows_them_left_out(
