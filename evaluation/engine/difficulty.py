@@ -38,8 +38,9 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from .errors import InputError
+from .level_samples import LevelSamples, kitti_class, kitti_steps
 
-N_SAMPLE_POINTS = 41
+N_SAMPLE_POINTS = 41  # level_samples.N_SAMPLE_POINTS
 _NO_DETECTION = -10000.0  # the devkit's initial "valid detection" score
 
 
@@ -187,21 +188,6 @@ class _Image:
         return tp, fp
 
 
-def _thresholds(scores, n_gt):
-    """``getThresholds``: scores kept at about every 1/40 step of recall."""
-    scores = sorted(scores, reverse=True)
-    kept, current = [], 0.0
-    last = len(scores) - 1
-    for i, score in enumerate(scores):
-        left = (i + 1) / n_gt
-        right = (i + 2) / n_gt if i < last else left
-        if (right - current) < (current - left) and i < last:
-            continue
-        kept.append(score)
-        current += 1.0 / (N_SAMPLE_POINTS - 1.0)
-    return kept
-
-
 def _class_index(classes, name):
     lower = [c.lower() for c in classes]
     return [k for k, c in enumerate(lower) if c == name]
@@ -215,6 +201,13 @@ def evaluate_levels(truth, predictions, protocol="kitti2d"):
     a level's AP is the mean over the classes present there, the headline the
     headline level's AP_R40.
     """
+    return evaluate_levels_with_samples(truth, predictions, protocol)[0]
+
+
+def evaluate_levels_with_samples(truth, predictions, protocol="kitti2d"):
+    """``(evaluate_levels' output, level_samples.LevelSamples)``: the output is computed
+    from the samples (``level_samples.kitti_class`` at weights of one), so a weighted
+    recomputation at weights of one equals it bit for bit."""
     protocol = get_difficulty_protocol(protocol)
     gt_corners = _corners(truth.boxes)
     det_corners = _corners(predictions.boxes)
@@ -225,6 +218,7 @@ def evaluate_levels(truth, predictions, protocol="kitti2d"):
     region_corners = _corners(truth.regions)
     tallest_minimum = max(level.min_height for level in protocol.levels)
     per_level = {level.name: {} for level in protocol.levels}
+    parts, classes = {}, []
     for name, thr in protocol.class_overlap.items():
         own = _class_index(truth.classes, name)
         if not own:
@@ -252,7 +246,6 @@ def evaluate_levels(truth, predictions, protocol="kitti2d"):
                 | (truth.boxes[:, 3] <= level.min_height)
             )
             counted_all = gt_own & ~hard
-            n_gt = int(counted_all.sum())
             small_all = det_height < level.min_height
             take_all = small_all | det_own
             images = []
@@ -266,23 +259,35 @@ def evaluate_levels(truth, predictions, protocol="kitti2d"):
                 if len(regions):
                     in_region = (_overlap(det_corners[own_d], regions, own_area=True) > thr).any(1)
                 images.append(
-                    _Image(
-                        counted_all[g].tolist(),
-                        (~small_all[own_d]).tolist(),
-                        predictions.score[own_d].tolist(),
-                        iou[:, take].tolist(),
-                        in_region.tolist(),
-                        thr,
+                    (
+                        image,
+                        _Image(
+                            counted_all[g].tolist(),
+                            (~small_all[own_d]).tolist(),
+                            predictions.score[own_d].tolist(),
+                            iou[:, take].tolist(),
+                            in_region.tolist(),
+                            thr,
+                        ),
                     )
                 )
-            per_level[level.name][truth.classes[own[0]]] = _class_result(images, n_gt)
+            class_name = truth.classes[own[0]]
+            n_gt_image = np.bincount(truth.box_image[counted_all], minlength=truth.n_images)
+            part = kitti_steps(images, n_gt_image, [im.tp_scores() for _, im in images])
+            parts[(level.name, class_name)] = part
+            per_level[level.name][class_name] = kitti_class(part)
+        classes.append(truth.classes[own[0]])
     levels = {name: _level_summary(per_class) for name, per_class in per_level.items()}
     headline = levels.get(protocol.headline_level, {}).get("AP_R40")
-    return {
+    samples = LevelSamples(
+        "kitti", protocol, truth.n_images, [lv.name for lv in protocol.levels], classes, parts
+    )
+    output = {
         "protocol": {"name": protocol.name, "version": protocol.version},
         "levels": levels,
         "headline": headline,
     }
+    return output, samples
 
 
 def level_counts(truth, protocol="kitti2d"):
@@ -329,27 +334,6 @@ def _group(index, n):
     order = np.argsort(index, kind="stable")
     bounds = np.searchsorted(index[order], np.arange(n + 1))
     return [order[bounds[i] : bounds[i + 1]] for i in range(n)]
-
-
-def _class_result(images, n_gt):
-    if n_gt == 0:
-        return {"AP_R40": None, "AP_R11": None, "n_gt": 0, "precision": None}
-    scores = [s for image in images for s in image.tp_scores()]
-    thresholds = _thresholds(scores, n_gt)[:N_SAMPLE_POINTS]
-    precision = np.zeros(N_SAMPLE_POINTS)
-    for k, threshold in enumerate(thresholds):
-        tp = fp = 0
-        for image in images:
-            t, f = image.counts(threshold)
-            tp, fp = tp + t, fp + f
-        precision[k] = tp / (tp + fp) if tp + fp else 0.0
-    precision = np.maximum.accumulate(precision[::-1])[::-1]
-    return {
-        "AP_R40": float(precision[1:].sum() / 40),
-        "AP_R11": float(precision[0::4].sum() / 11),
-        "n_gt": n_gt,
-        "precision": precision.tolist(),
-    }
 
 
 def _level_summary(per_class):

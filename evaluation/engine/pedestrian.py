@@ -53,6 +53,7 @@ import math
 
 import numpy as np
 
+from .level_samples import LevelSamples, setup_class, setup_running_counts
 from .pedestrian_setups import (  # noqa: F401  (re-exported: the engine's API)
     CITYSCALE_FPPI_POINTS,
     CLAMP,
@@ -195,6 +196,13 @@ def evaluate_setups(truth, predictions, protocol="miss-rate"):
     as levels; a setup's ``miss_rate`` is the mean over the classes present there, the
     headline the reasonable setup's. Lower is better.
     """
+    return evaluate_setups_with_samples(truth, predictions, protocol)[0]
+
+
+def evaluate_setups_with_samples(truth, predictions, protocol="miss-rate"):
+    """``(evaluate_setups' output, level_samples.LevelSamples)``: each miss rate is
+    computed from the samples (``level_samples.setup_class`` at weights of one), so a
+    weighted recomputation at weights of one equals it bit for bit."""
     protocol = get_miss_rate_protocol(protocol)
     n_images = truth.n_images
     flagged = truth.crowd | truth.ignore | truth.difficult
@@ -210,7 +218,9 @@ def evaluate_setups(truth, predictions, protocol="miss-rate"):
     det_by_image = _group(predictions.image, n_images)
     region_by_image = _group(truth.region_image, n_images)
     levels = {s.name: {} for s in protocol.setups}
+    parts, classes = {}, []
     for k, near in _classes(truth, protocol):
+        classes.append(truth.classes[k])
         own = truth.box_class == k
         part = own | np.isin(truth.box_class, near)
         scenes = []  # per image: its boxes of the class or a neighbour, its detections
@@ -227,31 +237,35 @@ def evaluate_setups(truth, predictions, protocol="miss-rate"):
             inside = setup.counts(height, visibility, protocol.height_upper_open)
             counted = own & inside & ~flagged
             keep = setup.keeps(det_height, HEIGHT_EXPANSION)
-            levels[setup.name][truth.classes[k]] = _class_result(
-                truth,
-                predictions,
-                scenes,
-                counted,
-                keep,
-                region_by_image,
-                protocol,
-                det_boxes,
-                gt_resized,
+            levels[setup.name][truth.classes[k]], parts[(setup.name, truth.classes[k])] = (
+                _class_result(
+                    truth,
+                    predictions,
+                    scenes,
+                    counted,
+                    keep,
+                    region_by_image,
+                    protocol,
+                    det_boxes,
+                    gt_resized,
+                )
             )
     summary = {name: _setup_summary(per_class) for name, per_class in levels.items()}
-    return {
+    output = {
         "protocol": protocol.record(),
         "n_images": int(n_images),
         "levels": summary,
         "headline": summary.get(protocol.headline_level, {}).get("miss_rate"),
     }
+    setups = [s.name for s in protocol.setups]
+    return output, LevelSamples("setups", protocol, n_images, setups, classes, parts)
 
 
 def _class_result(
     truth, predictions, scenes, counted, keep, region_by_image, protocol, det_boxes, gt_resized
 ):
     n_gt = int(np.count_nonzero(counted))
-    scores, outcomes = [], []
+    scores, outcomes, det_image = [], [], []
     dropped = 0
     for image, g, d in scenes:
         kept = d[keep[d]]
@@ -267,15 +281,18 @@ def _class_result(
         oa = overlaps(det_boxes[kept], boxes, ignored)
         outcomes.extend(match_image(oa.tolist(), ignored.tolist()))
         scores.extend(predictions.score[kept].tolist())
-    outcomes = np.asarray(outcomes, np.int8)
-    scores = np.asarray(scores, np.float64)
-    use = outcomes != -1
-    order = np.argsort(-scores[use], kind="stable")
-    is_tp = outcomes[use][order] == 1
-    tp, fp = np.cumsum(is_tp), np.cumsum(~is_tp)
+        det_image.extend([image] * len(kept))
+    samples = {
+        "n_gt": np.bincount(truth.box_image[counted], minlength=truth.n_images).astype(np.int64),
+        "det_image": np.asarray(det_image, np.int32),
+        "det_score": np.asarray(scores, np.float64),
+        "det_outcome": np.asarray(outcomes, np.int8),
+    }
+    tp, fp, _, _ = setup_running_counts(samples)
+    use = samples["det_outcome"] != -1
     detections = {
-        "true_positive": int(is_tp.sum()),
-        "false_positive": int((~is_tp).sum()),
+        "true_positive": int(tp[-1]) if len(tp) else 0,
+        "false_positive": int(fp[-1]) if len(fp) else 0,
         "ignored": int((~use).sum()),
         "outside_height": int(dropped),
     }
@@ -286,15 +303,15 @@ def _class_result(
             "reference_miss_rate": None,
             "curve": {"fppi": [], "miss_rate": []},
             "detections": detections,
-        }
-    miss, lamr = read_references(tp, fp, n_gt, truth.n_images, protocol)
+        }, samples
+    miss, lamr = setup_class(samples, protocol)
     return {
         "miss_rate": lamr,
         "n_gt": n_gt,
         "reference_miss_rate": miss.tolist(),
         "curve": curve_points(tp, fp, n_gt, truth.n_images),
         "detections": detections,
-    }
+    }, samples
 
 
 def _setup_summary(per_class):
