@@ -5,9 +5,11 @@ One interface; the pedestrian miss-rate presets (``miss-rate``, ``miss-rate-city
 ``miss-rate-caltech``: setups as levels, ``engine.evaluate_setups``) plug in the same
 way, as ``LevelProtocol`` entries of ``LEVEL_PROTOCOLS``:
 
-* ``evaluate(truth, predictions)`` returns ``{"protocol": {"name", "version"},
-  "levels": {level: {"classes": {class: {<value_key>: v|None, "n_gt": n, ...}},
-  <value_key>: mean|None}}, "headline": v|None}`` — ``engine.evaluate_levels``' shape;
+* ``evaluate(truth, predictions)`` returns ``(output, samples)``: ``output`` is
+  ``{"protocol": {"name", "version"}, "levels": {level: {"classes": {class:
+  {<value_key>: v|None, "n_gt": n, ...}}, <value_key>: mean|None}}, "headline":
+  v|None}`` — ``engine.evaluate_levels``' shape; ``samples`` the per-image arrays
+  (``engine.level_samples``) that recompute every value under image weights;
 * ``value_key`` names the number read from it (``AP_R40``; the setups ``miss_rate``),
   ``metric`` the rule metric it answers (``AP``, ``miss_rate``), ``lower_is_better`` its
   direction, ``headline_level`` the level shown first, ``record`` the full definition.
@@ -18,17 +20,22 @@ Stored (``scoring`` dispatches here): a ``Scorecard`` whose ``result`` keeps the
 protocol output and its definition (``protocol_record``), ``summary`` the headline
 (``AP`` = moderate AP over 40 recall positions for ``kitti2d``), and one ``SliceScore``
 of kind ``level`` per level × class ('' = the level's mean) with its AP (a miss-rate
-setup's value in the row's ``miss_rate`` column). The "records" file is the protocol
-output as JSON.
+setup's value in the row's ``miss_rate`` column). The "records" file is one ``.npz``
+(``engine.level_samples.LevelSamples.save``): the protocol output as JSON and the
+per-image samples a paired image bootstrap and a tag rule read (``load_samples``), its
+SHA-256 kept on the scorecard and checked on every read like match records. Level
+scorecards stored before the samples hold the output as JSON only (``NoSamples``).
 """
 
-import json
 from dataclasses import asdict, dataclass
 
 import numpy as np
 
 from . import engine
-from .engine.difficulty import get_difficulty_protocol
+from .engine.difficulty import evaluate_levels_with_samples, get_difficulty_protocol
+from .engine.level_samples import LevelSamples, NoSamples, level_statistic
+from .engine.pedestrian import evaluate_setups_with_samples
+from .storage import ContentMismatch, verified_path
 
 
 @dataclass(frozen=True)
@@ -37,7 +44,7 @@ class LevelProtocol:
     metric: str  # the rule metric it answers
     value_key: str  # the key of that number in the protocol's output
     lower_is_better: bool
-    evaluate: object  # (truth, predictions) -> output
+    evaluate: object  # (truth, predictions) -> (output, engine LevelSamples)
     counts: object  # truth -> level_counts-shaped dict
     definition: object  # () -> the full protocol record (JSON)
 
@@ -82,7 +89,7 @@ KITTI2D = LevelProtocol(
     metric="AP",
     value_key="AP_R40",
     lower_is_better=False,
-    evaluate=lambda truth, predictions: engine.evaluate_levels(truth, predictions, "kitti2d"),
+    evaluate=lambda truth, predictions: evaluate_levels_with_samples(truth, predictions, "kitti2d"),
     counts=lambda truth: engine.level_counts(truth, "kitti2d"),
     definition=_kitti_definition,
 )
@@ -96,7 +103,7 @@ def _miss_rate(name):
         metric="miss_rate",
         value_key="miss_rate",
         lower_is_better=True,
-        evaluate=lambda truth, predictions: engine.evaluate_setups(truth, predictions, name),
+        evaluate=lambda truth, predictions: evaluate_setups_with_samples(truth, predictions, name),
         counts=lambda truth: {"levels": engine.setup_counts(truth, name)},
         definition=lambda: engine.MISS_RATE_PRESETS[name].record(),
     )
@@ -122,7 +129,7 @@ def score(evaluation, truth, predictions):
     """The stored result of a level protocol: ``(result, records, record_count)``
     where ``records`` writes the protocol output as the scorecard's file."""
     protocol = LEVEL_PROTOCOLS[evaluation.protocol]
-    output = protocol.evaluate(truth, predictions)
+    output, samples = protocol.evaluate(truth, predictions)
     record = protocol.definition()
     headline_level = record["headline_level"]
     headline = output["levels"].get(headline_level, {})
@@ -151,18 +158,52 @@ def score(evaluation, truth, predictions):
         },
         "ground_truth_sha256": evaluation.split.sha256,
     }
-    return result, _JsonRecords(output), len(predictions)
+    return result, _SampleRecords(output, samples), len(predictions)
 
 
-class _JsonRecords:
-    """The protocol output as the scorecard's file (its SHA-256 is kept and audited)."""
+class _SampleRecords:
+    """The scorecard's file: the protocol output and its samples (SHA-256 kept, audited)."""
 
-    def __init__(self, output):
-        self.output = output
+    def __init__(self, output, samples):
+        self.output, self.samples = output, samples
 
     def save(self, path):
-        with open(path, "w") as f:
-            json.dump(self.output, f, sort_keys=True)
+        self.samples.save(path, self.output)
+
+
+class SamplesUnavailable(Exception):
+    """A level scorecard's samples cannot be read; the message says why and what to do."""
+
+
+def load_samples(card):
+    """The ``engine.level_samples.LevelSamples`` of a level scorecard, its file checked
+    against the recorded SHA-256 (a changed file is signalled for the audit trail and
+    refused). ``SamplesUnavailable`` for a scorecard stored before samples were kept
+    (re-score it), a changed or unreadable file."""
+    what = f"the {card.protocol} result of {card.evaluation.name}"
+    try:
+        with verified_path(
+            card.records, card.records_sha256, f"scorecard:{card.pk}", "records file"
+        ) as path:
+            return LevelSamples.load(path)[1]
+    except NoSamples as e:
+        raise SamplesUnavailable(f"{what}: {e}") from e
+    except (ContentMismatch, OSError, ValueError, KeyError) as e:
+        raise SamplesUnavailable(f"{what} cannot be read ({e}); re-score the predictions") from e
+
+
+def class_position(samples, name):
+    """Index of ``name`` ("mean" or a class, case-insensitive) in ``level_statistic``'s
+    row, or None when the protocol does not evaluate it."""
+    if name == "mean":
+        return 0
+    lower = [c.lower() for c in samples.classes]
+    return lower.index(name.lower()) + 1 if name.lower() in lower else None
+
+
+def level_values(samples, level, weights=None):
+    """``engine.level_samples.level_statistic``: [mean, each class] under image weights."""
+    return level_statistic(samples, level, weights)
 
 
 def is_levels(result):

@@ -4,9 +4,10 @@ A rule: ``{"metric": "AP"|"AP50"|"AP75"|"recall", "class": "mean"|"*"|name,
 "split": "*"|"name:revision", "tag": optional image tag, or "size": optional size
 bucket (``rule_slices``: COCO's small/medium/large or the protocol's own), "kind": one of
 "min_value" (with "threshold" on 0-1), "max_drop" (with "tolerance" in AP points,
-0-100) or "no_significant_drop" (AP only; "confidence", default 0.95, and an optional
-"tolerance" in points)}``. ``"class": "*"`` applies the rule to every class. An
-optional ``"level"`` judges a level protocol's level or setup (``level_rules``).
+0-100) or "no_significant_drop" (AP, or a level's metric; "confidence", default 0.95,
+and an optional "tolerance" in points)}``. ``"class": "*"`` applies the rule to every
+class. An optional ``"level"`` judges a level protocol's level or setup, every kind,
+with or without a tag (``level_rules``).
 
 A regression is a *fail* only when the paired-bootstrap interval of the difference
 excludes zero on the bad side and the drop exceeds the tolerance; a drop whose interval
@@ -91,7 +92,7 @@ def validate_rules(detector, rules):
         metric = rule.get("metric", "AP")
         if "level" not in rule and metric not in METRICS:
             _fail(i, "metric", f"must be one of {', '.join(METRICS)}, got {metric!r}")
-        if kind == "no_significant_drop" and metric != "AP":
+        if kind == "no_significant_drop" and metric != "AP" and "level" not in rule:
             _fail(i, "metric", "a significance rule is computed on AP")
         name = rule.get("class", "mean")
         if name not in ("mean", "*", *detector.classes):
@@ -234,7 +235,8 @@ def outcomes_for(version, inputs):
     by_name = {f"{s.name}:{s.revision}": s for s in BenchmarkSplit.objects.all()}
     everywhere = inputs.required or sorted(cards, key=lambda s: (s.name, s.revision))
     outcomes = []
-    level_cards = {}  # {protocol: ({split: card}, {split: baseline card})}, read once
+    level_cards = {}  # {protocol: ({split: card}, {split: baseline card})}, and "read once":
+    # the level rules' samples, tag masks and bootstraps (level_rules.judge)
     bootstraps = {}  # one set of replicates per split, tag and confidence serves every class
     for index, rule in enumerate(inputs.criteria.rules):
         splits = everywhere if rule["split"] == "*" else [by_name[rule["split"]]]
@@ -302,7 +304,14 @@ def _judge_level(version, inputs, index, rule, splits, level_cards):
             )
             out.append(
                 level_rules.judge(
-                    outcome, rule, split, name, cards.get(split), baseline_cards.get(split), names
+                    outcome,
+                    rule,
+                    split,
+                    name,
+                    cards.get(split),
+                    baseline_cards.get(split),
+                    names,
+                    level_cards.setdefault("read once", {}),
                 )
             )
     return out

@@ -4,19 +4,32 @@ A rule with ``level`` is judged on the scorecard of the suite's level protocol t
 holds that level (``evaluation.levels``; ``kitti2d``: easy / moderate / hard, metric
 ``AP`` = AP over 40 recall positions, higher is better). A lower-is-better metric (a
 miss-rate setup, ``miss_rate``) turns the rule's direction: ``min_value`` then means "at most
-the threshold" and a *drop* is a rise. Only ``min_value`` and ``max_drop``: a
-significance rule needs paired match records, which a level result does not keep.
+the threshold" and a *drop* is a rise. Every rule kind applies: ``min_value``,
+``max_drop`` and ``no_significant_drop`` (the paired image bootstrap of
+``criteria._intervals``: the same draws, seed and pairing by image, over the level's
+per-image samples, ``engine.level_samples``). A ``tag`` judges the level on the tag's
+images only (image weights 0/1, every kind). A level sets its own box heights, so a
+``size`` is refused.
+
+Values with a tag or a bootstrap are recomputed from the scorecard's stored samples
+(``evaluation.levels.load_samples``, digest-checked); a scorecard stored before the
+samples were kept, or whose file changed, is a *missing* outcome saying to re-score,
+never a pass.
 
 A level result that is not there — the suite names no protocol with the level, or its
 evaluation has no scorecard on the split — is a *missing* outcome, which keeps the
 verdict from passing (``verdicts._compute``).
 """
 
+import numpy as np
+from django.conf import settings
+
 from evaluation import levels
+from evaluation.services import load_truth_of
 
 from .models import Outcome
 
-KINDS = ("min_value", "max_drop")
+KINDS = ("min_value", "max_drop", "no_significant_drop")
 
 
 def validate(detector, rule, clean, index, fail):
@@ -48,14 +61,7 @@ def validate(detector, rule, clean, index, fail):
             index, "metric", f"level {level!r} of {protocol.name} is measured as {protocol.metric}"
         )
     if clean["kind"] not in KINDS:
-        fail(
-            index,
-            "kind",
-            "a level rule is min_value or max_drop: a significance rule needs paired match "
-            "records, which a level result does not keep",
-        )
-    if rule.get("tag"):
-        fail(index, "tag", "a level rule covers the whole split; it cannot name an image tag")
+        fail(index, "kind", f"a level rule is one of {', '.join(KINDS)}")
     if rule.get("size"):
         fail(index, "size", "a level sets its own box heights; it cannot name a size bucket")
     clean["metric"] = metric
@@ -92,35 +98,43 @@ def value_of(card, level, name):
     return by_lower.get(name.lower(), {}).get(key)
 
 
-def judge(outcome, rule, split, name, card, baseline_card, suite_names):
-    """Fill ``outcome`` (status, values, detail) for one split and class."""
-    level = rule["level"]
+def judge(outcome, rule, split, name, card, baseline_card, suite_names, cache):
+    """Fill ``outcome`` (status, values, detail, interval) for one split and class.
+    ``cache`` is a dict kept for one judging (samples, tag masks and bootstraps read once)."""
+    level, tag = rule["level"], rule.get("tag")
     found = levels.protocols_with_level(suite_names, level)
-    label = f"{rule['metric']} of {name} at {level} on {split}"
+    where = f" at {level}" + (f", tag {tag}," if tag else "")
+    label = f"{rule['metric']} of {name}{where} on {split}"
     if not found:
         outcome.status = Outcome.Status.MISSING
         outcome.detail = f"{label}: the suite names no protocol with level {level!r}"
         return outcome
     protocol = levels.get(found[0])
-    label = f"{rule['metric']} of {name} at {level} ({protocol.name}) on {split}"
+    label = f"{rule['metric']} of {name}{where} ({protocol.name}) on {split}"
     if card is None:
         outcome.status = Outcome.Status.MISSING
         outcome.detail = f"{label}: no {protocol.name} result on {split}"
         return outcome
+    if tag or rule["kind"] == "no_significant_drop":
+        return _judge_on_samples(outcome, rule, split, name, card, baseline_card, label, cache)
     value = value_of(card, level, name)
     base_value = value_of(baseline_card, level, name)
+    return _compare(outcome, rule, protocol.lower_is_better, value, base_value, label)
+
+
+def _compare(outcome, rule, lower, value, base_value, label):
+    """min_value and max_drop on the two numbers (None: not measured)."""
     outcome.value, outcome.baseline_value = value, base_value
     if value is None:
         outcome.status, outcome.detail = Outcome.Status.NO_DATA, f"{label}: not measured"
         return outcome
-    lower = protocol.lower_is_better
     if rule["kind"] == "min_value":
         ok = value <= rule["threshold"] if lower else value >= rule["threshold"]
         outcome.status = Outcome.Status.PASS if ok else Outcome.Status.FAIL
         bound = "maximum" if lower else "minimum"
         outcome.detail = f"{label} = {value:.3f}, {bound} {rule['threshold']:.3f}"
         return outcome
-    if baseline_card is None or base_value is None:
+    if base_value is None:
         outcome.status = Outcome.Status.NO_DATA
         outcome.detail = f"{label}: no baseline scored on this split"
         return outcome
@@ -131,3 +145,123 @@ def judge(outcome, rule, split, name, card, baseline_card, suite_names):
         f"{100 * worse:.2f} points, allowed {rule['tolerance']:.2f})"
     )
     return outcome
+
+
+def _samples(card, cache):
+    """The scorecard's samples once per judging, or the ``SamplesUnavailable`` raised."""
+    key = ("samples", card.pk, card.records_sha256)
+    if key not in cache:
+        try:
+            cache[key] = levels.load_samples(card)
+        except levels.SamplesUnavailable as e:
+            cache[key] = e
+    if isinstance(cache[key], Exception):
+        raise cache[key]
+    return cache[key]
+
+
+def _mask(split, tag, n_images, cache):
+    """0/1 image weights of ``tag`` on ``split`` (None: no tag); the split's image order
+    is the samples' (both come from the frozen split)."""
+    if not tag:
+        return None
+    key = ("tag", split.pk, tag)
+    if key not in cache:
+        mask = load_truth_of(split).tag_mask(tag).astype(np.int64)
+        if mask.shape != (n_images,):
+            raise levels.SamplesUnavailable(
+                f"the samples hold {n_images} images, the split {mask.shape[0]}; re-score"
+            )
+        cache[key] = mask
+    return cache[key]
+
+
+def _judge_on_samples(outcome, rule, split, name, card, baseline_card, label, cache):
+    """A tag rule or a significance rule, from the stored per-image samples."""
+    level, tag, kind = rule["level"], rule.get("tag"), rule["kind"]
+    lower = levels.get(card.protocol).lower_is_better
+    try:
+        samples = _samples(card, cache)
+        base = None
+        if baseline_card is not None and kind != "min_value":
+            try:
+                base = _samples(baseline_card, cache)
+            except levels.SamplesUnavailable as e:
+                raise levels.SamplesUnavailable(f"baseline: {e}") from e
+        mask = _mask(split, tag, samples.n_images, cache)
+    except levels.SamplesUnavailable as e:
+        outcome.status, outcome.detail = Outcome.Status.MISSING, f"{label}: {e}"
+        return outcome
+    if mask is not None and not mask.any():
+        outcome.status = Outcome.Status.NO_DATA
+        outcome.detail = f"{label}: no image of {split} carries tag {tag!r}"
+        return outcome
+    position = levels.class_position(samples, name)
+    if position is None:
+        outcome.status, outcome.detail = Outcome.Status.NO_DATA, f"{label}: not measured"
+        return outcome
+
+    def number(values):
+        return None if np.isnan(values[position]) else float(values[position])
+
+    value = number(levels.level_values(samples, level, mask))
+    base_value = None if base is None else number(levels.level_values(base, level, mask))
+    if kind != "no_significant_drop":
+        return _compare(outcome, rule, lower, value, base_value, label)
+    outcome.value, outcome.baseline_value = value, base_value
+    if value is None:
+        outcome.status, outcome.detail = Outcome.Status.NO_DATA, f"{label}: not measured"
+        return outcome
+    if base is None or base_value is None:
+        outcome.status = Outcome.Status.NO_DATA
+        outcome.detail = f"{label}: no baseline scored on this split"
+        return outcome
+    key = ("bootstrap", card.pk, baseline_card.pk, level, tag, rule["confidence"])
+    if key not in cache:
+        cache[key] = _intervals(samples, base, level, mask, rule["confidence"])
+    interval = cache[key][position]
+    outcome.low, outcome.high = interval.low, interval.high
+    worse = value - base_value if lower else base_value - value
+    significant = interval.low > 0 if lower else interval.high < 0
+    if significant and worse > rule["tolerance"] / 100:
+        outcome.status = Outcome.Status.FAIL
+    elif worse > 0 and not significant:
+        outcome.status = Outcome.Status.NOT_SIGNIFICANT
+    else:
+        outcome.status = Outcome.Status.PASS
+    outcome.detail = (
+        f"{label}: Δ {value - base_value:+.3f}, {100 * rule['confidence']:.0f} % interval "
+        f"[{interval.low:+.3f}, {interval.high:+.3f}]" + (" (lower is better)" if lower else "")
+    )
+    return outcome
+
+
+def _intervals(samples, base, level, mask, confidence):
+    r"""Paired-bootstrap intervals of Δ (candidate − baseline) of the level's [mean, each
+    class]: the same image draws for both (pairing by image), the seed and number of
+    replicates of every significance rule (``criteria._intervals``), restricted to a
+    tag's images by multiplying the draws with its 0/1 mask.
+
+    .. math:: \Delta^*_b = S_C(w_b \odot m) - S_B(w_b \odot m)
+    """
+    from evaluation.engine.bootstrap import paired_bootstrap
+
+    if base.n_images != samples.n_images or base.classes != samples.classes:
+        raise ValueError("candidate and baseline samples come from different splits")
+
+    def statistic(of):
+        def at(weights):
+            w = mask if weights is None else (weights if mask is None else weights * mask)
+            return levels.level_values(of, level, w)
+
+        return at
+
+    return paired_bootstrap(
+        statistic(samples),
+        statistic(base),
+        samples.n_images,
+        n_resamples=settings.BENCHBOOK_BOOTSTRAP_RESAMPLES,
+        confidence=confidence,
+        seed=settings.BENCHBOOK_BOOTSTRAP_SEED,
+        workers=1,
+    )

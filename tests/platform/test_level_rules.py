@@ -112,8 +112,10 @@ def test_a_drop_at_moderate_against_the_baseline_fails(road, users, run_tasks, t
         (_rule(level="extreme", threshold=0.5), "rules[0].level", "not a level of a protocol"),
         (_rule(level=3, threshold=0.5), "rules[0].level", "must be the name of a level"),
         (_rule(metric="AP50", threshold=0.5), "rules[0].metric", "measured as AP"),
-        (_rule(kind="no_significant_drop"), "rules[0].kind", "paired match records"),
-        (_rule(tag="night", threshold=0.5), "rules[0].tag", "cannot name an image tag"),
+        (_rule(kind="no_change"), "rules[0].kind", "must be one of"),
+        (_rule(size="small", threshold=0.5), "rules[0].size", "cannot name a size bucket"),
+        (_rule(tag="", threshold=0.5), "rules[0].tag", "non-empty image tag"),
+        (_rule(kind="no_significant_drop", confidence=2), "rules[0].confidence", r"\[0.5, 0.999\]"),
     ],
 )
 def test_bad_level_rules_are_refused_naming_the_field(road, users, rule, path, message):
