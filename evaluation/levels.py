@@ -201,9 +201,10 @@ def class_position(samples, name):
     return lower.index(name.lower()) + 1 if name.lower() in lower else None
 
 
-def level_values(samples, level, weights=None):
-    """``engine.level_samples.level_statistic``: [mean, each class] under image weights."""
-    return level_statistic(samples, level, weights)
+def level_values(samples, level, weights=None, only=None):
+    """``engine.level_samples.level_statistic``: [mean, each class] under image weights
+    (``only``: that class's value alone, the rest NaN)."""
+    return level_statistic(samples, level, weights, only)
 
 
 def is_levels(result):

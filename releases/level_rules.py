@@ -216,9 +216,12 @@ def _judge_on_samples(outcome, rule, split, name, card, baseline_card, label, ca
         outcome.status = Outcome.Status.NO_DATA
         outcome.detail = f"{label}: no baseline scored on this split"
         return outcome
-    key = ("bootstrap", card.pk, baseline_card.pk, level, tag, rule["confidence"])
+    # one set of replicates serves every class of a "*" or mean rule; a one-class rule
+    # computes its class alone (the same draws: the interval does not depend on it)
+    only = None if rule["class"] in ("*", "mean") else samples.classes[position - 1]
+    key = ("bootstrap", card.pk, baseline_card.pk, level, tag, rule["confidence"], only)
     if key not in cache:
-        cache[key] = _intervals(samples, base, level, mask, rule["confidence"])
+        cache[key] = _intervals(samples, base, level, mask, rule["confidence"], only)
     interval = cache[key][position]
     outcome.low, outcome.high = interval.low, interval.high
     worse = value - base_value if lower else base_value - value
@@ -236,7 +239,7 @@ def _judge_on_samples(outcome, rule, split, name, card, baseline_card, label, ca
     return outcome
 
 
-def _intervals(samples, base, level, mask, confidence):
+def _intervals(samples, base, level, mask, confidence, only=None):
     r"""Paired-bootstrap intervals of Δ (candidate − baseline) of the level's [mean, each
     class]: the same image draws for both (pairing by image), the seed and number of
     replicates of every significance rule (``criteria._intervals``), restricted to a
@@ -252,7 +255,7 @@ def _intervals(samples, base, level, mask, confidence):
     def statistic(of):
         def at(weights):
             w = mask if weights is None else (weights if mask is None else weights * mask)
-            return levels.level_values(of, level, w)
+            return levels.level_values(of, level, w, only)
 
         return at
 

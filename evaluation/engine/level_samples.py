@@ -195,15 +195,18 @@ def setup_class(samples, protocol, weights=None):
 # One level: the mean and every class --------------------------------------------------
 
 
-def level_statistic(samples, level, weights=None):
+def level_statistic(samples, level, weights=None, only=None):
     """``[mean, value of each class]`` of one level (``LevelSamples.classes`` order) under
     image ``weights``: AP over 40 recall positions (kitti2d) or the log-average miss
     rate (setups); NaN where a class has no counted box; the mean is over the classes
-    present, as in the unweighted result (``numpy.mean``)."""
+    present, as in the unweighted result (``numpy.mean``).
+
+    ``only``: a class name whose value alone is needed (a bootstrap of one class): the
+    other entries, the mean included, are left NaN and not computed."""
     values = []
     for name in samples.classes:
         part = samples.parts.get((level, name))
-        if part is None:
+        if part is None or (only is not None and name != only):
             values.append(np.nan)
             continue
         if samples.kind == "kitti":
@@ -212,7 +215,7 @@ def level_statistic(samples, level, weights=None):
             value = setup_class(part, samples.protocol, weights)[1]
         values.append(np.nan if value is None else value)
     present = [v for v in values if not math.isnan(v)]
-    mean = float(np.mean(present)) if present else np.nan
+    mean = float(np.mean(present)) if present and only is None else np.nan
     return np.r_[mean, values]
 
 

@@ -157,6 +157,7 @@ def test_from_the_failing_night_pedestrian_rule_to_its_cause(seeded, client, set
         class_name="pedestrian",
         split__name="bay-night",
         rule__kind="no_significant_drop",
+        rule__metric="AP",  # not the reasonable setup's miss-rate rule, which fails too
     ).get()
     page = client.get(f"/versions/{version.pk}/").content.decode()
     link = page[page.index(f"/versions/{version.pk}/images/?split={failing.split_id}") :]
@@ -239,6 +240,23 @@ def test_the_forward_camera_is_judged_on_moderate_difficulty(seeded, client, set
         assert outcomes.count() == 3 and all(o.value is not None for o in outcomes)
         failed[label] = sorted(str(o.split) for o in outcomes if o.status == "fail")
     assert failed == {"1.4": [], "1.5": ["bay-night rev 2"], "1.6": []}
+    # A significant rise of that miss rate over the baseline (paired image bootstrap over
+    # the setup's stored samples): 1.5's night pedestrians, nothing else.
+    rise_rule = next(
+        i
+        for i, r in enumerate(forward.criteria.last().rules)
+        if r.get("level") == "reasonable" and r["kind"] == "no_significant_drop"
+    )
+    judged = {}
+    for label in ("1.5", "1.6"):
+        version = ModelVersion.objects.get(detector=forward, label=label)
+        judgement = verdicts.verdict_of(version).judgement
+        outcomes = Outcome.objects.filter(judgement=judgement, rule_index=rise_rule)
+        assert outcomes.count() == 3 and all(o.low is not None for o in outcomes), label
+        assert all(o.low <= o.value - o.baseline_value <= o.high for o in outcomes)
+        judged[label] = {str(o.split): o.status for o in outcomes}
+    assert judged["1.5"]["bay-night rev 2"] == "fail"
+    assert "fail" not in judged["1.6"].values(), judged
     settings.MEDIA_ROOT = SEEDED_MEDIA["root"]  # the page reads the primary's records
     client.force_login(get_user_model().objects.get(username="reviewer"))
     version = ModelVersion.objects.get(detector=forward, label="1.6")
