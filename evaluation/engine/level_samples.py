@@ -156,23 +156,41 @@ def setup_running_counts(samples, weights=None):
     """(tp, fp, n_gt, n_images) of one setup and class under image ``weights``: running
     counts over the non-ignored detections in ``compRoc``'s order (a stable sort by
     score of the concatenation, each image's copies adjacent), the weighted number of
-    counted boxes and of images."""
+    counted boxes and of images.
+
+    The unweighted order is sorted once (``_tie_runs``); under weights each run of
+    detections sharing a score and an image is repeated w times as a block (copy c's
+    run before copy c+1's — what the stable sort of the duplicated images gives), so a
+    replicate costs no sort."""
     n_images = len(samples["n_gt"])
     w = _weights(weights, n_images)
     n_gt = int(np.dot(w, samples["n_gt"]))
-    images = samples["det_image"]
+    order, run_start, run_length, run_image = _tie_runs(samples)
     if weights is None:
-        index = np.arange(len(images))
+        index = order
     else:
-        copies = w[images]
-        index = np.repeat(np.arange(len(images)), copies)
-        starts = np.cumsum(copies) - copies
-        copy = np.arange(len(index)) - np.repeat(starts, copies)
-        index = index[np.lexsort((index, copy, images[index]))]
-    index = index[samples["det_outcome"][index] != -1]
-    index = index[np.argsort(-samples["det_score"][index], kind="stable")]
+        copies = w[run_image]
+        out = run_length * copies
+        run = np.repeat(np.arange(len(run_start)), out)
+        within = np.arange(len(run)) - np.repeat(np.cumsum(out) - out, out)
+        index = order[run_start[run] + within % run_length[run]]
     is_tp = samples["det_outcome"][index] == 1
     return np.cumsum(is_tp), np.cumsum(~is_tp), n_gt, int(w.sum())
+
+
+def _tie_runs(samples):
+    """The non-ignored detections in accumulation order (stable by score over the
+    concatenation) and its runs of equal (score, image): start, length, image. Kept on
+    the samples dict after the first call."""
+    if "_runs" not in samples:
+        keep = np.flatnonzero(samples["det_outcome"] != -1)
+        order = keep[np.argsort(-samples["det_score"][keep], kind="stable")]
+        score, image = samples["det_score"][order], samples["det_image"][order]
+        change = np.r_[True, (score[1:] != score[:-1]) | (image[1:] != image[:-1])][: len(order)]
+        start = np.flatnonzero(change)
+        length = np.diff(np.r_[start, len(order)])
+        samples["_runs"] = (order, start, length, image[start].astype(np.int64))
+    return samples["_runs"]
 
 
 def setup_class(samples, protocol, weights=None):

@@ -156,7 +156,7 @@ def test_kitti_weights_of_one_are_the_result_bit_for_bit(tmp_path):
 
 
 @settings(
-    max_examples=60, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture]
+    max_examples=200, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture]
 )
 @given(scene=_scenes(), data=st.data())
 def test_setup_weights_equal_duplicated_images(tmp_path, scene, data):
