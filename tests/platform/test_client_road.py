@@ -36,6 +36,13 @@ RULES = [
         "kind": "min_value",
         "threshold": 0.99,
     },
+    {  # no significant rise of the reasonable miss rate over the baseline (1.0)
+        "metric": "miss_rate",
+        "level": "reasonable",
+        "class": "Pedestrian",
+        "split": "*",
+        "kind": "no_significant_drop",
+    },
     {
         "metric": "AP",
         "size": "small",
@@ -103,12 +110,26 @@ def test_the_client_exits_on_level_setup_and_size_rules(live_server, team, users
     assert "at moderate (kitti2d)" in out and "at reasonable (miss-rate)" in out
     assert "small" in out  # the size rule's outcome
 
-    # Every pedestrian missed: the reasonable setup's miss rate is 1, above its maximum.
+    assert "no baseline scored on this split" in out  # the significance rule, before 1.0
+
+    # 1.0 becomes the baseline. Every pedestrian missed in 1.1: the reasonable setup's
+    # miss rate is 1, above its maximum, and its rise over 1.0 is significant (the
+    # paired image bootstrap over the setup's stored samples).
+    from releases.models import ModelVersion
+
+    first = ModelVersion.objects.get(label="1.0")
+    approved = lead.post(
+        f"/api/v1/versions/{first.pk}/sign-off/",
+        {"decision": "approved", "comment": "baseline"},
+        format="json",
+    )
+    assert approved.status_code == 201, approved.json()
     code, out, err = submit("1.1", tmp_path / "worse.zip")
     assert code == 3, out + err
     assert "1.1: regression" in out
     failed = [line for line in out.splitlines() if " fail " in f" {line} "]
     assert any("miss_rate of Pedestrian at reasonable" in line for line in failed), out
+    assert any("% interval" in line and "(lower is better)" in line for line in failed), out
 
     # compare gives the deltas by size bucket and by level and setup
     code, out, err = run("compare", *connect, "--detector", "Kerb road", "1.0", "1.1")
@@ -124,8 +145,9 @@ def test_the_client_exits_on_level_setup_and_size_rules(live_server, team, users
         format="json",
     )
     assert dropped.status_code == 201, dropped.json()
-    # the suite change re-judges in the worker: wait for that verdict
+    # the suite change re-judges in the worker: wait for that verdict (1.1: 1.0 is the
+    # approved baseline now, its verdict final)
     wait = ["--wait", "--wait-timeout", "60", "--poll", "0.3"]
-    code, out, err = run("status", *connect, "--detector", "Kerb road", "1.0", *wait)
+    code, out, err = run("status", *connect, "--detector", "Kerb road", "1.1", *wait)
     assert code == 3, out + err
     assert "incomplete" in out
