@@ -420,7 +420,14 @@ class SignOffInput(serializers.Serializer):
 
 
 class CriteriaInput(serializers.Serializer):
-    rules = serializers.ListField(child=serializers.DictField(), allow_empty=False)
+    rules = serializers.ListField(
+        child=serializers.DictField(),
+        allow_empty=False,
+        help_text="Rules (releases/criteria.py): metric, class, split, kind (min_value, "
+        "max_drop, no_significant_drop), threshold / tolerance / confidence, an optional tag "
+        "or size; an optional level (a level or setup of the suite's level protocols, e.g. "
+        "moderate or reasonable) takes every kind and a tag",
+    )
 
 
 class SuiteInput(serializers.Serializer):
