@@ -23,7 +23,10 @@ def evidence_for(version):
     intervals = {
         (o.split_id, o.class_name): (o.low, o.high)
         for o in outcomes
-        if o.rule.get("kind") == "no_significant_drop" and o.low is not None
+        if o.rule.get("kind") == "no_significant_drop"
+        and o.low is not None
+        # the whole split's ΔAP only: not a tag's, a size bucket's or a level's interval
+        and not any(o.rule.get(k) for k in ("tag", "size", "level"))
     }
     splits = []
     for entry in version_scorecards(version, suite):
@@ -73,6 +76,8 @@ def evidence_for(version):
                 "rule": o.rule_index + 1,
                 "criteria_version": o.criteria.number,
                 "kind": o.rule.get("kind"),
+                "level": o.rule.get("level"),
+                "tag": o.rule.get("tag"),
                 "split": str(o.split),
                 "class": o.class_name,
                 "status": o.status,

@@ -294,6 +294,19 @@ def test_api_page_and_outcomes_show_a_level_significance_rule(
     client.force_login(users["reviewer"])
     page = client.get(reverse("version", args=[candidate.pk])).content.decode()
     assert "AP of mean at moderate, tag night, (kitti2d)" in page
+    # the evidence report names the level and tag beside the interval; the primary
+    # protocol's per-class ΔAP interval is not filled from a level's
+    evidence = lead.get(f"{API}versions/{candidate.pk}/evidence/").json()
+    (listed,) = evidence["outcomes"]
+    assert (listed["level"], listed["tag"], listed["interval"]) == (
+        "moderate",
+        "night",
+        [low, high],
+    )
+    for split in evidence["splits"]:
+        assert all(c["delta_AP_interval"] == [None, None] for c in split.get("classes", []))
+    report = client.get(reverse("evidence", args=[candidate.pk])).content.decode()
+    assert "AP of mean at moderate, tag night, (kitti2d)" in report
     # the criteria page's form: the same validation, the field named
     client.force_login(users["lead"])
     shown = client.post(
