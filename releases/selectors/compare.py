@@ -149,6 +149,7 @@ def compare_versions(reference, candidate):
             low__isnull=False,
             rule__tag__isnull=True,
             rule__size__isnull=True,
+            rule__level__isnull=True,  # a level's interval is not the primary's ΔAP
         )
     }
     judged_sizes = {

@@ -148,6 +148,11 @@ def test_a_significant_drop_at_moderate_fails_with_the_bootstrap_interval(tagged
     assert (outcome.low, outcome.high) == (expected.low, expected.high)
     assert outcome.high < 0 and expected.estimate == after - before
     assert "95 % interval" in outcome.detail and "at moderate (kitti2d)" in outcome.detail
+    # the compare page's ΔAP intervals are the primary protocol's: none from a level rule
+    from releases import selectors
+
+    (entry,) = selectors.compare_versions(tagged["base"], tagged["candidate"])
+    assert all(d["interval"] is None for d in entry["deltas"]), entry["deltas"]
 
 
 def test_the_baselines_own_predictions_are_no_significant_drop(tagged, users, run_tasks, tmp_path):
