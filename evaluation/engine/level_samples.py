@@ -276,8 +276,9 @@ class LevelSamples:
         written before (the protocol output as JSON, no arrays)."""
         if not zipfile.is_zipfile(path):
             raise NoSamples(
-                "this level result was stored before its per-image arrays were kept; "
-                "re-score the predictions to judge it on images"
+                "this level result was stored before its per-image samples were kept; "
+                "re-score the predictions (e.g. on a new revision of the split) to judge a "
+                "tag or significance rule on it"
             )
         with np.load(path, allow_pickle=False) as data:
             meta = json.loads(data["meta.json"].tobytes())
