@@ -149,15 +149,12 @@ def score(evaluation, truth, predictions):
         "lower_is_better": protocol.lower_is_better,
         "summary": summary,
         "levels": output["levels"],
-        "protocol_record": {**record, "box_policy": evaluation.box_policy},
-        "counts": {
-            "images": int(truth.n_images),
-            "ground_truth_boxes": int(truth.n_boxes),
-            "detections": int(len(predictions)),
-            "dont_care_regions": int(len(truth.region_image)),
-        },
         "ground_truth_sha256": evaluation.split.sha256,
     }
+    # counts, the full protocol record, engine version, truth fingerprint: the keys the
+    # CLI's JSON of this protocol gives (engine.annotate_levels)
+    annotated = engine.annotate_levels(dict(output), protocol.name, truth, predictions)
+    result.update({key: annotated[key] for key in engine.PROVENANCE_KEYS})
     return result, _SampleRecords(output, samples), len(predictions)
 
 

@@ -17,6 +17,7 @@ from .data import GroundTruth, Predictions
 from .difficulty import DIFFICULTY_PRESETS, evaluate_levels, level_counts
 from .errors import InputError
 from .evaluate import counts, evaluate
+from .level_provenance import PROVENANCE_KEYS, annotate_levels
 from .loaders import BOX_POLICIES, detect_format, is_collection, load_predictions, load_truth
 from .loaders.annotation_index import COUNTS as ANNOTATION_COUNTS
 from .loaders.cache import Cache
@@ -37,6 +38,7 @@ __all__ = [
     "DIFFICULTY_PRESETS",
     "ENGINE_VERSION",
     "PRESETS",
+    "PROVENANCE_KEYS",
     "GroundTruth",
     "InputError",
     "MISS_RATE_PRESETS",
@@ -44,6 +46,7 @@ __all__ = [
     "Predictions",
     "Protocol",
     "annotate",
+    "annotate_levels",
     "counts",
     "detect_format",
     "differences",

@@ -14,6 +14,7 @@ from . import export, provenance
 from .difficulty import DIFFICULTY_PRESETS, evaluate_levels, levels_table
 from .errors import InputError
 from .evaluate import evaluate
+from .level_provenance import annotate_levels
 from .loaders import BOX_POLICIES, FORMATS, load_predictions, load_truth
 from .pedestrian import MISS_RATE_PRESETS, evaluate_setups, setups_table
 from .protocols import PRESETS, get_protocol, protocol_from_dict
@@ -168,10 +169,10 @@ def main(argv=None):
         )
         if setups:
             result, records = evaluate_setups(truth, predictions, protocol), None
-            result["truth_fingerprint"] = truth.content_hash()
+            annotate_levels(result, protocol, truth, predictions)
         elif levels:
             result, records = evaluate_levels(truth, predictions, protocol), None
-            result["truth_fingerprint"] = truth.content_hash()
+            annotate_levels(result, protocol, truth, predictions)
         else:
             result, records = evaluate(
                 truth, predictions, protocol, score_threshold=args.threshold, return_records=True

@@ -98,6 +98,35 @@ def test_kitti2d_is_scored_as_the_devkit_scores_it_and_stored_per_level(road, us
     assert evaluation_services.load_records(Evaluation.objects.get(protocol="coco").scorecard)
 
 
+def test_a_stored_level_result_carries_the_full_record(road, users, run_tasks):
+    """The stored kitti2d result has the keys of every other result (the CLI's JSON):
+    counts, the protocol record, engine version, ground-truth fingerprint; the compare
+    panel's rows (``protocol_differences``) read it against a coco result."""
+    from evaluation.engine import ENGINE_VERSION, PROVENANCE_KEYS
+    from releases.selectors.compare import protocol_differences
+
+    from ..engine.test_provenance import RECORD_KEYS
+
+    run_tasks(
+        services.submit_predictions,
+        road["version"],
+        road["split"],
+        upload("dets.zip", road["predictions"]),
+        users["engineer"],
+    )
+    card = Evaluation.objects.get(protocol="kitti2d").scorecard
+    coco = Evaluation.objects.get(protocol="coco").scorecard
+    assert set(PROVENANCE_KEYS) <= set(card.result)
+    assert RECORD_KEYS <= set(card.result["protocol_record"])
+    assert card.result["engine_version"] == ENGINE_VERSION
+    assert card.result["truth_fingerprint"] == coco.result["truth_fingerprint"]
+    assert card.result["counts"]["images"] == coco.result["counts"]["images"]
+    assert card.result["counts"]["dont_care_regions"] > 0
+    settings = {row["setting"] for row in protocol_differences(coco, card)}
+    assert {"name", "matching", "recall sampling", "tie order"} <= settings
+    assert protocol_differences(card, card) == []
+
+
 def test_the_split_page_counts_are_stored_when_frozen(road):
     split = BenchmarkSplit.objects.get(pk=road["split"].pk)
     counts = split.road_counts

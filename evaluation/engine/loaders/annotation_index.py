@@ -37,6 +37,7 @@ PER_ANNOTATION = (
     "box_area",
     "box_area_given",
     "crowd",
+    "crowd_wide",
     "difficult",
     "ignore",
     "occlusion",

@@ -241,7 +241,7 @@ _ID_FIELDS = (
     ("dont_care", "image_id"),
 )
 #: Value errors found while building columns, reported after the ids' (in this order).
-_VALUE_FIELDS = (*_ID_FIELDS, ("annotations", "iscrowd"))
+_VALUE_FIELDS = _ID_FIELDS
 
 
 def _size(value):
@@ -349,30 +349,22 @@ class _Records:
     def crowd_columns(self, values, base):
         """``crowd`` and ``ignore`` from ``iscrowd`` values, as pycocotools 2.0.11 reads
         them: ``_prepare`` ignores a box whose ``iscrowd`` is truthy (0.5 too), while
-        ``evaluateImg`` passes ``int(iscrowd)`` to ``maskUtils.iou`` as uint8, so only
-        a value whose integer part is 1..255 is a crowd region (crowd IoU, reusable);
-        0 < |iscrowd| < 1 makes an ignored regular box. An integer part outside 0..255
-        (or a non-finite value) makes pycocotools fail, so it is refused here."""
+        ``evaluateImg`` passes ``int(iscrowd)`` to ``maskUtils.iou`` as uint8, so a
+        value whose integer part is nonzero (1..255: ``true``, 2, 1.5) is a crowd region
+        (crowd IoU, reusable); 0 < |iscrowd| < 1 makes an ignored regular box. Any other
+        number is read the same way, as truthiness: nonzero integer part = crowd. An
+        integer part outside 0..255 (300, -1, or infinite) passes ``_prepare`` and makes
+        pycocotools raise only in ``computeIoU`` (the uint8 cast) when a detection of
+        its class meets the box on its image; here it is always a crowd region, and
+        ``crowd_wide`` marks it (counted as ``iscrowd_outside_0_255``)."""
         try:
             v = np.array(values, np.float64).reshape(-1)
-        except OverflowError:  # an integer beyond float64: refused below, as infinite
+        except OverflowError:  # an integer beyond float64: infinite, a crowd region
             v = np.array([_as_float(x) for x in values], np.float64)
         whole = np.trunc(v)
-        bad = np.flatnonzero(~np.isfinite(v) | (whole < 0) | (whole > 255))
-        if len(bad):
-            i = int(bad[0])
-            self.out_of_range.setdefault(
-                ("annotations", "iscrowd"),
-                InputError(
-                    self.path,
-                    f"must be a number whose integer part is 0 to 255 (0 a box, 1 a crowd "
-                    f"region), got {values[i]!r}",
-                    record=f"annotations[{base + i}]",
-                    field="iscrowd",
-                ),
-            )
-        crowd = (whole != 0) & ~np.isnan(whole)
-        return {"crowd": crowd, "ignore": (v != 0) & ~crowd}
+        crowd = whole != 0  # NaN and infinities are truthy too
+        wide = ~np.isfinite(v) | (whole < 0) | (whole > 255)
+        return {"crowd": crowd, "ignore": (v != 0) & ~crowd, "crowd_wide": wide}
 
     def dont_care(self, regions, key, base):
         return {

@@ -167,6 +167,11 @@ def read_truth(path, images, fmt, classes, policy, ids="any", annotations="refer
             "area_from_file": int(given.sum()),
             "negative_area_from_file": negative_area,
             "non_finite_area_from_file": int((given & ~np.isfinite(area)).sum()),
+            **(
+                {"iscrowd_outside_0_255": int(cols["crowd_wide"].sum())}
+                if "crowd_wide" in cols
+                else {}
+            ),
             **annotation_counts,
         },
         **road,
