@@ -114,12 +114,7 @@ class GroundTruth:
         if cached is not None:  # frozen: computed once (the loaders and annotate ask)
             return cached
         attributes = self.has_attributes()
-        digest = hashlib.sha256()
-        digest.update(repr(list(zip(self.class_ids.tolist(), self.classes))).encode())
-        digest.update(repr([str(i) for i in self.image_ids]).encode())
-        digest.update(np.ascontiguousarray(self.image_width, "<f8").tobytes())
-        digest.update(np.ascontiguousarray(self.image_height, "<f8").tobytes())
-        digest.update(repr([sorted(t) for t in self.image_tags]).encode())
+        digest = self._image_digest()
         columns = np.column_stack(
             [
                 self.box_image.astype("<f8"),
@@ -141,6 +136,42 @@ class GroundTruth:
             digest.update(np.ascontiguousarray(regions, "<f8").tobytes())
         object.__setattr__(self, "_content_hash", digest.hexdigest())
         return self._content_hash
+
+    def _image_digest(self):
+        """``content_hash``'s SHA-256 state after its class and image part (classes,
+        image ids, sizes, sorted tags). The bytes of that part are built once per
+        ``_images_cell`` (a Python object per image: the costly part) and kept as bytes
+        (picklable), then hashed for each truth sharing them."""
+        cell = self._images_cell()
+        if not cell:
+            cell.append(repr(list(zip(self.class_ids.tolist(), self.classes))).encode())
+            cell.append(repr([str(i) for i in self.image_ids]).encode())
+            cell.append(np.ascontiguousarray(self.image_width, "<f8").tobytes())
+            cell.append(np.ascontiguousarray(self.image_height, "<f8").tobytes())
+            cell.append(repr([sorted(t) for t in self.image_tags]).encode())
+        digest = hashlib.sha256()
+        for part in cell:
+            digest.update(part)
+        return digest
+
+    def _images_cell(self):
+        cell = self.__dict__.get("_images_digest")
+        if cell is None:
+            cell = []
+            object.__setattr__(self, "_images_digest", cell)
+        return cell
+
+    def share_images_digest(self, other):
+        """Let ``other`` — a truth holding this one's very class and image columns (the
+        same objects, as ``shards.truth_slice`` makes) — reuse the class and image part
+        of this truth's ``content_hash`` instead of hashing every image again: a split
+        cut into N shard slices hashes its images once, not N times; same digest. Any
+        other ``other`` is left to hash its own (returns False)."""
+        names = ("class_ids", "classes", "image_ids", "image_width", "image_height", "image_tags")
+        if any(getattr(other, name) is not getattr(self, name) for name in names):
+            return False
+        object.__setattr__(other, "_images_digest", self._images_cell())
+        return True
 
 
 @dataclass(frozen=True, eq=False)

@@ -75,6 +75,7 @@ def truth_slice(truth, start, stop):
         region_image=truth.region_image[regions],
         regions=truth.regions[regions],
     )
+    truth.share_images_digest(sliced)  # its images are the split's: hashed once
     return sliced, box_index
 
 

@@ -95,9 +95,7 @@ def _to_arrays(obj):
         value = getattr(obj, f.name)
         if isinstance(value, np.ndarray):
             arrays[f.name] = value.astype(str) if value.dtype == object else value
-        elif f.name == "image_tags":
-            meta[f.name] = [list(t) for t in value]
-        elif isinstance(value, tuple):
+        elif isinstance(value, tuple):  # image_tags too: JSON writes tuples as lists
             meta[f.name] = list(value)
         else:
             meta[f.name] = value

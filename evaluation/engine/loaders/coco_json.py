@@ -8,6 +8,8 @@ detections never exists as Python objects (or as one byte string) all together.
 
 import math
 import re
+from itertools import chain
+from operator import attrgetter
 
 import msgspec
 import numpy as np
@@ -120,6 +122,7 @@ def validation_error(path, error, *, top_level_list, base=0, key=""):
 
 
 _INT64_MIN, _INT64_MAX = -(2**63), 2**63 - 1
+_INT_ONLY = frozenset({int})
 
 
 def _as_float(value):
@@ -133,7 +136,7 @@ def whole_ids(path, values, locate, field):
     """``values`` as Python ints: a float or boolean with a whole value is that integer
     (pycocotools finds ``1.0`` and ``true`` under the key 1); any other float is refused
     naming the record (a known deviation: pycocotools would key a dict by it)."""
-    if all(type(v) is int for v in values):
+    if set(map(type, values)) <= _INT_ONLY:  # one C-level pass; the common case
         return values
     out = []
     for i, v in enumerate(values):
@@ -448,12 +451,18 @@ def _columns(records, path="", base=0, wide=False):
         except OverflowError:  # locate the id outside int64
             return int_column(path, values, locate, field, wide)
 
+    # Fields read with C-level getters (no Python frame per record); each bbox is a
+    # 4-tuple of floats (the struct's type), laid out row after row.
     return (
-        ids([r.image_id for r in records], "image_id"),
-        ids([r.category_id for r in records], "category_id"),
-        np.array([r.bbox for r in records], np.float64).reshape(-1, 4),
-        np.fromiter((r.score for r in records), np.float64, n),
+        ids(list(map(_IMAGE_ID, records)), "image_id"),
+        ids(list(map(_CATEGORY_ID, records)), "category_id"),
+        np.fromiter(chain.from_iterable(map(_BBOX, records)), np.float64, 4 * n).reshape(-1, 4),
+        np.fromiter(map(_SCORE, records), np.float64, n),
     )
+
+
+_IMAGE_ID, _CATEGORY_ID = attrgetter("image_id"), attrgetter("category_id")
+_BBOX, _SCORE = attrgetter("bbox"), attrgetter("score")
 
 
 class _Position:
