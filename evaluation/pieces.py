@@ -16,14 +16,13 @@ import logging
 import os
 
 from django.conf import settings
-from django.core.files import File
 from django.db import IntegrityError, transaction
 
 from . import engine
 from .engine import shards
 from .engine.pieces import stream_pieces
 from .models import PredictionPiece, PredictionPieces
-from .storage import file_sha256
+from .storage import file_sha256, save_from_path
 
 log = logging.getLogger(__name__)
 
@@ -115,9 +114,8 @@ def keep(
                 detections=streamed.detections[k],
                 sha256=file_sha256(path),
             )
-            with open(path, "rb") as f:
-                name = f"{prediction_file.sha256[:16]}-split{split.pk}-{k}.npz"
-                piece.file.save(name, File(f), save=False)
+            name = f"{prediction_file.sha256[:16]}-split{split.pk}-{k}.npz"
+            save_from_path(piece.file, path, name)
             written.append(piece.file.name)
             rows.append(piece)
         with transaction.atomic():

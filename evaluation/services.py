@@ -22,6 +22,7 @@ from .storage import (
     TooLarge,
     check_sha256,
     local_path,
+    save_from_path,
     spool,
     verified_bytes,
 )
@@ -335,8 +336,7 @@ class Received:
         prediction_file = PredictionFile(
             sha256=self.sha256, size=self.size, original_name=self.name
         )
-        with open(self.path, "rb") as f:
-            prediction_file.file.save(self.name, File(f), save=False)
+        save_from_path(prediction_file.file, self.path, self.name)
         try:
             with transaction.atomic():
                 prediction_file.save()

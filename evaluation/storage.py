@@ -115,6 +115,32 @@ def local_path(field_file):
         yield tmp.name
 
 
+def save_from_path(field_file, path, name):
+    """``field_file.save(name, <the file at path>, save=False)`` without copying the
+    bytes where the storage is a local disk on the same file system: a hard link to
+    ``path`` is moved into the storage (same bytes, same inode), and ``path`` stays
+    as it was. Elsewhere (no hard links, another file system, an object store) the
+    bytes are copied as ``FieldFile.save`` always does."""
+    from django.core.files import File
+
+    class Linked(File):
+        # FileSystemStorage moves a file that has a temporary path instead of copying
+        def temporary_file_path(self):
+            return link
+
+    link = f"{path}.{os.getpid()}.link"
+    try:
+        os.link(path, link)
+    except OSError:
+        link = None
+    try:
+        with open(path, "rb") as f:
+            field_file.save(name, (Linked if link else File)(f, name=name), save=False)
+    finally:
+        if link is not None and os.path.lexists(link):  # not moved (copied or failed)
+            os.remove(link)
+
+
 class TooLarge(Exception):
     pass
 

@@ -473,12 +473,14 @@ class _Position:
         self.lines = 0  # newlines before it
         self.line_start = 0  # absolute offset just after the last of them
 
-    def advance(self, consumed):
-        newlines = consumed.count(b"\n")
+    def advance(self, consumed, end=None):
+        """Move past ``consumed`` (its first ``end`` bytes: no copy of a slice)."""
+        end = len(consumed) if end is None else end
+        newlines = consumed.count(b"\n", 0, end)
         if newlines:
             self.lines += newlines
-            self.line_start = self.offset + consumed.rfind(b"\n") + 1
-        self.offset += len(consumed)
+            self.line_start = self.offset + consumed.rfind(b"\n", 0, end) + 1
+        self.offset += end
 
     def locate(self, buf, k):
         """(line, column) of buf[k], 1-based."""
@@ -598,7 +600,7 @@ def _stream(path, f, skip, build=True, wide=False):
             return
         base += len(records)
         comma = cut[1] - 1
-        where.advance(buf[:comma])
+        where.advance(buf, comma)
         del buf[:comma]
         buf[0] = 0x5B  # "["
         lowest = 1
