@@ -181,7 +181,7 @@ def test_from_the_failing_night_pedestrian_rule_to_its_cause(seeded, client, set
     assert lost  # pedestrians 1.4 found and 1.5 missed, at the deployed threshold
     assert "pedestrian — <strong>missed</strong>" in page
     # Traceable: the drill-down's candidate boxes are rows of the records download.
-    evaluation = drill.context["evaluations"][0]
+    evaluation = drill.context["evaluations"][0].evaluation  # the candidate side
     body = b"".join(client.get(f"/evaluations/{evaluation.pk}/records.csv").streaming_content)
     records = list(csv.DictReader(io.StringIO(body.decode())))
     image_id = data["image"]["id"]
