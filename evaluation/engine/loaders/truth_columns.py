@@ -167,11 +167,9 @@ def read_truth(path, images, fmt, classes, policy, ids="any", annotations="refer
             "area_from_file": int(given.sum()),
             "negative_area_from_file": negative_area,
             "non_finite_area_from_file": int((given & ~np.isfinite(area)).sum()),
-            **(
-                {"iscrowd_outside_0_255": int(cols["crowd_wide"].sum())}
-                if "crowd_wide" in cols
-                else {}
-            ),
+            # every format has the count (0 where it cannot occur), so one split written
+            # in five formats gives one result
+            "iscrowd_outside_0_255": (int(cols["crowd_wide"].sum()) if "crowd_wide" in cols else 0),
             **annotation_counts,
         },
         **road,
