@@ -302,6 +302,8 @@ SPECTACULAR_SETTINGS = {
     "SWAGGER_UI_FAVICON_HREF": "SIDECAR",
     "COMPONENT_SPLIT_REQUEST": True,
     "SCHEMA_PATH_PREFIX": r"/api/v1",  # tags from the resource: detectors, versions, …
+    # one name for the drop/reject set, which evaluations and suites share
+    "ENUM_NAME_OVERRIDES": {"UnknownClassesEnum": "evaluation.models.Evaluation.UnknownClasses"},
 }
 # Throttle counters: shared by every web process when BENCHBOOK_CACHE_URL names a Redis.
 if os.environ.get("BENCHBOOK_CACHE_URL"):

@@ -448,7 +448,7 @@ class SuiteInput(serializers.Serializer):
     )
     box_policy = serializers.ChoiceField(["keep", "clip", "reject"], required=False)
     unknown_classes = serializers.ChoiceField(
-        ["drop", "reject"],
+        Evaluation.UnknownClasses.choices,  # the models' set: one enum in the schema
         required=False,
         help_text="Detections of classes a split does not list: drop (default, as "
         "pycocotools; counted and named in the result) or reject (the upload is refused)",
