@@ -3,6 +3,8 @@
 from django.conf import settings
 from django.db import models
 
+from evaluation.models import Evaluation
+
 
 class Team(models.Model):
     name = models.CharField(max_length=100, unique=True)
@@ -278,9 +280,7 @@ class BenchmarkSuite(models.Model):
     protocols = models.JSONField()
     box_policy = models.CharField(max_length=8, choices=BoxPolicy.choices, default="keep")
 
-    class UnknownClasses(models.TextChoices):
-        DROP = "drop"
-        REJECT = "reject"
+    UnknownClasses = Evaluation.UnknownClasses  # one set for suites and evaluations
 
     unknown_classes = models.CharField(
         max_length=8,
