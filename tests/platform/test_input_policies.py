@@ -510,3 +510,46 @@ def test_predictions_of_images_the_split_lacks_stay_refused(detector, split, spl
     )
     assert response.status_code == 400
     assert "image 99999 is not in the split" in response.json()["message"]
+
+
+def test_a_lead_cannot_approve_on_evaluations_of_the_old_class_policy(
+    detector, split, split_truth, users, run_tasks, monkeypatch
+):
+    """The gate's promise across a policy change: a version scored under ``drop`` passes;
+    once the suite says ``reject`` its ``drop`` evaluations no longer count. Before the
+    worker has scored and judged under the new policy no decision can be recorded; after
+    (the strict evaluation fails on the unlisted class) only an override with a written
+    justification can approve it (``services.sign_off``, the one function behind every
+    entry point)."""
+    from evaluation import services as evaluation_services
+    from releases import tasks as release_tasks
+    from releases import verdicts
+    from releases.models import SignOff
+    from releases.services import DecisionError
+
+    ok = detections_for(split_truth)
+    version = services.create_version(detector, "2.0", users["engineer"])
+    bad = ok + [{**ok[0], "category_id": 7}]
+    run_tasks(services.submit_predictions, version, split, upload("p.json", bad), users["engineer"])
+    assert verdicts.verdict_of(version).state == "pass"
+    with monkeypatch.context() as held:  # the worker has not run yet
+        held.setattr(evaluation_services, "dispatch", lambda pk: None)
+        held.setattr(release_tasks.judge, "delay", lambda *args: None)
+        set_suite_policy(detector, users["lead"], unknown_classes="reject")
+        assert verdicts.verdict_of(version).state != "pass"
+        for justification in ("", "the unlisted class is harmless"):
+            with pytest.raises(DecisionError):
+                services.sign_off(
+                    version, users["lead"], "approved", "ship", justification=justification
+                )
+    assert not SignOff.objects.exists()
+    run_tasks(services.request_for_set, version.prediction_sets.get())
+    run_tasks(release_tasks.judge, version.pk)
+    assert verdicts.verdict_of(version).state == "incomplete"
+    with pytest.raises(DecisionError):
+        services.sign_off(version, users["lead"], "approved", "ship")
+    assert not SignOff.objects.exists()
+    services.sign_off(
+        version, users["lead"], "approved", "ship", justification="class 7 is a known extra"
+    )
+    assert SignOff.objects.get().decision == "approved"
