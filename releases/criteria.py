@@ -386,15 +386,21 @@ def _judge_one(
             return outcome
     interval = bootstraps[key][name]
     outcome.low, outcome.high = interval.low, interval.high
-    significant = interval.high < 0
-    if significant and drop > tolerance:
-        outcome.status = Outcome.Status.FAIL
-    elif drop > 0 and not significant:
-        outcome.status = Outcome.Status.NOT_SIGNIFICANT
-    else:
-        outcome.status = Outcome.Status.PASS
+    outcome.status = significance_status(drop, interval.high < 0, tolerance)
     outcome.detail = (
         f"{label}: Δ {value - base_value:+.3f}, {100 * rule['confidence']:.0f} % interval "
         f"[{interval.low:+.3f}, {interval.high:+.3f}]"
     )
     return outcome
+
+
+def significance_status(worse, significant, tolerance):
+    """The no-significant-drop rule's decision, for every metric and slice (level rules
+    too): it fails only when the change for the worse is statistically real (the
+    interval excludes 0 on the bad side) *and* beyond the tolerance; a drop the interval
+    does not confirm reads "not significant"; anything else passes."""
+    if significant and worse > tolerance:
+        return Outcome.Status.FAIL
+    if worse > 0 and not significant:
+        return Outcome.Status.NOT_SIGNIFICANT
+    return Outcome.Status.PASS

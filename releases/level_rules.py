@@ -226,12 +226,9 @@ def _judge_on_samples(outcome, rule, split, name, card, baseline_card, label, ca
     outcome.low, outcome.high = interval.low, interval.high
     worse = value - base_value if lower else base_value - value
     significant = interval.low > 0 if lower else interval.high < 0
-    if significant and worse > rule["tolerance"] / 100:
-        outcome.status = Outcome.Status.FAIL
-    elif worse > 0 and not significant:
-        outcome.status = Outcome.Status.NOT_SIGNIFICANT
-    else:
-        outcome.status = Outcome.Status.PASS
+    from .criteria import significance_status  # criteria imports this module
+
+    outcome.status = significance_status(worse, significant, rule["tolerance"] / 100)
     outcome.detail = (
         f"{label}: Δ {value - base_value:+.3f}, {100 * rule['confidence']:.0f} % interval "
         f"[{interval.low:+.3f}, {interval.high:+.3f}]" + (" (lower is better)" if lower else "")
