@@ -410,6 +410,23 @@ def measure(runs, args, env, gt_path, dt_path):
             print(f"{n:8} {upload + prepare + waves + group_waves + finish:15.1f}")
 
 
+def process_env(work, database_url, **extra):
+    """The environment of the bench's server and worker processes: this machine's, less
+    its Celery and Benchbook settings, with a throw-away var dir and ``extra``."""
+    env = {k: v for k, v in os.environ.items() if not k.startswith(("CELERY_", "BENCHBOOK_"))}
+    env.update(
+        BENCHBOOK_VAR=str(work),
+        DATABASE_URL=database_url,
+        DJANGO_SETTINGS_MODULE="benchbook.settings",
+        SECRET_KEY=secrets.token_urlsafe(32),
+        BENCHBOOK_MAX_UPLOAD_BYTES=str(8 * 2**30),
+        PYTHONPATH=str(ROOT),
+        **extra,
+    )
+    env.pop("DEBUG", None)
+    return env
+
+
 def main():
     parser = argparse.ArgumentParser(description=__doc__.split("\n")[0])
     parser.add_argument("--scale", type=float, default=1.0)
@@ -435,17 +452,7 @@ def main():
         f"{os.path.getsize(dt_path) / 2**20:.0f} MB predictions ({time.time() - began:.0f} s)"
     )
     work = pathlib.Path(tempfile.mkdtemp(prefix="benchbook-sharded-"))
-    env = {k: v for k, v in os.environ.items() if not k.startswith(("CELERY_", "BENCHBOOK_"))}
-    env.update(
-        BENCHBOOK_VAR=str(work),
-        DATABASE_URL=args.database_url,
-        DJANGO_SETTINGS_MODULE="benchbook.settings",
-        SECRET_KEY=secrets.token_urlsafe(32),
-        BENCHBOOK_MAX_UPLOAD_BYTES=str(8 * 2**30),
-        BENCHBOOK_LEASE_SECONDS="120",
-        PYTHONPATH=str(ROOT),
-    )
-    env.pop("DEBUG", None)
+    env = process_env(work, args.database_url, BENCHBOOK_LEASE_SECONDS="120")
     runs = [name for name in args.runs.split(",") if name]
     if runs:
         measure(runs, args, env, gt_path, dt_path)

@@ -24,7 +24,6 @@ import hashlib
 import json
 import os
 import pathlib
-import secrets
 import shutil
 import statistics
 import subprocess
@@ -128,17 +127,13 @@ def main():
 
     gt_path, dt_path = sharded.generate(sharded.OUT / f"sharded-{args.scale:g}", args.scale)
     work = pathlib.Path(tempfile.mkdtemp(prefix="benchbook-upload-check-"))
-    env = {k: v for k, v in os.environ.items() if not k.startswith(("CELERY_", "BENCHBOOK_"))}
-    env.update(
-        BENCHBOOK_VAR=str(work),
-        DATABASE_URL=args.database_url,
-        DJANGO_SETTINGS_MODULE="benchbook.settings",
-        SECRET_KEY=secrets.token_urlsafe(32),
-        BENCHBOOK_MAX_UPLOAD_BYTES=str(8 * 2**30),
+    env = sharded.process_env(
+        work,
+        args.database_url,
         BENCHBOOK_SHARD_IMAGES=str(args.shard_images),
         CELERY_BROKER_URL="memory://",
     )
-    env.pop("DEBUG", None)
+    env.pop("PYTHONPATH")  # each checkout imports its own code (cwd), never this one's
     sharded.database(args.database_url)
     subprocess.run([sys.executable, "manage.py", "migrate", "-v0"], env=env, cwd=ROOT, check=True)
     load = (
