@@ -19,6 +19,13 @@ def _canonical_nan(values):
     return np.where(np.isnan(values), np.nan, values)
 
 
+def _reads_as_zero(text):
+    try:
+        return float(text) == 0
+    except ValueError:
+        return False
+
+
 @dataclass(frozen=True, eq=False)
 class GroundTruth:
     """A benchmark split: images, classes and annotated boxes.
@@ -38,8 +45,8 @@ class GroundTruth:
     """
 
     classes: tuple  # class names; position = class index
-    class_ids: np.ndarray  # int64 external ids (COCO category ids), same order
-    image_ids: np.ndarray  # ascending; int64, or str objects for CSV splits
+    class_ids: np.ndarray  # external ids (COCO category ids), same order: as image_ids
+    image_ids: np.ndarray  # ascending (pycocotools' order); int64, or text (see below)
     image_width: np.ndarray
     image_height: np.ndarray
     image_tags: tuple  # per image: tuple of tag strings
@@ -52,6 +59,11 @@ class GroundTruth:
     difficult: np.ndarray  # bool
     ignore: np.ndarray  # bool
     source: str = ""
+    #: What text ids are (``loaders.ids``): ``""`` int64 ids or CSV/file-name text;
+    #: COCO JSON ids that are not all 64-bit integers: ``"number"`` (the ids' decimal
+    #: or float text), ``"text"`` (JSON strings), ``"json"`` (JSON strings shown quoted).
+    image_id_type: str = ""
+    class_id_type: str = ""
     box_policy: str = "keep"
     box_counts: dict = field(default_factory=dict)
     occlusion: np.ndarray = None  # float64 per box, NaN = not given
@@ -84,11 +96,13 @@ class GroundTruth:
 
     def zero_id_boxes(self):
         """Boxes whose annotation id is 0 (only COCO JSON ids can be: CSV and label
-        folders number boxes from 1), for ``Protocol.zero_id_unmatched``."""
+        folders number boxes from 1), for ``Protocol.zero_id_unmatched``. pycocotools
+        writes the id into a float array (``dtm[t, d] = gt['id']``), so a text id counts
+        when numpy reads it as 0 (``"0"``, ``"0.0"``, ``" -0 "``: Python's ``float``)."""
         ids = self.box_ids
         if ids.dtype.kind in "iu":
             return ids == 0
-        return np.asarray(ids).astype(str) == "0"
+        return np.fromiter((_reads_as_zero(v) for v in ids.tolist()), bool, len(ids))
 
     def tags(self):
         """Every tag used by at least one image, sorted."""

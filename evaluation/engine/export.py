@@ -5,7 +5,7 @@ ground-truth box (split order). Memory beyond the records is one block of rows, 
 the number of detections. Columns (``COLUMNS``):
 
 ``row``            ``detection`` or ``box``
-``image_id``       the split's image id
+``image_id``       the split's image id (JSON Lines: the JSON value the split gave)
 ``class``          the row's class
 ``score``          detection score (empty for a box)
 ``x, y, w, h``     the row's box, pixels
@@ -28,6 +28,7 @@ import math
 
 import numpy as np
 
+from .loaders.ids import key_value, keys_of
 from .reasons import BOX_REASONS, DETECTION_REASONS, box_outcome, detection_outcome
 
 COLUMNS = (
@@ -65,12 +66,16 @@ def _optional(values, present):
     return [v if p else None for v, p in zip(values.tolist(), present.tolist())]
 
 
-def row_blocks(records, truth, block_rows=BLOCK_ROWS):
-    """Yield blocks of rows, each a dict column -> list of Python values (None = empty)."""
+def row_blocks(records, truth, block_rows=BLOCK_ROWS, typed_ids=False):
+    """Yield blocks of rows, each a dict column -> list of Python values (None = empty);
+    with ``typed_ids`` image ids are the JSON values the split gave (2.5, not "2.5")."""
     _check(records, truth)
     classes = np.array(records.classes, dtype=object)
     threshold = records.thresholds[0]
     image_ids = np.asarray(truth.image_ids, dtype=object)
+    if typed_ids and truth.image_id_type:
+        keys = keys_of(truth.image_ids, truth.image_id_type)
+        image_ids = np.array([key_value(k) for k in keys.tolist()], dtype=object)
     n = records.n_detections
     for start in range(0, n, block_rows):
         s = slice(start, min(n, start + block_rows))
@@ -150,7 +155,7 @@ def jsonl_chunks(records, truth, block_rows=BLOCK_ROWS):
     """Yield JSON Lines text, one object per row (missing values are null; a NaN or
     infinite score, coordinate or IoU is the string "NaN", "Infinity", "-Infinity")."""
     encode = json.JSONEncoder(allow_nan=False, separators=(",", ":")).encode
-    for block in row_blocks(records, truth, block_rows):
+    for block in row_blocks(records, truth, block_rows, typed_ids=True):
         for name in ("score", "x", "y", "w", "h", "iou"):
             block[name] = [_strict(v) for v in block[name]]
         yield "".join(

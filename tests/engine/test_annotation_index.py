@@ -237,18 +237,34 @@ def test_whole_float_and_boolean_ids_are_the_integers(tmp_path):
     assert ours["per_class"]["car"]["tp"] == 1.0  # the match with id false (0) is no TP
 
 
-def test_a_fractional_id_is_refused_with_its_location(tmp_path):
-    """A known deviation: pycocotools would key a dict by 2.5; ids here are integers."""
+def test_fractional_and_text_ids_are_scored_like_pycocotools(tmp_path):
+    """pycocotools 2.0.11 keys its dicts by any JSON id: an image 2.5, an annotation id
+    0.5 or "0" (read as 0 by ``dtm[t, d] = gt['id']``: a match with it is a false
+    positive, as for the number 0), a category "van". A detection of an image id the
+    split does not hold (2.5 against a split of 1 and 2) is refused, as pycocotools'
+    ``loadRes`` refuses it, naming the record."""
     split = _split([{"id": 1, "image_id": 1, "category_id": 1, "bbox": A}])
     (tmp_path / "gt.json").write_text(json.dumps(split))
     truth = load_truth(tmp_path / "gt.json")
     (tmp_path / "dt.json").write_text(json.dumps([_det(1, A, 0.9), _det(2.5, A, 0.9)]))
-    with pytest.raises(InputError, match=r"record 1: field 'image_id': .* whole number, got 2.5"):
+    with pytest.raises(InputError, match=r"record 1: field 'image_id': image 2.5 is not in"):
         load_predictions(tmp_path / "dt.json", truth)
-    split["annotations"][0]["id"] = 0.5
-    (tmp_path / "gt.json").write_text(json.dumps(split))
-    with pytest.raises(InputError, match=r"annotations\[0\]: field 'id': .* got 0.5"):
-        load_truth(tmp_path / "gt.json")
+    split = _split(
+        [
+            {"id": 0.5, "image_id": 2.5, "category_id": "van", "bbox": A},
+            {"id": "0", "image_id": 1, "category_id": "van", "bbox": B},
+            {"id": 7, "image_id": 2.5, "category_id": "van", "bbox": B},
+        ],
+        images=[{"id": 1}, {"id": 2.5}],
+        categories=[{"id": "van", "name": "van"}],
+    )
+    detections = [
+        _det(2.5, A, 0.9, cat="van"),
+        _det(1, B, 0.8, cat="van"),
+        _det(2.5, B, 0.7, cat="van"),
+    ]
+    ours, _ = _compare(tmp_path, split, detections)
+    assert ours["per_class"]["van"]["tp"] == 2  # the match with "0" is a false positive
 
 
 def test_categories_without_names_and_a_file_without_annotations(tmp_path):

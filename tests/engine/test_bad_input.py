@@ -82,9 +82,14 @@ def _with(**changes):
         ),
         (_with(**{"annotations.0.area": -5}), None),  # pycocotools: in no size range
         (_with(**{"annotations.0.score": 1}), None),  # unknown fields are ignored
-        (
+        (  # pycocotools sorts image ids: a mix of text and numbers raises there
             _with(**{"images.0.id": "1"}),
-            r"split\.json: images\[0\]: field 'id': expected 'bool | int | float', got 'str'",
+            r"split\.json: images\[1\]: field 'id': image ids mix numbers and text "
+            r"\(2 here, '1' at images\[0\]\)",
+        ),
+        (
+            _with(**{"images.0.id": float("nan")}),
+            r"split\.json: images\[0\]: field 'id': an id cannot be NaN",
         ),
         (
             {"images": [], "annotations": [], "categories": []},

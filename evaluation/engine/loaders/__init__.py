@@ -261,8 +261,12 @@ def _read_predictions(
     if fmt == "json":
         raw = detection_blocks.json_raw(truth, *coco_json.read_detections(path, ids == "any"))
     elif fmt in label_folders.FORMATS:
+
+        def to_ids(values, known):
+            return ids_like(values, known, truth.image_id_type)
+
         ids, labels, boxes, score, locate, read_dropped = label_folders.read_detections(
-            path, fmt, truth, ids_like, drop_unknown_images=unknown_images == "drop"
+            path, fmt, truth, to_ids, drop_unknown_images=unknown_images == "drop"
         )
         fields = {"image": "file name", "class": "type" if fmt == "kitti" else "class"}
         fields["bbox"] = "x1..y2" if fmt == "kitti" else "cx cy w h"
@@ -270,7 +274,7 @@ def _read_predictions(
             fields = {"image": "image_id", "class": "file name", "bbox": "xmin..ymax"}
         shown = np.array(ids, dtype=object).astype(str) if ids else np.zeros(0, str)
         raw = detection_blocks.Raw(
-            ids_like(ids, truth.image_ids),
+            to_ids(ids, truth.image_ids),
             np.array(labels, dtype=object).astype(str) if labels else np.zeros(0, str),
             boxes,
             score,

@@ -66,7 +66,8 @@ def resolve(cols, image_ids, class_ids):
     the source row of each (for error locations); counts of what changed.
 
     ``cols`` holds every annotation in file order; ``image_ids``/``class_ids`` the ids
-    the file lists. Returns ``(rows, counts)``; ``rows`` is None when nothing changes
+    the file lists, ``image_ids`` in pycocotools' (sorted) order. Returns ``(rows,
+    counts)``; ``rows`` is None when nothing changes
     (no duplicate id, every image and category listed), so the common file keeps its
     order and content exactly.
     """
@@ -84,8 +85,11 @@ def resolve(cols, image_ids, class_ids):
     if selected.all() and not copies.any():
         return None, counts
     picked = np.flatnonzero(selected)
-    # imgToAnns in ascending image id, file order within an image
-    picked = picked[np.argsort(box_images[picked], kind="stable")]
+    # imgToAnns in ascending image id (the rank in ``image_ids``: typed keys do not
+    # sort as the ids do), file order within an image
+    by_key = np.argsort(image_ids, kind="stable")
+    rank = by_key[np.searchsorted(image_ids[by_key], box_images[picked])]
+    picked = picked[np.argsort(rank, kind="stable")]
     rows = last[picked]
     rows = rows[selected[rows]]  # a copy lands where its last annotation points
     return rows, counts

@@ -7,6 +7,7 @@ row number into the human locator of that format (``annotations[12]``, ``line 14
 import numpy as np
 
 from ..errors import InputError
+from .ids import shown
 
 #: Under the ``reject`` box policy ground truth may still overhang the frame by this
 #: much (px): annotation tools round, and published splits carry such boxes.
@@ -19,7 +20,11 @@ BOX_POLICIES = ("keep", "clip", "reject")
 
 
 def show(value):
-    """A value as the user wrote it: 7, 'f3' (not numpy's np.int64(7))."""
+    """A value as the user wrote it: 7, 'f3', 2.5 (not numpy's np.int64(7), nor a
+    typed key's mark: ``ids``)."""
+    typed = shown(value)
+    if typed is not None:
+        return typed
     return repr(value.item() if hasattr(value, "item") else value)
 
 

@@ -32,9 +32,9 @@ SYNTAX_FIRST_BYTES = 32 << 20
 VALIDATE_FIRST_BYTES = 128 << 20
 
 
-#: An id field: JSON integers, and floats or booleans with a whole value (pycocotools
-#: keys dicts by them, where ``1 == 1.0 == true``); see ``whole_ids``.
-Id = int | float | bool
+#: An id field: any JSON number, boolean or text, as pycocotools keys its dicts by them
+#: (``1 == 1.0 == true``, the text ``"1"`` another id); see ``whole_ids`` and ``ids``.
+Id = int | float | bool | str
 
 
 class _Image(msgspec.Struct, gc=False):
@@ -90,7 +90,11 @@ def category_name(category):
     reads names) its id as text."""
     if category.name is not None:
         return category.name
-    return str(int(category.id)) if type(category.id) is not float else repr(category.id)
+    value = category.id
+    if type(value) is str:
+        return value
+    whole = type(value) is not float or value.is_integer()
+    return str(int(value)) if whole else repr(value)
 
 
 def _friendly(message):
@@ -133,43 +137,58 @@ def _as_float(value):
 
 
 def whole_ids(path, values, locate, field):
-    """``values`` as Python ints: a float or boolean with a whole value is that integer
-    (pycocotools finds ``1.0`` and ``true`` under the key 1); any other float is refused
-    naming the record (a known deviation: pycocotools would key a dict by it)."""
+    """``values`` as pycocotools' dicts key them: a float or boolean with a whole value
+    is that integer (``1.0`` and ``true`` are the key 1), any other number stays a
+    float, text stays text. NaN is refused naming the record (a known deviation: it
+    equals no id, not even itself, so pycocotools' sorting and lookups of it depend on
+    object identity)."""
     if set(map(type, values)) <= _INT_ONLY:  # one C-level pass; the common case
         return values
     out = []
     for i, v in enumerate(values):
-        if type(v) is float and not (math.isfinite(v) and v.is_integer()):
-            raise InputError(
-                path,
-                f"an id must be a whole number, got {v!r}",
-                record=locate(i),
-                field=field,
-            )
-        out.append(int(v))
+        if type(v) is float:
+            if v != v:
+                raise InputError(
+                    path,
+                    "an id cannot be NaN (it equals no id, not even itself)",
+                    record=locate(i),
+                    field=field,
+                )
+            out.append(int(v) if v.is_integer() else v)
+        else:
+            out.append(v if type(v) is str else int(v))
     return out
 
 
 def int_column(path, values, locate, field, wide=False):
-    """Python ints as int64. An id outside the signed 64-bit range (JSON allows any
-    integer, pycocotools keeps Python ints) makes the column an object array of
-    Python ints with ``wide``, else it is an input error naming it."""
-    try:
-        return np.array(values, np.int64).reshape(-1)
-    except OverflowError:
-        if wide:
-            return np.array([int(v) for v in values], dtype=object).reshape(-1)
-        for i, value in enumerate(values):
-            if not _INT64_MIN <= value <= _INT64_MAX:
-                raise InputError(
-                    path,
-                    f"{value} is outside the supported range of ids (signed 64-bit integers, "
-                    f"{_INT64_MIN} to {_INT64_MAX})",
-                    record=locate(i),
-                    field=field,
-                ) from None
-        raise
+    """Ids (``whole_ids``) as int64 when all are integers within signed 64 bits. With
+    ``wide`` (``ids="any"``) any other id family becomes an object array of the Python
+    values (ints, floats, text: ``ids.typed_keys`` reads it); without, an id outside
+    that range, fractional or text, is an input error naming it."""
+    if set(map(type, values)) <= _INT_ONLY:
+        try:
+            return np.array(values, np.int64).reshape(-1)
+        except OverflowError:
+            pass
+    if wide:
+        return np.array(values, dtype=object).reshape(-1)
+    for i, value in enumerate(values):
+        if type(value) is not int:
+            raise InputError(
+                path,
+                f"{value!r} is not an integer id (ids=int64 takes signed 64-bit integers)",
+                record=locate(i),
+                field=field,
+            )
+        if not _INT64_MIN <= value <= _INT64_MAX:
+            raise InputError(
+                path,
+                f"{value} is outside the supported range of ids (signed 64-bit integers, "
+                f"{_INT64_MIN} to {_INT64_MAX})",
+                record=locate(i),
+                field=field,
+            )
+    raise AssertionError("unreachable: every id fits int64")
 
 
 def read_truth(path, wide=False):
@@ -446,10 +465,12 @@ def _columns(records, path="", base=0, wide=False):
 
     def ids(values, field):
         values = whole_ids(path, values, locate, field)
-        try:
-            return np.fromiter(values, np.int64, n)
-        except OverflowError:  # locate the id outside int64
-            return int_column(path, values, locate, field, wide)
+        if set(map(type, values)) <= _INT_ONLY:
+            try:
+                return np.fromiter(values, np.int64, n)
+            except OverflowError:  # beyond int64: see int_column
+                pass
+        return int_column(path, values, locate, field, wide)
 
     # Fields read with C-level getters (no Python frame per record); each bbox is a
     # 4-tuple of floats (the struct's type), laid out row after row.

@@ -13,7 +13,7 @@ import dataclasses
 import numpy as np
 
 from . import checks, coco_json, csv_tables
-from .ids import ids_like
+from .ids import NUMBER, TEXT, ids_like, keys_of, typed_keys
 
 #: Formats that can be read a block at a time.
 STREAMABLE = ("json", "csv")
@@ -60,20 +60,20 @@ def _key_order(key):
 def distinct_keys(keys, more=()):
     """The distinct class keys of ``keys`` and ``more``, as text, sorted (integers by
     value): the same for a file read whole and read a block at a time."""
-    seen = {str(k.item() if hasattr(k, "item") else k) for k in keys} | set(more)
+    seen = {_plain(str(k.item() if hasattr(k, "item") else k)) for k in keys} | set(more)
     return tuple(sorted(seen, key=_key_order))
+
+
+def _plain(key):
+    """A class key without a typed key's mark (``ids``)."""
+    return key[1:] if key[:1] in (NUMBER, TEXT) else key
 
 
 def json_raw(truth, image_ids, class_keys, boxes, score, base=0):
     """A block of a COCO-style results file (records ``base``, ``base + 1``...)."""
-    known_images, known_classes = truth.image_ids, truth.class_ids
     shown = image_ids
-    # Ids beyond int64 (object arrays here, decimal text in a wide split) are matched
-    # as decimal text: int(str(n)) == n.
-    if known_images.dtype.kind != "i" or image_ids.dtype == object:
-        image_ids, known_images = image_ids.astype(str), known_images.astype(str)
-    if known_classes.dtype.kind != "i" or class_keys.dtype == object:
-        class_keys, known_classes = class_keys.astype(str), known_classes.astype(str)
+    image_ids, known_images = _json_keys(image_ids, truth.image_ids, truth.image_id_type)
+    class_keys, known_classes = _json_keys(class_keys, truth.class_ids, truth.class_id_type)
     return Raw(
         image_ids,
         class_keys,
@@ -87,10 +87,22 @@ def json_raw(truth, image_ids, class_keys, boxes, score, base=0):
     )
 
 
+def _json_keys(values, known, id_type):
+    """A JSON detections id column and the split's ids, made comparable: as they are
+    when both are int64; typed keys (``ids``) when the split's are JSON ids of another
+    kind or the file's are not all int64, so an id matches only its own type, as in
+    pycocotools; against CSV text ids, as text (CSV has no types)."""
+    if known.dtype.kind == "i" and values.dtype.kind == "i":
+        return values, known
+    if known.dtype.kind != "i" and not id_type:
+        return values.astype(str), known.astype(str)
+    return typed_keys(values), keys_of(known, id_type)
+
+
 def csv_raw(truth, ids, labels, boxes, score, lines):
     """A block of a detections CSV (``lines``: each record's line number)."""
     return Raw(
-        ids_like(ids, truth.image_ids),
+        ids_like(ids, truth.image_ids, truth.image_id_type),
         np.array(labels, dtype=object).astype(str) if labels else np.zeros(0, str),
         boxes,
         score,

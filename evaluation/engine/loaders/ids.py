@@ -1,11 +1,35 @@
-"""External image ids typed like the split's: integers when every id is one, else text."""
+"""Image, class and annotation ids: typed as pycocotools types them, shown as written.
 
+CSV and label-file ids are text: integers when every id is one (``csv_ids``), else text.
+
+COCO-style JSON ids are whatever JSON value the file gives; pycocotools keys its dicts by
+them, so (checked against pycocotools 2.0.11 in ``tests/engine/test_any_ids.py``):
+
+* ``1``, ``1.0`` and ``true`` are one id (Python's ``1 == 1.0 == True``) while the text
+  ``"1"`` is another; an annotation or detection whose id has the other type refers to
+  nothing (pycocotools leaves the annotation out and refuses the detections file);
+* image and category ids are sorted (``sorted``, then ``np.unique``): numbers by value,
+  text by code point; a family mixing text and numbers cannot be sorted (pycocotools
+  raises ``TypeError``) and is refused here, naming the record;
+* annotation ids are never sorted, so they may mix text and numbers.
+
+An id family that is not all 64-bit integers is read as *typed keys*: text made of a
+type mark and the id (``"\\x1d2.5"`` for the number 2.5, ``"\\x1eimg_7"`` for the text
+``img_7``), so ids match only their own type and every comparison is between strings.
+``GroundTruth`` keeps the ids as display text (``display``) with the family's type
+(``GroundTruth.image_id_type``: ``"number"``, ``"text"``, or ``"json"`` for text ids
+that numpy's text arrays cannot hold as written — ending in U+0000 — shown JSON-quoted).
+"""
+
+import json
 import re
 
 import numpy as np
 
 INTEGER = re.compile(r"^[+-]?\d+$")
 INT64 = (-(2**63), 2**63 - 1)
+NUMBER, TEXT = "\x1d", "\x1e"  # the type marks of typed keys
+ID_TYPES = ("", "number", "text", "json")
 
 
 def csv_ids(values):
@@ -17,13 +41,106 @@ def csv_ids(values):
     return np.array(values, dtype=object).astype(str)
 
 
-def ids_like(values, known_ids):
+def number_text(value):
+    """A JSON number id as text: an integer in decimal, any other float as Python's
+    shortest round-trip ``repr`` (``2.5``, ``inf``)."""
+    if isinstance(value, (int, np.integer)):
+        return str(int(value))
+    return repr(float(value))
+
+
+def typed_key(value):
+    """The typed key of one JSON id (an int, a non-whole float or a str)."""
+    return TEXT + value if type(value) is str else NUMBER + number_text(value)
+
+
+def typed_keys(values):
+    """Typed keys of a column of JSON ids (an int64 array or an object array)."""
+    if isinstance(values, np.ndarray) and values.dtype.kind == "i":
+        return np.array([NUMBER + str(v) for v in values.tolist()], dtype=object)
+    return np.array([typed_key(v) for v in np.asarray(values, dtype=object).tolist()], object)
+
+
+def key_value(key):
+    """The JSON id of a typed key (what the file wrote, up to ``1.0`` -> ``1``)."""
+    if key[0] == TEXT:
+        return key[1:]
+    text = key[1:]
+    return int(text) if INTEGER.match(text) else float(text)
+
+
+def family_type(keys):
+    """``"number"``, ``"text"`` or ``"json"`` (text some id of which numpy's text arrays
+    would cut: a trailing U+0000) for the typed keys of a family's defining ids, whose
+    types are known to agree."""
+    if not len(keys) or keys[0][0] == NUMBER:
+        return "number"
+    return "json" if any(k.endswith("\x00") for k in keys) else "text"
+
+
+def display(keys, id_type):
+    """The ids of typed ``keys`` as ``GroundTruth`` keeps them (numpy text)."""
+    if id_type == "json":
+        return np.array([json.dumps(key_value(k), ensure_ascii=False) for k in keys], str)
+    if not len(keys):
+        return np.zeros(0, str)
+    return np.array([k[1:] for k in keys], str)
+
+
+def keys_of(ids, id_type):
+    """Typed keys of ``GroundTruth`` ids of the given type (the inverse of ``display``;
+    int64 ids of a split without a type are numbers)."""
+    if id_type == "" and ids.dtype.kind == "i":
+        return typed_keys(ids)
+    if id_type == "number":
+        return np.array([NUMBER + v for v in ids.tolist()], dtype=object)
+    if id_type == "json":
+        return np.array([TEXT + json.loads(v) for v in ids.tolist()], dtype=object)
+    return np.array([TEXT + v for v in ids.tolist()], dtype=object)
+
+
+def sort_order(keys):
+    """Stable order of a family's typed keys as pycocotools sorts the ids: numbers by
+    value (Python's exact int/float comparison), text by code point."""
+    values = [key_value(k) for k in keys.tolist()]
+    return np.array(sorted(range(len(values)), key=values.__getitem__), np.int64)
+
+
+def shown(value):
+    """A typed key as the user wrote the id (text quoted), for messages; anything else
+    as it is."""
+    if isinstance(value, str) and value[:1] in (NUMBER, TEXT):
+        return repr(value[1:]) if value[0] == TEXT else value[1:]
+    return None
+
+
+def _canonical_number(text):
+    """CSV or file-name text of a number as a JSON number id is shown (``2.50`` ->
+    ``2.5``, ``1e0`` -> ``1``); other text unchanged."""
+    if INTEGER.match(text):
+        return str(int(text))
+    try:
+        value = float(text)
+    except ValueError:
+        return text
+    if value != value:
+        return text
+    return str(int(value)) if value.is_integer() else repr(value)
+
+
+def ids_like(values, known_ids, id_type=""):
     """Image ids read as text, typed like the split's ids so they can be looked up.
 
     With integer split ids, text that is not an integer becomes an id no image has,
-    so the lookup reports it as not in the split.
+    so the lookup reports it as not in the split. Against a split of JSON number ids
+    that are not all 64-bit integers, numeric text is compared as the number it
+    writes; against JSON-quoted text ids, text is quoted alike.
     """
     text = np.array(values, dtype=object).astype(str) if len(values) else np.zeros(0, str)
+    if id_type == "number":
+        return np.array([_canonical_number(v) for v in text.tolist()], str).reshape(-1)
+    if id_type == "json":
+        return np.array([json.dumps(v, ensure_ascii=False) for v in text.tolist()], str)
     if known_ids.dtype.kind != "i":
         return text
     converted = np.full(len(text), np.iinfo(np.int64).min, np.int64)

@@ -8,29 +8,62 @@ import numpy as np
 from ..data import GroundTruth
 from ..errors import InputError
 from . import annotation_index, attributes, checks, coco_json, csv_tables, label_folders
+from . import ids as ids_module
 from .ids import csv_ids, ids_like
 
 
-def _widen(cols, names):
-    """An id family (the images' ids and the boxes' references to them...) with one
-    id beyond signed 64 bits becomes object arrays of Python ints throughout, so it
-    sorts and matches numerically as pycocotools' Python ints do."""
-    if any(cols[name].dtype == object for name in names):
-        for name in names:
-            cols[name] = np.array([int(v) for v in cols[name].tolist()], dtype=object)
+def _shown(values, id_type):
+    """Ids as ``GroundTruth`` keeps them: typed keys (object arrays) as display text,
+    int64 and CSV text as they are."""
+    if values.dtype != object:
+        return values
+    return ids_module.display(values, id_type)
 
 
-def _as_text(ids):
-    """Ids kept as decimal text once sorted: beyond int64 they fit no numpy integer."""
-    return ids.astype(str) if ids.dtype == object else ids
+def _typed_family(path, cols, defining, refs, locate, what):
+    """An id family of a JSON split (the images' ids and the boxes' and regions'
+    references to them; the categories' ids and the boxes' references) that is not all
+    64-bit integers becomes typed keys throughout (``ids``); its type is returned
+    (``""`` for int64 ids, left as they are). The defining ids must be all numbers or
+    all text: pycocotools sorts them, and Python cannot sort a mix."""
+    names = (defining, *refs)
+    if all(cols[name].dtype.kind == "i" for name in names):
+        return ""
+    for name in names:
+        cols[name] = ids_module.typed_keys(cols[name])
+    keys = cols[defining]
+    marks = np.array([key[0] for key in keys.tolist()], dtype=object)
+    mixed = np.flatnonzero(marks != marks[0]) if len(marks) else []
+    if len(mixed):
+        i = int(mixed[0])
+        raise InputError(
+            path,
+            f"{what} ids mix numbers and text ({ids_module.shown(keys[i])} here, "
+            f"{ids_module.shown(keys[0])} at {locate(0)}): pycocotools sorts them and Python "
+            "cannot sort such a mix",
+            record=locate(i),
+            field="id",
+        )
+    return ids_module.family_type(keys)
+
+
+def _order(values, id_type):
+    """Stable ascending order of a family's defining ids (pycocotools' order)."""
+    return ids_module.sort_order(values) if id_type else np.argsort(values, kind="stable")
 
 
 def read_truth(path, images, fmt, classes, policy, ids="any", annotations="reference"):
     if fmt == "json":
         cols = coco_json.read_truth(path, wide=ids == "any")
-        _widen(cols, ("image_ids", "box_image_ids", "region_image_ids"))
-        _widen(cols, ("class_ids", "box_class_ids"))
         image_locate = lambda i: f"images[{i}]"  # noqa: E731
+        image_type = _typed_family(
+            path, cols, "image_ids", ("box_image_ids", "region_image_ids"), image_locate, "image"
+        )
+        class_type = _typed_family(
+            path, cols, "class_ids", ("box_class_ids",), lambda i: f"categories[{i}]", "category"
+        )
+        if cols["box_ids"].dtype.kind != "i":  # never sorted: text and numbers may mix
+            cols["box_ids"] = ids_module.typed_keys(cols["box_ids"])
         box_locate = lambda i: f"annotations[{i}]"  # noqa: E731
         box_fields = {"image": "image_id", "class": "category_id", "bbox": "bbox", "id": "id"}
         image_path = path
@@ -43,6 +76,7 @@ def read_truth(path, images, fmt, classes, policy, ids="any", annotations="refer
         )
         region_locate = lambda i: f"dont_care[{i}]"  # noqa: E731
     elif fmt == "csv":
+        image_type = class_type = ""
         cols = _csv_truth_columns(path, images, classes)
         image_path = images
         image_locate = lambda i: f"line {cols['image_lines'][i]}"  # noqa: E731
@@ -50,6 +84,7 @@ def read_truth(path, images, fmt, classes, policy, ids="any", annotations="refer
         box_fields = {"image": "image_id", "class": "label", "bbox": "x_min..y_max", "id": "id"}
         region_locate = lambda i: f"line {cols['region_lines'][i]}"  # noqa: E731
     else:
+        image_type = class_type = ""
         cols = label_folders.read_truth(path, images, fmt, classes)
         cols["image_ids"] = csv_ids(cols["image_ids"])
         cols["box_image_ids"] = ids_like(cols["box_image_ids"], cols["image_ids"])
@@ -81,21 +116,18 @@ def read_truth(path, images, fmt, classes, policy, ids="any", annotations="refer
             lambda i, values=values: f"must be > 0, got {values[i]:g}",
         )
         checks.require_sizes(image_path, values, image_locate, policy, field)
+    image_order = _order(cols["image_ids"], image_type)
+    image_ids = cols["image_ids"][image_order]
+    class_order = _order(cols["class_ids"], class_type)
+    class_ids = cols["class_ids"][class_order]
     annotation_counts = dict.fromkeys(annotation_index.COUNTS, 0)
     if fmt == "json" and annotations == "strict":
         checks.check_unique(path, cols["box_ids"], box_locate, "id")
     elif fmt == "json":
-        rows, annotation_counts = annotation_index.resolve(
-            cols, cols["image_ids"], cols["class_ids"]
-        )
+        rows, annotation_counts = annotation_index.resolve(cols, image_ids, class_ids)
         if rows is not None:
             annotation_index.take(cols, rows)
             box_locate = lambda i: f"annotations[{rows[i]}]"  # noqa: E731
-
-    image_order = np.argsort(cols["image_ids"], kind="stable")  # numeric, also when wide
-    image_ids = cols["image_ids"][image_order]
-    class_order = np.argsort(cols["class_ids"], kind="stable")
-    class_ids = cols["class_ids"][class_order]
 
     box_image, found = checks.resolve(path, cols["box_image_ids"], image_ids, box_locate, "", "")
     checks.require_found(
@@ -147,12 +179,12 @@ def read_truth(path, images, fmt, classes, policy, ids="any", annotations="refer
     tags = [cols["image_tags"][i] for i in image_order]
     return GroundTruth(
         classes=tuple(names),
-        class_ids=_as_text(class_ids),
-        image_ids=_as_text(image_ids),
+        class_ids=_shown(class_ids, class_type),
+        image_ids=_shown(image_ids, image_type),
         image_width=cols["image_width"][image_order],
         image_height=cols["image_height"][image_order],
         image_tags=tuple(tuple(t) for t in tags),
-        box_ids=_as_text(cols["box_ids"]),
+        box_ids=_shown(cols["box_ids"], "text"),
         box_image=box_image,
         box_class=box_class,
         boxes=boxes,
@@ -161,6 +193,8 @@ def read_truth(path, images, fmt, classes, policy, ids="any", annotations="refer
         difficult=cols["difficult"],
         ignore=cols["ignore"],
         source=str(path),
+        image_id_type=image_type,
+        class_id_type=class_type,
         box_policy=policy,
         box_counts={
             **checks.truth_box_counts(boxes, *frame, box_image),
