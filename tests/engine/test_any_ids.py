@@ -160,6 +160,25 @@ def test_ids_ending_in_nul_are_scored_where_pycocotools_drops_them(tmp_path):
     assert ours["counts"]["images"] == 2 and ours["summary"]["AP"] != without["summary"]["AP"]
 
 
+def test_integers_beyond_2_53_beside_a_fraction_are_scored_where_pycocotools_drops_them(
+    tmp_path,
+):
+    """The same deviation for numbers: beside the fraction 0.5, ``np.unique`` makes the
+    id list float64, 2^53 + 1 becomes 2^53, and that image is never looked up there."""
+    split, detections = _tied_pair((2**53 + 1, 0.5))
+    truth, predictions = _loaded(tmp_path, split, detections)
+    ours = evaluate(truth, predictions)
+    from .conftest import pycocotools_eval
+
+    reference = pycocotools_eval(tmp_path / "gt.json", tmp_path / "dt.json")
+    split["images"] = split["images"][1:]
+    split["annotations"] = split["annotations"][1:]
+    without = evaluate(*_loaded(tmp_path, split, detections[1:2]))
+    assert reference.stats[0] == pytest.approx(without["summary"]["AP"], abs=1e-12)
+    assert truth.image_ids.tolist() == ["0.5", str(2**53 + 1)]
+    assert ours["summary"]["AP"] != without["summary"]["AP"]
+
+
 def test_the_order_of_text_ids_changes_the_number(tmp_path):
     """The check above has teeth: "10"/"9" and 10/9 give different AP50 (worked out by
     hand: the FP ranks first on the image sorted first, so precision at the first TP is
@@ -244,3 +263,45 @@ def test_ids_are_shown_and_exported_as_written(tmp_path):
     rows = [json.loads(line) for line in "".join(export.jsonl_chunks(records, truth)).split("\n")
             if line]  # fmt: skip
     assert {row["image_id"] for row in rows} == {2.5, 10**20}
+
+
+def test_csv_detections_name_number_ids_by_their_value(tmp_path):
+    """CSV has no types: against a split of JSON number ids, the text ``2.50`` names the
+    image 2.5 and ``1e0`` the image 1 (Python's ``float``, as the ids' own reading)."""
+    split, _ = _tied_pair((1, 2.5))
+    gt, _ = _write(tmp_path, split, [])
+    rows = ["image_id,label,x_min,y_min,x_max,y_max,score", "2.50,car,10,10,30,30,0.9"]
+    rows.append("1e0,car,10,10,30,30,0.8")
+    (tmp_path / "dt.csv").write_text("\n".join(rows) + "\n")
+    truth = load_truth(gt)
+    predictions = load_predictions(tmp_path / "dt.csv", truth)
+    assert truth.image_ids[predictions.image].tolist() == ["2.5", "1"]
+    assert evaluate(truth, predictions)["summary"]["AP50"] == pytest.approx(1.0)
+
+
+def test_typed_ids_survive_the_cache_and_the_command_line(tmp_path):
+    """A split of text ids read back from the columnar cache keeps its type (a number 1
+    still names no image), and the CLI's JSON result and records export stay valid
+    JSON with the ids as written."""
+    import subprocess
+    import sys
+
+    split, detections = _tied_pair(("img/10", "img/9"))
+    gt, dt = _write(tmp_path, split, detections)
+    first = load_truth(gt, cache_dir=tmp_path / "cache")
+    again = load_truth(gt, cache_dir=tmp_path / "cache")
+    assert again.image_id_type == first.image_id_type == "text"
+    assert again.image_ids.tolist() == ["img/10", "img/9"]
+    (tmp_path / "other").mkdir()
+    _, wrong = _write(tmp_path / "other", split, [{**detections[0], "image_id": 10}])
+    with pytest.raises(InputError, match="image 10 is not in the split"):
+        load_predictions(wrong, again)
+    out = tmp_path / "records.jsonl"
+    command = [sys.executable, "-m", "evaluation.engine", "score", "--truth", str(gt)]
+    command += ["--predictions", str(dt), "--format", "json", "--records-out", str(out)]
+    done = subprocess.run(command, capture_output=True, text=True, check=False)
+    assert done.returncode == 0, done.stderr
+    result = json.loads(done.stdout)
+    assert result["counts"]["images"] == 2
+    rows = [json.loads(line) for line in out.read_text().splitlines()]
+    assert {row["image_id"] for row in rows} == {"img/10", "img/9"}
