@@ -4,10 +4,11 @@ Under the platform's default input policy (``services.input_policy``) a file tha
 pycocotools 2.0.11 accepts is scored as it scores it: annotations of images or
 categories the file does not list are never evaluated (``COCOeval._prepare`` walks only
 ``getImgIds()``/``getCatIds()``), an annotation id given twice resolves to the last
-annotation with it (``COCO.createIndex``), and detections of categories the split does
-not list are kept by ``loadRes`` but never looked at by ``evaluate``. Nothing of that is
-silent: the split page, the version page, the API and the client show these lines,
-built here from the counts the engine stored (``annotations_left_out`` of a split,
+annotation with it and an image or category id listed twice is its last entry
+(``COCO.createIndex``), and detections of categories the split does not list are
+kept by ``loadRes`` but never looked at by ``evaluate``. Nothing of that is silent:
+the split page, the version page, the API and the client show these lines, built
+here from the counts the engine stored (``annotations_left_out`` of a split,
 ``counts`` of a result).
 """
 
@@ -49,6 +50,20 @@ def annotation_lines(counts):
         lines.append(
             f"{_plural(copies, 'annotation', 'annotations')} with a repeated id scored as "
             "a copy of the last annotation with that id (as pycocotools' index does)"
+        )
+    for key, what in (("duplicate_image_entries", "image"), ("duplicate_category_entries",
+                                                               "category")):  # fmt: skip
+        n = int(counts.get(key, 0))
+        if n:
+            lines.append(
+                f"{_plural(n, 'entry', 'entries')} of {what} ids listed more than once left "
+                f"out: each {what} is its last entry (as pycocotools' index keeps it)"
+            )
+    renamed = int(counts.get("categories_renamed", 0))
+    if renamed:
+        lines.append(
+            f"{_plural(renamed, 'category', 'categories')} sharing a name named with "
+            'their ids ("car (id 3)"): per-class numbers are kept by name'
         )
     return lines
 

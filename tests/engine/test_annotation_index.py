@@ -397,3 +397,40 @@ def test_odd_files_match_pycocotools(tmp_path, case):
     """Every summary number and per-class AP equal to pycocotools 2.0.11's."""
     split, detections = make_odd(np.random.default_rng(case["seed"]), case)
     _compare(tmp_path, split, detections)
+
+
+def test_images_and_categories_listed_twice_are_one_as_in_pycocotools(tmp_path):
+    """``COCO.createIndex`` keeps the last entry of an image or category id listed twice
+    (``imgs[img['id']] = img``): pycocotools 2.0.11 scores such a file, and so do we,
+    counting the entries dropped; ``strict`` refuses it naming the second entry."""
+    split = _split(
+        [
+            {"id": 1, "image_id": 1, "category_id": 1, "bbox": A},
+            {"id": 2, "image_id": 2, "category_id": 2, "bbox": B},
+        ],
+        images=[{"id": 1, "width": 100, "height": 100}, {"id": 2}, {"id": 1}],
+        categories=[{"id": 1, "name": "car"}, {"id": 2, "name": "van"}, {"id": 1, "name": "bus"}],
+    )
+    ours, _ = _compare(tmp_path, split, [_det(1, A, 0.9), _det(2, B, 0.8, cat=2)])
+    counts = ours["counts"]["boxes"]["truth"]
+    assert counts["duplicate_image_entries"] == 1 and counts["duplicate_category_entries"] == 1
+    assert list(ours["per_class"]) == ["bus", "van"]  # the last entry's name
+    with pytest.raises(InputError, match=r"categories\[2\]: field .id.: duplicate id 1"):
+        load_truth(tmp_path / "truth.json", annotations="strict")
+
+
+def test_categories_sharing_a_name_are_told_apart_by_id(tmp_path):
+    """pycocotools never reads names, so two categories may share one; per-class numbers
+    here are keyed by name, so each such class is named with its id (counted)."""
+    split = _split(
+        [
+            {"id": 1, "image_id": 1, "category_id": 1, "bbox": A},
+            {"id": 2, "image_id": 1, "category_id": 7, "bbox": B},
+        ],
+        categories=[{"id": 1, "name": "car"}, {"id": 7, "name": "car"}],
+    )
+    ours, _ = _compare(tmp_path, split, [_det(1, A, 0.9), _det(1, B, 0.8, cat=7)])
+    assert list(ours["per_class"]) == ["car (id 1)", "car (id 7)"]
+    assert ours["counts"]["boxes"]["truth"]["categories_renamed"] == 2
+    with pytest.raises(InputError, match=r"categories\[1\]: field 'name': duplicate name 'car'"):
+        load_truth(tmp_path / "truth.json", annotations="strict")

@@ -69,6 +69,9 @@ def _restyle(draw, split, detections, styles):
         if earlier and draw(st.integers(0, 9)) == 0:  # a repeated id: the last one wins
             ann["id"] = draw(st.sampled_from(earlier))
         earlier.append(ann["id"])
+    if draw(st.booleans()):  # listed twice: pycocotools' index keeps the last entry
+        split["images"].append(dict(split["images"][-1]))
+        split["categories"].append({**split["categories"][0], "name": "listed again"})
     for det in detections:
         det["image_id"] = image_map[det["image_id"]]
         # a class the split lacks keeps its int id: of the other type in a text family

@@ -74,7 +74,7 @@ def _with(**changes):
         ),
         (
             _with(**{"categories.1.name": "pedestrian"}),
-            r"split\.json: categories\[1\]: field 'name': duplicate id 'pedestrian'",
+            r"split\.json: categories\[1\]: field 'name': duplicate name 'pedestrian'",
         ),
         (
             _with(**{"images.0.width": 0}),

@@ -31,7 +31,7 @@ import pytest
 from django.core.management import CommandError, call_command
 from django.urls import reverse
 
-from evaluation import engine
+from evaluation import engine, left_out
 from evaluation import services as evaluation_services
 from evaluation.models import BenchmarkSplit, Evaluation, PredictionFile, Scorecard
 from evaluation.services import UploadError
@@ -118,6 +118,27 @@ def test_the_service_loads_what_pycocotools_accepts_and_records_what_it_left_out
     # boxes as pycocotools scores them: every listed annotation, the repeated id's
     # first occurrence replaced by a copy of its last
     assert split.box_count == len(messy["annotations"]) - 2
+
+
+def test_images_and_categories_listed_twice_load_as_pycocotools_indexes_them():
+    """``COCO.createIndex`` (pycocotools 2.0.11) keeps the last entry of an image or
+    category id listed twice and never reads names: such a split loads, its page and
+    API say so, and ``strict`` refuses it naming the entry."""
+    split = split_dict()
+    split["images"].append(dict(split["images"][0]))
+    split["categories"].append({**split["categories"][0], "id": 77})  # the same name
+    loaded = evaluation_services.load_split(
+        name="ring-road", revision=1, truth=upload("ring-road.json", split)
+    )
+    assert loaded.annotations_left_out == {"duplicate_image_entries": 1, "categories_renamed": 2}
+    assert loaded.image_count == len(split["images"]) - 1
+    lines = left_out.of_split(loaded)
+    assert any("image ids listed more than once" in line for line in lines)
+    assert any("named with their ids" in line for line in lines)
+    with pytest.raises(engine.InputError, match=r"categories\[3\]: field 'name': duplicate name"):
+        evaluation_services.load_split(
+            name="ring-road", revision=2, truth=upload("r.json", split), annotations="strict"
+        )
 
 
 def test_the_strict_option_refuses_the_same_file_and_stores_nothing():

@@ -13,9 +13,14 @@ checked by running it in ``tests/engine/test_annotation_index.py``):
   becomes a copy of the last one, placed under the last one's image and category
   (copies of a last annotation whose image or category is not listed are dropped).
 
+* ``createIndex`` fills ``imgs[img['id']] = img`` and ``cats[cat['id']] = cat``, so an
+  image or a category listed twice is one image or category, its last entry
+  (``last_entries``). Names are never read, so two categories may share one: here
+  each such class is named ``"<name> (id <id>)"`` (per-class numbers are keyed by name).
+
 ``annotations="reference"`` (the default) reproduces this and counts what it did;
 ``"strict"`` (an option on the platform, whose default is ``reference`` too) refuses
-duplicate ids and unknown images or categories, naming the record.
+duplicate ids and names and unknown images or categories, naming the record.
 """
 
 import numpy as np
@@ -26,7 +31,13 @@ COUNTS = (
     "annotations_of_unlisted_images",
     "annotations_of_unlisted_categories",
     "duplicate_id_copies",
+    "duplicate_image_entries",
+    "duplicate_category_entries",
+    "categories_renamed",
 )
+#: The columns of one image / one category in ``coco_json._Records``.
+IMAGE_COLUMNS = ("image_ids", "image_width", "image_height", "image_tags")
+CATEGORY_COLUMNS = ("class_ids", "class_names")
 
 #: Per-annotation columns of ``coco_json._Records.annotations``.
 PER_ANNOTATION = (
@@ -93,6 +104,36 @@ def resolve(cols, image_ids, class_ids):
     rows = last[picked]
     rows = rows[selected[rows]]  # a copy lands where its last annotation points
     return rows, counts
+
+
+def last_entries(cols):
+    """Keep the last entry of each image id and each category id, as pycocotools'
+    index does; returns the kept rows of each (``images``, ``categories``: for error
+    locations) and the counts of entries dropped."""
+    kept, counts = {}, {}
+    for what, names in (("image", IMAGE_COLUMNS), ("category", CATEGORY_COLUMNS)):
+        n = len(cols[names[0]])
+        rows = np.flatnonzero(_last_of_each_id(cols[names[0]]) == np.arange(n))
+        counts[f"duplicate_{what}_entries"] = n - len(rows)
+        if len(rows) < n:
+            for name in names:
+                values = cols[name]
+                cols[name] = (
+                    values[rows] if isinstance(values, np.ndarray) else [values[i] for i in rows]
+                )
+        kept[what] = rows
+    return kept, counts
+
+
+def rename_shared_names(names, shown_ids):
+    """Class names with each name two categories share made ``"<name> (id <id>)"``;
+    and how many were renamed."""
+    seen = {}
+    for name in names:
+        seen[name] = seen.get(name, 0) + 1
+    renamed = [f"{name} (id {shown})" if seen[name] > 1 else name
+               for name, shown in zip(names, shown_ids)]  # fmt: skip
+    return renamed, sum(1 for name in names if seen[name] > 1)
 
 
 def take(cols, rows):

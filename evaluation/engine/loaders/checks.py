@@ -41,8 +41,8 @@ def fail_at(path, mask, locate, field, message):
         )
 
 
-def check_unique(path, values, locate, field):
-    """Duplicate ids: the error names the second occurrence and the first."""
+def check_unique(path, values, locate, field, what="id"):
+    """Duplicate ids (or names): the error names the second occurrence and the first."""
     values = np.asarray(values)
     if len(values) < 2:
         return
@@ -55,7 +55,7 @@ def check_unique(path, values, locate, field):
         first_seen = int(order[np.searchsorted(ordered, values[i])])
         raise InputError(
             path,
-            f"duplicate id {show(values[i])} (first used by {locate(first_seen)})",
+            f"duplicate {what} {show(values[i])} (first used by {locate(first_seen)})",
             record=locate(i),
             field=field,
         )

@@ -47,12 +47,18 @@ def _typed_family(path, cols, defining, refs, locate, what):
     return ids_module.family_type(keys)
 
 
+def _id_text(value):
+    """An id (an int, or a typed key) as text, without a typed key's mark."""
+    return value[1:] if isinstance(value, str) else str(value)
+
+
 def _order(values, id_type):
     """Stable ascending order of a family's defining ids (pycocotools' order)."""
     return ids_module.sort_order(values) if id_type else np.argsort(values, kind="stable")
 
 
 def read_truth(path, images, fmt, classes, policy, ids="any", annotations="reference"):
+    entry_counts = {}
     if fmt == "json":
         cols = coco_json.read_truth(path, wide=ids == "any")
         image_locate = lambda i: f"images[{i}]"  # noqa: E731
@@ -67,12 +73,22 @@ def read_truth(path, images, fmt, classes, policy, ids="any", annotations="refer
         box_locate = lambda i: f"annotations[{i}]"  # noqa: E731
         box_fields = {"image": "image_id", "class": "category_id", "bbox": "bbox", "id": "id"}
         image_path = path
-        checks.check_unique(path, cols["class_ids"], lambda i: f"categories[{i}]", "id")
+        category_locate = lambda i: f"categories[{i}]"  # noqa: E731
+        if annotations != "strict":  # an image or category listed twice: its last entry
+            kept, entry_counts = annotation_index.last_entries(cols)
+            image_locate = lambda i: f"images[{kept['image'][i]}]"  # noqa: E731
+            category_locate = lambda i: f"categories[{kept['category'][i]}]"  # noqa: E731
+            shown = [_id_text(v) for v in cols["class_ids"].tolist()]
+            cols["class_names"], entry_counts["categories_renamed"] = (
+                annotation_index.rename_shared_names(cols["class_names"], shown)
+            )
+        checks.check_unique(path, cols["class_ids"], category_locate, "id")
         checks.check_unique(
             path,
             np.array(cols["class_names"], dtype=object).astype(str),
-            lambda i: f"categories[{i}]",
+            category_locate,
             "name",
+            what="name",
         )
         region_locate = lambda i: f"dont_care[{i}]"  # noqa: E731
     elif fmt == "csv":
@@ -120,11 +136,12 @@ def read_truth(path, images, fmt, classes, policy, ids="any", annotations="refer
     image_ids = cols["image_ids"][image_order]
     class_order = _order(cols["class_ids"], class_type)
     class_ids = cols["class_ids"][class_order]
-    annotation_counts = dict.fromkeys(annotation_index.COUNTS, 0)
+    annotation_counts = {**dict.fromkeys(annotation_index.COUNTS, 0), **entry_counts}
     if fmt == "json" and annotations == "strict":
         checks.check_unique(path, cols["box_ids"], box_locate, "id")
     elif fmt == "json":
-        rows, annotation_counts = annotation_index.resolve(cols, image_ids, class_ids)
+        rows, resolved = annotation_index.resolve(cols, image_ids, class_ids)
+        annotation_counts.update(resolved)
         if rows is not None:
             annotation_index.take(cols, rows)
             box_locate = lambda i: f"annotations[{rows[i]}]"  # noqa: E731
