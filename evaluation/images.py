@@ -8,10 +8,14 @@ split), or as a URL template the browser fills in (``https://images.example/{fil
 Nothing is half-stored: a refused upload deletes what it wrote.
 """
 
+import codecs
+import csv
 import functools
+import math
 import os
 import posixpath
 import tempfile
+import typing
 import zipfile
 from urllib.parse import urlsplit
 
@@ -21,6 +25,8 @@ from django.core.files.base import ContentFile
 from django.core.files.storage import default_storage
 from django.db import IntegrityError, transaction
 
+from .engine.loaders import json_literals
+from .engine.loaders.ids import csv_ids
 from .models import BenchmarkSplit, SplitImages
 from .services import UploadError
 from .storage import TooLarge, local_path, spool
@@ -52,35 +58,63 @@ def _limit():
 
 
 class _Image(msgspec.Struct):
-    id: int | str
-    file_name: str = ""
+    id: typing.Any = None
+    file_name: typing.Any = ""
 
 
 class _ImagesOnly(msgspec.Struct):
     images: list[_Image] = []
 
 
+def id_text(value):
+    """An image id read from COCO JSON as the engine shows it (``GroundTruth.image_ids``
+    as text), or None for a value no id can be: integers (any size) in decimal,
+    booleans and whole floats as the integers (``1.0 == 1 == true`` keys one image in
+    pycocotools' dicts, ``coco_json.whole_ids``), other floats in their shortest form.
+
+    >>> [id_text(v) for v in (7, 2**64 + 5, True, 3.0, 1e20, 2.5, None)]
+    ['7', '18446744073709551621', '1', '3', '100000000000000000000', '2.5', None]
+    """
+    if isinstance(value, bool | int):
+        return str(int(value))
+    if isinstance(value, float) and math.isfinite(value):
+        return str(int(value)) if value.is_integer() else repr(value)
+    return None
+
+
 @functools.lru_cache(maxsize=16)
 def _file_names(split_id, sha256):
     split = BenchmarkSplit.objects.get(pk=split_id)
+    if split.source_format not in ("json", "csv") and not split.images_file:
+        return {}  # a label archive names no file_name
     source = split.images_file if split.images_file else split.truth_file
-    names = {}
     with local_path(source) as path:
         if split.source_format == "csv" or path.lower().endswith(".csv"):
-            import csv
-
-            with open(path, newline="", encoding="utf-8-sig") as f:
-                for row in csv.DictReader(f):
-                    key = row.get("image_id") or row.get("id")
-                    if key is not None and row.get("file_name"):
-                        names[str(key)] = row["file_name"]
-            return names
+            return _csv_file_names(path)
         with open(path, "rb") as f:
-            decoded = msgspec.json.decode(f.read(), type=_ImagesOnly)
+            data = f.read()
+    # as the engine reads the file: a byte-order mark skipped, NaN/Infinity/1e400
+    # anywhere read as Python's json reads them (pycocotools reads the file so)
+    decoded = json_literals.decode(data.removeprefix(codecs.BOM_UTF8), _ImagesOnly)
+    names = {}
     for image in decoded.images:
-        if image.file_name:
-            names[str(image.id)] = image.file_name
+        key = id_text(image.id)
+        if key is not None and image.file_name and isinstance(image.file_name, str):
+            names[key] = image.file_name
     return names
+
+
+def _csv_file_names(path):
+    """A CSV images table's file names, keyed by its ids typed as the engine types
+    them (``loaders.ids.csv_ids``: integers when every id is one, so ``007`` is 7)."""
+    with open(path, newline="", encoding="utf-8-sig") as f:
+        rows = [
+            (row.get("image_id") or row.get("id"), row.get("file_name"))
+            for row in csv.DictReader(f)
+        ]
+    rows = [(key, name) for key, name in rows if key is not None]
+    keys = csv_ids([key for key, _ in rows]) if rows else []
+    return {str(key): name for key, (_, name) in zip(keys, rows) if name}
 
 
 def file_names(split):

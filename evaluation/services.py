@@ -29,11 +29,12 @@ from .storage import (
 
 log = logging.getLogger(__name__)
 
-#: The platform refuses JSON ids outside signed 64 bits (the engine's CLI takes any
-#: integer, as pycocotools does): every entry point reaches the engine through the
-#: loads here, so a split or predictions file holding one is refused at upload (400)
-#: or, past the inline-validation size, fails its evaluation, naming file/record/field.
-ENGINE_IDS = "int64"
+#: The ids the platform reads (``engine.load_truth``/``load_predictions(ids=)``): any
+#: id pycocotools 2.0.11 accepts, as it orders and matches them. Every entry point
+#: reaches the engine through the loads here; pages, URLs and downloads never hold an
+#: id as a number (images are routed by their index in the split, ids shown as the
+#: engine's text), so no stricter reading is offered.
+ENGINE_IDS = "any"
 #: How a split's annotations are read (``engine.load_truth(annotations=)``): the
 #: default is pycocotools' reading, counted; ``strict`` refuses such files.
 ANNOTATION_POLICIES = ("reference", "strict")
@@ -175,12 +176,10 @@ def load_split(
             e.argument = "images" if images_path and str(e.path) == images_path else "truth"
             e.path = os.path.basename(e.path)  # the name as uploaded, not the spool folder
             raise
-        except OverflowError:  # a number the engine's 64-bit columns cannot hold
+        except OverflowError:  # a number a fixed-size column cannot hold
             names = [os.path.basename(p) for p in (truth_path, images_path) if p]
             raise UploadError(
-                f"{' or '.join(names)}: a number is too large for a 64-bit integer "
-                "(ids must lie between -2^63 and 2^63 - 1)",
-                path="truth",
+                f"{' or '.join(names)}: a number is too large to be read", path="truth"
             ) from None
         sha = loaded.content_hash()
         twin = BenchmarkSplit.objects.filter(sha256=sha).first()

@@ -76,9 +76,10 @@ def test_an_unexpected_error_fails_at_once_with_a_message(
 def test_a_prediction_id_past_2_63_ends_failed_with_a_message(
     version, split, split_truth, users, run_tasks, settings
 ):
-    """A real file with an image id >= 2^63 (the issue's OverflowError), too large to be
-    checked in the request: the worker's evaluation ends failed with a message naming
-    the file, whichever layer refuses it."""
+    """A real file with a detection id >= 2^63 and an image id beyond 2^64 that the
+    split lacks (the issue's OverflowError once), too large to be checked in the
+    request: the worker reads both ids (any size, as pycocotools) and the evaluation
+    ends failed naming the file and the unknown image as written."""
     settings.BENCHBOOK_INLINE_VALIDATION_BYTES = 0
     dets = detections_for(split_truth)
     dets[0]["id"] = 2**63
@@ -88,7 +89,10 @@ def test_a_prediction_id_past_2_63_ends_failed_with_a_message(
     )
     evaluations = Evaluation.objects.filter(predictions=prediction_set.predictions)
     assert {e.state for e in evaluations} == {"failed"}
-    assert all("big.json" in e.error for e in evaluations), [e.error for e in evaluations]
+    assert all(
+        "big.json" in e.error and "image 18446744073709551621 is not in the split" in e.error
+        for e in evaluations
+    ), [e.error for e in evaluations]
 
 
 def test_a_database_blip_while_storing_is_retried(

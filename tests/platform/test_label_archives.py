@@ -77,7 +77,9 @@ def test_a_kitti_zip_loads_through_the_api_with_the_json_hash(users, team, archi
     assert truth.regions.tolist() == [[600.0, 0.0, 200.0, 100.0]]
 
 
-def test_zip_predictions_are_scored_like_json(users, detector, archives, run_tasks, tmp_path):
+def test_zip_predictions_are_scored_like_json(
+    client, users, detector, archives, run_tasks, tmp_path
+):
     engineer = client_for(users["engineer"])
     engineer.post(
         API + "splits/",
@@ -103,6 +105,12 @@ def test_zip_predictions_are_scored_like_json(users, detector, archives, run_tas
     json_dets = write.coco(tmp_path / "d.json", IMAGES, CLASSES, BOXES, detections=DETECTIONS)
     expected = engine.evaluate(truth, engine.load_predictions(json_dets, truth), "coco")
     assert evaluation.scorecard.summary["AP"] == pytest.approx(expected["summary"]["AP"])
+    # the drill-down of each image reads the split (a label archive names no file_name)
+    client.force_login(users["engineer"])
+    version = evaluation.prediction_sets.get().version_id
+    for index in range(len(IMAGES)):
+        page = client.get(reverse("image-detail", args=[version, split.pk, index]))
+        assert page.status_code == 200, index
 
 
 def _stored_media():

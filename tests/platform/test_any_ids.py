@@ -1,0 +1,481 @@
+"""Ids of any kind pycocotools accepts, through the platform's real entry points
+(``evaluation.services.ENGINE_IDS = "any"``, the default): image, category and
+annotation ids beyond signed 64 bits; booleans and whole floats; a CSV split's text
+image ids.
+
+Reference: pycocotools 2.0.11, run here on the same two files (for CSV: on the same
+content written as COCO JSON with those string ids). It keeps ids as Python objects —
+``COCO.createIndex`` keys dicts by them, ``COCOeval.params.imgIds`` / ``catIds`` are
+``sorted(...)`` of them, and ``accumulate`` concatenates images in that order before
+its stable sort — so ids of any size are accepted, ``true`` and ``3.0`` key the images
+1 and 3, and the image order (ties across images) is numeric, or string order for
+text. The wide files keep one id below -2^63, so pycocotools' ``np.unique`` of the id
+list stays an object array (a list wholly within [-2^63, 2^64) with one id >= 2^63
+becomes float64 there: the known deviation in DEVELOPERS.md, not exercised here).
+
+Checked: every entry point accepts the files (split: page, API, ``load_split``;
+predictions: page, API, ``upload_predictions``, the worker past the inline size and
+the sharded run, the client in ``test_the_client_submits_such_files``); the stored
+numbers equal pycocotools'; pages, API and downloads show the ids as written; the
+drill-down URL of every image (by its index, in pycocotools' image order) shows that
+image and serves its own file.
+"""
+
+import contextlib
+import csv
+import importlib.metadata
+import io
+import json
+import re
+
+import numpy as np
+import pytest
+from django.core.management import call_command
+from django.urls import reverse
+from django.utils.html import escape
+
+from evaluation import engine, images
+from evaluation import services as evaluation_services
+from evaluation.models import BenchmarkSplit, Evaluation, ImageLeaveOneOut, Scorecard
+from releases import services, tokens
+
+from ..engine.synthetic import make_detections
+from .conftest import CLASSES, split_dict, upload
+from .test_api import API, client_for, file
+from .test_client import client_home, run  # noqa: F401
+from .test_worker import worker  # noqa: F401
+
+pytestmark = pytest.mark.django_db
+
+PYCOCOTOOLS = "pycocotools 2.0.11"
+# Ids per kind: ``images`` / ``categories`` / ``annotations`` replace the first ids of
+# each (references follow); ``unlisted_class`` is a detection's category the split does
+# not list (left out, as pycocotools' evaluate never looks at it, and named).
+KINDS = {
+    # two image ids beyond 2^64, one below -2^63 (so pycocotools' np.unique of the id
+    # list stays an object array), 2^63 itself; a category id beyond 2^64
+    "wide": {
+        "images": [2**64 + 5, -(2**63) - 1, 10**30, 7, 2**63, -3],
+        "categories": [2**70],
+        "annotations": [2**65, -(2**64)],
+        "unlisted_class": 2**80 + 1,
+    },
+    # booleans and whole floats: pycocotools' dicts key ``true`` as 1 and ``3.0`` as 3
+    # (``1.0 == 1 == True`` in Python), and so does the engine (``coco_json.whole_ids``)
+    "whole": {
+        "images": [3.0, True, 1e20, 12, -0.0],
+        "categories": [4.0],
+        "annotations": [5000.0, 1e19],
+        "unlisted_class": 9.0,
+    },
+}
+WIDE = KINDS["wide"]
+
+
+def _png(n):
+    """A PNG signature (PNG spec section 5.2) and a body telling the images apart."""
+    return b"\x89PNG\r\n\x1a\n" + f"image {n}".encode().ljust(32, b"\0")
+
+
+def _renamed(truth, detection_sets, ids):
+    """``truth`` and detection lists with the first images, categories and annotations
+    renumbered to ``ids`` (references follow), each image named ``cam/NNNN.png``."""
+    image_map = {i["id"]: new for i, new in zip(truth["images"], ids["images"])}
+    class_map = {c["id"]: new for c, new in zip(truth["categories"], ids["categories"])}
+    for n, image in enumerate(truth["images"]):
+        image["id"] = image_map.get(image["id"], image["id"])
+        image["file_name"] = f"cam/{n:04d}.png"
+    for category in truth["categories"]:
+        category["id"] = class_map.get(category["id"], category["id"])
+    for annotation, new in zip(truth["annotations"], ids["annotations"]):
+        annotation["id"] = new
+    for record in truth["annotations"] + [d for dets in detection_sets for d in dets]:
+        record["image_id"] = image_map.get(record["image_id"], record["image_id"])
+        record["category_id"] = class_map.get(record["category_id"], record["category_id"])
+    return truth, detection_sets
+
+
+def _files(ids, n_sets=3):
+    """A split and ``n_sets`` detection files on it, with ties across images (scores
+    on 5 levels), and one detection of an unlisted category in each."""
+    truth = split_dict(seed=41, n_images=10)
+    sets = [
+        make_detections(np.random.default_rng(50 + k), truth, score_levels=5) for k in range(n_sets)
+    ]
+    truth, sets = _renamed(truth, sets, ids)
+    for dets in sets:
+        dets.append({**dets[0], "category_id": ids["unlisted_class"]})
+    return truth, sets
+
+
+def _written(value):
+    """An id as the platform shows it: an integer's digits as written (any size), a
+    boolean or whole float as its integer (the id pycocotools keys it as)."""
+    if isinstance(value, bool | int):
+        return str(int(value))
+    if isinstance(value, float) and value.is_integer():
+        return str(int(value))
+    return repr(value) if isinstance(value, float) else str(value)
+
+
+def _pycocotools(tmp_path, truth, detections):
+    from pycocotools.coco import COCO
+    from pycocotools.cocoeval import COCOeval
+
+    assert importlib.metadata.version("pycocotools") == PYCOCOTOOLS.split()[1]
+    gt_path, dt_path = tmp_path / "ref-gt.json", tmp_path / "ref-dt.json"
+    gt_path.write_text(json.dumps(truth))
+    dt_path.write_text(json.dumps(detections))
+    with contextlib.redirect_stdout(io.StringIO()):
+        gt = COCO(str(gt_path))
+        evaluator = COCOeval(gt, gt.loadRes(str(dt_path)), "bbox")
+        evaluator.evaluate()
+        evaluator.accumulate()
+        evaluator.summarize()
+    return evaluator
+
+
+def _assert_pycocotools_numbers(evaluation, truth, detections, tmp_path):
+    """The stored ``coco`` scorecard equals pycocotools 2.0.11 on the same two files:
+    every summary number and per-class AP (to 1e-12; in practice bit for bit)."""
+    assert evaluation.state == "done", evaluation.error
+    card = Scorecard.objects.get(evaluation=evaluation)
+    reference = _pycocotools(tmp_path, truth, detections)
+    for key, expected in zip(engine.COCO_SUMMARY_KEYS, reference.stats):
+        got = card.summary[key]
+        assert (-1.0 if got is None else got) == pytest.approx(expected, abs=1e-12), key
+    names = {c["id"]: c["name"] for c in truth["categories"]}
+    precision = reference.eval["precision"]  # [T, R, K, A, M], K in params.catIds order
+    for k, category in enumerate(reference.params.catIds):
+        expected = precision[:, :, k, 0, 2]
+        got = card.result["per_class"][names[category]]["AP"]
+        if (expected == -1).all():
+            assert got is None, category
+        else:
+            assert got == pytest.approx(expected.mean(), abs=1e-12), category
+    return card
+
+
+def _sorted_written(truth):
+    """The split's image ids as written, in pycocotools' image order
+    (``sorted(cocoGt.getImgIds())``)."""
+    return [_written(i) for i in sorted(i["id"] for i in truth["images"])]
+
+
+# Splits -------------------------------------------------------------------------------
+
+
+@pytest.mark.parametrize("entry", ["page", "api", "command"])
+def test_every_split_entry_point_accepts_the_split(entry, client, users, team, tmp_path):
+    truth, _ = _files(WIDE, n_sets=0)
+    if entry == "page":
+        client.force_login(users["engineer"])
+        response = client.post(
+            reverse("load-split"),
+            {"name": "far-ids", "revision": 1, "truth": upload("far-ids.json", truth)},
+        )
+        assert response.status_code == 302, response.content.decode()
+    elif entry == "api":
+        response = client_for(users["engineer"]).post(
+            API + "splits/",
+            {"name": "far-ids", "revision": 1, "truth": file("far-ids.json", truth)},
+            format="multipart",
+        )
+        assert response.status_code == 201, response.json()
+    else:
+        path = tmp_path / "far-ids.json"
+        path.write_text(json.dumps(truth))
+        call_command("load_split", "far-ids", "1", str(path))
+    split = BenchmarkSplit.objects.get()
+    assert (split.image_count, split.box_count) == (len(truth["images"]), len(truth["annotations"]))
+    # file names keyed by the ids as written (the drill-down's image file)
+    assert images.file_names(split) == {_written(i["id"]): i["file_name"] for i in truth["images"]}
+
+
+# Predictions, numbers, pages ------------------------------------------------------------
+
+
+@pytest.fixture(params=sorted(KINDS))
+def scored(request, client, users, team, run_tasks, tmp_path):
+    """The split loaded through the page, its images attached; a baseline uploaded
+    through the page and signed off, a candidate through the API and a third version
+    through ``upload_predictions``; the detector scores coco and the pedestrian miss
+    rate (a level protocol reading the same COCO JSON)."""
+    ids = KINDS[request.param]
+    truth, sets = _files(ids)
+    client.force_login(users["lead"])
+    response = client.post(
+        reverse("load-split"),
+        {"name": "far-ids", "revision": 1, "truth": upload("far-ids.json", truth)},
+    )
+    assert response.status_code == 302, response.content.decode()
+    split = BenchmarkSplit.objects.get()
+    run_tasks(
+        images.attach_images,
+        split,
+        files=[upload(i["file_name"], _png(n)) for n, i in enumerate(truth["images"])],
+    )
+    detector = run_tasks(
+        services.create_detector, team, "Forward camera", CLASSES, protocols=("coco", "miss-rate")
+    )
+    response = run_tasks(
+        client.post,
+        reverse("upload", args=[detector.pk]),
+        {"version": "1.0", "split": split.pk, "predictions": upload("base.json", sets[0])},
+    )
+    assert response.status_code in (200, 302), response.content.decode()
+    baseline = detector.versions.get(label="1.0")
+    run_tasks(services.sign_off, baseline, users["lead"], "approved", "The baseline.")
+    response = run_tasks(
+        client_for(users["engineer"]).post,
+        API + "prediction-sets/",
+        {
+            "detector": detector.pk,
+            "version": "2.0",
+            "split": split.pk,
+            "predictions": file("candidate.json", sets[1]),
+        },
+        format="multipart",
+    )
+    assert response.status_code == 201, response.json()
+    path = tmp_path / "third.json"
+    path.write_text(json.dumps(sets[2]))
+    run_tasks(
+        call_command,
+        "upload_predictions",
+        "--detector", detector.slug, "--label", "3.0", "--split", "far-ids:1",
+        "--user", "engineer", "--create-version", str(path),
+    )  # fmt: skip
+    versions = {v.label: v for v in detector.versions.all()}
+    return {
+        "ids": ids,
+        "truth": truth,
+        "sets": sets,
+        "split": split,
+        "detector": detector,
+        **versions,
+    }
+
+
+def _evaluation(version, protocol="coco"):
+    return Evaluation.objects.get(prediction_sets__version=version, protocol=protocol)
+
+
+def test_every_upload_entry_point_scores_as_pycocotools(scored, tmp_path):
+    """Page, API and command: each stored coco scorecard equals pycocotools 2.0.11 on
+    its file; the level protocol is scored too; the detection of the unlisted category
+    is left out and named by its id as written."""
+    for label, dets in zip(("1.0", "2.0", "3.0"), scored["sets"]):
+        card = _assert_pycocotools_numbers(
+            _evaluation(scored[label]), scored["truth"], dets, tmp_path
+        )
+        unlisted = [_written(scored["ids"]["unlisted_class"])]
+        assert card.result["counts"]["dropped_classes"] == unlisted
+        assert _evaluation(scored[label], "miss-rate").state == "done"
+        assert ImageLeaveOneOut.objects.filter(scorecard=card).exists()
+
+
+def test_pages_and_api_show_the_ids_as_written(client, users, scored):
+    version, split, truth = scored["2.0"], scored["split"], scored["truth"]
+    client.force_login(users["engineer"])
+    api = client_for(users["engineer"])
+    page = client.get(reverse("version", args=[version.pk])).content.decode()
+    assert f"ids {_written(scored['ids']['unlisted_class'])}" in page
+    written = _sorted_written(truth)
+    listed = client.get(reverse("image-list", args=[version.pk]), {"split": split.pk})
+    assert listed.status_code == 200
+    text = listed.content.decode()
+    for image_id in written:
+        assert f">{escape(image_id)}<" in text, image_id
+    body = api.get(API + f"versions/{version.pk}/images/", {"split": split.pk}).json()
+    assert {row["id"] for row in body["images"]} == set(written)
+    for index, image_id in enumerate(written):
+        # the drill-down URL of each image shows that image (pycocotools' order)
+        shown = api.get(API + f"versions/{version.pk}/images/{split.pk}/{index}/").json()
+        assert shown["image"]["id"] == image_id
+        response = client.get(reverse("image-detail", args=[version.pk, split.pk, index]))
+        assert response.status_code == 200
+        assert f"<h1>Image {escape(image_id)} <span" in response.content.decode()
+        n = [_written(i["id"]) for i in truth["images"]].index(image_id)
+        served = client.get(reverse("image-file", args=[version.pk, split.pk, index]))
+        assert b"".join(served.streaming_content) == _png(n)
+    for row in body["images"]:
+        assert row["id"] == written[row["index"]]
+
+
+def test_downloads_carry_the_ids_as_written(client, users, scored):
+    evaluation, truth = _evaluation(scored["2.0"]), scored["truth"]
+    client.force_login(users["engineer"])
+    text = b"".join(
+        client.get(reverse("records-download", args=[evaluation.pk, "csv"])).streaming_content
+    ).decode()
+    rows = list(csv.DictReader(io.StringIO(text)))
+    images_written = {_written(i["id"]) for i in truth["images"]}
+    assert {r["image_id"] for r in rows} == images_written
+    boxes = {r["box_id"] for r in rows if r["row"] == "box"}
+    assert {_written(a["id"]) for a in truth["annotations"]} == boxes
+    lines = b"".join(
+        client.get(reverse("records-download", args=[evaluation.pk, "jsonl"])).streaming_content
+    ).decode()
+    # each JSON Lines record names the ids with their digits as written
+    for line, row in zip(lines.splitlines(), rows):
+        record = json.loads(line)
+        assert str(record["image_id"]) == row["image_id"]
+        assert re.search(rf'"image_id": ?"?{re.escape(row["image_id"])}"?[,}}]', line)
+
+
+def test_compare_history_and_split_pages_read_the_split(client, users, scored):
+    client.force_login(users["engineer"])
+    detector, split = scored["detector"], scored["split"]
+    for url in (
+        reverse("compare", args=[detector.pk]),
+        reverse("split", args=[split.pk]),
+        reverse("confusion", args=[scored["2.0"].pk]) + f"?split={split.pk}",
+        reverse("evidence", args=[scored["2.0"].pk]),
+    ):
+        assert client.get(url).status_code == 200, url
+    api = client_for(users["engineer"])
+    for url in (f"detectors/{detector.pk}/history/", f"versions/{scored['2.0'].pk}/results/"):
+        assert api.get(API + url).status_code == 200, url
+
+
+def test_the_worker_and_the_sharded_run_score_as_pycocotools(
+    users, team, detector, run_tasks, settings, tmp_path, monkeypatch
+):
+    """Past the inline-validation size the worker reads the file (streamed into
+    pieces at upload, scored in image shards): the stored numbers equal pycocotools
+    2.0.11 on the same files."""
+    from evaluation import class_groups, sharding
+
+    from .test_shards import GROUP_SENDS, _run
+
+    sends = []
+    GROUP_SENDS.clear()
+    monkeypatch.setattr(sharding, "send", lambda *args: sends.append(args))
+    monkeypatch.setattr(class_groups, "send", lambda *args: GROUP_SENDS.append(args))
+    truth, sets = _files(WIDE, n_sets=1)
+    split = evaluation_services.load_split(
+        name="far-ids", revision=1, truth=upload("far-ids.json", truth)
+    )
+    settings.BENCHBOOK_INLINE_VALIDATION_BYTES = 1
+    settings.BENCHBOOK_SHARD_ABOVE = 0
+    settings.BENCHBOOK_SHARD_IMAGES = 3
+    version = services.create_version(detector, "4.0", users["engineer"])
+    run_tasks(
+        services.submit_predictions, version, split, upload("big.json", sets[0]), users["engineer"]
+    )
+    assert sends
+    _run(run_tasks, sends)
+    _assert_pycocotools_numbers(_evaluation(version), truth, sets[0], tmp_path)
+
+
+# CSV: text image ids ---------------------------------------------------------------------
+
+
+def _corners(bbox):
+    x, y, w, h = (round(v, 1) for v in bbox)
+    return x, y, x + w, y + h
+
+
+def _csv_files(image_ids):
+    """A CSV split (boxes and images tables) and CSV detections whose image ids are
+    ``image_ids``; and the same content as COCO JSON for pycocotools (string image ids,
+    boxes from the CSV's corners, area w*h as the engine takes it for CSV)."""
+    truth, (dets,) = _files(
+        {"images": [], "categories": [], "annotations": [], "unlisted_class": 99}, 1
+    )
+    dets.pop()  # no unlisted class in CSV (labels are names)
+    ids = {i["id"]: new for i, new in zip(truth["images"], image_ids)}
+    names = {c["id"]: c["name"] for c in truth["categories"]}
+    images = "image_id,width,height,file_name\n" + "".join(
+        f"{ids[i['id']]},{i['width']},{i['height']},{i['file_name']}\n" for i in truth["images"]
+    )
+    boxes, reference = "image_id,label,x_min,y_min,x_max,y_max,crowd\n", []
+    for a in truth["annotations"]:
+        x0, y0, x1, y1 = _corners(a["bbox"])
+        boxes += (
+            f"{ids[a['image_id']]},{names[a['category_id']]},{x0},{y0},{x1},{y1},{a['iscrowd']}\n"
+        )
+        w, h = x1 - x0, y1 - y0
+        reference.append(
+            {**a, "image_id": ids[a["image_id"]], "bbox": [x0, y0, w, h], "area": w * h}
+        )
+    detections, reference_dets = "image_id,label,x_min,y_min,x_max,y_max,score\n", []
+    for d in dets:
+        x0, y0, x1, y1 = _corners(d["bbox"])
+        detections += (
+            f"{ids[d['image_id']]},{names[d['category_id']]},{x0},{y0},{x1},{y1},{d['score']!r}\n"
+        )
+        reference_dets.append(
+            {**d, "image_id": ids[d["image_id"]], "bbox": [x0, y0, x1 - x0, y1 - y0]}
+        )
+    reference_truth = {
+        **truth,
+        "images": [{**i, "id": ids[i["id"]]} for i in truth["images"]],
+        "annotations": reference,
+    }
+    return boxes, images, detections, reference_truth, reference_dets
+
+
+def test_a_csv_split_with_text_ids_scores_as_pycocotools_and_shows_them(
+    client, users, team, detector, run_tasks, tmp_path
+):
+    """A CSV split whose image ids are text (``007`` among them, kept as written since
+    not every id is an integer): scored as pycocotools 2.0.11 scores the same content
+    with those string ids (``sorted()`` of them: string order, ties across images
+    included), listed and drilled into by index, each image showing its own file."""
+    image_ids = ["cam-b", "007", "cam-a", "Cam-c", "10", "9", "cam-10", "x", "_y", "z"]
+    boxes, images_csv, detections, ref_truth, ref_dets = _csv_files(image_ids)
+    split = evaluation_services.load_split(
+        name="text-ids",
+        revision=1,
+        truth=upload("boxes.csv", boxes),
+        images=upload("images.csv", images_csv),
+    )
+    run_tasks(
+        images.attach_images,
+        split,
+        files=[upload(i["file_name"], _png(n)) for n, i in enumerate(ref_truth["images"])],
+    )
+    version = services.create_version(detector, "5.0", users["engineer"])
+    run_tasks(
+        services.submit_predictions, version, split, upload("p.csv", detections), users["engineer"]
+    )
+    _assert_pycocotools_numbers(_evaluation(version), ref_truth, ref_dets, tmp_path)
+    client.force_login(users["engineer"])
+    written = sorted(image_ids)  # pycocotools' image order
+    for index, image_id in enumerate(written):
+        response = client.get(reverse("image-detail", args=[version.pk, split.pk, index]))
+        assert response.status_code == 200
+        assert f"<h1>Image {escape(image_id)} <span" in response.content.decode()
+        n = image_ids.index(image_id)
+        served = client.get(reverse("image-file", args=[version.pk, split.pk, index]))
+        assert b"".join(served.streaming_content) == _png(n), image_id
+
+
+# The pipeline client ---------------------------------------------------------------------
+
+
+@pytest.mark.integration
+@pytest.mark.django_db(transaction=True)
+@pytest.mark.usefixtures("worker")
+def test_the_client_submits_such_files(live_server, detector, users, run, tmp_path):  # noqa: F811
+    """The client (standard library only) uploads the bytes as they are; a real worker
+    scores them; ``submit --wait`` passes and names the left-out class by its id as
+    written; the stored numbers equal pycocotools 2.0.11's."""
+    truth, (dets,) = _files(WIDE, n_sets=1)
+    split = evaluation_services.load_split(
+        name="far-ids", revision=1, truth=upload("far-ids.json", truth)
+    )
+    _, token = tokens.create_token(users["engineer"], "pipeline")
+    path = tmp_path / "far.json"
+    path.write_text(json.dumps(dets))
+    code, out, err = run(
+        "submit", "--url", live_server.url, "--token", token, "--detector", "Forward camera",
+        "--version", "6.0", "--split", f"far-ids={path}", "--wait", "--poll", "0.3",
+    )  # fmt: skip
+    assert code == 0, out + err
+    assert f"ids {_written(WIDE['unlisted_class'])}" in out
+    version = detector.versions.get(label="6.0")
+    assert split.pk == version.prediction_sets.get().split_id
+    _assert_pycocotools_numbers(_evaluation(version), truth, dets, tmp_path)
