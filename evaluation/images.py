@@ -11,7 +11,6 @@ Nothing is half-stored: a refused upload deletes what it wrote.
 import codecs
 import csv
 import functools
-import math
 import os
 import posixpath
 import tempfile
@@ -25,8 +24,7 @@ from django.core.files.base import ContentFile
 from django.core.files.storage import default_storage
 from django.db import IntegrityError, transaction
 
-from .engine.loaders import json_literals
-from .engine.loaders.ids import csv_ids
+from .engine.loaders import ids, json_literals
 from .models import BenchmarkSplit, SplitImages
 from .services import UploadError
 from .storage import TooLarge, local_path, spool
@@ -66,20 +64,27 @@ class _ImagesOnly(msgspec.Struct):
     images: list[_Image] = []
 
 
-def id_text(value):
-    """An image id read from COCO JSON as the engine shows it (``GroundTruth.image_ids``
-    as text), or None for a value no id can be: integers (any size) in decimal,
-    booleans and whole floats as the integers (``1.0 == 1 == true`` keys one image in
-    pycocotools' dicts, ``coco_json.whole_ids``), other floats in their shortest form.
+def id_texts(values):
+    r"""Image ids read from COCO JSON as the engine shows them (``GroundTruth.image_ids``
+    as text; ``loaders.ids``): a boolean or whole float is its integer (pycocotools'
+    dicts key ``true`` as 1 and ``3.0`` as 3), numbers in decimal or their shortest
+    form, text as written — JSON-quoted when some id of the family ends in U+0000,
+    as the engine shows such a family. None for a value no id can be (NaN, null).
 
-    >>> [id_text(v) for v in (7, 2**64 + 5, True, 3.0, 1e20, 2.5, None)]
-    ['7', '18446744073709551621', '1', '3', '100000000000000000000', '2.5', None]
+    >>> id_texts([7, 2**64 + 5, True, 3.0, 1e20, 2.5, float("inf"), None])
+    ['7', '18446744073709551621', '1', '3', '100000000000000000000', '2.5', 'inf', None]
+    >>> id_texts(["img_001", "b"]), id_texts(["a\x00", "b"])
+    (['img_001', 'b'], ['"a\\u0000"', '"b"'])
     """
-    if isinstance(value, bool | int):
-        return str(int(value))
-    if isinstance(value, float) and math.isfinite(value):
-        return str(int(value)) if value.is_integer() else repr(value)
-    return None
+    whole = []
+    for value in values:
+        if isinstance(value, bool) or (isinstance(value, float) and value.is_integer()):
+            value = int(value)
+        ok = isinstance(value, str | int) or (isinstance(value, float) and value == value)
+        whole.append(value if ok else None)
+    keys = ids.typed_keys([v for v in whole if v is not None])
+    shown = iter(ids.display(keys, ids.family_type(keys)).tolist())
+    return [None if v is None else next(shown) for v in whole]
 
 
 @functools.lru_cache(maxsize=16)
@@ -96,24 +101,24 @@ def _file_names(split_id, sha256):
     # as the engine reads the file: a byte-order mark skipped, NaN/Infinity/1e400
     # anywhere read as Python's json reads them (pycocotools reads the file so)
     decoded = json_literals.decode(data.removeprefix(codecs.BOM_UTF8), _ImagesOnly)
-    names = {}
-    for image in decoded.images:
-        key = id_text(image.id)
-        if key is not None and image.file_name and isinstance(image.file_name, str):
-            names[key] = image.file_name
-    return names
+    keys = id_texts([image.id for image in decoded.images])
+    return {
+        key: image.file_name
+        for key, image in zip(keys, decoded.images)
+        if key is not None and image.file_name and isinstance(image.file_name, str)
+    }
 
 
 def _csv_file_names(path):
     """A CSV images table's file names, keyed by its ids typed as the engine types
-    them (``loaders.ids.csv_ids``: integers when every id is one, so ``007`` is 7)."""
+    them (``ids.csv_ids``: integers when every id is one, so ``007`` is 7)."""
     with open(path, newline="", encoding="utf-8-sig") as f:
         rows = [
             (row.get("image_id") or row.get("id"), row.get("file_name"))
             for row in csv.DictReader(f)
         ]
     rows = [(key, name) for key, name in rows if key is not None]
-    keys = csv_ids([key for key, _ in rows]) if rows else []
+    keys = ids.csv_ids([key for key, _ in rows]) if rows else []
     return {str(key): name for key, (_, name) in zip(keys, rows) if name}
 
 

@@ -5,7 +5,8 @@ ground-truth box (split order). Memory beyond the records is one block of rows, 
 the number of detections. Columns (``COLUMNS``):
 
 ``row``            ``detection`` or ``box``
-``image_id``       the split's image id (JSON Lines: the JSON value the split gave)
+``image_id``       the split's image id (JSON Lines: the JSON value the split gave; an
+                   infinite one as the string "Infinity" or "-Infinity")
 ``class``          the row's class
 ``score``          detection score (empty for a box)
 ``x, y, w, h``     the row's box, pixels
@@ -153,10 +154,11 @@ def _strict(value):
 
 def jsonl_chunks(records, truth, block_rows=BLOCK_ROWS):
     """Yield JSON Lines text, one object per row (missing values are null; a NaN or
-    infinite score, coordinate or IoU is the string "NaN", "Infinity", "-Infinity")."""
+    infinite score, coordinate, IoU or image id is the string "NaN", "Infinity",
+    "-Infinity")."""
     encode = json.JSONEncoder(allow_nan=False, separators=(",", ":")).encode
     for block in row_blocks(records, truth, block_rows, typed_ids=True):
-        for name in ("score", "x", "y", "w", "h", "iou"):
+        for name in ("image_id", "score", "x", "y", "w", "h", "iou"):
             block[name] = [_strict(v) for v in block[name]]
         yield "".join(
             encode(dict(zip(COLUMNS, values))) + "\n"

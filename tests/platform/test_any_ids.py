@@ -26,7 +26,8 @@ import csv
 import importlib.metadata
 import io
 import json
-import re
+import math
+import numbers
 
 import numpy as np
 import pytest
@@ -68,6 +69,34 @@ KINDS = {
         "annotations": [5000.0, 1e19],
         "unlisted_class": 9.0,
     },
+    # fractions and an infinity (JSON ``Infinity``, which Python's json reads) among
+    # integers: sorted by value
+    "fractional": {
+        "images": [2.5, 0.1, -1.5, float("inf"), 1e-300, 7.25],
+        "categories": [1.5],
+        "annotations": [0.5, 2.25],
+        "unlisted_class": 7.5,
+    },
+    # text: every image and category (a family cannot mix text and numbers: sorted()
+    # raises in pycocotools), sorted by code point ("10" before "9", "Z" before "a");
+    # characters HTML and CSV quote; annotation ids text numpy reads as floats
+    # (pycocotools' ``dtm[t, d] = gt['id']`` casts them)
+    "text": {
+        "images": ["img_010", "img_002", 'b<&>"x', "é/ü", "10", "9", " sp", "Z", "a,b", "1"],
+        "categories": ["cat-b", "cat-a", "Cat"],
+        "annotations": ["9001", "-5"],
+        "unlisted_class": "cat-z",
+    },
+    # text ids ending in U+0000, which numpy text arrays cut: the engine shows that
+    # family JSON-quoted. pycocotools' np.unique cuts them too and drops those images
+    # (the known deviation), so its reference run reads U+0001 there (same order).
+    "nul": {
+        "images": ["a\x00", "a", "b\x00\x00", "c", "d", "e", "f", "g", "h", "i"],
+        "categories": [],
+        "annotations": [],
+        "unlisted_class": 99,
+        "reference": lambda text: text.replace("\\u0000", "\\u0001"),
+    },
 }
 WIDE = KINDS["wide"]
 
@@ -108,24 +137,41 @@ def _files(ids, n_sets=3):
     return truth, sets
 
 
-def _written(value):
+def _written(value, family=()):
     """An id as the platform shows it: an integer's digits as written (any size), a
-    boolean or whole float as its integer (the id pycocotools keys it as)."""
-    if isinstance(value, bool | int):
+    boolean or whole float as its integer (the id pycocotools keys it as), another
+    float in its shortest form, text as written — JSON-quoted when an id of its
+    ``family`` ends in U+0000."""
+    if isinstance(value, str):
+        quoted = any(isinstance(v, str) and v.endswith("\x00") for v in family)
+        return json.dumps(value, ensure_ascii=False) if quoted else value
+    if isinstance(value, numbers.Integral):
         return str(int(value))
-    if isinstance(value, float) and value.is_integer():
-        return str(int(value))
-    return repr(value) if isinstance(value, float) else str(value)
+    value = float(value)
+    return str(int(value)) if math.isfinite(value) and value.is_integer() else repr(value)
 
 
-def _pycocotools(tmp_path, truth, detections):
+def _image_texts_in_file_order(truth):
+    ids = [i["id"] for i in truth["images"]]
+    return [_written(i, ids) for i in ids]
+
+
+def _image_texts(truth):
+    """The split's image ids as the platform shows them, in pycocotools' image order
+    (``sorted(cocoGt.getImgIds())``)."""
+    ids = [i["id"] for i in truth["images"]]
+    return [_written(i, ids) for i in sorted(ids)]
+
+
+def _pycocotools(tmp_path, truth, detections, reference=None):
     from pycocotools.coco import COCO
     from pycocotools.cocoeval import COCOeval
 
     assert importlib.metadata.version("pycocotools") == PYCOCOTOOLS.split()[1]
     gt_path, dt_path = tmp_path / "ref-gt.json", tmp_path / "ref-dt.json"
-    gt_path.write_text(json.dumps(truth))
-    dt_path.write_text(json.dumps(detections))
+    edit = reference or (lambda text: text)
+    gt_path.write_text(edit(json.dumps(truth)))
+    dt_path.write_text(edit(json.dumps(detections)))
     with contextlib.redirect_stdout(io.StringIO()):
         gt = COCO(str(gt_path))
         evaluator = COCOeval(gt, gt.loadRes(str(dt_path)), "bbox")
@@ -135,20 +181,20 @@ def _pycocotools(tmp_path, truth, detections):
     return evaluator
 
 
-def _assert_pycocotools_numbers(evaluation, truth, detections, tmp_path):
+def _assert_pycocotools_numbers(evaluation, truth, detections, tmp_path, reference=None):
     """The stored ``coco`` scorecard equals pycocotools 2.0.11 on the same two files:
     every summary number and per-class AP (to 1e-12; in practice bit for bit)."""
     assert evaluation.state == "done", evaluation.error
     card = Scorecard.objects.get(evaluation=evaluation)
-    reference = _pycocotools(tmp_path, truth, detections)
+    reference = _pycocotools(tmp_path, truth, detections, reference)
     for key, expected in zip(engine.COCO_SUMMARY_KEYS, reference.stats):
         got = card.summary[key]
         assert (-1.0 if got is None else got) == pytest.approx(expected, abs=1e-12), key
-    names = {c["id"]: c["name"] for c in truth["categories"]}
+    names = {_written(c["id"]): c["name"] for c in truth["categories"]}
     precision = reference.eval["precision"]  # [T, R, K, A, M], K in params.catIds order
     for k, category in enumerate(reference.params.catIds):
         expected = precision[:, :, k, 0, 2]
-        got = card.result["per_class"][names[category]]["AP"]
+        got = card.result["per_class"][names[_written(category)]]["AP"]
         if (expected == -1).all():
             assert got is None, category
         else:
@@ -156,18 +202,13 @@ def _assert_pycocotools_numbers(evaluation, truth, detections, tmp_path):
     return card
 
 
-def _sorted_written(truth):
-    """The split's image ids as written, in pycocotools' image order
-    (``sorted(cocoGt.getImgIds())``)."""
-    return [_written(i) for i in sorted(i["id"] for i in truth["images"])]
-
-
 # Splits -------------------------------------------------------------------------------
 
 
+@pytest.mark.parametrize("kind", sorted(KINDS))
 @pytest.mark.parametrize("entry", ["page", "api", "command"])
-def test_every_split_entry_point_accepts_the_split(entry, client, users, team, tmp_path):
-    truth, _ = _files(WIDE, n_sets=0)
+def test_every_split_entry_point_accepts_the_split(entry, kind, client, users, team, tmp_path):
+    truth, _ = _files(KINDS[kind], n_sets=0)
     if entry == "page":
         client.force_login(users["engineer"])
         response = client.post(
@@ -189,7 +230,10 @@ def test_every_split_entry_point_accepts_the_split(entry, client, users, team, t
     split = BenchmarkSplit.objects.get()
     assert (split.image_count, split.box_count) == (len(truth["images"]), len(truth["annotations"]))
     # file names keyed by the ids as written (the drill-down's image file)
-    assert images.file_names(split) == {_written(i["id"]): i["file_name"] for i in truth["images"]}
+    assert images.file_names(split) == {
+        text: image["file_name"]
+        for text, image in zip(_image_texts_in_file_order(truth), truth["images"])
+    }
 
 
 # Predictions, numbers, pages ------------------------------------------------------------
@@ -267,9 +311,13 @@ def test_every_upload_entry_point_scores_as_pycocotools(scored, tmp_path):
     is left out and named by its id as written."""
     for label, dets in zip(("1.0", "2.0", "3.0"), scored["sets"]):
         card = _assert_pycocotools_numbers(
-            _evaluation(scored[label]), scored["truth"], dets, tmp_path
+            _evaluation(scored[label]),
+            scored["truth"],
+            dets,
+            tmp_path,
+            scored["ids"].get("reference"),
         )
-        unlisted = [_written(scored["ids"]["unlisted_class"])]
+        unlisted = [_written(scored["ids"]["unlisted_class"], [scored["ids"]["unlisted_class"]])]
         assert card.result["counts"]["dropped_classes"] == unlisted
         assert _evaluation(scored[label], "miss-rate").state == "done"
         assert ImageLeaveOneOut.objects.filter(scorecard=card).exists()
@@ -281,7 +329,7 @@ def test_pages_and_api_show_the_ids_as_written(client, users, scored):
     api = client_for(users["engineer"])
     page = client.get(reverse("version", args=[version.pk])).content.decode()
     assert f"ids {_written(scored['ids']['unlisted_class'])}" in page
-    written = _sorted_written(truth)
+    written = _image_texts(truth)
     listed = client.get(reverse("image-list", args=[version.pk]), {"split": split.pk})
     assert listed.status_code == 200
     text = listed.content.decode()
@@ -296,7 +344,7 @@ def test_pages_and_api_show_the_ids_as_written(client, users, scored):
         response = client.get(reverse("image-detail", args=[version.pk, split.pk, index]))
         assert response.status_code == 200
         assert f"<h1>Image {escape(image_id)} <span" in response.content.decode()
-        n = [_written(i["id"]) for i in truth["images"]].index(image_id)
+        n = _image_texts_in_file_order(truth).index(image_id)
         served = client.get(reverse("image-file", args=[version.pk, split.pk, index]))
         assert b"".join(served.streaming_content) == _png(n)
     for row in body["images"]:
@@ -304,24 +352,33 @@ def test_pages_and_api_show_the_ids_as_written(client, users, scored):
 
 
 def test_downloads_carry_the_ids_as_written(client, users, scored):
+    """The records CSV names each image and box by the id the pages show; the JSON
+    Lines download gives each image id back as the JSON value the split gave (an
+    infinite one as the string "Infinity", as the export writes every non-finite
+    number in strict JSON)."""
     evaluation, truth = _evaluation(scored["2.0"]), scored["truth"]
     client.force_login(users["engineer"])
     text = b"".join(
         client.get(reverse("records-download", args=[evaluation.pk, "csv"])).streaming_content
     ).decode()
     rows = list(csv.DictReader(io.StringIO(text)))
-    images_written = {_written(i["id"]) for i in truth["images"]}
-    assert {r["image_id"] for r in rows} == images_written
+    value_of = dict(zip(_image_texts_in_file_order(truth), (i["id"] for i in truth["images"])))
+    assert {r["image_id"] for r in rows} == set(value_of)
     boxes = {r["box_id"] for r in rows if r["row"] == "box"}
-    assert {_written(a["id"]) for a in truth["annotations"]} == boxes
+    annotation_ids = [a["id"] for a in truth["annotations"]]
+    assert {_written(i) for i in annotation_ids} == boxes
     lines = b"".join(
         client.get(reverse("records-download", args=[evaluation.pk, "jsonl"])).streaming_content
     ).decode()
-    # each JSON Lines record names the ids with their digits as written
-    for line, row in zip(lines.splitlines(), rows):
-        record = json.loads(line)
-        assert str(record["image_id"]) == row["image_id"]
-        assert re.search(rf'"image_id": ?"?{re.escape(row["image_id"])}"?[,}}]', line)
+    records = [json.loads(line) for line in lines.splitlines()]
+    assert len(records) == len(rows)
+    for record, row in zip(records, rows):
+        given = value_of[row["image_id"]]
+        expected = {math.inf: "Infinity", -math.inf: "-Infinity"}.get(given, given)
+        assert record["image_id"] == expected and type(record["image_id"]) in (
+            type(expected),
+            int,  # a boolean or whole float is the integer pycocotools keys it as
+        ), (record["image_id"], given)
 
 
 def test_compare_history_and_split_pages_read_the_split(client, users, scored):
@@ -331,6 +388,11 @@ def test_compare_history_and_split_pages_read_the_split(client, users, scored):
         reverse("compare", args=[detector.pk]),
         reverse("split", args=[split.pk]),
         reverse("confusion", args=[scored["2.0"].pk]) + f"?split={split.pk}",
+        *(  # every cell's list of detections and missed boxes (image ids and links)
+            reverse("confusion", args=[scored["2.0"].pk]) + f"?split={split.pk}&row={i}&col={j}"
+            for i in range(len(CLASSES) + 1)
+            for j in range(len(CLASSES) + 1)
+        ),
         reverse("evidence", args=[scored["2.0"].pk]),
     ):
         assert client.get(url).status_code == 200, url
@@ -339,8 +401,9 @@ def test_compare_history_and_split_pages_read_the_split(client, users, scored):
         assert api.get(API + url).status_code == 200, url
 
 
+@pytest.mark.parametrize("kind", sorted(KINDS))
 def test_the_worker_and_the_sharded_run_score_as_pycocotools(
-    users, team, detector, run_tasks, settings, tmp_path, monkeypatch
+    kind, users, team, detector, run_tasks, settings, tmp_path, monkeypatch
 ):
     """Past the inline-validation size the worker reads the file (streamed into
     pieces at upload, scored in image shards): the stored numbers equal pycocotools
@@ -353,7 +416,7 @@ def test_the_worker_and_the_sharded_run_score_as_pycocotools(
     GROUP_SENDS.clear()
     monkeypatch.setattr(sharding, "send", lambda *args: sends.append(args))
     monkeypatch.setattr(class_groups, "send", lambda *args: GROUP_SENDS.append(args))
-    truth, sets = _files(WIDE, n_sets=1)
+    truth, sets = _files(KINDS[kind], n_sets=1)
     split = evaluation_services.load_split(
         name="far-ids", revision=1, truth=upload("far-ids.json", truth)
     )
@@ -366,7 +429,8 @@ def test_the_worker_and_the_sharded_run_score_as_pycocotools(
     )
     assert sends
     _run(run_tasks, sends)
-    _assert_pycocotools_numbers(_evaluation(version), truth, sets[0], tmp_path)
+    reference = KINDS[kind].get("reference")
+    _assert_pycocotools_numbers(_evaluation(version), truth, sets[0], tmp_path, reference)
 
 
 # CSV: text image ids ---------------------------------------------------------------------
@@ -479,3 +543,31 @@ def test_the_client_submits_such_files(live_server, detector, users, run, tmp_pa
     version = detector.versions.get(label="6.0")
     assert split.pk == version.prediction_sets.get().split_id
     _assert_pycocotools_numbers(_evaluation(version), truth, dets, tmp_path)
+
+
+def test_a_detection_naming_an_id_of_the_other_type_is_refused(users, team, detector):
+    """The text id ``"1"`` and the number 1 are two ids (pycocotools' dicts key them
+    apart, and ``loadRes`` asserts every detection's image is in the split): a
+    detection of image 1 on a split of text ids is refused naming file, record and
+    field, the id shown as written."""
+    truth, (dets,) = _files(KINDS["text"], n_sets=1)
+    split = evaluation_services.load_split(
+        name="text-ids", revision=1, truth=upload("text-ids.json", truth)
+    )
+    response = client_for(users["engineer"]).post(
+        API + "prediction-sets/",
+        {
+            "detector": detector.pk,
+            "version": "7.0",
+            "split": split.pk,
+            "predictions": file("other-type.json", dets + [{**dets[0], "image_id": 1}]),
+        },
+        format="multipart",
+    )
+    body = response.json()
+    assert response.status_code == 400, body
+    assert (body["file"], body["field"]) == ("other-type.json", "image_id")
+    assert body["message"].startswith(
+        f"predictions: other-type.json: record {len(dets)}: field 'image_id': image 1 is not"
+    ), body["message"]
+    assert not Evaluation.objects.exists()
