@@ -1,7 +1,7 @@
 """Ids of any kind pycocotools accepts, through the platform's real entry points
 (``evaluation.services.ENGINE_IDS = "any"``, the default): image, category and
-annotation ids beyond signed 64 bits; booleans and whole floats; a CSV split's text
-image ids.
+annotation ids beyond signed 64 bits; booleans and whole floats; fractions and
+infinities; text (and text ending in U+0000); a CSV split's text image ids.
 
 Reference: pycocotools 2.0.11, run here on the same two files (for CSV: on the same
 content written as COCO JSON with those string ids). It keeps ids as Python objects —
@@ -15,10 +15,11 @@ becomes float64 there: the known deviation in DEVELOPERS.md, not exercised here)
 
 Checked: every entry point accepts the files (split: page, API, ``load_split``;
 predictions: page, API, ``upload_predictions``, the worker past the inline size and
-the sharded run, the client in ``test_the_client_submits_such_files``); the stored
-numbers equal pycocotools'; pages, API and downloads show the ids as written; the
-drill-down URL of every image (by its index, in pycocotools' image order) shows that
-image and serves its own file.
+the sharded run, re-score on a later revision, the client in
+``test_the_client_submits_such_files``); the stored numbers equal pycocotools'; pages,
+API and downloads show the ids as written; the drill-down URL of every image (by its
+index, in pycocotools' image order) shows that image and serves its own file; compare
+(with bootstrap intervals), confusion cells, evidence, history and results answer.
 """
 
 import contextlib
@@ -39,9 +40,11 @@ from evaluation import engine, images
 from evaluation import services as evaluation_services
 from evaluation.models import BenchmarkSplit, Evaluation, ImageLeaveOneOut, Scorecard
 from releases import services, tokens
+from releases import tasks as release_tasks
+from releases.models import ComparisonInterval
 
 from ..engine.synthetic import make_detections
-from .conftest import CLASSES, split_dict, upload
+from .conftest import CLASSES, in_process, split_dict, upload
 from .test_api import API, client_for, file
 from .test_client import client_home, run  # noqa: F401
 from .test_worker import worker  # noqa: F401
@@ -292,6 +295,7 @@ def scored(request, client, users, team, run_tasks, tmp_path):
     )  # fmt: skip
     versions = {v.label: v for v in detector.versions.all()}
     return {
+        "kind": request.param,
         "ids": ids,
         "truth": truth,
         "sets": sets,
@@ -381,11 +385,24 @@ def test_downloads_carry_the_ids_as_written(client, users, scored):
         ), (record["image_id"], given)
 
 
-def test_compare_history_and_split_pages_read_the_split(client, users, scored):
+def test_compare_history_and_split_pages_read_the_split(
+    client, users, scored, run_tasks, monkeypatch
+):
+    """Every other page and API reading the split or the records answers: compare
+    (with the paired bootstrap's intervals, resampling images), the split page, the
+    confusion matrix and each cell's list, the evidence, history and results."""
     client.force_login(users["engineer"])
     detector, split = scored["detector"], scored["split"]
+    pair = {"reference": scored["1.0"].pk, "candidate": scored["2.0"].pk}
+    if scored["kind"] in ("text", "wide"):  # resampling is by image index: two kinds do
+        monkeypatch.setattr(release_tasks.compare, "delay", in_process(release_tasks.compare))
+        response = run_tasks(client.post, reverse("compare-intervals", args=[detector.pk]), pair)
+        assert response.status_code == 302
+        assert ComparisonInterval.objects.get().state == "done"
     for url in (
-        reverse("compare", args=[detector.pk]),
+        reverse("compare", args=[detector.pk])
+        + f"?reference={pair['reference']}&candidate={pair['candidate']}",
+        reverse("evidence-json", args=[scored["2.0"].pk]),
         reverse("split", args=[split.pk]),
         reverse("confusion", args=[scored["2.0"].pk]) + f"?split={split.pk}",
         *(  # every cell's list of detections and missed boxes (image ids and links)
@@ -571,3 +588,33 @@ def test_a_detection_naming_an_id_of_the_other_type_is_refused(users, team, dete
         f"predictions: other-type.json: record {len(dets)}: field 'image_id': image 1 is not"
     ), body["message"]
     assert not Evaluation.objects.exists()
+
+
+@pytest.mark.parametrize("kind", ["fractional", "text", "wide"])
+def test_rescore_on_a_revision_without_an_image(kind, users, team, detector, run_tasks, tmp_path):
+    """Re-scoring a stored file on a later revision that lacks one image: that image's
+    detections are left out (counted) and the rest scored as pycocotools 2.0.11 scores
+    the new revision with the file without them."""
+    from releases import rescore
+
+    truth, (dets,) = _files(KINDS[kind], n_sets=1)
+    split = evaluation_services.load_split(
+        name="far-ids", revision=1, truth=upload("far-ids.json", truth)
+    )
+    version = services.create_version(detector, "8.0", users["engineer"])
+    run_tasks(
+        services.submit_predictions, version, split, upload("p.json", dets), users["engineer"]
+    )
+    removed = truth["images"][0]["id"]  # a renamed one
+    rev2 = json.loads(json.dumps(truth))
+    rev2["images"] = [i for i in truth["images"] if i["id"] != removed]
+    rev2["annotations"] = [a for a in truth["annotations"] if a["image_id"] != removed]
+    split2 = evaluation_services.load_split(
+        name="far-ids", revision=2, truth=upload("far-ids-2.json", json.dumps(rev2))
+    )
+    result = run_tasks(rescore.rescore, detector, users["lead"], split2)
+    assert [o.status for o in result.outcomes] == ["rescored"]
+    evaluation = Evaluation.objects.get(split=split2, protocol="coco")
+    kept = [d for d in dets if d["image_id"] != removed]
+    card = _assert_pycocotools_numbers(evaluation, rev2, kept, tmp_path)
+    assert card.result["counts"]["dropped_unknown_images"] == len(dets) - len(kept) > 0
