@@ -59,6 +59,20 @@ def annotation_lines(counts):
                 f"{_plural(n, 'entry', 'entries')} of {what} ids listed more than once left "
                 f"out: each {what} is its last entry (as pycocotools' index keeps it)"
             )
+    unread = {
+        "unread_image_sizes": "image widths or heights",
+        "unread_image_tags": "image tag lists",
+        "unread_category_names": "category names",
+        "unread_attributes": "box attributes (difficult, occlusion, truncation, visibility)",
+        "unread_dont_care": "don't-care regions",
+    }
+    for key, what in unread.items():
+        n = int(counts.get(key, 0))
+        if n:
+            lines.append(
+                f"{n} {what} of a type the field cannot hold left unread (pycocotools never "
+                "reads them)"
+            )
     renamed = int(counts.get("categories_renamed", 0))
     if renamed:
         lines.append(

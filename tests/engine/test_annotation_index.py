@@ -434,3 +434,51 @@ def test_categories_sharing_a_name_are_told_apart_by_id(tmp_path):
     assert ours["counts"]["boxes"]["truth"]["categories_renamed"] == 2
     with pytest.raises(InputError, match=r"categories\[1\]: field 'name': duplicate name 'car'"):
         load_truth(tmp_path / "truth.json", annotations="strict")
+
+
+def test_fields_pycocotools_never_reads_are_left_unread_when_of_another_type(tmp_path):
+    """pycocotools 2.0.11 reads only ids, ``bbox``, ``area`` and ``iscrowd`` of a split:
+    a ``"width": "640"``, a numeric category name, ``"occlusion": "partial"`` or a
+    ``dont_care`` that is not a list is a file it scores. We score it equally, leave those
+    values unread and count them; ``strict`` refuses, naming record and field."""
+    split = _split(
+        [
+            {"id": 1, "image_id": 1, "category_id": 1, "bbox": A, "occlusion": "partial"},
+            {"id": 2, "image_id": 2, "category_id": 2, "bbox": B, "difficult": "no"},
+            {"id": 3, "image_id": 2, "category_id": 2, "bbox": A, "visibility": [1]},
+        ],
+        images=[{"id": 1, "width": "640", "height": 480, "tags": "night"}, {"id": 2}],
+        categories=[{"id": 1, "name": 5}, {"id": 2, "name": "van"}],
+    )
+    split["dont_care"] = "none"
+    ours, _ = _compare(tmp_path, split, [_det(1, A, 0.9), _det(2, B, 0.8, cat=2)])
+    counts = ours["counts"]["boxes"]["truth"]
+    assert (counts["unread_image_sizes"], counts["unread_image_tags"]) == (1, 1)
+    assert (counts["unread_category_names"], counts["unread_attributes"]) == (1, 3)
+    assert counts["unread_dont_care"] == 1
+    assert list(ours["per_class"]) == ["1", "van"]  # an unread name: named by its id
+    truth = load_truth(tmp_path / "truth.json")
+    assert np.isnan(truth.image_width).all() and truth.image_height[0] == 480
+    with pytest.raises(InputError, match=r"images\[0\]: field 'width': expected 'float"):
+        load_truth(tmp_path / "truth.json", annotations="strict")
+
+
+def test_a_field_pycocotools_reads_still_fails_where_it_is_when_others_are_unread(tmp_path):
+    """Reading loosely never hides an error: a bad ``bbox`` after an unread ``width`` is
+    refused naming its own record."""
+    split = _split(
+        [
+            {"id": 1, "image_id": 1, "category_id": 1, "bbox": A},
+            {"id": 2, "image_id": 1, "category_id": 1, "bbox": B},
+        ],
+        images=[{"id": 1, "width": "640"}, {"id": 2}],
+    )
+    split["annotations"][1]["bbox"] = "wide"
+    split["dont_care"] = [{"image_id": 1, "bbox": A}, 7]
+    (tmp_path / "gt.json").write_text(json.dumps(split))
+    with pytest.raises(InputError, match=r"annotations\[1\]: field 'bbox': expected 'array'"):
+        load_truth(tmp_path / "gt.json")
+    split["annotations"][1]["bbox"] = B
+    (tmp_path / "gt.json").write_text(json.dumps(split))
+    truth = load_truth(tmp_path / "gt.json")
+    assert len(truth.regions) == 1 and truth.box_counts["unread_dont_care"] == 1

@@ -280,8 +280,16 @@ def _coco(tmp_path, annotation_changes=None, regions=None):
     ],
 )
 def test_coco_attribute_errors(tmp_path, changes, regions, message, record, field):
-    error = _refused(message, _coco(tmp_path, changes, regions))
+    """Refused under ``strict``; by default left unread and counted, since pycocotools
+    2.0.11 never reads these keys and scores such a file."""
+    path = _coco(tmp_path, changes, regions)
+    error = _refused(message, path, annotations="strict")
     assert (error.record, error.field) == (record, field)
+    truth = load_truth(path)
+    counts = truth.box_counts
+    assert counts["unread_attributes"] + counts["unread_dont_care"] == 1
+    assert len(truth.regions) == 0 and np.isnan(truth.visibility).all()
+    assert np.isnan(truth.occlusion).all() and np.isnan(truth.truncation).all()
 
 
 def test_csv_attribute_errors_and_dont_care_rows(tmp_path):

@@ -25,6 +25,8 @@ duplicate ids and names and unknown images or categories, naming the record.
 
 import numpy as np
 
+from . import unread_fields
+
 ANNOTATION_POLICIES = ("reference", "strict")
 #: What ``resolve`` counts (0 for every other format and under ``strict``).
 COUNTS = (
@@ -34,6 +36,7 @@ COUNTS = (
     "duplicate_image_entries",
     "duplicate_category_entries",
     "categories_renamed",
+    *unread_fields.COUNTS,
 )
 #: The columns of one image / one category in ``coco_json._Records``.
 IMAGE_COLUMNS = ("image_ids", "image_width", "image_height", "image_tags")

@@ -22,34 +22,45 @@ def _column(cols, name, n):
     return np.full(n, np.nan) if values is None else np.asarray(values, np.float64)
 
 
-def finish(path, cols, image_ids, box_locate, region_path, region_locate):
+def finish(path, cols, image_ids, box_locate, region_path, region_locate, unread=None):
     """Checked attribute columns and regions resolved to image indices, as
     ``GroundTruth`` keyword arguments. ``cols["region_image_ids"]`` must already be
-    typed like ``image_ids``."""
+    typed like ``image_ids``.
+
+    With ``unread`` (a counts dict: COCO JSON read as pycocotools reads it, which never
+    looks at these keys) a value that fails a check is left unread instead — NaN, a
+    region left out — and counted (``unread_attributes``, ``unread_dont_care``);
+    without, it is refused naming the record and the field."""
     n = len(cols["boxes"])
     occlusion = _column(cols, "occlusion", n)
     truncation = _column(cols, "truncation", n)
     visibility = _column(cols, "visibility", n)
+
+    def bad(values, mask, field, message):
+        if unread is None:
+            checks.fail_at(path, mask, box_locate, field, message)
+            return values
+        unread["unread_attributes"] += int(mask.sum())
+        return np.where(mask, np.nan, values)
+
     given = ~np.isnan(occlusion)
-    checks.fail_at(
-        path,
+    occlusion = bad(
+        occlusion,
         given & ~np.isfinite(occlusion),
-        box_locate,
         "occlusion",
         "must be a finite integer level",
     )
-    checks.fail_at(
-        path,
-        given & np.isfinite(occlusion) & (occlusion != np.round(occlusion)),
-        box_locate,
+    given = ~np.isnan(occlusion)
+    occlusion = bad(
+        occlusion,
+        given & (occlusion != np.round(occlusion)),
         "occlusion",
         lambda i: f"must be an integer level (0 fully visible to 3 unknown), got {occlusion[i]:g}",
     )
-    checks.fail_at(path, np.isinf(truncation), box_locate, "truncation", "must be a finite number")
-    checks.fail_at(
-        path,
+    truncation = bad(truncation, np.isinf(truncation), "truncation", "must be a finite number")
+    visibility = bad(
+        visibility,
         ~np.isnan(visibility) & ~((visibility >= 0) & (visibility <= 1)),
-        box_locate,
         "visibility",
         lambda i: f"the visible fraction lies within 0-1, got {visibility[i]:g}",
     )
@@ -61,15 +72,22 @@ def finish(path, cols, image_ids, box_locate, region_path, region_locate):
         region_image, found = checks.resolve(
             region_path, region_ids, image_ids, region_locate, "", ""
         )
-        checks.require_found(region_path, found, region_ids, region_locate, "image_id", "image")
-        checks.check_finite(region_path, regions, region_locate, "bbox")
-        checks.fail_at(
-            region_path,
-            (regions[:, 2] < 0) | (regions[:, 3] < 0),
-            region_locate,
-            "bbox",
-            lambda i: f"a region's width and height must be >= 0, got {regions[i].tolist()}",
-        )
+        finite = np.isfinite(regions).all(axis=1)
+        sized = (regions[:, 2] >= 0) & (regions[:, 3] >= 0)
+        if unread is not None:
+            keep = found & finite & sized
+            unread["unread_dont_care"] += int((~keep).sum())
+            region_image, regions = region_image[keep], regions[keep]
+        else:
+            checks.require_found(region_path, found, region_ids, region_locate, "image_id", "image")
+            checks.check_finite(region_path, regions, region_locate, "bbox")
+            checks.fail_at(
+                region_path,
+                ~sized,
+                region_locate,
+                "bbox",
+                lambda i: f"a region's width and height must be >= 0, got {regions[i].tolist()}",
+            )
     return {
         "occlusion": occlusion,
         "truncation": truncation,

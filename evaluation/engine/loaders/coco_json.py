@@ -15,8 +15,9 @@ import msgspec
 import numpy as np
 
 from ..errors import InputError
-from . import json_literals, json_syntax
+from . import json_literals, json_syntax, unread_fields
 from .checks import text_start
+from .ids import JSON_ID
 
 CHUNK_BYTES = 4 << 20
 #: No detection record is this long: past it, reading stops with an error instead of
@@ -34,7 +35,7 @@ VALIDATE_FIRST_BYTES = 128 << 20
 
 #: An id field: any JSON number, boolean or text, as pycocotools keys its dicts by them
 #: (``1 == 1.0 == true``, the text ``"1"`` another id); see ``whole_ids`` and ``ids``.
-Id = int | float | bool | str
+Id = JSON_ID
 
 
 class _Image(msgspec.Struct, gc=False):
@@ -191,7 +192,7 @@ def int_column(path, values, locate, field, wide=False):
     raise AssertionError("unreachable: every id fits int64")
 
 
-def read_truth(path, wide=False):
+def read_truth(path, wide=False, loose=False):
     """Decode a COCO-style ground-truth file into plain columns.
 
     Read a few MB at a time (``json_syntax.check``): the syntax is checked in
@@ -201,7 +202,9 @@ def read_truth(path, wide=False):
     whole, so memory is bounded by the columns plus one slice, for a rejected file as
     for an accepted one. Errors are those of a whole-file decode: a syntax error
     anywhere first, then the first type error in file order. A truncated file, or one
-    beyond ``SYNTAX_FIRST_BYTES``, gets the syntax check alone first.
+    beyond ``SYNTAX_FIRST_BYTES``, gets the syntax check alone first. With ``loose``,
+    values pycocotools never reads are left unread when of another type
+    (``unread_fields``; counted in the columns' ``unread_counts``).
     """
     with open(path, "rb") as f:
         size = f.seek(0, 2)
@@ -220,7 +223,7 @@ def read_truth(path, wide=False):
             # A syntax error or truncation is found without building any column; the
             # records it counts let the columns be allocated once, at full length.
             totals = json_syntax.check(path, f, skip).totals
-        records = _Records(path, wide, totals)
+        records = _Records(path, wide, totals, loose)
         checker = json_syntax.check(path, f, skip, sink=records)
         return records.columns(checker)
 
@@ -246,6 +249,16 @@ class _Outline(msgspec.Struct, gc=False):
     categories: list[_Category] = []
     dont_care: list[_Region] = []
 
+
+class _LooseOutline(_Outline, gc=False):
+    dont_care: object = None
+
+
+class _LooseDataset(_Dataset, gc=False):
+    dont_care: object = None
+
+
+_LOOSE_OUTLINES = {_Outline: _LooseOutline, _Dataset: _LooseDataset}
 
 _RECORDS = {
     "images": list[_Image],
@@ -276,8 +289,9 @@ class _Records:
     the outer object before its array) and raised by ``columns`` once the whole
     syntax is known to be valid, so a syntax error anywhere still comes first."""
 
-    def __init__(self, path, wide=False, totals=None):
-        self.path, self.wide = path, wide
+    def __init__(self, path, wide=False, totals=None, loose=False):
+        self.path, self.wide, self.loose = path, wide, loose
+        self.unread = dict.fromkeys(unread_fields.COUNTS, 0)
         self.totals = totals or {}  # records per array, from a syntax-only scan
         self.filled = dict.fromkeys(_RECORDS)  # preallocated array columns per key
         self.parts = {key: [] for key in _RECORDS}
@@ -293,7 +307,13 @@ class _Records:
             for field_key in [k for k in self.out_of_range if k[0] == key]:
                 del self.out_of_range[field_key]
         try:
-            decoded = json_literals.decode(records, _RECORDS[key])
+            try:
+                decoded = json_literals.decode(records, _RECORDS[key])
+            except msgspec.ValidationError as e:
+                if not (self.loose and unread_fields.loose_field(key, str(e))):
+                    raise
+                loose = json_literals.decode(records, unread_fields.LOOSE[key])
+                decoded = unread_fields.normalise(key, loose, self.unread)
         except (msgspec.ValidationError, msgspec.DecodeError) as e:
             self.error = (e, key, self.count[key], piece_at, prefix())
             self.parts = None  # no more columns: the file is rejected
@@ -427,13 +447,21 @@ class _Records:
                 else:
                     cols[name] = np.concatenate([column, *pieces])
                 del pieces
+        cols["unread_counts"] = dict(self.unread)
         return cols
 
     def _check_outline(self, checker, outline, kind):
         """Raise the type (or encoding) error of the outer object with its arrays
-        emptied: a missing array, or one given as something else."""
+        emptied: a missing array, or one given as something else (a ``dont_care`` that
+        is not an array is left unread when ``loose``)."""
         try:
-            json_literals.decode(outline, kind)
+            try:
+                json_literals.decode(outline, kind)
+            except msgspec.ValidationError as e:
+                if not (self.loose and str(e).endswith("`$.dont_care`")):
+                    raise
+                json_literals.decode(outline, _LOOSE_OUTLINES[kind])
+                self.unread["unread_dont_care"] += 1
         except msgspec.ValidationError as e:
             if str(e).startswith("Expected `object`, got `array`"):
                 raise _array_given(self.path) from None

@@ -30,6 +30,8 @@ INTEGER = re.compile(r"^[+-]?\d+$")
 INT64 = (-(2**63), 2**63 - 1)
 NUMBER, TEXT = "\x1d", "\x1e"  # the type marks of typed keys
 ID_TYPES = ("", "number", "text", "json")
+#: A COCO JSON id field as decoded: any JSON number, boolean or text.
+JSON_ID = int | float | bool | str
 
 
 def csv_ids(values):

@@ -60,7 +60,8 @@ def _order(values, id_type):
 def read_truth(path, images, fmt, classes, policy, ids="any", annotations="reference"):
     entry_counts = {}
     if fmt == "json":
-        cols = coco_json.read_truth(path, wide=ids == "any")
+        cols = coco_json.read_truth(path, wide=ids == "any", loose=annotations != "strict")
+        entry_counts.update(cols.pop("unread_counts"))
         image_locate = lambda i: f"images[{i}]"  # noqa: E731
         image_type = _typed_family(
             path, cols, "image_ids", ("box_image_ids", "region_image_ids"), image_locate, "image"
@@ -75,7 +76,8 @@ def read_truth(path, images, fmt, classes, policy, ids="any", annotations="refer
         image_path = path
         category_locate = lambda i: f"categories[{i}]"  # noqa: E731
         if annotations != "strict":  # an image or category listed twice: its last entry
-            kept, entry_counts = annotation_index.last_entries(cols)
+            kept, duplicates = annotation_index.last_entries(cols)
+            entry_counts.update(duplicates)
             image_locate = lambda i: f"images[{kept['image'][i]}]"  # noqa: E731
             category_locate = lambda i: f"categories[{kept['category'][i]}]"  # noqa: E731
             shown = [_id_text(v) for v in cols["class_ids"].tolist()]
@@ -191,7 +193,10 @@ def read_truth(path, images, fmt, classes, policy, ids="any", annotations="refer
     with checks.ieee():
         area = np.where(given, area, boxes[:, 2] * boxes[:, 3])
 
-    road = attributes.finish(path, cols, image_ids, box_locate, path, region_locate)
+    loose = fmt == "json" and annotations != "strict"
+    road = attributes.finish(
+        path, cols, image_ids, box_locate, path, region_locate, annotation_counts if loose else None
+    )
     names = [cols["class_names"][i] for i in class_order]
     tags = [cols["image_tags"][i] for i in image_order]
     return GroundTruth(

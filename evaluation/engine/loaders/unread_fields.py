@@ -1,0 +1,129 @@
+"""Fields pycocotools never reads: read when they hold what we expect, else left unread.
+
+Of a ground-truth file pycocotools 2.0.11 reads only the ids, ``bbox``, ``area`` and
+``iscrowd`` (``COCO.createIndex``, ``COCOeval._prepare``, ``computeIoU``,
+``evaluateImg``). An image's ``width``/``height``, a category's ``name`` and keys of
+our own (``tags``, ``difficult``, ``occlusion``, ``truncation``, ``visibility``,
+``dont_care``) are never looked at there, so a file holding ``"width": "640"`` or
+``"occlusion": "partial"`` is one it scores. Here such a value, of a type its field
+cannot hold, is left unread — as if absent — and counted (``COUNTS``, shown with the
+split); ``annotations="strict"`` refuses it, naming the record and the field.
+
+Clean files never come here: a slice of records is decoded with the typed records
+first, and only a slice that fails on one of these fields is decoded again loosely.
+"""
+
+from typing import Any
+
+import msgspec
+
+from .ids import JSON_ID
+
+#: Counts of values left unread, by what they are.
+COUNTS = (
+    "unread_image_sizes",
+    "unread_image_tags",
+    "unread_category_names",
+    "unread_attributes",
+    "unread_dont_care",
+)
+_COUNT_OF = {
+    ("images", "width"): "unread_image_sizes",
+    ("images", "height"): "unread_image_sizes",
+    ("images", "tags"): "unread_image_tags",
+    ("categories", "name"): "unread_category_names",
+    ("annotations", "difficult"): "unread_attributes",
+    ("annotations", "occlusion"): "unread_attributes",
+    ("annotations", "truncation"): "unread_attributes",
+    ("annotations", "visibility"): "unread_attributes",
+}
+
+
+class _Image(msgspec.Struct, gc=False):
+    id: JSON_ID
+    width: Any = None
+    height: Any = None
+    tags: Any = ()
+
+
+class _Category(msgspec.Struct, gc=False):
+    id: JSON_ID
+    name: Any = None
+
+
+class _Annotation(msgspec.Struct, gc=False):
+    id: JSON_ID
+    image_id: JSON_ID
+    category_id: JSON_ID
+    bbox: tuple[float, float, float, float]
+    area: float | None = None
+    iscrowd: int | float | bool = 0
+    difficult: Any = 0
+    occlusion: Any = None
+    truncation: Any = None
+    visibility: Any = None
+
+
+class Region(msgspec.Struct, gc=False):
+    image_id: JSON_ID
+    bbox: tuple[float, float, float, float]
+
+
+LOOSE = {
+    "images": list[_Image],
+    "categories": list[_Category],
+    "annotations": list[_Annotation],
+    "dont_care": list[Any],
+}
+
+
+def _number(value):
+    return type(value) in (int, float)
+
+
+def _fits(key, name, value):
+    """Whether ``value`` is what the typed record's field holds."""
+    if name in ("width", "height", "occlusion", "truncation", "visibility"):
+        return value is None or _number(value)
+    if name == "tags":
+        return isinstance(value, (list, tuple)) and all(type(t) is str for t in value)
+    if name == "name":
+        return value is None or type(value) is str
+    return type(value) in (int, float, bool)  # difficult: any number, read as truthiness
+
+
+_DEFAULTS = {"tags": (), "difficult": 0}
+
+
+def loose_field(key, error_text):
+    """Whether a typed decode's error (msgspec's ``... - at `$[3].width```) is about a
+    field this module reads loosely."""
+    if key == "dont_care":
+        return True
+    field = error_text.rsplit("`$", 1)[-1].split("]", 1)[-1].lstrip(".").split("[")[0]
+    field = field.split(".")[0].rstrip("`")
+    return (key, field) in _COUNT_OF
+
+
+def normalise(key, records, counts):
+    """The loosely decoded ``records`` with every value of a type its field cannot hold
+    set to the field's default, counted in ``counts``; regions that are not an object
+    with an id and four numbers are left out, counted."""
+    if key == "dont_care":
+        kept = []
+        for value in records:
+            try:
+                kept.append(msgspec.convert(value, Region))
+            except msgspec.ValidationError:
+                counts["unread_dont_care"] += 1
+        return kept
+    fields = [name for (k, name) in _COUNT_OF if k == key]
+    for record in records:
+        for name in fields:
+            value = getattr(record, name)
+            if not _fits(key, name, value):
+                setattr(record, name, _DEFAULTS.get(name))
+                counts[_COUNT_OF[key, name]] += 1
+            elif name == "difficult":
+                setattr(record, name, bool(value))
+    return records
