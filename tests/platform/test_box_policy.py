@@ -1,6 +1,8 @@
 """The box policy travels from the request to the engine: one evaluation per
 (split, file, protocol, policy), scored under that policy, refusals stored as failures."""
 
+import json
+
 import pytest
 
 from evaluation import engine
@@ -66,3 +68,27 @@ def test_an_unknown_policy_is_refused_before_anything_is_stored(split, split_tru
     with pytest.raises(engine.InputError, match="unknown box policy 'trim'"):
         evaluation_services.request_evaluations(split, stored, ["coco"], box_policy="trim")
     assert not Evaluation.objects.exists()
+
+
+def test_reject_names_the_record_of_a_split_whose_annotations_needed_resolving(
+    split_truth, run_tasks
+):
+    """A split with a repeated annotation id (read as pycocotools' index reads it: the
+    last one) and a box over the frame's edge: under ``reject`` the evaluation fails
+    naming that annotation, as the command line does, instead of an internal error."""
+    truth = json.loads(json.dumps(split_truth))
+    image = truth["images"][0]
+    twin = {**truth["annotations"][0], "image_id": image["id"]}
+    twin["bbox"] = [image["width"] - 5.0, 1.0, 20.0, 10.0]
+    truth["annotations"] += [twin, dict(twin)]  # same id twice: the last one is scored
+    resolved = evaluation_services.load_split(
+        name="dock-dusk", revision=1, truth=upload("dock-dusk.json", truth)
+    )
+    stored = evaluation_services.store_predictions(upload("p.json", []))
+    (evaluation,) = run_tasks(
+        evaluation_services.request_evaluations, resolved, stored, ["coco"], box_policy="reject"
+    )
+    evaluation.refresh_from_db()
+    assert evaluation.state == "failed"
+    last = len(truth["annotations"]) - 1
+    assert f"annotations[{last}]" in evaluation.error and "box policy: reject" in evaluation.error

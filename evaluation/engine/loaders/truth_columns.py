@@ -162,12 +162,12 @@ def read_truth(path, images, fmt, classes, policy, ids="any", annotations="refer
     frame = (cols["image_width"][image_order], cols["image_height"][image_order])
     if policy == "reject":
         for at in range(0, len(boxes), checks.BLOCK_ROWS):  # per block: no full-length
-            rows = slice(at, at + checks.BLOCK_ROWS)  # per-box width/height copies
+            block = slice(at, at + checks.BLOCK_ROWS)  # per-box width/height copies
             checks.check_inside(
                 path,
-                boxes[rows],
-                frame[0][box_image[rows]],
-                frame[1][box_image[rows]],
+                boxes[block],
+                frame[0][box_image[block]],
+                frame[1][box_image[block]],
                 lambda i, at=at: box_locate(at + i),
                 box_fields["bbox"],
             )

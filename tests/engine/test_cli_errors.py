@@ -1,0 +1,56 @@
+"""Inputs that once gave the command line a traceback: each now exits 2 with one
+``error: ...`` line naming the file (and record and field where there is one), and
+writes nothing half-way (common practice: an error a user can act on without opening a
+debugger)."""
+
+from evaluation.engine.__main__ import main
+
+IMAGE = {"id": 1, "width": 100, "height": 100}
+CATEGORY = {"id": 1, "name": "a"}
+
+
+def _box(ann_id, bbox, image_id=1, area=400):
+    return {
+        "id": ann_id,
+        "image_id": image_id,
+        "category_id": 1,
+        "bbox": bbox,
+        "area": area,
+        "iscrowd": 0,
+    }
+
+
+def _cli(capsys, *args):
+    """Exit code and stderr of ``python -m evaluation.engine ARGS`` (in-process)."""
+    code = main([str(a) for a in args])
+    return code, capsys.readouterr().err
+
+
+def _split(files, annotations, name="truth.json"):
+    return files.write(
+        name, {"images": [IMAGE], "categories": [CATEGORY], "annotations": annotations}
+    )
+
+
+DET = [{"image_id": 1, "category_id": 1, "bbox": [10, 10, 20, 20], "score": 0.9}]
+
+
+def test_reject_names_the_record_of_a_resolved_annotation(files, capsys):
+    """A repeated id resolves to its last annotation (as pycocotools' index keeps it);
+    ``--boxes reject`` then refuses its overhanging box by its place in the file."""
+    truth = _split(files, [_box(1, [90, 10, 20, 20]), _box(1, [80, 10, 30, 20])])
+    dt = files.write("dt.json", DET)
+    code, err = _cli(capsys, "score", "--truth", truth, "--predictions", dt, "--boxes", "reject")
+    assert code == 2
+    assert f"error: {truth}: annotations[1]: field 'bbox': box [80.0, 10.0, 30.0, 20.0]" in err
+    assert "box policy: reject" in err
+
+
+def test_reject_names_the_area_of_a_kept_annotation_after_an_unlisted_image(files, capsys):
+    """An annotation of an unlisted image is left out (pycocotools never scores it); the
+    next one's negative area is refused under its own index."""
+    truth = _split(files, [_box(2, [5, 5, 6, 6], image_id=7), _box(1, [10, 10, 20, 20], area=-1)])
+    dt = files.write("dt.json", DET)
+    code, err = _cli(capsys, "score", "--truth", truth, "--predictions", dt, "--boxes", "reject")
+    assert code == 2
+    assert f"error: {truth}: annotations[1]: field 'area': must be >= 0, got -1" in err
