@@ -372,6 +372,38 @@ def test_export_of_a_csv_split_keeps_text_image_ids(tmp_path):
     ]
 
 
+def test_export_of_infinite_image_ids_is_strict_json(tmp_path):
+    """JSON ``Infinity`` and ``-Infinity`` image ids (Python's json, and so pycocotools,
+    reads them as floats): the JSON Lines export writes them as the strings
+    "Infinity"/"-Infinity", as every non-finite number there, and stays strict JSON
+    (``json.loads`` with ``parse_constant`` refusing the bare literals)."""
+    import json
+
+    from evaluation.engine import export, load_predictions, load_truth
+
+    box = {"category_id": 1, "bbox": [1.0, 1.0, 50.0, 50.0]}
+    split = {
+        "images": [{"id": float("inf")}, {"id": -float("inf")}, {"id": 2.5}],
+        "categories": [{"id": 1, "name": "person"}],
+        "annotations": [
+            {**box, "id": k + 1, "image_id": i, "area": 2500.0, "iscrowd": 0}
+            for k, i in enumerate((float("inf"), -float("inf"), 2.5))
+        ],
+    }
+    detections = [{**box, "image_id": float("inf"), "score": 0.9}]
+    (tmp_path / "gt.json").write_text(json.dumps(split))
+    (tmp_path / "dt.json").write_text(json.dumps(detections))
+    truth = load_truth(tmp_path / "gt.json")
+    records = match(truth, load_predictions(tmp_path / "dt.json", truth), "coco")
+    text = "".join(export.jsonl_chunks(records, truth))
+
+    def refuse(literal):
+        raise ValueError(f"not strict JSON: {literal}")
+
+    rows = [json.loads(line, parse_constant=refuse) for line in text.splitlines()]
+    assert [row["image_id"] for row in rows] == ["Infinity", "Infinity", "-Infinity", 2.5]
+
+
 def test_tied_errors_on_one_box_go_to_the_earlier_in_the_file(files):
     """A class error (car detection, IoU 0.9) and a localisation error (person, IoU 1/3)
     on one person box with equal scores: the earlier in the predictions file is the one
