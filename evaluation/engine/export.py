@@ -77,7 +77,7 @@ def row_blocks(records, truth, block_rows=BLOCK_ROWS, typed_ids=False):
     if typed_ids and truth.image_id_type:
         keys = keys_of(truth.image_ids, truth.image_id_type)
         image_ids = np.array([key_value(k) for k in keys.tolist()], dtype=object)
-    n = records.n_detections
+    n, m = records.n_detections, truth.n_boxes  # none: nothing to relate a row to
     for start in range(0, n, block_rows):
         s = slice(start, min(n, start + block_rows))
         cls, box = records.det_class[s], records.det_box[s]
@@ -97,11 +97,10 @@ def row_blocks(records, truth, block_rows=BLOCK_ROWS, typed_ids=False):
             "reason": np.array(DETECTION_REASONS)[records.det_reason[s]].tolist(),
             "iou_threshold": threshold[cls].tolist(),
             "detection": records.det_order[s].tolist(),
-            "box_id": _optional(truth.box_ids[safe], has),
-            "related_class": _optional(classes[truth.box_class[safe]], has),
+            "box_id": _optional(truth.box_ids[safe] if m else safe, has),
+            "related_class": _optional(classes[truth.box_class[safe]] if m else safe, has),
             "iou": _optional(iou, has),
         }
-    m = truth.n_boxes
     for start in range(0, m, block_rows):
         s = slice(start, min(m, start + block_rows))
         cls, box = truth.box_class[s], truth.boxes[s]

@@ -3,6 +3,12 @@
 writes nothing half-way (common practice: an error a user can act on without opening a
 debugger)."""
 
+import csv
+import io
+import json
+
+import pytest
+
 from evaluation.engine.__main__ import main
 
 IMAGE = {"id": 1, "width": 100, "height": 100}
@@ -54,3 +60,23 @@ def test_reject_names_the_area_of_a_kept_annotation_after_an_unlisted_image(file
     code, err = _cli(capsys, "score", "--truth", truth, "--predictions", dt, "--boxes", "reject")
     assert code == 2
     assert f"error: {truth}: annotations[1]: field 'area': must be >= 0, got -1" in err
+
+
+@pytest.mark.parametrize("name", ["r.csv", "r.jsonl"])
+def test_records_out_of_a_split_without_annotations(files, capsys, name):
+    """A split of background images only: every detection is a false positive related
+    to no box (empty box id and class), and there are no box rows."""
+    truth = _split(files, [])
+    dt = files.write("dt.json", DET)
+    out = files.root / name
+    code, err = _cli(capsys, "score", "--truth", truth, "--predictions", dt, "--records-out", out)
+    assert (code, err) == (0, "")
+    text = out.read_text()
+    if name.endswith(".csv"):
+        rows = list(csv.DictReader(io.StringIO(text)))
+    else:
+        rows = [json.loads(line) for line in text.splitlines()]
+    assert len(rows) == 1
+    row = rows[0]
+    assert (row["row"], row["outcome"], row["reason"]) == ("detection", "fp", "fp_background")
+    assert row["box_id"] in ("", None) and row["related_class"] in ("", None)

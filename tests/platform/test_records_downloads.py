@@ -14,6 +14,7 @@ from django.urls import reverse
 from rest_framework.test import APIClient
 
 from evaluation import outcomes
+from evaluation import services as evaluation_services
 from evaluation.engine import export
 from evaluation.models import Evaluation
 from releases import services, tokens
@@ -103,3 +104,32 @@ def test_an_unfinished_evaluation_has_nothing_to_download(users, detector, split
     client = APIClient()
     client.force_login(users["engineer"])
     assert client.get(reverse("records-download", args=[queued.pk, "csv"])).status_code == 404
+
+
+def test_downloads_of_a_split_without_annotations(users, detector, run_tasks):
+    """A split of background images only: each detection row relates to no box (empty
+    box id), and there is no box row — a download, not a server error."""
+    truth = {
+        "images": [{"id": 1, "width": 640, "height": 480}, {"id": 2, "width": 640, "height": 480}],
+        "categories": [{"id": 1, "name": "car"}],
+        "annotations": [],
+    }
+    empty = evaluation_services.load_split(
+        name="empty-lot", revision=1, truth=upload("empty-lot.json", truth)
+    )
+    dets = [{"image_id": 1, "category_id": 1, "bbox": [5, 5, 40, 30], "score": 0.7}]
+    version = services.create_version(detector, "1.7", users["engineer"])
+    run_tasks(
+        services.submit_predictions, version, empty, upload("bg.json", dets), users["engineer"]
+    )
+    scored = Evaluation.objects.get(split=empty, protocol="coco", state="done")
+    client = APIClient()
+    client.force_login(users["engineer"])
+    rows = list(
+        csv.DictReader(
+            io.StringIO(_body(client.get(reverse("records-download", args=[scored.pk, "csv"]))))
+        )
+    )
+    assert [(r["row"], r["outcome"], r["box_id"]) for r in rows] == [("detection", "fp", "")]
+    lines = _body(client.get(reverse("records-download", args=[scored.pk, "jsonl"]))).splitlines()
+    assert [json.loads(line)["box_id"] for line in lines] == [None]
