@@ -80,3 +80,16 @@ def test_records_out_of_a_split_without_annotations(files, capsys, name):
     row = rows[0]
     assert (row["row"], row["outcome"], row["reason"]) == ("detection", "fp", "fp_background")
     assert row["box_id"] in ("", None) and row["related_class"] in ("", None)
+
+
+def test_a_csv_split_of_a_header_and_no_rows_is_a_split_of_background_images(files, capsys):
+    """Header only: no box, no class (the CSV's classes are its labels), so the
+    detection's class is unknown and dropped, as pycocotools drops a detection of a
+    category the split does not list."""
+    truth = files.write("truth.csv", "image_id,label,x_min,y_min,x_max,y_max\n")
+    images = files.write("images.csv", "image_id,width,height\n1,100,100\n")
+    dt = files.write("dt.csv", "image_id,label,x_min,y_min,x_max,y_max,score\n1,a,1,1,5,5,0.5\n")
+    args = ("score", "--truth", truth, "--images", images, "--predictions", dt, "--format", "json")
+    assert main([str(a) for a in args]) == 0
+    counts = json.loads(capsys.readouterr().out)["counts"]
+    assert (counts["images"], counts["truth_boxes"], counts["dropped_predictions"]) == (1, 0, 1)

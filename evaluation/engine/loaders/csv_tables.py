@@ -171,10 +171,10 @@ def read_boxes(path):
         # an area cell written as nan is a NaN area, as in pycocotools; empty: none
         out["area_given"].append(np.array([bool(v) for v in block.get("area", [""] * n)], bool))
         out["lines"].append(np.array(lines, np.int64))
-    for key in ("boxes", *flags, *numeric, "area_given", "lines"):
-        out[key] = (
-            np.concatenate(out[key]) if out[key] else np.zeros((0, 4) if key == "boxes" else 0)
-        )
+    empty = {"boxes": np.zeros((0, 4)), "area_given": np.zeros(0, bool)}
+    empty.update({**dict.fromkeys(flags, empty["area_given"]), "lines": np.zeros(0, np.int64)})
+    for key in ("boxes", *flags, *numeric, "area_given", "lines"):  # no rows: typed empties
+        out[key] = np.concatenate(out[key]) if out[key] else empty.get(key, np.zeros(0))
     return out
 
 
