@@ -150,7 +150,9 @@ def match(truth, predictions, protocol, *, reasons=True):
     with np.errstate(invalid="ignore", over="ignore", under="ignore"):
         det_area = det_boxes[:, 2] * det_boxes[:, 3]
 
-    base_ignore = truth.crowd | truth.ignore | truth.difficult
+    base_ignore = truth.crowd | truth.ignore
+    if protocol.difficult_ignored:
+        base_ignore = base_ignore | truth.difficult
     gt_ignored = base_ignore[None, :] | _outside(truth.box_area, protocol.area_ranges)
     det_outside = _outside(det_area, protocol.area_ranges)
 

@@ -95,6 +95,9 @@ class Protocol:
     #: stays taken): pycocotools 2.0.11 ``evaluateImg`` stores the matched box's id in
     #: ``dtm`` and ``accumulate`` counts ``tps = dtm & ~dtIg``, so id 0 reads as unmatched.
     zero_id_unmatched: bool = False
+    #: Ground truth flagged ``difficult`` is neither TP nor FP (the VOC devkit's rule),
+    #: or, False, the flag is not read at all (pycocotools never reads it).
+    difficult_ignored: bool = True
     #: Custom protocols: every name in ``class_iou_thresholds`` must be a class of the
     #: split. Presets name common classes (car, van, ...) that a split may lack.
     check_class_names: bool = False
@@ -147,15 +150,17 @@ class Protocol:
             "area_ranges": [list(r) for r in self.area_ranges],
             "tie_order": self.tie_order,
             "zero_id_unmatched": self.zero_id_unmatched,
+            "difficult_ignored": self.difficult_ignored,
         }
 
 
 PRESETS = {
     "coco": Protocol(
         name="coco",
-        version=1,
+        version=2,
         description="COCO-style box AP: IoU 0.50:0.05:0.95, 101 recall points, "
-        "up to 100 detections per image and class, crowd regions (pycocotools 2.0.11).",
+        "up to 100 detections per image and class, crowd regions; a difficult flag is "
+        "not read (pycocotools 2.0.11).",
         matching=GREEDY,
         # Exactly as numpy makes them, because the reference selects by equality.
         iou_thresholds=tuple(np.linspace(0.5, 0.95, 10).tolist()),
@@ -164,6 +169,7 @@ PRESETS = {
         precision_epsilon=float(np.spacing(1)),
         coco_summary=True,
         zero_id_unmatched=True,
+        difficult_ignored=False,
     ),
     "voc07": Protocol(
         name="voc07",
@@ -240,7 +246,7 @@ def protocol_from_dict(spec, source="protocol"):
     ``max_detections``, ``tie_order`` (``TIE_ORDERS``), ``area_ranges`` (the size
     buckets: ``[[name, low, high], ...]`` in pixels², the first ``["all", 0, high]``
     as pycocotools' ``Params.areaRng``, each box counted in ``low <= area <= high``),
-    ``zero_id_unmatched`` (bool; inherited from ``base``).
+    ``zero_id_unmatched`` and ``difficult_ignored`` (bools; inherited from ``base``).
     """
     if not isinstance(spec, dict):
         raise InputError(source, "a custom protocol must be a JSON object")
@@ -258,6 +264,7 @@ def protocol_from_dict(spec, source="protocol"):
         "tie_order",
         "area_ranges",
         "zero_id_unmatched",
+        "difficult_ignored",
     }
     for key in spec:
         if key not in known:
@@ -329,6 +336,10 @@ def protocol_from_dict(spec, source="protocol"):
         if not isinstance(spec["zero_id_unmatched"], bool):
             raise InputError(source, "must be true or false", field="zero_id_unmatched")
         values["zero_id_unmatched"] = spec["zero_id_unmatched"]
+    if "difficult_ignored" in spec:
+        if not isinstance(spec["difficult_ignored"], bool):
+            raise InputError(source, "must be true or false", field="difficult_ignored")
+        values["difficult_ignored"] = spec["difficult_ignored"]
     values["precision_epsilon"] = base.precision_epsilon
     return Protocol(**values)
 

@@ -54,13 +54,13 @@ def protocol_record(protocol, truth, predictions, records, result):
     n_boxes = np.bincount(truth.box_class, minlength=len(truth.classes))
     n_pos = records.n_positives(0)
     absent = {}
+    flags = "crowd, difficult or ignore" if protocol.difficult_ignored else "crowd or ignore"
     for k, name in enumerate(truth.classes):
         if n_pos[k] == 0:
             absent[name] = (
                 "no ground-truth box"
                 if n_boxes[k] == 0
-                else f"all {int(n_boxes[k])} ground-truth boxes are ignored "
-                "(crowd, difficult or ignore flags)"
+                else f"all {int(n_boxes[k])} ground-truth boxes are ignored ({flags} flags)"
             )
     area_given = truth.box_counts.get("area_from_file")
     return {
@@ -85,6 +85,10 @@ def protocol_record(protocol, truth, predictions, records, result):
         "box stays taken (pycocotools 2.0.11)"
         if protocol.zero_id_unmatched
         else "annotation ids are not read",
+        "difficult": "a box flagged difficult is neither TP nor FP (VOC devkit)"
+        if protocol.difficult_ignored
+        else "the difficult flag is not read: such boxes are scored as any other "
+        "(pycocotools 2.0.11)",
         "pixel_offset": protocol.pixel_offset,
         "box_policy": predictions.box_policy,
         "area_source": {
@@ -156,6 +160,9 @@ EFFECTS = {
     "tie_order": "the order of tied scores across images; it moves AP only when scores tie",
     "zero_id": "whether a detection matched to the box of annotation id 0 counts as a true "
     "positive; it moves the numbers only of a split that has such a box",
+    "difficult": "whether boxes flagged difficult are left out of the count (neither found "
+    "nor missed) or scored as any other box; it moves the numbers only of a split with "
+    "such flags, and leaving them out usually raises recall and AP",
     "pixel_offset": "the +1 pixel convention makes every box one pixel larger each way, "
     "raising the IoU of small boxes, so small objects match more easily",
     "box_policy": "what happens to boxes leaving the frame; clipping changes the IoU of "

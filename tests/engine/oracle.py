@@ -30,9 +30,19 @@ def _sorted_detections(predictions, image, k):
 
 
 def greedy_ap(
-    truth, predictions, *, thresholds, recall_points, max_detections, epsilon, outcomes=None
+    truth,
+    predictions,
+    *,
+    thresholds,
+    recall_points,
+    max_detections,
+    epsilon,
+    outcomes=None,
+    difficult=True,
 ):
     """AP per (slot, class) under the pycocotools rules, area 'all'. NaN = absent.
+    ``difficult``: whether a box flagged difficult is ignored like a crowd one (the
+    generalisation to VOC-style flags; pycocotools itself never reads the flag).
 
     With a dict ``outcomes``, ``outcomes[k]`` is set to ``(scores, tp, ignored, n_pos)``
     of slot 0, in pycocotools' concatenation order: images in id order, each image's
@@ -50,7 +60,7 @@ def greedy_ap(
             ]
             # evaluateImg: g['ignore'] or the area outside aRng ('all': [0, 1e10])
             ignore = {
-                j: bool(truth.crowd[j] or truth.ignore[j] or truth.difficult[j])
+                j: bool(truth.crowd[j] or truth.ignore[j] or (difficult and truth.difficult[j]))
                 or not 0 <= truth.box_area[j] <= 1e10
                 for j in gts
             }

@@ -482,3 +482,23 @@ def test_a_field_pycocotools_reads_still_fails_where_it_is_when_others_are_unrea
     (tmp_path / "gt.json").write_text(json.dumps(split))
     truth = load_truth(tmp_path / "gt.json")
     assert len(truth.regions) == 1 and truth.box_counts["unread_dont_care"] == 1
+
+
+def test_a_difficult_flag_is_not_read_under_coco_and_is_under_voc(tmp_path):
+    """pycocotools 2.0.11 never reads ``difficult``: under ``coco`` a flagged box is
+    scored as any other, equal to the reference; the VOC devkit's rule (neither TP nor
+    FP) stays with ``voc``/``voc07``, and each protocol record says which it applied."""
+    split = _split(
+        [
+            {"id": 1, "image_id": 1, "category_id": 1, "bbox": A, "difficult": 1},
+            {"id": 2, "image_id": 1, "category_id": 1, "bbox": B},
+        ]
+    )
+    ours, _ = _compare(tmp_path, split, [_det(1, B, 0.9)])
+    assert ours["summary"]["AR100"] == pytest.approx(0.5)  # the difficult box is missed
+    assert "not read" in ours["protocol_record"]["difficult"]
+    truth = load_truth(tmp_path / "truth.json")
+    predictions = load_predictions(tmp_path / "predictions.json", truth)
+    voc = evaluate(truth, predictions, "voc")
+    assert voc["per_class"]["car"]["recall"] == pytest.approx(1.0)  # left out of the count
+    assert "neither TP nor FP" in voc["protocol_record"]["difficult"]

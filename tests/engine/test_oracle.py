@@ -129,6 +129,7 @@ def test_greedy_protocols_follow_pycocotools_rules(files, seed, spec):
         recall_points=p.recall_points,
         max_detections=p.max_detections_limit,
         epsilon=p.precision_epsilon,
+        difficult=p.difficult_ignored,
     )
     # AP of a class = mean over slots (absent classes are NaN in every slot).
     np.testing.assert_allclose(
@@ -153,6 +154,7 @@ def _oracle_outcomes(truth, predictions, protocol):
             max_detections=p.max_detections_limit,
             epsilon=p.precision_epsilon,
             outcomes=outcomes,
+            difficult=p.difficult_ignored,
         )
     return outcomes
 

@@ -13,6 +13,7 @@ from .synthetic import make_detections, make_split
 
 RECORD_KEYS = {
     "zero_id",
+    "difficult",
     "name",
     "version",
     "matching",
