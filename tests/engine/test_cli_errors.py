@@ -6,6 +6,7 @@ debugger)."""
 import csv
 import io
 import json
+import sys
 
 import pytest
 
@@ -93,3 +94,53 @@ def test_a_csv_split_of_a_header_and_no_rows_is_a_split_of_background_images(fil
     assert main([str(a) for a in args]) == 0
     counts = json.loads(capsys.readouterr().out)["counts"]
     assert (counts["images"], counts["truth_boxes"], counts["dropped_predictions"]) == (1, 0, 1)
+
+
+def _nested(levels):
+    return "[" * levels + "]" * levels
+
+
+DEEP = sys.getrecursionlimit() + 200  # Python's json module stops there too
+
+
+@pytest.mark.parametrize("nan", [False, True])
+@pytest.mark.parametrize("which", ["truth", "predictions"])
+def test_nesting_deeper_than_a_reader_follows_is_a_syntax_error(files, capsys, which, nan):
+    """An extra key of an image or a detection holding nested arrays deeper than the
+    recursion limit: "not valid JSON" at the bracket that goes one level too deep (a
+    NaN elsewhere takes the literal-tolerant path, which must say the same)."""
+    extra = f'"x": {_nested(DEEP)}'
+    width = "NaN" if nan else "100"
+    gt = f'{{"images": [{{"id": 1, "width": {width}, "height": 100, {extra}}}], '
+    gt += '"categories": [{"id": 1, "name": "a"}], "annotations": []}'
+    dt = f'[{{"image_id": 1, "category_id": 1, "bbox": [1, 2, 3, 4], "score": 0.5, {extra}}}]'
+    if which == "truth":
+        dt = json.dumps(DET)
+    else:
+        gt = gt.replace(extra, '"x": []')
+    paths = {"truth": files.write("gt.json", gt), "predictions": files.write("dt.json", dt)}
+    code, err = _cli(
+        capsys, "score", "--truth", paths["truth"], "--predictions", paths["predictions"]
+    )
+    assert code == 2
+    text = gt if which == "truth" else dt
+    at = text.index("[" * DEEP)  # the bracket at depth limit + 1, counted from the top:
+    depth = sum(text[:at].count(c) * (1 if c in "[{" else -1) for c in "[{]}")
+    column = at + sys.getrecursionlimit() - depth + 1
+    # the split's reader checks each array of records on its own, one level down: the
+    # bracket it names is the next one
+    columns = (column, column + 1) if which == "truth" else (column,)
+    assert err in [
+        f"error: {paths[which]}: not valid JSON: nested deeper than {sys.getrecursionlimit()} "
+        "levels, more than a JSON reader follows (Python's recursion limit, "
+        f"{sys.getrecursionlimit()}, bounds its json module too) at line 1, column {c}\n"
+        for c in columns
+    ]
+
+
+def test_nesting_a_reader_follows_is_read(files, capsys):
+    """500 levels: Python's json reads it (common practice: its default limit is 1000
+    frames), so it is scored; the extra key is never read."""
+    dt = [{**DET[0], "x": json.loads(_nested(500))}]
+    args = ("score", "--truth", _split(files, []), "--predictions", files.write("dt.json", dt))
+    assert _cli(capsys, *args) == (0, "")

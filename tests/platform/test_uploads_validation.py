@@ -48,6 +48,14 @@ CASES = [
         "no-score.json: record {n}: field 'score'",
         {"field": "score"},
     ),
+    (  # Python's json (pycocotools' reader) stops near its recursion limit too
+        "deep.json",
+        lambda ok: json.dumps(ok).replace(
+            '"score"', '"x": ' + "[" * 3000 + "]" * 3000 + ', "score"', 1
+        ),
+        "deep.json: not valid JSON: nested deeper than 1000 levels",
+        {},
+    ),
     (
         "wrong-columns.csv",
         lambda ok: "frame,what\n1,car\n",

@@ -14,15 +14,45 @@ looked at again here:
 * values: a slice whose syntax holds is decoded by ``json.loads`` and converted to
   the typed records by ``msgspec.convert``, whose type errors name the same path
   (``$[3].bbox[2]``) as msgspec's own decoding.
+
+Nesting deeper than the interpreter's recursion limit lets a reader follow (about a
+thousand levels: msgspec and Python's ``json`` alike raise RecursionError, so
+pycocotools refuses such a file too) is a syntax error here: msgspec's DecodeError
+naming the depth and the byte where it is first reached, so callers report line and
+column as for any other.
 """
 
 import json
 import re
+import sys
 
 import msgspec
 
 _TOKENS = re.compile(rb'"(?:[^"\\]|\\.)*"|-?Infinity|NaN', re.DOTALL)
 _STAND_IN = {b"NaN": b'"N"', b"Infinity": b'"Infini"', b"-Infinity": b'"-Infini"'}
+_NESTING = re.compile(rb'"(?:[^"\\]|\\.)*"|[\[\]{}]', re.DOTALL)
+
+
+def too_deep(data):
+    """The DecodeError of ``data`` that a reader gave up on with a RecursionError: at
+    the first bracket nested deeper than the recursion limit (or, when the reader gave
+    up earlier, deep in the stack, at the first one of the deepest nesting)."""
+    limit = sys.getrecursionlimit()
+    depth = deepest = at = 0
+    for m in _NESTING.finditer(bytes(data)):
+        if m[0] in (b"[", b"{"):
+            depth += 1
+            if depth > deepest:
+                deepest, at = depth, m.start()
+                if depth > limit:
+                    break
+        elif m[0] in (b"]", b"}"):
+            depth -= 1
+    levels = f"deeper than {limit} levels" if deepest > limit else f"{deepest} levels deep"
+    return msgspec.DecodeError(
+        f"JSON is malformed: nested {levels}, more than a JSON reader follows (Python's "
+        f"recursion limit, {limit}, bounds its json module too) (byte {at})"
+    )
 
 
 def has_literal(data):
@@ -39,11 +69,14 @@ def masked(data):
 def check_syntax(data):
     """msgspec's syntax check (raises its DecodeError), the literals allowed."""
     try:
-        msgspec.json.decode(data, type=msgspec.Raw)
-    except msgspec.DecodeError:
-        if not has_literal(data):
-            raise
-        msgspec.json.decode(masked(data), type=msgspec.Raw)
+        try:
+            msgspec.json.decode(data, type=msgspec.Raw)
+        except msgspec.DecodeError:
+            if not has_literal(data):
+                raise
+            msgspec.json.decode(masked(data), type=msgspec.Raw)
+    except RecursionError:
+        raise too_deep(data) from None
 
 
 def _out_of_range(error):
@@ -55,6 +88,13 @@ def _out_of_range(error):
 def decode(data, type):
     """``msgspec.json.decode(data, type=type)``, the literals and out-of-range numbers
     read as Python's ``json`` reads them."""
+    try:
+        return _decode(data, type)
+    except RecursionError:
+        raise too_deep(data) from None
+
+
+def _decode(data, type):
     try:
         return msgspec.json.decode(data, type=type)
     except (msgspec.DecodeError, msgspec.ValidationError) as e:
