@@ -618,3 +618,38 @@ def test_rescore_on_a_revision_without_an_image(kind, users, team, detector, run
     kept = [d for d in dets if d["image_id"] != removed]
     card = _assert_pycocotools_numbers(evaluation, rev2, kept, tmp_path)
     assert card.result["counts"]["dropped_unknown_images"] == len(dets) - len(kept) > 0
+
+
+@pytest.mark.parametrize("kind", ["fractional", "text", "whole", "wide"])
+def test_csv_predictions_on_a_json_split_name_its_ids_as_shown(
+    kind, users, team, detector, run_tasks, tmp_path
+):
+    """CSV predictions (text cells) on a JSON split of such ids: a cell names the id as
+    the pages show it (``2.5``, ``img_010``, ``18446744073709551621``); scored as
+    pycocotools 2.0.11 scores the split with the same detections as COCO results."""
+    truth, (dets,) = _files(KINDS[kind], n_sets=1)
+    dets.pop()  # CSV labels are class names: no unlisted category id here
+    split = evaluation_services.load_split(
+        name="far-ids", revision=1, truth=upload("far-ids.json", truth)
+    )
+    ids = [i["id"] for i in truth["images"]]
+    # the CSV reader strips a cell's surrounding spaces, so CSV cannot name " sp"
+    dets = [d for d in dets if _written(d["image_id"], ids) == _written(d["image_id"], ids).strip()]
+    names = {_written(c["id"]): c["name"] for c in truth["categories"]}
+    out, reference = io.StringIO(), []
+    writer = csv.writer(out)
+    writer.writerow(["image_id", "label", "x_min", "y_min", "x_max", "y_max", "score"])
+    for d in dets:
+        x0, y0, x1, y1 = _corners(d["bbox"])
+        label = names[_written(d["category_id"])]
+        writer.writerow([_written(d["image_id"], ids), label, x0, y0, x1, y1, repr(d["score"])])
+        reference.append({**d, "bbox": [x0, y0, x1 - x0, y1 - y0]})
+    version = services.create_version(detector, "9.0", users["engineer"])
+    run_tasks(
+        services.submit_predictions,
+        version,
+        split,
+        upload("p.csv", out.getvalue()),
+        users["engineer"],
+    )
+    _assert_pycocotools_numbers(_evaluation(version), truth, reference, tmp_path)
