@@ -131,6 +131,28 @@ def test_xml_entities_are_refused(tmp_path, xml):
     assert error.record.startswith("000001.xml line ")
 
 
+@pytest.mark.parametrize(
+    "encoding, reason",
+    [
+        ("klingon", "unknown encoding: klingon"),
+        ("utf-7", "multi-byte encodings are not supported"),
+        ("rot13", "'rot13' is not a text encoding"),
+    ],
+)
+def test_an_xml_encoding_the_parser_cannot_read_is_refused(tmp_path, encoding, reason):
+    """expat reads UTF-8, UTF-16, ISO-8859-1 and ASCII itself and asks Python's codecs
+    for any other declared encoding (xml.parsers.expat documentation); one they cannot
+    give is a refusal naming the member, not a LookupError."""
+    folder = tmp_path / "voc"
+    folder.mkdir()
+    (folder / "000001.xml").write_text(
+        f'<?xml version="1.0" encoding="{encoding}"?>\n<annotation></annotation>'
+    )
+    error = _refused(rf"the XML declares the encoding '{encoding}'", folder)
+    assert (error.path, error.record, error.field) == (str(folder), "000001.xml line 1", "encoding")
+    assert reason in error.message
+
+
 def test_xml_errors_name_member_line_and_field(tmp_path):
     folder = write.voc(tmp_path / "voc", IMAGES, CLASSES, BOXES)
     path = folder / "Annotations" / "2.xml"

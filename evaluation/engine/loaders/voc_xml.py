@@ -12,6 +12,7 @@ entity declaration and external reference refused (no entity expansion bombs, no
 reads of local files or URLs), and no tree object model beyond what is needed.
 """
 
+import re
 import xml.parsers.expat
 
 from ..errors import InputError
@@ -72,7 +73,25 @@ def parse_xml(path, name, data):
             f"not well-formed XML: {xml.parsers.expat.errors.messages[e.code]}",
             record=f"{name} line {e.lineno}",
         ) from None
+    except InputError:
+        raise
+    except (LookupError, ValueError) as e:  # UnicodeError is a ValueError
+        # expat asks Python's codecs for an encoding it lacks; an unknown name, a
+        # multi-byte or a non-text codec fails there
+        raise InputError(
+            path,
+            f"the XML declares the encoding {_declared(data)!r}, which the parser cannot "
+            f"read ({e}); write the file as UTF-8",
+            record=f"{name} line {parser.CurrentLineNumber}",
+            field="encoding",
+        ) from None
     return stack[0].children[0]
+
+
+def _declared(data):
+    """The encoding an XML declaration names (bytes before any markup: ASCII)."""
+    m = re.match(rb"""\s*<\?xml[^>]*?encoding\s*=\s*["']([^"']*)""", bytes(data[:400]))
+    return m[1].decode("ascii", "replace") if m else ""
 
 
 def _number(path, name, node, field, required=True):
