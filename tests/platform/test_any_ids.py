@@ -246,8 +246,8 @@ def test_every_split_entry_point_accepts_the_split(entry, kind, client, users, t
 def scored(request, client, users, team, run_tasks, tmp_path):
     """The split loaded through the page, its images attached; a baseline uploaded
     through the page and signed off, a candidate through the API and a third version
-    through ``upload_predictions``; the detector scores coco and the pedestrian miss
-    rate (a level protocol reading the same COCO JSON)."""
+    through ``upload_predictions``; the detector scores coco, the pedestrian miss
+    rate and the KITTI levels (level protocols reading the same COCO JSON)."""
     ids = KINDS[request.param]
     truth, sets = _files(ids)
     client.force_login(users["lead"])
@@ -263,7 +263,11 @@ def scored(request, client, users, team, run_tasks, tmp_path):
         files=[upload(i["file_name"], _png(n)) for n, i in enumerate(truth["images"])],
     )
     detector = run_tasks(
-        services.create_detector, team, "Forward camera", CLASSES, protocols=("coco", "miss-rate")
+        services.create_detector,
+        team,
+        "Forward camera",
+        CLASSES,
+        protocols=("coco", "miss-rate", "kitti2d"),
     )
     response = run_tasks(
         client.post,
@@ -311,7 +315,7 @@ def _evaluation(version, protocol="coco"):
 
 def test_every_upload_entry_point_scores_as_pycocotools(scored, tmp_path):
     """Page, API and command: each stored coco scorecard equals pycocotools 2.0.11 on
-    its file; the level protocol is scored too; the detection of the unlisted category
+    its file; the level protocols are scored too; the detection of the unlisted category
     is left out and named by its id as written."""
     for label, dets in zip(("1.0", "2.0", "3.0"), scored["sets"]):
         card = _assert_pycocotools_numbers(
@@ -323,7 +327,9 @@ def test_every_upload_entry_point_scores_as_pycocotools(scored, tmp_path):
         )
         unlisted = [_written(scored["ids"]["unlisted_class"], [scored["ids"]["unlisted_class"]])]
         assert card.result["counts"]["dropped_classes"] == unlisted
-        assert _evaluation(scored[label], "miss-rate").state == "done"
+        for level in ("miss-rate", "kitti2d"):
+            found = _evaluation(scored[label], level)
+            assert found.state == "done", (level, found.error)
         assert ImageLeaveOneOut.objects.filter(scorecard=card).exists()
 
 
