@@ -5,12 +5,13 @@ Exit status: 0 on success, 2 on bad input (the message names file, record, field
 """
 
 import argparse
+import contextlib
 import json
 import math
 import os
 import sys
 
-from . import export, provenance
+from . import export, json_file, provenance
 from .difficulty import DIFFICULTY_PRESETS, evaluate_levels, levels_table
 from .errors import InputError
 from .evaluate import evaluate
@@ -26,17 +27,8 @@ EXIT_BAD_INPUT = 2
 def _protocol(value):
     if value in PRESETS:
         return get_protocol(value)
-    try:
-        with open(value, encoding="utf-8") as f:
-            spec = json.load(f)
-    except OSError as e:
-        raise InputError(
-            value, f"not a preset ({', '.join(PRESETS)}) and not readable: {e.strerror}"
-        ) from None
-    except json.JSONDecodeError as e:
-        raise InputError(
-            value, f"not valid JSON: {e.msg} at line {e.lineno}, column {e.colno}"
-        ) from None
+    unreadable = f"not a preset ({', '.join(PRESETS)}) and not readable"
+    spec = json_file.read(value, cannot_open=unreadable)
     return protocol_from_dict(spec, source=value)
 
 
@@ -150,6 +142,9 @@ def main(argv=None):
             raise InputError(
                 "--protocol", f"{args.protocol} keeps no match records (--records, --records-out)"
             )
+        outputs = _outputs(args)  # before any scoring: a bad path wastes no time
+        if args.cache:
+            _cache_folder(args.cache)
         protocol = args.protocol if levels else _protocol(args.protocol)
         truth = load_truth(
             args.truth,
@@ -177,13 +172,16 @@ def main(argv=None):
             result, records = evaluate(
                 truth, predictions, protocol, score_threshold=args.threshold, return_records=True
             )
+        writers = {
+            "--records": records.save,
+            "--records-out": lambda path: export.write(
+                path, records, truth, fmt=export.format_of(args.records_out)
+            ),
+        }
+        _write_all({path: (option, writers[option]) for option, path in outputs.items()})
     except InputError as e:
         print(f"error: {e}", file=sys.stderr)
         return EXIT_BAD_INPUT
-    if args.records and records is not None:
-        records.save(args.records)
-    if args.records_out:
-        export.write(args.records_out, records, truth)
     if args.format == "json":
         json.dump(result, sys.stdout, indent=2, allow_nan=False)  # strict JSON only
         sys.stdout.write("\n")
@@ -195,15 +193,83 @@ def main(argv=None):
     return 0
 
 
+def _outputs(args):
+    """``{option: path}`` of the files ``--records`` and ``--records-out`` will write,
+    checked before any scoring: a file name in an existing folder."""
+    outputs = {}
+    for option, path in (("--records", args.records), ("--records-out", args.records_out)):
+        if not path:
+            continue
+        folder = os.path.dirname(os.path.abspath(path))
+        if os.path.isdir(path):
+            raise InputError(path, f"is a folder: {option} names the file to write")
+        if not os.path.isdir(folder):
+            raise InputError(path, f"cannot be written ({option}): there is no folder {folder}")
+        outputs[option] = path
+    return outputs
+
+
+def _write_all(writes):
+    """Write each file (``{path: (option, write(temporary path))}``) next to its place
+    under a temporary name, then move all into place: a failure (disk full, no
+    permission) leaves none of them, and no part of one, behind."""
+    done = {}
+    try:
+        for path, (_, write) in writes.items():
+            folder, name = os.path.split(os.path.abspath(path))
+            done[path] = os.path.join(folder, f".{name}.{os.getpid()}.partial")
+            write(done[path])
+        for path, temporary in list(done.items()):
+            os.replace(temporary, path)
+            del done[path]
+    except OSError as e:
+        option = writes[path][0]
+        raise InputError(path, f"cannot be written ({option}): {e.strerror}") from None
+    finally:
+        for temporary in done.values():
+            with contextlib.suppress(OSError):
+                os.remove(temporary)
+
+
+def _cache_folder(path):
+    """The ``--cache`` folder, created if absent."""
+    if os.path.exists(path) and not os.path.isdir(path):
+        raise InputError(path, "is not a folder: --cache names the folder to keep parsed input in")
+    try:
+        os.makedirs(path, exist_ok=True)
+    except OSError as e:
+        raise InputError(path, f"cannot be the cache folder (--cache): {e.strerror}") from None
+
+
+#: Set (to anything) to let an internal error end with its traceback.
+TRACEBACK_ENV = "BENCHBOOK_TRACEBACK"
+
+
 def _run():
-    """``main``, quiet when the reader of its output goes away (``... | head``): Python's
-    documented way (the ``signal`` module's notes on SIGPIPE) is to point stdout at
-    devnull so the interpreter's final flush does not raise again."""
+    """``main`` as the command runs it.
+
+    Quiet when the reader of its output goes away (``... | head``): Python's documented
+    way (the ``signal`` module's notes on SIGPIPE) is to point stdout at devnull so the
+    interpreter's final flush does not raise again. Text the terminal's encoding cannot
+    show is written as escapes. Bad input is exit 2 (``main``); anything else is a bug
+    of the engine: one line asking for a report, exit 1, the traceback only with
+    ``BENCHBOOK_TRACEBACK`` set."""
+    if hasattr(sys.stdout, "reconfigure"):
+        sys.stdout.reconfigure(errors="backslashreplace")
     try:
         code = main()
         sys.stdout.flush()
     except BrokenPipeError:
         os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
+        code = 1
+    except Exception as e:
+        if os.environ.get(TRACEBACK_ENV):
+            raise
+        print(
+            f"internal error ({type(e).__name__}: {e}): please report it with the command "
+            f"and its input files; {TRACEBACK_ENV}=1 shows the traceback",
+            file=sys.stderr,
+        )
         code = 1
     return code
 

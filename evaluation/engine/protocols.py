@@ -271,7 +271,14 @@ def protocol_from_dict(spec, source="protocol"):
             raise InputError(source, f"unknown key; allowed: {', '.join(sorted(known))}", field=key)
     if not isinstance(spec.get("name"), str) or not spec["name"]:
         raise InputError(source, "a custom protocol needs a non-empty name", field="name")
-    base = get_protocol(spec.get("base", "coco"))
+    base = spec.get("base", "coco")
+    if not isinstance(base, str) or base not in PRESETS:
+        raise InputError(
+            source,
+            f"must be a preset ({', '.join(sorted(PRESETS))}), got {base!r}",
+            field="base",
+        )
+    base = PRESETS[base]
     values = dict(base.__dict__)
     values.update(name=spec["name"], description=spec.get("description", f"custom ({base.name})"))
     values["coco_summary"] = False

@@ -10,6 +10,7 @@ says, in words, which settings differ and what each does to the numbers
 
 import numpy as np
 
+from . import json_file
 from .errors import InputError
 from .protocols import BEST_OVERLAP, get_protocol
 from .version import ENGINE_VERSION
@@ -178,15 +179,7 @@ EFFECTS = {
 
 
 def _load(path):
-    import json
-
-    try:
-        with open(path, encoding="utf-8") as f:
-            result = json.load(f)
-    except OSError as e:
-        raise InputError(path, f"cannot open: {e.strerror}") from None
-    except (json.JSONDecodeError, UnicodeDecodeError) as e:
-        raise InputError(path, f"not a JSON result: {e}") from None
+    result = json_file.read(path, "a JSON result")
     if not isinstance(result, dict) or not isinstance(result.get("protocol_record"), dict):
         raise InputError(
             path,
@@ -200,7 +193,7 @@ def _load(path):
 def differences(a, b):
     """``[(setting, value in a, value in b, effect)]`` between two results."""
     out = []
-    if a.get("truth_fingerprint") != b.get("truth_fingerprint"):
+    if not _same(a.get("truth_fingerprint"), b.get("truth_fingerprint")):
         out.append(
             (
                 "ground truth",
@@ -209,7 +202,7 @@ def differences(a, b):
                 "different ground truth: the numbers are about different data",
             )
         )
-    if a.get("engine_version") != b.get("engine_version"):
+    if not _same(a.get("engine_version"), b.get("engine_version")):
         out.append(
             (
                 "engine version",
@@ -222,9 +215,29 @@ def differences(a, b):
     for key in sorted(
         set(ra) | set(rb), key=lambda k: list(EFFECTS).index(k) if k in EFFECTS else 99
     ):
-        if ra.get(key) != rb.get(key):
+        if not _same(ra.get(key), rb.get(key)):
             out.append((key, ra.get(key), rb.get(key), EFFECTS.get(key, "a different setting")))
     return out
+
+
+def _same(a, b):
+    """``a == b`` for JSON values, except that NaN equals NaN: a file read twice (a NaN
+    setting reads back as nan, and nan != nan) never differs from itself. Iterative:
+    a value nested as deep as ``json`` reads is compared too."""
+    pending = [(a, b)]
+    while pending:
+        a, b = pending.pop()
+        if isinstance(a, dict) and isinstance(b, dict):
+            if a.keys() != b.keys():
+                return False
+            pending.extend((a[k], b[k]) for k in a)
+        elif isinstance(a, list) and isinstance(b, list):
+            if len(a) != len(b):
+                return False
+            pending.extend(zip(a, b))
+        elif not (a == b or (isinstance(a, float) and a != a and isinstance(b, float) and b != b)):
+            return False
+    return True
 
 
 def _short(value, limit=70):
@@ -247,4 +260,6 @@ def explain(path_a, path_b):
             f"    B: {_short(value_b)}",
             f"    {effect}.",
         ]
-    return "\n".join(lines)
+    # a JSON string may hold a lone surrogate (valid JSON, not encodable text): shown
+    # as its escape, so the text can be printed and written
+    return "\n".join(lines).encode("utf-8", "backslashreplace").decode("utf-8")

@@ -6,6 +6,8 @@ debugger)."""
 import csv
 import io
 import json
+import os
+import subprocess
 import sys
 
 import pytest
@@ -144,3 +146,163 @@ def test_nesting_a_reader_follows_is_read(files, capsys):
     dt = [{**DET[0], "x": json.loads(_nested(500))}]
     args = ("score", "--truth", _split(files, []), "--predictions", files.write("dt.json", dt))
     assert _cli(capsys, *args) == (0, "")
+
+
+# Options naming files ------------------------------------------------------------------
+
+
+@pytest.fixture
+def scored(files):
+    """A small split and detections, and the arguments that score them."""
+    truth = _split(files, [_box(1, [10, 10, 20, 20]), _box(2, [50, 50, 30, 30])])
+    dt = files.write("dt.json", DET + [{**DET[0], "bbox": [52, 48, 30, 30], "score": 0.4}])
+    return ["score", "--truth", str(truth), "--predictions", str(dt)]
+
+
+@pytest.mark.parametrize(
+    "content, message",
+    [
+        (b"[" * DEEP + b"]" * DEEP, "not valid JSON: nested deeper than"),
+        ('{"name": "caf\xe9"}'.encode("latin-1"), "not valid JSON: not UTF-8 text (byte 13"),
+        ('{"name": "p"}'.encode("utf-16"), "the file is UTF-16 text"),
+        (
+            b'{"name": "p", "iou_thresholds": [0.5,]}',
+            "not valid JSON: Expecting value at line 1, column 38",
+        ),
+        (b'{"name": "p", "base": {"name": "q"}}', "field 'base': must be a preset"),
+        (b'{"name": "p", "base": "kitti"}', "field 'base': must be a preset"),
+    ],
+    ids=["deep", "latin-1", "utf-16", "syntax", "base-object", "base-unknown"],
+)
+def test_a_custom_protocol_file_that_cannot_be_read(files, capsys, scored, content, message):
+    path = files.root / "p.json"
+    path.write_bytes(content)
+    code, err = _cli(capsys, *scored, "--protocol", path)
+    assert code == 2
+    assert err.startswith(f"error: {path}: ") and message in err and err.count("\n") == 1
+
+
+def test_a_custom_protocol_file_with_a_utf8_byte_order_mark_is_read(files, capsys, scored):
+    path = files.root / "p.json"
+    path.write_bytes(b'\xef\xbb\xbf{"name": "strict", "iou_thresholds": [0.8]}')
+    assert main([*scored, "--protocol", str(path), "--format", "json"]) == 0
+    assert json.loads(capsys.readouterr().out)["protocol"] == "strict"
+
+
+@pytest.mark.parametrize("option", ["--records", "--records-out"])
+@pytest.mark.parametrize("where", ["no-folder", "a-folder"])
+def test_an_output_path_that_cannot_be_written(files, capsys, scored, option, where):
+    """Checked before scoring: one line naming the path, nothing on stdout."""
+    name = "r.npz" if option == "--records" else "r.csv"
+    path = files.root / "missing" / name
+    if where == "a-folder":
+        path = files.root / name
+        path.mkdir()
+    assert main([*scored, option, str(path)]) == 2
+    out, err = capsys.readouterr()
+    assert out == ""
+    assert err.startswith(f"error: {path}: ") and option in err and err.count("\n") == 1
+
+
+def test_a_write_that_fails_leaves_no_file_behind(files, capsys, scored, monkeypatch):
+    """The disk fills up while the export is written: neither output appears (the
+    records were complete already), no part of one is left, no result is printed."""
+    from evaluation.engine import export
+
+    def full(path, *args, **kwargs):
+        with open(path, "w") as f:
+            f.write("row,image_id\n")
+        raise OSError(28, "No space left on device")
+
+    monkeypatch.setattr(export, "write", full)
+    records, rows = files.root / "r.npz", files.root / "r.csv"
+    before = sorted(p.name for p in files.root.iterdir())
+    assert main([*scored, "--records", str(records), "--records-out", str(rows)]) == 2
+    out, err = capsys.readouterr()
+    assert out == ""
+    assert err == f"error: {rows}: cannot be written (--records-out): No space left on device\n"
+    assert sorted(p.name for p in files.root.iterdir()) == before
+
+
+@pytest.mark.parametrize("where", ["a-file", "under-a-file"])
+def test_a_cache_option_that_is_no_folder(files, capsys, scored, where):
+    path = files.root / "gt.json"
+    path.write_text("{}")
+    if where == "under-a-file":
+        path = path / "cache"
+    code, err = _cli(capsys, *scored, "--cache", path)
+    assert code == 2
+    assert err.startswith(f"error: {path}: ") and "--cache" in err and err.count("\n") == 1
+
+
+def test_a_cache_entry_that_cannot_be_written_costs_time_not_the_result(
+    files, capsys, scored, caplog
+):
+    cache = files.root / "cache"
+    assert main([*scored, "--cache", str(cache), "--format", "json"]) == 0
+    expected = json.loads(capsys.readouterr().out)
+    entries = sorted(cache.iterdir())
+    assert len(entries) == 2  # the split and the detections
+    for entry in entries:  # an entry's name taken by a folder: unreadable, unwritable
+        entry.unlink()
+        entry.mkdir()
+    assert main([*scored, "--cache", str(cache), "--format", "json"]) == 0
+    assert json.loads(capsys.readouterr().out)["summary"] == expected["summary"]
+    assert "could not be written (Is a directory); not cached" in caplog.text
+    assert sorted(cache.iterdir()) == entries  # no temporary file left
+
+
+# explain -------------------------------------------------------------------------------
+
+
+def test_explain_a_file_nested_too_deep(files, capsys):
+    deep = files.write("deep.json", '{"protocol_record": ' + _nested(DEEP) + "}")
+    ok = files.write("ok.json", {"protocol_record": {}})
+    code, err = _cli(capsys, "explain", ok, deep)
+    assert code == 2
+    assert err.startswith(f"error: {deep}: not a JSON result: nested deeper than")
+
+
+def test_explain_shows_a_lone_surrogate_as_its_escape(files):
+    """``"\\ud800"`` is valid JSON (RFC 8259 allows any escaped code unit; Python's json
+    reads it) but no UTF-8 text: a real process prints it escaped."""
+    a = files.write("a.json", '{"protocol_record": {"\\ud800": 1}}')
+    b = files.write("b.json", '{"protocol_record": {"\\ud800": 2}}')
+    proc = subprocess.run(
+        [sys.executable, "-m", "evaluation.engine", "explain", str(a), str(b)],
+        capture_output=True,
+        text=True,
+        env={**os.environ, "PYTHONIOENCODING": "utf-8"},
+    )
+    assert (proc.returncode, proc.stderr) == (0, "")
+    assert "1 setting(s) differ" in proc.stdout and "* \\ud800\n" in proc.stdout
+
+
+def test_explain_a_file_holding_nan_does_not_differ_from_itself(files, capsys):
+    """json reads NaN as nan, and nan != nan (IEEE 754): compared as the same value."""
+    a = files.write("a.json", '{"protocol_record": {"x": NaN, "y": [1, {"z": NaN}]}}')
+    assert main(["explain", str(a), str(a)]) == 0
+    assert capsys.readouterr().out.startswith("The two results were computed under the same")
+    b = files.write("b.json", '{"protocol_record": {"x": NaN, "y": [1, {"z": 0.5}]}}')
+    assert main(["explain", str(a), str(b)]) == 0
+    assert "1 setting(s) differ" in capsys.readouterr().out
+
+
+# the last resort -----------------------------------------------------------------------
+
+
+def test_an_internal_error_is_one_line_asking_for_a_report(monkeypatch, capsys):
+    from evaluation.engine import __main__ as cli
+
+    def broken():
+        raise RuntimeError("boom")
+
+    monkeypatch.setattr(cli, "main", broken)
+    monkeypatch.delenv(cli.TRACEBACK_ENV, raising=False)
+    assert cli._run() == 1
+    err = capsys.readouterr().err
+    assert err.startswith("internal error (RuntimeError: boom): please report it")
+    assert "Traceback" not in err and err.count("\n") == 1
+    monkeypatch.setenv(cli.TRACEBACK_ENV, "1")
+    with pytest.raises(RuntimeError, match="boom"):
+        cli._run()

@@ -86,7 +86,7 @@ def test_custom_thresholds_must_name_classes_of_the_split():
         ({"name": "x", "matching": "hungarian"}, r"field 'matching': must be 'greedy' or"),
         ({"name": "x", "class_iou_thresholds": {"car": 2}}, r"IoU for 'car' must be in \[0, 1\]"),
         ({"name": "x", "colour": "red"}, r"field 'colour': unknown key"),
-        ({"name": "x", "base": "yolo"}, r"unknown protocol 'yolo'"),
+        ({"name": "x", "base": "yolo"}, r"field 'base': must be a preset \(coco, .*got 'yolo'"),
         ({"name": "x", "tie_order": "score"}, r"field 'tie_order': must be one of image, file"),
         ({"name": "x", "max_detections": 0}, r"field 'max_detections': must be a positive integer"),
     ],

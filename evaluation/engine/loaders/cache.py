@@ -12,6 +12,7 @@ secret derived from its own, so an entry forged by someone who can write the cac
 folder but not read the settings is caught too.
 """
 
+import contextlib
 import dataclasses
 import hashlib
 import hmac
@@ -141,10 +142,17 @@ def cached(cache_dir, sources, options, build, kind):
     obj = build()
     arrays = _to_arrays(obj)
     arrays[_DIGEST] = np.array(entry_digest(cache.secret, key, arrays))
-    fd, tmp = tempfile.mkstemp(dir=cache.directory, suffix=".npz")
-    with os.fdopen(fd, "wb") as f:
-        np.savez(f, **arrays)
-    os.replace(tmp, path)
+    tmp = None
+    try:
+        fd, tmp = tempfile.mkstemp(dir=cache.directory, suffix=".npz")
+        with os.fdopen(fd, "wb") as f:
+            np.savez(f, **arrays)
+        os.replace(tmp, path)
+    except OSError as e:  # a cache that cannot be written costs time, not the result
+        log.warning("cache entry %s could not be written (%s); not cached", path, e.strerror)
+        if tmp is not None:
+            with contextlib.suppress(OSError):
+                os.remove(tmp)
     return obj
 
 

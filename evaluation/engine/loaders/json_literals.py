@@ -34,9 +34,15 @@ _NESTING = re.compile(rb'"(?:[^"\\]|\\.)*"|[\[\]{}]', re.DOTALL)
 
 
 def too_deep(data):
-    """The DecodeError of ``data`` that a reader gave up on with a RecursionError: at
-    the first bracket nested deeper than the recursion limit (or, when the reader gave
-    up earlier, deep in the stack, at the first one of the deepest nesting)."""
+    """The DecodeError of ``data`` that a reader gave up on with a RecursionError."""
+    reason, at = nesting(data)
+    return msgspec.DecodeError(f"JSON is malformed: {reason} (byte {at})")
+
+
+def nesting(data):
+    """Why a reader gave up on ``data`` with a RecursionError, and the byte of the first
+    bracket nested deeper than the recursion limit (or, when the reader gave up earlier,
+    deep in the stack, the first one of the deepest nesting)."""
     limit = sys.getrecursionlimit()
     depth = deepest = at = 0
     for m in _NESTING.finditer(bytes(data)):
@@ -49,10 +55,10 @@ def too_deep(data):
         elif m[0] in (b"]", b"}"):
             depth -= 1
     levels = f"deeper than {limit} levels" if deepest > limit else f"{deepest} levels deep"
-    return msgspec.DecodeError(
-        f"JSON is malformed: nested {levels}, more than a JSON reader follows (Python's "
-        f"recursion limit, {limit}, bounds its json module too) (byte {at})"
-    )
+    return (
+        f"nested {levels}, more than a JSON reader follows (Python's recursion limit, "
+        f"{limit}, bounds its json module too)"
+    ), at
 
 
 def has_literal(data):
