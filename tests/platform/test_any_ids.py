@@ -409,6 +409,7 @@ def test_compare_history_and_split_pages_read_the_split(
         reverse("compare", args=[detector.pk])
         + f"?reference={pair['reference']}&candidate={pair['candidate']}",
         reverse("evidence-json", args=[scored["2.0"].pk]),
+        reverse("detector", args=[detector.pk]),  # the history charts
         reverse("split", args=[split.pk]),
         reverse("confusion", args=[scored["2.0"].pk]) + f"?split={split.pk}",
         *(  # every cell's list of detections and missed boxes (image ids and links)
