@@ -53,6 +53,7 @@ def _kitti_record(name, truth):
         "tie_order": "per image, ground truth in file order takes the highest-scored "
         "untaken detection, the first in file order on ties (devkit computeStatistics)",
         "zero_id": "annotation ids are not read",
+        "difficult": "the difficult flag is not read (the KITTI devkit has none)",
         "pixel_offset": 0,
         "area_source": {
             "truth": "not read: levels by box height y2 - y1, occlusion, truncation",
@@ -91,8 +92,10 @@ def _miss_rate_record(name, truth):
             "kind": "none" if cap is None else "per image and class, highest scores first",
         },
         "tie_order": "ties in score keep accumulation order: image order, then score "
-        "order within the image (stable sort, toolbox compRoc)",
+        "order within the image (stable sort, toolbox compRoc); NaN scores "
+        + ("first, as MATLAB's descending sort" if toolbox else "last, as numpy's argsort"),
         "zero_id": "annotation ids are not read",
+        "difficult": "a box flagged difficult is an ignore box (as crowd and ignore flags)",
         "pixel_offset": 0,
         "area_source": {
             "truth": "not read: setups by box height and visibility",

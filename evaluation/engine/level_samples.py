@@ -38,6 +38,8 @@ import zipfile
 
 import numpy as np
 
+from .operating_point import matlab_descending
+
 KITTI_FIELDS = ("n_gt", "tp_image", "tp_score", "step_image", "step_score", "step_tp", "step_fp")
 SETUP_FIELDS = ("n_gt", "det_image", "det_score", "det_outcome")
 N_SAMPLE_POINTS = 41
@@ -152,11 +154,12 @@ def kitti_steps(images, n_gt_image, tp_lists):
 # Pedestrian setups --------------------------------------------------------------------
 
 
-def setup_running_counts(samples, weights=None):
+def setup_running_counts(samples, weights=None, nan_first=False):
     """(tp, fp, n_gt, n_images) of one setup and class under image ``weights``: running
     counts over the non-ignored detections in ``compRoc``'s order (a stable sort by
     score of the concatenation, each image's copies adjacent), the weighted number of
-    counted boxes and of images.
+    counted boxes and of images. ``nan_first``: NaN scores sort first, as MATLAB's
+    descending sort puts them (the toolbox); else last, as numpy's (city-scale).
 
     The unweighted order is sorted once (``_tie_runs``); under weights each run of
     detections sharing a score and an image is repeated w times as a block (copy c's
@@ -165,7 +168,7 @@ def setup_running_counts(samples, weights=None):
     n_images = len(samples["n_gt"])
     w = _weights(weights, n_images)
     n_gt = int(np.dot(w, samples["n_gt"]))
-    order, run_start, run_length, run_image = _tie_runs(samples)
+    order, run_start, run_length, run_image = _tie_runs(samples, nan_first)
     if weights is None:
         index = order
     else:
@@ -178,19 +181,25 @@ def setup_running_counts(samples, weights=None):
     return np.cumsum(is_tp), np.cumsum(~is_tp), n_gt, int(w.sum())
 
 
-def _tie_runs(samples):
+def _tie_runs(samples, nan_first=False):
     """The non-ignored detections in accumulation order (stable by score over the
     concatenation) and its runs of equal (score, image): start, length, image. Kept on
     the samples dict after the first call."""
-    if "_runs" not in samples:
+    cached = f"_runs_{int(nan_first)}"
+    if cached not in samples:
         keep = np.flatnonzero(samples["det_outcome"] != -1)
-        order = keep[np.argsort(-samples["det_score"][keep], kind="stable")]
+        scores = samples["det_score"][keep]
+        if nan_first:
+            order = keep[matlab_descending(scores)]
+        else:
+            order = keep[np.argsort(-scores, kind="stable")]
         score, image = samples["det_score"][order], samples["det_image"][order]
-        change = np.r_[True, (score[1:] != score[:-1]) | (image[1:] != image[:-1])][: len(order)]
+        same_score = (score[1:] == score[:-1]) | (np.isnan(score[1:]) & np.isnan(score[:-1]))
+        change = np.r_[True, ~same_score | (image[1:] != image[:-1])][: len(order)]
         start = np.flatnonzero(change)
         length = np.diff(np.r_[start, len(order)])
-        samples["_runs"] = (order, start, length, image[start].astype(np.int64))
-    return samples["_runs"]
+        samples[cached] = (order, start, length, image[start].astype(np.int64))
+    return samples[cached]
 
 
 def setup_class(samples, protocol, weights=None):
@@ -204,7 +213,8 @@ def setup_class(samples, protocol, weights=None):
     LAMR)``, or ``(None, None)`` when no box counts under these weights."""
     from .pedestrian import read_references
 
-    tp, fp, n_gt, n_images = setup_running_counts(samples, weights)
+    nan_first = getattr(protocol, "variant", "toolbox") == "toolbox"
+    tp, fp, n_gt, n_images = setup_running_counts(samples, weights, nan_first)
     if n_gt == 0:
         return None, None
     return read_references(tp, fp, n_gt, n_images, protocol)

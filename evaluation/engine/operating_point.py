@@ -124,6 +124,29 @@ def _duplicated_order(records, w):
     return keep[first[group] + local % length[group]]
 
 
+def matlab_descending(score):
+    """Indices of ``score`` in the order MATLAB's ``sort(score, 'descend')`` gives:
+    stable, NaN first (MATLAB places NaN first in a descending sort: the 'auto' missing
+    placement of its ``sort`` documentation, from memory). The pedestrian toolbox
+    sorts with it (``bbGt`` ``evalRes``, ``compRoc``); numpy's argsort puts NaN last."""
+    score = np.asarray(score)
+    nan = np.isnan(score)
+    rest = np.flatnonzero(~nan)
+    return np.r_[np.flatnonzero(nan), rest[np.argsort(-score[rest], kind="stable")]]
+
+
+def toolbox_running_counts(tp, fp, score):
+    """Cumulative ``tp``/``fp`` (in accumulation order, scores descending, NaN last)
+    re-read in ``compRoc``'s order, which moves NaN-scored detections first; the same
+    arrays when no score is NaN."""
+    nan = np.isnan(score)
+    if not nan.any():
+        return tp, fp
+    order = np.r_[np.flatnonzero(nan), np.flatnonzero(~nan)]
+    step_tp, step_fp = np.diff(np.r_[0, tp])[order], np.diff(np.r_[0, fp])[order]
+    return np.cumsum(step_tp), np.cumsum(step_fp)
+
+
 def log_average_miss_rate(tp, fp, n_pos, n_images):
     r"""Log-average miss rate over FPPI 10^-2 ... 10^0 (Dollár et al., TPAMI 2012).
 

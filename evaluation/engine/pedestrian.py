@@ -54,6 +54,7 @@ import math
 import numpy as np
 
 from .level_samples import LevelSamples, setup_class, setup_running_counts
+from .operating_point import matlab_descending
 from .pedestrian_setups import (  # noqa: F401  (re-exported: the engine's API)
     CITYSCALE_FPPI_POINTS,
     CLAMP,
@@ -229,7 +230,10 @@ def evaluate_setups_with_samples(truth, predictions, protocol="miss-rate"):
             g = g[part[g]]
             d = det_by_image[image]
             d = d[predictions.cls[d] == k]
-            d = d[np.argsort(-predictions.score[d], kind="stable")]
+            if protocol.variant == "toolbox":  # MATLAB's sort: NaN scores first
+                d = d[matlab_descending(predictions.score[d])]
+            else:  # the city-scale code's numpy argsort: NaN last
+                d = d[np.argsort(-predictions.score[d], kind="stable")]
             if protocol.max_detections is not None:
                 d = d[: protocol.max_detections]
             scenes.append((image, g, d))

@@ -18,6 +18,7 @@ from .operating_point import (
     log_average_miss_rate,
     scores_from_counts,
     threshold_scores,
+    toolbox_running_counts,
 )
 from .protocols import get_protocol
 from .version import ENGINE_VERSION
@@ -136,7 +137,8 @@ def _class_rows(records, protocol, curves, points, score_threshold, n_images, we
         }
         row["at_threshold"] = threshold_scores(tp, fp, scores, n_pos, score_threshold)
         row["best_f1"] = best_f1(tp, fp, scores, n_pos)
-        every_tp, every_fp, _ = every.segment(k)
+        every_tp, every_fp, every_score = every.segment(k)
+        every_tp, every_fp = toolbox_running_counts(every_tp, every_fp, every_score)
         row["miss_rate"] = log_average_miss_rate(every_tp, every_fp, n_pos, n_images)
         out.append(row)
     return out

@@ -239,6 +239,13 @@ def _voc_ap(truth, predictions, eleven_point, min_overlap, outcomes):
     return out
 
 
+def matlab_descending_key(value):
+    """Sort key of MATLAB's ``sort(..., 'descend')``: NaN first (MathWorks ``sort``
+    documentation, missing values placed first in descending order; from memory),
+    then larger values first; Python's ``sorted`` is stable like MATLAB's."""
+    return (0, 0.0) if np.isnan(value) else (1, -value)
+
+
 def toolbox_miss_rate(scores, matched, ignored, npos, n_images):
     """Log-average miss rate, transliterated from the pedestrian detection toolbox of
     Dollár et al. (TPAMI 2012), written from the published code's logic: ``bbGt``
@@ -249,7 +256,7 @@ def toolbox_miss_rate(scores, matched, ignored, npos, n_images):
     ``ref=10.^(-2:.25:0)``, ``ys1`` at the last ``xs1 <= ref``; miss rate
     ``exp(mean(log(max(1e-10, 1-ref))))``."""
     keep = [d for d in range(len(scores)) if not ignored[d]]
-    order = sorted(keep, key=lambda d: -scores[d])  # stable
+    order = sorted(keep, key=lambda d: matlab_descending_key(scores[d]))  # stable
     tp = np.cumsum([1 if matched[d] else 0 for d in order])
     fp = np.cumsum([0 if matched[d] else 1 for d in order])
     xs1 = np.r_[-np.inf, fp / n_images]

@@ -14,6 +14,15 @@ import math
 
 import numpy as np
 
+from .oracle import matlab_descending_key
+
+
+def numpy_descending_key(value):
+    """Sort key of ``np.argsort(-scores, kind='mergesort')`` (the city-scale code): NaN
+    last (numpy sorts NaN to the end), larger values first, stable."""
+    return (1, 0.0) if np.isnan(value) else (0, -value)
+
+
 # dbEval exps {name, hr, vr, ar, overlap, filter} and the city-scale HtRng / VisRng
 # (small only in the latter); inf as the toolbox writes it.
 INF = math.inf
@@ -54,7 +63,7 @@ def eval_res(gt0, dt0, thr=0.5):
     """``bbGt evalRes`` for one image: gt0 rows [x y w h ignore], dt0 rows
     [x y w h score]. Returns (gt, dt) with a match column: gt -1 ignore, 0 fn, 1 tp;
     dt -1 ignore, 0 fp, 1 tp."""
-    dt0 = sorted(dt0, key=lambda r: -r[4])  # sort(...,'descend') is stable
+    dt0 = sorted(dt0, key=lambda r: matlab_descending_key(r[4]))  # stable, NaN first
     gt0 = sorted(gt0, key=lambda r: r[4])  # ignore last, stable
     gt = [list(r[:4]) + [-r[4]] for r in gt0]
     dt = [list(r[:5]) + [0] for r in dt0]
@@ -87,7 +96,7 @@ def comp_roc(gt, dt, ref):
     if not dt:
         return [0.0] * len(ref)
     npos = len(gt)
-    order = sorted(range(len(dt)), key=lambda i: -dt[i][4])  # stable
+    order = sorted(range(len(dt)), key=lambda i: matlab_descending_key(dt[i][4]))  # stable
     tp = np.cumsum([dt[i][5] for i in order])
     fp = np.cumsum([1 if dt[i][5] != 1 else 0 for i in order])
     xs1 = [-INF] + list(fp / n_img)
@@ -174,7 +183,7 @@ def cityscale(scene, setup, max_det=1000):
         g_rows = [(list(r[:4]), _ignored(r, setup)) for r in gt]
         gtind = sorted(range(len(g_rows)), key=lambda i: g_rows[i][1])  # mergesort
         g_rows = [g_rows[i] for i in gtind]
-        dtind = sorted(range(len(dt)), key=lambda i: -dt[i][4])[:max_det]
+        dtind = sorted(range(len(dt)), key=lambda i: numpy_descending_key(dt[i][4]))[:max_det]
         d_rows = [dt[i] for i in dtind]
         d_rows = [d for d in d_rows if h_lo / FILTER <= d[3] < h_hi * FILTER]
         ious = comp_oas([d[:4] for d in d_rows], [g[0] for g in g_rows], [g[1] for g in g_rows])
@@ -200,7 +209,7 @@ def cityscale(scene, setup, max_det=1000):
                 gtm[bstg] = 1
         images.append(([d[4] for d in d_rows], dtm, dt_ig, [g[1] for g in g_rows]))
     scores = [s for e in images for s in e[0]]
-    inds = sorted(range(len(scores)), key=lambda i: -scores[i])  # mergesort
+    inds = sorted(range(len(scores)), key=lambda i: numpy_descending_key(scores[i]))  # mergesort
     dtm = np.concatenate([e[1] for e in images] + [[]])[inds].tolist() if inds else []
     dt_ig = np.concatenate([e[2] for e in images] + [[]])[inds].tolist() if inds else []
     npig = sum(1 for e in images for g in e[3] if g == 0)

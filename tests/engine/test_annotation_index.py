@@ -502,3 +502,20 @@ def test_a_difficult_flag_is_not_read_under_coco_and_is_under_voc(tmp_path):
     voc = evaluate(truth, predictions, "voc")
     assert voc["per_class"]["car"]["recall"] == pytest.approx(1.0)  # left out of the count
     assert "neither TP nor FP" in voc["protocol_record"]["difficult"]
+
+
+def test_the_per_class_miss_rate_ranks_a_nan_score_first_as_the_toolbox(tmp_path):
+    """The per-class log-average miss rate follows the pedestrian toolbox's compRoc,
+    whose MATLAB ``sort(score, 'descend')`` puts NaN first: image 1's TP at 0.9, image
+    2's FP scored NaN and TP at 0.5 -> [FP, TP, TP]: FPPI 1/2 at recall 0, 1/2, 1; the
+    seven references below 1/2 miss everything, the two above miss nothing (clamped to
+    1e-10) -> LAMR = 1e-10^(2/9) ~= 0.0059948 (worked by hand)."""
+    split = _split(
+        [
+            {"id": 1, "image_id": 1, "category_id": 1, "bbox": A},
+            {"id": 2, "image_id": 2, "category_id": 1, "bbox": B},
+        ]
+    )
+    detections = [_det(1, A, 0.9), _det(2, A, float("nan")), _det(2, B, 0.5)]
+    ours, _ = _compare(tmp_path, split, detections)
+    assert ours["per_class"]["car"]["miss_rate"] == pytest.approx(1e-10 ** (2 / 9), rel=1e-12)

@@ -506,3 +506,22 @@ def test_cli_prints_setups_and_strict_json(tmp_path, capsys):
     out = capsys.readouterr().out
     assert "reasonable  pedestrian" in out and "0.9259" in out
     assert main([*argv, "--protocol", "miss-rate", "--records", str(tmp_path / "r.npz")]) == 2
+
+
+def test_a_nan_score_ranks_first_in_the_toolbox_and_last_in_the_city_scale_code(tmp_path):
+    """MATLAB's ``sort(score, 'descend')`` puts NaN first (the toolbox's evalRes and
+    compRoc), numpy's argsort last (the city-scale code). One box, its TP at 0.9 and an
+    FP scored NaN. Toolbox: [FP, TP]: points (1, 0), (1, 1): below FPPI 1 only the start
+    -> MR 1 at eight references, 0 (clamped to 1e-10) at 1 -> LAMR = 1e-10^(1/9).
+    City-scale: [TP, FP]: recall 1 at FPPI 0 -> MR 0 everywhere -> LAMR 0."""
+    scene = [
+        {
+            "gt": [_box(0, 0, 30, 100, 1.0)],
+            "dt": [([0, 0, 30, 100], 0.9), ([300, 0, 30, 100], float("nan"))],
+        }
+    ]
+    toolbox = _row(_ours(tmp_path, scene), "reasonable")
+    city = _row(_ours(tmp_path, scene, "miss-rate-cityscale"), "reasonable")
+    assert toolbox["miss_rate"] == pytest.approx(1e-10 ** (1 / 9), rel=1e-12)
+    assert city["miss_rate"] == 0.0
+    _check_both(tmp_path, scene)
