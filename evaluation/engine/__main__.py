@@ -172,8 +172,8 @@ def main(argv=None):
             result, records = evaluate(
                 truth, predictions, protocol, score_threshold=args.threshold, return_records=True
             )
-        writers = {
-            "--records": records.save,
+        writers = {  # (a level protocol has no records, and no outputs: refused above)
+            "--records": lambda path: records.save(path),
             "--records-out": lambda path: export.write(
                 path, records, truth, fmt=export.format_of(args.records_out)
             ),
