@@ -154,6 +154,11 @@ def main(argv=None):
             boxes=args.boxes,
             annotations=args.annotations,
         )
+        if not levels and args.protocol not in PRESETS:  # its classes, named by its file
+            try:
+                protocol.threshold_table(truth.classes)
+            except InputError as e:
+                raise InputError(args.protocol, e.message, field=e.field) from None
         predictions = load_predictions(
             args.predictions,
             truth,

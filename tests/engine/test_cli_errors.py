@@ -306,3 +306,13 @@ def test_an_internal_error_is_one_line_asking_for_a_report(monkeypatch, capsys):
     monkeypatch.setenv(cli.TRACEBACK_ENV, "1")
     with pytest.raises(RuntimeError, match="boom"):
         cli._run()
+
+
+def test_a_custom_protocol_naming_a_class_the_split_lacks_names_its_file(files, capsys, scored):
+    path = files.write("p.json", {"name": "p", "class_iou_thresholds": {"truck": 0.7}})
+    code, err = _cli(capsys, *scored, "--protocol", path)
+    assert code == 2
+    assert err == (
+        f"error: {path}: field 'class_iou_thresholds': 'truck' is not a class of the split "
+        "(classes: a)\n"
+    )
