@@ -308,3 +308,28 @@ def test_typed_ids_survive_the_cache_and_the_command_line(tmp_path):
     assert result["counts"]["images"] == 2
     rows = [json.loads(line) for line in out.read_text().splitlines()]
     assert {row["image_id"] for row in rows} == {"img/10", "img/9"}
+
+
+def test_null_references_name_nothing_as_in_pycocotools(tmp_path):
+    """pycocotools 2.0.11 keys its dicts by ``None`` too: an annotation whose
+    ``category_id``, ``image_id`` or ``id`` is null is left out or kept as pycocotools
+    leaves or keeps it, and a detection of category null is never scored (dropped as a
+    class the split does not list); all numbers equal the reference. An image whose own
+    id is null is refused, naming the record."""
+    split, detections = _tied_pair((1, 2))
+    split["annotations"].append({**split["annotations"][0], "id": 3, "category_id": None})
+    split["annotations"].append({**split["annotations"][0], "id": 4, "image_id": None})
+    split["annotations"][1]["id"] = None
+    detections.append({**detections[0], "category_id": None})
+    ours, _ = _compare(tmp_path, split, detections)
+    assert ours["counts"]["dropped_predictions"] == 1
+    assert ours["counts"]["boxes"]["truth"]["annotations_of_unlisted_images"] == 1
+    split["images"][1]["id"] = None
+    (tmp_path / "gt.json").write_text(json.dumps(split))
+    with pytest.raises(InputError, match=r"images\[1\]: field 'id': image ids cannot be null"):
+        load_truth(tmp_path / "gt.json")
+    (tmp_path / "dt.json").write_text(json.dumps([{**detections[0], "image_id": None}]))
+    split["images"][1]["id"] = 2
+    (tmp_path / "gt.json").write_text(json.dumps(split))
+    with pytest.raises(InputError, match=r"record 0: field 'image_id': image null is not in"):
+        load_predictions(tmp_path / "dt.json", load_truth(tmp_path / "gt.json"))

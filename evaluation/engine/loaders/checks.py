@@ -25,6 +25,8 @@ def show(value):
     typed = shown(value)
     if typed is not None:
         return typed
+    if value is None:
+        return "null"
     return repr(value.item() if hasattr(value, "item") else value)
 
 

@@ -157,7 +157,7 @@ def whole_ids(path, values, locate, field):
                 )
             out.append(int(v) if v.is_integer() else v)
         else:
-            out.append(v if type(v) is str else int(v))
+            out.append(v if v is None or type(v) is str else int(v))
     return out
 
 

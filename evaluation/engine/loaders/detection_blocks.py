@@ -13,7 +13,7 @@ import dataclasses
 import numpy as np
 
 from . import checks, coco_json, csv_tables
-from .ids import NUMBER, TEXT, ids_like, keys_of, typed_keys
+from .ids import NULL, NUMBER, TEXT, ids_like, keys_of, typed_keys
 
 #: Formats that can be read a block at a time.
 STREAMABLE = ("json", "csv")
@@ -66,7 +66,7 @@ def distinct_keys(keys, more=()):
 
 def _plain(key):
     """A class key without a typed key's mark (``ids``)."""
-    return key[1:] if key[:1] in (NUMBER, TEXT) else key
+    return key[1:] if key[:1] in (NUMBER, TEXT, NULL) else key
 
 
 def json_raw(truth, image_ids, class_keys, boxes, score, base=0):

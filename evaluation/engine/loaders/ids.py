@@ -11,7 +11,11 @@ them, so (checked against pycocotools 2.0.11 in ``tests/engine/test_any_ids.py``
 * image and category ids are sorted (``sorted``, then ``np.unique``): numbers by value,
   text by code point; a family mixing text and numbers cannot be sorted (pycocotools
   raises ``TypeError``) and is refused here, naming the record;
-* annotation ids are never sorted, so they may mix text and numbers.
+* annotation ids are never sorted, so they may mix text and numbers;
+* a ``null`` reference (an annotation's ``image_id``, ``category_id`` or ``id``, a
+  detection's ``category_id``) names nothing: the annotation is left out, the
+  detection's class is one the split does not list; an image or category whose own id
+  is null is refused, naming the record.
 
 An id family that is not all 64-bit integers is read as *typed keys*: text made of a
 type mark and the id (``"\\x1d2.5"`` for the number 2.5, ``"\\x1eimg_7"`` for the text
@@ -28,10 +32,11 @@ import numpy as np
 
 INTEGER = re.compile(r"^[+-]?\d+$")
 INT64 = (-(2**63), 2**63 - 1)
-NUMBER, TEXT = "\x1d", "\x1e"  # the type marks of typed keys
+NUMBER, TEXT, NULL = "\x1d", "\x1e", "\x1f"  # the type marks of typed keys
 ID_TYPES = ("", "number", "text", "json")
-#: A COCO JSON id field as decoded: any JSON number, boolean or text.
-JSON_ID = int | float | bool | str
+#: A COCO JSON id field as decoded: any JSON number, boolean, text or null (a null
+#: reference names nothing, as in pycocotools' dicts).
+JSON_ID = int | float | bool | str | None
 
 
 def csv_ids(values):
@@ -52,7 +57,9 @@ def number_text(value):
 
 
 def typed_key(value):
-    """The typed key of one JSON id (an int, a non-whole float or a str)."""
+    """The typed key of one JSON id (an int, a non-whole float, a str or None)."""
+    if value is None:
+        return NULL + "null"
     return TEXT + value if type(value) is str else NUMBER + number_text(value)
 
 
@@ -67,6 +74,8 @@ def key_value(key):
     """The JSON id of a typed key (what the file wrote, up to ``1.0`` -> ``1``)."""
     if key[0] == TEXT:
         return key[1:]
+    if key[0] == NULL:
+        return None
     text = key[1:]
     return int(text) if INTEGER.match(text) else float(text)
 
@@ -111,7 +120,7 @@ def sort_order(keys):
 def shown(value):
     """A typed key as the user wrote the id (text quoted), for messages; anything else
     as it is."""
-    if isinstance(value, str) and value[:1] in (NUMBER, TEXT):
+    if isinstance(value, str) and value[:1] in (NUMBER, TEXT, NULL):
         return repr(value[1:]) if value[0] == TEXT else value[1:]
     return None
 
