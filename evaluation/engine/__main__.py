@@ -215,23 +215,29 @@ def _outputs(args):
 
 
 def _write_all(writes):
-    """Write each file (``{path: (option, write(temporary path))}``) next to its place
+    """Write each file (``{path: (option, write(path to write))}``) next to its place
     under a temporary name, then move all into place: a failure (disk full, no
-    permission) leaves none of them, and no part of one, behind."""
+    permission) leaves none of them, and no part of one, behind. A symbolic link is
+    written through (its target replaced); a device or a pipe (``/dev/stdout``) is
+    written in place, never replaced."""
     done = {}
     try:
         for path, (_, write) in writes.items():
-            folder, name = os.path.split(os.path.abspath(path))
-            done[path] = os.path.join(folder, f".{name}.{os.getpid()}.partial")
-            write(done[path])
-        for path, temporary in list(done.items()):
-            os.replace(temporary, path)
+            real = os.path.realpath(path)
+            if os.path.exists(real) and not os.path.isfile(real):
+                write(real)
+                continue
+            folder, name = os.path.split(real)
+            done[path] = (real, os.path.join(folder, f".{name}.{os.getpid()}.partial"))
+            write(done[path][1])
+        for path, (real, temporary) in list(done.items()):
+            os.replace(temporary, real)
             del done[path]
     except OSError as e:
         option = writes[path][0]
         raise InputError(path, f"cannot be written ({option}): {e.strerror}") from None
     finally:
-        for temporary in done.values():
+        for _, temporary in done.values():
             with contextlib.suppress(OSError):
                 os.remove(temporary)
 

@@ -7,11 +7,14 @@ import csv
 import io
 import json
 import os
+import stat
 import subprocess
 import sys
+import threading
 
 import pytest
 
+from evaluation.engine import export
 from evaluation.engine.__main__ import main
 
 IMAGE = {"id": 1, "width": 100, "height": 100}
@@ -207,7 +210,6 @@ def test_an_output_path_that_cannot_be_written(files, capsys, scored, option, wh
 def test_a_write_that_fails_leaves_no_file_behind(files, capsys, scored, monkeypatch):
     """The disk fills up while the export is written: neither output appears (the
     records were complete already), no part of one is left, no result is printed."""
-    from evaluation.engine import export
 
     def full(path, *args, **kwargs):
         with open(path, "w") as f:
@@ -316,3 +318,23 @@ def test_a_custom_protocol_naming_a_class_the_split_lacks_names_its_file(files, 
         f"error: {path}: field 'class_iou_thresholds': 'truck' is not a class of the split "
         "(classes: a)\n"
     )
+
+
+def test_outputs_write_through_a_link_and_into_a_pipe(files, capsys, scored):
+    """A symbolic link stays a link (its target gets the file); a pipe is written in
+    place, never replaced by a regular file (as ``/dev/stdout`` must not be)."""
+    target = files.root / "kept.npz"
+    link = files.root / "link.npz"
+    link.symlink_to(target)
+    pipe = files.root / "pipe.csv"
+    os.mkfifo(pipe)
+    received = []
+    reader = threading.Thread(target=lambda: received.append(pipe.read_text()), daemon=True)
+    reader.start()
+    assert main([*scored, "--records", str(link), "--records-out", str(pipe)]) == 0
+    reader.join(timeout=30)  # still blocked: the pipe was never opened for writing
+    assert received, "nothing was written into the pipe"
+    capsys.readouterr()
+    assert link.is_symlink() and target.stat().st_size > 0
+    assert stat.S_ISFIFO(pipe.stat().st_mode)
+    assert received[0].startswith(",".join(export.COLUMNS) + "\n")
