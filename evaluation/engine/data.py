@@ -66,6 +66,10 @@ class GroundTruth:
     class_id_type: str = ""
     box_policy: str = "keep"
     box_counts: dict = field(default_factory=dict)
+    #: A COCO JSON annotation's own ``ignore`` key (bool per box): pycocotools never
+    #: reads it (``_prepare`` overwrites ``ignore`` from ``iscrowd``), so only the
+    #: pedestrian setups do, as ignore boxes; all False where not given.
+    ignore_key: np.ndarray = None
     occlusion: np.ndarray = None  # float64 per box, NaN = not given
     truncation: np.ndarray = None
     visibility: np.ndarray = None
@@ -76,6 +80,8 @@ class GroundTruth:
         for name in ATTRIBUTES:
             if getattr(self, name) is None:
                 object.__setattr__(self, name, np.full(self.n_boxes, np.nan))
+        if self.ignore_key is None:
+            object.__setattr__(self, "ignore_key", np.zeros(self.n_boxes, bool))
         if self.region_image is None:
             object.__setattr__(self, "region_image", np.zeros(0, np.int32))
         if self.regions is None:
@@ -140,6 +146,7 @@ class GroundTruth:
                 self.box_area.astype("<f8"),
             ]
             + ([_canonical_nan(getattr(self, a)) for a in ATTRIBUTES] if attributes else [])
+            + ([self.ignore_key.astype("<f8")] if self.ignore_key.any() else [])
         )
         order = np.lexsort(columns.T[::-1])
         digest.update(np.ascontiguousarray(columns[order]).tobytes())

@@ -206,7 +206,7 @@ def evaluate_setups_with_samples(truth, predictions, protocol="miss-rate"):
     weighted recomputation at weights of one equals it bit for bit."""
     protocol = get_miss_rate_protocol(protocol)
     n_images = truth.n_images
-    flagged = truth.crowd | truth.ignore | truth.difficult
+    flagged = truth.crowd | truth.ignore | truth.difficult | truth.ignore_key
     height = truth.boxes[:, 3]
     visibility = np.where(np.isnan(truth.visibility), 1.0, truth.visibility)
     det_height = predictions.boxes[:, 3]
@@ -327,7 +327,7 @@ def setup_counts(truth, protocol="miss-rate"):
     """Counted boxes per setup and evaluated class (the ``n_gt`` of
     ``evaluate_setups``), for a split's page: ``{setup: {class: n}}``."""
     protocol = get_miss_rate_protocol(protocol)
-    flagged = truth.crowd | truth.ignore | truth.difficult
+    flagged = truth.crowd | truth.ignore | truth.difficult | truth.ignore_key
     visibility = np.where(np.isnan(truth.visibility), 1.0, truth.visibility)
     out = {}
     for setup in protocol.setups:

@@ -38,6 +38,7 @@ _BOX_FIELDS = (
     "crowd",
     "difficult",
     "ignore",
+    "ignore_key",
     "occlusion",
     "truncation",
     "visibility",

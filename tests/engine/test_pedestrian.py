@@ -32,12 +32,13 @@ SETUPS = ("reasonable", "small", "heavy", "all")
 CLASSES = ["pedestrian", "people"]
 
 
-def _box(x, y, w, h, vis=None, cls="pedestrian", crowd=False):
+def _box(x, y, w, h, vis=None, cls="pedestrian", crowd=False, ignore=False):
     return {
         "cls": cls,
         "bbox": [float(x), float(y), float(w), float(h)],
         "vis": vis,
         "crowd": crowd,
+        "ignore": ignore,
     }
 
 
@@ -51,6 +52,8 @@ def _files(root, scene):
             attrs = {} if b["vis"] is None else {"visibility": b["vis"]}
             if b["crowd"]:
                 attrs["iscrowd"] = 1
+            if b.get("ignore"):
+                attrs["ignore"] = 1
             boxes.append((i, b["cls"], b["bbox"], attrs))
         regions += [(i, list(map(float, r))) for r in image.get("regions", ())]
         for d in image.get("dt", ()):
@@ -69,7 +72,7 @@ def _oracle_scene(scene):
     for image in scene:
         gt = []
         for b in image.get("gt", ()):
-            flag = b["crowd"] or b["cls"] != "pedestrian"
+            flag = b["crowd"] or b.get("ignore") or b["cls"] != "pedestrian"
             gt.append((*b["bbox"], b["vis"], int(flag)))
         gt += [(*map(float, r), None, 1) for r in image.get("regions", ())]
         dt = [
@@ -524,4 +527,19 @@ def test_a_nan_score_ranks_first_in_the_toolbox_and_last_in_the_city_scale_code(
     city = _row(_ours(tmp_path, scene, "miss-rate-cityscale"), "reasonable")
     assert toolbox["miss_rate"] == pytest.approx(1e-10 ** (1 / 9), rel=1e-12)
     assert city["miss_rate"] == 0.0
+    _check_both(tmp_path, scene)
+
+
+def test_an_ignore_key_makes_an_ignore_box(tmp_path):
+    """A COCO JSON annotation's ``ignore`` key (as pedestrian annotation files carry it;
+    pycocotools never reads it, so ``coco`` does not) makes an ignore box here. The
+    ignore box's exact detection is ignored and the other box is missed: miss rate 1
+    at every reference -> LAMR 1 (were the key not read: recall 1/2 -> LAMR 1/2)."""
+    scene = [
+        {
+            "gt": [_box(0, 0, 30, 80, 1.0, ignore=True), _box(100, 0, 30, 80, 1.0)],
+            "dt": [([0, 0, 30, 80], 0.9)],
+        }
+    ]
+    assert _row(_ours(tmp_path, scene), "reasonable")["miss_rate"] == pytest.approx(1.0)
     _check_both(tmp_path, scene)

@@ -61,6 +61,7 @@ def _whole(path, data):
         "box_area_given": np.array([a.area is not None for a in anns], bool),
         **crowd,
         "difficult": np.array([bool(a.difficult) for a in anns], bool),
+        "ignore_key": np.array([bool(a.ignore) for a in anns], bool),
         "occlusion": opt(a.occlusion for a in anns),
         "truncation": opt(a.truncation for a in anns),
         "visibility": opt(a.visibility for a in anns),

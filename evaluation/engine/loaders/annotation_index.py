@@ -54,6 +54,7 @@ PER_ANNOTATION = (
     "crowd_wide",
     "difficult",
     "ignore",
+    "ignore_key",
     "occlusion",
     "truncation",
     "visibility",

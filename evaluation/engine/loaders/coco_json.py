@@ -53,6 +53,7 @@ class _Annotation(msgspec.Struct, gc=False):
     area: float | None = None
     iscrowd: int | float | bool = 0  # any number, as pycocotools: see crowd_columns
     difficult: int | bool = 0
+    ignore: int | float | bool = 0  # read by the pedestrian setups only: ignore_key
     occlusion: float | None = None  # road attributes: loaders.attributes
     truncation: float | None = None
     visibility: float | None = None
@@ -383,6 +384,7 @@ class _Records:
             "box_area_given": np.array([a.area is not None for a in anns], bool),
             **self.crowd_columns([a.iscrowd for a in anns], base),
             "difficult": np.array([bool(a.difficult) for a in anns], bool),
+            "ignore_key": np.array([bool(a.ignore) for a in anns], bool),
             "occlusion": given("occlusion"),
             "truncation": given("truncation"),
             "visibility": given("visibility"),

@@ -222,6 +222,7 @@ def read_truth(path, images, fmt, classes, policy, ids="any", annotations="refer
         crowd=cols["crowd"],
         difficult=cols["difficult"],
         ignore=cols["ignore"],
+        ignore_key=cols.get("ignore_key"),
         source=str(path),
         image_id_type=image_type,
         class_id_type=class_type,

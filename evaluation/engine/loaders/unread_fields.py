@@ -3,7 +3,7 @@
 Of a ground-truth file pycocotools 2.0.11 reads only the ids, ``bbox``, ``area`` and
 ``iscrowd`` (``COCO.createIndex``, ``COCOeval._prepare``, ``computeIoU``,
 ``evaluateImg``). An image's ``width``/``height``, a category's ``name`` and keys of
-our own (``tags``, ``difficult``, ``occlusion``, ``truncation``, ``visibility``,
+our own (``tags``, ``difficult``, ``ignore``, ``occlusion``, ``truncation``, ``visibility``,
 ``dont_care``) are never looked at there, so a file holding ``"width": "640"`` or
 ``"occlusion": "partial"`` is one it scores. Here such a value, of a type its field
 cannot hold, is left unread — as if absent — and counted (``COUNTS``, shown with the
@@ -33,6 +33,7 @@ _COUNT_OF = {
     ("images", "tags"): "unread_image_tags",
     ("categories", "name"): "unread_category_names",
     ("annotations", "difficult"): "unread_attributes",
+    ("annotations", "ignore"): "unread_attributes",
     ("annotations", "occlusion"): "unread_attributes",
     ("annotations", "truncation"): "unread_attributes",
     ("annotations", "visibility"): "unread_attributes",
@@ -59,6 +60,7 @@ class _Annotation(msgspec.Struct, gc=False):
     area: float | None = None
     iscrowd: int | float | bool = 0
     difficult: Any = 0
+    ignore: Any = 0
     occlusion: Any = None
     truncation: Any = None
     visibility: Any = None
@@ -89,10 +91,10 @@ def _fits(key, name, value):
         return isinstance(value, (list, tuple)) and all(type(t) is str for t in value)
     if name == "name":
         return value is None or type(value) is str
-    return type(value) in (int, float, bool)  # difficult: any number, read as truthiness
+    return type(value) in (int, float, bool)  # difficult, ignore: any number, as truthiness
 
 
-_DEFAULTS = {"tags": (), "difficult": 0}
+_DEFAULTS = {"tags": (), "difficult": 0, "ignore": 0}
 
 
 def loose_field(key, error_text):
@@ -124,6 +126,6 @@ def normalise(key, records, counts):
             if not _fits(key, name, value):
                 setattr(record, name, _DEFAULTS.get(name))
                 counts[_COUNT_OF[key, name]] += 1
-            elif name == "difficult":
+            elif name in ("difficult", "ignore"):
                 setattr(record, name, bool(value))
     return records
