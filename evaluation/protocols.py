@@ -43,18 +43,13 @@ def stored_names():
 
 def check_definition(definition, source):
     """A custom protocol's definition, validated by the engine (``InputError`` naming
-    the field); its name must be new, or already stored with this very definition."""
+    the field; the engine also refuses a preset's name, level presets' included); its
+    name must be new, or already stored with this very definition."""
     protocol = engine.protocol_from_dict(definition, source=source)
     if not NAME.fullmatch(protocol.name):
         raise engine.InputError(
             source,
             "a name of 1 to 32 letters, digits, '.', '_' or '-', starting with a letter or digit",
-            field="name",
-        )
-    if protocol.name in engine.PRESETS or protocol.name in LEVEL_PROTOCOLS:
-        raise engine.InputError(
-            source,
-            f"{protocol.name!r} is a preset; give a custom protocol its own name",
             field="name",
         )
     stored = StoredProtocol.objects.filter(name=protocol.name).first()

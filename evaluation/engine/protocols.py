@@ -13,7 +13,9 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+from .difficulty import DIFFICULTY_PRESETS
 from .errors import InputError
+from .pedestrian_setups import MISS_RATE_PRESETS
 
 #: Size buckets on box area in px², closed intervals (COCO's convention; an area of
 #: exactly 32² is both small and medium, as in pycocotools).
@@ -209,6 +211,10 @@ PRESETS = {
     ),
 }
 
+#: Every preset's name: the matching presets and the level presets (difficulty levels,
+#: miss-rate setups). No custom protocol may take one.
+PRESET_NAMES = frozenset((*PRESETS, *DIFFICULTY_PRESETS, *MISS_RATE_PRESETS))
+
 
 def get_protocol(name_or_spec):
     """A preset by name, or a custom protocol from a dict (e.g. loaded from JSON)."""
@@ -240,13 +246,14 @@ def _number_list(spec, key, source, *, low, high):
 def protocol_from_dict(spec, source="protocol"):
     """Build a custom protocol; every field is checked and errors name it.
 
-    Keys: ``name`` (required), ``version``, ``base`` (a preset to start from),
-    ``matching``, ``iou_thresholds``, ``class_iou_thresholds`` (class → IoU),
-    ``recall_points`` (list, or ``"all"`` for the all-point area), ``pixel_offset``,
-    ``max_detections``, ``tie_order`` (``TIE_ORDERS``), ``area_ranges`` (the size
-    buckets: ``[[name, low, high], ...]`` in pixels², the first ``["all", 0, high]``
-    as pycocotools' ``Params.areaRng``, each box counted in ``low <= area <= high``),
-    ``zero_id_unmatched`` and ``difficult_ignored`` (bools; inherited from ``base``).
+    Keys: ``name`` (required, no preset's name: ``PRESET_NAMES``), ``version``,
+    ``base`` (a preset to start from), ``matching``, ``iou_thresholds``,
+    ``class_iou_thresholds`` (class → IoU), ``recall_points`` (list, or ``"all"`` for
+    the all-point area), ``pixel_offset``, ``max_detections``, ``tie_order``
+    (``TIE_ORDERS``), ``area_ranges`` (the size buckets: ``[[name, low, high], ...]``
+    in pixels², the first ``["all", 0, high]`` as pycocotools' ``Params.areaRng``,
+    each box counted in ``low <= area <= high``), ``zero_id_unmatched`` and
+    ``difficult_ignored`` (bools; inherited from ``base``).
     """
     if not isinstance(spec, dict):
         raise InputError(source, "a custom protocol must be a JSON object")
@@ -271,6 +278,14 @@ def protocol_from_dict(spec, source="protocol"):
             raise InputError(source, f"unknown key; allowed: {', '.join(sorted(known))}", field=key)
     if not isinstance(spec.get("name"), str) or not spec["name"]:
         raise InputError(source, "a custom protocol needs a non-empty name", field="name")
+    if spec["name"] in PRESET_NAMES:
+        # a result records the protocol by name: under a preset's name it would read as
+        # the preset's (``explain`` would call two different rule sets the same)
+        raise InputError(
+            source,
+            f"{spec['name']!r} is a preset's name; give a custom protocol its own name",
+            field="name",
+        )
     base = spec.get("base", "coco")
     if not isinstance(base, str) or base not in PRESETS:
         raise InputError(

@@ -174,8 +174,19 @@ def scored(files):
         ),
         (b'{"name": "p", "base": {"name": "q"}}', "field 'base': must be a preset"),
         (b'{"name": "p", "base": "kitti"}', "field 'base': must be a preset"),
+        (b'{"name": "coco", "base": "coco"}', "field 'name': 'coco' is a preset's name"),
+        (b'{"name": "miss-rate"}', "field 'name': 'miss-rate' is a preset's name"),
     ],
-    ids=["deep", "latin-1", "utf-16", "syntax", "base-object", "base-unknown"],
+    ids=[
+        "deep",
+        "latin-1",
+        "utf-16",
+        "syntax",
+        "base-object",
+        "base-unknown",
+        "preset-name",
+        "level-preset-name",
+    ],
 )
 def test_a_custom_protocol_file_that_cannot_be_read(files, capsys, scored, content, message):
     path = files.root / "p.json"

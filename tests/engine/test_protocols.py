@@ -96,6 +96,19 @@ def test_custom_protocol_errors_name_the_field(spec, pattern):
         protocol_from_dict(spec)
 
 
+@pytest.mark.parametrize(
+    "name", ["coco", "voc", "voc07", "recall40", "kitti2d", "miss-rate", "miss-rate-cityscale"]
+)
+def test_a_custom_protocol_may_not_take_a_presets_name(name):
+    """A result records its protocol by name and version: a custom protocol named
+    ``coco`` would read as the preset in its record and in ``explain``, with other
+    numbers. Matching and level presets' names alike are refused, naming ``name``."""
+    with pytest.raises(InputError, match=rf"field 'name': '{name}' is a preset's name"):
+        protocol_from_dict({"name": name, "base": "coco"})
+    # a name that merely contains a preset's is a name of its own
+    assert protocol_from_dict({"name": f"{name}-night"}).name == f"{name}-night"
+
+
 def test_custom_protocol_inherits_from_its_base():
     p = protocol_from_dict({"name": "voc-strict", "base": "voc", "iou_thresholds": [0.7]})
     assert (p.matching, p.pixel_offset, p.recall_points) == ("best_overlap", 1.0, None)
