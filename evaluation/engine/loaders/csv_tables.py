@@ -11,10 +11,12 @@ Images:      ``image_id`` and optionally ``width,height`` (needed only by the ``
 
 A header row is required; column order is free and other columns are ignored. Rows
 are read in blocks of ``BLOCK_ROWS`` and converted to arrays block by block, so a
-large file never exists as Python strings all at once. Errors name the line number.
+large file never exists as Python strings all at once. Errors name the line number
+(physical lines, as ``csv.reader`` counts them: a quoted cell over two lines counts two).
 """
 
 import csv
+import re
 
 import numpy as np
 
@@ -67,7 +69,9 @@ def read_blocks(path, required, optional=()):
         try:
             reader = csv.reader(handle)
             header = next(reader, None)
-        except (csv.Error, UnicodeDecodeError) as e:
+        except UnicodeDecodeError:
+            raise _not_utf8(path) from None
+        except csv.Error as e:
             raise InputError(path, f"not a readable CSV file: {e}", record="line 1") from None
         if header is None:
             raise InputError(path, "the file is empty")
@@ -109,9 +113,79 @@ def read_blocks(path, required, optional=()):
                 path, f"malformed CSV: {e}", record=f"line {reader.line_num}"
             ) from None
         except UnicodeDecodeError:
-            raise InputError(path, "not UTF-8 text", record=f"line {reader.line_num + 1}") from None
+            raise _not_utf8(path) from None
         if lines:
             yield block, lines
+
+
+#: After each ``\r`` that does not start ``\r\n``: where text mode with ``newline=""``
+#: (so ``csv.reader``) ends a line, besides ``\n``.
+_LONE_CR = re.compile(rb"(?<=\r)(?!\n)")
+
+
+def _byte_lines(raw):
+    """The lines of a binary file as ``csv.reader`` over text mode counts them: ended
+    by ``\n``, ``\r\n`` or a lone ``\r``. No UTF-8 sequence holds those bytes, so each
+    line decodes alone exactly as within the whole text."""
+    for line in raw:
+        if b"\r" in line:
+            yield from (part for part in _LONE_CR.split(line) if part)
+        else:
+            yield line
+
+
+def _not_utf8(path):
+    """The error for the first byte of ``path`` that is not UTF-8, located exactly.
+
+    The text layer decodes a buffer ahead of the csv reader, so where the reader stood
+    is not where the byte is. The file is read again, a line at a time (memory bounded
+    by its longest line), until the byte: its line and character column, and the field
+    of the header whose cell holds it (the csv reader is run on the lines, the bad
+    bytes kept as lone surrogates, so a quoted cell over lines is followed). A malformed
+    record before the byte is named instead, as the first problem in the file."""
+    found = []
+
+    def decoded(raw):
+        for number, line in enumerate(_byte_lines(raw), 1):
+            if number == 1:
+                line = line.removeprefix(b"\xef\xbb\xbf")
+            try:
+                yield line.decode("utf-8")
+            except UnicodeDecodeError as e:
+                column = len(line[: e.start].decode("utf-8")) + 1
+                found.append((number, column, line[e.start]))
+                yield line.decode("utf-8", "surrogateescape")
+
+    with open(path, "rb") as raw:
+        reader = csv.reader(decoded(raw))
+        header, row = None, []
+        try:
+            for row in reader:
+                if found:
+                    break
+                if header is None:
+                    header = [h.strip() for h in row]
+        except csv.Error as e:
+            raise InputError(
+                path, f"malformed CSV: {e}", record=f"line {reader.line_num}"
+            ) from None
+    if not found:  # the file changed since: no line to name
+        return InputError(path, "not UTF-8 text; save it as UTF-8")
+    line, column, byte = found[0]
+    cell = next(
+        (k for k, value in enumerate(row) if any("\udc80" <= c <= "\udcff" for c in value)), None
+    )
+    if header is None:
+        record, field = f"line {line} (the header)", ""
+    else:
+        record = f"line {line}"
+        field = header[cell] if cell is not None and cell < len(header) else ""
+    where = f"byte 0x{byte:02X} at column {column}"
+    if cell is not None and not field:
+        where += f", cell {cell + 1}"
+    return InputError(
+        path, f"not UTF-8 text ({where}); save it as UTF-8", record=record, field=field
+    )
 
 
 def _corner_boxes(path, block, lines):
