@@ -73,6 +73,12 @@ def annotation_lines(counts):
                 f"{n} {what} of a type the field cannot hold left unread (pycocotools never "
                 "reads them)"
             )
+    text_crowd = int(counts.get("iscrowd_text_or_null", 0))
+    if text_crowd:
+        lines.append(
+            f"{_plural(text_crowd, 'iscrowd value', 'iscrowd values')} given as text or null "
+            'read as pycocotools reads them ("1" a crowd region, "0" an ignored box)'
+        )
     renamed = int(counts.get("categories_renamed", 0))
     if renamed:
         lines.append(

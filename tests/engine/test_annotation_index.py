@@ -519,3 +519,23 @@ def test_the_per_class_miss_rate_ranks_a_nan_score_first_as_the_toolbox(tmp_path
     detections = [_det(1, A, 0.9), _det(2, A, float("nan")), _det(2, B, 0.5)]
     ours, _ = _compare(tmp_path, split, detections)
     assert ours["per_class"]["car"]["miss_rate"] == pytest.approx(1e-10 ** (2 / 9), rel=1e-12)
+
+
+def test_iscrowd_given_as_text_is_read_as_pycocotools_reads_it(tmp_path):
+    """pycocotools 2.0.11 ignores a box whose ``iscrowd`` is truthy (``_prepare``) and
+    passes ``int(iscrowd)`` as the crowd flag (``computeIoU``): ``"1"`` and ``" 2 "``
+    are crowd regions, ``"0"`` (truthy text) an ignored regular box. Equal numbers,
+    counted; ``strict`` refuses the text."""
+    split = _split(
+        [
+            {"id": 1, "image_id": 1, "category_id": 1, "bbox": A, "iscrowd": "1"},
+            {"id": 2, "image_id": 1, "category_id": 1, "bbox": B, "iscrowd": "0"},
+            {"id": 3, "image_id": 2, "category_id": 1, "bbox": A, "iscrowd": " 2 "},
+            {"id": 4, "image_id": 2, "category_id": 1, "bbox": B},
+        ]
+    )
+    detections = [_det(1, A, 0.9), _det(1, B, 0.8), _det(2, A, 0.7), _det(2, B, 0.6)]
+    ours, _ = _compare(tmp_path, split, detections)
+    assert ours["counts"]["boxes"]["truth"]["iscrowd_text_or_null"] == 3
+    with pytest.raises(InputError, match=r"annotations\[0\]: field 'iscrowd'"):
+        load_truth(tmp_path / "truth.json", annotations="strict")

@@ -9,6 +9,9 @@ our own (``tags``, ``difficult``, ``ignore``, ``occlusion``, ``truncation``, ``v
 cannot hold, is left unread — as if absent — and counted (``COUNTS``, shown with the
 split); ``annotations="strict"`` refuses it, naming the record and the field.
 
+An ``iscrowd`` of text or null, which pycocotools does read, is read as it reads it
+(``crowd_value``) and counted (``iscrowd_text_or_null``).
+
 Clean files never come here: a slice of records is decoded with the typed records
 first, and only a slice that fails on one of these fields is decoded again loosely.
 """
@@ -26,12 +29,14 @@ COUNTS = (
     "unread_category_names",
     "unread_attributes",
     "unread_dont_care",
+    "iscrowd_text_or_null",
 )
 _COUNT_OF = {
     ("images", "width"): "unread_image_sizes",
     ("images", "height"): "unread_image_sizes",
     ("images", "tags"): "unread_image_tags",
     ("categories", "name"): "unread_category_names",
+    ("annotations", "iscrowd"): "iscrowd_text_or_null",
     ("annotations", "difficult"): "unread_attributes",
     ("annotations", "ignore"): "unread_attributes",
     ("annotations", "occlusion"): "unread_attributes",
@@ -58,7 +63,7 @@ class _Annotation(msgspec.Struct, gc=False):
     category_id: JSON_ID
     bbox: tuple[float, float, float, float]
     area: float | None = None
-    iscrowd: int | float | bool = 0
+    iscrowd: Any = 0
     difficult: Any = 0
     ignore: Any = 0
     occlusion: Any = None
@@ -83,8 +88,26 @@ def _number(value):
     return type(value) in (int, float)
 
 
+def crowd_value(value):
+    """A text or null ``iscrowd`` as the number pycocotools 2.0.11 reads alike:
+    ``_prepare`` ignores the box when the value is truthy, ``computeIoU`` passes
+    ``int(iscrowd)`` as the crowd flag. Text ``int`` reads (``"1"``, ``" 2 "``) is that
+    crowd flag, ``"0"`` an ignored regular box (truthy text, crowd 0: the number 0.5
+    here); null and ``""`` are falsy (0); other text, which makes ``int`` raise there
+    whenever its image and class are evaluated, an ignored regular box."""
+    if value is None or value == "":
+        return 0
+    try:
+        number = int(value)
+    except ValueError:
+        return 0.5
+    return number if number != 0 else 0.5
+
+
 def _fits(key, name, value):
     """Whether ``value`` is what the typed record's field holds."""
+    if name == "iscrowd":
+        return type(value) in (int, float, bool)
     if name in ("width", "height", "occlusion", "truncation", "visibility"):
         return value is None or _number(value)
     if name == "tags":
@@ -124,7 +147,8 @@ def normalise(key, records, counts):
         for name in fields:
             value = getattr(record, name)
             if not _fits(key, name, value):
-                setattr(record, name, _DEFAULTS.get(name))
+                fixed = crowd_value(value) if name == "iscrowd" else _DEFAULTS.get(name)
+                setattr(record, name, fixed)
                 counts[_COUNT_OF[key, name]] += 1
             elif name in ("difficult", "ignore"):
                 setattr(record, name, bool(value))
