@@ -476,7 +476,7 @@ def test_a_field_pycocotools_reads_still_fails_where_it_is_when_others_are_unrea
     split["annotations"][1]["bbox"] = "wide"
     split["dont_care"] = [{"image_id": 1, "bbox": A}, 7]
     (tmp_path / "gt.json").write_text(json.dumps(split))
-    with pytest.raises(InputError, match=r"annotations\[1\]: field 'bbox': expected 'array'"):
+    with pytest.raises(InputError, match=r"annotations\[1\]: field 'bbox': must be 4 numbers"):
         load_truth(tmp_path / "gt.json")
     split["annotations"][1]["bbox"] = B
     (tmp_path / "gt.json").write_text(json.dumps(split))
@@ -539,3 +539,30 @@ def test_iscrowd_given_as_text_is_read_as_pycocotools_reads_it(tmp_path):
     assert ours["counts"]["boxes"]["truth"]["iscrowd_text_or_null"] == 3
     with pytest.raises(InputError, match=r"annotations\[0\]: field 'iscrowd'"):
         load_truth(tmp_path / "truth.json", annotations="strict")
+
+
+def test_bad_boxes_in_annotations_pycocotools_never_scores_are_left_out(tmp_path):
+    """pycocotools 2.0.11 reads ``bbox`` and ``area`` only of the annotations it
+    scores: a garbage box on an annotation of an unlisted image, a missing box on one of
+    an unlisted category, and a null box on one whose id a later annotation takes over
+    are never looked at. Equal numbers; the same garbage on a scored annotation is
+    refused naming it."""
+    split = _split(
+        [
+            {"id": 1, "image_id": 1, "category_id": 1, "bbox": A},
+            {"id": 2, "image_id": 2, "category_id": 1, "bbox": B},
+            {"id": 3, "image_id": 9, "category_id": 1, "bbox": A},
+            {"id": 4, "image_id": 1, "category_id": 5, "bbox": A},
+            {"id": 1, "image_id": 1, "category_id": 1, "bbox": A},
+        ]
+    )
+    split["annotations"][2]["bbox"] = "garbage"
+    del split["annotations"][3]["bbox"]
+    split["annotations"][0]["bbox"] = None  # taken over by the last annotation of id 1
+    _compare(tmp_path, split, [_det(1, A, 0.9), _det(2, B, 0.8), _det(2, A, 0.7)])
+    split["annotations"][1]["bbox"] = [1, 2, "3", 4]
+    (tmp_path / "gt.json").write_text(json.dumps(split))
+    with pytest.raises(InputError, match=r"annotations\[1\]: field 'bbox': must be 4 numbers"):
+        load_truth(tmp_path / "gt.json")
+    with pytest.raises(InputError, match=r"annotations\[0\]: field 'bbox'"):
+        load_truth(tmp_path / "gt.json", annotations="strict")

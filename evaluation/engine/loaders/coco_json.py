@@ -293,6 +293,7 @@ class _Records:
     def __init__(self, path, wide=False, totals=None, loose=False):
         self.path, self.wide, self.loose = path, wide, loose
         self.unread = dict.fromkeys(unread_fields.COUNTS, 0)
+        self.bad_rows = {}  # annotation row -> (field, message): raised if it is scored
         self.totals = totals or {}  # records per array, from a syntax-only scan
         self.filled = dict.fromkeys(_RECORDS)  # preallocated array columns per key
         self.parts = {key: [] for key in _RECORDS}
@@ -305,6 +306,8 @@ class _Records:
             return False
         if first:  # a repeated key replaces the earlier array, as in a whole decode
             self.parts[key], self.count[key], self.filled[key] = [], 0, None
+            if key == "annotations":
+                self.bad_rows = {}
             for field_key in [k for k in self.out_of_range if k[0] == key]:
                 del self.out_of_range[field_key]
         try:
@@ -314,7 +317,9 @@ class _Records:
                 if not (self.loose and unread_fields.loose_field(key, str(e))):
                     raise
                 loose = json_literals.decode(records, unread_fields.LOOSE[key])
-                decoded = unread_fields.normalise(key, loose, self.unread)
+                decoded = unread_fields.normalise(
+                    key, loose, self.unread, base=self.count[key], bad=self.bad_rows
+                )
         except (msgspec.ValidationError, msgspec.DecodeError) as e:
             self.error = (e, key, self.count[key], piece_at, prefix())
             self.parts = None  # no more columns: the file is rejected
@@ -450,6 +455,7 @@ class _Records:
                     cols[name] = np.concatenate([column, *pieces])
                 del pieces
         cols["unread_counts"] = dict(self.unread)
+        cols["bad_rows"] = dict(self.bad_rows)
         return cols
 
     def _check_outline(self, checker, outline, kind):

@@ -60,16 +60,30 @@ def _id_text(value):
     return value[1:] if isinstance(value, str) else str(value)
 
 
+def _raise_if_scored(path, bad_rows, rows, n):
+    """The first annotation with a bad ``bbox`` or ``area`` that is scored (``rows``:
+    the source rows scored, None for all ``n``), as an error naming it; one never
+    scored (pycocotools never reads it either) is left out with its image or id."""
+    if not bad_rows:
+        return
+    scored = set(range(n)) if rows is None else set(rows.tolist())
+    hits = sorted(set(bad_rows) & scored)
+    if hits:
+        field, message = bad_rows[hits[0]]
+        raise InputError(path, message, record=f"annotations[{hits[0]}]", field=field)
+
+
 def _order(values, id_type):
     """Stable ascending order of a family's defining ids (pycocotools' order)."""
     return ids_module.sort_order(values) if id_type else np.argsort(values, kind="stable")
 
 
 def read_truth(path, images, fmt, classes, policy, ids="any", annotations="reference"):
-    entry_counts = {}
+    entry_counts, bad_rows = {}, {}
     if fmt == "json":
         cols = coco_json.read_truth(path, wide=ids == "any", loose=annotations != "strict")
         entry_counts.update(cols.pop("unread_counts"))
+        bad_rows = cols.pop("bad_rows")
         image_locate = lambda i: f"images[{i}]"  # noqa: E731
         image_type = _typed_family(
             path, cols, "image_ids", ("box_image_ids", "region_image_ids"), image_locate, "image"
@@ -152,6 +166,7 @@ def read_truth(path, images, fmt, classes, policy, ids="any", annotations="refer
     elif fmt == "json":
         rows, resolved = annotation_index.resolve(cols, image_ids, class_ids)
         annotation_counts.update(resolved)
+        _raise_if_scored(path, bad_rows, rows, len(cols["boxes"]))
         if rows is not None:
             annotation_index.take(cols, rows)
             box_locate = lambda i: f"annotations[{rows[i]}]"  # noqa: E731

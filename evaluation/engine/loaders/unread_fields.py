@@ -16,6 +16,7 @@ Clean files never come here: a slice of records is decoded with the typed record
 first, and only a slice that fails on one of these fields is decoded again loosely.
 """
 
+import re
 from typing import Any
 
 import msgspec
@@ -61,8 +62,8 @@ class _Annotation(msgspec.Struct, gc=False):
     id: JSON_ID
     image_id: JSON_ID
     category_id: JSON_ID
-    bbox: tuple[float, float, float, float]
-    area: float | None = None
+    bbox: Any = None
+    area: Any = None
     iscrowd: Any = 0
     difficult: Any = 0
     ignore: Any = 0
@@ -120,20 +121,56 @@ def _fits(key, name, value):
 _DEFAULTS = {"tags": (), "difficult": 0, "ignore": 0}
 
 
+#: Fields pycocotools reads only of the annotations it scores: a bad value in an
+#: annotation it never scores (of an unlisted image or category, or overwritten by a
+#: later one with its id) is never looked at there. Such a record is kept with its
+#: error (``bad``), raised only if the annotation turns out to be scored.
+_DEFERRED = {("annotations", "bbox"), ("annotations", "area")}
+
+
 def loose_field(key, error_text):
     """Whether a typed decode's error (msgspec's ``... - at `$[3].width```) is about a
     field this module reads loosely."""
     if key == "dont_care":
         return True
-    field = error_text.rsplit("`$", 1)[-1].split("]", 1)[-1].lstrip(".").split("[")[0]
-    field = field.split(".")[0].rstrip("`")
-    return (key, field) in _COUNT_OF
+    missing = re.match(r"^Object missing required field `(\w+)`", error_text)
+    if missing:
+        field = missing[1]
+    else:
+        field = error_text.rsplit("`$", 1)[-1].split("]", 1)[-1].lstrip(".").split("[")[0]
+        field = field.split(".")[0].rstrip("`")
+    return (key, field) in _COUNT_OF or (key, field) in _DEFERRED
 
 
-def normalise(key, records, counts):
+def _four_numbers(value):
+    return (
+        isinstance(value, (list, tuple))
+        and len(value) == 4
+        and all(type(v) in (int, float) for v in value)
+    )
+
+
+def _defer(records, base, bad):
+    """Annotations whose ``bbox`` or ``area`` is not what pycocotools can score: kept
+    with NaN in its place and their error in ``bad`` (row -> (field, message))."""
+    for i, record in enumerate(records):
+        if not _four_numbers(record.bbox):
+            bad.setdefault(
+                base + i, ("bbox", f"must be 4 numbers [x, y, w, h], got {record.bbox!r:.40}")
+            )
+            record.bbox = (float("nan"),) * 4
+        else:
+            record.bbox = tuple(float(v) for v in record.bbox)
+        if record.area is not None and type(record.area) not in (int, float):
+            bad.setdefault(base + i, ("area", f"must be a number, got {record.area!r:.40}"))
+            record.area = None
+
+
+def normalise(key, records, counts, base=0, bad=None):
     """The loosely decoded ``records`` with every value of a type its field cannot hold
     set to the field's default, counted in ``counts``; regions that are not an object
-    with an id and four numbers are left out, counted."""
+    with an id and four numbers are left out, counted; annotations with a bad ``bbox``
+    or ``area`` kept with their error in ``bad`` (``_DEFERRED``; rows from ``base``)."""
     if key == "dont_care":
         kept = []
         for value in records:
@@ -142,6 +179,8 @@ def normalise(key, records, counts):
             except msgspec.ValidationError:
                 counts["unread_dont_care"] += 1
         return kept
+    if key == "annotations":
+        _defer(records, base, {} if bad is None else bad)
     fields = [name for (k, name) in _COUNT_OF if k == key]
     for record in records:
         for name in fields:
