@@ -10,7 +10,7 @@ says, in words, which settings differ and what each does to the numbers
 
 import numpy as np
 
-from . import json_file
+from . import effects, json_file
 from .errors import InputError
 from .protocols import BEST_OVERLAP, get_protocol
 from .version import ENGINE_VERSION
@@ -139,45 +139,6 @@ def annotate(result, truth, predictions, records, protocol):
     return result
 
 
-#: What a difference in each setting does to the numbers, in words.
-EFFECTS = {
-    "name": "a different protocol",
-    "version": "a revised version of the protocol: its rules changed (see its description)",
-    "matching": "how detections claim boxes; best overlap turns a detection whose best box "
-    "is taken into a false positive where greedy matching would let it take the next box, "
-    "so it can give lower AP where objects crowd together",
-    "iou_thresholds": "the IoU thresholds averaged over; stricter thresholds demand tighter "
-    "boxes, and AP over 0.50:0.95 is usually far below AP at 0.50",
-    "class_iou_thresholds": "the IoU a detection needs, per class; a class at 0.7 instead of "
-    "0.5 gets lower AP and recall",
-    "recall_sampling": "where precision is sampled along recall; fewer points sample the "
-    "curve more coarsely, and a point at recall 0 (which any correct top detection fills) "
-    "raises AP",
-    "interpolation": "how the precision curve becomes one number",
-    "precision_epsilon": "a tiny term in precision = TP / (TP + FP + epsilon): differences "
-    "of 1-2 units in the last place",
-    "detection_cap": "detections kept per image and class; a lower cap drops low-scored "
-    "detections and lowers recall",
-    "tie_order": "the order of tied scores across images; it moves AP only when scores tie",
-    "zero_id": "whether a detection matched to the box of annotation id 0 counts as a true "
-    "positive; it moves the numbers only of a split that has such a box",
-    "difficult": "whether boxes flagged difficult are left out of the count (neither found "
-    "nor missed) or scored as any other box; it moves the numbers only of a split with "
-    "such flags, and leaving them out usually raises recall and AP",
-    "pixel_offset": "the +1 pixel convention makes every box one pixel larger each way, "
-    "raising the IoU of small boxes, so small objects match more easily",
-    "box_policy": "what happens to boxes leaving the frame; clipping changes the IoU of "
-    "overhanging predictions (often raising it), reject refuses such files",
-    "area_source": "which area sorts ground truth into size buckets; it moves the "
-    "small/medium/large numbers",
-    "size_ranges": "the size bucket bounds; they move the small/medium/large numbers",
-    "miss_rate": "how the log-average miss rate is read off the curve",
-    "operating_point": "how operating points are chosen",
-    "averaged_classes": "the mean runs over different classes, so it is not the same average",
-    "absent_classes": "different classes had no (counted) ground truth and were left out",
-}
-
-
 def _load(path):
     result = json_file.read(path, "a JSON result")
     if not isinstance(result, dict) or not isinstance(result.get("protocol_record"), dict):
@@ -212,11 +173,9 @@ def differences(a, b):
             )
         )
     ra, rb = a["protocol_record"], b["protocol_record"]
-    for key in sorted(
-        set(ra) | set(rb), key=lambda k: list(EFFECTS).index(k) if k in EFFECTS else 99
-    ):
+    for key in sorted(set(ra) | set(rb), key=effects.order):
         if not _same(ra.get(key), rb.get(key)):
-            out.append((key, ra.get(key), rb.get(key), EFFECTS.get(key, "a different setting")))
+            out.append((key, ra.get(key), rb.get(key), effects.effect(key, ra, rb)))
     return out
 
 

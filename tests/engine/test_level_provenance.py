@@ -103,3 +103,49 @@ def test_explain_between_kitti2d_and_coco_names_the_differences(road, files, cap
     assert "how detections claim boxes" in out
     assert main(["explain", str(a), str(a)]) == 0
     assert "same protocol" in capsys.readouterr().out
+
+
+def _effects(out):
+    """{setting: its effect line} of an ``explain`` text."""
+    blocks = out.split("\n\n")[1:]
+    return {b.splitlines()[0][2:]: b.splitlines()[3].strip() for b in blocks}
+
+
+def test_explain_between_miss_rate_readings_speaks_of_miss_rate(road, files, capsys):
+    """The toolbox's and the city-scale code's readings differ in FPPI points, clamp, cap
+    and empty budget: each effect is said in miss-rate terms (FPPI, log-average), never
+    in AP's (precision along recall)."""
+    gt, dt = road
+    a = files.write("toolbox.json", _score(gt, dt, capsys, "miss-rate"))
+    b = files.write("city.json", _score(gt, dt, capsys, "miss-rate-cityscale"))
+    assert main(["explain", str(a), str(b)]) == 0
+    effects = _effects(capsys.readouterr().out)
+    for setting in ("recall sampling", "interpolation", "detection cap", "fppi points", "clamp"):
+        assert setting in effects, setting
+    assert "FPPI" in effects["recall sampling"] and "miss rate" in effects["interpolation"]
+    assert "log-average" in effects["clamp"] and "1 (toolbox)" in effects["empty budget"]
+    for setting, words in effects.items():
+        assert "AP" not in words.split() and "precision" not in words, (setting, words)
+        assert words != "a different setting.", setting
+
+
+def test_explain_between_ap_and_miss_rate_says_the_measures_differ(road, files, capsys):
+    gt, dt = road
+    a = files.write("coco.json", _score(gt, dt, capsys, "coco"))
+    b = files.write("mr.json", _score(gt, dt, capsys, "miss-rate"))
+    assert main(["explain", str(a), str(b)]) == 0
+    effects = _effects(capsys.readouterr().out)
+    assert list(effects)[:3] == ["name", "version", "metric"]  # the measure comes early
+    assert effects["version"] == "the versions of two different protocols (see name)."
+    assert effects["metric"].startswith("a different measure: AP (higher is better)")
+
+
+def test_explain_between_kitti_and_voc07_speaks_of_the_devkits_sampling(road, files, capsys):
+    gt, dt = road
+    a = files.write("kitti.json", _score(gt, dt, capsys, "kitti2d"))
+    b = files.write("voc07.json", _score(gt, dt, capsys, "voc07"))
+    assert main(["explain", str(a), str(b)]) == 0
+    effects = _effects(capsys.readouterr().out)
+    assert "recall steps of 1/40" in effects["recall sampling"]
+    assert effects["size ranges"].startswith("levels have no size buckets")
+    assert all(words != "a different setting." for words in effects.values()), effects
