@@ -740,3 +740,30 @@ def test_syntax_error_in_a_later_slice_names_its_line_and_column(files, monkeypa
     column = lines[150].index("0.5") + 1  # where the colon should be
     with pytest.raises(InputError, match=rf"not valid JSON: .* at line 152, column {column}"):
         load_predictions(files.write("p.json", text), _truth(files))
+
+
+@pytest.mark.parametrize("where", ["truth", "predictions"])
+def test_a_lone_surrogate_escape_is_named_as_such_not_as_truncation(tmp_path, where):
+    """msgspec calls a string holding ``\\ud800`` alone "truncated"; the file is complete,
+    so the message says what is wrong and where (Python's json reads it into a string no
+    UTF-8 file can hold: a known deviation, refused)."""
+    split = {
+        "images": [{"id": 1}],
+        "categories": [{"id": 1, "name": "car"}],
+        "annotations": [{"id": 1, "image_id": 1, "category_id": 1, "bbox": [0, 0, 9, 9]}],
+    }
+    detections = [{"image_id": 1, "category_id": 1, "bbox": [0, 0, 9, 9], "score": 0.5}]
+    gt, dt = tmp_path / "gt.json", tmp_path / "dt.json"
+    gt.write_text(json.dumps(split))
+    dt.write_text(json.dumps(detections))
+    target = gt if where == "truth" else dt
+    text = target.read_text()
+    end = "9]}" if where == "truth" else "0.5}"  # the last key of the last record
+    for broken in (
+        text.replace('"bbox"', '"note": "\\ud800", "bbox"', 1),
+        text.replace(end, end[:-1] + ', "note": "\\ud800"}'),
+    ):
+        target.write_text(broken)
+        with pytest.raises(InputError, match=r"not valid JSON: .* at line 1, column") as caught:
+            load_predictions(dt, load_truth(gt))
+        assert "truncated" not in str(caught.value)

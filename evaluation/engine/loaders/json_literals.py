@@ -61,6 +61,42 @@ def nesting(data):
     ), at
 
 
+_SURROGATE = re.compile(rb"\\u[dD]([89a-fA-F])[0-9a-fA-F]{2}")
+
+
+def lone_surrogate(data):
+    """Byte offset of the first escape of a UTF-16 surrogate without its partner
+    (``\\ud800`` alone), or None. msgspec calls such text "truncated"; Python's json
+    reads it into a string no UTF-8 file can hold, so it is refused here, located."""
+    data = bytes(data)
+    paired_at = -1
+    for m in _SURROGATE.finditer(data):
+        start = m.start()
+        slashes = len(data[:start]) - len(data[:start].rstrip(b"\\"))
+        if slashes % 2 or start == paired_at:  # an escaped backslash, or a pair's 2nd
+            continue
+        high = m[1] in b"89abAB"
+        low_next = _SURROGATE.match(data, m.end())
+        if high and low_next and low_next[1] not in b"89abAB":
+            paired_at = m.end()
+            continue
+        return start
+    return None
+
+
+def _surrogate_error(error, data):
+    """msgspec's "truncated" for a lone surrogate escape, said as what it is."""
+    if "truncated" not in str(error):
+        return error
+    at = lone_surrogate(data)
+    if at is None:
+        return error
+    return msgspec.DecodeError(
+        "JSON is malformed: a lone UTF-16 surrogate escape in a string, which no UTF-8 "
+        f"text can hold (byte {at})"
+    )
+
+
 def has_literal(data):
     """Whether ``data`` may hold a literal (cheap: a substring test)."""
     data = bytes(data)
@@ -77,10 +113,13 @@ def check_syntax(data):
     try:
         try:
             msgspec.json.decode(data, type=msgspec.Raw)
-        except msgspec.DecodeError:
+        except msgspec.DecodeError as e:
             if not has_literal(data):
-                raise
-            msgspec.json.decode(masked(data), type=msgspec.Raw)
+                raise _surrogate_error(e, data) from None
+            try:
+                msgspec.json.decode(masked(data), type=msgspec.Raw)
+            except msgspec.DecodeError as masked_error:
+                raise _surrogate_error(masked_error, data) from None
     except RecursionError:
         raise too_deep(data) from None
 
@@ -107,7 +146,7 @@ def _decode(data, type):
         if isinstance(e, msgspec.ValidationError) and not _out_of_range(e):
             raise
         if not (_out_of_range(e) or has_literal(data)):
-            raise
+            raise _surrogate_error(e, data) from None
         check_syntax(data)  # another syntax error: raised at its own position
         try:
             value = json.loads(bytes(data))

@@ -94,10 +94,13 @@ def crowd_value(value):
     ``_prepare`` ignores the box when the value is truthy, ``computeIoU`` passes
     ``int(iscrowd)`` as the crowd flag. Text ``int`` reads (``"1"``, ``" 2 "``) is that
     crowd flag, ``"0"`` an ignored regular box (truthy text, crowd 0: the number 0.5
-    here); null and ``""`` are falsy (0); other text, which makes ``int`` raise there
-    whenever its image and class are evaluated, an ignored regular box."""
-    if value is None or value == "":
+    here); null, ``""`` and empty arrays or objects are falsy (0); other text, arrays and
+    objects, which make ``int`` raise there whenever their image and class are
+    evaluated, an ignored regular box."""
+    if not value:  # null, "", [] and {}: falsy, as in _prepare
         return 0
+    if type(value) is not str:  # an array or object: truthy, int() raises there
+        return 0.5
     try:
         number = int(value)
     except ValueError:
