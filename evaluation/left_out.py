@@ -27,64 +27,52 @@ def _plural(n, one, many):
     return f"{n} {one if n == 1 else many}"
 
 
+#: Each count of a split's reading, as (count, what one is, what many are, the rest of
+#: its line). Lines follow this order; a zero count makes none.
+_ANNOTATION_LINES = (
+    ("annotations_of_unlisted_images", "annotation", "annotations",
+     "of images the file does not list left out (never scored, as in pycocotools)"),
+    ("annotations_of_unlisted_categories", "annotation", "annotations",
+     "of categories the file does not list left out (never scored, as in pycocotools)"),
+    ("duplicate_id_copies", "annotation", "annotations",
+     "with a repeated id scored as a copy of the last annotation with that id (as "
+     "pycocotools' index does)"),
+    ("duplicate_image_entries", "entry", "entries",
+     "of image ids listed more than once left out: each image is its last entry (as "
+     "pycocotools' index keeps it)"),
+    ("duplicate_category_entries", "entry", "entries",
+     "of category ids listed more than once left out: each category is its last entry "
+     "(as pycocotools' index keeps it)"),
+    ("unread_image_sizes", "image width or height", "image widths or heights",
+     "of a type the field cannot hold left unread (pycocotools never reads them)"),
+    ("unread_image_tags", "image tag list", "image tag lists",
+     "of a type the field cannot hold left unread (pycocotools never reads them)"),
+    ("unread_category_names", "category name", "category names",
+     "of a type the field cannot hold left unread (pycocotools never reads them)"),
+    ("unread_attributes", "box attribute", "box attributes",
+     "(difficult, ignore, occlusion, truncation, visibility) of a type or value the field "
+     "cannot hold left unread (pycocotools never reads them)"),
+    ("unread_dont_care", "don't-care region", "don't-care regions",
+     "that cannot be read left out (pycocotools never reads them)"),
+    ("iscrowd_text_or_null", "iscrowd value", "iscrowd values",
+     'given as text or null read as pycocotools reads them ("1" a crowd region, "0" an '
+     "ignored box)"),
+    ("categories_renamed", "category", "categories",
+     'sharing a name named with their ids ("car (id 3)"): per-class numbers are kept by '
+     "name"),
+)  # fmt: skip
+
+
 def annotation_lines(counts):
-    """Lines for a split's ``annotations_left_out`` (or a result's truth counts): the
-    annotations of unlisted images, of unlisted categories, and the copies a repeated
-    annotation id made (each an empty list when none)."""
+    """Lines for a split's ``annotations_left_out`` (or a result's truth counts): what
+    the reference reading left out or read its own way (``_ANNOTATION_LINES``; an empty
+    list when nothing)."""
     counts = counts or {}
     lines = []
-    images = int(counts.get("annotations_of_unlisted_images", 0))
-    if images:
-        lines.append(
-            f"{_plural(images, 'annotation', 'annotations')} of images the file does not "
-            "list left out (never scored, as in pycocotools)"
-        )
-    categories = int(counts.get("annotations_of_unlisted_categories", 0))
-    if categories:
-        lines.append(
-            f"{_plural(categories, 'annotation', 'annotations')} of categories the file "
-            "does not list left out (never scored, as in pycocotools)"
-        )
-    copies = int(counts.get("duplicate_id_copies", 0))
-    if copies:
-        lines.append(
-            f"{_plural(copies, 'annotation', 'annotations')} with a repeated id scored as "
-            "a copy of the last annotation with that id (as pycocotools' index does)"
-        )
-    for key, what in (("duplicate_image_entries", "image"), ("duplicate_category_entries",
-                                                               "category")):  # fmt: skip
+    for key, one, many, rest in _ANNOTATION_LINES:
         n = int(counts.get(key, 0))
         if n:
-            lines.append(
-                f"{_plural(n, 'entry', 'entries')} of {what} ids listed more than once left "
-                f"out: each {what} is its last entry (as pycocotools' index keeps it)"
-            )
-    unread = {
-        "unread_image_sizes": "image widths or heights",
-        "unread_image_tags": "image tag lists",
-        "unread_category_names": "category names",
-        "unread_attributes": "box attributes (difficult, occlusion, truncation, visibility)",
-        "unread_dont_care": "don't-care regions",
-    }
-    for key, what in unread.items():
-        n = int(counts.get(key, 0))
-        if n:
-            lines.append(
-                f"{n} {what} of a type the field cannot hold left unread (pycocotools never "
-                "reads them)"
-            )
-    text_crowd = int(counts.get("iscrowd_text_or_null", 0))
-    if text_crowd:
-        lines.append(
-            f"{_plural(text_crowd, 'iscrowd value', 'iscrowd values')} given as text or null "
-            'read as pycocotools reads them ("1" a crowd region, "0" an ignored box)'
-        )
-    renamed = int(counts.get("categories_renamed", 0))
-    if renamed:
-        lines.append(
-            f"{_plural(renamed, 'category', 'categories')} sharing a name named with "
-            'their ids ("car (id 3)"): per-class numbers are kept by name'
-        )
+            lines.append(f"{_plural(n, one, many)} {rest}")
     return lines
 
 
