@@ -560,9 +560,48 @@ def test_bad_boxes_in_annotations_pycocotools_never_scores_are_left_out(tmp_path
     del split["annotations"][3]["bbox"]
     split["annotations"][0]["bbox"] = None  # taken over by the last annotation of id 1
     _compare(tmp_path, split, [_det(1, A, 0.9), _det(2, B, 0.8), _det(2, A, 0.7)])
-    split["annotations"][1]["bbox"] = [1, 2, "3", 4]
+    split["annotations"][1]["bbox"] = [1, 2, "three", 4]
     (tmp_path / "gt.json").write_text(json.dumps(split))
     with pytest.raises(InputError, match=r"annotations\[1\]: field 'bbox': must be 4 numbers"):
         load_truth(tmp_path / "gt.json")
     with pytest.raises(InputError, match=r"annotations\[0\]: field 'bbox'"):
         load_truth(tmp_path / "gt.json", annotations="strict")
+
+
+def test_booleans_and_numeric_text_where_pycocotools_does_arithmetic(tmp_path):
+    """pycocotools 2.0.11 computes with what it is given: a box of booleans (``True`` is
+    1), a ground-truth box of numeric text (numpy reads it as doubles in
+    ``computeIoU``), an area of ``true`` or of an integer beyond float64 (outside every
+    size range), a boolean score. Read alike here, equal numbers. A detection of a class
+    the split does not list is never read for its score there: a text or missing score
+    on it is dropped with it; on a listed class it is refused, naming the record."""
+    huge = 10**400
+    split = _split(
+        [
+            {"id": 1, "image_id": 1, "category_id": 1, "bbox": [10, 10, 20, True]},
+            {"id": 2, "image_id": 1, "category_id": 1, "bbox": B},
+            {"id": 3, "image_id": 2, "category_id": 1, "bbox": A, "area": True},
+            {"id": 4, "image_id": 2, "category_id": 2, "bbox": B, "area": 0},
+        ]
+    )
+    split["annotations"][3]["area"] = huge
+    split["annotations"][1]["bbox"] = ["50", "50", "20", "20"]  # area given: 400
+    detections = [
+        _det(1, [10, 10, 20, True], True),
+        _det(1, B, 0.8),
+        _det(2, A, 0.7),
+        _det(2, B, 0.6, cat=2),
+        _det(2, B, "high", cat=9),
+        {"image_id": 2, "category_id": 9, "bbox": A},
+    ]
+    ours, _ = _compare(tmp_path, split, detections)
+    assert ours["counts"]["dropped_predictions"] == 2
+    detections.append(_det(2, A, None))
+    (tmp_path / "dt.json").write_text(json.dumps(detections))
+    truth = load_truth(tmp_path / "truth.json")
+    with pytest.raises(InputError, match=r"record 6: field 'score': missing or not a number"):
+        load_predictions(tmp_path / "dt.json", truth)
+    detections[-1] = _det(2, ["1", 2, 3, 4], 0.5)  # loadRes does arithmetic on it
+    (tmp_path / "dt.json").write_text(json.dumps(detections))
+    with pytest.raises(InputError, match=r"record 6: field 'bbox': must be 4 numbers"):
+        load_predictions(tmp_path / "dt.json", truth)

@@ -89,7 +89,7 @@ def _with(**changes):
         ),
         (
             _with(**{"images.0.id": float("nan")}),
-            r"split\.json: images\[0\]: field 'id': an id cannot be NaN",
+            r"split\.json: images\[0\]: field 'id': image ids cannot be NaN",
         ),
         (
             {"images": [], "annotations": [], "categories": []},
@@ -134,11 +134,11 @@ def test_truth_boxes_may_overhang_by_a_pixel(files):
         ),
         (
             [DET, {**DET, "score": "high"}],
-            r"predictions\.json: record 1: field 'score': expected 'float', got 'str'",
+            r"predictions\.json: record 1: field 'score': missing or not a number",
         ),
         (
             [DET, {k: v for k, v in DET.items() if k != "score"}],
-            r"predictions\.json: record 1: field 'score': missing required field",
+            r"predictions\.json: record 1: field 'score': missing or not a number",
         ),
         (
             [DET, DET, {**DET, "image_id": 42}],
@@ -306,10 +306,10 @@ def test_a_late_type_error_in_a_large_predictions_file_builds_no_columns(files, 
     built = []
     columns = coco_json._columns
     monkeypatch.setattr(coco_json, "_columns", lambda *a: built.append(1) or columns(*a))
-    path = files.write("predictions.json", [DET] * 300 + [{**DET, "score": "high"}])
-    with pytest.raises(InputError, match=r"record 300: field 'score'"):
+    path = files.write("predictions.json", [DET] * 300 + [{**DET, "bbox": "high"}])
+    with pytest.raises(InputError, match=r"record 300: field 'bbox'"):
         load_predictions(path, _truth(files))
-    assert built == []
+    assert built == []  # (a bad score waits for its class: pycocotools reads it only then)
 
 
 def test_error_in_a_later_slice_names_the_absolute_record(files, monkeypatch):
@@ -694,7 +694,9 @@ def test_a_truncated_predictions_file_is_read_in_bounded_slices(files, monkeypat
     monkeypatch.setattr(coco_json, "CHUNK_BYTES", 1024)
     pieces = []
     real = coco_json._decode_slice
-    monkeypatch.setattr(coco_json, "_decode_slice", lambda p: pieces.append(len(p)) or real(p))
+    monkeypatch.setattr(
+        coco_json, "_decode_slice", lambda p, *a: pieces.append(len(p)) or real(p, *a)
+    )
     monkeypatch.setattr(coco_json, "_columns", lambda *a: pytest.fail("columns were built"))
     text = json.dumps([DET] * 4000)
     path = files.write("p.json", text[: len(text) - 40])

@@ -124,7 +124,7 @@ def test_a_real_process_prints_no_traceback(inputs, files):
         text=True,
     )
     assert proc.returncode == 2
-    assert "bad.json: record 0: field 'bbox': expected 'array' of length 4" in proc.stderr
+    assert "bad.json: record 0: field 'bbox': must be 4 numbers [x, y, w, h]" in proc.stderr
     assert "Traceback" not in proc.stderr
 
 

@@ -134,7 +134,7 @@ def test_a_pipeline_gates_on_the_verdict(
         "1.3", "--split", "bay-night", "--predictions", _write(tmp_path / "bad.json", bad)
     )
     assert code == 2, out + err
-    assert "bad.json: record 4: field 'bbox': expected 'array' of length 4" in err
+    assert "bad.json: record 4: field 'bbox': must be 4 numbers [x, y, w, h]" in err
 
     # status, compare and report read the same server.
     code, out, _ = run("status", *connect, "--detector", "Forward camera", "1.1")

@@ -141,21 +141,13 @@ def _as_float(value):
 def whole_ids(path, values, locate, field):
     """``values`` as pycocotools' dicts key them: a float or boolean with a whole value
     is that integer (``1.0`` and ``true`` are the key 1), any other number stays a
-    float, text stays text. NaN is refused naming the record (a known deviation: it
-    equals no id, not even itself, so pycocotools' sorting and lookups of it depend on
-    object identity)."""
+    float (NaN too: a reference to it names nothing; an image or category whose own id
+    is NaN is refused, ``truth_columns._typed_family``), text stays text."""
     if set(map(type, values)) <= _INT_ONLY:  # one C-level pass; the common case
         return values
     out = []
-    for i, v in enumerate(values):
+    for v in values:
         if type(v) is float:
-            if v != v:
-                raise InputError(
-                    path,
-                    "an id cannot be NaN (it equals no id, not even itself)",
-                    record=locate(i),
-                    field=field,
-                )
             out.append(int(v) if v.is_integer() else v)
         else:
             out.append(v if v is None or type(v) is str else int(v))
@@ -576,8 +568,16 @@ def _piece_error(path, error, buf, where, shift):
     return InputError(path, f"not valid JSON: {reason} at line {line}, column {column}")
 
 
-def _decode_slice(piece):
-    return json_literals.decode(piece, list[_Detection])
+def _decode_slice(piece, path="", base=0):
+    """Typed detections of a slice; one whose typed decode fails on a ``bbox`` or
+    ``score`` is decoded again loosely (``unread_fields.normalise_detections``)."""
+    try:
+        return json_literals.decode(piece, list[_Detection])
+    except msgspec.ValidationError as e:
+        if not unread_fields.loose_detection(str(e)):
+            raise
+        loose = json_literals.decode(piece, list[unread_fields.LooseDetection])
+        return unread_fields.normalise_detections(path, loose, base)
 
 
 def _stream(path, f, skip, build=True, wide=False):
@@ -632,7 +632,7 @@ def _stream(path, f, skip, build=True, wide=False):
             saved, buf[cut[0]] = buf[cut[0]], 0x5D  # "]"
         view = memoryview(buf)[:end]
         try:
-            records = _decode_slice(view)
+            records = _decode_slice(view, path, base)
         except msgspec.ValidationError as e:
             raise validation_error(path, e, top_level_list=True, base=base) from None
         except msgspec.DecodeError as e:
@@ -670,7 +670,7 @@ def _check_prefix(path, buf, where, base):
     """Raise the decoding error of buf (which starts with "[") unless it only ends
     early; give up past ``MAX_SLICE_BYTES`` without a record boundary."""
     try:
-        _decode_slice(bytes(buf))
+        _decode_slice(bytes(buf), path, base)
     except msgspec.ValidationError as e:
         raise validation_error(path, e, top_level_list=True, base=base) from None
     except msgspec.DecodeError as e:

@@ -12,7 +12,7 @@ import dataclasses
 
 import numpy as np
 
-from . import checks, coco_json, csv_tables
+from . import checks, coco_json, csv_tables, unread_fields
 from .ids import NULL, NUMBER, TEXT, ids_like, keys_of, typed_keys
 
 #: Formats that can be read a block at a time.
@@ -151,6 +151,14 @@ def resolve(path, truth, raw, policy, unknown_classes, unknown_images):
         kept_rows = np.flatnonzero(found)
         locate_all = locate
         locate = lambda i: locate_all(int(kept_rows[i]))  # noqa: E731
+    checks.fail_at(  # a bad score only on a detection of a class pycocotools evaluates
+        path,
+        unread_fields.bad_scores(score),
+        locate,
+        "score",
+        "missing or not a number (pycocotools reads the score of every detection of a "
+        "class the split lists)",
+    )
     checks.check_boxes(path, boxes, locate, fields["bbox"], policy)
     if policy == "reject":  # else scored as pycocotools does: NaN ranks last
         checks.fail_at(

@@ -33,14 +33,17 @@ def _typed_family(path, cols, defining, refs, locate, what):
         cols[name] = ids_module.typed_keys(cols[name])
     keys = cols[defining]
     marks = np.array([key[0] for key in keys.tolist()], dtype=object)
-    null = np.flatnonzero(marks == ids_module.NULL)
-    if len(null):
-        raise InputError(
-            path,
-            f"{what} ids cannot be null (pycocotools sorts them; null names nothing)",
-            record=locate(int(null[0])),
-            field="id",
-        )
+    for bad, word in (
+        (marks == ids_module.NULL, "null"),
+        (keys == ids_module.NUMBER + "nan", "NaN"),
+    ):
+        if bad.any():
+            raise InputError(
+                path,
+                f"{what} ids cannot be {word} (pycocotools sorts them; {word} names nothing)",
+                record=locate(int(np.flatnonzero(bad)[0])),
+                field="id",
+            )
     mixed = np.flatnonzero(marks != marks[0]) if len(marks) else []
     if len(mixed):
         i = int(mixed[0])

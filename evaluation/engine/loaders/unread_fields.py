@@ -16,11 +16,15 @@ Clean files never come here: a slice of records is decoded with the typed record
 first, and only a slice that fails on one of these fields is decoded again loosely.
 """
 
+import math
 import re
+import struct
 from typing import Any
 
 import msgspec
+import numpy as np
 
+from ..errors import InputError
 from .ids import JSON_ID
 
 #: Counts of values left unread, by what they are.
@@ -136,37 +140,106 @@ def loose_field(key, error_text):
     field this module reads loosely."""
     if key == "dont_care":
         return True
-    missing = re.match(r"^Object missing required field `(\w+)`", error_text)
-    if missing:
-        field = missing[1]
-    else:
-        field = error_text.rsplit("`$", 1)[-1].split("]", 1)[-1].lstrip(".").split("[")[0]
-        field = field.split(".")[0].rstrip("`")
+    field = _field_of(error_text)
     return (key, field) in _COUNT_OF or (key, field) in _DEFERRED
 
 
-def _four_numbers(value):
-    return (
-        isinstance(value, (list, tuple))
-        and len(value) == 4
-        and all(type(v) in (int, float) for v in value)
-    )
+def _field_of(error_text):
+    """The record field a msgspec validation error is about (``$[3].bbox[0]``: bbox)."""
+    missing = re.match(r"^Object missing required field `(\w+)`", error_text)
+    if missing:
+        return missing[1]
+    field = error_text.rsplit("`$", 1)[-1].split("]", 1)[-1].lstrip(".").split("[")[0]
+    return field.split(".")[0].rstrip("`")
+
+
+def as_number(value, text=False):
+    """``value`` as the float Python arithmetic and numpy make of it in pycocotools:
+    a number (an integer beyond float64 is infinite), a boolean (0 or 1), with ``text``
+    a string ``float`` reads (numpy's conversion of a box to doubles); else None."""
+    if type(value) in (int, float, bool):
+        try:
+            return float(value)
+        except OverflowError:
+            return math.inf if value > 0 else -math.inf
+    if text and type(value) is str:
+        try:
+            return float(value)
+        except ValueError:
+            return None
+    return None
+
+
+def _box(value, text):
+    """A box as four floats (``as_number``), or None."""
+    if not isinstance(value, (list, tuple)) or len(value) != 4:
+        return None
+    numbers = [as_number(v, text) for v in value]
+    return None if None in numbers else tuple(numbers)
 
 
 def _defer(records, base, bad):
     """Annotations whose ``bbox`` or ``area`` is not what pycocotools can score: kept
-    with NaN in its place and their error in ``bad`` (row -> (field, message))."""
+    with NaN in its place and their error in ``bad`` (row -> (field, message)). A box
+    of booleans or numeric text (numpy reads it in ``computeIoU``) and an area of a
+    boolean or a huge integer are read as pycocotools compares them."""
     for i, record in enumerate(records):
-        if not _four_numbers(record.bbox):
-            bad.setdefault(
-                base + i, ("bbox", f"must be 4 numbers [x, y, w, h], got {record.bbox!r:.40}")
+        box = _box(record.bbox, text=True)
+        if box is None:
+            message = f"must be 4 numbers [x, y, w, h], got {record.bbox!r:.40}"
+            bad.setdefault(base + i, ("bbox", message))
+            box = (math.nan,) * 4
+        record.bbox = box
+        if record.area is not None:
+            area = as_number(record.area)
+            if area is None:
+                bad.setdefault(base + i, ("area", f"must be a number, got {record.area!r:.40}"))
+            record.area = area
+
+
+#: A detection's score that is missing or not a number, kept as this NaN (its payload
+#: marks it) until its class is known: pycocotools reads only the scores of detections
+#: of the classes it evaluates (``detection_blocks.resolve`` refuses the others).
+BAD_SCORE_BITS = 0x7FF8_0000_0000_0BAD
+BAD_SCORE = struct.unpack("<d", struct.pack("<Q", BAD_SCORE_BITS))[0]
+
+
+class LooseDetection(msgspec.Struct, gc=False):
+    image_id: JSON_ID
+    category_id: JSON_ID
+    bbox: Any = None
+    score: Any = None
+
+
+def loose_detection(error_text):
+    """Whether a typed decode's error is about a detection's ``bbox`` or ``score``."""
+    return _field_of(error_text) in ("bbox", "score")
+
+
+def normalise_detections(path, records, base):
+    """Loosely decoded detections as the typed ones: a box of numbers or booleans as
+    floats (pycocotools' ``loadRes`` does arithmetic on every box: any other is
+    refused, naming the record); a score of a number or boolean as a float, any other
+    (or none) ``BAD_SCORE``."""
+    for i, record in enumerate(records):
+        box = _box(record.bbox, text=False)
+        if box is None:
+            raise InputError(
+                path,
+                f"must be 4 numbers [x, y, w, h], got {record.bbox!r:.40}",
+                record=f"record {base + i}",
+                field="bbox",
             )
-            record.bbox = (float("nan"),) * 4
-        else:
-            record.bbox = tuple(float(v) for v in record.bbox)
-        if record.area is not None and type(record.area) not in (int, float):
-            bad.setdefault(base + i, ("area", f"must be a number, got {record.area!r:.40}"))
-            record.area = None
+        record.bbox = box
+        score = as_number(record.score)
+        record.score = BAD_SCORE if score is None else score
+    return records
+
+
+def bad_scores(score):
+    """Mask of the scores that were missing or not numbers (``BAD_SCORE``)."""
+    score = np.ascontiguousarray(score, np.float64)
+    return np.isnan(score) & (score.view(np.uint64) == BAD_SCORE_BITS)
 
 
 def normalise(key, records, counts, base=0, bad=None):
