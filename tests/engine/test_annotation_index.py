@@ -605,3 +605,30 @@ def test_booleans_and_numeric_text_where_pycocotools_does_arithmetic(tmp_path):
     (tmp_path / "dt.json").write_text(json.dumps(detections))
     with pytest.raises(InputError, match=r"record 6: field 'bbox': must be 4 numbers"):
         load_predictions(tmp_path / "dt.json", truth)
+
+
+@pytest.mark.parametrize(
+    "categories, named",
+    [
+        (  # a renamed name meets one the file gives
+            [{"id": 1, "name": "a"}, {"id": 2, "name": "a"}, {"id": 3, "name": "a (id 1)"}],
+            ["a (id 1) (id 1)", "a (id 2)", "a (id 1) (id 3)"],
+        ),
+        (  # a nameless category is named by its id, which another name repeats
+            [{"id": 1, "name": "car"}, {"id": 2}, {"id": 3, "name": "2"}],
+            ["car", "2 (id 2)", "2 (id 3)"],
+        ),
+    ],
+)
+def test_shared_names_are_told_apart_until_all_differ(tmp_path, categories, named):
+    """pycocotools never reads names, so it scores these files; every class here gets a
+    name of its own, and the numbers are the reference's."""
+    split = _split(
+        [
+            {"id": 1, "image_id": 1, "category_id": 1, "bbox": A},
+            {"id": 2, "image_id": 1, "category_id": 2, "bbox": B},
+        ],
+        categories=categories,
+    )
+    ours, _ = _compare(tmp_path, split, [_det(1, A, 0.9), _det(1, B, 0.8, cat=2)])
+    assert list(ours["per_class"]) == named

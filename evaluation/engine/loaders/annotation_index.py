@@ -130,14 +130,22 @@ def last_entries(cols):
 
 
 def rename_shared_names(names, shown_ids):
-    """Class names with each name two categories share made ``"<name> (id <id>)"``;
-    and how many were renamed."""
-    seen = {}
-    for name in names:
-        seen[name] = seen.get(name, 0) + 1
-    renamed = [f"{name} (id {shown})" if seen[name] > 1 else name
-               for name, shown in zip(names, shown_ids)]  # fmt: skip
-    return renamed, sum(1 for name in names if seen[name] > 1)
+    """Class names with each name two categories share made ``"<name> (id <id>)"``,
+    again until no two are alike (a renamed one may meet a name the file gives, which is
+    then renamed too); and how many were renamed."""
+    names = list(names)
+    renamed = [False] * len(names)
+    for _ in range(len(names)):  # each pass renames at least one name, or stops
+        seen = {}
+        for name in names:
+            seen[name] = seen.get(name, 0) + 1
+        shared = [i for i, name in enumerate(names) if seen[name] > 1]
+        if not shared:
+            break
+        for i in shared:
+            names[i] = f"{names[i]} (id {shown_ids[i]})"
+            renamed[i] = True
+    return names, sum(renamed)
 
 
 def take(cols, rows):
