@@ -19,6 +19,13 @@ def _fast_passwords(settings):
 def _fresh_history_cache():
     """Each test's database starts anew (ids and history stamps may repeat): entries a
     previous test cached in this process are forgotten (every per-process cache)."""
+    forget_process_caches()
+
+
+def forget_process_caches():
+    """Forget every per-process cache keyed by database ids: before each test, and
+    before a module-scoped fixture commits its rows (``committed_for_module``), which
+    runs before the test's own fixtures and may reuse a previous test's ids."""
     from evaluation import image_loo, images, outcomes
     from releases import history_stamps
     from releases.selectors import errors, image_list

@@ -20,6 +20,7 @@ from releases import services
 from releases import tasks as release_tasks
 from releases import triggers as audit_triggers
 
+from ..conftest import forget_process_caches
 from ..engine.synthetic import make_detections, make_split
 
 CLASSES = ["car", "pedestrian", "cyclist"]
@@ -199,6 +200,7 @@ def committed_for_module(django_db_blocker, tmp_path_factory, build):
         patch.setattr(release_tasks.judge, "delay", in_process(release_tasks.judge))
         patch.setattr(release_tasks.notify, "apply_async", in_process_async(release_tasks.notify))
         cache.clear()  # throttle counters
+        forget_process_caches()  # ids a previous test cached by may be reused here
         triggers.install(connection)
         audit_triggers.install(connection)
         try:
