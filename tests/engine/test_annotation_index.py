@@ -632,3 +632,13 @@ def test_shared_names_are_told_apart_until_all_differ(tmp_path, categories, name
     )
     ours, _ = _compare(tmp_path, split, [_det(1, A, 0.9), _det(1, B, 0.8, cat=2)])
     assert list(ours["per_class"]) == named
+
+
+def test_integers_beyond_float64_in_fields_pycocotools_never_reads(tmp_path):
+    """A ``width`` or ``occlusion`` written as a 401-digit integer (Python's json reads
+    it; pycocotools 2.0.11 never looks at either) is read as infinite, not an internal
+    error: equal numbers."""
+    split = _split([{"id": 1, "image_id": 1, "category_id": 1, "bbox": A, "occlusion": 10**400}])
+    split["images"][0]["width"] = 10**400
+    ours, _ = _compare(tmp_path, split, [_det(1, A, 0.9)])
+    assert ours["summary"]["AP50"] == pytest.approx(1.0)

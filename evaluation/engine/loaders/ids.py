@@ -33,7 +33,6 @@ import numpy as np
 INTEGER = re.compile(r"^[+-]?\d+$")
 INT64 = (-(2**63), 2**63 - 1)
 NUMBER, TEXT, NULL = "\x1d", "\x1e", "\x1f"  # the type marks of typed keys
-ID_TYPES = ("", "number", "text", "json")
 #: A COCO JSON id field as decoded: any JSON number, boolean, text or null (a null
 #: reference names nothing, as in pycocotools' dicts).
 JSON_ID = int | float | bool | str | None

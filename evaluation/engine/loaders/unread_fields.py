@@ -89,6 +89,10 @@ LOOSE = {
 }
 
 
+#: Number fields read loosely: an integer beyond float64 among them is infinite.
+_NUMBERS = ("width", "height", "occlusion", "truncation", "visibility")
+
+
 def _number(value):
     return type(value) in (int, float)
 
@@ -116,7 +120,7 @@ def _fits(key, name, value):
     """Whether ``value`` is what the typed record's field holds."""
     if name == "iscrowd":
         return type(value) in (int, float, bool)
-    if name in ("width", "height", "occlusion", "truncation", "visibility"):
+    if name in _NUMBERS:
         return value is None or _number(value)
     if name == "tags":
         return isinstance(value, (list, tuple)) and all(type(t) is str for t in value)
@@ -267,4 +271,6 @@ def normalise(key, records, counts, base=0, bad=None):
                 counts[_COUNT_OF[key, name]] += 1
             elif name in ("difficult", "ignore"):
                 setattr(record, name, bool(value))
+            elif name in _NUMBERS and value is not None:
+                setattr(record, name, as_number(value))
     return records
