@@ -169,7 +169,10 @@ class Command(BaseCommand):
             name = f"{split.name}:{split.revision}"
             if good and name != broken:
                 continue
-            seed = (index + 1) * 1000 + split.pk * 17 + (0 if key == "forward" else 7)
+            # The split's place in the story, not its primary key: a database that held
+            # rows before (its sequences run on) must replay the same story.
+            place = self.split_places[name]
+            seed = (index + 1) * 1000 + place * 17 + (0 if key == "forward" else 7)
             detections = demo.predictions(truth, day, night, jitter, seed)
             bad = not good and name == broken
             if bad:
@@ -190,6 +193,9 @@ class Command(BaseCommand):
             if name == demo.RELABELLED[0]:
                 fixed = demo.relabelled(truth, demo.RELABELLED[2])
                 out.append((self._load(name, demo.RELABELLED[1], fixed), fixed))
+        self.split_places = {
+            f"{split.name}:{split.revision}": place for place, (split, _) in enumerate(out, 1)
+        }
         return out
 
     def _load(self, name, revision, truth):
