@@ -83,6 +83,10 @@ LEVEL_EFFECTS = {
     "their centre before matching: every IoU changes",
     "height_upper": "whether a counted box may reach the setup's upper height bound "
     "(closed) or must stay below it (open): boxes at the bound count or not",
+    "ignore_flags": "which flags of the file make a box an ignore box; a box whose crowd or "
+    "difficult flag is not read counts as a box to find, so missing it raises the miss rate",
+    "evaluated_classes": "which classes are scored: every class, or only the category of "
+    "id 1 as the city-scale code does; the setups' numbers run over different classes",
 }
 
 #: Miss-rate words for settings ``EFFECTS`` describes in AP terms.

@@ -13,7 +13,12 @@ from dataclasses import asdict
 import numpy as np
 
 from .difficulty import DIFFICULTY_PRESETS, N_SAMPLE_POINTS, get_difficulty_protocol
-from .pedestrian_setups import MIN_OVERLAP, MISS_RATE_PRESETS, get_miss_rate_protocol
+from .pedestrian_setups import (
+    MIN_OVERLAP,
+    MISS_RATE_PRESETS,
+    category_one,
+    get_miss_rate_protocol,
+)
 from .provenance import counts as result_counts
 from .version import ENGINE_VERSION
 
@@ -69,11 +74,13 @@ def _miss_rate_record(name, truth):
     p = get_miss_rate_protocol(name)
     cap = p.max_detections
     toolbox = p.variant == "toolbox"
+    city = p.variant == "cityscale"
     return {
         **p.record(),
         "matching": "per image, detections by score (stable) take the unmatched regular "
         f"box of greatest IoU >= {MIN_OVERLAP}, else the first ignore box whose "
-        "intersection over the detection's area is >= 0.5 (toolbox bbGt evalRes)",
+        "intersection over the detection's area is >= 0.5 "
+        + ("(city-scale evaluateImg)" if city else "(toolbox bbGt evalRes)"),
         "iou_thresholds": [MIN_OVERLAP],
         "class_iou_thresholds": {c: MIN_OVERLAP for c in truth.classes},
         "recall_sampling": {
@@ -94,8 +101,17 @@ def _miss_rate_record(name, truth):
         "tie_order": "ties in score keep accumulation order: image order, then score "
         "order within the image (stable sort, toolbox compRoc); NaN scores "
         + ("first, as MATLAB's descending sort" if toolbox else "last, as numpy's argsort"),
-        "zero_id": "annotation ids are not read",
-        "difficult": "a box flagged difficult is an ignore box (as crowd and ignore flags)",
+        "zero_id": (
+            "a match with the box of annotation id 0 is no true positive and the box stays "
+            "taken (evaluateImg stores the box's id in dtMatches)"
+            if city
+            else "annotation ids are not read"
+        ),
+        "difficult": (
+            "the difficult flag is not read (the city-scale code has none)"
+            if city
+            else "a box flagged difficult is an ignore box (as crowd and ignore flags)"
+        ),
         "pixel_offset": 0,
         "area_source": {
             "truth": "not read: setups by box height and visibility",
@@ -124,6 +140,9 @@ def level_record(name, truth, predictions, output):
         record = _miss_rate_record(name, truth)
         value_key = "miss_rate"
         evaluated = None
+        if record["variant"] == "cityscale":
+            one = category_one(truth)
+            evaluated = {c.lower() for c, is_one in zip(truth.classes, one) if is_one}
         neighbours = {n for v in record["neighbours"].values() for n in v}
     headline = output["levels"].get(record["headline_level"], {}).get("classes", {})
     averaged, absent = [], {}
@@ -136,7 +155,11 @@ def level_record(name, truth, predictions, output):
         elif c.lower() in neighbours:
             absent[c] = "a neighbouring class: its boxes are ignored, not evaluated"
         elif evaluated is not None and c.lower() not in evaluated:
-            absent[c] = "not a class of the protocol"
+            absent[c] = (
+                "not category id 1: the city-scale code evaluates category id 1 only"
+                if value_key == "miss_rate"
+                else "not a class of the protocol"
+            )
         else:
             absent[c] = "not evaluated"
     record["box_policy"] = predictions.box_policy

@@ -34,11 +34,27 @@ Where the two published implementations differ (``MissRateProtocol.variant``):
 recall of the last point with FPPI <= f, a start point (FPPI -inf, recall 0) making a
 budget no point meets read miss rate 1; clamp at 1e-10; every detection is used.
 
-``cityscale`` (preset ``miss-rate-cityscale``): references rounded to four decimals;
-only each image's top 1,000 detections by score; no clamp (a miss rate of 0 makes the
-LAMR 0); and when no point lies at or below a reference, index -1 reads the *last*
-recall of the curve (the city-scale code's ``np.searchsorted(...) - 1``; a file with no
-counted detection reads recall 0 there).
+``cityscale`` (preset ``miss-rate-cityscale``, ``eval_MR_multisetup.py`` read line by
+line: ``Params``, ``_prepare``, ``evaluateImg``, ``accumulate``, ``summarize``, and its
+``coco.py`` ``loadRes``): references rounded to four decimals; only each image's top
+1,000 detections by score, cut before the height filter; no clamp (a miss rate of 0
+makes the LAMR 0, ``np.exp(np.mean(np.log(...)))``); and when no point lies at or below
+a reference, index -1 reads the *last* recall of the curve (``np.searchsorted(...) -
+1``; a file with no counted detection reads recall 0 there). Also: only the class of
+category id 1 (``accumulate``'s ``catIds = [1]``, ``category_one``); ignore boxes from
+the ignore flag and the setup only (``_prepare`` never reads ``iscrowd``; no
+``difficult``: ``ignore_flags``); a detection matched to the regular box of annotation
+id 0 is a false positive that still takes the box (``dtMatches`` holds the box's id);
+open ends 1e10 (``Params``' ``1e5 ** 2``).
+
+How the project's fields become the city-scale code's inputs (a mapping, not its rule):
+its ``height`` is the box's h; its ``vis_ratio`` is ``visibility`` (1.0 when not given);
+its ``ignore`` is the ``ignore`` key (COCO JSON) or column (CSV); neighbouring labels
+and don't-care regions are category-1 boxes with ``ignore: 1``; its images are the
+split's. Known deviations on input no real file holds: an ``ignore`` strictly between -1
+and 1 is matched here by intersection over the detection's area (the script passes
+``int(ignore) = 0``: plain IoU); a COCO ``iscrowd`` strictly between -1 and 1 shares
+CSV's ``ignore`` column and is an ignore box here.
 
 ``caltech`` (preset ``miss-rate-caltech``): the toolbox's reading plus the box handling
 of its Caltech benchmark script (``dbEval`` ``loadGt``/``loadDt``): every counted box and
@@ -56,7 +72,9 @@ import numpy as np
 from .level_samples import LevelSamples, setup_class, setup_running_counts
 from .operating_point import matlab_descending
 from .pedestrian_setups import (  # noqa: F401  (re-exported: the engine's API)
+    CITYSCALE_CATEGORY,
     CITYSCALE_FPPI_POINTS,
+    CITYSCALE_SETUPS,
     CLAMP,
     CURVE_POINTS,
     HEIGHT_EXPANSION,
@@ -68,7 +86,9 @@ from .pedestrian_setups import (  # noqa: F401  (re-exported: the engine's API)
     SETUPS,
     MissRateProtocol,
     Setup,
+    category_one,
     get_miss_rate_protocol,
+    ignore_flags,
 )
 
 
@@ -90,10 +110,13 @@ def overlaps(det, gt, ignored):
     return out
 
 
-def match_image(oa, ignored):
+def match_image(oa, ignored, void=None):
     """``evalRes`` for one image: ``oa`` rows are detections by score descending,
     columns boxes; ``ignored`` per box. Returns per detection 1 (true positive), -1
-    (ignored) or 0 (false positive)."""
+    (ignored) or 0 (false positive). ``void`` (the city-scale code): per box, whether a
+    match with it is a false positive although the box is taken — its annotation id is
+    0, and ``evaluateImg`` stores the matched box's id in ``dtMatches``, which
+    ``accumulate`` reads as matched only when nonzero."""
     order = [g for g in range(len(ignored)) if not ignored[g]]
     order += [g for g in range(len(ignored)) if ignored[g]]
     matched = [False] * len(ignored)
@@ -110,6 +133,8 @@ def match_image(oa, ignored):
             best, best_g, best_m = row[g], g, (-1 if ignored[g] else 1)
         if best_m == 1:
             matched[best_g] = True
+            if void is not None and void[best_g]:
+                best_m = 0
         out.append(best_m)
     return out
 
@@ -138,7 +163,7 @@ def read_references(tp, fp, n_pos, n_images, protocol):
     miss = 1.0 - reached
     if np.any(miss <= 0):
         return miss, 0.0
-    return miss, float(math.exp(np.mean(np.log(miss))))
+    return miss, float(np.exp(np.mean(np.log(miss))))  # summarize's np.exp, to the bit
 
 
 def curve_points(tp, fp, n_pos, n_images, limit=CURVE_POINTS):
@@ -178,12 +203,15 @@ def _group(index, n):
 
 def _classes(truth, protocol):
     """(class index, [neighbour indices]) for every evaluated class: each class of the
-    split except those that are only a neighbouring label of another present class."""
+    split except those that are only a neighbouring label of another present class;
+    under ``cityscale`` only the class of category id 1 (``category_one``)."""
     lower = [c.lower() for c in truth.classes]
     near_of = {
         k: [lower.index(n) for n in protocol.neighbours.get(c, ()) if n in lower]
         for k, c in enumerate(lower)
     }
+    if protocol.variant == "cityscale":
+        return [(int(k), near_of[int(k)]) for k in np.flatnonzero(category_one(truth))]
     neighbour_only = {j for k, near in near_of.items() for j in near if j != k}
     return [(k, near_of[k]) for k in range(len(lower)) if k not in neighbour_only]
 
@@ -206,7 +234,8 @@ def evaluate_setups_with_samples(truth, predictions, protocol="miss-rate"):
     weighted recomputation at weights of one equals it bit for bit."""
     protocol = get_miss_rate_protocol(protocol)
     n_images = truth.n_images
-    flagged = truth.crowd | truth.ignore | truth.difficult | truth.ignore_key
+    flagged = ignore_flags(truth, protocol)
+    void = truth.zero_id_boxes() if protocol.variant == "cityscale" else None
     height = truth.boxes[:, 3]
     visibility = np.where(np.isnan(truth.visibility), 1.0, truth.visibility)
     det_height = predictions.boxes[:, 3]
@@ -252,6 +281,7 @@ def evaluate_setups_with_samples(truth, predictions, protocol="miss-rate"):
                     protocol,
                     det_boxes,
                     gt_resized,
+                    void,
                 )
             )
     summary = {name: _setup_summary(per_class) for name, per_class in levels.items()}
@@ -266,7 +296,16 @@ def evaluate_setups_with_samples(truth, predictions, protocol="miss-rate"):
 
 
 def _class_result(
-    truth, predictions, scenes, counted, keep, region_by_image, protocol, det_boxes, gt_resized
+    truth,
+    predictions,
+    scenes,
+    counted,
+    keep,
+    region_by_image,
+    protocol,
+    det_boxes,
+    gt_resized,
+    void,
 ):
     n_gt = int(np.count_nonzero(counted))
     scores, outcomes, det_image = [], [], []
@@ -283,7 +322,8 @@ def _class_result(
         boxes = np.concatenate([gt_boxes, regions])
         ignored = np.r_[~counted[g], np.ones(len(regions), bool)]
         oa = overlaps(det_boxes[kept], boxes, ignored)
-        outcomes.extend(match_image(oa.tolist(), ignored.tolist()))
+        box_void = None if void is None else np.r_[void[g], np.zeros(len(regions), bool)]
+        outcomes.extend(match_image(oa.tolist(), ignored.tolist(), box_void))
         scores.extend(predictions.score[kept].tolist())
         det_image.extend([image] * len(kept))
     samples = {
@@ -327,7 +367,7 @@ def setup_counts(truth, protocol="miss-rate"):
     """Counted boxes per setup and evaluated class (the ``n_gt`` of
     ``evaluate_setups``), for a split's page: ``{setup: {class: n}}``."""
     protocol = get_miss_rate_protocol(protocol)
-    flagged = truth.crowd | truth.ignore | truth.difficult | truth.ignore_key
+    flagged = ignore_flags(truth, protocol)
     visibility = np.where(np.isnan(truth.visibility), 1.0, truth.visibility)
     out = {}
     for setup in protocol.setups:

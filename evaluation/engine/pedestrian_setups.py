@@ -4,6 +4,8 @@ the city-scale code (Zhang et al., CVPR 2017) and the toolbox's Caltech script."
 
 from dataclasses import dataclass, field
 
+import numpy as np
+
 from .errors import InputError
 from .operating_point import FPPI_POINTS
 
@@ -50,6 +52,19 @@ SETUPS = (
     Setup("heavy", (50.0, None), (0.20, 0.65)),
     Setup("all", (20.0, None), (0.20, None)),
 )
+#: The city-scale code's ``Params.HtRng`` / ``VisRng``: its open ends are ``1e5 ** 2``
+#: (1e10), so a box taller than 1e10 px is outside and a detection needs h < 1.25e10.
+CITYSCALE_BOUND = 1e5**2
+CITYSCALE_SETUPS = tuple(
+    Setup(
+        s.name,
+        (s.height[0], CITYSCALE_BOUND if s.height[1] is None else s.height[1]),
+        (s.visibility[0], CITYSCALE_BOUND if s.visibility[1] is None else s.visibility[1]),
+    )
+    for s in SETUPS
+)
+#: ``accumulate``'s ``catIds = [1]``: the one category the city-scale code evaluates.
+CITYSCALE_CATEGORY = 1
 
 _NEIGHBOURS = ("person?", "people", "ignore")
 
@@ -98,6 +113,17 @@ class MissRateProtocol:
             "headline_level": self.headline_level,
             "aspect_ratio": self.aspect_ratio,
             "height_upper": "open" if self.height_upper_open else "closed",
+            "ignore_flags": (
+                "the ignore flag only (a COCO JSON annotation's ignore key, a CSV ignore "
+                "column); iscrowd, crowd and difficult not read"
+                if self.variant == "cityscale"
+                else "crowd, ignore and difficult flags"
+            ),
+            "evaluated_classes": (
+                f"category id {CITYSCALE_CATEGORY} only (accumulate's catIds = [1])"
+                if self.variant == "cityscale"
+                else "every class except neighbouring labels"
+            ),
         }
 
 
@@ -111,11 +137,15 @@ MISS_RATE = MissRateProtocol(
 )
 MISS_RATE_CITYSCALE = MissRateProtocol(
     name="miss-rate-cityscale",
-    version=1,
+    version=2,
     description="Log-average miss rate on the same setups as the city-scale benchmark's "
-    "evaluation reads it (Zhang et al., CVPR 2017): FPPI points rounded to four decimals, "
-    "top 1,000 detections per image, no clamp, an empty budget reads the last recall",
+    "evaluation reads it (Zhang et al., CVPR 2017: eval_MR_multisetup.py): category id 1 "
+    "only, ignore boxes from the ignore flag and the setup (iscrowd, difficult not read), "
+    "a match with the box of annotation id 0 a false positive, open ends 1e10, FPPI "
+    "points rounded to four decimals, top 1,000 detections per image, no clamp, an empty "
+    "budget reads the last recall",
     variant="cityscale",
+    setups=CITYSCALE_SETUPS,
     fppi_points=CITYSCALE_FPPI_POINTS,
     max_detections=1000,
 )
@@ -145,3 +175,26 @@ def get_miss_rate_protocol(name_or_protocol):
             f"unknown miss-rate protocol {name_or_protocol!r}; known: "
             f"{', '.join(MISS_RATE_PRESETS)}",
         ) from None
+
+
+def category_one(truth):
+    """Whether each class's id is 1 as Python compares the JSON id with ``accumulate``'s
+    ``catIds = [1]`` (``1``, ``1.0`` and ``true`` are; the text ``"1"`` is not). CSV
+    and label-folder classes are numbered from 1 in the split's class order."""
+    ids = truth.class_ids
+    if ids.dtype.kind in "iu":
+        return ids == CITYSCALE_CATEGORY
+    if truth.class_id_type != "number":
+        return np.zeros(len(ids), bool)
+    return np.array([float(v) == CITYSCALE_CATEGORY for v in ids.tolist()], bool)
+
+
+def ignore_flags(truth, protocol):
+    """Per box, whether a flag of the file makes it an ignore box: the toolbox's
+    reading takes crowd, ignore and difficult flags; the city-scale code reads only an
+    annotation's ``ignore`` key (``_prepare``: ``gt['ignore'] if 'ignore' in gt else
+    0``), never ``iscrowd`` — the ``ignore_key`` of COCO JSON and the ``ignore`` column
+    of CSV (which in COCO JSON holds an ``iscrowd`` strictly between -1 and 1)."""
+    if protocol.variant == "cityscale":
+        return truth.ignore_key | truth.ignore
+    return truth.crowd | truth.ignore | truth.difficult | truth.ignore_key

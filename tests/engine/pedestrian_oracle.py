@@ -2,26 +2,22 @@
 code's logic (not copied): the pedestrian detection toolbox of Dollár et al. (TPAMI
 34(4), 2012) — ``bbGt.m`` ``evalRes``, ``compOas``, ``compRoc`` and ``dbEval.m``
 ``evalAlgs`` / ``plotExps`` — and the city-scale benchmark's Python evaluation (Zhang
-et al., CVPR 2017) — ``eval_MR_multisetup.py`` ``_prepare``, ``evaluateImg``,
-``accumulate``, ``summarize``. Slow, literal, independent of the engine.
+et al., CVPR 2017) — ``eval_MR_multisetup.py`` ``Params``, ``_prepare``, ``computeIoU``
+/ ``iou``, ``evaluateImg``, ``accumulate``, ``summarize`` with ``coco.py``'s ``loadRes``
+(``cityscale_coco``, on the parsed JSON files). Slow, literal, independent of the engine.
 
 A scene is a list of images; an image is ``(gt, dt)`` with ``gt`` rows ``(x, y, w, h,
 visibility, ignore)`` (visibility None = not given; don't-care regions and neighbouring
 labels are rows with ignore 1) and ``dt`` rows ``(x, y, w, h, score)`` in file order.
 """
 
+import copy
 import math
+from collections import defaultdict
 
 import numpy as np
 
 from .oracle import matlab_descending_key
-
-
-def numpy_descending_key(value):
-    """Sort key of ``np.argsort(-scores, kind='mergesort')`` (the city-scale code): NaN
-    last (numpy sorts NaN to the end), larger values first, stable."""
-    return (1, 0.0) if np.isnan(value) else (0, -value)
-
 
 # dbEval exps {name, hr, vr, ar, overlap, filter} and the city-scale HtRng / VisRng
 # (small only in the latter); inf as the toolbox writes it.
@@ -174,59 +170,238 @@ def toolbox(scene, setup, caltech=False):
     return math.exp(np.mean([math.log(max(1e-10, m)) for m in miss])), miss
 
 
-def cityscale(scene, setup, max_det=1000):
-    """(LAMR, miss rate at each reference) as the city-scale ``evaluateImg`` /
-    ``accumulate`` / ``summarize`` compute them (one IoU threshold, 0.5)."""
-    (h_lo, h_hi), _ = SETUPS[setup]
-    images = []
-    for gt, dt in scene:
-        g_rows = [(list(r[:4]), _ignored(r, setup)) for r in gt]
-        gtind = sorted(range(len(g_rows)), key=lambda i: g_rows[i][1])  # mergesort
-        g_rows = [g_rows[i] for i in gtind]
-        dtind = sorted(range(len(dt)), key=lambda i: numpy_descending_key(dt[i][4]))[:max_det]
-        d_rows = [dt[i] for i in dtind]
-        d_rows = [d for d in d_rows if h_lo / FILTER <= d[3] < h_hi * FILTER]
-        ious = comp_oas([d[:4] for d in d_rows], [g[0] for g in g_rows], [g[1] for g in g_rows])
-        gtm = [0] * len(g_rows)
-        dtm = [0] * len(d_rows)
-        dt_ig = [0] * len(d_rows)
-        for dind in range(len(d_rows)):
-            bst_oa, bstg, bstm = min(0.5, 1 - 1e-10), -2, -2
-            for gind in range(len(g_rows)):
-                if gtm[gind] > 0:
-                    continue
-                if bstm != -2 and g_rows[gind][1] == 1:
-                    break
-                if ious[dind][gind] < bst_oa:
-                    continue
-                bst_oa, bstg = ious[dind][gind], gind
-                bstm = 1 if g_rows[gind][1] == 0 else -1
-            if bstg == -2:
+# The city-scale code ---------------------------------------------------------------
+#
+# ``eval_MR_multisetup.py`` (class ``COCOeval``: ``_prepare``, ``evaluate``,
+# ``computeIoU``, ``iou``, ``evaluateImg``, ``accumulate``, ``summarize``; class
+# ``Params``: ``setDetParams``) with the ``loadRes`` of the ``coco.py`` it ships, as
+# ``eval_demo.py`` drives them (``imgIds = sorted(cocoGt.getImgIds())``, one
+# ``evaluate(id_setup)`` / ``accumulate()`` / ``summarize(id_setup)`` per setup). The
+# version read is the one whose ``_prepare`` deep-copies the annotations, so one setup's
+# ignore flags do not carry into the next. Inputs are the files as parsed JSON: the
+# ground truth a dict with ``images``, ``annotations`` (each with the script's keys
+# ``height`` and ``vis_ratio``, optional ``ignore``), ``categories``; the results a list.
+
+HT_RNG = [[50, 1e5**2], [50, 75], [50, 1e5**2], [20, 1e5**2]]  # Params.HtRng
+VIS_RNG = [[0.65, 1e5**2], [0.65, 1e5**2], [0.2, 0.65], [0.2, 1e5**2]]  # Params.VisRng
+SETUP_IDS = {"reasonable": 0, "small": 1, "heavy": 2, "all": 3}  # Params.SetupLbl order
+MAX_DETS = [1000]  # Params.maxDets
+EXP_FILTER = 1.25  # Params.expFilter
+IOU_THRS = [0.5]  # Params.iouThrs
+
+
+def _mergesort(values):
+    """``np.argsort(values, kind='mergesort')`` of a Python list (stable; NaN last)."""
+    return np.argsort(np.asarray(values, np.float64), kind="mergesort").tolist()
+
+
+def load_res(dataset, results):
+    """``coco.py`` ``COCO.loadRes`` for bbox results: each result gets ``area = w*h``,
+    ``height = h`` (the box's own, whatever the file says), ``id`` = its 1-based position
+    in the file and ``iscrowd = 0``. (It indexes ``anns[0]``: an empty list raises.)"""
+    anns = copy.deepcopy(results)
+    image_ids = {im["id"] for im in dataset["images"]}
+    assert {a["image_id"] for a in anns} <= image_ids, "Results do not correspond"
+    for i, ann in enumerate(anns):
+        bb = ann["bbox"]
+        ann["area"] = bb[2] * bb[3]
+        ann["height"] = bb[3]
+        ann["id"] = i + 1
+        ann["iscrowd"] = 0
+    return anns
+
+
+def _by_image_and_category(anns, img_ids, cat_ids):
+    """``getAnnIds(imgIds, catIds)`` then ``loadAnns``: per image in ``img_ids`` order,
+    its annotations in file order, of the listed categories; grouped as ``_prepare``
+    groups them by ``(image_id, category_id)``."""
+    by_image = defaultdict(list)
+    for a in anns:
+        by_image[a["image_id"]].append(a)
+    out = defaultdict(list)
+    for img in img_ids:
+        for a in by_image.get(img, []):
+            if a["category_id"] in cat_ids:
+                out[a["image_id"], a["category_id"]].append(a)
+    return out
+
+
+def _iou(dts, gts, pyiscrowd):
+    """``COCOeval.iou``: per (dt, gt), intersection over union, or over the dt's own
+    area where the gt's ``int(ignore)`` is nonzero; 0 where they do not overlap."""
+    ious = np.zeros((len(dts), len(gts)))
+    for j, gt in enumerate(gts):
+        gx1, gy1 = gt[0], gt[1]
+        gx2, gy2 = gt[0] + gt[2], gt[1] + gt[3]
+        garea = gt[2] * gt[3]
+        for i, dt in enumerate(dts):
+            dx1, dy1 = dt[0], dt[1]
+            dx2, dy2 = dt[0] + dt[2], dt[1] + dt[3]
+            darea = dt[2] * dt[3]
+            unionw = min(dx2, gx2) - max(dx1, gx1)
+            if unionw <= 0:
                 continue
-            dt_ig[dind] = g_rows[bstg][1]
-            dtm[dind] = 1
-            if bstm == 1:
-                gtm[bstg] = 1
-        images.append(([d[4] for d in d_rows], dtm, dt_ig, [g[1] for g in g_rows]))
-    scores = [s for e in images for s in e[0]]
-    inds = sorted(range(len(scores)), key=lambda i: numpy_descending_key(scores[i]))  # mergesort
-    dtm = np.concatenate([e[1] for e in images] + [[]])[inds].tolist() if inds else []
-    dt_ig = np.concatenate([e[2] for e in images] + [[]])[inds].tolist() if inds else []
-    npig = sum(1 for e in images for g in e[3] if g == 0)
-    if npig == 0:
-        return None, None
-    keep = [i for i in range(len(dtm)) if dt_ig[i] == 0]
-    tps = np.cumsum([1 if dtm[i] else 0 for i in keep]).astype(float)
-    fps = np.cumsum([0 if dtm[i] else 1 for i in keep]).astype(float)
-    fppi = fps / len(scene)
-    recall = (tps / npig).tolist()
-    q = [0.0] * len(FPPI_THRS)
-    inds = np.searchsorted(fppi, FPPI_THRS, side="right") - 1
-    try:
-        for ri, pi in enumerate(inds):
-            q[ri] = recall[pi]
-    except IndexError:
-        pass
-    mrs = [1 - v for v in q]
+            unionh = min(dy2, gy2) - max(dy1, gy1)
+            if unionh <= 0:
+                continue
+            t = unionw * unionh
+            unionarea = darea if pyiscrowd[j] else darea + garea - t
+            ious[i, j] = float(t) / unionarea
+    return ious
+
+
+def _evaluate_img(gts, dts, h_rng, max_det):
+    """``COCOeval.evaluateImg`` for one image and category (None when it has neither)."""
+    gt, dt = gts, dts
+    if len(gt) == 0 and len(dt) == 0:
+        return None
+    for g in gt:
+        g["_ignore"] = 1 if g["ignore"] else 0
+    gtind = _mergesort([g["_ignore"] for g in gt])  # ignore last, stable
+    gt = [gt[i] for i in gtind]
+    dtind = _mergesort([-d["score"] for d in dt])
+    dt = [dt[i] for i in dtind[0:max_det]]
+    dt = [d for d in dt if h_rng[0] / EXP_FILTER <= d["height"] < h_rng[1] * EXP_FILTER]
+    if len(dt) > 0:  # computeIoU: its own stable re-sort of dt changes no order
+        ious = _iou(
+            [d["bbox"] for d in dt], [g["bbox"] for g in gt], [int(g["ignore"]) for g in gt]
+        )
+    else:
+        ious = []
+    n_t, n_g, n_d = len(IOU_THRS), len(gt), len(dt)
+    gtm = np.zeros((n_t, n_g))
+    dtm = np.zeros((n_t, n_d))
+    gt_ig = np.array([g["_ignore"] for g in gt])
+    dt_ig = np.zeros((n_t, n_d))
+    if not len(ious) == 0:
+        for tind, t in enumerate(IOU_THRS):
+            for dind, d in enumerate(dt):
+                bst_oa = min([t, 1 - 1e-10])
+                bstg = -2
+                bstm = -2
+                for gind, _g in enumerate(gt):
+                    if gtm[tind, gind] > 0:
+                        continue
+                    if bstm != -2 and gt_ig[gind] == 1:
+                        break
+                    if ious[dind, gind] < bst_oa:
+                        continue
+                    bst_oa = ious[dind, gind]
+                    bstg = gind
+                    bstm = 1 if gt_ig[gind] == 0 else -1
+                if bstg == -2:
+                    continue
+                dt_ig[tind, dind] = gt_ig[bstg]
+                dtm[tind, dind] = gt[bstg]["id"]  # the box's id: id 0 reads as no match
+                if bstm == 1:
+                    gtm[tind, bstg] = d["id"]
+    return {
+        "dtScores": [d["score"] for d in dt],
+        "dtMatches": dtm,
+        "dtIgnore": dt_ig,
+        "gtIgnore": gt_ig,
+    }
+
+
+def cityscale_coco(dataset, results, id_setup):
+    """``(mean_s, miss rates)`` as ``evaluate(id_setup)``, ``accumulate()`` and
+    ``summarize(id_setup)`` compute them: ``mean_s`` is -1 where ``accumulate`` filled
+    nothing (no image with a box or detection of category 1, or no counted box of it),
+    the miss rates then None."""
+    dts_all = load_res(dataset, results)
+    img_ids = sorted({im["id"] for im in dataset["images"]})  # eval_demo; np.unique
+    cat_ids = sorted({c["id"] for c in dataset["categories"]})
+    # _prepare: deep copies, then the ignore flag
+    gts_all = copy.deepcopy(dataset["annotations"])
+    for gt in gts_all:
+        gt["ignore"] = gt["ignore"] if "ignore" in gt else 0
+        out_of_range = (
+            gt["height"] < HT_RNG[id_setup][0]
+            or gt["height"] > HT_RNG[id_setup][1]
+            or gt["vis_ratio"] < VIS_RNG[id_setup][0]
+            or gt["vis_ratio"] > VIS_RNG[id_setup][1]
+        )
+        gt["ignore"] = 1 if out_of_range else gt["ignore"]
+    gts = _by_image_and_category(gts_all, img_ids, cat_ids)
+    dts = _by_image_and_category(dts_all, img_ids, cat_ids)
+    max_det = MAX_DETS[-1]
+    eval_imgs = [
+        _evaluate_img(gts[img, cat], dts[img, cat], HT_RNG[id_setup], max_det)
+        for cat in cat_ids
+        for img in img_ids
+    ]
+    # accumulate: catIds = [1] hard-coded; k_list are positions of id 1 in catIds
+    n_i = len(img_ids)
+    ys = -np.ones(len(FPPI_THRS))
+    for k0 in [n for n, k in enumerate(cat_ids) if k in {1}]:
+        e_list = [eval_imgs[k0 * n_i + i] for i in range(n_i)]
+        e_list = [e for e in e_list if e is not None]
+        if len(e_list) == 0:
+            continue
+        dt_scores = np.concatenate([e["dtScores"][0:max_det] for e in e_list])
+        inds = np.argsort(-dt_scores, kind="mergesort")
+        dtm = np.concatenate([e["dtMatches"][:, 0:max_det] for e in e_list], axis=1)[:, inds]
+        dt_ig = np.concatenate([e["dtIgnore"][:, 0:max_det] for e in e_list], axis=1)[:, inds]
+        gt_ig = np.concatenate([e["gtIgnore"] for e in e_list])
+        npig = np.count_nonzero(gt_ig == 0)
+        if npig == 0:
+            continue
+        tps = np.logical_and(dtm, np.logical_not(dt_ig))
+        fps = np.logical_and(np.logical_not(dtm), np.logical_not(dt_ig))
+        for t, (tp, fp) in enumerate(zip(tps, fps)):
+            keep = np.where(dt_ig[t] == 0)[0]
+            tp = np.cumsum(tp[keep]).astype(np.float64)
+            fp = np.cumsum(fp[keep]).astype(np.float64)
+            fppi = np.array(fp) / n_i
+            nd = len(tp)
+            recall = (tp / npig).tolist()
+            q = [0.0] * len(FPPI_THRS)
+            for i in range(nd - 1, 0, -1):
+                if recall[i] < recall[i - 1]:
+                    recall[i - 1] = recall[i]
+            pis = np.searchsorted(fppi, FPPI_THRS, side="right") - 1
+            try:
+                for ri, pi in enumerate(pis):
+                    q[ri] = recall[pi]  # pi = -1: the last recall
+            except IndexError:  # no detection left: q stays 0 from here on
+                pass
+            ys = np.array(q)
+    # summarize(iouThr=.5, maxDets=1000)
+    mrs = 1 - ys
+    if len(mrs[mrs < 2]) == 0:
+        return -1, None
     with np.errstate(divide="ignore"):
-        return float(np.exp(np.mean(np.log(mrs)))), mrs
+        mean_s = np.exp(np.mean(np.log(mrs[mrs < 2])))
+    return float(mean_s), mrs.tolist()
+
+
+def scene_dataset(scene):
+    """A scene as the city-scale code's input files: one category (id 1), annotation
+    ids from 1, ``height`` the box's h, ``vis_ratio`` the visibility (1.0 when not
+    given), ``ignore`` the row's flag; results in file order, image by image."""
+    images = [{"id": i + 1} for i in range(len(scene))]
+    annotations, results = [], []
+    for i, (gt, dt) in enumerate(scene, start=1):
+        for r in gt:
+            annotations.append(
+                {
+                    "id": len(annotations) + 1,
+                    "image_id": i,
+                    "category_id": 1,
+                    "bbox": list(r[:4]),
+                    "height": r[3],
+                    "vis_ratio": 1.0 if r[4] is None else r[4],
+                    "ignore": r[5],
+                }
+            )
+        results += [
+            {"image_id": i, "category_id": 1, "bbox": list(d[:4]), "score": d[4]} for d in dt
+        ]
+    return {"images": images, "annotations": annotations, "categories": [{"id": 1}]}, results
+
+
+def cityscale(scene, setup):
+    """(LAMR, miss rate at each reference) of a scene as the city-scale code computes
+    them (``cityscale_coco`` on ``scene_dataset``); (None, None) where it reports -1."""
+    mean_s, mrs = cityscale_coco(*scene_dataset(scene), SETUP_IDS[setup])
+    return (None, None) if mrs is None else (mean_s, mrs)
