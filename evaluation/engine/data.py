@@ -211,6 +211,22 @@ class Predictions:
     box_counts: dict = field(default_factory=dict)  # out of frame, outside, clipped, zero area
     extra: dict = field(default_factory=dict)
     dropped_classes: tuple = ()  # the class keys (as text) of the ``dropped`` records
+    #: Where pycocotools would order integer scores beyond 2**53 otherwise than float64
+    #: (``loaders.exact_scores``): per checked cap, the refusal ``match`` raises under
+    #: the COCO order; empty for a file without such scores.
+    score_conflicts: dict = field(default_factory=dict)
+
+    def score_conflict(self, protocol):
+        """The refusal recorded for ``protocol`` (``InputError`` keywords), or None:
+        only under the COCO order (``tie_order="image"``); a per-image cap other than
+        the checked ones (100, none) takes any recorded conflict (conservative)."""
+        if not self.score_conflicts or protocol.tie_order != "image":
+            return None
+        cap = protocol.max_detections_limit
+        key = "none" if cap is None else str(cap)
+        if key in self.score_conflicts:
+            return self.score_conflicts[key] or None
+        return next((c for c in self.score_conflicts.values() if c), None)
 
     @property
     def clipped(self):

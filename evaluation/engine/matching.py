@@ -21,6 +21,7 @@ import numpy as np
 
 from . import reasons as _reasons
 from .boxes import pair_iou
+from .errors import InputError
 from .protocols import BEST_OVERLAP, get_protocol
 from .records import MatchRecords
 
@@ -133,6 +134,10 @@ def match(truth, predictions, protocol, *, reasons=True):
         computed here too, so nothing downstream needs the predictions again.
     """
     protocol = get_protocol(protocol)
+    conflict = predictions.score_conflict(protocol)
+    if conflict:  # integer scores pycocotools orders otherwise (loaders.exact_scores)
+        where = {k: v for k, v in conflict.items() if k in ("record", "field")}
+        raise InputError(conflict["path"], conflict["message"], **where)
     n_classes = len(truth.classes)
     thresholds = protocol.threshold_table(truth.classes)
     effective = np.minimum(thresholds, 1 - 1e-10)  # pycocotools caps at 1 - 1e-10

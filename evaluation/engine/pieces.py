@@ -16,7 +16,7 @@ import os
 import numpy as np
 
 from .data import Predictions
-from .loaders import detection_blocks, stream_predictions
+from .loaders import detection_blocks, exact_scores, stream_format, stream_predictions
 from .shards import PredictionCounts, save_piece, truth_slice
 
 #: One detection in a spill file: its columns and its position in the whole file's
@@ -63,7 +63,9 @@ def stream_pieces(path, truth, ranges, directory, *, name="piece-{k}.npz", **opt
     detections = [0] * len(ranges)
     totals = {"n": 0, "dropped": 0, "dropped_images": 0, "box_counts": None, "classes": ()}
     policy = options.get("boxes") or truth.box_policy
+    suspects = np.zeros(len(truth.classes), bool)  # classes holding a score >= 2**53
     for block in stream_predictions(path, truth, **options):
+        suspects[block.cls[exact_scores.suspect(block.score)]] = True
         rows = np.empty(len(block.score), SPILL_ROW)
         rows["image"], rows["cls"] = block.image, block.cls
         rows["boxes"], rows["score"] = block.boxes, block.score
@@ -81,6 +83,10 @@ def stream_pieces(path, truth, ranges, directory, *, name="piece-{k}.npz", **opt
         totals["dropped_images"] += block.dropped_images
         totals["box_counts"] = detection_blocks.add_counts(totals["box_counts"], block.box_counts)
         del rows, shard, by_shard
+    conflicts = {}
+    if stream_format(path, options.get("fmt")) == "json":
+        wide = options.get("ids", "any") == "any"
+        conflicts = exact_scores.check(path, truth, np.flatnonzero(suspects), wide)
     whole = Predictions(
         image=np.zeros(0, np.int32),
         cls=np.zeros(0, np.int32),
@@ -93,6 +99,7 @@ def stream_pieces(path, truth, ranges, directory, *, name="piece-{k}.npz", **opt
         box_policy=policy,
         box_counts=totals["box_counts"],
         dropped_classes=totals["classes"],
+        score_conflicts=conflicts,
     )
     paths = []
     for k, (start, stop) in enumerate(ranges):

@@ -18,7 +18,15 @@ import numpy as np
 
 from ..data import Predictions
 from ..errors import InputError
-from . import checks, coco_json, csv_tables, detection_blocks, label_folders, truth_columns
+from . import (
+    checks,
+    coco_json,
+    csv_tables,
+    detection_blocks,
+    exact_scores,
+    label_folders,
+    truth_columns,
+)
 from .annotation_index import ANNOTATION_POLICIES
 from .cache import cached
 from .checks import BOX_POLICIES
@@ -45,6 +53,11 @@ UNKNOWN_IMAGE_POLICIES = ("reject", "drop")
 
 
 FORMATS = ("json", "csv", *label_folders.FORMATS)
+
+
+def stream_format(path, fmt=None):
+    """The format ``stream_predictions`` reads ``path`` as (``fmt`` or detected)."""
+    return _format(path, fmt)
 
 
 def _format(path, fmt):
@@ -193,6 +206,7 @@ def load_predictions(
         "unknown_classes": unknown_classes,
         "ids": ids,
         "schema": CACHE_SCHEMA,
+        "score_conflicts": 1,  # entries from before exact_scores lack the check
     }
     if unknown_images != "reject":  # the default keeps the keys of existing entries
         key["unknown_images"] = unknown_images
@@ -287,6 +301,10 @@ def _read_predictions(
     else:
         raw = detection_blocks.csv_raw(truth, *csv_tables.read_detections(path))
     block = detection_blocks.resolve(path, truth, raw, policy, unknown_classes, unknown_images)
+    conflicts = {}
+    if fmt == "json":
+        classes = np.unique(block.cls[exact_scores.suspect(block.score)])
+        conflicts = exact_scores.check(path, truth, classes, ids == "any")
     return Predictions(
         image=block.image,
         cls=block.cls,
@@ -299,4 +317,5 @@ def _read_predictions(
         box_policy=policy,
         box_counts=block.box_counts,
         dropped_classes=block.dropped_classes,
+        score_conflicts=conflicts,
     )

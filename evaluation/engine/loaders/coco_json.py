@@ -580,9 +580,10 @@ def _decode_slice(piece, path="", base=0):
         return unread_fields.normalise_detections(path, loose, base)
 
 
-def _stream(path, f, skip, build=True, wide=False):
+def _stream(path, f, skip, build=True, wide=False, decode=_decode_slice):
     """Columns of the records of a top-level JSON array, read a few MB at a time
-    (with ``build=False`` only the record counts: a validation pass).
+    (with ``build=False`` only the record counts: a validation pass; ``decode``: how a
+    slice becomes records, ``_decode_slice`` or ``exact_scores``' loose one).
 
     Memory stays bounded by the slice size whatever the file size, also when the
     file turns out to be malformed or truncated: nothing is ever read whole. A slice
@@ -632,7 +633,7 @@ def _stream(path, f, skip, build=True, wide=False):
             saved, buf[cut[0]] = buf[cut[0]], 0x5D  # "]"
         view = memoryview(buf)[:end]
         try:
-            records = _decode_slice(view, path, base)
+            records = decode(view, path, base)
         except msgspec.ValidationError as e:
             raise validation_error(path, e, top_level_list=True, base=base) from None
         except msgspec.DecodeError as e:
@@ -710,13 +711,13 @@ def read_detections(path, wide=False):
     return tuple(np.concatenate(column) for column in zip(*parts))
 
 
-def detection_blocks(path, wide=False):
+def detection_blocks(path, wide=False, decode=_decode_slice):
     """The columns of ``read_detections`` a slice of the file at a time (a few MB),
     in file order: memory follows the slice, not the file."""
     with open(path, "rb") as f:
         skip = text_start(path, f.read(4))
         f.seek(skip)
-        yield from _stream(path, f, skip, wide=wide)
+        yield from _stream(path, f, skip, wide=wide, decode=decode)
 
 
 def empty_columns():
