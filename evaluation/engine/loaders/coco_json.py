@@ -580,16 +580,17 @@ def _decode_slice(piece, path="", base=0):
         return unread_fields.normalise_detections(path, loose, base)
 
 
-def _stream(path, f, skip, build=True, wide=False, decode=_decode_slice):
+def _stream(path, f, skip, build=True, wide=False, decode=None):
     """Columns of the records of a top-level JSON array, read a few MB at a time
     (with ``build=False`` only the record counts: a validation pass; ``decode``: how a
-    slice becomes records, ``_decode_slice`` or ``exact_scores``' loose one).
+    slice becomes records: ``_decode_slice`` unless given, as ``exact_scores``' loose one).
 
     Memory stays bounded by the slice size whatever the file size, also when the
     file turns out to be malformed or truncated: nothing is ever read whole. A slice
     ends after a ``}`` followed by a comma; should that ``}`` sit inside a string or
     a nested object, the slice fails right at its end, and it is simply extended.
     """
+    decode = decode or _decode_slice
     where = _Position(skip)
     buf = f.read(CHUNK_BYTES)
     while buf and not buf.strip():  # leading whitespace
@@ -711,7 +712,7 @@ def read_detections(path, wide=False):
     return tuple(np.concatenate(column) for column in zip(*parts))
 
 
-def detection_blocks(path, wide=False, decode=_decode_slice):
+def detection_blocks(path, wide=False, decode=None):
     """The columns of ``read_detections`` a slice of the file at a time (a few MB),
     in file order: memory follows the slice, not the file."""
     with open(path, "rb") as f:
