@@ -51,10 +51,15 @@ def _loose(collected):
     return decode
 
 
-def _affected_rows(path, truth, classes, wide):
-    """``(image, cls, record, value, float)`` of the scored detections of ``classes``
-    (second, loose read of the file; value: the Python number pycocotools holds)."""
-    collected, rows, base = [], [], 0
+_FLOAT, _INT, _BOOL = 0, 1, 2
+
+
+def _affected(path, truth, classes, wide):
+    """The scored detections of ``classes`` (a second, loose read of the file), as
+    columns ``image``, ``cls``, ``record``, ``score`` (float64), ``kind`` (float, int or
+    bool in the file) and ``big``: record -> the exact Python int of every integer
+    score of magnitude >= 2**53 (the others are exact in float64)."""
+    collected, parts, big, base = [], [], {}, 0
     wanted = np.zeros(len(truth.classes), bool)
     wanted[list(classes)] = True
     for columns in coco_json.detection_blocks(path, wide, decode=_loose(collected)):
@@ -64,68 +69,91 @@ def _affected_rows(path, truth, classes, wide):
         cls, found_c = checks.resolve(path, raw.class_keys, raw.known_classes, raw.locate, "", "")
         keep = np.flatnonzero(found_i & found_c)
         keep = keep[wanted[cls[keep]]]
-        for i in keep.tolist():
-            rows.append((int(image[i]), int(cls[i]), base + i, values[i], float(columns[3][i])))
+        kinds = np.array([_kind(values[i]) for i in keep.tolist()], np.int8)
+        score = columns[3][keep]
+        for i in keep[(kinds == _INT) & suspect(score)].tolist():
+            big[base + i] = values[i]
+        parts.append((image[keep], cls[keep], base + keep, score, kinds))
         base += len(columns[3])
         collected.clear()
-    return rows
+    names = ("image", "cls", "record", "score", "kind")
+    rows = {n: np.concatenate([p[j] for p in parts]) for j, n in enumerate(names)}
+    return rows, big
+
+
+def _kind(value):
+    return _BOOL if type(value) is bool else _INT if type(value) is int else _FLOAT
 
 
 def check(path, truth, classes, wide):
     """``{cap_key: refusal or {}}`` for ``CAPS`` — empty when ``classes`` (the classes
-    holding a ``suspect`` score) is empty — of the JSON detections file at ``path``."""
+    holding a ``suspect`` score) is empty — of the JSON detections file at ``path``.
+    Only a class holding an integer of magnitude >= 2**53 is replayed: without one,
+    every list numpy makes of it ranks as float64 does."""
     if not len(classes):
         return {}
-    by_class = {}
-    for row in _affected_rows(path, truth, classes, wide):
-        by_class.setdefault(row[1], []).append(row)
+    rows, big = _affected(path, truth, classes, wide)
+    replayed = np.unique(rows["cls"][np.isin(rows["record"], list(big))]).tolist()
     conflicts = {}
     for cap in CAPS:
         found = {}
-        for k in sorted(by_class):
-            found = _replay(path, truth, by_class[k], k, cap)
+        for k in replayed:
+            mine = {n: v[rows["cls"] == k] for n, v in rows.items()}
+            found = _replay(path, truth, mine, big, k, cap)
             if found:
                 break
         conflicts["none" if cap is None else str(cap)] = found
     return conflicts
 
 
-def _replay(path, truth, rows, k, cap):
+def _values(rows, big, at):
+    """The Python numbers pycocotools holds for ``rows``' detections ``at``."""
+    out = []
+    for i in at.tolist():
+        record, score, kind = int(rows["record"][i]), float(rows["score"][i]), rows["kind"][i]
+        if record in big:
+            out.append(big[record])
+        else:
+            out.append(bool(score) if kind == _BOOL else int(score) if kind == _INT else score)
+    return out
+
+
+def _replay(path, truth, rows, big, k, cap):
     """The first place pycocotools' order of class ``k`` differs from float64's."""
-    by_image = {}
-    for row in rows:  # file order within an image
-        by_image.setdefault(row[0], []).append(row)
-    with_truth = np.unique(truth.box_image[truth.box_class == k]).tolist()
-    images = sorted(set(by_image) | set(with_truth))  # pycocotools' E: ascending ids
-    theirs_lists, theirs_rows, ours_rows, ours_scores = [], [], [], []
-    for image in images:
-        dets = by_image.get(image, [])
-        theirs = np.argsort([-d[3] for d in dets], kind="mergesort")[:cap].tolist()
-        ours = np.argsort(-np.array([d[4] for d in dets], np.float64), kind="stable")
-        ours = ours[:cap].tolist()
-        if theirs != ours:
-            return _refusal(path, truth, dets, theirs, ours, image, k)
-        theirs_lists.append([dets[i][3] for i in theirs])
-        theirs_rows += [dets[i] for i in theirs]
-        ours_rows += [dets[i] for i in ours]
-        ours_scores += [dets[i][4] for i in ours]
+    by_image = np.argsort(rows["image"], kind="stable")  # file order within an image
+    starts = np.searchsorted(rows["image"][by_image], np.arange(truth.n_images + 1))
+    with_truth = np.unique(truth.box_image[truth.box_class == k])
+    images = np.union1d(np.unique(rows["image"]), with_truth)  # pycocotools' E, in order
+    theirs_lists, joined = [], []
+    for image in images.tolist():
+        dets = by_image[starts[image] : starts[image + 1]]
+        values = _values(rows, big, dets)
+        theirs = np.argsort([-v for v in values], kind="mergesort")[:cap]
+        ours = np.argsort(-rows["score"][dets], kind="stable")[:cap]
+        if not np.array_equal(theirs, ours):
+            return _refusal(path, truth, rows, big, dets[theirs], dets[ours], image, k)
+        theirs_lists.append([values[i] for i in theirs.tolist()])
+        joined.append(dets[theirs])
+    joined = np.concatenate(joined)
     try:
         with np.errstate(all="ignore"):  # pycocotools runs under numpy's defaults
-            scores = np.concatenate(theirs_lists)
-            theirs = np.argsort(-scores, kind="mergesort").tolist()
+            theirs = np.argsort(-np.concatenate(theirs_lists), kind="mergesort")
     except TypeError:  # a boolean class: pycocotools raises, so no order to keep
         return {}
-    ours = np.argsort(-np.array(ours_scores, np.float64), kind="stable").tolist()
-    if theirs != ours:
-        return _refusal(path, truth, theirs_rows, theirs, ours, None, k)
+    ours = np.argsort(-rows["score"][joined], kind="stable")
+    if not np.array_equal(theirs, ours):
+        return _refusal(path, truth, rows, big, joined[theirs], joined[ours], None, k)
     return {}
 
 
-def _refusal(path, truth, dets, theirs, ours, image, k):
-    at = next(i for i, (a, b) in enumerate(zip(theirs, ours)) if a != b)
-    pair = [dets[theirs[at]], dets[ours[at]]]
-    exact = [d for d in pair if type(d[3]) is int and abs(d[3]) >= EXACT_LIMIT]
+def _refusal(path, truth, rows, big, theirs, ours, image, k):
+    """The refusal naming the detection at the first rank where the orders differ."""
+    at = int(np.flatnonzero(theirs != ours)[0])
+    pair = [int(theirs[at]), int(ours[at])]
+    exact = [i for i in pair if int(rows["record"][i]) in big]
     det = (exact or pair)[0]
+    record = int(rows["record"][det])
+    value = _values(rows, big, np.array([det]))[0]
     what = (
         "is an integer beyond 2**53 that pycocotools 2.0.11 orders"
         if exact
@@ -139,10 +167,10 @@ def _refusal(path, truth, dets, theirs, ours, image, k):
     )
     return {
         "path": str(path),
-        "record": f"record {det[2]}",
+        "record": f"record {record}",
         "field": "score",
         "message": (
-            f"score {det[3]!r} {what} "
+            f"score {value!r} {what} "
             f"exactly (numpy keeps Python integers as integers or objects) {where}, where "
             "this engine's float64 scores tie or round it: the COCO-order numbers would "
             "differ from pycocotools', so the file is refused for this protocol (write "
