@@ -32,6 +32,7 @@ from evaluation.engine import (
 )
 from evaluation.engine.loaders import coco_json
 from evaluation.engine.pieces import stream_pieces
+from evaluation.engine.protocols import protocol_from_dict
 from evaluation.engine.scoring import score_records
 
 from .conftest import as_reference, pycocotools_eval
@@ -233,6 +234,20 @@ def test_a_difference_below_the_cap_of_100_leaves_coco_alone(tmp_path):
     assert refused.value.field == "score"
     for name in ("voc", "voc07"):
         assert evaluate(truth, predictions, name)["summary"]
+
+
+def test_custom_protocols_follow_their_tie_order(tmp_path):
+    """A custom protocol under the COCO order with a cap that was not checked (10)
+    takes the recorded conflict (conservative); one based on coco under the file order
+    reads float64 and scores the file."""
+    gt, dt = _beyond_the_cap(tmp_path)
+    truth = load_truth(gt)
+    predictions = load_predictions(dt, truth)
+    capped = protocol_from_dict({"name": "coco-10", "base": "coco", "max_detections": 10})
+    with pytest.raises(InputError, match="record 101"):
+        evaluate(truth, predictions, capped)
+    in_file_order = protocol_from_dict({"name": "coco-file", "base": "coco", "tie_order": "file"})
+    assert evaluate(truth, predictions, in_file_order)["summary"]
 
 
 def _refused(predictions, truth, protocol="coco"):
