@@ -215,6 +215,10 @@ class Predictions:
     #: (``loaders.exact_scores``): per checked cap, the refusal ``match`` raises under
     #: the COCO order; empty for a file without such scores.
     score_conflicts: dict = field(default_factory=dict)
+    #: Each detection's area for size ranges, when the file gives masks (pycocotools'
+    #: ``loadRes`` takes a segmentation's RLE area, ``loaders/mask_results.py``);
+    #: None: w * h of the box.
+    area: np.ndarray = None
 
     def score_conflict(self, protocol):
         """The refusal recorded for ``protocol`` (``InputError`` keywords), or None:

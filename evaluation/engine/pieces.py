@@ -27,6 +27,7 @@ SPILL_ROW = np.dtype(
         ("cls", "<i4"),
         ("boxes", "<f8", (4,)),
         ("score", "<f8"),
+        ("area", "<f8"),  # the mask's area when the file gives masks, else unused
         ("position", "<i8"),
     ]
 )
@@ -62,6 +63,7 @@ def stream_pieces(path, truth, ranges, directory, *, name="piece-{k}.npz", **opt
     spills = [os.path.join(directory, f"spill-{k}.bin") for k in range(len(ranges))]
     detections = [0] * len(ranges)
     totals = {"n": 0, "dropped": 0, "dropped_images": 0, "box_counts": None, "classes": ()}
+    masks = False  # the file is read as masks (every block alike)
     policy = options.get("boxes") or truth.box_policy
     suspects = np.zeros(len(truth.classes), bool)  # classes holding a score >= 2**53
     for block in stream_predictions(path, truth, **options):
@@ -69,6 +71,8 @@ def stream_pieces(path, truth, ranges, directory, *, name="piece-{k}.npz", **opt
         rows = np.empty(len(block.score), SPILL_ROW)
         rows["image"], rows["cls"] = block.image, block.cls
         rows["boxes"], rows["score"] = block.boxes, block.score
+        masks = block.area is not None
+        rows["area"] = block.area if masks else 0.0
         rows["position"] = np.arange(totals["n"], totals["n"] + len(rows), dtype=np.int64)
         shard = np.searchsorted(starts, block.image, side="right") - 1
         by_shard = np.argsort(shard, kind="stable")  # file order within each shard
@@ -110,6 +114,7 @@ def stream_pieces(path, truth, ranges, directory, *, name="piece-{k}.npz", **opt
             cls=np.ascontiguousarray(rows["cls"]),
             boxes=np.ascontiguousarray(rows["boxes"]),
             score=np.ascontiguousarray(rows["score"]),
+            area=np.ascontiguousarray(rows["area"]) if masks else None,
         )
         positions = np.ascontiguousarray(rows["position"])
         del rows

@@ -95,7 +95,7 @@ def protocol_record(protocol, truth, predictions, records, result):
         "area_source": {
             "truth": "the annotation's area when given, else w*h",
             "truth_areas_from_file": area_given,
-            "predictions": "w*h (negative when one side is: outside every bounded range)",
+            "predictions": _prediction_area(predictions),
         },
         "size_ranges": [list(r) for r in protocol.area_ranges],
         "miss_rate": "every detection in accumulation order, last point at or below each "
@@ -104,6 +104,18 @@ def protocol_record(protocol, truth, predictions, records, result):
         "averaged_classes": [c for c in truth.classes if c not in absent],
         "absent_classes": absent,
     }
+
+
+def _prediction_area(predictions):
+    """Where the detections' areas (size ranges) came from."""
+    masks = predictions.box_counts.get("mask_area")
+    if masks is None:
+        return "w*h (negative when one side is: outside every bounded range)"
+    return (
+        f"mask area (RLE) of each result's segmentation ({masks} scored), as pycocotools "
+        "2.0.11 loadRes reads a file whose first result has a segmentation and no bbox; "
+        "a missing bbox is the mask's (rleToBbox)"
+    )
 
 
 def counts(truth, predictions, records):

@@ -93,6 +93,7 @@ def predictions_slice(predictions, start, stop, positions=None):
         cls=predictions.cls[positions],
         boxes=predictions.boxes[positions],
         score=predictions.score[positions],
+        area=None if predictions.area is None else predictions.area[positions],
     )
     return sliced, positions
 

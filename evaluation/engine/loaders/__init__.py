@@ -318,4 +318,5 @@ def _read_predictions(
         box_counts=block.box_counts,
         dropped_classes=block.dropped_classes,
         score_conflicts=conflicts,
+        area=block.area,
     )

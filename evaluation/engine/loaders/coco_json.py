@@ -15,7 +15,7 @@ import msgspec
 import numpy as np
 
 from ..errors import InputError
-from . import json_literals, json_syntax, unread_fields
+from . import json_literals, json_syntax, mask_results, unread_fields
 from .checks import text_start
 from .ids import JSON_ID
 
@@ -568,9 +568,13 @@ def _piece_error(path, error, buf, where, shift):
     return InputError(path, f"not valid JSON: {reason} at line {line}, column {column}")
 
 
-def _decode_slice(piece, path="", base=0):
+def _decode_slice(piece, path="", base=0, mode=mask_results.BOXES):
     """Typed detections of a slice; one whose typed decode fails on a ``bbox`` or
-    ``score`` is decoded again loosely (``unread_fields.normalise_detections``)."""
+    ``score`` is decoded again loosely (``unread_fields.normalise_detections``).
+    Under ``mask_results.MASKS`` (the file's first result has a segmentation and no
+    box) the records of ``mask_results.decode``."""
+    if mode == mask_results.MASKS:
+        return mask_results.decode(piece, path, base)
     try:
         return json_literals.decode(piece, list[_Detection])
     except msgspec.ValidationError as e:
@@ -617,7 +621,7 @@ def _stream(path, f, skip, build=True, wide=False, decode=None):
     # set to "]" for the call and restored, so no slice is ever copied.
     where.advance(buf[:lead])
     buf = bytearray(buf[lead:])
-    base, lowest, eof = 0, 1, False
+    base, lowest, eof, mode = 0, 1, False, None
     while True:
         if eof:
             end = len(buf)  # the rest, closing bracket included
@@ -625,7 +629,7 @@ def _stream(path, f, skip, build=True, wide=False, decode=None):
             cut = _last_cut(buf, lowest)
             if cut is None:
                 if len(buf) > CHUNK_BYTES:  # no record ends here: a real error is reported
-                    _check_prefix(path, buf, where, base)
+                    _check_prefix(path, buf, where, base, mode or mask_results.BOXES)
                 more = f.read(CHUNK_BYTES)
                 eof = not more
                 buf += more
@@ -634,7 +638,8 @@ def _stream(path, f, skip, build=True, wide=False, decode=None):
             saved, buf[cut[0]] = buf[cut[0]], 0x5D  # "]"
         view = memoryview(buf)[:end]
         try:
-            records = decode(view, path, base)
+            mode = mask_results.mode(view) if mode is None else mode
+            records = decode(view, path, base, mode or mask_results.BOXES)
         except msgspec.ValidationError as e:
             raise validation_error(path, e, top_level_list=True, base=base) from None
         except msgspec.DecodeError as e:
@@ -654,7 +659,7 @@ def _stream(path, f, skip, build=True, wide=False, decode=None):
             raise _piece_error(path, e, buf, where, 0) from None
         finally:
             view.release()
-        yield _columns(records, path, base, wide) if build else len(records)
+        yield _block(records, path, base, wide, mode, build)
         if eof:
             return
         base += len(records)
@@ -668,11 +673,25 @@ def _stream(path, f, skip, build=True, wide=False, decode=None):
         buf += more
 
 
-def _check_prefix(path, buf, where, base):
+def _block(records, path, base, wide, mode, build):
+    """A slice's columns (image ids, class ids, boxes, scores, areas: None unless the
+    file is read as masks), or with ``build=False`` its record count (a mask-reading
+    slice is still checked whole)."""
+    if mode != mask_results.MASKS:
+        return (*_columns(records, path, base, wide), None) if build else len(records)
+    boxes, area = mask_results.columns(records, path, base)
+    if not build:
+        return len(records)
+    for record, box in zip(records, boxes.tolist()):
+        record.bbox = box
+    return (*_columns(records, path, base, wide), area)
+
+
+def _check_prefix(path, buf, where, base, mode):
     """Raise the decoding error of buf (which starts with "[") unless it only ends
     early; give up past ``MAX_SLICE_BYTES`` without a record boundary."""
     try:
-        _decode_slice(bytes(buf), path, base)
+        _decode_slice(bytes(buf), path, base, mode)
     except msgspec.ValidationError as e:
         raise validation_error(path, e, top_level_list=True, base=base) from None
     except msgspec.DecodeError as e:
@@ -709,7 +728,7 @@ def read_detections(path, wide=False):
         parts = list(_stream(path, f, skip, wide=wide))
     if not parts:
         return empty_columns()
-    return tuple(np.concatenate(column) for column in zip(*parts))
+    return tuple(None if column[0] is None else np.concatenate(column) for column in zip(*parts))
 
 
 def detection_blocks(path, wide=False, decode=None):
@@ -723,7 +742,7 @@ def detection_blocks(path, wide=False, decode=None):
 
 def empty_columns():
     """The columns of a file without records."""
-    return (np.zeros(0, np.int64), np.zeros(0, np.int64), np.zeros((0, 4)), np.zeros(0))
+    return (np.zeros(0, np.int64), np.zeros(0, np.int64), np.zeros((0, 4)), np.zeros(0), None)
 
 
 def _filled(parts, total):
@@ -732,13 +751,15 @@ def _filled(parts, total):
     columns, at = None, 0
     for part in parts:
         if columns is None:
-            columns = [np.empty((total, *p.shape[1:]), p.dtype) for p in part]
+            columns = [p if p is None else np.empty((total, *p.shape[1:]), p.dtype) for p in part]
         n = len(part[0])
         for i, values in enumerate(part):
+            if values is None:
+                continue
             if values.dtype != columns[i].dtype:
                 columns[i] = columns[i].astype(object)
             columns[i][at : at + n] = values
         at += n
     if columns is None:
         return empty_columns()
-    return tuple(c[:at] for c in columns)
+    return tuple(None if c is None else c[:at] for c in columns)

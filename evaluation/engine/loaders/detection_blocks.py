@@ -33,6 +33,7 @@ class Raw:
     shown: np.ndarray
     locate: object
     fields: dict
+    area: np.ndarray = None  # per detection, for size ranges: None = w * h (the box's)
 
 
 @dataclasses.dataclass
@@ -47,6 +48,7 @@ class Resolved:
     dropped_images: int
     box_counts: dict
     dropped_classes: tuple = ()  # the class keys of ``dropped``, as text (``distinct_keys``)
+    area: np.ndarray = None  # as ``Raw.area``
 
 
 def _key_order(key):
@@ -69,8 +71,9 @@ def _plain(key):
     return key[1:] if key[:1] in (NUMBER, TEXT, NULL) else key
 
 
-def json_raw(truth, image_ids, class_keys, boxes, score, base=0):
-    """A block of a COCO-style results file (records ``base``, ``base + 1``...)."""
+def json_raw(truth, image_ids, class_keys, boxes, score, area=None, base=0):
+    """A block of a COCO-style results file (records ``base``, ``base + 1``...);
+    ``area``: the masks' areas of a file read as masks (``mask_results``)."""
     shown = image_ids
     image_ids, known_images = _json_keys(image_ids, truth.image_ids, truth.image_id_type)
     class_keys, known_classes = _json_keys(class_keys, truth.class_ids, truth.class_id_type)
@@ -84,6 +87,7 @@ def json_raw(truth, image_ids, class_keys, boxes, score, base=0):
         shown,
         lambda i: f"record {base + i}",
         {"image": "image_id", "class": "category_id", "bbox": "bbox"},
+        area,
     )
 
 
@@ -118,6 +122,7 @@ def resolve(path, truth, raw, policy, unknown_classes, unknown_images):
     """``Resolved`` columns of one block (see ``load_predictions`` for the policies);
     an ``InputError`` names the file, the record and the field."""
     image_ids, class_keys, boxes, score = raw.image_ids, raw.class_keys, raw.boxes, raw.score
+    area = raw.area
     locate, fields = raw.locate, raw.fields
     image, found = checks.resolve(path, image_ids, raw.known_images, locate, "", "")
     dropped_images = 0
@@ -130,6 +135,7 @@ def resolve(path, truth, raw, policy, unknown_classes, unknown_images):
             boxes[found],
             score[found],
         )
+        area = None if area is None else area[found]
         locate_read = locate
         locate = lambda i: locate_read(int(rows[i]))  # noqa: E731
     else:
@@ -148,6 +154,7 @@ def resolve(path, truth, raw, policy, unknown_classes, unknown_images):
         dropped = int((~found).sum())
         dropped_classes = distinct_keys(class_keys[~found])
         image, cls, boxes, score = image[found], cls[found], boxes[found], score[found]
+        area = None if area is None else area[found]
         kept_rows = np.flatnonzero(found)
         locate_all = locate
         locate = lambda i: locate_all(int(kept_rows[i]))  # noqa: E731
@@ -184,8 +191,13 @@ def resolve(path, truth, raw, policy, unknown_classes, unknown_images):
         score=score,
         dropped=dropped,
         dropped_images=dropped_images,
-        box_counts={**box_counts, "non_finite_score": int((~np.isfinite(score)).sum())},
+        box_counts={
+            **box_counts,
+            "non_finite_score": int((~np.isfinite(score)).sum()),
+            **({} if area is None else {"mask_area": len(area)}),
+        },
         dropped_classes=dropped_classes,
+        area=area,
     )
 
 

@@ -26,7 +26,7 @@ the record. Where the orders agree the numbers are pycocotools' already.
 
 import numpy as np
 
-from . import checks, coco_json, detection_blocks, json_literals, unread_fields
+from . import checks, coco_json, detection_blocks, json_literals, mask_results, unread_fields
 
 #: Magnitude from which an integer may have no float64 of its own (2**53 + 1 has none).
 EXACT_LIMIT = 2.0**53
@@ -43,7 +43,11 @@ def suspect(score):
 
 
 def _loose(collected):
-    def decode(piece, path="", base=0):
+    def decode(piece, path="", base=0, mode=mask_results.BOXES):
+        if mode == mask_results.MASKS:  # a file read as masks (``mask_results``)
+            loose = json_literals.decode(piece, list[mask_results.LooseMaskDetection])
+            collected.append([r.score for r in loose])
+            return [mask_results.normalise(path, r, base + i) for i, r in enumerate(loose)]
         loose = json_literals.decode(piece, list[unread_fields.LooseDetection])
         collected.append([r.score for r in loose])
         return unread_fields.normalise_detections(path, loose, base)

@@ -1,0 +1,188 @@
+"""Detection results given as compressed RLE masks, read as pycocotools 2.0.11 reads them.
+
+pycocotools' ``COCO.loadRes`` picks one reading for the whole file from its *first*
+result: ``'bbox' in anns[0] and not anns[0]['bbox'] == []`` → every result is a box
+(area w·h); else ``'segmentation' in anns[0]`` → every result's ``area`` is
+``maskUtils.area(segmentation)`` and a result without ``bbox`` gets
+``maskUtils.toBbox(segmentation)``; a result that gives a ``bbox`` keeps it (with the
+mask's area). Under ``iouType='bbox'`` matching reads the box and ``evaluateImg``'s
+size ranges read that area. ``mode`` makes the first choice; ``columns`` the rest
+(area and boxes: ``rle``). Where pycocotools raises (or crashes), the file is refused
+naming record and field; checked by running pycocotools 2.0.11 (``tests/engine/
+test_mask_results.py``).
+"""
+
+import math
+from typing import Any
+
+import msgspec
+import numpy as np
+
+from ..errors import InputError
+from . import json_literals, rle, unread_fields
+from .ids import JSON_ID
+
+BOXES, MASKS = "bbox", "mask"
+_MAX_SIZE = 1 << 64  # ``siz`` (unsigned long) in pycocotools' _mask.pyx
+
+
+class _First(msgspec.Struct, gc=False):
+    bbox: Any = msgspec.UNSET
+    segmentation: Any = msgspec.UNSET
+
+
+class Rle(msgspec.Struct, gc=False):
+    size: tuple[int, int]
+    counts: str
+
+
+class MaskDetection(msgspec.Struct, gc=False):
+    image_id: JSON_ID
+    category_id: JSON_ID
+    score: float
+    segmentation: Rle | msgspec.UnsetType = msgspec.UNSET
+    bbox: tuple[float, float, float, float] | msgspec.UnsetType = msgspec.UNSET
+
+
+class LooseMaskDetection(msgspec.Struct, gc=False):
+    image_id: JSON_ID
+    category_id: JSON_ID
+    score: Any = None
+    segmentation: Any = msgspec.UNSET
+    bbox: Any = msgspec.UNSET
+
+
+def mode(first_slice):
+    """``MASKS`` when the first record of a results array (a slice of it beginning
+    with ``[``, ending after whole records) makes pycocotools read segmentations, else
+    ``BOXES``; None when the slice does not decode (it may end inside a record: the
+    reader takes more, or reports the error)."""
+    try:
+        records = json_literals.decode(first_slice, list[_First])
+    except (msgspec.DecodeError, msgspec.ValidationError, InputError):
+        return None
+    if not records:
+        return BOXES
+    first = records[0]
+    if first.bbox is not msgspec.UNSET and first.bbox != []:
+        return BOXES
+    return MASKS if first.segmentation is not msgspec.UNSET else BOXES
+
+
+def decode(piece, path, base):
+    """Typed mask-reading records of a slice; a slice whose typed decode fails is
+    decoded loosely and each record checked (``normalise``)."""
+    try:
+        return json_literals.decode(piece, list[MaskDetection])
+    except msgspec.ValidationError:
+        loose = json_literals.decode(piece, list[LooseMaskDetection])
+        return [normalise(path, r, base + i) for i, r in enumerate(loose)]
+
+
+def _fail(path, record, field, message):
+    raise InputError(path, message, record=f"record {record}", field=field)
+
+
+def normalise(path, r, at):
+    """One loosely decoded record as a ``MaskDetection``, or an error naming it."""
+    box = r.bbox
+    if box is not msgspec.UNSET:
+        box = unread_fields._box(box, text=True)  # numpy reads it in computeIoU
+        if box is None:
+            _fail(path, at, "bbox", f"must be 4 numbers [x, y, w, h], got {r.bbox!r:.40}")
+    score = unread_fields.as_number(r.score)
+    return MaskDetection(
+        r.image_id,
+        r.category_id,
+        unread_fields.BAD_SCORE if score is None else score,
+        _segmentation(path, r.segmentation, at),
+        box,
+    )
+
+
+def _segmentation(path, seg, at):
+    if seg is msgspec.UNSET:
+        return seg  # refused in ``columns``, with the others
+    if isinstance(seg, list):
+        kind = "polygons" if seg and all(isinstance(p, list) for p in seg) else "a list"
+        _fail(
+            path,
+            at,
+            "segmentation",
+            f"{kind}: the file's first result has a segmentation and no bbox, so "
+            "pycocotools 2.0.11 reads every result as one compressed RLE mask "
+            "({size: [h, w], counts: text}); maskUtils.area raises on this",
+        )
+    if not isinstance(seg, dict):
+        _fail(path, at, "segmentation", f"must be an RLE object {{size, counts}}, got {seg!r:.40}")
+    counts = seg.get("counts", msgspec.UNSET)
+    if isinstance(counts, list):
+        _fail(
+            path,
+            at,
+            "segmentation.counts",
+            "uncompressed RLE (counts as a list of numbers): pycocotools 2.0.11 reads "
+            "only compressed RLE text here (maskUtils.area raises TypeError)",
+        )
+    if not isinstance(counts, str):
+        _fail(path, at, "segmentation.counts", f"must be compressed RLE text, got {counts!r:.40}")
+    size = seg.get("size", msgspec.UNSET)
+    if not isinstance(size, list) or len(size) < 2:
+        _fail(path, at, "segmentation.size", f"must be [height, width], got {size!r:.40}")
+    return Rle((_side(path, size[0], at), _side(path, size[1], at)), counts)
+
+
+def _side(path, value, at):
+    """A size entry as Cython's conversion to ``siz`` reads it: ``int(value)`` of a
+    number or boolean (a float truncated), 0 <= v < 2^64."""
+    if type(value) not in (int, float, bool) or (type(value) is float and not math.isfinite(value)):
+        _fail(path, at, "segmentation.size", f"must be whole numbers, got {value!r:.40}")
+    return int(value)
+
+
+def columns(records, path, base):
+    """``(boxes, area)`` of typed mask-reading records: the given box or the mask's
+    (``rle.to_bbox``), and the mask's area (``rle.area``)."""
+    n = len(records)
+    texts, h, w = [""] * n, np.zeros(n, object), np.zeros(n, object)
+    boxes, given = np.full((n, 4), np.nan), np.zeros(n, bool)
+    for i, r in enumerate(records):
+        seg = r.segmentation
+        if seg is msgspec.UNSET:
+            _fail(
+                path,
+                base + i,
+                "segmentation",
+                "missing: the file's first result has a segmentation and no bbox, so "
+                "pycocotools 2.0.11 reads every result's segmentation (loadRes: KeyError)",
+            )
+        texts[i], (h[i], w[i]) = seg.counts, seg.size
+        if r.bbox is not msgspec.UNSET:
+            boxes[i], given[i] = r.bbox, True
+    bad = np.flatnonzero([not (0 <= v < _MAX_SIZE) for v in np.concatenate([h, w])])
+    if len(bad):
+        i = int(bad[0] % n)
+        _fail(path, base + i, "segmentation.size", f"must be 0..2^64-1, got {[h[i], w[i]]}")
+    h = np.array([v & 0xFFFFFFFF for v in h], np.uint64)
+    w = np.array([v & 0xFFFFFFFF for v in w], np.uint64)
+    values, n_values, unterminated = rle.decode(texts)
+    if unterminated.any():
+        _fail(
+            path,
+            base + int(np.argmax(unterminated)),
+            "segmentation.counts",
+            "the text ends inside a value (its last character says more follow; "
+            "pycocotools would read past the end of the text)",
+        )
+    derive = ~given
+    crash = rle.zero_height(values, n_values, h) & derive
+    if crash.any():
+        _fail(
+            path,
+            base + int(np.argmax(crash)),
+            "segmentation.size",
+            "a height of 0 (modulo 2^32) with foreground: pycocotools 2.0.11's "
+            "maskUtils.toBbox divides by the height and crashes",
+        )
+    boxes[derive] = rle.to_bbox(values, n_values, h, w)[derive]
+    return boxes, rle.area(values, n_values)
