@@ -77,13 +77,47 @@ def test_long_values_shift_as_pycocotools():
     assert rle.area(values, n_values).astype(np.int64).tolist() == expected
 
 
+def _odd_text(rng):
+    """Counts text pycocotools 2.0.11 reads without raising: any characters (non-ASCII
+    ones are several UTF-8 bytes, each read as a C char), a NUL ending it early; the
+    last byte never says more follow (else it reads past the end)."""
+    alphabet = [chr(c) for c in range(33, 127)] + ["é", "ж", "\u20ac", "\x00", "\U0001f600"]
+    text = "".join(rng.choice(alphabet, int(rng.integers(0, 20))))
+    last = text.split("\0", 1)[0].encode()[-1:]
+    return text + "0" if last and (last[0] - 48) & 0x20 else text
+
+
+def test_odd_texts_decode_as_pycocotools():
+    """``rle`` against ``maskUtils.area``/``toBbox`` (pycocotools 2.0.11) on texts of
+    any characters, NULs among them, and odd sizes (extra entries, floats, booleans
+    are its callers' business: here whole heights and widths, 1..2^40)."""
+    rng = np.random.default_rng(7)
+    objs = []
+    for _ in range(2000):
+        h, w = (int(v) for v in rng.integers(1, 2**40, 2))
+        if rng.random() < 0.5:
+            h, w = (int(v) for v in rng.integers(1, 40, 2))
+        objs.append({"size": [h, w], "counts": _odd_text(rng)})
+    values, n_values, unterminated = rle.decode([o["counts"] for o in objs])
+    assert not unterminated.any()
+    h = [o["size"][0] for o in objs]
+    w = [o["size"][1] for o in objs]
+    # one mask a call, as loadRes calls it (a list of 256 or more overflows its uint8)
+    assert rle.area(values, n_values).tolist() == [int(mask_utils.area(o)) for o in objs]
+    expected = [mask_utils.toBbox(o).tolist() for o in objs]
+    assert rle.to_bbox(values, n_values, h, w).tolist() == expected
+
+
 def _mask_results(rng, split, scenario):
     """Detections as masks drawn inside jittered ground-truth boxes, with holes; some
-    empty, some giving a box of their own; the first never gives one."""
+    empty, some giving a box of their own (the first never), some of a size unlike
+    their image's."""
     frames = {im["id"]: (im["height"], im["width"]) for im in split["images"]}
     out = []
     for i, det in enumerate(make_detections(rng, split, false_per_image=scenario["false"])):
         h, w = frames[det["image_id"]]
+        if rng.random() < scenario.get("other_size", 0.0):  # read as given, not the image's
+            h, w = (int(v) for v in rng.integers(1, 300, 2))
         x, y, bw, bh = (int(v) for v in det["bbox"])
         m = np.zeros((h, w), bool)
         m[y : y + max(bh, 1), x : x + max(bw, 1)] = True
@@ -109,6 +143,7 @@ mask_scenarios = st.fixed_dictionaries(
         "empty": st.sampled_from([0.0, 0.1]),
         "with_box": st.sampled_from([0.0, 0.3]),
         "false": st.sampled_from([0.0, 3.0]),
+        "other_size": st.sampled_from([0.0, 0.2]),
     }
 )
 
