@@ -36,8 +36,9 @@ EFFECTS = {
     "raising the IoU of small boxes, so small objects match more easily",
     "box_policy": "what happens to boxes leaving the frame; clipping changes the IoU of "
     "overhanging predictions (often raising it), reject refuses such files",
-    "area_source": "which area sorts ground truth into size buckets; it moves the "
-    "small/medium/large numbers",
+    "area_source": "which areas sort ground truth and detections into size buckets (a "
+    "detection's w*h, or its mask's RLE area when the file gives masks); it moves the "
+    "small/medium/large numbers and which unmatched detections count",
     "size_ranges": "the size bucket bounds; they move the small/medium/large numbers",
     "miss_rate": "how the log-average miss rate is read off the curve",
     "operating_point": "how operating points are chosen",

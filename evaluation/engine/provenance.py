@@ -107,12 +107,12 @@ def protocol_record(protocol, truth, predictions, records, result):
 
 
 def _prediction_area(predictions):
-    """Where the detections' areas (size ranges) came from."""
-    masks = predictions.box_counts.get("mask_area")
-    if masks is None:
+    """Where the detections' areas (size ranges) came from: a setting, so the same for
+    any two files read alike (how many: ``counts.boxes.predictions.mask_area``)."""
+    if predictions.box_counts.get("mask_area") is None:
         return "w*h (negative when one side is: outside every bounded range)"
     return (
-        f"mask area (RLE) of each result's segmentation ({masks} scored), as pycocotools "
+        "mask area (RLE) of each result's segmentation, as pycocotools "
         "2.0.11 loadRes reads a file whose first result has a segmentation and no bbox; "
         "a missing bbox is the mask's (rleToBbox)"
     )

@@ -444,3 +444,28 @@ def test_scores_beyond_2_53_in_a_mask_file(tmp_path):
     assert predictions.area is not None
     result = evaluate(truth, predictions, "coco")
     assert result["summary"]["AP"] == pytest.approx(pycocotools_eval(gt, dt).stats[0], abs=1e-12)
+
+
+def test_explain_names_the_area_source_only_between_readings(tmp_path):
+    """Two mask files differ in no setting (the count is in ``counts``, not the
+    record); a mask file against a box file differs in ``area_source``, with words."""
+    from evaluation.engine import annotate, match, score_records
+    from evaluation.engine.provenance import differences
+
+    def result(dt, truth):
+        predictions = load_predictions(dt, truth)
+        records = match(truth, predictions, "coco")
+        return annotate(score_records(records, "coco"), truth, predictions, records, "coco")
+
+    gt, dt = _mask_file(tmp_path)
+    truth = load_truth(gt)
+    dets = json.loads(dt.read_text())
+    fewer = tmp_path / "fewer.json"
+    fewer.write_text(json.dumps(dets[:-3]))
+    boxes = tmp_path / "boxes.json"
+    with_boxes = [{**d, "bbox": [1.0, 2.0, 3.0, 4.0]} for d in dets]
+    boxes.write_text(json.dumps(with_boxes))
+    masks = result(dt, truth)
+    assert [d[0] for d in differences(masks, result(fewer, truth))] == []
+    found = {d[0]: d for d in differences(masks, result(boxes, truth))}
+    assert "area_source" in found and "mask" in found["area_source"][3]
