@@ -197,6 +197,27 @@ def test_tied_huge_integers_are_refused_and_ordered_floats_scored(tmp_path):
     assert _score_or_refuse(tmp_path, split, tied[::-1]) == "scored"
 
 
+def test_results_given_as_masks_too(tmp_path):
+    """A results file read as masks (RLE ``segmentation``, no ``bbox``; its second read
+    is mask-aware): the same refusal, and the same numbers in descending order. The
+    masks are encoded with pycocotools 2.0.11's own ``mask.encode``."""
+    from pycocotools import mask
+
+    def rle(x):
+        pixels = np.zeros((100, 100), np.uint8, order="F")
+        pixels[0:10, x : x + 10] = 1
+        encoded = mask.encode(pixels)
+        return {**encoded, "counts": encoded["counts"].decode()}
+
+    split = _split(1, lambda i: [(1, 0)])
+    tied = [
+        {"image_id": 1, "category_id": 1, "segmentation": rle(20), "score": B},
+        {"image_id": 1, "category_id": 1, "segmentation": rle(0), "score": B + 1},
+    ]
+    assert _score_or_refuse(tmp_path, split, tied) == "refused"
+    assert _score_or_refuse(tmp_path, split, tied[::-1]) == "scored"
+
+
 def test_an_image_without_detections_makes_the_class_float64(tmp_path):
     """Each image alone ranks its huge integers as it would as floats, but their class
     joins int64 lists: refused. Add an image with ground truth and no detection of the
