@@ -68,10 +68,14 @@ def test_decode_area_and_box_equal_pycocotools(seed):
     assert rle.to_bbox(values, n_values, h, w).tolist() == mask_utils.toBbox(objs).tolist()
 
 
-def test_long_values_shift_as_pycocotools():
+@pytest.mark.parametrize("longest_by_column", [16, 1])
+def test_long_values_shift_as_pycocotools(monkeypatch, longest_by_column):
     """Values of 7+ characters: the C code's int shift by 5k, modulo 32 on x86 (the 8th
-    character lands at bit 3), and the sign extension alike — pycocotools 2.0.11 run."""
+    character lands at bit 3), and the sign extension alike — pycocotools 2.0.11 run;
+    read a column of characters at a time and a byte at a time (``rle._bits``)."""
+    monkeypatch.setattr(rle, "_LONGEST_BY_COLUMN", longest_by_column)
     texts = ["0PPPPPP1", "0PPPPPPP1", "0PPPPPPPPPP1", "0PPPPPP?", "0PPPPPPPO", "0oooooooA"]
+    texts += ["0" + "P" * 40 + "1", "0" + "o" * 20 + "?", "5" + "Xg" * 15 + "4", "12"]
     values, n_values, _ = rle.decode(texts)
     expected = [int(mask_utils.area({"size": [1, 1], "counts": t})) for t in texts]
     assert rle.area(values, n_values).astype(np.int64).tolist() == expected
@@ -469,3 +473,24 @@ def test_explain_names_the_area_source_only_between_readings(tmp_path):
     assert [d[0] for d in differences(masks, result(fewer, truth))] == []
     found = {d[0]: d for d in differences(masks, result(boxes, truth))}
     assert "area_source" in found and "mask" in found["area_source"][3]
+
+
+@pytest.mark.parametrize("validate_first", [True, False])
+def test_a_bad_mask_late_in_a_big_file_is_refused_in_either_pass(
+    tmp_path, monkeypatch, validate_first
+):
+    """A file past ``VALIDATE_FIRST_BYTES`` is checked by a pass that keeps no columns:
+    that pass reads masks too and refuses the same record, as the building pass does."""
+    from evaluation.engine.loaders import coco_json
+
+    monkeypatch.setattr(coco_json, "CHUNK_BYTES", 2048)
+    monkeypatch.setattr(coco_json, "VALIDATE_FIRST_BYTES", 0 if validate_first else 1 << 40)
+    gt, dt = _mask_file(tmp_path)
+    dets = json.loads(dt.read_text())
+    late = len(dets) - 2
+    dets[late]["segmentation"]["counts"] = dets[late]["segmentation"]["counts"] + "P"
+    dt.write_text(json.dumps(dets))
+    with pytest.raises(InputError) as error:
+        load_predictions(dt, load_truth(gt))
+    assert error.value.record == f"record {late}"
+    assert error.value.field == "segmentation.counts"

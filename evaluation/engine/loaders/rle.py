@@ -47,18 +47,37 @@ def decode(texts):
     if unterminated.any():
         return np.zeros(0, np.uint32), np.zeros(len(raw), np.int64), unterminated
     group_end = np.flatnonzero(ends)
-    group_start = np.concatenate([[0], group_end[:-1] + 1]).astype(np.int64)[: len(group_end)]
-    first_of = np.zeros(len(c), np.int32)
-    first_of[group_start] = group_start
-    k = np.arange(len(c), dtype=np.int32) - np.maximum.accumulate(first_of)
-    shift = ((5 * k) & 31).astype(np.uint32)  # x86 takes an int's shift count modulo 32
-    bits = (c & 0x1F).astype(np.uint32) << shift
-    x = np.bitwise_or.reduceat(bits, group_start) if len(group_end) else bits
-    more = ((5 * (k[group_end] + 1)) & 31).astype(np.uint32)
-    x = np.where((c[group_end] & 0x10) != 0, x | (_U32 << more), x)
+    length = np.diff(np.concatenate([[-1], group_end]))  # characters of each value
+    x = _bits(c, group_end, length)
+    sign = (c[group_end] & 0x10) != 0
+    x = np.where(sign, x | (_U32 << _shift(5 * length)), x)
     # groups per mask: the groups ending inside each text
     n_values = np.diff(np.searchsorted(group_end, np.concatenate([[0], np.cumsum(lengths)])))
     return _undelta(x.astype(np.uint32), n_values), n_values, unterminated
+
+
+#: Values of more characters than this are read a byte at a time, not a column at a time.
+_LONGEST_BY_COLUMN = 16
+
+
+def _bits(c, group_end, length):
+    """Each value's 5-bit groups OR'd in place (``x |= (c & 0x1f) << 5*k``)."""
+    k_last = length - 1  # the last character's k
+    if int(length.max(initial=1)) > _LONGEST_BY_COLUMN:
+        k = np.arange(len(c), dtype=np.int64) - np.repeat(group_end - k_last, length)
+        bits = (c & 0x1F).astype(np.uint32) << _shift(5 * k)
+        return np.bitwise_or.reduceat(bits, group_end - k_last)
+    x = (c[group_end] & 0x1F).astype(np.uint32) << _shift(5 * k_last)
+    for j in range(1, int(length.max(initial=1))):  # the j-th character before the last
+        longer = np.flatnonzero(length > j)
+        bits = (c[group_end[longer] - j] & 0x1F).astype(np.uint32)
+        x[longer] |= bits << _shift(5 * (k_last[longer] - j))
+    return x
+
+
+def _shift(amount):
+    """An ``int`` shift count as x86 takes it: modulo 32."""
+    return (amount & 31).astype(np.uint32)
 
 
 def _index_in_mask(n_values):
