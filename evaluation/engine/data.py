@@ -70,6 +70,10 @@ class GroundTruth:
     #: reads it (``_prepare`` overwrites ``ignore`` from ``iscrowd``), so only the
     #: pedestrian setups do, as ignore boxes; all False where not given.
     ignore_key: np.ndarray = None
+    #: Where that ``ignore`` key is nonzero but strictly between -1 and 1 (0.5): the
+    #: city-scale code ignores the box (truthy) yet passes ``int(ignore) = 0`` as its
+    #: crowd flag, so matches it by plain IoU. All False where not given.
+    ignore_key_fraction: np.ndarray = None
     occlusion: np.ndarray = None  # float64 per box, NaN = not given
     truncation: np.ndarray = None
     visibility: np.ndarray = None
@@ -82,6 +86,8 @@ class GroundTruth:
                 object.__setattr__(self, name, np.full(self.n_boxes, np.nan))
         if self.ignore_key is None:
             object.__setattr__(self, "ignore_key", np.zeros(self.n_boxes, bool))
+        if self.ignore_key_fraction is None:
+            object.__setattr__(self, "ignore_key_fraction", np.zeros(self.n_boxes, bool))
         if self.region_image is None:
             object.__setattr__(self, "region_image", np.zeros(0, np.int32))
         if self.regions is None:
@@ -147,6 +153,7 @@ class GroundTruth:
             ]
             + ([_canonical_nan(getattr(self, a)) for a in ATTRIBUTES] if attributes else [])
             + ([self.ignore_key.astype("<f8")] if self.ignore_key.any() else [])
+            + ([self.ignore_key_fraction.astype("<f8")] if self.ignore_key_fraction.any() else [])
         )
         order = np.lexsort(columns.T[::-1])
         digest.update(np.ascontiguousarray(columns[order]).tobytes())

@@ -47,14 +47,8 @@ the ignore flag and the setup only (``_prepare`` never reads ``iscrowd``; no
 id 0 is a false positive that still takes the box (``dtMatches`` holds the box's id);
 open ends 1e10 (``Params``' ``1e5 ** 2``).
 
-How the project's fields become the city-scale code's inputs (a mapping, not its rule):
-its ``height`` is the box's h; its ``vis_ratio`` is ``visibility`` (1.0 when not given);
-its ``ignore`` is the ``ignore`` key (COCO JSON) or column (CSV); neighbouring labels
-and don't-care regions are category-1 boxes with ``ignore: 1``; its images are the
-split's. Known deviations on input no real file holds: an ``ignore`` strictly between -1
-and 1 is matched here by intersection over the detection's area (the script passes
-``int(ignore) = 0``: plain IoU); a COCO ``iscrowd`` strictly between -1 and 1 shares
-CSV's ``ignore`` column and is an ignore box here.
+How the project's fields become the city-scale code's inputs: ``pedestrian_setups``,
+above ``MISS_RATE_CITYSCALE``.
 
 ``caltech`` (preset ``miss-rate-caltech``): the toolbox's reading plus the box handling
 of its Caltech benchmark script (``dbEval`` ``loadGt``/``loadDt``): every counted box and
@@ -270,6 +264,9 @@ def evaluate_setups_with_samples(truth, predictions, protocol="miss-rate"):
             inside = setup.counts(height, visibility, protocol.height_upper_open)
             counted = own & inside & ~flagged
             keep = setup.keeps(det_height, HEIGHT_EXPANSION)
+            # the city-scale code: boxes of id 0, and in-setup boxes whose fractional
+            # ignore key makes int(ignore) = 0 (plain IoU although ignored)
+            city = None if void is None else (void, own & inside & truth.ignore_key_fraction)
             levels[setup.name][truth.classes[k]], parts[(setup.name, truth.classes[k])] = (
                 _class_result(
                     truth,
@@ -281,7 +278,7 @@ def evaluate_setups_with_samples(truth, predictions, protocol="miss-rate"):
                     protocol,
                     det_boxes,
                     gt_resized,
-                    void,
+                    city,
                 )
             )
     summary = {name: _setup_summary(per_class) for name, per_class in levels.items()}
@@ -305,7 +302,7 @@ def _class_result(
     protocol,
     det_boxes,
     gt_resized,
-    void,
+    city,
 ):
     n_gt = int(np.count_nonzero(counted))
     scores, outcomes, det_image = [], [], []
@@ -321,8 +318,14 @@ def _class_result(
             gt_boxes = np.where(counted[g][:, None], gt_resized[g], gt_boxes)
         boxes = np.concatenate([gt_boxes, regions])
         ignored = np.r_[~counted[g], np.ones(len(regions), bool)]
-        oa = overlaps(det_boxes[kept], boxes, ignored)
-        box_void = None if void is None else np.r_[void[g], np.zeros(len(regions), bool)]
+        box_void = None
+        if city is None:
+            oa = overlaps(det_boxes[kept], boxes, ignored)
+        else:
+            void, plain = city
+            no = np.zeros(len(regions), bool)
+            oa = overlaps(det_boxes[kept], boxes, ignored & ~np.r_[plain[g], no])
+            box_void = np.r_[void[g], no]
         outcomes.extend(match_image(oa.tolist(), ignored.tolist(), box_void))
         scores.extend(predictions.score[kept].tolist())
         det_image.extend([image] * len(kept))

@@ -135,6 +135,18 @@ MISS_RATE = MissRateProtocol(
     "2012: bbGt evalRes/compRoc, dbEval): ignore boxes matched by intersection over the "
     "detection's area, expanded height range for detections, FPPI 10^-2..10^0",
 )
+#: ``miss-rate-cityscale``: ``eval_MR_multisetup.py`` (``Params``, ``_prepare``,
+#: ``evaluateImg``, ``accumulate``, ``summarize``; ``coco.py`` ``loadRes``). How the
+#: project's fields become its inputs (a mapping, not a rule of the script): its
+#: ``height`` is the box's h (its own files hold ``bbox[3]`` there; ``loadRes`` sets a
+#: detection's to ``bbox[3]``); its ``vis_ratio`` is ``visibility`` (1.0 when not
+#: given; a ``vis_ratio`` key is not read); its ``ignore`` is the ``ignore`` key (COCO
+#: JSON, its value: a fraction such as 0.5 ignores the box but ``int(0.5) = 0`` makes its
+#: overlap plain IoU) or column (CSV); neighbouring labels and don't-care regions are
+#: category-1 boxes with ``ignore: 1``; its images are the split's. Known deviations: a
+#: COCO ``iscrowd`` strictly between -1 and 1 shares CSV's ``ignore`` column and is an
+#: ignore box here (the script never reads ``iscrowd``); an empty detections list
+#: scores where ``loadRes`` raises.
 MISS_RATE_CITYSCALE = MissRateProtocol(
     name="miss-rate-cityscale",
     version=2,

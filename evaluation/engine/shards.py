@@ -39,6 +39,7 @@ _BOX_FIELDS = (
     "difficult",
     "ignore",
     "ignore_key",
+    "ignore_key_fraction",
     "occlusion",
     "truncation",
     "visibility",

@@ -3,7 +3,7 @@ CVPR 2017): ``eval_MR_multisetup.py`` ``_prepare`` / ``evaluateImg`` / ``accumul
 ``summarize`` with the ``loadRes`` of its ``coco.py``, transliterated in
 ``pedestrian_oracle.cityscale_coco`` (written from the published code's logic).
 
-Random COCO-style files — ``ignore`` keys of every kind the script reads the same way,
+Random COCO-style files — ``ignore`` keys (0, 1, 2, true, false, 0.5, -0.5),
 ``iscrowd`` (which it never reads), annotation id 0, a second category (it evaluates
 category id 1 only), tied scores, detections below the expanded height range, images
 without detections, image ids out of order — are scored by the engine from the files
@@ -185,6 +185,30 @@ def test_only_category_id_one_is_evaluated(tmp_path):
     assert ours["headline"] == pytest.approx(2 / 3, rel=1e-12)
 
 
+@pytest.mark.parametrize("value, outcome", [(1, "ignored"), (0.5, "false_positive")])
+def test_a_fractional_ignore_key_ignores_the_box_but_overlaps_by_iou(tmp_path, value, outcome):
+    """``_prepare`` keeps the key's value: 0.5 is truthy, so the box is an ignore box
+    (``_ignore = 1``), but ``computeIoU`` passes ``int(0.5) = 0`` as the crowd flag, so
+    its overlap is plain IoU. Box [0, 0, 40, 100], detection [20, 0, 10, 100] inside it:
+    over the detection's area 1000 / 1000 = 1, IoU 1000 / 4000 = 0.25. ``ignore: 1``:
+    the detection is ignored; ``ignore: 0.5``: it matches nothing, a false positive."""
+    dataset = {
+        "images": [{"id": 1}],
+        "categories": [{"id": 1, "name": "pedestrian"}],
+        "annotations": [
+            {"id": 1, "image_id": 1, "category_id": 1, "bbox": [0.0, 0, 40, 100], "ignore": value},
+            {"id": 2, "image_id": 1, "category_id": 1, "bbox": [100.0, 0, 40, 100]},
+        ],
+    }
+    results = [
+        {"image_id": 1, "category_id": 1, "bbox": [20.0, 0, 10, 100], "score": 0.9},
+        {"image_id": 1, "category_id": 1, "bbox": [100.0, 0, 40, 100], "score": 0.8},
+    ]
+    ours = _compare(tmp_path, dataset, results)
+    detections = ours["levels"]["reasonable"]["classes"]["pedestrian"]["detections"]
+    assert detections[outcome] == 1 and detections["true_positive"] == 1
+
+
 def test_open_ends_are_the_scripts_1e10():
     """``Params.HtRng``/``VisRng`` write the open ends as ``1e5 ** 2``: a box of height
     1e10 is inside, a taller one outside (``_prepare``: ``height > HtRng[1]``); a
@@ -203,9 +227,9 @@ _coord = st.integers(0, 12).map(lambda v: v * 10.0)
 _height = st.sampled_from([15.0, 19.0, 20.0, 30.0, 39.5, 40.0, 50.0, 60.0, 75.0, 80.0, 93.75])
 _vis = st.sampled_from([None, 0.1, 0.2, 0.5, 0.65, 0.8, 1.0])
 _aspect = st.sampled_from([0.3, 0.41, 0.6])
-#: ``ignore`` values the script reads as the engine does: absent, false/true, 0/1, 2
-#: (truthy with a nonzero ``int``); a fraction (0.5) is the one it reads otherwise.
-_ignore = st.sampled_from([None, None, None, 0, 1, True, False, 2])
+#: ``ignore`` values: absent, false/true, 0/1, 2 (truthy, nonzero ``int``: overlap over
+#: the detection's area) and fractions (truthy, ``int`` 0: plain IoU).
+_ignore = st.sampled_from([None, None, None, 0, 1, True, False, 2, 0.5, -0.5])
 _iscrowd = st.sampled_from([None, None, 0, 1])
 
 
@@ -245,7 +269,8 @@ def _files(draw):
             if own and draw(st.booleans()):
                 x, y, w, h = draw(st.sampled_from(own))["bbox"]
                 jitter = draw(st.sampled_from([0.0, 2.0, 5.0, 12.0]))
-                box = [x + jitter, y, w, h + draw(st.sampled_from([0.0, -10.0, 10.0]))]
+                narrow = draw(st.sampled_from([1.0, 1.0, 0.3]))  # inside: IoU < 0.5 <= IoA
+                box = [x + jitter, y, w * narrow, h + draw(st.sampled_from([0.0, -10.0, 10.0]))]
             else:
                 h = draw(_height)
                 box = [draw(_coord), draw(_coord), h * draw(_aspect), h]

@@ -62,6 +62,7 @@ def _whole(path, data):
         **crowd,
         "difficult": np.array([bool(a.difficult) for a in anns], bool),
         "ignore_key": np.array([bool(a.ignore) for a in anns], bool),
+        "ignore_key_fraction": np.array([a.ignore != 0 and -1 < a.ignore < 1 for a in anns], bool),
         "occlusion": opt(a.occlusion for a in anns),
         "truncation": opt(a.truncation for a in anns),
         "visibility": opt(a.visibility for a in anns),

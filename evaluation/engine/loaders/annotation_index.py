@@ -55,6 +55,7 @@ PER_ANNOTATION = (
     "difficult",
     "ignore",
     "ignore_key",
+    "ignore_key_fraction",
     "occlusion",
     "truncation",
     "visibility",

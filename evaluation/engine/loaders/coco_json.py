@@ -382,6 +382,9 @@ class _Records:
             **self.crowd_columns([a.iscrowd for a in anns], base),
             "difficult": np.array([bool(a.difficult) for a in anns], bool),
             "ignore_key": np.array([bool(a.ignore) for a in anns], bool),
+            "ignore_key_fraction": np.array(
+                [a.ignore != 0 and -1 < a.ignore < 1 for a in anns], bool
+            ),
             "occlusion": given("occlusion"),
             "truncation": given("truncation"),
             "visibility": given("visibility"),

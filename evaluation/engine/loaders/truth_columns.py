@@ -241,6 +241,7 @@ def read_truth(path, images, fmt, classes, policy, ids="any", annotations="refer
         difficult=cols["difficult"],
         ignore=cols["ignore"],
         ignore_key=cols.get("ignore_key"),
+        ignore_key_fraction=cols.get("ignore_key_fraction"),
         source=str(path),
         image_id_type=image_type,
         class_id_type=class_type,

@@ -269,8 +269,10 @@ def normalise(key, records, counts, base=0, bad=None):
                 fixed = crowd_value(value) if name == "iscrowd" else _DEFAULTS.get(name)
                 setattr(record, name, fixed)
                 counts[_COUNT_OF[key, name]] += 1
-            elif name in ("difficult", "ignore"):
+            elif name == "difficult":
                 setattr(record, name, bool(value))
+            elif name == "ignore":  # its value, not only its truth (ignore_key_fraction)
+                setattr(record, name, as_number(value))
             elif name in _NUMBERS and value is not None:
                 setattr(record, name, as_number(value))
     return records
