@@ -494,3 +494,43 @@ def test_a_bad_mask_late_in_a_big_file_is_refused_in_either_pass(
         load_predictions(dt, load_truth(gt))
     assert error.value.record == f"record {late}"
     assert error.value.field == "segmentation.counts"
+
+
+@pytest.mark.parametrize("protocol", ["voc07", "voc", "recall40", "kitti2d", "miss-rate"])
+def test_other_protocols_read_the_masks_boxes(tmp_path, protocol):
+    """Every other protocol scores a mask file as the box file of the boxes pycocotools
+    derives (``maskUtils.toBbox``) or the file gives; only size ranges read the masks'
+    areas (the slices' small/medium/large buckets of every preset; the VOC "all" bucket
+    has no bounds, and the levels and setups read heights)."""
+    from evaluation.engine import evaluate_levels, evaluate_setups
+
+    gt, dt = _mask_file(tmp_path)
+    truth = load_truth(gt)
+    masks = load_predictions(dt, truth)
+    dets = json.loads(dt.read_text())
+    for d in dets:
+        d["bbox"] = mask_utils.toBbox(d["segmentation"]).tolist() if "bbox" not in d else d["bbox"]
+        del d["segmentation"]
+    boxes_path = tmp_path / "boxes.json"
+    boxes_path.write_text(json.dumps(dets))
+    boxes = load_predictions(boxes_path, truth)
+    assert boxes.boxes.tobytes() == masks.boxes.tobytes()
+    if protocol in ("kitti2d", "miss-rate"):
+        run = evaluate_levels if protocol == "kitti2d" else evaluate_setups
+        a, b = run(truth, masks, protocol), run(truth, boxes, protocol)
+    else:
+        plain = evaluate(truth, boxes, protocol)
+        boxes = dataclasses_replace(boxes, area=masks.area)  # size buckets read the areas
+        a, b = evaluate(truth, masks, protocol), evaluate(truth, boxes, protocol)
+        if protocol != "recall40":  # the VOC "all" bucket has no bounds: areas unread
+            assert a["per_class"] and all(
+                a["per_class"][k]["AP"] == plain["per_class"][k]["AP"] for k in a["per_class"]
+            )
+    numbers = [k for k in a if k not in ("counts", "protocol_record")]
+    assert numbers and [a[k] for k in numbers] == [b[k] for k in numbers]
+
+
+def dataclasses_replace(obj, **changes):
+    import dataclasses
+
+    return dataclasses.replace(obj, **changes)

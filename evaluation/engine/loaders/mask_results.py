@@ -159,9 +159,9 @@ def columns(records, path, base):
         texts[i], (h[i], w[i]) = seg.counts, seg.size
         if r.bbox is not msgspec.UNSET:
             boxes[i], given[i] = r.bbox, True
-    bad = np.flatnonzero([not (0 <= v < _MAX_SIZE) for v in np.concatenate([h, w])])
-    if len(bad):
-        i = int(bad[0] % n)
+    bad = [not (0 <= a < _MAX_SIZE and 0 <= b < _MAX_SIZE) for a, b in zip(h, w)]
+    if any(bad):
+        i = bad.index(True)
         _fail(path, base + i, "segmentation.size", f"must be 0..2^64-1, got {[h[i], w[i]]}")
     h = np.array([v & 0xFFFFFFFF for v in h], np.uint64)
     w = np.array([v & 0xFFFFFFFF for v in w], np.uint64)
