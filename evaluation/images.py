@@ -68,13 +68,14 @@ def id_texts(values):
     r"""Image ids read from COCO JSON as the engine shows them (``GroundTruth.image_ids``
     as text; ``loaders.ids``): a boolean or whole float is its integer (pycocotools'
     dicts key ``true`` as 1 and ``3.0`` as 3), numbers in decimal or their shortest
-    form, text as written — JSON-quoted when some id of the family ends in U+0000,
-    as the engine shows such a family. None for a value no id can be (NaN, null).
+    form, text as written — JSON-quoted when some id of the family ends in U+0000 or
+    holds a lone surrogate (shown as its escape), as the engine shows such a family.
+    None for a value no id can be (NaN, null).
 
     >>> id_texts([7, 2**64 + 5, True, 3.0, 1e20, 2.5, float("inf"), None])
     ['7', '18446744073709551621', '1', '3', '100000000000000000000', '2.5', 'inf', None]
-    >>> id_texts(["img_001", "b"]), id_texts(["a\x00", "b"])
-    (['img_001', 'b'], ['"a\\u0000"', '"b"'])
+    >>> id_texts(["img_001", "b"]), id_texts(["a\x00", "b"]), id_texts(["a\ud800"])
+    (['img_001', 'b'], ['"a\\u0000"', '"b"'], ['"a\\ud800"'])
     """
     whole = []
     for value in values:
@@ -102,8 +103,8 @@ def _file_names(split_id, sha256):
     # anywhere read as Python's json reads them (pycocotools reads the file so)
     decoded = json_literals.decode(data.removeprefix(codecs.BOM_UTF8), _ImagesOnly)
     keys = id_texts([image.id for image in decoded.images])
-    return {
-        key: image.file_name
+    return {  # a lone surrogate (``"\\ud800"`` in the file) as its escape, as names are
+        key: ids.escaped(image.file_name)
         for key, image in zip(keys, decoded.images)
         if key is not None and image.file_name and isinstance(image.file_name, str)
     }
@@ -170,20 +171,34 @@ class _Matcher:
     folder of an archive, or by its base name when that is unique in the split."""
 
     def __init__(self, names):
-        self.names = set(names)
+        # an uploaded name's backslashes are folder separators: a split's are read so
+        # too (a file_name holding one, or a surrogate's escape ``\\udc00``, can match)
+        self.names = {}
+        for name in sorted(names):
+            self.names.setdefault(_slashed(name), name)
         by_base = {}
-        for name in self.names:
-            by_base.setdefault(posixpath.basename(name), []).append(name)
+        for normal, name in self.names.items():
+            by_base.setdefault(posixpath.basename(normal), []).append(name)
         self.by_base = {b: n[0] for b, n in by_base.items() if len(n) == 1}
 
     def __call__(self, uploaded):
-        uploaded = uploaded.replace("\\", "/").lstrip("/")
+        uploaded = _slashed(uploaded)
         if uploaded in self.names:
-            return uploaded
+            return self.names[uploaded]
         _, _, below = uploaded.partition("/")
         if below in self.names:
-            return below
+            return self.names[below]
         return self.by_base.get(posixpath.basename(uploaded))
+
+
+def _slashed(name):
+    return name.replace("\\", "/").lstrip("/")
+
+
+def _stored(file_name):
+    """The storage path of a (safe) file_name below the images folder: backslashes as
+    folders, as ``_Matcher`` reads them (storage refuses a backslash)."""
+    return posixpath.normpath(_slashed(file_name))
 
 
 def _junk(name):
@@ -271,7 +286,7 @@ def _checked_put(source_name, read, match, root, stored, seen):
         raise UploadError(
             f"{source_name}: not a JPEG, PNG or WebP image (by its first bytes)", path="images"
         )
-    name = f"{root}/{target}"
+    name = f"{root}/{_stored(target)}"
     default_storage.delete(name)  # a leftover of an interrupted upload
     saved = default_storage.save(name, ContentFile(bytes(data)))
     stored.append(saved)
@@ -317,7 +332,7 @@ def open_image(split_images, file_name):
         return None
     if not _safe(file_name):
         return None
-    name = f"{split_images.root}/{file_name}"
+    name = f"{split_images.root}/{_stored(file_name)}"
     if not default_storage.exists(name):
         return None
     f = default_storage.open(name, "rb")

@@ -14,6 +14,7 @@ import pytest
 
 from evaluation.engine import InputError
 from evaluation.engine.loaders import coco_json, json_literals, json_syntax
+from evaluation.engine.loaders.ids import escaped
 
 from . import whole_file
 
@@ -50,7 +51,8 @@ def _whole(path, data):
         "image_ids": np.array(whole["images", "id"], np.int64),
         "image_width": opt(im.width for im in d.images),
         "image_height": opt(im.height for im in d.images),
-        "image_tags": [tuple(im.tags) for im in d.images],
+        # shown with a lone surrogate as its escape (``ids.escaped``)
+        "image_tags": [tuple(escaped(t) for t in im.tags) for im in d.images],
         "class_ids": np.array(whole["categories", "id"], np.int64),
         "class_names": [coco_json.category_name(c) for c in d.categories],
         "box_ids": np.array(whole["annotations", "id"], np.int64),
@@ -82,14 +84,21 @@ def _sliced(path):
 
 BAD_VALUES = ['"x"', "null", "2.5", "[]", "{}", str(2**70), "-" + str(2**63 + 1), "1e999", '"\xff"']
 BAD_VALUES += ["NaN", "Infinity", "-Infinity"]  # Python's json literals
+BAD_VALUES += ['"\\udc00"']  # a lone surrogate escape: read by Python's json
 
 
 def _document(rng):
-    """JSON text of a random split, then (usually) one type-level damage."""
+    """JSON text of a random split, then (usually) one type-level damage. Lone surrogate
+    escapes in strings (read as Python's json reads them) unless a value or an array is
+    damaged: then the whole document, holding one, is read by ``json.loads``, whose
+    Python int beyond 64 bits msgspec's message calls 'int' where its own decoding says
+    'float', and whose repeated key is its last where msgspec checks each."""
+    damage = rng.choice(["none", "value", "field", "array", "missing", "repeat"])
+    lone = "" if damage in ("value", "array") else "\udc00"
     doc = {
-        "info": {"note": 'a\\"b,]', "n": [1, {"images": None}]},
+        "info": {"note": 'a\\"b,]' + lone, "n": [1, {"images": None}]},
         "images": [
-            {"id": i, "width": 640, "height": 480, "tags": ["x,]", 'y"']}
+            {"id": i, "width": 640, "height": 480, "tags": ["x,]", 'y"', "\\ud800" + lone]}
             for i in range(rng.randint(0, 6))
         ],
         "annotations": [
@@ -110,7 +119,6 @@ def _document(rng):
     }
     keys = list(doc)
     rng.shuffle(keys)
-    damage = rng.choice(["none", "value", "field", "array", "missing", "repeat"])
     if damage == "missing":
         keys.remove(rng.choice(["images", "annotations", "categories"]))
     if damage in ("value", "field"):

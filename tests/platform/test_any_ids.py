@@ -1,7 +1,8 @@
 """Ids of any kind pycocotools accepts, through the platform's real entry points
 (``evaluation.services.ENGINE_IDS = "any"``, the default): image, category and
 annotation ids beyond signed 64 bits; booleans and whole floats; fractions and
-infinities; text (and text ending in U+0000); a CSV split's text image ids.
+infinities; text (and text ending in U+0000, or holding lone surrogates); a CSV split's
+text image ids.
 
 Reference: pycocotools 2.0.11, run here on the same two files (for CSV: on the same
 content written as COCO JSON with those string ids). It keeps ids as Python objects —
@@ -93,6 +94,18 @@ KINDS = {
     # text ids ending in U+0000, which numpy text arrays cut: the engine shows that
     # family JSON-quoted. pycocotools' np.unique cuts them too and drops those images
     # (the known deviation), so its reference run reads U+0001 there (same order).
+    # lone UTF-16 surrogate escapes ("\ud800" alone in the file), which Python's json
+    # reads into text (sorted by code point: U+D800..U+DFFF between U+D7FF and U+E000,
+    # U+1F600 above them) and no UTF-8 text or PostgreSQL text holds: the engine shows
+    # the family JSON-quoted, each surrogate as its escape; "a\\ud800" (a backslash
+    # written as text) is another id, and the unlisted class is named escaped
+    "surrogate": {
+        "images": ["a\ud800", "a\\ud800", "\udfff", "\ud7ff", "\ue000", "\U0001f600"]
+        + ["b\udc00x", "c", "d", "e"],
+        "categories": ["cat\udbff", "cat\\udbff", "\ud800"],
+        "annotations": [],  # pycocotools writes a matched id into a float array
+        "unlisted_class": "cat\udc00",
+    },
     "nul": {
         "images": ["a\x00", "a", "b\x00\x00", "c", "d", "e", "f", "g", "h", "i"],
         "categories": [],
@@ -101,7 +114,6 @@ KINDS = {
         "reference": lambda text: text.replace("\\u0000", "\\u0001"),
     },
 }
-WIDE = KINDS["wide"]
 
 
 def _png(n):
@@ -146,12 +158,22 @@ def _written(value, family=()):
     float in its shortest form, text as written — JSON-quoted when an id of its
     ``family`` ends in U+0000."""
     if isinstance(value, str):
-        quoted = any(isinstance(v, str) and v.endswith("\x00") for v in family)
-        return json.dumps(value, ensure_ascii=False) if quoted else value
+        quoted = any(isinstance(v, str) and (v.endswith("\x00") or _lone(v)) for v in family)
+        text = json.dumps(value, ensure_ascii=False) if quoted else value
+        return text.encode("utf-8", "backslashreplace").decode("utf-8")  # a surrogate
     if isinstance(value, numbers.Integral):
         return str(int(value))
     value = float(value)
     return str(int(value)) if math.isfinite(value) and value.is_integer() else repr(value)
+
+
+def _lone(text):
+    """Whether ``text`` holds a lone surrogate (no UTF-8 text can hold it)."""
+    try:
+        text.encode("utf-8")
+    except UnicodeEncodeError:
+        return True
+    return False
 
 
 def _image_texts_in_file_order(truth):
@@ -193,11 +215,12 @@ def _assert_pycocotools_numbers(evaluation, truth, detections, tmp_path, referen
     for key, expected in zip(engine.COCO_SUMMARY_KEYS, reference.stats):
         got = card.summary[key]
         assert (-1.0 if got is None else got) == pytest.approx(expected, abs=1e-12), key
-    names = {_written(c["id"]): c["name"] for c in truth["categories"]}
+    family = [c["id"] for c in truth["categories"]]
+    names = {_written(c["id"], family): c["name"] for c in truth["categories"]}
     precision = reference.eval["precision"]  # [T, R, K, A, M], K in params.catIds order
     for k, category in enumerate(reference.params.catIds):
         expected = precision[:, :, k, 0, 2]
-        got = card.result["per_class"][names[_written(category)]]["AP"]
+        got = card.result["per_class"][names[_written(category, family)]]["AP"]
         if (expected == -1).all():
             assert got is None, category
         else:
@@ -325,7 +348,7 @@ def test_every_upload_entry_point_scores_as_pycocotools(scored, tmp_path):
             tmp_path,
             scored["ids"].get("reference"),
         )
-        unlisted = [_written(scored["ids"]["unlisted_class"], [scored["ids"]["unlisted_class"]])]
+        unlisted = [_written(scored["ids"]["unlisted_class"])]
         assert card.result["counts"]["dropped_classes"] == unlisted
         for level in ("miss-rate", "kitti2d"):
             found = _evaluation(scored[label], level)
@@ -547,11 +570,19 @@ def test_a_csv_split_with_text_ids_scores_as_pycocotools_and_shows_them(
 @pytest.mark.integration
 @pytest.mark.django_db(transaction=True)
 @pytest.mark.usefixtures("worker")
-def test_the_client_submits_such_files(live_server, detector, users, run, tmp_path):  # noqa: F811
+@pytest.mark.parametrize("kind", ["wide", "surrogate"])
+def test_the_client_submits_such_files(
+    kind,
+    live_server,
+    detector,
+    users,
+    run,  # noqa: F811
+    tmp_path,
+):
     """The client (standard library only) uploads the bytes as they are; a real worker
     scores them; ``submit --wait`` passes and names the left-out class by its id as
-    written; the stored numbers equal pycocotools 2.0.11's."""
-    truth, (dets,) = _files(WIDE, n_sets=1)
+    written (a surrogate as its escape); the stored numbers equal pycocotools 2.0.11's."""
+    truth, (dets,) = _files(KINDS[kind], n_sets=1)
     split = evaluation_services.load_split(
         name="far-ids", revision=1, truth=upload("far-ids.json", truth)
     )
@@ -563,7 +594,7 @@ def test_the_client_submits_such_files(live_server, detector, users, run, tmp_pa
         "--version", "6.0", "--split", f"far-ids={path}", "--wait", "--poll", "0.3",
     )  # fmt: skip
     assert code == 0, out + err
-    assert f"ids {_written(WIDE['unlisted_class'])}" in out
+    assert f"ids {_written(KINDS[kind]['unlisted_class'])}" in out
     version = detector.versions.get(label="6.0")
     assert split.pk == version.prediction_sets.get().split_id
     _assert_pycocotools_numbers(_evaluation(version), truth, dets, tmp_path)

@@ -17,7 +17,7 @@ import numpy as np
 from ..errors import InputError
 from . import json_literals, json_syntax, mask_results, unread_fields
 from .checks import text_start
-from .ids import JSON_ID
+from .ids import JSON_ID, escaped
 
 CHUNK_BYTES = 4 << 20
 #: No detection record is this long: past it, reading stops with an error instead of
@@ -89,12 +89,14 @@ _INDEX = re.compile(r"^(?P<key>\.\w+)?\[(?P<i>\d+)\](?P<rest>.*)$")
 
 def category_name(category):
     """A category's name, or for one without a name (pycocotools' evaluation never
-    reads names) its id as text."""
+    reads names) its id as text; a lone surrogate in either as its escape (``\\ud800``:
+    names are shown and written, and no UTF-8 text holds one), so two names may meet
+    here and are then told apart as any shared name is."""
     if category.name is not None:
-        return category.name
+        return escaped(category.name)
     value = category.id
     if type(value) is str:
-        return value
+        return escaped(value)
     whole = type(value) is not float or value.is_integer()
     return str(int(value)) if whole else repr(value)
 
@@ -359,7 +361,7 @@ class _Records:
             "image_ids": self.ids([im.id for im in images], key, "id", base),
             "image_width": np.array([_size(im.width) for im in images], np.float64),
             "image_height": np.array([_size(im.height) for im in images], np.float64),
-            "image_tags": [tuple(im.tags) for im in images],
+            "image_tags": [tuple(escaped(t) for t in im.tags) for im in images],
         }
 
     def categories(self, categories, key, base):

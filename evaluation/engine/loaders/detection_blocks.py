@@ -13,7 +13,7 @@ import dataclasses
 import numpy as np
 
 from . import checks, coco_json, csv_tables, unread_fields
-from .ids import NULL, NUMBER, TEXT, ids_like, keys_of, typed_keys
+from .ids import NULL, NUMBER, TEXT, escaped, ids_like, keys_of, typed_keys
 
 #: Formats that can be read a block at a time.
 STREAMABLE = ("json", "csv")
@@ -67,8 +67,9 @@ def distinct_keys(keys, more=()):
 
 
 def _plain(key):
-    """A class key without a typed key's mark (``ids``)."""
-    return key[1:] if key[:1] in (NUMBER, TEXT, NULL) else key
+    """A class key without a typed key's mark (``ids``), a lone surrogate as its escape
+    (reports and the platform's JSON hold it)."""
+    return escaped(key[1:] if key[:1] in (NUMBER, TEXT, NULL) else key)
 
 
 def json_raw(truth, image_ids, class_keys, boxes, score, area=None, base=0):

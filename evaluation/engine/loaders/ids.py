@@ -22,7 +22,11 @@ type mark and the id (``"\\x1d2.5"`` for the number 2.5, ``"\\x1eimg_7"`` for th
 ``img_7``), so ids match only their own type and every comparison is between strings.
 ``GroundTruth`` keeps the ids as display text (``display``) with the family's type
 (``GroundTruth.image_id_type``: ``"number"``, ``"text"``, or ``"json"`` for text ids
-that numpy's text arrays cannot hold as written — ending in U+0000 — shown JSON-quoted).
+that numpy's text arrays cannot hold as written — ending in U+0000 — or that no UTF-8
+text can hold — a lone UTF-16 surrogate, which Python's ``json`` reads from an escape
+such as ``"\\ud800"`` — shown JSON-quoted, each surrogate as its escape: ``"a\\ud800"``).
+The typed keys hold the very ``str`` Python's ``json`` gives, so ids compare and sort as
+in pycocotools; only what is shown or written is escaped (``escaped``, ``quoted``).
 """
 
 import json
@@ -31,6 +35,7 @@ import re
 import numpy as np
 
 INTEGER = re.compile(r"^[+-]?\d+$")
+SURROGATE = re.compile("[\ud800-\udfff]")
 INT64 = (-(2**63), 2**63 - 1)
 NUMBER, TEXT, NULL = "\x1d", "\x1e", "\x1f"  # the type marks of typed keys
 #: A COCO JSON id field as decoded: any JSON number, boolean, text or null (a null
@@ -45,6 +50,20 @@ def csv_ids(values):
         if INT64[0] <= min(numbers) and max(numbers) <= INT64[1]:
             return np.array(numbers, np.int64)
     return np.array(values, dtype=object).astype(str)
+
+
+def escaped(text):
+    """``text`` with each lone surrogate (no UTF-8 text can hold one) as its escape
+    ``\\udXXX``, as Python's ``backslashreplace`` writes it; other text unchanged."""
+    if text.isascii() or not SURROGATE.search(text):
+        return text
+    return text.encode("utf-8", "backslashreplace").decode("utf-8")
+
+
+def quoted(text):
+    """``text`` JSON-quoted, non-ASCII as it is but a lone surrogate as its JSON escape
+    (``json.loads`` gives ``text`` back: the quoting is injective)."""
+    return escaped(json.dumps(text, ensure_ascii=False))
 
 
 def number_text(value):
@@ -81,20 +100,22 @@ def key_value(key):
 
 def family_type(keys):
     """``"number"``, ``"text"`` or ``"json"`` (text some id of which numpy's text arrays
-    would cut: a trailing U+0000) for the typed keys of a family's defining ids, whose
-    types are known to agree."""
+    would cut, a trailing U+0000, or no UTF-8 text can hold, a lone surrogate) for the
+    typed keys of a family's defining ids, whose types are known to agree."""
     if not len(keys) or keys[0][0] == NUMBER:
         return "number"
-    return "json" if any(k.endswith("\x00") for k in keys) else "text"
+    if any(k.endswith("\x00") for k in keys) or SURROGATE.search("".join(keys)):
+        return "json"
+    return "text"
 
 
 def display(keys, id_type):
     """The ids of typed ``keys`` as ``GroundTruth`` keeps them (numpy text)."""
     if id_type == "json":
-        return np.array([json.dumps(key_value(k), ensure_ascii=False) for k in keys], str)
+        return np.array([quoted(key_value(k)) for k in keys], str)
     if not len(keys):
         return np.zeros(0, str)
-    return np.array([k[1:] for k in keys], str)
+    return np.array([escaped(k[1:]) for k in keys], str)
 
 
 def keys_of(ids, id_type):
@@ -120,7 +141,7 @@ def shown(value):
     """A typed key as the user wrote the id (text quoted), for messages; anything else
     as it is."""
     if isinstance(value, str) and value[:1] in (NUMBER, TEXT, NULL):
-        return repr(value[1:]) if value[0] == TEXT else value[1:]
+        return repr(value[1:]) if value[0] == TEXT else value[1:]  # repr escapes surrogates
     return None
 
 
@@ -150,7 +171,7 @@ def ids_like(values, known_ids, id_type=""):
     if id_type == "number":
         return np.array([_canonical_number(v) for v in text.tolist()], str).reshape(-1)
     if id_type == "json":
-        return np.array([json.dumps(v, ensure_ascii=False) for v in text.tolist()], str)
+        return np.array([quoted(v) for v in text.tolist()], str)
     if known_ids.dtype.kind != "i":
         return text
     converted = np.full(len(text), np.iinfo(np.int64).min, np.int64)

@@ -1,5 +1,5 @@
-"""The non-standard number literals ``NaN``, ``Infinity`` and ``-Infinity``, and numbers
-beyond float64's range such as ``1e400``.
+"""The non-standard number literals ``NaN``, ``Infinity`` and ``-Infinity``, numbers
+beyond float64's range such as ``1e400``, and lone surrogate escapes in strings.
 
 Python's ``json`` module — which pycocotools 2.0.11 reads both files with — accepts
 these (``NaN`` → nan, ``Infinity`` → inf, ``1e400`` → inf; Python ``json`` module
@@ -14,6 +14,16 @@ looked at again here:
 * values: a slice whose syntax holds is decoded by ``json.loads`` and converted to
   the typed records by ``msgspec.convert``, whose type errors name the same path
   (``$[3].bbox[2]``) as msgspec's own decoding.
+
+A string may also hold an escaped UTF-16 surrogate without its partner (``"\\ud800"``
+alone): valid JSON (RFC 8259 section 8.2 allows it), read by Python's ``json`` into a
+``str`` holding that code point, so pycocotools scores such a file; msgspec refuses it
+("truncated", "invalid utf-16 surrogate pair"). A slice holding one takes the same
+slow path: for the syntax check it is replaced by ``\\ufffd`` (same length), and the
+values come from ``json.loads``, so the engine holds the very ``str`` Python's ``json``
+gives — equal, hashed and sorted (by code point, U+D800..U+DFFF between U+D7FF and
+U+E000) exactly as pycocotools compares them. Such text cannot be encoded as UTF-8:
+everything the engine writes shows a surrogate as its escape (``ids.escaped``).
 
 Nesting deeper than the interpreter's recursion limit lets a reader follow (about a
 thousand levels: msgspec and Python's ``json`` alike raise RecursionError, so
@@ -61,40 +71,28 @@ def nesting(data):
     ), at
 
 
-_SURROGATE = re.compile(rb"\\u[dD]([89a-fA-F])[0-9a-fA-F]{2}")
+#: One escape of a string, in order: a surrogate pair, a lone surrogate (group 1), or
+#: any other escape (an escaped backslash included, so ``\\\\ud800`` is no escape).
+_ESCAPE = re.compile(
+    rb"\\u[dD][89abAB][0-9a-fA-F]{2}\\u[dD][c-fC-F][0-9a-fA-F]{2}"
+    rb"|(\\u[dD][89a-fA-F][0-9a-fA-F]{2})|\\(?:u[0-9a-fA-F]{4}|.)",
+    re.DOTALL,
+)
+_SURROGATE = re.compile(rb"\\u[dD][89a-fA-F]")
+#: A lone surrogate escape's stand-in for the syntax check: a valid escape, same length.
+_STAND_IN_ESCAPE = b"\\ufffd"
 
 
-def lone_surrogate(data):
-    """Byte offset of the first escape of a UTF-16 surrogate without its partner
-    (``\\ud800`` alone), or None. msgspec calls such text "truncated"; Python's json
-    reads it into a string no UTF-8 file can hold, so it is refused here, located."""
-    data = bytes(data)
-    paired_at = -1
-    for m in _SURROGATE.finditer(data):
-        start = m.start()
-        slashes = len(data[:start]) - len(data[:start].rstrip(b"\\"))
-        if slashes % 2 or start == paired_at:  # an escaped backslash, or a pair's 2nd
-            continue
-        high = m[1] in b"89abAB"
-        low_next = _SURROGATE.match(data, m.end())
-        if high and low_next and low_next[1] not in b"89abAB":
-            paired_at = m.end()
-            continue
-        return start
-    return None
+def has_surrogate(data):
+    """Whether ``data`` may hold a lone UTF-16 surrogate escape (cheap: a search)."""
+    return _SURROGATE.search(bytes(data)) is not None
 
 
-def _surrogate_error(error, data):
-    """msgspec's "truncated" for a lone surrogate escape, said as what it is."""
-    if "truncated" not in str(error):
-        return error
-    at = lone_surrogate(data)
-    if at is None:
-        return error
-    return msgspec.DecodeError(
-        "JSON is malformed: a lone UTF-16 surrogate escape in a string, which no UTF-8 "
-        f"text can hold (byte {at})"
-    )
+def _mask_surrogates(string):
+    """A JSON string token with each lone surrogate escape replaced by ``\\ufffd``."""
+    if b"\\" not in string:
+        return string
+    return _ESCAPE.sub(lambda m: _STAND_IN_ESCAPE if m[1] else m[0], string)
 
 
 def has_literal(data):
@@ -103,9 +101,19 @@ def has_literal(data):
     return b"NaN" in data or b"Infinity" in data
 
 
+def _stand_in(m):
+    token = m[0]
+    return _mask_surrogates(token) if token[:1] == b'"' else _STAND_IN[token]
+
+
 def masked(data):
-    """``data`` with each literal outside strings replaced by a string of equal length."""
-    return _TOKENS.sub(lambda m: _STAND_IN.get(m[0], m[0]), bytes(data))
+    """``data`` with each literal outside strings replaced by a string of equal length,
+    and each lone surrogate escape inside one by a valid escape of equal length."""
+    return _TOKENS.sub(_stand_in, bytes(data))
+
+
+def _unusual(data):
+    return has_literal(data) or has_surrogate(data)
 
 
 def check_syntax(data):
@@ -113,13 +121,10 @@ def check_syntax(data):
     try:
         try:
             msgspec.json.decode(data, type=msgspec.Raw)
-        except msgspec.DecodeError as e:
-            if not has_literal(data):
-                raise _surrogate_error(e, data) from None
-            try:
-                msgspec.json.decode(masked(data), type=msgspec.Raw)
-            except msgspec.DecodeError as masked_error:
-                raise _surrogate_error(masked_error, data) from None
+        except msgspec.DecodeError:
+            if not _unusual(data):
+                raise
+            msgspec.json.decode(masked(data), type=msgspec.Raw)
     except RecursionError:
         raise too_deep(data) from None
 
@@ -145,11 +150,53 @@ def _decode(data, type):
     except (msgspec.DecodeError, msgspec.ValidationError) as e:
         if isinstance(e, msgspec.ValidationError) and not _out_of_range(e):
             raise
-        if not (_out_of_range(e) or has_literal(data)):
-            raise _surrogate_error(e, data) from None
+        if not (_out_of_range(e) or _unusual(data)):
+            raise
         check_syntax(data)  # another syntax error: raised at its own position
         try:
-            value = json.loads(bytes(data))
-        except (ValueError, RecursionError):  # e.g. invalid UTF-8: msgspec's message
+            # strict UTF-8, as pycocotools' text-mode ``open``: an encoded surrogate
+            # (bytes ED A0 80) is invalid UTF-8 there, though ``json.loads(bytes)``
+            # would pass it
+            text = bytes(data).decode("utf-8")
+        except UnicodeDecodeError:  # msgspec's own words for it
+            raise msgspec.DecodeError("Invalid UTF-8 encoded string") from None
+        try:
+            value = json.loads(text)
+        except (ValueError, RecursionError):
             raise e from None
+        return _convert(value, text, type)
+
+
+def _convert(value, text, type):
+    """``msgspec.convert``, which encodes a key, or a text value where another type is
+    expected, as UTF-8 and so fails on a surrogate: then again with the keys escaped
+    (the keys read into typed records are ASCII field names, so only keys nothing
+    reads change), and if a text value is in the wrong place, everything escaped, for
+    msgspec's ValidationError naming it."""
+    try:
         return msgspec.convert(value, type=type)
+    except UnicodeEncodeError:
+        pass
+    try:
+        return msgspec.convert(json.loads(text, object_pairs_hook=_escaped_keys), type=type)
+    except UnicodeEncodeError:
+        msgspec.convert(_escaped_all(value), type=type)
+        raise  # not reached: a value no typed field takes is a ValidationError
+
+
+def _escaped(text):
+    return text.encode("utf-8", "backslashreplace").decode("utf-8")
+
+
+def _escaped_keys(pairs):
+    return {_escaped(k): v for k, v in pairs}
+
+
+def _escaped_all(value):
+    if isinstance(value, str):
+        return _escaped(value)
+    if isinstance(value, list):
+        return [_escaped_all(v) for v in value]
+    if isinstance(value, dict):
+        return {_escaped(k): _escaped_all(v) for k, v in value.items()}
+    return value

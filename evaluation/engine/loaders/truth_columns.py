@@ -58,11 +58,6 @@ def _typed_family(path, cols, defining, refs, locate, what):
     return ids_module.family_type(keys)
 
 
-def _id_text(value):
-    """An id (an int, or a typed key) as text, without a typed key's mark."""
-    return value[1:] if isinstance(value, str) else str(value)
-
-
 def _raise_if_scored(path, bad_rows, rows, n):
     """The first annotation with a bad ``bbox`` or ``area`` that is scored (``rows``:
     the source rows scored, None for all ``n``), as an error naming it; one never
@@ -105,7 +100,7 @@ def read_truth(path, images, fmt, classes, policy, ids="any", annotations="refer
             entry_counts.update(duplicates)
             image_locate = lambda i: f"images[{kept['image'][i]}]"  # noqa: E731
             category_locate = lambda i: f"categories[{kept['category'][i]}]"  # noqa: E731
-            shown = [_id_text(v) for v in cols["class_ids"].tolist()]
+            shown = _shown(cols["class_ids"], class_type).tolist()  # as the ids are shown
             cols["class_names"], entry_counts["categories_renamed"] = (
                 annotation_index.rename_shared_names(cols["class_names"], shown)
             )
