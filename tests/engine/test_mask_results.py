@@ -251,6 +251,11 @@ BAD = [
     ),
     ("segmentation.size", None, _bad(segmentation={"size": [0, 40], "counts": "0;"})),
     ("segmentation.counts", None, _bad(segmentation={"size": [30, 40], "counts": "0P"})),
+    (  # Python's json reads the escape into text; pycocotools' str.encode raises
+        "segmentation.counts",
+        UnicodeEncodeError,
+        _bad(segmentation={"size": [30, 40], "counts": "0\udc00"}),
+    ),
     ("bbox", "bounding box", _bad(bbox=[], segmentation={"size": [30, 40], "counts": "0"})),
 ]
 

@@ -21,6 +21,7 @@ import numpy as np
 from ..errors import InputError
 from . import json_literals, rle, unread_fields
 from .ids import JSON_ID
+from .ids import SURROGATE as _SURROGATE
 
 BOXES, MASKS = "bbox", "mask"
 _MAX_SIZE = 1 << 64  # ``siz`` (unsigned long) in pycocotools' _mask.pyx
@@ -163,6 +164,15 @@ def columns(records, path, base):
     if any(bad):
         i = bad.index(True)
         _fail(path, base + i, "segmentation.size", f"must be 0..2^64-1, got {[h[i], w[i]]}")
+    lone = np.flatnonzero([not t.isascii() and _SURROGATE.search(t) is not None for t in texts])
+    if len(lone):
+        _fail(
+            path,
+            base + int(lone[0]),
+            "segmentation.counts",
+            "holds a lone UTF-16 surrogate (a \\udXXX escape): pycocotools 2.0.11 encodes "
+            "the text as UTF-8 (str.encode), which raises UnicodeEncodeError",
+        )
     h = np.array([v & 0xFFFFFFFF for v in h], np.uint64)
     w = np.array([v & 0xFFFFFFFF for v in w], np.uint64)
     values, n_values, unterminated = rle.decode(texts)
