@@ -11,7 +11,8 @@ looked at again here:
 * syntax: the literals outside strings are replaced by JSON strings of the *same
   length* (``"N"``, ``"Infini"``, ``"-Infini"``) and msgspec checks that, so any other
   syntax error keeps its byte position (and thus its line and column);
-* values: a slice whose syntax holds is decoded by ``json.loads`` and converted to
+* values: the slice is decoded by ``json.loads`` (only when that refuses it is its
+  syntax checked as above, for msgspec's error at its position) and converted to
   the typed records by ``msgspec.convert``, whose type errors name the same path
   (``$[3].bbox[2]``) as msgspec's own decoding.
 
@@ -19,7 +20,7 @@ A string may also hold an escaped UTF-16 surrogate without its partner (``"\\ud8
 alone): valid JSON (RFC 8259 section 8.2 allows it), read by Python's ``json`` into a
 ``str`` holding that code point, so pycocotools scores such a file; msgspec refuses it
 ("truncated", "invalid utf-16 surrogate pair"). A slice holding one takes the same
-slow path: for the syntax check it is replaced by ``\\ufffd`` (same length), and the
+slow path: for a syntax check it is replaced by ``\\ufffd`` (same length), and the
 values come from ``json.loads``, so the engine holds the very ``str`` Python's ``json``
 gives — equal, hashed and sorted (by code point, U+D800..U+DFFF between U+D7FF and
 U+E000) exactly as pycocotools compares them. Such text cannot be encoded as UTF-8:
@@ -73,9 +74,9 @@ def nesting(data):
 
 #: One escape of a string, in order: a surrogate pair, a lone surrogate (group 1), or
 #: any other escape (an escaped backslash included, so ``\\\\ud800`` is no escape).
-_ESCAPE = re.compile(
-    rb"\\u[dD][89abAB][0-9a-fA-F]{2}\\u[dD][c-fC-F][0-9a-fA-F]{2}"
-    rb"|(\\u[dD][89a-fA-F][0-9a-fA-F]{2})|\\(?:u[0-9a-fA-F]{4}|.)",
+_ESCAPE = re.compile(  # one literal prefix, so the engine skips to each backslash
+    rb"\\(?:u[dD][89abAB][0-9a-fA-F]{2}\\u[dD][c-fC-F][0-9a-fA-F]{2}"
+    rb"|(u[dD][89a-fA-F][0-9a-fA-F]{2})|u[0-9a-fA-F]{4}|.)",
     re.DOTALL,
 )
 _SURROGATE = re.compile(rb"\\u[dD][89a-fA-F]")
@@ -88,28 +89,23 @@ def has_surrogate(data):
     return _SURROGATE.search(bytes(data)) is not None
 
 
-def _mask_surrogates(string):
-    """A JSON string token with each lone surrogate escape replaced by ``\\ufffd``."""
-    if b"\\" not in string:
-        return string
-    return _ESCAPE.sub(lambda m: _STAND_IN_ESCAPE if m[1] else m[0], string)
-
-
 def has_literal(data):
     """Whether ``data`` may hold a literal (cheap: a substring test)."""
     data = bytes(data)
     return b"NaN" in data or b"Infinity" in data
 
 
-def _stand_in(m):
-    token = m[0]
-    return _mask_surrogates(token) if token[:1] == b'"' else _STAND_IN[token]
-
-
 def masked(data):
     """``data`` with each literal outside strings replaced by a string of equal length,
-    and each lone surrogate escape inside one by a valid escape of equal length."""
-    return _TOKENS.sub(_stand_in, bytes(data))
+    and each lone surrogate escape by a valid escape of equal length (escapes are read
+    in order over the whole text: a backslash outside a string is an error either way,
+    at the same byte)."""
+    data = bytes(data)
+    if has_surrogate(data):
+        data = _ESCAPE.sub(lambda m: _STAND_IN_ESCAPE if m[1] else m[0], data)
+    if has_literal(data):
+        data = _TOKENS.sub(lambda m: _STAND_IN.get(m[0], m[0]), data)
+    return data
 
 
 def _unusual(data):
@@ -152,17 +148,16 @@ def _decode(data, type):
             raise
         if not (_out_of_range(e) or _unusual(data)):
             raise
-        check_syntax(data)  # another syntax error: raised at its own position
         try:
             # strict UTF-8, as pycocotools' text-mode ``open``: an encoded surrogate
             # (bytes ED A0 80) is invalid UTF-8 there, though ``json.loads(bytes)``
             # would pass it
             text = bytes(data).decode("utf-8")
-        except UnicodeDecodeError:  # msgspec's own words for it
-            raise msgspec.DecodeError("Invalid UTF-8 encoded string") from None
-        try:
-            value = json.loads(text)
-        except (ValueError, RecursionError):
+            value = json.loads(text)  # it reads what Python's json reads: no check first
+        except (ValueError, RecursionError) as failed:
+            check_syntax(data)  # a syntax error: msgspec's, at its own position
+            if isinstance(failed, UnicodeDecodeError):  # msgspec's own words for it
+                raise msgspec.DecodeError("Invalid UTF-8 encoded string") from None
             raise e from None
         return _convert(value, text, type)
 
