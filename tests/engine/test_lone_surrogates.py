@@ -16,6 +16,7 @@ import re
 import subprocess
 import sys
 
+import msgspec
 import numpy as np
 import pytest
 from hypothesis import HealthCheck, given, settings
@@ -324,6 +325,7 @@ def test_cli_output_is_utf8_text_and_strict_json(tmp_path):
     report = _cli(*common, "--format", "json")
     assert (report.returncode, report.stderr) == (0, b"")
     parsed = _strict(report.stdout.decode("utf-8"))
+    assert msgspec.json.decode(report.stdout) == parsed  # a strict reader takes it too
     assert parsed["per_class"]['car\\ud800 (id "c\\ud800")']["AP"] == pytest.approx(1.0)
     for suffix in ("csv", "jsonl"):
         out = tmp_path / f"records.{suffix}"
