@@ -34,7 +34,7 @@ import numpy as np
 
 from . import scoring, tide
 from .records import MatchRecords
-from .shards import _BOX_RECORD_FIELDS, _DET_FIELDS, merged_with_order
+from .shards import _BOX_RECORD_FIELDS, _DET_FIELDS, merged_with_order, take_referenced
 
 #: Fields stored once per shard records file (the same in every group).
 _META = ("protocol", "classes", "area_names", "thresholds", "n_images", "tie_order")
@@ -75,7 +75,7 @@ def partition(records, box_index, groups):
     moved = tide.moved_detections(records, fixable)
     bounds = records.class_bounds()
     ref = records.gt_ref_det.astype(np.int64)
-    gt_ref_pos = np.where(ref >= 0, records.det_order[np.maximum(ref, 0)], -1)
+    gt_ref_pos = take_referenced(records.det_order, ref)
     members = {f"meta.{name}": np.asarray(getattr(records, name)) for name in _META}
     for j, (lo, hi) in enumerate(groups):
         dets = slice(int(bounds[lo]), int(bounds[hi]))

@@ -177,6 +177,16 @@ def merge(shards, n_boxes):
     return merged_with_order(shards, n_boxes)[0]
 
 
+def take_referenced(values, ref, offset=0):
+    """``values[ref + offset]`` where ``ref >= 0``, else -1. Only the referenced
+    entries are read: a shard (or class group) with boxes and no detection has an empty
+    ``values``, and ``np.where`` would index it for the unreferenced ones too."""
+    out = np.full(len(ref), -1, np.int64)
+    hit = ref >= 0
+    out[hit] = values[ref[hit] + offset]
+    return out
+
+
 def merged_with_order(shards, n_boxes):
     """``(merge(shards, n_boxes), order)``: ``order[i]`` is the position, in the shards'
     detections one after the other, of the merged records' detection i."""
@@ -229,9 +239,7 @@ def merged_with_order(shards, n_boxes):
         for name in _BOX_RECORD_FIELDS:
             box[name][box_index] = getattr(records, name)
         ref = records.gt_ref_det.astype(np.int64)
-        box["gt_ref_det"][box_index] = np.where(
-            ref >= 0, new_index[np.maximum(ref, 0) + offsets[k]], -1
-        )
+        box["gt_ref_det"][box_index] = take_referenced(new_index, ref, offsets[k])
         gt_ignored[:, box_index] = records.gt_ignored
     gt_void = None
     if any(r.gt_void is not None for r, _ in shards):

@@ -219,3 +219,57 @@ def test_plan_covers_every_class_once():
     assert cg.plan(80, 8) == [(k * 10, k * 10 + 10) for k in range(8)]
     assert cg.plan(3, 8) == [(0, 1), (1, 2), (2, 3)]
     assert cg.plan(5, 2) == [(0, 2), (2, 5)] or cg.plan(5, 2) == [(0, 3), (3, 5)]
+
+
+@pytest.mark.parametrize("protocol", ["coco", "voc"])
+def test_shards_and_groups_with_boxes_but_no_detection(protocol, tmp_path):
+    """A shard, or a class group's part of one, holding boxes (a crowd region among
+    them) and no detection: merged, it is the whole run (it used to index an empty
+    array). Every class has boxes in the last images and detections only in the first."""
+    from evaluation.engine import load_predictions, load_truth
+
+    images = [{"id": i, "width": 100, "height": 100} for i in range(1, 5)]
+    boxes, dets = [], []
+    for image in images:
+        for c in range(1, N_CLASSES + 1):
+            box = [5 + 10 * c, 5 + 5 * image["id"], 12, 15]
+            boxes.append(
+                {
+                    "id": len(boxes) + 1,
+                    "image_id": image["id"],
+                    "category_id": c,
+                    "bbox": box,
+                    "area": 180.0,
+                    "iscrowd": int(image["id"] == 4 and c == N_CLASSES),
+                }
+            )
+            if image["id"] <= 2 and c != 3:
+                dets.append(
+                    {
+                        "image_id": image["id"],
+                        "category_id": c,
+                        "bbox": [box[0] + 1, box[1], 12, 15],
+                        "score": 0.5 + 0.05 * c,
+                    }
+                )
+    split = {
+        "images": images,
+        "annotations": boxes,
+        "categories": [{"id": c, "name": f"c{c}"} for c in range(1, N_CLASSES + 1)],
+    }
+    (tmp_path / "truth.json").write_text(json.dumps(split))
+    (tmp_path / "dets.json").write_text(json.dumps(dets))
+    truth = load_truth(tmp_path / "truth.json")
+    predictions = load_predictions(tmp_path / "dets.json", truth)
+    whole = match(truth, predictions, protocol)
+    expected = annotate(
+        score_records(whole, protocol, tag_masks={}), truth, predictions, whole, protocol
+    )
+    for images_per_shard, n_groups in [(1, N_CLASSES), (1, 2), (3, 3)]:
+        out = tmp_path / f"{images_per_shard}-{n_groups}"
+        out.mkdir()
+        result, breakdown, merged = _grouped(
+            truth, predictions, protocol, images_per_shard, n_groups, out
+        )
+        _same_records(whole, merged)
+        assert json.dumps(result) == json.dumps(expected)
