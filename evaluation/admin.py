@@ -35,6 +35,7 @@ class BenchmarkSplitAdmin(ReadOnlyAdmin):
         "image_count",
         "box_count",
         "annotation_policy",
+        "vis_ratio_reading",
         "annotations_left_out",
         "sha256",
         "frozen_at",

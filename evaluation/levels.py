@@ -292,7 +292,10 @@ def split_counts(truth):
     per level protocol its ``counts`` (boxes per level and class, don't-care regions,
     attributes given), and boxes per occlusion level, truncation and visibility bucket
     (the buckets follow the KITTI levels' limits and the pedestrian setups' visibility
-    limits, PROTOCOLS.md §8/§9). None when the split gives no attribute and no region."""
+    limits, PROTOCOLS.md §8/§9), and for a COCO JSON split read with its ``vis_ratio``
+    key how many visibilities came from that key (``visibility_from_vis_ratio``,
+    ``vis_ratio_beside_visibility``; absent when the split was read without it). None
+    when the split gives no attribute and no region."""
     given = {
         name: int((~np.isnan(getattr(truth, name))).sum())
         for name in ("occlusion", "truncation", "visibility")
@@ -314,7 +317,13 @@ def split_counts(truth):
     truncation, over = buckets(truth.truncation, TRUNCATION, closed_low=False)
     truncation.append(["> 0.50", over])
     visibility, _ = buckets(truth.visibility, VISIBILITY, closed_low=True)
+    sources = {
+        key: int(truth.box_counts[key])
+        for key in ("visibility_from_vis_ratio", "vis_ratio_beside_visibility")
+        if key in truth.box_counts
+    }
     return {
+        **sources,
         "protocols": {name: p.counts(truth) for name, p in LEVEL_PROTOCOLS.items()},
         "attributes_given": given,
         "boxes": int(truth.n_boxes),

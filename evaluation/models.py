@@ -44,6 +44,14 @@ class BenchmarkSplit(models.Model):
         "resolves to its last annotation, annotations of unlisted images or categories left "
         "out, counted) or strict (such files refused).",
     )
+    vis_ratio_reading = models.CharField(
+        max_length=6,
+        default="read",
+        help_text="How an annotation's vis_ratio key was read: read (the visibility where "
+        "visibility is absent, as the city-scale evaluation script reads it; counted) or "
+        "unread (skipped: splits frozen before it was read keep that reading and their "
+        "content hash).",
+    )
     annotations_left_out = models.JSONField(
         default=dict,
         blank=True,

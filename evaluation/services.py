@@ -38,6 +38,11 @@ ENGINE_IDS = "any"
 #: How a split's annotations are read (``engine.load_truth(annotations=)``): the
 #: default is pycocotools' reading, counted; ``strict`` refuses such files.
 ANNOTATION_POLICIES = ("reference", "strict")
+#: How a new split reads an annotation's ``vis_ratio`` key (``engine.load_truth
+#: (vis_ratio=)``): as the city-scale evaluation script does. A stored split keeps the
+#: reading it was frozen with (``BenchmarkSplit.vis_ratio_reading``; migration 0022
+#: sets ``unread`` on splits frozen before), so its content hash still matches.
+VIS_RATIO_READING = "read"
 #: Detections of classes the split does not list (``engine.load_predictions
 #: (unknown_classes=)``): the default drops them as pycocotools does, counted and named
 #: in the result; ``reject`` refuses the file.
@@ -171,6 +176,7 @@ def load_split(
                 fmt=source_format,
                 ids=ENGINE_IDS,
                 annotations=policy,
+                vis_ratio=VIS_RATIO_READING,
             )
         except engine.InputError as e:
             e.argument = "images" if images_path and str(e.path) == images_path else "truth"
@@ -203,6 +209,7 @@ def load_split(
             source_format=source_format,
             road_counts=levels.split_counts(loaded),
             annotation_policy=policy,
+            vis_ratio_reading=VIS_RATIO_READING,
             annotations_left_out={
                 key: int(loaded.box_counts.get(key, 0))
                 for key in engine.ANNOTATION_COUNTS
@@ -265,8 +272,16 @@ def road_counts_of(split):
 
 
 def _read_truth(split, boxes):
-    """The stored split read under the annotation policy it was frozen with."""
-    annotations = input_policy(annotations=split.annotation_policy)["annotations"]
+    """The stored split read under the annotation policy and ``vis_ratio`` reading it
+    was frozen with. A historical model of a migration before those fields existed
+    (0016 counts older splits) lacks them: such splits were read strictly, without
+    ``vis_ratio`` (the defaults migrations 0021 and 0022 give their rows)."""
+    policy = getattr(split, "annotation_policy", "strict")
+    annotations = input_policy(annotations=policy)["annotations"]
+    reading = {
+        "annotations": annotations,
+        "vis_ratio": getattr(split, "vis_ratio_reading", "unread"),
+    }
     with local_path(split.truth_file) as truth_path:
         if split.images_file:
             with local_path(split.images_file) as images_path:
@@ -276,14 +291,14 @@ def _read_truth(split, boxes):
                     cache_dir=_cache_dir(),
                     boxes=boxes,
                     ids=ENGINE_IDS,
-                    annotations=annotations,
+                    **reading,
                 )
         return engine.load_truth(
             truth_path,
             cache_dir=_cache_dir(),
             boxes=boxes,
             ids=ENGINE_IDS,
-            annotations=annotations,
+            **reading,
         )
 
 

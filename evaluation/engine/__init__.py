@@ -18,7 +18,14 @@ from .difficulty import DIFFICULTY_PRESETS, evaluate_levels, level_counts
 from .errors import InputError
 from .evaluate import counts, evaluate
 from .level_provenance import PROVENANCE_KEYS, annotate_levels
-from .loaders import BOX_POLICIES, detect_format, is_collection, load_predictions, load_truth
+from .loaders import (
+    BOX_POLICIES,
+    VIS_RATIO_READINGS,
+    detect_format,
+    is_collection,
+    load_predictions,
+    load_truth,
+)
 from .loaders.annotation_index import COUNTS as ANNOTATION_COUNTS
 from .loaders.cache import Cache
 from .loaders.voc_results import is_result_file as is_voc_result_name
@@ -45,6 +52,7 @@ __all__ = [
     "MatchRecords",
     "Predictions",
     "Protocol",
+    "VIS_RATIO_READINGS",
     "annotate",
     "annotate_levels",
     "counts",

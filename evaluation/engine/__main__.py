@@ -109,6 +109,14 @@ def build_parser():
         "a repeated id resolves to its last annotation, annotations of unlisted images or "
         "categories are left out, all counted) or refuse such files",
     )
+    score.add_argument(
+        "--vis-ratio",
+        choices=("read", "unread"),
+        default="read",
+        help="COCO JSON ground truth: read an annotation's vis_ratio key as its visibility "
+        "where visibility is absent (default, as the city-scale evaluation script), or "
+        "skip it (the reading of engines before 2.9.0)",
+    )
     score.add_argument("--cache", metavar="DIR", help="keep parsed input as .npz here")
     score.add_argument("--records", metavar="FILE.npz", help="also write the match records")
     score.add_argument(
@@ -153,6 +161,7 @@ def main(argv=None):
             cache_dir=args.cache,
             boxes=args.boxes,
             annotations=args.annotations,
+            vis_ratio=args.vis_ratio,
         )
         if not levels and args.protocol not in PRESETS:  # its classes, named by its file
             try:

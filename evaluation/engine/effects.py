@@ -106,7 +106,8 @@ MISS_RATE_EFFECTS = {
     "tie_order": "the order of detections tied in score (and where NaN scores rank) along "
     "the curve; it moves the miss rate only when scores tie",
     "area_source": "setups sort boxes by height and visibility, not area; a difference "
-    "here says that one result is not a miss-rate one",
+    "here says that one result is not a miss-rate one, or that the splits' visibility was "
+    "read from other keys (one read an annotation's vis_ratio key, the other did not)",
     "size_ranges": "setups have no size buckets; a difference here says that one result is "
     "not a miss-rate one",
     "miss_rate": "how the miss rate is read at each FPPI point: the rule where the curve "

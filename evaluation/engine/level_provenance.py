@@ -114,7 +114,13 @@ def _miss_rate_record(name, truth):
         ),
         "pixel_offset": 0,
         "area_source": {
-            "truth": "not read: setups by box height and visibility",
+            "truth": "not read: setups by box height and visibility ("
+            + (
+                "an annotation's visibility key, else its vis_ratio key"
+                if "visibility_from_vis_ratio" in truth.box_counts
+                else "an annotation's visibility key; a vis_ratio key is not read"
+            )
+            + "; how many from vis_ratio: counts.boxes.truth)",
             "predictions": "not read: detections by height (expanded range)",
         },
         "size_ranges": [],

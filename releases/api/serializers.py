@@ -62,6 +62,7 @@ class SplitSerializer(serializers.ModelSerializer):
             "sha256",
             "source_format",
             "annotation_policy",
+            "vis_ratio_reading",
             "annotations_left_out",
             "left_out",
             "created_by",

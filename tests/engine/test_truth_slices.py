@@ -3,7 +3,9 @@ with ``json_syntax.check``'s sink) and must give what a whole-document typed dec
 msgspec gives: the same columns on valid files, and on files with a type error (a
 wrong type anywhere, a missing field or array, an id beyond 64 bits, a number out of
 range, invalid UTF-8, a repeated key) the same message naming record and field.
-Slices of 16 and 64 bytes make every cut land everywhere."""
+Slices of 16 and 64 bytes make every cut land everywhere. Read with the ``vis_ratio``
+key (``vis_ratio=True``) and without (then the key is skipped like any unknown key,
+whatever it holds, and the column is all NaN)."""
 
 import json
 import random
@@ -19,12 +21,19 @@ from evaluation.engine.loaders.ids import escaped
 from . import whole_file
 
 
-def _whole(path, data):
+class _DatasetWithVisRatio(msgspec.Struct):
+    images: list[coco_json._Image]
+    categories: list[coco_json._Category]
+    annotations: list[coco_json._AnnotationWithVisRatio] = []
+    dont_care: list[coco_json._Region] = []
+
+
+def _whole(path, data, vis_ratio=False):
     """The reference: one msgspec decode of the whole document, then the columns;
     NaN/Infinity and out-of-range numbers (1e999) read as Python's json reads them
     (``json_literals.decode`` on the whole document)."""
     try:
-        d = json_literals.decode(data, coco_json._Dataset)
+        d = json_literals.decode(data, _DatasetWithVisRatio if vis_ratio else coco_json._Dataset)
     except msgspec.ValidationError as e:
         return str(coco_json.validation_error(path, e, top_level_list=False))
     except msgspec.DecodeError as e:
@@ -68,14 +77,17 @@ def _whole(path, data):
         "occlusion": opt(a.occlusion for a in anns),
         "truncation": opt(a.truncation for a in anns),
         "visibility": opt(a.visibility for a in anns),
+        "vis_ratio": opt(a.vis_ratio for a in anns) if vis_ratio else np.full(len(anns), np.nan),
         "region_image_ids": np.array(whole["dont_care", "image_id"], np.int64),
         "regions": np.array([r.bbox for r in d.dont_care], np.float64).reshape(-1, 4),
     }
 
 
-def _sliced(path):
+def _sliced(path, vis_ratio=False):
     try:
-        cols = coco_json.read_truth(path)  # typed throughout: nothing is left unread
+        cols = coco_json.read_truth(
+            path, vis_ratio=vis_ratio
+        )  # typed throughout: nothing is left unread
     except InputError as e:
         return str(e)
     assert not any(cols.pop("unread_counts").values()) and not cols.pop("bad_rows")
@@ -111,6 +123,7 @@ def _document(rng):
                 "iscrowd": rng.choice([0, 1, True]),
                 "segmentation": [[1, 2, 3, 4]],
                 "occlusion": rng.choice([None, 1]),
+                "vis_ratio": rng.choice([None, 0.4, 1]),
             }
             for i in range(rng.randint(0, 10))
         ],
@@ -146,11 +159,12 @@ def _document(rng):
     return text.replace('"@@BAD@@"', rng.choice(BAD_VALUES))
 
 
+@pytest.mark.parametrize("vis_ratio", [False, True])
 @pytest.mark.parametrize("scan_first", [False, True])
 @pytest.mark.parametrize("chunk", [16, 64])
 @pytest.mark.parametrize("seed", range(4))
 def test_sliced_decoding_agrees_with_a_whole_document_decode(
-    files, monkeypatch, seed, chunk, scan_first
+    files, monkeypatch, seed, chunk, scan_first, vis_ratio
 ):
     """``scan_first``: every file gets the syntax-only scan first, whose record counts
     let the columns be allocated at full length and filled in place."""
@@ -165,7 +179,7 @@ def test_sliced_decoding_agrees_with_a_whole_document_decode(
         path = files.write(f"split{n}.json", "")
         with open(path, "wb") as f:
             f.write(data)
-        expected, got = _whole(path, data), _sliced(path)
+        expected, got = _whole(path, data, vis_ratio), _sliced(path, vis_ratio)
         if isinstance(expected, str):
             assert got == expected, data
             outcomes.add(expected.split(":")[1].split(" ")[1])

@@ -41,6 +41,7 @@ __all__ = [
     "load_predictions",
     "load_truth",
     "stream_predictions",
+    "VIS_RATIO_READINGS",
 ]
 
 #: Bumped when the parsed columns change shape or meaning: old cache entries are unused.
@@ -106,6 +107,7 @@ def load_truth(
     boxes="keep",
     ids="any",
     annotations="reference",
+    vis_ratio="read",
 ):
     """Load a benchmark split.
 
@@ -127,6 +129,12 @@ def load_truth(
         categories are left out, all counted (``annotation_index``); ``strict`` (a
         platform option; its default is ``reference`` too) refuses them naming the
         record.
+    vis_ratio : ``"read"`` (default) or ``"unread"``, COCO JSON only
+        ``read``: an annotation's ``vis_ratio`` key (the city-scale benchmark's, as its
+        ``eval_MR_multisetup.py`` reads it) is the visibility where ``visibility`` is
+        absent, counted in ``box_counts`` (``attributes.VISIBILITY_SOURCE_COUNTS``,
+        every format); ``unread``: the key is skipped, the reading of splits frozen
+        before it was read (their content hash unchanged).
     """
     _exists(path)
     checks.check_policy(path, boxes)
@@ -135,6 +143,11 @@ def load_truth(
         raise InputError(
             path,
             f"unknown annotation policy {annotations!r}; use {', '.join(ANNOTATION_POLICIES)}",
+        )
+    if vis_ratio not in VIS_RATIO_READINGS:
+        raise InputError(
+            path,
+            f"unknown vis_ratio reading {vis_ratio!r}; use {', '.join(VIS_RATIO_READINGS)}",
         )
     fmt = _format(path, fmt)
     if fmt == "csv" and images is None:
@@ -152,11 +165,16 @@ def load_truth(
     }
     if annotations != "reference":  # the default keeps the keys of existing entries
         key["annotations"] = annotations
+    if vis_ratio == "read":  # entries from before the key was read hold "unread"
+        key["vis_ratio"] = vis_ratio
     build = lambda: truth_columns.read_truth(  # noqa: E731
-        path, images, fmt, classes, boxes, ids, annotations
+        path, images, fmt, classes, boxes, ids, annotations, vis_ratio
     )
     return cached(cache_dir, sources, key, build, "truth")
 
+
+#: How an annotation's ``vis_ratio`` key is read (``load_truth(vis_ratio=)``).
+VIS_RATIO_READINGS = ("read", "unread")
 
 #: ``any``: JSON ids of any size (pycocotools keeps Python ints); ``int64``: refused
 #: outside signed 64 bits.

@@ -59,6 +59,7 @@ PER_ANNOTATION = (
     "occlusion",
     "truncation",
     "visibility",
+    "vis_ratio",
 )
 
 

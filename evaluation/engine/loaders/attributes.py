@@ -8,7 +8,13 @@ class-agnostic boxes that no class owns.
 
 In COCO-style JSON the attributes are annotation keys ``occlusion``, ``truncation``,
 ``visibility`` and the regions a top-level list ``dont_care`` of ``{"image_id",
-"bbox"}``; in a boxes CSV they are columns of those names, and a row with
+"bbox"}``. Read with ``vis_ratio="read"`` (``load_truth``'s default), an annotation's
+``vis_ratio`` key (the city-scale benchmark's name, read by its ``eval_MR_multisetup.py``
+``_prepare``) is the visibility of a box without a readable ``visibility``: where
+both are given ``visibility`` wins (the key every protocol here reads; counted as
+``vis_ratio_beside_visibility``), and each ``vis_ratio`` read is counted
+(``visibility_from_vis_ratio``). A ``vis_ratio`` outside 0-1 or of another type is
+treated as a ``visibility`` would be. In a boxes CSV they are columns of those names, and a row with
 ``dont_care`` = 1 is a region (its label is not read).
 """
 
@@ -22,7 +28,14 @@ def _column(cols, name, n):
     return np.full(n, np.nan) if values is None else np.asarray(values, np.float64)
 
 
-def finish(path, cols, image_ids, box_locate, region_path, region_locate, unread=None):
+#: Where the visibility came from, in ``GroundTruth.box_counts`` of a split read with
+#: ``vis_ratio="read"`` (every format; 0 where the key cannot occur).
+VISIBILITY_SOURCE_COUNTS = ("visibility_from_vis_ratio", "vis_ratio_beside_visibility")
+
+
+def finish(
+    path, cols, image_ids, box_locate, region_path, region_locate, unread=None, sources=None
+):
     """Checked attribute columns and regions resolved to image indices, as
     ``GroundTruth`` keyword arguments. ``cols["region_image_ids"]`` must already be
     typed like ``image_ids``.
@@ -30,7 +43,9 @@ def finish(path, cols, image_ids, box_locate, region_path, region_locate, unread
     With ``unread`` (a counts dict: COCO JSON read as pycocotools reads it, which never
     looks at these keys) a value that fails a check is left unread instead — NaN, a
     region left out — and counted (``unread_attributes``, ``unread_dont_care``);
-    without, it is refused naming the record and the field."""
+    without, it is refused naming the record and the field. ``cols["vis_ratio"]``
+    (optional) fills the visibility where it is NaN after its checks; ``sources`` (a
+    counts dict, optional) gets ``VISIBILITY_SOURCE_COUNTS``."""
     n = len(cols["boxes"])
     occlusion = _column(cols, "occlusion", n)
     truncation = _column(cols, "truncation", n)
@@ -64,6 +79,21 @@ def finish(path, cols, image_ids, box_locate, region_path, region_locate, unread
         "visibility",
         lambda i: f"the visible fraction lies within 0-1, got {visibility[i]:g}",
     )
+    vis_ratio = _column(cols, "vis_ratio", n)
+    vis_ratio = bad(
+        vis_ratio,
+        ~np.isnan(vis_ratio) & ~((vis_ratio >= 0) & (vis_ratio <= 1)),
+        "vis_ratio",
+        lambda i: f"the visible fraction lies within 0-1, got {vis_ratio[i]:g}",
+    )
+    from_ratio = np.isnan(visibility) & ~np.isnan(vis_ratio)
+    if sources is not None:
+        sources["visibility_from_vis_ratio"] = int(from_ratio.sum())
+        sources["vis_ratio_beside_visibility"] = int(
+            (~np.isnan(visibility) & ~np.isnan(vis_ratio)).sum()
+        )
+    if from_ratio.any():
+        visibility = np.where(from_ratio, vis_ratio, visibility)
     region_ids = cols.get("region_image_ids")
     regions = np.asarray(cols.get("regions", np.zeros((0, 4))), np.float64).reshape(-1, 4)
     if region_ids is None or len(regions) == 0:

@@ -59,6 +59,13 @@ class _Annotation(msgspec.Struct, gc=False):
     visibility: float | None = None
 
 
+class _AnnotationWithVisRatio(_Annotation, gc=False):
+    """An annotation read with the city-scale benchmark's ``vis_ratio`` key
+    (``vis_ratio="read"``): the visibility where ``visibility`` is absent."""
+
+    vis_ratio: float | None = None
+
+
 class _Region(msgspec.Struct, gc=False):
     image_id: Id
     bbox: tuple[float, float, float, float]
@@ -187,7 +194,7 @@ def int_column(path, values, locate, field, wide=False):
     raise AssertionError("unreachable: every id fits int64")
 
 
-def read_truth(path, wide=False, loose=False):
+def read_truth(path, wide=False, loose=False, vis_ratio=False):
     """Decode a COCO-style ground-truth file into plain columns.
 
     Read a few MB at a time (``json_syntax.check``): the syntax is checked in
@@ -199,7 +206,10 @@ def read_truth(path, wide=False, loose=False):
     anywhere first, then the first type error in file order. A truncated file, or one
     beyond ``SYNTAX_FIRST_BYTES``, gets the syntax check alone first. With ``loose``,
     values pycocotools never reads are left unread when of another type
-    (``unread_fields``; counted in the columns' ``unread_counts``).
+    (``unread_fields``; counted in the columns' ``unread_counts``). With
+    ``vis_ratio`` the annotations' ``vis_ratio`` key is read too (column ``vis_ratio``,
+    NaN where absent; ``attributes.finish`` decides which key is the visibility);
+    without, it is skipped like any unknown key and the column is all NaN.
     """
     with open(path, "rb") as f:
         size = f.seek(0, 2)
@@ -218,7 +228,7 @@ def read_truth(path, wide=False, loose=False):
             # A syntax error or truncation is found without building any column; the
             # records it counts let the columns be allocated once, at full length.
             totals = json_syntax.check(path, f, skip).totals
-        records = _Records(path, wide, totals, loose)
+        records = _Records(path, wide, totals, loose, vis_ratio)
         checker = json_syntax.check(path, f, skip, sink=records)
         return records.columns(checker)
 
@@ -284,8 +294,13 @@ class _Records:
     the outer object before its array) and raised by ``columns`` once the whole
     syntax is known to be valid, so a syntax error anywhere still comes first."""
 
-    def __init__(self, path, wide=False, totals=None, loose=False):
-        self.path, self.wide, self.loose = path, wide, loose
+    def __init__(self, path, wide=False, totals=None, loose=False, vis_ratio=False):
+        self.path, self.wide, self.loose, self.vis_ratio = path, wide, loose, vis_ratio
+        self.types = dict(_RECORDS)
+        self.loose_types = dict(unread_fields.LOOSE)
+        if vis_ratio:
+            self.types["annotations"] = list[_AnnotationWithVisRatio]
+            self.loose_types["annotations"] = unread_fields.LOOSE_WITH_VIS_RATIO
         self.unread = dict.fromkeys(unread_fields.COUNTS, 0)
         self.bad_rows = {}  # annotation row -> (field, message): raised if it is scored
         self.totals = totals or {}  # records per array, from a syntax-only scan
@@ -306,11 +321,11 @@ class _Records:
                 del self.out_of_range[field_key]
         try:
             try:
-                decoded = json_literals.decode(records, _RECORDS[key])
+                decoded = json_literals.decode(records, self.types[key])
             except msgspec.ValidationError as e:
                 if not (self.loose and unread_fields.loose_field(key, str(e))):
                     raise
-                loose = json_literals.decode(records, unread_fields.LOOSE[key])
+                loose = json_literals.decode(records, self.loose_types[key])
                 decoded = unread_fields.normalise(
                     key, loose, self.unread, base=self.count[key], bad=self.bad_rows
                 )
@@ -390,6 +405,7 @@ class _Records:
             "occlusion": given("occlusion"),
             "truncation": given("truncation"),
             "visibility": given("visibility"),
+            "vis_ratio": (given("vis_ratio") if self.vis_ratio else np.full(len(anns), np.nan)),
         }
 
     def crowd_columns(self, values, base):

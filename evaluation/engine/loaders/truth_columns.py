@@ -76,10 +76,17 @@ def _order(values, id_type):
     return ids_module.sort_order(values) if id_type else np.argsort(values, kind="stable")
 
 
-def read_truth(path, images, fmt, classes, policy, ids="any", annotations="reference"):
+def read_truth(
+    path, images, fmt, classes, policy, ids="any", annotations="reference", vis_ratio="read"
+):
     entry_counts, bad_rows = {}, {}
     if fmt == "json":
-        cols = coco_json.read_truth(path, wide=ids == "any", loose=annotations != "strict")
+        cols = coco_json.read_truth(
+            path,
+            wide=ids == "any",
+            loose=annotations != "strict",
+            vis_ratio=vis_ratio == "read",
+        )
         entry_counts.update(cols.pop("unread_counts"))
         bad_rows = cols.pop("bad_rows")
         image_locate = lambda i: f"images[{i}]"  # noqa: E731
@@ -215,8 +222,18 @@ def read_truth(path, images, fmt, classes, policy, ids="any", annotations="refer
         area = np.where(given, area, boxes[:, 2] * boxes[:, 3])
 
     loose = fmt == "json" and annotations != "strict"
+    # Read with vis_ratio="unread" (splits frozen before the key was read) a split has
+    # neither the column nor the counts: its columns and counts are those it had then.
+    sources = dict.fromkeys(attributes.VISIBILITY_SOURCE_COUNTS, 0)
     road = attributes.finish(
-        path, cols, image_ids, box_locate, path, region_locate, annotation_counts if loose else None
+        path,
+        cols,
+        image_ids,
+        box_locate,
+        path,
+        region_locate,
+        annotation_counts if loose else None,
+        sources if vis_ratio == "read" else None,
     )
     names = [cols["class_names"][i] for i in class_order]
     tags = [cols["image_tags"][i] for i in image_order]
@@ -250,6 +267,7 @@ def read_truth(path, images, fmt, classes, policy, ids="any", annotations="refer
             # in five formats gives one result
             "iscrowd_outside_0_255": (int(cols["crowd_wide"].sum()) if "crowd_wide" in cols else 0),
             **annotation_counts,
+            **(sources if vis_ratio == "read" else {}),
         },
         **road,
     )

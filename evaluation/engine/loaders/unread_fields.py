@@ -4,10 +4,12 @@ Of a ground-truth file pycocotools 2.0.11 reads only the ids, ``bbox``, ``area``
 ``iscrowd`` (``COCO.createIndex``, ``COCOeval._prepare``, ``computeIoU``,
 ``evaluateImg``). An image's ``width``/``height``, a category's ``name`` and keys of
 our own (``tags``, ``difficult``, ``ignore``, ``occlusion``, ``truncation``, ``visibility``,
-``dont_care``) are never looked at there, so a file holding ``"width": "640"`` or
-``"occlusion": "partial"`` is one it scores. Here such a value, of a type its field
-cannot hold, is left unread — as if absent — and counted (``COUNTS``, shown with the
-split); ``annotations="strict"`` refuses it, naming the record and the field.
+``dont_care``) and the city-scale benchmark's ``vis_ratio`` (read as the visibility where
+``visibility`` is absent, under ``vis_ratio="read"``) are never looked at there, so a
+file holding ``"width": "640"`` or ``"occlusion": "partial"`` is one it scores. Here
+such a value, of a type its field cannot hold, is left unread — as if absent — and
+counted (``COUNTS``, shown with the split); ``annotations="strict"`` refuses it, naming
+the record and the field.
 
 An ``iscrowd`` of text or null, which pycocotools does read, is read as it reads it
 (``crowd_value``) and counted (``iscrowd_text_or_null``).
@@ -47,6 +49,7 @@ _COUNT_OF = {
     ("annotations", "occlusion"): "unread_attributes",
     ("annotations", "truncation"): "unread_attributes",
     ("annotations", "visibility"): "unread_attributes",
+    ("annotations", "vis_ratio"): "unread_attributes",
 }
 
 
@@ -76,6 +79,10 @@ class _Annotation(msgspec.Struct, gc=False):
     visibility: Any = None
 
 
+class _AnnotationWithVisRatio(_Annotation, gc=False):
+    vis_ratio: Any = None
+
+
 class Region(msgspec.Struct, gc=False):
     image_id: JSON_ID
     bbox: tuple[float, float, float, float]
@@ -87,10 +94,12 @@ LOOSE = {
     "annotations": list[_Annotation],
     "dont_care": list[Any],
 }
+#: The loose annotations of a file read with its ``vis_ratio`` key.
+LOOSE_WITH_VIS_RATIO = list[_AnnotationWithVisRatio]
 
 
 #: Number fields read loosely: an integer beyond float64 among them is infinite.
-_NUMBERS = ("width", "height", "occlusion", "truncation", "visibility")
+_NUMBERS = ("width", "height", "occlusion", "truncation", "visibility", "vis_ratio")
 
 
 def _number(value):
@@ -264,6 +273,8 @@ def normalise(key, records, counts, base=0, bad=None):
     fields = [name for (k, name) in _COUNT_OF if k == key]
     for record in records:
         for name in fields:
+            if name not in record.__struct_fields__:  # vis_ratio, when not read
+                continue
             value = getattr(record, name)
             if not _fits(key, name, value):
                 fixed = crowd_value(value) if name == "iscrowd" else _DEFAULTS.get(name)
