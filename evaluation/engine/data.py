@@ -222,8 +222,9 @@ class Predictions:
     #: (``loaders.exact_scores``): per checked cap, the refusal ``match`` raises under
     #: the COCO order; empty for a file without such scores.
     score_conflicts: dict = field(default_factory=dict)
-    #: Each detection's area for size ranges, when the file gives masks (pycocotools'
-    #: ``loadRes`` takes a segmentation's RLE area, ``loaders/mask_results.py``);
+    #: Each detection's area for size ranges, when the file is not read as boxes
+    #: (pycocotools' ``loadRes``: a segmentation's RLE area, ``loaders/mask_results.py``;
+    #: the result's own area or its keypoints' extent, ``loaders/result_readings.py``);
     #: None: w * h of the box.
     area: np.ndarray = None
 

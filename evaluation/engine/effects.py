@@ -37,7 +37,9 @@ EFFECTS = {
     "box_policy": "what happens to boxes leaving the frame; clipping changes the IoU of "
     "overhanging predictions (often raising it), reject refuses such files",
     "area_source": "which areas sort ground truth and detections into size buckets (a "
-    "detection's w*h, or its mask's RLE area when the file gives masks); it moves the "
+    "detection's w*h, its mask's RLE area when the file gives masks, its own area when "
+    "the first result has a caption key, its keypoints' extent when the file gives "
+    "keypoints); it moves the "
     "small/medium/large numbers and which unmatched detections count",
     "size_ranges": "the size bucket bounds; they move the small/medium/large numbers",
     "miss_rate": "how the log-average miss rate is read off the curve",

@@ -154,7 +154,7 @@ def match(truth, predictions, protocol, *, reasons=True):
     # inf * 0: NaN, as in loadRes; subnormal sides underflow to 0 as in C
     with np.errstate(invalid="ignore", over="ignore", under="ignore"):
         det_area = det_boxes[:, 2] * det_boxes[:, 3]
-    if predictions.area is not None:  # masks: their RLE area, as loadRes gives it
+    if predictions.area is not None:  # masks, captions, keypoints: as loadRes gives it
         det_area = predictions.area[order]
 
     base_ignore = truth.crowd | truth.ignore

@@ -108,14 +108,27 @@ def protocol_record(protocol, truth, predictions, records, result):
 
 def _prediction_area(predictions):
     """Where the detections' areas (size ranges) came from: a setting, so the same for
-    any two files read alike (how many: ``counts.boxes.predictions.mask_area``)."""
-    if predictions.box_counts.get("mask_area") is None:
-        return "w*h (negative when one side is: outside every bounded range)"
-    return (
-        "mask area (RLE) of each result's segmentation, as pycocotools "
-        "2.0.11 loadRes reads a file whose first result has a segmentation and no bbox; "
-        "a missing bbox is the mask's (rleToBbox)"
-    )
+    any two files read alike (how many: ``counts.boxes.predictions.mask_area``,
+    ``given_area`` or ``keypoint_area``)."""
+    counted = predictions.box_counts
+    if counted.get("mask_area") is not None:
+        return (
+            "mask area (RLE) of each result's segmentation, as pycocotools "
+            "2.0.11 loadRes reads a file whose first result has a segmentation and no bbox; "
+            "a missing bbox is the mask's (rleToBbox)"
+        )
+    if counted.get("given_area") is not None:
+        return (
+            "each result's own area and bbox as given, as pycocotools 2.0.11 loadRes "
+            "reads a file whose first result has a caption key"
+        )
+    if counted.get("keypoint_area") is not None:
+        return (
+            "keypoints' extent: bbox [x0, y0, x1-x0, y1-y0] and area (x1-x0)*(y1-y0) "
+            "over every keypoint, replacing any given bbox, as pycocotools 2.0.11 loadRes "
+            "reads a file whose first result has keypoints and no bbox or segmentation"
+        )
+    return "w*h (negative when one side is: outside every bounded range)"
 
 
 def counts(truth, predictions, records):

@@ -108,7 +108,7 @@ def test_detection_columns_agree_with_python_json(tmp_path):
     ]
     path = tmp_path / "dt.json"
     path.write_text(json.dumps(records))
-    image, cls, boxes, score, _ = coco_json.read_detections(path)
+    image, cls, boxes, score, *_ = coco_json.read_detections(path)
     expected = json.loads(path.read_text())  # the reference reading
     assert image.tolist() == [int(r["image_id"]) for r in expected]
     assert cls.tolist() == [int(r["category_id"]) for r in expected]
@@ -124,7 +124,7 @@ def test_detection_columns_agree_with_python_json(tmp_path):
 def test_empty_and_refused_detection_files(tmp_path):
     path = tmp_path / "empty.json"
     path.write_text("[]")
-    image, cls, boxes, score, _ = coco_json.read_detections(path)
+    image, cls, boxes, score, *_ = coco_json.read_detections(path)
     assert boxes.shape == (0, 4) and len(image) == len(cls) == len(score) == 0
     bad = tmp_path / "bad.json"
     bad.write_text(

@@ -15,7 +15,7 @@ import msgspec
 import numpy as np
 
 from ..errors import InputError
-from . import json_literals, json_syntax, mask_results, unread_fields
+from . import json_literals, json_syntax, mask_results, result_readings, unread_fields
 from .checks import text_start
 from .ids import JSON_ID, escaped
 
@@ -593,9 +593,12 @@ def _decode_slice(piece, path="", base=0, mode=mask_results.BOXES):
     """Typed detections of a slice; one whose typed decode fails on a ``bbox`` or
     ``score`` is decoded again loosely (``unread_fields.normalise_detections``).
     Under ``mask_results.MASKS`` (the file's first result has a segmentation and no
-    box) the records of ``mask_results.decode``."""
+    box) the records of ``mask_results.decode``; under the other readings of
+    ``result_readings`` those of its ``decode``."""
     if mode == mask_results.MASKS:
         return mask_results.decode(piece, path, base)
+    if mode in result_readings.MODES:
+        return result_readings.decode(piece, path, base, mode)
     try:
         return json_literals.decode(piece, list[_Detection])
     except msgspec.ValidationError as e:
@@ -695,17 +698,21 @@ def _stream(path, f, skip, build=True, wide=False, decode=None):
 
 
 def _block(records, path, base, wide, mode, build):
-    """A slice's columns (image ids, class ids, boxes, scores, areas: None unless the
-    file is read as masks), or with ``build=False`` its record count (a mask-reading
-    slice is still checked whole)."""
+    """A slice's columns (image ids, class ids, boxes, scores, areas: None when the
+    file is read as boxes, and the reading: ``mask_results.mode``), or with
+    ``build=False`` its record count (a mask-reading slice is still checked whole)."""
+    if mode in result_readings.MODES:
+        if not build:
+            return len(records)
+        return (*_columns(records, path, base, wide), result_readings.area(records), mode)
     if mode != mask_results.MASKS:
-        return (*_columns(records, path, base, wide), None) if build else len(records)
+        return (*_columns(records, path, base, wide), None, None) if build else len(records)
     boxes, area = mask_results.columns(records, path, base)
     if not build:
         return len(records)
     for record, box in zip(records, boxes.tolist()):
         record.bbox = box
-    return (*_columns(records, path, base, wide), area)
+    return (*_columns(records, path, base, wide), area, mode)
 
 
 def _check_prefix(path, buf, where, base, mode):
@@ -749,7 +756,14 @@ def read_detections(path, wide=False):
         parts = list(_stream(path, f, skip, wide=wide))
     if not parts:
         return empty_columns()
-    return tuple(None if column[0] is None else np.concatenate(column) for column in zip(*parts))
+    return tuple(_joined(column) for column in zip(*parts))
+
+
+def _joined(column):
+    """One column of the blocks joined (the reading: the first block's)."""
+    if column[0] is None or isinstance(column[0], str):
+        return column[0]
+    return np.concatenate(column)
 
 
 def detection_blocks(path, wide=False, decode=None):
@@ -763,7 +777,7 @@ def detection_blocks(path, wide=False, decode=None):
 
 def empty_columns():
     """The columns of a file without records."""
-    return (np.zeros(0, np.int64), np.zeros(0, np.int64), np.zeros((0, 4)), np.zeros(0), None)
+    return (np.zeros(0, np.int64), np.zeros(0, np.int64), np.zeros((0, 4)), np.zeros(0), None, None)
 
 
 def _filled(parts, total):
@@ -772,10 +786,13 @@ def _filled(parts, total):
     columns, at = None, 0
     for part in parts:
         if columns is None:
-            columns = [p if p is None else np.empty((total, *p.shape[1:]), p.dtype) for p in part]
+            columns = [
+                p if p is None or isinstance(p, str) else np.empty((total, *p.shape[1:]), p.dtype)
+                for p in part
+            ]
         n = len(part[0])
         for i, values in enumerate(part):
-            if values is None:
+            if values is None or isinstance(values, str):
                 continue
             if values.dtype != columns[i].dtype:
                 columns[i] = columns[i].astype(object)
@@ -783,4 +800,4 @@ def _filled(parts, total):
         at += n
     if columns is None:
         return empty_columns()
-    return tuple(None if c is None else c[:at] for c in columns)
+    return tuple(c if c is None or isinstance(c, str) else c[:at] for c in columns)

@@ -34,6 +34,7 @@ class Raw:
     locate: object
     fields: dict
     area: np.ndarray = None  # per detection, for size ranges: None = w * h (the box's)
+    reading: str = None  # how a JSON file was read (``mask_results.mode``): None = boxes
 
 
 @dataclasses.dataclass
@@ -49,6 +50,10 @@ class Resolved:
     box_counts: dict
     dropped_classes: tuple = ()  # the class keys of ``dropped``, as text (``distinct_keys``)
     area: np.ndarray = None  # as ``Raw.area``
+
+
+#: The count (``box_counts``) of detections whose area a reading gave, by reading.
+AREA_COUNT = {"mask": "mask_area", "caption": "given_area", "keypoints": "keypoint_area"}
 
 
 def _key_order(key):
@@ -72,9 +77,10 @@ def _plain(key):
     return escaped(key[1:] if key[:1] in (NUMBER, TEXT, NULL) else key)
 
 
-def json_raw(truth, image_ids, class_keys, boxes, score, area=None, base=0):
+def json_raw(truth, image_ids, class_keys, boxes, score, area=None, reading=None, base=0):
     """A block of a COCO-style results file (records ``base``, ``base + 1``...);
-    ``area``: the masks' areas of a file read as masks (``mask_results``)."""
+    ``area``: the detections' areas of a file not read as boxes, ``reading`` which
+    reading (``mask_results.mode``, ``result_readings``)."""
     shown = image_ids
     image_ids, known_images = _json_keys(image_ids, truth.image_ids, truth.image_id_type)
     class_keys, known_classes = _json_keys(class_keys, truth.class_ids, truth.class_id_type)
@@ -89,6 +95,7 @@ def json_raw(truth, image_ids, class_keys, boxes, score, area=None, base=0):
         lambda i: f"record {base + i}",
         {"image": "image_id", "class": "category_id", "bbox": "bbox"},
         area,
+        reading,
     )
 
 
@@ -195,7 +202,7 @@ def resolve(path, truth, raw, policy, unknown_classes, unknown_images):
         box_counts={
             **box_counts,
             "non_finite_score": int((~np.isfinite(score)).sum()),
-            **({} if area is None else {"mask_area": len(area)}),
+            **({} if area is None else {AREA_COUNT[raw.reading]: len(area)}),
         },
         dropped_classes=dropped_classes,
         area=area,

@@ -26,7 +26,15 @@ the record. Where the orders agree the numbers are pycocotools' already.
 
 import numpy as np
 
-from . import checks, coco_json, detection_blocks, json_literals, mask_results, unread_fields
+from . import (
+    checks,
+    coco_json,
+    detection_blocks,
+    json_literals,
+    mask_results,
+    result_readings,
+    unread_fields,
+)
 
 #: Magnitude from which an integer may have no float64 of its own (2**53 + 1 has none).
 EXACT_LIMIT = 2.0**53
@@ -48,6 +56,8 @@ def _loose(collected):
             loose = json_literals.decode(piece, list[mask_results.LooseMaskDetection])
             collected.append([r.score for r in loose])
             return [mask_results.normalise(path, r, base + i) for i, r in enumerate(loose)]
+        if mode in result_readings.MODES:
+            return result_readings.decode(piece, path, base, mode, collected)
         loose = json_literals.decode(piece, list[unread_fields.LooseDetection])
         collected.append([r.score for r in loose])
         return unread_fields.normalise_detections(path, loose, base)

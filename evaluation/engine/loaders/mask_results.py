@@ -19,7 +19,7 @@ import msgspec
 import numpy as np
 
 from ..errors import InputError
-from . import json_literals, rle, unread_fields
+from . import json_literals, result_readings, rle, unread_fields
 from .ids import JSON_ID
 from .ids import SURROGATE as _SURROGATE
 
@@ -28,8 +28,10 @@ _MAX_SIZE = 1 << 64  # ``siz`` (unsigned long) in pycocotools' _mask.pyx
 
 
 class _First(msgspec.Struct, gc=False):
+    caption: Any = msgspec.UNSET
     bbox: Any = msgspec.UNSET
     segmentation: Any = msgspec.UNSET
+    keypoints: Any = msgspec.UNSET
 
 
 class Rle(msgspec.Struct, gc=False):
@@ -54,10 +56,12 @@ class LooseMaskDetection(msgspec.Struct, gc=False):
 
 
 def mode(first_slice):
-    """``MASKS`` when the first record of a results array (a slice of it beginning
-    with ``[``, ending after whole records) makes pycocotools read segmentations, else
-    ``BOXES``; None when the slice does not decode (it may end inside a record: the
-    reader takes more, or reports the error)."""
+    """The reading pycocotools' ``loadRes`` picks from the first record of a results
+    array (a slice of it beginning with ``[``, ending after whole records), in its
+    order: ``result_readings.CAPTION``, ``BOXES``, ``MASKS``, ``result_readings.
+    KEYPOINTS``, else ``result_readings.GIVEN``; ``BOXES`` for no records; None when
+    the slice does not decode (it may end inside a record: the reader takes more, or
+    reports the error)."""
     try:
         records = json_literals.decode(first_slice, list[_First])
     except (msgspec.DecodeError, msgspec.ValidationError, InputError):
@@ -65,9 +69,15 @@ def mode(first_slice):
     if not records:
         return BOXES
     first = records[0]
+    if first.caption is not msgspec.UNSET:
+        return result_readings.CAPTION
     if first.bbox is not msgspec.UNSET and first.bbox != []:
         return BOXES
-    return MASKS if first.segmentation is not msgspec.UNSET else BOXES
+    if first.segmentation is not msgspec.UNSET:
+        return MASKS
+    if first.keypoints is not msgspec.UNSET:
+        return result_readings.KEYPOINTS
+    return result_readings.GIVEN
 
 
 def decode(piece, path, base):

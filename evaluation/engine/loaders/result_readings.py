@@ -1,0 +1,164 @@
+"""Results files pycocotools 2.0.11 reads neither as boxes nor as masks.
+
+``COCO.loadRes`` picks one reading for the whole file from its *first* result
+(``mask_results.mode``); besides boxes and masks:
+
+* ``'caption' in anns[0]`` (``CAPTION``): nothing is derived, only ``id`` is
+  reassigned; ``computeIoU`` reads each result's own ``bbox`` and ``evaluateImg``'s size
+  ranges its own ``area`` (``d['area'] < aRng[0]``), as given.
+* else, after boxes and masks, ``'keypoints' in anns[0]`` (``KEYPOINTS``): every
+  result's ``bbox`` is replaced by the keypoints' extent and its area set from it::
+
+      x, y = kp[0::3], kp[1::3];  x0, x1, y0, y1 = min x, max x, min y, max y
+      bbox = [x0, y0, x1 - x0, y1 - y0];  area = (x1 - x0) * (y1 - y0)
+
+  (``np.min``/``np.max``: keypoints of visibility 0 count too; a NaN makes the extent
+  NaN.) A list whose length is no multiple of 3 is read the same way, as there.
+* none of these keys (``GIVEN``): the results' own ``bbox``, ``area`` and ``id`` are
+  used; ``createIndex`` keys them by ``id`` (a repeated id makes ``loadAnns`` return the
+  last result of that id in place of the others) and ``evaluateImg`` marks a truth box
+  matched by the detection's id (``gtm > 0``: an id of 0 or below leaves it matchable
+  again). Refused here, naming pycocotools' reading.
+
+Where pycocotools raises, the file is refused naming record and field. Deviations
+(stricter, documented): pycocotools raises for a missing or non-number ``area``/``bbox``
+only on a detection it compares (the top 100 per image and listed class), here on any
+record; keypoints holding booleans, nested lists, or integers of magnitude 2^30 or more
+(computed in int64 there, which can wrap) are refused. Checked against pycocotools
+2.0.11 in ``tests/engine/test_result_readings.py``.
+"""
+
+import math
+from typing import Any
+
+import msgspec
+import numpy as np
+
+from ..errors import InputError
+from . import json_literals, unread_fields
+from .ids import JSON_ID
+
+CAPTION, KEYPOINTS, GIVEN = "caption", "keypoints", "given"
+MODES = (CAPTION, KEYPOINTS, GIVEN)
+_INT_LIMIT = 1 << 30
+
+
+class Reading(msgspec.Struct, gc=False):
+    image_id: JSON_ID
+    category_id: JSON_ID
+    score: Any = None
+    bbox: Any = msgspec.UNSET
+    area: Any = msgspec.UNSET
+    keypoints: Any = msgspec.UNSET
+
+
+def _fail(path, record, field, message):
+    raise InputError(path, message, record=f"record {record}", field=field)
+
+
+def decode(piece, path, base, mode, scores=None):
+    """The records of a slice under ``mode``, each with ``bbox`` a 4-tuple of floats,
+    ``score`` a float (``BAD_SCORE`` when missing or not a number) and ``area`` a float;
+    ``scores``: a list given the raw scores (``exact_scores``)."""
+    if mode == GIVEN:
+        _fail(
+            path,
+            0,
+            "caption, bbox, segmentation, keypoints",
+            "the file's first result has none of these keys (or an empty bbox), so "
+            "pycocotools 2.0.11 uses each result's own bbox, area and id as given "
+            "(createIndex keys results by id; a repeated id or one of 0 or below "
+            "changes the matching): this reading is not supported; give each result a "
+            "bbox",
+        )
+    loose = json_literals.decode(piece, list[Reading])
+    if scores is not None:
+        scores.append([r.score for r in loose])
+    fix = _caption if mode == CAPTION else _keypoints
+    for i, r in enumerate(loose):
+        fix(path, r, base + i)
+        score = unread_fields.as_number(r.score)
+        r.score = unread_fields.BAD_SCORE if score is None else score
+    return loose
+
+
+def _caption(path, r, at):
+    why = "the file's first result has a caption key, so pycocotools 2.0.11 reads "
+    if r.bbox is msgspec.UNSET:
+        _fail(path, at, "bbox", f"missing: {why}each result's own bbox (computeIoU: KeyError)")
+    box = unread_fields._box(r.bbox, text=True)  # numpy reads it in computeIoU
+    if box is None:
+        _fail(path, at, "bbox", f"must be 4 numbers [x, y, w, h], got {r.bbox!r:.40}")
+    if r.area is msgspec.UNSET:
+        _fail(path, at, "area", f"missing: {why}each result's own area (evaluateImg: KeyError)")
+    if type(r.area) not in (int, float, bool):
+        _fail(path, at, "area", f"must be a number ({why}it as given), got {r.area!r:.40}")
+    r.bbox, r.area = box, _float(r.area)
+
+
+def _float(value):
+    try:
+        return float(value)
+    except OverflowError:  # an integer beyond float64 compares as infinite
+        return math.inf if value > 0 else -math.inf
+
+
+def _keypoints(path, r, at):
+    kp = r.keypoints
+    if kp is msgspec.UNSET:
+        _fail(
+            path,
+            at,
+            "keypoints",
+            "missing: the file's first result has keypoints (and no bbox or "
+            "segmentation), so pycocotools 2.0.11 reads every result's keypoints "
+            "(loadRes: KeyError)",
+        )
+    if not isinstance(kp, list) or len(kp) < 2:
+        _fail(
+            path,
+            at,
+            "keypoints",
+            f"must be a list [x1, y1, v1, ...] of at least 2 numbers, got {kp!r:.40} "
+            "(pycocotools 2.0.11's np.min of no keypoints raises)",
+        )
+    types = set(map(type, kp))
+    if not types <= _NUMBER_TYPES or (int in types and not _small_ints(kp)):
+        _bad_keypoint(path, at, kp)
+    x0, x1 = _extent(kp[0::3], float in types)
+    y0, y1 = _extent(kp[1::3], float in types)
+    r.bbox = (x0, y0, x1 - x0, y1 - y0)
+    r.area = (x1 - x0) * (y1 - y0)
+
+
+_NUMBER_TYPES = frozenset((int, float))
+
+
+def _small_ints(kp):
+    return all(-_INT_LIMIT < v < _INT_LIMIT for v in kp if type(v) is int)
+
+
+def _bad_keypoint(path, at, kp):
+    for v in kp:
+        t = type(v)
+        if t is float or (t is int and -_INT_LIMIT < v < _INT_LIMIT):
+            continue
+        _fail(
+            path,
+            at,
+            "keypoints",
+            f"must hold numbers, got {v!r:.40}"
+            + (" (integers of magnitude 2^30 or more: refused)" if t is int else ""),
+        )
+
+
+def _extent(values, floats):
+    """(min, max) as ``np.min``/``np.max`` give them: NaN if any value is NaN."""
+    if floats and any(map(math.isnan, values)):
+        return math.nan, math.nan
+    return float(min(values)), float(max(values))
+
+
+def area(records):
+    """The area column of records ``decode`` gave."""
+    return np.fromiter((r.area for r in records), np.float64, len(records))

@@ -1,0 +1,144 @@
+"""Results files read by their first result's caption or keypoints key, through the
+platform's entry points: upload page, API, ``upload_predictions``, the worker's
+streamed and sharded run. Reference: pycocotools 2.0.11 (``COCO.loadRes`` reads the
+results' own areas, or the keypoints' extent, then ``COCOeval(..., 'bbox')``), run
+here on the same two files.
+"""
+
+import json
+
+import numpy as np
+import pytest
+from django.core.management import call_command
+from django.urls import reverse
+
+from evaluation import services as evaluation_services
+from releases import services
+
+from ..engine.synthetic import make_detections
+from .conftest import split_dict, upload
+from .test_any_ids import _assert_pycocotools_numbers
+from .test_api import API, client_for, file
+from .test_mask_results import _evaluation
+
+pytestmark = pytest.mark.django_db
+
+_SOURCE = {"caption": "own area and bbox as given", "keypoints": "keypoints' extent"}
+_COUNT = {"caption": "given_area", "keypoints": "keypoint_area"}
+
+
+def _results(truth, seed, reading):
+    """Caption reading: own areas 0..20 times w*h; keypoints reading: points around
+    each box (visibility 0 far off), some results giving a box that is replaced."""
+    rng = np.random.default_rng(seed)
+    out = []
+    for i, det in enumerate(make_detections(rng, truth)):
+        x, y, w, h = det["bbox"]
+        if reading == "caption":
+            record = {**det, "area": float(w * h * 20 * rng.random())}
+            if i == 0:
+                record["caption"] = "invented"
+        else:
+            k = int(rng.integers(1, 6))
+            px, py = x + rng.random(k) * max(w, 1), y + rng.random(k) * max(h, 1)
+            vis = rng.integers(0, 3, k)
+            px[vis == 0] += 30
+            kp = [v for triple in zip(px.tolist(), py.tolist(), vis.tolist()) for v in triple]
+            record = {"image_id": det["image_id"], "category_id": det["category_id"]}
+            record.update(keypoints=kp, score=det["score"])
+            if i and i % 3 == 0:
+                record["bbox"] = [1.0, 1.0, 4.0, 4.0]
+        out.append(record)
+    return out
+
+
+def _recorded(card, reading):
+    assert _SOURCE[reading] in card.result["protocol_record"]["area_source"]["predictions"]
+    assert card.result["counts"]["boxes"]["predictions"][_COUNT[reading]] > 0
+
+
+@pytest.mark.parametrize("reading", ["caption", "keypoints"])
+def test_page_api_and_command_score_as_pycocotools(
+    client, users, detector, run_tasks, tmp_path, reading
+):
+    truth = split_dict(n_images=6)
+    split = evaluation_services.load_split(name="kp", revision=1, truth=upload("kp.json", truth))
+    sets = [_results(truth, seed, reading) for seed in (1, 2, 3)]
+    client.force_login(users["engineer"])
+    response = run_tasks(
+        client.post,
+        reverse("upload", args=[detector.pk]),
+        {"version": "1.0", "split": split.pk, "predictions": upload("page.json", sets[0])},
+    )
+    assert response.status_code in (200, 302), response.content.decode()
+    response = run_tasks(
+        client_for(users["engineer"]).post,
+        API + "prediction-sets/",
+        {
+            "detector": detector.pk,
+            "version": "2.0",
+            "split": split.pk,
+            "predictions": file("api.json", sets[1]),
+        },
+        format="multipart",
+    )
+    assert response.status_code == 201, response.json()
+    path = tmp_path / "third.json"
+    path.write_text(json.dumps(sets[2]))
+    run_tasks(
+        call_command,
+        "upload_predictions",
+        "--detector", detector.slug, "--label", "3.0", "--split", "kp:1",
+        "--user", "engineer", "--create-version", str(path),
+    )  # fmt: skip
+    for label, dets in zip(("1.0", "2.0", "3.0"), sets):
+        version = detector.versions.get(label=label)
+        card = _assert_pycocotools_numbers(_evaluation(version), truth, dets, tmp_path)
+        _recorded(card, reading)
+
+
+@pytest.mark.parametrize("reading", ["caption", "keypoints"])
+def test_the_sharded_run_scores_as_pycocotools(
+    users, detector, run_tasks, settings, tmp_path, monkeypatch, reading
+):
+    """Past the inline size the file is streamed into pieces and scored in shards."""
+    from evaluation import class_groups, sharding
+
+    from .test_shards import GROUP_SENDS, _run
+
+    sends = []
+    GROUP_SENDS.clear()
+    monkeypatch.setattr(sharding, "send", lambda *args: sends.append(args))
+    monkeypatch.setattr(class_groups, "send", lambda *args: GROUP_SENDS.append(args))
+    truth = split_dict(n_images=8)
+    dets = _results(truth, 4, reading)
+    split = evaluation_services.load_split(name="kp", revision=1, truth=upload("kp.json", truth))
+    settings.BENCHBOOK_INLINE_VALIDATION_BYTES = 1
+    settings.BENCHBOOK_SHARD_ABOVE = 0
+    settings.BENCHBOOK_SHARD_IMAGES = 3
+    version = services.create_version(detector, "4.0", users["engineer"])
+    run_tasks(
+        services.submit_predictions, version, split, upload("big.json", dets), users["engineer"]
+    )
+    assert sends
+    _run(run_tasks, sends)
+    card = _assert_pycocotools_numbers(_evaluation(version), truth, dets, tmp_path)
+    _recorded(card, reading)
+
+
+def test_empty_keypoints_are_refused_naming_them(users, detector):
+    """Empty keypoints on the second result: pycocotools 2.0.11's np.min raises; the
+    API answers 400 naming file, record and field."""
+    truth = split_dict(n_images=4)
+    split = evaluation_services.load_split(name="kp", revision=1, truth=upload("kp.json", truth))
+    dets = _results(truth, 5, "keypoints")[:2]
+    dets[1]["keypoints"] = []
+    response = client_for(users["engineer"]).post(
+        API + "prediction-sets/",
+        {"detector": detector.pk, "version": "5.0", "split": split.pk,
+         "predictions": file("bad.json", dets)},
+        format="multipart",
+    )  # fmt: skip
+    assert response.status_code == 400
+    text = json.dumps(response.json())
+    assert "record 1" in text and "keypoints" in text
