@@ -647,13 +647,20 @@ def _stream(path, f, skip, build=True, wide=False, decode=None):
     buf = bytearray(buf[lead:])
     base, lowest, eof, mode = 0, 1, False, None
     while True:
+        if mode is None:
+            mode = _first_mode(path, buf, where, eof)
+            if mode is None:  # the first record is not whole yet: take more
+                more = f.read(CHUNK_BYTES)
+                eof = not more
+                buf += more
+                continue
         if eof:
             end = len(buf)  # the rest, closing bracket included
         else:
             cut = _last_cut(buf, lowest)
             if cut is None:
                 if len(buf) > CHUNK_BYTES:  # no record ends here: a real error is reported
-                    _check_prefix(path, buf, where, base, mode or mask_results.BOXES)
+                    _check_prefix(path, buf, where, base, mode)
                 more = f.read(CHUNK_BYTES)
                 eof = not more
                 buf += more
@@ -662,8 +669,7 @@ def _stream(path, f, skip, build=True, wide=False, decode=None):
             saved, buf[cut[0]] = buf[cut[0]], 0x5D  # "]"
         view = memoryview(buf)[:end]
         try:
-            mode = mask_results.mode(view) if mode is None else mode
-            records = decode(view, path, base, mode or mask_results.BOXES)
+            records = decode(view, path, base, mode)
         except msgspec.ValidationError as e:
             raise validation_error(path, e, top_level_list=True, base=base) from None
         except msgspec.DecodeError as e:
@@ -697,6 +703,30 @@ def _stream(path, f, skip, build=True, wide=False, decode=None):
         buf += more
 
 
+def _first_mode(path, buf, where, eof):
+    """The reading (``mask_results.mode``) of the file's first record, decided only
+    once that record is whole in ``buf`` (its end found at nesting depth 1, so however
+    the bytes were chunked); None while it is not and more can be read. A first
+    record that does not decode is read as boxes, whose decoding reports its error."""
+    end = json_syntax.first_record_end(buf)
+    if end is None and not eof:
+        if len(buf) > CHUNK_BYTES:  # a syntax error inside it is reported now
+            try:
+                json_literals.check_syntax(bytes(buf))
+            except msgspec.DecodeError as e:
+                if not _cut_short(e, len(buf)):
+                    raise _piece_error(path, e, buf, where, 0) from None
+            if len(buf) > MAX_SLICE_BYTES:
+                raise InputError(
+                    path,
+                    f"no record ends within {MAX_SLICE_BYTES >> 20} MB: not a detections file",
+                    record="record 0",
+                )
+        return None
+    first = bytes(buf) if end is None else bytes(buf[:end]) + b"]"
+    return mask_results.mode(first) or mask_results.BOXES
+
+
 def _block(records, path, base, wide, mode, build):
     """A slice's columns (image ids, class ids, boxes, scores, areas: None when the
     file is read as boxes, and the reading: ``mask_results.mode``), or with
@@ -715,6 +745,13 @@ def _block(records, path, base, wide, mode, build):
     return (*_columns(records, path, base, wide), area, mode)
 
 
+def _cut_short(error, n):
+    """Whether msgspec's error on ``n`` bytes is only their ending early: truncated,
+    or failing at the last byte or just past it (a number cut as ``0.`` or ``1e``)."""
+    m = re.search(r"\(byte (\d+)\)", str(error))
+    return "truncated" in str(error) or bool(m and int(m.group(1)) >= n - 1)
+
+
 def _check_prefix(path, buf, where, base, mode):
     """Raise the decoding error of buf (which starts with "[") unless it only ends
     early; give up past ``MAX_SLICE_BYTES`` without a record boundary."""
@@ -723,7 +760,7 @@ def _check_prefix(path, buf, where, base, mode):
     except msgspec.ValidationError as e:
         raise validation_error(path, e, top_level_list=True, base=base) from None
     except msgspec.DecodeError as e:
-        if "truncated" not in str(e):
+        if not _cut_short(e, len(buf)):
             raise _piece_error(path, e, buf, where, 0) from None
     if len(buf) > MAX_SLICE_BYTES:
         raise InputError(

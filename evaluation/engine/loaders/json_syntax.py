@@ -334,3 +334,16 @@ def check(path, f, skip, sink=None):
     if in_string or depth:
         raise InputError(path, "the JSON ends early: the file looks truncated")
     return c
+
+
+def first_record_end(buf):
+    """The offset of the comma (or closing bracket) that ends the first element of
+    the JSON array ``buf`` (which starts with ``[``), found at nesting depth 1 outside
+    strings, so a ``},`` closing a nested object inside the record is never taken for
+    its end; None while the bytes hold no such end yet."""
+    marks, kinds, _, _ = _structure(bytes(buf), False, 0)
+    opens = (kinds == 0x7B) | (kinds == 0x5B)
+    closes = (kinds == 0x7D) | (kinds == 0x5D)
+    after = np.cumsum(opens.astype(np.int64) - closes)
+    ends = np.flatnonzero(((kinds == 0x2C) & (after == 1)) | (after == 0))
+    return int(marks[ends[0]]) if len(ends) else None
