@@ -240,6 +240,16 @@ class Predictions:
             return self.score_conflicts[key] or None
         return next((c for c in self.score_conflicts.values() if c), None)
 
+    def cityscale_conflict(self):
+        """The refusal recorded for ``miss-rate-cityscale`` (the CityPersons script's
+        orders, ``loaders.exact_scores``), or None. A record made before that check
+        (no ``"cityscale"`` key) takes any recorded conflict (conservative)."""
+        if not self.score_conflicts:
+            return None
+        if "cityscale" in self.score_conflicts:
+            return self.score_conflicts["cityscale"] or None
+        return next((c for c in self.score_conflicts.values() if c), None)
+
     @property
     def clipped(self):
         return self.box_counts.get("clipped", 0)

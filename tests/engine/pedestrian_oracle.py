@@ -259,7 +259,8 @@ def _evaluate_img(gts, dts, h_rng, max_det):
         g["_ignore"] = 1 if g["ignore"] else 0
     gtind = _mergesort([g["_ignore"] for g in gt])  # ignore last, stable
     gt = [gt[i] for i in gtind]
-    dtind = _mergesort([-d["score"] for d in dt])
+    # numpy types the list from its values: integers stay exact (int64, uint64, object)
+    dtind = np.argsort([-d["score"] for d in dt], kind="mergesort").tolist()
     dt = [dt[i] for i in dtind[0:max_det]]
     dt = [d for d in dt if h_rng[0] / EXP_FILTER <= d["height"] < h_rng[1] * EXP_FILTER]
     if len(dt) > 0:  # computeIoU: its own stable re-sort of dt changes no order

@@ -224,7 +224,7 @@ def load_predictions(
         "unknown_classes": unknown_classes,
         "ids": ids,
         "schema": CACHE_SCHEMA,
-        "score_conflicts": 1,  # entries from before exact_scores lack the check
+        "score_conflicts": 2,  # entries from before exact_scores' cityscale check lack it
     }
     if unknown_images != "reject":  # the default keeps the keys of existing entries
         key["unknown_images"] = unknown_images

@@ -22,10 +22,21 @@ second time, loosely, and each class holding one is replayed with pycocotools' o
 calls on the exact values; where that order (per image, capped, or per class) differs
 from the engine's, the file is refused under the COCO order (``matching.match``) naming
 the record. Where the orders agree the numbers are pycocotools' already.
+
+The CityPersons script (``eval_MR_multisetup.py``, preset ``miss-rate-cityscale``) is a
+pycocotools derivative that reads JSON with Python's ``json`` and makes the same numpy
+calls with its own cap and a height filter: ``evaluateImg`` argsorts an image's
+detections, keeps the first 1,000, *then* drops those outside the setup's expanded
+height range; ``accumulate`` concatenates the kept lists of category id 1 (an image
+with a box and no kept detection gives an empty float64 list). ``check`` replays that
+exactly for each distinct height range of the setups (the file's own ``bbox[3]``, as
+the script's ``loadRes`` sets ``height``), under the key ``"cityscale"``, which
+``pedestrian`` raises for that preset.
 """
 
 import numpy as np
 
+from ..pedestrian_setups import CITYSCALE_SETUPS, HEIGHT_EXPANSION, category_one
 from . import (
     checks,
     coco_json,
@@ -41,6 +52,12 @@ EXACT_LIMIT = 2.0**53
 
 #: The per-image caps checked: pycocotools' ``maxDets[-1]`` (coco) and none (recall40).
 CAPS = (100, None)
+
+#: The CityPersons script's per-image cap (``maxDets = [1000]``).
+CITYSCALE_CAP = 1000
+CITYSCALE = "cityscale"
+_PYCOCOTOOLS = "pycocotools 2.0.11"
+_CITY_SCRIPT = "the CityPersons script (eval_MR_multisetup.py)"
 
 
 def suspect(score):
@@ -71,8 +88,9 @@ _FLOAT, _INT, _BOOL = 0, 1, 2
 def _affected(path, truth, classes, wide):
     """The scored detections of ``classes`` (a second, loose read of the file), as
     columns ``image``, ``cls``, ``record``, ``score`` (float64), ``kind`` (float, int or
-    bool in the file) and ``big``: record -> the exact Python int of every integer
-    score of magnitude >= 2**53 (the others are exact in float64)."""
+    bool in the file), ``height`` (the file's ``bbox[3]``) and ``big``: record -> the
+    exact Python int of every integer score of magnitude >= 2**53 (the others are exact
+    in float64)."""
     collected, parts, big, base = [], [], {}, 0
     wanted = np.zeros(len(truth.classes), bool)
     wanted[list(classes)] = True
@@ -87,10 +105,11 @@ def _affected(path, truth, classes, wide):
         score = columns[3][keep]
         for i in keep[(kinds == _INT) & suspect(score)].tolist():
             big[base + i] = values[i]
-        parts.append((image[keep], cls[keep], base + keep, score, kinds))
+        height = np.asarray(columns[2], np.float64).reshape(-1, 4)[keep, 3]
+        parts.append((image[keep], cls[keep], base + keep, score, kinds, height))
         base += len(columns[3])
         collected.clear()
-    names = ("image", "cls", "record", "score", "kind")
+    names = ("image", "cls", "record", "score", "kind", "height")
     rows = {n: np.concatenate([p[j] for p in parts]) for j, n in enumerate(names)}
     return rows, big
 
@@ -100,10 +119,10 @@ def _kind(value):
 
 
 def check(path, truth, classes, wide):
-    """``{cap_key: refusal or {}}`` for ``CAPS`` — empty when ``classes`` (the classes
-    holding a ``suspect`` score) is empty — of the JSON detections file at ``path``.
-    Only a class holding an integer of magnitude >= 2**53 is replayed: without one,
-    every list numpy makes of it ranks as float64 does."""
+    """``{cap_key: refusal or {}}`` for ``CAPS`` and ``"cityscale"`` — empty when
+    ``classes`` (the classes holding a ``suspect`` score) is empty — of the JSON
+    detections file at ``path``. Only a class holding an integer of magnitude >= 2**53
+    is replayed: without one, every list numpy makes of it ranks as float64 does."""
     if not len(classes):
         return {}
     rows, big = _affected(path, truth, classes, wide)
@@ -117,7 +136,23 @@ def check(path, truth, classes, wide):
             if found:
                 break
         conflicts["none" if cap is None else str(cap)] = found
+    conflicts[CITYSCALE] = _cityscale(path, truth, rows, big, replayed)
     return conflicts
+
+
+def _cityscale(path, truth, rows, big, replayed):
+    """The first place the CityPersons script's order (category id 1 only, cap 1,000
+    per image, then each setup's height filter) differs from float64's, or {}."""
+    ranges = sorted({s.height for s in CITYSCALE_SETUPS})
+    for k in [k for k in np.flatnonzero(category_one(truth)).tolist() if k in replayed]:
+        mine = {n: v[rows["cls"] == k] for n, v in rows.items()}
+        for lo, hi in ranges:
+            kept = mine["height"] >= lo / HEIGHT_EXPANSION
+            kept &= mine["height"] < hi * HEIGHT_EXPANSION
+            found = _replay(path, truth, mine, big, k, CITYSCALE_CAP, kept, _CITY_SCRIPT)
+            if found:
+                return found
+    return {}
 
 
 def _values(rows, big, at):
@@ -132,8 +167,10 @@ def _values(rows, big, at):
     return out
 
 
-def _replay(path, truth, rows, big, k, cap):
-    """The first place pycocotools' order of class ``k`` differs from float64's."""
+def _replay(path, truth, rows, big, k, cap, kept=None, who=_PYCOCOTOOLS):
+    """The first place ``who``'s order of class ``k`` differs from float64's: per image
+    the first ``cap`` by score, of which those ``kept`` (a per-row filter applied after
+    the cap, as the CityPersons script's height filter; None: all), then the class."""
     by_image = np.argsort(rows["image"], kind="stable")  # file order within an image
     starts = np.searchsorted(rows["image"][by_image], np.arange(truth.n_images + 1))
     with_truth = np.unique(truth.box_image[truth.box_class == k])
@@ -144,8 +181,10 @@ def _replay(path, truth, rows, big, k, cap):
         values = _values(rows, big, dets)
         theirs = np.argsort([-v for v in values], kind="mergesort")[:cap]
         ours = np.argsort(-rows["score"][dets], kind="stable")[:cap]
+        if kept is not None:
+            theirs, ours = theirs[kept[dets[theirs]]], ours[kept[dets[ours]]]
         if not np.array_equal(theirs, ours):
-            return _refusal(path, truth, rows, big, dets[theirs], dets[ours], image, k)
+            return _refusal(path, truth, rows, big, dets[theirs], dets[ours], image, k, who)
         theirs_lists.append([values[i] for i in theirs.tolist()])
         joined.append(dets[theirs])
     joined = np.concatenate(joined)
@@ -156,11 +195,11 @@ def _replay(path, truth, rows, big, k, cap):
         return {}
     ours = np.argsort(-rows["score"][joined], kind="stable")
     if not np.array_equal(theirs, ours):
-        return _refusal(path, truth, rows, big, joined[theirs], joined[ours], None, k)
+        return _refusal(path, truth, rows, big, joined[theirs], joined[ours], None, k, who)
     return {}
 
 
-def _refusal(path, truth, rows, big, theirs, ours, image, k):
+def _refusal(path, truth, rows, big, theirs, ours, image, k, who=_PYCOCOTOOLS):
     """The refusal naming the detection at the first rank where the orders differ."""
     at = int(np.flatnonzero(theirs != ours)[0])
     pair = [int(theirs[at]), int(ours[at])]
@@ -169,9 +208,9 @@ def _refusal(path, truth, rows, big, theirs, ours, image, k):
     record = int(rows["record"][det])
     value = _values(rows, big, np.array([det]))[0]
     what = (
-        "is an integer beyond 2**53 that pycocotools 2.0.11 orders"
+        f"is an integer beyond 2**53 that {who} orders"
         if exact
-        else "is ranked by pycocotools 2.0.11 against integers beyond 2**53 that it orders"
+        else f"is ranked by {who} against integers beyond 2**53 that it orders"
     )
     where = (
         f"among the detections of class {truth.classes[k]!r} on image "
@@ -186,8 +225,8 @@ def _refusal(path, truth, rows, big, theirs, ours, image, k):
         "message": (
             f"score {value!r} {what} "
             f"exactly (numpy keeps Python integers as integers or objects) {where}, where "
-            "this engine's float64 scores tie or round it: the COCO-order numbers would "
-            "differ from pycocotools', so the file is refused for this protocol (write "
-            "the scores as floats to have them ranked as float64)"
+            "this engine's float64 scores tie or round it: this protocol's numbers would "
+            f"differ from those of {who}, so the file is refused for this protocol "
+            "(write the scores as floats to have them ranked as float64)"
         ),
     }
