@@ -329,6 +329,36 @@ def test_odd_sizes_scored_as_pycocotools(tmp_path):
         assert as_reference(result["summary"][key]) == pytest.approx(expected, abs=1e-12), key
 
 
+def test_a_zero_height_mask_with_its_own_box_scores_quietly(tmp_path):
+    """A mask whose height is 0 modulo 2^32 (2^32 here) keeps the box its result gives:
+    pycocotools 2.0.11 computes no box for it, only the area, and scores the file; the
+    engine scores it alike, without a numpy division warning."""
+    import warnings
+
+    dets = [
+        {"image_id": 1, "category_id": 1, "segmentation": _rect(30, 40, 3, 2, 8, 10), "score": 0.9},
+        {
+            "image_id": 1,
+            "category_id": 1,
+            "segmentation": {"size": [2**32, 40], "counts": "05"},
+            "bbox": [2, 3, 10, 8],
+            "score": 0.8,
+        },
+    ]
+    gt, dt = _files(tmp_path, _small_split(), dets)
+    reference = pycocotools_eval(gt, dt)
+    truth = load_truth(gt)
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        result = evaluate(truth, load_predictions(dt, truth), "coco")
+    from evaluation.engine import COCO_SUMMARY_KEYS
+
+    from .conftest import as_reference
+
+    for key, expected in zip(COCO_SUMMARY_KEYS, reference.stats):
+        assert as_reference(result["summary"][key]) == pytest.approx(expected, abs=1e-12), key
+
+
 def test_a_box_file_ignores_segmentations(tmp_path):
     """A first result with a box: every result is a box (area w*h), segmentations
     unread whatever they hold (polygons, lists), as loadRes does."""

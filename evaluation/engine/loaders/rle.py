@@ -135,7 +135,9 @@ def to_bbox(values, n_values, h, w):
     starts = ends - values
     on = ((m & 1) == 1) & (values != 0)
     mask_of, starts, ends = mask_of[on], starts[on], ends[on] - np.uint32(1)
-    hh = h[mask_of]
+    # a zero height (mod 2^32) never reaches a box: such a mask is refused, or keeps
+    # the box its result gives; divide those by 1 rather than warn
+    hh = np.maximum(h[mask_of], np.uint32(1))
     x0, y0, x1, y1 = starts // hh, starts % hh, ends // hh, ends % hh
     spans = x0 < x1
     xs, xe, ys, ye = w.copy(), np.zeros(n, np.uint32), h.copy(), np.zeros(n, np.uint32)
