@@ -7,7 +7,7 @@ import numpy as np
 import pytest
 
 from evaluation.engine import InputError, load_predictions, load_truth
-from evaluation.engine.loaders import coco_json
+from evaluation.engine.loaders import coco_json, results_stream
 
 TRUTH = {
     "images": [{"id": 1, "width": 640, "height": 480}, {"id": 2, "width": 640, "height": 480}],
@@ -281,7 +281,7 @@ def test_chunked_decoding_equals_whole_file(files, monkeypatch):
     path = files.write("predictions.json", json.dumps(dets, indent=1))
     truth = _truth(files)
     whole = load_predictions(path, truth)
-    monkeypatch.setattr(coco_json, "CHUNK_BYTES", 200)
+    monkeypatch.setattr(results_stream, "CHUNK_BYTES", 200)
     sliced = load_predictions(path, truth)
     assert np.array_equal(whole.boxes, sliced.boxes) and np.array_equal(whole.score, sliced.score)
     assert len(sliced) == 500
@@ -302,10 +302,10 @@ def test_a_late_type_error_in_a_large_predictions_file_builds_no_columns(files, 
     """Past VALIDATE_FIRST_BYTES the file is validated before any column is built, so
     a type error in its last record is found at flat memory."""
     monkeypatch.setattr(coco_json, "VALIDATE_FIRST_BYTES", 0)
-    monkeypatch.setattr(coco_json, "CHUNK_BYTES", 256)
+    monkeypatch.setattr(results_stream, "CHUNK_BYTES", 256)
     built = []
-    columns = coco_json._columns
-    monkeypatch.setattr(coco_json, "_columns", lambda *a: built.append(1) or columns(*a))
+    columns = results_stream._columns
+    monkeypatch.setattr(results_stream, "_columns", lambda *a: built.append(1) or columns(*a))
     path = files.write("predictions.json", [DET] * 300 + [{**DET, "bbox": "high"}])
     with pytest.raises(InputError, match=r"record 300: field 'bbox'"):
         load_predictions(path, _truth(files))
@@ -315,7 +315,7 @@ def test_a_late_type_error_in_a_large_predictions_file_builds_no_columns(files, 
 def test_error_in_a_later_slice_names_the_absolute_record(files, monkeypatch):
     dets = [DET] * 300 + [{**DET, "score": None}]
     path = files.write("predictions.json", dets)
-    monkeypatch.setattr(coco_json, "CHUNK_BYTES", 256)
+    monkeypatch.setattr(results_stream, "CHUNK_BYTES", 256)
     with pytest.raises(InputError, match=r"record 300: field 'score'"):
         load_predictions(path, _truth(files))
 
@@ -691,13 +691,13 @@ def test_a_truncated_predictions_file_is_read_in_bounded_slices(files, monkeypat
     few kB at most, no record is turned into columns (the file does not end like an
     array, so a validation pass runs first), and the error is the truncation.
     bench/malformed_memory.py measures the flat peak at full size."""
-    monkeypatch.setattr(coco_json, "CHUNK_BYTES", 1024)
+    monkeypatch.setattr(results_stream, "CHUNK_BYTES", 1024)
     pieces = []
-    real = coco_json._decode_slice
+    real = results_stream._decode_slice
     monkeypatch.setattr(
-        coco_json, "_decode_slice", lambda p, *a: pieces.append(len(p)) or real(p, *a)
+        results_stream, "_decode_slice", lambda p, *a: pieces.append(len(p)) or real(p, *a)
     )
-    monkeypatch.setattr(coco_json, "_columns", lambda *a: pytest.fail("columns were built"))
+    monkeypatch.setattr(results_stream, "_columns", lambda *a: pytest.fail("columns were built"))
     text = json.dumps([DET] * 4000)
     path = files.write("p.json", text[: len(text) - 40])
     assert len(text) > 250_000
@@ -709,8 +709,8 @@ def test_a_truncated_predictions_file_is_read_in_bounded_slices(files, monkeypat
 def test_a_file_without_record_boundaries_stops_early(files, monkeypatch):
     """No '},' anywhere: the first slice's own error is reported (not the whole file
     buffered), or past MAX_SLICE_BYTES reading stops."""
-    monkeypatch.setattr(coco_json, "CHUNK_BYTES", 1024)
-    monkeypatch.setattr(coco_json, "MAX_SLICE_BYTES", 8 * 1024)
+    monkeypatch.setattr(results_stream, "CHUNK_BYTES", 1024)
+    monkeypatch.setattr(results_stream, "MAX_SLICE_BYTES", 8 * 1024)
     path = files.write("numbers.json", "[" + "1," * 100_000 + "1]")
     with pytest.raises(InputError, match=r"numbers\.json: record 0: expected 'object', got 'int'"):
         load_predictions(path, _truth(files))
@@ -735,7 +735,7 @@ def test_cache_keeps_box_policies_apart(files, tmp_path):
 
 def test_syntax_error_in_a_later_slice_names_its_line_and_column(files, monkeypatch):
     """Slices are decoded in place; the position of an error is still the file's."""
-    monkeypatch.setattr(coco_json, "CHUNK_BYTES", 300)
+    monkeypatch.setattr(results_stream, "CHUNK_BYTES", 300)
     lines = [json.dumps(DET) + "," for _ in range(200)]
     lines[150] = lines[150].replace('"score"', '"score" 0.5 x', 1)
     text = "[\n" + "\n".join(lines) + "\n" + json.dumps(DET) + "]"

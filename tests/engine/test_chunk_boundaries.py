@@ -16,7 +16,7 @@ from hypothesis import strategies as st
 from pycocotools import mask as mask_utils
 
 from evaluation.engine import COCO_SUMMARY_KEYS, evaluate, load_predictions, load_truth
-from evaluation.engine.loaders import coco_json
+from evaluation.engine.loaders import results_stream
 
 from .conftest import as_reference, pycocotools_eval
 from .test_stream_pieces import _compare as compare_pieces
@@ -136,7 +136,7 @@ def test_slice_ending_at_a_nested_segmentation_close(tmp_path, monkeypatch):
     assert text[:cut].rstrip().endswith(b"},")  # the nested object's close
     truth = load_truth(gt)
     whole = load_predictions(dt, truth)
-    monkeypatch.setattr(coco_json, "CHUNK_BYTES", cut)
+    monkeypatch.setattr(results_stream, "CHUNK_BYTES", cut)
     sliced = load_predictions(dt, truth)
     assert sliced.area is not None
     _same_columns(sliced, whole)
@@ -171,7 +171,7 @@ def _slices_read_alike(tmp_path, monkeypatch, seed, masks, chunk, images_per_sha
     whole = load_predictions(dt, truth)
     assert (whole.area is not None) == masks
     with monkeypatch.context() as m:
-        m.setattr(coco_json, "CHUNK_BYTES", chunk)
+        m.setattr(results_stream, "CHUNK_BYTES", chunk)
         sliced = load_predictions(dt, truth)
         _same_columns(sliced, whole)
         compare_pieces(dt, truth, images_per_shard, tmp_path)

@@ -30,7 +30,7 @@ from evaluation.engine import (
     match,
     shards,
 )
-from evaluation.engine.loaders import coco_json
+from evaluation.engine.loaders import results_stream
 from evaluation.engine.pieces import stream_pieces
 from evaluation.engine.protocols import protocol_from_dict
 from evaluation.engine.scoring import score_records
@@ -282,7 +282,7 @@ def test_streamed_pieces_shards_and_cache_carry_the_check(tmp_path, monkeypatch,
     """The streamed pieces (tiny blocks), the shards of a whole load and a cached load
     carry the same check as the whole file: each shard's match refuses with the whole
     file's message, or every shard matches and merges to the whole run's records."""
-    monkeypatch.setattr(coco_json, "CHUNK_BYTES", 256)
+    monkeypatch.setattr(results_stream, "CHUNK_BYTES", 256)
     split = _split(6, lambda i: [(1, 0), (2, 1)])
     # class a: one huge integer per image, B + 1 on odd images (refused: pycocotools
     # joins them as int64 and ranks B + 1 first) or 1000 apart (float64 ranks them too)

@@ -24,7 +24,7 @@ from hypothesis import strategies as st
 
 from evaluation.engine import evaluate, load_predictions, load_truth
 from evaluation.engine.errors import InputError
-from evaluation.engine.loaders import coco_json, json_syntax
+from evaluation.engine.loaders import coco_truth, json_syntax, results_stream
 
 from .synthetic import make_detections, make_split
 from .test_any_ids import _tied_pair
@@ -267,7 +267,7 @@ def test_sliced_ground_truth_equals_the_whole_file(tmp_path, monkeypatch, chunk)
     gt, dt = _write(tmp_path, split, detections)
     whole = load_truth(gt)
     monkeypatch.setattr(json_syntax, "CHUNK_BYTES", chunk)
-    monkeypatch.setattr(coco_json, "SYNTAX_FIRST_BYTES", 0)
+    monkeypatch.setattr(coco_truth, "SYNTAX_FIRST_BYTES", 0)
     sliced = load_truth(gt)
     for name in ("image_ids", "class_ids", "box_ids", "boxes", "box_image", "box_class"):
         np.testing.assert_array_equal(getattr(sliced, name), getattr(whole, name))
@@ -280,7 +280,7 @@ def test_streamed_pieces_equal_the_whole_files_pieces(tmp_path, monkeypatch, ima
     pieces cut from the whole-file load (``test_stream_pieces`` patterns)."""
     from .test_stream_pieces import _compare as compare_pieces
 
-    monkeypatch.setattr(coco_json, "CHUNK_BYTES", 256)
+    monkeypatch.setattr(results_stream, "CHUNK_BYTES", 256)
     rng = np.random.default_rng(3)
     split = make_split(rng, n_images=12, n_classes=3, boxes_per_image=3, crowd_rate=0.1)
     detections = make_detections(rng, split, score_levels=5, duplicate_rate=0.4)

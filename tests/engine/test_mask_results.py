@@ -396,11 +396,11 @@ def _mask_file(tmp_path, seed=15):
 def test_streamed_pieces_equal_the_whole_files(tmp_path, monkeypatch, images_per_shard):
     """Read a few records at a time (tiny slices, records of a shard in many blocks),
     the pieces carry the masks' areas, bit for bit those of the whole load's pieces."""
-    from evaluation.engine.loaders import coco_json
+    from evaluation.engine.loaders import results_stream
 
     from .test_stream_pieces import _compare as compare_pieces
 
-    monkeypatch.setattr(coco_json, "CHUNK_BYTES", 1024)
+    monkeypatch.setattr(results_stream, "CHUNK_BYTES", 1024)
     gt, dt = _mask_file(tmp_path)
     truth = load_truth(gt)
     predictions, reference = compare_pieces(dt, truth, images_per_shard, tmp_path)
@@ -516,9 +516,9 @@ def test_a_bad_mask_late_in_a_big_file_is_refused_in_either_pass(
 ):
     """A file past ``VALIDATE_FIRST_BYTES`` is checked by a pass that keeps no columns:
     that pass reads masks too and refuses the same record, as the building pass does."""
-    from evaluation.engine.loaders import coco_json
+    from evaluation.engine.loaders import coco_json, results_stream
 
-    monkeypatch.setattr(coco_json, "CHUNK_BYTES", 2048)
+    monkeypatch.setattr(results_stream, "CHUNK_BYTES", 2048)
     monkeypatch.setattr(coco_json, "VALIDATE_FIRST_BYTES", 0 if validate_first else 1 << 40)
     gt, dt = _mask_file(tmp_path)
     dets = json.loads(dt.read_text())

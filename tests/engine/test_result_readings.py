@@ -168,11 +168,11 @@ def test_area_source_recorded(tmp_path, reading):
 def test_streamed_pieces_equal_the_whole_files(tmp_path, monkeypatch, reading, images_per_shard):
     """Read a few records at a time (tiny slices), the pieces carry the same areas
     and boxes, bit for bit, as the whole load's pieces."""
-    from evaluation.engine.loaders import coco_json
+    from evaluation.engine.loaders import results_stream
 
     from .test_stream_pieces import _compare as compare_pieces
 
-    monkeypatch.setattr(coco_json, "CHUNK_BYTES", 1024)
+    monkeypatch.setattr(results_stream, "CHUNK_BYTES", 1024)
     gt, dt = _file(tmp_path, reading)
     truth = load_truth(gt)
     predictions, reference = compare_pieces(dt, truth, images_per_shard, tmp_path)
@@ -185,12 +185,12 @@ def test_streamed_pieces_equal_the_whole_files(tmp_path, monkeypatch, reading, i
 def test_blocks_and_a_validated_read_equal_the_whole_read(tmp_path, monkeypatch, reading):
     """A big file (validated first, then filled) and one read in many slices give the
     columns of a small-slice read, equal to pycocotools 2.0.11's numbers."""
-    from evaluation.engine.loaders import coco_json
+    from evaluation.engine.loaders import coco_json, results_stream
 
     gt, dt = _file(tmp_path, reading)
     truth = load_truth(gt)
     whole = load_predictions(dt, truth)
-    monkeypatch.setattr(coco_json, "CHUNK_BYTES", 512)
+    monkeypatch.setattr(results_stream, "CHUNK_BYTES", 512)
     monkeypatch.setattr(coco_json, "VALIDATE_FIRST_BYTES", 0)
     blocks = load_predictions(dt, truth)
     for name in ("image", "cls", "boxes", "score", "area"):

@@ -16,7 +16,7 @@ import numpy as np
 import pytest
 
 from evaluation.engine import InputError, load_predictions, load_truth, shards
-from evaluation.engine.loaders import coco_json, csv_tables
+from evaluation.engine.loaders import csv_tables, results_stream
 from evaluation.engine.pieces import stream_pieces
 
 from .synthetic import make_detections, make_split
@@ -24,7 +24,7 @@ from .synthetic import make_detections, make_split
 
 @pytest.fixture(autouse=True)
 def tiny_blocks(monkeypatch):
-    monkeypatch.setattr(coco_json, "CHUNK_BYTES", 1024)
+    monkeypatch.setattr(results_stream, "CHUNK_BYTES", 1024)
     monkeypatch.setattr(csv_tables, "BLOCK_ROWS", 7)
 
 

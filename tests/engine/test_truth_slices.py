@@ -15,17 +15,23 @@ import numpy as np
 import pytest
 
 from evaluation.engine import InputError
-from evaluation.engine.loaders import coco_json, json_literals, json_syntax
+from evaluation.engine.loaders import (
+    coco_json,
+    coco_records,
+    coco_truth,
+    json_literals,
+    json_syntax,
+)
 from evaluation.engine.loaders.ids import escaped
 
 from . import whole_file
 
 
 class _DatasetWithVisRatio(msgspec.Struct):
-    images: list[coco_json._Image]
-    categories: list[coco_json._Category]
-    annotations: list[coco_json._AnnotationWithVisRatio] = []
-    dont_care: list[coco_json._Region] = []
+    images: list[coco_records._Image]
+    categories: list[coco_records._Category]
+    annotations: list[coco_records._AnnotationWithVisRatio] = []
+    dont_care: list[coco_records._Region] = []
 
 
 def _whole(path, data, vis_ratio=False):
@@ -33,13 +39,13 @@ def _whole(path, data, vis_ratio=False):
     NaN/Infinity and out-of-range numbers (1e999) read as Python's json reads them
     (``json_literals.decode`` on the whole document)."""
     try:
-        d = json_literals.decode(data, _DatasetWithVisRatio if vis_ratio else coco_json._Dataset)
+        d = json_literals.decode(data, _DatasetWithVisRatio if vis_ratio else coco_records._Dataset)
     except msgspec.ValidationError as e:
         return str(coco_json.validation_error(path, e, top_level_list=False))
     except msgspec.DecodeError as e:
         return str(whole_file.decode_error(path, e, data))
     whole = {}
-    for key, field in coco_json._ID_FIELDS:
+    for key, field in coco_truth._ID_FIELDS:
         values = [getattr(r, field) for r in getattr(d, key)]
         try:
             locate = lambda i, key=key: f"{key}[{i}]"  # noqa: E731
@@ -48,7 +54,7 @@ def _whole(path, data, vis_ratio=False):
         except InputError as e:
             return str(e)
     anns = d.annotations
-    sink = coco_json._Records(path)
+    sink = coco_truth._Records(path)
     crowd = sink.crowd_columns([a.iscrowd for a in anns], 0)
     if sink.out_of_range:
         return str(sink.out_of_range["annotations", "iscrowd"])
@@ -170,7 +176,7 @@ def test_sliced_decoding_agrees_with_a_whole_document_decode(
     let the columns be allocated at full length and filled in place."""
     monkeypatch.setattr(json_syntax, "CHUNK_BYTES", chunk)
     if scan_first:
-        monkeypatch.setattr(coco_json, "SYNTAX_FIRST_BYTES", 0)
+        monkeypatch.setattr(coco_truth, "SYNTAX_FIRST_BYTES", 0)
     rng = random.Random(seed)
     outcomes = set()
     for n in range(150):

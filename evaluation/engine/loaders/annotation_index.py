@@ -38,11 +38,11 @@ COUNTS = (
     "categories_renamed",
     *unread_fields.COUNTS,
 )
-#: The columns of one image / one category in ``coco_json._Records``.
+#: The columns of one image / one category in ``coco_truth._Records``.
 IMAGE_COLUMNS = ("image_ids", "image_width", "image_height", "image_tags")
 CATEGORY_COLUMNS = ("class_ids", "class_names")
 
-#: Per-annotation columns of ``coco_json._Records.annotations``.
+#: Per-annotation columns of ``coco_truth._Records.annotations``.
 PER_ANNOTATION = (
     "box_ids",
     "box_image_ids",

@@ -3,7 +3,7 @@
 Every ground-truth JSON file is read here, and only here: a whole-file decode would
 map or read the file in (its pages then count in the resident set), so a malformed
 file would cost memory in proportion to its size before its error. With a sink
-(``coco_json._Records``), each checked slice of a record array is handed on for typed
+(``coco_truth._Records``), each checked slice of a record array is handed on for typed
 decoding into columns. Here the file is read ``CHUNK_BYTES`` at a time. Per chunk,
 vectorised over the sparse positions of quotes and brackets only, a quote counts
 unless an odd run of backslashes precedes it, brackets and commas inside strings are

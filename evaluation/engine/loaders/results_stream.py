@@ -1,0 +1,290 @@
+"""The results array of a COCO-style detections file read in bounded memory: slices of
+a few megabytes are cut after a record's ``}`` (``_last_cut``), decoded in place
+(``_decode_slice``, by the reading of the file's first record: ``_first_mode``) and
+turned into columns at once (``_block``, ``_columns``), so a file of millions of
+detections never exists as Python objects (or as one byte string) all together, and a
+malformed or truncated one is rejected at flat memory (``_check_prefix``, ``_cut_short``).
+
+``CHUNK_BYTES`` and ``MAX_SLICE_BYTES``, like ``_decode_slice`` and ``_columns``, are
+looked up here at call time (tests patch them on this module).
+"""
+
+import re
+from itertools import chain
+from operator import attrgetter
+
+import msgspec
+import numpy as np
+
+from ..errors import InputError
+from . import json_literals, json_syntax, mask_results, result_readings, unread_fields
+from .coco_records import _INT_ONLY, _Detection, int_column, validation_error, whole_ids
+
+CHUNK_BYTES = 4 << 20
+#: No detection record is this long: past it, reading stops with an error instead of
+#: buffering a malformed file.
+MAX_SLICE_BYTES = 64 << 20
+
+
+def _columns(records, path="", base=0, wide=False):
+    n = len(records)
+
+    def locate(i):
+        return f"record {base + i}"
+
+    def ids(values, field):
+        values = whole_ids(path, values, locate, field)
+        if set(map(type, values)) <= _INT_ONLY:
+            try:
+                return np.fromiter(values, np.int64, n)
+            except OverflowError:  # beyond int64: see int_column
+                pass
+        return int_column(path, values, locate, field, wide)
+
+    # Fields read with C-level getters (no Python frame per record); each bbox is a
+    # 4-tuple of floats (the struct's type), laid out row after row.
+    return (
+        ids(list(map(_IMAGE_ID, records)), "image_id"),
+        ids(list(map(_CATEGORY_ID, records)), "category_id"),
+        np.fromiter(chain.from_iterable(map(_BBOX, records)), np.float64, 4 * n).reshape(-1, 4),
+        np.fromiter(map(_SCORE, records), np.float64, n),
+    )
+
+
+_IMAGE_ID, _CATEGORY_ID = attrgetter("image_id"), attrgetter("category_id")
+_BBOX, _SCORE = attrgetter("bbox"), attrgetter("score")
+
+
+class _Position:
+    """Line and column of absolute byte offsets, for bytes already read and dropped."""
+
+    def __init__(self, offset):
+        self.offset = offset  # absolute offset of buf[0]
+        self.lines = 0  # newlines before it
+        self.line_start = 0  # absolute offset just after the last of them
+
+    def advance(self, consumed, end=None):
+        """Move past ``consumed`` (its first ``end`` bytes: no copy of a slice)."""
+        end = len(consumed) if end is None else end
+        newlines = consumed.count(b"\n", 0, end)
+        if newlines:
+            self.lines += newlines
+            self.line_start = self.offset + consumed.rfind(b"\n", 0, end) + 1
+        self.offset += end
+
+    def locate(self, buf, k):
+        """(line, column) of buf[k], 1-based."""
+        nl = buf.rfind(b"\n", 0, k)
+        line = self.lines + buf.count(b"\n", 0, k) + 1
+        column = k - nl if nl >= 0 else self.offset + k - self.line_start + 1
+        return line, column
+
+
+def _last_cut(buf, lowest):
+    """(end of a record's ``}``, position after the comma that follows it), the last
+    such pair at or after ``lowest``; None if there is none yet."""
+    brace = len(buf)
+    while True:
+        brace = buf.rfind(b"}", lowest, brace)
+        if brace < 0:
+            return None
+        after = brace + 1
+        while after < len(buf) and buf[after : after + 1].isspace():
+            after += 1
+        if buf[after : after + 1] == b",":
+            return brace + 1, after + 1
+
+
+def _piece_error(path, error, buf, where, shift):
+    """An InputError for a slice of ``buf`` (decoded with ``shift`` bytes in front of
+    it) that failed at its byte ``k + shift``."""
+    text = str(error)
+    if "truncated" in text:
+        return InputError(path, "the JSON ends early: the file looks truncated")
+    m = re.search(r"\(byte (\d+)\)", text)
+    if not m:
+        return InputError(path, f"not valid JSON: {text}")
+    line, column = where.locate(buf, max(int(m.group(1)) - shift, 0))
+    reason = text.split(":", 1)[-1].split("(byte")[0].strip()
+    return InputError(path, f"not valid JSON: {reason} at line {line}, column {column}")
+
+
+def _decode_slice(piece, path="", base=0, mode=mask_results.BOXES):
+    """Typed detections of a slice; one whose typed decode fails on a ``bbox`` or
+    ``score`` is decoded again loosely (``unread_fields.normalise_detections``).
+    Under ``mask_results.MASKS`` (the file's first result has a segmentation and no
+    box) the records of ``mask_results.decode``; under the other readings of
+    ``result_readings`` those of its ``decode``."""
+    if mode == mask_results.MASKS:
+        return mask_results.decode(piece, path, base)
+    if mode in result_readings.MODES:
+        return result_readings.decode(piece, path, base, mode)
+    try:
+        return json_literals.decode(piece, list[_Detection])
+    except msgspec.ValidationError as e:
+        if not unread_fields.loose_detection(str(e)):
+            raise
+        loose = json_literals.decode(piece, list[unread_fields.LooseDetection])
+        return unread_fields.normalise_detections(path, loose, base)
+
+
+def _stream(path, f, skip, build=True, wide=False, decode=None):
+    """Columns of the records of a top-level JSON array, read a few MB at a time
+    (with ``build=False`` only the record counts: a validation pass; ``decode``: how a
+    slice becomes records: ``_decode_slice`` unless given, as ``exact_scores``' loose one).
+
+    Memory stays bounded by the slice size whatever the file size, also when the
+    file turns out to be malformed or truncated: nothing is ever read whole. A slice
+    ends after a ``}`` followed by a comma; should that ``}`` sit inside a string or
+    a nested object, the slice fails right at its end, and it is simply extended.
+    """
+    decode = decode or _decode_slice
+    where = _Position(skip)
+    buf = f.read(CHUNK_BYTES)
+    while buf and not buf.strip():  # leading whitespace
+        where.advance(buf)
+        buf = f.read(CHUNK_BYTES)
+    if not buf:
+        raise InputError(path, "the file is empty")
+    lead = len(buf) - len(buf.lstrip())
+    first = buf[lead : lead + 1]
+    if first == b"{":
+        raise InputError(
+            path,
+            "expected a JSON array of detections, got an object (is this a ground-truth file?)",
+        )
+    if first != b"[":
+        try:
+            json_literals.check_syntax(buf[lead:])
+        except msgspec.DecodeError as e:
+            where.advance(buf[:lead])
+            raise _piece_error(path, e, buf[lead:], where, 0) from None
+        raise InputError(path, "expected a JSON array of detections")
+    # buf[0] is always "[": the array's own bracket, later the comma before the next
+    # record, overwritten. A slice is decoded in place: the byte after its last "}" is
+    # set to "]" for the call and restored, so no slice is ever copied.
+    where.advance(buf[:lead])
+    buf = bytearray(buf[lead:])
+    base, lowest, eof, mode = 0, 1, False, None
+    while True:
+        if mode is None:
+            mode = _first_mode(path, buf, where, eof)
+            if mode is None:  # the first record is not whole yet: take more
+                more = f.read(CHUNK_BYTES)
+                eof = not more
+                buf += more
+                continue
+        if eof:
+            end = len(buf)  # the rest, closing bracket included
+        else:
+            cut = _last_cut(buf, lowest)
+            if cut is None:
+                if len(buf) > CHUNK_BYTES:  # no record ends here: a real error is reported
+                    _check_prefix(path, buf, where, base, mode)
+                more = f.read(CHUNK_BYTES)
+                eof = not more
+                buf += more
+                continue
+            end = cut[0] + 1
+            saved, buf[cut[0]] = buf[cut[0]], 0x5D  # "]"
+        view = memoryview(buf)[:end]
+        try:
+            records = decode(view, path, base, mode)
+        except msgspec.ValidationError as e:
+            raise validation_error(path, e, top_level_list=True, base=base) from None
+        except msgspec.DecodeError as e:
+            m = re.search(r"\(byte (\d+)\)", str(e))
+            at_end = "truncated" in str(e) or (m and int(m.group(1)) >= end - 1)
+            if not eof and at_end:  # maybe a cut inside a string: take more
+                view.release()
+                buf[cut[0]] = saved
+                lowest = len(buf)
+                more = f.read(CHUNK_BYTES)
+                eof = not more
+                buf += more
+                continue
+            view.release()
+            if not eof:
+                buf[cut[0]] = saved
+            raise _piece_error(path, e, buf, where, 0) from None
+        finally:
+            view.release()
+        yield _block(records, path, base, wide, mode, build)
+        if eof:
+            return
+        base += len(records)
+        comma = cut[1] - 1
+        where.advance(buf, comma)
+        del buf[:comma]
+        buf[0] = 0x5B  # "["
+        lowest = 1
+        more = f.read(CHUNK_BYTES)
+        eof = not more
+        buf += more
+
+
+def _first_mode(path, buf, where, eof):
+    """The reading (``mask_results.mode``) of the file's first record, decided only
+    once that record is whole in ``buf`` (its end found at nesting depth 1, so however
+    the bytes were chunked); None while it is not and more can be read. A first
+    record that does not decode is read as boxes, whose decoding reports its error."""
+    end = json_syntax.first_record_end(buf)
+    if end is None and not eof:
+        if len(buf) > CHUNK_BYTES:  # a syntax error inside it is reported now
+            try:
+                json_literals.check_syntax(bytes(buf))
+            except msgspec.DecodeError as e:
+                if not _cut_short(e, len(buf)):
+                    raise _piece_error(path, e, buf, where, 0) from None
+            if len(buf) > MAX_SLICE_BYTES:
+                raise InputError(
+                    path,
+                    f"no record ends within {MAX_SLICE_BYTES >> 20} MB: not a detections file",
+                    record="record 0",
+                )
+        return None
+    first = bytes(buf) if end is None else bytes(buf[:end]) + b"]"
+    return mask_results.mode(first) or mask_results.BOXES
+
+
+def _block(records, path, base, wide, mode, build):
+    """A slice's columns (image ids, class ids, boxes, scores, areas: None when the
+    file is read as boxes, and the reading: ``mask_results.mode``), or with
+    ``build=False`` its record count (a mask-reading slice is still checked whole)."""
+    if mode in result_readings.MODES:
+        if not build:
+            return len(records)
+        return (*_columns(records, path, base, wide), result_readings.area(records), mode)
+    if mode != mask_results.MASKS:
+        return (*_columns(records, path, base, wide), None, None) if build else len(records)
+    boxes, area = mask_results.columns(records, path, base)
+    if not build:
+        return len(records)
+    for record, box in zip(records, boxes.tolist()):
+        record.bbox = box
+    return (*_columns(records, path, base, wide), area, mode)
+
+
+def _cut_short(error, n):
+    """Whether msgspec's error on ``n`` bytes is only their ending early: truncated,
+    or failing at the last byte or just past it (a number cut as ``0.`` or ``1e``)."""
+    m = re.search(r"\(byte (\d+)\)", str(error))
+    return "truncated" in str(error) or bool(m and int(m.group(1)) >= n - 1)
+
+
+def _check_prefix(path, buf, where, base, mode):
+    """Raise the decoding error of buf (which starts with "[") unless it only ends
+    early; give up past ``MAX_SLICE_BYTES`` without a record boundary."""
+    try:
+        _decode_slice(bytes(buf), path, base, mode)
+    except msgspec.ValidationError as e:
+        raise validation_error(path, e, top_level_list=True, base=base) from None
+    except msgspec.DecodeError as e:
+        if not _cut_short(e, len(buf)):
+            raise _piece_error(path, e, buf, where, 0) from None
+    if len(buf) > MAX_SLICE_BYTES:
+        raise InputError(
+            path,
+            f"no record ends within {MAX_SLICE_BYTES >> 20} MB: not a detections file",
+            record=f"record {base}",
+        )
