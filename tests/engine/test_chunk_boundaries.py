@@ -176,3 +176,28 @@ def _slices_read_alike(tmp_path, monkeypatch, seed, masks, chunk, images_per_sha
         _same_columns(sliced, whole)
         compare_pieces(dt, truth, images_per_shard, tmp_path)
     _as_pycocotools(gt, dt, truth, whole)
+
+
+@pytest.mark.parametrize("literal", ["NaN", "Infinity", "-Infinity"])
+def test_a_literal_cut_by_a_slice_end_is_read_whole(tmp_path, monkeypatch, literal):
+    """``NaN``/``Infinity``/``-Infinity`` (Python's json reads them; pycocotools 2.0.11
+    scores such files) in an unread key of the first record, padded past the slice
+    size, and of a later one; every slice size from 1 byte to the file's length, so
+    a slice ends inside each literal (msgspec calls ``Na`` an invalid character, not a
+    truncation). Was refused as "not valid JSON"; the columns equal the whole read's
+    and the scores pycocotools 2.0.11's."""
+    rng = np.random.default_rng(7)
+    split = _split(rng, n_images=2)
+    dets = _detections(rng, split, masks=False)[:3]
+    for record in dets:
+        record["note"] = "p" * 40
+        record["extra"] = "LITERAL"
+    gt, dt = _files(tmp_path, split, dets)
+    dt.write_text(dt.read_text().replace('"LITERAL"', literal))
+    truth = load_truth(gt)
+    whole = load_predictions(dt, truth)
+    _as_pycocotools(gt, dt, truth, whole)
+    for chunk in range(1, len(dt.read_bytes()) + 1):
+        with monkeypatch.context() as m:
+            m.setattr(results_stream, "CHUNK_BYTES", chunk)
+            _same_columns(load_predictions(dt, truth), whole)

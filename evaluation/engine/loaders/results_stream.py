@@ -234,7 +234,7 @@ def _first_mode(path, buf, where, eof):
             try:
                 json_literals.check_syntax(bytes(buf))
             except msgspec.DecodeError as e:
-                if not _cut_short(e, len(buf)):
+                if not _cut_short(e, buf):
                     raise _piece_error(path, e, buf, where, 0) from None
             if len(buf) > MAX_SLICE_BYTES:
                 raise InputError(
@@ -265,11 +265,23 @@ def _block(records, path, base, wide, mode, build):
     return (*_columns(records, path, base, wide), area, mode)
 
 
-def _cut_short(error, n):
-    """Whether msgspec's error on ``n`` bytes is only their ending early: truncated,
-    or failing at the last byte or just past it (a number cut as ``0.`` or ``1e``)."""
+_LITERALS = (b"NaN", b"Infinity")  # as Python's json reads them (-Infinity: "-" first)
+
+
+def _cut_short(error, buf):
+    """Whether msgspec's error on ``buf`` is only its ending early: truncated, failing
+    at the last byte or just past it (a number cut as ``0.`` or ``1e``), or at a
+    ``NaN``/``Infinity`` literal that the end cuts (``Na``, ``-Inf``: msgspec calls
+    its first letter an invalid character)."""
+    n = len(buf)
     m = re.search(r"\(byte (\d+)\)", str(error))
-    return "truncated" in str(error) or bool(m and int(m.group(1)) >= n - 1)
+    if "truncated" in str(error):
+        return True
+    if not m:
+        return False
+    at = int(m.group(1))
+    tail = bytes(buf[at:])
+    return at >= n - 1 or any(len(tail) < len(w) and w.startswith(tail) for w in _LITERALS)
 
 
 def _check_prefix(path, buf, where, base, mode):
@@ -280,7 +292,7 @@ def _check_prefix(path, buf, where, base, mode):
     except msgspec.ValidationError as e:
         raise validation_error(path, e, top_level_list=True, base=base) from None
     except msgspec.DecodeError as e:
-        if not _cut_short(e, len(buf)):
+        if not _cut_short(e, buf):
             raise _piece_error(path, e, buf, where, 0) from None
     if len(buf) > MAX_SLICE_BYTES:
         raise InputError(
