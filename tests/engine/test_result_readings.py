@@ -327,6 +327,27 @@ def test_keypoints_replace_the_given_box(tmp_path):
     assert [res.anns[i]["bbox"] for i in (1, 2)] == [[2, 1, 28, 10], [2, 3, 0, 0]]
 
 
+@pytest.mark.parametrize("visibility", ["v", None, True, [1], 2**70])
+def test_keypoint_visibilities_are_not_read(tmp_path, visibility):
+    """pycocotools 2.0.11 loadRes reads only ``kp[0::3]`` and ``kp[1::3]``: whatever
+    stands in the visibility places, the file scores as pycocotools scores it."""
+    dets = [
+        {"image_id": 1, "category_id": 1, "score": 0.9, "keypoints": [2, 3, 2, 12, 11, 2]},
+        {
+            "image_id": 1,
+            "category_id": 1,
+            "score": 0.5,
+            "keypoints": [10, 10, visibility, 30, 30, visibility],
+        },
+    ]
+    gt, dt = _files(tmp_path, _small_split(), dets)
+    truth = load_truth(gt)
+    result = evaluate(truth, load_predictions(dt, truth), "coco")
+    reference = pycocotools_eval(gt, dt).stats
+    assert result["summary"]["AP"] == pytest.approx(reference[0], abs=1e-12)
+    assert result["summary"]["AR100"] == pytest.approx(reference[8], abs=1e-12)
+
+
 def test_scores_beyond_2_53_in_a_keypoint_file(tmp_path):
     """The second, loose read of a file with scores >= 2**53 reads keypoints too."""
     gt, dt = _file(tmp_path, "keypoints")

@@ -23,8 +23,8 @@
 Where pycocotools raises, the file is refused naming record and field. Deviations
 (stricter, documented): pycocotools raises for a missing or non-number ``area``/``bbox``
 only on a detection it compares (the top 100 per image and listed class), here on any
-record; keypoints holding booleans, nested lists, or integers of magnitude 2^30 or more
-(computed in int64 there, which can wrap) are refused. Checked against pycocotools
+record; keypoints whose x or y values (the only ones read) are booleans, nested lists,
+or integers of magnitude 2^30 or more (computed in int64 there, which can wrap) are refused. Checked against pycocotools
 2.0.11 in ``tests/engine/test_result_readings.py``.
 """
 
@@ -122,11 +122,13 @@ def _keypoints(path, r, at):
             f"must be a list [x1, y1, v1, ...] of at least 2 numbers, got {kp!r:.40} "
             "(pycocotools 2.0.11's np.min of no keypoints raises)",
         )
-    types = set(map(type, kp))
-    if not types <= _NUMBER_TYPES or (int in types and not _small_ints(kp)):
-        _bad_keypoint(path, at, kp)
-    x0, x1 = _extent(kp[0::3], float in types)
-    y0, y1 = _extent(kp[1::3], float in types)
+    xs, ys = kp[0::3], kp[1::3]  # loadRes reads no other value (visibilities unread)
+    read = xs + ys
+    types = set(map(type, read))
+    if not types <= _NUMBER_TYPES or (int in types and not _small_ints(read)):
+        _bad_keypoint(path, at, read)
+    x0, x1 = _extent(xs, float in types)
+    y0, y1 = _extent(ys, float in types)
     r.bbox = (x0, y0, x1 - x0, y1 - y0)
     r.area = (x1 - x0) * (y1 - y0)
 
