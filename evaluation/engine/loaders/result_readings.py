@@ -24,8 +24,8 @@ Where pycocotools raises, the file is refused naming record and field. Deviation
 (stricter, documented): pycocotools raises for a missing or non-number ``area``/``bbox``
 only on a detection it compares (the top 100 per image and listed class), here on any
 record; keypoints whose x or y values (the only ones read) are booleans, nested lists,
-or integers of magnitude 2^30 or more (computed in int64 there, which can wrap) are refused. Checked against pycocotools
-2.0.11 in ``tests/engine/test_result_readings.py``.
+or integers of magnitude 2^30 or more (computed in int64 there, which can wrap) are
+refused. Checked against pycocotools 2.0.11 in ``tests/engine/test_result_readings.py``.
 """
 
 import math
