@@ -8,8 +8,6 @@ import json
 
 import numpy as np
 import pytest
-from django.core.management import call_command
-from django.urls import reverse
 from pycocotools import mask as mask_utils
 
 from evaluation import services as evaluation_services
@@ -22,6 +20,7 @@ from .test_any_ids import _assert_pycocotools_numbers
 from .test_api import API, client_for, file
 from .test_client import client_home, run  # noqa: F401
 from .test_worker import worker  # noqa: F401
+from .three_uploads import upload_by_page_api_and_command
 
 pytestmark = pytest.mark.django_db
 
@@ -65,34 +64,10 @@ def test_page_api_and_command_score_masks_as_pycocotools(
         name="masks", revision=1, truth=upload("masks.json", truth)
     )
     sets = [_masks(truth, seed) for seed in (1, 2, 3)]
-    client.force_login(users["engineer"])
-    response = run_tasks(
-        client.post,
-        reverse("upload", args=[detector.pk]),
-        {"version": "1.0", "split": split.pk, "predictions": upload("page.json", sets[0])},
+    labels = upload_by_page_api_and_command(
+        client, run_tasks, users, detector, split, sets, tmp_path
     )
-    assert response.status_code in (200, 302), response.content.decode()
-    response = run_tasks(
-        client_for(users["engineer"]).post,
-        API + "prediction-sets/",
-        {
-            "detector": detector.pk,
-            "version": "2.0",
-            "split": split.pk,
-            "predictions": file("api.json", sets[1]),
-        },
-        format="multipart",
-    )
-    assert response.status_code == 201, response.json()
-    path = tmp_path / "third.json"
-    path.write_text(json.dumps(sets[2]))
-    run_tasks(
-        call_command,
-        "upload_predictions",
-        "--detector", detector.slug, "--label", "3.0", "--split", "masks:1",
-        "--user", "engineer", "--create-version", str(path),
-    )  # fmt: skip
-    for label, dets in zip(("1.0", "2.0", "3.0"), sets):
+    for label, dets in zip(labels, sets):
         version = detector.versions.get(label=label)
         card = _assert_pycocotools_numbers(_evaluation(version), truth, dets, tmp_path)
         _mask_area_recorded(card)

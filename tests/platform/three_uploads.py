@@ -1,0 +1,44 @@
+"""One results set through each upload entry point: the upload page, the API and the
+``upload_predictions`` command, as versions 1.0, 2.0 and 3.0 of a detector."""
+
+import json
+
+from django.core.management import call_command
+from django.urls import reverse
+
+from .conftest import upload
+from .test_api import API, client_for, file
+
+
+def upload_by_page_api_and_command(client, run_tasks, users, detector, split, sets, tmp_path):
+    """``sets[0]`` by the page, ``sets[1]`` by the API, ``sets[2]`` by the command,
+    each scored by ``run_tasks``; the three versions' labels."""
+    client.force_login(users["engineer"])
+    response = run_tasks(
+        client.post,
+        reverse("upload", args=[detector.pk]),
+        {"version": "1.0", "split": split.pk, "predictions": upload("page.json", sets[0])},
+    )
+    assert response.status_code in (200, 302), response.content.decode()
+    response = run_tasks(
+        client_for(users["engineer"]).post,
+        API + "prediction-sets/",
+        {
+            "detector": detector.pk,
+            "version": "2.0",
+            "split": split.pk,
+            "predictions": file("api.json", sets[1]),
+        },
+        format="multipart",
+    )
+    assert response.status_code == 201, response.json()
+    path = tmp_path / "third.json"
+    path.write_text(json.dumps(sets[2]))
+    run_tasks(
+        call_command,
+        "upload_predictions",
+        "--detector", detector.slug, "--label", "3.0",
+        "--split", f"{split.name}:{split.revision}",
+        "--user", "engineer", "--create-version", str(path),
+    )  # fmt: skip
+    return ("1.0", "2.0", "3.0")
