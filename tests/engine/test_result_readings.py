@@ -17,6 +17,7 @@ from evaluation.engine.provenance import protocol_record
 from .conftest import pycocotools_eval
 from .synthetic import make_detections, make_split
 from .test_coco_reference import _compare
+from .test_mask_results import _files, _small_split
 
 
 def _split(rng, n_images=6, n_classes=3):
@@ -126,13 +127,6 @@ def test_keypoint_files_score_as_pycocotools(tmp_path, scenario):
     assert predictions.box_counts["keypoint_area"] == len(predictions)
 
 
-def _files(tmp_path, split, detections):
-    gt, dt = tmp_path / "truth.json", tmp_path / "results.json"
-    gt.write_text(json.dumps(split))
-    dt.write_text(json.dumps(detections))
-    return gt, dt
-
-
 def _file(tmp_path, reading, seed=15):
     rng = np.random.default_rng(seed)
     split = make_split(rng, n_images=30, n_classes=3, boxes_per_image=3, width=120, height=90)
@@ -234,23 +228,6 @@ def test_cache_keeps_the_reading(tmp_path, reading):
     assert again.area.tobytes() == first.area.tobytes()
     assert again.boxes.tobytes() == first.boxes.tobytes()
     assert again.box_counts == first.box_counts
-
-
-def _small_split():
-    return {
-        "images": [{"id": 1, "width": 40, "height": 30}],
-        "annotations": [
-            {
-                "id": 1,
-                "image_id": 1,
-                "category_id": 1,
-                "bbox": [2, 3, 10, 8],
-                "area": 80.0,
-                "iscrowd": 0,
-            }
-        ],
-        "categories": [{"id": 1, "name": "car"}],
-    }
 
 
 _FIRST = {
