@@ -6,7 +6,10 @@ the number of detections. Columns (``COLUMNS``):
 
 ``row``            ``detection`` or ``box``
 ``image_id``       the split's image id (JSON Lines: the JSON value the split gave; an
-                   infinite one as the string "Infinity" or "-Infinity")
+                   infinite one as the string "Infinity" or "-Infinity"; a text id
+                   holding a lone UTF-16 surrogate, which no UTF-8 text can hold, as the
+                   JSON-quoted text CSV and the pages show, ``"a\\ud800"``, and so
+                   is a text id beginning with ``"`` in such a split: see ``_jsonl_id``)
 ``class``          the row's class
 ``score``          detection score (empty for a box)
 ``x, y, w, h``     the row's box, pixels
@@ -29,7 +32,7 @@ import math
 
 import numpy as np
 
-from .loaders.ids import key_value, keys_of
+from .loaders.ids import SURROGATE, key_value, keys_of, quoted
 from .reasons import BOX_REASONS, DETECTION_REASONS, box_outcome, detection_outcome
 
 COLUMNS = (
@@ -151,13 +154,28 @@ def _strict(value):
     return value
 
 
+def _jsonl_id(value, id_type):
+    """An image id as JSON Lines writes it. Strict JSON readers refuse a lone surrogate
+    escape (RFC 8259 section 8.2 leaves its handling open; msgspec, for one, refuses
+    it), so in a ``"json"`` id family an id holding one is written as its JSON-quoted
+    text (``ids.quoted``, injective), and so is an id beginning with ``"``, so that
+    no two ids are written alike: a written id beginning with ``"`` is always quoted
+    (``json.loads`` of it gives the id back)."""
+    if id_type == "json" and isinstance(value, str):
+        if value.startswith('"') or SURROGATE.search(value):
+            return quoted(value)
+    return _strict(value)
+
+
 def jsonl_chunks(records, truth, block_rows=BLOCK_ROWS):
     """Yield JSON Lines text, one object per row (missing values are null; a NaN or
     infinite score, coordinate, IoU or image id is the string "NaN", "Infinity",
-    "-Infinity")."""
+    "-Infinity"; image ids as ``_jsonl_id`` writes them). Every line is strict JSON
+    and UTF-8 text."""
     encode = json.JSONEncoder(allow_nan=False, separators=(",", ":")).encode
     for block in row_blocks(records, truth, block_rows, typed_ids=True):
-        for name in ("image_id", "score", "x", "y", "w", "h", "iou"):
+        block["image_id"] = [_jsonl_id(v, truth.image_id_type) for v in block["image_id"]]
+        for name in ("score", "x", "y", "w", "h", "iou"):
             block[name] = [_strict(v) for v in block[name]]
         yield "".join(
             encode(dict(zip(COLUMNS, values))) + "\n"

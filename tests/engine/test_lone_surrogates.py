@@ -316,7 +316,9 @@ def _strict(text):
 def test_cli_output_is_utf8_text_and_strict_json(tmp_path):
     """Table, JSON report, CSV and JSON Lines records: UTF-8 text (strict decoding);
     the JSON report and each JSON Lines row parse as strict JSON (no NaN literals); a
-    JSON Lines image id is the id's own JSON value (its surrogate as the JSON escape)."""
+    JSON Lines image id is the id's own JSON value, except one holding a lone surrogate,
+    which strict readers refuse as an escape: that one is the JSON-quoted text the pages
+    show."""
     gt, dt = _write(tmp_path, *_example())
     common = ["--truth", str(gt), "--predictions", str(dt)]
     table = _cli(*common)
@@ -333,7 +335,29 @@ def test_cli_output_is_utf8_text_and_strict_json(tmp_path):
         assert (done.returncode, done.stderr) == (0, b"")
         text = out.read_bytes().decode("utf-8")
         if suffix == "jsonl":
-            rows = [_strict(line) for line in text.splitlines()]
-            assert {r["image_id"] for r in rows} == {"a\ud800", "a\\ud800"}
+            rows = [msgspec.json.decode(line) for line in text.splitlines()]  # strict
+            assert rows == [_strict(line) for line in text.splitlines()]
+            # the surrogate id quoted as the pages show it (json.loads gives it back);
+            # "a\\ud800", a backslash written as text, is written as its value
+            assert {r["image_id"] for r in rows} == {'"a\\ud800"', "a\\ud800"}
+            assert json.loads('"a\\ud800"') == "a\ud800"
         else:
             assert '"""a\\ud800"""' in text  # the JSON-quoted id, as GroundTruth keeps it
+
+
+def test_json_lines_ids_stay_apart_and_strict():
+    """A split holding the id "a\\ud800" (lone surrogate) and the text id written as
+    its quoted form: each JSON Lines id is strict UTF-8 JSON (msgspec decodes it) and
+    no two ids are written alike; a written id beginning with a quote gives the id back
+    through ``json.loads`` (common practice: RFC 8259 section 8.2 on unpaired
+    surrogates)."""
+    from evaluation.engine.export import _jsonl_id
+
+    family = ["a\ud800", '"a\\ud800"', "a\\ud800", "plain", '"', 'x"']
+    written = [_jsonl_id(i, "json") for i in family]
+    assert len(set(written)) == len(family)
+    for original, out in zip(family, written):
+        msgspec.json.decode(json.dumps(out, ensure_ascii=False).encode("utf-8"))
+        assert (json.loads(out) if out.startswith('"') else out) == original
+    assert written[3:] == ["plain", '"\\""', 'x"']
+    assert _jsonl_id('"a"', "text") == '"a"'  # no surrogate can occur: ids as given
