@@ -282,8 +282,12 @@ def stream_predictions(
     fmt = _format(path, fmt)
     if fmt not in detection_blocks.STREAMABLE:
         raise InputError(path, f"{fmt} detections cannot be read a block at a time")
-    for raw in detection_blocks.raw_blocks(path, truth, fmt, ids == "any"):
-        yield detection_blocks.resolve(path, truth, raw, boxes, unknown_classes, unknown_images)
+    wide = ids == "any"
+    rank_of = detection_blocks.file_ranks(path, truth, fmt, wide, unknown_images)
+    for raw in detection_blocks.raw_blocks(path, truth, fmt, wide):
+        yield detection_blocks.resolve(
+            path, truth, raw, boxes, unknown_classes, unknown_images, rank_of
+        )
 
 
 def _read_predictions(

@@ -5,14 +5,17 @@ boxes, scores) become engine columns: image and class lookup, the unknown-image 
 unknown-class policies, the box checks and the box policy. ``load_predictions`` calls
 it once on the whole file; ``stream`` calls it on each block of a JSON or CSV file, so
 a streamed file gives exactly the columns of a whole load, block after block (every
-check is per record, every count a sum).
+check is per record, every count a sum — but for records pycocotools would fail on
+only when comparing them, ``Raw.unfit``: their rank in their image and class is the
+whole file's, ``file_ranks``, read again when a block holds one).
 """
 
 import dataclasses
 
 import numpy as np
 
-from . import checks, coco_json, csv_tables, unread_fields
+from ..errors import InputError
+from . import checks, coco_json, csv_tables, uncompared, unread_fields
 from .ids import NULL, NUMBER, TEXT, escaped, ids_like, keys_of, typed_keys
 
 #: Formats that can be read a block at a time.
@@ -35,6 +38,10 @@ class Raw:
     fields: dict
     area: np.ndarray = None  # per detection, for size ranges: None = w * h (the box's)
     reading: str = None  # how a JSON file was read (``mask_results.mode``): None = boxes
+    #: per detection None, or the ``(field, message)`` pycocotools fails on only if it
+    #: compares the detection (``uncompared``); None: every record fit
+    unfit: np.ndarray = None
+    base: int = 0  # the file's number of the block's first record
 
 
 @dataclasses.dataclass
@@ -77,10 +84,12 @@ def _plain(key):
     return escaped(key[1:] if key[:1] in (NUMBER, TEXT, NULL) else key)
 
 
-def json_raw(truth, image_ids, class_keys, boxes, score, area=None, reading=None, base=0):
+def json_raw(
+    truth, image_ids, class_keys, boxes, score, area=None, reading=None, unfit=None, base=0
+):
     """A block of a COCO-style results file (records ``base``, ``base + 1``...);
     ``area``: the detections' areas of a file not read as boxes, ``reading`` which
-    reading (``mask_results.mode``, ``result_readings``)."""
+    reading (``mask_results.mode``, ``result_readings``), ``unfit`` as ``Raw.unfit``."""
     shown = image_ids
     image_ids, known_images = _json_keys(image_ids, truth.image_ids, truth.image_id_type)
     class_keys, known_classes = _json_keys(class_keys, truth.class_ids, truth.class_id_type)
@@ -96,6 +105,8 @@ def json_raw(truth, image_ids, class_keys, boxes, score, area=None, reading=None
         {"image": "image_id", "class": "category_id", "bbox": "bbox"},
         area,
         reading,
+        unfit,
+        base,
     )
 
 
@@ -126,11 +137,16 @@ def csv_raw(truth, ids, labels, boxes, score, lines):
     )
 
 
-def resolve(path, truth, raw, policy, unknown_classes, unknown_images):
+def resolve(path, truth, raw, policy, unknown_classes, unknown_images, rank_of=None):
     """``Resolved`` columns of one block (see ``load_predictions`` for the policies);
-    an ``InputError`` names the file, the record and the field."""
+    an ``InputError`` names the file, the record and the field. An unfit record
+    (``Raw.unfit``) of a listed class is refused if pycocotools compares it (ranked
+    below ``uncompared.CAP`` in its image and class), else left out and counted;
+    ``rank_of(record numbers)`` ranks them in the whole file (``uncompared.FileRanks``),
+    None: this block is the whole file."""
     image_ids, class_keys, boxes, score = raw.image_ids, raw.class_keys, raw.boxes, raw.score
-    area = raw.area
+    area, unfit = raw.area, raw.unfit
+    kept_at = np.arange(len(score))  # the block's row of each kept record
     locate, fields = raw.locate, raw.fields
     image, found = checks.resolve(path, image_ids, raw.known_images, locate, "", "")
     dropped_images = 0
@@ -144,6 +160,7 @@ def resolve(path, truth, raw, policy, unknown_classes, unknown_images):
             score[found],
         )
         area = None if area is None else area[found]
+        kept_at = kept_at[found]
         locate_read = locate
         locate = lambda i: locate_read(int(rows[i]))  # noqa: E731
     else:
@@ -163,6 +180,7 @@ def resolve(path, truth, raw, policy, unknown_classes, unknown_images):
         dropped_classes = distinct_keys(class_keys[~found])
         image, cls, boxes, score = image[found], cls[found], boxes[found], score[found]
         area = None if area is None else area[found]
+        kept_at = kept_at[found]
         kept_rows = np.flatnonzero(found)
         locate_all = locate
         locate = lambda i: locate_all(int(kept_rows[i]))  # noqa: E731
@@ -174,6 +192,27 @@ def resolve(path, truth, raw, policy, unknown_classes, unknown_images):
         "missing or not a number (pycocotools reads the score of every detection of a "
         "class the split lists)",
     )
+    uncompared_unfit = 0
+    if unfit is not None:
+        bad = np.flatnonzero(uncompared.fields(unfit[kept_at]))
+        if len(bad):
+            if rank_of is None:
+                rank = uncompared.ranks(image.astype(np.int64) * len(truth.classes) + cls, score)
+                rank = rank[bad]
+            else:
+                rank = rank_of(raw.base + kept_at[bad])
+            compared = bad[rank < uncompared.CAP]
+            if len(compared):
+                field, message = unfit[kept_at[compared[0]]]
+                raise InputError(path, message, record=locate(int(compared[0])), field=field)
+            keep = np.ones(len(score), bool)
+            keep[bad] = False
+            image, cls, boxes, score = image[keep], cls[keep], boxes[keep], score[keep]
+            area = None if area is None else area[keep]
+            uncompared_unfit = len(bad)
+            kept = np.flatnonzero(keep)
+            locate_unfit = locate
+            locate = lambda i: locate_unfit(int(kept[i]))  # noqa: E731
     checks.check_boxes(path, boxes, locate, fields["bbox"], policy)
     if policy == "reject":  # else scored as pycocotools does: NaN ranks last
         checks.fail_at(
@@ -203,6 +242,7 @@ def resolve(path, truth, raw, policy, unknown_classes, unknown_images):
             **box_counts,
             "non_finite_score": int((~np.isfinite(score)).sum()),
             **({} if area is None else {AREA_COUNT[raw.reading]: len(area)}),
+            **({uncompared.COUNT: uncompared_unfit} if uncompared_unfit else {}),
         },
         dropped_classes=dropped_classes,
         area=area,
@@ -232,7 +272,30 @@ def raw_blocks(path, truth, fmt, wide):
 
 
 def add_counts(total, counts):
-    """``total`` plus ``counts`` key by key (the first block's key order)."""
+    """``total`` plus ``counts`` key by key (the first block's key order; a key only
+    some blocks give, ``uncompared.COUNT``, after them)."""
     if total is None:
         return dict(counts)
-    return {key: total[key] + counts[key] for key in total}
+    keys = list(total) + [key for key in counts if key not in total]
+    return {key: total.get(key, 0) + counts.get(key, 0) for key in keys}
+
+
+def file_ranks(path, truth, fmt, wide, unknown_images):
+    """``uncompared.FileRanks`` over a JSON file's blocks (read again when needed)."""
+    n_classes = len(truth.classes)
+
+    def blocks():
+        for raw in raw_blocks(path, truth, fmt, wide):
+            image, found_image = checks.resolve(
+                path, raw.image_ids, raw.known_images, raw.locate, "", ""
+            )
+            cls, found_class = checks.resolve(
+                path, raw.class_keys, raw.known_classes, raw.locate, "", ""
+            )
+            group = image.astype(np.int64) * n_classes + cls
+            group[~(found_image & found_class)] = -1
+            n = len(raw.score)
+            unfit = raw.unfit if raw.unfit is not None else np.full(n, None, object)
+            yield raw.base + np.arange(n), group, raw.score, unfit
+
+    return uncompared.FileRanks(blocks)

@@ -72,7 +72,7 @@ def _loose(collected):
         if mode == mask_results.MASKS:  # a file read as masks (``mask_results``)
             loose = json_literals.decode(piece, list[mask_results.LooseMaskDetection])
             collected.append([r.score for r in loose])
-            return [mask_results.normalise(path, r, base + i) for i, r in enumerate(loose)]
+            return mask_results.normalised(path, loose, base)
         if mode in result_readings.MODES:
             return result_readings.decode(piece, path, base, mode, collected)
         loose = json_literals.decode(piece, list[unread_fields.LooseDetection])

@@ -8,8 +8,11 @@ result: ``'bbox' in anns[0] and not anns[0]['bbox'] == []`` → every result is 
 mask's area). Under ``iouType='bbox'`` matching reads the box and ``evaluateImg``'s
 size ranges read that area. ``mode`` makes the first choice; ``columns`` the rest
 (area and boxes: ``rle``). Where pycocotools raises (or crashes), the file is refused
-naming record and field; checked by running pycocotools 2.0.11 (``tests/engine/
-test_mask_results.py``).
+naming record and field; a given ``bbox`` that is not 4 numbers raises there only in
+``computeIoU``, on a detection it compares, so such a record is unfit
+(``result_readings.Decoded``): refused if compared, else left out and counted
+(``uncompared``). Checked by running pycocotools 2.0.11 (``tests/engine/
+test_mask_results.py``, ``tests/engine/test_uncompared.py``).
 """
 
 import math
@@ -86,8 +89,19 @@ def decode(piece, path, base):
     try:
         return json_literals.decode(piece, list[MaskDetection])
     except msgspec.ValidationError:
-        loose = json_literals.decode(piece, list[LooseMaskDetection])
-        return [normalise(path, r, base + i) for i, r in enumerate(loose)]
+        return normalised(path, json_literals.decode(piece, list[LooseMaskDetection]), base)
+
+
+def normalised(path, loose, base):
+    """Loosely decoded records as ``MaskDetection``s (``normalise``), with their unfit
+    fields (``result_readings.Decoded``)."""
+    records = result_readings.Decoded()
+    records.unfit = []
+    for i, r in enumerate(loose):
+        record, unfit = normalise(path, r, base + i)
+        records.append(record)
+        records.unfit.append(unfit)
+    return records
 
 
 def _fail(path, record, field, message):
@@ -95,20 +109,24 @@ def _fail(path, record, field, message):
 
 
 def normalise(path, r, at):
-    """One loosely decoded record as a ``MaskDetection``, or an error naming it."""
-    box = r.bbox
+    """One loosely decoded record as a ``MaskDetection`` and None, or with its bbox
+    NaN and the unfit ``(field, message)`` when that bbox is not 4 numbers (pycocotools
+    raises on it only in ``computeIoU``); an error naming it where ``loadRes`` raises."""
+    box, unfit = r.bbox, None
     if box is not msgspec.UNSET:
         box = unread_fields._box(box, text=True)  # numpy reads it in computeIoU
         if box is None:
-            _fail(path, at, "bbox", f"must be 4 numbers [x, y, w, h], got {r.bbox!r:.40}")
+            box = (math.nan,) * 4
+            unfit = ("bbox", f"must be 4 numbers [x, y, w, h], got {r.bbox!r:.40}")
     score = unread_fields.as_number(r.score)
-    return MaskDetection(
+    record = MaskDetection(
         r.image_id,
         r.category_id,
         unread_fields.BAD_SCORE if score is None else score,
         _segmentation(path, r.segmentation, at),
         box,
     )
+    return record, unfit
 
 
 def _segmentation(path, seg, at):

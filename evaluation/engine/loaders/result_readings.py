@@ -20,15 +20,21 @@
   matched by the detection's id (``gtm > 0``: an id of 0 or below leaves it matchable
   again). Refused here, naming pycocotools' reading.
 
-Where pycocotools raises, the file is refused naming record and field. Deviations
-(stricter, documented): pycocotools raises for a missing or non-number ``area``/``bbox``
-only on a detection it compares (the top 100 per image and listed class), here on any
-record; keypoints whose x or y values (the only ones read) are booleans, nested lists,
-or integers of magnitude 2^30 or more (computed in int64 there, which can wrap) are
-refused. Checked against pycocotools 2.0.11 in ``tests/engine/test_result_readings.py``.
+Where pycocotools raises, the file is refused naming record and field. A missing or
+non-number ``area``/``bbox`` makes pycocotools raise only on a detection it compares
+(the top 100 per image and listed class: ``computeIoU``, ``evaluateImg``), so such a
+record is *unfit* here (``Decoded.unfit``: field and message): refused by
+``detection_blocks.resolve`` when it is compared, left out and counted when it is not
+(``uncompared``). Keypoints whose x or y values (the only ones read) are booleans,
+nested lists, or integers of magnitude 2^30 or more are run through ``loadRes``' own
+numpy lines (``_loadres_extent``): where those raise, the file is refused; where they
+do not, the record is unfit (its extent computed in int64 there, which can wrap, or
+from booleans: refused when compared). Checked against pycocotools 2.0.11 in
+``tests/engine/test_result_readings.py`` and ``tests/engine/test_uncompared.py``.
 """
 
 import math
+import warnings
 from typing import Any
 
 import msgspec
@@ -56,6 +62,16 @@ def _fail(path, record, field, message):
     raise InputError(path, message, record=f"record {record}", field=field)
 
 
+class Decoded(list):
+    """The records of a slice; ``unfit``: per record None, or ``(field, message)`` when
+    pycocotools would fail on it only if it compares it (``uncompared``)."""
+
+    unfit = None
+
+
+_NAN_BOX = (math.nan,) * 4
+
+
 def decode(piece, path, base, mode, scores=None):
     """The records of a slice under ``mode``, each with ``bbox`` a 4-tuple of floats,
     ``score`` a float (``BAD_SCORE`` when missing or not a number) and ``area`` a float;
@@ -75,25 +91,35 @@ def decode(piece, path, base, mode, scores=None):
     if scores is not None:
         scores.append([r.score for r in loose])
     fix = _caption if mode == CAPTION else _keypoints
-    for i, r in enumerate(loose):
-        fix(path, r, base + i)
+    records = Decoded(loose)
+    records.unfit = [fix(path, r, base + i) for i, r in enumerate(loose)]
+    for r in loose:
         score = unread_fields.as_number(r.score)
         r.score = unread_fields.BAD_SCORE if score is None else score
-    return loose
+    return records
+
+
+def _unfit(r, field, message):
+    """Mark ``r`` unfit (no box, no area: never compared if it stays)."""
+    r.bbox, r.area = _NAN_BOX, math.nan
+    return field, message
 
 
 def _caption(path, r, at):
+    """``r``'s own bbox and area, checked as ``computeIoU``/``evaluateImg`` read them;
+    None, or the unfit field and message (``Decoded.unfit``)."""
     why = "the file's first result has a caption key, so pycocotools 2.0.11 reads "
     if r.bbox is msgspec.UNSET:
-        _fail(path, at, "bbox", f"missing: {why}each result's own bbox (computeIoU: KeyError)")
+        return _unfit(r, "bbox", f"missing: {why}each result's own bbox (computeIoU: KeyError)")
     box = unread_fields._box(r.bbox, text=True)  # numpy reads it in computeIoU
     if box is None:
-        _fail(path, at, "bbox", f"must be 4 numbers [x, y, w, h], got {r.bbox!r:.40}")
+        return _unfit(r, "bbox", f"must be 4 numbers [x, y, w, h], got {r.bbox!r:.40}")
     if r.area is msgspec.UNSET:
-        _fail(path, at, "area", f"missing: {why}each result's own area (evaluateImg: KeyError)")
+        return _unfit(r, "area", f"missing: {why}each result's own area (evaluateImg: KeyError)")
     if type(r.area) not in (int, float, bool):
-        _fail(path, at, "area", f"must be a number ({why}it as given), got {r.area!r:.40}")
+        return _unfit(r, "area", f"must be a number ({why}it as given), got {r.area!r:.40}")
     r.bbox, r.area = box, _float(r.area)
+    return None
 
 
 def _float(value):
@@ -126,11 +152,12 @@ def _keypoints(path, r, at):
     read = xs + ys
     types = set(map(type, read))
     if not types <= _NUMBER_TYPES or (int in types and not _small_ints(read)):
-        _bad_keypoint(path, at, read)
+        return _odd_keypoints(path, at, r, xs, ys)
     x0, x1 = _extent(xs, float in types)
     y0, y1 = _extent(ys, float in types)
     r.bbox = (x0, y0, x1 - x0, y1 - y0)
     r.area = (x1 - x0) * (y1 - y0)
+    return None
 
 
 _NUMBER_TYPES = frozenset((int, float))
@@ -140,18 +167,48 @@ def _small_ints(kp):
     return all(-_INT_LIMIT < v < _INT_LIMIT for v in kp if type(v) is int)
 
 
-def _bad_keypoint(path, at, kp):
-    for v in kp:
-        t = type(v)
-        if t is float or (t is int and -_INT_LIMIT < v < _INT_LIMIT):
-            continue
+def _odd_keypoints(path, at, r, xs, ys):
+    """Keypoints holding something besides floats and small integers: refused where
+    ``loadRes``' own lines raise on them (text, null, ragged lists, integers numpy
+    cannot mix), else unfit: the extent numpy gives there (booleans as 0/1, int64 that
+    can wrap) is no box to score, so the record is refused only if compared."""
+    try:
+        _loadres_extent(xs, ys)
+    except Exception as e:  # noqa: BLE001 - whatever numpy raises, pycocotools raises
         _fail(
             path,
             at,
             "keypoints",
-            f"must hold numbers, got {v!r:.40}"
-            + (" (integers of magnitude 2^30 or more: refused)" if t is int else ""),
+            f"must hold numbers, got {_odd_value(xs + ys)!r:.40} (pycocotools 2.0.11's "
+            f"loadRes raises {type(e).__name__} on these keypoints)",
         )
+    v = _odd_value(xs + ys)
+    return _unfit(
+        r,
+        "keypoints",
+        f"must hold numbers, got {v!r:.40}"
+        + (" (integers of magnitude 2^30 or more: refused)" if type(v) is int else "")
+        + " on a detection pycocotools compares",
+    )
+
+
+def _loadres_extent(x, y):
+    """The lines of pycocotools 2.0.11 ``loadRes`` that read keypoints, as written
+    there (numpy picks the types; warnings as there are not errors)."""
+    with np.errstate(all="ignore"), warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        x0, x1, y0, y1 = np.min(x), np.max(x), np.min(y), np.max(y)
+        return [x0, y0, x1 - x0, y1 - y0], (x1 - x0) * (y1 - y0)
+
+
+def _odd_value(kp):
+    """The first value that is no float and no integer of magnitude below 2^30."""
+    for v in kp:
+        t = type(v)
+        if t is float or (t is int and -_INT_LIMIT < v < _INT_LIMIT):
+            continue
+        return v
+    return None
 
 
 def _extent(values, floats):

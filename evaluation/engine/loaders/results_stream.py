@@ -249,20 +249,33 @@ def _first_mode(path, buf, where, eof):
 
 def _block(records, path, base, wide, mode, build):
     """A slice's columns (image ids, class ids, boxes, scores, areas: None when the
-    file is read as boxes, and the reading: ``mask_results.mode``), or with
-    ``build=False`` its record count (a mask-reading slice is still checked whole)."""
+    file is read as boxes, the reading: ``mask_results.mode``, and the unfit fields:
+    ``_unfit``), or with ``build=False`` its record count (a mask-reading slice is
+    still checked whole)."""
     if mode in result_readings.MODES:
         if not build:
             return len(records)
-        return (*_columns(records, path, base, wide), result_readings.area(records), mode)
+        area = result_readings.area(records)
+        return (*_columns(records, path, base, wide), area, mode, _unfit(records))
     if mode != mask_results.MASKS:
-        return (*_columns(records, path, base, wide), None, None) if build else len(records)
+        return (*_columns(records, path, base, wide), None, None, None) if build else len(records)
     boxes, area = mask_results.columns(records, path, base)
     if not build:
         return len(records)
     for record, box in zip(records, boxes.tolist()):
         record.bbox = box
-    return (*_columns(records, path, base, wide), area, mode)
+    return (*_columns(records, path, base, wide), area, mode, _unfit(records))
+
+
+def _unfit(records):
+    """Per record None, or the ``(field, message)`` pycocotools would fail on only if
+    it compared the record (``result_readings.Decoded``): an object array."""
+    column = np.full(len(records), None, object)
+    unfit = getattr(records, "unfit", None)
+    for i, why in enumerate(unfit or ()):
+        if why is not None:  # a tuple: set one element, not a broadcast
+            column[i] = why
+    return column
 
 
 _LITERALS = (b"NaN", b"Infinity")  # as Python's json reads them (-Infinity: "-" first)

@@ -1,0 +1,78 @@
+"""Detections pycocotools 2.0.11 never compares, and the records it would fail on only
+if it did.
+
+``COCOeval.computeIoU`` and ``evaluateImg`` read a detection's ``bbox`` and ``area``
+only for the first ``maxDets[-1] = 100`` of its (image, category) by score (``np.argsort
+([-d['score'] ...], kind='mergesort')``: descending, ties in file order, NaN last), and
+only for categories the split lists (``catIds``). So a record whose bbox or area cannot
+be read (``result_readings.Decoded.unfit``) makes pycocotools raise only when it is among
+those; else the file scores as if the record were absent. ``ranks`` gives each
+detection's place within its (image, class); ``resolve`` (``detection_blocks``) refuses
+an unfit record ranked below ``CAP`` naming its field, and leaves out and counts one
+ranked at or beyond it (``box_counts[COUNT]``). A file read a block at a time cannot
+rank a record from its own block: ``FileRanks`` reads the file again (only when a block
+holds an unfit record of a listed class) for the groups that hold one.
+"""
+
+import numpy as np
+
+#: pycocotools' per-image cap on compared detections (``maxDets[-1]``).
+CAP = 100
+#: The ``box_counts`` key of the unfit detections left out beyond the cap.
+COUNT = "uncompared_unfit"
+
+
+def ranks(group, score):
+    """Each detection's 0-based place within its ``group`` (image and class as one
+    integer): descending score, ties in row order, NaN last, as ``np.argsort(-score,
+    kind='mergesort')`` ranks an image's detections of a class."""
+    n = len(score)
+    by_score = np.argsort(-np.asarray(score, np.float64), kind="stable")
+    order = by_score[np.argsort(group[by_score], kind="stable")]
+    sorted_group = group[order]
+    starts = np.flatnonzero(np.r_[True, sorted_group[1:] != sorted_group[:-1]])
+    sizes = np.diff(np.r_[starts, n])
+    rank = np.empty(n, np.int64)
+    rank[order] = np.arange(n) - np.repeat(starts, sizes)
+    return rank
+
+
+def fields(unfit):
+    """Where ``unfit`` (an object column: None or ``(field, message)``) holds one."""
+    return np.fromiter((u is not None for u in unfit), bool, len(unfit))
+
+
+class FileRanks:
+    """Ranks of unfit records of a file read a block at a time: on first call, two
+    passes over the file's blocks (``blocks()``: ``(records, group, score, unfit)``
+    per block, ``records`` the file's record numbers, ``group`` -1 where the record is
+    not compared at all) find the groups holding an unfit record, then rank those
+    groups' detections. Calling it with record numbers gives their ranks."""
+
+    def __init__(self, blocks):
+        self._blocks = blocks
+        self._rank = None
+
+    def __call__(self, records):
+        if self._rank is None:
+            self._rank = self._read()
+        return np.array([self._rank[r] for r in np.asarray(records).tolist()], np.int64)
+
+    def _read(self):
+        wanted = set()
+        for _, group, _, unfit in self._blocks():
+            hit = fields(unfit) & (group >= 0)
+            wanted.update(group[hit].tolist())
+        wanted = np.array(sorted(wanted), np.int64)
+        records, groups, scores = [], [], []
+        for rec, group, score, _ in self._blocks():
+            keep = np.isin(group, wanted)
+            records.append(rec[keep])
+            groups.append(group[keep])
+            scores.append(score[keep])
+        records = np.concatenate(records) if records else np.zeros(0, np.int64)
+        rank = ranks(
+            np.concatenate(groups) if groups else np.zeros(0, np.int64),
+            np.concatenate(scores) if scores else np.zeros(0),
+        )
+        return dict(zip(records.tolist(), rank.tolist()))
