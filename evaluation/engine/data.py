@@ -227,6 +227,10 @@ class Predictions:
     #: the result's own area or its keypoints' extent, ``loaders/result_readings.py``);
     #: None: w * h of the box.
     area: np.ndarray = None
+    #: Detections whose own id, read "as given" (``loaders/as_given.py``), is not above
+    #: 0: under ``coco`` a box one of them matches stays free (pycocotools' ``gtm > 0``);
+    #: None: none such.
+    free: np.ndarray = None
 
     def score_conflict(self, protocol):
         """The refusal recorded for ``protocol`` (``InputError`` keywords), or None:

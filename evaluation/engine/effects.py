@@ -39,7 +39,7 @@ EFFECTS = {
     "area_source": "which areas sort ground truth and detections into size buckets (a "
     "detection's w*h, its mask's RLE area when the file gives masks, its own area when "
     "the first result has a caption key, its keypoints' extent when the file gives "
-    "keypoints); it moves the "
+    "keypoints, its own area, box and id when the file is read as given); it moves the "
     "small/medium/large numbers and which unmatched detections count",
     "size_ranges": "the size bucket bounds; they move the small/medium/large numbers",
     "miss_rate": "how the log-average miss rate is read off the curve",

@@ -156,6 +156,9 @@ def match(truth, predictions, protocol, *, reasons=True):
         det_area = det_boxes[:, 2] * det_boxes[:, 3]
     if predictions.area is not None:  # masks, captions, keypoints: as loadRes gives it
         det_area = predictions.area[order]
+    det_free = None  # ids not above 0 leave the box they match free (pycocotools' gtm > 0)
+    if predictions.free is not None and protocol.zero_id_unmatched:
+        det_free = predictions.free[order]
 
     base_ignore = truth.crowd | truth.ignore
     if protocol.difficult_ignored:
@@ -178,6 +181,8 @@ def match(truth, predictions, protocol, *, reasons=True):
         )
     else:
         walk = np.isin(det_group[pair_det], det_group[pair_det[undefined]])
+        if det_free is not None:
+            walk |= np.isin(det_group[pair_det], det_group[det_free])
         config, det, box, iou = _concat(
             _greedy(
                 pair_det[~walk],
@@ -200,6 +205,7 @@ def match(truth, predictions, protocol, *, reasons=True):
                 protocol,
                 effective,
                 gt_ignored,
+                det_free,
             )
         )
 
@@ -266,10 +272,12 @@ def _greedy(pair_det, pair_gt, pair_iou_, rank, det_group, det_cls, effective, g
 
 
 def _walk_sequentially(
-    groups, det_group, det_boxes, rank, det_cls, truth, protocol, effective, gt_ignored
+    groups, det_group, det_boxes, rank, det_cls, truth, protocol, effective, gt_ignored, free=None
 ):
-    """Matches in the (image, class) groups where some IoU is NaN, by the loop of
-    pycocotools 2.0.11 ``COCOeval.evaluateImg`` written out.
+    """Matches in the (image, class) groups where some IoU is NaN, or some detection's
+    id leaves the box it matches free (``free``: ``gtm[t, m] = d['id']`` is not above
+    0, so ``gtm > 0`` does not skip the box), by the loop of pycocotools 2.0.11
+    ``COCOeval.evaluateImg`` written out.
 
     There a detection keeps the candidate ``m`` unless ``ious[d, g] < iou``; once
     ``iou`` is NaN that comparison is false for every later box, so the next eligible
@@ -313,7 +321,7 @@ def _walk_sequentially(
                         iou, m = value, gind
                     if m == -1:
                         continue
-                    taken[m] = True
+                    taken[m] = taken[m] or free is None or not free[d]
                     found.append(
                         (
                             np.array([a * n_slots + t]),

@@ -28,6 +28,7 @@ SPILL_ROW = np.dtype(
         ("boxes", "<f8", (4,)),
         ("score", "<f8"),
         ("area", "<f8"),  # the mask's area when the file gives masks, else unused
+        ("free", "u1"),  # the detection's id leaves a matched box free (as_given)
         ("position", "<i8"),
     ]
 )
@@ -64,6 +65,7 @@ def stream_pieces(path, truth, ranges, directory, *, name="piece-{k}.npz", **opt
     detections = [0] * len(ranges)
     totals = {"n": 0, "dropped": 0, "dropped_images": 0, "box_counts": None, "classes": ()}
     masks = False  # the file is read as masks (every block alike)
+    frees = False  # some detection's id leaves a box free (a file read as given)
     policy = options.get("boxes") or truth.box_policy
     suspects = np.zeros(len(truth.classes), bool)  # classes holding a score >= 2**53
     for block in stream_predictions(path, truth, **options):
@@ -73,6 +75,8 @@ def stream_pieces(path, truth, ranges, directory, *, name="piece-{k}.npz", **opt
         rows["boxes"], rows["score"] = block.boxes, block.score
         masks = block.area is not None
         rows["area"] = block.area if masks else 0.0
+        frees = frees or block.free is not None
+        rows["free"] = 0 if block.free is None else block.free
         rows["position"] = np.arange(totals["n"], totals["n"] + len(rows), dtype=np.int64)
         shard = np.searchsorted(starts, block.image, side="right") - 1
         by_shard = np.argsort(shard, kind="stable")  # file order within each shard
@@ -115,6 +119,7 @@ def stream_pieces(path, truth, ranges, directory, *, name="piece-{k}.npz", **opt
             boxes=np.ascontiguousarray(rows["boxes"]),
             score=np.ascontiguousarray(rows["score"]),
             area=np.ascontiguousarray(rows["area"]) if masks else None,
+            free=rows["free"].astype(bool) if frees else None,
         )
         positions = np.ascontiguousarray(rows["position"])
         del rows

@@ -96,6 +96,9 @@ class Protocol:
     #: A match with the ground-truth box of annotation id 0 is no true positive (the box
     #: stays taken): pycocotools 2.0.11 ``evaluateImg`` stores the matched box's id in
     #: ``dtm`` and ``accumulate`` counts ``tps = dtm & ~dtIg``, so id 0 reads as unmatched.
+    #: The same line's other half, ``gtm[t, g] = d['id']`` tested ``gtm > 0``: a detection
+    #: whose own id is not above 0 (results read as given, ``Predictions.free``) leaves
+    #: the box it matched free; under this flag only.
     zero_id_unmatched: bool = False
     #: Ground truth flagged ``difficult`` is neither TP nor FP (the VOC devkit's rule),
     #: or, False, the flag is not read at all (pycocotools never reads it).

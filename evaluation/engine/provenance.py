@@ -109,7 +109,7 @@ def protocol_record(protocol, truth, predictions, records, result):
 def _prediction_area(predictions):
     """Where the detections' areas (size ranges) came from: a setting, so the same for
     any two files read alike (how many: ``counts.boxes.predictions.mask_area``,
-    ``given_area`` or ``keypoint_area``)."""
+    ``given_area``, ``keypoint_area`` or ``as_given_area``)."""
     counted = predictions.box_counts
     if counted.get("mask_area") is not None:
         return (
@@ -127,6 +127,13 @@ def _prediction_area(predictions):
             "keypoints' extent: bbox [x0, y0, x1-x0, y1-y0] and area (x1-x0)*(y1-y0) "
             "over every keypoint, replacing any given bbox, as pycocotools 2.0.11 loadRes "
             "reads a file whose first result has keypoints and no bbox or segmentation"
+        )
+    if counted.get("as_given_area") is not None:
+        return (
+            "each result's own area, bbox and id as given, as pycocotools 2.0.11 loadRes "
+            "keeps a file whose first result has no caption, non-empty bbox, segmentation "
+            "or keypoints: a repeated id takes the last result of that id in the place of "
+            "each; under coco an id not above 0 leaves the box it matches free"
         )
     return "w*h (negative when one side is: outside every bounded range)"
 

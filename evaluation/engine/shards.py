@@ -95,6 +95,7 @@ def predictions_slice(predictions, start, stop, positions=None):
         boxes=predictions.boxes[positions],
         score=predictions.score[positions],
         area=None if predictions.area is None else predictions.area[positions],
+        free=None if predictions.free is None else predictions.free[positions],
     )
     return sliced, positions
 

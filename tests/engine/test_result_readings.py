@@ -265,16 +265,19 @@ def test_what_pycocotools_refuses_is_refused(tmp_path, reading, fields, field, r
     assert str(dt) in str(e.value)
 
 
-def test_a_file_of_none_of_the_readings_is_refused(tmp_path):
+def test_a_first_result_of_none_of_the_readings_compared_without_bbox(tmp_path):
     """A first result without caption, bbox (or with ``bbox: []``), segmentation and
-    keypoints: pycocotools 2.0.11 uses the results' own bbox, area and id; refused,
-    naming that reading (the ids' effects on matching are not modelled)."""
+    keypoints: pycocotools 2.0.11 reads every result as given (``test_as_given``); this
+    one is compared and its bbox cannot be read (KeyError, or computeIoU's Exception
+    on ``[]``: run): refused at record 0, field bbox."""
     for first in ({"area": 80, "id": 1}, {"bbox": [], "area": 80, "id": 1}):
         dets = [{"image_id": 1, "category_id": 1, "score": 0.9, **first}]
         gt, dt = _files(tmp_path, _small_split(), dets)
+        with pytest.raises(Exception):  # noqa: B017 - KeyError or a plain Exception
+            pycocotools_eval(gt, dt)
         with pytest.raises(InputError) as e:
             load_predictions(dt, load_truth(gt))
-        assert e.value.record == "record 0" and "as given" in str(e.value)
+        assert e.value.record == "record 0" and e.value.field == "bbox"
 
 
 def test_keypoints_replace_the_given_box(tmp_path):

@@ -14,17 +14,21 @@ Formats: COCO-style JSON, CSV tables, and folders or zips of KITTI, YOLO or Pasc
 VOC label files (``label_folders``), named or detected from the content.
 """
 
+import itertools
+
 import numpy as np
 
 from ..data import Predictions
 from ..errors import InputError
 from . import (
+    as_given,
     checks,
     coco_json,
     csv_tables,
     detection_blocks,
     exact_scores,
     label_folders,
+    result_readings,
     truth_columns,
 )
 from .annotation_index import ANNOTATION_POLICIES
@@ -277,6 +281,8 @@ def stream_predictions(
     Memory follows one block (a few MB of the file), not the file. An error is raised
     at the first block holding one, so a file that a whole load refuses is refused
     here too (possibly naming an earlier record than the whole load's first check).
+    A JSON file read "as given" (``as_given``: its ids reach across the file) is read
+    whole and yielded as one block.
     """
     boxes = _prediction_options(path, truth, boxes, unknown_classes, unknown_images, ids)
     fmt = _format(path, fmt)
@@ -284,10 +290,26 @@ def stream_predictions(
         raise InputError(path, f"{fmt} detections cannot be read a block at a time")
     wide = ids == "any"
     rank_of = detection_blocks.file_ranks(path, truth, fmt, wide, unknown_images)
-    for raw in detection_blocks.raw_blocks(path, truth, fmt, wide):
+    blocks = detection_blocks.raw_blocks(path, truth, fmt, wide)
+    first = next(blocks)
+    if first.reading == result_readings.GIVEN:  # ids across the file: read it whole
+        blocks.close()
+        raw = _json_whole(path, truth, wide, unknown_images)
+        yield detection_blocks.resolve(path, truth, raw, boxes, unknown_classes, unknown_images)
+        return
+    for raw in itertools.chain([first], blocks):
         yield detection_blocks.resolve(
             path, truth, raw, boxes, unknown_classes, unknown_images, rank_of
         )
+
+
+def _json_whole(path, truth, wide, unknown_images):
+    """The ``detection_blocks.Raw`` of a whole JSON results file; read "as given",
+    laid out as pycocotools takes its records (``as_given.emit``)."""
+    raw = detection_blocks.json_raw(truth, *coco_json.read_detections(path, wide))
+    if raw.reading == result_readings.GIVEN:
+        raw = as_given.emit(path, raw, unknown_images)
+    return raw
 
 
 def _read_predictions(
@@ -295,7 +317,7 @@ def _read_predictions(
 ):
     read_dropped = 0
     if fmt == "json":
-        raw = detection_blocks.json_raw(truth, *coco_json.read_detections(path, ids == "any"))
+        raw = _json_whole(path, truth, ids == "any", unknown_images)
     elif fmt in label_folders.FORMATS:
 
         def to_ids(values, known):
@@ -341,4 +363,5 @@ def _read_predictions(
         dropped_classes=block.dropped_classes,
         score_conflicts=conflicts,
         area=block.area,
+        free=block.free,
     )

@@ -74,7 +74,7 @@ def detection_blocks(path, wide=False, decode=None):
 def empty_columns():
     """The columns of a file without records."""
     empty = (np.zeros(0, np.int64), np.zeros(0, np.int64), np.zeros((0, 4)), np.zeros(0))
-    return (*empty, None, None, None)
+    return (*empty, None, None, None, None)
 
 
 def _filled(parts, total):

@@ -15,7 +15,7 @@ import dataclasses
 import numpy as np
 
 from ..errors import InputError
-from . import checks, coco_json, csv_tables, uncompared, unread_fields
+from . import as_given, checks, coco_json, csv_tables, uncompared, unread_fields
 from .ids import NULL, NUMBER, TEXT, escaped, ids_like, keys_of, typed_keys
 
 #: Formats that can be read a block at a time.
@@ -42,6 +42,9 @@ class Raw:
     #: compares the detection (``uncompared``); None: every record fit
     unfit: np.ndarray = None
     base: int = 0  # the file's number of the block's first record
+    ids: np.ndarray = None  # the records' own ids, read "as given" (``as_given``)
+    free: np.ndarray = None  # per row: its id leaves a matched box free (``as_given``)
+    extra_counts: dict = None  # counts ``as_given.emit`` adds to ``box_counts``
 
 
 @dataclasses.dataclass
@@ -57,10 +60,16 @@ class Resolved:
     box_counts: dict
     dropped_classes: tuple = ()  # the class keys of ``dropped``, as text (``distinct_keys``)
     area: np.ndarray = None  # as ``Raw.area``
+    free: np.ndarray = None  # as ``Raw.free``
 
 
 #: The count (``box_counts``) of detections whose area a reading gave, by reading.
-AREA_COUNT = {"mask": "mask_area", "caption": "given_area", "keypoints": "keypoint_area"}
+AREA_COUNT = {
+    "mask": "mask_area",
+    "caption": "given_area",
+    "keypoints": "keypoint_area",
+    "given": "as_given_area",
+}
 
 
 def _key_order(key):
@@ -85,7 +94,16 @@ def _plain(key):
 
 
 def json_raw(
-    truth, image_ids, class_keys, boxes, score, area=None, reading=None, unfit=None, base=0
+    truth,
+    image_ids,
+    class_keys,
+    boxes,
+    score,
+    area=None,
+    reading=None,
+    unfit=None,
+    ids=None,
+    base=0,
 ):
     """A block of a COCO-style results file (records ``base``, ``base + 1``...);
     ``area``: the detections' areas of a file not read as boxes, ``reading`` which
@@ -107,6 +125,7 @@ def json_raw(
         reading,
         unfit,
         base,
+        ids,
     )
 
 
@@ -145,7 +164,7 @@ def resolve(path, truth, raw, policy, unknown_classes, unknown_images, rank_of=N
     ``rank_of(record numbers)`` ranks them in the whole file (``uncompared.FileRanks``),
     None: this block is the whole file."""
     image_ids, class_keys, boxes, score = raw.image_ids, raw.class_keys, raw.boxes, raw.score
-    area, unfit = raw.area, raw.unfit
+    area, unfit, free = raw.area, raw.unfit, raw.free
     kept_at = np.arange(len(score))  # the block's row of each kept record
     locate, fields = raw.locate, raw.fields
     image, found = checks.resolve(path, image_ids, raw.known_images, locate, "", "")
@@ -160,6 +179,7 @@ def resolve(path, truth, raw, policy, unknown_classes, unknown_images, rank_of=N
             score[found],
         )
         area = None if area is None else area[found]
+        free = None if free is None else free[found]
         kept_at = kept_at[found]
         locate_read = locate
         locate = lambda i: locate_read(int(rows[i]))  # noqa: E731
@@ -180,6 +200,7 @@ def resolve(path, truth, raw, policy, unknown_classes, unknown_images, rank_of=N
         dropped_classes = distinct_keys(class_keys[~found])
         image, cls, boxes, score = image[found], cls[found], boxes[found], score[found]
         area = None if area is None else area[found]
+        free = None if free is None else free[found]
         kept_at = kept_at[found]
         kept_rows = np.flatnonzero(found)
         locate_all = locate
@@ -209,6 +230,7 @@ def resolve(path, truth, raw, policy, unknown_classes, unknown_images, rank_of=N
             keep[bad] = False
             image, cls, boxes, score = image[keep], cls[keep], boxes[keep], score[keep]
             area = None if area is None else area[keep]
+            free = None if free is None else free[keep]
             uncompared_unfit = len(bad)
             kept = np.flatnonzero(keep)
             locate_unfit = locate
@@ -243,9 +265,12 @@ def resolve(path, truth, raw, policy, unknown_classes, unknown_images, rank_of=N
             "non_finite_score": int((~np.isfinite(score)).sum()),
             **({} if area is None else {AREA_COUNT[raw.reading]: len(area)}),
             **({uncompared.COUNT: uncompared_unfit} if uncompared_unfit else {}),
+            **(raw.extra_counts or {}),
+            **({} if free is None else {as_given.FREE: int(free.sum())}),
         },
         dropped_classes=dropped_classes,
         area=area,
+        free=free if free is not None and free.any() else None,
     )
 
 

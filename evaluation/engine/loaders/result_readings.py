@@ -14,11 +14,11 @@
 
   (``np.min``/``np.max``: keypoints of visibility 0 count too; a NaN makes the extent
   NaN.) A list whose length is no multiple of 3 is read the same way, as there.
-* none of these keys (``GIVEN``): the results' own ``bbox``, ``area`` and ``id`` are
-  used; ``createIndex`` keys them by ``id`` (a repeated id makes ``loadAnns`` return the
-  last result of that id in place of the others) and ``evaluateImg`` marks a truth box
-  matched by the detection's id (``gtm > 0``: an id of 0 or below leaves it matchable
-  again). Refused here, naming pycocotools' reading.
+* none of these keys, or ``bbox: []`` without segmentation or keypoints (``GIVEN``, "as
+  given"): nothing is derived, not even ``id``: ``computeIoU`` reads each result's own
+  ``bbox``, ``evaluateImg`` its own ``area`` and its own ``id`` (``as_given``: a
+  repeated id, an id not above 0). Every record needs an ``id`` a dict can key
+  (``createIndex``: KeyError, TypeError).
 
 Where pycocotools raises, the file is refused naming record and field. A missing or
 non-number ``area``/``bbox`` makes pycocotools raise only on a detection it compares
@@ -30,7 +30,7 @@ nested lists, or integers of magnitude 2^30 or more are run through ``loadRes``'
 numpy lines (``_loadres_extent``): where those raise, the file is refused; where they
 do not, the record is unfit (its extent computed in int64 there, which can wrap, or
 from booleans: refused when compared). Checked against pycocotools 2.0.11 in
-``tests/engine/test_result_readings.py`` and ``tests/engine/test_uncompared.py``.
+``tests/engine/test_result_readings.py``, ``test_uncompared.py`` and ``test_as_given.py``.
 """
 
 import math
@@ -56,6 +56,7 @@ class Reading(msgspec.Struct, gc=False):
     bbox: Any = msgspec.UNSET
     area: Any = msgspec.UNSET
     keypoints: Any = msgspec.UNSET
+    id: Any = msgspec.UNSET
 
 
 def _fail(path, record, field, message):
@@ -64,9 +65,11 @@ def _fail(path, record, field, message):
 
 class Decoded(list):
     """The records of a slice; ``unfit``: per record None, or ``(field, message)`` when
-    pycocotools would fail on it only if it compares it (``uncompared``)."""
+    pycocotools would fail on it only if it compares it (``uncompared``); ``ids``: the
+    records' own ids under ``GIVEN``."""
 
     unfit = None
+    ids = None
 
 
 _NAN_BOX = (math.nan,) * 4
@@ -76,23 +79,14 @@ def decode(piece, path, base, mode, scores=None):
     """The records of a slice under ``mode``, each with ``bbox`` a 4-tuple of floats,
     ``score`` a float (``BAD_SCORE`` when missing or not a number) and ``area`` a float;
     ``scores``: a list given the raw scores (``exact_scores``)."""
-    if mode == GIVEN:
-        _fail(
-            path,
-            0,
-            "caption, bbox, segmentation, keypoints",
-            "the file's first result has none of these keys (or an empty bbox), so "
-            "pycocotools 2.0.11 uses each result's own bbox, area and id as given "
-            "(createIndex keys results by id; a repeated id or one of 0 or below "
-            "changes the matching): this reading is not supported; give each result a "
-            "bbox",
-        )
     loose = json_literals.decode(piece, list[Reading])
     if scores is not None:
         scores.append([r.score for r in loose])
-    fix = _caption if mode == CAPTION else _keypoints
+    fix = {CAPTION: _caption, KEYPOINTS: _keypoints, GIVEN: _given}[mode]
     records = Decoded(loose)
     records.unfit = [fix(path, r, base + i) for i, r in enumerate(loose)]
+    if mode == GIVEN:
+        records.ids = [r.id for r in loose]
     for r in loose:
         score = unread_fields.as_number(r.score)
         r.score = unread_fields.BAD_SCORE if score is None else score
@@ -105,10 +99,48 @@ def _unfit(r, field, message):
     return field, message
 
 
-def _caption(path, r, at):
+_GIVEN_WHY = (
+    "the file's first result has none of caption, bbox (or an empty one), segmentation "
+    "and keypoints, so pycocotools 2.0.11 reads "
+)
+
+
+def _given(path, r, at):
+    """As ``_caption`` (own bbox and area), and the record's own ``id``: required and
+    hashable on every record (``createIndex``); one numpy cannot write into a float
+    array (``gtm[t, g] = d['id']``: text that is no number, an int beyond float64)
+    is unfit (refused where compared)."""
+    if r.id is msgspec.UNSET:
+        _fail(path, at, "id", f"missing: {_GIVEN_WHY}each result's own id (createIndex: KeyError)")
+    if isinstance(r.id, (list, dict)):
+        _fail(
+            path, at, "id", f"must be a number or text, got {r.id!r:.40} (createIndex: TypeError)"
+        )
+    unfit = _caption(path, r, at, _GIVEN_WHY)
+    if unfit is None and as_float(r.id) is None:
+        unfit = (
+            "id",
+            f"must be a number numpy reads as float, got {r.id!r:.40} (pycocotools 2.0.11 "
+            "writes a matched detection's id into a float array: ValueError)",
+        )
+    return unfit
+
+
+def as_float(value):
+    """``value`` as numpy writes it into a float64 array (``gtm[t, g] = value``: text
+    parsed as Python's ``float``, null NaN, a boolean 0/1), or None where that raises."""
+    cell = np.zeros(1)
+    try:
+        cell[0] = value
+    except (ValueError, TypeError, OverflowError):
+        return None
+    return float(cell[0])
+
+
+def _caption(path, r, at, why=None):
     """``r``'s own bbox and area, checked as ``computeIoU``/``evaluateImg`` read them;
     None, or the unfit field and message (``Decoded.unfit``)."""
-    why = "the file's first result has a caption key, so pycocotools 2.0.11 reads "
+    why = why or "the file's first result has a caption key, so pycocotools 2.0.11 reads "
     if r.bbox is msgspec.UNSET:
         return _unfit(r, "bbox", f"missing: {why}each result's own bbox (computeIoU: KeyError)")
     box = unread_fields._box(r.bbox, text=True)  # numpy reads it in computeIoU

@@ -249,22 +249,29 @@ def _first_mode(path, buf, where, eof):
 
 def _block(records, path, base, wide, mode, build):
     """A slice's columns (image ids, class ids, boxes, scores, areas: None when the
-    file is read as boxes, the reading: ``mask_results.mode``, and the unfit fields:
-    ``_unfit``), or with ``build=False`` its record count (a mask-reading slice is
-    still checked whole)."""
+    file is read as boxes, the reading: ``mask_results.mode``, the unfit fields:
+    ``_unfit``, and the records' own ids under ``result_readings.GIVEN``, else None),
+    or with ``build=False`` its record count (a mask-reading slice is still checked
+    whole)."""
     if mode in result_readings.MODES:
         if not build:
             return len(records)
         area = result_readings.area(records)
-        return (*_columns(records, path, base, wide), area, mode, _unfit(records))
+        ids = None
+        if mode == result_readings.GIVEN:
+            ids = np.empty(len(records), object)
+            ids[:] = records.ids if len(records) else ids
+        return (*_columns(records, path, base, wide), area, mode, _unfit(records), ids)
     if mode != mask_results.MASKS:
-        return (*_columns(records, path, base, wide), None, None, None) if build else len(records)
+        if not build:
+            return len(records)
+        return (*_columns(records, path, base, wide), None, None, None, None)
     boxes, area = mask_results.columns(records, path, base)
     if not build:
         return len(records)
     for record, box in zip(records, boxes.tolist()):
         record.bbox = box
-    return (*_columns(records, path, base, wide), area, mode, _unfit(records))
+    return (*_columns(records, path, base, wide), area, mode, _unfit(records), None)
 
 
 def _unfit(records):

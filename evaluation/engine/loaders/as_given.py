@@ -1,0 +1,91 @@
+"""Results read "as given": pycocotools 2.0.11 keeps each result's own ``id``.
+
+When a results file's first result has none of ``caption``, a non-empty ``bbox``,
+``segmentation`` and ``keypoints`` (``result_readings.GIVEN``), ``COCO.loadRes`` sets
+nothing: ``createIndex`` keys the results by their own ids (``anns[ann['id']] = ann``,
+a later result of an id replacing an earlier one) while ``imgToAnns`` keeps every
+result; ``COCOeval._prepare`` then takes ``loadAnns(getAnnIds(imgIds, catIds))``:
+
+* for each image of the split in ascending id order, each of its results in file
+  order whose category the split lists, *the last result of that result's id* — so a
+  repeated id puts that last result in the place of every one of them (twice if two
+  share it), in its own image and category (``_dts[dt['image_id'], dt['category_id']]``);
+* ``evaluateImg`` marks a truth box taken with the detection's id, ``gtm[t, g] =
+  d['id']`` (a float array), and skips a box only while ``gtm > 0``: a detection whose
+  id numpy reads as 0, below 0 or NaN leaves the box it matched free for the next
+  detection (``free``) — under ``coco`` (``Protocol.zero_id_unmatched``, the same line
+  as truth id 0), read by ``matching``.
+
+``emit`` lays a file's records out that way, before the usual lookup (``detection_blocks.
+resolve``): rows in ascending image order, each row the last record of its record's id
+(one of an unlisted class stays itself and is dropped with its class), ``locate``
+naming the record whose values the row carries; ``box_counts[REPLACED]`` counts the
+rows replaced. Without repeated ids the rows keep file order (no reordering: nothing
+changes for pycocotools' numbers, and positions stay the file's).
+"""
+
+import numpy as np
+
+from ..errors import InputError
+from . import checks, result_readings
+
+#: ``box_counts`` keys: rows given the values of a later record of the same id, and
+#: detections whose id leaves a matched box free.
+REPLACED = "replaced_by_id"
+FREE = "free_id"
+
+
+def free_ids(ids):
+    """Whether each id, as numpy writes it into pycocotools' float ``gtm`` array, is
+    not above 0 (0, negative, NaN, null, false, text such as "-1"); an id numpy
+    cannot write (left unfit by the reader) counts as holding."""
+    values = [result_readings.as_float(v) for v in ids.tolist()]
+    return np.fromiter((v is not None and not v > 0 for v in values), bool, len(values))
+
+
+def emit(path, raw, unknown_images):
+    """``raw`` (a ``detection_blocks.Raw`` of the whole file, read ``GIVEN``) laid out
+    as pycocotools' ``_prepare`` takes its records; its ``free`` column set; the
+    count of replaced rows in ``raw.extra_counts``."""
+    ids = raw.ids
+    n = len(ids)
+    image, found_image = checks.resolve(path, raw.image_ids, raw.known_images, raw.locate, "", "")
+    _, listed = checks.resolve(path, raw.class_keys, raw.known_classes, raw.locate, "", "")
+    if not found_image.all() and unknown_images != "drop":
+        return _with_free(raw, np.arange(n), 0)  # resolve refuses it, naming the record
+    last = {}
+    for i in np.flatnonzero(found_image).tolist():
+        last[ids[i]] = i  # createIndex: anns[ann['id']] = ann
+    source = np.arange(n)
+    for i in np.flatnonzero(found_image & listed).tolist():
+        source[i] = last[ids[i]]
+    replaced = int((source != np.arange(n)).sum())
+    if not replaced:
+        return _with_free(raw, source, 0)
+    from . import exact_scores
+
+    if exact_scores.suspect(raw.score).any():
+        raise InputError(
+            path,
+            "repeated ids (pycocotools 2.0.11 puts the last result of an id in the place "
+            "of each) together with scores of magnitude 2^53 or more: not supported",
+            record=raw.locate(int(np.flatnonzero(source != np.arange(n))[0])),
+            field="id",
+        )
+    order = np.argsort(np.where(found_image, image, -1), kind="stable")
+    return _with_free(raw, source[order], replaced)
+
+
+def _with_free(raw, source, replaced):
+    """``raw``'s rows taken from ``source`` (row i carries record ``source[i]``)."""
+    import dataclasses
+
+    locate = raw.locate
+    identity = bool(np.array_equal(source, np.arange(len(source))))
+    taken = {}
+    if not identity:
+        for name in ("image_ids", "class_keys", "boxes", "score", "shown", "area", "unfit", "ids"):
+            taken[name] = getattr(raw, name)[source]
+        taken["locate"] = lambda i: locate(int(source[i]))
+    free = free_ids(taken.get("ids", raw.ids))
+    return dataclasses.replace(raw, **taken, free=free, extra_counts={REPLACED: replaced})

@@ -1,0 +1,107 @@
+"""Results read "as given" (the first result has no caption, non-empty bbox,
+segmentation or keypoints: pycocotools 2.0.11 keeps every result's own bbox, area and
+id) through the platform's entry points: upload page, API, ``upload_predictions``, and
+the worker's streamed and sharded run. Reference: pycocotools 2.0.11 run here on the
+same two files; the stored scorecard equals it.
+"""
+
+import json
+
+import numpy as np
+import pytest
+
+from evaluation import services as evaluation_services
+from releases import services
+
+from ..engine.synthetic import make_detections
+from .conftest import split_dict, upload
+from .test_any_ids import _assert_pycocotools_numbers
+from .test_api import API, client_for, file
+from .test_mask_results import _evaluation
+from .three_uploads import upload_by_page_api_and_command
+
+pytestmark = pytest.mark.django_db
+
+
+def _results(truth, seed):
+    """A first result of a category the split does not list, without bbox (never
+    compared); then detections with their own areas (0..20 times w*h) and ids drawn
+    from a small pool: repeated, 0 and negative among them."""
+    rng = np.random.default_rng(seed)
+    first = {"id": 1, "image_id": truth["images"][0]["id"], "category_id": 999, "score": 0.5}
+    out = [first]
+    for det in make_detections(rng, truth):
+        w, h = det["bbox"][2], det["bbox"][3]
+        record = {**det, "area": float(w * h * 20 * rng.random())}
+        record["id"] = int(rng.integers(-2, 8)) if rng.random() < 0.3 else len(out) + 100
+        out.append(record)
+    out[1]["id"] = 0  # a free id (its last result keeps id 0)
+    return out
+
+
+def _recorded(card):
+    record = card.result["protocol_record"]["area_source"]["predictions"]
+    assert "own area, bbox and id as given" in record
+    counted = card.result["counts"]["boxes"]["predictions"]
+    assert counted["as_given_area"] > 0 and counted["replaced_by_id"] > 0
+    assert counted["free_id"] > 0
+
+
+def test_page_api_and_command_score_as_pycocotools(client, users, detector, run_tasks, tmp_path):
+    truth = split_dict(n_images=6)
+    split = evaluation_services.load_split(name="ag", revision=1, truth=upload("ag.json", truth))
+    sets = [_results(truth, seed) for seed in (1, 2, 3)]
+    labels = upload_by_page_api_and_command(
+        client, run_tasks, users, detector, split, sets, tmp_path
+    )
+    for label, dets in zip(labels, sets):
+        version = detector.versions.get(label=label)
+        card = _assert_pycocotools_numbers(_evaluation(version), truth, dets, tmp_path)
+        _recorded(card)
+
+
+def test_the_sharded_run_scores_as_pycocotools(
+    users, detector, run_tasks, settings, tmp_path, monkeypatch
+):
+    """Past the inline size the file is streamed into pieces (read whole: an id reaches
+    across the file) and scored in shards."""
+    from evaluation import class_groups, sharding
+
+    from .test_shards import GROUP_SENDS, _run
+
+    sends = []
+    GROUP_SENDS.clear()
+    monkeypatch.setattr(sharding, "send", lambda *args: sends.append(args))
+    monkeypatch.setattr(class_groups, "send", lambda *args: GROUP_SENDS.append(args))
+    truth = split_dict(n_images=8)
+    dets = _results(truth, 4)
+    split = evaluation_services.load_split(name="ag", revision=1, truth=upload("ag.json", truth))
+    settings.BENCHBOOK_INLINE_VALIDATION_BYTES = 1
+    settings.BENCHBOOK_SHARD_ABOVE = 0
+    settings.BENCHBOOK_SHARD_IMAGES = 3
+    version = services.create_version(detector, "4.0", users["engineer"])
+    run_tasks(
+        services.submit_predictions, version, split, upload("big.json", dets), users["engineer"]
+    )
+    assert sends
+    _run(run_tasks, sends)
+    card = _assert_pycocotools_numbers(_evaluation(version), truth, dets, tmp_path)
+    _recorded(card)
+
+
+def test_a_result_without_id_is_refused_naming_it(users, detector):
+    """pycocotools 2.0.11's createIndex raises KeyError on a result without id: the API
+    answers 400 naming file, record and field."""
+    truth = split_dict(n_images=4)
+    split = evaluation_services.load_split(name="ag", revision=1, truth=upload("ag.json", truth))
+    dets = _results(truth, 5)[:3]
+    del dets[2]["id"]
+    response = client_for(users["engineer"]).post(
+        API + "prediction-sets/",
+        {"detector": detector.pk, "version": "5.0", "split": split.pk,
+         "predictions": file("bad.json", dets)},
+        format="multipart",
+    )  # fmt: skip
+    assert response.status_code == 400
+    text = json.dumps(response.json())
+    assert "record 2" in text and "id" in text
