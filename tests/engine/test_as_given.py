@@ -135,6 +135,29 @@ def test_equal_ids_of_any_type_are_one_key(tmp_path, same):
     _scores_as_pycocotools(tmp_path, dets, replaced_by_id=len(same) - 1)
 
 
+@pytest.mark.parametrize("chunk", [None, 60])
+def test_nan_ids_are_one_key(tmp_path, monkeypatch, chunk):
+    """Python's ``json`` reads every ``NaN`` literal as one float object, so
+    pycocotools 2.0.11's ``createIndex`` keys all NaN ids together (the later result
+    replaces the earlier, run); also when the file is read in slices of 60 bytes."""
+    from evaluation.engine.loaders import results_stream
+
+    if chunk:
+        monkeypatch.setattr(results_stream, "CHUNK_BYTES", chunk)
+    dets = [HEAD, det(123456, 1, 1, 0.9), det(4, 3, 2, 0.7), det(123456, 2, 1, 0.8)]
+    text = json.dumps(dets).replace("123456", "NaN")
+    (tmp_path / "truth.json").write_text(json.dumps(_SPLIT))
+    (tmp_path / "predictions.json").write_text(text)
+    reference = pycocotools_eval(tmp_path / "truth.json", tmp_path / "predictions.json")
+    truth = load_truth(tmp_path / "truth.json")
+    predictions = load_predictions(tmp_path / "predictions.json", truth)
+    assert predictions.box_counts["replaced_by_id"] == 1
+    assert predictions.score.tolist() == [0.8, 0.8, 0.7]
+    result = evaluate(truth, predictions, "coco")
+    assert result["summary"]["AP"] == pytest.approx(reference.stats[0], abs=1e-12)
+    assert result["summary"]["AR100"] == pytest.approx(reference.stats[8], abs=1e-12)
+
+
 def test_a_first_result_replaced_by_a_later_one_is_never_compared(tmp_path):
     """The first result (no bbox, ``bbox: []``) shares id 5 with a later result, which
     takes its place: pycocotools 2.0.11 never reads the first's bbox."""

@@ -53,12 +53,13 @@ def emit(path, raw, unknown_images):
     _, listed = checks.resolve(path, raw.class_keys, raw.known_classes, raw.locate, "", "")
     if not found_image.all() and unknown_images != "drop":
         return _with_free(raw, np.arange(n), 0)  # resolve refuses it, naming the record
+    keys = [_key(v) for v in ids.tolist()]
     last = {}
     for i in np.flatnonzero(found_image).tolist():
-        last[ids[i]] = i  # createIndex: anns[ann['id']] = ann
+        last[keys[i]] = i  # createIndex: anns[ann['id']] = ann
     source = np.arange(n)
     for i in np.flatnonzero(found_image & listed).tolist():
-        source[i] = last[ids[i]]
+        source[i] = last[keys[i]]
     replaced = int((source != np.arange(n)).sum())
     if not replaced:
         return _with_free(raw, source, 0)
@@ -74,6 +75,16 @@ def emit(path, raw, unknown_images):
         )
     order = np.argsort(np.where(found_image, image, -1), kind="stable")
     return _with_free(raw, source[order], replaced)
+
+
+_NAN = object()
+
+
+def _key(value):
+    """An id as a dict keys it in pycocotools: Python equality (1, 1.0, true alike),
+    and every ``NaN`` one key — Python's ``json`` gives each NaN literal the same float
+    object, which a dict finds by identity (a slice-by-slice read gives new ones)."""
+    return _NAN if isinstance(value, float) and value != value else value
 
 
 def _with_free(raw, source, replaced):
