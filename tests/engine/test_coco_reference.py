@@ -459,3 +459,19 @@ def test_ids_that_pycocotools_rounds_to_floats(tmp_path):
     ours = evaluate(truth, load_predictions(tmp_path / "dt.json", truth), "coco")
     assert ours["summary"]["AP"] == pytest.approx(1.0)
     assert truth.image_ids.tolist() == ["5", str(big)]
+
+
+def test_an_empty_results_list_scores_as_a_detector_that_found_nothing(tmp_path):
+    """``[]``: pycocotools 2.0.11's ``loadRes`` raises on ``anns[0]``; we score it (a
+    deliberate deviation). The numbers are pycocotools' on the nearest file it accepts:
+    one detection of a category the split does not list, which it never scores."""
+    split = make_split(np.random.default_rng(5), n_images=4)
+    unlisted = max(c["id"] for c in split["categories"]) + 1
+    lone = [{"image_id": split["images"][0]["id"], "category_id": unlisted}]
+    lone[0] |= {"bbox": [1, 1, 5, 5], "score": 0.5}
+    reference = _compare(tmp_path, split, lone)
+    (tmp_path / "empty.json").write_text("[]")
+    truth = load_truth(tmp_path / "truth.json")
+    empty = evaluate(truth, load_predictions(tmp_path / "empty.json", truth), "coco")
+    assert empty["summary"] == reference[0]["summary"]
+    assert empty["per_class"] == reference[0]["per_class"]
