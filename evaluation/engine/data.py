@@ -231,6 +231,11 @@ class Predictions:
     #: 0: under ``coco`` a box one of them matches stays free (pycocotools' ``gtm > 0``);
     #: None: none such.
     free: np.ndarray = None
+    #: Per detection read as given, the file's record number where numpy cannot write
+    #: its id into pycocotools' float ``gtm`` (text that is no number), else -1: under
+    #: ``coco`` ``match`` refuses the file if such a detection matches a box (pycocotools
+    #: raises there); None: none such.
+    unwritable: np.ndarray = None
 
     def score_conflict(self, protocol):
         """The refusal recorded for ``protocol`` (``InputError`` keywords), or None:

@@ -209,6 +209,9 @@ def match(truth, predictions, protocol, *, reasons=True):
             )
         )
 
+    if predictions.unwritable is not None and protocol.zero_id_unmatched:
+        _refuse_unwritable_ids(predictions, order, det)
+
     records = MatchRecords(
         protocol=protocol.name,
         classes=tuple(truth.classes),
@@ -232,6 +235,24 @@ def match(truth, predictions, protocol, *, reasons=True):
         gt_void=_void_boxes(truth, protocol),
     )
     return _reasons.attach(records, truth, det_boxes, protocol) if reasons else records
+
+
+def _refuse_unwritable_ids(predictions, order, matched):
+    """pycocotools 2.0.11 ``evaluateImg`` writes a matching detection's id into the
+    float ``gtm`` (``gtm[t, m] = d['id']``): an id numpy cannot write raises there, so
+    a file where such a detection matches a box (in any size range, at any IoU) is
+    refused, naming its record (``Predictions.unwritable``)."""
+    record = predictions.unwritable[order[matched]]
+    record = record[record >= 0]
+    if len(record):
+        raise InputError(
+            predictions.source,
+            "a detection read as given whose id numpy cannot write into a float array "
+            "(text that is no number) matches a box: pycocotools 2.0.11 raises there "
+            "(evaluateImg: gtm[t, m] = d['id'], ValueError)",
+            record=f"record {int(record.min())}",
+            field="id",
+        )
 
 
 def _void_boxes(truth, protocol):

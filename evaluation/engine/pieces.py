@@ -29,6 +29,7 @@ SPILL_ROW = np.dtype(
         ("score", "<f8"),
         ("area", "<f8"),  # the mask's area when the file gives masks, else unused
         ("free", "u1"),  # the detection's id leaves a matched box free (as_given)
+        ("unwritable", "<i8"),  # its record if numpy cannot write its id (as_given)
         ("position", "<i8"),
     ]
 )
@@ -66,6 +67,7 @@ def stream_pieces(path, truth, ranges, directory, *, name="piece-{k}.npz", **opt
     totals = {"n": 0, "dropped": 0, "dropped_images": 0, "box_counts": None, "classes": ()}
     masks = False  # the file is read as masks (every block alike)
     frees = False  # some detection's id leaves a box free (a file read as given)
+    bad_ids = False  # some detection's id cannot be written as a float (as given)
     policy = options.get("boxes") or truth.box_policy
     suspects = np.zeros(len(truth.classes), bool)  # classes holding a score >= 2**53
     for block in stream_predictions(path, truth, **options):
@@ -77,6 +79,8 @@ def stream_pieces(path, truth, ranges, directory, *, name="piece-{k}.npz", **opt
         rows["area"] = block.area if masks else 0.0
         frees = frees or block.free is not None
         rows["free"] = 0 if block.free is None else block.free
+        bad_ids = bad_ids or block.unwritable is not None
+        rows["unwritable"] = -1 if block.unwritable is None else block.unwritable
         rows["position"] = np.arange(totals["n"], totals["n"] + len(rows), dtype=np.int64)
         shard = np.searchsorted(starts, block.image, side="right") - 1
         by_shard = np.argsort(shard, kind="stable")  # file order within each shard
@@ -120,6 +124,7 @@ def stream_pieces(path, truth, ranges, directory, *, name="piece-{k}.npz", **opt
             score=np.ascontiguousarray(rows["score"]),
             area=np.ascontiguousarray(rows["area"]) if masks else None,
             free=rows["free"].astype(bool) if frees else None,
+            unwritable=np.ascontiguousarray(rows["unwritable"]) if bad_ids else None,
         )
         positions = np.ascontiguousarray(rows["position"])
         del rows

@@ -96,6 +96,7 @@ def predictions_slice(predictions, start, stop, positions=None):
         score=predictions.score[positions],
         area=None if predictions.area is None else predictions.area[positions],
         free=None if predictions.free is None else predictions.free[positions],
+        unwritable=None if predictions.unwritable is None else predictions.unwritable[positions],
     )
     return sliced, positions
 

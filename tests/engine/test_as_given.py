@@ -193,38 +193,57 @@ _REFUSED = [
 @pytest.mark.parametrize(("second", "field", "raises"), _REFUSED)
 def test_what_pycocotools_raises_on_is_refused(tmp_path, capsys, second, field, raises):
     """pycocotools 2.0.11 raises as listed (run); refused naming file, record 1 and
-    field, and ``python -m evaluation.engine score`` exits 2 without a traceback."""
+    field (by the load, or by ``match`` for an id numpy cannot write when its detection
+    matches a box), and ``python -m evaluation.engine score`` exits 2 without a
+    traceback."""
     from evaluation.engine.__main__ import main
 
     gt, dt = _files(tmp_path, _SPLIT, [HEAD, second])
     with pytest.raises(raises):
         pycocotools_eval(gt, dt)
+    truth = load_truth(gt)
     with pytest.raises(InputError) as error:
-        load_predictions(dt, load_truth(gt))
+        evaluate(truth, load_predictions(dt, truth), "coco")
     assert error.value.record == "record 1" and error.value.field == field
     assert main(["score", "--truth", str(gt), "--predictions", str(dt)]) == 2
     err = capsys.readouterr().err
     assert str(dt) in err and "record 1" in err and field in err and "Traceback" not in err
 
 
-def test_known_deviation_an_unreadable_id_compared_but_unmatched(tmp_path):
-    """Known deviation (stricter): pycocotools 2.0.11 raises on an id numpy cannot
-    write into ``gtm`` only when the detection matches a box; this one is compared
-    but matches nothing, so pycocotools scores the file (run); it is refused here,
-    naming record and field, as every compared record with such an id is."""
-    dets = [HEAD, det("x", 2, 2, 0.9, (0, 0, 5, 5))]
-    gt, dt = _files(tmp_path, _SPLIT, dets)
-    assert pycocotools_eval(gt, dt).stats[0] == 0.0
+@pytest.mark.parametrize("shards", [None, 1])
+def test_an_unwritable_id_matters_only_on_a_match(tmp_path, shards):
+    """pycocotools 2.0.11 raises on an id numpy cannot write into ``gtm`` ("x") only
+    when its detection matches a box: compared but matching nothing, the file scores
+    (run: equal numbers; under ``voc`` too, which reads no ids); matching box 4, it is
+    refused under ``coco`` naming record 2 and ``id`` (pycocotools: ValueError) — in a
+    sharded run as well."""
+    from evaluation.engine import match
+
+    from .test_shards import _sharded
+
+    unmatched = det("x", 2, 2, 0.9, (0, 0, 5, 5))
+    _scores_as_pycocotools(tmp_path, [HEAD, det(3, 1, 1, 0.8), unmatched])
+    matched = det("x", 2, 2, 0.9, (50, 50, 30, 30))
+    gt, dt = _files(tmp_path, _SPLIT, [HEAD, det(3, 1, 1, 0.8), matched])
+    with pytest.raises(ValueError):
+        pycocotools_eval(gt, dt)
+    truth = load_truth(gt)
+    predictions = load_predictions(dt, truth)
+    assert predictions.unwritable.tolist() == [-1, 2]
+    evaluate(truth, predictions, "voc")
     with pytest.raises(InputError) as error:
-        load_predictions(dt, load_truth(gt))
-    assert error.value.record == "record 1" and error.value.field == "id"
+        if shards:
+            _sharded(truth, predictions, "coco", shards, tmp_path)
+        else:
+            match(truth, predictions, "coco")
+    assert error.value.record == "record 2" and error.value.field == "id"
 
 
 def _mixed(seed):
     """Random results read as given: ids from a small pool (repeats), 0, negative,
     NaN, null and text numbers among them, boxes near the truth, own areas."""
     rng = np.random.default_rng(seed)
-    pool = [1, 2, 3, 4, 0, -1, float("nan"), None, "5", 6.0, True]
+    pool = [1, 2, 3, 4, 0, -1, float("nan"), None, "5", 6.0, True, "x"]
     out = [dict(HEAD, id=pool[int(rng.integers(len(pool)))])]
     for _ in range(int(rng.integers(1, 30))):
         truth_box = _SPLIT["annotations"][int(rng.integers(5))]
@@ -243,8 +262,19 @@ def _mixed(seed):
 @given(st.integers(0, 2**32 - 1))
 def test_mixed_files_score_as_pycocotools(tmp_path, seed):
     """Repeated, free and odd ids mixed at random: every number equals pycocotools
-    2.0.11's on the same files."""
-    _compare(tmp_path, _SPLIT, _mixed(seed))
+    2.0.11's on the same files; where it raises (an id "x" on a matching detection),
+    the file is refused naming that field."""
+    detections = _mixed(seed)
+    gt, dt = _files(tmp_path, _SPLIT, detections)
+    truth = load_truth(gt)
+    try:
+        evaluate(truth, load_predictions(dt, truth), "coco")
+    except InputError as error:
+        assert error.field == "id"
+        with pytest.raises(ValueError):
+            pycocotools_eval(gt, dt)
+        return
+    _compare(tmp_path, _SPLIT, detections)
 
 
 def test_every_path_agrees(tmp_path, monkeypatch):
@@ -258,11 +288,13 @@ def test_every_path_agrees(tmp_path, monkeypatch):
     from .test_stream_pieces import _compare as compare_pieces
 
     dets = [HEAD, det(7, 2, 1, 0.3), det(0, 1, 1, 0.9), det(7, 1, 1, 0.95, (11, 11, 20, 20)),
-            det(-1, 3, 2, 0.6, (5, 5, 40, 41)), det(9, 3, 2, 0.5, (6, 5, 40, 40))]  # fmt: skip
+            det(-1, 3, 2, 0.6, (5, 5, 40, 41)), det(9, 3, 2, 0.5, (6, 5, 40, 40)),
+            det("x", 3, 2, 0.4, (80, 80, 5, 5))]  # fmt: skip
     gt, dt = _files(tmp_path, _SPLIT, dets)
     truth = load_truth(gt)
     whole = load_predictions(dt, truth)
     assert whole.free is not None and whole.box_counts["replaced_by_id"] == 1
+    assert whole.unwritable.tolist() == [-1] * 5 + [6]
     cache = tmp_path / "cache"
     load_predictions(dt, truth, cache_dir=cache)
     loads = [load_predictions(dt, truth, cache_dir=cache)]
@@ -271,7 +303,7 @@ def test_every_path_agrees(tmp_path, monkeypatch):
     monkeypatch.setattr(coco_json, "VALIDATE_FIRST_BYTES", 0)
     loads.append(load_predictions(dt, truth))
     for other in loads:
-        for name in ("image", "cls", "boxes", "score", "area", "free"):
+        for name in ("image", "cls", "boxes", "score", "area", "free", "unwritable"):
             assert getattr(whole, name).tobytes() == getattr(other, name).tobytes(), name
         assert whole.box_counts == other.box_counts
     for images_per_shard in (1, 2):

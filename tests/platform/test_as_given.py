@@ -105,3 +105,30 @@ def test_a_result_without_id_is_refused_naming_it(users, detector):
     assert response.status_code == 400
     text = json.dumps(response.json())
     assert "record 2" in text and "id" in text
+
+
+def test_a_matching_text_id_fails_the_coco_evaluation_only(
+    users, detector, split, split_truth, run_tasks
+):
+    """A detection whose id numpy cannot write into pycocotools' float ``gtm`` ("x")
+    matches a truth box: pycocotools 2.0.11's evaluateImg raises ValueError, so the
+    ``coco`` evaluation fails naming record and field; ``voc`` (no ids read) scores."""
+    from evaluation.models import Evaluation
+
+    dets = _results(split_truth, 6)
+    box = next(a for a in split_truth["annotations"] if not a.get("iscrowd"))
+    dets.append(
+        {"id": "x", "image_id": box["image_id"], "category_id": box["category_id"],
+         "score": 0.99, "bbox": box["bbox"], "area": 100.0}
+    )  # fmt: skip
+    version = services.create_version(detector, "6.0", users["engineer"])
+    run_tasks(
+        services.submit_predictions, version, split, upload("x.json", dets), users["engineer"]
+    )
+    evaluations = {
+        e.protocol: e for e in Evaluation.objects.filter(prediction_sets__version=version)
+    }
+    assert evaluations["voc"].state == "done", evaluations["voc"].error
+    coco = evaluations["coco"]
+    assert coco.state == "failed"
+    assert f"record {len(dets) - 1}" in coco.error and "field 'id'" in coco.error

@@ -364,4 +364,5 @@ def _read_predictions(
         score_conflicts=conflicts,
         area=block.area,
         free=block.free,
+        unwritable=block.unwritable,
     )

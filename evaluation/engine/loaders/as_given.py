@@ -14,7 +14,9 @@ result; ``COCOeval._prepare`` then takes ``loadAnns(getAnnIds(imgIds, catIds))``
   d['id']`` (a float array), and skips a box only while ``gtm > 0``: a detection whose
   id numpy reads as 0, below 0 or NaN leaves the box it matched free for the next
   detection (``free``) — under ``coco`` (``Protocol.zero_id_unmatched``, the same line
-  as truth id 0), read by ``matching``.
+  as truth id 0), read by ``matching``; an id numpy cannot write there (text that is
+  no number, an integer beyond float64) raises when the detection matches a box
+  (``unwritable``: its record, for ``matching`` to refuse the file then).
 
 ``emit`` lays a file's records out that way, before the usual lookup (``detection_blocks.
 resolve``): rows in ascending image order, each row the last record of its record's id
@@ -33,6 +35,13 @@ from . import checks, result_readings
 #: detections whose id leaves a matched box free.
 REPLACED = "replaced_by_id"
 FREE = "free_id"
+
+
+def unwritable(ids, records):
+    """Per row the file's record number where numpy cannot write the id into a
+    float array (``result_readings.as_float``), else -1."""
+    bad = np.fromiter((result_readings.as_float(v) is None for v in ids.tolist()), bool, len(ids))
+    return np.where(bad, records, -1).astype(np.int64)
 
 
 def free_ids(ids):
@@ -98,5 +107,11 @@ def _with_free(raw, source, replaced):
         for name in ("image_ids", "class_keys", "boxes", "score", "shown", "area", "unfit", "ids"):
             taken[name] = getattr(raw, name)[source]
         taken["locate"] = lambda i: locate(int(source[i]))
-    free = free_ids(taken.get("ids", raw.ids))
-    return dataclasses.replace(raw, **taken, free=free, extra_counts={REPLACED: replaced})
+    ids = taken.get("ids", raw.ids)
+    return dataclasses.replace(
+        raw,
+        **taken,
+        free=free_ids(ids),
+        unwritable=unwritable(ids, raw.base + source),
+        extra_counts={REPLACED: replaced},
+    )

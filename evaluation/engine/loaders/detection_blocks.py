@@ -44,6 +44,7 @@ class Raw:
     base: int = 0  # the file's number of the block's first record
     ids: np.ndarray = None  # the records' own ids, read "as given" (``as_given``)
     free: np.ndarray = None  # per row: its id leaves a matched box free (``as_given``)
+    unwritable: np.ndarray = None  # per row: its record if numpy cannot write its id
     extra_counts: dict = None  # counts ``as_given.emit`` adds to ``box_counts``
 
 
@@ -61,6 +62,7 @@ class Resolved:
     dropped_classes: tuple = ()  # the class keys of ``dropped``, as text (``distinct_keys``)
     area: np.ndarray = None  # as ``Raw.area``
     free: np.ndarray = None  # as ``Raw.free``
+    unwritable: np.ndarray = None  # as ``Raw.unwritable``; None: none such
 
 
 #: The count (``box_counts``) of detections whose area a reading gave, by reading.
@@ -164,7 +166,7 @@ def resolve(path, truth, raw, policy, unknown_classes, unknown_images, rank_of=N
     ``rank_of(record numbers)`` ranks them in the whole file (``uncompared.FileRanks``),
     None: this block is the whole file."""
     image_ids, class_keys, boxes, score = raw.image_ids, raw.class_keys, raw.boxes, raw.score
-    area, unfit, free = raw.area, raw.unfit, raw.free
+    area, unfit, free, bad_id = raw.area, raw.unfit, raw.free, raw.unwritable
     kept_at = np.arange(len(score))  # the block's row of each kept record
     locate, fields = raw.locate, raw.fields
     image, found = checks.resolve(path, image_ids, raw.known_images, locate, "", "")
@@ -180,6 +182,7 @@ def resolve(path, truth, raw, policy, unknown_classes, unknown_images, rank_of=N
         )
         area = None if area is None else area[found]
         free = None if free is None else free[found]
+        bad_id = None if bad_id is None else bad_id[found]
         kept_at = kept_at[found]
         locate_read = locate
         locate = lambda i: locate_read(int(rows[i]))  # noqa: E731
@@ -201,6 +204,7 @@ def resolve(path, truth, raw, policy, unknown_classes, unknown_images, rank_of=N
         image, cls, boxes, score = image[found], cls[found], boxes[found], score[found]
         area = None if area is None else area[found]
         free = None if free is None else free[found]
+        bad_id = None if bad_id is None else bad_id[found]
         kept_at = kept_at[found]
         kept_rows = np.flatnonzero(found)
         locate_all = locate
@@ -231,6 +235,7 @@ def resolve(path, truth, raw, policy, unknown_classes, unknown_images, rank_of=N
             image, cls, boxes, score = image[keep], cls[keep], boxes[keep], score[keep]
             area = None if area is None else area[keep]
             free = None if free is None else free[keep]
+            bad_id = None if bad_id is None else bad_id[keep]
             uncompared_unfit = len(bad)
             kept = np.flatnonzero(keep)
             locate_unfit = locate
@@ -271,6 +276,7 @@ def resolve(path, truth, raw, policy, unknown_classes, unknown_images, rank_of=N
         dropped_classes=dropped_classes,
         area=area,
         free=free if free is not None and free.any() else None,
+        unwritable=bad_id if bad_id is not None and (bad_id >= 0).any() else None,
     )
 
 

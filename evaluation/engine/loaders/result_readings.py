@@ -108,22 +108,15 @@ _GIVEN_WHY = (
 def _given(path, r, at):
     """As ``_caption`` (own bbox and area), and the record's own ``id``: required and
     hashable on every record (``createIndex``); one numpy cannot write into a float
-    array (``gtm[t, g] = d['id']``: text that is no number, an int beyond float64)
-    is unfit (refused where compared)."""
+    array (``gtm[t, g] = d['id']``: text that is no number, an int beyond float64) is
+    refused only if the detection matches a box (``as_given.unwritable``)."""
     if r.id is msgspec.UNSET:
         _fail(path, at, "id", f"missing: {_GIVEN_WHY}each result's own id (createIndex: KeyError)")
     if isinstance(r.id, (list, dict)):
         _fail(
             path, at, "id", f"must be a number or text, got {r.id!r:.40} (createIndex: TypeError)"
         )
-    unfit = _caption(path, r, at, _GIVEN_WHY)
-    if unfit is None and as_float(r.id) is None:
-        unfit = (
-            "id",
-            f"must be a number numpy reads as float, got {r.id!r:.40} (pycocotools 2.0.11 "
-            "writes a matched detection's id into a float array: ValueError)",
-        )
-    return unfit
+    return _caption(path, r, at, _GIVEN_WHY)
 
 
 def as_float(value):
