@@ -39,7 +39,10 @@ import sys
 
 import msgspec
 
-_TOKENS = re.compile(rb'"(?:[^"\\]|\\.)*"|-?Infinity|NaN', re.DOTALL)
+#: A string, also one the data ends inside (a slice cut inside it: msgspec then calls
+#: the slice truncated, and the reader reads on), so no literal inside a string is
+#: ever masked; or a literal.
+_TOKENS = re.compile(rb'"(?:[^"\\]|\\.)*(?:"|\\?\Z)|-?Infinity|NaN', re.DOTALL)
 _STAND_IN = {b"NaN": b'"N"', b"Infinity": b'"Infini"', b"-Infinity": b'"-Infini"'}
 _NESTING = re.compile(rb'"(?:[^"\\]|\\.)*"|[\[\]{}]', re.DOTALL)
 
