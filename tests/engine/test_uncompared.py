@@ -89,6 +89,10 @@ _BAD = [
     ("mask", {"bbox": [1, 2]}, "bbox"),
     ("mask", {"bbox": "1 2 3 4"}, "bbox"),
     ("mask", {"bbox": []}, "bbox"),
+    ("mask", {"segmentation": [_MASK, _MASK], "bbox": [2, 3, 10, 8]}, "segmentation"),
+    ("mask", {"segmentation": [_MASK]}, "segmentation"),  # toBbox gives an array box
+    ("mask", {"segmentation": [_MASK], "bbox": [2, 3, 10, 8]}, "segmentation"),
+    ("mask", {"segmentation": [], "bbox": [2, 3, 10, 8]}, "segmentation"),
     ("keypoints", {"keypoints": [True, 3, 2, 12, False, 2]}, "keypoints"),
     ("keypoints", {"keypoints": [[1, 2], 3, 2, [5, 6], 4, 1]}, "keypoints"),
     ("keypoints", {"keypoints": [2**40, 3, 2, 12, 11, 2]}, "keypoints"),
@@ -216,6 +220,20 @@ def test_a_nan_score_ranks_last(tmp_path):
 
     result = evaluate(truth, predictions, "coco")
     assert result["summary"]["AP"] == pytest.approx(reference.stats[0], abs=1e-12)
+
+
+def test_masks_in_a_list_pycocotools_cannot_read_are_refused_anywhere(tmp_path):
+    """``loadRes``' ``maskUtils.area`` reads every mask of a list, on every result:
+    one without counts (KeyError), polygons among them (TypeError) are refused even on
+    a record of an unlisted class."""
+    for seg, raises in (([{"size": [30, 40]}], KeyError), ([_MASK, [1, 2, 3, 4]], TypeError)):
+        bad = {**_good("mask", 1, 0.5, category=7), "segmentation": seg, "bbox": [1, 1, 2, 2]}
+        gt, dt = _files(tmp_path, _SPLIT, [_good("mask", 0, 0.9), bad])
+        with pytest.raises(raises):
+            pycocotools_eval(gt, dt)
+        with pytest.raises(InputError) as error:
+            load_predictions(dt, load_truth(gt))
+        assert error.value.record == "record 1" and error.value.field.startswith("segmentation")
 
 
 def test_keypoints_pycocotools_cannot_read_are_refused_anywhere(tmp_path):

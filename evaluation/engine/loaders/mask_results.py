@@ -119,14 +119,42 @@ def normalise(path, r, at):
             box = (math.nan,) * 4
             unfit = ("bbox", f"must be 4 numbers [x, y, w, h], got {r.bbox!r:.40}")
     score = unread_fields.as_number(r.score)
+    seg = r.segmentation
+    if isinstance(seg, list) and seg and all(isinstance(e, dict) for e in seg) or seg == []:
+        seg, box, unfit = _masks(path, seg, box, unfit, at)
+    else:
+        seg = _segmentation(path, seg, at)
     record = MaskDetection(
         r.image_id,
         r.category_id,
         unread_fields.BAD_SCORE if score is None else score,
-        _segmentation(path, r.segmentation, at),
+        seg,
         box,
     )
     return record, unfit
+
+
+def _masks(path, seg, box, unfit, at):
+    """A list of RLE masks: ``maskUtils.area`` (and ``toBbox`` without a box) read
+    each one, so each is checked as a single mask is (refused where they raise or
+    crash); the area is then an array, which ``evaluateImg`` cannot compare beside
+    other detections' areas (``np.array`` of mixed shapes, ValueError), nor
+    ``computeIoU`` the array box ``toBbox`` gives: the record is unfit (refused where
+    compared). Known deviation: a group whose compared detections are all lists of
+    one mask with a box, pycocotools scores; it is refused here."""
+    masks = [_segmentation(path, e, at) for e in seg]
+    probe = [MaskDetection(0, 0, 0.0, m, box) for m in masks]
+    try:
+        columns(probe, path, 0)
+    except InputError as e:
+        raise InputError(path, e.message, record=f"record {at}", field=e.field) from None
+    why = (
+        f"a list of {len(masks)} masks"
+        + ("" if box is not msgspec.UNSET else " without bbox")
+        + ": pycocotools 2.0.11 reads an array area (and box) from it, which evaluateImg "
+        "(or computeIoU) cannot compare"
+    )
+    return Rle((0, 0), ""), (math.nan,) * 4, unfit or ("segmentation", why)
 
 
 def _segmentation(path, seg, at):
