@@ -209,6 +209,8 @@ def _stream(path, f, skip, build=True, wide=False, decode=None):
             raise _piece_error(path, e, buf, where, 0) from None
         finally:
             view.release()
+        if not len(records) and base:  # "[" stands for a cut's comma: "}, ]"
+            raise _trailing_comma(path, buf, where)
         yield _block(records, path, base, wide, mode, build)
         if eof:
             return
@@ -221,6 +223,19 @@ def _stream(path, f, skip, build=True, wide=False, decode=None):
         more = f.read(CHUNK_BYTES)
         eof = not more
         buf += more
+
+
+def _trailing_comma(path, buf, where):
+    """The error of a comma after the last record (``[{...},]``): Python's ``json``
+    (so pycocotools 2.0.11) raises "Expecting value" at the closing bracket, RFC 8259
+    section 5 allows no empty element. ``buf`` is the rest after the cut: "[", blanks,
+    "]"."""
+    k = len(buf) - len(bytes(buf[1:]).lstrip())
+    line, column = where.locate(buf, k)
+    return InputError(
+        path,
+        f"not valid JSON: trailing comma in array at line {line}, column {column}",
+    )
 
 
 def _first_mode(path, buf, where, eof):
