@@ -40,6 +40,13 @@ from .shards import _BOX_RECORD_FIELDS, _DET_FIELDS, merged_with_order, take_ref
 _META = ("protocol", "classes", "area_names", "thresholds", "n_images", "tie_order")
 _MATCH_FIELDS = ("match_config", "match_det", "match_box", "match_iou")
 _MOVED = ("class", "score", "image", "order")
+#: ``MatchRecords.det_key``, kept only where pycocotools' exact order is
+#: (``loaders.exact_scores``): every shard of such a run has it.
+_KEY_FIELD = ("det_key",)
+
+
+def _det_fields(records):
+    return _DET_FIELDS + (_KEY_FIELD if records.det_key is not None else ())
 
 
 class PartMismatch(ValueError):
@@ -79,7 +86,7 @@ def partition(records, box_index, groups):
     members = {f"meta.{name}": np.asarray(getattr(records, name)) for name in _META}
     for j, (lo, hi) in enumerate(groups):
         dets = slice(int(bounds[lo]), int(bounds[hi]))
-        out = {name: getattr(records, name)[dets] for name in _DET_FIELDS}
+        out = {name: getattr(records, name)[dets] for name in _det_fields(records)}
         out["det_outside"] = records.det_outside[:, dets]
         out["det_fixable"] = fixable[dets] >= 0
         rows = (records.match_det >= dets.start) & (records.match_det < dets.stop)
@@ -170,7 +177,8 @@ def merge_group(parts, meta, lo, hi):
     box_index = np.sort(np.concatenate([p["box_index"] for p in parts]).astype(np.int64))
     local = []
     for p in parts:
-        fields = {name: p[name] for name in _DET_FIELDS + _BOX_RECORD_FIELDS + _MATCH_FIELDS}
+        names = _DET_FIELDS + _BOX_RECORD_FIELDS + _MATCH_FIELDS + _KEY_FIELD
+        fields = {name: p[name] for name in names if name in p}
         fields["match_box"] = np.searchsorted(box_index, p["match_box"]).astype(np.int32)
         fields["gt_ref_det"] = np.full(len(p["box_index"]), -1, np.int32)
         records = MatchRecords(
@@ -215,7 +223,7 @@ def save_group(path, group, parts, class_start, meta, extra=None):
     records = group.records
     arrays = {
         name: getattr(records, name)
-        for name in _DET_FIELDS
+        for name in _det_fields(records)
         + _BOX_RECORD_FIELDS
         + _MATCH_FIELDS
         + ("det_outside", "gt_ignored", "thresholds")
@@ -341,7 +349,7 @@ def write_records(path, group_paths, n_boxes):
 
 def _write_detections(column, opened, starts):
     n = sum(len(g["det_score"]) for g in opened)
-    for name in _DET_FIELDS:
+    for name in _DET_FIELDS + (_KEY_FIELD if "det_key" in opened[0].files else ()):
         first = opened[0][name]
         chunks = (
             g[name] + start if name == "det_class" else g[name] for g, start in zip(opened, starts)

@@ -202,6 +202,11 @@ class GroundTruth:
         return True
 
 
+def _cap_key(protocol):
+    cap = protocol.max_detections_limit
+    return "none" if cap is None else str(cap)
+
+
 @dataclass(frozen=True, eq=False)
 class Predictions:
     """A detector's output on one split, resolved against that split's indices."""
@@ -219,8 +224,10 @@ class Predictions:
     extra: dict = field(default_factory=dict)
     dropped_classes: tuple = ()  # the class keys (as text) of the ``dropped`` records
     #: Where pycocotools would order integer scores beyond 2**53 otherwise than float64
-    #: (``loaders.exact_scores``): per checked cap, the refusal ``match`` raises under
-    #: the COCO order; empty for a file without such scores.
+    #: (``loaders.exact_scores.check``): per checked cap, its order (which ``match``
+    #: takes under the COCO order) and the refusal raised under another cap; under
+    #: ``"cityscale"`` the refusal of ``miss-rate-cityscale``. Empty for a file
+    #: without such scores.
     score_conflicts: dict = field(default_factory=dict)
     #: Each detection's area for size ranges, when the file is not read as boxes
     #: (pycocotools' ``loadRes``: a segmentation's RLE area, ``loaders/mask_results.py``;
@@ -239,15 +246,28 @@ class Predictions:
 
     def score_conflict(self, protocol):
         """The refusal recorded for ``protocol`` (``InputError`` keywords), or None:
-        only under the COCO order (``tie_order="image"``); a per-image cap other than
-        the checked ones (100, none) takes any recorded conflict (conservative)."""
+        only under the COCO order (``tie_order="image"``) with a per-image cap other
+        than the checked ones (100, none), which takes any recorded conflict
+        (conservative), or an entry without an order (made before orders were kept)."""
         if not self.score_conflicts or protocol.tie_order != "image":
             return None
-        cap = protocol.max_detections_limit
-        key = "none" if cap is None else str(cap)
+        key = _cap_key(protocol)
         if key in self.score_conflicts:
-            return self.score_conflicts[key] or None
-        return next((c for c in self.score_conflicts.values() if c), None)
+            entry = self.score_conflicts[key]
+            return entry if entry and "position" not in entry else None
+        return next((c for k, c in self.score_conflicts.items() if c and k != "cityscale"), None)
+
+    def score_order(self, protocol):
+        """pycocotools' order for ``protocol`` where it is not float64's
+        (``loaders.exact_scores``): ``(index, rank, key)`` int64 arrays — the
+        detections of the classes concerned, their rank within image and class, and
+        the class order key (ascending, then image, then file order) — or None."""
+        if not self.score_conflicts or protocol.tie_order != "image":
+            return None
+        entry = self.score_conflicts.get(_cap_key(protocol))
+        if not entry or "position" not in entry:
+            return None
+        return tuple(np.asarray(entry[n], np.int64) for n in ("position", "rank", "key"))
 
     def cityscale_conflict(self):
         """The refusal recorded for ``miss-rate-cityscale`` (the CityPersons script's

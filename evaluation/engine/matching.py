@@ -20,6 +20,7 @@ threshold can ever match, so the rest are dropped before the walk.
 import numpy as np
 
 from . import reasons as _reasons
+from .accumulation_order import orders, run_starts
 from .boxes import pair_iou
 from .errors import InputError
 from .protocols import BEST_OVERLAP, get_protocol
@@ -27,22 +28,6 @@ from .records import MatchRecords
 
 _DENSE_GROUPS = 20_000_000  # up to this many (image, class) groups, index them directly
 _REGULAR = np.int32(1) << 24  # added to the key of a regular (non-ignored) box
-
-
-def _starts(sorted_values):
-    """True where a run of equal values begins (length n, also for n = 0)."""
-    mask = np.ones(len(sorted_values), bool)
-    mask[1:] = sorted_values[1:] != sorted_values[:-1]
-    return mask
-
-
-def _ranks(sorted_group):
-    """Position of each element within its run of equal group ids."""
-    n = len(sorted_group)
-    if not n:
-        return np.zeros(0, np.int64)
-    starts = np.flatnonzero(_starts(sorted_group))
-    return np.arange(n) - np.repeat(starts, np.diff(np.r_[starts, n]))
 
 
 def _candidate_pairs(truth, det_boxes, det_group, protocol, min_threshold):
@@ -85,39 +70,6 @@ def _outside(area, area_ranges):
     )
 
 
-def _narrow(values, largest):
-    """The smallest integer type for ``values``: numpy sorts 16-bit keys by radix."""
-    for dtype in (np.uint16, np.uint32):
-        if largest < np.iinfo(dtype).max:
-            return values.astype(dtype)
-    return values
-
-
-def _orders(predictions, n_classes, tie_order="image"):
-    """Accumulation order and ranks within (image, class) groups.
-
-    Accumulation order is (class, score desc, image, file) for ``tie_order="image"``
-    — pycocotools ranks detections within an (image, class) by descending score with
-    file order on ties, and accumulates a class over images in ascending id order —
-    and (class, score desc, file) for ``"file"``, the VOC devkit's stable sort of the
-    whole results file. Ranks within an (image, class) are the same under both.
-    """
-    image = _narrow(predictions.image, len(predictions.image) and predictions.image.max())
-    if tie_order == "file":
-        by_image = np.arange(len(image))
-    else:
-        by_image = np.argsort(image, kind="stable")
-    by_score = by_image[np.argsort(-predictions.score[by_image], kind="stable")]
-    cls = _narrow(predictions.cls, n_classes)
-    acc = by_score[np.argsort(cls[by_score], kind="stable")]
-    within = np.argsort(image[acc], kind="stable")  # (image, class, score, file)
-    grouped = acc[within]
-    group = predictions.image[grouped].astype(np.int64) * n_classes + predictions.cls[grouped]
-    rank = np.empty(len(acc), np.int64)
-    rank[within] = _ranks(group)
-    return acc, rank
-
-
 def match(truth, predictions, protocol, *, reasons=True):
     """Match ``predictions`` to ``truth`` under ``protocol``.
 
@@ -142,11 +94,13 @@ def match(truth, predictions, protocol, *, reasons=True):
     thresholds = protocol.threshold_table(truth.classes)
     effective = np.minimum(thresholds, 1 - 1e-10)  # pycocotools caps at 1 - 1e-10
 
-    order, rank = _orders(predictions, n_classes, protocol.tie_order)
+    exact = predictions.score_order(protocol)
+    order, rank, key = orders(predictions, n_classes, protocol.tie_order, exact)
     cap = protocol.max_detections_limit
     if cap is not None:
         keep = rank < cap
         order, rank = order[keep], rank[keep]
+        key = None if key is None else key[keep]
     det_image = predictions.image[order]
     det_cls = predictions.cls[order]
     det_boxes = predictions.boxes[order]
@@ -194,6 +148,7 @@ def match(truth, predictions, protocol, *, reasons=True):
                 effective,
                 gt_ignored,
                 truth.crowd,
+                by_rank=exact is not None,
             )
             + _walk_sequentially(
                 np.unique(det_group[pair_det[walk]]),
@@ -223,6 +178,7 @@ def match(truth, predictions, protocol, *, reasons=True):
         det_score=predictions.score[order],
         det_rank=rank.astype(np.int32),
         det_order=order.astype(np.int64),
+        det_key=key,
         det_outside=det_outside,
         match_config=config,
         match_det=det,
@@ -264,7 +220,19 @@ def _void_boxes(truth, protocol):
     return void if void.any() else None
 
 
-def _greedy(pair_det, pair_gt, pair_iou_, rank, det_group, det_cls, effective, gt_ignored, crowd):
+def _greedy(
+    pair_det,
+    pair_gt,
+    pair_iou_,
+    rank,
+    det_group,
+    det_cls,
+    effective,
+    gt_ignored,
+    crowd,
+    *,
+    by_rank=False,
+):
     """Sparse matches ``(config, detection, box, iou)``; config = area * slots + slot.
 
     A group (image, class) in which no detection has two candidate boxes needs no
@@ -276,8 +244,16 @@ def _greedy(pair_det, pair_gt, pair_iou_, rank, det_group, det_cls, effective, g
     candidates = np.bincount(pair_det, minlength=len(det_group))
     crowded = np.unique(det_group[pair_det[candidates[pair_det] > 1]])
     walk = np.isin(det_group[pair_det], crowded, assume_unique=False)
+    first = pair_det[~walk]
     found = _first_claims(
-        pair_det[~walk], pair_gt[~walk], pair_iou_[~walk], det_cls, effective, crowd, n_areas
+        first,
+        pair_gt[~walk],
+        pair_iou_[~walk],
+        det_cls,
+        effective,
+        crowd,
+        n_areas,
+        rank[first] if by_rank else None,
     )
     found += _walk_ranks(
         pair_det[walk],
@@ -354,15 +330,18 @@ def _walk_sequentially(
     return found
 
 
-def _first_claims(pair_det, pair_gt, pair_iou_, det_cls, effective, crowd, n_areas):
+def _first_claims(pair_det, pair_gt, pair_iou_, det_cls, effective, crowd, n_areas, rank=None):
+    """``rank``: the pairs' detection ranks, where accumulation order within a group
+    may not be rank order (``accumulation_order.orders``' ``exact``); None: it is."""
     n_slots = len(effective)
-    by_box = np.lexsort((pair_det, pair_gt))  # detections are in rank order within a group
+    # detections are in rank order within a group unless ranks are given
+    by_box = np.lexsort((pair_det if rank is None else rank, pair_gt))
     pair_det, pair_gt, pair_iou_ = pair_det[by_box], pair_gt[by_box], pair_iou_[by_box]
     found = []
     for t in range(n_slots):
         reaches = np.flatnonzero(pair_iou_ >= effective[t, det_cls[pair_det]])
         ordered = pair_gt[reaches]
-        first = _starts(ordered) | crowd[ordered]
+        first = run_starts(ordered) | crowd[ordered]
         take = reaches[first]
         for a in range(n_areas):
             found.append(
@@ -399,7 +378,7 @@ def _walk_ranks(pair_det, pair_gt, pair_iou_, rank, det_cls, effective, gt_ignor
     found = []
     for b0, b1 in zip(bounds[:-1], bounds[1:]):
         d, g = pair_det[b0:b1], pair_gt[b0:b1]
-        starts = np.flatnonzero(_starts(d))
+        starts = np.flatnonzero(run_starts(d))
         reaches = pair_iou_[b0:b1] >= effective[:, det_cls[d]]  # (slots, pairs)
         eligible = (~taken[:, g] | crowd[g]).reshape(n_areas, n_slots, -1) & reaches
         key = np.where(regular[:, g], _REGULAR, 0) + static_rank[b0:b1]
@@ -427,7 +406,7 @@ def _best_overlap(pair_det, pair_gt, pair_iou_, det_cls, effective, gt_ignored):
     # Highest overlap per detection; on ties the first box in file order (MATLAB max).
     by_det = np.lexsort((pair_gt, -pair_iou_, pair_det))
     pair_det, pair_gt, pair_iou_ = pair_det[by_det], pair_gt[by_det], pair_iou_[by_det]
-    first = _starts(pair_det)
+    first = run_starts(pair_det)
     det, box, best_iou = pair_det[first], pair_gt[first], pair_iou_[first]
     found = []
     for t in range(n_slots):
@@ -441,7 +420,7 @@ def _best_overlap(pair_det, pair_gt, pair_iou_, det_cls, effective, gt_ignored):
             claims = np.flatnonzero(~ignored)
             by_box = np.lexsort((d[claims], g[claims]))
             ordered = g[claims][by_box]
-            first_claim = claims[by_box[_starts(ordered)]]
+            first_claim = claims[by_box[run_starts(ordered)]]
             keep = np.r_[first_claim, np.flatnonzero(ignored)]
             found.append((np.full(len(keep), a * n_slots + t), d[keep], g[keep], iou[keep]))
     return _concat(found)

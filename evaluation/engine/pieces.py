@@ -127,6 +127,9 @@ def stream_pieces(path, truth, ranges, directory, *, name="piece-{k}.npz", **opt
             unwritable=np.ascontiguousarray(rows["unwritable"]) if bad_ids else None,
         )
         positions = np.ascontiguousarray(rows["position"])
+        sliced = dataclasses.replace(
+            sliced, score_conflicts=exact_scores.restrict(conflicts, positions)
+        )
         del rows
         sliced_truth, box_index = truth_slice(truth, start, stop)
         paths.append(os.path.join(directory, name.format(k=k)))

@@ -147,6 +147,7 @@ def attach(records, truth, det_boxes, protocol):
         records.gt_ignored[0],
         protocol.pixel_offset,
         det_order=records.det_order,
+        det_key=records.det_key,
     )
     records.det_box = np.asarray(det_boxes, np.float64)
     for name, value in found.items():
@@ -165,6 +166,7 @@ def compute(
     pixel_offset,
     *,
     det_order=None,
+    det_key=None,
 ):
     r"""Reason codes, related box / detection and IoU, for detections and boxes.
 
@@ -179,6 +181,9 @@ def compute(
     pixel_offset : the protocol's pixel convention (0 COCO, 1 VOC)
     det_order : position of each detection in the predictions file (ties between
         errors pointing at one box go to the earlier one, as in tidecv)
+    det_key : ``MatchRecords.det_key`` or None: where kept, equal float64 scores are
+        ordered by it (pycocotools' exact order of integers beyond 2**53) before
+        file position
 
     Returns
     -------
@@ -266,6 +271,8 @@ def compute(
     ref_iou = np.where(ref_box >= 0, ref_iou, np.nan)
 
     tie = np.arange(n) if det_order is None else det_order
+    if det_key is not None:  # float64 ties in pycocotools' exact order (exact_scores)
+        tie = np.lexsort((tie, det_key)).argsort()
     box_reason, box_det, box_iou = _box_reasons(
         reason, ref_box, ref_iou, det_score, tie, gt_ignored, near_det, near_iou
     )

@@ -82,11 +82,24 @@ class MatchRecords:
     #: Boxes a match with which is no true positive (annotation id 0 under ``coco``:
     #: ``protocols.Protocol.zero_id_unmatched``); None when there are none.
     gt_void: np.ndarray | None = None
+    #: Per detection of a class pycocotools orders otherwise than float64 (integer
+    #: scores beyond 2**53, ``loaders.exact_scores``), the key of that order: within
+    #: the class by ascending key, then image, then ``det_rank`` (equal keys are
+    #: pycocotools' ties). NaN for the other detections (score descending, then image,
+    #: then file position); None when every class follows its float64 scores.
+    det_key: np.ndarray | None = None
     _sparse: dict = field(default_factory=dict, repr=False)
 
     @property
     def n_detections(self):
         return len(self.det_class)
+
+    def order_key(self):
+        """What orders detections within a class before image: ``det_key`` where
+        kept, else ``-det_score``."""
+        if self.det_key is None:
+            return -self.det_score
+        return np.where(np.isnan(self.det_key), -self.det_score, self.det_key)
 
     @property
     def has_reasons(self):
@@ -153,8 +166,9 @@ class MatchRecords:
         return self._sparse[area]
 
     def _tie_groups(self):
-        """Runs of detections with one class, image and score, adjacent in accumulation
-        order: the copies of a weighted image repeat each run as a whole.
+        """Runs of detections with one class, image and score (order key, where
+        ``det_key`` is kept), adjacent in accumulation order: the copies of a weighted
+        image repeat each run as a whole.
 
         Under ``tie_order="image"`` the copies of an image have adjacent ids, so copy
         c's tied detections all precede copy c + 1's. Under ``"file"`` the rule is that
@@ -165,9 +179,10 @@ class MatchRecords:
         if self.tie_order == "file":
             return {"tie_start": np.arange(n), "tie_end": np.arange(1, n + 1)}
         change = np.ones(n, bool)
+        key = self.order_key()
         change[1:] = (
             (self.det_class[1:] != self.det_class[:-1])
-            | (self.det_score[1:] != self.det_score[:-1])
+            | (key[1:] != key[:-1])
             | (self.det_image[1:] != self.det_image[:-1])
         )
         starts = np.flatnonzero(change)

@@ -7,7 +7,7 @@ and detections, and the pieces merged into exactly the records of one whole run:
 
 * detection fields are concatenated and put in accumulation order — class, score
   descending, then image and file position (``tie_order="image"``, pycocotools) or file
-  position alone (``"file"``, the VOC devkit) — the same total order ``matching._orders``
+  position alone (``"file"``, the VOC devkit) — the same total order ``accumulation_order.orders``
   builds, so every detection lands where the whole run puts it;
 * a shard's indices are translated to the whole file's: detection positions
   (``det_order``), box indices (``match_box``, ``det_ref_box``) and detection indices
@@ -24,6 +24,7 @@ import dataclasses
 
 import numpy as np
 
+from .loaders import exact_scores
 from .loaders.cache import _from_arrays, _to_arrays
 from .matching import match
 from .records import MatchRecords
@@ -97,6 +98,7 @@ def predictions_slice(predictions, start, stop, positions=None):
         area=None if predictions.area is None else predictions.area[positions],
         free=None if predictions.free is None else predictions.free[positions],
         unwritable=None if predictions.unwritable is None else predictions.unwritable[positions],
+        score_conflicts=exact_scores.restrict(predictions.score_conflicts, positions),
     )
     return sliced, positions
 
@@ -211,16 +213,23 @@ def merged_with_order(shards, n_boxes):
     if any(a[1] >= b[0] for a, b in zip(spans, spans[1:])):
         raise ValueError("shards must be given in order of their runs of images")
     det = {name: np.concatenate([getattr(r, name) for r, _ in shards]) for name in _DET_FIELDS}
+    if any(r.det_key is not None for r, _ in shards):  # pycocotools' exact order, kept
+        det["det_key"] = np.concatenate(
+            [np.full(r.n_detections, np.nan) if r.det_key is None else r.det_key for r, _ in shards]
+        )
     outside = np.concatenate([r.det_outside for r, _ in shards], axis=1)
     # Shards hold increasing runs of images and each is in accumulation order, so in
     # their concatenation equal (class, score) under tie_order "image" already stand in
-    # image, then file order: two stable sorts finish it, as in ``matching._orders``.
+    # image, then file order: two stable sorts finish it, as in ``accumulation_order.orders``.
     # Under "file" the file positions interleave across shards and are sorted first.
     if first.tie_order == "file":
         base = np.argsort(det["det_order"], kind="stable")
     else:
         base = np.arange(len(det["det_order"]))
-    by_score = base[np.argsort(-det["det_score"][base], kind="stable")]
+    key = -det["det_score"]
+    if "det_key" in det:
+        key = np.where(np.isnan(det["det_key"]), key, det["det_key"])
+    by_score = base[np.argsort(key[base], kind="stable")]
     classes = det["det_class"].astype(np.uint16 if len(first.classes) < 2**16 else np.int64)
     order = by_score[np.argsort(classes[by_score], kind="stable")]
     new_index = np.empty(len(order), np.int64)

@@ -55,7 +55,14 @@ def class_ap(protocol, tie_order, n_classes, det, n_pos):
     that count. They are ordered by (class, score descending, then the protocol's tie
     order: image then file position, or file position) — the records' accumulation
     order — and the curve is read at true positives as ``curves.true_positive_points``
-    does:
+    does. Optional ``key`` and ``rank`` columns (``MatchRecords.det_key`` and
+    ``det_rank``: pycocotools' exact order of integer scores beyond 2**53) order the
+    float64 ties of a key's detections as that order does (key, image, rank); a
+    detection without a key (NaN) — one the classification fix moves in, too — comes
+    after them at its float64 score, then by image and file position. The float64
+    score stays first, so an order that breaks it (int64 wrap-around in
+    pycocotools' ``accumulate``) is not followed here (DEVELOPERS.md). The curve is
+    read as
 
     .. math:: P_i = \frac{TP_i}{TP_i + FP_i + \varepsilon}, \quad R_i = \frac{TP_i}{n_{pos}}
 
@@ -64,6 +71,11 @@ def class_ap(protocol, tie_order, n_classes, det, n_pos):
     cls = det["cls"]
     if tie_order == "file":
         order = np.lexsort((det["order"], -det["score"], cls))
+    elif "key" in det:  # pycocotools' exact order of integers beyond 2**53, kept
+        exact = ~np.isnan(det["key"])
+        key = np.where(exact, det["key"], np.inf)
+        tie = np.where(exact, det["rank"], det["order"])
+        order = np.lexsort((tie, det["image"], key, -det["score"], cls))
     else:
         order = np.lexsort((det["order"], det["image"], -det["score"], cls))
     cls, tp = cls[order], det["tp"][order]
@@ -156,6 +168,8 @@ def class_parts(records, protocol, has_fix, moved):
         "image": records.det_image,
         "order": records.det_order,
     }
+    if records.det_key is not None:
+        det["key"], det["rank"] = records.det_key, records.det_rank
     counted = reason != IGNORED
     n_pos = records.n_positives(0).astype(np.float64)
     box_class = records.gt_class.astype(np.int64)
@@ -183,6 +197,9 @@ def class_parts(records, protocol, has_fix, moved):
                 "image": moved["image"],
                 "order": moved["order"],
             }
+            if "key" in det:
+                extra["key"] = np.full(len(moved["class"]), np.nan)
+                extra["rank"] = np.zeros(len(moved["class"]), records.det_rank.dtype)
             found = ap_of(counted & (reason != CLS), extra=extra)
         elif error == "localisation":
             errors = reason == LOC

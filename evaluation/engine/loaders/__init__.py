@@ -228,7 +228,8 @@ def load_predictions(
         "unknown_classes": unknown_classes,
         "ids": ids,
         "schema": CACHE_SCHEMA,
-        "score_conflicts": 2,  # entries from before exact_scores' cityscale check lack it
+        # 3: entries carry pycocotools' exact order (2: the cityscale check was added)
+        "score_conflicts": 3,
     }
     if unknown_images != "reject":  # the default keeps the keys of existing entries
         key["unknown_images"] = unknown_images

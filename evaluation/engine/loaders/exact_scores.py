@@ -58,6 +58,18 @@ CITYSCALE_CAP = 1000
 CITYSCALE = "cityscale"
 _PYCOCOTOOLS = "pycocotools 2.0.11"
 _CITY_SCRIPT = "the CityPersons script (eval_MR_multisetup.py)"
+#: What a refusal says: pycocotools' order is taken for the caps checked, so its
+#: refusal is raised only under another cap; the CityPersons script's is not taken.
+_TAILS = {
+    _PYCOCOTOOLS: (
+        "its order is taken for the per-image caps 100 and none only (replayed when "
+        "the file is read), so the file is refused for a protocol with another cap"
+    ),
+    _CITY_SCRIPT: (
+        f"this protocol's numbers would differ from those of {_CITY_SCRIPT}, so the file "
+        "is refused for this protocol"
+    ),
+}
 
 
 def suspect(score):
@@ -87,11 +99,12 @@ _FLOAT, _INT, _BOOL = 0, 1, 2
 
 def _affected(path, truth, classes, wide):
     """The scored detections of ``classes`` (a second, loose read of the file), as
-    columns ``image``, ``cls``, ``record``, ``score`` (float64), ``kind`` (float, int or
-    bool in the file), ``height`` (the file's ``bbox[3]``) and ``big``: record -> the
-    exact Python int of every integer score of magnitude >= 2**53 (the others are exact
-    in float64)."""
-    collected, parts, big, base = [], [], {}, 0
+    columns ``image``, ``cls``, ``record``, ``position`` (index into the loaded
+    predictions' columns: records of unknown images or classes are not there),
+    ``score`` (float64), ``kind`` (float, int or bool in the file), ``height`` (the
+    file's ``bbox[3]``) and ``big``: record -> the exact Python int of every integer
+    score of magnitude >= 2**53 (the others are exact in float64)."""
+    collected, parts, big, base, loaded = [], [], {}, 0, 0
     wanted = np.zeros(len(truth.classes), bool)
     wanted[list(classes)] = True
     for columns in coco_json.detection_blocks(path, wide, decode=_loose(collected)):
@@ -99,17 +112,20 @@ def _affected(path, truth, classes, wide):
         raw = detection_blocks.json_raw(truth, *columns, base=base)
         image, found_i = checks.resolve(path, raw.image_ids, raw.known_images, raw.locate, "", "")
         cls, found_c = checks.resolve(path, raw.class_keys, raw.known_classes, raw.locate, "", "")
-        keep = np.flatnonzero(found_i & found_c)
+        found = found_i & found_c
+        position = loaded + np.cumsum(found) - 1
+        keep = np.flatnonzero(found)
         keep = keep[wanted[cls[keep]]]
         kinds = np.array([_kind(values[i]) for i in keep.tolist()], np.int8)
         score = columns[3][keep]
         for i in keep[(kinds == _INT) & suspect(score)].tolist():
             big[base + i] = values[i]
         height = np.asarray(columns[2], np.float64).reshape(-1, 4)[keep, 3]
-        parts.append((image[keep], cls[keep], base + keep, score, kinds, height))
+        parts.append((image[keep], cls[keep], base + keep, position[keep], score, kinds, height))
         base += len(columns[3])
+        loaded += int(found.sum())
         collected.clear()
-    names = ("image", "cls", "record", "score", "kind", "height")
+    names = ("image", "cls", "record", "position", "score", "kind", "height")
     rows = {n: np.concatenate([p[j] for p in parts]) for j, n in enumerate(names)}
     return rows, big
 
@@ -119,25 +135,67 @@ def _kind(value):
 
 
 def check(path, truth, classes, wide):
-    """``{cap_key: refusal or {}}`` for ``CAPS`` and ``"cityscale"`` — empty when
+    """``{cap_key: {} or entry}`` for ``CAPS`` and ``"cityscale"`` — empty when
     ``classes`` (the classes holding a ``suspect`` score) is empty — of the JSON
     detections file at ``path``. Only a class holding an integer of magnitude >= 2**53
-    is replayed: without one, every list numpy makes of it ranks as float64 does."""
+    is replayed: without one, every list numpy makes of it ranks as float64 does.
+
+    An entry of a cap says where pycocotools' order first differs from float64's
+    (``path``, ``record``, ``field``, ``message``: what a protocol that cannot take the
+    exact order raises) and carries that order for every detection of each class
+    where it differs (``position``: index into the loaded predictions, ``rank``:
+    pycocotools' rank within its image and class, ``key``: ``order_keys``). The
+    ``"cityscale"`` entry is a refusal only (``pedestrian`` raises it)."""
     if not len(classes):
         return {}
     rows, big = _affected(path, truth, classes, wide)
     replayed = np.unique(rows["cls"][np.isin(rows["record"], list(big))]).tolist()
     conflicts = {}
     for cap in CAPS:
-        found = {}
-        for k in replayed:
-            mine = {n: v[rows["cls"] == k] for n, v in rows.items()}
-            found = _replay(path, truth, mine, big, k, cap)
-            if found:
-                break
-        conflicts["none" if cap is None else str(cap)] = found
+        found = [_replay(path, truth, _of_class(rows, k), big, k, cap) for k in replayed]
+        conflicts["none" if cap is None else str(cap)] = _joined([f for f in found if f])
     conflicts[CITYSCALE] = _cityscale(path, truth, rows, big, replayed)
     return conflicts
+
+
+def _of_class(rows, k):
+    return {n: v[rows["cls"] == k] for n, v in rows.items()}
+
+
+def _joined(entries):
+    """One entry of several classes' entries: the first one's refusal, all orders."""
+    if not entries:
+        return {}
+    out = dict(entries[0])
+    for name in ORDER_FIELDS:
+        out[name] = [v for e in entries for v in e[name]]
+    return out
+
+
+#: The order columns of an entry (``check``).
+ORDER_FIELDS = ("position", "rank", "key")
+
+
+def restrict(conflicts, positions):
+    """``conflicts`` (``check``) for the predictions ``positions`` of the loaded ones
+    (ascending), as ``shards.predictions_slice`` cuts them: order columns narrowed to
+    those detections and their positions made the slice's own."""
+    if not conflicts:
+        return conflicts
+    out = {}
+    for key, entry in conflicts.items():
+        if not entry or "position" not in entry:
+            out[key] = entry
+            continue
+        position = np.asarray(entry["position"], np.int64)
+        at = np.searchsorted(positions, position)
+        inside = at < len(positions)
+        inside[inside] = positions[at[inside]] == position[inside]
+        narrowed = dict(entry, position=at[inside].tolist())
+        for name in ("rank", "key"):
+            narrowed[name] = np.asarray(entry[name], np.int64)[inside].tolist()
+        out[key] = narrowed
+    return out
 
 
 def _cityscale(path, truth, rows, big, replayed):
@@ -151,7 +209,7 @@ def _cityscale(path, truth, rows, big, replayed):
             kept &= mine["height"] < hi * HEIGHT_EXPANSION
             found = _replay(path, truth, mine, big, k, CITYSCALE_CAP, kept, _CITY_SCRIPT)
             if found:
-                return found
+                return {n: v for n, v in found.items() if n not in ORDER_FIELDS}
     return {}
 
 
@@ -168,35 +226,72 @@ def _values(rows, big, at):
 
 
 def _replay(path, truth, rows, big, k, cap, kept=None, who=_PYCOCOTOOLS):
-    """The first place ``who``'s order of class ``k`` differs from float64's: per image
-    the first ``cap`` by score, of which those ``kept`` (a per-row filter applied after
-    the cap, as the CityPersons script's height filter; None: all), then the class."""
+    """``{}`` when ``who``'s order of class ``k`` is float64's, else the entry of
+    ``check``: per image the first ``cap`` by score, of which those ``kept`` (a per-row
+    filter applied after the cap, as the CityPersons script's height filter; None:
+    all), then the class. Also ``{}`` for a class numpy cannot negate (booleans:
+    pycocotools raises; the engine scores them as 1 and 0)."""
     by_image = np.argsort(rows["image"], kind="stable")  # file order within an image
     starts = np.searchsorted(rows["image"][by_image], np.arange(truth.n_images + 1))
     with_truth = np.unique(truth.box_image[truth.box_class == k])
     images = np.union1d(np.unique(rows["image"]), with_truth)  # pycocotools' E, in order
-    theirs_lists, joined = [], []
+    theirs_lists, joined, first = [], [], None
+    rank = np.zeros(len(rows["image"]), np.int64)
     for image in images.tolist():
         dets = by_image[starts[image] : starts[image + 1]]
         values = _values(rows, big, dets)
-        theirs = np.argsort([-v for v in values], kind="mergesort")[:cap]
+        full = np.argsort([-v for v in values], kind="mergesort")
+        rank[dets[full]] = np.arange(len(full))
+        theirs = full[:cap]
         ours = np.argsort(-rows["score"][dets], kind="stable")[:cap]
         if kept is not None:
             theirs, ours = theirs[kept[dets[theirs]]], ours[kept[dets[ours]]]
-        if not np.array_equal(theirs, ours):
-            return _refusal(path, truth, rows, big, dets[theirs], dets[ours], image, k, who)
+        if first is None and not np.array_equal(theirs, ours):
+            first = _refusal(path, truth, rows, big, dets[theirs], dets[ours], image, k, who)
         theirs_lists.append([values[i] for i in theirs.tolist()])
         joined.append(dets[theirs])
     joined = np.concatenate(joined)
     try:
         with np.errstate(all="ignore"):  # pycocotools runs under numpy's defaults
-            theirs = np.argsort(-np.concatenate(theirs_lists), kind="mergesort")
+            negated = -np.concatenate(theirs_lists)
+            theirs = np.argsort(negated, kind="mergesort")
     except TypeError:  # a boolean class: pycocotools raises, so no order to keep
         return {}
-    ours = np.argsort(-rows["score"][joined], kind="stable")
-    if not np.array_equal(theirs, ours):
-        return _refusal(path, truth, rows, big, joined[theirs], joined[ours], None, k, who)
-    return {}
+    if first is None:
+        ours = np.argsort(-rows["score"][joined], kind="stable")
+        if np.array_equal(theirs, ours):
+            return {}
+        first = _refusal(path, truth, rows, big, joined[theirs], joined[ours], None, k, who)
+    key = order_keys(rows, joined[theirs], negated[theirs])
+    return {
+        **first,
+        "position": rows["position"].tolist(),
+        "rank": rank.tolist(),
+        "key": key.tolist(),
+    }
+
+
+def order_keys(rows, ranked, values):
+    """Integer keys that put a class's detections in pycocotools' order under the
+    engine's exact tie order: ascending key, then image, then pycocotools' rank within
+    the image (``accumulation_order.orders``).
+
+    ``ranked``: the detections (rows) in pycocotools' class order, ``values`` what it
+    sorted them by (``-dtScores`` in the joined type). The key is the dense rank of
+    ``values`` along that order: it steps up wherever the value changes. Equal values
+    stand in concatenation order there (a stable sort of the images' ranked lists, in
+    image order), which is exactly (image, rank); so equal keys are pycocotools' own
+    ties (a weighted image's copies repeat such runs, as on duplicated images), and
+    any order numpy makes is kept, int64 wrap-around and NaN among objects included.
+    Detections left out (beyond the cap) get the key after the last: the cap drops
+    them before the order is read."""
+    key = np.full(len(rows["image"]), len(ranked), np.int64)
+    if not len(ranked):
+        return key
+    with np.errstate(all="ignore"):
+        same = np.asarray(values[1:] == values[:-1], bool)
+    key[ranked] = np.cumsum(np.r_[False, ~same])
+    return key
 
 
 def _refusal(path, truth, rows, big, theirs, ours, image, k, who=_PYCOCOTOOLS):
@@ -225,8 +320,7 @@ def _refusal(path, truth, rows, big, theirs, ours, image, k, who=_PYCOCOTOOLS):
         "message": (
             f"score {value!r} {what} "
             f"exactly (numpy keeps Python integers as integers or objects) {where}, where "
-            "this engine's float64 scores tie or round it: this protocol's numbers would "
-            f"differ from those of {who}, so the file is refused for this protocol "
+            f"this engine's float64 scores tie or round it: {_TAILS[who]} "
             "(write the scores as floats to have them ranked as float64)"
         ),
     }
