@@ -270,14 +270,27 @@ class Predictions:
         return tuple(np.asarray(entry[n], np.int64) for n in ("position", "rank", "key"))
 
     def cityscale_conflict(self):
-        """The refusal recorded for ``miss-rate-cityscale`` (the CityPersons script's
-        orders, ``loaders.exact_scores``), or None. A record made before that check
-        (no ``"cityscale"`` key) takes any recorded conflict (conservative)."""
+        """The refusal recorded for ``miss-rate-cityscale`` (``loaders.exact_scores``),
+        or None: only a record made before the CityPersons script's order was kept
+        (an entry without it; no ``"cityscale"`` key: any recorded conflict)."""
         if not self.score_conflicts:
             return None
         if "cityscale" in self.score_conflicts:
-            return self.score_conflicts["cityscale"] or None
+            entry = self.score_conflicts["cityscale"]
+            return entry if entry and "position" not in entry else None
         return next((c for c in self.score_conflicts.values() if c), None)
+
+    def cityscale_order(self):
+        """The CityPersons script's order where it is not float64's: ``(index, rank,
+        keys)`` — the detections of the class concerned, their rank within the image,
+        and per height range of ``pedestrian_setups.CITYSCALE_HEIGHT_RANGES`` the order key of the
+        kept ones (an int64 array, or None where float64's order is the script's) — or
+        None."""
+        entry = (self.score_conflicts or {}).get("cityscale")
+        if not entry or "position" not in entry:
+            return None
+        keys = [None if k is None else np.asarray(k, np.int64) for k in entry["keys"]]
+        return np.asarray(entry["position"], np.int64), np.asarray(entry["rank"], np.int64), keys
 
     @property
     def clipped(self):

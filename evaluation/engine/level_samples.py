@@ -42,6 +42,8 @@ from .operating_point import matlab_descending
 
 KITTI_FIELDS = ("n_gt", "tp_image", "tp_score", "step_image", "step_score", "step_tp", "step_fp")
 SETUP_FIELDS = ("n_gt", "det_image", "det_score", "det_outcome")
+#: A setup's optional order key (``_tie_runs``), kept where present.
+_KEY = "det_key"
 N_SAMPLE_POINTS = 41
 
 
@@ -184,16 +186,22 @@ def setup_running_counts(samples, weights=None, nan_first=False):
 def _tie_runs(samples, nan_first=False):
     """The non-ignored detections in accumulation order (stable by score over the
     concatenation) and its runs of equal (score, image): start, length, image. Kept on
-    the samples dict after the first call."""
+    the samples dict after the first call. A ``det_key`` column (``miss-rate-cityscale``
+    on integer scores the CityPersons script orders exactly, ``loaders.exact_scores``)
+    replaces the descending score: ascending key, equal keys the script's ties."""
     cached = f"_runs_{int(nan_first)}"
     if cached not in samples:
         keep = np.flatnonzero(samples["det_outcome"] != -1)
         scores = samples["det_score"][keep]
-        if nan_first:
+        if "det_key" in samples:  # the CityPersons script's exact order (exact_scores)
+            order = keep[np.argsort(samples["det_key"][keep], kind="stable")]
+        elif nan_first:
             order = keep[matlab_descending(scores)]
         else:
             order = keep[np.argsort(-scores, kind="stable")]
         score, image = samples["det_score"][order], samples["det_image"][order]
+        if "det_key" in samples:  # equal keys: the script's ties
+            score = samples["det_key"][order]
         same_score = (score[1:] == score[:-1]) | (np.isnan(score[1:]) & np.isnan(score[:-1]))
         change = np.r_[True, ~same_score | (image[1:] != image[:-1])][: len(order)]
         start = np.flatnonzero(change)
@@ -273,7 +281,7 @@ class LevelSamples:
         members = {}
         for k, ((level, name), part) in enumerate(self.parts.items()):
             meta["parts"].append([level, name])
-            for field in fields:
+            for field in fields + (_KEY,) * (_KEY in part):
                 members[f"p{k}_{field}"] = np.asarray(part[field])
         members["meta.json"] = _json_bytes(meta)
         members["output.json"] = _json_bytes(output)
@@ -295,7 +303,11 @@ class LevelSamples:
             output = json.loads(data["output.json"].tobytes())
             fields = KITTI_FIELDS if meta["kind"] == "kitti" else SETUP_FIELDS
             parts = {
-                (level, name): {field: data[f"p{k}_{field}"] for field in fields}
+                (level, name): {
+                    field: data[f"p{k}_{field}"]
+                    for field in fields + (_KEY,)
+                    if field != _KEY or f"p{k}_{field}" in data.files
+                }
                 for k, (level, name) in enumerate(meta["parts"])
             }
         protocol = _protocol(meta["kind"], meta["protocol"])

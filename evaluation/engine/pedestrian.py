@@ -69,6 +69,7 @@ from .operating_point import matlab_descending
 from .pedestrian_setups import (  # noqa: F401  (re-exported: the engine's API)
     CITYSCALE_CATEGORY,
     CITYSCALE_FPPI_POINTS,
+    CITYSCALE_HEIGHT_RANGES,
     CITYSCALE_SETUPS,
     CLAMP,
     CURVE_POINTS,
@@ -228,12 +229,13 @@ def evaluate_setups_with_samples(truth, predictions, protocol="miss-rate"):
     computed from the samples (``level_samples.setup_class`` at weights of one), so a
     weighted recomputation at weights of one equals it bit for bit."""
     protocol = get_miss_rate_protocol(protocol)
-    # integer scores the CityPersons script orders otherwise (loaders.exact_scores); the
-    # toolbox variants read MATLAB doubles, as float64 here
+    # integer scores the CityPersons script orders otherwise (loaders.exact_scores): its
+    # order is taken; the toolbox variants read MATLAB doubles, as float64 here
     conflict = predictions.cityscale_conflict() if protocol.variant == "cityscale" else None
-    if conflict:
+    if conflict:  # a record made before the order was kept
         where = {k: v for k, v in conflict.items() if k in ("record", "field")}
         raise InputError(conflict["path"], conflict["message"], **where)
+    exact = _exact_order(predictions, protocol)
     n_images = truth.n_images
     flagged = ignore_flags(truth, protocol)
     void = truth.zero_id_boxes() if protocol.variant == "cityscale" else None
@@ -262,6 +264,8 @@ def evaluate_setups_with_samples(truth, predictions, protocol="miss-rate"):
             d = d[predictions.cls[d] == k]
             if protocol.variant == "toolbox":  # MATLAB's sort: NaN scores first
                 d = d[matlab_descending(predictions.score[d])]
+            elif exact is not None and len(d) and exact[0][d[0]] >= 0:  # the script's ranks
+                d = d[np.argsort(exact[0][d], kind="stable")]
             else:  # the city-scale code's numpy argsort: NaN last
                 d = d[np.argsort(-predictions.score[d], kind="stable")]
             if protocol.max_detections is not None:
@@ -274,6 +278,7 @@ def evaluate_setups_with_samples(truth, predictions, protocol="miss-rate"):
             # the city-scale code: boxes of id 0, and in-setup boxes whose fractional
             # ignore key makes int(ignore) = 0 (plain IoU although ignored)
             city = None if void is None else (void, own & inside & truth.ignore_key_fraction)
+            order_key = None if exact is None else exact[1].get(setup.height)
             levels[setup.name][truth.classes[k]], parts[(setup.name, truth.classes[k])] = (
                 _class_result(
                     truth,
@@ -286,6 +291,7 @@ def evaluate_setups_with_samples(truth, predictions, protocol="miss-rate"):
                     det_boxes,
                     gt_resized,
                     city,
+                    order_key,
                 )
             )
     summary = {name: _setup_summary(per_class) for name, per_class in levels.items()}
@@ -299,6 +305,24 @@ def evaluate_setups_with_samples(truth, predictions, protocol="miss-rate"):
     return output, LevelSamples("setups", protocol, n_images, setups, classes, parts)
 
 
+def _exact_order(predictions, protocol):
+    """``(rank, {height range: key})`` per prediction (rank -1, key NaN where not
+    given) of the CityPersons script's exact order (``Predictions.cityscale_order``)
+    under ``cityscale``; None elsewhere or where float64's order is the script's."""
+    found = predictions.cityscale_order() if protocol.variant == "cityscale" else None
+    if found is None:
+        return None
+    index, rank, keys = found
+    ranks = np.full(len(predictions), -1, np.int64)
+    ranks[index] = rank
+    by_range = {}
+    for height, key in zip(CITYSCALE_HEIGHT_RANGES, keys):
+        if key is not None:
+            by_range[height] = np.full(len(predictions), np.nan)
+            by_range[height][index] = key
+    return ranks, by_range
+
+
 def _class_result(
     truth,
     predictions,
@@ -310,9 +334,10 @@ def _class_result(
     det_boxes,
     gt_resized,
     city,
+    order_key=None,
 ):
     n_gt = int(np.count_nonzero(counted))
-    scores, outcomes, det_image = [], [], []
+    scores, outcomes, det_image, keys = [], [], [], []
     dropped = 0
     for image, g, d in scenes:
         kept = d[keep[d]]
@@ -336,12 +361,16 @@ def _class_result(
         outcomes.extend(match_image(oa.tolist(), ignored.tolist(), box_void))
         scores.extend(predictions.score[kept].tolist())
         det_image.extend([image] * len(kept))
+        if order_key is not None:
+            keys.append(order_key[kept])
     samples = {
         "n_gt": np.bincount(truth.box_image[counted], minlength=truth.n_images).astype(np.int64),
         "det_image": np.asarray(det_image, np.int32),
         "det_score": np.asarray(scores, np.float64),
         "det_outcome": np.asarray(outcomes, np.int8),
     }
+    if order_key is not None:  # the CityPersons script's exact order (level_samples)
+        samples["det_key"] = np.concatenate(keys) if keys else np.zeros(0)
     tp, fp, _, _ = setup_running_counts(samples)
     use = samples["det_outcome"] != -1
     detections = {

@@ -63,6 +63,9 @@ CITYSCALE_SETUPS = tuple(
     )
     for s in SETUPS
 )
+#: The setups' distinct height ranges: the CityPersons script's exact order of integer
+#: scores beyond 2**53 is kept once per range (``loaders.exact_scores``).
+CITYSCALE_HEIGHT_RANGES = tuple(sorted({s.height for s in CITYSCALE_SETUPS}))
 #: ``accumulate``'s ``catIds = [1]``: the one category the city-scale code evaluates.
 CITYSCALE_CATEGORY = 1
 

@@ -19,9 +19,16 @@ So integers beyond 2**53 that float64 ties or rounds can be ordered exactly ther
 scored differently from the engine's float64 order. ``check`` finds whether that happens
 on a file: only a file holding a score of magnitude >= 2**53 (``suspect``) is read a
 second time, loosely, and each class holding one is replayed with pycocotools' own numpy
-calls on the exact values; where that order (per image, capped, or per class) differs
-from the engine's, the file is refused under the COCO order (``matching.match``) naming
-the record. Where the orders agree the numbers are pycocotools' already.
+calls on the exact values, at the caps 100 (``coco``) and none (``recall40``). Where
+that order (per image, capped, or per class) differs from the engine's, the class's
+order is kept for scoring: each detection's rank within its image (``evaluateImg``'s
+full argsort: the cap keeps ranks below it, matching walks them in that order) and an
+order key (``order_keys``: the dense rank of what ``accumulate`` sorted, so the class
+order is key, then image, then rank — the stable sort of the joined lists). Matching
+(``accumulation_order.orders``) and ``MatchRecords.det_key`` carry it into every later
+step; the shown scores and every threshold keep the float64 value. A protocol with
+another cap cannot use it and raises the entry's refusal, naming the record. Where the
+orders agree nothing is kept: the numbers are pycocotools' already.
 
 The CityPersons script (``eval_MR_multisetup.py``, preset ``miss-rate-cityscale``) is a
 pycocotools derivative that reads JSON with Python's ``json`` and makes the same numpy
@@ -30,13 +37,14 @@ detections, keeps the first 1,000, *then* drops those outside the setup's expand
 height range; ``accumulate`` concatenates the kept lists of category id 1 (an image
 with a box and no kept detection gives an empty float64 list). ``check`` replays that
 exactly for each distinct height range of the setups (the file's own ``bbox[3]``, as
-the script's ``loadRes`` sets ``height``), under the key ``"cityscale"``, which
-``pedestrian`` raises for that preset.
+the script's ``loadRes`` sets ``height``), under the key ``"cityscale"``: the ranks and
+one order key list per height range, which ``pedestrian.evaluate_setups`` and the
+setups' samples (``level_samples``) take.
 """
 
 import numpy as np
 
-from ..pedestrian_setups import CITYSCALE_SETUPS, HEIGHT_EXPANSION, category_one
+from ..pedestrian_setups import CITYSCALE_HEIGHT_RANGES, HEIGHT_EXPANSION, category_one
 from . import (
     checks,
     coco_json,
@@ -145,7 +153,8 @@ def check(path, truth, classes, wide):
     exact order raises) and carries that order for every detection of each class
     where it differs (``position``: index into the loaded predictions, ``rank``:
     pycocotools' rank within its image and class, ``key``: ``order_keys``). The
-    ``"cityscale"`` entry is a refusal only (``pedestrian`` raises it)."""
+    ``"cityscale"`` entry (``_cityscale``) carries one key list per height range of
+    the setups, which ``pedestrian.evaluate_setups`` takes."""
     if not len(classes):
         return {}
     rows, big = _affected(path, truth, classes, wide)
@@ -192,24 +201,36 @@ def restrict(conflicts, positions):
         inside = at < len(positions)
         inside[inside] = positions[at[inside]] == position[inside]
         narrowed = dict(entry, position=at[inside].tolist())
-        for name in ("rank", "key"):
-            narrowed[name] = np.asarray(entry[name], np.int64)[inside].tolist()
+        narrowed["rank"] = np.asarray(entry["rank"], np.int64)[inside].tolist()
+        if "key" in entry:
+            narrowed["key"] = np.asarray(entry["key"], np.int64)[inside].tolist()
+        else:  # the cityscale entry: one key list per height range
+            narrowed["keys"] = [
+                None if keys is None else np.asarray(keys, np.int64)[inside].tolist()
+                for keys in entry["keys"]
+            ]
         out[key] = narrowed
     return out
 
 
 def _cityscale(path, truth, rows, big, replayed):
-    """The first place the CityPersons script's order (category id 1 only, cap 1,000
-    per image, then each setup's height filter) differs from float64's, or {}."""
-    ranges = sorted({s.height for s in CITYSCALE_SETUPS})
+    """The CityPersons script's order (category id 1 only, cap 1,000 per image, then
+    each setup's height filter) where it differs from float64's, or {}: the first
+    difference (``check``'s refusal keys), ``position`` and ``rank`` as for a cap, and
+    ``keys``: per height range of ``CITYSCALE_HEIGHT_RANGES``, ``order_keys`` of that range's
+    kept detections (None where its order is float64's)."""
     for k in [k for k in np.flatnonzero(category_one(truth)).tolist() if k in replayed]:
-        mine = {n: v[rows["cls"] == k] for n, v in rows.items()}
-        for lo, hi in ranges:
+        mine = _of_class(rows, k)
+        found = []
+        for lo, hi in CITYSCALE_HEIGHT_RANGES:
             kept = mine["height"] >= lo / HEIGHT_EXPANSION
             kept &= mine["height"] < hi * HEIGHT_EXPANSION
-            found = _replay(path, truth, mine, big, k, CITYSCALE_CAP, kept, _CITY_SCRIPT)
-            if found:
-                return {n: v for n, v in found.items() if n not in ORDER_FIELDS}
+            found.append(_replay(path, truth, mine, big, k, CITYSCALE_CAP, kept, _CITY_SCRIPT))
+        if any(found):
+            entry = dict(next(f for f in found if f))
+            entry["keys"] = [f["key"] if f else None for f in found]
+            del entry["key"]
+            return entry
     return {}
 
 
