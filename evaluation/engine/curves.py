@@ -37,6 +37,26 @@ class Curves:
         s, e = self.bounds[k], self.bounds[k + 1]
         return self.tp[s:e], self.fp[s:e], self.score[s:e]
 
+    def in_score_order(self):
+        """The same counts re-read by descending float64 score (stable, NaN last)
+        within each class, for cuts "score >= t" (``operating_point``): differs from
+        ``self`` only where accumulation order is not by float64 score (pycocotools'
+        exact order of integers beyond 2**53 with int64 wrap-around, or NaN among
+        exact integers: ``MatchRecords.det_key``)."""
+        neg = -self.score
+        by_class = np.repeat(np.arange(len(self.bounds) - 1), np.diff(self.bounds))
+        order = np.lexsort((neg, by_class))  # lexsort is stable; NaN sorts last
+        if np.array_equal(order, np.arange(len(order))):
+            return self
+        starts = self.bounds[:-1][np.diff(self.bounds) > 0]
+        steps = []
+        for running in (self.tp, self.fp):
+            step = np.diff(np.r_[0.0, running])
+            step[starts] = running[starts]  # each class's sums start from zero
+            steps.append(step[order])
+        tp, fp = (_relative(np.cumsum(step), self.bounds) for step in steps)
+        return Curves(tp=tp, fp=fp, bounds=self.bounds, n_pos=self.n_pos, score=self.score[order])
+
 
 @dataclass(frozen=True, eq=False)
 class TruePositivePoints:

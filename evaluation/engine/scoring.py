@@ -318,6 +318,8 @@ def class_parts(records, protocol, *, weights=None, tag_masks=None, score_thresh
     curves = cumulative_counts(
         records, max_detections=protocol.max_detections_limit, weights=weights
     )
+    if records.det_key is not None:  # cuts at a score read float64 order (exact_scores)
+        curves = curves.in_score_order()
     arrays["n_pos"] = curves.n_pos
     arrays["threshold_counts"] = _threshold_counts(curves, score_threshold).T
     tag_images = {}

@@ -144,3 +144,71 @@ def test_tide_base_ap_is_the_scorecards(files):
         if name != wrapped:
             expected = card["per_class"][name]["AP50"]
             assert breakdown["per_class"][name]["AP"] == pytest.approx(expected, abs=1e-12), name
+
+
+def _check_cuts(truth, records, threshold):
+    """``at_threshold`` and ``best_f1`` against the detections scoring >= t, counted
+    one by one (float64 scores; the definition, common practice)."""
+    card = score_records(records, "coco", score_threshold=threshold)
+    is_tp, is_ignored = records.outcomes(0, 0)
+    kept = records.det_rank < 100
+    for k, name in enumerate(truth.classes):
+        mine = kept & (records.det_class == k)
+        score = records.det_score
+
+        def counted(t, mine=mine, score=score):
+            at = mine & (score >= t)
+            return int((at & is_tp).sum()), int((at & ~is_tp & ~is_ignored).sum())
+
+        row = card["per_class"][name]
+        tp, fp = counted(threshold)
+        assert (row["at_threshold"]["tp"], row["at_threshold"]["fp"]) == (tp, fp), name
+        n_pos = row["gt"]
+        if not n_pos or row["best_f1"] is None:
+            continue
+        cuts = np.unique(score[mine][np.isfinite(score[mine])])
+        f1 = [2 * counted(t)[0] / (sum(counted(t)) + n_pos) for t in cuts]
+        assert row["best_f1"]["f1"] == pytest.approx(max(f1), abs=1e-12), name
+        assert row["best_f1"]["threshold"] == cuts[::-1][int(np.argmax(f1[::-1]))], name
+
+
+@pytest.mark.parametrize("threshold", [-1e19, -(2.0**63), 0.5, 6, 8])
+def test_cuts_at_a_score_where_int64_wraps(files, threshold):
+    """pycocotools accumulates -2**63 first (int64 negation wraps, pycocotools
+    2.0.11), so the class's accumulation order is not by float64 score; a cut still
+    keeps the detections scoring >= t."""
+    box = [[0, 0, 10, 10], [20, 0, 10, 10]]
+    split = {
+        "images": [{"id": i, "width": 100, "height": 100} for i in (1, 2)],
+        "categories": [{"id": 1, "name": "a"}],
+        "annotations": [
+            {
+                "id": 2 * i + j + 1,
+                "image_id": i + 1,
+                "category_id": 1,
+                "bbox": box[j],
+                "area": 100,
+                "iscrowd": 0,
+            }
+            for i in range(2)
+            for j in range(2)
+        ],
+    }
+    dets = [
+        {"image_id": 1, "category_id": 1, "bbox": box[0], "score": -(2**63)},
+        {"image_id": 1, "category_id": 1, "bbox": [50, 50, 5, 5], "score": 5},
+        {"image_id": 2, "category_id": 1, "bbox": [50, 50, 5, 5], "score": 7},
+        {"image_id": 2, "category_id": 1, "bbox": box[1], "score": -(2**63) + 1},
+    ]
+    truth, predictions = _coco_equal(files, split, dets)
+    records = match(truth, predictions, "coco")
+    assert records.det_score.tolist() == [-(2.0**63), 7.0, 5.0, -(2.0**63)]
+    _check_cuts(truth, records, threshold)
+
+
+@pytest.mark.parametrize("seed", [4, 5])
+def test_cuts_at_a_score_count_the_detections_at_or_above_it(files, seed):
+    """The same on the mixed file, where the exact orders keep float64's order."""
+    _, split, dets = _inputs(files, seed)
+    truth, predictions = files.load(split, dets)
+    _check_cuts(truth, match(truth, predictions, "coco"), 0.5)

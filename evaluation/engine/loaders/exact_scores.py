@@ -317,8 +317,10 @@ def order_keys(rows, ranked, values):
 
 def _refusal(path, truth, rows, big, theirs, ours, image, k, who=_PYCOCOTOOLS):
     """The refusal naming the detection at the first rank where the orders differ."""
-    at = int(np.flatnonzero(theirs != ours)[0])
-    pair = [int(theirs[at]), int(ours[at])]
+    n = min(len(theirs), len(ours))  # the cap and a filter may keep unequal counts
+    differ = np.flatnonzero(theirs[:n] != ours[:n])
+    at = int(differ[0]) if len(differ) else n
+    pair = [int(order[at]) for order in (theirs, ours) if at < len(order)]
     exact = [i for i in pair if int(rows["record"][i]) in big]
     det = (exact or pair)[0]
     record = int(rows["record"][det])
