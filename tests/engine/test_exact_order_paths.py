@@ -13,7 +13,15 @@ import json
 import numpy as np
 import pytest
 
-from evaluation.engine import COCO_SUMMARY_KEYS, annotate, evaluate, match, score_records
+from evaluation.engine import (
+    COCO_SUMMARY_KEYS,
+    annotate,
+    evaluate,
+    load_predictions,
+    load_truth,
+    match,
+    score_records,
+)
 from evaluation.engine.tide import error_breakdown
 
 from .conftest import as_reference, pycocotools_eval
@@ -212,3 +220,27 @@ def test_cuts_at_a_score_count_the_detections_at_or_above_it(files, seed):
     _, split, dets = _inputs(files, seed)
     truth, predictions = files.load(split, dets)
     _check_cuts(truth, match(truth, predictions, "coco"), 0.5)
+
+
+@pytest.mark.parametrize("low", [0.001, 1])
+@pytest.mark.parametrize("reading", ["caption", "keypoints"])
+def test_records_left_out_beyond_the_cap_keep_the_positions(tmp_path, reading, low):
+    """An unfit record pycocotools never compares (``uncompared``: ranked beyond the
+    cap of 100) is left out of the loaded columns; written first in the file, it
+    shifts every later record's position. The exact order (2**60 + i in ascending
+    file order: float64 ties them all, pycocotools ranks them in reverse) still lands
+    on the right detections: every number equals pycocotools 2.0.11's
+    (``test_coco_reference._compare`` runs it on the same two files). The left-out
+    record still types its image's list: a float (``low`` 0.001) makes it float64,
+    an integer (1) leaves it int64."""
+    from .test_coco_reference import _compare
+    from .test_uncompared import _BAD, _SPLIT, _bad, _good
+
+    changes = next(c for r, c, _ in _BAD if r == reading)
+    dets = [_bad(reading, changes, low)]
+    dets += [_good(reading, i, B + i) for i in range(100)]
+    dets += [_good(reading, i, B + i, image=2, category=2) for i in range(3)]
+    _compare(tmp_path, _SPLIT, dets)
+    truth = load_truth(tmp_path / "truth.json")
+    predictions = load_predictions(tmp_path / "predictions.json", truth)
+    assert len(predictions) == 103 and predictions.score_conflicts["100"]

@@ -52,6 +52,7 @@ from . import (
     json_literals,
     mask_results,
     result_readings,
+    uncompared,
     unread_fields,
 )
 
@@ -108,7 +109,9 @@ _FLOAT, _INT, _BOOL = 0, 1, 2
 def _affected(path, truth, classes, wide):
     """The scored detections of ``classes`` (a second, loose read of the file), as
     columns ``image``, ``cls``, ``record``, ``position`` (index into the loaded
-    predictions' columns: records of unknown images or classes are not there),
+    predictions' columns, -1 for an unfit record a load leaves out beyond the cap —
+    ``uncompared`` — but pycocotools ranks; records of unknown images or classes are
+    in neither),
     ``score`` (float64), ``kind`` (float, int or bool in the file), ``height`` (the
     file's ``bbox[3]``) and ``big``: record -> the exact Python int of every integer
     score of magnitude >= 2**53 (the others are exact in float64)."""
@@ -121,7 +124,10 @@ def _affected(path, truth, classes, wide):
         image, found_i = checks.resolve(path, raw.image_ids, raw.known_images, raw.locate, "", "")
         cls, found_c = checks.resolve(path, raw.class_keys, raw.known_classes, raw.locate, "", "")
         found = found_i & found_c
-        position = loaded + np.cumsum(found) - 1
+        loads = found.copy()
+        if raw.unfit is not None:  # left out of the loaded columns (``uncompared``)
+            loads &= ~uncompared.fields(raw.unfit)
+        position = np.where(loads, loaded + np.cumsum(loads) - 1, -1)
         keep = np.flatnonzero(found)
         keep = keep[wanted[cls[keep]]]
         kinds = np.array([_kind(values[i]) for i in keep.tolist()], np.int8)
@@ -131,7 +137,7 @@ def _affected(path, truth, classes, wide):
         height = np.asarray(columns[2], np.float64).reshape(-1, 4)[keep, 3]
         parts.append((image[keep], cls[keep], base + keep, position[keep], score, kinds, height))
         base += len(columns[3])
-        loaded += int(found.sum())
+        loaded += int(loads.sum())
         collected.clear()
     names = ("image", "cls", "record", "position", "score", "kind", "height")
     rows = {n: np.concatenate([p[j] for p in parts]) for j, n in enumerate(names)}
@@ -284,11 +290,12 @@ def _replay(path, truth, rows, big, k, cap, kept=None, who=_PYCOCOTOOLS):
             return {}
         first = _refusal(path, truth, rows, big, joined[theirs], joined[ours], None, k, who)
     key = order_keys(rows, joined[theirs], negated[theirs])
+    loaded = rows["position"] >= 0
     return {
         **first,
-        "position": rows["position"].tolist(),
-        "rank": rank.tolist(),
-        "key": key.tolist(),
+        "position": rows["position"][loaded].tolist(),
+        "rank": rank[loaded].tolist(),
+        "key": key[loaded].tolist(),
     }
 
 
