@@ -223,10 +223,10 @@ def test_cuts_at_a_score_count_the_detections_at_or_above_it(files, seed):
 
 
 @pytest.mark.parametrize("low", [0.001, 1])
-@pytest.mark.parametrize("reading", ["caption", "keypoints"])
+@pytest.mark.parametrize("reading", ["caption", "mask", "keypoints"])
 def test_records_left_out_beyond_the_cap_keep_the_positions(tmp_path, reading, low):
     """An unfit record pycocotools never compares (``uncompared``: ranked beyond the
-    cap of 100) is left out of the loaded columns; written first in the file, it
+    cap of 100) is left out of the loaded columns; written second in the file, it
     shifts every later record's position. The exact order (2**60 + i in ascending
     file order: float64 ties them all, pycocotools ranks them in reverse) still lands
     on the right detections: every number equals pycocotools 2.0.11's
@@ -237,8 +237,8 @@ def test_records_left_out_beyond_the_cap_keep_the_positions(tmp_path, reading, l
     from .test_uncompared import _BAD, _SPLIT, _bad, _good
 
     changes = next(c for r, c, _ in _BAD if r == reading)
-    dets = [_bad(reading, changes, low)]
-    dets += [_good(reading, i, B + i) for i in range(100)]
+    dets = [_good(reading, i, B + i) for i in range(100)]
+    dets.insert(1, _bad(reading, changes, low))  # loadRes reads its format off the first
     dets += [_good(reading, i, B + i, image=2, category=2) for i in range(3)]
     _compare(tmp_path, _SPLIT, dets)
     truth = load_truth(tmp_path / "truth.json")
