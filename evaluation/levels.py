@@ -294,13 +294,15 @@ def split_counts(truth):
     (the buckets follow the KITTI levels' limits and the pedestrian setups' visibility
     limits, PROTOCOLS.md §8/§9), and for a COCO JSON split read with its ``vis_ratio``
     key how many visibilities came from that key (``visibility_from_vis_ratio``,
-    ``vis_ratio_beside_visibility``; absent when the split was read without it). None
-    when the split gives no attribute and no region."""
+    ``vis_ratio_beside_visibility``; absent when the split was read without it; read
+    ``as-given`` they count what ``miss-rate-cityscale`` takes from the key). None when
+    the split gives no attribute, no region and no ``vis_ratio``."""
     given = {
         name: int((~np.isnan(getattr(truth, name))).sum())
         for name in ("occlusion", "truncation", "visibility")
     }
-    if not any(given.values()) and not len(truth.region_image):
+    from_key = truth.box_counts.get("visibility_from_vis_ratio", 0)
+    if not any(given.values()) and not len(truth.region_image) and not from_key:
         return None
 
     def buckets(values, table, closed_low):

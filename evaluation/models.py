@@ -45,12 +45,13 @@ class BenchmarkSplit(models.Model):
         "out, counted) or strict (such files refused).",
     )
     vis_ratio_reading = models.CharField(
-        max_length=6,
-        default="read",
-        help_text="How an annotation's vis_ratio key was read: read (the visibility where "
-        "visibility is absent, as the city-scale evaluation script reads it; counted) or "
-        "unread (skipped: splits frozen before it was read keep that reading and their "
-        "content hash).",
+        max_length=8,
+        default="as-given",
+        help_text="How an annotation's vis_ratio key was read: as-given (as the city-scale "
+        "evaluation script reads it, for miss-rate-cityscale: any number or boolean, over "
+        "a visibility key too; counted), read (the visibility where visibility is absent, "
+        "within 0-1: splits frozen with engines 2.9-2.10) or unread (skipped: splits "
+        "frozen before it was read). Each keeps its splits' content hash.",
     )
     annotations_left_out = models.JSONField(
         default=dict,

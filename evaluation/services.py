@@ -39,10 +39,12 @@ ENGINE_IDS = "any"
 #: default is pycocotools' reading, counted; ``strict`` refuses such files.
 ANNOTATION_POLICIES = ("reference", "strict")
 #: How a new split reads an annotation's ``vis_ratio`` key (``engine.load_truth
-#: (vis_ratio=)``): as the city-scale evaluation script does. A stored split keeps the
-#: reading it was frozen with (``BenchmarkSplit.vis_ratio_reading``; migration 0022
-#: sets ``unread`` on splits frozen before), so its content hash still matches.
-VIS_RATIO_READING = "read"
+#: (vis_ratio=)``): as the city-scale evaluation script does (``as-given``: any number
+#: or boolean, winning beside a ``visibility``, for miss-rate-cityscale). A stored split
+#: keeps the reading it was frozen with (``BenchmarkSplit.vis_ratio_reading``:
+#: migration 0022 set ``unread`` on splits frozen before the key was read, 0023 keeps
+#: ``read`` on those frozen with engines 2.9-2.10), so its content hash still matches.
+VIS_RATIO_READING = "as-given"
 #: Detections of classes the split does not list (``engine.load_predictions
 #: (unknown_classes=)``): the default drops them as pycocotools does, counted and named
 #: in the result; ``reject`` refuses the file.

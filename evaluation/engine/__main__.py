@@ -16,7 +16,7 @@ from .difficulty import DIFFICULTY_PRESETS, evaluate_levels, levels_table
 from .errors import InputError
 from .evaluate import evaluate
 from .level_provenance import annotate_levels
-from .loaders import BOX_POLICIES, FORMATS, load_predictions, load_truth
+from .loaders import BOX_POLICIES, FORMATS, VIS_RATIO_READINGS, load_predictions, load_truth
 from .pedestrian import MISS_RATE_PRESETS, evaluate_setups, setups_table
 from .protocols import PRESETS, get_protocol, protocol_from_dict
 from .report import table
@@ -111,11 +111,14 @@ def build_parser():
     )
     score.add_argument(
         "--vis-ratio",
-        choices=("read", "unread"),
-        default="read",
-        help="COCO JSON ground truth: read an annotation's vis_ratio key as its visibility "
-        "where visibility is absent (default, as the city-scale evaluation script), or "
-        "skip it (the reading of engines before 2.9.0)",
+        choices=VIS_RATIO_READINGS,
+        default="as-given",
+        help="COCO JSON ground truth, how an annotation's vis_ratio key is read: as-given "
+        "(default: as the city-scale evaluation script, for miss-rate-cityscale: any "
+        "number or boolean as it is, out of 0-1 too, and it wins beside a visibility key; "
+        "null or text refused; other protocols see the read visibility), read (the "
+        "visibility where visibility is absent, out-of-range values left unread: engines "
+        "2.9-2.10) or unread (skipped: engines before 2.9.0)",
     )
     score.add_argument("--cache", metavar="DIR", help="keep parsed input as .npz here")
     score.add_argument("--records", metavar="FILE.npz", help="also write the match records")

@@ -77,6 +77,17 @@ class GroundTruth:
     occlusion: np.ndarray = None  # float64 per box, NaN = not given
     truncation: np.ndarray = None
     visibility: np.ndarray = None
+    #: The visibility the city-scale script compares with its setups' ranges, per box
+    #: (``miss-rate-cityscale`` only): COCO JSON read with ``vis_ratio="as-given"``
+    #: gives an annotation's ``vis_ratio`` as it is (a NaN here is a given NaN), else
+    #: its visibility, else 1.0 (``loaders.attributes``). None under the other
+    #: readings: that protocol then takes ``visibility`` (1.0 where NaN).
+    vis_ratio: np.ndarray = None
+    #: Where the ``ignore`` flag is a COCO JSON ``iscrowd`` strictly between -1 and 1
+    #: (pycocotools ignores such a box); the city-scale code never reads ``iscrowd``,
+    #: so ``miss-rate-cityscale`` leaves these boxes regular. All False where not given
+    #: (CSV and label folders: their ``ignore`` is their own flag).
+    iscrowd_fraction: np.ndarray = None
     region_image: np.ndarray = None  # int32 index into image_ids
     regions: np.ndarray = None  # (m, 4) float64 xywh
 
@@ -88,10 +99,30 @@ class GroundTruth:
             object.__setattr__(self, "ignore_key", np.zeros(self.n_boxes, bool))
         if self.ignore_key_fraction is None:
             object.__setattr__(self, "ignore_key_fraction", np.zeros(self.n_boxes, bool))
+        if self.iscrowd_fraction is None:
+            object.__setattr__(self, "iscrowd_fraction", np.zeros(self.n_boxes, bool))
         if self.region_image is None:
             object.__setattr__(self, "region_image", np.zeros(0, np.int32))
         if self.regions is None:
             object.__setattr__(self, "regions", np.zeros((0, 4)))
+
+    def cityscale_visibility(self):
+        """Per box, the visibility ``miss-rate-cityscale`` compares with the setups'
+        ranges: ``vis_ratio`` when read (``"as-given"``), else ``visibility`` with
+        1.0 where not given."""
+        if self.vis_ratio is not None:
+            return self.vis_ratio
+        return np.where(np.isnan(self.visibility), 1.0, self.visibility)
+
+    def _vis_ratio_says_more(self):
+        """Whether ``vis_ratio`` holds anything ``visibility`` does not say (a value
+        given beside another visibility, out of 0-1, NaN, ``false``): only then is it
+        hashed, so a split whose ``vis_ratio`` keys all read the same under
+        ``"read"`` keeps that reading's hash."""
+        if self.vis_ratio is None:
+            return False
+        derived = np.where(np.isnan(self.visibility), 1.0, self.visibility)
+        return not np.array_equal(self.vis_ratio, derived, equal_nan=True)
 
     def has_attributes(self):
         """Whether any box carries an attribute or any image a don't-care region."""
@@ -134,7 +165,9 @@ class GroundTruth:
         order of records in the source file does not change the hash. Only a split
         with road attributes or don't-care regions adds them (the box columns gain
         occlusion, truncation and visibility; the sorted regions follow), so a split
-        without them keeps the hash it was frozen with.
+        without them keeps the hash it was frozen with. The city-scale ``vis_ratio``
+        column is added only where it says more than the visibility
+        (``_vis_ratio_says_more``).
         """
         cached = self.__dict__.get("_content_hash")
         if cached is not None:  # frozen: computed once (the loaders and annotate ask)
@@ -154,6 +187,7 @@ class GroundTruth:
             + ([_canonical_nan(getattr(self, a)) for a in ATTRIBUTES] if attributes else [])
             + ([self.ignore_key.astype("<f8")] if self.ignore_key.any() else [])
             + ([self.ignore_key_fraction.astype("<f8")] if self.ignore_key_fraction.any() else [])
+            + ([_canonical_nan(self.vis_ratio)] if self._vis_ratio_says_more() else [])
         )
         order = np.lexsort(columns.T[::-1])
         digest.update(np.ascontiguousarray(columns[order]).tobytes())

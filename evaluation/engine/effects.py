@@ -109,7 +109,9 @@ MISS_RATE_EFFECTS = {
     "the curve; it moves the miss rate only when scores tie",
     "area_source": "setups sort boxes by height and visibility, not area; a difference "
     "here says that one result is not a miss-rate one, or that the splits' visibility was "
-    "read from other keys (one read an annotation's vis_ratio key, the other did not)",
+    "read from other keys (one read an annotation's vis_ratio key, the other did not; or "
+    "one read it as given, out of 0-1 too and over a visibility key, as the city-scale "
+    "script does, the other only where no visibility is given and within 0-1)",
     "size_ranges": "setups have no size buckets; a difference here says that one result is "
     "not a miss-rate one",
     "miss_rate": "how the miss rate is read at each FPPI point: the rule where the curve "

@@ -70,6 +70,20 @@ def _kitti_record(name, truth):
     }
 
 
+def _visibility_source(truth, city):
+    """Which annotation key the setups' visibility came from, by the split's reading
+    (``load_truth(vis_ratio=)``): ``as-given`` gives ``truth.vis_ratio``, ``read`` the
+    counts alone, ``unread`` neither."""
+    if "visibility_from_vis_ratio" not in truth.box_counts:
+        return "an annotation's visibility key; a vis_ratio key is not read"
+    if city and truth.vis_ratio is not None:
+        return (
+            "an annotation's vis_ratio key as given (any number or boolean, out of 0-1 "
+            "too), also beside a visibility key, else its visibility key"
+        )
+    return "an annotation's visibility key, else its vis_ratio key within 0-1"
+
+
 def _miss_rate_record(name, truth):
     p = get_miss_rate_protocol(name)
     cap = p.max_detections
@@ -115,11 +129,7 @@ def _miss_rate_record(name, truth):
         "pixel_offset": 0,
         "area_source": {
             "truth": "not read: setups by box height and visibility ("
-            + (
-                "an annotation's visibility key, else its vis_ratio key"
-                if "visibility_from_vis_ratio" in truth.box_counts
-                else "an annotation's visibility key; a vis_ratio key is not read"
-            )
+            + _visibility_source(truth, city)
             + "; how many from vis_ratio: counts.boxes.truth)",
             "predictions": "not read: detections by height (expanded range)",
         },

@@ -11,9 +11,12 @@ city-scale benchmark: ``eval_MR_multisetup.py`` ``evaluateImg`` / ``accumulate``
   v in [0.65, inf); heavy occlusion h in [50, inf), v in [0.20, 0.65]; all
   h in [20, inf), v in [0.20, inf). A visibility not given counts as fully visible
   (the toolbox reads a box without a visible part as v = inf, which lands in the same
-  setups). Boxes outside the setup, boxes flagged crowd/ignore/difficult, boxes of a
-  neighbouring label (``person?``, ``people``, ``ignore``: the toolbox's labels other
-  than ``person``) and the split's don't-care regions are *ignore boxes*.
+  setups). The city-scale reading takes the script's ``vis_ratio``
+  (``GroundTruth.cityscale_visibility``) and its test (``_prepare``: out when
+  h < lo, h > hi, v < lo or v > hi), so a NaN is inside. Boxes outside the setup,
+  boxes flagged crowd/ignore/difficult, boxes of a neighbouring label (``person?``,
+  ``people``, ``ignore``: the toolbox's labels other than ``person``) and the split's
+  don't-care regions are *ignore boxes*.
 * Detections [``dbEval`` ``evalAlgs``]: kept only if h_lo / 1.25 <= h_det < h_hi * 1.25
   (the expanded height range avoids boundary effects, §3.3 of the TPAMI paper).
 * Matching [``evalRes``], per image, detections by score descending (stable), ground
@@ -85,6 +88,7 @@ from .pedestrian_setups import (  # noqa: F401  (re-exported: the engine's API)
     category_one,
     get_miss_rate_protocol,
     ignore_flags,
+    setup_visibility,
 )
 
 
@@ -240,7 +244,8 @@ def evaluate_setups_with_samples(truth, predictions, protocol="miss-rate"):
     flagged = ignore_flags(truth, protocol)
     void = truth.zero_id_boxes() if protocol.variant == "cityscale" else None
     height = truth.boxes[:, 3]
-    visibility = np.where(np.isnan(truth.visibility), 1.0, truth.visibility)
+    visibility = setup_visibility(truth, protocol)
+    script = protocol.variant == "cityscale"
     det_height = predictions.boxes[:, 3]
     det_boxes = predictions.boxes
     gt_resized = None
@@ -272,7 +277,7 @@ def evaluate_setups_with_samples(truth, predictions, protocol="miss-rate"):
                 d = d[: protocol.max_detections]
             scenes.append((image, g, d))
         for setup in protocol.setups:
-            inside = setup.counts(height, visibility, protocol.height_upper_open)
+            inside = setup.counts(height, visibility, protocol.height_upper_open, script)
             counted = own & inside & ~flagged
             keep = setup.keeps(det_height, HEIGHT_EXPANSION)
             # the city-scale code: boxes of id 0, and in-setup boxes whose fractional
@@ -407,10 +412,11 @@ def setup_counts(truth, protocol="miss-rate"):
     ``evaluate_setups``), for a split's page: ``{setup: {class: n}}``."""
     protocol = get_miss_rate_protocol(protocol)
     flagged = ignore_flags(truth, protocol)
-    visibility = np.where(np.isnan(truth.visibility), 1.0, truth.visibility)
+    visibility = setup_visibility(truth, protocol)
+    script = protocol.variant == "cityscale"
     out = {}
     for setup in protocol.setups:
-        inside = setup.counts(truth.boxes[:, 3], visibility, protocol.height_upper_open)
+        inside = setup.counts(truth.boxes[:, 3], visibility, protocol.height_upper_open, script)
         inside &= ~flagged
         out[setup.name] = {
             truth.classes[k]: int(np.count_nonzero(inside & (truth.box_class == k)))

@@ -26,10 +26,14 @@ class Setup:
     height: tuple
     visibility: tuple
 
-    def counts(self, height, visibility, upper_open=False):
+    def counts(self, height, visibility, upper_open=False, script=False):
         """Per box: inside the setup (closed ranges; ``upper_open``: h < h_hi, as
-        ``dbEval``'s ``filterGtFun``)."""
+        ``dbEval``'s ``filterGtFun``). ``script``: the city-scale code's test
+        (``_prepare``: out when ``h < lo or h > hi or v < lo or v > hi``), so a NaN
+        compares as inside; for numbers the same closed ranges."""
         (h_lo, h_hi), (v_lo, v_hi) = self.height, self.visibility
+        if script:
+            return ~((height < h_lo) | (height > h_hi) | (visibility < v_lo) | (visibility > v_hi))
         inside = (height >= h_lo) & (visibility >= v_lo)
         if h_hi is not None:
             inside &= (height < h_hi) if upper_open else (height <= h_hi)
@@ -142,14 +146,15 @@ MISS_RATE = MissRateProtocol(
 #: ``evaluateImg``, ``accumulate``, ``summarize``; ``coco.py`` ``loadRes``). How the
 #: project's fields become its inputs (a mapping, not a rule of the script): its
 #: ``height`` is the box's h (its own files hold ``bbox[3]`` there; ``loadRes`` sets a
-#: detection's to ``bbox[3]``); its ``vis_ratio`` is ``visibility`` (1.0 when not
-#: given; a ``vis_ratio`` key is not read); its ``ignore`` is the ``ignore`` key (COCO
-#: JSON, its value: a fraction such as 0.5 ignores the box but ``int(0.5) = 0`` makes its
-#: overlap plain IoU) or column (CSV); neighbouring labels and don't-care regions are
-#: category-1 boxes with ``ignore: 1``; its images are the split's. Known deviations: a
-#: COCO ``iscrowd`` strictly between -1 and 1 shares CSV's ``ignore`` column and is an
-#: ignore box here (the script never reads ``iscrowd``); an empty detections list
-#: scores where ``loadRes`` raises.
+#: detection's to ``bbox[3]``); its ``vis_ratio`` is ``GroundTruth.cityscale_visibility``
+#: (read ``"as-given"``: the annotation's ``vis_ratio`` as it is, beside a
+#: ``visibility`` too; else the visibility; 1.0 when neither is given); its ``ignore``
+#: is the ``ignore`` key (COCO JSON, its value: a fraction such as 0.5 ignores the box
+#: but ``int(0.5) = 0`` makes its overlap plain IoU) or column (CSV), never ``iscrowd``
+#: (a fractional one leaves the box regular, as the script never reads it);
+#: neighbouring labels and don't-care regions are category-1 boxes with ``ignore: 1``;
+#: its images are the split's. Known deviation: an empty detections list scores where
+#: ``loadRes`` raises.
 MISS_RATE_CITYSCALE = MissRateProtocol(
     name="miss-rate-cityscale",
     version=2,
@@ -209,7 +214,18 @@ def ignore_flags(truth, protocol):
     reading takes crowd, ignore and difficult flags; the city-scale code reads only an
     annotation's ``ignore`` key (``_prepare``: ``gt['ignore'] if 'ignore' in gt else
     0``), never ``iscrowd`` — the ``ignore_key`` of COCO JSON and the ``ignore`` column
-    of CSV (which in COCO JSON holds an ``iscrowd`` strictly between -1 and 1)."""
+    of CSV (in COCO JSON that flag is an ``iscrowd`` strictly between -1 and 1,
+    ``iscrowd_fraction``, which the city-scale code does not read: not an ignore box)."""
     if protocol.variant == "cityscale":
-        return truth.ignore_key | truth.ignore
+        return truth.ignore_key | (truth.ignore & ~truth.iscrowd_fraction)
     return truth.crowd | truth.ignore | truth.difficult | truth.ignore_key
+
+
+def setup_visibility(truth, protocol):
+    """Per box, the visibility the setups of ``protocol`` compare: the city-scale
+    script's (``GroundTruth.cityscale_visibility``), or ``visibility`` with 1.0 where
+    not given (the toolbox and Caltech readings: the ``visibility`` key, else a
+    ``vis_ratio`` within 0-1, whatever the reading)."""
+    if protocol.variant == "cityscale":
+        return truth.cityscale_visibility()
+    return np.where(np.isnan(truth.visibility), 1.0, truth.visibility)

@@ -41,6 +41,7 @@ _BOX_FIELDS = (
     "ignore",
     "ignore_key",
     "ignore_key_fraction",
+    "iscrowd_fraction",
     "occlusion",
     "truncation",
     "visibility",
@@ -75,6 +76,7 @@ def truth_slice(truth, start, stop):
     sliced = dataclasses.replace(
         truth,
         **{name: getattr(truth, name)[box_index] for name in _BOX_FIELDS},
+        vis_ratio=None if truth.vis_ratio is None else truth.vis_ratio[box_index],
         region_image=truth.region_image[regions],
         regions=truth.regions[regions],
     )

@@ -181,6 +181,9 @@ def toolbox(scene, setup, caltech=False):
 # ignore flags do not carry into the next. Inputs are the files as parsed JSON: the
 # ground truth a dict with ``images``, ``annotations`` (each with the script's keys
 # ``height`` and ``vis_ratio``, optional ``ignore``), ``categories``; the results a list.
+# Values pass into ``_prepare``'s comparisons as Python holds them, as in the script: a
+# NaN ``vis_ratio`` is in no range's outside, a bool compares as 0/1, null or text raise
+# TypeError; ``visibility`` and ``iscrowd`` are never read.
 
 HT_RNG = [[50, 1e5**2], [50, 75], [50, 1e5**2], [20, 1e5**2]]  # Params.HtRng
 VIS_RNG = [[0.65, 1e5**2], [0.65, 1e5**2], [0.2, 0.65], [0.2, 1e5**2]]  # Params.VisRng

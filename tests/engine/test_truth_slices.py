@@ -4,8 +4,9 @@ msgspec gives: the same columns on valid files, and on files with a type error (
 wrong type anywhere, a missing field or array, an id beyond 64 bits, a number out of
 range, invalid UTF-8, a repeated key) the same message naming record and field.
 Slices of 16 and 64 bytes make every cut land everywhere. Read with the ``vis_ratio``
-key (``vis_ratio=True``) and without (then the key is skipped like any unknown key,
-whatever it holds, and the column is all NaN)."""
+key (``vis_ratio=True``), as given (``"as-given"``: numbers and booleans, null
+refused) and without (then the key is skipped like any unknown key, whatever it holds,
+and the column is all NaN)."""
 
 import json
 import random
@@ -34,12 +35,28 @@ class _DatasetWithVisRatio(msgspec.Struct):
     dont_care: list[coco_records._Region] = []
 
 
+class _DatasetVisRatioAsGiven(_DatasetWithVisRatio):
+    annotations: list[coco_records._AnnotationVisRatioAsGiven] = []
+
+
+def _as_given(values):
+    kind = [0 if v is msgspec.UNSET else 2 if type(v) is bool else 1 for v in values]
+    numbers = [np.nan if k == 0 else float(v) for k, v in zip(kind, values)]
+    return {
+        "vis_ratio": np.array(numbers, np.float64),
+        "vis_ratio_kind": np.array(kind, np.int8),
+    }
+
+
 def _whole(path, data, vis_ratio=False):
     """The reference: one msgspec decode of the whole document, then the columns;
     NaN/Infinity and out-of-range numbers (1e999) read as Python's json reads them
     (``json_literals.decode`` on the whole document)."""
     try:
-        d = json_literals.decode(data, _DatasetWithVisRatio if vis_ratio else coco_records._Dataset)
+        kind = {False: coco_records._Dataset, True: _DatasetWithVisRatio}.get(
+            vis_ratio, _DatasetVisRatioAsGiven
+        )
+        d = json_literals.decode(data, kind)
     except msgspec.ValidationError as e:
         return str(coco_json.validation_error(path, e, top_level_list=False))
     except msgspec.DecodeError as e:
@@ -83,7 +100,11 @@ def _whole(path, data, vis_ratio=False):
         "occlusion": opt(a.occlusion for a in anns),
         "truncation": opt(a.truncation for a in anns),
         "visibility": opt(a.visibility for a in anns),
-        "vis_ratio": opt(a.vis_ratio for a in anns) if vis_ratio else np.full(len(anns), np.nan),
+        "vis_ratio": opt(a.vis_ratio for a in anns)
+        if vis_ratio is True
+        else np.full(len(anns), np.nan),
+        "vis_ratio_kind": np.zeros(len(anns), np.int8),
+        **(_as_given([a.vis_ratio for a in anns]) if vis_ratio == "as-given" else {}),
         "region_image_ids": np.array(whole["dont_care", "image_id"], np.int64),
         "regions": np.array([r.bbox for r in d.dont_care], np.float64).reshape(-1, 4),
     }
@@ -165,7 +186,7 @@ def _document(rng):
     return text.replace('"@@BAD@@"', rng.choice(BAD_VALUES))
 
 
-@pytest.mark.parametrize("vis_ratio", [False, True])
+@pytest.mark.parametrize("vis_ratio", [False, True, "as-given"])
 @pytest.mark.parametrize("scan_first", [False, True])
 @pytest.mark.parametrize("chunk", [16, 64])
 @pytest.mark.parametrize("seed", range(4))
@@ -182,6 +203,8 @@ def test_sliced_decoding_agrees_with_a_whole_document_decode(
     for n in range(150):
         data = _document(rng).encode("utf-8", "surrogateescape")
         data = data.replace("\xff".encode(), b"\xff")  # invalid UTF-8 inside a string
+        if vis_ratio == "as-given":  # a null is refused there: a boolean read instead
+            data = data.replace(b'"vis_ratio": null', b'"vis_ratio": true')
         path = files.write(f"split{n}.json", "")
         with open(path, "wb") as f:
             f.write(data)

@@ -7,7 +7,9 @@ transliteration (written from the published code's logic). The engine reads such
 as it is — no mapping of keys — and must give the script's numbers (random files,
 hypothesis), and a worked example shows a heavily occluded person moving from the
 reasonable setup to the heavy one. The reading of files frozen before the key was read
-(``vis_ratio="unread"``) keeps their columns and content hash.
+(``vis_ratio="unread"``) keeps their columns and content hash; the ``read`` reading
+(engines 2.9-2.10) is pinned where its own rules are tested (the default ``as-given``:
+test_vis_ratio_as_given.py).
 """
 
 import json
@@ -153,7 +155,10 @@ def test_a_heavily_occluded_person_moves_from_reasonable_to_heavy(tmp_path):
     assert truth.box_counts["visibility_from_vis_ratio"] == 5
     assert truth.box_counts["vis_ratio_beside_visibility"] == 0
     record = level_record("miss-rate-cityscale", truth, load_predictions(dt, truth), ours)
-    assert "else its vis_ratio key" in record["area_source"]["truth"]
+    assert "vis_ratio key as given" in record["area_source"]["truth"]
+    read = load_truth(gt, vis_ratio="read")
+    record = level_record("miss-rate-cityscale", read, load_predictions(dt, read), ours)
+    assert "else its vis_ratio key within 0-1" in record["area_source"]["truth"]
     record = level_record("miss-rate-cityscale", old, load_predictions(dt, old), before)
     assert "a vis_ratio key is not read" in record["area_source"]["truth"]
     assert "visibility_from_vis_ratio" not in old.box_counts
@@ -236,7 +241,8 @@ def _split(*annotations):
 
 
 def test_visibility_wins_beside_vis_ratio_and_bad_values_are_left_unread(tmp_path):
-    """Our rule (documented in DEVELOPERS.md): a readable ``visibility`` wins and the
+    """The ``read`` reading (engines 2.9-2.10; ``as-given`` is tested in
+    test_vis_ratio_as_given.py). Our rule (documented in DEVELOPERS.md): a readable ``visibility`` wins and the
     ``vis_ratio`` beside it is counted; a ``visibility`` left unread (out of 0-1 or of
     another type) is as if absent, so ``vis_ratio`` is read; a ``vis_ratio`` out of 0-1
     or of another type is left unread like a ``visibility`` would be (counted in
@@ -255,7 +261,7 @@ def test_visibility_wins_beside_vis_ratio_and_bad_values_are_left_unread(tmp_pat
             {},
         ),
     )
-    truth = load_truth(gt)
+    truth = load_truth(gt, vis_ratio="read")
     np.testing.assert_array_equal(
         truth.visibility, [0.3, 0.8, 0.3, 0.3, np.nan, np.nan, np.nan, np.nan, np.nan]
     )
@@ -273,7 +279,7 @@ def test_strict_refuses_a_bad_vis_ratio_naming_record_and_field(tmp_path, value,
     text = json.dumps(_split({}, {"vis_ratio": 0.5}, {"vis_ratio": "@"}))
     gt.write_text(text.replace('"@"', value))
     with pytest.raises(InputError) as e:
-        load_truth(gt, annotations="strict")
+        load_truth(gt, annotations="strict", vis_ratio="read")
     assert e.value.record == "annotations[2]" and e.value.field == "vis_ratio"
     assert message in e.value.message
     assert load_truth(gt, vis_ratio="unread", annotations="strict").n_boxes == 3
@@ -290,7 +296,7 @@ def test_the_unread_reading_keeps_the_columns_and_hash_of_before(tmp_path):
     assert a.content_hash() == b.content_hash()
     assert a.box_counts == b.box_counts
     assert "visibility_from_vis_ratio" not in a.box_counts
-    read = load_truth(tmp_path / "a.json")
+    read = load_truth(tmp_path / "a.json", vis_ratio="read")
     assert read.content_hash() != a.content_hash()
     with pytest.raises(InputError, match="unknown vis_ratio reading"):
         load_truth(tmp_path / "a.json", vis_ratio="yes")

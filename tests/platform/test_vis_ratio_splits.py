@@ -6,7 +6,7 @@ A split frozen before the engine read ``vis_ratio`` was hashed without it: migra
 0022 gives such rows ``vis_ratio_reading = "unread"`` and ``services.load_truth_of``
 reads them so, so the content hash still matches ``BenchmarkSplit.sha256`` (no
 ``ContentMismatch``) and they score as before. A new split reads the key (counted on
-the split page and API). Run on PostgreSQL with CI=true, as the other platform tests.
+the split page and API; since migration 0023 as given: test_vis_ratio_as_given_splits.py). Run on PostgreSQL with CI=true, as the other platform tests.
 """
 
 import json
@@ -123,7 +123,7 @@ def test_a_new_split_reads_vis_ratio_and_says_so(client, users, run_tasks, tmp_p
     split = evaluation_services.load_split(
         name="city-day", revision=1, truth=upload("city-day.json", truth)
     )
-    assert split.vis_ratio_reading == "read"
+    assert split.vis_ratio_reading == "as-given"
     assert split.sha256 == engine.load_truth(path, ids="any").content_hash()
     assert split.sha256 != engine.load_truth(path, ids="any", vis_ratio="unread").content_hash()
     n = len(truth["annotations"])
@@ -136,10 +136,10 @@ def test_a_new_split_reads_vis_ratio_and_says_so(client, users, run_tasks, tmp_p
 
     client.force_login(users["engineer"])
     page = client.get(reverse("split", args=[split.pk])).content.decode()
-    assert "visibility, else vis_ratio" in page
+    assert "vis_ratio as given, else visibility" in page
     assert f'<span id="visibility-from-vis-ratio">{n}</span>' in page
     body = client_for(users["engineer"]).get(API + f"splits/{split.pk}/").json()
-    assert body["vis_ratio_reading"] == "read"
+    assert body["vis_ratio_reading"] == "as-given"
 
     found = _score(split, detections_for(truth), run_tasks, ["miss-rate"])
     card = found["miss-rate"].scorecard

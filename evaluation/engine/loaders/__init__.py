@@ -49,7 +49,7 @@ __all__ = [
 ]
 
 #: Bumped when the parsed columns change shape or meaning: old cache entries are unused.
-CACHE_SCHEMA = 9
+CACHE_SCHEMA = 10
 UNKNOWN_CLASS_POLICIES = ("reject", "drop")
 #: Detections of images the split does not hold: refused (default; pycocotools'
 #: ``loadRes`` asserts every result image is in the set) or, for re-scoring stored
@@ -111,7 +111,7 @@ def load_truth(
     boxes="keep",
     ids="any",
     annotations="reference",
-    vis_ratio="read",
+    vis_ratio="as-given",
 ):
     """Load a benchmark split.
 
@@ -133,12 +133,18 @@ def load_truth(
         categories are left out, all counted (``annotation_index``); ``strict`` (a
         platform option; its default is ``reference`` too) refuses them naming the
         record.
-    vis_ratio : ``"read"`` (default) or ``"unread"``, COCO JSON only
-        ``read``: an annotation's ``vis_ratio`` key (the city-scale benchmark's, as its
-        ``eval_MR_multisetup.py`` reads it) is the visibility where ``visibility`` is
-        absent, counted in ``box_counts`` (``attributes.VISIBILITY_SOURCE_COUNTS``,
-        every format); ``unread``: the key is skipped, the reading of splits frozen
-        before it was read (their content hash unchanged).
+    vis_ratio : ``"as-given"`` (default), ``"read"`` or ``"unread"``, COCO JSON only
+        How an annotation's ``vis_ratio`` key (the city-scale benchmark's) is read.
+        ``as-given``: as its ``eval_MR_multisetup.py`` ``_prepare`` reads it, for
+        ``miss-rate-cityscale`` (``GroundTruth.vis_ratio``): any number or boolean as
+        it is (out of 0-1, NaN, infinite; ``true`` is 1), winning beside a
+        ``visibility``; null or text refused naming the record and field (the script
+        raises); every other protocol sees the ``read`` visibility. ``read`` (splits
+        frozen with engines 2.9-2.10): the visibility where ``visibility`` is absent,
+        a value outside 0-1 or of another type left unread. Both counted in
+        ``box_counts`` (``attributes.VISIBILITY_SOURCE_COUNTS``, every format).
+        ``unread``: the key is skipped, the reading of splits frozen before it was
+        read. Each keeps the content hash of the splits frozen with it.
     """
     _exists(path)
     checks.check_policy(path, boxes)
@@ -169,7 +175,7 @@ def load_truth(
     }
     if annotations != "reference":  # the default keeps the keys of existing entries
         key["annotations"] = annotations
-    if vis_ratio == "read":  # entries from before the key was read hold "unread"
+    if vis_ratio != "unread":  # entries from before the key was read hold "unread"
         key["vis_ratio"] = vis_ratio
     build = lambda: truth_columns.read_truth(  # noqa: E731
         path, images, fmt, classes, boxes, ids, annotations, vis_ratio
@@ -178,7 +184,7 @@ def load_truth(
 
 
 #: How an annotation's ``vis_ratio`` key is read (``load_truth(vis_ratio=)``).
-VIS_RATIO_READINGS = ("read", "unread")
+VIS_RATIO_READINGS = ("as-given", "read", "unread")
 
 #: ``any``: JSON ids of any size (pycocotools keeps Python ints); ``int64``: refused
 #: outside signed 64 bits.

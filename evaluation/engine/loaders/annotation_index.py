@@ -60,6 +60,7 @@ PER_ANNOTATION = (
     "truncation",
     "visibility",
     "vis_ratio",
+    "vis_ratio_kind",
 )
 
 

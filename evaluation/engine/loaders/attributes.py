@@ -11,11 +11,23 @@ In COCO-style JSON the attributes are annotation keys ``occlusion``, ``truncatio
 "bbox"}``. Read with ``vis_ratio="read"`` (``load_truth``'s default), an annotation's
 ``vis_ratio`` key (the city-scale benchmark's name, read by its ``eval_MR_multisetup.py``
 ``_prepare``) is the visibility of a box without a readable ``visibility``: where
-both are given ``visibility`` wins (the key every protocol here reads; counted as
-``vis_ratio_beside_visibility``), and each ``vis_ratio`` read is counted
-(``visibility_from_vis_ratio``). A ``vis_ratio`` outside 0-1 or of another type is
-treated as a ``visibility`` would be. In a boxes CSV they are columns of those names, and a row with
-``dont_care`` = 1 is a region (its label is not read).
+both are given ``visibility`` wins (counted as ``vis_ratio_beside_visibility``), and
+each ``vis_ratio`` read is counted (``visibility_from_vis_ratio``). A ``vis_ratio``
+outside 0-1 or of another type is treated as a ``visibility`` would be.
+
+Read with ``vis_ratio="as-given"`` (``load_truth``'s default since engine 2.14.0) the
+``visibility`` column is the one ``"read"`` gives (the key the toolbox, Caltech and
+KITTI readings take, so their numbers do not change), and ``GroundTruth.vis_ratio``
+holds the city-scale script's value per box for ``miss-rate-cityscale``: the
+annotation's ``vis_ratio`` exactly as given (any number, NaN and infinities too, or a
+boolean as 0/1; null or text refused upstream) wherever the key is present — beside a
+``visibility`` too, as the script never reads that key — else the ``visibility``,
+else 1.0. Counted: ``visibility_from_vis_ratio`` boxes took their ``vis_ratio``,
+``vis_ratio_beside_visibility`` of them overrode a readable ``visibility``; a
+``vis_ratio`` is never left unread (nor refused under ``annotations="strict"``).
+
+In a boxes CSV they are columns of those names, and a row with ``dont_care`` = 1 is a
+region (its label is not read).
 """
 
 import numpy as np
@@ -29,12 +41,20 @@ def _column(cols, name, n):
 
 
 #: Where the visibility came from, in ``GroundTruth.box_counts`` of a split read with
-#: ``vis_ratio="read"`` (every format; 0 where the key cannot occur).
+#: ``vis_ratio="read"`` or ``"as-given"`` (every format; 0 where the key cannot occur).
 VISIBILITY_SOURCE_COUNTS = ("visibility_from_vis_ratio", "vis_ratio_beside_visibility")
 
 
 def finish(
-    path, cols, image_ids, box_locate, region_path, region_locate, unread=None, sources=None
+    path,
+    cols,
+    image_ids,
+    box_locate,
+    region_path,
+    region_locate,
+    unread=None,
+    sources=None,
+    as_given=False,
 ):
     """Checked attribute columns and regions resolved to image indices, as
     ``GroundTruth`` keyword arguments. ``cols["region_image_ids"]`` must already be
@@ -45,7 +65,9 @@ def finish(
     region left out — and counted (``unread_attributes``, ``unread_dont_care``);
     without, it is refused naming the record and the field. ``cols["vis_ratio"]``
     (optional) fills the visibility where it is NaN after its checks; ``sources`` (a
-    counts dict, optional) gets ``VISIBILITY_SOURCE_COUNTS``."""
+    counts dict, optional) gets ``VISIBILITY_SOURCE_COUNTS``. With ``as_given``
+    (``cols["vis_ratio_kind"]``: 0 absent, 1 number, 2 boolean) the result's
+    ``vis_ratio`` is the city-scale script's column (module docstring), else None."""
     n = len(cols["boxes"])
     occlusion = _column(cols, "occlusion", n)
     truncation = _column(cols, "truncation", n)
@@ -80,20 +102,35 @@ def finish(
         lambda i: f"the visible fraction lies within 0-1, got {visibility[i]:g}",
     )
     vis_ratio = _column(cols, "vis_ratio", n)
-    vis_ratio = bad(
-        vis_ratio,
-        ~np.isnan(vis_ratio) & ~((vis_ratio >= 0) & (vis_ratio <= 1)),
-        "vis_ratio",
-        lambda i: f"the visible fraction lies within 0-1, got {vis_ratio[i]:g}",
-    )
-    from_ratio = np.isnan(visibility) & ~np.isnan(vis_ratio)
-    if sources is not None:
-        sources["visibility_from_vis_ratio"] = int(from_ratio.sum())
-        sources["vis_ratio_beside_visibility"] = int(
-            (~np.isnan(visibility) & ~np.isnan(vis_ratio)).sum()
+    script = None
+    if as_given:
+        kind = np.asarray(cols.get("vis_ratio_kind", np.zeros(n, np.int8)))
+        given = kind > 0
+        script = np.where(given, vis_ratio, np.where(np.isnan(visibility), 1.0, visibility))
+        # the "read" column for the other readings: a number within 0-1, unread silently
+        with checks.ieee():
+            usable = (kind == 1) & (vis_ratio >= 0) & (vis_ratio <= 1)
+        fallback = np.where(usable, vis_ratio, np.nan)
+        if sources is not None:
+            sources["visibility_from_vis_ratio"] = int(given.sum())
+            sources["vis_ratio_beside_visibility"] = int((given & ~np.isnan(visibility)).sum())
+    else:
+        fallback = bad(
+            vis_ratio,
+            ~np.isnan(vis_ratio) & ~((vis_ratio >= 0) & (vis_ratio <= 1)),
+            "vis_ratio",
+            lambda i: f"the visible fraction lies within 0-1, got {vis_ratio[i]:g}",
         )
+        if sources is not None:
+            sources["visibility_from_vis_ratio"] = int(
+                (np.isnan(visibility) & ~np.isnan(fallback)).sum()
+            )
+            sources["vis_ratio_beside_visibility"] = int(
+                (~np.isnan(visibility) & ~np.isnan(fallback)).sum()
+            )
+    from_ratio = np.isnan(visibility) & ~np.isnan(fallback)
     if from_ratio.any():
-        visibility = np.where(from_ratio, vis_ratio, visibility)
+        visibility = np.where(from_ratio, fallback, visibility)
     region_ids = cols.get("region_image_ids")
     regions = np.asarray(cols.get("regions", np.zeros((0, 4))), np.float64).reshape(-1, 4)
     if region_ids is None or len(regions) == 0:
@@ -122,6 +159,7 @@ def finish(
         "occlusion": occlusion,
         "truncation": truncation,
         "visibility": visibility,
+        "vis_ratio": script,
         "region_image": region_image.astype(np.int32),
         "regions": regions,
     }

@@ -48,6 +48,15 @@ class _AnnotationWithVisRatio(_Annotation, gc=False):
     vis_ratio: float | None = None
 
 
+class _AnnotationVisRatioAsGiven(_Annotation, gc=False):
+    """An annotation read with its ``vis_ratio`` as the city-scale script reads it
+    (``vis_ratio="as-given"``): any number or boolean (``_prepare`` compares it with
+    the setups' ranges as it is); null, text or anything else is refused (there
+    Python raises on the comparison); absent: ``UNSET``."""
+
+    vis_ratio: float | bool | msgspec.UnsetType = msgspec.UNSET
+
+
 class _Region(msgspec.Struct, gc=False):
     image_id: Id
     bbox: tuple[float, float, float, float]

@@ -15,6 +15,7 @@ from . import json_literals, json_syntax, unread_fields
 from .checks import text_start
 from .coco_records import (
     _Annotation,
+    _AnnotationVisRatioAsGiven,
     _AnnotationWithVisRatio,
     _Category,
     _Dataset,
@@ -53,8 +54,10 @@ def read_truth(path, wide=False, loose=False, vis_ratio=False):
     beyond ``SYNTAX_FIRST_BYTES``, gets the syntax check alone first. With ``loose``,
     values pycocotools never reads are left unread when of another type
     (``unread_fields``; counted in the columns' ``unread_counts``). With
-    ``vis_ratio`` the annotations' ``vis_ratio`` key is read too (column ``vis_ratio``,
-    NaN where absent; ``attributes.finish`` decides which key is the visibility);
+    ``vis_ratio`` (``True`` or ``"read"``) the annotations' ``vis_ratio`` key is read
+    too (column ``vis_ratio``, NaN where absent; ``attributes.finish`` decides which key
+    is the visibility); with ``"as-given"`` any number or boolean is read (booleans as
+    0/1) and ``vis_ratio_kind`` tells absent (0), a number (1) and a boolean (2);
     without, it is skipped like any unknown key and the column is all NaN.
     """
     with open(path, "rb") as f:
@@ -141,10 +144,15 @@ class _Records:
     syntax is known to be valid, so a syntax error anywhere still comes first."""
 
     def __init__(self, path, wide=False, totals=None, loose=False, vis_ratio=False):
-        self.path, self.wide, self.loose, self.vis_ratio = path, wide, loose, vis_ratio
+        self.path, self.wide, self.loose = path, wide, loose
+        self.vis_ratio = bool(vis_ratio) and vis_ratio != "unread"
         self.types = dict(_RECORDS)
         self.loose_types = dict(unread_fields.LOOSE)
-        if vis_ratio:
+        self.as_given = vis_ratio == "as-given"
+        if self.as_given:
+            self.types["annotations"] = list[_AnnotationVisRatioAsGiven]
+            self.loose_types["annotations"] = unread_fields.LOOSE_VIS_RATIO_AS_GIVEN
+        elif vis_ratio and vis_ratio != "unread":
             self.types["annotations"] = list[_AnnotationWithVisRatio]
             self.loose_types["annotations"] = unread_fields.LOOSE_WITH_VIS_RATIO
         self.unread = dict.fromkeys(unread_fields.COUNTS, 0)
@@ -251,7 +259,22 @@ class _Records:
             "occlusion": given("occlusion"),
             "truncation": given("truncation"),
             "visibility": given("visibility"),
-            "vis_ratio": (given("vis_ratio") if self.vis_ratio else np.full(len(anns), np.nan)),
+            **self.vis_ratio_columns(anns, given),
+        }
+
+    def vis_ratio_columns(self, anns, given):
+        if self.as_given:
+            values = [a.vis_ratio for a in anns]
+            kind = [0 if v is msgspec.UNSET else 2 if type(v) is bool else 1 for v in values]
+            return {
+                "vis_ratio": np.array(
+                    [math.nan if k == 0 else float(v) for k, v in zip(kind, values)], np.float64
+                ),
+                "vis_ratio_kind": np.array(kind, np.int8),
+            }
+        return {
+            "vis_ratio": given("vis_ratio") if self.vis_ratio else np.full(len(anns), np.nan),
+            "vis_ratio_kind": np.zeros(len(anns), np.int8),
         }
 
     def crowd_columns(self, values, base):

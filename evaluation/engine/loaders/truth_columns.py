@@ -77,7 +77,7 @@ def _order(values, id_type):
 
 
 def read_truth(
-    path, images, fmt, classes, policy, ids="any", annotations="reference", vis_ratio="read"
+    path, images, fmt, classes, policy, ids="any", annotations="reference", vis_ratio="as-given"
 ):
     entry_counts, bad_rows = {}, {}
     if fmt == "json":
@@ -85,7 +85,7 @@ def read_truth(
             path,
             wide=ids == "any",
             loose=annotations != "strict",
-            vis_ratio=vis_ratio == "read",
+            vis_ratio=vis_ratio,
         )
         entry_counts.update(cols.pop("unread_counts"))
         bad_rows = cols.pop("bad_rows")
@@ -224,6 +224,7 @@ def read_truth(
     loose = fmt == "json" and annotations != "strict"
     # Read with vis_ratio="unread" (splits frozen before the key was read) a split has
     # neither the column nor the counts: its columns and counts are those it had then.
+    counted = vis_ratio != "unread"
     sources = dict.fromkeys(attributes.VISIBILITY_SOURCE_COUNTS, 0)
     road = attributes.finish(
         path,
@@ -233,7 +234,8 @@ def read_truth(
         path,
         region_locate,
         annotation_counts if loose else None,
-        sources if vis_ratio == "read" else None,
+        sources if counted else None,
+        as_given=vis_ratio == "as-given",
     )
     names = [cols["class_names"][i] for i in class_order]
     tags = [cols["image_tags"][i] for i in image_order]
@@ -254,6 +256,9 @@ def read_truth(
         ignore=cols["ignore"],
         ignore_key=cols.get("ignore_key"),
         ignore_key_fraction=cols.get("ignore_key_fraction"),
+        # COCO JSON's ignore flag is a fractional iscrowd (pycocotools' reading); a CSV
+        # ignore column is no iscrowd
+        iscrowd_fraction=cols["ignore"] if fmt == "json" else None,
         source=str(path),
         image_id_type=image_type,
         class_id_type=class_type,
@@ -267,7 +272,7 @@ def read_truth(
             # in five formats gives one result
             "iscrowd_outside_0_255": (int(cols["crowd_wide"].sum()) if "crowd_wide" in cols else 0),
             **annotation_counts,
-            **(sources if vis_ratio == "read" else {}),
+            **(sources if counted else {}),
         },
         **road,
     )

@@ -11,6 +11,12 @@ such a value, of a type its field cannot hold, is left unread â€” as if absent â
 counted (``COUNTS``, shown with the split); ``annotations="strict"`` refuses it, naming
 the record and the field.
 
+Under ``vis_ratio="as-given"`` the ``vis_ratio`` key is a field the city-scale script
+reads (``_prepare`` compares it as it is): any number or boolean is read, never left
+unread; null, text or anything else, on which Python raises there, is refused naming
+the record and the field when the annotation is scored (kept in ``bad``, as a bad
+``bbox``).
+
 An ``iscrowd`` of text or null, which pycocotools does read, is read as it reads it
 (``crowd_value``) and counted (``iscrowd_text_or_null``).
 
@@ -83,6 +89,10 @@ class _AnnotationWithVisRatio(_Annotation, gc=False):
     vis_ratio: Any = None
 
 
+class _AnnotationVisRatioAsGiven(_Annotation, gc=False):
+    vis_ratio: Any = msgspec.UNSET  # absent; null decodes as None
+
+
 class Region(msgspec.Struct, gc=False):
     image_id: JSON_ID
     bbox: tuple[float, float, float, float]
@@ -96,6 +106,8 @@ LOOSE = {
 }
 #: The loose annotations of a file read with its ``vis_ratio`` key.
 LOOSE_WITH_VIS_RATIO = list[_AnnotationWithVisRatio]
+#: The loose annotations of a file read with ``vis_ratio="as-given"``.
+LOOSE_VIS_RATIO_AS_GIVEN = list[_AnnotationVisRatioAsGiven]
 
 
 #: Number fields read loosely: an integer beyond float64 among them is infinite.
@@ -271,12 +283,14 @@ def normalise(key, records, counts, base=0, bad=None):
     if key == "annotations":
         _defer(records, base, {} if bad is None else bad)
     fields = [name for (k, name) in _COUNT_OF if k == key]
-    for record in records:
+    for i, record in enumerate(records):
         for name in fields:
             if name not in record.__struct_fields__:  # vis_ratio, when not read
                 continue
             value = getattr(record, name)
-            if not _fits(key, name, value):
+            if isinstance(record, _AnnotationVisRatioAsGiven) and name == "vis_ratio":
+                record.vis_ratio = _as_given(value, base + i, {} if bad is None else bad)
+            elif not _fits(key, name, value):
                 fixed = crowd_value(value) if name == "iscrowd" else _DEFAULTS.get(name)
                 setattr(record, name, fixed)
                 counts[_COUNT_OF[key, name]] += 1
@@ -287,3 +301,22 @@ def normalise(key, records, counts, base=0, bad=None):
             elif name in _NUMBERS and value is not None:
                 setattr(record, name, as_number(value))
     return records
+
+
+def _as_given(value, row, bad):
+    """A loosely decoded ``vis_ratio`` under ``vis_ratio="as-given"``: a boolean kept
+    (it compares as 0 or 1 in ``_prepare``), a number as ``as_number`` reads it, absent
+    kept ``UNSET``; anything else ``UNSET`` with its error in ``bad`` (raised if the
+    annotation is scored: ``_prepare`` raises TypeError comparing it)."""
+    if value is msgspec.UNSET or type(value) is bool:
+        return value
+    number = as_number(value)
+    if number is not None:
+        return number
+    shown = "null" if value is None else f"{value!r:.40}"
+    message = (
+        f"must be a number or boolean (the city-scale script compares vis_ratio with "
+        f"the setups' ranges), got {shown}"
+    )
+    bad.setdefault(row, ("vis_ratio", message))
+    return msgspec.UNSET
