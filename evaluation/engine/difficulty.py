@@ -98,6 +98,12 @@ def get_difficulty_protocol(name_or_protocol):
 
 
 def _corners(xywh):
+    # a non-finite box (inf + -inf = NaN) is the devkit's C double arithmetic: quiet
+    with np.errstate(over="ignore", invalid="ignore"):
+        return _column_corners(xywh)
+
+
+def _column_corners(xywh):
     return np.column_stack(
         [xywh[:, 0], xywh[:, 1], xywh[:, 0] + xywh[:, 2], xywh[:, 1] + xywh[:, 3]]
     )

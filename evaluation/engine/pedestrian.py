@@ -62,6 +62,7 @@ Results per setup and class in the shape of ``difficulty.evaluate_levels``: setu
 its levels. A class with no counted box in a setup is absent there (None).
 """
 
+import functools
 import math
 
 import numpy as np
@@ -92,6 +93,19 @@ from .pedestrian_setups import (  # noqa: F401  (re-exported: the engine's API)
 )
 
 
+# Non-finite boxes (``[Infinity, 10, -Infinity, 30]``, Python's json reads them) give
+# the IEEE results the toolbox's MATLAB doubles give (inf - inf = NaN, no error in
+# MATLAB): computed quietly, as boxes.pair_iou does.
+def _quiet(function):
+    @functools.wraps(function)
+    def quietly(*args, **kwargs):
+        with np.errstate(over="ignore", under="ignore", divide="ignore", invalid="ignore"):
+            return function(*args, **kwargs)
+
+    return quietly
+
+
+@_quiet
 def overlaps(det, gt, ignored):
     """``compOas``: (len(det), len(gt)) overlaps of xywh boxes, continuous coordinates;
     IoU for a regular box, intersection over the detection's area for an ignore box;
@@ -185,6 +199,7 @@ def curve_points(tp, fp, n_pos, n_images, limit=CURVE_POINTS):
     return {"fppi": fppi.tolist(), "miss_rate": miss.tolist()}
 
 
+@_quiet
 def standardise_aspect(boxes, ar):
     """``bbApply resize(bb, 1, 0, ar)``: width set to ``ar * h`` about the centre,
     height kept, in the toolbox's arithmetic: ``d = h*ar - w; x -= d/2; w += d``."""
