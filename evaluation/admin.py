@@ -36,6 +36,7 @@ class BenchmarkSplitAdmin(ReadOnlyAdmin):
         "box_count",
         "annotation_policy",
         "vis_ratio_reading",
+        "hash_scheme",
         "annotations_left_out",
         "sha256",
         "frozen_at",

@@ -53,6 +53,13 @@ class BenchmarkSplit(models.Model):
         "within 0-1: splits frozen with engines 2.9-2.10) or unread (skipped: splits "
         "frozen before it was read). Each keeps its splits' content hash.",
     )
+    hash_scheme = models.CharField(
+        max_length=8,
+        default="typed",
+        help_text="How its content hash (sha256) was taken: typed (image and class ids "
+        'that are not numbers hash with their kind, so ids 1 and "1" hash apart) or '
+        "untyped (ids by their text only: splits frozen before keep that hash).",
+    )
     annotations_left_out = models.JSONField(
         default=dict,
         blank=True,

@@ -14,7 +14,7 @@ from django.core.files import File
 from django.db import IntegrityError, transaction
 from django.utils import timezone
 
-from . import engine, jobs, levels, pieces, signals
+from . import engine, jobs, levels, pieces, signals, split_identity
 from .models import BenchmarkSplit, Evaluation, PredictionFile
 from .protocols import resolve as resolve_protocol
 from .storage import (
@@ -45,6 +45,11 @@ ANNOTATION_POLICIES = ("reference", "strict")
 #: migration 0022 set ``unread`` on splits frozen before the key was read, 0023 keeps
 #: ``read`` on those frozen with engines 2.9-2.10), so its content hash still matches.
 VIS_RATIO_READING = "as-given"
+#: How a new split's content hash is taken (``engine.GroundTruth.content_hash(scheme)``):
+#: ids that are not numbers hash with their kind. A stored split is verified with the
+#: scheme it was frozen with (``BenchmarkSplit.hash_scheme``; migration 0024 sets
+#: ``untyped`` on splits frozen before), so its sha256 is never rewritten.
+HASH_SCHEME = "typed"
 #: Detections of classes the split does not list (``engine.load_predictions
 #: (unknown_classes=)``): the default drops them as pycocotools does, counted and named
 #: in the result; ``reject`` refuses the file.
@@ -189,10 +194,12 @@ def load_split(
             raise UploadError(
                 f"{' or '.join(names)}: a number is too large to be read", path="truth"
             ) from None
-        sha = loaded.content_hash()
-        twin = BenchmarkSplit.objects.filter(sha256=sha).first()
-        if twin is not None:
-            raise UploadError(f"the same content is already frozen as {twin}")
+        sha = loaded.content_hash(HASH_SCHEME)
+        refusal = split_identity.twin_refusal(
+            loaded, sha, HASH_SCHEME, lambda split: _read_truth(split, "keep")
+        )
+        if refusal:
+            raise UploadError(refusal)
         tags = {tag: int(loaded.tag_mask(tag).sum()) for tag in loaded.tags()}
         counted = ~(loaded.crowd | loaded.ignore | loaded.difficult)
         split = BenchmarkSplit(
@@ -212,6 +219,7 @@ def load_split(
             road_counts=levels.split_counts(loaded),
             annotation_policy=policy,
             vis_ratio_reading=VIS_RATIO_READING,
+            hash_scheme=HASH_SCHEME,
             annotations_left_out={
                 key: int(loaded.box_counts.get(key, 0))
                 for key in engine.ANNOTATION_COUNTS
@@ -247,9 +255,9 @@ def load_truth_of(split, boxes="keep"):
     split's recorded content hash: ContentMismatch if the stored files, or a cache
     entry, no longer hold the frozen content."""
     truth = _read_truth(split, boxes)
-    actual = truth.content_hash()
+    actual = split_identity.split_hash(split, truth)
     if actual != split.sha256 and boxes != "keep":  # the hash was taken as frozen ("keep")
-        actual = _read_truth(split, "keep").content_hash()
+        actual = split_identity.split_hash(split, _read_truth(split, "keep"))
     check_sha256(
         f"split:{split.pk}",
         "split content",
@@ -268,7 +276,7 @@ def road_counts_of(split):
         truth = _read_truth(split, "keep")
     except (OSError, ValueError, engine.InputError):
         return None
-    if truth.content_hash() != split.sha256:
+    if split_identity.split_hash(split, truth) != split.sha256:
         return None
     return levels.split_counts(truth)
 

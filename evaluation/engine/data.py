@@ -5,12 +5,31 @@ sees a file. Boxes are ``[x, y, w, h]`` in pixels (float64), as in COCO-style JS
 """
 
 import hashlib
+import json
 from dataclasses import dataclass, field
 
 import numpy as np
 
 #: Per-box road attributes of ``GroundTruth`` (NaN where not given).
 ATTRIBUTES = ("occlusion", "truncation", "visibility")
+
+#: How ``GroundTruth.content_hash`` treats id types: ``typed`` (engine 2.15.0 on) hashes
+#: the kind of a text id family, so ids that match different predictions hash apart;
+#: ``untyped`` is the hash before (ids by their text only), kept to verify splits frozen
+#: under it. Numeric ids hash alike under both.
+HASH_SCHEMES = ("typed", "untyped")
+#: Id kinds (``id_kind``) a ``typed`` hash leaves out: so numeric splits keep their hash.
+NUMERIC_ID_KINDS = ("int", "number")
+
+
+def id_kind(ids, id_type):
+    """What predictions an id family matches (``loaders.detection_blocks._json_keys``):
+    ``"int"`` (int64 ids), ``"number"``, ``"text"`` or ``"json"`` (COCO JSON families,
+    ``loaders.ids``) or ``"plain"`` (CSV or file-name text: matched as text, whatever a
+    JSON result's id type)."""
+    if id_type:
+        return id_type
+    return "int" if ids.dtype.kind in "iu" else "plain"
 
 
 def _canonical_nan(values):
@@ -157,7 +176,7 @@ class GroundTruth:
             np.int64
         )
 
-    def content_hash(self):
+    def content_hash(self, scheme="typed"):
         """SHA-256 of the canonical content: identical splits hash identically.
 
         Canonical form: images in id order with sizes and sorted tags, classes in
@@ -168,12 +187,45 @@ class GroundTruth:
         without them keeps the hash it was frozen with. The city-scale ``vis_ratio``
         column is added only where it says more than the visibility
         (``_vis_ratio_says_more``).
+
+        Ids are hashed as their text. Under the ``typed`` scheme (``HASH_SCHEMES``) a
+        split whose image or class ids are not numbers (``id_kind``: JSON text,
+        JSON-quoted text, CSV or file-name text) first hashes the two families' kinds,
+        so the image id ``1`` and the text ``"1"`` — which match different detections
+        (pycocotools' ``loadRes`` refuses a result whose ``image_id`` has the other
+        type) — hash apart; a split of numeric ids hashes as before (no mark).
+        ``untyped`` leaves the kinds out: the hash of splits frozen before.
         """
-        cached = self.__dict__.get("_content_hash")
+        if scheme not in HASH_SCHEMES:
+            raise ValueError(f"unknown hash scheme {scheme!r}; use {', '.join(HASH_SCHEMES)}")
+        mark = self._id_mark()
+        name = "_untyped_hash" if scheme == "untyped" and mark else "_content_hash"
+        cached = self.__dict__.get(name)
         if cached is not None:  # frozen: computed once (the loaders and annotate ask)
             return cached
+        value = self._hash(mark if name == "_content_hash" else b"")
+        object.__setattr__(self, name, value)
+        return value
+
+    def id_kinds(self):
+        """``{"image": kind, "class": kind}`` of the two id families (``id_kind``)."""
+        return {
+            "image": id_kind(self.image_ids, self.image_id_type),
+            "class": id_kind(self.class_ids, self.class_id_type),
+        }
+
+    def _id_mark(self):
+        """The bytes a ``typed`` hash starts with: empty for numeric ids; else the kinds
+        of both id families. An ``untyped`` hash starts with ``[`` (a list's repr), so
+        no marked content hashes as unmarked content."""
+        kinds = self.id_kinds()
+        if all(kind in NUMERIC_ID_KINDS for kind in kinds.values()):
+            return b""
+        return b"\x00id kinds " + json.dumps(kinds, sort_keys=True).encode() + b"\n"
+
+    def _hash(self, mark):
         attributes = self.has_attributes()
-        digest = self._image_digest()
+        digest = self._image_digest(mark)
         columns = np.column_stack(
             [
                 self.box_image.astype("<f8"),
@@ -196,14 +248,13 @@ class GroundTruth:
             regions = regions[np.lexsort(regions.T[::-1])]
             digest.update(b"dont_care")
             digest.update(np.ascontiguousarray(regions, "<f8").tobytes())
-        object.__setattr__(self, "_content_hash", digest.hexdigest())
-        return self._content_hash
+        return digest.hexdigest()
 
-    def _image_digest(self):
-        """``content_hash``'s SHA-256 state after its class and image part (classes,
-        image ids, sizes, sorted tags). The bytes of that part are built once per
-        ``_images_cell`` (a Python object per image: the costly part) and kept as bytes
-        (picklable), then hashed for each truth sharing them."""
+    def _image_digest(self, mark=b""):
+        """``content_hash``'s SHA-256 state after its id mark (``_id_mark``) and its
+        class and image part (classes, image ids, sizes, sorted tags). The bytes of that
+        part are built once per ``_images_cell`` (a Python object per image: the costly
+        part) and kept as bytes (picklable), then hashed for each truth sharing them."""
         cell = self._images_cell()
         if not cell:
             cell.append(repr(list(zip(self.class_ids.tolist(), self.classes))).encode())
@@ -211,7 +262,7 @@ class GroundTruth:
             cell.append(np.ascontiguousarray(self.image_width, "<f8").tobytes())
             cell.append(np.ascontiguousarray(self.image_height, "<f8").tobytes())
             cell.append(repr([sorted(t) for t in self.image_tags]).encode())
-        digest = hashlib.sha256()
+        digest = hashlib.sha256(mark)
         for part in cell:
             digest.update(part)
         return digest

@@ -187,14 +187,13 @@ def differences(a, b):
     """``[(setting, value in a, value in b, effect)]`` between two results."""
     out = []
     if not _same(a.get("truth_fingerprint"), b.get("truth_fingerprint")):
-        out.append(
-            (
-                "ground truth",
-                a.get("truth_fingerprint"),
-                b.get("truth_fingerprint"),
-                "different ground truth: the numbers are about different data",
+        effect = "different ground truth: the numbers are about different data"
+        if _typed_fingerprint(a) != _typed_fingerprint(b):
+            effect += (
+                ", or the same split whose ids are not all numbers, fingerprinted by an "
+                f"engine before {TYPED_FINGERPRINT} (ids hashed by their text, not their type)"
             )
-        )
+        out.append(("ground truth", a.get("truth_fingerprint"), b.get("truth_fingerprint"), effect))
     if not _same(a.get("engine_version"), b.get("engine_version")):
         out.append(
             (
@@ -209,6 +208,22 @@ def differences(a, b):
         if not _same(ra.get(key), rb.get(key)):
             out.append((key, ra.get(key), rb.get(key), effects.effect(key, ra, rb)))
     return out
+
+
+#: The first engine whose fingerprint hashes the type of ids that are not numbers
+#: (``GroundTruth.content_hash``, scheme ``typed``): a split of numeric ids has one
+#: fingerprint under every engine, one of text ids another from this version on.
+TYPED_FINGERPRINT = "2.15.0"
+
+
+def _typed_fingerprint(result):
+    """Whether ``result``'s fingerprint hashes id types (True for an unreadable version:
+    only a version known to be older says it does not)."""
+    try:
+        version = tuple(int(part) for part in str(result.get("engine_version")).split("."))
+    except ValueError:
+        return True
+    return version >= tuple(int(part) for part in TYPED_FINGERPRINT.split("."))
 
 
 def _same(a, b):

@@ -63,6 +63,7 @@ class SplitSerializer(serializers.ModelSerializer):
             "source_format",
             "annotation_policy",
             "vis_ratio_reading",
+            "hash_scheme",
             "annotations_left_out",
             "left_out",
             "created_by",

@@ -86,8 +86,11 @@ def cache_key(sources, options):
     return digest.hexdigest()
 
 
-#: The split's content hash, kept in a truth entry's metadata (``GroundTruth.content_hash``).
-_CONTENT_HASH = "__content_hash__"
+#: The split's content hash, kept in a truth entry's metadata (``GroundTruth.content_hash``,
+#: its ``typed`` scheme). Entries from before engine 2.15.0 kept the ``untyped`` hash
+#: under ``_UNTYPED_HASH``: it is dropped on load (the typed one is computed once).
+_CONTENT_HASH = "__typed_content_hash__"
+_UNTYPED_HASH = "__content_hash__"
 
 
 def _to_arrays(obj):
@@ -109,6 +112,7 @@ def _to_arrays(obj):
 def _from_arrays(kind, arrays):
     meta = json.loads(str(arrays["__meta__"]))
     content_hash = meta.pop(_CONTENT_HASH, None)
+    meta.pop(_UNTYPED_HASH, None)
     values = {name: value for name, value in arrays.items() if name != "__meta__"}
     for name, value in meta.items():
         if name == "image_tags":
