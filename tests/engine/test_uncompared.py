@@ -2,8 +2,9 @@
 
 ``COCOeval.computeIoU``/``evaluateImg`` read a detection's ``bbox`` and ``area`` only
 among the first 100 by score of its (image, category), and only for categories the
-split lists; ``loadRes`` reads the keypoints of every result. So under the caption,
-mask and keypoints readings a bad bbox or area (keypoint x/y values that are booleans,
+split lists; ``loadRes`` reads the keypoints of every result, and of a box-reading
+file only ``bbox[0..3]``. So under the caption, mask, keypoints and box readings a bad
+bbox or area (a box of 5 numbers, nested lists, text whose area is text) (keypoint x/y values that are booleans,
 nested lists, integers of 2^30 or more) on a never-compared detection leaves the file
 scorable there. Each case is run through pycocotools 2.0.11 (``pycocotools_eval``):
 where it scores the file, every summary number and per-class AP equal its numbers
@@ -69,6 +70,8 @@ def _good(reading, i, score, image=1, category=1):
         record.update(caption="a car", bbox=[x, y, 10, 8], area=80.0 - i % 3)
     elif reading == "mask":
         record.update(segmentation=_rect(30, 40, y, x, 8, 10))
+    elif reading == "box":
+        record.update(bbox=[x, y, 10, 8])
     else:
         record.update(keypoints=[x, y, 2, x + 10, y + 8, 1])
     return record
@@ -93,6 +96,13 @@ _BAD = [
     ("mask", {"segmentation": [_MASK]}, "segmentation"),  # toBbox gives an array box
     ("mask", {"segmentation": [_MASK], "bbox": [2, 3, 10, 8]}, "segmentation"),
     ("mask", {"segmentation": [], "bbox": [2, 3, 10, 8]}, "segmentation"),
+    # box reading: loadRes adds and multiplies bb[0..3] only (box_results)
+    ("box", {"bbox": [2, 3, 10, 8, 5]}, "bbox"),  # iou: "bounding box (Nx4)" Exception
+    ("box", {"bbox": [2, 3, 10, 8, None]}, "bbox"),
+    ("box", {"bbox": ["2", 3, "10", 8]}, "bbox"),  # area "10"*8: text < number, TypeError
+    ("box", {"bbox": [2, "3", 10, "8"]}, "bbox"),
+    ("box", {"bbox": [[2], 3, [10], 8]}, "bbox"),  # np.array: ValueError
+    ("box", {"bbox": ["a", 3, "b", 8]}, "bbox"),  # float("a"): ValueError
     ("keypoints", {"keypoints": [True, 3, 2, 12, False, 2]}, "keypoints"),
     ("keypoints", {"keypoints": [[1, 2], 3, 2, [5, 6], 4, 1]}, "keypoints"),
     ("keypoints", {"keypoints": [2**40, 3, 2, 12, 11, 2]}, "keypoints"),
@@ -274,7 +284,7 @@ def _mixed(reading, seed):
 @settings(
     max_examples=12, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture]
 )
-@given(st.sampled_from(["caption", "mask", "keypoints"]), st.integers(0, 2**32 - 1))
+@given(st.sampled_from(["caption", "mask", "keypoints", "box"]), st.integers(0, 2**32 - 1))
 def test_mixed_files_score_or_refuse_as_pycocotools(tmp_path, reading, seed):
     """Random floods with bad records anywhere: where pycocotools 2.0.11 scores the
     file, the same numbers (keypoint files: where no bad record is compared); where
@@ -294,7 +304,7 @@ def test_mixed_files_score_or_refuse_as_pycocotools(tmp_path, reading, seed):
     assert predictions.box_counts.get(uncompared.COUNT, 0) + len(predictions) + 1 == len(detections)
 
 
-@pytest.mark.parametrize("reading", ["caption", "mask", "keypoints"])
+@pytest.mark.parametrize("reading", ["caption", "mask", "keypoints", "box"])
 def test_every_path_agrees(tmp_path, monkeypatch, reading):
     """Whole, tiny slices, validated first, streamed into pieces and cached: the same
     columns and counts (left-out records included) as the whole load."""
@@ -317,6 +327,9 @@ def test_every_path_agrees(tmp_path, monkeypatch, reading):
     loads.append(load_predictions(dt, truth))
     for other in loads:
         for name in ("image", "cls", "boxes", "score", "area"):
+            if getattr(whole, name) is None:  # the box reading: no area column
+                assert getattr(other, name) is None
+                continue
             assert getattr(whole, name).tobytes() == getattr(other, name).tobytes(), name
         assert whole.box_counts == other.box_counts
     for images_per_shard in (1, 2):

@@ -52,14 +52,22 @@ def read_detections(path, wide=False):
         parts = list(_stream(path, f, skip, wide=wide))
     if not parts:
         return empty_columns()
-    return tuple(_joined(column) for column in zip(*parts))
+    return tuple(_joined(column, parts) for column in zip(*parts))
 
 
-def _joined(column):
-    """One column of the blocks joined (the reading: the first block's)."""
-    if column[0] is None or isinstance(column[0], str):
-        return column[0]
-    return np.concatenate(column)
+#: The column of unfit records (``results_stream._block``): a box-reading block holds
+#: it only when some record is unfit (``box_results``), None elsewhere.
+_UNFIT = 6
+
+
+def _joined(column, parts):
+    """One column of the blocks joined (the reading: the first block's; the unfit
+    column None if no block has one, else None for each record of the others)."""
+    if any(c is not None and not isinstance(c, str) for c in column):
+        return np.concatenate(
+            [np.full(len(p[3]), None, object) if c is None else c for c, p in zip(column, parts)]
+        )
+    return column[0]
 
 
 def detection_blocks(path, wide=False, decode=None):
@@ -87,7 +95,11 @@ def _filled(parts, total):
                 p if p is None or isinstance(p, str) else np.empty((total, *p.shape[1:]), p.dtype)
                 for p in part
             ]
+            if columns[_UNFIT] is not None:
+                columns[_UNFIT][:] = None
         n = len(part[0])
+        if columns[_UNFIT] is None and part[_UNFIT] is not None:  # the first unfit record
+            columns[_UNFIT] = np.full(total, None, object)
         for i, values in enumerate(part):
             if values is None or isinstance(values, str):
                 continue

@@ -280,7 +280,8 @@ def _block(records, path, base, wide, mode, build):
     if mode != mask_results.MASKS:
         if not build:
             return len(records)
-        return (*_columns(records, path, base, wide), None, None, None, None)
+        unfit = _unfit(records) if any(getattr(records, "unfit", None) or ()) else None
+        return (*_columns(records, path, base, wide), None, None, unfit, None)
     boxes, area = mask_results.columns(records, path, base)
     if not build:
         return len(records)

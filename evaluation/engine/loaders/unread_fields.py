@@ -232,7 +232,7 @@ BAD_SCORE = struct.unpack("<d", struct.pack("<Q", BAD_SCORE_BITS))[0]
 class LooseDetection(msgspec.Struct, gc=False):
     image_id: JSON_ID
     category_id: JSON_ID
-    bbox: Any = None
+    bbox: Any = msgspec.UNSET
     score: Any = None
 
 
@@ -242,23 +242,27 @@ def loose_detection(error_text):
 
 
 def normalise_detections(path, records, base):
-    """Loosely decoded detections as the typed ones: a box of numbers or booleans as
-    floats (pycocotools' ``loadRes`` does arithmetic on every box: any other is
-    refused, naming the record); a score of a number or boolean as a float, any other
-    (or none) ``BAD_SCORE``."""
+    """Loosely decoded detections as the typed ones, with their unfit fields
+    (``result_readings.Decoded``): a box of 4 numbers or booleans as floats; one
+    pycocotools' ``loadRes`` cannot read refused, naming the record; one it reads
+    but cannot compare (``box_results``) NaN and unfit. A score of a number or
+    boolean as a float, any other (or none) ``BAD_SCORE``."""
+    from . import box_results, result_readings
+
+    decoded = result_readings.Decoded(records)
+    decoded.unfit = [None] * len(records)
     for i, record in enumerate(records):
         box = _box(record.bbox, text=False)
         if box is None:
-            raise InputError(
-                path,
-                f"must be 4 numbers [x, y, w, h], got {record.bbox!r:.40}",
-                record=f"record {base + i}",
-                field="bbox",
-            )
+            why = box_results.load_error(record.bbox)
+            if why is not None:
+                raise InputError(path, why, record=f"record {base + i}", field="bbox")
+            decoded.unfit[i] = ("bbox", box_results.unfit_message(record.bbox))
+            box = (math.nan,) * 4
         record.bbox = box
         score = as_number(record.score)
         record.score = BAD_SCORE if score is None else score
-    return records
+    return decoded
 
 
 def bad_scores(score):
