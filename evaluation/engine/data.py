@@ -333,14 +333,18 @@ class Predictions:
         """The refusal recorded for ``protocol`` (``InputError`` keywords), or None:
         only under the COCO order (``tie_order="image"``) with a per-image cap other
         than the checked ones (100, none), which takes any recorded conflict
-        (conservative), or an entry without an order (made before orders were kept)."""
+        (conservative), an entry without an order (made before orders were kept), or
+        an entry's ``"overflow"`` refusal (integer scores beyond float64's range)."""
         if not self.score_conflicts or protocol.tie_order != "image":
             return None
         key = _cap_key(protocol)
         if key in self.score_conflicts:
             entry = self.score_conflicts[key]
+            if entry and "overflow" in entry:  # scores beyond float64 (exact_scores)
+                return entry["overflow"]
             return entry if entry and "position" not in entry else None
-        return next((c for k, c in self.score_conflicts.items() if c and k != "cityscale"), None)
+        found = next((c for k, c in self.score_conflicts.items() if c and k != "cityscale"), None)
+        return found if not found or "path" in found else found["overflow"]
 
     def score_order(self, protocol):
         """pycocotools' order for ``protocol`` where it is not float64's

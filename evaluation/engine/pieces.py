@@ -70,8 +70,10 @@ def stream_pieces(path, truth, ranges, directory, *, name="piece-{k}.npz", **opt
     bad_ids = False  # some detection's id cannot be written as a float (as given)
     policy = options.get("boxes") or truth.box_policy
     suspects = np.zeros(len(truth.classes), bool)  # classes holding a score >= 2**53
+    infinite = False  # some loaded box is infinite
     for block in stream_predictions(path, truth, **options):
         suspects[block.cls[exact_scores.suspect(block.score)]] = True
+        infinite = infinite or bool(np.isinf(block.boxes).any())  # beyond float64?
         rows = np.empty(len(block.score), SPILL_ROW)
         rows["image"], rows["cls"] = block.image, block.cls
         rows["boxes"], rows["score"] = block.boxes, block.score
@@ -98,7 +100,7 @@ def stream_pieces(path, truth, ranges, directory, *, name="piece-{k}.npz", **opt
     conflicts = {}
     if stream_format(path, options.get("fmt")) == "json":
         wide = options.get("ids", "any") == "any"
-        conflicts = exact_scores.check(path, truth, np.flatnonzero(suspects), wide)
+        conflicts = exact_scores.check(path, truth, np.flatnonzero(suspects), wide, infinite)
     whole = Predictions(
         image=np.zeros(0, np.int32),
         cls=np.zeros(0, np.int32),

@@ -234,8 +234,9 @@ def load_predictions(
         "unknown_classes": unknown_classes,
         "ids": ids,
         "schema": CACHE_SCHEMA,
+        # 4: entries may carry the "overflow" refusal (scores beyond float64's range);
         # 3: entries carry pycocotools' exact order (2: the cityscale check was added)
-        "score_conflicts": 3,
+        "score_conflicts": 4,
     }
     if unknown_images != "reject":  # the default keeps the keys of existing entries
         key["unknown_images"] = unknown_images
@@ -355,7 +356,8 @@ def _read_predictions(
     conflicts = {}
     if fmt == "json":
         classes = np.unique(block.cls[exact_scores.suspect(block.score)])
-        conflicts = exact_scores.check(path, truth, classes, ids == "any")
+        infinite = bool(np.isinf(block.boxes).any())  # maybe an integer beyond float64
+        conflicts = exact_scores.check(path, truth, classes, ids == "any", infinite)
     return Predictions(
         image=block.image,
         cls=block.cls,

@@ -28,7 +28,9 @@ order is key, then image, then rank — the stable sort of the joined lists). Ma
 (``accumulation_order.orders``) and ``MatchRecords.det_key`` carry it into every later
 step; the shown scores and every threshold keep the float64 value. A protocol with
 another cap cannot use it and raises the entry's refusal, naming the record. Where the
-orders agree nothing is kept: the numbers are pycocotools' already.
+orders agree no order is kept; the numbers are then pycocotools' except for integers
+beyond float64's range, which its ``accumulate`` cannot write into its float64 score
+array (``beyond_float64``: such files are refused under the caps checked).
 
 The CityPersons script (``eval_MR_multisetup.py``, preset ``miss-rate-cityscale``) is a
 pycocotools derivative that reads JSON with Python's ``json`` and makes the same numpy
@@ -46,6 +48,7 @@ import numpy as np
 
 from ..pedestrian_setups import CITYSCALE_HEIGHT_RANGES, HEIGHT_EXPANSION, category_one
 from . import (
+    beyond_float64,
     checks,
     coco_json,
     detection_blocks,
@@ -148,7 +151,7 @@ def _kind(value):
     return _BOOL if type(value) is bool else _INT if type(value) is int else _FLOAT
 
 
-def check(path, truth, classes, wide):
+def check(path, truth, classes, wide, boxes=False):
     """``{cap_key: {} or entry}`` for ``CAPS`` and ``"cityscale"`` — empty when
     ``classes`` (the classes holding a ``suspect`` score) is empty — of the JSON
     detections file at ``path``. Only a class holding an integer of magnitude >= 2**53
@@ -160,16 +163,25 @@ def check(path, truth, classes, wide):
     where it differs (``position``: index into the loaded predictions, ``rank``:
     pycocotools' rank within its image and class, ``key``: ``order_keys``). The
     ``"cityscale"`` entry (``_cityscale``) carries one key list per height range of
-    the setups, which ``pedestrian.evaluate_setups`` takes."""
-    if not len(classes):
+    the setups, which ``pedestrian.evaluate_setups`` takes.
+
+    An entry may also carry ``"overflow"``: the refusal of a file holding integers
+    beyond float64's range where pycocotools meets them (``beyond_float64``; scores
+    of ``classes``, and boxes of every class when ``boxes``: a loaded box is
+    infinite)."""
+    if not len(classes) and not boxes:
         return {}
-    rows, big = _affected(path, truth, classes, wide)
+    rows, big = _affected(path, truth, range(len(truth.classes)) if boxes else classes, wide)
     replayed = np.unique(rows["cls"][np.isin(rows["record"], list(big))]).tolist()
     conflicts = {}
     for cap in CAPS:
         found = [_replay(path, truth, _of_class(rows, k), big, k, cap) for k in replayed]
         conflicts["none" if cap is None else str(cap)] = _joined([f for f in found if f])
     conflicts[CITYSCALE] = _cityscale(path, truth, rows, big, replayed)
+    refusals = beyond_float64.refusals(path, truth, rows, big, CAPS, boxes, _values)
+    for cap, refusal in refusals.items():  # refused under that cap (``score_conflict``)
+        key = "none" if cap is None else str(cap)
+        conflicts[key] = {**conflicts[key], beyond_float64.OVERFLOW: refusal}
     return conflicts
 
 
