@@ -90,6 +90,13 @@ def match(truth, predictions, protocol, *, reasons=True):
     if conflict:  # integer scores pycocotools orders otherwise (loaders.exact_scores)
         where = {k: v for k, v in conflict.items() if k in ("record", "field")}
         raise InputError(conflict["path"], conflict["message"], **where)
+    if protocol.tie_order == "image":  # pycocotools' family: a box beyond float64
+        from .loaders.beyond_float64 import truth_refusal
+
+        refusal = truth_refusal(truth)
+        if refusal:
+            where = {k: v for k, v in refusal.items() if k in ("record", "field")}
+            raise InputError(refusal["path"], refusal["message"], **where)
     n_classes = len(truth.classes)
     thresholds = protocol.threshold_table(truth.classes)
     effective = np.minimum(thresholds, 1 - 1e-10)  # pycocotools caps at 1 - 1e-10

@@ -251,3 +251,38 @@ def test_the_cli(tmp_path):
         raise ValueError(token)
 
     json.loads(scored.stdout, parse_constant=strict)
+
+
+def _split_with(*annotations):
+    split = json.loads(json.dumps(SPLIT))
+    split["annotations"] += [{"iscrowd": 0, "area": 100, **a} for a in annotations]
+    return split
+
+
+def test_a_ground_truth_box_beyond_float64(tmp_path):
+    """pycocotools 2.0.11's computeIoU converts every listed annotation's box (here on
+    an image without detections): OverflowError; refused under coco and recall40 naming
+    ``annotations[k]`` and ``bbox``; the VOC protocols score it as infinite. Left out by
+    both where pycocotools never loads it (an unlisted category; an annotation whose id
+    a later one takes over), and an ``area`` beyond float64 is only compared: scored
+    equal to pycocotools 2.0.11."""
+    dets = [_det(1, 1, [10, 10, 30, 30], 0.9)]
+    huge = {"id": 9, "image_id": 2, "category_id": 2, "bbox": [0, 0, HUGE, 10]}
+    gt, dt = _write(tmp_path, dets, split=_split_with(huge))
+    with pytest.raises(OverflowError):
+        pycocotools_eval(gt, dt)
+    truth = load_truth(gt)
+    predictions = load_predictions(dt, truth)
+    for protocol in ("coco", "recall40"):
+        with pytest.raises(InputError) as caught:
+            evaluate(truth, predictions, protocol)
+        assert (caught.value.record, caught.value.field) == ("annotations[3]", "bbox")
+    assert evaluate(truth, predictions, "voc")["summary"]["AP"] is not None
+    unlisted = {**huge, "category_id": 7}
+    taken_over = [huge, {**huge, "bbox": [0, 0, 10, 10]}]
+    big_area = {**huge, "bbox": [0, 0, 10, 10], "area": HUGE}
+    for annotations in ([unlisted], taken_over, [big_area]):
+        gt, dt = _write(tmp_path, dets, split=_split_with(*annotations))
+        truth = load_truth(gt)
+        ours = evaluate(truth, load_predictions(dt, truth), "coco")
+        _numbers_equal(pycocotools_eval(gt, dt), ours, truth)

@@ -33,7 +33,9 @@ infinite loaded box: the file is then read once more with Python's ``json``, as
 pycocotools reads it.
 """
 
+import functools
 import json
+import os
 
 import numpy as np
 
@@ -176,3 +178,49 @@ def _refusal(path, record, field, why, bits=None):
             "have it read as infinite)"
         ),
     }
+
+
+def truth_refusal(truth):
+    """The refusal of a split pycocotools 2.0.11 cannot compare, or None: a box holding
+    an integer beyond float64's range (read here as infinite) on an annotation
+    ``computeIoU`` converts — every annotation of a listed image and category, as
+    ``loadAnns`` gives it (the last of its id), whatever the detections (``maskUtils.iou``
+    converts the ground truth of every (image, class) holding some). Only a split with
+    an infinite box whose source is a readable JSON file is re-read (Python's ``json``,
+    as pycocotools reads it); an ``area`` beyond float64 is only compared (exact)."""
+    if not len(truth.boxes) or not np.isinf(truth.boxes).any():
+        return None
+    try:
+        stat = os.stat(truth.source)
+    except (OSError, TypeError, ValueError):
+        return None
+    return _truth_refusal(str(truth.source), stat.st_mtime_ns, stat.st_size)
+
+
+@functools.lru_cache(maxsize=8)
+def _truth_refusal(path, _mtime, _size):
+    try:
+        with open(path, encoding="utf-8") as f:
+            split = json.load(f)
+        annotations = split["annotations"]
+        images = {image["id"] for image in split["images"]}
+        categories = {category["id"] for category in split["categories"]}
+        last = {ann["id"]: k for k, ann in enumerate(annotations)}  # createIndex
+    except (ValueError, OSError, RecursionError, KeyError, TypeError):
+        return None
+    for ann in annotations:
+        try:
+            listed = ann["image_id"] in images and ann["category_id"] in categories
+        except (KeyError, TypeError):
+            continue
+        k = last.get(ann["id"]) if listed else None
+        bb = annotations[k].get("bbox") if k is not None else None
+        if type(bb) is list and any(overflows(v) for v in bb):
+            return _refusal(
+                path,
+                k,
+                "bbox",
+                "computeIoU converts every listed annotation's box to float64 and raises "
+                "OverflowError",
+            ) | {"record": f"annotations[{k}]"}
+    return None
