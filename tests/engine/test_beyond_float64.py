@@ -286,3 +286,19 @@ def test_a_ground_truth_box_beyond_float64(tmp_path):
         truth = load_truth(gt)
         ours = evaluate(truth, load_predictions(dt, truth), "coco")
         _numbers_equal(pycocotools_eval(gt, dt), ours, truth)
+
+
+def test_miss_rate_cityscale_has_no_score_fill(tmp_path):
+    """The CityPersons script's ``accumulate`` fills only the miss rates (``q[ri] =
+    recall[pi]``; no float64 score array: the transliteration
+    ``pedestrian_oracle.cityscale_coco``, from the published code, from memory): a score
+    of 2**1024 or -2**1024 is ranked exactly (object arrays) and nothing overflows;
+    scored equal to the transliteration on the exact integers."""
+    from .test_cityscale_exact_scores import _audit_case
+    from .test_pedestrian_cityscale import _compare
+
+    dataset, results, _, _ = _audit_case(tmp_path)
+    results[1]["score"] = HUGE  # the false positive of image 2 first
+    results[0]["score"] = -HUGE
+    ours = _compare(tmp_path, dataset, results)
+    assert ours["levels"]["reasonable"]["miss_rate"] is not None
