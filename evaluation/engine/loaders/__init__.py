@@ -288,7 +288,8 @@ def stream_predictions(
     counts summed are the columns and counts of ``load_predictions`` (same options).
     Memory follows one block (a few MB of the file), not the file. An error is raised
     at the first block holding one, so a file that a whole load refuses is refused
-    here too (possibly naming an earlier record than the whole load's first check).
+    here too, naming the same record: a refusal of a block's lookup (``resolve``) waits
+    until the rest of the file is decoded and looked up (``_first_refusal``).
     A JSON file read "as given" (``as_given``: its ids reach across the file) is read
     whole and yielded as one block.
     """
@@ -306,9 +307,28 @@ def stream_predictions(
         yield detection_blocks.resolve(path, truth, raw, boxes, unknown_classes, unknown_images)
         return
     for raw in itertools.chain([first], blocks):
-        yield detection_blocks.resolve(
-            path, truth, raw, boxes, unknown_classes, unknown_images, rank_of
-        )
+        try:
+            block = detection_blocks.resolve(
+                path, truth, raw, boxes, unknown_classes, unknown_images, rank_of
+            )
+        except InputError as error:
+            raise _first_refusal(
+                error, blocks, path, truth, boxes, unknown_classes, unknown_images, rank_of
+            ) from None
+        yield block
+
+
+def _first_refusal(first, blocks, *args):
+    """The refusal a whole load gives, after ``first`` (a block's): a later record
+    ``loadRes`` fails on (decoding the rest raises), else the lowest
+    stage (``detection_blocks.LOOKUP``...), its first record."""
+    for raw in blocks:
+        try:
+            detection_blocks.resolve(args[0], args[1], raw, *args[2:])
+        except InputError as error:
+            if error.stage < first.stage:
+                first = error
+    return first
 
 
 def _json_whole(path, truth, wide, unknown_images):

@@ -165,6 +165,24 @@ def resolve(path, truth, raw, policy, unknown_classes, unknown_images, rank_of=N
     below ``uncompared.CAP`` in its image and class), else left out and counted;
     ``rank_of(record numbers)`` ranks them in the whole file (``uncompared.FileRanks``),
     None: this block is the whole file."""
+    at = [LOOKUP]
+    try:
+        return _resolve(path, truth, raw, policy, unknown_classes, unknown_images, rank_of, at)
+    except InputError as error:
+        error.stage = at[0]  # which check refused it (``LOOKUP``...``POLICY``)
+        raise
+
+
+#: The checks of ``resolve`` in order, as a refusal's ``stage``: the image and class
+#: lookup, then what pycocotools reads only when comparing (scores, then unfit
+#: records), then the box policy. A file read a block at a time names the refusal of
+#: the lowest stage, its first record (``loaders.stream_predictions``), as a
+#: whole load does.
+LOOKUP, SCORES, UNFIT, POLICY = range(4)
+
+
+def _resolve(path, truth, raw, policy, unknown_classes, unknown_images, rank_of, at):
+
     image_ids, class_keys, boxes, score = raw.image_ids, raw.class_keys, raw.boxes, raw.score
     area, unfit, free, bad_id = raw.area, raw.unfit, raw.free, raw.unwritable
     kept_at = np.arange(len(score))  # the block's row of each kept record
@@ -209,6 +227,7 @@ def resolve(path, truth, raw, policy, unknown_classes, unknown_images, rank_of=N
         kept_rows = np.flatnonzero(found)
         locate_all = locate
         locate = lambda i: locate_all(int(kept_rows[i]))  # noqa: E731
+    at[0] = SCORES
     checks.fail_at(  # a bad score only on a detection of a class pycocotools evaluates
         path,
         unread_fields.bad_scores(score),
@@ -218,6 +237,7 @@ def resolve(path, truth, raw, policy, unknown_classes, unknown_images, rank_of=N
         "class the split lists)",
     )
     uncompared_unfit = 0
+    at[0] = UNFIT
     if unfit is not None:
         bad = np.flatnonzero(uncompared.fields(unfit[kept_at]))
         if len(bad):
@@ -240,6 +260,7 @@ def resolve(path, truth, raw, policy, unknown_classes, unknown_images, rank_of=N
             kept = np.flatnonzero(keep)
             locate_unfit = locate
             locate = lambda i: locate_unfit(int(kept[i]))  # noqa: E731
+    at[0] = POLICY
     checks.check_boxes(path, boxes, locate, fields["bbox"], policy)
     if policy == "reject":  # else scored as pycocotools does: NaN ranks last
         checks.fail_at(

@@ -98,7 +98,11 @@ def normalised(path, loose, base):
     records = result_readings.Decoded()
     records.unfit = []
     for i, r in enumerate(loose):
-        record, unfit = normalise(path, r, base + i)
+        try:
+            record, unfit = normalise(path, r, base + i)
+        except InputError:
+            columns(records, path, base)  # an earlier record's failure comes first
+            raise
         records.append(record)
         records.unfit.append(unfit)
     return records
@@ -199,56 +203,72 @@ def _side(path, value, at):
 
 def columns(records, path, base):
     """``(boxes, area)`` of typed mask-reading records: the given box or the mask's
-    (``rle.to_bbox``), and the mask's area (``rle.area``)."""
+    (``rle.to_bbox``), and the mask's area (``rle.area``). Where ``loadRes`` raises or
+    crashes, the error names the first such record in file order, and of its checks
+    the first ``loadRes`` meets (``_first_failure``)."""
     n = len(records)
     texts, h, w = [""] * n, np.zeros(n, object), np.zeros(n, object)
     boxes, given = np.full((n, 4), np.nan), np.zeros(n, bool)
+    missing = []
     for i, r in enumerate(records):
         seg = r.segmentation
         if seg is msgspec.UNSET:
-            _fail(
-                path,
-                base + i,
-                "segmentation",
-                "missing: the file's first result has a segmentation and no bbox, so "
-                "pycocotools 2.0.11 reads every result's segmentation (loadRes: KeyError)",
-            )
+            missing.append(i)
+            continue
         texts[i], (h[i], w[i]) = seg.counts, seg.size
         if r.bbox is not msgspec.UNSET:
             boxes[i], given[i] = r.bbox, True
     bad = [not (0 <= a < _MAX_SIZE and 0 <= b < _MAX_SIZE) for a, b in zip(h, w)]
-    if any(bad):
-        i = bad.index(True)
-        _fail(path, base + i, "segmentation.size", f"must be 0..2^64-1, got {[h[i], w[i]]}")
-    lone = np.flatnonzero([not t.isascii() and _SURROGATE.search(t) is not None for t in texts])
-    if len(lone):
-        _fail(
-            path,
-            base + int(lone[0]),
-            "segmentation.counts",
-            "holds a lone UTF-16 surrogate (a \\udXXX escape): pycocotools 2.0.11 encodes "
-            "the text as UTF-8 (str.encode), which raises UnicodeEncodeError",
-        )
+    lone = [not t.isascii() and _SURROGATE.search(t) is not None for t in texts]
     h = np.array([v & 0xFFFFFFFF for v in h], np.uint64)
     w = np.array([v & 0xFFFFFFFF for v in w], np.uint64)
+    if any(lone):
+        texts = ["" if x else t for t, x in zip(texts, lone)]
     values, n_values, unterminated = rle.decode(texts)
-    if unterminated.any():
-        _fail(
-            path,
-            base + int(np.argmax(unterminated)),
-            "segmentation.counts",
-            "the text ends inside a value (its last character says more follow; "
-            "pycocotools would read past the end of the text)",
-        )
+    if unterminated.any():  # the others decoded, for their own checks
+        values, n_values, _ = rle.decode(["" if u else t for t, u in zip(texts, unterminated)])
     derive = ~given
     crash = rle.zero_height(values, n_values, h) & derive
-    if crash.any():
-        _fail(
-            path,
-            base + int(np.argmax(crash)),
-            "segmentation.size",
-            "a height of 0 (modulo 2^32) with foreground: pycocotools 2.0.11's "
-            "maskUtils.toBbox divides by the height and crashes",
-        )
+    if missing or any(bad) or any(lone) or unterminated.any() or crash.any():
+        raise _first_failure(path, base, missing, bad, lone, unterminated, crash, h, w)
     boxes[derive] = rle.to_bbox(values, n_values, h, w)[derive]
     return boxes, rle.area(values, n_values)
+
+
+def _first_failure(path, base, missing, bad, lone, unterminated, crash, h, w):
+    """The error of the first failing record in file order; within a record, in the
+    order pycocotools 2.0.11 meets them: ``ann['segmentation']`` (KeyError), ``_frString``
+    encoding the counts (UnicodeEncodeError) then converting the size to ``siz``
+    (OverflowError), ``rleFrString`` reading the text, ``toBbox`` after ``area``."""
+    found = []
+    if missing:
+        found.append((missing[0], 0, "segmentation", _MISSING))
+    if any(lone):
+        found.append((lone.index(True), 1, "segmentation.counts", _LONE))
+    if any(bad):
+        i = bad.index(True)
+        found.append((i, 2, "segmentation.size", f"must be 0..2^64-1, got {[h[i], w[i]]}"))
+    if unterminated.any():
+        found.append((int(np.argmax(unterminated)), 3, "segmentation.counts", _UNTERMINATED))
+    if crash.any():
+        found.append((int(np.argmax(crash)), 4, "segmentation.size", _ZERO_HEIGHT))
+    i, _, field, message = min(found)
+    return InputError(path, message, record=f"record {base + i}", field=field)
+
+
+_MISSING = (
+    "missing: the file's first result has a segmentation and no bbox, so "
+    "pycocotools 2.0.11 reads every result's segmentation (loadRes: KeyError)"
+)
+_LONE = (
+    "holds a lone UTF-16 surrogate (a \\udXXX escape): pycocotools 2.0.11 encodes "
+    "the text as UTF-8 (str.encode), which raises UnicodeEncodeError"
+)
+_UNTERMINATED = (
+    "the text ends inside a value (its last character says more follow; "
+    "pycocotools would read past the end of the text)"
+)
+_ZERO_HEIGHT = (
+    "a height of 0 (modulo 2^32) with foreground: pycocotools 2.0.11's "
+    "maskUtils.toBbox divides by the height and crashes"
+)
