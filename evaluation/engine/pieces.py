@@ -73,7 +73,7 @@ def stream_pieces(path, truth, ranges, directory, *, name="piece-{k}.npz", **opt
     infinite = False  # some loaded box is infinite
     for block in stream_predictions(path, truth, **options):
         suspects[block.cls[exact_scores.suspect(block.score)]] = True
-        infinite = infinite or bool(np.isinf(block.boxes).any())  # beyond float64?
+        infinite = infinite or block.infinite_box  # an integer beyond float64?
         rows = np.empty(len(block.score), SPILL_ROW)
         rows["image"], rows["cls"] = block.image, block.cls
         rows["boxes"], rows["score"] = block.boxes, block.score

@@ -182,16 +182,16 @@ def test_a_compared_box_beyond_float64_is_refused(tmp_path, reading):
 def test_box_arithmetic_in_load_res(tmp_path):
     """loadRes computes x + w, y + h and w * h for every result: an integer beyond
     float64 with a float partner raises OverflowError there (also on the 101st result
-    of an image, never compared); with integer partners Python computes exactly, and a
+    of an image, never compared, and on a result of a class the split does not list); with integer partners Python computes exactly, and a
     result never compared is scored as pycocotools 2.0.11 scores it."""
     dets = [_det(1, 1, [10, 10, 30, 30], 0.9)]
     dets += [_det(1, 1, [60, 60, 10, 10], 0.5) for _ in range(99)]
     _scored_equal(tmp_path, [*dets, _det(1, 1, [0, 60, HUGE, 10], 0.1)])
-    dets.append(_det(1, 1, [0, 60, HUGE, 10.5], 0.1))
-    gt, dt = _write(tmp_path, dets)
-    with pytest.raises(OverflowError):
-        pycocotools_eval(gt, dt)
-    assert "loadRes" in _refused(gt, dt, "coco", 100, "bbox")
+    for last in (_det(1, 1, [0, 60, HUGE, 10.5], 0.1), _det(2, 9, [0.5, 60, HUGE, 10], 0.1)):
+        gt, dt = _write(tmp_path, [*dets, last])  # the second: a class the split lacks
+        with pytest.raises(OverflowError):
+            pycocotools_eval(gt, dt)
+        assert "loadRes" in _refused(gt, dt, "coco", 100, "bbox")
 
 
 def test_an_area_beyond_float64_is_compared_exactly(tmp_path):

@@ -376,7 +376,7 @@ def _read_predictions(
     conflicts = {}
     if fmt == "json":
         classes = np.unique(block.cls[exact_scores.suspect(block.score)])
-        infinite = bool(np.isinf(block.boxes).any())  # maybe an integer beyond float64
+        infinite = block.infinite_box  # maybe an integer beyond float64
         conflicts = exact_scores.check(path, truth, classes, ids == "any", infinite)
     return Predictions(
         image=block.image,

@@ -63,6 +63,8 @@ class Resolved:
     area: np.ndarray = None  # as ``Raw.area``
     free: np.ndarray = None  # as ``Raw.free``
     unwritable: np.ndarray = None  # as ``Raw.unwritable``; None: none such
+    #: some record's box as read is infinite, left out or not (``beyond_float64``)
+    infinite_box: bool = False
 
 
 #: The count (``box_counts``) of detections whose area a reading gave, by reading.
@@ -298,6 +300,7 @@ def _resolve(path, truth, raw, policy, unknown_classes, unknown_images, rank_of,
         area=area,
         free=free if free is not None and free.any() else None,
         unwritable=bad_id if bad_id is not None and (bad_id >= 0).any() else None,
+        infinite_box=bool(np.isinf(raw.boxes).any()),
     )
 
 
