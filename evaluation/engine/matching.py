@@ -14,7 +14,9 @@ Two published rules:
 Sequential dependence exists only inside one (image, class) group, through boxes
 already taken; so we walk detection *ranks* (0, 1, 2, ... within each group) and
 treat every group at once at each rank. Only pairs with IoU at or above the lowest
-threshold can ever match, so the rest are dropped before the walk.
+threshold can ever match, so the rest are dropped before the walk. The rare groups
+no vectorised rule reproduces (a NaN IoU, ids leaving a matched box free) are walked
+by pycocotools' loop written out (``sequential_walk``).
 """
 
 import numpy as np
@@ -25,6 +27,7 @@ from .boxes import pair_iou
 from .errors import InputError
 from .protocols import BEST_OVERLAP, get_protocol
 from .records import MatchRecords
+from .sequential_walk import refuse_unwritable_ids, walk_sequentially
 
 _DENSE_GROUPS = 20_000_000  # up to this many (image, class) groups, index them directly
 _REGULAR = np.int32(1) << 24  # added to the key of a regular (non-ignored) box
@@ -55,7 +58,7 @@ def _candidate_pairs(truth, det_boxes, det_group, protocol, min_threshold):
         crowd[pair_gt],
         pixel_offset=protocol.pixel_offset,
     )
-    keep = (iou >= min_threshold) | np.isnan(iou)  # NaN: see ``_walk_sequentially``
+    keep = (iou >= min_threshold) | np.isnan(iou)  # NaN: see ``sequential_walk``
     return pair_det[keep], pair_gt[keep], iou[keep]
 
 
@@ -157,7 +160,7 @@ def match(truth, predictions, protocol, *, reasons=True):
                 truth.crowd,
                 by_rank=exact is not None,
             )
-            + _walk_sequentially(
+            + walk_sequentially(
                 np.unique(det_group[pair_det[walk]]),
                 det_group,
                 det_boxes,
@@ -172,7 +175,7 @@ def match(truth, predictions, protocol, *, reasons=True):
         )
 
     if predictions.unwritable is not None and protocol.zero_id_unmatched:
-        _refuse_unwritable_ids(predictions, order, det)
+        refuse_unwritable_ids(predictions, order, det)
 
     records = MatchRecords(
         protocol=protocol.name,
@@ -198,24 +201,6 @@ def match(truth, predictions, protocol, *, reasons=True):
         gt_void=_void_boxes(truth, protocol),
     )
     return _reasons.attach(records, truth, det_boxes, protocol) if reasons else records
-
-
-def _refuse_unwritable_ids(predictions, order, matched):
-    """pycocotools 2.0.11 ``evaluateImg`` writes a matching detection's id into the
-    float ``gtm`` (``gtm[t, m] = d['id']``): an id numpy cannot write raises there, so
-    a file where such a detection matches a box (in any size range, at any IoU) is
-    refused, naming its record (``Predictions.unwritable``)."""
-    record = predictions.unwritable[order[matched]]
-    record = record[record >= 0]
-    if len(record):
-        raise InputError(
-            predictions.source,
-            "a detection read as given whose id numpy cannot write into a float array "
-            "(text that is no number) matches a box: pycocotools 2.0.11 raises there "
-            "(evaluateImg: gtm[t, m] = d['id'], ValueError)",
-            record=f"record {int(record.min())}",
-            field="id",
-        )
 
 
 def _void_boxes(truth, protocol):
@@ -272,68 +257,6 @@ def _greedy(
         gt_ignored,
         crowd,
     )
-    return found
-
-
-def _walk_sequentially(
-    groups, det_group, det_boxes, rank, det_cls, truth, protocol, effective, gt_ignored, free=None
-):
-    """Matches in the (image, class) groups where some IoU is NaN, or some detection's
-    id leaves the box it matches free (``free``: ``gtm[t, m] = d['id']`` is not above
-    0, so ``gtm > 0`` does not skip the box), by the loop of pycocotools 2.0.11
-    ``COCOeval.evaluateImg`` written out.
-
-    There a detection keeps the candidate ``m`` unless ``ious[d, g] < iou``; once
-    ``iou`` is NaN that comparison is false for every later box, so the next eligible
-    box (even one of IoU 0) takes over, and a NaN IoU can win. No vectorised rule
-    reproduces that, so these (rare) groups are walked here: boxes ordered regular
-    before ignored (stable), detections by rank, a crowd box reusable, the scan
-    stopping at the first ignored box once a regular one is held.
-    """
-    found = []
-    if not len(groups):
-        return found
-    n_slots, n_areas = len(effective), len(gt_ignored)
-    n_classes = len(truth.classes)
-    gt_group = truth.box_image.astype(np.int64) * n_classes + truth.box_class
-    for group in groups.tolist():
-        dets = np.flatnonzero(det_group == group)
-        dets = dets[np.argsort(rank[dets], kind="stable")]
-        boxes = np.flatnonzero(gt_group == group)
-        cls = int(det_cls[dets[0]])
-        for a in range(n_areas):
-            order = boxes[np.argsort(gt_ignored[a, boxes], kind="stable")]
-            ignored = gt_ignored[a, order].tolist()
-            crowd = truth.crowd[order].tolist()
-            ious = pair_iou(
-                np.repeat(det_boxes[dets], len(order), axis=0),
-                np.tile(truth.boxes[order], (len(dets), 1)),
-                np.tile(truth.crowd[order], len(dets)),
-                pixel_offset=protocol.pixel_offset,
-            ).reshape(len(dets), len(order))
-            for t in range(n_slots):
-                taken = [False] * len(order)
-                for dind, d in enumerate(dets.tolist()):
-                    iou, m = float(effective[t, cls]), -1
-                    for gind, value in enumerate(ious[dind].tolist()):
-                        if taken[gind] and not crowd[gind]:
-                            continue
-                        if m > -1 and not ignored[m] and ignored[gind]:
-                            break
-                        if value < iou:
-                            continue
-                        iou, m = value, gind
-                    if m == -1:
-                        continue
-                    taken[m] = taken[m] or free is None or not free[d]
-                    found.append(
-                        (
-                            np.array([a * n_slots + t]),
-                            np.array([d]),
-                            np.array([order[m]]),
-                            np.array([ious[dind, m]]),
-                        )
-                    )
     return found
 
 
