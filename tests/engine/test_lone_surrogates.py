@@ -241,7 +241,7 @@ def test_an_encoded_surrogate_is_not_utf8_and_stays_refused(tmp_path):
     gt.write_bytes(data)
     with pytest.raises(UnicodeDecodeError):
         pycocotools_eval(gt, dt)
-    with pytest.raises(InputError, match=r"not valid JSON: Invalid UTF-8"):
+    with pytest.raises(InputError, match=r"not UTF-8 text: byte 0xed at line 1, column \d+ "):
         load_truth(gt)
 
 

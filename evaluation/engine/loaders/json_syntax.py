@@ -25,7 +25,7 @@ import msgspec
 import numpy as np
 
 from ..errors import InputError
-from . import json_literals
+from . import json_bytes, json_literals
 
 CHUNK_BYTES = 4 << 20
 #: No record of a ground-truth array is this long: past it, checking stops.
@@ -244,10 +244,13 @@ def check(path, f, skip, sink=None):
     in_string, backslashes, depth = False, 0, 0
     offset = skip
     f.seek(skip)
+    text = json_bytes.Checker(path, skip)  # UTF-8 and integer digits, as Python's json
     while True:
         chunk = f.read(CHUNK_BYTES)
         if not chunk:
+            text.finish()
             break
+        text.feed(chunk)
         marks, kinds, in_string, backslashes = _structure(chunk, in_string, backslashes)
         opens = (kinds == 0x7B) | (kinds == 0x5B)
         closes = (kinds == 0x7D) | (kinds == 0x5D)

@@ -17,7 +17,7 @@ import msgspec
 import numpy as np
 
 from ..errors import InputError
-from . import json_literals, json_syntax, mask_results, result_readings, unread_fields
+from . import json_bytes, json_literals, json_syntax, mask_results, result_readings, unread_fields
 from .coco_records import _INT_ONLY, _Detection, int_column, validation_error, whole_ids
 
 CHUNK_BYTES = 4 << 20
@@ -53,6 +53,22 @@ def _columns(records, path="", base=0, wide=False):
 
 _IMAGE_ID, _CATEGORY_ID = attrgetter("image_id"), attrgetter("category_id")
 _BBOX, _SCORE = attrgetter("bbox"), attrgetter("score")
+
+
+class _Checked:
+    """The file, each chunk read through ``json_bytes.Checker`` (UTF-8, integer digits:
+    what Python's json refuses before any record is read)."""
+
+    def __init__(self, path, f, skip):
+        self.f, self.checker = f, json_bytes.Checker(path, skip)
+
+    def read(self, n):
+        chunk = self.f.read(n)
+        if chunk:
+            self.checker.feed(chunk)
+        else:
+            self.checker.finish()
+        return chunk
 
 
 class _Position:
@@ -139,6 +155,7 @@ def _stream(path, f, skip, build=True, wide=False, decode=None):
     a nested object, the slice fails right at its end, and it is simply extended.
     """
     decode = decode or _decode_slice
+    f = _Checked(path, f, skip)
     where = _Position(skip)
     buf = f.read(CHUNK_BYTES)
     while buf and not buf.strip():  # leading whitespace
