@@ -41,21 +41,26 @@ def _leading_digits(chunk, at_least):
     return lead
 
 
-def _line_column(path, skip, offset):
-    """1-based line and (byte) column of an absolute offset, read again in chunks."""
-    with open(path, "rb") as f:
-        f.seek(skip)
-        lines, line_start, at = 0, skip, skip
-        while at < offset:
-            block = f.read(min(_READ, offset - at))
-            if not block:
-                break
-            count = block.count(b"\n")
-            if count:
-                lines += count
-                line_start = at + block.rfind(b"\n") + 1
-            at += len(block)
+def line_column_in(f, skip, offset, read_bytes=_READ):
+    """1-based line and (byte) column of an absolute offset of the open binary file
+    ``f`` whose text starts at ``skip``, read again in chunks up to it."""
+    f.seek(skip)
+    lines, line_start, at = 0, skip, skip
+    while at < offset:
+        block = f.read(min(read_bytes, offset - at))
+        if not block:
+            break
+        count = block.count(b"\n")
+        if count:
+            lines += count
+            line_start = at + block.rfind(b"\n") + 1
+        at += len(block)
     return lines + 1, offset - line_start + 1
+
+
+def _line_column(path, skip, offset):
+    with open(path, "rb") as f:
+        return line_column_in(f, skip, offset)
 
 
 class Checker:

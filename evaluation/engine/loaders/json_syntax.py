@@ -128,18 +128,7 @@ class _Checker:
 
     def line_column(self, offset):
         """1-based line and column of an absolute offset, reading up to it in chunks."""
-        self.f.seek(self.skip)
-        lines, line_start, at = 0, self.skip, self.skip
-        while at < offset:
-            block = self.f.read(min(CHUNK_BYTES, offset - at))
-            if not block:
-                break
-            count = block.count(b"\n")
-            if count:
-                lines += count
-                line_start = at + block.rfind(b"\n") + 1
-            at += len(block)
-        return lines + 1, offset - line_start + 1
+        return json_bytes.line_column_in(self.f, self.skip, offset, CHUNK_BYTES)
 
     def _byte_of(self, error):
         m = re.search(r"\(byte (\d+)\)", str(error))
