@@ -14,7 +14,10 @@ through the CLI too (exit 2, no traceback). Whole, sliced, validated-first, stre
 into pieces and cached loads agree.
 """
 
+import contextlib
+import io
 import json
+import shutil
 
 import numpy as np
 import pytest
@@ -308,16 +311,22 @@ def test_mixed_files_score_or_refuse_as_pycocotools(tmp_path, reading, seed):
 def test_every_path_agrees(tmp_path, monkeypatch, reading):
     """Whole, tiny slices, validated first, streamed into pieces and cached: the same
     columns and counts (left-out records included) as the whole load."""
+    detections = [*_flood(reading), _bad(reading, [c for r, c, _ in _BAD if r == reading][0], 0)]
+    detections += [_good(reading, i, 0.3, image=2, category=2) for i in range(3)]
+    gt, dt = _files(tmp_path, _SPLIT, detections)
+    whole = _every_path_agrees(tmp_path, monkeypatch, gt, dt)
+    assert whole.box_counts[uncompared.COUNT] == 1
+
+
+def _every_path_agrees(tmp_path, monkeypatch, gt, dt):
+    """The whole load of ``dt``; a cached load, tiny slices, validated first and the
+    streamed pieces give its columns and counts."""
     from evaluation.engine.loaders import coco_json, results_stream
 
     from .test_stream_pieces import _compare as compare_pieces
 
-    detections = [*_flood(reading), _bad(reading, [c for r, c, _ in _BAD if r == reading][0], 0)]
-    detections += [_good(reading, i, 0.3, image=2, category=2) for i in range(3)]
-    gt, dt = _files(tmp_path, _SPLIT, detections)
     truth = load_truth(gt)
     whole = load_predictions(dt, truth)
-    assert whole.box_counts[uncompared.COUNT] == 1
     cache = _where(tmp_path, "cache")
     load_predictions(dt, truth, cache_dir=cache)
     loads = [load_predictions(dt, truth, cache_dir=cache)]
@@ -336,3 +345,132 @@ def test_every_path_agrees(tmp_path, monkeypatch, reading):
         work = _where(tmp_path, f"pieces-{images_per_shard}")
         predictions, _ = compare_pieces(dt, truth, images_per_shard, work)
         assert predictions.box_counts == whole.box_counts
+    return whole
+
+
+# Integer scores of magnitude >= 2**53 (``loaders.exact_scores``): pycocotools 2.0.11
+# keeps them as Python ints, and ``evaluateImg``'s ``np.argsort([-d['score'] ...],
+# kind='mergesort')`` ranks an image's list exactly (int64 here), where float64 ties
+# 2**60 + k for k < 101 in file order. So the cap follows the exact order: 101 such
+# detections in ascending file order are ranked in reverse (audit case U_exact_cap).
+_BIG = 2**60
+# (reading, change making the record unfit, field named)
+_EXACT = [
+    ("box", {"bbox": [2, 3, 10, 8, 5]}, "bbox"),  # iou: "bounding box (Nx4)" Exception
+    ("caption", {"area": "big"}, "area"),  # evaluateImg: "big" < number, TypeError
+    ("given", {"bbox": [2, 3, 10]}, "bbox"),  # iou: "bounding box (Nx4)" Exception
+]
+
+
+def _ascending(reading, changes, bad_at, mixed=False):
+    """101 detections of image 1, class car, scored 2**60 + k in file order, the one
+    at ``bad_at`` unfit; ``mixed``: one score written as a float (2.0**61), which
+    makes numpy's list float64, so ties in file order again (pycocotools' own call).
+    Read as given (``given``): each its own id, after a first result of an unlisted
+    class with an empty bbox (``as_given``)."""
+    kind = "caption" if reading == "given" else reading
+    out = [_good(kind, k, _BIG + k) for k in range(101)]
+    out[bad_at] = _bad(kind, changes, _BIG + bad_at)
+    if mixed:
+        out[50]["score"] = 2.0**61
+    if reading != "given":
+        return out
+    out = [
+        {k: v for k, v in d.items() if k != "caption"} | {"id": i + 1} for i, d in enumerate(out)
+    ]
+    return [{"id": 1000, "image_id": 1, "category_id": 9, "bbox": [], "score": 0.1}, *out]
+
+
+def _refused_as_pycocotools(tmp_path, monkeypatch, detections, record, field):
+    """pycocotools 2.0.11 raises on the file; every load path (whole, cached, tiny
+    slices, streamed pieces) refuses it naming ``record`` and ``field``, and the CLI
+    exits 2 naming file, record and field, no traceback."""
+    from evaluation.engine.__main__ import main
+    from evaluation.engine.loaders import results_stream
+    from evaluation.engine.pieces import stream_pieces
+    from evaluation.engine.shards import plan
+
+    gt, dt = _files(tmp_path, _SPLIT, detections)
+    with pytest.raises(Exception):  # noqa: B017 - TypeError, Exception (Nx4)
+        pycocotools_eval(gt, dt)
+    truth = load_truth(gt)
+    loads = [
+        lambda: load_predictions(dt, truth),
+        lambda: load_predictions(dt, truth, cache_dir=_where(tmp_path, "cache")),
+        lambda: stream_pieces(dt, truth, plan(truth.n_images, 1), _where(tmp_path, "pieces")),
+    ]
+    for small in (False, True):
+        if small:
+            monkeypatch.setattr(results_stream, "CHUNK_BYTES", 700)
+        for load in loads:
+            with pytest.raises(InputError) as error:
+                load()
+            assert (error.value.record, error.value.field) == (f"record {record}", field)
+            for name in ("cache", "pieces"):
+                shutil.rmtree(tmp_path / name, ignore_errors=True)
+    err = io.StringIO()
+    with contextlib.redirect_stderr(err):
+        assert main(["score", "--truth", str(gt), "--predictions", str(dt)]) == 2
+    assert str(dt) in err.getvalue() and f"record {record}" in err.getvalue()
+    assert f"'{field}'" in err.getvalue() and "Traceback" not in err.getvalue()
+
+
+@pytest.mark.parametrize(("reading", "changes", "field"), _EXACT)
+def test_exact_integer_scores_leave_out_the_last_by_exact_rank(
+    tmp_path, monkeypatch, reading, changes, field
+):
+    """The unfit record is written first: float64 ranks it first, pycocotools 2.0.11
+    ranks it 101st (the smallest integer), never compares it and scores the file;
+    equal numbers (``_compare``), the record left out and counted, on every load path,
+    and the exact order kept for scoring (``score_conflicts``). The same file with the
+    scores written as the float64 the engine reads makes pycocotools raise."""
+    detections = _ascending(reading, changes, bad_at=0)
+    as_floats = [{**d, "score": float(d["score"])} for d in detections]
+    gt, dt = _files(tmp_path, _SPLIT, as_floats)
+    with pytest.raises(Exception):  # noqa: B017 - TypeError, Exception (Nx4)
+        pycocotools_eval(gt, dt)
+    gt, dt = _files(tmp_path, _SPLIT, detections)
+    predictions = _scores_as_pycocotools(tmp_path, detections, left_out=1)
+    assert len(predictions) == 100 and predictions.score_conflicts["100"]
+    _every_path_agrees(tmp_path, monkeypatch, gt, dt)
+
+
+@pytest.mark.parametrize(("reading", "changes", "field"), _EXACT)
+def test_exact_integer_scores_compare_the_first_by_exact_rank(
+    tmp_path, monkeypatch, reading, changes, field
+):
+    """The unfit record is written last: float64 ranks it 101st (file order), pycocotools
+    2.0.11 ranks it first (the largest integer) and raises on it: refused naming it."""
+    detections = _ascending(reading, changes, bad_at=100)
+    record = 101 if reading == "given" else 100  # the first result of class 9 is record 0
+    _refused_as_pycocotools(tmp_path, monkeypatch, detections, record, field)
+
+
+@pytest.mark.parametrize(("reading", "changes", "field"), _EXACT)
+def test_a_float_among_them_makes_the_list_float64(tmp_path, monkeypatch, reading, changes, field):
+    """One score written as a float: numpy makes the image's list float64 in pycocotools
+    2.0.11, the integers tie there, file order decides: the first record (unfit) is
+    compared (raises, refused), and written last it is left out (scored)."""
+    detections = _ascending(reading, changes, bad_at=0, mixed=True)
+    record = 1 if reading == "given" else 0
+    _refused_as_pycocotools(tmp_path, monkeypatch, detections, record, field)
+    _scores_as_pycocotools(tmp_path, _ascending(reading, changes, 100, mixed=True), left_out=1)
+
+
+@pytest.mark.parametrize("elsewhere", [False, True])
+def test_without_such_scores_the_groups_are_not_read_again(tmp_path, monkeypatch, elsewhere):
+    """The exact ranks cost a loose read (``exact_scores._affected``) only where a group
+    holding an unfit record holds a score of magnitude >= 2**53: none here, so the
+    file is read loosely only by the replay of the class holding one (``elsewhere``:
+    on image 2, class van), or not at all."""
+    from evaluation.engine.loaders import exact_scores
+
+    calls, affected = [], exact_scores._affected
+    monkeypatch.setattr(exact_scores, "_affected", lambda *a: calls.append(a) or affected(*a))
+    detections = [*_flood("box"), _bad("box", _EXACT[0][1], 0.0)]
+    if elsewhere:
+        detections.append(_good("box", 0, _BIG, image=2, category=2))
+    gt, dt = _files(tmp_path, _SPLIT, detections)
+    predictions = load_predictions(dt, load_truth(gt))
+    assert predictions.box_counts[uncompared.COUNT] == 1
+    assert [list(classes) for _, _, classes, _ in calls] == ([[1]] if elsewhere else [])

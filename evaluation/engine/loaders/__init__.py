@@ -49,7 +49,7 @@ __all__ = [
 ]
 
 #: Bumped when the parsed columns change shape or meaning: old cache entries are unused.
-CACHE_SCHEMA = 11
+CACHE_SCHEMA = 12
 UNKNOWN_CLASS_POLICIES = ("reject", "drop")
 #: Detections of images the split does not hold: refused (default; pycocotools'
 #: ``loadRes`` asserts every result image is in the set) or, for re-scoring stored
@@ -298,13 +298,19 @@ def stream_predictions(
     if fmt not in detection_blocks.STREAMABLE:
         raise InputError(path, f"{fmt} detections cannot be read a block at a time")
     wide = ids == "any"
-    rank_of = detection_blocks.file_ranks(path, truth, fmt, wide, unknown_images)
+    exact = exact_scores.cap_values(path, truth, wide) if fmt == "json" else None
+    rank_of = detection_blocks.file_ranks(
+        path, truth, lambda: detection_blocks.raw_blocks(path, truth, fmt, wide), exact
+    )
     blocks = detection_blocks.raw_blocks(path, truth, fmt, wide)
     first = next(blocks)
     if first.reading == result_readings.GIVEN:  # ids across the file: read it whole
         blocks.close()
         raw = _json_whole(path, truth, wide, unknown_images)
-        yield detection_blocks.resolve(path, truth, raw, boxes, unknown_classes, unknown_images)
+        rank_of = detection_blocks.file_ranks(path, truth, lambda: [raw], exact)
+        yield detection_blocks.resolve(
+            path, truth, raw, boxes, unknown_classes, unknown_images, rank_of
+        )
         return
     for raw in itertools.chain([first], blocks):
         try:
@@ -372,7 +378,13 @@ def _read_predictions(
         )
     else:
         raw = detection_blocks.csv_raw(truth, *csv_tables.read_detections(path))
-    block = detection_blocks.resolve(path, truth, raw, policy, unknown_classes, unknown_images)
+    rank_of = None  # the whole file in one block, ranked by float64 score
+    if fmt == "json":  # exact where pycocotools ranks integer scores exactly
+        exact = exact_scores.cap_values(path, truth, ids == "any")
+        rank_of = detection_blocks.file_ranks(path, truth, lambda: [raw], exact)
+    block = detection_blocks.resolve(
+        path, truth, raw, policy, unknown_classes, unknown_images, rank_of
+    )
     conflicts = {}
     if fmt == "json":
         classes = np.unique(block.cls[exact_scores.suspect(block.score)])

@@ -165,8 +165,9 @@ def resolve(path, truth, raw, policy, unknown_classes, unknown_images, rank_of=N
     an ``InputError`` names the file, the record and the field. An unfit record
     (``Raw.unfit``) of a listed class is refused if pycocotools compares it (ranked
     below ``uncompared.CAP`` in its image and class), else left out and counted;
-    ``rank_of(record numbers)`` ranks them in the whole file (``uncompared.FileRanks``),
-    None: this block is the whole file."""
+    ``rank_of(record numbers)`` ranks them in the whole file (``file_ranks``: exact
+    where pycocotools ranks integer scores exactly), None: this block is the whole
+    file, ranked by float64 score."""
     at = [LOOKUP]
     try:
         return _resolve(path, truth, raw, policy, unknown_classes, unknown_images, rank_of, at)
@@ -335,12 +336,14 @@ def add_counts(total, counts):
     return {key: total.get(key, 0) + counts.get(key, 0) for key in keys}
 
 
-def file_ranks(path, truth, fmt, wide, unknown_images):
-    """``uncompared.FileRanks`` over a JSON file's blocks (read again when needed)."""
+def file_ranks(path, truth, raws, exact=None):
+    """``uncompared.FileRanks`` over the ``Raw`` blocks ``raws()`` gives (a JSON file's,
+    read again when needed, or a whole file's one block); ``exact``: as for
+    ``uncompared.ranks`` (``exact_scores.cap_values``)."""
     n_classes = len(truth.classes)
 
     def blocks():
-        for raw in raw_blocks(path, truth, fmt, wide):
+        for raw in raws():
             image, found_image = checks.resolve(
                 path, raw.image_ids, raw.known_images, raw.locate, "", ""
             )
@@ -353,4 +356,4 @@ def file_ranks(path, truth, fmt, wide, unknown_images):
             unfit = raw.unfit if raw.unfit is not None else np.full(n, None, object)
             yield raw.base + np.arange(n), group, raw.score, unfit
 
-    return uncompared.FileRanks(blocks)
+    return uncompared.FileRanks(blocks, exact)

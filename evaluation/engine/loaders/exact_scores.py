@@ -91,6 +91,25 @@ def suspect(score):
         return np.abs(score) >= EXACT_LIMIT
 
 
+def cap_values(path, truth, wide):
+    """``uncompared.ranks``' ``exact`` for the JSON detections file at ``path``: given
+    detections (``records``, ``group`` = image * classes + class, float64 ``score``),
+    None when no group holds a ``suspect`` score (nothing is read), else the rows of
+    the groups holding one and the Python scores pycocotools holds for them (the file
+    read loosely, ``_affected``, for those groups' classes only)."""
+
+    def exact(records, group, score):
+        held = np.isin(group, group[suspect(score)])
+        if not held.any():
+            return None
+        rows = np.flatnonzero(held)
+        classes = np.unique(group[rows] % len(truth.classes)).tolist()
+        found, big = _affected(path, truth, classes, wide)
+        return rows, _values(found, big, np.searchsorted(found["record"], records[rows]))
+
+    return exact
+
+
 def _loose(collected):
     def decode(piece, path="", base=0, mode=mask_results.BOXES):
         if mode == mask_results.MASKS:  # a file read as masks (``mask_results``)

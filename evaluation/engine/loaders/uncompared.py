@@ -12,6 +12,12 @@ an unfit record ranked below ``CAP`` naming its field, and leaves out and counts
 ranked at or beyond it (``box_counts[COUNT]``). A file read a block at a time cannot
 rank a record from its own block: ``FileRanks`` reads the file again (only when a block
 holds an unfit record of a listed class) for the groups that hold one.
+
+Ranks are float64's unless a group holds a score of magnitude >= 2**53: pycocotools
+keeps JSON integers as Python ints, and numpy ranks such a list exactly (int64, uint64
+or objects), where float64 ties or rounds them (``exact_scores``). Those groups are
+ranked by pycocotools' own call on the exact values (``exact``, given by
+``exact_scores.cap_values``: the file read again, loosely, only then).
 """
 
 import numpy as np
@@ -22,10 +28,14 @@ CAP = 100
 COUNT = "uncompared_unfit"
 
 
-def ranks(group, score):
+def ranks(group, score, records=None, exact=None):
     """Each detection's 0-based place within its ``group`` (image and class as one
     integer): descending score, ties in row order, NaN last, as ``np.argsort(-score,
-    kind='mergesort')`` ranks an image's detections of a class."""
+    kind='mergesort')`` ranks an image's detections of a class. ``exact(records, group,
+    score)`` (``records``: the file's record numbers, ascending) gives None, or the rows
+    of the groups pycocotools ranks by exact integers and their Python scores: those
+    groups are ranked as ``evaluateImg`` does, ``np.argsort([-d['score'] for d in dt],
+    kind='mergesort')``."""
     n = len(score)
     by_score = np.argsort(-np.asarray(score, np.float64), kind="stable")
     order = by_score[np.argsort(group[by_score], kind="stable")]
@@ -34,6 +44,14 @@ def ranks(group, score):
     sizes = np.diff(np.r_[starts, n])
     rank = np.empty(n, np.int64)
     rank[order] = np.arange(n) - np.repeat(starts, sizes)
+    held = None if exact is None else exact(records, group, score)
+    if held is not None:
+        rows, values = held
+        by_group = np.argsort(group[rows], kind="stable")  # row (file) order in a group
+        bounds = np.flatnonzero(np.diff(group[rows][by_group])) + 1
+        for members in np.split(by_group, bounds):
+            theirs = np.argsort([-values[i] for i in members.tolist()], kind="mergesort")
+            rank[rows[members[theirs]]] = np.arange(len(members))
     return rank
 
 
@@ -47,10 +65,12 @@ class FileRanks:
     passes over the file's blocks (``blocks()``: ``(records, group, score, unfit)``
     per block, ``records`` the file's record numbers, ``group`` -1 where the record is
     not compared at all) find the groups holding an unfit record, then rank those
-    groups' detections. Calling it with record numbers gives their ranks."""
+    groups' detections (``ranks``, with ``exact``). Calling it with record numbers
+    gives their ranks."""
 
-    def __init__(self, blocks):
+    def __init__(self, blocks, exact=None):
         self._blocks = blocks
+        self._exact = exact
         self._rank = None
 
     def __call__(self, records):
@@ -74,5 +94,7 @@ class FileRanks:
         rank = ranks(
             np.concatenate(groups) if groups else np.zeros(0, np.int64),
             np.concatenate(scores) if scores else np.zeros(0),
+            records,
+            self._exact,
         )
         return dict(zip(records.tolist(), rank.tolist()))
