@@ -107,6 +107,11 @@ class GroundTruth:
     #: so ``miss-rate-cityscale`` leaves these boxes regular. All False where not given
     #: (CSV and label folders: their ``ignore`` is their own flag).
     iscrowd_fraction: np.ndarray = None
+    #: Where the CityPersons script would raise reading a COCO JSON annotation, per
+    #: field (``"vis_ratio"``: not comparable, ``"ignore"``: ``int()`` raises):
+    #: ``[box, record, message, truthy]`` lists; checked by ``cityscale_raises`` under
+    #: ``miss-rate-cityscale`` only (the other references never read these keys).
+    cityscale_faults: dict = field(default_factory=dict)
     region_image: np.ndarray = None  # int32 index into image_ids
     regions: np.ndarray = None  # (m, 4) float64 xywh
 
@@ -124,6 +129,21 @@ class GroundTruth:
             object.__setattr__(self, "region_image", np.zeros(0, np.int32))
         if self.regions is None:
             object.__setattr__(self, "regions", np.zeros((0, 4)))
+
+    def cityscale_ignore(self):
+        """Per box, ``(ignore box, matched by plain IoU although ignored)`` as the
+        CityPersons script reads the ``ignore`` key: ``ignore_key`` and
+        ``ignore_key_fraction``, and where the key is truthy text, an array or an
+        object (``cityscale_faults["ignore_read"]``: left unread elsewhere) an ignore
+        box whose ``int()`` is 0 or raises."""
+        read = self.cityscale_faults.get("ignore_read")
+        if not read:
+            return self.ignore_key, self.ignore_key_fraction
+        flag, fraction = self.ignore_key.copy(), self.ignore_key_fraction.copy()
+        boxes = np.array([entry[0] for entry in read], np.int64)
+        flag[boxes] = True
+        fraction[boxes] = [not entry[2] for entry in read]
+        return flag, fraction
 
     def cityscale_visibility(self):
         """Per box, the visibility ``miss-rate-cityscale`` compares with the setups'
@@ -240,6 +260,7 @@ class GroundTruth:
             + ([self.ignore_key.astype("<f8")] if self.ignore_key.any() else [])
             + ([self.ignore_key_fraction.astype("<f8")] if self.ignore_key_fraction.any() else [])
             + ([_canonical_nan(self.vis_ratio)] if self._vis_ratio_says_more() else [])
+            + ([self._faults_column()] if self.cityscale_faults else [])
         )
         order = np.lexsort(columns.T[::-1])
         digest.update(np.ascontiguousarray(columns[order]).tobytes())
@@ -249,6 +270,17 @@ class GroundTruth:
             digest.update(b"dont_care")
             digest.update(np.ascontiguousarray(regions, "<f8").tobytes())
         return digest.hexdigest()
+
+    def _faults_column(self):
+        """Per box, ``cityscale_faults`` as a number (the hash's column, added only
+        where there is one): 1 a ``vis_ratio`` the script cannot compare, 2 an
+        ``ignore`` its ``int()`` raises on, 4 an ``ignore`` read as truthy text, an
+        array or an object, 8 that one's ``int()`` nonzero."""
+        column = np.zeros(self.n_boxes, "<f8")
+        for name, bit in (("vis_ratio", 1), ("ignore", 2), ("ignore_read", 4)):
+            for entry in self.cityscale_faults.get(name, ()):
+                column[entry[0]] += bit + (8 if name == "ignore_read" and entry[2] else 0)
+        return column
 
     def _image_digest(self, mark=b""):
         """``content_hash``'s SHA-256 state after its id mark (``_id_mark``) and its

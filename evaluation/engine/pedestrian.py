@@ -67,6 +67,7 @@ import math
 
 import numpy as np
 
+from . import cityscale_raises
 from .errors import InputError
 from .level_samples import LevelSamples, setup_class, setup_running_counts
 from .operating_point import matlab_descending
@@ -254,10 +255,13 @@ def evaluate_setups_with_samples(truth, predictions, protocol="miss-rate"):
     if conflict:  # a record made before the order was kept
         where = {k: v for k, v in conflict.items() if k in ("record", "field")}
         raise InputError(conflict["path"], conflict["message"], **where)
+    if protocol.variant == "cityscale":  # a value the script raises on, where it does
+        cityscale_raises.check(truth, predictions, protocol)
     exact = _exact_order(predictions, protocol)
     n_images = truth.n_images
     flagged = ignore_flags(truth, protocol)
     void = truth.zero_id_boxes() if protocol.variant == "cityscale" else None
+    fraction = truth.cityscale_ignore()[1] if void is not None else None
     height = truth.boxes[:, 3]
     visibility = setup_visibility(truth, protocol)
     script = protocol.variant == "cityscale"
@@ -297,7 +301,7 @@ def evaluate_setups_with_samples(truth, predictions, protocol="miss-rate"):
             keep = setup.keeps(det_height, HEIGHT_EXPANSION)
             # the city-scale code: boxes of id 0, and in-setup boxes whose fractional
             # ignore key makes int(ignore) = 0 (plain IoU although ignored)
-            city = None if void is None else (void, own & inside & truth.ignore_key_fraction)
+            city = None if void is None else (void, own & inside & fraction)
             order_key = None if exact is None else exact[1].get(setup.height)
             levels[setup.name][truth.classes[k]], parts[(setup.name, truth.classes[k])] = (
                 _class_result(

@@ -217,7 +217,7 @@ def ignore_flags(truth, protocol):
     of CSV (in COCO JSON that flag is an ``iscrowd`` strictly between -1 and 1,
     ``iscrowd_fraction``, which the city-scale code does not read: not an ignore box)."""
     if protocol.variant == "cityscale":
-        return truth.ignore_key | (truth.ignore & ~truth.iscrowd_fraction)
+        return truth.cityscale_ignore()[0] | (truth.ignore & ~truth.iscrowd_fraction)
     return truth.crowd | truth.ignore | truth.difficult | truth.ignore_key
 
 

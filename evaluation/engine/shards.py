@@ -77,11 +77,27 @@ def truth_slice(truth, start, stop):
         truth,
         **{name: getattr(truth, name)[box_index] for name in _BOX_FIELDS},
         vis_ratio=None if truth.vis_ratio is None else truth.vis_ratio[box_index],
+        cityscale_faults=_faults_slice(truth.cityscale_faults, box_index),
         region_image=truth.region_image[regions],
         regions=truth.regions[regions],
     )
     truth.share_images_digest(sliced)  # its images are the split's: hashed once
     return sliced, box_index
+
+
+def _faults_slice(faults, box_index):
+    """``GroundTruth.cityscale_faults`` of the boxes ``box_index`` (sorted), renumbered."""
+    sliced = {}
+    for field, entries in faults.items():
+        at = np.searchsorted(box_index, [entry[0] for entry in entries])
+        kept = [
+            [int(i), *entry[1:]]
+            for i, entry in zip(at, entries)
+            if i < len(box_index) and box_index[i] == entry[0]
+        ]
+        if kept:
+            sliced[field] = kept
+    return sliced
 
 
 def predictions_slice(predictions, start, stop, positions=None):

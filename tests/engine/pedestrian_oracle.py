@@ -315,8 +315,18 @@ def cityscale_coco(dataset, results, id_setup):
     dts_all = load_res(dataset, results)
     img_ids = sorted({im["id"] for im in dataset["images"]})  # eval_demo; np.unique
     cat_ids = sorted({c["id"] for c in dataset["categories"]})
-    # _prepare: deep copies, then the ignore flag
-    gts_all = copy.deepcopy(dataset["annotations"])
+    # _prepare: deep copies of getAnnIds(imgIds, catIds) (image by image in sorted id
+    # order, file order within; listed images and categories only), then the ignore
+    # flag. (Before engine 2.15.8 this took every annotation in file order: the same
+    # numbers, but it raised on a null vis_ratio of an unlisted image, as the script
+    # does not.)
+    listed = set(cat_ids)
+    by_image = {}
+    for ann in dataset["annotations"]:
+        by_image.setdefault(ann["image_id"], []).append(ann)
+    gts_all = copy.deepcopy(
+        [a for i in img_ids for a in by_image.get(i, []) if a["category_id"] in listed]
+    )
     for gt in gts_all:
         gt["ignore"] = gt["ignore"] if "ignore" in gt else 0
         out_of_range = (
@@ -377,6 +387,15 @@ def cityscale_coco(dataset, results, id_setup):
     with np.errstate(divide="ignore"):
         mean_s = np.exp(np.mean(np.log(mrs[mrs < 2])))
     return float(mean_s), mrs.tolist()
+
+
+def cityscale_script(dataset, results):
+    """``eval_demo.py``: ``evaluate(id_setup)``, ``accumulate()``, ``summarize`` for the
+    setups 0..3 in turn, each on its own deep copy; ``[(mean_s, miss rates)]`` per
+    setup, or the exception of the first setup that raises (``_prepare``'s TypeError
+    comparing a ``vis_ratio``, ``computeIoU``'s ``int(ignore)``: the script stops there
+    and prints nothing more)."""
+    return [cityscale_coco(dataset, results, id_setup) for id_setup in range(4)]
 
 
 def scene_dataset(scene):

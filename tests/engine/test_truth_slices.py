@@ -118,6 +118,7 @@ def _sliced(path, vis_ratio=False):
     except InputError as e:
         return str(e)
     assert not any(cols.pop("unread_counts").values()) and not cols.pop("bad_rows")
+    assert not cols.pop("city_rows")
     return cols
 
 

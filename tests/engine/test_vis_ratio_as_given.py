@@ -168,14 +168,19 @@ def test_vis_ratio_wins_beside_a_visibility(tmp_path):
 @pytest.mark.parametrize("annotations", ["reference", "strict"])
 @pytest.mark.parametrize("literal", ["null", '"0.5"', "[]", "{}"])
 def test_null_or_text_is_refused_naming_record_and_field(tmp_path, annotations, literal):
-    """The script raises on these (TypeError in ``_prepare``): refused, naming the
-    annotation and the field, under either annotation policy. Left unread (``read``)
-    they were absent."""
-    dataset, _ = _scene("@")
-    gt = tmp_path / "gt.json"
+    """The script raises on these (TypeError in ``_prepare``; the box's height 100
+    lets the comparison run): refused, naming the annotation and the field — under
+    ``reference`` by ``miss-rate-cityscale`` where the script compares it (engine
+    2.15.8; ``test_cityscale_raises.py``), under ``strict`` on reading. Left unread
+    (``read``) they were absent."""
+    dataset, results = _scene("@")
+    gt, dt = _write(tmp_path, dataset, results)
     gt.write_text(json.dumps(dataset).replace('"@"', literal))
+    with pytest.raises(TypeError):  # the transliteration, on the file as Python reads it
+        pedestrian_oracle.cityscale_script(json.loads(gt.read_text()), results)
     with pytest.raises(InputError) as e:
-        load_truth(gt, annotations=annotations)
+        truth = load_truth(gt, annotations=annotations)
+        evaluate_setups(truth, load_predictions(dt, truth), "miss-rate-cityscale")
     assert e.value.record == "annotations[0]" and e.value.field == "vis_ratio"
     assert load_truth(gt, vis_ratio="read").n_boxes == 3
 

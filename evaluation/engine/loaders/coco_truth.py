@@ -157,6 +157,7 @@ class _Records:
             self.loose_types["annotations"] = unread_fields.LOOSE_WITH_VIS_RATIO
         self.unread = dict.fromkeys(unread_fields.COUNTS, 0)
         self.bad_rows = {}  # annotation row -> (field, message): raised if it is scored
+        self.city_rows = {}  # annotation row -> {field: (message, truthy)}: cityscale_raises
         self.totals = totals or {}  # records per array, from a syntax-only scan
         self.filled = dict.fromkeys(_RECORDS)  # preallocated array columns per key
         self.parts = {key: [] for key in _RECORDS}
@@ -170,7 +171,7 @@ class _Records:
         if first:  # a repeated key replaces the earlier array, as in a whole decode
             self.parts[key], self.count[key], self.filled[key] = [], 0, None
             if key == "annotations":
-                self.bad_rows = {}
+                self.bad_rows, self.city_rows = {}, {}
             for field_key in [k for k in self.out_of_range if k[0] == key]:
                 del self.out_of_range[field_key]
         try:
@@ -181,7 +182,12 @@ class _Records:
                     raise
                 loose = json_literals.decode(records, self.loose_types[key])
                 decoded = unread_fields.normalise(
-                    key, loose, self.unread, base=self.count[key], bad=self.bad_rows
+                    key,
+                    loose,
+                    self.unread,
+                    base=self.count[key],
+                    bad=self.bad_rows,
+                    city=self.city_rows,
                 )
         except (msgspec.ValidationError, msgspec.DecodeError) as e:
             self.error = (e, key, self.count[key], piece_at, prefix())
@@ -242,6 +248,11 @@ class _Records:
     def annotations(self, anns, key, base):
         def given(name):
             return np.array([_size(getattr(a, name)) for a in anns], np.float64)
+
+        for i, a in enumerate(anns):  # NaN, Infinity: int(ignore) raises in computeIoU
+            if type(a.ignore) is float and not math.isfinite(a.ignore):
+                fault = unread_fields.ignore_fault(a.ignore)
+                self.city_rows.setdefault(base + i, {})["ignore"] = (fault, True)
 
         return {
             "box_ids": self.ids([a.id for a in anns], key, "id", base),
@@ -338,6 +349,7 @@ class _Records:
                 del pieces
         cols["unread_counts"] = dict(self.unread)
         cols["bad_rows"] = dict(self.bad_rows)
+        cols["city_rows"] = dict(self.city_rows)
         return cols
 
     def _check_outline(self, checker, outline, kind):

@@ -71,6 +71,27 @@ def _raise_if_scored(path, bad_rows, rows, n):
         raise InputError(path, message, record=f"annotations[{hits[0]}]", field=field)
 
 
+def _cityscale_faults(city_rows, rows):
+    """``GroundTruth.cityscale_faults`` from the loader's ``city_rows`` (file row ->
+    {field: (message, truthy)}): per field, ``[box, record, message, truthy]`` of the
+    annotations kept (``rows``: the source rows kept, None for all), in box order
+    (``"ignore_read"``: its message is whether ``int()`` of the truthy value is
+    nonzero)."""
+    if not city_rows:
+        return {}
+    if rows is None:
+        position = {row: row for row in city_rows}
+    else:
+        at = np.flatnonzero(np.isin(rows, np.fromiter(city_rows, np.int64)))
+        position = {int(rows[i]): int(i) for i in at}
+    faults = {}
+    for row in sorted(position, key=position.get):
+        for field, (message, truthy) in sorted(city_rows[row].items()):
+            entry = [position[row], f"annotations[{row}]", message, bool(truthy)]
+            faults.setdefault(field, []).append(entry)
+    return faults
+
+
 def _order(values, id_type):
     """Stable ascending order of a family's defining ids (pycocotools' order)."""
     return ids_module.sort_order(values) if id_type else np.argsort(values, kind="stable")
@@ -79,7 +100,7 @@ def _order(values, id_type):
 def read_truth(
     path, images, fmt, classes, policy, ids="any", annotations="reference", vis_ratio="as-given"
 ):
-    entry_counts, bad_rows = {}, {}
+    entry_counts, bad_rows, city_rows = {}, {}, {}
     if fmt == "json":
         cols = coco_json.read_truth(
             path,
@@ -89,6 +110,7 @@ def read_truth(
         )
         entry_counts.update(cols.pop("unread_counts"))
         bad_rows = cols.pop("bad_rows")
+        city_rows = cols.pop("city_rows")
         image_locate = lambda i: f"images[{i}]"  # noqa: E731
         image_type = _typed_family(
             path, cols, "image_ids", ("box_image_ids", "region_image_ids"), image_locate, "image"
@@ -166,6 +188,7 @@ def read_truth(
     class_order = _order(cols["class_ids"], class_type)
     class_ids = cols["class_ids"][class_order]
     annotation_counts = {**dict.fromkeys(annotation_index.COUNTS, 0), **entry_counts}
+    rows = None
     if fmt == "json" and annotations == "strict":
         checks.check_unique(path, cols["box_ids"], box_locate, "id")
     elif fmt == "json":
@@ -260,6 +283,7 @@ def read_truth(
         # ignore column is no iscrowd
         iscrowd_fraction=cols["ignore"] if fmt == "json" else None,
         source=str(path),
+        cityscale_faults=_cityscale_faults(city_rows, rows),
         image_id_type=image_type,
         class_id_type=class_type,
         box_policy=policy,

@@ -271,11 +271,13 @@ def bad_scores(score):
     return np.isnan(score) & (score.view(np.uint64) == BAD_SCORE_BITS)
 
 
-def normalise(key, records, counts, base=0, bad=None):
+def normalise(key, records, counts, base=0, bad=None, city=None):
     """The loosely decoded ``records`` with every value of a type its field cannot hold
     set to the field's default, counted in ``counts``; regions that are not an object
     with an id and four numbers are left out, counted; annotations with a bad ``bbox``
-    or ``area`` kept with their error in ``bad`` (``_DEFERRED``; rows from ``base``)."""
+    or ``area`` kept with their error in ``bad`` (``_DEFERRED``; rows from ``base``);
+    a ``vis_ratio`` (as given) or ``ignore`` the CityPersons script raises on, where it
+    reads it, in ``city`` (row -> {field: (message, truthy)}: ``cityscale_raises``)."""
     if key == "dont_care":
         kept = []
         for value in records:
@@ -284,6 +286,7 @@ def normalise(key, records, counts, base=0, bad=None):
             except msgspec.ValidationError:
                 counts["unread_dont_care"] += 1
         return kept
+    city = {} if city is None else city
     if key == "annotations":
         _defer(records, base, {} if bad is None else bad)
     fields = [name for (k, name) in _COUNT_OF if k == key]
@@ -293,25 +296,57 @@ def normalise(key, records, counts, base=0, bad=None):
                 continue
             value = getattr(record, name)
             if isinstance(record, _AnnotationVisRatioAsGiven) and name == "vis_ratio":
-                record.vis_ratio = _as_given(value, base + i, {} if bad is None else bad)
+                record.vis_ratio = _as_given(value, base + i, city)
+            elif key == "annotations" and name == "ignore" and not _fits(key, name, value):
+                fault = ignore_fault(value)
+                if fault:
+                    city.setdefault(base + i, {})["ignore"] = (fault, bool(value))
+                if value:  # truthy: an ignore box of the script, its int() the crowd flag
+                    crowd = not fault and int(value) != 0
+                    city.setdefault(base + i, {})["ignore_read"] = (crowd, True)
+                record.ignore = 0
+                counts[_COUNT_OF[key, name]] += 1
             elif not _fits(key, name, value):
                 fixed = crowd_value(value) if name == "iscrowd" else _DEFAULTS.get(name)
                 setattr(record, name, fixed)
                 counts[_COUNT_OF[key, name]] += 1
             elif name == "difficult":
                 setattr(record, name, bool(value))
-            elif name == "ignore":  # its value, not only its truth (ignore_key_fraction)
-                setattr(record, name, as_number(value))
+            elif name == "ignore":  # its value, not only its truth (ignore_key_fraction);
+                # an integer beyond float64 kept whole: the script's int() takes it
+                setattr(record, name, value if type(value) is int else as_number(value))
             elif name in _NUMBERS and value is not None:
                 setattr(record, name, as_number(value))
     return records
 
 
-def _as_given(value, row, bad):
+def ignore_fault(value):
+    """Why the CityPersons script's ``computeIoU`` raises on ``int(o['ignore'])`` with
+    ``value`` (ValueError for NaN and text ``int`` does not read, OverflowError for an
+    infinity, TypeError for null, arrays and objects), or None where ``int`` reads it."""
+    if type(value) in (int, bool):
+        return None
+    try:
+        int(value)
+        return None
+    except (ValueError, OverflowError, TypeError):
+        pass
+    if type(value) is float:
+        shown = "NaN" if math.isnan(value) else ("Infinity" if value > 0 else "-Infinity")
+    else:
+        shown = "null" if value is None else f"{value!r:.40}"
+    return (
+        "must be a number or text that int() reads (the city-scale script's computeIoU "
+        f"takes int(ignore) as its crowd flag), got {shown}"
+    )
+
+
+def _as_given(value, row, city):
     """A loosely decoded ``vis_ratio`` under ``vis_ratio="as-given"``: a boolean kept
     (it compares as 0 or 1 in ``_prepare``), a number as ``as_number`` reads it, absent
-    kept ``UNSET``; anything else ``UNSET`` with its error in ``bad`` (raised if the
-    annotation is scored: ``_prepare`` raises TypeError comparing it)."""
+    kept ``UNSET``; anything else ``UNSET`` with its error in ``city`` (raised only
+    where the script compares it: ``_prepare``'s ``or`` reaches the vis_ratio test
+    when the height test lets the box through, and raises TypeError; ``cityscale_raises``)."""
     if value is msgspec.UNSET or type(value) is bool:
         return value
     number = as_number(value)
@@ -322,5 +357,5 @@ def _as_given(value, row, bad):
         f"must be a number or boolean (the city-scale script compares vis_ratio with "
         f"the setups' ranges), got {shown}"
     )
-    bad.setdefault(row, ("vis_ratio", message))
+    city.setdefault(row, {})["vis_ratio"] = (message, bool(value))
     return msgspec.UNSET

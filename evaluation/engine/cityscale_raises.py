@@ -1,0 +1,84 @@
+"""Where the CityPersons script ``eval_MR_multisetup.py`` raises on a ground-truth value
+(``miss-rate-cityscale``): the annotation it raises on, as an ``InputError`` naming the
+file, record and field, raised exactly where the script raises and nowhere else.
+
+``eval_demo.py`` runs ``evaluate(id_setup)`` for the setups 0..3 (reasonable, small,
+heavy, all) in turn, and each first ``_prepare``s every annotation of a listed image and
+category (``getAnnIds(imgIds, catIds)``: image by image in sorted id order, file order
+within), then ``evaluateImg`` per category (sorted ids) and image:
+
+* ``_prepare``: ``ignore = 1 if (h < h_lo or h > h_hi) or (v < v_lo or v > v_hi) else
+  ignore``. Python's ``or`` stops at the first true test, so a ``vis_ratio`` that does
+  not compare with a number (null, text, array, object: TypeError) raises only where
+  the height test lets the box through (a NaN height too) — never for a box outside
+  every setup's height range.
+* ``evaluateImg``: when, after ``dt[0:maxDet]`` by score and the expanded height filter
+  (``h_lo / 1.25 <= h < h_hi * 1.25``), a detection of the image and category is left,
+  ``computeIoU`` takes ``int(o['ignore'])`` of each of its annotations, ordered by
+  ``_ignore`` (falsy first, mergesort): NaN and text ``int`` does not read raise
+  ValueError, an infinity OverflowError, null, arrays and objects TypeError. A box
+  outside the setup has ``ignore = 1`` there, so is never converted.
+
+The loader records the values (``GroundTruth.cityscale_faults``); other protocols never
+read them. Tests: ``tests/engine/test_cityscale_raises.py`` against
+``pedestrian_oracle.cityscale_coco``.
+"""
+
+import numpy as np
+
+from .errors import InputError
+from .pedestrian_setups import HEIGHT_EXPANSION  # Params.expFilter
+
+
+def check(truth, predictions, protocol):
+    """Raise the ``InputError`` of the first value the script raises on (setups in
+    order; in a setup ``_prepare`` before ``evaluateImg``), or return None."""
+    faults = truth.cityscale_faults
+    if not faults:
+        return
+    height = truth.boxes[:, 3]
+    visibility = truth.cityscale_visibility()
+    for setup in protocol.setups:
+        lo, hi = setup.height
+        first = None
+        for box, record, message, _ in faults.get("vis_ratio", ()):
+            h = height[box]
+            if not (h < lo or h > hi):  # the height test lets it through
+                key = (int(truth.box_image[box]), box)
+                if first is None or key < first[0]:
+                    first = (key, record, message, "vis_ratio")
+        if first is None:
+            first = _ignore_fault(truth, predictions, protocol, setup, height, visibility)
+        if first is not None:
+            _, record, message, field = first
+            raise InputError(truth.source, message, record=record, field=field)
+
+
+def _ignore_fault(truth, predictions, protocol, setup, height, visibility):
+    """The first ``int(ignore)`` of ``evaluateImg`` that raises in ``setup``, or None."""
+    entries = truth.cityscale_faults.get("ignore", ())
+    if not entries:
+        return None
+    boxes = np.array([e[0] for e in entries], np.int64)
+    inside = setup.counts(height[boxes], visibility[boxes], script=True)
+    keep = setup.keeps(predictions.boxes[:, 3], HEIGHT_EXPANSION)
+    cap = protocol.max_detections
+    n_classes = max(len(truth.classes), 1)
+    pair = predictions.image.astype(np.int64) * n_classes + predictions.cls
+    order = np.argsort(pair, kind="stable")  # per (image, class), file order within
+    pair = pair[order]
+    first = None
+    for (box, record, message, truthy), counted in zip(entries, inside):
+        if not counted:  # _prepare set ignore = 1 there
+            continue
+        cls, image = int(truth.box_class[box]), int(truth.box_image[box])
+        key = (cls, image, bool(truthy), box)
+        if first is not None and key >= first[0]:
+            continue
+        at = image * n_classes + cls
+        d = order[np.searchsorted(pair, at) : np.searchsorted(pair, at, side="right")]
+        if cap is not None and len(d) > cap:  # numpy's argsort of -score: NaN last
+            d = d[np.argsort(-predictions.score[d], kind="stable")][:cap]
+        if keep[d].any():
+            first = (key, record, message, "ignore")
+    return first
