@@ -260,7 +260,7 @@ class GroundTruth:
             + ([self.ignore_key.astype("<f8")] if self.ignore_key.any() else [])
             + ([self.ignore_key_fraction.astype("<f8")] if self.ignore_key_fraction.any() else [])
             + ([_canonical_nan(self.vis_ratio)] if self._vis_ratio_says_more() else [])
-            + ([self._faults_column()] if self.cityscale_faults else [])
+            + ([column] if (column := self._faults_column()).any() else [])
         )
         order = np.lexsort(columns.T[::-1])
         digest.update(np.ascontiguousarray(columns[order]).tobytes())
@@ -272,12 +272,15 @@ class GroundTruth:
         return digest.hexdigest()
 
     def _faults_column(self):
-        """Per box, ``cityscale_faults`` as a number (the hash's column, added only
-        where there is one): 1 a ``vis_ratio`` the script cannot compare, 2 an
-        ``ignore`` its ``int()`` raises on, 4 an ``ignore`` read as truthy text, an
-        array or an object, 8 that one's ``int()`` nonzero."""
+        """Per box, what ``cityscale_faults`` changes in the numbers where a split is
+        scored (the hash's column, added only where non-zero): 1 a ``vis_ratio`` the
+        script cannot compare (refused on reading before engine 2.15.8: no split holds
+        one), 4 an ``ignore`` read as truthy text, an array or an object (unread, 0,
+        before), 8 that one's ``int()`` nonzero. An ``ignore`` only ``int()`` raises on
+        (NaN, null) scores as before where accepted: not hashed, so a split frozen with
+        one keeps its hash."""
         column = np.zeros(self.n_boxes, "<f8")
-        for name, bit in (("vis_ratio", 1), ("ignore", 2), ("ignore_read", 4)):
+        for name, bit in (("vis_ratio", 1), ("ignore_read", 4)):
             for entry in self.cityscale_faults.get(name, ()):
                 column[entry[0]] += bit + (8 if name == "ignore_read" and entry[2] else 0)
         return column

@@ -283,3 +283,15 @@ def _files(draw):
 def test_random_files_raise_and_score_as_the_script(tmp_path, files):
     dataset, results, marks = files
     _agree(*_write(tmp_path, dataset, results, marks))
+
+
+def test_hashes_keep_apart_only_what_scores_differently(tmp_path):
+    """A null ignore scores as 0 wherever it is accepted (falsy in ``_prepare``), as it
+    did when it was left unread: the split keeps its hash. Truthy text is an ignore box
+    of the script (unread, 0, before engine 2.15.8): it hashes apart."""
+    hashes = {}
+    for literal in ("0", "null", '"x"'):
+        dataset = _dataset([_ann(1, 0.0, ignore="@0")])
+        gt, _ = _write(tmp_path, dataset, [], [literal])
+        hashes[literal] = load_truth(gt).content_hash()
+    assert hashes["null"] == hashes["0"] != hashes['"x"']
