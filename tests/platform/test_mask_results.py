@@ -12,7 +12,7 @@ from pycocotools import mask as mask_utils
 
 from evaluation import services as evaluation_services
 from evaluation.models import Evaluation, Scorecard
-from releases import services, tokens
+from releases import tokens
 
 from ..engine.synthetic import make_detections
 from .conftest import split_dict, upload
@@ -20,7 +20,7 @@ from .test_any_ids import _assert_pycocotools_numbers
 from .test_api import API, client_for, file
 from .test_client import client_home, run  # noqa: F401
 from .test_worker import worker  # noqa: F401
-from .three_uploads import upload_by_page_api_and_command
+from .three_uploads import upload_by_page_api_and_command, upload_sharded
 
 pytestmark = pytest.mark.django_db
 
@@ -77,28 +77,12 @@ def test_the_worker_and_the_sharded_run_score_masks_as_pycocotools(
     users, detector, run_tasks, settings, tmp_path, monkeypatch
 ):
     """Past the inline size the file is streamed into pieces and scored in shards."""
-    from evaluation import class_groups, sharding
-
-    from .test_shards import GROUP_SENDS, _run
-
-    sends = []
-    GROUP_SENDS.clear()
-    monkeypatch.setattr(sharding, "send", lambda *args: sends.append(args))
-    monkeypatch.setattr(class_groups, "send", lambda *args: GROUP_SENDS.append(args))
     truth = split_dict(n_images=8)
     dets = _masks(truth, 4)
     split = evaluation_services.load_split(
         name="masks", revision=1, truth=upload("masks.json", truth)
     )
-    settings.BENCHBOOK_INLINE_VALIDATION_BYTES = 1
-    settings.BENCHBOOK_SHARD_ABOVE = 0
-    settings.BENCHBOOK_SHARD_IMAGES = 3
-    version = services.create_version(detector, "4.0", users["engineer"])
-    run_tasks(
-        services.submit_predictions, version, split, upload("big.json", dets), users["engineer"]
-    )
-    assert sends
-    _run(run_tasks, sends)
+    version = upload_sharded(run_tasks, settings, monkeypatch, users, detector, split, dets)
     card = _assert_pycocotools_numbers(_evaluation(version), truth, dets, tmp_path)
     _mask_area_recorded(card)
     assert Scorecard.objects.filter(evaluation__prediction_sets__version=version).exists()

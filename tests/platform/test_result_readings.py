@@ -11,14 +11,13 @@ import numpy as np
 import pytest
 
 from evaluation import services as evaluation_services
-from releases import services
 
 from ..engine.synthetic import make_detections
 from .conftest import split_dict, upload
 from .test_any_ids import _assert_pycocotools_numbers
 from .test_api import API, client_for, file
 from .test_mask_results import _evaluation
-from .three_uploads import upload_by_page_api_and_command
+from .three_uploads import upload_by_page_api_and_command, upload_sharded
 
 pytestmark = pytest.mark.django_db
 
@@ -77,26 +76,10 @@ def test_the_sharded_run_scores_as_pycocotools(
     users, detector, run_tasks, settings, tmp_path, monkeypatch, reading
 ):
     """Past the inline size the file is streamed into pieces and scored in shards."""
-    from evaluation import class_groups, sharding
-
-    from .test_shards import GROUP_SENDS, _run
-
-    sends = []
-    GROUP_SENDS.clear()
-    monkeypatch.setattr(sharding, "send", lambda *args: sends.append(args))
-    monkeypatch.setattr(class_groups, "send", lambda *args: GROUP_SENDS.append(args))
     truth = split_dict(n_images=8)
     dets = _results(truth, 4, reading)
     split = evaluation_services.load_split(name="kp", revision=1, truth=upload("kp.json", truth))
-    settings.BENCHBOOK_INLINE_VALIDATION_BYTES = 1
-    settings.BENCHBOOK_SHARD_ABOVE = 0
-    settings.BENCHBOOK_SHARD_IMAGES = 3
-    version = services.create_version(detector, "4.0", users["engineer"])
-    run_tasks(
-        services.submit_predictions, version, split, upload("big.json", dets), users["engineer"]
-    )
-    assert sends
-    _run(run_tasks, sends)
+    version = upload_sharded(run_tasks, settings, monkeypatch, users, detector, split, dets)
     card = _assert_pycocotools_numbers(_evaluation(version), truth, dets, tmp_path)
     _recorded(card, reading)
 

@@ -42,3 +42,27 @@ def upload_by_page_api_and_command(client, run_tasks, users, detector, split, se
         "--user", "engineer", "--create-version", str(path),
     )  # fmt: skip
     return ("1.0", "2.0", "3.0")
+
+
+def upload_sharded(run_tasks, settings, monkeypatch, users, detector, split, dets):
+    """``dets`` uploaded as version 4.0 past the inline size: streamed into pieces and
+    scored in shards of 3 images (each send run by ``run_tasks``); the version."""
+    from evaluation import class_groups, sharding
+    from releases import services
+
+    from .test_shards import GROUP_SENDS, _run
+
+    sends = []
+    GROUP_SENDS.clear()
+    monkeypatch.setattr(sharding, "send", lambda *args: sends.append(args))
+    monkeypatch.setattr(class_groups, "send", lambda *args: GROUP_SENDS.append(args))
+    settings.BENCHBOOK_INLINE_VALIDATION_BYTES = 1
+    settings.BENCHBOOK_SHARD_ABOVE = 0
+    settings.BENCHBOOK_SHARD_IMAGES = 3
+    version = services.create_version(detector, "4.0", users["engineer"])
+    run_tasks(
+        services.submit_predictions, version, split, upload("big.json", dets), users["engineer"]
+    )
+    assert sends
+    _run(run_tasks, sends)
+    return version
