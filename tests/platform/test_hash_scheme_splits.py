@@ -12,23 +12,19 @@ CI=true, as the other platform tests.
 import json
 
 import pytest
-from django.core.files.base import ContentFile
-from django.core.files.storage import default_storage
-from django.db import connection
-from django.db.migrations.executor import MigrationExecutor
 from django.urls import reverse
-from django.utils import timezone
 
-from evaluation import engine, triggers
+from evaluation import engine
 from evaluation import services as evaluation_services
 from evaluation.models import BenchmarkSplit, Evaluation
 from evaluation.services import UploadError
 from evaluation.storage import ContentMismatch
 
 from .conftest import detections_for, split_dict, upload
+from .historical_splits import plant, schema_at
 from .test_api import API, client_for
 
-BEFORE = ("evaluation", "0023_vis_ratio_as_given")
+BEFORE = "0023_vis_ratio_as_given"
 
 
 def _as_text(content):
@@ -54,13 +50,6 @@ def _digits_split(seed=5):
     for annotation in content["annotations"]:
         annotation["image_id"] = new_id[annotation["image_id"]]
     return content
-
-
-def _migrate(target):
-    executor = MigrationExecutor(connection)
-    executor.loader.build_graph()
-    executor.migrate(target)
-    return executor.loader.project_state(target).apps
 
 
 def _freeze(name, content):
@@ -135,29 +124,11 @@ def test_a_text_id_split_frozen_before_keeps_its_hash(
     numeric_content = _digits_split(seed=9)  # another split, of numeric ids
     numeric_path = tmp_path / "old-numeric.json"
     numeric_path.write_text(json.dumps(numeric_content))
-    apps = _migrate([BEFORE])
-    try:
-        Historical = apps.get_model("evaluation", "BenchmarkSplit")
+    with schema_at(BEFORE) as historical:
         for row, source in (("old-text", path), ("old-numeric", numeric_path)):
             truth = engine.load_truth(source, ids="any")
-            name = default_storage.save(f"splits/{source.name}", ContentFile(source.read_bytes()))
-            Historical.objects.create(
-                name=row,
-                revision=1,
-                classes=list(truth.classes),
-                class_counts={},
-                image_count=truth.n_images,
-                box_count=truth.n_boxes,
-                sha256=truth.content_hash("untyped"),
-                source_format="json",
-                truth_file=name,
-                annotation_policy="reference",
-                vis_ratio_reading="read",
-                frozen_at=timezone.now(),
-            )
-    finally:
-        _migrate(MigrationExecutor(connection).loader.graph.leaf_nodes())
-        triggers.install(connection)
+            fields = {"sha256": truth.content_hash("untyped"), "vis_ratio_reading": "read"}
+            plant(historical, row, source, truth, **fields)
     split = BenchmarkSplit.objects.get(name="old-text")
     assert split.hash_scheme == "untyped"
     assert split.sha256 == old.content_hash("untyped") != old.content_hash()

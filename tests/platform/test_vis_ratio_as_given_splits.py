@@ -12,20 +12,16 @@ import json
 
 import numpy as np
 import pytest
-from django.core.files.base import ContentFile
-from django.core.files.storage import default_storage
-from django.db import connection
-from django.db.migrations.executor import MigrationExecutor
-from django.utils import timezone
 
-from evaluation import engine, triggers
+from evaluation import engine
 from evaluation import services as evaluation_services
 from evaluation.models import BenchmarkSplit, Evaluation
 from evaluation.storage import ContentMismatch
 
 from .conftest import detections_for, split_dict, upload
+from .historical_splits import plant, schema_at
 
-BEFORE = ("evaluation", "0022_vis_ratio_reading")
+BEFORE = "0022_vis_ratio_reading"
 
 
 def _city_split(seed=47):
@@ -42,13 +38,6 @@ def _city_split(seed=47):
     return split
 
 
-def _migrate(target):
-    executor = MigrationExecutor(connection)
-    executor.loader.build_graph()
-    executor.migrate(target)
-    return executor.loader.project_state(target).apps
-
-
 @pytest.mark.django_db(transaction=True)
 def test_a_split_frozen_with_the_read_reading_keeps_it_and_its_hash(
     tmp_path, settings, run_tasks, flushable
@@ -61,27 +50,9 @@ def test_a_split_frozen_with_the_read_reading_keeps_it_and_its_hash(
     old = engine.load_truth(path, ids="any", vis_ratio="read")
     new = engine.load_truth(path, ids="any", vis_ratio="as-given")
     assert old.content_hash() != new.content_hash()  # so the check below is live
-    apps = _migrate([BEFORE])
-    try:
-        Historical = apps.get_model("evaluation", "BenchmarkSplit")
-        name = default_storage.save("splits/city.json", ContentFile(path.read_bytes()))
-        Historical.objects.create(
-            name="city-dusk",
-            revision=1,
-            classes=list(old.classes),
-            class_counts={},
-            image_count=old.n_images,
-            box_count=old.n_boxes,
-            sha256=old.content_hash(),
-            source_format="json",
-            truth_file=name,
-            annotation_policy="reference",
-            vis_ratio_reading="read",
-            frozen_at=timezone.now(),
-        )
-    finally:
-        _migrate(MigrationExecutor(connection).loader.graph.leaf_nodes())
-        triggers.install(connection)
+    with schema_at(BEFORE) as historical:
+        fields = {"sha256": old.content_hash(), "vis_ratio_reading": "read"}
+        plant(historical, "city-dusk", path, old, **fields)
     split = BenchmarkSplit.objects.get(name="city-dusk")
     assert split.vis_ratio_reading == "read"
     loaded = evaluation_services.load_truth_of(split)

@@ -13,22 +13,18 @@ import json
 
 import numpy as np
 import pytest
-from django.core.files.base import ContentFile
-from django.core.files.storage import default_storage
-from django.db import connection
-from django.db.migrations.executor import MigrationExecutor
 from django.urls import reverse
-from django.utils import timezone
 
-from evaluation import engine, triggers
+from evaluation import engine
 from evaluation import services as evaluation_services
 from evaluation.models import BenchmarkSplit, Evaluation
 from evaluation.storage import ContentMismatch
 
 from .conftest import CLASSES, detections_for, split_dict, upload
+from .historical_splits import plant, schema_at
 from .test_api import API, client_for
 
-BEFORE = ("evaluation", "0021_input_policies")
+BEFORE = "0021_input_policies"
 
 
 def _city_split(seed=41):
@@ -41,13 +37,6 @@ def _city_split(seed=41):
         ann["vis_ratio"] = float(rng.choice([0.3, 0.5, 0.9, 1.0]))
         ann["ignore"] = 0
     return split
-
-
-def _migrate(target):
-    executor = MigrationExecutor(connection)
-    executor.loader.build_graph()
-    executor.migrate(target)
-    return executor.loader.project_state(target).apps
 
 
 def _score(split, detections, run_tasks, protocols):
@@ -73,26 +62,8 @@ def test_a_split_frozen_before_vis_ratio_was_read_still_scores(
     path.write_text(json.dumps(truth))
     old = engine.load_truth(path, ids="any", vis_ratio="unread")
     assert np.isnan(old.visibility).all()
-    apps = _migrate([BEFORE])
-    try:
-        Historical = apps.get_model("evaluation", "BenchmarkSplit")
-        name = default_storage.save("splits/city.json", ContentFile(path.read_bytes()))
-        Historical.objects.create(
-            name="city-night",
-            revision=1,
-            classes=list(old.classes),
-            class_counts={},
-            image_count=old.n_images,
-            box_count=old.n_boxes,
-            sha256=old.content_hash(),
-            source_format="json",
-            truth_file=name,
-            annotation_policy="reference",
-            frozen_at=timezone.now(),
-        )
-    finally:
-        _migrate(MigrationExecutor(connection).loader.graph.leaf_nodes())
-        triggers.install(connection)
+    with schema_at(BEFORE) as historical:
+        plant(historical, "city-night", path, old, sha256=old.content_hash())
     split = BenchmarkSplit.objects.get(name="city-night")
     assert split.vis_ratio_reading == "unread"
     loaded = evaluation_services.load_truth_of(split)
