@@ -369,16 +369,27 @@ class Predictions:
         only under the COCO order (``tie_order="image"``) with a per-image cap other
         than the checked ones (100, none), which takes any recorded conflict
         (conservative), an entry without an order (made before orders were kept), or
-        an entry's ``"overflow"`` refusal (integer scores beyond float64's range)."""
+        an entry's ``"overflow"`` refusal (integer scores beyond float64's range); else
+        the ``"booleans"`` refusal (``loaders.boolean_scores.refusal``: scores that
+        pycocotools joins as a boolean array)."""
         if not self.score_conflicts or protocol.tie_order != "image":
             return None
+        from .loaders import boolean_scores
+
+        found = self._cap_conflict(protocol, boolean_scores.KEY)
+        return found or boolean_scores.refusal(
+            self.score_conflicts.get(boolean_scores.KEY), protocol
+        )
+
+    def _cap_conflict(self, protocol, booleans):
         key = _cap_key(protocol)
         if key in self.score_conflicts:
             entry = self.score_conflicts[key]
             if entry and "overflow" in entry:  # scores beyond float64 (exact_scores)
                 return entry["overflow"]
             return entry if entry and "position" not in entry else None
-        found = next((c for k, c in self.score_conflicts.items() if c and k != "cityscale"), None)
+        skip = ("cityscale", booleans)
+        found = next((c for k, c in self.score_conflicts.items() if c and k not in skip), None)
         return found if not found or "path" in found else found["overflow"]
 
     def score_order(self, protocol):
@@ -402,7 +413,7 @@ class Predictions:
         if "cityscale" in self.score_conflicts:
             entry = self.score_conflicts["cityscale"]
             return entry if entry and "position" not in entry else None
-        return next((c for c in self.score_conflicts.values() if c), None)
+        return next((c for k, c in self.score_conflicts.items() if c and k != "booleans"), None)
 
     def cityscale_order(self):
         """The CityPersons script's order where it is not float64's: ``(index, rank,

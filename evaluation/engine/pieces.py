@@ -16,7 +16,13 @@ import os
 import numpy as np
 
 from .data import Predictions
-from .loaders import detection_blocks, exact_scores, stream_format, stream_predictions
+from .loaders import (
+    boolean_scores,
+    detection_blocks,
+    exact_scores,
+    stream_format,
+    stream_predictions,
+)
 from .shards import PredictionCounts, save_piece, truth_slice
 
 #: One detection in a spill file: its columns and its position in the whole file's
@@ -71,7 +77,9 @@ def stream_pieces(path, truth, ranges, directory, *, name="piece-{k}.npz", **opt
     policy = options.get("boxes") or truth.box_policy
     suspects = np.zeros(len(truth.classes), bool)  # classes holding a score >= 2**53
     infinite = False  # some loaded box is infinite
+    tops = boolean_scores.Tops(truth)  # booleans pycocotools cannot sort
     for block in stream_predictions(path, truth, **options):
+        tops.add(block.image, block.cls, block.score)
         suspects[block.cls[exact_scores.suspect(block.score)]] = True
         infinite = infinite or block.infinite_box  # an integer beyond float64?
         rows = np.empty(len(block.score), SPILL_ROW)
@@ -101,6 +109,7 @@ def stream_pieces(path, truth, ranges, directory, *, name="piece-{k}.npz", **opt
     if stream_format(path, options.get("fmt")) == "json":
         wide = options.get("ids", "any") == "any"
         conflicts = exact_scores.check(path, truth, np.flatnonzero(suspects), wide, infinite)
+        conflicts = boolean_scores.joined(conflicts, path, truth, tops, wide)
     whole = Predictions(
         image=np.zeros(0, np.int32),
         cls=np.zeros(0, np.int32),

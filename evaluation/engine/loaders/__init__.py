@@ -22,6 +22,7 @@ from ..data import Predictions
 from ..errors import InputError
 from . import (
     as_given,
+    boolean_scores,
     checks,
     coco_json,
     csv_tables,
@@ -49,7 +50,7 @@ __all__ = [
 ]
 
 #: Bumped when the parsed columns change shape or meaning: old cache entries are unused.
-CACHE_SCHEMA = 13
+CACHE_SCHEMA = 14
 UNKNOWN_CLASS_POLICIES = ("reject", "drop")
 #: Detections of images the split does not hold: refused (default; pycocotools'
 #: ``loadRes`` asserts every result image is in the set) or, for re-scoring stored
@@ -234,9 +235,10 @@ def load_predictions(
         "unknown_classes": unknown_classes,
         "ids": ids,
         "schema": CACHE_SCHEMA,
+        # 5: a "booleans" entry (scores pycocotools joins as a boolean array);
         # 4: entries may carry the "overflow" refusal (scores beyond float64's range);
         # 3: entries carry pycocotools' exact order (2: the cityscale check was added)
-        "score_conflicts": 4,
+        "score_conflicts": 5,
     }
     if unknown_images != "reject":  # the default keeps the keys of existing entries
         key["unknown_images"] = unknown_images
@@ -390,6 +392,9 @@ def _read_predictions(
         classes = np.unique(block.cls[exact_scores.suspect(block.score)])
         infinite = block.infinite_box  # maybe an integer beyond float64
         conflicts = exact_scores.check(path, truth, classes, ids == "any", infinite)
+        tops = boolean_scores.Tops(truth)
+        tops.add(block.image, block.cls, block.score)
+        conflicts = boolean_scores.joined(conflicts, path, truth, tops, ids == "any")
     return Predictions(
         image=block.image,
         cls=block.cls,

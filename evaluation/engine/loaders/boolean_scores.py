@@ -1,0 +1,164 @@
+"""Scores written as JSON booleans, where pycocotools 2.0.11 cannot sort them.
+
+pycocotools reads ``true``/``false`` with Python's ``json`` as ``bool``s and ranks an
+image's detections with ``np.argsort([-d['score'] ...])`` (Python's ``-True`` is ``-1``:
+no error). ``COCOeval.accumulate`` then runs, for each category (sorted ids), area range
+and ``maxDet`` of ``params.maxDets``, ``dtScores = np.concatenate([e['dtScores']
+[0:maxDet] for e in E])`` and ``np.argsort(-dtScores, kind='mergesort')``. ``E`` holds
+every image with ground truth or a detection of the category (``evaluateImg`` gives None
+for an image with neither); each list converts on its own, and an image with ground
+truth and no detection gives an empty float64 list. So the joined array is boolean —
+and numpy's ``-`` on it raises TypeError — exactly when every image of ``E`` has a
+detection of the class and its first ``maxDet`` by score are all booleans (``True``
+ties with ``1`` and ``1.0``, ties in file order). A longer prefix holds the shorter
+one, so a protocol's smallest cap decides (``coco``: ``maxDet`` 1, the top detection of
+each image; ``recall40``: no cap, every detection); the area ranges share the lists.
+Checked by running pycocotools 2.0.11 (``tests/engine/test_boolean_scores.py``).
+
+The engine reads a boolean as 1.0/0.0. ``Tops`` finds, from those float64 columns, the
+classes where pycocotools could raise (every image of ``E`` has a detection and its top
+one scores 0 or 1); only when there is one is the file read again, loosely
+(``exact_scores._affected``, which tells a boolean from a number), and ``entries``
+gives, per such class, the *depth*: the longest cap under which pycocotools raises
+(``None``: all of every image's detections are booleans, no cap helps). ``refusal``
+decides, per protocol, at compare time (``data.Predictions.score_conflict``).
+"""
+
+import numpy as np
+
+from . import exact_scores, uncompared
+
+#: The key of these entries in ``Predictions.score_conflicts``.
+KEY = "booleans"
+_NO_BREAK = np.iinfo(np.int64).max
+
+
+class Tops:
+    """Per (image, class), the top score pycocotools ranks first (the highest, NaN
+    last; a group of NaN alone: -inf), gathered a block at a time. Memory: one
+    (group, score) pair per group holding a detection."""
+
+    def __init__(self, truth):
+        self._n = len(truth.classes)
+        self._truth = truth
+        self._groups, self._tops = [], []
+        self._held = self._kept = 0
+
+    def add(self, image, cls, score):
+        group = np.asarray(image, np.int64) * self._n + np.asarray(cls, np.int64)
+        score = np.asarray(score, np.float64)
+        group, top = _reduced(group, np.where(np.isnan(score), -np.inf, score))
+        self._groups.append(group)
+        self._tops.append(top)
+        self._held += len(group)
+        if self._held > 2 * self._kept:  # fold the blocks' pairs: one per group
+            group, top = _reduced(np.concatenate(self._groups), np.concatenate(self._tops))
+            self._groups, self._tops = [group], [top]
+            self._held = self._kept = len(group)
+
+    def candidates(self):
+        """The classes where every image with ground truth or a detection of the class
+        has a detection whose top score is 0 or 1 (a boolean read as a number may be
+        all pycocotools joins there)."""
+        group = np.concatenate(self._groups) if self._groups else np.zeros(0, np.int64)
+        top = np.concatenate(self._tops) if self._tops else np.zeros(0)
+        group, top = _reduced(group, top)
+        cls = group % self._n
+        ok = np.zeros(self._n, bool)
+        ok[cls] = True
+        ok[cls[(top != 0.0) & (top != 1.0)]] = False
+        truth = self._truth
+        truth_groups = truth.box_image.astype(np.int64) * self._n + truth.box_class
+        lacking = ~np.isin(truth_groups, group)  # ground truth and no detection
+        ok[truth.box_class[lacking]] = False
+        return np.flatnonzero(ok)
+
+
+def _reduced(group, top):
+    if not len(group):
+        return group, top
+    order = np.argsort(group, kind="stable")
+    group, top = group[order], top[order]
+    starts = np.flatnonzero(np.r_[True, group[1:] != group[:-1]])
+    return group[starts], np.maximum.reduceat(top, starts)
+
+
+def joined(conflicts, path, truth, tops, wide):
+    """``conflicts`` (``exact_scores.check``) with the ``entries`` of the file under
+    ``KEY`` where there are any (the file read again only for ``tops``' candidates)."""
+    found = entries(path, truth, tops.candidates(), wide)
+    return {**conflicts, KEY: found} if found else conflicts
+
+
+def entries(path, truth, classes, wide):
+    """``[{"class", "depth", "path", "record", "field", "message"}]`` for the
+    ``classes`` (``Tops.candidates``) where pycocotools raises under some cap: ``depth``
+    the largest cap it raises under (None: any). The record named is the first in file
+    order of the class's top detections per image (all booleans; what pycocotools joins
+    under every cap)."""
+    if not len(classes):
+        return []
+    rows, _ = exact_scores._affected(path, truth, classes, wide)
+    n = len(truth.classes)
+    group = rows["image"].astype(np.int64) * n + rows["cls"]
+    rank = uncompared.ranks(group, rows["score"])
+    is_bool = rows["kind"] == exact_scores._BOOL
+    out = []
+    for k in np.asarray(classes).tolist():
+        mine = rows["cls"] == k
+        g, r, b, record = group[mine], rank[mine], is_bool[mine], rows["record"][mine]
+        images = np.unique(truth.box_image[truth.box_class == k])
+        if not len(g) or not np.isin(images.astype(np.int64) * n + k, g).all():
+            continue  # an image with ground truth and no detection: a float64 list
+        order = np.lexsort((r, g))
+        g, r, b, record = g[order], r[order], b[order], record[order]
+        starts = np.flatnonzero(np.r_[True, g[1:] != g[:-1]])
+        first_number = np.minimum.reduceat(np.where(b, _NO_BREAK, r), starts)
+        if (first_number == 0).any():
+            continue  # some image's top detection is a number
+        finite = first_number[first_number != _NO_BREAK]
+        depth = int(finite.min()) if len(finite) else None
+        first = starts[np.argmin(record[starts])]
+        value = bool(rows["score"][mine][order][first])
+        out.append(_entry(path, truth, k, depth, int(record[first]), value))
+    return out
+
+
+def _entry(path, truth, k, depth, record, value):
+    if depth is None:
+        joined = "every detection is one"
+    elif depth == 1:
+        joined = "the top-scored detection is one"
+    else:
+        joined = f"the first {depth} by score are"
+    return {
+        "class": k,
+        "depth": depth,
+        "path": str(path),
+        "record": f"record {record}",
+        "field": "score",
+        "message": (
+            f"score {'true' if value else 'false'} is a boolean, and pycocotools 2.0.11 "
+            f"meets booleans alone in class {truth.classes[k]!r}: on every image with "
+            f"ground truth or a detection of the class, {joined} (this record is the "
+            "first of those in file order). Its accumulate joins each image's first "
+            "maxDet scores (np.concatenate; maxDet: this protocol's smallest per-image "
+            "cap) into a boolean array and negates it (-dtScores), where numpy raises "
+            "TypeError. Write the scores as numbers (1.0, 0.0) to have them scored"
+        ),
+    }
+
+
+def refusal(found, protocol):
+    """The entry of ``found`` (``entries``) pycocotools raises on under ``protocol`` (its
+    smallest per-image cap, ``accumulate`` walking ``maxDets`` upwards), or None: only
+    under the COCO order (``tie_order="image"``, pycocotools' family)."""
+    if not found or protocol.tie_order != "image":
+        return None
+    caps = [c for c in protocol.max_detections if c is not None]
+    cap = min(caps) if caps else None
+    for entry in found:
+        depth = entry["depth"]
+        if depth is None or (cap is not None and cap <= depth):
+            return entry
+    return None
