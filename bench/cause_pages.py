@@ -65,12 +65,13 @@ def main():
     from bench.synthetic_split import generate
     from evaluation import services as evaluation_services
     from evaluation.models import Evaluation
+    from evaluation.services import queueing
     from releases import services
     from releases.selectors import image_list
 
     setup_test_environment()
     call_command("migrate", verbosity=0)
-    evaluation_services.dispatch = lambda pk: None  # scored below, in this process
+    queueing.dispatch = lambda pk: None  # scored below, in this process
     started = time.perf_counter()
     truth, baseline = generate(
         seed=7, n_images=args.images, detections=args.detections, n_classes=args.classes

@@ -79,9 +79,10 @@ def _seed(args):
     from django.core.files.base import ContentFile
 
     from evaluation import services as evaluation_services
+    from evaluation.services import queueing
     from releases import demo, services
 
-    evaluation_services.dispatch = lambda pk: None  # score below, in this process
+    queueing.dispatch = lambda pk: None  # score below, in this process
     lead = get_user_model().objects.create_user("lead", password="x")
     team = services.create_team("Shuttle Perception", [(lead, "lead")])
     detector = services.create_detector(team, "Forward camera", demo.CLASSES, protocols=("coco",))

@@ -12,7 +12,8 @@ import functools
 import threading
 
 from .models import Scorecard
-from .services import _load_predictions, load_records, load_truth_of
+from .services.predictions import _load_predictions
+from .services.stored import load_records, load_truth_of
 from .storage import verified_path
 
 

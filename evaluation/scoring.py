@@ -14,7 +14,8 @@ from . import breakdowns, engine, image_loo, jobs, levels, sharding, signals
 from .models import ClassScore, Evaluation, PredictionFile, Scorecard, SliceScore
 from .protocols import resolve as resolve_protocol
 from .rows import class_rows, slice_rows
-from .services import _load_predictions, load_truth_of
+from .services.predictions import _load_predictions
+from .services.stored import load_truth_of
 from .storage import ContentMismatch, file_sha256, verified_predictions
 
 log = logging.getLogger(__name__)

@@ -121,7 +121,8 @@ def from_pieces(evaluation, protocol):
 def _stream_stored_file(evaluation, options):
     """Stream the evaluation's stored file (hash-checked) into pieces and store them;
     None when it is not worth it (``pieces.worth_streaming``)."""
-    from .services import ENGINE_IDS, _format_of, input_policy, load_truth_of
+    from .services.policy import ENGINE_IDS, _format_of, input_policy
+    from .services.stored import load_truth_of
 
     split, prediction_file = evaluation.split, evaluation.predictions
     fmt = _format_of(evaluation.name)

@@ -142,14 +142,15 @@ def test_progress_bar_advances_while_a_real_worker_scores(
 
     from evaluation import services as evaluation_services
     from evaluation.models import Evaluation
+    from evaluation.services import queueing
 
     split = evaluation_services.load_split(
         name="ring-road", revision=1, truth=upload("r.json", split_truth)
     )
     version = services.create_version(detector, "2.0", users["engineer"])
-    dispatch = evaluation_services.dispatch
+    dispatch = queueing.dispatch
     with monkeypatch.context() as held:  # hold the jobs until the page shows them queued
-        held.setattr(evaluation_services, "dispatch", lambda pk: None)
+        held.setattr("evaluation.services.queueing.dispatch", lambda pk: None)
         prediction_set = services.submit_predictions(
             version,
             split,

@@ -34,7 +34,7 @@ def test_a_failure_shows_at_once_and_the_numbers_load_when_scoring_ends(
     )
     version = services.create_version(detector, "3.0", users["engineer"])
     with monkeypatch.context() as held:  # the jobs wait until the page is open
-        held.setattr(evaluation_services, "dispatch", lambda pk: None)
+        held.setattr("evaluation.services.queueing.dispatch", lambda pk: None)
         good = services.submit_predictions(
             version, split, upload("good.json", detections_for(split_truth)), users["engineer"]
         )

@@ -8,7 +8,6 @@ import re
 
 import pytest
 
-from evaluation import services as evaluation_services
 from releases import criteria, services, suites
 from releases.models import AuditEvent, BenchmarkSuite, Detector
 
@@ -52,7 +51,7 @@ def test_no_form_before_the_verdict_is_final(
     client, detector, split, split_truth, users, monkeypatch
 ):
     version = services.create_version(detector, "2.0", users["engineer"])
-    monkeypatch.setattr(evaluation_services, "dispatch", lambda pk: None)  # never scored
+    monkeypatch.setattr("evaluation.services.queueing.dispatch", lambda pk: None)  # never scored
     services.submit_predictions(
         version, split, upload("p.json", detections_for(split_truth)), users["engineer"]
     )

@@ -59,9 +59,10 @@ def test_states_in_order_scoring_judging_then_final(
     version, split, split_truth, users, monkeypatch, run_tasks
 ):
     """Queued evaluations: scoring; all finished but not judged: judging; then pass."""
-    from evaluation import services as ev
 
-    monkeypatch.setattr(ev, "dispatch", lambda pk: None)  # nothing scores yet
+    monkeypatch.setattr(
+        "evaluation.services.queueing.dispatch", lambda pk: None
+    )  # nothing scores yet
     services.submit_predictions(
         version, split, upload("p.json", detections_for(split_truth)), users["engineer"]
     )

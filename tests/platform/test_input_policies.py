@@ -542,7 +542,6 @@ def test_a_lead_cannot_approve_on_evaluations_of_the_old_class_policy(
     (the strict evaluation fails on the unlisted class) only an override with a written
     justification can approve it (``services.sign_off``, the one function behind every
     entry point)."""
-    from evaluation import services as evaluation_services
     from releases import tasks as release_tasks
     from releases import verdicts
     from releases.models import SignOff
@@ -554,7 +553,7 @@ def test_a_lead_cannot_approve_on_evaluations_of_the_old_class_policy(
     run_tasks(services.submit_predictions, version, split, upload("p.json", bad), users["engineer"])
     assert verdicts.verdict_of(version).state == "pass"
     with monkeypatch.context() as held:  # the worker has not run yet
-        held.setattr(evaluation_services, "dispatch", lambda pk: None)
+        held.setattr("evaluation.services.queueing.dispatch", lambda pk: None)
         held.setattr(release_tasks.judge, "delay", lambda *args: None)
         set_suite_policy(detector, users["lead"], unknown_classes="reject")
         assert verdicts.verdict_of(version).state != "pass"

@@ -18,6 +18,7 @@ from django.utils import timezone
 from evaluation import engine, jobs, scoring
 from evaluation import services as evaluation_services
 from evaluation.models import Evaluation, Scorecard
+from evaluation.storage import ContentMismatch
 from releases import services
 from releases.models import AuditEvent
 
@@ -28,7 +29,7 @@ pytestmark = pytest.mark.django_db
 
 def _queued(version, split, split_truth, users, monkeypatch, name="p.json", seed=6):
     """One coco evaluation, queued, nothing dispatched."""
-    monkeypatch.setattr(evaluation_services, "dispatch", lambda pk: None)
+    monkeypatch.setattr("evaluation.services.queueing.dispatch", lambda pk: None)
     prediction_set = services.submit_predictions(
         version, split, upload(name, detections_for(split_truth, seed)), users["engineer"]
     )
@@ -439,7 +440,7 @@ def test_records_files_are_checked_when_read(version, split, split_truth, users,
     assert records.n_images == split.image_count and len(card.records_sha256) == 64
     with open(card.records.path, "ab") as f:
         f.write(b"\0")
-    with pytest.raises(evaluation_services.ContentMismatch, match="records file does not match"):
+    with pytest.raises(ContentMismatch, match="records file does not match"):
         evaluation_services.load_records(card)
     assert AuditEvent.objects.filter(
         kind=AuditEvent.Kind.CONTENT_MISMATCH, subject=f"scorecard:{card.pk}"

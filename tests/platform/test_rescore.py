@@ -247,7 +247,7 @@ def test_a_revision_frozen_while_re_scoring_runs(
     )
     rev2 = _load(rev2_truth, 2)
     with pytest.MonkeyPatch.context() as patch:  # no worker yet
-        patch.setattr(evaluation_services, "dispatch", lambda pk: None)
+        patch.setattr("evaluation.services.queueing.dispatch", lambda pk: None)
         rescore.rescore(detector, users["lead"], rev2)
     pending = list(Evaluation.objects.filter(state="queued"))
     assert pending and {e.split_id for e in pending} == {rev2.pk}
@@ -407,7 +407,7 @@ def test_admin_neither_adds_sets_nor_changes_what_is_evaluated(
     queued evaluation's image policy (an upload never drops) cannot be switched."""
     assert admin_client.get(reverse("admin:releases_predictionset_add")).status_code == 403
     rev2 = _load(rev2_truth, 2)
-    monkeypatch.setattr(evaluation_services, "dispatch", lambda pk: None)
+    monkeypatch.setattr("evaluation.services.queueing.dispatch", lambda pk: None)
     rescore.rescore(detector, users["lead"], rev2, [uploaded[0].pk])
     queued = Evaluation.objects.filter(state="queued", split=rev2).first()
     url = reverse("admin:evaluation_evaluation_change", args=[queued.pk])

@@ -74,7 +74,7 @@ def test_scoring_again_is_a_no_op(version, split, split_truth, users, run_tasks)
 
 
 def test_a_crashed_run_restarts_on_redelivery(version, split, split_truth, users, monkeypatch):
-    monkeypatch.setattr(evaluation_services, "dispatch", lambda pk: None)
+    monkeypatch.setattr("evaluation.services.queueing.dispatch", lambda pk: None)
     prediction_set = services.submit_predictions(
         version, split, upload("p.json", detections_for(split_truth)), users["engineer"]
     )
@@ -98,7 +98,7 @@ def test_a_crashed_run_restarts_on_redelivery(version, split, split_truth, users
 
 
 def test_attempts_are_capped(version, split, split_truth, users, monkeypatch, settings):
-    monkeypatch.setattr(evaluation_services, "dispatch", lambda pk: None)
+    monkeypatch.setattr("evaluation.services.queueing.dispatch", lambda pk: None)
     prediction_set = services.submit_predictions(
         version, split, upload("p.json", detections_for(split_truth)), users["engineer"]
     )
@@ -140,7 +140,7 @@ def test_a_stalled_running_evaluation_is_requeued(
     version, split, split_truth, users, monkeypatch, run_tasks
 ):
     with monkeypatch.context() as patch:
-        patch.setattr(evaluation_services, "dispatch", lambda pk: None)
+        patch.setattr("evaluation.services.queueing.dispatch", lambda pk: None)
         prediction_set = services.submit_predictions(
             version, split, upload("p.json", detections_for(split_truth)), users["engineer"]
         )

@@ -53,9 +53,8 @@ def test_only_a_lead_of_the_team_signs_off(scored_version, users, who, message):
 
 
 def test_no_sign_off_while_evaluations_are_pending(version, split, split_truth, users, monkeypatch):
-    from evaluation import services as evaluation_services
 
-    monkeypatch.setattr(evaluation_services, "dispatch", lambda pk: None)
+    monkeypatch.setattr("evaluation.services.queueing.dispatch", lambda pk: None)
     services.submit_predictions(
         version, split, upload("p.json", detections_for(split_truth)), users["engineer"]
     )

@@ -137,7 +137,7 @@ def test_an_unfinished_evaluation_still_moves(version, split, split_truth, users
     """The guard is on finished rows only: queued → running → done is the worker's job."""
     from evaluation import services as evaluation_services
 
-    monkeypatch.setattr(evaluation_services, "dispatch", lambda pk: None)
+    monkeypatch.setattr("evaluation.services.queueing.dispatch", lambda pk: None)
     services.submit_predictions(
         version, split, upload("p.json", detections_for(split_truth)), users["engineer"]
     )
@@ -456,9 +456,8 @@ def head_file(settings, tmp_path):
 def headed(head_file, decided, users, run_tasks, split, split_truth, detector, monkeypatch):
     """``decided`` with a head file, and a newer version's upload last in the chain
     (nothing derived from rows vouches for an upload event)."""
-    from evaluation import services as evaluation_services
 
-    monkeypatch.setattr(evaluation_services, "dispatch", lambda pk: None)
+    monkeypatch.setattr("evaluation.services.queueing.dispatch", lambda pk: None)
     newer = services.create_version(detector, "1.5.0", users["engineer"])
     run_tasks(
         services.submit_predictions,

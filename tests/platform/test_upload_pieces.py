@@ -29,6 +29,7 @@ from evaluation.models import (
     PredictionPieces,
     Scorecard,
 )
+from evaluation.services import predictions as evaluation_predictions
 from evaluation.storage import local_path
 from releases import services
 
@@ -83,7 +84,7 @@ def _reference_pieces(split, dets, tmp_path, **options):
     path = tmp_path / "whole.json"
     path.write_text(json.dumps(dets))
     truth = evaluation_services.load_truth_of(split)
-    predictions = evaluation_services._load_predictions(path, truth, "p.json", **options)
+    predictions = evaluation_predictions._load_predictions(path, truth, "p.json", **options)
     out = []
     for k, piece in enumerate(shards.pieces(truth, predictions, shards.plan(12, 3))):
         shards.save_piece(tmp_path / f"ref-{k}.npz", *piece)

@@ -211,7 +211,7 @@ def test_two_concurrent_replacements_cannot_both_win(
     is refused with 409 — never two current sets, never an IntegrityError."""
     from releases import tasks as release_tasks
 
-    monkeypatch.setattr(evaluation_services, "dispatch", lambda pk: None)  # stay queued
+    monkeypatch.setattr("evaluation.services.queueing.dispatch", lambda pk: None)  # stay queued
     monkeypatch.setattr(release_tasks.judge, "delay", lambda *a: None)
     settings.BENCHBOOK_INLINE_VALIDATION_BYTES = 0
     failed = services.submit_predictions(version, split, upload("bad.json", BAD), users["lead"])
