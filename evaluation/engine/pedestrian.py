@@ -106,22 +106,43 @@ def _quiet(function):
     return quietly
 
 
+#: ``overlaps``' rules for a corner that is NaN: MATLAB's ``min``/``max`` (the toolbox)
+#: omit it (MathWorks documentation), Python's builtin ``min(d, g)``/``max(d, g)`` (the
+#: city-scale script's ``iou``) keep the first argument unless the second compares
+#: less/greater, i.e. the detection's corner when either is NaN.
+MATLAB, PYTHON = "matlab", "python"
+
+
 @_quiet
-def overlaps(det, gt, ignored):
+def overlaps(det, gt, ignored, nan_rule=MATLAB):
     """``compOas``: (len(det), len(gt)) overlaps of xywh boxes, continuous coordinates;
     IoU for a regular box, intersection over the detection's area for an ignore box;
-    0 where the boxes do not intersect."""
-    x1 = np.maximum(det[:, None, 0], gt[None, :, 0])
-    y1 = np.maximum(det[:, None, 1], gt[None, :, 1])
-    w = np.minimum(det[:, None, 0] + det[:, None, 2], gt[None, :, 0] + gt[None, :, 2]) - x1
-    h = np.minimum(det[:, None, 1] + det[:, None, 3], gt[None, :, 1] + gt[None, :, 3]) - y1
-    valid = (w > 0) & (h > 0)
-    inter = np.where(valid, w * h, 0.0)
+    0 where the boxes do not intersect. Per pair (toolbox ``bbGt.compOas``; the
+    city-scale ``iou`` alike): ``w = min(dx2, gx2) - max(dx1, gx1)``, 0 if ``w <= 0``;
+    ``h`` likewise; ``t = w * h``; ``oa = t / (da if ignored else da + ga - t)``. A NaN
+    ``w`` or ``h`` is not ``<= 0``, so the pair's overlap is then computed (NaN);
+    ``nan_rule`` says how ``min``/``max`` treat a NaN corner (``MATLAB``, ``PYTHON``)."""
+    if nan_rule == MATLAB:
+        low, high = np.fmax, np.fmin
+    else:
+
+        def low(d, g):
+            return np.where(g > d, g, d)
+
+        def high(d, g):
+            return np.where(g < d, g, d)
+
+    x1 = low(det[:, None, 0], gt[None, :, 0])
+    y1 = low(det[:, None, 1], gt[None, :, 1])
+    w = high(det[:, None, 0] + det[:, None, 2], gt[None, :, 0] + gt[None, :, 2]) - x1
+    h = high(det[:, None, 1] + det[:, None, 3], gt[None, :, 1] + gt[None, :, 3]) - y1
+    empty = (w <= 0) | (h <= 0)
+    inter = w * h
     det_area = (det[:, 2] * det[:, 3])[:, None]
     union = det_area + (gt[:, 2] * gt[:, 3])[None, :] - inter
     denominator = np.where(ignored[None, :], det_area, union)
     out = np.zeros(inter.shape)
-    np.divide(inter, denominator, out=out, where=valid)
+    np.divide(inter, denominator, out=out, where=~empty)
     return out
 
 
@@ -380,7 +401,7 @@ def _class_result(
         else:
             void, plain = city
             no = np.zeros(len(regions), bool)
-            oa = overlaps(det_boxes[kept], boxes, ignored & ~np.r_[plain[g], no])
+            oa = overlaps(det_boxes[kept], boxes, ignored & ~np.r_[plain[g], no], PYTHON)
             box_void = np.r_[void[g], no]
         outcomes.extend(match_image(oa.tolist(), ignored.tolist(), box_void))
         scores.extend(predictions.score[kept].tolist())

@@ -33,6 +33,17 @@ REF = [10.0**e for e in (-2, -1.75, -1.5, -1.25, -1, -0.75, -0.5, -0.25, 0)]  # 
 FPPI_THRS = [0.0100, 0.0178, 0.0316, 0.0562, 0.1000, 0.1778, 0.3162, 0.5623, 1.0000]
 
 
+def matlab_min(a, b):
+    """MATLAB's ``min(a, b)`` of two doubles: a NaN operand is omitted (MathWorks
+    documentation: "min(A,B) ... omits NaN by default"); both NaN give NaN."""
+    return b if math.isnan(a) else a if math.isnan(b) else min(a, b)
+
+
+def matlab_max(a, b):
+    """MATLAB's ``max(a, b)``: a NaN operand omitted, as ``matlab_min``."""
+    return b if math.isnan(a) else a if math.isnan(b) else max(a, b)
+
+
 def comp_oas(dt, gt, ig):
     """``bbGt compOas``: overlap of each dt with each gt; over the dt's area if ig."""
     m, n = len(dt), len(gt)
@@ -43,10 +54,10 @@ def comp_oas(dt, gt, ig):
         for j in range(n):
             ge = (gt[j][0] + gt[j][2], gt[j][1] + gt[j][3])
             ga = gt[j][2] * gt[j][3]
-            w = min(de[0], ge[0]) - max(dt[i][0], gt[j][0])
+            w = matlab_min(de[0], ge[0]) - matlab_max(dt[i][0], gt[j][0])
             if w <= 0:
                 continue
-            h = min(de[1], ge[1]) - max(dt[i][1], gt[j][1])
+            h = matlab_min(de[1], ge[1]) - matlab_max(dt[i][1], gt[j][1])
             if h <= 0:
                 continue
             t = w * h

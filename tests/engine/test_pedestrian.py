@@ -424,10 +424,15 @@ def test_no_counted_box_is_absent_and_no_detection_is_one(tmp_path):
 
 # --- random scenes against both transliterations --------------------------------
 
-_coord = st.integers(0, 12).map(lambda v: v * 10.0)
+_finite = st.integers(0, 12).map(lambda v: v * 10.0)
+# now and then a non-finite corner: MATLAB's min/max omit a NaN, Python's keep it first
+_coord = st.integers(0, 15).map(
+    lambda v: v * 10.0 if v <= 12 else [-math.inf, math.inf, math.nan][v - 13]
+)
 _height = st.sampled_from([15.0, 19.0, 20.0, 39.5, 40.0, 50.0, 60.0, 75.0, 80.0, 93.75, 120.0])
 _vis = st.sampled_from([None, 0.1, 0.2, 0.5, 0.65, 0.8, 1.0])
-_aspect = st.sampled_from([0.3, 0.41, 0.6])  # width / height; 0.41 is dbEval's standard
+# width / height; 0.41 is dbEval's standard; inf: an endless box (x + w NaN from -inf)
+_aspect = st.sampled_from([0.3, 0.41, 0.6] * 3 + [math.inf])
 
 
 @st.composite
@@ -450,7 +455,8 @@ def _scenes(draw):
                     draw(st.booleans()) and draw(st.booleans()) and draw(st.booleans()),
                 )
             )
-        regions = [[draw(_coord), draw(_coord), 60.0, 90.0] for _ in range(draw(st.integers(0, 1)))]
+        n_regions = draw(st.integers(0, 1))  # finite: a non-finite region is left unread
+        regions = [[draw(_finite), draw(_finite), 60.0, 90.0] for _ in range(n_regions)]
         dt = []
         for _ in range(draw(st.integers(0, 6))):
             if gt and draw(st.booleans()):
@@ -473,7 +479,8 @@ def _scenes(draw):
 @given(scene=_scenes())
 def test_random_scenes_agree_with_both_transliterations(tmp_path, scene):
     """Tied scores across images, crowd boxes, neighbouring labels, regions, heights
-    on every boundary (19/20, 39.5/40, 50, 75, 93.75) and visibility on 0.2/0.65."""
+    on every boundary (19/20, 39.5/40, 50, 75, 93.75), visibility on 0.2/0.65, and
+    non-finite corners (x or y NaN or infinite, endless widths: x + w NaN)."""
     _check_both(tmp_path, scene)
 
 
@@ -545,4 +552,51 @@ def test_an_ignore_key_makes_an_ignore_box(tmp_path):
         }
     ]
     assert _row(_ours(tmp_path, scene), "reasonable")["miss_rate"] == pytest.approx(1.0)
+    _check_both(tmp_path, scene)
+
+
+def test_a_nan_corner_is_omitted_by_matlab_and_kept_first_by_python(tmp_path):
+    """``compOas`` with a NaN corner (toolbox ``bbGt.m``, from memory; MATLAB's
+    ``min``/``max`` omit NaN, MathWorks documentation). Detection D = [NaN, 0, 30, 100]
+    over counted box G = [0, 0, 30, 100]; D's right edge NaN + 30 = NaN.
+    Toolbox: w = min(NaN, 30) - max(NaN, 0) = 30 - 0 = 30; h = min(100, 100) - max(0, 0)
+    = 100; t = 3000; da = 30 * 100 = 3000 (x takes no part), ga = 3000; u = 3000 + 3000
+    - 3000 = 3000; oa = 1 >= 0.5: a true positive, recall 1 at FPPI 0 -> LAMR 1e-10
+    (numpy's minimum/maximum would give w = NaN, and the former 0: a false positive).
+    City-scale script (``iou``: Python's builtin min(dx2, gx2) / max(dx1, gx1) keep the
+    first argument, D's, when a comparison involves NaN): w = NaN - NaN = NaN, not
+    ``<= 0``; h = 100; iou = NaN; its match test ``ious < iou`` is false for NaN, so D
+    takes G: a true positive too, LAMR 0 (no clamp)."""
+    scene = [{"gt": [_box(0, 0, 30, 100, 1.0)], "dt": [([math.nan, 0, 30, 100], 0.9)]}]
+    toolbox = _row(_ours(tmp_path, scene), "reasonable")
+    assert toolbox["detections"]["true_positive"] == 1
+    assert toolbox["miss_rate"] == pytest.approx(1e-10, rel=1e-12)
+    city = _row(_ours(tmp_path, scene, "miss-rate-cityscale"), "reasonable")
+    assert city["detections"]["true_positive"] == 1
+    assert city["miss_rate"] == 0.0
+    _check_both(tmp_path, scene)
+
+
+def test_an_endless_ignore_box_absorbs_by_matlab_min_max(tmp_path):
+    """An ignore box R = [-Infinity, 0, Infinity, 480] (a ``people`` box, a neighbouring
+    label; x + w = -inf + inf = NaN; a don't-care region so written is left unread) and
+    detection D = [100, 0, 30, 100] (no box). Toolbox ``compOas`` with R ignored:
+    w = min(130, NaN) - max(100, -Inf) = 130 - 100 = 30; h = min(100, 480) - max(0, 0)
+    = 100; t = 3000; u = da = 3000; oa = 1 >= 0.5: D is ignored, not a false positive.
+    The city-scale script keeps D's corners first (130, 100): the same 30 and 100, so D
+    is ignored there too. Numpy's propagation (w = NaN) would have scored 0 before:
+    D a false positive. A counted box G elsewhere, found at 0.9, keeps LAMR defined:
+    with D ignored, recall 1 at FPPI 0 (LAMR 1e-10 / 0); were D an FP scored above G,
+    only FPPI 1 reaches recall 1."""
+    scene = [
+        {
+            "gt": [_box(300, 0, 30, 100, 1.0), _box(-math.inf, 0, math.inf, 480, cls="people")],
+            "dt": [([100, 0, 30, 100], 0.95), ([300, 0, 30, 100], 0.9)],
+        }
+    ]
+    for protocol, lamr in (("miss-rate", 1e-10), ("miss-rate-cityscale", 0.0)):
+        row = _row(_ours(tmp_path, scene, protocol), "reasonable")
+        assert row["detections"]["ignored"] == 1, protocol
+        assert row["detections"]["false_positive"] == 0, protocol
+        assert row["miss_rate"] == pytest.approx(lamr, rel=1e-12), protocol
     _check_both(tmp_path, scene)
