@@ -39,6 +39,7 @@ import zipfile
 import numpy as np
 
 from .operating_point import matlab_descending
+from .pedestrian_curve import read_references
 
 KITTI_FIELDS = ("n_gt", "tp_image", "tp_score", "step_image", "step_score", "step_tp", "step_fp")
 SETUP_FIELDS = ("n_gt", "det_image", "det_score", "det_outcome")
@@ -217,10 +218,8 @@ def setup_class(samples, protocol, weights=None):
               10^{-10})\\Big), \\quad \\mathrm{FPPI} = \\mathrm{FP} / \\textstyle\\sum_i w_i
 
     (toolbox ``dbEval``/``compRoc``; the city-scale variant's reading in
-    ``pedestrian.read_references``). Returns ``(miss rates at the nine references,
+    ``pedestrian_curve.read_references``). Returns ``(miss rates at the nine references,
     LAMR)``, or ``(None, None)`` when no box counts under these weights."""
-    from .pedestrian import read_references
-
     nan_first = getattr(protocol, "variant", "toolbox") == "toolbox"
     tp, fp, n_gt, n_images = setup_running_counts(samples, weights, nan_first)
     if n_gt == 0:
