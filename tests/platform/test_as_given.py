@@ -5,8 +5,6 @@ the worker's streamed and sharded run. Reference: pycocotools 2.0.11 run here on
 same two files; the stored scorecard equals it.
 """
 
-import json
-
 import numpy as np
 import pytest
 
@@ -16,9 +14,12 @@ from releases import services
 from ..engine.synthetic import make_detections
 from .conftest import split_dict, upload
 from .test_any_ids import _assert_pycocotools_numbers
-from .test_api import API, client_for, file
-from .test_mask_results import _evaluation
-from .three_uploads import upload_by_page_api_and_command, upload_sharded
+from .three_uploads import (
+    coco_evaluation,
+    every_path_as_pycocotools,
+    refused_by_api,
+    upload_sharded,
+)
 
 pytestmark = pytest.mark.django_db
 
@@ -51,13 +52,9 @@ def test_page_api_and_command_score_as_pycocotools(client, users, detector, run_
     truth = split_dict(n_images=6)
     split = evaluation_services.load_split(name="ag", revision=1, truth=upload("ag.json", truth))
     sets = [_results(truth, seed) for seed in (1, 2, 3)]
-    labels = upload_by_page_api_and_command(
-        client, run_tasks, users, detector, split, sets, tmp_path
+    every_path_as_pycocotools(
+        client, run_tasks, users, detector, split, truth, sets, tmp_path, _recorded
     )
-    for label, dets in zip(labels, sets):
-        version = detector.versions.get(label=label)
-        card = _assert_pycocotools_numbers(_evaluation(version), truth, dets, tmp_path)
-        _recorded(card)
 
 
 def test_the_sharded_run_scores_as_pycocotools(
@@ -69,7 +66,7 @@ def test_the_sharded_run_scores_as_pycocotools(
     dets = _results(truth, 4)
     split = evaluation_services.load_split(name="ag", revision=1, truth=upload("ag.json", truth))
     version = upload_sharded(run_tasks, settings, monkeypatch, users, detector, split, dets)
-    card = _assert_pycocotools_numbers(_evaluation(version), truth, dets, tmp_path)
+    card = _assert_pycocotools_numbers(coco_evaluation(version), truth, dets, tmp_path)
     _recorded(card)
 
 
@@ -80,14 +77,7 @@ def test_a_result_without_id_is_refused_naming_it(users, detector):
     split = evaluation_services.load_split(name="ag", revision=1, truth=upload("ag.json", truth))
     dets = _results(truth, 5)[:3]
     del dets[2]["id"]
-    response = client_for(users["engineer"]).post(
-        API + "prediction-sets/",
-        {"detector": detector.pk, "version": "5.0", "split": split.pk,
-         "predictions": file("bad.json", dets)},
-        format="multipart",
-    )  # fmt: skip
-    assert response.status_code == 400
-    text = json.dumps(response.json())
+    text = refused_by_api(users, detector, split, dets)
     assert "record 2" in text and "id" in text
 
 

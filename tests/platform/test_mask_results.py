@@ -11,16 +11,20 @@ import pytest
 from pycocotools import mask as mask_utils
 
 from evaluation import services as evaluation_services
-from evaluation.models import Evaluation, Scorecard
+from evaluation.models import Scorecard
 from releases import tokens
 
 from ..engine.synthetic import make_detections
 from .conftest import split_dict, upload
 from .test_any_ids import _assert_pycocotools_numbers
-from .test_api import API, client_for, file
 from .test_client import client_home, run  # noqa: F401
 from .test_worker import worker  # noqa: F401
-from .three_uploads import upload_by_page_api_and_command, upload_sharded
+from .three_uploads import (
+    coco_evaluation,
+    every_path_as_pycocotools,
+    refused_by_api,
+    upload_sharded,
+)
 
 pytestmark = pytest.mark.django_db
 
@@ -47,10 +51,6 @@ def _masks(truth, seed):
     return out
 
 
-def _evaluation(version):
-    return Evaluation.objects.get(prediction_sets__version=version, protocol="coco")
-
-
 def _mask_area_recorded(card):
     assert "mask area (RLE)" in card.result["protocol_record"]["area_source"]["predictions"]
     assert card.result["counts"]["boxes"]["predictions"]["mask_area"] > 0
@@ -64,13 +64,9 @@ def test_page_api_and_command_score_masks_as_pycocotools(
         name="masks", revision=1, truth=upload("masks.json", truth)
     )
     sets = [_masks(truth, seed) for seed in (1, 2, 3)]
-    labels = upload_by_page_api_and_command(
-        client, run_tasks, users, detector, split, sets, tmp_path
+    every_path_as_pycocotools(
+        client, run_tasks, users, detector, split, truth, sets, tmp_path, _mask_area_recorded
     )
-    for label, dets in zip(labels, sets):
-        version = detector.versions.get(label=label)
-        card = _assert_pycocotools_numbers(_evaluation(version), truth, dets, tmp_path)
-        _mask_area_recorded(card)
 
 
 def test_the_worker_and_the_sharded_run_score_masks_as_pycocotools(
@@ -83,7 +79,7 @@ def test_the_worker_and_the_sharded_run_score_masks_as_pycocotools(
         name="masks", revision=1, truth=upload("masks.json", truth)
     )
     version = upload_sharded(run_tasks, settings, monkeypatch, users, detector, split, dets)
-    card = _assert_pycocotools_numbers(_evaluation(version), truth, dets, tmp_path)
+    card = _assert_pycocotools_numbers(coco_evaluation(version), truth, dets, tmp_path)
     _mask_area_recorded(card)
     assert Scorecard.objects.filter(evaluation__prediction_sets__version=version).exists()
 
@@ -97,14 +93,7 @@ def test_a_mask_pycocotools_cannot_read_is_refused_naming_it(users, detector):
     )
     dets = _masks(truth, 5)[:2]
     dets[1]["segmentation"]["counts"] = [5, 3, 10]
-    response = client_for(users["engineer"]).post(
-        API + "prediction-sets/",
-        {"detector": detector.pk, "version": "5.0", "split": split.pk,
-         "predictions": file("bad.json", dets)},
-        format="multipart",
-    )  # fmt: skip
-    assert response.status_code == 400
-    text = json.dumps(response.json())
+    text = refused_by_api(users, detector, split, dets)
     assert "record 1" in text and "segmentation.counts" in text and "uncompressed RLE" in text
 
 
@@ -129,4 +118,6 @@ def test_the_client_submits_masks(live_server, detector, users, run, tmp_path): 
     assert code == 0, out + err
     version = detector.versions.get(label="6.0")
     assert split.pk == version.prediction_sets.get().split_id
-    _mask_area_recorded(_assert_pycocotools_numbers(_evaluation(version), truth, dets, tmp_path))
+    _mask_area_recorded(
+        _assert_pycocotools_numbers(coco_evaluation(version), truth, dets, tmp_path)
+    )

@@ -5,8 +5,6 @@ results' own areas, or the keypoints' extent, then ``COCOeval(..., 'bbox')``), r
 here on the same two files.
 """
 
-import json
-
 import numpy as np
 import pytest
 
@@ -15,9 +13,12 @@ from evaluation import services as evaluation_services
 from ..engine.synthetic import make_detections
 from .conftest import split_dict, upload
 from .test_any_ids import _assert_pycocotools_numbers
-from .test_api import API, client_for, file
-from .test_mask_results import _evaluation
-from .three_uploads import upload_by_page_api_and_command, upload_sharded
+from .three_uploads import (
+    coco_evaluation,
+    every_path_as_pycocotools,
+    refused_by_api,
+    upload_sharded,
+)
 
 pytestmark = pytest.mark.django_db
 
@@ -62,13 +63,17 @@ def test_page_api_and_command_score_as_pycocotools(
     truth = split_dict(n_images=6)
     split = evaluation_services.load_split(name="kp", revision=1, truth=upload("kp.json", truth))
     sets = [_results(truth, seed, reading) for seed in (1, 2, 3)]
-    labels = upload_by_page_api_and_command(
-        client, run_tasks, users, detector, split, sets, tmp_path
+    every_path_as_pycocotools(
+        client,
+        run_tasks,
+        users,
+        detector,
+        split,
+        truth,
+        sets,
+        tmp_path,
+        lambda card: _recorded(card, reading),
     )
-    for label, dets in zip(labels, sets):
-        version = detector.versions.get(label=label)
-        card = _assert_pycocotools_numbers(_evaluation(version), truth, dets, tmp_path)
-        _recorded(card, reading)
 
 
 @pytest.mark.parametrize("reading", ["caption", "keypoints"])
@@ -80,7 +85,7 @@ def test_the_sharded_run_scores_as_pycocotools(
     dets = _results(truth, 4, reading)
     split = evaluation_services.load_split(name="kp", revision=1, truth=upload("kp.json", truth))
     version = upload_sharded(run_tasks, settings, monkeypatch, users, detector, split, dets)
-    card = _assert_pycocotools_numbers(_evaluation(version), truth, dets, tmp_path)
+    card = _assert_pycocotools_numbers(coco_evaluation(version), truth, dets, tmp_path)
     _recorded(card, reading)
 
 
@@ -91,12 +96,5 @@ def test_empty_keypoints_are_refused_naming_them(users, detector):
     split = evaluation_services.load_split(name="kp", revision=1, truth=upload("kp.json", truth))
     dets = _results(truth, 5, "keypoints")[:2]
     dets[1]["keypoints"] = []
-    response = client_for(users["engineer"]).post(
-        API + "prediction-sets/",
-        {"detector": detector.pk, "version": "5.0", "split": split.pk,
-         "predictions": file("bad.json", dets)},
-        format="multipart",
-    )  # fmt: skip
-    assert response.status_code == 400
-    text = json.dumps(response.json())
+    text = refused_by_api(users, detector, split, dets)
     assert "record 1" in text and "keypoints" in text

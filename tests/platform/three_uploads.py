@@ -1,5 +1,6 @@
 """One results set through each upload entry point: the upload page, the API and the
-``upload_predictions`` command, as versions 1.0, 2.0 and 3.0 of a detector."""
+``upload_predictions`` command, as versions 1.0, 2.0 and 3.0 of a detector; past the
+inline size, as version 4.0; a refused one through the API, as version 5.0."""
 
 import json
 
@@ -42,6 +43,44 @@ def upload_by_page_api_and_command(client, run_tasks, users, detector, split, se
         "--user", "engineer", "--create-version", str(path),
     )  # fmt: skip
     return ("1.0", "2.0", "3.0")
+
+
+def coco_evaluation(version):
+    """The ``coco`` evaluation of a version's prediction set."""
+    from evaluation.models import Evaluation
+
+    return Evaluation.objects.get(prediction_sets__version=version, protocol="coco")
+
+
+def every_path_as_pycocotools(
+    client, run_tasks, users, detector, split, truth, sets, tmp_path, check_card
+):
+    """``sets`` through the page, the API and the command
+    (``upload_by_page_api_and_command``); each version's ``coco`` scorecard must equal
+    pycocotools 2.0.11 on the same files (``test_any_ids._assert_pycocotools_numbers``),
+    then ``check_card(card)`` runs on it."""
+    from .test_any_ids import _assert_pycocotools_numbers
+
+    labels = upload_by_page_api_and_command(
+        client, run_tasks, users, detector, split, sets, tmp_path
+    )
+    for label, dets in zip(labels, sets):
+        version = detector.versions.get(label=label)
+        card = _assert_pycocotools_numbers(coco_evaluation(version), truth, dets, tmp_path)
+        check_card(card)
+
+
+def refused_by_api(users, detector, split, dets):
+    """``dets`` posted to the API as ``bad.json`` (version 5.0): answered 400; the
+    answer as JSON text, for the caller to check what it names."""
+    response = client_for(users["engineer"]).post(
+        API + "prediction-sets/",
+        {"detector": detector.pk, "version": "5.0", "split": split.pk,
+         "predictions": file("bad.json", dets)},
+        format="multipart",
+    )  # fmt: skip
+    assert response.status_code == 400
+    return json.dumps(response.json())
 
 
 def upload_sharded(run_tasks, settings, monkeypatch, users, detector, split, dets):
