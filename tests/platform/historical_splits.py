@@ -1,15 +1,23 @@
 """Split rows planted as an older schema stored them: migrate the evaluation app back,
-create the rows through that schema's historical model, migrate forward again."""
+create the rows through that schema's historical model, migrate forward again; then
+such a row taken as a new split would be (its content check must fail), and an upload
+scored against it."""
 
 import contextlib
 
+import pytest
 from django.core.files.base import ContentFile
 from django.core.files.storage import default_storage
 from django.db import connection
 from django.db.migrations.executor import MigrationExecutor
 from django.utils import timezone
 
+from evaluation import services as evaluation_services
 from evaluation import triggers
+from evaluation.models import BenchmarkSplit, Evaluation
+from evaluation.storage import ContentMismatch
+
+from .conftest import upload
 
 
 def _migrate(target):
@@ -48,3 +56,25 @@ def plant(historical, name, source, truth, **fields):
         frozen_at=timezone.now(),
         **fields,
     )
+
+
+def taken_as(split, **fields):
+    """The split's row again with ``fields`` changed in memory only (never saved), as a
+    new split would be read: loading its truth raises ContentMismatch (so the check that
+    the row as frozen passes is live). The changed row."""
+    row = BenchmarkSplit.objects.get(pk=split.pk)
+    for name, value in fields.items():
+        setattr(row, name, value)
+    with pytest.raises(ContentMismatch):
+        evaluation_services.load_truth_of(row)
+    return row
+
+
+def score_upload(split, detections, run_tasks, protocols):
+    """``detections`` received for ``split`` as an upload is (checked, then stored) and
+    evaluated under ``protocols``, every task run by ``run_tasks``; the evaluations by
+    protocol."""
+    with evaluation_services.received_predictions(upload("dt.json", detections), split) as got:
+        stored = got.store()
+    run_tasks(evaluation_services.request_evaluations, split, stored, protocols)
+    return {e.protocol: e for e in Evaluation.objects.filter(split=split, predictions=stored)}

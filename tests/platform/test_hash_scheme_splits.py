@@ -16,12 +16,12 @@ from django.urls import reverse
 
 from evaluation import engine
 from evaluation import services as evaluation_services
-from evaluation.models import BenchmarkSplit, Evaluation
+from evaluation.models import BenchmarkSplit
 from evaluation.services import UploadError
 from evaluation.storage import ContentMismatch
 
 from .conftest import detections_for, split_dict, upload
-from .historical_splits import plant, schema_at
+from .historical_splits import plant, schema_at, score_upload, taken_as
 from .test_api import API, client_for
 
 BEFORE = "0023_vis_ratio_as_given"
@@ -56,13 +56,6 @@ def _freeze(name, content):
     return evaluation_services.load_split(
         name=name, revision=1, truth=upload(f"{name}.json", content)
     )
-
-
-def _score(split, detections, run_tasks):
-    with evaluation_services.received_predictions(upload("dt.json", detections), split) as got:
-        stored = got.store()
-    run_tasks(evaluation_services.request_evaluations, split, stored, ["coco"])
-    return Evaluation.objects.get(split=split, predictions=stored, protocol="coco")
 
 
 @pytest.mark.django_db
@@ -134,13 +127,10 @@ def test_a_text_id_split_frozen_before_keeps_its_hash(
     assert split.sha256 == old.content_hash("untyped") != old.content_hash()
     evaluation_services.load_truth_of(split)
     assert evaluation_services.road_counts_of(split) is not None
-    typed = BenchmarkSplit.objects.get(pk=split.pk)
-    typed.hash_scheme = "typed"  # in memory only: the scheme a new split has
-    with pytest.raises(ContentMismatch):
-        evaluation_services.load_truth_of(typed)
+    typed = taken_as(split, hash_scheme="typed")  # the scheme a new split has
     assert evaluation_services.road_counts_of(typed) is None
 
-    evaluation = _score(split, detections_for(content), run_tasks)
+    evaluation = score_upload(split, detections_for(content), run_tasks, ["coco"])["coco"]
     assert evaluation.state == "done", evaluation.error
     # the scorecard names the split by its stored hash; the engine's result carries the
     # engine's (typed) fingerprint of the content

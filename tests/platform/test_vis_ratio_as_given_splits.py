@@ -15,11 +15,10 @@ import pytest
 
 from evaluation import engine
 from evaluation import services as evaluation_services
-from evaluation.models import BenchmarkSplit, Evaluation
-from evaluation.storage import ContentMismatch
+from evaluation.models import BenchmarkSplit
 
 from .conftest import detections_for, split_dict, upload
-from .historical_splits import plant, schema_at
+from .historical_splits import plant, schema_at, score_upload, taken_as
 
 BEFORE = "0022_vis_ratio_reading"
 
@@ -58,17 +57,10 @@ def test_a_split_frozen_with_the_read_reading_keeps_it_and_its_hash(
     loaded = evaluation_services.load_truth_of(split)
     assert loaded.content_hash() == split.sha256 and loaded.vis_ratio is None
 
-    relabelled = BenchmarkSplit.objects.get(pk=split.pk)
-    relabelled.vis_ratio_reading = "as-given"  # in memory only: a new split's reading
-    with pytest.raises(ContentMismatch):
-        evaluation_services.load_truth_of(relabelled)
+    taken_as(split, vis_ratio_reading="as-given")  # a new split's reading
 
-    with evaluation_services.received_predictions(
-        upload("dt.json", detections_for(truth)), split
-    ) as got:
-        stored = got.store()
-    run_tasks(evaluation_services.request_evaluations, split, stored, ["miss-rate-cityscale"])
-    evaluation = Evaluation.objects.get(split=split, predictions=stored)
+    found = score_upload(split, detections_for(truth), run_tasks, ["miss-rate-cityscale"])
+    (evaluation,) = found.values()
     assert evaluation.state == "done", evaluation.error
     record = evaluation.scorecard.result["protocol_record"]
     assert "else its vis_ratio key within 0-1" in record["area_source"]["truth"]

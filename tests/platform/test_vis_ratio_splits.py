@@ -17,11 +17,10 @@ from django.urls import reverse
 
 from evaluation import engine
 from evaluation import services as evaluation_services
-from evaluation.models import BenchmarkSplit, Evaluation
-from evaluation.storage import ContentMismatch
+from evaluation.models import BenchmarkSplit
 
 from .conftest import CLASSES, detections_for, split_dict, upload
-from .historical_splits import plant, schema_at
+from .historical_splits import plant, schema_at, score_upload, taken_as
 from .test_api import API, client_for
 
 BEFORE = "0021_input_policies"
@@ -37,13 +36,6 @@ def _city_split(seed=41):
         ann["vis_ratio"] = float(rng.choice([0.3, 0.5, 0.9, 1.0]))
         ann["ignore"] = 0
     return split
-
-
-def _score(split, detections, run_tasks, protocols):
-    with evaluation_services.received_predictions(upload("dt.json", detections), split) as got:
-        stored = got.store()
-    run_tasks(evaluation_services.request_evaluations, split, stored, protocols)
-    return {e.protocol: e for e in Evaluation.objects.filter(split=split, predictions=stored)}
 
 
 @pytest.mark.django_db(transaction=True)
@@ -69,12 +61,9 @@ def test_a_split_frozen_before_vis_ratio_was_read_still_scores(
     loaded = evaluation_services.load_truth_of(split)
     assert loaded.content_hash() == split.sha256 and np.isnan(loaded.visibility).all()
 
-    relabelled = BenchmarkSplit.objects.get(pk=split.pk)
-    relabelled.vis_ratio_reading = "read"  # in memory only: the reading a new split has
-    with pytest.raises(ContentMismatch):
-        evaluation_services.load_truth_of(relabelled)
+    taken_as(split, vis_ratio_reading="read")  # the reading a new split has
 
-    found = _score(split, detections_for(truth), run_tasks, ["coco", "miss-rate-cityscale"])
+    found = score_upload(split, detections_for(truth), run_tasks, ["coco", "miss-rate-cityscale"])
     for protocol, evaluation in found.items():
         assert evaluation.state == "done", (protocol, evaluation.error)
     card = found["miss-rate-cityscale"].scorecard
@@ -112,7 +101,7 @@ def test_a_new_split_reads_vis_ratio_and_says_so(client, users, run_tasks, tmp_p
     body = client_for(users["engineer"]).get(API + f"splits/{split.pk}/").json()
     assert body["vis_ratio_reading"] == "as-given"
 
-    found = _score(split, detections_for(truth), run_tasks, ["miss-rate"])
+    found = score_upload(split, detections_for(truth), run_tasks, ["miss-rate"])
     card = found["miss-rate"].scorecard
     assert found["miss-rate"].state == "done", found["miss-rate"].error
     assert "else its vis_ratio key" in card.result["protocol_record"]["area_source"]["truth"]
