@@ -41,12 +41,13 @@ _META = ("protocol", "classes", "area_names", "thresholds", "n_images", "tie_ord
 _MATCH_FIELDS = ("match_config", "match_det", "match_box", "match_iou")
 _MOVED = ("class", "score", "image", "order")
 #: ``MatchRecords.det_key``, kept only where pycocotools' exact order is
-#: (``loaders.exact_scores``): every shard of such a run has it.
-_KEY_FIELD = ("det_key",)
+#: (``loaders.exact_scores``), and ``det_overflow``, only where a score is beyond
+#: float64's range: every shard of such a run has them.
+_KEY_FIELD = ("det_key", "det_overflow")
 
 
 def _det_fields(records):
-    return _DET_FIELDS + (_KEY_FIELD if records.det_key is not None else ())
+    return _DET_FIELDS + tuple(n for n in _KEY_FIELD if getattr(records, n) is not None)
 
 
 class PartMismatch(ValueError):
@@ -349,7 +350,7 @@ def write_records(path, group_paths, n_boxes):
 
 def _write_detections(column, opened, starts):
     n = sum(len(g["det_score"]) for g in opened)
-    for name in _DET_FIELDS + (_KEY_FIELD if "det_key" in opened[0].files else ()):
+    for name in _DET_FIELDS + tuple(n for n in _KEY_FIELD if n in opened[0].files):
         first = opened[0][name]
         chunks = (
             g[name] + start if name == "det_class" else g[name] for g, start in zip(opened, starts)

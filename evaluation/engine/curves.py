@@ -72,6 +72,12 @@ class TruePositivePoints:
     runs: np.ndarray
     n_pos: np.ndarray
     totals: np.ndarray
+    #: Where pycocotools' precision fill stops (``fill_stops``; None: nowhere): per
+    #: point, its detection holds an integer score beyond float64's range
+    #: (``MatchRecords.det_overflow``), and per class, the first detection it
+    #: accumulates does (read at recall 0).
+    stop: np.ndarray | None = None
+    head_stop: np.ndarray | None = None
 
     @property
     def n_slots(self):
@@ -159,7 +165,7 @@ def true_positive_points(records, *, area=0, max_detections=None, weights=None):
     w = detection_weights(records, max_detections, weights)
 
     if weights is not None and np.any(w > 1):
-        run_bounds, tp, counted = _expanded_points(records, sparse, area, max_detections, w)
+        run_bounds, tp, counted, det = _expanded_points(records, sparse, area, max_detections, w)
     else:  # every weight is 0 or 1: the TP count is the position in the run
         slot, det = sparse["tp_slot"], sparse["tp_det"]
         keep = w[det] > 0
@@ -172,12 +178,21 @@ def true_positive_points(records, *, area=0, max_detections=None, weights=None):
     last = run_bounds[1:] - 1
     has = np.diff(run_bounds) > 0
     totals = np.where(has, tp[np.maximum(last, 0)] if len(tp) else 0, 0)
+    stop = head_stop = None
+    if records.det_overflow is not None:  # scores beyond float64 (``fill_stops``)
+        stop = records.det_overflow[det]
+        accumulated = np.flatnonzero(w > 0)  # in accumulation order
+        classes, first = np.unique(records.det_class[accumulated], return_index=True)
+        head_stop = np.zeros(n_classes, bool)
+        head_stop[classes] = records.det_overflow[accumulated[first]]
     return TruePositivePoints(
         tp=tp.astype(np.float64),
         fp=(counted - tp).astype(np.float64),
         runs=run_bounds,
         n_pos=records.n_positives(area, weights),
         totals=totals.reshape(n_slots, n_classes).astype(np.float64),
+        stop=stop,
+        head_stop=head_stop,
     )
 
 
@@ -272,7 +287,8 @@ def _expanded_points(records, sparse, area, max_detections, w):
     the counts are (before the group, weighted) + c * (group total) + (prefix within
     the group), unweighted within the group since all of it has one image weight.
 
-    Returns the run bounds, TP counts and counted totals of the expanded points.
+    Returns the run bounds, TP counts, counted totals and detections of the expanded
+    points.
     """
     plan = _expansion_plan(records, sparse, area, max_detections)
     w_tp = w[plan["det"]]
@@ -286,6 +302,7 @@ def _expanded_points(records, sparse, area, max_detections, w):
     )
 
     pick = np.repeat(np.arange(len(w_tp)), w_tp)
+    det = plan["det"][pick]
     ends = np.cumsum(w_tp)
     copy = np.arange(len(pick)) - np.repeat(ends - w_tp, w_tp)
     counted = counted_base[pick] + copy * plan["counted_group"][pick] + plan["counted_prefix"][pick]
@@ -300,12 +317,13 @@ def _expanded_points(records, sparse, area, max_detections, w):
             group_offset[group] + copy[tied] * plan["group_size"][group] + plan["local"][pick[tied]]
         )
         counted[position] = counted[tied].copy()
+        det[position] = det[tied].copy()
     n_runs = records.n_slots * len(records.classes)
     per_run = np.bincount(plan["run"], weights=w_tp, minlength=n_runs).astype(np.int64)
     run_bounds = np.r_[0, np.cumsum(per_run)]
     # Each point is one true positive: the TP count is the position in its run.
     tp = np.arange(1, len(pick) + 1) - np.repeat(run_bounds[:-1], per_run)
-    return run_bounds, tp, counted
+    return run_bounds, tp, counted, det
 
 
 def recall_score(points):
@@ -387,9 +405,36 @@ def interpolated_precision(points, recall_points, *, epsilon=0.0, slots=None):
     maxima = np.maximum.reduceat(precision, bounds.ravel()).reshape(bounds.shape)[..., :-1]
     maxima[bounds[..., 1:] <= bounds[..., :-1]] = 0.0
     env = np.maximum.accumulate(maxima[..., ::-1], axis=2)[..., ::-1]
+    if points.stop is not None:  # integer scores beyond float64's range
+        reached &= ~fill_stops(points, recall_points, first, runs, reached)
     out = np.where(reached, env, 0.0).transpose(0, 2, 1).copy()
     out[:, :, ~present] = np.nan
     return out
+
+
+def fill_stops(points, recall_points, first, runs, reached):
+    """Where pycocotools 2.0.11's precision fill has stopped, shape (slots, classes,
+    recall points): after the first recall point whose detection holds an integer
+    score beyond float64's range (``points.stop``, ``points.head_stop``).
+
+    Its ``accumulate`` fills ``q[ri] = pr[pi]; ss[ri] = dtScoresSorted[pi]`` for
+    ``pi = np.searchsorted(rc, recThrs, side='left')`` inside ``try: ... except: pass``;
+    writing such an integer into the float64 ``ss`` raises OverflowError, swallowed,
+    so ``q[ri]`` is set and every later recall point keeps 0. ``pi`` is the first
+    point reaching the recall (a true positive), except at recall 0 (and below):
+    index 0, the class's first accumulated detection, whatever it is (``head_stop``).
+    Recall (``rc[-1]``) is untouched. Verified on pycocotools 2.0.11 itself
+    (``tests/engine/test_beyond_float64.py``).
+    """
+    at = runs[..., None] + first[None]  # (slots, classes, points)
+    hit = np.zeros(reached.shape, bool)
+    hit[reached] = points.stop[at[reached]]
+    at_zero = np.asarray(recall_points) <= 0
+    head = np.broadcast_to(points.head_stop[None, :, None], hit.shape)
+    hit[..., at_zero] = head[..., at_zero]
+    stopped = np.zeros(hit.shape, bool)
+    stopped[..., 1:] = np.logical_or.accumulate(hit, axis=2)[..., :-1]
+    return stopped
 
 
 def all_point_average_precision(points):

@@ -322,6 +322,10 @@ class GroundTruth:
         return True
 
 
+#: ``loaders.beyond_float64.OVERFLOWING`` (the engine's containers import no loader).
+_OVERFLOWING = "beyond_float64"
+
+
 def _cap_key(protocol):
     cap = protocol.max_detections_limit
     return "none" if cap is None else str(cap)
@@ -346,8 +350,9 @@ class Predictions:
     #: Where pycocotools would order integer scores beyond 2**53 otherwise than float64
     #: (``loaders.exact_scores.check``): per checked cap, its order (which ``match``
     #: takes under the COCO order) and the refusal raised under another cap; under
-    #: ``"cityscale"`` the refusal of ``miss-rate-cityscale``. Empty for a file
-    #: without such scores.
+    #: ``"cityscale"`` the refusal of ``miss-rate-cityscale``; under
+    #: ``"beyond_float64"`` the detections holding an integer score beyond float64's
+    #: range (``overflowing``). Empty for a file without such scores.
     score_conflicts: dict = field(default_factory=dict)
     #: Each detection's area for size ranges, when the file is not read as boxes
     #: (pycocotools' ``loadRes``: a segmentation's RLE area, ``loaders/mask_results.py``;
@@ -388,9 +393,26 @@ class Predictions:
             if entry and "overflow" in entry:  # scores beyond float64 (exact_scores)
                 return entry["overflow"]
             return entry if entry and "position" not in entry else None
-        skip = ("cityscale", booleans)
-        found = next((c for k, c in self.score_conflicts.items() if c and k not in skip), None)
+        found = next((c for k, c in self._cap_entries(booleans) if c), None)
         return found if not found or "path" in found else found["overflow"]
+
+    def _cap_entries(self, booleans):
+        """The entries of the caps (``score_conflicts`` without ``"cityscale"``, the
+        ``booleans`` entry and the detections beyond float64's range)."""
+        skip = ("cityscale", booleans, _OVERFLOWING)
+        return [(k, c) for k, c in self.score_conflicts.items() if k not in skip]
+
+    def overflowing(self):
+        """Per detection, whether its score is an integer beyond float64's range
+        (``loaders.beyond_float64``: read here as infinite, pycocotools' precision fill
+        stops at it) — a bool array where the file holds one (all False in a slice
+        without one), else None."""
+        entry = (self.score_conflicts or {}).get(_OVERFLOWING)
+        if entry is None:
+            return None
+        out = np.zeros(len(self.score), bool)
+        out[np.asarray(entry["position"], np.int64)] = True
+        return out
 
     def score_order(self, protocol):
         """pycocotools' order for ``protocol`` where it is not float64's
@@ -413,7 +435,7 @@ class Predictions:
         if "cityscale" in self.score_conflicts:
             entry = self.score_conflicts["cityscale"]
             return entry if entry and "position" not in entry else None
-        return next((c for k, c in self.score_conflicts.items() if c and k != "booleans"), None)
+        return next((c for _, c in self._cap_entries("booleans") if c), None)
 
     def cityscale_order(self):
         """The CityPersons script's order where it is not float64's: ``(index, rank,

@@ -73,6 +73,13 @@ def _outside(area, area_ranges):
     )
 
 
+def _overflow(predictions, protocol, order):
+    """``MatchRecords.det_overflow``: under the COCO order (pycocotools' ``accumulate``)
+    where the file holds an integer score beyond float64's range, else None."""
+    overflowing = predictions.overflowing() if protocol.tie_order == "image" else None
+    return None if overflowing is None else overflowing[order]
+
+
 def match(truth, predictions, protocol, *, reasons=True):
     """Match ``predictions`` to ``truth`` under ``protocol``.
 
@@ -189,6 +196,7 @@ def match(truth, predictions, protocol, *, reasons=True):
         det_rank=rank.astype(np.int32),
         det_order=order.astype(np.int64),
         det_key=key,
+        det_overflow=_overflow(predictions, protocol, order),
         det_outside=det_outside,
         match_config=config,
         match_det=det,

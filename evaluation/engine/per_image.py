@@ -63,8 +63,43 @@ def _class_sequence(records, k, slot, weights, area=0):
     return image[counted], is_tp[s:e][counted]
 
 
-def _variant_points(image, tp, n_pos, left_out, box_count):
-    """TruePositivePoints of one slot with one "class" per left-out image."""
+def _class_stops(records, k, slot, weights, area=0):
+    """Where class k holds a score beyond float64's range (``MatchRecords.det_overflow``),
+    what ``curves.fill_stops`` reads of its variants: per counted detection of
+    ``_class_sequence`` its flag, and the images and flags of every accumulated
+    detection (ignored ones too: pycocotools' recall 0 reads the first of them);
+    else None."""
+    if records.det_overflow is None:
+        return None
+    s, e = records.class_bounds()[k : k + 2]
+    flag = records.det_overflow[s:e]
+    if not flag.any():
+        return None
+    _, is_ignored = records.outcomes(area, slot)
+    image = records.det_image[s:e].astype(np.int64)
+    accumulated = weights[image] > 0
+    counted = ~is_ignored[s:e] & accumulated
+    return flag[counted], image[accumulated], flag[accumulated]
+
+
+def _variant_stops(stops, image, tp, left_out):
+    """``(stop, head_stop)`` of ``_variant_points``' rows (``_class_stops``)."""
+    flag, head_image, head_flag = stops
+    at = np.flatnonzero(tp)
+    remain = image[at][None, :] != left_out[:, None]
+    stop = np.broadcast_to(flag[at][None, :], remain.shape)[remain]
+    head = np.zeros(len(left_out), bool)
+    if len(head_image):
+        other = np.flatnonzero(head_image != head_image[0])
+        head[:] = head_flag[0]
+        first_image = left_out == head_image[0]
+        head[first_image] = head_flag[other[0]] if len(other) else False
+    return stop, head
+
+
+def _variant_points(image, tp, n_pos, left_out, box_count, stops=None):
+    """TruePositivePoints of one slot with one "class" per left-out image; ``stops``:
+    ``_class_stops`` (scores beyond float64's range) or None."""
     at = np.flatnonzero(tp)
     n_points = len(at)
     tp_count = np.arange(1, n_points + 1)
@@ -91,12 +126,15 @@ def _variant_points(image, tp, n_pos, left_out, box_count):
     fp_v = (fp_count[None, :] - own_fp)[remain]
     per_row = remain.sum(axis=1)
     runs = np.r_[0, np.cumsum(per_row)]
+    stop, head = (None, None) if stops is None else _variant_stops(stops, image, tp, left_out)
     return TruePositivePoints(
         tp=tp_v.astype(np.float64),
         fp=fp_v.astype(np.float64),
         runs=runs,
         n_pos=n_pos - box_count[left_out].astype(np.float64),
         totals=per_row[None, :].astype(np.float64),
+        stop=stop,
+        head_stop=head,
     )
 
 
@@ -132,12 +170,16 @@ def leave_one_out(records, protocol, class_index, weights=None, *, area=0, slot=
     box_count = np.bincount(records.gt_image[boxes], minlength=records.n_images)
     n_pos = float(box_count.sum())
     sequences = [_class_sequence(records, k, t, w, area) for t in slots]
+    stops = [_class_stops(records, k, t, w, area) for t in slots]
     touched = np.zeros(records.n_images, bool)
     touched[box_count > 0] = True
     for image, _ in sequences:
         touched[image] = True
     affected = np.flatnonzero(touched)
-    if protocol.recall_points is not None and len(affected):
+    # loo_fast does not stop the fill at scores beyond float64's range: such a class
+    # takes the variants' points (``_variant_points``) through curves.fill_stops
+    fast = all(s is None for s in stops)
+    if protocol.recall_points is not None and len(affected) and fast:
         # One more variant, an image id past the split's, leaves nothing out: the base.
         box_count = np.r_[box_count, 0]
         ap = _interpolated(
@@ -166,7 +208,10 @@ def leave_one_out(records, protocol, class_index, weights=None, *, area=0, slot=
     for start in range(0, len(affected), size):
         left_out = affected[start : start + size]
         padded = left_out if len(left_out) > 1 or size == 1 else np.r_[left_out, left_out]
-        per_slot = [_variant_points(image, tp, n_pos, padded, box_count) for image, tp in sequences]
+        per_slot = [
+            _variant_points(image, tp, n_pos, padded, box_count, stop)
+            for (image, tp), stop in zip(sequences, stops)
+        ]
         ap = _class_ap(per_slot, protocol)
         without[left_out] = ap[: len(left_out)]
     return float(base), without
@@ -195,7 +240,8 @@ def leave_one_out_metrics(records, protocol, class_index, weights=None, *, area=
     for image, _ in sequences:
         touched[image] = True
     affected = np.flatnonzero(touched)
-    if protocol.recall_points is None or not len(affected) or np.any(w > 1):
+    beyond = any(_class_stops(records, k, t, w, area) is not None for t in range(records.n_slots))
+    if protocol.recall_points is None or not len(affected) or np.any(w > 1) or beyond:
         return {m: leave_one_out(records, protocol, k, weights, area=area, slot=m) for m in metrics}
     variants = np.r_[affected, records.n_images]  # the last leaves nothing out: the base
     precision = _precision(

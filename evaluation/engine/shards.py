@@ -235,6 +235,13 @@ def merged_with_order(shards, n_boxes):
         det["det_key"] = np.concatenate(
             [np.full(r.n_detections, np.nan) if r.det_key is None else r.det_key for r, _ in shards]
         )
+    if any(r.det_overflow is not None for r, _ in shards):  # scores beyond float64
+        det["det_overflow"] = np.concatenate(
+            [
+                np.zeros(r.n_detections, bool) if r.det_overflow is None else r.det_overflow
+                for r, _ in shards
+            ]
+        )
     outside = np.concatenate([r.det_outside for r, _ in shards], axis=1)
     # Shards hold increasing runs of images and each is in accumulation order, so in
     # their concatenation equal (class, score) under tie_order "image" already stand in

@@ -5,12 +5,10 @@ The engine reads such an integer as infinite; pycocotools keeps it as a Python `
 Each case runs pycocotools 2.0.11 itself (``COCO.loadRes``, ``COCOeval('bbox')``
 evaluate/accumulate/summarize, and ``recall40``'s settings): where it raises
 OverflowError (``loadRes``' box arithmetic, ``computeIoU`` on a compared box) the
-engine refuses with the file, record and field; where its ``accumulate`` swallows the
-OverflowError of a score and leaves the later precision at 0, the engine refuses the
-file under ``coco`` and ``recall40`` (known deviation: the cut is not modelled) and
-the test shows the reference's numbers differ from those of the same file with the
-score written as a float (what the engine would score); where pycocotools never meets
-the integer, the engine scores the file equal to it.
+engine refuses with the file, record and field; where pycocotools never meets the
+integer, the engine scores the file equal to it. Scores beyond float64's range, where
+its ``accumulate`` swallows an OverflowError and stops its precision fill, are scored
+as it scores them: ``test_beyond_float64_scores.py``.
 """
 
 import json
@@ -25,7 +23,7 @@ from evaluation.engine.loaders import results_stream
 from evaluation.engine.pieces import stream_pieces
 
 from .conftest import pycocotools_eval
-from .test_exact_scores import _numbers_equal, pycocotools_recall40
+from .test_exact_scores import _numbers_equal
 
 HUGE = 2**1024  # no float64: float() raises OverflowError
 SPLIT = {
@@ -52,12 +50,6 @@ def _write(tmp_path, dets, name="dt.json", split=SPLIT):
     return gt, dt
 
 
-def _as_float(value):
-    if type(value) is int and abs(value) >= 2**1024:
-        return 1e400 if value > 0 else -1e400  # json.dumps writes Infinity
-    return value
-
-
 def _refused(gt, dt, protocol, record, field):
     truth = load_truth(gt)
     with pytest.raises(InputError) as caught:
@@ -68,29 +60,6 @@ def _refused(gt, dt, protocol, record, field):
     return str(caught.value)
 
 
-def _reference(gt, dt, protocol):
-    return pycocotools_eval(gt, dt) if protocol == "coco" else pycocotools_recall40(gt, dt)
-
-
-def _ap(reference, protocol):
-    if protocol == "coco":
-        return reference.stats[0]
-    precision = reference.eval["precision"][0, :, :, 0, 0]
-    present = [np.mean(precision[:, k]) for k in range(precision.shape[1]) if precision[0, k] > -1]
-    return np.mean(present)
-
-
-def _score_refused(tmp_path, dets, record, protocols=("coco", "recall40")):
-    """pycocotools 2.0.11 scores the file, otherwise than the same file with floats
-    (its precision fill stops at the score); the engine refuses it naming the score."""
-    gt, dt = _write(tmp_path, dets)
-    _, dt_float = _write(tmp_path, [{**d, "score": _as_float(d["score"])} for d in dets], "f.json")
-    for protocol in protocols:
-        reference, as_float = _reference(gt, dt, protocol), _reference(gt, dt_float, protocol)
-        assert _ap(reference, protocol) < _ap(as_float, protocol), protocol
-        assert "stops filling the precision" in _refused(gt, dt, protocol, record, "score")
-
-
 def _scored_equal(tmp_path, dets):
     """pycocotools 2.0.11 never meets the integer: the engine scores it as it does."""
     gt, dt = _write(tmp_path, dets)
@@ -98,60 +67,6 @@ def _scored_equal(tmp_path, dets):
     predictions = load_predictions(dt, truth)
     _numbers_equal(pycocotools_eval(gt, dt), evaluate(truth, predictions, "coco"), truth)
     return gt, dt
-
-
-def test_one_matching_detection_of_score_2_to_the_1024(tmp_path):
-    """pycocotools 2.0.11: AP = AP50 = AP75 = 1/101 (only q[0] is filled); refused under
-    coco and recall40 naming record 0 and ``score``; the VOC protocols (the devkit reads
-    doubles) score it as infinite."""
-    dets = [_det(1, 1, [10, 10, 30, 30], HUGE)]
-    gt, dt = _write(tmp_path, dets)
-    reference = pycocotools_eval(gt, dt)
-    filled = reference.eval["precision"][0, :, 0, 0, 2]
-    assert filled[0] == pytest.approx(1.0) and not filled[1:].any()  # 1 / (1 + eps)
-    _score_refused(tmp_path, dets, 0)
-    truth = load_truth(gt)
-    assert evaluate(truth, load_predictions(dt, truth), "voc")["summary"]["AP"] is not None
-
-
-def test_several_classes_and_ranks(tmp_path):
-    """The integer at different ranks: -2**1024 last of its image in class a (the fill
-    of class a stops at the recall point that lands on it), 2**1024 + 5 first in class
-    b; the first such record is named."""
-    dets = [
-        _det(1, 1, [10, 10, 30, 30], 0.9),
-        _det(1, 1, [60, 60, 10, 10], 0.8),
-        _det(2, 1, [50, 50, 20, 20], -HUGE),
-        _det(1, 2, [0, 0, 20, 20], 0.3),
-        _det(1, 2, [40, 0, 20, 20], HUGE + 5),
-    ]
-    _score_refused(tmp_path, dets, 2)
-
-
-def test_mixed_with_floats_and_small_integers(tmp_path):
-    """A float and such an integer in one image's list: numpy makes an object array
-    (no OverflowError in numpy 2 there), pycocotools scores the file with its fill cut;
-    refused."""
-    dets = [
-        _det(1, 1, [60, 60, 10, 10], 0.5),
-        _det(1, 1, [10, 10, 30, 30], HUGE),
-        _det(2, 1, [50, 50, 20, 20], 7),
-        _det(2, 1, [0, 50, 20, 20], 2**60),
-    ]
-    _score_refused(tmp_path, dets, 1)
-
-
-def test_beyond_the_cap_and_without_ground_truth_scored_as_pycocotools(tmp_path):
-    """Never in an accumulated list (the 101st of its image under coco's cap of 100), in
-    a class without ground truth (``npig == 0`` skips the fill) or of a class the split
-    does not list: scored equal to pycocotools 2.0.11. Without a cap (recall40) the
-    101st is accumulated: refused there."""
-    dets = [_det(1, 1, [10, 10, 30, 30], 0.9)]
-    dets += [_det(1, 1, [60, 60, 10, 10 + k / 8], 0.5) for k in range(99)]
-    dets += [_det(1, 1, [0, 60, 10, 10], -HUGE)]
-    dets += [_det(2, 3, [0, 0, 10, 10], HUGE), _det(2, 9, [0, 0, 10, 10], HUGE)]
-    gt, dt = _scored_equal(tmp_path, dets)
-    _refused(gt, dt, "recall40", 100, "score")
 
 
 @pytest.mark.parametrize("reading", ["boxes", "mask and bbox", "caption"])
@@ -237,12 +152,13 @@ def _cli(gt, dt, protocol):
 
 
 def test_the_cli(tmp_path):
-    """Exit 2 naming file, record and field under coco; under voc exit 0 and strict
-    JSON on stdout (the infinite score is never written as a bare literal)."""
-    gt, dt = _write(tmp_path, [_det(1, 1, [10, 10, 30, 30], HUGE)])
+    """A compared box beyond float64: exit 2 naming file, record and field under coco;
+    under voc exit 0 and strict JSON on stdout (the infinite box is never written as a
+    bare literal)."""
+    gt, dt = _write(tmp_path, [_det(1, 1, [10, 10, 30, HUGE], 0.5)])
     refused = _cli(gt, dt, "coco")
     assert refused.returncode == 2
-    assert f"{dt}: record 0: field 'score'" in refused.stderr
+    assert f"{dt}: record 0: field 'bbox'" in refused.stderr
     assert refused.stdout == ""
     scored = _cli(gt, dt, "voc")
     assert scored.returncode == 0, scored.stderr

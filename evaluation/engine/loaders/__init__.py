@@ -50,7 +50,7 @@ __all__ = [
 ]
 
 #: Bumped when the parsed columns change shape or meaning: old cache entries are unused.
-CACHE_SCHEMA = 14
+CACHE_SCHEMA = 15
 UNKNOWN_CLASS_POLICIES = ("reject", "drop")
 #: Detections of images the split does not hold: refused (default; pycocotools'
 #: ``loadRes`` asserts every result image is in the set) or, for re-scoring stored
@@ -235,10 +235,11 @@ def load_predictions(
         "unknown_classes": unknown_classes,
         "ids": ids,
         "schema": CACHE_SCHEMA,
+        # 6: scores beyond float64's range are listed ("beyond_float64"), no refusal;
         # 5: a "booleans" entry (scores pycocotools joins as a boolean array);
         # 4: entries may carry the "overflow" refusal (scores beyond float64's range);
         # 3: entries carry pycocotools' exact order (2: the cityscale check was added)
-        "score_conflicts": 5,
+        "score_conflicts": 6,
     }
     if unknown_images != "reject":  # the default keeps the keys of existing entries
         key["unknown_images"] = unknown_images

@@ -18,19 +18,20 @@ raises OverflowError (``float()`` rounds it to 2**1024). Where that conversion h
   sorted scores (an object array once one list holds such an integer) into a float64
   array: the OverflowError is swallowed by a bare ``except: pass``, so the precision
   of every recall point after the first one landing on such a score stays 0 (one
-  matching detection of score 2**1024: AP 1/101). The engine does not model that cut:
-  such a file is refused under the protocols that follow pycocotools (known
-  deviation), only where the score is in a class with ground truth (``npig == 0``
-  skips the fill) and among its image's first ``cap`` (pycocotools' exact rank).
+  matching detection of score 2**1024: AP 1/101). Since engine 2.16.0 the engine
+  models that cut: ``overflowing`` gives the detections holding such a score
+  (``Predictions.overflowing``), and ``curves.interpolated_precision`` stops its
+  fill there (``curves.fill_stops``).
   Comparisons (``area`` against the size ranges, the score argsorts) are exact in
   Python and raise nothing: an area beyond float64 is scored as infinite.
 
-``refusals`` gives, per per-image cap, the refusal pycocotools' first raise (or the
-swallowed fill) calls for; ``exact_scores.check`` files it under ``"overflow"`` in the
-cap's entry, which ``Predictions.score_conflict`` raises (``coco``: 100, ``recall40``:
-none). Run only on a file holding such a score (``exact_scores.suspect``) or an
-infinite loaded box: the file is then read once more with Python's ``json``, as
-pycocotools reads it.
+``refusals`` gives, per per-image cap, the refusal pycocotools' first raise on a box
+calls for; ``exact_scores.check`` files it under ``"overflow"`` in the cap's entry,
+which ``Predictions.score_conflict`` raises (``coco``: 100, ``recall40``: none), and
+the detections holding a score beyond float64's range under ``OVERFLOWING``
+(positions into the loaded predictions). Run only on a file holding such a score
+(``exact_scores.suspect``) or an infinite loaded box: the file is then read once more
+with Python's ``json``, as pycocotools reads it.
 """
 
 import functools
@@ -44,6 +45,9 @@ import numpy as np
 OVERFLOW_LIMIT = 2**1024 - 2**970
 #: The key of an entry's refusal (``exact_scores.check``).
 OVERFLOW = "overflow"
+#: The key, among ``Predictions.score_conflicts``, of the detections holding a score
+#: beyond float64's range: ``{"position": [...]}`` (``overflowing``).
+OVERFLOWING = "beyond_float64"
 _PYCOCOTOOLS = "pycocotools 2.0.11"
 
 
@@ -52,19 +56,33 @@ def overflows(value):
     return type(value) is int and abs(value) >= OVERFLOW_LIMIT
 
 
+def overflowing(rows, big):
+    """``{"position": [...]}``: the loaded detections (``rows``' positions, ascending)
+    whose score is an integer beyond float64's range, or None where none is. Whatever
+    the cap or class: ``curves.fill_stops`` reads only those pycocotools accumulates."""
+    found = [
+        int(p)
+        for r, p in zip(rows["record"].tolist(), rows["position"].tolist())
+        if p >= 0 and r in big and overflows(big[r])
+    ]
+    return {"position": sorted(found)} if found else None
+
+
 def refusals(path, truth, rows, big, caps, boxes, values_of):
-    """``{cap: refusal}`` for the caps under which pycocotools 2.0.11 raises (boxes) or
-    stops its precision fill (scores) on the file; ``rows``/``big``: the detections
-    read loosely (``exact_scores._affected``), ``values_of`` gives their Python scores."""
+    """``{cap: refusal}`` for the caps under which pycocotools 2.0.11 raises on a box
+    of the file (``boxes``: some loaded box is infinite); ``rows``/``big``: the
+    detections read loosely (``exact_scores._affected``), ``values_of`` gives their
+    Python scores."""
+    if not boxes:
+        return {}
     rank = _ranks(rows, big, values_of)
-    records = _records(path) if boxes else None
+    records = _records(path)
+    if records is None:
+        return {}
     out = {}
     for cap in caps:
         compared = np.ones(len(rank), bool) if cap is None else rank < cap
-        refusal = None
-        if records is not None:
-            refusal = _box_refusal(path, truth, rows, rank, compared, records)
-        out[cap] = refusal or _score_refusal(path, truth, rows, big, compared)
+        out[cap] = _box_refusal(path, truth, rows, rank, compared, records)
     return {cap: r for cap, r in out.items() if r}
 
 
@@ -143,36 +161,13 @@ def _box_refusal(path, truth, rows, rank, compared, records):
     )
 
 
-def _score_refusal(path, truth, rows, big, compared):
-    with_truth = np.zeros(len(truth.classes), bool)
-    with_truth[truth.box_class] = True
-    found = [
-        int(r)
-        for r, k in zip(rows["record"][compared].tolist(), rows["cls"][compared].tolist())
-        if r in big and overflows(big[r]) and with_truth[k]
-    ]
-    if not found:
-        return None
-    record = min(found)
-    return _refusal(
-        path,
-        record,
-        "score",
-        "its accumulate stops filling the precision at "
-        "the first recall point that lands on it (it cannot write it into a float64 "
-        "array and swallows that OverflowError); this engine does not model that cut",
-        bits=big[record].bit_length(),
-    )
-
-
-def _refusal(path, record, field, why, bits=None):
-    size = f" ({bits} bits)" if bits else ""
+def _refusal(path, record, field, why):
     return {
         "path": str(path),
         "record": f"record {record}",
         "field": field,
         "message": (
-            f"{field} holds an integer beyond float64's range{size}, read here as "
+            f"{field} holds an integer beyond float64's range, read here as "
             f"infinite; {_PYCOCOTOOLS} keeps it as a Python integer: {why}. The file is "
             f"refused for this protocol (write the number as a float, e.g. 1e400, to "
             "have it read as infinite)"

@@ -28,9 +28,9 @@ order is key, then image, then rank — the stable sort of the joined lists). Ma
 (``accumulation_order.orders``) and ``MatchRecords.det_key`` carry it into every later
 step; the shown scores and every threshold keep the float64 value. A protocol with
 another cap cannot use it and raises the entry's refusal, naming the record. Where the
-orders agree no order is kept; the numbers are then pycocotools' except for integers
-beyond float64's range, which its ``accumulate`` cannot write into its float64 score
-array (``beyond_float64``: such files are refused under the caps checked).
+orders agree no order is kept. Integers beyond float64's range, which its ``accumulate``
+cannot write into its float64 score array, stop its precision fill there
+(``beyond_float64``): their detections are listed for ``curves.fill_stops``.
 
 The CityPersons script (``eval_MR_multisetup.py``, preset ``miss-rate-cityscale``) is a
 pycocotools derivative that reads JSON with Python's ``json`` and makes the same numpy
@@ -185,9 +185,10 @@ def check(path, truth, classes, wide, boxes=False):
     the setups, which ``pedestrian.evaluate_setups`` takes.
 
     An entry may also carry ``"overflow"``: the refusal of a file holding integers
-    beyond float64's range where pycocotools meets them (``beyond_float64``; scores
-    of ``classes``, and boxes of every class when ``boxes``: a loaded box is
-    infinite)."""
+    beyond float64's range in a box pycocotools meets (``beyond_float64``; boxes of
+    every class when ``boxes``: a loaded box is infinite). The detections whose score
+    is such an integer are listed under ``beyond_float64.OVERFLOWING``
+    (``{"position": [...]}``): pycocotools' precision fill stops at them."""
     if not len(classes) and not boxes:
         return {}
     rows, big = _affected(path, truth, range(len(truth.classes)) if boxes else classes, wide)
@@ -201,6 +202,9 @@ def check(path, truth, classes, wide, boxes=False):
     for cap, refusal in refusals.items():  # refused under that cap (``score_conflict``)
         key = "none" if cap is None else str(cap)
         conflicts[key] = {**conflicts[key], beyond_float64.OVERFLOW: refusal}
+    overflowing = beyond_float64.overflowing(rows, big)
+    if overflowing:  # where pycocotools' precision fill stops (``curves.fill_stops``)
+        conflicts[beyond_float64.OVERFLOWING] = overflowing
     return conflicts
 
 
@@ -238,6 +242,9 @@ def restrict(conflicts, positions):
         inside = at < len(positions)
         inside[inside] = positions[at[inside]] == position[inside]
         narrowed = dict(entry, position=at[inside].tolist())
+        if key == beyond_float64.OVERFLOWING:  # positions only (kept, maybe empty)
+            out[key] = narrowed
+            continue
         narrowed["rank"] = np.asarray(entry["rank"], np.int64)[inside].tolist()
         if "key" in entry:
             narrowed["key"] = np.asarray(entry["key"], np.int64)[inside].tolist()
