@@ -16,7 +16,7 @@ from hypothesis import strategies as st
 
 from evaluation.engine import InputError, evaluate, load_predictions, load_truth, shards
 from evaluation.engine.__main__ import main
-from evaluation.engine.loaders import results_stream
+from evaluation.engine.loaders import boolean_scores, results_stream
 from evaluation.engine.pieces import stream_pieces
 from evaluation.engine.protocols import protocol_from_dict
 
@@ -108,6 +108,20 @@ def test_worked_cases_against_pycocotools(tmp_path, case):
     assert _like_reference(tmp_path, split, records) == raised
 
 
+def test_numbers_of_zero_and_one_alone_are_scored_without_a_second_read(tmp_path, monkeypatch):
+    """Every image's top detection scores 1.0 (numbers, no boolean in the file): a
+    candidate class whose file holds no ``true``/``false`` is not read again, and
+    pycocotools 2.0.11 scores it (a float64 list)."""
+    split = _split(2, lambda i: [(1, 0)])
+    records = [_det(1, 1, 0, 1.0), _det(2, 1, 1, 0.0)]
+
+    def no_second_read(*args):
+        raise AssertionError("read again")
+
+    monkeypatch.setattr(boolean_scores.exact_scores, "_affected", no_second_read)
+    assert _like_reference(tmp_path, split, records) == []
+
+
 def test_the_refusal_names_the_first_top_boolean_in_file_order(tmp_path):
     """Images 2 and 1 each top-ranked by a boolean (image 2's written first): record 0
     is named; a protocol with a per-image cap of 2 is refused as well (the first two
@@ -143,11 +157,15 @@ def test_the_command_line_exits_2_naming_file_record_and_field(tmp_path, capsys)
     assert "Traceback" not in err
 
 
-def test_streamed_pieces_and_the_cache_carry_the_refusal(tmp_path, monkeypatch):
+@pytest.mark.parametrize("dense", [True, False])
+def test_streamed_pieces_and_the_cache_carry_the_refusal(tmp_path, monkeypatch, dense):
     """Read a block at a time into pieces (tiny blocks: image 3's top detection comes
     in a later block than its other one) and loaded through the cache: the same
-    entry, and each piece is refused as the whole file is."""
+    entry, and each piece is refused as the whole file is; with the top scores kept
+    per (image, class) of the split or as sorted pairs (``DENSE_GROUPS``)."""
     monkeypatch.setattr(results_stream, "CHUNK_BYTES", 256)
+    if not dense:
+        monkeypatch.setattr(boolean_scores, "DENSE_GROUPS", 0)
     split = _split(4, lambda i: [(1, 0)] if i != 4 else [])
     dets = [_det(i, 1, 0, bool(i % 2)) for i in range(1, 4)]
     dets += [_det(i, 1, 1, 0.0) for i in range(1, 4)] + [_det(3, 1, 2, True)]
@@ -155,6 +173,7 @@ def test_streamed_pieces_and_the_cache_carry_the_refusal(tmp_path, monkeypatch):
     truth = load_truth(gt)
     whole = load_predictions(dt, truth)
     assert _reference(pycocotools_eval, gt, dt) is None
+    assert whole.score_conflicts[boolean_scores.KEY][0]["record"] == "record 0"
     cached = [load_predictions(dt, truth, cache_dir=str(tmp_path / "c")) for _ in range(2)]
     assert all(c.score_conflicts == whole.score_conflicts for c in cached)
     pieces_dir = tmp_path / "pieces"

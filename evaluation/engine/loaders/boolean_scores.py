@@ -17,7 +17,8 @@ Checked by running pycocotools 2.0.11 (``tests/engine/test_boolean_scores.py``).
 
 The engine reads a boolean as 1.0/0.0. ``Tops`` finds, from those float64 columns, the
 classes where pycocotools could raise (every image of ``E`` has a detection and its top
-one scores 0 or 1); only when there is one is the file read again, loosely
+one scores 0 or 1); only when there is one, and the file's bytes hold ``true`` or
+``false``, is the file read again, loosely
 (``exact_scores._affected``, which tells a boolean from a number), and ``entries``
 gives, per such class, the *depth*: the longest cap under which pycocotools raises
 (``None``: all of every image's detections are booleans, no cap helps). ``refusal``
@@ -33,21 +34,35 @@ KEY = "booleans"
 _NO_BREAK = np.iinfo(np.int64).max
 
 
+#: Up to this many (image, class) groups ``Tops`` keeps one float32 per group (16 MB),
+#: filled with ``np.fmax.at``; beyond, (group, score) pairs, sorted.
+DENSE_GROUPS = 1 << 22
+
+
 class Tops:
     """Per (image, class), the top score pycocotools ranks first (the highest, NaN
-    last; a group of NaN alone: -inf), gathered a block at a time. Memory: one
-    (group, score) pair per group holding a detection."""
+    last; a group of NaN alone: -inf), gathered a block at a time. Memory: one float32
+    per (image, class) of the split up to ``DENSE_GROUPS``, else one (group, score)
+    pair per group holding a detection. float32 may round a score to 0 or 1: a
+    candidate too many, which ``entries`` reads exactly."""
 
     def __init__(self, truth):
         self._n = len(truth.classes)
         self._truth = truth
+        size = truth.n_images * self._n
+        self._dense = np.full(size, np.nan, np.float32) if size <= DENSE_GROUPS else None
         self._groups, self._tops = [], []
         self._held = self._kept = 0
 
     def add(self, image, cls, score):
         group = np.asarray(image, np.int64) * self._n + np.asarray(cls, np.int64)
         score = np.asarray(score, np.float64)
-        group, top = _reduced(group, np.where(np.isnan(score), -np.inf, score))
+        top = np.where(np.isnan(score), -np.inf, score)
+        if self._dense is not None:
+            with np.errstate(over="ignore"):  # a huge score is infinite in float32
+                np.fmax.at(self._dense, group, top.astype(np.float32))
+            return
+        group, top = _reduced(group, top)
         self._groups.append(group)
         self._tops.append(top)
         self._held += len(group)
@@ -60,9 +75,13 @@ class Tops:
         """The classes where every image with ground truth or a detection of the class
         has a detection whose top score is 0 or 1 (a boolean read as a number may be
         all pycocotools joins there)."""
-        group = np.concatenate(self._groups) if self._groups else np.zeros(0, np.int64)
-        top = np.concatenate(self._tops) if self._tops else np.zeros(0)
-        group, top = _reduced(group, top)
+        if self._dense is not None:
+            group = np.flatnonzero(~np.isnan(self._dense))
+            top = self._dense[group]
+        else:
+            group = np.concatenate(self._groups) if self._groups else np.zeros(0, np.int64)
+            top = np.concatenate(self._tops) if self._tops else np.zeros(0)
+            group, top = _reduced(group, top)
         cls = group % self._n
         ok = np.zeros(self._n, bool)
         ok[cls] = True
@@ -96,7 +115,7 @@ def entries(path, truth, classes, wide):
     the largest cap it raises under (None: any). The record named is the first in file
     order of the class's top detections per image (all booleans; what pycocotools joins
     under every cap)."""
-    if not len(classes):
+    if not len(classes) or not _holds_literal(path):
         return []
     rows, _ = exact_scores._affected(path, truth, classes, wide)
     n = len(truth.classes)
@@ -122,6 +141,20 @@ def entries(path, truth, classes, wide):
         value = bool(rows["score"][mine][order][first])
         out.append(_entry(path, truth, k, depth, int(record[first]), value))
     return out
+
+
+def _holds_literal(path, size=1 << 22):
+    """Whether the file's bytes hold ``true`` or ``false`` anywhere (a JSON boolean is
+    exactly those UTF-8 bytes; in a string too, which only costs the loose read): a
+    file of numbers scoring 1.0 or 0.0 on top of every image is not read loosely."""
+    tail = b""
+    with open(path, "rb") as f:
+        while block := f.read(size):
+            block = tail + block
+            if b"true" in block or b"false" in block:
+                return True
+            tail = block[-4:]
+    return False
 
 
 def _entry(path, truth, k, depth, record, value):
