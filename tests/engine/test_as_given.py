@@ -282,10 +282,9 @@ def test_every_path_agrees(tmp_path, monkeypatch):
     ids reach across the file) and sharded runs give the same columns, counts and
     records as the whole load."""
     from evaluation.engine import match, shards
-    from evaluation.engine.loaders import coco_json, results_stream
 
+    from .load_paths import COLUMNS, every_path_agrees
     from .test_shards import FIELDS, _scorecard, _sharded
-    from .test_stream_pieces import _compare as compare_pieces
 
     dets = [HEAD, det(7, 2, 1, 0.3), det(0, 1, 1, 0.9), det(7, 1, 1, 0.95, (11, 11, 20, 20)),
             det(-1, 3, 2, 0.6, (5, 5, 40, 41)), det(9, 3, 2, 0.5, (6, 5, 40, 40)),
@@ -295,22 +294,8 @@ def test_every_path_agrees(tmp_path, monkeypatch):
     whole = load_predictions(dt, truth)
     assert whole.free is not None and whole.box_counts["replaced_by_id"] == 1
     assert whole.unwritable.tolist() == [-1] * 5 + [6]
-    cache = tmp_path / "cache"
-    load_predictions(dt, truth, cache_dir=cache)
-    loads = [load_predictions(dt, truth, cache_dir=cache)]
-    monkeypatch.setattr(results_stream, "CHUNK_BYTES", 90)
-    loads.append(load_predictions(dt, truth))
-    monkeypatch.setattr(coco_json, "VALIDATE_FIRST_BYTES", 0)
-    loads.append(load_predictions(dt, truth))
-    for other in loads:
-        for name in ("image", "cls", "boxes", "score", "area", "free", "unwritable"):
-            assert getattr(whole, name).tobytes() == getattr(other, name).tobytes(), name
-        assert whole.box_counts == other.box_counts
-    for images_per_shard in (1, 2):
-        work = tmp_path / f"pieces-{images_per_shard}"
-        work.mkdir()
-        predictions, _ = compare_pieces(dt, truth, images_per_shard, work)
-        assert predictions.box_counts == whole.box_counts
+    columns = (*COLUMNS, "free", "unwritable")
+    every_path_agrees(tmp_path, monkeypatch, dt, truth, whole, 90, columns)
     for protocol in ("coco", "voc"):
         single = match(truth, whole, protocol)
         (tmp_path / protocol).mkdir()

@@ -15,10 +15,11 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 from pycocotools import mask as mask_utils
 
-from evaluation.engine import COCO_SUMMARY_KEYS, evaluate, load_predictions, load_truth
+from evaluation.engine import load_predictions, load_truth
 from evaluation.engine.loaders import results_stream
 
-from .conftest import as_reference, pycocotools_eval
+from .load_paths import as_pycocotools, every_slice_size, same_columns
+from .test_mask_results import _small_split
 from .test_stream_pieces import _compare as compare_pieces
 
 W, H = 40, 30
@@ -90,42 +91,12 @@ def _files(tmp_path, split, dets):
     return gt, dt
 
 
-def _same_columns(a, b):
-    for name in ("image", "cls", "boxes", "score", "area"):
-        x, y = getattr(a, name), getattr(b, name)
-        if x is None or y is None:
-            assert x is None and y is None, name
-        else:
-            assert x.dtype == y.dtype and x.tobytes() == y.tobytes(), name
-
-
-def _as_pycocotools(gt, dt, truth, predictions):
-    ours = evaluate(truth, predictions, "coco")["summary"]
-    reference = pycocotools_eval(gt, dt).stats
-    assert [as_reference(ours[k]) for k in COCO_SUMMARY_KEYS] == pytest.approx(
-        list(reference), abs=1e-12
-    )
-
-
 def test_slice_ending_at_a_nested_segmentation_close(tmp_path, monkeypatch):
     """The audit's case, small: two mask results (segmentation, then score), the first
     slice ending right after the last record's ``segmentation`` object's ``}, ``. Was
     refused as boxes ("record 0: field 'bbox' ... got None"); pycocotools 2.0.11 scores
     it, and so do we, equal."""
-    small = {
-        "images": [{"id": 1, "width": W, "height": H}],
-        "annotations": [
-            {
-                "id": 1,
-                "image_id": 1,
-                "category_id": 1,
-                "bbox": [2, 3, 10, 8],
-                "area": 80.0,
-                "iscrowd": 0,
-            }
-        ],
-        "categories": [{"id": 1, "name": "car"}],
-    }
+    small = _small_split()  # one 40x30 image (W x H), one box
     dets = [
         {"image_id": 1, "category_id": 1, "segmentation": _rle(20, 20, 5, 5), "score": 0.9},
         {"image_id": 1, "category_id": 1, "segmentation": _rle(3, 2, 8, 10), "score": 0.8},
@@ -139,8 +110,8 @@ def test_slice_ending_at_a_nested_segmentation_close(tmp_path, monkeypatch):
     monkeypatch.setattr(results_stream, "CHUNK_BYTES", cut)
     sliced = load_predictions(dt, truth)
     assert sliced.area is not None
-    _same_columns(sliced, whole)
-    _as_pycocotools(gt, dt, truth, sliced)
+    same_columns(sliced, whole)
+    as_pycocotools(gt, dt, truth, sliced)
     compare_pieces(dt, truth, 1, tmp_path)
 
 
@@ -173,9 +144,9 @@ def _slices_read_alike(tmp_path, monkeypatch, seed, masks, chunk, images_per_sha
     with monkeypatch.context() as m:
         m.setattr(results_stream, "CHUNK_BYTES", chunk)
         sliced = load_predictions(dt, truth)
-        _same_columns(sliced, whole)
+        same_columns(sliced, whole)
         compare_pieces(dt, truth, images_per_shard, tmp_path)
-    _as_pycocotools(gt, dt, truth, whole)
+    as_pycocotools(gt, dt, truth, whole)
 
 
 @pytest.mark.parametrize("literal", ["NaN", "Infinity", "-Infinity"])
@@ -196,8 +167,5 @@ def test_a_literal_cut_by_a_slice_end_is_read_whole(tmp_path, monkeypatch, liter
     dt.write_text(dt.read_text().replace('"LITERAL"', literal))
     truth = load_truth(gt)
     whole = load_predictions(dt, truth)
-    _as_pycocotools(gt, dt, truth, whole)
-    for chunk in range(1, len(dt.read_bytes()) + 1):
-        with monkeypatch.context() as m:
-            m.setattr(results_stream, "CHUNK_BYTES", chunk)
-            _same_columns(load_predictions(dt, truth), whole)
+    as_pycocotools(gt, dt, truth, whole)
+    every_slice_size(monkeypatch, dt, truth, whole)

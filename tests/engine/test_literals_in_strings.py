@@ -16,10 +16,10 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from evaluation.engine import COCO_SUMMARY_KEYS, evaluate, load_predictions, load_truth
+from evaluation.engine import load_predictions, load_truth
 from evaluation.engine.loaders import json_literals, results_stream
 
-from .conftest import as_reference, pycocotools_eval
+from .load_paths import as_pycocotools, every_slice_size, same_columns
 
 _TRUTH = {
     "images": [{"id": 1, "width": 100, "height": 100}, {"id": 2, "width": 100, "height": 100}],
@@ -45,18 +45,7 @@ def _write(tmp_path, records):
     return gt, dt
 
 
-def _same_columns(a, b):
-    for name in ("image", "cls", "boxes", "score"):
-        x, y = getattr(a, name), getattr(b, name)
-        assert x.dtype == y.dtype and x.tobytes() == y.tobytes(), name
-
-
-def _as_pycocotools(gt, dt, truth, predictions):
-    ours = evaluate(truth, predictions, "coco")["summary"]
-    reference = pycocotools_eval(gt, dt).stats
-    assert [as_reference(ours[k]) for k in COCO_SUMMARY_KEYS] == pytest.approx(
-        list(reference), abs=1e-12
-    )
+_COLUMNS = ("image", "cls", "boxes", "score")  # box readings: no area column
 
 
 def _records(rng, n, tags, literal_key=True):
@@ -87,11 +76,8 @@ def test_the_audits_file_is_scored_as_pycocotools_scores_it(tmp_path, monkeypatc
     )
     truth = load_truth(gt)
     whole = load_predictions(dt, truth)
-    _as_pycocotools(gt, dt, truth, whole)
-    for chunk in range(1, len(dt.read_bytes()) + 1):
-        with monkeypatch.context() as m:
-            m.setattr(results_stream, "CHUNK_BYTES", chunk)
-            _same_columns(load_predictions(dt, truth), whole)
+    as_pycocotools(gt, dt, truth, whole)
+    every_slice_size(monkeypatch, dt, truth, whole, _COLUMNS)
     # the masking leaves a string the data ends inside as it is (json_literals)
     cut = b'[{"a":NaN,"note":"NaN}'
     assert json_literals.masked(cut) == b'[{"a":"N","note":"NaN}'
@@ -112,15 +98,12 @@ def test_every_slice_size_over_strings_holding_literals(tmp_path, monkeypatch, l
     assert len(json.loads(dt.read_text())) == len(records)  # Python's json reads it
     truth = load_truth(gt)
     whole = load_predictions(dt, truth)
-    _as_pycocotools(gt, dt, truth, whole)
-    for chunk in range(1, len(dt.read_bytes()) + 1):
-        with monkeypatch.context() as m:
-            m.setattr(results_stream, "CHUNK_BYTES", chunk)
-            _same_columns(load_predictions(dt, truth), whole)
+    as_pycocotools(gt, dt, truth, whole)
+    every_slice_size(monkeypatch, dt, truth, whole, _COLUMNS)
     cached = load_predictions(dt, truth, cache_dir=tmp_path / "cache")
     again = load_predictions(dt, truth, cache_dir=tmp_path / "cache")
-    _same_columns(cached, whole)
-    _same_columns(again, whole)
+    same_columns(cached, whole, _COLUMNS)
+    same_columns(again, whole, _COLUMNS)
 
 
 @settings(
@@ -152,7 +135,7 @@ def test_any_slice_size_over_literal_text_in_strings(
         dt.write_text(dt.read_text().replace('"LITERAL"', literal))
         truth = load_truth(gt)
         whole = load_predictions(dt, truth)
-        _as_pycocotools(gt, dt, truth, whole)
+        as_pycocotools(gt, dt, truth, whole)
         with monkeypatch.context() as m:
             m.setattr(results_stream, "CHUNK_BYTES", chunk)
-            _same_columns(load_predictions(dt, truth), whole)
+            same_columns(load_predictions(dt, truth), whole, _COLUMNS)

@@ -28,6 +28,7 @@ from evaluation.engine import InputError, load_predictions, load_truth
 from evaluation.engine.loaders import uncompared
 
 from .conftest import pycocotools_eval
+from .load_paths import every_path_agrees
 from .test_coco_reference import _compare
 from .test_mask_results import _files, _rect
 
@@ -321,30 +322,9 @@ def test_every_path_agrees(tmp_path, monkeypatch, reading):
 def _every_path_agrees(tmp_path, monkeypatch, gt, dt):
     """The whole load of ``dt``; a cached load, tiny slices, validated first and the
     streamed pieces give its columns and counts."""
-    from evaluation.engine.loaders import coco_json, results_stream
-
-    from .test_stream_pieces import _compare as compare_pieces
-
     truth = load_truth(gt)
     whole = load_predictions(dt, truth)
-    cache = _where(tmp_path, "cache")
-    load_predictions(dt, truth, cache_dir=cache)
-    loads = [load_predictions(dt, truth, cache_dir=cache)]
-    monkeypatch.setattr(results_stream, "CHUNK_BYTES", 700)
-    loads.append(load_predictions(dt, truth))
-    monkeypatch.setattr(coco_json, "VALIDATE_FIRST_BYTES", 0)
-    loads.append(load_predictions(dt, truth))
-    for other in loads:
-        for name in ("image", "cls", "boxes", "score", "area"):
-            if getattr(whole, name) is None:  # the box reading: no area column
-                assert getattr(other, name) is None
-                continue
-            assert getattr(whole, name).tobytes() == getattr(other, name).tobytes(), name
-        assert whole.box_counts == other.box_counts
-    for images_per_shard in (1, 2):
-        work = _where(tmp_path, f"pieces-{images_per_shard}")
-        predictions, _ = compare_pieces(dt, truth, images_per_shard, work)
-        assert predictions.box_counts == whole.box_counts
+    every_path_agrees(tmp_path, monkeypatch, dt, truth, whole, 700)
     return whole
 
 
