@@ -24,37 +24,15 @@ from evaluation.engine.level_provenance import level_record
 from evaluation.engine.pedestrian import evaluate_setups
 
 from . import pedestrian_oracle
-
-SETUPS = ("reasonable", "small", "heavy", "all")
-
-
-def _write(root, dataset, results=None, name="gt.json"):
-    gt = root / name
-    gt.write_text(json.dumps(dataset))
-    if results is None:
-        return gt
-    dt = root / "dt.json"
-    dt.write_text(json.dumps(results))
-    return gt, dt
+from .cityscale_checks import setups_as_script
+from .cityscale_checks import write_files as _write
 
 
 def _compare(tmp_path, dataset, results):
     """Per setup: the engine's value and nine miss rates on the file as written against
     the transliteration's ``summarize`` on the same parsed JSON (exact equality)."""
     gt, dt = _write(tmp_path, dataset, results)
-    truth = load_truth(gt)
-    ours = evaluate_setups(truth, load_predictions(dt, truth), "miss-rate-cityscale")
-    for setup in SETUPS:
-        mean_s, mrs = pedestrian_oracle.cityscale_coco(
-            dataset, results, pedestrian_oracle.SETUP_IDS[setup]
-        )
-        level = ours["levels"][setup]
-        if mrs is None:
-            assert level["miss_rate"] is None, setup
-            continue
-        assert level["miss_rate"] == mean_s, (setup, level["miss_rate"], mean_s)
-        assert level["classes"]["pedestrian"]["reference_miss_rate"] == mrs, setup
-    return ours
+    return setups_as_script(load_truth(gt), dt, dataset, results)
 
 
 def _person(ann_id, x, vis_ratio, **more):
