@@ -23,13 +23,13 @@ TARGET_SECONDS = 30
 
 def main():
     parser = argparse.ArgumentParser(description=__doc__.split("\n")[0])
-    parser.add_argument("--images", type=int, default=5000)
-    parser.add_argument("--detections", type=int, default=500_000)
+    sys.path.insert(0, str(ROOT))
+    from bench.synthetic_split import generate, size_arguments
+
+    size_arguments(parser, images=5000, detections=500_000)
     parser.add_argument("--resamples", type=int, default=1000)
     parser.add_argument("--workers", type=int, default=os.cpu_count() or 1)
     args = parser.parse_args()
-    sys.path.insert(0, str(ROOT))
-    from bench.synthetic_split import generate
     from evaluation.engine import load_predictions, load_truth, match
     from evaluation.engine.bootstrap import compare_ap
 

@@ -38,9 +38,10 @@ MEMORY_GROWTH = 1.5  # the download's peak may not grow with its length (streame
 
 def main():
     parser = argparse.ArgumentParser(description=__doc__.split("\n")[0])
-    parser.add_argument("--images", type=int, default=5000)
-    parser.add_argument("--detections", type=int, default=500_000)
-    parser.add_argument("--classes", type=int, default=80)
+    sys.path.insert(0, str(ROOT))
+    from bench.synthetic_split import size_arguments
+
+    size_arguments(parser, images=5000, detections=500_000, classes=80)
     parser.add_argument("--repeat", type=int, default=5)
     args = parser.parse_args()
 
@@ -51,7 +52,6 @@ def main():
     os.environ.pop("CELERY_BROKER_URL", None)
     os.environ["BENCHBOOK_MAX_UPLOAD_BYTES"] = str(4 * 1024**3)
     os.environ["BENCHBOOK_INLINE_VALIDATION_BYTES"] = "0"  # the worker checks them
-    sys.path.insert(0, str(ROOT))
     import django
 
     django.setup()

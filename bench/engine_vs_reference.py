@@ -17,7 +17,6 @@ import json
 import os
 import pathlib
 import resource
-import shutil
 import subprocess
 import sys
 import time
@@ -100,27 +99,16 @@ def spawn(name, gt, dt):
 
 def main():
     parser = argparse.ArgumentParser(description=__doc__.split("\n")[0])
-    parser.add_argument("--images", type=int, default=5000)
-    parser.add_argument("--detections", type=int, default=500_000)
-    parser.add_argument("--classes", type=int, default=80)
-    parser.add_argument("--seed", type=int, default=7)
+    sys.path.insert(0, str(ROOT))
+    from bench.synthetic_split import size_arguments, write_fresh
+
+    size_arguments(parser, images=5000, detections=500_000, classes=80, seed=7)
     parser.add_argument("--child", nargs=3, help=argparse.SUPPRESS)
     args = parser.parse_args()
     if args.child:
         return child(*args.child)
 
-    sys.path.insert(0, str(ROOT))
-    from bench.synthetic_split import write
-
-    OUT.mkdir(parents=True, exist_ok=True)
-    shutil.rmtree(OUT / "cache", ignore_errors=True)
-    gt, dt = write(
-        OUT,
-        seed=args.seed,
-        n_images=args.images,
-        detections=args.detections,
-        n_classes=args.classes,
-    )
+    gt, dt = write_fresh(OUT, args)
     spawn("benchbook (cache)", gt, dt)  # warm the columnar cache
     before = os.getloadavg()
     rows = {name: spawn(name, gt, dt) for name in CONTENDERS}

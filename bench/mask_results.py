@@ -19,7 +19,6 @@ import argparse
 import json
 import os
 import pathlib
-import shutil
 import sys
 
 import numpy as np
@@ -29,6 +28,7 @@ OUT = ROOT / "bench" / "out" / "masks"
 sys.path.insert(0, str(ROOT))
 
 from bench import engine_vs_reference as timed  # noqa: E402
+from bench.synthetic_split import size_arguments, write_fresh  # noqa: E402
 
 
 def _rectangle_counts(box, height, width):
@@ -60,26 +60,11 @@ def write_masks(dt_path, out_path, height, width):
 
 def main():
     parser = argparse.ArgumentParser(description=__doc__.split("\n")[0])
-    parser.add_argument("--images", type=int, default=1000)
-    parser.add_argument("--detections", type=int, default=50_000)
-    parser.add_argument("--classes", type=int, default=20)
-    parser.add_argument("--seed", type=int, default=7)
+    size_arguments(parser, images=1000, detections=50_000, classes=20, seed=7)
     args = parser.parse_args()
 
-    from bench.synthetic_split import write
-
     height, width = 360, 640
-    OUT.mkdir(parents=True, exist_ok=True)
-    shutil.rmtree(OUT / "cache", ignore_errors=True)
-    gt, boxes = write(
-        OUT,
-        seed=args.seed,
-        n_images=args.images,
-        detections=args.detections,
-        n_classes=args.classes,
-        width=width,
-        height=height,
-    )
+    gt, boxes = write_fresh(OUT, args, width=width, height=height)
     masks = write_masks(boxes, OUT / "masks.json", height, width)
     runs = {
         "benchbook (boxes)": timed.spawn("benchbook", gt, boxes),

@@ -34,13 +34,12 @@ TARGET_SECONDS = 1.0
 
 def main():
     parser = argparse.ArgumentParser(description=__doc__.split("\n")[0])
-    parser.add_argument("--images", type=int, default=5000)
-    parser.add_argument("--detections", type=int, default=500_000)
-    parser.add_argument("--classes", type=int, default=80)
+    sys.path.insert(0, str(ROOT))
+    from bench.synthetic_split import generate, size_arguments
+
+    size_arguments(parser, images=5000, detections=500_000, classes=80)
     parser.add_argument("--protocol", default="coco")
     args = parser.parse_args()
-    sys.path.insert(0, str(ROOT))
-    from bench.synthetic_split import generate
     from evaluation.engine import load_predictions, load_truth, match
     from evaluation.engine.per_image import change_contributions, image_counts
     from evaluation.engine.scoring import headline

@@ -4,6 +4,7 @@ Vectorised so that 5,000 images and 500,000 detections take seconds to make.
 """
 
 import json
+import shutil
 
 import numpy as np
 
@@ -107,3 +108,29 @@ def write(directory, **kwargs):
     gt_path.write_text(json.dumps(truth))
     dt_path.write_text(json.dumps(predictions))
     return gt_path, dt_path
+
+
+def size_arguments(parser, *, images, detections, classes=None, seed=None):
+    """The size options of a benchmark on this split, with that benchmark's defaults:
+    ``--images``, ``--detections``, and ``--classes`` and ``--seed`` where given."""
+    parser.add_argument("--images", type=int, default=images)
+    parser.add_argument("--detections", type=int, default=detections)
+    if classes is not None:
+        parser.add_argument("--classes", type=int, default=classes)
+    if seed is not None:
+        parser.add_argument("--seed", type=int, default=seed)
+
+
+def write_fresh(directory, args, **frame):
+    """``write`` at the size ``args`` asks (``size_arguments``), into ``directory``
+    (made if missing) with its engine cache cleared, so every run starts cold."""
+    directory.mkdir(parents=True, exist_ok=True)
+    shutil.rmtree(directory / "cache", ignore_errors=True)
+    return write(
+        directory,
+        seed=args.seed,
+        n_images=args.images,
+        detections=args.detections,
+        n_classes=args.classes,
+        **frame,
+    )
