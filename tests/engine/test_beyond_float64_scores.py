@@ -202,21 +202,16 @@ def _paths_dets():
     return dets + [_det(i, 2, 1, 0.5) for i in (1, 3, 4)]
 
 
-def test_whole_streamed_sharded_and_cached_alike(tmp_path, monkeypatch):
-    """The streamed pieces (tiny blocks), the shards of a whole load and cached loads
-    carry the detections beyond float64's range (narrowed to each shard): every shard
-    merges to the whole run's records (``det_overflow`` included) and the numbers
-    equal the whole run's and pycocotools 2.0.11's."""
-    monkeypatch.setattr(results_stream, "CHUNK_BYTES", 256)
-    split = _split(6, lambda i: [(1, i % 3), (2, 1)])
-    gt, dt = _write(tmp_path, split, _paths_dets())
+def paths_agree(tmp_path, gt, dt):
+    """Whole, cached, streamed-piece and cut-shard runs of the files give the same
+    records (``det_overflow``, ``det_key``, the order) and scorecards under ``coco`` and
+    ``recall40``; returns the whole load."""
     truth = load_truth(gt)
     whole = load_predictions(dt, truth)
-    assert whole.overflowing().sum() == 3
     cached = [load_predictions(dt, truth, cache_dir=str(tmp_path / "c")) for _ in range(2)]
     assert all(c.score_conflicts == whole.score_conflicts for c in cached)
     ranges = shards.plan(truth.n_images, 2)
-    (tmp_path / "pieces").mkdir()
+    (tmp_path / "pieces").mkdir(exist_ok=True)
     streamed = stream_pieces(dt, truth, ranges, str(tmp_path / "pieces"))
     cut = list(shards.pieces(truth, whole, ranges))
     for protocol in ("coco", "recall40"):
@@ -229,10 +224,24 @@ def test_whole_streamed_sharded_and_cached_alike(tmp_path, monkeypatch):
                 piece = loaded if source == "streamed" else piece
                 matched.append((shards.match_shard(*piece, protocol), piece[1]))
             merged = shards.merge(matched, truth.n_boxes)
-            assert merged.det_overflow.tobytes() == single.det_overflow.tobytes()
+            for name in ("det_overflow", "det_key", "det_order", "det_rank"):
+                a, b = getattr(merged, name), getattr(single, name)
+                assert (a is None and b is None) or a.tobytes() == b.tobytes(), name
             assert score_records(merged, protocol) == score_records(single, protocol)
         ours = evaluate(truth, whole, protocol)
         assert all(evaluate(truth, other, protocol) == ours for other in cached)
+    return whole
+
+
+def test_whole_streamed_sharded_and_cached_alike(tmp_path, monkeypatch):
+    """The streamed pieces (tiny blocks), the shards of a whole load and cached loads
+    carry the detections beyond float64's range (narrowed to each shard): every shard
+    merges to the whole run's records (``det_overflow`` included) and the numbers
+    equal the whole run's and pycocotools 2.0.11's."""
+    monkeypatch.setattr(results_stream, "CHUNK_BYTES", 256)
+    split = _split(6, lambda i: [(1, i % 3), (2, 1)])
+    gt, dt = _write(tmp_path, split, _paths_dets())
+    assert paths_agree(tmp_path, gt, dt).overflowing().sum() == 3
     _like_pycocotools(tmp_path, split, _paths_dets())
 
 

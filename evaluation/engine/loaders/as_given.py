@@ -28,7 +28,6 @@ changes for pycocotools' numbers, and positions stay the file's).
 
 import numpy as np
 
-from ..errors import InputError
 from . import checks, result_readings
 
 #: ``box_counts`` keys: rows given the values of a later record of the same id, and
@@ -56,12 +55,20 @@ def emit(path, raw, unknown_images):
     """``raw`` (a ``detection_blocks.Raw`` of the whole file, read ``GIVEN``) laid out
     as pycocotools' ``_prepare`` takes its records; its ``free`` column set; the
     count of replaced rows in ``raw.extra_counts``."""
+    return _with_free(raw, *layout(path, raw, unknown_images))
+
+
+def layout(path, raw, unknown_images):
+    """``(source, replaced)``: row i of the laid-out file carries record ``source[i]``
+    (``emit``; also read by ``exact_scores``, which replays pycocotools' ranking of
+    integer scores beyond 2**53 on these rows), ``replaced`` rows carrying another
+    record than their own."""
     ids = raw.ids
     n = len(ids)
     image, found_image = checks.resolve(path, raw.image_ids, raw.known_images, raw.locate, "", "")
     _, listed = checks.resolve(path, raw.class_keys, raw.known_classes, raw.locate, "", "")
     if not found_image.all() and unknown_images != "drop":
-        return _with_free(raw, np.arange(n), 0)  # resolve refuses it, naming the record
+        return np.arange(n), 0  # resolve refuses it, naming the record
     keys = [_key(v) for v in ids.tolist()]
     last = {}
     for i in np.flatnonzero(found_image).tolist():
@@ -71,19 +78,9 @@ def emit(path, raw, unknown_images):
         source[i] = last[keys[i]]
     replaced = int((source != np.arange(n)).sum())
     if not replaced:
-        return _with_free(raw, source, 0)
-    from . import exact_scores
-
-    if exact_scores.suspect(raw.score).any():
-        raise InputError(
-            path,
-            "repeated ids (pycocotools 2.0.11 puts the last result of an id in the place "
-            "of each) together with scores of magnitude 2^53 or more: not supported",
-            record=raw.locate(int(np.flatnonzero(source != np.arange(n))[0])),
-            field="id",
-        )
+        return source, 0
     order = np.argsort(np.where(found_image, image, -1), kind="stable")
-    return _with_free(raw, source[order], replaced)
+    return source[order], replaced
 
 
 _NAN = object()

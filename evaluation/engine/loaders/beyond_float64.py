@@ -71,7 +71,7 @@ def overflowing(rows, big):
 def refusals(path, truth, rows, big, caps, boxes, values_of):
     """``{cap: refusal}`` for the caps under which pycocotools 2.0.11 raises on a box
     of the file (``boxes``: some loaded box is infinite); ``rows``/``big``: the
-    detections read loosely (``exact_scores._affected``), ``values_of`` gives their
+    detections read loosely (``loose_scores._affected``), ``values_of`` gives their
     Python scores."""
     if not boxes:
         return {}

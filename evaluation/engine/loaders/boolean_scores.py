@@ -19,7 +19,7 @@ The engine reads a boolean as 1.0/0.0. ``Tops`` finds, from those float64 column
 classes where pycocotools could raise (every image of ``E`` has a detection and its top
 one scores 0 or 1); only when there is one, and the file's bytes hold ``true`` or
 ``false``, is the file read again, loosely
-(``exact_scores._affected``, which tells a boolean from a number), and ``entries``
+(``loose_scores._affected``, which tells a boolean from a number), and ``entries``
 gives, per such class, the *depth*: the longest cap under which pycocotools raises
 (``None``: all of every image's detections are booleans, no cap helps). ``refusal``
 decides, per protocol, at compare time (``data.Predictions.score_conflict``).

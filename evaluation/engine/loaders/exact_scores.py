@@ -47,20 +47,8 @@ setups' samples (``level_samples``) take.
 import numpy as np
 
 from ..pedestrian_setups import CITYSCALE_HEIGHT_RANGES, HEIGHT_EXPANSION, category_one
-from . import (
-    beyond_float64,
-    checks,
-    coco_json,
-    detection_blocks,
-    json_literals,
-    mask_results,
-    result_readings,
-    uncompared,
-    unread_fields,
-)
-
-#: Magnitude from which an integer may have no float64 of its own (2**53 + 1 has none).
-EXACT_LIMIT = 2.0**53
+from . import beyond_float64, checks
+from .loose_scores import _BOOL, _INT, _affected, suspect
 
 #: The per-image caps checked: pycocotools' ``maxDets[-1]`` (coco) and none (recall40).
 CAPS = (100, None)
@@ -84,16 +72,10 @@ _TAILS = {
 }
 
 
-def suspect(score):
-    """Scores that may be integers float64 rounds or ties (|score| >= 2**53, inf too)."""
-    score = np.asarray(score, np.float64)
-    with np.errstate(invalid="ignore"):
-        return np.abs(score) >= EXACT_LIMIT
-
-
 def cap_values(path, truth, wide):
     """``uncompared.ranks``' ``exact`` for the JSON detections file at ``path``: given
-    detections (``records``, ``group`` = image * classes + class, float64 ``score``),
+    detections (``records``: rows of the file as laid out for loading — ``_affected``'s
+    ``row`` —, ``group`` = image * classes + class, float64 ``score``),
     None when no group holds a ``suspect`` score (nothing is read), else the rows of
     the groups holding one and the Python scores pycocotools holds for them (the file
     read loosely, ``_affected``, for those groups' classes only)."""
@@ -105,69 +87,9 @@ def cap_values(path, truth, wide):
         rows = np.flatnonzero(held)
         classes = np.unique(group[rows] % len(truth.classes)).tolist()
         found, big = _affected(path, truth, classes, wide)
-        return rows, _values(found, big, np.searchsorted(found["record"], records[rows]))
+        return rows, _values(found, big, np.searchsorted(found["row"], records[rows]))
 
     return exact
-
-
-def _loose(collected):
-    def decode(piece, path="", base=0, mode=mask_results.BOXES):
-        if mode == mask_results.MASKS:  # a file read as masks (``mask_results``)
-            loose = json_literals.decode(piece, list[mask_results.LooseMaskDetection])
-            collected.append([r.score for r in loose])
-            return mask_results.normalised(path, loose, base)
-        if mode in result_readings.MODES:
-            return result_readings.decode(piece, path, base, mode, collected)
-        loose = json_literals.decode(piece, list[unread_fields.LooseDetection])
-        collected.append([r.score for r in loose])
-        return unread_fields.normalise_detections(path, loose, base)
-
-    return decode
-
-
-_FLOAT, _INT, _BOOL = 0, 1, 2
-
-
-def _affected(path, truth, classes, wide):
-    """The scored detections of ``classes`` (a second, loose read of the file), as
-    columns ``image``, ``cls``, ``record``, ``position`` (index into the loaded
-    predictions' columns, -1 for an unfit record a load leaves out beyond the cap —
-    ``uncompared`` — but pycocotools ranks; records of unknown images or classes are
-    in neither),
-    ``score`` (float64), ``kind`` (float, int or bool in the file), ``height`` (the
-    file's ``bbox[3]``) and ``big``: record -> the exact Python int of every integer
-    score of magnitude >= 2**53 (the others are exact in float64)."""
-    collected, parts, big, base, loaded = [], [], {}, 0, 0
-    wanted = np.zeros(len(truth.classes), bool)
-    wanted[list(classes)] = True
-    for columns in coco_json.detection_blocks(path, wide, decode=_loose(collected)):
-        values = collected.pop()
-        raw = detection_blocks.json_raw(truth, *columns, base=base)
-        image, found_i = checks.resolve(path, raw.image_ids, raw.known_images, raw.locate, "", "")
-        cls, found_c = checks.resolve(path, raw.class_keys, raw.known_classes, raw.locate, "", "")
-        found = found_i & found_c
-        loads = found.copy()
-        if raw.unfit is not None:  # left out of the loaded columns (``uncompared``)
-            loads &= ~uncompared.fields(raw.unfit)
-        position = np.where(loads, loaded + np.cumsum(loads) - 1, -1)
-        keep = np.flatnonzero(found)
-        keep = keep[wanted[cls[keep]]]
-        kinds = np.array([_kind(values[i]) for i in keep.tolist()], np.int8)
-        score = columns[3][keep]
-        for i in keep[(kinds == _INT) & suspect(score)].tolist():
-            big[base + i] = values[i]
-        height = np.asarray(columns[2], np.float64).reshape(-1, 4)[keep, 3]
-        parts.append((image[keep], cls[keep], base + keep, position[keep], score, kinds, height))
-        base += len(columns[3])
-        loaded += int(loads.sum())
-        collected.clear()
-    names = ("image", "cls", "record", "position", "score", "kind", "height")
-    rows = {n: np.concatenate([p[j] for p in parts]) for j, n in enumerate(names)}
-    return rows, big
-
-
-def _kind(value):
-    return _BOOL if type(value) is bool else _INT if type(value) is int else _FLOAT
 
 
 def check(path, truth, classes, wide, boxes=False):
