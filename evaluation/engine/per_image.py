@@ -14,7 +14,10 @@ be smaller (less of a loss), an image "responsible" for a drop. The numbers are 
 ``scoring.headline`` gives for the same weights, bit for bit: every variant is read
 with the engine's own ``curves.interpolated_precision`` / ``all_point_average_precision``
 and averaged in the same array layout. Only images holding detections or boxes of the
-class are recomputed, a batch of images at a time, each as one more "class" column.
+class are recomputed, a batch of images at a time, each as one more "class" column. A
+class holding a score beyond float64's range (``MatchRecords.det_overflow``) takes
+that column path under every protocol, so ``curves.fill_stops`` applies to each
+variant (``loo_fast`` does not model it).
 """
 
 import numpy as np

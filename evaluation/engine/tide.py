@@ -61,8 +61,10 @@ def class_ap(protocol, tie_order, n_classes, det, n_pos):
     detection without a key (NaN) — one the classification fix moves in, too — comes
     after them at its float64 score, then by image and file position. The float64
     score stays first, so an order that breaks it (int64 wrap-around in
-    pycocotools' ``accumulate``) is not followed here (DEVELOPERS.md). The curve is
-    read as
+    pycocotools' ``accumulate``) is not followed here (DEVELOPERS.md), nor is its
+    precision fill stopping at a score beyond float64's range
+    (``MatchRecords.det_overflow``: tidecv's AP keeps no score array; such a score is
+    ±infinite here). The curve is read as
 
     .. math:: P_i = \frac{TP_i}{TP_i + FP_i + \varepsilon}, \quad R_i = \frac{TP_i}{n_{pos}}
 

@@ -343,3 +343,19 @@ def test_the_cli_writes_strict_json(tmp_path):
 
     result = json.loads(proc.stdout, parse_constant=strict)
     assert result["summary"]["AP"] == pytest.approx(pycocotools_eval(gt, dt).stats[0], abs=1e-12)
+
+
+def test_recall_zero_reads_a_detection_outside_the_size_range_too(tmp_path):
+    """The class's first detection is a large false positive (ignored in the small
+    range) of score 2**1024: pycocotools 2.0.11's ``dtScoresSorted`` holds it in every
+    size range, so AP_small (small boxes found by floats) stops after recall 0 too."""
+    split = _split(2, lambda i: [(1, 0)])
+    dets = [
+        {"image_id": 1, "category_id": 1, "bbox": [50, 50, 40, 40], "score": HUGE},
+        _det(1, 1, 0, 0.9),
+        _det(2, 1, 0, 0.8),
+    ]
+    gt, dt = _write(tmp_path, split, dets)
+    small = pycocotools_eval(gt, dt).eval["precision"][0, :, 0, 1, 2]
+    assert np.count_nonzero(small) == 1
+    _like_pycocotools(tmp_path, split, dets)
