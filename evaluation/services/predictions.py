@@ -88,13 +88,8 @@ def received_predictions(uploaded, split, *, boxes="keep", unknown_classes=None)
     """
     unknown_classes = input_policy(unknown_classes=unknown_classes)["unknown_classes"]
     with tempfile.TemporaryDirectory() as work:
-        try:
-            path, sha, size = spool(uploaded, _limit(), work)
-        except TooLarge as e:
-            raise UploadError(str(e)) from None
-        received = Received(path, sha, size)
-        if size == 0:
-            raise UploadError(f"{received.name}: the file is empty")
+        received = _spooled(uploaded, work)
+        path, size = received.path, received.size
         fmt = None if engine.is_collection(path) else _format_of(received.name)
         try:
             if size <= settings.BENCHBOOK_INLINE_VALIDATION_BYTES:
@@ -141,14 +136,21 @@ def store_predictions(uploaded):
     against a split: for tools and tests that request evaluations directly. Uploads
     go through ``received_predictions``."""
     with tempfile.TemporaryDirectory() as work:
-        try:
-            path, sha, size = spool(uploaded, _limit(), work)
-        except TooLarge as e:
-            raise UploadError(str(e)) from None
-        received = Received(path, sha, size)
-        if size == 0:
-            raise UploadError(f"{received.name}: the file is empty")
-        return received.store()
+        return _spooled(uploaded, work).store()
+
+
+def _spooled(uploaded, work):
+    """The upload spooled into the folder ``work`` (hashed, block by block) as a
+    ``Received``; ``UploadError`` for a file over ``BENCHBOOK_MAX_UPLOAD_BYTES`` or an
+    empty one."""
+    try:
+        path, sha, size = spool(uploaded, _limit(), work)
+    except TooLarge as e:
+        raise UploadError(str(e)) from None
+    received = Received(path, sha, size)
+    if size == 0:
+        raise UploadError(f"{received.name}: the file is empty")
+    return received
 
 
 def _load_predictions(
