@@ -99,10 +99,10 @@ def _same_records(whole, merged):
         assert a.dtype == b.dtype and a.tobytes() == b.tobytes()
 
 
-@pytest.mark.parametrize("protocol", sorted(PRESETS))
-@pytest.mark.parametrize(("images_per_shard", "n_groups"), [(7, 3), (5, N_CLASSES), (48, 1)])
-def test_class_groups_give_the_whole_run(loaded, protocol, images_per_shard, n_groups, tmp_path):
-    truth, predictions = loaded
+def whole_and_grouped(truth, predictions, protocol, images_per_shard, n_groups, tmp_path):
+    """The whole run and the class-group run (``_grouped``) of the same inputs, their
+    records field for field the same: the whole run's records and annotated scorecard,
+    the grouped run's scorecard and TIDE breakdown."""
     whole = match(truth, predictions, protocol)
     tag_masks = {tag: truth.tag_mask(tag) for tag in truth.tags()}
     expected = annotate(
@@ -112,6 +112,16 @@ def test_class_groups_give_the_whole_run(loaded, protocol, images_per_shard, n_g
         truth, predictions, protocol, images_per_shard, n_groups, tmp_path
     )
     _same_records(whole, merged)
+    return whole, expected, result, breakdown
+
+
+@pytest.mark.parametrize("protocol", sorted(PRESETS))
+@pytest.mark.parametrize(("images_per_shard", "n_groups"), [(7, 3), (5, N_CLASSES), (48, 1)])
+def test_class_groups_give_the_whole_run(loaded, protocol, images_per_shard, n_groups, tmp_path):
+    truth, predictions = loaded
+    whole, expected, result, breakdown = whole_and_grouped(
+        truth, predictions, protocol, images_per_shard, n_groups, tmp_path
+    )
     with zipfile.ZipFile(tmp_path / "records.npz") as z:  # uncompressed, as MatchRecords.save
         assert {i.compress_type for i in z.infolist()} == {zipfile.ZIP_STORED}
     # json.dumps writes every float with repr: equal text is equal bits (key order too)

@@ -15,7 +15,6 @@ import pytest
 
 from evaluation.engine import (
     COCO_SUMMARY_KEYS,
-    annotate,
     evaluate,
     load_predictions,
     load_truth,
@@ -26,7 +25,7 @@ from evaluation.engine.tide import error_breakdown
 
 from .conftest import as_reference, pycocotools_eval
 from .synthetic import make_detections, make_split
-from .test_class_groups import _grouped, _same_records
+from .test_class_groups import whole_and_grouped
 from .test_weights import _duplicate, _numbers
 
 B = 2**60
@@ -124,16 +123,10 @@ def test_class_groups_give_the_whole_run(files, protocol, images_per_shard, n_gr
     TIDE breakdown bit for bit equal to the whole run."""
     _, split, dets = _inputs(files, 3)
     truth, predictions = files.load(split, dets)
-    whole = match(truth, predictions, protocol)
-    assert whole.det_key is not None
-    tag_masks = {tag: truth.tag_mask(tag) for tag in truth.tags()}
-    expected = annotate(
-        score_records(whole, protocol, tag_masks=tag_masks), truth, predictions, whole, protocol
-    )
-    result, breakdown, merged = _grouped(
+    whole, expected, result, breakdown = whole_and_grouped(
         truth, predictions, protocol, images_per_shard, n_groups, tmp_path
     )
-    _same_records(whole, merged)
+    assert whole.det_key is not None
     assert json.dumps(result) == json.dumps(expected)
     assert json.dumps(breakdown) == json.dumps(error_breakdown(whole, protocol))
 
