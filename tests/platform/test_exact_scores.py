@@ -19,6 +19,7 @@ from evaluation.models import Evaluation, Scorecard
 from releases import services
 
 from .conftest import detections_for, upload
+from .three_uploads import upload_sharded
 
 pytestmark = pytest.mark.django_db
 
@@ -82,22 +83,8 @@ def test_an_upload_streamed_into_pieces_and_scored_in_shards(
 ):
     """Past the inline size the file is streamed into pieces at upload and scored in
     image shards and class groups: the same numbers."""
-    from evaluation import class_groups, sharding
-
-    from .test_shards import GROUP_SENDS, _run
-
-    sends = []
-    GROUP_SENDS.clear()
-    monkeypatch.setattr(sharding, "send", lambda *args: sends.append(args))
-    monkeypatch.setattr(class_groups, "send", lambda *args: GROUP_SENDS.append(args))
-    settings.BENCHBOOK_INLINE_VALIDATION_BYTES = 1
-    settings.BENCHBOOK_SHARD_ABOVE = 0
-    settings.BENCHBOOK_SHARD_IMAGES = 3
     dets = _huge(detections_for(split_truth), exact)
-    version = services.create_version(detector, "2.0", users["engineer"])
-    run_tasks(
-        services.submit_predictions, version, split, upload("big.json", dets), users["engineer"]
+    version = upload_sharded(
+        run_tasks, settings, monkeypatch, users, detector, split, dets, label="2.0"
     )
-    assert sends
-    _run(run_tasks, sends)
     _check(_evaluations(version), split_truth, dets, tmp_path)

@@ -83,9 +83,10 @@ def refused_by_api(users, detector, split, dets):
     return json.dumps(response.json())
 
 
-def upload_sharded(run_tasks, settings, monkeypatch, users, detector, split, dets):
-    """``dets`` uploaded as version 4.0 past the inline size: streamed into pieces and
-    scored in shards of 3 images (each send run by ``run_tasks``); the version."""
+def upload_sharded(run_tasks, settings, monkeypatch, users, detector, split, dets, label="4.0"):
+    """``dets`` uploaded as version ``label`` past the inline size: streamed into pieces
+    and scored in shards of 3 images and class groups (each send run by ``run_tasks``);
+    the version."""
     from evaluation import class_groups, sharding
     from releases import services
 
@@ -98,7 +99,7 @@ def upload_sharded(run_tasks, settings, monkeypatch, users, detector, split, det
     settings.BENCHBOOK_INLINE_VALIDATION_BYTES = 1
     settings.BENCHBOOK_SHARD_ABOVE = 0
     settings.BENCHBOOK_SHARD_IMAGES = 3
-    version = services.create_version(detector, "4.0", users["engineer"])
+    version = services.create_version(detector, label, users["engineer"])
     run_tasks(
         services.submit_predictions, version, split, upload("big.json", dets), users["engineer"]
     )
