@@ -32,9 +32,11 @@ from .pedestrian_setups import HEIGHT_EXPANSION  # Params.expFilter
 
 def check(truth, predictions, protocol):
     """Raise the ``InputError`` of the first value the script raises on (setups in
-    order; in a setup ``_prepare`` before ``evaluateImg``), or return None."""
-    faults = truth.cityscale_faults
-    if not faults:
+    order; in a setup ``_prepare`` before ``evaluateImg``, then ``accumulate``'s
+    boolean scores: ``Predictions.cityscale_booleans``), or return None."""
+    faults = truth.cityscale_faults or {}
+    booleans = predictions.cityscale_booleans()
+    if not faults and not booleans:
         return
     height = truth.boxes[:, 3]
     visibility = truth.cityscale_visibility()
@@ -52,11 +54,14 @@ def check(truth, predictions, protocol):
         if first is not None:
             _, record, message, field = first
             raise InputError(truth.source, message, record=record, field=field)
+        if booleans and booleans["setup"] == setup.name:  # accumulate's -dtScores
+            where = {k: booleans[k] for k in ("record", "field")}
+            raise InputError(booleans["path"], booleans["message"], **where)
 
 
 def _ignore_fault(truth, predictions, protocol, setup, height, visibility):
     """The first ``int(ignore)`` of ``evaluateImg`` that raises in ``setup``, or None."""
-    entries = truth.cityscale_faults.get("ignore", ())
+    entries = (truth.cityscale_faults or {}).get("ignore", ())
     if not entries:
         return None
     boxes = np.array([e[0] for e in entries], np.int64)

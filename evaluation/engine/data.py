@@ -324,6 +324,7 @@ class GroundTruth:
 
 #: ``loaders.beyond_float64.OVERFLOWING`` (the engine's containers import no loader).
 _OVERFLOWING = "beyond_float64"
+_CITY_BOOLEANS = "cityscale_booleans"  # loaders.cityscale_booleans.KEY
 
 
 def _cap_key(protocol):
@@ -398,8 +399,8 @@ class Predictions:
 
     def _cap_entries(self, booleans):
         """The entries of the caps (``score_conflicts`` without ``"cityscale"``, the
-        ``booleans`` entry and the detections beyond float64's range)."""
-        skip = ("cityscale", booleans, _OVERFLOWING)
+        ``booleans`` entries and the detections beyond float64's range)."""
+        skip = ("cityscale", booleans, _OVERFLOWING, _CITY_BOOLEANS)
         return [(k, c) for k, c in self.score_conflicts.items() if k not in skip]
 
     def overflowing(self):
@@ -436,6 +437,12 @@ class Predictions:
             entry = self.score_conflicts["cityscale"]
             return entry if entry and "position" not in entry else None
         return next((c for _, c in self._cap_entries("booleans") if c), None)
+
+    def cityscale_booleans(self):
+        """The CityPersons script's refusal of boolean scores
+        (``loaders.cityscale_booleans``: ``setup``, the first setup where its
+        ``accumulate`` joins booleans alone, and the ``InputError`` keywords), or None."""
+        return (self.score_conflicts or {}).get(_CITY_BOOLEANS)
 
     def cityscale_order(self):
         """The CityPersons script's order where it is not float64's: ``(index, rank,

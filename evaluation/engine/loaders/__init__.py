@@ -235,11 +235,12 @@ def load_predictions(
         "unknown_classes": unknown_classes,
         "ids": ids,
         "schema": CACHE_SCHEMA,
+        # 7: a "cityscale_booleans" entry (the CityPersons script's boolean refusal);
         # 6: scores beyond float64's range are listed ("beyond_float64"), no refusal;
         # 5: a "booleans" entry (scores pycocotools joins as a boolean array);
         # 4: entries may carry the "overflow" refusal (scores beyond float64's range);
         # 3: entries carry pycocotools' exact order (2: the cityscale check was added)
-        "score_conflicts": 6,
+        "score_conflicts": 7,
     }
     if unknown_images != "reject":  # the default keeps the keys of existing entries
         key["unknown_images"] = unknown_images

@@ -27,7 +27,8 @@ decides, per protocol, at compare time (``data.Predictions.score_conflict``).
 
 import numpy as np
 
-from . import exact_scores, uncompared
+from ..pedestrian_setups import category_one
+from . import cityscale_booleans, exact_scores, uncompared
 
 #: The key of these entries in ``Predictions.score_conflicts``.
 KEY = "booleans"
@@ -53,10 +54,12 @@ class Tops:
         self._dense = np.full(size, np.nan, np.float32) if size <= DENSE_GROUPS else None
         self._groups, self._tops = [], []
         self._held = self._kept = 0
+        self.zero_one = np.zeros(self._n, bool)  # per class: some score is 0 or 1
 
     def add(self, image, cls, score):
         group = np.asarray(image, np.int64) * self._n + np.asarray(cls, np.int64)
         score = np.asarray(score, np.float64)
+        self.zero_one[np.asarray(cls)[(score == 0.0) | (score == 1.0)]] = True
         top = np.where(np.isnan(score), -np.inf, score)
         if self._dense is not None:
             with np.errstate(over="ignore"):  # a huge score is infinite in float32
@@ -92,6 +95,25 @@ class Tops:
         ok[truth.box_class[lacking]] = False
         return np.flatnonzero(ok)
 
+    def cityscale_candidates(self):
+        """The classes of category id 1 where the CityPersons script could join booleans
+        alone (``cityscale_booleans``): some detection scores 0 or 1, and every image
+        with a box of the class has a detection of it."""
+        ok = category_one(self._truth) & self.zero_one
+        if not ok.any():
+            return np.zeros(0, np.int64)
+        held = self._groups_held()
+        truth = self._truth
+        truth_groups = truth.box_image.astype(np.int64) * self._n + truth.box_class
+        ok[truth.box_class[~np.isin(truth_groups, held)]] = False
+        return np.flatnonzero(ok)
+
+    def _groups_held(self):
+        if self._dense is not None:
+            return np.flatnonzero(~np.isnan(self._dense))
+        group = np.concatenate(self._groups) if self._groups else np.zeros(0, np.int64)
+        return np.unique(group)
+
 
 def _reduced(group, top):
     if not len(group):
@@ -104,20 +126,32 @@ def _reduced(group, top):
 
 def joined(conflicts, path, truth, tops, wide):
     """``conflicts`` (``exact_scores.check``) with the ``entries`` of the file under
-    ``KEY`` where there are any (the file read again only for ``tops``' candidates)."""
-    found = entries(path, truth, tops.candidates(), wide)
-    return {**conflicts, KEY: found} if found else conflicts
+    ``KEY`` where there are any, and the CityPersons script's refusal under
+    ``cityscale_booleans.KEY`` where it raises (the file read again, once, only for
+    ``tops``' candidates)."""
+    classes, city = tops.candidates(), tops.cityscale_candidates()
+    if not (len(classes) or len(city)) or not _holds_literal(path):
+        return conflicts
+    rows, big = exact_scores._affected(path, truth, np.union1d(classes, city), wide)
+    found = entries(path, truth, classes, wide, rows)
+    out = {**conflicts, KEY: found} if found else conflicts
+    refused = cityscale_booleans.refusal(path, truth, rows, big, city)
+    return {**out, cityscale_booleans.KEY: refused} if refused else out
 
 
-def entries(path, truth, classes, wide):
+def entries(path, truth, classes, wide, rows=None):
     """``[{"class", "depth", "path", "record", "field", "message"}]`` for the
     ``classes`` (``Tops.candidates``) where pycocotools raises under some cap: ``depth``
     the largest cap it raises under (None: any). The record named is the first in file
     order of the class's top detections per image (all booleans; what pycocotools joins
-    under every cap)."""
-    if not len(classes) or not _holds_literal(path):
+    under every cap). ``rows``: ``exact_scores._affected`` of (at least) ``classes``,
+    else the file is read for them."""
+    if not len(classes):
         return []
-    rows, _ = exact_scores._affected(path, truth, classes, wide)
+    if rows is None:
+        if not _holds_literal(path):
+            return []
+        rows, _ = exact_scores._affected(path, truth, classes, wide)
     n = len(truth.classes)
     group = rows["image"].astype(np.int64) * n + rows["cls"]
     rank = uncompared.ranks(group, rows["score"])
