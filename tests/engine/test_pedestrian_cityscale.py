@@ -12,7 +12,6 @@ mapping of its own fields into the script's inputs (``script_input``). Plus a wo
 example computed by hand.
 """
 
-import json
 import math
 
 import numpy as np
@@ -24,15 +23,11 @@ from evaluation.engine import load_predictions, load_truth
 from evaluation.engine.pedestrian import evaluate_setups
 from evaluation.engine.pedestrian_setups import CITYSCALE_SETUPS
 
-from . import pedestrian_oracle
-
-SETUPS = ("reasonable", "small", "heavy", "all")
+from .cityscale_checks import setups_as_script, write_files
 
 
 def _load(root, dataset, results):
-    gt, dt = root / "gt.json", root / "dt.json"
-    gt.write_text(json.dumps(dataset))
-    dt.write_text(json.dumps(results))
+    gt, dt = write_files(root, dataset, results)
     truth = load_truth(gt)
     return truth, load_predictions(dt, truth)
 
@@ -65,21 +60,8 @@ def script_input(dataset):
 def _compare(tmp_path, dataset, results):
     """Per setup: the engine's setup value and miss rates against the script's
     ``summarize`` output (-1 = nothing evaluated = None here). Exact equality."""
-    truth, predictions = _load(tmp_path, dataset, results)
-    ours = evaluate_setups(truth, predictions, "miss-rate-cityscale")
-    script = script_input(dataset)
-    for setup in SETUPS:
-        mean_s, mrs = pedestrian_oracle.cityscale_coco(
-            script, results, pedestrian_oracle.SETUP_IDS[setup]
-        )
-        level = ours["levels"][setup]
-        if mrs is None:
-            assert level["miss_rate"] is None, setup
-            continue
-        assert level["miss_rate"] == mean_s, (setup, level["miss_rate"], mean_s)
-        row = level["classes"]["pedestrian"]
-        assert row["reference_miss_rate"] == mrs, setup
-    return ours
+    gt, dt = write_files(tmp_path, dataset, results)
+    return setups_as_script(load_truth(gt), dt, script_input(dataset), results)
 
 
 # --- a worked example ------------------------------------------------------------
