@@ -62,7 +62,7 @@ class Tops:
         self.zero_one[np.asarray(cls)[(score == 0.0) | (score == 1.0)]] = True
         top = np.where(np.isnan(score), -np.inf, score)
         if self._dense is not None:
-            with np.errstate(over="ignore"):  # a huge score is infinite in float32
+            with np.errstate(over="ignore", under="ignore"):  # huge: inf; subnormal: 0
                 np.fmax.at(self._dense, group, top.astype(np.float32))
             return
         group, top = _reduced(group, top)
