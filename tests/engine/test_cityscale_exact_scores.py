@@ -25,7 +25,8 @@ from evaluation.engine.level_samples import LevelSamples, setup_class
 from evaluation.engine.pedestrian import evaluate_setups, evaluate_setups_with_samples
 
 from . import pedestrian_oracle
-from .test_pedestrian_cityscale import SETUPS, _compare, _files, script_input
+from .cityscale_checks import SETUPS
+from .test_pedestrian_cityscale import _compare, _files, script_input
 
 B53 = 2**53
 #: Integers float64 ties or rounds (2**53 + 1, 2**60 + 1...), beyond int64 (uint64 and
