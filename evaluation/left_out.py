@@ -78,8 +78,9 @@ def annotation_lines(counts):
 
 def detection_lines(counts):
     """Lines for a result's ``counts``: detections of classes the split does not list
-    (``dropped_predictions``, ``dropped_classes``) and, for a re-scored file, of images
-    the split no longer holds."""
+    (``dropped_predictions``, ``dropped_classes``), images pycocotools' ``np.unique``
+    loses (``images_left_out``, from ``engine.provenance.lost_images``) and, for a
+    re-scored file, detections of images the split no longer holds."""
     counts = counts or {}
     lines = []
     dropped = int(counts.get("dropped_predictions") or 0)
@@ -89,6 +90,17 @@ def detection_lines(counts):
         lines.append(
             f"{_plural(dropped, 'detection', 'detections')} of classes the split does not "
             f"list {'was' if dropped == 1 else 'were'} left out{named}"
+        )
+    lost = counts.get("images_left_out") or {}
+    if int(lost.get("images") or 0):
+        n, boxes = int(lost["images"]), int(lost.get("truth_boxes") or 0)
+        lines.append(
+            f"{_plural(n, 'image', 'images')} left out with "
+            f"{_plural(boxes, 'ground-truth box', 'ground-truth boxes')} and "
+            f"{'its' if n == 1 else 'their'} detections, as in pycocotools (its np.unique "
+            f"of the image ids changes {'this id' if n == 1 else 'these ids'}: rounded to "
+            f"float64 or a trailing U+0000 cut): ids {_ids(lost.get('ids') or [])}"
+            + (" …" if n > len(lost.get("ids") or []) else "")
         )
     images = int(counts.get("dropped_unknown_images") or 0)
     if images:

@@ -114,6 +114,13 @@ class GroundTruth:
     cityscale_faults: dict = field(default_factory=dict)
     region_image: np.ndarray = None  # int32 index into image_ids
     regions: np.ndarray = None  # (m, 4) float64 xywh
+    #: Images (int64 indices, ascending) whose COCO JSON id pycocotools 2.0.11's
+    #: ``evaluate`` loses in ``np.unique`` (``loaders.ids.unique_lost``): under its rules
+    #: (``tie_order="image"``) their boxes and detections are left out and counted.
+    unique_lost_images: np.ndarray = None
+    #: Whether the ids' JSON types (``true``, ``1.0`` for an int) decided which images
+    #: are lost: the ids as shown would lose others, so the hash adds the lost images.
+    unique_lost_by_type: bool = False
 
     def __post_init__(self):
         for name in ATTRIBUTES:
@@ -129,6 +136,8 @@ class GroundTruth:
             object.__setattr__(self, "region_image", np.zeros(0, np.int32))
         if self.regions is None:
             object.__setattr__(self, "regions", np.zeros((0, 4)))
+        if self.unique_lost_images is None:
+            object.__setattr__(self, "unique_lost_images", np.zeros(0, np.int64))
 
     def cityscale_ignore(self):
         """Per box, ``(ignore box, matched by plain IoU although ignored)`` as the
@@ -297,6 +306,8 @@ class GroundTruth:
             cell.append(np.ascontiguousarray(self.image_width, "<f8").tobytes())
             cell.append(np.ascontiguousarray(self.image_height, "<f8").tobytes())
             cell.append(repr([sorted(t) for t in self.image_tags]).encode())
+            if self.unique_lost_by_type:  # else the ids as hashed decide them
+                cell.append(b"unique_lost" + self.unique_lost_images.astype("<i8").tobytes())
         digest = hashlib.sha256(mark)
         for part in cell:
             digest.update(part)
@@ -316,6 +327,7 @@ class GroundTruth:
         cut into N shard slices hashes its images once, not N times; same digest. Any
         other ``other`` is left to hash its own (returns False)."""
         names = ("class_ids", "classes", "image_ids", "image_width", "image_height", "image_tags")
+        names += ("unique_lost_images", "unique_lost_by_type")
         if any(getattr(other, name) is not getattr(self, name) for name in names):
             return False
         object.__setattr__(other, "_images_digest", self._images_cell())

@@ -114,8 +114,11 @@ def match(truth, predictions, protocol, *, reasons=True):
     exact = predictions.score_order(protocol)
     order, rank, key = orders(predictions, n_classes, protocol.tie_order, exact)
     cap = protocol.max_detections_limit
-    if cap is not None:
-        keep = rank < cap
+    lost = _lost_images(truth, protocol)
+    if cap is not None or lost is not None:
+        keep = np.ones(len(order), bool) if cap is None else rank < cap
+        if lost is not None:  # pycocotools never looks these images up
+            keep &= ~lost[predictions.image[order]]
         order, rank = order[keep], rank[keep]
         key = None if key is None else key[keep]
     det_image = predictions.image[order]
@@ -134,6 +137,8 @@ def match(truth, predictions, protocol, *, reasons=True):
     base_ignore = truth.crowd | truth.ignore
     if protocol.difficult_ignored:
         base_ignore = base_ignore | truth.difficult
+    if lost is not None:
+        base_ignore = base_ignore | lost[truth.box_image]
     gt_ignored = base_ignore[None, :] | _outside(truth.box_area, protocol.area_ranges)
     det_outside = _outside(det_area, protocol.area_ranges)
 
@@ -209,6 +214,18 @@ def match(truth, predictions, protocol, *, reasons=True):
         gt_void=_void_boxes(truth, protocol),
     )
     return _reasons.attach(records, truth, det_boxes, protocol) if reasons else records
+
+
+def _lost_images(truth, protocol):
+    """Per image, whether pycocotools' rules leave it out (``tie_order="image"``, its
+    family: ``GroundTruth.unique_lost_images``, ids its ``np.unique`` loses), or None
+    when none is: its boxes count as ignored and its detections are not scored, as its
+    ``evaluateImg`` finds neither for an image whose id numpy changed."""
+    if protocol.tie_order != "image" or not len(truth.unique_lost_images):
+        return None
+    lost = np.zeros(truth.n_images, bool)
+    lost[truth.unique_lost_images] = True
+    return lost
 
 
 def _void_boxes(truth, protocol):

@@ -162,9 +162,32 @@ def counts(truth, predictions, records):
     }
 
 
+#: How many ids ``lost_images`` names.
+SHOWN_LOST_IDS = 20
+LOST_REASON = (
+    "pycocotools 2.0.11 evaluate() runs np.unique on the image ids, which changes these "
+    "ids (numpy rounds them to float64 or cuts a trailing U+0000), then finds no ground "
+    "truth and no detections under them: their boxes and detections are left out"
+)
+
+
+def lost_images(truth, protocol):
+    """``counts["images_left_out"]`` under pycocotools' rules (``tie_order="image"``)
+    where its ``np.unique`` loses image ids (``GroundTruth.unique_lost_images``): how
+    many images, their ground-truth boxes, the first ids and why; else nothing."""
+    lost = truth.unique_lost_images
+    if get_protocol(protocol).tie_order != "image" or not len(lost):
+        return {}
+    shown = truth.image_ids[lost[:SHOWN_LOST_IDS]].tolist()
+    boxes = int(np.isin(truth.box_image, lost).sum())
+    entry = {"images": len(lost), "truth_boxes": boxes, "ids": shown, "reason": LOST_REASON}
+    return {"images_left_out": entry}
+
+
 def annotate(result, truth, predictions, records, protocol):
     """Finish a result: counts, the protocol record, engine version, truth fingerprint."""
     result["counts"] = counts(truth, predictions, records)
+    result["counts"].update(lost_images(truth, protocol))
     result["protocol_record"] = protocol_record(protocol, truth, predictions, records, result)
     result["engine_version"] = ENGINE_VERSION
     result["truth_fingerprint"] = truth.content_hash()

@@ -178,8 +178,8 @@ def roughen(rng, split, detections, scenario):
         if 2**63 <= big < 2**64:
             # pycocotools' evaluate() runs np.unique on its id lists, which numpy makes
             # float64 when every id lies in [-2^63, 2^64) (ids lose their low bits and
-            # images drop out: test_ids_that_pycocotools_rounds_to_floats). One id past
-            # 2^64 keeps them Python ints there, so the comparison is exact.
+            # images drop out, there and here: test_unique_lost_ids.py). One id past
+            # 2^64 keeps them Python ints there, so most images are scored.
             split["images"].append({"id": 2**64 + 1000})
             if shift_classes:
                 split["categories"].append({"id": 2**64 + 1000, "name": "anchor"})
@@ -437,11 +437,11 @@ def test_nan_and_infinite_values_are_scored_like_pycocotools(tmp_path):
 
 
 def test_ids_that_pycocotools_rounds_to_floats(tmp_path):
-    """A known deviation, pinned: pycocotools 2.0.11 ``COCOeval.evaluate`` sets
-    ``p.imgIds = list(np.unique(p.imgIds))``; numpy turns Python ints all within
-    [-2^63, 2^64), one of them >= 2^63, into float64, so an id such as 2^63 + 1 becomes
-    2^63 and no longer finds its boxes: the reference scores nothing (-1 everywhere).
-    The engine keeps every id exact and scores the image."""
+    """pycocotools 2.0.11 ``COCOeval.evaluate`` sets ``p.imgIds = list(np.unique(p.imgIds))``;
+    numpy turns Python ints all within [-2^63, 2^64), one of them >= 2^63 and one below,
+    into float64, so an id such as 2^63 + 1 becomes 2^63 and no longer finds its boxes:
+    the reference scores nothing (-1 everywhere). So does the engine, and it counts the
+    image left out (``counts.images_left_out``; ``test_unique_lost_ids.py``)."""
     big = 2**63 + 1
     split = _one_class_split([[10, 10, 20, 20]])
     split["images"][0]["id"] = split["annotations"][0]["image_id"] = big
@@ -457,7 +457,8 @@ def test_ids_that_pycocotools_rounds_to_floats(tmp_path):
     assert list(reference.stats) == [-1.0] * 12
     truth = load_truth(path)
     ours = evaluate(truth, load_predictions(tmp_path / "dt.json", truth), "coco")
-    assert ours["summary"]["AP"] == pytest.approx(1.0)
+    assert [as_reference(ours["summary"][k]) for k in COCO_SUMMARY_KEYS] == [-1.0] * 12
+    assert ours["counts"]["images_left_out"]["ids"] == [str(big)]
     assert truth.image_ids.tolist() == ["5", str(big)]
 
 

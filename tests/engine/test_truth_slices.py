@@ -23,7 +23,7 @@ from evaluation.engine.loaders import (
     json_literals,
     json_syntax,
 )
-from evaluation.engine.loaders.ids import escaped
+from evaluation.engine.loaders.ids import escaped, id_kinds
 
 from . import whole_file
 
@@ -81,6 +81,7 @@ def _whole(path, data, vis_ratio=False):
 
     return {
         "image_ids": np.array(whole["images", "id"], np.int64),
+        "image_id_kinds": id_kinds([im.id for im in d.images]),
         "image_width": opt(im.width for im in d.images),
         "image_height": opt(im.height for im in d.images),
         # shown with a lone surrogate as its escape (``ids.escaped``)

@@ -12,7 +12,9 @@ its stable sort — so ids of any size are accepted, ``true`` and ``3.0`` key th
 1 and 3, and the image order (ties across images) is numeric, or string order for
 text. The wide files keep one id below -2^63, so pycocotools' ``np.unique`` of the id
 list stays an object array (a list wholly within [-2^63, 2^64) with one id >= 2^63
-becomes float64 there: the known deviation in DEVELOPERS.md, not exercised here).
+becomes float64 there: those images drop out, in the engine too,
+``tests/engine/test_unique_lost_ids.py``); the ``nul`` files' ids ending in U+0000 drop
+out of both, counted and shown.
 
 Checked: every entry point accepts the files (split: page, API, ``load_split``;
 predictions: page, API, ``upload_predictions``, the worker past the inline size and
@@ -38,7 +40,7 @@ from django.core.management import call_command
 from django.urls import reverse
 from django.utils.html import escape
 
-from evaluation import engine, images
+from evaluation import engine, images, left_out
 from evaluation import services as evaluation_services
 from evaluation.models import BenchmarkSplit, Evaluation, ImageLeaveOneOut, Scorecard
 from releases import services, tokens
@@ -94,7 +96,7 @@ KINDS = {
     },
     # text ids ending in U+0000, which numpy text arrays cut: the engine shows that
     # family JSON-quoted. pycocotools' np.unique cuts them too and drops those images
-    # (the known deviation), so its reference run reads U+0001 there (same order).
+    # ("a\x00" is then "a", "b\x00\x00" no image): so does the engine, counted
     # lone UTF-16 surrogate escapes ("\ud800" alone in the file), which Python's json
     # reads into text (sorted by code point: U+D800..U+DFFF between U+D7FF and U+E000,
     # U+1F600 above them) and no UTF-8 text or PostgreSQL text holds: the engine shows
@@ -112,7 +114,7 @@ KINDS = {
         "categories": [],
         "annotations": [],
         "unlisted_class": 99,
-        "reference": lambda text: text.replace("\\u0000", "\\u0001"),
+        "left_out": 2,
     },
 }
 
@@ -351,6 +353,10 @@ def test_every_upload_entry_point_scores_as_pycocotools(scored, tmp_path):
         )
         unlisted = [_written(scored["ids"]["unlisted_class"])]
         assert card.result["counts"]["dropped_classes"] == unlisted
+        lost = scored["ids"].get("left_out", 0)
+        assert card.result["counts"].get("images_left_out", {}).get("images", 0) == lost
+        lines = left_out.of_result(card.result)
+        assert any("np.unique" in line for line in lines) == bool(lost)
         for level in ("miss-rate", "kitti2d"):
             found = _evaluation(scored[label], level)
             assert found.state == "done", (level, found.error)

@@ -39,7 +39,7 @@ COUNTS = (
     *unread_fields.COUNTS,
 )
 #: The columns of one image / one category in ``coco_truth._Records``.
-IMAGE_COLUMNS = ("image_ids", "image_width", "image_height", "image_tags")
+IMAGE_COLUMNS = ("image_ids", "image_width", "image_height", "image_tags", "image_id_kinds")
 CATEGORY_COLUMNS = ("class_ids", "class_names")
 
 #: Per-annotation columns of ``coco_truth._Records.annotations``.
@@ -120,8 +120,14 @@ def last_entries(cols):
     kept, counts = {}, {}
     for what, names in (("image", IMAGE_COLUMNS), ("category", CATEGORY_COLUMNS)):
         n = len(cols[names[0]])
-        rows = np.flatnonzero(_last_of_each_id(cols[names[0]]) == np.arange(n))
+        last = _last_of_each_id(cols[names[0]])
+        rows = np.flatnonzero(last == np.arange(n))
         counts[f"duplicate_{what}_entries"] = n - len(rows)
+        if len(rows) < n and what == "image" and cols["image_id_kinds"].any():
+            # the dict keeps the key as first written (``true``, then ``1``: ``true``)
+            first = np.full(n, n, np.int64)
+            np.minimum.at(first, last, np.arange(n))
+            cols["image_id_kinds"] = cols["image_id_kinds"][first[last]]
         if len(rows) < n:
             for name in names:
                 values = cols[name]

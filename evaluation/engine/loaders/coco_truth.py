@@ -26,7 +26,7 @@ from .coco_records import (
     validation_error,
     whole_ids,
 )
-from .ids import escaped
+from .ids import escaped, id_kinds
 
 #: A ground-truth file larger than this gets a syntax-only pass before the one that
 #: builds columns (about 1 s more per 100 MB), so a syntax error late in it is found at
@@ -232,8 +232,10 @@ class _Records:
             return np.zeros(len(values), np.int64)
 
     def images(self, images, key, base):
+        raw = [im.id for im in images]
         return {
-            "image_ids": self.ids([im.id for im in images], key, "id", base),
+            "image_ids": self.ids(raw, key, "id", base),
+            "image_id_kinds": id_kinds(raw),  # numpy tells true/1.0 from 1: unique_lost
             "image_width": np.array([_size(im.width) for im in images], np.float64),
             "image_height": np.array([_size(im.height) for im in images], np.float64),
             "image_tags": [tuple(escaped(t) for t in im.tags) for im in images],

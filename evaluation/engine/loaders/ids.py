@@ -27,6 +27,11 @@ text can hold — a lone UTF-16 surrogate, which Python's ``json`` reads from an
 such as ``"\\ud800"`` — shown JSON-quoted, each surrogate as its escape: ``"a\\ud800"``).
 The typed keys hold the very ``str`` Python's ``json`` gives, so ids compare and sort as
 in pycocotools; only what is shown or written is escaped (``escaped``, ``quoted``).
+
+Image ids pycocotools' ``evaluate`` loses (``unique_lost``): it runs
+``p.imgIds = list(np.unique(p.imgIds))`` and looks each image up by those numpy values,
+so an id numpy does not hold as written (rounded to float64, a trailing U+0000 cut)
+names no image there: its ground truth and detections are never scored.
 """
 
 import json
@@ -41,6 +46,68 @@ NUMBER, TEXT, NULL = "\x1d", "\x1e", "\x1f"  # the type marks of typed keys
 #: A COCO JSON id field as decoded: any JSON number, boolean, text or null (a null
 #: reference names nothing, as in pycocotools' dicts).
 JSON_ID = int | float | bool | str | None
+
+
+#: How a COCO JSON id was written where ``coco_records.whole_ids`` keyed it as an int
+#: (``id_kinds``): numpy's type discovery, unlike a dict, tells them apart.
+AS_KEYED, BOOLEAN, WHOLE_FLOAT = 0, 1, 2
+
+
+def id_kinds(values):
+    """Per id as decoded from JSON: ``BOOLEAN`` (``true``/``false``), ``WHOLE_FLOAT``
+    (``1.0``) or ``AS_KEYED`` (anything pycocotools' dicts key as it is)."""
+    if set(map(type, values)) <= {int}:
+        return np.zeros(len(values), np.uint8)
+    kinds = [
+        BOOLEAN if type(v) is bool else WHOLE_FLOAT if type(v) is float and v.is_integer() else 0
+        for v in values
+    ]
+    return np.array(kinds, np.uint8)
+
+
+def as_written(ids, id_type, kinds):
+    """The Python values of a family's ids (``GroundTruth`` ids of ``id_type``) as the
+    JSON decoder gave them: ``kinds`` (``id_kinds``) turns the keyed int back into the
+    boolean or whole float the file wrote."""
+    if ids.dtype.kind == "i" and not id_type:
+        values = ids.tolist()
+    else:
+        values = [key_value(k) for k in keys_of(ids, id_type).tolist()]
+    if kinds is not None and kinds.any():
+        back = {BOOLEAN: bool, WHOLE_FLOAT: float}
+        values = [back[k](v) if k else v for v, k in zip(values, kinds.tolist())]
+    return values
+
+
+def unique_lost(values):
+    """Positions (ascending) of the ids in ``values`` — a family's distinct ids as the
+    JSON decoder gave them (``as_written``) — that pycocotools' ``evaluate`` loses.
+
+    pycocotools 2.0.11 ``COCOeval.evaluate`` sets ``p.imgIds = list(np.unique(p.imgIds))``
+    and ``_prepare``/``evaluate`` then look images up by those numpy values in dicts
+    keyed by the ids as written (``imgToAnns``, ``_gts[imgId, catId]``,
+    ``_dts[imgId, catId]``). numpy discovers one dtype for the whole list (numpy's
+    "array creation" type discovery: Python ints in int64, else uint64, else object;
+    int64 with uint64 or with float gives float64; text gives a ``<U`` array, which
+    drops trailing U+0000), so an id it rounds or cuts equals no key: that image is
+    evaluated with no ground truth and no detections (``evaluateImg`` returns None),
+    and where the changed value equals another id the two are one entry. This runs
+    numpy's own ``np.unique`` on the same values and makes the same lookups, so it
+    follows whatever the installed numpy does.
+    """
+    if not len(values):
+        return np.zeros(0, np.int64)
+    if all(type(v) is int for v in values) and -(2**63) <= min(values) and max(values) < 2**63:
+        return np.zeros(0, np.int64)  # int64: exact
+    position = {}
+    for n, value in enumerate(values):
+        position.setdefault(value, n)
+    found = np.zeros(len(values), bool)
+    for value in list(np.unique(values)):  # pycocotools' own line, then its lookups
+        n = position.get(value)
+        if n is not None:
+            found[n] = True
+    return np.flatnonzero(~found)
 
 
 def csv_ids(values):

@@ -185,6 +185,14 @@ def read_truth(
         checks.require_sizes(image_path, values, image_locate, policy, field)
     image_order = _order(cols["image_ids"], image_type)
     image_ids = cols["image_ids"][image_order]
+    shown = _shown(image_ids, image_type)
+    lost, by_type = None, False  # images pycocotools' np.unique loses: COCO JSON only
+    if fmt == "json" and (image_type or cols["image_id_kinds"].any()):  # int64: exact
+        kinds = cols["image_id_kinds"][image_order]
+        lost = ids_module.unique_lost(ids_module.as_written(shown, image_type, kinds))
+        if kinds.any():
+            plain = ids_module.unique_lost(ids_module.as_written(shown, image_type, None))
+            by_type = not np.array_equal(plain, lost)
     class_order = _order(cols["class_ids"], class_type)
     class_ids = cols["class_ids"][class_order]
     annotation_counts = {**dict.fromkeys(annotation_index.COUNTS, 0), **entry_counts}
@@ -265,7 +273,7 @@ def read_truth(
     return GroundTruth(
         classes=tuple(names),
         class_ids=_shown(class_ids, class_type),
-        image_ids=_shown(image_ids, image_type),
+        image_ids=shown,
         image_width=cols["image_width"][image_order],
         image_height=cols["image_height"][image_order],
         image_tags=tuple(tuple(t) for t in tags),
@@ -286,6 +294,8 @@ def read_truth(
         cityscale_faults=_cityscale_faults(city_rows, rows),
         image_id_type=image_type,
         class_id_type=class_type,
+        unique_lost_images=lost,
+        unique_lost_by_type=by_type,
         box_policy=policy,
         box_counts={
             **checks.truth_box_counts(boxes, *frame, box_image),

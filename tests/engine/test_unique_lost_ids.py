@@ -1,0 +1,279 @@
+"""Images whose id pycocotools' ``np.unique`` changes are left out, as it leaves them out.
+
+pycocotools 2.0.11 ``COCOeval.evaluate`` runs ``p.imgIds = list(np.unique(p.imgIds))``
+and then looks every image up by those numpy values in dicts keyed by the ids as the
+JSON file gives them (``imgToAnns``, ``_gts``, ``_dts``). An id numpy does not hold as
+written — rounded in a float64 array (ints in [2^63, 2^64) beside a smaller int, or
+beside a fraction ints beyond 2^53), or cut in a text array (a trailing U+0000) — finds
+no ground truth and no detections: that image scores nothing. Every check here runs
+pycocotools 2.0.11 itself (``conftest.pycocotools_eval``) on the very file.
+"""
+
+import dataclasses
+import json
+
+import numpy as np
+import pytest
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
+
+from evaluation.engine import (
+    COCO_SUMMARY_KEYS,
+    annotate,
+    evaluate,
+    load_predictions,
+    load_truth,
+    match,
+    score_records,
+)
+from evaluation.engine.loaders import json_syntax
+from evaluation.engine.loaders.ids import unique_lost
+
+from .conftest import as_reference, pycocotools_eval
+from .synthetic import make_detections, make_split
+from .test_class_groups import N_CLASSES, _grouped, _same_records
+
+BOX = [10, 10, 20, 20]
+
+
+def _split(image_ids):
+    """One box per image, one class; detections: a hit on every image, a miss on the
+    first two (so leaving an image out moves the numbers)."""
+    split = {
+        "images": [{"id": i, "width": 200, "height": 200} for i in image_ids],
+        "categories": [{"id": 1, "name": "car"}],
+        "annotations": [
+            {"id": n + 1, "image_id": i, "category_id": 1, "bbox": BOX, "area": 400, "iscrowd": 0}
+            for n, i in enumerate(image_ids)
+        ],
+    }
+    detections = [
+        {"image_id": i, "category_id": 1, "bbox": BOX, "score": 0.5 + 0.01 * (n % 7)}
+        for n, i in enumerate(image_ids)
+    ] + [
+        {"image_id": i, "category_id": 1, "bbox": [100, 100, 20, 20], "score": 0.9}
+        for i in image_ids[:2]
+    ]
+    return split, detections
+
+
+def _run(tmp_path, split, detections, protocol="coco"):
+    (tmp_path / "gt.json").write_text(json.dumps(split))
+    (tmp_path / "dt.json").write_text(json.dumps(detections))
+    truth = load_truth(tmp_path / "gt.json")
+    return truth, evaluate(truth, load_predictions(tmp_path / "dt.json", truth), protocol)
+
+
+def _compare(tmp_path, split, detections):
+    """Our ``coco`` numbers on the file equal pycocotools 2.0.11's (12 numbers, and AP,
+    AP50, recall of the class)."""
+    truth, ours = _run(tmp_path, split, detections)
+    reference = pycocotools_eval(tmp_path / "gt.json", tmp_path / "dt.json")
+    for key, expected in zip(COCO_SUMMARY_KEYS, reference.stats):
+        assert as_reference(ours["summary"][key]) == pytest.approx(expected, abs=1e-12), key
+    precision = reference.eval["precision"][:, :, 0, 0, 2]
+    row = ours["per_class"]["car"]
+    if np.all(precision == -1):
+        assert row["AP"] is None
+    else:
+        assert row["AP"] == pytest.approx(np.mean(precision), abs=1e-12)
+        assert row["AP50"] == pytest.approx(np.mean(precision[0]), abs=1e-12)
+        recall = reference.eval["recall"][:, 0, 0, 2]
+        assert row["recall"] == pytest.approx(np.mean(recall), abs=1e-12)
+    return truth, ours, reference
+
+
+def _lost_ids(ids, reference):
+    """The ids whose image pycocotools 2.0.11 evaluated with nothing: no ``evalImgs``
+    entry of it holds its one box (each image of ``_split`` has one)."""
+    seen = {e["image_id"] for e in reference.evalImgs if e is not None}  # numpy values
+    return [i for i in ids if i not in seen]  # the lookup pycocotools makes
+
+
+@pytest.mark.parametrize(
+    "ids, lost",
+    [
+        ([2**63 + 1, 5], [2**63 + 1]),  # int64 + uint64: float64, 2^63 + 1 -> 2^63
+        ([2**63, 5], []),  # 2.0**63 == 2**63: found, the image is scored
+        ([2**63, 2**63 + 1, -1], [2**63 + 1]),  # both -> 2^63: one entry, 2^63's
+        ([2**63 + 1, 2**63 + 3], []),  # all uint64: exact
+        ([2**63 + 1, True], []),  # bool + uint64: uint64, exact
+        ([2**63 + 1, 1], [2**63 + 1]),  # the same value as an int: float64
+        ([2**53 + 1, 0.5], [2**53 + 1]),  # a fraction: float64
+        ([2**53 + 1, 2.0], [2**53 + 1]),  # a whole float too
+        ([2**64 + 1, 2**63 + 1, -1], []),  # beyond uint64: an object array, exact
+        ([float("inf"), 2**63 + 1], [2**63 + 1]),
+        (["a\x00", "b"], ["a\x00"]),  # '<U' arrays cut trailing U+0000
+        (["a\x00", "a"], ["a\x00"]),  # ... "a" is scored once
+        (["\x00", ""], ["\x00"]),
+        (["a\x00b", "a"], []),  # inside: kept
+    ],
+)
+def test_worked_cases_equal_pycocotools(tmp_path, ids, lost):
+    """Each case: the ids pycocotools loses (its own ``np.unique`` and lookups), the
+    engine's rule (``loaders.ids.unique_lost``), and the numbers, all equal; the lost
+    images are counted in ``counts.images_left_out`` with the reason."""
+    split, detections = _split(ids)
+    truth, ours, reference = _compare(tmp_path, split, detections)
+    assert _lost_ids(ids, reference) == lost  # pycocotools' own outcome
+    assert [ids[i] for i in unique_lost(ids)] == lost
+    left_out = ours["counts"].get("images_left_out")
+    if not lost:
+        assert left_out is None
+        return
+    assert left_out["images"] == len(lost) and left_out["truth_boxes"] == len(lost)
+    assert "np.unique" in left_out["reason"]
+    assert len(truth.unique_lost_images) == len(lost)
+
+
+def test_a_lost_image_moves_the_numbers_as_pycocotools_does(tmp_path):
+    """The lost image holds the only hit: pycocotools scores AP 0 there (its misses on
+    the other image stay); without the rule the image would score."""
+    ids = [2**63 + 1, 7]
+    split, detections = _split(ids)
+    split["annotations"] = split["annotations"][:1]  # the lost image holds the box
+    detections = [d for d in detections if d["image_id"] == 2**63 + 1][:1] + [
+        {"image_id": 7, "category_id": 1, "bbox": [100, 100, 20, 20], "score": 0.9}
+    ]
+    _, ours, reference = _compare(tmp_path, split, detections)
+    assert reference.stats[0] == -1.0  # no ground truth left: absent
+    assert ours["summary"]["AP"] is None
+
+
+def test_other_protocols_score_every_image(tmp_path):
+    """The VOC protocols follow the devkit, which keeps every id: nothing left out;
+    ``recall40`` follows pycocotools' rules and leaves the image out."""
+    split, detections = _split([2**63 + 1, 5])
+    detections = detections[:-1]  # a miss on the lost image only
+    _, voc = _run(tmp_path, split, detections, "voc")
+    assert "images_left_out" not in voc["counts"]
+    _, recall40 = _run(tmp_path, split, detections, "recall40")
+    assert recall40["counts"]["images_left_out"]["images"] == 1
+    split_without, dets_without = _split([5])
+    dets_without = dets_without[:1]
+    _, expected = _run(tmp_path, split_without, dets_without, "recall40")
+    assert recall40["summary"] == expected["summary"]
+    _, voc_without = _run(tmp_path, split_without, dets_without, "voc")
+    assert voc["summary"] != voc_without["summary"]
+
+
+def test_listed_twice_the_first_written_type_decides(tmp_path):
+    """``imgs[img['id']] = img`` keeps the key as first written: ``true`` then ``1``
+    keeps ``true`` (bool + uint64: uint64, exact); ``1`` then ``true`` keeps ``1``
+    (float64: 2^63 + 1 is lost)."""
+    hashes = []
+    for first, second, lost in ((True, 1, []), (1, True, [2**63 + 1])):
+        split, detections = _split([2**63 + 1, first])
+        split["images"].append({"id": second, "width": 200, "height": 200})
+        truth, ours, _ = _compare(tmp_path, split, detections)
+        assert len(truth.unique_lost_images) == len(lost)
+        hashes.append(truth.content_hash())
+    # the ids shown alike (1), scored otherwise: the lost images enter the hash
+    assert hashes[0] != hashes[1]
+
+
+def test_the_hash_adds_lost_images_only_where_the_ids_types_decide_them(tmp_path):
+    """Where the ids as hashed (their text) decide the lost images, the hash is the one
+    splits had before (no split frozen earlier changes); ``true`` for 1 beside
+    2^63 + 1 (uint64, nothing lost, where 1 loses 2^63 + 1) hashes apart."""
+    for ids, by_type in (
+        ([2**63 + 1, 5], False),
+        (["a\x00", "b"], False),
+        ([2**63 + 1, True], True),
+    ):
+        split, detections = _split(ids)
+        truth, _ = _run(tmp_path, split, detections)
+        assert truth.unique_lost_by_type is by_type
+        before = dataclasses.replace(truth, unique_lost_images=None, unique_lost_by_type=False)
+        assert (truth.content_hash() != before.content_hash()) is by_type
+
+
+KINDS = st.one_of(
+    st.integers(-5, 5),
+    st.integers(2**53 - 2, 2**53 + 3),
+    st.integers(2**63 - 2, 2**63 + 3),
+    st.integers(2**64 - 1, 2**64 + 2),
+    st.integers(-(2**63) - 1, -(2**63) + 1),
+    st.booleans(),
+    st.sampled_from([0.5, 2.0, 2.0**53, 2.0**63, float("inf"), -float("inf"), -1.5]),
+)
+TEXT = st.text(st.sampled_from(["a", "b", "\x00", "é"]), max_size=3)
+
+
+def _distinct(values):
+    """Ids distinct as dict keys (``1 == 1.0 == True``): the first of each."""
+    out = {}
+    for v in values:
+        out.setdefault(v, v)
+    return list(out.values())
+
+
+@settings(
+    max_examples=40, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture]
+)
+@given(data=st.data(), text=st.booleans())
+def test_random_id_lists_equal_pycocotools(tmp_path, data, text):
+    """Lists of ids of mixed kinds (small and huge ints around 2^53, 2^63, 2^64, bools,
+    whole, fractional and infinite floats; or text with U+0000): the engine's lost
+    images equal pycocotools' own, and so do the numbers."""
+    ids = _distinct(data.draw(st.lists(TEXT if text else KINDS, min_size=1, max_size=6)))
+    split, detections = _split(ids)
+    _, ours, reference = _compare(tmp_path, split, detections)
+    lost = _lost_ids(ids, reference)
+    assert [ids[i] for i in unique_lost(ids)] == lost
+    assert ours["counts"].get("images_left_out", {}).get("images", 0) == len(lost)
+
+
+def _lost_split(seed=4):
+    """A split of 6 classes whose image ids pycocotools partly loses: every third image
+    id moved to 2^63 + 1 + 2k (float64 beside the small ones: all lost) and one whole
+    float, and its detections (ties and more than the cap included)."""
+    rng = np.random.default_rng(seed)
+    split = make_split(rng, n_images=24, n_classes=N_CLASSES, boxes_per_image=4)
+    dets = make_detections(rng, split, score_levels=6)
+    moved = {}
+    for n, image in enumerate(split["images"]):
+        if n % 3 == 0:
+            moved[image["id"]] = 2**63 + 1 + 2 * n
+        elif n == 1:
+            moved[image["id"]] = float(image["id"])  # written 5.0: float64 either way
+    for image in split["images"]:
+        image["id"] = moved.get(image["id"], image["id"])
+    for item in (*split["annotations"], *dets):
+        item["image_id"] = moved.get(item["image_id"], item["image_id"])
+    return split, dets
+
+
+@pytest.mark.parametrize("protocol", ["coco", "recall40"])
+def test_every_path_gives_the_whole_files_numbers(files, protocol, tmp_path, monkeypatch):
+    """Read a few bytes at a time, from the cache, in image shards and class groups
+    (the platform's path): the same lost images, records, scorecard and counts as the
+    whole file, which equals pycocotools 2.0.11 under ``coco``."""
+    split, dets = _lost_split()
+    truth, predictions = files.load(split, dets)
+    assert len(truth.unique_lost_images) == 8
+    if protocol == "coco":
+        gt, dt = files.write("gt-ref.json", split), files.write("dt-ref.json", dets)
+        reference = pycocotools_eval(gt, dt)
+        ours = evaluate(truth, predictions, "coco")
+        for key, expected in zip(COCO_SUMMARY_KEYS, reference.stats):
+            assert as_reference(ours["summary"][key]) == pytest.approx(expected, abs=1e-12)
+    whole = match(truth, predictions, protocol)
+    tag_masks = {tag: truth.tag_mask(tag) for tag in truth.tags()}
+    expected = annotate(
+        score_records(whole, protocol, tag_masks=tag_masks), truth, predictions, whole, protocol
+    )
+    assert expected["counts"]["images_left_out"]["images"] == 8
+    result, _, merged = _grouped(truth, predictions, protocol, 5, 3, tmp_path)
+    _same_records(whole, merged)
+    assert json.dumps(result) == json.dumps(expected)
+
+    gt = files.write("gt-again.json", split)
+    monkeypatch.setattr(json_syntax, "CHUNK_BYTES", 256)
+    for cache in (None, tmp_path / "cache", tmp_path / "cache"):  # build, then read
+        again = load_truth(gt, cache_dir=cache)
+        assert again.unique_lost_images.tolist() == truth.unique_lost_images.tolist()
+        assert again.content_hash() == truth.content_hash()
+        assert json.dumps(evaluate(again, predictions, protocol)) == json.dumps(
+            evaluate(truth, predictions, protocol)
+        )
