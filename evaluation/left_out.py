@@ -91,17 +91,22 @@ def detection_lines(counts):
             f"{_plural(dropped, 'detection', 'detections')} of classes the split does not "
             f"list {'was' if dropped == 1 else 'were'} left out{named}"
         )
-    lost = counts.get("images_left_out") or {}
-    if int(lost.get("images") or 0):
-        n, boxes = int(lost["images"]), int(lost.get("truth_boxes") or 0)
-        lines.append(
-            f"{_plural(n, 'image', 'images')} left out with "
-            f"{_plural(boxes, 'ground-truth box', 'ground-truth boxes')} and "
-            f"{'its' if n == 1 else 'their'} detections, as in pycocotools (its np.unique "
-            f"of the image ids changes {'this id' if n == 1 else 'these ids'}: rounded to "
-            f"float64 or a trailing U+0000 cut): ids {_ids(lost.get('ids') or [])}"
-            + (" …" if n > len(lost.get("ids") or []) else "")
-        )
+    for what, one, many, family in (
+        ("images", "image", "images", "image"),
+        ("classes", "class", "classes", "category"),
+    ):
+        lost = counts.get(f"{what}_left_out") or {}
+        n, ids = int(lost.get(what) or 0), lost.get("ids") or []
+        if n:
+            boxes = int(lost.get("truth_boxes") or 0)
+            lines.append(
+                f"{_plural(n, one, many)} left out with "
+                f"{_plural(boxes, 'ground-truth box', 'ground-truth boxes')} and "
+                f"{'its' if n == 1 else 'their'} detections, as in pycocotools (its np.unique "
+                f"of the {family} ids changes {'this id' if n == 1 else 'these ids'}: "
+                f"rounded to float64 or a trailing U+0000 cut): ids {_ids(ids)}"
+                + (" …" if n > len(ids) else "")
+            )
     images = int(counts.get("dropped_unknown_images") or 0)
     if images:
         lines.append(

@@ -118,8 +118,11 @@ class GroundTruth:
     #: ``evaluate`` loses in ``np.unique`` (``loaders.ids.unique_lost``): under its rules
     #: (``tie_order="image"``) their boxes and detections are left out and counted.
     unique_lost_images: np.ndarray = None
-    #: Whether the ids' JSON types (``true``, ``1.0`` for an int) decided which images
-    #: are lost: the ids as shown would lose others, so the hash adds the lost images.
+    #: Classes (int64 indices) whose category id that ``np.unique`` loses, alike
+    #: (``evaluate`` runs it on ``p.catIds`` too).
+    unique_lost_classes: np.ndarray = None
+    #: Whether the ids' JSON types (``true``, ``1.0`` for an int) decided what is lost:
+    #: the ids as shown would lose others, so the hash adds the lost images and classes.
     unique_lost_by_type: bool = False
 
     def __post_init__(self):
@@ -136,8 +139,9 @@ class GroundTruth:
             object.__setattr__(self, "region_image", np.zeros(0, np.int32))
         if self.regions is None:
             object.__setattr__(self, "regions", np.zeros((0, 4)))
-        if self.unique_lost_images is None:
-            object.__setattr__(self, "unique_lost_images", np.zeros(0, np.int64))
+        for name in ("unique_lost_images", "unique_lost_classes"):
+            if getattr(self, name) is None:
+                object.__setattr__(self, name, np.zeros(0, np.int64))
 
     def cityscale_ignore(self):
         """Per box, ``(ignore box, matched by plain IoU although ignored)`` as the
@@ -307,7 +311,8 @@ class GroundTruth:
             cell.append(np.ascontiguousarray(self.image_height, "<f8").tobytes())
             cell.append(repr([sorted(t) for t in self.image_tags]).encode())
             if self.unique_lost_by_type:  # else the ids as hashed decide them
-                cell.append(b"unique_lost" + self.unique_lost_images.astype("<i8").tobytes())
+                lost = (self.unique_lost_images, [-1], self.unique_lost_classes)
+                cell.append(b"unique_lost" + np.concatenate(lost).astype("<i8").tobytes())
         digest = hashlib.sha256(mark)
         for part in cell:
             digest.update(part)
@@ -327,7 +332,7 @@ class GroundTruth:
         cut into N shard slices hashes its images once, not N times; same digest. Any
         other ``other`` is left to hash its own (returns False)."""
         names = ("class_ids", "classes", "image_ids", "image_width", "image_height", "image_tags")
-        names += ("unique_lost_images", "unique_lost_by_type")
+        names += ("unique_lost_images", "unique_lost_classes", "unique_lost_by_type")
         if any(getattr(other, name) is not getattr(self, name) for name in names):
             return False
         object.__setattr__(other, "_images_digest", self._images_cell())

@@ -114,11 +114,11 @@ def match(truth, predictions, protocol, *, reasons=True):
     exact = predictions.score_order(protocol)
     order, rank, key = orders(predictions, n_classes, protocol.tie_order, exact)
     cap = protocol.max_detections_limit
-    lost = _lost_images(truth, protocol)
+    lost = _lost(truth, protocol)
     if cap is not None or lost is not None:
         keep = np.ones(len(order), bool) if cap is None else rank < cap
-        if lost is not None:  # pycocotools never looks these images up
-            keep &= ~lost[predictions.image[order]]
+        if lost is not None:  # pycocotools never looks these images and classes up
+            keep &= ~(lost[0][predictions.image[order]] | lost[1][predictions.cls[order]])
         order, rank = order[keep], rank[keep]
         key = None if key is None else key[keep]
     det_image = predictions.image[order]
@@ -138,7 +138,7 @@ def match(truth, predictions, protocol, *, reasons=True):
     if protocol.difficult_ignored:
         base_ignore = base_ignore | truth.difficult
     if lost is not None:
-        base_ignore = base_ignore | lost[truth.box_image]
+        base_ignore = base_ignore | lost[0][truth.box_image] | lost[1][truth.box_class]
     gt_ignored = base_ignore[None, :] | _outside(truth.box_area, protocol.area_ranges)
     det_outside = _outside(det_area, protocol.area_ranges)
 
@@ -216,15 +216,18 @@ def match(truth, predictions, protocol, *, reasons=True):
     return _reasons.attach(records, truth, det_boxes, protocol) if reasons else records
 
 
-def _lost_images(truth, protocol):
-    """Per image, whether pycocotools' rules leave it out (``tie_order="image"``, its
-    family: ``GroundTruth.unique_lost_images``, ids its ``np.unique`` loses), or None
-    when none is: its boxes count as ignored and its detections are not scored, as its
-    ``evaluateImg`` finds neither for an image whose id numpy changed."""
-    if protocol.tie_order != "image" or not len(truth.unique_lost_images):
+def _lost(truth, protocol):
+    """``(per image, per class)``: whether pycocotools' rules leave it out
+    (``tie_order="image"``, its family: ``GroundTruth.unique_lost_images`` and
+    ``unique_lost_classes``, ids its ``np.unique`` loses), or None when nothing is:
+    their boxes count as ignored and their detections are not scored, as its
+    ``evaluateImg`` finds neither under an id numpy changed."""
+    images, classes = truth.unique_lost_images, truth.unique_lost_classes
+    if protocol.tie_order != "image" or not (len(images) or len(classes)):
         return None
-    lost = np.zeros(truth.n_images, bool)
-    lost[truth.unique_lost_images] = True
+    lost = np.zeros(truth.n_images, bool), np.zeros(len(truth.classes), bool)
+    lost[0][images] = True
+    lost[1][classes] = True
     return lost
 
 

@@ -56,8 +56,11 @@ def protocol_record(protocol, truth, predictions, records, result):
     n_pos = records.n_positives(0)
     absent = {}
     flags = "crowd, difficult or ignore" if protocol.difficult_ignored else "crowd or ignore"
+    lost = set(truth.unique_lost_classes.tolist()) if protocol.tie_order == "image" else ()
     for k, name in enumerate(truth.classes):
-        if n_pos[k] == 0:
+        if k in lost:
+            absent[name] = "its id is one pycocotools' np.unique changes: left out, as there"
+        elif n_pos[k] == 0:
             absent[name] = (
                 "no ground-truth box"
                 if n_boxes[k] == 0
@@ -162,32 +165,41 @@ def counts(truth, predictions, records):
     }
 
 
-#: How many ids ``lost_images`` names.
+#: How many ids ``lost_ids`` names.
 SHOWN_LOST_IDS = 20
 LOST_REASON = (
-    "pycocotools 2.0.11 evaluate() runs np.unique on the image ids, which changes these "
-    "ids (numpy rounds them to float64 or cuts a trailing U+0000), then finds no ground "
-    "truth and no detections under them: their boxes and detections are left out"
+    "pycocotools 2.0.11 evaluate() runs np.unique on the {} ids, which changes these ids "
+    "(numpy rounds them to float64 or cuts a trailing U+0000), then finds no ground truth "
+    "and no detections under them: their boxes and detections are left out"
 )
 
 
-def lost_images(truth, protocol):
-    """``counts["images_left_out"]`` under pycocotools' rules (``tie_order="image"``)
-    where its ``np.unique`` loses image ids (``GroundTruth.unique_lost_images``): how
-    many images, their ground-truth boxes, the first ids and why; else nothing."""
-    lost = truth.unique_lost_images
-    if get_protocol(protocol).tie_order != "image" or not len(lost):
+def lost_ids(truth, protocol):
+    """``counts["images_left_out"]`` and ``counts["classes_left_out"]`` under
+    pycocotools' rules (``tie_order="image"``) where its ``np.unique`` loses image or
+    category ids (``GroundTruth.unique_lost_images``/``unique_lost_classes``): how many,
+    their ground-truth boxes, the first ids and why; nothing where none is lost."""
+    if get_protocol(protocol).tie_order != "image":
         return {}
-    shown = truth.image_ids[lost[:SHOWN_LOST_IDS]].tolist()
-    boxes = int(np.isin(truth.box_image, lost).sum())
-    entry = {"images": len(lost), "truth_boxes": boxes, "ids": shown, "reason": LOST_REASON}
-    return {"images_left_out": entry}
+    out = {}
+    for what, lost, ids, column in (
+        ("images", truth.unique_lost_images, truth.image_ids, truth.box_image),
+        ("classes", truth.unique_lost_classes, truth.class_ids, truth.box_class),
+    ):
+        if len(lost):
+            out[f"{what}_left_out"] = {
+                what: len(lost),
+                "truth_boxes": int(np.isin(column, lost).sum()),
+                "ids": ids[lost[:SHOWN_LOST_IDS]].tolist(),
+                "reason": LOST_REASON.format("image" if what == "images" else "category"),
+            }
+    return out
 
 
 def annotate(result, truth, predictions, records, protocol):
     """Finish a result: counts, the protocol record, engine version, truth fingerprint."""
     result["counts"] = counts(truth, predictions, records)
-    result["counts"].update(lost_images(truth, protocol))
+    result["counts"].update(lost_ids(truth, protocol))
     result["protocol_record"] = protocol_record(protocol, truth, predictions, records, result)
     result["engine_version"] = ENGINE_VERSION
     result["truth_fingerprint"] = truth.content_hash()

@@ -82,6 +82,7 @@ def _whole(path, data, vis_ratio=False):
     return {
         "image_ids": np.array(whole["images", "id"], np.int64),
         "image_id_kinds": id_kinds([im.id for im in d.images]),
+        "class_id_kinds": id_kinds([c.id for c in d.categories]),
         "image_width": opt(im.width for im in d.images),
         "image_height": opt(im.height for im in d.images),
         # shown with a lone surrogate as its escape (``ids.escaped``)

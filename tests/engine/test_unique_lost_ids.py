@@ -277,3 +277,88 @@ def test_every_path_gives_the_whole_files_numbers(files, protocol, tmp_path, mon
         assert json.dumps(evaluate(again, predictions, protocol)) == json.dumps(
             evaluate(truth, predictions, protocol)
         )
+
+
+def _class_split(class_ids):
+    """Two images; per class one box on each, a hit on the first image and a miss on
+    the second (so each class has its own AP, and a class left out moves the mean)."""
+    split = {
+        "images": [{"id": 1, "width": 200, "height": 200}, {"id": 2, "width": 200, "height": 200}],
+        "categories": [{"id": c, "name": f"class {n}"} for n, c in enumerate(class_ids)],
+        "annotations": [],
+    }
+    detections = []
+    for n, c in enumerate(class_ids):
+        for image in (1, 2):
+            box = [10 + 5 * n, 10, 20 + n, 20]
+            split["annotations"].append(
+                {
+                    "id": len(split["annotations"]) + 1,
+                    "image_id": image,
+                    "category_id": c,
+                    "bbox": box,
+                    "area": box[2] * box[3],
+                    "iscrowd": 0,
+                }  # fmt: skip
+            )
+        detections.append({"image_id": 1, "category_id": c, "bbox": box, "score": 0.3 + n / 10})
+        detections.append({"image_id": 2, "category_id": c, "bbox": [150, 150, 9, 9], "score": 0.9})
+    return split, detections
+
+
+def _compare_classes(tmp_path, class_ids):
+    """pycocotools 2.0.11 on the file: the 12 numbers, and each class's AP where its id
+    is among ``params.catIds`` (looked up as pycocotools looks it up), else absent."""
+    split, detections = _class_split(class_ids)
+    truth, ours = _run(tmp_path, split, detections)
+    reference = pycocotools_eval(tmp_path / "gt.json", tmp_path / "dt.json")
+    for key, expected in zip(COCO_SUMMARY_KEYS, reference.stats):
+        assert as_reference(ours["summary"][key]) == pytest.approx(expected, abs=1e-12), key
+    position = {c: k for k, c in enumerate(reference.params.catIds)}
+    lost = []
+    for n, c in enumerate(class_ids):
+        row = ours["per_class"][f"class {n}"]
+        k = position.get(c)
+        precision = None if k is None else reference.eval["precision"][:, :, k, 0, 2]
+        if precision is None or np.all(precision == -1):
+            lost.append(c)
+            assert row["AP"] is None
+        else:
+            assert row["AP"] == pytest.approx(np.mean(precision), abs=1e-12)
+    return truth, ours, lost
+
+
+@pytest.mark.parametrize(
+    "class_ids, lost",
+    [
+        ([2**63 + 1, 1], [2**63 + 1]),  # float64: 2^63 + 1 -> 2^63
+        ([2**63, 2**63 + 1, -1], [2**63 + 1]),
+        ([2**63 + 1, True], []),  # uint64: exact
+        ([2**53 + 1, 2.5], [2**53 + 1]),
+        (["car\x00", "car"], ["car\x00"]),
+        ([2**64 + 1, 2**63 + 1, 1], []),
+    ],
+)
+def test_category_ids_pycocotools_loses_are_left_out_alike(tmp_path, class_ids, lost):
+    """``evaluate`` runs ``np.unique`` on ``p.catIds`` too: a category whose id numpy
+    changes scores nothing there (absent, out of the mean), here too, counted in
+    ``counts.classes_left_out`` and named in the protocol record's absent classes."""
+    truth, ours, reference_lost = _compare_classes(tmp_path, class_ids)
+    assert reference_lost == lost
+    assert [class_ids[i] for i in unique_lost(class_ids)] == lost
+    entry = ours["counts"].get("classes_left_out", {})
+    assert entry.get("classes", 0) == len(lost)
+    absent = ours["protocol_record"]["absent_classes"]
+    assert sum("np.unique" in why for why in absent.values()) == len(lost)
+
+
+@settings(
+    max_examples=25, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture]
+)
+@given(data=st.data(), text=st.booleans())
+def test_random_category_id_lists_equal_pycocotools(tmp_path, data, text):
+    """Category ids of mixed kinds: the classes left out are pycocotools' absent ones."""
+    class_ids = _distinct(data.draw(st.lists(TEXT if text else KINDS, min_size=1, max_size=5)))
+    _, ours, lost = _compare_classes(tmp_path, class_ids)
+    assert [class_ids[i] for i in unique_lost(class_ids)] == lost
+    assert ours["counts"].get("classes_left_out", {}).get("classes", 0) == len(lost)

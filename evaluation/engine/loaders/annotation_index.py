@@ -40,7 +40,7 @@ COUNTS = (
 )
 #: The columns of one image / one category in ``coco_truth._Records``.
 IMAGE_COLUMNS = ("image_ids", "image_width", "image_height", "image_tags", "image_id_kinds")
-CATEGORY_COLUMNS = ("class_ids", "class_names")
+CATEGORY_COLUMNS = ("class_ids", "class_names", "class_id_kinds")
 
 #: Per-annotation columns of ``coco_truth._Records.annotations``.
 PER_ANNOTATION = (
@@ -123,11 +123,12 @@ def last_entries(cols):
         last = _last_of_each_id(cols[names[0]])
         rows = np.flatnonzero(last == np.arange(n))
         counts[f"duplicate_{what}_entries"] = n - len(rows)
-        if len(rows) < n and what == "image" and cols["image_id_kinds"].any():
+        kinds = names[-1]  # how each id was written (``ids.id_kinds``)
+        if len(rows) < n and cols[kinds].any():
             # the dict keeps the key as first written (``true``, then ``1``: ``true``)
             first = np.full(n, n, np.int64)
             np.minimum.at(first, last, np.arange(n))
-            cols["image_id_kinds"] = cols["image_id_kinds"][first[last]]
+            cols[kinds] = cols[kinds][first[last]]
         if len(rows) < n:
             for name in names:
                 values = cols[name]

@@ -242,8 +242,10 @@ class _Records:
         }
 
     def categories(self, categories, key, base):
+        raw = [c.id for c in categories]
         return {
-            "class_ids": self.ids([c.id for c in categories], key, "id", base),
+            "class_ids": self.ids(raw, key, "id", base),
+            "class_id_kinds": id_kinds(raw),
             "class_names": [category_name(c) for c in categories],
         }
 

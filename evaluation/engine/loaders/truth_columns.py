@@ -92,6 +92,19 @@ def _cityscale_faults(city_rows, rows):
     return faults
 
 
+def _unique_lost(ids, id_type, kinds):
+    """``(positions, by_type)``: the ids (``GroundTruth`` ids of ``id_type``, written as
+    ``kinds`` says) pycocotools' ``np.unique`` loses (``ids.unique_lost``), and whether
+    their JSON types (``true``, ``1.0``) decided that."""
+    if not id_type and not kinds.any():  # int64: exact
+        return np.zeros(0, np.int64), False
+    lost = ids_module.unique_lost(ids_module.as_written(ids, id_type, kinds))
+    if not kinds.any():
+        return lost, False
+    plain = ids_module.unique_lost(ids_module.as_written(ids, id_type, None))
+    return lost, not np.array_equal(plain, lost)
+
+
 def _order(values, id_type):
     """Stable ascending order of a family's defining ids (pycocotools' order)."""
     return ids_module.sort_order(values) if id_type else np.argsort(values, kind="stable")
@@ -186,15 +199,13 @@ def read_truth(
     image_order = _order(cols["image_ids"], image_type)
     image_ids = cols["image_ids"][image_order]
     shown = _shown(image_ids, image_type)
-    lost, by_type = None, False  # images pycocotools' np.unique loses: COCO JSON only
-    if fmt == "json" and (image_type or cols["image_id_kinds"].any()):  # int64: exact
-        kinds = cols["image_id_kinds"][image_order]
-        lost = ids_module.unique_lost(ids_module.as_written(shown, image_type, kinds))
-        if kinds.any():
-            plain = ids_module.unique_lost(ids_module.as_written(shown, image_type, None))
-            by_type = not np.array_equal(plain, lost)
     class_order = _order(cols["class_ids"], class_type)
     class_ids = cols["class_ids"][class_order]
+    lost = {}  # what pycocotools' np.unique loses: a COCO JSON file's ids only
+    if fmt == "json":
+        lost["image"] = _unique_lost(shown, image_type, cols["image_id_kinds"][image_order])
+        class_shown = _shown(class_ids, class_type)
+        lost["class"] = _unique_lost(class_shown, class_type, cols["class_id_kinds"][class_order])
     annotation_counts = {**dict.fromkeys(annotation_index.COUNTS, 0), **entry_counts}
     rows = None
     if fmt == "json" and annotations == "strict":
@@ -294,8 +305,9 @@ def read_truth(
         cityscale_faults=_cityscale_faults(city_rows, rows),
         image_id_type=image_type,
         class_id_type=class_type,
-        unique_lost_images=lost,
-        unique_lost_by_type=by_type,
+        unique_lost_images=lost.get("image", (None,))[0],
+        unique_lost_classes=lost.get("class", (None,))[0],
+        unique_lost_by_type=any(by_type for _, by_type in lost.values()),
         box_policy=policy,
         box_counts={
             **checks.truth_box_counts(boxes, *frame, box_image),
