@@ -19,6 +19,7 @@ from hypothesis import strategies as st
 
 from evaluation.engine import (
     COCO_SUMMARY_KEYS,
+    InputError,
     annotate,
     evaluate,
     load_predictions,
@@ -379,3 +380,17 @@ def test_known_deviation_an_unlisted_images_boxes_under_a_changed_value(tmp_path
     assert truth.box_counts["annotations_of_unlisted_images"] == 1
     assert reference.eval["recall"][0, 0, 0, 2] == pytest.approx(0.5)  # 1 of 2 boxes
     assert ours["per_class"]["car"]["recall"] == pytest.approx(1.0)
+
+
+def test_a_box_beyond_float64_on_a_lost_image_is_not_refused(tmp_path):
+    """pycocotools converts a listed annotation's box in ``computeIoU`` only for the
+    images it looks up: on an image its ``np.unique`` loses, an integer beyond float64
+    in the box is never converted, and it scores the file (refused before, as on any
+    listed image: ``beyond_float64.truth_refusal``)."""
+    split, detections = _split([2**63 + 1, 5])
+    split["annotations"][0]["bbox"] = [10**400, 10, 20, 20]
+    _compare(tmp_path, split, detections)
+    split, detections = _split([2**63, 5])  # 2^63 is looked up: refused as before
+    split["annotations"][0]["bbox"] = [10**400, 10, 20, 20]
+    with pytest.raises(InputError, match="annotations\\[0\\]"):
+        _run(tmp_path, split, detections)
