@@ -20,12 +20,16 @@ within), then ``evaluateImg`` per category (sorted ids) and image:
   outside the setup has ``ignore = 1`` there, so is never converted.
 
 The loader records the values (``GroundTruth.cityscale_faults``); other protocols never
-read them. Tests: ``tests/engine/test_cityscale_raises.py`` against
+read them. ``check`` also raises, in the script's order, what ``cityscale_boxes`` finds
+(``loadRes``' box arithmetic before any setup; ``iou`` on wide integers after the
+``int(ignore)``s of its image and category) and ``accumulate``'s boolean scores
+(``loaders.cityscale_booleans``, after the setup's ``evaluate``). Tests: ``tests/engine/test_cityscale_raises.py`` against
 ``pedestrian_oracle.cityscale_coco``.
 """
 
 import numpy as np
 
+from . import cityscale_boxes
 from .errors import InputError
 from .pedestrian_setups import HEIGHT_EXPANSION  # Params.expFilter
 
@@ -36,7 +40,10 @@ def check(truth, predictions, protocol):
     boolean scores: ``Predictions.cityscale_booleans``), or return None."""
     faults = truth.cityscale_faults or {}
     booleans = predictions.cityscale_booleans()
-    if not faults and not booleans:
+    load, boxes = cityscale_boxes.first_raises(truth, predictions) or (None, {})
+    if load is not None:  # loadRes, before any setup
+        _raise_box(*load)
+    if not faults and not booleans and not boxes:
         return
     height = truth.boxes[:, 3]
     visibility = truth.cityscale_visibility()
@@ -51,12 +58,29 @@ def check(truth, predictions, protocol):
                     first = (key, record, message, "vis_ratio")
         if first is None:
             first = _ignore_fault(truth, predictions, protocol, setup, height, visibility)
+        box = boxes.get(setup.name)  # iou: after _prepare, and the int(ignore)s of its pair
+        if box is not None and (first is None or (first[3] == "ignore" and box[:2] < first[0][:2])):
+            _raise_box(*box[2:])
         if first is not None:
             _, record, message, field = first
             raise InputError(truth.source, message, record=record, field=field)
         if booleans and booleans["setup"] == setup.name:  # accumulate's -dtScores
             where = {k: booleans[k] for k in ("record", "field")}
             raise InputError(booleans["path"], booleans["message"], **where)
+    if cityscale_boxes.DIFFERS in boxes:  # scored by the script, not as it scores it
+        _raise_box(*boxes[cityscale_boxes.DIFFERS][2:])
+
+
+def _raise_box(path, record, field, why):
+    raise InputError(
+        path,
+        f"{field} holds an integer read here as float64 (beyond its range: infinite), "
+        f"which the CityPersons script (eval_MR_multisetup.py) keeps exact: {why}. The "
+        "file is refused for this protocol (write the number as a float, e.g. 1e400, to "
+        "have it read as the script reads a float)",
+        record=record,
+        field=field,
+    )
 
 
 def _ignore_fault(truth, predictions, protocol, setup, height, visibility):

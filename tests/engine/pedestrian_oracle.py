@@ -218,6 +218,11 @@ def load_res(dataset, results):
     assert {a["image_id"] for a in anns} <= image_ids, "Results do not correspond"
     for i, ann in enumerate(anns):
         bb = ann["bbox"]
+        # from memory: the shipped coco.py keeps pycocotools' corner lines (with a
+        # float partner, an integer beyond float64's range raises OverflowError here)
+        x1, x2, y1, y2 = [bb[0], bb[0] + bb[2], bb[1], bb[1] + bb[3]]
+        if "segmentation" not in ann:
+            ann["segmentation"] = [[x1, y1, x1, y2, x2, y2, x2, y1]]
         ann["area"] = bb[2] * bb[3]
         ann["height"] = bb[3]
         ann["id"] = i + 1
@@ -242,7 +247,17 @@ def _by_image_and_category(anns, img_ids, cat_ids):
 
 def _iou(dts, gts, pyiscrowd):
     """``COCOeval.iou``: per (dt, gt), intersection over union, or over the dt's own
-    area where the gt's ``int(ignore)`` is nonzero; 0 where they do not overlap."""
+    area where the gt's ``int(ignore)`` is nonzero; 0 where they do not overlap. It
+    starts (from memory) with ``np.asarray`` of its three lists: numpy scalars of a
+    float64 or int64 array (a zero union gives NaN, int64 products wrap), or the Python
+    values of an object array (a list holding an integer beyond int64: exact integer
+    arithmetic; with a float, one beyond float64's range raises OverflowError)."""
+    dts, gts, pyiscrowd = np.asarray(dts), np.asarray(gts), np.asarray(pyiscrowd)
+    with np.errstate(all="ignore"):  # the script runs under numpy's defaults (warnings)
+        return _iou_loop(dts, gts, pyiscrowd)
+
+
+def _iou_loop(dts, gts, pyiscrowd):
     ious = np.zeros((len(dts), len(gts)))
     for j, gt in enumerate(gts):
         gx1, gy1 = gt[0], gt[1]
