@@ -23,8 +23,9 @@ The loader records the values (``GroundTruth.cityscale_faults``); other protocol
 read them. ``check`` also raises, in the script's order, what ``cityscale_boxes`` finds
 (``loadRes``' box arithmetic before any setup; ``iou`` on wide integers after the
 ``int(ignore)``s of its image and category) and ``accumulate``'s boolean scores
-(``loaders.cityscale_booleans``, after the setup's ``evaluate``). Tests: ``tests/engine/test_cityscale_raises.py`` against
-``pedestrian_oracle.cityscale_coco``.
+(``loaders.cityscale_booleans``, after the setup's ``evaluate``). Tests:
+``tests/engine/test_cityscale_raises.py`` (also ``test_cityscale_boxes.py``,
+``test_cityscale_booleans.py``) against ``pedestrian_oracle.cityscale_coco``.
 """
 
 import numpy as np
