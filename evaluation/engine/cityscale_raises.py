@@ -93,6 +93,7 @@ def _ignore_fault(truth, predictions, protocol, setup, height, visibility):
     inside = setup.counts(height[boxes], visibility[boxes], script=True)
     keep = setup.keeps(predictions.boxes[:, 3], HEIGHT_EXPANSION)
     cap = protocol.max_detections
+    exact = _exact_ranks(predictions) if cap is not None else None
     n_classes = max(len(truth.classes), 1)
     pair = predictions.image.astype(np.int64) * n_classes + predictions.cls
     order = np.argsort(pair, kind="stable")  # per (image, class), file order within
@@ -107,8 +108,25 @@ def _ignore_fault(truth, predictions, protocol, setup, height, visibility):
             continue
         at = image * n_classes + cls
         d = order[np.searchsorted(pair, at) : np.searchsorted(pair, at, side="right")]
-        if cap is not None and len(d) > cap:  # numpy's argsort of -score: NaN last
-            d = d[np.argsort(-predictions.score[d], kind="stable")][:cap]
+        if cap is not None and len(d) > cap:
+            if exact is not None and (exact[d] >= 0).all():  # the script's exact ranks
+                d = d[exact[d] < cap]
+            else:  # numpy's argsort of -score: NaN last
+                d = d[np.argsort(-predictions.score[d], kind="stable")][:cap]
         if keep[d].any():
             first = (key, record, message, "ignore")
     return first
+
+
+def _exact_ranks(predictions):
+    """Per detection, its rank within its image and class in the script's order
+    (``evaluateImg``'s ``np.argsort([-d['score'] ...], kind='mergesort')`` on the
+    exact values, as pycocotools' own line: ``loaders.exact_scores``' uncapped entry,
+    every class holding an integer score it orders otherwise than float64), -1 where
+    float64's order is the script's; None where no such class is."""
+    entry = (predictions.score_conflicts or {}).get("none")
+    if not entry or "position" not in entry:
+        return None
+    ranks = np.full(len(predictions), -1, np.int64)
+    ranks[np.asarray(entry["position"], np.int64)] = entry["rank"]
+    return ranks

@@ -249,6 +249,35 @@ def test_whole_and_cached_loads_agree_and_the_cli_exits_2(tmp_path):
     assert "annotations[0]" in run.stderr and "'ignore'" in run.stderr
 
 
+@pytest.mark.parametrize("first_written", ["tall", "short"])
+def test_the_cap_before_computeIoU_takes_the_scripts_exact_order(tmp_path, first_written):
+    """1,001 detections on the image of a NaN ignore: 1,000 score -2**62 and are 10 px
+    tall (below every setup's filter), one scores -2**62 - 1 and is 100 px tall. The
+    script's argsort of the exact (int64) values puts that one last, so the cap of 1,000
+    cuts it whatever the file order, no detection is left, computeIoU never runs and the
+    file is scored. float64 ties them all: its stable order would keep the tall one
+    when written first, and refuse."""
+    tall = _det(0.0, score=-(2**62) - 1)
+    short = [_det(300.0, h=10.0, score=-(2**62)) for _ in range(1000)]
+    results = [tall, *short] if first_written == "tall" else [*short, tall]
+    dataset = _dataset([_ann(1, 0.0, ignore="@0"), _ann(2, 500.0, image_id=2)], images=(1, 2))
+    results.append(_det(500.0, image_id=2))
+    gt, dt = _write(tmp_path, dataset, results, ["NaN"])
+    assert not isinstance(_script(gt, dt), Exception)
+    _agree(gt, dt)
+
+
+def test_the_cap_keeps_what_the_exact_order_ranks_first(tmp_path):
+    """The mirror case: the tall detection scores -2**62 + 1, written last. The script
+    ranks it first (exact) and keeps it: computeIoU runs and int(NaN) raises. float64's
+    stable order would cut it (the last of 1,001 ties) and score the file."""
+    results = [_det(300.0, h=10.0, score=-(2**62)) for _ in range(1000)]
+    results.append(_det(0.0, score=-(2**62) + 1))
+    gt, dt = _write(tmp_path, _dataset([_ann(1, 0.0, ignore="@0")]), results, ["NaN"])
+    assert isinstance(_script(gt, dt), ValueError)
+    _agree(gt, dt, "annotations[0]", "ignore")
+
+
 # --- random files against the transliteration ----------------------------------------
 
 _IGNORES = ["0", "1", "0.5", "NaN", "Infinity", "null", '"x"', "[]", "true"]
