@@ -281,7 +281,8 @@ def _message(gt_path, dt_path, hit):
     else:
         why = (
             "np.asarray keeps the integer (int64, or Python integers beyond int64), and "
-            "adding, comparing or multiplying it with a float beyond float64's range, "
-            "or with numpy's int64 beyond int64's, raises OverflowError"
+            "where an integer beyond float64's range meets a float, or one beyond int64 "
+            "meets numpy's int64 (added, compared, multiplied), Python raises "
+            "OverflowError"
         )
     return path, shown, "bbox", f"computeIoU's iou computes with it in Python: {why}"
