@@ -16,8 +16,8 @@ with Python's ``json``, which keeps it an exact ``int``, and computes with it in
   object array of the Python values, any other a float64 (or int64) array. Its loop
   then adds, multiplies, compares (``min``/``max``: a numpy float against such an
   integer converts it) and ends with ``float(t) / unionarea``: wherever such an integer
-  meets a float it raises OverflowError; with object arrays a zero union of Python
-  floats raises ZeroDivisionError (numpy's scalars give NaN there).
+  meets a float it raises OverflowError; a zero union of Python floats would raise
+  ZeroDivisionError (caught too; boxes that reach it have positive areas).
 
 ``first_raises`` replays exactly that on the files as Python's ``json`` reads them
 (``iou_raise`` is the script's loop, statement by statement), only when a loaded box is
