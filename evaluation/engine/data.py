@@ -4,38 +4,12 @@ Everything downstream of the loaders works on these arrays; no metric function e
 sees a file. Boxes are ``[x, y, w, h]`` in pixels (float64), as in COCO-style JSON.
 """
 
-import hashlib
-import json
 from dataclasses import dataclass, field
 
 import numpy as np
 
 #: Per-box road attributes of ``GroundTruth`` (NaN where not given).
 ATTRIBUTES = ("occlusion", "truncation", "visibility")
-
-#: How ``GroundTruth.content_hash`` treats id types: ``typed`` (engine 2.15.0 on) hashes
-#: the kind of a text id family, so ids that match different predictions hash apart;
-#: ``untyped`` is the hash before (ids by their text only), kept to verify splits frozen
-#: under it. Numeric ids hash alike under both.
-HASH_SCHEMES = ("typed", "untyped")
-#: Id kinds (``id_kind``) a ``typed`` hash leaves out: so numeric splits keep their hash.
-NUMERIC_ID_KINDS = ("int", "number")
-
-
-def id_kind(ids, id_type):
-    """What predictions an id family matches (``loaders.detection_blocks._json_keys``):
-    ``"int"`` (int64 ids), ``"number"``, ``"text"`` or ``"json"`` (COCO JSON families,
-    ``loaders.ids``) or ``"plain"`` (CSV or file-name text: matched as text, whatever a
-    JSON result's id type)."""
-    if id_type:
-        return id_type
-    return "int" if ids.dtype.kind in "iu" else "plain"
-
-
-def _canonical_nan(values):
-    """One NaN bit pattern, so equal content hashes equal whatever NaN a file made."""
-    values = np.asarray(values, "<f8")
-    return np.where(np.isnan(values), np.nan, values)
 
 
 def _reads_as_zero(text):
@@ -210,133 +184,24 @@ class GroundTruth:
         )
 
     def content_hash(self, scheme="typed"):
-        """SHA-256 of the canonical content: identical splits hash identically.
+        """SHA-256 of the canonical content, under ``scheme`` (``content_hash.HASH_SCHEMES``):
+        identical splits hash identically (``content_hash.content_hash``)."""
+        from .content_hash import content_hash
 
-        Canonical form: images in id order with sizes and sorted tags, classes in
-        order, boxes sorted by (image, class, x, y, w, h, flags, area) — so the
-        order of records in the source file does not change the hash. Only a split
-        with road attributes or don't-care regions adds them (the box columns gain
-        occlusion, truncation and visibility; the sorted regions follow), so a split
-        without them keeps the hash it was frozen with. The city-scale ``vis_ratio``
-        column is added only where it says more than the visibility
-        (``_vis_ratio_says_more``).
-
-        Ids are hashed as their text. Under the ``typed`` scheme (``HASH_SCHEMES``) a
-        split whose image or class ids are not numbers (``id_kind``: JSON text,
-        JSON-quoted text, CSV or file-name text) first hashes the two families' kinds,
-        so the image id ``1`` and the text ``"1"`` — which match different detections
-        (pycocotools' ``loadRes`` refuses a result whose ``image_id`` has the other
-        type) — hash apart; a split of numeric ids hashes as before (no mark).
-        ``untyped`` leaves the kinds out: the hash of splits frozen before.
-        """
-        if scheme not in HASH_SCHEMES:
-            raise ValueError(f"unknown hash scheme {scheme!r}; use {', '.join(HASH_SCHEMES)}")
-        mark = self._id_mark()
-        name = "_untyped_hash" if scheme == "untyped" and mark else "_content_hash"
-        cached = self.__dict__.get(name)
-        if cached is not None:  # frozen: computed once (the loaders and annotate ask)
-            return cached
-        value = self._hash(mark if name == "_content_hash" else b"")
-        object.__setattr__(self, name, value)
-        return value
+        return content_hash(self, scheme)
 
     def id_kinds(self):
-        """``{"image": kind, "class": kind}`` of the two id families (``id_kind``)."""
-        return {
-            "image": id_kind(self.image_ids, self.image_id_type),
-            "class": id_kind(self.class_ids, self.class_id_type),
-        }
+        """``{"image": kind, "class": kind}`` of the two id families (``content_hash.id_kind``)."""
+        from .content_hash import id_kinds
 
-    def _id_mark(self):
-        """The bytes a ``typed`` hash starts with: empty for numeric ids; else the kinds
-        of both id families. An ``untyped`` hash starts with ``[`` (a list's repr), so
-        no marked content hashes as unmarked content."""
-        kinds = self.id_kinds()
-        if all(kind in NUMERIC_ID_KINDS for kind in kinds.values()):
-            return b""
-        return b"\x00id kinds " + json.dumps(kinds, sort_keys=True).encode() + b"\n"
-
-    def _hash(self, mark):
-        attributes = self.has_attributes()
-        digest = self._image_digest(mark)
-        columns = np.column_stack(
-            [
-                self.box_image.astype("<f8"),
-                self.box_class.astype("<f8"),
-                self.boxes.astype("<f8"),
-                self.crowd.astype("<f8"),
-                self.difficult.astype("<f8"),
-                self.ignore.astype("<f8"),
-                self.box_area.astype("<f8"),
-            ]
-            + ([_canonical_nan(getattr(self, a)) for a in ATTRIBUTES] if attributes else [])
-            + ([self.ignore_key.astype("<f8")] if self.ignore_key.any() else [])
-            + ([self.ignore_key_fraction.astype("<f8")] if self.ignore_key_fraction.any() else [])
-            + ([_canonical_nan(self.vis_ratio)] if self._vis_ratio_says_more() else [])
-            + ([column] if (column := self._faults_column()).any() else [])
-        )
-        order = np.lexsort(columns.T[::-1])
-        digest.update(np.ascontiguousarray(columns[order]).tobytes())
-        if attributes:
-            regions = np.column_stack([self.region_image.astype("<f8"), self.regions])
-            regions = regions[np.lexsort(regions.T[::-1])]
-            digest.update(b"dont_care")
-            digest.update(np.ascontiguousarray(regions, "<f8").tobytes())
-        return digest.hexdigest()
-
-    def _faults_column(self):
-        """Per box, what ``cityscale_faults`` changes in the numbers where a split is
-        scored (the hash's column, added only where non-zero): 1 a ``vis_ratio`` the
-        script cannot compare (refused on reading before engine 2.15.8: no split holds
-        one), 4 an ``ignore`` read as truthy text, an array or an object (unread, 0,
-        before), 8 that one's ``int()`` nonzero. An ``ignore`` only ``int()`` raises on
-        (NaN, null) scores as before where accepted: not hashed, so a split frozen with
-        one keeps its hash."""
-        column = np.zeros(self.n_boxes, "<f8")
-        for name, bit in (("vis_ratio", 1), ("ignore_read", 4)):
-            for entry in self.cityscale_faults.get(name, ()):
-                column[entry[0]] += bit + (8 if name == "ignore_read" and entry[2] else 0)
-        return column
-
-    def _image_digest(self, mark=b""):
-        """``content_hash``'s SHA-256 state after its id mark (``_id_mark``) and its
-        class and image part (classes, image ids, sizes, sorted tags). The bytes of that
-        part are built once per ``_images_cell`` (a Python object per image: the costly
-        part) and kept as bytes (picklable), then hashed for each truth sharing them."""
-        cell = self._images_cell()
-        if not cell:
-            cell.append(repr(list(zip(self.class_ids.tolist(), self.classes))).encode())
-            cell.append(repr([str(i) for i in self.image_ids]).encode())
-            cell.append(np.ascontiguousarray(self.image_width, "<f8").tobytes())
-            cell.append(np.ascontiguousarray(self.image_height, "<f8").tobytes())
-            cell.append(repr([sorted(t) for t in self.image_tags]).encode())
-            if self.unique_lost_by_type:  # else the ids as hashed decide them
-                lost = (self.unique_lost_images, [-1], self.unique_lost_classes)
-                cell.append(b"unique_lost" + np.concatenate(lost).astype("<i8").tobytes())
-        digest = hashlib.sha256(mark)
-        for part in cell:
-            digest.update(part)
-        return digest
-
-    def _images_cell(self):
-        cell = self.__dict__.get("_images_digest")
-        if cell is None:
-            cell = []
-            object.__setattr__(self, "_images_digest", cell)
-        return cell
+        return id_kinds(self)
 
     def share_images_digest(self, other):
-        """Let ``other`` — a truth holding this one's very class and image columns (the
-        same objects, as ``shards.truth_slice`` makes) — reuse the class and image part
-        of this truth's ``content_hash`` instead of hashing every image again: a split
-        cut into N shard slices hashes its images once, not N times; same digest. Any
-        other ``other`` is left to hash its own (returns False)."""
-        names = ("class_ids", "classes", "image_ids", "image_width", "image_height", "image_tags")
-        names += ("unique_lost_images", "unique_lost_classes", "unique_lost_by_type")
-        if any(getattr(other, name) is not getattr(self, name) for name in names):
-            return False
-        object.__setattr__(other, "_images_digest", self._images_cell())
-        return True
+        """Let ``other`` reuse this truth's hashed image part
+        (``content_hash.share_images_digest``)."""
+        from .content_hash import share_images_digest
+
+        return share_images_digest(self, other)
 
 
 #: ``loaders.beyond_float64.OVERFLOWING`` (the engine's containers import no loader).

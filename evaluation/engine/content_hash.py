@@ -1,0 +1,174 @@
+"""A split's identity: ``GroundTruth.content_hash`` and the id kinds it marks.
+
+The canonical form a split is hashed in (``content_hash``), the two hash schemes, the
+id kinds a ``typed`` hash starts with, and the image part a shard slice shares with its
+split (``share_images_digest``). ``GroundTruth`` delegates its methods here.
+"""
+
+import hashlib
+import json
+
+import numpy as np
+
+from .data import ATTRIBUTES
+
+#: How ``GroundTruth.content_hash`` treats id types: ``typed`` (engine 2.15.0 on) hashes
+#: the kind of a text id family, so ids that match different predictions hash apart;
+#: ``untyped`` is the hash before (ids by their text only), kept to verify splits frozen
+#: under it. Numeric ids hash alike under both.
+HASH_SCHEMES = ("typed", "untyped")
+#: Id kinds (``id_kind``) a ``typed`` hash leaves out: so numeric splits keep their hash.
+NUMERIC_ID_KINDS = ("int", "number")
+
+
+def id_kind(ids, id_type):
+    """What predictions an id family matches (``loaders.detection_blocks._json_keys``):
+    ``"int"`` (int64 ids), ``"number"``, ``"text"`` or ``"json"`` (COCO JSON families,
+    ``loaders.ids``) or ``"plain"`` (CSV or file-name text: matched as text, whatever a
+    JSON result's id type)."""
+    if id_type:
+        return id_type
+    return "int" if ids.dtype.kind in "iu" else "plain"
+
+
+def _canonical_nan(values):
+    """One NaN bit pattern, so equal content hashes equal whatever NaN a file made."""
+    values = np.asarray(values, "<f8")
+    return np.where(np.isnan(values), np.nan, values)
+
+
+def content_hash(truth, scheme="typed"):
+    """SHA-256 of the canonical content: identical splits hash identically.
+
+    Canonical form: images in id order with sizes and sorted tags, classes in
+    order, boxes sorted by (image, class, x, y, w, h, flags, area) — so the
+    order of records in the source file does not change the hash. Only a split
+    with road attributes or don't-care regions adds them (the box columns gain
+    occlusion, truncation and visibility; the sorted regions follow), so a split
+    without them keeps the hash it was frozen with. The city-scale ``vis_ratio``
+    column is added only where it says more than the visibility
+    (``_vis_ratio_says_more``).
+
+    Ids are hashed as their text. Under the ``typed`` scheme (``HASH_SCHEMES``) a
+    split whose image or class ids are not numbers (``id_kind``: JSON text,
+    JSON-quoted text, CSV or file-name text) first hashes the two families' kinds,
+    so the image id ``1`` and the text ``"1"`` — which match different detections
+    (pycocotools' ``loadRes`` refuses a result whose ``image_id`` has the other
+    type) — hash apart; a split of numeric ids hashes as before (no mark).
+    ``untyped`` leaves the kinds out: the hash of splits frozen before.
+    """
+    if scheme not in HASH_SCHEMES:
+        raise ValueError(f"unknown hash scheme {scheme!r}; use {', '.join(HASH_SCHEMES)}")
+    mark = _id_mark(truth)
+    name = "_untyped_hash" if scheme == "untyped" and mark else "_content_hash"
+    cached = truth.__dict__.get(name)
+    if cached is not None:  # frozen: computed once (the loaders and annotate ask)
+        return cached
+    value = _hash(truth, mark if name == "_content_hash" else b"")
+    object.__setattr__(truth, name, value)
+    return value
+
+
+def id_kinds(truth):
+    """``{"image": kind, "class": kind}`` of the two id families (``id_kind``)."""
+    return {
+        "image": id_kind(truth.image_ids, truth.image_id_type),
+        "class": id_kind(truth.class_ids, truth.class_id_type),
+    }
+
+
+def _id_mark(truth):
+    """The bytes a ``typed`` hash starts with: empty for numeric ids; else the kinds
+    of both id families. An ``untyped`` hash starts with ``[`` (a list's repr), so
+    no marked content hashes as unmarked content."""
+    kinds = id_kinds(truth)
+    if all(kind in NUMERIC_ID_KINDS for kind in kinds.values()):
+        return b""
+    return b"\x00id kinds " + json.dumps(kinds, sort_keys=True).encode() + b"\n"
+
+
+def _hash(truth, mark):
+    attributes = truth.has_attributes()
+    digest = _image_digest(truth, mark)
+    columns = np.column_stack(
+        [
+            truth.box_image.astype("<f8"),
+            truth.box_class.astype("<f8"),
+            truth.boxes.astype("<f8"),
+            truth.crowd.astype("<f8"),
+            truth.difficult.astype("<f8"),
+            truth.ignore.astype("<f8"),
+            truth.box_area.astype("<f8"),
+        ]
+        + ([_canonical_nan(getattr(truth, a)) for a in ATTRIBUTES] if attributes else [])
+        + ([truth.ignore_key.astype("<f8")] if truth.ignore_key.any() else [])
+        + ([truth.ignore_key_fraction.astype("<f8")] if truth.ignore_key_fraction.any() else [])
+        + ([_canonical_nan(truth.vis_ratio)] if truth._vis_ratio_says_more() else [])
+        + ([column] if (column := _faults_column(truth)).any() else [])
+    )
+    order = np.lexsort(columns.T[::-1])
+    digest.update(np.ascontiguousarray(columns[order]).tobytes())
+    if attributes:
+        regions = np.column_stack([truth.region_image.astype("<f8"), truth.regions])
+        regions = regions[np.lexsort(regions.T[::-1])]
+        digest.update(b"dont_care")
+        digest.update(np.ascontiguousarray(regions, "<f8").tobytes())
+    return digest.hexdigest()
+
+
+def _faults_column(truth):
+    """Per box, what ``cityscale_faults`` changes in the numbers where a split is
+    scored (the hash's column, added only where non-zero): 1 a ``vis_ratio`` the
+    script cannot compare (refused on reading before engine 2.15.8: no split holds
+    one), 4 an ``ignore`` read as truthy text, an array or an object (unread, 0,
+    before), 8 that one's ``int()`` nonzero. An ``ignore`` only ``int()`` raises on
+    (NaN, null) scores as before where accepted: not hashed, so a split frozen with
+    one keeps its hash."""
+    column = np.zeros(truth.n_boxes, "<f8")
+    for name, bit in (("vis_ratio", 1), ("ignore_read", 4)):
+        for entry in truth.cityscale_faults.get(name, ()):
+            column[entry[0]] += bit + (8 if name == "ignore_read" and entry[2] else 0)
+    return column
+
+
+def _image_digest(truth, mark=b""):
+    """``content_hash``'s SHA-256 state after its id mark (``_id_mark``) and its
+    class and image part (classes, image ids, sizes, sorted tags). The bytes of that
+    part are built once per ``_images_cell`` (a Python object per image: the costly
+    part) and kept as bytes (picklable), then hashed for each truth sharing them."""
+    cell = _images_cell(truth)
+    if not cell:
+        cell.append(repr(list(zip(truth.class_ids.tolist(), truth.classes))).encode())
+        cell.append(repr([str(i) for i in truth.image_ids]).encode())
+        cell.append(np.ascontiguousarray(truth.image_width, "<f8").tobytes())
+        cell.append(np.ascontiguousarray(truth.image_height, "<f8").tobytes())
+        cell.append(repr([sorted(t) for t in truth.image_tags]).encode())
+        if truth.unique_lost_by_type:  # else the ids as hashed decide them
+            lost = (truth.unique_lost_images, [-1], truth.unique_lost_classes)
+            cell.append(b"unique_lost" + np.concatenate(lost).astype("<i8").tobytes())
+    digest = hashlib.sha256(mark)
+    for part in cell:
+        digest.update(part)
+    return digest
+
+
+def _images_cell(truth):
+    cell = truth.__dict__.get("_images_digest")
+    if cell is None:
+        cell = []
+        object.__setattr__(truth, "_images_digest", cell)
+    return cell
+
+
+def share_images_digest(truth, other):
+    """Let ``other`` — a truth holding this one's very class and image columns (the
+    same objects, as ``shards.truth_slice`` makes) — reuse the class and image part
+    of this truth's ``content_hash`` instead of hashing every image again: a split
+    cut into N shard slices hashes its images once, not N times; same digest. Any
+    other ``other`` is left to hash its own (returns False)."""
+    names = ("class_ids", "classes", "image_ids", "image_width", "image_height", "image_tags")
+    names += ("unique_lost_images", "unique_lost_classes", "unique_lost_by_type")
+    if any(getattr(other, name) is not getattr(truth, name) for name in names):
+        return False
+    object.__setattr__(other, "_images_digest", _images_cell(truth))
+    return True
