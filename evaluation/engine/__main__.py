@@ -168,7 +168,7 @@ def main(argv=None):
         )
         if not levels and args.protocol not in PRESETS:  # its classes, named by its file
             try:
-                protocol.threshold_table(truth.classes)
+                protocol.threshold_table(truth.classes, truth.category_names)
             except InputError as e:
                 raise InputError(args.protocol, e.message, field=e.field) from None
         predictions = load_predictions(

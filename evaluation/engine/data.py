@@ -12,6 +12,14 @@ import numpy as np
 ATTRIBUTES = ("occlusion", "truncation", "visibility")
 
 
+def name_key(name):
+    """How a preset's or a protocol's class name is compared with a category's own name
+    (``GroundTruth.category_names``): in any case (``str.casefold``). Every rule that
+    names classes (per-class IoU, difficulty classes, neighbouring labels) matches
+    through ``GroundTruth.classes_named``, never on the shown name ``classes``."""
+    return str(name).casefold()
+
+
 def _reads_as_zero(text):
     try:
         return float(text) == 0
@@ -98,8 +106,15 @@ class GroundTruth:
     #: Whether the ids' JSON types (``true``, ``1.0`` for an int) decided what is lost:
     #: the ids as shown would lose others, so the hash adds the lost images and classes.
     unique_lost_by_type: bool = False
+    #: Each class's own name, as the file gives it. ``classes`` shows two categories
+    #: that share a name as ``"car (id 1)"``, ``"car (id 2)"`` (``loaders.
+    #: annotation_index.rename_shared_names``); the rules that name classes read this
+    #: one (``classes_named``). None: the same as ``classes``.
+    category_names: tuple = None
 
     def __post_init__(self):
+        if self.category_names is None:
+            object.__setattr__(self, "category_names", tuple(self.classes))
         for name in ATTRIBUTES:
             if getattr(self, name) is None:
                 object.__setattr__(self, name, np.full(self.n_boxes, np.nan))
@@ -116,6 +131,12 @@ class GroundTruth:
         for name in ("unique_lost_images", "unique_lost_classes"):
             if getattr(self, name) is None:
                 object.__setattr__(self, name, np.zeros(0, np.int64))
+
+    def classes_named(self, name):
+        """Indices of the classes whose own name (``category_names``) is ``name`` in
+        any case (``name_key``): every category of that name, ascending."""
+        key = name_key(name)
+        return [k for k, own in enumerate(self.category_names) if name_key(own) == key]
 
     def cityscale_ignore(self):
         """Per box, ``(ignore box, matched by plain IoU although ignored)`` as the

@@ -28,7 +28,10 @@ own words (the function named in brackets is where the devkit applies each):
   positions (Simonelli et al., ICCV 2019) is the mean of slots 1-40; the older 11-point
   AP the mean of slots 0, 4, ..., 40.
 
-Class names compare case-insensitively. A class with no counted box at a level is
+Class names compare case-insensitively, on each category's own name: categories that
+share a name (shown ``Car (id 1)``, ``Car (id 2)``) or differ only in case are one
+class, as label lines of that name are to the devkit, keyed by the first one's shown
+name. A class with no counted box at a level is
 absent there (None): the devkit only evaluates classes it has detections for.
 """
 
@@ -194,9 +197,12 @@ class _Image:
         return tp, fp
 
 
-def _class_index(classes, name):
-    lower = [c.lower() for c in classes]
-    return [k for k, c in enumerate(lower) if c == name]
+def _class_index(truth, name):
+    """Every class whose own name is ``name`` (``GroundTruth.classes_named``): the
+    devkit knows a class only by the name its label lines carry (``strcasecmp`` in
+    ``cleanData``), so categories sharing a name, or differing only in case, are one
+    class to it: their boxes and detections are evaluated together."""
+    return truth.classes_named(name)
 
 
 def evaluate_levels(truth, predictions, protocol="kitti2d"):
@@ -226,12 +232,10 @@ def evaluate_levels_with_samples(truth, predictions, protocol="kitti2d"):
     per_level = {level.name: {} for level in protocol.levels}
     parts, classes = {}, []
     for name, thr in protocol.class_overlap.items():
-        own = _class_index(truth.classes, name)
+        own = _class_index(truth, name)
         if not own:
             continue
-        near = [
-            k for n in protocol.neighbours.get(name, ()) for k in _class_index(truth.classes, n)
-        ]
+        near = [k for n in protocol.neighbours.get(name, ()) for k in _class_index(truth, n)]
         gt_own = _mask(len(truth.classes), own)[truth.box_class]
         gt_part = _mask(len(truth.classes), own + near)[truth.box_class]
         det_own = _mask(len(truth.classes), own)[predictions.cls]
@@ -315,7 +319,7 @@ def level_counts(truth, protocol="kitti2d"):
         )
         counts = {}
         for name in protocol.class_overlap:
-            own = _class_index(truth.classes, name)
+            own = _class_index(truth, name)
             if own:
                 gt_own = _mask(len(truth.classes), own)[truth.box_class]
                 counts[truth.classes[own[0]]] = int((gt_own & ~hard).sum())

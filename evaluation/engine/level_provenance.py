@@ -12,6 +12,7 @@ from dataclasses import asdict
 
 import numpy as np
 
+from .data import name_key
 from .difficulty import DIFFICULTY_PRESETS, N_SAMPLE_POINTS, get_difficulty_protocol
 from .pedestrian_setups import (
     MIN_OVERLAP,
@@ -23,6 +24,8 @@ from .provenance import counts as result_counts
 from .version import ENGINE_VERSION
 
 _NOT_READ = "not computed by this protocol"
+#: How ``absent_classes`` starts for a category evaluated within another of its name.
+MERGED = "evaluated with"
 
 
 def _kitti_record(name, truth):
@@ -32,7 +35,12 @@ def _kitti_record(name, truth):
     record["metric"] = "AP"
     record["levels"] = [asdict(level) for level in p.levels]
     record["neighbours"] = {k: list(v) for k, v in p.neighbours.items()}
-    lower = {c.lower(): c for c in truth.classes}
+    # keyed by the shown names: categories sharing a name stay apart in the record
+    per_class = {
+        truth.classes[k]: float(t)
+        for c, t in p.class_overlap.items()
+        for k in truth.classes_named(c)
+    }
     return {
         **record,
         "value": "AP_R40",
@@ -40,9 +48,7 @@ def _kitti_record(name, truth):
         "(the devkit's per-box overlap > threshold); don't-care regions by intersection "
         "over the detection's area (KITTI devkit computeStatistics)",
         "iou_thresholds": sorted(set(p.class_overlap.values())),
-        "class_iou_thresholds": {
-            lower.get(c, c): float(t) for c, t in p.class_overlap.items() if c in lower
-        },
+        "class_iou_thresholds": per_class,
         "recall_sampling": {
             "kind": f"{N_SAMPLE_POINTS} score thresholds",
             "count": N_SAMPLE_POINTS,
@@ -147,30 +153,38 @@ def level_record(name, truth, predictions, output):
     ``pedestrian.evaluate_setups``): ``provenance.protocol_record``'s keys and the level
     definition. Averaged classes: those with a value at the headline level; absent:
     every other class of the split, and why."""
+    own = [name_key(n) for n in truth.category_names]  # rules name classes by these
+    merged = {}  # a category evaluated with the first of its name: that one's index
     if name in DIFFICULTY_PRESETS:
         record = _kitti_record(name, truth)
         value_key = "AP_R40"
-        evaluated = {c.lower() for c in record["class_overlap"]}
-        neighbours = {n for v in record["neighbours"].values() for n in v}
+        evaluated = {name_key(c) for c in record["class_overlap"]}
+        for c in record["class_overlap"]:
+            first, *rest = truth.classes_named(c) or [None]
+            merged.update(dict.fromkeys(rest, first))
     else:
         record = _miss_rate_record(name, truth)
         value_key = "miss_rate"
         evaluated = None
         if record["variant"] == "cityscale":
-            one = category_one(truth)
-            evaluated = {c.lower() for c, is_one in zip(truth.classes, one) if is_one}
-        neighbours = {n for v in record["neighbours"].values() for n in v}
+            evaluated = {own[k] for k in np.flatnonzero(category_one(truth))}
+    neighbours = {name_key(n) for v in record["neighbours"].values() for n in v}
     headline = output["levels"].get(record["headline_level"], {}).get("classes", {})
     averaged, absent = [], {}
-    for c in truth.classes:
+    for k, c in enumerate(truth.classes):
         entry = headline.get(c)
         if entry is not None and entry.get(value_key) is not None:
             averaged.append(c)
         elif entry is not None:
             absent[c] = f"no counted ground-truth box at the {record['headline_level']} level"
-        elif c.lower() in neighbours:
+        elif k in merged:
+            absent[c] = (
+                f"{MERGED} {truth.classes[merged[k]]!r} as one class: the devkit knows a "
+                f"class by its name ({truth.category_names[k]!r}, in any case)"
+            )
+        elif own[k] in neighbours:
             absent[c] = "a neighbouring class: its boxes are ignored, not evaluated"
-        elif evaluated is not None and c.lower() not in evaluated:
+        elif evaluated is not None and own[k] not in evaluated:
             absent[c] = (
                 "not category id 1: the city-scale code evaluates category id 1 only"
                 if value_key == "miss_rate"
@@ -199,7 +213,7 @@ def annotate_levels(output, name, truth, predictions):
     evaluated += [
         k
         for k, c in enumerate(truth.classes)
-        if record["absent_classes"].get(c, "").startswith("no counted")
+        if record["absent_classes"].get(c, "").startswith(("no counted", MERGED))
     ]
     scored = int(np.isin(predictions.cls, evaluated).sum())
     output["counts"] = {

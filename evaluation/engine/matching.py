@@ -108,7 +108,7 @@ def match(truth, predictions, protocol, *, reasons=True):
             where = {k: v for k, v in refusal.items() if k in ("record", "field")}
             raise InputError(refusal["path"], refusal["message"], **where)
     n_classes = len(truth.classes)
-    thresholds = protocol.threshold_table(truth.classes)
+    thresholds = protocol.threshold_table(truth.classes, truth.category_names)
     effective = np.minimum(thresholds, 1 - 1e-10)  # pycocotools caps at 1 - 1e-10
 
     exact = predictions.score_order(protocol)

@@ -95,6 +95,7 @@ from .pedestrian_setups import (  # noqa: F401  (re-exported: the engine's API)
     category_one,
     get_miss_rate_protocol,
     ignore_flags,
+    neighbours_of,
     setup_visibility,
 )
 
@@ -108,16 +109,13 @@ def _group(index, n):
 def _classes(truth, protocol):
     """(class index, [neighbour indices]) for every evaluated class: each class of the
     split except those that are only a neighbouring label of another present class;
-    under ``cityscale`` only the class of category id 1 (``category_one``)."""
-    lower = [c.lower() for c in truth.classes]
-    near_of = {
-        k: [lower.index(n) for n in protocol.neighbours.get(c, ()) if n in lower]
-        for k, c in enumerate(lower)
-    }
+    under ``cityscale`` only the class of category id 1 (``category_one``). Labels are
+    the categories' own names (``neighbours_of``)."""
+    near_of = {k: neighbours_of(truth, protocol, k) for k in range(len(truth.classes))}
     if protocol.variant == "cityscale":
         return [(int(k), near_of[int(k)]) for k in np.flatnonzero(category_one(truth))]
     neighbour_only = {j for k, near in near_of.items() for j in near if j != k}
-    return [(k, near_of[k]) for k in range(len(lower)) if k not in neighbour_only]
+    return [(k, near_of[k]) for k in range(len(truth.classes)) if k not in neighbour_only]
 
 
 def evaluate_setups(truth, predictions, protocol="miss-rate"):

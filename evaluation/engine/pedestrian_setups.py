@@ -6,6 +6,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+from .data import name_key
 from .errors import InputError
 from .operating_point import FPPI_POINTS
 
@@ -207,6 +208,17 @@ def category_one(truth):
     if truth.class_id_type != "number":
         return np.zeros(len(ids), bool)
     return np.array([float(v) == CITYSCALE_CATEGORY for v in ids.tolist()], bool)
+
+
+def neighbours_of(truth, protocol, k):
+    """The classes whose boxes are ignore boxes for class ``k``: every category whose
+    own name (``GroundTruth.classes_named``) is a neighbouring label of ``k``'s own
+    name. The toolbox reads a label per box, so two categories named ``people`` are
+    both the ``people`` label (not the shown ``people (id 2)``, ``people (id 3)``)."""
+    own = name_key(truth.category_names[k])
+    labels = {name_key(n): n for n in protocol.neighbours}
+    near = protocol.neighbours.get(labels.get(own), ())
+    return sorted({j for n in near for j in truth.classes_named(n)})
 
 
 def ignore_flags(truth, protocol):

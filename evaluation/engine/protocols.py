@@ -13,6 +13,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+from .data import name_key
 from .difficulty import DIFFICULTY_PRESETS
 from .errors import InputError
 from .pedestrian_setups import MISS_RATE_PRESETS
@@ -111,33 +112,45 @@ class Protocol:
     def max_detections_limit(self):
         return self.max_detections[-1]
 
-    def threshold_table(self, classes):
+    def threshold_table(self, classes, names=None):
         """IoU thresholds as a ``(slots, classes)`` float64 array.
 
-        Class names in ``class_iou_thresholds`` match the split's case-insensitively
-        (``Car`` and ``car`` are one class to a threshold). Under a custom protocol a
-        name matching none of the split's classes is an error.
+        ``classes`` are the split's class names as shown (``GroundTruth.classes``),
+        ``names`` each class's own name (``GroundTruth.category_names``; default: the
+        shown ones). A name in ``class_iou_thresholds`` matches the own names in any
+        case (``name_key``: ``Car`` and ``car`` are one class to a threshold) and
+        applies to *every* category of that name: two categories both named ``car``
+        (shown ``car (id 1)``, ``car (id 2)``) both take ``car``'s value, as a devkit
+        reading class names would. A key naming no own name may name one renamed
+        category as shown (``"car (id 2)"``); that value then wins for it. Under a
+        custom protocol a key matching neither is an error.
         """
+        names = classes if names is None else names
         table = np.empty((len(self.iou_thresholds), len(classes)))
         for slot, value in enumerate(self.iou_thresholds):
             table[slot] = value
-        per_class = {name.casefold(): value for name, value in self.class_iou_thresholds.items()}
-        if self.check_class_names:
-            known = {str(c).casefold() for c in classes}
-            unknown = sorted(
-                name for name in self.class_iou_thresholds if name.casefold() not in known
+        own = [name_key(n) for n in names]
+        shown = [name_key(c) for c in classes]
+        unknown = []
+        by_shown = []
+        for name, value in self.class_iou_thresholds.items():
+            key = name_key(name)
+            hits = [k for k, o in enumerate(own) if o == key]
+            if hits:
+                table[0, hits] = value
+            elif key in shown:
+                by_shown.append((shown.index(key), value))
+            else:
+                unknown.append(name)
+        for k, value in by_shown:  # one category, named as shown: the narrower key
+            table[0, k] = value
+        if self.check_class_names and unknown:
+            raise InputError(
+                f"protocol {self.name}",
+                f"{', '.join(map(repr, sorted(unknown)))} is not a class of the split "
+                f"(classes: {', '.join(map(str, classes))})",
+                field="class_iou_thresholds",
             )
-            if unknown:
-                raise InputError(
-                    f"protocol {self.name}",
-                    f"{', '.join(map(repr, unknown))} is not a class of the split "
-                    f"(classes: {', '.join(map(str, classes))})",
-                    field="class_iou_thresholds",
-                )
-        for k, name in enumerate(classes):
-            key = str(name).casefold()
-            if key in per_class:
-                table[0, k] = per_class[key]
         return table
 
     def as_dict(self):

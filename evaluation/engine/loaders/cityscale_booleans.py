@@ -30,7 +30,12 @@ setup (``Predictions.cityscale_booleans``). Checked against the transliteration
 
 import numpy as np
 
-from ..pedestrian_setups import CITYSCALE_SETUPS, HEIGHT_EXPANSION, MISS_RATE_CITYSCALE
+from ..pedestrian_setups import (
+    CITYSCALE_SETUPS,
+    HEIGHT_EXPANSION,
+    MISS_RATE_CITYSCALE,
+    neighbours_of,
+)
 from . import exact_scores
 
 #: The key of the refusal in ``Predictions.score_conflicts``.
@@ -52,9 +57,7 @@ def refusal(path, truth, rows, big, classes):
 
 def _in_e(truth, k, image):
     """Per image of the split, whether ``evaluateImg`` of the class is not None."""
-    lower = [c.lower() for c in truth.classes]
-    near = MISS_RATE_CITYSCALE.neighbours.get(lower[k], ())
-    part = np.isin(truth.box_class, [k] + [lower.index(n) for n in near if n in lower])
+    part = np.isin(truth.box_class, [k] + neighbours_of(truth, MISS_RATE_CITYSCALE, k))
     out = np.zeros(truth.n_images, bool)
     out[truth.box_image[part]] = True
     out[truth.region_image] = True

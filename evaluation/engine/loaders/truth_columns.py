@@ -143,6 +143,7 @@ def read_truth(
             image_locate = lambda i: f"images[{kept['image'][i]}]"  # noqa: E731
             category_locate = lambda i: f"categories[{kept['category'][i]}]"  # noqa: E731
             shown = _shown(cols["class_ids"], class_type).tolist()  # as the ids are shown
+            cols["category_names"] = list(cols["class_names"])  # the rules read these
             cols["class_names"], entry_counts["categories_renamed"] = (
                 annotation_index.rename_shared_names(cols["class_names"], shown)
             )
@@ -280,9 +281,11 @@ def read_truth(
         as_given=vis_ratio == "as-given",
     )
     names = [cols["class_names"][i] for i in class_order]
+    own = cols.get("category_names")
     tags = [cols["image_tags"][i] for i in image_order]
     return GroundTruth(
         classes=tuple(names),
+        category_names=None if own is None else tuple(own[i] for i in class_order),
         class_ids=_shown(class_ids, class_type),
         image_ids=shown,
         image_width=cols["image_width"][image_order],
