@@ -305,3 +305,17 @@ def test_miss_rate_every_category_named_people_is_an_ignore_label(tmp_path, name
     absent = result["protocol_record"]["absent_classes"]
     assert set(absent) == set(truth.classes[1:])
     assert all(v.startswith("a neighbouring class") for v in absent.values())
+
+
+def test_own_names_survive_the_cache(tmp_path):
+    """A cached split keeps each category's own name (``CACHE_SCHEMA`` 18): scored from
+    the cache, recall40 still takes 0.7 for both ``car`` categories."""
+    truth_json, _ = _cars()
+    (tmp_path / "gt.json").write_text(json.dumps(truth_json))
+    first = load_truth(tmp_path / "gt.json", cache_dir=tmp_path / "cache")
+    again = load_truth(tmp_path / "gt.json", cache_dir=tmp_path / "cache")
+    assert any((tmp_path / "cache").iterdir())
+    assert again.classes == first.classes == ("car (id 1)", "car (id 2)")
+    assert again.category_names == first.category_names == ("car", "car")
+    table = PRESETS["recall40"].threshold_table(again.classes, again.category_names)
+    assert table.tolist() == [[0.7, 0.7]]
