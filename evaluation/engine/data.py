@@ -93,6 +93,9 @@ class GroundTruth:
     #: field (``"vis_ratio"``: not comparable, ``"ignore"``: ``int()`` raises):
     #: ``[box, record, message, truthy]`` lists; checked by ``cityscale_raises`` under
     #: ``miss-rate-cityscale`` only (the other references never read these keys).
+    #: ``"id"``: an annotation id numpy cannot write into a float array (message: the
+    #: id shown), which pycocotools' ``evaluateImg`` raises on where matched; read by
+    #: ``sequential_walk.refuse_unwritable_ids`` under ``coco``.
     cityscale_faults: dict = field(default_factory=dict)
     region_image: np.ndarray = None  # int32 index into image_ids
     regions: np.ndarray = None  # (m, 4) float64 xywh

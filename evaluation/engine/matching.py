@@ -186,8 +186,8 @@ def match(truth, predictions, protocol, *, reasons=True):
             )
         )
 
-    if predictions.unwritable is not None and protocol.zero_id_unmatched:
-        refuse_unwritable_ids(predictions, order, det)
+    if protocol.zero_id_unmatched:  # pycocotools' id writes: box id, detection id
+        refuse_unwritable_ids(truth, predictions, order, det, box)
 
     records = MatchRecords(
         protocol=protocol.name,

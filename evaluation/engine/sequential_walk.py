@@ -6,9 +6,9 @@ that loop's id write can raise.
 some IoU is NaN (``ious[d, g] < iou`` is false once ``iou`` is NaN, so the next eligible
 box takes over) or where a detection's id leaves the box it matches free (read "as
 given", ``loaders.as_given``: ``gtm[t, m] = d['id']`` not above 0, so ``gtm > 0`` does
-not skip the box). ``refuse_unwritable_ids`` refuses a file where a detection whose id
-numpy cannot write into the float ``gtm`` matches a box, as ``evaluateImg`` raises
-there. Both are rare; ``matching.match`` calls them for those groups only.
+not skip the box). ``refuse_unwritable_ids`` refuses a file where a box or a detection
+whose id numpy cannot write into the float ``dtm``/``gtm`` takes part in a match, as
+``evaluateImg`` raises there. Both are rare; ``matching.match`` calls them for those groups only.
 """
 
 import numpy as np
@@ -17,11 +17,31 @@ from .boxes import pair_iou
 from .errors import InputError
 
 
-def refuse_unwritable_ids(predictions, order, matched):
-    """pycocotools 2.0.11 ``evaluateImg`` writes a matching detection's id into the
-    float ``gtm`` (``gtm[t, m] = d['id']``): an id numpy cannot write raises there, so
-    a file where such a detection matches a box (in any size range, at any IoU) is
-    refused, naming its record (``Predictions.unwritable``)."""
+def refuse_unwritable_ids(truth, predictions, order, matched, boxes):
+    """pycocotools 2.0.11 ``evaluateImg`` writes, for each match (any size range, any
+    IoU, a crowd or out-of-range box too), the box's id into the float ``dtm`` and then
+    the detection's id into the float ``gtm`` (``dtm[tind, dind] = gt[m]['id']``;
+    ``gtm[tind, m] = d['id']``): an id numpy cannot write (text Python's ``float`` does
+    not read, such as ``"x"``) raises there. So a file where such a box (the loader's
+    ``GroundTruth.cityscale_faults["id"]``: ``coco_truth.unwritable_id``) or such a
+    detection (``Predictions.unwritable``) takes part in a match is refused, naming
+    its record; the box first, as its write comes first. ``matched``/``boxes``: the
+    match rows' detections (in ``order``) and boxes."""
+    faults = {entry[0]: entry for entry in truth.cityscale_faults.get("id", ())}
+    hit = sorted(set(faults) & set(np.unique(boxes).tolist())) if faults else ()
+    if hit:
+        _, record, shown, _ = faults[hit[0]]
+        raise InputError(
+            truth.source,
+            f"the annotation's id {shown} is matched by a detection, and numpy cannot "
+            "write it into a float array (text that is no number, an integer beyond "
+            "float64): pycocotools 2.0.11 raises there (evaluateImg: dtm[tind, dind] = "
+            "gt[m]['id'], ValueError)",
+            record=record,
+            field="id",
+        )
+    if predictions.unwritable is None:
+        return
     record = predictions.unwritable[order[matched]]
     record = record[record >= 0]
     if len(record):

@@ -205,17 +205,51 @@ def test_an_id_matches_only_its_own_type(tmp_path):
     assert predictions.dropped == 3 and predictions.dropped_classes == ("1",)
 
 
-def test_text_annotation_ids_pycocotools_cannot_write_are_scored(tmp_path):
-    """A matched annotation whose id is text numpy cannot read as a float makes
-    pycocotools 2.0.11 raise (``dtm[tind, dind] = gt[m]['id']``); here it scores like
-    the same file with numeric ids (a deviation that accepts more, never another
-    number)."""
+#: Annotation ids pycocotools 2.0.11 writes into its float ``dtm`` (Python's ``float``
+#: reads the text; null is NaN, true 1) and ones it raises on when matched.
+WRITABLE_IDS = ["nan", "-1", "inf", " 2 ", "1_0", "\u0661", "-0", "0", None, True, 2.5]
+UNWRITABLE_IDS = ["x", "null", "", "1\x00", pytest.param(10**400, id="10**400")]
+
+
+@pytest.mark.parametrize("box_id", WRITABLE_IDS)
+def test_annotation_ids_numpy_writes_score_like_pycocotools(tmp_path, box_id):
+    """A matched annotation whose id numpy writes into pycocotools' float ``dtm``
+    scores as pycocotools 2.0.11 scores it (run: ``_compare``)."""
     split, detections = _tied_pair((1, 2))
-    numeric = evaluate(*_loaded(tmp_path, split, detections))
-    for ann, text in zip(split["annotations"], ("box-a", "box-b")):
-        ann["id"] = text
-    texts = evaluate(*_loaded(tmp_path, split, detections))
-    assert texts["summary"] == numeric["summary"]
+    split["annotations"][0]["id"] = box_id
+    _compare(tmp_path, split, detections)
+
+
+@pytest.mark.parametrize("box_id", UNWRITABLE_IDS)
+@pytest.mark.parametrize("crowd", [0, 1])
+def test_matched_annotation_ids_numpy_cannot_write_are_refused(tmp_path, capsys, box_id, crowd):
+    """pycocotools 2.0.11 raises (``evaluateImg``: ``dtm[tind, dind] = gt[m]['id']``,
+    run here) where a detection matches an annotation whose id numpy cannot write into a
+    float array — a crowd region too: refused under ``coco`` naming file, record and
+    field (CLI exit 2); unmatched, or under ``recall40``/``voc`` (which read no ids),
+    it scores; the same split with the box left unmatched equals pycocotools."""
+    from evaluation.engine.__main__ import main
+
+    from .conftest import pycocotools_eval
+
+    split, detections = _tied_pair((1, 2))
+    split["annotations"][1]["id"] = box_id
+    split["annotations"][1]["iscrowd"] = crowd
+    gt, dt = _write(tmp_path, split, detections)
+    with pytest.raises((ValueError, OverflowError)):
+        pycocotools_eval(gt, dt)
+    truth, predictions = _loaded(tmp_path, split, detections)
+    with pytest.raises(InputError) as error:
+        evaluate(truth, predictions, "coco")
+    assert error.value.record == "annotations[1]" and error.value.field == "id"
+    assert error.value.path == str(gt)
+    for protocol in ("recall40", "voc"):
+        evaluate(truth, predictions, protocol)
+    assert main(["score", "--truth", str(gt), "--predictions", str(dt)]) == 2
+    err = capsys.readouterr().err
+    assert "annotations[1]" in err and "'id'" in err and "Traceback" not in err
+    unmatched = [d for d in detections if d["image_id"] != 2]
+    _compare(tmp_path, split, unmatched)
 
 
 def _loaded(tmp_path, split, detections):

@@ -11,7 +11,7 @@ import msgspec
 import numpy as np
 
 from ..errors import InputError
-from . import json_literals, json_syntax, unread_fields
+from . import json_literals, json_syntax, result_readings, unread_fields
 from .checks import text_start
 from .coco_records import (
     _Annotation,
@@ -257,6 +257,8 @@ class _Records:
             if type(a.ignore) is float and not math.isfinite(a.ignore):
                 fault = unread_fields.ignore_fault(a.ignore)
                 self.city_rows.setdefault(base + i, {})["ignore"] = (fault, True)
+            if type(a.id) in (str, int) and unwritable_id(a.id):  # evaluateImg's dtm write
+                self.city_rows.setdefault(base + i, {})["id"] = (repr(a.id)[:40], True)
 
         return {
             "box_ids": self.ids([a.id for a in anns], key, "id", base),
@@ -389,3 +391,16 @@ def _slice_decode_error(path, error, checker, locate):
     line, column = checker.line_column(locate(int(m.group(1))))
     reason = text.split(":", 1)[-1].split("(byte")[0].strip()
     return InputError(path, f"not valid JSON: {reason} at line {line}, column {column}")
+
+
+def unwritable_id(value):
+    """Whether numpy cannot write an annotation id (text, an int) into pycocotools'
+    float ``dtm`` (``dtm[tind, dind] = gt[m]['id']``): text Python's ``float`` does not
+    read (``"x"``; ``" 2 "``, ``"1_0"``, ``"nan"``, ``"١"`` read), an integer beyond
+    float64. Recorded as ``GroundTruth.cityscale_faults["id"]`` for the matching's
+    refusal (``sequential_walk.refuse_unwritable_ids``)."""
+    try:
+        float(value)
+    except (ValueError, OverflowError):
+        return result_readings.as_float(value) is None
+    return False
