@@ -30,7 +30,7 @@ from django.db import transaction
 
 from . import engine, image_loo, jobs
 from .engine import class_groups as cg
-from .engine import shards
+from .engine import records_from_groups, shards
 from .models import EvaluationClassGroup, EvaluationShard
 from .sharding import _budget, _held, _protocol, discard_files, store_file
 from .storage import check_sha256, local_path, verified_path
@@ -185,7 +185,7 @@ def run_finish(evaluation_id, claim):
             truth = load_truth_of(evaluation.split, evaluation.box_policy)
             engine.annotate(result, truth, counts, cg.totals(paths), protocol)
             records_path = os.path.join(work, f"evaluation-{evaluation.pk}.npz")
-            cg.write_records(records_path, paths, truth.n_boxes)
+            records_from_groups.write_records(records_path, paths, truth.n_boxes)
             del truth
             loo = image_loo.join(evaluation, paths, work)
             _store(

@@ -22,6 +22,7 @@ from evaluation import image_loo
 from evaluation.engine import PRESETS, annotate, match, score_records, shards
 from evaluation.engine import class_groups as cg
 from evaluation.engine.records import MatchRecords
+from evaluation.engine.records_from_groups import write_records
 from evaluation.engine.tide import error_breakdown
 
 from .synthetic import make_detections, make_split
@@ -82,7 +83,7 @@ def _grouped(truth, predictions, protocol, images_per_shard, n_groups, tmp_path)
     totals = cg.totals(group_files)
     counts = shards.PredictionCounts.of(predictions)
     annotate(result, truth, counts, totals, protocol)
-    cg.write_records(tmp_path / "records.npz", group_files, truth.n_boxes)
+    write_records(tmp_path / "records.npz", group_files, truth.n_boxes)
     return result, breakdown, MatchRecords.load(tmp_path / "records.npz")
 
 
@@ -211,7 +212,7 @@ def test_groups_that_miss_a_box_are_refused(loaded, tmp_path):
     result = _grouped(truth, predictions, "coco", 48, 2, tmp_path)
     assert result[2].n_detections
     with pytest.raises(ValueError, match="every box exactly once"):
-        cg.write_records(tmp_path / "r.npz", [tmp_path / "group-0.npz"], truth.n_boxes)
+        write_records(tmp_path / "r.npz", [tmp_path / "group-0.npz"], truth.n_boxes)
 
 
 def test_a_weighted_plan_balances_the_detections():
