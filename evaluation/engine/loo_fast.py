@@ -15,13 +15,13 @@ range-maximum query on the curve shifted by that segment's (a, b), answered in O
 from a sparse table per distinct shift (few: an image holds a handful of detections of a
 class). Work: O(distinct shifts x points x log points + images x (recall points +
 own detections)) instead of O(images x points). The values compared are computed with
-the same floating-point operations as ``curves.interpolated_precision`` on the same
+the same floating-point operations as ``average_precision.interpolated_precision`` on the same
 integer counts, so the result is the same to the bit.
 """
 
 import numpy as np
 
-from .curves import first_points
+from .average_precision import first_points
 
 
 def _segments(image, tp, at, variants, n_images):
@@ -88,7 +88,7 @@ def _range_max(x, y, epsilon, shift_a, shift_b, combo, lo, hi):
     tp = (x[position] - shift_a[owner]).astype(np.float64)
     fp = (y[position] - shift_b[owner]).astype(np.float64)
     with np.errstate(divide="ignore", invalid="ignore"):
-        values = tp / (fp + tp + epsilon)  # as curves.interpolated_precision
+        values = tp / (fp + tp + epsilon)  # as average_precision.interpolated_precision
     start = offset[combo] + lo - span_lo[combo]
     stop = offset[combo] + hi - span_lo[combo]
     level = np.floor(np.log2(stop - start + 1)).astype(np.uint8)
@@ -107,7 +107,7 @@ def _range_max(x, y, epsilon, shift_a, shift_b, combo, lo, hi):
 
 def envelopes(image, tp, n_pos, variants, box_count, recall_points, epsilon, n_images, out=None):
     """Interpolated precision of each variant (image left out) at one IoU slot, shape
-    (recall points, variants): ``curves.interpolated_precision`` of the remaining
+    (recall points, variants): ``average_precision.interpolated_precision`` of the remaining
     points, bit for bit; NaN for a variant left without positives."""
     recall_points = np.asarray(recall_points, np.float64)
     at = np.flatnonzero(tp)

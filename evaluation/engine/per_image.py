@@ -12,19 +12,20 @@ is image i's contribution to the change between a candidate and a baseline
 (``change_contributions``): a negative c_i is an image without which the change would
 be smaller (less of a loss), an image "responsible" for a drop. The numbers are those
 ``scoring.headline`` gives for the same weights, bit for bit: every variant is read
-with the engine's own ``curves.interpolated_precision`` / ``all_point_average_precision``
+with the engine's own ``average_precision.interpolated_precision`` / ``all_point_average_precision``
 and averaged in the same array layout. Only images holding detections or boxes of the
 class are recomputed, a batch of images at a time, each as one more "class" column. A
 class holding a score beyond float64's range (``MatchRecords.det_overflow``) takes
-that column path under every protocol, so ``curves.fill_stops`` applies to each
+that column path under every protocol, so ``average_precision.fill_stops`` applies to each
 variant (``loo_fast`` does not model it).
 """
 
 import numpy as np
 
 from . import loo_fast
+from .average_precision import all_point_average_precision, interpolated_precision
 from .confusion import _thresholds, found_boxes, kept
-from .curves import TruePositivePoints, all_point_average_precision, interpolated_precision
+from .curves import TruePositivePoints
 from .protocols import get_protocol
 from .reasons import DETECTION_REASONS, IGNORED
 from .scoring import _area_scores, check_weights, headline
@@ -68,7 +69,7 @@ def _class_sequence(records, k, slot, weights, area=0):
 
 def _class_stops(records, k, slot, weights, area=0):
     """Where class k holds a score beyond float64's range (``MatchRecords.det_overflow``),
-    what ``curves.fill_stops`` reads of its variants: per counted detection of
+    what ``average_precision.fill_stops`` reads of its variants: per counted detection of
     ``_class_sequence`` its flag, and the images and flags of every accumulated
     detection (ignored ones too: pycocotools' recall 0 reads the first of them);
     else None."""
@@ -180,7 +181,7 @@ def leave_one_out(records, protocol, class_index, weights=None, *, area=0, slot=
         touched[image] = True
     affected = np.flatnonzero(touched)
     # loo_fast does not stop the fill at scores beyond float64's range: such a class
-    # takes the variants' points (``_variant_points``) through curves.fill_stops
+    # takes the variants' points (``_variant_points``) through average_precision.fill_stops
     fast = all(s is None for s in stops)
     if protocol.recall_points is not None and len(affected) and fast:
         # One more variant, an image id past the split's, leaves nothing out: the base.

@@ -90,7 +90,7 @@ class MatchRecords:
     det_key: np.ndarray | None = None
     #: Per detection, whether its score is an integer beyond float64's range
     #: (``Predictions.overflowing``; shown as infinite): pycocotools 2.0.11's precision
-    #: fill stops at the first recall point landing on it (``curves.fill_stops``).
+    #: fill stops at the first recall point landing on it (``average_precision.fill_stops``).
     #: Kept under the COCO order only; None when the file holds no such score.
     det_overflow: np.ndarray | None = None
     _sparse: dict = field(default_factory=dict, repr=False)

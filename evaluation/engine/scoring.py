@@ -2,14 +2,8 @@
 
 import numpy as np
 
-from .curves import (
-    all_point_average_precision,
-    cumulative_counts,
-    interpolated_precision,
-    recall_score,
-    true_positive_points,
-    true_positive_totals,
-)
+from .average_precision import all_point_average_precision, interpolated_precision, recall_score
+from .curves import cumulative_counts, true_positive_points, true_positive_totals
 from .errors import InputError
 from .operating_point import (
     best_f1,

@@ -38,7 +38,8 @@ AP 0 there and here.
 
 import numpy as np
 
-from .curves import TruePositivePoints, all_point_average_precision, interpolated_precision
+from .average_precision import all_point_average_precision, interpolated_precision
+from .curves import TruePositivePoints
 from .protocols import get_protocol
 from .reasons import BKG, BOTH, CLS, DUP, IGNORED, LOC, MISSED, MISSED_CLS, MISSED_LOC, TP
 from .scoring import mean_present

@@ -1,5 +1,5 @@
 """Integer scores beyond float64's range (2**1024 written out in digits) scored as
-pycocotools 2.0.11 scores them (``loaders.beyond_float64``, ``curves.fill_stops``).
+pycocotools 2.0.11 scores them (``loaders.beyond_float64``, ``average_precision.fill_stops``).
 
 pycocotools keeps such a score as a Python ``int`` (ranked exactly, in object arrays);
 its ``accumulate`` then writes ``ss[ri] = dtScoresSorted[pi]`` into a float64 array
