@@ -7,7 +7,7 @@ digest), ``dispatch`` makes one ``EvaluationClassGroup`` row per group of consec
 classes and sends a chord: ``tasks.score_class_group`` per group without records, then
 ``tasks.finish_class_groups``. A group task reads only its members of every shard's
 records (checked against their digests), merges them, scores its classes
-(``scoring.class_parts``, ``tide.class_parts``) and stores one file under the claim. The
+(``scorecard.class_parts``, ``tide.class_parts``) and stores one file under the claim. The
 callback joins the groups' parts in class order and takes every mean once — the arrays
 of one whole run, so the same numbers bit for bit — writes the evaluation's records file
 a column of a group at a time, and stores everything through ``scoring._store`` (the

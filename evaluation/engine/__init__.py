@@ -34,7 +34,8 @@ from .pedestrian import MISS_RATE_PRESETS, evaluate_setups, setup_counts
 from .protocols import PRESETS, Protocol, get_protocol, protocol_from_dict
 from .provenance import annotate, differences, protocol_record
 from .records import MatchRecords
-from .scoring import COCO_SUMMARY_KEYS, headline, score_records, slice_scores
+from .scorecard import COCO_SUMMARY_KEYS, score_records
+from .scoring import headline, slice_scores
 from .version import ENGINE_VERSION
 
 __all__ = [

@@ -9,11 +9,11 @@ each group with its own digest), and each group is then, on any worker:
 
 1. read from every shard (``load_group_part``: only that group's members) and merged
    (``merge_group``: ``shards.merge`` of the group, classes and boxes numbered locally);
-2. scored per class (``scoring.class_parts``, ``tide.class_parts``): arrays with the
+2. scored per class (``scorecard.class_parts``, ``tide.class_parts``): arrays with the
    class axis last and per-class rows, nothing averaged;
 3. saved (``save_group``) with its records, so that the final step
 4. joins the groups' parts in class order and takes every mean over classes, slots
-   and recall points once (``scoring.assemble``, ``tide.assemble``) — the same arrays,
+   and recall points once (``scorecard.assemble``, ``tide.assemble``) — the same arrays,
    in the same layout, that one whole run builds, so the numbers are bit for bit its
    own — and writes the evaluation's records file column by column
    (``records_from_groups.write_records``), holding one group's column at a time.
@@ -32,7 +32,7 @@ import zipfile
 
 import numpy as np
 
-from . import scoring, tide
+from . import scorecard, tide
 from .records import MatchRecords
 from .shards import _BOX_RECORD_FIELDS, _DET_FIELDS, merged_with_order, take_referenced
 
@@ -210,7 +210,7 @@ def merge_group(parts, meta, lo, hi):
 def group_parts(group, protocol, *, tag_masks=None, score_threshold=0.5):
     """``{"scoring": …, "tide": …}``: the per-class parts of one merged group."""
     return {
-        "scoring": scoring.class_parts(
+        "scoring": scorecard.class_parts(
             group.records, protocol, tag_masks=tag_masks, score_threshold=score_threshold
         ),
         "tide": tide.class_parts(group.records, protocol, group.det_fixable, group.moved),
@@ -266,7 +266,7 @@ def load_group_parts(path):
 
 def assemble(group_parts_in_order, protocol, *, score_threshold=0.5):
     """``(scorecard, TIDE breakdown)`` from every group's parts, in class order."""
-    result = scoring.assemble(
+    result = scorecard.assemble(
         [p["scoring"] for p in group_parts_in_order], protocol, score_threshold=score_threshold
     )
     return result, tide.assemble([p["tide"] for p in group_parts_in_order])

@@ -3,7 +3,7 @@
 from .matching import match
 from .protocols import get_protocol
 from .provenance import annotate, counts
-from .scoring import score_records
+from .scorecard import score_records
 
 
 def evaluate(

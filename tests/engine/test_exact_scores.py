@@ -37,7 +37,7 @@ from evaluation.engine import (
 from evaluation.engine.loaders import results_stream
 from evaluation.engine.pieces import stream_pieces
 from evaluation.engine.protocols import protocol_from_dict
-from evaluation.engine.scoring import score_records
+from evaluation.engine.scorecard import score_records
 
 from .conftest import as_reference, pycocotools_eval
 

@@ -15,7 +15,8 @@ from evaluation.engine.per_image import (
     leave_one_out,
     leave_one_out_metrics,
 )
-from evaluation.engine.scoring import headline, score_records
+from evaluation.engine.scorecard import score_records
+from evaluation.engine.scoring import headline
 
 from .synthetic import make_detections, make_split
 
