@@ -20,8 +20,8 @@ raises OverflowError (``float()`` rounds it to 2**1024). Where that conversion h
   of every recall point after the first one landing on such a score stays 0 (one
   matching detection of score 2**1024: AP 1/101). Since engine 2.16.0 the engine
   models that cut: ``overflowing`` gives the detections holding such a score
-  (``Predictions.overflowing``), and ``curves.interpolated_precision`` stops its
-  fill there (``curves.fill_stops``).
+  (``Predictions.overflowing``), and ``average_precision.interpolated_precision`` stops its
+  fill there (``average_precision.fill_stops``).
   Comparisons (``area`` against the size ranges, the score argsorts) are exact in
   Python and raise nothing: an area beyond float64 is scored as infinite.
 
@@ -61,7 +61,7 @@ def overflows(value):
 def overflowing(rows, big):
     """``{"position": [...]}``: the loaded detections (``rows``' positions, ascending)
     whose score is an integer beyond float64's range, or None where none is. Whatever
-    the cap or class: ``curves.fill_stops`` reads only those pycocotools accumulates."""
+    the cap or class: ``average_precision.fill_stops`` reads only those pycocotools accumulates."""
     found = [
         int(p)
         for r, p in zip(rows["record"].tolist(), rows["position"].tolist())

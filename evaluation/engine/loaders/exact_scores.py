@@ -30,7 +30,7 @@ step; the shown scores and every threshold keep the float64 value. A protocol wi
 another cap cannot use it and raises the entry's refusal, naming the record. Where the
 orders agree no order is kept. Integers beyond float64's range, which its ``accumulate``
 cannot write into its float64 score array, stop its precision fill there
-(``beyond_float64``): their detections are listed for ``curves.fill_stops``.
+(``beyond_float64``): their detections are listed for ``average_precision.fill_stops``.
 
 The CityPersons script (``eval_MR_multisetup.py``, preset ``miss-rate-cityscale``) is a
 pycocotools derivative that reads JSON with Python's ``json`` and makes the same numpy
@@ -125,7 +125,7 @@ def check(path, truth, classes, wide, boxes=False):
         key = "none" if cap is None else str(cap)
         conflicts[key] = {**conflicts[key], beyond_float64.OVERFLOW: refusal}
     overflowing = beyond_float64.overflowing(rows, big)
-    if overflowing:  # where pycocotools' precision fill stops (``curves.fill_stops``)
+    if overflowing:  # where pycocotools' precision fill stops (``average_precision.fill_stops``)
         conflicts[beyond_float64.OVERFLOWING] = overflowing
     return conflicts
 
