@@ -53,8 +53,11 @@ def interpolated_precision(points, recall_points, *, epsilon=0.0, slots=None):
     .. math:: p_{\mathrm{interp}}(r) = \max_{i : R_i \ge r} P_i, \quad
               P_i = \frac{TP_i}{TP_i + FP_i + \varepsilon}, \quad R_i = \frac{TP_i}{n_{pos}}
 
-    0 when no point reaches r; NaN for a class without positives (absent); ``slots``
-    restricts the output to those IoU slots. With
+    0 when no point reaches r; NaN for a class without positives (absent), and, with
+    ``epsilon`` 0 and a recall point <= 0, for a class whose detections are all
+    ignored (``curves.TruePositivePoints.uncounted``: P is 0/0 at each, and the VOC
+    2007 devkit's ``max`` of NaN alone is NaN); ``slots`` restricts the output to those
+    IoU slots. With
     ``epsilon`` = float64 machine epsilon and the 101 points of ``linspace(0, 1, 101)``
     this is pycocotools' ``precision`` array; the 11 points of
     ``protocols.VOC07_RECALL_POINTS`` give VOC 2007 (Everingham et al., IJCV 2010),
@@ -91,6 +94,10 @@ def interpolated_precision(points, recall_points, *, epsilon=0.0, slots=None):
         reached &= ~fill_stops(points, recall_points, first, runs, reached)
     out = np.where(reached, env, 0.0).transpose(0, 2, 1).copy()
     out[:, :, ~present] = np.nan
+    if epsilon == 0 and points.uncounted is not None and (recall_points <= 0).any():
+        # TP / (FP + TP) is 0/0 at each of the class's detections, and the VOC 2007
+        # devkit's p = max(prec(rec >= 0)) of NaN alone is NaN: the class is undefined
+        out = np.where(points.uncounted[slots][:, None, :] & present, np.nan, out)
     return out
 
 

@@ -79,6 +79,9 @@ class TruePositivePoints:
     #: accumulates does (read at recall 0).
     stop: np.ndarray | None = None
     head_stop: np.ndarray | None = None
+    #: Per slot and class, whether the class has detections (of weight > 0) none of
+    #: which counts, all ignored (``uncounted``); None: not computed.
+    uncounted: np.ndarray | None = None
 
     @property
     def n_slots(self):
@@ -194,7 +197,24 @@ def true_positive_points(records, *, area=0, max_detections=None, weights=None):
         totals=totals.reshape(n_slots, n_classes).astype(np.float64),
         stop=stop,
         head_stop=head_stop,
+        uncounted=uncounted(records, sparse, w),
     )
+
+
+def uncounted(records, sparse, w):
+    """Per slot and class (shape (slots, classes)), whether the class has detections of
+    weight ``w`` > 0 and every one of them is ignored (a difficult, crowd or
+    out-of-range box): TP and FP stay 0 along its whole run."""
+    present = (w > 0).astype(np.int64)
+    n_classes = len(records.classes)
+    bounds = records.class_bounds()
+    slot = np.repeat(np.arange(records.n_slots), n_classes)
+    counter = _Counter(records, sparse, present)
+    counted = counter.upto(slot, np.tile(bounds[1:] - 1, records.n_slots)) - counter.upto(
+        slot, np.tile(bounds[:-1] - 1, records.n_slots)
+    )
+    has = np.bincount(records.det_class, weights=present, minlength=n_classes) > 0
+    return (counted.reshape(records.n_slots, n_classes) == 0) & has[None, :]
 
 
 def _run_bounds(records, slot, det):

@@ -67,6 +67,43 @@ def _class_sequence(records, k, slot, weights, area=0):
     return image[counted], is_tp[s:e][counted]
 
 
+def _undefined(records, protocol, k, weights, area, slots, variants):
+    """Per variant (an image left out; ``records.n_images``: none), whether class k's
+    AP is undefined there (``average_precision.interpolated_precision``'s rule: no epsilon, a
+    recall point at 0, positives, detections, none counted in one of ``slots``), or
+    None where the protocol has no such rule."""
+    points = protocol.recall_points
+    if points is None or protocol.precision_epsilon != 0 or min(points) > 0:
+        return None
+    s, e = records.class_bounds()[k : k + 2]
+    image = records.det_image[s:e].astype(np.int64)
+    n = records.n_images + 1
+
+    def left(selected):  # per variant: how many remain once its image is left out
+        per_image = np.bincount(selected, minlength=n)
+        return len(selected) - per_image[variants]
+
+    boxes = (~records.gt_ignored[area]) & (records.gt_class == k) & (weights[records.gt_image] > 0)
+    defined = (left(records.gt_image[boxes].astype(np.int64)) == 0) | (
+        left(image[weights[image] > 0]) == 0
+    )
+    out = np.zeros(len(variants), bool)
+    for t in slots:
+        out |= left(_class_sequence(records, k, t, weights, area)[0]) == 0
+    return out & ~defined
+
+
+def _touching(records, protocol, k, weights, touched):
+    """``touched`` with, under a protocol with the undefined-class rule (``_undefined``),
+    every image holding a detection of class k (leaving it out may define the class)."""
+    points = protocol.recall_points
+    if points is not None and protocol.precision_epsilon == 0 and min(points) <= 0:
+        s, e = records.class_bounds()[k : k + 2]
+        image = records.det_image[s:e].astype(np.int64)
+        touched[image[weights[image] > 0]] = True
+    return touched
+
+
 def _class_stops(records, k, slot, weights, area=0):
     """Where class k holds a score beyond float64's range (``MatchRecords.det_overflow``),
     what ``average_precision.fill_stops`` reads of its variants: per counted detection of
@@ -179,7 +216,7 @@ def leave_one_out(records, protocol, class_index, weights=None, *, area=0, slot=
     touched[box_count > 0] = True
     for image, _ in sequences:
         touched[image] = True
-    affected = np.flatnonzero(touched)
+    affected = np.flatnonzero(_touching(records, protocol, k, w, touched))
     # loo_fast does not stop the fill at scores beyond float64's range: such a class
     # takes the variants' points (``_variant_points``) through average_precision.fill_stops
     fast = all(s is None for s in stops)
@@ -195,6 +232,11 @@ def leave_one_out(records, protocol, class_index, weights=None, *, area=0, slot=
             np.r_[affected, records.n_images],
             row="slot" if slot is not None else "area" if area else None,
         )
+        undefined = _undefined(
+            records, protocol, k, w, area, slots, np.r_[affected, records.n_images]
+        )
+        if undefined is not None:
+            ap = np.where(undefined, np.nan, ap)
         without = np.full(records.n_images, ap[-1])
         without[affected] = ap[:-1]
         return float(ap[-1]), without
@@ -216,8 +258,9 @@ def leave_one_out(records, protocol, class_index, weights=None, *, area=0, slot=
             _variant_points(image, tp, n_pos, padded, box_count, stop)
             for (image, tp), stop in zip(sequences, stops)
         ]
-        ap = _class_ap(per_slot, protocol)
-        without[left_out] = ap[: len(left_out)]
+        ap = _class_ap(per_slot, protocol)[: len(left_out)]
+        undefined = _undefined(records, protocol, k, w, area, slots, left_out)
+        without[left_out] = ap if undefined is None else np.where(undefined, np.nan, ap)
     return float(base), without
 
 
@@ -243,7 +286,7 @@ def leave_one_out_metrics(records, protocol, class_index, weights=None, *, area=
     touched = box_count > 0
     for image, _ in sequences:
         touched[image] = True
-    affected = np.flatnonzero(touched)
+    affected = np.flatnonzero(_touching(records, protocol, k, w, touched))
     beyond = any(_class_stops(records, k, t, w, area) is not None for t in range(records.n_slots))
     if protocol.recall_points is None or not len(affected) or np.any(w > 1) or beyond:
         return {m: leave_one_out(records, protocol, k, weights, area=area, slot=m) for m in metrics}
@@ -258,6 +301,10 @@ def leave_one_out_metrics(records, protocol, class_index, weights=None, *, area=
             ap = _reduce(precision, "area" if area else None, one_class)
         else:
             ap = _reduce(precision[m : m + 1], "slot", one_class)
+        slots_m = range(records.n_slots) if m is None else [m]
+        undefined = _undefined(records, protocol, k, w, area, slots_m, variants)
+        if undefined is not None:
+            ap = np.where(undefined, np.nan, ap)
         without = np.full(records.n_images, ap[-1])
         without[affected] = ap[:-1]
         out[m] = (float(ap[-1]), without)

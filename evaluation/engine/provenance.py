@@ -57,6 +57,7 @@ def protocol_record(protocol, truth, predictions, records, result):
     absent = {}
     flags = "crowd, difficult or ignore" if protocol.difficult_ignored else "crowd or ignore"
     lost = set(truth.unique_lost_classes.tolist()) if protocol.tie_order == "image" else ()
+    undefined = _undefined_classes(protocol, truth.classes, result)
     for k, name in enumerate(truth.classes):
         if k in lost:
             absent[name] = "its id is one pycocotools' np.unique changes: left out, as there"
@@ -65,6 +66,13 @@ def protocol_record(protocol, truth, predictions, records, result):
                 "no ground-truth box"
                 if n_boxes[k] == 0
                 else f"all {int(n_boxes[k])} ground-truth boxes are ignored ({flags} flags)"
+            )
+        elif undefined[k]:
+            absent[name] = (
+                "every detection of the class is ignored (matched to a difficult, crowd or "
+                "ignored box): precision TP / (TP + FP) is 0/0 throughout, so its AP is "
+                "undefined (the VOC 2007 devkit's 11-point loop gives NaN); left out of "
+                "the mean, which in the devkit would be NaN"
             )
     area_given = truth.box_counts.get("area_from_file")
     return {
@@ -107,6 +115,17 @@ def protocol_record(protocol, truth, predictions, records, result):
         "averaged_classes": [c for c in truth.classes if c not in absent],
         "absent_classes": absent,
     }
+
+
+def _undefined_classes(protocol, classes, result):
+    """Per class, whether its AP is undefined (``average_precision.interpolated_precision``: no
+    epsilon, a recall point at 0, every detection ignored): read from ``result``,
+    where such a class with positives has no AP."""
+    points = protocol.recall_points
+    if points is None or protocol.precision_epsilon != 0 or min(points) > 0:
+        return np.zeros(len(classes), bool)
+    rows = result.get("per_class", {})
+    return np.array([rows.get(c, {}).get("AP", 0) is None for c in classes], bool)
 
 
 def _prediction_area(predictions):

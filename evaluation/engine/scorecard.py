@@ -4,6 +4,8 @@
 the parts of each group of classes on its own worker (``class_groups``).
 """
 
+from dataclasses import replace
+
 import numpy as np
 
 from .average_precision import interpolated_precision
@@ -82,8 +84,8 @@ def _recall_at_caps(records, protocol, weights):
 def _class_rows(records, protocol, curves, points, score_threshold, n_images, weights):
     """Per class, everything of its scorecard row that is not a mean over slots or
     recall points (those are taken in ``assemble`` from the assembled arrays)."""
-    chart = interpolated_precision(
-        points, CURVE_POINTS, epsilon=protocol.precision_epsilon, slots=[0]
+    chart = interpolated_precision(  # a chart: no undefined class (``uncounted``)
+        replace(points, uncounted=None), CURVE_POINTS, epsilon=protocol.precision_epsilon, slots=[0]
     )[0]
     every = every_point_counts(
         records, max_detections=protocol.max_detections_limit, weights=weights

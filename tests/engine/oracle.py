@@ -147,7 +147,8 @@ def voc_ap(truth, predictions, *, eleven_point, min_overlap=0.5, outcomes=None):
     largest overlap among all of its image's boxes of the class (``ov > ovmax``: the
     first maximum); ``ovmax >= minoverlap`` -> difficult: neither, free: TP, taken:
     FP; else FP. Inclusive pixel boxes (+1). 11-point: ``for t=0:0.1:1``,
-    ``p=max(prec(rec>=t))`` (0 if empty), ``ap=ap+p/11``.
+    ``p=max(prec(rec>=t))`` (0 if empty; NaN where every selected prec is 0/0: the
+    class is then NaN, which the engine reports absent), ``ap=ap+p/11``.
 
     The devkit knows no crowd regions; like the engine, treat them (and boxes flagged
     ``ignore``) as difficult. Boxes here are [x, y, w, h] with x_max = x + w.
@@ -224,9 +225,18 @@ def _voc_ap(truth, predictions, eleven_point, min_overlap, outcomes):
         if eleven_point:
             ap = 0.0
             for t in matlab_colon(0, 0.1, 1):
+                # p=max(prec(rec>=t)); if isempty(p), p=0; end: MATLAB's max omits NaN
+                # unless every element is NaN, then it is NaN (MathWorks documentation
+                # of max; from memory), so a class whose detections are all ignored
+                # (tp = fp = 0: prec all 0/0) gets ap NaN; leading NaNs before the
+                # first counted detection are omitted
                 sel = prec[rec >= t]
-                sel = sel[~np.isnan(sel)]  # MATLAB's max ignores NaN
-                p = sel.max() if len(sel) else 0.0
+                if not len(sel):
+                    p = 0.0
+                elif np.isnan(sel).all():
+                    p = np.nan
+                else:
+                    p = np.nanmax(sel)
                 ap = ap + p / 11
         else:
             mrec = np.r_[0.0, rec, 1.0]

@@ -5,6 +5,8 @@ splits with difficult boxes, crowds, float and integer boxes, boxes of negative 
 or height (every third seed), and scores tied across images in an order that is not
 image order (the files are shuffled)."""
 
+import json
+
 import numpy as np
 import pytest
 
@@ -228,3 +230,83 @@ def test_file_order_ties_are_exercised(files):
         b = _per_class_ap(evaluate(truth, predictions, image_order), truth.classes)
         moved += int(np.nansum(np.abs(a - b)) > 1e-9)
     assert moved >= 2
+
+
+def _every_detection_on_a_difficult_box():
+    """Class car: two counted boxes and a difficult one; its only detections (file
+    order) land on the difficult box. Class van: one detection on a difficult box,
+    then a true positive (prec = [NaN, 1]: the leading NaN omitted)."""
+    box, other = [10, 10, 20, 20], [60, 60, 20, 20]
+    split = {
+        "images": [{"id": 1, "width": 100, "height": 100}],
+        "categories": [{"id": 1, "name": "car"}, {"id": 2, "name": "van"}],
+        "annotations": [
+            {"id": 1, "image_id": 1, "category_id": 1, "bbox": box, "difficult": 1},
+            {"id": 2, "image_id": 1, "category_id": 1, "bbox": other},
+            {"id": 3, "image_id": 1, "category_id": 1, "bbox": [40, 0, 10, 10]},
+            {"id": 4, "image_id": 1, "category_id": 2, "bbox": box, "difficult": 1},
+            {"id": 5, "image_id": 1, "category_id": 2, "bbox": other},
+        ],
+    }
+    for ann in split["annotations"]:
+        ann.update(area=400, iscrowd=0)
+    detections = [
+        {"image_id": 1, "category_id": 1, "bbox": box, "score": 0.9},
+        {"image_id": 1, "category_id": 1, "bbox": [11, 10, 20, 20], "score": 0.8},
+        {"image_id": 1, "category_id": 2, "bbox": box, "score": 0.9},
+        {"image_id": 1, "category_id": 2, "bbox": other, "score": 0.5},
+    ]
+    return split, detections
+
+
+def test_a_class_whose_every_detection_is_ignored_is_undefined_under_voc07(files):
+    """VOC 2007 devkit (``VOCevaldet.m``'s 11-point loop, the transliteration
+    ``oracle.voc_ap``): tp = fp = 0 makes prec all 0/0 = NaN and MATLAB's max of NaN
+    alone NaN, so car's AP is NaN there: here absent (None) with the reason in the
+    record, the mean over van alone, no NaN in the JSON. A leading NaN before a
+    counted detection is omitted (van: 1.0). ``voc`` (``VOCap.m``: the envelope's max
+    omits NaN) and ``recall40`` (no recall point 0) give car 0."""
+    from evaluation.engine.matching import match
+    from evaluation.engine.provenance import protocol_record
+
+    truth, predictions = files.load(*_every_detection_on_a_difficult_box())
+    expected = oracle.voc_ap(truth, predictions, eleven_point=True)
+    assert np.isnan(expected[0]) and expected[1] == pytest.approx(1.0)  # 11 x (1/11)
+    result = evaluate(truth, predictions, "voc07")
+    np.testing.assert_allclose(_per_class_ap(result, truth.classes), expected, rtol=0, atol=1e-12)
+    assert (
+        result["summary"]["AP"] == result["per_class"]["van"]["AP"]
+        and result["per_class"]["car"]["recall"] == 0.0
+    )
+    json.dumps(result, allow_nan=False)
+    record = protocol_record(
+        "voc07", truth, predictions, match(truth, predictions, "voc07"), result
+    )
+    assert record["averaged_classes"] == ["van"]
+    assert "every detection of the class is ignored" in record["absent_classes"]["car"]
+    voc = oracle.voc_ap(truth, predictions, eleven_point=False)
+    assert voc[0] == 0.0
+    np.testing.assert_allclose(
+        _per_class_ap(evaluate(truth, predictions, "voc"), truth.classes), voc
+    )
+    assert evaluate(truth, predictions, "recall40")["per_class"]["car"]["AP"] == 0.0
+
+
+@pytest.mark.parametrize("seed", range(8))
+def test_voc07_follows_the_devkit_where_classes_are_mostly_difficult(files, seed):
+    """Small random files, most boxes difficult, few detections: some classes' every
+    detection is ignored (NaN in the devkit transliteration ``oracle.voc_ap``, None
+    here; 4 such classes over the 8 seeds) and some begin with ignored ones (a
+    leading NaN, omitted)."""
+    rng = np.random.default_rng(700 + seed)
+    split = make_split(rng, n_images=4, n_classes=5, boxes_per_image=3, width=200, height=150)
+    for ann in split["annotations"]:
+        ann["difficult"] = int(rng.random() < 0.6)
+    detections = make_detections(
+        rng, split, hit_rate=0.5, false_per_image=0.2, duplicate_rate=0.3, score_levels=3
+    )
+    truth, predictions = files.load(split, detections)
+    result = evaluate(truth, predictions, "voc07")
+    json.dumps(result, allow_nan=False)
+    expected = oracle.voc_ap(truth, predictions, eleven_point=True)
+    np.testing.assert_allclose(_per_class_ap(result, truth.classes), expected, rtol=0, atol=1e-12)

@@ -243,3 +243,35 @@ def test_every_metric_in_one_pass_against_rescoring(tmp_path):
             w[i] = 0
             expected = _rescored(records, "coco", w, name, "AP50")
             assert _same(without[i], expected), (k, i)
+
+
+@pytest.mark.parametrize("seed", range(6))
+def test_leave_one_out_where_a_class_is_undefined_under_voc07(tmp_path, seed):
+    """Most boxes difficult, few detections: a class whose every detection is ignored
+    has no voc07 AP (NaN: the VOC 2007 devkit's max of 0/0 alone, ``test_oracle.py``),
+    and leaving out the image holding them makes it 0. Leave-one-out (one pass, per
+    metric) equals re-scoring with the image's weight 0."""
+    rng = np.random.default_rng(700 + seed)
+    split = make_split(rng, n_images=4, n_classes=5, boxes_per_image=3, width=200, height=150)
+    for ann in split["annotations"]:
+        ann["difficult"] = int(rng.random() < 0.6)
+    detections = make_detections(
+        rng, split, hit_rate=0.5, false_per_image=0.2, duplicate_rate=0.3, score_levels=3
+    )
+    (tmp_path / "gt.json").write_text(json.dumps(split))
+    (tmp_path / "dt.json").write_text(json.dumps(detections))
+    truth = load_truth(tmp_path / "gt.json")
+    records = match(truth, load_predictions(tmp_path / "dt.json", truth), "voc07")
+    for k in range(len(records.classes)):
+        expected = []
+        for i in range(records.n_images):
+            w = np.ones(records.n_images, np.int64)
+            w[i] = 0
+            expected.append(headline(records, "voc07", weights=w)[1][k])
+        base = headline(records, "voc07")[1][k]
+        found = [
+            leave_one_out(records, "voc07", k),
+            leave_one_out_metrics(records, "voc07", k)[None],
+        ]
+        for ap, without in found:
+            assert _same(ap, base) and _same(without, np.array(expected)), k
