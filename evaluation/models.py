@@ -55,10 +55,13 @@ class BenchmarkSplit(models.Model):
     )
     hash_scheme = models.CharField(
         max_length=8,
-        default="typed",
-        help_text="How its content hash (sha256) was taken: typed (image and class ids "
-        'that are not numbers hash with their kind, so ids 1 and "1" hash apart) or '
-        "untyped (ids by their text only: splits frozen before keep that hash).",
+        default="named",
+        help_text="How its content hash (sha256) was taken: named (as typed, and "
+        "categories sharing a name hash their own names, so two categories named car "
+        "and a file naming them 'car (id 1)', 'car (id 2)' hash apart), typed (image and "
+        'class ids that are not numbers hash with their kind, so ids 1 and "1" hash '
+        "apart: splits frozen before own names were hashed keep that hash) or untyped "
+        "(ids by their text only: splits frozen before keep that hash).",
     )
     annotations_left_out = models.JSONField(
         default=dict,

@@ -1,13 +1,20 @@
 """A frozen split's identity: its content hash, and the twin check of an upload.
 
 ``BenchmarkSplit.sha256`` is the split's content hash under its ``hash_scheme``
-(``engine.GroundTruth.content_hash``): ``typed`` for splits frozen since id kinds
-entered the hash (``services.HASH_SCHEME``), ``untyped`` for splits frozen before
-(migration 0024), whose hash is never rewritten. Numeric ids hash alike under both.
+(``engine.GroundTruth.content_hash``, ``engine.HASH_SCHEMES``): ``named`` for splits
+frozen since the categories' own names entered the hash (``services.HASH_SCHEME``,
+migration 0025), ``typed`` for splits frozen since id kinds did, ``untyped`` for splits
+frozen before (migration 0024); a hash is never rewritten. Each scheme hashes a split as
+the older ones do unless it holds what the newer one tells apart (ids that are not
+numbers; categories sharing a name).
 """
 
 from . import engine
+from .engine.content_hash import HASH_SCHEMES
 from .models import BenchmarkSplit
+
+#: What each scheme after ``untyped`` added, for a refusal naming a split frozen before.
+_ADDED = {"typed": "id types", "named": "categories' own names"}
 
 
 def split_hash(split, truth):
@@ -21,51 +28,69 @@ def twin_refusal(loaded, sha, scheme, read):
     split holds its content, or its fingerprint; None if neither. ``read(split)``: a
     stored split's ground truth as frozen.
 
-    A split frozen under the ``untyped`` scheme hashed its ids by their text, so its
-    sha256 is the ``untyped`` hash of this content when it holds the same ids, of
-    either kind: it is this content's twin only if its ids are of the same kinds (read
-    from its files, checked against its hash). One whose ids are of another kind is
-    other content (other detections match it); if its fingerprint still equals this
-    content's (this one's ids are numbers: their typed hash is the untyped one), this
-    content cannot be frozen under that fingerprint, which names the split on every
-    result and must be unique."""
+    A split frozen under an older scheme (``typed``, ``untyped``) has as sha256 that
+    scheme's hash of this content when it holds this content or content that scheme
+    does not tell apart from it (ids of another kind, categories named otherwise): it
+    is read (checked against its hash) and is this content's twin only if its hash
+    under ``scheme`` is ``sha``. One that is other content but whose fingerprint still
+    equals ``sha`` (this content holds nothing the newer scheme adds: its hash is the
+    older one) keeps this content from being frozen under that fingerprint, which names
+    the split on every result and must be unique."""
     twin = BenchmarkSplit.objects.filter(sha256=sha).first()
     if twin is not None:
-        kinds = None if twin.hash_scheme == scheme else _kinds(twin, read)
-        if twin.hash_scheme == scheme or kinds == loaded.id_kinds():
+        if twin.hash_scheme == scheme:
             return f"the same content is already frozen as {twin}"
-        if kinds is None:
+        theirs = _as_frozen(twin, read)
+        if theirs is None:
             return _unreadable(twin)
-        shown = ", ".join(f"{family} ids {kind}" for family, kind in sorted(kinds.items()))
-        return (
-            f"its content hash is that of {twin}, frozen before id types entered the hash, "
-            f"whose ids are of another type ({shown}): the hash would not tell the two "
-            "splits apart"
-        )
-    untyped = loaded.content_hash("untyped")
-    if untyped == sha:
-        return None
-    for twin in BenchmarkSplit.objects.filter(sha256=untyped, hash_scheme="untyped"):
-        kinds = _kinds(twin, read)
-        if kinds is None:
-            return _unreadable(twin)
-        if kinds == loaded.id_kinds():
+        if theirs.content_hash(scheme) == sha:
             return f"the same content is already frozen as {twin}"
+        return _fingerprint_taken(twin, theirs, loaded)
+    for older in HASH_SCHEMES[HASH_SCHEMES.index(scheme) + 1 :]:
+        theirs_sha = loaded.content_hash(older)
+        if theirs_sha == sha:  # such a row would have been found above
+            continue
+        for twin in BenchmarkSplit.objects.filter(sha256=theirs_sha, hash_scheme=older):
+            theirs = _as_frozen(twin, read)
+            if theirs is None:
+                return _unreadable(twin)
+            if theirs.content_hash(scheme) == sha:
+                return f"the same content is already frozen as {twin}"
     return None
 
 
-def _kinds(split, read):
-    """The id kinds of a frozen split's content (``GroundTruth.id_kinds``), or None
-    where its files cannot be read or no longer hold the content it was frozen with."""
+def _fingerprint_taken(twin, theirs, loaded):
+    """The refusal of content whose fingerprint a frozen split of other content holds
+    (frozen under an older scheme, which did not tell the two apart): what differs."""
+    differs = []
+    kinds = theirs.id_kinds()
+    if kinds != loaded.id_kinds():
+        shown = ", ".join(f"{family} ids {kind}" for family, kind in sorted(kinds.items()))
+        differs.append(("typed", f"whose ids are of another type ({shown})"))
+    if theirs.category_names != loaded.category_names:
+        names = ", ".join(repr(name) for name in theirs.category_names)
+        differs.append(("named", f"whose categories are named otherwise ({names})"))
+    if not differs:  # another difference an older scheme missed: none known
+        differs.append(("named", "which holds other content"))
+    return (
+        f"its content hash is that of {twin}, frozen before {_ADDED[differs[0][0]]} "
+        f"entered the hash, {'; '.join(what for _, what in differs)}: the hash would not "
+        "tell the two splits apart"
+    )
+
+
+def _as_frozen(split, read):
+    """A frozen split's ground truth as read from its files, or None where they cannot
+    be read or no longer hold the content it was frozen with."""
     try:
         truth = read(split)
     except (OSError, ValueError, engine.InputError):
         return None
-    return truth.id_kinds() if split_hash(split, truth) == split.sha256 else None
+    return truth if split_hash(split, truth) == split.sha256 else None
 
 
 def _unreadable(split):
     return (
         f"its content may already be frozen as {split}, whose files cannot be read to "
-        "compare their id types"
+        "compare their content"
     )

@@ -12,11 +12,14 @@ import numpy as np
 
 from .data import ATTRIBUTES
 
-#: How ``GroundTruth.content_hash`` treats id types: ``typed`` (engine 2.15.0 on) hashes
-#: the kind of a text id family, so ids that match different predictions hash apart;
-#: ``untyped`` is the hash before (ids by their text only), kept to verify splits frozen
-#: under it. Numeric ids hash alike under both.
-HASH_SCHEMES = ("typed", "untyped")
+#: How ``GroundTruth.content_hash`` is taken, newest first: ``named`` (engine 2.17.5 on)
+#: adds the categories' own names where one is shown otherwise (shared names shown as
+#: ``car (id 1)``), so a file naming its categories so literally hashes apart; ``typed``
+#: (engine 2.15.0 on) hashes the kind of a text id family, so ids that match different
+#: predictions hash apart; ``untyped`` is the hash before (ids by their text only). The
+#: older two are kept to verify splits frozen under them. Each hashes a split as the
+#: one after it does unless the split holds what the newer one adds.
+HASH_SCHEMES = ("named", "typed", "untyped")
 #: Id kinds (``id_kind``) a ``typed`` hash leaves out: so numeric splits keep their hash.
 NUMERIC_ID_KINDS = ("int", "number")
 
@@ -37,7 +40,7 @@ def _canonical_nan(values):
     return np.where(np.isnan(values), np.nan, values)
 
 
-def content_hash(truth, scheme="typed"):
+def content_hash(truth, scheme="named"):
     """SHA-256 of the canonical content: identical splits hash identically.
 
     Canonical form: images in id order with sizes and sorted tags, classes in
@@ -56,17 +59,31 @@ def content_hash(truth, scheme="typed"):
     (pycocotools' ``loadRes`` refuses a result whose ``image_id`` has the other
     type) — hash apart; a split of numeric ids hashes as before (no mark).
     ``untyped`` leaves the kinds out: the hash of splits frozen before.
+
+    Under the ``named`` scheme (the default) a split where a category's shown name
+    (``classes``) is not its own (``category_names``: categories sharing a name) then
+    hashes the own names, so two ``car`` categories and a file naming them ``car (id
+    1)``, ``car (id 2)`` — which the rules naming classes score apart — hash apart;
+    a split whose names are all its own hashes as under ``typed``.
     """
     if scheme not in HASH_SCHEMES:
         raise ValueError(f"unknown hash scheme {scheme!r}; use {', '.join(HASH_SCHEMES)}")
-    mark = _id_mark(truth)
-    name = "_untyped_hash" if scheme == "untyped" and mark else "_content_hash"
+    mark = _mark(truth, scheme)
+    # one value per distinct mark: a scheme adding nothing to this split shares it
+    name = "_content_hash" if mark == _mark(truth, HASH_SCHEMES[0]) else f"_{scheme}_hash"
     cached = truth.__dict__.get(name)
     if cached is not None:  # frozen: computed once (the loaders and annotate ask)
         return cached
-    value = _hash(truth, mark if name == "_content_hash" else b"")
+    value = _hash(truth, mark)
     object.__setattr__(truth, name, value)
     return value
+
+
+def _mark(truth, scheme):
+    """The bytes ``scheme``'s hash starts with (``_id_mark``, then ``_names_mark``)."""
+    if scheme == "untyped":
+        return b""
+    return _id_mark(truth) + (_names_mark(truth) if scheme == "named" else b"")
 
 
 def id_kinds(truth):
@@ -85,6 +102,16 @@ def _id_mark(truth):
     if all(kind in NUMERIC_ID_KINDS for kind in kinds.values()):
         return b""
     return b"\x00id kinds " + json.dumps(kinds, sort_keys=True).encode() + b"\n"
+
+
+def _names_mark(truth):
+    """The bytes a ``named`` hash adds after the id mark: empty where every category's
+    shown name is its own; else the own names in class order (``ascii``: surrogates
+    too). An ``_id_mark`` starts ``\\x00i`` and ends with a newline its JSON never
+    holds, this one starts ``\\x00o``, unmarked content ``[``: no two run together."""
+    if tuple(truth.category_names) == tuple(truth.classes):
+        return b""
+    return b"\x00own names " + ascii(list(truth.category_names)).encode() + b"\n"
 
 
 def _hash(truth, mark):

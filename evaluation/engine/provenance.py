@@ -242,11 +242,9 @@ def differences(a, b):
     out = []
     if not _same(a.get("truth_fingerprint"), b.get("truth_fingerprint")):
         effect = "different ground truth: the numbers are about different data"
-        if _typed_fingerprint(a) != _typed_fingerprint(b):
-            effect += (
-                ", or the same split whose ids are not all numbers, fingerprinted by an "
-                f"engine before {TYPED_FINGERPRINT} (ids hashed by their text, not their type)"
-            )
+        for version, what in FINGERPRINT_CHANGES:
+            if _fingerprint_since(a, version) != _fingerprint_since(b, version):
+                effect += f", or the same split {what}"
         out.append(("ground truth", a.get("truth_fingerprint"), b.get("truth_fingerprint"), effect))
     if not _same(a.get("engine_version"), b.get("engine_version")):
         out.append(
@@ -268,16 +266,32 @@ def differences(a, b):
 #: (``GroundTruth.content_hash``, scheme ``typed``): a split of numeric ids has one
 #: fingerprint under every engine, one of text ids another from this version on.
 TYPED_FINGERPRINT = "2.15.0"
+#: The first engine whose fingerprint (scheme ``named``) hashes the categories' own
+#: names where they are shown otherwise (categories sharing a name).
+NAMED_FINGERPRINT = "2.17.5"
+#: ``(version, the splits whose fingerprint changed then)``, oldest first.
+FINGERPRINT_CHANGES = (
+    (
+        TYPED_FINGERPRINT,
+        "whose ids are not all numbers, fingerprinted by an engine before "
+        f"{TYPED_FINGERPRINT} (ids hashed by their text, not their type)",
+    ),
+    (
+        NAMED_FINGERPRINT,
+        "whose categories share a name, fingerprinted by an engine before "
+        f"{NAMED_FINGERPRINT} (shown names hashed, not the categories' own)",
+    ),
+)
 
 
-def _typed_fingerprint(result):
-    """Whether ``result``'s fingerprint hashes id types (True for an unreadable version:
-    only a version known to be older says it does not)."""
+def _fingerprint_since(result, since):
+    """Whether ``result``'s fingerprint is of engine ``since`` or later (True for an
+    unreadable version: only a version known to be older says it is not)."""
     try:
         version = tuple(int(part) for part in str(result.get("engine_version")).split("."))
     except ValueError:
         return True
-    return version >= tuple(int(part) for part in TYPED_FINGERPRINT.split("."))
+    return version >= tuple(int(part) for part in since.split("."))
 
 
 def _same(a, b):

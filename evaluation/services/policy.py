@@ -24,10 +24,12 @@ ANNOTATION_POLICIES = ("reference", "strict")
 #: ``read`` on those frozen with engines 2.9-2.10), so its content hash still matches.
 VIS_RATIO_READING = "as-given"
 #: How a new split's content hash is taken (``engine.GroundTruth.content_hash(scheme)``):
-#: ids that are not numbers hash with their kind. A stored split is verified with the
-#: scheme it was frozen with (``BenchmarkSplit.hash_scheme``; migration 0024 sets
-#: ``untyped`` on splits frozen before), so its sha256 is never rewritten.
-HASH_SCHEME = "typed"
+#: ids that are not numbers hash with their kind, categories sharing a name with their
+#: own names. A stored split is verified with the scheme it was frozen with
+#: (``BenchmarkSplit.hash_scheme``: migration 0024 set ``untyped`` on splits frozen
+#: before id kinds were hashed, 0025 keeps ``typed`` on those frozen before own names
+#: were), so its sha256 is never rewritten.
+HASH_SCHEME = "named"
 #: Detections of classes the split does not list (``engine.load_predictions
 #: (unknown_classes=)``): the default drops them as pycocotools does, counted and named
 #: in the result; ``reject`` refuses the file.

@@ -87,10 +87,11 @@ def cache_key(sources, options):
 
 
 #: The split's content hash, kept in a truth entry's metadata (``GroundTruth.content_hash``,
-#: its ``typed`` scheme). Entries from before engine 2.15.0 kept the ``untyped`` hash
-#: under ``_UNTYPED_HASH``: it is dropped on load (the typed one is computed once).
-_CONTENT_HASH = "__typed_content_hash__"
-_UNTYPED_HASH = "__content_hash__"
+#: its ``named`` scheme). Entries from before engine 2.17.5 kept the ``typed`` hash, and
+#: from before 2.15.0 the ``untyped`` one, under ``_OLDER_HASHES``: dropped on load (the
+#: named one is computed once; ``CACHE_SCHEMA`` keeps such entries unused anyway).
+_CONTENT_HASH = "__named_content_hash__"
+_OLDER_HASHES = ("__typed_content_hash__", "__content_hash__")
 
 
 def _to_arrays(obj):
@@ -112,7 +113,8 @@ def _to_arrays(obj):
 def _from_arrays(kind, arrays):
     meta = json.loads(str(arrays["__meta__"]))
     content_hash = meta.pop(_CONTENT_HASH, None)
-    meta.pop(_UNTYPED_HASH, None)
+    for name in _OLDER_HASHES:
+        meta.pop(name, None)
     values = {name: value for name, value in arrays.items() if name != "__meta__"}
     for name, value in meta.items():
         if name == "image_tags":
