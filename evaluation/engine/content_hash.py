@@ -12,7 +12,7 @@ import numpy as np
 
 from .data import ATTRIBUTES
 
-#: How ``GroundTruth.content_hash`` is taken, newest first: ``named`` (engine 2.17.5 on)
+#: How ``GroundTruth.content_hash`` is taken, newest first: ``named`` (engine 2.17.6 on)
 #: adds the categories' own names where one is shown otherwise (shared names shown as
 #: ``car (id 1)``), so a file naming its categories so literally hashes apart; ``typed``
 #: (engine 2.15.0 on) hashes the kind of a text id family, so ids that match different

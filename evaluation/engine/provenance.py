@@ -268,7 +268,7 @@ def differences(a, b):
 TYPED_FINGERPRINT = "2.15.0"
 #: The first engine whose fingerprint (scheme ``named``) hashes the categories' own
 #: names where they are shown otherwise (categories sharing a name).
-NAMED_FINGERPRINT = "2.17.5"
+NAMED_FINGERPRINT = "2.17.6"
 #: ``(version, the splits whose fingerprint changed then)``, oldest first.
 FINGERPRINT_CHANGES = (
     (

@@ -8,7 +8,7 @@ both ``car`` categories take IoU 0.7 and the literal ones 0.5 (the README's
 ``recall40`` row; checked against ``oracle.greedy_ap``, the pycocotools
 ``evaluateImg``/``accumulate`` transliteration, at the rule's thresholds on the file's
 own names, as tests/engine/test_shared_names.py does). So the ``named`` hash (engine
-2.17.5) adds the own names wherever one differs from its shown name; any other split
+2.17.6) adds the own names wherever one differs from its shown name; any other split
 hashes bit for bit as before (pinned below), and the older schemes still give the hash
 a split was frozen with.
 """
@@ -186,7 +186,7 @@ def test_explain_says_an_older_fingerprint_may_be_the_same_split(tmp_path):
     def result(version, fingerprint):
         return {"engine_version": version, "truth_fingerprint": fingerprint, "protocol_record": {}}
 
-    before = result("2.17.4", truth.content_hash("typed"))
+    before = result("2.17.5", truth.content_hash("typed"))
     after = result(ENGINE_VERSION, truth.content_hash())
     (effect,) = [d[3] for d in differences(before, after) if d[0] == "ground truth"]
     assert f"fingerprinted by an engine before {NAMED_FINGERPRINT}" in effect

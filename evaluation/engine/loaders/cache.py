@@ -87,7 +87,7 @@ def cache_key(sources, options):
 
 
 #: The split's content hash, kept in a truth entry's metadata (``GroundTruth.content_hash``,
-#: its ``named`` scheme). Entries from before engine 2.17.5 kept the ``typed`` hash, and
+#: its ``named`` scheme). Entries from before engine 2.17.6 kept the ``typed`` hash, and
 #: from before 2.15.0 the ``untyped`` one, under ``_OLDER_HASHES``: dropped on load (the
 #: named one is computed once; ``CACHE_SCHEMA`` keeps such entries unused anyway).
 _CONTENT_HASH = "__named_content_hash__"
