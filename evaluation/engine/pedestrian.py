@@ -148,6 +148,8 @@ def evaluate_setups_with_samples(truth, predictions, protocol="miss-rate"):
     flagged = ignore_flags(truth, protocol)
     void = truth.zero_id_boxes() if protocol.variant == "cityscale" else None
     fraction = truth.cityscale_ignore()[1] if void is not None else None
+    bad_ids = [{e[0]: e for e in truth.cityscale_faults.get("id", ())}] if void is not None else []
+    bad_ids = [faults for faults in bad_ids if faults]
     height = truth.boxes[:, 3]
     visibility = setup_visibility(truth, protocol)
     script = protocol.variant == "cityscale"
@@ -187,7 +189,7 @@ def evaluate_setups_with_samples(truth, predictions, protocol="miss-rate"):
             keep = setup.keeps(det_height, HEIGHT_EXPANSION)
             # the city-scale code: boxes of id 0, and in-setup boxes whose fractional
             # ignore key makes int(ignore) = 0 (plain IoU although ignored)
-            city = None if void is None else (void, own & inside & fraction)
+            city = None if void is None else (void, own & inside & fraction, *bad_ids)
             order_key = None if exact is None else exact[1].get(setup.height)
             levels[setup.name][truth.classes[k]], parts[(setup.name, truth.classes[k])] = (
                 _class_result(
@@ -264,11 +266,14 @@ def _class_result(
         if city is None:
             oa = overlaps(det_boxes[kept], boxes, ignored)
         else:
-            void, plain = city
+            void, plain = city[:2]
             no = np.zeros(len(regions), bool)
             oa = overlaps(det_boxes[kept], boxes, ignored & ~np.r_[plain[g], no], PYTHON)
             box_void = np.r_[void[g], no]
-        outcomes.extend(match_image(oa.tolist(), ignored.tolist(), box_void))
+        taken = [] if city is not None and len(city) > 2 else None
+        outcomes.extend(match_image(oa.tolist(), ignored.tolist(), box_void, taken))
+        if taken:  # the script's dtm[tind, dind] = gt[bstg]["id"] (``unwritable_id``)
+            _refuse_unwritable_id(truth, city[2], g[[b for b in taken if b < len(g)]])
         scores.extend(predictions.score[kept].tolist())
         det_image.extend([image] * len(kept))
         if order_key is not None:
@@ -305,6 +310,25 @@ def _class_result(
         "curve": curve_points(tp, fp, n_gt, truth.n_images),
         "detections": detections,
     }, samples
+
+
+def _refuse_unwritable_id(truth, faults, boxes):
+    """The CityPersons script's ``evaluateImg`` writes a matched box's id into the float
+    ``dtm`` (``dtm[tind, dind] = gt[bstg]["id"]``, a regular or an ignore box): an id
+    numpy cannot write (``GroundTruth.cityscale_faults["id"]``) raises there, so the
+    file is refused, naming its record."""
+    hit = [int(b) for b in boxes if int(b) in faults]
+    if hit:
+        _, record, shown, _ = faults[hit[0]]
+        raise InputError(
+            truth.source,
+            f"the annotation's id {shown} is matched by a detection, and numpy cannot "
+            "write it into a float array (text that is no number, an integer beyond "
+            "float64): the CityPersons script raises there (evaluateImg: "
+            'dtm[tind, dind] = gt[bstg]["id"], ValueError)',
+            record=record,
+            field="id",
+        )
 
 
 def _setup_summary(per_class):

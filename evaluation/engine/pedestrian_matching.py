@@ -64,13 +64,14 @@ def overlaps(det, gt, ignored, nan_rule=MATLAB):
     return out
 
 
-def match_image(oa, ignored, void=None):
+def match_image(oa, ignored, void=None, taken=None):
     """``evalRes`` for one image: ``oa`` rows are detections by score descending,
     columns boxes; ``ignored`` per box. Returns per detection 1 (true positive), -1
     (ignored) or 0 (false positive). ``void`` (the city-scale code): per box, whether a
     match with it is a false positive although the box is taken — its annotation id is
     0, and ``evaluateImg`` stores the matched box's id in ``dtMatches``, which
-    ``accumulate`` reads as matched only when nonzero."""
+    ``accumulate`` reads as matched only when nonzero. ``taken``: a list given to
+    receive each matched box (regular or ignore), in match order."""
     order = [g for g in range(len(ignored)) if not ignored[g]]
     order += [g for g in range(len(ignored)) if ignored[g]]
     matched = [False] * len(ignored)
@@ -85,6 +86,8 @@ def match_image(oa, ignored, void=None):
             if row[g] < best:
                 continue
             best, best_g, best_m = row[g], g, (-1 if ignored[g] else 1)
+        if best_m != 0 and taken is not None:
+            taken.append(best_g)
         if best_m == 1:
             matched[best_g] = True
             if void is not None and void[best_g]:

@@ -324,3 +324,39 @@ def test_hashes_keep_apart_only_what_scores_differently(tmp_path):
         gt, _ = _write(tmp_path, dataset, [], [literal])
         hashes[literal] = load_truth(gt).content_hash()
     assert hashes["null"] == hashes["0"] != hashes['"x"']
+
+
+# --- annotation id: evaluateImg's dtm[tind, dind] = gt[bstg]["id"] ----------------------
+
+
+@pytest.mark.parametrize("literal", ['"x"', '"null"', "1" + "0" * 400])
+@pytest.mark.parametrize(
+    "height, ignore, matched",
+    [
+        (100.0, 0, True),  # a regular box matched in every setup
+        (100.0, 1, True),  # an ignore box: the match writes its id too
+        (15.0, 0, True),  # below every height range: an ignore box a 16 px one matches
+        (100.0, 0, False),  # no detection overlaps it
+    ],
+)
+def test_an_annotation_id_numpy_cannot_write_is_refused_where_matched(
+    tmp_path, literal, height, ignore, matched
+):
+    """The script (``pedestrian_oracle.cityscale_coco``'s ``evaluateImg``) writes the
+    matched box's id into the float ``dtm``: text no float reads and an integer beyond
+    float64 raise there, on any match (regular or ignore box); unmatched it scores."""
+    x = 0.0 if matched else 1500.0
+    dataset = _dataset([_ann("@0", x, h=height, ignore=ignore), _ann(2, 700.0)])
+    results = [_det(0.0, h=max(height, 16.0)), _det(700.0, score=0.8), _det(300.0, score=0.7)]
+    gt, dt = _write(tmp_path, dataset, results, [literal])
+    error = _agree(gt, dt, "annotations[0]", "id")
+    assert isinstance(error, InputError) == matched
+
+
+@pytest.mark.parametrize("literal", ['"nan"', '" 2 "', '"1_0"', '"-0"', "null", "true"])
+def test_annotation_ids_numpy_writes_score_as_the_script(tmp_path, literal):
+    """Ids numpy writes into ``dtm`` (text float reads, null as NaN, true as 1): scored
+    as the script scores them (a text "-0" reads as 0: no match)."""
+    dataset = _dataset([_ann("@0", 0.0), _ann(2, 700.0)])
+    results = [_det(0.0), _det(700.0, score=0.8), _det(300.0, score=0.7)]
+    _agree(*_write(tmp_path, dataset, results, [literal]))
