@@ -18,7 +18,7 @@ never a pass.
 
 A level result that is not there — the suite names no protocol with the level, or its
 evaluation has no scorecard on the split — is a *missing* outcome, which keeps the
-verdict from passing (``verdicts._compute``).
+verdict from passing (``judging._compute``).
 """
 
 import numpy as np

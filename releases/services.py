@@ -310,7 +310,7 @@ def sign_off(version, user, decision, comment, *, justification=""):
     """Record a lead's decision on a candidate; approval makes it the baseline.
 
     THE sign-off: every entry point (page, API, demo) calls it. Decided inside one
-    transaction holding the version's row lock, the same lock ``verdicts.judge`` takes
+    transaction holding the version's row lock, the same lock ``judging.judge`` takes
     to record a judgement, on the verdict read under that lock: only a final verdict
     (incomplete, regression, pass) can be decided; approving anything but ``pass`` is
     an *override* and needs a written justification; rejecting needs a comment.

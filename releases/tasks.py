@@ -12,18 +12,18 @@ log = logging.getLogger(__name__)
 
 @shared_task(bind=True, acks_late=True, max_retries=settings.BENCHBOOK_JUDGE_RETRIES)
 def judge(self, version_id):
-    """Judge a version if its judgement is not current (see releases.verdicts). An error
+    """Judge a version if its judgement is not current (see releases.judging). An error
     while judging is retried with back-off (the version reads ``judging`` meanwhile);
     the last retry records it as an incomplete judgement naming the cause. A retry the
     broker cannot take is left to the sweep (``services.requeue_unjudged``)."""
-    from . import verdicts
+    from . import judging
 
     retries = self.request.retries or 0
     try:
-        judgement = verdicts.judge(
+        judgement = judging.judge(
             version_id, final=retries >= self.max_retries, attempt=retries + 1
         )
-    except verdicts.JudgingFailed as e:
+    except judging.JudgingFailed as e:
         delay = settings.BENCHBOOK_JUDGE_RETRY_SECONDS * 2**retries
         raise self.retry(exc=e, countdown=delay) from None
     return judgement.pk if judgement else None

@@ -13,7 +13,7 @@ from django.core.files.base import ContentFile
 from django.utils import timezone
 
 from evaluation import services as evaluation_services
-from releases import criteria, demo, services, suites, verdicts
+from releases import criteria, demo, judging, services, suites
 
 from .conftest import BROWSER_MARKS, shot, signed_in
 
@@ -138,7 +138,7 @@ def demo_like(detector, team, users, run_tasks, split):
         detector, users["lead"], [rule, {"kind": "max_drop", "class": "mean", "tolerance": 1}]
     )
     for version in versions[1:]:
-        verdicts.judge(version.pk)
+        judging.judge(version.pk)
     return splits, versions
 
 

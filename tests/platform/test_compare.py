@@ -6,7 +6,7 @@ import re
 
 import pytest
 
-from releases import comparisons, criteria, services, verdicts
+from releases import comparisons, criteria, judging, services
 from releases import tasks as release_tasks
 from releases.models import ComparisonInterval, Outcome
 
@@ -101,7 +101,7 @@ def test_no_delta_is_marked_until_intervals_exist_then_only_real_drops(
 
     # The judge's bootstrap on the same pair gives the same bounds (same helper, seed, B).
     criteria.set_criteria(detector, users["lead"], [{"kind": "no_significant_drop", "class": "*"}])
-    verdicts.judge(candidate.pk)
+    judging.judge(candidate.pk)
     for o in Outcome.objects.filter(version=candidate):
         low, high = row.intervals[""][o.class_name]
         assert low == pytest.approx(o.low, abs=1e-6) and high == pytest.approx(o.high, abs=1e-6)

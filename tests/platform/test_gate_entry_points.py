@@ -11,6 +11,7 @@ from django.urls import reverse
 from rest_framework.test import APIClient
 
 from releases import criteria, services, suites, verdicts
+from releases import judging as gate_judging
 from releases import tasks as release_tasks
 from releases.audit import verify_audit
 from releases.models import (
@@ -58,7 +59,7 @@ def test_the_page_form_refuses_while_judging_and_without_justification(client, j
     url = reverse("sign-off", args=[judging.pk])
     page = client.post(url, {"decision": "approved", "comment": "ship"}, follow=True)
     assert "is judging: a decision waits for the final verdict" in page.content.decode()
-    verdicts.judge(judging.pk)
+    gate_judging.judge(judging.pk)
     page = client.post(url, {"decision": "approved", "comment": "ship"}, follow=True)
     assert "needs a written justification" in page.content.decode()
     assert SignOff.objects.count() == 0
@@ -74,7 +75,7 @@ def test_the_api_refuses_while_judging_and_without_justification(judging, users)
     assert "is judging" in refused.json()["message"] and refused.json()["code"] == "not_allowed"
     verdict = lead.get(f"{API}versions/{judging.pk}/verdict/").json()
     assert (verdict["state"], verdict["final"], verdict["judgement"]) == ("judging", False, None)
-    verdicts.judge(judging.pk)
+    gate_judging.judge(judging.pk)
     refused = lead.post(url, {"decision": "approved", "comment": "ship"}, format="json")
     assert refused.status_code == 409 and "is regression" in refused.json()["message"]
     assert SignOff.objects.count() == 0
@@ -92,7 +93,7 @@ def test_the_api_refuses_while_judging_and_without_justification(judging, users)
 def test_the_admin_cannot_add_change_or_delete_decisions(client, judging, users, model):
     from django.contrib.auth import get_user_model
 
-    verdicts.judge(judging.pk)
+    gate_judging.judge(judging.pk)
     services.sign_off(judging, users["lead"], "rejected", "night regression")
     row = model.objects.order_by("pk").first()
     admin = get_user_model().objects.create_superuser("root", password="pw-root")
@@ -230,7 +231,7 @@ def test_the_command_refuses_judging_and_unjustified_overrides(judging, users):
         _command(judging, "approve", user="engineer")
     with pytest.raises(CommandError, match="--user: no user 'nobody'"):
         _command(judging, "approve", user="nobody")
-    verdicts.judge(judging.pk)
+    gate_judging.judge(judging.pk)
     with pytest.raises(CommandError, match="is regression .*needs a written justification"):
         _command(judging, "approve")
     with pytest.raises(CommandError, match="is regression .*needs a written justification"):

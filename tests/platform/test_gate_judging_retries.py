@@ -5,7 +5,7 @@ decision can be made on it)."""
 
 import pytest
 
-from releases import criteria, services, verdicts
+from releases import criteria, judging, services, verdicts
 from releases import tasks as release_tasks
 from releases.audit import verify_audit
 from releases.models import Judgement
@@ -67,8 +67,8 @@ def _retries_in_place(monkeypatch):
 
 def test_an_error_while_retries_remain_records_nothing_and_reads_judging(scored, monkeypatch):
     _failing(monkeypatch, times=1)
-    with pytest.raises(verdicts.JudgingFailed, match="ConnectionError: connection to the"):
-        verdicts.judge(scored.pk, final=False)
+    with pytest.raises(judging.JudgingFailed, match="ConnectionError: connection to the"):
+        judging.judge(scored.pk, final=False)
     assert not Judgement.objects.exists()
     assert verdicts.verdict_of(scored).state == "judging"
 

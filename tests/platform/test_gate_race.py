@@ -18,6 +18,7 @@ from django.db import connection
 from evaluation import services as evaluation_services
 from evaluation import tasks
 from releases import criteria, services, verdicts
+from releases import judging as gate_judging
 from releases import tasks as release_tasks
 from releases.models import Judgement, SignOff
 
@@ -67,7 +68,7 @@ def test_a_sign_off_waiting_for_the_judges_lock_sees_its_outcomes(judging, users
     """The judge holds the lock first: the sign-off waits, then reads the regression and
     refuses a plain approval."""
     locked, waiting = threading.Event(), threading.Event()
-    record = verdicts._record
+    record = gate_judging._record
 
     def slow_record(*args, **kwargs):
         locked.set()  # the judge holds the version's row lock
@@ -75,7 +76,7 @@ def test_a_sign_off_waiting_for_the_judges_lock_sees_its_outcomes(judging, users
         time.sleep(HOLD)  # the sign-off is now blocked on that lock
         return record(*args, **kwargs)
 
-    monkeypatch.setattr(verdicts, "_record", slow_record)
+    monkeypatch.setattr(gate_judging, "_record", slow_record)
     results = {}
 
     def sign():
@@ -88,7 +89,7 @@ def test_a_sign_off_waiting_for_the_judges_lock_sees_its_outcomes(judging, users
             results["waited"] = time.monotonic() - started
 
     threads = [
-        _thread(lambda: verdicts.judge(judging.pk), results, "judge"),
+        _thread(lambda: gate_judging.judge(judging.pk), results, "judge"),
         _thread(sign, results, "sign"),
     ]
     for t in threads:
@@ -126,7 +127,7 @@ def test_a_sign_off_holding_the_lock_first_is_refused_and_the_judge_waits(
     def judge():
         read.wait(5)
         judge_started.set()
-        return verdicts.judge(judging.pk)
+        return gate_judging.judge(judging.pk)
 
     threads = [
         _thread(

@@ -11,7 +11,7 @@ from django.test.utils import CaptureQueriesContext
 from django.urls import reverse
 from rest_framework.test import APIClient
 
-from releases import criteria, selectors, services, verdicts
+from releases import criteria, judging, selectors, services, verdicts
 from releases import tasks as release_tasks
 
 from .conftest import detections_for, upload
@@ -82,7 +82,7 @@ def test_a_stale_judgement_reads_judging_on_every_page_and_the_api(stale, users,
     assert [o["status"] for o in earlier] == ["fail"]
 
     # Judged against the current criteria, every reader agrees again.
-    verdicts.judge(stale.pk)
+    judging.judge(stale.pk)
     assert selectors.version_badges([stale])[stale.pk] == "pass"
     history = client.get(reverse("detector", args=[stale.detector_id])).context["table"]
     assert [row["state"] for row in history] == ["pass"]

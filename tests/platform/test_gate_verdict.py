@@ -10,7 +10,7 @@ candidates; every judgement is an audit event and the chain stays intact.
 import pytest
 
 from evaluation import services as evaluation_services
-from releases import criteria, services, suites, verdicts
+from releases import criteria, judging, services, suites, verdicts
 from releases import tasks as release_tasks
 from releases.audit import verify_audit
 from releases.models import AuditEvent, Judgement, Outcome, SignOff
@@ -74,7 +74,7 @@ def test_states_in_order_scoring_judging_then_final(
         evaluation_services.run_evaluation(evaluation.pk)
     verdict = verdicts.verdict_of(version)
     assert (verdict.state, verdict.judgement) == ("judging", None)
-    judgement = run_tasks(verdicts.judge, version.pk)
+    judgement = run_tasks(judging.judge, version.pk)
     verdict = verdicts.verdict_of(version)
     assert (verdict.state, verdict.no_criteria, verdict.judgement) == ("pass", True, judgement)
 
@@ -100,7 +100,7 @@ def test_sign_off_while_judging_is_refused(
             services.sign_off(version, users["lead"], decision, "now", justification="x")
     _no_refusal_stored(before)
     # Once judged, the failing rule makes approval an override.
-    verdicts.judge(version.pk)
+    judging.judge(version.pk)
     assert verdicts.verdict_of(version).state == "regression"
     with pytest.raises(services.DecisionError, match="is regression .*needs a written just"):
         services.sign_off(version, users["lead"], "approved", "ship")
@@ -210,7 +210,7 @@ def test_the_judge_never_uses_the_version_itself_as_baseline(
     _submit(run_tasks, version, split, split_truth, users)
     run_tasks(services.sign_off, version, users["lead"], "approved", "first")
     assert verdicts.baseline_for(version) is None
-    assert verdicts.judge(version.pk) is None  # decided: judged no more
+    assert judging.judge(version.pk) is None  # decided: judged no more
     assert Judgement.objects.filter(version=version).count() == 1
 
 

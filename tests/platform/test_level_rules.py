@@ -1,6 +1,6 @@
 """Release rules on a difficulty level (``"level": "moderate"``, releases/level_rules.py):
 validated against the suite (errors name ``rules[i].level``), judged on the stored
-kitti2d result by the one gate (``verdicts.judge``), a missing level result is a
+kitti2d result by the one gate (``judging.judge``), a missing level result is a
 *missing* outcome that keeps the verdict from passing, through every entry point (the
 service, the API, the criteria page, the sign-off command, the client's exit code).
 Values are the kitti2d scorecard's, checked against the KITTI devkit transliteration

@@ -21,7 +21,7 @@ from rest_framework.test import APIClient
 from evaluation import engine
 from evaluation import services as evaluation_services
 from evaluation.models import Evaluation
-from releases import audit_check, criteria, rescore, services, suites, verdicts
+from releases import audit_check, criteria, judging, rescore, services, suites, verdicts
 from releases.audit import verify_audit
 from releases.models import AuditEvent, Judgement, PredictionSet, SignOff
 
@@ -259,13 +259,13 @@ def test_a_revision_frozen_while_re_scoring_runs(
     }
     assert Evaluation.objects.filter(pk__in=[e.pk for e in pending], state="done").count() == 4
     for version in uploaded:
-        run_tasks(verdicts.judge, version.pk)
+        run_tasks(judging.judge, version.pk)
         verdict = verdicts.verdict_of(version)
         assert verdict.state == "incomplete" and verdict.missing == [str(rev3)]
     result = run_tasks(rescore.rescore, detector, users["lead"], rev3)
     assert {str(o.source.split) for o in result.outcomes} == {str(rev2)}
     for version in uploaded:
-        run_tasks(verdicts.judge, version.pk)
+        run_tasks(judging.judge, version.pk)
         assert verdicts.verdict_of(version).state == "pass"
 
 
@@ -287,9 +287,9 @@ def test_the_gate_judges_candidates_again_and_decisions_stay(
     rule = {"kind": "max_drop", "metric": "AP", "class": "mean", "split": "*", "tolerance": 100}
     run_tasks(criteria.set_criteria, detector, lead, [rule])
     baseline, candidate = uploaded
-    run_tasks(verdicts.judge, baseline.pk)
+    run_tasks(judging.judge, baseline.pk)
     record, _ = services.sign_off(baseline, lead, "approved", "ships")
-    run_tasks(verdicts.judge, candidate.pk)
+    run_tasks(judging.judge, candidate.pk)
     seen_by_decision = record.judgement
     rev2 = run_tasks(_load, rev2_truth, 2)
     assert verdicts.verdict_of(candidate).missing == [str(rev2)]
