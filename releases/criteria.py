@@ -148,7 +148,7 @@ def set_criteria(detector, user, rules):
             f"detector:{detector.pk}",
             {"detector": str(detector), "number": criteria.number, "rules": clean},
         )
-        from .services import rejudge_later
+        from .judging_queue import rejudge_later
 
         rejudge_later(detector.pk)
     return criteria

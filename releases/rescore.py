@@ -66,7 +66,8 @@ def rescore(detector, user, split, versions=None):
     from the storage is skipped (named); a file whose bytes changed fails its
     evaluation with the hash mismatch when scored (audited), like any stored file.
     """
-    from .services import judge_if_complete, rejudge_later, request_for_set
+    from .judging_queue import judge_if_complete, rejudge_later
+    from .services import request_for_set
 
     require_lead(user, detector)
     all_ids = list(detector.versions.order_by("pk").values_list("pk", flat=True))

@@ -56,8 +56,8 @@ def judge_when_complete(sender, evaluation, **kwargs):
     version is never judged again, but its new evaluations (a baseline re-scored on a
     new revision) change what the detector's candidates are compared with: they are
     judged again."""
+    from .judging_queue import judge_if_complete, rejudge_later
     from .models import PredictionSet
-    from .services import judge_if_complete, rejudge_later
 
     rows = (
         PredictionSet.objects.current()
@@ -74,8 +74,8 @@ def judge_when_complete(sender, evaluation, **kwargs):
 def _rejudge_followers(split):
     """A new revision of a split that suites follow (revision null) changes what their
     candidates must be scored on: judge them again."""
+    from .judging_queue import rejudge_later
     from .models import BenchmarkSuite
-    from .services import rejudge_later
 
     newest = {}
     for suite in BenchmarkSuite.objects.order_by("detector_id", "-number"):

@@ -172,7 +172,7 @@ def set_suite(detector, user, spec):
     with transaction.atomic():
         Detector.objects.select_for_update().filter(pk=detector.pk).first()
         suite = _create_audited(detector, user, clean)
-        from .services import rejudge_later
+        from .judging_queue import rejudge_later
 
         rejudge_later(detector.pk)
     return suite

@@ -15,7 +15,7 @@ def judge(self, version_id):
     """Judge a version if its judgement is not current (see releases.judging). An error
     while judging is retried with back-off (the version reads ``judging`` meanwhile);
     the last retry records it as an incomplete judgement naming the cause. A retry the
-    broker cannot take is left to the sweep (``services.requeue_unjudged``)."""
+    broker cannot take is left to the sweep (``judging_queue.requeue_unjudged``)."""
     from . import judging
 
     retries = self.request.retries or 0
@@ -33,11 +33,11 @@ def judge(self, version_id):
 def rejudge(detector_id):
     """Judge every undecided version of a detector again (criteria, suite or baseline
     changed); each one in its own task, so one slow bootstrap does not hold the rest."""
-    from . import services
+    from . import judging_queue
 
-    version_ids = list(services.undecided(detector_id).values_list("pk", flat=True))
+    version_ids = list(judging_queue.undecided(detector_id).values_list("pk", flat=True))
     for version_id in version_ids:
-        services._send(judge, version_id)
+        judging_queue._send(judge, version_id)
     return version_ids
 
 
@@ -73,10 +73,10 @@ def resend_notifications():
 
 @shared_task
 def sweep():
-    """Judge again the versions whose judging was lost (see services.requeue_unjudged)."""
-    from . import services
+    """Judge again the versions whose judging was lost (see judging_queue.requeue_unjudged)."""
+    from . import judging_queue
 
-    return services.requeue_unjudged()
+    return judging_queue.requeue_unjudged()
 
 
 @shared_task(acks_late=True)

@@ -9,7 +9,7 @@ import pytest
 from django.core.exceptions import PermissionDenied
 
 from evaluation import services as evaluation_services
-from releases import criteria, services
+from releases import criteria, judging_queue, services
 from releases.models import AuditEvent, Outcome, ReleaseCriteria
 
 from ..engine.synthetic import make_detections, make_split
@@ -282,11 +282,11 @@ def test_judging_lost_with_the_broker_is_queued_again(
     )
     version.refresh_from_db()
     assert verdicts.verdict_of(version).state == "judging"
-    assert services.requeue_unjudged() == []  # within the grace period: left alone
+    assert judging_queue.requeue_unjudged() == []  # within the grace period: left alone
     settings.BENCHBOOK_QUEUED_GRACE_SECONDS = 0
     monkeypatch.setattr(release_tasks.judge, "delay", judged)
-    assert run_tasks(services.requeue_unjudged) == [version.pk]
+    assert run_tasks(judging_queue.requeue_unjudged) == [version.pk]
     version.refresh_from_db()
     verdict = verdicts.verdict_of(version)
     assert (verdict.state, verdict.no_criteria) == ("pass", True)
-    assert services.requeue_unjudged() == []  # judged after its last evaluation
+    assert judging_queue.requeue_unjudged() == []  # judged after its last evaluation

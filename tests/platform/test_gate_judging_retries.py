@@ -5,7 +5,7 @@ decision can be made on it)."""
 
 import pytest
 
-from releases import criteria, judging, services, verdicts
+from releases import criteria, judging, judging_queue, services, verdicts
 from releases import tasks as release_tasks
 from releases.audit import verify_audit
 from releases.models import Judgement
@@ -103,5 +103,5 @@ def test_an_error_on_every_retry_is_recorded_as_incomplete_with_its_cause(
     assert (verdict.state, verdict.final) == ("incomplete", True)
     # Final: the sweep does not queue it again until its inputs change.
     settings.BENCHBOOK_QUEUED_GRACE_SECONDS = -60
-    assert scored.pk not in services.requeue_unjudged()
+    assert scored.pk not in judging_queue.requeue_unjudged()
     assert verify_audit()[0] is None

@@ -11,7 +11,7 @@ from django.test.utils import CaptureQueriesContext
 from django.urls import reverse
 from rest_framework.test import APIClient
 
-from releases import criteria, judging, selectors, services, verdicts
+from releases import criteria, judging, judging_queue, selectors, services, verdicts
 from releases import tasks as release_tasks
 
 from .conftest import detections_for, upload
@@ -117,7 +117,7 @@ def test_the_sweep_and_the_badges_take_a_fixed_number_of_queries(
             first += run_tasks(_versions, detector, split, users, 27, file_bytes, 3)
         queued.clear()
         with CaptureQueriesContext(connection) as sweep:
-            found = services.requeue_unjudged()
+            found = judging_queue.requeue_unjudged()
         assert sorted(found) == sorted(v.pk for v in first) == sorted(queued)
         versions = list(detector.versions.select_related("sign_off"))
         with CaptureQueriesContext(connection) as badges:

@@ -10,7 +10,7 @@ candidates; every judgement is an audit event and the chain stays intact.
 import pytest
 
 from evaluation import services as evaluation_services
-from releases import criteria, judging, services, suites, verdicts
+from releases import criteria, judging, judging_queue, services, suites, verdicts
 from releases import tasks as release_tasks
 from releases.audit import verify_audit
 from releases.models import AuditEvent, Judgement, Outcome, SignOff
@@ -287,9 +287,9 @@ def test_the_sweep_judges_a_candidate_whose_rejudging_was_lost(
     run_tasks(criteria.set_criteria, detector, users["lead"], [IMPOSSIBLE])
     assert verdicts.verdict_of(version).state == "judging"
     settings.BENCHBOOK_QUEUED_GRACE_SECONDS = 0
-    assert run_tasks(services.requeue_unjudged) == [version.pk]
+    assert run_tasks(judging_queue.requeue_unjudged) == [version.pk]
     assert verdicts.verdict_of(version).state == "regression"
-    assert services.requeue_unjudged() == []
+    assert judging_queue.requeue_unjudged() == []
 
 
 def test_the_deployed_thresholds_give_the_operating_point(
