@@ -36,7 +36,7 @@ from evaluation.engine.pieces import stream_pieces
 from evaluation.engine.scoring import headline
 
 from .conftest import pycocotools_eval
-from .test_class_groups import _grouped, _same_records
+from .test_class_groups import whole_and_grouped
 from .test_exact_order_paths import _coco_equal, _inputs
 from .test_exact_scores import (
     _det,
@@ -286,18 +286,10 @@ def test_class_groups_give_the_whole_run(files, protocol, tmp_path):
     """The platform's path (image shards, class groups, their files, the records
     file): records field for field (``det_overflow`` included) and the scorecard bit
     for bit equal to the whole run."""
-    from evaluation.engine import annotate
-
     _, split, dets = _beyond_inputs(files, 4, 24)
     truth, predictions = files.load(split, dets)
-    whole = match(truth, predictions, protocol)
+    whole, expected, result, _ = whole_and_grouped(truth, predictions, protocol, 7, 3, tmp_path)
     assert whole.det_overflow.any()
-    tag_masks = {tag: truth.tag_mask(tag) for tag in truth.tags()}
-    expected = annotate(
-        score_records(whole, protocol, tag_masks=tag_masks), truth, predictions, whole, protocol
-    )
-    result, _, merged = _grouped(truth, predictions, protocol, 7, 3, tmp_path)
-    _same_records(whole, merged)
     assert json.dumps(result) == json.dumps(expected)
 
 
