@@ -37,7 +37,7 @@ from evaluation.engine.scoring import headline
 
 from .conftest import pycocotools_eval
 from .test_class_groups import whole_and_grouped
-from .test_exact_order_paths import _coco_equal, _inputs
+from .test_exact_order_paths import _coco_equal, _inputs, weighted_equals_duplicated
 from .test_exact_scores import (
     _det,
     _recall40_like_reference,
@@ -46,7 +46,6 @@ from .test_exact_scores import (
     _write,
     pycocotools_recall40,
 )
-from .test_weights import _duplicate, _numbers
 
 HUGE = 2**1024  # float() raises OverflowError
 RECALL40 = [k / 40 for k in range(1, 41)]
@@ -269,16 +268,7 @@ def test_weights_equal_duplicated_images(files, protocol):
     tag slices' mechanism): the copies of a huge score's detection stop the fill as on
     the duplicated file, itself checked against pycocotools 2.0.11 under coco."""
     rng, split, dets = _beyond_inputs(files, 3)
-    truth, predictions = files.load(split, dets)
-    weights = rng.integers(0, 4, truth.n_images)
-    by_id = dict(zip(truth.image_ids.tolist(), weights.tolist()))
-    weighted = score_records(match(truth, predictions, protocol), protocol, weights=weights)
-    dup_split, dup_dets = _duplicate(split, dets, by_id)
-    dup_truth, dup_predictions = files.load(dup_split, dup_dets)
-    duplicated = evaluate(dup_truth, dup_predictions, protocol, tag_slices=False)
-    assert _numbers(weighted) == _numbers(duplicated)
-    if protocol == "coco":
-        _coco_equal(files, dup_split, dup_dets)
+    weighted_equals_duplicated(files, rng, split, dets, protocol)
 
 
 @pytest.mark.parametrize("protocol", ["coco", "recall40"])

@@ -103,6 +103,12 @@ def test_weights_equal_duplicated_images(files, protocol, seed):
     are pycocotools' ties, repeated as a whole. The duplicated file itself is checked
     against pycocotools 2.0.11 under ``coco``."""
     rng, split, dets = _inputs(files, seed, n_images=10)
+    weighted_equals_duplicated(files, rng, split, dets, protocol)
+
+
+def weighted_equals_duplicated(files, rng, split, dets, protocol):
+    """Random weights 0..3 score as the file with each image copied that often, whose
+    numbers are checked against pycocotools 2.0.11 under ``coco``."""
     truth, predictions = files.load(split, dets)
     weights = rng.integers(0, 4, truth.n_images)
     by_id = dict(zip(truth.image_ids.tolist(), weights.tolist()))
