@@ -98,6 +98,7 @@ from .pedestrian_setups import (  # noqa: F401  (re-exported: the engine's API)
     neighbours_of,
     setup_visibility,
 )
+from .sequential_walk import refuse_box_id
 
 
 def _group(index, n):
@@ -319,15 +320,11 @@ def _refuse_unwritable_id(truth, faults, boxes):
     file is refused, naming its record."""
     hit = [int(b) for b in boxes if int(b) in faults]
     if hit:
-        _, record, shown, _ = faults[hit[0]]
-        raise InputError(
-            truth.source,
-            f"the annotation's id {shown} is matched by a detection, and numpy cannot "
-            "write it into a float array (text that is no number, an integer beyond "
-            "float64): the CityPersons script raises there (evaluateImg: "
+        refuse_box_id(
+            truth,
+            faults[hit[0]],
+            "the CityPersons script raises there (evaluateImg: "
             'dtm[tind, dind] = gt[bstg]["id"], ValueError)',
-            record=record,
-            field="id",
         )
 
 

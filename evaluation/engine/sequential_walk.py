@@ -17,6 +17,20 @@ from .boxes import pair_iou
 from .errors import InputError
 
 
+def refuse_box_id(truth, fault, raises_there):
+    """Refuse a box whose id (``GroundTruth.cityscale_faults["id"]`` entry ``fault``)
+    a detection matches: the reference writes it into a float array and raises."""
+    _, record, shown, _ = fault
+    raise InputError(
+        truth.source,
+        f"the annotation's id {shown} is matched by a detection, and numpy cannot "
+        "write it into a float array (text that is no number, an integer beyond "
+        f"float64): {raises_there}",
+        record=record,
+        field="id",
+    )
+
+
 def refuse_unwritable_ids(truth, predictions, order, matched, boxes):
     """pycocotools 2.0.11 ``evaluateImg`` writes, for each match (any size range, any
     IoU, a crowd or out-of-range box too), the box's id into the float ``dtm`` and then
@@ -30,15 +44,11 @@ def refuse_unwritable_ids(truth, predictions, order, matched, boxes):
     faults = {entry[0]: entry for entry in truth.cityscale_faults.get("id", ())}
     hit = sorted(set(faults) & set(np.unique(boxes).tolist())) if faults else ()
     if hit:
-        _, record, shown, _ = faults[hit[0]]
-        raise InputError(
-            truth.source,
-            f"the annotation's id {shown} is matched by a detection, and numpy cannot "
-            "write it into a float array (text that is no number, an integer beyond "
-            "float64): pycocotools 2.0.11 raises there (evaluateImg: dtm[tind, dind] = "
+        refuse_box_id(
+            truth,
+            faults[hit[0]],
+            "pycocotools 2.0.11 raises there (evaluateImg: dtm[tind, dind] = "
             "gt[m]['id'], ValueError)",
-            record=record,
-            field="id",
         )
     if predictions.unwritable is None:
         return
