@@ -31,6 +31,7 @@ import os
 import numpy as np
 
 from .loaders.beyond_float64 import overflows
+from .loaders.ids import looked_up_ids
 from .pedestrian_setups import CITYSCALE_SETUPS, HEIGHT_EXPANSION
 
 _CAP = 1000  # Params.maxDets
@@ -120,6 +121,8 @@ def _first_raises(gt_path, _m1, _s1, dt_path, _m2, _s2):
             results = json.load(f)
         img_ids = sorted({im["id"] for im in dataset["images"]})
         cat_ids = sorted({c["id"] for c in dataset["categories"]})
+        # evaluate's np.unique: ids it loses are never looked up (ids.unique_lost)
+        looked = looked_up_ids((im["id"] for im in dataset["images"]), distinct=True)
     except (ValueError, OSError, RecursionError, KeyError, TypeError):
         return None
     if type(results) is not list or not results or not _boxes_reading(results[0]):
@@ -127,8 +130,9 @@ def _first_raises(gt_path, _m1, _s1, dt_path, _m2, _s2):
     load = _load_raise(dt_path, results)
     if load is not None:
         return load, {}
-    gts = _grouped(dataset.get("annotations", []), img_ids, cat_ids, by_id=True)
-    dts = _grouped(results, img_ids, cat_ids)
+    listed = [i for i in img_ids if i in looked]
+    gts = _grouped(dataset.get("annotations", []), listed, cat_ids, by_id=True)
+    dts = _grouped(results, listed, cat_ids)
     cat_at = {c: k for k, c in enumerate(cat_ids)}
     img_at = {i: k for k, i in enumerate(img_ids)}
     pairs = [p for p in set(gts) | set(dts) if _holds_wide(gts.get(p, ()), dts.get(p, ()))]

@@ -48,10 +48,13 @@ def check(truth, predictions, protocol):
         return
     height = truth.boxes[:, 3]
     visibility = truth.cityscale_visibility()
+    seen = truth.looked_up(truth.box_image, truth.box_class)
     for setup in protocol.setups:
         lo, hi = setup.height
         first = None
         for box, record, message, _ in faults.get("vis_ratio", ()):
+            if not seen[box]:  # an image or category np.unique loses: never _prepared
+                continue
             h = height[box]
             if not (h < lo or h > hi):  # the height test lets it through
                 key = (int(truth.box_image[box]), box)
@@ -99,8 +102,9 @@ def _ignore_fault(truth, predictions, protocol, setup, height, visibility):
     order = np.argsort(pair, kind="stable")  # per (image, class), file order within
     pair = pair[order]
     first = None
-    for (box, record, message, truthy), counted in zip(entries, inside):
-        if not counted:  # _prepare set ignore = 1 there
+    seen = truth.looked_up(truth.box_image[boxes], truth.box_class[boxes])
+    for (box, record, message, truthy), counted, looked in zip(entries, inside, seen):
+        if not counted or not looked:  # _prepare set ignore = 1 there, or never ran
             continue
         cls, image = int(truth.box_class[box]), int(truth.box_image[box])
         key = (cls, image, bool(truthy), box)

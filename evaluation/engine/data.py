@@ -109,6 +109,10 @@ class GroundTruth:
     #: Whether the ids' JSON types (``true``, ``1.0`` for an int) decided what is lost:
     #: the ids as shown would lose others, so the hash adds the lost images and classes.
     unique_lost_by_type: bool = False
+    #: Images (int64 indices) whose id that ``np.unique`` rounds to another's entry
+    #: (``loaders.ids.unique_merged``): the CityPersons script's FPPI does not count
+    #: them as images.
+    unique_merged_images: np.ndarray = None
     #: Each class's own name, as the file gives it. ``classes`` shows two categories
     #: that share a name as ``"car (id 1)"``, ``"car (id 2)"`` (``loaders.
     #: annotation_index.rename_shared_names``); the rules that name classes read this
@@ -131,9 +135,41 @@ class GroundTruth:
             object.__setattr__(self, "region_image", np.zeros(0, np.int32))
         if self.regions is None:
             object.__setattr__(self, "regions", np.zeros((0, 4)))
-        for name in ("unique_lost_images", "unique_lost_classes"):
+        for name in ("unique_lost_images", "unique_lost_classes", "unique_merged_images"):
             if getattr(self, name) is None:
                 object.__setattr__(self, name, np.zeros(0, np.int64))
+
+    def unique_lost_masks(self):
+        """``(per image, per class)`` boolean masks of the images and classes numpy's
+        ``np.unique`` loses in pycocotools' and the CityPersons script's ``evaluate``
+        (``unique_lost_images``, ``unique_lost_classes``), or None when none is. Every
+        rule of those references reads this one answer: their boxes and detections are
+        never looked up there, so never scored, compared or refused."""
+        if not (len(self.unique_lost_images) or len(self.unique_lost_classes)):
+            return None
+        images, classes = np.zeros(self.n_images, bool), np.zeros(len(self.classes), bool)
+        images[self.unique_lost_images] = True
+        classes[self.unique_lost_classes] = True
+        return images, classes
+
+    def looked_up(self, image, cls):
+        """Per (image index, class index) pair (arrays), whether pycocotools-family
+        ``evaluate`` looks it up at all (neither id lost: ``unique_lost_masks``)."""
+        lost = self.unique_lost_masks()
+        image = np.asarray(image, np.int64)
+        if lost is None:
+            return np.ones(len(image), bool)
+        return ~(lost[0][image] | lost[1][np.asarray(cls, np.int64)])
+
+    def unique_counted_images(self):
+        """Per image, whether pycocotools-family ``evaluate`` keeps it as an entry of
+        ``p.imgIds`` after its ``np.unique`` (``unique_merged_images`` are not), or None
+        where every image is one."""
+        if not len(self.unique_merged_images):
+            return None
+        counted = np.ones(self.n_images, bool)
+        counted[self.unique_merged_images] = False
+        return counted
 
     def classes_named(self, name):
         """Indices of the classes whose own name (``category_names``) is ``name`` in

@@ -45,6 +45,11 @@ KITTI_FIELDS = ("n_gt", "tp_image", "tp_score", "step_image", "step_score", "ste
 SETUP_FIELDS = ("n_gt", "det_image", "det_score", "det_outcome")
 #: A setup's optional order key (``_tie_runs``), kept where present.
 _KEY = "det_key"
+#: Per image, whether it is one of the CityPersons script's ``p.imgIds`` entries (an
+#: id ``np.unique`` merges into another's is not: ``GroundTruth.unique_counted_images``);
+#: only where one is not.
+FPPI_IMAGE = "fppi_image"
+_OPTIONAL = (_KEY, FPPI_IMAGE)
 N_SAMPLE_POINTS = 41
 
 
@@ -181,7 +186,9 @@ def setup_running_counts(samples, weights=None, nan_first=False):
         within = np.arange(len(run)) - np.repeat(np.cumsum(out) - out, out)
         index = order[run_start[run] + within % run_length[run]]
     is_tp = samples["det_outcome"][index] == 1
-    return np.cumsum(is_tp), np.cumsum(~is_tp), n_gt, int(w.sum())
+    counted = samples.get(FPPI_IMAGE)  # miss-rate-cityscale: the script's I0
+    images = int(w.sum()) if counted is None else int(w[counted].sum())
+    return np.cumsum(is_tp), np.cumsum(~is_tp), n_gt, images
 
 
 def _tie_runs(samples, nan_first=False):
@@ -280,7 +287,7 @@ class LevelSamples:
         members = {}
         for k, ((level, name), part) in enumerate(self.parts.items()):
             meta["parts"].append([level, name])
-            for field in fields + (_KEY,) * (_KEY in part):
+            for field in fields + tuple(name for name in _OPTIONAL if name in part):
                 members[f"p{k}_{field}"] = np.asarray(part[field])
         members["meta.json"] = _json_bytes(meta)
         members["output.json"] = _json_bytes(output)
@@ -304,8 +311,8 @@ class LevelSamples:
             parts = {
                 (level, name): {
                     field: data[f"p{k}_{field}"]
-                    for field in fields + (_KEY,)
-                    if field != _KEY or f"p{k}_{field}" in data.files
+                    for field in fields + _OPTIONAL
+                    if field not in _OPTIONAL or f"p{k}_{field}" in data.files
                 }
                 for k, (level, name) in enumerate(meta["parts"])
             }

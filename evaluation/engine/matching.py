@@ -218,17 +218,11 @@ def match(truth, predictions, protocol, *, reasons=True):
 
 def _lost(truth, protocol):
     """``(per image, per class)``: whether pycocotools' rules leave it out
-    (``tie_order="image"``, its family: ``GroundTruth.unique_lost_images`` and
-    ``unique_lost_classes``, ids its ``np.unique`` loses), or None when nothing is:
-    their boxes count as ignored and their detections are not scored, as its
-    ``evaluateImg`` finds neither under an id numpy changed."""
-    images, classes = truth.unique_lost_images, truth.unique_lost_classes
-    if protocol.tie_order != "image" or not (len(images) or len(classes)):
-        return None
-    lost = np.zeros(truth.n_images, bool), np.zeros(len(truth.classes), bool)
-    lost[0][images] = True
-    lost[1][classes] = True
-    return lost
+    (``tie_order="image"``, its family: ``GroundTruth.unique_lost_masks``, ids its
+    ``np.unique`` loses), or None when nothing is: their boxes count as ignored and
+    their detections are not scored, as its ``evaluateImg`` finds neither under an id
+    numpy changed."""
+    return truth.unique_lost_masks() if protocol.tie_order == "image" else None
 
 
 def _void_boxes(truth, protocol):

@@ -114,7 +114,9 @@ def _classes(truth, protocol):
     the categories' own names (``neighbours_of``)."""
     near_of = {k: neighbours_of(truth, protocol, k) for k in range(len(truth.classes))}
     if protocol.variant == "cityscale":
-        return [(int(k), near_of[int(k)]) for k in np.flatnonzero(category_one(truth))]
+        lost = truth.unique_lost_masks()
+        kept = category_one(truth) & (True if lost is None else ~lost[1])
+        return [(int(k), near_of[int(k)]) for k in np.flatnonzero(kept)]
     neighbour_only = {j for k, near in near_of.items() for j in near if j != k}
     return [(k, near_of[k]) for k in range(len(truth.classes)) if k not in neighbour_only]
 
@@ -146,7 +148,8 @@ def evaluate_setups_with_samples(truth, predictions, protocol="miss-rate"):
         cityscale_raises.check(truth, predictions, protocol)
     exact = _exact_order(predictions, protocol)
     n_images = truth.n_images
-    flagged = ignore_flags(truth, protocol)
+    lost = _lost_images(truth, protocol)
+    flagged = _not_counted(truth, protocol)
     void = truth.zero_id_boxes() if protocol.variant == "cityscale" else None
     fraction = truth.cityscale_ignore()[1] if void is not None else None
     bad_ids = [{e[0]: e for e in truth.cityscale_faults.get("id", ())}] if void is not None else []
@@ -171,6 +174,8 @@ def evaluate_setups_with_samples(truth, predictions, protocol="miss-rate"):
         part = own | np.isin(truth.box_class, near)
         scenes = []  # per image: its boxes of the class or a neighbour, its detections
         for image in range(n_images):
+            if lost is not None and lost[image]:
+                continue
             g = gt_by_image[image]
             g = g[part[g]]
             d = det_by_image[image]
@@ -210,7 +215,7 @@ def evaluate_setups_with_samples(truth, predictions, protocol="miss-rate"):
     summary = {name: _setup_summary(per_class) for name, per_class in levels.items()}
     output = {
         "protocol": protocol.record(),
-        "n_images": int(n_images),
+        "n_images": _image_count(truth, protocol),
         "levels": summary,
         "headline": summary.get(protocol.headline_level, {}).get("miss_rate"),
     }
@@ -285,6 +290,9 @@ def _class_result(
         "det_score": np.asarray(scores, np.float64),
         "det_outcome": np.asarray(outcomes, np.int8),
     }
+    counted_images = truth.unique_counted_images() if city is not None else None
+    if counted_images is not None:  # the script's I0: ids np.unique merged count once
+        samples["fppi_image"] = counted_images
     if order_key is not None:  # the CityPersons script's exact order (level_samples)
         samples["det_key"] = np.concatenate(keys) if keys else np.zeros(0)
     tp, fp, _, _ = setup_running_counts(samples)
@@ -308,7 +316,7 @@ def _class_result(
         "miss_rate": lamr,
         "n_gt": n_gt,
         "reference_miss_rate": miss.tolist(),
-        "curve": curve_points(tp, fp, n_gt, truth.n_images),
+        "curve": curve_points(tp, fp, n_gt, _image_count(truth, protocol)),
         "detections": detections,
     }, samples
 
@@ -328,6 +336,31 @@ def _refuse_unwritable_id(truth, faults, boxes):
         )
 
 
+def _lost_images(truth, protocol):
+    """Per image, whether the CityPersons script's ``evaluate`` loses its id in
+    ``p.imgIds = list(np.unique(p.imgIds))`` (``GroundTruth.unique_lost_masks``: its
+    boxes and detections are never looked up), or None (nothing lost, or another
+    variant: the toolbox keys images by file)."""
+    lost = truth.unique_lost_masks() if protocol.variant == "cityscale" else None
+    return None if lost is None else lost[0]
+
+
+def _not_counted(truth, protocol):
+    """Per box, whether it never counts: a flag makes it an ignore box
+    (``ignore_flags``), or its image is lost (``_lost_images``)."""
+    flagged = ignore_flags(truth, protocol)
+    lost = _lost_images(truth, protocol)
+    return flagged if lost is None else flagged | lost[truth.box_image]
+
+
+def _image_count(truth, protocol):
+    """The images false positives are divided by: the CityPersons script's ``I0 =
+    len(_pe.imgIds)`` counts an id ``np.unique`` merged into another's once
+    (``GroundTruth.unique_counted_images``); elsewhere every image."""
+    counted = truth.unique_counted_images() if protocol.variant == "cityscale" else None
+    return truth.n_images if counted is None else int(counted.sum())
+
+
 def _setup_summary(per_class):
     present = [r["miss_rate"] for r in per_class.values() if r["miss_rate"] is not None]
     return {"classes": per_class, "miss_rate": float(np.mean(present)) if present else None}
@@ -337,7 +370,7 @@ def setup_counts(truth, protocol="miss-rate"):
     """Counted boxes per setup and evaluated class (the ``n_gt`` of
     ``evaluate_setups``), for a split's page: ``{setup: {class: n}}``."""
     protocol = get_miss_rate_protocol(protocol)
-    flagged = ignore_flags(truth, protocol)
+    flagged = _not_counted(truth, protocol)
     visibility = setup_visibility(truth, protocol)
     script = protocol.variant == "cityscale"
     out = {}

@@ -187,7 +187,7 @@ def counts(truth, predictions, records):
 #: How many ids ``lost_ids`` names.
 SHOWN_LOST_IDS = 20
 LOST_REASON = (
-    "pycocotools 2.0.11 evaluate() runs np.unique on the {} ids, which changes these ids "
+    "{} evaluate() runs np.unique on the {} ids, which changes these ids "
     "(numpy rounds them to float64 or cuts a trailing U+0000), then finds no ground truth "
     "and no detections under them: their boxes and detections are left out"
 )
@@ -200,6 +200,12 @@ def lost_ids(truth, protocol):
     their ground-truth boxes, the first ids and why; nothing where none is lost."""
     if get_protocol(protocol).tie_order != "image":
         return {}
+    return left_out_counts(truth)
+
+
+def left_out_counts(truth, reference="pycocotools 2.0.11"):
+    """``lost_ids``' counts under any reference whose ``evaluate`` runs ``np.unique`` on
+    the ids (pycocotools; the CityPersons script, ``miss-rate-cityscale``)."""
     out = {}
     for what, lost, ids, column in (
         ("images", truth.unique_lost_images, truth.image_ids, truth.box_image),
@@ -210,7 +216,9 @@ def lost_ids(truth, protocol):
                 what: len(lost),
                 "truth_boxes": int(np.isin(column, lost).sum()),
                 "ids": ids[lost[:SHOWN_LOST_IDS]].tolist(),
-                "reason": LOST_REASON.format("image" if what == "images" else "category"),
+                "reason": LOST_REASON.format(
+                    reference, "image" if what == "images" else "category"
+                ),
             }
     return out
 

@@ -339,8 +339,12 @@ def cityscale_coco(dataset, results, id_setup):
     nothing (no image with a box or detection of category 1, or no counted box of it),
     the miss rates then None."""
     dts_all = load_res(dataset, results)
-    img_ids = sorted({im["id"] for im in dataset["images"]})  # eval_demo; np.unique
-    cat_ids = sorted({c["id"] for c in dataset["categories"]})
+    # eval_demo: imgIds = sorted(cocoGt.getImgIds()) (the image dict's keys, first
+    # written); __init__: catIds = sorted(cocoGt.getCatIds()) (the categories as listed,
+    # repeats and all); evaluate: p.imgIds = list(np.unique(p.imgIds)), p.catIds alike.
+    # Lookups below are by those numpy values, as in the script's dicts.
+    img_ids = list(np.unique(sorted(dict.fromkeys(im["id"] for im in dataset["images"]))))
+    cat_ids = list(np.unique(sorted(c["id"] for c in dataset["categories"])))
     # _prepare: deep copies of getAnnIds(imgIds, catIds) (image by image in sorted id
     # order, file order within; listed images and categories only), then the ignore
     # flag. (Before engine 2.15.8 this took every annotation in file order: the same

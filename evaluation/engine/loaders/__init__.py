@@ -33,7 +33,7 @@ __all__ = [
 ]
 
 #: Bumped when the parsed columns change shape or meaning: old cache entries are unused.
-CACHE_SCHEMA = 20  # 20: truth entries keep the named content hash
+CACHE_SCHEMA = 21  # 21: truth entries keep the ids np.unique merges (unique_merged_images)
 UNKNOWN_CLASS_POLICIES = ("reject", "drop")
 #: Detections of images the split does not hold: refused (default; pycocotools'
 #: ``loadRes`` asserts every result image is in the set) or, for re-scoring stored

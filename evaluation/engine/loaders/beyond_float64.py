@@ -40,7 +40,7 @@ import os
 
 import numpy as np
 
-from .ids import unique_lost
+from .ids import looked_up_ids
 
 #: Magnitude from which ``float()`` of an integer raises OverflowError: it rounds to
 #: 2**1024 from halfway between the largest float64 (2**1024 - 2**971) and 2**1024.
@@ -194,22 +194,14 @@ def truth_refusal(truth):
     return _truth_refusal(str(truth.source), stat.st_mtime_ns, stat.st_size)
 
 
-def _looked_up(ids):
-    """The listed ids pycocotools' ``evaluate`` looks up: its dict's keys (as first
-    written) less those its ``np.unique`` changes (``ids.unique_lost``)."""
-    keys = list(dict.fromkeys(ids))
-    lost = set(unique_lost(keys).tolist())
-    return {key for n, key in enumerate(keys) if n not in lost}
-
-
 @functools.lru_cache(maxsize=8)
 def _truth_refusal(path, _mtime, _size):
     try:
         with open(path, encoding="utf-8") as f:
             split = json.load(f)
         annotations = split["annotations"]
-        images = _looked_up(image["id"] for image in split["images"])
-        categories = _looked_up(category["id"] for category in split["categories"])
+        images = looked_up_ids((image["id"] for image in split["images"]), distinct=True)
+        categories = looked_up_ids(category["id"] for category in split["categories"])
         last = {ann["id"]: k for k, ann in enumerate(annotations)}  # createIndex
     except (ValueError, OSError, RecursionError, KeyError, TypeError):
         return None

@@ -57,6 +57,10 @@ class Tops:
         self.zero_one = np.zeros(self._n, bool)  # per class: some score is 0 or 1
 
     def add(self, image, cls, score):
+        seen = self._truth.looked_up(image, cls)  # ids np.unique loses: never joined
+        if not seen.all():
+            image, cls = np.asarray(image)[seen], np.asarray(cls)[seen]
+            score = np.asarray(score)[seen]
         group = np.asarray(image, np.int64) * self._n + np.asarray(cls, np.int64)
         score = np.asarray(score, np.float64)
         self.zero_one[np.asarray(cls)[(score == 0.0) | (score == 1.0)]] = True
@@ -89,11 +93,17 @@ class Tops:
         ok = np.zeros(self._n, bool)
         ok[cls] = True
         ok[cls[(top != 0.0) & (top != 1.0)]] = False
-        truth = self._truth
-        truth_groups = truth.box_image.astype(np.int64) * self._n + truth.box_class
+        truth_groups, truth_class = self._truth_groups()
         lacking = ~np.isin(truth_groups, group)  # ground truth and no detection
-        ok[truth.box_class[lacking]] = False
+        ok[truth_class[lacking]] = False
         return np.flatnonzero(ok)
+
+    def _truth_groups(self):
+        """``(group, class)`` of each box its reference looks up (``looked_up``)."""
+        truth = self._truth
+        seen = truth.looked_up(truth.box_image, truth.box_class)
+        image, cls = truth.box_image[seen].astype(np.int64), truth.box_class[seen]
+        return image * self._n + cls, cls
 
     def cityscale_candidates(self):
         """The classes of category id 1 where the CityPersons script could join booleans
@@ -103,9 +113,8 @@ class Tops:
         if not ok.any():
             return np.zeros(0, np.int64)
         held = self._groups_held()
-        truth = self._truth
-        truth_groups = truth.box_image.astype(np.int64) * self._n + truth.box_class
-        ok[truth.box_class[~np.isin(truth_groups, held)]] = False
+        truth_groups, truth_class = self._truth_groups()
+        ok[truth_class[~np.isin(truth_groups, held)]] = False
         return np.flatnonzero(ok)
 
     def _groups_held(self):
@@ -133,6 +142,7 @@ def joined(conflicts, path, truth, tops, wide):
     if not (len(classes) or len(city)) or not _holds_literal(path):
         return conflicts
     rows, big = exact_scores._affected(path, truth, np.union1d(classes, city), wide)
+    rows, big = _looked_up_rows(truth, rows, big)
     found = entries(path, truth, classes, wide, rows)
     out = {**conflicts, KEY: found} if found else conflicts
     refused = cityscale_booleans.refusal(path, truth, rows, big, city)
@@ -151,7 +161,7 @@ def entries(path, truth, classes, wide, rows=None):
     if rows is None:
         if not _holds_literal(path):
             return []
-        rows, _ = exact_scores._affected(path, truth, classes, wide)
+        rows, _ = _looked_up_rows(truth, *exact_scores._affected(path, truth, classes, wide))
     n = len(truth.classes)
     group = rows["image"].astype(np.int64) * n + rows["cls"]
     rank = uncompared.ranks(group, rows["score"])
@@ -160,7 +170,8 @@ def entries(path, truth, classes, wide, rows=None):
     for k in np.asarray(classes).tolist():
         mine = rows["cls"] == k
         g, r, b, record = group[mine], rank[mine], is_bool[mine], rows["record"][mine]
-        images = np.unique(truth.box_image[truth.box_class == k])
+        own = (truth.box_class == k) & truth.looked_up(truth.box_image, truth.box_class)
+        images = np.unique(truth.box_image[own])
         if not len(g) or not np.isin(images.astype(np.int64) * n + k, g).all():
             continue  # an image with ground truth and no detection: a float64 list
         order = np.lexsort((r, g))
@@ -175,6 +186,17 @@ def entries(path, truth, classes, wide, rows=None):
         value = bool(rows["score"][mine][order][first])
         out.append(_entry(path, truth, k, depth, int(record[first]), value))
     return out
+
+
+def _looked_up_rows(truth, rows, big):
+    """``rows`` (``exact_scores._affected``) less the detections on an image or of a
+    class whose id ``np.unique`` loses (``GroundTruth.looked_up``): pycocotools and the
+    CityPersons script never fetch them, so never join their scores. ``big`` (keyed by
+    record) is passed on as it is."""
+    seen = truth.looked_up(rows["image"], rows["cls"])
+    if seen.all():
+        return rows, big
+    return {name: column[seen] for name, column in rows.items()}, big
 
 
 def _holds_literal(path, size=1 << 22):

@@ -56,13 +56,14 @@ def refusal(path, truth, rows, big, classes):
 
 
 def _in_e(truth, k, image):
-    """Per image of the split, whether ``evaluateImg`` of the class is not None."""
+    """Per image of the split, whether ``evaluateImg`` of the class is not None (never
+    for an image whose id ``np.unique`` loses: ``GroundTruth.looked_up``)."""
     part = np.isin(truth.box_class, [k] + neighbours_of(truth, MISS_RATE_CITYSCALE, k))
     out = np.zeros(truth.n_images, bool)
     out[truth.box_image[part]] = True
     out[truth.region_image] = True
     out[image] = True
-    return out
+    return out & truth.looked_up(np.arange(truth.n_images), np.full(truth.n_images, k))
 
 
 def _first_setup(truth, rows, big, k):

@@ -79,35 +79,71 @@ def as_written(ids, id_type, kinds):
     return values
 
 
-def unique_lost(values):
+def unique_lost(values, listed=None):
     """Positions (ascending) of the ids in ``values`` — a family's distinct ids as the
     JSON decoder gave them (``as_written``) — that pycocotools' ``evaluate`` loses.
 
     pycocotools 2.0.11 ``COCOeval.evaluate`` sets ``p.imgIds = list(np.unique(p.imgIds))``
-    and ``_prepare``/``evaluate`` then look images up by those numpy values in dicts
-    keyed by the ids as written (``imgToAnns``, ``_gts[imgId, catId]``,
-    ``_dts[imgId, catId]``). numpy discovers one dtype for the whole list (numpy's
-    "array creation" type discovery: Python ints in int64, else uint64, else object;
-    int64 with uint64 or with float gives float64; text gives a ``<U`` array, which
-    drops trailing U+0000), so an id it rounds or cuts equals no key: that image is
+    (and ``p.catIds`` alike) and ``_prepare``/``evaluate`` then look images up by those
+    numpy values in dicts keyed by the ids as written (``imgToAnns``, ``_gts[imgId,
+    catId]``, ``_dts[imgId, catId]``). numpy discovers one dtype for the whole list
+    (numpy's "array creation" type discovery: Python ints in int64, else uint64, else
+    object; int64 with uint64 or with float gives float64; text gives a ``<U`` array,
+    which drops trailing U+0000), so an id it rounds or cuts equals no key: that image is
     evaluated with no ground truth and no detections (``evaluateImg`` returns None),
     and where the changed value equals another id the two are one entry. This runs
     numpy's own ``np.unique`` on the same values and makes the same lookups, so it
     follows whatever the installed numpy does.
+
+    ``listed``: the list ``np.unique`` is run on where it is not ``values`` itself.
+    ``p.imgIds`` comes from ``getImgIds()``, the image dict's keys (``values``), but
+    ``p.catIds`` from ``getCatIds()``, the categories as the file lists them: a
+    category listed twice is there twice, each entry with its own JSON type (``1`` and
+    ``1.0``), and those types decide numpy's dtype for every other id.
     """
+    listed = values if listed is None else listed
     if not len(values):
         return np.zeros(0, np.int64)
-    if all(type(v) is int for v in values) and -(2**63) <= min(values) and max(values) < 2**63:
+    if all(type(v) is int for v in listed) and -(2**63) <= min(listed) and max(listed) < 2**63:
         return np.zeros(0, np.int64)  # int64: exact
     position = {}
     for n, value in enumerate(values):
         position.setdefault(value, n)
     found = np.zeros(len(values), bool)
-    for value in list(np.unique(values)):  # pycocotools' own line, then its lookups
+    for value in list(np.unique(listed)):  # pycocotools' own line, then its lookups
         n = position.get(value)
         if n is not None:
             found[n] = True
     return np.flatnonzero(~found)
+
+
+def looked_up_ids(listed, distinct=False):
+    """The ids of ``listed`` (a family's ids as the file writes them) pycocotools'
+    ``evaluate`` looks up: its dict's keys (first written) less those its ``np.unique``
+    loses (``unique_lost``). ``distinct``: ``np.unique`` runs on the dict's keys
+    (images: ``getImgIds``), else on ``listed`` itself (categories: ``getCatIds``)."""
+    listed = list(listed)
+    keys = list(dict.fromkeys(listed))
+    lost = set(unique_lost(keys, None if distinct else listed).tolist())
+    return {key for n, key in enumerate(keys) if n not in lost}
+
+
+def unique_merged(values):
+    """Positions (ascending) of the distinct ids in ``values`` (as written) whose
+    ``np.unique`` value is another id's entry: ids numpy rounds to one value are one
+    entry of ``p.imgIds``, owned by the id that value finds (else the first). The
+    CityPersons script divides false positives by the entries (``accumulate``:
+    ``fppi = fp / I0``, ``I0 = len(_pe.imgIds)``), so these images are not counted."""
+    if not len(values) or (
+        all(type(v) is int for v in values) and -(2**63) <= min(values) and max(values) < 2**63
+    ):
+        return np.zeros(0, np.int64)
+    inverse = np.unique(values, return_inverse=True)[1].reshape(-1).tolist()
+    lost = set(unique_lost(values).tolist())
+    owner = {entry: n for n, entry in enumerate(inverse) if n not in lost}
+    for n, entry in enumerate(inverse):
+        owner.setdefault(entry, n)
+    return np.array([n for n, entry in enumerate(inverse) if owner[entry] != n], np.int64)
 
 
 def csv_ids(values):

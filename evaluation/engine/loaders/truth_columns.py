@@ -92,17 +92,27 @@ def _cityscale_faults(city_rows, rows):
     return faults
 
 
-def _unique_lost(ids, id_type, kinds):
-    """``(positions, by_type)``: the ids (``GroundTruth`` ids of ``id_type``, written as
-    ``kinds`` says) pycocotools' ``np.unique`` loses (``ids.unique_lost``), and whether
-    their JSON types (``true``, ``1.0``) decided that."""
-    if not id_type and not kinds.any():  # int64: exact
-        return np.zeros(0, np.int64), False
-    lost = ids_module.unique_lost(ids_module.as_written(ids, id_type, kinds))
-    if not kinds.any():
-        return lost, False
-    plain = ids_module.unique_lost(ids_module.as_written(ids, id_type, None))
-    return lost, not np.array_equal(plain, lost)
+def _unique_lost(ids, id_type, kinds, listed=None):
+    """``(positions, by_type, merged)``: the ids (``GroundTruth`` ids of ``id_type``,
+    written as ``kinds`` says) pycocotools' ``np.unique`` loses (``ids.unique_lost``),
+    whether their JSON types (``true``, ``1.0``) decided that, and those that share
+    another's entry (``ids.unique_merged``). ``listed``: ``(ids, kinds)`` of the list
+    ``np.unique`` runs on where it is not ``ids`` (the categories as listed, repeats
+    and all: ``getCatIds``)."""
+    if listed is None:
+        listed = ids, kinds
+    if not id_type and not listed[1].any():  # int64: exact
+        return np.zeros(0, np.int64), False, np.zeros(0, np.int64)
+    values = ids_module.as_written(ids, id_type, kinds)
+    written = ids_module.as_written(listed[0], id_type, listed[1])
+    lost = ids_module.unique_lost(values, written)
+    merged = ids_module.unique_merged(values) if len(lost) else np.zeros(0, np.int64)
+    if not listed[1].any():
+        return lost, False, merged
+    plain = ids_module.unique_lost(
+        ids_module.as_written(ids, id_type, None), ids_module.as_written(listed[0], id_type, None)
+    )
+    return lost, not np.array_equal(plain, lost), merged
 
 
 def _order(values, id_type):
@@ -137,6 +147,8 @@ def read_truth(
         box_fields = {"image": "image_id", "class": "category_id", "bbox": "bbox", "id": "id"}
         image_path = path
         category_locate = lambda i: f"categories[{i}]"  # noqa: E731
+        # getCatIds() is the categories as listed, repeats and all (ids.unique_lost)
+        listed_classes = _shown(cols["class_ids"], class_type), cols["class_id_kinds"]
         if annotations != "strict":  # an image or category listed twice: its last entry
             kept, duplicates = annotation_index.last_entries(cols)
             entry_counts.update(duplicates)
@@ -206,7 +218,8 @@ def read_truth(
     if fmt == "json":
         lost["image"] = _unique_lost(shown, image_type, cols["image_id_kinds"][image_order])
         class_shown = _shown(class_ids, class_type)
-        lost["class"] = _unique_lost(class_shown, class_type, cols["class_id_kinds"][class_order])
+        class_kinds = cols["class_id_kinds"][class_order]
+        lost["class"] = _unique_lost(class_shown, class_type, class_kinds, listed_classes)
     annotation_counts = {**dict.fromkeys(annotation_index.COUNTS, 0), **entry_counts}
     rows = None
     if fmt == "json" and annotations == "strict":
@@ -310,7 +323,8 @@ def read_truth(
         class_id_type=class_type,
         unique_lost_images=lost.get("image", (None,))[0],
         unique_lost_classes=lost.get("class", (None,))[0],
-        unique_lost_by_type=any(by_type for _, by_type in lost.values()),
+        unique_lost_by_type=any(by_type for _, by_type, _ in lost.values()),
+        unique_merged_images=lost.get("image", (None, None, None))[2],
         box_policy=policy,
         box_counts={
             **checks.truth_box_counts(boxes, *frame, box_image),

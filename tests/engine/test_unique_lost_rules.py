@@ -1,0 +1,205 @@
+"""Every rule reads one answer to "which ids does the reference's ``np.unique`` lose".
+
+pycocotools 2.0.11 and the CityPersons script (``eval_MR_multisetup.py``) both run
+``p.imgIds = list(np.unique(p.imgIds))`` and ``p.catIds = list(np.unique(p.catIds))`` in
+``evaluate`` and then look images and categories up by those numpy values; what numpy
+rounds or cuts is never looked up (``loaders.ids.unique_lost``). The engine decides that
+once, on the ground truth (``GroundTruth.unique_lost_masks``/``looked_up``), and every
+rule reads it: the matching, the boolean-score refusals, the city-scale refusals and the
+city-scale FPPI. Each check runs pycocotools 2.0.11 itself or the transliteration of the
+CityPersons script (``pedestrian_oracle.cityscale_script``, which now runs the same
+``np.unique`` lines).
+"""
+
+import json
+
+import numpy as np
+import pytest
+
+from evaluation.engine import COCO_SUMMARY_KEYS, InputError, load_predictions, load_truth
+from evaluation.engine.__main__ import main
+from evaluation.engine.level_samples import LevelSamples, setup_class
+from evaluation.engine.loaders.ids import unique_lost, unique_merged
+from evaluation.engine.pedestrian import evaluate_setups_with_samples
+
+from .conftest import as_reference, pycocotools_eval
+from .test_cityscale_booleans import _agree
+from .test_cityscale_raises import _ann, _dataset, _det, _write
+from .test_unique_lost_ids import _class_split, _run
+
+BIG = 2**53 + 1  # float64 rounds it to 2^53 (round half to even): from numpy's rules
+
+
+# F1: a category listed twice -------------------------------------------------------
+
+
+def test_listed_categories_keep_their_repeats_and_types():
+    """``getCatIds()`` is the categories as listed: ``1`` then ``1.0`` makes the list a
+    float64 array beside ``2^53 + 1``, which is then lost; the dict keys alone (``1``,
+    ``2^53 + 1``: int64) lose nothing."""
+    distinct = [1, BIG]
+    assert unique_lost(distinct).tolist() == []
+    assert unique_lost(distinct, [1, 1.0, BIG]).tolist() == [1]
+
+
+@pytest.mark.parametrize("protocol", ["coco", "recall40"])
+def test_a_category_listed_twice_decides_numpys_type_as_in_pycocotools(tmp_path, protocol):
+    """Category 1 listed as ``1`` and again as ``1.0`` beside category ``2^53 + 1``:
+    pycocotools 2.0.11 loses the big one (its AP is -1, out of the mean); so do we,
+    under ``coco`` (every number equal to pycocotools) and ``recall40`` (the same
+    numbers as the split without that class)."""
+    split, detections = _class_split([1, BIG])
+    split["categories"].insert(1, {"id": 1.0, "name": "class 0"})
+    truth, ours = _run(tmp_path, split, detections, protocol)
+    assert truth.unique_lost_classes.tolist() == [1]
+    assert ours["counts"]["classes_left_out"]["classes"] == 1
+    assert ours["per_class"]["class 1"]["AP"] is None
+    if protocol == "coco":
+        reference = pycocotools_eval(tmp_path / "gt.json", tmp_path / "dt.json")
+        assert int(reference.params.catIds[-1]) == 2**53  # pycocotools' own np.unique
+        assert np.all(reference.eval["precision"][:, :, 1, 0, 2] == -1)  # lost there
+        for key, expected in zip(COCO_SUMMARY_KEYS, reference.stats):
+            assert as_reference(ours["summary"][key]) == pytest.approx(expected, abs=1e-12)
+        precision = reference.eval["precision"][:, :, 0, 0, 2]
+        assert ours["per_class"]["class 0"]["AP"] == pytest.approx(np.mean(precision))
+        return
+    alone, alone_dets = _class_split([1])
+    (tmp_path / "alone").mkdir()
+    _, expected = _run(tmp_path / "alone", alone, alone_dets, protocol)
+    assert ours["summary"] == expected["summary"]
+
+
+# F3: booleans beside a lost image's number -----------------------------------------
+
+
+def _bool_beside_lost(image_ids):
+    """One box per image; the first image's only detection scores ``true``, the lost
+    image's scores 0.5. pycocotools never joins the lost image's list, so it joins
+    ``[True]`` alone and ``-dtScores`` raises."""
+    split = {
+        "images": [{"id": i, "width": 200, "height": 200} for i in image_ids],
+        "categories": [{"id": 1, "name": "car"}],
+        "annotations": [
+            {"id": n + 1, "image_id": i, "category_id": 1, "bbox": [10, 10, 20, 20]}
+            for n, i in enumerate(image_ids)
+        ],
+    }
+    split["annotations"] = [{**a, "area": 400, "iscrowd": 0} for a in split["annotations"]]
+    detections = [
+        {"image_id": image_ids[0], "category_id": 1, "bbox": [10, 10, 20, 20], "score": True},
+        {"image_id": image_ids[1], "category_id": 1, "bbox": [10, 10, 20, 20], "score": 0.5},
+    ]
+    return split, detections
+
+
+@pytest.mark.parametrize("protocol", ["coco", "recall40"])
+def test_a_lost_images_number_does_not_save_booleans_from_pycocotools(tmp_path, protocol):
+    """pycocotools 2.0.11 raises (TypeError: numpy boolean negative) where the only
+    number of the class sits on an image its ``np.unique`` loses; refused here,
+    naming the boolean record. With the second image looked up (id 7) it scores."""
+    split, detections = _bool_beside_lost([0.5, BIG])
+    (tmp_path / "gt.json").write_text(json.dumps(split))
+    (tmp_path / "dt.json").write_text(json.dumps(detections))
+    with pytest.raises(TypeError, match="boolean"):
+        pycocotools_eval(tmp_path / "gt.json", tmp_path / "dt.json")
+    with pytest.raises(InputError) as error:
+        _run(tmp_path, split, detections, protocol)
+    assert error.value.record == "record 0" and error.value.field == "score"
+    split, detections = _bool_beside_lost([0.5, 7])
+    reference = pycocotools_eval_written(tmp_path, split, detections)
+    _, ours = _run(tmp_path, split, detections, "coco")
+    for key, expected in zip(COCO_SUMMARY_KEYS, reference.stats):
+        assert as_reference(ours["summary"][key]) == pytest.approx(expected, abs=1e-12)
+
+
+def pycocotools_eval_written(tmp_path, split, detections):
+    (tmp_path / "gt.json").write_text(json.dumps(split))
+    (tmp_path / "dt.json").write_text(json.dumps(detections))
+    return pycocotools_eval(tmp_path / "gt.json", tmp_path / "dt.json")
+
+
+# F2: the CityPersons script loses the same images -----------------------------------
+
+
+def _cityscale_case(images, lost_hit=True):
+    """Category 1 on every image: a box and a hit on the last image, a box and a far
+    false positive elsewhere; ``lost_hit``: the image whose id numpy rounds holds the
+    only other hit."""
+    annotations, results = [], []
+    for n, image in enumerate(images):
+        annotations.append(_ann(n + 1, 0.0, image_id=image))
+        results.append(_det(900.0, score=0.3 + 0.1 * n, image_id=image))
+    results.append(_det(0.0, score=0.95, image_id=images[-1]))
+    if lost_hit:
+        results.append(_det(0.0, score=0.6, image_id=images[1]))
+    return annotations, results
+
+
+@pytest.mark.parametrize(
+    "images, lost, merged",
+    [
+        ([0.5, BIG, 7], [BIG], []),  # rounded to 2^53, which no image has: evaluated empty
+        ([0.5, BIG, 2**53], [BIG], [BIG]),  # rounded onto image 2^53: one entry of imgIds
+        ([1, BIG, 7], [], []),  # int64: exact
+    ],
+)
+def test_cityscale_loses_the_images_the_script_loses(tmp_path, images, lost, merged):
+    """The script's miss rates (every setup, nine references) on images numpy rounds:
+    the lost image's boxes and detections are never looked up, and FPPI divides by the
+    entries of ``np.unique`` (a merged id is not an image there)."""
+    annotations, results = _cityscale_case(images)
+    gt, dt = _write(tmp_path, _dataset(annotations, images), results)
+    ours = _agree(gt, dt, results)
+    written = sorted(images)
+    assert [written[i] for i in unique_lost(written)] == lost
+    assert [written[i] for i in unique_merged(written)] == merged
+    assert ours["n_images"] == len(images) - len(merged)
+    truth = load_truth(gt)
+    output, samples = evaluate_setups_with_samples(
+        truth, load_predictions(dt, truth), "miss-rate-cityscale"
+    )
+    path = tmp_path / "samples.npz"
+    samples.save(path, output)
+    _, loaded = LevelSamples.load(path)
+    for (level, name), part in loaded.parts.items():  # weights of one: the same value
+        value = output["levels"][level]["classes"][name]["miss_rate"]
+        assert setup_class(part, loaded.protocol, np.ones(len(images), np.int64))[1] == value
+
+
+def test_cityscale_counts_the_lost_images_in_the_cli_result(tmp_path, capsys):
+    """The CLI's result (``annotate_levels``) counts them with the script's reason."""
+    images = [0.5, BIG, 7]
+    annotations, results = _cityscale_case(images)
+    gt, dt = _write(tmp_path, _dataset(annotations, images), results)
+    argv = ["score", "--truth", str(gt), "--predictions", str(dt), "--format", "json"]
+    assert main([*argv, "--protocol", "miss-rate-cityscale"]) == 0
+    left_out = json.loads(capsys.readouterr().out)["counts"]["images_left_out"]
+    assert left_out["images"] == 1 and left_out["truth_boxes"] == 1
+    assert "CityPersons script" in left_out["reason"]
+
+
+def test_cityscale_never_compares_a_lost_images_annotation_id(tmp_path):
+    """A text annotation id numpy cannot write into ``dtm`` is refused where the script
+    matches that box; on an image its ``np.unique`` loses it is never matched, and the
+    script scores the file."""
+    images = [0.5, BIG, 7]
+    annotations, results = _cityscale_case(images)
+    annotations[1]["id"] = "walker-2"
+    gt, dt = _write(tmp_path, _dataset(annotations, images), results)
+    _agree(gt, dt, results)
+    images = [0.5, 3, 7]  # looked up: matched, and refused as the script raises
+    annotations, results = _cityscale_case(images)
+    annotations[1]["id"] = "walker-2"
+    gt, dt = _write(tmp_path, _dataset(annotations, images), results)
+    assert isinstance(_agree(gt, dt, results), InputError)
+
+
+def test_cityscale_booleans_beside_a_lost_images_number(tmp_path):
+    """The only number of category 1 sits on the lost image: the script joins the
+    booleans alone and raises; refused here, naming the boolean record."""
+    images = [0.5, BIG]
+    annotations = [_ann(1, 0.0, image_id=0.5), _ann(2, 0.0, image_id=BIG)]
+    results = [_det(0.0, score=True, image_id=0.5), _det(0.0, score=0.5, image_id=BIG)]
+    gt, dt = _write(tmp_path, _dataset(annotations, images), results)
+    error = _agree(gt, dt, results, record="record 0")
+    assert isinstance(error, InputError)
