@@ -102,8 +102,8 @@ def detection_lines(counts):
             lines.append(
                 f"{_plural(n, one, many)} left out with "
                 f"{_plural(boxes, 'ground-truth box', 'ground-truth boxes')} and "
-                f"{'its' if n == 1 else 'their'} detections, as in pycocotools (its np.unique "
-                f"of the {family} ids changes {'this id' if n == 1 else 'these ids'}: "
+                f"{'its' if n == 1 else 'their'} detections, as in {_reference(lost)} (its "
+                f"np.unique of the {family} ids changes {'this id' if n == 1 else 'these ids'}: "
                 f"rounded to float64 or a trailing U+0000 cut): ids {_ids(ids)}"
                 + (" …" if n > len(ids) else "")
             )
@@ -114,6 +114,13 @@ def detection_lines(counts):
             f"holds {'was' if images == 1 else 'were'} left out"
         )
     return lines
+
+
+def _reference(lost):
+    """The reference a ``*_left_out`` count follows, from its reason (pycocotools, or
+    the CityPersons script under ``miss-rate-cityscale``)."""
+    script = "CityPersons" in (lost.get("reason") or "")
+    return "the CityPersons script" if script else "pycocotools"
 
 
 def of_split(split):

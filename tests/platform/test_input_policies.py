@@ -573,3 +573,24 @@ def test_a_lead_cannot_approve_on_evaluations_of_the_old_class_policy(
         version, users["lead"], "approved", "ship", justification="class 7 is a known extra"
     )
     assert SignOff.objects.get().decision == "approved"
+
+
+def test_lost_image_lines_name_the_reference_of_the_count():
+    """A level result under ``miss-rate-cityscale`` counts the images the CityPersons
+    script's ``np.unique`` loses (the engine's reason names it); the line says so, and
+    pycocotools' counts keep naming pycocotools."""
+    from evaluation import left_out
+    from evaluation.engine.provenance import LOST_REASON
+
+    for reference in ("pycocotools 2.0.11", "the CityPersons script (eval_MR_multisetup.py)"):
+        counts = {
+            "images_left_out": {
+                "images": 1,
+                "truth_boxes": 2,
+                "ids": [9007199254740993],
+                "reason": LOST_REASON.format(reference, "image"),
+            }
+        }
+        (line,) = left_out.detection_lines(counts)
+        named = "the CityPersons script" if "CityPersons" in reference else "pycocotools"
+        assert f"as in {named} (its np.unique of the image ids" in line, line
