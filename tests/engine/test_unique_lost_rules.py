@@ -15,6 +15,8 @@ import json
 
 import numpy as np
 import pytest
+from hypothesis import HealthCheck, assume, given, settings
+from hypothesis import strategies as st
 
 from evaluation.engine import COCO_SUMMARY_KEYS, InputError, load_predictions, load_truth
 from evaluation.engine.__main__ import main
@@ -25,7 +27,7 @@ from evaluation.engine.pedestrian import evaluate_setups_with_samples
 from .conftest import as_reference, pycocotools_eval
 from .test_cityscale_booleans import _agree
 from .test_cityscale_raises import _ann, _dataset, _det, _write
-from .test_unique_lost_ids import _class_split, _run
+from .test_unique_lost_ids import KINDS, TEXT, _class_split, _distinct, _run
 
 BIG = 2**53 + 1  # float64 rounds it to 2^53 (round half to even): from numpy's rules
 
@@ -203,3 +205,20 @@ def test_cityscale_booleans_beside_a_lost_images_number(tmp_path):
     gt, dt = _write(tmp_path, _dataset(annotations, images), results)
     error = _agree(gt, dt, results, record="record 0")
     assert isinstance(error, InputError)
+
+
+@settings(
+    max_examples=30, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture]
+)
+@given(data=st.data(), text=st.booleans())
+def test_random_image_ids_score_as_the_script(tmp_path, data, text):
+    """Image ids of mixed kinds (``test_unique_lost_ids``' strategies: ints around 2^53,
+    2^63 and 2^64, bools, whole, fractional and infinite floats; or text with U+0000):
+    every setup's miss rates equal the transliteration's, which runs the script's
+    ``np.unique`` and lookups."""
+    ids = _distinct(data.draw(st.lists(TEXT if text else KINDS, min_size=2, max_size=6)))
+    assume(len(ids) >= 2)
+    annotations, results = _cityscale_case(ids)
+    gt, dt = _write(tmp_path, _dataset(annotations, ids), results)
+    ours = _agree(gt, dt, results)
+    assert not isinstance(ours, Exception)
