@@ -285,8 +285,9 @@ def _judge_level(version, inputs, index, rule, splits, level_cards):
                 _scorecards(current_sets(baseline), found[0]) if baseline else {},
             )
         cards, baseline_cards = level_cards[found[0]]
+    read_once = level_cards.setdefault("read once", {})
     classes = (
-        level_rules.classes_of(detector, rule, inputs.suite)
+        level_rules.classes_of(detector, rule, inputs.suite, splits, read_once)
         if rule["class"] == "*"
         else [rule["class"]]
     )
@@ -311,7 +312,7 @@ def _judge_level(version, inputs, index, rule, splits, level_cards):
                     cards.get(split),
                     baseline_cards.get(split),
                     names,
-                    level_cards.setdefault("read once", {}),
+                    read_once,
                 )
             )
     return out

@@ -25,6 +25,7 @@ import numpy as np
 from django.conf import settings
 
 from evaluation import levels
+from evaluation.engine.data import name_key
 from evaluation.services import load_truth_of
 
 from .models import Outcome
@@ -69,14 +70,66 @@ def validate(detector, rule, clean, index, fail):
     return clean
 
 
-def classes_of(detector, rule, suite):
+def classes_of(detector, rule, suite, splits=(), cache=None):
     """The classes a ``*`` level rule covers: the detector's classes its protocol
-    evaluates (case-insensitive), else all of them."""
+    evaluates (case-insensitive), else all of them. On a split whose categories share a
+    name (shown ``Car (id 1)``, ``Car (id 2)``), a detector class named as shown is
+    covered when its category's own name is one the protocol evaluates."""
     found = levels.protocols_with_level(_names(detector, suite), rule["level"])
     if not found:
         return list(detector.classes)
-    own = {c.lower() for c in levels.get(found[0]).classes}
-    return [c for c in detector.classes if c.lower() in own] or list(detector.classes)
+    own = {name_key(c) for c in levels.get(found[0]).classes}
+    cache = {} if cache is None else cache
+    renamed = [table for s in splits if (table := _renamed(s, cache))]
+
+    def covered(name):
+        if name_key(name) in own:
+            return True
+        return any(table[name_key(name)][0] in own for table in renamed if name_key(name) in table)
+
+    return [c for c in detector.classes if covered(c)] or list(detector.classes)
+
+
+def _renamed(split, cache):
+    """For a split some of whose categories share a name (the loader shows them as
+    ``Car (id 1)``, ``Car (id 2)``; ``annotations_left_out.categories_renamed``):
+    ``{name: (own name, the shown names of every category of that own name)}`` for
+    each shown and own name, compared as ``name_key``. None for any other split (its
+    ground truth is not read)."""
+    if not (split.annotations_left_out or {}).get("categories_renamed"):
+        return None
+    key = ("renamed", split.pk)
+    if key not in cache:
+        truth = load_truth_of(split)
+        table = {}
+        for own in truth.category_names:
+            group = frozenset(name_key(truth.classes[k]) for k in truth.classes_named(own))
+            table.setdefault(name_key(own), (name_key(own), group))
+        for shown, own in zip(truth.classes, truth.category_names):
+            table[name_key(shown)] = table[name_key(own)]
+        cache[key] = table
+    return cache[key]
+
+
+def stored_name(keys, name, split, cache):
+    """The key under which a level result (``keys``: its classes, or its samples')
+    keeps ``name``'s class. ``kitti2d`` evaluates categories sharing an own name as one
+    class, as the devkit reads label lines of that name, keyed by the first one's shown
+    name (``engine.difficulty``): ``Car`` or ``Car (id 2)`` is kept as ``Car (id 1)``.
+    A name matching a key (case-insensitive) is that key; one matching none, or more
+    than one key of its own name (the miss-rate setups keep such categories apart), is
+    returned as given (not measured)."""
+    if name == "mean":
+        return name
+    by_lower = {k.lower(): k for k in keys}
+    if name.lower() in by_lower:
+        return by_lower[name.lower()]
+    table = _renamed(split, cache)
+    entry = table.get(name_key(name)) if table else None
+    if entry is None:
+        return name
+    hits = [k for k in keys if name_key(k) in entry[1]]
+    return hits[0] if len(hits) == 1 else name
 
 
 def _names(detector, suite):
@@ -115,10 +168,15 @@ def judge(outcome, rule, split, name, card, baseline_card, suite_names, cache):
         outcome.status = Outcome.Status.MISSING
         outcome.detail = f"{label}: no {protocol.name} result on {split}"
         return outcome
+    entry = card.result["levels"].get(level)
+    stored = stored_name(entry["classes"] if entry else (), name, split, cache)
+    if stored.lower() != name.lower():
+        merged = f"{name} (one class with {stored!r})"
+        label = f"{rule['metric']} of {merged}{where} ({protocol.name}) on {split}"
     if tag or rule["kind"] == "no_significant_drop":
-        return _judge_on_samples(outcome, rule, split, name, card, baseline_card, label, cache)
-    value = value_of(card, level, name)
-    base_value = value_of(baseline_card, level, name)
+        return _judge_on_samples(outcome, rule, split, stored, card, baseline_card, label, cache)
+    value = value_of(card, level, stored)
+    base_value = value_of(baseline_card, level, stored)
     return _compare(outcome, rule, protocol.lower_is_better, value, base_value, label)
 
 
