@@ -356,7 +356,8 @@ def _judge_one(
             outcome.status, outcome.detail = found[0], f"{label}: {whose}{found[1]}"
             return outcome
     if value is None:
-        outcome.status, outcome.detail = Outcome.Status.NO_DATA, f"{label}: not measured"
+        note = "" if where else selectors.absent_note(card, name, bootstraps)
+        outcome.status, outcome.detail = Outcome.Status.NO_DATA, f"{label}: not measured{note}"
         return outcome
     if rule["kind"] == "min_value":
         ok = value >= rule["threshold"]
@@ -366,6 +367,9 @@ def _judge_one(
     if baseline_card is None or base_value is None:
         outcome.status = Outcome.Status.NO_DATA
         outcome.detail = f"{label}: no baseline scored on this split"
+        if baseline_card is not None:
+            note = "" if where else selectors.absent_note(baseline_card, name, bootstraps)
+            outcome.detail = f"{label}: not measured for the baseline{note}"
         return outcome
     drop = base_value - value
     tolerance = rule["tolerance"] / 100

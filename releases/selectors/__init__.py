@@ -66,6 +66,8 @@ from .scores import (  # noqa: F401
     _class_rows,
     _scorecards,
     _splits,
+    absent_classes,
+    absent_note,
     class_numbers,
     summary_items,
 )

@@ -3,7 +3,7 @@
 from ..models import PredictionSet
 from . import miss_rate
 from .levels import level_deltas
-from .scores import _class_rows, _scorecards
+from .scores import _class_rows, _scorecards, absent_classes
 
 
 def significance(delta, interval):
@@ -249,6 +249,12 @@ def compare_versions(reference, candidate):
                 "missing_intervals": state != "done"
                 and any(d["delta"] is not None and not d["interval"] for d in deltas),
                 "interval_error": error if state == "failed" else "",
+                # (version, class, why) for each class without an AP on either side
+                "absent": [
+                    (version.label, name, why)
+                    for version, card in ((reference, a), (candidate, b))
+                    for name, why in absent_classes(card, detector.classes)
+                ],
                 "protocol_differences": protocol_differences(a, b),
                 "levels": by_level.get(split.pk, []),
             }

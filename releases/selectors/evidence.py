@@ -51,6 +51,7 @@ def evidence_for(version):
                 "predictions_sha256": card.predictions_sha256,
                 "summary": dict(summary_items(card.summary)),
                 "classes": classes,
+                "absent_classes": dict(entry["absent"]),
                 "deployed": _deployed(entry["deployed"]),
             }
         )

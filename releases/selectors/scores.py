@@ -64,6 +64,34 @@ def summary_items(summary):
     return sorted(summary.items(), key=lambda item: (rank.get(item[0], len(order)), item[0]))
 
 
+def absent_classes(card, classes):
+    """``(class, why)`` for each of ``classes`` the scorecard has no AP for, in the
+    engine's words (``protocol_record.absent_classes``: no counted box, every detection
+    ignored under ``voc07``, ...); needs the card's result. Empty for a result recorded
+    before the record (engine 2.4.0)."""
+    record = card.result.get("protocol_record") or {}
+    why = record.get("absent_classes") or {}
+    return [(name, why[name]) for name in classes if name in why]
+
+
+def absent_note(card, name, cache):
+    """``" (why)"``: why the scorecard has no AP for class ``name``, in the engine's
+    words, read without loading the rest of its result ("" when it recorded none);
+    ``cache`` keeps one card's reasons."""
+    from evaluation.models import Scorecard
+
+    key = ("absent", card.pk)
+    if key not in cache:
+        found = (
+            Scorecard.objects.filter(pk=card.pk)
+            .values_list("result__protocol_record__absent_classes", flat=True)
+            .first()
+        )
+        cache[key] = found if isinstance(found, dict) else {}
+    why = cache[key].get(name)
+    return f" ({why})" if why else ""
+
+
 def class_numbers(row):
     """One ClassScore row as the API and the evidence report give it."""
     return {

@@ -1,7 +1,7 @@
 """The version page: each split's scorecard."""
 
 from . import miss_rate
-from .scores import _class_rows, _scorecards, summary_items
+from .scores import _class_rows, _scorecards, absent_classes, summary_items
 
 
 def version_scorecards(version, suite=None):
@@ -37,6 +37,8 @@ def version_scorecards(version, suite=None):
                 "split": ps.split,
                 "card": card,
                 "classes": [rows.get(card.pk, {}).get(c) for c in detector.classes] if card else [],
+                # the classes without an AP, and why (the engine's protocol record)
+                "absent": absent_classes(card, detector.classes) if card else [],
                 "tags": sorted(slices.get(card.pk, {}).items()) if card else [],
                 "summary": summary_items(card.summary) if card else [],
                 "sizes": [

@@ -149,6 +149,8 @@ class VersionResults(Endpoint, APIView):
                         "classes": [
                             selectors.class_numbers(c) for c in entry["classes"] if c is not None
                         ],
+                        # classes without an AP, and why (the engine's words)
+                        "absent_classes": dict(entry["absent"]),
                         "tags": dict(entry["tags"]),
                         "sizes": dict(entry["sizes"]),
                         "other_protocols": {p: ap for p, ap in entry["others"]},
