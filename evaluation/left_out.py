@@ -57,6 +57,9 @@ _ANNOTATION_LINES = (
     ("iscrowd_text_or_null", "iscrowd value", "iscrowd values",
      'given as text or null read as pycocotools reads them ("1" a crowd region, "0" an '
      "ignored box)"),
+    ("unreadable_on_lost_ids", "annotation", "annotations",
+     "with a bbox or area pycocotools would raise on left out: their image or category "
+     "id is one its np.unique changes, so it never reads them"),
     ("categories_renamed", "category", "categories",
      'sharing a name named with their ids ("car (id 3)"): per-class numbers are kept by '
      "name"),
@@ -107,6 +110,15 @@ def detection_lines(counts):
                 f"rounded to float64 or a trailing U+0000 cut): ids {_ids(ids)}"
                 + (" …" if n > len(ids) else "")
             )
+    unreadable = int(
+        ((counts.get("boxes") or {}).get("predictions") or {}).get("unreadable_on_lost_ids") or 0
+    )
+    if unreadable:
+        lines.append(
+            f"{_plural(unreadable, 'detection', 'detections')} with a score or field "
+            "pycocotools would raise on left out: their image or class id is one its "
+            "np.unique changes, so it never reads them"
+        )
     images = int(counts.get("dropped_unknown_images") or 0)
     if images:
         lines.append(

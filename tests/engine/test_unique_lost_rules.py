@@ -25,6 +25,7 @@ from evaluation.engine.loaders.ids import unique_lost, unique_merged
 from evaluation.engine.pedestrian import evaluate_setups_with_samples
 
 from .conftest import as_reference, pycocotools_eval
+from .load_paths import as_pycocotools, every_path_agrees
 from .test_cityscale_booleans import _agree
 from .test_cityscale_raises import _ann, _dataset, _det, _write
 from .test_unique_lost_ids import KINDS, TEXT, _class_split, _distinct, _run
@@ -222,3 +223,76 @@ def test_random_image_ids_score_as_the_script(tmp_path, data, text):
     gt, dt = _write(tmp_path, _dataset(annotations, ids), results)
     ours = _agree(gt, dt, results)
     assert not isinstance(ours, Exception)
+
+
+# Values pycocotools never reads: on an image or class np.unique loses ---------------
+
+
+def _two_images(lost=True):
+    """Image 0.5 and image 2^53 + 1 (lost beside 0.5) or 7 (looked up); one box and
+    one hit on each, and a miss on 0.5."""
+    other = BIG if lost else 7
+    split = {
+        "images": [{"id": 0.5}, {"id": other}],
+        "categories": [{"id": 1, "name": "car"}],
+        "annotations": [
+            {"id": n + 1, "image_id": i, "category_id": 1, "bbox": [10, 10, 20, 20]}
+            for n, i in enumerate((0.5, other))
+        ],
+    }
+    split["annotations"] = [{**a, "area": 400, "iscrowd": 0} for a in split["annotations"]]
+    detections = [
+        {"image_id": 0.5, "category_id": 1, "bbox": [10, 10, 20, 20], "score": 0.9},
+        {"image_id": other, "category_id": 1, "bbox": [10, 10, 20, 20], "score": 0.8},
+        {"image_id": 0.5, "category_id": 1, "bbox": [50, 10, 20, 20], "score": 0.7},
+    ]
+    return split, detections
+
+
+UNREAD_CASES = {
+    # pycocotools reads an annotation's area and bbox only in evaluateImg/computeIoU
+    "annotation area text": ("truth", "area", "big"),
+    "annotation bbox short": ("truth", "bbox", [10, 10, 20]),
+    "annotation bbox text inside": ("truth", "bbox", [10, 10, 20, "x"]),
+    "annotation without bbox": ("truth", "bbox", None),
+    # a detection's score only in evaluateImg/accumulate; extra box values never
+    "detection score text": ("detections", "score", "high"),
+    "detection score null": ("detections", "score", None),
+    "detection score list": ("detections", "score", [1]),
+    "detection bbox of five": ("detections", "bbox", [10, 10, 20, 20, 1]),
+}
+
+
+def _unreadable(split, detections, where, field, value):
+    record = split["annotations"][1] if where == "truth" else detections[1]
+    if value is None:
+        record.pop(field)
+    else:
+        record[field] = value
+
+
+@pytest.mark.parametrize("case", UNREAD_CASES)
+def test_values_on_a_lost_image_are_never_read_as_in_pycocotools(
+    tmp_path, files, monkeypatch, case
+):
+    """pycocotools 2.0.11 fetches no annotation or detection of an image its
+    ``np.unique`` loses, so it never reads these values and scores the file: scored
+    here too (the record left out, counted in ``unreadable_on_lost_ids``), every
+    number equal; on a looked-up image (id 7) both refuse it (pycocotools raises)."""
+    where, field, value = UNREAD_CASES[case]
+    split, detections = _two_images()
+    _unreadable(split, detections, where, field, value)
+    truth, predictions = files.load(split, detections)
+    gt, dt = files.write("gt-ref.json", split), files.write("dt-ref.json", detections)
+    as_pycocotools(gt, dt, truth, predictions)
+    counts = truth.box_counts if where == "truth" else predictions.box_counts
+    assert counts["unreadable_on_lost_ids"] == 1
+    if where == "detections":  # cached, sliced, validated first, streamed pieces
+        every_path_agrees(tmp_path, monkeypatch, dt, truth, predictions, chunk=9)
+    split, detections = _two_images(lost=False)
+    _unreadable(split, detections, where, field, value)
+    with pytest.raises(Exception):  # noqa: B017  pycocotools' own error, whatever it is
+        pycocotools_eval(files.write("gt7.json", split), files.write("dt7.json", detections))
+    with pytest.raises(InputError) as error:
+        files.load(split, detections)
+    assert error.value.field == field and error.value.record in ("annotations[1]", "record 1")

@@ -594,3 +594,15 @@ def test_lost_image_lines_name_the_reference_of_the_count():
         (line,) = left_out.detection_lines(counts)
         named = "the CityPersons script" if "CityPersons" in reference else "pycocotools"
         assert f"as in {named} (its np.unique of the image ids" in line, line
+
+
+def test_records_never_read_on_lost_ids_are_named():
+    """Annotations and detections left out because pycocotools never reads them (their
+    image's id is one its np.unique loses) each get a line."""
+    from evaluation import left_out
+
+    (split_line,) = left_out.annotation_lines({"unreadable_on_lost_ids": 2})
+    assert split_line.startswith("2 annotations with a bbox or area"), split_line
+    counts = {"boxes": {"predictions": {"unreadable_on_lost_ids": 1}}}
+    (line,) = left_out.detection_lines(counts)
+    assert line.startswith("1 detection with a score or field"), line

@@ -36,6 +36,7 @@ COUNTS = (
     "duplicate_image_entries",
     "duplicate_category_entries",
     "categories_renamed",
+    "unreadable_on_lost_ids",
     *unread_fields.COUNTS,
 )
 #: The columns of one image / one category in ``coco_truth._Records``.

@@ -184,6 +184,26 @@ def resolve(path, truth, raw, policy, unknown_classes, unknown_images, rank_of=N
 LOOKUP, SCORES, UNFIT, POLICY = range(4)
 
 
+#: ``box_counts`` key: detections with a missing or non-number score or an unfit field
+#: on an image or of a class whose id pycocotools' ``np.unique`` loses.
+UNREADABLE_ON_LOST = "unreadable_on_lost_ids"
+
+
+def _unreadable_on_lost(truth, image, cls, score, unfit, kept_at):
+    """Per record, whether its score or a field is one pycocotools would raise on
+    (``unread_fields.bad_scores``, ``raw.unfit``) but it never reads it: its image or
+    class id is one its ``np.unique`` loses (``GroundTruth.looked_up``), so
+    ``evaluate`` never fetches it. Such records are left out and counted; every other
+    detection of a lost image stays (the VOC protocols score those images)."""
+    seen = truth.looked_up(image, cls)
+    if seen.all():
+        return np.zeros(len(score), bool)
+    bad = unread_fields.bad_scores(score)
+    if unfit is not None:
+        bad |= uncompared.fields(unfit[kept_at])
+    return bad & ~seen
+
+
 def _resolve(path, truth, raw, policy, unknown_classes, unknown_images, rank_of, at):
 
     image_ids, class_keys, boxes, score = raw.image_ids, raw.class_keys, raw.boxes, raw.score
@@ -230,6 +250,17 @@ def _resolve(path, truth, raw, policy, unknown_classes, unknown_images, rank_of,
         kept_rows = np.flatnonzero(found)
         locate_all = locate
         locate = lambda i: locate_all(int(kept_rows[i]))  # noqa: E731
+    unreadable = _unreadable_on_lost(truth, image, cls, score, unfit, kept_at)
+    if unreadable.any():  # pycocotools never fetches them: left out, counted
+        keep = ~unreadable
+        image, cls, boxes, score = image[keep], cls[keep], boxes[keep], score[keep]
+        area = None if area is None else area[keep]
+        free = None if free is None else free[keep]
+        bad_id = None if bad_id is None else bad_id[keep]
+        kept_at = kept_at[keep]
+        kept_looked = np.flatnonzero(keep)
+        locate_looked = locate
+        locate = lambda i: locate_looked(int(kept_looked[i]))  # noqa: E731
     at[0] = SCORES
     checks.fail_at(  # a bad score only on a detection of a class pycocotools evaluates
         path,
@@ -295,6 +326,7 @@ def _resolve(path, truth, raw, policy, unknown_classes, unknown_images, rank_of,
             **({} if area is None else {AREA_COUNT[raw.reading]: len(area)}),
             **({uncompared.COUNT: uncompared_unfit} if uncompared_unfit else {}),
             **(raw.extra_counts or {}),
+            **({UNREADABLE_ON_LOST: int(unreadable.sum())} if unreadable.any() else {}),
             **({} if free is None else {as_given.FREE: int(free.sum())}),
         },
         dropped_classes=dropped_classes,

@@ -58,17 +58,39 @@ def _typed_family(path, cols, defining, refs, locate, what):
     return ids_module.family_type(keys)
 
 
-def _raise_if_scored(path, bad_rows, rows, n):
+def _raise_if_scored(path, bad_rows, rows, n, unread=()):
     """The first annotation with a bad ``bbox`` or ``area`` that is scored (``rows``:
     the source rows scored, None for all ``n``), as an error naming it; one never
-    scored (pycocotools never reads it either) is left out with its image or id."""
+    scored (pycocotools never reads it either) is left out with its image or id.
+    ``unread``: rows pycocotools never reads either, as their image or category id is
+    one its ``np.unique`` loses (``_unread_on_lost``)."""
     if not bad_rows:
         return
     scored = set(range(n)) if rows is None else set(rows.tolist())
-    hits = sorted(set(bad_rows) & scored)
+    hits = sorted(set(bad_rows) & scored - set(unread))
     if hits:
         field, message = bad_rows[hits[0]]
         raise InputError(path, message, record=f"annotations[{hits[0]}]", field=field)
+
+
+def _unread_on_lost(cols, bad_rows, rows, image_ids, class_ids, lost):
+    """The rows (of ``rows``, None: every row) with a bad ``bbox`` or ``area`` placed on
+    an image or under a category whose id pycocotools' ``np.unique`` loses
+    (``lost``: ``_unique_lost`` of each family): ``evaluate`` never fetches them, so
+    it never reads the value and scores the file. They are left out here and counted
+    (``unreadable_on_lost_ids``): every protocol reads one ground truth."""
+    if not bad_rows or not lost:
+        return np.zeros(0, np.int64)
+    bad = np.array(sorted(bad_rows), np.int64)
+    if rows is not None:
+        bad = bad[np.isin(bad, rows)]
+    lost_images, lost_classes = image_ids[lost["image"][0]], class_ids[lost["class"][0]]
+    if not (len(lost_images) or len(lost_classes)):
+        return np.zeros(0, np.int64)
+    on_lost = np.isin(cols["box_image_ids"][bad], lost_images) | np.isin(
+        cols["box_class_ids"][bad], lost_classes
+    )
+    return bad[on_lost]
 
 
 def _cityscale_faults(city_rows, rows):
@@ -227,7 +249,12 @@ def read_truth(
     elif fmt == "json":
         rows, resolved = annotation_index.resolve(cols, image_ids, class_ids)
         annotation_counts.update(resolved)
-        _raise_if_scored(path, bad_rows, rows, len(cols["boxes"]))
+        unread = _unread_on_lost(cols, bad_rows, rows, image_ids, class_ids, lost)
+        _raise_if_scored(path, bad_rows, rows, len(cols["boxes"]), unread)
+        if len(unread):  # never read by pycocotools: left out, counted
+            kept = np.arange(len(cols["boxes"])) if rows is None else rows
+            rows = kept[~np.isin(kept, unread)]
+            annotation_counts["unreadable_on_lost_ids"] = len(unread)
         if rows is not None:
             annotation_index.take(cols, rows)
             box_locate = lambda i: f"annotations[{rows[i]}]"  # noqa: E731
