@@ -7,7 +7,7 @@ import numpy as np
 
 from ..data import GroundTruth
 from ..errors import InputError
-from . import annotation_index, attributes, checks, coco_json, csv_tables, label_folders
+from . import annotation_index, attributes, checks, coco_json, csv_tables, label_folders, lost_ids
 from . import ids as ids_module
 from .ids import csv_ids, ids_like
 
@@ -63,7 +63,7 @@ def _raise_if_scored(path, bad_rows, rows, n, unread=()):
     the source rows scored, None for all ``n``), as an error naming it; one never
     scored (pycocotools never reads it either) is left out with its image or id.
     ``unread``: rows pycocotools never reads either, as their image or category id is
-    one its ``np.unique`` loses (``_unread_on_lost``)."""
+    one its ``np.unique`` loses (``lost_ids.unread_on_lost``)."""
     if not bad_rows:
         return
     scored = set(range(n)) if rows is None else set(rows.tolist())
@@ -71,26 +71,6 @@ def _raise_if_scored(path, bad_rows, rows, n, unread=()):
     if hits:
         field, message = bad_rows[hits[0]]
         raise InputError(path, message, record=f"annotations[{hits[0]}]", field=field)
-
-
-def _unread_on_lost(cols, bad_rows, rows, image_ids, class_ids, lost):
-    """The rows (of ``rows``, None: every row) with a bad ``bbox`` or ``area`` placed on
-    an image or under a category whose id pycocotools' ``np.unique`` loses
-    (``lost``: ``_unique_lost`` of each family): ``evaluate`` never fetches them, so
-    it never reads the value and scores the file. They are left out here and counted
-    (``unreadable_on_lost_ids``): every protocol reads one ground truth."""
-    if not bad_rows or not lost:
-        return np.zeros(0, np.int64)
-    bad = np.array(sorted(bad_rows), np.int64)
-    if rows is not None:
-        bad = bad[np.isin(bad, rows)]
-    lost_images, lost_classes = image_ids[lost["image"][0]], class_ids[lost["class"][0]]
-    if not (len(lost_images) or len(lost_classes)):
-        return np.zeros(0, np.int64)
-    on_lost = np.isin(cols["box_image_ids"][bad], lost_images) | np.isin(
-        cols["box_class_ids"][bad], lost_classes
-    )
-    return bad[on_lost]
 
 
 def _cityscale_faults(city_rows, rows):
@@ -112,29 +92,6 @@ def _cityscale_faults(city_rows, rows):
             entry = [position[row], f"annotations[{row}]", message, bool(truthy)]
             faults.setdefault(field, []).append(entry)
     return faults
-
-
-def _unique_lost(ids, id_type, kinds, listed=None):
-    """``(positions, by_type, merged)``: the ids (``GroundTruth`` ids of ``id_type``,
-    written as ``kinds`` says) pycocotools' ``np.unique`` loses (``ids.unique_lost``),
-    whether their JSON types (``true``, ``1.0``) decided that, and those that share
-    another's entry (``ids.unique_merged``). ``listed``: ``(ids, kinds)`` of the list
-    ``np.unique`` runs on where it is not ``ids`` (the categories as listed, repeats
-    and all: ``getCatIds``)."""
-    if listed is None:
-        listed = ids, kinds
-    if not id_type and not listed[1].any():  # int64: exact
-        return np.zeros(0, np.int64), False, np.zeros(0, np.int64)
-    values = ids_module.as_written(ids, id_type, kinds)
-    written = ids_module.as_written(listed[0], id_type, listed[1])
-    lost = ids_module.unique_lost(values, written)
-    merged = ids_module.unique_merged(values) if len(lost) else np.zeros(0, np.int64)
-    if not listed[1].any():
-        return lost, False, merged
-    plain = ids_module.unique_lost(
-        ids_module.as_written(ids, id_type, None), ids_module.as_written(listed[0], id_type, None)
-    )
-    return lost, not np.array_equal(plain, lost), merged
 
 
 def _order(values, id_type):
@@ -238,10 +195,10 @@ def read_truth(
     class_ids = cols["class_ids"][class_order]
     lost = {}  # what pycocotools' np.unique loses: a COCO JSON file's ids only
     if fmt == "json":
-        lost["image"] = _unique_lost(shown, image_type, cols["image_id_kinds"][image_order])
+        lost["image"] = lost_ids.unique_lost(shown, image_type, cols["image_id_kinds"][image_order])
         class_shown = _shown(class_ids, class_type)
         class_kinds = cols["class_id_kinds"][class_order]
-        lost["class"] = _unique_lost(class_shown, class_type, class_kinds, listed_classes)
+        lost["class"] = lost_ids.unique_lost(class_shown, class_type, class_kinds, listed_classes)
     annotation_counts = {**dict.fromkeys(annotation_index.COUNTS, 0), **entry_counts}
     rows = None
     if fmt == "json" and annotations == "strict":
@@ -249,7 +206,7 @@ def read_truth(
     elif fmt == "json":
         rows, resolved = annotation_index.resolve(cols, image_ids, class_ids)
         annotation_counts.update(resolved)
-        unread = _unread_on_lost(cols, bad_rows, rows, image_ids, class_ids, lost)
+        unread = lost_ids.unread_on_lost(cols, bad_rows, rows, image_ids, class_ids, lost)
         _raise_if_scored(path, bad_rows, rows, len(cols["boxes"]), unread)
         if len(unread):  # never read by pycocotools: left out, counted
             kept = np.arange(len(cols["boxes"])) if rows is None else rows
