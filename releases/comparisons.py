@@ -4,7 +4,7 @@ A judgement computes paired-bootstrap intervals only for the candidate against i
 baseline and only for the classes its rules name. The compare page may show any pair;
 where no interval exists, a reader asks for one: ``request_intervals`` queues one row
 per shared scored split and ``compute`` (the task ``releases.tasks.compare``) fills it
-with the same bootstrap the judge uses (``criteria._intervals``: same replicates, same
+with the same bootstrap the judge uses (``delta_intervals._intervals``: same replicates, same
 seed), for the mean, every class, every image tag of the split and every size bucket
 of the protocol.
 """
@@ -110,7 +110,7 @@ def compute(pk):
     under each image tag. Idempotent: a row that is done is left alone."""
     from evaluation.models import Scorecard
 
-    from .criteria import _intervals
+    from .delta_intervals import _intervals
 
     row = ComparisonInterval.objects.select_related("split").filter(pk=pk).first()
     if row is None or row.state == ComparisonInterval.State.DONE:

@@ -80,7 +80,7 @@ def _request_missing(inputs, version):
 
 
 def _compute(version, inputs):
-    from .criteria import outcomes_for
+    from .rule_outcomes import outcomes_for
 
     reasons = _pending_reasons(inputs)
     outcomes = outcomes_for(version, inputs) if inputs.criteria is not None else []

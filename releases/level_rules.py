@@ -6,7 +6,7 @@ holds that level (``evaluation.levels``; ``kitti2d``: easy / moderate / hard, me
 miss-rate setup, ``miss_rate``) turns the rule's direction: ``min_value`` then means "at most
 the threshold" and a *drop* is a rise. Every rule kind applies: ``min_value``,
 ``max_drop`` and ``no_significant_drop`` (the paired image bootstrap of
-``criteria._intervals``: the same draws, seed and pairing by image, over the level's
+``delta_intervals._intervals``: the same draws, seed and pairing by image, over the level's
 per-image samples, ``engine.level_samples``). A ``tag`` judges the level on the tag's
 images only (image weights 0/1, every kind). A level sets its own box heights, so a
 ``size`` is refused.
@@ -284,7 +284,7 @@ def _judge_on_samples(outcome, rule, split, name, card, baseline_card, label, ca
     outcome.low, outcome.high = interval.low, interval.high
     worse = value - base_value if lower else base_value - value
     significant = interval.low > 0 if lower else interval.high < 0
-    from .criteria import significance_status  # criteria imports this module
+    from .rule_outcomes import significance_status  # rule_outcomes imports this module
 
     outcome.status = significance_status(worse, significant, rule["tolerance"] / 100)
     outcome.detail = (
@@ -297,7 +297,7 @@ def _judge_on_samples(outcome, rule, split, name, card, baseline_card, label, ca
 def _intervals(samples, base, level, mask, confidence, only=None):
     r"""Paired-bootstrap intervals of Δ (candidate − baseline) of the level's [mean, each
     class]: the same image draws for both (pairing by image), the seed and number of
-    replicates of every significance rule (``criteria._intervals``), restricted to a
+    replicates of every significance rule (``delta_intervals._intervals``), restricted to a
     tag's images by multiplying the draws with its 0/1 mask.
 
     .. math:: \Delta^*_b = S_C(w_b \odot m) - S_B(w_b \odot m)

@@ -86,7 +86,7 @@ def measure(card, rule, class_name, cache):
 
 def weights_and_area(card, records, rule, truth_of):
     """The bootstrap's image mask (None: all) and size-bucket index of ``rule``'s slice,
-    for the significance rules (``criteria._intervals``)."""
+    for the significance rules (``delta_intervals._intervals``)."""
     where = of(rule)
     if where is None:
         return None, 0

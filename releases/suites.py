@@ -292,7 +292,7 @@ def deployed_operating_point(card, suite):
         threshold_scores,
     )
 
-    from .criteria import _records
+    from .delta_intervals import _records
 
     records = _records(card)
     protocol = resolve_protocol(card.protocol)

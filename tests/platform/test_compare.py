@@ -6,7 +6,7 @@ import re
 
 import pytest
 
-from releases import comparisons, criteria, judging, services
+from releases import comparisons, criteria, delta_intervals, judging, services
 from releases import tasks as release_tasks
 from releases.models import ComparisonInterval, Outcome
 
@@ -171,7 +171,7 @@ def test_requests_are_idempotent_scoped_and_retried_after_a_failure(
     def broken(*args):
         raise OSError("records file missing")
 
-    monkeypatch.setattr(criteria, "_intervals", broken)
+    monkeypatch.setattr(delta_intervals, "_intervals", broken)
     comparisons.compute(sent[0])
     page = client.get(
         f"/detectors/{detector.pk}/compare/?reference={with_baseline.pk}&candidate={candidate.pk}"

@@ -34,9 +34,9 @@ def scored(version, split, split_truth, users, run_tasks, monkeypatch):
 
 
 def _failing(monkeypatch, times):
-    """``criteria.outcomes_for`` raises on its first ``times`` calls (a lost database
+    """``rule_outcomes.outcomes_for`` raises on its first ``times`` calls (a lost database
     connection, a worker out of memory), then works."""
-    real = __import__("releases.criteria", fromlist=["outcomes_for"]).outcomes_for
+    real = __import__("releases.rule_outcomes", fromlist=["outcomes_for"]).outcomes_for
     calls = []
 
     def flaky(*args, **kwargs):
@@ -45,7 +45,7 @@ def _failing(monkeypatch, times):
             raise ConnectionError("connection to the database server was lost")
         return real(*args, **kwargs)
 
-    monkeypatch.setattr("releases.criteria.outcomes_for", flaky)
+    monkeypatch.setattr("releases.rule_outcomes.outcomes_for", flaky)
     return calls
 
 

@@ -10,7 +10,7 @@ candidates; every judgement is an audit event and the chain stays intact.
 import pytest
 
 from evaluation import services as evaluation_services
-from releases import criteria, judging, judging_queue, services, suites, verdicts
+from releases import criteria, judging, judging_queue, rule_outcomes, services, suites, verdicts
 from releases import tasks as release_tasks
 from releases.audit import verify_audit
 from releases.models import AuditEvent, Judgement, Outcome, SignOff
@@ -196,7 +196,7 @@ def test_judging_that_raises_is_recorded_not_stuck(
     def broken(*args):
         raise OSError("match records missing from storage")
 
-    monkeypatch.setattr(criteria, "outcomes_for", broken)
+    monkeypatch.setattr(rule_outcomes, "outcomes_for", broken)
     monkeypatch.setattr(release_tasks.judge, "max_retries", 0)  # this is the last attempt
     _submit(run_tasks, version, split, split_truth, users)
     verdict = verdicts.verdict_of(version)
