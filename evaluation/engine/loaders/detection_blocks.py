@@ -189,6 +189,14 @@ LOOKUP, SCORES, UNFIT, POLICY = range(4)
 UNREADABLE_ON_LOST = "unreadable_on_lost_ids"
 
 
+def _narrowed(keep, columns, locate):
+    """``columns`` (arrays; None stays None) at the rows ``keep`` marks, and ``locate``
+    (row -> record) of the narrowed rows."""
+    rows = np.flatnonzero(keep)
+    narrowed = tuple(None if c is None else c[keep] for c in columns)
+    return narrowed, lambda i: locate(int(rows[i]))
+
+
 def _unreadable_on_lost(truth, image, cls, score, unfit, kept_at):
     """Per record, whether its score or a field is one pycocotools would raise on
     (``unread_fields.bad_scores``, ``raw.unfit``) but it never reads it: its image or
@@ -214,19 +222,9 @@ def _resolve(path, truth, raw, policy, unknown_classes, unknown_images, rank_of,
     dropped_images = 0
     if unknown_images == "drop" and not found.all():
         dropped_images = int((~found).sum())
-        rows = np.flatnonzero(found)
-        image, class_keys, boxes, score = (
-            image[found],
-            class_keys[found],
-            boxes[found],
-            score[found],
-        )
-        area = None if area is None else area[found]
-        free = None if free is None else free[found]
-        bad_id = None if bad_id is None else bad_id[found]
-        kept_at = kept_at[found]
-        locate_read = locate
-        locate = lambda i: locate_read(int(rows[i]))  # noqa: E731
+        columns = (image, class_keys, boxes, score, area, free, bad_id, kept_at)
+        columns, locate = _narrowed(found, columns, locate)
+        image, class_keys, boxes, score, area, free, bad_id, kept_at = columns
     else:
         checks.require_found(path, found, raw.shown, locate, fields["image"], "image")
     cls, found = checks.resolve(path, class_keys, raw.known_classes, locate, "", "")
@@ -242,25 +240,14 @@ def _resolve(path, truth, raw, policy, unknown_classes, unknown_images, rank_of,
             )
         dropped = int((~found).sum())
         dropped_classes = distinct_keys(class_keys[~found])
-        image, cls, boxes, score = image[found], cls[found], boxes[found], score[found]
-        area = None if area is None else area[found]
-        free = None if free is None else free[found]
-        bad_id = None if bad_id is None else bad_id[found]
-        kept_at = kept_at[found]
-        kept_rows = np.flatnonzero(found)
-        locate_all = locate
-        locate = lambda i: locate_all(int(kept_rows[i]))  # noqa: E731
+        columns = (image, cls, boxes, score, area, free, bad_id, kept_at)
+        columns, locate = _narrowed(found, columns, locate)
+        image, cls, boxes, score, area, free, bad_id, kept_at = columns
     unreadable = _unreadable_on_lost(truth, image, cls, score, unfit, kept_at)
     if unreadable.any():  # pycocotools never fetches them: left out, counted
-        keep = ~unreadable
-        image, cls, boxes, score = image[keep], cls[keep], boxes[keep], score[keep]
-        area = None if area is None else area[keep]
-        free = None if free is None else free[keep]
-        bad_id = None if bad_id is None else bad_id[keep]
-        kept_at = kept_at[keep]
-        kept_looked = np.flatnonzero(keep)
-        locate_looked = locate
-        locate = lambda i: locate_looked(int(kept_looked[i]))  # noqa: E731
+        columns = (image, cls, boxes, score, area, free, bad_id, kept_at)
+        columns, locate = _narrowed(~unreadable, columns, locate)
+        image, cls, boxes, score, area, free, bad_id, kept_at = columns
     at[0] = SCORES
     checks.fail_at(  # a bad score only on a detection of a class pycocotools evaluates
         path,
@@ -286,14 +273,10 @@ def _resolve(path, truth, raw, policy, unknown_classes, unknown_images, rank_of,
                 raise InputError(path, message, record=locate(int(compared[0])), field=field)
             keep = np.ones(len(score), bool)
             keep[bad] = False
-            image, cls, boxes, score = image[keep], cls[keep], boxes[keep], score[keep]
-            area = None if area is None else area[keep]
-            free = None if free is None else free[keep]
-            bad_id = None if bad_id is None else bad_id[keep]
+            columns = (image, cls, boxes, score, area, free, bad_id)
+            columns, locate = _narrowed(keep, columns, locate)
+            image, cls, boxes, score, area, free, bad_id = columns
             uncompared_unfit = len(bad)
-            kept = np.flatnonzero(keep)
-            locate_unfit = locate
-            locate = lambda i: locate_unfit(int(kept[i]))  # noqa: E731
     at[0] = POLICY
     checks.check_boxes(path, boxes, locate, fields["bbox"], policy)
     if policy == "reject":  # else scored as pycocotools does: NaN ranks last
