@@ -184,8 +184,9 @@ def _compare(outcome, rule, lower, value, base_value, label):
     """min_value and max_drop on the two numbers (None: not measured)."""
     outcome.value, outcome.baseline_value = value, base_value
     if value is None:
-        outcome.status, outcome.detail = Outcome.Status.NO_DATA, f"{label}: not measured"
-        return outcome
+        from .rule_outcomes import unmeasured
+
+        return unmeasured(outcome, label, None, base_value)
     if rule["kind"] == "min_value":
         ok = value <= rule["threshold"] if lower else value >= rule["threshold"]
         outcome.status = Outcome.Status.PASS if ok else Outcome.Status.FAIL
@@ -268,8 +269,9 @@ def _judge_on_samples(outcome, rule, split, name, card, baseline_card, label, ca
         return _compare(outcome, rule, lower, value, base_value, label)
     outcome.value, outcome.baseline_value = value, base_value
     if value is None:
-        outcome.status, outcome.detail = Outcome.Status.NO_DATA, f"{label}: not measured"
-        return outcome
+        from .rule_outcomes import unmeasured
+
+        return unmeasured(outcome, label, None, base_value)
     if base is None or base_value is None:
         outcome.status = Outcome.Status.NO_DATA
         outcome.detail = f"{label}: no baseline scored on this split"

@@ -6,6 +6,7 @@ excludes zero on the bad side and the drop exceeds the tolerance; a drop whose i
 holds zero is *not significant*.
 """
 
+from evaluation.engine.provenance import UNDEFINED_AP
 from evaluation.models import BenchmarkSplit, ClassScore
 
 from . import level_rules, rule_slices, selectors
@@ -170,9 +171,8 @@ def _judge_one(
             outcome.status, outcome.detail = found[0], f"{label}: {whose}{found[1]}"
             return outcome
     if value is None:
-        note = "" if where else selectors.absent_note(card, name, bootstraps)
-        outcome.status, outcome.detail = Outcome.Status.NO_DATA, f"{label}: not measured{note}"
-        return outcome
+        why = None if where else selectors.absent_reason(card, name, bootstraps)
+        return unmeasured(outcome, label, why, base_value)
     if rule["kind"] == "min_value":
         ok = value >= rule["threshold"]
         outcome.status = Outcome.Status.PASS if ok else Outcome.Status.FAIL
@@ -210,6 +210,23 @@ def _judge_one(
         f"{label}: Δ {value - base_value:+.3f}, {100 * rule['confidence']:.0f} % interval "
         f"[{interval.low:+.3f}, {interval.high:+.3f}]"
     )
+    return outcome
+
+
+def unmeasured(outcome, label, why, base_value):
+    """The outcome of a rule whose candidate has no number. *No data* (it passes) only
+    where there is nothing to measure; where the class is measurable — the baseline has
+    the number, or the engine says the metric is undefined on boxes that count
+    (``engine.provenance.UNDEFINED_AP``) — the rule cannot be judged: *missing*, so
+    the verdict is incomplete and only a lead's override with a written reason can
+    approve it."""
+    note = f" ({why})" if why else ""
+    if base_value is None and why != UNDEFINED_AP:
+        outcome.status, outcome.detail = Outcome.Status.NO_DATA, f"{label}: not measured{note}"
+        return outcome
+    had = "" if base_value is None else f"; the baseline has {base_value:.3f}"
+    outcome.status = Outcome.Status.MISSING
+    outcome.detail = f"{label}: cannot be judged, not measured for this version{note}{had}"
     return outcome
 
 

@@ -42,6 +42,16 @@ def _recall_sampling(protocol):
     return {"kind": f"{len(points)} points", "count": len(points), "points": list(points)}
 
 
+#: Why a class with counted ground truth has no AP (``absent_classes``): not "nothing to
+#: measure" but a number the metric leaves undefined, which a release gate cannot pass.
+UNDEFINED_AP = (
+    "every detection of the class is ignored (matched to a difficult, crowd or "
+    "ignored box): precision TP / (TP + FP) is 0/0 throughout, so its AP is "
+    "undefined (the VOC 2007 devkit's 11-point loop gives NaN); left out of "
+    "the mean, which in the devkit would be NaN"
+)
+
+
 def protocol_record(protocol, truth, predictions, records, result):
     """Every setting that decides the numbers of ``result``, as plain JSON values.
 
@@ -68,12 +78,7 @@ def protocol_record(protocol, truth, predictions, records, result):
                 else f"all {int(n_boxes[k])} ground-truth boxes are ignored ({flags} flags)"
             )
         elif undefined[k]:
-            absent[name] = (
-                "every detection of the class is ignored (matched to a difficult, crowd or "
-                "ignored box): precision TP / (TP + FP) is 0/0 throughout, so its AP is "
-                "undefined (the VOC 2007 devkit's 11-point loop gives NaN); left out of "
-                "the mean, which in the devkit would be NaN"
-            )
+            absent[name] = UNDEFINED_AP
     area_given = truth.box_counts.get("area_from_file")
     return {
         "name": protocol.name,

@@ -68,6 +68,7 @@ from .scores import (  # noqa: F401
     _splits,
     absent_classes,
     absent_note,
+    absent_reason,
     class_numbers,
     summary_items,
 )

@@ -231,9 +231,11 @@ def _judged(scored, users, run_tasks, rules):
     return verdicts.verdict_of(scored["1.1"]), list(outcomes)
 
 
-def test_the_gate_reads_the_class_as_not_measured(scored, users, run_tasks):
-    """Every rule kind on car: no data with the engine's reason (never judged as an AP
-    of 0, never a crash); the mean is van's AP; van judged as usual."""
+def test_the_gate_cannot_judge_the_class_and_never_passes_it(scored, users, run_tasks):
+    """Every rule kind on car: *missing* with the engine's reason (never judged as an
+    AP of 0, never a silent pass, never a crash): car has counted boxes and the
+    baseline's AP, so the verdict is incomplete and approving 1.1 is an override that
+    needs a written justification; the mean is van's AP; van judged as usual."""
     van, base_van = scored["ap 1.1"]["van"], scored["ap 1.0"]["van"]
     rules = [
         {"kind": "min_value", "class": "mean", "threshold": 0.0},
@@ -244,13 +246,16 @@ def test_the_gate_reads_the_class_as_not_measured(scored, users, run_tasks):
         {"kind": "no_significant_drop", "class": "mean", "tolerance": 100.0},
     ]
     verdict, outcomes = _judged(scored, users, run_tasks, rules)
-    assert verdict.state == "pass", verdict.reasons
+    assert verdict.state == "incomplete", verdict.reasons
+    assert verdict.reasons and all(REASON in r for r in verdict.reasons)
     by = {(o.rule_index, o.class_name): o for o in outcomes}
     assert by[(0, "mean")].value == pytest.approx(van, abs=1e-12)
     for key in ((1, "car"), (2, "car"), (3, "car")):
         outcome = by[key]
-        assert outcome.status == "no data" and outcome.value is None, outcome.detail
-        assert REASON in outcome.detail, outcome.detail
+        assert outcome.status == "missing" and outcome.value is None, outcome.detail
+        assert REASON in outcome.detail and "cannot be judged" in outcome.detail
+    with pytest.raises(services.DecisionError, match="needs a written justification"):
+        services.sign_off(scored["1.1"], users["lead"], "approved", "looks fine")
     # van is judged as usual beside it: a finite interval from the paired bootstrap
     significance = by[(3, "van")]
     assert significance.value == pytest.approx(van, abs=1e-12)
@@ -274,3 +279,13 @@ def test_the_gate_reads_the_class_as_not_measured(scored, users, run_tasks):
         scored, users, run_tasks, [{"kind": "min_value", "class": "mean", "threshold": above}]
     )
     assert verdict.state == "regression" and outcomes[0].value == pytest.approx(van)
+    verdict, _ = _judged(scored, users, run_tasks, rules)  # back to the car rules
+    assert verdict.state == "incomplete"
+    record, event = services.sign_off(
+        scored["1.1"],
+        users["lead"],
+        "approved",
+        "car checked by hand",
+        justification="car boxes on the depot apron are all marked difficult this month",
+    )
+    assert record.override and record.verdict == "incomplete" and event.kind == "override"
