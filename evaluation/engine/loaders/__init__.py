@@ -14,6 +14,8 @@ Formats: COCO-style JSON, CSV tables, and folders or zips of KITTI, YOLO or Pasc
 VOC label files (``label_folders``), named or detected from the content.
 """
 
+import os
+
 from ..errors import InputError
 from . import checks, csv_tables, label_folders, truth_columns
 from .annotation_index import ANNOTATION_POLICIES
@@ -33,7 +35,9 @@ __all__ = [
 ]
 
 #: Bumped when the parsed columns change shape or meaning: old cache entries are unused.
-CACHE_SCHEMA = 21  # 21: truth entries keep the ids np.unique merges (unique_merged_images)
+#: 22: label-file and CSV ids are integers of ASCII digits only (``ids.INTEGER``);
+#: 21: truth entries keep the ids np.unique merges (unique_merged_images)
+CACHE_SCHEMA = 22
 UNKNOWN_CLASS_POLICIES = ("reject", "drop")
 #: Detections of images the split does not hold: refused (default; pycocotools'
 #: ``loadRes`` asserts every result image is in the set) or, for re-scoring stored
@@ -148,6 +152,8 @@ def load_truth(
         raise InputError(
             path, "a CSV split needs its images table (image_id, optionally width,height,tags)"
         )
+    if images is not None and os.path.isdir(images):  # before the cache hashes it
+        raise InputError(images, "is a folder: the images table is a CSV file")
     sources = [path] + ([images] if images is not None else [])
     key = {
         "kind": "truth",

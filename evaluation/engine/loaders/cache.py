@@ -19,12 +19,14 @@ import hmac
 import json
 import logging
 import os
+import stat
 import tempfile
 
 import numpy as np
 
 from ..data import GroundTruth, Predictions
-from .members import is_single_result
+from ..errors import InputError
+from .members import Members, is_single_result
 
 _TYPES = {"truth": GroundTruth, "predictions": Predictions}
 _BLOCK = 1 << 20
@@ -56,24 +58,38 @@ def entry_digest(secret, key, arrays):
 
 
 def file_sha256(path):
-    """SHA-256 of a file's bytes; of a folder, of its files' names and digests."""
+    """SHA-256 of a file's bytes; of a folder, of its files' names and digests (the
+    files ``Members`` lists: what is read is what is hashed). An input that cannot be
+    opened is the ``InputError`` loading it gives without a cache; anything but a
+    regular file or a folder (a named pipe, a device) is refused: hashing would read
+    it before parsing reads it again (a pipe's bytes are gone; one without a writer
+    would block forever)."""
     if os.path.isdir(path):
         return _folder_sha256(path)
-    digest = hashlib.sha256()
-    with open(path, "rb") as f:
-        while block := f.read(_BLOCK):
-            digest.update(block)
+    try:
+        mode = os.stat(path).st_mode
+        if not stat.S_ISREG(mode):
+            raise InputError(
+                path,
+                "not a regular file (a named pipe or a device): the cache (--cache) keys "
+                "an entry by the file's bytes, read before they are parsed; give a file, "
+                "or no cache",
+            )
+        digest = hashlib.sha256()
+        with open(path, "rb") as f:
+            while block := f.read(_BLOCK):
+                digest.update(block)
+    except OSError as e:
+        raise InputError(path, f"cannot open: {e.strerror}") from None
     return digest.hexdigest()
 
 
 def _folder_sha256(path):
     digest = hashlib.sha256(b"folder")
-    for folder, dirs, files in sorted(os.walk(path)):
-        dirs.sort()
-        for name in sorted(files):
-            full = os.path.join(folder, name)
-            relative = os.path.relpath(full, path).replace(os.sep, "/")
-            digest.update(f"{relative}\0{file_sha256(full)}\n".encode())
+    with Members(path) as members:  # its refusals (links leaving it, pipes) too
+        for name in members.names:
+            full = os.path.join(str(path), *name.split("/"))
+            digest.update(f"{name}\0{file_sha256(full)}\n".encode())
     return digest.hexdigest()
 
 

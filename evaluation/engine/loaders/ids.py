@@ -1,6 +1,7 @@
 """Image, class and annotation ids: typed as pycocotools types them, shown as written.
 
-CSV and label-file ids are text: integers when every id is one (``csv_ids``), else text.
+CSV and label-file ids are text: integers when every id is one (``csv_ids``; ASCII
+digits only, ``INTEGER``), else text.
 
 COCO-style JSON ids are whatever JSON value the file gives; pycocotools keys its dicts by
 them, so (checked against pycocotools 2.0.11 in ``tests/engine/test_any_ids.py``):
@@ -39,7 +40,9 @@ import re
 
 import numpy as np
 
-INTEGER = re.compile(r"^[+-]?\d+$")
+#: An integer id: ASCII digits only (``\\d`` and ``str.isdigit`` take other scripts'
+#: digits and superscripts, which ``int`` reads or refuses: ``٣`` would be image 3).
+INTEGER = re.compile(r"[+-]?[0-9]+\Z")
 SURROGATE = re.compile("[\ud800-\udfff]")
 INT64 = (-(2**63), 2**63 - 1)
 NUMBER, TEXT, NULL = "\x1d", "\x1e", "\x1f"  # the type marks of typed keys
@@ -253,6 +256,8 @@ def _canonical_number(text):
     ``2.5``, ``1e0`` -> ``1``); other text unchanged."""
     if INTEGER.match(text):
         return str(int(text))
+    if not text.isascii() or "_" in text:  # float() reads "٣" and "1_0" as numbers
+        return text
     try:
         value = float(text)
     except ValueError:

@@ -22,6 +22,7 @@ import numpy as np
 
 from ..errors import InputError
 from . import csv_tables, kitti, voc_results, voc_xml, yolo
+from .ids import INTEGER
 from .image_sizes import IMAGE_EXTENSIONS, size_from_header
 from .label_lines import lines
 from .members import Members, extension, is_collection, stem
@@ -38,9 +39,10 @@ _FIELDS = {
 
 
 def _key(image_id):
-    """Compare ids as numbers when they are integers (``000012`` is ``12``)."""
+    """Compare ids as numbers when they are integers (``000012`` is ``12``): ASCII
+    digits only, as ``ids.csv_ids`` types them (``٣`` and ``³`` are text ids)."""
     text = str(image_id).strip()
-    return int(text) if text.lstrip("+-").isdigit() else text
+    return int(text) if INTEGER.match(text) else text
 
 
 def label_files(members, fmt):

@@ -11,7 +11,9 @@ Zip bombs: a member is decompressed through a stream and cut off at
 ``MAX_MEMBER_BYTES`` of *actual* output (the sizes an archive declares can lie), and
 the text read from one archive is capped at ``MAX_TOTAL_BYTES``; image members are
 only ever read for their first ``HEADER_BYTES``. Operating-system metadata
-(``__MACOSX/``, dot files) is skipped.
+(``__MACOSX/``, dot files) is skipped. Anything else that is not a regular file (a
+named pipe, a socket, a device, a broken link) is refused, naming it, and so are two
+zip members of one name (``zipfile`` would read only the last).
 """
 
 import os
@@ -53,6 +55,21 @@ def is_single_result(path):
         and os.path.isfile(path)
         and not zipfile.is_zipfile(path)
     )
+
+
+def _kind(path):
+    """What a non-regular file is, in words."""
+    try:
+        mode = os.stat(path).st_mode
+    except OSError:
+        return "a symbolic link to nothing"
+    if stat.S_ISFIFO(mode):
+        return "a named pipe"
+    if stat.S_ISSOCK(mode):
+        return "a socket"
+    if stat.S_ISCHR(mode) or stat.S_ISBLK(mode):
+        return "a device"
+    return "not a file"
 
 
 def _skipped(name):
@@ -127,6 +144,12 @@ class Members:
                         )
                 if os.path.isfile(full):
                     names.append(name)
+                else:  # a pipe, socket, device or broken link: refused, as with --cache
+                    raise InputError(
+                        self.path,
+                        f"not a regular file ({_kind(full)}); a label folder holds files; refused",
+                        record=name,
+                    )
         return sorted(names)
 
     def _zip_names(self):
@@ -145,7 +168,16 @@ class Members:
             if info.flag_bits & 0x1:
                 raise InputError(self.path, "the member is encrypted", record=name)
             names.append(name)
-        return sorted(names)
+        names.sort()
+        for earlier, name in zip(names, names[1:]):
+            if earlier == name:  # zipfile reads only the last of them by name
+                raise InputError(
+                    self.path,
+                    "two members of the archive have this name: which one to read "
+                    "is ambiguous; refused",
+                    record=name,
+                )
+        return names
 
     def read(self, name, limit=MAX_MEMBER_BYTES):
         """The member's bytes; an error past ``limit`` bytes (counted as decompressed)."""
