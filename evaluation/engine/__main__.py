@@ -16,18 +16,30 @@ from .difficulty import DIFFICULTY_PRESETS, evaluate_levels, levels_table
 from .errors import InputError
 from .evaluate import evaluate
 from .level_provenance import annotate_levels
-from .loaders import BOX_POLICIES, FORMATS, VIS_RATIO_READINGS, load_predictions, load_truth
+from .loaders import (
+    BOX_POLICIES,
+    FORMATS,
+    VIS_RATIO_READINGS,
+    detect_format,
+    load_predictions,
+    load_truth,
+)
 from .pedestrian import MISS_RATE_PRESETS, evaluate_setups, setups_table
 from .protocols import PRESETS, get_protocol, protocol_from_dict
 from .report import table
+from .version import ENGINE_VERSION
 
 EXIT_BAD_INPUT = 2
+#: Every preset ``--protocol`` names; the level ones keep no match records.
+ALL_PRESETS = (*PRESETS, *DIFFICULTY_PRESETS, *MISS_RATE_PRESETS)
+#: ``--threshold`` when not given: the operating point's score cut.
+DEFAULT_THRESHOLD = 0.5
 
 
 def _protocol(value):
     if value in PRESETS:
         return get_protocol(value)
-    unreadable = f"not a preset ({', '.join(PRESETS)}) and not readable"
+    unreadable = f"not a preset ({', '.join(ALL_PRESETS)}) and not readable"
     spec = json_file.read(value, cannot_open=unreadable)
     return protocol_from_dict(spec, source=value)
 
@@ -64,7 +76,8 @@ def build_parser():
     score.add_argument(
         "--images",
         help="images table CSV (image_id; width,height,tags optional): needed for a CSV split, "
-        "optional for label folders (else sizes from the image files)",
+        "optional for label folders (else sizes from the image files); a COCO JSON split "
+        "carries its own images (refused with one)",
     )
     score.add_argument(
         "--predictions",
@@ -80,12 +93,14 @@ def build_parser():
     score.add_argument(
         "--protocol",
         default="coco",
-        help=f"preset ({', '.join([*PRESETS, *DIFFICULTY_PRESETS, *MISS_RATE_PRESETS])}) or a "
-        "JSON file with a custom preset",
+        help=f"preset ({', '.join(ALL_PRESETS)}) or a JSON file with a custom preset",
     )
     score.add_argument("--format", choices=("table", "json"), default="table")
     score.add_argument(
-        "--threshold", type=_finite, default=0.5, help="score cut for the operating point"
+        "--threshold",
+        type=_finite,
+        help=f"score cut for the operating point (at_threshold; default {DEFAULT_THRESHOLD}): "
+        f"read by {', '.join(PRESETS)} and custom presets; the level presets have none",
     )
     score.add_argument(
         "--boxes",
@@ -153,6 +168,7 @@ def main(argv=None):
             raise InputError(
                 "--protocol", f"{args.protocol} keeps no match records (--records, --records-out)"
             )
+        _check_options(args, levels)
         outputs = _outputs(args)  # before any scoring: a bad path wastes no time
         if args.cache:
             _cache_folder(args.cache)
@@ -186,11 +202,12 @@ def main(argv=None):
             result, records = evaluate_levels(truth, predictions, protocol), None
             annotate_levels(result, protocol, truth, predictions)
         else:
+            threshold = DEFAULT_THRESHOLD if args.threshold is None else args.threshold
             result, records = evaluate(
-                truth, predictions, protocol, score_threshold=args.threshold, return_records=True
+                truth, predictions, protocol, score_threshold=threshold, return_records=True
             )
         writers = {  # (a level protocol has no records, and no outputs: refused above)
-            "--records": lambda path: records.save(path),
+            "--records": lambda path: records.save(path, provenance=records_provenance(result)),
             "--records-out": lambda path: export.write(
                 path, records, truth, fmt=export.format_of(args.records_out)
             ),
@@ -210,9 +227,47 @@ def main(argv=None):
     return 0
 
 
+def _check_options(args, levels):
+    """Options the run would not read are refused, not ignored."""
+    if levels and args.threshold is not None:
+        raise InputError(
+            "--threshold",
+            f"{args.protocol} has no operating point and does not read it; --threshold "
+            f"(the score cut of at_threshold) is read by {', '.join(PRESETS)} and custom "
+            "presets (a JSON file)",
+        )
+    if args.images is not None and (args.truth_format or detect_format(args.truth)) == "json":
+        raise InputError(
+            args.images,
+            f"--images is not read with a COCO JSON split ({args.truth}): it carries its own "
+            'images (its "images" list); --images is for a CSV split or a label folder',
+        )
+
+
+def records_provenance(result):
+    """What the ``--records`` file was scored with (``MatchRecords.save(provenance=)``):
+    the result's protocol, versions, box policy, split fingerprint and protocol record."""
+    record = result.get("protocol_record", {})
+    return {
+        "protocol": result.get("protocol"),
+        "protocol_version": result.get("protocol_version"),
+        "engine_version": result.get("engine_version", ENGINE_VERSION),
+        "box_policy": record.get("box_policy"),
+        "truth_fingerprint": result.get("truth_fingerprint"),
+        "protocol_record": record,
+    }
+
+
 def _outputs(args):
     """``{option: path}`` of the files ``--records`` and ``--records-out`` will write,
-    checked before any scoring: a file name in an existing folder."""
+    checked before any scoring: a file name in an existing folder, not an input (nor a
+    file inside an input folder), and not the other output."""
+    inputs = [
+        ("--truth", args.truth),
+        ("--predictions", args.predictions),
+        ("--images", args.images),
+        ("--protocol", args.protocol if _custom(args.protocol) else None),
+    ]
     outputs = {}
     for option, path in (("--records", args.records), ("--records-out", args.records_out)):
         if not path:
@@ -222,8 +277,48 @@ def _outputs(args):
             raise InputError(path, f"is a folder: {option} names the file to write")
         if not os.path.isdir(folder):
             raise InputError(path, f"cannot be written ({option}): there is no folder {folder}")
+        for other, given in inputs:
+            if given and _same_file(path, given):
+                raise InputError(
+                    path, f"is the {other} input: {option} would overwrite it; write elsewhere"
+                )
+            if other in LABEL_INPUTS and given and os.path.isdir(given) and _inside(path, given):
+                raise InputError(
+                    path,
+                    f"is inside the folder given as {other}: {option} would change that "
+                    "input; write elsewhere",
+                )
+        for earlier_option, earlier in outputs.items():
+            if _same_file(path, earlier):
+                raise InputError(
+                    path, f"is named by both {earlier_option} and {option}: each writes a file"
+                )
         outputs[option] = path
     return outputs
+
+
+#: The inputs that may be folders (of label files).
+LABEL_INPUTS = ("--truth", "--predictions")
+
+
+def _custom(protocol):
+    """A custom preset's file (not a preset name)."""
+    return protocol not in ALL_PRESETS and os.path.isfile(protocol)
+
+
+def _same_file(a, b):
+    """One file (``os.path.samefile``: links and hard links too) or one resolved path."""
+    try:
+        if os.path.exists(a) and os.path.exists(b):
+            return os.path.samefile(a, b)
+    except OSError:
+        pass
+    return os.path.realpath(a) == os.path.realpath(b)
+
+
+def _inside(path, folder):
+    real, root = os.path.realpath(path), os.path.realpath(folder)
+    return os.path.commonpath([real, root]) == root
 
 
 def _write_all(writes):

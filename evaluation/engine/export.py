@@ -23,6 +23,12 @@ the number of detections. Columns (``COLUMNS``):
                    reason is about (empty if none)
 ``related_class``  class of that related box or detection
 ``iou``            IoU with it
+``protocol``       the protocol the records were scored under (``MatchRecords.protocol``)
+``engine_version`` the engine that wrote the rows (``ENGINE_VERSION`` unless given)
+
+The last two repeat on every row, so each row (and any part of the file) says how it
+was scored, and CSV and JSON Lines readers need no header comment; added in engine
+2.18.0, after the others, so readers by column name are unchanged.
 """
 
 import csv
@@ -34,6 +40,7 @@ import numpy as np
 
 from .loaders.ids import SURROGATE, key_value, keys_of, quoted
 from .reasons import BOX_REASONS, DETECTION_REASONS, box_outcome, detection_outcome
+from .version import ENGINE_VERSION
 
 COLUMNS = (
     "row",
@@ -51,6 +58,8 @@ COLUMNS = (
     "box_id",
     "related_class",
     "iou",
+    "protocol",
+    "engine_version",
 )
 BLOCK_ROWS = 20_000
 CONTENT_TYPES = {"csv": "text/csv; charset=utf-8", "jsonl": "application/x-ndjson"}
@@ -70,9 +79,19 @@ def _optional(values, present):
     return [v if p else None for v, p in zip(values.tolist(), present.tolist())]
 
 
-def row_blocks(records, truth, block_rows=BLOCK_ROWS, typed_ids=False):
+def row_blocks(
+    records, truth, block_rows=BLOCK_ROWS, typed_ids=False, engine_version=ENGINE_VERSION
+):
     """Yield blocks of rows, each a dict column -> list of Python values (None = empty);
     with ``typed_ids`` image ids are the JSON values the split gave (2.5, not "2.5")."""
+    for block in _row_blocks(records, truth, block_rows, typed_ids):
+        rows = len(block["row"])
+        block["protocol"] = [records.protocol] * rows
+        block["engine_version"] = [engine_version] * rows
+        yield block
+
+
+def _row_blocks(records, truth, block_rows, typed_ids):
     _check(records, truth)
     classes = np.array(records.classes, dtype=object)
     threshold = records.thresholds[0]
@@ -129,14 +148,14 @@ def row_blocks(records, truth, block_rows=BLOCK_ROWS, typed_ids=False):
         }
 
 
-def csv_chunks(records, truth, block_rows=BLOCK_ROWS):
+def csv_chunks(records, truth, block_rows=BLOCK_ROWS, engine_version=ENGINE_VERSION):
     """Yield the CSV text (header first) a block of rows at a time. Floats are written
     with Python's shortest round-trip repr; an empty field is a missing value."""
     buffer = io.StringIO()
     writer = csv.writer(buffer, lineterminator="\n")
     writer.writerow(COLUMNS)
     yield buffer.getvalue()
-    for block in row_blocks(records, truth, block_rows):
+    for block in row_blocks(records, truth, block_rows, engine_version=engine_version):
         buffer.seek(0)
         buffer.truncate()
         writer.writerows(zip(*(block[c] for c in COLUMNS)))
@@ -167,13 +186,13 @@ def _jsonl_id(value, id_type):
     return _strict(value)
 
 
-def jsonl_chunks(records, truth, block_rows=BLOCK_ROWS):
+def jsonl_chunks(records, truth, block_rows=BLOCK_ROWS, engine_version=ENGINE_VERSION):
     """Yield JSON Lines text, one object per row (missing values are null; a NaN or
     infinite score, coordinate, IoU or image id is the string "NaN", "Infinity",
     "-Infinity"; image ids as ``_jsonl_id`` writes them). Every line is strict JSON
     and UTF-8 text."""
     encode = json.JSONEncoder(allow_nan=False, separators=(",", ":")).encode
-    for block in row_blocks(records, truth, block_rows, typed_ids=True):
+    for block in row_blocks(records, truth, block_rows, True, engine_version):
         block["image_id"] = [_jsonl_id(v, truth.image_id_type) for v in block["image_id"]]
         for name in ("score", "x", "y", "w", "h", "iou"):
             block[name] = [_strict(v) for v in block[name]]

@@ -8,12 +8,25 @@ keep file order instead of image order. Matches are stored sparsely, one row per
 resampling, tag slices) therefore needs no sort and no IoU: only new running sums.
 """
 
+import json
 import zipfile
 from dataclasses import dataclass, field, fields
 
 import numpy as np
 
 from . import npz_view
+
+#: The member of a records file holding its provenance (``MatchRecords.save``).
+PROVENANCE = "provenance"
+
+
+def read_provenance(path):
+    """The provenance dict a records file was saved with, or None (files written
+    without it: before engine 2.18, or by the platform, which keeps it elsewhere)."""
+    data = npz_view.arrays(npz_view.read_file(path))
+    if PROVENANCE not in data:
+        return None
+    return json.loads(str(data[PROVENANCE]))
 
 
 class MissingReasons(ValueError):
@@ -214,13 +227,20 @@ class MatchRecords:
         out[self.match_det[chosen]] = self.match_box[chosen]
         return out
 
-    def save(self, path):
+    def save(self, path, provenance=None):
         """Write as an uncompressed ``.npz`` file: the cause pages read and hash-check it
         on a process's first request, and inflating is most of that time (500,000
         detections: 65 MB stored, 0.12-0.18 s of CPU to hash and load, against 29 MB and
         0.40 s deflated at level 1; ``np.load`` reads either, so older files still load).
+
+        ``provenance``: a JSON-able dict of what the records were scored with (the CLI's
+        ``--records``: protocol and its version, engine version, box policy, the split's
+        fingerprint, the protocol record), kept as the ``PROVENANCE`` member and read by
+        ``read_provenance``; ``load`` ignores it, so files with and without it load alike.
         """
         arrays = {}
+        if provenance is not None:
+            arrays[PROVENANCE] = np.array(json.dumps(provenance, sort_keys=True))
         for f in fields(self):
             if f.name.startswith("_"):
                 continue

@@ -97,7 +97,10 @@ def test_records_written_by_the_cli_rescore_identically(inputs, files, capsys):
 def test_unknown_protocol_exits_2(inputs, capsys):
     gt, dt = inputs
     assert main(["score", "--truth", str(gt), "--predictions", str(dt), "--protocol", "kitti"]) == 2
-    assert "not a preset (coco, voc07, voc, recall40)" in capsys.readouterr().err
+    err = capsys.readouterr().err
+    # every preset --protocol takes is listed, the level ones too (they once were not)
+    every = "coco, voc07, voc, recall40, kitti2d, miss-rate, miss-rate-cityscale, miss-rate-caltech"
+    assert f"not a preset ({every})" in err
 
 
 def test_missing_predictions_file_exits_2(inputs, capsys):

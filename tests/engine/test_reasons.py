@@ -13,6 +13,7 @@ import pytest
 from evaluation.engine import MatchRecords, match
 from evaluation.engine.reasons import BOX_REASONS, DETECTION_REASONS, attach
 from evaluation.engine.records import MissingReasons
+from evaluation.engine.version import ENGINE_VERSION
 
 PERSON, CAR = 1, 2
 
@@ -259,6 +260,8 @@ def test_export_rows_trace_every_detection_and_box(files, tmp_path):
         "box_id": "10",
         "related_class": "person",
         "iou": repr(50 / 150),
+        "protocol": "coco",
+        "engine_version": ENGINE_VERSION,
     }
     assert lines[2]["box_id"] is None and lines[2]["iou"] is None
     assert lines[3] == {
@@ -277,6 +280,8 @@ def test_export_rows_trace_every_detection_and_box(files, tmp_path):
         "box_id": 10,
         "related_class": "person",
         "iou": 1.0,
+        "protocol": "coco",
+        "engine_version": ENGINE_VERSION,
     }
     assert lines[4]["outcome"] == "missed" and lines[4]["detection"] is None
     for row, line in zip(rows, lines):
