@@ -48,12 +48,12 @@ def check(truth, predictions, protocol):
         return
     height = truth.boxes[:, 3]
     visibility = truth.cityscale_visibility()
-    seen = truth.looked_up(truth.box_image, truth.box_class)
+    seen = _prepared(truth)
     for setup in protocol.setups:
         lo, hi = setup.height
         first = None
         for box, record, message, _ in faults.get("vis_ratio", ()):
-            if not seen[box]:  # an image or category np.unique loses: never _prepared
+            if not seen[box]:  # never fetched by _prepare (np.unique lost its id)
                 continue
             h = height[box]
             if not (h < lo or h > hi):  # the height test lets it through
@@ -73,6 +73,23 @@ def check(truth, predictions, protocol):
             raise InputError(booleans["path"], booleans["message"], **where)
     if cityscale_boxes.DIFFERS in boxes:  # scored by the script, not as it scores it
         _raise_box(*boxes[cityscale_boxes.DIFFERS][2:])
+
+
+def _prepared(truth):
+    """Per box, whether the script's ``_prepare`` reads its keys. ``getAnnIds(imgIds=
+    p.imgIds, catIds=p.catIds)`` after ``evaluate``'s ``np.unique``: images by dict
+    lookup (an image whose id numpy changed is never fetched), categories by the list
+    test ``ann['category_id'] in catIds``, which compares with ``==``: a numeric id
+    numpy rounded equals its rounded value (numpy converts the int to compare it), so
+    its annotations are fetched and read, though never evaluated under it
+    (``GroundTruth.looked_up``); a text id cut of its trailing U+0000 is not."""
+    lost = truth.unique_lost_masks()
+    if lost is None:
+        return np.ones(truth.n_boxes, bool)
+    images, classes = lost
+    if truth.class_id_type not in ("text", "json"):
+        classes = np.zeros_like(classes)
+    return ~(images[truth.box_image] | classes[truth.box_class])
 
 
 def _raise_box(path, record, field, why):

@@ -349,13 +349,13 @@ def cityscale_coco(dataset, results, id_setup):
     # order, file order within; listed images and categories only), then the ignore
     # flag. (Before engine 2.15.8 this took every annotation in file order: the same
     # numbers, but it raised on a null vis_ratio of an unlisted image, as the script
-    # does not.)
-    listed = set(cat_ids)
+    # does not.) getAnnIds keeps an annotation when ``ann['category_id'] in catIds``, a
+    # list test by ``==``: a numeric id numpy rounded still equals its rounded value.
     by_image = {}
     for ann in dataset["annotations"]:
         by_image.setdefault(ann["image_id"], []).append(ann)
     gts_all = copy.deepcopy(
-        [a for i in img_ids for a in by_image.get(i, []) if a["category_id"] in listed]
+        [a for i in img_ids for a in by_image.get(i, []) if a["category_id"] in cat_ids]
     )
     for gt in gts_all:
         gt["ignore"] = gt["ignore"] if "ignore" in gt else 0

@@ -296,3 +296,28 @@ def test_values_on_a_lost_image_are_never_read_as_in_pycocotools(
     with pytest.raises(InputError) as error:
         files.load(split, detections)
     assert error.value.field == field and error.value.record in ("annotations[1]", "record 1")
+
+
+@pytest.mark.parametrize(
+    "categories, refused",
+    [
+        ((0.5, 1, BIG), True),  # rounded: 2^53+1 == np.float64(2^53), fetched and read
+        (("a\x00", "b"), False),  # cut: "a\x00" != "a", never fetched (no class 1)
+    ],
+)
+def test_cityscale_reads_a_lost_categorys_annotations_as_the_script_fetches_them(
+    tmp_path, categories, refused
+):
+    """``_prepare`` fetches ``getAnnIds(imgIds, catIds)``, whose category test is the
+    list test ``ann['category_id'] in catIds`` (``==``): a numeric id numpy rounded
+    still equals its value there, so its annotations are read (a null ``vis_ratio``
+    raises TypeError) though never evaluated; a text id cut of U+0000 is not fetched.
+    Refused, or scored, as the script's transliteration does."""
+    lost = categories[-1] if refused else categories[0]
+    annotations = [_ann(1, 0.0), _ann(2, 300.0, category_id=lost, vis_ratio=None)]
+    results = [_det(0.0, score=0.9), _det(600.0, score=0.5)]
+    gt, dt = _write(tmp_path, _dataset(annotations, (1,), categories), results)
+    outcome = _agree(gt, dt, results)
+    assert isinstance(outcome, InputError) is refused
+    if refused:
+        assert outcome.record == "annotations[1]" and outcome.field == "vis_ratio"
