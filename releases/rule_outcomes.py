@@ -171,7 +171,7 @@ def _judge_one(
             outcome.status, outcome.detail = found[0], f"{label}: {whose}{found[1]}"
             return outcome
     if value is None:
-        why = None if where else selectors.absent_reason(card, name, bootstraps)
+        why = _why_unmeasured(card, name, where, bootstraps)
         return unmeasured(outcome, label, why, base_value)
     if rule["kind"] == "min_value":
         ok = value >= rule["threshold"]
@@ -211,6 +211,22 @@ def _judge_one(
         f"[{interval.low:+.3f}, {interval.high:+.3f}]"
     )
     return outcome
+
+
+def _why_unmeasured(card, name, where, cache):
+    """The engine's reason the card has no number for ``name`` (a class, or ``mean``):
+    its own, or for the mean the undefined AP of a class (``UNDEFINED_AP``: a mean
+    over classes the metric leaves undefined is no "nothing to measure"). A tag or
+    size slice reads the whole split's reason: a class undefined on the split is
+    undefined on its slices."""
+    reasons = selectors.absent_reasons(card, cache)
+    if name == "mean":
+        why = UNDEFINED_AP if UNDEFINED_AP in reasons.values() else None
+    else:
+        why = reasons.get(name)
+    if where is not None and why is not None:
+        return f"on the whole split: {why}" if why != UNDEFINED_AP else why
+    return why
 
 
 def unmeasured(outcome, label, why, base_value):

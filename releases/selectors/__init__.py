@@ -69,6 +69,7 @@ from .scores import (  # noqa: F401
     absent_classes,
     absent_note,
     absent_reason,
+    absent_reasons,
     class_numbers,
     summary_items,
 )

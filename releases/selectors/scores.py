@@ -74,10 +74,10 @@ def absent_classes(card, classes):
     return [(name, why[name]) for name in classes if name in why]
 
 
-def absent_reason(card, name, cache):
-    """Why the scorecard has no AP for class ``name``, in the engine's words, read
-    without loading the rest of its result (None when it recorded none); ``cache``
-    keeps one card's reasons."""
+def absent_reasons(card, cache):
+    """``{class: why}`` for every class the scorecard has no AP for, in the engine's
+    words (``protocol_record.absent_classes``), read without loading the rest of its
+    result; ``cache`` keeps one card's reasons."""
     from evaluation.models import Scorecard
 
     key = ("absent", card.pk)
@@ -88,7 +88,12 @@ def absent_reason(card, name, cache):
             .first()
         )
         cache[key] = found if isinstance(found, dict) else {}
-    return cache[key].get(name)
+    return cache[key]
+
+
+def absent_reason(card, name, cache):
+    """Why the scorecard has no AP for class ``name`` (``absent_reasons``), or None."""
+    return absent_reasons(card, cache).get(name)
 
 
 def absent_note(card, name, cache):

@@ -289,3 +289,58 @@ def test_the_gate_cannot_judge_the_class_and_never_passes_it(scored, users, run_
         justification="car boxes on the depot apron are all marked difficult this month",
     )
     assert record.override and record.verdict == "incomplete" and event.kind == "override"
+
+
+def _first_release(team, users, run_tasks, capture, rule, detections):
+    """A first release (no baseline) of a detector of car and van under voc07, on a
+    split whose images all carry the tag ``night``, judged on ``rule``."""
+    truth = _split()
+    for image in truth["images"]:
+        image["tags"] = ["night"]
+    split = evaluation_services.load_split(
+        name="depot-yard", revision=1, truth=upload("depot-yard.json", truth)
+    )
+    with capture(execute=True):
+        detector = services.create_detector(
+            team, "Depot camera", ["car", "van"], protocols=("voc07",), splits=["depot-yard"]
+        )
+    run_tasks(criteria.set_criteria, detector, users["lead"], [rule])
+    version = services.create_version(detector, "1.0", users["engineer"])
+    run_tasks(
+        services.submit_predictions,
+        version,
+        split,
+        upload("1.0.json", detections),
+        users["engineer"],
+    )
+    return version, list(Outcome.objects.filter(version=version))
+
+
+@pytest.mark.parametrize(
+    "rule, undefined",
+    [
+        # a tag slice of the undefined class: the whole split's reason holds there too
+        ({"class": "car", "kind": "min_value", "threshold": 0.1, "tag": "night"}, "car"),
+        # the mean when every class is undefined: no number, not "nothing to measure"
+        ({"class": "mean", "kind": "min_value", "threshold": 0.1}, "every"),
+    ],
+)
+def test_a_first_release_cannot_pass_on_an_undefined_ap(
+    team, users, run_tasks, django_capture_on_commit_callbacks, rule, undefined
+):
+    """No baseline to compare with, and the rule's number is undefined (the VOC 2007
+    devkit's NaN): the rule is missing, the verdict incomplete, and a plain approval
+    is refused (an override needs a written justification)."""
+    detections = _detections(4, False)
+    if undefined == "every":  # van too: only on its difficult box
+        cars = [d for d in detections if d["category_id"] == 1]
+        detections = cars + [dict(d, category_id=2, bbox=list(VAN_DIFFICULT)) for d in cars]
+    rule = {"split": "*", "metric": "AP", **rule}
+    version, outcomes = _first_release(
+        team, users, run_tasks, django_capture_on_commit_callbacks, rule, detections
+    )
+    assert verdicts.verdict_of(version).state == "incomplete"
+    (outcome,) = [o for o in outcomes if o.class_name == rule["class"]]
+    assert outcome.status == "missing" and REASON in outcome.detail, outcome.detail
+    with pytest.raises(services.DecisionError, match="needs a written justification"):
+        services.sign_off(version, users["lead"], "approved", "looks fine")
