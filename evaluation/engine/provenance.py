@@ -220,7 +220,7 @@ def left_out_counts(truth, reference="pycocotools 2.0.11"):
             out[f"{what}_left_out"] = {
                 what: len(lost),
                 "truth_boxes": int(np.isin(column, lost).sum()),
-                "ids": ids[lost[:SHOWN_LOST_IDS]].tolist(),
+                "ids": [str(v) for v in ids[lost[:SHOWN_LOST_IDS]].tolist()],  # exact in JS too
                 "reason": LOST_REASON.format(
                     reference, "image" if what == "images" else "category"
                 ),

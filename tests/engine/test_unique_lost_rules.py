@@ -56,6 +56,7 @@ def test_a_category_listed_twice_decides_numpys_type_as_in_pycocotools(tmp_path,
     truth, ours = _run(tmp_path, split, detections, protocol)
     assert truth.unique_lost_classes.tolist() == [1]
     assert ours["counts"]["classes_left_out"]["classes"] == 1
+    assert ours["counts"]["classes_left_out"]["ids"] == [str(BIG)]  # text: exact in any reader
     assert ours["per_class"]["class 1"]["AP"] is None
     if protocol == "coco":
         reference = pycocotools_eval(tmp_path / "gt.json", tmp_path / "dt.json")
