@@ -1,5 +1,7 @@
+from django import forms
 from django.contrib import admin
 
+from . import detectors
 from .models import (
     AuditEvent,
     AuditVerification,
@@ -79,12 +81,42 @@ class TeamAdmin(admin.ModelAdmin):
     inlines = [MembershipInline]
 
 
+class DetectorForm(forms.ModelForm):
+    class Meta:
+        model = Detector
+        fields = "__all__"
+
+    def clean_classes(self):
+        try:
+            classes = detectors.validate_classes(self.cleaned_data["classes"])
+            detectors.check_removal(self.instance, classes)
+        except detectors.DetectorError as e:
+            raise forms.ValidationError(str(e)) from None
+        return classes
+
+
 @admin.register(Detector)
 class DetectorAdmin(admin.ModelAdmin):
+    """Detectors are created with their suite on the page or the API, never here; a
+    change of classes goes through ``detectors.set_classes`` (a new suite version,
+    audited, candidates judged again), the other fields are saved as they are."""
+
+    form = DetectorForm
     list_display = ["name", "team", "primary_protocol"]
     list_select_related = ["team"]
     # The protocols mirror the benchmark suite; change them through the suite.
     readonly_fields = ["protocols", "primary_protocol"]
+
+    def has_add_permission(self, request):
+        return False
+
+    def save_model(self, request, obj, form, change):
+        classes = obj.classes
+        if "classes" in form.changed_data:
+            obj.classes = Detector.objects.get(pk=obj.pk).classes
+        super().save_model(request, obj, form, change)
+        if "classes" in form.changed_data:
+            detectors.set_classes(request.user, obj, classes)
 
 
 @admin.register(ModelVersion)
@@ -96,7 +128,9 @@ class ModelVersionAdmin(admin.ModelAdmin):
 @admin.register(PredictionSet)
 class PredictionSetAdmin(admin.ModelAdmin):
     """Created only by an upload (``services._record_set``) or a re-score
-    (``rescore.rescore``), never here."""
+    (``rescore.rescore``), never here. Never deleted either: a set is evidence a verdict
+    was judged on (deleting a regressing one and judging again would read "pass"); a
+    failed upload is replaced (kept as history), not removed."""
 
     list_display = [
         "version",
@@ -115,6 +149,14 @@ class PredictionSetAdmin(admin.ModelAdmin):
 
     def has_change_permission(self, request, obj=None):
         return False
+
+    def has_delete_permission(self, request, obj=None):
+        return False
+
+    def get_actions(self, request):
+        actions = super().get_actions(request)
+        actions.pop("delete_selected", None)
+        return actions
 
 
 @admin.register(AuditEvent)

@@ -1,4 +1,5 @@
-"""A lead creates a detector with its benchmark suite, from the page or the API."""
+"""A lead creates a detector with its benchmark suite, from the page or the API; its
+class list is checked here (``validate_classes``) and changed only by ``set_classes``."""
 
 from django.core.exceptions import PermissionDenied
 from django.db import transaction
@@ -7,6 +8,7 @@ from django.utils.text import slugify
 from evaluation.services import UploadError
 
 from . import selectors, services, suites
+from .judging_queue import rejudge_later
 from .models import Detector, Membership
 
 
@@ -14,23 +16,41 @@ class DetectorError(UploadError):
     """A detector that cannot be created; the message names the field."""
 
 
-def _classes(classes):
+# Rule words, never class names: a rule's "class" is "mean" (the protocol's mean row) or
+# "*" (every class), so a class so named would be judged by the mean or read as "all".
+RESERVED = ("mean", "*")
+
+
+def reserved(name):
+    """Is ``name`` a rule word (``RESERVED``), compared stripped and case-insensitively?"""
+    return isinstance(name, str) and name.strip().lower() in RESERVED
+
+
+def validate_classes(classes):
+    """The detector's class list, checked and stripped: the one check every way of
+    setting it goes through (page, API, admin, commands: ``services.create_detector``
+    and ``set_classes``). Errors name the field (``classes[1]``)."""
     if isinstance(classes, str):
         classes = [c.strip() for c in classes.replace(",", "\n").splitlines()]
         classes = [c for c in classes if c]
-    if not isinstance(classes, list) or not classes:
+    if not isinstance(classes, (list, tuple)) or not classes:
         raise DetectorError("classes: a detector needs at least one class", path="classes")
+    seen = set()
     for i, name in enumerate(classes):
         if not isinstance(name, str) or not name.strip() or len(name) > 64:
             raise DetectorError(
                 f"classes[{i}]: a class is a name of 1 to 64 characters, got {name!r}",
                 path=f"classes[{i}]",
             )
-    seen = set()
-    for i, name in enumerate(classes):
-        if name in seen:
+        if reserved(name):
+            raise DetectorError(
+                f"classes[{i}]: {name.strip()!r} is reserved (rules use 'mean' for the mean "
+                "and '*' for every class); choose another name",
+                path=f"classes[{i}]",
+            )
+        if name.strip() in seen:
             raise DetectorError(f"classes[{i}]: {name!r} is listed twice", path=f"classes[{i}]")
-        seen.add(name)
+        seen.add(name.strip())
     return [c.strip() for c in classes]
 
 
@@ -42,7 +62,7 @@ def create_detector(user, team, name, classes, suite, *, description=""):
     name = (name or "").strip()
     if not name or len(name) > 100 or not slugify(name):
         raise DetectorError("name: 1 to 100 characters, with a letter or digit", path="name")
-    classes = _classes(classes)
+    classes = validate_classes(classes)
     with transaction.atomic():
         if Detector.objects.filter(team=team, slug=slugify(name)).exists():
             raise DetectorError(f"name: {team} already has a detector called {name!r}", path="name")
@@ -51,3 +71,55 @@ def create_detector(user, team, name, classes, suite, *, description=""):
         return services.create_detector(
             team, name, classes, description=description, suite=clean, user=user
         )
+
+
+def check_removal(detector, classes):
+    """Refuse a class list that drops a class the current criteria or suite name (they
+    would name a class the detector no longer has): change those first."""
+    from .criteria import current_criteria
+
+    gone = set(detector.classes) - set(classes)
+    rules = getattr(current_criteria(detector), "rules", [])
+    for i, rule in enumerate(rules):
+        if rule.get("class") in gone and not reserved(rule["class"]):  # 'mean': the mean
+            raise DetectorError(
+                f"classes: {rule['class']!r} is named by rule {i + 1} of the criteria; "
+                "change the criteria first",
+                path="classes",
+            )
+    suite = suites.current_suite(detector)
+    for name in getattr(suite, "class_thresholds", None) or {}:
+        if name in gone:
+            raise DetectorError(
+                f"classes: {name!r} has a threshold in the suite (class_thresholds); "
+                "change the suite first",
+                path="classes",
+            )
+
+
+def set_classes(user, detector, classes):
+    """Change a detector's class list (leads of its team, or a superuser in the admin).
+
+    A ``*`` rule covers every class, so the class list is part of what a judgement was
+    made on: as a suite change does, the change is a new suite version (same content,
+    audited with the classes before and after) and every undecided candidate is judged
+    again once it commits; the standing verdicts no longer match (they name the older
+    suite). One transaction, under the detector's row lock. Returns the new suite.
+    """
+    if not getattr(user, "is_superuser", False) and (
+        selectors.role_in(user, detector.team) != Membership.Role.LEAD
+    ):
+        raise PermissionDenied(f"{user} may not change the classes of {detector}: leads only")
+    classes = validate_classes(classes)
+    with transaction.atomic():
+        locked = Detector.objects.select_for_update().get(pk=detector.pk)
+        before = list(locked.classes)
+        if classes == before:
+            return suites.current_suite(locked)
+        check_removal(locked, classes)
+        Detector.objects.filter(pk=locked.pk).update(classes=classes)
+        locked.classes = classes
+        suite = suites.reissue(locked, user, {"classes": classes, "classes_before": before})
+        rejudge_later(locked.pk)
+    detector.classes = classes
+    return suite

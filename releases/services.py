@@ -44,9 +44,9 @@ def create_detector(
     (validated by ``suites.validate_suite``) or one from ``protocols`` and ``splits``
     (names, newest revision)."""
     from . import suites
+    from .detectors import validate_classes
 
-    if not classes or len(set(classes)) != len(classes):
-        raise UploadError("a detector needs a list of distinct class names")
+    classes = validate_classes(classes)  # every way of creating one passes here
     if suite is not None:  # checked by validate_suite (its custom protocols stored below)
         protocols = suite["protocols"]
     else:

@@ -210,6 +210,23 @@ def _create(detector, user, clean):
     return suite
 
 
+def reissue(detector, user, change):
+    """A new suite version with the current one's content, for a change of what
+    candidates are judged on kept outside the suite (``detectors.set_classes``): the
+    judgements name their suite, so the standing ones no longer match. Audited as a
+    suite change, with ``change`` in the payload; the caller holds the detector's row
+    lock and queues re-judging."""
+    clean = as_dict(current_suite(detector))
+    suite = _create(detector, user, clean)
+    audit.record_event(
+        AuditEvent.Kind.SUITE_CHANGED,
+        user or "system",
+        f"detector:{detector.pk}",
+        {"detector": str(detector), "number": suite.number, "suite": clean, **change},
+    )
+    return suite
+
+
 def first_suite(detector, user=None, *, protocols=("coco",), splits=(), clean=None):
     """Suite v1 of a new detector (``services.create_detector``), audited: ``clean`` (a
     validated suite) or one built from ``protocols`` and split names."""
