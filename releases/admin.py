@@ -121,8 +121,22 @@ class DetectorAdmin(admin.ModelAdmin):
 
 @admin.register(ModelVersion)
 class ModelVersionAdmin(admin.ModelAdmin):
+    """Versions are created by the pipeline, the page or the API
+    (``services.create_version``); here they are read. A version's detector and label
+    are what its judgements, sign-offs and audit trail name: moving or relabelling it
+    would rewrite that history unaudited, so nothing is editable or deletable."""
+
     list_display = ["detector", "label", "source_commit", "created_by", "created_at"]
     list_select_related = ["detector", "created_by"]
+
+    def has_add_permission(self, request):
+        return False
+
+    def has_change_permission(self, request, obj=None):
+        return False
+
+    def has_delete_permission(self, request, obj=None):
+        return False  # its prediction sets, judgements and sign-offs are evidence
 
 
 @admin.register(PredictionSet)

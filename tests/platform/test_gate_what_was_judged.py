@@ -234,3 +234,24 @@ def test_an_older_detector_with_a_class_named_mean_is_not_judged_by_the_mean(
     again = verdicts.verdict_of(candidate)
     assert again.judgement.suite.number == verdict.judgement.suite.number + 1
     assert not any("rule word" in r for r in again.reasons)
+
+
+def test_the_admin_cannot_move_relabel_or_delete_a_version(
+    team, users, run_tasks, django_capture_on_commit_callbacks, client
+):
+    """A version's detector and label are what its judgements and sign-offs name: the
+    admin reads versions, never changes or deletes them (nor adds one)."""
+    _, _, candidate = _baseline_and_candidate(
+        team, users, run_tasks, django_capture_on_commit_callbacks, ["car", "van"], (1,)
+    )
+    _superuser(client)
+    url = f"/admin/releases/modelversion/{candidate.pk}/"
+    change = {"detector": candidate.detector_id, "label": "9.9", "source_commit": ""}
+    assert run_tasks(client.post, url + "change/", change).status_code == 403
+    assert run_tasks(client.post, url + "delete/", {"post": "yes"}).status_code == 403
+    assert client.get("/admin/releases/modelversion/add/").status_code == 403
+    listing = client.get("/admin/releases/modelversion/")
+    assert listing.status_code == 200 and "delete_selected" not in listing.content.decode()
+    candidate.refresh_from_db()
+    assert candidate.label != "9.9"
+    assert verdicts.verdict_of(candidate).state == "regression"
