@@ -144,13 +144,18 @@ class GroundTruth:
         ``np.unique`` loses in pycocotools' and the CityPersons script's ``evaluate``
         (``unique_lost_images``, ``unique_lost_classes``), or None when none is. Every
         rule of those references reads this one answer: their boxes and detections are
-        never looked up there, so never scored, compared or refused."""
+        never looked up there, so never scored, compared or refused. Built once per
+        truth (the loaders ask per block of detections)."""
         if not (len(self.unique_lost_images) or len(self.unique_lost_classes)):
             return None
-        images, classes = np.zeros(self.n_images, bool), np.zeros(len(self.classes), bool)
-        images[self.unique_lost_images] = True
-        classes[self.unique_lost_classes] = True
-        return images, classes
+        masks = self.__dict__.get("_lost_masks")
+        if masks is None:
+            images, classes = np.zeros(self.n_images, bool), np.zeros(len(self.classes), bool)
+            images[self.unique_lost_images] = True
+            classes[self.unique_lost_classes] = True
+            masks = images, classes
+            object.__setattr__(self, "_lost_masks", masks)
+        return masks
 
     def looked_up(self, image, cls):
         """Per (image index, class index) pair (arrays), whether pycocotools-family

@@ -167,11 +167,11 @@ def entries(path, truth, classes, wide, rows=None):
     rank = uncompared.ranks(group, rows["score"])
     is_bool = rows["kind"] == exact_scores._BOOL
     out = []
+    seen = truth.looked_up(truth.box_image, truth.box_class)
     for k in np.asarray(classes).tolist():
         mine = rows["cls"] == k
         g, r, b, record = group[mine], rank[mine], is_bool[mine], rows["record"][mine]
-        own = (truth.box_class == k) & truth.looked_up(truth.box_image, truth.box_class)
-        images = np.unique(truth.box_image[own])
+        images = np.unique(truth.box_image[(truth.box_class == k) & seen])
         if not len(g) or not np.isin(images.astype(np.int64) * n + k, g).all():
             continue  # an image with ground truth and no detection: a float64 list
         order = np.lexsort((r, g))
