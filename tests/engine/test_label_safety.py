@@ -190,6 +190,49 @@ def test_kitti_line_errors(tmp_path, line, message, field):
     assert (error.path, error.record, error.field) == (str(archive), "000001.txt line 3", field)
 
 
+@pytest.mark.parametrize(
+    "old, new, message, field",
+    [
+        # Arabic-Indic three: float("٣00.00") is 300.0, int("٣") is 3 (Python's str
+        # numeric conversions); C's strtod/fscanf, which the KITTI devkit reads with,
+        # take ASCII digits only (C standard, from memory)
+        ("200.00", "٣00.00", r"expected a number, got '٣00.00'", "y1"),
+        ("200.00", "２00.00", r"expected a number, got '２00.00'", "y1"),  # full-width 2
+        (" 0 -1.5", " ٣ -1.5", r"expected an integer, got '٣'", "occluded"),
+        ("200.00", "2²", r"expected a number, got '2²'", "y1"),  # superscript: float refuses
+    ],
+)
+def test_kitti_numbers_take_ascii_digits_only(tmp_path, old, new, message, field):
+    """Label-line numbers match ``[0-9]``, not ``\\d`` (Python's ``re`` docs: ``\\d``
+    matches any Unicode decimal digit; from memory): a coordinate written in another
+    script's digits is refused naming file, line and field, not read as 300."""
+    line = KITTI_LINE.replace(old, new)
+    archive = _zip(tmp_path / "k.zip", {"000001.txt": KITTI_LINE + "\n" + line + "\n"})
+    error = _refused(message, archive, fmt="kitti")
+    assert (error.path, error.record, error.field) == (str(archive), "000001.txt line 2", field)
+
+
+def test_yolo_numbers_take_ascii_digits_only(tmp_path):
+    """A YOLO class index or coordinate in Arabic-Indic digits is refused (``int("١")``
+    would make it class 1), and so is a ``names:`` key in them (YAML reads ``١`` as
+    text, not 1: YAML 1.2 core schema's int pattern ``[-+]?[0-9]+``, from memory)."""
+    _, table = write.csv(tmp_path / "csv", IMAGES, CLASSES, BOXES)
+    folder = write.yolo(tmp_path / "y", IMAGES, CLASSES, BOXES)
+    label = folder / "labels" / "2.txt"
+    for text, message, field in (
+        ("١ 0.5 0.5 0.25 0.1\n", r"expected an integer, got '١'", "class"),
+        ("1 0.5 0.٥ 0.25 0.1\n", r"expected a number, got '0.٥'", "cy"),
+    ):
+        label.write_text(text)
+        error = _refused(message, folder, images=table, fmt="yolo")
+        assert (error.record, error.field) == ("labels/2.txt line 1", field)
+    label.write_text("1 0.5 0.5 0.25 0.1\n")
+    (folder / "classes.txt").unlink()
+    (folder / "data.yaml").write_text("names:\n  0: Car\n  ١: Pedestrian\n")
+    error = _refused(r"class index is written in the digits 0-9, got '١'", folder, images=table)
+    assert (error.record, error.field) == ("data.yaml line 3", "names")
+
+
 def test_kitti_detections_need_the_score(tmp_path):
     truth = load_truth(_zip(tmp_path / "k.zip", {"000001.txt": KITTI_LINE + "\n"}))
     det = _zip(tmp_path / "d.zip", {"000001.txt": KITTI_LINE + "\n"})

@@ -82,7 +82,7 @@ class _Detection(msgspec.Struct, gc=False):
 
 
 _PATH = re.compile(r"^(?P<msg>.*) - at `\$(?P<path>.*)`$")
-_INDEX = re.compile(r"^(?P<key>\.\w+)?\[(?P<i>\d+)\](?P<rest>.*)$")
+_INDEX = re.compile(r"^(?P<key>\.\w+)?\[(?P<i>[0-9]+)\](?P<rest>.*)$")
 
 
 def category_name(category):

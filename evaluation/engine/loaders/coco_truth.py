@@ -383,7 +383,7 @@ def _slice_decode_error(path, error, checker, locate):
     number out of range), at its line and column as a whole-file decode gives them;
     ``locate`` maps a byte of the decoded text to its offset in the file."""
     text = str(error)
-    m = re.search(r"\(byte (\d+)\)", text)
+    m = re.search(r"\(byte ([0-9]+)\)", text)
     if "truncated" in text:
         return InputError(path, "the JSON ends early: the file looks truncated")
     if not m:

@@ -131,7 +131,7 @@ class _Checker:
         return json_bytes.line_column_in(self.f, self.skip, offset, CHUNK_BYTES)
 
     def _byte_of(self, error):
-        m = re.search(r"\(byte (\d+)\)", str(error))
+        m = re.search(r"\(byte ([0-9]+)\)", str(error))
         return int(m.group(1)) if m else None
 
     def check_piece(self, end, closing):

@@ -12,9 +12,11 @@ from ..errors import InputError
 from .members import decode_text
 
 #: A decimal number as C's ``strtod`` reads it (the devkits read with ``fscanf``):
-#: no digit-group underscores, which Python's ``float`` would take.
-_NUMBER = re.compile(r"^[+-]?(\d+\.?\d*|\.\d+)([eE][+-]?\d+)?$")
-_INTEGER = re.compile(r"^[+-]?\d+$")
+#: no digit-group underscores, which Python's ``float`` would take, and ASCII digits
+#: only, as ``ids.INTEGER``: ``\\d`` matches any Unicode decimal digit (Python's ``re``
+#: documentation, from memory), and ``float("٣00")`` is 300.0.
+_NUMBER = re.compile(r"[+-]?([0-9]+\.?[0-9]*|\.[0-9]+)([eE][+-]?[0-9]+)?\Z")
+_INTEGER = re.compile(r"[+-]?[0-9]+\Z")
 
 
 def lines(path, name, data):

@@ -117,7 +117,7 @@ def _piece_error(path, error, buf, where, shift):
     text = str(error)
     if "truncated" in text:
         return InputError(path, "the JSON ends early: the file looks truncated")
-    m = re.search(r"\(byte (\d+)\)", text)
+    m = re.search(r"\(byte ([0-9]+)\)", text)
     if not m:
         return InputError(path, f"not valid JSON: {text}")
     line, column = where.locate(buf, max(int(m.group(1)) - shift, 0))
@@ -210,7 +210,7 @@ def _stream(path, f, skip, build=True, wide=False, decode=None):
         except msgspec.ValidationError as e:
             raise validation_error(path, e, top_level_list=True, base=base) from None
         except msgspec.DecodeError as e:
-            m = re.search(r"\(byte (\d+)\)", str(e))
+            m = re.search(r"\(byte ([0-9]+)\)", str(e))
             at_end = "truncated" in str(e) or (m and int(m.group(1)) >= end - 1)
             if not eof and at_end:  # maybe a cut inside a string: take more
                 view.release()
@@ -327,7 +327,7 @@ def _cut_short(error, buf):
     ``NaN``/``Infinity`` literal that the end cuts (``Na``, ``-Inf``: msgspec calls
     its first letter an invalid character)."""
     n = len(buf)
-    m = re.search(r"\(byte (\d+)\)", str(error))
+    m = re.search(r"\(byte ([0-9]+)\)", str(error))
     if "truncated" in str(error):
         return True
     if not m:

@@ -60,13 +60,14 @@ def _yaml_names(path, name, text):
         if inline.startswith("["):
             return [_unquote(v) for v in inline.strip("[]").split(",") if v.strip()]
         names, indexed = [], {}
-        for item in rows[i + 1 :]:
+        for j, item in enumerate(rows[i + 1 :], i + 2):
             if not item.strip():
                 continue
             if not item[:1].isspace():
                 break
             listed = re.match(r"^\s*-\s*(.+)$", item)
-            keyed = re.match(r"^\s*(\d+)\s*:\s*(.+)$", item)
+            keyed = re.match(r"^\s*([0-9]+)\s*:\s*(.+)$", item)
+            _ascii_index(path, name, j, item)
             if listed:
                 names.append(_unquote(listed[1]))
             elif keyed:
@@ -79,6 +80,19 @@ def _yaml_names(path, name, text):
             return [indexed[k] for k in range(len(indexed))]
         return names
     raise InputError(path, "no 'names:' entry", record=name)
+
+
+def _ascii_index(path, name, line, item):
+    """Refuse a ``names:`` key written in digits other than ASCII (``٣: car``): ``int``
+    would read it as index 3, where YAML reads text."""
+    key = re.match(r"^\s*([^\s:#]+)\s*:", item)
+    if key and key[1].isdecimal() and not key[1].isascii():
+        raise InputError(
+            path,
+            f"a class index is written in the digits 0-9, got {key[1]!r}",
+            record=f"{name} line {line}",
+            field="names",
+        )
 
 
 def _unquote(value):
