@@ -76,6 +76,7 @@ from .pedestrian_matching import (  # noqa: F401  (re-exported)
     overlaps,
     standardise_aspect,
 )
+from .pedestrian_scope import evaluated_classes, exact_order, image_count, lost_images, not_counted
 from .pedestrian_setups import (  # noqa: F401  (re-exported: the engine's API)
     CITYSCALE_CATEGORY,
     CITYSCALE_FPPI_POINTS,
@@ -107,20 +108,6 @@ def _group(index, n):
     return [order[bounds[i] : bounds[i + 1]] for i in range(n)]
 
 
-def _classes(truth, protocol):
-    """(class index, [neighbour indices]) for every evaluated class: each class of the
-    split except those that are only a neighbouring label of another present class;
-    under ``cityscale`` only the class of category id 1 (``category_one``). Labels are
-    the categories' own names (``neighbours_of``)."""
-    near_of = {k: neighbours_of(truth, protocol, k) for k in range(len(truth.classes))}
-    if protocol.variant == "cityscale":
-        lost = truth.unique_lost_masks()
-        kept = category_one(truth) & (True if lost is None else ~lost[1])
-        return [(int(k), near_of[int(k)]) for k in np.flatnonzero(kept)]
-    neighbour_only = {j for k, near in near_of.items() for j in near if j != k}
-    return [(k, near_of[k]) for k in range(len(truth.classes)) if k not in neighbour_only]
-
-
 def evaluate_setups(truth, predictions, protocol="miss-rate"):
     """Log-average miss rate per setup and class (see the module docstring).
 
@@ -146,10 +133,10 @@ def evaluate_setups_with_samples(truth, predictions, protocol="miss-rate"):
         raise InputError(conflict["path"], conflict["message"], **where)
     if protocol.variant == "cityscale":  # a value the script raises on, where it does
         cityscale_raises.check(truth, predictions, protocol)
-    exact = _exact_order(predictions, protocol)
+    exact = exact_order(predictions, protocol)
     n_images = truth.n_images
-    lost = _lost_images(truth, protocol)
-    flagged = _not_counted(truth, protocol)
+    lost = lost_images(truth, protocol)
+    flagged = not_counted(truth, protocol)
     void = truth.zero_id_boxes() if protocol.variant == "cityscale" else None
     fraction = truth.cityscale_ignore()[1] if void is not None else None
     bad_ids = [{e[0]: e for e in truth.cityscale_faults.get("id", ())}] if void is not None else []
@@ -168,7 +155,7 @@ def evaluate_setups_with_samples(truth, predictions, protocol="miss-rate"):
     region_by_image = _group(truth.region_image, n_images)
     levels = {s.name: {} for s in protocol.setups}
     parts, classes = {}, []
-    for k, near in _classes(truth, protocol):
+    for k, near in evaluated_classes(truth, protocol):
         classes.append(truth.classes[k])
         own = truth.box_class == k
         part = own | np.isin(truth.box_class, near)
@@ -215,30 +202,12 @@ def evaluate_setups_with_samples(truth, predictions, protocol="miss-rate"):
     summary = {name: _setup_summary(per_class) for name, per_class in levels.items()}
     output = {
         "protocol": protocol.record(),
-        "n_images": _image_count(truth, protocol),
+        "n_images": image_count(truth, protocol),
         "levels": summary,
         "headline": summary.get(protocol.headline_level, {}).get("miss_rate"),
     }
     setups = [s.name for s in protocol.setups]
     return output, LevelSamples("setups", protocol, n_images, setups, classes, parts)
-
-
-def _exact_order(predictions, protocol):
-    """``(rank, {height range: key})`` per prediction (rank -1, key NaN where not
-    given) of the CityPersons script's exact order (``Predictions.cityscale_order``)
-    under ``cityscale``; None elsewhere or where float64's order is the script's."""
-    found = predictions.cityscale_order() if protocol.variant == "cityscale" else None
-    if found is None:
-        return None
-    index, rank, keys = found
-    ranks = np.full(len(predictions), -1, np.int64)
-    ranks[index] = rank
-    by_range = {}
-    for height, key in zip(CITYSCALE_HEIGHT_RANGES, keys):
-        if key is not None:
-            by_range[height] = np.full(len(predictions), np.nan)
-            by_range[height][index] = key
-    return ranks, by_range
 
 
 def _class_result(
@@ -316,7 +285,7 @@ def _class_result(
         "miss_rate": lamr,
         "n_gt": n_gt,
         "reference_miss_rate": miss.tolist(),
-        "curve": curve_points(tp, fp, n_gt, _image_count(truth, protocol)),
+        "curve": curve_points(tp, fp, n_gt, image_count(truth, protocol)),
         "detections": detections,
     }, samples
 
@@ -336,31 +305,6 @@ def _refuse_unwritable_id(truth, faults, boxes):
         )
 
 
-def _lost_images(truth, protocol):
-    """Per image, whether the CityPersons script's ``evaluate`` loses its id in
-    ``p.imgIds = list(np.unique(p.imgIds))`` (``GroundTruth.unique_lost_masks``: its
-    boxes and detections are never looked up), or None (nothing lost, or another
-    variant: the toolbox keys images by file)."""
-    lost = truth.unique_lost_masks() if protocol.variant == "cityscale" else None
-    return None if lost is None else lost[0]
-
-
-def _not_counted(truth, protocol):
-    """Per box, whether it never counts: a flag makes it an ignore box
-    (``ignore_flags``), or its image is lost (``_lost_images``)."""
-    flagged = ignore_flags(truth, protocol)
-    lost = _lost_images(truth, protocol)
-    return flagged if lost is None else flagged | lost[truth.box_image]
-
-
-def _image_count(truth, protocol):
-    """The images false positives are divided by: the CityPersons script's ``I0 =
-    len(_pe.imgIds)`` counts an id ``np.unique`` merged into another's once
-    (``GroundTruth.unique_counted_images``); elsewhere every image."""
-    counted = truth.unique_counted_images() if protocol.variant == "cityscale" else None
-    return truth.n_images if counted is None else int(counted.sum())
-
-
 def _setup_summary(per_class):
     present = [r["miss_rate"] for r in per_class.values() if r["miss_rate"] is not None]
     return {"classes": per_class, "miss_rate": float(np.mean(present)) if present else None}
@@ -370,7 +314,7 @@ def setup_counts(truth, protocol="miss-rate"):
     """Counted boxes per setup and evaluated class (the ``n_gt`` of
     ``evaluate_setups``), for a split's page: ``{setup: {class: n}}``."""
     protocol = get_miss_rate_protocol(protocol)
-    flagged = _not_counted(truth, protocol)
+    flagged = not_counted(truth, protocol)
     visibility = setup_visibility(truth, protocol)
     script = protocol.variant == "cityscale"
     out = {}
@@ -379,7 +323,7 @@ def setup_counts(truth, protocol="miss-rate"):
         inside &= ~flagged
         out[setup.name] = {
             truth.classes[k]: int(np.count_nonzero(inside & (truth.box_class == k)))
-            for k, _ in _classes(truth, protocol)
+            for k, _ in evaluated_classes(truth, protocol)
         }
     return out
 

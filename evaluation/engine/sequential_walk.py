@@ -37,7 +37,7 @@ def refuse_unwritable_ids(truth, predictions, order, matched, boxes):
     the detection's id into the float ``gtm`` (``dtm[tind, dind] = gt[m]['id']``;
     ``gtm[tind, m] = d['id']``): an id numpy cannot write (text Python's ``float`` does
     not read, such as ``"x"``) raises there. So a file where such a box (the loader's
-    ``GroundTruth.cityscale_faults["id"]``: ``coco_truth.unwritable_id``) or such a
+    ``GroundTruth.cityscale_faults["id"]``: ``annotation_flags.unwritable_id``) or such a
     detection (``Predictions.unwritable``) takes part in a match is refused, naming
     its record; the box first, as its write comes first. ``matched``/``boxes``: the
     match rows' detections (in ``order``) and boxes."""

@@ -17,6 +17,7 @@ import pytest
 
 from evaluation.engine import InputError
 from evaluation.engine.loaders import (
+    annotation_flags,
     coco_json,
     coco_records,
     coco_truth,
@@ -72,7 +73,7 @@ def _whole(path, data, vis_ratio=False):
             return str(e)
     anns = d.annotations
     sink = coco_truth._Records(path)
-    crowd = sink.crowd_columns([a.iscrowd for a in anns], 0)
+    crowd = annotation_flags.crowd_columns([a.iscrowd for a in anns])
     if sink.out_of_range:
         return str(sink.out_of_range["annotations", "iscrowd"])
 

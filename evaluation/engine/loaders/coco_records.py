@@ -33,7 +33,7 @@ class _Annotation(msgspec.Struct, gc=False):
     category_id: Id
     bbox: tuple[float, float, float, float]
     area: float | None = None
-    iscrowd: int | float | bool = 0  # any number, as pycocotools: see crowd_columns
+    iscrowd: int | float | bool = 0  # any number, as pycocotools (annotation_flags.crowd_columns)
     difficult: int | bool = 0
     ignore: int | float | bool = 0  # read by the pedestrian setups only: ignore_key
     occlusion: float | None = None  # road attributes: loaders.attributes

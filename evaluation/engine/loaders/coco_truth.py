@@ -1,7 +1,8 @@
 """COCO-style ground truth (images / annotations / categories / dont_care): reading a
 file into columns in bounded memory (``read_truth``), slice by slice of its record
 arrays as ``json_syntax.check`` hands them on (``_Records``), with errors in the order
-of a whole-file decode.
+of a whole-file decode. An annotation's ``iscrowd``, ``ignore`` and ``id`` are read as
+the reference codes read them by ``annotation_flags``.
 """
 
 import math
@@ -11,7 +12,7 @@ import msgspec
 import numpy as np
 
 from ..errors import InputError
-from . import json_literals, json_syntax, result_readings, unread_fields
+from . import annotation_flags, json_literals, json_syntax, unread_fields
 from .checks import text_start
 from .coco_records import (
     _Annotation,
@@ -32,13 +33,6 @@ from .ids import escaped, id_kinds
 #: builds columns (about 1 s more per 100 MB), so a syntax error late in it is found at
 #: flat memory; below it, the columns built up to such an error are small anyway.
 SYNTAX_FIRST_BYTES = 32 << 20
-
-
-def _as_float(value):
-    try:
-        return float(value)
-    except OverflowError:
-        return math.inf if value > 0 else -math.inf
 
 
 def read_truth(path, wide=False, loose=False, vis_ratio=False):
@@ -253,13 +247,7 @@ class _Records:
         def given(name):
             return np.array([_size(getattr(a, name)) for a in anns], np.float64)
 
-        for i, a in enumerate(anns):  # NaN, Infinity: int(ignore) raises in computeIoU
-            if type(a.ignore) is float and not math.isfinite(a.ignore):
-                fault = unread_fields.ignore_fault(a.ignore)
-                self.city_rows.setdefault(base + i, {})["ignore"] = (fault, True)
-            if type(a.id) in (str, int) and unwritable_id(a.id):  # evaluateImg's dtm write
-                self.city_rows.setdefault(base + i, {})["id"] = (repr(a.id)[:40], True)
-
+        annotation_flags.city_faults(anns, base, self.city_rows)
         return {
             "box_ids": self.ids([a.id for a in anns], key, "id", base),
             "box_image_ids": self.ids([a.image_id for a in anns], key, "image_id", base),
@@ -267,7 +255,7 @@ class _Records:
             "boxes": np.array([a.bbox for a in anns], np.float64).reshape(-1, 4),
             "box_area": given("area"),
             "box_area_given": np.array([a.area is not None for a in anns], bool),
-            **self.crowd_columns([a.iscrowd for a in anns], base),
+            **annotation_flags.crowd_columns([a.iscrowd for a in anns]),
             "difficult": np.array([bool(a.difficult) for a in anns], bool),
             "ignore_key": np.array([bool(a.ignore) for a in anns], bool),
             "ignore_key_fraction": np.array(
@@ -293,26 +281,6 @@ class _Records:
             "vis_ratio": given("vis_ratio") if self.vis_ratio else np.full(len(anns), np.nan),
             "vis_ratio_kind": np.zeros(len(anns), np.int8),
         }
-
-    def crowd_columns(self, values, base):
-        """``crowd`` and ``ignore`` from ``iscrowd`` values, as pycocotools 2.0.11 reads
-        them: ``_prepare`` ignores a box whose ``iscrowd`` is truthy (0.5 too), while
-        ``evaluateImg`` passes ``int(iscrowd)`` to ``maskUtils.iou`` as uint8, so a
-        value whose integer part is nonzero (1..255: ``true``, 2, 1.5) is a crowd region
-        (crowd IoU, reusable); 0 < |iscrowd| < 1 makes an ignored regular box. Any other
-        number is read the same way, as truthiness: nonzero integer part = crowd. An
-        integer part outside 0..255 (300, -1, or infinite) passes ``_prepare`` and makes
-        pycocotools raise only in ``computeIoU`` (the uint8 cast) when a detection of
-        its class meets the box on its image; here it is always a crowd region, and
-        ``crowd_wide`` marks it (counted as ``iscrowd_outside_0_255``)."""
-        try:
-            v = np.array(values, np.float64).reshape(-1)
-        except OverflowError:  # an integer beyond float64: infinite, a crowd region
-            v = np.array([_as_float(x) for x in values], np.float64)
-        whole = np.trunc(v)
-        crowd = whole != 0  # NaN and infinities are truthy too
-        wide = ~np.isfinite(v) | (whole < 0) | (whole > 255)
-        return {"crowd": crowd, "ignore": (v != 0) & ~crowd, "crowd_wide": wide}
 
     def dont_care(self, regions, key, base):
         return {
@@ -391,16 +359,3 @@ def _slice_decode_error(path, error, checker, locate):
     line, column = checker.line_column(locate(int(m.group(1))))
     reason = text.split(":", 1)[-1].split("(byte")[0].strip()
     return InputError(path, f"not valid JSON: {reason} at line {line}, column {column}")
-
-
-def unwritable_id(value):
-    """Whether numpy cannot write an annotation id (text, an int) into pycocotools'
-    float ``dtm`` (``dtm[tind, dind] = gt[m]['id']``): text Python's ``float`` does not
-    read (``"x"``; ``" 2 "``, ``"1_0"``, ``"nan"``, ``"١"`` read), an integer beyond
-    float64. Recorded as ``GroundTruth.cityscale_faults["id"]`` for the matching's
-    refusal (``sequential_walk.refuse_unwritable_ids``)."""
-    try:
-        float(value)
-    except (ValueError, OverflowError):
-        return result_readings.as_float(value) is None
-    return False
