@@ -70,10 +70,10 @@ def id_texts(values):
     dicts key ``true`` as 1 and ``3.0`` as 3), numbers in decimal or their shortest
     form, text as written — JSON-quoted when some id of the family ends in U+0000 or
     holds a lone surrogate (shown as its escape), as the engine shows such a family.
-    None for a value no id can be (NaN, null).
+    None for a value no id can be (null).
 
-    >>> id_texts([7, 2**64 + 5, True, 3.0, 1e20, 2.5, float("inf"), None])
-    ['7', '18446744073709551621', '1', '3', '100000000000000000000', '2.5', 'inf', None]
+    >>> id_texts([7, 2**64 + 5, True, 3.0, 1e20, 2.5, float("inf"), float("nan"), None])
+    ['7', '18446744073709551621', '1', '3', '100000000000000000000', '2.5', 'inf', 'nan', None]
     >>> id_texts(["img_001", "b"]), id_texts(["a\x00", "b"]), id_texts(["a\ud800"])
     (['img_001', 'b'], ['"a\\u0000"', '"b"'], ['"a\\ud800"'])
     """
@@ -81,8 +81,7 @@ def id_texts(values):
     for value in values:
         if isinstance(value, bool) or (isinstance(value, float) and value.is_integer()):
             value = int(value)
-        ok = isinstance(value, str | int) or (isinstance(value, float) and value == value)
-        whole.append(value if ok else None)
+        whole.append(value if isinstance(value, str | int | float) else None)
     keys = ids.typed_keys([v for v in whole if v is not None])
     shown = iter(ids.display(keys, ids.family_type(keys)).tolist())
     return [None if v is None else next(shown) for v in whole]

@@ -82,13 +82,14 @@ def _prepared(truth):
     test ``ann['category_id'] in catIds``, which compares with ``==``: a numeric id
     numpy rounded equals its rounded value (numpy converts the int to compare it), so
     its annotations are fetched and read, though never evaluated under it
-    (``GroundTruth.looked_up``); a text id cut of its trailing U+0000 is not."""
+    (``GroundTruth.looked_up``); a text id cut of its trailing U+0000 is not, nor a
+    NaN (numpy's NaN is another object than the file's, and NaN == NaN is false)."""
     lost = truth.unique_lost_masks()
     if lost is None:
         return np.ones(truth.n_boxes, bool)
     images, classes = lost
     if truth.class_id_type not in ("text", "json"):
-        classes = np.zeros_like(classes)
+        classes = classes & (np.asarray(truth.class_ids) == "nan")
     return ~(images[truth.box_image] | classes[truth.box_class])
 
 

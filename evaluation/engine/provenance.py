@@ -193,7 +193,8 @@ def counts(truth, predictions, records):
 SHOWN_LOST_IDS = 20
 LOST_REASON = (
     "{} evaluate() runs np.unique on the {} ids, which changes these ids "
-    "(numpy rounds them to float64 or cuts a trailing U+0000), then finds no ground truth "
+    "(numpy rounds them to float64, cuts a trailing U+0000, or makes a new NaN, which "
+    "equals nothing), then finds no ground truth "
     "and no detections under them: their boxes and detections are left out"
 )
 

@@ -35,6 +35,9 @@ from .synthetic import make_detections, make_split
 from .test_class_groups import N_CLASSES, _grouped, _same_records
 
 BOX = [10, 10, 20, 20]
+#: One NaN object, as Python's ``json`` gives one (``json.decoder.NaN``) for every
+#: ``NaN`` literal: pycocotools' dicts find it by identity, ``np.unique``'s NaN never.
+NAN = float("nan")
 
 
 def _split(image_ids):
@@ -108,6 +111,8 @@ def _lost_ids(ids, reference):
         (["a\x00", "a"], ["a\x00"]),  # ... "a" is scored once
         (["\x00", ""], ["\x00"]),
         (["a\x00b", "a"], []),  # inside: kept
+        ([1, NAN, 3], [NAN]),  # float64; numpy's NaN is a new object, equal to nothing
+        ([NAN, 0.5, 2**53 + 1], [NAN, 2**53 + 1]),
     ],
 )
 def test_worked_cases_equal_pycocotools(tmp_path, ids, lost):
@@ -125,6 +130,22 @@ def test_worked_cases_equal_pycocotools(tmp_path, ids, lost):
     assert left_out["images"] == len(lost) and left_out["truth_boxes"] == len(lost)
     assert "np.unique" in left_out["reason"]
     assert len(truth.unique_lost_images) == len(lost)
+
+
+def test_a_nan_image_sorts_last_as_numpy_sorts_it(tmp_path):
+    """Python's ``sorted([3, nan, 1])`` leaves the list as it is (every comparison with
+    NaN is false); pycocotools' ``np.unique`` then orders the ids 1, 3, NaN, and ties
+    across images follow that order. A tie between a miss on image 1 and a hit on
+    image 3 moves AP with the order: equal to pycocotools 2.0.11 here."""
+    split, _ = _split([3, NAN, 1])
+    detections = [
+        {"image_id": 1, "category_id": 1, "bbox": [100, 100, 20, 20], "score": 0.9},
+        {"image_id": 3, "category_id": 1, "bbox": BOX, "score": 0.9},
+        {"image_id": 1, "category_id": 1, "bbox": BOX, "score": 0.5},
+    ]
+    truth, ours, _ = _compare(tmp_path, split, detections)
+    assert ours["per_class"]["car"]["AP50"] < 0.9  # the miss ranks first
+    assert truth.image_ids.tolist() == ["1", "3", "nan"]
 
 
 def test_a_lost_image_moves_the_numbers_as_pycocotools_does(tmp_path):
@@ -196,7 +217,7 @@ KINDS = st.one_of(
     st.integers(2**64 - 1, 2**64 + 2),
     st.integers(-(2**63) - 1, -(2**63) + 1),
     st.booleans(),
-    st.sampled_from([0.5, 2.0, 2.0**53, 2.0**63, float("inf"), -float("inf"), -1.5]),
+    st.sampled_from([0.5, 2.0, 2.0**53, 2.0**63, float("inf"), -float("inf"), -1.5, NAN]),
 )
 TEXT = st.text(st.sampled_from(["a", "b", "\x00", "é"]), max_size=3)
 
@@ -338,6 +359,7 @@ def _compare_classes(tmp_path, class_ids):
         ([2**53 + 1, 2.5], [2**53 + 1]),
         (["car\x00", "car"], ["car\x00"]),
         ([2**64 + 1, 2**63 + 1, 1], []),
+        ([1, NAN, 2], [NAN]),
     ],
 )
 def test_category_ids_pycocotools_loses_are_left_out_alike(tmp_path, class_ids, lost):

@@ -28,7 +28,7 @@ from .conftest import as_reference, pycocotools_eval
 from .load_paths import as_pycocotools, every_path_agrees
 from .test_cityscale_booleans import _agree
 from .test_cityscale_raises import _ann, _dataset, _det, _write
-from .test_unique_lost_ids import KINDS, TEXT, _class_split, _distinct, _run
+from .test_unique_lost_ids import KINDS, NAN, TEXT, _class_split, _distinct, _run
 
 BIG = 2**53 + 1  # float64 rounds it to 2^53 (round half to even): from numpy's rules
 
@@ -300,21 +300,21 @@ def test_values_on_a_lost_image_are_never_read_as_in_pycocotools(
 
 
 @pytest.mark.parametrize(
-    "categories, refused",
+    "categories, lost, refused",
     [
-        ((0.5, 1, BIG), True),  # rounded: 2^53+1 == np.float64(2^53), fetched and read
-        (("a\x00", "b"), False),  # cut: "a\x00" != "a", never fetched (no class 1)
+        ((0.5, 1, BIG), BIG, True),  # rounded: 2^53+1 == np.float64(2^53), fetched, read
+        (("a\x00", "b"), "a\x00", False),  # cut: "a\x00" != "a", never fetched (no class 1)
+        ((1, NAN), NAN, False),  # numpy's NaN: another object, NaN == NaN false
     ],
 )
 def test_cityscale_reads_a_lost_categorys_annotations_as_the_script_fetches_them(
-    tmp_path, categories, refused
+    tmp_path, categories, lost, refused
 ):
     """``_prepare`` fetches ``getAnnIds(imgIds, catIds)``, whose category test is the
     list test ``ann['category_id'] in catIds`` (``==``): a numeric id numpy rounded
     still equals its value there, so its annotations are read (a null ``vis_ratio``
     raises TypeError) though never evaluated; a text id cut of U+0000 is not fetched.
     Refused, or scored, as the script's transliteration does."""
-    lost = categories[-1] if refused else categories[0]
     annotations = [_ann(1, 0.0), _ann(2, 300.0, category_id=lost, vis_ratio=None)]
     results = [_det(0.0, score=0.9), _det(600.0, score=0.5)]
     gt, dt = _write(tmp_path, _dataset(annotations, (1,), categories), results)

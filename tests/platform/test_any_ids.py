@@ -116,6 +116,17 @@ KINDS = {
         "unlisted_class": 99,
         "left_out": 2,
     },
+    # a NaN image id (JSON ``NaN``: Python's json gives one shared float object, which
+    # pycocotools' dicts find by identity): np.unique's NaN is another object, equal to
+    # nothing, so that image scores nothing (left out, counted); the others are floats
+    # sorted by value, the NaN last
+    "nan": {
+        "images": [float("nan"), 7, 2.5, 1, 3, 4],
+        "categories": [],
+        "annotations": [],
+        "unlisted_class": 99,
+        "left_out": 1,
+    },
 }
 
 
@@ -186,9 +197,10 @@ def _image_texts_in_file_order(truth):
 
 def _image_texts(truth):
     """The split's image ids as the platform shows them, in pycocotools' image order
-    (``sorted(cocoGt.getImgIds())``)."""
+    (``sorted(cocoGt.getImgIds())``, which ``evaluate``'s ``np.unique`` sorts again:
+    a NaN last)."""
     ids = [i["id"] for i in truth["images"]]
-    return [_written(i, ids) for i in sorted(ids)]
+    return [_written(i, ids) for i in sorted(ids, key=lambda v: (v != v, v))]
 
 
 def _pycocotools(tmp_path, truth, detections, reference=None):
@@ -394,7 +406,7 @@ def test_pages_and_api_show_the_ids_as_written(client, users, scored):
 def test_downloads_carry_the_ids_as_written(client, users, scored):
     """The records CSV names each image and box by the id the pages show; the JSON
     Lines download gives each image id back as the JSON value the split gave (an
-    infinite one as the string "Infinity", as the export writes every non-finite
+    infinite one as the string "Infinity", a NaN as "NaN", as the export writes every non-finite
     number in strict JSON; one holding a lone surrogate as the JSON-quoted text the
     pages show). Every line is strict JSON: msgspec, a strict reader, decodes it."""
     evaluation, truth = _evaluation(scored["2.0"]), scored["truth"]
@@ -417,6 +429,7 @@ def test_downloads_carry_the_ids_as_written(client, users, scored):
     for record, row in zip(records, rows):
         given = value_of[row["image_id"]]
         expected = {math.inf: "Infinity", -math.inf: "-Infinity"}.get(given, given)
+        expected = "NaN" if given != given else expected
         if isinstance(given, str) and (_lone(given) or given.startswith('"')):
             expected = _written(given, family)  # strict readers refuse a lone surrogate
         assert record["image_id"] == expected and type(record["image_id"]) in (

@@ -31,8 +31,10 @@ in pycocotools; only what is shown or written is escaped (``escaped``, ``quoted`
 
 Image ids pycocotools' ``evaluate`` loses (``unique_lost``): it runs
 ``p.imgIds = list(np.unique(p.imgIds))`` and looks each image up by those numpy values,
-so an id numpy does not hold as written (rounded to float64, a trailing U+0000 cut)
-names no image there: its ground truth and detections are never scored.
+so an id numpy does not hold as written (rounded to float64, a trailing U+0000 cut, a
+NaN, which equals nothing) names no image there: its ground truth and detections are
+never scored. A NaN id is otherwise an id like any other: Python's ``json`` gives one
+NaN object for every ``NaN`` literal, which pycocotools' dicts find by identity.
 """
 
 import json
@@ -237,10 +239,16 @@ def keys_of(ids, id_type):
 
 
 def sort_order(keys):
-    """Stable order of a family's typed keys as pycocotools sorts the ids: numbers by
-    value (Python's exact int/float comparison), text by code point."""
+    """Stable order of a family's typed keys as pycocotools' ``evaluate`` orders the ids
+    (``np.unique`` of the sorted list): numbers by value (Python's exact int/float
+    comparison), a NaN last (numpy's sort order; Python's ``sorted`` leaves a list
+    holding NaN partly unsorted, which ``np.unique`` then sorts), text by code point."""
     values = [key_value(k) for k in keys.tolist()]
-    return np.array(sorted(range(len(values)), key=values.__getitem__), np.int64)
+    return np.array(sorted(range(len(values)), key=lambda n: _nan_last(values[n])), np.int64)
+
+
+def _nan_last(value):
+    return (value != value, value)
 
 
 def shown(value):

@@ -33,17 +33,14 @@ def _typed_family(path, cols, defining, refs, locate, what):
         cols[name] = ids_module.typed_keys(cols[name])
     keys = cols[defining]
     marks = np.array([key[0] for key in keys.tolist()], dtype=object)
-    for bad, word in (
-        (marks == ids_module.NULL, "null"),
-        (keys == ids_module.NUMBER + "nan", "NaN"),
-    ):
-        if bad.any():
-            raise InputError(
-                path,
-                f"{what} ids cannot be {word} (pycocotools sorts them; {word} names nothing)",
-                record=locate(int(np.flatnonzero(bad)[0])),
-                field="id",
-            )
+    null = marks == ids_module.NULL
+    if null.any():
+        raise InputError(
+            path,
+            f"{what} ids cannot be null (pycocotools sorts them; null names nothing)",
+            record=locate(int(np.flatnonzero(null)[0])),
+            field="id",
+        )
     mixed = np.flatnonzero(marks != marks[0]) if len(marks) else []
     if len(mixed):
         i = int(mixed[0])
