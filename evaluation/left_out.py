@@ -37,6 +37,9 @@ _ANNOTATION_LINES = (
     ("duplicate_id_copies", "annotation", "annotations",
      "with a repeated id scored as a copy of the last annotation with that id (as "
      "pycocotools' index does)"),
+    ("duplicate_ids_never_fetched", "annotation", "annotations",
+     "with a repeated id on an image or category whose id pycocotools' np.unique changes "
+     "left out: it never fetches them, so they make no copy of the last annotation"),
     ("duplicate_image_entries", "entry", "entries",
      "of image ids listed more than once left out: each image is its last entry (as "
      "pycocotools' index keeps it)"),

@@ -32,6 +32,7 @@ import numpy as np
 
 from . import cityscale_boxes
 from .errors import InputError
+from .loaders import lost_ids
 from .pedestrian_setups import HEIGHT_EXPANSION  # Params.expFilter
 
 
@@ -88,8 +89,8 @@ def _prepared(truth):
     if lost is None:
         return np.ones(truth.n_boxes, bool)
     images, classes = lost
-    if truth.class_id_type not in ("text", "json"):
-        classes = classes & (np.asarray(truth.class_ids) == "nan")
+    nan = np.asarray(truth.class_ids) == "nan"
+    classes = lost_ids.unfetched_classes(classes, nan, truth.class_id_type)
     return ~(images[truth.box_image] | classes[truth.box_class])
 
 

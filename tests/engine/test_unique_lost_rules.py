@@ -18,7 +18,7 @@ import pytest
 from hypothesis import HealthCheck, assume, given, settings
 from hypothesis import strategies as st
 
-from evaluation.engine import COCO_SUMMARY_KEYS, InputError, load_predictions, load_truth
+from evaluation.engine import COCO_SUMMARY_KEYS, InputError, evaluate, load_predictions, load_truth
 from evaluation.engine.__main__ import main
 from evaluation.engine.level_samples import LevelSamples, setup_class
 from evaluation.engine.loaders.ids import unique_lost, unique_merged
@@ -322,3 +322,65 @@ def test_cityscale_reads_a_lost_categorys_annotations_as_the_script_fetches_them
     assert isinstance(outcome, InputError) is refused
     if refused:
         assert outcome.record == "annotations[1]" and outcome.field == "vis_ratio"
+
+
+# A repeated annotation id: only the occurrences getAnnIds fetches make a copy ---------
+
+
+def _copies_case(images, categories, first_image, first_category, scored_category):
+    """Annotation id 7 twice: first on ``first_image``/``first_category`` (one
+    pycocotools may never fetch), last on image 5 under ``scored_category``; a hit on
+    it, a miss on image 5 and a hit on the other image's box (id 8)."""
+
+    def ann(id_, image, category, x=0):
+        box = [x, 0, 10, 10]
+        return {"id": id_, "image_id": image, "category_id": category, "bbox": box,
+                "area": 100, "iscrowd": 0}  # fmt: skip
+
+    other = images[0]
+    split = {
+        "images": [{"id": i} for i in images],
+        "categories": [{"id": c, "name": f"c{n}"} for n, c in enumerate(categories)],
+        "annotations": [
+            ann(7, first_image, first_category),
+            ann(7, 5, scored_category),
+            ann(8, other, scored_category),
+        ],
+    }
+    detections = [
+        {"image_id": 5, "category_id": scored_category, "bbox": [0, 0, 10, 10], "score": 0.9},
+        {"image_id": other, "category_id": scored_category, "bbox": [0, 0, 10, 10], "score": 0.8},
+        {"image_id": 5, "category_id": scored_category, "bbox": [50, 0, 10, 10], "score": 0.7},
+    ]
+    return split, detections
+
+
+@pytest.mark.parametrize(
+    "images, categories, first, copies",
+    [
+        ((0.5, BIG, 5), (1,), (BIG, 1), 0),  # a lost image: imgToAnns[BIG] never read
+        ((0.5, 5), ("a\x00", "b"), (5, "a\x00"), 0),  # cut text: "a\x00" not in catIds
+        ((1, 5), (NAN, 2), (5, NAN), 0),  # NaN: not in catIds (== is false)
+        ((1, 5), (0.5, BIG), (5, BIG), 1),  # rounded: BIG == np.float64(2^53), fetched
+        ((1, 5), (1, 2), (5, 1), 1),  # nothing lost: fetched, a copy as ever
+    ],
+)
+def test_a_repeated_id_makes_a_copy_only_where_pycocotools_fetches_it(
+    tmp_path, images, categories, first, copies
+):
+    """pycocotools 2.0.11 ``loadAnns`` makes a copy of the last annotation with an id
+    for each occurrence ``getAnnIds`` fetches; an occurrence on an image ``np.unique``
+    loses (a dict lookup), or under a category whose lost id is not ``==`` to numpy's
+    value (``in catIds``), is never fetched and makes none. Every number equals
+    pycocotools' on the file, and the occurrences left out are counted."""
+    scored = categories[-1]
+    split, detections = _copies_case(images, categories, *first, scored)
+    (tmp_path / "gt.json").write_text(json.dumps(split))
+    (tmp_path / "dt.json").write_text(json.dumps(detections))
+    reference = pycocotools_eval(tmp_path / "gt.json", tmp_path / "dt.json")
+    truth = load_truth(tmp_path / "gt.json")
+    ours = evaluate(truth, load_predictions(tmp_path / "dt.json", truth), "coco")
+    for key, expected in zip(COCO_SUMMARY_KEYS, reference.stats):
+        assert as_reference(ours["summary"][key]) == pytest.approx(expected, abs=1e-12), key
+    assert truth.box_counts["duplicate_id_copies"] == copies
+    assert truth.box_counts["duplicate_ids_never_fetched"] == 1 - copies

@@ -37,7 +37,7 @@ __all__ = [
 #: Bumped when the parsed columns change shape or meaning: old cache entries are unused.
 #: 22: label-file and CSV ids are integers of ASCII digits only (``ids.INTEGER``);
 #: 21: truth entries keep the ids np.unique merges (unique_merged_images)
-CACHE_SCHEMA = 22
+CACHE_SCHEMA = 23
 UNKNOWN_CLASS_POLICIES = ("reject", "drop")
 #: Detections of images the split does not hold: refused (default; pycocotools'
 #: ``loadRes`` asserts every result image is in the set) or, for re-scoring stored

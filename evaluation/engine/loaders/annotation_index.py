@@ -12,6 +12,9 @@ checked by running it in ``tests/engine/test_annotation_index.py``):
   given twice resolves to the *last* annotation with it: every annotation of that id
   becomes a copy of the last one, placed under the last one's image and category
   (copies of a last annotation whose image or category is not listed are dropped).
+  Only the occurrences ``getAnnIds`` fetches make a copy: one on an image, or under a
+  category, whose id ``evaluate``'s ``np.unique`` loses is never fetched
+  (``lost_ids.unfetched``), so it makes none (counted: ``duplicate_ids_never_fetched``).
 
 * ``createIndex`` fills ``imgs[img['id']] = img`` and ``cats[cat['id']] = cat``, so an
   image or a category listed twice is one image or category, its last entry
@@ -33,6 +36,7 @@ COUNTS = (
     "annotations_of_unlisted_images",
     "annotations_of_unlisted_categories",
     "duplicate_id_copies",
+    "duplicate_ids_never_fetched",
     "duplicate_image_entries",
     "duplicate_category_entries",
     "categories_renamed",
@@ -80,12 +84,14 @@ def _last_of_each_id(ids):
     return last
 
 
-def resolve(cols, image_ids, class_ids):
+def resolve(cols, image_ids, class_ids, unfetched=None):
     """Columns of the annotations pycocotools scores, in the order it reads them, and
     the source row of each (for error locations); counts of what changed.
 
     ``cols`` holds every annotation in file order; ``image_ids``/``class_ids`` the ids
-    the file lists, ``image_ids`` in pycocotools' (sorted) order. Returns ``(rows,
+    the file lists, ``image_ids`` in pycocotools' (sorted) order; ``unfetched``: the
+    image and class ids whose annotations ``getAnnIds`` never fetches
+    (``lost_ids.unfetched``), or None. Returns ``(rows,
     counts)``; ``rows`` is None when nothing changes
     (no duplicate id, every image and category listed), so the common file keeps its
     order and content exactly.
@@ -96,10 +102,16 @@ def resolve(cols, image_ids, class_ids):
     selected = known_image & known_class
     last = _last_of_each_id(cols["box_ids"])
     copies = last != np.arange(len(last))
+    never = np.zeros(len(last), bool)
+    if unfetched is not None and copies.any():
+        never = selected & copies
+        never &= np.isin(box_images, unfetched[0]) | np.isin(box_classes, unfetched[1])
+        selected = selected & ~never  # not fetched: no copy of the last is made
     counts = {
         "annotations_of_unlisted_images": int((~known_image).sum()),
         "annotations_of_unlisted_categories": int((known_image & ~known_class).sum()),
         "duplicate_id_copies": int((selected & copies).sum()),
+        "duplicate_ids_never_fetched": int(never.sum()),
     }
     if selected.all() and not copies.any():
         return None, counts

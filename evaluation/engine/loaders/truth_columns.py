@@ -201,7 +201,8 @@ def read_truth(
     if fmt == "json" and annotations == "strict":
         checks.check_unique(path, cols["box_ids"], box_locate, "id")
     elif fmt == "json":
-        rows, resolved = annotation_index.resolve(cols, image_ids, class_ids)
+        unfetched = lost_ids.unfetched(lost, image_ids, class_ids, class_type)
+        rows, resolved = annotation_index.resolve(cols, image_ids, class_ids, unfetched)
         annotation_counts.update(resolved)
         unread = lost_ids.unread_on_lost(cols, bad_rows, rows, image_ids, class_ids, lost)
         _raise_if_scored(path, bad_rows, rows, len(cols["boxes"]), unread)
