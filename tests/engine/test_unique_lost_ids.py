@@ -11,6 +11,7 @@ pycocotools 2.0.11 itself (``conftest.pycocotools_eval``) on the very file.
 
 import dataclasses
 import json
+import json.decoder
 
 import numpy as np
 import pytest
@@ -35,9 +36,9 @@ from .synthetic import make_detections, make_split
 from .test_class_groups import N_CLASSES, _grouped, _same_records
 
 BOX = [10, 10, 20, 20]
-#: One NaN object, as Python's ``json`` gives one (``json.decoder.NaN``) for every
-#: ``NaN`` literal: pycocotools' dicts find it by identity, ``np.unique``'s NaN never.
-NAN = float("nan")
+#: The NaN object Python's ``json`` gives for every ``NaN`` literal: pycocotools'
+#: dicts and numpy object arrays find it by identity, a float64 array's NaN never.
+NAN = json.decoder.NaN
 
 
 def _split(image_ids):
@@ -113,6 +114,8 @@ def _lost_ids(ids, reference):
         (["a\x00b", "a"], []),  # inside: kept
         ([1, NAN, 3], [NAN]),  # float64; numpy's NaN is a new object, equal to nothing
         ([NAN, 0.5, 2**53 + 1], [NAN, 2**53 + 1]),
+        ([2**64, NAN, 3, 1], []),  # object array: it holds the file's NaN, found
+        ([3, NAN, 2**64 + 1, 1, -5, 2], []),  # ... and sorted as Python's sort leaves it
     ],
 )
 def test_worked_cases_equal_pycocotools(tmp_path, ids, lost):
@@ -360,6 +363,7 @@ def _compare_classes(tmp_path, class_ids):
         (["car\x00", "car"], ["car\x00"]),
         ([2**64 + 1, 2**63 + 1, 1], []),
         ([1, NAN, 2], [NAN]),
+        ([2**64, NAN, 3, 1], []),
     ],
 )
 def test_category_ids_pycocotools_loses_are_left_out_alike(tmp_path, class_ids, lost):
@@ -416,3 +420,21 @@ def test_a_box_beyond_float64_on_a_lost_image_is_not_refused(tmp_path):
     split["annotations"][0]["bbox"] = [10**400, 10, 20, 20]
     with pytest.raises(InputError, match="annotations\\[0\\]"):
         _run(tmp_path, split, detections)
+
+
+def test_a_category_np_unique_gives_twice_is_refused(tmp_path):
+    """A NaN listed twice beside an id beyond 64 bits: ``np.unique`` of the object
+    array keeps both (NaN != NaN), so pycocotools 2.0.11 evaluates that category twice
+    (two columns, counted twice in the mean); the engine keeps one class per id and
+    refuses the file, naming the category."""
+    split, detections = _class_split([2**64, NAN, 1])
+    split["categories"].append({"id": NAN, "name": "again"})
+    (tmp_path / "gt.json").write_text(json.dumps(split))
+    (tmp_path / "dt.json").write_text(json.dumps(detections))
+    reference = pycocotools_eval(tmp_path / "gt.json", tmp_path / "dt.json")
+    entries = [c for c in reference.params.catIds if c != c]
+    assert len(entries) == 2  # pycocotools' own outcome
+    with pytest.raises(InputError, match="two entries of pycocotools' np.unique") as error:
+        load_truth(tmp_path / "gt.json")
+    assert error.value.record == "categories[3]" and error.value.field == "id"
+

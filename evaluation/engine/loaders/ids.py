@@ -38,6 +38,7 @@ NaN object for every ``NaN`` literal, which pycocotools' dicts find by identity.
 """
 
 import json
+import json.decoder
 import re
 
 import numpy as np
@@ -48,6 +49,10 @@ INTEGER = re.compile(r"[+-]?[0-9]+\Z")
 SURROGATE = re.compile("[\ud800-\udfff]")
 INT64 = (-(2**63), 2**63 - 1)
 NUMBER, TEXT, NULL = "\x1d", "\x1e", "\x1f"  # the type marks of typed keys
+#: The file's NaN: Python's ``json`` gives this one object for every ``NaN`` literal,
+#: which pycocotools' dicts (and numpy object arrays, which hold it as it is) find by
+#: identity; numpy's float64 NaN is another object and equals nothing.
+FILE_NAN = json.decoder.NaN
 #: A COCO JSON id field as decoded: any JSON number, boolean, text or null (a null
 #: reference names nothing, as in pycocotools' dicts).
 JSON_ID = int | float | bool | str | None
@@ -203,7 +208,9 @@ def key_value(key):
     if key[0] == NULL:
         return None
     text = key[1:]
-    return int(text) if INTEGER.match(text) else float(text)
+    if INTEGER.match(text):
+        return int(text)
+    return FILE_NAN if text == "nan" else float(text)
 
 
 def family_type(keys):
@@ -238,17 +245,62 @@ def keys_of(ids, id_type):
     return np.array([TEXT + v for v in ids.tolist()], dtype=object)
 
 
-def sort_order(keys):
+def sort_order(keys, written=None):
     """Stable order of a family's typed keys as pycocotools' ``evaluate`` orders the ids
-    (``np.unique`` of the sorted list): numbers by value (Python's exact int/float
-    comparison), a NaN last (numpy's sort order; Python's ``sorted`` leaves a list
-    holding NaN partly unsorted, which ``np.unique`` then sorts), text by code point."""
+    (``np.unique(sorted(ids))``): numbers by value (Python's exact int/float
+    comparison), text by code point.
+
+    A NaN compares false with everything, so ``sorted`` leaves a list holding one
+    partly unsorted. ``np.unique`` of a float64 array sorts it again, NaN last; of an
+    object array (an id beyond 64 bits) it sorts with the same Python comparisons, so
+    the order depends on the order the ids came in: ``written``, positions into
+    ``keys`` in the order pycocotools' list holds them (image dict keys as first
+    written; categories as listed, repeats and all), is replayed through pycocotools'
+    own two lines (``nan_replayed_order``)."""
     values = [key_value(k) for k in keys.tolist()]
-    return np.array(sorted(range(len(values)), key=lambda n: _nan_last(values[n])), np.int64)
+    if any(v is FILE_NAN for v in values):
+        replayed = nan_replayed_order(values, range(len(values)) if written is None else written)
+        if replayed is not None:
+            return replayed
+        return np.array(sorted(range(len(values)), key=lambda n: _nan_last(values[n])), np.int64)
+    return np.array(sorted(range(len(values)), key=values.__getitem__), np.int64)
 
 
 def _nan_last(value):
     return (value != value, value)
+
+
+def object_array(values):
+    """Whether numpy's type discovery makes ``values`` (JSON numbers) an object array:
+    some integer beyond int64 and uint64 (``np.asarray([2**64, 1.0])`` is object)."""
+    return any(type(v) is int and not -(2**63) <= v < 2**64 for v in values)
+
+
+def nan_replayed_order(values, written):
+    """The order of ``values`` (a family holding ``FILE_NAN``) pycocotools' ``evaluate``
+    gives them when ``np.unique`` makes an object array: ``np.unique(sorted(...))`` run
+    on the values as ``written`` lists them, each entry mapped back by identity (an
+    object array holds the very objects). None when numpy makes a float64 array (then
+    NaN is simply last)."""
+    entries = nan_entries(values, written)
+    if entries is None:
+        return None
+    order = list(dict.fromkeys(entries))
+    seen = set(order)
+    order += [n for n in range(len(values)) if n not in seen]
+    return np.array(order, np.int64)
+
+
+def nan_entries(values, written):
+    """The positions (into ``values``) of the entries pycocotools' ``np.unique(sorted(
+    ...))`` gives for ``values`` as ``written`` lists them, when numpy makes an object
+    array (else None): a position may come twice, where the sort (disturbed by a NaN)
+    leaves two equal ids apart or where a NaN is listed twice (NaN != NaN)."""
+    if not object_array(values):
+        return None
+    at = {id(v): n for n, v in enumerate(values)}
+    entries = np.unique(sorted(values[n] for n in written)).tolist()
+    return [at[id(v)] for v in entries]
 
 
 def shown(value):

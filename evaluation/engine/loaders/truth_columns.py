@@ -91,15 +91,57 @@ def _cityscale_faults(city_rows, rows):
     return faults
 
 
-def _order(values, id_type):
-    """Stable ascending order of a family's defining ids (pycocotools' order)."""
-    return ids_module.sort_order(values) if id_type else np.argsort(values, kind="stable")
+def _order(values, id_type, listed=None, distinct=True):
+    """Stable ascending order of a family's defining ids (pycocotools' order).
+    ``listed``: the family's keys as the file lists them (before ``last_entries``),
+    whose order ``sorted`` sees where a NaN disturbs it (``ids.sort_order``);
+    ``distinct``: pycocotools lists each once (images: its dict's keys), else as
+    listed (categories: ``getCatIds``)."""
+    if not id_type:
+        return np.argsort(values, kind="stable")
+    return ids_module.sort_order(values, _written(values, listed, distinct))
+
+
+def _written(values, listed, distinct):
+    """Positions into ``values`` in the order ``listed`` gives them, or None (no NaN)."""
+    if listed is None or not np.any(values == ids_module.NUMBER + "nan"):
+        return None
+    position = {key: n for n, key in enumerate(values.tolist())}
+    written = [position[key] for key in listed.tolist()]
+    return list(dict.fromkeys(written)) if distinct else written
+
+
+def _refuse_repeated_entries(path, class_ids, listed, locate):
+    """A category ``np.unique(sorted(catIds))`` gives twice: a NaN among ids beyond 64
+    bits (an object array, sorted by Python's comparisons, which a NaN disturbs) can
+    leave two equal ids apart, and a NaN listed twice is two entries (NaN != NaN).
+    pycocotools then evaluates that category twice (two columns of its per-class
+    arrays, counted twice in every mean); the engine has one class per id: refused."""
+    written = _written(class_ids, listed, distinct=False)
+    if written is None:
+        return
+    values = [ids_module.key_value(k) for k in class_ids.tolist()]
+    entries = ids_module.nan_entries(values, written) or []
+    seen = set()
+    for n in entries:
+        if n in seen:
+            raise InputError(
+                path,
+                f"category id {ids_module.shown(class_ids[n])} is two entries of "
+                "pycocotools' np.unique(sorted(catIds)) (a NaN id among ids beyond 64 bits "
+                "disturbs the sort, or NaN is listed twice): it would evaluate that category "
+                "twice and count it twice in every mean; the engine keeps one class per id",
+                record=locate(n),
+                field="id",
+            )
+        seen.add(n)
 
 
 def read_truth(
     path, images, fmt, classes, policy, ids="any", annotations="reference", vis_ratio="as-given"
 ):
     entry_counts, bad_rows, city_rows = {}, {}, {}
+    listed_keys = {}  # a JSON split's ids as listed (``_order``)
     if fmt == "json":
         cols = coco_json.read_truth(
             path,
@@ -125,6 +167,7 @@ def read_truth(
         category_locate = lambda i: f"categories[{i}]"  # noqa: E731
         # getCatIds() is the categories as listed, repeats and all (ids.unique_lost)
         listed_classes = _shown(cols["class_ids"], class_type), cols["class_id_kinds"]
+        listed_keys = {"image": cols["image_ids"], "class": cols["class_ids"]}
         if annotations != "strict":  # an image or category listed twice: its last entry
             kept, duplicates = annotation_index.last_entries(cols)
             entry_counts.update(duplicates)
@@ -185,11 +228,14 @@ def read_truth(
             lambda i, values=values: f"must be > 0, got {values[i]:g}",
         )
         checks.require_sizes(image_path, values, image_locate, policy, field)
-    image_order = _order(cols["image_ids"], image_type)
+    image_order = _order(cols["image_ids"], image_type, listed_keys.get("image"))
     image_ids = cols["image_ids"][image_order]
     shown = _shown(image_ids, image_type)
-    class_order = _order(cols["class_ids"], class_type)
+    class_order = _order(cols["class_ids"], class_type, listed_keys.get("class"), False)
     class_ids = cols["class_ids"][class_order]
+    if class_type:
+        locate = lambda n: category_locate(int(class_order[n]))  # noqa: E731
+        _refuse_repeated_entries(path, class_ids, listed_keys.get("class"), locate)
     lost = {}  # what pycocotools' np.unique loses: a COCO JSON file's ids only
     if fmt == "json":
         lost["image"] = lost_ids.unique_lost(shown, image_type, cols["image_id_kinds"][image_order])
