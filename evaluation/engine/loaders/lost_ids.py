@@ -10,6 +10,7 @@ never reads, being on such an image or category.
 
 import numpy as np
 
+from ..errors import InputError
 from . import ids as ids_module
 
 
@@ -81,3 +82,99 @@ def unfetched_classes(lost, nan, class_type):
     fetches (``unfetched``): every one of a text family (cut of U+0000), else only a
     NaN (mask ``nan``)."""
     return lost if class_type in ("text", "json") else lost & nan
+
+
+def changed_keys(keys):
+    """``{changed: lost}``: the typed keys (``ids.typed_key``) pycocotools looks the
+    lost ids ``keys`` (typed keys) up under, numpy's value of each, which finds no
+    listed id, and the lost key of each. A number is lost
+    only in a float64 array (its float64 value; a whole one keyed as the integer, as
+    ``coco_records.whole_ids`` keys a whole float), text only in a ``<U`` array (its
+    trailing U+0000 cut); a NaN finds nothing (no key: NaN equals nothing)."""
+    changed = {}
+    for key in as_typed_keys(keys):
+        value = ids_module.key_value(key)
+        if isinstance(value, str):
+            changed.setdefault(ids_module.typed_key(value.rstrip("\x00")), key)
+            continue
+        value = float(value)
+        if value == value:
+            whole = int(value) if value.is_integer() else value
+            changed.setdefault(ids_module.typed_key(whole), key)
+    return changed
+
+
+def changed_class_keys(truth):
+    """``changed_keys`` of a ground truth's lost classes ({} when none)."""
+    lost = truth.unique_lost_classes
+    if lost is None or not len(lost):
+        return {}
+    return changed_keys(ids_module.keys_of(truth.class_ids, truth.class_id_type)[lost])
+
+
+def changed_value_message(what, changed, lost, why):
+    """Why a record under a lost id's changed value is refused (``changed_keys``)."""
+    return (
+        f"{what} {ids_module.shown(changed)} names no listed {what.split('_')[0]}, but "
+        f"pycocotools' np.unique changes the listed id {ids_module.shown(lost)} into this "
+        f"value and then {why} (list that id, or leave the record out)"
+    )
+
+
+def refuse_changed_value_refs(path, cols, image_ids, class_ids, lost):
+    """Refuse an annotation pycocotools scores under a lost id's changed value (found
+    by the third red team of engine 2.18.0): ``imgToAnns`` and ``_gts`` hold every
+    annotation, listed or not, so the value numpy changed a lost image or category id
+    into (``changed_keys``) finds the annotations of an *unlisted* image or category
+    written with that value, and ``evaluate`` scores them there (images ``[2^63 + 1,
+    5]``: an annotation of image 2^63; categories ``[0.5, 2^53 + 1]``: one of category
+    2^53). The VOC protocols keep every id and leave such an annotation out, so one
+    ground truth cannot hold both readings: the file is refused, naming the record
+    (``cols``: every annotation, in file order)."""
+    lost_images, lost_classes = image_ids[lost["image"][0]], class_ids[lost["class"][0]]
+    if not (len(lost_images) or len(lost_classes)):
+        return
+    families = (
+        ("box_image_ids", image_ids, lost_images),
+        ("box_class_ids", class_ids, lost_classes),
+    )
+    scored, via = [], []
+    for column, ids, lost_ids_ in families:
+        refs = cols[column]
+        listed = np.isin(refs, ids)
+        changed = np.zeros(len(refs), bool)
+        keys = changed_keys(lost_ids_) if len(lost_ids_) else set()
+        unlisted = np.flatnonzero(~listed)
+        if keys and len(unlisted):
+            changed[unlisted] = [key in keys for key in as_typed_keys(refs[unlisted])]
+        scored.append((listed & ~np.isin(refs, lost_ids_)) | changed)
+        via.append(changed)
+    hits = np.flatnonzero(scored[0] & scored[1] & (via[0] | via[1]))
+    if not len(hits):
+        return
+    row = int(hits[0])
+    column, n = ("image_id", 0) if via[0][row] else ("category_id", 1)
+    ref = as_typed_keys(cols[families[n][0]][row : row + 1])[0]
+    lost_key = changed_keys(families[n][2])[ref]
+    raise InputError(
+        path,
+        changed_value_message(
+            column,
+            ref,
+            lost_key,
+            "scores this annotation under it, while the VOC protocols leave it out: one "
+            "ground truth cannot hold both readings",
+        ),
+        record=f"annotations[{row}]",
+        field=column,
+    )
+
+
+def as_typed_keys(ids):
+    """Typed keys of a column of ids: as they are, or of int64 ids (a family of whole
+    ids some of which the file wrote as ``1.0`` or ``true``, whose types still decide
+    what ``np.unique`` loses: ``unique_lost``'s ``by_type``)."""
+    ids = np.asarray(ids)
+    if ids.dtype == object:
+        return ids.tolist()
+    return [ids_module.typed_key(int(v)) for v in ids.tolist()]

@@ -247,6 +247,7 @@ def read_truth(
     if fmt == "json" and annotations == "strict":
         checks.check_unique(path, cols["box_ids"], box_locate, "id")
     elif fmt == "json":
+        lost_ids.refuse_changed_value_refs(path, cols, image_ids, class_ids, lost)
         unfetched = lost_ids.unfetched(lost, image_ids, class_ids, class_type)
         rows, resolved = annotation_index.resolve(cols, image_ids, class_ids, unfetched)
         annotation_counts.update(resolved)
