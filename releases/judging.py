@@ -82,7 +82,7 @@ def _request_missing(inputs, version):
 def _compute(version, inputs):
     from .rule_outcomes import outcomes_for
 
-    reasons = _pending_reasons(inputs) + _reserved_reasons(version.detector, inputs.criteria)
+    reasons = _pending_reasons(inputs) + inputs.reserved
     outcomes = outcomes_for(version, inputs) if inputs.criteria is not None else []
     missing = [o.detail for o in outcomes if o.status == Outcome.Status.MISSING]
     if reasons:
@@ -95,24 +95,6 @@ def _compute(version, inputs):
     else:
         verdict = "pass"
     return verdict, reasons, outcomes
-
-
-def _reserved_reasons(detector, criteria):
-    """A class named as a rule word (``detectors.RESERVED``, refused since; older
-    detectors may have one): a ``*`` or ``mean`` rule would read the split's mean for it,
-    so the candidate cannot be judged (*incomplete*) until the class is renamed
-    (``detectors.set_classes``)."""
-    from .detectors import reserved
-
-    names = [c for c in detector.classes if reserved(c)]
-    rules = getattr(criteria, "rules", None) or []
-    if not names or not any(reserved(r.get("class", "mean")) for r in rules):
-        return []
-    return [
-        f"class {name!r} of {detector} is named as a rule word ('mean', '*'): its rules "
-        "cannot be judged apart from the mean; rename the class"
-        for name in names
-    ]
 
 
 def _record(version, inputs, verdict, reasons, outcomes):

@@ -71,6 +71,8 @@ class Inputs:
     # The baseline's evaluations under the suite's protocols: a re-scored baseline (a
     # new revision) changes what a candidate is compared with, so it is judged again.
     baseline_evaluations: list = field(default_factory=list)
+    # Why the rules cannot be judged apart from the mean (``reserved_reasons``).
+    reserved: list = field(default_factory=list)
 
     @property
     def key(self):
@@ -220,8 +222,28 @@ def inputs_for(versions):
             baseline_evaluations=(
                 evaluations_of(baseline.pk, suite, protocols) if baseline is not None else []
             ),
+            reserved=reserved_reasons(detectors[detector_id], criteria_of.get(detector_id)),
         )
     return out
+
+
+def reserved_reasons(detector, criteria):
+    """A class named as a rule word (``detectors.RESERVED``, refused since; older
+    detectors may have one): a ``*`` or ``mean`` rule would read the split's mean for it,
+    so the candidate cannot be judged (*incomplete*) until the class is renamed
+    (``detectors.set_classes``). Read with the inputs (``Inputs.reserved``), so a pass
+    judged before such names were refused reads *incomplete* too (``_undecided``)."""
+    from .detectors import reserved
+
+    names = [c for c in detector.classes if reserved(c)]
+    rules = getattr(criteria, "rules", None) or []
+    if not names or not any(reserved(r.get("class", "mean")) for r in rules):
+        return []
+    return [
+        f"class {name!r} of {detector} is named as a rule word ('mean', '*'): its rules "
+        "cannot be judged apart from the mean; rename the class"
+        for name in names
+    ]
 
 
 def inputs_of(version):
@@ -303,6 +325,15 @@ def _undecided(inputs, judgement):
             no_criteria=inputs.criteria is None,
             reasons=_pending_reasons(inputs),
             judgement=None,
+            evaluations=inputs.evaluations,
+            missing=missing,
+        )
+    if judgement.verdict == "pass" and inputs.reserved:  # judged before the names were refused
+        return Verdict(
+            "incomplete",
+            no_criteria=judgement.criteria_id is None,
+            reasons=list(inputs.reserved),
+            judgement=judgement,
             evaluations=inputs.evaluations,
             missing=missing,
         )

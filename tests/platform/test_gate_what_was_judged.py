@@ -236,6 +236,35 @@ def test_an_older_detector_with_a_class_named_mean_is_not_judged_by_the_mean(
     assert not any("rule word" in r for r in again.reasons)
 
 
+def test_a_pass_judged_before_the_names_were_refused_reads_incomplete(
+    team, users, run_tasks, django_capture_on_commit_callbacks
+):
+    """A pass recorded before this rule existed, for a detector holding a class named
+    'mean' (written here as that judgement was): THE verdict reads it incomplete with
+    the reason, so every page, the API and the sign-off see the same; approving is an
+    override needing a justification."""
+    from releases import judging
+
+    split = _yard(("mean", "van"))
+    with django_capture_on_commit_callbacks(execute=True):
+        detector = services.create_detector(team, "Yard cam", ["car", "van"], splits=("yard-a",))
+    Detector.objects.filter(pk=detector.pk).update(classes=["mean", "van"])
+    detector.refresh_from_db()
+    rule = {"split": "*", "class": "*", "metric": "AP", "kind": "min_value", "threshold": 0.4}
+    run_tasks(criteria.set_criteria, detector, users["lead"], [rule])
+    candidate = _version(detector, "1.0", split, _detections((2,)), users, run_tasks)
+    # what the judge recorded before: a pass (judgements are append-only: a newer one)
+    judgement = judging._record(candidate, verdicts.inputs_of(candidate), "pass", [], [])
+    verdict = verdicts.verdict_of(candidate)
+    assert verdict.state == "incomplete" and verdict.judgement.pk == judgement.pk
+    assert any("named as a rule word" in r for r in verdict.reasons)
+    with pytest.raises(services.DecisionError, match="override"):
+        services.sign_off(candidate, users["lead"], "approved", "fine")
+    services.sign_off(candidate, users["lead"], "approved", "ok", justification="why")
+    record = SignOff.objects.get(version=candidate)
+    assert record.override and record.verdict == "incomplete"
+
+
 def test_the_admin_cannot_move_relabel_or_delete_a_version(
     team, users, run_tasks, django_capture_on_commit_callbacks, client
 ):
