@@ -171,6 +171,18 @@ def test_xml_errors_name_member_line_and_field(tmp_path):
     assert error.field == "truncated"
 
 
+@pytest.mark.parametrize("written", ["1_2", "١٢", "１２", "0x0C", "12.0.0"])
+def test_xml_numbers_take_ascii_digits_only(tmp_path, written):
+    """Python's ``float`` reads "1_2" and other scripts' digits ("١٢" is 12: its
+    documentation, from memory); a VOC XML coordinate written so is refused naming the
+    member, line and field, not read as 12 (the devkit's files write ASCII decimals)."""
+    folder = write.voc(tmp_path / "voc", IMAGES, CLASSES, BOXES)
+    path = folder / "Annotations" / "2.xml"
+    path.write_text(path.read_text().replace("<xmax>12.0</xmax>", f"<xmax>{written}</xmax>"))
+    error = _refused("expected a number", folder)
+    assert (error.record, error.field) == ("Annotations/2.xml line 1", "bndbox/xmax")
+
+
 # KITTI and YOLO lines --------------------------------------------------------------
 
 

@@ -94,6 +94,11 @@ def _declared(data):
     return m[1].decode("ascii", "replace") if m else ""
 
 
+#: A number as the devkit's files write one: ASCII digits, an optional sign, point and
+#: exponent, spaces around (Python's ``float`` reads "1_000", "٣00" and "inf" too).
+_DECIMAL = re.compile(r"\s*[+-]?([0-9]+\.?[0-9]*|\.[0-9]+)([eE][+-]?[0-9]+)?\s*\Z")
+
+
 def _number(path, name, node, field, required=True):
     where = f"{name} line {node.line}" if node is not None else name
     if node is None:
@@ -102,6 +107,8 @@ def _number(path, name, node, field, required=True):
         return None
     text = node.value()
     try:
+        if not _DECIMAL.match(text):  # float() also reads "1_000" and other scripts' digits
+            raise ValueError(text)
         value = float(text)
     except ValueError:
         raise InputError(
