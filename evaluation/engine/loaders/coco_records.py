@@ -134,8 +134,8 @@ _INT_ONLY = frozenset({int})
 def whole_ids(path, values, locate, field):
     """``values`` as pycocotools' dicts key them: a float or boolean with a whole value
     is that integer (``1.0`` and ``true`` are the key 1), any other number stays a
-    float (NaN too: a reference to it names nothing; an image or category whose own id
-    is NaN is refused, ``truth_columns._typed_family``), text stays text."""
+    float (NaN too: the one NaN object Python's ``json`` gives, ``ids.FILE_NAN``, which
+    pycocotools' dicts find by identity), text stays text."""
     if set(map(type, values)) <= _INT_ONLY:  # one C-level pass; the common case
         return values
     out = []

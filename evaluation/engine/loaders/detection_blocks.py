@@ -212,31 +212,6 @@ def _unreadable_on_lost(truth, image, cls, score, unfit, kept_at):
     return bad & ~seen
 
 
-def _refuse_changed_values(path, truth, found, image, class_keys, score, locate, field):
-    """A detection with a missing or non-number score, of a class the split does not
-    list whose id is the value pycocotools' ``np.unique`` changed a lost category's id
-    into (``lost_ids.changed_class_keys``), on an image it looks up: its ``getAnnIds``
-    (``in catIds``) and ``_dts`` find it there, and ``evaluateImg`` raises on its score
-    (``-d['score']``). Refused, naming the record. With a number it changes nothing
-    (that entry has no ground truth: the split refuses an annotation there,
-    ``lost_ids.refuse_changed_value_refs``), so it is left out as any unlisted class."""
-    changed = lost_ids.changed_class_keys(truth)
-    if not changed:
-        return
-    unlisted = np.flatnonzero(~found & unread_fields.bad_scores(score))
-    keys = lost_ids.as_typed_keys(class_keys[unlisted])
-    hit = np.array([key in changed for key in keys], bool)
-    lost = truth.unique_lost_masks()
-    if lost is not None:
-        hit &= ~lost[0][image[unlisted]]
-    if hit.any():
-        n = int(np.flatnonzero(hit)[0])
-        i, key = int(unlisted[n]), keys[n]
-        why = "reads this detection's score, which is not a number: it raises"
-        message = lost_ids.changed_value_message(field, key, changed[key], why)
-        raise InputError(path, message, record=locate(i), field=field)
-
-
 def _resolve(path, truth, raw, policy, unknown_classes, unknown_images, rank_of, at):
 
     image_ids, class_keys, boxes, score = raw.image_ids, raw.class_keys, raw.boxes, raw.score
@@ -256,7 +231,7 @@ def _resolve(path, truth, raw, policy, unknown_classes, unknown_images, rank_of,
     dropped, dropped_classes = 0, ()
     if not found.all():
         where = (image, class_keys, score, locate, fields["class"])
-        _refuse_changed_values(path, truth, found, *where)
+        lost_ids.refuse_changed_value_detections(path, truth, found, *where)
         if unknown_classes == "reject":
             checks.fail_at(
                 path,

@@ -32,9 +32,10 @@ in pycocotools; only what is shown or written is escaped (``escaped``, ``quoted`
 Image ids pycocotools' ``evaluate`` loses (``unique_lost``): it runs
 ``p.imgIds = list(np.unique(p.imgIds))`` and looks each image up by those numpy values,
 so an id numpy does not hold as written (rounded to float64, a trailing U+0000 cut, a
-NaN, which equals nothing) names no image there: its ground truth and detections are
-never scored. A NaN id is otherwise an id like any other: Python's ``json`` gives one
-NaN object for every ``NaN`` literal, which pycocotools' dicts find by identity.
+NaN in a float64 array, which equals nothing) names no image there: its ground truth
+and detections are never scored. A NaN id is otherwise an id like any other: Python's
+``json`` gives one NaN object for every ``NaN`` literal (``FILE_NAN``), which
+pycocotools' dicts and numpy's object arrays find by identity.
 """
 
 import json

@@ -12,6 +12,7 @@ import numpy as np
 
 from ..errors import InputError
 from . import ids as ids_module
+from . import unread_fields
 
 
 def unique_lost(ids, id_type, kinds, listed=None):
@@ -178,3 +179,28 @@ def as_typed_keys(ids):
     if ids.dtype == object:
         return ids.tolist()
     return [ids_module.typed_key(int(v)) for v in ids.tolist()]
+
+
+def refuse_changed_value_detections(path, truth, found, image, class_keys, score, locate, field):
+    """A detection with a missing or non-number score, of a class the split does not
+    list whose id is the value pycocotools' ``np.unique`` changed a lost category's id
+    into (``changed_class_keys``), on an image it looks up: its ``getAnnIds``
+    (``in catIds``) and ``_dts`` find it there, and ``evaluateImg`` raises on its score
+    (``-d['score']``). Refused, naming the record. With a number it changes nothing
+    (that entry has no ground truth: the split refuses an annotation there,
+    ``refuse_changed_value_refs``), so it is left out as any unlisted class."""
+    changed = changed_class_keys(truth)
+    if not changed:
+        return
+    unlisted = np.flatnonzero(~found & unread_fields.bad_scores(score))
+    keys = as_typed_keys(class_keys[unlisted])
+    hit = np.array([key in changed for key in keys], bool)
+    lost = truth.unique_lost_masks()
+    if lost is not None:
+        hit &= ~lost[0][image[unlisted]]
+    if hit.any():
+        n = int(np.flatnonzero(hit)[0])
+        i, key = int(unlisted[n]), keys[n]
+        why = "reads this detection's score, which is not a number: it raises"
+        message = changed_value_message(field, key, changed[key], why)
+        raise InputError(path, message, record=locate(i), field=field)

@@ -7,7 +7,16 @@ import numpy as np
 
 from ..data import GroundTruth
 from ..errors import InputError
-from . import annotation_index, attributes, checks, coco_json, csv_tables, label_folders, lost_ids
+from . import (
+    annotation_index,
+    attributes,
+    checks,
+    coco_json,
+    csv_tables,
+    id_families,
+    label_folders,
+    lost_ids,
+)
 from . import ids as ids_module
 from .ids import csv_ids, ids_like
 
@@ -18,41 +27,6 @@ def _shown(values, id_type):
     if values.dtype != object:
         return values
     return ids_module.display(values, id_type)
-
-
-def _typed_family(path, cols, defining, refs, locate, what):
-    """An id family of a JSON split (the images' ids and the boxes' and regions'
-    references to them; the categories' ids and the boxes' references) that is not all
-    64-bit integers becomes typed keys throughout (``ids``); its type is returned
-    (``""`` for int64 ids, left as they are). The defining ids must be all numbers or
-    all text: pycocotools sorts them, and Python cannot sort a mix."""
-    names = (defining, *refs)
-    if all(cols[name].dtype.kind == "i" for name in names):
-        return ""
-    for name in names:
-        cols[name] = ids_module.typed_keys(cols[name])
-    keys = cols[defining]
-    marks = np.array([key[0] for key in keys.tolist()], dtype=object)
-    null = marks == ids_module.NULL
-    if null.any():
-        raise InputError(
-            path,
-            f"{what} ids cannot be null (pycocotools sorts them; null names nothing)",
-            record=locate(int(np.flatnonzero(null)[0])),
-            field="id",
-        )
-    mixed = np.flatnonzero(marks != marks[0]) if len(marks) else []
-    if len(mixed):
-        i = int(mixed[0])
-        raise InputError(
-            path,
-            f"{what} ids mix numbers and text ({ids_module.shown(keys[i])} here, "
-            f"{ids_module.shown(keys[0])} at {locate(0)}): pycocotools sorts them and Python "
-            "cannot sort such a mix",
-            record=locate(i),
-            field="id",
-        )
-    return ids_module.family_type(keys)
 
 
 def _raise_if_scored(path, bad_rows, rows, n, unread=()):
@@ -91,57 +65,11 @@ def _cityscale_faults(city_rows, rows):
     return faults
 
 
-def _order(values, id_type, listed=None, distinct=True):
-    """Stable ascending order of a family's defining ids (pycocotools' order).
-    ``listed``: the family's keys as the file lists them (before ``last_entries``),
-    whose order ``sorted`` sees where a NaN disturbs it (``ids.sort_order``);
-    ``distinct``: pycocotools lists each once (images: its dict's keys), else as
-    listed (categories: ``getCatIds``)."""
-    if not id_type:
-        return np.argsort(values, kind="stable")
-    return ids_module.sort_order(values, _written(values, listed, distinct))
-
-
-def _written(values, listed, distinct):
-    """Positions into ``values`` in the order ``listed`` gives them, or None (no NaN)."""
-    if listed is None or not np.any(values == ids_module.NUMBER + "nan"):
-        return None
-    position = {key: n for n, key in enumerate(values.tolist())}
-    written = [position[key] for key in listed.tolist()]
-    return list(dict.fromkeys(written)) if distinct else written
-
-
-def _refuse_repeated_entries(path, class_ids, listed, locate):
-    """A category ``np.unique(sorted(catIds))`` gives twice: a NaN among ids beyond 64
-    bits (an object array, sorted by Python's comparisons, which a NaN disturbs) can
-    leave two equal ids apart, and a NaN listed twice is two entries (NaN != NaN).
-    pycocotools then evaluates that category twice (two columns of its per-class
-    arrays, counted twice in every mean); the engine has one class per id: refused."""
-    written = _written(class_ids, listed, distinct=False)
-    if written is None:
-        return
-    values = [ids_module.key_value(k) for k in class_ids.tolist()]
-    entries = ids_module.nan_entries(values, written) or []
-    seen = set()
-    for n in entries:
-        if n in seen:
-            raise InputError(
-                path,
-                f"category id {ids_module.shown(class_ids[n])} is two entries of "
-                "pycocotools' np.unique(sorted(catIds)) (a NaN id among ids beyond 64 bits "
-                "disturbs the sort, or NaN is listed twice): it would evaluate that category "
-                "twice and count it twice in every mean; the engine keeps one class per id",
-                record=locate(n),
-                field="id",
-            )
-        seen.add(n)
-
-
 def read_truth(
     path, images, fmt, classes, policy, ids="any", annotations="reference", vis_ratio="as-given"
 ):
     entry_counts, bad_rows, city_rows = {}, {}, {}
-    listed_keys = {}  # a JSON split's ids as listed (``_order``)
+    listed_keys = {}  # a JSON split's ids as listed (``id_families.order``)
     if fmt == "json":
         cols = coco_json.read_truth(
             path,
@@ -153,10 +81,10 @@ def read_truth(
         bad_rows = cols.pop("bad_rows")
         city_rows = cols.pop("city_rows")
         image_locate = lambda i: f"images[{i}]"  # noqa: E731
-        image_type = _typed_family(
+        image_type = id_families.typed_family(
             path, cols, "image_ids", ("box_image_ids", "region_image_ids"), image_locate, "image"
         )
-        class_type = _typed_family(
+        class_type = id_families.typed_family(
             path, cols, "class_ids", ("box_class_ids",), lambda i: f"categories[{i}]", "category"
         )
         if cols["box_ids"].dtype.kind != "i":  # never sorted: text and numbers may mix
@@ -228,14 +156,14 @@ def read_truth(
             lambda i, values=values: f"must be > 0, got {values[i]:g}",
         )
         checks.require_sizes(image_path, values, image_locate, policy, field)
-    image_order = _order(cols["image_ids"], image_type, listed_keys.get("image"))
+    image_order = id_families.order(cols["image_ids"], image_type, listed_keys.get("image"))
     image_ids = cols["image_ids"][image_order]
     shown = _shown(image_ids, image_type)
-    class_order = _order(cols["class_ids"], class_type, listed_keys.get("class"), False)
+    class_order = id_families.order(cols["class_ids"], class_type, listed_keys.get("class"), False)
     class_ids = cols["class_ids"][class_order]
     if class_type:
         locate = lambda n: category_locate(int(class_order[n]))  # noqa: E731
-        _refuse_repeated_entries(path, class_ids, listed_keys.get("class"), locate)
+        id_families.refuse_repeated_entries(path, class_ids, listed_keys.get("class"), locate)
     lost = {}  # what pycocotools' np.unique loses: a COCO JSON file's ids only
     if fmt == "json":
         lost["image"] = lost_ids.unique_lost(shown, image_type, cols["image_id_kinds"][image_order])
