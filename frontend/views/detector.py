@@ -47,13 +47,19 @@ def detector(request, detector_id):
     objects = found.versions.select_related("sign_off").filter(pk__in=[v["id"] for v in shown])
     badges = selectors.version_badges(objects)
     several = {line["name"] for line in chart["series"] if len(line["splits"]) > 1}
+    # A cell names its box policy where that line's policy changes along the history.
+    mixed = {c["series"] for c in chart["policy_changes"]}
     table = [
         {
             "version": chart["versions"][i],
             "url": reverse("version", args=[chart["versions"][i]["id"]]),
             "state": badges[chart["versions"][i]["id"]],
             "values": [
-                (line["values"][i], line["revisions"][i] if line["name"] in several else None)
+                (
+                    line["values"][i],
+                    line["revisions"][i] if line["name"] in several else None,
+                    line["box_policies"][i] if line["name"] in mixed else None,
+                )
                 for line in chart["series"]
             ],
         }

@@ -28,6 +28,14 @@ class HistorySeries(serializers.Serializer):
         child=serializers.IntegerField(allow_null=True),
         help_text="The split revision of each value (null where no value)",
     )
+    box_policies = serializers.ListField(
+        child=serializers.CharField(allow_null=True),
+        help_text="The box policy each value was computed under (keep, clip, reject)",
+    )
+    engine_versions = serializers.ListField(
+        child=serializers.CharField(allow_null=True),
+        help_text="The engine version that computed each value",
+    )
 
 
 class HistoryChange(serializers.Serializer):
@@ -38,6 +46,17 @@ class HistoryChange(serializers.Serializer):
     def get_fields(self):  # "from" is a Python keyword
         fields = super().get_fields()
         fields["from"] = serializers.IntegerField()
+        return fields
+
+
+class HistoryPolicyChange(serializers.Serializer):
+    series = serializers.CharField()
+    index = serializers.IntegerField(help_text="First version computed under the new policy")
+    to = serializers.CharField(help_text="The box policy from there on")
+
+    def get_fields(self):  # "from" is a Python keyword
+        fields = super().get_fields()
+        fields["from"] = serializers.CharField()
         return fields
 
 
@@ -63,6 +82,9 @@ class History(serializers.Serializer):
     versions = HistoryVersion(many=True)
     series = HistorySeries(many=True)
     changes = HistoryChange(many=True)
+    policy_changes = HistoryPolicyChange(
+        many=True, help_text="Where a line's box policy changes: numbers computed differently"
+    )
 
     def get_fields(self):
         fields = super().get_fields()

@@ -28,13 +28,17 @@ def history_chart(
 
     Joined: a version's point on a split name is its number on the newest revision of
     that name it was scored on; ``changes`` lists where the revision changes along the
-    line (the chart marks them). Numbers carry four decimals, rounded by Python's
-    correctly rounded ``round`` (a halfway case such as 0.00625 goes to 0.0063, where
-    scaling by 10^4 would give 0.0062; the page shows three). Each version carries its
-    decision (approved, rejected or None) and ``baseline`` names the baseline; the
-    current verdict of every version is not computed here (it reads every set and
-    evaluation of every version: seconds at 1,000 versions) — the page's table computes
-    it for the rows it shows.
+    line (the chart marks them). Each point carries the box policy and the engine
+    version its number was computed under (``box_policies``, ``engine_versions``,
+    aligned with ``values``), and ``policy_changes`` lists where the box policy changes
+    along a line (a suite switched from ``keep`` to ``clip``: the numbers on either
+    side are computed differently; the chart marks them too). Numbers carry four
+    decimals, rounded by Python's correctly rounded ``round`` (a halfway case such as
+    0.00625 goes to 0.0063, where scaling by 10^4 would give 0.0062; the page shows
+    three). Each version carries its decision (approved, rejected or None) and
+    ``baseline`` names the baseline; the current verdict of every version is not
+    computed here (it reads every set and evaluation of every version: seconds at
+    1,000 versions) — the page's table computes it for the rows it shows.
     A few queries and about 5,000 numbers at 1,000 versions x 5 splits, read as tuples.
 
     ``level`` (a level or pedestrian setup of the suite's level protocols, e.g.
@@ -81,11 +85,13 @@ def history_chart(
     def compute():
         numbers, splits = _numbers(detector, rows, selection)
         series = (_joined if revisions == "joined" else _separate)(splits, numbers, position)
-        return series, [change for line in series for change in _changes(line)]
+        changes = [change for line in series for change in _changes(line, "revisions")]
+        policy = [change for line in series for change in _changes(line, "box_policies")]
+        return series, changes, policy
 
     # The versions in their order are part of the key: a new version is a new entry.
     key = (*selection, revisions, tuple(position))
-    series, changes = history_stamps.cached(detector.pk, key, compute)
+    series, changes, policy_changes = history_stamps.cached(detector.pk, key, compute)
     return {
         "protocol": protocol,
         "metric": metric,
@@ -103,11 +109,13 @@ def history_chart(
         ],
         "series": series,
         "changes": changes,
+        "policy_changes": policy_changes,
     }
 
 
 def _numbers(detector, rows, selection):
-    """{(version id, split id): value} of the selection's rows through each version's
+    """{(version id, split id): (value, box policy, engine version)} of the selection's
+    rows through each version's
     own current sets, and the splits the detector's current sets are on (by name, then
     revision): the part of a history read that joins six tables (the series built
     from it are kept by ``history_stamps.cached`` until the detector's next change)."""
@@ -128,11 +136,13 @@ def _numbers(detector, rows, selection):
             "scorecard__evaluation__prediction_sets__version_id",
             "scorecard__evaluation__split_id",
             field,
+            "scorecard__evaluation__box_policy",
+            "scorecard__evaluation__engine_version",
         )
     )
-    numbers = {}  # (version id, split id) -> value
-    for version_id, split_id, value in rows:
-        numbers[version_id, split_id] = value
+    numbers = {}  # (version id, split id) -> (value, box policy, engine version)
+    for version_id, split_id, *point in rows:
+        numbers[version_id, split_id] = point
     split_ids = set(
         PredictionSet.objects.current()
         .filter(version__detector=detector)
@@ -159,54 +169,57 @@ def _joined(splits, numbers, position):
     name that has one."""
     lines, line_of = {}, {}
     for split in splits:  # sorted by name, then revision
-        line = lines.setdefault(
-            split.name,
-            {
-                "name": split.name,
-                "splits": [],
-                "values": [None] * len(position),
-                "revisions": [None] * len(position),
-            },
-        )
+        line = lines.setdefault(split.name, _line(split.name, len(position)))
         line["splits"].append({"id": split.pk, "revision": split.revision})
         line_of[split.pk] = (line, split.revision)
-    for (version_id, split_id), value in numbers.items():
+    for (version_id, split_id), point in numbers.items():
         line, revision = line_of[split_id]
         at = position.get(version_id)  # None: created after the versions were read
-        if at is not None and value is not None and (line["revisions"][at] or 0) < revision:
-            line["values"][at], line["revisions"][at] = round(value, 4), revision
+        if at is not None and point[0] is not None and (line["revisions"][at] or 0) < revision:
+            _put(line, at, point, revision)
     return list(lines.values())
+
+
+def _line(name, n):
+    return {
+        "name": name,
+        "splits": [],
+        "values": [None] * n,
+        "revisions": [None] * n,
+        "box_policies": [None] * n,
+        "engine_versions": [None] * n,
+    }
+
+
+def _put(line, at, point, revision):
+    """A point of a line: its number (four decimals), revision, box policy and engine."""
+    value, box_policy, engine_version = point
+    line["values"][at], line["revisions"][at] = round(value, 4), revision
+    line["box_policies"][at], line["engine_versions"][at] = box_policy, engine_version
 
 
 def _separate(splits, numbers, position):
     """One series per split revision."""
-    line_of = {
-        split.pk: {
-            "name": str(split),
-            "splits": [{"id": split.pk, "revision": split.revision}],
-            "values": [None] * len(position),
-            "revisions": [None] * len(position),
-        }
-        for split in splits
-    }
+    line_of = {}
+    for split in splits:
+        line_of[split.pk] = _line(str(split), len(position))
+        line_of[split.pk]["splits"].append({"id": split.pk, "revision": split.revision})
     revision_of = {split.pk: split.revision for split in splits}
-    for (version_id, split_id), value in numbers.items():
+    for (version_id, split_id), point in numbers.items():
         at = position.get(version_id)  # None: created after the versions were read
-        if at is not None and value is not None:
-            line = line_of[split_id]
-            line["values"][at] = round(value, 4)
-            line["revisions"][at] = revision_of[split_id]
+        if at is not None and point[0] is not None:
+            _put(line_of[split_id], at, point, revision_of[split_id])
     return list(line_of.values())
 
 
-def _changes(line):
-    """Where the revision changes along a line: the index of the first point on the
-    new revision, skipping versions without a number."""
+def _changes(line, key):
+    """Where ``line[key]`` (the revision, or the box policy) changes along a line: the
+    index of the first point with the new one, skipping versions without a number."""
     out, before = [], None
-    for at, revision in enumerate(line["revisions"]):
-        if revision is None:
+    for at, now in enumerate(line[key]):
+        if now is None:
             continue
-        if before is not None and revision != before:
-            out.append({"series": line["name"], "index": at, "from": before, "to": revision})
-        before = revision
+        if before is not None and now != before:
+            out.append({"series": line["name"], "index": at, "from": before, "to": now})
+        before = now
     return out

@@ -108,6 +108,32 @@ def test_history_marks_the_revision_change_and_separates_revisions_on_request(
     _shot(page, "history-revisions-390")
 
 
+def test_history_marks_a_box_policy_change(
+    page, live_server, detector, scored, split_truth, users, run_tasks
+):
+    """The suite switches from ``keep`` to ``clip`` before 1.3: that point is computed
+    under another box policy, and the chart says so (a dotted mark, each point's policy
+    and engine in its tooltip data)."""
+    from ..platform.conftest import set_suite_policy
+    from ..platform.test_history import _overhanging
+
+    split, _ = scored
+    set_suite_policy(detector, users["lead"], box_policy="clip")
+    version = services.create_version(detector, "1.3", users["engineer"])
+    sets = upload("1.3.json", _overhanging(split_truth))
+    run_tasks(services.submit_predictions, version, split, sets, users["engineer"])
+    page.goto(f"{live_server.url}/detectors/{detector.pk}/")
+    page.wait_for_function("window.benchbookCharts && window.benchbookCharts['history-chart']")
+    chart = "window.benchbookCharts['history-chart']"
+    assert page.evaluate(f"{chart}.data.datasets[0].boxPolicies") == ["keep"] * 3 + ["clip"]
+    marks = page.evaluate(f"{chart}.options.plugins.revisionMarks.policyChanges")
+    assert marks == [{"series": "bay-night", "index": 3, "from": "keep", "to": "clip"}]
+    assert page.locator("td .meta", has_text="boxes clip").count() == 1
+    _shot(page, "history-box-policy")
+    page.set_viewport_size({"width": 390, "height": 800})
+    _shot(page, "history-box-policy-390")
+
+
 def test_scorecard_draws_a_curve_per_class(page, live_server, scored):
     split, versions = scored
     page.goto(f"{live_server.url}/versions/{versions[-1].pk}/")

@@ -193,7 +193,7 @@ def test_the_api_and_page_serve_the_selected_series(
     html = page.content.decode()
     assert "mean AP75" in html and "rev 2" in html  # the table names each row's revision
     newest = page.context["table"][0]["values"]
-    assert newest == [(_stored(two_revisions["1.3"], relabelled, "", "ap75"), 2)]
+    assert newest == [(_stored(two_revisions["1.3"], relabelled, "", "ap75"), 2, None)]
 
 
 def test_another_teams_history_is_not_found(detector, two_revisions, users, client):
@@ -246,3 +246,54 @@ def test_each_version_is_dated_by_its_utc_creation_day(detector, users):
     dates = {v["label"]: v["date"] for v in chart["versions"]}
     assert dates == {"late": "2026-02-28", "early": "2026-03-01", "noon": "2026-03-01"}
     assert [v["label"] for v in chart["versions"]] == ["late", "early", "noon"]
+
+
+def _overhanging(split_truth):
+    """Each box found again, but widened 20 px past the image's left edge: ``keep``
+    scores the overhang as given (pycocotools' reading), ``clip`` cuts it at the edge,
+    and the IoU and so AP differ (common practice: clipping changes IoU)."""
+    return [
+        {
+            "image_id": a["image_id"],
+            "category_id": a["category_id"],
+            "bbox": [-20.0, a["bbox"][1], a["bbox"][0] + a["bbox"][2] + 20.0, a["bbox"][3]],
+            "score": 0.9,
+        }
+        for a in split_truth["annotations"]
+    ]
+
+
+def test_a_box_policy_change_along_a_line_is_marked_on_every_point(
+    detector, split, split_truth, users, run_tasks, client
+):
+    """1.0 scored under the suite's ``keep``, the suite then switched to ``clip``, 1.1
+    scored under it: both on one line, each point saying its box policy and engine
+    version, the change listed (``policy_changes``), the table naming each cell's
+    policy, the API serving the same."""
+    from evaluation.engine import ENGINE_VERSION
+
+    from .conftest import set_suite_policy
+
+    labels = ("1.0", "1.1")
+    for n, label in enumerate(labels):
+        if n:
+            set_suite_policy(detector, users["lead"], box_policy="clip")
+        version = services.create_version(detector, label, users["engineer"])
+        sets = upload(f"{label}.json", _overhanging(split_truth))
+        run_tasks(services.submit_predictions, version, split, sets, users["engineer"])
+    chart = selectors.history_chart(detector)
+    (line,) = chart["series"]
+    assert line["box_policies"] == ["keep", "clip"]
+    assert line["engine_versions"] == [ENGINE_VERSION, ENGINE_VERSION]
+    assert line["values"][0] != line["values"][1]  # the same boxes, computed differently
+    assert chart["policy_changes"] == [
+        {"series": line["name"], "index": 1, "from": "keep", "to": "clip"}
+    ]
+    client.force_login(users["engineer"])
+    page = client.get(reverse("detector", args=[detector.pk])).content.decode()
+    assert "boxes keep</span>" in page and "boxes clip</span>" in page
+    api = APIClient()
+    api.force_authenticate(users["engineer"])
+    body = api.get(f"{API}detectors/{detector.pk}/history/").json()
+    assert body["policy_changes"] == chart["policy_changes"]
+    assert body["series"][0]["box_policies"] == ["keep", "clip"]

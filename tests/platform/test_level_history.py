@@ -70,7 +70,7 @@ def test_moderate_ap_is_a_history_series_on_selector_api_and_page(scored_road, u
     html = page.content.decode()
     assert 'value="AP@moderate" selected' in html
     assert "mean AP at moderate (kitti2d" in html
-    assert page.context["table"][0]["values"] == [(round(card.summary["AP"], 4), None)]
+    assert page.context["table"][0]["values"] == [(round(card.summary["AP"], 4), None, None)]
     # the address the chart's selector leaves (the API's parameters) serves the page too
     query = {"metric": "AP", "class": "Car", "revisions": "joined", "level": "moderate"}
     again = client.get(reverse("detector", args=[detector.pk]), query)

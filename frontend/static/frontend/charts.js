@@ -10,18 +10,21 @@
   function data(id) { return JSON.parse(document.getElementById(id).textContent); }
   function axis(title, extra) { return Object.assign({ title: { display: true, text: title } }, extra || {}); }
 
-  // Vertical dashed marks where a joined split line moves to another revision.
+  // Vertical marks where a joined split line moves to another revision (dashed) and
+  // where a line's box policy changes (dotted): the numbers either side of a mark are
+  // not computed alike.
   const revisionMarks = {
     id: "revisionMarks",
     afterDatasetsDraw(chart, args, options) {
       const { ctx, chartArea, scales } = chart;
-      (options.changes || []).forEach((change, k) => {
+      const marks = (options.changes || []).map(c => [c, [4, 3], `${c.series} rev ${c.to}`])
+        .concat((options.policyChanges || []).map(c => [c, [1, 2], `${c.series}: boxes ${c.to}`]));
+      marks.forEach(([change, dash, text], k) => {
         const x = scales.x.getPixelForValue(change.index - 0.5);
         ctx.save();
-        ctx.strokeStyle = "#444"; ctx.fillStyle = "#222"; ctx.lineWidth = 1; ctx.setLineDash([4, 3]);
+        ctx.strokeStyle = "#444"; ctx.fillStyle = "#222"; ctx.lineWidth = 1; ctx.setLineDash(dash);
         ctx.beginPath(); ctx.moveTo(x, chartArea.top); ctx.lineTo(x, chartArea.bottom); ctx.stroke();
         ctx.setLineDash([]); ctx.font = "11px sans-serif";
-        const text = `${change.series} rev ${change.to}`;
         const width = ctx.measureText(text).width;
         ctx.fillText(text, Math.min(x + 3, chartArea.right - width), chartArea.top + 12 + 13 * k);
         ctx.restore();
@@ -42,6 +45,8 @@
         label: line.name,
         data: line.values,
         revisions: line.revisions,
+        boxPolicies: line.box_policies || [],
+        engines: line.engine_versions || [],
         borderColor: PALETTE[i % PALETTE.length], backgroundColor: PALETTE[i % PALETTE.length],
         borderDash: DASHES[i % DASHES.length], spanGaps: true, tension: 0,
         // The baseline is drawn as a large diamond on every line.
@@ -74,12 +79,16 @@
         },
         plugins: {
           legend: { position: "bottom" },
-          revisionMarks: { changes: d.changes },
+          revisionMarks: { changes: d.changes, policyChanges: d.policy_changes },
           tooltip: {
             callbacks: {
               label: item => {
-                const rev = item.dataset.revisions[item.dataIndex];
-                return `${item.dataset.label}: ${item.formattedValue}${rev ? ` (rev ${rev})` : ""}`;
+                const at = item.dataIndex;
+                const rev = item.dataset.revisions[at];
+                const boxes = item.dataset.boxPolicies[at], engine = item.dataset.engines[at];
+                const how = [rev ? `rev ${rev}` : "", boxes ? `boxes ${boxes}` : "", engine ? `engine ${engine}` : ""]
+                  .filter(Boolean).join(", ");
+                return `${item.dataset.label}: ${item.formattedValue}${how ? ` (${how})` : ""}`;
               },
             },
           },
@@ -101,6 +110,7 @@
           chart.data.datasets = datasets();
           chart.options.scales.y.title.text = title();
           chart.options.plugins.revisionMarks.changes = d.changes;
+          chart.options.plugins.revisionMarks.policyChanges = d.policy_changes;
           chart.update();
           window.history.replaceState(null, "", `?${query}`);
           status.textContent = "";
