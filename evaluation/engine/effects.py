@@ -156,7 +156,8 @@ def effect(key, a, b):
     difficulty-level one, else the AP words."""
     if key == "version" and a.get("name") != b.get("name"):
         return "the versions of two different protocols (see name)"
-    kinds = {r.get("metric") for r in (a, b)} | {r.get("kind") for r in (a, b)}
+    # a hand-edited record may hold any JSON there: only text names a kind
+    kinds = {v for r in (a, b) for v in (r.get("metric"), r.get("kind")) if isinstance(v, str)}
     if "miss_rate" in kinds:
         tables = (MISS_RATE_EFFECTS, LEVEL_EFFECTS, EFFECTS)
     elif "levels" in kinds:

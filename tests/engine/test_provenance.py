@@ -137,3 +137,19 @@ def test_explain_refuses_a_result_without_record(files, capsys):
     a = files.write("a.json", {"summary": {}})
     assert main(["explain", str(a), str(a)]) == 2
     assert "a.json: field 'protocol_record': no protocol record" in capsys.readouterr().err
+
+
+@pytest.mark.parametrize("value", [{"a": 1}, [1, 2], 3])
+def test_explain_reads_a_hand_edited_record_of_any_json(inputs, files, capsys, value):
+    """A record's ``metric`` or ``kind`` edited into an object or a list (found by the
+    fourth red team: ``explain`` stopped with an internal error): any JSON value there
+    is a differing setting shown as written, and the command ends normally."""
+    gt, dt = inputs
+    a = files.write("a.json", _score(gt, dt, capsys))
+    edited = json.loads(a.read_text())
+    edited["protocol_record"]["metric"] = value
+    edited["protocol_record"]["kind"] = value
+    b = files.write("b.json", edited)
+    assert main(["explain", str(a), str(b)]) == 0
+    out = capsys.readouterr().out
+    assert "* metric\n" in out and "* kind\n" in out
