@@ -137,4 +137,5 @@ def export_chunks(evaluation, fmt):
         return None
     records = records_of(card)
     truth = truth_of(evaluation)
-    return export.FORMATS[fmt](records, truth)
+    written_by = evaluation.engine_version or export.ENGINE_VERSION  # not today's engine
+    return export.FORMATS[fmt](records, truth, engine_version=written_by)

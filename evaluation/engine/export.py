@@ -25,10 +25,15 @@ the number of detections. Columns (``COLUMNS``):
 ``iou``            IoU with it
 ``protocol``       the protocol the records were scored under (``MatchRecords.protocol``)
 ``engine_version`` the engine that wrote the rows (``ENGINE_VERSION`` unless given)
+``box_policy``     the box policy the boxes were read under (``keep``, ``clip``,
+                   ``reject``: ``clip`` changes boxes, so IoU and outcomes)
+``truth_fingerprint`` the split's content hash (``GroundTruth.content_hash``), as the
+                   result records it
 
-The last two repeat on every row, so each row (and any part of the file) says how it
+The last four repeat on every row, so each row (and any part of the file) says how it
 was scored, and CSV and JSON Lines readers need no header comment; added in engine
-2.18.0, after the others, so readers by column name are unchanged.
+2.18.0 (the last two in 2.18.1), after the others, so readers by column name are
+unchanged.
 """
 
 import csv
@@ -60,6 +65,8 @@ COLUMNS = (
     "iou",
     "protocol",
     "engine_version",
+    "box_policy",
+    "truth_fingerprint",
 )
 BLOCK_ROWS = 20_000
 CONTENT_TYPES = {"csv": "text/csv; charset=utf-8", "jsonl": "application/x-ndjson"}
@@ -84,10 +91,13 @@ def row_blocks(
 ):
     """Yield blocks of rows, each a dict column -> list of Python values (None = empty);
     with ``typed_ids`` image ids are the JSON values the split gave (2.5, not "2.5")."""
+    fingerprint = truth.content_hash()
     for block in _row_blocks(records, truth, block_rows, typed_ids):
         rows = len(block["row"])
         block["protocol"] = [records.protocol] * rows
         block["engine_version"] = [engine_version] * rows
+        block["box_policy"] = [truth.box_policy] * rows
+        block["truth_fingerprint"] = [fingerprint] * rows
         yield block
 
 

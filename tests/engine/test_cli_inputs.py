@@ -252,10 +252,11 @@ def test_records_files_carry_their_provenance(tmp_path, capsys):
     assert kept["protocol_record"]["name"] == "voc07" and len(kept["truth_fingerprint"]) == 64
     assert MatchRecords.load(npz).protocol == "voc07"  # the records load as before
     header, first = rows.read_text().splitlines()[:2]
-    assert header.endswith(",protocol,engine_version")
-    assert first.endswith(f",voc07,{ENGINE_VERSION}")
+    assert header.endswith(",protocol,engine_version,box_policy,truth_fingerprint")
+    assert first.endswith(f",voc07,{ENGINE_VERSION},clip,{kept['truth_fingerprint']}")
     row = json.loads(lines.read_text().splitlines()[0])
     assert (row["protocol"], row["engine_version"]) == ("voc07", ENGINE_VERSION)
+    assert (row["box_policy"], row["truth_fingerprint"]) == ("clip", kept["truth_fingerprint"])
 
 
 def test_records_saved_without_provenance_still_load(tmp_path, capsys):

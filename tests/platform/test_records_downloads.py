@@ -71,6 +71,31 @@ def test_page_downloads_are_the_engines_export_of_the_stored_records(client, use
     lines = _body(client.get(reverse("records-download", args=[scored.pk, "jsonl"]))).splitlines()
     assert [json.loads(line)["reason"] for line in lines] == [r["reason"] for r in rows]
     assert client.get(reverse("records-download", args=[scored.pk, "xml"])).status_code == 404
+    # every row says how it was scored: as the stored result records it
+    result = Evaluation.objects.get(pk=scored.pk).scorecard.result
+    said = {
+        (r["protocol"], r["engine_version"], r["box_policy"], r["truth_fingerprint"]) for r in rows
+    }
+    assert said == {("coco", scored.engine_version, scored.box_policy, result["truth_fingerprint"])}
+
+
+def test_a_download_names_the_engine_that_scored_it(
+    client, users, detector, split, split_truth, run_tasks, monkeypatch
+):
+    """Records stored by an earlier engine (its version written on the evaluation and
+    result at scoring) are downloaded under that engine's version, not today's."""
+    from evaluation.engine import provenance
+
+    with monkeypatch.context() as patch:
+        patch.setattr(provenance, "ENGINE_VERSION", "2.17.0")
+        version = services.create_version(detector, "1.6", users["engineer"])
+        sets = upload("p.json", detections_for(split_truth))
+        run_tasks(services.submit_predictions, version, split, sets, users["engineer"])
+    scored = Evaluation.objects.get(protocol="coco", state="done")
+    assert scored.engine_version == "2.17.0"
+    client.force_login(users["engineer"])
+    text = _body(client.get(reverse("records-download", args=[scored.pk, "csv"])))
+    assert {r["engine_version"] for r in csv.DictReader(io.StringIO(text))} == {"2.17.0"}
 
 
 def test_api_downloads_with_a_token_and_refusals(users, scored, rival_detector):
