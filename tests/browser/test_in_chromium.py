@@ -111,13 +111,16 @@ def test_history_marks_the_revision_change_and_separates_revisions_on_request(
 def test_history_marks_a_box_policy_change(
     page, live_server, detector, scored, split_truth, users, run_tasks
 ):
-    """The suite switches from ``keep`` to ``clip`` before 1.3: that point is computed
-    under another box policy, and the chart says so (a dotted mark, each point's policy
-    and engine in its tooltip data)."""
+    """The suite switches from ``keep`` to ``clip`` before 1.3: 1.0-1.2 were decided
+    (rejected: a decided version is not scored again under the new suite), so their
+    points stay ``keep`` and 1.3's is ``clip``, and the chart says so (a dotted mark,
+    each point's policy and engine in its tooltip data)."""
     from ..platform.conftest import set_suite_policy
     from ..platform.test_history import _overhanging
 
-    split, _ = scored
+    split, earlier = scored
+    for version in earlier:
+        services.sign_off(version, users["lead"], "rejected", "kept for the record")
     set_suite_policy(detector, users["lead"], box_policy="clip")
     version = services.create_version(detector, "1.3", users["engineer"])
     sets = upload("1.3.json", _overhanging(split_truth))
