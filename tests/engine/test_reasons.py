@@ -262,6 +262,8 @@ def test_export_rows_trace_every_detection_and_box(files, tmp_path):
         "iou": repr(50 / 150),
         "protocol": "coco",
         "engine_version": ENGINE_VERSION,
+        "box_policy": "keep",
+        "truth_fingerprint": truth.content_hash(),
     }
     assert lines[2]["box_id"] is None and lines[2]["iou"] is None
     assert lines[3] == {
@@ -282,6 +284,8 @@ def test_export_rows_trace_every_detection_and_box(files, tmp_path):
         "iou": 1.0,
         "protocol": "coco",
         "engine_version": ENGINE_VERSION,
+        "box_policy": "keep",
+        "truth_fingerprint": truth.content_hash(),
     }
     assert lines[4]["outcome"] == "missed" and lines[4]["detection"] is None
     for row, line in zip(rows, lines):
