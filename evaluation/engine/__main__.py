@@ -131,7 +131,8 @@ def build_parser():
         help="COCO JSON ground truth, how an annotation's vis_ratio key is read: as-given "
         "(default: as the city-scale evaluation script, for miss-rate-cityscale: any "
         "number or boolean as it is, out of 0-1 too, and it wins beside a visibility key; "
-        "null or text refused; other protocols see the read visibility), read (the "
+        "null or text refused; other protocols see the read visibility; an annotation's "
+        "height key is read as given too, for miss-rate-cityscale), read (the "
         "visibility where visibility is absent, out-of-range values left unread: engines "
         "2.9-2.10) or unread (skipped: engines before 2.9.0)",
     )

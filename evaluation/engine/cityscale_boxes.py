@@ -233,9 +233,10 @@ def _pair_raise(setup, gts, dts):
     if not kept:
         return None  # computeIoU never runs
     ignore = []
-    for _, g in gts:  # _prepare's ignore (the engine's height: the box's h)
+    for _, g in gts:  # _prepare's ignore (the engine's height: the key, else the box's h)
         try:
-            h, v = g["bbox"][3], g.get("vis_ratio", g.get("visibility", 1.0))
+            h = g["height"] if "height" in g else g["bbox"][3]
+            v = g.get("vis_ratio", g.get("visibility", 1.0))
             out = h < h_lo or h > h_hi or v < v_lo or v > v_hi
             ignore.append(1 if out else g.get("ignore", 0))
         except (TypeError, KeyError, IndexError):

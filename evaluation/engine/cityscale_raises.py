@@ -8,10 +8,12 @@ category (``getAnnIds(imgIds, catIds)``: image by image in sorted id order, file
 within), then ``evaluateImg`` per category (sorted ids) and image:
 
 * ``_prepare``: ``ignore = 1 if (h < h_lo or h > h_hi) or (v < v_lo or v > v_hi) else
-  ignore``. Python's ``or`` stops at the first true test, so a ``vis_ratio`` that does
-  not compare with a number (null, text, array, object: TypeError) raises only where
-  the height test lets the box through (a NaN height too) — never for a box outside
-  every setup's height range.
+  ignore``, ``h`` the annotation's ``height`` key (``GroundTruth.cityscale_height``).
+  A ``height`` that does not compare with a number (null, text, array, object:
+  TypeError) raises at the first test, so in the first setup, wherever ``_prepare``
+  reads the annotation. Python's ``or`` stops at the first true test, so a
+  ``vis_ratio`` that does not compare raises only where the height test lets the box
+  through (a NaN height too) — never for a box outside every setup's height range.
 * ``evaluateImg``: when, after ``dt[0:maxDet]`` by score and the expanded height filter
   (``h_lo / 1.25 <= h < h_hi * 1.25``), a detection of the image and category is left,
   ``computeIoU`` takes ``int(o['ignore'])`` of each of its annotations, ordered by
@@ -47,12 +49,17 @@ def check(truth, predictions, protocol):
         _raise_box(*load)
     if not faults and not booleans and not boxes:
         return
-    height = truth.boxes[:, 3]
+    height = truth.cityscale_height()
     visibility = truth.cityscale_visibility()
     seen = _prepared(truth)
     for setup in protocol.setups:
         lo, hi = setup.height
         first = None
+        for box, record, message, _ in faults.get("height", ()):  # the first test: always
+            if seen[box]:
+                key = (int(truth.box_image[box]), box)
+                if first is None or key < first[0]:
+                    first = (key, record, message, "height")
         for box, record, message, _ in faults.get("vis_ratio", ()):
             if not seen[box]:  # never fetched by _prepare (np.unique lost its id)
                 continue

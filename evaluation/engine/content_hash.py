@@ -50,7 +50,11 @@ def content_hash(truth, scheme="named"):
     occlusion, truncation and visibility; the sorted regions follow), so a split
     without them keeps the hash it was frozen with. The city-scale ``vis_ratio``
     column is added only where it says more than the visibility
-    (``_vis_ratio_says_more``).
+    (``_vis_ratio_says_more``); the city-scale ``height_key`` (an annotation's
+    ``height``) only where it differs from the box's h (``_height_says_more``; marked
+    after the boxes). A height the script cannot compare (refused where it reads it,
+    ``cityscale_faults["height"]``) is not hashed: a split frozen with one keeps its
+    hash, and every protocol other than ``miss-rate-cityscale`` scores it as before.
 
     Ids are hashed as their text. Under the ``typed`` scheme (``HASH_SCHEMES``) a
     split whose image or class ids are not numbers (``id_kind``: JSON text,
@@ -132,9 +136,12 @@ def _hash(truth, mark):
         + ([truth.ignore_key_fraction.astype("<f8")] if truth.ignore_key_fraction.any() else [])
         + ([_canonical_nan(truth.vis_ratio)] if truth._vis_ratio_says_more() else [])
         + ([column] if (column := _faults_column(truth)).any() else [])
+        + ([_canonical_nan(truth.height_key)] if (height := truth._height_says_more()) else [])
     )
     order = np.lexsort(columns.T[::-1])
     digest.update(np.ascontiguousarray(columns[order]).tobytes())
+    if height:  # told apart from a split whose other optional column holds the values
+        digest.update(b"height_key")
     if attributes:
         regions = np.column_stack([truth.region_image.astype("<f8"), truth.regions])
         regions = regions[np.lexsort(regions.T[::-1])]

@@ -86,13 +86,22 @@ class GroundTruth:
     #: its visibility, else 1.0 (``loaders.attributes``). None under the other
     #: readings: that protocol then takes ``visibility`` (1.0 where NaN).
     vis_ratio: np.ndarray = None
+    #: The height the city-scale script compares with its setups' height ranges, per
+    #: box (``miss-rate-cityscale`` only): where a COCO JSON annotation read with
+    #: ``vis_ratio="as-given"`` has a ``height`` key, that key as given (any number,
+    #: NaN too; a boolean as 0/1; an integer beyond float64 as +-inf:
+    #: ``loaders.annotation_flags.height_columns``), else the box's h (``bbox[3]``,
+    #: where the script would raise KeyError). None where no annotation gives one
+    #: (and under the other readings): that protocol then takes ``bbox[3]``.
+    height_key: np.ndarray = None
     #: Where the ``ignore`` flag is a COCO JSON ``iscrowd`` strictly between -1 and 1
     #: (pycocotools ignores such a box); the city-scale code never reads ``iscrowd``,
     #: so ``miss-rate-cityscale`` leaves these boxes regular. All False where not given
     #: (CSV and label folders: their ``ignore`` is their own flag).
     iscrowd_fraction: np.ndarray = None
     #: Where the CityPersons script would raise reading a COCO JSON annotation, per
-    #: field (``"vis_ratio"``: not comparable, ``"ignore"``: ``int()`` raises):
+    #: field (``"vis_ratio"``, ``"height"``: not comparable, ``"ignore"``: ``int()``
+    #: raises):
     #: ``[box, record, message, truthy]`` lists; checked by ``cityscale_raises`` under
     #: ``miss-rate-cityscale`` only (the other references never read these keys).
     #: ``"id"``: an annotation id numpy cannot write into a float array (message: the
@@ -206,6 +215,20 @@ class GroundTruth:
         if self.vis_ratio is not None:
             return self.vis_ratio
         return np.where(np.isnan(self.visibility), 1.0, self.visibility)
+
+    def cityscale_height(self):
+        """Per box, the height ``miss-rate-cityscale`` compares with the setups' height
+        ranges: ``height_key`` where read, else the box's h."""
+        return self.boxes[:, 3] if self.height_key is None else self.height_key
+
+    def _height_says_more(self):
+        """Whether ``height_key`` holds a height other than the box's h (a height key
+        that differs from ``bbox[3]``): only then is it hashed, so a split whose
+        ``height`` keys all equal its boxes' h (as the city-scale files' own do) keeps
+        the hash it had before the key was read."""
+        if self.height_key is None:
+            return False
+        return not np.array_equal(self.height_key, self.boxes[:, 3], equal_nan=True)
 
     def _vis_ratio_says_more(self):
         """Whether ``vis_ratio`` holds anything ``visibility`` does not say (a value

@@ -111,7 +111,9 @@ MISS_RATE_EFFECTS = {
     "here says that one result is not a miss-rate one, or that the splits' visibility was "
     "read from other keys (one read an annotation's vis_ratio key, the other did not; or "
     "one read it as given, out of 0-1 too and over a visibility key, as the city-scale "
-    "script does, the other only where no visibility is given and within 0-1)",
+    "script does, the other only where no visibility is given and within 0-1), or their "
+    "heights (one took an annotation's height key as the city-scale script does, the "
+    "other the box's h)",
     "size_ranges": "setups have no size buckets; a difference here says that one result is "
     "not a miss-rate one",
     "miss_rate": "how the miss rate is read at each FPPI point: the rule where the curve "

@@ -91,6 +91,15 @@ def _visibility_source(truth, city):
     return "an annotation's visibility key, else its vis_ratio key within 0-1"
 
 
+def _height_source(truth, city):
+    """Which height the setups compare, said only where it is not the box's h: under
+    ``miss-rate-cityscale`` an annotation's ``height`` key where the split gives one
+    (``GroundTruth.height_key``); elsewhere nothing (the record stays as before)."""
+    if city and truth.height_key is not None:
+        return " (an annotation's height key as given, any number or boolean, else bbox[3])"
+    return ""
+
+
 def _miss_rate_record(name, truth):
     p = get_miss_rate_protocol(name)
     cap = p.max_detections
@@ -135,7 +144,9 @@ def _miss_rate_record(name, truth):
         ),
         "pixel_offset": 0,
         "area_source": {
-            "truth": "not read: setups by box height and visibility ("
+            "truth": "not read: setups by box height"
+            + _height_source(truth, city)
+            + " and visibility ("
             + _visibility_source(truth, city)
             + "; how many from vis_ratio: counts.boxes.truth)",
             "predictions": "not read: detections by height (expanded range)",

@@ -11,8 +11,9 @@ city-scale benchmark: ``eval_MR_multisetup.py`` ``evaluateImg`` / ``accumulate``
   v in [0.65, inf); heavy occlusion h in [50, inf), v in [0.20, 0.65]; all
   h in [20, inf), v in [0.20, inf). A visibility not given counts as fully visible
   (the toolbox reads a box without a visible part as v = inf, which lands in the same
-  setups). The city-scale reading takes the script's ``vis_ratio``
-  (``GroundTruth.cityscale_visibility``) and its test (``_prepare``: out when
+  setups). The city-scale reading takes the script's ``height`` and ``vis_ratio``
+  (``GroundTruth.cityscale_height``: an annotation's ``height`` key where given, else
+  the box's h; ``GroundTruth.cityscale_visibility``) and its test (``_prepare``: out when
   h < lo, h > hi, v < lo or v > hi), so a NaN is inside. Boxes outside the setup,
   boxes flagged crowd/ignore/difficult, boxes of a neighbouring label (``person?``,
   ``people``, ``ignore``: the toolbox's labels other than ``person``) and the split's
@@ -97,6 +98,7 @@ from .pedestrian_setups import (  # noqa: F401  (re-exported: the engine's API)
     get_miss_rate_protocol,
     ignore_flags,
     neighbours_of,
+    setup_height,
     setup_visibility,
 )
 from .sequential_walk import refuse_box_id
@@ -141,7 +143,7 @@ def evaluate_setups_with_samples(truth, predictions, protocol="miss-rate"):
     fraction = truth.cityscale_ignore()[1] if void is not None else None
     bad_ids = [{e[0]: e for e in truth.cityscale_faults.get("id", ())}] if void is not None else []
     bad_ids = [faults for faults in bad_ids if faults]
-    height = truth.boxes[:, 3]
+    height = setup_height(truth, protocol)
     visibility = setup_visibility(truth, protocol)
     script = protocol.variant == "cityscale"
     det_height = predictions.boxes[:, 3]
@@ -315,11 +317,12 @@ def setup_counts(truth, protocol="miss-rate"):
     ``evaluate_setups``), for a split's page: ``{setup: {class: n}}``."""
     protocol = get_miss_rate_protocol(protocol)
     flagged = not_counted(truth, protocol)
+    height = setup_height(truth, protocol)
     visibility = setup_visibility(truth, protocol)
     script = protocol.variant == "cityscale"
     out = {}
     for setup in protocol.setups:
-        inside = setup.counts(truth.boxes[:, 3], visibility, protocol.height_upper_open, script)
+        inside = setup.counts(height, visibility, protocol.height_upper_open, script)
         inside &= ~flagged
         out[setup.name] = {
             truth.classes[k]: int(np.count_nonzero(inside & (truth.box_class == k)))

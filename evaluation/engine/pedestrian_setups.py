@@ -146,8 +146,10 @@ MISS_RATE = MissRateProtocol(
 #: ``miss-rate-cityscale``: ``eval_MR_multisetup.py`` (``Params``, ``_prepare``,
 #: ``evaluateImg``, ``accumulate``, ``summarize``; ``coco.py`` ``loadRes``). How the
 #: project's fields become its inputs (a mapping, not a rule of the script): its
-#: ``height`` is the box's h (its own files hold ``bbox[3]`` there; ``loadRes`` sets a
-#: detection's to ``bbox[3]``); its ``vis_ratio`` is ``GroundTruth.cityscale_visibility``
+#: ``height`` is ``GroundTruth.cityscale_height`` (read ``"as-given"``: a COCO JSON
+#: annotation's ``height`` key as it is, where given; else the box's h, where the
+#: script raises KeyError; ``loadRes`` sets a detection's to ``bbox[3]``, and so does
+#: the engine); its ``vis_ratio`` is ``GroundTruth.cityscale_visibility``
 #: (read ``"as-given"``: the annotation's ``vis_ratio`` as it is, beside a
 #: ``visibility`` too; else the visibility; 1.0 when neither is given); its ``ignore``
 #: is the ``ignore`` key (COCO JSON, its value: a fraction such as 0.5 ignores the box
@@ -231,6 +233,15 @@ def ignore_flags(truth, protocol):
     if protocol.variant == "cityscale":
         return truth.cityscale_ignore()[0] | (truth.ignore & ~truth.iscrowd_fraction)
     return truth.crowd | truth.ignore | truth.difficult | truth.ignore_key
+
+
+def setup_height(truth, protocol):
+    """Per box, the height the setups of ``protocol`` compare: the city-scale script's
+    (``GroundTruth.cityscale_height``: an annotation's ``height`` key where read), or
+    the box's h (the toolbox and Caltech readings)."""
+    if protocol.variant == "cityscale":
+        return truth.cityscale_height()
+    return truth.boxes[:, 3]
 
 
 def setup_visibility(truth, protocol):

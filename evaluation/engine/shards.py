@@ -77,6 +77,7 @@ def truth_slice(truth, start, stop):
         truth,
         **{name: getattr(truth, name)[box_index] for name in _BOX_FIELDS},
         vis_ratio=None if truth.vis_ratio is None else truth.vis_ratio[box_index],
+        height_key=None if truth.height_key is None else truth.height_key[box_index],
         cityscale_faults=_faults_slice(truth.cityscale_faults, box_index),
         region_image=truth.region_image[regions],
         regions=truth.regions[regions],

@@ -6,7 +6,9 @@ range, invalid UTF-8, a repeated key) the same message naming record and field.
 Slices of 16 and 64 bytes make every cut land everywhere. Read with the ``vis_ratio``
 key (``vis_ratio=True``), as given (``"as-given"``: numbers and booleans, null
 refused) and without (then the key is skipped like any unknown key, whatever it holds,
-and the column is all NaN)."""
+and the column is all NaN). An annotation's ``height`` key is read as given under
+``"as-given"`` alone (numbers and booleans; null, text, arrays and objects kept for
+``miss-rate-cityscale``'s refusal, never refused on reading) and skipped otherwise."""
 
 import json
 import random
@@ -49,6 +51,31 @@ def _as_given(values):
     }
 
 
+def _heights(anns, as_given):
+    """The ``height`` key as the city-scale script compares it (``vis_ratio="as-given"``
+    only, else skipped): a number or boolean given (an integer beyond float64 +-inf, as
+    it compares with the setups' finite bounds); absent, null, text, arrays and objects
+    not given, the last four kept for ``cityscale_raises`` (``city_rows``)."""
+    values = [getattr(a, "height", msgspec.UNSET) if as_given else msgspec.UNSET for a in anns]
+    given = [type(v) in (int, float, bool) for v in values]
+    numbers = []
+    for v, g in zip(values, given):
+        try:
+            numbers.append(float(v) if g else np.nan)
+        except OverflowError:
+            numbers.append(np.inf if v > 0 else -np.inf)
+    faults = [
+        i
+        for i, v in enumerate(values)
+        if v is not msgspec.UNSET and type(v) not in (int, float, bool)
+    ]
+    columns = {
+        "height_key": np.array(numbers, np.float64),
+        "height_given": np.array(given, bool),
+    }
+    return columns, faults
+
+
 def _whole(path, data, vis_ratio=False):
     """The reference: one msgspec decode of the whole document, then the columns;
     NaN/Infinity and out-of-range numbers (1e999) read as Python's json reads them
@@ -80,7 +107,10 @@ def _whole(path, data, vis_ratio=False):
     def opt(values):
         return np.array([np.nan if v is None else v for v in values], np.float64)
 
+    heights, faults = _heights(anns, vis_ratio == "as-given")
     return {
+        **heights,
+        "height_faults": faults,
         "image_ids": np.array(whole["images", "id"], np.int64),
         "image_id_kinds": id_kinds([im.id for im in d.images]),
         "class_id_kinds": id_kinds([c.id for c in d.categories]),
@@ -121,7 +151,9 @@ def _sliced(path, vis_ratio=False):
     except InputError as e:
         return str(e)
     assert not any(cols.pop("unread_counts").values()) and not cols.pop("bad_rows")
-    assert not cols.pop("city_rows")
+    city = cols.pop("city_rows")
+    assert all(set(fields) == {"height"} for fields in city.values()), city
+    cols["height_faults"] = sorted(city)
     return cols
 
 
@@ -155,6 +187,8 @@ def _document(rng):
                 "segmentation": [[1, 2, 3, 4]],
                 "occlusion": rng.choice([None, 1]),
                 "vis_ratio": rng.choice([None, 0.4, 1]),
+                # the city-scale script's key: read as given under "as-given" only
+                "height": rng.choice([4, 40.5, True, 2**70, None, "4"]),
             }
             for i in range(rng.randint(0, 10))
         ],

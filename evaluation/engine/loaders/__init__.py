@@ -35,9 +35,10 @@ __all__ = [
 ]
 
 #: Bumped when the parsed columns change shape or meaning: old cache entries are unused.
+#: 24: truth entries keep an annotation's height key (``GroundTruth.height_key``);
 #: 22: label-file and CSV ids are integers of ASCII digits only (``ids.INTEGER``);
 #: 21: truth entries keep the ids np.unique merges (unique_merged_images)
-CACHE_SCHEMA = 23
+CACHE_SCHEMA = 24
 UNKNOWN_CLASS_POLICIES = ("reject", "drop")
 #: Detections of images the split does not hold: refused (default; pycocotools'
 #: ``loadRes`` asserts every result image is in the set) or, for re-scoring stored
@@ -127,7 +128,11 @@ def load_truth(
         ``miss-rate-cityscale`` (``GroundTruth.vis_ratio``): any number or boolean as
         it is (out of 0-1, NaN, infinite; ``true`` is 1), winning beside a
         ``visibility``; null or text refused naming the record and field (the script
-        raises); every other protocol sees the ``read`` visibility. ``read`` (splits
+        raises); every other protocol sees the ``read`` visibility. The annotation's
+        ``height`` key is read as that ``_prepare`` compares it too
+        (``GroundTruth.height_key``, ``miss-rate-cityscale`` only: any number or
+        boolean as given, else the box's h; a value it cannot compare refused by that
+        protocol where it compares it, never on reading). ``read`` (splits
         frozen with engines 2.9-2.10): the visibility where ``visibility`` is absent,
         a value outside 0-1 or of another type left unread. Both counted in
         ``box_counts`` (``attributes.VISIBILITY_SOURCE_COUNTS``, every format).

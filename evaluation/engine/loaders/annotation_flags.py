@@ -1,11 +1,13 @@
 """An annotation's flags as the reference codes read them, apart from its box:
-``iscrowd`` as pycocotools 2.0.11 does (``crowd_columns``), and the ``ignore`` and
-``id`` values the CityPersons script raises on (``city_faults``, ``unwritable_id``),
-for ``coco_truth._Records.annotations``.
+``iscrowd`` as pycocotools 2.0.11 does (``crowd_columns``), the ``ignore`` and
+``id`` values the CityPersons script raises on (``city_faults``, ``unwritable_id``)
+and its ``height`` key as that script compares it (``height_columns``), for
+``coco_truth._Records.annotations``.
 """
 
 import math
 
+import msgspec
 import numpy as np
 
 from . import result_readings, unread_fields
@@ -63,3 +65,45 @@ def unwritable_id(value):
     except (ValueError, OverflowError):
         return result_readings.as_float(value) is None
     return False
+
+
+_NUMBER_TYPES = frozenset({int, float, bool})
+
+
+def height_columns(anns, base, city_rows):
+    """``height_key`` (float64, NaN where not given) and ``height_given`` (bool) of the
+    annotations' ``height`` key, read as the CityPersons script's ``_prepare`` compares
+    it with the setups' height ranges (``gt['height'] < HtRng[0] or gt['height'] >
+    HtRng[1]``; read with ``vis_ratio="as-given"`` only): any JSON number as given
+    (``NaN`` too, which no range test puts outside; an integer beyond float64 as
+    +-inf, which compares with the finite bounds as the integer does) or boolean (0/1,
+    as Python compares it). Absent: not given (the engine takes ``bbox[3]`` there, where
+    the script raises KeyError). Null, text, arrays and objects, on which Python
+    raises TypeError there, are not given and recorded in ``city_rows`` (row ->
+    ``{"height": (message, truthy)}``) for ``cityscale_raises``, which refuses them
+    under ``miss-rate-cityscale`` only, where ``_prepare`` reads them."""
+    values = [getattr(a, "height", msgspec.UNSET) for a in anns]
+    if set(map(type, values)) <= _NUMBER_TYPES:  # the common case: every key a number
+        try:
+            return {
+                "height_key": np.array(values, np.float64).reshape(-1),
+                "height_given": np.ones(len(values), bool),
+            }
+        except OverflowError:  # an integer beyond float64: one by one below
+            pass
+    numbers, given = [], []
+    for i, value in enumerate(values):
+        number = None if value is msgspec.UNSET else unread_fields.as_number(value)
+        if number is None and value is not msgspec.UNSET:
+            shown = "null" if value is None else f"{value!r:.40}"
+            message = (
+                "must be a number or boolean (the city-scale script compares an "
+                f"annotation's height with the setups' height ranges), got {shown}"
+            )
+            city_rows.setdefault(base + i, {})["height"] = (message, bool(value))
+        numbers.append(math.nan if number is None else number)
+        given.append(number is not None)
+    return {
+        "height_key": np.array(numbers, np.float64).reshape(-1),
+        "height_given": np.array(given, bool).reshape(-1),
+    }

@@ -66,6 +66,8 @@ PER_ANNOTATION = (
     "visibility",
     "vis_ratio",
     "vis_ratio_kind",
+    "height_key",
+    "height_given",
 )
 
 

@@ -8,6 +8,7 @@ building Python objects.
 """
 
 import re
+from typing import Any
 
 import msgspec
 import numpy as np
@@ -52,9 +53,13 @@ class _AnnotationVisRatioAsGiven(_Annotation, gc=False):
     """An annotation read with its ``vis_ratio`` as the city-scale script reads it
     (``vis_ratio="as-given"``): any number or boolean (``_prepare`` compares it with
     the setups' ranges as it is); null, text or anything else is refused (there
-    Python raises on the comparison); absent: ``UNSET``."""
+    Python raises on the comparison); absent: ``UNSET``. Its ``height`` key, which
+    that ``_prepare`` compares too, is taken whatever it holds (``annotation_flags.
+    height_columns`` reads it: a value the script cannot compare is refused by
+    ``miss-rate-cityscale`` alone, where it compares it, never on reading)."""
 
     vis_ratio: float | bool | msgspec.UnsetType = msgspec.UNSET
+    height: Any = msgspec.UNSET
 
 
 class _Region(msgspec.Struct, gc=False):

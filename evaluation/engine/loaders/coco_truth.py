@@ -51,8 +51,10 @@ def read_truth(path, wide=False, loose=False, vis_ratio=False):
     ``vis_ratio`` (``True`` or ``"read"``) the annotations' ``vis_ratio`` key is read
     too (column ``vis_ratio``, NaN where absent; ``attributes.finish`` decides which key
     is the visibility); with ``"as-given"`` any number or boolean is read (booleans as
-    0/1) and ``vis_ratio_kind`` tells absent (0), a number (1) and a boolean (2);
-    without, it is skipped like any unknown key and the column is all NaN.
+    0/1) and ``vis_ratio_kind`` tells absent (0), a number (1) and a boolean (2),
+    and the ``height`` key is read as the city-scale script compares it (columns
+    ``height_key``, ``height_given``: ``annotation_flags.height_columns``); without,
+    both are skipped like any unknown key and the columns are all NaN (not given).
     """
     with open(path, "rb") as f:
         size = f.seek(0, 2)
@@ -265,6 +267,17 @@ class _Records:
             "truncation": given("truncation"),
             "visibility": given("visibility"),
             **self.vis_ratio_columns(anns, given),
+            **self.height_columns(anns, base),
+        }
+
+    def height_columns(self, anns, base):
+        """The ``height`` key (``annotation_flags.height_columns``), read as given
+        with ``vis_ratio="as-given"`` only (else skipped like any unknown key)."""
+        if self.as_given:
+            return annotation_flags.height_columns(anns, base, self.city_rows)
+        return {
+            "height_key": np.full(len(anns), np.nan),
+            "height_given": np.zeros(len(anns), bool),
         }
 
     def vis_ratio_columns(self, anns, given):

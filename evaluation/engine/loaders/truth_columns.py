@@ -250,6 +250,10 @@ def read_truth(
         sources if counted else None,
         as_given=vis_ratio == "as-given",
     )
+    height_given = cols.get("height_given")  # the city-scale script's (as-given only)
+    height_key = None
+    if height_given is not None and height_given.any():
+        height_key = np.where(height_given, cols["height_key"], boxes[:, 3])
     names = [cols["class_names"][i] for i in class_order]
     own = cols.get("category_names")
     tags = [cols["image_tags"][i] for i in image_order]
@@ -276,6 +280,7 @@ def read_truth(
         iscrowd_fraction=cols["ignore"] if fmt == "json" else None,
         source=str(path),
         cityscale_faults=_cityscale_faults(city_rows, rows),
+        height_key=height_key,
         image_id_type=image_type,
         class_id_type=class_type,
         unique_lost_images=lost.get("image", (None,))[0],

@@ -91,6 +91,7 @@ class _AnnotationWithVisRatio(_Annotation, gc=False):
 
 class _AnnotationVisRatioAsGiven(_Annotation, gc=False):
     vis_ratio: Any = msgspec.UNSET  # absent; null decodes as None
+    height: Any = msgspec.UNSET  # annotation_flags.height_columns reads it, never here
 
 
 class Region(msgspec.Struct, gc=False):
