@@ -430,19 +430,25 @@ def test_an_unlisted_id_equal_to_a_changed_value_is_refused(
     assert (error.value.record, error.value.field) == (f"annotations[{len(images)}]", where)
 
 
-@pytest.mark.parametrize("score", ["high", None])
-def test_a_detection_under_a_changed_value_is_refused_where_pycocotools_raises(tmp_path, score):
+@pytest.mark.parametrize(
+    "score, bbox",
+    [("high", BOX), (None, BOX), (0.99, [1, 2, 3, 4, 5]), (0.99, ["1", 2, "3", 4])],
+)
+def test_a_detection_under_a_changed_value_is_refused_where_pycocotools_raises(
+    tmp_path, score, bbox
+):
     """Categories ``[0.5, 2^53 + 1]``: a detection of category 2^53 (unlisted) on a
     looked-up image is found by pycocotools' ``in catIds`` and ``_dts`` under the lost
     2^53 + 1; with a text or null score ``evaluateImg`` raises there (refused here,
-    naming the record); with a number it changes nothing, that entry having no ground
-    truth, and is left out as before (every number equal)."""
+    naming the record), and so it does on a box ``computeIoU`` cannot read (five
+    numbers, text inside: found by the fifth red team); readable, it changes nothing,
+    that entry having no ground truth, and is left out as before (every number equal)."""
     categories = [0.5, 2**53 + 1]
     split, detections = _class_split(categories)
     gt, dt = tmp_path / "gt.json", tmp_path / "dt.json"
     gt.write_text(json.dumps(split))
     truth = load_truth(gt)
-    stray = {"image_id": 1, "category_id": 2**53, "bbox": BOX, "score": score}
+    stray = {"image_id": 1, "category_id": 2**53, "bbox": bbox, "score": score}
     dt.write_text(json.dumps([*detections, stray]))
     with pytest.raises(Exception):  # noqa: B017  pycocotools' own error, whatever it is
         pycocotools_eval(gt, dt)
@@ -450,7 +456,7 @@ def test_a_detection_under_a_changed_value_is_refused_where_pycocotools_raises(t
         load_predictions(dt, truth)
     assert error.value.record == f"record {len(detections)}"
     assert error.value.field == "category_id"
-    dt.write_text(json.dumps([*detections, {**stray, "score": 0.99}]))
+    dt.write_text(json.dumps([*detections, {**stray, "score": 0.99, "bbox": BOX}]))
     reference = pycocotools_eval(gt, dt)
     ours = evaluate(truth, load_predictions(dt, truth), "coco")
     for key, expected in zip(COCO_SUMMARY_KEYS, reference.stats):

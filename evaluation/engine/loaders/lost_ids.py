@@ -12,7 +12,6 @@ import numpy as np
 
 from ..errors import InputError
 from . import ids as ids_module
-from . import unread_fields
 
 
 def unique_lost(ids, id_type, kinds, listed=None):
@@ -181,18 +180,20 @@ def as_typed_keys(ids):
     return [ids_module.typed_key(int(v)) for v in ids.tolist()]
 
 
-def refuse_changed_value_detections(path, truth, found, image, class_keys, score, locate, field):
-    """A detection with a missing or non-number score, of a class the split does not
-    list whose id is the value pycocotools' ``np.unique`` changed a lost category's id
-    into (``changed_class_keys``), on an image it looks up: its ``getAnnIds``
-    (``in catIds``) and ``_dts`` find it there, and ``evaluateImg`` raises on its score
-    (``-d['score']``). Refused, naming the record. With a number it changes nothing
-    (that entry has no ground truth: the split refuses an annotation there,
-    ``refuse_changed_value_refs``), so it is left out as any unlisted class."""
+def refuse_changed_value_detections(path, truth, found, image, class_keys, unread, locate, field):
+    """A detection pycocotools cannot read (``unread``: a missing or non-number score,
+    a box ``computeIoU`` raises on), of a class the split does not list whose id is the
+    value pycocotools' ``np.unique`` changed a lost category's id into
+    (``changed_class_keys``), on an image it looks up: its ``getAnnIds`` (``in catIds``)
+    and ``_dts`` find it there, and ``evaluateImg`` raises on it (``-d['score']``,
+    ``maskUtils.iou``). Refused, naming the record (also beyond the 100 detections per
+    image it compares: a deviation). Readable, it changes nothing (that entry has no
+    ground truth: the split refuses an annotation there, ``refuse_changed_value_refs``),
+    so it is left out as any unlisted class."""
     changed = changed_class_keys(truth)
     if not changed:
         return
-    unlisted = np.flatnonzero(~found & unread_fields.bad_scores(score))
+    unlisted = np.flatnonzero(~found & unread)
     keys = as_typed_keys(class_keys[unlisted])
     hit = np.array([key in changed for key in keys], bool)
     lost = truth.unique_lost_masks()
@@ -201,6 +202,6 @@ def refuse_changed_value_detections(path, truth, found, image, class_keys, score
     if hit.any():
         n = int(np.flatnonzero(hit)[0])
         i, key = int(unlisted[n]), keys[n]
-        why = "reads this detection's score, which is not a number: it raises"
+        why = "reads this detection's score and box, which it cannot read: it raises"
         message = changed_value_message(field, key, changed[key], why)
         raise InputError(path, message, record=locate(i), field=field)
