@@ -14,7 +14,7 @@ from .engine.content_hash import HASH_SCHEMES
 from .models import BenchmarkSplit
 
 #: What each scheme after ``untyped`` added, for a refusal naming a split frozen before.
-_ADDED = {"typed": "id types", "named": "categories' own names"}
+_ADDED = {"typed": "id types", "named": "categories' own names", "heights": "height keys"}
 
 
 def split_hash(split, truth):
@@ -70,6 +70,8 @@ def _fingerprint_taken(twin, theirs, loaded):
     if theirs.category_names != loaded.category_names:
         names = ", ".join(repr(name) for name in theirs.category_names)
         differs.append(("named", f"whose categories are named otherwise ({names})"))
+    if theirs._height_says_more() or loaded._height_says_more():
+        differs.append(("heights", "whose annotations' own height keys differ"))
     if not differs:  # another difference an older scheme missed: none known
         differs.append(("named", "which holds other content"))
     return (

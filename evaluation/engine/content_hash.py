@@ -12,14 +12,17 @@ import numpy as np
 
 from .data import ATTRIBUTES
 
-#: How ``GroundTruth.content_hash`` is taken, newest first: ``named`` (engine 2.17.6 on)
+#: How ``GroundTruth.content_hash`` is taken, newest first: ``heights`` (engine 2.18.2
+#: on) adds the city-scale ``height`` keys where one differs from its box's h (read by
+#: ``miss-rate-cityscale`` since then), so a split frozen before, under ``named``,
+#: keeps the hash its files verify against; ``named`` (engine 2.17.6 on)
 #: adds the categories' own names where one is shown otherwise (shared names shown as
 #: ``car (id 1)``), so a file naming its categories so literally hashes apart; ``typed``
 #: (engine 2.15.0 on) hashes the kind of a text id family, so ids that match different
 #: predictions hash apart; ``untyped`` is the hash before (ids by their text only). The
 #: older two are kept to verify splits frozen under them. Each hashes a split as the
 #: one after it does unless the split holds what the newer one adds.
-HASH_SCHEMES = ("named", "typed", "untyped")
+HASH_SCHEMES = ("heights", "named", "typed", "untyped")
 #: Id kinds (``id_kind``) a ``typed`` hash leaves out: so numeric splits keep their hash.
 NUMERIC_ID_KINDS = ("int", "number")
 
@@ -40,7 +43,7 @@ def _canonical_nan(values):
     return np.where(np.isnan(values), np.nan, values)
 
 
-def content_hash(truth, scheme="named"):
+def content_hash(truth, scheme="heights"):
     """SHA-256 of the canonical content: identical splits hash identically.
 
     Canonical form: images in id order with sizes and sorted tags, classes in
@@ -50,11 +53,12 @@ def content_hash(truth, scheme="named"):
     occlusion, truncation and visibility; the sorted regions follow), so a split
     without them keeps the hash it was frozen with. The city-scale ``vis_ratio``
     column is added only where it says more than the visibility
-    (``_vis_ratio_says_more``); the city-scale ``height_key`` (an annotation's
-    ``height``) only where it differs from the box's h (``_height_says_more``; marked
-    after the boxes). A height the script cannot compare (refused where it reads it,
-    ``cityscale_faults["height"]``) is not hashed: a split frozen with one keeps its
-    hash, and every protocol other than ``miss-rate-cityscale`` scores it as before.
+    (``_vis_ratio_says_more``); under the ``heights`` scheme (the default) the
+    city-scale ``height_key`` (an annotation's ``height``) only where it differs from
+    the box's h (``_height_says_more``; marked after the boxes). A height the script
+    cannot compare (refused where it reads it, ``cityscale_faults["height"]``) is not
+    hashed: a split frozen with one keeps its hash, and every protocol other than
+    ``miss-rate-cityscale`` scores it as before.
 
     Ids are hashed as their text. Under the ``typed`` scheme (``HASH_SCHEMES``) a
     split whose image or class ids are not numbers (``id_kind``: JSON text,
@@ -64,7 +68,7 @@ def content_hash(truth, scheme="named"):
     type) — hash apart; a split of numeric ids hashes as before (no mark).
     ``untyped`` leaves the kinds out: the hash of splits frozen before.
 
-    Under the ``named`` scheme (the default) a split where a category's shown name
+    Under the ``named`` scheme (and ``heights``) a split where a category's shown name
     (``classes``) is not its own (``category_names``: categories sharing a name) then
     hashes the own names, so two ``car`` categories and a file naming them ``car (id
     1)``, ``car (id 2)`` — which the rules naming classes score apart — hash apart;
@@ -72,13 +76,14 @@ def content_hash(truth, scheme="named"):
     """
     if scheme not in HASH_SCHEMES:
         raise ValueError(f"unknown hash scheme {scheme!r}; use {', '.join(HASH_SCHEMES)}")
-    mark = _mark(truth, scheme)
-    # one value per distinct mark: a scheme adding nothing to this split shares it
-    name = "_content_hash" if mark == _mark(truth, HASH_SCHEMES[0]) else f"_{scheme}_hash"
+    form = _mark(truth, scheme), _hashes_heights(truth, scheme)
+    # one value per distinct form: a scheme adding nothing to this split shares it
+    newest = _mark(truth, HASH_SCHEMES[0]), _hashes_heights(truth, HASH_SCHEMES[0])
+    name = "_content_hash" if form == newest else f"_{scheme}_hash"
     cached = truth.__dict__.get(name)
     if cached is not None:  # frozen: computed once (the loaders and annotate ask)
         return cached
-    value = _hash(truth, mark)
+    value = _hash(truth, *form)
     object.__setattr__(truth, name, value)
     return value
 
@@ -87,7 +92,13 @@ def _mark(truth, scheme):
     """The bytes ``scheme``'s hash starts with (``_id_mark``, then ``_names_mark``)."""
     if scheme == "untyped":
         return b""
-    return _id_mark(truth) + (_names_mark(truth) if scheme == "named" else b"")
+    return _id_mark(truth) + (_names_mark(truth) if scheme in ("heights", "named") else b"")
+
+
+def _hashes_heights(truth, scheme):
+    """Whether ``scheme``'s hash of ``truth`` holds its ``height`` keys: ``heights``
+    only, and only where one differs from its box's h (``_height_says_more``)."""
+    return scheme == "heights" and truth._height_says_more()
 
 
 def id_kinds(truth):
@@ -118,7 +129,7 @@ def _names_mark(truth):
     return b"\x00own names " + ascii(list(truth.category_names)).encode() + b"\n"
 
 
-def _hash(truth, mark):
+def _hash(truth, mark, heights):
     attributes = truth.has_attributes()
     digest = _image_digest(truth, mark)
     columns = np.column_stack(
@@ -136,11 +147,11 @@ def _hash(truth, mark):
         + ([truth.ignore_key_fraction.astype("<f8")] if truth.ignore_key_fraction.any() else [])
         + ([_canonical_nan(truth.vis_ratio)] if truth._vis_ratio_says_more() else [])
         + ([column] if (column := _faults_column(truth)).any() else [])
-        + ([_canonical_nan(truth.height_key)] if (height := truth._height_says_more()) else [])
+        + ([_canonical_nan(truth.height_key)] if heights else [])
     )
     order = np.lexsort(columns.T[::-1])
     digest.update(np.ascontiguousarray(columns[order]).tobytes())
-    if height:  # told apart from a split whose other optional column holds the values
+    if heights:  # told apart from a split whose other optional column holds the values
         digest.update(b"height_key")
     if attributes:
         regions = np.column_stack([truth.region_image.astype("<f8"), truth.regions])

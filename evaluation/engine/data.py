@@ -273,7 +273,7 @@ class GroundTruth:
             np.int64
         )
 
-    def content_hash(self, scheme="named"):
+    def content_hash(self, scheme="heights"):
         """SHA-256 of the canonical content, under ``scheme`` (``content_hash.HASH_SCHEMES``):
         identical splits hash identically (``content_hash.content_hash``)."""
         from .content_hash import content_hash

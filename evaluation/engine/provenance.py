@@ -283,6 +283,9 @@ TYPED_FINGERPRINT = "2.15.0"
 #: The first engine whose fingerprint (scheme ``named``) hashes the categories' own
 #: names where they are shown otherwise (categories sharing a name).
 NAMED_FINGERPRINT = "2.17.6"
+#: The first engine whose fingerprint (scheme ``heights``) hashes annotations' own
+#: ``height`` keys where one differs from its box's h (``miss-rate-cityscale`` reads them).
+HEIGHTS_FINGERPRINT = "2.18.2"
 #: ``(version, the splits whose fingerprint changed then)``, oldest first.
 FINGERPRINT_CHANGES = (
     (
@@ -294,6 +297,11 @@ FINGERPRINT_CHANGES = (
         NAMED_FINGERPRINT,
         "whose categories share a name, fingerprinted by an engine before "
         f"{NAMED_FINGERPRINT} (shown names hashed, not the categories' own)",
+    ),
+    (
+        HEIGHTS_FINGERPRINT,
+        "whose annotations give height keys other than their boxes' h, fingerprinted by "
+        f"an engine before {HEIGHTS_FINGERPRINT} (height keys not hashed)",
     ),
 )
 

@@ -54,13 +54,15 @@ class BenchmarkSplit(models.Model):
     )
     hash_scheme = models.CharField(
         max_length=8,
-        default="named",
-        help_text="How its content hash (sha256) was taken: named (as typed, and "
-        "categories sharing a name hash their own names, so two categories named car "
-        "and a file naming them 'car (id 1)', 'car (id 2)' hash apart), typed (image and "
-        'class ids that are not numbers hash with their kind, so ids 1 and "1" hash '
-        "apart: splits frozen before own names were hashed keep that hash) or untyped "
-        "(ids by their text only: splits frozen before keep that hash).",
+        default="heights",
+        help_text="How its content hash (sha256) was taken: heights (as named, and "
+        "annotations' own height keys that differ from their box's h, which "
+        "miss-rate-cityscale reads), named (as typed, and categories sharing a name hash "
+        "their own names, so two categories named car and a file naming them 'car (id 1)', "
+        "'car (id 2)' hash apart: splits frozen before height keys were hashed keep that "
+        "hash), typed (image and class ids that are not numbers hash with their kind, so "
+        'ids 1 and "1" hash apart: splits frozen before own names were hashed keep that '
+        "hash) or untyped (ids by their text only: splits frozen before keep that hash).",
     )
     annotations_left_out = models.JSONField(
         default=dict,

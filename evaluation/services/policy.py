@@ -28,8 +28,9 @@ VIS_RATIO_READING = "as-given"
 #: own names. A stored split is verified with the scheme it was frozen with
 #: (``BenchmarkSplit.hash_scheme``: migration 0024 set ``untyped`` on splits frozen
 #: before id kinds were hashed, 0025 keeps ``typed`` on those frozen before own names
-#: were), so its sha256 is never rewritten.
-HASH_SCHEME = "named"
+#: were, 0026 keeps ``named`` on those frozen before ``height`` keys were), so its
+#: sha256 is never rewritten.
+HASH_SCHEME = "heights"
 #: Detections of classes the split does not list (``engine.load_predictions
 #: (unknown_classes=)``): the default drops them as pycocotools does, counted and named
 #: in the result; ``reject`` refuses the file.

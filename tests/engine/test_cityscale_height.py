@@ -398,3 +398,17 @@ def test_the_hash_changes_only_where_a_height_differs_from_the_box(tmp_path):
     as_vis = [{**seen, "vis_ratio": 0.5}]
     as_height = [{**seen, "height": 0.5}]
     assert _hash(tmp_path / "g", as_vis) != _hash(tmp_path / "h", as_height)
+
+
+def test_a_split_frozen_before_keeps_its_hash_under_its_scheme(tmp_path):
+    """``content_hash.HASH_SCHEMES``: the ``height`` keys enter the hash under the
+    ``heights`` scheme (the default, new splits) only; a split frozen under ``named``
+    before engine 2.18.2 read them verifies against the hash it was frozen with."""
+    plain = [{k: v for k, v in _ann(1, 0.0, h=60.0).items() if k != "height"}]
+    (tmp_path / "a").mkdir()
+    (tmp_path / "b").mkdir()
+    gt_plain, _ = _write(tmp_path / "a", _dataset(plain), [])
+    gt_height, _ = _write(tmp_path / "b", _dataset([{**plain[0], "height": 0.5}]), [])
+    before, now = load_truth(gt_plain), load_truth(gt_height)
+    assert now.content_hash("named") == before.content_hash("named") == before.content_hash()
+    assert now.content_hash() == now.content_hash("heights") != before.content_hash()

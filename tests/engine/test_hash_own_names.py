@@ -197,7 +197,9 @@ def test_explain_says_an_older_fingerprint_may_be_the_same_split(tmp_path):
 
 
 def test_schemes(tmp_path):
-    assert HASH_SCHEMES == ("named", "typed", "untyped")
+    assert HASH_SCHEMES == ("heights", "named", "typed", "untyped")
     truth = load_truth(_write_case(tmp_path, "literal"))
-    with pytest.raises(ValueError, match="unknown hash scheme 'x'; use named, typed, untyped"):
+    with pytest.raises(
+        ValueError, match="unknown hash scheme 'x'; use heights, named, typed, untyped"
+    ):
         truth.content_hash("x")

@@ -76,7 +76,7 @@ def test_a_shared_name_split_frozen_before_keeps_its_hash(
     assert split.hash_scheme == "typed"
     assert split.sha256 == old.content_hash("typed") != old.content_hash()
     evaluation_services.load_truth_of(split)
-    taken_as(split, hash_scheme="named")  # the scheme a new split has
+    taken_as(split, hash_scheme="heights")  # the scheme a new split has
 
     evaluation = score_upload(split, detections_for(content), run_tasks, ["recall40"])
     evaluation = evaluation["recall40"]
@@ -97,7 +97,7 @@ def test_a_shared_name_split_frozen_before_keeps_its_hash(
         _freeze("again-literal", other)
     twin = _freeze("shared-twin", _shared(9))
     old_literal = BenchmarkSplit.objects.get(name="old-literal")
-    assert old_literal.hash_scheme == "typed" and twin.hash_scheme == "named"
+    assert old_literal.hash_scheme == "typed" and twin.hash_scheme == "heights"
     assert twin.sha256 != old_literal.sha256
     assert twin.classes == old_literal.classes
     evaluation_services.load_truth_of(old_literal)
@@ -117,7 +117,7 @@ def test_a_new_shared_name_split_and_its_literal_twin_are_two_splits(tmp_path, s
     settings.MEDIA_ROOT = str(tmp_path / "media")
     shared = _freeze("shared", _shared(5))
     literal = _freeze("literal", _literal(_shared(5)))
-    assert shared.hash_scheme == literal.hash_scheme == "named"
+    assert shared.hash_scheme == literal.hash_scheme == "heights"
     assert shared.classes == literal.classes and shared.sha256 != literal.sha256
     # the literal split's names are its own: it hashes as before
     path = tmp_path / "literal.json"
