@@ -2,6 +2,7 @@
 words, which settings differ between two results (issue: protocol record)."""
 
 import json
+import sys
 
 import numpy as np
 import pytest
@@ -137,6 +138,28 @@ def test_explain_refuses_a_result_without_record(files, capsys):
     a = files.write("a.json", {"summary": {}})
     assert main(["explain", str(a), str(a)]) == 2
     assert "a.json: field 'protocol_record': no protocol record" in capsys.readouterr().err
+
+
+def test_explain_refuses_an_integer_beyond_pythons_digit_limit(inputs, files, capsys):
+    """A JSON integer of more digits than ``sys.get_int_max_str_digits()`` (4300 by
+    default; Python docs, "Integer string conversion length limitation"): Python's json
+    raises ValueError on it (red team audit11 F6: ``explain`` stopped with an internal
+    error). Refused as ``score`` refuses it, naming the file, the field and the place."""
+    gt, dt = inputs
+    a = files.write("a.json", _score(gt, dt, capsys))
+    edited = json.loads(a.read_text())
+    edited["protocol_record"]["precision_epsilon"] = "@"
+    digits = "1" * (sys.get_int_max_str_digits() + 1)
+    text = json.dumps(edited).replace('"@"', digits, 1)
+    b = files.root / "b.json"
+    b.write_text(text)
+    assert main(["explain", str(a), str(b)]) == 2
+    err = capsys.readouterr().err
+    assert "b.json: field 'precision_epsilon': an integer of more than" in err
+    assert "internal error" not in err
+    # A number of as many digits with a fraction is a float to Python's json: read.
+    b.write_text(text.replace(digits, digits + ".0", 1))
+    assert main(["explain", str(a), str(b)]) == 0
 
 
 @pytest.mark.parametrize("value", [{"a": 1}, [1, 2], 3])
