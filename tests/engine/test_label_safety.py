@@ -6,6 +6,7 @@ Python documentation's "XML vulnerabilities" table lists for expat-based parsers
 import io
 import json
 import os
+import re
 import zipfile
 
 import numpy as np
@@ -183,6 +184,23 @@ def test_xml_numbers_take_ascii_digits_only(tmp_path, written):
     assert (error.record, error.field) == ("Annotations/2.xml line 1", "bndbox/xmax")
 
 
+@pytest.mark.parametrize("written", ["\xa012.0", "12.0\u3000", "\u200312.0", "\x8512.0"])
+def test_xml_numbers_take_ascii_spaces_only(tmp_path, written):
+    """Spaces around a VOC XML number are C's whitespace only (the devkit's files write
+    ASCII; C standard ``isspace`` in the "C" locale: space, \\t, \\n, \\v, \\f, \\r,
+    from memory): a no-break space, an ideographic or em space, or NEL beside the
+    digits is refused naming member, line and field (red team audit11 F7, case
+    voc_nbsp); Python's ``re`` ``\\s`` and ``float`` take them as spaces."""
+    folder = write.voc(tmp_path / "voc", IMAGES, CLASSES, BOXES)
+    path = folder / "Annotations" / "2.xml"
+    text = path.read_text()
+    path.write_text(text.replace("<xmax>12.0</xmax>", f"<xmax>{written}</xmax>"))
+    error = _refused("expected a number", folder)
+    assert (error.record, error.field) == ("Annotations/2.xml line 1", "bndbox/xmax")
+    path.write_text(text.replace("<xmax>12.0</xmax>", "<xmax> \t12.0\r\n </xmax>"))
+    assert load_truth(folder).boxes[1].tolist() == [5.0, 6.0, 7.0, 8.0]
+
+
 # KITTI and YOLO lines --------------------------------------------------------------
 
 
@@ -243,6 +261,46 @@ def test_yolo_numbers_take_ascii_digits_only(tmp_path):
     (folder / "data.yaml").write_text("names:\n  0: Car\n  ١: Pedestrian\n")
     error = _refused(r"class index is written in the digits 0-9, got '١'", folder, images=table)
     assert (error.record, error.field) == ("data.yaml line 3", "names")
+
+
+#: Separators Python's ``str.split()`` takes and C's ``isspace`` in the "C" locale does
+#: not (C standard: space, \t, \n, \v, \f, \r only; from memory): no-break space,
+#: ideographic space, em space, NEL, the file separator \x1c (``str.splitlines`` also
+#: breaks lines at the last two).
+NOT_C_SPACES = ["\xa0", "\u3000", "\u2003", "\x85", "\x1c"]
+
+
+@pytest.mark.parametrize("space", NOT_C_SPACES)
+def test_kitti_fields_split_at_c_whitespace_only(tmp_path, space):
+    """The KITTI devkit reads label files with ``fscanf`` (``%s``, ``%lf``), whose
+    separators are C whitespace (red team audit11 F7: ``Car<NBSP>0.00 ...`` was read as
+    a Car): such a character stays inside its field, and the line is refused naming
+    file, line and field. \\t, \\v, \\f between fields are C whitespace: read."""
+    line = KITTI_LINE.replace("Car ", "Car" + space, 1)
+    archive = _zip(tmp_path / "k.zip", {"000001.txt": KITTI_LINE + "\n" + line + "\n"})
+    error = _refused(r"expected 15 fields .*got 14", archive, fmt="kitti")
+    assert (error.path, error.record) == (str(archive), "000001.txt line 2")
+    line = KITTI_LINE.replace(" 0 -1.5", space + " 0 -1.5", 1)
+    archive = _zip(tmp_path / "k2.zip", {"000001.txt": KITTI_LINE + "\n" + line + "\n"})
+    message = "expected a number, got " + re.escape(repr("0.00" + space))
+    error = _refused(message, archive, fmt="kitti")
+    assert (error.record, error.field) == ("000001.txt line 2", "truncated")
+    line = KITTI_LINE.replace(" ", "\t").replace("\t0 ", "\v0\f", 1)
+    archive = _zip(tmp_path / "k3.zip", {"000001.txt": KITTI_LINE + "\n" + line + "\r\n"})
+    truth = load_truth(archive, fmt="kitti")
+    assert truth.boxes.tolist() == [[100.0, 200.0, 150.0, 80.0]] * 2
+
+
+@pytest.mark.parametrize("space", NOT_C_SPACES)
+def test_yolo_fields_split_at_c_whitespace_only(tmp_path, space):
+    """YOLO label lines are split as KITTI's: at C whitespace only (common practice for
+    the YOLO tools' whitespace-separated files; C standard ``isspace``, from memory)."""
+    _, table = write.csv(tmp_path / "csv", IMAGES, CLASSES, BOXES)
+    folder = write.yolo(tmp_path / "y", IMAGES, CLASSES, BOXES)
+    label = folder / "labels" / "2.txt"
+    label.write_text("1 0.5" + space + "0.5 0.25 0.1\n")
+    error = _refused(r"expected 5 fields .*got 4", folder, images=table, fmt="yolo")
+    assert error.record == "labels/2.txt line 1"
 
 
 def test_kitti_detections_need_the_score(tmp_path):

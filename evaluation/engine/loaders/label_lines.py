@@ -19,10 +19,20 @@ _NUMBER = re.compile(r"[+-]?([0-9]+\.?[0-9]*|\.[0-9]+)([eE][+-]?[0-9]+)?\Z")
 _INTEGER = re.compile(r"[+-]?[0-9]+\Z")
 
 
+#: Lines end at \n, \r\n or \r (Python's universal newlines); fields are runs between
+#: C's whitespace in the "C" locale: space, \t, \n, \v, \f, \r (C standard
+#: ``isspace``, from memory), the separators of the ``fscanf`` the KITTI devkit reads
+#: with. Python's ``str.split()`` and ``str.splitlines()`` also take a no-break space,
+#: the ideographic space, NEL, \x1c-\x1f and others (red team audit11 F7): here such
+#: a character stays inside its field, which is then refused naming file, line, field.
+_LINE_BREAK = re.compile(r"\r\n|\r|\n")
+_FIELD = re.compile(r"[^ \t\n\v\f\r]+")
+
+
 def lines(path, name, data):
     """``(line_number, fields)`` of each non-blank line of a member."""
-    for number, line in enumerate(decode_text(path, name, data).splitlines(), 1):
-        fields = line.split()
+    for number, line in enumerate(_LINE_BREAK.split(decode_text(path, name, data)), 1):
+        fields = _FIELD.findall(line)
         if fields:
             yield number, fields
 

@@ -30,8 +30,9 @@ class _Node:
                 return child
         return None
 
-    def value(self):
-        return "".join(self.text).strip()
+    def value(self, spaces=None):
+        """The element's text, stripped of ``spaces`` (default: any Unicode space)."""
+        return "".join(self.text).strip(spaces)
 
 
 def parse_xml(path, name, data):
@@ -95,8 +96,13 @@ def _declared(data):
 
 
 #: A number as the devkit's files write one: ASCII digits, an optional sign, point and
-#: exponent, spaces around (Python's ``float`` reads "1_000", "٣00" and "inf" too).
-_DECIMAL = re.compile(r"\s*[+-]?([0-9]+\.?[0-9]*|\.[0-9]+)([eE][+-]?[0-9]+)?\s*\Z")
+#: exponent, C's whitespace around (space, \t, \n, \v, \f, \r: C standard ``isspace``,
+#: from memory; ``\s`` and ``str.strip()`` would take a no-break or ideographic space
+#: too, red team audit11 F7). Python's ``float`` reads "1_000", "٣00" and "inf" too.
+_C_SPACES = " \t\n\r\f\v"
+_DECIMAL = re.compile(
+    r"[ \t\n\r\f\v]*[+-]?([0-9]+\.?[0-9]*|\.[0-9]+)([eE][+-]?[0-9]+)?[ \t\n\r\f\v]*\Z"
+)
 
 
 def _number(path, name, node, field, required=True):
@@ -105,7 +111,7 @@ def _number(path, name, node, field, required=True):
         if required:
             raise InputError(path, "missing", record=where, field=field)
         return None
-    text = node.value()
+    text = node.value(_C_SPACES)
     try:
         if not _DECIMAL.match(text):  # float() also reads "1_000" and other scripts' digits
             raise ValueError(text)
