@@ -492,3 +492,68 @@ def test_a_category_np_unique_gives_twice_is_refused(tmp_path):
     with pytest.raises(InputError, match="two entries of pycocotools' np.unique") as error:
         load_truth(tmp_path / "gt.json")
     assert error.value.record == "categories[3]" and error.value.field == "id"
+
+
+def _twice_given(case):
+    """A split whose category pycocotools' ``np.unique(sorted(catIds))`` gives twice
+    (red team audit11 F4 cases), without a non-crowd box of that category: a NaN
+    listed twice beside an id beyond 64 bits (no box; crowd boxes only, ``iscrowd`` 1
+    and 0.5, both truthy, so ignored by ``_prepare``), or 3 and 3.0 the NaN-disturbed
+    sort leaves apart (no box). Returns the split, detections, and that category's id."""
+    split, detections = _class_split([2**64, 1])
+    twice = NAN
+    if case == "equal_apart":
+        twice = 3
+        cats = [{"id": 3, "name": "t"}, {"id": NAN, "name": "n"}, *split["categories"]]
+        split["categories"] = cats[:3] + [{"id": 3.0, "name": "t"}] + cats[3:]
+    else:
+        split["categories"].insert(0, {"id": NAN, "name": "n"})
+        split["categories"].insert(2, {"id": NAN, "name": "n"})
+    if case == "crowd_only":
+        for n, crowd in enumerate((1, 0.5)):
+            box = [120, 120 + 30 * n, 20, 20]
+            split["annotations"].append(
+                {
+                    "id": 90 + n,
+                    "image_id": 1,
+                    "category_id": NAN,
+                    "bbox": box,
+                    "area": 400,
+                    "iscrowd": crowd,
+                }  # fmt: skip
+            )
+    detections.append({"image_id": 1, "category_id": twice, "bbox": BOX, "score": 0.6})
+    return split, detections, twice
+
+
+def _reference_columns(tmp_path, split, detections, twice):
+    """pycocotools 2.0.11 on the split: its 12 numbers, and the precision columns of
+    the category ``twice`` (which its own ``params.catIds`` must hold twice)."""
+    (tmp_path / "gt.json").write_text(json.dumps(split))
+    (tmp_path / "dt.json").write_text(json.dumps(detections))
+    reference = pycocotools_eval(tmp_path / "gt.json", tmp_path / "dt.json")
+    columns = [k for k, c in enumerate(reference.params.catIds) if c is twice or c == twice]
+    assert len(columns) == 2  # pycocotools' own outcome: two entries
+    return reference, reference.eval["precision"][:, :, columns, 0, 2]
+
+
+@pytest.mark.parametrize("case", ["nan_twice_empty", "crowd_only", "equal_apart"])
+def test_a_category_given_twice_without_a_regular_box_is_scored(tmp_path, case):
+    """Where the category pycocotools evaluates twice has no box of falsy ``iscrowd``,
+    its accumulate skips both columns (no positive: precision -1) and every number is
+    the file's with that category once: scored, and equal to pycocotools 2.0.11's 12
+    numbers. One regular box of it makes both columns count: refused, naming it."""
+    split, detections, twice = _twice_given(case)
+    reference, columns = _reference_columns(tmp_path, split, detections, twice)
+    assert np.all(columns == -1)
+    truth, ours = _run(tmp_path, split, detections)
+    for key, expected in zip(COCO_SUMMARY_KEYS, reference.stats):
+        assert as_reference(ours["summary"][key]) == pytest.approx(expected, abs=1e-12), key
+    box = {"id": 99, "image_id": 2, "category_id": twice, "bbox": [60, 60, 20, 20],
+           "area": 400, "iscrowd": 0}  # fmt: skip
+    split["annotations"].append(box)
+    reference, columns = _reference_columns(tmp_path, split, detections, twice)
+    assert np.all(columns[0] >= 0)  # both columns scored, each counted in the mean
+    with pytest.raises(InputError, match="two entries of pycocotools' np.unique") as error:
+        load_truth(tmp_path / "gt.json")
+    assert error.value.field == "id"

@@ -163,7 +163,10 @@ def read_truth(
     class_ids = cols["class_ids"][class_order]
     if class_type:
         locate = lambda n: category_locate(int(class_order[n]))  # noqa: E731
-        id_families.refuse_repeated_entries(path, class_ids, listed_keys.get("class"), locate)
+        regular = cols["box_class_ids"][~(cols["crowd"] | cols["ignore"])]  # iscrowd falsy
+        id_families.refuse_repeated_entries(
+            path, class_ids, listed_keys.get("class"), locate, regular
+        )
     lost = {}  # what pycocotools' np.unique loses: a COCO JSON file's ids only
     if fmt == "json":
         lost["image"] = lost_ids.unique_lost(shown, image_type, cols["image_id_kinds"][image_order])
