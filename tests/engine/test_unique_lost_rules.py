@@ -384,3 +384,90 @@ def test_a_repeated_id_makes_a_copy_only_where_pycocotools_fetches_it(
         assert as_reference(ours["summary"][key]) == pytest.approx(expected, abs=1e-12), key
     assert truth.box_counts["duplicate_id_copies"] == copies
     assert truth.box_counts["duplicate_ids_never_fetched"] == 1 - copies
+
+
+# getAnnIds' category test: ``ann['category_id'] in catIds``, numpy's == -------------
+
+
+def _fetch_case(categories, first_category, last_category, other_category):
+    """Annotation id 10 twice on image 1 (first under ``first_category``, last under
+    ``last_category``), id 11 on image 2; a hit on each kept box."""
+
+    def ann(id_, image, category, box):
+        return {"id": id_, "image_id": image, "category_id": category, "bbox": box,
+                "area": box[2] * box[3], "iscrowd": 0}  # fmt: skip
+
+    split = {
+        "images": [{"id": 1}, {"id": 2}],
+        "categories": [{"id": c, "name": f"c{n}"} for n, c in enumerate(categories)],
+        "annotations": [
+            ann(10, 1, first_category, [300, 300, 20, 20]),
+            ann(10, 1, last_category, [10, 10, 50, 50]),
+            ann(11, 2, other_category, [100, 100, 40, 40]),
+        ],
+    }
+    detections = [
+        {"image_id": 1, "category_id": last_category, "bbox": [10, 10, 50, 50], "score": 0.9},
+        {"image_id": 2, "category_id": other_category, "bbox": [100, 100, 40, 40], "score": 0.8},
+    ]
+    return split, detections
+
+
+@pytest.mark.parametrize(
+    "categories, first, copies",
+    [
+        ((2**63, 0.5), 2**63 - 1, 1),  # float64: 2^63 - 1 == np.float64(2^63), fetched
+        ((2**62 + 1, 3), 4611686018427387904.0, 1),  # int64 entries == a float: converted
+        ((2**62 + 1, 3), 4611686018427387904, 0),  # int64 against an int: exact, not
+        ((7, 3), 8, 0),  # no match at all: never fetched, no copy
+    ],
+)
+def test_an_unlisted_category_numpy_finds_makes_a_copy(tmp_path, categories, first, copies):
+    """pycocotools 2.0.11 ``getAnnIds`` keeps an annotation when ``ann['category_id'] in
+    catIds``, numpy's values compared with ``==``: an unlisted category id numpy rounds
+    or converts onto a category's value is fetched, and a repeated annotation id there
+    becomes a copy of its last annotation (one box more). Every number equals
+    pycocotools' on the file; the copy is counted."""
+    split, detections = _fetch_case(categories, first, categories[0], categories[1])
+    (tmp_path / "gt.json").write_text(json.dumps(split))
+    (tmp_path / "dt.json").write_text(json.dumps(detections))
+    reference = pycocotools_eval(tmp_path / "gt.json", tmp_path / "dt.json")
+    truth = load_truth(tmp_path / "gt.json")
+    ours = evaluate(truth, load_predictions(tmp_path / "dt.json", truth), "coco")
+    for key, expected in zip(COCO_SUMMARY_KEYS, reference.stats):
+        assert as_reference(ours["summary"][key]) == pytest.approx(expected, abs=1e-12), key
+    assert truth.box_counts["duplicate_id_copies"] == copies
+
+
+@pytest.mark.parametrize("image, refused", [(1, True), (3, False)])
+def test_an_integer_numpy_cannot_compare_with_boolean_categories(tmp_path, image, refused):
+    """Categories all ``true``: ``np.unique`` makes a boolean array, and ``2**64 in``
+    it raises OverflowError in pycocotools 2.0.11's ``getAnnIds``, which tests the
+    annotations of the images it looks up only: refused naming the annotation where it
+    raises (image 1), scored with its numbers where it never tests it (image 3, not
+    listed)."""
+    split, detections = _fetch_case((True,), True, True, True)
+    split["annotations"].append(
+        {
+            "id": 12,
+            "image_id": image,
+            "category_id": 2**64,
+            "bbox": [0, 0, 30, 30],
+            "area": 900,
+            "iscrowd": 0,
+        }  # fmt: skip
+    )
+    (tmp_path / "gt.json").write_text(json.dumps(split))
+    (tmp_path / "dt.json").write_text(json.dumps(detections))
+    if refused:
+        with pytest.raises(OverflowError):
+            pycocotools_eval(tmp_path / "gt.json", tmp_path / "dt.json")
+        with pytest.raises(InputError, match="OverflowError") as error:
+            load_truth(tmp_path / "gt.json")
+        assert (error.value.record, error.value.field) == ("annotations[3]", "category_id")
+        return
+    reference = pycocotools_eval(tmp_path / "gt.json", tmp_path / "dt.json")
+    truth = load_truth(tmp_path / "gt.json")
+    ours = evaluate(truth, load_predictions(tmp_path / "dt.json", truth), "coco")
+    for key, expected in zip(COCO_SUMMARY_KEYS, reference.stats):
+        assert as_reference(ours["summary"][key]) == pytest.approx(expected, abs=1e-12), key

@@ -52,6 +52,7 @@ PER_ANNOTATION = (
     "box_ids",
     "box_image_ids",
     "box_class_ids",
+    "box_class_id_kinds",
     "boxes",
     "box_area",
     "box_area_given",
@@ -86,14 +87,17 @@ def _last_of_each_id(ids):
     return last
 
 
-def resolve(cols, image_ids, class_ids, unfetched=None):
+def resolve(cols, image_ids, class_ids, unfetched=None, fetched_unlisted=None):
     """Columns of the annotations pycocotools scores, in the order it reads them, and
     the source row of each (for error locations); counts of what changed.
 
     ``cols`` holds every annotation in file order; ``image_ids``/``class_ids`` the ids
     the file lists, ``image_ids`` in pycocotools' (sorted) order; ``unfetched``: the
     image and class ids whose annotations ``getAnnIds`` never fetches
-    (``lost_ids.unfetched``), or None. Returns ``(rows,
+    (``lost_ids.unfetched``), or None; ``fetched_unlisted``: per annotation, whether
+    ``getAnnIds`` fetches it though its category is not listed (``in catIds`` compares
+    with numpy's ``==``: ``lost_ids.fetched_by_category``), or None: such an occurrence
+    of a repeated id makes a copy of the last annotation with it. Returns ``(rows,
     counts)``; ``rows`` is None when nothing changes
     (no duplicate id, every image and category listed), so the common file keeps its
     order and content exactly.
@@ -109,15 +113,19 @@ def resolve(cols, image_ids, class_ids, unfetched=None):
         never = selected & copies
         never &= np.isin(box_images, unfetched[0]) | np.isin(box_classes, unfetched[1])
         selected = selected & ~never  # not fetched: no copy of the last is made
+    extra = np.zeros(len(last), bool)  # fetched, category unlisted: a copy of its last
+    if fetched_unlisted is not None and copies.any():
+        extra = fetched_unlisted & copies & known_image & ~known_class
+        extra &= selected[last]  # the copy lands where its last annotation points
     counts = {
         "annotations_of_unlisted_images": int((~known_image).sum()),
         "annotations_of_unlisted_categories": int((known_image & ~known_class).sum()),
-        "duplicate_id_copies": int((selected & copies).sum()),
+        "duplicate_id_copies": int((selected & copies).sum() + extra.sum()),
         "duplicate_ids_never_fetched": int(never.sum()),
     }
     if selected.all() and not copies.any():
         return None, counts
-    picked = np.flatnonzero(selected)
+    picked = np.flatnonzero(selected | extra)
     # imgToAnns in ascending image id (the rank in ``image_ids``: typed keys do not
     # sort as the ids do), file order within an image
     by_key = np.argsort(image_ids, kind="stable")

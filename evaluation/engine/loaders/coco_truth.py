@@ -254,6 +254,8 @@ class _Records:
             "box_ids": self.ids([a.id for a in anns], key, "id", base),
             "box_image_ids": self.ids([a.image_id for a in anns], key, "image_id", base),
             "box_class_ids": self.ids([a.category_id for a in anns], key, "category_id", base),
+            # as written (true, 1.0): pycocotools' ``in catIds`` compares them so
+            "box_class_id_kinds": id_kinds([a.category_id for a in anns]),
             "boxes": np.array([a.bbox for a in anns], np.float64).reshape(-1, 4),
             "box_area": given("area"),
             "box_area_given": np.array([a.area is not None for a in anns], bool),

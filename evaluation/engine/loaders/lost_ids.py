@@ -205,3 +205,48 @@ def refuse_changed_value_detections(path, truth, found, image, class_keys, unrea
         why = "reads this detection's score and box, which it cannot read: it raises"
         message = changed_value_message(field, key, changed[key], why)
         raise InputError(path, message, record=locate(i), field=field)
+
+
+def fetched_by_category(path, cols, listed, id_type, image_ids, lost):
+    """Per annotation (file order), whether pycocotools' ``getAnnIds`` keeps it by its
+    category: ``ann['category_id'] in catIds``, run as it runs, on the ids as the file
+    wrote them (``box_class_id_kinds``) against ``list(np.unique(getCatIds()))``
+    (``listed``: the categories as listed, ``(ids, kinds)`` as ``unique_lost`` takes
+    them). That list test compares with numpy's ``==``: an unlisted id numpy rounds
+    onto a category's value is kept (so a repeated annotation id there makes a copy of
+    the last, ``annotation_index.resolve``), and against a boolean array an integer
+    numpy cannot convert raises OverflowError: an annotation on a looked-up image
+    (``getAnnIds`` tests only those) holding one is refused, naming it. None where
+    the test is exact (int64 ids written as integers)."""
+    kinds = cols.get("box_class_id_kinds")
+    if kinds is None or (not id_type and not listed[1].any() and not kinds.any()):
+        return None
+    entries = list(np.unique(ids_module.as_written(listed[0], id_type, listed[1])))
+    keys = as_typed_keys(cols["box_class_ids"])
+    tested, fetched = {}, np.zeros(len(keys), bool)
+    back = {ids_module.BOOLEAN: bool, ids_module.WHOLE_FLOAT: float}
+    for n, (key, kind) in enumerate(zip(keys, kinds.tolist())):
+        if (key, kind) not in tested:
+            value = ids_module.key_value(key)
+            value = back[kind](value) if kind else value
+            try:
+                tested[key, kind] = value in entries
+            except OverflowError:
+                tested[key, kind] = None
+        fetched[n] = bool(tested[key, kind])
+        if tested[key, kind] is None and _looked_up_image(cols, n, image_ids, lost):
+            raise InputError(
+                path,
+                f"category_id {ids_module.shown(key)}: pycocotools' getAnnIds compares it "
+                "with the category ids as numpy holds them (a boolean array here), and "
+                "numpy cannot convert it (OverflowError): it raises",
+                record=f"annotations[{n}]",
+                field="category_id",
+            )
+    return fetched
+
+
+def _looked_up_image(cols, n, image_ids, lost):
+    image = cols["box_image_ids"][n]
+    listed = bool(np.isin([image], image_ids)[0])
+    return listed and not np.isin([image], image_ids[lost["image"][0]])[0]

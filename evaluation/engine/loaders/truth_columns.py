@@ -180,7 +180,12 @@ def read_truth(
     elif fmt == "json":
         lost_ids.refuse_changed_value_refs(path, cols, image_ids, class_ids, lost)
         unfetched = lost_ids.unfetched(lost, image_ids, class_ids, class_type)
-        rows, resolved = annotation_index.resolve(cols, image_ids, class_ids, unfetched)
+        by_category = lost_ids.fetched_by_category(
+            path, cols, listed_classes, class_type, image_ids, lost
+        )
+        rows, resolved = annotation_index.resolve(
+            cols, image_ids, class_ids, unfetched, by_category
+        )
         annotation_counts.update(resolved)
         unread = lost_ids.unread_on_lost(cols, bad_rows, rows, image_ids, class_ids, lost)
         _raise_if_scored(path, bad_rows, rows, len(cols["boxes"]), unread)
