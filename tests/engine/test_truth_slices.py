@@ -123,6 +123,7 @@ def _whole(path, data, vis_ratio=False):
         "box_ids": np.array(whole["annotations", "id"], np.int64),
         "box_image_ids": np.array(whole["annotations", "image_id"], np.int64),
         "box_class_ids": np.array(whole["annotations", "category_id"], np.int64),
+        "box_class_id_kinds": id_kinds([a.category_id for a in anns]),
         "boxes": np.array([a.bbox for a in anns], np.float64).reshape(-1, 4),
         "box_area": opt(a.area for a in anns),
         "box_area_given": np.array([a.area is not None for a in anns], bool),
