@@ -324,6 +324,19 @@ def test_cityscale_reads_a_lost_categorys_annotations_as_the_script_fetches_them
         assert outcome.record == "annotations[1]" and outcome.field == "vis_ratio"
 
 
+def _as_pycocotools_scores(tmp_path, split, detections):
+    """The split's ground truth, after checking that ``coco`` scores the file exactly
+    as pycocotools 2.0.11 does (its 12 numbers)."""
+    (tmp_path / "gt.json").write_text(json.dumps(split))
+    (tmp_path / "dt.json").write_text(json.dumps(detections))
+    reference = pycocotools_eval(tmp_path / "gt.json", tmp_path / "dt.json")
+    truth = load_truth(tmp_path / "gt.json")
+    ours = evaluate(truth, load_predictions(tmp_path / "dt.json", truth), "coco")
+    for key, expected in zip(COCO_SUMMARY_KEYS, reference.stats):
+        assert as_reference(ours["summary"][key]) == pytest.approx(expected, abs=1e-12), key
+    return truth
+
+
 # A repeated annotation id: only the occurrences getAnnIds fetches make a copy ---------
 
 
@@ -375,13 +388,7 @@ def test_a_repeated_id_makes_a_copy_only_where_pycocotools_fetches_it(
     pycocotools' on the file, and the occurrences left out are counted."""
     scored = categories[-1]
     split, detections = _copies_case(images, categories, *first, scored)
-    (tmp_path / "gt.json").write_text(json.dumps(split))
-    (tmp_path / "dt.json").write_text(json.dumps(detections))
-    reference = pycocotools_eval(tmp_path / "gt.json", tmp_path / "dt.json")
-    truth = load_truth(tmp_path / "gt.json")
-    ours = evaluate(truth, load_predictions(tmp_path / "dt.json", truth), "coco")
-    for key, expected in zip(COCO_SUMMARY_KEYS, reference.stats):
-        assert as_reference(ours["summary"][key]) == pytest.approx(expected, abs=1e-12), key
+    truth = _as_pycocotools_scores(tmp_path, split, detections)
     assert truth.box_counts["duplicate_id_copies"] == copies
     assert truth.box_counts["duplicate_ids_never_fetched"] == 1 - copies
 
@@ -429,13 +436,7 @@ def test_an_unlisted_category_numpy_finds_makes_a_copy(tmp_path, categories, fir
     becomes a copy of its last annotation (one box more). Every number equals
     pycocotools' on the file; the copy is counted."""
     split, detections = _fetch_case(categories, first, categories[0], categories[1])
-    (tmp_path / "gt.json").write_text(json.dumps(split))
-    (tmp_path / "dt.json").write_text(json.dumps(detections))
-    reference = pycocotools_eval(tmp_path / "gt.json", tmp_path / "dt.json")
-    truth = load_truth(tmp_path / "gt.json")
-    ours = evaluate(truth, load_predictions(tmp_path / "dt.json", truth), "coco")
-    for key, expected in zip(COCO_SUMMARY_KEYS, reference.stats):
-        assert as_reference(ours["summary"][key]) == pytest.approx(expected, abs=1e-12), key
+    truth = _as_pycocotools_scores(tmp_path, split, detections)
     assert truth.box_counts["duplicate_id_copies"] == copies
 
 
@@ -466,8 +467,4 @@ def test_an_integer_numpy_cannot_compare_with_boolean_categories(tmp_path, image
             load_truth(tmp_path / "gt.json")
         assert (error.value.record, error.value.field) == ("annotations[3]", "category_id")
         return
-    reference = pycocotools_eval(tmp_path / "gt.json", tmp_path / "dt.json")
-    truth = load_truth(tmp_path / "gt.json")
-    ours = evaluate(truth, load_predictions(tmp_path / "dt.json", truth), "coco")
-    for key, expected in zip(COCO_SUMMARY_KEYS, reference.stats):
-        assert as_reference(ours["summary"][key]) == pytest.approx(expected, abs=1e-12), key
+    _as_pycocotools_scores(tmp_path, split, detections)
