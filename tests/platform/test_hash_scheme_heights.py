@@ -14,8 +14,8 @@ from evaluation import services as evaluation_services
 from evaluation.models import BenchmarkSplit
 from evaluation.services import UploadError
 
-from .conftest import detections_for, split_dict, upload
-from .historical_splits import plant, schema_at, score_upload, taken_as
+from .conftest import detections_for, split_dict
+from .historical_splits import freeze, plant, schema_at, score_upload, taken_as
 
 BEFORE = "0025_hash_scheme_named"
 
@@ -26,12 +26,6 @@ def _with_heights(content, factor):
     for annotation in content["annotations"]:
         annotation["height"] = annotation["bbox"][3] * factor
     return content
-
-
-def _freeze(name, content):
-    return evaluation_services.load_split(
-        name=name, revision=1, truth=upload(f"{name}.json", content)
-    )
 
 
 @pytest.mark.django_db(transaction=True)
@@ -66,12 +60,12 @@ def test_a_split_with_height_keys_frozen_before_keeps_its_hash(
     assert evaluation.scorecard.split_sha256 == split.sha256
 
     with pytest.raises(UploadError, match="the same content is already frozen as old-heights"):
-        _freeze("again", content)
+        freeze("again", content)
     refused = (
         "its content hash is that of old-heights.*, frozen before height keys entered the "
         "hash, whose annotations' own height keys differ"
     )
     with pytest.raises(UploadError, match=refused):
-        _freeze("equal-heights", _with_heights(base, 1.0))
-    fresh = _freeze("fresh", _with_heights(split_dict(seed=12), 1.5))
+        freeze("equal-heights", _with_heights(base, 1.0))
+    fresh = freeze("fresh", _with_heights(split_dict(seed=12), 1.5))
     assert fresh.hash_scheme == "heights"

@@ -21,8 +21,8 @@ from evaluation import services as evaluation_services
 from evaluation.models import BenchmarkSplit
 from evaluation.services import UploadError
 
-from .conftest import detections_for, split_dict, upload
-from .historical_splits import plant, schema_at, score_upload, taken_as
+from .conftest import detections_for, split_dict
+from .historical_splits import freeze, plant, schema_at, score_upload, taken_as
 
 BEFORE = "0024_hash_scheme"
 
@@ -42,12 +42,6 @@ def _literal(content):
         if category["name"] == "car":
             category["name"] = f"car (id {category['id']})"
     return content
-
-
-def _freeze(name, content):
-    return evaluation_services.load_split(
-        name=name, revision=1, truth=upload(f"{name}.json", content)
-    )
 
 
 @pytest.mark.django_db(transaction=True)
@@ -85,17 +79,17 @@ def test_a_shared_name_split_frozen_before_keeps_its_hash(
     assert evaluation.scorecard.result["truth_fingerprint"] == old.content_hash()
 
     with pytest.raises(UploadError, match="the same content is already frozen as old-shared"):
-        _freeze("again", content)
+        freeze("again", content)
     refused = (
         "its content hash is that of old-shared.*, frozen before categories' own names "
         r"entered the hash, whose categories are named otherwise \('car', 'car', "
     )
     with pytest.raises(UploadError, match=refused):
-        _freeze("literal", _literal(content))
+        freeze("literal", _literal(content))
     # an old literal split: itself again is its twin, its shared-name twin a new split
     with pytest.raises(UploadError, match="the same content is already frozen as old-literal"):
-        _freeze("again-literal", other)
-    twin = _freeze("shared-twin", _shared(9))
+        freeze("again-literal", other)
+    twin = freeze("shared-twin", _shared(9))
     old_literal = BenchmarkSplit.objects.get(name="old-literal")
     assert old_literal.hash_scheme == "typed" and twin.hash_scheme == "heights"
     assert twin.sha256 != old_literal.sha256
@@ -115,8 +109,8 @@ def test_a_shared_name_split_frozen_before_keeps_its_hash(
 @pytest.mark.django_db
 def test_a_new_shared_name_split_and_its_literal_twin_are_two_splits(tmp_path, settings):
     settings.MEDIA_ROOT = str(tmp_path / "media")
-    shared = _freeze("shared", _shared(5))
-    literal = _freeze("literal", _literal(_shared(5)))
+    shared = freeze("shared", _shared(5))
+    literal = freeze("literal", _literal(_shared(5)))
     assert shared.hash_scheme == literal.hash_scheme == "heights"
     assert shared.classes == literal.classes and shared.sha256 != literal.sha256
     # the literal split's names are its own: it hashes as before
@@ -124,4 +118,4 @@ def test_a_new_shared_name_split_and_its_literal_twin_are_two_splits(tmp_path, s
     path.write_text(json.dumps(_literal(_shared(5))))
     assert literal.sha256 == engine.load_truth(path).content_hash("typed")
     with pytest.raises(UploadError, match="the same content is already frozen as shared"):
-        _freeze("again", _shared(5))
+        freeze("again", _shared(5))

@@ -20,8 +20,8 @@ from evaluation.models import BenchmarkSplit
 from evaluation.services import UploadError
 from evaluation.storage import ContentMismatch
 
-from .conftest import detections_for, split_dict, upload
-from .historical_splits import plant, schema_at, score_upload, taken_as
+from .conftest import detections_for, split_dict
+from .historical_splits import freeze, plant, schema_at, score_upload, taken_as
 from .test_api import API, client_for
 
 BEFORE = "0023_vis_ratio_as_given"
@@ -52,17 +52,11 @@ def _digits_split(seed=5):
     return content
 
 
-def _freeze(name, content):
-    return evaluation_services.load_split(
-        name=name, revision=1, truth=upload(f"{name}.json", content)
-    )
-
-
 @pytest.mark.django_db
 def test_the_text_id_twin_of_a_numeric_split_is_a_new_split(tmp_path, settings):
     settings.MEDIA_ROOT = str(tmp_path / "media")
-    numeric = _freeze("numeric", split_dict())
-    text = _freeze("text", _as_text(split_dict()))
+    numeric = freeze("numeric", split_dict())
+    text = freeze("text", _as_text(split_dict()))
     assert numeric.hash_scheme == text.hash_scheme == "heights"
     assert numeric.sha256 != text.sha256
     # a numeric split hashes as before id kinds entered the hash
@@ -71,7 +65,7 @@ def test_the_text_id_twin_of_a_numeric_split_is_a_new_split(tmp_path, settings):
     assert numeric.sha256 == engine.load_truth(path).content_hash("untyped")
     for name, content in (("again", split_dict()), ("again-text", _as_text(split_dict()))):
         with pytest.raises(UploadError, match="the same content is already frozen"):
-            _freeze(name, content)
+            freeze(name, content)
     assert BenchmarkSplit.objects.count() == 2
 
 
@@ -83,7 +77,7 @@ def test_a_stored_file_switched_to_text_ids_is_a_content_mismatch(tmp_path, sett
     settings.MEDIA_ROOT = str(tmp_path / "media")
     settings.BENCHBOOK_ENGINE_CACHE = str(tmp_path / "cache")
     content = _digits_split()
-    split = _freeze("numeric", content)
+    split = freeze("numeric", content)
     evaluation_services.load_truth_of(split)  # verifies, and leaves a cache entry
     with open(split.truth_file.path, "w") as f:
         json.dump(_as_text(content), f)
@@ -138,18 +132,18 @@ def test_a_text_id_split_frozen_before_keeps_its_hash(
     assert evaluation.scorecard.result["truth_fingerprint"] == old.content_hash()
 
     with pytest.raises(UploadError, match="the same content is already frozen as old-text"):
-        _freeze("again", content)
+        freeze("again", content)
     numeric = json.loads(json.dumps(content))
     for record in numeric["images"]:
         record["id"] = int(record["id"])
     for record in numeric["annotations"]:
         record["image_id"] = int(record["image_id"])
     with pytest.raises(UploadError, match="whose ids are of another type .*image ids text"):
-        _freeze("numeric", numeric)
+        freeze("numeric", numeric)
     # an old numeric split: itself again is its twin, its text-id twin a new split
     with pytest.raises(UploadError, match="the same content is already frozen as old-numeric"):
-        _freeze("again-numeric", numeric_content)
-    text_twin = _freeze("text-twin", _as_text(numeric_content))
+        freeze("again-numeric", numeric_content)
+    text_twin = freeze("text-twin", _as_text(numeric_content))
     old_numeric = BenchmarkSplit.objects.get(name="old-numeric")
     assert old_numeric.hash_scheme == "untyped" and text_twin.hash_scheme == "heights"
     assert text_twin.sha256 != old_numeric.sha256

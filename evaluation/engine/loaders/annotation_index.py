@@ -12,9 +12,10 @@ checked by running it in ``tests/engine/test_annotation_index.py``):
   given twice resolves to the *last* annotation with it: every annotation of that id
   becomes a copy of the last one, placed under the last one's image and category
   (copies of a last annotation whose image or category is not listed are dropped).
-  Only the occurrences ``getAnnIds`` fetches make a copy: one on an image, or under a
-  category, whose id ``evaluate``'s ``np.unique`` loses is never fetched
-  (``lost_ids.unfetched``), so it makes none (counted: ``duplicate_ids_never_fetched``).
+  Only the occurrences ``getAnnIds`` fetches make a copy: one on an image whose id
+  ``evaluate``'s ``np.unique`` loses, or that its category test does not keep, is
+  never fetched, so it makes none (counted: ``duplicate_ids_never_fetched``); one
+  under an unlisted category that test keeps makes one (``resolve``).
 
 * ``createIndex`` fills ``imgs[img['id']] = img`` and ``cats[cat['id']] = cat``, so an
   image or a category listed twice is one image or category, its last entry
@@ -87,20 +88,20 @@ def _last_of_each_id(ids):
     return last
 
 
-def resolve(cols, image_ids, class_ids, unfetched=None, fetched_unlisted=None):
+def resolve(cols, image_ids, class_ids, lost_images=None, by_category=None):
     """Columns of the annotations pycocotools scores, in the order it reads them, and
     the source row of each (for error locations); counts of what changed.
 
     ``cols`` holds every annotation in file order; ``image_ids``/``class_ids`` the ids
-    the file lists, ``image_ids`` in pycocotools' (sorted) order; ``unfetched``: the
-    image and class ids whose annotations ``getAnnIds`` never fetches
-    (``lost_ids.unfetched``), or None; ``fetched_unlisted``: per annotation, whether
-    ``getAnnIds`` fetches it though its category is not listed (``in catIds`` compares
-    with numpy's ``==``: ``lost_ids.fetched_by_category``), or None: such an occurrence
-    of a repeated id makes a copy of the last annotation with it. Returns ``(rows,
-    counts)``; ``rows`` is None when nothing changes
-    (no duplicate id, every image and category listed), so the common file keeps its
-    order and content exactly.
+    the file lists, ``image_ids`` in pycocotools' (sorted) order. An occurrence of a
+    repeated id makes a copy of the last annotation with it where ``getAnnIds``
+    fetches it: on a listed image its ``np.unique`` does not lose (``lost_images``,
+    or None), kept by its category test (``by_category``: ``ann['category_id'] in
+    catIds`` as ``lost_ids.fetched_by_category`` runs it, which finds some unlisted
+    categories and misses some lost ones; None: the listed categories). Returns
+    ``(rows, counts)``; ``rows`` is None when nothing changes (no duplicate id, every
+    image and category listed), so the common file keeps its order and content
+    exactly.
     """
     box_images, box_classes = cols["box_image_ids"], cols["box_class_ids"]
     known_image = np.isin(box_images, image_ids)
@@ -108,14 +109,14 @@ def resolve(cols, image_ids, class_ids, unfetched=None, fetched_unlisted=None):
     selected = known_image & known_class
     last = _last_of_each_id(cols["box_ids"])
     copies = last != np.arange(len(last))
-    never = np.zeros(len(last), bool)
-    if unfetched is not None and copies.any():
-        never = selected & copies
-        never &= np.isin(box_images, unfetched[0]) | np.isin(box_classes, unfetched[1])
+    never = extra = np.zeros(len(last), bool)
+    if copies.any() and (lost_images is not None or by_category is not None):
+        fetched = known_image & (known_class if by_category is None else by_category)
+        if lost_images is not None:
+            fetched &= ~np.isin(box_images, lost_images)
+        never = selected & copies & ~fetched
         selected = selected & ~never  # not fetched: no copy of the last is made
-    extra = np.zeros(len(last), bool)  # fetched, category unlisted: a copy of its last
-    if fetched_unlisted is not None and copies.any():
-        extra = fetched_unlisted & copies & known_image & ~known_class
+        extra = fetched & copies & ~known_class  # an unlisted category numpy's == finds
         extra &= selected[last]  # the copy lands where its last annotation points
     counts = {
         "annotations_of_unlisted_images": int((~known_image).sum()),

@@ -230,11 +230,13 @@ def _resolve(path, truth, raw, policy, unknown_classes, unknown_images, rank_of,
     cls, found = checks.resolve(path, class_keys, raw.known_classes, locate, "", "")
     dropped, dropped_classes = 0, ()
     if not found.all():
-        unread = unread_fields.bad_scores(score)  # what pycocotools raises on reading
-        if unfit is not None:
-            unread |= uncompared.fields(unfit[kept_at])
-        where = (image, class_keys, unread, locate, fields["class"])
-        lost_ids.refuse_changed_value_detections(path, truth, found, *where)
+        changed = lost_ids.changed_class_keys(truth)
+        if changed:  # a lost category's changed value an unlisted class may hold
+            unread = unread_fields.bad_scores(score)  # what pycocotools raises on reading
+            if unfit is not None:
+                unread |= uncompared.fields(unfit[kept_at])
+            where = (image, class_keys, unread, locate, fields["class"])
+            lost_ids.refuse_changed_value_detections(path, truth, changed, found, *where)
         if unknown_classes == "reject":
             checks.fail_at(
                 path,

@@ -57,30 +57,13 @@ def unread_on_lost(cols, bad_rows, rows, image_ids, class_ids, lost):
     return bad[on_lost]
 
 
-def unfetched(lost, image_ids, class_ids, class_type):
-    """``(image ids, class ids)`` whose annotations pycocotools' ``getAnnIds(imgIds=
-    p.imgIds, catIds=p.catIds)`` never fetches after ``evaluate``'s ``np.unique``
-    (``lost``: ``unique_lost`` of each family; the ids, typed keys where not int64,
-    in ``GroundTruth`` order), or None when none. Images are looked up in
-    ``imgToAnns`` (a dict): a lost image is never fetched. Categories by the list test
-    ``ann['category_id'] in catIds`` (``==``): a numeric id numpy rounded still equals
-    its value and is fetched; a text id cut of its trailing U+0000 is not, nor a NaN
-    (numpy's is another object, and NaN == NaN is false)."""
-    images = image_ids[lost["image"][0]]
-    lost_classes = np.zeros(len(class_ids), bool)
-    lost_classes[lost["class"][0]] = True
-    nan = class_ids == ids_module.NUMBER + "nan" if class_ids.dtype == object else False
-    classes = class_ids[unfetched_classes(lost_classes, nan, class_type)]
-    if not (len(images) or len(classes)):
-        return None
-    return images, classes
-
-
 def unfetched_classes(lost, nan, class_type):
     """Of the classes whose id ``np.unique`` loses (mask ``lost``), those whose
     annotations ``getAnnIds``' list test ``ann['category_id'] in catIds`` never
-    fetches (``unfetched``): every one of a text family (cut of U+0000), else only a
-    NaN (mask ``nan``)."""
+    fetches: every one of a text family (cut of U+0000), else only a NaN (mask
+    ``nan``). What ``fetched_by_category`` finds running that test on the loader's
+    columns, for a ``GroundTruth``, which keeps no written kinds
+    (``cityscale_raises._prepared``)."""
     return lost if class_type in ("text", "json") else lost & nan
 
 
@@ -180,7 +163,9 @@ def as_typed_keys(ids):
     return [ids_module.typed_key(int(v)) for v in ids.tolist()]
 
 
-def refuse_changed_value_detections(path, truth, found, image, class_keys, unread, locate, field):
+def refuse_changed_value_detections(
+    path, truth, changed, found, image, class_keys, unread, locate, field
+):
     """A detection pycocotools cannot read (``unread``: a missing or non-number score,
     a box ``computeIoU`` raises on), of a class the split does not list whose id is the
     value pycocotools' ``np.unique`` changed a lost category's id into
@@ -190,9 +175,6 @@ def refuse_changed_value_detections(path, truth, found, image, class_keys, unrea
     image it compares: a deviation). Readable, it changes nothing (that entry has no
     ground truth: the split refuses an annotation there, ``refuse_changed_value_refs``),
     so it is left out as any unlisted class."""
-    changed = changed_class_keys(truth)
-    if not changed:
-        return
     unlisted = np.flatnonzero(~found & unread)
     keys = as_typed_keys(class_keys[unlisted])
     hit = np.array([key in changed for key in keys], bool)

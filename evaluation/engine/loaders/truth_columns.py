@@ -179,12 +179,12 @@ def read_truth(
         checks.check_unique(path, cols["box_ids"], box_locate, "id")
     elif fmt == "json":
         lost_ids.refuse_changed_value_refs(path, cols, image_ids, class_ids, lost)
-        unfetched = lost_ids.unfetched(lost, image_ids, class_ids, class_type)
         by_category = lost_ids.fetched_by_category(
             path, cols, listed_classes, class_type, image_ids, lost
         )
+        lost_images = image_ids[lost["image"][0]] if len(lost["image"][0]) else None
         rows, resolved = annotation_index.resolve(
-            cols, image_ids, class_ids, unfetched, by_category
+            cols, image_ids, class_ids, lost_images, by_category
         )
         annotation_counts.update(resolved)
         unread = lost_ids.unread_on_lost(cols, bad_rows, rows, image_ids, class_ids, lost)
