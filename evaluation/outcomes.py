@@ -138,4 +138,13 @@ def export_chunks(evaluation, fmt):
     records = records_of(card)
     truth = truth_of(evaluation)
     written_by = evaluation.engine_version or export.ENGINE_VERSION  # not today's engine
-    return export.FORMATS[fmt](records, truth, engine_version=written_by)
+    digest = _protocol_digest(card)
+    return export.FORMATS[fmt](records, truth, engine_version=written_by, protocol_sha256=digest)
+
+
+def _protocol_digest(card):
+    """The protocol digest the stored result recorded (``Protocol.digest``), or "" for a
+    result scored before engine 2.19.0 recorded one: the rows then say nothing rather
+    than today's digest of a definition that may have changed since."""
+    found = Scorecard.objects.filter(pk=card.pk).values_list("result__protocol_sha256", flat=True)
+    return found.first() or ""

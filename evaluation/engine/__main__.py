@@ -210,7 +210,11 @@ def main(argv=None):
         writers = {  # (a level protocol has no records, and no outputs: refused above)
             "--records": lambda path: records.save(path, provenance=records_provenance(result)),
             "--records-out": lambda path: export.write(
-                path, records, truth, fmt=export.format_of(args.records_out)
+                path,
+                records,
+                truth,
+                fmt=export.format_of(args.records_out),
+                protocol_sha256=result.get("protocol_sha256"),
             ),
         }
         _write_all({path: (option, writers[option]) for option, path in outputs.items()})
@@ -255,6 +259,7 @@ def records_provenance(result):
         "engine_version": result.get("engine_version", ENGINE_VERSION),
         "box_policy": record.get("box_policy"),
         "truth_fingerprint": result.get("truth_fingerprint"),
+        "protocol_sha256": result.get("protocol_sha256"),
         "protocol_record": record,
     }
 

@@ -29,11 +29,14 @@ the number of detections. Columns (``COLUMNS``):
                    ``reject``: ``clip`` changes boxes, so IoU and outcomes)
 ``truth_fingerprint`` the split's content hash (``GroundTruth.content_hash``), as the
                    result records it
+``protocol_sha256`` the digest of the protocol's every setting (``Protocol.digest``),
+                   as the result records it: two custom protocols named alike differ
+                   here (empty where the writer was not given it)
 
-The last four repeat on every row, so each row (and any part of the file) says how it
+The last five repeat on every row, so each row (and any part of the file) says how it
 was scored, and CSV and JSON Lines readers need no header comment; added in engine
-2.18.0 (the last two in 2.18.1), after the others, so readers by column name are
-unchanged.
+2.18.0 (``box_policy`` and ``truth_fingerprint`` in 2.18.1, ``protocol_sha256`` in
+2.19.0), after the others, so readers by column name are unchanged.
 """
 
 import csv
@@ -44,6 +47,7 @@ import math
 import numpy as np
 
 from .loaders.ids import SURROGATE, key_value, keys_of, quoted
+from .protocols import PRESETS
 from .reasons import BOX_REASONS, DETECTION_REASONS, box_outcome, detection_outcome
 from .version import ENGINE_VERSION
 
@@ -67,6 +71,7 @@ COLUMNS = (
     "engine_version",
     "box_policy",
     "truth_fingerprint",
+    "protocol_sha256",
 )
 BLOCK_ROWS = 20_000
 CONTENT_TYPES = {"csv": "text/csv; charset=utf-8", "jsonl": "application/x-ndjson"}
@@ -87,17 +92,27 @@ def _optional(values, present):
 
 
 def row_blocks(
-    records, truth, block_rows=BLOCK_ROWS, typed_ids=False, engine_version=ENGINE_VERSION
+    records,
+    truth,
+    block_rows=BLOCK_ROWS,
+    typed_ids=False,
+    engine_version=ENGINE_VERSION,
+    protocol_sha256=None,
 ):
     """Yield blocks of rows, each a dict column -> list of Python values (None = empty);
-    with ``typed_ids`` image ids are the JSON values the split gave (2.5, not "2.5")."""
+    with ``typed_ids`` image ids are the JSON values the split gave (2.5, not "2.5");
+    ``protocol_sha256``: the scoring protocol's ``digest()`` (default: the preset's of
+    that name; empty for another name the writer was not given the digest of)."""
     fingerprint = truth.content_hash()
+    if protocol_sha256 is None and records.protocol in PRESETS:
+        protocol_sha256 = PRESETS[records.protocol].digest()
     for block in _row_blocks(records, truth, block_rows, typed_ids):
         rows = len(block["row"])
         block["protocol"] = [records.protocol] * rows
         block["engine_version"] = [engine_version] * rows
         block["box_policy"] = [truth.box_policy] * rows
         block["truth_fingerprint"] = [fingerprint] * rows
+        block["protocol_sha256"] = [protocol_sha256] * rows
         yield block
 
 
@@ -158,14 +173,18 @@ def _row_blocks(records, truth, block_rows, typed_ids):
         }
 
 
-def csv_chunks(records, truth, block_rows=BLOCK_ROWS, engine_version=ENGINE_VERSION):
+def csv_chunks(
+    records, truth, block_rows=BLOCK_ROWS, engine_version=ENGINE_VERSION, protocol_sha256=None
+):
     """Yield the CSV text (header first) a block of rows at a time. Floats are written
     with Python's shortest round-trip repr; an empty field is a missing value."""
     buffer = io.StringIO()
     writer = csv.writer(buffer, lineterminator="\n")
     writer.writerow(COLUMNS)
     yield buffer.getvalue()
-    for block in row_blocks(records, truth, block_rows, engine_version=engine_version):
+    for block in row_blocks(
+        records, truth, block_rows, engine_version=engine_version, protocol_sha256=protocol_sha256
+    ):
         buffer.seek(0)
         buffer.truncate()
         writer.writerows(zip(*(block[c] for c in COLUMNS)))
@@ -196,13 +215,15 @@ def _jsonl_id(value, id_type):
     return _strict(value)
 
 
-def jsonl_chunks(records, truth, block_rows=BLOCK_ROWS, engine_version=ENGINE_VERSION):
+def jsonl_chunks(
+    records, truth, block_rows=BLOCK_ROWS, engine_version=ENGINE_VERSION, protocol_sha256=None
+):
     """Yield JSON Lines text, one object per row (missing values are null; a NaN or
     infinite score, coordinate, IoU or image id is the string "NaN", "Infinity",
     "-Infinity"; image ids as ``_jsonl_id`` writes them). Every line is strict JSON
     and UTF-8 text."""
     encode = json.JSONEncoder(allow_nan=False, separators=(",", ":")).encode
-    for block in row_blocks(records, truth, block_rows, True, engine_version):
+    for block in row_blocks(records, truth, block_rows, True, engine_version, protocol_sha256):
         block["image_id"] = [_jsonl_id(v, truth.image_id_type) for v in block["image_id"]]
         for name in ("score", "x", "y", "w", "h", "iou"):
             block[name] = [_strict(v) for v in block[name]]
@@ -224,9 +245,9 @@ def format_of(path):
     raise ValueError(f"{path}: the records export is .csv or .jsonl")
 
 
-def write(path, records, truth, fmt=None):
+def write(path, records, truth, fmt=None, protocol_sha256=None):
     """Write the export to ``path`` (format from its extension unless ``fmt``)."""
     chunks = FORMATS[fmt or format_of(path)]
     with open(path, "w", encoding="utf-8", newline="") as f:
-        for chunk in chunks(records, truth):
+        for chunk in chunks(records, truth, protocol_sha256=protocol_sha256):
             f.write(chunk)

@@ -7,8 +7,10 @@ detection cap and the size buckets. Results record the protocol's name and versi
 a changed preset is a new version and old scorecards stay interpretable.
 """
 
+import hashlib
+import json
 import math
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, fields
 
 import numpy as np
 
@@ -152,6 +154,17 @@ class Protocol:
             )
         return table
 
+    def digest(self):
+        """SHA-256 (hex) of every field that decides a number, ``description`` aside, as
+        canonical JSON (sorted keys, floats in Python's round-trip repr): two custom
+        protocols given one name but different settings have different digests, so
+        rows and results that carry it tell them apart (a name alone does not)."""
+        definition = {
+            f.name: _plain(getattr(self, f.name)) for f in fields(self) if f.name != "description"
+        }
+        text = json.dumps(definition, sort_keys=True, separators=(",", ":"))
+        return hashlib.sha256(text.encode()).hexdigest()
+
     def as_dict(self):
         return {
             "name": self.name,
@@ -169,6 +182,17 @@ class Protocol:
             "zero_id_unmatched": self.zero_id_unmatched,
             "difficult_ignored": self.difficult_ignored,
         }
+
+
+def _plain(value):
+    """A protocol field as JSON values (tuples as lists, numpy floats as floats)."""
+    if isinstance(value, dict):
+        return {str(k): _plain(v) for k, v in value.items()}
+    if isinstance(value, (tuple, list)):
+        return [_plain(v) for v in value]
+    if isinstance(value, np.generic):
+        return value.item()
+    return value
 
 
 PRESETS = {

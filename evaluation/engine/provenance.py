@@ -230,12 +230,14 @@ def left_out_counts(truth, reference="pycocotools 2.0.11"):
 
 
 def annotate(result, truth, predictions, records, protocol):
-    """Finish a result: counts, the protocol record, engine version, truth fingerprint."""
+    """Finish a result: counts, the protocol record, engine version, truth fingerprint,
+    and the protocol's digest (``Protocol.digest``: custom protocols named alike differ)."""
     result["counts"] = counts(truth, predictions, records)
     result["counts"].update(lost_ids(truth, protocol))
     result["protocol_record"] = protocol_record(protocol, truth, predictions, records, result)
     result["engine_version"] = ENGINE_VERSION
     result["truth_fingerprint"] = truth.content_hash()
+    result["protocol_sha256"] = get_protocol(protocol).digest()
     return result
 
 

@@ -16,6 +16,7 @@ import pytest
 from evaluation.engine import MatchRecords, load_truth
 from evaluation.engine.__main__ import main
 from evaluation.engine.loaders import cache as cache_module
+from evaluation.engine.protocols import PRESETS
 from evaluation.engine.records import read_provenance
 from evaluation.engine.version import ENGINE_VERSION
 
@@ -251,12 +252,43 @@ def test_records_files_carry_their_provenance(tmp_path, capsys):
     assert kept["protocol_version"] >= 1 and kept["box_policy"] == "clip"
     assert kept["protocol_record"]["name"] == "voc07" and len(kept["truth_fingerprint"]) == 64
     assert MatchRecords.load(npz).protocol == "voc07"  # the records load as before
+    assert kept["protocol_sha256"] == PRESETS["voc07"].digest()
     header, first = rows.read_text().splitlines()[:2]
-    assert header.endswith(",protocol,engine_version,box_policy,truth_fingerprint")
-    assert first.endswith(f",voc07,{ENGINE_VERSION},clip,{kept['truth_fingerprint']}")
+    assert header.endswith(",protocol,engine_version,box_policy,truth_fingerprint,protocol_sha256")
+    digest = kept["protocol_sha256"]
+    assert first.endswith(f",voc07,{ENGINE_VERSION},clip,{kept['truth_fingerprint']},{digest}")
     row = json.loads(lines.read_text().splitlines()[0])
     assert (row["protocol"], row["engine_version"]) == ("voc07", ENGINE_VERSION)
     assert (row["box_policy"], row["truth_fingerprint"]) == ("clip", kept["truth_fingerprint"])
+    assert row["protocol_sha256"] == digest
+
+
+def test_custom_protocols_named_alike_are_told_apart_in_every_row(tmp_path, capsys):
+    """Two custom protocol files giving one name different IoU slots (red team audit11
+    F8: their rows read alike before): the result JSON and every records row carry the
+    digest of the protocol's settings (``Protocol.digest``), which differs; a third file
+    with the first's settings, in another key order, gives the first's digest."""
+    gt, dt = _json_inputs(tmp_path)
+    definitions = {
+        "a.json": {"name": "site", "base": "voc", "iou_thresholds": [0.5]},
+        "b.json": {"name": "site", "base": "voc", "iou_thresholds": [0.7]},
+        "c.json": {"iou_thresholds": [0.5], "base": "voc", "name": "site"},
+    }
+    digests = {}
+    for name, definition in definitions.items():
+        (tmp_path / name).write_text(json.dumps(definition))
+        out = tmp_path / f"{name}.jsonl"
+        argv = ["--truth", gt, "--predictions", dt, "--protocol", tmp_path / name]
+        assert _cli(capsys, *argv, "--records-out", out)[0] == 0
+        assert main(["score", *map(str, argv), "--format", "json"]) == 0
+        result = capsys.readouterr().out
+        assert json.loads(result)["protocol"] == "site"
+        rows = [json.loads(line) for line in out.read_text().splitlines()]
+        assert {r["protocol"] for r in rows} == {"site"}
+        assert {r["protocol_sha256"] for r in rows} == {json.loads(result)["protocol_sha256"]}
+        digests[name] = rows[0]["protocol_sha256"]
+    assert digests["a.json"] != digests["b.json"]
+    assert digests["a.json"] == digests["c.json"]
 
 
 def test_records_saved_without_provenance_still_load(tmp_path, capsys):

@@ -77,6 +77,7 @@ def test_page_downloads_are_the_engines_export_of_the_stored_records(client, use
         (r["protocol"], r["engine_version"], r["box_policy"], r["truth_fingerprint"]) for r in rows
     }
     assert said == {("coco", scored.engine_version, scored.box_policy, result["truth_fingerprint"])}
+    assert {r["protocol_sha256"] for r in rows} == {result["protocol_sha256"]}
 
 
 def test_a_download_names_the_engine_that_scored_it(
