@@ -38,6 +38,8 @@ from .shards import _BOX_RECORD_FIELDS, _DET_FIELDS, merged_with_order, take_ref
 
 #: Fields stored once per shard records file (the same in every group).
 _META = ("protocol", "classes", "area_names", "thresholds", "n_images", "tie_order")
+#: Stored with them only where not None (``MatchRecords.class_repeats``).
+_OPTIONAL_META = ("class_repeats",)
 _MATCH_FIELDS = ("match_config", "match_det", "match_box", "match_iou")
 _MOVED = ("class", "score", "image", "order")
 #: ``MatchRecords.det_key``, kept only where pycocotools' exact order is
@@ -85,6 +87,7 @@ def partition(records, box_index, groups):
     ref = records.gt_ref_det.astype(np.int64)
     gt_ref_pos = take_referenced(records.det_order, ref)
     members = {f"meta.{name}": np.asarray(getattr(records, name)) for name in _META}
+    members.update(_optional_meta({name: getattr(records, name) for name in _OPTIONAL_META}))
     for j, (lo, hi) in enumerate(groups):
         dets = slice(int(bounds[lo]), int(bounds[hi]))
         out = {name: getattr(records, name)[dets] for name in _det_fields(records)}
@@ -108,6 +111,15 @@ def partition(records, box_index, groups):
         out["moved_class"] = out["moved_class"] - lo
         members.update({f"g{j}.{name}": value for name, value in out.items()})
     return members
+
+
+def _optional_meta(values):
+    """``{"meta.<name>": array}`` of the ``_OPTIONAL_META`` that ``values`` holds."""
+    return {
+        f"meta.{name}": np.asarray(values[name])
+        for name in _OPTIONAL_META
+        if values.get(name) is not None
+    }
 
 
 def save_shard_records(path, records, box_index, groups):
@@ -191,6 +203,7 @@ def merge_group(parts, meta, lo, hi):
             det_outside=p["det_outside"],
             gt_ignored=p["gt_ignored"],
             tie_order=str(meta["tie_order"]),
+            class_repeats=meta["class_repeats"][lo:hi] if "class_repeats" in meta else None,
             **fields,
         )
         local.append((records, np.searchsorted(box_index, p["box_index"])))
@@ -232,6 +245,7 @@ def save_group(path, group, parts, class_start, meta, extra=None):
     arrays.update(box_index=group.box_index, gt_ref_pos=group.gt_ref_pos)
     arrays["class_start"] = np.array(class_start)
     arrays.update({f"meta.{name}": meta[name] for name in _META})
+    arrays.update(_optional_meta(meta))
     for kind in ("scoring", "tide"):
         for name, value in parts[kind]["arrays"].items():
             arrays[f"{kind}:{name}"] = value

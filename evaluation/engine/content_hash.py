@@ -158,6 +158,9 @@ def _hash(truth, mark, heights):
         regions = regions[np.lexsort(regions.T[::-1])]
         digest.update(b"dont_care")
         digest.update(np.ascontiguousarray(regions, "<f8").tobytes())
+    repeats = _counted_repeats(truth)
+    if repeats is not None:  # a mark no column or region run ends with
+        digest.update(b"\x00class_repeats" + repeats.astype("<i8").tobytes())
     return digest.hexdigest()
 
 
@@ -195,6 +198,18 @@ def _image_digest(truth, mark=b""):
     for part in cell:
         digest.update(part)
     return digest
+
+
+def _counted_repeats(truth):
+    """``GroundTruth.class_repeats`` where it can move a number: some class given more
+    than one entry has a box of falsy ``iscrowd`` (without one pycocotools' ``_prepare``
+    ignores all its boxes and every entry is -1). Splits of that kind were refused
+    before engine 2.19.1, so every split frozen before keeps its hash. Else None."""
+    repeats = truth.class_repeats
+    if repeats is None:
+        return None
+    regular = np.unique(truth.box_class[~(truth.crowd | truth.ignore)])
+    return repeats if (repeats[regular] > 1).any() else None
 
 
 def _images_cell(truth):

@@ -124,6 +124,17 @@ class GroundTruth:
     #: (``loaders.ids.unique_merged``): the CityPersons script's FPPI does not count
     #: them as images.
     unique_merged_images: np.ndarray = None
+    #: Per class, how many entries pycocotools 2.0.11's ``p.catIds =
+    #: list(np.unique(p.catIds))`` gives it (``loaders.id_families.repeated_entries``:
+    #: a NaN listed twice, or equal ids a NaN-disturbed sort leaves apart, among ids
+    #: beyond 64 bits); its family (``tie_order="image"``) evaluates the category once
+    #: per entry and counts it that often in every mean over classes
+    #: (``scoring.mean_present``). None where every class is one entry.
+    class_repeats: np.ndarray = None
+    #: Whether every category id is written ``true``/``false``: numpy makes pycocotools'
+    #: ``catIds`` a boolean array, and ``getAnnIds``' ``in catIds`` raises OverflowError on
+    #: an integer it cannot convert (``lost_ids.refuse_uncomparable_detections``).
+    boolean_class_ids: bool = False
     #: Each class's own name, as the file gives it. ``classes`` shows two categories
     #: that share a name as ``"car (id 1)"``, ``"car (id 2)"`` (``loaders.
     #: annotation_index.rename_shared_names``); the rules that name classes read this

@@ -212,6 +212,7 @@ def match(truth, predictions, protocol, *, reasons=True):
         gt_ignored=gt_ignored,
         tie_order=protocol.tie_order,
         gt_void=_void_boxes(truth, protocol),
+        class_repeats=truth.class_repeats if protocol.tie_order == "image" else None,
     )
     return _reasons.attach(records, truth, det_boxes, protocol) if reasons else records
 

@@ -119,7 +119,28 @@ def protocol_record(protocol, truth, predictions, records, result):
         "operating_point": "cuts between distinct scores; best F1 on raw precision",
         "averaged_classes": [c for c in truth.classes if c not in absent],
         "absent_classes": absent,
+        **({"repeated_classes": repeated} if (repeated := _repeated(truth, protocol)) else {}),
     }
+
+
+#: Why a class counts more than once in every mean over classes (``repeated_classes``).
+REPEATED_REASON = (
+    "pycocotools 2.0.11 evaluate() runs np.unique on the category ids; among ids beyond "
+    "64 bits (an object array) a NaN id listed more than once stays that many entries "
+    "(NaN != NaN), and the NaN disturbs the sort so that equal ids (3, 3.0) can stay "
+    "apart: it evaluates such a category once per entry, alike, and counts it that "
+    "often in every mean over categories; so does this protocol (its per-class row is "
+    "listed once)"
+)
+
+
+def _repeated(truth, protocol):
+    """``{class name: entries}`` of the classes pycocotools' family counts more than
+    once (``GroundTruth.class_repeats``, ``tie_order="image"``), or {}."""
+    repeats = truth.class_repeats
+    if repeats is None or get_protocol(protocol).tie_order != "image":
+        return {}
+    return {truth.classes[k]: int(n) for k, n in enumerate(repeats.tolist()) if n != 1}
 
 
 def _undefined_classes(protocol, classes, result):
@@ -234,6 +255,11 @@ def annotate(result, truth, predictions, records, protocol):
     and the protocol's digest (``Protocol.digest``: custom protocols named alike differ)."""
     result["counts"] = counts(truth, predictions, records)
     result["counts"].update(lost_ids(truth, protocol))
+    if repeated := _repeated(truth, protocol):
+        result["counts"]["classes_repeated"] = {
+            "classes": repeated,
+            "reason": REPEATED_REASON,
+        }
     result["protocol_record"] = protocol_record(protocol, truth, predictions, records, result)
     result["engine_version"] = ENGINE_VERSION
     result["truth_fingerprint"] = truth.content_hash()

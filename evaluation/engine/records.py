@@ -106,6 +106,10 @@ class MatchRecords:
     #: fill stops at the first recall point landing on it (``average_precision.fill_stops``).
     #: Kept under the COCO order only; None when the file holds no such score.
     det_overflow: np.ndarray | None = None
+    #: Per class, how often pycocotools' ``p.catIds`` lists it (``GroundTruth.
+    #: class_repeats``), kept under its family (``tie_order="image"``) only: every mean
+    #: over classes counts the class that often (``scoring.mean_present``). None: once.
+    class_repeats: np.ndarray | None = None
     _sparse: dict = field(default_factory=dict, repr=False)
 
     @property

@@ -8,7 +8,7 @@ import zipfile
 
 import numpy as np
 
-from .class_groups import _KEY_FIELD, _MATCH_FIELDS, _META
+from .class_groups import _KEY_FIELD, _MATCH_FIELDS, _META, _OPTIONAL_META
 from .shards import _BOX_RECORD_FIELDS, _DET_FIELDS
 
 
@@ -59,6 +59,9 @@ def write_records(path, group_paths, n_boxes):
             _write_matches(column, opened, det_offset)
             _write_boxes(small, opened, starts, det_offset, n_boxes)
             small("tie_order", meta["tie_order"])
+            for name in _OPTIONAL_META:
+                if f"meta.{name}" in opened[0].files:
+                    small(name, opened[0][f"meta.{name}"])
     finally:
         for g in opened:
             g.close()

@@ -49,22 +49,27 @@ COCO_SUMMARY_KEYS = (
 CURVE_POINTS = np.linspace(0.0, 1.0, 101)
 
 
-def _coco_summary(protocol, precision_by_area, recall_by_area, recall_by_cap):
-    """The 12 numbers of pycocotools ``COCOeval.summarize`` (bbox)."""
+def _coco_summary(protocol, precision_by_area, recall_by_area, recall_by_cap, repeats=None):
+    """The 12 numbers of pycocotools ``COCOeval.summarize`` (bbox); ``repeats`` as
+    ``mean_present``'s."""
     t50, t75 = _slot_of(protocol, 0.5), _slot_of(protocol, 0.75)
+
+    def mean(values):
+        return mean_present(values, repeats)
+
     summary = {
-        "AP": mean_present(precision_by_area[0]),
-        "AP50": mean_present(precision_by_area[0][t50 : t50 + 1]),
-        "AP75": mean_present(precision_by_area[0][t75 : t75 + 1]),
-        "AP_small": mean_present(precision_by_area[1]),
-        "AP_medium": mean_present(precision_by_area[2]),
-        "AP_large": mean_present(precision_by_area[3]),
+        "AP": mean(precision_by_area[0]),
+        "AP50": mean(precision_by_area[0][t50 : t50 + 1]),
+        "AP75": mean(precision_by_area[0][t75 : t75 + 1]),
+        "AP_small": mean(precision_by_area[1]),
+        "AP_medium": mean(precision_by_area[2]),
+        "AP_large": mean(precision_by_area[3]),
     }
     for cap in protocol.max_detections:
-        summary[f"AR{cap}"] = mean_present(recall_by_cap[cap])
-    summary["AR_small"] = mean_present(recall_by_area[1])
-    summary["AR_medium"] = mean_present(recall_by_area[2])
-    summary["AR_large"] = mean_present(recall_by_area[3])
+        summary[f"AR{cap}"] = mean(recall_by_cap[cap])
+    summary["AR_small"] = mean(recall_by_area[1])
+    summary["AR_medium"] = mean(recall_by_area[2])
+    summary["AR_large"] = mean(recall_by_area[3])
     return {key: summary[key] for key in COCO_SUMMARY_KEYS}
 
 
@@ -208,6 +213,8 @@ def class_parts(records, protocol, *, weights=None, tag_masks=None, score_thresh
     if records.det_key is not None:  # cuts at a score read float64 order (exact_scores)
         curves = curves.in_score_order()
     arrays["n_pos"] = curves.n_pos
+    if records.class_repeats is not None:  # joined along the class axis as the rest
+        arrays["class_repeats"] = np.asarray(records.class_repeats, np.int64)
     arrays["threshold_counts"] = _threshold_counts(curves, score_threshold).T
     tag_images = {}
     for tag, mask in sorted((tag_masks or {}).items()):
@@ -269,17 +276,18 @@ def assemble(parts, protocol, *, score_threshold=0.5):
     by_area = [_get(arrays, f"area{a}") for a in range(len(area_names))]
     precision, ap, recall = by_area[0]
     ap_by_area = [entry[1] for entry in by_area]
+    repeats = arrays.get("class_repeats")  # every mean over classes counts them so
 
     if protocol.coco_summary:
         recall_by_cap = {cap: arrays[f"cap{cap}.recall"] for cap in protocol.max_detections}
         summary = _coco_summary(
-            protocol, [e[0] for e in by_area], [e[2] for e in by_area], recall_by_cap
+            protocol, [e[0] for e in by_area], [e[2] for e in by_area], recall_by_cap, repeats
         )
     else:
-        summary = {"AP": mean_present(ap)}
+        summary = {"AP": mean_present(ap, repeats)}
         for a, name in enumerate(area_names[1:], start=1):
-            summary[f"AP_{name}"] = mean_present(ap_by_area[a])
-        summary["recall"] = mean_present(recall)
+            summary[f"AP_{name}"] = mean_present(ap_by_area[a], repeats)
+        summary["recall"] = mean_present(recall, repeats)
 
     result = {
         "protocol": protocol.name,
@@ -295,7 +303,8 @@ def assemble(parts, protocol, *, score_threshold=0.5):
         "slices": {"size": {}, "tag": {}},
     }
     for a, name in enumerate(area_names[1:], start=1):
-        mean, per_class = _slice_entry(classes, protocol, by_area[a], mean_present(ap_by_area[a]))
+        mean_ap = mean_present(ap_by_area[a], repeats)
+        mean, per_class = _slice_entry(classes, protocol, by_area[a], mean_ap, repeats)
         result["slices"]["size"][name] = {
             **mean,
             "per_class": {c: row["AP"] for c, row in per_class.items()},
@@ -303,7 +312,8 @@ def assemble(parts, protocol, *, score_threshold=0.5):
         }
     for tag, images in joined["tag_images"].items():
         scores = _get(arrays, f"tag.{tag}")
-        mean, per_class = _slice_entry(classes, protocol, scores, _headline_of(*scores))
+        mean_ap = _headline_of(*scores, repeats)
+        mean, per_class = _slice_entry(classes, protocol, scores, mean_ap, repeats)
         result["slices"]["tag"][tag] = {
             "images": images,
             **mean,
@@ -313,5 +323,5 @@ def assemble(parts, protocol, *, score_threshold=0.5):
     return result
 
 
-def _headline_of(precision, ap, recall):
-    return mean_present(precision) if precision is not None else mean_present(ap)
+def _headline_of(precision, ap, recall, repeats=None):
+    return mean_present(precision if precision is not None else ap, repeats)

@@ -16,13 +16,20 @@ def _number(value):
     return None if np.isnan(value) else value
 
 
-def mean_present(values):
-    """Mean over the entries of a class-indexed array that are not absent (NaN).
+def mean_present(values, repeats=None):
+    """Mean over the entries of a class-indexed array (class axis last) that are not
+    absent (NaN).
 
     This is pycocotools' ``mean(s[s > -1])``: the flattening order and numpy's
     pairwise summation are kept, so the result matches it bit for bit. NaN if every
-    entry is absent (the reference reports -1).
+    entry is absent (the reference reports -1). ``repeats`` (``MatchRecords.
+    class_repeats``): per class, how many columns pycocotools' arrays give it (its
+    ``p.catIds`` lists a category once per ``np.unique`` entry, each column the same);
+    each class's entries count that often, its columns side by side (pycocotools puts
+    them where its sort left them: equal to rounding, not bit for bit).
     """
+    if repeats is not None:
+        values = np.repeat(values, repeats, axis=-1)
     present = values[~np.isnan(values)]
     return float(np.mean(present)) if present.size else float("nan")
 
@@ -82,11 +89,11 @@ def headline(records, protocol, *, weights=None, area=0):
     """
     protocol = get_protocol(protocol)
     _, precision, ap, _ = _area_scores(records, protocol, area, weights)
-    mean = mean_present(precision) if precision is not None else mean_present(ap)
+    mean = mean_present(precision if precision is not None else ap, records.class_repeats)
     return mean, ap.mean(axis=0)
 
 
-def _slice_entry(classes, protocol, scores, mean_ap):
+def _slice_entry(classes, protocol, scores, mean_ap, repeats=None):
     r"""One slice's rule metrics, mean and per class, from ``(precision, ap, recall)``.
 
     As for the whole split (``_per_class``, ``_coco_summary``): AP is the mean over
@@ -95,7 +102,7 @@ def _slice_entry(classes, protocol, scores, mean_ap):
     present classes the mean of ``precision[t]`` over present classes (pycocotools
     ``summarize``: ``mean(s[s > -1])``); recall the final TP / n_pos at the protocol's
     largest cap (pycocotools ``rc[-1]``), averaged over slots, its mean over present
-    classes (AR at that cap).
+    classes (AR at that cap). ``repeats``: as ``mean_present``'s.
     """
     precision, ap, recall = scores
     out = {}
@@ -104,8 +111,8 @@ def _slice_entry(classes, protocol, scores, mean_ap):
         for key, value in (("AP50", 0.5), ("AP75", 0.75)):
             t = _slot_of(protocol, value)
             if t is not None:
-                mean[key] = _number(mean_present(precision[t : t + 1]))
-    mean["recall"] = _number(mean_present(recall))
+                mean[key] = _number(mean_present(precision[t : t + 1], repeats))
+    mean["recall"] = _number(mean_present(recall, repeats))
     for k, name in enumerate(classes):
         row = {"AP": _number(np.mean(ap[:, k])), "AP50": None, "AP75": None}
         if protocol.coco_summary and precision is not None:
@@ -126,7 +133,7 @@ def slice_scores(records, protocol, *, weights=None, area=0):
     protocol = get_protocol(protocol)
     weights = check_weights(weights, records.n_images)
     scores = _area_scores(records, protocol, area, weights)
-    precision, ap = scores[1], scores[2]
-    mean_ap = mean_present(precision) if precision is not None else mean_present(ap)
-    mean, classes = _slice_entry(records.classes, protocol, scores[1:], mean_ap)
+    precision, ap, repeats = scores[1], scores[2], records.class_repeats
+    mean_ap = mean_present(precision if precision is not None else ap, repeats)
+    mean, classes = _slice_entry(records.classes, protocol, scores[1:], mean_ap, repeats)
     return {**mean, "classes": classes}

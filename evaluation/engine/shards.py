@@ -221,6 +221,7 @@ def merged_with_order(shards, n_boxes):
             first.tie_order,
             first.n_images,
         )
+        same = same and _same_repeats(records.class_repeats, first.class_repeats)
         if not same or not np.array_equal(records.thresholds, first.thresholds):
             raise ValueError("shards matched under different protocols or splits")
     covered = np.bincount(np.concatenate([b for _, b in shards]), minlength=n_boxes)
@@ -300,9 +301,15 @@ def merged_with_order(shards, n_boxes):
         gt_ignored=gt_ignored,
         tie_order=first.tie_order,
         gt_void=gt_void,
+        class_repeats=first.class_repeats,
         **box,
     )
     return merged, order
+
+
+def _same_repeats(a, b):
+    """Whether two records count their classes alike (``class_repeats``)."""
+    return (a is None) == (b is None) and (a is None or np.array_equal(a, b))
 
 
 def _mapped(index, table):

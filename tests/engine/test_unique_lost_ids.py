@@ -27,9 +27,12 @@ from evaluation.engine import (
     load_truth,
     match,
     score_records,
+    shards,
+    slice_scores,
 )
 from evaluation.engine.loaders import json_syntax
 from evaluation.engine.loaders.ids import unique_lost
+from evaluation.engine.pieces import stream_pieces
 
 from .conftest import as_reference, pycocotools_eval
 from .synthetic import make_detections, make_split
@@ -477,29 +480,13 @@ def test_a_box_beyond_float64_on_a_lost_image_is_not_refused(tmp_path):
         _run(tmp_path, split, detections)
 
 
-def test_a_category_np_unique_gives_twice_is_refused(tmp_path):
-    """A NaN listed twice beside an id beyond 64 bits: ``np.unique`` of the object
-    array keeps both (NaN != NaN), so pycocotools 2.0.11 evaluates that category twice
-    (two columns, counted twice in the mean); the engine keeps one class per id and
-    refuses the file, naming the category."""
-    split, detections = _class_split([2**64, NAN, 1])
-    split["categories"].append({"id": NAN, "name": "again"})
-    (tmp_path / "gt.json").write_text(json.dumps(split))
-    (tmp_path / "dt.json").write_text(json.dumps(detections))
-    reference = pycocotools_eval(tmp_path / "gt.json", tmp_path / "dt.json")
-    entries = [c for c in reference.params.catIds if c != c]
-    assert len(entries) == 2  # pycocotools' own outcome
-    with pytest.raises(InputError, match="two entries of pycocotools' np.unique") as error:
-        load_truth(tmp_path / "gt.json")
-    assert error.value.record == "categories[3]" and error.value.field == "id"
-
-
 def _twice_given(case):
-    """A split whose category pycocotools' ``np.unique(sorted(catIds))`` gives twice
-    (red team audit11 F4 cases), without a non-crowd box of that category: a NaN
-    listed twice beside an id beyond 64 bits (no box; crowd boxes only, ``iscrowd`` 1
-    and 0.5, both truthy, so ignored by ``_prepare``), or 3 and 3.0 the NaN-disturbed
-    sort leaves apart (no box). Returns the split, detections, and that category's id."""
+    """A split whose category pycocotools' ``np.unique(sorted(catIds))`` gives more
+    than once (red team audit11 F4 cases), without a non-crowd box of that category: a
+    NaN listed twice (``nan_thrice``: three times) beside an id beyond 64 bits (no box;
+    ``crowd_only``: crowd boxes only, ``iscrowd`` 1 and 0.5, both truthy, so ignored
+    by ``_prepare``), or 3 and 3.0 the NaN-disturbed sort leaves apart (no box).
+    Returns the split, detections, and that category's id."""
     split, detections = _class_split([2**64, 1])
     twice = NAN
     if case == "equal_apart":
@@ -509,6 +496,8 @@ def _twice_given(case):
     else:
         split["categories"].insert(0, {"id": NAN, "name": "n"})
         split["categories"].insert(2, {"id": NAN, "name": "n"})
+    if case == "nan_thrice":
+        split["categories"].append({"id": NAN, "name": "n"})
     if case == "crowd_only":
         for n, crowd in enumerate((1, 0.5)):
             box = [120, 120 + 30 * n, 20, 20]
@@ -526,34 +515,133 @@ def _twice_given(case):
     return split, detections, twice
 
 
-def _reference_columns(tmp_path, split, detections, twice):
+#: How many entries pycocotools 2.0.11's ``p.catIds`` gives the category of each case.
+TWICE_ENTRIES = {"nan_twice_empty": 2, "crowd_only": 2, "equal_apart": 2, "nan_thrice": 3}
+
+
+def _reference_columns(tmp_path, split, detections, twice, entries=2):
     """pycocotools 2.0.11 on the split: its 12 numbers, and the precision columns of
-    the category ``twice`` (which its own ``params.catIds`` must hold twice)."""
+    the category ``twice`` (which its own ``params.catIds`` must hold ``entries``
+    times)."""
     (tmp_path / "gt.json").write_text(json.dumps(split))
     (tmp_path / "dt.json").write_text(json.dumps(detections))
     reference = pycocotools_eval(tmp_path / "gt.json", tmp_path / "dt.json")
     columns = [k for k, c in enumerate(reference.params.catIds) if c is twice or c == twice]
-    assert len(columns) == 2  # pycocotools' own outcome: two entries
+    assert len(columns) == entries  # pycocotools' own outcome
     return reference, reference.eval["precision"][:, :, columns, 0, 2]
+
+
+def _with_a_regular_box(split, detections, twice):
+    """A box of falsy ``iscrowd`` of the category ``twice`` on image 2, and a detection
+    of it there (IoU 0.9): every column of it counts in pycocotools' means."""
+    box = {"id": 99, "image_id": 2, "category_id": twice, "bbox": [60, 60, 20, 20],
+           "area": 400, "iscrowd": 0}  # fmt: skip
+    split["annotations"].append(box)
+    detections.append({"image_id": 2, "category_id": twice, "bbox": [62, 60, 20, 20],
+                       "score": 0.45})  # fmt: skip
 
 
 @pytest.mark.parametrize("case", ["nan_twice_empty", "crowd_only", "equal_apart"])
 def test_a_category_given_twice_without_a_regular_box_is_scored(tmp_path, case):
     """Where the category pycocotools evaluates twice has no box of falsy ``iscrowd``,
     its accumulate skips both columns (no positive: precision -1) and every number is
-    the file's with that category once: scored, and equal to pycocotools 2.0.11's 12
-    numbers. One regular box of it makes both columns count: refused, naming it."""
+    the file's with that category once: equal to pycocotools 2.0.11's 12 numbers. Such
+    splits scored since engine 2.18.3: the hash leaves the repeats out, so a split
+    frozen then keeps its hash."""
     split, detections, twice = _twice_given(case)
     reference, columns = _reference_columns(tmp_path, split, detections, twice)
     assert np.all(columns == -1)
     truth, ours = _run(tmp_path, split, detections)
     for key, expected in zip(COCO_SUMMARY_KEYS, reference.stats):
         assert as_reference(ours["summary"][key]) == pytest.approx(expected, abs=1e-12), key
-    box = {"id": 99, "image_id": 2, "category_id": twice, "bbox": [60, 60, 20, 20],
-           "area": 400, "iscrowd": 0}  # fmt: skip
-    split["annotations"].append(box)
-    reference, columns = _reference_columns(tmp_path, split, detections, twice)
-    assert np.all(columns[0] >= 0)  # both columns scored, each counted in the mean
-    with pytest.raises(InputError, match="two entries of pycocotools' np.unique") as error:
-        load_truth(tmp_path / "gt.json")
-    assert error.value.field == "id"
+    assert truth.class_repeats is not None
+    once = dataclasses.replace(truth, class_repeats=None)
+    assert truth.content_hash() == once.content_hash()
+
+
+@pytest.mark.parametrize("case", sorted(TWICE_ENTRIES))
+def test_a_category_given_twice_counts_twice_as_in_pycocotools(tmp_path, case):
+    """With a regular box, pycocotools 2.0.11 evaluates the category once per entry of
+    its ``np.unique(sorted(catIds))`` (identical columns) and counts it that often in
+    each of its 12 means: every number equal here (the class is one row of the
+    per-class output, its AP pycocotools' column; the counts and protocol record name
+    how often and why). The VOC protocols, whose devkit scores each class once, list
+    it once and average each class once (common practice: the mean over classes)."""
+    entries = TWICE_ENTRIES[case]
+    split, detections, twice = _twice_given(case)
+    _with_a_regular_box(split, detections, twice)
+    reference, columns = _reference_columns(tmp_path, split, detections, twice, entries)
+    assert np.all(columns >= 0)
+    for k in range(1, entries):  # pycocotools' own outcome: the same column again
+        assert np.array_equal(columns[..., k], columns[..., 0])
+    truth, ours = _run(tmp_path, split, detections)
+    for key, expected in zip(COCO_SUMMARY_KEYS, reference.stats):
+        assert as_reference(ours["summary"][key]) == pytest.approx(expected, abs=1e-12), key
+    name = "t" if case == "equal_apart" else "n"
+    assert list(ours["per_class"]) == list(truth.classes) and truth.classes.count(name) == 1
+    assert ours["per_class"][name]["AP"] == pytest.approx(np.mean(columns[..., 0]), abs=1e-12)
+    assert ours["counts"]["classes_repeated"]["classes"] == {name: entries}
+    assert ours["protocol_record"]["repeated_classes"] == {name: entries}
+    once = dataclasses.replace(truth, class_repeats=None)
+    assert truth.content_hash() != once.content_hash()  # the numbers differ: so does the hash
+    _, voc = _run(tmp_path, split, detections, "voc")
+    assert "classes_repeated" not in voc["counts"]
+    assert "repeated_classes" not in voc["protocol_record"]
+    ap = [row["AP"] for row in voc["per_class"].values() if row["AP"] is not None]
+    assert list(voc["per_class"]) == list(truth.classes)
+    assert voc["summary"]["AP"] == pytest.approx(np.mean(ap), abs=1e-12)
+
+
+@pytest.mark.parametrize("protocol", ["coco", "recall40"])
+def test_a_category_given_twice_counts_alike_on_every_path(files, tmp_path, protocol):
+    """Six classes, NaN listed twice beside 2^64, every class with regular boxes: the
+    whole file (equal to pycocotools 2.0.11 under ``coco``), the streamed per-shard
+    pieces, the image shards merged, and the class groups (the platform's path, three
+    groups) give the same records, scorecard and counts; so do a cached load and the
+    records file's slice scores."""
+    split, dets = _class_split([2**64, NAN, 1, 2, 3, 4])
+    split["categories"].append({"id": NAN, "name": "again"})
+    truth, predictions = files.load(split, dets)
+    repeats = dict(zip(truth.classes, truth.class_repeats.tolist()))
+    assert repeats == {**dict.fromkeys(truth.classes, 1), "again": 2}
+    gt, dt = files.root / "truth.json", files.root / "predictions.json"
+    if protocol == "coco":
+        reference = pycocotools_eval(gt, dt)
+        assert sum(1 for c in reference.params.catIds if c != c) == 2
+        ours = evaluate(truth, predictions, "coco")
+        for key, expected in zip(COCO_SUMMARY_KEYS, reference.stats):
+            assert as_reference(ours["summary"][key]) == pytest.approx(expected, abs=1e-12)
+    whole = match(truth, predictions, protocol)
+    assert whole.class_repeats.tolist() == truth.class_repeats.tolist()
+    tag_masks = {tag: truth.tag_mask(tag) for tag in truth.tags()}
+    expected = annotate(
+        score_records(whole, protocol, tag_masks=tag_masks), truth, predictions, whole, protocol
+    )
+    assert expected["counts"]["classes_repeated"]["classes"] == {"again": 2}
+    result, _, merged = _grouped(truth, predictions, protocol, 1, 3, tmp_path)
+    _same_records(whole, merged)
+    assert merged.class_repeats.tolist() == truth.class_repeats.tolist()
+    assert json.dumps(result) == json.dumps(expected)
+    assert json.dumps(slice_scores(merged, protocol)) == json.dumps(slice_scores(whole, protocol))
+
+    ranges = shards.plan(truth.n_images, 1)
+    (tmp_path / "pieces").mkdir()
+    streamed = stream_pieces(dt, truth, ranges, tmp_path / "pieces")
+    pieces = [shards.load_piece(path) for path in streamed.paths]
+    records = shards.merge(
+        [(shards.match_shard(*piece, protocol), piece[1]) for piece in pieces], truth.n_boxes
+    )
+    _same_records(whole, records)
+    again = annotate(
+        score_records(records, protocol, tag_masks=tag_masks), truth, streamed.counts,
+        records, protocol,
+    )  # fmt: skip
+    assert json.dumps(again) == json.dumps(expected)
+
+    for cache in (tmp_path / "cache", tmp_path / "cache"):  # build, then read
+        cached = load_truth(gt, cache_dir=cache)
+        assert cached.class_repeats.tolist() == truth.class_repeats.tolist()
+        assert cached.content_hash() == truth.content_hash()
+        assert json.dumps(evaluate(cached, predictions, protocol)) == json.dumps(
+            evaluate(truth, predictions, protocol)
+        )

@@ -468,3 +468,69 @@ def test_an_integer_numpy_cannot_compare_with_boolean_categories(tmp_path, image
         assert (error.value.record, error.value.field) == ("annotations[3]", "category_id")
         return
     _as_pycocotools_scores(tmp_path, split, detections)
+
+
+def _uncomparable_detection(image_ids, image, category):
+    """Categories all ``true`` (``_fetch_case``) on images ``image_ids``, and a
+    detection of the unlisted ``category`` on image ``image`` (record 2)."""
+    split, detections = _fetch_case((True,), True, True, True)
+    moved = dict(zip((1, 2), image_ids))
+    split["images"] = [{"id": i} for i in image_ids]
+    for item in (*split["annotations"], *detections):
+        item["image_id"] = moved[item["image_id"]]
+    detections.append({"image_id": image, "category_id": category, "bbox": [0, 0, 9, 9],
+                       "score": 0.3})  # fmt: skip
+    return split, detections
+
+
+@pytest.mark.parametrize(
+    "image_ids, image, category, refused",
+    [
+        ((1, 2), 1, 2**64, True),
+        ((1, 2), 2, 2**63, True),  # uint64 range: no C long either
+        ((1, 2), 1, -(2**63) - 1, True),
+        ((1, 2), 2, 2**63 - 1, False),  # int64: compared (False), left out
+        ((2**63 + 1, 5), 2**63 + 1, 2**64, False),  # a lost image: never looked up
+        ((2**63 + 1, 5), 5, 2**64, True),
+    ],
+)
+def test_a_detection_numpy_cannot_compare_with_boolean_categories(
+    tmp_path, monkeypatch, image_ids, image, category, refused
+):
+    """pycocotools 2.0.11's ``_prepare`` runs ``cocoDt.getAnnIds(imgIds, catIds)`` too:
+    with every category id a boolean, ``ann['category_id'] in catIds`` raises
+    OverflowError on a detection whose category is an integer numpy cannot convert, on
+    any image it looks up (not one whose id its ``np.unique`` loses). Refused naming the
+    record and ``category_id`` by every load path (whole file, slices of a few bytes,
+    a cached load, the blocks ``stream_predictions`` yields, the streamed pieces); else
+    left out as any unlisted class, every number pycocotools'."""
+    from evaluation.engine.loaders import results_stream, stream_predictions
+    from evaluation.engine.pieces import stream_pieces
+    from evaluation.engine.shards import plan
+
+    split, detections = _uncomparable_detection(image_ids, image, category)
+    (tmp_path / "gt.json").write_text(json.dumps(split))
+    (tmp_path / "dt.json").write_text(json.dumps(detections))
+    gt, dt = tmp_path / "gt.json", tmp_path / "dt.json"
+    if not refused:
+        pycocotools_eval(gt, dt)  # no error
+        truth = _as_pycocotools_scores(tmp_path, split, detections)
+        assert load_predictions(dt, truth).dropped == 1
+        return
+    with pytest.raises(OverflowError):
+        pycocotools_eval(gt, dt)
+    truth = load_truth(gt)
+    (tmp_path / "pieces").mkdir()
+    loads = [
+        lambda: load_predictions(dt, truth),
+        lambda: load_predictions(dt, truth, cache_dir=tmp_path / "cache"),
+        lambda: list(stream_predictions(dt, truth)),
+        lambda: stream_pieces(dt, truth, plan(truth.n_images, 1), tmp_path / "pieces"),
+    ]
+    for chunk in (None, 7):
+        if chunk:
+            monkeypatch.setattr(results_stream, "CHUNK_BYTES", chunk)
+        for load in loads:
+            with pytest.raises(InputError, match="OverflowError") as error:
+                load()
+            assert (error.value.record, error.value.field) == ("record 2", "category_id")

@@ -230,6 +230,15 @@ def _resolve(path, truth, raw, policy, unknown_classes, unknown_images, rank_of,
     cls, found = checks.resolve(path, class_keys, raw.known_classes, locate, "", "")
     dropped, dropped_classes = 0, ()
     if not found.all():
+        unlisted = np.flatnonzero(~found)
+        lost_ids.refuse_uncomparable_detections(
+            path,
+            truth,
+            class_keys[unlisted],
+            image[unlisted],
+            lambda i: locate(int(unlisted[i])),
+            fields["class"],
+        )
         changed = lost_ids.changed_class_keys(truth)
         if changed:  # a lost category's changed value an unlisted class may hold
             unread = unread_fields.bad_scores(score)  # what pycocotools raises on reading

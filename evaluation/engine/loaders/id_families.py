@@ -1,6 +1,6 @@
 """A JSON split's id families: typed keys where the ids are not all 64-bit integers
-(``ids``), pycocotools' order of them, and the category a NaN makes ``np.unique`` give
-twice. ``truth_columns.read_truth`` calls these on the images' and categories' ids."""
+(``ids``), pycocotools' order of them, and the categories a NaN makes ``np.unique``
+give more than once. ``truth_columns.read_truth`` calls these on the images' and categories' ids."""
 
 import numpy as np
 
@@ -63,36 +63,22 @@ def _written(values, listed, distinct):
     return list(dict.fromkeys(written)) if distinct else written
 
 
-def refuse_repeated_entries(path, class_ids, listed, locate, regular_refs):
-    """A category ``np.unique(sorted(catIds))`` gives twice: a NaN among ids beyond 64
-    bits (an object array, sorted by Python's comparisons, which a NaN disturbs) can
-    leave two equal ids apart, and a NaN listed twice is two entries (NaN != NaN).
-    pycocotools then evaluates that category twice (two columns of its per-class
-    arrays, counted twice in every mean); the engine has one class per id: refused
-    where that category has a regular box, ``regular_refs`` (the ``category_id`` keys
-    of the annotations whose ``iscrowd`` is falsy). Without one, ``_prepare`` ignores
-    all its boxes, ``accumulate`` skips both columns (no positive: -1) and every
-    number is the file's with the category once (red team audit11 F4): scored."""
+def repeated_entries(class_ids, listed):
+    """Per class (``class_ids``, typed keys in the engine's order), how many entries
+    pycocotools' ``np.unique(sorted(catIds))`` gives it, or None where each class is
+    one. A NaN among ids beyond 64 bits (an object array, sorted by Python's
+    comparisons, which a NaN disturbs) can leave two equal ids apart (``3`` and
+    ``3.0``), and a NaN listed twice is two entries (NaN != NaN); three times, three.
+    pycocotools evaluates the category once per entry, every entry finding the same
+    boxes and detections (its dicts find ``3.0`` under ``3``, the file's NaN by
+    identity): identical columns of its per-class arrays, counted that often in every
+    mean over categories (red team audit11 F4; ``GroundTruth.class_repeats``)."""
     written = _written(class_ids, listed, distinct=False)
     if written is None:
-        return
+        return None
     values = [ids_module.key_value(k) for k in class_ids.tolist()]
-    entries = ids_module.nan_entries(values, written) or []
-    seen = set()
-    regular = None
-    for n in entries:
-        if n in seen:
-            if regular is None:  # looked up as pycocotools' dicts do: 3 == 3.0, the NaN
-                regular = {ids_module.key_value(k) for k in set(regular_refs.tolist())}
-            if values[n] not in regular:
-                continue
-            raise InputError(
-                path,
-                f"category id {ids_module.shown(class_ids[n])} is two entries of "
-                "pycocotools' np.unique(sorted(catIds)) (a NaN id among ids beyond 64 bits "
-                "disturbs the sort, or NaN is listed twice): it would evaluate that category "
-                "twice and count it twice in every mean; the engine keeps one class per id",
-                record=locate(n),
-                field="id",
-            )
-        seen.add(n)
+    entries = ids_module.nan_entries(values, written)
+    if entries is None:
+        return None
+    repeats = np.bincount(np.array(entries, np.int64), minlength=len(values))
+    return repeats if (repeats != 1).any() else None

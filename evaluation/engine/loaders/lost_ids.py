@@ -232,3 +232,44 @@ def _looked_up_image(cols, n, image_ids, lost):
     image = cols["box_image_ids"][n]
     listed = bool(np.isin([image], image_ids)[0])
     return listed and not np.isin([image], image_ids[lost["image"][0]])[0]
+
+
+#: What ``getAnnIds``' ``in catIds`` compares a detection's category with where every
+#: category id is ``true``/``false`` (``GroundTruth.boolean_class_ids``): numpy's
+#: booleans (which of them, or how many, does not decide whether ``==`` raises).
+_BOOLEAN_ENTRIES = [np.True_]
+
+
+def refuse_uncomparable_detections(path, truth, keys, image, locate, field):
+    """Refuse a detection of an unlisted category pycocotools 2.0.11 cannot compare:
+    where every category id is a boolean (``GroundTruth.boolean_class_ids``), its
+    ``_prepare`` runs ``cocoDt.getAnnIds(imgIds, catIds)``, whose ``ann['category_id']
+    in catIds`` compares an integer numpy cannot convert (outside signed 64 bits) with
+    a boolean array and raises OverflowError, for a detection on any image it looks up
+    (not one whose id its ``np.unique`` loses). ``keys``: the detections' class keys
+    (``detection_blocks._json_keys``), ``image`` their image indices. The annotations'
+    side: ``fetched_by_category``."""
+    if not truth.boolean_class_ids or np.asarray(keys).dtype.kind == "i" or not len(keys):
+        return
+    lost = truth.unique_lost_masks()
+    looked_up = np.ones(len(keys), bool) if lost is None else ~lost[0][image]
+    tested = {}
+    for n in np.flatnonzero(looked_up).tolist():
+        key = keys[n]
+        if key not in tested:
+            value = ids_module.key_value(key) if isinstance(key, str) else int(key)
+            try:
+                value in _BOOLEAN_ENTRIES  # noqa: B015  pycocotools' own test
+                tested[key] = False
+            except OverflowError:
+                tested[key] = True
+        if tested[key]:
+            raise InputError(
+                path,
+                f"category_id {ids_module.shown(key)}: pycocotools' getAnnIds compares the "
+                "detections' categories with the category ids as numpy holds them (a "
+                "boolean array here: every category id is true or false), and numpy cannot "
+                "convert this one (OverflowError): it raises",
+                record=locate(n),
+                field=field,
+            )

@@ -81,6 +81,8 @@ def load_predictions(
     }
     if unknown_images != "reject":  # the default keeps the keys of existing entries
         key["unknown_images"] = unknown_images
+    if truth.boolean_class_ids:  # the hash keeps 1 and true alike; this refuses more
+        key["boolean_categories"] = True
     return cached(
         cache_dir,
         [path],

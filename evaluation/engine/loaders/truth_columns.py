@@ -44,6 +44,12 @@ def _raise_if_scored(path, bad_rows, rows, n, unread=()):
         raise InputError(path, message, record=f"annotations[{hits[0]}]", field=field)
 
 
+def _all_booleans(kinds):
+    """Whether every category id as listed is ``true``/``false`` (``id_kinds``): numpy
+    then makes pycocotools' ``catIds`` a boolean array."""
+    return bool(len(kinds)) and bool((kinds == ids_module.BOOLEAN).all())
+
+
 def _cityscale_faults(city_rows, rows):
     """``GroundTruth.cityscale_faults`` from the loader's ``city_rows`` (file row ->
     {field: (message, truthy)}): per field, ``[box, record, message, truthy]`` of the
@@ -161,12 +167,9 @@ def read_truth(
     shown = _shown(image_ids, image_type)
     class_order = id_families.order(cols["class_ids"], class_type, listed_keys.get("class"), False)
     class_ids = cols["class_ids"][class_order]
+    class_repeats = None
     if class_type:
-        locate = lambda n: category_locate(int(class_order[n]))  # noqa: E731
-        regular = cols["box_class_ids"][~(cols["crowd"] | cols["ignore"])]  # iscrowd falsy
-        id_families.refuse_repeated_entries(
-            path, class_ids, listed_keys.get("class"), locate, regular
-        )
+        class_repeats = id_families.repeated_entries(class_ids, listed_keys.get("class"))
     lost = {}  # what pycocotools' np.unique loses: a COCO JSON file's ids only
     if fmt == "json":
         lost["image"] = lost_ids.unique_lost(shown, image_type, cols["image_id_kinds"][image_order])
@@ -295,6 +298,8 @@ def read_truth(
         unique_lost_classes=lost.get("class", (None,))[0],
         unique_lost_by_type=any(by_type for _, by_type, _ in lost.values()),
         unique_merged_images=lost.get("image", (None, None, None))[2],
+        class_repeats=class_repeats,
+        boolean_class_ids=fmt == "json" and _all_booleans(listed_classes[1]),
         box_policy=policy,
         box_counts={
             **checks.truth_box_counts(boxes, *frame, box_image),
