@@ -46,6 +46,9 @@ EFFECTS = {
     "operating_point": "how operating points are chosen",
     "averaged_classes": "the mean runs over different classes, so it is not the same average",
     "absent_classes": "different classes had no (counted) ground truth and were left out",
+    "repeated_classes": "classes pycocotools' np.unique lists more than once (a NaN category "
+    "id listed twice beside ids beyond 64 bits) count that often in every mean over "
+    "classes: a different weighting of the same per-class values",
 }
 
 #: Settings only level records hold (difficulty levels and pedestrian setups).
