@@ -11,6 +11,7 @@ import numpy as np
 import pytest
 
 from evaluation.engine import MatchRecords, match
+from evaluation.engine.protocols import PRESETS
 from evaluation.engine.reasons import BOX_REASONS, DETECTION_REASONS, attach
 from evaluation.engine.records import MissingReasons
 from evaluation.engine.version import ENGINE_VERSION
@@ -264,6 +265,7 @@ def test_export_rows_trace_every_detection_and_box(files, tmp_path):
         "engine_version": ENGINE_VERSION,
         "box_policy": "keep",
         "truth_fingerprint": truth.content_hash(),
+        "protocol_sha256": PRESETS["coco"].digest(),
     }
     assert lines[2]["box_id"] is None and lines[2]["iou"] is None
     assert lines[3] == {
@@ -286,6 +288,7 @@ def test_export_rows_trace_every_detection_and_box(files, tmp_path):
         "engine_version": ENGINE_VERSION,
         "box_policy": "keep",
         "truth_fingerprint": truth.content_hash(),
+        "protocol_sha256": PRESETS["coco"].digest(),
     }
     assert lines[4]["outcome"] == "missed" and lines[4]["detection"] is None
     for row, line in zip(rows, lines):
