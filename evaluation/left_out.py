@@ -85,8 +85,10 @@ def annotation_lines(counts):
 def detection_lines(counts):
     """Lines for a result's ``counts``: detections of classes the split does not list
     (``dropped_predictions``, ``dropped_classes``), images pycocotools' ``np.unique``
-    loses (``images_left_out``, from ``engine.provenance.lost_images``) and, for a
-    re-scored file, detections of images the split no longer holds."""
+    loses (``images_left_out``, from ``engine.provenance.lost_images``), classes its
+    category list gives more than once (``classes_repeated``, counted that often in
+    every mean) and, for a re-scored file, detections of images the split no longer
+    holds."""
     counts = counts or {}
     lines = []
     dropped = int(counts.get("dropped_predictions") or 0)
@@ -121,6 +123,15 @@ def detection_lines(counts):
             f"{_plural(unreadable, 'detection', 'detections')} with a score or field "
             "pycocotools would raise on left out: their image or class id is one its "
             "np.unique changes, so it never reads them"
+        )
+    repeated = (counts.get("classes_repeated") or {}).get("classes") or {}
+    if repeated:
+        named = ", ".join(f"{name} ({int(n)} times)" for name, n in sorted(repeated.items()))
+        lines.append(
+            f"{_plural(len(repeated), 'class', 'classes')} counted more than once in every "
+            "mean over classes, as pycocotools counts "
+            f"{'it' if len(repeated) == 1 else 'them'} (its np.unique of the category ids "
+            f"gives {'it' if len(repeated) == 1 else 'each'} more than one entry): {named}"
         )
     images = int(counts.get("dropped_unknown_images") or 0)
     if images:

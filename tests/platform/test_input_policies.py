@@ -606,3 +606,38 @@ def test_records_never_read_on_lost_ids_are_named():
     counts = {"boxes": {"predictions": {"unreadable_on_lost_ids": 1}}}
     (line,) = left_out.detection_lines(counts)
     assert line.startswith("1 detection with a score or field"), line
+
+
+def test_a_class_counted_more_than_once_is_named(tmp_path):
+    """A NaN category id listed twice beside an id beyond 64 bits: pycocotools 2.0.11's
+    np.unique keeps both entries (NaN != NaN) and counts that category twice in every
+    mean, and so does the engine under ``coco`` (tests/engine/test_unique_lost_ids.py);
+    the result's line says so, naming the class and how often."""
+    import json
+
+    from evaluation import left_out
+    from evaluation.engine import evaluate, load_predictions, load_truth
+
+    nan, box = float("nan"), [10, 10, 20, 20]  # json writes the literal NaN
+    split = {
+        "images": [{"id": 1, "width": 200, "height": 200}],
+        "categories": [
+            {"id": 2**64, "name": "wide"},
+            {"id": nan, "name": "odd"},
+            {"id": 1, "name": "car"},
+            {"id": nan, "name": "odd"},
+        ],
+        "annotations": [
+            {"id": 1, "image_id": 1, "category_id": nan, "bbox": box, "area": 400, "iscrowd": 0}
+        ],
+    }
+    (tmp_path / "gt.json").write_text(json.dumps(split))
+    detections = [{"image_id": 1, "category_id": nan, "bbox": box, "score": 0.9}]
+    (tmp_path / "dt.json").write_text(json.dumps(detections))
+    truth = load_truth(tmp_path / "gt.json")
+    result = evaluate(truth, load_predictions(tmp_path / "dt.json", truth), "coco")
+    lines = left_out.of_result(result)
+    assert any(line.startswith("1 class counted more than once") for line in lines), lines
+    assert any("odd (2 times)" in line for line in lines), lines
+    voc = evaluate(truth, load_predictions(tmp_path / "dt.json", truth), "voc")
+    assert not any("counted more than once" in line for line in left_out.of_result(voc))
