@@ -33,9 +33,10 @@ read them. ``check`` also raises, in the script's order, what ``cityscale_boxes`
 import numpy as np
 
 from . import cityscale_boxes
+from .data import ALIAS_IMAGE
 from .errors import InputError
 from .loaders import lost_ids
-from .pedestrian_setups import HEIGHT_EXPANSION  # Params.expFilter
+from .pedestrian_setups import HEIGHT_EXPANSION, category_one  # Params.expFilter
 
 
 def check(truth, predictions, protocol):
@@ -43,6 +44,10 @@ def check(truth, predictions, protocol):
     order; in a setup ``_prepare`` before ``evaluateImg``, then ``accumulate``'s
     boolean scores: ``Predictions.cityscale_booleans``), or return None."""
     faults = truth.cityscale_faults or {}
+    one = category_one(truth)
+    for box, record, message, _ in faults.get(lost_ids.CHANGED_VALUE, ()):
+        if truth.alias[box] & ALIAS_IMAGE and one[truth.box_class[box]]:  # read there
+            raise InputError(truth.source, message, record=record, field="image_id")
     booleans = predictions.cityscale_booleans()
     load, boxes = cityscale_boxes.first_raises(truth, predictions) or (None, {})
     if load is not None:  # loadRes, before any setup

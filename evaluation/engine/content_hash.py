@@ -148,11 +148,14 @@ def _hash(truth, mark, heights):
         + ([_canonical_nan(truth.vis_ratio)] if truth._vis_ratio_says_more() else [])
         + ([column] if (column := _faults_column(truth)).any() else [])
         + ([_canonical_nan(truth.height_key)] if heights else [])
+        + ([truth.alias.astype("<f8")] if (alias := truth.alias is not None) else [])
     )
     order = np.lexsort(columns.T[::-1])
     digest.update(np.ascontiguousarray(columns[order]).tobytes())
     if heights:  # told apart from a split whose other optional column holds the values
         digest.update(b"height_key")
+    if alias:  # boxes under a changed value (``GroundTruth.alias``): no split had one
+        digest.update(b"changed_value_alias")
     if attributes:
         regions = np.column_stack([truth.region_image.astype("<f8"), truth.regions])
         regions = regions[np.lexsort(regions.T[::-1])]

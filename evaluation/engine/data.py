@@ -10,6 +10,9 @@ import numpy as np
 
 from .score_conflicts import ScoreConflictReadings
 
+#: ``GroundTruth.alias`` bits: the image, the category written with a changed value.
+ALIAS_IMAGE, ALIAS_CLASS = 1, 2
+
 #: Per-box road attributes of ``GroundTruth`` (NaN where not given).
 ATTRIBUTES = ("occlusion", "truncation", "visibility")
 
@@ -140,6 +143,13 @@ class GroundTruth:
     #: annotation_index.rename_shared_names``); the rules that name classes read this
     #: one (``classes_named``). None: the same as ``classes``.
     category_names: tuple = None
+    #: Per box, where it is an annotation of an image or category the file does not
+    #: list, written with the value pycocotools' ``np.unique`` changed a lost id into
+    #: (``loaders.lost_ids.changed_value_refs``): ``ALIAS_IMAGE`` (its image),
+    #: ``ALIAS_CLASS`` (its category), both bits, else 0; ``box_image``/``box_class``
+    #: hold the lost entry it is scored under there. pycocotools' family scores it
+    #: (``left_out_boxes``), every other reading leaves it out. None: no such box.
+    alias: np.ndarray = None
 
     def __post_init__(self):
         if self.category_names is None:
@@ -179,14 +189,45 @@ class GroundTruth:
             object.__setattr__(self, "_lost_masks", masks)
         return masks
 
-    def looked_up(self, image, cls):
+    def looked_up(self, image, cls, alias=None):
         """Per (image index, class index) pair (arrays), whether pycocotools-family
-        ``evaluate`` looks it up at all (neither id lost: ``unique_lost_masks``)."""
+        ``evaluate`` looks it up at all (neither id lost: ``unique_lost_masks``).
+        ``alias``: per pair, whether it is a detection under a lost category's changed
+        value (``Predictions.alias``), which that class's entry finds."""
         lost = self.unique_lost_masks()
         image = np.asarray(image, np.int64)
         if lost is None:
             return np.ones(len(image), bool)
-        return ~(lost[0][image] | lost[1][np.asarray(cls, np.int64)])
+        classes = lost[1][np.asarray(cls, np.int64)]
+        if alias is not None:
+            classes = classes & ~alias
+        return ~(lost[0][image] | classes)
+
+    def left_out_boxes(self, pycocotools):
+        """Per box, whether a reading leaves it out (neither scored nor matched), or
+        None where it leaves none out. ``pycocotools`` (its family, ``tie_order=
+        "image"``): the boxes of images and categories its ``np.unique`` loses
+        (``unique_lost_masks``), but not those written with the changed value
+        (``alias``), which it scores under the lost entry. Every other reading (the VOC
+        devkit, KITTI, the toolbox) keeps every id: it leaves out only those
+        ``alias`` boxes, as it leaves out every annotation of an unlisted id."""
+        alias = self.alias
+        if not pycocotools:
+            return None if alias is None else alias != 0
+        lost = self.unique_lost_masks()
+        if lost is None:
+            return None
+        images, classes = lost[0][self.box_image], lost[1][self.box_class]
+        if alias is not None:
+            images = images & ((alias & ALIAS_IMAGE) == 0)
+            classes = classes & ((alias & ALIAS_CLASS) == 0)
+        return images | classes
+
+    def alias_boxes(self):
+        """Per box, whether it is an ``alias`` box (all False where none)."""
+        if self.alias is None:
+            return np.zeros(self.n_boxes, bool)
+        return self.alias != 0
 
     def unique_counted_images(self):
         """Per image, whether pycocotools-family ``evaluate`` keeps it as an entry of
@@ -346,6 +387,18 @@ class Predictions(ScoreConflictReadings):
     #: ``coco`` ``match`` refuses the file if such a detection matches a box (pycocotools
     #: raises there); None: none such.
     unwritable: np.ndarray = None
+    #: Per detection, whether its category is one the split does not list, written
+    #: with the value pycocotools' ``np.unique`` changed a lost category's id into
+    #: (``loaders.lost_ids.changed_keys``): ``cls`` holds that lost category, under
+    #: which pycocotools' family scores it; every other reading leaves it out (as any
+    #: detection of an unlisted class). None: no such detection.
+    alias: np.ndarray = None
+
+    def alias_detections(self):
+        """Per detection, whether it is an ``alias`` detection (all False where none)."""
+        if self.alias is None:
+            return np.zeros(len(self.score), bool)
+        return self.alias
 
     @property
     def clipped(self):

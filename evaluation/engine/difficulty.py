@@ -229,6 +229,7 @@ def evaluate_levels_with_samples(truth, predictions, protocol="kitti2d"):
     region_by_image = _group(truth.region_image, truth.n_images)
     region_corners = _corners(truth.regions)
     tallest_minimum = max(level.min_height for level in protocol.levels)
+    det_alias = predictions.alias_detections()
     per_level = {level.name: {} for level in protocol.levels}
     parts, classes = {}, []
     for name, thr in protocol.class_overlap.items():
@@ -236,11 +237,12 @@ def evaluate_levels_with_samples(truth, predictions, protocol="kitti2d"):
         if not own:
             continue
         near = [k for n in protocol.neighbours.get(name, ()) for k in _class_index(truth, n)]
-        gt_own = _mask(len(truth.classes), own)[truth.box_class]
-        gt_part = _mask(len(truth.classes), own + near)[truth.box_class]
-        det_own = _mask(len(truth.classes), own)[predictions.cls]
+        # boxes and detections under a changed value: the devkit keeps every id
+        gt_own = _mask(len(truth.classes), own)[truth.box_class] & ~truth.alias_boxes()
+        gt_part = _mask(len(truth.classes), own + near)[truth.box_class] & ~truth.alias_boxes()
+        det_own = _mask(len(truth.classes), own)[predictions.cls] & ~det_alias
         # a detection below any level's minimum height takes part at that level
-        det_part = det_own | (det_height < tallest_minimum)
+        det_part = det_own | ((det_height < tallest_minimum) & ~det_alias)
         scenes = []  # per image: what every level needs, overlaps computed once
         for image in range(truth.n_images):
             g = gt_by_image[image]
@@ -256,7 +258,7 @@ def evaluate_levels_with_samples(truth, predictions, protocol="kitti2d"):
                 | (truth.boxes[:, 3] <= level.min_height)
             )
             counted_all = gt_own & ~hard
-            small_all = det_height < level.min_height
+            small_all = (det_height < level.min_height) & ~det_alias
             take_all = small_all | det_own
             images = []
             for image, g, d, iou in scenes:

@@ -33,8 +33,9 @@ _DENSE_GROUPS = 20_000_000  # up to this many (image, class) groups, index them 
 _REGULAR = np.int32(1) << 24  # added to the key of a regular (non-ignored) box
 
 
-def _candidate_pairs(truth, det_boxes, det_group, protocol, min_threshold):
-    """All (detection, box) pairs of one image and class with IoU >= min_threshold."""
+def _candidate_pairs(truth, det_boxes, det_group, protocol, min_threshold, left_out=None):
+    """All (detection, box) pairs of one image and class with IoU >= min_threshold
+    (none with a box the reading leaves out, ``left_out``)."""
     n_classes = len(truth.classes)
     gt_group = truth.box_image.astype(np.int64) * n_classes + truth.box_class
     gt_order = np.argsort(gt_group, kind="stable")
@@ -59,6 +60,8 @@ def _candidate_pairs(truth, det_boxes, det_group, protocol, min_threshold):
         pixel_offset=protocol.pixel_offset,
     )
     keep = (iou >= min_threshold) | np.isnan(iou)  # NaN: see ``sequential_walk``
+    if left_out is not None:
+        keep &= ~left_out[pair_gt]
     return pair_det[keep], pair_gt[keep], iou[keep]
 
 
@@ -111,14 +114,17 @@ def match(truth, predictions, protocol, *, reasons=True):
     thresholds = protocol.threshold_table(truth.classes, truth.category_names)
     effective = np.minimum(thresholds, 1 - 1e-10)  # pycocotools caps at 1 - 1e-10
 
+    scored, left_out = _reading(truth, predictions, protocol)
+    positions = None
+    if scored is not None and not scored.all():  # never looked up: as if not in the file
+        from .shards import predictions_slice
+
+        predictions, positions = predictions_slice(predictions, 0, 0, np.flatnonzero(scored))
     exact = predictions.score_order(protocol)
     order, rank, key = orders(predictions, n_classes, protocol.tie_order, exact)
     cap = protocol.max_detections_limit
-    lost = _lost(truth, protocol)
-    if cap is not None or lost is not None:
-        keep = np.ones(len(order), bool) if cap is None else rank < cap
-        if lost is not None:  # pycocotools never looks these images and classes up
-            keep &= ~(lost[0][predictions.image[order]] | lost[1][predictions.cls[order]])
+    if cap is not None:
+        keep = rank < cap
         order, rank = order[keep], rank[keep]
         key = None if key is None else key[keep]
     det_image = predictions.image[order]
@@ -137,13 +143,13 @@ def match(truth, predictions, protocol, *, reasons=True):
     base_ignore = truth.crowd | truth.ignore
     if protocol.difficult_ignored:
         base_ignore = base_ignore | truth.difficult
-    if lost is not None:
-        base_ignore = base_ignore | lost[0][truth.box_image] | lost[1][truth.box_class]
+    if left_out is not None:
+        base_ignore = base_ignore | left_out
     gt_ignored = base_ignore[None, :] | _outside(truth.box_area, protocol.area_ranges)
     det_outside = _outside(det_area, protocol.area_ranges)
 
     pair_det, pair_gt, pair_iou_ = _candidate_pairs(
-        truth, det_boxes, det_group, protocol, float(effective.min(initial=1.0))
+        truth, det_boxes, det_group, protocol, float(effective.min(initial=1.0)), left_out
     )
     undefined = np.isnan(pair_iou_)
     if protocol.matching == BEST_OVERLAP:  # the devkit's "ov>ovmax" is false for NaN
@@ -183,6 +189,7 @@ def match(truth, predictions, protocol, *, reasons=True):
                 effective,
                 gt_ignored,
                 det_free,
+                left_out,
             )
         )
 
@@ -199,7 +206,7 @@ def match(truth, predictions, protocol, *, reasons=True):
         det_image=det_image.astype(np.int32),
         det_score=predictions.score[order],
         det_rank=rank.astype(np.int32),
-        det_order=order.astype(np.int64),
+        det_order=(order if positions is None else positions[order]).astype(np.int64),
         det_key=key,
         det_overflow=_overflow(predictions, protocol, order),
         det_outside=det_outside,
@@ -217,13 +224,27 @@ def match(truth, predictions, protocol, *, reasons=True):
     return _reasons.attach(records, truth, det_boxes, protocol) if reasons else records
 
 
-def _lost(truth, protocol):
-    """``(per image, per class)``: whether pycocotools' rules leave it out
-    (``tie_order="image"``, its family: ``GroundTruth.unique_lost_masks``, ids its
-    ``np.unique`` loses), or None when nothing is: their boxes count as ignored and
-    their detections are not scored, as its ``evaluateImg`` finds neither under an id
-    numpy changed."""
-    return truth.unique_lost_masks() if protocol.tie_order == "image" else None
+def _reading(truth, predictions, protocol):
+    """``(scored, left_out)``: per detection, whether the protocol's reference looks it
+    up, and per box, whether it leaves it out (``GroundTruth.left_out_boxes``); None
+    where every one is. pycocotools' family (``tie_order="image"``) never finds the
+    images and classes its ``np.unique`` loses (``GroundTruth.unique_lost_masks``:
+    their boxes count as ignored, their detections are not scored) but finds, under
+    those entries, the boxes and detections written with the value numpy changed
+    their id into (``GroundTruth.alias``, ``Predictions.alias``); every other reading
+    keeps every id and leaves those out, as any record of an unlisted id."""
+    family = protocol.tie_order == "image"
+    left_out = truth.left_out_boxes(family)
+    if family:
+        lost = truth.unique_lost_masks()
+        scored = (
+            None
+            if lost is None
+            else truth.looked_up(predictions.image, predictions.cls, predictions.alias)
+        )
+    else:
+        scored = None if predictions.alias is None else ~predictions.alias
+    return scored, left_out
 
 
 def _void_boxes(truth, protocol):

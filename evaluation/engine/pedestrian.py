@@ -154,6 +154,7 @@ def evaluate_setups_with_samples(truth, predictions, protocol="miss-rate"):
         gt_resized = standardise_aspect(truth.boxes, protocol.aspect_ratio)
     gt_by_image = _group(truth.box_image, n_images)
     det_by_image = _group(predictions.image, n_images)
+    det_alias = predictions.alias_detections()
     region_by_image = _group(truth.region_image, n_images)
     levels = {s.name: {} for s in protocol.setups}
     parts, classes = {}, []
@@ -161,6 +162,8 @@ def evaluate_setups_with_samples(truth, predictions, protocol="miss-rate"):
         classes.append(truth.classes[k])
         own = truth.box_class == k
         part = own | np.isin(truth.box_class, near)
+        if truth.alias is not None:  # under a changed value: the toolbox keeps every id
+            own, part = own & ~truth.alias_boxes(), part & ~truth.alias_boxes()
         scenes = []  # per image: its boxes of the class or a neighbour, its detections
         for image in range(n_images):
             if lost is not None and lost[image]:
@@ -168,7 +171,7 @@ def evaluate_setups_with_samples(truth, predictions, protocol="miss-rate"):
             g = gt_by_image[image]
             g = g[part[g]]
             d = det_by_image[image]
-            d = d[predictions.cls[d] == k]
+            d = d[(predictions.cls[d] == k) & ~det_alias[d]]
             if protocol.variant == "toolbox":  # MATLAB's sort: NaN scores first
                 d = d[matlab_descending(predictions.score[d])]
             elif exact is not None and len(d) and exact[0][d[0]] >= 0:  # the script's ranks

@@ -36,6 +36,7 @@ SPILL_ROW = np.dtype(
         ("area", "<f8"),  # the mask's area when the file gives masks, else unused
         ("free", "u1"),  # the detection's id leaves a matched box free (as_given)
         ("unwritable", "<i8"),  # its record if numpy cannot write its id (as_given)
+        ("alias", "u1"),  # under a lost category's changed value (Predictions.alias)
         ("position", "<i8"),
     ]
 )
@@ -74,12 +75,13 @@ def stream_pieces(path, truth, ranges, directory, *, name="piece-{k}.npz", **opt
     masks = False  # the file is read as masks (every block alike)
     frees = False  # some detection's id leaves a box free (a file read as given)
     bad_ids = False  # some detection's id cannot be written as a float (as given)
+    aliases = False  # some detection is under a changed value (Predictions.alias)
     policy = options.get("boxes") or truth.box_policy
     suspects = np.zeros(len(truth.classes), bool)  # classes holding a score >= 2**53
     infinite = False  # some loaded box is infinite
     tops = boolean_scores.Tops(truth)  # booleans pycocotools cannot sort
     for block in stream_predictions(path, truth, **options):
-        tops.add(block.image, block.cls, block.score)
+        tops.add(block.image, block.cls, block.score, block.alias)
         suspects[block.cls[exact_scores.suspect(block.score)]] = True
         infinite = infinite or block.infinite_box  # an integer beyond float64?
         rows = np.empty(len(block.score), SPILL_ROW)
@@ -91,6 +93,8 @@ def stream_pieces(path, truth, ranges, directory, *, name="piece-{k}.npz", **opt
         rows["free"] = 0 if block.free is None else block.free
         bad_ids = bad_ids or block.unwritable is not None
         rows["unwritable"] = -1 if block.unwritable is None else block.unwritable
+        aliases = aliases or block.alias is not None
+        rows["alias"] = 0 if block.alias is None else block.alias
         rows["position"] = np.arange(totals["n"], totals["n"] + len(rows), dtype=np.int64)
         shard = np.searchsorted(starts, block.image, side="right") - 1
         by_shard = np.argsort(shard, kind="stable")  # file order within each shard
@@ -136,6 +140,7 @@ def stream_pieces(path, truth, ranges, directory, *, name="piece-{k}.npz", **opt
             area=np.ascontiguousarray(rows["area"]) if masks else None,
             free=rows["free"].astype(bool) if frees else None,
             unwritable=np.ascontiguousarray(rows["unwritable"]) if bad_ids else None,
+            alias=rows["alias"].astype(bool) if aliases else None,
         )
         positions = np.ascontiguousarray(rows["position"])
         sliced = dataclasses.replace(

@@ -11,6 +11,7 @@ says, in words, which settings differ and what each does to the numbers
 import numpy as np
 
 from . import effects, json_file
+from .data import ALIAS_CLASS, ALIAS_IMAGE
 from .errors import InputError
 from .protocols import BEST_OVERLAP, get_protocol
 from .version import ENGINE_VERSION
@@ -66,7 +67,9 @@ def protocol_record(protocol, truth, predictions, records, result):
     n_pos = records.n_positives(0)
     absent = {}
     flags = "crowd, difficult or ignore" if protocol.difficult_ignored else "crowd or ignore"
-    lost = set(truth.unique_lost_classes.tolist()) if protocol.tie_order == "image" else ()
+    lost = set(truth.unique_lost_classes.tolist()) if protocol.tie_order == "image" else set()
+    if truth.alias is not None:  # a lost class scored under its changed value
+        lost -= set(truth.box_class[(truth.alias & ALIAS_CLASS) != 0].tolist())
     undefined = _undefined_classes(protocol, truth.classes, result)
     for k, name in enumerate(truth.classes):
         if k in lost:
@@ -239,15 +242,52 @@ def left_out_counts(truth, reference="pycocotools 2.0.11"):
         ("classes", truth.unique_lost_classes, truth.class_ids, truth.box_class),
     ):
         if len(lost):
+            own = np.isin(column, lost) & ~truth.alias_boxes()  # not under a changed value
             out[f"{what}_left_out"] = {
                 what: len(lost),
-                "truth_boxes": int(np.isin(column, lost).sum()),
+                "truth_boxes": int(own.sum()),
                 "ids": [str(v) for v in ids[lost[:SHOWN_LOST_IDS]].tolist()],  # exact in JS too
                 "reason": LOST_REASON.format(
                     reference, "image" if what == "images" else "category"
                 ),
             }
     return out
+
+
+CHANGED_VALUE_REASON = {
+    True: "pycocotools 2.0.11's np.unique changes a listed {} id into the value these "
+    "records are written with (their image or category is not listed), and evaluate() "
+    "finds them under that id: scored there, as there",
+    False: "these records name an image or category the file does not list (written with "
+    "the value pycocotools' np.unique changes a listed id into); this protocol's "
+    "reference keeps every id and leaves them out, as every record of an unlisted id",
+}
+
+
+def changed_value_counts(truth, predictions, protocol):
+    """``counts["under_changed_value"]``: the boxes (``GroundTruth.alias``) and
+    detections (``Predictions.alias``) of an unlisted image or category written with
+    the value pycocotools' ``np.unique`` changed a lost id into, and whether
+    ``protocol`` scored them (pycocotools' family, ``tie_order="image"``) or left them
+    out (every other reading); nothing where there is none."""
+    boxes = truth.alias_boxes()
+    dets = predictions.box_counts.get("under_changed_value", 0)  # streamed ones too
+    if not (boxes.any() or dets):
+        return {}
+    scored = get_protocol(protocol).tie_order == "image"
+    families = []
+    if truth.alias is not None and (truth.alias & ALIAS_IMAGE).any():
+        families.append("image")
+    if dets or (truth.alias is not None and (truth.alias & ALIAS_CLASS).any()):
+        families.append("category")
+    return {
+        "under_changed_value": {
+            "truth_boxes": int(boxes.sum()),
+            "detections": int(dets),
+            "scored": scored,
+            "reason": CHANGED_VALUE_REASON[scored].format(" or ".join(families)),
+        }
+    }
 
 
 def annotate(result, truth, predictions, records, protocol):
@@ -260,6 +300,7 @@ def annotate(result, truth, predictions, records, protocol):
             "classes": repeated,
             "reason": REPEATED_REASON,
         }
+    result["counts"].update(changed_value_counts(truth, predictions, protocol))
     result["protocol_record"] = protocol_record(protocol, truth, predictions, records, result)
     result["engine_version"] = ENGINE_VERSION
     result["truth_fingerprint"] = truth.content_hash()

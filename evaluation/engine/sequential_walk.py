@@ -66,7 +66,17 @@ def refuse_unwritable_ids(truth, predictions, order, matched, boxes):
 
 
 def walk_sequentially(
-    groups, det_group, det_boxes, rank, det_cls, truth, protocol, effective, gt_ignored, free=None
+    groups,
+    det_group,
+    det_boxes,
+    rank,
+    det_cls,
+    truth,
+    protocol,
+    effective,
+    gt_ignored,
+    free=None,
+    left_out=None,
 ):
     """Matches in the (image, class) groups where some IoU is NaN, or some detection's
     id leaves the box it matches free (``free``: ``gtm[t, m] = d['id']`` is not above
@@ -86,6 +96,8 @@ def walk_sequentially(
     n_slots, n_areas = len(effective), len(gt_ignored)
     n_classes = len(truth.classes)
     gt_group = truth.box_image.astype(np.int64) * n_classes + truth.box_class
+    if left_out is not None:  # boxes the reading leaves out (``matching._reading``)
+        gt_group[left_out] = -1
     for group in groups.tolist():
         dets = np.flatnonzero(det_group == group)
         dets = dets[np.argsort(rank[dets], kind="stable")]

@@ -78,6 +78,7 @@ def truth_slice(truth, start, stop):
         **{name: getattr(truth, name)[box_index] for name in _BOX_FIELDS},
         vis_ratio=None if truth.vis_ratio is None else truth.vis_ratio[box_index],
         height_key=None if truth.height_key is None else truth.height_key[box_index],
+        alias=None if truth.alias is None else truth.alias[box_index],
         cityscale_faults=_faults_slice(truth.cityscale_faults, box_index),
         region_image=truth.region_image[regions],
         regions=truth.regions[regions],
@@ -117,6 +118,7 @@ def predictions_slice(predictions, start, stop, positions=None):
         area=None if predictions.area is None else predictions.area[positions],
         free=None if predictions.free is None else predictions.free[positions],
         unwritable=None if predictions.unwritable is None else predictions.unwritable[positions],
+        alias=None if predictions.alias is None else predictions.alias[positions],
         score_conflicts=exact_scores.restrict(predictions.score_conflicts, positions),
     )
     return sliced, positions

@@ -403,14 +403,14 @@ def test_random_category_id_lists_equal_pycocotools(tmp_path, data, text):
         ([1, 5], ["c\x00", "d"], "category_id", "c"),
     ],
 )
-def test_an_unlisted_id_equal_to_a_changed_value_is_refused(
+def test_an_unlisted_id_equal_to_a_changed_value_is_scored_as_pycocotools_scores_it(
     tmp_path, images, categories, where, value
 ):
     """pycocotools' ``imgToAnns`` and ``_gts`` hold every annotation, listed or not, so
     the value numpy changed a lost id into finds an unlisted image's or category's
     annotations, and pycocotools 2.0.11 scores them under the lost id (its numbers move:
-    checked here); the VOC protocols leave them out. One ground truth cannot hold both:
-    the file is refused, naming the annotation and the field (known deviation before)."""
+    checked here). Refused before engine 2.19.0; now scored so under ``coco`` (every
+    number equal), left out under ``voc`` (``test_changed_value_aliases.py``)."""
     split, detections = _split(images)
     if where == "category_id":
         split["categories"] = [{"id": c, "name": f"c{n}"} for n, c in enumerate(categories)]
@@ -428,9 +428,11 @@ def test_an_unlisted_id_equal_to_a_changed_value_is_refused(
     (tmp_path / "gt-without.json").write_text(json.dumps(split))
     without = pycocotools_eval(tmp_path / "gt-without.json", tmp_path / "dt.json")
     assert not np.array_equal(reference.eval["recall"], without.eval["recall"])  # scored
-    with pytest.raises(InputError, match="np.unique changes the listed id") as error:
-        load_truth(tmp_path / "gt.json")
-    assert (error.value.record, error.value.field) == (f"annotations[{len(images)}]", where)
+    truth = load_truth(tmp_path / "gt.json")
+    ours = evaluate(truth, load_predictions(tmp_path / "dt.json", truth), "coco")
+    for key, expected in zip(COCO_SUMMARY_KEYS, reference.stats):
+        assert as_reference(ours["summary"][key]) == pytest.approx(expected, abs=1e-12), key
+    assert ours["counts"]["under_changed_value"]["truth_boxes"] == 1
 
 
 @pytest.mark.parametrize(
@@ -444,8 +446,8 @@ def test_a_detection_under_a_changed_value_is_refused_where_pycocotools_raises(
     looked-up image is found by pycocotools' ``in catIds`` and ``_dts`` under the lost
     2^53 + 1; with a text or null score ``evaluateImg`` raises there (refused here,
     naming the record), and so it does on a box ``computeIoU`` cannot read (five
-    numbers, text inside: found by the fifth red team); readable, it changes nothing,
-    that entry having no ground truth, and is left out as before (every number equal)."""
+    numbers, text inside: found by the fifth red team); readable, it is scored there
+    (a false positive of that entry: every number equal)."""
     categories = [0.5, 2**53 + 1]
     split, detections = _class_split(categories)
     gt, dt = tmp_path / "gt.json", tmp_path / "dt.json"
@@ -455,15 +457,16 @@ def test_a_detection_under_a_changed_value_is_refused_where_pycocotools_raises(
     dt.write_text(json.dumps([*detections, stray]))
     with pytest.raises(Exception):  # noqa: B017  pycocotools' own error, whatever it is
         pycocotools_eval(gt, dt)
-    with pytest.raises(InputError, match="np.unique changes the listed id") as error:
+    with pytest.raises(InputError) as error:
         load_predictions(dt, truth)
     assert error.value.record == f"record {len(detections)}"
-    assert error.value.field == "category_id"
+    assert error.value.field == ("score" if bbox == BOX else "bbox")
     dt.write_text(json.dumps([*detections, {**stray, "score": 0.99, "bbox": BOX}]))
     reference = pycocotools_eval(gt, dt)
     ours = evaluate(truth, load_predictions(dt, truth), "coco")
     for key, expected in zip(COCO_SUMMARY_KEYS, reference.stats):
         assert as_reference(ours["summary"][key]) == pytest.approx(expected, abs=1e-12), key
+    assert ours["counts"]["under_changed_value"]["detections"] == 1
 
 
 def test_a_box_beyond_float64_on_a_lost_image_is_not_refused(tmp_path):

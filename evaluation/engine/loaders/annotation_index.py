@@ -70,6 +70,7 @@ PER_ANNOTATION = (
     "vis_ratio_kind",
     "height_key",
     "height_given",
+    "box_alias",
 )
 
 
@@ -185,6 +186,8 @@ def rename_shared_names(names, shown_ids):
 def take(cols, rows):
     """``cols`` with every per-annotation column reduced to ``rows``."""
     for name in PER_ANNOTATION:
+        if name not in cols:  # ``box_alias``: only where some annotation is one
+            continue
         values = cols[name]
         cols[name] = values[rows] if isinstance(values, np.ndarray) else [values[i] for i in rows]
     return cols

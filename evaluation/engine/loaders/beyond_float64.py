@@ -194,6 +194,16 @@ def truth_refusal(truth):
     return _truth_refusal(str(truth.source), stat.st_mtime_ns, stat.st_size)
 
 
+def _entries(ids):
+    """The values ``evaluate``'s ``list(np.unique(ids))`` looks up (as Python values:
+    a float64 entry finds the int of its value, as pycocotools' dicts do)."""
+    ids = list(ids)
+    try:
+        return set(np.unique(ids).tolist()) if ids else set()
+    except (TypeError, ValueError):  # kinds numpy cannot sort together: none changed
+        return set()
+
+
 @functools.lru_cache(maxsize=8)
 def _truth_refusal(path, _mtime, _size):
     try:
@@ -202,6 +212,9 @@ def _truth_refusal(path, _mtime, _size):
         annotations = split["annotations"]
         images = looked_up_ids((image["id"] for image in split["images"]), distinct=True)
         categories = looked_up_ids(category["id"] for category in split["categories"])
+        # the values np.unique changed a lost id into find unlisted ids written so
+        images |= _entries(dict.fromkeys(image["id"] for image in split["images"]))
+        categories |= _entries(category["id"] for category in split["categories"])
         last = {ann["id"]: k for k, ann in enumerate(annotations)}  # createIndex
     except (ValueError, OSError, RecursionError, KeyError, TypeError):
         return None

@@ -56,8 +56,9 @@ class Tops:
         self._held = self._kept = 0
         self.zero_one = np.zeros(self._n, bool)  # per class: some score is 0 or 1
 
-    def add(self, image, cls, score):
-        seen = self._truth.looked_up(image, cls)  # ids np.unique loses: never joined
+    def add(self, image, cls, score, alias=None):
+        # ids np.unique loses: never joined; a changed value's (``alias``) is
+        seen = self._truth.looked_up(image, cls, alias)
         if not seen.all():
             image, cls = np.asarray(image)[seen], np.asarray(cls)[seen]
             score = np.asarray(score)[seen]
@@ -101,7 +102,7 @@ class Tops:
     def _truth_groups(self):
         """``(group, class)`` of each box its reference looks up (``looked_up``)."""
         truth = self._truth
-        seen = truth.looked_up(truth.box_image, truth.box_class)
+        seen = _boxes_looked_up(truth)
         image, cls = truth.box_image[seen].astype(np.int64), truth.box_class[seen]
         return image * self._n + cls, cls
 
@@ -167,7 +168,7 @@ def entries(path, truth, classes, wide, rows=None):
     rank = uncompared.ranks(group, rows["score"])
     is_bool = rows["kind"] == exact_scores._BOOL
     out = []
-    seen = truth.looked_up(truth.box_image, truth.box_class)
+    seen = _boxes_looked_up(truth)
     for k in np.asarray(classes).tolist():
         mine = rows["cls"] == k
         g, r, b, record = group[mine], rank[mine], is_bool[mine], rows["record"][mine]
@@ -193,10 +194,18 @@ def _looked_up_rows(truth, rows, big):
     class whose id ``np.unique`` loses (``GroundTruth.looked_up``): pycocotools and the
     CityPersons script never fetch them, so never join their scores. ``big`` (keyed by
     record) is passed on as it is."""
-    seen = truth.looked_up(rows["image"], rows["cls"])
+    seen = truth.looked_up(rows["image"], rows["cls"], rows.get("alias"))
     if seen.all():
         return rows, big
     return {name: column[seen] for name, column in rows.items()}, big
+
+
+def _boxes_looked_up(truth):
+    """Per box, whether pycocotools' ``evaluate`` finds it (``GroundTruth.
+    left_out_boxes``: not of an id its ``np.unique`` loses, or written with the value
+    it changed one into)."""
+    left_out = truth.left_out_boxes(True)
+    return np.ones(truth.n_boxes, bool) if left_out is None else ~left_out
 
 
 def _holds_literal(path, size=1 << 22):

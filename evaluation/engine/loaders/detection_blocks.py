@@ -65,6 +65,8 @@ class Resolved:
     unwritable: np.ndarray = None  # as ``Raw.unwritable``; None: none such
     #: some record's box as read is infinite, left out or not (``beyond_float64``)
     infinite_box: bool = False
+    #: per record, ``Predictions.alias``; None: none such
+    alias: np.ndarray = None
 
 
 #: The count (``box_counts``) of detections whose area a reading gave, by reading.
@@ -189,6 +191,11 @@ LOOKUP, SCORES, UNFIT, POLICY = range(4)
 UNREADABLE_ON_LOST = "unreadable_on_lost_ids"
 
 
+#: ``box_counts`` key: detections under a lost category's changed value
+#: (``Predictions.alias``; ``provenance.changed_value_counts`` says per protocol).
+UNDER_CHANGED_VALUE = "under_changed_value"
+
+
 def _narrowed(keep, columns, locate):
     """``columns`` (arrays; None stays None) at the rows ``keep`` marks, and ``locate``
     (row -> record) of the narrowed rows."""
@@ -197,13 +204,13 @@ def _narrowed(keep, columns, locate):
     return narrowed, lambda i: locate(int(rows[i]))
 
 
-def _unreadable_on_lost(truth, image, cls, score, unfit, kept_at):
+def _unreadable_on_lost(truth, image, cls, score, unfit, kept_at, alias=None):
     """Per record, whether its score or a field is one pycocotools would raise on
     (``unread_fields.bad_scores``, ``raw.unfit``) but it never reads it: its image or
     class id is one its ``np.unique`` loses (``GroundTruth.looked_up``), so
     ``evaluate`` never fetches it. Such records are left out and counted; every other
     detection of a lost image stays (the VOC protocols score those images)."""
-    seen = truth.looked_up(image, cls)
+    seen = truth.looked_up(image, cls, alias)
     if seen.all():
         return np.zeros(len(score), bool)
     bad = unread_fields.bad_scores(score)
@@ -228,7 +235,15 @@ def _resolve(path, truth, raw, policy, unknown_classes, unknown_images, rank_of,
     else:
         checks.require_found(path, found, raw.shown, locate, fields["image"], "image")
     cls, found = checks.resolve(path, class_keys, raw.known_classes, locate, "", "")
-    dropped, dropped_classes = 0, ()
+    dropped, dropped_classes, alias = 0, (), None
+    if not found.all():
+        aliases = None
+        if unknown_classes != "reject":
+            aliases = _changed_value_classes(truth, raw, image, class_keys, found)
+        if aliases is not None:  # scored under the lost category by pycocotools
+            alias = aliases[0]
+            cls = np.where(alias, aliases[1], cls)
+            found = found | alias
     if not found.all():
         unlisted = np.flatnonzero(~found)
         lost_ids.refuse_uncomparable_detections(
@@ -239,13 +254,6 @@ def _resolve(path, truth, raw, policy, unknown_classes, unknown_images, rank_of,
             lambda i: locate(int(unlisted[i])),
             fields["class"],
         )
-        changed = lost_ids.changed_class_keys(truth)
-        if changed:  # a lost category's changed value an unlisted class may hold
-            unread = unread_fields.bad_scores(score)  # what pycocotools raises on reading
-            if unfit is not None:
-                unread |= uncompared.fields(unfit[kept_at])
-            where = (image, class_keys, unread, locate, fields["class"])
-            lost_ids.refuse_changed_value_detections(path, truth, changed, found, *where)
         if unknown_classes == "reject":
             checks.fail_at(
                 path,
@@ -256,14 +264,14 @@ def _resolve(path, truth, raw, policy, unknown_classes, unknown_images, rank_of,
             )
         dropped = int((~found).sum())
         dropped_classes = distinct_keys(class_keys[~found])
-        columns = (image, cls, boxes, score, area, free, bad_id, kept_at)
+        columns = (image, cls, boxes, score, area, free, bad_id, kept_at, alias)
         columns, locate = _narrowed(found, columns, locate)
-        image, cls, boxes, score, area, free, bad_id, kept_at = columns
-    unreadable = _unreadable_on_lost(truth, image, cls, score, unfit, kept_at)
+        image, cls, boxes, score, area, free, bad_id, kept_at, alias = columns
+    unreadable = _unreadable_on_lost(truth, image, cls, score, unfit, kept_at, alias)
     if unreadable.any():  # pycocotools never fetches them: left out, counted
-        columns = (image, cls, boxes, score, area, free, bad_id, kept_at)
+        columns = (image, cls, boxes, score, area, free, bad_id, kept_at, alias)
         columns, locate = _narrowed(~unreadable, columns, locate)
-        image, cls, boxes, score, area, free, bad_id, kept_at = columns
+        image, cls, boxes, score, area, free, bad_id, kept_at, alias = columns
     at[0] = SCORES
     checks.fail_at(  # a bad score only on a detection of a class pycocotools evaluates
         path,
@@ -279,7 +287,7 @@ def _resolve(path, truth, raw, policy, unknown_classes, unknown_images, rank_of,
         bad = np.flatnonzero(uncompared.fields(unfit[kept_at]))
         if len(bad):
             if rank_of is None:
-                rank = uncompared.ranks(image.astype(np.int64) * len(truth.classes) + cls, score)
+                rank = uncompared.ranks(_groups(truth, image, cls, alias), score)
                 rank = rank[bad]
             else:
                 rank = rank_of(raw.base + kept_at[bad])
@@ -289,9 +297,9 @@ def _resolve(path, truth, raw, policy, unknown_classes, unknown_images, rank_of,
                 raise InputError(path, message, record=locate(int(compared[0])), field=field)
             keep = np.ones(len(score), bool)
             keep[bad] = False
-            columns = (image, cls, boxes, score, area, free, bad_id)
+            columns = (image, cls, boxes, score, area, free, bad_id, alias)
             columns, locate = _narrowed(keep, columns, locate)
-            image, cls, boxes, score, area, free, bad_id = columns
+            image, cls, boxes, score, area, free, bad_id, alias = columns
             uncompared_unfit = len(bad)
     at[0] = POLICY
     checks.check_boxes(path, boxes, locate, fields["bbox"], policy)
@@ -327,13 +335,33 @@ def _resolve(path, truth, raw, policy, unknown_classes, unknown_images, rank_of,
             **(raw.extra_counts or {}),
             **({UNREADABLE_ON_LOST: int(unreadable.sum())} if unreadable.any() else {}),
             **({} if free is None else {as_given.FREE: int(free.sum())}),
+            **({UNDER_CHANGED_VALUE: int(alias.sum())} if alias is not None else {}),
         },
         dropped_classes=dropped_classes,
         area=area,
         free=free if free is not None and free.any() else None,
         unwritable=bad_id if bad_id is not None and (bad_id >= 0).any() else None,
         infinite_box=bool(np.isinf(raw.boxes).any()),
+        alias=alias if alias is not None and alias.any() else None,
     )
+
+
+def _changed_value_classes(truth, raw, image, class_keys, found):
+    """``lost_ids.changed_value_classes`` of a COCO JSON block (the only results
+    pycocotools reads; a CSV or label file names classes, not ids), else None."""
+    if raw.fields.get("class") != "category_id":
+        return None
+    return lost_ids.changed_value_classes(truth, image, class_keys, found)
+
+
+def _groups(truth, image, cls, alias=None):
+    """Per record, its (image, class) entry of pycocotools' ``_dts``: a detection under
+    a changed value (``alias``) is one apart from the lost category's own."""
+    n_classes = len(truth.classes)
+    group = image.astype(np.int64) * n_classes + cls
+    if alias is not None:
+        group = np.where(alias, group + truth.n_images * n_classes, group)
+    return group
 
 
 def raw_blocks(path, truth, fmt, wide):
@@ -371,7 +399,6 @@ def file_ranks(path, truth, raws, exact=None):
     """``uncompared.FileRanks`` over the ``Raw`` blocks ``raws()`` gives (a JSON file's,
     read again when needed, or a whole file's one block); ``exact``: as for
     ``uncompared.ranks`` (``exact_scores.cap_values``)."""
-    n_classes = len(truth.classes)
 
     def blocks():
         for raw in raws():
@@ -381,7 +408,12 @@ def file_ranks(path, truth, raws, exact=None):
             cls, found_class = checks.resolve(
                 path, raw.class_keys, raw.known_classes, raw.locate, "", ""
             )
-            group = image.astype(np.int64) * n_classes + cls
+            aliases = _changed_value_classes(truth, raw, image, raw.class_keys, found_class)
+            alias = None
+            if aliases is not None:
+                alias, found_class = aliases[0], found_class | aliases[0]
+                cls = np.where(alias, aliases[1], cls)
+            group = _groups(truth, image, cls, alias)
             group[~(found_image & found_class)] = -1
             n = len(raw.score)
             unfit = raw.unfit if raw.unfit is not None else np.full(n, None, object)

@@ -13,6 +13,7 @@ from . import (
     coco_json,
     detection_blocks,
     json_literals,
+    lost_ids,
     mask_results,
     result_readings,
     uncompared,
@@ -56,8 +57,9 @@ def _affected(path, truth, classes, wide):
     in neither), ``row`` (the row of the file as laid out for loading, the record
     but for results read as given: ``_blocks``),
     ``score`` (float64), ``kind`` (float, int or bool in the file), ``height`` (the
-    file's ``bbox[3]``) and ``big``: record -> the exact Python int of every integer
-    score of magnitude >= 2**53 (the others are exact in float64)."""
+    file's ``bbox[3]``), ``alias`` (``Predictions.alias``) and ``big``: record -> the
+    exact Python int of every integer score of magnitude >= 2**53 (the others are exact
+    in float64)."""
     parts, big, base, loaded = [], {}, 0, 0
     wanted = np.zeros(len(truth.classes), bool)
     wanted[list(classes)] = True
@@ -65,13 +67,18 @@ def _affected(path, truth, classes, wide):
         raw = detection_blocks.json_raw(truth, *columns, base=base)
         image, found_i = checks.resolve(path, raw.image_ids, raw.known_images, raw.locate, "", "")
         cls, found_c = checks.resolve(path, raw.class_keys, raw.known_classes, raw.locate, "", "")
+        alias = np.zeros(len(found_c), bool)
+        aliases = lost_ids.changed_value_classes(truth, image, raw.class_keys, found_c)
+        if aliases is not None:  # under a lost category's changed value: loaded as it
+            alias, found_c = aliases[0], found_c | aliases[0]
+            cls = np.where(alias, aliases[1], cls)
         found = found_i & found_c
         unfit = np.zeros(len(found), bool) if raw.unfit is None else uncompared.fields(raw.unfit)
         records = base + np.arange(len(found))
         score, height = columns[3], np.asarray(columns[2], np.float64).reshape(-1, 4)[:, 3]
         if source is not None:  # rows as laid out, each carrying record source[row]
-            image, cls, found, unfit, score, height = (
-                a[source] for a in (image, cls, found, unfit, score, height)
+            image, cls, found, unfit, score, height, alias = (
+                a[source] for a in (image, cls, found, unfit, score, height, alias)
             )
             values, records = [values[i] for i in source.tolist()], source
         loads = found & ~unfit  # unfit: left out of the loaded columns (``uncompared``)
@@ -83,11 +90,11 @@ def _affected(path, truth, classes, wide):
             big[int(records[i])] = values[i]
         parts.append(
             (image[keep], cls[keep], records[keep], position[keep], base + keep)
-            + (score[keep], kinds, height[keep])
+            + (score[keep], kinds, height[keep], alias[keep])
         )
         base += len(score)
         loaded += int(loads.sum())
-    names = ("image", "cls", "record", "position", "row", "score", "kind", "height")
+    names = ("image", "cls", "record", "position", "row", "score", "kind", "height", "alias")
     rows = {n: np.concatenate([p[j] for p in parts]) for j, n in enumerate(names)}
     return rows, big
 

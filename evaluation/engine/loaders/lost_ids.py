@@ -10,8 +10,20 @@ never reads, being on such an image or category.
 
 import numpy as np
 
+from ..data import ALIAS_CLASS, ALIAS_IMAGE
 from ..errors import InputError
 from . import ids as ids_module
+
+#: ``GroundTruth.cityscale_faults`` field of the annotations scored under a changed
+#: value (``GroundTruth.alias``): the CityPersons script would score them there, which
+#: ``miss-rate-cityscale`` refuses (``cityscale_raises.check``).
+CHANGED_VALUE = "changed_value"
+CHANGED_VALUE_WHY = (
+    "this annotation names no listed image or category, but the CityPersons script's "
+    "np.unique changes a listed image id into the value it is written with and then "
+    "scores it under that image, which this protocol does not reproduce (list its "
+    "image, or leave the annotation out)"
+)
 
 
 def unique_lost(ids, id_type, kinds, listed=None):
@@ -54,6 +66,9 @@ def unread_on_lost(cols, bad_rows, rows, image_ids, class_ids, lost):
     on_lost = np.isin(cols["box_image_ids"][bad], lost_images) | np.isin(
         cols["box_class_ids"][bad], lost_classes
     )
+    alias = cols.get("box_alias")
+    if alias is not None:  # read there: under the lost entry (``changed_value_refs``)
+        on_lost &= alias[bad] == 0
     return bad[on_lost]
 
 
@@ -95,62 +110,74 @@ def changed_class_keys(truth):
     return changed_keys(ids_module.keys_of(truth.class_ids, truth.class_id_type)[lost])
 
 
-def changed_value_message(what, changed, lost, why):
-    """Why a record under a lost id's changed value is refused (``changed_keys``)."""
-    return (
-        f"{what} {ids_module.shown(changed)} names no listed {what.split('_')[0]}, but "
-        f"pycocotools' np.unique changes the listed id {ids_module.shown(lost)} into this "
-        f"value and then {why} (list that id, or leave the record out)"
-    )
-
-
-def refuse_changed_value_refs(path, cols, image_ids, class_ids, lost):
-    """Refuse an annotation pycocotools scores under a lost id's changed value (found
-    by the third red team of engine 2.18.0): ``imgToAnns`` and ``_gts`` hold every
+def changed_value_refs(path, cols, image_ids, class_ids, lost):
+    """The annotations pycocotools scores under a lost id's changed value (found by the
+    third red team of engine 2.18.0): ``imgToAnns`` and ``_gts`` hold every
     annotation, listed or not, so the value numpy changed a lost image or category id
     into (``changed_keys``) finds the annotations of an *unlisted* image or category
-    written with that value, and ``evaluate`` scores them there (images ``[2^63 + 1,
-    5]``: an annotation of image 2^63; categories ``[0.5, 2^53 + 1]``: one of category
-    2^53). The VOC protocols keep every id and leave such an annotation out, so one
-    ground truth cannot hold both readings: the file is refused, naming the record
-    (``cols``: every annotation, in file order)."""
+    written with that value, and ``evaluate`` scores them under the lost entry
+    (images ``[2^63 + 1, 5]``: an annotation of image 2^63; categories ``[0.5, 2^53 +
+    1]``: one of category 2^53). Returns None where there is none, else ``(alias,
+    image column, class column)``: per annotation (``cols``: every one, in file
+    order) its ``GroundTruth.alias`` bits, and the id columns with each such one's id
+    made the lost entry's (the loader then keeps it as a box of that entry). Only an
+    annotation whose other id pycocotools finds too is one (a listed id it does not
+    lose, or a changed value). A repeated annotation id on one is refused, naming it
+    (``loadAnns`` would put the last annotation of that id there)."""
     lost_images, lost_classes = image_ids[lost["image"][0]], class_ids[lost["class"][0]]
     if not (len(lost_images) or len(lost_classes)):
-        return
+        return None
     families = (
         ("box_image_ids", image_ids, lost_images),
         ("box_class_ids", class_ids, lost_classes),
     )
-    scored, via = [], []
+    scored, via, targets = [], [], []
     for column, ids, lost_ids_ in families:
         refs = cols[column]
         listed = np.isin(refs, ids)
-        changed = np.zeros(len(refs), bool)
-        keys = changed_keys(lost_ids_) if len(lost_ids_) else set()
+        target = np.full(len(refs), -1, np.int64)
+        keys = changed_keys(lost_ids_) if len(lost_ids_) else {}
         unlisted = np.flatnonzero(~listed)
         if keys and len(unlisted):
-            changed[unlisted] = [key in keys for key in as_typed_keys(refs[unlisted])]
+            at = {key: n for n, key in enumerate(as_typed_keys(lost_ids_))}
+            target[unlisted] = [
+                at[keys[key]] if key in keys else -1 for key in as_typed_keys(refs[unlisted])
+            ]
+        changed = target >= 0
         scored.append((listed & ~np.isin(refs, lost_ids_)) | changed)
         via.append(changed)
-    hits = np.flatnonzero(scored[0] & scored[1] & (via[0] | via[1]))
-    if not len(hits):
-        return
-    row = int(hits[0])
-    column, n = ("image_id", 0) if via[0][row] else ("category_id", 1)
-    ref = as_typed_keys(cols[families[n][0]][row : row + 1])[0]
-    lost_key = changed_keys(families[n][2])[ref]
-    raise InputError(
-        path,
-        changed_value_message(
-            column,
-            ref,
-            lost_key,
-            "scores this annotation under it, while the VOC protocols leave it out: one "
-            "ground truth cannot hold both readings",
-        ),
-        record=f"annotations[{row}]",
-        field=column,
-    )
+        targets.append(target)
+    hits = scored[0] & scored[1] & (via[0] | via[1])
+    if not hits.any():
+        return None
+    _refuse_repeated(path, cols["box_ids"], hits)
+    alias = np.zeros(len(hits), np.int8)
+    columns = []
+    for bit, (column, _, lost_ids_), changed, target in zip(
+        (ALIAS_IMAGE, ALIAS_CLASS), families, via, targets
+    ):
+        changed = changed & hits
+        alias[changed] |= bit
+        values = cols[column].copy()
+        values[changed] = lost_ids_[target[changed]]
+        columns.append(values)
+    return alias, *columns
+
+
+def _refuse_repeated(path, box_ids, hits):
+    """Refuse an annotation scored under a changed value whose id another annotation
+    repeats (``loadAnns`` resolves an id to its last annotation: not read here)."""
+    ids = np.asarray(box_ids)
+    for row in np.flatnonzero(hits).tolist():
+        if int((ids == ids[row]).sum()) > 1:
+            raise InputError(
+                path,
+                f"id {ids_module.shown(as_typed_keys(ids[row : row + 1])[0])} is repeated, "
+                "and this annotation is one pycocotools scores under the value its "
+                "np.unique changed a listed id into: give it an id of its own",
+                record=f"annotations[{row}]",
+                field="id",
+            )
 
 
 def as_typed_keys(ids):
@@ -163,30 +190,35 @@ def as_typed_keys(ids):
     return [ids_module.typed_key(int(v)) for v in ids.tolist()]
 
 
-def refuse_changed_value_detections(
-    path, truth, changed, found, image, class_keys, unread, locate, field
-):
-    """A detection pycocotools cannot read (``unread``: a missing or non-number score,
-    a box ``computeIoU`` raises on), of a class the split does not list whose id is the
-    value pycocotools' ``np.unique`` changed a lost category's id into
-    (``changed_class_keys``), on an image it looks up: its ``getAnnIds`` (``in catIds``)
-    and ``_dts`` find it there, and ``evaluateImg`` raises on it (``-d['score']``,
-    ``maskUtils.iou``). Refused, naming the record (also beyond the 100 detections per
-    image it compares: a deviation). Readable, it changes nothing (that entry has no
-    ground truth: the split refuses an annotation there, ``refuse_changed_value_refs``),
-    so it is left out as any unlisted class."""
-    unlisted = np.flatnonzero(~found & unread)
+def changed_value_classes(truth, image, class_keys, found):
+    """``(alias, cls)``: per record, whether its class is one the split does not list
+    (``~found``) written with the value pycocotools' ``np.unique`` changed a lost
+    category's id into (``changed_class_keys``), on an image it looks up
+    (``image``: indices; an unlisted image is refused or dropped before): its
+    ``getAnnIds`` (``ann['category_id'] in catIds``) and ``_dts[img, catId]`` find it
+    under the lost category, whose index ``cls`` gives (``loadRes`` checks no
+    category). None where there is none."""
+    changed = changed_class_keys(truth)
+    unlisted = np.flatnonzero(~found)
+    if not changed or not len(unlisted):
+        return None
+    at = {
+        key: n
+        for n, key in enumerate(
+            as_typed_keys(ids_module.keys_of(truth.class_ids, truth.class_id_type))
+        )
+    }
     keys = as_typed_keys(class_keys[unlisted])
-    hit = np.array([key in changed for key in keys], bool)
+    target = np.array([at[changed[key]] if key in changed else -1 for key in keys], np.int64)
     lost = truth.unique_lost_masks()
-    if lost is not None:
-        hit &= ~lost[0][image[unlisted]]
-    if hit.any():
-        n = int(np.flatnonzero(hit)[0])
-        i, key = int(unlisted[n]), keys[n]
-        why = "reads this detection's score and box, which it cannot read: it raises"
-        message = changed_value_message(field, key, changed[key], why)
-        raise InputError(path, message, record=locate(i), field=field)
+    hit = (target >= 0) & ~lost[0][np.asarray(image, np.int64)[unlisted]]
+    if not hit.any():
+        return None
+    alias = np.zeros(len(found), bool)
+    alias[unlisted[hit]] = True
+    cls = np.zeros(len(found), np.int64)
+    cls[unlisted[hit]] = target[hit]
+    return alias, cls
 
 
 def fetched_by_category(path, cols, listed, id_type, image_ids, lost):

@@ -234,7 +234,7 @@ def _read_predictions(
         infinite = block.infinite_box  # maybe an integer beyond float64
         conflicts = exact_scores.check(path, truth, classes, ids == "any", infinite)
         tops = boolean_scores.Tops(truth)
-        tops.add(block.image, block.cls, block.score)
+        tops.add(block.image, block.cls, block.score, block.alias)
         conflicts = boolean_scores.joined(conflicts, path, truth, tops, ids == "any")
     return Predictions(
         image=block.image,
@@ -252,4 +252,5 @@ def _read_predictions(
         area=block.area,
         free=block.free,
         unwritable=block.unwritable,
+        alias=block.alias,
     )

@@ -29,6 +29,12 @@ def _shown(values, id_type):
     return ids_module.display(values, id_type)
 
 
+#: ``box_counts`` key (only where non-zero): the annotations of an unlisted image or
+#: category kept under the lost id whose changed value they are written with
+#: (``GroundTruth.alias``; ``provenance.changed_value_counts`` says per protocol).
+UNDER_CHANGED_VALUE = "annotations_under_changed_value"
+
+
 def _raise_if_scored(path, bad_rows, rows, n, unread=()):
     """The first annotation with a bad ``bbox`` or ``area`` that is scored (``rows``:
     the source rows scored, None for all ``n``), as an error naming it; one never
@@ -181,10 +187,18 @@ def read_truth(
     if fmt == "json" and annotations == "strict":
         checks.check_unique(path, cols["box_ids"], box_locate, "id")
     elif fmt == "json":
-        lost_ids.refuse_changed_value_refs(path, cols, image_ids, class_ids, lost)
+        aliases = lost_ids.changed_value_refs(path, cols, image_ids, class_ids, lost)
         by_category = lost_ids.fetched_by_category(
             path, cols, listed_classes, class_type, image_ids, lost
         )
+        if aliases is not None:  # kept as boxes of the lost entry, marked
+            cols["box_alias"], cols["box_image_ids"], cols["box_class_ids"] = aliases
+            annotation_counts[UNDER_CHANGED_VALUE] = int((aliases[0] != 0).sum())
+            for row in np.flatnonzero(aliases[0]).tolist():
+                city_rows.setdefault(row, {})[lost_ids.CHANGED_VALUE] = (
+                    lost_ids.CHANGED_VALUE_WHY,
+                    True,
+                )
         lost_images = image_ids[lost["image"][0]] if len(lost["image"][0]) else None
         rows, resolved = annotation_index.resolve(
             cols, image_ids, class_ids, lost_images, by_category
@@ -291,6 +305,7 @@ def read_truth(
         iscrowd_fraction=cols["ignore"] if fmt == "json" else None,
         source=str(path),
         cityscale_faults=_cityscale_faults(city_rows, rows),
+        alias=cols["box_alias"] if "box_alias" in cols else None,
         height_key=height_key,
         image_id_type=image_type,
         class_id_type=class_type,
