@@ -63,6 +63,10 @@ _ANNOTATION_LINES = (
     ("unreadable_on_lost_ids", "annotation", "annotations",
      "with a bbox or area pycocotools would raise on left out: their image or category "
      "id is one its np.unique changes, so it never reads them"),
+    ("annotations_under_changed_value", "annotation", "annotations",
+     "of an image or category the file does not list, written with the value "
+     "pycocotools' np.unique changes a listed id into: scored under that id by "
+     "pycocotools' rules (coco, recall40), left out by the others"),
     ("categories_renamed", "category", "categories",
      'sharing a name named with their ids ("car (id 3)"): per-class numbers are kept by '
      "name"),
@@ -123,6 +127,20 @@ def detection_lines(counts):
             f"{_plural(unreadable, 'detection', 'detections')} with a score or field "
             "pycocotools would raise on left out: their image or class id is one its "
             "np.unique changes, so it never reads them"
+        )
+    changed = counts.get("under_changed_value") or {}
+    if changed:
+        boxes, dets = int(changed.get("truth_boxes") or 0), int(changed.get("detections") or 0)
+        lines.append(
+            f"{_plural(boxes, 'ground-truth box', 'ground-truth boxes')} and "
+            f"{_plural(dets, 'detection', 'detections')} of an image or category the file "
+            "does not list, written with the value pycocotools' np.unique changes a listed "
+            "id into, "
+            + (
+                "scored under that id, as in pycocotools"
+                if changed.get("scored")
+                else "left out, as this protocol's reference leaves out records of unlisted ids"
+            )
         )
     repeated = (counts.get("classes_repeated") or {}).get("classes") or {}
     if repeated:

@@ -608,6 +608,38 @@ def test_records_never_read_on_lost_ids_are_named():
     assert line.startswith("1 detection with a score or field"), line
 
 
+def test_records_under_a_changed_value_are_named(tmp_path):
+    """Annotations and detections written with the value pycocotools' np.unique changes
+    a listed id into (scored under that id by ``coco``, left out by ``voc``:
+    tests/engine/test_changed_value_aliases.py) get a line on the split and on each
+    result, saying which."""
+    import json
+
+    from evaluation import left_out
+    from evaluation.engine import evaluate, load_predictions, load_truth
+
+    split = {
+        "images": [{"id": i, "width": 64, "height": 64} for i in (2**63 + 1, 5)],
+        "categories": [{"id": 1, "name": "car"}],
+        "annotations": [
+            {"id": n + 1, "image_id": i, "category_id": 1, "bbox": [1, 1, 9, 9], "area": 81}
+            | {"iscrowd": 0}
+            for n, i in enumerate((5, 2**63))
+        ],
+    }
+    dets = [{"image_id": 5, "category_id": 1, "bbox": [1, 1, 9, 9], "score": 0.9}]
+    (tmp_path / "gt.json").write_text(json.dumps(split))
+    (tmp_path / "dt.json").write_text(json.dumps(dets))
+    truth = load_truth(tmp_path / "gt.json")
+    (split_line,) = left_out.annotation_lines(truth.box_counts)
+    assert split_line.startswith("1 annotation of an image or category the file"), split_line
+    predictions = load_predictions(tmp_path / "dt.json", truth)
+    for protocol, said in (("coco", "scored under that id"), ("voc", "left out")):
+        lines = left_out.detection_lines(evaluate(truth, predictions, protocol)["counts"])
+        assert any(line.startswith("1 ground-truth box and 0 detections") for line in lines)
+        assert any(said in line for line in lines), lines
+
+
 def test_a_class_counted_more_than_once_is_named(tmp_path):
     """A NaN category id listed twice beside an id beyond 64 bits: pycocotools 2.0.11's
     np.unique keeps both entries (NaN != NaN) and counts that category twice in every
