@@ -323,7 +323,7 @@ def level_counts(truth, protocol="kitti2d"):
         for name in protocol.class_overlap:
             own = _class_index(truth, name)
             if own:
-                gt_own = _mask(len(truth.classes), own)[truth.box_class]
+                gt_own = _mask(len(truth.classes), own)[truth.box_class] & ~truth.alias_boxes()
                 counts[truth.classes[own[0]]] = int((gt_own & ~hard).sum())
         levels[level.name] = counts
     return {

@@ -53,8 +53,12 @@ def lost_images(truth, protocol):
 
 def not_counted(truth, protocol):
     """Per box, whether it never counts: a flag makes it an ignore box
-    (``ignore_flags``), or its image is lost (``lost_images``)."""
+    (``ignore_flags``), its image is lost (``lost_images``), or it is written with a
+    value ``np.unique`` changed a lost id into (``GroundTruth.alias``: the toolbox keeps
+    every id and leaves it out; the script's reading of it is refused)."""
     flagged = ignore_flags(truth, protocol)
+    if truth.alias is not None:
+        flagged = flagged | truth.alias_boxes()
     lost = lost_images(truth, protocol)
     return flagged if lost is None else flagged | lost[truth.box_image]
 

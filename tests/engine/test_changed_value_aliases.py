@@ -30,9 +30,9 @@ from evaluation.engine import (
     load_predictions,
     load_truth,
 )
-from evaluation.engine.difficulty import evaluate_levels
+from evaluation.engine.difficulty import evaluate_levels, level_counts
 from evaluation.engine.loaders import json_syntax
-from evaluation.engine.pedestrian import evaluate_setups
+from evaluation.engine.pedestrian import evaluate_setups, setup_counts
 from evaluation.engine.pieces import stream_pieces
 from evaluation.engine.shards import load_piece, plan
 
@@ -216,6 +216,8 @@ def test_the_other_readings_leave_them_out(tmp_path, kind):
     assert json.dumps(ours) == json.dumps(theirs)
     ours = evaluate_setups(truth, predictions, "miss-rate")
     assert json.dumps(ours) == json.dumps(evaluate_setups(truth_without, without, "miss-rate"))
+    assert setup_counts(truth) == setup_counts(truth_without)  # the split page's counts
+    assert level_counts(truth) == level_counts(truth_without)
 
 
 @pytest.mark.parametrize("kind", ["wide images", "float categories", "text categories"])
