@@ -17,6 +17,7 @@ from .data import GroundTruth, Predictions
 from .difficulty import DIFFICULTY_PRESETS, evaluate_levels, level_counts
 from .errors import InputError
 from .evaluate import counts, evaluate
+from .explain import differences
 from .level_provenance import PROVENANCE_KEYS, annotate_levels
 from .loaders import (
     BOX_POLICIES,
@@ -32,7 +33,7 @@ from .loaders.voc_results import is_result_file as is_voc_result_name
 from .matching import match
 from .pedestrian import MISS_RATE_PRESETS, evaluate_setups, setup_counts
 from .protocols import PRESETS, Protocol, get_protocol, protocol_from_dict
-from .provenance import annotate, differences, protocol_record
+from .provenance import annotate, protocol_record
 from .records import MatchRecords
 from .scorecard import COCO_SUMMARY_KEYS, score_records
 from .scoring import headline, slice_scores

@@ -11,7 +11,7 @@ import math
 import os
 import sys
 
-from . import export, json_file, provenance
+from . import explain, export, json_file
 from .difficulty import DIFFICULTY_PRESETS, evaluate_levels, levels_table
 from .errors import InputError
 from .evaluate import evaluate
@@ -157,7 +157,7 @@ def main(argv=None):
     args = build_parser().parse_args(argv)
     if args.command == "explain":
         try:
-            print(provenance.explain(args.a, args.b))
+            print(explain.explain(args.a, args.b))
         except InputError as e:
             print(f"error: {e}", file=sys.stderr)
             return EXIT_BAD_INPUT

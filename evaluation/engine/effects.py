@@ -1,5 +1,5 @@
 """What a difference in each protocol-record setting does to the numbers, in words
-(``provenance.differences``, so ``explain`` and the compare page).
+(``explain.differences``, so ``explain`` and the compare page).
 
 A setting's words depend on the measure: ``EFFECTS`` speak of AP (``coco``, ``voc``,
 custom protocols); ``KITTI_EFFECTS`` of the difficulty levels' AP; ``MISS_RATE_EFFECTS``

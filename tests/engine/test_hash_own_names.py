@@ -20,7 +20,7 @@ import pytest
 from evaluation.engine import ENGINE_VERSION, differences, evaluate, load_predictions, load_truth
 from evaluation.engine.__main__ import main
 from evaluation.engine.content_hash import HASH_SCHEMES
-from evaluation.engine.provenance import NAMED_FINGERPRINT
+from evaluation.engine.explain import NAMED_FINGERPRINT
 
 from .test_shared_names import _cars, _recall40_oracle
 

@@ -489,7 +489,7 @@ def test_explain_names_the_area_source_only_between_readings(tmp_path):
     """Two mask files differ in no setting (the count is in ``counts``, not the
     record); a mask file against a box file differs in ``area_source``, with words."""
     from evaluation.engine import annotate, match, score_records
-    from evaluation.engine.provenance import differences
+    from evaluation.engine.explain import differences
 
     def result(dt, truth):
         predictions = load_predictions(dt, truth)
