@@ -35,13 +35,14 @@ __all__ = [
 ]
 
 #: Bumped when the parsed columns change shape or meaning: old cache entries are unused.
+#: 28: keypoint results holding booleans, nested lists or big integers are scored;
 #: 27: truth entries keep the boxes under a changed value (``GroundTruth.alias``);
 #: 26: truth entries keep class_repeats and boolean_class_ids;
 #: 25: a repeated id under an unlisted category numpy's == finds makes a copy;
 #: 24: truth entries keep an annotation's height key (``GroundTruth.height_key``);
 #: 22: label-file and CSV ids are integers of ASCII digits only (``ids.INTEGER``);
 #: 21: truth entries keep the ids np.unique merges (unique_merged_images)
-CACHE_SCHEMA = 27
+CACHE_SCHEMA = 28
 UNKNOWN_CLASS_POLICIES = ("reject", "drop")
 #: Detections of images the split does not hold: refused (default; pycocotools'
 #: ``loadRes`` asserts every result image is in the set) or, for re-scoring stored

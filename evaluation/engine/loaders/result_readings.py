@@ -28,9 +28,12 @@ record is *unfit* here (``Decoded.unfit``: field and message): refused by
 (``uncompared``). Keypoints whose x or y values (the only ones read) are booleans,
 nested lists, or integers of magnitude 2^30 or more are run through ``loadRes``' own
 numpy lines (``_loadres_extent``): where those raise, the file is refused; where they
-do not, the record is unfit (its extent computed in int64 there, which can wrap, or
-from booleans: refused when compared). Checked against pycocotools 2.0.11 in
-``tests/engine/test_result_readings.py``, ``test_uncompared.py`` and ``test_as_given.py``.
+do not, the record scores with the box and area they give (booleans as 0/1, an int64
+extent wrapped, Python integers of an object array), read as ``computeIoU`` and
+``evaluateImg`` read them; unfit only where ``computeIoU`` cannot make doubles of the
+box (an integer beyond float64). Checked against pycocotools 2.0.11 in
+``tests/engine/test_result_readings.py``, ``test_keypoint_values.py``,
+``test_uncompared.py`` and ``test_as_given.py``.
 """
 
 import math
@@ -193,12 +196,15 @@ def _small_ints(kp):
 
 
 def _odd_keypoints(path, at, r, xs, ys):
-    """Keypoints holding something besides floats and small integers: refused where
-    ``loadRes``' own lines raise on them (text, null, ragged lists, integers numpy
-    cannot mix), else unfit: the extent numpy gives there (booleans as 0/1, int64 that
-    can wrap) is no box to score, so the record is refused only if compared."""
+    """Keypoints holding something besides floats and small integers (booleans, nested
+    lists, big integers...): ``loadRes``' own lines run on them as written; where they
+    raise, the file is refused. Else the record scores with what they give: its box as
+    ``computeIoU`` reads it (``np.array(..., dtype=np.double)``: booleans as 0/1, an
+    int64 extent wrapped as there), its area as ``evaluateImg`` compares it; a box
+    numpy cannot make doubles of (an integer beyond float64) raises only there, so the
+    record is unfit (refused only if compared)."""
     try:
-        _loadres_extent(xs, ys)
+        box, area = _loadres_extent(xs, ys)
     except Exception as e:  # noqa: BLE001 - whatever numpy raises, pycocotools raises
         _fail(
             path,
@@ -207,14 +213,29 @@ def _odd_keypoints(path, at, r, xs, ys):
             f"must hold numbers, got {_odd_value(xs + ys)!r:.40} (pycocotools 2.0.11's "
             f"loadRes raises {type(e).__name__} on these keypoints)",
         )
-    v = _odd_value(xs + ys)
-    return _unfit(
-        r,
-        "keypoints",
-        f"must hold numbers, got {v!r:.40}"
-        + (" (integers of magnitude 2^30 or more: refused)" if type(v) is int else "")
-        + " on a detection pycocotools compares",
-    )
+    try:
+        r.bbox = tuple(np.array([box], dtype=np.double)[0].tolist())
+    except (OverflowError, ValueError, TypeError) as e:
+        return _unfit(
+            r,
+            "keypoints",
+            f"must hold numbers whose extent is a box of doubles, got "
+            f"{_odd_value(xs + ys)!r:.40} (pycocotools 2.0.11's computeIoU raises "
+            f"{type(e).__name__} on a detection it compares)",
+        )
+    r.area = _compared_area(area)
+    return None
+
+
+def _compared_area(value):
+    """An area ``loadRes`` gave (a numpy scalar, or a Python number from an object
+    array) as a float that ``evaluateImg``'s ``d['area'] < aRng[0] or d['area'] >
+    aRng[1]`` compares alike: the bounds are integers below 2**53, so rounding keeps
+    every comparison; an integer beyond float64 is infinite there."""
+    if isinstance(value, np.generic):
+        with np.errstate(all="ignore"):
+            return float(value)
+    return _float(value)
 
 
 def _loadres_extent(x, y):
