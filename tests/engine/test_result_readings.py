@@ -351,3 +351,37 @@ def test_the_cli_refuses_a_bad_keypoint_file(tmp_path, capsys):
     assert main(["score", "--truth", str(gt), "--predictions", str(dt)]) == 2
     err = capsys.readouterr().err
     assert "record 3" in err and "keypoints" in err and "Traceback" not in err
+
+
+def _with_null_in_box(reading, image):
+    """A readable first result and one of image ``image``, class car, whose bbox holds
+    a null (numpy's ``np.array(..., dtype=np.double)`` in computeIoU reads it as NaN)."""
+    from .test_uncompared import _good
+
+    own = {"bbox": [2, None, 10, 8]}
+    if reading == "given":  # a first result of an unlisted class with bbox []: as given
+        first = {"id": 1, "image_id": 1, "category_id": 9, "bbox": [], "score": 0.1}
+        second = {**_good("caption", 1, 0.8, image=image), "id": 2, **own}
+        second.pop("caption")
+        return [first, _good("caption", 0, 0.9) | {"id": 3}, second]
+    kind = "mask" if reading == "mask" else "caption"
+    return [_good(kind, 0, 0.9), {**_good(kind, 1, 0.8, image=image), **own}]
+
+
+@pytest.mark.parametrize("reading", ["caption", "given", "mask"])
+@pytest.mark.parametrize("image", [1, 2])
+def test_a_null_in_a_compared_box_is_nan(tmp_path, monkeypatch, reading, image):
+    """pycocotools 2.0.11 scores the file (its box NaN matches nothing), with truth in
+    that image and class (image 1) or none (image 2): the same numbers, on every load
+    path; the box column holds NaN in its place."""
+    from .load_paths import every_path_agrees
+    from .test_uncompared import _SPLIT
+
+    detections = _with_null_in_box(reading, image)
+    _compare(tmp_path, _SPLIT, detections)
+    gt, dt = _files(tmp_path, _SPLIT, detections)
+    truth = load_truth(gt)
+    whole = load_predictions(dt, truth, unknown_classes="drop")
+    assert np.isnan(whole.boxes[-1, 1]) and not np.isnan(whole.boxes[-1, [0, 2, 3]]).any()
+    if reading != "given":  # as given: read whole on every path (test_as_given)
+        every_path_agrees(tmp_path, monkeypatch, dt, truth, whole, 200)

@@ -118,7 +118,7 @@ def normalise(path, r, at):
     raises on it only in ``computeIoU``); an error naming it where ``loadRes`` raises."""
     box, unfit = r.bbox, None
     if box is not msgspec.UNSET:
-        box = unread_fields._box(box, text=True)  # numpy reads it in computeIoU
+        box = unread_fields._box(box, text=True, null=True)  # numpy reads it in computeIoU
         if box is None:
             box = (math.nan,) * 4
             unfit = ("bbox", f"must be 4 numbers [x, y, w, h], got {r.bbox!r:.40}")

@@ -139,7 +139,7 @@ def _caption(path, r, at, why=None):
     why = why or "the file's first result has a caption key, so pycocotools 2.0.11 reads "
     if r.bbox is msgspec.UNSET:
         return _unfit(r, "bbox", f"missing: {why}each result's own bbox (computeIoU: KeyError)")
-    box = unread_fields._box(r.bbox, text=True)  # numpy reads it in computeIoU
+    box = unread_fields._box(r.bbox, text=True, null=True)  # numpy reads it in computeIoU
     if box is None:
         return _unfit(r, "bbox", f"must be 4 numbers [x, y, w, h], got {r.bbox!r:.40}")
     if r.area is msgspec.UNSET:

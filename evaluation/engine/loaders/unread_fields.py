@@ -179,10 +179,14 @@ def _field_of(error_text):
     return field.split(".")[0].rstrip("`")
 
 
-def as_number(value, text=False):
+def as_number(value, text=False, null=False):
     """``value`` as the float Python arithmetic and numpy make of it in pycocotools:
     a number (an integer beyond float64 is infinite), a boolean (0 or 1), with ``text``
-    a string ``float`` reads (numpy's conversion of a box to doubles); else None."""
+    a string ``float`` reads (numpy's conversion of a box to doubles), with ``null``
+    None as NaN (the same conversion: ``np.array([None], dtype=np.double)``); else
+    None."""
+    if null and value is None:
+        return math.nan
     if type(value) in (int, float, bool):
         try:
             return float(value)
@@ -196,11 +200,11 @@ def as_number(value, text=False):
     return None
 
 
-def _box(value, text):
+def _box(value, text, null=False):
     """A box as four floats (``as_number``), or None."""
     if not isinstance(value, (list, tuple)) or len(value) != 4:
         return None
-    numbers = [as_number(v, text) for v in value]
+    numbers = [as_number(v, text, null) for v in value]
     return None if None in numbers else tuple(numbers)
 
 
