@@ -98,7 +98,7 @@ _BAD = [
     ("mask", {"bbox": []}, "bbox"),
     ("mask", {"segmentation": [_MASK, _MASK], "bbox": [2, 3, 10, 8]}, "segmentation"),
     ("mask", {"segmentation": [_MASK]}, "segmentation"),  # toBbox gives an array box
-    ("mask", {"segmentation": [_MASK], "bbox": [2, 3, 10, 8]}, "segmentation"),
+    # a list of one mask with a bbox: scored beside its own kind (test_one_mask_lists)
     ("mask", {"segmentation": [], "bbox": [2, 3, 10, 8]}, "segmentation"),
     # box reading: loadRes adds and multiplies bb[0..3] only (box_results)
     ("box", {"bbox": [2, 3, 10, 8, 5]}, "bbox"),  # iou: "bounding box (Nx4)" Exception

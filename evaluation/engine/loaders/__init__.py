@@ -35,7 +35,8 @@ __all__ = [
 ]
 
 #: Bumped when the parsed columns change shape or meaning: old cache entries are unused.
-#: 28: keypoint results holding booleans, nested lists or big integers are scored;
+#: 28: keypoint results holding booleans, nested lists or big integers, a null in a
+#: given bbox and lists of one mask with a bbox are scored, no longer left out;
 #: 27: truth entries keep the boxes under a changed value (``GroundTruth.alias``);
 #: 26: truth entries keep class_repeats and boolean_class_ids;
 #: 25: a repeated id under an unlisted category numpy's == finds makes a copy;

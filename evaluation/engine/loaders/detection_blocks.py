@@ -285,16 +285,22 @@ def _resolve(path, truth, raw, policy, unknown_classes, unknown_images, rank_of,
     at[0] = UNFIT
     if unfit is not None:
         bad = np.flatnonzero(uncompared.fields(unfit[kept_at]))
-        if len(bad):
+        kind = uncompared.kinds(unfit[kept_at])
+        keyed = np.flatnonzero(kind != None)  # noqa: E711 - elementwise
+        if len(bad) or len(keyed):
             if rank_of is None:
-                rank = uncompared.ranks(_groups(truth, image, cls, alias), score)
+                group = _groups(truth, image, cls, alias)
+                rank = uncompared.ranks(group, score)
+                mixed = keyed[uncompared.mixed(group, rank, kind)[keyed]]
                 rank = rank[bad]
             else:
                 rank = rank_of(raw.base + kept_at[bad])
-            compared = bad[rank < uncompared.CAP]
+                mixed = keyed[rank_of.mixed(raw.base + kept_at[keyed])]
+            compared = np.union1d(bad[rank < uncompared.CAP], mixed)
             if len(compared):
-                field, message = unfit[kept_at[compared[0]]]
+                field, message = unfit[kept_at[compared[0]]][:2]
                 raise InputError(path, message, record=locate(int(compared[0])), field=field)
+        if len(bad):
             keep = np.ones(len(score), bool)
             keep[bad] = False
             columns = (image, cls, boxes, score, area, free, bad_id, alias)

@@ -144,14 +144,24 @@ def _masks(path, seg, box, unfit, at):
     crash); the area is then an array, which ``evaluateImg`` cannot compare beside
     other detections' areas (``np.array`` of mixed shapes, ValueError), nor
     ``computeIoU`` the array box ``toBbox`` gives: the record is unfit (refused where
-    compared). Known deviation: a group whose compared detections are all lists of
-    one mask with a box, pycocotools scores; it is refused here."""
+    compared). But a list of *one* mask with a box of 4 numbers has an area array of
+    one entry, which ``evaluateImg``'s ``d['area'] < aRng[0] or ...`` reads as that
+    number and its ``np.array`` joins beside other such arrays: it is loaded with the
+    mask's area and its box, and refused only where compared beside a detection of
+    another kind (``uncompared.mixed``: kind ``ONE_MASK``)."""
     masks = [_segmentation(path, e, at) for e in seg]
     probe = [MaskDetection(0, 0, 0.0, m, box) for m in masks]
     try:
         columns(probe, path, 0)
     except InputError as e:
         raise InputError(path, e.message, record=f"record {at}", field=e.field) from None
+    if len(masks) == 1 and box is not msgspec.UNSET and unfit is None:
+        why = (
+            "a list of one mask with a bbox: pycocotools 2.0.11 reads its area as an "
+            "array of one, which evaluateImg's np.array cannot join beside a detection "
+            "whose area is a number (ValueError) in its image and class"
+        )
+        return masks[0], box, ("segmentation", why, ONE_MASK)
     why = (
         f"a list of {len(masks)} masks"
         + ("" if box is not msgspec.UNSET else " without bbox")
@@ -159,6 +169,10 @@ def _masks(path, seg, box, unfit, at):
         "(or computeIoU) cannot compare"
     )
     return Rle((0, 0), ""), (math.nan,) * 4, unfit or ("segmentation", why)
+
+
+#: The ``uncompared.kinds`` of a list of one mask with a box (``_masks``).
+ONE_MASK = "one mask in a list"
 
 
 def _segmentation(path, seg, at):

@@ -11,7 +11,9 @@ detection's place within its (image, class); ``resolve`` (``detection_blocks``) 
 an unfit record ranked below ``CAP`` naming its field, and leaves out and counts one
 ranked at or beyond it (``box_counts[COUNT]``). A file read a block at a time cannot
 rank a record from its own block: ``FileRanks`` reads the file again (only when a block
-holds an unfit record of a listed class) for the groups that hold one.
+holds an unfit record of a listed class) for the groups that hold one. An unfit entry
+with a third element, a kind (``mask_results.ONE_MASK``), is loaded as any record and
+refused only where it is compared beside a record of another kind (``mixed``).
 
 Ranks are float64's unless a group holds a score of magnitude >= 2**53: pycocotools
 keeps JSON integers as Python ints, and numpy ranks such a list exactly (int64, uint64
@@ -56,8 +58,34 @@ def ranks(group, score, records=None, exact=None):
 
 
 def fields(unfit):
-    """Where ``unfit`` (an object column: None or ``(field, message)``) holds one."""
-    return np.fromiter((u is not None for u in unfit), bool, len(unfit))
+    """Where ``unfit`` (an object column: None, ``(field, message)`` or ``(field,
+    message, kind)``) holds a record pycocotools fails on whenever it compares it."""
+    return np.fromiter((u is not None and len(u) == 2 for u in unfit), bool, len(unfit))
+
+
+def kinds(unfit):
+    """Per record the ``kind`` of a ``(field, message, kind)`` entry of ``unfit``, else
+    None: a record pycocotools compares only beside others of its kind (``uniform``);
+    it is loaded as any other."""
+    return np.array([None if u is None or len(u) == 2 else u[2] for u in unfit], object)
+
+
+def mixed(group, rank, kind):
+    """Per row: whether it has a kind and is compared (ranked below ``CAP``) in a group
+    whose compared rows do not all have that kind: there pycocotools raises (a list of
+    one mask beside a single mask: ``evaluateImg``'s ``np.array`` of a one-entry array
+    area beside a number, ValueError)."""
+    out = np.zeros(len(group), bool)
+    keyed = np.flatnonzero((kind != None) & (rank < CAP))  # noqa: E711 - elementwise
+    if not len(keyed):
+        return out
+    watched = np.isin(group, np.unique(group[keyed]))
+    seen = {}
+    for g, k in zip(group[watched & (rank < CAP)].tolist(), kind[watched & (rank < CAP)]):
+        seen.setdefault(g, set()).add(k)
+    for i in keyed.tolist():
+        out[i] = seen[int(group[i])] != {kind[i]}
+    return out
 
 
 class FileRanks:
@@ -72,29 +100,40 @@ class FileRanks:
         self._blocks = blocks
         self._exact = exact
         self._rank = None
+        self._mixed = None
 
     def __call__(self, records):
         if self._rank is None:
-            self._rank = self._read()
+            self._read()
         return np.array([self._rank[r] for r in np.asarray(records).tolist()], np.int64)
+
+    def mixed(self, records):
+        """``mixed`` of these records (each with a kind) within the whole file."""
+        if self._rank is None:
+            self._read()
+        return np.array([r in self._mixed for r in np.asarray(records).tolist()], bool)
 
     def _read(self):
         wanted = set()
         for _, group, _, unfit in self._blocks():
-            hit = fields(unfit) & (group >= 0)
-            wanted.update(group[hit].tolist())
+            marked = np.fromiter((u is not None for u in unfit), bool, len(unfit))
+            wanted.update(group[marked & (group >= 0)].tolist())
         wanted = np.array(sorted(wanted), np.int64)
-        records, groups, scores = [], [], []
-        for rec, group, score, _ in self._blocks():
+        records, groups, scores, kind = [], [], [], []
+        for rec, group, score, unfit in self._blocks():
             keep = np.isin(group, wanted)
             records.append(rec[keep])
             groups.append(group[keep])
             scores.append(score[keep])
+            kind.append(kinds(unfit[keep]))
         records = np.concatenate(records) if records else np.zeros(0, np.int64)
+        groups = np.concatenate(groups) if groups else np.zeros(0, np.int64)
         rank = ranks(
-            np.concatenate(groups) if groups else np.zeros(0, np.int64),
+            groups,
             np.concatenate(scores) if scores else np.zeros(0),
             records,
             self._exact,
         )
-        return dict(zip(records.tolist(), rank.tolist()))
+        kind = np.concatenate(kind) if kind else np.zeros(0, object)
+        self._mixed = set(records[mixed(groups, rank, kind)].tolist())
+        self._rank = dict(zip(records.tolist(), rank.tolist()))
