@@ -9,6 +9,7 @@ import contextlib
 import json
 import math
 import os
+import re
 import sys
 
 from . import explain, export, json_file
@@ -44,13 +45,24 @@ def _protocol(value):
     return protocol_from_dict(spec, source=value)
 
 
+#: A decimal number in ASCII digits (Python's ``float`` also reads ``1_0``, other
+#: scripts' digits and ``nan``/``inf``, which a score cut given on the command line
+#: should not silently become).
+DECIMAL = re.compile(r"[+-]?(?:[0-9]+(?:\.[0-9]*)?|\.[0-9]+)(?:[eE][+-]?[0-9]+)?")
+
+
 def _finite(text):
-    try:
-        value = float(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"not a number: {text!r}") from None
+    if not DECIMAL.fullmatch(text):
+        raise argparse.ArgumentTypeError(
+            f"must be a finite decimal number in ASCII digits (0.5, 1e-3), got {text!r}"
+        )
+    value = float(text)
     if not math.isfinite(value):
         raise argparse.ArgumentTypeError(f"must be a finite number, got {text!r}")
+    if value == 0 and re.search(r"[1-9]", text.split("e")[0].split("E")[0]):
+        raise argparse.ArgumentTypeError(
+            f"{text!r} is too small for a float64 (it would read as 0); give 0 or a larger value"
+        )
     return value
 
 

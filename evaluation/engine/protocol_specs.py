@@ -14,6 +14,10 @@ from .protocols import (
     Protocol,
 )
 
+#: The highest ``version`` a custom protocol may give (the platform stores it in a
+#: 32-bit positive integer column, ``Scorecard.protocol_version``).
+MAX_VERSION = 2**31 - 1
+
 
 def _number_list(spec, key, source, *, low, high):
     values = spec[key]
@@ -21,9 +25,11 @@ def _number_list(spec, key, source, *, low, high):
         raise InputError(source, "must be a non-empty list of numbers", field=key)
     for i, value in enumerate(values):
         if isinstance(value, bool) or not isinstance(value, (int, float)):
-            raise InputError(source, f"item {i} is not a number: {value!r}", field=key)
-        if not (math.isfinite(value) and low <= value <= high):
-            raise InputError(source, f"item {i} = {value} is outside [{low}, {high}]", field=key)
+            raise InputError(source, f"item {i} is not a number: {_short(value)}", field=key)
+        if not (_is_number(value) and low <= value <= high):
+            raise InputError(
+                source, f"item {i} = {_short(value)} is outside [{low}, {high}]", field=key
+            )
     return tuple(float(v) for v in values)
 
 
@@ -62,12 +68,15 @@ def protocol_from_dict(spec, source="protocol"):
             raise InputError(source, f"unknown key; allowed: {', '.join(sorted(known))}", field=key)
     if not isinstance(spec.get("name"), str) or not spec["name"]:
         raise InputError(source, "a custom protocol needs a non-empty name", field="name")
-    if spec["name"] in PRESET_NAMES:
+    if spec["name"].casefold() in {name.casefold() for name in PRESET_NAMES}:
         # a result records the protocol by name: under a preset's name it would read as
-        # the preset's (``explain`` would call two different rule sets the same)
+        # the preset's (``explain`` would call two different rule sets the same); in
+        # another case (``COCO``) a suite could list both, and a reader take one for the
+        # other
         raise InputError(
             source,
-            f"{spec['name']!r} is a preset's name; give a custom protocol its own name",
+            f"{spec['name']!r} is a preset's name (names compare case-insensitively); give "
+            "a custom protocol its own name",
             field="name",
         )
     base = spec.get("base", "coco")
@@ -82,8 +91,15 @@ def protocol_from_dict(spec, source="protocol"):
     values.update(name=spec["name"], description=spec.get("description", f"custom ({base.name})"))
     values["coco_summary"] = False
     if "version" in spec:
-        if not isinstance(spec["version"], int) or spec["version"] < 1:
-            raise InputError(source, "must be a positive integer", field="version")
+        version = spec["version"]
+        if (
+            isinstance(version, bool)
+            or not isinstance(version, int)
+            or not 1 <= version <= MAX_VERSION
+        ):
+            raise InputError(
+                source, f"must be a whole number from 1 to {MAX_VERSION}", field="version"
+            )
         values["version"] = spec["version"]
     if "matching" in spec:
         if spec["matching"] not in (GREEDY, BEST_OVERLAP):
@@ -103,7 +119,7 @@ def protocol_from_dict(spec, source="protocol"):
             ):
                 raise InputError(
                     source,
-                    f"IoU for {name!r} must be in [0, 1], got {value!r}",
+                    f"IoU for {name!r} must be in [0, 1], got {_short(value)}",
                     field="class_iou_thresholds",
                 )
         folded = [str(k).casefold() for k in table]
@@ -124,7 +140,8 @@ def protocol_from_dict(spec, source="protocol"):
                 raise InputError(source, "must be ascending", field="recall_points")
             values["recall_points"] = points
     if "pixel_offset" in spec:
-        if spec["pixel_offset"] not in (0, 1):
+        offset = spec["pixel_offset"]
+        if isinstance(offset, bool) or not isinstance(offset, (int, float)) or offset not in (0, 1):
             raise InputError(source, "must be 0 or 1", field="pixel_offset")
         values["pixel_offset"] = float(spec["pixel_offset"])
     if "max_detections" in spec:
@@ -177,4 +194,20 @@ def _area_ranges(ranges, source):
 
 
 def _is_number(value):
-    return isinstance(value, (int, float)) and not isinstance(value, bool) and math.isfinite(value)
+    """A finite JSON number (not a boolean). An integer beyond float64 (``1e400``
+    written out) counts as infinite: every setting is read as a float."""
+    if isinstance(value, bool) or not isinstance(value, (int, float)):
+        return False
+    try:
+        return math.isfinite(value)
+    except OverflowError:  # an int float() cannot hold
+        return False
+
+
+def _short(value, limit=40):
+    """A value as an error shows it (an integer of thousands of digits cut short)."""
+    try:
+        text = repr(value)
+    except ValueError:  # beyond Python's int-to-text digit limit
+        return "an integer of thousands of digits"
+    return text if len(text) <= limit else text[: limit - 1] + "…"

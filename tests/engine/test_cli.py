@@ -177,15 +177,28 @@ def test_boxes_option_reaches_the_loaders(files, capsys):
     assert "dt.json: record 0: field 'bbox'" in capsys.readouterr().err
 
 
-@pytest.mark.parametrize("value", ["nan", "inf", "-inf", "abc"])
+@pytest.mark.parametrize(
+    "value",
+    # audit12 F9: Python's float reads 1_0, other scripts' digits and 1e-400 (as 0.0)
+    ["nan", "inf", "-inf", "abc", "1e400", "1_0", "\u0661", "\uff10.5", "1e-400", " 0.5"],
+)
 def test_non_finite_threshold_is_refused(inputs, capsys, value):
     """Strict JSON output: a NaN or infinite threshold would be written as NaN/Infinity,
-    which is not JSON (RFC 8259); argparse refuses it with exit 2."""
+    which is not JSON (RFC 8259); argparse refuses it with exit 2, and so a number not
+    written in ASCII decimal digits or too small for a float64 (it would cut at 0)."""
     gt, dt = inputs
     with pytest.raises(SystemExit) as exit_info:
         main(["score", "--truth", str(gt), "--predictions", str(dt), "--threshold", value])
     assert exit_info.value.code == 2
     assert "--threshold" in capsys.readouterr().err
+
+
+@pytest.mark.parametrize("value", ["0.5", ".5", "5.", "1e-3", "-0", "0e-999", "1E-300"])
+def test_decimal_thresholds_are_read(inputs, capsys, value):
+    gt, dt = inputs
+    argv = ["score", "--truth", str(gt), "--predictions", str(dt), "--format", "json"]
+    assert main([*argv, "--threshold", value]) == 0
+    assert json.loads(capsys.readouterr().out)["at_threshold"]["threshold"] == float(value)
 
 
 @pytest.mark.parametrize("name", ["records.csv", "records.jsonl"])

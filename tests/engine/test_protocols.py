@@ -89,6 +89,20 @@ def test_custom_thresholds_must_name_classes_of_the_split():
         ({"name": "x", "base": "yolo"}, r"field 'base': must be a preset \(coco, .*got 'yolo'"),
         ({"name": "x", "tie_order": "score"}, r"field 'tie_order': must be one of image, file"),
         ({"name": "x", "max_detections": 0}, r"field 'max_detections': must be a positive integer"),
+        # red team audit12 F1: an integer beyond float64 (1e400 written out) raised
+        # OverflowError in math.isfinite (exit 1 on the CLI, HTTP 500 on the API)
+        ({"name": "x", "iou_thresholds": [10**400]}, r"field 'iou_thresholds': item 0 = 1000"),
+        ({"name": "x", "recall_points": [0, 10**400]}, r"field 'recall_points': item 1 = 1000"),
+        ({"name": "x", "area_ranges": [["all", 0, 10**400]]}, r"field 'area_ranges\[0\]'"),
+        (
+            {"name": "x", "area_ranges": [["all", 0, 9], ["s", -(10**400), 4]]},
+            r"'area_ranges\[1\]'",
+        ),
+        ({"name": "x", "class_iou_thresholds": {"car": 10**400}}, r"IoU for 'car' must be in"),
+        # audit12 F9: booleans are not numbers here; a version must fit the platform's column
+        ({"name": "x", "version": True}, r"field 'version': must be a whole number from 1"),
+        ({"name": "x", "version": 2**31}, r"field 'version': must be a whole number from 1"),
+        ({"name": "x", "pixel_offset": True}, r"field 'pixel_offset': must be 0 or 1"),
     ],
 )
 def test_custom_protocol_errors_name_the_field(spec, pattern):
@@ -105,6 +119,9 @@ def test_a_custom_protocol_may_not_take_a_presets_name(name):
     numbers. Matching and level presets' names alike are refused, naming ``name``."""
     with pytest.raises(InputError, match=rf"field 'name': '{name}' is a preset's name"):
         protocol_from_dict({"name": name, "base": "coco"})
+    shouted = name.upper()  # audit12 F9: a suite could list both `coco` and `COCO`
+    with pytest.raises(InputError, match=rf"field 'name': '{shouted}' is a preset's name"):
+        protocol_from_dict({"name": shouted, "base": "coco"})
     # a name that merely contains a preset's is a name of its own
     assert protocol_from_dict({"name": f"{name}-night"}).name == f"{name}-night"
 

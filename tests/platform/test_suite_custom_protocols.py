@@ -99,6 +99,10 @@ def test_a_suite_defines_a_custom_protocol_scored_as_the_reference_scores_it(
         ({**IOU60, "matching": "hungarian"}, "protocols[0].matching", "must be"),
         ({**IOU60, "name": "coco"}, "protocols[0].name", "is a preset"),
         ({**IOU60, "name": "kitti2d"}, "protocols[0].name", "is a preset"),
+        ({**IOU60, "name": "COCO"}, "protocols[0].name", "is a preset"),  # audit12 F9
+        # audit12 F1: an integer beyond float64 gave HTTP 500 (OverflowError)
+        ({**IOU60, "iou_thresholds": [10**400]}, "protocols[0].iou_thresholds", "outside"),
+        ({**IOU60, "version": True}, "protocols[0].version", "whole number"),
         ({**IOU60, "name": "night iou!"}, "protocols[0].name", "a name of 1 to 32"),
         ({**IOU60, "stride": 2}, "protocols[0].stride", "unknown key"),
         ("nightly", "protocols[0]", "unknown protocol 'nightly'"),
