@@ -114,12 +114,13 @@ def check(path, truth, classes, wide, boxes=False):
     if not len(classes) and not boxes:
         return {}
     rows, big = _affected(path, truth, range(len(truth.classes)) if boxes else classes, wide)
-    replayed = np.unique(rows["cls"][np.isin(rows["record"], list(big))]).tolist()
+    seen = _looked_up(truth, rows)
+    replayed = np.unique(seen["cls"][np.isin(seen["record"], list(big))]).tolist()
     conflicts = {}
     for cap in CAPS:
-        found = [_replay(path, truth, _of_class(rows, k), big, k, cap) for k in replayed]
+        found = [_replay(path, truth, _of_class(seen, k), big, k, cap) for k in replayed]
         conflicts["none" if cap is None else str(cap)] = _joined([f for f in found if f])
-    conflicts[CITYSCALE] = _cityscale(path, truth, rows, big, replayed)
+    conflicts[CITYSCALE] = _cityscale(path, truth, seen, big, replayed)
     refusals = beyond_float64.refusals(path, truth, rows, big, CAPS, boxes, _values)
     for cap, refusal in refusals.items():  # refused under that cap (``score_conflict``)
         key = "none" if cap is None else str(cap)
@@ -128,6 +129,16 @@ def check(path, truth, classes, wide, boxes=False):
     if overflowing:  # where pycocotools' precision fill stops (``average_precision.fill_stops``)
         conflicts[beyond_float64.OVERFLOWING] = overflowing
     return conflicts
+
+
+def _looked_up(truth, rows):
+    """``rows`` less the detections ``evaluate`` never looks up (``GroundTruth.
+    looked_up``): on an image, or of a category's own id, that ``np.unique`` loses.
+    ``_dts[img, catId]`` of a lost category's entry holds only the detections written
+    with the value numpy changed its id into (``alias``), so only they are ranked
+    there, among themselves: one list, typed by numpy from their values alone."""
+    seen = truth.looked_up(rows["image"], rows["cls"], rows["alias"])
+    return rows if seen.all() else {name: column[seen] for name, column in rows.items()}
 
 
 def _of_class(rows, k):
@@ -220,7 +231,9 @@ def _replay(path, truth, rows, big, k, cap, kept=None, who=_PYCOCOTOOLS):
     pycocotools raises; the engine scores them as 1 and 0)."""
     by_image = np.argsort(rows["image"], kind="stable")  # file order within an image
     starts = np.searchsorted(rows["image"][by_image], np.arange(truth.n_images + 1))
-    with_truth = np.unique(truth.box_image[truth.box_class == k])
+    left_out = truth.left_out_boxes(True)  # never found: the lost entries' own boxes
+    found = truth.box_class == k if left_out is None else (truth.box_class == k) & ~left_out
+    with_truth = np.unique(truth.box_image[found])
     images = np.union1d(np.unique(rows["image"]), with_truth)  # pycocotools' E, in order
     theirs_lists, joined, first = [], [], None
     rank = np.zeros(len(rows["image"]), np.int64)
