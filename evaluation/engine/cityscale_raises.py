@@ -33,10 +33,9 @@ read them. ``check`` also raises, in the script's order, what ``cityscale_boxes`
 import numpy as np
 
 from . import cityscale_boxes
-from .data import ALIAS_IMAGE
 from .errors import InputError
 from .loaders import lost_ids
-from .pedestrian_setups import HEIGHT_EXPANSION, category_one  # Params.expFilter
+from .pedestrian_setups import HEIGHT_EXPANSION  # Params.expFilter
 
 
 def check(truth, predictions, protocol):
@@ -44,10 +43,6 @@ def check(truth, predictions, protocol):
     order; in a setup ``_prepare`` before ``evaluateImg``, then ``accumulate``'s
     boolean scores: ``Predictions.cityscale_booleans``), or return None."""
     faults = truth.cityscale_faults or {}
-    one = category_one(truth)
-    for box, record, message, _ in faults.get(lost_ids.CHANGED_VALUE, ()):
-        if truth.alias[box] & ALIAS_IMAGE and one[truth.box_class[box]]:  # read there
-            raise InputError(truth.source, message, record=record, field="image_id")
     booleans = predictions.cityscale_booleans()
     load, boxes = cityscale_boxes.first_raises(truth, predictions) or (None, {})
     if load is not None:  # loadRes, before any setup
@@ -96,14 +91,16 @@ def _prepared(truth):
     numpy rounded equals its rounded value (numpy converts the int to compare it), so
     its annotations are fetched and read, though never evaluated under it
     (``GroundTruth.looked_up``); a text id cut of its trailing U+0000 is not, nor a
-    NaN (numpy's NaN is another object than the file's, and NaN == NaN is false)."""
+    NaN (numpy's NaN is another object than the file's, and NaN == NaN is false). A box
+    written with the value numpy changed a lost id into (``GroundTruth.alias``) is
+    fetched under that value: ``imgToAnns[C]``, ``C in catIds``."""
     lost = truth.unique_lost_masks()
     if lost is None:
         return np.ones(truth.n_boxes, bool)
     images, classes = lost
     nan = np.asarray(truth.class_ids) == "nan"
     classes = lost_ids.unfetched_classes(classes, nan, truth.class_id_type)
-    return ~(images[truth.box_image] | classes[truth.box_class])
+    return ~(images[truth.box_image] | classes[truth.box_class]) | truth.alias_boxes()
 
 
 def _raise_box(path, record, field, why):
@@ -130,10 +127,13 @@ def _ignore_fault(truth, predictions, protocol, setup, height, visibility):
     exact = _exact_ranks(predictions) if cap is not None else None
     n_classes = max(len(truth.classes), 1)
     pair = predictions.image.astype(np.int64) * n_classes + predictions.cls
-    order = np.argsort(pair, kind="stable")  # per (image, class), file order within
+    found = truth.looked_up(predictions.image, predictions.cls, predictions.alias)
+    order = np.flatnonzero(found)  # the detections _dts[img, catId] holds
+    order = order[np.argsort(pair[order], kind="stable")]  # per (image, class), file order
     pair = pair[order]
     first = None
-    seen = truth.looked_up(truth.box_image[boxes], truth.box_class[boxes])
+    left_out = truth.left_out_boxes(True)  # a lost entry's own boxes: not in _gts
+    seen = np.ones(len(boxes), bool) if left_out is None else ~left_out[boxes]
     for (box, record, message, truthy), counted, looked in zip(entries, inside, seen):
         if not counted or not looked:  # _prepare set ignore = 1 there, or never ran
             continue

@@ -143,9 +143,9 @@ def evaluate_setups_with_samples(truth, predictions, protocol="miss-rate"):
     fraction = truth.cityscale_ignore()[1] if void is not None else None
     bad_ids = [{e[0]: e for e in truth.cityscale_faults.get("id", ())}] if void is not None else []
     bad_ids = [faults for faults in bad_ids if faults]
+    script = protocol.variant == "cityscale"
     height = setup_height(truth, protocol)
     visibility = setup_visibility(truth, protocol)
-    script = protocol.variant == "cityscale"
     det_height = predictions.boxes[:, 3]
     det_boxes = predictions.boxes
     gt_resized = None
@@ -162,14 +162,17 @@ def evaluate_setups_with_samples(truth, predictions, protocol="miss-rate"):
         classes.append(truth.classes[k])
         own = truth.box_class == k
         part = own | np.isin(truth.box_class, near)
-        if truth.alias is not None:  # under a changed value: the toolbox keeps every id
-            own, part = own & ~truth.alias_boxes(), part & ~truth.alias_boxes()
+        alias = truth.alias_boxes()
+        if not script:  # under a changed value: the toolbox keeps every id, leaves it out
+            own, part = own & ~alias, part & ~alias
         scenes = []  # per image: its boxes of the class or a neighbour, its detections
         for image in range(n_images):
-            if lost is not None and lost[image]:
-                continue
             g = gt_by_image[image]
             g = g[part[g]]
+            if lost is not None and lost[image]:  # the script's _gts[C, 1]: alias boxes
+                if alias[g].any():  # only, and no detection (loadRes: listed images)
+                    scenes.append((image, g[alias[g]], g[:0]))
+                continue
             d = det_by_image[image]
             d = d[(predictions.cls[d] == k) & ~det_alias[d]]
             if protocol.variant == "toolbox":  # MATLAB's sort: NaN scores first

@@ -54,13 +54,16 @@ def lost_images(truth, protocol):
 def not_counted(truth, protocol):
     """Per box, whether it never counts: a flag makes it an ignore box
     (``ignore_flags``), its image is lost (``lost_images``), or it is written with a
-    value ``np.unique`` changed a lost id into (``GroundTruth.alias``: the toolbox keeps
-    every id and leaves it out; the script's reading of it is refused)."""
+    value ``np.unique`` changed a lost id into (``GroundTruth.alias``): the toolbox
+    keeps every id and leaves it out; the CityPersons script finds it under the lost
+    entry (``imgToAnns[C]``, ``_gts[C, 1]``) and counts it there, as a lost image's
+    own boxes are not."""
     flagged = ignore_flags(truth, protocol)
-    if truth.alias is not None:
-        flagged = flagged | truth.alias_boxes()
+    alias = truth.alias_boxes()
+    if protocol.variant != "cityscale":
+        flagged = flagged | alias
     lost = lost_images(truth, protocol)
-    return flagged if lost is None else flagged | lost[truth.box_image]
+    return flagged if lost is None else flagged | (lost[truth.box_image] & ~alias)
 
 
 def image_count(truth, protocol):

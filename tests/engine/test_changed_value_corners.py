@@ -13,9 +13,14 @@ import json
 
 import numpy as np
 import pytest
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
 
 from evaluation.engine import COCO_SUMMARY_KEYS, evaluate, load_predictions, load_truth
+from evaluation.engine.pedestrian import setup_counts
 
+from . import pedestrian_oracle
+from . import test_cityscale_raises as city
 from .conftest import as_reference, pycocotools_eval
 
 BIG = 2**53  # float64 holds 2^53 + 1 as 2^53
@@ -90,3 +95,90 @@ def test_wide_integer_scores_are_ranked_in_the_entry_pycocotools_ranks_them_in(t
     truth = load_truth(tmp_path / "gt.json")
     conflicts = load_predictions(tmp_path / "dt.json", truth).score_conflicts or {}
     assert not any(conflicts.get(key) for key in ("100", "none"))
+
+
+# -- 1. miss-rate-cityscale: the CityPersons script's _gts[C, 1] ----------------------
+
+WIDE = 2**63  # images [2^63 + 1, 5]: numpy's float64 makes 2^63 + 1 into 2^63
+
+
+def _city_case(extra):
+    """Images 2^63 + 1 (lost: 2^63) and 5; on image 5 a box, a hit and a false alarm;
+    ``extra``: annotations of the unlisted image 2^63 (category 1 unless given)."""
+    anns = [_city_ann(1, 5, 10.0), *[_city_ann(n + 2, WIDE, *a) for n, a in enumerate(extra)]]
+    dets = [city._det(10.0, score=0.9, image_id=5), city._det(900.0, score=0.5, image_id=5)]
+    dets.append(city._det(300.0, score=0.7, image_id=WIDE + 1))  # the lost image's own
+    return city._dataset(anns, images=(WIDE + 1, 5)), dets
+
+
+def _city_ann(n, image, x, h=100.0, category=1, **keys):
+    return city._ann(n, x, h=h, image_id=image, category_id=category, **keys)
+
+
+@pytest.mark.parametrize(
+    "extra",
+    [
+        [(300.0,), (600.0,)],  # two counted misses under the lost entry
+        [(300.0, 60.0)],  # small only: the setups differ
+        [(300.0, 100.0, 1, {"ignore": 1}), (600.0, 30.0)],  # an ignore box; `all` only
+        [(300.0, 100.0, 1, {"vis_ratio": 0.3})],  # heavy
+        [(300.0, 100.0, 2)],  # category 2: never accumulated
+    ],
+)
+def test_cityscale_scores_an_image_alias_box_as_the_script(tmp_path, extra):
+    """``pedestrian_oracle.cityscale_coco`` (the CityPersons script's ``_prepare``
+    finds ``imgToAnns[2^63]``, ``evaluateImg`` reads ``_gts[2^63, 1]``): the miss
+    rates of every setup, nine references each; the split page's counts too."""
+    split, dets = _city_case([])
+    for n, (x, *rest) in enumerate(extra):
+        keys = rest.pop() if rest and isinstance(rest[-1], dict) else {}
+        split["annotations"].append(_city_ann(n + 2, WIDE, x, *rest, **keys))
+    gt, dt = city._write(tmp_path, split, dets)
+    ours = city._agree(gt, dt)
+    plain = {**split, "annotations": split["annotations"][:1]}
+    if any(rest[1:2] != [2] for _, *rest in extra):  # category 1: the numbers move
+        script = pedestrian_oracle.cityscale_script(split, dets)
+        assert script != pedestrian_oracle.cityscale_script(plain, dets)
+    counts = setup_counts(load_truth(gt), "miss-rate-cityscale")
+    for setup, (mean_s, _) in zip(city.SETUPS, pedestrian_oracle.cityscale_script(split, dets)):
+        assert (counts[setup]["c1"] > 0) == (mean_s != -1), setup
+    assert ours["n_images"] == 2
+
+
+@settings(
+    max_examples=40, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture]
+)
+@given(data=st.data())
+def test_cityscale_random_files_with_alias_boxes_equal_the_script(tmp_path, data):
+    """Random boxes (heights, visibilities, ignore flags, categories 1 and 2) on image
+    5, on the lost image 2^63 + 1 and on the unlisted 2^63 it is found under, and
+    detections on the listed images: ``pedestrian_oracle.cityscale_script``'s miss
+    rates for every setup (or its refusal)."""
+    images = st.sampled_from([5, WIDE + 1, WIDE])
+    box = st.tuples(
+        images,
+        st.sampled_from([10.0, 300.0, 600.0]),
+        st.sampled_from([30.0, 60.0, 100.0]),
+        st.sampled_from([1, 1, 2]),
+        st.sampled_from([0.3, 1.0]),
+        st.sampled_from([0, 0, 1]),
+    )
+    boxes = data.draw(st.lists(box, min_size=1, max_size=7))
+    anns = [
+        _city_ann(n + 1, i, x, h, c, vis_ratio=v, ignore=g)
+        for n, (i, x, h, c, v, g) in enumerate(boxes)
+    ]
+    det = st.tuples(
+        st.sampled_from([5, WIDE + 1]),
+        st.sampled_from([10.0, 300.0, 900.0]),
+        st.sampled_from([60.0, 100.0]),
+        st.integers(1, 9),
+    )
+    dets = [
+        city._det(x, h=h, score=s / 10, image_id=i)
+        for i, x, h, s in data.draw(st.lists(det, min_size=1, max_size=6))
+    ]
+    gt, dt = city._write(
+        tmp_path, city._dataset(anns, images=(WIDE + 1, 5), categories=(1, 2)), dets
+    )
+    city._agree(gt, dt)

@@ -57,13 +57,17 @@ def refusal(path, truth, rows, big, classes):
 
 def _in_e(truth, k, image):
     """Per image of the split, whether ``evaluateImg`` of the class is not None (never
-    for an image whose id ``np.unique`` loses: ``GroundTruth.looked_up``)."""
+    for an image whose id ``np.unique`` loses, ``GroundTruth.looked_up``, unless boxes
+    written with the value numpy changed its id into are found there: ``_gts[C, 1]``,
+    ``GroundTruth.alias``)."""
     part = np.isin(truth.box_class, [k] + neighbours_of(truth, MISS_RATE_CITYSCALE, k))
     out = np.zeros(truth.n_images, bool)
     out[truth.box_image[part]] = True
     out[truth.region_image] = True
     out[image] = True
-    return out & truth.looked_up(np.arange(truth.n_images), np.full(truth.n_images, k))
+    out &= truth.looked_up(np.arange(truth.n_images), np.full(truth.n_images, k))
+    out[truth.box_image[part & truth.alias_boxes()]] = True
+    return out
 
 
 def _first_setup(truth, rows, big, k):

@@ -14,17 +14,6 @@ from ..data import ALIAS_CLASS, ALIAS_IMAGE
 from ..errors import InputError
 from . import ids as ids_module
 
-#: ``GroundTruth.cityscale_faults`` field of the annotations scored under a changed
-#: value (``GroundTruth.alias``): the CityPersons script would score them there, which
-#: ``miss-rate-cityscale`` refuses (``cityscale_raises.check``).
-CHANGED_VALUE = "changed_value"
-CHANGED_VALUE_WHY = (
-    "this annotation names no listed image or category, but the CityPersons script's "
-    "np.unique changes a listed image id into the value it is written with and then "
-    "scores it under that image, which this protocol does not reproduce (list its "
-    "image, or leave the annotation out)"
-)
-
 
 def unique_lost(ids, id_type, kinds, listed=None):
     """``(positions, by_type, merged)``: the ids (``GroundTruth`` ids of ``id_type``,

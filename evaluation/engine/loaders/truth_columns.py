@@ -194,11 +194,6 @@ def read_truth(
         if aliases is not None:  # kept as boxes of the lost entry, marked
             cols["box_alias"], cols["box_image_ids"], cols["box_class_ids"] = aliases
             annotation_counts[UNDER_CHANGED_VALUE] = int((aliases[0] != 0).sum())
-            for row in np.flatnonzero(aliases[0]).tolist():
-                city_rows.setdefault(row, {})[lost_ids.CHANGED_VALUE] = (
-                    lost_ids.CHANGED_VALUE_WHY,
-                    True,
-                )
         lost_images = image_ids[lost["image"][0]] if len(lost["image"][0]) else None
         rows, resolved = annotation_index.resolve(
             cols, image_ids, class_ids, lost_images, by_category
