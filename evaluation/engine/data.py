@@ -10,8 +10,10 @@ import numpy as np
 
 from .score_conflicts import ScoreConflictReadings
 
-#: ``GroundTruth.alias`` bits: the image, the category written with a changed value.
-ALIAS_IMAGE, ALIAS_CLASS = 1, 2
+#: ``GroundTruth.alias`` bits: the image, the category written with a changed value;
+#: a copy of a last annotation made by a repeated id on such an annotation (``loadAnns``
+#: of an occurrence only pycocotools' ``getAnnIds`` fetches: no other reading has it).
+ALIAS_IMAGE, ALIAS_CLASS, ALIAS_COPY = 1, 2, 4
 
 #: Per-box road attributes of ``GroundTruth`` (NaN where not given).
 ATTRIBUTES = ("occlusion", "truncation", "visibility")

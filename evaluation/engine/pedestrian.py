@@ -144,6 +144,7 @@ def evaluate_setups_with_samples(truth, predictions, protocol="miss-rate"):
     bad_ids = [{e[0]: e for e in truth.cityscale_faults.get("id", ())}] if void is not None else []
     bad_ids = [faults for faults in bad_ids if faults]
     script = protocol.variant == "cityscale"
+    left_out = truth.left_out_boxes(True) if script else None
     height = setup_height(truth, protocol)
     visibility = setup_visibility(truth, protocol)
     det_height = predictions.boxes[:, 3]
@@ -163,6 +164,7 @@ def evaluate_setups_with_samples(truth, predictions, protocol="miss-rate"):
         own = truth.box_class == k
         part = own | np.isin(truth.box_class, near)
         alias = truth.alias_boxes()
+        found = None if left_out is None else ~left_out  # what _gts holds (the script)
         if not script:  # under a changed value: the toolbox keeps every id, leaves it out
             own, part = own & ~alias, part & ~alias
         scenes = []  # per image: its boxes of the class or a neighbour, its detections
@@ -170,8 +172,8 @@ def evaluate_setups_with_samples(truth, predictions, protocol="miss-rate"):
             g = gt_by_image[image]
             g = g[part[g]]
             if lost is not None and lost[image]:  # the script's _gts[C, 1]: alias boxes
-                if alias[g].any():  # only, and no detection (loadRes: listed images)
-                    scenes.append((image, g[alias[g]], g[:0]))
+                if found is not None and found[g].any():  # only, no detection (loadRes)
+                    scenes.append((image, g[found[g]], g[:0]))
                 continue
             d = det_by_image[image]
             d = d[(predictions.cls[d] == k) & ~det_alias[d]]

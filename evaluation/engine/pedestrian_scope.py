@@ -59,11 +59,10 @@ def not_counted(truth, protocol):
     entry (``imgToAnns[C]``, ``_gts[C, 1]``) and counts it there, as a lost image's
     own boxes are not."""
     flagged = ignore_flags(truth, protocol)
-    alias = truth.alias_boxes()
     if protocol.variant != "cityscale":
-        flagged = flagged | alias
-    lost = lost_images(truth, protocol)
-    return flagged if lost is None else flagged | (lost[truth.box_image] & ~alias)
+        return flagged | truth.alias_boxes()
+    left_out = truth.left_out_boxes(True)  # what the script's _gts never holds
+    return flagged if left_out is None else flagged | left_out
 
 
 def image_count(truth, protocol):

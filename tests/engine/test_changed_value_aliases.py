@@ -448,24 +448,6 @@ def test_random_small_files_equal_pycocotools(tmp_path, data):
     _equal_pycocotools(evaluate(truth, load_predictions(dt, truth), "coco"), truth, reference)
 
 
-def test_a_repeated_id_on_an_alias_annotation_is_refused(tmp_path):
-    """``loadAnns`` resolves an annotation id to the last annotation with it, which
-    would move an alias box's copy elsewhere: not reproduced, the file is refused,
-    naming the annotation and ``id`` (a known limit)."""
-    split = {
-        "images": [{"id": i, "width": 640, "height": 480} for i in (2**63 + 1, 5)],
-        "categories": [{"id": 1, "name": "car"}],
-        "annotations": [
-            {"id": 1, "image_id": 5, "category_id": 1, "bbox": [1, 1, 9, 9], "area": 81},
-            {"id": 1, "image_id": 2**63, "category_id": 1, "bbox": [1, 1, 9, 9], "area": 81},
-        ],
-    }
-    gt, _ = _write(tmp_path, split, [])
-    with pytest.raises(InputError, match="repeated") as error:
-        load_truth(gt)
-    assert (error.value.record, error.value.field) == ("annotations[1]", "id")
-
-
 def test_a_csv_file_names_classes_not_ids(tmp_path):
     """pycocotools reads no CSV: a detections CSV's unknown label is dropped as before
     on a split with a lost category (no changed value read into a class name)."""

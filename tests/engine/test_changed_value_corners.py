@@ -182,3 +182,97 @@ def test_cityscale_random_files_with_alias_boxes_equal_the_script(tmp_path, data
         tmp_path, city._dataset(anns, images=(WIDE + 1, 5), categories=(1, 2)), dets
     )
     city._agree(gt, dt)
+
+
+# -- 2. a repeated annotation id on an alias annotation ---------------------------------
+
+LOST_IMAGE = [{"id": i, "width": 640, "height": 480} for i in (2**63 + 1, 5)]
+LOST_CATEGORY = [{"id": 0.5, "name": "a"}, {"id": BIG + 1, "name": "b"}]
+
+#: ``(images, categories, annotations as (id, image, category, x))``: an alias annotation
+#: (image 2^63 under the lost 2^63 + 1; category 2^53 under the lost 2^53 + 1) sharing
+#: its id with an annotation of a listed entry, before or after it (``loadAnns`` keeps
+#: the last: each fetched occurrence becomes a copy of it), or with a lost entry's own.
+REPEATS = {
+    "image alias last": (LOST_IMAGE, [{"id": 1, "name": "b"}], [(1, 5, 1, 10), (1, WIDE, 1, 300)]),
+    "image alias first": (LOST_IMAGE, [{"id": 1, "name": "b"}], [(1, WIDE, 1, 300), (1, 5, 1, 10)]),
+    "image alias and the lost image's own": (
+        LOST_IMAGE,
+        [{"id": 1, "name": "b"}],
+        [(2, 5, 1, 10), (1, WIDE, 1, 300), (1, WIDE + 1, 1, 500)],
+    ),
+    "category alias last": (
+        [{"id": 5, "width": 640, "height": 480}],
+        LOST_CATEGORY,
+        [(1, 5, 0.5, 10), (1, 5, BIG, 300)],
+    ),
+    "category alias first": (
+        [{"id": 5, "width": 640, "height": 480}],
+        LOST_CATEGORY,
+        [(1, 5, BIG, 300), (1, 5, BIG + 1, 500), (1, 5, 0.5, 10)],
+    ),
+}
+
+
+def _repeat_files(images, categories, anns):
+    split = {
+        "images": images,
+        "categories": categories,
+        "annotations": [_box(i, c, x, n) for n, i, c, x in anns],
+    }
+    dets = [  # a hit on each box of a listed image (loadRes takes no other)
+        _det(i, c, x, 0.5 + x / 1e4) for _, i, c, x in anns if i != WIDE
+    ]
+    dets.append(_det(5, 1, 300, 0.4))  # on image 5 where the image alias box lies
+    return split, dets
+
+
+@pytest.mark.parametrize("case", REPEATS)
+def test_a_repeated_id_on_an_alias_annotation_is_scored_as_pycocotools(tmp_path, case):
+    """pycocotools 2.0.11 on the file (every summary number, per-class AP); the VOC
+    reading reads it as the file whose alias annotation names an unrelated unlisted
+    image or category (an unlisted id's annotation is never fetched: no copy of it,
+    none made by it), as it treats repeated ids."""
+    split, dets = _repeat_files(*REPEATS[case])
+    _equal_pycocotools(tmp_path, split, dets)
+    other = json.loads(json.dumps(split))
+    for ann in other["annotations"]:
+        if ann["image_id"] == WIDE:
+            ann["image_id"] = 9
+        if ann["category_id"] == BIG:
+            ann["category_id"] = 4
+    gt, dt = _write(tmp_path, other, dets, "-other")
+    truth_other = load_truth(gt)
+    truth = load_truth(tmp_path / "gt.json")
+    for protocol in ("voc", "voc07"):
+        ours = evaluate(truth, load_predictions(tmp_path / "dt.json", truth), protocol)
+        theirs = evaluate(truth_other, load_predictions(dt, truth_other), protocol)
+        assert ours["summary"] == theirs["summary"], protocol
+        assert ours["per_class"] == theirs["per_class"], protocol
+
+
+@settings(
+    max_examples=60, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture]
+)
+@given(data=st.data())
+def test_random_repeated_ids_beside_alias_annotations_equal_pycocotools(tmp_path, data):
+    """Random annotations (ids from 1 to 4, so repeated) on listed, lost, unlisted and
+    changed-value images and categories, detections on the listed images:
+    pycocotools 2.0.11's numbers, per class too."""
+    images = [{"id": i, "width": 640, "height": 480} for i in (2**63 + 1, 3, 5)]
+    categories = [{"id": c, "name": f"k{n}"} for n, c in enumerate((0.5, BIG + 1, 2))]
+    image_refs = st.sampled_from([2**63 + 1, 3, 5, WIDE, 9])
+    category_refs = st.sampled_from([0.5, BIG + 1, 2, BIG, 4])
+    ann = st.tuples(st.integers(1, 4), image_refs, category_refs, st.sampled_from([10, 300, 500]))
+    anns = [(4, WIDE, 2, 10), (3, 3, BIG, 300)] + data.draw(st.lists(ann, max_size=8))
+    det = st.tuples(st.sampled_from([3, 5]), category_refs, st.sampled_from([10, 300, 500]))
+    dets = [
+        _det(i, c, x + 1, 0.1 * (n + 1))
+        for n, (i, c, x) in enumerate(data.draw(st.lists(det, min_size=1)))
+    ]
+    split = {
+        "images": images,
+        "categories": categories,
+        "annotations": [_box(i, c, x, n) for n, i, c, x in anns],
+    }
+    _equal_pycocotools(tmp_path, split, dets)

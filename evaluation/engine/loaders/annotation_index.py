@@ -29,6 +29,7 @@ duplicate ids and names and unknown images or categories, naming the record.
 
 import numpy as np
 
+from ..data import ALIAS_COPY
 from . import unread_fields
 
 ANNOTATION_POLICIES = ("reference", "strict")
@@ -103,6 +104,12 @@ def resolve(cols, image_ids, class_ids, lost_images=None, by_category=None):
     ``(rows, counts)``; ``rows`` is None when nothing changes (no duplicate id, every
     image and category listed), so the common file keeps its order and content
     exactly.
+
+    An annotation written with the value ``np.unique`` changed a lost id into
+    (``cols["box_alias"]``, ``lost_ids.changed_value_refs``: its ids already the lost
+    entry's) is fetched under that value; a repeated id on it makes a copy of the last
+    annotation, which only pycocotools' reading has (bit ``ALIAS_COPY``: the others
+    read it as an annotation of an unlisted id), and a copy of it keeps its bits.
     """
     box_images, box_classes = cols["box_image_ids"], cols["box_class_ids"]
     known_image = np.isin(box_images, image_ids)
@@ -111,10 +118,13 @@ def resolve(cols, image_ids, class_ids, lost_images=None, by_category=None):
     last = _last_of_each_id(cols["box_ids"])
     copies = last != np.arange(len(last))
     never = extra = np.zeros(len(last), bool)
+    alias = cols.get("box_alias")
     if copies.any() and (lost_images is not None or by_category is not None):
         fetched = known_image & (known_class if by_category is None else by_category)
         if lost_images is not None:
             fetched &= ~np.isin(box_images, lost_images)
+        if alias is not None:  # imgToAnns[C], ``C in catIds``: fetched
+            fetched |= alias != 0
         never = selected & copies & ~fetched
         selected = selected & ~never  # not fetched: no copy of the last is made
         extra = fetched & copies & ~known_class  # an unlisted category numpy's == finds
@@ -134,8 +144,11 @@ def resolve(cols, image_ids, class_ids, lost_images=None, by_category=None):
     rank = by_key[np.searchsorted(image_ids[by_key], box_images[picked])]
     picked = picked[np.argsort(rank, kind="stable")]
     rows = last[picked]
-    rows = rows[selected[rows]]  # a copy lands where its last annotation points
-    return rows, counts
+    landed = selected[rows]  # a copy lands where its last annotation points
+    if alias is not None:  # the copies only an alias occurrence makes
+        made = (alias[picked] != 0) & (alias[rows] == 0)
+        cols["box_alias_copies"] = made[landed]
+    return rows[landed], counts
 
 
 def last_entries(cols):
@@ -184,10 +197,14 @@ def rename_shared_names(names, shown_ids):
 
 
 def take(cols, rows):
-    """``cols`` with every per-annotation column reduced to ``rows``."""
+    """``cols`` with every per-annotation column reduced to ``rows`` (``resolve``'s:
+    a copy only an alias occurrence makes gets ``ALIAS_COPY``)."""
     for name in PER_ANNOTATION:
         if name not in cols:  # ``box_alias``: only where some annotation is one
             continue
         values = cols[name]
         cols[name] = values[rows] if isinstance(values, np.ndarray) else [values[i] for i in rows]
+    made = cols.pop("box_alias_copies", None)
+    if made is not None and made.any():
+        cols["box_alias"][made] |= ALIAS_COPY
     return cols

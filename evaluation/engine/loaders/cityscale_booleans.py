@@ -61,12 +61,12 @@ def _in_e(truth, k, image):
     written with the value numpy changed its id into are found there: ``_gts[C, 1]``,
     ``GroundTruth.alias``)."""
     part = np.isin(truth.box_class, [k] + neighbours_of(truth, MISS_RATE_CITYSCALE, k))
+    left_out = truth.left_out_boxes(True)  # a lost entry's own boxes: not in _gts
     out = np.zeros(truth.n_images, bool)
-    out[truth.box_image[part]] = True
     out[truth.region_image] = True
     out[image] = True
     out &= truth.looked_up(np.arange(truth.n_images), np.full(truth.n_images, k))
-    out[truth.box_image[part & truth.alias_boxes()]] = True
+    out[truth.box_image[part if left_out is None else part & ~left_out]] = True
     return out
 
 

@@ -111,8 +111,8 @@ def changed_value_refs(path, cols, image_ids, class_ids, lost):
     order) its ``GroundTruth.alias`` bits, and the id columns with each such one's id
     made the lost entry's (the loader then keeps it as a box of that entry). Only an
     annotation whose other id pycocotools finds too is one (a listed id it does not
-    lose, or a changed value). A repeated annotation id on one is refused, naming it
-    (``loadAnns`` would put the last annotation of that id there)."""
+    lose, or a changed value). A repeated annotation id on one makes a copy of the last
+    annotation of that id (``annotation_index.resolve``)."""
     lost_images, lost_classes = image_ids[lost["image"][0]], class_ids[lost["class"][0]]
     if not (len(lost_images) or len(lost_classes)):
         return None
@@ -139,7 +139,6 @@ def changed_value_refs(path, cols, image_ids, class_ids, lost):
     hits = scored[0] & scored[1] & (via[0] | via[1])
     if not hits.any():
         return None
-    _refuse_repeated(path, cols["box_ids"], hits)
     alias = np.zeros(len(hits), np.int8)
     columns = []
     for bit, (column, _, lost_ids_), changed, target in zip(
@@ -151,22 +150,6 @@ def changed_value_refs(path, cols, image_ids, class_ids, lost):
         values[changed] = lost_ids_[target[changed]]
         columns.append(values)
     return alias, *columns
-
-
-def _refuse_repeated(path, box_ids, hits):
-    """Refuse an annotation scored under a changed value whose id another annotation
-    repeats (``loadAnns`` resolves an id to its last annotation: not read here)."""
-    ids = np.asarray(box_ids)
-    for row in np.flatnonzero(hits).tolist():
-        if int((ids == ids[row]).sum()) > 1:
-            raise InputError(
-                path,
-                f"id {ids_module.shown(as_typed_keys(ids[row : row + 1])[0])} is repeated, "
-                "and this annotation is one pycocotools scores under the value its "
-                "np.unique changed a listed id into: give it an id of its own",
-                record=f"annotations[{row}]",
-                field="id",
-            )
 
 
 def as_typed_keys(ids):

@@ -203,7 +203,10 @@ def read_truth(
         _raise_if_scored(path, bad_rows, rows, len(cols["boxes"]), unread)
         if len(unread):  # never read by pycocotools: left out, counted
             kept = np.arange(len(cols["boxes"])) if rows is None else rows
-            rows = kept[~np.isin(kept, unread)]
+            keep = ~np.isin(kept, unread)
+            rows = kept[keep]
+            if "box_alias_copies" in cols:  # annotation_index.resolve's, per row
+                cols["box_alias_copies"] = cols["box_alias_copies"][keep]
             annotation_counts["unreadable_on_lost_ids"] = len(unread)
         if rows is not None:
             annotation_index.take(cols, rows)
