@@ -351,11 +351,15 @@ def cityscale_coco(dataset, results, id_setup):
     # numbers, but it raised on a null vis_ratio of an unlisted image, as the script
     # does not.) getAnnIds keeps an annotation when ``ann['category_id'] in catIds``, a
     # list test by ``==``: a numeric id numpy rounded still equals its rounded value.
-    by_image = {}
+    # loadAnns(ids) is ``[self.anns[id] for id in ids]``, ``anns`` filled in file order
+    # by createIndex (pycocotools 2.0.11's coco.py, the script's COCO): a repeated id
+    # gives the last annotation with it, once per fetched occurrence.
+    by_image, anns = {}, {}
     for ann in dataset["annotations"]:
         by_image.setdefault(ann["image_id"], []).append(ann)
+        anns[ann["id"]] = ann
     gts_all = copy.deepcopy(
-        [a for i in img_ids for a in by_image.get(i, []) if a["category_id"] in cat_ids]
+        [anns[a["id"]] for i in img_ids for a in by_image.get(i, []) if a["category_id"] in cat_ids]
     )
     for gt in gts_all:
         gt["ignore"] = gt["ignore"] if "ignore" in gt else 0

@@ -16,7 +16,13 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from evaluation.engine import COCO_SUMMARY_KEYS, evaluate, load_predictions, load_truth
+from evaluation.engine import (
+    COCO_SUMMARY_KEYS,
+    InputError,
+    evaluate,
+    load_predictions,
+    load_truth,
+)
 from evaluation.engine.pedestrian import setup_counts
 
 from . import pedestrian_oracle
@@ -146,14 +152,15 @@ def test_cityscale_scores_an_image_alias_box_as_the_script(tmp_path, extra):
 
 
 @settings(
-    max_examples=40, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture]
+    max_examples=80, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture]
 )
 @given(data=st.data())
 def test_cityscale_random_files_with_alias_boxes_equal_the_script(tmp_path, data):
     """Random boxes (heights, visibilities, ignore flags, categories 1 and 2) on image
     5, on the lost image 2^63 + 1 and on the unlisted 2^63 it is found under, and
-    detections on the listed images: ``pedestrian_oracle.cityscale_script``'s miss
-    rates for every setup (or its refusal)."""
+    detections on the listed images, annotation ids repeated at random (``loadAnns``
+    keeps the last of an id): ``pedestrian_oracle.cityscale_script``'s miss rates for
+    every setup (or its refusal)."""
     images = st.sampled_from([5, WIDE + 1, WIDE])
     box = st.tuples(
         images,
@@ -164,9 +171,9 @@ def test_cityscale_random_files_with_alias_boxes_equal_the_script(tmp_path, data
         st.sampled_from([0, 0, 1]),
     )
     boxes = data.draw(st.lists(box, min_size=1, max_size=7))
+    ids = data.draw(st.lists(st.integers(1, 5), min_size=len(boxes), max_size=len(boxes)))
     anns = [
-        _city_ann(n + 1, i, x, h, c, vis_ratio=v, ignore=g)
-        for n, (i, x, h, c, v, g) in enumerate(boxes)
+        _city_ann(n, i, x, h, c, vis_ratio=v, ignore=g) for n, (i, x, h, c, v, g) in zip(ids, boxes)
     ]
     det = st.tuples(
         st.sampled_from([5, WIDE + 1]),
@@ -276,3 +283,25 @@ def test_random_repeated_ids_beside_alias_annotations_equal_pycocotools(tmp_path
         "annotations": [_box(i, c, x, n) for n, i, c, x in anns],
     }
     _equal_pycocotools(tmp_path, split, dets)
+
+
+@pytest.mark.parametrize("alias", [True, False])
+def test_cityscale_boolean_scores_beside_an_alias_box(tmp_path, alias):
+    """Boolean scores on image 5: the script's ``accumulate`` joins them with the empty
+    float64 list of the lost image's entry where an alias box puts it in ``E``
+    (scored), and raises on the boolean array without it (refused, naming the record):
+    ``pedestrian_oracle.cityscale_script``; through a cached load too."""
+    anns = [city._ann(1, 10.0, image_id=5)]
+    if alias:
+        anns.append(city._ann(2, 300.0, image_id=WIDE))
+    dets = [city._det(10.0, score=True, image_id=5), city._det(900.0, score=False, image_id=5)]
+    gt, dt = city._write(tmp_path, city._dataset(anns, images=(WIDE + 1, 5)), dets)
+    script = city._script(gt, dt)
+    assert isinstance(script, TypeError) != alias
+    for cache in (None, tmp_path / "cache", tmp_path / "cache"):
+        if alias:
+            city._agree(gt, dt, cache=cache)
+            continue
+        with pytest.raises(InputError, match="TypeError") as error:
+            city._ours(gt, dt, cache)
+        assert (error.value.record, error.value.field) == ("record 0", "score")
