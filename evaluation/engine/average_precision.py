@@ -20,6 +20,27 @@ def recall_score(points):
     return recall
 
 
+def recall_point_mean(precision, axis=1, running=False):
+    r"""AP from precision sampled at :math:`n` recall points (``axis``).
+
+    .. math:: AP = \frac{1}{n} \sum_{r} \hat p(r)
+
+    Summed as each reference sums it: numpy's ``mean`` (pycocotools'
+    ``np.mean(s[s > -1])``, pairwise summation), or, ``running``, the VOC 2007 devkit's
+    ``ap=ap+p/11`` in recall order (``VOCevaldet.m``; from memory, and as its Python
+    ports write it): each point's share added in turn, so AP equals the devkit's bit
+    for bit (a perfect class is 1.0000000000000002 there, and here).
+    """
+    if not running:
+        return precision.mean(axis=axis)
+    points = np.moveaxis(np.asarray(precision, np.float64), axis, 0)
+    n = points.shape[0]
+    total = np.zeros(points.shape[1:])
+    for p in points:
+        total = total + p / n
+    return total
+
+
 def envelope(precision):
     r"""Running maximum from the right: the monotone precision envelope.
 

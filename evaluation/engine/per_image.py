@@ -23,7 +23,11 @@ variant (``loo_fast`` does not model it).
 import numpy as np
 
 from . import loo_fast
-from .average_precision import all_point_average_precision, interpolated_precision
+from .average_precision import (
+    all_point_average_precision,
+    interpolated_precision,
+    recall_point_mean,
+)
 from .confusion import _thresholds, found_boxes, kept
 from .curves import TruePositivePoints
 from .protocols import get_protocol
@@ -298,9 +302,9 @@ def leave_one_out_metrics(records, protocol, class_index, weights=None, *, area=
     out = {}
     for m in metrics:
         if m is None:
-            ap = _reduce(precision, "area" if area else None, one_class)
+            ap = _reduce(precision, "area" if area else None, one_class, protocol)
         else:
-            ap = _reduce(precision[m : m + 1], "slot", one_class)
+            ap = _reduce(precision[m : m + 1], "slot", one_class, protocol)
         slots_m = range(records.n_slots) if m is None else [m]
         undefined = _undefined(records, protocol, k, w, area, slots_m, variants)
         if undefined is not None:
@@ -318,7 +322,7 @@ def _interpolated(records, protocol, sequences, n_pos, box_count, affected, row=
     over recall points (``AP50``), ``"area"`` the mean over slots of one class's slot
     values (``AP_small`` …)."""
     precision = _precision(records, protocol, sequences, n_pos, box_count, affected)
-    return _reduce(precision, row, len(records.classes) == 1)
+    return _reduce(precision, row, len(records.classes) == 1, protocol)
 
 
 def _precision(records, protocol, sequences, n_pos, box_count, affected):
@@ -339,21 +343,26 @@ def _precision(records, protocol, sequences, n_pos, box_count, affected):
     return precision
 
 
-def _reduce(precision, row, one_class):
-    """AP per variant from ``_precision``'s array, reduced as ``_interpolated`` says."""
+def _reduce(precision, row, one_class, protocol):
+    """AP per variant from ``_precision``'s array, reduced as ``_interpolated`` says
+    (over recall points as the scorecard reduces: ``recall_point_mean``)."""
+    running = protocol.running_recall_sum
     n = precision.shape[2]
     if row == "slot":
+        if running:
+            return recall_point_mean(precision[0], axis=0, running=True)
         return np.ascontiguousarray(precision[0].T).mean(axis=1)
     if one_class:  # the engine's arrays are one column wide: reduce alike
-        slots = [precision[:, :, v : v + 1].mean(axis=1) for v in range(n)]
+        slots = [recall_point_mean(precision[:, :, v : v + 1], running=running) for v in range(n)]
         if row == "area":
             return np.array([np.mean(ap[:, 0]) for ap in slots])
         return np.array([ap.mean(axis=0)[0] for ap in slots])
     if row == "area":
-        return np.ascontiguousarray(precision.mean(axis=1).T).mean(axis=1)
+        per_slot = recall_point_mean(precision, running=running)
+        return np.ascontiguousarray(per_slot.T).mean(axis=1)
     if n == 1:
         precision = np.concatenate([precision, precision], axis=2)
-    return precision.mean(axis=1).mean(axis=0)[:n]
+    return recall_point_mean(precision, running=running).mean(axis=0)[:n]
 
 
 def _class_ap(per_slot, protocol):
@@ -370,7 +379,7 @@ def _class_ap(per_slot, protocol):
             ],
             axis=0,
         )
-        ap = precision.mean(axis=1)
+        ap = recall_point_mean(precision, running=protocol.running_recall_sum)
     return ap.mean(axis=0)
 
 

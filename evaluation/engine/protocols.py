@@ -113,6 +113,13 @@ class Protocol:
     def max_detections_limit(self):
         return self.max_detections[-1]
 
+    @property
+    def running_recall_sum(self):
+        """Whether AP over sampled recall points is the VOC devkit's running sum
+        (``ap=ap+p/11``, ``average_precision.recall_point_mean``): the devkit's matching
+        with sampled recall points (``voc07`` and custom protocols on it)."""
+        return self.matching == BEST_OVERLAP and self.recall_points is not None
+
     def threshold_table(self, classes, names=None):
         """IoU thresholds as a ``(slots, classes)`` float64 array.
 

@@ -241,9 +241,12 @@ def _put(arrays, prefix, precision, ap, recall):
     arrays[f"{prefix}.recall"] = recall
 
 
-def _get(arrays, prefix):
+def _get(arrays, prefix, protocol):
     return _reduced(
-        arrays.get(f"{prefix}.precision"), arrays.get(f"{prefix}.ap"), arrays[f"{prefix}.recall"]
+        arrays.get(f"{prefix}.precision"),
+        arrays.get(f"{prefix}.ap"),
+        arrays[f"{prefix}.recall"],
+        protocol,
     )
 
 
@@ -273,7 +276,7 @@ def assemble(parts, protocol, *, score_threshold=0.5):
     protocol = get_protocol(protocol)
     joined = concatenate_parts(parts)
     arrays, classes, area_names = joined["arrays"], joined["classes"], joined["area_names"]
-    by_area = [_get(arrays, f"area{a}") for a in range(len(area_names))]
+    by_area = [_get(arrays, f"area{a}", protocol) for a in range(len(area_names))]
     precision, ap, recall = by_area[0]
     ap_by_area = [entry[1] for entry in by_area]
     repeats = arrays.get("class_repeats")  # every mean over classes counts them so
@@ -311,7 +314,7 @@ def assemble(parts, protocol, *, score_threshold=0.5):
             "classes": per_class,
         }
     for tag, images in joined["tag_images"].items():
-        scores = _get(arrays, f"tag.{tag}")
+        scores = _get(arrays, f"tag.{tag}", protocol)
         mean_ap = _headline_of(*scores, repeats)
         mean, per_class = _slice_entry(classes, protocol, scores, mean_ap, repeats)
         result["slices"]["tag"][tag] = {

@@ -5,7 +5,12 @@ recall, with the helpers the whole-run scorecard (``scorecard``) shares.
 
 import numpy as np
 
-from .average_precision import all_point_average_precision, interpolated_precision, recall_score
+from .average_precision import (
+    all_point_average_precision,
+    interpolated_precision,
+    recall_point_mean,
+    recall_score,
+)
 from .curves import true_positive_points
 from .errors import InputError
 from .protocols import get_protocol
@@ -70,15 +75,21 @@ def _area_arrays(records, protocol, area, weights):
     return points, precision, None, recall_score(points)
 
 
-def _reduced(precision, ap, recall):
+def _reduced(precision, ap, recall, protocol):
     """``(precision, AP per slot and class, recall)``: AP the mean over recall points
-    of ``precision`` where the protocol samples them."""
-    return precision, (precision.mean(axis=1) if precision is not None else ap), recall
+    of ``precision`` where the protocol samples them (``recall_point_mean``: the VOC
+    devkit's running sum under its matching). Under that sum ``precision`` is None:
+    every mean over classes then reads the AP, as the devkit's numbers are APs."""
+    if precision is None:
+        return None, ap, recall
+    if protocol.running_recall_sum:
+        return None, recall_point_mean(precision, running=True), recall
+    return precision, recall_point_mean(precision), recall
 
 
 def _area_scores(records, protocol, area, weights):
     points, precision, ap, recall = _area_arrays(records, protocol, area, weights)
-    return (points, *_reduced(precision, ap, recall))
+    return (points, *_reduced(precision, ap, recall, protocol))
 
 
 def headline(records, protocol, *, weights=None, area=0):

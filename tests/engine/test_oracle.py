@@ -74,7 +74,26 @@ def test_voc_protocols_follow_the_devkit(files, seed, protocol):
     truth, predictions = _random_inputs(files, seed)
     ours = _per_class_ap(evaluate(truth, predictions, protocol), truth.classes)
     expected = oracle.voc_ap(truth, predictions, eleven_point=protocol == "voc07")
+    if protocol == "voc07":  # the devkit's running sum ap=ap+p/11: bit for bit (audit12 F5)
+        np.testing.assert_array_equal(ours, expected)
     np.testing.assert_allclose(ours, expected, rtol=0, atol=1e-12)
+
+
+def test_voc07_ap_is_the_devkits_running_sum():
+    """The VOC 2007 devkit adds ``p/11`` point by point (``VOCevaldet.m``, from memory;
+    ``tests/engine/oracle.py`` transliterates it): a class whose precision is 1 at
+    every recall point gets 1.0000000000000002 there, not numpy's mean 1.0 (red team
+    audit12 F5); a precision of 1/3 throughout, the running sum's own value."""
+    from evaluation.engine.average_precision import recall_point_mean
+
+    ones = np.ones((1, 11, 1))
+    assert recall_point_mean(ones, running=True)[0, 0] == 1.0000000000000002
+    assert recall_point_mean(ones)[0, 0] == 1.0
+    total = 0.0
+    for _ in range(11):
+        total = total + (1 / 3) / 11
+    p = np.full((1, 11, 1), 1 / 3)
+    assert recall_point_mean(p, running=True)[0, 0] == total
 
 
 NON_FINITE = (float("nan"), float("inf"), -float("inf"))
