@@ -43,7 +43,24 @@ def differences(a, b):
     for key in sorted(set(ra) | set(rb), key=effects.order):
         if not _same(ra.get(key), rb.get(key)):
             out.append((key, ra.get(key), rb.get(key), effects.effect(key, ra, rb)))
+    ta, tb = _score_cut(a), _score_cut(b)
+    if ta is not None and tb is not None and not _same(ta, tb):  # (a level result has none)
+        out.append(("score threshold", ta, tb, SCORE_CUT_EFFECT))
     return out
+
+
+SCORE_CUT_EFFECT = (
+    "the operating point's score cut (--threshold): precision, recall and F1 at the "
+    "threshold (at_threshold, pooled and per class) differ; AP, recall at the cap, the "
+    "curves and best F1 do not read it"
+)
+
+
+def _score_cut(result):
+    """The score cut a result's ``at_threshold`` was read at (None where it has none:
+    level protocols, results from before it was recorded, a hand-edited file)."""
+    at = result.get("at_threshold")
+    return at.get("threshold") if isinstance(at, dict) else None
 
 
 #: The first engine whose fingerprint hashes the type of ids that are not numbers

@@ -134,6 +134,19 @@ def test_explain_same_protocol_and_other_data(inputs, files, capsys):
     assert "different ground truth" in capsys.readouterr().out
 
 
+def test_explain_names_a_different_score_threshold(inputs, files, capsys):
+    """Red team audit12 F4: two results of one file at ``--threshold`` 0.5 and 0.3 differ
+    in their operating point (``at_threshold``), which ``explain`` called "the same"."""
+    gt, dt = inputs
+    a = files.write("a.json", _score(gt, dt, capsys))
+    b = files.write("b.json", _score(gt, dt, capsys, "--threshold", "0.3"))
+    assert json.loads(a.read_text())["at_threshold"] != json.loads(b.read_text())["at_threshold"]
+    assert main(["explain", str(a), str(b)]) == 0
+    out = capsys.readouterr().out
+    assert out.startswith("1 setting(s) differ") and "* score threshold" in out, out
+    assert "A: 0.5" in out and "B: 0.3" in out and "AP, recall at the cap" in out
+
+
 def test_explain_refuses_a_result_without_record(files, capsys):
     a = files.write("a.json", {"summary": {}})
     assert main(["explain", str(a), str(a)]) == 2
