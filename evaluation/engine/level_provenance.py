@@ -128,8 +128,14 @@ def _miss_rate_record(name, truth):
             "max_detections": None if cap is None else [cap],
             "kind": "none" if cap is None else "per image and class, highest scores first",
         },
-        "tie_order": "ties in score keep accumulation order: image order, then score "
-        "order within the image (stable sort, toolbox compRoc); NaN scores "
+        "tie_order": "ties in score keep accumulation order: images by ascending id "
+        + (
+            "(the toolbox takes its images in its annotation files' name order: a split "
+            "whose ids ascend as those names do gives its order)"
+            if not city
+            else "(the script's np.unique of the image ids)"
+        )
+        + ", then score order within the image (stable sort, toolbox compRoc); NaN scores "
         + ("first, as MATLAB's descending sort" if toolbox else "last, as numpy's argsort"),
         "zero_id": (
             "a match with the box of annotation id 0 is no true positive and the box stays "

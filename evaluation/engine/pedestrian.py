@@ -26,7 +26,8 @@ city-scale benchmark: ``eval_MR_multisetup.py`` ``evaluateImg`` / ``accumulate``
   none, the first ignore box whose intersection over the *detection's own area*
   (``compOas`` with the ignore flag) is >= 0.5 — the detection is then ignored, and an
   ignore box absorbs any number. Unmatched detections are false positives.
-* Curve [``compRoc``]: every image's detections concatenated in image order, ignored
+* Curve [``compRoc``]: every image's detections concatenated in image order (ascending
+  image id here; the toolbox takes its images in its annotation files' name order), ignored
   ones dropped, stable sort by score; a point after every detection: FPPI = FP /
   images, recall = TP / counted boxes.
 * Log-average miss rate [``dbEval`` ``plotExps``]:
