@@ -35,6 +35,8 @@ __all__ = [
 ]
 
 #: Bumped when the parsed columns change shape or meaning: old cache entries are unused.
+#: 30: a given bbox of nested lists or an RLE object is loaded (NaN box), no longer left
+#: out beyond the cap (``truthless_boxes``);
 #: 29: truth entries record no city-scale fault for a box under a changed value (scored);
 #: 28: keypoint results holding booleans, nested lists or big integers, a null in a
 #: given bbox and lists of one mask with a bbox are scored, no longer left out;
@@ -44,7 +46,7 @@ __all__ = [
 #: 24: truth entries keep an annotation's height key (``GroundTruth.height_key``);
 #: 22: label-file and CSV ids are integers of ASCII digits only (``ids.INTEGER``);
 #: 21: truth entries keep the ids np.unique merges (unique_merged_images)
-CACHE_SCHEMA = 29
+CACHE_SCHEMA = 30
 UNKNOWN_CLASS_POLICIES = ("reject", "drop")
 #: Detections of images the split does not hold: refused (default; pycocotools'
 #: ``loadRes`` asserts every result image is in the set) or, for re-scoring stored

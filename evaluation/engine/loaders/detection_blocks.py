@@ -17,6 +17,7 @@ import numpy as np
 from ..errors import InputError
 from . import as_given, checks, coco_json, csv_tables, lost_ids, uncompared, unread_fields
 from .ids import NULL, NUMBER, TEXT, escaped, ids_like, keys_of, typed_keys
+from .truthless_boxes import truthful
 
 #: Formats that can be read a block at a time.
 STREAMABLE = ("json", "csv")
@@ -39,7 +40,8 @@ class Raw:
     area: np.ndarray = None  # per detection, for size ranges: None = w * h (the box's)
     reading: str = None  # how a JSON file was read (``mask_results.mode``): None = boxes
     #: per detection None, or the ``(field, message)`` pycocotools fails on only if it
-    #: compares the detection (``uncompared``); None: every record fit
+    #: compares the detection (``uncompared``), or ``(field, message, kind)`` (loaded;
+    #: ``uncompared.mixed``); None: every record fit
     unfit: np.ndarray = None
     base: int = 0  # the file's number of the block's first record
     ids: np.ndarray = None  # the records' own ids, read "as given" (``as_given``)
@@ -291,7 +293,8 @@ def _resolve(path, truth, raw, policy, unknown_classes, unknown_images, rank_of,
             if rank_of is None:
                 group = _groups(truth, image, cls, alias)
                 rank = uncompared.ranks(group, score)
-                mixed = keyed[uncompared.mixed(group, rank, kind)[keyed]]
+                mixed = uncompared.mixed(group, rank, kind, truthful(truth))
+                mixed = keyed[mixed[keyed]]
                 rank = rank[bad]
             else:
                 rank = rank_of(raw.base + kept_at[bad])
@@ -420,9 +423,14 @@ def file_ranks(path, truth, raws, exact=None):
                 alias, found_class = aliases[0], found_class | aliases[0]
                 cls = np.where(alias, aliases[1], cls)
             group = _groups(truth, image, cls, alias)
-            group[~(found_image & found_class)] = -1
+            found = found_image & found_class
+            looked_up = truth.looked_up(
+                image[found], cls[found], None if alias is None else alias[found]
+            )
+            group[~found] = -1
+            group[np.flatnonzero(found)[~looked_up]] = -1  # never compared (``np.unique``)
             n = len(raw.score)
             unfit = raw.unfit if raw.unfit is not None else np.full(n, None, object)
             yield raw.base + np.arange(n), group, raw.score, unfit
 
-    return uncompared.FileRanks(blocks, exact)
+    return uncompared.FileRanks(blocks, exact, truthful(truth))

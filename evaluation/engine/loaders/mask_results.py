@@ -11,7 +11,8 @@ size ranges read that area. ``mode`` makes the first choice; ``columns`` the res
 naming record and field; a given ``bbox`` that is not 4 numbers raises there only in
 ``computeIoU``, on a detection it compares, so such a record is unfit
 (``result_readings.Decoded``): refused if compared, else left out and counted
-(``uncompared``). Checked by running pycocotools 2.0.11 (``tests/engine/
+(``uncompared``) — but for a box of uniform nested lists or an RLE object, read only
+where no truth is (``truthless_boxes``). Checked by running pycocotools 2.0.11 (``tests/engine/
 test_mask_results.py``, ``tests/engine/test_uncompared.py``).
 """
 
@@ -22,7 +23,7 @@ import msgspec
 import numpy as np
 
 from ..errors import InputError
-from . import json_literals, result_readings, rle, unread_fields
+from . import json_literals, result_readings, rle, truthless_boxes, unread_fields
 from .ids import JSON_ID
 from .ids import SURROGATE as _SURROGATE
 
@@ -121,7 +122,11 @@ def normalise(path, r, at):
         box = unread_fields._box(box, text=True, null=True)  # numpy reads it in computeIoU
         if box is None:
             box = (math.nan,) * 4
-            unfit = ("bbox", f"must be 4 numbers [x, y, w, h], got {r.bbox!r:.40}")
+            kind = truthless_boxes.kind(r.bbox)  # read only where no truth is
+            if kind is None:
+                unfit = ("bbox", f"must be 4 numbers [x, y, w, h], got {r.bbox!r:.40}")
+            else:
+                unfit = ("bbox", truthless_boxes.message(kind, r.bbox), kind)
     score = unread_fields.as_number(r.score)
     seg = r.segmentation
     if isinstance(seg, list) and seg and all(isinstance(e, dict) for e in seg) or seg == []:
@@ -155,12 +160,14 @@ def _masks(path, seg, box, unfit, at):
         columns(probe, path, 0)
     except InputError as e:
         raise InputError(path, e.message, record=f"record {at}", field=e.field) from None
-    if len(masks) == 1 and box is not msgspec.UNSET and unfit is None:
+    if len(masks) == 1 and box is not msgspec.UNSET and (unfit is None or len(unfit) == 3):
         why = (
             "a list of one mask with a bbox: pycocotools 2.0.11 reads its area as an "
             "array of one, which evaluateImg's np.array cannot join beside a detection "
             "whose area is a number (ValueError) in its image and class"
         )
+        if unfit is not None:  # a box read only where no truth is: both kinds at once
+            return masks[0], box, (unfit[0], f"{unfit[1]}; and {why}", (ONE_MASK, unfit[2]))
         return masks[0], box, ("segmentation", why, ONE_MASK)
     why = (
         f"a list of {len(masks)} masks"
@@ -168,7 +175,13 @@ def _masks(path, seg, box, unfit, at):
         + ": pycocotools 2.0.11 reads an array area (and box) from it, which evaluateImg "
         "(or computeIoU) cannot compare"
     )
-    return Rle((0, 0), ""), (math.nan,) * 4, unfit or ("segmentation", why)
+    return Rle((0, 0), ""), (math.nan,) * 4, _plain(unfit) or ("segmentation", why)
+
+
+def _plain(unfit):
+    """``unfit`` if it is a ``(field, message)`` entry (one pycocotools fails on
+    wherever it compares it), else None."""
+    return unfit if unfit is not None and len(unfit) == 2 else None
 
 
 #: The ``uncompared.kinds`` of a list of one mask with a box (``_masks``).

@@ -25,14 +25,15 @@ non-number ``area``/``bbox`` makes pycocotools raise only on a detection it comp
 (the top 100 per image and listed class: ``computeIoU``, ``evaluateImg``), so such a
 record is *unfit* here (``Decoded.unfit``: field and message): refused by
 ``detection_blocks.resolve`` when it is compared, left out and counted when it is not
-(``uncompared``). Keypoints whose x or y values (the only ones read) are booleans,
-nested lists, or integers of magnitude 2^30 or more are run through ``loadRes``' own
-numpy lines (``_loadres_extent``): where those raise, the file is refused; where they
-do not, the record scores with the box and area they give (booleans as 0/1, an int64
-extent wrapped, Python integers of an object array), read as ``computeIoU`` and
-``evaluateImg`` read them; unfit only where ``computeIoU`` cannot make doubles of the
-box (an integer beyond float64). Checked against pycocotools 2.0.11 in
-``tests/engine/test_result_readings.py``, ``test_keypoint_values.py``,
+(``uncompared``); a ``bbox`` of uniform nested lists or an RLE object is read only where
+its image and class hold no truth (``truthless_boxes``). Keypoints whose x or y values
+(the only ones read) are booleans, nested lists, or integers of magnitude 2^30 or more
+are run through ``loadRes``' own numpy lines (``_loadres_extent``): where those raise,
+the file is refused; where they do not, the record scores with the box and area they
+give (booleans as 0/1, an int64 extent wrapped, Python integers of an object array),
+read as ``computeIoU`` and ``evaluateImg`` read them; unfit only where ``computeIoU``
+cannot make doubles of the box (an integer beyond float64). Checked against pycocotools
+2.0.11 in ``tests/engine/test_result_readings.py``, ``test_keypoint_values.py``,
 ``test_uncompared.py`` and ``test_as_given.py``.
 """
 
@@ -44,7 +45,7 @@ import msgspec
 import numpy as np
 
 from ..errors import InputError
-from . import json_literals, unread_fields
+from . import json_literals, truthless_boxes, unread_fields
 from .ids import JSON_ID
 
 CAPTION, KEYPOINTS, GIVEN = "caption", "keypoints", "given"
@@ -68,8 +69,10 @@ def _fail(path, record, field, message):
 
 class Decoded(list):
     """The records of a slice; ``unfit``: per record None, or ``(field, message)`` when
-    pycocotools would fail on it only if it compares it (``uncompared``); ``ids``: the
-    records' own ids under ``GIVEN``."""
+    pycocotools would fail on it only if it compares it (``uncompared``), ``(field,
+    message, kind)`` when only where it compares it beside another kind or, a box
+    ``truthless_boxes.kind`` names, with truth; ``ids``: the records' own ids under
+    ``GIVEN``."""
 
     unfit = None
     ids = None
@@ -140,12 +143,16 @@ def _caption(path, r, at, why=None):
     if r.bbox is msgspec.UNSET:
         return _unfit(r, "bbox", f"missing: {why}each result's own bbox (computeIoU: KeyError)")
     box = unread_fields._box(r.bbox, text=True, null=True)  # numpy reads it in computeIoU
-    if box is None:
+    kind = None if box is not None else truthless_boxes.kind(r.bbox)
+    if box is None and kind is None:
         return _unfit(r, "bbox", f"must be 4 numbers [x, y, w, h], got {r.bbox!r:.40}")
     if r.area is msgspec.UNSET:
         return _unfit(r, "area", f"missing: {why}each result's own area (evaluateImg: KeyError)")
     if type(r.area) not in (int, float, bool):
         return _unfit(r, "area", f"must be a number ({why}it as given), got {r.area!r:.40}")
+    if kind is not None:  # read only where no truth is (``truthless_boxes``): NaN here
+        given, r.bbox, r.area = r.bbox, _NAN_BOX, _float(r.area)
+        return "bbox", truthless_boxes.message(kind, given), kind
     r.bbox, r.area = box, _float(r.area)
     return None
 

@@ -12,8 +12,9 @@ an unfit record ranked below ``CAP`` naming its field, and leaves out and counts
 ranked at or beyond it (``box_counts[COUNT]``). A file read a block at a time cannot
 rank a record from its own block: ``FileRanks`` reads the file again (only when a block
 holds an unfit record of a listed class) for the groups that hold one. An unfit entry
-with a third element, a kind (``mask_results.ONE_MASK``), is loaded as any record and
-refused only where it is compared beside a record of another kind (``mixed``).
+with a third element, a kind (``mask_results.ONE_MASK``, ``truthless_boxes.kind``), is
+loaded as any record and refused only where it is compared beside a record of another
+kind, or, a box read only where no truth is, in a group holding truth (``mixed``).
 
 Ranks are float64's unless a group holds a score of magnitude >= 2**53: pycocotools
 keeps JSON integers as Python ints, and numpy ranks such a list exactly (int64, uint64
@@ -67,24 +68,36 @@ def kinds(unfit):
     """Per record the ``kind`` of a ``(field, message, kind)`` entry of ``unfit``, else
     None: a record pycocotools compares only beside others of its kind (``uniform``);
     it is loaded as any other."""
-    return np.array([None if u is None or len(u) == 2 else u[2] for u in unfit], object)
+    out = np.full(len(unfit), None, object)  # set one by one: a kind may be a tuple
+    for i, u in enumerate(unfit):
+        if u is not None and len(u) == 3:
+            out[i] = u[2]
+    return out
 
 
-def mixed(group, rank, kind):
+def mixed(group, rank, kind, truthful=None):
     """Per row: whether it has a kind and is compared (ranked below ``CAP``) in a group
     whose compared rows do not all have that kind: there pycocotools raises (a list of
     one mask beside a single mask: ``evaluateImg``'s ``np.array`` of a one-entry array
-    area beside a number, ValueError)."""
+    area beside a number, ValueError; ``maskUtils.iou`` on boxes of two kinds,
+    ``truthless_boxes``) — or whose kind is a box read only where no truth is
+    (``truthless_boxes.truthless``) and whose group holds truth (``truthful(groups)``:
+    per group, whether it does)."""
+    from . import truthless_boxes
+
     out = np.zeros(len(group), bool)
     keyed = np.flatnonzero((kind != None) & (rank < CAP))  # noqa: E711 - elementwise
     if not len(keyed):
         return out
+    if truthful is not None:
+        needs = np.fromiter((truthless_boxes.truthless(k) for k in kind[keyed]), bool, len(keyed))
+        out[keyed[needs]] = truthful(group[keyed[needs]])
     watched = np.isin(group, np.unique(group[keyed]))
     seen = {}
     for g, k in zip(group[watched & (rank < CAP)].tolist(), kind[watched & (rank < CAP)]):
         seen.setdefault(g, set()).add(k)
     for i in keyed.tolist():
-        out[i] = seen[int(group[i])] != {kind[i]}
+        out[i] |= seen[int(group[i])] != {kind[i]}
     return out
 
 
@@ -93,12 +106,13 @@ class FileRanks:
     passes over the file's blocks (``blocks()``: ``(records, group, score, unfit)``
     per block, ``records`` the file's record numbers, ``group`` -1 where the record is
     not compared at all) find the groups holding an unfit record, then rank those
-    groups' detections (``ranks``, with ``exact``). Calling it with record numbers
-    gives their ranks."""
+    groups' detections (``ranks``, with ``exact``; ``mixed`` with ``truthful``).
+    Calling it with record numbers gives their ranks."""
 
-    def __init__(self, blocks, exact=None):
+    def __init__(self, blocks, exact=None, truthful=None):
         self._blocks = blocks
         self._exact = exact
+        self._truthful = truthful
         self._rank = None
         self._mixed = None
 
@@ -135,5 +149,5 @@ class FileRanks:
             self._exact,
         )
         kind = np.concatenate(kind) if kind else np.zeros(0, object)
-        self._mixed = set(records[mixed(groups, rank, kind)].tolist())
+        self._mixed = set(records[mixed(groups, rank, kind, self._truthful)].tolist())
         self._rank = dict(zip(records.tolist(), rank.tolist()))
