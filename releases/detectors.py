@@ -7,7 +7,7 @@ from django.utils.text import slugify
 
 from evaluation.services import UploadError
 
-from . import selectors, services, suites
+from . import class_thresholds, selectors, services, suites
 from .judging_queue import rejudge_later
 from .models import Detector, Membership
 
@@ -89,7 +89,8 @@ def check_removal(detector, classes):
             )
     suite = suites.current_suite(detector)
     for name in getattr(suite, "class_thresholds", None) or {}:
-        if name in gone:
+        named = class_thresholds.names_a_class  # in any case, as the thresholds are read
+        if named(name, detector.classes) and not named(name, classes):
             raise DetectorError(
                 f"classes: {name!r} has a threshold in the suite (class_thresholds); "
                 "change the suite first",

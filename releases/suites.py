@@ -3,6 +3,8 @@
 A suite: ``{"splits": [{"name": "bay-night", "revision": null}, ...], "protocols":
 ["coco", ...], "box_policy": "keep"|"clip"|"reject", "unknown_classes": "drop"|"reject",
 "score_threshold": 0.5, "class_thresholds": {"pedestrian": 0.4}}``.
+``class_thresholds`` keys name the detector's classes in any case
+(``class_thresholds``: the one place that matches them).
 ``unknown_classes``: detections of classes a split does not list are dropped (the
 default, as pycocotools: never scored, counted and named in the result) or the upload
 is refused (``evaluation.services.input_policy``). A split with ``revision`` null follows
@@ -20,7 +22,8 @@ from evaluation.models import BenchmarkSplit
 from evaluation.protocols import resolve as resolve_protocol
 from evaluation.services import UploadError
 
-from . import audit, selectors
+from . import audit, class_thresholds, selectors
+from .class_thresholds import threshold_of
 from .models import AuditEvent, BenchmarkSuite, Detector, Membership
 
 FIELDS = (
@@ -31,7 +34,6 @@ FIELDS = (
     "score_threshold",
     "class_thresholds",
 )
-DEFAULT_THRESHOLD = 0.5  # a detector without a suite (none are created so)
 
 
 class SuiteError(UploadError):
@@ -96,17 +98,9 @@ def validate_suite(detector, spec):
             f"must be one of {', '.join(BenchmarkSuite.UnknownClasses.values)}",
         )
     score_threshold = _threshold(spec.get("score_threshold", 0.5), "score_threshold")
-    class_thresholds = spec.get("class_thresholds") or {}
-    if not isinstance(class_thresholds, dict):
-        _fail("class_thresholds", "must be an object {class: threshold}")
-    clean_thresholds = {}
-    for name, value in class_thresholds.items():
-        if name not in detector.classes:
-            _fail(
-                f"class_thresholds.{name}",
-                f"not a class of {detector} ({', '.join(detector.classes)})",
-            )
-        clean_thresholds[name] = _threshold(value, f"class_thresholds.{name}")
+    clean_thresholds = class_thresholds.validate(
+        detector, spec.get("class_thresholds") or {}, _threshold, _fail
+    )
     return {
         "splits": clean_splits,
         "protocols": protocols,
@@ -270,14 +264,6 @@ def required_splits(detector):
     return resolve(suite.splits) if suite else []
 
 
-def threshold_of(suite, class_name=None):
-    """The deployed score threshold of ``class_name`` under ``suite``: its entry in
-    ``class_thresholds``, else ``score_threshold`` (also for ``class_name`` None)."""
-    if suite is None:
-        return DEFAULT_THRESHOLD
-    return suite.class_thresholds.get(class_name, suite.score_threshold)
-
-
 def deployed_threshold(detector, class_name=None):
     """THE deployed score threshold of a detector's class, from its current suite: what
     every operating-point number (precision, recall, F1, a confusion matrix) at "the
@@ -287,7 +273,7 @@ def deployed_threshold(detector, class_name=None):
 
 def deployed_thresholds(suite, classes):
     """[(class, threshold, overridden)] of ``classes`` under ``suite``, for the pages."""
-    return [(c, threshold_of(suite, c), c in suite.class_thresholds) for c in classes]
+    return class_thresholds.listed(suite, classes)
 
 
 def deployed_operating_point(card, suite):
@@ -299,8 +285,10 @@ def deployed_operating_point(card, suite):
 
     counting the detections with score >= the class's threshold (``class_thresholds``,
     else ``score_threshold``) at the primary IoU slot, after the protocol's detection
-    cap (common practice; ``engine.operating_point.threshold_scores``). The pooled row
-    sums TP, FP and positives over the classes, each at its own threshold.
+    cap (common practice; ``engine.operating_point.threshold_scores``). A class takes
+    its threshold by name in any case (``class_thresholds.thresholds_of``, by the
+    categories' own names). The pooled row sums TP, FP and positives over the classes,
+    each at its own threshold.
     """
     from evaluation.engine.curves import cumulative_counts
     from evaluation.engine.operating_point import (
@@ -314,9 +302,11 @@ def deployed_operating_point(card, suite):
     records = _records(card)
     protocol = resolve_protocol(card.protocol)
     curves = cumulative_counts(records, max_detections=protocol.max_detections_limit)
+    cuts = class_thresholds.thresholds_of(
+        suite, list(records.classes), class_thresholds.own_names(card, records)
+    )
     per_class, tp_all, fp_all = {}, 0.0, 0.0
-    for k, name in enumerate(records.classes):
-        threshold = threshold_of(suite, name)
+    for k, (name, threshold) in enumerate(zip(records.classes, cuts)):
         tp, fp, scores = curves.segment(k)
         per_class[name] = threshold_scores(tp, fp, scores, float(curves.n_pos[k]), threshold)
         kept_tp, kept_fp = counts_at(tp, fp, scores, threshold)

@@ -86,6 +86,15 @@ def malformed(exc):
     return None
 
 
+def _refusal(exc):
+    """``(path, message)`` of a service's refusal: its message names the path first
+    (``"class_thresholds.Van: …"``, as the pages show it), which ``body`` puts back."""
+    message = str(exc)
+    if exc.path and message.startswith(f"{exc.path}: "):
+        message = message[len(exc.path) + 2 :]
+    return exc.path, message
+
+
 def handle(exc, context):
     """DRF's exception handler, reshaped into ``body``; service refusals become 400/409."""
     from ..services import DecisionError
@@ -102,9 +111,9 @@ def handle(exc, context):
     if isinstance(exc, DecisionError):
         return Response(body(409, "not_allowed", [("", str(exc))]), status=409)
     if isinstance(exc, UploadConflict):
-        return Response(body(409, "conflict", [(exc.path, str(exc))]), status=409)
+        return Response(body(409, "conflict", [_refusal(exc)]), status=409)
     if isinstance(exc, UploadError):
-        return Response(body(400, "refused", [(exc.path, str(exc))]), status=400)
+        return Response(body(400, "refused", [_refusal(exc)]), status=400)
     if isinstance(exc, (Http404, ObjectDoesNotExist)):
         exc = exceptions.NotFound(str(exc) or "not found")
     elif isinstance(exc, DjangoPermissionDenied):

@@ -47,13 +47,16 @@ class Pair:
         return list(self.truth.classes)
 
 
-def deployed_thresholds(detector, classes):
-    """The deployed score threshold of each class (``suites.threshold_of`` under the
-    detector's current suite: the one source of "the deployed threshold")."""
-    from ..suites import current_suite, threshold_of
+def deployed_thresholds(detector, truth):
+    """The deployed score threshold of each class of ``truth`` (the split), under the
+    detector's current suite: ``class_thresholds.thresholds_of``, the one source of "the
+    deployed threshold", matching names in any case, by the categories' own names."""
+    from ..class_thresholds import thresholds_of
+    from ..suites import current_suite
 
-    suite = current_suite(detector)
-    return np.array([float(threshold_of(suite, c)) for c in classes])
+    return np.array(
+        thresholds_of(current_suite(detector), list(truth.classes), list(truth.category_names))
+    )
 
 
 def _side(version, split):
@@ -116,7 +119,7 @@ def pair_for(user, version_id, split_id, against=None):
         candidate=candidate,
         reference=reference,
         truth=truth,
-        thresholds=deployed_thresholds(version.detector, truth.classes),
+        thresholds=deployed_thresholds(version.detector, truth),
         protocol=candidate.card.protocol,
     )
 

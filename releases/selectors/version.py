@@ -77,9 +77,11 @@ def shown_suite(version, verdict):
 
 def deployed_numbers(card, suite, classes):
     """Precision / recall / F1 of a scorecard at the suite's deployed score threshold(s)
-    (``suites.deployed_operating_point``): ``rows`` per class in the detector's order,
-    each with its threshold, and ``pooled``; None when the suite's primary protocol is
+    (``suites.deployed_operating_point``): ``rows`` per class in the detector's order
+    (a class matches the scorecard's in any case: ``class_thresholds.row_of``), each
+    with its threshold, and ``pooled``; None when the suite's primary protocol is
     not the card's or its match records cannot be read (the page still renders)."""
+    from ..class_thresholds import row_of
     from ..suites import deployed_operating_point
 
     if suite is None or card.protocol != suite.protocols[0]:
@@ -89,7 +91,8 @@ def deployed_numbers(card, suite, classes):
     except OSError:
         return None
     per_class = numbers["per_class"]
-    rows = [{"class": c, **per_class[c]} for c in classes if c in per_class]
+    found = [(c, row_of(per_class, c)) for c in classes]  # the scorecard keeps its spelling
+    rows = [{"class": c, **per_class[key]} for c, key in found if key is not None]
     return {"suite_version": suite.number, "rows": rows, **numbers}
 
 

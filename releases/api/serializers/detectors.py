@@ -102,7 +102,10 @@ class SuiteInput(serializers.Serializer):
     )
     score_threshold = serializers.FloatField(required=False, min_value=0, max_value=1)
     class_thresholds = serializers.DictField(
-        child=serializers.FloatField(min_value=0, max_value=1), required=False
+        child=serializers.FloatField(min_value=0, max_value=1),
+        required=False,
+        help_text="{class: score threshold}, overriding score_threshold; a key names one "
+        "of the detector's classes in any case (Pedestrian = pedestrian)",
     )
 
 
