@@ -339,3 +339,38 @@ def first_record_end(buf):
     after = np.cumsum(opens.astype(np.int64) - closes)
     ends = np.flatnonzero(((kinds == 0x2C) & (after == 1)) | (after == 0))
     return int(marks[ends[0]]) if len(ends) else None
+
+
+class RecordEnd:
+    """``first_record_end`` of a buffer that only grows, in linear time: each call
+    scans only the bytes added since the last one, ``SCAN_BYTES`` at a time, carrying
+    ``_structure``'s state (inside a string, trailing backslashes) and the nesting
+    depth over; so the arrays it builds stay a few times ``SCAN_BYTES`` (a comma every
+    few bytes costs ~10 bytes of arrays per byte), not the whole buffer's. ``ends``
+    counts the records ended so far (commas at depth 1)."""
+
+    SCAN_BYTES = 1 << 20
+
+    def __init__(self):
+        self.scanned, self.in_string, self.backslashes, self.depth = 0, False, 0, 0
+        self.end, self.ends = None, 0
+
+    def find(self, buf):
+        """``first_record_end(buf)``; ``buf[:scanned]`` must be what earlier calls saw."""
+        while len(buf) > self.scanned and self.depth >= 0:
+            at = self.scanned
+            marks, kinds, self.in_string, self.backslashes = _structure(
+                bytes(buf[at : at + self.SCAN_BYTES]), self.in_string, self.backslashes
+            )
+            opens = (kinds == 0x7B) | (kinds == 0x5B)
+            closes = (kinds == 0x7D) | (kinds == 0x5D)
+            after = self.depth + np.cumsum(opens.astype(np.int64) - closes)
+            commas = (kinds == 0x2C) & (after == 1)
+            ends = np.flatnonzero(commas | (after == 0))
+            if self.end is None and len(ends):
+                self.end = at + int(marks[ends[0]])
+            self.ends += int(np.count_nonzero(commas))
+            if len(after):
+                self.depth = int(after[-1]) if after.min() > 0 else -1  # the array closed
+            self.scanned = min(len(buf), at + self.SCAN_BYTES)
+        return self.end

@@ -3,7 +3,11 @@ a few megabytes are cut after a record's ``}`` (``_last_cut``), decoded in place
 (``_decode_slice``, by the reading of the file's first record: ``_first_mode``) and
 turned into columns at once (``_block``, ``_columns``), so a file of millions of
 detections never exists as Python objects (or as one byte string) all together, and a
-malformed or truncated one is rejected at flat memory (``_check_prefix``, ``_cut_short``).
+malformed or truncated one is rejected at flat memory (``_check_prefix``,
+``slice_errors.cut_short``). A record longer than the slice limit is refused at about
+the buffer's own size, in linear time: each new chunk is scanned once for where the
+first record ends (``json_syntax.RecordEnd``, kept in ``_Scan``), and the prefix is
+checked at doubling lengths, in place, without building its values.
 
 ``CHUNK_BYTES`` and ``MAX_SLICE_BYTES``, like ``_decode_slice`` and ``_columns``, are
 looked up here at call time (tests patch them on this module).
@@ -17,7 +21,15 @@ import msgspec
 import numpy as np
 
 from ..errors import InputError
-from . import json_bytes, json_literals, json_syntax, mask_results, result_readings, unread_fields
+from . import (
+    json_bytes,
+    json_literals,
+    json_syntax,
+    mask_results,
+    result_readings,
+    slice_errors,
+    unread_fields,
+)
 from .coco_records import _INT_ONLY, _Detection, int_column, validation_error, whole_ids
 
 CHUNK_BYTES = 4 << 20
@@ -71,31 +83,6 @@ class _Checked:
         return chunk
 
 
-class _Position:
-    """Line and column of absolute byte offsets, for bytes already read and dropped."""
-
-    def __init__(self, offset):
-        self.offset = offset  # absolute offset of buf[0]
-        self.lines = 0  # newlines before it
-        self.line_start = 0  # absolute offset just after the last of them
-
-    def advance(self, consumed, end=None):
-        """Move past ``consumed`` (its first ``end`` bytes: no copy of a slice)."""
-        end = len(consumed) if end is None else end
-        newlines = consumed.count(b"\n", 0, end)
-        if newlines:
-            self.lines += newlines
-            self.line_start = self.offset + consumed.rfind(b"\n", 0, end) + 1
-        self.offset += end
-
-    def locate(self, buf, k):
-        """(line, column) of buf[k], 1-based."""
-        nl = buf.rfind(b"\n", 0, k)
-        line = self.lines + buf.count(b"\n", 0, k) + 1
-        column = k - nl if nl >= 0 else self.offset + k - self.line_start + 1
-        return line, column
-
-
 def _last_cut(buf, lowest):
     """(end of a record's ``}``, position after the comma that follows it), the last
     such pair at or after ``lowest``; None if there is none yet."""
@@ -109,20 +96,6 @@ def _last_cut(buf, lowest):
             after += 1
         if buf[after : after + 1] == b",":
             return brace + 1, after + 1
-
-
-def _piece_error(path, error, buf, where, shift):
-    """An InputError for a slice of ``buf`` (decoded with ``shift`` bytes in front of
-    it) that failed at its byte ``k + shift``."""
-    text = str(error)
-    if "truncated" in text:
-        return InputError(path, "the JSON ends early: the file looks truncated")
-    m = re.search(r"\(byte ([0-9]+)\)", text)
-    if not m:
-        return InputError(path, f"not valid JSON: {text}")
-    line, column = where.locate(buf, max(int(m.group(1)) - shift, 0))
-    reason = text.split(":", 1)[-1].split("(byte")[0].strip()
-    return InputError(path, f"not valid JSON: {reason} at line {line}, column {column}")
 
 
 def _decode_slice(piece, path="", base=0, mode=mask_results.BOXES):
@@ -156,7 +129,7 @@ def _stream(path, f, skip, build=True, wide=False, decode=None):
     """
     decode = decode or _decode_slice
     f = _Checked(path, f, skip)
-    where = _Position(skip)
+    where = slice_errors.Position(skip)
     buf = f.read(CHUNK_BYTES)
     while buf and not buf.strip():  # leading whitespace
         where.advance(buf)
@@ -175,7 +148,7 @@ def _stream(path, f, skip, build=True, wide=False, decode=None):
             json_literals.check_syntax(buf[lead:])
         except msgspec.DecodeError as e:
             where.advance(buf[:lead])
-            raise _piece_error(path, e, buf[lead:], where, 0) from None
+            raise slice_errors.piece_error(path, e, buf[lead:], where, 0) from None
         raise InputError(path, "expected a JSON array of detections")
     # buf[0] is always "[": the array's own bracket, later the comma before the next
     # record, overwritten. A slice is decoded in place: the byte after its last "}" is
@@ -183,9 +156,10 @@ def _stream(path, f, skip, build=True, wide=False, decode=None):
     where.advance(buf[:lead])
     buf = bytearray(buf[lead:])
     base, lowest, eof, mode = 0, 1, False, None
+    scan = _Scan()  # of buf since its last cut
     while True:
         if mode is None:
-            mode = _first_mode(path, buf, where, eof)
+            mode = _first_mode(path, buf, where, eof, scan)
             if mode is None:  # the first record is not whole yet: take more
                 more = f.read(CHUNK_BYTES)
                 eof = not more
@@ -197,7 +171,7 @@ def _stream(path, f, skip, build=True, wide=False, decode=None):
             cut = _last_cut(buf, lowest)
             if cut is None:
                 if len(buf) > CHUNK_BYTES:  # no record ends here: a real error is reported
-                    _check_prefix(path, buf, where, base, mode)
+                    _check_prefix(path, buf, where, base, mode, scan)
                 more = f.read(CHUNK_BYTES)
                 eof = not more
                 buf += more
@@ -216,6 +190,9 @@ def _stream(path, f, skip, build=True, wide=False, decode=None):
                 view.release()
                 buf[cut[0]] = saved
                 lowest = len(buf)
+                scan.record_end.find(buf)  # the records ended so far, for the limit
+                if len(buf) > MAX_SLICE_BYTES:
+                    raise _too_long(path, base + scan.record_end.ends) from None
                 more = f.read(CHUNK_BYTES)
                 eof = not more
                 buf += more
@@ -223,11 +200,11 @@ def _stream(path, f, skip, build=True, wide=False, decode=None):
             view.release()
             if not eof:
                 buf[cut[0]] = saved
-            raise _piece_error(path, e, buf, where, 0) from None
+            raise slice_errors.piece_error(path, e, buf, where, 0) from None
         finally:
             view.release()
         if not len(records) and base:  # "[" stands for a cut's comma: "}, ]"
-            raise _trailing_comma(path, buf, where)
+            raise slice_errors.trailing_comma(path, buf, where)
         yield _block(records, path, base, wide, mode, build)
         if eof:
             return
@@ -236,44 +213,42 @@ def _stream(path, f, skip, build=True, wide=False, decode=None):
         where.advance(buf, comma)
         del buf[:comma]
         buf[0] = 0x5B  # "["
-        lowest = 1
+        lowest, scan = 1, _Scan()
         more = f.read(CHUNK_BYTES)
         eof = not more
         buf += more
 
 
-def _trailing_comma(path, buf, where):
-    """The error of a comma after the last record (``[{...},]``): Python's ``json``
-    (so pycocotools 2.0.11) raises "Expecting value" at the closing bracket, RFC 8259
-    section 5 allows no empty element. ``buf`` is the rest after the cut: "[", blanks,
-    "]"."""
-    k = len(buf) - len(bytes(buf[1:]).lstrip())
-    line, column = where.locate(buf, k)
-    return InputError(
-        path,
-        f"not valid JSON: trailing comma in array at line {line}, column {column}",
-    )
+class _Scan:
+    """What is known of the buffer since its last cut: where its first record ends
+    (``json_syntax.RecordEnd``, scanning each new chunk once) and the length at which
+    its prefix was last checked (checks at doubling lengths: linear time in all)."""
+
+    def __init__(self):
+        self.record_end, self.checked = json_syntax.RecordEnd(), 0
+
+    def due(self, buf):
+        """Whether to check the prefix now: its length has doubled since the last
+        check, or it is past ``MAX_SLICE_BYTES`` (its last check before giving up)."""
+        if len(buf) < 2 * self.checked and len(buf) <= MAX_SLICE_BYTES:
+            return False
+        self.checked = len(buf)
+        return True
 
 
-def _first_mode(path, buf, where, eof):
+def _first_mode(path, buf, where, eof, scan):
     """The reading (``mask_results.mode``) of the file's first record, decided only
     once that record is whole in ``buf`` (its end found at nesting depth 1, so however
     the bytes were chunked); None while it is not and more can be read. A first
     record that does not decode is read as boxes, whose decoding reports its error."""
-    end = json_syntax.first_record_end(buf)
+    end = scan.record_end.find(buf)
     if end is None and not eof:
-        if len(buf) > CHUNK_BYTES:  # a syntax error inside it is reported now
-            try:
-                json_literals.check_syntax(bytes(buf))
-            except msgspec.DecodeError as e:
-                if not _cut_short(e, buf):
-                    raise _piece_error(path, e, buf, where, 0) from None
+        if len(buf) > CHUNK_BYTES and scan.due(buf):  # a syntax error inside it is reported
+            error = slice_errors.syntax_error(buf)
+            if error is not None:
+                raise slice_errors.piece_error(path, error, buf, where, 0) from None
             if len(buf) > MAX_SLICE_BYTES:
-                raise InputError(
-                    path,
-                    f"no record ends within {MAX_SLICE_BYTES >> 20} MB: not a detections file",
-                    record="record 0",
-                )
+                raise _too_long(path, 0)
         return None
     first = bytes(buf) if end is None else bytes(buf[:end]) + b"]"
     return mask_results.mode(first) or mask_results.BOXES
@@ -318,38 +293,47 @@ def _unfit(records):
     return column
 
 
-_LITERALS = (b"NaN", b"Infinity")  # as Python's json reads them (-Infinity: "-" first)
-
-
-def _cut_short(error, buf):
-    """Whether msgspec's error on ``buf`` is only its ending early: truncated, failing
-    at the last byte or just past it (a number cut as ``0.`` or ``1e``), or at a
-    ``NaN``/``Infinity`` literal that the end cuts (``Na``, ``-Inf``: msgspec calls
-    its first letter an invalid character)."""
-    n = len(buf)
-    m = re.search(r"\(byte ([0-9]+)\)", str(error))
-    if "truncated" in str(error):
-        return True
-    if not m:
-        return False
-    at = int(m.group(1))
-    tail = bytes(buf[at:])
-    return at >= n - 1 or any(len(tail) < len(w) and w.startswith(tail) for w in _LITERALS)
-
-
-def _check_prefix(path, buf, where, base, mode):
+def _check_prefix(path, buf, where, base, mode, scan):
     """Raise the decoding error of buf (which starts with "[") unless it only ends
-    early; give up past ``MAX_SLICE_BYTES`` without a record boundary."""
+    early; give up past ``MAX_SLICE_BYTES`` without a record boundary. Checked at
+    doubling lengths (``_Scan.due``). While no first record ends in it (one record
+    longer than the buffer: ``scan.record_end``), only its syntax is checked, and under
+    the box reading the strict typed decode's first mismatch (not a ``bbox`` or
+    ``score`` one, whose loose decoding would build every value as an object, nor a
+    number out of float64's range, read as Python's json reads it), so the memory
+    stays about the buffer's own, whatever it holds."""
+    end = scan.record_end.find(buf)  # every chunk, each scanned once
+    if not scan.due(buf):
+        return
+    boxes = mode == mask_results.BOXES
     try:
-        _decode_slice(bytes(buf), path, base, mode)
+        if end is not None:  # a whole record that is no object
+            error = None
+            try:
+                _decode_slice(bytes(buf), path, base, mode)
+            except msgspec.ValidationError:
+                raise
+            except msgspec.DecodeError as e:
+                error = None if slice_errors.cut_short(e, buf) else e
+        else:
+            try:
+                error = slice_errors.syntax_error(buf, list[_Detection] if boxes else msgspec.Raw)
+            except msgspec.ValidationError as e:
+                loose = unread_fields.loose_detection(str(e))
+                if not (boxes and (loose or str(e).startswith("Number out of range"))):
+                    raise
+                error = slice_errors.syntax_error(buf)
     except msgspec.ValidationError as e:
         raise validation_error(path, e, top_level_list=True, base=base) from None
-    except msgspec.DecodeError as e:
-        if not _cut_short(e, buf):
-            raise _piece_error(path, e, buf, where, 0) from None
+    if error is not None:
+        raise slice_errors.piece_error(path, error, buf, where, 0) from None
     if len(buf) > MAX_SLICE_BYTES:
-        raise InputError(
-            path,
-            f"no record ends within {MAX_SLICE_BYTES >> 20} MB: not a detections file",
-            record=f"record {base}",
-        )
+        raise _too_long(path, base + scan.record_end.ends)
+
+
+def _too_long(path, record):
+    return InputError(
+        path,
+        f"no record ends within {MAX_SLICE_BYTES >> 20} MB: not a detections file",
+        record=f"record {record}",
+    )
