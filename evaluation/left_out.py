@@ -36,7 +36,8 @@ _ANNOTATION_LINES = (
      "of categories the file does not list left out (never scored, as in pycocotools)"),
     ("duplicate_id_copies", "annotation", "annotations",
      "with a repeated id scored as a copy of the last annotation with that id (as "
-     "pycocotools' index does)"),
+     "pycocotools' index does) under coco, recall40 and miss-rate-cityscale; the other "
+     "protocols read each annotation as given"),
     ("duplicate_ids_never_fetched", "annotation", "annotations",
      "with a repeated id on an image or category whose id pycocotools' np.unique changes "
      "left out: it never fetches them, so they make no copy of the last annotation"),
@@ -140,6 +141,19 @@ def detection_lines(counts):
                 "scored under that id, as in pycocotools"
                 if changed.get("scored")
                 else "left out, as this protocol's reference leaves out records of unlisted ids"
+            )
+        )
+    copies = counts.get("repeated_ids") or {}
+    if copies:
+        read = copies.get("read") == "copies"
+        n = int(copies.get("copies" if read else "as_given") or 0)
+        lines.append(
+            f"{_plural(n, 'annotation', 'annotations')} with a repeated id "
+            + (
+                "scored as a copy of the last annotation with that id, as in pycocotools"
+                if read
+                else "read as given (this protocol's reference never reads annotation ids), "
+                "not as pycocotools' copies of the last annotation with that id"
             )
         )
     repeated = (counts.get("classes_repeated") or {}).get("classes") or {}

@@ -35,6 +35,7 @@ from . import engine
 from .engine.difficulty import evaluate_levels_with_samples, get_difficulty_protocol
 from .engine.level_samples import LevelSamples, NoSamples, level_statistic
 from .engine.pedestrian import evaluate_setups_with_samples
+from .engine.shards import keep_boxes
 from .storage import ContentMismatch, verified_path
 
 
@@ -296,7 +297,12 @@ def split_counts(truth):
     key how many visibilities came from that key (``visibility_from_vis_ratio``,
     ``vis_ratio_beside_visibility``; absent when the split was read without it; read
     ``as-given`` they count what ``miss-rate-cityscale`` takes from the key). None when
-    the split gives no attribute, no region and no ``vis_ratio``."""
+    the split gives no attribute, no region and no ``vis_ratio``. The attribute counts
+    read the boxes as the KITTI devkit and the toolbox read them: a repeated
+    annotation id's annotations each as given (``GroundTruth.repeated``)."""
+    protocols = {name: p.counts(truth) for name, p in LEVEL_PROTOCOLS.items()}
+    if truth.repeated is not None:
+        truth = keep_boxes(truth, np.flatnonzero(~truth.repeated_left_out(False)))
     given = {
         name: int((~np.isnan(getattr(truth, name))).sum())
         for name in ("occlusion", "truncation", "visibility")
@@ -326,7 +332,7 @@ def split_counts(truth):
     }
     return {
         **sources,
-        "protocols": {name: p.counts(truth) for name, p in LEVEL_PROTOCOLS.items()},
+        "protocols": protocols,
         "attributes_given": given,
         "boxes": int(truth.n_boxes),
         "dont_care_regions": int(len(truth.region_image)),

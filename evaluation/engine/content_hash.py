@@ -10,7 +10,7 @@ import json
 
 import numpy as np
 
-from .data import ATTRIBUTES
+from .data import ATTRIBUTES, REPEATED_GIVEN
 
 #: How ``GroundTruth.content_hash`` is taken, newest first: ``heights`` (engine 2.18.2
 #: on) adds the city-scale ``height`` keys where one differs from its box's h (read by
@@ -83,9 +83,26 @@ def content_hash(truth, scheme="heights"):
     cached = truth.__dict__.get(name)
     if cached is not None:  # frozen: computed once (the loaders and annotate ask)
         return cached
-    value = _hash(truth, *form)
+    value = _hash(_hashed_boxes(truth), *form)
     object.__setattr__(truth, name, value)
     return value
+
+
+def _hashed_boxes(truth):
+    """``truth`` without the annotations of a repeated id as given
+    (``GroundTruth.repeated``: ``REPEATED_GIVEN``, read by the readings that never
+    read ids): what every engine before 2.21.0 held, so a split frozen then keeps its
+    hash. Left: those rows are not hashed, so two files differing only in an
+    annotation a later one with its id replaces hash alike, though the VOC, KITTI and
+    toolbox readings score them apart (``loaders.repeated_ids``)."""
+    if truth.repeated is None or not (given := truth.repeated == REPEATED_GIVEN).any():
+        return truth
+    from .shards import keep_boxes
+
+    kept = keep_boxes(truth, np.flatnonzero(~given))
+    object.__setattr__(kept, "repeated", None)
+    truth.share_images_digest(kept)
+    return kept
 
 
 def _mark(truth, scheme):

@@ -14,6 +14,10 @@ from .score_conflicts import ScoreConflictReadings
 #: a copy of a last annotation made by a repeated id on such an annotation (``loadAnns``
 #: of an occurrence only pycocotools' ``getAnnIds`` fetches: no other reading has it).
 ALIAS_IMAGE, ALIAS_CLASS, ALIAS_COPY = 1, 2, 4
+#: ``GroundTruth.repeated`` values: a copy pycocotools' ``loadAnns`` makes of the last
+#: annotation of a repeated id (read by its family and the CityPersons script), an
+#: annotation such a copy replaces, as the file gives it (read by every other reading).
+REPEATED_COPY, REPEATED_GIVEN = 1, 2
 
 #: Per-box road attributes of ``GroundTruth`` (NaN where not given).
 ATTRIBUTES = ("occlusion", "truncation", "visibility")
@@ -152,6 +156,14 @@ class GroundTruth:
     #: hold the lost entry it is scored under there. pycocotools' family scores it
     #: (``left_out_boxes``), every other reading leaves it out. None: no such box.
     alias: np.ndarray = None
+    #: Per box (int8), where a COCO JSON annotation id is given more than once
+    #: (``loaders.repeated_ids``): ``REPEATED_COPY`` a copy of the last annotation with
+    #: that id, which pycocotools' ``loadAnns`` puts in the place of each occurrence
+    #: (read only by its family and by ``miss-rate-cityscale``, whose script uses its
+    #: ``COCO`` class); ``REPEATED_GIVEN`` an occurrence as the file gives it (read
+    #: only by the others: the VOC devkit, KITTI and the toolbox never read ids); 0 a
+    #: box every reading reads. None: no id is repeated (``repeated_left_out``).
+    repeated: np.ndarray = None
 
     def __post_init__(self):
         if self.category_names is None:
@@ -212,7 +224,15 @@ class GroundTruth:
         (``unique_lost_masks``), but not those written with the changed value
         (``alias``), which it scores under the lost entry. Every other reading (the VOC
         devkit, KITTI, the toolbox) keeps every id: it leaves out only those
-        ``alias`` boxes, as it leaves out every annotation of an unlisted id."""
+        ``alias`` boxes, as it leaves out every annotation of an unlisted id. Each
+        leaves out the boxes ``repeated_left_out`` names for it."""
+        out = self._left_out_ids(pycocotools)
+        if self.repeated is None:
+            return out
+        repeated = self.repeated_left_out(pycocotools)
+        return repeated if out is None else out | repeated
+
+    def _left_out_ids(self, pycocotools):
         alias = self.alias
         if not pycocotools:
             return None if alias is None else alias != 0
@@ -224,6 +244,20 @@ class GroundTruth:
             images = images & ((alias & ALIAS_IMAGE) == 0)
             classes = classes & ((alias & ALIAS_CLASS) == 0)
         return images | classes
+
+    def repeated_left_out(self, copies):
+        """Per box, whether a reading leaves it out for a repeated annotation id
+        (``repeated``): one that reads pycocotools' copies (``copies``: its family, the
+        CityPersons script) leaves out the annotations as given, every other reading
+        the copies. All False where no id is repeated."""
+        if self.repeated is None:
+            return np.zeros(self.n_boxes, bool)
+        return self.repeated == (REPEATED_GIVEN if copies else REPEATED_COPY)
+
+    def n_boxes_read(self, copies=True):
+        """How many boxes a reading reads (``repeated_left_out``): pycocotools' rows
+        (``copies``, the split's count) or each annotation as given."""
+        return self.n_boxes - int(self.repeated_left_out(copies).sum())
 
     def alias_boxes(self):
         """Per box, whether it is an ``alias`` box (all False where none)."""

@@ -197,6 +197,13 @@ class _Image:
         return tp, fp
 
 
+def _left_out(truth):
+    """Per box, whether KITTI's devkit never reads it: written under a changed value
+    (``GroundTruth.alias``: the devkit keeps every id), or pycocotools' copy of a
+    repeated id's last annotation (``GroundTruth.repeated``: it reads each as given)."""
+    return truth.alias_boxes() | truth.repeated_left_out(False)
+
+
 def _class_index(truth, name):
     """Every class whose own name is ``name`` (``GroundTruth.classes_named``): the
     devkit knows a class only by the name its label lines carry (``strcasecmp`` in
@@ -238,8 +245,8 @@ def evaluate_levels_with_samples(truth, predictions, protocol="kitti2d"):
             continue
         near = [k for n in protocol.neighbours.get(name, ()) for k in _class_index(truth, n)]
         # boxes and detections under a changed value: the devkit keeps every id
-        gt_own = _mask(len(truth.classes), own)[truth.box_class] & ~truth.alias_boxes()
-        gt_part = _mask(len(truth.classes), own + near)[truth.box_class] & ~truth.alias_boxes()
+        gt_own = _mask(len(truth.classes), own)[truth.box_class] & ~_left_out(truth)
+        gt_part = _mask(len(truth.classes), own + near)[truth.box_class] & ~_left_out(truth)
         det_own = _mask(len(truth.classes), own)[predictions.cls] & ~det_alias
         # a detection below any level's minimum height takes part at that level
         det_part = det_own | ((det_height < tallest_minimum) & ~det_alias)
@@ -323,14 +330,14 @@ def level_counts(truth, protocol="kitti2d"):
         for name in protocol.class_overlap:
             own = _class_index(truth, name)
             if own:
-                gt_own = _mask(len(truth.classes), own)[truth.box_class] & ~truth.alias_boxes()
+                gt_own = _mask(len(truth.classes), own)[truth.box_class] & ~_left_out(truth)
                 counts[truth.classes[own[0]]] = int((gt_own & ~hard).sum())
         levels[level.name] = counts
     return {
         "levels": levels,
         "dont_care_regions": int(len(truth.region_image)),
-        "attributes_given": {
-            name: int((~np.isnan(getattr(truth, name))).sum())
+        "attributes_given": {  # of the boxes the devkit reads
+            name: int((~np.isnan(getattr(truth, name)) & ~_left_out(truth)).sum())
             for name in ("occlusion", "truncation", "visibility")
         },
     }

@@ -148,8 +148,11 @@ def _row_blocks(records, truth, block_rows, typed_ids):
             "related_class": _optional(classes[truth.box_class[safe]] if m else safe, has),
             "iou": _optional(iou, has),
         }
+    # a repeated id's annotations this reading does not read (``GroundTruth.repeated``)
+    unread = truth.repeated_left_out(records.tie_order == "image")
     for start in range(0, m, block_rows):
-        s = slice(start, min(m, start + block_rows))
+        s = np.arange(start, min(m, start + block_rows))
+        s = s[~unread[s]]
         cls, box = truth.box_class[s], truth.boxes[s]
         ref, iou = records.gt_ref_det[s].astype(np.int64), records.gt_ref_iou[s]
         has = ref >= 0

@@ -21,7 +21,7 @@ from .pedestrian_setups import (
     get_miss_rate_protocol,
 )
 from .provenance import counts as result_counts
-from .provenance import left_out_counts
+from .provenance import left_out_counts, repeated_id_counts
 from .version import ENGINE_VERSION
 
 _NOT_READ = "not computed by this protocol"
@@ -238,9 +238,11 @@ def annotate_levels(output, name, truth, predictions):
         **result_counts(truth, predictions, _Scored(scored)),
         "dont_care_regions": int(len(truth.region_image)),
     }
-    if record.get("variant") == "cityscale":  # the script's np.unique, as pycocotools'
+    city = record.get("variant") == "cityscale"
+    if city:  # the script's np.unique, as pycocotools'
         script = "the CityPersons script (eval_MR_multisetup.py)"
         output["counts"].update(left_out_counts(truth, script))
+    output["counts"].update(repeated_id_counts(truth, city))  # the script: the copies
     output["protocol_record"] = record
     output["engine_version"] = ENGINE_VERSION
     output["truth_fingerprint"] = truth.content_hash()

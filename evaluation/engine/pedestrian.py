@@ -168,6 +168,9 @@ def evaluate_setups_with_samples(truth, predictions, protocol="miss-rate"):
         found = None if left_out is None else ~left_out  # what _gts holds (the script)
         if not script:  # under a changed value: the toolbox keeps every id, leaves it out
             own, part = own & ~alias, part & ~alias
+        if truth.repeated is not None:  # a repeated id: the script reads pycocotools'
+            unread = truth.repeated_left_out(script)  # copies, the toolbox each as given
+            own, part = own & ~unread, part & ~unread
         scenes = []  # per image: its boxes of the class or a neighbour, its detections
         for image in range(n_images):
             g = gt_by_image[image]

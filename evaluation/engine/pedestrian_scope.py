@@ -57,10 +57,12 @@ def not_counted(truth, protocol):
     value ``np.unique`` changed a lost id into (``GroundTruth.alias``): the toolbox
     keeps every id and leaves it out; the CityPersons script finds it under the lost
     entry (``imgToAnns[C]``, ``_gts[C, 1]``) and counts it there, as a lost image's
-    own boxes are not."""
+    own boxes are not; or it is an annotation of a repeated id this reading does not
+    read (``GroundTruth.repeated_left_out``: the script reads pycocotools' copies, the
+    toolbox each as given)."""
     flagged = ignore_flags(truth, protocol)
     if protocol.variant != "cityscale":
-        return flagged | truth.alias_boxes()
+        return flagged | truth.alias_boxes() | truth.repeated_left_out(False)
     left_out = truth.left_out_boxes(True)  # what the script's _gts never holds
     return flagged if left_out is None else flagged | left_out
 

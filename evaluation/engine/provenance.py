@@ -10,7 +10,7 @@ results and says, in words, which settings differ and what each does to the numb
 
 import numpy as np
 
-from .data import ALIAS_CLASS, ALIAS_IMAGE
+from .data import ALIAS_CLASS, ALIAS_IMAGE, REPEATED_COPY, REPEATED_GIVEN
 from .protocols import BEST_OVERLAP, get_protocol
 from .version import ENGINE_VERSION
 
@@ -61,7 +61,9 @@ def protocol_record(protocol, truth, predictions, records, result):
     """
     protocol = get_protocol(protocol)
     table = records.thresholds
-    n_boxes = np.bincount(truth.box_class, minlength=len(truth.classes))
+    n_boxes = np.bincount(
+        truth.box_class[_boxes_read(truth, protocol)], minlength=len(truth.classes)
+    )
     n_pos = records.n_positives(0)
     absent = {}
     flags = "crowd, difficult or ignore" if protocol.difficult_ignored else "crowd or ignore"
@@ -288,6 +290,48 @@ def changed_value_counts(truth, predictions, protocol):
     }
 
 
+REPEATED_ID_REASON = {
+    "copies": "pycocotools 2.0.11's loadAnns (the CityPersons script uses it too) reads an "
+    "annotation id given more than once as its last annotation (anns[id]): each "
+    "annotation of that id is scored as a copy of the last one, under its image and "
+    "category",
+    "as given": "this protocol's reference (the VOC devkit, KITTI's devkit, the pedestrian "
+    "toolbox) never reads annotation ids: each annotation of a repeated id is scored as "
+    "the file gives it",
+}
+
+
+def repeated_id_counts(truth, copies):
+    """``counts["repeated_ids"]`` where an annotation id is given more than once
+    (``GroundTruth.repeated``): how many annotations pycocotools reads as copies of
+    another and how many the file gives in their place, and which the protocol read
+    (``copies``: pycocotools' family, ``tie_order="image"``, and the CityPersons
+    script; else each as given), with ``truth_boxes``, the boxes it read. Nothing where
+    no id repeats."""
+    if truth.repeated is None:
+        return {}
+    read = "copies" if copies else "as given"
+    return {
+        "truth_boxes": int((~truth.repeated_left_out(copies)).sum()),
+        "repeated_ids": {
+            "copies": int((truth.repeated == REPEATED_COPY).sum()),
+            "as_given": int((truth.repeated == REPEATED_GIVEN).sum()),
+            "read": read,
+            "reason": REPEATED_ID_REASON[read],
+        },
+    }
+
+
+def _reads_copies(protocol):
+    """Whether ``protocol`` reads pycocotools' copies of a repeated annotation id."""
+    return get_protocol(protocol).tie_order == "image"
+
+
+def _boxes_read(truth, protocol):
+    """Per box, whether ``protocol`` reads it at all (``GroundTruth.repeated_left_out``)."""
+    return ~truth.repeated_left_out(_reads_copies(protocol))
+
+
 def annotate(result, truth, predictions, records, protocol):
     """Finish a result: counts, the protocol record, engine version, truth fingerprint,
     and the protocol's digest (``Protocol.digest``: custom protocols named alike differ)."""
@@ -299,6 +343,7 @@ def annotate(result, truth, predictions, records, protocol):
             "reason": REPEATED_REASON,
         }
     result["counts"].update(changed_value_counts(truth, predictions, protocol))
+    result["counts"].update(repeated_id_counts(truth, _reads_copies(protocol)))
     result["protocol_record"] = protocol_record(protocol, truth, predictions, records, result)
     result["engine_version"] = ENGINE_VERSION
     result["truth_fingerprint"] = truth.content_hash()

@@ -73,18 +73,29 @@ def truth_slice(truth, start, stop):
     in file order; ``box_index`` maps its boxes to the split's."""
     box_index = np.flatnonzero((truth.box_image >= start) & (truth.box_image < stop))
     regions = (truth.region_image >= start) & (truth.region_image < stop)
-    sliced = dataclasses.replace(
-        truth,
-        **{name: getattr(truth, name)[box_index] for name in _BOX_FIELDS},
-        vis_ratio=None if truth.vis_ratio is None else truth.vis_ratio[box_index],
-        height_key=None if truth.height_key is None else truth.height_key[box_index],
-        alias=None if truth.alias is None else truth.alias[box_index],
-        cityscale_faults=_faults_slice(truth.cityscale_faults, box_index),
-        region_image=truth.region_image[regions],
-        regions=truth.regions[regions],
-    )
+    sliced = keep_boxes(truth, box_index, regions)
     truth.share_images_digest(sliced)  # its images are the split's: hashed once
     return sliced, box_index
+
+
+def keep_boxes(truth, box_index, regions=None):
+    """``truth`` with the boxes ``box_index`` (sorted) only, every image kept (and the
+    don't-care regions ``regions``, a mask; None: every one)."""
+    optional = ("vis_ratio", "height_key", "alias", "repeated")
+    return dataclasses.replace(
+        truth,
+        **{name: getattr(truth, name)[box_index] for name in _BOX_FIELDS},
+        **{
+            name: None if getattr(truth, name) is None else getattr(truth, name)[box_index]
+            for name in optional
+        },
+        cityscale_faults=_faults_slice(truth.cityscale_faults, box_index),
+        **(
+            {}
+            if regions is None
+            else {"region_image": truth.region_image[regions], "regions": truth.regions[regions]}
+        ),
+    )
 
 
 def _faults_slice(faults, box_index):

@@ -92,7 +92,7 @@ def load_split(
             },
             tags=tags,
             image_count=loaded.n_images,
-            box_count=loaded.n_boxes,
+            box_count=loaded.n_boxes_read(),  # pycocotools' rows, as before engine 2.21
             sha256=sha,
             source_format=source_format,
             road_counts=levels.split_counts(loaded),

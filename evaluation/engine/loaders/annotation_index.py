@@ -90,7 +90,7 @@ def _last_of_each_id(ids):
     return last
 
 
-def resolve(cols, image_ids, class_ids, lost_images=None, by_category=None):
+def resolve(cols, image_ids, class_ids, lost_images=None, by_category=None, slots=False):
     """Columns of the annotations pycocotools scores, in the order it reads them, and
     the source row of each (for error locations); counts of what changed.
 
@@ -103,7 +103,8 @@ def resolve(cols, image_ids, class_ids, lost_images=None, by_category=None):
     categories and misses some lost ones; None: the listed categories). Returns
     ``(rows, counts)``; ``rows`` is None when nothing changes (no duplicate id, every
     image and category listed), so the common file keeps its order and content
-    exactly.
+    exactly. With ``slots``, ``(rows, counts, occurrence)``: the annotation whose place
+    each row takes (``repeated_ids.merge`` orders the annotations as given by it).
 
     An annotation written with the value ``np.unique`` changed a lost id into
     (``cols["box_alias"]``, ``lost_ids.changed_value_refs``: its ids already the lost
@@ -136,7 +137,7 @@ def resolve(cols, image_ids, class_ids, lost_images=None, by_category=None):
         "duplicate_ids_never_fetched": int(never.sum()),
     }
     if selected.all() and not copies.any():
-        return None, counts
+        return (None, counts, None) if slots else (None, counts)
     picked = np.flatnonzero(selected | extra)
     # imgToAnns in ascending image id (the rank in ``image_ids``: typed keys do not
     # sort as the ids do), file order within an image
@@ -148,6 +149,8 @@ def resolve(cols, image_ids, class_ids, lost_images=None, by_category=None):
     if alias is not None:  # the copies only an alias occurrence makes
         made = (alias[picked] != 0) & (alias[rows] == 0)
         cols["box_alias_copies"] = made[landed]
+    if slots:
+        return rows[landed], counts, picked[landed]
     return rows[landed], counts
 
 

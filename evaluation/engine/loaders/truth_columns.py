@@ -16,6 +16,7 @@ from . import (
     id_families,
     label_folders,
     lost_ids,
+    repeated_ids,
 )
 from . import ids as ids_module
 from .ids import csv_ids, ids_like
@@ -183,7 +184,7 @@ def read_truth(
         class_kinds = cols["class_id_kinds"][class_order]
         lost["class"] = lost_ids.unique_lost(class_shown, class_type, class_kinds, listed_classes)
     annotation_counts = {**dict.fromkeys(annotation_index.COUNTS, 0), **entry_counts}
-    rows = None
+    rows = repeated = None
     if fmt == "json" and annotations == "strict":
         checks.check_unique(path, cols["box_ids"], box_locate, "id")
     elif fmt == "json":
@@ -195,8 +196,8 @@ def read_truth(
             cols["box_alias"], cols["box_image_ids"], cols["box_class_ids"] = aliases
             annotation_counts[UNDER_CHANGED_VALUE] = int((aliases[0] != 0).sum())
         lost_images = image_ids[lost["image"][0]] if len(lost["image"][0]) else None
-        rows, resolved = annotation_index.resolve(
-            cols, image_ids, class_ids, lost_images, by_category
+        rows, resolved, occurrence = annotation_index.resolve(
+            cols, image_ids, class_ids, lost_images, by_category, slots=True
         )
         annotation_counts.update(resolved)
         unread = lost_ids.unread_on_lost(cols, bad_rows, rows, image_ids, class_ids, lost)
@@ -207,7 +208,18 @@ def read_truth(
             rows = kept[keep]
             if "box_alias_copies" in cols:  # annotation_index.resolve's, per row
                 cols["box_alias_copies"] = cols["box_alias_copies"][keep]
+            occurrence = None if occurrence is None else occurrence[keep]
             annotation_counts["unreadable_on_lost_ids"] = len(unread)
+        if occurrence is not None:  # a repeated id: the other readings read each as given
+            repeated = repeated_ids.readings(
+                path,
+                cols,
+                (rows, occurrence),
+                (image_ids, class_ids, image_order),
+                bad_rows,
+                policy,
+                vis_ratio,
+            )
         if rows is not None:
             annotation_index.take(cols, rows)
             box_locate = lambda i: f"annotations[{rows[i]}]"  # noqa: E731
@@ -280,7 +292,7 @@ def read_truth(
     names = [cols["class_names"][i] for i in class_order]
     own = cols.get("category_names")
     tags = [cols["image_tags"][i] for i in image_order]
-    return GroundTruth(
+    truth = GroundTruth(
         classes=tuple(names),
         category_names=None if own is None else tuple(own[i] for i in class_order),
         class_ids=_shown(class_ids, class_type),
@@ -327,6 +339,9 @@ def read_truth(
         },
         **road,
     )
+    if repeated is None:
+        return truth
+    return repeated_ids.merge(truth, *repeated)
 
 
 def _csv_truth_columns(path, images, classes):
