@@ -109,9 +109,37 @@ def own_names(card, records):
     return names if len(names) == len(records.classes) else list(records.classes)
 
 
+def rows_naming(rows, class_name):
+    """The keys of ``rows`` (a scorecard's per-class rows or results, keyed by the
+    split's own names) that ``class_name`` (a detector's class or a rule's) names, in
+    any case (``same_class``), in their order."""
+    return [k for k in rows if same_class(k, class_name)]
+
+
 def row_of(rows, class_name):
-    """The key of ``rows`` (a scorecard's classes) that ``class_name`` names, in any
-    case; an exact key wins, else the first match; None if none."""
-    if class_name in rows:
-        return class_name
-    return next((k for k in rows if same_class(k, class_name)), None)
+    """The one key of ``rows`` that ``class_name`` names in any case (``rows_naming``);
+    None if none, and None where two or more do (``Car`` and ``car`` as distinct
+    categories): no one of them is picked (``shared_note`` says why). Every reading of
+    a scorecard's rows by class name goes through here (rules, pages, API)."""
+    found = rows_naming(rows, class_name)
+    return found[0] if len(found) == 1 else None
+
+
+def shared_note(rows, class_name):
+    """Why ``row_of`` gives no key though ``rows`` name the class: ``"two categories
+    of this split name class X in any case (Car, car)"``; None when fewer than two do."""
+    found = rows_naming(rows, class_name)
+    if len(found) < 2:
+        return None
+    return (
+        f"{len(found)} categories of this split name class {class_name!r} in any case "
+        f"({', '.join(found)}): no one of them is read as the class"
+    )
+
+
+def of_class(mapping, class_name):
+    """``mapping``'s value (keyed by the split's class names, ``"mean"`` for the mean)
+    for ``class_name``: ``"mean"`` as itself, a class through ``row_of``; None if none."""
+    if class_name == "mean":
+        return mapping.get("mean")
+    return mapping.get(row_of(mapping, class_name))

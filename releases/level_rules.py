@@ -28,6 +28,7 @@ from evaluation import levels
 from evaluation.engine.data import name_key
 from evaluation.services import load_truth_of
 
+from .class_thresholds import row_of, rows_naming, same_class, shared_note
 from .models import Outcome
 
 KINDS = ("min_value", "max_drop", "no_significant_drop")
@@ -121,9 +122,10 @@ def stored_name(keys, name, split, cache):
     returned as given (not measured)."""
     if name == "mean":
         return name
-    by_lower = {k.lower(): k for k in keys}
-    if name.lower() in by_lower:
-        return by_lower[name.lower()]
+    if row_of(keys, name) is not None:
+        return row_of(keys, name)
+    if len(rows_naming(keys, name)) > 1:
+        return name  # two categories naming it in any case: judge() says so
     table = _renamed(split, cache)
     entry = table.get(name_key(name)) if table else None
     if entry is None:
@@ -169,8 +171,15 @@ def judge(outcome, rule, split, name, card, baseline_card, suite_names, cache):
         outcome.detail = f"{label}: no {protocol.name} result on {split}"
         return outcome
     entry = card.result["levels"].get(level)
+    shared = shared_note(entry["classes"] if entry else (), name) if name != "mean" else None
+    if shared:  # never one category picked silently; missing keeps the verdict incomplete
+        outcome.status, outcome.detail = (
+            Outcome.Status.MISSING,
+            f"{label}: cannot be judged, {shared}",
+        )
+        return outcome
     stored = stored_name(entry["classes"] if entry else (), name, split, cache)
-    if stored.lower() != name.lower():
+    if not same_class(stored, name):
         merged = f"{name} (one class with {stored!r})"
         label = f"{rule['metric']} of {merged}{where} ({protocol.name}) on {split}"
     if tag or rule["kind"] == "no_significant_drop":

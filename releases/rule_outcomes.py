@@ -10,6 +10,7 @@ from evaluation.engine.provenance import UNDEFINED_AP
 from evaluation.models import BenchmarkSplit, ClassScore
 
 from . import level_rules, rule_slices, selectors
+from .class_thresholds import row_of, shared_note
 from .criteria import METRICS
 from .delta_intervals import _intervals
 from .models import Outcome
@@ -24,12 +25,31 @@ def _scorecards(sets, protocol):
 
 
 def _value(card, metric, name):
+    """The card's number of ``metric`` for ``name`` (``mean`` or a class, matched to the
+    split's own names in any case: ``class_thresholds.row_of``); None: not measured."""
     if card is None:
         return None
-    row = ClassScore.objects.filter(
-        scorecard=card, class_name="" if name == "mean" else name
-    ).first()
+    if name == "mean":
+        row = ClassScore.objects.filter(scorecard=card, class_name="").first()
+    else:
+        rows = {r.class_name: r for r in ClassScore.objects.filter(scorecard=card)}
+        row = rows.get(row_of(rows, name))
     return getattr(row, METRICS[metric]) if row else None
+
+
+def _shared(card, name, cache):
+    """``class_thresholds.shared_note`` of ``name`` on the card's split (None: the
+    class names at most one category); the split's classes read once per card."""
+    if card is None or name == "mean":
+        return None
+    key = ("classes", card.pk)
+    if key not in cache:
+        cache[key] = list(
+            ClassScore.objects.filter(scorecard=card)
+            .exclude(class_name="")
+            .values_list("class_name", flat=True)
+        )
+    return shared_note(cache[key], name)
 
 
 def outcomes_for(version, inputs):
@@ -166,6 +186,13 @@ def _judge_one(
     if card is None:
         outcome.status, outcome.detail = Outcome.Status.MISSING, f"no predictions on {split}"
         return outcome
+    shared = _shared(card, name, bootstraps) or _shared(baseline_card, name, bootstraps)
+    if shared:  # never one category picked silently; missing keeps the verdict incomplete
+        outcome.status, outcome.detail = (
+            Outcome.Status.MISSING,
+            f"{label}: cannot be judged, {shared}",
+        )
+        return outcome
     for found, whose in ((problem, ""), (base_problem, "baseline: ")):
         if found:
             outcome.status, outcome.detail = found[0], f"{label}: {whose}{found[1]}"
@@ -203,7 +230,8 @@ def _judge_one(
         except rule_slices.SliceUnavailable as e:
             outcome.status, outcome.detail = Outcome.Status.MISSING, f"{label}: {e}"
             return outcome
-    interval = bootstraps[key][name]
+    found = bootstraps[key]
+    interval = found[name if name == "mean" else row_of(found, name)]
     outcome.low, outcome.high = interval.low, interval.high
     outcome.status = significance_status(drop, interval.high < 0, tolerance)
     outcome.detail = (
@@ -223,7 +251,7 @@ def _why_unmeasured(card, name, where, cache):
     if name == "mean":
         why = UNDEFINED_AP if UNDEFINED_AP in reasons.values() else None
     else:
-        why = reasons.get(name)
+        why = reasons.get(row_of(reasons, name))
     if where is not None and why is not None:
         return f"on the whole split: {why}" if why != UNDEFINED_AP else why
     return why

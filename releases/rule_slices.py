@@ -81,7 +81,9 @@ def measure(card, rule, class_name, cache):
                 "cannot be judged on this scorecard",
             )
         return None, ("no data", f"no image of {card.evaluation.split} carries tag {where.name!r}")
-    return values.get(class_name, {}).get(rule["metric"]), None
+    from .class_thresholds import of_class  # the slice keeps the split's names
+
+    return (of_class(values, class_name) or {}).get(rule["metric"]), None
 
 
 def weights_and_area(card, records, rule, truth_of):

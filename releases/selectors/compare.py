@@ -1,9 +1,10 @@
 """The compare page: deltas between two versions and what marks them."""
 
+from ..class_thresholds import of_class, row_of
 from ..models import PredictionSet
 from . import miss_rate
 from .levels import level_deltas
-from .scores import _class_rows, _scorecards, absent_classes
+from .scores import _class_rows, _scorecards, absent_classes, class_row
 
 
 def significance(delta, interval):
@@ -171,10 +172,12 @@ def compare_versions(reference, candidate):
     miss_rate_charts = miss_rate.compare_charts(reference, candidate, sets)
     tag_ap, size_ap, size_names = {}, {}, {}
     for s in SliceScore.objects.filter(scorecard__in=used, kind__in=["tag", "size"]).order_by("pk"):
+        # {(card, slice): {the split's class name or "mean": AP}}, read by a detector's
+        # class in any case (class_thresholds.of_class)
         if s.kind == "tag":
-            tag_ap[(s.scorecard_id, s.name, s.class_name or "mean")] = s.ap
+            tag_ap.setdefault((s.scorecard_id, s.name), {})[s.class_name or "mean"] = s.ap
         else:
-            size_ap[(s.scorecard_id, s.name, s.class_name or "mean")] = s.ap
+            size_ap.setdefault((s.scorecard_id, s.name), {})[s.class_name or "mean"] = s.ap
             size_names.setdefault(s.scorecard_id, {})[s.name] = None
     by_level = level_deltas(reference, candidate, sets)  # kitti2d levels (selectors/levels.py)
     out = []
@@ -191,9 +194,9 @@ def compare_versions(reference, candidate):
             if name == "mean":
                 va, vb = a.summary.get("AP"), b.summary.get("AP")
             else:
-                ra, rb = rows.get(a.pk, {}).get(name), rows.get(b.pk, {}).get(name)
+                ra, rb = class_row(rows.get(a.pk, {}), name), class_row(rows.get(b.pk, {}), name)
                 va, vb = (ra.ap if ra else None), (rb.ap if rb else None)
-            interval = whole.get(name) or judged.get((split.pk, name))
+            interval = of_class(whole, name) or judged.get((split.pk, name))
             deltas.append(_delta(name, va, vb, interval))
         deltas.sort(key=lambda d: (d["class"] != "mean", d["delta"] is None, d["delta"] or 0))
         tags = sorted({k[1] for k in tag_ap if k[0] in (a.pk, b.pk)})
@@ -203,9 +206,9 @@ def compare_versions(reference, candidate):
                 "cells": [
                     _delta(
                         name,
-                        tag_ap.get((a.pk, tag, name)),
-                        tag_ap.get((b.pk, tag, name)),
-                        computed.get(tag, {}).get(name),
+                        of_class(tag_ap.get((a.pk, tag), {}), name),
+                        of_class(tag_ap.get((b.pk, tag), {}), name),
+                        of_class(computed.get(tag, {}), name),
                     )
                     for name in ["mean", *detector.classes]
                 ],
@@ -219,9 +222,9 @@ def compare_versions(reference, candidate):
                 "cells": [
                     _delta(
                         name,
-                        size_ap.get((a.pk, size, name)),
-                        size_ap.get((b.pk, size, name)),
-                        computed_sizes.get(size, {}).get(name)
+                        of_class(size_ap.get((a.pk, size), {}), name),
+                        of_class(size_ap.get((b.pk, size), {}), name),
+                        of_class(computed_sizes.get(size, {}), name)
                         or judged_sizes.get((split.pk, size, name)),
                     )
                     for name in ["mean", *detector.classes]
@@ -229,13 +232,17 @@ def compare_versions(reference, candidate):
             }
             for size in sizes
         ]
+        found = {
+            name: (row_of(a.result["per_class"], name), row_of(b.result["per_class"], name))
+            for name in detector.classes
+        }
         curves = {
             name: {
-                "reference": a.result["per_class"][name]["curve"],
-                "candidate": b.result["per_class"][name]["curve"],
+                "reference": a.result["per_class"][ka]["curve"],
+                "candidate": b.result["per_class"][kb]["curve"],
             }
-            for name in detector.classes
-            if name in a.result["per_class"] and name in b.result["per_class"]
+            for name, (ka, kb) in found.items()
+            if ka is not None and kb is not None
         }
         out.append(
             {

@@ -110,7 +110,9 @@ def pair_breakdown(pair, class_name=""):
     except (ContentMismatch, OSError, ValueError) as e:  # shown in place, not a 500
         return {"error": str(e)}
     found = compare_breakdowns(candidate, reference)
-    rows = found["per_class"].get(class_name) if class_name else found["mean"]
+    from ..class_thresholds import of_class
+
+    rows = of_class(found["per_class"], class_name) if class_name else found["mean"]
     if rows is None:
         return None
     changes = [(r["change"], r["type"]) for r in rows if r["change"] is not None]

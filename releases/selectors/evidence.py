@@ -1,5 +1,6 @@
 """The evidence report a reviewer keeps."""
 
+from ..class_thresholds import row_of
 from .access import CAUTION
 from .decisions import outcomes_of, verdict_summary
 from .scores import class_numbers, summary_items
@@ -38,7 +39,9 @@ def evidence_for(version):
         for row in entry["classes"]:
             if row is None:
                 continue
-            low, high = intervals.get((entry["split"].pk, row.class_name), (None, None))
+            # the outcome names the detector's class, the row the split's: in any case
+            on_split = {c: v for (s, c), v in intervals.items() if s == entry["split"].pk}
+            low, high = on_split.get(row_of(on_split, row.class_name), (None, None))
             classes.append({**class_numbers(row), "delta_AP_interval": [low, high]})
         splits.append(
             {

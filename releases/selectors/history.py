@@ -1,6 +1,7 @@
 """The detector page: one metric and class of every version on every split."""
 
 from .. import history_stamps
+from ..class_thresholds import row_of, rows_naming
 from ..models import PredictionSet
 from .decisions import baselines_of
 from .history_levels import (
@@ -57,7 +58,7 @@ def history_chart(
     from evaluation.models import ClassScore, SliceScore
 
     classes = [MEAN, *detector.classes]
-    rows, same_class = ClassScore.objects.all(), "class_name"
+    rows = ClassScore.objects.all()
     protocol, field = detector.primary_protocol, METRICS[metric][0]
     try:
         level = level_of(level, setup)
@@ -70,7 +71,6 @@ def history_chart(
             raise HistoryError(str(e)) from None
         protocol = level_protocol.name
         rows = SliceScore.objects.filter(kind="level", name=level)
-        same_class = "class_name__iexact"  # level rows carry the split's spelling
     if class_name not in classes:
         raise HistoryError(f"class: {class_name!r} is not one of {', '.join(classes)}")
     versions = list(
@@ -80,7 +80,7 @@ def history_chart(
     )
     position = {pk: i for i, (pk, *_) in enumerate(versions)}
     baseline = baselines_of({detector.pk}).get(detector.pk)
-    selection = (protocol, field, same_class, "" if class_name == MEAN else class_name, level)
+    selection = (protocol, field, "" if class_name == MEAN else class_name, level)
 
     def compute():
         numbers, splits = _numbers(detector, rows, selection)
@@ -119,30 +119,46 @@ def _numbers(detector, rows, selection):
     own current sets, and the splits the detector's current sets are on (by name, then
     revision): the part of a history read that joins six tables (the series built
     from it are kept by ``history_stamps.cached`` until the detector's next change)."""
-    protocol, field, same_class, class_filter, _ = selection
+    protocol, field, class_filter, _ = selection
     # All conditions on the set in one filter(): the same set row, so a version reads
     # its own sets' evaluations only (never another team's scorecard of the same
     # bytes), and two versions sharing identical bytes each get their point.
+    rows = rows.filter(
+        scorecard__evaluation__state="done",
+        scorecard__evaluation__protocol=protocol,
+        scorecard__evaluation__prediction_sets__replaced_at__isnull=True,
+        scorecard__evaluation__prediction_sets__version__detector=detector,
+    )
+    # A row keeps its split's spelling: the class matches it in any case (row_of); the
+    # split's names are read first so the numbers are read for those names only.
+    names = [class_filter]
+    if class_filter:
+        spelled = set(rows.values_list("class_name", flat=True).distinct())
+        names = rows_naming(sorted(spelled - {""}), class_filter)
     rows = (
-        rows.filter(
-            **{same_class: class_filter},
-            scorecard__evaluation__state="done",
-            scorecard__evaluation__protocol=protocol,
-            scorecard__evaluation__prediction_sets__replaced_at__isnull=True,
-            scorecard__evaluation__prediction_sets__version__detector=detector,
-        )
+        rows.filter(class_name__in=names)
         .order_by("scorecard__evaluation_id")  # several evaluations of a set: the newest wins
         .values_list(
             "scorecard__evaluation__prediction_sets__version_id",
             "scorecard__evaluation__split_id",
+            "scorecard__evaluation_id",
+            "class_name",
             field,
             "scorecard__evaluation__box_policy",
             "scorecard__evaluation__engine_version",
         )
     )
+    found = {}  # (version id, split id) -> (evaluation id, {class name: point})
+    for version_id, split_id, evaluation_id, name, *point in rows:
+        latest = found.get((version_id, split_id))
+        if latest is None or latest[0] != evaluation_id:
+            latest = found[version_id, split_id] = (evaluation_id, {})
+        latest[1][name] = point
     numbers = {}  # (version id, split id) -> (value, box policy, engine version)
-    for version_id, split_id, *point in rows:
-        numbers[version_id, split_id] = point
+    for at, (_, points) in found.items():
+        key = class_filter if not class_filter else row_of(points, class_filter)
+        if key is not None:  # two categories of the split naming the class: not scored
+            numbers[at] = points[key]
     split_ids = set(
         PredictionSet.objects.current()
         .filter(version__detector=detector)

@@ -141,9 +141,17 @@ def image_rows(pair, listing):
     from evaluation.engine import per_image
     from evaluation.engine.reasons import FALSE_POSITIVE_REASONS
 
+    from ..class_thresholds import row_of, shared_note
+
     truth = pair.truth
-    if listing.class_name and listing.class_name not in truth.classes:
-        raise ValueError(f"class: {listing.class_name!r} is not a class of {pair.split}")
+    own = row_of(truth.classes, listing.class_name) if listing.class_name else None
+    if listing.class_name and own is None:  # a detector's or rule's class, in any case
+        shared = shared_note(truth.classes, listing.class_name)
+        raise ValueError(
+            f"class: {shared} on {pair.split}"
+            if shared
+            else f"class: {listing.class_name!r} is not a class of {pair.split}"
+        )
     if listing.tag and listing.tag not in truth.tags():
         raise ValueError(f"tag: {listing.tag!r} is not an image tag of {pair.split}")
     records = pair.candidate.records
@@ -155,7 +163,7 @@ def image_rows(pair, listing):
     key = (
         tuple((name, side.card.pk, side.card.records_sha256) for name, side in sides.items()),
         tuple(pair.thresholds.tolist()),
-        listing.class_name,
+        own,
         listing.tag,
         listing.size,
         listing.metric,
@@ -163,7 +171,7 @@ def image_rows(pair, listing):
     cached = _ROWS.get(key)  # .get: another thread may clear it meanwhile
     if cached is not None:
         return cached
-    k = truth.classes.index(listing.class_name) if listing.class_name else None
+    k = truth.classes.index(own) if own is not None else None
     classes = [k] if k is not None else list(range(len(truth.classes)))
     weights = truth.tag_mask(listing.tag) if listing.tag else None
     protocol = engine.get_protocol(pair.protocol)
@@ -260,9 +268,12 @@ def threshold_words(pair):
 def slider_start(pair, class_name=""):
     """Where the drill-down's threshold slider starts: the class's deployed cut when
     the list is filtered to a class, else the most common cut."""
+    from ..class_thresholds import row_of
+
     values = [float(t) for t in pair.thresholds]
-    if class_name in pair.classes:
-        return values[pair.classes.index(class_name)]
+    own = row_of(pair.classes, class_name) if class_name else None
+    if own is not None:
+        return values[pair.classes.index(own)]
     return max(set(values), key=values.count)
 
 

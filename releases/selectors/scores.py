@@ -40,6 +40,14 @@ def _scorecards(prediction_sets, protocols, *, with_result=False):
     return out
 
 
+def class_row(rows, name):
+    """The row of ``rows`` (``_class_rows``: one card's, by the split's names) for a
+    detector's class ``name``, matched in any case (``class_thresholds.row_of``)."""
+    from ..class_thresholds import of_class
+
+    return of_class(rows, name)
+
+
 def _class_rows(cards):
     from evaluation.models import ClassScore
 
@@ -69,9 +77,12 @@ def absent_classes(card, classes):
     engine's words (``protocol_record.absent_classes``: no counted box, every detection
     ignored under ``voc07``, ...); needs the card's result. Empty for a result recorded
     before the record (engine 2.4.0)."""
+    from ..class_thresholds import row_of
+
     record = card.result.get("protocol_record") or {}
     why = record.get("absent_classes") or {}
-    return [(name, why[name]) for name in classes if name in why]
+    found = [(name, row_of(why, name)) for name in classes]  # the split's spelling, any case
+    return [(name, why[key]) for name, key in found if key is not None]
 
 
 def absent_reasons(card, cache):
@@ -93,7 +104,10 @@ def absent_reasons(card, cache):
 
 def absent_reason(card, name, cache):
     """Why the scorecard has no AP for class ``name`` (``absent_reasons``), or None."""
-    return absent_reasons(card, cache).get(name)
+    from ..class_thresholds import row_of
+
+    reasons = absent_reasons(card, cache)
+    return reasons.get(row_of(reasons, name))
 
 
 def absent_note(card, name, cache):

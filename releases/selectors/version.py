@@ -1,7 +1,8 @@
 """The version page: each split's scorecard."""
 
+from ..class_thresholds import of_class, row_of
 from . import miss_rate
-from .scores import _class_rows, _scorecards, absent_classes, summary_items
+from .scores import _class_rows, _scorecards, absent_classes, class_row, summary_items
 
 
 def version_scorecards(version, suite=None):
@@ -36,10 +37,17 @@ def version_scorecards(version, suite=None):
                 "prediction_set": ps,
                 "split": ps.split,
                 "card": card,
-                "classes": [rows.get(card.pk, {}).get(c) for c in detector.classes] if card else [],
+                "classes": [class_row(rows.get(card.pk, {}), c) for c in detector.classes]
+                if card
+                else [],
                 # the classes without an AP, and why (the engine's protocol record)
                 "absent": absent_classes(card, detector.classes) if card else [],
-                "tags": sorted(slices.get(card.pk, {}).items()) if card else [],
+                "tags": [
+                    (tag, {c: of_class(values, c) for c in ["mean", *detector.classes]})
+                    for tag, values in sorted(slices.get(card.pk, {}).items())
+                ]
+                if card
+                else [],
                 "summary": summary_items(card.summary) if card else [],
                 "sizes": [
                     (name, card.result["slices"]["size"].get(name, {}).get("AP"))
@@ -81,7 +89,6 @@ def deployed_numbers(card, suite, classes):
     (a class matches the scorecard's in any case: ``class_thresholds.row_of``), each
     with its threshold, and ``pooled``; None when the suite's primary protocol is
     not the card's or its match records cannot be read (the page still renders)."""
-    from ..class_thresholds import row_of
     from ..suites import deployed_operating_point
 
     if suite is None or card.protocol != suite.protocols[0]:
