@@ -42,7 +42,10 @@ def version_scorecards(version, suite=None):
                 else [],
                 # the classes without an AP, and why (the engine's protocol record)
                 "absent": absent_classes(card, detector.classes) if card else [],
-                "tags": [
+                # {tag: {the split's class or "mean": AP}} (the API's), and the page's
+                # rows by the detector's classes, matched in any case (of_class)
+                "tags": sorted(slices.get(card.pk, {}).items()) if card else [],
+                "tag_rows": [
                     (tag, {c: of_class(values, c) for c in ["mean", *detector.classes]})
                     for tag, values in sorted(slices.get(card.pk, {}).items())
                 ]

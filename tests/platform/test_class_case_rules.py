@@ -128,6 +128,13 @@ def test_the_version_page_table_is_filled(scored, users):
     (entry,) = selectors.version_scorecards(version)
     assert [getattr(row, "class_name", None) for row in entry["classes"]] == SPLIT_NAMES
     assert entry["classes"][1].ap == pytest.approx(ap, abs=1e-9)  # pycocotools 2.0.11
+    tags = dict(entry["tag_rows"])  # the page's AP-by-tag table, by the detector's classes
+    assert set(tags) == {"night", "rain"}  # tests/engine/synthetic.py's tags
+    assert all(
+        values["pedestrian"] == dict(entry["tags"])[tag]["Pedestrian"]
+        for tag, values in tags.items()
+    )
+    assert any(values["pedestrian"] is not None for values in tags.values())
 
     from rest_framework.test import APIClient
 
