@@ -21,6 +21,25 @@ REPEATED_COPY, REPEATED_GIVEN = 1, 2
 
 #: Per-box road attributes of ``GroundTruth`` (NaN where not given).
 ATTRIBUTES = ("occlusion", "truncation", "visibility")
+#: The per-box columns of ``GroundTruth`` every box has (the optional ones, None where
+#: a split has none: ``vis_ratio``, ``height_key``, ``alias``, ``repeated``), which a
+#: shard slice cuts (``shards.keep_boxes``) and ``loaders.repeated_ids.merge`` interleaves.
+BOX_COLUMNS = (
+    "box_ids",
+    "box_image",
+    "box_class",
+    "boxes",
+    "box_area",
+    "crowd",
+    "difficult",
+    "ignore",
+    "ignore_key",
+    "ignore_key_fraction",
+    "iscrowd_fraction",
+    "occlusion",
+    "truncation",
+    "visibility",
+)
 
 
 def name_key(name):

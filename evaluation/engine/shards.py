@@ -24,28 +24,12 @@ import dataclasses
 
 import numpy as np
 
+from .data import BOX_COLUMNS
 from .loaders import exact_scores
 from .loaders.cache import _from_arrays, _to_arrays
 from .matching import match
 from .records import MatchRecords
 
-#: Per-box columns of ``GroundTruth`` that a slice keeps for its own boxes only.
-_BOX_FIELDS = (
-    "box_ids",
-    "box_image",
-    "box_class",
-    "boxes",
-    "box_area",
-    "crowd",
-    "difficult",
-    "ignore",
-    "ignore_key",
-    "ignore_key_fraction",
-    "iscrowd_fraction",
-    "occlusion",
-    "truncation",
-    "visibility",
-)
 #: Per-detection columns of ``MatchRecords`` (first axis) and the one on the second.
 _DET_FIELDS = (
     "det_class",
@@ -84,7 +68,7 @@ def keep_boxes(truth, box_index, regions=None):
     optional = ("vis_ratio", "height_key", "alias", "repeated")
     return dataclasses.replace(
         truth,
-        **{name: getattr(truth, name)[box_index] for name in _BOX_FIELDS},
+        **{name: getattr(truth, name)[box_index] for name in BOX_COLUMNS},
         **{
             name: None if getattr(truth, name) is None else getattr(truth, name)[box_index]
             for name in optional

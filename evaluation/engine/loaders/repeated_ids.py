@@ -23,7 +23,7 @@ import dataclasses
 
 import numpy as np
 
-from ..data import REPEATED_COPY, REPEATED_GIVEN
+from ..data import BOX_COLUMNS, REPEATED_COPY, REPEATED_GIVEN
 from ..errors import InputError
 from . import annotation_index, attributes, checks, ids
 
@@ -124,26 +124,6 @@ def given_columns(path, cols, rows, image_ids, class_ids, image_order, policy, v
     }
 
 
-#: Per-box columns ``merge`` interleaves (``vis_ratio``/``height_key``: only where the
-#: split has them; the CityPersons script, which reads them, never reads a given row).
-_MERGED = (
-    "box_ids",
-    "box_image",
-    "box_class",
-    "boxes",
-    "box_area",
-    "crowd",
-    "difficult",
-    "ignore",
-    "ignore_key",
-    "ignore_key_fraction",
-    "iscrowd_fraction",
-    "occlusion",
-    "truncation",
-    "visibility",
-)
-
-
 def merge(truth, rows, occurrence, occurrence_rank, given, given_rows_):
     """``truth`` (the rows pycocotools scores: source ``rows``, ``occurrence`` the
     source row whose place each takes, as ``annotation_index.resolve`` gives them, or
@@ -164,13 +144,15 @@ def merge(truth, rows, occurrence, occurrence_rank, given, given_rows_):
     )
     order = np.lexsort(keys)
     columns = {}
-    for name in _MERGED:
+    for name in BOX_COLUMNS:
         ours, theirs = getattr(truth, name), given[name]
         if name == "box_ids":
             columns[name] = np.concatenate([ours, np.asarray(theirs)])[order]
             continue
         theirs = np.zeros(extra, ours.dtype) if theirs is None else theirs
         columns[name] = np.concatenate([ours, np.asarray(theirs, ours.dtype)])[order]
+    # the optional columns only where the split has them; the CityPersons script, which
+    # reads them, never reads a given row
     if truth.vis_ratio is not None:
         columns["vis_ratio"] = np.r_[truth.vis_ratio, np.full(extra, np.nan)][order]
     if truth.height_key is not None:
