@@ -1,6 +1,6 @@
 """A split's identity: ``GroundTruth.content_hash`` and the id kinds it marks.
 
-The canonical form a split is hashed in (``content_hash``), the two hash schemes, the
+The canonical form a split is hashed in (``content_hash``), the hash schemes, the
 id kinds a ``typed`` hash starts with, and the image part a shard slice shares with its
 split (``share_images_digest``). ``GroundTruth`` delegates its methods here.
 """
@@ -12,17 +12,20 @@ import numpy as np
 
 from .data import ATTRIBUTES, REPEATED_GIVEN
 
-#: How ``GroundTruth.content_hash`` is taken, newest first: ``heights`` (engine 2.18.2
-#: on) adds the city-scale ``height`` keys where one differs from its box's h (read by
-#: ``miss-rate-cityscale`` since then), so a split frozen before, under ``named``,
-#: keeps the hash its files verify against; ``named`` (engine 2.17.6 on)
+#: How ``GroundTruth.content_hash`` is taken, newest first: ``repeats`` (engine 2.22.0
+#: on) adds the annotations of a repeated id as given (``REPEATED_GIVEN``: the VOC,
+#: KITTI and toolbox readings score them) and the column saying which rows those are,
+#: so a split frozen before, under ``heights``, keeps its hash; ``heights`` (engine
+#: 2.18.2 on) adds the city-scale ``height`` keys where one differs from its box's h
+#: (read by ``miss-rate-cityscale`` since then), so a split frozen before, under
+#: ``named``, keeps the hash its files verify against; ``named`` (engine 2.17.6 on)
 #: adds the categories' own names where one is shown otherwise (shared names shown as
 #: ``car (id 1)``), so a file naming its categories so literally hashes apart; ``typed``
 #: (engine 2.15.0 on) hashes the kind of a text id family, so ids that match different
 #: predictions hash apart; ``untyped`` is the hash before (ids by their text only). The
 #: older two are kept to verify splits frozen under them. Each hashes a split as the
 #: one after it does unless the split holds what the newer one adds.
-HASH_SCHEMES = ("heights", "named", "typed", "untyped")
+HASH_SCHEMES = ("repeats", "heights", "named", "typed", "untyped")
 #: Id kinds (``id_kind``) a ``typed`` hash leaves out: so numeric splits keep their hash.
 NUMERIC_ID_KINDS = ("int", "number")
 
@@ -43,7 +46,7 @@ def _canonical_nan(values):
     return np.where(np.isnan(values), np.nan, values)
 
 
-def content_hash(truth, scheme="heights"):
+def content_hash(truth, scheme="repeats"):
     """SHA-256 of the canonical content: identical splits hash identically.
 
     Canonical form: images in id order with sizes and sorted tags, classes in
@@ -53,7 +56,7 @@ def content_hash(truth, scheme="heights"):
     occlusion, truncation and visibility; the sorted regions follow), so a split
     without them keeps the hash it was frozen with. The city-scale ``vis_ratio``
     column is added only where it says more than the visibility
-    (``_vis_ratio_says_more``); under the ``heights`` scheme (the default) the
+    (``_vis_ratio_says_more``); under the ``heights`` scheme (and ``repeats``) the
     city-scale ``height_key`` (an annotation's ``height``) only where it differs from
     the box's h (``_height_says_more``; marked after the boxes). A height the script
     cannot compare (refused where it reads it, ``cityscale_faults["height"]``) is not
@@ -68,34 +71,65 @@ def content_hash(truth, scheme="heights"):
     type) — hash apart; a split of numeric ids hashes as before (no mark).
     ``untyped`` leaves the kinds out: the hash of splits frozen before.
 
-    Under the ``named`` scheme (and ``heights``) a split where a category's shown name
-    (``classes``) is not its own (``category_names``: categories sharing a name) then
-    hashes the own names, so two ``car`` categories and a file naming them ``car (id
-    1)``, ``car (id 2)`` — which the rules naming classes score apart — hash apart;
+    Under the ``named`` scheme (and ``heights``, ``repeats``) a split where a category's
+    shown name (``classes``) is not its own (``category_names``: categories sharing a
+    name) then hashes the own names, so two ``car`` categories and a file naming them
+    ``car (id 1)``, ``car (id 2)`` — which the rules naming classes score apart — hash apart;
     a split whose names are all its own hashes as under ``typed``.
+
+    Under the ``repeats`` scheme (the default) a split holding annotations of a
+    repeated id as given (``GroundTruth.repeated == REPEATED_GIVEN``, read by voc,
+    voc07, kitti2d, miss-rate and miss-rate-caltech; ``loaders.repeated_ids``) hashes
+    those rows too, with the ``repeated`` column (0 / ``REPEATED_COPY`` /
+    ``REPEATED_GIVEN``) and its mark, so two files differing only in an annotation a
+    later one with its id replaces hash apart; the older schemes leave those rows out
+    (``_hashed_boxes``), as every engine before 2.21.0 held them. A split without such
+    rows hashes as under ``heights``.
     """
     if scheme not in HASH_SCHEMES:
         raise ValueError(f"unknown hash scheme {scheme!r}; use {', '.join(HASH_SCHEMES)}")
-    form = _mark(truth, scheme), _hashes_heights(truth, scheme)
+    form = _form(truth, scheme)
     # one value per distinct form: a scheme adding nothing to this split shares it
-    newest = _mark(truth, HASH_SCHEMES[0]), _hashes_heights(truth, HASH_SCHEMES[0])
+    newest = _form(truth, HASH_SCHEMES[0])
     name = "_content_hash" if form == newest else f"_{scheme}_hash"
     cached = truth.__dict__.get(name)
     if cached is not None:  # frozen: computed once (the loaders and annotate ask)
         return cached
-    value = _hash(_hashed_boxes(truth), *form)
+    mark, heights, given = form
+    value = _hash(truth if given else _hashed_boxes(truth), mark, heights, given)
     object.__setattr__(truth, name, value)
     return value
+
+
+def _form(truth, scheme):
+    """What ``scheme``'s hash of ``truth`` holds beyond the boxes every scheme hashes:
+    its mark (``_mark``), its height keys (``_hashes_heights``), its rows as given
+    (``_hashes_given``)."""
+    return _mark(truth, scheme), _hashes_heights(truth, scheme), _hashes_given(truth, scheme)
+
+
+def _given(truth):
+    """Per box, whether it is an annotation of a repeated id as given (None: none is)."""
+    if truth.repeated is None or not (given := truth.repeated == REPEATED_GIVEN).any():
+        return None
+    return given
+
+
+def _hashes_given(truth, scheme):
+    """Whether ``scheme``'s hash of ``truth`` holds its rows as given (``REPEATED_GIVEN``)
+    and its ``repeated`` column: ``repeats`` only, and only where it has such rows."""
+    return scheme == "repeats" and _given(truth) is not None
 
 
 def _hashed_boxes(truth):
     """``truth`` without the annotations of a repeated id as given
     (``GroundTruth.repeated``: ``REPEATED_GIVEN``, read by the readings that never
-    read ids): what every engine before 2.21.0 held, so a split frozen then keeps its
-    hash. Left: those rows are not hashed, so two files differing only in an
-    annotation a later one with its id replaces hash alike, though the VOC, KITTI and
-    toolbox readings score them apart (``loaders.repeated_ids``)."""
-    if truth.repeated is None or not (given := truth.repeated == REPEATED_GIVEN).any():
+    read ids): what every engine before 2.21.0 held, so a split frozen under a scheme
+    before ``repeats`` keeps its hash (those schemes hash two files differing only in
+    an annotation a later one with its id replaces alike, though the VOC, KITTI and
+    toolbox readings score them apart: ``repeats`` hashes them apart)."""
+    given = _given(truth)
+    if given is None:
         return truth
     from .shards import keep_boxes
 
@@ -109,13 +143,14 @@ def _mark(truth, scheme):
     """The bytes ``scheme``'s hash starts with (``_id_mark``, then ``_names_mark``)."""
     if scheme == "untyped":
         return b""
-    return _id_mark(truth) + (_names_mark(truth) if scheme in ("heights", "named") else b"")
+    named = scheme in ("repeats", "heights", "named")
+    return _id_mark(truth) + (_names_mark(truth) if named else b"")
 
 
 def _hashes_heights(truth, scheme):
-    """Whether ``scheme``'s hash of ``truth`` holds its ``height`` keys: ``heights``
-    only, and only where one differs from its box's h (``_height_says_more``)."""
-    return scheme == "heights" and truth._height_says_more()
+    """Whether ``scheme``'s hash of ``truth`` holds its ``height`` keys: ``heights`` and
+    ``repeats`` only, and only where one differs from its box's h (``_height_says_more``)."""
+    return scheme in ("repeats", "heights") and truth._height_says_more()
 
 
 def id_kinds(truth):
@@ -146,7 +181,7 @@ def _names_mark(truth):
     return b"\x00own names " + ascii(list(truth.category_names)).encode() + b"\n"
 
 
-def _hash(truth, mark, heights):
+def _hash(truth, mark, heights, given=False):
     attributes = truth.has_attributes()
     digest = _image_digest(truth, mark)
     columns = np.column_stack(
@@ -162,10 +197,11 @@ def _hash(truth, mark, heights):
         + ([_canonical_nan(getattr(truth, a)) for a in ATTRIBUTES] if attributes else [])
         + ([truth.ignore_key.astype("<f8")] if truth.ignore_key.any() else [])
         + ([truth.ignore_key_fraction.astype("<f8")] if truth.ignore_key_fraction.any() else [])
-        + ([_canonical_nan(truth.vis_ratio)] if truth._vis_ratio_says_more() else [])
+        + ([_canonical_nan(truth.vis_ratio)] if _vis_ratio_hashed(truth, given) else [])
         + ([column] if (column := _faults_column(truth)).any() else [])
         + ([_canonical_nan(truth.height_key)] if heights else [])
         + ([truth.alias.astype("<f8")] if (alias := truth.alias is not None) else [])
+        + ([truth.repeated.astype("<f8")] if given else [])
     )
     order = np.lexsort(columns.T[::-1])
     digest.update(np.ascontiguousarray(columns[order]).tobytes())
@@ -173,6 +209,8 @@ def _hash(truth, mark, heights):
         digest.update(b"height_key")
     if alias:  # boxes under a changed value (``GroundTruth.alias``): no split had one
         digest.update(b"changed_value_alias")
+    if given:  # rows as given and copies (``repeats``): no split hashed before had them
+        digest.update(b"\x00repeated_given")
     if attributes:
         regions = np.column_stack([truth.region_image.astype("<f8"), truth.regions])
         regions = regions[np.lexsort(regions.T[::-1])]
@@ -182,6 +220,13 @@ def _hash(truth, mark, heights):
     if repeats is not None:  # a mark no column or region run ends with
         digest.update(b"\x00class_repeats" + repeats.astype("<i8").tobytes())
     return digest.hexdigest()
+
+
+def _vis_ratio_hashed(truth, given):
+    """Whether the ``vis_ratio`` column is hashed: where it says more than the visibility
+    on the rows pycocotools reads (the CityPersons script's, the only reader of the key:
+    a row as given holds NaN there, unread, so ``repeats`` decides as ``heights`` does)."""
+    return (_hashed_boxes(truth) if given else truth)._vis_ratio_says_more()
 
 
 def _faults_column(truth):
@@ -228,7 +273,11 @@ def _counted_repeats(truth):
     repeats = truth.class_repeats
     if repeats is None:
         return None
-    regular = np.unique(truth.box_class[~(truth.crowd | truth.ignore)])
+    # pycocotools' rows: an annotation as given (``repeats``' hash holds them) is not one
+    read = ~(truth.crowd | truth.ignore)
+    if (given := _given(truth)) is not None:
+        read &= ~given
+    regular = np.unique(truth.box_class[read])
     return repeats if (repeats[regular] > 1).any() else None
 
 

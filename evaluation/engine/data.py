@@ -380,7 +380,7 @@ class GroundTruth:
             np.int64
         )
 
-    def content_hash(self, scheme="heights"):
+    def content_hash(self, scheme="repeats"):
         """SHA-256 of the canonical content, under ``scheme`` (``content_hash.HASH_SCHEMES``):
         identical splits hash identically (``content_hash.content_hash``)."""
         from .content_hash import content_hash

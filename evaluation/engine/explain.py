@@ -73,6 +73,9 @@ NAMED_FINGERPRINT = "2.17.6"
 #: The first engine whose fingerprint (scheme ``heights``) hashes annotations' own
 #: ``height`` keys where one differs from its box's h (``miss-rate-cityscale`` reads them).
 HEIGHTS_FINGERPRINT = "2.18.2"
+#: The first engine whose fingerprint (scheme ``repeats``) hashes the annotations of a
+#: repeated id as given (the VOC, KITTI and toolbox readings score them).
+REPEATS_FINGERPRINT = "2.22.0"
 #: ``(version, the splits whose fingerprint changed then)``, oldest first.
 FINGERPRINT_CHANGES = (
     (
@@ -89,6 +92,12 @@ FINGERPRINT_CHANGES = (
         HEIGHTS_FINGERPRINT,
         "whose annotations give height keys other than their boxes' h, fingerprinted by "
         f"an engine before {HEIGHTS_FINGERPRINT} (height keys not hashed)",
+    ),
+    (
+        REPEATS_FINGERPRINT,
+        "whose annotation ids repeat, fingerprinted by an engine before "
+        f"{REPEATS_FINGERPRINT} (the annotations a later one with their id replaces "
+        "not hashed)",
     ),
 )
 

@@ -402,7 +402,7 @@ def test_the_hash_changes_only_where_a_height_differs_from_the_box(tmp_path):
 
 def test_a_split_frozen_before_keeps_its_hash_under_its_scheme(tmp_path):
     """``content_hash.HASH_SCHEMES``: the ``height`` keys enter the hash under the
-    ``heights`` scheme (the default, new splits) only; a split frozen under ``named``
+    ``heights`` scheme (and ``repeats``, the default, new splits) only; a split frozen under ``named``
     before engine 2.18.2 read them verifies against the hash it was frozen with."""
     plain = [{k: v for k, v in _ann(1, 0.0, h=60.0).items() if k != "height"}]
     (tmp_path / "a").mkdir()
