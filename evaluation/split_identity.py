@@ -1,20 +1,28 @@
 """A frozen split's identity: its content hash, and the twin check of an upload.
 
 ``BenchmarkSplit.sha256`` is the split's content hash under its ``hash_scheme``
-(``engine.GroundTruth.content_hash``, ``engine.HASH_SCHEMES``): ``named`` for splits
-frozen since the categories' own names entered the hash (``services.HASH_SCHEME``,
-migration 0025), ``typed`` for splits frozen since id kinds did, ``untyped`` for splits
-frozen before (migration 0024); a hash is never rewritten. Each scheme hashes a split as
-the older ones do unless it holds what the newer one tells apart (ids that are not
-numbers; categories sharing a name).
+(``engine.GroundTruth.content_hash``, ``engine.HASH_SCHEMES``): ``repeats`` for splits
+frozen since the annotations of a repeated id as given entered the hash
+(``services.HASH_SCHEME``, migration 0027), ``heights`` since height keys did (0026),
+``named`` since the categories' own names did (0025), ``typed`` since id kinds did,
+``untyped`` for splits frozen before (migration 0024); a hash is never rewritten. Each
+scheme hashes a split as the older ones do unless it holds what the newer one tells
+apart (ids that are not numbers; categories sharing a name; height keys; repeated
+annotation ids).
 """
 
 from . import engine
 from .engine.content_hash import HASH_SCHEMES
+from .engine.data import REPEATED_GIVEN
 from .models import BenchmarkSplit
 
 #: What each scheme after ``untyped`` added, for a refusal naming a split frozen before.
-_ADDED = {"typed": "id types", "named": "categories' own names", "heights": "height keys"}
+_ADDED = {
+    "typed": "id types",
+    "named": "categories' own names",
+    "heights": "height keys",
+    "repeats": "the annotations of a repeated id as given",
+}
 
 
 def split_hash(split, truth):
@@ -72,6 +80,14 @@ def _fingerprint_taken(twin, theirs, loaded):
         differs.append(("named", f"whose categories are named otherwise ({names})"))
     if theirs._height_says_more() or loaded._height_says_more():
         differs.append(("heights", "whose annotations' own height keys differ"))
+    if _repeats_given(theirs) or _repeats_given(loaded):
+        differs.append(
+            (
+                "repeats",
+                "whose annotations under a repeated id, read as given by voc, "
+                "voc07, kitti2d and the toolbox's miss rates, differ",
+            )
+        )
     if not differs:  # another difference an older scheme missed: none known
         differs.append(("named", "which holds other content"))
     return (
@@ -79,6 +95,12 @@ def _fingerprint_taken(twin, theirs, loaded):
         f"entered the hash, {'; '.join(what for _, what in differs)}: the hash would not "
         "tell the two splits apart"
     )
+
+
+def _repeats_given(truth):
+    """Whether ``truth`` holds annotations of a repeated id as given (what ``repeats``
+    hashes beyond ``heights``)."""
+    return truth.repeated is not None and bool((truth.repeated == REPEATED_GIVEN).any())
 
 
 def _as_frozen(split, read):

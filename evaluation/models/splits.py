@@ -54,10 +54,14 @@ class BenchmarkSplit(models.Model):
     )
     hash_scheme = models.CharField(
         max_length=8,
-        default="heights",
-        help_text="How its content hash (sha256) was taken: heights (as named, and "
-        "annotations' own height keys that differ from their box's h, which "
-        "miss-rate-cityscale reads), named (as typed, and categories sharing a name hash "
+        default="repeats",
+        help_text="How its content hash (sha256) was taken: repeats (as heights, and the "
+        "annotations of a repeated annotation id as given, which voc, voc07, kitti2d and "
+        "the toolbox's miss rates read where pycocotools reads copies of the last: two "
+        "files differing in an annotation a later one with its id replaces hash apart), "
+        "heights (as named, and annotations' own height keys that differ from their box's "
+        "h, which miss-rate-cityscale reads: splits frozen before repeated ids as given "
+        "were hashed keep that hash), named (as typed, and categories sharing a name hash "
         "their own names, so two categories named car and a file naming them 'car (id 1)', "
         "'car (id 2)' hash apart: splits frozen before height keys were hashed keep that "
         "hash), typed (image and class ids that are not numbers hash with their kind, so "
