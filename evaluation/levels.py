@@ -32,6 +32,7 @@ from dataclasses import asdict, dataclass
 import numpy as np
 
 from . import engine
+from .engine.data import name_key
 from .engine.difficulty import evaluate_levels_with_samples, get_difficulty_protocol
 from .engine.level_samples import LevelSamples, NoSamples, level_statistic
 from .engine.pedestrian import evaluate_setups_with_samples
@@ -191,12 +192,13 @@ def load_samples(card):
 
 
 def class_position(samples, name):
-    """Index of ``name`` ("mean" or a class, case-insensitive) in ``level_statistic``'s
-    row, or None when the protocol does not evaluate it."""
+    """Index of ``name`` ("mean" or a class, in any case: ``name_key``, as every class
+    name is compared) in ``level_statistic``'s row, or None when the protocol does not
+    evaluate it, or when two of its classes name it in any case (none is picked)."""
     if name == "mean":
         return 0
-    lower = [c.lower() for c in samples.classes]
-    return lower.index(name.lower()) + 1 if name.lower() in lower else None
+    found = [k for k, c in enumerate(samples.classes) if name_key(c) == name_key(name)]
+    return found[0] + 1 if len(found) == 1 else None
 
 
 def level_values(samples, level, weights=None, only=None):
@@ -243,11 +245,11 @@ def level_table(card):
     record = result.get("protocol_record") or {}
     order = [lv["name"] for lv in record.get("levels", [])]
     levels = sorted(result["levels"], key=lambda lv: order.index(lv) if lv in order else 99)
-    rank = [c.lower() for c in record.get("class_overlap", {})]
+    rank = [name_key(c) for c in record.get("class_overlap", {})]
     classes = []
     for entry in result["levels"].values():
         classes += [c for c in entry["classes"] if c not in classes]
-    classes.sort(key=lambda c: (rank.index(c.lower()) if c.lower() in rank else 99, c))
+    classes.sort(key=lambda c: (rank.index(name_key(c)) if name_key(c) in rank else 99, c))
     headline = (card.summary or {}).get("level") or record.get("headline_level")
     at_headline = result["levels"].get(headline, {}).get("classes", {})
     rows = [

@@ -27,6 +27,18 @@ def names_a_class(name, classes):
     return any(same_class(name, c) for c in classes)
 
 
+def spelled(classes, name):
+    """The one of ``classes`` (a detector's) that ``name`` names in any case, in its
+    spelling there: the exact spelling first (a detector stored with two spellings of
+    one class before they were refused), else the first that ``same_class`` finds;
+    None when it names none. A rule's class and a history's ``class`` read so."""
+    if not isinstance(name, str):
+        return None
+    if name in classes:
+        return name
+    return next((c for c in classes if same_class(c, name)), None)
+
+
 def validate(detector, thresholds, check_value, fail):
     """``{class: threshold}`` checked against the detector's classes: each key names a
     class in any case (stored in the detector's spelling), no two keys name one class,

@@ -6,8 +6,10 @@ bucket (``rule_slices``: COCO's small/medium/large or the protocol's own), "kind
 "min_value" (with "threshold" on 0-1), "max_drop" (with "tolerance" in AP points,
 0-100) or "no_significant_drop" (AP, or a level's metric; "confidence", default 0.95,
 and an optional "tolerance" in points)}``. ``"class": "*"`` applies the rule to every
-class. An optional ``"level"`` judges a level protocol's level or setup, every kind,
-with or without a tag (``level_rules``).
+class. The class is read in any case (``class_of``: ``Pedestrian`` names the class
+``pedestrian``, ``MEAN`` the mean) and stored as the detector spells it. An optional
+``"level"`` judges a level protocol's level or setup, every kind, with or without a tag
+(``level_rules``).
 
 A candidate is judged against them in ``rule_outcomes``.
 """
@@ -15,10 +17,12 @@ A candidate is judged against them in ``rule_outcomes``.
 from django.core.exceptions import PermissionDenied
 from django.db import transaction
 
+from evaluation.engine.data import name_key
 from evaluation.models import BenchmarkSplit
 from evaluation.services import UploadError
 
 from . import audit, level_rules, rule_slices, selectors
+from .class_thresholds import spelled
 from .models import AuditEvent, Membership, ReleaseCriteria
 
 METRICS = {"AP": "ap", "AP50": "ap50", "AP75": "ap75", "recall": "recall"}
@@ -90,10 +94,12 @@ def validate_rules(detector, rules):
             _fail(i, "metric", f"must be one of {', '.join(METRICS)}, got {metric!r}")
         if kind == "no_significant_drop" and metric != "AP" and "level" not in rule:
             _fail(i, "metric", "a significance rule is computed on AP")
-        name = rule.get("class", "mean")
-        if name not in ("mean", "*", *detector.classes):
+        name = class_of(detector, rule.get("class", "mean"))
+        if name is None:
             _fail(
-                i, "class", f"{name!r} is not 'mean', '*' or one of {', '.join(detector.classes)}"
+                i,
+                "class",
+                f"{rule['class']!r} is not 'mean', '*' or one of {', '.join(detector.classes)}",
             )
         split = rule.get("split", "*")
         if split != "*" and split not in splits:
@@ -117,6 +123,19 @@ def validate_rules(detector, rules):
             clean = level_rules.validate(detector, rule, clean, i, _fail)
         out.append(clean)
     return out
+
+
+def class_of(detector, name):
+    """What a rule's ``class`` names, in any case (``name_key``, as every rule reads a
+    class): ``"mean"`` or ``"*"`` (the rule words, ``detectors.reserved``: stripped, any
+    case), else the detector's class in its own spelling (the exact one first, for a
+    detector stored with two spellings of one class before they were refused); None
+    when it names none."""
+    from .detectors import RESERVED, reserved
+
+    if reserved(name):
+        return next(word for word in RESERVED if word == name_key(name.strip()))
+    return spelled(detector.classes, name)
 
 
 def _judging_protocols(detector):

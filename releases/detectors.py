@@ -5,6 +5,7 @@ from django.core.exceptions import PermissionDenied
 from django.db import transaction
 from django.utils.text import slugify
 
+from evaluation.engine.data import name_key
 from evaluation.services import UploadError
 
 from . import class_thresholds, selectors, services, suites
@@ -22,20 +23,25 @@ RESERVED = ("mean", "*")
 
 
 def reserved(name):
-    """Is ``name`` a rule word (``RESERVED``), compared stripped and case-insensitively?"""
-    return isinstance(name, str) and name.strip().lower() in RESERVED
+    """Is ``name`` a rule word (``RESERVED``), compared stripped and in any case
+    (``name_key``, as class names are compared everywhere)?"""
+    return isinstance(name, str) and name_key(name.strip()) in RESERVED
 
 
 def validate_classes(classes):
     """The detector's class list, checked and stripped: the one check every way of
     setting it goes through (page, API, admin, commands: ``services.create_detector``
-    and ``set_classes``). Errors name the field (``classes[1]``)."""
+    and ``set_classes``). Errors name the field (``classes[1]``).
+
+    Two classes naming one class in any case (``name_key``: ``Car``, ``car``) are
+    refused: every rule, threshold and page reads a class name in any case, so they
+    could never be told apart."""
     if isinstance(classes, str):
         classes = [c.strip() for c in classes.replace(",", "\n").splitlines()]
         classes = [c for c in classes if c]
     if not isinstance(classes, (list, tuple)) or not classes:
         raise DetectorError("classes: a detector needs at least one class", path="classes")
-    seen = set()
+    seen = {}
     for i, name in enumerate(classes):
         if not isinstance(name, str) or not name.strip() or len(name) > 64:
             raise DetectorError(
@@ -48,9 +54,16 @@ def validate_classes(classes):
                 "and '*' for every class); choose another name",
                 path=f"classes[{i}]",
             )
-        if name.strip() in seen:
+        key = name_key(name.strip())
+        if key in seen and seen[key] == name.strip():
             raise DetectorError(f"classes[{i}]: {name!r} is listed twice", path=f"classes[{i}]")
-        seen.add(name.strip())
+        if key in seen:
+            raise DetectorError(
+                f"classes[{i}]: {name.strip()!r} is {seen[key]!r} in another case; class "
+                "names match in any case (rules, thresholds, pages), so list it once",
+                path=f"classes[{i}]",
+            )
+        seen[key] = name.strip()
     return [c.strip() for c in classes]
 
 
@@ -75,13 +88,17 @@ def create_detector(user, team, name, classes, suite, *, description=""):
 
 def check_removal(detector, classes):
     """Refuse a class list that drops a class the current criteria or suite name (they
-    would name a class the detector no longer has): change those first."""
+    would name a class the detector no longer has): change those first. Names match in
+    any case, so a case-only rename (``Pedestrian`` to ``pedestrian``) drops nothing."""
     from .criteria import current_criteria
 
-    gone = set(detector.classes) - set(classes)
+    named = class_thresholds.names_a_class  # in any case, as rules and thresholds are read
     rules = getattr(current_criteria(detector), "rules", [])
     for i, rule in enumerate(rules):
-        if rule.get("class") in gone and not reserved(rule["class"]):  # 'mean': the mean
+        name = rule.get("class")
+        if reserved(name) or not isinstance(name, str):  # 'mean': the mean, '*': every class
+            continue
+        if named(name, detector.classes) and not named(name, classes):
             raise DetectorError(
                 f"classes: {rule['class']!r} is named by rule {i + 1} of the criteria; "
                 "change the criteria first",
@@ -89,7 +106,6 @@ def check_removal(detector, classes):
             )
     suite = suites.current_suite(detector)
     for name in getattr(suite, "class_thresholds", None) or {}:
-        named = class_thresholds.names_a_class  # in any case, as the thresholds are read
         if named(name, detector.classes) and not named(name, classes):
             raise DetectorError(
                 f"classes: {name!r} has a threshold in the suite (class_thresholds); "

@@ -28,7 +28,7 @@ from evaluation import levels
 from evaluation.engine.data import name_key
 from evaluation.services import load_truth_of
 
-from .class_thresholds import row_of, rows_naming, same_class, shared_note
+from .class_thresholds import of_class, row_of, rows_naming, same_class, shared_note
 from .models import Outcome
 
 KINDS = ("min_value", "max_drop", "no_significant_drop")
@@ -149,8 +149,7 @@ def value_of(card, level, name):
     key = result["value_key"]
     if name == "mean":
         return entry.get(key)
-    by_lower = {c.lower(): row for c, row in entry["classes"].items()}
-    return by_lower.get(name.lower(), {}).get(key)
+    return (of_class(entry["classes"], name) or {}).get(key)  # in any case (name_key)
 
 
 def judge(outcome, rule, split, name, card, baseline_card, suite_names, cache):

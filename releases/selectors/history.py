@@ -1,7 +1,7 @@
 """The detector page: one metric and class of every version on every split."""
 
 from .. import history_stamps
-from ..class_thresholds import row_of, rows_naming
+from ..class_thresholds import row_of, rows_naming, spelled
 from ..models import PredictionSet
 from .decisions import baselines_of
 from .history_levels import (
@@ -47,7 +47,7 @@ def history_chart(
     level protocol instead of the primary protocol's class rows; ``sources`` lists the
     levels offered and ``lower_is_better`` the metric's direction (miss rate); a class
     the level protocol does not evaluate (``kitti2d``: car, pedestrian, cyclist) reads
-    as not scored.
+    as not scored. ``class_name`` names a class in any case (``MEAN``, ``Pedestrian``).
     ``setup`` is another name for ``level`` (a pedestrian setup is a level of its
     miss-rate protocol).
     """
@@ -71,8 +71,10 @@ def history_chart(
             raise HistoryError(str(e)) from None
         protocol = level_protocol.name
         rows = SliceScore.objects.filter(kind="level", name=level)
-    if class_name not in classes:
-        raise HistoryError(f"class: {class_name!r} is not one of {', '.join(classes)}")
+    # in any case, read as the detector spells it (``class_thresholds.spelled``)
+    asked, class_name = class_name, spelled(classes, class_name)
+    if class_name is None:
+        raise HistoryError(f"class: {asked!r} is not one of {', '.join(classes)}")
     versions = list(
         detector.versions.order_by("created_at")
         .annotate(day=_utc_day("created_at"))

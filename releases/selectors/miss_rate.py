@@ -3,6 +3,8 @@ version and compare pages, read from stored scorecards only: a scorecard of a mi
 protocol keeps the engine's per-setup output in ``result["levels"]`` (each class with
 its ``curve``, ``miss_rate`` and ``n_gt``). Nothing is computed on a request."""
 
+from evaluation.engine.data import name_key
+
 from .scores import _scorecards
 
 
@@ -59,7 +61,7 @@ def chart_data(protocol, series, classes):
         "setups": setups,
         "classes": ordered,
         "default_class": next(
-            (c for c in ordered if c.lower() in ("pedestrian", "person")),
+            (c for c in ordered if name_key(c) in ("pedestrian", "person")),
             ordered[0] if ordered else None,
         ),
         "headline_level": preset.headline_level,
