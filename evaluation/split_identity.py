@@ -1,14 +1,15 @@
 """A frozen split's identity: its content hash, and the twin check of an upload.
 
 ``BenchmarkSplit.sha256`` is the split's content hash under its ``hash_scheme``
-(``engine.GroundTruth.content_hash``, ``engine.HASH_SCHEMES``): ``repeats`` for splits
-frozen since the annotations of a repeated id as given entered the hash
-(``services.HASH_SCHEME``, migration 0027), ``heights`` since height keys did (0026),
+(``engine.GroundTruth.content_hash``, ``engine.HASH_SCHEMES``): ``corners`` for splits
+frozen since a corner file's corners as read entered the hash (``services.HASH_SCHEME``,
+migration 0028), ``repeats`` since the annotations of a repeated id as given did
+(0027), ``heights`` since height keys did (0026),
 ``named`` since the categories' own names did (0025), ``typed`` since id kinds did,
 ``untyped`` for splits frozen before (migration 0024); a hash is never rewritten. Each
 scheme hashes a split as the older ones do unless it holds what the newer one tells
 apart (ids that are not numbers; categories sharing a name; height keys; repeated
-annotation ids).
+annotation ids; corners as read).
 """
 
 from . import engine
@@ -22,6 +23,7 @@ _ADDED = {
     "named": "categories' own names",
     "heights": "height keys",
     "repeats": "the annotations of a repeated id as given",
+    "corners": "corners as read",
 }
 
 
@@ -86,6 +88,14 @@ def _fingerprint_taken(twin, theirs, loaded):
                 "repeats",
                 "whose annotations under a repeated id, read as given by voc, "
                 "voc07, kitti2d and the toolbox's miss rates, differ",
+            )
+        )
+    if theirs.corners is not None or loaded.corners is not None:
+        differs.append(
+            (
+                "corners",
+                "whose corners as read (some x1 + w is not the x2 given), which voc, "
+                "voc07 and kitti2d measure overlap on, differ",
             )
         )
     if not differs:  # another difference an older scheme missed: none known

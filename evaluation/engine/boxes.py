@@ -3,13 +3,55 @@
 import numpy as np
 
 
+def from_corners(corners):
+    """xywh rows ``[x1, y1, x2 - x1, y2 - y1]`` of (n, 4) corners, as the loaders store
+    boxes (the corners themselves kept where they say more: ``said_corners``)."""
+    corners = np.asarray(corners, np.float64).reshape(-1, 4)
+    with np.errstate(invalid="ignore", over="ignore"):
+        return np.column_stack([corners[:, :2], corners[:, 2:] - corners[:, :2]])
+
+
+def said_corners(boxes, corners):
+    """``corners`` ((n, 4) ``x1, y1, x2, y2`` as read) where one says more than its
+    xywh row ``boxes`` (``x1 + w != x2`` or ``y1 + h != y2``, NaN equal to NaN), else
+    None: what ``GroundTruth.corners`` / ``Predictions.corners`` keep. ``w = x2 - x1``
+    rounds, so ``x1 + w`` can miss ``x2`` by an ulp (17.8 + (50.6 - 17.8) is
+    50.599999999999994); a file whose every edge rebuilds exactly carries nothing."""
+    if corners is None or not len(corners):
+        return None
+    with np.errstate(invalid="ignore", over="ignore"):
+        rebuilt = boxes[:, :2] + boxes[:, 2:]
+    same = np.array_equal(rebuilt, corners[:, 2:], equal_nan=True)
+    return None if same else np.ascontiguousarray(corners, np.float64)
+
+
+def edges(boxes, corners=None):
+    """(n, 4) ``x1, y1, x2, y2`` of xywh ``boxes``: the right and bottom edges from
+    ``corners`` (as read) where given, else ``x + w`` and ``y + h`` (as a converter
+    writing xywh would have them)."""
+    if corners is not None:
+        return corners
+    with np.errstate(invalid="ignore", over="ignore"):
+        return np.column_stack([boxes[:, :2], boxes[:, :2] + boxes[:, 2:]])
+
+
 def _side(start, size):
     """The devkit's side ``x2 - x1`` of corners ``x2 = x1 + w``: ``w`` for a finite
     ``x1`` (kept as given, not re-rounded), NaN for a NaN or infinite one (inf - inf)."""
     return np.where(np.isfinite(start), size, np.nan)
 
 
-def pair_iou(det_boxes, gt_boxes, gt_crowd, *, pixel_offset=0.0):
+def _far_edges(boxes, corners):
+    """``(x2, y2, side x, side y)`` of one side's boxes: from its corners as read
+    (``x2 - x1``, the devkit's arithmetic on them), else ``x + w`` and ``_side``."""
+    x, y, w, h = boxes.T
+    if corners is None:
+        return w + x, h + y, _side(x, w), _side(y, h)
+    x1, y1, x2, y2 = corners.T
+    return x2, y2, x2 - x1, y2 - y1
+
+
+def pair_iou(det_boxes, gt_boxes, gt_crowd, *, pixel_offset=0.0, det_corners=None, gt_corners=None):
     r"""IoU of each detection with the ground-truth box in the same row.
 
     .. math:: \mathrm{IoU} = \frac{|D \cap G|}{|D| + |G| - |D \cap G|}
@@ -25,6 +67,11 @@ def pair_iou(det_boxes, gt_boxes, gt_crowd, *, pixel_offset=0.0):
     Non-finite coordinates follow the same C arithmetic: ``fmin``/``fmax`` ignore a
     NaN operand, a NaN intersection side is not skipped at offset 0 (it is in the
     devkit's ``iw>0 & ih>0``), so the IoU may be NaN, inf or beyond 1.
+
+    ``det_corners``, ``gt_corners``: (n, 4) ``x1, y1, x2, y2`` as a corner file gives
+    them (``GroundTruth.corners``), for the references that read corners (the VOC
+    devkit, KITTI): a side's right and bottom edges are then its ``x2``, ``y2``, not
+    ``x + w`` (which can miss ``x2`` by an ulp), and its lengths ``x2 - x1``.
 
     Parameters
     ----------
@@ -47,15 +94,17 @@ def pair_iou(det_boxes, gt_boxes, gt_crowd, *, pixel_offset=0.0):
     gx, gy, gw, gh = gt_boxes.T
     # Overflow gives inf, as in the reference's C doubles (IoU 0 then); no warning.
     with np.errstate(over="ignore", under="ignore", divide="ignore", invalid="ignore"):
+        dx2, dy2, dsx, dsy = _far_edges(det_boxes, det_corners)
+        gx2, gy2, gsx, gsy = _far_edges(gt_boxes, gt_corners)
         # fmin/fmax: C99's (bbIou) and MATLAB's min/max (the devkit) return the other
         # operand when one is NaN; np.minimum would propagate the NaN.
-        iw = np.fmin(dw + dx, gw + gx) - np.fmax(dx, gx)
-        ih = np.fmin(dh + dy, gh + gy) - np.fmax(dy, gy)
+        iw = np.fmin(dx2, gx2) - np.fmax(dx, gx)
+        ih = np.fmin(dy2, gy2) - np.fmax(dy, gy)
         if pixel_offset:
             iw = iw + pixel_offset
             ih = ih + pixel_offset
-            det_area = (_side(dx, dw) + pixel_offset) * (_side(dy, dh) + pixel_offset)
-            gt_area = (_side(gx, gw) + pixel_offset) * (_side(gy, gh) + pixel_offset)
+            det_area = (dsx + pixel_offset) * (dsy + pixel_offset)
+            gt_area = (gsx + pixel_offset) * (gsy + pixel_offset)
         else:
             det_area = dw * dh
             gt_area = gw * gh

@@ -12,8 +12,11 @@ import numpy as np
 
 from .data import ATTRIBUTES, REPEATED_GIVEN
 
-#: How ``GroundTruth.content_hash`` is taken, newest first: ``repeats`` (engine 2.22.0
-#: on) adds the annotations of a repeated id as given (``REPEATED_GIVEN``: the VOC,
+#: How ``GroundTruth.content_hash`` is taken, newest first: ``corners`` (engine 2.23.0
+#: on) adds a corner format's corners as read where one says more than its xywh row
+#: (``GroundTruth.corners``: voc, voc07 and kitti2d measure overlap on them), so a split
+#: frozen before, under ``repeats``, keeps its hash; ``repeats`` (engine 2.22.0 on) adds
+#: the annotations of a repeated id as given (``REPEATED_GIVEN``: the VOC,
 #: KITTI and toolbox readings score them) and the column saying which rows those are,
 #: so a split frozen before, under ``heights``, keeps its hash; ``heights`` (engine
 #: 2.18.2 on) adds the city-scale ``height`` keys where one differs from its box's h
@@ -25,7 +28,7 @@ from .data import ATTRIBUTES, REPEATED_GIVEN
 #: predictions hash apart; ``untyped`` is the hash before (ids by their text only). The
 #: older two are kept to verify splits frozen under them. Each hashes a split as the
 #: one after it does unless the split holds what the newer one adds.
-HASH_SCHEMES = ("repeats", "heights", "named", "typed", "untyped")
+HASH_SCHEMES = ("corners", "repeats", "heights", "named", "typed", "untyped")
 #: Id kinds (``id_kind``) a ``typed`` hash leaves out: so numeric splits keep their hash.
 NUMERIC_ID_KINDS = ("int", "number")
 
@@ -46,7 +49,7 @@ def _canonical_nan(values):
     return np.where(np.isnan(values), np.nan, values)
 
 
-def content_hash(truth, scheme="repeats"):
+def content_hash(truth, scheme="corners"):
     """SHA-256 of the canonical content: identical splits hash identically.
 
     Canonical form: images in id order with sizes and sorted tags, classes in
@@ -85,6 +88,15 @@ def content_hash(truth, scheme="repeats"):
     later one with its id replaces hash apart; the older schemes leave those rows out
     (``_hashed_boxes``), as every engine before 2.21.0 held them. A split without such
     rows hashes as under ``heights``.
+
+    Under the ``corners`` scheme (the default) a split whose corners as read say more
+    than its xywh rows (``GroundTruth.corners``: some ``x1 + w`` or ``y1 + h`` misses
+    the ``x2``, ``y2`` a VOC XML, CSV or KITTI file gives, which voc, voc07 and kitti2d
+    read) hashes the corners too, after the other columns, with the mark
+    ``\x00corners``, so it hashes apart from its xywh twin (the COCO JSON a converter
+    writes, ``w = x2 - x1``), which those protocols can score otherwise at an
+    exactly-at-threshold overlap. A split without such corners hashes as under
+    ``repeats``.
     """
     if scheme not in HASH_SCHEMES:
         raise ValueError(f"unknown hash scheme {scheme!r}; use {', '.join(HASH_SCHEMES)}")
@@ -95,8 +107,9 @@ def content_hash(truth, scheme="repeats"):
     cached = truth.__dict__.get(name)
     if cached is not None:  # frozen: computed once (the loaders and annotate ask)
         return cached
-    mark, heights, given = form
-    value = _hash(truth if given else _hashed_boxes(truth), mark, heights, given)
+    mark, heights, given, corners = form
+    hashed = truth if given else _hashed_boxes(truth)
+    value = _hash(hashed, mark, heights, given, corners)
     object.__setattr__(truth, name, value)
     return value
 
@@ -104,8 +117,19 @@ def content_hash(truth, scheme="repeats"):
 def _form(truth, scheme):
     """What ``scheme``'s hash of ``truth`` holds beyond the boxes every scheme hashes:
     its mark (``_mark``), its height keys (``_hashes_heights``), its rows as given
-    (``_hashes_given``)."""
-    return _mark(truth, scheme), _hashes_heights(truth, scheme), _hashes_given(truth, scheme)
+    (``_hashes_given``), its corners as read (``_hashes_corners``)."""
+    return (
+        _mark(truth, scheme),
+        _hashes_heights(truth, scheme),
+        _hashes_given(truth, scheme),
+        _hashes_corners(truth, scheme),
+    )
+
+
+def _hashes_corners(truth, scheme):
+    """Whether ``scheme``'s hash of ``truth`` holds its corners as read: ``corners``
+    only, and only where they say more than its xywh rows (``GroundTruth.corners``)."""
+    return scheme == "corners" and truth.corners is not None
 
 
 def _given(truth):
@@ -117,8 +141,8 @@ def _given(truth):
 
 def _hashes_given(truth, scheme):
     """Whether ``scheme``'s hash of ``truth`` holds its rows as given (``REPEATED_GIVEN``)
-    and its ``repeated`` column: ``repeats`` only, and only where it has such rows."""
-    return scheme == "repeats" and _given(truth) is not None
+    and its ``repeated`` column: ``repeats`` and ``corners``, only where it has such rows."""
+    return scheme in ("corners", "repeats") and _given(truth) is not None
 
 
 def _hashed_boxes(truth):
@@ -143,14 +167,14 @@ def _mark(truth, scheme):
     """The bytes ``scheme``'s hash starts with (``_id_mark``, then ``_names_mark``)."""
     if scheme == "untyped":
         return b""
-    named = scheme in ("repeats", "heights", "named")
+    named = scheme in ("corners", "repeats", "heights", "named")
     return _id_mark(truth) + (_names_mark(truth) if named else b"")
 
 
 def _hashes_heights(truth, scheme):
     """Whether ``scheme``'s hash of ``truth`` holds its ``height`` keys: ``heights`` and
     ``repeats`` only, and only where one differs from its box's h (``_height_says_more``)."""
-    return scheme in ("repeats", "heights") and truth._height_says_more()
+    return scheme in ("corners", "repeats", "heights") and truth._height_says_more()
 
 
 def id_kinds(truth):
@@ -181,7 +205,7 @@ def _names_mark(truth):
     return b"\x00own names " + ascii(list(truth.category_names)).encode() + b"\n"
 
 
-def _hash(truth, mark, heights, given=False):
+def _hash(truth, mark, heights, given=False, corners=False):
     attributes = truth.has_attributes()
     digest = _image_digest(truth, mark)
     columns = np.column_stack(
@@ -202,6 +226,7 @@ def _hash(truth, mark, heights, given=False):
         + ([_canonical_nan(truth.height_key)] if heights else [])
         + ([truth.alias.astype("<f8")] if (alias := truth.alias is not None) else [])
         + ([truth.repeated.astype("<f8")] if given else [])
+        + ([_canonical_nan(truth.corners)] if corners else [])
     )
     order = np.lexsort(columns.T[::-1])
     digest.update(np.ascontiguousarray(columns[order]).tobytes())
@@ -211,6 +236,8 @@ def _hash(truth, mark, heights, given=False):
         digest.update(b"changed_value_alias")
     if given:  # rows as given and copies (``repeats``): no split hashed before had them
         digest.update(b"\x00repeated_given")
+    if corners:  # corners as read (``corners``): no split hashed before had them
+        digest.update(b"\x00corners")
     if attributes:
         regions = np.column_stack([truth.region_image.astype("<f8"), truth.regions])
         regions = regions[np.lexsort(regions.T[::-1])]

@@ -22,8 +22,8 @@ REPEATED_COPY, REPEATED_GIVEN = 1, 2
 #: Per-box road attributes of ``GroundTruth`` (NaN where not given).
 ATTRIBUTES = ("occlusion", "truncation", "visibility")
 #: The per-box columns of ``GroundTruth`` every box has (the optional ones, None where
-#: a split has none: ``vis_ratio``, ``height_key``, ``alias``, ``repeated``), which a
-#: shard slice cuts (``shards.keep_boxes``) and ``loaders.repeated_ids.merge`` interleaves.
+#: a split has none: ``OPTIONAL_BOX_COLUMNS``), which a shard slice cuts
+#: (``shards.keep_boxes``) and ``loaders.repeated_ids.merge`` interleaves.
 BOX_COLUMNS = (
     "box_ids",
     "box_image",
@@ -40,6 +40,8 @@ BOX_COLUMNS = (
     "truncation",
     "visibility",
 )
+#: The per-box columns of ``GroundTruth`` a split may lack (None there).
+OPTIONAL_BOX_COLUMNS = ("vis_ratio", "height_key", "alias", "repeated", "corners")
 
 
 def name_key(name):
@@ -183,6 +185,13 @@ class GroundTruth:
     #: only by the others: the VOC devkit, KITTI and the toolbox never read ids); 0 a
     #: box every reading reads. None: no id is repeated (``repeated_left_out``).
     repeated: np.ndarray = None
+    #: Per box (n, 4) float64, the corners ``x1, y1, x2, y2`` as a corner format gives
+    #: them (VOC XML, CSV, KITTI labels), where some ``x1 + w`` or ``y1 + h`` is not the
+    #: ``x2`` or ``y2`` read (``w = x2 - x1`` rounded: 17.8 + (50.6 - 17.8) is
+    #: 50.599999999999994). The protocols whose reference reads corners (the VOC
+    #: devkit's matching rule, KITTI) take the right and bottom edges from here
+    #: (``boxes.edges``). None: the source gives xywh, or every edge rebuilds exactly.
+    corners: np.ndarray = None
 
     def __post_init__(self):
         if self.category_names is None:
@@ -380,7 +389,7 @@ class GroundTruth:
             np.int64
         )
 
-    def content_hash(self, scheme="repeats"):
+    def content_hash(self, scheme="corners"):
         """SHA-256 of the canonical content, under ``scheme`` (``content_hash.HASH_SCHEMES``):
         identical splits hash identically (``content_hash.content_hash``)."""
         from .content_hash import content_hash
@@ -448,6 +457,9 @@ class Predictions(ScoreConflictReadings):
     #: which pycocotools' family scores it; every other reading leaves it out (as any
     #: detection of an unlisted class). None: no such detection.
     alias: np.ndarray = None
+    #: Per detection, the corners as read (VOC result files, CSV, KITTI), as
+    #: ``GroundTruth.corners``: None where none says more than its xywh.
+    corners: np.ndarray = None
 
     def alias_detections(self):
         """Per detection, whether it is an ``alias`` detection (all False where none)."""

@@ -100,7 +100,11 @@ def get_difficulty_protocol(name_or_protocol):
         ) from None
 
 
-def _corners(xywh):
+def _corners(xywh, read=None):
+    """Corner boxes as the devkit reads them: ``read`` (the label file's corners,
+    ``GroundTruth.corners``) where given, else ``x + w``, ``y + h``."""
+    if read is not None:
+        return read
     # a non-finite box (inf + -inf = NaN) is the devkit's C double arithmetic: quiet
     with np.errstate(over="ignore", invalid="ignore"):
         return _column_corners(xywh)
@@ -228,8 +232,8 @@ def evaluate_levels_with_samples(truth, predictions, protocol="kitti2d"):
     from the samples (``level_samples.kitti_class`` at weights of one), so a weighted
     recomputation at weights of one equals it bit for bit."""
     protocol = get_difficulty_protocol(protocol)
-    gt_corners = _corners(truth.boxes)
-    det_corners = _corners(predictions.boxes)
+    gt_corners = _corners(truth.boxes, truth.corners)
+    det_corners = _corners(predictions.boxes, predictions.corners)
     det_height = np.trunc(np.abs(predictions.boxes[:, 3]))  # int32_t height = fabs(...)
     gt_by_image = _group(truth.box_image, truth.n_images)
     det_by_image = _group(predictions.image, truth.n_images)

@@ -76,6 +76,9 @@ HEIGHTS_FINGERPRINT = "2.18.2"
 #: The first engine whose fingerprint (scheme ``repeats``) hashes the annotations of a
 #: repeated id as given (the VOC, KITTI and toolbox readings score them).
 REPEATS_FINGERPRINT = "2.22.0"
+#: The first engine whose fingerprint (scheme ``corners``) hashes a corner file's
+#: corners as read where one says more than its xywh (voc, voc07 and kitti2d read them).
+CORNERS_FINGERPRINT = "2.23.0"
 #: ``(version, the splits whose fingerprint changed then)``, oldest first.
 FINGERPRINT_CHANGES = (
     (
@@ -97,6 +100,12 @@ FINGERPRINT_CHANGES = (
         REPEATS_FINGERPRINT,
         "whose annotation ids repeat, fingerprinted by an engine before "
         f"{REPEATS_FINGERPRINT} (the annotations a later one with their id replaces "
+        "not hashed)",
+    ),
+    (
+        CORNERS_FINGERPRINT,
+        "given as corners (VOC XML, CSV, KITTI) where some x1 + w is not the x2 read, "
+        f"fingerprinted by an engine before {CORNERS_FINGERPRINT} (the corners as read "
         "not hashed)",
     ),
 )

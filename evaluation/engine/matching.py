@@ -33,9 +33,11 @@ _DENSE_GROUPS = 20_000_000  # up to this many (image, class) groups, index them 
 _REGULAR = np.int32(1) << 24  # added to the key of a regular (non-ignored) box
 
 
-def _candidate_pairs(truth, det_boxes, det_group, protocol, min_threshold, left_out=None):
+def _candidate_pairs(
+    truth, det_boxes, det_group, protocol, min_threshold, left_out=None, det_corners=None
+):
     """All (detection, box) pairs of one image and class with IoU >= min_threshold
-    (none with a box the reading leaves out, ``left_out``)."""
+    (none with a box the reading leaves out, ``left_out``); ``det_corners`` as read."""
     n_classes = len(truth.classes)
     gt_group = truth.box_image.astype(np.int64) * n_classes + truth.box_class
     gt_order = np.argsort(gt_group, kind="stable")
@@ -53,16 +55,23 @@ def _candidate_pairs(truth, det_boxes, det_group, protocol, min_threshold, left_
     offsets = np.arange(total) - np.repeat(np.cumsum(counts) - counts, counts)
     pair_gt = gt_order[np.repeat(lo, counts) + offsets]
     crowd = truth.crowd if protocol.matching != BEST_OVERLAP else np.zeros_like(truth.crowd)
+    corners = protocol.reads_corners
     iou = pair_iou(
         det_boxes[pair_det],
         truth.boxes[pair_gt],
         crowd[pair_gt],
         pixel_offset=protocol.pixel_offset,
+        det_corners=_rows(det_corners if corners else None, pair_det),
+        gt_corners=_rows(truth.corners if corners else None, pair_gt),
     )
     keep = (iou >= min_threshold) | np.isnan(iou)  # NaN: see ``sequential_walk``
     if left_out is not None:
         keep &= ~left_out[pair_gt]
     return pair_det[keep], pair_gt[keep], iou[keep]
+
+
+def _rows(corners, index):
+    return None if corners is None else corners[index]
 
 
 def _outside(area, area_ranges):
@@ -130,6 +139,7 @@ def match(truth, predictions, protocol, *, reasons=True):
     det_image = predictions.image[order]
     det_cls = predictions.cls[order]
     det_boxes = predictions.boxes[order]
+    det_corners = _rows(predictions.corners, order)
     det_group = det_image.astype(np.int64) * n_classes + det_cls
     # inf * 0: NaN, as in loadRes; subnormal sides underflow to 0 as in C
     with np.errstate(invalid="ignore", over="ignore", under="ignore"):
@@ -148,8 +158,9 @@ def match(truth, predictions, protocol, *, reasons=True):
     gt_ignored = base_ignore[None, :] | _outside(truth.box_area, protocol.area_ranges)
     det_outside = _outside(det_area, protocol.area_ranges)
 
+    lowest = float(effective.min(initial=1.0))
     pair_det, pair_gt, pair_iou_ = _candidate_pairs(
-        truth, det_boxes, det_group, protocol, float(effective.min(initial=1.0)), left_out
+        truth, det_boxes, det_group, protocol, lowest, left_out, det_corners
     )
     undefined = np.isnan(pair_iou_)
     if protocol.matching == BEST_OVERLAP:  # the devkit's "ov>ovmax" is false for NaN
@@ -221,7 +232,9 @@ def match(truth, predictions, protocol, *, reasons=True):
         gt_void=_void_boxes(truth, protocol),
         class_repeats=truth.class_repeats if protocol.tie_order == "image" else None,
     )
-    return _reasons.attach(records, truth, det_boxes, protocol) if reasons else records
+    if not reasons:
+        return records
+    return _reasons.attach(records, truth, det_boxes, protocol, det_corners)
 
 
 def _reading(truth, predictions, protocol):

@@ -15,6 +15,7 @@ import os
 
 import numpy as np
 
+from .boxes import edges
 from .data import Predictions
 from .loaders import (
     boolean_scores,
@@ -37,6 +38,7 @@ SPILL_ROW = np.dtype(
         ("free", "u1"),  # the detection's id leaves a matched box free (as_given)
         ("unwritable", "<i8"),  # its record if numpy cannot write its id (as_given)
         ("alias", "u1"),  # under a lost category's changed value (Predictions.alias)
+        ("corners", "<f8", (4,)),  # as read (Predictions.corners), else x, y, x + w, y + h
         ("position", "<i8"),
     ]
 )
@@ -76,6 +78,7 @@ def stream_pieces(path, truth, ranges, directory, *, name="piece-{k}.npz", **opt
     frees = False  # some detection's id leaves a box free (a file read as given)
     bad_ids = False  # some detection's id cannot be written as a float (as given)
     aliases = False  # some detection is under a changed value (Predictions.alias)
+    corners = False  # some detection's corners say more than its xywh (Predictions.corners)
     policy = options.get("boxes") or truth.box_policy
     suspects = np.zeros(len(truth.classes), bool)  # classes holding a score >= 2**53
     infinite = False  # some loaded box is infinite
@@ -95,6 +98,8 @@ def stream_pieces(path, truth, ranges, directory, *, name="piece-{k}.npz", **opt
         rows["unwritable"] = -1 if block.unwritable is None else block.unwritable
         aliases = aliases or block.alias is not None
         rows["alias"] = 0 if block.alias is None else block.alias
+        corners = corners or block.corners is not None
+        rows["corners"] = edges(block.boxes, block.corners)
         rows["position"] = np.arange(totals["n"], totals["n"] + len(rows), dtype=np.int64)
         shard = np.searchsorted(starts, block.image, side="right") - 1
         by_shard = np.argsort(shard, kind="stable")  # file order within each shard
@@ -141,6 +146,7 @@ def stream_pieces(path, truth, ranges, directory, *, name="piece-{k}.npz", **opt
             free=rows["free"].astype(bool) if frees else None,
             unwritable=np.ascontiguousarray(rows["unwritable"]) if bad_ids else None,
             alias=rows["alias"].astype(bool) if aliases else None,
+            corners=np.ascontiguousarray(rows["corners"]) if corners else None,
         )
         positions = np.ascontiguousarray(rows["position"])
         sliced = dataclasses.replace(

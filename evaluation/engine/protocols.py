@@ -114,6 +114,13 @@ class Protocol:
         return self.max_detections[-1]
 
     @property
+    def reads_corners(self):
+        """Whether overlap is measured on the corners as read (``GroundTruth.corners``,
+        ``Predictions.corners``): the devkit's matching rule reads corners
+        (``VOCevaldet.m``); pycocotools reads xywh (``x + w``)."""
+        return self.matching == BEST_OVERLAP
+
+    @property
     def running_recall_sum(self):
         """Whether AP over sampled recall points is the VOC devkit's running sum
         (``ap=ap+p/11``, ``average_precision.recall_point_mean``): the devkit's matching

@@ -75,9 +75,11 @@ def box_outcome(reason):
     ]
 
 
-def _image_pairs(truth, box_usable, det_image, det_boxes, pixel_offset):
+def _image_pairs(truth, box_usable, det_image, det_boxes, pixel_offset, corners=None):
     """Yield ``(det, box, iou)`` for every detection and usable box of the same image
-    with IoU > 0, a chunk of detections at a time (detection-major, boxes ascending)."""
+    with IoU > 0, a chunk of detections at a time (detection-major, boxes ascending);
+    ``corners``: ``(detections', boxes')`` as read, or None (``Protocol.reads_corners``)."""
+    det_corners, gt_corners = corners or (None, None)
     usable = np.flatnonzero(box_usable)
     order = usable[np.argsort(truth.box_image[usable], kind="stable")]
     per_image = np.bincount(truth.box_image[usable], minlength=truth.n_images)
@@ -96,7 +98,12 @@ def _image_pairs(truth, box_usable, det_image, det_boxes, pixel_offset):
         offsets = np.arange(total) - np.repeat(np.cumsum(c) - c, c)
         box = order[np.repeat(first[det_image[start:stop]], c) + offsets]
         iou = pair_iou(
-            det_boxes[det], truth.boxes[box], np.zeros(total, bool), pixel_offset=pixel_offset
+            det_boxes[det],
+            truth.boxes[box],
+            np.zeros(total, bool),
+            pixel_offset=pixel_offset,
+            det_corners=None if det_corners is None else det_corners[det],
+            gt_corners=None if gt_corners is None else gt_corners[box],
         )
         keep = iou > 0
         yield det[keep], box[keep], iou[keep]
@@ -114,12 +121,13 @@ def _best(det, iou, box, order, mask, target_iou, target_box):
     target_box[det[first]] = box[first]
 
 
-def attach(records, truth, det_boxes, protocol):
+def attach(records, truth, det_boxes, protocol, det_corners=None):
     """Compute the reasons of ``records`` (slot 0, bucket "all") and store them on it.
 
     ``matching.match`` calls this; records saved before reasons existed can get them
     the same way from the split and the predictions they were matched from
-    (``det_boxes = predictions.boxes[records.det_order]``), without re-matching.
+    (``det_boxes = predictions.boxes[records.det_order]``, ``det_corners`` alike from
+    ``predictions.corners``), without re-matching.
     """
     from .protocols import get_protocol
 
@@ -148,6 +156,7 @@ def attach(records, truth, det_boxes, protocol):
         protocol.pixel_offset,
         det_order=records.det_order,
         det_key=records.det_key,
+        corners=(det_corners, truth.corners) if protocol.reads_corners else None,
     )
     records.det_box = np.asarray(det_boxes, np.float64)
     for name, value in found.items():
@@ -167,6 +176,7 @@ def compute(
     *,
     det_order=None,
     det_key=None,
+    corners=None,
 ):
     r"""Reason codes, related box / detection and IoU, for detections and boxes.
 
@@ -184,6 +194,8 @@ def compute(
     det_key : ``MatchRecords.det_key`` or None: where kept, equal float64 scores are
         ordered by it (pycocotools' exact order of integers beyond 2**53) before
         file position
+    corners : ``(detections' corners, boxes' corners)`` as read (either None where the
+        side has none) where the protocol reads corners (``Protocol.reads_corners``)
 
     Returns
     -------
@@ -211,7 +223,9 @@ def compute(
 
     # Pairs come a chunk of whole detections at a time: each detection's best boxes are
     # final within its chunk; a box's best detection is merged across chunks.
-    for det, box, iou in _image_pairs(truth, ~gt_ignored, det_image, det_boxes, pixel_offset):
+    for det, box, iou in _image_pairs(
+        truth, ~gt_ignored, det_image, det_boxes, pixel_offset, corners
+    ):
         box_class = truth.box_class[box]
         same = det_class[det] == box_class
         order = np.lexsort((box, -iou, det))

@@ -24,7 +24,7 @@ import dataclasses
 
 import numpy as np
 
-from .data import BOX_COLUMNS
+from .data import BOX_COLUMNS, OPTIONAL_BOX_COLUMNS
 from .loaders import exact_scores
 from .loaders.cache import _from_arrays, _to_arrays
 from .matching import match
@@ -65,7 +65,7 @@ def truth_slice(truth, start, stop):
 def keep_boxes(truth, box_index, regions=None):
     """``truth`` with the boxes ``box_index`` (sorted) only, every image kept (and the
     don't-care regions ``regions``, a mask; None: every one)."""
-    optional = ("vis_ratio", "height_key", "alias", "repeated")
+    optional = OPTIONAL_BOX_COLUMNS
     return dataclasses.replace(
         truth,
         **{name: getattr(truth, name)[box_index] for name in BOX_COLUMNS},
@@ -114,6 +114,7 @@ def predictions_slice(predictions, start, stop, positions=None):
         free=None if predictions.free is None else predictions.free[positions],
         unwritable=None if predictions.unwritable is None else predictions.unwritable[positions],
         alias=None if predictions.alias is None else predictions.alias[positions],
+        corners=None if predictions.corners is None else predictions.corners[positions],
         score_conflicts=exact_scores.restrict(predictions.score_conflicts, positions),
     )
     return sliced, positions

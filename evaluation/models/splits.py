@@ -54,11 +54,15 @@ class BenchmarkSplit(models.Model):
     )
     hash_scheme = models.CharField(
         max_length=8,
-        default="repeats",
-        help_text="How its content hash (sha256) was taken: repeats (as heights, and the "
+        default="corners",
+        help_text="How its content hash (sha256) was taken: corners (as repeats, and a "
+        "corner file's corners as read where some x1 + w is not the x2 given, which voc, "
+        "voc07 and kitti2d measure overlap on: a VOC XML, CSV or KITTI split and its COCO "
+        "JSON twin hash apart), repeats (as heights, and the "
         "annotations of a repeated annotation id as given, which voc, voc07, kitti2d and "
         "the toolbox's miss rates read where pycocotools reads copies of the last: two "
-        "files differing in an annotation a later one with its id replaces hash apart), "
+        "files differing in an annotation a later one with its id replaces hash apart: "
+        "splits frozen before corners as read were hashed keep that hash), "
         "heights (as named, and annotations' own height keys that differ from their box's "
         "h, which miss-rate-cityscale reads: splits frozen before repeated ids as given "
         "were hashed keep that hash), named (as typed, and categories sharing a name hash "

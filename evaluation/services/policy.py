@@ -26,14 +26,16 @@ VIS_RATIO_READING = "as-given"
 #: How a new split's content hash is taken (``engine.GroundTruth.content_hash(scheme)``):
 #: ids that are not numbers hash with their kind, categories sharing a name with their
 #: own names, annotations' own height keys, and each annotation whose id a later one
-#: repeats as given (read so by voc, voc07, kitti2d and the toolbox's miss rates). A
-#: stored split is verified with the scheme it was frozen with
+#: repeats as given (read so by voc, voc07, kitti2d and the toolbox's miss rates), and
+#: a corner file's corners as read where one says more than its xywh (voc, voc07 and
+#: kitti2d measure overlap on them). A stored split is verified with the scheme it was frozen with
 #: (``BenchmarkSplit.hash_scheme``: migration 0024 set ``untyped`` on splits frozen
 #: before id kinds were hashed, 0025 keeps ``typed`` on those frozen before own names
 #: were, 0026 keeps ``named`` on those frozen before ``height`` keys were, 0027 keeps
-#: ``heights`` on those frozen before the annotations of a repeated id as given were),
-#: so its sha256 is never rewritten.
-HASH_SCHEME = "repeats"
+#: ``heights`` on those frozen before the annotations of a repeated id as given were,
+#: 0028 keeps ``repeats`` on those frozen before corners as read were), so its sha256
+#: is never rewritten.
+HASH_SCHEME = "corners"
 #: Detections of classes the split does not list (``engine.load_predictions
 #: (unknown_classes=)``): the default drops them as pycocotools does, counted and named
 #: in the result; ``reject`` refuses the file.

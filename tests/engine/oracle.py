@@ -218,35 +218,90 @@ def _voc_ap(truth, predictions, eleven_point, min_overlap, outcomes):
         if outcomes is not None:
             scores = [predictions.score[i] for i in ids]
             outcomes[k] = (scores, (tp == 1).tolist(), ((tp == 0) & (fp == 0)).tolist(), npos)
-        fp, tp = np.cumsum(fp), np.cumsum(tp)
-        rec = tp / npos
-        with np.errstate(invalid="ignore", divide="ignore"):
-            prec = tp / (fp + tp)  # NaN before the first counted detection
-        if eleven_point:
-            ap = 0.0
-            for t in matlab_colon(0, 0.1, 1):
-                # p=max(prec(rec>=t)); if isempty(p), p=0; end: MATLAB's max omits NaN
-                # unless every element is NaN, then it is NaN (MathWorks documentation
-                # of max; from memory), so a class whose detections are all ignored
-                # (tp = fp = 0: prec all 0/0) gets ap NaN; leading NaNs before the
-                # first counted detection are omitted
-                sel = prec[rec >= t]
-                if not len(sel):
-                    p = 0.0
-                elif np.isnan(sel).all():
-                    p = np.nan
-                else:
-                    p = np.nanmax(sel)
-                ap = ap + p / 11
-        else:
-            mrec = np.r_[0.0, rec, 1.0]
-            mpre = np.r_[0.0, np.nan_to_num(prec, nan=0.0), 0.0]
-            for i in range(len(mpre) - 2, -1, -1):
-                mpre[i] = max(mpre[i], mpre[i + 1])
-            i = np.flatnonzero(mrec[1:] != mrec[:-1]) + 1
-            ap = float(np.sum((mrec[i] - mrec[i - 1]) * mpre[i]))
-        out[k] = ap
+        out[k] = _devkit_ap(tp, fp, npos, eleven_point)
     return out
+
+
+def _devkit_ap(tp, fp, npos, eleven_point):
+    """``VOCevaldet.m``'s AP from the per-detection tp/fp flags in sorted order: the
+    VOC2007 11-point loop, or ``VOCap.m``'s all-point area."""
+    fp, tp = np.cumsum(fp), np.cumsum(tp)
+    rec = tp / npos
+    with np.errstate(invalid="ignore", divide="ignore"):
+        prec = tp / (fp + tp)  # NaN before the first counted detection
+    if eleven_point:
+        ap = 0.0
+        for t in matlab_colon(0, 0.1, 1):
+            # p=max(prec(rec>=t)); if isempty(p), p=0; end: MATLAB's max omits NaN
+            # unless every element is NaN, then it is NaN (MathWorks documentation
+            # of max; from memory), so a class whose detections are all ignored
+            # (tp = fp = 0: prec all 0/0) gets ap NaN; leading NaNs before the
+            # first counted detection are omitted
+            sel = prec[rec >= t]
+            if not len(sel):
+                p = 0.0
+            elif np.isnan(sel).all():
+                p = np.nan
+            else:
+                p = np.nanmax(sel)
+            ap = ap + p / 11
+    else:
+        mrec = np.r_[0.0, rec, 1.0]
+        mpre = np.r_[0.0, np.nan_to_num(prec, nan=0.0), 0.0]
+        for i in range(len(mpre) - 2, -1, -1):
+            mpre[i] = max(mpre[i], mpre[i + 1])
+        i = np.flatnonzero(mrec[1:] != mrec[:-1]) + 1
+        ap = float(np.sum((mrec[i] - mrec[i - 1]) * mpre[i]))
+    return ap
+
+
+def voc_evaldet(gt, detections, *, eleven_point, min_overlap=0.5):
+    """One class's AP as ``VOCevaldet.m`` computes it from the corners as read,
+    written from the published code's logic (PASCAL VOC devkit): ``gt`` maps an image
+    id to its boxes ``(xmin, ymin, xmax, ymax, difficult)`` (``PASreadrecord``'s
+    ``bbox``, corners as the annotation gives them), ``detections`` are the result
+    file's lines ``(image id, confidence, xmin, ymin, xmax, ymax)`` in file order
+    (``textread``). Overlap: ``bi=[max(bb(1),bbgt(1)) ; ... ; min(bb(4),bbgt(4))]``,
+    ``iw=bi(3)-bi(1)+1``, ``ih=bi(4)-bi(2)+1``, ``ua`` from each box's own corners
+    (+1), ``ov=iw*ih/ua``; no ``x + w`` anywhere, so an overlap at exactly the
+    threshold is decided on the corners read. AP: ``_devkit_ap`` (the 11-point loop
+    or ``VOCap.m``)."""
+    npos = sum(not box[4] for boxes in gt.values() for box in boxes)
+    taken = {image: [False] * len(boxes) for image, boxes in gt.items()}
+    order = sorted(range(len(detections)), key=lambda d: -detections[d][1])  # stable
+    tp, fp = np.zeros(len(order)), np.zeros(len(order))
+    with np.errstate(all="ignore"):
+        for d, i in enumerate(order):
+            image, _, *bb = detections[i]
+            ovmax, jmax = -np.inf, None
+            for j, bbgt in enumerate(gt.get(image, ())):
+                bi = (
+                    max(bb[0], bbgt[0]),
+                    max(bb[1], bbgt[1]),
+                    min(bb[2], bbgt[2]),
+                    min(bb[3], bbgt[3]),
+                )
+                iw = bi[2] - bi[0] + 1
+                ih = bi[3] - bi[1] + 1
+                if iw > 0 and ih > 0:
+                    ua = (
+                        (bb[2] - bb[0] + 1) * (bb[3] - bb[1] + 1)
+                        + (bbgt[2] - bbgt[0] + 1) * (bbgt[3] - bbgt[1] + 1)
+                        - iw * ih
+                    )
+                    ov = iw * ih / ua
+                    if ov > ovmax:
+                        ovmax, jmax = ov, j
+            if ovmax >= min_overlap:
+                if not gt[image][jmax][4]:
+                    if not taken[image][jmax]:
+                        tp[d] = 1
+                        taken[image][jmax] = True
+                    else:
+                        fp[d] = 1
+            else:
+                fp[d] = 1
+        return _devkit_ap(tp, fp, npos, eleven_point)
 
 
 def matlab_descending_key(value):

@@ -197,9 +197,10 @@ def test_explain_says_an_older_fingerprint_may_be_the_same_split(tmp_path):
 
 
 def test_schemes(tmp_path):
-    assert HASH_SCHEMES == ("repeats", "heights", "named", "typed", "untyped")
+    assert HASH_SCHEMES == ("corners", "repeats", "heights", "named", "typed", "untyped")
     truth = load_truth(_write_case(tmp_path, "literal"))
     with pytest.raises(
-        ValueError, match="unknown hash scheme 'x'; use repeats, heights, named, typed, untyped"
+        ValueError,
+        match="unknown hash scheme 'x'; use corners, repeats, heights, named, typed, untyped",
     ):
         truth.content_hash("x")

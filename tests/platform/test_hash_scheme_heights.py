@@ -52,7 +52,7 @@ def test_a_split_with_height_keys_frozen_before_keeps_its_hash(
     split = BenchmarkSplit.objects.get(name="old-heights")
     assert split.hash_scheme == "named"
     evaluation_services.load_truth_of(split)  # verifies: no ContentMismatch
-    taken_as(split, hash_scheme="repeats")  # the scheme a new split has
+    taken_as(split, hash_scheme="corners")  # the scheme a new split has
 
     protocol = "miss-rate-cityscale"
     evaluation = score_upload(split, detections_for(content), run_tasks, [protocol])[protocol]
@@ -68,4 +68,4 @@ def test_a_split_with_height_keys_frozen_before_keeps_its_hash(
     with pytest.raises(UploadError, match=refused):
         freeze("equal-heights", _with_heights(base, 1.0))
     fresh = freeze("fresh", _with_heights(split_dict(seed=12), 1.5))
-    assert fresh.hash_scheme == "repeats"
+    assert fresh.hash_scheme == "corners"

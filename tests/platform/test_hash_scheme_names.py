@@ -70,7 +70,7 @@ def test_a_shared_name_split_frozen_before_keeps_its_hash(
     assert split.hash_scheme == "typed"
     assert split.sha256 == old.content_hash("typed") != old.content_hash()
     evaluation_services.load_truth_of(split)
-    taken_as(split, hash_scheme="repeats")  # the scheme a new split has
+    taken_as(split, hash_scheme="corners")  # the scheme a new split has
 
     evaluation = score_upload(split, detections_for(content), run_tasks, ["recall40"])
     evaluation = evaluation["recall40"]
@@ -91,7 +91,7 @@ def test_a_shared_name_split_frozen_before_keeps_its_hash(
         freeze("again-literal", other)
     twin = freeze("shared-twin", _shared(9))
     old_literal = BenchmarkSplit.objects.get(name="old-literal")
-    assert old_literal.hash_scheme == "typed" and twin.hash_scheme == "repeats"
+    assert old_literal.hash_scheme == "typed" and twin.hash_scheme == "corners"
     assert twin.sha256 != old_literal.sha256
     assert twin.classes == old_literal.classes
     evaluation_services.load_truth_of(old_literal)
@@ -103,7 +103,7 @@ def test_a_shared_name_split_frozen_before_keeps_its_hash(
     page = client.get(reverse("split", args=[split.pk])).content.decode()
     assert "typed: ids that are not numbers hash with their type" in page
     page = client.get(reverse("split", args=[twin.pk])).content.decode()
-    assert "repeats: as heights, and each annotation whose id a later one repeats" in page
+    assert "corners: as repeats, and a corner file's corners as read" in page
 
 
 @pytest.mark.django_db
@@ -111,7 +111,7 @@ def test_a_new_shared_name_split_and_its_literal_twin_are_two_splits(tmp_path, s
     settings.MEDIA_ROOT = str(tmp_path / "media")
     shared = freeze("shared", _shared(5))
     literal = freeze("literal", _literal(_shared(5)))
-    assert shared.hash_scheme == literal.hash_scheme == "repeats"
+    assert shared.hash_scheme == literal.hash_scheme == "corners"
     assert shared.classes == literal.classes and shared.sha256 != literal.sha256
     # the literal split's names are its own: it hashes as before
     path = tmp_path / "literal.json"

@@ -65,7 +65,7 @@ def test_a_split_with_repeated_ids_frozen_before_keeps_its_hash(
     assert split.hash_scheme == "heights" and split.sha256 == PAIR_HASH_2_21
     assert old.content_hash() != split.sha256  # the rows as given say more
     evaluation_services.load_truth_of(split)  # verifies: no ContentMismatch
-    taken_as(split, hash_scheme="repeats")  # the scheme a new split has
+    taken_as(split, hash_scheme="corners")  # the scheme a new split has
 
     evaluations = score_upload(split, DETECTIONS, run_tasks, ["voc", "coco"])
     for protocol, read in (("voc", "as given"), ("coco", "copies")):
@@ -81,7 +81,7 @@ def test_a_split_with_repeated_ids_frozen_before_keeps_its_hash(
     with pytest.raises(UploadError, match="the same content is already frozen as old-repeats"):
         freeze("again", EARLIER)
     moved = freeze("moved", MOVED)
-    assert moved.hash_scheme == "repeats"
+    assert moved.hash_scheme == "corners"
     assert moved.sha256 == engine.load_truth(_write(tmp_path, MOVED)).content_hash()
     assert moved.sha256 != split.sha256
     evaluation_services.load_truth_of(moved)
@@ -98,7 +98,7 @@ def test_a_split_with_repeated_ids_frozen_before_keeps_its_hash(
     page = client.get(reverse("split", args=[split.pk])).content.decode()
     assert "heights: as named" in page
     page = client.get(reverse("split", args=[moved.pk])).content.decode()
-    assert "repeats: as heights" in page
+    assert "corners: as repeats" in page
 
 
 def _write(tmp_path, content):
@@ -117,11 +117,11 @@ def test_a_split_without_repeated_ids_hashes_as_before(tmp_path, settings):
     assert old.repeated is None and old.content_hash() == split.sha256
     evaluation_services.load_truth_of(split)
     row = BenchmarkSplit.objects.get(pk=split.pk)
-    row.hash_scheme = "repeats"  # in memory only: as a new split is read
+    row.hash_scheme = "corners"  # in memory only: as a new split is read
     evaluation_services.load_truth_of(row)
     with pytest.raises(UploadError, match="the same content is already frozen as old-plain"):
         freeze("again", split_dict(seed=21))
     fresh = freeze("fresh", split_dict(seed=22))
-    assert fresh.hash_scheme == "repeats"
+    assert fresh.hash_scheme == "corners"
     truth = engine.load_truth(_write(tmp_path, split_dict(seed=22)))
     assert fresh.sha256 == truth.content_hash("heights") == truth.content_hash()

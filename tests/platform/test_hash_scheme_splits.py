@@ -57,7 +57,7 @@ def test_the_text_id_twin_of_a_numeric_split_is_a_new_split(tmp_path, settings):
     settings.MEDIA_ROOT = str(tmp_path / "media")
     numeric = freeze("numeric", split_dict())
     text = freeze("text", _as_text(split_dict()))
-    assert numeric.hash_scheme == text.hash_scheme == "repeats"
+    assert numeric.hash_scheme == text.hash_scheme == "corners"
     assert numeric.sha256 != text.sha256
     # a numeric split hashes as before id kinds entered the hash
     path = tmp_path / "numeric.json"
@@ -121,7 +121,7 @@ def test_a_text_id_split_frozen_before_keeps_its_hash(
     assert split.sha256 == old.content_hash("untyped") != old.content_hash()
     evaluation_services.load_truth_of(split)
     assert evaluation_services.road_counts_of(split) is not None
-    typed = taken_as(split, hash_scheme="repeats")  # the scheme a new split has
+    typed = taken_as(split, hash_scheme="corners")  # the scheme a new split has
     assert evaluation_services.road_counts_of(typed) is None
 
     evaluation = score_upload(split, detections_for(content), run_tasks, ["coco"])["coco"]
@@ -145,7 +145,7 @@ def test_a_text_id_split_frozen_before_keeps_its_hash(
         freeze("again-numeric", numeric_content)
     text_twin = freeze("text-twin", _as_text(numeric_content))
     old_numeric = BenchmarkSplit.objects.get(name="old-numeric")
-    assert old_numeric.hash_scheme == "untyped" and text_twin.hash_scheme == "repeats"
+    assert old_numeric.hash_scheme == "untyped" and text_twin.hash_scheme == "corners"
     assert text_twin.sha256 != old_numeric.sha256
     evaluation_services.load_truth_of(old_numeric)
     evaluation_services.load_truth_of(text_twin)

@@ -103,12 +103,14 @@ def cache_key(sources, options):
 
 
 #: The split's content hash, kept in a truth entry's metadata (``GroundTruth.content_hash``,
-#: its ``repeats`` scheme). Entries from before engine 2.22.0 kept the ``heights`` hash,
+#: its ``corners`` scheme). Entries from before engine 2.23.0 kept the ``repeats`` hash,
+#: before 2.22.0 the ``heights`` hash,
 #: before 2.18.2 the ``named`` one, before 2.17.6 the ``typed`` one and before 2.15.0 the
 #: ``untyped`` one, under ``_OLDER_HASHES``: dropped on load (the newest is computed
 #: once; ``CACHE_SCHEMA`` keeps such entries unused anyway).
-_CONTENT_HASH = "__repeats_content_hash__"
+_CONTENT_HASH = "__corners_content_hash__"
 _OLDER_HASHES = (
+    "__repeats_content_hash__",
     "__heights_content_hash__",
     "__named_content_hash__",
     "__typed_content_hash__",

@@ -227,8 +227,10 @@ def truth_box_counts(boxes, image_width, image_height, box_image):
 
 
 @ieee()
-def apply_box_policy(path, boxes, width, height, locate, policy, field="bbox"):
-    """Apply the box policy to predictions; returns the boxes and what was found.
+def apply_box_policy(path, boxes, width, height, locate, policy, field="bbox", corners=None):
+    """Apply the box policy to predictions; returns the boxes, what was found, and the
+    corners as read (``corners``, or None), clipped alike: a clipped box's corners are
+    the clipped read corners, so its edges stay what the devkit's would be.
 
     ``keep``: boxes as given, overhanging and wholly outside ones included (they are
     scored: pycocotools and the VOC devkit never look at the frame). ``clip``: cut to
@@ -259,16 +261,18 @@ def apply_box_policy(path, boxes, width, height, locate, policy, field="bbox"):
     elif policy == "clip" and outside.any():
         x1 = np.clip(boxes[:, 0], 0, width)
         y1 = np.clip(boxes[:, 1], 0, height)
-        x2 = np.clip(boxes[:, 0] + boxes[:, 2], 0, width)
-        y2 = np.clip(boxes[:, 1] + boxes[:, 3], 0, height)
+        x2 = np.clip(boxes[:, 0] + boxes[:, 2] if corners is None else corners[:, 2], 0, width)
+        y2 = np.clip(boxes[:, 1] + boxes[:, 3] if corners is None else corners[:, 3], 0, height)
         clipped = np.column_stack([x1, y1, x2 - x1, y2 - y1])
         boxes = np.where(outside[:, None], clipped, boxes)
+        if corners is not None:
+            corners = np.where(outside[:, None], np.column_stack([x1, y1, x2, y2]), corners)
         counts["clipped"] = counts["out_of_frame"]
     counts["zero_area"] = int(zero_area(boxes).sum())
     counts["negative_size"] = int(negative_size(boxes).sum())
     counts["on_images_without_size"] = int((np.isnan(width) | np.isnan(height)).sum())
     counts["non_finite"] = int(non_finite(boxes).sum())
-    return boxes, counts
+    return boxes, counts, corners
 
 
 def resolve(path, external, known, locate, field, what):

@@ -20,6 +20,7 @@ import re
 
 import numpy as np
 
+from ..boxes import from_corners
 from ..errors import InputError
 from .checks import text_start
 
@@ -189,49 +190,53 @@ def _not_utf8(path):
 
 
 def _corner_boxes(path, block, lines):
-    x1, y1, x2, y2 = (
-        _floats(path, block[c], lines, c) for c in ("x_min", "y_min", "x_max", "y_max")
-    )
-    return np.column_stack([x1, y1, x2 - x1, y2 - y1])
+    """The rows' corners as read, (n, 4) ``x_min, y_min, x_max, y_max``."""
+    return np.column_stack(
+        [_floats(path, block[c], lines, c) for c in ("x_min", "y_min", "x_max", "y_max")]
+    ).reshape(-1, 4)
 
 
 def detection_blocks(path):
-    """``(image ids, labels, xywh boxes, scores, line numbers)`` of a detections CSV,
-    a block of ``BLOCK_ROWS`` records at a time."""
+    """``(image ids, labels, xywh boxes, scores, line numbers, corners as read)`` of a
+    detections CSV, a block of ``BLOCK_ROWS`` records at a time."""
     for block, block_lines in read_blocks(path, DETECTION_COLUMNS):
+        corners = _corner_boxes(path, block, block_lines)
         yield (
             block["image_id"],
             block["label"],
-            _corner_boxes(path, block, block_lines),
+            from_corners(corners),
             _floats(path, block["score"], block_lines, "score"),
             np.array(block_lines, np.int64),
+            corners,
         )
 
 
 def read_detections(path):
-    """Columns of a detections CSV: image ids (str), labels, xywh boxes, scores, lines."""
-    ids, labels, boxes, scores, lines = [], [], [], [], []
-    for block_ids, block_labels, block_boxes, block_scores, block_lines in detection_blocks(path):
-        ids.extend(block_ids)
-        labels.extend(block_labels)
-        boxes.append(block_boxes)
-        scores.append(block_scores)
-        lines.append(block_lines)
+    """Columns of a detections CSV: image ids (str), labels, xywh boxes, scores, lines,
+    corners as read."""
+    ids, labels, boxes, scores, lines, corners = [], [], [], [], [], []
+    for block in detection_blocks(path):
+        ids.extend(block[0])
+        labels.extend(block[1])
+        for column, value in zip((boxes, scores, lines, corners), block[2:]):
+            column.append(value)
     if not ids:
-        return [], [], np.zeros((0, 4)), np.zeros(0), np.zeros(0, np.int64)
-    return ids, labels, np.concatenate(boxes), np.concatenate(scores), np.concatenate(lines)
+        empty = np.zeros((0, 4))
+        return [], [], empty, np.zeros(0), np.zeros(0, np.int64), empty
+    columns = (np.concatenate(c) for c in (boxes, scores, lines, corners))
+    return (ids, labels, *columns)
 
 
 def read_boxes(path):
     """Columns of a ground-truth boxes CSV."""
     numeric = ("area", *ATTRIBUTE_COLUMNS)
     flags = ("crowd", "difficult", "ignore", "dont_care")
-    out = {k: [] for k in ("image_id", "label", "boxes", *flags, *numeric, "area_given", "lines")}
+    out = {k: [] for k in ("image_id", "label", "corners", *flags, *numeric, "area_given", "lines")}
     for block, lines in read_blocks(path, BOX_COLUMNS, BOX_OPTIONAL + ATTRIBUTE_COLUMNS):
         n = len(lines)
         out["image_id"].extend(block["image_id"])
         out["label"].extend(block["label"])
-        out["boxes"].append(_corner_boxes(path, block, lines))
+        out["corners"].append(_corner_boxes(path, block, lines))
         for flag in flags:
             out[flag].append(
                 _flags(path, block[flag], lines, flag) if flag in block else np.zeros(n, bool)
@@ -245,10 +250,11 @@ def read_boxes(path):
         # an area cell written as nan is a NaN area, as in pycocotools; empty: none
         out["area_given"].append(np.array([bool(v) for v in block.get("area", [""] * n)], bool))
         out["lines"].append(np.array(lines, np.int64))
-    empty = {"boxes": np.zeros((0, 4)), "area_given": np.zeros(0, bool)}
+    empty = {"corners": np.zeros((0, 4)), "area_given": np.zeros(0, bool)}
     empty.update({**dict.fromkeys(flags, empty["area_given"]), "lines": np.zeros(0, np.int64)})
-    for key in ("boxes", *flags, *numeric, "area_given", "lines"):  # no rows: typed empties
+    for key in ("corners", *flags, *numeric, "area_given", "lines"):  # no rows: typed empties
         out[key] = np.concatenate(out[key]) if out[key] else empty.get(key, np.zeros(0))
+    out["boxes"] = from_corners(out["corners"])  # the corners kept beside: said_corners
     return out
 
 

@@ -14,6 +14,7 @@ import dataclasses
 
 import numpy as np
 
+from ..boxes import said_corners
 from ..errors import InputError
 from . import as_given, checks, coco_json, csv_tables, lost_ids, uncompared, unread_fields
 from .ids import NULL, NUMBER, TEXT, escaped, ids_like, keys_of, typed_keys
@@ -48,6 +49,7 @@ class Raw:
     free: np.ndarray = None  # per row: its id leaves a matched box free (``as_given``)
     unwritable: np.ndarray = None  # per row: its record if numpy cannot write its id
     extra_counts: dict = None  # counts ``as_given.emit`` adds to ``box_counts``
+    corners: np.ndarray = None  # (n, 4) as read, of a corner format (CSV, VOC, KITTI)
 
 
 @dataclasses.dataclass
@@ -69,6 +71,8 @@ class Resolved:
     infinite_box: bool = False
     #: per record, ``Predictions.alias``; None: none such
     alias: np.ndarray = None
+    #: ``Predictions.corners`` of the block (``boxes.said_corners``); None: none says more
+    corners: np.ndarray = None
 
 
 #: The count (``box_counts``) of detections whose area a reading gave, by reading.
@@ -149,8 +153,9 @@ def _json_keys(values, known, id_type):
     return typed_keys(values), keys_of(known, id_type)
 
 
-def csv_raw(truth, ids, labels, boxes, score, lines):
-    """A block of a detections CSV (``lines``: each record's line number)."""
+def csv_raw(truth, ids, labels, boxes, score, lines, corners=None):
+    """A block of a detections CSV (``lines``: each record's line number; ``corners``
+    as read)."""
     return Raw(
         ids_like(ids, truth.image_ids, truth.image_id_type),
         np.array(labels, dtype=object).astype(str) if labels else np.zeros(0, str),
@@ -161,6 +166,7 @@ def csv_raw(truth, ids, labels, boxes, score, lines):
         np.array(ids, dtype=object).astype(str) if ids else np.zeros(0, str),
         lambda i: f"line {lines[i]}",
         {"image": "image_id", "class": "label", "bbox": "x_min..y_max"},
+        corners=corners,
     )
 
 
@@ -306,9 +312,9 @@ def _resolve(path, truth, raw, policy, unknown_classes, unknown_images, rank_of,
         if len(bad):
             keep = np.ones(len(score), bool)
             keep[bad] = False
-            columns = (image, cls, boxes, score, area, free, bad_id, alias)
+            columns = (image, cls, boxes, score, area, free, bad_id, kept_at, alias)
             columns, locate = _narrowed(keep, columns, locate)
-            image, cls, boxes, score, area, free, bad_id, alias = columns
+            image, cls, boxes, score, area, free, bad_id, kept_at, alias = columns
             uncompared_unfit = len(bad)
     at[0] = POLICY
     checks.check_boxes(path, boxes, locate, fields["bbox"], policy)
@@ -320,7 +326,7 @@ def _resolve(path, truth, raw, policy, unknown_classes, unknown_images, rank_of,
             "score",
             lambda i: f"must be a finite number, got {score[i]} (box policy: reject)",
         )
-    boxes, box_counts = checks.apply_box_policy(
+    boxes, box_counts, corners = checks.apply_box_policy(
         path,
         boxes,
         truth.image_width[image],
@@ -328,6 +334,7 @@ def _resolve(path, truth, raw, policy, unknown_classes, unknown_images, rank_of,
         locate,
         policy,
         fields["bbox"],
+        None if raw.corners is None else raw.corners[kept_at],
     )
     return Resolved(
         image=image.astype(np.int32),
@@ -352,6 +359,7 @@ def _resolve(path, truth, raw, policy, unknown_classes, unknown_images, rank_of,
         unwritable=bad_id if bad_id is not None and (bad_id >= 0).any() else None,
         infinite_box=bool(np.isinf(raw.boxes).any()),
         alias=alias if alias is not None and alias.any() else None,
+        corners=said_corners(boxes, corners),
     )
 
 
@@ -386,9 +394,9 @@ def raw_blocks(path, truth, fmt, wide):
         if not given:
             yield json_raw(truth, *coco_json.empty_columns())
     elif fmt == "csv":
-        for ids, labels, boxes, score, lines in csv_tables.detection_blocks(path):
+        for ids, labels, boxes, score, lines, corners in csv_tables.detection_blocks(path):
             given = True
-            yield csv_raw(truth, ids, labels, boxes, score, lines)
+            yield csv_raw(truth, ids, labels, boxes, score, lines, corners)
         if not given:
             yield csv_raw(truth, [], [], np.zeros((0, 4)), np.zeros(0), np.zeros(0, np.int64))
     else:

@@ -23,8 +23,7 @@ NOT_GIVEN = float("nan")
 
 def _box(path, name, line, fields):
     values = {f: number(path, name, line, f, v) for f, v in zip(_NUMERIC, fields[3:15])}
-    x1, y1, x2, y2 = values["x1"], values["y1"], values["x2"], values["y2"]
-    return [x1, y1, x2 - x1, y2 - y1]
+    return [values["x1"], values["y1"], values["x2"], values["y2"]]  # corners as read
 
 
 def parse_truth(path, name, data, out):

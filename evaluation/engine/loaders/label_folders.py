@@ -20,6 +20,7 @@ file's header.
 
 import numpy as np
 
+from ..boxes import from_corners
 from ..errors import InputError
 from . import csv_tables, kitti, voc_results, voc_xml, yolo
 from .ids import INTEGER
@@ -248,8 +249,22 @@ def _known_size(path, name, table):
     return width, height
 
 
+#: The label formats that give corners (``x1 y1 x2 y2``): their readers hand the
+#: corners as read, kept beside the xywh boxes (``boxes.said_corners``).
+CORNER_FORMATS = ("kitti", "voc", "voc_det")
+
+
+def _boxes(fmt, values):
+    """``(xywh boxes, corners as read or None)`` of a format's box lists."""
+    values = np.array(values, np.float64).reshape(-1, 4)
+    if fmt in CORNER_FORMATS:
+        return from_corners(values), values
+    return values, None
+
+
 def _columns(path, fmt, rows, regions, class_names, table):
     index = {name: i + 1 for i, name in enumerate(class_names)}
+    boxes, corners = _boxes(fmt, [r[3] for r in rows])
     where = [f"{r[0]} line {r[1]}" for r in rows]
     region_where = [f"{r[0]} line {r[1]}" for r in regions]
     n = len(rows)
@@ -265,7 +280,8 @@ def _columns(path, fmt, rows, regions, class_names, table):
         "box_ids": np.arange(1, n + 1, dtype=np.int64),
         "box_image_ids": [stem(r[0]) for r in rows],
         "box_class_ids": np.array([index[r[2]] for r in rows], np.int64),
-        "boxes": np.array([r[3] for r in rows], np.float64).reshape(-1, 4),
+        "boxes": boxes,
+        "box_corners": corners,
         "box_area": np.full(n, np.nan),
         "crowd": np.zeros(n, bool),
         "difficult": np.array([r[4] for r in rows], bool),
@@ -276,7 +292,7 @@ def _columns(path, fmt, rows, regions, class_names, table):
         "locate_box": lambda i: where[i],
         "box_fields": _FIELDS[fmt],
         "region_image_ids": [stem(r[0]) for r in regions],
-        "regions": np.array([r[2] for r in regions], np.float64).reshape(-1, 4),
+        "regions": _boxes(fmt, [r[2] for r in regions])[0],
         "locate_region": lambda i: region_where[i],
         "format": fmt,
     }
@@ -284,7 +300,8 @@ def _columns(path, fmt, rows, regions, class_names, table):
 
 def read_detections(path, fmt, truth, to_ids, *, drop_unknown_images=False):
     """Detections of a KITTI, YOLO or VOC-results folder: ``(image ids, class names,
-    xywh boxes, scores, locate, dropped)``; ``to_ids`` types image ids like the split's.
+    xywh boxes, scores, locate, dropped, corners as read or None)``; ``to_ids`` types
+    image ids like the split's.
     YOLO's normalised boxes need their image's size, so with ``drop_unknown_images``
     the records of images outside the split are dropped here (``dropped`` counts them);
     KITTI's and VOC results' are left to the caller."""
@@ -297,7 +314,7 @@ def read_detections(path, fmt, truth, to_ids, *, drop_unknown_images=False):
                 "(<comp>_det_<set>_<class>.txt), KITTI, YOLO, CSV or JSON",
             )
         if fmt == "voc_det":
-            return _voc_results(path, members, truth)
+            return voc_results.read_detections(path, members, result_files(members), truth)
         names = label_files(members, fmt)
         records, dropped = [], 0
         if fmt == "kitti":
@@ -316,41 +333,15 @@ def read_detections(path, fmt, truth, to_ids, *, drop_unknown_images=False):
             labels = [class_names[r[2]] for r in records]
             boxes = _yolo_pixels(path, records, truth, to_ids)
     where = [f"{r[0]} line {r[1]}" for r in records]
+    boxes, corners = _boxes(fmt, boxes)
     return (
         [stem(r[0]) for r in records],
         labels,
-        np.array(boxes, np.float64).reshape(-1, 4),
+        boxes,
         np.array([r[4] for r in records], np.float64),
         lambda i: where[i],
         dropped,
-    )
-
-
-def _voc_results(path, members, truth):
-    names = result_files(members)
-    if not names:
-        raise InputError(
-            path, "no VOC result file (<comp>_det_<set>_<class>.txt) in the folder or zip"
-        )
-    records, seen = [], {}
-    for name in names:
-        class_name = voc_results.class_of(path, name, truth.classes)
-        earlier = seen.setdefault(class_name, name)
-        if earlier != name:
-            raise InputError(
-                path,
-                f"two result files for class {class_name!r} ({earlier} and {name})",
-                record=name,
-            )
-        voc_results.parse(path, name, members.read(name), class_name, records)
-    where = [f"{r[0]} line {r[1]}" for r in records]
-    return (
-        [r[5] for r in records],
-        [r[2] for r in records],
-        np.array([r[3] for r in records], np.float64).reshape(-1, 4),
-        np.array([r[4] for r in records], np.float64),
-        lambda i: where[i],
-        0,
+        corners,
     )
 
 

@@ -200,9 +200,10 @@ def _read_predictions(
         def to_ids(values, known):
             return ids_like(values, known, truth.image_id_type)
 
-        ids, labels, boxes, score, locate, read_dropped = label_folders.read_detections(
+        read = label_folders.read_detections(
             path, fmt, truth, to_ids, drop_unknown_images=unknown_images == "drop"
         )
+        ids, labels, boxes, score, locate, read_dropped, corners = read
         fields = {"image": "file name", "class": "type" if fmt == "kitti" else "class"}
         fields["bbox"] = "x1..y2" if fmt == "kitti" else "cx cy w h"
         if fmt == "voc_det":
@@ -218,6 +219,7 @@ def _read_predictions(
             shown,
             locate,
             fields,
+            corners=corners,
         )
     else:
         raw = detection_blocks.csv_raw(truth, *csv_tables.read_detections(path))
@@ -253,4 +255,5 @@ def _read_predictions(
         free=block.free,
         unwritable=block.unwritable,
         alias=block.alias,
+        corners=block.corners,
     )

@@ -23,6 +23,7 @@ import dataclasses
 
 import numpy as np
 
+from ..boxes import edges
 from ..data import BOX_COLUMNS, REPEATED_COPY, REPEATED_GIVEN
 from ..errors import InputError
 from . import annotation_index, attributes, checks, ids
@@ -159,6 +160,8 @@ def merge(truth, rows, occurrence, occurrence_rank, given, given_rows_):
         columns["height_key"] = np.r_[truth.height_key, given["boxes"][:, 3]][order]
     if truth.alias is not None:
         columns["alias"] = np.r_[truth.alias, np.zeros(extra, truth.alias.dtype)][order]
+    if truth.corners is not None:  # a row as given: its edges as x + w (no corners read)
+        columns["corners"] = np.r_[truth.corners, edges(given["boxes"])][order]
     columns["repeated"] = np.r_[mark, np.full(extra, REPEATED_GIVEN, np.int8)][order]
     position = np.empty(len(order), np.int64)
     position[order] = np.arange(len(order))

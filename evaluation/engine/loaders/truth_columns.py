@@ -5,6 +5,7 @@ finished. ``loaders.load_truth`` is the entry point (options, cache)."""
 
 import numpy as np
 
+from ..boxes import said_corners
 from ..data import GroundTruth
 from ..errors import InputError
 from . import (
@@ -304,6 +305,8 @@ def read_truth(
         box_image=box_image,
         box_class=box_class,
         boxes=boxes,
+        # a corner format's corners as read, where one says more than its xywh row
+        corners=said_corners(boxes, cols.get("box_corners")),
         box_area=area,
         crowd=cols["crowd"],
         difficult=cols["difficult"],
@@ -355,6 +358,7 @@ def _csv_truth_columns(path, images, classes):
         keep = ~region
         for key in (
             "boxes",
+            "corners",
             "crowd",
             "difficult",
             "ignore",
@@ -397,6 +401,7 @@ def _csv_truth_columns(path, images, classes):
         "box_image_ids": box_image_ids,
         "box_class_ids": label_ids,
         "boxes": boxes["boxes"],
+        "box_corners": boxes["corners"],
         "box_area": boxes["area"],
         "box_area_given": boxes["area_given"],
         "crowd": boxes["crowd"],

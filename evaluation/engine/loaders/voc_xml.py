@@ -169,7 +169,7 @@ def parse(path, name, data):
             (
                 obj.line,
                 label.value(),
-                [x1, y1, x2 - x1, y2 - y1],
+                [x1, y1, x2, y2],  # corners as read (label_folders keeps them)
                 _flag(path, name, obj.find("difficult"), "difficult"),
                 _flag(path, name, obj.find("truncated"), "truncated"),
                 _flag(path, name, obj.find("occluded"), "occluded"),
