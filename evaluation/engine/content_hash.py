@@ -129,7 +129,7 @@ def _form(truth, scheme):
 def _hashes_corners(truth, scheme):
     """Whether ``scheme``'s hash of ``truth`` holds its corners as read: ``corners``
     only, and only where they say more than its xywh rows (``GroundTruth.corners``)."""
-    return scheme == "corners" and truth.corners is not None
+    return scheme == "corners" and truth._corners_say_more()
 
 
 def _given(truth):
@@ -226,7 +226,7 @@ def _hash(truth, mark, heights, given=False, corners=False):
         + ([_canonical_nan(truth.height_key)] if heights else [])
         + ([truth.alias.astype("<f8")] if (alias := truth.alias is not None) else [])
         + ([truth.repeated.astype("<f8")] if given else [])
-        + ([_canonical_nan(truth.corners)] if corners else [])
+        + ([_canonical_nan(truth.corners)] if corners and truth.corners is not None else [])
     )
     order = np.lexsort(columns.T[::-1])
     digest.update(np.ascontiguousarray(columns[order]).tobytes())
@@ -236,10 +236,14 @@ def _hash(truth, mark, heights, given=False, corners=False):
         digest.update(b"changed_value_alias")
     if given:  # rows as given and copies (``repeats``): no split hashed before had them
         digest.update(b"\x00repeated_given")
-    if corners:  # corners as read (``corners``): no split hashed before had them
+    if corners and truth.corners is not None:  # as read (``corners``): none hashed before
         digest.update(b"\x00corners")
     if attributes:
         regions = np.column_stack([truth.region_image.astype("<f8"), truth.regions])
+        region_corners = corners and truth.region_corners is not None
+        if region_corners:
+            regions = np.column_stack([regions, _canonical_nan(truth.region_corners)])
+            digest.update(b"\x00region_corners")
         regions = regions[np.lexsort(regions.T[::-1])]
         digest.update(b"dont_care")
         digest.update(np.ascontiguousarray(regions, "<f8").tobytes())

@@ -140,6 +140,8 @@ class GroundTruth:
     cityscale_faults: dict = field(default_factory=dict)
     region_image: np.ndarray = None  # int32 index into image_ids
     regions: np.ndarray = None  # (m, 4) float64 xywh
+    #: The regions' corners as read, as ``corners`` (kitti2d reads them); None alike.
+    region_corners: np.ndarray = None
     #: Images (int64 indices, ascending) whose COCO JSON id pycocotools 2.0.11's
     #: ``evaluate`` loses in ``np.unique`` (``loaders.ids.unique_lost``): under its rules
     #: (``tie_order="image"``) their boxes and detections are left out and counted.
@@ -345,6 +347,11 @@ class GroundTruth:
         if self.height_key is None:
             return False
         return not np.array_equal(self.height_key, self.boxes[:, 3], equal_nan=True)
+
+    def _corners_say_more(self):
+        """Whether the boxes' or the regions' corners as read say more than their xywh
+        (``corners``, ``region_corners``): only then are they hashed (``corners``)."""
+        return self.corners is not None or self.region_corners is not None
 
     def _vis_ratio_says_more(self):
         """Whether ``vis_ratio`` holds anything ``visibility`` does not say (a value

@@ -12,7 +12,11 @@ the number of detections. Columns (``COLUMNS``):
                    is a text id beginning with ``"`` in such a split: see ``_jsonl_id``)
 ``class``          the row's class
 ``score``          detection score (empty for a box)
-``x, y, w, h``     the row's box, pixels
+``x, y, w, h``     the row's box, pixels, as the engine holds it: for a file given
+                   as corners (VOC XML, VOC result files, CSV, KITTI) ``x1, y1,
+                   x2 - x1, y2 - y1`` (w rounded to float64), so ``x + w`` may miss
+                   the ``x2`` read by an ulp; voc, voc07 and kitti2d measured the
+                   ``iou`` on the corners as read (``GroundTruth.corners``)
 ``outcome``        ``tp`` / ``fp`` / ``ignored`` (detection), ``matched`` / ``missed`` /
                    ``ignored`` (box)
 ``reason``         ``reasons.DETECTION_REASONS`` or ``reasons.BOX_REASONS``

@@ -77,7 +77,13 @@ def keep_boxes(truth, box_index, regions=None):
         **(
             {}
             if regions is None
-            else {"region_image": truth.region_image[regions], "regions": truth.regions[regions]}
+            else {
+                "region_image": truth.region_image[regions],
+                "regions": truth.regions[regions],
+                "region_corners": (
+                    None if truth.region_corners is None else truth.region_corners[regions]
+                ),
+            }
         ),
     )
 

@@ -322,3 +322,88 @@ def test_cache_and_shards_keep_the_corners(tmp_path):
     from evaluation.engine.scorecard import score_records
 
     assert score_records(merged, "voc")["per_class"]["car"]["AP"] == whole
+
+
+def test_kitti2d_dont_care_regions_read_as_corners(tmp_path):
+    """A DontCare region reaching half way into a detection from the left
+    (``imageBoxOverlap`` over the detection's area, criterion 0, compared ``> 0.5``):
+    the region's x2 as read decides, as in the devkit. Per image a pedestrian found exactly (a TP) and one such
+    detection; every precision slot equals the devkit transliteration."""
+    rng = np.random.default_rng(8)
+    scenes, detections, regions = [], [], []
+    while len(scenes) < 80:
+        dx1 = int(rng.integers(5000, 20000))
+        half = int(rng.integers(300, 10000))
+        rx1 = dx1 - int(rng.integers(1, 5000))
+        det = [dx1, 10000, dx1 + 2 * half, 16000]
+        region = [rx1, 9000, dx1 + half, 17000]  # ends half way into the detection
+        said = _rebuilt([_text(v) for v in region]) != [float(_text(v)) for v in region]
+        if len(scenes) < 40 and not said:  # half of them regions whose x + w misses x2
+            continue
+        k = len(scenes)
+        person = (60000, 10000, 61000, 17000)
+        score = float(rng.integers(1, 1000)) / 1000
+        scenes.append(
+            [
+                ("Pedestrian", *(v / 100 for v in person), 0.0, 0),
+                ("DontCare", *(float(_text(v)) for v in region), -1.0, -1),
+            ]
+        )
+        detections.append(
+            [
+                ("Pedestrian", *(v / 100 for v in person), (k + 1) / 100),
+                ("Pedestrian", *(float(_text(v)) for v in det), score),
+            ]
+        )
+        regions.append(([float(_text(v)) for v in region], [float(_text(v)) for v in det]))
+
+    def inside(region, det):
+        return oracle.kitti_box_overlap((None, *det), (None, *region), 0) > 0.5
+
+    rebuilt = [(_rebuilt(r), d) for r, d in regions]
+    flips = sum(inside(*a) != inside(*b) for a, b in zip(regions, rebuilt))
+    assert flips > 0  # x + w of the region would decide some otherwise
+    loaded, predictions = _write_kitti(tmp_path / "gt", scenes, detections)
+    assert loaded.region_corners is not None
+    assert loaded.content_hash() != loaded.content_hash("repeats")
+    result = evaluate_levels(loaded, predictions, "kitti2d")
+    for level in ("easy", "moderate", "hard"):
+        expected, n_gt = _kitti_oracle("pedestrian", scenes, detections, level)
+        ours = result["levels"][level]["classes"]["Pedestrian"]
+        assert ours["n_gt"] == n_gt
+        assert ours["precision"] == expected, level
+
+
+def test_clip_cuts_the_corners_as_read(tmp_path):
+    """``--boxes clip``: an overhanging detection's read corners are cut to the frame
+    (x2 50.6 in a 40 px wide image: 40), and its xywh from those; a box inside keeps
+    the corners read."""
+    truth = [("000001", ["27", "10", "66", "20"]), ("000002", ["27", "10", "66", "20"])]
+    dets = [
+        ("000001", "0.9", ["17.8", "10.0", "50.6", "20.0"]),
+        ("000002", "0.8", ["17.8", "10.0", "50.6", "20.0"]),
+    ]
+    gt_path, dt_path, options = _write_csv(tmp_path, truth, dets)
+    (tmp_path / "images.csv").write_text("image_id,width,height\n000001,40,100\n000002,60,100\n")
+    loaded = load_truth(gt_path, boxes="keep", **options)
+    clipped = load_predictions(dt_path, loaded, boxes="clip")
+    assert clipped.box_counts["clipped"] == 1
+    assert clipped.corners.tolist() == [[17.8, 10.0, 40.0, 20.0], [17.8, 10.0, 50.6, 20.0]]
+    assert clipped.boxes[0].tolist() == [17.8, 10.0, 40.0 - 17.8, 10.0]
+    assert clipped.boxes[1].tolist() == [17.8, 10.0, 50.6 - 17.8, 10.0]
+
+
+def test_streamed_pieces_keep_the_corners(tmp_path, monkeypatch):
+    """Blocks of 7 CSV rows, some saying more than their xywh and some not: every
+    streamed piece equals the whole file's piece, corners included, bit for bit."""
+    from evaluation.engine.loaders import csv_tables
+
+    from .test_stream_pieces import _compare
+
+    monkeypatch.setattr(csv_tables, "BLOCK_ROWS", 7)
+    truth, dets = _random_pairs(2, 50, offset=100)
+    gt_path, dt_path, options = _write_csv(tmp_path / "files", truth, dets)
+    loaded = load_truth(gt_path, **options)
+    predictions, reference = _compare(dt_path, loaded, 9, tmp_path)
+    assert predictions.corners is not None
+    assert any(piece[2].corners is not None for piece in reference)

@@ -188,9 +188,11 @@ def test_a_split_without_repeated_ids_hashes_as_before(tmp_path, case):
 
 
 def test_the_cache_keeps_the_repeats_hash(tmp_path):
-    """A truth entry stores the ``repeats`` hash (the rows as given are cached with
-    their mark); an entry written before engine 2.22.0 holds the ``heights`` hash under
-    its old name, which a load drops (the newest is then computed)."""
+    """A truth entry stores the newest hash (``corners``, which is the ``repeats`` hash
+    of a split without corners as read: the rows as given are cached with their mark);
+    an entry written before engine 2.23.0 holds it under its old name
+    (``__repeats_content_hash__``), one before 2.22.0 the ``heights`` hash, which a load
+    drops (the newest is then computed)."""
     path = _write(tmp_path, "earlier", EARLIER)
     truth = load_truth(path)
     for _ in range(2):  # written, then read
@@ -199,12 +201,15 @@ def test_the_cache_keeps_the_repeats_hash(tmp_path):
         assert again.content_hash("heights") == PAIR_HASH_2_21
     arrays = cache_module._to_arrays(truth)
     meta = json.loads(str(arrays["__meta__"]))
-    assert meta["__repeats_content_hash__"] == truth.content_hash()
-    meta["__heights_content_hash__"] = meta.pop("__repeats_content_hash__")
-    arrays["__meta__"] = np.array(json.dumps(meta))
-    old = cache_module._from_arrays("truth", arrays)
-    assert "_content_hash" not in old.__dict__
-    assert old.content_hash() == truth.content_hash()
+    assert meta["__corners_content_hash__"] == truth.content_hash()
+    assert truth.content_hash() == truth.content_hash("repeats")
+    for older in ("__repeats_content_hash__", "__heights_content_hash__"):
+        meta[older] = meta.pop("__corners_content_hash__")
+        arrays["__meta__"] = np.array(json.dumps(meta))
+        old = cache_module._from_arrays("truth", arrays)
+        assert "_content_hash" not in old.__dict__
+        assert old.content_hash() == truth.content_hash()
+        meta["__corners_content_hash__"] = meta.pop(older)
 
 
 def test_explain_says_an_older_fingerprint_may_be_the_same_split(tmp_path):

@@ -32,6 +32,7 @@ region (its label is not read).
 
 import numpy as np
 
+from ..boxes import said_corners
 from . import checks
 
 
@@ -133,6 +134,7 @@ def finish(
         visibility = np.where(from_ratio, fallback, visibility)
     region_ids = cols.get("region_image_ids")
     regions = np.asarray(cols.get("regions", np.zeros((0, 4))), np.float64).reshape(-1, 4)
+    corners = cols.get("region_corners")  # a corner format's, as read
     if region_ids is None or len(regions) == 0:
         region_image = np.zeros(0, np.int32)
     else:
@@ -145,6 +147,7 @@ def finish(
             keep = found & finite & sized
             unread["unread_dont_care"] += int((~keep).sum())
             region_image, regions = region_image[keep], regions[keep]
+            corners = None if corners is None else corners[keep]
         else:
             checks.require_found(region_path, found, region_ids, region_locate, "image_id", "image")
             checks.check_finite(region_path, regions, region_locate, "bbox")
@@ -162,4 +165,5 @@ def finish(
         "vis_ratio": script,
         "region_image": region_image.astype(np.int32),
         "regions": regions,
+        "region_corners": said_corners(regions, corners),
     }

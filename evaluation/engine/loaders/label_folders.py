@@ -265,6 +265,7 @@ def _boxes(fmt, values):
 def _columns(path, fmt, rows, regions, class_names, table):
     index = {name: i + 1 for i, name in enumerate(class_names)}
     boxes, corners = _boxes(fmt, [r[3] for r in rows])
+    region_boxes, region_corners = _boxes(fmt, [r[2] for r in regions])
     where = [f"{r[0]} line {r[1]}" for r in rows]
     region_where = [f"{r[0]} line {r[1]}" for r in regions]
     n = len(rows)
@@ -292,7 +293,8 @@ def _columns(path, fmt, rows, regions, class_names, table):
         "locate_box": lambda i: where[i],
         "box_fields": _FIELDS[fmt],
         "region_image_ids": [stem(r[0]) for r in regions],
-        "regions": _boxes(fmt, [r[2] for r in regions])[0],
+        "regions": region_boxes,
+        "region_corners": region_corners,
         "locate_region": lambda i: region_where[i],
         "format": fmt,
     }

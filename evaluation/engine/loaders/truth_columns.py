@@ -354,6 +354,7 @@ def _csv_truth_columns(path, images, classes):
     region = boxes["dont_care"]
     regions = {"region_image_ids": ids_like(_take(boxes["image_id"], region), image_ids)}
     regions["regions"], regions["region_lines"] = boxes["boxes"][region], boxes["lines"][region]
+    regions["region_corners"] = boxes["corners"][region]
     if region.any():  # a don't-care row is no box
         keep = ~region
         for key in (
