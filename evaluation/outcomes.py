@@ -71,8 +71,10 @@ def _load_with_reasons(card):
 
         evaluation = card.evaluation
         truth = truth_of(evaluation)
-        boxes = _prediction_boxes(evaluation, truth)
-        reasons.attach(records, truth, boxes[records.det_order], card.protocol)
+        predictions = _predictions(evaluation, truth)
+        order = records.det_order
+        corners = None if predictions.corners is None else predictions.corners[order]
+        reasons.attach(records, truth, predictions.boxes[order], card.protocol, corners)
     return records
 
 
@@ -83,7 +85,7 @@ def _truth(split_id, split_sha256, box_policy):
     return load_truth_of(BenchmarkSplit.objects.get(pk=split_id), box_policy)
 
 
-def _prediction_boxes(evaluation, truth):
+def _predictions(evaluation, truth):
     prediction_file = evaluation.predictions
     with verified_path(
         prediction_file.file,
@@ -98,7 +100,7 @@ def _prediction_boxes(evaluation, truth):
             evaluation.box_policy,
             unknown_images=evaluation.unknown_images,
             unknown_classes=evaluation.unknown_classes,
-        ).boxes
+        )
 
 
 def records_of(scorecard):

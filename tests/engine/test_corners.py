@@ -407,3 +407,39 @@ def test_streamed_pieces_keep_the_corners(tmp_path, monkeypatch):
     predictions, reference = _compare(dt_path, loaded, 9, tmp_path)
     assert predictions.corners is not None
     assert any(piece[2].corners is not None for piece in reference)
+
+
+def test_explain_says_an_older_fingerprint_may_be_the_same_split():
+    """A split saying more in its corners changed fingerprint with engine 2.23.0."""
+    from evaluation.engine import differences
+    from evaluation.engine.explain import CORNERS_FINGERPRINT
+    from evaluation.engine.version import ENGINE_VERSION
+
+    version = tuple(map(int, ENGINE_VERSION.split(".")))
+    assert CORNERS_FINGERPRINT == "2.23.0" and (2, 23, 0) <= version
+
+    def result(version, fingerprint):
+        return {"engine_version": version, "truth_fingerprint": fingerprint, "protocol_record": {}}
+
+    before, after = result("2.22.0", "a" * 64), result("2.23.0", "b" * 64)
+    effect = dict((row[0], row[3]) for row in differences(before, after))["ground truth"]
+    assert "where some x1 + w is not the x2 read" in effect
+    effect = dict((row[0], row[3]) for row in differences(after, result("2.23.1", "c" * 64)))
+    assert "x1 + w" not in effect["ground truth"]
+
+
+def test_reasons_attached_later_read_the_corners(tmp_path):
+    """Records matched without reasons get, from ``reasons.attach`` with the detections'
+    corners (as ``evaluation.outcomes`` passes them), the reasons matching gives."""
+    from evaluation.engine import reasons
+    from evaluation.engine.matching import match
+
+    truth, dets = _random_pairs(1, 120, offset=100)
+    loaded, predictions = _load("csv", tmp_path, truth, dets)
+    whole = match(loaded, predictions, "voc")
+    bare = match(loaded, predictions, "voc", reasons=False)
+    order = bare.det_order
+    reasons.attach(bare, loaded, predictions.boxes[order], "voc", predictions.corners[order])
+    assert bare.det_reason.tolist() == whole.det_reason.tolist()
+    assert bare.gt_reason.tolist() == whole.gt_reason.tolist()
+    assert (bare.det_reason == reasons.DETECTION_REASONS.index("tp")).sum() > 0
