@@ -1,7 +1,8 @@
 """Columnar containers for ground truth and predictions.
 
 Everything downstream of the loaders works on these arrays; no metric function ever
-sees a file. Boxes are ``[x, y, w, h]`` in pixels (float64), as in COCO-style JSON.
+sees a file. Boxes are ``[x, y, w, h]`` in pixels (float64), as in COCO-style JSON; a
+corner format's corners as read ride beside where ``x + w`` misses them (``corners``).
 """
 
 from dataclasses import dataclass, field
