@@ -43,9 +43,10 @@ _OPTIONAL_META = ("class_repeats",)
 _MATCH_FIELDS = ("match_config", "match_det", "match_box", "match_iou")
 _MOVED = ("class", "score", "image", "order")
 #: ``MatchRecords.det_key``, kept only where pycocotools' exact order is
-#: (``loaders.exact_scores``), and ``det_overflow``, only where a score is beyond
-#: float64's range: every shard of such a run has them.
-_KEY_FIELD = ("det_key", "det_overflow")
+#: (``loaders.exact_scores``), ``det_overflow``, only where a score is beyond
+#: float64's range, and ``det_record``, only where the loaders left records out:
+#: every shard of such a run has them.
+_KEY_FIELD = ("det_key", "det_overflow", "det_record")
 
 
 def _det_fields(records):

@@ -468,6 +468,18 @@ class Predictions(ScoreConflictReadings):
     #: Per detection, the corners as read (VOC result files, CSV, KITTI), as
     #: ``GroundTruth.corners``: None where none says more than its xywh.
     corners: np.ndarray = None
+    #: Per detection, the position of its record in the file, 0-based (int64;
+    #: ``detection_blocks.record_positions`` says how each format counts): where
+    #: records were left out (classes or images outside the split, unreadable fields
+    #: pycocotools never reads) or laid out "as given", the index of a detection here
+    #: is not its record's. None: every detection is the record of its own index.
+    record: np.ndarray = None
+
+    def records(self):
+        """``record``, or each detection's own index where it is None."""
+        if self.record is None:
+            return np.arange(len(self.score), dtype=np.int64)
+        return self.record
 
     def alias_detections(self):
         """Per detection, whether it is an ``alias`` detection (all False where none)."""

@@ -21,8 +21,19 @@ the number of detections. Columns (``COLUMNS``):
                    ``ignored`` (box)
 ``reason``         ``reasons.DETECTION_REASONS`` or ``reasons.BOX_REASONS``
 ``iou_threshold``  the primary IoU threshold of the row's class
-``detection``      0-based position in the predictions file: the detection's own, or for
-                   a box the matching / pointing / nearest detection's (empty if none)
+``detection``      0-based position in the predictions file of the detection's record
+                   (``MatchRecords.file_positions``): the detection's own, or for a box
+                   the matching / pointing / nearest detection's (empty if none). A
+                   JSON file's records count from its top-level array's first element,
+                   a CSV file's from its first data row (header and blank lines not
+                   counted); a KITTI, YOLO or VOC-results folder's in the order the
+                   loader reads them: files in name order, lines in file order. Records
+                   the loaders leave out (classes or images outside the split, fields
+                   pycocotools never reads) keep their numbers: the next kept record
+                   is not renumbered (before engine 2.24.0 this was the position among
+                   the kept records: ``RECORD_POSITIONS_SINCE``). A JSON file read "as
+                   given" with repeated ids names the record whose values the row
+                   carries (``loaders/as_given.py``), so two rows may name one record.
 ``box_id``         the box's annotation id: a box's own, or for a detection the box its
                    reason is about (empty if none)
 ``related_class``  class of that related box or detection
@@ -78,6 +89,9 @@ COLUMNS = (
     "protocol_sha256",
 )
 BLOCK_ROWS = 20_000
+#: The first engine whose records keep each detection's record position
+#: (``MatchRecords.det_record``) where the loaders left records out.
+RECORD_POSITIONS_SINCE = "2.24.0"
 CONTENT_TYPES = {"csv": "text/csv; charset=utf-8", "jsonl": "application/x-ndjson"}
 
 
@@ -129,6 +143,7 @@ def _row_blocks(records, truth, block_rows, typed_ids):
         keys = keys_of(truth.image_ids, truth.image_id_type)
         image_ids = np.array([key_value(k) for k in keys.tolist()], dtype=object)
     n, m = records.n_detections, truth.n_boxes  # none: nothing to relate a row to
+    positions = records.file_positions()
     for start in range(0, n, block_rows):
         s = slice(start, min(n, start + block_rows))
         cls, box = records.det_class[s], records.det_box[s]
@@ -147,7 +162,7 @@ def _row_blocks(records, truth, block_rows, typed_ids):
             "outcome": detection_outcome(records.det_reason[s]).tolist(),
             "reason": np.array(DETECTION_REASONS)[records.det_reason[s]].tolist(),
             "iou_threshold": threshold[cls].tolist(),
-            "detection": records.det_order[s].tolist(),
+            "detection": positions[s].tolist(),
             "box_id": _optional(truth.box_ids[safe] if m else safe, has),
             "related_class": _optional(classes[truth.box_class[safe]] if m else safe, has),
             "iou": _optional(iou, has),
@@ -173,7 +188,7 @@ def _row_blocks(records, truth, block_rows, typed_ids):
             "outcome": box_outcome(records.gt_reason[s]).tolist(),
             "reason": np.array(BOX_REASONS)[records.gt_reason[s]].tolist(),
             "iou_threshold": threshold[cls].tolist(),
-            "detection": _optional(records.det_order[safe] if n else safe, has),
+            "detection": _optional(positions[safe] if n else safe, has),
             "box_id": truth.box_ids[s].tolist(),
             "related_class": _optional(classes[records.det_class[safe]] if n else safe, has),
             "iou": _optional(iou, has),

@@ -220,6 +220,7 @@ def match(truth, predictions, protocol, *, reasons=True):
         det_order=(order if positions is None else positions[order]).astype(np.int64),
         det_key=key,
         det_overflow=_overflow(predictions, protocol, order),
+        det_record=None if predictions.record is None else predictions.record[order],
         det_outside=det_outside,
         match_config=config,
         match_det=det,

@@ -40,6 +40,7 @@ SPILL_ROW = np.dtype(
         ("alias", "u1"),  # under a lost category's changed value (Predictions.alias)
         ("corners", "<f8", (4,)),  # as read (Predictions.corners), else x, y, x + w, y + h
         ("position", "<i8"),
+        ("record", "<i8"),  # its record's position in the file (Predictions.record)
     ]
 )
 
@@ -79,6 +80,7 @@ def stream_pieces(path, truth, ranges, directory, *, name="piece-{k}.npz", **opt
     bad_ids = False  # some detection's id cannot be written as a float (as given)
     aliases = False  # some detection is under a changed value (Predictions.alias)
     corners = False  # some detection's corners say more than its xywh (Predictions.corners)
+    moved = False  # some detection's record is not its position (Predictions.record)
     policy = options.get("boxes") or truth.box_policy
     suspects = np.zeros(len(truth.classes), bool)  # classes holding a score >= 2**53
     infinite = False  # some loaded box is infinite
@@ -101,6 +103,8 @@ def stream_pieces(path, truth, ranges, directory, *, name="piece-{k}.npz", **opt
         corners = corners or block.corners is not None
         rows["corners"] = edges(block.boxes, block.corners)
         rows["position"] = np.arange(totals["n"], totals["n"] + len(rows), dtype=np.int64)
+        rows["record"] = block.record
+        moved = moved or not np.array_equal(block.record, rows["position"])
         shard = np.searchsorted(starts, block.image, side="right") - 1
         by_shard = np.argsort(shard, kind="stable")  # file order within each shard
         bounds = np.searchsorted(shard[by_shard], np.arange(len(ranges) + 1))
@@ -147,6 +151,7 @@ def stream_pieces(path, truth, ranges, directory, *, name="piece-{k}.npz", **opt
             unwritable=np.ascontiguousarray(rows["unwritable"]) if bad_ids else None,
             alias=rows["alias"].astype(bool) if aliases else None,
             corners=np.ascontiguousarray(rows["corners"]) if corners else None,
+            record=np.ascontiguousarray(rows["record"]) if moved else None,
         )
         positions = np.ascontiguousarray(rows["position"])
         sliced = dataclasses.replace(
@@ -166,6 +171,7 @@ def stream_pieces(path, truth, ranges, directory, *, name="piece-{k}.npz", **opt
         whole.dropped_images,
         whole.unknown_images,
         whole.dropped_classes,
+        True,
     )
     return StreamedPieces(paths, list(ranges), detections, counts)
 

@@ -110,6 +110,14 @@ class MatchRecords:
     #: class_repeats``), kept under its family (``tie_order="image"``) only: every mean
     #: over classes counts the class that often (``scoring.mean_present``). None: once.
     class_repeats: np.ndarray | None = None
+    #: Per detection, the position of its record in the predictions file
+    #: (``Predictions.record``, int64): where the loaders left records out (classes or
+    #: images outside the split, fields pycocotools never reads) or laid them out "as
+    #: given", ``det_order`` (the index among the loaded detections) is not it. None:
+    #: ``det_order`` is the file position — or, for records saved before engine 2.24.0,
+    #: which never kept it, the file position only if nothing was left out
+    #: (``file_positions``).
+    det_record: np.ndarray | None = None
     _sparse: dict = field(default_factory=dict, repr=False)
 
     @property
@@ -122,6 +130,11 @@ class MatchRecords:
         if self.det_key is None:
             return -self.det_score
         return np.where(np.isnan(self.det_key), -self.det_score, self.det_key)
+
+    def file_positions(self):
+        """Each detection's record position in the predictions file, 0-based:
+        ``det_record`` where kept, else ``det_order``."""
+        return self.det_order if self.det_record is None else self.det_record
 
     @property
     def has_reasons(self):

@@ -121,6 +121,7 @@ def predictions_slice(predictions, start, stop, positions=None):
         unwritable=None if predictions.unwritable is None else predictions.unwritable[positions],
         alias=None if predictions.alias is None else predictions.alias[positions],
         corners=None if predictions.corners is None else predictions.corners[positions],
+        record=None if predictions.record is None else predictions.record[positions],
         score_conflicts=exact_scores.restrict(predictions.score_conflicts, positions),
     )
     return sliced, positions
@@ -248,6 +249,8 @@ def merged_with_order(shards, n_boxes):
                 for r, _ in shards
             ]
         )
+    if any(r.det_record is not None for r, _ in shards):  # records were left out
+        det["det_record"] = np.concatenate([r.file_positions() for r, _ in shards])
     outside = np.concatenate([r.det_outside for r, _ in shards], axis=1)
     # Shards hold increasing runs of images and each is in accumulation order, so in
     # their concatenation equal (class, score) under tie_order "image" already stand in
@@ -334,6 +337,10 @@ class PredictionCounts:
     dropped_images: int = 0
     unknown_images: str = "reject"
     dropped_classes: tuple = ()
+    #: The pieces these counts ride with carry ``Predictions.record`` where records
+    #: were left out (engine 2.24.0); False for counts stored before: their pieces'
+    #: detections know only their index among the kept ones.
+    record_positions: bool = False
 
     @classmethod
     def of(cls, predictions):
@@ -345,6 +352,7 @@ class PredictionCounts:
             predictions.dropped_images,
             predictions.unknown_images,
             tuple(predictions.dropped_classes),
+            True,
         )
 
     @property

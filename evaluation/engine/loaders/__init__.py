@@ -35,6 +35,8 @@ __all__ = [
 ]
 
 #: Bumped when the parsed columns change shape or meaning: old cache entries are unused.
+#: 33: prediction entries keep each detection's record position where records were
+#: left out or laid out as given (``Predictions.record``);
 #: 32: truth and predictions entries keep a corner format's corners as read where one
 #: says more than its xywh (``GroundTruth.corners``, ``Predictions.corners``);
 #: 31: truth entries keep the annotations of a repeated id as given beside
@@ -50,7 +52,7 @@ __all__ = [
 #: 24: truth entries keep an annotation's height key (``GroundTruth.height_key``);
 #: 22: label-file and CSV ids are integers of ASCII digits only (``ids.INTEGER``);
 #: 21: truth entries keep the ids np.unique merges (unique_merged_images)
-CACHE_SCHEMA = 32
+CACHE_SCHEMA = 33
 UNKNOWN_CLASS_POLICIES = ("reject", "drop")
 #: Detections of images the split does not hold: refused (default; pycocotools'
 #: ``loadRes`` asserts every result image is in the set) or, for re-scoring stored

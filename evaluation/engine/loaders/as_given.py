@@ -104,6 +104,7 @@ def _with_free(raw, source, replaced):
         for name in ("image_ids", "class_keys", "boxes", "score", "shown", "area", "unfit", "ids"):
             taken[name] = getattr(raw, name)[source]
         taken["locate"] = lambda i: locate(int(source[i]))
+        taken["records"] = raw.base + source  # the record whose values the row carries
     ids = taken.get("ids", raw.ids)
     return dataclasses.replace(
         raw,

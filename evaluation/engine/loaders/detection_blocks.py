@@ -50,6 +50,8 @@ class Raw:
     unwritable: np.ndarray = None  # per row: its record if numpy cannot write its id
     extra_counts: dict = None  # counts ``as_given.emit`` adds to ``box_counts``
     corners: np.ndarray = None  # (n, 4) as read, of a corner format (CSV, VOC, KITTI)
+    #: per row, the file record it carries (``record_positions``); None: ``base + row``
+    records: np.ndarray = None
 
 
 @dataclasses.dataclass
@@ -73,6 +75,8 @@ class Resolved:
     alias: np.ndarray = None
     #: ``Predictions.corners`` of the block (``boxes.said_corners``); None: none says more
     corners: np.ndarray = None
+    #: per record, its position in the file (``Predictions.record``), int64
+    record: np.ndarray = None
 
 
 #: The count (``box_counts``) of detections whose area a reading gave, by reading.
@@ -153,9 +157,9 @@ def _json_keys(values, known, id_type):
     return typed_keys(values), keys_of(known, id_type)
 
 
-def csv_raw(truth, ids, labels, boxes, score, lines, corners=None):
+def csv_raw(truth, ids, labels, boxes, score, lines, corners=None, base=0):
     """A block of a detections CSV (``lines``: each record's line number; ``corners``
-    as read)."""
+    as read; ``base``: the file's data row number of the block's first record)."""
     return Raw(
         ids_like(ids, truth.image_ids, truth.image_id_type),
         np.array(labels, dtype=object).astype(str) if labels else np.zeros(0, str),
@@ -167,6 +171,7 @@ def csv_raw(truth, ids, labels, boxes, score, lines, corners=None):
         lambda i: f"line {lines[i]}",
         {"image": "image_id", "class": "label", "bbox": "x_min..y_max"},
         corners=corners,
+        base=base,
     )
 
 
@@ -360,7 +365,19 @@ def _resolve(path, truth, raw, policy, unknown_classes, unknown_images, rank_of,
         infinite_box=bool(np.isinf(raw.boxes).any()),
         alias=alias if alias is not None and alias.any() else None,
         corners=said_corners(boxes, corners),
+        record=record_positions(raw)[kept_at],
     )
+
+
+def record_positions(raw):
+    """Per row of ``raw``, the position of the record it carries in the file, 0-based:
+    a JSON file's index in its top-level array, a CSV file's data row (header and
+    blank lines not counted), a label folder's record in the order the loader reads
+    them (files in name order, lines in file order: ``label_folders``); a row laid out
+    "as given" carries the record ``as_given.layout`` names."""
+    if raw.records is not None:
+        return raw.records.astype(np.int64)
+    return raw.base + np.arange(len(raw.score), dtype=np.int64)
 
 
 def _changed_value_classes(truth, raw, image, class_keys, found):
@@ -394,9 +411,11 @@ def raw_blocks(path, truth, fmt, wide):
         if not given:
             yield json_raw(truth, *coco_json.empty_columns())
     elif fmt == "csv":
+        base = 0
         for ids, labels, boxes, score, lines, corners in csv_tables.detection_blocks(path):
             given = True
-            yield csv_raw(truth, ids, labels, boxes, score, lines, corners)
+            yield csv_raw(truth, ids, labels, boxes, score, lines, corners, base)
+            base += len(score)
         if not given:
             yield csv_raw(truth, [], [], np.zeros((0, 4)), np.zeros(0), np.zeros(0, np.int64))
     else:

@@ -302,10 +302,13 @@ def _columns(path, fmt, rows, regions, class_names, table):
 
 def read_detections(path, fmt, truth, to_ids, *, drop_unknown_images=False):
     """Detections of a KITTI, YOLO or VOC-results folder: ``(image ids, class names,
-    xywh boxes, scores, locate, dropped, corners as read or None)``; ``to_ids`` types
-    image ids like the split's.
+    xywh boxes, scores, locate, dropped, corners as read or None, positions)``;
+    ``to_ids`` types image ids like the split's. A record's position is its number in
+    the order read here: files in name order (``Members.names``; VOC result files
+    too), lines in file order, from 0.
     YOLO's normalised boxes need their image's size, so with ``drop_unknown_images``
-    the records of images outside the split are dropped here (``dropped`` counts them);
+    the records of images outside the split are dropped here (``dropped`` counts them,
+    ``positions`` gives the kept records' positions; None when none was dropped);
     KITTI's and VOC results' are left to the caller."""
     with Members(path) as members:
         fmt = fmt or detect(path, members)
@@ -316,9 +319,10 @@ def read_detections(path, fmt, truth, to_ids, *, drop_unknown_images=False):
                 "(<comp>_det_<set>_<class>.txt), KITTI, YOLO, CSV or JSON",
             )
         if fmt == "voc_det":
-            return voc_results.read_detections(path, members, result_files(members), truth)
+            read = voc_results.read_detections(path, members, result_files(members), truth)
+            return (*read, None)  # nothing dropped while reading
         names = label_files(members, fmt)
-        records, dropped = [], 0
+        records, dropped, positions = [], 0, None
         if fmt == "kitti":
             for name in names:
                 kitti.parse_detections(path, name, members.read(name), records)
@@ -332,6 +336,7 @@ def read_detections(path, fmt, truth, to_ids, *, drop_unknown_images=False):
                 known = _in_split(records, truth, to_ids)
                 dropped = len(records) - int(known.sum())
                 records = [r for r, keep in zip(records, known) if keep]
+                positions = np.flatnonzero(known).astype(np.int64) if dropped else None
             labels = [class_names[r[2]] for r in records]
             boxes = _yolo_pixels(path, records, truth, to_ids)
     where = [f"{r[0]} line {r[1]}" for r in records]
@@ -344,6 +349,7 @@ def read_detections(path, fmt, truth, to_ids, *, drop_unknown_images=False):
         lambda i: where[i],
         dropped,
         corners,
+        positions,
     )
 
 

@@ -203,7 +203,7 @@ def _read_predictions(
         read = label_folders.read_detections(
             path, fmt, truth, to_ids, drop_unknown_images=unknown_images == "drop"
         )
-        ids, labels, boxes, score, locate, read_dropped, corners = read
+        ids, labels, boxes, score, locate, read_dropped, corners, positions = read
         fields = {"image": "file name", "class": "type" if fmt == "kitti" else "class"}
         fields["bbox"] = "x1..y2" if fmt == "kitti" else "cx cy w h"
         if fmt == "voc_det":
@@ -220,6 +220,7 @@ def _read_predictions(
             locate,
             fields,
             corners=corners,
+            records=positions,
         )
     else:
         raw = detection_blocks.csv_raw(truth, *csv_tables.read_detections(path))
@@ -256,4 +257,13 @@ def _read_predictions(
         unwritable=block.unwritable,
         alias=block.alias,
         corners=block.corners,
+        record=moved(block.record),
     )
+
+
+def moved(record):
+    """``Predictions.record`` of a file's kept records' positions: None when each is
+    its own index (no record was left out or moved)."""
+    if np.array_equal(record, np.arange(len(record))):
+        return None
+    return record
