@@ -64,6 +64,12 @@ def _nbytes(records):
 _RECORDS = _Kept(64, max_bytes=512 * 2**20, weigh=_nbytes)
 
 
+class PositionsUnknown(ValueError):
+    """Records scored before engine 2.24.0 from a file whose loader left records out,
+    and the stored file no longer loads into those records' detections: their file
+    positions cannot be told (``with_file_positions``)."""
+
+
 def _load_with_reasons(card):
     records = load_records(card)
     if not records.has_reasons:
@@ -76,6 +82,78 @@ def _load_with_reasons(card):
         corners = None if predictions.corners is None else predictions.corners[order]
         reasons.attach(records, truth, predictions.boxes[order], card.protocol, corners)
     return records
+
+
+#: ``box_counts`` keys of detections the loaders leave out or lay out anew
+#: (``uncompared.COUNT``, ``detection_blocks.UNREADABLE_ON_LOST``, ``as_given.REPLACED``).
+_MOVING_COUNTS = ("uncompared_unfit", "unreadable_on_lost_ids", "replaced_by_id")
+
+
+def _moved(counts):
+    """Whether a stored result's counts say the loaders left a record out or laid
+    records out anew (then a detection's index is not its record's position)."""
+    boxes = (counts.get("boxes") or {}).get("predictions") or {}
+    return bool(
+        counts.get("dropped_predictions")
+        or counts.get("dropped_unknown_images")
+        or any(boxes.get(key) for key in _MOVING_COUNTS)
+    )
+
+
+def with_file_positions(card, records):
+    """``records`` with ``det_record`` (each detection's record position in the file)
+    where records scored before engine 2.24.0 lack it and their file had records left
+    out: read from the stored file by today's loader, and kept only if its loaded
+    detections are the records' own (count, and each detection's box and score at
+    its ``det_order``); else ``records.positions_unknown`` is set (the downloads
+    refuse rather than number rows by kept detections). Done once per loaded records
+    (``records_of`` keeps them), on the first download, not for the pages."""
+    from .engine import InputError
+    from .engine.export import RECORD_POSITIONS_SINCE
+
+    if hasattr(records, "positions_unknown"):
+        return records
+    evaluation = card.evaluation
+    if records.det_record is not None or not _older(
+        evaluation.engine_version, RECORD_POSITIONS_SINCE
+    ):
+        records.positions_unknown = False
+        return records
+    found = Scorecard.objects.filter(pk=card.pk).values_list("result__counts", flat=True)
+    counts = found.first() or {}
+    if _moved(counts):
+        truth = truth_of(evaluation)
+        try:
+            predictions = _predictions(evaluation, truth)
+        except InputError:  # a file today's loader refuses: positions unknown
+            predictions = None
+        if predictions is None or not _same_detections(predictions, records, counts):
+            records.positions_unknown = True
+            return records
+        records.det_record = predictions.records()[records.det_order]
+    records.positions_unknown = False
+    return records
+
+
+def _older(version, than):
+    """Whether engine ``version`` (empty: unknown, read as older) precedes ``than``."""
+    try:
+        return tuple(int(p) for p in version.split(".")) < tuple(int(p) for p in than.split("."))
+    except (AttributeError, ValueError):
+        return True
+
+
+def _same_detections(predictions, records, counts):
+    import numpy as np
+
+    order = records.det_order
+    if len(predictions) != counts.get("predictions"):
+        return False
+    if len(order) and order.max() >= len(predictions):
+        return False
+    same_box = np.array_equal(predictions.boxes[order], records.det_box, equal_nan=True)
+    same_score = np.array_equal(predictions.score[order], records.det_score, equal_nan=True)
+    return same_box and same_score
 
 
 @functools.lru_cache(maxsize=4)
@@ -131,13 +209,22 @@ def export_chunks(evaluation, fmt):
     blocks (``engine.export``: one row per detection, then per box, with reason,
     related box or detection and IoU); None when it has no stored records. The
     records are read before the first block is sent, so a broken records file is an
-    error page, not a truncated download."""
+    error page, not a truncated download. ``PositionsUnknown`` when the records'
+    file positions cannot be told (``with_file_positions``)."""
     from .engine import export
 
     card = scorecard_of(evaluation)
     if card is None:
         return None
-    records = records_of(card)
+    records = with_file_positions(card, records_of(card))
+    if records.positions_unknown:
+        raise PositionsUnknown(
+            f"evaluation {evaluation.pk} was scored by engine {evaluation.engine_version or '?'}, "
+            "whose records number detections among those kept after the loaders left "
+            "records out, and its stored predictions file no longer loads into those "
+            "detections: their positions in the file cannot be told. Score the evaluation "
+            "again for a download whose detection column is the file position."
+        )
     truth = truth_of(evaluation)
     written_by = evaluation.engine_version or export.ENGINE_VERSION  # not today's engine
     digest = _protocol_digest(card)

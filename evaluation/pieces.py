@@ -137,8 +137,9 @@ def keep(
 
 def stored(prediction_file, split, *, box_policy, unknown_images, unknown_classes):
     """The complete ``PredictionPieces`` of this input under the current shard size, or
-    None. A set with a piece missing from the storage (or a row) is deleted, so the
-    caller streams the file again."""
+    None. A set with a piece missing from the storage (or a row), or streamed before
+    pieces kept their records' file positions (``PredictionCounts.record_positions``),
+    is deleted, so the caller streams the file again."""
     pieces = (
         PredictionPieces.objects.filter(
             **_key(prediction_file, split, box_policy, unknown_images, unknown_classes)
@@ -147,6 +148,10 @@ def stored(prediction_file, split, *, box_policy, unknown_images, unknown_classe
         .first()
     )
     if pieces is None:
+        return None
+    if not shards.PredictionCounts(**pieces.counts).record_positions:
+        log.warning("%s predates file positions (engine 2.23.0); streamed again", pieces)
+        delete(pieces)
         return None
     rows = sorted(pieces.pieces.all(), key=lambda p: p.index)
     plan = shards.plan(split.image_count, settings.BENCHBOOK_SHARD_IMAGES)

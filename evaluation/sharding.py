@@ -65,6 +65,8 @@ def resume(evaluation):
     plan = [(r.image_start, r.image_stop) for r in rows]
     if not rows or plan != _ranges(evaluation.split.image_count) or not all(r.piece for r in rows):
         return False
+    if not all(shards.PredictionCounts(**r.predictions_counts).record_positions for r in rows):
+        return False  # pieces written before they kept file positions: written again
     _dispatch(evaluation, rows)
     return True
 

@@ -1,7 +1,7 @@
 """Downloads of an evaluation's outcome records (CSV, JSON Lines), streamed."""
 
 from django.contrib.auth.decorators import login_required
-from django.http import Http404, StreamingHttpResponse
+from django.http import Http404, HttpResponse, StreamingHttpResponse
 
 from evaluation import outcomes
 from evaluation.engine.export import CONTENT_TYPES
@@ -19,7 +19,10 @@ def records_download(request, evaluation_id, fmt):
         evaluation = selectors.evaluation_for(request.user, evaluation_id)
     except Evaluation.DoesNotExist:
         raise Http404("no such evaluation") from None
-    chunks = outcomes.export_chunks(evaluation, fmt)
+    try:
+        chunks = outcomes.export_chunks(evaluation, fmt)
+    except outcomes.PositionsUnknown as e:
+        return HttpResponse(str(e), status=409, content_type="text/plain; charset=utf-8")
     if chunks is None:
         raise Http404("this evaluation has no stored records")
     response = StreamingHttpResponse(chunks, content_type=CONTENT_TYPES[fmt])

@@ -26,7 +26,10 @@ class _Records(EvaluationMixin, generics.GenericAPIView):
         evaluation = self.get_object()
         if evaluation.state != Evaluation.State.DONE:
             raise NotScored(f"evaluation {pk} is {evaluation.state}")
-        chunks = outcomes.export_chunks(evaluation, self.fmt)
+        try:
+            chunks = outcomes.export_chunks(evaluation, self.fmt)
+        except outcomes.PositionsUnknown as e:
+            raise NotScored(str(e)) from None
         if chunks is None:
             raise NotScored(f"evaluation {pk} has no stored records")
         from evaluation.engine.export import CONTENT_TYPES
