@@ -184,3 +184,35 @@ def test_old_results_whose_file_no_longer_loads_alike_are_refused(
     client.force_login(users["engineer"])
     page = client.get(reverse("records-download", args=[evaluation.pk, "csv"]))
     assert page.status_code == 409 and b"Score the evaluation again" in page.content
+
+
+def test_pieces_streamed_before_positions_are_streamed_again(
+    large,  # noqa: F811
+    users,
+    version,
+    split,
+    split_truth,
+    run_tasks,
+    sent,  # noqa: F811
+):
+    """A stored set of pieces whose counts predate ``record_positions`` (its pieces
+    carry no ``Predictions.record``) is not used: deleted, to be streamed again."""
+    from evaluation import pieces as piece_sets
+    from evaluation.models import PredictionPieces
+
+    dets = _with_unlisted(split_truth)
+    run_tasks(
+        services.submit_predictions, version, split, upload("p.json", dets), users["engineer"]
+    )
+    (stored,) = PredictionPieces.objects.all()
+    assert stored.counts["record_positions"] is True
+    key = {
+        "box_policy": stored.box_policy,
+        "unknown_images": stored.unknown_images,
+        "unknown_classes": stored.unknown_classes,
+    }
+    assert piece_sets.stored(stored.predictions, split, **key) == stored
+    old = {k: v for k, v in stored.counts.items() if k != "record_positions"}
+    PredictionPieces.objects.filter(pk=stored.pk).update(counts=old)
+    assert piece_sets.stored(stored.predictions, split, **key) is None
+    assert not PredictionPieces.objects.exists()
