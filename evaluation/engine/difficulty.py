@@ -118,7 +118,13 @@ def _column_corners(xywh):
 
 def _overlap(det, other, own_area=False):
     """(len(det), len(other)) overlap of corner boxes: IoU, or over the detection's own
-    area; 0 where the intersection is empty (devkit ``imageBoxOverlap``)."""
+    area; 0 where the intersection is empty (devkit ``imageBoxOverlap``). Huge or
+    non-finite corners overflow as the devkit's C doubles do: quietly (audit14 F4)."""
+    with np.errstate(over="ignore", invalid="ignore"):
+        return _overlap_of(det, other, own_area)
+
+
+def _overlap_of(det, other, own_area):
     x1 = np.maximum(det[:, None, 0], other[None, :, 0])
     y1 = np.maximum(det[:, None, 1], other[None, :, 1])
     x2 = np.minimum(det[:, None, 2], other[None, :, 2])

@@ -10,6 +10,7 @@ arithmetic: ``test_difficulty.py`` against the devkit transliteration). Python's
 
 import contextlib
 import io
+import json
 import math
 import warnings
 
@@ -80,3 +81,38 @@ def test_the_audits_file_on_the_command_line(tmp_path):
                          "--protocol", protocol, "--format", "json"])  # fmt: skip
         assert code == 0, (protocol, err.getvalue())
         assert not caught and not err.getvalue(), protocol
+
+
+def test_huge_finite_corners_under_kitti2d(tmp_path):
+    """red team audit14 F4: finite corners whose width overflows (``-1e308 .. 1e308``,
+    kept as read since engine 2.23.0) made ``difficulty._overlap`` warn on stderr; the
+    devkit's C doubles overflow to inf quietly (IEEE 754, common practice), and the
+    numbers are those of a false positive of the same height and score beside the box:
+    the huge box's overlap with every box is 0 there (an infinite union), as in the
+    devkit transliteration's arithmetic (``test_difficulty.py``)."""
+    (tmp_path / "images.csv").write_text("image_id,width,height\n1,100,80\n")
+    (tmp_path / "truth.csv").write_text(
+        "image_id,label,x_min,y_min,x_max,y_max\n1,Car,10,10,50,60\n"
+    )
+    rows = "image_id,label,x_min,y_min,x_max,y_max,score\n1,Car,10,10,50,60,0.8\n"
+    (tmp_path / "beside.csv").write_text(rows + "1,Car,60,0,90,70,0.9\n")
+    (tmp_path / "huge.csv").write_text(rows + "1,Car,-1e308,0,1e308,70,0.9\n")
+    outputs = {}
+    for name in ("beside", "huge"):
+        err, out = io.StringIO(), io.StringIO()
+        with (
+            warnings.catch_warnings(record=True) as caught,
+            contextlib.redirect_stderr(err),
+            contextlib.redirect_stdout(out),
+            np.errstate(all="warn"),  # as the command runs
+        ):
+            warnings.simplefilter("always")
+            code = main(["score", "--truth", str(tmp_path / "truth.csv"),
+                         "--images", str(tmp_path / "images.csv"),
+                         "--predictions", str(tmp_path / f"{name}.csv"),
+                         "--protocol", "kitti2d", "--format", "json"])  # fmt: skip
+        assert code == 0 and not caught and not err.getvalue(), (name, err.getvalue())
+        outputs[name] = json.loads(out.getvalue())
+    for level in ("easy", "moderate", "hard"):
+        beside, huge = (outputs[n]["levels"][level] for n in ("beside", "huge"))
+        assert huge == beside, level

@@ -74,9 +74,48 @@ def test_voc_protocols_follow_the_devkit(files, seed, protocol):
     truth, predictions = _random_inputs(files, seed)
     ours = _per_class_ap(evaluate(truth, predictions, protocol), truth.classes)
     expected = oracle.voc_ap(truth, predictions, eleven_point=protocol == "voc07")
-    if protocol == "voc07":  # the devkit's running sum ap=ap+p/11: bit for bit (audit12 F5)
-        np.testing.assert_array_equal(ours, expected)
-    np.testing.assert_allclose(ours, expected, rtol=0, atol=1e-12)
+    # bit for bit: voc07 the devkit's running sum ap=ap+p/11 (audit12 F5); voc numpy's
+    # sum of VOCap's very terms, its closing (1 - r) * 0 included (audit14 F1)
+    np.testing.assert_array_equal(ours, expected)
+
+
+@pytest.mark.parametrize(
+    ("hits", "n_pos"), [(7, 9), (15, 20), (23, 30), (31, 40), (8, 10), (7, 7), (16, 16)]
+)
+def test_voc_all_point_ap_sums_the_devkits_terms(files, hits, n_pos):
+    """``VOCap.m`` sums ``(mrec(i)-mrec(i-1)).*mpre(i)`` over every recall change, the
+    step from the final recall to its closing (1, 0) point included (a zero term where
+    the final recall is below 1); the common Python port sums that array with
+    ``np.sum`` (``oracle.voc_ap``). numpy sums 8 or more terms in partial sums, so
+    leaving the zero term out moved the last bit with 7, 15, 23 true positives (red
+    team audit14 F1: 0.5517568850902185 against the devkit's 0.5517568850902184).
+    Each image holds one box; the first ``hits`` detections (best first) hit theirs,
+    the rest miss, and a false one sits between each pair of hits (precision below 1),
+    so recall ends below 1 (n_pos > hits) or at 1."""
+    split = {
+        "images": [{"id": i, "width": 500, "height": 500} for i in range(1, n_pos + 1)],
+        "categories": [{"id": 1, "name": "car"}],
+        "annotations": [
+            {"id": i, "image_id": i, "category_id": 1, "bbox": [10, 10, 40, 40], "area": 1600}
+            for i in range(1, n_pos + 1)
+        ],
+    }
+    detections = [
+        {
+            "image_id": i,
+            "category_id": 1,
+            "bbox": [10, 10, 40, 40] if i <= hits else [300, 300, 40, 40],
+            "score": 1 - i / 100,
+        }
+        for i in range(1, n_pos + 1)
+    ] + [
+        {"image_id": i, "category_id": 1, "bbox": [200, 200, 40, 40], "score": 1 - i / 100 - 0.005}
+        for i in range(1, hits)
+    ]
+    truth, predictions = files.load(split, detections)
+    ours = _per_class_ap(evaluate(truth, predictions, "voc"), truth.classes)
+    expected = oracle.voc_ap(truth, predictions, eleven_point=False)
+    np.testing.assert_array_equal(ours, expected)
 
 
 def test_voc07_ap_is_the_devkits_running_sum():
