@@ -34,7 +34,7 @@ NUMERIC_ID_KINDS = ("int", "number")
 
 
 def id_kind(ids, id_type):
-    """What predictions an id family matches (``loaders.detection_blocks._json_keys``):
+    """What predictions an id family matches (``loaders.raw_blocks._json_keys``):
     ``"int"`` (int64 ids), ``"number"``, ``"text"`` or ``"json"`` (COCO JSON families,
     ``loaders.ids``) or ``"plain"`` (CSV or file-name text: matched as text, whatever a
     JSON result's id type)."""

@@ -7,7 +7,9 @@ it once on the whole file; ``stream`` calls it on each block of a JSON or CSV fi
 a streamed file gives exactly the columns of a whole load, block after block (every
 check is per record, every count a sum — but for records pycocotools would fail on
 only when comparing them, ``Raw.unfit``: their rank in their image and class is the
-whole file's, ``file_ranks``, read again when a block holds one).
+whole file's, ``file_ranks``, read again when a block holds one). The blocks as read,
+``Raw``, come from ``raw_blocks`` (``raw_blocks``, ``json_raw``, ``csv_raw``; imported
+from here too).
 """
 
 import dataclasses
@@ -16,42 +18,13 @@ import numpy as np
 
 from ..boxes import said_corners
 from ..errors import InputError
-from . import as_given, checks, coco_json, csv_tables, lost_ids, uncompared, unread_fields
-from .ids import NULL, NUMBER, TEXT, escaped, ids_like, keys_of, typed_keys
+from . import as_given, checks, lost_ids, uncompared, unread_fields
+from .ids import NULL, NUMBER, TEXT, escaped
+from .raw_blocks import Raw, csv_raw, json_raw, raw_blocks  # noqa: F401  (re-exported)
 from .truthless_boxes import truthful
 
 #: Formats that can be read a block at a time.
 STREAMABLE = ("json", "csv")
-
-
-@dataclasses.dataclass
-class Raw:
-    """One block's columns as read, before lookup. ``locate(i)`` names record ``i``
-    of the block as the file counts it; ``shown``: the image ids as written."""
-
-    image_ids: np.ndarray
-    class_keys: np.ndarray
-    boxes: np.ndarray
-    score: np.ndarray
-    known_images: np.ndarray
-    known_classes: np.ndarray
-    shown: np.ndarray
-    locate: object
-    fields: dict
-    area: np.ndarray = None  # per detection, for size ranges: None = w * h (the box's)
-    reading: str = None  # how a JSON file was read (``mask_results.mode``): None = boxes
-    #: per detection None, or the ``(field, message)`` pycocotools fails on only if it
-    #: compares the detection (``uncompared``), or ``(field, message, kind)`` (loaded;
-    #: ``uncompared.mixed``); None: every record fit
-    unfit: np.ndarray = None
-    base: int = 0  # the file's number of the block's first record
-    ids: np.ndarray = None  # the records' own ids, read "as given" (``as_given``)
-    free: np.ndarray = None  # per row: its id leaves a matched box free (``as_given``)
-    unwritable: np.ndarray = None  # per row: its record if numpy cannot write its id
-    extra_counts: dict = None  # counts ``as_given.emit`` adds to ``box_counts``
-    corners: np.ndarray = None  # (n, 4) as read, of a corner format (CSV, VOC, KITTI)
-    #: per row, the file record it carries (``record_positions``); None: ``base + row``
-    records: np.ndarray = None
 
 
 @dataclasses.dataclass
@@ -107,72 +80,6 @@ def _plain(key):
     """A class key without a typed key's mark (``ids``), a lone surrogate as its escape
     (reports and the platform's JSON hold it)."""
     return escaped(key[1:] if key[:1] in (NUMBER, TEXT, NULL) else key)
-
-
-def json_raw(
-    truth,
-    image_ids,
-    class_keys,
-    boxes,
-    score,
-    area=None,
-    reading=None,
-    unfit=None,
-    ids=None,
-    base=0,
-):
-    """A block of a COCO-style results file (records ``base``, ``base + 1``...);
-    ``area``: the detections' areas of a file not read as boxes, ``reading`` which
-    reading (``mask_results.mode``, ``result_readings``), ``unfit`` as ``Raw.unfit``."""
-    shown = image_ids
-    image_ids, known_images = _json_keys(image_ids, truth.image_ids, truth.image_id_type)
-    class_keys, known_classes = _json_keys(class_keys, truth.class_ids, truth.class_id_type)
-    return Raw(
-        image_ids,
-        class_keys,
-        boxes,
-        score,
-        known_images,
-        known_classes,
-        shown,
-        lambda i: f"record {base + i}",
-        {"image": "image_id", "class": "category_id", "bbox": "bbox"},
-        area,
-        reading,
-        unfit,
-        base,
-        ids,
-    )
-
-
-def _json_keys(values, known, id_type):
-    """A JSON detections id column and the split's ids, made comparable: as they are
-    when both are int64; typed keys (``ids``) when the split's are JSON ids of another
-    kind or the file's are not all int64, so an id matches only its own type, as in
-    pycocotools; against CSV text ids, as text (CSV has no types)."""
-    if known.dtype.kind == "i" and values.dtype.kind == "i":
-        return values, known
-    if known.dtype.kind != "i" and not id_type:
-        return values.astype(str), known.astype(str)
-    return typed_keys(values), keys_of(known, id_type)
-
-
-def csv_raw(truth, ids, labels, boxes, score, lines, corners=None, base=0):
-    """A block of a detections CSV (``lines``: each record's line number; ``corners``
-    as read; ``base``: the file's data row number of the block's first record)."""
-    return Raw(
-        ids_like(ids, truth.image_ids, truth.image_id_type),
-        np.array(labels, dtype=object).astype(str) if labels else np.zeros(0, str),
-        boxes,
-        score,
-        truth.image_ids,
-        np.array(truth.classes, dtype=object).astype(str),
-        np.array(ids, dtype=object).astype(str) if ids else np.zeros(0, str),
-        lambda i: f"line {lines[i]}",
-        {"image": "image_id", "class": "label", "bbox": "x_min..y_max"},
-        corners=corners,
-        base=base,
-    )
 
 
 def resolve(path, truth, raw, policy, unknown_classes, unknown_images, rank_of=None):
@@ -396,30 +303,6 @@ def _groups(truth, image, cls, alias=None):
     if alias is not None:
         group = np.where(alias, group + truth.n_images * n_classes, group)
     return group
-
-
-def raw_blocks(path, truth, fmt, wide):
-    """``Raw`` blocks of a JSON or CSV detections file, in file order, at least one
-    (an empty file of records gives one empty block)."""
-    given = False
-    if fmt == "json":
-        base = 0
-        for columns in coco_json.detection_blocks(path, wide):
-            given = True
-            yield json_raw(truth, *columns, base=base)
-            base += len(columns[3])
-        if not given:
-            yield json_raw(truth, *coco_json.empty_columns())
-    elif fmt == "csv":
-        base = 0
-        for ids, labels, boxes, score, lines, corners in csv_tables.detection_blocks(path):
-            given = True
-            yield csv_raw(truth, ids, labels, boxes, score, lines, corners, base)
-            base += len(score)
-        if not given:
-            yield csv_raw(truth, [], [], np.zeros((0, 4)), np.zeros(0), np.zeros(0, np.int64))
-    else:
-        raise ValueError(f"{fmt} detections cannot be read a block at a time")
 
 
 def add_counts(total, counts):

@@ -251,7 +251,7 @@ def refuse_uncomparable_detections(path, truth, keys, image, locate, field):
     in catIds`` compares an integer numpy cannot convert (outside signed 64 bits) with
     a boolean array and raises OverflowError, for a detection on any image it looks up
     (not one whose id its ``np.unique`` loses). ``keys``: the detections' class keys
-    (``detection_blocks._json_keys``), ``image`` their image indices. The annotations'
+    (``raw_blocks._json_keys``), ``image`` their image indices. The annotations'
     side: ``fetched_by_category``."""
     if not truth.boolean_class_ids or np.asarray(keys).dtype.kind == "i" or not len(keys):
         return
