@@ -5,14 +5,13 @@ Exit status: 0 on success, 2 on bad input (the message names file, record, field
 """
 
 import argparse
-import contextlib
 import json
 import math
 import os
 import re
 import sys
 
-from . import explain, export, json_file
+from . import cli_files, explain, export, json_file
 from .difficulty import DIFFICULTY_PRESETS, evaluate_levels, levels_table
 from .errors import InputError
 from .evaluate import evaluate
@@ -184,7 +183,7 @@ def main(argv=None):
         _check_options(args, levels)
         outputs = _outputs(args)  # before any scoring: a bad path wastes no time
         if args.cache:
-            _cache_folder(args.cache)
+            cli_files.cache_folder(args.cache)
         protocol = args.protocol if levels else _protocol(args.protocol)
         truth = load_truth(
             args.truth,
@@ -229,7 +228,7 @@ def main(argv=None):
                 protocol_sha256=result.get("protocol_sha256"),
             ),
         }
-        _write_all({path: (option, writers[option]) for option, path in outputs.items()})
+        cli_files.write_all({path: (option, writers[option]) for option, path in outputs.items()})
     except InputError as e:
         print(f"error: {e}", file=sys.stderr)
         return EXIT_BAD_INPUT
@@ -278,103 +277,21 @@ def records_provenance(result):
 
 def _outputs(args):
     """``{option: path}`` of the files ``--records`` and ``--records-out`` will write,
-    checked before any scoring: a file name in an existing folder, not an input (nor a
-    file inside an input folder), and not the other output."""
+    checked before any scoring (``cli_files.outputs``): a file name in an existing
+    folder, not an input (nor a file inside an input folder), and not the other output."""
     inputs = [
         ("--truth", args.truth),
         ("--predictions", args.predictions),
         ("--images", args.images),
         ("--protocol", args.protocol if _custom(args.protocol) else None),
     ]
-    outputs = {}
-    for option, path in (("--records", args.records), ("--records-out", args.records_out)):
-        if not path:
-            continue
-        folder = os.path.dirname(os.path.abspath(path))
-        if os.path.isdir(path):
-            raise InputError(path, f"is a folder: {option} names the file to write")
-        if not os.path.isdir(folder):
-            raise InputError(path, f"cannot be written ({option}): there is no folder {folder}")
-        for other, given in inputs:
-            if given and _same_file(path, given):
-                raise InputError(
-                    path, f"is the {other} input: {option} would overwrite it; write elsewhere"
-                )
-            if other in LABEL_INPUTS and given and os.path.isdir(given) and _inside(path, given):
-                raise InputError(
-                    path,
-                    f"is inside the folder given as {other}: {option} would change that "
-                    "input; write elsewhere",
-                )
-        for earlier_option, earlier in outputs.items():
-            if _same_file(path, earlier):
-                raise InputError(
-                    path, f"is named by both {earlier_option} and {option}: each writes a file"
-                )
-        outputs[option] = path
-    return outputs
-
-
-#: The inputs that may be folders (of label files).
-LABEL_INPUTS = ("--truth", "--predictions")
+    wanted = (("--records", args.records), ("--records-out", args.records_out))
+    return cli_files.outputs(inputs, wanted)
 
 
 def _custom(protocol):
     """A custom preset's file (not a preset name)."""
     return protocol not in ALL_PRESETS and os.path.isfile(protocol)
-
-
-def _same_file(a, b):
-    """One file (``os.path.samefile``: links and hard links too) or one resolved path."""
-    try:
-        if os.path.exists(a) and os.path.exists(b):
-            return os.path.samefile(a, b)
-    except OSError:
-        pass
-    return os.path.realpath(a) == os.path.realpath(b)
-
-
-def _inside(path, folder):
-    real, root = os.path.realpath(path), os.path.realpath(folder)
-    return os.path.commonpath([real, root]) == root
-
-
-def _write_all(writes):
-    """Write each file (``{path: (option, write(path to write))}``) next to its place
-    under a temporary name, then move all into place: a failure (disk full, no
-    permission) leaves none of them, and no part of one, behind. A symbolic link is
-    written through (its target replaced); a device or a pipe (``/dev/stdout``) is
-    written in place, never replaced."""
-    done = {}
-    try:
-        for path, (_, write) in writes.items():
-            real = os.path.realpath(path)
-            if os.path.exists(real) and not os.path.isfile(real):
-                write(real)
-                continue
-            folder, name = os.path.split(real)
-            done[path] = (real, os.path.join(folder, f".{name}.{os.getpid()}.partial"))
-            write(done[path][1])
-        for path, (real, temporary) in list(done.items()):
-            os.replace(temporary, real)
-            del done[path]
-    except OSError as e:
-        option = writes[path][0]
-        raise InputError(path, f"cannot be written ({option}): {e.strerror}") from None
-    finally:
-        for _, temporary in done.values():
-            with contextlib.suppress(OSError):
-                os.remove(temporary)
-
-
-def _cache_folder(path):
-    """The ``--cache`` folder, created if absent."""
-    if os.path.exists(path) and not os.path.isdir(path):
-        raise InputError(path, "is not a folder: --cache names the folder to keep parsed input in")
-    try:
-        os.makedirs(path, exist_ok=True)
-    except OSError as e:
-        raise InputError(path, f"cannot be the cache folder (--cache): {e.strerror}") from None
 
 
 #: Set (to anything) to let an internal error end with its traceback.
