@@ -83,21 +83,29 @@ def best_f1(tp, fp, scores, n_pos):
     }
 
 
-def every_point_counts(records, *, max_detections=None, weights=None, area=0, slot=0):
+def every_point_counts(
+    records, *, max_detections=None, weights=None, area=0, slot=0, toolbox=False
+):
     """Running TP / FP sums at every detection, as the duplicated split would have them.
 
     Unlike ``curves.cumulative_counts`` (one entry per detection, weighted), an image
     of weight w contributes the w copies of each of its runs of tied detections in the
     order the duplicated split accumulates them (``MatchRecords._tie_groups``), so a
     reading at every point — the miss-rate curve — equals the duplicated split's.
+    With ``toolbox``, detections are taken in the pedestrian toolbox's order
+    (``toolbox_order``) instead of the protocol's accumulation order.
 
     Returns ``curves.Curves`` over the expanded points.
     """
     w = detection_weights(records, max_detections, weights)
+    order = toolbox_order(records) if toolbox else None
+    keep = np.flatnonzero(w > 0) if order is None else order[w[order] > 0]
     if weights is None or not np.any(w > 1):
-        index = np.flatnonzero(w > 0)
+        index = keep
+    elif order is None:
+        index = _duplicated_order(keep, records.sparse_outcomes(0)["tie_start"][keep], w)
     else:
-        index = _duplicated_order(records, w)
+        index = _duplicated_order(keep, _image_runs(records, keep), w)
     is_tp, is_ignored = records.outcomes(area, slot)
     is_fp = ~(is_tp | is_ignored)
     bounds = np.searchsorted(records.det_class[index], np.arange(len(records.classes) + 1))
@@ -110,11 +118,43 @@ def every_point_counts(records, *, max_detections=None, weights=None, area=0, sl
     )
 
 
-def _duplicated_order(records, w):
+def toolbox_order(records):
+    """Detection indices in the order the pedestrian toolbox reads them (Dollár et al.,
+    ``bbGt`` ``compRoc``: every image's detections concatenated in image order —
+    ``dt=cat(1,dt{:})``, each image's sorted by score, stably — then a stable
+    ``sort(score,'descend')``): per class, score descending, then image, then file
+    position. That is accumulation order under ``tie_order="image"`` (None is
+    returned); under ``"file"`` (the VOC devkit's stable sort of the whole file) each
+    run of tied scores is re-ordered by image, keeping file order within an image, so
+    the miss rate never depends on how records of different images are interleaved."""
+    n = records.n_detections
+    if records.tie_order != "file" or n < 2:
+        return None
+    key = records.order_key()
+    same = (records.det_class[1:] == records.det_class[:-1]) & (
+        (key[1:] == key[:-1]) | (np.isnan(key[1:]) & np.isnan(key[:-1]))
+    )
+    run = np.cumsum(np.r_[True, ~same])
+    return np.lexsort((np.arange(n), records.det_image, run))
+
+
+def _image_runs(records, index):
+    """Run labels of ``index``: a run is detections of one class, image and score
+    (NaN equal to NaN), adjacent in ``index``."""
+    key = records.order_key()[index]
+    change = np.ones(len(index), bool)
+    change[1:] = (
+        (records.det_class[index][1:] != records.det_class[index][:-1])
+        | (records.det_image[index][1:] != records.det_image[index][:-1])
+        | ~((key[1:] == key[:-1]) | (np.isnan(key[1:]) & np.isnan(key[:-1])))
+    )
+    return np.cumsum(change)
+
+
+def _duplicated_order(keep, label, w):
     """Detection indices in duplicated accumulation order: each run of tied detections
-    (of one image) repeated w times as a whole, copy after copy."""
-    keep = np.flatnonzero(w > 0)
-    label = records.sparse_outcomes(0)["tie_start"][keep]
+    (of one image; ``label`` marks the runs along ``keep``) repeated w times as a
+    whole, copy after copy."""
     first = np.flatnonzero(np.r_[True, label[1:] != label[:-1]]) if len(keep) else keep
     length = np.diff(np.r_[first, len(keep)])
     copies = w[keep[first]]

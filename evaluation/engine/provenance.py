@@ -117,13 +117,24 @@ def protocol_record(protocol, truth, predictions, records, result):
             "predictions": _prediction_area(predictions),
         },
         "size_ranges": [list(r) for r in protocol.area_ranges],
-        "miss_rate": "every detection in accumulation order, last point at or below each "
-        "of 9 FPPI points 10^-2..10^0, miss rate 1 if none, clamp 1e-10 (Dollar et al.)",
+        "miss_rate": _miss_rate_rule(protocol),
         "operating_point": "cuts between distinct scores; best F1 on raw precision",
         "averaged_classes": [c for c in truth.classes if c not in absent],
         "absent_classes": absent,
         **({"repeated_classes": repeated} if (repeated := _repeated(truth, protocol)) else {}),
     }
+
+
+def _miss_rate_rule(protocol):
+    """How the per-class log-average miss rate reads the detections (``scorecard``,
+    ``operating_point.toolbox_order``): the toolbox's order whatever the tie order."""
+    cap = protocol.max_detections_limit
+    taken = "every detection" if cap is None else f"every detection of the {cap} per image compared"
+    return (
+        f"{taken}, in the toolbox's order (score descending, NaN first, then image "
+        "ascending, then file position), last point at or below each of 9 FPPI points "
+        "10^-2..10^0, miss rate 1 if none, clamp 1e-10 (Dollar et al.)"
+    )
 
 
 #: Why a class counts more than once in every mean over classes (``repeated_classes``).

@@ -154,8 +154,9 @@ def voc_ap(truth, predictions, *, eleven_point, min_overlap=0.5, outcomes=None):
     ``ignore``) as difficult. Boxes here are [x, y, w, h] with x_max = x + w.
 
     With a dict ``outcomes``, ``outcomes[k]`` is set to ``(scores, tp, ignored, npos)``
-    in the devkit's sorted order (a detection on a difficult box is neither TP nor FP:
-    ignored).
+    of the devkit's matching, in the pedestrian toolbox's concatenation order for
+    ``toolbox_miss_rate``: images in order, each image's detections in the devkit's
+    sorted order (a detection on a difficult box is neither TP nor FP: ignored).
     """
     with np.errstate(all="ignore"):  # IEEE arithmetic, as MATLAB's (inf - inf is NaN)
         return _voc_ap(truth, predictions, eleven_point, min_overlap, outcomes)
@@ -216,8 +217,16 @@ def _voc_ap(truth, predictions, eleven_point, min_overlap, outcomes):
             else:
                 fp[d] = 1
         if outcomes is not None:
-            scores = [predictions.score[i] for i in ids]
-            outcomes[k] = (scores, (tp == 1).tolist(), ((tp == 0) & (fp == 0)).tolist(), npos)
+            # in the toolbox's concatenation: images in order (``dt=cat(1,dt{:})``), each
+            # image's detections in the devkit's sorted order (score, then file order)
+            by_image = sorted(range(nd), key=lambda d: predictions.image[ids[d]])  # stable
+            scores = [predictions.score[ids[d]] for d in by_image]
+            outcomes[k] = (
+                scores,
+                [bool(tp[d] == 1) for d in by_image],
+                [bool(tp[d] == 0 and fp[d] == 0) for d in by_image],
+                npos,
+            )
         out[k] = _devkit_ap(tp, fp, npos, eleven_point)
     return out
 

@@ -242,38 +242,74 @@ def test_miss_rate_follows_the_pedestrian_toolbox(files, seed, protocol):
 
 
 @pytest.mark.parametrize("protocol", ["voc07", "voc"])
-def test_miss_rate_ties_follow_file_order_under_voc(files, protocol):
-    """One box on image 1; a false positive on image 2 listed first and the true
-    positive on image 1, tied at 0.9. The devkit's stable sort keeps file order, so
-    the FP comes first (image order would put the TP first and give 1e-10). Hand-worked
-    below, and equal to the toolbox transliteration over the devkit's order."""
+def test_miss_rate_ties_follow_the_toolbox_image_order_under_voc(files, protocol):
+    """One box on image 2; a false positive on image 1 and the true positive on image
+    2, tied at 0.9. The devkit's stable sort keeps file order for AP, but the miss rate
+    is the pedestrian toolbox's (Dollár et al., ``bbGt`` ``compRoc``): images
+    concatenated in order, then a stable sort by score, so the FP on image 1 comes
+    first whichever record the file lists first (red team audit15 F2: the number moved
+    with the order of two records). Hand-worked below, and equal to the toolbox
+    transliteration."""
     split = {
         "images": [{"id": 1, "width": 100, "height": 100}, {"id": 2, "width": 100, "height": 100}],
+        "annotations": [
+            {"id": 1, "image_id": 2, "category_id": 1, "bbox": [10, 10, 20, 20], "area": 400}
+        ],
+        "categories": [{"id": 1, "name": "pedestrian"}],
+    }
+    tp_first = [
+        {"image_id": 2, "category_id": 1, "bbox": [10, 10, 20, 20], "score": 0.9},
+        {"image_id": 1, "category_id": 1, "bbox": [50, 50, 10, 10], "score": 0.9},
+    ]
+    # Curve points (FPPI, recall): (-inf, 0), (0.5, 0), (0.5, 1). References 10^-2 ..
+    # 10^-0.5 (7 of them) are below 0.5: recall 0; 10^-0.25 = 0.56 and 1: recall 1,
+    # clamped to 1e-10 before the log. exp((7 log 1 + 2 log 1e-10) / 9).
+    hand = float(np.exp(2 * np.log(1e-10) / 9))
+    for detections in (tp_first, tp_first[::-1]):
+        truth, predictions = files.load(split, detections)
+        got = evaluate(truth, predictions, protocol)["per_class"]["pedestrian"]["miss_rate"]
+        scores, tp, ignored, n_pos = _oracle_outcomes(truth, predictions, protocol)[0]
+        assert tp == [False, True]  # the toolbox's order: image 1 first on the tie
+        assert got == pytest.approx(hand, rel=1e-12)
+        assert got == pytest.approx(
+            oracle.toolbox_miss_rate(scores, tp, ignored, n_pos, truth.n_images), rel=1e-12
+        )
+    # With the box on image 1 instead, the TP comes first in either file order.
+    split["annotations"][0]["image_id"] = 1
+    moved = [dict(d, image_id=3 - d["image_id"]) for d in tp_first]
+    for detections in (moved, moved[::-1]):
+        truth, predictions = files.load(split, detections)
+        got = evaluate(truth, predictions, protocol)["per_class"]["pedestrian"]["miss_rate"]
+        assert got == pytest.approx(1e-10, rel=1e-9)
+
+
+def test_miss_rate_counts_the_detections_the_protocol_compares(files):
+    """Under ``coco`` only the 100 highest-scoring detections per image are compared
+    (pycocotools' ``maxDets``), so the miss rate's curve holds those only, and the
+    record says so (red team audit15 F2). 101 false positives at 0.9 and the true
+    positive at 0.1 on image 1 of 200: the TP, 102nd, is never compared: miss rate 1
+    at every reference point. Under ``voc`` (no cap) it is read: FPPI 101/200 = 0.505
+    before it, so the seven points below 0.505 read recall 0 and 10^-0.25, 1 read
+    recall 1: exp(2 ln(1e-10) / 9) (Dollár et al.'s rule, hand-worked)."""
+    split = {
+        "images": [{"id": i, "width": 1000, "height": 1000} for i in range(1, 201)],
         "annotations": [
             {"id": 1, "image_id": 1, "category_id": 1, "bbox": [10, 10, 20, 20], "area": 400}
         ],
         "categories": [{"id": 1, "name": "pedestrian"}],
     }
-    fp_first = [
-        {"image_id": 2, "category_id": 1, "bbox": [50, 50, 10, 10], "score": 0.9},
-        {"image_id": 1, "category_id": 1, "bbox": [10, 10, 20, 20], "score": 0.9},
-    ]
-    truth, predictions = files.load(split, fp_first)
-    got = evaluate(truth, predictions, protocol)["per_class"]["pedestrian"]["miss_rate"]
-    scores, tp, ignored, n_pos = _oracle_outcomes(truth, predictions, protocol)[0]
-    assert tp == [False, True]  # the devkit's order: file order on the tie
-    # Curve points (FPPI, recall): (-inf, 0), (0.5, 0), (0.5, 1). References 10^-2 ..
-    # 10^-0.5 (7 of them) are below 0.5: recall 0; 10^-0.25 = 0.56 and 1: recall 1,
-    # clamped to 1e-10 before the log. exp((7 log 1 + 2 log 1e-10) / 9).
-    hand = float(np.exp(2 * np.log(1e-10) / 9))
-    assert got == pytest.approx(hand, rel=1e-12)
-    assert got == pytest.approx(
-        oracle.toolbox_miss_rate(scores, tp, ignored, n_pos, truth.n_images), rel=1e-12
-    )
-    # The same detections with the TP listed first: recall 1 from FPPI 0 on.
-    truth, predictions = files.load(split, fp_first[::-1])
-    got = evaluate(truth, predictions, protocol)["per_class"]["pedestrian"]["miss_rate"]
-    assert got == pytest.approx(1e-10, rel=1e-9)
+    detections = [
+        {"image_id": 1, "category_id": 1, "bbox": [500 + i, 500, 5, 5], "score": 0.9}
+        for i in range(101)
+    ] + [{"image_id": 1, "category_id": 1, "bbox": [10, 10, 20, 20], "score": 0.1}]
+    truth, predictions = files.load(split, detections)
+    coco = evaluate(truth, predictions, "coco")
+    assert coco["per_class"]["pedestrian"]["miss_rate"] == 1.0
+    assert "of the 100 per image compared" in coco["protocol_record"]["miss_rate"]
+    voc = evaluate(truth, predictions, "voc")
+    expected = float(np.exp(2 * np.log(1e-10) / 9))
+    assert voc["per_class"]["pedestrian"]["miss_rate"] == pytest.approx(expected, rel=1e-12)
+    assert voc["protocol_record"]["miss_rate"].startswith("every detection, in the toolbox")
 
 
 def test_file_order_ties_are_exercised(files):
