@@ -59,8 +59,12 @@ _ANNOTATION_LINES = (
     ("unread_dont_care", "don't-care region", "don't-care regions",
      "that cannot be read left out (pycocotools never reads them)"),
     ("iscrowd_text_or_null", "iscrowd value", "iscrowd values",
-     'given as text or null read as pycocotools reads them ("1" a crowd region, "0" an '
-     "ignored box)"),
+     'given as text or null: text int() reads is read as pycocotools reads it ("1" a crowd '
+     'region, "0" an ignored box)'),
+    ("iscrowd_pycocotools_raises", "iscrowd value", "iscrowd values",
+     "of these int() cannot read (null, other text, a list or object) scored all the same "
+     "(null as a regular box, the others as ignored regular boxes), where pycocotools "
+     "raises on such a box it scores"),
     ("unreadable_on_lost_ids", "annotation", "annotations",
      "with a bbox or area pycocotools would raise on left out: their image or category "
      "id is one its np.unique changes, so it never reads them"),

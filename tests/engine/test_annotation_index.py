@@ -537,6 +537,39 @@ def test_iscrowd_given_as_text_is_read_as_pycocotools_reads_it(tmp_path):
     detections = [_det(1, A, 0.9), _det(1, B, 0.8), _det(2, A, 0.7), _det(2, B, 0.6)]
     ours, _ = _compare(tmp_path, split, detections)
     assert ours["counts"]["boxes"]["truth"]["iscrowd_text_or_null"] == 3
+    assert ours["counts"]["boxes"]["truth"]["iscrowd_pycocotools_raises"] == 0
+    with pytest.raises(InputError, match=r"annotations\[0\]: field 'iscrowd'"):
+        load_truth(tmp_path / "truth.json", annotations="strict")
+
+
+@pytest.mark.parametrize("value", [None, "yes", "", [1], {"a": 1}])
+def test_iscrowd_pycocotools_raises_on_is_scored_and_counted_apart(tmp_path, value):
+    """pycocotools 2.0.11's ``computeIoU`` runs ``int(o['iscrowd'])`` on every box of
+    an image and class it scores: null, arrays and objects raise TypeError, text
+    ``int`` does not read ValueError (checked by running it below). Such a value is
+    scored here all the same — falsy ones (null, "") as a regular box, the others as an
+    ignored regular box (``_prepare``'s truthiness) — and counted apart
+    (``iscrowd_pycocotools_raises``), so the split's line does not say pycocotools
+    reads it (red team audit15 F4); ``strict`` refuses it naming record and field."""
+    from .conftest import pycocotools_eval
+
+    split = _split(
+        [
+            {"id": 1, "image_id": 1, "category_id": 1, "bbox": A, "iscrowd": value},
+            {"id": 2, "image_id": 1, "category_id": 1, "bbox": B},
+        ]
+    )
+    (tmp_path / "truth.json").write_text(json.dumps(split))
+    (tmp_path / "predictions.json").write_text(json.dumps([_det(1, A, 0.9), _det(1, B, 0.8)]))
+    with pytest.raises((TypeError, ValueError)):
+        pycocotools_eval(tmp_path / "truth.json", tmp_path / "predictions.json")
+    truth = load_truth(tmp_path / "truth.json")
+    ours = evaluate(truth, load_predictions(tmp_path / "predictions.json", truth), "coco")
+    counted = ours["counts"]["boxes"]["truth"]
+    assert (counted["iscrowd_text_or_null"], counted["iscrowd_pycocotools_raises"]) == (1, 1)
+    # falsy: two regular boxes, both found; truthy: box A ignored, its detection too
+    assert ours["per_class"]["car"]["gt"] == (2.0 if not value else 1.0)
+    assert ours["per_class"]["car"]["AP"] == pytest.approx(1.0)
     with pytest.raises(InputError, match=r"annotations\[0\]: field 'iscrowd'"):
         load_truth(tmp_path / "truth.json", annotations="strict")
 

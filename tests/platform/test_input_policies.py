@@ -120,6 +120,27 @@ def test_the_service_loads_what_pycocotools_accepts_and_records_what_it_left_out
     assert split.box_count == len(messy["annotations"]) - 2
 
 
+def test_iscrowd_values_pycocotools_raises_on_get_their_own_line():
+    """An ``iscrowd`` of null or of text ``int`` cannot read makes pycocotools 2.0.11's
+    ``computeIoU`` raise (``int(o['iscrowd'])``); text it reads (``"1"``) it reads. The
+    split loads, and its lines tell the two apart: none says pycocotools reads a null
+    (red team audit15 F4)."""
+    split = split_dict()
+    split["annotations"][0]["iscrowd"] = None
+    split["annotations"][1]["iscrowd"] = "1"
+    loaded = evaluation_services.load_split(
+        name="ring-road", revision=1, truth=upload("ring-road.json", split)
+    )
+    assert loaded.annotations_left_out == {
+        "iscrowd_text_or_null": 2,
+        "iscrowd_pycocotools_raises": 1,
+    }
+    lines = left_out.of_split(loaded)
+    assert any(line.startswith("2 iscrowd values given as text or null") for line in lines)
+    raises = [line for line in lines if line.startswith("1 iscrowd value of these")]
+    assert raises and "where pycocotools raises" in raises[0], lines
+
+
 def test_images_and_categories_listed_twice_load_as_pycocotools_indexes_them():
     """``COCO.createIndex`` (pycocotools 2.0.11) keeps the last entry of an image or
     category id listed twice and never reads names: such a split loads, its page and

@@ -35,6 +35,8 @@ __all__ = [
 ]
 
 #: Bumped when the parsed columns change shape or meaning: old cache entries are unused.
+#: 34: truth entries count the iscrowd values pycocotools raises on apart
+#: (``iscrowd_pycocotools_raises``);
 #: 33: prediction entries keep each detection's record position where records were
 #: left out or laid out as given (``Predictions.record``);
 #: 32: truth and predictions entries keep a corner format's corners as read where one
@@ -52,7 +54,7 @@ __all__ = [
 #: 24: truth entries keep an annotation's height key (``GroundTruth.height_key``);
 #: 22: label-file and CSV ids are integers of ASCII digits only (``ids.INTEGER``);
 #: 21: truth entries keep the ids np.unique merges (unique_merged_images)
-CACHE_SCHEMA = 33
+CACHE_SCHEMA = 34
 UNKNOWN_CLASS_POLICIES = ("reject", "drop")
 #: Detections of images the split does not hold: refused (default; pycocotools'
 #: ``loadRes`` asserts every result image is in the set) or, for re-scoring stored

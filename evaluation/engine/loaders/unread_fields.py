@@ -18,7 +18,10 @@ the record and the field when the annotation is scored (kept in ``bad``, as a ba
 ``bbox``).
 
 An ``iscrowd`` of text or null, which pycocotools does read, is read as it reads it
-(``crowd_value``) and counted (``iscrowd_text_or_null``).
+(``crowd_value``) and counted (``iscrowd_text_or_null``); those ``int`` cannot read
+(null, other text, arrays, objects), on which pycocotools' ``computeIoU`` raises where
+it scores the box, are scored all the same and counted apart too
+(``iscrowd_pycocotools_raises``), so no line says pycocotools reads them.
 
 Clean files never come here: a slice of records is decoded with the typed records
 first, and only a slice that fails on one of these fields is decoded again loosely.
@@ -43,6 +46,7 @@ COUNTS = (
     "unread_attributes",
     "unread_dont_care",
     "iscrowd_text_or_null",
+    "iscrowd_pycocotools_raises",
 )
 _COUNT_OF = {
     ("images", "width"): "unread_image_sizes",
@@ -117,6 +121,19 @@ _NUMBERS = ("width", "height", "occlusion", "truncation", "visibility", "vis_rat
 
 def _number(value):
     return type(value) in (int, float)
+
+
+def crowd_raises(value):
+    """Whether pycocotools 2.0.11's ``computeIoU`` raises on this ``iscrowd``
+    (``int(o['iscrowd'])``: TypeError for null, arrays and objects, ValueError for text
+    ``int`` does not read), for a value of no number type."""
+    if type(value) is not str:
+        return True
+    try:
+        int(value)
+    except ValueError:
+        return True
+    return False
 
 
 def crowd_value(value):
@@ -315,6 +332,8 @@ def normalise(key, records, counts, base=0, bad=None, city=None):
                 fixed = crowd_value(value) if name == "iscrowd" else _DEFAULTS.get(name)
                 setattr(record, name, fixed)
                 counts[_COUNT_OF[key, name]] += 1
+                if name == "iscrowd" and crowd_raises(value):
+                    counts["iscrowd_pycocotools_raises"] += 1
             elif name == "difficult":
                 setattr(record, name, bool(value))
             elif name == "ignore":  # its value, not only its truth (ignore_key_fraction);
