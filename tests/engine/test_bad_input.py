@@ -715,6 +715,41 @@ def test_a_file_without_record_boundaries_stops_early(files, monkeypatch):
         load_predictions(path, _truth(files))
 
 
+def test_a_record_longer_than_the_reading_limit_is_named_as_such(files, monkeypatch):
+    """A valid file whose one record (a long polygon beside its box) is longer than the
+    reader's piece limit: pycocotools 2.0.11 reads the file whole and would score it,
+    so the message says the record is too long for this reader, not only that the file
+    is no ground-truth or detections file (red team audit15 F3)."""
+    from evaluation.engine.loaders import json_syntax
+
+    monkeypatch.setattr(results_stream, "CHUNK_BYTES", 1024)
+    monkeypatch.setattr(results_stream, "MAX_SLICE_BYTES", 8 * 1024)
+    monkeypatch.setattr(json_syntax, "CHUNK_BYTES", 1024)
+    monkeypatch.setattr(json_syntax, "MAX_PIECE_BYTES", 8 * 1024)
+    polygon = [[float(i % 97) for i in range(20_000)]]
+    detections = [
+        {"image_id": 1, "category_id": 1, "bbox": [1, 1, 5, 5], "score": 0.5},
+        {"image_id": 1, "category_id": 1, "bbox": [1, 1, 5, 5], "score": 0.4,
+         "segmentation": polygon},
+    ]  # fmt: skip
+    path = files.write("long_polygon.json", json.dumps(detections))
+    with pytest.raises(InputError, match=r"record 1: .*a record longer than .* is not read"):
+        load_predictions(path, _truth(files))
+    split = {
+        "images": [{"id": 1, "width": 9, "height": 9}],
+        "annotations": [
+            {"id": 1, "image_id": 1, "category_id": 1, "bbox": [1, 1, 5, 5], "area": 25,
+             "iscrowd": 0, "segmentation": polygon},
+        ],
+        "categories": [{"id": 1, "name": "a"}],
+    }  # fmt: skip
+    path = files.write("long_truth.json", json.dumps(split))
+    with pytest.raises(
+        InputError, match=r"long_truth\.json: .*a record longer than .* is not read"
+    ):
+        load_truth(path)
+
+
 def test_cache_keeps_box_policies_apart(files, tmp_path):
     """A split cached under keep is not served to reject (the policy is in the key)."""
     cache = tmp_path / "cache"

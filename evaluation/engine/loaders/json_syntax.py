@@ -302,7 +302,9 @@ def check(path, f, skip, sink=None):
                     raise InputError(
                         path,
                         f"no record ends within {MAX_PIECE_BYTES >> 20} MB of the array "
-                        f"opened at line {line}, column {column}: not a ground-truth file",
+                        f"opened at line {line}, column {column}: a record longer than "
+                        f"{MAX_PIECE_BYTES >> 20} MB is not read (this reader's limit; "
+                        "pycocotools reads the file whole), or this is no ground-truth file",
                     )
                 if len(commas):
                     cut = start + int(commas[-1]) - pos

@@ -334,6 +334,8 @@ def _check_prefix(path, buf, where, base, mode, scan):
 def _too_long(path, record):
     return InputError(
         path,
-        f"no record ends within {MAX_SLICE_BYTES >> 20} MB: not a detections file",
+        f"no record ends within {MAX_SLICE_BYTES >> 20} MB: a record longer than "
+        f"{MAX_SLICE_BYTES >> 20} MB is not read (this reader's limit; pycocotools reads "
+        "the file whole), or this is no detections file",
         record=f"record {record}",
     )
