@@ -236,6 +236,22 @@ class DecisionError(ValueError):
     """A sign-off the rules do not allow; the message says why."""
 
 
+def _decided_on(evaluation):
+    """What a sign-off's evidence keeps of how an evaluation's numbers were computed
+    (``selectors.stored_provenance``); an evaluation without a result keeps its id
+    and requested box policy, and says it has no record."""
+    if evaluation.state == "done":
+        return selectors.stored_provenance(evaluation.scorecard)
+    return {
+        "evaluation": evaluation.pk,
+        "box_policy": evaluation.box_policy,
+        "protocol_record": None,
+        "not_recorded": {
+            "protocol_record": f"no stored result: the evaluation is {evaluation.state}"
+        },
+    }
+
+
 def sign_off(version, user, decision, comment, *, justification=""):
     """Record a lead's decision on a candidate; approval makes it the baseline.
 
@@ -304,6 +320,9 @@ def sign_off(version, user, decision, comment, *, justification=""):
                     "state": e.state,
                     "engine_version": e.engine_version,
                     "AP": e.scorecard.summary.get("AP") if e.state == "done" else None,
+                    # how that AP was computed, as its stored result says (the
+                    # protocol record, box policy, ...): kept with the decision
+                    **_decided_on(e),
                 }
                 for e in verdict.evaluations
             ],

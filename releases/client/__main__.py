@@ -240,6 +240,8 @@ def _print_verdict(api, version_id, verdict, out):
     results = api.get(f"versions/{version_id}/results/")
     if results["splits"]:
         out.write("\n" + render.summary_table(results) + "\n")
+        for line in render.provenance_lines(results):  # how the numbers were computed
+            out.write(line + "\n")
         for entry in results["splits"]:  # what the reference reading left out
             for line in entry.get("left_out", []):
                 out.write(f"{entry['split_name']}: {line}\n")

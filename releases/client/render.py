@@ -79,6 +79,25 @@ def summary_table(results):
     return table(["split", "protocol", *keys], rows)
 
 
+def provenance_lines(results):
+    """Per scored split, one line per protocol saying how its numbers were computed:
+    protocol version, box policy, engine version (``/results/``' stored record; a
+    server that does not give them prints nothing)."""
+    lines = []
+    for entry in results["splits"]:
+        if not entry["scored"] or "box_policy" not in entry:
+            continue
+        shown = [(entry["protocol"], entry)]
+        shown += sorted(entry.get("other_protocols_provenance", {}).items())
+        for protocol, p in shown:
+            lines.append(
+                f"{entry['split_name']}: {protocol} v{p['protocol_version']}, "
+                f"boxes {p['box_policy'] or '—'}, engine {p['engine_version']}"
+                + "".join(f"; {key}: {why}" for key, why in p.get("not_recorded", {}).items())
+            )
+    return lines
+
+
 def outcomes_table(outcomes):
     order = {"fail": 0, "missing": 0, "not significant": 1, "no data": 2, "pass": 3}
     rows = [

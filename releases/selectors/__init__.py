@@ -56,6 +56,9 @@ from .overview import (  # noqa: F401
     overview_for,
     split_usage,
 )
+from .provenance import (  # noqa: F401
+    stored_provenance,
+)
 from .rescore import (  # noqa: F401
     can_rescore,
     rescore_choices,
@@ -78,5 +81,6 @@ from .version import (  # noqa: F401
     replaced_sets,
     shown_suite,
     verdict_page,
+    version_results,
     version_scorecards,
 )

@@ -8,7 +8,11 @@ from .version import shown_suite, version_scorecards
 
 
 def evidence_for(version):
-    """Everything a reviewer needs about one version, JSON-serialisable."""
+    """Everything a reviewer needs about one version, JSON-serialisable: per split
+    the primary scorecard's numbers with the evaluation, hashes and how they were
+    computed (``provenance.stored_provenance``: the stored protocol record, box
+    policy, engine version, ground-truth fingerprint), and the other protocols'
+    numbers with theirs."""
     from django.conf import settings as django_settings
 
     from evaluation.engine import ENGINE_VERSION
@@ -52,10 +56,17 @@ def evidence_for(version):
                 "engine_version": card.engine_version,
                 "split_sha256": card.split_sha256,
                 "predictions_sha256": card.predictions_sha256,
+                # how the numbers were computed, as the stored result says: the
+                # protocol record (box policy included), fingerprint, ...
+                **entry["provenance"],
                 "summary": dict(summary_items(card.summary)),
                 "classes": classes,
                 "absent_classes": dict(entry["absent"]),
                 "deployed": _deployed(entry["deployed"]),
+                # the other protocols' headline AP and level tables, each with its own
+                "other_protocols": {p: ap for p, ap in entry["others"]},
+                "levels": entry["levels"],
+                "other_protocols_provenance": entry["other_provenance"],
             }
         )
     decision = getattr(version, "sign_off", None)

@@ -2,7 +2,15 @@
 
 from ..class_thresholds import of_class, row_of
 from . import miss_rate
-from .scores import _class_rows, _scorecards, absent_classes, class_row, summary_items
+from .provenance import stored_provenance
+from .scores import (
+    _class_rows,
+    _scorecards,
+    absent_classes,
+    class_numbers,
+    class_row,
+    summary_items,
+)
 
 
 def version_scorecards(version, suite=None):
@@ -10,8 +18,11 @@ def version_scorecards(version, suite=None):
     every other protocol, the miss-rate-versus-FPPI charts of the pedestrian setups
     (``miss_rate``), each difficulty-level protocol's table (``levels.level_table``),
     and (``deployed``) precision, recall and F1 at the deployed
-    score threshold(s) of ``suite`` (default: the detector's current suite). A fixed
-    number of queries (plus one match-records file read per scored split)."""
+    score threshold(s) of ``suite`` (default: the detector's current suite); how each
+    was computed, as its stored result says (``provenance``: the primary scorecard's,
+    ``other_provenance``: ``{protocol: ...}`` of the others, level protocols too;
+    ``provenance.stored_provenance``). A fixed number of queries (plus one
+    match-records file read per scored split)."""
     from evaluation import left_out, levels
     from evaluation.models import SliceScore
 
@@ -68,6 +79,12 @@ def version_scorecards(version, suite=None):
                     for p in detector.protocols
                     if levels.get(p) and (ps.pk, p) in cards
                 ],
+                "provenance": stored_provenance(card) if card else None,
+                "other_provenance": {
+                    p: stored_provenance(cards[(ps.pk, p)])
+                    for p in detector.protocols
+                    if p != detector.primary_protocol and (ps.pk, p) in cards
+                },
                 "deployed": deployed_numbers(card, suite, detector.classes) if card else None,
                 "miss_rate": miss_rate.version_charts(version, cards, ps),
                 # what the reference reading left out of the split and of this file
@@ -76,6 +93,50 @@ def version_scorecards(version, suite=None):
             }
         )
     return out
+
+
+def version_results(version):
+    """The API's ``/versions/<id>/results/``: per split of the version's current
+    prediction sets, the primary protocol's summary, per-class rows, slices, the
+    headline AP of each other protocol (``other_protocols``) and each level protocol's
+    table, and how every one of those numbers was computed, as its stored result
+    says: the primary's ``protocol_record``, ``box_policy``, ``engine_version``,
+    ``truth_fingerprint``, ... beside its numbers, each other protocol's (level ones
+    too) in ``other_protocols_provenance`` keyed by protocol
+    (``provenance.stored_provenance``; ``not_recorded`` says what an older result
+    lacks)."""
+    out = []
+    for entry in version_scorecards(version):
+        card = entry["card"]
+        row = {
+            "split": entry["split"].pk,
+            "split_name": str(entry["split"]),
+            "prediction_set": entry["prediction_set"].pk,
+            "scored": card is not None,
+            # what the reference reading left out of the split and of this file
+            "left_out": entry["left_out"],
+        }
+        if card is not None:
+            row.update(
+                {
+                    "evaluation": card.evaluation_id,
+                    "protocol": card.protocol,
+                    **entry["provenance"],
+                    "summary": dict(entry["summary"]),
+                    "classes": [class_numbers(c) for c in entry["classes"] if c is not None],
+                    # classes without an AP, and why (the engine's words)
+                    "absent_classes": dict(entry["absent"]),
+                    "tags": dict(entry["tags"]),
+                    "sizes": dict(entry["sizes"]),
+                    "other_protocols": {p: ap for p, ap in entry["others"]},
+                    # level protocols (kitti2d, miss-rate): per level x class
+                    "levels": entry["levels"],
+                    # how each other number (other_protocols, levels) was computed
+                    "other_protocols_provenance": entry["other_provenance"],
+                }
+            )
+        out.append(row)
+    return {"version": version.pk, "label": version.label, "splits": out}
 
 
 def shown_suite(version, verdict):

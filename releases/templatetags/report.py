@@ -31,3 +31,9 @@ def when(value):
     if moment.tzinfo is not None:
         moment = moment.astimezone(datetime.UTC)
     return moment.strftime("%Y-%m-%d %H:%M UTC")
+
+
+@register.filter
+def item(mapping, key):
+    """``mapping[key]``, or None (a template cannot index a dict by a variable)."""
+    return (mapping or {}).get(key)

@@ -86,6 +86,9 @@ def test_a_pipeline_gates_on_the_verdict(
         "1.0: pass (no release criteria set)" in out and "AP50" in out and "bay-night rev 1" in out
     )
     assert f"scorecard: {live_server.url}/versions/" in out
+    # how each protocol's numbers were computed (the stored record, red team audit15 F5)
+    assert "bay-night rev 1: coco v" in out and "bay-night rev 1: voc v" in out
+    assert ", boxes keep, engine " in out
     assert "[##############################] 100%" in err  # the progress bar, in a log
 
     # The lead approves 1.0 and sets criteria, with the same client's server.

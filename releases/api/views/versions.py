@@ -126,40 +126,18 @@ class VersionResults(Endpoint, APIView):
         responses=OpenApiTypes.OBJECT,
         summary="Per split: the primary protocol's summary, per-class rows and slices, "
         "and each level protocol's values per level and class",
+        description="Beside each number, how it was computed, as its stored result says: "
+        "the primary protocol's ``protocol_record`` (the engine's full record: matching "
+        "rule, IoU slots and per-class values, recall sampling, interpolation, detection "
+        "cap, tie order, pixel offset, box policy, area source, averaged and absent "
+        "classes and why), ``box_policy``, ``engine_version``, ``truth_fingerprint``, "
+        "``protocol_sha256``, ``protocol_version``; each other protocol's (those of "
+        "``other_protocols`` and ``levels``) in ``other_protocols_provenance``, keyed by "
+        "protocol. A result stored by an older engine lacks some: they are null, and "
+        "``not_recorded`` says why (``{key: reason}``).",
     )
     def get(self, request, pk):
-        found = _version(request, pk)
-        out = []
-        for entry in selectors.version_scorecards(found):
-            card = entry["card"]
-            row = {
-                "split": entry["split"].pk,
-                "split_name": str(entry["split"]),
-                "prediction_set": entry["prediction_set"].pk,
-                "scored": card is not None,
-                # what the reference reading left out of the split and of this file
-                "left_out": entry["left_out"],
-            }
-            if card is not None:
-                row.update(
-                    {
-                        "evaluation": card.evaluation_id,
-                        "protocol": card.protocol,
-                        "summary": dict(entry["summary"]),
-                        "classes": [
-                            selectors.class_numbers(c) for c in entry["classes"] if c is not None
-                        ],
-                        # classes without an AP, and why (the engine's words)
-                        "absent_classes": dict(entry["absent"]),
-                        "tags": dict(entry["tags"]),
-                        "sizes": dict(entry["sizes"]),
-                        "other_protocols": {p: ap for p, ap in entry["others"]},
-                        # level protocols (kitti2d, miss-rate): per level x class
-                        "levels": entry["levels"],
-                    }
-                )
-            out.append(row)
-        return Response({"version": found.pk, "label": found.label, "splits": out})
+        return Response(selectors.version_results(_version(request, pk)))
 
 
 class EvidenceRenderer(renderers.StaticHTMLRenderer):
@@ -188,6 +166,12 @@ class VersionEvidence(Endpoint, APIView):
         ],
         responses={(200, "application/json"): OpenApiTypes.OBJECT, (200, "text/html"): str},
         summary="The evidence report: scores, intervals, outcomes, hashes, decision",
+        description="Per split, beside the primary protocol's numbers, how they were "
+        "computed as the stored result says (``evaluation``, ``protocol_record`` with "
+        "its box policy, ``box_policy``, ``engine_version``, ``truth_fingerprint``, "
+        "``protocol_sha256``; ``not_recorded``: what an older result lacks, and why), "
+        "and the other protocols' numbers (``other_protocols``, ``levels``) with theirs "
+        "(``other_protocols_provenance``, keyed by protocol), as ``/results/`` gives them.",
     )
     def get(self, request, pk):
         found = _version(request, pk)
