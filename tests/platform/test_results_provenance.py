@@ -46,6 +46,16 @@ def _scored(detector, version, split, split_truth, users, run_tasks, policy):
     return {card.protocol: card for card in cards.select_related("evaluation")}
 
 
+def _page(user, version):
+    from django.test import Client
+
+    client = Client()
+    client.force_login(user)
+    response = client.get(f"/versions/{version.pk}/")
+    assert response.status_code == 200
+    return response.content.decode()
+
+
 def _assert_as_stored(given, card, policy):
     """``given`` holds the stored result's record, engine version and fingerprint."""
     for key in PROVENANCE:
@@ -88,6 +98,11 @@ def test_results_evidence_and_sign_off_carry_each_stored_record(
     html = engineer.get(f"{API}versions/{version.pk}/evidence/", {"format": "html"})
     text = html.content.decode()
     assert f"boxes {policy}" in text and cards["coco"].result["truth_fingerprint"] in text
+
+    # The version page's provenance names the box policy and links the full record.
+    page = _page(users["engineer"], version)
+    assert f'<dd class="box-policy">{policy}</dd>' in page
+    assert f'href="{API}evaluations/{cards["coco"].evaluation_id}/result/"' in page
 
     # The pipeline client prints a line per protocol saying so.
     lines = render.provenance_lines(results)
@@ -150,5 +165,7 @@ def test_a_result_of_an_older_engine_shows_what_it_holds_and_says_what_it_lacks(
         assert given["box_policy"] == "keep"  # the evaluation's column
         assert "the evaluation's own policy" in given["not_recorded"]["box_policy"]
         assert given["engine_version"] == cards["coco"].engine_version
+    page = _page(users["engineer"], version)
+    assert "the evaluation&#x27;s own policy" in page and "since engine 2.4.0" in page
     line = render.provenance_lines({"splits": [entry]})[0]
     assert "protocol_record: the stored result" in line
