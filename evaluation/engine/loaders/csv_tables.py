@@ -13,9 +13,12 @@ A header row is required; column order is free and other columns are ignored. Ro
 are read in blocks of ``BLOCK_ROWS`` and converted to arrays block by block, so a
 large file never exists as Python strings all at once. Errors name the line number
 (physical lines, as ``csv.reader`` counts them: a quoted cell over two lines counts two).
+A file larger than ``VALIDATE_FIRST_BYTES`` is read once keeping nothing before its
+columns are kept (``_checked``), so rejecting it takes one block's memory.
 """
 
 import csv
+import os
 import re
 
 import numpy as np
@@ -25,6 +28,13 @@ from ..errors import InputError
 from .checks import text_start
 
 BLOCK_ROWS = 100_000
+#: A table larger than this is first read through, each block split into rows and
+#: converted and then dropped, before the pass that keeps the columns: so a row cut
+#: short, a cell that is no number or a byte that is not UTF-8 late in a large file is
+#: rejected at one block's memory, not the columns before it (about 4.7 times the
+#: text: Python strings for ids and labels). Below it those columns stay under
+#: ~150 MB. The same rule for detections, boxes and images tables.
+VALIDATE_FIRST_BYTES = 32 << 20
 DETECTION_COLUMNS = ("image_id", "label", "x_min", "y_min", "x_max", "y_max", "score")
 BOX_COLUMNS = ("image_id", "label", "x_min", "y_min", "x_max", "y_max")
 BOX_OPTIONAL = ("crowd", "difficult", "ignore", "area", "dont_care")
@@ -196,6 +206,20 @@ def _corner_boxes(path, block, lines):
     ).reshape(-1, 4)
 
 
+def _checked(path, blocks):
+    """The blocks ``blocks(path)`` gives; for a file over ``VALIDATE_FIRST_BYTES``,
+    read once first keeping none of them, so any error it holds is raised from that
+    pass (the same error, as the same code raises it) before any column is kept."""
+    try:
+        large = os.path.getsize(path) > VALIDATE_FIRST_BYTES
+    except OSError:  # read_blocks names it
+        large = False
+    if large:
+        for _ in blocks(path):
+            pass
+    return blocks(path)
+
+
 def detection_blocks(path):
     """``(image ids, labels, xywh boxes, scores, line numbers, corners as read)`` of a
     detections CSV, a block of ``BLOCK_ROWS`` records at a time."""
@@ -215,7 +239,7 @@ def read_detections(path):
     """Columns of a detections CSV: image ids (str), labels, xywh boxes, scores, lines,
     corners as read."""
     ids, labels, boxes, scores, lines, corners = [], [], [], [], [], []
-    for block in detection_blocks(path):
+    for block in _checked(path, detection_blocks):
         ids.extend(block[0])
         labels.extend(block[1])
         for column, value in zip((boxes, scores, lines, corners), block[2:]):
@@ -227,32 +251,45 @@ def read_detections(path):
     return (ids, labels, *columns)
 
 
-def read_boxes(path):
-    """Columns of a ground-truth boxes CSV."""
-    numeric = ("area", *ATTRIBUTE_COLUMNS)
-    flags = ("crowd", "difficult", "ignore", "dont_care")
-    out = {k: [] for k in ("image_id", "label", "corners", *flags, *numeric, "area_given", "lines")}
+_FLAGS = ("crowd", "difficult", "ignore", "dont_care")
+_NUMERIC = ("area", *ATTRIBUTE_COLUMNS)
+
+
+def box_blocks(path):
+    """The columns of a ground-truth boxes CSV a block of ``BLOCK_ROWS`` rows at a
+    time: a dict of image ids and labels (str lists) and arrays."""
     for block, lines in read_blocks(path, BOX_COLUMNS, BOX_OPTIONAL + ATTRIBUTE_COLUMNS):
         n = len(lines)
-        out["image_id"].extend(block["image_id"])
-        out["label"].extend(block["label"])
-        out["corners"].append(_corner_boxes(path, block, lines))
-        for flag in flags:
-            out[flag].append(
+        out = {"image_id": block["image_id"], "label": block["label"]}
+        out["corners"] = _corner_boxes(path, block, lines)
+        for flag in _FLAGS:
+            out[flag] = (
                 _flags(path, block[flag], lines, flag) if flag in block else np.zeros(n, bool)
             )
-        for name in numeric:  # empty or absent: not given (NaN)
+        for name in _NUMERIC:  # empty or absent: not given (NaN)
             if name in block:
                 values = [v if v else "nan" for v in block[name]]
-                out[name].append(_floats(path, values, lines, name))
+                out[name] = _floats(path, values, lines, name)
             else:
-                out[name].append(np.full(n, np.nan))
+                out[name] = np.full(n, np.nan)
         # an area cell written as nan is a NaN area, as in pycocotools; empty: none
-        out["area_given"].append(np.array([bool(v) for v in block.get("area", [""] * n)], bool))
-        out["lines"].append(np.array(lines, np.int64))
+        out["area_given"] = np.array([bool(v) for v in block.get("area", [""] * n)], bool)
+        out["lines"] = np.array(lines, np.int64)
+        yield out
+
+
+def read_boxes(path):
+    """Columns of a ground-truth boxes CSV."""
+    out = {k: [] for k in ("image_id", "label", "corners", *_FLAGS, *_NUMERIC, "area_given")}
+    out["lines"] = []
+    for block in _checked(path, box_blocks):
+        out["image_id"].extend(block["image_id"])
+        out["label"].extend(block["label"])
+        for key in ("corners", *_FLAGS, *_NUMERIC, "area_given", "lines"):
+            out[key].append(block[key])
     empty = {"corners": np.zeros((0, 4)), "area_given": np.zeros(0, bool)}
-    empty.update({**dict.fromkeys(flags, empty["area_given"]), "lines": np.zeros(0, np.int64)})
-    for key in ("corners", *flags, *numeric, "area_given", "lines"):  # no rows: typed empties
+    empty.update({**dict.fromkeys(_FLAGS, empty["area_given"]), "lines": np.zeros(0, np.int64)})
+    for key in ("corners", *_FLAGS, *_NUMERIC, "area_given", "lines"):  # no rows: typed empties
         out[key] = np.concatenate(out[key]) if out[key] else empty.get(key, np.zeros(0))
     out["boxes"] = from_corners(out["corners"])  # the corners kept beside: said_corners
     return out
@@ -267,15 +304,29 @@ def _sizes(path, block, lines, field):
     return _floats(path, [v if v else "nan" for v in block[field]], lines, field)
 
 
+def image_blocks(path):
+    """An images table a block at a time: ids (str), widths, heights, tags, lines."""
+    for block, block_lines in read_blocks(path, IMAGE_COLUMNS, IMAGE_OPTIONAL):
+        raw = block.get("tags", [""] * len(block_lines))
+        yield (
+            block["image_id"],
+            _sizes(path, block, block_lines, "width"),
+            _sizes(path, block, block_lines, "height"),
+            [tuple(t.strip() for t in value.split(";") if t.strip()) for value in raw],
+            block_lines,
+        )
+
+
 def read_images(path):
     """Columns of an images table: ids (str), widths, heights, tags, lines."""
     ids, widths, heights, tags, lines = [], [], [], [], []
-    for block, block_lines in read_blocks(path, IMAGE_COLUMNS, IMAGE_OPTIONAL):
-        ids.extend(block["image_id"])
-        widths.append(_sizes(path, block, block_lines, "width"))
-        heights.append(_sizes(path, block, block_lines, "height"))
-        raw = block.get("tags", [""] * len(block_lines))
-        tags.extend(tuple(t.strip() for t in value.split(";") if t.strip()) for value in raw)
+    for block_ids, block_widths, block_heights, block_tags, block_lines in _checked(
+        path, image_blocks
+    ):
+        ids.extend(block_ids)
+        widths.append(block_widths)
+        heights.append(block_heights)
+        tags.extend(block_tags)
         lines.extend(block_lines)
     if not ids:
         raise InputError(path, "the images table lists no images")
