@@ -125,7 +125,8 @@ def test_a_large_file_is_refused_holding_no_block(tmp_path, monkeypatch, watched
     shortest = min(len(line) + 1 for line in path.read_bytes().split(b"\n")[1:-1])
     ahead = 8192 // shortest + 10 if brk == "not UTF-8" else 0
     assert kept >= per_block * max(0, (at - ahead) // 10)
-    # ... the checked read at most the block it last dropped, whatever the position
+    # ... the checked read at most the last block its reader gave (a generator's
+    # local, in the traceback), whatever the position
     assert held <= per_block
 
 

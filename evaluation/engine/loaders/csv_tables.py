@@ -17,6 +17,7 @@ A file larger than ``VALIDATE_FIRST_BYTES`` is read once keeping nothing before 
 columns are kept (``_checked``), so rejecting it takes one block's memory.
 """
 
+import collections
 import csv
 import os
 import re
@@ -214,9 +215,8 @@ def _checked(path, blocks):
         large = os.path.getsize(path) > VALIDATE_FIRST_BYTES
     except OSError:  # read_blocks names it
         large = False
-    if large:
-        for _ in blocks(path):
-            pass
+    if large:  # consumed holding no block (not even the last) into the next pass
+        collections.deque(blocks(path), maxlen=0)
     return blocks(path)
 
 
