@@ -1,9 +1,10 @@
 """Benchmark: peak memory while the engine rejects a large malformed file.
 
-    python bench/malformed_memory.py [--sizes 50 400]   (megabytes)
+    python bench/malformed_memory.py [--sizes 50 400] [--formats json csv]   (megabytes)
 
-Writes malformed COCO-style files of each size (a valid split beside them) and loads
-each in a fresh process, reading that process's peak resident memory (``ru_maxrss``):
+Writes malformed COCO-style and CSV files of each size (a valid split beside them)
+and loads each in a fresh process, reading that process's peak resident memory
+(``ru_maxrss``):
 
 * ``truncated``: predictions and ground truth cut off mid-record (no closing bracket).
   Predictions are read in slices of a few MB; ground truth that does not end like an
@@ -26,6 +27,17 @@ each in a fresh process, reading that process's peak resident memory (``ru_maxrs
   full length and each slice is written in place: about one copy of the columns
   (smaller files join their slices' columns: briefly two).
 
+CSV (``loaders/csv_tables.py``): detections (``image_id,label,x_min,...,score``)
+and a split's boxes table (an images table of one image beside it).
+
+* ``truncated``: the last row cut short (fewer fields than the header);
+* ``late type error``: a cell that is no number in the last row;
+* ``valid``: loaded.
+
+A table larger than ``csv_tables.VALIDATE_FIRST_BYTES`` (32 MB) is read through
+keeping nothing before its columns are kept, so the first two stay flat; the columns
+of a valid file (Python strings for ids and labels) are about 4-6 times its text.
+
 Fails (exit 1) if a truncated file's peak grows by more than 64 MB from the smallest
 to the largest size.
 """
@@ -46,10 +58,10 @@ import resource, sys
 sys.path.insert(0, {root!r})
 from evaluation.engine import InputError, load_predictions, load_truth
 try:
-    if {kind!r} == "predictions":
+    if {kind!r}.startswith("predictions"):
         load_predictions({path!r}, load_truth({truth!r}))
     else:
-        load_truth({path!r})
+        load_truth({path!r}, images={images!r})
     print("no error")
 except InputError as e:
     print("rejected:", e.message)
@@ -74,13 +86,36 @@ CASES = {
     ("truth", "late type error"): '{"id": "x", "image_id": 1, "category_id": 1, '
     '"bbox": [1, 2, 3, 4]}]}\n',
     ("truth", "valid"): '{"id": 0, "image_id": 1, "category_id": 1, "bbox": [1, 2, 3, 4]}]}\n',
+    ("predictions CSV", "truncated"): "1,pedestrian,10.5",
+    ("predictions CSV", "late type error"): "1,pedestrian,x,20.25,40.5,60.25,0.5\n",
+    ("predictions CSV", "valid"): "1,pedestrian,1,2,4,6,0.5\n",
+    ("truth CSV", "truncated"): "1,pedestrian,10.5",
+    ("truth CSV", "late type error"): "1,pedestrian,x,20.25,40.5,60.25\n",
+    ("truth CSV", "valid"): "1,pedestrian,1,2,4,6\n",
 }
+CSV_ROWS = {
+    "predictions CSV": (
+        "image_id,label,x_min,y_min,x_max,y_max,score\n",
+        "1,pedestrian,10.5,20.25,40.5,60.25,0.5\n",
+    ),
+    "truth CSV": (
+        "image_id,label,x_min,y_min,x_max,y_max\n",
+        "1,pedestrian,10.5,20.25,40.5,60.25\n",
+    ),
+}
+IMAGES_CSV = "image_id,width,height\n1,640,480\n"
 
 
 def write_malformed(path, megabytes, kind, case):
     target = megabytes * MB
     with open(path, "w") as f:
-        if kind == "predictions":
+        if kind in CSV_ROWS:
+            header, row = CSV_ROWS[kind]
+            f.write(header)
+            block = row * 10_000
+            while f.tell() < target:
+                f.write(block)
+        elif kind == "predictions":
             f.write("[\n")
             block = DET * 10_000
             while f.tell() < target:
@@ -95,8 +130,10 @@ def write_malformed(path, megabytes, kind, case):
         f.write(CASES[kind, case])  # nothing more for "truncated"
 
 
-def measure(kind, path, truth):
-    code = CHILD.format(root=str(ROOT), kind=kind, path=str(path), truth=str(truth))
+def measure(kind, path, truth, images):
+    code = CHILD.format(
+        root=str(ROOT), kind=kind, path=str(path), truth=str(truth), images=str(images)
+    )
     out = subprocess.run(
         [sys.executable, "-c", code], capture_output=True, text=True, check=True
     ).stdout.split("\n")
@@ -106,9 +143,13 @@ def measure(kind, path, truth):
 def main(argv=None):
     parser = argparse.ArgumentParser()
     parser.add_argument("--sizes", type=int, nargs="+", default=[50, 400])
+    parser.add_argument("--formats", nargs="+", choices=["json", "csv"], default=["json", "csv"])
     args = parser.parse_args(argv)
+    cases = [(k, c) for k, c in CASES if ("csv" if k in CSV_ROWS else "json") in args.formats]
     peaks = {}
     with tempfile.TemporaryDirectory() as work:
+        images = os.path.join(work, "images.csv")
+        pathlib.Path(images).write_text(IMAGES_CSV)
         truth = os.path.join(work, "truth.json")
         pathlib.Path(truth).write_text(
             json.dumps(
@@ -119,19 +160,20 @@ def main(argv=None):
                 }
             )
         )
-        for kind, case in CASES:
+        for kind, case in cases:
             for size in args.sizes:
-                path = os.path.join(work, f"{kind}-{size}.json")
+                suffix = "csv" if kind in CSV_ROWS else "json"
+                path = os.path.join(work, f"{kind.split()[0]}-{size}.{suffix}")
                 write_malformed(path, size, kind, case)
-                outcome, peak = measure(kind, path, truth)
+                outcome, peak = measure(kind, path, truth, images)
                 os.remove(path)
                 peaks[kind, case, size] = (peak, outcome)
-    print(f"peak RSS MB while loading    | {' | '.join(f'{s} MB file' for s in args.sizes)}")
-    for kind, case in CASES:
+    print(f"peak RSS MB while loading          | {' | '.join(f'{s} MB file' for s in args.sizes)}")
+    for kind, case in cases:
         row = " | ".join(str(peaks[kind, case, s][0]) for s in args.sizes)
-        print(f"{kind + ', ' + case:<29}| {row}   ({peaks[kind, case, args.sizes[-1]][1]})")
+        print(f"{kind + ', ' + case:<35}| {row}   ({peaks[kind, case, args.sizes[-1]][1]})")
     worst = 0
-    for kind in ("predictions", "truth"):
+    for kind in sorted({k for k, c in cases if c == "truncated"}):
         growth = peaks[kind, "truncated", max(args.sizes)][0]
         growth -= peaks[kind, "truncated", min(args.sizes)][0]
         print(
