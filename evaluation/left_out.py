@@ -63,8 +63,9 @@ _ANNOTATION_LINES = (
      'region, "0" an ignored box)'),
     ("iscrowd_pycocotools_raises", "iscrowd value", "iscrowd values",
      "of these int() cannot read (null, other text, a list or object) scored all the same "
-     "(null as a regular box, the others as ignored regular boxes), where pycocotools "
-     "raises on such a box it scores"),
+     '(null, "", [] and {} as regular boxes, the others as ignored regular boxes, as '
+     "pycocotools' truthiness reads them), where pycocotools raises on such a box it "
+     "scores"),
     ("unreadable_on_lost_ids", "annotation", "annotations",
      "with a bbox or area pycocotools would raise on left out: their image or category "
      "id is one its np.unique changes, so it never reads them"),

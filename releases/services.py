@@ -236,6 +236,18 @@ class DecisionError(ValueError):
     """A sign-off the rules do not allow; the message says why."""
 
 
+def _headline(evaluation):
+    """The number a sign-off keeps of an evaluation: ``AP`` (None when not scored or
+    when the protocol has none), and for a level protocol its headline level and, for
+    the miss-rate setups, ``miss_rate`` (lower is better; red team audit16 F5)."""
+    summary = evaluation.scorecard.summary if evaluation.state == "done" else {}
+    kept = {"AP": summary.get("AP")}
+    for key in ("miss_rate", "level"):
+        if key in summary:
+            kept[key] = summary[key]
+    return kept
+
+
 def _decided_on(evaluation):
     """What a sign-off's evidence keeps of how an evaluation's numbers were computed
     (``selectors.stored_provenance``); an evaluation without a result keeps its id
@@ -319,8 +331,8 @@ def sign_off(version, user, decision, comment, *, justification=""):
                     "protocol": e.protocol,
                     "state": e.state,
                     "engine_version": e.engine_version,
-                    "AP": e.scorecard.summary.get("AP") if e.state == "done" else None,
-                    # how that AP was computed, as its stored result says (the
+                    **_headline(e),
+                    # how that number was computed, as its stored result says (the
                     # protocol record, box policy, ...): kept with the decision
                     **_decided_on(e),
                 }

@@ -215,9 +215,12 @@ class MatchRecords:
             return {"tie_start": np.arange(n), "tie_end": np.arange(1, n + 1)}
         change = np.ones(n, bool)
         key = self.order_key()
+        # NaN scores tie with each other (pycocotools' stable sorts keep them in
+        # order, last): one run, or an image's copies would interleave them
+        # (red team audit16 F1)
         change[1:] = (
             (self.det_class[1:] != self.det_class[:-1])
-            | (key[1:] != key[:-1])
+            | ((key[1:] != key[:-1]) & ~(np.isnan(key[1:]) & np.isnan(key[:-1])))
             | (self.det_image[1:] != self.det_image[:-1])
         )
         starts = np.flatnonzero(change)

@@ -1,3 +1,3 @@
 """Engine version, recorded in every result: a change to any number bumps it."""
 
-ENGINE_VERSION = "2.25.0"
+ENGINE_VERSION = "2.25.1"

@@ -167,11 +167,14 @@ def test_negative_or_fractional_weights_are_refused(files):
         score_records(records, "coco", weights=np.ones(3, np.int64))
 
 
+@pytest.mark.parametrize("score", [0.7, float("nan")], ids=["0.7", "NaN"])
 @pytest.mark.parametrize("protocol", sorted(PRESETS))
-def test_ties_inside_one_image_follow_the_copies(files, protocol):
+def test_ties_inside_one_image_follow_the_copies(files, protocol, score):
     """Two TPs and an FP of one class share a score in one image: with weight 3 the
     duplicated split walks them copy after copy (TP FP TP, TP FP TP, ...), and so must
-    the weighted evaluation."""
+    the weighted evaluation. NaN scores tie too: pycocotools' stable sorts keep them
+    in order, last (red team audit16 F1: each NaN was a run of its own, so the copies
+    came TP TP TP, FP FP FP, ...; pycocotools 2.0.11 on the duplicated split below)."""
     split = {
         "images": [{"id": 1, "width": 400, "height": 300}, {"id": 2, "width": 400, "height": 300}],
         "annotations": [
@@ -203,9 +206,9 @@ def test_ties_inside_one_image_follow_the_copies(files, protocol):
         "categories": [{"id": 1, "name": "pedestrian"}],
     }
     detections = [
-        {"image_id": 1, "category_id": 1, "bbox": [10, 10, 50, 50], "score": 0.7},
-        {"image_id": 1, "category_id": 1, "bbox": [300, 200, 40, 40], "score": 0.7},
-        {"image_id": 1, "category_id": 1, "bbox": [201, 11, 50, 50], "score": 0.7},
+        {"image_id": 1, "category_id": 1, "bbox": [10, 10, 50, 50], "score": score},
+        {"image_id": 1, "category_id": 1, "bbox": [300, 200, 40, 40], "score": score},
+        {"image_id": 1, "category_id": 1, "bbox": [201, 11, 50, 50], "score": score},
         {"image_id": 2, "category_id": 1, "bbox": [12, 100, 60, 60], "score": 0.8},
         {"image_id": 2, "category_id": 1, "bbox": [300, 10, 30, 30], "score": 0.75},
     ]
@@ -215,6 +218,11 @@ def test_ties_inside_one_image_follow_the_copies(files, protocol):
     dup_split, dup_dets = _duplicate_for(protocol)(split, detections, {1: 3, 2: 1})
     duplicated = evaluate(*files.load(dup_split, dup_dets), protocol, tag_slices=False)
     assert _numbers(weighted) == _numbers(duplicated)
+    if protocol == "coco":
+        from .conftest import pycocotools_eval
+
+        reference = pycocotools_eval(files.root / "truth.json", files.root / "predictions.json")
+        assert weighted["summary"]["AP"] == pytest.approx(reference.stats[0], abs=1e-12)
 
 
 def test_records_saved_before_tie_orders_load_as_image_order(files, tmp_path):

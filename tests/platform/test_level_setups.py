@@ -116,3 +116,19 @@ def test_a_setup_rule_is_judged_lower_is_better(walkers, users, run_tasks):
     with pytest.raises(criteria.CriteriaError, match="measured as miss_rate") as e:
         criteria.set_criteria(detector, users["lead"], [{**rule, "metric": "AP", "threshold": 0.5}])
     assert e.value.path == "rules[0].metric"
+
+
+def test_a_sign_off_keeps_the_miss_rate_it_was_decided_on(walkers, users):
+    """A decision's evidence keeps each evaluation's headline number: a setups result
+    has no AP, so its miss rate and headline setup are kept (red team audit16 F5: the
+    evidence kept "AP": null and no number for it)."""
+    card = Evaluation.objects.get(protocol="miss-rate").scorecard
+    record, _ = services.sign_off(
+        walkers["version"], users["lead"], "rejected", "too many misses at night"
+    )
+    kept = {e["protocol"]: e for e in record.evidence["evaluations"]}
+    assert kept["miss-rate"]["AP"] is None
+    assert kept["miss-rate"]["miss_rate"] == card.summary["miss_rate"]
+    assert kept["miss-rate"]["level"] == "reasonable"
+    coco = Evaluation.objects.get(protocol="coco").scorecard
+    assert kept["coco"]["AP"] == coco.summary["AP"] and "miss_rate" not in kept["coco"]
