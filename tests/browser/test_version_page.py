@@ -8,7 +8,7 @@ from releases import criteria, services
 
 from ..engine.synthetic import make_detections, make_split
 from ..platform.conftest import CLASSES, upload
-from .conftest import BROWSER_MARKS, shot
+from .conftest import ARTIFACTS, BROWSER_MARKS, shot
 
 pytestmark = BROWSER_MARKS
 
@@ -87,3 +87,32 @@ def test_the_sign_off_form_is_in_the_first_screen(page, live_server, regression)
     place = page.evaluate(FORM_PLACE)
     assert place["rowsAbove"] <= 40, place
     shot(page, "version-decision-390")
+
+
+OVERFLOW = "() => document.documentElement.scrollWidth - window.innerWidth"
+
+
+@pytest.mark.parametrize("width", [1280, 390])
+def test_the_provenance_names_the_box_policy_and_fits(
+    page, live_server, detector, version, split, split_truth, users, run_tasks, width
+):
+    """Each split's provenance says the box policy its numbers were scored under and
+    links the stored result's full protocol record; open, it fits the width."""
+    from ..platform.conftest import detections_for
+
+    run_tasks(
+        services.submit_predictions,
+        version,
+        split,
+        upload("p.json", detections_for(split_truth)),
+        users["engineer"],
+    )
+    page.set_viewport_size({"width": width, "height": 900})
+    page.goto(f"{live_server.url}/versions/{version.pk}/")
+    page.locator("details summary", has_text="Provenance").first.click()
+    assert page.locator("dd.box-policy").first.inner_text() == "keep"
+    link = page.locator("a", has_text="the stored result's protocol record")
+    assert link.first.get_attribute("href").endswith("/result/")
+    assert page.evaluate(OVERFLOW) <= 0
+    page.locator("dd.box-policy").first.scroll_into_view_if_needed()
+    page.screenshot(path=str(ARTIFACTS / f"version-provenance-{width}.png"))
