@@ -5,6 +5,7 @@ import math
 import numpy as np
 
 from .curves import Curves, _relative, detection_weights
+from .records import run_starts
 
 #: Dollár et al. (TPAMI 34(4), 2012): nine FPPI reference points 10^-2 ... 10^0,
 #: evenly spaced in log space.
@@ -83,29 +84,28 @@ def best_f1(tp, fp, scores, n_pos):
     }
 
 
-def every_point_counts(
-    records, *, max_detections=None, weights=None, area=0, slot=0, toolbox=False
-):
-    """Running TP / FP sums at every detection, as the duplicated split would have them.
+def every_point_counts(records, *, max_detections=None, weights=None, area=0, slot=0):
+    """Running TP / FP sums at every detection in the pedestrian toolbox's order
+    (``toolbox_order``), as the duplicated split would have them: the miss-rate curve.
 
     Unlike ``curves.cumulative_counts`` (one entry per detection, weighted), an image
     of weight w contributes the w copies of each of its runs of tied detections in the
-    order the duplicated split accumulates them (``MatchRecords._tie_groups``), so a
-    reading at every point — the miss-rate curve — equals the duplicated split's.
-    With ``toolbox``, detections are taken in the pedestrian toolbox's order
-    (``toolbox_order``) instead of the protocol's accumulation order.
+    order the duplicated split accumulates them (copies with adjacent ids, so copy c's
+    run of one class, image and score precedes copy c + 1's), so a reading at every
+    point equals the duplicated split's.
 
     Returns ``curves.Curves`` over the expanded points.
     """
     w = detection_weights(records, max_detections, weights)
-    order = toolbox_order(records) if toolbox else None
+    order = toolbox_order(records)
     keep = np.flatnonzero(w > 0) if order is None else order[w[order] > 0]
     if weights is None or not np.any(w > 1):
         index = keep
-    elif order is None:
-        index = _duplicated_order(keep, records.sparse_outcomes(0)["tie_start"][keep], w)
     else:
-        index = _duplicated_order(keep, _image_runs(records, keep), w)
+        runs = np.cumsum(
+            run_starts(records.det_class[keep], records.order_key()[keep], records.det_image[keep])
+        )
+        index = _duplicated_order(keep, runs, w)
     is_tp, is_ignored = records.outcomes(area, slot)
     is_fp = ~(is_tp | is_ignored)
     bounds = np.searchsorted(records.det_class[index], np.arange(len(records.classes) + 1))
@@ -130,25 +130,8 @@ def toolbox_order(records):
     n = records.n_detections
     if records.tie_order != "file" or n < 2:
         return None
-    key = records.order_key()
-    same = (records.det_class[1:] == records.det_class[:-1]) & (
-        (key[1:] == key[:-1]) | (np.isnan(key[1:]) & np.isnan(key[:-1]))
-    )
-    run = np.cumsum(np.r_[True, ~same])
+    run = np.cumsum(run_starts(records.det_class, records.order_key()))
     return np.lexsort((np.arange(n), records.det_image, run))
-
-
-def _image_runs(records, index):
-    """Run labels of ``index``: a run is detections of one class, image and score
-    (NaN equal to NaN), adjacent in ``index``."""
-    key = records.order_key()[index]
-    change = np.ones(len(index), bool)
-    change[1:] = (
-        (records.det_class[index][1:] != records.det_class[index][:-1])
-        | (records.det_image[index][1:] != records.det_image[index][:-1])
-        | ~((key[1:] == key[:-1]) | (np.isnan(key[1:]) & np.isnan(key[:-1])))
-    )
-    return np.cumsum(change)
 
 
 def _duplicated_order(keep, label, w):

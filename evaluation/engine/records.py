@@ -33,6 +33,20 @@ class MissingReasons(ValueError):
     """Records saved before reasons were added to the engine: no reasons, no boxes."""
 
 
+def run_starts(det_class, key, det_image=None):
+    """Where a run of tied detections starts along an order: a new class, order key
+    or (given ``det_image``) image. NaN keys tie with each other — pycocotools' and
+    the toolbox's stable sorts keep NaN scores in order, together — or an image's
+    weighted copies would interleave them (red team audit16 F1)."""
+    change = np.ones(len(key), bool)
+    change[1:] = (det_class[1:] != det_class[:-1]) | (
+        (key[1:] != key[:-1]) & ~(np.isnan(key[1:]) & np.isnan(key[:-1]))
+    )
+    if det_image is not None:
+        change[1:] |= det_image[1:] != det_image[:-1]
+    return change
+
+
 @dataclass(eq=False)
 class MatchRecords:
     """Per-detection outcomes for every size bucket and IoU slot.
@@ -213,16 +227,7 @@ class MatchRecords:
         n = self.n_detections
         if self.tie_order == "file":
             return {"tie_start": np.arange(n), "tie_end": np.arange(1, n + 1)}
-        change = np.ones(n, bool)
-        key = self.order_key()
-        # NaN scores tie with each other (pycocotools' stable sorts keep them in
-        # order, last): one run, or an image's copies would interleave them
-        # (red team audit16 F1)
-        change[1:] = (
-            (self.det_class[1:] != self.det_class[:-1])
-            | ((key[1:] != key[:-1]) & ~(np.isnan(key[1:]) & np.isnan(key[:-1])))
-            | (self.det_image[1:] != self.det_image[:-1])
-        )
+        change = run_starts(self.det_class, self.order_key(), self.det_image)
         starts = np.flatnonzero(change)
         lengths = np.diff(np.r_[starts, n])
         return {

@@ -93,7 +93,7 @@ def _class_rows(records, protocol, curves, points, score_threshold, n_images, we
         replace(points, uncounted=None), CURVE_POINTS, epsilon=protocol.precision_epsilon, slots=[0]
     )[0]
     every = every_point_counts(
-        records, max_detections=protocol.max_detections_limit, weights=weights, toolbox=True
+        records, max_detections=protocol.max_detections_limit, weights=weights
     )
     out = []
     for k in range(len(records.classes)):

@@ -187,26 +187,9 @@ def _voc_ap(truth, predictions, eleven_point, min_overlap, outcomes):
             ovmax, jmax = -np.inf, None
             for j in (j for j in boxes if truth.box_image[j] == predictions.image[i]):
                 gx, gy, gw, gh = truth.boxes[j]
-                bbgt = (gx, gy, gx + gw, gy + gh)
-                # MATLAB's max/min omit NaN (MathWorks documentation, 'omitnan' the
-                # default): np.fmax/np.fmin, not Python's max/min
-                bi = (
-                    np.fmax(bb[0], bbgt[0]),
-                    np.fmax(bb[1], bbgt[1]),
-                    np.fmin(bb[2], bbgt[2]),
-                    np.fmin(bb[3], bbgt[3]),
-                )
-                iw = bi[2] - bi[0] + 1
-                ih = bi[3] - bi[1] + 1
-                if iw > 0 and ih > 0:
-                    ua = (
-                        (bb[2] - bb[0] + 1) * (bb[3] - bb[1] + 1)
-                        + (bbgt[2] - bbgt[0] + 1) * (bbgt[3] - bbgt[1] + 1)
-                        - iw * ih
-                    )
-                    ov = iw * ih / ua
-                    if ov > ovmax:
-                        ovmax, jmax = ov, j
+                ov = _devkit_overlap(bb, (gx, gy, gx + gw, gy + gh))
+                if ov is not None and ov > ovmax:
+                    ovmax, jmax = ov, j
             if ovmax >= min_overlap:
                 if not difficult[jmax]:
                     if jmax not in det:
@@ -229,6 +212,32 @@ def _voc_ap(truth, predictions, eleven_point, min_overlap, outcomes):
             )
         out[k] = _devkit_ap(tp, fp, npos, eleven_point)
     return out
+
+
+def _devkit_overlap(bb, bbgt):
+    """``VOCevaldet.m``'s overlap of a detection's and a box's corners, None where
+    they do not intersect (``iw>0 && ih>0`` fails): ``bi=[max(bb(1),bbgt(1)) ; ... ;
+    min(bb(4),bbgt(4))]``, ``iw=bi(3)-bi(1)+1``, ``ih=bi(4)-bi(2)+1``, ``ua`` from each
+    box's own corners (+1), ``ov=iw*ih/ua``. MATLAB's max/min omit NaN (MathWorks
+    documentation, 'omitnan' the default): np.fmax/np.fmin, not Python's max/min;
+    MATLAB reads the corners as doubles."""
+    bb, bbgt = np.asarray(bb[:4], np.float64), np.asarray(bbgt[:4], np.float64)
+    bi = (
+        np.fmax(bb[0], bbgt[0]),
+        np.fmax(bb[1], bbgt[1]),
+        np.fmin(bb[2], bbgt[2]),
+        np.fmin(bb[3], bbgt[3]),
+    )
+    iw = bi[2] - bi[0] + 1
+    ih = bi[3] - bi[1] + 1
+    if not (iw > 0 and ih > 0):
+        return None
+    ua = (
+        (bb[2] - bb[0] + 1) * (bb[3] - bb[1] + 1)
+        + (bbgt[2] - bbgt[0] + 1) * (bbgt[3] - bbgt[1] + 1)
+        - iw * ih
+    )
+    return iw * ih / ua
 
 
 def _devkit_ap(tp, fp, npos, eleven_point):
@@ -284,23 +293,9 @@ def voc_evaldet(gt, detections, *, eleven_point, min_overlap=0.5):
             image, _, *bb = detections[i]
             ovmax, jmax = -np.inf, None
             for j, bbgt in enumerate(gt.get(image, ())):
-                bi = (
-                    max(bb[0], bbgt[0]),
-                    max(bb[1], bbgt[1]),
-                    min(bb[2], bbgt[2]),
-                    min(bb[3], bbgt[3]),
-                )
-                iw = bi[2] - bi[0] + 1
-                ih = bi[3] - bi[1] + 1
-                if iw > 0 and ih > 0:
-                    ua = (
-                        (bb[2] - bb[0] + 1) * (bb[3] - bb[1] + 1)
-                        + (bbgt[2] - bbgt[0] + 1) * (bbgt[3] - bbgt[1] + 1)
-                        - iw * ih
-                    )
-                    ov = iw * ih / ua
-                    if ov > ovmax:
-                        ovmax, jmax = ov, j
+                ov = _devkit_overlap(bb, bbgt)
+                if ov is not None and ov > ovmax:
+                    ovmax, jmax = ov, j
             if ovmax >= min_overlap:
                 if not gt[image][jmax][4]:
                     if not taken[image][jmax]:
